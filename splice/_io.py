@@ -1,0 +1,136 @@
+"""Atomic writes and content hashes.
+
+Everything splice writes goes through these helpers, so an interrupted or
+failed write never leaves a half-written file where a good one used to be.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+
+__all__ = [
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "atomic_write_json",
+    "atomic_dir",
+    "file_sha256",
+    "state_dict_sha256",
+]
+
+
+def _fsync_dir(path: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
+    """Write ``data`` to ``path`` via a temporary file in the same folder and a rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+    _fsync_dir(path.parent)
+    return path
+
+
+def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
+    """Text version of :func:`atomic_write_bytes` (UTF-8)."""
+    return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def atomic_write_json(path: str | os.PathLike, obj: object) -> Path:
+    """Write ``obj`` as indented, key-sorted JSON, atomically."""
+    return atomic_write_text(path, json.dumps(obj, indent=2, sort_keys=True) + "\n")
+
+
+@contextlib.contextmanager
+def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterator[Path]:
+    """Build a folder in a temporary sibling and move it into place on success.
+
+    Yields the temporary folder. If the body raises, the temporary folder is
+    removed and ``target`` is left exactly as it was. With ``overwrite=True`` an
+    existing ``target`` is replaced only after the new one is complete.
+
+    >>> with atomic_dir("out/model", overwrite=True) as tmp:  # doctest: +SKIP
+    ...     (tmp / "a.txt").write_text("hi")
+    """
+    from .errors import SpliceError
+
+    target = Path(target)
+    if target.exists() and not overwrite:
+        raise SpliceError(
+            f"output folder '{target}' already exists; pass --overwrite "
+            "(overwrite=True) to replace it, or choose another folder"
+        )
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
+    try:
+        yield tmp
+        for f in tmp.rglob("*"):
+            if f.is_file():
+                with open(f, "rb") as fh:
+                    os.fsync(fh.fileno())
+        if target.exists():
+            old = target.with_name(f".{target.name}.old-{os.getpid()}")
+            os.replace(target, old)
+            os.replace(tmp, target)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, target)
+        _fsync_dir(target.parent)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def file_sha256(path: str | os.PathLike, chunk: int = 1 << 20) -> str:
+    """sha256 of a file's bytes, hex-encoded."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
+            h.update(block)
+    return h.hexdigest()
+
+
+def state_dict_sha256(state: Mapping[str, object], *, prefix_exclude: str | None = None) -> str:
+    """Canonical sha256 of a state dict: sorted names, dtype, shape and raw bytes.
+
+    Two state dicts hash equal exactly when they have the same keys and every
+    tensor is bitwise equal. Keys starting with ``prefix_exclude`` are skipped
+    (used to hash only the base part of a spliced model).
+    """
+    import torch
+
+    h = hashlib.sha256()
+    for name in sorted(state):
+        if prefix_exclude and name.startswith(prefix_exclude):
+            continue
+        t = state[name]
+        if not isinstance(t, torch.Tensor):
+            continue
+        t = t.detach().to("cpu").contiguous()
+        h.update(name.encode())
+        h.update(str(t.dtype).encode())
+        h.update(str(tuple(t.shape)).encode())
+        h.update(t.view(torch.uint8).numpy().tobytes() if t.numel() else b"")
+    return h.hexdigest()

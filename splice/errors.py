@@ -1,0 +1,79 @@
+"""Exceptions that splice raises for problems the user can fix.
+
+Every user-facing failure is a :class:`SpliceError` (or a subclass). The CLI
+turns one into a single line on stderr and exit code 2; ``--debug`` shows the
+traceback. Messages follow one pattern: *what is wrong, what was given, what to
+do*.
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Iterable
+
+__all__ = [
+    "SpliceError",
+    "SourceError",
+    "WeightsError",
+    "UnsafeCheckpointError",
+    "GraphError",
+    "PointError",
+    "ManifestError",
+    "IntegrityError",
+    "RecipeError",
+    "DataError",
+    "CheckFailed",
+    "suggest",
+]
+
+
+class SpliceError(Exception):
+    """A problem with the user's input, files or environment (CLI exit code 2)."""
+
+
+class SourceError(SpliceError):
+    """The model spec cannot be resolved to an architecture."""
+
+
+class WeightsError(SpliceError):
+    """A weights file is missing, corrupt, or does not fit the architecture."""
+
+
+class UnsafeCheckpointError(WeightsError):
+    """A checkpoint needs unpickling arbitrary objects and the user did not opt in."""
+
+
+class GraphError(SpliceError):
+    """The model cannot be traced or analysed."""
+
+
+class PointError(SpliceError):
+    """An insertion point name is unknown, duplicated or unusable."""
+
+
+class ManifestError(SpliceError):
+    """A spliced folder's ``splice.json`` is missing or violates the schema."""
+
+
+class IntegrityError(SpliceError):
+    """A file's content no longer matches the hash recorded when it was written."""
+
+
+class RecipeError(SpliceError):
+    """A recipe has an unknown key or a bad value."""
+
+
+class DataError(SpliceError):
+    """A dataset name, folder or image cannot be used."""
+
+
+class CheckFailed(SpliceError):
+    """An equivalence or parity check failed (``splice verify`` exits 1, not 2)."""
+
+
+def suggest(word: str, choices: Iterable[str], n: int = 3) -> str:
+    """Return ``"; did you mean 'a', 'b'?"`` for close matches, or ``""``."""
+    close = difflib.get_close_matches(word, list(choices), n=n, cutoff=0.5)
+    if not close:
+        return ""
+    return "; did you mean " + ", ".join(repr(c) for c in close) + "?"
