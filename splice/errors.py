@@ -23,6 +23,8 @@ __all__ = [
     "RecipeError",
     "DataError",
     "CheckFailed",
+    "SpliceWarning",
+    "RandomWeightsWarning",
     "suggest",
 ]
 
@@ -69,6 +71,14 @@ class DataError(SpliceError):
 
 class CheckFailed(SpliceError):
     """An equivalence or parity check failed (``splice verify`` exits 1, not 2)."""
+
+
+class SpliceWarning(UserWarning):
+    """Something the user should know about, but that does not stop the command."""
+
+
+class RandomWeightsWarning(SpliceWarning):
+    """The model was built without trained weights; its outputs mean nothing for accuracy."""
 
 
 def suggest(word: str, choices: Iterable[str], n: int = 3) -> str:

@@ -1,0 +1,304 @@
+"""Splicing: put warp modules into a traced model's fx graph.
+
+:func:`insert` traces a *copy* of the model, adds one :class:`~splice.warps.Warp`
+per point under the ``splice_warps`` prefix, and rewires every consumer of the
+point to read the warped tensor. Base parameter and buffer names are unchanged,
+so the spliced model's ``state_dict`` is the base's plus ``splice_warps.*``.
+Every warp starts at the exact identity, and by default the result is checked
+(shapes and outputs) against the base before it is returned.
+"""
+
+from __future__ import annotations
+
+import copy
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+from torch import fx, nn
+
+from .errors import CheckFailed, PointError, SpliceWarning, suggest
+
+__all__ = ["WARP_PREFIX", "SplicePlan", "insert", "splice_info", "warps_of", "base_state_dict"]
+
+WARP_PREFIX = "splice_warps"
+
+
+@dataclass(frozen=True)
+class SplicePlan:
+    """One warp to insert: the point's name and the warp's configuration."""
+
+    point: str
+    config: Any  # splice.warps.WarpConfig
+
+
+def splice_info(model: nn.Module) -> dict | None:
+    """The splice metadata carried by a spliced model (``None`` for plain models)."""
+    return getattr(model, "splice_info", None)
+
+
+def warps_of(model: nn.Module) -> dict[str, nn.Module]:
+    """``{point name: Warp}`` for a spliced model (empty for plain models)."""
+    container = getattr(model, WARP_PREFIX, None)
+    return dict(container.items()) if isinstance(container, nn.ModuleDict) else {}
+
+
+def base_state_dict(model: nn.Module) -> dict[str, torch.Tensor]:
+    """The model's state dict without the warp parameters."""
+    return {k: v for k, v in model.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
+
+
+def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphModule) -> list[str]:
+    by_name = {p.name: p for p in listing}
+    node_names = {("input" if n.op == "placeholder" else n.name): n for n in gm.graph.nodes}
+    names: list[str] = []
+    for raw in requested:
+        if raw == "recommended":
+            rec = [p.name for p in listing if p.recommended]
+            if not rec:
+                raise PointError(
+                    "no recommended point for this model (no cut between convs); "
+                    "choose one with --at NAME from 'splice points MODEL --all'"
+                )
+            expanded = rec
+        else:
+            expanded = [raw]
+        for name in expanded:
+            if name not in by_name:
+                if name in node_names:
+                    node = node_names[name]
+                    meta = node.meta.get("tensor_meta")
+                    shape = list(getattr(meta, "shape", [])) if meta is not None else "unknown"
+                    raise PointError(
+                        f"point {name!r} is not a 4-D activation (shape {shape}); a warp needs an "
+                        "(N, C, H, W) tensor — pick one listed by 'splice points MODEL --all'"
+                    )
+                raise PointError(
+                    f"unknown point {name!r}{suggest(name, list(by_name))} "
+                    "Run 'splice points MODEL' to list them."
+                )
+            if name in names:
+                raise PointError(
+                    f"point {name!r} was given twice (--at {name} … --at {name}); "
+                    "each point takes at most one warp"
+                )
+            names.append(name)
+    if not names:
+        raise PointError("no insertion point given; pass --at NAME (or --at recommended)")
+    return names
+
+
+def _node_map(gm: fx.GraphModule) -> dict[str, fx.Node]:
+    out = {}
+    placeholders = [n for n in gm.graph.nodes if n.op == "placeholder"]
+    for n in gm.graph.nodes:
+        out[n.name] = n
+    if placeholders:
+        out["input"] = placeholders[0]
+    return out
+
+
+def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
+    """fx keeps only modules the graph touches; put back any others so names don't change."""
+    have = set(gm.state_dict())
+    want = original.state_dict(keep_vars=True)
+    for key in want:
+        if key in have:
+            continue
+        owner_path, _, leaf = key.rpartition(".")
+        src_owner = original.get_submodule(owner_path) if owner_path else original
+        # rebuild the module chain on the GraphModule side
+        parent = gm
+        for part in owner_path.split(".") if owner_path else []:
+            child = getattr(parent, part, None)
+            if child is None:
+                child = nn.Module()
+                parent.add_module(part, child)
+            parent = child
+        if not owner_path:
+            parent = gm
+        value = getattr(src_owner, leaf)
+        if isinstance(value, nn.Parameter):
+            parent.register_parameter(leaf, value)
+        else:
+            persistent = leaf not in getattr(src_owner, "_non_persistent_buffers_set", set())
+            parent.register_buffer(leaf, value, persistent=persistent)
+        have.add(key)
+
+
+def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float = 1e-5) -> dict:
+    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32)."""
+    from .verify import compare_outputs
+
+    gen = torch.Generator().manual_seed(0)
+    x = torch.randn((2, *input_shape), generator=gen)
+    param = next(iter(base.parameters()), None)
+    if param is not None:
+        x = x.to(device=param.device, dtype=param.dtype)
+    modes = (base.training, spliced.training)
+    base.eval()
+    spliced.eval()
+    try:
+        with torch.no_grad():
+            result = compare_outputs(base(x), spliced(x.clone()), tol=tol)
+    finally:
+        base.train(modes[0])
+        spliced.train(modes[1])
+    return result
+
+
+def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None) -> fx.GraphModule:
+    """Trace a copy of ``model`` and insert the planned warps (no checks)."""
+    from . import graph
+    from .warps import Warp
+
+    work = copy.deepcopy(model)
+    gm = graph.trace(work, leaves=leaves)
+    if listing is None:
+        listing = graph.points(work, input_shape, all=True, leaves=leaves)
+    shapes = {p.name: tuple(p.shape) for p in listing}
+    nodes = _node_map(gm)
+    order = {n: i for i, n in enumerate(gm.graph.nodes)}
+    param = next(iter(work.parameters()), None)
+    factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
+    if WARP_PREFIX in dict(gm.named_children()):
+        raise PointError(f"the model already has a submodule named {WARP_PREFIX!r}; it cannot be spliced again")
+    container = nn.ModuleDict()
+    gm.add_module(WARP_PREFIX, container)
+    for item in sorted(plan, key=lambda it: order[nodes[it.point]]):
+        node = nodes[item.point]
+        loc_name = item.config.loc_from
+        loc_node = None
+        loc_shape = None
+        if loc_name is not None and loc_name != item.point:
+            if loc_name not in nodes or loc_name not in shapes:
+                raise PointError(
+                    f"--loc-from {loc_name!r} is not a 4-D point of this model"
+                    f"{suggest(loc_name, list(shapes))} Run 'splice points MODEL --all' to list them."
+                )
+            loc_node = nodes[loc_name]
+            if order[loc_node] > order[node]:
+                raise PointError(
+                    f"--loc-from {loc_name!r} comes after point {item.point!r} in the graph; the "
+                    "localisation head must read a tensor computed before the warp (e.g. 'input')"
+                )
+            loc_shape = shapes[loc_name]
+        warp = Warp(item.config, shapes[item.point], loc_shape, **factory)
+        container[item.point] = warp
+        with gm.graph.inserting_after(node):
+            args = (node,) if loc_node is None else (node, loc_node)
+            new = gm.graph.call_module(f"{WARP_PREFIX}.{item.point}", args=args)
+        node.replace_all_uses_with(new, delete_user_cb=lambda user, new=new: user is not new)
+        # a later warp may read this point as its localisation input: it sees the warped tensor
+    gm.graph.lint()
+    gm.recompile()
+    _restore_missing_state(gm, work)
+    gm.train(model.training)
+    return gm
+
+
+def insert(
+    model,
+    at: str | Sequence[str] = ("recommended",),
+    warp: str | Any | Mapping[str, Any] = "affine",
+    *,
+    input_shape=None,
+    loc_from: str | None = None,
+    sampler: str | None = None,
+    padding: str | None = None,
+    head_width: int | None = None,
+    tps_k: int | None = None,
+    leaves: Sequence[str] = (),
+    check: bool = True,
+    force: bool = False,
+    tol: float = 1e-5,
+) -> fx.GraphModule:
+    """Return a copy of ``model`` with identity-initialised warps at the given points.
+
+    ``model`` is an ``nn.Module``, a spec string (``"torchvision:resnet18"``,
+    ``"pkg.mod:factory"``, a spliced folder) or a :class:`~splice.sources.Source`.
+    ``at`` lists point names from :func:`splice.points`, or ``"recommended"``.
+    ``warp`` is a family name, a :class:`~splice.warps.WarpConfig`, or a mapping
+    from point name to either. The caller's model is never modified.
+
+    >>> import splice
+    >>> spliced = splice.insert("torchvision:resnet18", at="layer1", warp="affine")  # doctest: +SKIP
+    >>> sorted(spliced.splice_warps)                                                 # doctest: +SKIP
+    ['layer1']
+    """
+    from . import graph
+    from .sources import load_source
+    from .warps import WarpConfig
+
+    src = load_source(model, input_shape=input_shape, leaves=leaves)
+    if src.is_spliced:
+        raise PointError(
+            f"{src.spec} already holds warps at {', '.join(p['name'] for p in src.manifest['points'])}; "
+            "splice the original model instead (points can be given together: --at A --at B)"
+        )
+    if src.input_shape is None:
+        from .errors import SourceError
+
+        raise SourceError("insert needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW")
+    leaves = tuple(leaves) or tuple(src.leaves)
+    base = src.model
+    work_listing = graph.points(base, src.input_shape, all=True, leaves=leaves)
+    gm_probe = graph.trace(copy.deepcopy(base), leaves=leaves)
+    requested = [at] if isinstance(at, str) else list(at)
+    names = _resolve_points(requested, work_listing, gm_probe)
+    by_name = {p.name: p for p in work_listing}
+
+    def config_for(name: str):
+        choice = warp.get(name, "affine") if isinstance(warp, Mapping) else warp
+        if isinstance(choice, WarpConfig):
+            cfg = choice.to_dict()
+        elif isinstance(choice, str):
+            cfg = {"family": choice}
+        else:
+            raise TypeError(f"warp must be a family name or WarpConfig, got {type(choice).__name__}")
+        for key, value in (("loc_from", loc_from), ("sampler", sampler), ("padding", padding),
+                           ("head_width", head_width), ("tps_k", tps_k)):
+            if value is not None:
+                cfg[key] = value
+        return WarpConfig.from_dict(cfg)
+
+    plan = [SplicePlan(name, config_for(name)) for name in names]
+    for item in plan:
+        if not by_name[item.point].cut:
+            join = by_name[item.point].join
+            warnings.warn(
+                f"point {item.point!r} is not a cut: some path from the input to the output bypasses it"
+                + (f" (the paths re-join at {join!r})" if join else "")
+                + ", so the warp will misalign the two paths; prefer a point marked cut",
+                SpliceWarning,
+                stacklevel=2,
+            )
+    gm = _apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing)
+    gm.splice_info = {
+        "spec": src.spec,
+        "kwargs": dict(src.kwargs),
+        "input_shape": tuple(src.input_shape),
+        "normalisation": src.normalisation,
+        "class_names": src.class_names,
+        "leaves": list(leaves),
+        "source_weights_sha256": src.weights_sha256,
+        "source_weights_path": src.weights_path,
+        "random_init": src.random_init,
+        "points": [
+            {"name": it.point, "warp": it.config.to_dict(), "shape": list(by_name[it.point].shape),
+             "cut": bool(by_name[it.point].cut)}
+            for it in plan
+        ],
+        "tuning": None,
+    }
+    if check:
+        result = _quick_check(base, gm, src.input_shape, tol=tol)
+        gm.splice_info["check"] = result
+        if not result["passed"] and not force:
+            raise CheckFailed(
+                f"the spliced model differs from the base at the identity ({result['detail']}); "
+                "this is a bug or an unusual model — pass --force (force=True) to keep it anyway"
+            )
+    return gm
