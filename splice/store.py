@@ -1,0 +1,361 @@
+"""The spliced-folder format: ``weights.safetensors`` + ``splice.json``.
+
+A folder is rebuilt from splice's own classes only: the base architecture from
+the recorded spec, the warps from recorded :class:`~splice.warps.WarpConfig`
+dicts, the tensors from safetensors. Nothing is unpickled (unless the base
+itself was a pickled module, which again needs ``trust_pickle``).
+
+``splice.json`` (schema version 1)::
+
+    {
+      "schema_version": 1,
+      "format": "splice-folder",
+      "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
+                 "weights_sha256": str | null, "random_init": bool},
+      "input_shape": [C, H, W],
+      "normalisation": {"mean": [...], "std": [...]} | null,
+      "class_names": [str, ...] | null,
+      "leaves": [str, ...],
+      "points": [{"name": str, "shape": [C, H, W], "cut": bool, "warp": {WarpConfig}}],
+      "weights": {"file": "weights.safetensors", "sha256": str, "base_sha256": str},
+      "tuning": null | {"recipe": str, "base_changed": bool, ...},
+      "versions": {"splice": str, "torch": str, "torchvision": str},
+      "created": ISO-8601 UTC
+    }
+
+``source.weights_sha256`` is the canonical hash of the base state dict the
+splice started from (provenance); ``weights.sha256`` is the hash of the
+``weights.safetensors`` bytes as written (integrity); ``weights.base_sha256``
+is the canonical hash of the base part of the saved state dict.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import torch
+from torch import nn
+
+from ._io import atomic_dir, file_sha256, state_dict_sha256
+from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
+
+__all__ = [
+    "SCHEMA_VERSION",
+    "MANIFEST_NAME",
+    "WEIGHTS_NAME",
+    "save",
+    "load",
+    "load_base",
+    "read_manifest",
+    "validate_manifest",
+    "load_folder_source",
+    "is_splice_folder",
+]
+
+SCHEMA_VERSION = 1
+MANIFEST_NAME = "splice.json"
+WEIGHTS_NAME = "weights.safetensors"
+_FORMAT = "splice-folder"
+
+
+def _versions() -> dict[str, str]:
+    import torchvision
+
+    from . import __version__
+
+    return {"splice": __version__, "torch": torch.__version__, "torchvision": torchvision.__version__}
+
+
+def is_splice_folder(path: str | os.PathLike) -> bool:
+    return (Path(path) / MANIFEST_NAME).is_file()
+
+
+# ----------------------------------------------------------------------------- manifest schema
+
+
+def _shape_ok(v: Any) -> bool:
+    return isinstance(v, list) and len(v) == 3 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0 for d in v)
+
+
+def validate_manifest(data: Any, where: str = MANIFEST_NAME) -> dict:
+    """Check a parsed ``splice.json``; raise :class:`ManifestError` naming every violation."""
+    from .warps import WarpConfig
+
+    problems: list[str] = []
+    if not isinstance(data, dict):
+        raise ManifestError(f"{where} must hold a JSON object, found {type(data).__name__}; re-create the folder with 'splice insert'")
+    version = data.get("schema_version")
+    if version != SCHEMA_VERSION:
+        problems.append(f"schema_version is {version!r}, this splice reads {SCHEMA_VERSION}")
+    if data.get("format") != _FORMAT:
+        problems.append(f"format is {data.get('format')!r}, expected {_FORMAT!r}")
+    src = data.get("source")
+    if not isinstance(src, dict):
+        problems.append("source must be an object")
+    else:
+        if not isinstance(src.get("spec"), str) or not src.get("spec"):
+            problems.append("source.spec must be a non-empty string")
+        if not isinstance(src.get("kwargs", {}), dict):
+            problems.append("source.kwargs must be an object")
+        for key in ("weights_sha256", "weights_file"):
+            if src.get(key) is not None and not isinstance(src.get(key), str):
+                problems.append(f"source.{key} must be a string or null")
+    if not _shape_ok(data.get("input_shape")):
+        problems.append(f"input_shape must be [C, H, W] positive integers, found {data.get('input_shape')!r}")
+    norm = data.get("normalisation")
+    if norm is not None:
+        if not (isinstance(norm, dict) and set(norm) == {"mean", "std"}
+                and all(isinstance(norm[k], list) and all(isinstance(x, (int, float)) for x in norm[k]) for k in norm)):
+            problems.append("normalisation must be null or {\"mean\": [...], \"std\": [...]}")
+        elif any(s <= 0 for s in norm["std"]):
+            problems.append("normalisation.std values must be positive")
+    names = data.get("class_names")
+    if names is not None and not (isinstance(names, list) and all(isinstance(n, str) for n in names)):
+        problems.append("class_names must be null or a list of strings")
+    if not isinstance(data.get("leaves", []), list):
+        problems.append("leaves must be a list of strings")
+    pts = data.get("points")
+    if not isinstance(pts, list):
+        problems.append("points must be a list")
+        pts = []
+    seen: set[str] = set()
+    for i, p in enumerate(pts):
+        if not isinstance(p, dict) or not isinstance(p.get("name"), str):
+            problems.append(f"points[{i}] must be an object with a string name")
+            continue
+        if p["name"] in seen:
+            problems.append(f"points[{i}] repeats point {p['name']!r}")
+        seen.add(p["name"])
+        try:
+            WarpConfig.from_dict(p.get("warp") if isinstance(p.get("warp"), dict) else {"family": None})
+        except (ValueError, TypeError) as exc:
+            problems.append(f"points[{i}].warp: {exc}")
+    w = data.get("weights")
+    if not (isinstance(w, dict) and isinstance(w.get("file"), str) and isinstance(w.get("sha256"), str)):
+        problems.append("weights must be {\"file\": str, \"sha256\": str, ...}")
+    elif "/" in w["file"] or "\\" in w["file"] or w["file"].startswith("."):
+        problems.append(f"weights.file must be a plain file name inside the folder, found {w['file']!r}")
+    tuning = data.get("tuning")
+    if tuning is not None and not isinstance(tuning, dict):
+        problems.append("tuning must be null or an object")
+    if problems:
+        raise ManifestError(
+            f"{where} violates the splice folder schema: " + "; ".join(problems)
+            + ". Re-create the folder with 'splice insert' rather than editing it by hand"
+        )
+    return data
+
+
+def read_manifest(folder: str | os.PathLike) -> dict:
+    """Read and validate ``folder/splice.json``."""
+    folder = Path(folder)
+    path = folder / MANIFEST_NAME
+    if not folder.exists():
+        raise ManifestError(f"folder '{folder}' does not exist; check the path")
+    if not path.is_file():
+        raise ManifestError(
+            f"'{folder}' is not a splice folder (no {MANIFEST_NAME}); give a folder written by "
+            "'splice insert' or 'splice tune', or a model spec such as torchvision:resnet18"
+        )
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise ManifestError(f"'{path}' is not valid JSON ({exc}); the file is damaged — re-create the folder") from None
+    return validate_manifest(data, str(path))
+
+
+# ----------------------------------------------------------------------------- save
+
+
+def _plain_info(model: nn.Module, source) -> dict:
+    from .sources import load_source
+
+    src = load_source(source, warn_random=False) if isinstance(source, str) else source
+    if src is None or getattr(src, "spec", "<module>") == "<module>":
+        raise SpliceError(
+            "save() needs to know how to rebuild the base architecture; pass "
+            "source='torchvision:NAME' / 'pkg.mod:factory' or a Source from splice.load_source"
+        )
+    return {
+        "spec": src.spec, "kwargs": dict(src.kwargs), "input_shape": tuple(src.input_shape),
+        "normalisation": src.normalisation, "class_names": src.class_names, "leaves": list(src.leaves),
+        "source_weights_sha256": src.weights_sha256, "source_weights_path": src.weights_path,
+        "random_init": src.random_init, "points": [], "tuning": None,
+    }
+
+
+def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False, source=None,
+         tuning: Mapping | None = None, class_names=None, normalisation=None) -> Path:
+    """Write ``model`` to ``folder`` as ``weights.safetensors`` + ``splice.json``, atomically.
+
+    ``model`` is a spliced model from :func:`splice.insert` (it carries its own
+    provenance) or a plain model together with ``source`` (a spec string or
+    :class:`~splice.sources.Source`). The folder is built beside the target and
+    renamed into place, so a failure leaves no partial output.
+
+    >>> spliced = splice.insert("torchvision:resnet18", at="layer1")   # doctest: +SKIP
+    >>> splice.save(spliced, "out/r18-affine")                          # doctest: +SKIP
+    PosixPath('out/r18-affine')
+    """
+    from safetensors.torch import save_file
+
+    info = dict(getattr(model, "splice_info", None) or _plain_info(model, source))
+    if tuning is not None:
+        info["tuning"] = dict(tuning)
+    if class_names is not None:
+        info["class_names"] = list(class_names)
+    if normalisation is not None:
+        info["normalisation"] = dict(normalisation)
+    state = {k: v.detach().to("cpu").contiguous().clone() for k, v in model.state_dict().items()}
+    from .surgery import WARP_PREFIX
+
+    manifest = {
+        "schema_version": SCHEMA_VERSION,
+        "format": _FORMAT,
+        "source": {
+            "spec": info["spec"],
+            "kwargs": info.get("kwargs") or {},
+            "weights_file": info.get("source_weights_path"),
+            "weights_sha256": info.get("source_weights_sha256"),
+            "random_init": bool(info.get("random_init", False)),
+        },
+        "input_shape": [int(d) for d in info["input_shape"]],
+        "normalisation": info.get("normalisation"),
+        "class_names": info.get("class_names"),
+        "leaves": list(info.get("leaves") or []),
+        "points": [dict(p) for p in info.get("points") or []],
+        "weights": {"file": WEIGHTS_NAME, "sha256": "", "base_sha256": state_dict_sha256(state, prefix_exclude=WARP_PREFIX + ".")},
+        "tuning": info.get("tuning"),
+        "versions": _versions(),
+        "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
+    }
+    validate_manifest(manifest, "the manifest being written")
+    with atomic_dir(folder, overwrite=overwrite) as tmp:
+        save_file(state, str(tmp / WEIGHTS_NAME), metadata={"format": "pt"})
+        manifest["weights"]["sha256"] = file_sha256(tmp / WEIGHTS_NAME)
+        (tmp / MANIFEST_NAME).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    return Path(folder)
+
+
+# ----------------------------------------------------------------------------- load
+
+
+def _read_checked_weights(folder: Path, manifest: dict) -> dict[str, torch.Tensor]:
+    from .sources import _safetensors_load
+
+    path = folder / manifest["weights"]["file"]
+    if not path.is_file():
+        raise WeightsError(f"'{path}' is missing; the folder is incomplete — re-create it with 'splice insert'")
+    actual = file_sha256(path)
+    if actual != manifest["weights"]["sha256"]:
+        raise IntegrityError(
+            f"'{path}' does not match the sha256 recorded in {MANIFEST_NAME} "
+            f"(recorded {manifest['weights']['sha256'][:12]}…, found {actual[:12]}…); the weights were "
+            "changed or damaged after saving — restore the folder from a good copy"
+        )
+    return _safetensors_load(path)
+
+
+def _rebuild_base(manifest: dict, *, trust_pickle: bool = False) -> nn.Module:
+    from .sources import build_model, load_source
+
+    spec = manifest["source"]["spec"]
+    if ":" not in spec:  # a pickled whole module
+        return load_source(spec, input_shape=manifest["input_shape"], trust_pickle=trust_pickle).model
+    model, _ = build_model(spec, manifest["source"].get("kwargs") or {})
+    return model
+
+
+def _restore_info(model: nn.Module, manifest: dict, folder: Path) -> None:
+    model.splice_info = {
+        "spec": manifest["source"]["spec"],
+        "kwargs": dict(manifest["source"].get("kwargs") or {}),
+        "input_shape": tuple(manifest["input_shape"]),
+        "normalisation": manifest.get("normalisation"),
+        "class_names": manifest.get("class_names"),
+        "leaves": list(manifest.get("leaves") or []),
+        "source_weights_sha256": manifest["source"].get("weights_sha256"),
+        "source_weights_path": manifest["source"].get("weights_file"),
+        "random_init": bool(manifest["source"].get("random_init", False)),
+        "points": [dict(p) for p in manifest["points"]],
+        "tuning": manifest.get("tuning"),
+        "folder": str(folder),
+    }
+
+
+def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+    """Rebuild a model saved by :func:`save`: base from its spec, warps re-applied, weights loaded.
+
+    The weights file is refused if its sha256 differs from the one recorded at
+    save time. The model is returned in eval mode.
+
+    >>> model = splice.load("out/r18-affine")   # doctest: +SKIP
+    """
+    from .sources import check_finite
+    from .surgery import SplicePlan, _apply_plan
+    from .warps import WarpConfig
+
+    folder = Path(folder)
+    manifest = read_manifest(folder)
+    state = _read_checked_weights(folder, manifest)
+    check_finite(state, f"'{folder / manifest['weights']['file']}'")
+    model = _rebuild_base(manifest, trust_pickle=trust_pickle)
+    if manifest["points"]:
+        plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
+        model = _apply_plan(model, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()))
+    own = model.state_dict()
+    missing = sorted(set(own) - set(state))
+    unexpected = sorted(set(state) - set(own))
+    wrong = sorted(k for k in own if k in state and tuple(own[k].shape) != tuple(state[k].shape))
+    if missing or unexpected or wrong:
+        raise WeightsError(
+            f"'{folder}' weights do not fit the architecture in its manifest "
+            f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
+            "the folder was written by an incompatible version or edited by hand"
+        )
+    model.load_state_dict(state, strict=True)
+    _restore_info(model, manifest, folder)
+    model.eval()
+    return model
+
+
+def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+    """The base network of a folder: its architecture with the base part of the saved weights."""
+    from .surgery import WARP_PREFIX
+
+    folder = Path(folder)
+    manifest = read_manifest(folder)
+    state = _read_checked_weights(folder, manifest)
+    model = _rebuild_base(manifest, trust_pickle=trust_pickle)
+    base_state = {k: v for k, v in state.items() if not k.startswith(WARP_PREFIX + ".")}
+    model.load_state_dict(base_state, strict=True)
+    model.eval()
+    return model
+
+
+def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False):
+    """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
+    from .sources import Source
+
+    folder = Path(folder)
+    model = load(folder, trust_pickle=trust_pickle)
+    manifest = read_manifest(folder)
+    shape = tuple(input_shape) if input_shape is not None else tuple(manifest["input_shape"])
+    return Source(
+        model=model,
+        spec=manifest["source"]["spec"],
+        kwargs=dict(manifest["source"].get("kwargs") or {}),
+        input_shape=shape,  # type: ignore[arg-type]
+        weights_path=str(folder / manifest["weights"]["file"]),
+        weights_sha256=manifest["weights"].get("base_sha256"),
+        normalisation=manifest.get("normalisation"),
+        class_names=manifest.get("class_names"),
+        manifest=manifest,
+        random_init=bool(manifest["source"].get("random_init", False)),
+        leaves=tuple(manifest.get("leaves") or ()),
+    )
