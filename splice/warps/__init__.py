@@ -1,0 +1,38 @@
+"""Learned warps (spatial transformers): families, grid maths, localisation head, module.
+
+- :mod:`~splice.warps.families`: :class:`WarpConfig` and the theta -> matrix maths;
+- :mod:`~splice.warps.grids`: pure sampling-grid maths (base grid, matrices, TPS);
+- :mod:`~splice.warps.head`: the localisation head and its size formula;
+- :mod:`~splice.warps.module`: the :class:`Warp` module and :func:`warp_cost`.
+"""
+
+from __future__ import annotations
+
+from splice.warps.families import (
+    FAMILIES,
+    MATRIX_FAMILIES,
+    PADDINGS,
+    SAMPLERS,
+    WarpConfig,
+    WarpError,
+    attention_scale,
+    family_param_count,
+    identity_theta,
+    theta_to_matrix,
+)
+from splice.warps.module import Warp, warp_cost
+
+__all__ = [
+    "FAMILIES",
+    "MATRIX_FAMILIES",
+    "PADDINGS",
+    "SAMPLERS",
+    "Warp",
+    "WarpConfig",
+    "WarpError",
+    "attention_scale",
+    "family_param_count",
+    "identity_theta",
+    "theta_to_matrix",
+    "warp_cost",
+]

@@ -1,0 +1,147 @@
+"""Pure sampling-grid maths (no modules, no state).
+
+Coordinates are normalised with ``align_corners=False`` (the convention of
+``torch.nn.functional.grid_sample``): the image covers ``[-1, 1]`` from the
+outer edge of the first pixel to the outer edge of the last, so pixel ``u`` of
+``W`` has its centre at::
+
+    x_u = (2u + 1) / W - 1            and back:   u = ((x + 1) W - 1) / 2
+
+A grid is ``(N, H, W, 2)`` with ``grid[n, i, j] = (x, y)``: the INPUT location
+that OUTPUT pixel ``(i, j)`` reads from. The base grid lists the output pixel
+centres in homogeneous form ``(x, y, 1)``, row-major, shape ``(H*W, 3)``.
+
+Matrix warps: with a homogeneous ``M`` (``(N, 3, 3)``), every output point is
+``q = M p`` for ``p = (x, y, 1)``. Stacking the points as rows gives
+``Q = B M^T`` for the base grid ``B`` -- one batched matrix product. When the
+last row of ``M`` is ``[0, 0, 1]`` the third coordinate is exactly 1 and only
+``B M[:, :2]^T`` is needed. With ``M`` exactly the identity each coordinate is
+``x * 1 + y * 0 + 1 * 0``, which is ``x`` bit for bit, so the identity grid
+reproduces the pixel centres exactly and ``grid_sample`` returns its input.
+
+Thin-plate spline: the control points ``c_j`` (``K x K`` grid spanning
+``[-1, 1]^2``) move to ``c_j + d_j``. The map is ``f(p) = p + g(p)`` with the
+displacement ``g(p) = a_0 + a_1 x + a_2 y + sum_j w_j U(|p - c_j|)`` and the
+radial basis ``U(r) = r^2 log r^2`` (``U(0) = 0``). Interpolation ``g(c_j) = d_j``
+plus the side conditions ``sum_j w_j = 0``, ``sum_j w_j c_j = 0`` give the
+standard linear system::
+
+    [ K   P ] [ w ]   [ d ]        K_ij = U(|c_i - c_j|),  P_i = (1, x_i, y_i)
+    [ P^T 0 ] [ a ] = [ 0 ]
+
+so ``[w; a] = L^{-1}[:, :K^2] d``, and for the base grid
+``g(B) = [U(|b - c|) | B_1] [w; a]``, where ``B_1`` is the base grid reordered
+to ``(1, x, y)``. Because the affine part of ``f`` lives in the identity term
+``p``, zero offsets give zero coefficients and the grid is exactly ``B``.
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import Tensor
+
+__all__ = [
+    "DENOMINATOR_EPS",
+    "pixel_centres",
+    "base_grid",
+    "matrix_grid",
+    "safe_denominator",
+    "tps_control_points",
+    "tps_radial",
+    "tps_system_inverse",
+    "tps_kernel",
+    "tps_grid",
+]
+
+# Smallest magnitude allowed for the projective third coordinate. A point whose
+# denominator is this small lies about 1/eps half-widths away, i.e. far outside
+# the image, so it only samples padding; the guard keeps the grid finite.
+# Common practice, no source.
+DENOMINATOR_EPS = 1.0e-3
+
+
+def pixel_centres(n: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
+    """Normalised centres ``(2u + 1) / n - 1`` of ``n`` pixels, computed in float64 then rounded once."""
+    u = torch.arange(n, dtype=torch.float64)
+    return ((2.0 * u + 1.0) / n - 1.0).to(dtype=dtype, device=device)
+
+
+def base_grid(height: int, width: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
+    """Homogeneous pixel-centre coordinates ``(H*W, 3)`` as rows ``(x, y, 1)``, row-major."""
+    xs = pixel_centres(width)
+    ys = pixel_centres(height)
+    grid = torch.empty(height, width, 3, dtype=torch.float64)
+    grid[..., 0] = xs.view(1, width)
+    grid[..., 1] = ys.view(height, 1)
+    grid[..., 2] = 1.0
+    return grid.reshape(height * width, 3).to(dtype=dtype, device=device)
+
+
+def safe_denominator(d: Tensor, eps: float = DENOMINATOR_EPS) -> Tensor:
+    """Sign-preserving clamp ``|d| >= eps`` (0 counts as positive); exact for ``|d| >= eps``."""
+    return torch.where(d >= 0, d.clamp(min=eps), d.clamp(max=-eps))
+
+
+def matrix_grid(base: Tensor, matrix: Tensor, height: int, width: int, *, projective: bool) -> Tensor:
+    """Sampling grid ``(N, H, W, 2)`` of the homogeneous matrices ``(N, 3, 3)``.
+
+    ``projective=False`` assumes the last row is ``[0, 0, 1]`` (checked by the
+    caller's family) and skips the division.
+    """
+    n = matrix.shape[0]
+    if projective:
+        q = torch.matmul(base, matrix.transpose(1, 2))  # (N, HW, 3)
+        xy = q[..., :2] / safe_denominator(q[..., 2:3])
+    else:
+        xy = torch.matmul(base, matrix[:, :2, :].transpose(1, 2))  # (N, HW, 2)
+    return xy.reshape(n, height, width, 2)
+
+
+def tps_control_points(k: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
+    """``(K*K, 2)`` control points ``(x, y)`` on a KxK grid spanning ``[-1, 1]``, row-major (y outer)."""
+    t = torch.linspace(-1.0, 1.0, k, dtype=torch.float64)
+    ys, xs = torch.meshgrid(t, t, indexing="ij")
+    return torch.stack([xs.reshape(-1), ys.reshape(-1)], dim=1).to(dtype=dtype, device=device)
+
+
+def tps_radial(points: Tensor, control: Tensor) -> Tensor:
+    """``U(|p_i - c_j|) = r^2 log r^2`` for every pair, ``(len(points), len(control))``; ``U(0) = 0``."""
+    d2 = (points[:, None, :] - control[None, :, :]).pow(2).sum(-1)
+    safe = torch.where(d2 > 0, d2, torch.ones_like(d2))
+    return torch.where(d2 > 0, d2 * torch.log(safe), torch.zeros_like(d2))
+
+
+def tps_system_inverse(control: Tensor) -> Tensor:
+    """The columns of ``L^{-1}`` that multiply the offsets: ``(K^2 + 3, K^2)``, solved in float64."""
+    c = control.to(torch.float64)
+    m = c.shape[0]
+    p = torch.cat([torch.ones(m, 1, dtype=torch.float64), c], dim=1)  # (m, 3): (1, x, y)
+    top = torch.cat([tps_radial(c, c), p], dim=1)
+    bottom = torch.cat([p.t(), torch.zeros(3, 3, dtype=torch.float64)], dim=1)
+    system = torch.cat([top, bottom], dim=0)
+    rhs = torch.cat([torch.eye(m, dtype=torch.float64), torch.zeros(3, m, dtype=torch.float64)], dim=0)
+    return torch.linalg.solve(system, rhs).to(dtype=control.dtype, device=control.device)
+
+
+def tps_grid(
+    base: Tensor, kernel: Tensor, inverse: Tensor, offsets: Tensor, height: int, width: int
+) -> Tensor:
+    """TPS sampling grid ``(N, H, W, 2)``.
+
+    ``base`` is ``(H*W, 3)`` from :func:`base_grid`, ``kernel`` is
+    ``[U(|b - c|) | 1 | x | y]`` of shape ``(H*W, K^2 + 3)``, ``inverse`` comes
+    from :func:`tps_system_inverse` and ``offsets`` is ``(N, K^2, 2)``.
+    """
+    n = offsets.shape[0]
+    coeffs = torch.matmul(inverse, offsets)  # (N, K^2 + 3, 2): radial weights then (a0, a1, a2)
+    displacement = torch.matmul(kernel, coeffs)  # (N, HW, 2)
+    return (base[:, :2] + displacement).reshape(n, height, width, 2)
+
+
+def tps_kernel(base: Tensor, control: Tensor) -> Tensor:
+    """``[U(|b - c|) | 1 | x | y]`` for the base grid, ``(H*W, K^2 + 3)``, computed in float64."""
+    b = base.to(torch.float64)[:, :2]
+    c = control.to(torch.float64)
+    ones = torch.ones(b.shape[0], 1, dtype=torch.float64)
+    return torch.cat([tps_radial(b, c), ones, b], dim=1).to(dtype=base.dtype, device=base.device)
+

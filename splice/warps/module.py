@@ -1,0 +1,225 @@
+"""The :class:`Warp` module (a spatial transformer) and its cost model.
+
+``Warp`` = localisation head -> raw parameters ``theta`` -> sampling grid ->
+``grid_sample``. The maths lives in :mod:`splice.warps.families` and
+:mod:`splice.warps.grids`; this module only holds state (the head and the
+non-persistent grid buffers) and wires the pieces together.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import torch
+from torch import Tensor, nn
+from torch.nn import functional as F
+
+from splice.warps import grids
+from splice.warps.families import (
+    THETA_LIMIT,
+    WarpConfig,
+    WarpError,
+    identity_theta,
+    theta_to_matrix,
+)
+from splice.warps.head import LocalisationHead, head_macs, head_param_count
+
+__all__ = ["SAMPLER_TAPS", "Warp", "warp_cost"]
+
+# Input pixels read per output element and channel by grid_sample: one
+# multiply-accumulate per tap. Bilinear reads a 2x2 neighbourhood, bicubic 4x4.
+SAMPLER_TAPS = {"nearest": 1, "bilinear": 4, "bicubic": 16}
+
+
+def _check_shape(name: str, shape: Any) -> tuple[int, int, int]:
+    ok = (
+        isinstance(shape, (tuple, list))
+        and len(shape) == 3
+        and all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in shape)
+    )
+    if not ok:
+        raise WarpError(
+            f"{name}={shape!r} is not a (C, H, W) shape; give three positive integers "
+            "without the batch dimension, e.g. (3, 32, 32)."
+        )
+    return (int(shape[0]), int(shape[1]), int(shape[2]))
+
+
+def warp_cost(
+    config: WarpConfig,
+    shape: tuple[int, int, int],
+    loc_shape: tuple[int, int, int] | None = None,
+) -> tuple[int, int]:
+    """``(params, macs)`` of the :class:`Warp` that ``Warp(config, shape, loc_shape)`` builds.
+
+    ``params`` is exact (only the head has parameters; grid buffers are not
+    parameters). ``macs`` are multiply-accumulates for one sample::
+
+        head      see splice.warps.head.head_macs (pool, two 3x3 convs, 4x4 pool, two Linear)
+        grid      matrix families: 6 HW  (B M[:2]^T, 3 MACs per coordinate)
+                  projective:     11 HW  (B M^T, 9 MACs per point, plus 2 divisions)
+                  tps:             2 (K^2+3) K^2 + 2 HW (K^2+3)  (coefficients, then displacement)
+        sampler   taps * C * H * W  with taps = 1 nearest, 4 bilinear, 16 bicubic
+
+    Building the 3x3 matrix from theta is a handful of scalar ops and is not counted.
+    """
+    if not isinstance(config, WarpConfig):
+        raise WarpError(
+            f"warp_cost needs a WarpConfig, got {type(config).__name__}; "
+            "build one with WarpConfig(family=...)."
+        )
+    c, h, w = _check_shape("shape", shape)
+    loc = _check_shape("loc_shape", loc_shape) if loc_shape is not None else (c, h, w)
+    p = config.n_params
+    params = head_param_count(loc[0], config.head_width, p)
+    macs = head_macs(loc, config.head_width, p)
+    hw = h * w
+    if config.family == "tps":
+        m = config.tps_k * config.tps_k
+        macs += 2 * (m + 3) * m + 2 * hw * (m + 3)
+    elif config.family == "projective":
+        macs += 11 * hw
+    else:
+        macs += 6 * hw
+    macs += SAMPLER_TAPS[config.sampler] * c * hw
+    return params, macs
+
+
+class Warp(nn.Module):
+    """A learned warp of a ``(N, C, H, W)`` tensor that starts as the exact identity.
+
+    Args:
+        config: family, sampler, padding and head width.
+        shape: ``(C, H, W)`` of the tensor to warp; the base grid buffer is
+            built for this ``H x W`` (other sizes work, their grid is built on
+            the fly).
+        loc_shape: ``(C, H, W)`` of the tensor the head reads, when it is not
+            the warped tensor itself.
+
+    Attributes:
+        family, n_params: the family name and its number of raw parameters.
+        record: when True, ``forward`` stores the detached ``theta`` in ``last_theta``.
+    """
+
+    def __init__(
+        self,
+        config: WarpConfig,
+        shape: tuple[int, int, int],
+        loc_shape: tuple[int, int, int] | None = None,
+        *,
+        device=None,
+        dtype=None,
+    ) -> None:
+        super().__init__()
+        if not isinstance(config, WarpConfig):
+            raise WarpError(
+                f"Warp needs a WarpConfig, got {type(config).__name__}; "
+                "build one with WarpConfig(family=...)."
+            )
+        self.config = config
+        self.shape = _check_shape("shape", shape)
+        self.loc_shape = _check_shape("loc_shape", loc_shape) if loc_shape is not None else None
+        self.family = config.family
+        self.n_params = config.n_params
+        self.record = False
+        self.last_theta: Tensor | None = None
+        dtype = dtype or torch.get_default_dtype()
+        self.head = LocalisationHead(
+            self.loc_shape or self.shape,
+            config.head_width,
+            identity_theta(config.family, config.tps_k, dtype=torch.float64),
+            device=device,
+            dtype=dtype,
+        )
+        for name, value in self._grid_buffers(self.shape[1], self.shape[2], dtype, device).items():
+            self.register_buffer(name, value, persistent=False)
+
+    # -- buffers -----------------------------------------------------------------
+
+    def _grid_buffers(self, height: int, width: int, dtype, device) -> dict[str, Tensor]:
+        """Base grid (and TPS kernel / inverse), computed in float64 and rounded once."""
+        base = grids.base_grid(height, width)
+        out = {"base_grid": base.to(dtype=dtype, device=device)}
+        if self.family == "tps":
+            control = grids.tps_control_points(self.config.tps_k)
+            out["tps_kernel"] = grids.tps_kernel(base, control).to(dtype=dtype, device=device)
+            out["tps_inverse"] = grids.tps_system_inverse(control).to(dtype=dtype, device=device)
+        return out
+
+    def _apply(self, fn, recurse=True):  # torch hook behind .to(), .double(), .cuda() ...
+        super()._apply(fn, recurse)
+        # Casting the float32 buffers to float64 would keep float32 rounding and
+        # break the exact identity, so rebuild them from float64 instead.
+        ref = self.base_grid
+        for name, value in self._grid_buffers(self.shape[1], self.shape[2], ref.dtype, ref.device).items():
+            setattr(self, name, value)
+        return self
+
+    # -- the pieces --------------------------------------------------------------
+
+    def predict(self, loc: Tensor) -> Tensor:
+        """Raw head output ``theta``, shape ``(N, n_params)``."""
+        return self.head(loc)
+
+    def matrix(self, theta: Tensor) -> Tensor | None:
+        """``(N, 3, 3)`` homogeneous sampling matrix (output -> input); ``None`` for tps."""
+        if self.family == "tps":
+            return None
+        return theta_to_matrix(self.family, theta)
+
+    def grid(self, theta: Tensor, height: int, width: int) -> Tensor:
+        """``(N, H, W, 2)`` normalised sampling grid for ``theta`` (``align_corners=False``)."""
+        if theta.dim() != 2 or theta.shape[1] != self.n_params:
+            raise WarpError(
+                f"this {self.family!r} warp takes theta of shape (N, {self.n_params}), "
+                f"got {tuple(theta.shape)}; pass the output of predict()."
+            )
+        bufs: dict[str, Tensor]
+        if (height, width) == self.shape[1:] and self.base_grid.dtype == theta.dtype:
+            bufs = {"base_grid": self.base_grid}
+            if self.family == "tps":
+                bufs["tps_kernel"] = self.tps_kernel
+                bufs["tps_inverse"] = self.tps_inverse
+        else:  # another size (dynamic shapes) or dtype: build the grid on the fly
+            bufs = self._grid_buffers(height, width, theta.dtype, theta.device)
+        if self.family == "tps":
+            offsets = theta.clamp(-THETA_LIMIT, THETA_LIMIT).reshape(theta.shape[0], -1, 2)
+            return grids.tps_grid(
+                bufs["base_grid"], bufs["tps_kernel"], bufs["tps_inverse"], offsets, height, width
+            )
+        m = theta_to_matrix(self.family, theta)
+        return grids.matrix_grid(
+            bufs["base_grid"], m, height, width, projective=self.family == "projective"
+        )
+
+    def forward(self, x: Tensor, loc: Tensor | None = None) -> Tensor:
+        if x.dim() != 4:
+            raise WarpError(
+                f"Warp expects a (N, C, H, W) tensor, got shape {tuple(x.shape)}; "
+                "warps go on 4-d feature maps."
+            )
+        theta = self.predict(x if loc is None else loc)
+        if self.record:
+            self.last_theta = theta.detach()
+        grid = self.grid(theta, x.shape[-2], x.shape[-1])
+        return F.grid_sample(
+            x, grid, mode=self.config.sampler, padding_mode=self.config.padding, align_corners=False
+        )
+
+    # -- identity ----------------------------------------------------------------
+
+    def reset_parameters(self) -> None:
+        """Re-initialise the head; the warp is the exact identity again."""
+        self.head.reset_parameters()
+
+    def identity_distance(self) -> float:
+        """L2 distance of the head's final layer (weight, bias) from the identity init."""
+        return self.head.identity_distance()
+
+    def extra_repr(self) -> str:
+        c = self.config
+        loc = f", loc_shape={self.loc_shape}" if self.loc_shape else ""
+        return (
+            f"family={c.family!r}, sampler={c.sampler!r}, padding={c.padding!r}, "
+            f"shape={self.shape}{loc}, n_params={self.n_params}"
+        )
