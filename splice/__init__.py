@@ -26,7 +26,7 @@ _EXPORTS = {
     "load_source": "sources",
     "Source": "sources",
     "points": "api",
-    "insert": "api",
+    "insert": "surgery",
     "save": "store",
     "load": "store",
     "trace": "graph",

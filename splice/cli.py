@@ -1,0 +1,351 @@
+"""The ``splice`` command: a thin layer over the Python API.
+
+Each sub-command parses its options, calls one library function, and renders
+the result. Library errors (:class:`~splice.errors.SpliceError`) become one line
+on stderr with exit code 2; a failed check exits 1; ``--debug`` shows the
+traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import warnings
+from collections.abc import Sequence
+
+__all__ = ["main", "build_parser"]
+
+EXIT_OK, EXIT_CHECK_FAILED, EXIT_USAGE = 0, 1, 2
+
+
+# ----------------------------------------------------------------------------- consoles
+
+
+def _console(stderr: bool = False):
+    from rich.console import Console
+
+    return Console(stderr=stderr, no_color=bool(os.environ.get("NO_COLOR")) or None, highlight=False,
+                   soft_wrap=not stderr)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+    text = str(message).replace("\n", " ")
+    try:
+        _console(stderr=True).print(f"[bold yellow]warning:[/] {text}", markup=True, highlight=False)
+    except Exception:  # pragma: no cover - never let a warning crash the command
+        print(f"warning: {text}", file=sys.stderr)
+
+
+# ----------------------------------------------------------------------------- option groups
+
+
+def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True) -> None:
+    p.add_argument("model", metavar="MODEL",
+                   help="torchvision:NAME, package.module:factory, path/file.py:factory, or a splice folder")
+    p.add_argument("--weights", metavar="FILE", help=".pt/.pth state dict or .safetensors file")
+    p.add_argument("--kwargs", metavar="JSON", help="builder arguments as a JSON object, e.g. '{\"num_classes\": 10}'")
+    if shape:
+        p.add_argument("--input-shape", metavar="CxHxW", help="input shape without the batch, e.g. 3x224x224")
+    p.add_argument("--leaf", action="append", default=[], metavar="TYPE",
+                   help="module class (name or dotted path) to keep opaque when tracing; repeatable")
+    p.add_argument("--allow-partial", action="store_true", help="load only the weights that fit; report the rest")
+    p.add_argument("--trust-pickle", action="store_true",
+                   help="allow unpickling whole-module checkpoints (can run arbitrary code: only for files you trust)")
+
+
+def _source(args):
+    from .sources import load_source
+
+    return load_source(
+        args.model,
+        weights=args.weights,
+        kwargs=args.kwargs,
+        input_shape=getattr(args, "input_shape", None),
+        allow_partial=args.allow_partial,
+        trust_pickle=args.trust_pickle,
+        leaves=tuple(args.leaf),
+    )
+
+
+def _leaves(args, src) -> tuple[str, ...]:
+    return tuple(args.leaf) or tuple(src.leaves)
+
+
+# ----------------------------------------------------------------------------- commands
+
+
+def _cmd_points(args) -> int:
+    from . import graph
+
+    src = _source(args)
+    pts = graph.points(src.model, src.input_shape, all=args.all, leaves=_leaves(args, src))
+    report = graph.points_report(args.model, src.input_shape, pts)
+    if args.json:
+        print(json.dumps(report, indent=2))
+        return EXIT_OK
+    from rich.table import Table
+
+    table = Table(title=f"insertion points of {args.model} (input {'x'.join(map(str, src.input_shape))})")
+    for col, just in (("name", "left"), ("module", "left"), ("shape", "right"), ("stride", "right"),
+                      ("cut", "center"), ("in branch (join)", "left"), ("+params", "right"),
+                      ("+MACs", "right"), ("recommended", "center")):
+        table.add_column(col, justify=just)  # type: ignore[arg-type]
+    for p in pts:
+        stride = p.stride if isinstance(p.stride, int) else "x".join(map(str, p.stride))
+        table.add_row(
+            p.name, p.module or "-", "x".join(map(str, p.shape)), str(stride),
+            "yes" if p.cut else "no", (f"yes ({p.join})" if p.in_branch else "no"),
+            f"{p.warp_params:,}", f"{p.warp_macs:,}", "*" if p.recommended else "",
+        )
+    out = _console()
+    out.print(table)
+    out.print(f"{len(pts)} points; '*' = recommended. Splice with: splice insert {args.model} --at NAME --out DIR")
+    return EXIT_OK
+
+
+def _cmd_insert(args) -> int:
+    from .store import save
+    from .surgery import insert
+
+    src = _source(args)
+    spliced = insert(
+        src, at=args.at, warp=args.warp, loc_from=args.loc_from, sampler=args.sampler, padding=args.padding,
+        head_width=args.head_width, tps_k=args.tps_k, leaves=_leaves(args, src), force=args.force,
+    )
+    folder = save(spliced, args.out, overwrite=args.overwrite)
+    check = spliced.splice_info.get("check", {})
+    out = _console()
+    for p in spliced.splice_info["points"]:
+        out.print(f"spliced {p['warp']['family']} warp at {p['name']} ({'x'.join(map(str, p['shape']))})")
+    if check:
+        out.print(f"identity check: {'passed' if check['passed'] else 'FAILED (kept with --force)'} — {check['detail']}")
+    out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}")
+    return EXIT_OK
+
+
+def _cmd_verify(args) -> int:
+    from .verify import render_verify, verify, write_report
+
+    report = verify(args.folder, images=args.images, batch=args.batch, dtype=args.dtype, onnx=args.onnx,
+                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle)
+    if args.report:
+        write_report(report, args.report)
+    if args.json:
+        print(json.dumps(report.to_json(), indent=2))
+    else:
+        render_verify(report, _console())
+    return EXIT_OK if report.passed else EXIT_CHECK_FAILED
+
+
+def _cmd_export(args) -> int:
+    from .export import export
+
+    if not args.onnx and not args.pt2:
+        from .errors import SpliceError
+
+        raise SpliceError("export needs a target: --onnx FILE and/or --pt2 FILE")
+    result = export(args.folder, onnx=args.onnx, pt2=args.pt2, opset=args.opset,
+                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle)
+    out = _console()
+    for item in result["exports"]:
+        out.print(f"wrote {item['path']} ({item['format']}): parity max error {item['max_abs']:.3g} "
+                  f"at identity, {item['max_abs_perturbed']:.3g} with a perturbed warp — passed")
+    return EXIT_OK
+
+
+def _cmd_tune(args) -> int:
+    from .tune import tune
+
+    summary = tune(
+        args.model, recipe=args.recipe, data=args.data, out=args.out, resume=args.resume,
+        epochs=args.epochs, lr=args.lr, batch_size=args.batch_size, seed=args.seed, device=args.device,
+        quiet=args.quiet, weights=args.weights, kwargs=args.kwargs, input_shape=args.input_shape,
+        allow_partial=args.allow_partial, trust_pickle=args.trust_pickle, leaves=tuple(args.leaf),
+        workers=args.workers,
+    )
+    if summary and not args.quiet and summary.get("rank", 0) == 0:
+        out = _console()
+        out.print(f"best val accuracy {summary['best_accuracy']:.4f} at epoch {summary['best_epoch']}; "
+                  f"run folder {summary['out']}")
+    return EXIT_OK
+
+
+def _cmd_inspect(args) -> int:
+    from .inspection import inspect, render_inspect
+
+    result = inspect(args.folder, data=args.data, n=args.n, split=args.split, out=args.out,
+                     trust_pickle=args.trust_pickle)
+    render_inspect(result, _console())
+    return EXIT_OK
+
+
+def _cmd_eval(args) -> int:
+    from .evaluate import evaluate, render_eval
+
+    result = evaluate(args.model, data=args.data, split=args.split, against=args.against, distort=args.distort,
+                      batch_size=args.batch_size, plot=args.plot, weights=args.weights, kwargs=args.kwargs,
+                      input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device)
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        render_eval(result, _console())
+    return EXIT_OK
+
+
+def _cmd_demo(args) -> int:
+    from .demo import demo
+
+    demo(out=args.out, fast=args.fast, quiet=args.quiet)
+    return EXIT_OK
+
+
+# ----------------------------------------------------------------------------- parser
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="splice",
+        description="Insert learned warp modules (spatial transformers) into trained CNNs, "
+                    "prove identity equivalence, and fine-tune them.",
+    )
+    parser.add_argument("--version", action="version", version=f"splice {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser("points", help="list where a warp can go")
+    _add_model_options(p)
+    p.add_argument("--all", action="store_true", help="list every 4-D activation, not just those between convs")
+    p.add_argument("--json", action="store_true", help="print the listing as JSON (schema in the README)")
+    p.set_defaults(func=_cmd_points)
+
+    p = sub.add_parser("insert", help="splice identity-initialised warps into a model and save it")
+    _add_model_options(p)
+    p.add_argument("--at", action="append", required=True, metavar="POINT",
+                   help="point name from 'splice points', or 'recommended'; repeatable")
+    p.add_argument("--warp", default="affine", metavar="FAMILY",
+                   help="translation, attention, similarity, affine (default), projective or tps")
+    p.add_argument("--loc-from", metavar="NAME", help="point the localisation head reads (default: the warped tensor)")
+    p.add_argument("--sampler", choices=("bilinear", "nearest", "bicubic"), help="interpolation (default bilinear)")
+    p.add_argument("--padding", choices=("zeros", "border", "reflection"), help="outside-the-image values (default zeros)")
+    p.add_argument("--head-width", type=int, metavar="N", help="localisation head width (default 16)")
+    p.add_argument("--tps-k", type=int, metavar="K", help="thin-plate spline control grid size KxK (default 4)")
+    p.add_argument("--out", required=True, metavar="DIR", help="folder to write")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing DIR")
+    p.add_argument("--force", action="store_true", help="write even if the identity check fails")
+    p.set_defaults(func=_cmd_insert)
+
+    p = sub.add_parser("verify", help="prove a spliced folder equals its base at the identity")
+    p.add_argument("folder", metavar="DIR")
+    p.add_argument("--images", metavar="FOLDER", help="also probe with the images in FOLDER")
+    p.add_argument("--batch", type=int, default=4, metavar="N", help="probe batch size (default 4)")
+    p.add_argument("--dtype", choices=("float32", "float64"), default="float32")
+    p.add_argument("--onnx", action="store_true", help="also export to ONNX and check onnxruntime parity")
+    p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the probe batch (default 0)")
+    p.add_argument("--json", action="store_true", help="print the certificate as JSON")
+    p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
+    p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    p.set_defaults(func=_cmd_verify)
+
+    p = sub.add_parser("export", help="export a spliced folder and check the copy's parity")
+    p.add_argument("folder", metavar="DIR")
+    p.add_argument("--onnx", metavar="FILE", help="write an ONNX file")
+    p.add_argument("--pt2", metavar="FILE", help="write a torch.export program (.pt2)")
+    p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
+    p.add_argument("--dynamic-batch", action="store_true", help="leave the batch dimension free")
+    p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    p.set_defaults(func=_cmd_export)
+
+    p = sub.add_parser("tune", help="fine-tune with a shipped recipe (torchrun for several processes)")
+    _add_model_options(p)
+    p.add_argument("--recipe", required=True, metavar="NAME|FILE",
+                   help="baseline, warp-only, joint, staged, or a path to a .toml recipe")
+    p.add_argument("--data", default="digits", metavar="NAME|DIR", help="digits, digits-moved, or an ImageFolder tree")
+    p.add_argument("--out", metavar="RUN", help="run folder to write")
+    p.add_argument("--resume", metavar="RUN", help="continue the run in RUN from its last checkpoint")
+    p.add_argument("--epochs", type=int, help="override the recipe's epochs")
+    p.add_argument("--lr", type=float, help="override the recipe's learning rate")
+    p.add_argument("--batch-size", type=int, help="override the recipe's batch size")
+    p.add_argument("--seed", type=int, help="override the recipe's seed")
+    p.add_argument("--device", help="cuda, mps or cpu (default: the best available)")
+    p.add_argument("--workers", type=int, default=0, help="data-loading worker processes (default 0)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.set_defaults(func=_cmd_tune)
+
+    p = sub.add_parser("inspect", help="show what the warps learned")
+    p.add_argument("folder", metavar="DIR")
+    p.add_argument("--data", required=True, metavar="NAME|DIR")
+    p.add_argument("--n", type=int, default=64, help="number of images (default 64)")
+    p.add_argument("--split", default="test")
+    p.add_argument("--out", required=True, metavar="REPORT_DIR")
+    p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    p.set_defaults(func=_cmd_inspect)
+
+    p = sub.add_parser("eval", help="accuracy on clean data and under distortion sweeps")
+    _add_model_options(p)
+    p.add_argument("--data", required=True, metavar="NAME|DIR")
+    p.add_argument("--split", default="test")
+    p.add_argument("--against", metavar="MODEL2", help="a second model (source or folder) to compare with")
+    p.add_argument("--distort", metavar="SPEC",
+                   help="sweeps, e.g. 'rotate=0,15,30;scale=0.8,1.2;shift=0.1;perspective=0.2' (default: a standard sweep)")
+    p.add_argument("--batch-size", type=int, default=128)
+    p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
+    p.add_argument("--device", help="cuda, mps or cpu")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=_cmd_eval)
+
+    p = sub.add_parser("demo", help="run the whole job on the embedded tray-camera digits")
+    p.add_argument("--out", default="splice-demo", metavar="DIR")
+    p.add_argument("--fast", action="store_true", help="a shorter run (about a minute)")
+    p.add_argument("--quiet", action="store_true")
+    p.set_defaults(func=_cmd_demo)
+    for sp in sub.choices.values():  # `splice CMD ... --debug` works as well as `splice --debug CMD`
+        sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show full tracebacks")
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    from .errors import CheckFailed, SpliceError, SpliceWarning
+
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    warnings.showwarning = _show_warning
+    if not args.debug:
+        warnings.filterwarnings("ignore")
+        warnings.filterwarnings("default", category=SpliceWarning)
+    try:
+        return int(args.func(args) or 0)
+    except CheckFailed as exc:
+        if args.debug:
+            raise
+        print(f"splice {args.command}: check failed: {exc}", file=sys.stderr)
+        return EXIT_CHECK_FAILED
+    except SpliceError as exc:
+        if args.debug:
+            raise
+        print(f"splice {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print(f"splice {args.command}: interrupted", file=sys.stderr)
+        return 130
+    except (OSError, ValueError) as exc:
+        if args.debug:
+            raise
+        print(f"splice {args.command}: error: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except Exception as exc:  # a bug: still one line, but say so
+        if args.debug:
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        print(f"splice {args.command}: internal error: {type(exc).__name__}: {first} "
+              "(rerun with --debug for the traceback and please report it)", file=sys.stderr)
+        return EXIT_USAGE
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())
