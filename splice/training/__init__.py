@@ -1,0 +1,1 @@
+"""Internals of ``splice tune``: the loop, checkpoints, distributed set-up, warp pre-training."""
