@@ -24,11 +24,41 @@ from splice.warps.families import (
 )
 from splice.warps.head import LocalisationHead, head_macs, head_param_count
 
-__all__ = ["SAMPLER_TAPS", "Warp", "warp_cost"]
+__all__ = ["SAMPLER_TAPS", "Warp", "needs_rounding_correction", "warp_cost"]
 
 # Input pixels read per output element and channel by grid_sample: one
 # multiply-accumulate per tap. Bilinear reads a 2x2 neighbourhood, bicubic 4x4.
 SAMPLER_TAPS = {"nearest": 1, "bilinear": 4, "bicubic": 16}
+
+
+def _is_pow2(n: int) -> bool:
+    return n > 0 and n & (n - 1) == 0
+
+
+def needs_rounding_correction(sampler: str, height: int, width: int) -> bool:
+    """Whether :class:`Warp` adds the identity rounding correction (see below).
+
+    ``grid_sample`` turns a normalised ``x`` into a pixel position with
+    ``u = (x + 1) W / 2 - 0.5`` (CPU; CUDA uses ``((x + 1) W - 1) / 2``). The
+    pixel centre ``x_i = (2i + 1) / W - 1`` is a dyadic rational -- exactly
+    representable, with every step of that formula exact -- only when ``W``
+    is a power of two. Otherwise ``u`` misses ``i`` by up to one ulp of ``u``
+    (about ``W * 2^-24`` in float32, measured up to 6e-5 relative at
+    ``W = 1000``), and bilinear/bicubic weights leak that much of the
+    neighbours into an identity warp. Nearest rounds ``u`` to ``i`` regardless.
+
+    The fix is a residual form of the same warp::
+
+        y = x + (S(x, G) - S(x, B))        S = grid_sample, B = base grid
+
+    Mathematically ``S(x, B) = x`` so ``y = S(x, G)``; numerically, at the
+    identity ``G == B`` bit for bit, the bracket is exactly 0 and ``y == x``
+    exactly. Away from the identity ``y`` differs from ``S(x, G)`` by the
+    sampler's own rounding error at the base grid. It costs one extra sampling
+    pass, so it is skipped when it cannot matter (nearest, or both sides
+    powers of two).
+    """
+    return sampler != "nearest" and not (_is_pow2(height) and _is_pow2(width))
 
 
 def _check_shape(name: str, shape: Any) -> tuple[int, int, int]:
@@ -59,7 +89,9 @@ def warp_cost(
         grid      matrix families: 6 HW  (B M[:2]^T, 3 MACs per coordinate)
                   projective:     11 HW  (B M^T, 9 MACs per point, plus 2 divisions)
                   tps:             2 (K^2+3) K^2 + 2 HW (K^2+3)  (coefficients, then displacement)
-        sampler   taps * C * H * W  with taps = 1 nearest, 4 bilinear, 16 bicubic
+        sampler   taps * C * H * W  with taps = 1 nearest, 4 bilinear, 16 bicubic,
+                  twice that plus C H W when the identity rounding correction runs
+                  (see needs_rounding_correction)
 
     Building the 3x3 matrix from theta is a handful of scalar ops and is not counted.
     """
@@ -82,6 +114,8 @@ def warp_cost(
     else:
         macs += 6 * hw
     macs += SAMPLER_TAPS[config.sampler] * c * hw
+    if needs_rounding_correction(config.sampler, h, w):
+        macs += SAMPLER_TAPS[config.sampler] * c * hw + c * hw
     return params, macs
 
 
@@ -201,10 +235,25 @@ class Warp(nn.Module):
         theta = self.predict(x if loc is None else loc)
         if self.record:
             self.last_theta = theta.detach()
-        grid = self.grid(theta, x.shape[-2], x.shape[-1])
+        h, w = x.shape[-2], x.shape[-1]
+        out = self._sample(x, self.grid(theta, h, w))
+        if needs_rounding_correction(self.config.sampler, h, w):
+            out = x + (out - self._sample(x, self._identity_grid(x)))
+        return out
+
+    def _sample(self, x: Tensor, grid: Tensor) -> Tensor:
         return F.grid_sample(
             x, grid, mode=self.config.sampler, padding_mode=self.config.padding, align_corners=False
         )
+
+    def _identity_grid(self, x: Tensor) -> Tensor:
+        """The base grid as ``(N, H, W, 2)`` for ``x`` (bit-identical to the identity warp's grid)."""
+        n, _, h, w = x.shape
+        if (h, w) == self.shape[1:] and self.base_grid.dtype == x.dtype:
+            base = self.base_grid
+        else:
+            base = grids.base_grid(h, w, dtype=x.dtype, device=x.device)
+        return base[:, :2].reshape(1, h, w, 2).expand(n, h, w, 2)
 
     # -- identity ----------------------------------------------------------------
 
