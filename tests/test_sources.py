@@ -1,0 +1,223 @@
+"""Model sources: spec strings, safe weight loading and their errors (library and CLI)."""
+
+from __future__ import annotations
+
+import os
+import pickle
+import subprocess
+import sys
+import textwrap
+
+import pytest
+import torch
+from torch import nn
+
+from splice._io import state_dict_sha256
+from splice.cli import main
+from splice.errors import RandomWeightsWarning, SourceError, UnsafeCheckpointError, WeightsError
+from splice.sources import load_source, parse_input_shape, read_weights
+
+
+def _small_state():
+    from splice.models import tray_net
+
+    return tray_net().state_dict()
+
+
+def test_torchvision_builds_without_download_and_warns():
+    with pytest.warns(RandomWeightsWarning, match="random weights"):
+        src = load_source("torchvision:resnet18", kwargs={"num_classes": 10})
+    assert src.input_shape == (3, 224, 224)
+    assert src.model.fc.out_features == 10
+    assert src.random_init and src.normalisation["mean"][0] == pytest.approx(0.485)
+
+
+def test_unknown_torchvision_name_suggests():
+    with pytest.raises(SourceError, match=r"unknown torchvision model 'resnet81'.*did you mean 'resnet18'"):
+        load_source("torchvision:resnet81")
+
+
+def test_factory_from_module_declares_shape():
+    src = load_source("splice.models:tray_net")
+    assert src.input_shape == (1, 48, 48)
+
+
+def test_factory_from_file(tmp_path):
+    f = tmp_path / "mynet.py"
+    f.write_text(textwrap.dedent("""
+        import torch.nn as nn
+        def build(width=4):
+            return nn.Sequential(nn.Conv2d(3, width, 3, padding=1), nn.ReLU(), nn.Conv2d(width, 2, 3, padding=1))
+        build.input_shape = (3, 16, 16)
+    """))
+    src = load_source(f"{f}:build", kwargs='{"width": 6}')
+    assert src.input_shape == (3, 16, 16)
+    assert src.model[0].out_channels == 6
+    with pytest.raises(SourceError, match="has no callable 'biuld'.*did you mean 'build'"):
+        load_source(f"{f}:biuld")
+    with pytest.raises(SourceError, match="does not exist"):
+        load_source(f"{tmp_path / 'nope.py'}:build")
+
+
+@pytest.mark.parametrize("wrap", ["plain", "state_dict", "model", "module_prefix", "orig_mod_prefix", "nested_prefix"])
+def test_nested_and_prefixed_state_dicts(tmp_path, wrap):
+    state = _small_state()
+    payload = {
+        "plain": state,
+        "state_dict": {"state_dict": state, "epoch": 3},
+        "model": {"model": state, "optimizer": {}},
+        "module_prefix": {f"module.{k}": v for k, v in state.items()},
+        "orig_mod_prefix": {f"_orig_mod.{k}": v for k, v in state.items()},
+        "nested_prefix": {"state_dict": {f"model.module.{k}": v for k, v in state.items()}},
+    }[wrap]
+    path = tmp_path / "w.pth"
+    torch.save(payload, path)
+    src = load_source("splice.models:tray_net", weights=path)
+    assert src.weights_sha256 == state_dict_sha256(state)
+
+
+def test_safetensors_weights(tmp_path):
+    from safetensors.torch import save_file
+
+    state = _small_state()
+    path = tmp_path / "w.safetensors"
+    save_file({k: v.contiguous() for k, v in state.items()}, str(path))
+    assert load_source("splice.models:tray_net", weights=path).weights_sha256 == state_dict_sha256(state)
+
+
+def test_missing_unexpected_and_mismatched_keys_are_named(tmp_path):
+    state = _small_state()
+    name = next(k for k in state if k.endswith("weight") and state[k].ndim == 4)
+    bad = dict(state)
+    bad.pop(name)
+    bad["extra.weight"] = torch.zeros(1)
+    path = tmp_path / "w.pt"
+    torch.save(bad, path)
+    with pytest.raises(WeightsError, match=rf"missing 1: {name}.*unexpected 1: extra.weight.*--allow-partial"):
+        load_source("splice.models:tray_net", weights=path)
+    with pytest.warns(UserWarning, match="partial load"):
+        load_source("splice.models:tray_net", weights=path, allow_partial=True)
+    wrong = dict(state)
+    wrong[name] = torch.zeros(1, 1, 1, 1)
+    torch.save(wrong, path)
+    with pytest.raises(WeightsError, match=rf"wrong shape 1: {name}"):
+        load_source("splice.models:tray_net", weights=path)
+
+
+def test_weights_for_another_architecture(tmp_path):
+    import torchvision
+
+    path = tmp_path / "vgg.pt"
+    torch.save(torchvision.models.vgg11().state_dict(), path)
+    with pytest.raises(WeightsError, match="another architecture"):
+        load_source("torchvision:resnet18", weights=path)
+
+
+@pytest.mark.parametrize("case", ["missing", "empty", "truncated", "not_a_checkpoint", "truncated_safetensors"])
+def test_broken_files(tmp_path, case):
+    path = tmp_path / ("w.safetensors" if "safetensors" in case else "w.pt")
+    if case == "empty":
+        path.write_bytes(b"")
+    elif case == "truncated":
+        torch.save(_small_state(), path)
+        path.write_bytes(path.read_bytes()[:500])
+    elif case == "not_a_checkpoint":
+        path.write_text("hello, I am a text file\n")
+    elif case == "truncated_safetensors":
+        from safetensors.torch import save_file
+
+        save_file({k: v.contiguous() for k, v in _small_state().items()}, str(path))
+        path.write_bytes(path.read_bytes()[:300])
+    pattern = {"missing": "does not exist", "empty": "empty", "truncated": "truncated",
+               "not_a_checkpoint": "not a readable", "truncated_safetensors": "not a readable safetensors"}[case]
+    with pytest.raises(WeightsError, match=pattern):
+        read_weights(path)
+
+
+class _Payload:
+    """Unpickling this object would create a marker file (the classic pickle exploit)."""
+
+    def __init__(self, marker):
+        self.marker = marker
+
+    def __reduce__(self):
+        return (os.system, (f"touch {self.marker}",))
+
+
+def test_pickle_payload_never_runs_without_trust(tmp_path):
+    marker = tmp_path / "pwned"
+    path = tmp_path / "evil.pt"
+    with open(path, "wb") as fh:
+        pickle.dump({"state_dict": _Payload(marker)}, fh)
+    with pytest.raises(UnsafeCheckpointError, match="--trust-pickle"):
+        load_source("splice.models:tray_net", weights=path)
+    with pytest.raises(UnsafeCheckpointError, match="arbitrary code"):
+        load_source(str(path), input_shape="1x48x48")
+    assert not marker.exists()
+
+
+def test_whole_module_pickle_needs_trust(tmp_path):
+    from splice.models import tray_net
+
+    path = tmp_path / "whole.pt"
+    torch.save(tray_net(), path)
+    with pytest.raises(UnsafeCheckpointError, match="pickled Python objects"):
+        load_source(str(path), input_shape="1x48x48")
+    src = load_source(str(path), input_shape="1x48x48", trust_pickle=True)
+    assert isinstance(src.model, nn.Module)
+
+
+@pytest.mark.parametrize("text", ["3x224", "axbxc", "0x10x10", "3x-1x4", ""])
+def test_malformed_input_shape(text):
+    with pytest.raises(SourceError, match="malformed input shape"):
+        parse_input_shape(text)
+
+
+def test_nan_weights_named(tmp_path):
+    state = _small_state()
+    name = next(k for k in state if k.endswith("weight"))
+    state[name] = state[name].clone().fill_(float("nan"))
+    path = tmp_path / "nan.pt"
+    torch.save(state, path)
+    with pytest.raises(WeightsError, match=rf"NaN or Inf.*{name}"):
+        load_source("splice.models:tray_net", weights=path)
+
+
+@pytest.mark.parametrize(
+    "argv, needle",
+    [
+        (["points", "torchvision:resnet81"], "did you mean"),
+        (["points", "splice.models:tray_net", "--weights", "/nonexistent/w.pt"], "does not exist"),
+        (["points", "torchvision:resnet18", "--input-shape", "3x224"], "malformed input shape"),
+        (["points", "nonsense"], "cannot read model spec"),
+    ],
+)
+def test_cli_errors_are_one_line_exit_2(argv, needle, capsys):
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip()
+    assert needle in err
+    assert len(err.splitlines()) == 1 and "Traceback" not in err
+
+
+def test_cli_truncated_checkpoint_and_debug(tmp_path, capsys):
+    path = tmp_path / "w.pt"
+    torch.save(_small_state(), path)
+    path.write_bytes(path.read_bytes()[:400])
+    assert main(["points", "splice.models:tray_net", "--weights", str(path)]) == 2
+    assert "truncated" in capsys.readouterr().err
+    with pytest.raises(WeightsError):
+        main(["points", "splice.models:tray_net", "--weights", str(path), "--debug"])
+
+
+def test_python_dash_m_entry_point():
+    out = subprocess.run([sys.executable, "-m", "splice", "--version"], capture_output=True, text=True, check=True)
+    assert out.stdout.startswith("splice ")
+
+
+def test_import_is_cheap():
+    code = ("import sys, splice, splice.sources, splice.surgery, splice.store; "
+            "import torch; "
+            "bad = [m for m in ('onnx', 'onnxruntime', 'matplotlib', 'sklearn', 'scipy') if m in sys.modules]; "
+            "assert not bad, bad; assert not torch.cuda.is_initialized(); print('ok')")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
