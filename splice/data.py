@@ -191,7 +191,7 @@ def open_data(spec: str, split: str = "train", *, input_shape: Sequence[int] | N
     """
     if split not in SPLITS:
         raise DataError(f"unknown split {split!r}{_hint(str(split), SPLITS)} one of {', '.join(SPLITS)}.")
-    shape = None if input_shape is None else _check_shape(input_shape)
+    shape = None if input_shape is None else _check_shape(input_shape, 8 if spec in DATASETS else 1)
     if spec in DATASETS:
         return _open_digits(spec, split, shape or DIGITS_SHAPE, seed)
     path = Path(os.fspath(spec)).expanduser()
@@ -219,15 +219,15 @@ def _hint(word: str, choices: Sequence[str]) -> str:
     return f"{close} Use" if close else "; use"
 
 
-def _check_shape(input_shape) -> tuple[int, int, int]:
+def _check_shape(input_shape, min_size: int = 1) -> tuple[int, int, int]:
     try:
         shape = tuple(int(v) for v in input_shape)
         exact = all(float(v) == int(v) for v in input_shape)
     except (TypeError, ValueError):
         shape, exact = (), False
-    if len(shape) != 3 or not exact or shape[0] not in (1, 3) or min(shape[1:]) < 8:
+    if len(shape) != 3 or not exact or shape[0] not in (1, 3) or min(shape[1:]) < min_size:
         raise DataError(
-            f"input_shape must be (C, H, W) with C = 1 or 3 and H, W >= 8; got {input_shape!r}. "
+            f"input_shape must be (C, H, W) with C = 1 or 3 and H, W >= {min_size}; got {input_shape!r}. "
             "Use the model's input shape, e.g. (1, 48, 48)."
         )
     return shape
