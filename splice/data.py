@@ -85,7 +85,7 @@ _FOLDER_LAYOUT = "DIR/train/<class>/*, DIR/val/<class>/*, optionally DIR/test/<c
 # ---------------------------------------------------------------------------
 
 
-@dataclass
+@dataclass(eq=False)  # comparing tensors with == has no single truth value
 class ImageSet(Dataset):
     """A whole split held in memory; also a map-style ``Dataset`` of ``(image, label)``.
 

@@ -282,7 +282,8 @@ def _sample(images: Tensor, inverse: Tensor, fill, mode: str) -> Tensor:
     dtype, device = images.dtype, images.device
     # Build the grid in float64 and cast once, so float32 images get the most
     # accurate grid float32 can hold.
-    base = _base_grid(h, w, torch.float64, inverse.device)  # (HW, 3)
+    inverse = inverse.to(device)
+    base = _base_grid(h, w, torch.float64, device)  # (HW, 3)
     src = base @ inverse.transpose(-1, -2)  # (N, HW, 3)
     grid = (src[..., :2] / src[..., 2:]).reshape(n, h, w, 2).to(device=device, dtype=dtype)
 
@@ -329,7 +330,7 @@ def apply_homography(images: Tensor, matrix: Tensor, *, fill=0.0, mode: str = "b
     """
     _check_images(images)
     _check_mode(mode)
-    m = torch.as_tensor(matrix).to(torch.float64)
+    m = torch.as_tensor(matrix).to("cpu", torch.float64)  # tiny; the grid is built where the images are
     if m.shape[-2:] == (2, 3):
         m = _to_3x3(m)
     if m.shape[-2:] != (3, 3) or m.dim() not in (2, 3):
@@ -382,7 +383,7 @@ def apply_perspective(images: Tensor, startpoints, endpoints, *, fill=0.0, mode:
     end = _as_points(endpoints, "endpoints")
     t, t_inv = _pixel_to_normalised((h, w))
     # Solve directly in the sampling direction (end -> start), as torchvision does.
-    inverse = t_inv @ _homography(end, start) @ t
+    inverse = t_inv @ _homography(end.cpu(), start.cpu()) @ t
     inverse = _batched(inverse, n)
     if n == 0:
         return images.clone()
