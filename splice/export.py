@@ -1,0 +1,511 @@
+"""Exports of a spliced model (ONNX, torch.export) with a parity check.
+
+Every export is compared with the eager model twice before anything is kept:
+
+1. *as stored* -- the exported program against torch on a seeded N(0,1) batch;
+2. *perturbed* -- every warp set to one fixed, non-identity warp (see
+   :func:`perturbation_theta`) on a copy of the model, and the same exported
+   graph run with the matching weights. Identity parity alone cannot show a
+   sampler bug: at the identity a broken ``grid_sample`` lowering that ignores
+   the grid still returns its input.
+
+For the perturbed check the exported graph is reused: the warp heads' final
+layer tensors are swapped in the ONNX initializers (or in the reloaded
+torch.export program), so the graph that ships is the graph that was checked,
+and the export runs once. When an exporter renamed those tensors the perturbed
+copy is exported again instead.
+
+Tolerances (:data:`EXPORT_TOLERANCES`) are the max error relative to the
+output's scale (max ``|y|``), as in :func:`splice.verify.compare_outputs`:
+float32 1e-4, float64 1e-9. onnxruntime picks other convolution algorithms
+and summation orders than torch, which shows as relative errors of 1e-7..1e-5
+on deep nets; 1e-4 leaves room for that and still catches any changed weight
+or mis-lowered op (common practice, no source).
+
+An export that fails its check raises :class:`~splice.errors.CheckFailed` and
+leaves no file: the program is built and checked in memory, then written with
+:func:`splice._io.atomic_write_bytes` (a temporary file in the target's folder
+renamed into place).
+"""
+
+from __future__ import annotations
+
+import copy
+import io
+import os
+import time
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from .errors import CheckFailed, SpliceError
+
+__all__ = [
+    "MIN_OPSET",
+    "DYNAMO_MIN_OPSET",
+    "EXPORTERS",
+    "EXPORT_TOLERANCES",
+    "PERTURBATION_SIZE",
+    "export",
+    "export_onnx_bytes",
+    "export_pt2_bytes",
+    "onnx_parity",
+    "pt2_parity",
+    "perturbation_theta",
+    "perturbed_copy",
+    "final_layer",
+]
+
+# GridSample (the op a warp's sampler lowers to) entered the ONNX standard at
+# opset 16 (onnx/docs/Operators.md, GridSample "since version 16").
+MIN_OPSET = 16
+# torch.onnx's dynamo exporter writes opset 18 and down-converts; the down
+# conversion fails for resnet-style graphs (measured with torch 2.14), so it is
+# only used at 18 and above.
+DYNAMO_MIN_OPSET = 18
+EXPORTERS = ("torchscript", "dynamo")
+EXPORT_TOLERANCES = {torch.float32: 1e-4, torch.float64: 1e-9}
+# Size of the fixed perturbation added to the identity parameters.
+PERTURBATION_SIZE = 0.1
+
+
+# ----------------------------------------------------------------------------- perturbation
+
+
+def perturbation_theta(family: str, tps_k: int = 4, *, dtype=torch.float32) -> torch.Tensor:
+    """The fixed non-identity warp used by the parity checks: ``identity + 0.1 * linspace(-1, 1, P)``.
+
+    For affine that is ``[0.9, -0.06, -0.02, 0.02, 1.06, 0.1]``: a slight
+    shear, anisotropic scale and a shift of 0.1 half-widths, so sampling falls
+    between pixels everywhere. Every family gets a warp that is neither the
+    identity nor a whole-pixel shift.
+    """
+    from .warps import family_param_count, identity_theta
+
+    n = family_param_count(family, tps_k)
+    delta = torch.linspace(-1.0, 1.0, n, dtype=torch.float64) if n > 1 else torch.ones(1, dtype=torch.float64)
+    return (identity_theta(family, tps_k, dtype=torch.float64) + PERTURBATION_SIZE * delta).to(dtype)
+
+
+def final_layer(warp: nn.Module) -> nn.Linear:
+    """The zero-initialised output layer of a warp's localisation head."""
+    head = getattr(warp, "head", None)
+    final = getattr(head, "final", None)
+    if isinstance(final, nn.Linear):
+        return final
+    linears = [m for m in (head or warp).modules() if isinstance(m, nn.Linear)]
+    if not linears:
+        raise SpliceError(f"warp {type(warp).__name__} has no Linear output layer; it is not a splice Warp")
+    return linears[-1]
+
+
+def _perturbed_tensors(model: nn.Module) -> dict[str, torch.Tensor]:
+    """``{parameter name: value}`` that turns every warp into the fixed perturbation."""
+    from .surgery import WARP_PREFIX, warps_of
+
+    out: dict[str, torch.Tensor] = {}
+    for point, warp in warps_of(model).items():
+        final = final_layer(warp)
+        rel = next(n for n, m in warp.named_modules() if m is final)
+        prefix = f"{WARP_PREFIX}.{point}.{rel}"
+        cfg = warp.config
+        out[f"{prefix}.weight"] = torch.zeros_like(final.weight)
+        out[f"{prefix}.bias"] = perturbation_theta(cfg.family, cfg.tps_k, dtype=final.bias.dtype).to(final.bias.device)
+    return out
+
+
+def perturbed_copy(model: nn.Module) -> nn.Module:
+    """A copy of ``model`` whose warps all apply :func:`perturbation_theta` (the caller's model is untouched)."""
+    work = copy.deepcopy(model)
+    params = dict(work.named_parameters())
+    with torch.no_grad():
+        for name, value in _perturbed_tensors(work).items():
+            params[name].copy_(value)
+    return work
+
+
+# ----------------------------------------------------------------------------- exporting
+
+
+def _check_opset(opset: int, exporter: str) -> None:
+    if exporter not in EXPORTERS:
+        raise SpliceError(f"unknown exporter {exporter!r}; choose one of: {', '.join(EXPORTERS)}")
+    if isinstance(opset, bool) or not isinstance(opset, int) or opset < MIN_OPSET:
+        raise SpliceError(
+            f"ONNX opset {opset!r} is too old for a spliced model: warps need GridSample, "
+            f"added in opset {MIN_OPSET}; pass --opset {MIN_OPSET} or newer (default 17)"
+        )
+    if exporter == "dynamo" and opset < DYNAMO_MIN_OPSET:
+        raise SpliceError(
+            f"the dynamo ONNX exporter writes opset {DYNAMO_MIN_OPSET} or newer, {opset} was asked; "
+            f"pass opset={DYNAMO_MIN_OPSET} or use exporter='torchscript'"
+        )
+
+
+def _output_names(model: nn.Module, example: torch.Tensor) -> list[str]:
+    from .verify import flatten_outputs
+
+    with torch.no_grad():
+        flat = flatten_outputs(model(example))
+    return [f"output_{i}" for i in range(len(flat))]
+
+
+def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
+                      exporter: str = "torchscript", fold_constants: bool = True) -> bytes:
+    """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
+
+    ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
+    ``'dynamo'`` uses the torch.export based exporter (opset 18+).
+    """
+    _check_opset(opset, exporter)
+    was_training = model.training
+    model.eval()
+    names = _output_names(model, example)
+    try:
+        with warnings.catch_warnings():
+            # the TorchScript exporter announces its own deprecation; the tracer
+            # warns about shape-dependent Python branches, which are static here
+            warnings.filterwarnings("ignore", message=".*legacy TorchScript-based ONNX export.*")
+            warnings.filterwarnings("ignore", category=torch.jit.TracerWarning)
+            if exporter == "torchscript":
+                buf = io.BytesIO()
+                axes = {n: {0: "batch"} for n in ["input", *names]} if dynamic_batch else None
+                torch.onnx.export(model, (example,), buf, opset_version=opset, dynamo=False,
+                                  input_names=["input"], output_names=names, dynamic_axes=axes,
+                                  do_constant_folding=fold_constants)
+                return buf.getvalue()
+            dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
+            program = torch.onnx.export(model, (example,), dynamo=True, opset_version=opset,
+                                        input_names=["input"], output_names=names, dynamic_shapes=dims,
+                                        optimize=fold_constants, verbose=False)
+            return program.model_proto.SerializeToString()
+    except SpliceError:
+        raise
+    except Exception as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise SpliceError(
+            f"ONNX export ({exporter}, opset {opset}) failed: {type(exc).__name__}: {first}; "
+            "try another --opset, or exporter='dynamo'/'torchscript'"
+        ) from exc
+    finally:
+        model.train(was_training)
+
+
+def export_pt2_bytes(model: nn.Module, example: torch.Tensor, *, dynamic_batch: bool = False) -> bytes:
+    """``torch.export.export`` + ``torch.export.save`` into bytes (the model is not changed)."""
+    was_training = model.training
+    model.eval()
+    try:
+        dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
+        program = torch.export.export(model, (example,), dynamic_shapes=dims)
+        buf = io.BytesIO()
+        torch.export.save(program, buf)
+        return buf.getvalue()
+    except Exception as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise SpliceError(f"torch.export failed: {type(exc).__name__}: {first}") from exc
+    finally:
+        model.train(was_training)
+
+
+# ----------------------------------------------------------------------------- parity
+
+
+def _as_batches(inputs) -> list[torch.Tensor]:
+    if isinstance(inputs, torch.Tensor):
+        return [inputs]
+    return list(inputs)
+
+
+def _load_onnx(onnx_model):
+    import onnx
+
+    if isinstance(onnx_model, onnx.ModelProto):
+        return onnx_model
+    if isinstance(onnx_model, (bytes, bytearray)):
+        return onnx.load_from_string(bytes(onnx_model))
+    path = Path(onnx_model)
+    if not path.is_file():
+        raise SpliceError(f"ONNX file '{path}' does not exist; check the path")
+    try:
+        return onnx.load(str(path))
+    except Exception as exc:  # protobuf DecodeError and friends
+        raise SpliceError(f"'{path}' is not a readable ONNX file ({type(exc).__name__}); it may be damaged") from None
+
+
+def _ort_session(proto):
+    import onnxruntime as ort
+
+    opts = ort.SessionOptions()
+    opts.log_severity_level = 3
+    return ort.InferenceSession(proto.SerializeToString(), opts, providers=["CPUExecutionProvider"])
+
+
+def _patch_initializers(proto, values: dict[str, torch.Tensor]):
+    """A copy of ``proto`` with the named initializers replaced, or ``None`` if any is missing."""
+    from onnx import numpy_helper
+
+    inits = {init.name: i for i, init in enumerate(proto.graph.initializer)}
+    if not values or any(name not in inits for name in values):
+        return None
+    patched = type(proto)()
+    patched.CopyFrom(proto)
+    for name, value in values.items():
+        old = patched.graph.initializer[inits[name]]
+        arr = value.detach().cpu().numpy().astype(numpy_helper.to_array(old).dtype)
+        if tuple(arr.shape) != tuple(old.dims):
+            return None
+        patched.graph.initializer[inits[name]].CopyFrom(numpy_helper.from_array(arr, name))
+    return patched
+
+
+def _merge(results: list[dict]) -> dict:
+    ok = all(r["passed"] for r in results)
+    nums = [r for r in results if r.get("max_abs") is not None]
+    worst = max(nums, key=lambda r: r["max_rel"]) if nums else results[0]
+    top1 = [r["top1"] for r in results if r.get("top1") is not None]
+    return {"passed": ok, "max_abs": max((r["max_abs"] for r in nums), default=None),
+            "max_rel": max((r["max_rel"] for r in nums), default=None), "top1": min(top1) if top1 else None,
+            "detail": next((r["detail"] for r in results if not r["passed"]), worst["detail"])}
+
+
+def _compare_flat(reference, outputs: list, tol: float) -> dict:
+    from .verify import compare_outputs, flatten_outputs
+
+    ref = flatten_outputs(reference)
+    if len(outputs) != len(ref):
+        return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                "detail": f"the export returns {len(outputs)} outputs, the model {len(ref)} ({', '.join(ref)})"}
+    cand = {k: torch.as_tensor(v) for k, v in zip(ref, outputs)}
+    ref = {k: v.to(cand[k].dtype) if v.dtype != cand[k].dtype else v for k, v in ref.items()}
+    return compare_outputs(ref, cand, tol=tol)
+
+
+def _tolerance(model: nn.Module, tol: float | None) -> float:
+    if tol is not None:
+        return tol
+    p = next(iter(model.parameters()), None)
+    return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, 1e-4)
+
+
+def _model_dtype(model: nn.Module) -> torch.dtype:
+    p = next(iter(model.parameters()), None)
+    return p.dtype if p is not None else torch.float32
+
+
+def _summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
+    passed = stored["passed"] and (perturbed is None or perturbed["passed"])
+    if not stored["passed"]:
+        detail = f"as stored: {stored['detail']}"
+    elif perturbed is not None and not perturbed["passed"]:
+        detail = f"with the perturbed warp: {perturbed['detail']}"
+    else:
+        detail = (f"max abs error {stored['max_abs']:.3g} as stored"
+                  + (f", {perturbed['max_abs']:.3g} with a perturbed warp" if perturbed else ", no warps to perturb")
+                  + f" (relative tolerance {tol:g})")
+    return {
+        "passed": passed,
+        "max_abs": stored["max_abs"], "max_rel": stored["max_rel"], "top1": stored["top1"],
+        "max_abs_perturbed": perturbed["max_abs"] if perturbed else None,
+        "max_rel_perturbed": perturbed["max_rel"] if perturbed else None,
+        "tolerance": tol, "batch_sizes": sizes, "perturbed_by": how, "detail": detail,
+    }
+
+
+def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:
+    """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
+
+    ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
+    ``inputs`` is one batch or a list of batches (e.g. two batch sizes for a
+    dynamic-batch export). With ``perturb`` (and warps present) the check runs
+    again with every warp set to :func:`perturbation_theta`. Returns
+    ``{passed, max_abs, max_rel, top1, max_abs_perturbed, max_rel_perturbed,
+    tolerance, batch_sizes, perturbed_by, detail}``; never changes ``model``.
+    """
+    proto = _load_onnx(onnx_model)
+    tol = _tolerance(model, tol)
+    batches = _as_batches(inputs)
+    was_training = model.training
+    model.eval()
+    try:
+        session = _ort_session(proto)
+        feed_name = session.get_inputs()[0].name
+
+        def run(torch_model, sess) -> dict:
+            results = []
+            for x in batches:
+                with torch.no_grad():
+                    ref = torch_model(x)
+                try:
+                    outs = sess.run(None, {feed_name: x.detach().cpu().numpy()})
+                except Exception as exc:  # onnxruntime raises its own exception types
+                    first = str(exc).strip().splitlines()[0]
+                    return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                            "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
+                results.append(_compare_flat(ref, outs, tol))
+            return _merge(results)
+
+        stored = run(model, session)
+        perturbed = None
+        how = None
+        values = _perturbed_tensors(model)
+        if perturb and values:
+            twin = perturbed_copy(model)
+            patched = _patch_initializers(proto, values)
+            if patched is not None:
+                how = "initializers"
+            else:  # the exporter renamed the head tensors: export the perturbed copy itself
+                how = "re-export"
+                opset = next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 17)
+                patched = _load_onnx(export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
+                                                       dynamic_batch=len({b.shape[0] for b in batches}) > 1))
+            perturbed = run(twin, _ort_session(patched))
+    finally:
+        model.train(was_training)
+    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
+
+
+def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:
+    """Reload a torch.export program (path, bytes or ``ExportedProgram``) and compare it with ``model``.
+
+    Same contract as :func:`onnx_parity`; the perturbed check swaps the warp
+    heads' final tensors in the reloaded program's module.
+    """
+    if isinstance(program, (bytes, bytearray)):
+        ep = torch.export.load(io.BytesIO(bytes(program)))
+    elif isinstance(program, (str, os.PathLike)):
+        if not Path(program).is_file():
+            raise SpliceError(f"torch.export file '{program}' does not exist; check the path")
+        ep = torch.export.load(str(program))
+    else:
+        ep = program
+    tol = _tolerance(model, tol)
+    batches = _as_batches(inputs)
+    was_training = model.training
+    model.eval()
+    try:
+        def run(torch_model, exported) -> dict:
+            results = []
+            for x in batches:
+                with torch.no_grad():
+                    ref = torch_model(x)
+                    try:
+                        out = exported(x)
+                    except Exception as exc:
+                        first = str(exc).strip().splitlines()[0]
+                        return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                                "detail": f"the exported program failed on a batch of {x.shape[0]}: {first}"}
+                from .verify import flatten_outputs
+
+                results.append(_compare_flat(ref, list(flatten_outputs(out).values()), tol))
+            return _merge(results)
+
+        exported = ep.module()
+        stored = run(model, exported)
+        perturbed, how = None, None
+        values = _perturbed_tensors(model)
+        if perturb and values:
+            twin = perturbed_copy(model)
+            swapped = torch.export.load(io.BytesIO(program)) if isinstance(program, (bytes, bytearray)) else None
+            module = (swapped or copy.deepcopy(ep)).module()
+            params = dict(module.named_parameters())
+            if all(n in params for n in values):
+                with torch.no_grad():
+                    for n, v in values.items():
+                        params[n].copy_(v)
+                how = "parameters"
+            else:
+                module = torch.export.export(twin, (batches[0],)).module()
+                how = "re-export"
+            perturbed = run(twin, module)
+    finally:
+        model.train(was_training)
+    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
+
+
+# ----------------------------------------------------------------------------- the command
+
+
+def _probe_inputs(shape, dtype, *, dynamic_batch: bool, seed: int) -> tuple[torch.Tensor, list[torch.Tensor]]:
+    """(trace example, check batches): batch 1 static; dynamic traces at 2 and checks at 1 and 3."""
+    gen = torch.Generator().manual_seed(seed)
+    if dynamic_batch:
+        example = torch.randn((2, *shape), generator=gen).to(dtype)
+        checks = [torch.randn((n, *shape), generator=gen).to(dtype) for n in (1, 3)]
+        return example, checks
+    x = torch.randn((1, *shape), generator=gen).to(dtype)
+    return x, [x]
+
+
+def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
+    import hashlib
+
+    from ._io import atomic_write_bytes, file_sha256
+
+    target = atomic_write_bytes(path, data)
+    digest = hashlib.sha256(data).hexdigest()
+    if file_sha256(target) != digest:  # the disk gave back other bytes than were written
+        target.unlink(missing_ok=True)
+        raise SpliceError(f"'{target}' reads back different bytes than were written; check the disk and retry")
+    return target, digest
+
+
+def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None,
+           *, opset: int = 17, dynamic_batch: bool = False, trust_pickle: bool = False,
+           exporter: str = "torchscript", seed: int = 0, tol: float | None = None) -> dict:
+    """Export a spliced folder to ONNX and/or torch.export, keeping only copies that pass parity.
+
+    Each export is checked with :func:`onnx_parity` / :func:`pt2_parity` (as
+    stored and with a perturbed warp) on seeded N(0,1) inputs: one batch of 1,
+    or with ``dynamic_batch`` batches of 1 and 3 (the trace uses 2). A failed
+    check raises :class:`~splice.errors.CheckFailed` and writes nothing. An
+    existing file at the target is replaced atomically.
+
+    Returns ``{"exports": [{"path", "format", "sha256", "seconds", "max_abs",
+    "max_rel", "max_abs_perturbed", "max_rel_perturbed", "tolerance",
+    "batch_sizes", "dynamic_batch", ...}]}``.
+
+    >>> splice.export("out/r18-affine", onnx="r18.onnx")   # doctest: +SKIP
+    """
+    from .store import load, read_manifest
+
+    if onnx is None and pt2 is None:
+        raise SpliceError("export needs a target: onnx=FILE (--onnx FILE) and/or pt2=FILE (--pt2 FILE)")
+    if onnx is not None:
+        _check_opset(opset, exporter)
+    for target in (onnx, pt2):
+        if target is not None and Path(target).is_dir():
+            raise SpliceError(f"export target '{target}' is a folder; give a file name such as model.onnx")
+    manifest = read_manifest(folder)
+    model = load(folder, trust_pickle=trust_pickle)
+    shape = tuple(manifest["input_shape"])
+    example, batches = _probe_inputs(shape, _model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
+    jobs: list[tuple[str, str | os.PathLike]] = []
+    if onnx is not None:
+        jobs.append(("onnx", onnx))
+    if pt2 is not None:
+        jobs.append(("pt2", pt2))
+    done = []
+    for fmt, target in jobs:
+        start = time.perf_counter()
+        if fmt == "onnx":
+            data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
+            seconds = time.perf_counter() - start
+            result = onnx_parity(model, data, batches, tol=tol)
+        else:
+            data = export_pt2_bytes(model, example, dynamic_batch=dynamic_batch)
+            seconds = time.perf_counter() - start
+            result = pt2_parity(model, data, batches, tol=tol)
+        if not result["passed"]:
+            raise CheckFailed(
+                f"the {fmt} export of '{folder}' does not match the model ({result['detail']}); "
+                f"nothing was written to '{target}'. Try another --opset or report the model"
+            )
+        path, digest = _keep(target, data)
+        done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,
+                     "dynamic_batch": dynamic_batch, **({"opset": opset, "exporter": exporter} if fmt == "onnx" else {}),
+                     **{k: v for k, v in result.items() if k != "passed"}})
+    return {"exports": done}
