@@ -62,10 +62,12 @@ names the failing module and how to mark it as a leaf.
 from __future__ import annotations
 
 import copy
+import difflib
 import importlib
 import itertools
 import math
 import operator
+import os.path
 import warnings
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
@@ -1061,11 +1063,25 @@ def find_point(model_or_gm: nn.Module, name: str, *, leaves: Iterable[Any] = ())
     names = {v: k for k, v in _point_names(gm.graph).items() if k.op not in ("get_attr", "output")}
     node = names.get(name) if isinstance(name, str) else None
     if node is None:
-        hint = suggest(str(name), names)
+        hint = suggest(str(name), _closest(str(name), list(names)))
         raise PointError(
             f"unknown point {name!r}{hint if hint else ';'} Run 'splice points MODEL' to list them."
         )
     return node
+
+
+def _closest(word: str, names: list[str], n: int = 3) -> list[str]:
+    """The ``n`` names most like ``word``; ties go to the longer shared prefix, then graph order.
+
+    (difflib alone breaks ties alphabetically, so 'layer1_relu' would suggest
+    'layer4_1_relu' before 'layer1_0_relu'.)
+    """
+    def score(item):
+        index, candidate = item
+        ratio = difflib.SequenceMatcher(None, word, candidate).ratio()
+        return (-ratio, -len(os.path.commonprefix([word, candidate])), index)
+
+    return [c for _, c in sorted(enumerate(names), key=score)[:n]]
 
 
 def points_report(model_name: str, input_shape: tuple[int, int, int], pts: Iterable[Point]) -> dict:

@@ -1,0 +1,414 @@
+"""splice.graph on small hand-built nets: cuts, branches, joins, leaves, fallback, errors.
+
+Each net's cuts are worked out by hand in the comment above it; the expected
+values in the test are those hand results.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import pytest
+import torch
+import torch.fx as fx
+import torch.nn.functional as F
+from torch import nn
+
+from splice import graph
+from splice.errors import GraphError, PointError
+from splice.graph import Point, TraceFallbackWarning, TraceModeWarning, find_point, points, points_report
+from splice.warps import Warp, WarpConfig
+
+
+def _by_name(pts):
+    return {p.name: p for p in pts}
+
+
+# input -> stem -> conv_a -> act -> conv_b -> add(stem, conv_b) -> head -> output
+# The skip stem -> add bypasses conv_a, act and conv_b, so every path from the
+# input passes through: input, stem, add, head (cuts). conv_a, act, conv_b lie
+# between the fork (stem) and the join (add): in_branch with join 'add'.
+# Between convs (a conv upstream or itself, and one downstream): stem, conv_a,
+# act, conv_b, add; head is the last conv, so only all=True lists it.
+class _Residual(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.conv_a = nn.Conv2d(8, 8, 3, padding=1)
+        self.act = nn.ReLU()
+        self.conv_b = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 1)
+
+    def forward(self, x):
+        y = self.stem(x)
+        return self.head(y + self.conv_b(self.act(self.conv_a(y))))
+
+
+def test_residual_block_cuts_and_join():
+    pts = _by_name(points(_Residual(), (3, 16, 16), all=True))
+    assert list(pts) == ["input", "stem", "conv_a", "act", "conv_b", "add", "head"]
+    assert {n for n, p in pts.items() if p.cut} == {"input", "stem", "add", "head"}
+    for name in ("conv_a", "act", "conv_b"):
+        assert pts[name].in_branch and not pts[name].cut and pts[name].join == "add"
+    for name in ("input", "stem", "add", "head"):
+        assert not pts[name].in_branch and pts[name].join is None
+    default = [p.name for p in points(_Residual(), (3, 16, 16))]
+    assert default == ["input", "stem", "conv_a", "act", "conv_b", "add"]
+
+
+# input -> stem -> conv_a ------------------> cat -> head -> output
+#               \-> act -> conv_b ---------/
+# Two branches re-merge at the cat: cuts input, stem, cat, head; conv_a, act and
+# conv_b are in a branch that joins at 'cat'.
+class _Concat(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 6, 3, padding=1)
+        self.conv_a = nn.Conv2d(6, 4, 3, padding=1)
+        self.act = nn.ReLU()
+        self.conv_b = nn.Conv2d(6, 4, 1)
+        self.head = nn.Conv2d(8, 2, 1)
+
+    def forward(self, x):
+        y = self.stem(x)
+        return self.head(torch.cat([self.conv_a(y), self.conv_b(self.act(y))], dim=1))
+
+
+def test_concat_branches_join_at_cat():
+    pts = _by_name(points(_Concat(), (3, 12, 12), all=True))
+    assert {n for n, p in pts.items() if p.cut} == {"input", "stem", "cat", "head"}
+    for name in ("conv_a", "act", "conv_b"):
+        assert pts[name].in_branch and pts[name].join == "cat"
+    assert pts["cat"].shape == (8, 12, 12)
+
+
+# input -> stem -> trunk -> head_a --------------> output[0]
+#                       \-> act -> head_b -------> output[1]
+# Every path to every output passes input, stem, trunk (cuts). act feeds only
+# the second output, so the path through head_a avoids it: not a cut. The two
+# paths only meet at the outputs, so act is not in a branch (join None).
+class _TwoHeads(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 4, 3, padding=1)
+        self.trunk = nn.Conv2d(4, 4, 3, padding=1)
+        self.head_a = nn.Conv2d(4, 2, 1)
+        self.act = nn.ReLU()
+        self.head_b = nn.Conv2d(4, 3, 1)
+
+    def forward(self, x):
+        t = self.trunk(self.stem(x))
+        return self.head_a(t), self.head_b(self.act(t))
+
+
+def test_two_output_head_is_not_a_cut():
+    pts = _by_name(points(_TwoHeads(), (3, 10, 10), all=True))
+    assert {n for n, p in pts.items() if p.cut} == {"input", "stem", "trunk"}
+    for name in ("act", "head_a", "head_b"):
+        assert not pts[name].cut and not pts[name].in_branch and pts[name].join is None
+
+
+# input -> stem (stride 2) -> pool (stride 4, 12x12) -> conv -> small (stride 8, 6x6) -> out
+# with input 1x48x48. Cuts: all of them (a chain). The first cut between convs
+# with stride >= 4 and at least 8x8 is 'pool'.
+class _Chain(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(1, 4, 3, stride=2, padding=1)
+        self.pool = nn.MaxPool2d(2)
+        self.conv = nn.Conv2d(4, 8, 3, padding=1)
+        self.small = nn.AvgPool2d(2)
+        self.out = nn.Conv2d(8, 2, 1)
+
+    def forward(self, x):
+        return self.out(self.small(self.conv(self.pool(self.stem(x)))))
+
+
+def test_recommended_rule_and_strides():
+    pts = points(_Chain(), (1, 48, 48))
+    assert [p.name for p in pts if p.recommended] == ["input", "pool"]
+    strides = {p.name: p.stride for p in pts}
+    assert strides == {"input": 1, "stem": 2, "pool": 4, "conv": 4, "small": 8}
+    assert all(p.cut for p in pts)
+    # nothing reaches stride 4 at 8x8 or more on a 16x16 input: only the input is recommended
+    assert [p.name for p in points(_Chain(), (1, 16, 16)) if p.recommended] == ["input"]
+
+
+class _Tall(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 4, 3, padding=1)
+        self.pool = nn.MaxPool2d((2, 1))
+        self.b = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.b(self.pool(self.a(x)))
+
+
+def test_unequal_stride_is_a_pair():
+    pts = _by_name(points(_Tall(), (3, 16, 8)))
+    assert pts["pool"].stride == (2, 1)
+    assert pts["pool"].to_json()["stride"] == [2, 1]
+    assert pts["pool"].shape == (4, 8, 8)
+
+
+def test_json_report_schema():
+    pts = points(_Residual(), (3, 16, 16))
+    report = points_report("tests:_Residual", (3, 16, 16), pts)
+    assert set(report) == {"model", "input_shape", "points"}
+    assert report["model"] == "tests:_Residual" and report["input_shape"] == [3, 16, 16]
+    keys = {"name", "module", "shape", "stride", "cut", "in_branch", "join", "warp_params", "warp_macs",
+            "recommended"}
+    for row in report["points"]:
+        assert set(row) == keys
+        assert isinstance(row["name"], str) and isinstance(row["module"], str)
+        assert isinstance(row["shape"], list) and len(row["shape"]) == 3
+        assert all(type(s) is int for s in row["shape"])
+        assert type(row["stride"]) is int or (isinstance(row["stride"], list) and len(row["stride"]) == 2)
+        for k in ("cut", "in_branch", "recommended"):
+            assert type(row[k]) is bool
+        assert row["join"] is None or isinstance(row["join"], str)
+        assert type(row["warp_params"]) is int and type(row["warp_macs"]) is int
+    assert json.loads(json.dumps(report)) == report
+    by = {r["name"]: r for r in report["points"]}
+    assert by["conv_a"]["module"] == "conv_a" and by["add"]["module"] == "" and by["input"]["module"] == ""
+
+
+def test_all_lists_a_superset_of_the_default():
+    default = points(_Concat(), (3, 12, 12))
+    every = _by_name(points(_Concat(), (3, 12, 12), all=True))
+    assert set(p.name for p in default) < set(every)
+    for p in default:
+        assert every[p.name] == p
+    assert "head" in every and "head" not in {p.name for p in default}
+
+
+def test_warp_cost_matches_the_warp_module():
+    for p in points(_Residual(), (3, 16, 16)):
+        warp = Warp(WarpConfig(family="affine"), p.shape)
+        assert p.warp_params == sum(t.numel() for t in warp.parameters()) > 0
+        assert p.warp_macs > 0
+    affine = _by_name(points(_Residual(), (3, 16, 16)))
+    proj = _by_name(points(_Residual(), (3, 16, 16), warp="projective"))
+    for name, p in proj.items():
+        assert p.warp_params == sum(t.numel() for t in Warp(WarpConfig(family="projective"), p.shape).parameters())
+        assert p.warp_params > affine[name].warp_params  # 8 parameters instead of 6
+
+
+def test_names_are_stable_and_repeats_are_numbered():
+    class Twice(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 3, 3, padding=1)
+            self.act = nn.ReLU()
+
+        def forward(self, x):
+            return self.conv(self.act(self.conv(self.act(x))))
+
+    first = [p.name for p in points(Twice(), (3, 8, 8), all=True)]
+    assert first == ["input", "act", "conv", "act_1", "conv_1"]
+    assert [p.name for p in points(Twice(), (3, 8, 8), all=True)] == first
+
+
+# ----------------------------------------------------------------------------- leaves and fallback
+
+
+class _ValueGate(nn.Module):
+    """Control flow on tensor values: neither fx nor the meta device can run it."""
+
+    def forward(self, x):
+        if x.mean() > 0:
+            return x * 2
+        return F.max_pool2d(x, 2)
+
+
+class _ShapeGate(nn.Module):
+    """Control flow on a shape: fx cannot trace it, a meta forward can run it."""
+
+    def forward(self, x):
+        if x.shape[-1] > 4:
+            return F.max_pool2d(x, 2)
+        return x
+
+
+class _Gated(nn.Module):
+    def __init__(self, gate):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
+        self.gate = gate
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.conv2(self.gate(self.conv1(x)))
+
+
+def test_value_gate_without_leaf_names_the_module():
+    with pytest.raises(GraphError, match=r"module 'gate' \(_ValueGate\).*--leaf test_graph\._ValueGate"):
+        points(_Gated(_ValueGate()), (3, 8, 8))
+    with pytest.raises(GraphError, match=r"torch\.fx cannot trace module 'gate' \(_ValueGate\)"):
+        graph.trace(_Gated(_ValueGate()))
+
+
+def test_value_gate_as_leaf_works():
+    model = _Gated(_ValueGate())
+    for leaves in ([_ValueGate], ["_ValueGate"], ["test_graph._ValueGate"]):
+        pts = _by_name(points(model, (3, 8, 8), leaves=leaves))
+        assert list(pts) == ["input", "conv1", "gate"]
+        # the leaf ran once on zeros, so it took the pooling branch (mean 0 is not > 0)
+        assert pts["gate"].shape == (4, 4, 4) and pts["gate"].cut
+    gm = graph.trace(model, leaves=[_ValueGate])
+    assert [n.target for n in gm.graph.nodes if n.op == "call_module"] == ["conv1", "gate", "conv2"]
+
+
+def test_shape_gate_falls_back_to_module_boundaries():
+    model = _Gated(_ShapeGate())
+    with pytest.warns(TraceFallbackWarning, match=r"could not trace module 'gate' \(_ShapeGate\).*only 'input'"):
+        pts = points(model, (3, 8, 8), all=True)
+    assert [p.name for p in pts] == ["input", "conv1", "gate", "conv2"]
+    assert [p.shape for p in pts] == [(3, 8, 8), (4, 8, 8), (4, 4, 4), (4, 4, 4)]
+    assert [p.cut for p in pts] == [True, False, False, False]
+    assert [p.name for p in pts if p.recommended] == ["input"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        full = _by_name(points(model, (3, 8, 8), leaves=[_ShapeGate]))
+    assert full["gate"].cut and full["gate"].shape == (4, 4, 4)
+
+
+def test_fallback_numbers_repeat_calls():
+    class Repeat(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(2, 2, 1)
+            self.block = nn.Sequential(nn.Conv2d(2, 2, 1), _ShapeGate())
+
+        def forward(self, x):
+            return self.conv(self.block(self.conv(x)))
+
+    with pytest.warns(TraceFallbackWarning, match=r"module 'block\.1' \(_ShapeGate\)"):
+        names = [p.name for p in points(Repeat(), (2, 8, 8), all=True)]
+    # module outputs in the order they finish; containers after their children
+    assert names == ["input", "conv", "block_0", "block_1", "block", "conv_1"]
+
+
+def test_register_leaf(monkeypatch):
+    monkeypatch.setattr(graph, "_registered_types", set())
+    monkeypatch.setattr(graph, "_registered_names", set())
+    graph.register_leaf("test_graph._ShapeGate")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        pts = _by_name(points(_Gated(_ShapeGate()), (3, 8, 8)))
+    assert pts["gate"].shape == (4, 4, 4)
+    graph.register_leaf(_ValueGate)
+    assert "gate" in _by_name(points(_Gated(_ValueGate()), (3, 8, 8)))
+    with pytest.raises(GraphError, match=r"register_leaf: a leaf must be an nn.Module subclass.*got 3 \(int\)"):
+        graph.register_leaf(3)
+    with pytest.raises(GraphError, match=r"leaves: a leaf must be .*got 'not a name'"):
+        points(_Residual(), (3, 8, 8), leaves=["not a name"])
+
+
+def test_default_leaves_are_types():
+    import torchvision.ops
+
+    assert torchvision.ops.StochasticDepth in graph.DEFAULT_LEAVES
+    assert Warp in graph.DEFAULT_LEAVES
+    assert all(isinstance(t, type) and issubclass(t, nn.Module) for t in graph.DEFAULT_LEAVES)
+
+
+# ----------------------------------------------------------------------------- modes and the caller's model
+
+
+class _ModeDependent(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+
+    def forward(self, x):
+        x = self.conv(x)
+        if self.training:
+            x = x * 0.5
+        return x
+
+
+def test_train_eval_difference_warns():
+    with pytest.warns(TraceModeWarning, match=r"train-mode and eval-mode graphs of _ModeDependent differ"):
+        pts = points(_ModeDependent(), (3, 4, 4), all=True)
+    assert [p.name for p in pts] == ["input", "conv"]  # the eval-mode graph
+    with pytest.warns(TraceModeWarning):
+        gm = graph.trace(_ModeDependent())
+    assert "mul" not in {n.name for n in gm.graph.nodes}
+
+
+_OFFSET = torch.full((1, 3, 1, 1), 0.25)  # a global tensor: fx stores it on the traced root
+
+
+class _Offset(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+        self.bn = nn.BatchNorm2d(3)
+
+    def forward(self, x):
+        return self.bn(self.conv(x + _OFFSET))
+
+
+def test_caller_model_is_not_changed():
+    model = _Offset()
+    model.train()
+    model.bn.eval()  # mixed modes must survive
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    attrs = set(vars(model))
+    pts = points(model, (3, 6, 6), all=True)
+    gm = graph.trace(model)
+    assert {p.name for p in pts} >= {"input", "add", "conv", "bn"}
+    assert set(vars(model)) == attrs  # no _tensor_constant0 on the caller's root
+    assert model.training and model.conv.training and not model.bn.training
+    assert type(model) is _Offset and type(model.conv) is nn.Conv2d
+    for k, v in model.state_dict().items():
+        assert torch.equal(v, before[k])
+    assert gm.training and gm.conv.training and not gm.bn.training
+    x = torch.randn(2, 3, 6, 6)
+    model.eval()
+    gm.eval()
+    with torch.no_grad():
+        torch.testing.assert_close(gm(x), model(x), rtol=0, atol=0)
+        # the GraphModule owns copies: changing it leaves the caller's weights alone
+        gm.conv.weight.add_(1.0)
+    assert torch.equal(model.conv.weight, before["conv.weight"])
+
+
+# ----------------------------------------------------------------------------- lookups and errors
+
+
+def test_find_point_resolves_and_suggests():
+    import torchvision
+
+    gm = graph.trace(torchvision.models.resnet18(weights=None))
+    assert find_point(gm, "input").op == "placeholder"
+    assert find_point(gm, "layer1_0_relu").target == "layer1.0.relu"
+    with pytest.raises(PointError, match=r"unknown point 'layer1_relu'; did you mean .*'layer1_0_relu'.*"
+                                         r"Run 'splice points MODEL' to list them\."):
+        find_point(gm, "layer1_relu")
+    with pytest.raises(PointError, match=r"unknown point 'zzz'; Run 'splice points MODEL'"):
+        find_point(gm, "zzz")
+    node = find_point(_Residual(), "conv_b")
+    assert isinstance(node, fx.Node) and node.target == "conv_b"
+
+
+def test_bad_input_shape_and_model():
+    with pytest.raises(GraphError, match=r"input_shape must be \(C, H, W\).*got \(3, 224\)"):
+        points(_Residual(), (3, 224))
+    with pytest.raises(GraphError, match=r"input_shape must be .*got \(3, 0, 8\)"):
+        points(_Residual(), (3, 0, 8))
+    with pytest.raises(GraphError, match=r"points\(\) needs a torch.nn.Module, got str"):
+        points("resnet18", (3, 8, 8))
+    with pytest.raises(GraphError, match=r"failed at point 'stem' \(module 'stem' \(Conv2d\)\) for input shape "
+                                         r"\(1, 16, 16\).*check that the model takes inputs"):
+        points(_Residual(), (1, 16, 16))
+
+
+def test_point_validation():
+    with pytest.raises(ValueError, match="recommended but not a cut"):
+        Point("x", "", (1, 2, 2), 1, False, False, None, 0, 0, True)
+    with pytest.raises(ValueError, match="three positive ints"):
+        Point("x", "", (1, 2), 1, True, False, None, 0, 0, False)
