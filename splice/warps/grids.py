@@ -61,9 +61,14 @@ DENOMINATOR_EPS = 1.0e-3
 
 
 def pixel_centres(n: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
-    """Normalised centres ``(2u + 1) / n - 1`` of ``n`` pixels, computed in float64 then rounded once."""
+    """Normalised centres ``(2u + 1) / n - 1`` of ``n`` pixels.
+
+    Written as ``(2u + 1 - n) / n``: the numerator is an exact integer, so the
+    single division rounds correctly in float64 (``(2u + 1) / n - 1`` would
+    round twice).
+    """
     u = torch.arange(n, dtype=torch.float64)
-    return ((2.0 * u + 1.0) / n - 1.0).to(dtype=dtype, device=device)
+    return ((2.0 * u + 1.0 - n) / n).to(dtype=dtype, device=device)
 
 
 def base_grid(height: int, width: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
