@@ -35,6 +35,7 @@ import torch
 from torch import Tensor
 
 from splice.errors import SpliceError, suggest
+from splice.warps.grids import static_shape
 
 __all__ = [
     "FAMILIES",
@@ -213,7 +214,7 @@ def theta_to_matrix(family: str, theta: Tensor) -> Tensor:
             "family 'tps' has no sampling matrix; use Warp.grid() for its sampling grid."
         )
     p = _PARAMS[family]
-    if theta.dim() != 2 or theta.shape[1] != p:
+    if theta.dim() != 2 or static_shape(theta, (1,))[0] != p:
         raise WarpError(
             f"family {family!r} takes theta of shape (N, {p}), got {tuple(theta.shape)}; "
             "pass the head output of a Warp of this family."

@@ -37,11 +37,15 @@ to ``(1, x, y)``. Because the affine part of ``f`` lives in the identity term
 
 from __future__ import annotations
 
+import warnings
+
 import torch
 from torch import Tensor
 
 __all__ = [
     "DENOMINATOR_EPS",
+    "static_shape",
+    "spatial_size",
     "pixel_centres",
     "base_grid",
     "matrix_grid",
@@ -58,6 +62,30 @@ __all__ = [
 # the image, so it only samples padding; the guard keeps the grid finite.
 # Common practice, no source.
 DENOMINATOR_EPS = 1.0e-3
+
+
+def static_shape(x: Tensor, dims: tuple[int, ...] | None = None) -> tuple[int, ...]:
+    """Sizes of ``x`` (all, or only ``dims``) as Python ints.
+
+    While the TorchScript-based ONNX exporter traces, sizes are 0-d tensors and
+    turning them into ints raises a TracerWarning. The warp's checks and grid
+    (like every buffer) are specialised to the traced spatial size anyway, so
+    the conversion is exactly what the trace records; the warning is silenced
+    here and only here. Ask only for the dims you need: converting the batch
+    size would also pin it under ``torch.export``.
+    """
+    dims = tuple(range(x.dim())) if dims is None else dims
+    if torch.jit.is_tracing():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", torch.jit.TracerWarning)
+            return tuple(int(x.shape[d]) for d in dims)
+    return tuple(int(x.shape[d]) for d in dims)
+
+
+def spatial_size(x: Tensor) -> tuple[int, int]:
+    """``(H, W)`` of a ``(..., H, W)`` tensor as Python ints (see :func:`static_shape`)."""
+    h, w = static_shape(x, (-2, -1))
+    return h, w
 
 
 def pixel_centres(n: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
@@ -93,13 +121,12 @@ def matrix_grid(base: Tensor, matrix: Tensor, height: int, width: int, *, projec
     ``projective=False`` assumes the last row is ``[0, 0, 1]`` (checked by the
     caller's family) and skips the division.
     """
-    n = matrix.shape[0]
     if projective:
         q = torch.matmul(base, matrix.transpose(1, 2))  # (N, HW, 3)
         xy = q[..., :2] / safe_denominator(q[..., 2:3])
     else:
         xy = torch.matmul(base, matrix[:, :2, :].transpose(1, 2))  # (N, HW, 2)
-    return xy.reshape(n, height, width, 2)
+    return xy.reshape(-1, height, width, 2)
 
 
 def tps_control_points(k: int, *, dtype: torch.dtype = torch.float64, device=None) -> Tensor:
@@ -137,10 +164,9 @@ def tps_grid(
     ``[U(|b - c|) | 1 | x | y]`` of shape ``(H*W, K^2 + 3)``, ``inverse`` comes
     from :func:`tps_system_inverse` and ``offsets`` is ``(N, K^2, 2)``.
     """
-    n = offsets.shape[0]
     coeffs = torch.matmul(inverse, offsets)  # (N, K^2 + 3, 2): radial weights then (a0, a1, a2)
     displacement = torch.matmul(kernel, coeffs)  # (N, HW, 2)
-    return (base[:, :2] + displacement).reshape(n, height, width, 2)
+    return (base[:, :2] + displacement).reshape(-1, height, width, 2)
 
 
 def tps_kernel(base: Tensor, control: Tensor) -> Tensor:

@@ -39,6 +39,8 @@ import torch
 from torch import Tensor, nn
 from torch.nn import functional as F
 
+from splice.warps.grids import spatial_size
+
 __all__ = [
     "POOL_SIDE",
     "REDUCE_TO",
@@ -132,7 +134,7 @@ class _BinPool(nn.Module):
         return self
 
     def forward(self, x: Tensor) -> Tensor:
-        h, w = x.shape[-2], x.shape[-1]
+        h, w = spatial_size(x)
         rows, cols = self.rows, self.cols
         if (h, w) != self._size:  # a different size at run time: build the bins on the fly
             rows = _bin_matrix(h, self.side, dtype=x.dtype, device=x.device)

@@ -203,7 +203,7 @@ class Warp(nn.Module):
 
     def grid(self, theta: Tensor, height: int, width: int) -> Tensor:
         """``(N, H, W, 2)`` normalised sampling grid for ``theta`` (``align_corners=False``)."""
-        if theta.dim() != 2 or theta.shape[1] != self.n_params:
+        if theta.dim() != 2 or grids.static_shape(theta, (1,))[0] != self.n_params:
             raise WarpError(
                 f"this {self.family!r} warp takes theta of shape (N, {self.n_params}), "
                 f"got {tuple(theta.shape)}; pass the output of predict()."
@@ -217,7 +217,7 @@ class Warp(nn.Module):
         else:  # another size (dynamic shapes) or dtype: build the grid on the fly
             bufs = self._grid_buffers(height, width, theta.dtype, theta.device)
         if self.family == "tps":
-            offsets = theta.clamp(-THETA_LIMIT, THETA_LIMIT).reshape(theta.shape[0], -1, 2)
+            offsets = theta.clamp(-THETA_LIMIT, THETA_LIMIT).reshape(-1, self.n_params // 2, 2)
             return grids.tps_grid(
                 bufs["base_grid"], bufs["tps_kernel"], bufs["tps_inverse"], offsets, height, width
             )
@@ -235,7 +235,7 @@ class Warp(nn.Module):
         theta = self.predict(x if loc is None else loc)
         if self.record:
             self.last_theta = theta.detach()
-        h, w = x.shape[-2], x.shape[-1]
+        h, w = grids.spatial_size(x)
         out = self._sample(x, self.grid(theta, h, w))
         if needs_rounding_correction(self.config.sampler, h, w):
             out = x + (out - self._sample(x, self._identity_grid(x)))
@@ -248,12 +248,12 @@ class Warp(nn.Module):
 
     def _identity_grid(self, x: Tensor) -> Tensor:
         """The base grid as ``(N, H, W, 2)`` for ``x`` (bit-identical to the identity warp's grid)."""
-        n, _, h, w = x.shape
+        h, w = grids.spatial_size(x)
         if (h, w) == self.shape[1:] and self.base_grid.dtype == x.dtype:
             base = self.base_grid
         else:
             base = grids.base_grid(h, w, dtype=x.dtype, device=x.device)
-        return base[:, :2].reshape(1, h, w, 2).expand(n, h, w, 2)
+        return base[:, :2].reshape(1, h, w, 2).expand(x.shape[0], h, w, 2)
 
     # -- identity ----------------------------------------------------------------
 
