@@ -1,0 +1,108 @@
+"""Process-group set-up for ``torchrun`` and the few collectives the loop needs.
+
+``splice tune`` runs as one process, or as N under ``torchrun`` (which sets
+``RANK``, ``WORLD_SIZE``, ``LOCAL_RANK``, ``MASTER_ADDR`` and ``MASTER_PORT``).
+The backend is gloo on the CPU and nccl on CUDA. Rank 0 alone writes files and
+prints; every rank computes.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+import torch
+import torch.distributed as dist
+
+from ..errors import SpliceError
+
+__all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag"]
+
+
+def pick_device(requested: str | None = None, *, local_rank: int = 0) -> torch.device:
+    """``requested`` if given (checked), else cuda, then mps, then cpu."""
+    if requested is not None:
+        kind = str(requested).split(":")[0]
+        if kind not in ("cpu", "cuda", "mps"):
+            raise SpliceError(f"unknown device {requested!r}; use cpu, cuda, cuda:N or mps")
+        if kind == "cuda" and not torch.cuda.is_available():
+            raise SpliceError(f"device {requested!r} was requested but CUDA is not available; use --device cpu")
+        if kind == "mps" and not (getattr(torch.backends, "mps", None) and torch.backends.mps.is_available()):
+            raise SpliceError(f"device {requested!r} was requested but MPS is not available; use --device cpu")
+        if kind == "cuda" and ":" not in str(requested):
+            return torch.device("cuda", local_rank)
+        return torch.device(requested)
+    if torch.cuda.is_available():
+        return torch.device("cuda", local_rank)
+    if getattr(torch.backends, "mps", None) and torch.backends.mps.is_available():
+        return torch.device("mps")
+    return torch.device("cpu")
+
+
+@dataclass
+class Context:
+    """Where this process sits: rank, world size and device."""
+
+    rank: int = 0
+    world_size: int = 1
+    local_rank: int = 0
+    device: torch.device = torch.device("cpu")
+    owns_group: bool = False
+
+    @property
+    def distributed(self) -> bool:
+        return self.world_size > 1
+
+    @property
+    def is_main(self) -> bool:
+        return self.rank == 0
+
+
+def _env_int(name: str, default: int) -> int:
+    value = os.environ.get(name)
+    if value is None:
+        return default
+    try:
+        return int(value)
+    except ValueError:
+        raise SpliceError(f"environment variable {name}={value!r} is not an integer; it is set by torchrun") from None
+
+
+def setup(device: str | None = None) -> Context:
+    """Join the torchrun process group if there is one; pick the device."""
+    world = _env_int("WORLD_SIZE", 1)
+    rank = _env_int("RANK", 0)
+    local = _env_int("LOCAL_RANK", 0)
+    dev = pick_device(device, local_rank=local)
+    if world <= 1:
+        return Context(device=dev)
+    owns = False
+    if not dist.is_initialized():
+        backend = "nccl" if dev.type == "cuda" else "gloo"
+        if dev.type == "cuda":
+            torch.cuda.set_device(dev)
+        dist.init_process_group(backend=backend, rank=rank, world_size=world)
+        owns = True
+    return Context(rank=dist.get_rank(), world_size=dist.get_world_size(), local_rank=local, device=dev,
+                   owns_group=owns)
+
+
+def teardown(ctx: Context) -> None:
+    if ctx.owns_group and dist.is_initialized():
+        dist.destroy_process_group()
+
+
+def all_reduce_sum(ctx: Context, values: list[float]) -> list[float]:
+    """Sum a few numbers over every rank (float64)."""
+    if not ctx.distributed:
+        return list(values)
+    t = torch.tensor(values, dtype=torch.float64, device=ctx.device if ctx.device.type == "cuda" else "cpu")
+    dist.all_reduce(t)
+    return [float(v) for v in t.cpu()]
+
+
+def broadcast_flag(ctx: Context, flag: bool) -> bool:
+    """True on every rank if ``flag`` is true on any rank (used to stop together)."""
+    if not ctx.distributed:
+        return flag
+    return all_reduce_sum(ctx, [1.0 if flag else 0.0])[0] > 0
