@@ -17,7 +17,9 @@ a private clone of the module tree; the caller's model is never changed.
 
 Points
 ------
-A *point* is an fx node that produces an (N, C, H, W) tensor. It is named
+A *point* is an fx node that produces an (N, C, H, W) tensor (tensors that a
+permute or transpose turned channels-last, as in convnext blocks, are not
+points). It is named
 after the node, which fx derives from the module qualname (``layer1_0_relu``,
 with ``_1``, ``_2`` for repeated calls); the model input is always ``input``.
 By default :func:`points` lists ``input`` and the points that sit between
@@ -510,9 +512,52 @@ def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | No
         return torch.empty_like(x)
     if cls is nn.Conv2d:
         return _conv2d_rule(mod, x)
-    if cls is nn.BatchNorm2d and x.dim() == 4 and x.shape[1] == mod.num_features:
-        return torch.empty_like(x)
-    return None
+    if cls is nn.BatchNorm2d:
+        ok = x.dim() == 4 and x.shape[1] == mod.num_features
+    elif cls is nn.GroupNorm:
+        ok = x.dim() >= 2 and x.shape[1] == mod.num_channels
+    elif cls is nn.LayerNorm:
+        ok = tuple(x.shape[x.dim() - len(mod.normalized_shape):]) == tuple(mod.normalized_shape)
+    elif cls is nn.Linear:
+        if x.dim() >= 1 and x.shape[-1] == mod.in_features and x.dtype == mod.weight.dtype:
+            return torch.empty((*x.shape[:-1], mod.out_features), dtype=x.dtype, device=_META)
+        return None
+    elif cls is nn.AdaptiveAvgPool2d and x.dim() in (3, 4):
+        size = mod.output_size
+        size = (size, size) if isinstance(size, int) else size
+        h, w = (o if o is not None else i for o, i in zip(size, x.shape[-2:]))
+        return torch.empty((*x.shape[:-2], h, w), dtype=x.dtype, device=_META)
+    else:
+        return None
+    return torch.empty_like(x) if ok else None
+
+
+def _broadcast(a: tuple[int, ...], b: tuple[int, ...]) -> tuple[int, ...] | None:
+    out = []
+    for x, y in itertools.zip_longest(reversed(a), reversed(b), fillvalue=1):
+        if x != y and x != 1 and y != 1:
+            return None
+        out.append(y if x == 1 else x)
+    return tuple(reversed(out))
+
+
+def _elementwise_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
+    """Out-of-place add, sub, mul: broadcast shape, promoted dtype."""
+    if kwargs or len(args) != 2:
+        return None
+    a, b = args
+    for v in args:
+        if not isinstance(v, (torch.Tensor, int, float, bool)):
+            return None
+    if not (isinstance(a, torch.Tensor) or isinstance(b, torch.Tensor)):
+        return None
+    shape = _broadcast(
+        tuple(a.shape) if isinstance(a, torch.Tensor) else (),
+        tuple(b.shape) if isinstance(b, torch.Tensor) else (),
+    )
+    if shape is None:
+        return None
+    return torch.empty(shape, dtype=torch.result_type(a, b), device=_META)
 
 
 def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
@@ -537,7 +582,13 @@ def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
     return torch.empty(shape, dtype=first.dtype, device=_META)
 
 
-_FUNCTION_RULES: dict[Any, Callable[[tuple, dict], torch.Tensor | None]] = {torch.cat: _cat_rule}
+_FUNCTION_RULES: dict[Any, Callable[[tuple, dict], torch.Tensor | None]] = {
+    torch.cat: _cat_rule,
+    **dict.fromkeys((operator.add, operator.sub, operator.mul, torch.add, torch.sub, torch.mul), _elementwise_rule),
+}
+_METHOD_RULES: dict[str, Callable[[tuple, dict], torch.Tensor | None]] = dict.fromkeys(
+    ("add", "sub", "mul"), _elementwise_rule
+)
 
 
 def _run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
@@ -608,7 +659,8 @@ def _propagate(graph: fx.Graph, root: nn.Module, input_shape: tuple[int, int, in
                         if value is None:
                             value = _run_module(mod, node.target, args, kwargs, meta_modules)
                     else:
-                        rule = _FUNCTION_RULES.get(node.target) if op == "call_function" else None
+                        rules = _FUNCTION_RULES if op == "call_function" else _METHOD_RULES
+                        rule = rules.get(node.target)
                         value = rule(args, kwargs) if rule is not None else None
                         if value is None:
                             value = _call(node, args, kwargs)
@@ -886,6 +938,46 @@ def _point_names(graph: fx.Graph) -> dict[fx.Node, str]:
     return names
 
 
+_NCHW = (0, 1, 2, 3)
+
+
+def _permutation(node: fx.Node) -> tuple[int, ...] | None:
+    """The dims of a permute/transpose node (output dim j = input dim perm[j]), else None."""
+    if node.op not in ("call_method", "call_function"):
+        return None
+    name = node.target if node.op == "call_method" else getattr(node.target, "__name__", "")
+    args = node.args[1:]
+    if name == "permute":
+        dims = args[0] if len(args) == 1 and isinstance(args[0], (list, tuple)) else args
+        if len(dims) == 4 and all(isinstance(d, int) for d in dims):
+            return tuple(d % 4 for d in dims)
+    elif name in ("transpose", "swapaxes", "swapdims") and len(args) == 2 and all(isinstance(d, int) for d in args):
+        perm = list(_NCHW)
+        a, b = args[0] % 4, args[1] % 4
+        perm[a], perm[b] = perm[b], perm[a]
+        return tuple(perm)
+    return None
+
+
+def _layouts(nodes: list[fx.Node], values: dict[fx.Node, Any], is_conv: dict[fx.Node, bool]) -> dict:
+    """For each 4-D node, which input axis each of its axes holds (``_NCHW`` when unpermuted).
+
+    Follows permute/transpose through the graph so that channels-last tensors
+    (a convnext block permutes to N, H, W, C around its LayerNorm and Linear
+    layers) are not taken for (N, C, H, W) points. A conv's output is NCHW.
+    """
+    layout: dict[fx.Node, tuple[int, ...]] = {}
+    for n in nodes:
+        v = values.get(n)
+        if not (isinstance(v, torch.Tensor) and v.dim() == 4):
+            continue
+        source = next((p for p in n.all_input_nodes if p in layout), None)
+        base = layout[source] if source is not None and not is_conv[n] else _NCHW
+        perm = _permutation(n) if source is not None else None
+        layout[n] = tuple(base[d] for d in perm) if perm is not None else base
+    return layout
+
+
 def _graph_entries(graph: fx.Graph, root: nn.Module, values: dict[fx.Node, Any]) -> list[_Entry]:
     modules = dict(root.named_modules())
     nodes = list(graph.nodes)
@@ -898,11 +990,12 @@ def _graph_entries(graph: fx.Graph, root: nn.Module, values: dict[fx.Node, Any])
         conv_down[n] = any(is_conv[u] or conv_down[u] for u in n.users)
     cuts, joins = _cut_analysis(graph, values)
     names = _point_names(graph)
+    layouts = _layouts(nodes, values, is_conv)
     entries = []
     for n in nodes:
-        v = values.get(n)
-        if n.op in ("get_attr", "output") or not isinstance(v, torch.Tensor) or v.dim() != 4:
+        if n.op in ("get_attr", "output") or layouts.get(n) != _NCHW:
             continue
+        v = values[n]
         is_input = n.op == "placeholder" and names[n] == "input"
         module = n.target if n.op == "call_module" else ("" if is_input else _enclosing_module(n))
         join = joins.get(n)

@@ -412,3 +412,22 @@ def test_point_validation():
         Point("x", "", (1, 2, 2), 1, False, False, None, 0, 0, True)
     with pytest.raises(ValueError, match="three positive ints"):
         Point("x", "", (1, 2), 1, True, False, None, 0, 0, False)
+
+
+class _ChannelsLast(nn.Module):
+    # conv -> permute to (N, H, W, C) -> LayerNorm over C -> permute back -> conv
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 5, 1)
+        self.norm = nn.LayerNorm(5)
+        self.b = nn.Conv2d(5, 5, 1)
+
+    def forward(self, x):
+        return self.b(self.norm(self.a(x).permute(0, 2, 3, 1)).permute(0, 3, 1, 2))
+
+
+def test_channels_last_tensors_are_not_points():
+    pts = _by_name(points(_ChannelsLast(), (3, 6, 7), all=True))
+    # 'permute' and 'norm' hold (N, H, W, C) = (1, 6, 7, 5): not points
+    assert list(pts) == ["input", "a", "permute_1", "b"]
+    assert pts["permute_1"].shape == (5, 6, 7) and pts["permute_1"].cut
