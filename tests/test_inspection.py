@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -256,3 +257,172 @@ def test_describe_matrix_rejects_bad_input():
         I.describe_matrix(torch.zeros(2, 3), (H, W))
     with pytest.raises(SpliceError, match=r"size must be \(H, W\).*got \(32,\)"):
         I.describe_matrix(torch.eye(3).unsqueeze(0), (32,))
+
+
+# ----------------------------------------------------------------------------- capture, report, pictures
+
+N_IMAGES = 5
+SHEET = 4
+
+
+def _spliced_folder(path, warp, perturb: bool):
+    import warnings
+
+    from harness import perturb_warps_
+
+    from splice.errors import RandomWeightsWarning
+    from splice.store import save
+    from splice.surgery import insert
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RandomWeightsWarning)
+        model = insert("splice.models:tray_net", at=["input", "pool1"], warp=warp)
+    if perturb:
+        perturb_warps_(model, scale=0.05, seed=1)
+    save(model, path)
+    return path
+
+
+@pytest.fixture(scope="module")
+def identity_report(tmp_path_factory):
+    root = tmp_path_factory.mktemp("identity")
+    folder = _spliced_folder(root / "spliced", "affine", perturb=False)
+    return I.inspect(folder, data="digits-moved", n=N_IMAGES, out=root / "report", pictures=False), root / "report"
+
+
+@pytest.fixture(scope="module")
+def picture_report(tmp_path_factory):
+    root = tmp_path_factory.mktemp("pictures")
+    folder = _spliced_folder(root / "spliced", {"input": "affine", "pool1": "tps"}, perturb=True)
+    result = I.inspect(folder, data="digits-moved", n=N_IMAGES, out=root / "report", sheet_images=SHEET)
+    return result, root / "report", folder
+
+
+def _read_csv(path):
+    import csv
+
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def test_identity_splice_decomposes_to_the_identity_for_every_image(identity_report):
+    result, out = identity_report
+    rows = _read_csv(out / "warps.csv")
+    assert len(rows) == N_IMAGES * 2 and {r["point"] for r in rows} == {"input", "pool1"}
+    for row in rows:
+        assert abs(float(row["angle_deg"])) < 1e-9
+        assert abs(float(row["scale_1"]) - 1.0) < 1e-9 and abs(float(row["scale_2"]) - 1.0) < 1e-9
+        assert abs(float(row["shift_x_px"])) < 1e-9 and abs(float(row["shift_y_px"])) < 1e-9
+        assert row["reflection"] == "0" and row["tps_mean_px"] == ""
+    q = result["warps"]["input"]["quantities"]
+    assert q["angle_deg"]["mean"] == pytest.approx(0.0, abs=1e-9)
+    assert q["view_zoom_1"]["p95"] == pytest.approx(1.0, abs=1e-9)
+    assert result["warps"]["pool1"]["level"] == "feature" and result["warps"]["pool1"]["stride"] == [2.0, 2.0]
+    assert json.loads((out / "summary.json").read_text())["n_images"] == N_IMAGES
+    assert result["files"]["pictures"] == []
+
+
+def test_csv_rows_are_the_decomposition_of_the_captured_thetas(picture_report):
+    from splice.data import open_data
+    from splice.store import load
+    from splice.surgery import warps_of
+
+    result, out, folder = picture_report
+    rows = _read_csv(out / "warps.csv")
+    assert "angle_deg" in rows[0] and len(rows) == 2 * N_IMAGES
+    model = load(folder)
+    images = open_data("digits-moved", "test").images[:N_IMAGES]
+    cap = I.capture(model, images)  # the batch inspect used, so the float32 model rounds the same way
+    for point, warp in warps_of(model).items():
+        desc = I.describe_theta(warp, cap.thetas[point])
+        mine = [r for r in rows if r["point"] == point]
+        assert [int(r["image"]) for r in mine] == list(range(N_IMAGES))
+        for q in I.quantities_for(warp.family):
+            np.testing.assert_allclose([float(r[q]) for r in mine], desc[q].numpy(), rtol=1e-8, atol=1e-12)
+        stats = result["warps"][point]["quantities"]["angle_deg"]
+        # source: numpy.percentile / numpy.std on the same values
+        assert stats["p95"] == pytest.approx(float(np.percentile(desc["angle_deg"].numpy(), 95)), abs=1e-12)
+        assert stats["std"] == pytest.approx(float(np.std(desc["angle_deg"].numpy())), abs=1e-12)
+    assert "tps_max_px" in result["warps"]["pool1"]["quantities"]
+    assert "tps_max_px" not in result["warps"]["input"]["quantities"]
+
+
+def test_every_picture_decodes_with_the_expected_size(picture_report):
+    from PIL import Image
+
+    _, out, _ = picture_report
+    # layout (see splice.inspection): width = 2*12 + cols*(panels*160 + (panels-1)*6) + (cols-1)*24,
+    # height = 78 + rows*(36 + 160) + 12; histograms are 420 px per cell, 78 + 340 high
+    expected = {
+        "sheet_input.png": (24 + 3 * (3 * 160 + 2 * 6) + 2 * 24, 78 + 2 * 196 + 12),  # 4 images, 3 per row
+        "outline_pool1.png": (24 + 4 * 160 + 3 * 24, 78 + 196 + 12),  # 4 images in one row
+        "hist_input.png": (3 * 420, 78 + 340),  # angle, scales, shifts
+        "hist_pool1.png": (4 * 420, 78 + 340),  # ... and the tps displacements
+    }
+    assert sorted(p.name for p in out.glob("*.png")) == sorted(expected)
+    for name, size in expected.items():
+        with Image.open(out / name) as im:
+            im.load()  # decodes the whole image
+            assert im.format == "PNG" and im.size == size, name
+            assert len(im.getcolors(1 << 16) or range(1 << 16)) > 50  # not blank
+
+
+def test_render_inspect_prints_the_summary_table(picture_report):
+    from rich.console import Console
+
+    result, _, _ = picture_report
+    console = Console(record=True, width=200)
+    I.render_inspect(result, console)
+    text = console.export_text()
+    for word in ("warp at 'input': affine", "warp at 'pool1': tps", "angle_deg", "view_rotation_deg", "p95",
+                 "tps_max_px", "hist_pool1.png"):
+        assert word in text
+
+
+def test_capture_restores_the_model_and_rejects_plain_models():
+    from splice.surgery import warps_of
+
+    warp_model = _tiny_spliced()
+    warp_model.train()
+    cap = I.capture(warp_model, torch.rand(3, 1, 48, 48), batch_size=2)
+    assert cap.thetas["input"].shape == (3, 6) and cap.logits.shape == (3, 10)
+    assert warp_model.training and all(not w.record and w.last_theta is None for w in warps_of(warp_model).values())
+    with pytest.raises(SpliceError, match=r"capture needs a spliced model with at least one warp"):
+        I.capture(torch.nn.Conv2d(1, 1, 1), torch.rand(1, 1, 4, 4))
+
+
+def _tiny_spliced():
+    import warnings
+
+    from splice.errors import RandomWeightsWarning
+    from splice.surgery import insert
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RandomWeightsWarning)
+        return insert("splice.models:tray_net", at=["input"], warp="affine")
+
+
+def test_inspect_errors(tmp_path):
+    from splice.errors import DataError
+
+    with pytest.raises(DataError, match=r"n must be a positive integer; got 0"):
+        I.inspect(tmp_path, data="digits", n=0, out=tmp_path / "r")
+    with pytest.raises(SpliceError, match=r"not a splice folder"):
+        I.inspect(tmp_path, data="digits", out=tmp_path / "r")
+
+
+def test_map_points_matches_opencv_and_the_warp_grid():
+    import cv2
+
+    warp = Warp(WarpConfig(family="projective"), (1, H, W))
+    theta = torch.tensor([[1.1, 0.2, 0.05, -0.1, 0.9, 0.1, 0.2, -0.1]], dtype=torch.float64)
+    pts = torch.tensor([[-1.0, -1.0], [1.0, -1.0], [0.3, 0.7], [1.0, 1.0]], dtype=torch.float64)
+    # source: cv2.perspectiveTransform with the same 3x3 matrix
+    ref = cv2.perspectiveTransform(pts.numpy()[None], warp.matrix(theta)[0].numpy())[0]
+    np.testing.assert_allclose(I.map_points(warp, theta, pts)[0].numpy(), ref, atol=1e-12)
+    # tps: at the pixel centres the mapped points are the warp's own sampling grid
+    tps = Warp(WarpConfig(family="tps", tps_k=3), (1, 6, 8)).double()
+    theta = 0.1 * torch.randn(2, 18, dtype=torch.float64)
+    centres = grids.base_grid(6, 8)[:, :2]
+    np.testing.assert_allclose(I.map_points(tps, theta, centres).numpy(),
+                               tps.grid(theta, 6, 8).reshape(2, -1, 2).numpy(), atol=1e-12)
