@@ -348,8 +348,6 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
         reads: list[nn.Module] = []
         with _spying(mods, reads) as spied:
             graph = _run_tracer(root, rule)
-        if spied:
-            _unspy_meta(graph)
         # if no traced code read a `training` flag, a train-mode trace takes the same path
         if not spied or reads:
             for m in mods:
@@ -371,6 +369,7 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
 
 
 def _unspy_meta(graph: fx.Graph) -> None:
+    """Put the real classes back into ``nn_module_stack`` metadata (the tracer saw spies)."""
     for n in graph.nodes:
         stack = n.meta.get("nn_module_stack")
         if stack:
@@ -430,6 +429,7 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     except _FxFailure as failure:
         where, todo = _fx_failure_hint(failure, model)
         raise GraphError(f"torch.fx cannot trace {where}: {_first_line(failure.error)}; {todo}") from failure.error
+    _unspy_meta(graph)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     gm.training = model.training  # submodules keep their own (copied) flags
     return gm
@@ -457,15 +457,20 @@ def _meta_module(mod: nn.Module) -> nn.Module:
     for t in itertools.chain(mod.parameters(), mod.buffers()):
         if isinstance(t, (nn.parameter.UninitializedParameter, nn.parameter.UninitializedBuffer)):
             continue
-        meta = torch.empty_like(t, device=_META)
+        meta = _meta_empty(t.shape, t.dtype)
         memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
     copied = copy.deepcopy(mod, memo)
     copied.eval()
     return copied
 
 
+def _meta_empty(shape, dtype: torch.dtype) -> torch.Tensor:
+    # torch.empty is a C++ call on meta; torch.empty_like goes through a Python reference and costs ten times more
+    return torch.empty(shape, dtype=dtype, device=_META)
+
+
 def _to_meta(value: Any) -> Any:
-    return torch.empty_like(value, device=_META) if isinstance(value, torch.Tensor) else value
+    return _meta_empty(value.shape, value.dtype) if isinstance(value, torch.Tensor) else value
 
 
 def _fetch_attr(root: nn.Module, target: str) -> Any:
@@ -491,7 +496,7 @@ def _conv2d_rule(mod: nn.Conv2d, x: torch.Tensor) -> torch.Tensor | None:
         return None
     n, _, h, w = x.shape
     if mod.padding == "same":
-        return torch.empty((n, mod.out_channels, h, w), dtype=x.dtype, device=_META)
+        return _meta_empty((n, mod.out_channels, h, w), x.dtype)
     padding = (0, 0) if mod.padding == "valid" else mod.padding
     out = []
     # output size of a convolution: floor((size + 2 pad - dilation (kernel - 1) - 1) / stride) + 1
@@ -500,7 +505,7 @@ def _conv2d_rule(mod: nn.Conv2d, x: torch.Tensor) -> torch.Tensor | None:
         if o <= 0:
             return None
         out.append(o)
-    return torch.empty((n, mod.out_channels, *out), dtype=x.dtype, device=_META)
+    return _meta_empty((n, mod.out_channels, *out), x.dtype)
 
 
 def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | None:
@@ -509,7 +514,7 @@ def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | No
     x = args[0]
     cls = type(mod)
     if cls in _SAME_SHAPE_MODULES:
-        return torch.empty_like(x)
+        return _meta_empty(x.shape, x.dtype)
     if cls is nn.Conv2d:
         return _conv2d_rule(mod, x)
     if cls is nn.BatchNorm2d:
@@ -520,16 +525,16 @@ def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | No
         ok = tuple(x.shape[x.dim() - len(mod.normalized_shape):]) == tuple(mod.normalized_shape)
     elif cls is nn.Linear:
         if x.dim() >= 1 and x.shape[-1] == mod.in_features and x.dtype == mod.weight.dtype:
-            return torch.empty((*x.shape[:-1], mod.out_features), dtype=x.dtype, device=_META)
+            return _meta_empty((*x.shape[:-1], mod.out_features), x.dtype)
         return None
     elif cls is nn.AdaptiveAvgPool2d and x.dim() in (3, 4):
         size = mod.output_size
         size = (size, size) if isinstance(size, int) else size
         h, w = (o if o is not None else i for o, i in zip(size, x.shape[-2:]))
-        return torch.empty((*x.shape[:-2], h, w), dtype=x.dtype, device=_META)
+        return _meta_empty((*x.shape[:-2], h, w), x.dtype)
     else:
         return None
-    return torch.empty_like(x) if ok else None
+    return _meta_empty(x.shape, x.dtype) if ok else None
 
 
 def _broadcast(a: tuple[int, ...], b: tuple[int, ...]) -> tuple[int, ...] | None:
@@ -557,7 +562,7 @@ def _elementwise_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
     )
     if shape is None:
         return None
-    return torch.empty(shape, dtype=torch.result_type(a, b), device=_META)
+    return _meta_empty(shape, torch.result_type(a, b))
 
 
 def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
@@ -579,7 +584,7 @@ def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
         if any(a != b for i, (a, b) in enumerate(zip(shape, t.shape)) if i != dim):
             return None
         shape[dim] += t.shape[dim]
-    return torch.empty(shape, dtype=first.dtype, device=_META)
+    return _meta_empty(shape, first.dtype)
 
 
 _FUNCTION_RULES: dict[Any, Callable[[tuple, dict], torch.Tensor | None]] = {
@@ -623,9 +628,13 @@ def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: d
         raise
 
 
-def _propagate(graph: fx.Graph, root: nn.Module, input_shape: tuple[int, int, int]) -> dict[fx.Node, Any]:
-    """Run ``graph`` on a batch-1 meta tensor; return every node's (meta) value."""
-    modules = dict(root.named_modules())
+def _propagate(
+    graph: fx.Graph, root: nn.Module, modules: dict[str, nn.Module], input_shape: tuple[int, int, int]
+) -> dict[fx.Node, Any]:
+    """Run ``graph`` on a batch-1 meta tensor; return every node's (meta) value.
+
+    ``modules`` maps qualnames to the modules of ``root``.
+    """
     meta_modules: dict[str, nn.Module] = {}
     values: dict[fx.Node, Any] = {}
     load = values.__getitem__
@@ -907,10 +916,13 @@ def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], all:
             chosen = e
             break
     out = []
+    costs: dict[tuple[int, int, int], tuple[int, int]] = {}
     for e in entries:
         if not (all or e.kind == "input" or e.between_convs):
             continue
-        params, macs = warp_cost(config, e.shape)
+        if e.shape not in costs:
+            costs[e.shape] = warp_cost(config, e.shape)
+        params, macs = costs[e.shape]
         out.append(Point(
             name=e.name, module=e.module, shape=e.shape, stride=_stride(in_hw, e.shape[1:]),
             cut=e.cut, in_branch=e.join is not None, join=e.join,
@@ -978,8 +990,7 @@ def _layouts(nodes: list[fx.Node], values: dict[fx.Node, Any], is_conv: dict[fx.
     return layout
 
 
-def _graph_entries(graph: fx.Graph, root: nn.Module, values: dict[fx.Node, Any]) -> list[_Entry]:
-    modules = dict(root.named_modules())
+def _graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[fx.Node, Any]) -> list[_Entry]:
     nodes = list(graph.nodes)
     is_conv = {n: _is_conv_node(n, modules) for n in nodes}
     conv_up: dict[fx.Node, bool] = {}  # a conv upstream, or the node itself
@@ -1046,8 +1057,9 @@ def points(
     except _FxFailure as failure:
         entries = _module_view(model, shape, failure)
         return _build_points(entries, shape, all, warp)
+    modules = dict(root.named_modules())
     try:
-        values = _propagate(graph, root, shape)
+        values = _propagate(graph, root, modules, shape)
     except _ShapeFailure as failure:
         raise GraphError(
             f"shape propagation on the meta device failed at point {_point_names(graph)[failure.node]!r} "
@@ -1055,7 +1067,7 @@ def points(
             "check that the model takes inputs of this (C, H, W), or mark the failing module as a leaf "
             "(--leaf TYPE, Python: leaves=[TYPE])"
         ) from failure.error
-    return _build_points(_graph_entries(graph, root, values), shape, all, warp)
+    return _build_points(_graph_entries(graph, modules, values), shape, all, warp)
 
 
 # ----------------------------------------------------------------------------- fallback: module boundaries
