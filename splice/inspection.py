@@ -647,6 +647,10 @@ def _header(fig, size: tuple[int, int], title: str, note: str) -> None:
     fig.text(MARGIN / w, 1.0 - 40 / h, note, ha="left", va="top", fontsize=FONT_SIZE, wrap=True)
 
 
+def _count(n: int, of: int | None) -> str:
+    return f"the first {n} of {of} images" if of is not None and of > n else f"{n} images"
+
+
 def _class_text(classes: list[str] | None, k: int | None) -> str:
     if k is None:
         return "?"
@@ -685,7 +689,7 @@ def _geometry(warp, theta: Tensor, feature_hw, stride) -> tuple[Tensor, list[Ten
 
 
 def draw_contact_sheet(path, warp, point: str, theta: Tensor, images: Tensor, *, labels=None, predicted=None,
-                       classes=None, indices=None, normalisation=None) -> Path:
+                       classes=None, indices=None, normalisation=None, of: int | None = None) -> Path:
     """Contact sheet of an input-level warp: input | sampling grid on the input | warped output, per image."""
     from .pictures import FONT_SIZE, new_figure, save_png
 
@@ -696,7 +700,7 @@ def draw_contact_sheet(path, warp, point: str, theta: Tensor, images: Tensor, *,
     outline, lattice = _geometry(warp, theta, images.shape[-2:], (1.0, 1.0))
     warped = _warp_output(warp, theta, images, normalisation)
     c, h, w = images.shape[1:]
-    _header(fig, size, f"Warp at '{point}' ({warp.family}, {c}x{h}x{w}): {n} images",
+    _header(fig, size, f"Warp at '{point}' ({warp.family}, {c}x{h}x{w}): {_count(n, of)}",
             "Each image: the input  |  the input with the region the output samples (orange: the output's "
             "border, blue: lattice, yellow dot: the output's top-left corner; grey: outside the input)  |  "
             "the warped image the network sees.  'view' = visible rotation (+ = clockwise) and zoom.")
@@ -718,7 +722,7 @@ def draw_contact_sheet(path, warp, point: str, theta: Tensor, images: Tensor, *,
 
 
 def draw_outline_sheet(path, warp, point: str, theta: Tensor, images: Tensor, stride, *, labels=None,
-                       classes=None, indices=None) -> Path:
+                       classes=None, indices=None, of: int | None = None) -> Path:
     """Feature-level warp: its sampling outline and lattice projected onto each input image through the stride."""
     from .pictures import FONT_SIZE, new_figure, save_png
 
@@ -730,7 +734,8 @@ def draw_outline_sheet(path, warp, point: str, theta: Tensor, images: Tensor, st
     desc = describe_theta(warp, theta)
     sy, sx = stride
     stride_text = f"{sx:g}" if sx == sy else f"{sy:g}x{sx:g}"
-    _header(fig, size, f"Warp at feature point '{point}' ({warp.family}, {c}x{h}x{w}, stride {stride_text})",
+    _header(fig, size, f"Warp at feature point '{point}' ({warp.family}, {c}x{h}x{w}, stride {stride_text}): "
+            f"{_count(n, of)}",
             "The region the warp samples from its feature map, projected back onto the input image "
             "through the stride (orange: border, blue: lattice, yellow dot: top-left corner).")
     for i in range(n):
@@ -789,7 +794,8 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
     _header(fig, size, f"Warp at '{point}' ({family}): distributions over {n} images",
             "Sampling side (the map from output to input), in pixels of the warped tensor. The top axis of the "
             "angle shows the content's visible rotation (= -angle); a warp that undoes a clockwise turn by a "
-            "has angle_deg = a.")
+            "has angle_deg = a." + (" For tps, angle, scales and shift describe the spline's affine part."
+                                    if family == "tps" else ""))
     colours = [OKABE_ITO["blue"], OKABE_ITO["orange"]]
     for k, (label, series) in enumerate(groups):
         left, bottom, aw, ah = k * HIST_CELL_W + 62, 52, HIST_CELL_W - 84, HIST_CELL_H - 120
@@ -916,7 +922,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
         if pictures:
             k = min(sheet_images, images.shape[0])
             name = _safe_name(point)
-            common = {"labels": labels[:k], "classes": classes, "indices": indices[:k]}
+            common = {"labels": labels[:k], "classes": classes, "indices": indices[:k], "of": int(images.shape[0])}
             if level == "input":
                 path = draw_contact_sheet(outdir / f"sheet_{name}.png", warp, point, theta[:k], images[:k],
                                           predicted=None if predicted is None else predicted[:k],
@@ -969,6 +975,9 @@ def render_inspect(result: Mapping, console) -> None:
             table.add_row(q, _fmt(stats["mean"]), _fmt(stats["std"]), _fmt(stats["p5"]), _fmt(stats["p95"]),
                           result["help"].get(q, ""))
         console.print(table)
+        if w["family"] == "tps":
+            console.print("  tps: the rotation, scale and shift rows describe the spline's affine part; "
+                          "tps_mean_px / tps_max_px measure the control points' displacement.")
     files = result["files"]
     written = [files["csv"], files["summary"], *files["pictures"]]
     console.print(f"wrote {result.get('out', '.')}/: {', '.join(written)}")
