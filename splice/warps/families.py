@@ -77,16 +77,16 @@ class WarpError(SpliceError, ValueError):
     """A warp family, sampler, padding or shape is not usable."""
 
 
-def _sep(hint: str) -> str:
-    """Join a :func:`suggest` hint ("; did you mean 'x'?") and the advice after it."""
-    return f"{hint} " if hint else "; "
+def _advice(hint: str, text: str) -> str:
+    """``"; choose ..."`` or, after a "did you mean" hint, ``"? Choose ..."``."""
+    return f"{hint} {text[0].upper()}{text[1:]}" if hint else f"; {text}"
 
 
 def _check_choice(field: str, value: Any, allowed: tuple[str, ...]) -> None:
     if not isinstance(value, str) or value not in allowed:
         hint = suggest(value, allowed) if isinstance(value, str) else ""
         raise WarpError(
-            f"{field}={value!r} is not supported{_sep(hint)}choose one of: {', '.join(allowed)}."
+            f"{field}={value!r} is not supported{_advice(hint, 'choose one of: ' + ', '.join(allowed))}."
         )
 
 
@@ -146,7 +146,7 @@ class WarpConfig:
             hint = suggest(unknown[0], names)
             raise WarpError(
                 f"unknown warp config key(s) {', '.join(repr(k) for k in unknown)}"
-                f"{_sep(hint)}remove them; known keys: {', '.join(names)}."
+                f"{_advice(hint, 'remove them; known keys: ' + ', '.join(names))}."
             )
         return cls(**dict(d))
 
@@ -170,10 +170,7 @@ def identity_theta(
     """The raw parameter vector ``(P,)`` whose warp is exactly the identity."""
     n = family_param_count(family, tps_k)
     theta = torch.zeros(n, dtype=dtype, device=device)
-    if family == "affine":
-        theta[0] = 1.0
-        theta[4] = 1.0
-    elif family == "projective":
+    if family in ("affine", "projective"):  # the diagonal of the (top of the) matrix
         theta[0] = 1.0
         theta[4] = 1.0
     return theta
@@ -198,6 +195,11 @@ def attention_scale(r: Tensor) -> Tensor:
     the next steps bring ``r`` back, so ``s`` hovers at the bound 1 instead of
     sticking. ``exp`` underflows to 0 only for ``|r| > ~87`` (float32); that
     collapses the grid to one point but stays finite.
+
+    The shift ``(tx, ty)`` is deliberately not clamped to the natural crop
+    constraint ``|t| <= 1 - s``: writing ``t = (1 - s) tanh(raw)`` would give
+    the shift a zero gradient at the identity (``s = 1``), so the warp could
+    not start by translating. Crops that leave the image read the padding.
     """
     return torch.exp(-torch.where(r >= 0, r, -r))
 

@@ -124,7 +124,7 @@ class _BinPool(nn.Module):
         self.register_buffer("rows", _bin_matrix(height, side, dtype=dtype, device=device), persistent=False)
         self.register_buffer("cols", _bin_matrix(width, side, dtype=dtype, device=device), persistent=False)
 
-    def _apply(self, fn, recurse=True):  # noqa: D401 - torch hook
+    def _apply(self, fn, recurse=True):  # torch hook behind .to(), .double(), ...
         super()._apply(fn, recurse)
         # Rebuild from float64 so a float32 -> float64 round trip keeps exact bins.
         h, w = self._size

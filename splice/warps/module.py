@@ -133,6 +133,13 @@ class Warp(nn.Module):
     Attributes:
         family, n_params: the family name and its number of raw parameters.
         record: when True, ``forward`` stores the detached ``theta`` in ``last_theta``.
+
+    Training notes: at the exact identity only the head's final layer gets a
+    gradient (the earlier layers sit behind its zero weight); the rest follow
+    after the first update. The ``nearest`` sampler is piecewise constant in the
+    grid, so it gives the head no gradient at all; train with bilinear or bicubic.
+    ONNX: exports with both torch exporters at opsets 16-20 (GridSample); the
+    grid is specialised to the traced ``H x W``, the batch size stays dynamic.
     """
 
     def __init__(
