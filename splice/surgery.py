@@ -119,7 +119,7 @@ def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
             parent = child
         if not owner_path:
             parent = gm
-        value = getattr(src_owner, leaf)
+        value = copy.deepcopy(getattr(src_owner, leaf))  # never share storage with the caller's model
         if isinstance(value, nn.Parameter):
             parent.register_parameter(leaf, value)
         else:
@@ -149,19 +149,22 @@ def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float
     return result
 
 
-def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None) -> fx.GraphModule:
-    """Trace a copy of ``model`` and insert the planned warps (no checks)."""
+def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
+                traced: fx.GraphModule | None = None) -> fx.GraphModule:
+    """Trace ``model`` (fx works on a private clone) and insert the planned warps (no checks).
+
+    ``traced`` may pass in a fresh, unused result of ``graph.trace(model)``.
+    """
     from . import graph
     from .warps import Warp
 
-    work = copy.deepcopy(model)
-    gm = graph.trace(work, leaves=leaves)
+    gm = traced if traced is not None else graph.trace(model, leaves=leaves)
     if listing is None:
-        listing = graph.points(work, input_shape, all=True, leaves=leaves)
+        listing = graph.points(model, input_shape, all=True, leaves=leaves)
     shapes = {p.name: tuple(p.shape) for p in listing}
     nodes = _node_map(gm)
     order = {n: i for i, n in enumerate(gm.graph.nodes)}
-    param = next(iter(work.parameters()), None)
+    param = next(iter(model.parameters()), None)
     factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
     if WARP_PREFIX in dict(gm.named_children()):
         raise PointError(f"the model already has a submodule named {WARP_PREFIX!r}; it cannot be spliced again")
@@ -194,7 +197,7 @@ def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, le
         # a later warp may read this point as its localisation input: it sees the warped tensor
     gm.graph.lint()
     gm.recompile()
-    _restore_missing_state(gm, work)
+    _restore_missing_state(gm, model)
     gm.train(model.training)
     return gm
 
@@ -245,9 +248,9 @@ def insert(
     leaves = tuple(leaves) or tuple(src.leaves)
     base = src.model
     work_listing = graph.points(base, src.input_shape, all=True, leaves=leaves)
-    gm_probe = graph.trace(copy.deepcopy(base), leaves=leaves)
+    traced = graph.trace(base, leaves=leaves)
     requested = [at] if isinstance(at, str) else list(at)
-    names = _resolve_points(requested, work_listing, gm_probe)
+    names = _resolve_points(requested, work_listing, traced)
     by_name = {p.name: p for p in work_listing}
 
     def config_for(name: str):
@@ -275,7 +278,7 @@ def insert(
                 SpliceWarning,
                 stacklevel=2,
             )
-    gm = _apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing)
+    gm = _apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)
     gm.splice_info = {
         "spec": src.spec,
         "kwargs": dict(src.kwargs),
