@@ -166,6 +166,12 @@ def test_against_sees_the_same_images_and_has_the_same_shape(tmp_path):
     with Image.open(result["plot"]) as im:
         im.load()
         assert im.size == (380, 70 + 330)  # one 380x330 cell under a 70-pixel header
+    from rich.console import Console
+
+    console = Console(record=True, width=200)
+    E.render_eval(result, console)
+    text = console.export_text()
+    assert "Δ accuracy" in text and "rotate" in text and f"{result['clean']['accuracy']:.4f}" in text
 
 
 def test_class_count_mismatch_is_a_clear_error():
