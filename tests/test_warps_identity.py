@@ -341,3 +341,17 @@ def test_nearest_sampler_gives_the_head_no_gradient():
         warp.head.fc2.weight.normal_(0.0, 1e-2)
     _loss(warp, torch.randn(2, 1, 10, 10)).backward()
     assert torch.count_nonzero(warp.head.fc2.bias.grad) == 0
+
+
+@pytest.mark.parametrize("family", ["affine", "tps"])
+def test_meta_device_then_to_empty_and_reset(family):
+    # Reference: the input itself. Built on the meta device (as shape tools do),
+    # materialised with to_empty(): buffers are rebuilt, reset_parameters()
+    # restores the exact identity.
+    warp = Warp(WarpConfig(family=family), (3, 20, 24), device="meta")
+    assert warp.base_grid.is_meta and warp.head.fc2.weight.is_meta
+    warp.to_empty(device="cpu")
+    warp.reset_parameters()
+    torch.testing.assert_close(warp.base_grid, grids.base_grid(20, 24, dtype=torch.float32), rtol=0, atol=0)
+    x = torch.randn(2, 3, 20, 24)
+    assert torch.equal(warp(x), x)

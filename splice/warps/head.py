@@ -174,11 +174,20 @@ class LocalisationHead(nn.Module):
         self.pool2 = _BinPool(s["h1"], s["w1"], POOL_SIDE, **kw)
         self.fc1 = nn.Linear(POOL_SIDE * POOL_SIDE * width, 2 * width, **kw)
         self.fc2 = nn.Linear(2 * width, n_out, **kw)
+        self._identity_values = tuple(float(v) for v in identity.detach().cpu().double())
         self.register_buffer(
-            "identity", identity.detach().clone().to(device=device, dtype=dtype or torch.get_default_dtype()),
+            "identity",
+            torch.tensor(self._identity_values, dtype=dtype or torch.get_default_dtype(), device=device),
             persistent=False,
         )
         self.reset_parameters()
+
+    def _apply(self, fn, recurse=True):  # torch hook behind .to(), .double(), .to_empty() ...
+        super()._apply(fn, recurse)
+        # rebuilt rather than converted, so .to_empty() (meta -> real) keeps exact values
+        ref = self.identity
+        self.identity = torch.tensor(self._identity_values, dtype=ref.dtype, device=ref.device)
+        return self
 
     @property
     def final(self) -> nn.Linear:
