@@ -39,8 +39,7 @@ def _interleaved_medians(a, b, repeats: int) -> tuple[float, float]:
     return statistics.median(times_a), statistics.median(times_b)
 
 
-def run(models=_MODELS, repeats: int = _REPEATS) -> list[dict]:
-    """Time ``points()`` against one forward pass; one row per model."""
+def _measure(models, repeats: int) -> list[dict]:
     import torch
     import torchvision
 
@@ -71,8 +70,13 @@ def run(models=_MODELS, repeats: int = _REPEATS) -> list[dict]:
     return rows
 
 
+def run(models=_MODELS, repeats: int = _REPEATS) -> list[dict]:
+    """Time ``points()`` against one forward pass: rows ``{"name", "ratio", "goal", "pass"}``."""
+    return [{k: row[k] for k in ("name", "ratio", "goal", "pass")} for row in _measure(models, repeats)]
+
+
 def main() -> int:
-    for row in run():
+    for row in _measure(_MODELS, _REPEATS):
         print(f"{row['name']}: points {row['points_ms']} ms, forward {row['forward_ms']} ms")
         verdict = "PASS" if row["pass"] else "FAIL"
         print(f"RESULT {row['name']} ratio={row['ratio']:.2f} goal<={row['goal']} {verdict}")

@@ -328,14 +328,23 @@ def _describe_difference(eval_graph: fx.Graph, train_graph: fx.Graph) -> str | N
     a, b = _signature(eval_graph), _signature(train_graph)
     if a == b:
         return None
-    for x, y in itertools.zip_longest(a, b):
-        if x != y:
-            if x is None:
-                return f"train mode adds node {y[0]!r}"
-            if y is None:
-                return f"eval mode adds node {x[0]!r}"
-            return f"first difference at node {x[0]!r} (eval) / {y[0]!r} (train)"
-    return "the graphs differ"  # equal lengths and items compare equal pairwise but not as lists
+    in_eval, in_train = [x[0] for x in a], [y[0] for y in b]
+    eval_names, train_names = set(in_eval), set(in_train)
+    added = [n for n in in_train if n not in eval_names]
+    dropped = [n for n in in_eval if n not in train_names]
+
+    def some(names):
+        return ", ".join(repr(n) for n in names[:3]) + (", ..." if len(names) > 3 else "")
+
+    parts = []
+    if added:
+        parts.append(f"train mode adds node {some(added)}")
+    if dropped:
+        parts.append(f"eval mode adds node {some(dropped)}")
+    if not parts:
+        first = next(x for x, y in zip(a, b) if x != y)
+        parts.append(f"node {first[0]!r} differs")
+    return "; ".join(parts)
 
 
 def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:

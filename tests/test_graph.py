@@ -263,7 +263,8 @@ def test_value_gate_as_leaf_works():
 
 def test_shape_gate_falls_back_to_module_boundaries():
     model = _Gated(_ShapeGate())
-    with pytest.warns(TraceFallbackWarning, match=r"could not trace module 'gate' \(_ShapeGate\).*only 'input'"):
+    with pytest.warns(TraceFallbackWarning, match=r"could not trace module 'gate' \(_ShapeGate\) \(TraceError: "
+                                                  r"symbolically traced variables.*only 'input'"):
         pts = points(model, (3, 8, 8), all=True)
     assert [p.name for p in pts] == ["input", "conv1", "gate", "conv2"]
     assert [p.shape for p in pts] == [(3, 8, 8), (4, 8, 8), (4, 4, 4), (4, 4, 4)]
@@ -337,6 +338,32 @@ def test_train_eval_difference_warns():
     with pytest.warns(TraceModeWarning):
         gm = graph.trace(_ModeDependent())
     assert "mul" not in {n.name for n in gm.graph.nodes}
+
+
+class _ReadsTrainingOnly(nn.Module):
+    # reads self.training, but both modes trace to the same graph: no warning
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+
+    def forward(self, x):
+        scale = 1.0 if self.training else 1.0
+        return self.conv(x) * scale
+
+
+class _Registered(_ModeDependent):
+    # a class with __init_subclass__ is never given a spy subclass, so splice
+    # always traces it twice; the difference must still be found
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+
+
+def test_mode_check_paths():
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert [p.name for p in points(_ReadsTrainingOnly(), (3, 4, 4), all=True)] == ["input", "conv", "mul"]
+    with pytest.warns(TraceModeWarning, match=r"graphs of _Registered differ \(train mode adds node 'mul'\)"):
+        points(_Registered(), (3, 4, 4))
 
 
 _OFFSET = torch.full((1, 3, 1, 1), 0.25)  # a global tensor: fx stores it on the traced root
