@@ -145,25 +145,29 @@ def _check_opset(opset: int, exporter: str) -> None:
         )
 
 
-def _output_names(model: nn.Module, example: torch.Tensor) -> list[str]:
+def _output_names(model: nn.Module, example: torch.Tensor, n_outputs: int | None) -> list[str]:
     from .verify import flatten_outputs
 
-    with torch.no_grad():
-        flat = flatten_outputs(model(example))
-    return [f"output_{i}" for i in range(len(flat))]
+    if n_outputs is None:
+        with torch.no_grad():
+            n_outputs = len(flatten_outputs(model(example)))
+    return [f"output_{i}" for i in range(n_outputs)]
 
 
 def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
-                      exporter: str = "torchscript", fold_constants: bool = True) -> bytes:
+                      exporter: str = "torchscript", fold_constants: bool = True,
+                      n_outputs: int | None = None) -> bytes:
     """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
 
     ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
-    ``'dynamo'`` uses the torch.export based exporter (opset 18+).
+    ``'dynamo'`` uses the torch.export based exporter (opset 18+). Outputs are
+    named ``output_0 ...`` in the order of :func:`splice.verify.flatten_outputs`;
+    pass ``n_outputs`` when it is known to save the forward pass that counts them.
     """
     _check_opset(opset, exporter)
     was_training = model.training
     model.eval()
-    names = _output_names(model, example)
+    names = _output_names(model, example, n_outputs)
     try:
         with warnings.catch_warnings():
             # the TorchScript exporter announces its own deprecation; the tracer
@@ -245,20 +249,43 @@ def _ort_session(proto):
 
 
 def _patch_initializers(proto, values: dict[str, torch.Tensor]):
-    """A copy of ``proto`` with the named initializers replaced, or ``None`` if any is missing."""
+    """A copy of ``proto`` with the named tensors replaced, or ``None`` when that is not safe.
+
+    The TorchScript exporter merges equal initializers: two zero-initialised
+    heads of one shape share one tensor, and the second name is an Identity
+    node's output. A shared initializer is patched only when every name it
+    feeds is in ``values`` with the same new value; if it also feeds a tensor
+    that is not being patched (or a name is missing) the result is ``None``.
+    """
     from onnx import numpy_helper
 
     inits = {init.name: i for i, init in enumerate(proto.graph.initializer)}
-    if not values or any(name not in inits for name in values):
+    alias = {n.output[0]: n.input[0] for n in proto.graph.node
+             if n.op_type == "Identity" and len(n.input) == 1 and n.input[0] in inits}
+    consumed = {name for n in proto.graph.node if n.op_type != "Identity" for name in n.input}
+    consumed |= {o.name for o in proto.graph.output}
+    if not values:
         return None
+    plan: dict[str, torch.Tensor] = {}
+    for name, value in values.items():
+        root = name if name in inits else alias.get(name)
+        if root is None:
+            return None
+        if root in plan and not torch.equal(plan[root], value):
+            return None
+        plan[root] = value
+    for root in plan:
+        names = {root} | {out for out, src in alias.items() if src == root}
+        if any(n in consumed and n not in values for n in names):
+            return None  # the tensor is shared with something that must keep its value
     patched = type(proto)()
     patched.CopyFrom(proto)
-    for name, value in values.items():
-        old = patched.graph.initializer[inits[name]]
+    for root, value in plan.items():
+        old = patched.graph.initializer[inits[root]]
         arr = value.detach().cpu().numpy().astype(numpy_helper.to_array(old).dtype)
         if tuple(arr.shape) != tuple(old.dims):
             return None
-        patched.graph.initializer[inits[name]].CopyFrom(numpy_helper.from_array(arr, name))
+        patched.graph.initializer[inits[root]].CopyFrom(numpy_helper.from_array(arr, root))
     return patched
 
 
@@ -361,7 +388,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
                 how = "re-export"
                 opset = next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 17)
                 patched = _load_onnx(export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
-                                                       dynamic_batch=len({b.shape[0] for b in batches}) > 1))
+                                                       dynamic_batch=len({b.shape[0] for b in batches}) > 1,
+                                                       fold_constants=False,
+                                                       n_outputs=len(session.get_outputs())))
             perturbed = run(twin, _ort_session(patched))
     finally:
         model.train(was_training)

@@ -446,8 +446,17 @@ def _integrity_row(path: Path, recorded: str, actual: str) -> CheckResult:
         "hash mismatch")
 
 
+def _all_finite(t: torch.Tensor) -> bool:
+    # A NaN or an Inf anywhere makes the sum NaN or Inf; a finite sum needs no
+    # element-wise pass. Only an overflowing sum of finite values is re-checked.
+    if t.numel() == 0:
+        return True
+    total = t.detach().double().sum() if t.dtype in (torch.float16, torch.bfloat16) else t.detach().sum()
+    return bool(torch.isfinite(total)) or bool(torch.isfinite(t).all())
+
+
 def _finite_row(state: Mapping[str, torch.Tensor], where: str) -> CheckResult:
-    bad = sorted(k for k, v in state.items() if v.is_floating_point() and not bool(torch.isfinite(v).all()))
+    bad = sorted(k for k, v in state.items() if v.is_floating_point() and not _all_finite(v))
     numbers = {"tensors": len(state), "non_finite": bad}
     if not bad:
         return CheckResult("finite", True, numbers, f"all {len(state)} tensors are finite", f"{len(state)} tensors")
@@ -708,7 +717,8 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
     return out
 
 
-def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str) -> tuple[CheckResult, str | None]:
+def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
+              n_outputs: int | None) -> tuple[CheckResult, str | None]:
     import hashlib
 
     from .errors import SpliceError
@@ -720,7 +730,7 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
     try:
         # constant folding only tidies the graph (onnxruntime folds again when it
         # loads it) and costs more than the export itself on deep nets
-        data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False)
+        data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False, n_outputs=n_outputs)
     except SpliceError as exc:
         return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed"), None
     seconds = time.perf_counter() - start
@@ -781,6 +791,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     base.eval()
     spliced.eval()
     onnx_digest = None
+    n_outputs = None
     try:
         for parts in head_params.values():
             for ps in parts.values():
@@ -825,6 +836,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
                     with torch.no_grad():
                         per_warp[name] = compare_outputs(_detached(id_out), _only_copy(spliced, name)(x), tol=math.inf)
             rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
+            n_outputs = len(flatten_outputs(id_out))
         rows.append(provenance)
         if out is not None:
             grads, gerr = _gradients(out, head_params, seed)
@@ -834,7 +846,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
             rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
                                     "not run"))
         if onnx:
-            row, onnx_digest = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter)
+            row, onnx_digest = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter, n_outputs=n_outputs)
             rows.append(row)
     finally:
         for parts in head_params.values():

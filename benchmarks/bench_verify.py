@@ -1,0 +1,98 @@
+"""What a full ``verify --onnx`` costs, in batch-1 forward passes of the base.
+
+A randomly initialised torchvision resnet50 (``weights=None``, 3x224x224) is
+spliced at its recommended point(s) and saved to a temporary folder. The
+measured call is the whole certificate, ``splice.verify(folder, onnx=True)``
+with the library defaults (probe batch 2, float32, opset 17): rebuilding the
+base and the spliced model from the folder, hashing, every check, the ONNX
+export and both onnxruntime comparisons. The baseline is one batch-1 eval-mode
+forward pass of the same base model, timed in the same run as the median of
+several repeats taken before and after the verification (the machine's load
+changes both alike). Goal: a ratio of at most 20.
+
+Run ``python benchmarks/bench_verify.py``; ``run()`` returns the rows for
+``benchmarks/run.py``.
+"""
+
+from __future__ import annotations
+
+import statistics
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+__all__ = ["run", "main"]
+
+_GOAL = 20.0
+_SHAPE = (3, 224, 224)
+_FORWARD_REPEATS = 5
+
+
+def _forward_times(model, x, repeats: int) -> list[float]:
+    import torch
+
+    times = []
+    with torch.no_grad():
+        for _ in range(repeats):
+            start = time.perf_counter()
+            model(x)
+            times.append(time.perf_counter() - start)
+    return times
+
+
+def run(model_name: str = "resnet50", repeats: int = 1) -> list[dict]:
+    """Time ``verify(folder, onnx=True)`` against one forward pass; one row."""
+    import torch
+
+    import splice
+    from splice.errors import RandomWeightsWarning
+    from splice.store import read_manifest
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RandomWeightsWarning)
+        src = splice.load_source(f"torchvision:{model_name}", input_shape=_SHAPE)
+        spliced = splice.insert(src, at="recommended")
+    base = src.model.eval()
+    x = torch.randn(1, *_SHAPE)
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = splice.save(spliced, Path(tmp) / "spliced")
+        del spliced
+        _forward_times(base, x, 2)  # warm-up
+        forwards = _forward_times(base, x, _FORWARD_REPEATS)
+        runs = []
+        report = None
+        for _ in range(repeats):
+            start = time.perf_counter()
+            report = splice.verify(folder, onnx=True)
+            runs.append(time.perf_counter() - start)
+            forwards += _forward_times(base, x, _FORWARD_REPEATS)
+        points = [p["name"] for p in read_manifest(folder)["points"]]
+    forward = statistics.median(forwards)
+    ours = statistics.median(runs)
+    ratio = ours / forward
+    return [{
+        "name": f"verify_onnx_{model_name}",
+        "ratio": round(ratio, 2),
+        "goal": _GOAL,
+        "pass": ratio <= _GOAL and report is not None and report.passed,
+        "verify_s": round(ours, 2),
+        "forward_ms": round(forward * 1e3, 1),
+        "certificate_passed": bool(report is not None and report.passed),
+        "points": points,
+    }]
+
+
+def main() -> int:
+    for row in run():
+        print(f"{row['name']}: verify --onnx {row['verify_s']} s, forward {row['forward_ms']} ms "
+              f"(points {', '.join(row['points'])}; certificate {'passed' if row['certificate_passed'] else 'FAILED'})")
+        verdict = "PASS" if row["pass"] else "FAIL"
+        print(f"RESULT {row['name']} ratio={row['ratio']:.2f} goal<={row['goal']} {verdict}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout
+    raise SystemExit(main())
