@@ -1,0 +1,258 @@
+"""splice.export: ONNX and torch.export copies, each checked for parity before it is kept.
+
+onnxruntime (CPUExecutionProvider) is the outside reference for ONNX files;
+torch.export.load is the reference loader for .pt2 programs.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+
+import splice
+from splice import store
+from splice.cli import main
+from splice.errors import CheckFailed, SpliceError
+from splice.export import (
+    MIN_OPSET,
+    export,
+    export_onnx_bytes,
+    onnx_parity,
+    perturbation_theta,
+    perturbed_copy,
+    pt2_parity,
+)
+from splice.surgery import insert, warps_of
+from splice.warps import Warp, WarpConfig, identity_theta
+
+TRAY = "splice.models:tray_net"
+SMALL = {"width": 4}
+
+
+@pytest.fixture(scope="module")
+def tray_folder(tmp_path_factory) -> Path:
+    src = splice.load_source(TRAY, kwargs=SMALL)
+    return store.save(insert(src, at="pool2"), tmp_path_factory.mktemp("export") / "tray")
+
+
+@pytest.fixture(scope="module")
+def model(tray_folder):
+    return store.load(tray_folder)
+
+
+@pytest.fixture(scope="module")
+def onnx_file(tray_folder, tmp_path_factory) -> tuple[Path, dict]:
+    target = tmp_path_factory.mktemp("onnx") / "tray.onnx"
+    result = export(tray_folder, onnx=target)
+    return target, result
+
+
+def _ort_run(path, x: torch.Tensor) -> list[np.ndarray]:
+    import onnxruntime as ort
+
+    session = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    return session.run(None, {session.get_inputs()[0].name: x.numpy()})
+
+
+def _rel(a: torch.Tensor, b) -> float:
+    b = torch.as_tensor(b)
+    return float((a - b).abs().max() / a.abs().max())
+
+
+# ----------------------------------------------------------------------------- ONNX
+
+
+def test_onnx_export_matches_onnxruntime(onnx_file, model):
+    path, result = onnx_file
+    assert path.is_file()
+    item = result["exports"][0]
+    assert item["format"] == "onnx" and item["opset"] == 17 and item["path"] == str(path)
+    assert item["max_rel"] <= 1e-4 and item["max_rel_perturbed"] <= 1e-4
+    from splice._io import file_sha256
+
+    assert item["sha256"] == file_sha256(path)
+    # independent check: the written file in onnxruntime against eager torch
+    x = torch.randn(1, 1, 48, 48)
+    with torch.no_grad():
+        ref = model(x)
+    assert _rel(ref, _ort_run(path, x)[0]) <= 1e-4  # onnxruntime is the reference
+    assert not list(path.parent.glob(".*.tmp"))
+
+
+def test_perturbed_warp_is_really_off_the_identity(model):
+    twin = perturbed_copy(model)
+    warp = warps_of(twin)["pool2"]
+    assert warp.identity_distance() > 0.1
+    assert torch.equal(warp.head.final.bias.detach(), perturbation_theta("affine"))
+    assert warps_of(model)["pool2"].identity_distance() == 0.0  # the original is untouched
+    expected = identity_theta("affine") + 0.1 * torch.linspace(-1, 1, 6)
+    assert torch.allclose(perturbation_theta("affine"), expected)
+    for family in ("translation", "attention", "similarity", "projective", "tps"):
+        assert not torch.equal(perturbation_theta(family), identity_theta(family))
+    x = torch.randn(2, 1, 48, 48)
+    with torch.no_grad():
+        assert (twin(x) - model(x)).abs().max() > 1e-3
+
+
+def test_altered_onnx_weight_fails_parity(onnx_file, model, tmp_path):
+    import onnx
+    from onnx import numpy_helper
+
+    path, _ = onnx_file
+    proto = onnx.load(str(path))
+    # the weight of the base's first convolution (the exporter may rename it when it folds BatchNorm in)
+    first_conv = next(n for n in proto.graph.node if n.op_type == "Conv" and not n.input[1].startswith("splice_warps"))
+    target = next(init for init in proto.graph.initializer if init.name == first_conv.input[1])
+    arr = numpy_helper.to_array(target).copy()
+    arr.flat[0] += 0.5
+    target.CopyFrom(numpy_helper.from_array(arr, target.name))
+    altered = tmp_path / "altered.onnx"
+    onnx.save(proto, str(altered))
+    x = torch.randn(1, 1, 48, 48)
+    assert onnx_parity(model, path, x)["passed"]
+    result = onnx_parity(model, altered, x)
+    assert not result["passed"]
+    assert result["detail"].startswith("as stored:")
+    assert result["max_rel"] > 1e-3
+
+
+def test_wrong_sampler_hides_at_identity_but_not_perturbed(onnx_file, model, tmp_path):
+    """A GridSample lowered to nearest is exact at the identity; only the perturbed check sees it."""
+    import onnx
+
+    path, _ = onnx_file
+    proto = onnx.load(str(path))
+    changed = 0
+    for node in proto.graph.node:
+        if node.op_type == "GridSample":
+            for attr in node.attribute:
+                if attr.name == "mode":
+                    attr.s = b"nearest"
+                    changed += 1
+    assert changed > 0
+    x = torch.randn(1, 1, 48, 48)
+    result = onnx_parity(model, proto, x)
+    assert result["max_rel"] <= 1e-4  # identity parity passes ...
+    assert not result["passed"]  # ... the perturbed warp does not
+    assert result["detail"].startswith("with the perturbed warp:")
+
+
+def test_shared_initializers_are_not_patched_blindly(tmp_path):
+    """Two same-shape heads start equal, so the exporter merges their tensors; the check must still hold."""
+    src = splice.load_source(TRAY, kwargs=SMALL)
+    spliced = insert(src, at=["pool1", "pool2"])
+    x = torch.randn(1, 1, 48, 48)
+    data = export_onnx_bytes(spliced, x, fold_constants=False)
+    result = onnx_parity(spliced, data, x)
+    assert result["passed"], result["detail"]
+    assert result["perturbed_by"] in ("initializers", "re-export")
+
+
+def test_dynamic_batch_onnx_runs_at_other_sizes(tray_folder, model, tmp_path):
+    target = tmp_path / "dyn.onnx"
+    item = export(tray_folder, onnx=target, dynamic_batch=True)["exports"][0]
+    assert item["batch_sizes"] == [1, 3] and item["dynamic_batch"] is True
+    x = torch.randn(5, 1, 48, 48)
+    with torch.no_grad():
+        ref = model(x)
+    assert _rel(ref, _ort_run(target, x)[0]) <= 1e-4  # onnxruntime is the reference
+
+
+def test_failed_check_leaves_no_file_and_keeps_the_old_one(tray_folder, tmp_path):
+    target = tmp_path / "keep.onnx"
+    target.write_bytes(b"previous good file")
+    # a relative tolerance of 0 cannot be met by a different runtime's float32 arithmetic
+    with pytest.raises(CheckFailed, match="nothing was written to"):
+        export(tray_folder, onnx=target, tol=0.0)
+    assert target.read_bytes() == b"previous good file"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["keep.onnx"]
+    fresh = tmp_path / "fresh.onnx"
+    with pytest.raises(CheckFailed):
+        export(tray_folder, onnx=fresh, tol=0.0)
+    assert not fresh.exists()
+
+
+def test_export_errors(tray_folder, tmp_path):
+    with pytest.raises(SpliceError, match="needs a target"):
+        export(tray_folder)
+    with pytest.raises(SpliceError, match=f"opset 15 is too old.*opset {MIN_OPSET}"):
+        export(tray_folder, onnx=tmp_path / "a.onnx", opset=15)
+    with pytest.raises(SpliceError, match="is a folder"):
+        export(tray_folder, onnx=tmp_path)
+    with pytest.raises(SpliceError, match="dynamo ONNX exporter writes opset 18"):
+        export(tray_folder, onnx=tmp_path / "a.onnx", exporter="dynamo", opset=17)
+    with pytest.raises(SpliceError, match="unknown exporter 'jit'"):
+        export(tray_folder, onnx=tmp_path / "a.onnx", exporter="jit")
+    with pytest.raises(SpliceError, match="does not exist"):
+        onnx_parity(torch.nn.Identity(), tmp_path / "none.onnx", torch.zeros(1))
+    bad = tmp_path / "bad.onnx"
+    bad.write_bytes(b"not protobuf at all \x00\xff")
+    with pytest.raises(SpliceError, match="not a readable ONNX file"):
+        onnx_parity(torch.nn.Identity(), bad, torch.zeros(1))
+    assert not (tmp_path / "a.onnx").exists()
+
+
+@pytest.mark.slow
+def test_dynamo_exporter(tray_folder, model, tmp_path):
+    target = tmp_path / "dynamo.onnx"
+    item = export(tray_folder, onnx=target, exporter="dynamo", opset=18)["exports"][0]
+    assert item["exporter"] == "dynamo" and item["max_rel_perturbed"] <= 1e-4
+    x = torch.randn(1, 1, 48, 48)
+    with torch.no_grad():
+        ref = model(x)
+    assert _rel(ref, _ort_run(target, x)[0]) <= 1e-4  # onnxruntime is the reference
+
+
+# ----------------------------------------------------------------------------- torch.export
+
+
+@pytest.fixture(scope="module")
+def pt2_file(tray_folder, tmp_path_factory) -> tuple[Path, dict]:
+    target = tmp_path_factory.mktemp("pt2") / "tray.pt2"
+    return target, export(tray_folder, pt2=target)
+
+
+def test_pt2_export_reloads_and_matches(pt2_file, model):
+    path, result = pt2_file
+    item = result["exports"][0]
+    assert item["format"] == "pt2" and item["perturbed_by"] == "parameters"
+    assert item["max_rel"] <= 1e-5 and item["max_rel_perturbed"] <= 1e-5
+    program = torch.export.load(str(path))  # torch's own loader is the reference
+    x = torch.randn(1, 1, 48, 48)
+    with torch.no_grad():
+        assert _rel(model(x), program.module()(x)) <= 1e-5
+
+
+def test_pt2_parity_catches_a_changed_parameter(pt2_file, model):
+    path, _ = pt2_file
+    program = torch.export.load(str(path))
+    with torch.no_grad():
+        program.state_dict["fc.bias"].add_(1.0)
+    result = pt2_parity(model, program, torch.randn(1, 1, 48, 48))
+    assert not result["passed"] and result["detail"].startswith("as stored:")
+
+
+# ----------------------------------------------------------------------------- CLI
+
+
+def test_cli_export(tray_folder, tmp_path, capsys):
+    target = tmp_path / "cli.onnx"
+    assert main(["export", str(tray_folder), "--onnx", str(target)]) == 0
+    assert target.is_file() and "passed" in capsys.readouterr().out
+    assert main(["export", str(tray_folder), "--onnx", str(tmp_path / "x.onnx"), "--opset", "12"]) == 2
+    assert "GridSample" in capsys.readouterr().err
+    assert main(["export", str(tray_folder)]) == 2
+    assert "needs a target" in capsys.readouterr().err
+    assert not (tmp_path / "x.onnx").exists()
+
+
+def test_warp_module_is_what_gets_perturbed():
+    warp = Warp(WarpConfig("tps", tps_k=3), (2, 8, 8))
+    model = torch.nn.Module()
+    model.splice_warps = torch.nn.ModuleDict({"p": warp})
+    twin = perturbed_copy(model)
+    assert torch.equal(twin.splice_warps["p"].head.final.bias.detach(), perturbation_theta("tps", 3))
+    assert torch.count_nonzero(twin.splice_warps["p"].head.final.weight) == 0
