@@ -70,6 +70,7 @@ import itertools
 import math
 import operator
 import os.path
+import sys
 import warnings
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
@@ -181,8 +182,15 @@ class _LeafRule:
 
     def __init__(self, leaves: Iterable[Any]):
         types, names = _split_leaves(leaves, "leaves")
-        self.types = tuple(_registered_types | types)
         self.names = frozenset(_DEFAULT_LEAF_NAMES) | frozenset(_registered_names) | frozenset(names)
+        # a dotted name may be a re-export ('torchvision.ops.StochasticDepth'): if its
+        # module is already imported, match the class it names too
+        for name in self.names:
+            module_name, _, cls_name = name.rpartition(".")
+            found = getattr(sys.modules.get(module_name), cls_name, None) if module_name else None
+            if isinstance(found, type) and issubclass(found, nn.Module):
+                types.add(found)
+        self.types = tuple(_registered_types | types)
         self._cache: dict[type, bool] = {}
 
     def __call__(self, cls: type) -> bool:
@@ -289,7 +297,7 @@ def _spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
     classes: dict[type, type] = {}
     swapped: list[tuple[nn.Module, type]] = []
     try:
-        ok = all(_can_spy(type(m)) for m in mods)
+        ok = all(_can_spy(cls) for cls in {type(m) for m in mods})
         if ok:
             for m in mods:
                 cls = type(m)
@@ -361,7 +369,10 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
         if not spied or reads:
             for m in mods:
                 m.__dict__["training"] = True
-            difference = _describe_difference(graph, _run_tracer(root, rule))
+            try:
+                difference = _describe_difference(graph, _run_tracer(root, rule))
+            except _FxFailure as failure:
+                difference = f"the train-mode trace fails: {_first_line(failure.error)}"
             if difference is not None:
                 warnings.warn(
                     f"the train-mode and eval-mode graphs of {type(root).__name__} differ "
@@ -531,7 +542,8 @@ def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | No
     elif cls is nn.GroupNorm:
         ok = x.dim() >= 2 and x.shape[1] == mod.num_channels
     elif cls is nn.LayerNorm:
-        ok = tuple(x.shape[x.dim() - len(mod.normalized_shape):]) == tuple(mod.normalized_shape)
+        k = len(mod.normalized_shape)
+        ok = x.dim() >= k and tuple(x.shape[x.dim() - k:]) == tuple(mod.normalized_shape)
     elif cls is nn.Linear:
         if x.dim() >= 1 and x.shape[-1] == mod.in_features and x.dtype == mod.weight.dtype:
             return _meta_empty((*x.shape[:-1], mod.out_features), x.dtype)
@@ -909,7 +921,7 @@ class _Entry:
     between_convs: bool
 
 
-def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], all: bool, warp: str) -> list[Point]:
+def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], every: bool, warp: str) -> list[Point]:
     from .warps import WarpConfig, warp_cost
 
     config = WarpConfig(family=warp)
@@ -927,7 +939,7 @@ def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], all:
     out = []
     costs: dict[tuple[int, int, int], tuple[int, int]] = {}
     for e in entries:
-        if not (all or e.kind == "input" or e.between_convs):
+        if not (every or e.kind == "input" or e.between_convs):
             continue
         if e.shape not in costs:
             costs[e.shape] = warp_cost(config, e.shape)
@@ -1150,7 +1162,7 @@ def _module_view(model: nn.Module, shape: tuple[int, int, int], failure: _FxFail
         f"{fx_problem}; listing module outputs instead, without cut analysis (only 'input' is "
         f"marked as a cut). To get the full analysis, {todo}.",
         TraceFallbackWarning,
-        stacklevel=4,
+        stacklevel=3,
     )
     first_conv_end = min(conv_ends, default=math.inf)
     last_conv_start = max(conv_starts, default=-math.inf)

@@ -82,9 +82,7 @@ def _reference_cuts(gm: fx.GraphModule, values) -> tuple[dict[str, bool], dict[s
         if n is src:
             cut[n] = True
             continue
-        rest = g.copy()
-        rest.remove_node(n)
-        cut[n] = not networkx.has_path(rest, src, out_node)
+        cut[n] = not networkx.has_path(networkx.restricted_view(g, [n], []), src, out_node)
     ipdom = networkx.immediate_dominators(g.reverse(copy=True), out_node)
     join = {}
     for n in cut:
