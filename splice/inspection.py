@@ -349,6 +349,31 @@ QUANTITY_HELP = {
 }
 
 
+# one-line versions for the table on screen (summary.json carries QUANTITY_HELP)
+_SHORT_HELP = {
+    "angle_deg": "sampling rotation (°, + clockwise)",
+    "reflection": "fraction of images flipped",
+    "scale_1": "larger sampling scale",
+    "scale_2": "smaller sampling scale",
+    "scale_axis_deg": "axis of scale_1 (°)",
+    "anisotropy": "scale_1 / scale_2",
+    "shift_x_px": "sampled centre, px right",
+    "shift_y_px": "sampled centre, px down",
+    "shift_x_frac": "… as a fraction of the width",
+    "shift_y_frac": "… as a fraction of the height",
+    "view_rotation_deg": "VIEWER: rotation (°, + clockwise)",
+    "view_zoom_1": "VIEWER: larger zoom (1/scale_2)",
+    "view_zoom_2": "VIEWER: smaller zoom (1/scale_1)",
+    "view_zoom_axis_deg": "VIEWER: axis of the larger zoom (°)",
+    "view_shift_x_px": "VIEWER: input centre, px right",
+    "view_shift_y_px": "VIEWER: input centre, px down",
+    "persp_x": "perspective term g",
+    "persp_y": "perspective term h",
+    "tps_mean_px": "mean control-point move (px)",
+    "tps_max_px": "largest control-point move (px)",
+}
+
+
 def quantities_for(family: str) -> tuple[str, ...]:
     """The quantity names reported for a warp family, in table order."""
     if family == "tps":
@@ -760,7 +785,8 @@ def _bins(*series):
     if hi - lo < 1e-9 * (1.0 + abs(lo)):
         pad = max(1e-3, 0.05 * abs(lo))
         lo, hi = lo - pad, hi + pad
-    return np.linspace(lo, hi, int(min(30, max(8, values.size // 3))) + 1)
+    # Rice rule, 2 n^(1/3) bins (from memory), kept between 8 and 30
+    return np.linspace(lo, hi, int(min(30, max(8, round(2.0 * values.size ** (1.0 / 3.0))))) + 1)
 
 
 def _hist_groups(family: str) -> list[tuple[str, list[tuple[str, str]]]]:
@@ -968,12 +994,13 @@ def render_inspect(result: Mapping, console) -> None:
     for point, w in result["warps"].items():
         shape = "x".join(str(d) for d in w["shape"])
         table = Table(title=f"warp at '{point}': {w['family']}, {shape}, {w['level']} level", title_justify="left")
-        for col, just in (("quantity", "left"), ("mean", "right"), ("std", "right"), ("p5", "right"),
-                          ("p95", "right"), ("meaning", "left")):
-            table.add_column(col, justify=just)  # type: ignore[arg-type]
+        table.add_column("quantity", no_wrap=True)
+        for col in ("mean", "std", "p5", "p95"):
+            table.add_column(col, justify="right", no_wrap=True)
+        table.add_column("meaning")
         for q, stats in w["quantities"].items():
             table.add_row(q, _fmt(stats["mean"]), _fmt(stats["std"]), _fmt(stats["p5"]), _fmt(stats["p95"]),
-                          result["help"].get(q, ""))
+                          _SHORT_HELP.get(q, result["help"].get(q, "")))
         console.print(table)
         if w["family"] == "tps":
             console.print("  tps: the rotation, scale and shift rows describe the spline's affine part; "

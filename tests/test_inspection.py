@@ -426,3 +426,32 @@ def test_map_points_matches_opencv_and_the_warp_grid():
     centres = grids.base_grid(6, 8)[:, :2]
     np.testing.assert_allclose(I.map_points(tps, theta, centres).numpy(),
                                tps.grid(theta, 6, 8).reshape(2, -1, 2).numpy(), atol=1e-12)
+
+
+def test_a_warp_that_undoes_a_distortion_reports_that_distortion():
+    """The documented convention: undoing distort.apply_affine(angle a, scale s, shift t) reads as a, s, t."""
+    from torch.nn import functional as F
+
+    from splice import distort
+
+    side = 48
+    yy, xx = torch.meshgrid(torch.linspace(-1, 1, side, dtype=torch.float64),
+                            torch.linspace(-1, 1, side, dtype=torch.float64), indexing="ij")
+    # a smooth, asymmetric test card that vanishes towards the border (bilinear resampling is then
+    # nearly exact, and nothing important leaves the frame)
+    card = (torch.exp(-((xx - 0.2) ** 2 / 0.1 + (yy + 0.1) ** 2 / 0.05))
+            + 0.6 * torch.exp(-((xx + 0.25) ** 2 + (yy - 0.3) ** 2) / 0.05))
+    card = card.view(1, 1, side, side)
+    a, s, t = 35.0, 1.15, (0.06, -0.04)
+    # source: splice.distort.apply_affine, itself checked against torchvision.transforms.v2.functional.affine
+    moved = distort.apply_affine(card, a, s, t)
+    forward = distort.affine_matrix(a, s, t, size=(side, side))  # where content moves, normalised
+    warp = Warp(WarpConfig(family="affine"), (1, side, side)).double()
+    theta = forward.reshape(1, 6)  # sampling with the forward map puts every point back
+    undone = F.grid_sample(moved, warp.grid(theta, side, side), mode="bilinear", align_corners=False)
+    # two bilinear resamplings leave ~0.02; sampling with the inverse map instead would leave ~0.9
+    assert (undone - card).abs().max() < 0.05 and (moved - card).abs().max() > 0.3
+    d = I.describe_theta(warp, theta)
+    assert abs(float(d["angle_deg"][0]) - a) < 1e-6 and abs(float(d["view_rotation_deg"][0]) + a) < 1e-6
+    assert abs(float(d["scale_1"][0]) - s) < 1e-6 and abs(float(d["scale_2"][0]) - s) < 1e-6
+    assert abs(float(d["shift_x_frac"][0]) - t[0]) < 1e-6 and abs(float(d["shift_y_frac"][0]) - t[1]) < 1e-6
