@@ -31,6 +31,7 @@ _EXPORTS = {
     "load": "store",
     "trace": "graph",
     "Point": "graph",
+    "register_leaf": "graph",
     "WarpConfig": "warps",
     "Warp": "warps",
     "verify": "verify",

@@ -17,6 +17,7 @@ import torch.fx as fx
 import torchvision
 
 from splice import graph
+from splice.warps import Warp, WarpConfig
 
 networkx = pytest.importorskip("networkx")
 
@@ -152,6 +153,8 @@ def _check_model(arch: str) -> None:
     assert 1 <= len(rec) <= 2 and all(p.cut for p in rec)
     assert rec[0].name == "input"
     assert [p.name for p in every if p.recommended] == [p.name for p in rec]
+    for p in rec:  # what the default warp adds there, counted on the module itself
+        assert p.warp_params == sum(t.numel() for t in Warp(WarpConfig(family="affine"), p.shape).parameters())
 
 
 @pytest.mark.parametrize("arch", _FAST)
