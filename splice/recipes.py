@@ -237,7 +237,8 @@ class Recipe:
       module in eval mode, so BatchNorm statistics do not move); only the warp
       heads train. The base tensors stay bit-for-bit identical.
     - ``joint``: everything trains; warp heads at ``warp_lr_scale * lr``.
-    - ``staged``: ``warp_only_epochs`` epochs of ``warp-only``, then ``joint``.
+    - ``staged``: ``warp-only`` for the first ``round(warp_only_fraction * epochs)``
+      epochs, then ``joint`` (a fraction, so ``--epochs`` keeps the proportion).
 
     Learning-rate schedule: linear warm-up over ``warmup_epochs`` (fractions
     allowed), then ``cosine`` (to 0 at the end), ``step`` (times
@@ -272,7 +273,7 @@ class Recipe:
     freeze: list[str] = field(default_factory=list)
     identity_reg: float = 0.0
     identity_reg_decay: float = 1.0
-    warp_only_epochs: int = 0
+    warp_only_fraction: float = 0.5
     seed: int = 0
     eval_every: int = 1
     patience: int = 0
@@ -311,12 +312,8 @@ class Recipe:
         self.identity_reg = _number(o, "identity_reg", self.identity_reg, low=0, high=1e6)
         self.identity_reg_decay = _number(o, "identity_reg_decay", self.identity_reg_decay, low=0, high=1,
                                           hint=" (multiplier per epoch)")
-        self.warp_only_epochs = _integer(o, "warp_only_epochs", self.warp_only_epochs)
-        if self.mode == "staged" and self.warp_only_epochs > self.epochs:
-            raise ValueError(
-                f"warp_only_epochs = {self.warp_only_epochs} exceeds epochs = {self.epochs}; the staged "
-                "recipe runs warp_only_epochs of warp-only training and then the rest jointly"
-            )
+        self.warp_only_fraction = _number(o, "warp_only_fraction", self.warp_only_fraction, low=0, high=1,
+                                          hint=" (share of the epochs a staged recipe trains warps only)")
         self.seed = _integer(o, "seed", self.seed)
         self.eval_every = _integer(o, "eval_every", self.eval_every, low=1)
         self.patience = _integer(o, "patience", self.patience, hint=" (0 never stops early)")
@@ -342,6 +339,15 @@ class Recipe:
         if self.mode == "warp-only":
             return True
         return self.mode == "staged" and epoch < self.warp_only_epochs
+
+    @property
+    def warp_only_epochs(self) -> int:
+        """Epochs of warp-only training at the start (all of them for ``warp-only``; none for others)."""
+        if self.mode == "warp-only":
+            return self.epochs
+        if self.mode == "staged":
+            return round(self.warp_only_fraction * self.epochs)
+        return 0
 
     def with_overrides(self, *, epochs: int | None = None, lr: float | None = None,
                        batch_size: int | None = None, seed: int | None = None) -> Recipe:

@@ -98,6 +98,18 @@ def _append_metrics(run: Path, row: dict) -> None:
         os.fsync(fh.fileno())
 
 
+@contextlib.contextmanager
+def _writing(what: Path):
+    """Turn a failed write (read-only folder, full disk) into one clear error; atomic writes keep the old file."""
+    try:
+        yield
+    except OSError as exc:
+        raise SpliceError(
+            f"could not write '{what}' ({exc.strerror or exc}); the previous version, if any, is intact. "
+            "Free disk space or make the run folder writable, then continue with --resume"
+        ) from exc
+
+
 def _unwrap(model: nn.Module) -> nn.Module:
     return model.module if isinstance(model, nn.parallel.DistributedDataParallel) else model
 
@@ -123,6 +135,19 @@ class _StopFlag:
     def __exit__(self, *exc) -> None:
         for sig, old in self._old.items():
             signal.signal(sig, old)
+
+
+def _set_deterministic(mode: bool) -> None:
+    """``torch.use_deterministic_algorithms(mode)`` without its side import of torch._inductor.
+
+    The public function also sets ``torch._inductor.config.deterministic``, which
+    costs seconds of import time and does not matter here (nothing is compiled).
+    """
+    setter = getattr(torch._C, "_set_deterministic_algorithms", None)
+    if setter is None:  # pragma: no cover - other torch builds
+        torch.use_deterministic_algorithms(mode)
+    else:
+        setter(mode, warn_only=False)
 
 
 def _describe(model: Any) -> str:
@@ -292,7 +317,7 @@ def tune(
             deterministic = ctx.device.type == "cpu"
         previous = torch.are_deterministic_algorithms_enabled()
         if deterministic:
-            torch.use_deterministic_algorithms(True)
+            _set_deterministic(True)
         try:
             return _tune(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume, epochs=epochs, lr=lr,
                          batch_size=batch_size, seed=seed, quiet=quiet, weights=weights, kwargs=kwargs,
@@ -300,7 +325,7 @@ def tune(
                          leaves=leaves, workers=workers, reference=reference, progress=progress,
                          stop_after_steps=stop_after_steps)
         finally:
-            torch.use_deterministic_algorithms(previous)
+            _set_deterministic(previous)
     finally:
         distributed.teardown(ctx)
 
@@ -463,12 +488,14 @@ def _tune(ctx, *, model, recipe, data, out, resume, epochs, lr, batch_size, seed
             "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
         }
         if ctx.is_main:
-            atomic_write_text(run_dir / _RECIPE_FILE, recipe_to_toml(rec))
-            atomic_write_json(run_dir / _RUN_FILE, info)
-            atomic_write_text(run_dir / _METRICS_FILE, "")
+            with _writing(run_dir):
+                atomic_write_text(run_dir / _RECIPE_FILE, recipe_to_toml(rec))
+                atomic_write_json(run_dir / _RUN_FILE, info)
+                atomic_write_text(run_dir / _METRICS_FILE, "")
     elif ctx.is_main:
         info["status"] = "running"
-        atomic_write_json(run_dir / _RUN_FILE, info)
+        with _writing(run_dir / _RUN_FILE):
+            atomic_write_json(run_dir / _RUN_FILE, info)
 
     run = _Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train, val=val, prepare=prepare,
                norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=data, shape=shape,
@@ -555,7 +582,8 @@ def _save_folder(run, which: str, epoch: int, step: int, accuracy: float) -> Non
               "class_names": run.classes, "normalisation": run.norm}
     if getattr(model, "splice_info", None) is None:
         kwargs["source"] = run.src
-    save(model, run.run_dir / which, **kwargs)
+    with _writing(run.run_dir / which):
+        save(model, run.run_dir / which, **kwargs)
 
 
 def _checkpoint(run, *, epoch: int, batch: int, step: int, stepper, extra: dict | None = None) -> None:
@@ -585,7 +613,8 @@ def _checkpoint(run, *, epoch: int, batch: int, step: int, stepper, extra: dict 
 
 def _row(run, row: dict) -> None:
     if run.ctx.is_main:
-        _append_metrics(run.run_dir, row)
+        with _writing(run.run_dir / _METRICS_FILE):
+            _append_metrics(run.run_dir, row)
     run.metrics_rows += 1
 
 
@@ -648,7 +677,8 @@ def _train(run) -> dict[str, Any]:
         run.best, run.bad_evals = dict(ckpt["best"]), int(ckpt["bad_evals"])
         run.metrics_rows = int(ckpt["metrics_rows"])
         if ctx.is_main:
-            _truncate_metrics(run.run_dir, run.metrics_rows)
+            with _writing(run.run_dir / _METRICS_FILE):
+                _truncate_metrics(run.run_dir, run.metrics_rows)
         if start_batch:
             ls, cor, seen, run.epoch_time = ckpt["epoch_totals"]
             stepper.loss_sum.fill_(ls)
@@ -713,6 +743,7 @@ def _train(run) -> dict[str, Any]:
 
     # ---- epochs
     stopped_early = False
+    pending_stop = False
     current_frozen = None
     ips = None
     for epoch in range(start_epoch, rec.epochs):
@@ -751,16 +782,12 @@ def _train(run) -> dict[str, Any]:
                                **{"img/s": seen * ctx.world_size / max(el, 1e-9)})
             stop = run.flag.raised or (run.stop_after_steps is not None and step >= run.stop_after_steps)
             if distributed.broadcast_flag(ctx, stop) if ctx.distributed else stop:
-                run.epoch_time += time.perf_counter() - t0
-                done_epoch = b + 1 == len(batches)
-                _checkpoint(run, epoch=epoch + 1 if done_epoch else epoch, batch=0 if done_epoch else b + 1,
-                            step=step, stepper=stepper)
-                if ctx.is_main:
-                    info = dict(run.info, status="interrupted")
-                    atomic_write_json(run.run_dir / _RUN_FILE, info)
-                run.bar.line(f"stopped at epoch {epoch + 1}, batch {b + 1}, step {step}; checkpoint written. "
-                             f"Continue with: splice tune --resume {run.run_dir}")
-                raise TuneInterrupted(f"stopped at step {step}; resume with --resume {run.run_dir}")
+                pending_stop = True
+                if b + 1 < len(batches):  # mid-epoch: checkpoint this exact batch and stop
+                    run.epoch_time += time.perf_counter() - t0
+                    _checkpoint(run, epoch=epoch, batch=b + 1, step=step, stepper=stepper)
+                    return _stopped(run, epoch, b + 1, step)
+                # the epoch's last batch: finish the epoch (evaluation, checkpoint) first
         run.epoch_time += time.perf_counter() - t0
         loss_sum, correct, seen = distributed.all_reduce_sum(ctx, list(stepper.totals()))
         ips = seen / max(run.epoch_time, 1e-9)
@@ -770,6 +797,8 @@ def _train(run) -> dict[str, Any]:
                                  train_acc=round(correct / max(1, seen), 6), ips=round(ips, 1))
             run.bad_evals = 0 if improved else run.bad_evals + 1
         _checkpoint(run, epoch=epoch + 1, batch=0, step=step, stepper=stepper)
+        if pending_stop:
+            return _stopped(run, epoch + 1, 0, step)
         if rec.patience and run.bad_evals >= rec.patience and epoch + 1 < rec.epochs:
             stopped_early = True
             run.bar.line(f"no better validation accuracy for {rec.patience} evaluations: stopping early")
@@ -777,6 +806,26 @@ def _train(run) -> dict[str, Any]:
 
     if tap is not None:
         tap.close()
+    return _finish(run, step, ips, stopped_early)
+
+
+def _stopped(run, epoch: int, batch: int, step: int) -> dict[str, Any]:
+    """After a stop request: the checkpoint is written; record it, and raise for Ctrl-C / SIGTERM."""
+    if run.ctx.is_main:
+        with _writing(run.run_dir / _RUN_FILE):
+            atomic_write_json(run.run_dir / _RUN_FILE, dict(run.info, status="interrupted"))
+    where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
+    run.bar.line(f"stopped at {where} (step {step}); checkpoint written. "
+                 f"Continue with: splice tune --resume {run.run_dir}")
+    if run.flag.raised:
+        raise TuneInterrupted(f"stopped at step {step}; resume with --resume {run.run_dir}")
+    return {"out": str(run.run_dir), "rank": run.ctx.rank, "world_size": run.ctx.world_size,
+            "best_accuracy": run.best["accuracy"], "best_epoch": run.best["epoch"], "steps": step,
+            "epochs": run.rec.epochs, "interrupted": True, "resume_at": {"epoch": epoch, "batch": batch}}
+
+
+def _finish(run, step: int, ips, stopped_early: bool) -> dict[str, Any]:
+    ctx, rec = run.ctx, run.rec
     final = _unwrap(run.net_wrapped)
     base_changed = _tuning(run, "last", 0, step, 0.0)["base_changed"]
     if os.environ.get(_HASH_ENV):
@@ -790,6 +839,6 @@ def _train(run) -> dict[str, Any]:
         "best_accuracy": run.best["accuracy"], "best_epoch": run.best["epoch"],
         "last_accuracy": last_rows[-1]["accuracy"] if last_rows else None,
         "epochs": rec.epochs, "steps": step, "base_changed": base_changed,
-        "images_per_s": ips, "stopped_early": stopped_early,
+        "images_per_s": ips, "stopped_early": stopped_early, "interrupted": False,
     }
 

@@ -1,0 +1,251 @@
+"""splice tune in one process: run folder, recipes on the right models, frozen base, exact resume, safe writes.
+
+The model is a narrow tray_net on 24x24 digits so that an epoch takes well under a second.
+"""
+
+from __future__ import annotations
+
+import errno
+import json
+import os
+
+import pytest
+import torch
+
+import splice
+from splice._io import state_dict_sha256
+from splice.errors import DataError, RecipeError, SpliceError
+from splice.recipes import load_recipe
+from splice.surgery import WARP_PREFIX
+from splice.tune import read_metrics, tune
+from splice.training.checkpoint import CHECKPOINT_NAME, load_checkpoint
+
+SPEC = "splice.models:tray_net"
+KW = {"width": 4}
+SHAPE = (1, 24, 24)
+QUIET = {"progress": False}
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _one_thread():
+    """One intra-op thread: these models are too small to gain from more, and spinning
+    OpenMP threads make timings erratic on a busy 2-core machine."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+def _recipe(name: str, **changes):
+    """A shipped recipe made tiny: 2 epochs, a short pre-training."""
+    r = load_recipe(name).with_overrides(epochs=changes.pop("epochs", 2), batch_size=changes.pop("batch_size", 128))
+    d = r.to_dict()
+    d["pretrain"]["epochs"] = changes.pop("pretrain_epochs", 1)
+    d.update(changes)
+    from splice.recipes import Recipe
+
+    return Recipe.from_dict(d)
+
+
+@pytest.fixture(scope="module")
+def base_run(tmp_path_factory):
+    """A plain base trained briefly with baseline on upright digits."""
+    out = tmp_path_factory.mktemp("base") / "run"
+    summary = tune(SPEC, kwargs=KW, input_shape=SHAPE, recipe=_recipe("baseline", epochs=2), data="digits",
+                   out=out, **QUIET)
+    return out, summary
+
+
+@pytest.fixture(scope="module")
+def spliced(base_run, tmp_path_factory):
+    out = tmp_path_factory.mktemp("spliced") / "affine"
+    model = splice.insert(str(base_run[0] / "best"), at=["input"], warp="affine", head_width=4)
+    splice.save(model, out)
+    return out
+
+
+def _hashes(state) -> dict[str, str]:
+    return {k: state_dict_sha256({k: v}) for k, v in state.items()}
+
+
+def test_baseline_run_folder_layout(base_run):
+    out, summary = base_run
+    assert summary["rank"] == 0 and summary["out"] == str(out)
+    assert {p.name for p in out.iterdir()} >= {"run.json", "recipe.toml", "metrics.jsonl", CHECKPOINT_NAME,
+                                                 "best", "last"}
+    rows = read_metrics(out)
+    assert [r["phase"] for r in rows] == ["start", "epoch", "epoch"]
+    for key in ("step", "epoch", "loss", "accuracy", "lr", "images_per_s", "warp_distance"):
+        assert key in rows[-1]
+    steps_per_epoch = -(-1078 // 128)  # 1078 training digits (splice.data docstring), batch 128
+    assert rows[-1]["step"] == 2 * steps_per_epoch == summary["steps"]
+    assert summary["best_accuracy"] == pytest.approx(max(r["accuracy"] for r in rows), abs=1e-6)
+    # best/ and last/ are plain splice folders: loadable, and splice insert takes them
+    manifest = json.loads((out / "best" / "splice.json").read_text())
+    assert manifest["points"] == [] and manifest["class_names"] == [str(d) for d in range(10)]
+    assert manifest["tuning"]["recipe"] == "baseline" and manifest["tuning"]["which"] == "best"
+    assert manifest["tuning"]["epoch"] == summary["best_epoch"]
+    last = json.loads((out / "last" / "splice.json").read_text())["tuning"]
+    assert last["base_changed"] is True and last["epoch"] == 2
+    model = splice.load(out / "last")
+    assert not any(k.startswith(WARP_PREFIX) for k in model.state_dict())
+    info = json.loads((out / "run.json").read_text())
+    assert info["status"] == "finished" and info["data"] == "digits"
+    ckpt = load_checkpoint(out / CHECKPOINT_NAME)  # torch.load(weights_only=True) inside
+    assert ckpt["epoch"] == 2 and ckpt["batch"] == 0 and ckpt["step"] == summary["steps"]
+
+
+def test_overrides_reach_the_run(tmp_path, spliced):
+    out = tmp_path / "run"
+    summary = tune(str(spliced), recipe="joint", data="digits-moved", out=out, epochs=1, batch_size=256, seed=3,
+                   lr=0.01, **QUIET)
+    resolved = load_recipe(out / "recipe.toml")
+    assert (resolved.epochs, resolved.batch_size, resolved.seed, resolved.lr) == (1, 256, 3, 0.01)
+    assert summary["steps"] == -(-1078 // 256)
+    rows = read_metrics(out)
+    assert rows[0]["phase"] == "pretrain" and rows[0]["reference"] == "digits"  # auto: the upright counterpart
+    warm = load_recipe("joint").warmup_epochs
+    assert warm > 0 and rows[-1]["lr"] < 0.01  # cosine decayed from the overridden lr
+
+
+def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
+    before = splice.load(spliced).state_dict()
+    out = tmp_path / "run"
+    summary = tune(str(spliced), recipe=_recipe("warp-only"), data="digits-moved", out=out, **QUIET)
+    assert summary["base_changed"] is False
+    for which in ("best", "last"):
+        after = splice.load(out / which).state_dict()
+        base_before = {k: v for k, v in before.items() if not k.startswith(WARP_PREFIX)}
+        base_after = {k: v for k, v in after.items() if not k.startswith(WARP_PREFIX)}
+        assert _hashes(base_after) == _hashes(base_before)  # every tensor, BN running stats included
+        assert json.loads((out / which / "splice.json").read_text())["tuning"]["base_changed"] is False
+    after = splice.load(out / "last").state_dict()
+    moved = [k for k in after if k.startswith(WARP_PREFIX) and not torch.equal(after[k], before[k])]
+    assert moved, "the warp head did not train"
+    assert any(v > 0 for v in read_metrics(out)[-1]["warp_distance"].values())
+
+
+def test_joint_changes_the_base_and_records_it(tmp_path, spliced):
+    out = tmp_path / "run"
+    summary = tune(str(spliced), recipe=_recipe("staged", epochs=2), data="digits-moved", out=out, **QUIET)
+    assert summary["base_changed"] is True
+    rows = read_metrics(out)
+    assert [r["base_frozen"] for r in rows if r["phase"] == "epoch"] == [True, False]  # staged: 0.4 * 2 -> 1 epoch
+    manifest = json.loads((out / "last" / "splice.json").read_text())
+    assert manifest["tuning"]["base_changed"] is True and manifest["points"][0]["name"] == "input"
+
+
+def test_warp_recipe_on_a_plain_model_explains_insert(tmp_path, base_run):
+    with pytest.raises(RecipeError, match=r"trains warps, but .* has none; splice it first, e.g. 'splice insert"):
+        tune(str(base_run[0] / "best"), recipe="warp-only", data="digits", out=tmp_path / "a", **QUIET)
+
+
+def test_baseline_on_a_spliced_model_is_refused(tmp_path, spliced):
+    with pytest.raises(RecipeError, match=r"trains plain models, but .* holds warps at input; use 'joint'"):
+        tune(str(spliced), recipe="baseline", data="digits", out=tmp_path / "a", **QUIET)
+
+
+def test_bad_run_arguments(tmp_path, spliced):
+    (tmp_path / "full").mkdir()
+    (tmp_path / "full" / "x").write_text("x")
+    with pytest.raises(SpliceError, match=r"already exists and is not empty; continue it with --resume"):
+        tune(str(spliced), recipe="joint", out=tmp_path / "full", **QUIET)
+    with pytest.raises(SpliceError, match=r"tune needs a run folder: pass --out RUN"):
+        tune(str(spliced), recipe="joint", **QUIET)
+    with pytest.raises(SpliceError, match=r"is not a splice tune run folder \(no run.json\)"):
+        tune(resume=tmp_path / "full", **QUIET)
+    with pytest.raises(DataError, match=r"model has 7 outputs but data 'digits' has 10 classes.*num_classes"):
+        tune(SPEC, kwargs={"width": 4, "num_classes": 7}, input_shape=SHAPE, recipe="baseline", out=tmp_path / "b",
+             **QUIET)
+    with pytest.raises(RecipeError, match=r"freeze pattern 'nope\*' matches no module"):
+        tune(SPEC, kwargs=KW, input_shape=SHAPE, recipe=_recipe("baseline", freeze=["nope*"]), out=tmp_path / "c",
+             **QUIET)
+
+
+def test_freeze_patterns_keep_matching_modules_fixed(tmp_path, base_run):
+    start = splice.load(base_run[0] / "best").state_dict()
+    out = tmp_path / "run"
+    tune(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=1, freeze=["block1*"]), data="digits",
+         out=out, **QUIET)
+    after = splice.load(out / "last").state_dict()
+    for k, v in after.items():
+        if k.startswith("block1."):
+            assert torch.equal(v, start[k]), k  # weights and BN statistics (frozen modules run in eval mode)
+    assert not torch.equal(after["fc.weight"], start["fc.weight"])
+
+
+def _final_hash(run) -> str:
+    return state_dict_sha256(splice.load(run / "last").state_dict())
+
+
+def test_stopped_mid_epoch_and_resumed_matches_uninterrupted(tmp_path, spliced):
+    recipe = _recipe("joint", epochs=2, batch_size=64)  # augmentation on: its randomness must replay too
+    full = tmp_path / "full"
+    tune(str(spliced), recipe=recipe, data="digits-moved", out=full, **QUIET)
+
+    part = tmp_path / "part"
+    stopped = tune(str(spliced), recipe=recipe, data="digits-moved", out=part, stop_after_steps=5, **QUIET)
+    assert stopped["interrupted"] and stopped["resume_at"] == {"epoch": 0, "batch": 5}
+    ckpt = load_checkpoint(part / CHECKPOINT_NAME)
+    assert (ckpt["epoch"], ckpt["batch"], ckpt["step"]) == (0, 5, 5)
+    assert json.loads((part / "run.json").read_text())["status"] == "interrupted"
+    with pytest.raises(SpliceError, match=r"started with a different recipe \(differs in epochs\)"):
+        tune(resume=part, epochs=9, **QUIET)
+    summary = tune(resume=part, **QUIET)
+    assert summary["steps"] == 2 * 17
+    assert _final_hash(part) == _final_hash(full)
+    # the same rows, apart from timings
+    strip = ("time_s", "images_per_s")
+    rows = [{k: v for k, v in r.items() if k not in strip} for r in read_metrics(part)]
+    assert rows == [{k: v for k, v in r.items() if k not in strip} for r in read_metrics(full)]
+
+
+class _FailingFile:
+    """Writes half of what it is given, then fails like a full disk."""
+
+    def __init__(self, fh):
+        self.fh = fh
+
+    def write(self, data):
+        self.fh.write(data[: len(data) // 2])
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    def __getattr__(self, name):
+        return getattr(self.fh, name)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.fh.close()
+
+
+@pytest.mark.parametrize("failure", ["disk-full", "read-only"])
+def test_failed_checkpoint_write_leaves_the_previous_one_intact(tmp_path, base_run, monkeypatch, failure):
+    out = tmp_path / "run"
+    tune(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=2), data="digits", out=out,
+         stop_after_steps=9, **QUIET)  # epoch 1 is 9 steps at batch 128: the checkpoint sits at an epoch end
+    good = (out / CHECKPOINT_NAME).read_bytes()
+    import splice._io as io_mod
+    import splice.training.checkpoint as ckpt_mod
+
+    def failing_write(path, data):
+        """The real atomic write, with the disk failing underneath it."""
+        with pytest.MonkeyPatch.context() as mp:
+            if failure == "disk-full":
+                real = os.fdopen
+                mp.setattr(io_mod.os, "fdopen", lambda fd, mode: _FailingFile(real(fd, mode)))
+            else:
+                def refuse(src, dst):
+                    raise OSError(errno.EROFS, "Read-only file system")
+                mp.setattr(io_mod.os, "replace", refuse)
+            return io_mod.atomic_write_bytes(path, data)
+
+    monkeypatch.setattr(ckpt_mod, "atomic_write_bytes", failing_write)
+    with pytest.raises(SpliceError, match=r"could not write the checkpoint .* the previous checkpoint is intact"):
+        tune(resume=out, **QUIET)
+    monkeypatch.undo()
+    assert (out / CHECKPOINT_NAME).read_bytes() == good
+    assert load_checkpoint(out / CHECKPOINT_NAME)["step"] == 9
+    assert not [p for p in out.iterdir() if p.name.startswith(f".{CHECKPOINT_NAME}")]  # no temp files left
+    assert tune(resume=out, **QUIET)["steps"] == 18  # and the run can still finish
