@@ -26,8 +26,10 @@ EXIT_OK, EXIT_CHECK_FAILED, EXIT_USAGE = 0, 1, 2
 def _console(stderr: bool = False):
     from rich.console import Console
 
-    return Console(stderr=stderr, no_color=bool(os.environ.get("NO_COLOR")) or None, highlight=False,
-                   soft_wrap=not stderr)
+    console = Console(stderr=stderr, no_color=bool(os.environ.get("NO_COLOR")) or None, highlight=False)
+    if not console.is_terminal:
+        console.width = 200  # pipes and logs: don't squeeze tables into 80 columns
+    return console
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
