@@ -493,6 +493,14 @@ def _to_meta(value: Any) -> Any:
     return _meta_empty(value.shape, value.dtype) if isinstance(value, torch.Tensor) else value
 
 
+def _input_dtype(model: nn.Module) -> torch.dtype:
+    """The dtype of the model's first floating-point parameter or buffer (float32 if none)."""
+    for t in itertools.chain(model.parameters(), model.buffers()):
+        if t.is_floating_point():
+            return t.dtype
+    return torch.float32
+
+
 def _fetch_attr(root: nn.Module, target: str) -> Any:
     obj: Any = root
     for part in target.split("."):
@@ -666,7 +674,7 @@ def _propagate(
             try:
                 if op == "placeholder":
                     if not seen_input:
-                        value = torch.empty((1, *input_shape), device=_META)
+                        value = _meta_empty((1, *input_shape), _input_dtype(root))
                         seen_input = True
                     elif node.args:
                         value = node.args[0]  # an optional argument: its default
@@ -1136,7 +1144,7 @@ def _module_view(model: nn.Module, shape: tuple[int, int, int], failure: _FxFail
         handles.append(mod.register_forward_hook(after))
     try:
         with torch.no_grad(), torch.device(_META):
-            meta(torch.empty((1, *shape), device=_META))
+            meta(_meta_empty((1, *shape), _input_dtype(model)))
     except Exception as exc:
         if stack:
             failing = stack[-1]

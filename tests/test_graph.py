@@ -458,3 +458,9 @@ def test_channels_last_tensors_are_not_points():
     # 'permute' and 'norm' hold (N, H, W, C) = (1, 6, 7, 5): not points
     assert list(pts) == ["input", "a", "permute_1", "b"]
     assert pts["permute_1"].shape == (5, 6, 7) and pts["permute_1"].cut
+
+
+def test_half_precision_model_gets_half_input():
+    model = nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU(), nn.Conv2d(4, 4, 3)).half()
+    assert [(p.name, p.shape) for p in points(model, (3, 16, 16))] == [
+        ("input", (3, 16, 16)), ("_0", (4, 14, 14)), ("_1", (4, 14, 14))]
