@@ -43,7 +43,6 @@ __all__ = [
     "SWEEP_UNITS",
     "parse_distort",
     "sweep_images",
-    "pick_device",
     "evaluate",
     "render_eval",
     "draw_sweep_plot",
@@ -177,26 +176,6 @@ def sweep_images(images: Tensor, kind: str, level: float, *, seed: int = 0, firs
 # ----------------------------------------------------------------------------- models and data
 
 
-def pick_device(device: str | torch.device | None = None) -> torch.device:
-    """The given device, or the best available: cuda, then mps, then cpu."""
-    if device is not None:
-        try:
-            dev = torch.device(device)
-        except (RuntimeError, TypeError):
-            raise SpliceError(f"unknown device {device!r}; use cpu, cuda, cuda:N or mps.") from None
-        if dev.type == "cuda" and not torch.cuda.is_available():
-            raise SpliceError(f"device {device!r} was asked for but CUDA is not available here; use --device cpu.")
-        if dev.type == "mps" and not (getattr(torch.backends, "mps", None) and torch.backends.mps.is_available()):
-            raise SpliceError(f"device {device!r} was asked for but MPS is not available here; use --device cpu.")
-        return dev
-    if torch.cuda.is_available():
-        return torch.device("cuda")
-    mps = getattr(torch.backends, "mps", None)
-    if mps is not None and mps.is_available():
-        return torch.device("mps")
-    return torch.device("cpu")
-
-
 def _prepare(source, device: torch.device, given) -> nn.Module:
     """The source's model in eval mode on ``device``; a module the caller passed in is copied first."""
     model = copy.deepcopy(source.model) if isinstance(given, nn.Module) else source.model
@@ -267,7 +246,8 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
 
     ``model`` and ``against`` are anything :func:`splice.sources.load_source`
     takes (spec string, spliced or plain folder, ``nn.Module``); ``weights``,
-    ``kwargs`` and ``input_shape`` apply to ``model`` only. ``distort`` is a
+    ``kwargs`` and ``input_shape`` apply to ``model`` only. ``device`` is
+    ``cpu``, ``cuda[:N]`` or ``mps``; ``None`` picks cuda, then mps, then cpu. ``distort`` is a
     ``--distort`` string or mapping (see :func:`parse_distort`; ``None`` is
     :data:`DEFAULT_SWEEPS`). ``plot`` is a PNG path for the accuracy-vs-level
     figure; no plot is written unless it is given. ``limit`` evaluates only
@@ -285,6 +265,7 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
     """
     from .data import normalise, open_data
     from .sources import load_source
+    from .training.distributed import pick_device
 
     sweeps = parse_distort(distort)
     if isinstance(batch_size, bool) or not isinstance(batch_size, int) or batch_size < 1:

@@ -227,10 +227,6 @@ def test_cli_reports_a_bad_distort_spec(capsys):
     assert "unknown distortion 'spin'" in capsys.readouterr().err
 
 
-def test_pick_device_rejects_unknown_and_unavailable():
-    assert E.pick_device("cpu") == torch.device("cpu")
+def test_evaluate_rejects_an_unknown_device():
     with pytest.raises(SpliceError, match=r"unknown device 'gpu0'; use cpu, cuda"):
-        E.pick_device("gpu0")
-    if not torch.cuda.is_available():
-        with pytest.raises(SpliceError, match=r"CUDA is not available here; use --device cpu"):
-            E.pick_device("cuda")
+        E.evaluate(_Recorder(), data="digits", distort="none", limit=1, device="gpu0")
