@@ -255,6 +255,15 @@ def _check_file(path: Path, what: str = "weights file") -> None:
         raise WeightsError(f"{what} '{path}' is empty (0 bytes); it was probably not written completely")
 
 
+def _looks_serialised(path: Path) -> bool:
+    """True for a torch.save zip archive or a binary pickle (protocol >= 2)."""
+    import zipfile
+
+    with open(path, "rb") as fh:
+        head = fh.read(2)
+    return zipfile.is_zipfile(path) or head[:1] == b"\x80"
+
+
 def _torch_load(path: Path, *, trust_pickle: bool):
     try:
         with warnings.catch_warnings():
@@ -262,8 +271,13 @@ def _torch_load(path: Path, *, trust_pickle: bool):
             return torch.load(path, map_location="cpu", weights_only=not trust_pickle)
     except pickle.UnpicklingError as exc:
         text = str(exc).lower()
+        blocked = re.search(r"GLOBAL ([\w.]+)", str(exc))
+        if not blocked and not _looks_serialised(path):
+            raise WeightsError(
+                f"'{path}' is not a PyTorch checkpoint (neither a torch.save archive nor a pickle); "
+                "check that you passed the weights file"
+            ) from None
         if not trust_pickle and ("weights_only" in text or "weights only" in text):
-            blocked = re.search(r"GLOBAL ([\w.]+)", str(exc))
             what = blocked.group(1) if blocked else "objects or pickle opcodes the safe loader does not accept"
             raise UnsafeCheckpointError(
                 f"'{path}' contains pickled Python objects ({what}), not just tensors; "
