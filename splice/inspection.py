@@ -383,10 +383,6 @@ def quantities_for(family: str) -> tuple[str, ...]:
     return MATRIX_QUANTITIES
 
 
-def _as_float_dict(values: Mapping[str, Tensor]) -> dict[str, list[float]]:
-    return {k: [float(x) for x in v.tolist()] for k, v in values.items()}
-
-
 # ----------------------------------------------------------------------------- capture
 
 
@@ -409,8 +405,8 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
 
     Images are normalised with ``normalisation`` first (as the model was
     trained), moved to the model's device in batches of ``batch_size``, and
-    run in eval mode without gradients. The warps' ``record`` flags and the
-    model's train/eval mode are restored afterwards.
+    run in eval mode without gradients. The warps' ``record`` flags and
+    ``last_theta`` and the model's train/eval mode are restored afterwards.
     """
     from .data import normalise
     from .surgery import warps_of
@@ -426,7 +422,7 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
     device = param.device if param is not None else torch.device("cpu")
     dtype = param.dtype if param is not None else torch.float32
     was_training = model.training
-    was_recording = {name: w.record for name, w in warps.items()}
+    was_recording = {name: (w.record, w.last_theta) for name, w in warps.items()}
     thetas: dict[str, list[Tensor]] = {name: [] for name in warps}
     outputs: list[Tensor] = []
     single_tensor = True
@@ -447,8 +443,7 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
     finally:
         model.train(was_training)
         for name, w in warps.items():
-            w.record = was_recording[name]
-            w.last_theta = None
+            w.record, w.last_theta = was_recording[name]
     return Capture(
         thetas={name: torch.cat(parts) for name, parts in thetas.items()},
         logits=torch.cat(outputs) if single_tensor and outputs else None,
