@@ -49,6 +49,7 @@ def run(model_name: str = "resnet50", repeats: int = 1) -> list[dict]:
     import splice
     from splice.errors import RandomWeightsWarning
     from splice.store import read_manifest
+    from splice.verify import verify
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RandomWeightsWarning)
@@ -65,7 +66,7 @@ def run(model_name: str = "resnet50", repeats: int = 1) -> list[dict]:
         report = None
         for _ in range(repeats):
             start = time.perf_counter()
-            report = splice.verify(folder, onnx=True)
+            report = verify(folder, onnx=True)
             runs.append(time.perf_counter() - start)
             forwards += _forward_times(base, x, _FORWARD_REPEATS)
         points = [p["name"] for p in read_manifest(folder)["points"]]

@@ -10,10 +10,12 @@ Every export is compared with the eager model twice before anything is kept:
    the grid still returns its input.
 
 For the perturbed check the exported graph is reused: the warp heads' final
-layer tensors are swapped in the ONNX initializers (or in the reloaded
-torch.export program), so the graph that ships is the graph that was checked,
-and the export runs once. When an exporter renamed those tensors the perturbed
-copy is exported again instead.
+layer tensors are declared overridable inputs of the ONNX graph (their values
+unchanged) and fed the perturbed values in a second run of the same
+onnxruntime session; for torch.export they are swapped in the reloaded
+program. So the graph that ships is the graph that was checked, and the export
+and the session are built once. When an exporter renamed or shared those
+tensors beyond repair, the perturbed copy is exported again instead.
 
 Tolerances (:data:`EXPORT_TOLERANCES`) are the max error relative to the
 output's scale (max ``|y|``), as in :func:`splice.verify.compare_outputs`:
@@ -248,45 +250,45 @@ def _ort_session(proto):
     return ort.InferenceSession(proto.SerializeToString(), opts, providers=["CPUExecutionProvider"])
 
 
-def _patch_initializers(proto, values: dict[str, torch.Tensor]):
-    """A copy of ``proto`` with the named tensors replaced, or ``None`` when that is not safe.
+def _overridable(proto, names: Sequence[str]):
+    """Declare the named initializers overridable graph inputs (values unchanged), in place.
 
-    The TorchScript exporter merges equal initializers: two zero-initialised
-    heads of one shape share one tensor, and the second name is an Identity
-    node's output. A shared initializer is patched only when every name it
-    feeds is in ``values`` with the same new value; if it also feeds a tensor
-    that is not being patched (or a name is missing) the result is ``None``.
+    Feeding such an input replaces the tensor for one run, so the perturbed
+    check needs no second export and no second session. The TorchScript
+    exporter merges equal initializers (two zero-initialised heads of one
+    shape share one tensor; the other names become Identity outputs): each
+    merged name gets its own copy back first, so overriding one head's tensor
+    changes nothing else. Returns ``None`` (leaving ``proto`` unusable) when a
+    name is missing or is shared by several consumers.
     """
-    from onnx import numpy_helper
+    from onnx import helper
 
-    inits = {init.name: i for i, init in enumerate(proto.graph.initializer)}
-    alias = {n.output[0]: n.input[0] for n in proto.graph.node
-             if n.op_type == "Identity" and len(n.input) == 1 and n.input[0] in inits}
-    consumed = {name for n in proto.graph.node if n.op_type != "Identity" for name in n.input}
-    consumed |= {o.name for o in proto.graph.output}
-    if not values:
+    graph = proto.graph
+    inits = {init.name: init for init in graph.initializer}
+    aliases = {n.output[0]: n for n in graph.node
+               if n.op_type == "Identity" and len(n.input) == 1 and n.input[0] in inits}
+    wanted = set(names)
+    if any(n not in inits and n not in aliases for n in wanted):
         return None
-    plan: dict[str, torch.Tensor] = {}
-    for name, value in values.items():
-        root = name if name in inits else alias.get(name)
-        if root is None:
-            return None
-        if root in plan and not torch.equal(plan[root], value):
-            return None
-        plan[root] = value
-    for root in plan:
-        names = {root} | {out for out, src in alias.items() if src == root}
-        if any(n in consumed and n not in values for n in names):
-            return None  # the tensor is shared with something that must keep its value
-    patched = type(proto)()
-    patched.CopyFrom(proto)
-    for root, value in plan.items():
-        old = patched.graph.initializer[inits[root]]
-        arr = value.detach().cpu().numpy().astype(numpy_helper.to_array(old).dtype)
-        if tuple(arr.shape) != tuple(old.dims):
-            return None
-        patched.graph.initializer[inits[root]].CopyFrom(numpy_helper.from_array(arr, root))
-    return patched
+    roots = {name if name in inits else aliases[name].input[0] for name in wanted}
+    # every alias of a root being touched becomes a standalone copy of the root
+    for out, node in list(aliases.items()):
+        if node.input[0] in roots and (out in wanted or node.input[0] in wanted):
+            copy_ = graph.initializer.add()
+            copy_.CopyFrom(inits[node.input[0]])
+            copy_.name = out
+            graph.node.remove(node)
+            inits[out] = copy_
+    direct = {}
+    for node in graph.node:
+        for name in node.input:
+            direct[name] = direct.get(name, 0) + 1
+    if any(direct.get(name, 0) != 1 for name in wanted):
+        return None
+    declared = {i.name for i in graph.input}
+    for name in sorted(wanted - declared):
+        graph.input.append(helper.make_tensor_value_info(name, inits[name].data_type, list(inits[name].dims)))
+    return proto
 
 
 def _merge(results: list[dict]) -> dict:
@@ -352,22 +354,35 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     ``{passed, max_abs, max_rel, top1, max_abs_perturbed, max_rel_perturbed,
     tolerance, batch_sizes, perturbed_by, detail}``; never changes ``model``.
     """
+    import onnx
+
     proto = _load_onnx(onnx_model)
+    if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
+        proto = onnx.ModelProto()
+        proto.CopyFrom(onnx_model)
     tol = _tolerance(model, tol)
     batches = _as_batches(inputs)
+    values = _perturbed_tensors(model) if perturb else {}
+    n_outputs = len(proto.graph.output)
+    opset = next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 17)
+    checked = _overridable(proto, list(values)) if values else proto
+    how = "feeds" if values and checked is not None else ("re-export" if values else None)
+    if checked is None:  # the exporter merged the head tensors beyond repair: the original graph is used
+        proto = _load_onnx(onnx_model)
+        checked = proto
     was_training = model.training
     model.eval()
     try:
-        session = _ort_session(proto)
+        session = _ort_session(checked)
         feed_name = session.get_inputs()[0].name
 
-        def run(torch_model, sess) -> dict:
+        def run(torch_model, sess, extra: dict) -> dict:
             results = []
             for x in batches:
                 with torch.no_grad():
                     ref = torch_model(x)
                 try:
-                    outs = sess.run(None, {feed_name: x.detach().cpu().numpy()})
+                    outs = sess.run(None, {feed_name: x.detach().cpu().numpy(), **extra})
                 except Exception as exc:  # onnxruntime raises its own exception types
                     first = str(exc).strip().splitlines()[0]
                     return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
@@ -375,23 +390,17 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
                 results.append(_compare_flat(ref, outs, tol))
             return _merge(results)
 
-        stored = run(model, session)
+        stored = run(model, session, {})
         perturbed = None
-        how = None
-        values = _perturbed_tensors(model)
-        if perturb and values:
+        if values:
             twin = perturbed_copy(model)
-            patched = _patch_initializers(proto, values)
-            if patched is not None:
-                how = "initializers"
-            else:  # the exporter renamed the head tensors: export the perturbed copy itself
-                how = "re-export"
-                opset = next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 17)
-                patched = _load_onnx(export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
-                                                       dynamic_batch=len({b.shape[0] for b in batches}) > 1,
-                                                       fold_constants=False,
-                                                       n_outputs=len(session.get_outputs())))
-            perturbed = run(twin, _ort_session(patched))
+            if how == "feeds":
+                perturbed = run(twin, session, {k: v.detach().cpu().numpy() for k, v in values.items()})
+            else:
+                again = export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
+                                          dynamic_batch=len({b.shape[0] for b in batches}) > 1,
+                                          fold_constants=False, n_outputs=n_outputs)
+                perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     finally:
         model.train(was_training)
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)

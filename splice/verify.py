@@ -366,6 +366,19 @@ class _Snapshot:
                            f"{len(self.buffers)} buffers, {len(changed)} changed")
 
 
+class _Laps:
+    """Wall-clock seconds per phase of a verification (reported in ``meta['seconds']``)."""
+
+    def __init__(self) -> None:
+        self.seconds: dict[str, float] = {}
+        self._last = time.perf_counter()
+
+    def __call__(self, name: str) -> None:
+        now = time.perf_counter()
+        self.seconds[name] = self.seconds.get(name, 0.0) + now - self._last
+        self._last = now
+
+
 class _WarpProbe:
     """Forward hooks on every warp: input/output shapes and how far the output is from the input."""
 
@@ -764,7 +777,8 @@ def _info_of(spliced: nn.Module, info: Mapping | None) -> dict:
 
 def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, image_files, batch: int,
                 dtype: torch.dtype, onnx: bool, opset: int, exporter: str, seed: int, tol: float | None,
-                recorded_base: str | None, rows: list[CheckResult], meta: dict, owned: bool) -> VerifyReport:
+                recorded_base: str | None, rows: list[CheckResult], meta: dict, owned: bool,
+                lap: _Laps) -> VerifyReport:
     from ._io import state_dict_sha256
     from .surgery import WARP_PREFIX, warps_of
 
@@ -772,6 +786,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     base_state = {k: v for k, v in spliced.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
     meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
     provenance = _provenance_row(info, base_state, recorded_base, input_shape)
+    lap("provenance")
     current = next(iter(spliced.parameters()), None)
     if current is not None and current.dtype != dtype:
         if not owned:  # never change the caller's models
@@ -799,6 +814,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
                     p.requires_grad_(True)
         x = probe_batch(input_shape, batch, seed=seed, dtype=dtype)
         ref = _run(base, x, "base model")
+        lap("base forward")
         probe = _WarpProbe(warps)
         error = None
         out = None
@@ -809,6 +825,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
             error = _error_text(exc)
         finally:
             probe.remove()
+        lap("spliced forward")
         rows.append(_shapes_row(probe, warps, points, ref, out, error))
         if out is None:
             rows.append(CheckResult("outputs", False, {}, f"the spliced model fails on the probe ({error})",
@@ -837,10 +854,12 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
                         per_warp[name] = compare_outputs(_detached(id_out), _only_copy(spliced, name)(x), tol=math.inf)
             rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
             n_outputs = len(flatten_outputs(id_out))
+        lap("outputs")
         rows.append(provenance)
         if out is not None:
             grads, gerr = _gradients(out, head_params, seed)
             rows.append(_gradients_row(warps, grads, gerr))
+            lap("gradients")
             out = None  # free the autograd graph before exporting
         else:
             rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
@@ -848,6 +867,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
         if onnx:
             row, onnx_digest = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter, n_outputs=n_outputs)
             rows.append(row)
+            lap("onnx")
     finally:
         for parts in head_params.values():
             for ps in parts.values():
@@ -855,6 +875,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
                     p.requires_grad_(grad_flags[id(p)])
         snapshot.restore_modes()
     rows.append(snapshot.check())
+    lap("buffers")
+    meta["seconds"] = {k: round(v, 4) for k, v in lap.seconds.items()}
     if onnx_digest:
         meta["hashes"]["onnx_sha256"] = onnx_digest
     if image_files is not None:
@@ -904,6 +926,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: Mapping | None =
     normalised ``(N, C, H, W)`` tensor. The folder-only checks (integrity,
     finite) are not run.
     """
+    lap = _Laps()
     info = _info_of(spliced, info)
     dt = _resolve_dtype(dtype)
     _check_batch(batch)
@@ -916,7 +939,38 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: Mapping | None =
     meta["hashes"]["source_sha256"] = info.get("source_weights_sha256")
     return _run_checks(base, spliced, info, images=images, image_files=files, batch=batch, dtype=dt, onnx=onnx,
                        opset=opset, exporter=exporter, seed=seed, tol=tol, recorded_base=None, rows=[], meta=meta,
-                       owned=False)
+                       owned=False, lap=lap)
+
+
+def _spliced_from_base(base: nn.Module, manifest: dict, state: Mapping[str, torch.Tensor], folder: Path,
+                       info: dict) -> nn.Module:
+    """The spliced model, built like :func:`splice.store.load` but from the base already rebuilt.
+
+    ``store.load`` would build the architecture a second time; the surgery
+    (``_apply_plan``) works on a deep copy of ``base``, so ``base`` stays the
+    independent eager reference. The weights are loaded strictly, as ``load`` does.
+    """
+    from .errors import WeightsError
+    from .surgery import SplicePlan, _apply_plan
+    from .warps import WarpConfig
+
+    if manifest["points"]:
+        plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
+        model = _apply_plan(base, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()))
+    else:
+        model = copy.deepcopy(base)
+    own = model.state_dict()
+    missing = sorted(set(own) - set(state))
+    unexpected = sorted(set(state) - set(own))
+    wrong = sorted(k for k in own if k in state and tuple(own[k].shape) != tuple(state[k].shape))
+    if missing or unexpected or wrong:
+        raise WeightsError(
+            f"'{folder}' weights do not fit the architecture in its manifest (missing {missing[:4]}, unexpected "
+            f"{unexpected[:4]}, wrong shape {wrong[:4]}); the folder was written by an incompatible version or "
+            "edited by hand")
+    model.load_state_dict(state, strict=True)
+    model.splice_info = dict(info)
+    return model.eval()
 
 
 def verify(folder: str | os.PathLike, *, images=None, batch: int = 2, dtype="float32", onnx: bool = False,
@@ -937,8 +991,9 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 2, dtype="flo
     from ._io import file_sha256
     from .errors import IntegrityError, WeightsError
     from .sources import _safetensors_load
-    from .store import MANIFEST_NAME, load, load_base, read_manifest
+    from .store import MANIFEST_NAME, load_base, read_manifest
 
+    lap = _Laps()
     folder = Path(folder)
     manifest = read_manifest(folder)
     dt = _resolve_dtype(dtype)
@@ -961,27 +1016,31 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 2, dtype="flo
     weights = folder / manifest["weights"]["file"]
     if not weights.is_file():
         raise WeightsError(f"'{weights}' is missing; the folder is incomplete — re-create it with 'splice insert'")
-    actual = file_sha256(weights)
-    meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME), "weights_sha256": actual,
-                           "weights_sha256_recorded": manifest["weights"]["sha256"],
+    recorded = manifest["weights"]["sha256"]
+    meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME), "weights_sha256_recorded": recorded,
                            "source_sha256": info["source_weights_sha256"]})
-    rows = [_integrity_row(weights, manifest["weights"]["sha256"], actual)]
-    if not rows[0].passed:
+    try:  # load_base checks the file against its recorded hash before it uses a byte of it
+        base = load_base(folder, trust_pickle=trust_pickle)
+    except IntegrityError:
+        actual = file_sha256(weights)
+        meta["hashes"]["weights_sha256"] = actual
         meta["not_run"] = "the weights file cannot be trusted, so no other check ran"
-        return VerifyReport(rows, meta)
-    rows.append(_finite_row(_safetensors_load(weights), f"'{weights}'"))
+        return VerifyReport([_integrity_row(weights, recorded, actual)], meta)
+    meta["hashes"]["weights_sha256"] = recorded
+    rows = [_integrity_row(weights, recorded, recorded)]
+    lap("integrity and base")
+    state = _safetensors_load(weights)
+    rows.append(_finite_row(state, f"'{weights}'"))
+    lap("finite")
     if not rows[-1].passed:
         meta["not_run"] = "the weights hold NaN/Inf values, so no other check ran"
         return VerifyReport(rows, meta)
-    try:
-        spliced = load(folder, trust_pickle=trust_pickle)
-        base = load_base(folder, trust_pickle=trust_pickle)
-    except IntegrityError as exc:  # the file changed while we were reading it
-        rows[0] = CheckResult("integrity", False, rows[0].numbers, str(exc), "hash mismatch")
-        return VerifyReport(rows, meta)
+    spliced = _spliced_from_base(base, manifest, state, folder, info)
+    lap("spliced")
     return _run_checks(base, spliced, info, images=images_t, image_files=files, batch=batch, dtype=dt, onnx=onnx,
                        opset=opset, exporter=exporter, seed=seed, tol=tol,
-                       recorded_base=manifest["weights"].get("base_sha256"), rows=rows, meta=meta, owned=True)
+                       recorded_base=manifest["weights"].get("base_sha256"), rows=rows, meta=meta, owned=True,
+                       lap=lap)
 
 
 # ----------------------------------------------------------------------------- output
