@@ -679,11 +679,13 @@ def _train(run) -> dict[str, Any]:
         if ctx.is_main:
             with _writing(run.run_dir / _METRICS_FILE):
                 _truncate_metrics(run.run_dir, run.metrics_rows)
-        if start_batch:
+        if start_batch and ctx.is_main:  # the partial epoch's totals (summed over ranks) live on rank 0
             ls, cor, seen, run.epoch_time = ckpt["epoch_totals"]
             stepper.loss_sum.fill_(ls)
             stepper.correct.fill_(cor)
             stepper.seen = int(seen)
+        elif start_batch:
+            run.epoch_time = float(ckpt["epoch_totals"][3])
         run.bar.line(f"resuming {run.run_dir} at epoch {start_epoch + 1}, batch {start_batch}, step {step}")
     elif ctx.is_main:
         _truncate_metrics(run.run_dir, 0)
@@ -785,10 +787,13 @@ def _train(run) -> dict[str, Any]:
                 pending_stop = True
                 if b + 1 < len(batches):  # mid-epoch: checkpoint this exact batch and stop
                     run.epoch_time += time.perf_counter() - t0
-                    _checkpoint(run, epoch=epoch, batch=b + 1, step=step, stepper=stepper)
+                    totals = distributed.all_reduce_sum(ctx, list(stepper.totals()))  # over every rank
+                    _checkpoint(run, epoch=epoch, batch=b + 1, step=step, stepper=stepper,
+                                extra={"epoch_totals": [*totals, run.epoch_time]})
                     return _stopped(run, epoch, b + 1, step)
                 # the epoch's last batch: finish the epoch (evaluation, checkpoint) first
         run.epoch_time += time.perf_counter() - t0
+        distributed.sync_buffers(ctx, net)
         loss_sum, correct, seen = distributed.all_reduce_sum(ctx, list(stepper.totals()))
         ips = seen / max(run.epoch_time, 1e-9)
         improved = None

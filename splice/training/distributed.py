@@ -16,7 +16,7 @@ import torch.distributed as dist
 
 from ..errors import SpliceError
 
-__all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag"]
+__all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag", "sync_buffers"]
 
 
 def pick_device(requested: str | None = None, *, local_rank: int = 0) -> torch.device:
@@ -88,8 +88,12 @@ def setup(device: str | None = None) -> Context:
 
 
 def teardown(ctx: Context) -> None:
+    """Leave the process group we joined (after every rank got here)."""
     if ctx.owns_group and dist.is_initialized():
-        dist.destroy_process_group()
+        try:
+            dist.barrier()
+        finally:
+            dist.destroy_process_group()
 
 
 def all_reduce_sum(ctx: Context, values: list[float]) -> list[float]:
@@ -106,3 +110,16 @@ def broadcast_flag(ctx: Context, flag: bool) -> bool:
     if not ctx.distributed:
         return flag
     return all_reduce_sum(ctx, [1.0 if flag else 0.0])[0] > 0
+
+
+def sync_buffers(ctx: Context, model) -> None:
+    """Copy rank 0's buffers (BatchNorm statistics) to every rank.
+
+    DDP broadcasts buffers at the start of each forward pass, so after the last
+    step every rank holds statistics updated by its own last batch. Calling this
+    before evaluating or saving makes all ranks hold rank 0's model exactly.
+    """
+    if not ctx.distributed:
+        return
+    for buf in model.buffers():
+        dist.broadcast(buf.data, src=0)
