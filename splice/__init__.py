@@ -8,7 +8,7 @@ The public surface is small and stable::
     model = splice.insert("torchvision:resnet18", at=["recommended"], warp="affine")
     splice.save(model, "out/resnet18-affine")               # safetensors + splice.json
     again = splice.load("out/resnet18-affine")              # no pickle involved
-    report = splice.verify("out/resnet18-affine")           # the equivalence certificate
+    report = splice.verify.verify("out/resnet18-affine")    # the equivalence certificate
 
 Names are resolved lazily so that ``import splice`` stays cheap (it never
 imports onnx, onnxruntime or matplotlib, and never initialises CUDA).
@@ -34,20 +34,23 @@ _EXPORTS = {
     "register_leaf": "graph",
     "WarpConfig": "warps",
     "Warp": "warps",
-    "verify": "verify",
-    "export": "export",
-    "tune": "tune",
     "Recipe": "recipes",
     "load_recipe": "recipes",
     "inspect": "inspection",
-    "evaluate": "evaluate",
-    "demo": "demo",
 }
+
+# sub-modules reachable as attributes (``splice.verify.verify(...)``); their main
+# functions are not re-exported under the same name, so ``import splice.verify``
+# and ``splice.verify`` always mean the module
+_SUBMODULES = ("graph", "warps", "surgery", "store", "sources", "verify", "export", "data", "distort",
+               "recipes", "tune", "inspection", "evaluate", "demo", "models", "errors", "cli")
 
 __all__ = ["__version__", *_EXPORTS]
 
 
 def __getattr__(name: str):
+    if name in _SUBMODULES:
+        return importlib.import_module(f".{name}", __name__)
     module = _EXPORTS.get(name)
     if module is None:
         raise AttributeError(f"module 'splice' has no attribute {name!r}")

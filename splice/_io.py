@@ -25,6 +25,12 @@ __all__ = [
 ]
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _fsync_dir(path: Path) -> None:
     with contextlib.suppress(OSError):
         fd = os.open(path, os.O_RDONLY)
@@ -40,6 +46,7 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual permissions
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
@@ -84,6 +91,7 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
         )
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
+    os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes 0700
     try:
         yield tmp
         for f in tmp.rglob("*"):

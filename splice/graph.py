@@ -69,6 +69,7 @@ import importlib
 import itertools
 import math
 import operator
+import re
 import os.path
 import sys
 import warnings
@@ -93,6 +94,7 @@ __all__ = [
     "trace",
     "points",
     "find_point",
+    "point_names",
     "points_report",
 ]
 
@@ -972,11 +974,43 @@ def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:
 
 
 def _point_names(graph: fx.Graph) -> dict[fx.Node, str]:
-    names = {n: n.name for n in graph.nodes}
+    """Stable point names: module qualnames, ``_1``, ``_2`` for repeats.
+
+    Module calls keep fx's names (``layer1_0_relu``, ``layer1_0_relu_1``).
+    Functions and methods called inside a module's ``forward`` (the ``+`` of a
+    residual block, a ``torch.cat``) are named after that module too:
+    ``layer1_0_add`` rather than fx's global ``add_3``. The input is ``input``.
+    """
+    names: dict[fx.Node, str] = {}
+    taken = {n.name for n in graph.nodes if n.op not in ("call_function", "call_method")}
+    counts: dict[str, int] = {}
+    for n in graph.nodes:
+        if n.op in ("call_function", "call_method"):
+            stack = n.meta.get("nn_module_stack") or {}
+            owner = next(reversed(stack), None) if stack else None
+            if owner:
+                owner = owner.split("@")[0].replace(".", "_")
+                base = re.sub(r"_\d+$", "", n.name)
+                stem = f"{owner}_{base}"
+                k = counts.get(stem, 0)
+                name = stem if k == 0 else f"{stem}_{k}"
+                while name in taken:
+                    k += 1
+                    name = f"{stem}_{k}"
+                counts[stem] = k + 1
+                taken.add(name)
+                names[n] = name
+                continue
+        names[n] = n.name
     first = next((n for n in graph.nodes if n.op == "placeholder"), None)
     if first is not None:
         names[first] = "input"  # fx never names another node 'input' (a Python builtin)
     return names
+
+
+def point_names(gm: fx.GraphModule) -> dict[str, fx.Node]:
+    """``{point name: fx node}`` for a traced module (the names :func:`points` prints)."""
+    return {name: node for node, name in _point_names(gm.graph).items() if node.op not in ("get_attr", "output")}
 
 
 _NCHW = (0, 1, 2, 3)

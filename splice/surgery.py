@@ -52,7 +52,7 @@ def base_state_dict(model: nn.Module) -> dict[str, torch.Tensor]:
 
 def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphModule) -> list[str]:
     by_name = {p.name: p for p in listing}
-    node_names = {("input" if n.op == "placeholder" else n.name): n for n in gm.graph.nodes}
+    node_names = _node_map(gm)
     names: list[str] = []
     for raw in requested:
         if raw == "recommended":
@@ -68,12 +68,9 @@ def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphMod
         for name in expanded:
             if name not in by_name:
                 if name in node_names:
-                    node = node_names[name]
-                    meta = node.meta.get("tensor_meta")
-                    shape = list(getattr(meta, "shape", [])) if meta is not None else "unknown"
                     raise PointError(
-                        f"point {name!r} is not a 4-D activation (shape {shape}); a warp needs an "
-                        "(N, C, H, W) tensor — pick one listed by 'splice points MODEL --all'"
+                        f"point {name!r} is not a 4-D (N, C, H, W) activation, which a warp needs; "
+                        "pick one listed by 'splice points MODEL --all'"
                     )
                 raise PointError(
                     f"unknown point {name!r}{suggest(name, list(by_name))} "
@@ -91,13 +88,9 @@ def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphMod
 
 
 def _node_map(gm: fx.GraphModule) -> dict[str, fx.Node]:
-    out = {}
-    placeholders = [n for n in gm.graph.nodes if n.op == "placeholder"]
-    for n in gm.graph.nodes:
-        out[n.name] = n
-    if placeholders:
-        out["input"] = placeholders[0]
-    return out
+    from .graph import point_names
+
+    return point_names(gm)
 
 
 def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:

@@ -112,7 +112,7 @@ def _cases():
          "--trust-pickle"),
         ("pickle payload as model", ["points", f("evil.pt"), "--input-shape", "1x48x48"], "arbitrary code"),
         ("unknown point", ["insert", TRAY, "--at", "block1_rleu", "--out", f("o6")], "did you mean"),
-        ("not 4-D", ["insert", TRAY, "--at", "flatten", "--out", f("o7")], "not a 4-D activation"),
+        ("not 4-D", ["insert", TRAY, "--at", "flatten", "--out", f("o7")], "not a 4-D"),
         ("same point twice", ["insert", TRAY, "--at", "input", "--at", "input", "--out", f("o8")], "given twice"),
         ("existing output", ["insert", TRAY, "--at", "input", "--out", ("KEY", "folder")], "already exists"),
         ("edited manifest", ["verify", ("KEY", "edited")], "input_shape"),

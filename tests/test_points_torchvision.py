@@ -63,7 +63,7 @@ def _hook_shapes(model: torch.nn.Module, x: torch.Tensor) -> tuple[dict[str, tup
 
 def _reference_cuts(gm: fx.GraphModule, values) -> tuple[dict[str, bool], dict[str, str | None]]:
     """Cut flag and join for every tensor node, computed with networkx from the definition."""
-    name = {n: ("input" if n.op == "placeholder" else n.name) for n in gm.graph.nodes}
+    name = {node: key for key, node in graph.point_names(gm).items()}
     out_node = next(n for n in gm.graph.nodes if n.op == "output")
     g = networkx.DiGraph()
     keep = {n for n in gm.graph.nodes if n.op not in ("get_attr", "output") and isinstance(values.get(n), torch.Tensor)}
@@ -117,11 +117,12 @@ def _check_model(arch: str) -> None:
     values, out = _real_values(gm, x)
     hooked, eager_out = _hook_shapes(model, x)
     torch.testing.assert_close(out, eager_out, rtol=0, atol=0)  # the trace is faithful
-    real = {("input" if n.op == "placeholder" else n.name): v for n, v in values.items() if n.op != "get_attr"}
+    label = {node: key for key, node in graph.point_names(gm).items()}
+    real = {label[n]: v for n, v in values.items() if n in label}
     real4d = {k for k, v in real.items() if isinstance(v, torch.Tensor) and v.dim() == 4}
     assert set(by_name) <= real4d
     # the 4-D tensors left out are channels-last ones made by a permute (convnext's blocks)
-    nodes = {n.name: n for n in gm.graph.nodes}
+    nodes = graph.point_names(gm)
     for name in real4d - set(by_name):
         ancestors, todo = {nodes[name]}, [nodes[name]]
         while todo:
@@ -174,8 +175,9 @@ def test_resnet18_listing_by_hand():
     pts = {p.name: p for p in graph.points(torchvision.models.resnet18(weights=None), _SHAPE)}
     assert [n for n, p in pts.items() if p.recommended] == ["input", "maxpool"]
     assert pts["maxpool"].shape == (64, 56, 56) and pts["maxpool"].stride == 4
-    assert pts["layer1_0_relu"].in_branch and pts["layer1_0_relu"].join == "add"
-    assert pts["add"].cut and pts["layer1_0_relu_1"].cut
-    assert pts["layer2_0_downsample_0"].join == "add_2"
+    # functional nodes are named after the module whose forward calls them
+    assert pts["layer1_0_relu"].in_branch and pts["layer1_0_relu"].join == "layer1_0_add"
+    assert pts["layer1_0_add"].cut and pts["layer1_0_relu_1"].cut
+    assert pts["layer2_0_downsample_0"].join == "layer2_0_add"
     assert pts["layer4_1_relu"].shape == (512, 7, 7) and pts["layer4_1_relu"].stride == 32
     assert "layer4_1_relu_1" not in pts  # after the last conv: only with all=True
