@@ -120,13 +120,34 @@ def _perturbed_tensors(model: nn.Module) -> dict[str, torch.Tensor]:
 
 
 def perturbed_copy(model: nn.Module) -> nn.Module:
-    """A copy of ``model`` whose warps all apply :func:`perturbation_theta` (the caller's model is untouched)."""
-    work = copy.deepcopy(model)
-    params = dict(work.named_parameters())
+    """A copy of ``model`` whose warps all apply :func:`perturbation_theta` (the caller's model is untouched).
+
+    Only the warps are copied; the base modules, parameters and buffers are
+    shared with ``model`` (read them, do not train the copy).
+    """
+    from .surgery import WARP_PREFIX
+
+    twin = _own_warps(model)
+    params = dict(twin.named_parameters())
     with torch.no_grad():
-        for name, value in _perturbed_tensors(work).items():
+        for name, value in _perturbed_tensors(twin).items():
+            if not name.startswith(WARP_PREFIX + "."):
+                raise SpliceError(f"internal error: {name} is not a warp tensor")
             params[name].copy_(value)
-    return work
+    return twin
+
+
+def _own_warps(model: nn.Module) -> nn.Module:
+    """A shallow copy of ``model`` that owns a deep copy of its warp container."""
+    from .surgery import WARP_PREFIX
+
+    if WARP_PREFIX not in model._modules:
+        return copy.deepcopy(model)
+    twin = object.__new__(type(model))
+    twin.__dict__.update(model.__dict__)
+    twin.__dict__["_modules"] = dict(model._modules)  # a new mapping: the original keeps its warps
+    twin._modules[WARP_PREFIX] = copy.deepcopy(model._modules[WARP_PREFIX])
+    return twin
 
 
 # ----------------------------------------------------------------------------- exporting
@@ -344,7 +365,8 @@ def _summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int],
     }
 
 
-def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:
+def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
+                references: Sequence | None = None) -> dict:
     """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
 
     ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
@@ -353,6 +375,8 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     again with every warp set to :func:`perturbation_theta`. Returns
     ``{passed, max_abs, max_rel, top1, max_abs_perturbed, max_rel_perturbed,
     tolerance, batch_sizes, perturbed_by, detail}``; never changes ``model``.
+    ``references`` may hold ``model``'s outputs for ``inputs`` when the caller
+    has them already (one per batch); they are used for the as-stored check.
     """
     import onnx
 
@@ -376,11 +400,14 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
         session = _ort_session(checked)
         feed_name = session.get_inputs()[0].name
 
-        def run(torch_model, sess, extra: dict) -> dict:
+        def run(torch_model, sess, extra: dict, known=None) -> dict:
             results = []
-            for x in batches:
-                with torch.no_grad():
-                    ref = torch_model(x)
+            for i, x in enumerate(batches):
+                if known is not None:
+                    ref = known[i]
+                else:
+                    with torch.no_grad():
+                        ref = torch_model(x)
                 try:
                     outs = sess.run(None, {feed_name: x.detach().cpu().numpy(), **extra})
                 except Exception as exc:  # onnxruntime raises its own exception types
@@ -390,7 +417,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
                 results.append(_compare_flat(ref, outs, tol))
             return _merge(results)
 
-        stored = run(model, session, {})
+        if references is not None and len(references) != len(batches):
+            raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
+        stored = run(model, session, {}, references)
         perturbed = None
         if values:
             twin = perturbed_copy(model)

@@ -53,11 +53,15 @@ Each check gives one :class:`CheckResult` row ``{check, passed, numbers, detail}
     ``nearest`` sampler passes no gradient to its grid, so such a warp fails
     here: it cannot be trained.
 ``onnx`` (``onnx=True``)
-    Export (TorchScript exporter by default, opset 17) on the first probe
-    sample and compare onnxruntime with torch, as stored and with a fixed
-    perturbed warp (:func:`splice.export.onnx_parity`), relative tolerance
-    1e-4; reports the export time. Runs in float32 even when ``dtype`` is
-    float64 (onnxruntime's GridSample is float32).
+    Export once (TorchScript exporter by default, ``exporter='dynamo'`` for
+    opset 18+; opset 17 by default) traced on the first probe sample, and
+    compare onnxruntime (CPU) with torch on that sample, as stored and with a
+    fixed perturbed warp (:func:`splice.export.onnx_parity`; the perturbed run
+    feeds the heads' final tensors to the same session), relative tolerance
+    1e-4; reports the export and check times. The torch side of the as-stored
+    comparison is the stored model's output for that sample from the outputs
+    check. Constant folding is off (onnxruntime folds when it loads the graph;
+    ``splice export`` folds). Runs in float32 even when ``dtype`` is float64.
 ``buffers``
     Every buffer of both models (BatchNorm running statistics included) is
     bitwise unchanged after all of the above, and every module's train/eval
@@ -731,7 +735,7 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
 
 
 def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
-              n_outputs: int | None) -> tuple[CheckResult, str | None]:
+              n_outputs: int | None, reference=None) -> tuple[CheckResult, str | None]:
     import hashlib
 
     from .errors import SpliceError
@@ -739,6 +743,8 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
 
     twin = model if example.dtype == torch.float32 else copy.deepcopy(model).float()
     x = example.float()
+    if twin is not model:
+        reference = None  # the probe outputs were computed in another dtype
     start = time.perf_counter()
     try:
         # constant folding only tidies the graph (onnxruntime folds again when it
@@ -748,7 +754,7 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
         return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed"), None
     seconds = time.perf_counter() - start
     start = time.perf_counter()
-    result = onnx_parity(twin, data, x)
+    result = onnx_parity(twin, data, x, references=None if reference is None else [reference])
     digest = hashlib.sha256(data).hexdigest()
     numbers = {"opset": opset, "exporter": exporter, "export_seconds": seconds,
                "check_seconds": time.perf_counter() - start, "bytes": len(data), "sha256": digest,
@@ -807,6 +813,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     spliced.eval()
     onnx_digest = None
     n_outputs = None
+    first_sample = None
     try:
         for parts in head_params.values():
             for ps in parts.values():
@@ -854,6 +861,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
                         per_warp[name] = compare_outputs(_detached(id_out), _only_copy(spliced, name)(x), tol=math.inf)
             rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
             n_outputs = len(flatten_outputs(id_out))
+            # the stored model's outputs for the first probe sample: the ONNX check's torch side
+            first_sample = _first_rows(_detached(flat_out), batch)
         lap("outputs")
         rows.append(provenance)
         if out is not None:
@@ -865,7 +874,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
             rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
                                     "not run"))
         if onnx:
-            row, onnx_digest = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter, n_outputs=n_outputs)
+            row, onnx_digest = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter, n_outputs=n_outputs,
+                                         reference=first_sample)
             rows.append(row)
             lap("onnx")
     finally:
@@ -882,6 +892,26 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     if image_files is not None:
         meta["images"] = image_files
     return VerifyReport(rows, meta)
+
+
+def _first_rows(out, batch: int):
+    """``out`` restricted to the first sample, or ``None`` if some output has no batch dimension."""
+    flat = flatten_outputs(out)
+    if not flat or any(t.dim() == 0 or t.shape[0] != batch for t in flat.values()):
+        return None
+
+    def cut(o):
+        if isinstance(o, torch.Tensor):
+            return o[:1]
+        if isinstance(o, Mapping):
+            return {k: cut(v) for k, v in o.items()}
+        if isinstance(o, tuple) and hasattr(o, "_fields"):  # a named tuple
+            return type(o)(*(cut(v) for v in o))
+        if isinstance(o, (tuple, list)):
+            return type(o)(cut(v) for v in o)
+        return o
+
+    return cut(out)
 
 
 def _detached(out):
