@@ -404,7 +404,15 @@ def _tune(ctx, *, model, recipe, data, out, resume, epochs, lr, batch_size, seed
         rec = recorded
         _check_same("model", _describe(model) if model is not None else None, info["model"], run_dir)
         _check_same("data", data, info["data"], run_dir)
+        if model is None and info["model"] == "<module>":
+            raise SpliceError(
+                f"run '{run_dir}' was started from an nn.Module object; pass the same model again to resume"
+            )
         model = model if model is not None else info["model"]
+        # the architecture must be rebuilt exactly as it was: reuse the recorded builder options
+        kwargs = kwargs if kwargs is not None else info.get("model_kwargs") or None
+        input_shape = input_shape if input_shape is not None else info.get("input_shape")
+        weights = weights if weights is not None else info.get("model_weights")
         data = info["data"]
         if (run_dir / CHECKPOINT_NAME).is_file():
             ckpt = load_checkpoint(run_dir / CHECKPOINT_NAME)
@@ -482,6 +490,7 @@ def _tune(ctx, *, model, recipe, data, out, resume, epochs, lr, batch_size, seed
     if info is None:
         info = {
             "schema_version": RUN_SCHEMA_VERSION, "format": _RUN_FORMAT, "model": _describe(model),
+            "model_kwargs": dict(src.kwargs), "model_weights": str(weights) if weights is not None else None,
             "data": data, "recipe": rec.name, "mode": rec.mode, "world_size": ctx.world_size,
             "device": str(dev), "input_shape": list(shape), "class_names": classes or None,
             "normalisation": norm, "base_sha256_start": base_hash0, "status": "running",
@@ -668,7 +677,14 @@ def _train(run) -> dict[str, Any]:
                 f"the checkpoint in '{run.run_dir}' was written mid-epoch by {ckpt['world_size']} process(es); "
                 f"resume it with the same number of processes (now {ctx.world_size})"
             )
-        net.load_state_dict(ckpt["model"], strict=True)
+        try:
+            net.load_state_dict(ckpt["model"], strict=True)
+        except RuntimeError as exc:
+            first = str(exc).splitlines()[0]
+            raise SpliceError(
+                f"the checkpoint in '{run.run_dir}' does not fit the model ({first}); resume with the model, "
+                "--kwargs and --input-shape the run was started with"
+            ) from None
         run.optimizer.load_state_dict(ckpt["optimizer"])
         if stepper.scaler is not None and ckpt.get("scaler"):
             stepper.scaler.load_state_dict(ckpt["scaler"])

@@ -249,3 +249,41 @@ def test_failed_checkpoint_write_leaves_the_previous_one_intact(tmp_path, base_r
     assert load_checkpoint(out / CHECKPOINT_NAME)["step"] == 9
     assert not [p for p in out.iterdir() if p.name.startswith(f".{CHECKPOINT_NAME}")]  # no temp files left
     assert tune(resume=out, **QUIET)["steps"] == 18  # and the run can still finish
+
+
+class _Tty(__import__("io").StringIO):
+    def isatty(self):
+        return True
+
+
+def test_progress_is_plain_without_a_terminal_and_honours_no_color(monkeypatch):
+    import io
+    import re
+
+    from splice.progress import Progress
+
+    plain = io.StringIO()
+    with Progress(stream=plain) as bar:
+        assert not bar.rich
+        bar.start("epoch 1/1", 10)
+        bar.update(5, loss=0.5)  # no bar, no output per step
+        bar.line("epoch 1/1  step 10  val acc 0.9000")
+    assert plain.getvalue() == "epoch 1/1  step 10  val acc 0.9000\n"
+
+    quiet = _Tty()
+    with Progress(stream=quiet, quiet=True) as bar:
+        assert not bar.rich
+        bar.line("done")
+    assert quiet.getvalue() == "done\n"
+
+    monkeypatch.setenv("NO_COLOR", "1")
+    monkeypatch.setenv("TERM", "xterm-256color")
+    tty = _Tty()
+    with Progress(stream=tty, refresh_s=0.0) as bar:
+        assert bar.rich
+        bar.start("epoch 1/2", 4)
+        bar.update(2, loss=0.25, acc=0.5, **{"img/s": 1234.0})
+        bar.line("epoch 1/2  step 4")
+    text = tty.getvalue()
+    assert "epoch 1/2  step 4" in text and "loss 0.2500" in text and "1,234 img/s" in text
+    assert not re.search(r"\x1b\[[0-9;]*3[0-7]m|\x1b\[38;", text)  # no colour codes under NO_COLOR

@@ -112,7 +112,6 @@ def pretrain_warps_(
     prepare: Callable[[Tensor], Tensor],
     rank: int = 0,
     world: int = 1,
-    device: torch.device = torch.device("cpu"),
     reduce_grads: Callable[[list[Tensor]], None] | None = None,
     on_step: Callable[[int, int, float], None] | None = None,
     workers: int = 0,
