@@ -287,3 +287,47 @@ def test_progress_is_plain_without_a_terminal_and_honours_no_color(monkeypatch):
     text = tty.getvalue()
     assert "epoch 1/2  step 4" in text and "loss 0.2500" in text and "1,234 img/s" in text
     assert not re.search(r"\x1b\[[0-9;]*3[0-7]m|\x1b\[38;", text)  # no colour codes under NO_COLOR
+
+
+def test_lr_schedules():
+    from splice.training.schedule import lr_factor
+
+    kw = {"steps_per_epoch": 10, "total_steps": 100}
+    assert lr_factor("constant", 57, **kw) == 1.0
+    assert lr_factor("cosine", 0, **kw) == 1.0 and lr_factor("cosine", 100, **kw) == pytest.approx(0.0)
+    assert lr_factor("cosine", 50, **kw) == pytest.approx(0.5)  # half-way down 0.5 (1 + cos(pi t))
+    assert [lr_factor("cosine", s, warmup_steps=4, **kw) for s in range(4)] == [0.2, 0.4, 0.6, 0.8]
+    assert lr_factor("step", 29, step_epochs=2, step_gamma=0.5, **kw) == 0.5  # epoch 2 -> one decay
+    assert lr_factor("step", 40, step_epochs=2, step_gamma=0.5, **kw) == 0.25
+
+
+def test_identity_penalty_is_zero_at_the_identity_and_the_mean_squared_shift_otherwise(spliced):
+    from splice.surgery import warps_of
+    from splice.training.loop import identity_penalty
+
+    warp = warps_of(splice.load(spliced))["input"]
+    ident = warp.head.identity.reshape(1, -1).repeat(3, 1)
+    assert float(identity_penalty({"input": warp}, {"input": ident})) == 0.0
+    moved = ident.clone()
+    moved[:, 2], moved[:, 5] = 0.3, -0.4  # affine theta row-major: a pure translation (0.3, -0.4)
+    # every grid point moves by (0.3, -0.4): the mean over both coordinates is (0.09 + 0.16) / 2
+    assert float(identity_penalty({"input": warp}, {"input": moved})) == pytest.approx(0.125, rel=1e-6)
+
+
+def test_pretraining_target_grid_undoes_the_distortion():
+    """The grid built from the forward distortion matrix samples the distorted image back to the original."""
+    import torch.nn.functional as F
+
+    from splice.distort import DistortionRange, random_distort
+    from splice.training.pretrain import target_grid
+
+    img = torch.zeros(1, 1, 32, 32)
+    img[..., 10:22, 12:20] = 1.0  # a bar well inside the frame
+    gen = torch.Generator().manual_seed(3)
+    moved, meta = random_distort(img.double(), DistortionRange(rotation_deg=40, scale=(0.9, 1.1), shift=0.1), gen)
+    back = F.grid_sample(moved, target_grid(meta["matrix"], 32, 32, dtype=torch.float64), align_corners=False)
+    # two bilinear resamplings blur the bar's edges by about a pixel; the inside must come back
+    inner = torch.zeros_like(img, dtype=torch.bool)
+    inner[..., 12:20, 14:18] = True
+    assert float((back - img.double())[inner].abs().max()) < 0.05
+    assert float((back - img.double()).abs().mean()) < 0.02
