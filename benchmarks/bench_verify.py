@@ -82,6 +82,8 @@ def run(model_name: str = "resnet50", repeats: int = 1) -> list[dict]:
         "forward_ms": round(forward * 1e3, 1),
         "certificate_passed": bool(report is not None and report.passed),
         "points": points,
+        # where the time went, in batch-1 forward passes (from the certificate's own clock)
+        "phases": {k: round(v / forward, 2) for k, v in (report.meta.get("seconds") or {}).items()},
     }]
 
 
@@ -89,6 +91,7 @@ def main() -> int:
     for row in run():
         print(f"{row['name']}: verify --onnx {row['verify_s']} s, forward {row['forward_ms']} ms "
               f"(points {', '.join(row['points'])}; certificate {'passed' if row['certificate_passed'] else 'FAILED'})")
+        print("  phases (forward passes): " + ", ".join(f"{k} {v}" for k, v in row["phases"].items()))
         verdict = "PASS" if row["pass"] else "FAIL"
         print(f"RESULT {row['name']} ratio={row['ratio']:.2f} goal<={row['goal']} {verdict}")
     return 0
