@@ -738,21 +738,22 @@ def _train(run) -> dict[str, Any]:
         if warps and pre.epochs > 0:
             ref, ref_name = _reference(rec, run.data, run.train, run.shape, run.reference_override)
             _set_requires_grad(net, rec, frozen, base_frozen=True)
-            run.bar.start("pre-train warps", 1)
 
             def on_step(i, total, loss):
+                if i == 1:
+                    run.bar.start("pre-train warps", total)
                 run.bar.update(i, **{"grid loss": loss})
-                if run.flag.raised:
-                    raise TuneInterrupted
+                if distributed.broadcast_flag(ctx, run.flag.raised):  # every rank stops at the same step
+                    raise TuneInterrupted("interrupted during warp pre-training")
             try:
                 res = pretrain_warps_(net, warps, ref, pre, seed=rec.seed, prepare=run.prepare,
                                       rank=ctx.rank, world=ctx.world_size, reduce_grads=_reduce_grads(ctx),
                                       on_step=on_step, workers=run.workers)
             except TuneInterrupted:
-                run.bar.line(f"interrupted during warp pre-training; nothing to resume yet — "
-                             f"start again (remove {run.run_dir} or use another --out)")
+                run.bar.line(f"interrupted during warp pre-training (no checkpoint yet); "
+                             f"'splice tune --resume {run.run_dir}' starts the run again from the beginning")
                 raise
-            run.bar.finish(1)
+            run.bar.finish(res["steps"])
             extra = {"reference": ref_name, "pretrain_steps": res["steps"]}
             record("pretrain", 0, loss=round(res["grid_loss"], 6), extra=extra)
         else:
