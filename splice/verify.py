@@ -837,11 +837,12 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
         if out is None:
             rows.append(CheckResult("outputs", False, {}, f"the spliced model fails on the probe ({error})",
                                     "forward failed"))
+            rows.append(_warps_row(warps, distances, probe, tuned_declared, None, {}))
         else:
-            flat_out = out
+            stored_out = out
             identity_model = _reset_copy(spliced) if tuned else spliced
             with torch.no_grad():
-                id_out = identity_model(x) if tuned else flat_out
+                id_out = identity_model(x) if tuned else stored_out
             cmp = compare_outputs(ref, _detached(id_out), tol=tol)
             rows.append(_outputs_row("outputs", cmp, tuned, f"seeded N(0,1) probe of {batch}"))
             if images is not None:
@@ -852,7 +853,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
                                                   _run(identity_model, chunk, "spliced model"), tol=tol))
                 rows.append(_outputs_row("images", _merge_compares(chunks), tuned,
                                          f"{images.shape[0]} image(s) from --images"))
-            deviation = compare_outputs(_detached(id_out), _detached(flat_out), tol=math.inf) if tuned else None
+            deviation = compare_outputs(_detached(id_out), _detached(stored_out), tol=math.inf) if tuned else None
             per_warp = {}
             moved = [n for n, d in distances.items() if d > 0]
             if tuned and len(moved) > 1:
@@ -862,7 +863,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
             rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
             n_outputs = len(flatten_outputs(id_out))
             # the stored model's outputs for the first probe sample: the ONNX check's torch side
-            first_sample = _first_rows(_detached(flat_out), batch)
+            first_sample = _first_rows(_detached(stored_out), batch)
         lap("outputs")
         rows.append(provenance)
         if out is not None:

@@ -88,6 +88,21 @@ class CountingNet(_Body):
         return self.fc(self.tally(self.features(x)).mean((2, 3)))
 
 
+class FlatNet(_Body):
+    """Flattens a fixed-size map, so a shape change makes it fail."""
+
+    def __init__(self):
+        super().__init__()
+        self.head = nn.Linear(4 * 20 * 20, 3)
+
+    def forward(self, x):
+        return self.head(torch.flatten(self.features(x), 1))
+
+
+def flat_net():
+    return FlatNet()
+
+
 def dict_net():
     return DictNet()
 
@@ -100,7 +115,7 @@ def counting_net():
     return CountingNet()
 
 
-for _f in (dict_net, two_net, counting_net):
+for _f in (dict_net, two_net, counting_net, flat_net):
     _f.input_shape = (1, 20, 20)
 '''
 
@@ -349,6 +364,26 @@ def test_shape_changing_warp_is_caught_by_shapes(tray_spliced):
     report = verify_models(base, bad)
     assert "shapes" in report.failed
     assert "warp 'pool2' turns (2, 8, 12, 12) into (2, 8, 10, 10)" in report["shapes"].detail
+
+
+def test_shape_change_that_breaks_the_model_is_still_named(model_file):
+    class CroppingWarp(Warp):
+        def forward(self, x, loc=None):
+            return super().forward(x, loc)[..., 1:-1, 1:-1]
+
+    spliced = insert(f"{model_file}:flat_net", at="input")
+    old = warps_of(spliced)["input"]
+    crop = CroppingWarp(old.config, old.shape)
+    crop.load_state_dict(old.state_dict())
+    spliced.splice_warps["input"] = crop
+    base = splice.load_source(f"{model_file}:flat_net").model
+    base.load_state_dict({k: v for k, v in spliced.state_dict().items() if not k.startswith("splice_warps.")})
+    report = verify_models(base, spliced)
+    assert report.failed == ["shapes", "outputs", "gradients"]
+    detail = report["shapes"].detail
+    assert "warp 'input' turns (2, 1, 20, 20) into (2, 1, 18, 18)" in detail
+    assert "the spliced model fails on the probe (RuntimeError" in detail
+    assert report["gradients"].detail.startswith("not run")
 
 
 def test_tampered_weights_file_is_caught_by_integrity(tray_folder, tmp_path):
