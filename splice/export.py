@@ -573,6 +573,7 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
             )
         path, digest = _keep(target, data)
         done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,
-                     "dynamic_batch": dynamic_batch, **({"opset": opset, "exporter": exporter} if fmt == "onnx" else {}),
+                     "dynamic_batch": dynamic_batch,
+                     **({"opset": opset, "exporter": exporter} if fmt == "onnx" else {}),
                      **{k: v for k, v in result.items() if k != "passed"}})
     return {"exports": done}

@@ -507,7 +507,8 @@ def _shapes_row(probe: _WarpProbe, warps, points: Mapping[str, Sequence[int]], r
             if key not in flat:
                 problems.append(f"output {key} is missing")
             elif flat[key].shape != ref_flat[key].shape:
-                problems.append(f"output {key} is {tuple(flat[key].shape)}, the base gives {tuple(ref_flat[key].shape)}")
+                problems.append(f"output {key} is {tuple(flat[key].shape)}, "
+                                f"the base gives {tuple(ref_flat[key].shape)}")
         problems.extend(f"output {k} is new" for k in flat if k not in ref_flat)
     if error is not None:
         problems.append(f"the spliced model fails on the probe ({error})")
@@ -619,7 +620,8 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             changed.append((name, float((a.long() - b.long()).abs().max())))
     changed.sort(key=lambda t: -t[1])
     return {"tensors": len(source), "changed": len(changed), "max_abs_diff": changed[0][1] if changed else 0.0,
-            "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]], "missing": missing, "unexpected": extra}
+            "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]],
+            "missing": missing, "unexpected": extra}
 
 
 def _provenance_row(info: Mapping, base_state: Mapping[str, torch.Tensor], recorded_base: str | None,

@@ -31,7 +31,7 @@ from splice.verify import (
     verify_models,
     write_report,
 )
-from splice.warps import Warp, WarpConfig
+from splice.warps import Warp
 
 ALL_CHECKS = ["integrity", "finite", "shapes", "outputs", "warps", "provenance", "gradients", "buffers"]
 TRAY = "splice.models:tray_net"
