@@ -59,6 +59,7 @@ __all__ = [
     "perturbation_theta",
     "perturbed_copy",
     "final_layer",
+    "head_tensors",
 ]
 
 # GridSample (the op a warp's sampler lowers to) entered the ONNX standard at
@@ -150,6 +151,38 @@ def _own_warps(model: nn.Module) -> nn.Module:
     return twin
 
 
+class _HeadsAsInputs(nn.Module):
+    """The model with its warp heads' final tensors taken as extra inputs (after the image).
+
+    Works on a copy that owns its warps (:func:`_own_warps`); the base is
+    shared and only read. The names of the extra inputs are the parameter
+    names, in :func:`_perturbed_tensors` order.
+    """
+
+    def __init__(self, model: nn.Module) -> None:
+        super().__init__()
+        self.model = _own_warps(model)
+        self.names = list(_perturbed_tensors(model))
+        self._slots = []
+        for name in self.names:
+            owner, _, attr = name.rpartition(".")
+            module = self.model.get_submodule(owner)
+            value = module._parameters.pop(attr).detach()
+            setattr(module, attr, value)
+            self._slots.append((module, attr))
+
+    def forward(self, x, *tensors):
+        for (module, attr), t in zip(self._slots, tensors):
+            setattr(module, attr, t)
+        return self.model(x)
+
+
+def head_tensors(model: nn.Module) -> dict[str, torch.Tensor]:
+    """``{name: value}`` of every warp head's final weight and bias, as they are in ``model``."""
+    params = dict(model.named_parameters())
+    return {name: params[name].detach() for name in _perturbed_tensors(model)}
+
+
 # ----------------------------------------------------------------------------- exporting
 
 
@@ -179,13 +212,17 @@ def _output_names(model: nn.Module, example: torch.Tensor, n_outputs: int | None
 
 def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
                       exporter: str = "torchscript", fold_constants: bool = True,
-                      n_outputs: int | None = None) -> bytes:
+                      n_outputs: int | None = None, heads_as_inputs: bool = False) -> bytes:
     """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
 
     ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
     ``'dynamo'`` uses the torch.export based exporter (opset 18+). Outputs are
     named ``output_0 ...`` in the order of :func:`splice.verify.flatten_outputs`;
     pass ``n_outputs`` when it is known to save the forward pass that counts them.
+    With ``heads_as_inputs`` (TorchScript only) the graph also takes every warp
+    head's final weight and bias as inputs named after the parameters, so a
+    checker can run it at any warp without re-exporting; such a graph is for
+    checking, not for shipping.
     """
     _check_opset(opset, exporter)
     was_training = model.training
@@ -200,10 +237,17 @@ def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 1
             if exporter == "torchscript":
                 buf = io.BytesIO()
                 axes = {n: {0: "batch"} for n in ["input", *names]} if dynamic_batch else None
-                torch.onnx.export(model, (example,), buf, opset_version=opset, dynamo=False,
-                                  input_names=["input"], output_names=names, dynamic_axes=axes,
+                target, args, inputs = model, (example,), ["input"]
+                if heads_as_inputs:
+                    target = _HeadsAsInputs(model)
+                    args = (example, *head_tensors(model).values())
+                    inputs = ["input", *target.names]
+                torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False,
+                                  input_names=inputs, output_names=names, dynamic_axes=axes,
                                   do_constant_folding=fold_constants)
                 return buf.getvalue()
+            if heads_as_inputs:
+                raise SpliceError("heads_as_inputs needs exporter='torchscript'")
             dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
             program = torch.onnx.export(model, (example,), dynamo=True, opset_version=opset,
                                         input_names=["input"], output_names=names, dynamic_shapes=dims,
@@ -366,7 +410,7 @@ def _summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int],
 
 
 def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
-                references: Sequence | None = None) -> dict:
+                references: Sequence | None = None, heads_as_inputs: bool = False) -> dict:
     """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
 
     ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
@@ -377,7 +421,12 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     tolerance, batch_sizes, perturbed_by, detail}``; never changes ``model``.
     ``references`` may hold ``model``'s outputs for ``inputs`` when the caller
     has them already (one per batch); they are used for the as-stored check.
+    ``heads_as_inputs`` says the graph was exported with
+    ``export_onnx_bytes(heads_as_inputs=True)``: it is run as it is, fed the
+    model's own head tensors and then the perturbed ones.
     """
+    if heads_as_inputs:
+        return _parity_with_head_inputs(model, onnx_model, inputs, perturb=perturb, tol=tol, references=references)
     import onnx
 
     proto = _load_onnx(onnx_model)
@@ -433,6 +482,54 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     finally:
         model.train(was_training)
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
+
+
+def _parity_with_head_inputs(model, onnx_model, inputs, *, perturb: bool, tol, references) -> dict:
+    import onnxruntime as ort
+
+    if isinstance(onnx_model, (str, os.PathLike)):
+        onnx_model = Path(onnx_model).read_bytes()
+    data = onnx_model if isinstance(onnx_model, (bytes, bytearray)) else onnx_model.SerializeToString()
+    tol = _tolerance(model, tol)
+    batches = _as_batches(inputs)
+    own = {k: v.cpu().numpy() for k, v in head_tensors(model).items()}
+    opts = ort.SessionOptions()
+    opts.log_severity_level = 3
+    session = ort.InferenceSession(bytes(data), opts, providers=["CPUExecutionProvider"])
+    names = [i.name for i in session.get_inputs()]
+    if names[1:] != list(own):
+        raise SpliceError(f"the ONNX graph's inputs {names} are not the image plus this model's warp head tensors "
+                          f"{list(own)}; export it with export_onnx_bytes(heads_as_inputs=True)")
+    if references is not None and len(references) != len(batches):
+        raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
+    was_training = model.training
+    model.eval()
+    try:
+        def run(torch_model, heads: dict, known=None) -> dict:
+            results = []
+            for i, x in enumerate(batches):
+                if known is not None:
+                    ref = known[i]
+                else:
+                    with torch.no_grad():
+                        ref = torch_model(x)
+                try:
+                    outs = session.run(None, {names[0]: x.detach().cpu().numpy(), **heads})
+                except Exception as exc:  # onnxruntime raises its own exception types
+                    first = str(exc).strip().splitlines()[0]
+                    return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                            "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
+                results.append(_compare_flat(ref, outs, tol))
+            return _merge(results)
+
+        stored = run(model, own, references)
+        perturbed = None
+        if perturb and own:
+            values = {k: v.cpu().numpy() for k, v in _perturbed_tensors(model).items()}
+            perturbed = run(perturbed_copy(model), values)
+    finally:
+        model.train(was_training)
+    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], "feeds" if perturbed else None)
 
 
 def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:

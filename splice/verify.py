@@ -737,9 +737,7 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
 
 
 def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
-              n_outputs: int | None, reference=None) -> tuple[CheckResult, str | None]:
-    import hashlib
-
+              n_outputs: int | None, reference=None) -> CheckResult:
     from .errors import SpliceError
     from .export import export_onnx_bytes, onnx_parity
 
@@ -751,15 +749,17 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
     try:
         # constant folding only tidies the graph (onnxruntime folds again when it
         # loads it) and costs more than the export itself on deep nets
-        data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False, n_outputs=n_outputs)
+        data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False, n_outputs=n_outputs,
+                                 heads_as_inputs=exporter == "torchscript")
     except SpliceError as exc:
-        return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed"), None
+        return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed")
     seconds = time.perf_counter() - start
     start = time.perf_counter()
-    result = onnx_parity(twin, data, x, references=None if reference is None else [reference])
-    digest = hashlib.sha256(data).hexdigest()
+    result = onnx_parity(twin, data, x, references=None if reference is None else [reference],
+                         heads_as_inputs=exporter == "torchscript")
     numbers = {"opset": opset, "exporter": exporter, "export_seconds": seconds,
-               "check_seconds": time.perf_counter() - start, "bytes": len(data), "sha256": digest,
+               "check_seconds": time.perf_counter() - start, "bytes": len(data),
+               "heads_as_inputs": exporter == "torchscript",
                **{k: result[k] for k in ("max_abs", "max_rel", "max_abs_perturbed", "max_rel_perturbed",
                                          "tolerance", "perturbed_by", "batch_sizes")}}
     if example.dtype != torch.float32:
@@ -767,7 +767,7 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
     summary = (f"abs {_fmt(result['max_abs'])}, perturbed {_fmt(result['max_abs_perturbed'])}, "
                f"export {seconds:.2f}s")
     return CheckResult("onnx", bool(result["passed"]), numbers,
-                       f"onnxruntime vs torch (opset {opset}, {exporter}): {result['detail']}", summary), digest
+                       f"onnxruntime vs torch (opset {opset}, {exporter}): {result['detail']}", summary)
 
 
 # ----------------------------------------------------------------------------- the runner
@@ -813,7 +813,6 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     grad_flags = {id(p): p.requires_grad for parts in head_params.values() for ps in parts.values() for p in ps}
     base.eval()
     spliced.eval()
-    onnx_digest = None
     n_outputs = None
     first_sample = None
     try:
@@ -877,7 +876,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
             rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
                                     "not run"))
         if onnx:
-            row, onnx_digest = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter, n_outputs=n_outputs,
+            row = _onnx_row(spliced, x[:1], opset=opset, exporter=exporter, n_outputs=n_outputs,
                                          reference=first_sample)
             rows.append(row)
             lap("onnx")
@@ -890,8 +889,6 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     rows.append(snapshot.check())
     lap("buffers")
     meta["seconds"] = {k: round(v, 4) for k, v in lap.seconds.items()}
-    if onnx_digest:
-        meta["hashes"]["onnx_sha256"] = onnx_digest
     if image_files is not None:
         meta["images"] = image_files
     return VerifyReport(rows, meta)
