@@ -8,7 +8,8 @@ base and the spliced model from the folder, hashing, every check, the ONNX
 export and both onnxruntime comparisons. The baseline is one batch-1 eval-mode
 forward pass of the same base model, timed in the same run as the median of
 several repeats taken before and after the verification (the machine's load
-changes both alike). Goal: a ratio of at most 20.
+changes both alike). Goal: a ratio of at most 20. A second row times the same
+certificate without ``onnx=True``, which separates the export check's cost.
 
 Run ``python benchmarks/bench_verify.py``; ``run()`` returns the rows for
 ``benchmarks/run.py``.
@@ -62,17 +63,22 @@ def run(model_name: str = "resnet50", repeats: int = 1) -> list[dict]:
         del spliced
         _forward_times(base, x, 2)  # warm-up
         forwards = _forward_times(base, x, _FORWARD_REPEATS)
-        runs = []
-        report = None
+        runs, plain = [], []
+        report = plain_report = None
         for _ in range(repeats):
             start = time.perf_counter()
             report = verify(folder, onnx=True)
             runs.append(time.perf_counter() - start)
             forwards += _forward_times(base, x, _FORWARD_REPEATS)
+            start = time.perf_counter()
+            plain_report = verify(folder)
+            plain.append(time.perf_counter() - start)
+            forwards += _forward_times(base, x, _FORWARD_REPEATS)
         points = [p["name"] for p in read_manifest(folder)["points"]]
     forward = statistics.median(forwards)
     ours = statistics.median(runs)
     ratio = ours / forward
+    plain_ratio = statistics.median(plain) / forward
     return [{
         "name": f"verify_onnx_{model_name}",
         "ratio": round(ratio, 2),
@@ -84,12 +90,24 @@ def run(model_name: str = "resnet50", repeats: int = 1) -> list[dict]:
         "points": points,
         # where the time went, in batch-1 forward passes (from the certificate's own clock)
         "phases": {k: round(v / forward, 2) for k, v in (report.meta.get("seconds") or {}).items()},
+    }, {
+        # the same certificate without --onnx, to show what the export check costs on its own
+        "name": f"verify_{model_name}",
+        "ratio": round(plain_ratio, 2),
+        "goal": _GOAL,
+        "pass": plain_ratio <= _GOAL and plain_report is not None and plain_report.passed,
+        "verify_s": round(statistics.median(plain), 2),
+        "forward_ms": round(forward * 1e3, 1),
+        "certificate_passed": bool(plain_report is not None and plain_report.passed),
+        "points": points,
+        "phases": {k: round(v / forward, 2) for k, v in (plain_report.meta.get("seconds") or {}).items()},
     }]
 
 
 def main() -> int:
     for row in run():
-        print(f"{row['name']}: verify --onnx {row['verify_s']} s, forward {row['forward_ms']} ms "
+        what = "verify --onnx" if "onnx" in row["name"] else "verify"
+        print(f"{row['name']}: {what} {row['verify_s']} s, forward {row['forward_ms']} ms "
               f"(points {', '.join(row['points'])}; certificate {'passed' if row['certificate_passed'] else 'FAILED'})")
         print("  phases (forward passes): " + ", ".join(f"{k} {v}" for k, v in row["phases"].items()))
         verdict = "PASS" if row["pass"] else "FAIL"
