@@ -140,5 +140,6 @@ def state_dict_sha256(state: Mapping[str, object], *, prefix_exclude: str | None
         h.update(name.encode())
         h.update(str(t.dtype).encode())
         h.update(str(tuple(t.shape)).encode())
-        h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes() if t.numel() else b"")
+        if t.numel():
+            h.update(memoryview(t.reshape(-1).view(torch.uint8).numpy()))  # no copy of the bytes
     return h.hexdigest()

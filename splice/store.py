@@ -204,7 +204,9 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     """
     from safetensors.torch import save_file
 
-    info = dict(getattr(model, "splice_info", None) or _plain_info(model, source))
+    from .surgery import splice_info
+
+    info = dict(splice_info(model) or _plain_info(model, source))
     if tuning is not None:
         info["tuning"] = dict(tuning)
     if class_names is not None:
@@ -272,7 +274,9 @@ def _rebuild_base(manifest: dict, *, trust_pickle: bool = False) -> nn.Module:
 
 
 def _restore_info(model: nn.Module, manifest: dict, folder: Path) -> None:
-    model.splice_info = {
+    from .surgery import _attach_info
+
+    _attach_info(model, {
         "spec": manifest["source"]["spec"],
         "kwargs": dict(manifest["source"].get("kwargs") or {}),
         "input_shape": tuple(manifest["input_shape"]),
@@ -285,7 +289,7 @@ def _restore_info(model: nn.Module, manifest: dict, folder: Path) -> None:
         "points": [dict(p) for p in manifest["points"]],
         "tuning": manifest.get("tuning"),
         "folder": str(folder),
-    }
+    })
 
 
 def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:

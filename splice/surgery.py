@@ -35,8 +35,23 @@ class SplicePlan:
 
 
 def splice_info(model: nn.Module) -> dict | None:
-    """The splice metadata carried by a spliced model (``None`` for plain models)."""
-    return getattr(model, "splice_info", None)
+    """The splice metadata carried by a spliced model (``None`` for plain models).
+
+    It lives in ``model.splice_info`` and, so that ``copy.deepcopy`` keeps it
+    (fx's deepcopy drops custom attributes), in ``model.meta["splice_info"]``.
+    """
+    info = getattr(model, "splice_info", None)
+    if info is None:
+        info = (getattr(model, "meta", None) or {}).get("splice_info")
+        if info is not None:
+            model.splice_info = info
+    return info
+
+
+def _attach_info(model: nn.Module, info: dict) -> None:
+    model.splice_info = info
+    if isinstance(getattr(model, "meta", None), dict):
+        model.meta["splice_info"] = info
 
 
 def warps_of(model: nn.Module) -> dict[str, nn.Module]:
@@ -272,7 +287,7 @@ def insert(
                 stacklevel=2,
             )
     gm = _apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)
-    gm.splice_info = {
+    _attach_info(gm, {
         "spec": src.spec,
         "kwargs": dict(src.kwargs),
         "input_shape": tuple(src.input_shape),
@@ -288,7 +303,7 @@ def insert(
             for it in plan
         ],
         "tuning": None,
-    }
+    })
     if check:
         result = _quick_check(base, gm, src.input_shape, tol=tol)
         gm.splice_info["check"] = result
