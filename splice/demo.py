@@ -55,8 +55,8 @@ class DemoPlan:
 
 
 FULL = DemoPlan(base_epochs=15, tune_epochs=8)
-FAST = DemoPlan(base_epochs=6, tune_epochs=3, sweep="rotate=0,30,60;scale=0.8,1.2;shift=0,0.25",
-                inspect_images=32, pretrain_epochs=8)
+FAST = DemoPlan(base_epochs=8, tune_epochs=3, sweep="rotate=0,30,60;scale=0.8,1.2;shift=0,0.25",
+                inspect_images=32, pretrain_epochs=15)
 
 
 def _recipe(name: str, plan: DemoPlan):
