@@ -1,0 +1,149 @@
+"""The folder format: manifest schema (property-based), atomic writes, no partial output."""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+
+import pytest
+import torch
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import splice
+from splice.errors import ManifestError, SpliceError
+from splice.store import read_manifest, validate_manifest
+from splice.surgery import insert
+
+
+@pytest.fixture(scope="module")
+def saved(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("store") / "tray"
+    splice.save(insert("splice.models:tray_net", at="input", warp="similarity"), folder)
+    return folder
+
+
+def test_manifest_round_trip(saved):
+    manifest = read_manifest(saved)
+    assert manifest["schema_version"] == 1
+    assert manifest["points"][0]["warp"]["family"] == "similarity"
+    assert validate_manifest(copy.deepcopy(manifest)) == manifest
+
+
+_JSON = st.recursive(
+    st.none() | st.booleans() | st.integers(-5, 5) | st.floats(allow_nan=False, width=16) | st.text(max_size=6),
+    lambda children: st.lists(children, max_size=3) | st.dictionaries(st.text(max_size=6), children, max_size=3),
+    max_leaves=8,
+)
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_any_edit_is_accepted_or_named(saved, data):
+    """Replace or delete one field anywhere: the parser accepts it or raises ManifestError, nothing else."""
+    manifest = read_manifest(saved)
+    paths = []
+
+    def walk(node, path):
+        if isinstance(node, dict):
+            for k, v in node.items():
+                paths.append((*path, k))
+                walk(v, (*path, k))
+        elif isinstance(node, list):
+            for i, v in enumerate(node):
+                paths.append((*path, i))
+                walk(v, (*path, i))
+
+    walk(manifest, ())
+    path = data.draw(st.sampled_from(paths))
+    edited = copy.deepcopy(manifest)
+    parent = edited
+    for key in path[:-1]:
+        parent = parent[key]
+    if data.draw(st.booleans()) and isinstance(parent, dict):
+        del parent[path[-1]]
+    else:
+        parent[path[-1]] = data.draw(_JSON)
+    try:
+        validate_manifest(edited)
+    except ManifestError as exc:
+        assert "violates the splice folder schema" in str(exc) or "must hold a JSON object" in str(exc)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.one_of(_JSON, st.text(max_size=20)))
+def test_arbitrary_documents_never_crash_the_parser(doc):
+    with pytest.raises(ManifestError):
+        validate_manifest(doc)
+
+
+def test_hand_edit_is_named(saved, tmp_path):
+    bad = tmp_path / "bad"
+    bad.mkdir()
+    (bad / "weights.safetensors").write_bytes((saved / "weights.safetensors").read_bytes())
+    manifest = json.loads((saved / "splice.json").read_text())
+    manifest["input_shape"] = [1, 48]
+    manifest["points"][0]["warp"]["sampler"] = "cubic"
+    (bad / "splice.json").write_text(json.dumps(manifest))
+    with pytest.raises(ManifestError, match=r"input_shape must be \[C, H, W\].*points\[0\]\.warp"):
+        splice.load(bad)
+    (bad / "splice.json").write_text("{not json")
+    with pytest.raises(ManifestError, match="not valid JSON"):
+        splice.load(bad)
+
+
+
+
+def test_failed_write_keeps_previous_folder(saved, tmp_path, monkeypatch):
+    """A save that fails half-way (disk full, simulated) leaves the old folder intact and no debris."""
+    target = tmp_path / "model"
+    splice.save(insert("splice.models:tray_net", at="input"), target)
+    before = {p.name: p.read_bytes() for p in target.iterdir()}
+
+    import safetensors.torch as st_torch
+
+    def full_disk(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(st_torch, "save_file", full_disk)
+    with pytest.raises(OSError, match="No space left"):
+        splice.save(insert("splice.models:tray_net", at="input", warp="tps"), target, overwrite=True)
+    assert {p.name: p.read_bytes() for p in target.iterdir()} == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["model"], "temporary folders left behind"
+
+
+def test_failed_insert_writes_nothing(tmp_path, capsys, monkeypatch):
+    """insert refuses a splice that fails the identity check, and leaves no output folder."""
+    from splice import surgery
+    from splice.cli import main
+
+    def broken_check(*args, **kwargs):
+        return {"passed": False, "detail": "max relative error 0.5 (tolerance 1e-05)"}
+
+    monkeypatch.setattr(surgery, "_quick_check", broken_check)
+    out = tmp_path / "never"
+    assert main(["insert", "splice.models:tray_net", "--at", "input", "--out", str(out)]) == 1
+    assert "differs from the base" in capsys.readouterr().err
+    assert not out.exists() and list(tmp_path.iterdir()) == []
+    assert main(["insert", "splice.models:tray_net", "--at", "input", "--out", str(out), "--force"]) == 0
+    assert out.exists()
+
+
+def test_existing_folder_is_not_overwritten(saved):
+    with pytest.raises(SpliceError, match="already exists"):
+        splice.save(insert("splice.models:tray_net", at="input"), saved)
+
+
+def test_load_never_unpickles(saved, monkeypatch):
+    import pickle
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("pickle used while loading a splice folder")
+
+    monkeypatch.setattr(pickle, "load", refuse)
+    monkeypatch.setattr(pickle, "loads", refuse)
+    monkeypatch.setattr(torch, "load", refuse)
+    model = splice.load(saved)
+    assert "splice_warps.input.head.fc2.weight" in model.state_dict() or any(
+        k.startswith("splice_warps.input.") for k in model.state_dict())
