@@ -187,18 +187,6 @@ def test_unknown_names():
         data.open_data("digits-moved", seed="1")
 
 
-def test_digits_build_quickly():
-    import time
-
-    data.open_data("digits")  # loads optdigits (the sklearn import is a one-off cost)
-    data._digits_all.cache_clear()
-    start = time.perf_counter()
-    for variant in data.DATASETS:
-        for split in data.SPLITS:
-            data.open_data(variant, split)
-    assert time.perf_counter() - start < 2.0  # common practice, no source: the brief's "a second or two"
-
-
 # ---------------------------------------------------------------------------
 # image folders
 # ---------------------------------------------------------------------------
