@@ -150,7 +150,7 @@ def _cmd_export(args) -> int:
 
         raise SpliceError("export needs a target: --onnx FILE and/or --pt2 FILE")
     result = export(args.folder, onnx=args.onnx, pt2=args.pt2, opset=args.opset,
-                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle)
+                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle, exporter=args.exporter)
     out = _console()
     for item in result["exports"]:
         perturbed = item.get("max_abs_perturbed")
@@ -263,6 +263,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pt2", metavar="FILE", help="write a torch.export program (.pt2)")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
     p.add_argument("--dynamic-batch", action="store_true", help="leave the batch dimension free")
+    p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
+                   help="ONNX exporter (default torchscript)")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
     p.set_defaults(func=_cmd_export)
 

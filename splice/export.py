@@ -194,11 +194,36 @@ def _check_opset(opset: int, exporter: str) -> None:
             f"ONNX opset {opset!r} is too old for a spliced model: warps need GridSample, "
             f"added in opset {MIN_OPSET}; pass --opset {MIN_OPSET} or newer (default 17)"
         )
-    if exporter == "dynamo" and opset < DYNAMO_MIN_OPSET:
+
+
+def _downgrade(data: bytes, opset: int) -> bytes:
+    """Convert an opset-18 graph from the dynamo exporter down to ``opset`` (16 or 17).
+
+    The dynamo exporter writes opset 18 or newer and its own down-conversion
+    fails on reductions whose axes are inputs; onnx's version converter does
+    the job, but leaves ``noop_with_empty_axes`` (an opset-18 attribute of
+    ``ReduceMean`` and friends) behind, which is dropped when it has its
+    default value 0.
+    """
+    import onnx
+    from onnx import version_converter
+
+    try:
+        converted = version_converter.convert_version(onnx.load_from_string(data), opset)
+        for node in converted.graph.node:
+            if node.op_type.startswith("Reduce"):
+                keep = [a for a in node.attribute if not (a.name == "noop_with_empty_axes" and a.i == 0)]
+                if len(keep) != len(node.attribute):
+                    del node.attribute[:]
+                    node.attribute.extend(keep)
+        onnx.checker.check_model(converted)
+    except Exception as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise SpliceError(
-            f"the dynamo ONNX exporter writes opset {DYNAMO_MIN_OPSET} or newer, {opset} was asked; "
-            f"pass opset={DYNAMO_MIN_OPSET} or use exporter='torchscript'"
-        )
+            f"the dynamo exporter writes opset {DYNAMO_MIN_OPSET}+ and converting to opset {opset} failed "
+            f"({first}); pass --opset {DYNAMO_MIN_OPSET} or use the TorchScript exporter"
+        ) from None
+    return converted.SerializeToString()
 
 
 def _output_names(model: nn.Module, example: torch.Tensor, n_outputs: int | None) -> list[str]:
@@ -216,7 +241,8 @@ def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 1
     """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
 
     ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
-    ``'dynamo'`` uses the torch.export based exporter (opset 18+). Outputs are
+    ``'dynamo'`` uses the torch.export based exporter (which writes opset 18+;
+    16 and 17 are reached with onnx's version converter). Outputs are
     named ``output_0 ...`` in the order of :func:`splice.verify.flatten_outputs`;
     pass ``n_outputs`` when it is known to save the forward pass that counts them.
     With ``heads_as_inputs`` (TorchScript only) the graph also takes every warp
@@ -249,10 +275,11 @@ def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 1
             if heads_as_inputs:
                 raise SpliceError("heads_as_inputs needs exporter='torchscript'")
             dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
-            program = torch.onnx.export(model, (example,), dynamo=True, opset_version=opset,
+            program = torch.onnx.export(model, (example,), dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
                                         input_names=["input"], output_names=names, dynamic_shapes=dims,
                                         optimize=fold_constants, verbose=False)
-            return program.model_proto.SerializeToString()
+            data = program.model_proto.SerializeToString()
+            return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data
     except SpliceError:
         raise
     except Exception as exc:
