@@ -7,7 +7,6 @@ pixel centres exactly, so the observed error is usually exactly zero.
 
 from __future__ import annotations
 
-import warnings
 
 import pytest
 import torch
