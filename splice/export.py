@@ -334,12 +334,33 @@ def _load_onnx(onnx_model):
         raise SpliceError(f"'{path}' is not a readable ONNX file ({type(exc).__name__}); it may be damaged") from None
 
 
-def _ort_session(proto):
+def _ort_session(model):
+    """A quiet onnxruntime CPU session for a ``ModelProto`` or serialised bytes."""
     import onnxruntime as ort
 
+    data = bytes(model) if isinstance(model, (bytes, bytearray)) else model.SerializeToString()
     opts = ort.SessionOptions()
     opts.log_severity_level = 3
-    return ort.InferenceSession(proto.SerializeToString(), opts, providers=["CPUExecutionProvider"])
+    return ort.InferenceSession(data, opts, providers=["CPUExecutionProvider"])
+
+
+def _run_batches(torch_model, session, feed_name: str, batches, extra: dict, tol, known=None) -> dict:
+    """Compare ``session`` with ``torch_model`` on every batch (``known``: torch outputs already at hand)."""
+    results = []
+    for i, x in enumerate(batches):
+        if known is not None:
+            ref = known[i]
+        else:
+            with torch.no_grad():
+                ref = torch_model(x)
+        try:
+            outs = session.run(None, {feed_name: x.detach().cpu().numpy(), **extra})
+        except Exception as exc:  # onnxruntime raises its own exception types
+            first = str(exc).strip().splitlines()[0]
+            return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                    "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
+        results.append(_compare_flat(ref, outs, tol))
+    return _merge(results)
 
 
 def _overridable(proto, names: Sequence[str]):
@@ -474,24 +495,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     model.eval()
     try:
         session = _ort_session(checked)
-        feed_name = session.get_inputs()[0].name
 
         def run(torch_model, sess, extra: dict, known=None) -> dict:
-            results = []
-            for i, x in enumerate(batches):
-                if known is not None:
-                    ref = known[i]
-                else:
-                    with torch.no_grad():
-                        ref = torch_model(x)
-                try:
-                    outs = sess.run(None, {feed_name: x.detach().cpu().numpy(), **extra})
-                except Exception as exc:  # onnxruntime raises its own exception types
-                    first = str(exc).strip().splitlines()[0]
-                    return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
-                            "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
-                results.append(_compare_flat(ref, outs, tol))
-            return _merge(results)
+            return _run_batches(torch_model, sess, sess.get_inputs()[0].name, batches, extra, tol, known)
 
         if references is not None and len(references) != len(batches):
             raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
@@ -512,17 +518,13 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
 
 
 def _parity_with_head_inputs(model, onnx_model, inputs, *, perturb: bool, tol, references) -> dict:
-    import onnxruntime as ort
-
     if isinstance(onnx_model, (str, os.PathLike)):
         onnx_model = Path(onnx_model).read_bytes()
     data = onnx_model if isinstance(onnx_model, (bytes, bytearray)) else onnx_model.SerializeToString()
     tol = _tolerance(model, tol)
     batches = _as_batches(inputs)
     own = {k: v.cpu().numpy() for k, v in head_tensors(model).items()}
-    opts = ort.SessionOptions()
-    opts.log_severity_level = 3
-    session = ort.InferenceSession(bytes(data), opts, providers=["CPUExecutionProvider"])
+    session = _ort_session(data)
     names = [i.name for i in session.get_inputs()]
     if names[1:] != list(own):
         raise SpliceError(f"the ONNX graph's inputs {names} are not the image plus this model's warp head tensors "
@@ -533,21 +535,7 @@ def _parity_with_head_inputs(model, onnx_model, inputs, *, perturb: bool, tol, r
     model.eval()
     try:
         def run(torch_model, heads: dict, known=None) -> dict:
-            results = []
-            for i, x in enumerate(batches):
-                if known is not None:
-                    ref = known[i]
-                else:
-                    with torch.no_grad():
-                        ref = torch_model(x)
-                try:
-                    outs = session.run(None, {names[0]: x.detach().cpu().numpy(), **heads})
-                except Exception as exc:  # onnxruntime raises its own exception types
-                    first = str(exc).strip().splitlines()[0]
-                    return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
-                            "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
-                results.append(_compare_flat(ref, outs, tol))
-            return _merge(results)
+            return _run_batches(torch_model, session, names[0], batches, heads, tol, known)
 
         stored = run(model, own, references)
         perturbed = None
