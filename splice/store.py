@@ -31,6 +31,7 @@ is the canonical hash of the base part of the saved state dict.
 
 from __future__ import annotations
 
+import copy
 import datetime as _dt
 import json
 import os
@@ -51,6 +52,7 @@ __all__ = [
     "save",
     "load",
     "load_base",
+    "assemble",
     "read_manifest",
     "validate_manifest",
     "load_folder_source",
@@ -292,26 +294,22 @@ def _restore_info(model: nn.Module, manifest: dict, folder: Path) -> None:
     })
 
 
-def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
-    """Rebuild a model saved by :func:`save`: base from its spec, warps re-applied, weights loaded.
+def assemble(base: nn.Module, manifest: dict, state: dict[str, torch.Tensor], folder: str | os.PathLike, *,
+             copy_base: bool = False) -> nn.Module:
+    """Re-apply a manifest's splice to ``base`` and load ``state`` strictly.
 
-    The weights file is refused if its sha256 differs from the one recorded at
-    save time. The model is returned in eval mode.
-
-    >>> model = splice.load("out/r18-affine")   # doctest: +SKIP
+    Splicing traces a private copy of ``base``; a manifest without points uses
+    ``base`` itself unless ``copy_base``. Weights that do not fit are refused
+    by name.
     """
-    from .sources import check_finite
     from .surgery import SplicePlan, _apply_plan
     from .warps import WarpConfig
 
-    folder = Path(folder)
-    manifest = read_manifest(folder)
-    state = _read_checked_weights(folder, manifest)
-    check_finite(state, f"'{folder / manifest['weights']['file']}'")
-    model = _rebuild_base(manifest, trust_pickle=trust_pickle)
     if manifest["points"]:
         plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
-        model = _apply_plan(model, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()))
+        model = _apply_plan(base, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()))
+    else:
+        model = copy.deepcopy(base) if copy_base else base
     own = model.state_dict()
     missing = sorted(set(own) - set(state))
     unexpected = sorted(set(state) - set(own))
@@ -323,6 +321,27 @@ def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
             "the folder was written by an incompatible version or edited by hand"
         )
     model.load_state_dict(state, strict=True)
+    return model
+
+
+def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+    """Rebuild a model saved by :func:`save`: base from its spec, warps re-applied, weights loaded.
+
+    The weights file is refused if its sha256 differs from the one recorded at
+    save time. The model is returned in eval mode.
+
+    >>> model = splice.load("out/r18-affine")   # doctest: +SKIP
+    """
+    folder = Path(folder)
+    return _load(folder, read_manifest(folder), trust_pickle=trust_pickle)
+
+
+def _load(folder: Path, manifest: dict, *, trust_pickle: bool) -> nn.Module:
+    from .sources import check_finite
+
+    state = _read_checked_weights(folder, manifest)
+    check_finite(state, f"'{folder / manifest['weights']['file']}'")
+    model = assemble(_rebuild_base(manifest, trust_pickle=trust_pickle), manifest, state, folder)
     _restore_info(model, manifest, folder)
     model.eval()
     return model
@@ -347,8 +366,8 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
     from .sources import Source
 
     folder = Path(folder)
-    model = load(folder, trust_pickle=trust_pickle)
     manifest = read_manifest(folder)
+    model = _load(folder, manifest, trust_pickle=trust_pickle)
     shape = tuple(input_shape) if input_shape is not None else tuple(manifest["input_shape"])
     return Source(
         model=model,

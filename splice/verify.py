@@ -976,29 +976,13 @@ def _spliced_from_base(base: nn.Module, manifest: dict, state: Mapping[str, torc
                        info: dict) -> nn.Module:
     """The spliced model, built like :func:`splice.store.load` but from the base already rebuilt.
 
-    ``store.load`` would build the architecture a second time; the surgery
-    (``_apply_plan``) works on a deep copy of ``base``, so ``base`` stays the
-    independent eager reference. The weights are loaded strictly, as ``load`` does.
+    ``store.load`` would build the architecture a second time;
+    :func:`splice.store.assemble` splices a private copy of ``base``, so
+    ``base`` stays the independent eager reference.
     """
-    from .errors import WeightsError
-    from .surgery import SplicePlan, _apply_plan
-    from .warps import WarpConfig
+    from .store import assemble
 
-    if manifest["points"]:
-        plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
-        model = _apply_plan(base, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()))
-    else:
-        model = copy.deepcopy(base)
-    own = model.state_dict()
-    missing = sorted(set(own) - set(state))
-    unexpected = sorted(set(state) - set(own))
-    wrong = sorted(k for k in own if k in state and tuple(own[k].shape) != tuple(state[k].shape))
-    if missing or unexpected or wrong:
-        raise WeightsError(
-            f"'{folder}' weights do not fit the architecture in its manifest (missing {missing[:4]}, unexpected "
-            f"{unexpected[:4]}, wrong shape {wrong[:4]}); the folder was written by an incompatible version or "
-            "edited by hand")
-    model.load_state_dict(state, strict=True)
+    model = assemble(base, manifest, state, folder, copy_base=True)
     model.splice_info = dict(info)
     return model.eval()
 
