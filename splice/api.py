@@ -31,7 +31,7 @@ def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] 
     from .sources import load_source
 
     src = load_source(model, input_shape=input_shape, weights=weights, kwargs=kwargs, leaves=leaves)
-    shape = tuple(input_shape) if input_shape is not None and not isinstance(input_shape, str) else src.input_shape
+    shape = src.input_shape  # load_source already parsed input_shape, or took the model's own
     if shape is None:
         from .errors import SourceError
 
