@@ -17,6 +17,15 @@ program. So the graph that ships is the graph that was checked, and the export
 and the session are built once. When an exporter renamed or shared those
 tensors beyond repair, the perturbed copy is exported again instead.
 
+``splice verify --onnx`` ships nothing, so it checks a lighter graph
+(:func:`check_onnx_graph`): the same export with every weight an input
+instead of a stored initializer (``export_onnx_bytes(weights_as_inputs=True)``).
+Writing 100 MB of weights into the file and having onnxruntime prepare them
+costs more than the rest of the check on a resnet50; fed at run time, the
+same operators run on the same values. It is traced with the perturbed head
+tensors, so the tracer's own forward pass is the torch side of the perturbed
+comparison.
+
 Tolerances (:data:`EXPORT_TOLERANCES`) are the max error relative to the
 output's scale (max ``|y|``), as in :func:`splice.verify.compare_outputs`:
 float32 1e-4, float64 1e-9. onnxruntime picks other convolution algorithms
@@ -32,6 +41,7 @@ renamed into place).
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import io
 import os
@@ -55,6 +65,7 @@ __all__ = [
     "export_onnx_bytes",
     "export_pt2_bytes",
     "onnx_parity",
+    "check_onnx_graph",
     "pt2_parity",
     "perturbation_theta",
     "perturbed_copy",
@@ -151,30 +162,65 @@ def _own_warps(model: nn.Module) -> nn.Module:
     return twin
 
 
-class _HeadsAsInputs(nn.Module):
-    """The model with its warp heads' final tensors taken as extra inputs (after the image).
+def _skeleton(module: nn.Module, memo: dict[int, nn.Module]) -> nn.Module:
+    """A copy of ``module`` that owns its parameter, buffer and child mappings but shares every tensor.
 
-    Works on a copy that owns its warps (:func:`_own_warps`); the base is
-    shared and only read. The names of the extra inputs are the parameter
-    names, in :func:`_perturbed_tensors` order.
+    Modules that appear more than once stay shared in the copy (``memo``).
+    """
+    if id(module) in memo:
+        return memo[id(module)]
+    twin = object.__new__(type(module))
+    memo[id(module)] = twin
+    twin.__dict__.update(module.__dict__)
+    twin.__dict__["_parameters"] = dict(module._parameters)
+    twin.__dict__["_buffers"] = dict(module._buffers)
+    twin.__dict__["_modules"] = {k: (_skeleton(m, memo) if m is not None else None)
+                                 for k, m in module._modules.items()}
+    return twin
+
+
+class _WeightsAsInputs(nn.Module):
+    """The model with every parameter and persistent buffer taken as an input after the image.
+
+    Built on a :func:`_skeleton` of the model: no tensor is copied and the
+    caller's modules are never touched. The extra inputs are named after the
+    state-dict entries (:attr:`names`); a tensor registered under several
+    names (tied weights) is one input, under its first name. Non-persistent
+    buffers (a warp's base grid) stay constants of the graph.
     """
 
-    def __init__(self, model: nn.Module) -> None:
+    def __init__(self, model: nn.Module, *, keep_output: bool = False) -> None:
         super().__init__()
-        self.model = _own_warps(model)
-        self.names = list(_perturbed_tensors(model))
-        self._slots = []
-        for name in self.names:
-            owner, _, attr = name.rpartition(".")
-            module = self.model.get_submodule(owner)
-            value = module._parameters.pop(attr).detach()
-            setattr(module, attr, value)
-            self._slots.append((module, attr))
+        self.keep_output = keep_output
+        self.output = None  # with keep_output: what the last forward pass returned
+        state = model.state_dict(keep_vars=True)
+        first: dict[int, str] = {}
+        for name, t in state.items():
+            if isinstance(t, torch.Tensor):
+                first.setdefault(id(t), name)
+        self.names = list(first.values())
+        self.values = [state[n].detach() for n in self.names]
+        index = {key: i for i, key in enumerate(first)}
+        memo: dict[int, nn.Module] = {}
+        self.model = _skeleton(model, memo)
+        self._slots: list[tuple[nn.Module, str, int]] = []
+        for twin in memo.values():
+            persistent_off = getattr(twin, "_non_persistent_buffers_set", set())
+            for store in ("_parameters", "_buffers"):
+                slots = twin.__dict__[store]
+                for attr, t in list(slots.items()):
+                    if t is None or id(t) not in index or (store == "_buffers" and attr in persistent_off):
+                        continue
+                    del slots[attr]
+                    self._slots.append((twin, attr, index[id(t)]))
 
     def forward(self, x, *tensors):
-        for (module, attr), t in zip(self._slots, tensors):
-            setattr(module, attr, t)
-        return self.model(x)
+        for module, attr, i in self._slots:
+            module.__dict__[attr] = tensors[i]  # a plain attribute: Module.__getattr__ is not consulted
+        out = self.model(x)
+        if self.keep_output:
+            self.output = out  # a reference only: the tracer records no operation for it
+        return out
 
 
 def head_tensors(model: nn.Module) -> dict[str, torch.Tensor]:
@@ -235,51 +281,18 @@ def _output_names(model: nn.Module, example: torch.Tensor, n_outputs: int | None
     return [f"output_{i}" for i in range(n_outputs)]
 
 
-def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
-                      exporter: str = "torchscript", fold_constants: bool = True,
-                      n_outputs: int | None = None, heads_as_inputs: bool = False) -> bytes:
-    """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
-
-    ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
-    ``'dynamo'`` uses the torch.export based exporter (which writes opset 18+;
-    16 and 17 are reached with onnx's version converter). Outputs are
-    named ``output_0 ...`` in the order of :func:`splice.verify.flatten_outputs`;
-    pass ``n_outputs`` when it is known to save the forward pass that counts them.
-    With ``heads_as_inputs`` (TorchScript only) the graph also takes every warp
-    head's final weight and bias as inputs named after the parameters, so a
-    checker can run it at any warp without re-exporting; such a graph is for
-    checking, not for shipping.
-    """
-    _check_opset(opset, exporter)
+@contextlib.contextmanager
+def _exporting(model: nn.Module, exporter: str, opset: int):
+    """Eval mode, the exporters' own chatter silenced, and failures as :class:`SpliceError`."""
     was_training = model.training
     model.eval()
-    names = _output_names(model, example, n_outputs)
     try:
         with warnings.catch_warnings():
             # the TorchScript exporter announces its own deprecation; the tracer
             # warns about shape-dependent Python branches, which are static here
             warnings.filterwarnings("ignore", message=".*legacy TorchScript-based ONNX export.*")
             warnings.filterwarnings("ignore", category=torch.jit.TracerWarning)
-            if exporter == "torchscript":
-                buf = io.BytesIO()
-                axes = {n: {0: "batch"} for n in ["input", *names]} if dynamic_batch else None
-                target, args, inputs = model, (example,), ["input"]
-                if heads_as_inputs:
-                    target = _HeadsAsInputs(model)
-                    args = (example, *head_tensors(model).values())
-                    inputs = ["input", *target.names]
-                torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False,
-                                  input_names=inputs, output_names=names, dynamic_axes=axes,
-                                  do_constant_folding=fold_constants)
-                return buf.getvalue()
-            if heads_as_inputs:
-                raise SpliceError("heads_as_inputs needs exporter='torchscript'")
-            dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
-            program = torch.onnx.export(model, (example,), dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
-                                        input_names=["input"], output_names=names, dynamic_shapes=dims,
-                                        optimize=fold_constants, verbose=False)
-            data = program.model_proto.SerializeToString()
-            return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data
+            yield
     except SpliceError:
         raise
     except Exception as exc:
@@ -290,6 +303,114 @@ def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 1
         ) from exc
     finally:
         model.train(was_training)
+
+
+def _torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
+                 dynamic_batch: bool, fold_constants: bool) -> bytes:
+    buf = io.BytesIO()
+    axes = {n: {0: "batch"} for n in [inputs[0], *names]} if dynamic_batch else None
+    torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False, input_names=inputs,
+                      output_names=names, dynamic_axes=axes, do_constant_folding=fold_constants)
+    return buf.getvalue()
+
+
+def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
+                      exporter: str = "torchscript", fold_constants: bool = True,
+                      n_outputs: int | None = None, weights_as_inputs: bool = False) -> bytes:
+    """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
+
+    ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
+    ``'dynamo'`` uses the torch.export based exporter (which writes opset 18+;
+    16 and 17 are reached with onnx's version converter). Outputs are
+    named ``output_0 ...`` in the order of :func:`splice.verify.flatten_outputs`;
+    pass ``n_outputs`` when it is known to save the forward pass that counts them.
+    With ``weights_as_inputs`` (TorchScript only) every parameter and
+    persistent buffer is an input after the image, named after its state-dict
+    entry, instead of a stored initializer: the same operators, without the
+    cost of serialising the weights and of onnxruntime preparing them, and one
+    graph runs at any warp. Such a graph is for checking (see
+    :func:`onnx_parity`), not for shipping.
+    """
+    _check_opset(opset, exporter)
+    if weights_as_inputs and exporter != "torchscript":
+        raise SpliceError("weights_as_inputs needs exporter='torchscript'")
+    with _exporting(model, exporter, opset):
+        names = _output_names(model, example, n_outputs)
+        if weights_as_inputs:
+            target = _WeightsAsInputs(model)
+            return _torchscript(target, (example, *target.values), ["input", *target.names], names, opset=opset,
+                                dynamic_batch=dynamic_batch, fold_constants=fold_constants)
+        if exporter == "torchscript":
+            return _torchscript(model, (example,), ["input"], names, opset=opset, dynamic_batch=dynamic_batch,
+                                fold_constants=fold_constants)
+        dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
+        program = torch.onnx.export(model, (example,), dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
+                                    input_names=["input"], output_names=names, dynamic_shapes=dims,
+                                    optimize=fold_constants, verbose=False)
+        data = program.model_proto.SerializeToString()
+        return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data
+
+
+def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17, reference=None,
+                     tol: float | None = None, perturb: bool = True) -> dict:
+    """Export a checking graph of ``model`` and compare it in onnxruntime, as stored and perturbed.
+
+    The graph takes the weights as inputs (``export_onnx_bytes(weights_as_inputs=True)``,
+    TorchScript exporter, no constant folding) and is traced with the warp
+    heads' final tensors set to the perturbation, so the tracer's own forward
+    pass is the torch side of the perturbed comparison; one session is then
+    run fed the model's own tensors (compared with ``reference``, the
+    model's output for ``example``, computed when not given) and fed the
+    perturbed ones. ``example`` is one batch. Returns the
+    :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``
+    and ``bytes``; raises :class:`SpliceError` when the export fails. Used by
+    ``splice verify --onnx``; ``splice export`` checks the file it ships.
+    """
+    from .verify import _detached, flatten_outputs
+
+    _check_opset(opset, "torchscript")
+    tol = _tolerance(model, tol)
+    swapped = _perturbed_tensors(model) if perturb else {}
+    start = time.perf_counter()
+    with _exporting(model, "torchscript", opset):
+        target = _WeightsAsInputs(model, keep_output=True)
+        missing = sorted(set(swapped) - set(target.names))
+        if missing:
+            raise SpliceError(f"the warp head tensor(s) {', '.join(missing)} are not state-dict entries of their "
+                              "own; check the graph with onnx_parity on a self-contained export instead")
+        values = [swapped.get(name, v) for name, v in zip(target.names, target.values)]
+        names = (_output_names(model, example, None) if reference is None
+                 else [f"output_{i}" for i in range(len(flatten_outputs(reference)))])
+        data = _torchscript(target, (example, *values), ["input", *target.names], names, opset=opset,
+                            dynamic_batch=False, fold_constants=False)
+        traced = _detached(target.output)
+    seconds = time.perf_counter() - start
+    start = time.perf_counter()
+    was_training = model.training
+    model.eval()
+    try:
+        # op for op: with the weights fed there is nothing for onnxruntime to fold
+        # or fuse ahead of time, and the file that ships is checked by export()
+        session = _ort_session(data, optimise=False)
+        image = session.get_inputs()[0].name
+        state = model.state_dict(keep_vars=True)
+        feeds = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[1:]}
+        if not swapped and reference is None:
+            reference = traced  # traced as stored: the tracer's pass is the stored model's output
+        stored = _run_batches(model, session, image, [example], feeds, tol,
+                              [reference] if reference is not None else None)
+        perturbed = None
+        if swapped:
+            dropped = sorted(set(swapped) - set(feeds))
+            if dropped:
+                raise SpliceError(f"the checking graph does not read the warp head tensor(s) {', '.join(dropped)}; "
+                                  "check a self-contained export with onnx_parity instead")
+            fed = {**feeds, **{k: v.detach().cpu().numpy() for k, v in swapped.items()}}
+            perturbed = _run_batches(None, session, image, [example], fed, tol, [traced])
+    finally:
+        model.train(was_training)
+    result = _summary(stored, perturbed, tol, [int(example.shape[0])], "feeds" if swapped else None)
+    return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
 
 
 def export_pt2_bytes(model: nn.Module, example: torch.Tensor, *, dynamic_batch: bool = False) -> bytes:
@@ -334,13 +455,19 @@ def _load_onnx(onnx_model):
         raise SpliceError(f"'{path}' is not a readable ONNX file ({type(exc).__name__}); it may be damaged") from None
 
 
-def _ort_session(model):
-    """A quiet onnxruntime CPU session for a ``ModelProto`` or serialised bytes."""
+def _ort_session(model, *, optimise: bool = True):
+    """A quiet onnxruntime CPU session for a ``ModelProto`` or serialised bytes.
+
+    ``optimise=False`` runs the graph's operators as exported, without
+    onnxruntime's graph rewrites (which need stored weights to fold anything).
+    """
     import onnxruntime as ort
 
     data = bytes(model) if isinstance(model, (bytes, bytearray)) else model.SerializeToString()
     opts = ort.SessionOptions()
     opts.log_severity_level = 3
+    if not optimise:
+        opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
     return ort.InferenceSession(data, opts, providers=["CPUExecutionProvider"])
 
 
@@ -458,7 +585,7 @@ def _summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int],
 
 
 def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
-                references: Sequence | None = None, heads_as_inputs: bool = False) -> dict:
+                references: Sequence | None = None) -> dict:
     """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
 
     ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
@@ -469,20 +596,23 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     tolerance, batch_sizes, perturbed_by, detail}``; never changes ``model``.
     ``references`` may hold ``model``'s outputs for ``inputs`` when the caller
     has them already (one per batch); they are used for the as-stored check.
-    ``heads_as_inputs`` says the graph was exported with
-    ``export_onnx_bytes(heads_as_inputs=True)``: it is run as it is, fed the
-    model's own head tensors and then the perturbed ones.
+    A graph from ``export_onnx_bytes(weights_as_inputs=True)`` is recognised by
+    its inputs and fed ``model``'s own tensors, then the perturbed head tensors.
     """
-    if heads_as_inputs:
-        return _parity_with_head_inputs(model, onnx_model, inputs, perturb=perturb, tol=tol, references=references)
     import onnx
 
     proto = _load_onnx(onnx_model)
+    tol = _tolerance(model, tol)
+    batches = _as_batches(inputs)
+    if references is not None and len(references) != len(batches):
+        raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
+    fed = _weight_inputs(proto, model)
+    if fed:
+        return _parity_with_weight_inputs(model, proto, fed, batches, perturb=perturb, tol=tol,
+                                          references=references)
     if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
         proto = onnx.ModelProto()
         proto.CopyFrom(onnx_model)
-    tol = _tolerance(model, tol)
-    batches = _as_batches(inputs)
     values = _perturbed_tensors(model) if perturb else {}
     n_outputs = len(proto.graph.output)
     opset = next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 17)
@@ -499,8 +629,6 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
         def run(torch_model, sess, extra: dict, known=None) -> dict:
             return _run_batches(torch_model, sess, sess.get_inputs()[0].name, batches, extra, tol, known)
 
-        if references is not None and len(references) != len(batches):
-            raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
         stored = run(model, session, {}, references)
         perturbed = None
         if values:
@@ -517,31 +645,35 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
 
 
-def _parity_with_head_inputs(model, onnx_model, inputs, *, perturb: bool, tol, references) -> dict:
-    if isinstance(onnx_model, (str, os.PathLike)):
-        onnx_model = Path(onnx_model).read_bytes()
-    data = onnx_model if isinstance(onnx_model, (bytes, bytearray)) else onnx_model.SerializeToString()
-    tol = _tolerance(model, tol)
-    batches = _as_batches(inputs)
-    own = {k: v.cpu().numpy() for k, v in head_tensors(model).items()}
-    session = _ort_session(data)
-    names = [i.name for i in session.get_inputs()]
-    if names[1:] != list(own):
-        raise SpliceError(f"the ONNX graph's inputs {names} are not the image plus this model's warp head tensors "
-                          f"{list(own)}; export it with export_onnx_bytes(heads_as_inputs=True)")
-    if references is not None and len(references) != len(batches):
-        raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
+def _weight_inputs(proto, model: nn.Module) -> list[str]:
+    """The graph inputs after the image that are ``model``'s state entries, if all of them are; else ``[]``."""
+    inits = {init.name for init in proto.graph.initializer}
+    extra = [i.name for i in proto.graph.input[1:] if i.name not in inits]
+    if not extra:
+        return []
+    state = model.state_dict(keep_vars=True)
+    return extra if all(n in state for n in extra) else []
+
+
+def _parity_with_weight_inputs(model, proto, names: list[str], batches, *, perturb: bool, tol,
+                               references) -> dict:
+    state = model.state_dict(keep_vars=True)
+    own = {n: state[n].detach().cpu().numpy() for n in names}
+    session = _ort_session(proto)
+    image = session.get_inputs()[0].name
     was_training = model.training
     model.eval()
     try:
-        def run(torch_model, heads: dict, known=None) -> dict:
-            return _run_batches(torch_model, session, names[0], batches, heads, tol, known)
-
-        stored = run(model, own, references)
+        stored = _run_batches(model, session, image, batches, own, tol, references)
         perturbed = None
-        if perturb and own:
-            values = {k: v.cpu().numpy() for k, v in _perturbed_tensors(model).items()}
-            perturbed = run(perturbed_copy(model), values)
+        values = _perturbed_tensors(model) if perturb else {}
+        if values:
+            missing = sorted(set(values) - set(own))
+            if missing:
+                raise SpliceError(f"the ONNX graph does not take the warp head tensor(s) {', '.join(missing)} "
+                                  "as inputs; export it with export_onnx_bytes(weights_as_inputs=True)")
+            swapped = {**own, **{k: v.detach().cpu().numpy() for k, v in values.items()}}
+            perturbed = _run_batches(perturbed_copy(model), session, image, batches, swapped, tol)
     finally:
         model.train(was_training)
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], "feeds" if perturbed else None)

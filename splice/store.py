@@ -275,6 +275,69 @@ def _rebuild_base(manifest: dict, *, trust_pickle: bool = False) -> nn.Module:
     return model
 
 
+_META = torch.device("meta")
+
+
+def _empty_base(manifest: dict) -> nn.Module | None:
+    """The base architecture with its tensors on the meta device (no memory, no random init), or ``None``.
+
+    Only builders (``torchvision:NAME``, ``module:factory``) can be built this
+    way; a builder that computes with its tensors while it runs fails on the
+    meta device and gets ``None`` (the caller then builds it normally).
+    """
+    from .sources import build_model
+
+    spec = manifest["source"]["spec"]
+    if ":" not in spec:
+        return None
+    try:
+        with _META:
+            model, _ = build_model(spec, manifest["source"].get("kwargs") or {})
+    except Exception:  # any failure here only means "build it the slow way"
+        return None
+    return model
+
+
+def _on_meta(model: nn.Module) -> bool:
+    return any(t.is_meta for t in (*model.parameters(), *model.buffers()))
+
+
+def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | None:
+    """``model`` (built on the meta device) with ``state`` as its tensors, or ``None`` if that does not cover it.
+
+    The tensors are adopted, not copied (``load_state_dict(assign=True)``);
+    a key or shape that does not fit is left to the strict load of the slow
+    path, which names it. ``None`` also when a tensor outside the state dict
+    (a non-persistent buffer) would stay on the meta device.
+    """
+    own = model.state_dict(keep_vars=True)
+    if set(own) != set(state) or any(tuple(own[k].shape) != tuple(state[k].shape) or own[k].dtype != state[k].dtype
+                                     for k in own):
+        return None
+    model.load_state_dict(state, strict=True, assign=True)
+    return None if _on_meta(model) else model
+
+
+def _base_from_state(manifest: dict, base_state: Mapping[str, torch.Tensor], *,
+                     trust_pickle: bool = False, empty: nn.Module | None = None) -> nn.Module:
+    """The base network holding ``base_state``: built empty and filled when it can be, else built and loaded.
+
+    ``empty`` may pass in an :func:`_empty_base` to fill (it is used up).
+    """
+    empty = empty if empty is not None else _empty_base(manifest)
+    model = _fill(empty, base_state) if empty is not None else None
+    if model is None:
+        model = _rebuild_base(manifest, trust_pickle=trust_pickle)
+        model.load_state_dict(base_state, strict=True)
+    return model.eval()
+
+
+def _base_part(state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
+    from .surgery import WARP_PREFIX
+
+    return {k: v for k, v in state.items() if not k.startswith(WARP_PREFIX + ".")}
+
+
 def _restore_info(model: nn.Module, manifest: dict, folder: Path) -> None:
     from .surgery import _attach_info
 
@@ -300,16 +363,32 @@ def assemble(base: nn.Module, manifest: dict, state: dict[str, torch.Tensor], fo
 
     Splicing traces a private copy of ``base``; a manifest without points uses
     ``base`` itself unless ``copy_base``. Weights that do not fit are refused
-    by name.
+    by name. A ``base`` on the meta device (built empty) adopts the tensors
+    of ``state`` instead of copying them.
+    """
+    return _load_into(_frame(base, manifest, copy_base=copy_base), state, folder, assign=_on_meta(base))
+
+
+def _frame(base: nn.Module, manifest: dict, *, copy_base: bool = False) -> nn.Module:
+    """The spliced architecture of ``manifest`` around a traced copy of ``base``, weights not loaded.
+
+    Around an empty base the warps are built on the CPU in the default dtype;
+    :func:`_load_into` gives them the dtype of the saved tensors.
     """
     from .surgery import SplicePlan, _apply_plan
     from .warps import WarpConfig
 
-    if manifest["points"]:
-        plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
-        model = _apply_plan(base, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()))
-    else:
-        model = copy.deepcopy(base) if copy_base else base
+    if not manifest["points"]:
+        return copy.deepcopy(base) if copy_base else base
+    plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
+    return _apply_plan(base, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()),
+                       factory={"device": "cpu"} if _on_meta(base) else None, shapes=_recorded_shapes(manifest))
+
+
+def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
+    """Load ``state`` into ``model`` strictly (adopting the tensors with ``assign``), naming what does not fit."""
+    from .warps import Warp
+
     own = model.state_dict()
     missing = sorted(set(own) - set(state))
     unexpected = sorted(set(state) - set(own))
@@ -320,8 +399,28 @@ def assemble(base: nn.Module, manifest: dict, state: dict[str, torch.Tensor], fo
             f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
             "the folder was written by an incompatible version or edited by hand"
         )
-    model.load_state_dict(state, strict=True)
+    model.load_state_dict(state, strict=True, assign=assign)
+    if assign:
+        for warp in (m for m in model.modules() if isinstance(m, Warp)):
+            p = next(iter(warp.parameters()), None)
+            if p is not None and (p.dtype != warp.base_grid.dtype or p.device != warp.base_grid.device):
+                warp.to(device=p.device, dtype=p.dtype)  # rebuilds its grid buffers in float64, then rounds once
+        if _on_meta(model):
+            raise WeightsError(f"'{folder}': the model keeps tensors outside its state dict; build its base for "
+                               "real before assembling it")
     return model
+
+
+def _recorded_shapes(manifest: dict) -> dict[str, tuple[int, ...]] | None:
+    """``{point: (C, H, W)}`` as splice.json records them, or ``None`` if a warp reads a point not recorded."""
+    shapes = {p["name"]: tuple(p["shape"]) for p in manifest["points"] if p.get("shape")}
+    if len(shapes) != len(manifest["points"]):
+        return None
+    for p in manifest["points"]:
+        loc = (p.get("warp") or {}).get("loc_from")
+        if loc is not None and loc not in shapes:
+            return None
+    return shapes
 
 
 def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
@@ -341,7 +440,7 @@ def _load(folder: Path, manifest: dict, *, trust_pickle: bool) -> nn.Module:
 
     state = _read_checked_weights(folder, manifest)
     check_finite(state, f"'{folder / manifest['weights']['file']}'")
-    model = assemble(_rebuild_base(manifest, trust_pickle=trust_pickle), manifest, state, folder)
+    model = _assembled(manifest, state, folder, trust_pickle=trust_pickle)
     _restore_info(model, manifest, folder)
     model.eval()
     return model
@@ -349,16 +448,30 @@ def _load(folder: Path, manifest: dict, *, trust_pickle: bool) -> nn.Module:
 
 def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
     """The base network of a folder: its architecture with the base part of the saved weights."""
-    from .surgery import WARP_PREFIX
-
     folder = Path(folder)
     manifest = read_manifest(folder)
-    state = _read_checked_weights(folder, manifest)
-    model = _rebuild_base(manifest, trust_pickle=trust_pickle)
-    base_state = {k: v for k, v in state.items() if not k.startswith(WARP_PREFIX + ".")}
-    model.load_state_dict(base_state, strict=True)
-    model.eval()
-    return model
+    return _base_from_state(manifest, _base_part(_read_checked_weights(folder, manifest)), trust_pickle=trust_pickle)
+
+
+def _assembled(manifest: dict, state: dict[str, torch.Tensor], folder: Path, *, trust_pickle: bool,
+               empty: nn.Module | None = None, frame: nn.Module | None = None) -> nn.Module:
+    """The spliced model holding ``state``: assembled on an empty base when it can be, else on a built one.
+
+    ``empty`` may pass in an :func:`_empty_base`; with points it is traced
+    (copied), not changed, so it can still be filled afterwards. ``frame``
+    may pass in ``_frame(empty, manifest)``, built while the weights were
+    still being checked.
+    """
+    if frame is None:
+        empty = empty if empty is not None else _empty_base(manifest)
+        if empty is not None:
+            frame = _frame(empty, manifest, copy_base=True)
+    if frame is not None:
+        try:
+            return _load_into(frame, state, folder, assign=True)
+        except WeightsError:
+            pass  # the strict, slow path below names what does not fit
+    return assemble(_rebuild_base(manifest, trust_pickle=trust_pickle), manifest, state, folder)
 
 
 def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False):

@@ -158,22 +158,29 @@ def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float
 
 
 def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
-                traced: fx.GraphModule | None = None) -> fx.GraphModule:
+                traced: fx.GraphModule | None = None, factory: dict | None = None,
+                shapes: Mapping[str, tuple[int, ...]] | None = None) -> fx.GraphModule:
     """Trace ``model`` (fx works on a private clone) and insert the planned warps (no checks).
 
-    ``traced`` may pass in a fresh, unused result of ``graph.trace(model)``.
+    ``traced`` may pass in a fresh, unused result of ``graph.trace(model)``;
+    ``shapes`` the ``{point: (C, H, W)}`` of every planned point (and
+    localisation input) when they are known, which saves listing the points.
+    The warps are built on the device and in the dtype of the model's first
+    parameter unless ``factory`` (``{"device", "dtype"}``) says otherwise.
     """
     from . import graph
     from .warps import Warp
 
     gm = traced if traced is not None else graph.trace(model, leaves=leaves)
-    if listing is None:
-        listing = graph.points(model, input_shape, all=True, leaves=leaves)
-    shapes = {p.name: tuple(p.shape) for p in listing}
+    if shapes is None:
+        if listing is None:
+            listing = graph.points(model, input_shape, all=True, leaves=leaves)
+        shapes = {p.name: tuple(p.shape) for p in listing}
     nodes = _node_map(gm)
     order = {n: i for i, n in enumerate(gm.graph.nodes)}
-    param = next(iter(model.parameters()), None)
-    factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
+    if factory is None:
+        param = next(iter(model.parameters()), None)
+        factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
     if WARP_PREFIX in dict(gm.named_children()):
         raise PointError(f"the model already has a submodule named {WARP_PREFIX!r}; it cannot be spliced again")
     container = nn.ModuleDict()

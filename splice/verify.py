@@ -1,8 +1,11 @@
 """The equivalence certificate: checks that a splice broke nothing (``splice verify``).
 
 :func:`verify` rebuilds the base network of a spliced folder from its manifest
-(:func:`splice.store.load_base`) and the spliced model (:func:`splice.store.load`)
-and runs the checks below; :func:`verify_models` runs them on models in memory.
+(as :func:`splice.store.load_base` does) and the spliced model (as
+:func:`splice.store.load` does) and runs the checks below;
+:func:`verify_models` runs them on models in memory. The weights file is read
+and hashed once; both models are built empty and then adopt its tensors, so
+they are separate module trees over the same (read-only) weights.
 Each check gives one :class:`CheckResult` row ``{check, passed, numbers, detail}``.
 
 ``integrity``
@@ -56,9 +59,14 @@ Each check gives one :class:`CheckResult` row ``{check, passed, numbers, detail}
     Export once (TorchScript exporter by default, ``exporter='dynamo'`` for
     opset 18+; opset 17 by default) traced on the first probe sample, and
     compare onnxruntime (CPU) with torch on that sample, as stored and with a
-    fixed perturbed warp (:func:`splice.export.onnx_parity`; the perturbed run
-    feeds the heads' final tensors to the same session), relative tolerance
-    1e-4; reports the export and check times. The torch side of the as-stored
+    fixed perturbed warp (:func:`splice.export.onnx_parity`), relative
+    tolerance 1e-4; reports the export and check times. With the TorchScript
+    exporter the checked graph takes the weights as inputs
+    (``export_onnx_bytes(weights_as_inputs=True)``): the same operators as the
+    file ``splice export`` writes, without serialising 100 MB of weights into
+    it and having onnxruntime prepare them, and the perturbed run is the same
+    session fed the perturbed head tensors. ``splice export`` checks its own,
+    self-contained file the same two ways. The torch side of the as-stored
     comparison is the stored model's output for that sample from the outputs
     check. Constant folding is off (onnxruntime folds when it loads the graph;
     ``splice export`` folds). Runs in float32 even when ``dtype`` is float64.
@@ -77,6 +85,7 @@ import math
 import os
 import time
 from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -624,11 +633,11 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             "missing": missing, "unexpected": extra}
 
 
-def _provenance_row(info: Mapping, base_state: Mapping[str, torch.Tensor], recorded_base: str | None,
+def _provenance_row(info: Mapping, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
                     input_shape) -> CheckResult:
+    """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
     from ._io import state_dict_sha256
 
-    actual = state_dict_sha256(base_state)
     source = info.get("source_weights_sha256")
     tuning = info.get("tuning")
     declared = bool(isinstance(tuning, Mapping) and tuning.get("base_changed"))
@@ -739,35 +748,46 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
 def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
               n_outputs: int | None, reference=None) -> CheckResult:
     from .errors import SpliceError
-    from .export import export_onnx_bytes, onnx_parity
+    from .export import check_onnx_graph, export_onnx_bytes, onnx_parity
 
     twin = model if example.dtype == torch.float32 else copy.deepcopy(model).float()
     x = example.float()
     if twin is not model:
         reference = None  # the probe outputs were computed in another dtype
-    start = time.perf_counter()
-    try:
-        # constant folding only tidies the graph (onnxruntime folds again when it
-        # loads it) and costs more than the export itself on deep nets
-        data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False, n_outputs=n_outputs,
-                                 heads_as_inputs=exporter == "torchscript")
-    except SpliceError as exc:
-        return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed")
-    seconds = time.perf_counter() - start
-    start = time.perf_counter()
-    result = onnx_parity(twin, data, x, references=None if reference is None else [reference],
-                         heads_as_inputs=exporter == "torchscript")
-    numbers = {"opset": opset, "exporter": exporter, "export_seconds": seconds,
-               "check_seconds": time.perf_counter() - start, "bytes": len(data),
-               "heads_as_inputs": exporter == "torchscript",
-               **{k: result[k] for k in ("max_abs", "max_rel", "max_abs_perturbed", "max_rel_perturbed",
-                                         "tolerance", "perturbed_by", "batch_sizes")}}
+    fed = exporter == "torchscript"
+    result = None
+    if fed:
+        try:
+            result = check_onnx_graph(twin, x, opset=opset, reference=reference)
+        except SpliceError:
+            # a model whose forward reads its tensors in ways the feeding cannot
+            # follow: check a self-contained graph instead
+            fed = False
+    if result is None:
+        start = time.perf_counter()
+        try:
+            # constant folding only tidies the graph (onnxruntime folds again when it
+            # loads it) and costs more than the export itself on deep nets
+            data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False,
+                                     n_outputs=n_outputs)
+        except SpliceError as exc:
+            return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed")
+        seconds = time.perf_counter() - start
+        start = time.perf_counter()
+        result = {**onnx_parity(twin, data, x, references=None if reference is None else [reference]),
+                  "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
+    seconds = result["export_seconds"]
+    numbers = {"opset": opset, "exporter": exporter, "weights_as_inputs": fed,
+               **{k: result[k] for k in ("export_seconds", "check_seconds", "bytes", "max_abs", "max_rel",
+                                         "max_abs_perturbed", "max_rel_perturbed", "tolerance", "perturbed_by",
+                                         "batch_sizes")}}
     if example.dtype != torch.float32:
         numbers["note"] = "run in float32 (onnxruntime's GridSample is float32)"
     summary = (f"abs {_fmt(result['max_abs'])}, perturbed {_fmt(result['max_abs_perturbed'])}, "
                f"export {seconds:.2f}s")
     return CheckResult("onnx", bool(result["passed"]), numbers,
-                       f"onnxruntime vs torch (opset {opset}, {exporter}): {result['detail']}", summary)
+                       f"onnxruntime vs torch (opset {opset}, {exporter}{', weights fed as inputs' if fed else ''}): "
+                       f"{result['detail']}", summary)
 
 
 # ----------------------------------------------------------------------------- the runner
@@ -793,7 +813,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: dict, *, images, imag
     input_shape = tuple(int(d) for d in info["input_shape"])
     base_state = {k: v for k, v in spliced.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
     meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
-    provenance = _provenance_row(info, base_state, recorded_base, input_shape)
+    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, input_shape)
     lap("provenance")
     current = next(iter(spliced.parameters()), None)
     if current is not None and current.dtype != dtype:
@@ -915,14 +935,15 @@ def _first_rows(out, batch: int):
 
 
 def _detached(out):
+    """``out`` (a tensor or nested tuple/list/dict of them) with every tensor detached, containers kept."""
     if isinstance(out, torch.Tensor):
         return out.detach()
     if isinstance(out, Mapping):
         return {k: _detached(v) for k, v in out.items()}
-    if isinstance(out, tuple):
-        return tuple(_detached(v) for v in out)
-    if isinstance(out, list):
-        return [_detached(v) for v in out]
+    if isinstance(out, tuple) and hasattr(out, "_fields"):  # a named tuple
+        return type(out)(*(_detached(v) for v in out))
+    if isinstance(out, (tuple, list)):
+        return type(out)(_detached(v) for v in out)
     return out
 
 
@@ -972,21 +993,6 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: Mapping | None =
                        owned=False, lap=lap)
 
 
-def _spliced_from_base(base: nn.Module, manifest: dict, state: Mapping[str, torch.Tensor], folder: Path,
-                       info: dict) -> nn.Module:
-    """The spliced model, built like :func:`splice.store.load` but from the base already rebuilt.
-
-    ``store.load`` would build the architecture a second time;
-    :func:`splice.store.assemble` splices a private copy of ``base``, so
-    ``base`` stays the independent eager reference.
-    """
-    from .store import assemble
-
-    model = assemble(base, manifest, state, folder, copy_base=True)
-    model.splice_info = dict(info)
-    return model.eval()
-
-
 def verify(folder: str | os.PathLike, *, images=None, batch: int = 2, dtype="float32", onnx: bool = False,
            opset: int = 17, seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript",
            tol: float | None = None) -> VerifyReport:
@@ -1003,9 +1009,9 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 2, dtype="flo
     (True, [])
     """
     from ._io import file_sha256
-    from .errors import IntegrityError, WeightsError
+    from .errors import WeightsError
     from .sources import _safetensors_load
-    from .store import MANIFEST_NAME, load_base, read_manifest
+    from .store import MANIFEST_NAME, _assembled, _base_from_state, _base_part, _empty_base, _frame, read_manifest
 
     lap = _Laps()
     folder = Path(folder)
@@ -1033,24 +1039,36 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 2, dtype="flo
     recorded = manifest["weights"]["sha256"]
     meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME), "weights_sha256_recorded": recorded,
                            "source_sha256": info["source_weights_sha256"]})
-    try:  # load_base checks the file against its recorded hash before it uses a byte of it
-        base = load_base(folder, trust_pickle=trust_pickle)
-    except IntegrityError:
-        actual = file_sha256(weights)
-        meta["hashes"]["weights_sha256"] = actual
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        # hashing releases the GIL (file_sha256 hashes the mapped file in one call):
+        # the file is hashed while the empty models are built; no byte of it is
+        # loaded before its hash is known to match
+        file_hash = pool.submit(file_sha256, weights)
+        empty = frame = None
+        try:
+            empty = _empty_base(manifest)
+            frame = _frame(empty, manifest, copy_base=True) if empty is not None else None
+        except Exception:  # left to the slow path below, which reports it after the integrity check
+            empty = frame = None
+        actual = file_hash.result()
+    meta["hashes"]["weights_sha256"] = actual
+    rows = [_integrity_row(weights, recorded, actual)]
+    if not rows[0].passed:
         meta["not_run"] = "the weights file cannot be trusted, so no other check ran"
-        return VerifyReport([_integrity_row(weights, recorded, actual)], meta)
-    meta["hashes"]["weights_sha256"] = recorded
-    rows = [_integrity_row(weights, recorded, recorded)]
-    lap("integrity and base")
+        return VerifyReport(rows, meta)
     state = _safetensors_load(weights)
+    lap("integrity")
     rows.append(_finite_row(state, f"'{weights}'"))
     lap("finite")
     if not rows[-1].passed:
         meta["not_run"] = "the weights hold NaN/Inf values, so no other check ran"
         return VerifyReport(rows, meta)
-    spliced = _spliced_from_base(base, manifest, state, folder, info)
+    spliced = _assembled(manifest, state, folder, trust_pickle=trust_pickle, empty=empty, frame=frame)
+    spliced.splice_info = dict(info)
+    spliced.eval()
     lap("spliced")
+    base = _base_from_state(manifest, _base_part(state), trust_pickle=trust_pickle, empty=empty)
+    lap("base")
     return _run_checks(base, spliced, info, images=images_t, image_files=files, batch=batch, dtype=dt, onnx=onnx,
                        opset=opset, exporter=exporter, seed=seed, tol=tol,
                        recorded_base=manifest["weights"].get("base_sha256"), rows=rows, meta=meta, owned=True,

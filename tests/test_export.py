@@ -18,6 +18,7 @@ from splice.cli import main
 from splice.errors import CheckFailed, SpliceError
 from splice.export import (
     MIN_OPSET,
+    check_onnx_graph,
     export,
     export_onnx_bytes,
     onnx_parity,
@@ -149,6 +150,82 @@ def test_shared_initializers_are_not_patched_blindly(tmp_path):
     result = onnx_parity(spliced, data, x)
     assert result["passed"], result["detail"]
     assert result["perturbed_by"] == "feeds"  # the merged tensors were split back, no re-export
+
+
+# ----------------------------------------------------------------------------- the checking graph (verify --onnx)
+
+
+def test_weights_as_inputs_graph_takes_every_state_tensor(model):
+    """The checking graph stores no weights: each state entry is an input; onnxruntime is the reference."""
+    import onnx
+
+    x = torch.randn(1, 1, 48, 48)
+    data = export_onnx_bytes(model, x, fold_constants=False, weights_as_inputs=True)
+    proto = onnx.load_from_string(data)
+    state = model.state_dict()
+    inputs = [i.name for i in proto.graph.input]
+    assert inputs[0] == "input"
+    assert set(inputs[1:]) <= set(state)
+    assert not {init.name for init in proto.graph.initializer} & set(state)
+    result = onnx_parity(model, data, x)  # recognised by its inputs and fed the model's tensors
+    assert result["passed"], result["detail"]
+    assert result["perturbed_by"] == "feeds"
+    assert result["max_rel"] <= 1e-4 and result["max_rel_perturbed"] <= 1e-4
+
+
+def test_weights_as_inputs_graph_runs_at_the_perturbed_warp(model):
+    """Fed the perturbed head tensors, onnxruntime follows torch's perturbed copy, not the stored model."""
+    import onnxruntime as ort
+
+    from splice.export import _perturbed_tensors
+
+    x = torch.randn(1, 1, 48, 48)
+    data = export_onnx_bytes(model, x, fold_constants=False, weights_as_inputs=True)
+    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
+    state = model.state_dict()
+    feeds = {i.name: state[i.name].numpy() for i in session.get_inputs()[1:]}
+    feeds.update({k: v.numpy() for k, v in _perturbed_tensors(model).items()})
+    out = session.run(None, {"input": x.numpy(), **feeds})[0]
+    with torch.no_grad():
+        stored, perturbed = model(x), perturbed_copy(model)(x)
+    assert _rel(perturbed, out) <= 1e-4
+    assert _rel(stored, out) > 1e-3  # the perturbation is visible at the output
+
+
+def test_checking_graph_sees_a_wrong_sampler_only_when_perturbed(model):
+    """The nearest-sampler break of the stored graph, made in the checking graph, is caught the same way."""
+    import onnx
+
+    x = torch.randn(1, 1, 48, 48)
+    proto = onnx.load_from_string(export_onnx_bytes(model, x, fold_constants=False, weights_as_inputs=True))
+    for node in proto.graph.node:
+        if node.op_type == "GridSample":
+            for attr in node.attribute:
+                if attr.name == "mode":
+                    attr.s = b"nearest"
+    result = onnx_parity(model, proto, x)
+    assert result["max_rel"] <= 1e-4
+    assert not result["passed"]
+    assert result["detail"].startswith("with the perturbed warp:")
+
+
+def test_check_onnx_graph_two_equal_heads(tmp_path):
+    """Two zero-initialised heads of one shape: fed separately, never merged into one input."""
+    src = splice.load_source(TRAY, kwargs=SMALL)
+    spliced = insert(src, at=["pool1", "pool2"]).eval()
+    x = torch.randn(1, 1, 48, 48)
+    result = check_onnx_graph(spliced, x)
+    assert result["passed"], result["detail"]
+    assert result["perturbed_by"] == "feeds" and result["batch_sizes"] == [1]
+    assert 0 < result["max_rel_perturbed"] <= 1e-4
+    assert result["export_seconds"] > 0 and result["bytes"] > 0
+    # the torch side of the perturbed comparison is the tracer's pass at the perturbed warp
+    with torch.no_grad():
+        reference = perturbed_copy(spliced)(x)
+    assert not torch.equal(reference, spliced(x))
+    # a reference that is not the model's output is caught as stored
+    wrong = check_onnx_graph(spliced, x, reference=spliced(x).detach() + 1.0)
+    assert not wrong["passed"] and wrong["detail"].startswith("as stored:")
 
 
 def test_dynamic_batch_onnx_runs_at_other_sizes(tray_folder, model, tmp_path):

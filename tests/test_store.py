@@ -146,3 +146,119 @@ def test_load_never_unpickles(saved, monkeypatch):
     model = splice.load(saved)
     assert "splice_warps.input.head.fc2.weight" in model.state_dict() or any(
         k.startswith("splice_warps.input.") for k in model.state_dict())
+
+
+# ----------------------------------------------------------------------------- rebuilding without a random init
+
+_BUILDERS = '''
+import torch
+from torch import nn
+
+
+class Plain(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(1, 4, 3, padding=1)
+        self.bn = nn.BatchNorm2d(4)
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+        self.head = nn.Linear(4, 3)
+
+    def forward(self, x):
+        x = self.conv2(torch.relu(self.bn(self.conv1(x))))
+        return self.head(x.mean((2, 3)))
+
+
+class WithTable(Plain):
+    """A non-persistent buffer computed in __init__: it is not in the state dict."""
+
+    def __init__(self):
+        super().__init__()
+        self.register_buffer("gain", torch.linspace(0.5, 1.5, 4).reshape(1, 4, 1, 1), persistent=False)
+
+    def forward(self, x):
+        x = self.conv2(torch.relu(self.bn(self.conv1(x))) * self.gain)
+        return self.head(x.mean((2, 3)))
+
+
+class Computing(Plain):
+    """Reads a tensor value while it is built, which the meta device cannot do."""
+
+    def __init__(self):
+        super().__init__()
+        self.scale = float(self.conv1.weight.detach().abs().sum() > -1.0)
+
+
+def plain():
+    return Plain()
+
+
+def with_table():
+    return WithTable()
+
+
+def computing():
+    return Computing()
+'''
+
+
+@pytest.fixture(scope="module")
+def builders(tmp_path_factory):
+    path = tmp_path_factory.mktemp("builders") / "store_builders.py"
+    path.write_text(_BUILDERS)
+    return path
+
+
+@pytest.mark.parametrize("factory", ["plain", "with_table", "computing"])
+def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_path, factory, monkeypatch):
+    """Built empty and filled (plain), or built for real when that cannot hold (the other two)."""
+    from splice import store
+    from splice.store import load_base
+
+    real_builds = []
+    rebuild = store._rebuild_base
+    monkeypatch.setattr(store, "_rebuild_base", lambda *a, **k: real_builds.append(1) or rebuild(*a, **k))
+    spliced = insert(f"{builders}:{factory}", at="input", input_shape=(1, 12, 12))
+    with torch.no_grad():  # weights a fresh init would not give, so a random init cannot pass for them
+        for p in spliced.parameters():
+            p.add_(0.01 * torch.arange(p.numel(), dtype=p.dtype).reshape(p.shape) / max(1, p.numel()))
+    folder = splice.save(spliced, tmp_path / factory)
+    loaded = splice.load(folder)
+    assert not any(t.is_meta for t in (*loaded.parameters(), *loaded.buffers()))
+    want, got = spliced.state_dict(), loaded.state_dict()
+    assert set(want) == set(got)
+    assert all(torch.equal(want[k], got[k]) for k in want)
+    x = torch.randn(2, 1, 12, 12)
+    with torch.no_grad():
+        assert torch.equal(spliced.eval()(x), loaded(x))
+    base = load_base(folder)
+    assert not any(t.is_meta for t in (*base.parameters(), *base.buffers()))
+    assert all(torch.equal(v, base.state_dict()[k]) for k, v in want.items() if not k.startswith("splice_warps."))
+    # plain is never built for real (no random init); the other two are, once for load and once for load_base
+    assert len(real_builds) == (0 if factory == "plain" else 2)
+
+
+def test_float64_folder_loads_with_float64_warp_grids(builders, tmp_path):
+    """Warps built around an empty base take the saved dtype, grids rebuilt in float64 (exact identity)."""
+    spliced = insert(f"{builders}:plain", at="input", input_shape=(1, 12, 12)).double()
+    folder = splice.save(spliced, tmp_path / "f64")
+    loaded = splice.load(folder)
+    warp = loaded.get_submodule("splice_warps.input")
+    assert warp.base_grid.dtype == torch.float64
+    assert torch.equal(warp.base_grid, spliced.get_submodule("splice_warps.input").base_grid)
+    x = torch.randn(2, 1, 12, 12, dtype=torch.float64)
+    with torch.no_grad():
+        assert torch.equal(warp(x), x)  # the identity, bit for bit
+
+
+def test_file_sha256_matches_hashlib(tmp_path):
+    """Reference: hashlib.sha256 over the bytes read in one piece (Python standard library)."""
+    import hashlib
+
+    from splice._io import file_sha256
+
+    empty = tmp_path / "empty.bin"
+    empty.write_bytes(b"")
+    data = tmp_path / "data.bin"
+    data.write_bytes(bytes(range(256)) * 5000)
+    assert file_sha256(empty) == hashlib.sha256(b"").hexdigest()
+    assert file_sha256(data) == hashlib.sha256(data.read_bytes()).hexdigest()
