@@ -247,7 +247,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("verify", help="prove a spliced folder equals its base at the identity")
     p.add_argument("folder", metavar="DIR")
     p.add_argument("--images", metavar="FOLDER", help="also probe with the images in FOLDER")
-    p.add_argument("--batch", type=int, default=2, metavar="N", help="probe batch size (default 2)")
+    p.add_argument("--batch", type=int, default=1, metavar="N",
+                   help="probe batch size (default 1; more also exercises batch-size-dependent code)")
     p.add_argument("--dtype", choices=("float32", "float64"), default="float32")
     p.add_argument("--onnx", action="store_true", help="also export to ONNX and check onnxruntime parity")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")

@@ -250,6 +250,13 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
 
 
 def _read_checked_weights(folder: Path, manifest: dict) -> dict[str, torch.Tensor]:
+    """The folder's tensors, after the file matched its recorded hash, in memory of their own.
+
+    safetensors maps the file; its tensors stay backed by the file's pages, and
+    a file truncated while they are alive kills the process (SIGBUS). A loaded
+    model lives long, so its tensors are copied out of the mapping (still far
+    cheaper than the random init it replaces).
+    """
     from .sources import _safetensors_load
 
     path = folder / manifest["weights"]["file"]
@@ -262,7 +269,7 @@ def _read_checked_weights(folder: Path, manifest: dict) -> dict[str, torch.Tenso
             f"(recorded {manifest['weights']['sha256'][:12]}…, found {actual[:12]}…); the weights were "
             "changed or damaged after saving — restore the folder from a good copy"
         )
-    return _safetensors_load(path)
+    return {k: v.clone() for k, v in _safetensors_load(path).items()}
 
 
 def _rebuild_base(manifest: dict, *, trust_pickle: bool = False) -> nn.Module:

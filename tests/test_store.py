@@ -262,3 +262,17 @@ def test_file_sha256_matches_hashlib(tmp_path):
     data.write_bytes(bytes(range(256)) * 5000)
     assert file_sha256(empty) == hashlib.sha256(b"").hexdigest()
     assert file_sha256(data) == hashlib.sha256(data.read_bytes()).hexdigest()
+
+
+def test_loaded_model_does_not_depend_on_the_file(saved, tmp_path):
+    """A loaded model owns its tensors: truncating the weights file afterwards cannot touch it."""
+    import shutil
+
+    folder = tmp_path / "copy"
+    shutil.copytree(saved, folder)
+    model = splice.load(folder)
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    with open(folder / "weights.safetensors", "r+b") as fh:
+        fh.truncate(16)  # a mapped tensor would raise SIGBUS when read after this
+    after = model.state_dict()
+    assert all(torch.equal(before[k], after[k]) for k in before)

@@ -254,6 +254,15 @@ def test_probe_is_seeded_and_shaped():
     assert probe_batch((3, 8, 8), 1, dtype=torch.float64).dtype == torch.float64
 
 
+def test_probe_batch_default_and_larger(tray_folder):
+    """One sample by default; a larger probe batch runs every check on all of its samples."""
+    assert verify(tray_folder).meta["batch"] == 1
+    report = verify(tray_folder, batch=3)
+    assert report.passed, report.failed
+    assert report.meta["batch"] == 3
+    assert report["shapes"].numbers["warps"]["pool2"]["input"][0] == 3
+
+
 def test_float64_runs_both_models_in_float64(tray_folder):
     report = verify(tray_folder, dtype="float64")
     assert report.passed
@@ -363,7 +372,7 @@ def test_shape_changing_warp_is_caught_by_shapes(tray_spliced):
     base.load_state_dict({k: v for k, v in bad.state_dict().items() if not k.startswith("splice_warps.")})
     report = verify_models(base, bad)
     assert "shapes" in report.failed
-    assert "warp 'pool2' turns (2, 8, 12, 12) into (2, 8, 10, 10)" in report["shapes"].detail
+    assert "warp 'pool2' turns (1, 8, 12, 12) into (1, 8, 10, 10)" in report["shapes"].detail
 
 
 def test_shape_change_that_breaks_the_model_is_still_named(model_file):
@@ -381,7 +390,7 @@ def test_shape_change_that_breaks_the_model_is_still_named(model_file):
     report = verify_models(base, spliced)
     assert report.failed == ["shapes", "outputs", "gradients"]
     detail = report["shapes"].detail
-    assert "warp 'input' turns (2, 1, 20, 20) into (2, 1, 18, 18)" in detail
+    assert "warp 'input' turns (1, 1, 20, 20) into (1, 1, 18, 18)" in detail
     assert "the spliced model fails on the probe (RuntimeError" in detail
     assert report["gradients"].detail.startswith("not run")
 
