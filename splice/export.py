@@ -47,7 +47,7 @@ import io
 import os
 import time
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import torch
@@ -401,12 +401,8 @@ def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17
                               [reference] if reference is not None else None)
         perturbed = None
         if swapped:
-            dropped = sorted(set(swapped) - set(feeds))
-            if dropped:
-                raise SpliceError(f"the checking graph does not read the warp head tensor(s) {', '.join(dropped)}; "
-                                  "check a self-contained export with onnx_parity instead")
-            fed = {**feeds, **{k: v.detach().cpu().numpy() for k, v in swapped.items()}}
-            perturbed = _run_batches(None, session, image, [example], fed, tol, [traced])
+            perturbed = _run_batches(None, session, image, [example], _perturbed_feeds(feeds, swapped), tol,
+                                     [traced])
     finally:
         model.train(was_training)
     result = _summary(stored, perturbed, tol, [int(example.shape[0])], "feeds" if swapped else None)
@@ -645,6 +641,16 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
 
 
+def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
+    """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
+    missing = sorted(set(values) - set(own))
+    if missing:
+        raise SpliceError(f"the ONNX graph does not take the warp head tensor(s) {', '.join(missing)} as inputs; "
+                          "export it with export_onnx_bytes(weights_as_inputs=True), or check a self-contained "
+                          "export with onnx_parity")
+    return {**own, **{k: v.detach().cpu().numpy() for k, v in values.items()}}
+
+
 def _weight_inputs(proto, model: nn.Module) -> list[str]:
     """The graph inputs after the image that are ``model``'s state entries, if all of them are; else ``[]``."""
     inits = {init.name for init in proto.graph.initializer}
@@ -668,12 +674,8 @@ def _parity_with_weight_inputs(model, proto, names: list[str], batches, *, pertu
         perturbed = None
         values = _perturbed_tensors(model) if perturb else {}
         if values:
-            missing = sorted(set(values) - set(own))
-            if missing:
-                raise SpliceError(f"the ONNX graph does not take the warp head tensor(s) {', '.join(missing)} "
-                                  "as inputs; export it with export_onnx_bytes(weights_as_inputs=True)")
-            swapped = {**own, **{k: v.detach().cpu().numpy() for k, v in values.items()}}
-            perturbed = _run_batches(perturbed_copy(model), session, image, batches, swapped, tol)
+            perturbed = _run_batches(perturbed_copy(model), session, image, batches, _perturbed_feeds(own, values),
+                                     tol)
     finally:
         model.train(was_training)
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], "feeds" if perturbed else None)
