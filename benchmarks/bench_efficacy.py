@@ -80,7 +80,9 @@ def run(epochs: int = EPOCHS, seed: int = SEED, threads: int | None = None, root
                              seed=seed)
         base = work / "base" / "best"
         spliced = work / "spliced"
-        splice.save(splice.insert(str(base), at=["input"], warp="affine", head_width=HEAD_WIDTH), spliced)
+        with torch.random.fork_rng(devices=[]):  # the head's hidden layers start from the seed too
+            torch.manual_seed(seed)
+            splice.save(splice.insert(str(base), at=["input"], warp="affine", head_width=HEAD_WIDTH), spliced)
         times["control"] = _arm(log, "control", model=str(base), recipe="baseline", data="digits-moved",
                                 out=work / "control", epochs=epochs, seed=seed)
         for arm in ("warp-only", "joint"):

@@ -167,7 +167,11 @@ def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = F
 
     # 4. splice at the recommended point
     log.step(4, f"splice an {plan.warp} warp at '{at}'")
-    spliced = insert(src, at=at, warp=plan.warp, head_width=plan.head_width)
+    import torch
+
+    with torch.random.fork_rng(devices=[]):  # the head's hidden layers start from the plan's seed
+        torch.manual_seed(plan.seed)
+        spliced = insert(src, at=at, warp=plan.warp, head_width=plan.head_width)
     save(spliced, out / "spliced")
     log.say(f"identity check before saving: {spliced.splice_info['check']['detail']}")
 

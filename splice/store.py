@@ -312,14 +312,14 @@ def _on_meta(model: nn.Module) -> bool:
 def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | None:
     """``model`` (built on the meta device) with ``state`` as its tensors, or ``None`` if that does not cover it.
 
-    The tensors are adopted, not copied (``load_state_dict(assign=True)``);
-    a key or shape that does not fit is left to the strict load of the slow
-    path, which names it. ``None`` also when a tensor outside the state dict
-    (a non-persistent buffer) would stay on the meta device.
+    The tensors are adopted, not copied (``load_state_dict(assign=True)``),
+    in the dtype they were saved in; a key or shape that does not fit is left
+    to the strict load of the slow path, which names it. ``None`` also when a
+    tensor outside the state dict (a non-persistent buffer) would stay on the
+    meta device.
     """
     own = model.state_dict(keep_vars=True)
-    if set(own) != set(state) or any(tuple(own[k].shape) != tuple(state[k].shape) or own[k].dtype != state[k].dtype
-                                     for k in own):
+    if set(own) != set(state) or any(tuple(own[k].shape) != tuple(state[k].shape) for k in own):
         return None
     model.load_state_dict(state, strict=True, assign=True)
     return None if _on_meta(model) else model

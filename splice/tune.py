@@ -300,7 +300,9 @@ def tune(
     :class:`~splice.recipes.Recipe`; ``epochs``/``lr``/``batch_size``/``seed``
     override it. ``resume=RUN`` continues RUN from its checkpoint (``model``,
     ``recipe`` and ``data`` may then be omitted; if given they must match the run).
-    ``reference`` overrides ``[pretrain] reference``. ``deterministic``
+    The seed also fixes the random init of a model built from a spec without
+    weights, so one seed gives one run; the caller's RNG state is restored
+    when the run ends. ``reference`` overrides ``[pretrain] reference``. ``deterministic``
     (default: on for the CPU) turns on ``torch.use_deterministic_algorithms``
     for the run. ``progress=False`` prints nothing. ``stop_after_steps`` stops
     like Ctrl-C after that many optimiser steps (for tests and debugging).
@@ -318,12 +320,15 @@ def tune(
         previous = torch.are_deterministic_algorithms_enabled()
         if deterministic:
             _set_deterministic(True)
+        cuda = [ctx.device.index or 0] if ctx.device.type == "cuda" else []
         try:
-            return _tune(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume, epochs=epochs, lr=lr,
-                         batch_size=batch_size, seed=seed, quiet=quiet, weights=weights, kwargs=kwargs,
-                         input_shape=input_shape, allow_partial=allow_partial, trust_pickle=trust_pickle,
-                         leaves=leaves, workers=workers, reference=reference, progress=progress,
-                         stop_after_steps=stop_after_steps)
+            # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards
+            with torch.random.fork_rng(devices=cuda):
+                return _tune(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume, epochs=epochs,
+                             lr=lr, batch_size=batch_size, seed=seed, quiet=quiet, weights=weights, kwargs=kwargs,
+                             input_shape=input_shape, allow_partial=allow_partial, trust_pickle=trust_pickle,
+                             leaves=leaves, workers=workers, reference=reference, progress=progress,
+                             stop_after_steps=stop_after_steps)
         finally:
             _set_deterministic(previous)
     finally:
@@ -430,10 +435,16 @@ def _tune(ctx, *, model, recipe, data, out, resume, epochs, lr, batch_size, seed
         )
 
     # ---- the model
+    from .training.batches import mix
+
     caller_owned = not isinstance(model, (str, os.PathLike))
-    src = load_source(model if not isinstance(model, os.PathLike) else os.fspath(model), weights=weights,
-                      kwargs=kwargs, input_shape=input_shape, allow_partial=allow_partial,
-                      trust_pickle=trust_pickle, leaves=leaves, warn_random=ckpt is None and info is None)
+    with torch.random.fork_rng(devices=[]):
+        # a model built from a spec without weights starts from the recipe seed's
+        # random init, so one seed gives one run; the caller's RNG is left as it was
+        torch.manual_seed(mix(rec.seed, "init"))
+        src = load_source(model if not isinstance(model, os.PathLike) else os.fspath(model), weights=weights,
+                          kwargs=kwargs, input_shape=input_shape, allow_partial=allow_partial,
+                          trust_pickle=trust_pickle, leaves=leaves, warn_random=ckpt is None and info is None)
     net = src.model
     splice_info = getattr(net, "splice_info", None)
     if caller_owned:  # never train the caller's module in place

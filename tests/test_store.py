@@ -248,6 +248,10 @@ def test_float64_folder_loads_with_float64_warp_grids(builders, tmp_path):
     x = torch.randn(2, 1, 12, 12, dtype=torch.float64)
     with torch.no_grad():
         assert torch.equal(warp(x), x)  # the identity, bit for bit
+    assert all(p.dtype == torch.float64 for p in loaded.parameters())
+    from splice.store import load_base
+
+    assert all(p.dtype == torch.float64 for p in load_base(folder).parameters())  # saved values, not rounded
 
 
 def test_file_sha256_matches_hashlib(tmp_path):

@@ -135,6 +135,26 @@ def test_joint_changes_the_base_and_records_it(tmp_path, spliced):
     assert manifest["tuning"]["base_changed"] is True and manifest["points"][0]["name"] == "input"
 
 
+def test_a_seed_fixes_the_random_init_of_a_model_built_from_a_spec(tmp_path):
+    """One seed, one run: the init of a spec built without weights comes from the recipe seed,
+    and the caller's RNG is left as it was."""
+    recipe = _recipe("baseline", epochs=1)
+
+    def trained(name, seed):
+        tune(SPEC, kwargs=KW, input_shape=SHAPE, recipe=recipe, data="digits", out=tmp_path / name, seed=seed,
+             **QUIET)
+        return state_dict_sha256(splice.load(tmp_path / name / "last").state_dict())
+
+    torch.manual_seed(7)
+    expected_next = torch.rand(3)
+    torch.manual_seed(7)
+    first = trained("a", 0)
+    assert torch.equal(torch.rand(3), expected_next)  # tune did not consume the caller's RNG
+    torch.manual_seed(12345)  # a different process state before the second run
+    assert trained("b", 0) == first
+    assert trained("c", 1) != first
+
+
 def test_warp_recipe_on_a_plain_model_explains_insert(tmp_path, base_run):
     with pytest.raises(RecipeError, match=r"trains warps, but .* has none; splice it first, e.g. 'splice insert"):
         tune(str(base_run[0] / "best"), recipe="warp-only", data="digits", out=tmp_path / "a", **QUIET)

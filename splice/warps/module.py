@@ -245,7 +245,9 @@ class Warp(nn.Module):
         h, w = grids.spatial_size(x)
         out = self._sample(x, self.grid(theta, h, w))
         if needs_rounding_correction(self.config.sampler, h, w):
-            out = x + (out - self._sample(x, self._identity_grid(x)))
+            # x + (out - identity resample), in place: the sampler's backward needs
+            # its inputs, not its output, and two full-size temporaries are saved
+            out = out.sub_(self._sample(x, self._identity_grid(x))).add_(x)
         return out
 
     def _sample(self, x: Tensor, grid: Tensor) -> Tensor:
