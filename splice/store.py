@@ -309,6 +309,30 @@ def _on_meta(model: nn.Module) -> bool:
     return any(t.is_meta for t in (*model.parameters(), *model.buffers()))
 
 
+def _adopt(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
+    """``load_state_dict(state, strict=True, assign=True)``, keeping tied tensors tied.
+
+    Assigning gives every state-dict name a tensor of its own; a tensor that
+    sat under several names (tied weights, a module used twice) would come
+    out untied. Each such group is pointed back at one adopted tensor.
+    """
+    groups: dict[int, list[str]] = {}
+    for name, t in model.state_dict(keep_vars=True).items():
+        if isinstance(t, torch.Tensor):
+            groups.setdefault(id(t), []).append(name)
+    model.load_state_dict(state, strict=True, assign=True)
+    for names in (g for g in groups.values() if len(g) > 1):
+        first_owner, _, first_leaf = names[0].rpartition(".")
+        keep = getattr(model.get_submodule(first_owner) if first_owner else model, first_leaf)
+        for name in names[1:]:
+            owner_path, _, leaf = name.rpartition(".")
+            owner = model.get_submodule(owner_path) if owner_path else model
+            if leaf in owner._parameters:
+                owner._parameters[leaf] = keep
+            else:
+                owner._buffers[leaf] = keep
+
+
 def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | None:
     """``model`` (built on the meta device) with ``state`` as its tensors, or ``None`` if that does not cover it.
 
@@ -321,7 +345,7 @@ def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | No
     own = model.state_dict(keep_vars=True)
     if set(own) != set(state) or any(tuple(own[k].shape) != tuple(state[k].shape) for k in own):
         return None
-    model.load_state_dict(state, strict=True, assign=True)
+    _adopt(model, state)
     return None if _on_meta(model) else model
 
 
@@ -406,7 +430,10 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
             f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
             "the folder was written by an incompatible version or edited by hand"
         )
-    model.load_state_dict(state, strict=True, assign=assign)
+    if assign:
+        _adopt(model, state)
+    else:
+        model.load_state_dict(state, strict=True)
     if assign:
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
