@@ -464,7 +464,12 @@ def _ort_session(model, *, optimise: bool = True):
     opts.log_severity_level = 3
     if not optimise:
         opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
-    return ort.InferenceSession(data, opts, providers=["CPUExecutionProvider"])
+    try:
+        return ort.InferenceSession(data, opts, providers=["CPUExecutionProvider"])
+    except Exception as exc:  # onnxruntime raises its own exception types
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise CheckFailed(f"onnxruntime cannot load the exported graph ({first}); try another --opset, "
+                          "or report the model") from None
 
 
 def _run_batches(torch_model, session, feed_name: str, batches, extra: dict, tol, known=None) -> dict:

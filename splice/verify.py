@@ -750,7 +750,7 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
 
 def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
               n_outputs: int | None, reference=None) -> CheckResult:
-    from .errors import SpliceError
+    from .errors import CheckFailed, SpliceError
     from .export import check_onnx_graph, export_onnx_bytes, onnx_parity
 
     twin = model if example.dtype == torch.float32 else copy.deepcopy(model).float()
@@ -764,7 +764,7 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
             result = check_onnx_graph(twin, x, opset=opset, reference=reference)
         except SpliceError:
             # a model whose forward reads its tensors in ways the feeding cannot
-            # follow: check a self-contained graph instead
+            # follow (or a graph onnxruntime refuses): check a self-contained graph instead
             fed = False
     if result is None:
         start = time.perf_counter()
@@ -777,8 +777,13 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
             return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed")
         seconds = time.perf_counter() - start
         start = time.perf_counter()
-        result = {**onnx_parity(twin, data, x, references=None if reference is None else [reference]),
-                  "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
+        try:
+            parity = onnx_parity(twin, data, x, references=None if reference is None else [reference])
+        except CheckFailed as exc:
+            return CheckResult("onnx", False, {"opset": opset, "exporter": exporter, "export_seconds": seconds},
+                               str(exc), "onnxruntime failed")
+        result = {**parity, "export_seconds": seconds, "check_seconds": time.perf_counter() - start,
+                  "bytes": len(data)}
     seconds = result["export_seconds"]
     numbers = {"opset": opset, "exporter": exporter, "weights_as_inputs": fed,
                **{k: result[k] for k in ("export_seconds", "check_seconds", "bytes", "max_abs", "max_rel",

@@ -344,3 +344,29 @@ def test_warp_module_is_what_gets_perturbed():
     twin = perturbed_copy(model)
     assert torch.equal(twin.splice_warps["p"].head.final.bias.detach(), perturbation_theta("tps", 3))
     assert torch.count_nonzero(twin.splice_warps["p"].head.final.weight) == 0
+
+
+def test_graph_onnxruntime_refuses_is_a_failed_check(onnx_file, model):
+    """A graph onnxruntime cannot load is a failed check with its reason, not a crash."""
+    import onnx
+
+    path, _ = onnx_file
+    proto = onnx.load(str(path))
+    next(n for n in proto.graph.node if n.op_type == "Relu").op_type = "NoSuchOperator"
+    with pytest.raises(CheckFailed, match="onnxruntime cannot load the exported graph"):
+        onnx_parity(model, proto, torch.randn(1, 1, 48, 48))
+
+
+def test_verify_reports_onnxruntime_refusing_the_graph(tray_folder, monkeypatch):
+    import onnxruntime
+
+    from splice.verify import verify
+
+    def refuse(*args, **kwargs):
+        raise RuntimeError("[ONNXRuntimeError] : 10 : INVALID_GRAPH : made up for this test")
+
+    monkeypatch.setattr(onnxruntime, "InferenceSession", refuse)
+    report = verify(tray_folder, onnx=True)
+    assert report.failed == ["onnx"]
+    assert "onnxruntime cannot load the exported graph" in report["onnx"].detail
+    assert "INVALID_GRAPH" in report["onnx"].detail
