@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -117,3 +118,21 @@ def test_attention_scale_is_bounded(r):
 def test_attention_scale_is_one_only_at_zero():
     assert float(attention_scale(torch.zeros(1))[0]) == 1.0
     assert float(attention_scale(torch.tensor([0.5]))[0]) == float(attention_scale(torch.tensor([-0.5]))[0]) < 1.0
+
+
+@pytest.mark.parametrize("channels,block,shape", [(64, (2, 2), (2, 64, 56, 56)), (32, (2, 4), (1, 32, 40, 70)),
+                                                  (3, (7, 7), (1, 3, 224, 224)), (16, (3, 3), (1, 16, 96, 96))])
+def test_block_mean_is_torch_avg_pool(channels, block, shape):
+    """The head's reducing pool, a depthwise conv on wide inputs, against torch.nn.functional.avg_pool2d
+    (the reference: PyTorch's own average pooling), in float32 and float64."""
+    from splice.warps.head import _BlockMean
+
+    m = _BlockMean(channels, *block)
+    x = torch.randn(*shape, dtype=torch.float64)
+    for dtype in (torch.float32, torch.float64):
+        got = m.to(dtype)(x.to(dtype))
+        want = torch.nn.functional.avg_pool2d(x.to(dtype), block, block)
+        assert got.shape == want.shape
+        torch.testing.assert_close(got, want, rtol=0, atol=4 * torch.finfo(dtype).eps)
+    assert m.depthwise == (channels >= 16 and (block[0] * block[1]) & (block[0] * block[1] - 1) == 0)
+    assert "weight" not in m.state_dict()  # no state: saved folders are unchanged
