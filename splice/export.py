@@ -305,12 +305,42 @@ def _exporting(model: nn.Module, exporter: str, opset: int):
         model.train(was_training)
 
 
+@contextlib.contextmanager
+def _stdout_to_nowhere():
+    """File descriptor 1 sent to /dev/null for the duration (C++ code writes there directly).
+
+    When the TorchScript exporter fails it dumps the whole graph to stdout
+    from C++, which would bury the error and break ``--json`` output; the
+    error itself still arrives as the exception.
+    """
+    import sys
+
+    try:
+        sys.stdout.flush()
+    except (OSError, ValueError):
+        pass
+    fd = 1  # std::cout, whatever Python's sys.stdout is at the moment
+    try:
+        saved = os.dup(fd)
+    except OSError:  # no usable descriptor: leave everything as it is
+        yield
+        return
+    try:
+        with open(os.devnull, "wb") as sink:
+            os.dup2(sink.fileno(), fd)
+            yield
+    finally:
+        os.dup2(saved, fd)
+        os.close(saved)
+
+
 def _torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
                  dynamic_batch: bool, fold_constants: bool) -> bytes:
     buf = io.BytesIO()
     axes = {n: {0: "batch"} for n in [inputs[0], *names]} if dynamic_batch else None
-    torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False, input_names=inputs,
-                      output_names=names, dynamic_axes=axes, do_constant_folding=fold_constants)
+    with _stdout_to_nowhere():
+        torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False, input_names=inputs,
+                          output_names=names, dynamic_axes=axes, do_constant_folding=fold_constants)
     return buf.getvalue()
 
 

@@ -306,6 +306,26 @@ def _safetensors_load(path: Path) -> dict[str, torch.Tensor]:
         ) from None
 
 
+def with_metadata(model: nn.Module, state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
+    """``state`` with the per-module version metadata that ``load_state_dict`` hands to each module.
+
+    Version-aware loaders read ``state_dict._metadata`` (torchvision's MNASNet
+    refuses a state without it; BatchNorm upgrades old states by it). A
+    safetensors file, or any filtered dict, carries none, so the state gets
+    its own metadata back if it had some, else ``model``'s current versions:
+    the weights were written by this architecture.
+    """
+    from collections import OrderedDict
+
+    out = OrderedDict(state)
+    meta = getattr(state, "_metadata", None)
+    if meta is None:
+        meta = getattr(model.state_dict(), "_metadata", None)
+    if meta is not None:
+        out._metadata = meta  # type: ignore[attr-defined]
+    return out
+
+
 def _is_tensor_dict(obj: object) -> bool:
     return isinstance(obj, Mapping) and len(obj) > 0 and all(
         isinstance(k, str) and isinstance(v, torch.Tensor) for k, v in obj.items()
@@ -409,6 +429,9 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
             "pass --allow-partial (allow_partial=True) to load only the tensors that fit"
         )
     usable = {k: v for k, v in state.items() if k in own and k not in mismatched}
+    usable = with_metadata(model, usable)
+    if getattr(state, "_metadata", None) is not None:
+        usable._metadata = state._metadata  # type: ignore[attr-defined]
     model.load_state_dict(usable, strict=False)
     if allow_partial and (missing or unexpected or mismatched):
         warnings.warn(

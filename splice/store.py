@@ -43,6 +43,7 @@ import torch
 from torch import nn
 
 from ._io import atomic_dir, file_sha256, state_dict_sha256
+from .sources import with_metadata
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
 
 __all__ = [
@@ -320,7 +321,7 @@ def _adopt(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
     for name, t in model.state_dict(keep_vars=True).items():
         if isinstance(t, torch.Tensor):
             groups.setdefault(id(t), []).append(name)
-    model.load_state_dict(state, strict=True, assign=True)
+    model.load_state_dict(with_metadata(model, state), strict=True, assign=True)
     for names in (g for g in groups.values() if len(g) > 1):
         first_owner, _, first_leaf = names[0].rpartition(".")
         keep = getattr(model.get_submodule(first_owner) if first_owner else model, first_leaf)
@@ -359,7 +360,7 @@ def _base_from_state(manifest: dict, base_state: Mapping[str, torch.Tensor], *,
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
         model = _rebuild_base(manifest, trust_pickle=trust_pickle)
-        model.load_state_dict(base_state, strict=True)
+        model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
 
@@ -433,7 +434,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     if assign:
         _adopt(model, state)
     else:
-        model.load_state_dict(state, strict=True)
+        model.load_state_dict(with_metadata(model, state), strict=True)
     if assign:
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)

@@ -370,3 +370,16 @@ def test_verify_reports_onnxruntime_refusing_the_graph(tray_folder, monkeypatch)
     assert report.failed == ["onnx"]
     assert "onnxruntime cannot load the exported graph" in report["onnx"].detail
     assert "INVALID_GRAPH" in report["onnx"].detail
+
+
+def test_failed_export_keeps_stdout_clean(capfd):
+    """The TorchScript exporter dumps its whole graph to stdout from C++ when it fails; the error alone remains."""
+
+    class Unexportable(torch.nn.Module):
+        def forward(self, x):  # 5 -> 3 is not a whole factor: the TorchScript exporter refuses it
+            return torch.nn.functional.adaptive_avg_pool2d(x, 3)
+
+    with pytest.raises(SpliceError, match="ONNX export .* failed"):
+        export_onnx_bytes(Unexportable(), torch.randn(1, 2, 5, 5))
+    out, _ = capfd.readouterr()
+    assert "Torch IR graph" not in out and out == ""

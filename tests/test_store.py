@@ -318,3 +318,16 @@ def test_tied_weights_stay_tied_through_save_and_load(builders, tmp_path):
         loaded.conv2.weight.add_(1.0)  # still one tensor: the change shows under both names
     assert torch.equal(loaded.conv3.weight, loaded.conv2.weight)
     assert verify(folder, onnx=True).passed
+
+
+def test_version_aware_loader_gets_its_metadata(tmp_path):
+    """torchvision's MNASNet refuses a state dict without per-module versions (its _load_from_state_dict);
+    safetensors keeps none, so the rebuild hands the architecture's own versions back."""
+    from splice.store import load_base
+    from splice.verify import verify
+
+    src = splice.load_source("torchvision:mnasnet0_5", input_shape=(3, 64, 64), warn_random=False)
+    folder = splice.save(insert(src, at="input"), tmp_path / "mnas")
+    assert splice.load(folder) is not None
+    assert load_base(folder) is not None
+    assert verify(folder).passed
