@@ -70,7 +70,6 @@ __all__ = [
     "perturbation_theta",
     "perturbed_copy",
     "final_layer",
-    "head_tensors",
 ]
 
 # GridSample (the op a warp's sampler lowers to) entered the ONNX standard at
@@ -221,12 +220,6 @@ class _WeightsAsInputs(nn.Module):
         if self.keep_output:
             self.output = out  # a reference only: the tracer records no operation for it
         return out
-
-
-def head_tensors(model: nn.Module) -> dict[str, torch.Tensor]:
-    """``{name: value}`` of every warp head's final weight and bias, as they are in ``model``."""
-    params = dict(model.named_parameters())
-    return {name: params[name].detach() for name in _perturbed_tensors(model)}
 
 
 # ----------------------------------------------------------------------------- exporting
@@ -416,26 +409,13 @@ def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17
         traced = _detached(target.output)
     seconds = time.perf_counter() - start
     start = time.perf_counter()
-    was_training = model.training
-    model.eval()
-    try:
-        # op for op: with the weights fed there is nothing for onnxruntime to fold
-        # or fuse ahead of time, and the file that ships is checked by export()
-        session = _ort_session(data, optimise=False)
-        image = session.get_inputs()[0].name
-        state = model.state_dict(keep_vars=True)
-        feeds = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[1:]}
-        if not swapped and reference is None:
-            reference = traced  # traced as stored: the tracer's pass is the stored model's output
-        stored = _run_batches(model, session, image, [example], feeds, tol,
-                              [reference] if reference is not None else None)
-        perturbed = None
-        if swapped:
-            perturbed = _run_batches(None, session, image, [example], _perturbed_feeds(feeds, swapped), tol,
-                                     [traced])
-    finally:
-        model.train(was_training)
-    result = _summary(stored, perturbed, tol, [int(example.shape[0])], "feeds" if swapped else None)
+    if not swapped and reference is None:
+        reference = traced  # traced as stored: the tracer's pass is the stored model's output
+    # op for op: with the weights fed there is nothing for onnxruntime to fold
+    # or fuse ahead of time, and the file that ships is checked by export()
+    result = _parity_with_weight_inputs(model, data, [example], perturb=bool(swapped), tol=tol,
+                                        references=None if reference is None else [reference],
+                                        perturbed_references=[traced], optimise=False)
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
 
 
@@ -637,10 +617,8 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     batches = _as_batches(inputs)
     if references is not None and len(references) != len(batches):
         raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
-    fed = _weight_inputs(proto, model)
-    if fed:
-        return _parity_with_weight_inputs(model, proto, fed, batches, perturb=perturb, tol=tol,
-                                          references=references)
+    if _weight_inputs(proto, model):
+        return _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references)
     if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
         proto = onnx.ModelProto()
         proto.CopyFrom(onnx_model)
@@ -696,12 +674,17 @@ def _weight_inputs(proto, model: nn.Module) -> list[str]:
     return extra if all(n in state for n in extra) else []
 
 
-def _parity_with_weight_inputs(model, proto, names: list[str], batches, *, perturb: bool, tol,
-                               references) -> dict:
-    state = model.state_dict(keep_vars=True)
-    own = {n: state[n].detach().cpu().numpy() for n in names}
-    session = _ort_session(proto)
+def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, references,
+                               perturbed_references=None, optimise: bool = True) -> dict:
+    """One session of a weights-as-inputs graph, fed ``model``'s tensors, then the perturbed head tensors.
+
+    ``perturbed_references`` may hold the perturbed model's outputs when the
+    caller has them (the tracer's pass in :func:`check_onnx_graph`).
+    """
+    session = _ort_session(graph, optimise=optimise)
     image = session.get_inputs()[0].name
+    state = model.state_dict(keep_vars=True)
+    own = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[1:] if i.name in state}
     was_training = model.training
     model.eval()
     try:
@@ -709,8 +692,9 @@ def _parity_with_weight_inputs(model, proto, names: list[str], batches, *, pertu
         perturbed = None
         values = _perturbed_tensors(model) if perturb else {}
         if values:
-            perturbed = _run_batches(perturbed_copy(model), session, image, batches, _perturbed_feeds(own, values),
-                                     tol)
+            twin = perturbed_copy(model) if perturbed_references is None else None
+            perturbed = _run_batches(twin, session, image, batches, _perturbed_feeds(own, values), tol,
+                                     perturbed_references)
     finally:
         model.train(was_training)
     return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], "feeds" if perturbed else None)

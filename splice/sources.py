@@ -428,10 +428,9 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
             f"{where} does not match {spec} ({'; '.join(parts)}); "
             "pass --allow-partial (allow_partial=True) to load only the tensors that fit"
         )
-    usable = {k: v for k, v in state.items() if k in own and k not in mismatched}
-    usable = with_metadata(model, usable)
-    if getattr(state, "_metadata", None) is not None:
-        usable._metadata = state._metadata  # type: ignore[attr-defined]
+    usable = with_metadata(model, state)
+    for k in [k for k in usable if k not in own or k in mismatched]:
+        del usable[k]
     model.load_state_dict(usable, strict=False)
     if allow_partial and (missing or unexpected or mismatched):
         warnings.warn(

@@ -431,11 +431,10 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
             f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
             "the folder was written by an incompatible version or edited by hand"
         )
-    if assign:
-        _adopt(model, state)
-    else:
+    if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
-    if assign:
+    else:
+        _adopt(model, state)
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
             if p is not None and (p.dtype != warp.base_grid.dtype or p.device != warp.base_grid.device):

@@ -440,7 +440,8 @@ def _tune(ctx, *, model, recipe, data, out, resume, epochs, lr, batch_size, seed
     caller_owned = not isinstance(model, (str, os.PathLike))
     with torch.random.fork_rng(devices=[]):
         # a model built from a spec without weights starts from the recipe seed's
-        # random init, so one seed gives one run; the caller's RNG is left as it was
+        # random init, so one seed gives one run; the rest of the run does not see
+        # this seeding (tune() restores the caller's RNG when the run ends)
         torch.manual_seed(mix(rec.seed, "init"))
         src = load_source(model if not isinstance(model, os.PathLike) else os.fspath(model), weights=weights,
                           kwargs=kwargs, input_shape=input_shape, allow_partial=allow_partial,

@@ -148,7 +148,7 @@ class _BlockMean(nn.Module):
 
     On a wide input (16 channels or more) with a power-of-two block area it
     runs as a depthwise convolution whose weights are all ``1 / (kh kw)``:
-    exact in every float dtype, the same sums, and on the CPU about five
+    exact in every float dtype, the same average up to summation order, and on the CPU about five
     times faster than ``avg_pool2d`` for 2x2 blocks on 64 channels (measured
     with torch 2.14: 0.2 ms against 1.1 ms at 8x64x56x56). Otherwise, where
     ``avg_pool2d`` is the faster (few channels, e.g. a warp on the image),
