@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
+import math
 import os
 import shutil
 import tempfile
@@ -22,6 +23,7 @@ __all__ = [
     "atomic_dir",
     "file_sha256",
     "state_dict_sha256",
+    "json_safe",
 ]
 
 
@@ -65,9 +67,31 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
     return atomic_write_bytes(path, text.encode("utf-8"))
 
 
+def json_safe(value: object) -> object:
+    """``value`` as plain JSON data: the one policy for what JSON cannot hold.
+
+    Non-finite floats become the strings ``"inf"``, ``"-inf"`` and ``"nan"``
+    (JSON has no such numbers, and ``null`` would hide which one it was);
+    mappings get string keys, tuples become lists, and any other object
+    (a dtype, a path) its ``str``.
+    """
+    if isinstance(value, Mapping):
+        return {str(k): json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [json_safe(v) for v in value]
+    if isinstance(value, bool) or value is None or isinstance(value, (int, str)):
+        return value
+    if isinstance(value, float):
+        return value if math.isfinite(value) else str(value)
+    if hasattr(value, "item") and getattr(value, "ndim", None) == 0:  # numpy / torch scalars
+        return json_safe(value.item())
+    text = str(value)
+    return text.removeprefix("torch.") if text.startswith("torch.") and " " not in text else text
+
+
 def atomic_write_json(path: str | os.PathLike, obj: object) -> Path:
-    """Write ``obj`` as indented, key-sorted JSON, atomically."""
-    return atomic_write_text(path, json.dumps(obj, indent=2, sort_keys=True) + "\n")
+    """Write ``obj`` as indented, key-sorted JSON (through :func:`json_safe`), atomically."""
+    return atomic_write_text(path, json.dumps(json_safe(obj), indent=2, sort_keys=True) + "\n")
 
 
 @contextlib.contextmanager

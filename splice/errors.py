@@ -9,6 +9,7 @@ do*.
 from __future__ import annotations
 
 import difflib
+import os
 from collections.abc import Iterable
 
 __all__ = [
@@ -26,6 +27,8 @@ __all__ = [
     "SpliceWarning",
     "RandomWeightsWarning",
     "suggest",
+    "closest",
+    "first_line",
 ]
 
 
@@ -81,9 +84,33 @@ class RandomWeightsWarning(SpliceWarning):
     """The model was built without trained weights; its outputs mean nothing for accuracy."""
 
 
+def first_line(exc: BaseException) -> str:
+    """The first non-empty line of ``str(exc)``, or the exception's class name when it has no message."""
+    for line in str(exc).strip().splitlines():
+        if line.strip():
+            return line.strip()
+    return type(exc).__name__
+
+
+def closest(word: str, choices: Iterable[str], n: int = 3, cutoff: float = 0.0) -> list[str]:
+    """The ``n`` choices most like ``word``, best first, each at least ``cutoff`` similar.
+
+    Similarity is difflib's ratio; ties go to the longer shared prefix, then to
+    the order of ``choices`` (graph order for point names). difflib alone breaks
+    ties alphabetically, so 'layer1_relu' would suggest 'layer4_1_relu' before
+    'layer1_0_relu'.
+    """
+    scored = []
+    for index, candidate in enumerate(choices):
+        ratio = difflib.SequenceMatcher(None, word, candidate).ratio()
+        if ratio >= cutoff:
+            scored.append((-ratio, -len(os.path.commonprefix([word, candidate])), index, candidate))
+    return [item[-1] for item in sorted(scored)[:n]]
+
+
 def suggest(word: str, choices: Iterable[str], n: int = 3) -> str:
-    """Return ``"; did you mean 'a', 'b'?"`` for close matches, or ``""``."""
-    close = difflib.get_close_matches(word, list(choices), n=n, cutoff=0.5)
+    """Return ``"; did you mean 'a', 'b'?"`` for close matches (see :func:`closest`), or ``""``."""
+    close = closest(word, choices, n=n, cutoff=0.5)
     if not close:
         return ""
     return "; did you mean " + ", ".join(repr(c) for c in close) + "?"
