@@ -20,6 +20,16 @@ __all__ = ["main", "build_parser"]
 EXIT_OK, EXIT_CHECK_FAILED, EXIT_USAGE = 0, 1, 2
 
 
+# ----------------------------------------------------------------------------- parser errors
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a usage error is one line plus a pointer to ``--help`` (exit 2)."""
+
+    def error(self, message: str):  # noqa: D401 - argparse's hook
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}; see '{self.prog} --help'\n")
+
+
 # ----------------------------------------------------------------------------- consoles
 
 
@@ -33,9 +43,11 @@ def _console(stderr: bool = False):
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
-    text = str(message).replace("\n", " ")
+    from rich.markup import escape
+
+    text = " ".join(str(message).split())
     try:
-        _console(stderr=True).print(f"[bold yellow]warning:[/] {text}", markup=True, highlight=False)
+        _console(stderr=True).print(f"[bold yellow]warning:[/] {escape(text)}", markup=True, highlight=False)
     except Exception:  # pragma: no cover - never let a warning crash the command
         print(f"warning: {text}", file=sys.stderr)
 
@@ -209,25 +221,15 @@ def _cmd_demo(args) -> int:
 # ----------------------------------------------------------------------------- parser
 
 
-def build_parser() -> argparse.ArgumentParser:
-    from . import __version__
-
-    parser = argparse.ArgumentParser(
-        prog="splice",
-        description="Insert learned warp modules (spatial transformers) into trained CNNs, "
-                    "prove identity equivalence, and fine-tune them.",
-    )
-    parser.add_argument("--version", action="version", version=f"splice {__version__}")
-    parser.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    sub.required = True
-
+def _parser_points(sub) -> None:
     p = sub.add_parser("points", help="list where a warp can go")
     _add_model_options(p)
     p.add_argument("--all", action="store_true", help="list every 4-D activation, not just those between convs")
     p.add_argument("--json", action="store_true", help="print the listing as JSON (schema in the README)")
     p.set_defaults(func=_cmd_points)
 
+
+def _parser_insert(sub) -> None:
     p = sub.add_parser("insert", help="splice identity-initialised warps into a model and save it")
     _add_model_options(p)
     p.add_argument("--at", action="append", required=True, metavar="POINT",
@@ -244,6 +246,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="write even if the identity check fails")
     p.set_defaults(func=_cmd_insert)
 
+
+def _parser_verify(sub) -> None:
     p = sub.add_parser("verify", help="prove a spliced folder equals its base at the identity")
     p.add_argument("folder", metavar="DIR")
     p.add_argument("--images", metavar="FOLDER", help="also probe with the images in FOLDER")
@@ -258,6 +262,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
     p.set_defaults(func=_cmd_verify)
 
+
+def _parser_export(sub) -> None:
     p = sub.add_parser("export", help="export a spliced folder and check the copy's parity")
     p.add_argument("folder", metavar="DIR")
     p.add_argument("--onnx", metavar="FILE", help="write an ONNX file")
@@ -269,6 +275,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
     p.set_defaults(func=_cmd_export)
 
+
+def _parser_tune(sub) -> None:
     p = sub.add_parser("tune", help="fine-tune with a shipped recipe (torchrun for several processes)")
     _add_model_options(p, optional=True)
     p.add_argument("--recipe", metavar="NAME|FILE",
@@ -288,6 +296,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.set_defaults(func=_cmd_tune)
 
+
+def _parser_inspect(sub) -> None:
     p = sub.add_parser("inspect", help="show what the warps learned")
     p.add_argument("folder", metavar="DIR")
     p.add_argument("--data", required=True, metavar="NAME|DIR")
@@ -297,6 +307,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
     p.set_defaults(func=_cmd_inspect)
 
+
+def _parser_eval(sub) -> None:
     p = sub.add_parser("eval", help="accuracy on clean data and under distortion sweeps")
     _add_model_options(p)
     p.add_argument("--data", required=True, metavar="NAME|DIR")
@@ -310,24 +322,50 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=_cmd_eval)
 
+
+def _parser_demo(sub) -> None:
     p = sub.add_parser("demo", help="run the whole job on the embedded tray-camera digits")
     p.add_argument("--out", default="splice-demo", metavar="DIR")
     p.add_argument("--fast", action="store_true", help="a shorter run (about a minute)")
     p.add_argument("--quiet", action="store_true")
     p.set_defaults(func=_cmd_demo)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    parser = _Parser(
+        prog="splice",
+        description="Insert learned warp modules (spatial transformers) into trained CNNs, "
+                    "prove identity equivalence, and fine-tune them.",
+    )
+    parser.add_argument("--version", action="version", version=f"splice {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+    _parser_points(sub)
+    _parser_insert(sub)
+    _parser_verify(sub)
+    _parser_export(sub)
+    _parser_tune(sub)
+    _parser_inspect(sub)
+    _parser_eval(sub)
+    _parser_demo(sub)
     for sp in sub.choices.values():  # `splice CMD ... --debug` works as well as `splice --debug CMD`
         sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show full tracebacks")
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    from .errors import CheckFailed, SpliceError, SpliceWarning
+    from .errors import CheckFailed, SpliceError, SpliceWarning, first_line
 
     parser = build_parser()
     args = parser.parse_args(argv)
     warnings.showwarning = _show_warning
     if not args.debug:
+        # every warning splice itself raises reaches the user (one line each); third-party noise does not
         warnings.filterwarnings("ignore")
+        warnings.filterwarnings("default", module=r"splice(\.|$)")
         warnings.filterwarnings("default", category=SpliceWarning)
     try:
         return int(args.func(args) or 0)
@@ -352,8 +390,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except Exception as exc:  # a bug: still one line, but say so
         if args.debug:
             raise
-        first = str(exc).splitlines()[0] if str(exc) else ""
-        print(f"splice {args.command}: internal error: {type(exc).__name__}: {first} "
+        print(f"splice {args.command}: internal error: {type(exc).__name__}: {first_line(exc)} "
               "(rerun with --debug for the traceback and please report it)", file=sys.stderr)
         return EXIT_USAGE
 
