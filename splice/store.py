@@ -258,7 +258,7 @@ def _read_checked_weights(folder: Path, manifest: dict) -> dict[str, torch.Tenso
     model lives long, so its tensors are copied out of the mapping (still far
     cheaper than the random init it replaces).
     """
-    from .sources import _safetensors_load
+    from .sources import read_safetensors
 
     path = folder / manifest["weights"]["file"]
     if not path.is_file():
@@ -270,7 +270,7 @@ def _read_checked_weights(folder: Path, manifest: dict) -> dict[str, torch.Tenso
             f"(recorded {manifest['weights']['sha256'][:12]}…, found {actual[:12]}…); the weights were "
             "changed or damaged after saving — restore the folder from a good copy"
         )
-    return {k: v.clone() for k, v in _safetensors_load(path).items()}
+    return {k: v.clone() for k, v in read_safetensors(path).items()}
 
 
 def _rebuild_base(manifest: dict, *, trust_pickle: bool = False) -> nn.Module:

@@ -1018,7 +1018,7 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     """
     from ._io import file_sha256
     from .errors import WeightsError
-    from .sources import _safetensors_load
+    from .sources import read_safetensors
     from .store import MANIFEST_NAME, _assembled, _base_from_state, _base_part, _empty_base, _frame, read_manifest
 
     lap = _Laps()
@@ -1066,7 +1066,7 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
         return VerifyReport(rows, meta)
     # the tensors stay backed by the mapped file (safetensors maps it): both models
     # live only as long as this call, so they are not copied out as load() does
-    state = _safetensors_load(weights)
+    state = read_safetensors(weights)
     lap("integrity")
     rows.append(_finite_row(state, f"'{weights}'"))
     lap("finite")

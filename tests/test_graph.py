@@ -292,20 +292,43 @@ def test_fallback_numbers_repeat_calls():
     assert names == ["input", "conv", "block_0", "block_1", "block", "conv_1"]
 
 
-def test_register_leaf(monkeypatch):
-    monkeypatch.setattr(graph, "_registered_types", set())
-    monkeypatch.setattr(graph, "_registered_names", set())
-    graph.register_leaf("test_graph._ShapeGate")
-    with warnings.catch_warnings():
-        warnings.simplefilter("error")
-        pts = _by_name(points(_Gated(_ShapeGate()), (3, 8, 8)))
-    assert pts["gate"].shape == (4, 4, 4)
-    graph.register_leaf(_ValueGate)
-    assert "gate" in _by_name(points(_Gated(_ValueGate()), (3, 8, 8)))
+def test_register_leaf():
+    # leaves_added() with no types only scopes the registry: what register_leaf adds inside is gone after
+    with graph.leaves_added():
+        graph.register_leaf("test_graph._ShapeGate")
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            pts = _by_name(points(_Gated(_ShapeGate()), (3, 8, 8)))
+        assert pts["gate"].shape == (4, 4, 4)
+        graph.register_leaf(_ValueGate)
+        assert "gate" in _by_name(points(_Gated(_ValueGate()), (3, 8, 8)))
+    with pytest.raises(GraphError, match=r"module 'gate' \(_ValueGate\)"):
+        points(_Gated(_ValueGate()), (3, 8, 8))
     with pytest.raises(GraphError, match=r"register_leaf: a leaf must be an nn.Module subclass.*got 3 \(int\)"):
         graph.register_leaf(3)
     with pytest.raises(GraphError, match=r"leaves: a leaf must be .*got 'not a name'"):
         points(_Residual(), (3, 8, 8), leaves=["not a name"])
+
+
+def test_leaves_added_is_scoped():
+    with graph.leaves_added(_ValueGate, "test_graph._ShapeGate"):
+        assert "gate" in _by_name(points(_Gated(_ValueGate()), (3, 8, 8)))
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            assert _by_name(points(_Gated(_ShapeGate()), (3, 8, 8)))["gate"].cut
+    with pytest.warns(TraceFallbackWarning, match=r"module 'gate' \(_ShapeGate\)"):
+        points(_Gated(_ShapeGate()), (3, 8, 8))
+    with pytest.raises(GraphError, match=r"module 'gate' \(_ValueGate\)"):
+        graph.trace(_Gated(_ValueGate()))
+    # the registry is restored when the block raises, too
+    with pytest.raises(RuntimeError, match="inside"):
+        with graph.leaves_added(_ValueGate):
+            raise RuntimeError("inside")
+    with pytest.raises(GraphError, match=r"module 'gate' \(_ValueGate\)"):
+        graph.trace(_Gated(_ValueGate()))
+    with pytest.raises(GraphError, match=r"leaves_added: a leaf must be .*got 3 \(int\)"):
+        with graph.leaves_added(3):
+            pass
 
 
 def test_default_leaves_are_types():
@@ -427,6 +450,10 @@ def test_bad_input_shape_and_model():
         points(_Residual(), (3, 224))
     with pytest.raises(GraphError, match=r"input_shape must be .*got \(3, 0, 8\)"):
         points(_Residual(), (3, 0, 8))
+    # the same rule as splice.sources.parse_input_shape: no floats, no bools; text is for the front doors
+    for bad in [(3.0, 8, 8), (True, 8, 8), "3x8x8", None]:
+        with pytest.raises(GraphError, match=r"input_shape must be \(C, H, W\) with three positive ints"):
+            points(_Residual(), bad)
     with pytest.raises(GraphError, match=r"points\(\) needs a torch.nn.Module, got str"):
         points("resnet18", (3, 8, 8))
     with pytest.raises(GraphError, match=r"failed at point 'stem' \(module 'stem' \(Conv2d\)\) for input shape "

@@ -15,7 +15,7 @@ from torch import nn
 from splice._io import state_dict_sha256
 from splice.cli import main
 from splice.errors import RandomWeightsWarning, SourceError, UnsafeCheckpointError, WeightsError
-from splice.sources import load_source, parse_input_shape, read_weights
+from splice.sources import load_source, parse_input_shape, read_safetensors, read_weights
 
 
 def _small_state():
@@ -171,6 +171,29 @@ def test_whole_module_pickle_needs_trust(tmp_path):
 def test_malformed_input_shape(text):
     with pytest.raises(SourceError, match="malformed input shape"):
         parse_input_shape(text)
+
+
+def test_input_shape_rule_for_sequences():
+    assert parse_input_shape([3, 224, 224]) == (3, 224, 224)
+    assert parse_input_shape(torch.Size([1, 48, 48])) == (1, 48, 48)
+    assert parse_input_shape(None) is None
+    # bools and non-integral numbers are refused, never rounded
+    for bad in [(3.5, 8, 8), (3.0, 8, 8), (True, 8, 8), (3, 8), (3, 0, 8), 3]:
+        with pytest.raises(SourceError, match="malformed input shape"):
+            parse_input_shape(bad)
+
+
+def test_read_safetensors_round_trip(tmp_path):
+    from safetensors.torch import save_file
+
+    state = {k: v.contiguous() for k, v in _small_state().items()}
+    path = tmp_path / "w.safetensors"
+    save_file(state, str(path))
+    back = read_safetensors(str(path))
+    assert set(back) == set(state) and all(torch.equal(back[k], state[k]) for k in state)
+    path.write_bytes(path.read_bytes()[:300])
+    with pytest.raises(WeightsError, match="not a readable safetensors file"):
+        read_safetensors(path)
 
 
 def test_nan_weights_named(tmp_path):

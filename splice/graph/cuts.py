@@ -1,0 +1,133 @@
+"""Cut analysis: which points every input-to-output path passes through.
+
+The data-flow graph runs from the input to the output node (which gathers
+every model output). A point is a *cut* when every path from the input to the
+outputs passes through it: it dominates the output node and post-dominates
+the input (Cooper, Harvey & Kennedy's iterative dominator algorithm, forwards
+and backwards). A point that is not a cut but lies between a fork and the cut
+where the paths meet again is *in a branch*; its *join* is that meeting node
+(the ``add`` of a residual block, the ``cat`` of a dense block). A point whose
+paths only meet at the model outputs (one head of a two-headed model) is
+neither.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import torch
+import torch.fx as fx
+
+__all__: list[str] = []
+
+_SOURCE = object()  # virtual source when a graph has several tensor inputs
+
+
+def _has_tensor(value: Any) -> bool:
+    if isinstance(value, torch.Tensor):
+        return True
+    if isinstance(value, (list, tuple)):
+        return any(_has_tensor(v) for v in value)
+    if isinstance(value, dict):
+        return any(_has_tensor(v) for v in value.values())
+    return False
+
+
+def _dominators(order: list, preds: dict, root: Any) -> dict:
+    """Immediate dominators over a DAG given in topological order (Cooper, Harvey & Kennedy).
+
+    The topological index plays the role of the reverse-postorder number: a
+    dominator always comes earlier, so ``intersect`` walks the later finger up.
+    """
+    index = {n: i for i, n in enumerate(order)}
+    idom = {root: root}
+
+    def intersect(a, b):
+        while a is not b:
+            while index[a] > index[b]:
+                a = idom[a]
+            while index[b] > index[a]:
+                b = idom[b]
+        return a
+
+    changed = True
+    while changed:
+        changed = False
+        for n in order:
+            if n is root:
+                continue
+            done = [p for p in preds[n] if p in idom]
+            new = done[0]
+            for p in done[1:]:
+                new = intersect(p, new)
+            if idom.get(n) is not new:
+                idom[n] = new
+                changed = True
+    return idom
+
+
+def _cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.Node], dict[fx.Node, fx.Node]]:
+    """Return the cut nodes and, for each non-cut node on an input-to-output path, its join.
+
+    Only nodes that carry tensors count (shape queries such as ``x.size(0)`` are
+    not data flow), get_attr constants are ignored, and so are nodes that are
+    not reachable from an input or do not reach the output node (the sink).
+    """
+    sink = next(n for n in reversed(graph.nodes) if n.op == "output")
+    carries = {n for n in graph.nodes if n.op not in ("get_attr", "output") and _has_tensor(values.get(n))}
+    sources = [n for n in graph.nodes if n.op == "placeholder" and n in carries]
+    reach = set(sources)
+    for n in graph.nodes:
+        if n in carries and n not in reach and any(p in reach for p in n.all_input_nodes):
+            reach.add(n)
+    live = {sink}
+    for n in reversed(graph.nodes):
+        if n in reach and any(u in live for u in n.users):
+            live.add(n)
+    order: list[Any] = [n for n in graph.nodes if n in reach and n in live]
+    if not order or not any(p in live for p in sink.all_input_nodes):
+        return set(), {}
+    members = set(order)
+    preds: dict[Any, list] = {n: [p for p in n.all_input_nodes if p in members] for n in order}
+    preds[sink] = [p for p in sink.all_input_nodes if p in members]
+    order.append(sink)
+    roots = [n for n in order if n.op == "placeholder"]
+    if len(roots) == 1:
+        root = roots[0]
+    else:
+        root = _SOURCE
+        order.insert(0, _SOURCE)
+        preds[_SOURCE] = []
+        for r in roots:
+            preds[r] = [_SOURCE]
+    succs: dict[Any, list] = {n: [] for n in order}
+    for n in order:
+        for p in preds[n]:
+            succs[p].append(n)
+
+    idom = _dominators(order, preds, root)
+    ipdom = _dominators(order[::-1], succs, sink)
+    dominate_sink = {sink}
+    n = sink
+    while n is not root:
+        n = idom[n]
+        dominate_sink.add(n)
+    postdominate_source = {root}
+    n = root
+    while n is not sink:
+        n = ipdom[n]
+        postdominate_source.add(n)
+    cuts = (dominate_sink & postdominate_source) - {_SOURCE}
+    cuts.add(sink)
+
+    joins: dict[fx.Node, fx.Node] = {}
+    for n in order:
+        if n is _SOURCE or n in cuts:
+            continue
+        p = ipdom[n]
+        while p not in cuts:
+            p = ipdom[p]
+        if p is not sink:
+            joins[n] = p
+    cuts.discard(sink)
+    return cuts, joins

@@ -1,0 +1,116 @@
+"""From a traced graph with meta values to point entries: 4-D NCHW activations, convs around them.
+
+An entry is an (N, C, H, W) activation (tensors that a permute or transpose
+turned channels-last, as in convnext blocks, are not entries) with its cut
+and join, and whether it sits between convolutions (a conv upstream or the
+node itself, and a conv downstream). :mod:`splice.graph.listing` turns
+entries into :class:`~splice.graph.Point` records.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+import torch.fx as fx
+from torch import nn
+
+from .cuts import _cut_analysis
+from .naming import _enclosing_module, _point_names
+
+__all__: list[str] = []
+
+_CONV_MODULES = (nn.Conv2d, nn.ConvTranspose2d)
+_CONV_FUNCTIONS = frozenset({torch.conv2d, torch.nn.functional.conv2d, torch.conv_transpose2d,
+                             torch.nn.functional.conv_transpose2d})
+
+
+@dataclass
+class _Entry:
+    name: str
+    module: str
+    kind: str
+    shape: tuple[int, int, int]
+    cut: bool
+    join: str | None
+    between_convs: bool
+
+
+def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:
+    if node.op == "call_module":
+        mod = modules[node.target]
+        # a leaf that contains a conv counts as one
+        return isinstance(mod, _CONV_MODULES) or (
+            bool(mod._modules) and any(isinstance(m, _CONV_MODULES) for m in mod.modules())
+        )
+    return node.op == "call_function" and node.target in _CONV_FUNCTIONS
+
+
+_NCHW = (0, 1, 2, 3)
+
+
+def _permutation(node: fx.Node) -> tuple[int, ...] | None:
+    """The dims of a permute/transpose node (output dim j = input dim perm[j]), else None."""
+    if node.op not in ("call_method", "call_function"):
+        return None
+    name = node.target if node.op == "call_method" else getattr(node.target, "__name__", "")
+    args = node.args[1:]
+    if name == "permute":
+        dims = args[0] if len(args) == 1 and isinstance(args[0], (list, tuple)) else args
+        if len(dims) == 4 and all(isinstance(d, int) for d in dims):
+            return tuple(d % 4 for d in dims)
+    elif name in ("transpose", "swapaxes", "swapdims") and len(args) == 2 and all(isinstance(d, int) for d in args):
+        perm = list(_NCHW)
+        a, b = args[0] % 4, args[1] % 4
+        perm[a], perm[b] = perm[b], perm[a]
+        return tuple(perm)
+    return None
+
+
+def _layouts(nodes: list[fx.Node], values: dict[fx.Node, Any], is_conv: dict[fx.Node, bool]) -> dict:
+    """For each 4-D node, which input axis each of its axes holds (``_NCHW`` when unpermuted).
+
+    Follows permute/transpose through the graph so that channels-last tensors
+    (a convnext block permutes to N, H, W, C around its LayerNorm and Linear
+    layers) are not taken for (N, C, H, W) points. A conv's output is NCHW.
+    """
+    layout: dict[fx.Node, tuple[int, ...]] = {}
+    for n in nodes:
+        v = values.get(n)
+        if not (isinstance(v, torch.Tensor) and v.dim() == 4):
+            continue
+        source = next((p for p in n.all_input_nodes if p in layout), None)
+        base = layout[source] if source is not None and not is_conv[n] else _NCHW
+        perm = _permutation(n) if source is not None else None
+        layout[n] = tuple(base[d] for d in perm) if perm is not None else base
+    return layout
+
+
+def _graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[fx.Node, Any]) -> list[_Entry]:
+    nodes = list(graph.nodes)
+    is_conv = {n: _is_conv_node(n, modules) for n in nodes}
+    conv_up: dict[fx.Node, bool] = {}  # a conv upstream, or the node itself
+    for n in nodes:
+        conv_up[n] = is_conv[n] or any(conv_up[p] for p in n.all_input_nodes)
+    conv_down: dict[fx.Node, bool] = {}  # a conv strictly downstream
+    for n in reversed(nodes):
+        conv_down[n] = any(is_conv[u] or conv_down[u] for u in n.users)
+    cuts, joins = _cut_analysis(graph, values)
+    names = _point_names(graph)
+    layouts = _layouts(nodes, values, is_conv)
+    entries = []
+    for n in nodes:
+        if n.op in ("get_attr", "output") or layouts.get(n) != _NCHW:
+            continue
+        v = values[n]
+        is_input = n.op == "placeholder" and names[n] == "input"
+        module = n.target if n.op == "call_module" else ("" if is_input else _enclosing_module(n))
+        join = joins.get(n)
+        entries.append(_Entry(
+            name=names[n], module=module, kind="input" if is_input else "activation",
+            shape=tuple(int(s) for s in v.shape[1:]), cut=n in cuts,
+            join=None if join is None else names[join],
+            between_convs=conv_up[n] and conv_down[n],
+        ))
+    return entries

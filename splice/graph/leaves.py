@@ -1,0 +1,143 @@
+"""The leaf registry: module types the tracer keeps as single steps.
+
+A leaf is given as a class or as a dotted ``"pkg.mod.ClassName"`` string (a
+bare ``"ClassName"`` also matches), so that naming a leaf never has to import
+its package. The registry starts as :data:`DEFAULT_LEAVES`, grows with
+:func:`register_leaf` for the rest of the process, or for the length of a
+``with`` block with :func:`leaves_added`; ``leaves=`` extends it for one call.
+"""
+
+from __future__ import annotations
+
+import importlib
+import sys
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from torch import nn
+
+from ..errors import GraphError
+
+__all__ = ["DEFAULT_LEAVES", "register_leaf", "leaves_added"]
+
+# Default leaves are named, not imported, so that tracing never imports torchvision.
+# DEFAULT_LEAVES (the types themselves) is resolved on first access, see __getattr__.
+_DEFAULT_LEAF_NAMES = (
+    # decides per sample whether to drop, from self.training at run time; traced
+    # through, the flag would be frozen into the graph
+    "torchvision.ops.stochastic_depth.StochasticDepth",
+    # one normalisation step, like nn.BatchNorm2d
+    "torchvision.ops.misc.FrozenBatchNorm2d",
+    # a spliced model lists its warps as single steps
+    "splice.warps.module.Warp",
+)
+
+_registered_types: set[type] = set()
+_registered_names: set[str] = set()
+
+
+def _default_leaves() -> tuple[type, ...]:
+    """The types named by ``_DEFAULT_LEAF_NAMES`` whose packages are installed (imports them)."""
+    found = []
+    for path in _DEFAULT_LEAF_NAMES:
+        module_name, _, cls_name = path.rpartition(".")
+        try:
+            found.append(getattr(importlib.import_module(module_name), cls_name))
+        except (ImportError, AttributeError):
+            continue  # the package is not installed: nothing to keep opaque
+    return tuple(found)
+
+
+def __getattr__(name: str):
+    if name == "DEFAULT_LEAVES":
+        value = globals()[name] = _default_leaves()
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def _split_leaves(items: Iterable[Any], what: str) -> tuple[set[type], set[str]]:
+    if isinstance(items, (str, type)):
+        items = (items,)
+    types: set[type] = set()
+    names: set[str] = set()
+    for item in items:
+        if isinstance(item, type) and issubclass(item, nn.Module):
+            types.add(item)
+        elif isinstance(item, str) and item and all(part.isidentifier() for part in item.split(".")):
+            names.add(item)
+        else:
+            raise GraphError(
+                f"{what}: a leaf must be an nn.Module subclass or a class name such as "
+                f"'pkg.mod.ClassName', got {item!r} ({type(item).__name__}); "
+                "pass the module class or its dotted name"
+            )
+    return types, names
+
+
+def register_leaf(*types: type | str) -> None:
+    """Keep modules of these types as single steps in every later trace.
+
+    Each argument is an ``nn.Module`` subclass or a ``"pkg.mod.ClassName"``
+    string (a bare ``"ClassName"`` matches any class of that name). Subclasses
+    of a registered type are leaves too.
+    """
+    new_types, new_names = _split_leaves(types, "register_leaf")
+    _registered_types.update(new_types)
+    _registered_names.update(new_names)
+
+
+@contextmanager
+def leaves_added(*types: type | str) -> Iterator[None]:
+    """Register these leaf types (as :func:`register_leaf` does) for the length of a ``with`` block.
+
+    On leaving the block the registry is put back exactly as it was on
+    entering it; leaves registered inside the block are dropped too.
+    """
+    new_types, new_names = _split_leaves(types, "leaves_added")
+    saved_types, saved_names = set(_registered_types), set(_registered_names)
+    _registered_types.update(new_types)
+    _registered_names.update(new_names)
+    try:
+        yield
+    finally:
+        _registered_types.clear()
+        _registered_types.update(saved_types)
+        _registered_names.clear()
+        _registered_names.update(saved_names)
+
+
+def _class_path(cls: type) -> str:
+    return f"{cls.__module__}.{cls.__qualname__}"
+
+
+class _LeafRule:
+    """Decides whether a module class is a leaf (registry + per-call leaves), with a cache."""
+
+    def __init__(self, leaves: Iterable[Any]):
+        types, names = _split_leaves(leaves, "leaves")
+        self.names = frozenset(_DEFAULT_LEAF_NAMES) | frozenset(_registered_names) | frozenset(names)
+        # a dotted name may be a re-export ('torchvision.ops.StochasticDepth'): if its
+        # module is already imported, match the class it names too
+        for name in self.names:
+            module_name, _, cls_name = name.rpartition(".")
+            found = getattr(sys.modules.get(module_name), cls_name, None) if module_name else None
+            if isinstance(found, type) and issubclass(found, nn.Module):
+                types.add(found)
+        self.types = tuple(_registered_types | types)
+        self._cache: dict[type, bool] = {}
+
+    def __call__(self, cls: type) -> bool:
+        hit = self._cache.get(cls)
+        if hit is None:
+            hit = issubclass(cls, self.types) or any(
+                _class_path(c) in self.names or c.__name__ in self.names
+                for c in cls.__mro__
+                if c is not nn.Module and c is not object
+            )
+            self._cache[cls] = hit
+        return hit
+
+
+def _is_torch_builtin(cls: type) -> bool:
+    return cls.__module__.startswith(("torch.nn", "torch.ao.nn"))

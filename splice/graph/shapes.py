@@ -1,0 +1,289 @@
+"""Shapes on the meta device: one batch-1 propagation through a traced graph.
+
+No activation memory, no arithmetic. Common layers use closed-form shape
+rules; everything else runs its meta kernel. A user-registered leaf that
+cannot run on the meta device (value-dependent control flow) is run once,
+alone, on a CPU copy with an all-zeros input.
+"""
+
+from __future__ import annotations
+
+import copy
+import itertools
+import operator
+from collections.abc import Callable
+from typing import Any
+
+import torch
+import torch.fx as fx
+from torch import nn
+
+from ..errors import GraphError
+from .leaves import _is_torch_builtin
+
+__all__: list[str] = []
+
+_META = torch.device("meta")
+
+
+class _ShapeFailure(Exception):
+    def __init__(self, node: fx.Node, error: BaseException):
+        super().__init__(str(error))
+        self.node = node
+        self.error = error
+
+
+def _meta_module(mod: nn.Module) -> nn.Module:
+    """An eval-mode copy of ``mod`` whose parameters and buffers live on the meta device.
+
+    Tensors are swapped for meta tensors through deepcopy's memo, so no weight
+    data is copied.
+    """
+    memo: dict[int, Any] = {}
+    for t in itertools.chain(mod.parameters(), mod.buffers()):
+        if isinstance(t, (nn.parameter.UninitializedParameter, nn.parameter.UninitializedBuffer)):
+            continue
+        meta = _meta_empty(t.shape, t.dtype)
+        memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
+    copied = copy.deepcopy(mod, memo)
+    copied.eval()
+    return copied
+
+
+def _meta_empty(shape, dtype: torch.dtype) -> torch.Tensor:
+    # torch.empty is a C++ call on meta; torch.empty_like goes through a Python reference and costs ten times more
+    return torch.empty(shape, dtype=dtype, device=_META)
+
+
+def _to_meta(value: Any) -> Any:
+    return _meta_empty(value.shape, value.dtype) if isinstance(value, torch.Tensor) else value
+
+
+def _input_dtype(model: nn.Module) -> torch.dtype:
+    """The dtype of the model's first floating-point parameter or buffer (float32 if none)."""
+    for t in itertools.chain(model.parameters(), model.buffers()):
+        if t.is_floating_point():
+            return t.dtype
+    return torch.float32
+
+
+def _fetch_attr(root: nn.Module, target: str) -> Any:
+    obj: Any = root
+    for part in target.split("."):
+        obj = getattr(obj, part)
+    return obj
+
+
+# Closed-form shape rules for the layers that dominate CNN graphs; their meta
+# kernels are Python decompositions and cost more than the layer's real work at
+# batch size 1. A rule returns None when it does not apply, and the meta kernel
+# runs instead (and reports any error in its own words).
+
+_SAME_SHAPE_MODULES = frozenset({
+    nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish, nn.Hardsigmoid, nn.Sigmoid, nn.Tanh,
+    nn.LeakyReLU, nn.ELU, nn.Mish, nn.Identity, nn.Dropout, nn.Dropout2d,
+})
+
+
+def _conv2d_rule(mod: nn.Conv2d, x: torch.Tensor) -> torch.Tensor | None:
+    if x.dim() != 4 or x.shape[1] != mod.in_channels or x.dtype != mod.weight.dtype:
+        return None
+    n, _, h, w = x.shape
+    if mod.padding == "same":
+        return _meta_empty((n, mod.out_channels, h, w), x.dtype)
+    padding = (0, 0) if mod.padding == "valid" else mod.padding
+    out = []
+    # output size of a convolution: floor((size + 2 pad - dilation (kernel - 1) - 1) / stride) + 1
+    for size, k, s, p, d in zip((h, w), mod.kernel_size, mod.stride, padding, mod.dilation):
+        o = (size + 2 * p - d * (k - 1) - 1) // s + 1
+        if o <= 0:
+            return None
+        out.append(o)
+    return _meta_empty((n, mod.out_channels, *out), x.dtype)
+
+
+def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | None:
+    if kwargs or len(args) != 1 or not isinstance(args[0], torch.Tensor):
+        return None
+    x = args[0]
+    cls = type(mod)
+    if cls in _SAME_SHAPE_MODULES:
+        return _meta_empty(x.shape, x.dtype)
+    if cls is nn.Conv2d:
+        return _conv2d_rule(mod, x)
+    if cls is nn.BatchNorm2d:
+        ok = x.dim() == 4 and x.shape[1] == mod.num_features
+    elif cls is nn.GroupNorm:
+        ok = x.dim() >= 2 and x.shape[1] == mod.num_channels
+    elif cls is nn.LayerNorm:
+        k = len(mod.normalized_shape)
+        ok = x.dim() >= k and tuple(x.shape[x.dim() - k:]) == tuple(mod.normalized_shape)
+    elif cls is nn.Linear:
+        if x.dim() >= 1 and x.shape[-1] == mod.in_features and x.dtype == mod.weight.dtype:
+            return _meta_empty((*x.shape[:-1], mod.out_features), x.dtype)
+        return None
+    elif cls is nn.AdaptiveAvgPool2d and x.dim() in (3, 4):
+        size = mod.output_size
+        size = (size, size) if isinstance(size, int) else size
+        h, w = (o if o is not None else i for o, i in zip(size, x.shape[-2:]))
+        return _meta_empty((*x.shape[:-2], h, w), x.dtype)
+    else:
+        return None
+    return _meta_empty(x.shape, x.dtype) if ok else None
+
+
+def _broadcast(a: tuple[int, ...], b: tuple[int, ...]) -> tuple[int, ...] | None:
+    out = []
+    for x, y in itertools.zip_longest(reversed(a), reversed(b), fillvalue=1):
+        if x != y and x != 1 and y != 1:
+            return None
+        out.append(y if x == 1 else x)
+    return tuple(reversed(out))
+
+
+def _elementwise_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
+    """Out-of-place add, sub, mul: broadcast shape, promoted dtype."""
+    if kwargs or len(args) != 2:
+        return None
+    a, b = args
+    for v in args:
+        if not isinstance(v, (torch.Tensor, int, float, bool)):
+            return None
+    if not (isinstance(a, torch.Tensor) or isinstance(b, torch.Tensor)):
+        return None
+    shape = _broadcast(
+        tuple(a.shape) if isinstance(a, torch.Tensor) else (),
+        tuple(b.shape) if isinstance(b, torch.Tensor) else (),
+    )
+    if shape is None:
+        return None
+    return _meta_empty(shape, torch.result_type(a, b))
+
+
+def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
+    if not args or set(kwargs) - {"dim"} or len(args) > 2:
+        return None
+    tensors = args[0]
+    dim = args[1] if len(args) > 1 else kwargs.get("dim", 0)
+    if not isinstance(tensors, (list, tuple)) or not tensors or not isinstance(dim, int):
+        return None
+    first = tensors[0]
+    if not all(isinstance(t, torch.Tensor) and t.dim() == first.dim() and t.dtype == first.dtype for t in tensors):
+        return None
+    ndim = first.dim()
+    if ndim == 0 or not -ndim <= dim < ndim:
+        return None
+    dim %= ndim
+    shape = list(first.shape)
+    for t in tensors[1:]:
+        if any(a != b for i, (a, b) in enumerate(zip(shape, t.shape)) if i != dim):
+            return None
+        shape[dim] += t.shape[dim]
+    return _meta_empty(shape, first.dtype)
+
+
+_FUNCTION_RULES: dict[Any, Callable[[tuple, dict], torch.Tensor | None]] = {
+    torch.cat: _cat_rule,
+    **dict.fromkeys((operator.add, operator.sub, operator.mul, torch.add, torch.sub, torch.mul), _elementwise_rule),
+}
+_METHOD_RULES: dict[str, Callable[[tuple, dict], torch.Tensor | None]] = dict.fromkeys(
+    ("add", "sub", "mul"), _elementwise_rule
+)
+
+
+def _run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
+    """Run a copy of ``mod`` once on all-zeros inputs of the given meta shapes; return meta outputs."""
+    tensor = next(itertools.chain(mod.parameters(), mod.buffers()), None)
+    device = tensor.device if tensor is not None else torch.device("cpu")
+
+    def real(v):
+        return torch.zeros(v.shape, dtype=v.dtype, device=device) if isinstance(v, torch.Tensor) else v
+
+    with torch.device(device):
+        work = copy.deepcopy(mod)
+        work.eval()
+        out = work(*fx.node.map_aggregate(args, real), **fx.node.map_aggregate(kwargs, real))
+    return fx.node.map_aggregate(out, _to_meta)
+
+
+def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: dict[str, nn.Module]) -> Any:
+    meta_mod = cache.get(target)
+    if meta_mod is None:
+        meta_mod = cache[target] = _meta_module(mod)
+    try:
+        return meta_mod(*args, **kwargs)
+    except Exception:
+        if _is_torch_builtin(type(mod)):
+            raise
+        # a user leaf whose forward needs real values (value-dependent control flow)
+        try:
+            return _run_for_real(mod, args, kwargs)
+        except Exception:
+            pass
+        raise
+
+
+def _propagate(
+    graph: fx.Graph, root: nn.Module, modules: dict[str, nn.Module], input_shape: tuple[int, int, int]
+) -> dict[fx.Node, Any]:
+    """Run ``graph`` on a batch-1 meta tensor; return every node's (meta) value.
+
+    ``modules`` maps qualnames to the modules of ``root``.
+    """
+    meta_modules: dict[str, nn.Module] = {}
+    values: dict[fx.Node, Any] = {}
+    load = values.__getitem__
+    seen_input = False
+    with torch.no_grad():
+        for node in graph.nodes:
+            op = node.op
+            try:
+                if op == "placeholder":
+                    if not seen_input:
+                        value = _meta_empty((1, *input_shape), _input_dtype(root))
+                        seen_input = True
+                    elif node.args:
+                        value = node.args[0]  # an optional argument: its default
+                    else:
+                        raise GraphError(
+                            f"the model's forward takes more than one input (also {node.target!r}); "
+                            "splice lists points of single-input models: wrap the model so that "
+                            "forward(x) takes one tensor"
+                        )
+                elif op == "get_attr":
+                    value = _to_meta(_fetch_attr(root, node.target))
+                elif op == "output":
+                    value = fx.node.map_arg(node.args[0], load)
+                else:
+                    args = fx.node.map_arg(node.args, load)
+                    kwargs = fx.node.map_arg(node.kwargs, load)
+                    if op == "call_module":
+                        mod = modules[node.target]
+                        value = _module_rule(mod, args, kwargs)
+                        if value is None:
+                            value = _run_module(mod, node.target, args, kwargs, meta_modules)
+                    else:
+                        rules = _FUNCTION_RULES if op == "call_function" else _METHOD_RULES
+                        rule = rules.get(node.target)
+                        value = rule(args, kwargs) if rule is not None else None
+                        if value is None:
+                            value = _call(node, args, kwargs)
+            except GraphError:
+                raise
+            except Exception as exc:
+                raise _ShapeFailure(node, exc) from exc
+            values[node] = value
+    return values
+
+
+def _call(node: fx.Node, args: tuple, kwargs: dict) -> Any:
+    fn = node.target if node.op == "call_function" else getattr(args[0], node.target)
+    if node.op == "call_method":
+        args = args[1:]
+    try:
+        return fn(*args, **kwargs)
+    except Exception:
+        # a factory call (torch.zeros(...), torch.arange(...)) made a CPU tensor
+        # that then met a meta one: run the node again with meta as the default device
+        with torch.device(_META):
+            return fn(*args, **kwargs)

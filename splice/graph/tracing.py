@@ -1,0 +1,282 @@
+"""Tracing with torch.fx: the leaf-aware tracer, eval/train comparison, shadow copies.
+
+:func:`trace` runs :mod:`torch.fx` with a tracer that keeps two kinds of module
+as single steps (*leaves*): fx's own rule (modules defined in ``torch.nn``,
+except containers) and the leaf registry (:mod:`splice.graph.leaves`).
+
+The graph is traced in eval mode. Whenever traced code reads a module's
+``training`` flag, the model is traced again in train mode and a
+:class:`TraceModeWarning` is raised if the two graphs differ. Tracing works on
+a private clone of the module tree; the caller's model is never changed.
+"""
+
+from __future__ import annotations
+
+import copy
+import operator
+import warnings
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
+from typing import Any
+
+import torch.fx as fx
+from torch import nn
+
+from ..errors import GraphError, first_line
+from .leaves import _class_path, _LeafRule
+
+__all__ = ["GraphWarning", "TraceModeWarning", "trace"]
+
+
+class GraphWarning(UserWarning):
+    """Something about the traced graph the user should know."""
+
+
+class TraceModeWarning(GraphWarning):
+    """The train-mode and eval-mode graphs of a model differ; splice uses eval mode."""
+
+
+class _Tracer(fx.Tracer):
+    def __init__(self, rule: _LeafRule):
+        super().__init__()
+        self._rule = rule
+        self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
+
+    def is_leaf_module(self, m: nn.Module, module_qualified_name: str) -> bool:
+        return self._rule(type(m)) or super().is_leaf_module(m, module_qualified_name)
+
+    def call_module(self, m, forward, args, kwargs):
+        try:
+            return super().call_module(m, forward, args, kwargs)
+        except Exception:
+            if self.failed_in is None:
+                try:
+                    qualname = self.path_of_module(m)
+                except Exception:
+                    qualname = "?"
+                self.failed_in = (qualname, _original_class(type(m)))
+            raise
+
+
+class _FxFailure(Exception):
+    def __init__(self, error: BaseException, failed_in: tuple[str, type] | None):
+        super().__init__(str(error))
+        self.error = error
+        self.failed_in = failed_in
+
+
+def _run_tracer(root: nn.Module, rule: _LeafRule) -> fx.Graph:
+    tracer = _Tracer(rule)
+    try:
+        return tracer.trace(root)
+    except Exception as exc:
+        raise _FxFailure(exc, tracer.failed_in) from exc
+
+
+def _shadow(model: nn.Module) -> nn.Module:
+    """A clone of the module tree that shares every tensor with ``model``.
+
+    Each module gets its own ``__dict__`` (so flags, class and attributes fx
+    adds can be changed freely) and its own ``_modules`` dict; parameters,
+    buffers and hooks are the caller's objects and are only read.
+    """
+    memo: dict[int, nn.Module] = {}
+
+    def clone(m: nn.Module) -> nn.Module:
+        c = memo.get(id(m))
+        if c is None:
+            c = object.__new__(type(m))
+            c.__dict__.update(m.__dict__)
+            memo[id(m)] = c
+            c.__dict__["_modules"] = {k: (None if v is None else clone(v)) for k, v in m._modules.items()}
+        return c
+
+    return clone(model)
+
+
+def _can_spy(cls: type) -> bool:
+    # creating a subclass runs __init_subclass__ and metaclass code, which may
+    # register the class somewhere: only spy on plain classes
+    return type(cls) is type and not any("__init_subclass__" in c.__dict__ for c in cls.__mro__[:-1])
+
+
+def _original_class(cls: type) -> type:
+    return cls.__dict__.get("_splice_original", cls)
+
+
+@contextmanager
+def _spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
+    """Temporarily give each module a class whose ``training`` property records reads.
+
+    Yields False (and changes nothing) if some module's class cannot take part.
+    """
+
+    def _get(self):
+        reads.append(self)
+        return self.__dict__["training"]
+
+    def _set(self, value):
+        self.__dict__["training"] = value
+
+    classes: dict[type, type] = {}
+    swapped: list[tuple[nn.Module, type]] = []
+    try:
+        ok = all(_can_spy(cls) for cls in {type(m) for m in mods})
+        if ok:
+            for m in mods:
+                cls = type(m)
+                spy = classes.get(cls)
+                if spy is None:
+                    ns = {
+                        "training": property(_get, _set),
+                        "__module__": cls.__module__,
+                        "__qualname__": cls.__qualname__,
+                        "_splice_original": cls,
+                    }
+                    spy = classes[cls] = type(cls.__name__, (cls,), ns)
+                m.__class__ = spy
+                swapped.append((m, cls))
+    except TypeError:  # __class__ assignment refused (layout differs)
+        ok = False
+        for m, cls in swapped:
+            m.__class__ = cls
+        swapped.clear()
+    try:
+        yield ok
+    finally:
+        for m, cls in swapped:
+            m.__class__ = cls
+
+
+def _signature(graph: fx.Graph) -> list[tuple]:
+    name = operator.attrgetter("name")
+    return [
+        (n.name, n.op, n.target, fx.node.map_arg(n.args, name), fx.node.map_arg(n.kwargs, name))
+        for n in graph.nodes
+    ]
+
+
+def _describe_difference(eval_graph: fx.Graph, train_graph: fx.Graph) -> str | None:
+    a, b = _signature(eval_graph), _signature(train_graph)
+    if a == b:
+        return None
+    in_eval, in_train = [x[0] for x in a], [y[0] for y in b]
+    eval_names, train_names = set(in_eval), set(in_train)
+    added = [n for n in in_train if n not in eval_names]
+    dropped = [n for n in in_eval if n not in train_names]
+
+    def some(names):
+        return ", ".join(repr(n) for n in names[:3]) + (", ..." if len(names) > 3 else "")
+
+    parts = []
+    if added:
+        parts.append(f"train mode adds node {some(added)}")
+    if dropped:
+        parts.append(f"eval mode adds node {some(dropped)}")
+    if not parts:
+        first = next(x for x, y in zip(a, b) if x != y)
+        parts.append(f"node {first[0]!r} differs")
+    return "; ".join(parts)
+
+
+def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
+    """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ."""
+    mods = list(root.modules())
+    saved = [(m, m.__dict__.get("training", True)) for m in mods]
+    try:
+        for m in mods:
+            m.__dict__["training"] = False
+        reads: list[nn.Module] = []
+        with _spying(mods, reads) as spied:
+            graph = _run_tracer(root, rule)
+        # if no traced code read a `training` flag, a train-mode trace takes the same path
+        if not spied or reads:
+            for m in mods:
+                m.__dict__["training"] = True
+            try:
+                difference = _describe_difference(graph, _run_tracer(root, rule))
+            except _FxFailure as failure:
+                difference = f"the train-mode trace fails: {_reason(failure.error)}"
+            if difference is not None:
+                warnings.warn(
+                    f"the train-mode and eval-mode graphs of {type(root).__name__} differ "
+                    f"({difference}); splice uses the eval-mode graph. Code outside leaf modules "
+                    "reads self.training; mark such modules as leaves (leaves=[...], --leaf TYPE) "
+                    "to keep the check at run time.",
+                    TraceModeWarning,
+                    stacklevel=3,
+                )
+    finally:
+        for m, flag in saved:
+            m.__dict__["training"] = flag
+    return graph
+
+
+def _unspy_meta(graph: fx.Graph) -> None:
+    """Put the real classes back into ``nn_module_stack`` metadata (the tracer saw spies)."""
+    for n in graph.nodes:
+        stack = n.meta.get("nn_module_stack")
+        if stack:
+            n.meta["nn_module_stack"] = type(stack)(
+                (k, (q, _original_class(t))) for k, (q, t) in stack.items()
+            )
+
+
+def _fx_failure_hint(failure: _FxFailure, model: nn.Module) -> tuple[str, str]:
+    """(where, what to do) for an fx failure."""
+    if failure.failed_in is not None and failure.failed_in[0] not in ("", "?"):
+        qualname, cls = failure.failed_in
+        where = f"module '{qualname}' ({cls.__name__})"
+        todo = (
+            f"mark it opaque with --leaf {_class_path(cls)} (Python: leaves=[{cls.__name__}]) "
+            "so the tracer keeps it as one step"
+        )
+    else:
+        where = f"the forward of {type(model).__name__} itself"
+        todo = (
+            "move the Python control flow into a submodule and mark that submodule opaque "
+            "with --leaf TYPE (Python: leaves=[TYPE])"
+        )
+    return where, todo
+
+
+
+def _reason(exc: BaseException) -> str:
+    """``"TypeError: first line of the message"`` (the class name alone when there is no message)."""
+    name = type(exc).__name__
+    return f"{name}: {first_line(exc)}" if str(exc).strip() else name
+
+
+
+def _check_model(model: Any, what: str) -> None:
+    if not isinstance(model, nn.Module):
+        raise GraphError(f"{what} needs a torch.nn.Module, got {type(model).__name__}; pass the model object")
+
+
+def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
+    """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
+
+    The GraphModule owns deep copies of the model's parameters and buffers; the
+    caller's model is not changed and shares no tensors with the result. The
+    graph is the eval-mode graph (see the module docstring); node names are
+    stable from run to run. Raises :class:`~splice.errors.GraphError` naming the
+    module fx could not trace.
+    """
+    _check_model(model, "trace()")
+    rule = _LeafRule(leaves)
+    try:
+        work = copy.deepcopy(model)
+    except Exception as exc:
+        raise GraphError(
+            f"cannot copy {type(model).__name__} for tracing ({_reason(exc)}); "
+            "splice never traces the caller's model in place: make the model deep-copyable"
+        ) from exc
+    try:
+        graph = _trace_owned(work, rule)
+    except _FxFailure as failure:
+        where, todo = _fx_failure_hint(failure, model)
+        raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
+    _unspy_meta(graph)
+    gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
+    gm.training = model.training  # submodules keep their own (copied) flags
+    return gm

@@ -1,0 +1,50 @@
+"""Model sources: one spec string names an architecture, its weights come separately.
+
+Spec forms, used by every command:
+
+- ``torchvision:NAME`` — a torchvision architecture, built with ``weights=None``
+  (nothing is downloaded). Builder arguments come from ``kwargs``.
+- ``package.module:factory`` — a callable importable from an installed package.
+- ``path/to/file.py:factory`` — a callable defined in a Python file.
+- ``path/to/model.pt`` — a whole pickled ``nn.Module``; loads only with
+  ``trust_pickle=True`` because unpickling can run arbitrary code.
+- ``path/to/folder`` — a folder written by :func:`splice.save`.
+
+Weights (``.pt``/``.pth``/``.bin`` state dicts through
+``torch.load(weights_only=True)``, or ``.safetensors``) may be wrapped in
+``{"state_dict": ...}`` / ``{"model": ...}`` and carry ``module.`` /
+``model.`` / ``_orig_mod.`` prefixes; both are detected and stripped. Missing,
+unexpected and shape-mismatched names are refused unless ``allow_partial``.
+"""
+
+from __future__ import annotations
+
+from .builders import IMAGENET_NORMALISATION, build_model
+from .source import Source, load_source
+from .specs import format_shape, parse_input_shape, parse_kwargs
+from .weights import (
+    NESTING_KEYS,
+    WRAPPER_PREFIXES,
+    check_finite,
+    load_weights_,
+    read_safetensors,
+    read_weights,
+    with_metadata,
+)
+
+__all__ = [
+    "Source",
+    "load_source",
+    "build_model",
+    "read_weights",
+    "read_safetensors",
+    "with_metadata",
+    "load_weights_",
+    "parse_input_shape",
+    "parse_kwargs",
+    "format_shape",
+    "check_finite",
+    "IMAGENET_NORMALISATION",
+    "WRAPPER_PREFIXES",
+    "NESTING_KEYS",
+]

@@ -1,0 +1,112 @@
+"""Building an architecture from a spec: torchvision builders and user factories.
+
+Nothing is downloaded: torchvision models are built with ``weights=None`` and
+every model starts from random init; weights come separately
+(:mod:`splice.sources.weights`).
+"""
+
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import os
+import sys
+import warnings
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from torch import nn
+
+from ..errors import SourceError, suggest
+from .specs import _split_spec, parse_input_shape
+
+__all__ = ["build_model", "IMAGENET_NORMALISATION"]
+
+IMAGENET_NORMALISATION = {"mean": [0.485, 0.456, 0.406], "std": [0.229, 0.224, 0.225]}
+_TORCHVISION_DEFAULT_SHAPES = {"inception_v3": (3, 299, 299)}
+
+
+def _torchvision_builder(name: str):
+    import torchvision.models as tvm
+
+    available = sorted(tvm.list_models())
+    if name not in available:
+        raise SourceError(
+            f"unknown torchvision model {name!r}{suggest(name, available)} "
+            "Run python -c 'import torchvision; print(torchvision.models.list_models())' for the full list"
+        )
+    return tvm.get_model_builder(name)
+
+
+def _import_factory(head: str, attr: str, spec: str):
+    if head.endswith(".py") or os.sep in head or "/" in head:
+        path = Path(head)
+        if not path.is_file():
+            raise SourceError(f"model file '{path}' does not exist (from spec {spec!r}); check the path")
+        mod_name = f"_splice_user_{abs(hash(str(path.resolve())))}"
+        module = sys.modules.get(mod_name)
+        if module is None:
+            loader_spec = importlib.util.spec_from_file_location(mod_name, path)
+            if loader_spec is None or loader_spec.loader is None:
+                raise SourceError(f"cannot import model file '{path}'; is it a Python file?")
+            module = importlib.util.module_from_spec(loader_spec)
+            sys.modules[mod_name] = module
+            try:
+                loader_spec.loader.exec_module(module)
+            except Exception as exc:
+                del sys.modules[mod_name]
+                raise SourceError(f"importing '{path}' failed: {type(exc).__name__}: {exc}") from exc
+    else:
+        try:
+            module = importlib.import_module(head)
+        except ImportError as exc:
+            raise SourceError(
+                f"cannot import module {head!r} from spec {spec!r} ({exc}); "
+                "is the package installed, or did you mean a path like path/to/file.py:factory?"
+            ) from None
+    factory = getattr(module, attr, None)
+    if factory is None or not callable(factory):
+        names = [n for n in dir(module) if not n.startswith("_") and callable(getattr(module, n))]
+        raise SourceError(f"{head!r} has no callable {attr!r}{suggest(attr, names)}")
+    return factory
+
+
+def build_model(spec: str, kwargs: Mapping | None = None):
+    """Build an architecture from a spec string (random init, nothing downloaded).
+
+    Returns ``(model, meta)`` where ``meta`` holds the declared ``input_shape``
+    and ``normalisation`` (either may be ``None``).
+    """
+    kwargs = dict(kwargs or {})
+    head, attr = _split_spec(spec)
+    meta: dict[str, Any] = {"input_shape": None, "normalisation": None}
+    if head == "torchvision":
+        builder = _torchvision_builder(attr)
+        if "weights" in kwargs and kwargs["weights"] is not None:
+            raise SourceError(
+                "torchvision weights are never downloaded; drop 'weights' from --kwargs and "
+                "pass a local file with --weights FILE"
+            )
+        kwargs.pop("weights", None)
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)
+                model = builder(weights=None, **kwargs)
+        except TypeError as exc:
+            raise SourceError(f"torchvision:{attr} does not accept --kwargs {kwargs}: {exc}") from None
+        meta["input_shape"] = _TORCHVISION_DEFAULT_SHAPES.get(attr, (3, 224, 224))
+        meta["normalisation"] = IMAGENET_NORMALISATION
+    else:
+        factory = _import_factory(head, attr, spec)
+        try:
+            model = factory(**kwargs)
+        except TypeError as exc:
+            raise SourceError(f"{spec} does not accept --kwargs {kwargs}: {exc}") from None
+        if not isinstance(model, nn.Module):
+            raise SourceError(f"{spec} returned {type(model).__name__}, not a torch.nn.Module")
+        declared = getattr(factory, "input_shape", None) or getattr(model, "input_shape", None)
+        if declared is not None:
+            meta["input_shape"] = parse_input_shape(declared)
+        meta["normalisation"] = getattr(factory, "normalisation", None)
+    return model, meta

@@ -1,0 +1,142 @@
+"""The entry point: a spec, a folder, a pickled module or a module in, a :class:`Source` out."""
+
+from __future__ import annotations
+
+import os
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from torch import nn
+
+from .._io import state_dict_sha256
+from ..errors import RandomWeightsWarning, SourceError
+from .builders import build_model
+from .specs import parse_input_shape, parse_kwargs
+from .weights import _check_file, _torch_load, check_finite, load_weights_, read_weights
+
+__all__ = ["Source", "load_source"]
+
+_WEIGHT_SUFFIXES = (".pt", ".pth", ".bin", ".ckpt", ".safetensors", ".pkl")
+
+
+@dataclass
+class Source:
+    """A resolved model: the module plus everything needed to rebuild it.
+
+    ``weights_sha256`` is the canonical hash of the model's state dict after the
+    weights were loaded (see :func:`splice._io.state_dict_sha256`): two sources
+    hash equal exactly when every tensor is bitwise equal.
+    """
+
+    model: nn.Module
+    spec: str
+    kwargs: dict = field(default_factory=dict)
+    input_shape: tuple[int, int, int] | None = None
+    weights_path: str | None = None
+    weights_sha256: str | None = None
+    normalisation: dict | None = None
+    class_names: list[str] | None = None
+    manifest: dict | None = None
+    random_init: bool = False
+    leaves: tuple[str, ...] = ()
+
+    @property
+    def is_spliced(self) -> bool:
+        return bool(self.manifest and self.manifest.get("points"))
+
+
+def _looks_like_pickled_module(spec: str) -> bool:
+    return ":" not in spec and spec.endswith(_WEIGHT_SUFFIXES) and not spec.endswith(".safetensors")
+
+
+def load_source(
+    spec: str | Source | nn.Module,
+    *,
+    weights: str | os.PathLike | None = None,
+    kwargs: Mapping | str | None = None,
+    input_shape: str | Sequence[int] | None = None,
+    allow_partial: bool = False,
+    trust_pickle: bool = False,
+    leaves: Sequence[str] = (),
+    warn_random: bool = True,
+) -> Source:
+    """Resolve a model spec (or folder) into a :class:`Source`.
+
+    >>> src = load_source("torchvision:resnet18", kwargs={"num_classes": 10})  # doctest: +SKIP
+    >>> src.input_shape
+    (3, 224, 224)
+    """
+    if isinstance(spec, Source):
+        return spec
+    if isinstance(spec, nn.Module):
+        shape = parse_input_shape(input_shape) or (
+            parse_input_shape(spec.input_shape) if getattr(spec, "input_shape", None) else None
+        )
+        return Source(model=spec, spec="<module>", input_shape=shape,
+                      weights_sha256=state_dict_sha256(spec.state_dict()))
+    kw = parse_kwargs(kwargs)
+    shape = parse_input_shape(input_shape)
+    path = Path(spec)
+    if ":" not in spec or path.is_dir():
+        if path.is_dir():
+            # INTEGRATION: this folder branch (an upward import of splice.store) moves to the store's opener.
+            from ..store import load_folder_source
+
+            return load_folder_source(path, input_shape=shape, trust_pickle=trust_pickle)
+        if _looks_like_pickled_module(spec):
+            return _load_pickled_module(path, shape, trust_pickle=trust_pickle)
+        if not path.exists() and ("/" in spec or spec.endswith(_WEIGHT_SUFFIXES)):
+            raise SourceError(f"model path '{spec}' does not exist; check the path")
+        raise SourceError(
+            f"cannot read model spec {spec!r}; use torchvision:NAME (e.g. torchvision:resnet18), "
+            "package.module:factory, path/to/file.py:factory, or a folder written by 'splice insert'"
+        )
+    model, meta = build_model(spec, kw)
+    random_init = weights is None
+    if weights is not None:
+        state = read_weights(weights, trust_pickle=trust_pickle)
+        check_finite(state, f"weights '{weights}'")
+        load_weights_(model, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=spec)
+    elif warn_random:
+        warnings.warn(
+            f"{spec} has random weights (no --weights given): its outputs mean nothing for accuracy",
+            RandomWeightsWarning,
+            stacklevel=2,
+        )
+    model.eval()
+    final_shape = shape or meta["input_shape"]
+    if final_shape is None:
+        raise SourceError(
+            f"cannot tell the input shape of {spec}; pass --input-shape CxHxW "
+            "(input_shape=...), or set factory.input_shape = (C, H, W)"
+        )
+    return Source(
+        model=model,
+        spec=spec,
+        kwargs=kw,
+        input_shape=final_shape,
+        weights_path=str(weights) if weights is not None else None,
+        weights_sha256=state_dict_sha256(model.state_dict()),
+        normalisation=meta["normalisation"],
+        random_init=random_init,
+        leaves=tuple(leaves),
+    )
+
+
+def _load_pickled_module(path: Path, shape, *, trust_pickle: bool) -> Source:
+    _check_file(path, "model file")
+    obj = _torch_load(path, trust_pickle=trust_pickle)
+    if not isinstance(obj, nn.Module):
+        raise SourceError(
+            f"'{path}' holds a {type(obj).__name__}, not a whole model; a state dict needs an "
+            "architecture: use a spec such as torchvision:NAME or file.py:factory with --weights"
+        )
+    if shape is None and getattr(obj, "input_shape", None):
+        shape = parse_input_shape(obj.input_shape)
+    if shape is None:
+        raise SourceError(f"cannot tell the input shape of '{path}'; pass --input-shape CxHxW")
+    obj.eval()
+    return Source(model=obj, spec=str(path), input_shape=shape, weights_path=str(path),
+                  weights_sha256=state_dict_sha256(obj.state_dict()))

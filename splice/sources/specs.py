@@ -1,0 +1,92 @@
+"""Spec strings and their parts: input shapes, builder kwargs, ``head:attr`` splitting.
+
+:func:`parse_input_shape` is the one input-shape rule of splice: three
+positive integers (C, H, W), given as text (``"3x224x224"``, ``"3,224,224"``)
+or as a sequence of ints. Bools and non-integral numbers are refused, never
+rounded. :mod:`splice.graph` checks its ``input_shape`` argument with it.
+"""
+
+from __future__ import annotations
+
+import json
+import operator
+import re
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from ..errors import SourceError
+
+__all__ = ["parse_input_shape", "format_shape", "parse_kwargs"]
+
+
+def _dims(value: Any) -> tuple[int, int, int] | None:
+    """``value`` as three positive ints, or None when it is not a (C, H, W) shape."""
+    if isinstance(value, str):
+        parts = [p for p in re.split(r"[x×,\s]+", value.strip().lower()) if p != ""]
+        try:
+            dims = tuple(int(p) for p in parts)
+        except ValueError:
+            return None
+    else:
+        try:
+            items = list(value)
+            dims = tuple(operator.index(v) for v in items)
+        except TypeError:
+            return None
+        if any(isinstance(v, bool) for v in items):
+            return None
+    if len(dims) != 3 or any(d <= 0 for d in dims):
+        return None
+    return dims  # type: ignore[return-value]
+
+
+def parse_input_shape(text: str | Sequence[int] | None) -> tuple[int, int, int] | None:
+    """Parse ``"3x224x224"`` (also ``3,224,224``, or a sequence of ints) into ``(3, 224, 224)``.
+
+    ``None`` gives ``None``; anything but three positive integers raises
+    :class:`~splice.errors.SourceError`.
+
+    >>> parse_input_shape("1x48x48")
+    (1, 48, 48)
+    """
+    if text is None:
+        return None
+    dims = _dims(text)
+    if dims is None:
+        raise SourceError(
+            f"malformed input shape {text!r}; expected CxHxW with three positive integers, "
+            "e.g. --input-shape 3x224x224"
+        )
+    return dims
+
+
+def format_shape(shape: Sequence[int]) -> str:
+    return "x".join(str(int(s)) for s in shape)
+
+
+def parse_kwargs(text: str | Mapping | None) -> dict:
+    """Parse ``--kwargs '{"num_classes": 10}'`` (a JSON object)."""
+    if text is None:
+        return {}
+    if isinstance(text, Mapping):
+        return dict(text)
+    try:
+        value = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise SourceError(
+            f"--kwargs is not valid JSON ({exc.msg} at column {exc.colno}): {text!r}; "
+            """pass a JSON object such as '{"num_classes": 10}'"""
+        ) from None
+    if not isinstance(value, dict):
+        raise SourceError(f"--kwargs must be a JSON object, got {type(value).__name__}: {text!r}")
+    return value
+
+
+def _split_spec(spec: str) -> tuple[str, str]:
+    head, sep, tail = spec.rpartition(":")
+    if not sep or not head or not tail:
+        raise SourceError(
+            f"cannot read model spec {spec!r}; use torchvision:NAME, package.module:factory, "
+            "path/to/file.py:factory, or a folder written by 'splice insert'"
+        )
+    return head, tail

@@ -1,0 +1,236 @@
+"""Reading weights safely and loading them into a model.
+
+``.pt``/``.pth``/``.bin`` state dicts go through ``torch.load(weights_only=True)``
+(unpickling objects needs ``trust_pickle=True``), ``.safetensors`` through
+:func:`read_safetensors`. A state may be wrapped in ``{"state_dict": ...}`` /
+``{"model": ...}`` and carry ``module.`` / ``model.`` / ``_orig_mod.``
+prefixes; both are detected and stripped. Missing, unexpected and
+shape-mismatched names are refused unless ``allow_partial``.
+"""
+
+from __future__ import annotations
+
+import os
+import pickle
+import re
+import warnings
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from ..errors import SpliceWarning, UnsafeCheckpointError, WeightsError
+
+__all__ = [
+    "read_weights",
+    "read_safetensors",
+    "with_metadata",
+    "check_finite",
+    "load_weights_",
+    "WRAPPER_PREFIXES",
+    "NESTING_KEYS",
+]
+
+WRAPPER_PREFIXES = ("module.", "model.", "_orig_mod.")
+NESTING_KEYS = ("state_dict", "model", "model_state_dict", "model_state", "net", "module", "weights")
+
+
+def _check_file(path: Path, what: str = "weights file") -> None:
+    if not path.exists():
+        raise WeightsError(f"{what} '{path}' does not exist; check the path")
+    if path.is_dir():
+        raise WeightsError(f"{what} '{path}' is a folder, not a file")
+    if path.stat().st_size == 0:
+        raise WeightsError(f"{what} '{path}' is empty (0 bytes); it was probably not written completely")
+
+
+def _looks_serialised(path: Path) -> bool:
+    """True for a torch.save zip archive or a binary pickle (protocol >= 2)."""
+    import zipfile
+
+    with open(path, "rb") as fh:
+        head = fh.read(2)
+    return zipfile.is_zipfile(path) or head[:1] == b"\x80"
+
+
+def _torch_load(path: Path, *, trust_pickle: bool):
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return torch.load(path, map_location="cpu", weights_only=not trust_pickle)
+    except pickle.UnpicklingError as exc:
+        text = str(exc).lower()
+        blocked = re.search(r"GLOBAL ([\w.]+)", str(exc))
+        if not blocked and not _looks_serialised(path):
+            raise WeightsError(
+                f"'{path}' is not a PyTorch checkpoint (neither a torch.save archive nor a pickle); "
+                "check that you passed the weights file"
+            ) from None
+        if not trust_pickle and ("weights_only" in text or "weights only" in text):
+            what = blocked.group(1) if blocked else "objects or pickle opcodes the safe loader does not accept"
+            raise UnsafeCheckpointError(
+                f"'{path}' contains pickled Python objects ({what}), not just tensors; "
+                "unpickling can run arbitrary code, so splice refused to load it. "
+                "If you trust the file's origin, pass --trust-pickle (trust_pickle=True), "
+                "or re-save it with torch.save(model.state_dict(), ...)"
+            ) from None
+        raise WeightsError(f"'{path}' is not a readable checkpoint ({exc}); it may be truncated or corrupt") from None
+    except Exception as exc:  # any failure to parse the file means it is not a usable checkpoint
+        msg = (str(exc).splitlines()[0] if str(exc) else type(exc).__name__).split(". ")[0]
+        raise WeightsError(
+            f"'{path}' is not a readable PyTorch checkpoint ({msg}); it may be truncated, "
+            "corrupt, or not a checkpoint at all"
+        ) from None
+
+
+def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:
+    """Read a ``.safetensors`` file into CPU tensors (nothing is unpickled).
+
+    Raises :class:`~splice.errors.WeightsError` when the file cannot be read as
+    safetensors (truncated, corrupt, another format).
+    """
+    from safetensors import SafetensorError
+    from safetensors.torch import load_file
+
+    try:
+        return load_file(str(path), device="cpu")
+    except (SafetensorError, OSError, ValueError, RuntimeError) as exc:
+        raise WeightsError(
+            f"'{path}' is not a readable safetensors file ({exc}); it may be truncated or corrupt"
+        ) from None
+
+
+def with_metadata(model: nn.Module, state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
+    """``state`` with the per-module version metadata that ``load_state_dict`` hands to each module.
+
+    Version-aware loaders read ``state_dict._metadata`` (torchvision's MNASNet
+    refuses a state without it; BatchNorm upgrades old states by it). A
+    safetensors file, or any filtered dict, carries none, so the state gets
+    its own metadata back if it had some, else ``model``'s current versions:
+    the weights were written by this architecture.
+    """
+    from collections import OrderedDict
+
+    out = OrderedDict(state)
+    meta = getattr(state, "_metadata", None)
+    if meta is None:
+        meta = getattr(model.state_dict(), "_metadata", None)
+    if meta is not None:
+        out._metadata = meta  # type: ignore[attr-defined]
+    return out
+
+
+def _is_tensor_dict(obj: object) -> bool:
+    return isinstance(obj, Mapping) and len(obj) > 0 and all(
+        isinstance(k, str) and isinstance(v, torch.Tensor) for k, v in obj.items()
+    )
+
+
+def _unnest(obj: object, path: Path) -> dict[str, torch.Tensor]:
+    if isinstance(obj, nn.Module):
+        return dict(obj.state_dict())
+    if _is_tensor_dict(obj):
+        return dict(obj)  # type: ignore[arg-type]
+    if isinstance(obj, Mapping):
+        for key in NESTING_KEYS:
+            if key in obj:
+                try:
+                    return _unnest(obj[key], path)
+                except WeightsError:
+                    continue
+        tensors = {k: v for k, v in obj.items() if isinstance(k, str) and isinstance(v, torch.Tensor)}
+        if tensors:
+            return tensors
+        keys = ", ".join(repr(k) for k in list(obj)[:8])
+        raise WeightsError(
+            f"'{path}' holds a dict without tensors (keys: {keys}); expected a state dict, "
+            f"possibly nested under one of {', '.join(NESTING_KEYS)}"
+        )
+    raise WeightsError(f"'{path}' holds a {type(obj).__name__}, not a state dict of tensors")
+
+
+def read_weights(path: str | os.PathLike, *, trust_pickle: bool = False) -> dict[str, torch.Tensor]:
+    """Read a state dict from ``.pt``/``.pth``/``.bin``/``.safetensors``, unnested.
+
+    Raises :class:`~splice.errors.WeightsError` for missing, empty, truncated or
+    foreign files and :class:`~splice.errors.UnsafeCheckpointError` for pickles
+    that need ``trust_pickle``.
+    """
+    path = Path(path)
+    _check_file(path)
+    if path.suffix == ".safetensors":
+        return read_safetensors(path)
+    return _unnest(_torch_load(path, trust_pickle=trust_pickle), path)
+
+
+def _strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str]) -> dict[str, torch.Tensor]:
+    changed = True
+    while changed:
+        changed = False
+        for prefix in WRAPPER_PREFIXES:
+            if state and all(k.startswith(prefix) for k in state):
+                stripped = {k[len(prefix):]: v for k, v in state.items()}
+                if len(wanted & set(stripped)) >= len(wanted & set(state)):
+                    state, changed = stripped, True
+    return state
+
+
+def _names(keys: Sequence[str], limit: int = 6) -> str:
+    keys = sorted(keys)
+    shown = ", ".join(keys[:limit])
+    return shown + (f", … ({len(keys) - limit} more)" if len(keys) > limit else "")
+
+
+def check_finite(state: Mapping[str, torch.Tensor], where: str) -> None:
+    """Refuse NaN/Inf tensors, naming them."""
+    bad = [k for k, v in state.items() if v.is_floating_point() and not bool(torch.isfinite(v).all())]
+    if bad:
+        raise WeightsError(
+            f"{where} has NaN or Inf values in {len(bad)} tensor(s): {_names(bad)}; "
+            "the checkpoint is damaged or diverged — use an earlier one"
+        )
+
+
+def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_partial: bool = False,
+                  where: str = "weights", spec: str = "the model") -> dict[str, list[str]]:
+    """Load ``state`` into ``model`` in place after checking names and shapes.
+
+    Returns ``{"missing": [...], "unexpected": [...], "mismatched": [...]}``.
+    """
+    own = model.state_dict()
+    state = _strip_prefixes(state, set(own))
+    missing = [k for k in own if k not in state]
+    unexpected = [k for k in state if k not in own]
+    mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]
+    matched = len(own) - len(missing) - len(mismatched)
+    if own and matched < 0.5 * len(own) and not allow_partial:
+        raise WeightsError(
+            f"{where} does not fit {spec}: only {matched} of {len(own)} tensors match by name and shape "
+            f"(e.g. missing {_names(missing, 3) or 'none'}; unexpected {_names(unexpected, 3) or 'none'}); "
+            "these look like weights for another architecture — check the model spec and --kwargs"
+        )
+    if (missing or unexpected or mismatched) and not allow_partial:
+        parts = []
+        if missing:
+            parts.append(f"missing {len(missing)}: {_names(missing)}")
+        if unexpected:
+            parts.append(f"unexpected {len(unexpected)}: {_names(unexpected)}")
+        if mismatched:
+            shapes = [f"{k} {tuple(state[k].shape)} vs {tuple(own[k].shape)}" for k in mismatched[:4]]
+            parts.append(f"wrong shape {len(mismatched)}: {'; '.join(shapes)}")
+        raise WeightsError(
+            f"{where} does not match {spec} ({'; '.join(parts)}); "
+            "pass --allow-partial (allow_partial=True) to load only the tensors that fit"
+        )
+    usable = with_metadata(model, state)
+    for k in [k for k in usable if k not in own or k in mismatched]:
+        del usable[k]
+    model.load_state_dict(usable, strict=False)
+    if allow_partial and (missing or unexpected or mismatched):
+        warnings.warn(
+            f"partial load from {where}: {len(usable)} tensors loaded, {len(missing)} missing, "
+            f"{len(unexpected)} unexpected, {len(mismatched)} with the wrong shape",
+            SpliceWarning,
+            stacklevel=2,
+        )
