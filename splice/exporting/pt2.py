@@ -64,7 +64,7 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
                         first = first_line(exc)
                         return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
                                 "detail": f"the exported program failed on a batch of {x.shape[0]}: {first}"}
-                        results.append(_compare_flat(ref, list(flatten_outputs(out).values()), tol))
+                results.append(_compare_flat(ref, list(flatten_outputs(out).values()), tol))
             return _merge(results)
 
         exported = ep.module()
