@@ -57,7 +57,7 @@ def run(model_name: str = "resnet50", repeats: int = 5) -> list[dict]:
     import splice
     from splice.errors import RandomWeightsWarning
     from splice.store import read_manifest
-    from splice.verify import verify
+    from splice.verification import verify
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RandomWeightsWarning)

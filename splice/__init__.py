@@ -42,8 +42,8 @@ _EXPORTS = {
 # sub-modules reachable as attributes (``splice.verify.verify(...)``); their main
 # functions are not re-exported under the same name, so ``import splice.verify``
 # and ``splice.verify`` always mean the module
-_SUBMODULES = ("graph", "warps", "surgery", "store", "sources", "verify", "export", "data", "distort",
-               "recipes", "tune", "inspection", "evaluate", "demo", "models", "errors", "cli")
+_SUBMODULES = ("graph", "warps", "surgery", "store", "sources", "manifest", "compare", "verification", "exporting",
+               "data", "distort", "recipes", "tune", "inspection", "evaluate", "demo", "models", "errors", "cli")
 
 __all__ = ["__version__", *_EXPORTS]
 

@@ -141,7 +141,7 @@ def _cmd_insert(args) -> int:
 
 
 def _cmd_verify(args) -> int:
-    from .verify import render_verify, verify, write_report
+    from .verification import render_verify, verify, write_report
 
     report = verify(args.folder, images=args.images, batch=args.batch, dtype=args.dtype, onnx=args.onnx,
                     opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle)
@@ -155,7 +155,7 @@ def _cmd_verify(args) -> int:
 
 
 def _cmd_export(args) -> int:
-    from .export import export
+    from .exporting import export
 
     if not args.onnx and not args.pt2:
         from .errors import SpliceError

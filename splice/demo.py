@@ -127,7 +127,7 @@ def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = F
     from .store import save
     from .surgery import insert
     from .tune import tune
-    from .verify import verify, write_report
+    from .verification import verify, write_report
 
     plan = plan or (FAST if fast else FULL)
     out = Path(out)

@@ -1,32 +1,15 @@
-"""The spliced-folder format: ``weights.safetensors`` + ``splice.json``.
+"""The spliced-folder format: ``weights.safetensors`` + ``splice.json`` (see :mod:`splice.manifest`).
 
 A folder is rebuilt from splice's own classes only: the base architecture from
 the recorded spec, the warps from recorded :class:`~splice.warps.WarpConfig`
 dicts, the tensors from safetensors. Nothing is unpickled (unless the base
 itself was a pickled module, which again needs ``trust_pickle``).
 
-``splice.json`` (schema version 1)::
-
-    {
-      "schema_version": 1,
-      "format": "splice-folder",
-      "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
-                 "weights_sha256": str | null, "random_init": bool},
-      "input_shape": [C, H, W],
-      "normalisation": {"mean": [...], "std": [...]} | null,
-      "class_names": [str, ...] | null,
-      "leaves": [str, ...],
-      "points": [{"name": str, "shape": [C, H, W], "cut": bool, "warp": {WarpConfig}}],
-      "weights": {"file": "weights.safetensors", "sha256": str, "base_sha256": str},
-      "tuning": null | {"recipe": str, "base_changed": bool, ...},
-      "versions": {"splice": str, "torch": str, "torchvision": str},
-      "created": ISO-8601 UTC
-    }
-
-``source.weights_sha256`` is the canonical hash of the base state dict the
-splice started from (provenance); ``weights.sha256`` is the hash of the
-``weights.safetensors`` bytes as written (integrity); ``weights.base_sha256``
-is the canonical hash of the base part of the saved state dict.
+Every path that opens a folder (:func:`load`, :func:`load_base`,
+:func:`load_folder_source`, :func:`open_source` and ``splice verify``) goes
+through :func:`open_folder`: it reads the manifest, hashes the weights file
+while it builds the architecture on the meta device (no memory, no random
+init), and hands out the checked tensors, which the models then adopt.
 """
 
 from __future__ import annotations
@@ -35,35 +18,44 @@ import copy
 import datetime as _dt
 import json
 import os
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 import torch
 from torch import nn
 
 from ._io import atomic_dir, file_sha256, state_dict_sha256
-from .sources import with_metadata
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
+from .manifest import (
+    MANIFEST_NAME,
+    SCHEMA_VERSION,
+    WEIGHTS_NAME,
+    SpliceInfo,
+    attach_info,
+    info_of,
+    validate_manifest,
+)
+from .sources import Source, build_model, check_finite, load_source, parse_input_shape, read_safetensors, with_metadata
+from .surgery import WARP_PREFIX, SplicePlan, apply_plan
 
 __all__ = [
     "SCHEMA_VERSION",
     "MANIFEST_NAME",
     "WEIGHTS_NAME",
+    "OpenedFolder",
+    "open_folder",
+    "open_source",
     "save",
     "load",
     "load_base",
     "assemble",
     "read_manifest",
-    "validate_manifest",
     "load_folder_source",
     "is_splice_folder",
+    "base_part",
 ]
-
-SCHEMA_VERSION = 1
-MANIFEST_NAME = "splice.json"
-WEIGHTS_NAME = "weights.safetensors"
-_FORMAT = "splice-folder"
 
 
 def _versions() -> dict[str, str]:
@@ -76,82 +68,6 @@ def _versions() -> dict[str, str]:
 
 def is_splice_folder(path: str | os.PathLike) -> bool:
     return (Path(path) / MANIFEST_NAME).is_file()
-
-
-# ----------------------------------------------------------------------------- manifest schema
-
-
-def _shape_ok(v: Any) -> bool:
-    return isinstance(v, list) and len(v) == 3 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0 for d in v)
-
-
-def validate_manifest(data: Any, where: str = MANIFEST_NAME) -> dict:
-    """Check a parsed ``splice.json``; raise :class:`ManifestError` naming every violation."""
-    from .warps import WarpConfig
-
-    problems: list[str] = []
-    if not isinstance(data, dict):
-        raise ManifestError(f"{where} must hold a JSON object, found {type(data).__name__}; re-create the folder with 'splice insert'")
-    version = data.get("schema_version")
-    if version != SCHEMA_VERSION:
-        problems.append(f"schema_version is {version!r}, this splice reads {SCHEMA_VERSION}")
-    if data.get("format") != _FORMAT:
-        problems.append(f"format is {data.get('format')!r}, expected {_FORMAT!r}")
-    src = data.get("source")
-    if not isinstance(src, dict):
-        problems.append("source must be an object")
-    else:
-        if not isinstance(src.get("spec"), str) or not src.get("spec"):
-            problems.append("source.spec must be a non-empty string")
-        if not isinstance(src.get("kwargs", {}), dict):
-            problems.append("source.kwargs must be an object")
-        for key in ("weights_sha256", "weights_file"):
-            if src.get(key) is not None and not isinstance(src.get(key), str):
-                problems.append(f"source.{key} must be a string or null")
-    if not _shape_ok(data.get("input_shape")):
-        problems.append(f"input_shape must be [C, H, W] positive integers, found {data.get('input_shape')!r}")
-    norm = data.get("normalisation")
-    if norm is not None:
-        if not (isinstance(norm, dict) and set(norm) == {"mean", "std"}
-                and all(isinstance(norm[k], list) and all(isinstance(x, (int, float)) for x in norm[k]) for k in norm)):
-            problems.append("normalisation must be null or {\"mean\": [...], \"std\": [...]}")
-        elif any(s <= 0 for s in norm["std"]):
-            problems.append("normalisation.std values must be positive")
-    names = data.get("class_names")
-    if names is not None and not (isinstance(names, list) and all(isinstance(n, str) for n in names)):
-        problems.append("class_names must be null or a list of strings")
-    if not isinstance(data.get("leaves", []), list):
-        problems.append("leaves must be a list of strings")
-    pts = data.get("points")
-    if not isinstance(pts, list):
-        problems.append("points must be a list")
-        pts = []
-    seen: set[str] = set()
-    for i, p in enumerate(pts):
-        if not isinstance(p, dict) or not isinstance(p.get("name"), str):
-            problems.append(f"points[{i}] must be an object with a string name")
-            continue
-        if p["name"] in seen:
-            problems.append(f"points[{i}] repeats point {p['name']!r}")
-        seen.add(p["name"])
-        try:
-            WarpConfig.from_dict(p.get("warp") if isinstance(p.get("warp"), dict) else {"family": None})
-        except (ValueError, TypeError) as exc:
-            problems.append(f"points[{i}].warp: {exc}")
-    w = data.get("weights")
-    if not (isinstance(w, dict) and isinstance(w.get("file"), str) and isinstance(w.get("sha256"), str)):
-        problems.append("weights must be {\"file\": str, \"sha256\": str, ...}")
-    elif "/" in w["file"] or "\\" in w["file"] or w["file"].startswith("."):
-        problems.append(f"weights.file must be a plain file name inside the folder, found {w['file']!r}")
-    tuning = data.get("tuning")
-    if tuning is not None and not isinstance(tuning, dict):
-        problems.append("tuning must be null or an object")
-    if problems:
-        raise ManifestError(
-            f"{where} violates the splice folder schema: " + "; ".join(problems)
-            + ". Re-create the folder with 'splice insert' rather than editing it by hand"
-        )
-    return data
 
 
 def read_manifest(folder: str | os.PathLike) -> dict:
@@ -172,24 +88,22 @@ def read_manifest(folder: str | os.PathLike) -> dict:
     return validate_manifest(data, str(path))
 
 
+def base_part(state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
+    """``state`` without the warp tensors (``splice_warps.*``)."""
+    return {k: v for k, v in state.items() if not k.startswith(WARP_PREFIX + ".")}
+
+
 # ----------------------------------------------------------------------------- save
 
 
-def _plain_info(model: nn.Module, source) -> dict:
-    from .sources import load_source
-
+def _plain_info(source) -> SpliceInfo:
     src = load_source(source, warn_random=False) if isinstance(source, str) else source
     if src is None or getattr(src, "spec", "<module>") == "<module>":
         raise SpliceError(
             "save() needs to know how to rebuild the base architecture; pass "
             "source='torchvision:NAME' / 'pkg.mod:factory' or a Source from splice.load_source"
         )
-    return {
-        "spec": src.spec, "kwargs": dict(src.kwargs), "input_shape": tuple(src.input_shape),
-        "normalisation": src.normalisation, "class_names": src.class_names, "leaves": list(src.leaves),
-        "source_weights_sha256": src.weights_sha256, "source_weights_path": src.weights_path,
-        "random_init": src.random_init, "points": [], "tuning": None,
-    }
+    return SpliceInfo.from_source(src)
 
 
 def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False, source=None,
@@ -207,38 +121,16 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     """
     from safetensors.torch import save_file
 
-    from .surgery import splice_info
-
-    info = dict(splice_info(model) or _plain_info(model, source))
-    if tuning is not None:
-        info["tuning"] = dict(tuning)
-    if class_names is not None:
-        info["class_names"] = list(class_names)
-    if normalisation is not None:
-        info["normalisation"] = dict(normalisation)
+    info = info_of(model) or _plain_info(source)
+    changes = {"tuning": dict(tuning) if tuning is not None else None,
+               "class_names": list(class_names) if class_names is not None else None,
+               "normalisation": dict(normalisation) if normalisation is not None else None}
+    info = info.replace(**{k: v for k, v in changes.items() if v is not None})
     state = {k: v.detach().to("cpu").contiguous().clone() for k, v in model.state_dict().items()}
-    from .surgery import WARP_PREFIX
-
-    manifest = {
-        "schema_version": SCHEMA_VERSION,
-        "format": _FORMAT,
-        "source": {
-            "spec": info["spec"],
-            "kwargs": info.get("kwargs") or {},
-            "weights_file": info.get("source_weights_path"),
-            "weights_sha256": info.get("source_weights_sha256"),
-            "random_init": bool(info.get("random_init", False)),
-        },
-        "input_shape": [int(d) for d in info["input_shape"]],
-        "normalisation": info.get("normalisation"),
-        "class_names": info.get("class_names"),
-        "leaves": list(info.get("leaves") or []),
-        "points": [dict(p) for p in info.get("points") or []],
-        "weights": {"file": WEIGHTS_NAME, "sha256": "", "base_sha256": state_dict_sha256(state, prefix_exclude=WARP_PREFIX + ".")},
-        "tuning": info.get("tuning"),
-        "versions": _versions(),
-        "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
-    }
+    weights = {"file": WEIGHTS_NAME, "sha256": "",
+               "base_sha256": state_dict_sha256(state, prefix_exclude=WARP_PREFIX + ".")}
+    created = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()
+    manifest = info.to_manifest(weights=weights, versions=_versions(), created=created)
     validate_manifest(manifest, "the manifest being written")
     with atomic_dir(folder, overwrite=overwrite) as tmp:
         save_file(state, str(tmp / WEIGHTS_NAME), metadata={"format": "pt"})
@@ -247,60 +139,31 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     return Path(folder)
 
 
-# ----------------------------------------------------------------------------- load
+# ----------------------------------------------------------------------------- building
 
 
-def _read_checked_weights(folder: Path, manifest: dict) -> dict[str, torch.Tensor]:
-    """The folder's tensors, after the file matched its recorded hash, in memory of their own.
-
-    safetensors maps the file; its tensors stay backed by the file's pages, and
-    a file truncated while they are alive kills the process (SIGBUS). A loaded
-    model lives long, so its tensors are copied out of the mapping (still far
-    cheaper than the random init it replaces).
-    """
-    from .sources import read_safetensors
-
-    path = folder / manifest["weights"]["file"]
-    if not path.is_file():
-        raise WeightsError(f"'{path}' is missing; the folder is incomplete — re-create it with 'splice insert'")
-    actual = file_sha256(path)
-    if actual != manifest["weights"]["sha256"]:
-        raise IntegrityError(
-            f"'{path}' does not match the sha256 recorded in {MANIFEST_NAME} "
-            f"(recorded {manifest['weights']['sha256'][:12]}…, found {actual[:12]}…); the weights were "
-            "changed or damaged after saving — restore the folder from a good copy"
-        )
-    return {k: v.clone() for k, v in read_safetensors(path).items()}
-
-
-def _rebuild_base(manifest: dict, *, trust_pickle: bool = False) -> nn.Module:
-    from .sources import build_model, load_source
-
-    spec = manifest["source"]["spec"]
-    if ":" not in spec:  # a pickled whole module
-        return load_source(spec, input_shape=manifest["input_shape"], trust_pickle=trust_pickle).model
-    model, _ = build_model(spec, manifest["source"].get("kwargs") or {})
+def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False) -> nn.Module:
+    if ":" not in info.spec:  # a pickled whole module
+        return load_source(info.spec, input_shape=info.input_shape, trust_pickle=trust_pickle).model
+    model, _ = build_model(info.spec, info.kwargs)
     return model
 
 
 _META = torch.device("meta")
 
 
-def _empty_base(manifest: dict) -> nn.Module | None:
+def _empty_base(info: SpliceInfo) -> nn.Module | None:
     """The base architecture with its tensors on the meta device (no memory, no random init), or ``None``.
 
     Only builders (``torchvision:NAME``, ``module:factory``) can be built this
     way; a builder that computes with its tensors while it runs fails on the
     meta device and gets ``None`` (the caller then builds it normally).
     """
-    from .sources import build_model
-
-    spec = manifest["source"]["spec"]
-    if ":" not in spec:
+    if ":" not in info.spec:
         return None
     try:
         with _META:
-            model, _ = build_model(spec, manifest["source"].get("kwargs") or {})
+            model, _ = build_model(info.spec, info.kwargs)
     except Exception:  # any failure here only means "build it the slow way"
         return None
     return model
@@ -350,71 +213,43 @@ def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | No
     return None if _on_meta(model) else model
 
 
-def _base_from_state(manifest: dict, base_state: Mapping[str, torch.Tensor], *,
+def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *,
                      trust_pickle: bool = False, empty: nn.Module | None = None) -> nn.Module:
     """The base network holding ``base_state``: built empty and filled when it can be, else built and loaded.
 
     ``empty`` may pass in an :func:`_empty_base` to fill (it is used up).
     """
-    empty = empty if empty is not None else _empty_base(manifest)
+    empty = empty if empty is not None else _empty_base(info)
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
-        model = _rebuild_base(manifest, trust_pickle=trust_pickle)
+        model = _rebuild_base(info, trust_pickle=trust_pickle)
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
 
-def _base_part(state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
-    from .surgery import WARP_PREFIX
-
-    return {k: v for k, v in state.items() if not k.startswith(WARP_PREFIX + ".")}
-
-
-def _restore_info(model: nn.Module, manifest: dict, folder: Path) -> None:
-    from .surgery import _attach_info
-
-    _attach_info(model, {
-        "spec": manifest["source"]["spec"],
-        "kwargs": dict(manifest["source"].get("kwargs") or {}),
-        "input_shape": tuple(manifest["input_shape"]),
-        "normalisation": manifest.get("normalisation"),
-        "class_names": manifest.get("class_names"),
-        "leaves": list(manifest.get("leaves") or []),
-        "source_weights_sha256": manifest["source"].get("weights_sha256"),
-        "source_weights_path": manifest["source"].get("weights_file"),
-        "random_init": bool(manifest["source"].get("random_init", False)),
-        "points": [dict(p) for p in manifest["points"]],
-        "tuning": manifest.get("tuning"),
-        "folder": str(folder),
-    })
-
-
-def assemble(base: nn.Module, manifest: dict, state: dict[str, torch.Tensor], folder: str | os.PathLike, *,
+def assemble(base: nn.Module, info: SpliceInfo, state: dict[str, torch.Tensor], folder: str | os.PathLike, *,
              copy_base: bool = False) -> nn.Module:
-    """Re-apply a manifest's splice to ``base`` and load ``state`` strictly.
+    """Re-apply a recorded splice to ``base`` and load ``state`` strictly.
 
-    Splicing traces a private copy of ``base``; a manifest without points uses
+    Splicing traces a private copy of ``base``; a record without points uses
     ``base`` itself unless ``copy_base``. Weights that do not fit are refused
     by name. A ``base`` on the meta device (built empty) adopts the tensors
     of ``state`` instead of copying them.
     """
-    return _load_into(_frame(base, manifest, copy_base=copy_base), state, folder, assign=_on_meta(base))
+    return _load_into(_frame(base, info, copy_base=copy_base), state, folder, assign=_on_meta(base))
 
 
-def _frame(base: nn.Module, manifest: dict, *, copy_base: bool = False) -> nn.Module:
-    """The spliced architecture of ``manifest`` around a traced copy of ``base``, weights not loaded.
+def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.Module:
+    """The spliced architecture of ``info`` around a traced copy of ``base``, weights not loaded.
 
     Around an empty base the warps are built on the CPU in the default dtype;
     :func:`_load_into` gives them the dtype of the saved tensors.
     """
-    from .surgery import SplicePlan, _apply_plan
-    from .warps import WarpConfig
-
-    if not manifest["points"]:
+    if not info.points:
         return copy.deepcopy(base) if copy_base else base
-    plan = [SplicePlan(p["name"], WarpConfig.from_dict(p["warp"])) for p in manifest["points"]]
-    return _apply_plan(base, plan, tuple(manifest["input_shape"]), leaves=tuple(manifest.get("leaves") or ()),
-                       factory={"device": "cpu"} if _on_meta(base) else None, shapes=_recorded_shapes(manifest))
+    plan = [SplicePlan(p.name, p.warp) for p in info.points]
+    return apply_plan(base, plan, info.input_shape, leaves=info.leaves,
+                      factory={"device": "cpu"} if _on_meta(base) else None, shapes=info.recorded_shapes())
 
 
 def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
@@ -445,16 +280,125 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     return model
 
 
-def _recorded_shapes(manifest: dict) -> dict[str, tuple[int, ...]] | None:
-    """``{point: (C, H, W)}`` as splice.json records them, or ``None`` if a warp reads a point not recorded."""
-    shapes = {p["name"]: tuple(p["shape"]) for p in manifest["points"] if p.get("shape")}
-    if len(shapes) != len(manifest["points"]):
-        return None
-    for p in manifest["points"]:
-        loc = (p.get("warp") or {}).get("loc_from")
-        if loc is not None and loc not in shapes:
-            return None
-    return shapes
+def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *, trust_pickle: bool,
+               empty: nn.Module | None = None, frame: nn.Module | None = None) -> nn.Module:
+    """The spliced model holding ``state``: assembled on an empty base when it can be, else on a built one.
+
+    ``empty`` may pass in an :func:`_empty_base`; with points it is traced
+    (copied), not changed, so it can still be filled afterwards. ``frame``
+    may pass in ``_frame(empty, info)``, built while the weights were still
+    being checked.
+    """
+    if frame is None:
+        empty = empty if empty is not None else _empty_base(info)
+        if empty is not None:
+            frame = _frame(empty, info, copy_base=True)
+    if frame is not None:
+        try:
+            return _load_into(frame, state, folder, assign=True)
+        except WeightsError:
+            pass  # the strict, slow path below names what does not fit
+    return assemble(_rebuild_base(info, trust_pickle=trust_pickle), info, state, folder)
+
+
+# ----------------------------------------------------------------------------- opening a folder
+
+
+@dataclass
+class OpenedFolder:
+    """A folder whose weights were hashed against ``splice.json``: its record, tensors, and models on demand.
+
+    ``state`` is ``None`` when the file does not match its recorded hash
+    (:attr:`intact` is false; only with ``strict=False``). :meth:`spliced`
+    and :meth:`base` build the models (each adopts ``state``'s tensors);
+    the architecture was already built empty while the file was hashed.
+    """
+
+    folder: Path
+    manifest: dict
+    info: SpliceInfo
+    weights_path: Path
+    recorded_sha256: str
+    actual_sha256: str
+    state: dict[str, torch.Tensor] | None
+    trust_pickle: bool = False
+    empty: nn.Module | None = field(default=None, repr=False)
+    frame: nn.Module | None = field(default=None, repr=False)
+
+    @property
+    def intact(self) -> bool:
+        return self.recorded_sha256 == self.actual_sha256
+
+    def _tensors(self) -> dict[str, torch.Tensor]:
+        if self.state is None:
+            raise IntegrityError(f"'{self.weights_path}' does not match the sha256 recorded in {MANIFEST_NAME}; "
+                                 "its tensors cannot be used — restore the folder from a good copy")
+        return self.state
+
+    def spliced(self) -> nn.Module:
+        """The spliced model (eval mode, carrying :attr:`info`)."""
+        model = _assembled(self.info, self._tensors(), self.folder, trust_pickle=self.trust_pickle,
+                           empty=self.empty, frame=self.frame)
+        self.frame = None  # used up
+        attach_info(model, self.info)
+        return model.eval()
+
+    def base(self) -> nn.Module:
+        """The base network: the architecture with the base part of the weights (eval mode)."""
+        model = _base_from_state(self.info, base_part(self._tensors()), trust_pickle=self.trust_pickle,
+                                 empty=self.empty)
+        self.empty = None  # used up
+        return model
+
+
+def _build_empty(info: SpliceInfo, frame: bool) -> tuple[nn.Module | None, nn.Module | None]:
+    try:
+        empty = _empty_base(info)
+        return empty, (_frame(empty, info, copy_base=True) if frame and empty is not None else None)
+    except Exception:  # left to the slow path, which reports it after the integrity check
+        return None, None
+
+
+def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_pickle: bool = False,
+                strict: bool = True, frame: bool = True) -> OpenedFolder:
+    """Read a folder's manifest and check its weights against the recorded sha256.
+
+    The file is hashed on a second thread while the architecture (and, with
+    ``frame``, the spliced frame around it) is built on the meta device; no
+    byte of it is loaded before its hash is known to match. With ``strict`` a
+    mismatch raises :class:`~splice.errors.IntegrityError`, else the result
+    has ``state=None``. safetensors maps the file; with ``keep_mapped`` the
+    tensors stay backed by it (for a caller that lives only as long as one
+    call: a file truncated while they are alive kills the process with
+    SIGBUS), else they are copied out, so a loaded model never depends on it.
+    """
+    folder = Path(folder)
+    manifest = read_manifest(folder)
+    info = SpliceInfo.from_manifest(manifest, folder=folder)
+    path = folder / manifest["weights"]["file"]
+    if not path.is_file():
+        raise WeightsError(f"'{path}' is missing; the folder is incomplete — re-create it with 'splice insert'")
+    recorded = manifest["weights"]["sha256"]
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        # hashing releases the GIL (file_sha256 hashes the mapped file in one call)
+        file_hash = pool.submit(file_sha256, path)
+        empty, framed = _build_empty(info, frame)
+        actual = file_hash.result()
+    opened = OpenedFolder(folder, manifest, info, path, recorded, actual, None, trust_pickle, empty, framed)
+    if actual != recorded:
+        if strict:
+            raise IntegrityError(
+                f"'{path}' does not match the sha256 recorded in {MANIFEST_NAME} "
+                f"(recorded {recorded[:12]}…, found {actual[:12]}…); the weights were "
+                "changed or damaged after saving — restore the folder from a good copy"
+            )
+        return opened
+    state = read_safetensors(path)
+    opened.state = state if keep_mapped else {k: v.clone() for k, v in state.items()}
+    return opened
+
+
+# ----------------------------------------------------------------------------- load
 
 
 def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
@@ -465,67 +409,47 @@ def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
 
     >>> model = splice.load("out/r18-affine")   # doctest: +SKIP
     """
-    folder = Path(folder)
-    return _load(folder, read_manifest(folder), trust_pickle=trust_pickle)
-
-
-def _load(folder: Path, manifest: dict, *, trust_pickle: bool) -> nn.Module:
-    from .sources import check_finite
-
-    state = _read_checked_weights(folder, manifest)
-    check_finite(state, f"'{folder / manifest['weights']['file']}'")
-    model = _assembled(manifest, state, folder, trust_pickle=trust_pickle)
-    _restore_info(model, manifest, folder)
-    model.eval()
-    return model
+    opened = open_folder(folder, trust_pickle=trust_pickle)
+    check_finite(opened.state, f"'{opened.weights_path}'")
+    return opened.spliced()
 
 
 def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
     """The base network of a folder: its architecture with the base part of the saved weights."""
-    folder = Path(folder)
-    manifest = read_manifest(folder)
-    return _base_from_state(manifest, _base_part(_read_checked_weights(folder, manifest)), trust_pickle=trust_pickle)
+    return open_folder(folder, trust_pickle=trust_pickle, frame=False).base()
 
 
-def _assembled(manifest: dict, state: dict[str, torch.Tensor], folder: Path, *, trust_pickle: bool,
-               empty: nn.Module | None = None, frame: nn.Module | None = None) -> nn.Module:
-    """The spliced model holding ``state``: assembled on an empty base when it can be, else on a built one.
-
-    ``empty`` may pass in an :func:`_empty_base`; with points it is traced
-    (copied), not changed, so it can still be filled afterwards. ``frame``
-    may pass in ``_frame(empty, manifest)``, built while the weights were
-    still being checked.
-    """
-    if frame is None:
-        empty = empty if empty is not None else _empty_base(manifest)
-        if empty is not None:
-            frame = _frame(empty, manifest, copy_base=True)
-    if frame is not None:
-        try:
-            return _load_into(frame, state, folder, assign=True)
-        except WeightsError:
-            pass  # the strict, slow path below names what does not fit
-    return assemble(_rebuild_base(manifest, trust_pickle=trust_pickle), manifest, state, folder)
-
-
-def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False):
+def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
-    from .sources import Source
-
-    folder = Path(folder)
-    manifest = read_manifest(folder)
-    model = _load(folder, manifest, trust_pickle=trust_pickle)
-    shape = tuple(input_shape) if input_shape is not None else tuple(manifest["input_shape"])
+    opened = open_folder(folder, trust_pickle=trust_pickle)
+    check_finite(opened.state, f"'{opened.weights_path}'")
+    model = opened.spliced()
+    info, manifest = opened.info, opened.manifest
     return Source(
         model=model,
-        spec=manifest["source"]["spec"],
-        kwargs=dict(manifest["source"].get("kwargs") or {}),
-        input_shape=shape,  # type: ignore[arg-type]
-        weights_path=str(folder / manifest["weights"]["file"]),
+        spec=info.spec,
+        kwargs=dict(info.kwargs),
+        input_shape=tuple(input_shape) if input_shape is not None else info.input_shape,  # type: ignore[arg-type]
+        weights_path=str(opened.weights_path),
         weights_sha256=manifest["weights"].get("base_sha256"),
-        normalisation=manifest.get("normalisation"),
-        class_names=manifest.get("class_names"),
+        normalisation=info.normalisation,
+        class_names=info.class_names,
         manifest=manifest,
-        random_init=bool(manifest["source"].get("random_init", False)),
-        leaves=tuple(manifest.get("leaves") or ()),
+        random_init=info.random_init,
+        leaves=info.leaves,
     )
+
+
+def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapping | str | None = None,
+                input_shape: str | Sequence[int] | None = None, leaves: Sequence[str] = (),
+                trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True) -> Source:
+    """A :class:`~splice.sources.Source` for anything a command accepts: a folder written by
+    :func:`save` (opened here), else whatever :func:`splice.sources.load_source` resolves.
+
+    >>> src = open_source("out/r18-affine")   # doctest: +SKIP
+    """
+    if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir():
+        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle)
+    spec = os.fspath(thing) if isinstance(thing, os.PathLike) else thing
+    return load_source(spec, weights=weights, kwargs=kwargs, input_shape=input_shape, leaves=leaves,
+                       trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random)

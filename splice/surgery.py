@@ -19,9 +19,11 @@ from typing import Any
 import torch
 from torch import fx, nn
 
-from .errors import CheckFailed, PointError, SpliceWarning, suggest
+from .compare import compare_outputs
+from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
+from .manifest import PointRecord, SpliceInfo, attach_info
 
-__all__ = ["WARP_PREFIX", "SplicePlan", "insert", "splice_info", "warps_of", "base_state_dict"]
+__all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "insert", "warps_of", "base_state_dict"]
 
 WARP_PREFIX = "splice_warps"
 
@@ -32,26 +34,6 @@ class SplicePlan:
 
     point: str
     config: Any  # splice.warps.WarpConfig
-
-
-def splice_info(model: nn.Module) -> dict | None:
-    """The splice metadata carried by a spliced model (``None`` for plain models).
-
-    It lives in ``model.splice_info`` and, so that ``copy.deepcopy`` keeps it
-    (fx's deepcopy drops custom attributes), in ``model.meta["splice_info"]``.
-    """
-    info = getattr(model, "splice_info", None)
-    if info is None:
-        info = (getattr(model, "meta", None) or {}).get("splice_info")
-        if info is not None:
-            model.splice_info = info
-    return info
-
-
-def _attach_info(model: nn.Module, info: dict) -> None:
-    model.splice_info = info
-    if isinstance(getattr(model, "meta", None), dict):
-        model.meta["splice_info"] = info
 
 
 def warps_of(model: nn.Module) -> dict[str, nn.Module]:
@@ -138,8 +120,6 @@ def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
 
 def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float = 1e-5) -> dict:
     """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32)."""
-    from .verify import compare_outputs
-
     gen = torch.Generator().manual_seed(0)
     x = torch.randn((2, *input_shape), generator=gen)
     param = next(iter(base.parameters()), None)
@@ -157,7 +137,7 @@ def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float
     return result
 
 
-def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
+def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
                 traced: fx.GraphModule | None = None, factory: dict | None = None,
                 shapes: Mapping[str, tuple[int, ...]] | None = None) -> fx.GraphModule:
     """Trace ``model`` (fx works on a private clone) and insert the planned warps (no checks).
@@ -217,6 +197,33 @@ def _apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, le
     return gm
 
 
+def _warp_config(warp, name: str, overrides: Mapping[str, Any]):
+    """The :class:`~splice.warps.WarpConfig` for point ``name``: ``warp`` (or its entry) with ``overrides`` set."""
+    from .warps import WarpConfig
+
+    choice = warp.get(name, "affine") if isinstance(warp, Mapping) else warp
+    if isinstance(choice, WarpConfig):
+        cfg = choice.to_dict()
+    elif isinstance(choice, str):
+        cfg = {"family": choice}
+    else:
+        raise TypeError(f"warp must be a family name or WarpConfig, got {type(choice).__name__}")
+    cfg.update({key: value for key, value in overrides.items() if value is not None})
+    return WarpConfig.from_dict(cfg)
+
+
+def _warn_not_cut(point) -> None:
+    if point.cut:
+        return
+    warnings.warn(
+        f"point {point.name!r} is not a cut: some path from the input to the output bypasses it"
+        + (f" (the paths re-join at {point.join!r})" if point.join else "")
+        + ", so the warp will misalign the two paths; prefer a point marked cut",
+        SpliceWarning,
+        stacklevel=3,
+    )
+
+
 def insert(
     model,
     at: str | Sequence[str] = ("recommended",),
@@ -239,7 +246,8 @@ def insert(
     ``"pkg.mod:factory"``, a spliced folder) or a :class:`~splice.sources.Source`.
     ``at`` lists point names from :func:`splice.points`, or ``"recommended"``.
     ``warp`` is a family name, a :class:`~splice.warps.WarpConfig`, or a mapping
-    from point name to either. The caller's model is never modified.
+    from point name to either. The caller's model is never modified. The
+    result carries its :class:`~splice.manifest.SpliceInfo` (``splice_info``).
 
     >>> import splice
     >>> spliced = splice.insert("torchvision:resnet18", at="layer1", warp="affine")  # doctest: +SKIP
@@ -248,7 +256,6 @@ def insert(
     """
     from . import graph
     from .sources import load_source
-    from .warps import WarpConfig
 
     src = load_source(model, input_shape=input_shape, leaves=leaves)
     if src.is_spliced:
@@ -257,66 +264,26 @@ def insert(
             "splice the original model instead (points can be given together: --at A --at B)"
         )
     if src.input_shape is None:
-        from .errors import SourceError
-
         raise SourceError("insert needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW")
     leaves = tuple(leaves) or tuple(src.leaves)
     base = src.model
     work_listing = graph.points(base, src.input_shape, all=True, leaves=leaves)
     traced = graph.trace(base, leaves=leaves)
-    requested = [at] if isinstance(at, str) else list(at)
-    names = _resolve_points(requested, work_listing, traced)
+    names = _resolve_points([at] if isinstance(at, str) else list(at), work_listing, traced)
     by_name = {p.name: p for p in work_listing}
-
-    def config_for(name: str):
-        choice = warp.get(name, "affine") if isinstance(warp, Mapping) else warp
-        if isinstance(choice, WarpConfig):
-            cfg = choice.to_dict()
-        elif isinstance(choice, str):
-            cfg = {"family": choice}
-        else:
-            raise TypeError(f"warp must be a family name or WarpConfig, got {type(choice).__name__}")
-        for key, value in (("loc_from", loc_from), ("sampler", sampler), ("padding", padding),
-                           ("head_width", head_width), ("tps_k", tps_k)):
-            if value is not None:
-                cfg[key] = value
-        return WarpConfig.from_dict(cfg)
-
-    plan = [SplicePlan(name, config_for(name)) for name in names]
+    overrides = {"loc_from": loc_from, "sampler": sampler, "padding": padding, "head_width": head_width,
+                 "tps_k": tps_k}
+    plan = [SplicePlan(name, _warp_config(warp, name, overrides)) for name in names]
     for item in plan:
-        if not by_name[item.point].cut:
-            join = by_name[item.point].join
-            warnings.warn(
-                f"point {item.point!r} is not a cut: some path from the input to the output bypasses it"
-                + (f" (the paths re-join at {join!r})" if join else "")
-                + ", so the warp will misalign the two paths; prefer a point marked cut",
-                SpliceWarning,
-                stacklevel=2,
-            )
-    gm = _apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)
-    _attach_info(gm, {
-        "spec": src.spec,
-        "kwargs": dict(src.kwargs),
-        "input_shape": tuple(src.input_shape),
-        "normalisation": src.normalisation,
-        "class_names": src.class_names,
-        "leaves": list(leaves),
-        "source_weights_sha256": src.weights_sha256,
-        "source_weights_path": src.weights_path,
-        "random_init": src.random_init,
-        "points": [
-            {"name": it.point, "warp": it.config.to_dict(), "shape": list(by_name[it.point].shape),
-             "cut": bool(by_name[it.point].cut)}
-            for it in plan
-        ],
-        "tuning": None,
-    })
-    if check:
-        result = _quick_check(base, gm, src.input_shape, tol=tol)
-        gm.splice_info["check"] = result
-        if not result["passed"] and not force:
-            raise CheckFailed(
-                f"the spliced model differs from the base at the identity ({result['detail']}); "
-                "this is a bug or an unusual model — pass --force (force=True) to keep it anyway"
-            )
+        _warn_not_cut(by_name[item.point])
+    gm = apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)
+    result = _quick_check(base, gm, src.input_shape, tol=tol) if check else None
+    points = [PointRecord(it.point, it.config, tuple(by_name[it.point].shape), bool(by_name[it.point].cut))
+              for it in plan]
+    attach_info(gm, SpliceInfo.from_source(src, points=points, leaves=leaves, check=result))
+    if result is not None and not result["passed"] and not force:
+        raise CheckFailed(
+            f"the spliced model differs from the base at the identity ({result['detail']}); "
+            "this is a bug or an unusual model — pass --force (force=True) to keep it anyway"
+        )
     return gm

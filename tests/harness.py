@@ -18,7 +18,7 @@ import torch
 from splice import graph
 from splice._io import state_dict_sha256
 from splice.surgery import insert, warps_of
-from splice.verify import compare_outputs
+from splice.compare import compare_outputs
 
 __all__ = ["check_splice", "perturb_warps_"]
 
@@ -86,7 +86,7 @@ def check_splice(model, input_shape, at, warp="affine", *, dtype=torch.float32, 
 
 
 def _backward(model, x):
-    from splice.verify import flatten_outputs
+    from splice.compare import flatten_outputs
 
     out = model(x)
     loss = sum(t.float().pow(2).mean() for t in flatten_outputs(out).values() if t.is_floating_point())

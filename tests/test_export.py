@@ -16,7 +16,7 @@ import splice
 from splice import store
 from splice.cli import main
 from splice.errors import CheckFailed, SpliceError
-from splice.export import (
+from splice.exporting import (
     MIN_OPSET,
     check_onnx_graph,
     export,
@@ -177,14 +177,14 @@ def test_weights_as_inputs_graph_runs_at_the_perturbed_warp(model):
     """Fed the perturbed head tensors, onnxruntime follows torch's perturbed copy, not the stored model."""
     import onnxruntime as ort
 
-    from splice.export import _perturbed_tensors
+    from splice.exporting import perturbed_tensors
 
     x = torch.randn(1, 1, 48, 48)
     data = export_onnx_bytes(model, x, fold_constants=False, weights_as_inputs=True)
     session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
     state = model.state_dict()
     feeds = {i.name: state[i.name].numpy() for i in session.get_inputs()[1:]}
-    feeds.update({k: v.numpy() for k, v in _perturbed_tensors(model).items()})
+    feeds.update({k: v.numpy() for k, v in perturbed_tensors(model).items()})
     out = session.run(None, {"input": x.numpy(), **feeds})[0]
     with torch.no_grad():
         stored, perturbed = model(x), perturbed_copy(model)(x)
@@ -360,7 +360,7 @@ def test_graph_onnxruntime_refuses_is_a_failed_check(onnx_file, model):
 def test_verify_reports_onnxruntime_refusing_the_graph(tray_folder, monkeypatch):
     import onnxruntime
 
-    from splice.verify import verify
+    from splice.verification import verify
 
     def refuse(*args, **kwargs):
         raise RuntimeError("[ONNXRuntimeError] : 10 : INVALID_GRAPH : made up for this test")

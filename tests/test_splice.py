@@ -39,7 +39,7 @@ def _model(name):
 @pytest.mark.parametrize("name", FAST_MODELS + [pytest.param(n, marks=pytest.mark.slow) for n in SLOW_MODELS])
 def test_every_family_is_the_identity(name):
     """All four promises once (affine), then the identity for every other family."""
-    from splice.verify import compare_outputs
+    from splice.compare import compare_outputs
 
     model = _model(name)
     at = _feature_point(model, SHAPE)

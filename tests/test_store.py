@@ -12,7 +12,8 @@ from hypothesis import strategies as st
 
 import splice
 from splice.errors import ManifestError, SpliceError
-from splice.store import read_manifest, validate_manifest
+from splice.manifest import validate_manifest
+from splice.store import read_manifest
 from splice.surgery import insert
 
 
@@ -303,7 +304,7 @@ def test_loaded_model_does_not_depend_on_the_file(saved, tmp_path):
 def test_tied_weights_stay_tied_through_save_and_load(builders, tmp_path):
     """Adopting saved tensors gives each name its own; tied names are pointed back at one tensor."""
     from splice.store import load_base
-    from splice.verify import verify
+    from splice.verification import verify
 
     spliced = insert(f"{builders}:tied", at="input", input_shape=(1, 12, 12))
     assert spliced.conv3.weight is spliced.conv2.weight
@@ -324,7 +325,7 @@ def test_version_aware_loader_gets_its_metadata(tmp_path):
     """torchvision's MNASNet refuses a state dict without per-module versions (its _load_from_state_dict);
     safetensors keeps none, so the rebuild hands the architecture's own versions back."""
     from splice.store import load_base
-    from splice.verify import verify
+    from splice.verification import verify
 
     src = splice.load_source("torchvision:mnasnet0_5", input_shape=(3, 64, 64), warn_random=False)
     folder = splice.save(insert(src, at="input"), tmp_path / "mnas")

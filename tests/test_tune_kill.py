@@ -21,7 +21,7 @@ import pytest
 import splice
 from splice._io import state_dict_sha256
 from splice.training.checkpoint import CHECKPOINT_NAME, load_checkpoint
-from splice.verify import verify
+from splice.verification import verify
 
 pytestmark = pytest.mark.slow
 

@@ -20,7 +20,7 @@ from splice._io import file_sha256, state_dict_sha256
 from splice.cli import main
 from splice.errors import DataError, ManifestError, SpliceError
 from splice.surgery import insert, warps_of
-from splice.verify import (
+from splice.verification import (
     DEFAULT_TOLERANCES,
     CheckResult,
     VerifyReport,

@@ -1,0 +1,111 @@
+"""Comparing model outputs: the bottom layer shared by insert, verify and export.
+
+Model outputs may be a tensor or any nesting of tuples, lists and dicts of
+tensors; :func:`flatten_outputs` names each tensor by its path (``out``,
+``out[0]``, ``out.logits``), and :func:`compare_outputs` compares two outputs
+path by path. Imports only torch and :mod:`splice.errors`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import torch
+
+__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows"]
+
+# max error relative to the output's scale (max |y|), by dtype. float32 rounding
+# through a bilinear resample at the identity stays near 1e-7; 1e-5 leaves room
+# for deep networks (common practice, no source).
+DEFAULT_TOLERANCES = {torch.float32: 1e-5, torch.float64: 1e-10, torch.float16: 1e-2, torch.bfloat16: 1e-2}
+
+
+def flatten_outputs(out, prefix: str = "out") -> dict[str, torch.Tensor]:
+    """Flatten tensors in nested tuple/list/dict outputs into ``{path: tensor}``."""
+    if isinstance(out, torch.Tensor):
+        return {prefix: out}
+    if isinstance(out, Mapping):
+        flat: dict[str, torch.Tensor] = {}
+        for k in out:
+            flat.update(flatten_outputs(out[k], f"{prefix}.{k}"))
+        return flat
+    if isinstance(out, Sequence) and not isinstance(out, (str, bytes)):
+        flat = {}
+        for i, v in enumerate(out):
+            flat.update(flatten_outputs(v, f"{prefix}[{i}]"))
+        return flat
+    return {}
+
+
+def _failed(detail: str, *, inf: bool = False) -> dict:
+    worst = float("inf") if inf else None
+    return {"passed": False, "max_abs": worst, "max_rel": worst, "top1": None, "detail": detail}
+
+
+def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
+    """Compare two model outputs (any nesting). Returns numbers and a verdict.
+
+    ``max_rel`` is the max absolute error divided by the reference's max
+    absolute value (per output, then the worst). ``top1`` is the fraction of
+    rows whose argmax agrees, for 2-D classifier-like outputs (else ``None``).
+    """
+    ref, cand = flatten_outputs(reference), flatten_outputs(candidate)
+    if not ref:
+        return _failed(f"the model returned {type(reference).__name__}, which holds no tensors")
+    if set(ref) != set(cand):
+        return _failed(f"output structure differs: {sorted(ref)} vs {sorted(cand)}")
+    max_abs = 0.0
+    max_rel = 0.0
+    top1: list[float] = []
+    shapes_ok = True
+    dtype = next(iter(ref.values())).dtype
+    for key, a in ref.items():
+        b = cand[key]
+        if a.shape != b.shape:
+            shapes_ok = False
+            continue
+        a64, b64 = a.detach().double().cpu(), b.detach().double().cpu()
+        if not torch.isfinite(b64).all():
+            return _failed(f"{key} has NaN or Inf values", inf=True)
+        err = float((a64 - b64).abs().max()) if a64.numel() else 0.0
+        scale = float(a64.abs().max()) if a64.numel() else 0.0
+        max_abs = max(max_abs, err)
+        max_rel = max(max_rel, err / scale if scale > 0 else err)
+        if a.ndim == 2 and a.shape[1] > 1 and a.is_floating_point():
+            top1.append(float((a64.argmax(1) == b64.argmax(1)).double().mean()))
+    limit = DEFAULT_TOLERANCES.get(dtype, 1e-5) if tol is None else tol
+    agree = min(top1) if top1 else None
+    passed = shapes_ok and max_rel <= limit
+    if not shapes_ok:
+        detail = "output shapes differ: " + ", ".join(
+            f"{k} {tuple(ref[k].shape)} vs {tuple(cand[k].shape)}" for k in ref if ref[k].shape != cand[k].shape)
+    else:
+        detail = f"max abs error {max_abs:.3g}, max relative error {max_rel:.3g} (tolerance {limit:g})"
+    return {"passed": passed, "max_abs": max_abs, "max_rel": max_rel, "top1": agree,
+            "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail}
+
+
+def _map_tensors(out, fn):
+    """``out`` with ``fn`` applied to every tensor, containers (named tuples included) kept."""
+    if isinstance(out, torch.Tensor):
+        return fn(out)
+    if isinstance(out, Mapping):
+        return {k: _map_tensors(v, fn) for k, v in out.items()}
+    if isinstance(out, tuple) and hasattr(out, "_fields"):  # a named tuple
+        return type(out)(*(_map_tensors(v, fn) for v in out))
+    if isinstance(out, (tuple, list)):
+        return type(out)(_map_tensors(v, fn) for v in out)
+    return out
+
+
+def detached(out):
+    """``out`` (a tensor or nested tuple/list/dict of them) with every tensor detached, containers kept."""
+    return _map_tensors(out, lambda t: t.detach())
+
+
+def first_rows(out, batch: int):
+    """``out`` restricted to the first sample, or ``None`` if some output has no batch dimension."""
+    flat = flatten_outputs(out)
+    if not flat or any(t.dim() == 0 or t.shape[0] != batch for t in flat.values()):
+        return None
+    return _map_tensors(out, lambda t: t[:1])

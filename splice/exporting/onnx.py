@@ -1,0 +1,170 @@
+"""ONNX export: the TorchScript exporter (the default) and the dynamo exporter, quiet and failing in one line."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import os
+import warnings
+
+import torch
+from torch import nn
+
+from ..compare import flatten_outputs
+from ..errors import SpliceError, first_line
+from .weights import WeightsAsInputs
+
+__all__ = ["MIN_OPSET", "DYNAMO_MIN_OPSET", "EXPORTERS", "check_opset", "export_onnx_bytes"]
+
+# GridSample (the op a warp's sampler lowers to) entered the ONNX standard at
+# opset 16 (onnx/docs/Operators.md, GridSample "since version 16").
+MIN_OPSET = 16
+
+# torch.onnx's dynamo exporter writes opset 18 and down-converts; the down
+# conversion fails for resnet-style graphs (measured with torch 2.14), so it is
+# only used at 18 and above.
+DYNAMO_MIN_OPSET = 18
+
+EXPORTERS = ("torchscript", "dynamo")
+
+
+def check_opset(opset: int, exporter: str) -> None:
+    """Refuse an unknown exporter or an opset without GridSample (one-line :class:`SpliceError`)."""
+    if exporter not in EXPORTERS:
+        raise SpliceError(f"unknown exporter {exporter!r}; choose one of: {', '.join(EXPORTERS)}")
+    if isinstance(opset, bool) or not isinstance(opset, int) or opset < MIN_OPSET:
+        raise SpliceError(
+            f"ONNX opset {opset!r} is too old for a spliced model: warps need GridSample, "
+            f"added in opset {MIN_OPSET}; pass --opset {MIN_OPSET} or newer (default 17)"
+        )
+
+def _downgrade(data: bytes, opset: int) -> bytes:
+    """Convert an opset-18 graph from the dynamo exporter down to ``opset`` (16 or 17).
+
+    The dynamo exporter writes opset 18 or newer and its own down-conversion
+    fails on reductions whose axes are inputs; onnx's version converter does
+    the job, but leaves ``noop_with_empty_axes`` (an opset-18 attribute of
+    ``ReduceMean`` and friends) behind, which is dropped when it has its
+    default value 0.
+    """
+    import onnx
+    from onnx import version_converter
+
+    try:
+        converted = version_converter.convert_version(onnx.load_from_string(data), opset)
+        for node in converted.graph.node:
+            if node.op_type.startswith("Reduce"):
+                keep = [a for a in node.attribute if not (a.name == "noop_with_empty_axes" and a.i == 0)]
+                if len(keep) != len(node.attribute):
+                    del node.attribute[:]
+                    node.attribute.extend(keep)
+        onnx.checker.check_model(converted)
+    except Exception as exc:
+        first = first_line(exc)
+        raise SpliceError(
+            f"the dynamo exporter writes opset {DYNAMO_MIN_OPSET}+ and converting to opset {opset} failed "
+            f"({first}); pass --opset {DYNAMO_MIN_OPSET} or use the TorchScript exporter"
+        ) from None
+    return converted.SerializeToString()
+
+def _output_names(model: nn.Module, example: torch.Tensor, n_outputs: int | None) -> list[str]:
+    if n_outputs is None:
+        with torch.no_grad():
+            n_outputs = len(flatten_outputs(model(example)))
+    return [f"output_{i}" for i in range(n_outputs)]
+
+@contextlib.contextmanager
+def _exporting(model: nn.Module, exporter: str, opset: int):
+    """Eval mode, the exporters' own chatter silenced, and failures as :class:`SpliceError`."""
+    was_training = model.training
+    model.eval()
+    try:
+        with warnings.catch_warnings():
+            # the TorchScript exporter announces its own deprecation; the tracer
+            # warns about shape-dependent Python branches, which are static here
+            warnings.filterwarnings("ignore", message=".*legacy TorchScript-based ONNX export.*")
+            warnings.filterwarnings("ignore", category=torch.jit.TracerWarning)
+            yield
+    except SpliceError:
+        raise
+    except Exception as exc:
+        first = first_line(exc)
+        raise SpliceError(
+            f"ONNX export ({exporter}, opset {opset}) failed: {type(exc).__name__}: {first}; "
+            "try another --opset, or exporter='dynamo'/'torchscript'"
+        ) from exc
+    finally:
+        model.train(was_training)
+
+@contextlib.contextmanager
+def _stdout_to_nowhere():
+    """File descriptor 1 sent to /dev/null for the duration (C++ code writes there directly).
+
+    When the TorchScript exporter fails it dumps the whole graph to stdout
+    from C++, which would bury the error and break ``--json`` output; the
+    error itself still arrives as the exception.
+    """
+    import sys
+
+    try:
+        sys.stdout.flush()
+    except (OSError, ValueError):
+        pass
+    fd = 1  # std::cout, whatever Python's sys.stdout is at the moment
+    try:
+        saved = os.dup(fd)
+    except OSError:  # no usable descriptor: leave everything as it is
+        yield
+        return
+    try:
+        with open(os.devnull, "wb") as sink:
+            os.dup2(sink.fileno(), fd)
+            yield
+    finally:
+        os.dup2(saved, fd)
+        os.close(saved)
+
+def _torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
+                 dynamic_batch: bool, fold_constants: bool) -> bytes:
+    buf = io.BytesIO()
+    axes = {n: {0: "batch"} for n in [inputs[0], *names]} if dynamic_batch else None
+    with _stdout_to_nowhere():
+        torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False, input_names=inputs,
+                          output_names=names, dynamic_axes=axes, do_constant_folding=fold_constants)
+    return buf.getvalue()
+
+def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
+                      exporter: str = "torchscript", fold_constants: bool = True,
+                      n_outputs: int | None = None, weights_as_inputs: bool = False) -> bytes:
+    """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
+
+    ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
+    ``'dynamo'`` uses the torch.export based exporter (which writes opset 18+;
+    16 and 17 are reached with onnx's version converter). Outputs are
+    named ``output_0 ...`` in the order of :func:`splice.compare.flatten_outputs`;
+    pass ``n_outputs`` when it is known to save the forward pass that counts them.
+    With ``weights_as_inputs`` (TorchScript only) every parameter and
+    persistent buffer is an input after the image, named after its state-dict
+    entry, instead of a stored initializer: the same operators, without the
+    cost of serialising the weights and of onnxruntime preparing them, and one
+    graph runs at any warp. Such a graph is for checking (see
+    :func:`onnx_parity`), not for shipping.
+    """
+    check_opset(opset, exporter)
+    if weights_as_inputs and exporter != "torchscript":
+        raise SpliceError("weights_as_inputs needs exporter='torchscript'")
+    with _exporting(model, exporter, opset):
+        names = _output_names(model, example, n_outputs)
+        if weights_as_inputs:
+            target = WeightsAsInputs(model)
+            return _torchscript(target, (example, *target.values), ["input", *target.names], names, opset=opset,
+                                dynamic_batch=dynamic_batch, fold_constants=fold_constants)
+        if exporter == "torchscript":
+            return _torchscript(model, (example,), ["input"], names, opset=opset, dynamic_batch=dynamic_batch,
+                                fold_constants=fold_constants)
+        dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
+        program = torch.onnx.export(model, (example,), dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
+                                    input_names=["input"], output_names=names, dynamic_shapes=dims,
+                                    optimize=fold_constants, verbose=False)
+        data = program.model_proto.SerializeToString()
+        return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data

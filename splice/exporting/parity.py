@@ -1,0 +1,316 @@
+"""Parity of an export with the eager model, as stored and with every warp perturbed.
+
+Tolerances (:data:`EXPORT_TOLERANCES`) are the max error relative to the
+output's scale (max ``|y|``), as in :func:`splice.compare.compare_outputs`:
+float32 1e-4, float64 1e-9. onnxruntime picks other convolution algorithms
+and summation orders than torch, which shows as relative errors of 1e-7..1e-5
+on deep nets; 1e-4 leaves room for that and still catches any changed weight
+or mis-lowered op (common practice, no source).
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from ..compare import compare_outputs, detached, flatten_outputs
+from ..errors import CheckFailed, SpliceError, first_line
+from .onnx import MIN_OPSET, check_opset, export_onnx_bytes
+from .onnx import _exporting, _output_names, _torchscript
+from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
+
+__all__ = ["EXPORT_TOLERANCES", "onnx_parity", "check_onnx_graph"]
+
+EXPORT_TOLERANCES = {torch.float32: 1e-4, torch.float64: 1e-9}
+
+
+def _as_batches(inputs) -> list[torch.Tensor]:
+    if isinstance(inputs, torch.Tensor):
+        return [inputs]
+    return list(inputs)
+
+def _load_onnx(onnx_model):
+    import onnx
+
+    if isinstance(onnx_model, onnx.ModelProto):
+        return onnx_model
+    if isinstance(onnx_model, (bytes, bytearray)):
+        return onnx.load_from_string(bytes(onnx_model))
+    path = Path(onnx_model)
+    if not path.is_file():
+        raise SpliceError(f"ONNX file '{path}' does not exist; check the path")
+    try:
+        return onnx.load(str(path))
+    except Exception as exc:  # protobuf DecodeError and friends
+        raise SpliceError(f"'{path}' is not a readable ONNX file ({type(exc).__name__}); it may be damaged") from None
+
+def _ort_session(model, *, optimise: bool = True):
+    """A quiet onnxruntime CPU session for a ``ModelProto`` or serialised bytes.
+
+    ``optimise=False`` runs the graph's operators as exported, without
+    onnxruntime's graph rewrites (which need stored weights to fold anything).
+    """
+    import onnxruntime as ort
+
+    data = bytes(model) if isinstance(model, (bytes, bytearray)) else model.SerializeToString()
+    opts = ort.SessionOptions()
+    opts.log_severity_level = 3
+    if not optimise:
+        opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
+    try:
+        return ort.InferenceSession(data, opts, providers=["CPUExecutionProvider"])
+    except Exception as exc:  # onnxruntime raises its own exception types
+        first = first_line(exc)
+        raise CheckFailed(f"onnxruntime cannot load the exported graph ({first}); try another --opset, "
+                          "or report the model") from None
+
+def _run_batches(torch_model, session, feed_name: str, batches, extra: dict, tol, known=None) -> dict:
+    """Compare ``session`` with ``torch_model`` on every batch (``known``: torch outputs already at hand)."""
+    results = []
+    for i, x in enumerate(batches):
+        if known is not None:
+            ref = known[i]
+        else:
+            with torch.no_grad():
+                ref = torch_model(x)
+        try:
+            outs = session.run(None, {feed_name: x.detach().cpu().numpy(), **extra})
+        except Exception as exc:  # onnxruntime raises its own exception types
+            first = first_line(exc)
+            return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                    "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
+        results.append(_compare_flat(ref, outs, tol))
+    return _merge(results)
+
+def _overridable(proto, names: Sequence[str]):
+    """Declare the named initializers overridable graph inputs (values unchanged), in place.
+
+    Feeding such an input replaces the tensor for one run, so the perturbed
+    check needs no second export and no second session. The TorchScript
+    exporter merges equal initializers (two zero-initialised heads of one
+    shape share one tensor; the other names become Identity outputs): each
+    merged name gets its own copy back first, so overriding one head's tensor
+    changes nothing else. Returns ``None`` (leaving ``proto`` unusable) when a
+    name is missing or is shared by several consumers.
+    """
+    from onnx import helper
+
+    graph = proto.graph
+    inits = {init.name: init for init in graph.initializer}
+    aliases = {n.output[0]: n for n in graph.node
+               if n.op_type == "Identity" and len(n.input) == 1 and n.input[0] in inits}
+    wanted = set(names)
+    if any(n not in inits and n not in aliases for n in wanted):
+        return None
+    roots = {name if name in inits else aliases[name].input[0] for name in wanted}
+    # every alias of a root being touched becomes a standalone copy of the root
+    for out, node in list(aliases.items()):
+        if node.input[0] in roots and (out in wanted or node.input[0] in wanted):
+            copy_ = graph.initializer.add()
+            copy_.CopyFrom(inits[node.input[0]])
+            copy_.name = out
+            graph.node.remove(node)
+            inits[out] = copy_
+    direct = {}
+    for node in graph.node:
+        for name in node.input:
+            direct[name] = direct.get(name, 0) + 1
+    if any(direct.get(name, 0) != 1 for name in wanted):
+        return None
+    declared = {i.name for i in graph.input}
+    for name in sorted(wanted - declared):
+        graph.input.append(helper.make_tensor_value_info(name, inits[name].data_type, list(inits[name].dims)))
+    return proto
+
+def _merge(results: list[dict]) -> dict:
+    ok = all(r["passed"] for r in results)
+    nums = [r for r in results if r.get("max_abs") is not None]
+    worst = max(nums, key=lambda r: r["max_rel"]) if nums else results[0]
+    top1 = [r["top1"] for r in results if r.get("top1") is not None]
+    return {"passed": ok, "max_abs": max((r["max_abs"] for r in nums), default=None),
+            "max_rel": max((r["max_rel"] for r in nums), default=None), "top1": min(top1) if top1 else None,
+            "detail": next((r["detail"] for r in results if not r["passed"]), worst["detail"])}
+
+def _compare_flat(reference, outputs: list, tol: float) -> dict:
+    ref = flatten_outputs(reference)
+    if len(outputs) != len(ref):
+        return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                "detail": f"the export returns {len(outputs)} outputs, the model {len(ref)} ({', '.join(ref)})"}
+    cand = {k: torch.as_tensor(v) for k, v in zip(ref, outputs)}
+    ref = {k: v.to(cand[k].dtype) if v.dtype != cand[k].dtype else v for k, v in ref.items()}
+    return compare_outputs(ref, cand, tol=tol)
+
+def _tolerance(model: nn.Module, tol: float | None) -> float:
+    if tol is not None:
+        return tol
+    p = next(iter(model.parameters()), None)
+    return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, 1e-4)
+
+def _model_dtype(model: nn.Module) -> torch.dtype:
+    p = next(iter(model.parameters()), None)
+    return p.dtype if p is not None else torch.float32
+
+def _summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
+    passed = stored["passed"] and (perturbed is None or perturbed["passed"])
+    if not stored["passed"]:
+        detail = f"as stored: {stored['detail']}"
+    elif perturbed is not None and not perturbed["passed"]:
+        detail = f"with the perturbed warp: {perturbed['detail']}"
+    else:
+        detail = (f"max abs error {stored['max_abs']:.3g} as stored"
+                  + (f", {perturbed['max_abs']:.3g} with a perturbed warp" if perturbed else ", no warps to perturb")
+                  + f" (relative tolerance {tol:g})")
+    return {
+        "passed": passed,
+        "max_abs": stored["max_abs"], "max_rel": stored["max_rel"], "top1": stored["top1"],
+        "max_abs_perturbed": perturbed["max_abs"] if perturbed else None,
+        "max_rel_perturbed": perturbed["max_rel"] if perturbed else None,
+        "tolerance": tol, "batch_sizes": sizes, "perturbed_by": how, "detail": detail,
+    }
+
+def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
+                references: Sequence | None = None) -> dict:
+    """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
+
+    ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
+    ``inputs`` is one batch or a list of batches (e.g. two batch sizes for a
+    dynamic-batch export). With ``perturb`` (and warps present) the check runs
+    again with every warp set to :func:`perturbation_theta`. Returns
+    ``{passed, max_abs, max_rel, top1, max_abs_perturbed, max_rel_perturbed,
+    tolerance, batch_sizes, perturbed_by, detail}``; never changes ``model``.
+    ``references`` may hold ``model``'s outputs for ``inputs`` when the caller
+    has them already (one per batch); they are used for the as-stored check.
+    A graph from ``export_onnx_bytes(weights_as_inputs=True)`` is recognised by
+    its inputs and fed ``model``'s own tensors, then the perturbed head tensors.
+    """
+    import onnx
+
+    proto = _load_onnx(onnx_model)
+    tol = _tolerance(model, tol)
+    batches = _as_batches(inputs)
+    if references is not None and len(references) != len(batches):
+        raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
+    if _weight_inputs(proto, model):
+        return _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references)
+    if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
+        proto = onnx.ModelProto()
+        proto.CopyFrom(onnx_model)
+    values = perturbed_tensors(model) if perturb else {}
+    n_outputs = len(proto.graph.output)
+    opset = next((o.version for o in proto.opset_import if o.domain in ("", "ai.onnx")), 17)
+    checked = _overridable(proto, list(values)) if values else proto
+    how = "feeds" if values and checked is not None else ("re-export" if values else None)
+    if checked is None:  # the exporter merged the head tensors beyond repair: the original graph is used
+        proto = _load_onnx(onnx_model)
+        checked = proto
+    was_training = model.training
+    model.eval()
+    try:
+        session = _ort_session(checked)
+
+        def run(torch_model, sess, extra: dict, known=None) -> dict:
+            return _run_batches(torch_model, sess, sess.get_inputs()[0].name, batches, extra, tol, known)
+
+        stored = run(model, session, {}, references)
+        perturbed = None
+        if values:
+            twin = perturbed_copy(model)
+            if how == "feeds":
+                perturbed = run(twin, session, {k: v.detach().cpu().numpy() for k, v in values.items()})
+            else:
+                again = export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
+                                          dynamic_batch=len({b.shape[0] for b in batches}) > 1,
+                                          fold_constants=False, n_outputs=n_outputs)
+                perturbed = run(twin, _ort_session(_load_onnx(again)), {})
+    finally:
+        model.train(was_training)
+    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
+
+def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
+    """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
+    missing = sorted(set(values) - set(own))
+    if missing:
+        raise SpliceError(f"the ONNX graph does not take the warp head tensor(s) {', '.join(missing)} as inputs; "
+                          "export it with export_onnx_bytes(weights_as_inputs=True), or check a self-contained "
+                          "export with onnx_parity")
+    return {**own, **{k: v.detach().cpu().numpy() for k, v in values.items()}}
+
+def _weight_inputs(proto, model: nn.Module) -> list[str]:
+    """The graph inputs after the image that are ``model``'s state entries, if all of them are; else ``[]``."""
+    inits = {init.name for init in proto.graph.initializer}
+    extra = [i.name for i in proto.graph.input[1:] if i.name not in inits]
+    if not extra:
+        return []
+    state = model.state_dict(keep_vars=True)
+    return extra if all(n in state for n in extra) else []
+
+def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, references,
+                               perturbed_references=None, optimise: bool = True) -> dict:
+    """One session of a weights-as-inputs graph, fed ``model``'s tensors, then the perturbed head tensors.
+
+    ``perturbed_references`` may hold the perturbed model's outputs when the
+    caller has them (the tracer's pass in :func:`check_onnx_graph`).
+    """
+    session = _ort_session(graph, optimise=optimise)
+    image = session.get_inputs()[0].name
+    state = model.state_dict(keep_vars=True)
+    own = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[1:] if i.name in state}
+    was_training = model.training
+    model.eval()
+    try:
+        stored = _run_batches(model, session, image, batches, own, tol, references)
+        perturbed = None
+        values = perturbed_tensors(model) if perturb else {}
+        if values:
+            twin = perturbed_copy(model) if perturbed_references is None else None
+            perturbed = _run_batches(twin, session, image, batches, _perturbed_feeds(own, values), tol,
+                                     perturbed_references)
+    finally:
+        model.train(was_training)
+    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], "feeds" if perturbed else None)
+
+def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17, reference=None,
+                     tol: float | None = None, perturb: bool = True) -> dict:
+    """Export a checking graph of ``model`` and compare it in onnxruntime, as stored and perturbed.
+
+    The graph takes the weights as inputs (``export_onnx_bytes(weights_as_inputs=True)``,
+    TorchScript exporter, no constant folding) and is traced with the warp
+    heads' final tensors set to the perturbation, so the tracer's own forward
+    pass is the torch side of the perturbed comparison; one session is then
+    run fed the model's own tensors (compared with ``reference``, the
+    model's output for ``example``, computed when not given) and fed the
+    perturbed ones. ``example`` is one batch. Returns the
+    :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``
+    and ``bytes``; raises :class:`SpliceError` when the export fails. Used by
+    ``splice verify --onnx``; ``splice export`` checks the file it ships.
+    """
+    check_opset(opset, "torchscript")
+    tol = _tolerance(model, tol)
+    swapped = perturbed_tensors(model) if perturb else {}
+    start = time.perf_counter()
+    with _exporting(model, "torchscript", opset):
+        target = WeightsAsInputs(model, keep_output=True)
+        missing = sorted(set(swapped) - set(target.names))
+        if missing:
+            raise SpliceError(f"the warp head tensor(s) {', '.join(missing)} are not state-dict entries of their "
+                              "own; check the graph with onnx_parity on a self-contained export instead")
+        values = [swapped.get(name, v) for name, v in zip(target.names, target.values)]
+        names = (_output_names(model, example, None) if reference is None
+                 else [f"output_{i}" for i in range(len(flatten_outputs(reference)))])
+        data = _torchscript(target, (example, *values), ["input", *target.names], names, opset=opset,
+                            dynamic_batch=False, fold_constants=False)
+        traced = detached(target.output)
+    seconds = time.perf_counter() - start
+    start = time.perf_counter()
+    if not swapped and reference is None:
+        reference = traced  # traced as stored: the tracer's pass is the stored model's output
+    # op for op: with the weights fed there is nothing for onnxruntime to fold
+    # or fuse ahead of time, and the file that ships is checked by export()
+    result = _parity_with_weight_inputs(model, data, [example], perturb=bool(swapped), tol=tol,
+                                        references=None if reference is None else [reference],
+                                        perturbed_references=[traced], optimise=False)
+    return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}

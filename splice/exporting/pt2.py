@@ -1,0 +1,90 @@
+"""torch.export: the program as bytes, and its parity with the eager model."""
+
+from __future__ import annotations
+
+import copy
+import io
+import os
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from ..compare import flatten_outputs
+from ..errors import SpliceError, first_line
+from .parity import _as_batches, _compare_flat, _merge, _summary, _tolerance
+from .weights import perturbed_copy, perturbed_tensors
+
+__all__ = ["export_pt2_bytes", "pt2_parity"]
+
+
+def export_pt2_bytes(model: nn.Module, example: torch.Tensor, *, dynamic_batch: bool = False) -> bytes:
+    """``torch.export.export`` + ``torch.export.save`` into bytes (the model is not changed)."""
+    was_training = model.training
+    model.eval()
+    try:
+        dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
+        program = torch.export.export(model, (example,), dynamic_shapes=dims)
+        buf = io.BytesIO()
+        torch.export.save(program, buf)
+        return buf.getvalue()
+    except Exception as exc:
+        first = first_line(exc)
+        raise SpliceError(f"torch.export failed: {type(exc).__name__}: {first}") from exc
+    finally:
+        model.train(was_training)
+
+def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:
+    """Reload a torch.export program (path, bytes or ``ExportedProgram``) and compare it with ``model``.
+
+    Same contract as :func:`onnx_parity`; the perturbed check swaps the warp
+    heads' final tensors in the reloaded program's module.
+    """
+    if isinstance(program, (bytes, bytearray)):
+        ep = torch.export.load(io.BytesIO(bytes(program)))
+    elif isinstance(program, (str, os.PathLike)):
+        if not Path(program).is_file():
+            raise SpliceError(f"torch.export file '{program}' does not exist; check the path")
+        ep = torch.export.load(str(program))
+    else:
+        ep = program
+    tol = _tolerance(model, tol)
+    batches = _as_batches(inputs)
+    was_training = model.training
+    model.eval()
+    try:
+        def run(torch_model, exported) -> dict:
+            results = []
+            for x in batches:
+                with torch.no_grad():
+                    ref = torch_model(x)
+                    try:
+                        out = exported(x)
+                    except Exception as exc:
+                        first = first_line(exc)
+                        return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                                "detail": f"the exported program failed on a batch of {x.shape[0]}: {first}"}
+                results.append(_compare_flat(ref, list(flatten_outputs(out).values()), tol))
+            return _merge(results)
+
+        exported = ep.module()
+        stored = run(model, exported)
+        perturbed, how = None, None
+        values = perturbed_tensors(model)
+        if perturb and values:
+            twin = perturbed_copy(model)
+            swapped = torch.export.load(io.BytesIO(program)) if isinstance(program, (bytes, bytearray)) else None
+            module = (swapped or copy.deepcopy(ep)).module()
+            params = dict(module.named_parameters())
+            if all(n in params for n in values):
+                with torch.no_grad():
+                    for n, v in values.items():
+                        params[n].copy_(v)
+                how = "parameters"
+            else:
+                module = torch.export.export(twin, (batches[0],)).module()
+                how = "re-export"
+            perturbed = run(twin, module)
+    finally:
+        model.train(was_training)
+    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)

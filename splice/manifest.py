@@ -1,0 +1,364 @@
+"""What a splice is: one typed record (:class:`SpliceInfo`) and its one round trip to ``splice.json``.
+
+A spliced model carries its :class:`SpliceInfo` (:func:`attach_info`,
+:func:`info_of`); :func:`splice.store.save` writes it as ``splice.json`` with
+:meth:`SpliceInfo.to_manifest`, and a folder is read back with
+:meth:`SpliceInfo.from_manifest`, which validates the file first
+(:func:`validate_manifest`). The record is rebuilt only from splice's own
+classes: warp configurations become :class:`~splice.warps.WarpConfig`.
+
+``splice.json`` (schema version 1)::
+
+    {
+      "schema_version": 1,
+      "format": "splice-folder",
+      "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
+                 "weights_sha256": str | null, "random_init": bool},
+      "input_shape": [C, H, W],
+      "normalisation": {"mean": [...], "std": [...]} | null,
+      "class_names": [str, ...] | null,
+      "leaves": [str, ...],
+      "points": [{"name": str, "shape": [C, H, W], "cut": bool, "warp": {WarpConfig}}],
+      "weights": {"file": "weights.safetensors", "sha256": str, "base_sha256": str},
+      "tuning": null | {"recipe": str, "base_changed": bool, ...},
+      "versions": {"splice": str, "torch": str, "torchvision": str},
+      "created": ISO-8601 UTC
+    }
+
+``source.weights_sha256`` is the canonical hash of the base state dict the
+splice started from (provenance); ``weights.sha256`` is the hash of the
+``weights.safetensors`` bytes as written (integrity); ``weights.base_sha256``
+is the canonical hash of the base part of the saved state dict.
+
+Layer: beside :mod:`splice.surgery`, which imports it; it imports only
+:mod:`splice.errors` and :mod:`splice.warps`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from .errors import ManifestError
+from .warps import WarpConfig
+
+__all__ = [
+    "SCHEMA_VERSION",
+    "FORMAT",
+    "MANIFEST_NAME",
+    "WEIGHTS_NAME",
+    "PointRecord",
+    "SpliceInfo",
+    "validate_manifest",
+    "info_of",
+    "attach_info",
+]
+
+SCHEMA_VERSION = 1
+FORMAT = "splice-folder"
+MANIFEST_NAME = "splice.json"
+WEIGHTS_NAME = "weights.safetensors"
+
+
+# ----------------------------------------------------------------------------- schema checks
+
+
+def _shape_ok(v: Any) -> bool:
+    return isinstance(v, list) and len(v) == 3 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0 for d in v)
+
+
+def _header(data: dict, problems: list[str]) -> None:
+    version = data.get("schema_version")
+    if version != SCHEMA_VERSION:
+        problems.append(f"schema_version is {version!r}, this splice reads {SCHEMA_VERSION}")
+    if data.get("format") != FORMAT:
+        problems.append(f"format is {data.get('format')!r}, expected {FORMAT!r}")
+
+
+def _source(data: dict, problems: list[str]) -> None:
+    src = data.get("source")
+    if not isinstance(src, dict):
+        problems.append("source must be an object")
+        return
+    if not isinstance(src.get("spec"), str) or not src.get("spec"):
+        problems.append("source.spec must be a non-empty string")
+    if not isinstance(src.get("kwargs", {}), dict):
+        problems.append("source.kwargs must be an object")
+    for key in ("weights_sha256", "weights_file"):
+        if src.get(key) is not None and not isinstance(src.get(key), str):
+            problems.append(f"source.{key} must be a string or null")
+
+
+def _inputs(data: dict, problems: list[str]) -> None:
+    """Input shape, normalisation, class names and leaves."""
+    if not _shape_ok(data.get("input_shape")):
+        problems.append(f"input_shape must be [C, H, W] positive integers, found {data.get('input_shape')!r}")
+    norm = data.get("normalisation")
+    if norm is not None:
+        if not (isinstance(norm, dict) and set(norm) == {"mean", "std"}
+                and all(isinstance(norm[k], list) and all(isinstance(x, (int, float)) for x in norm[k]) for k in norm)):
+            problems.append("normalisation must be null or {\"mean\": [...], \"std\": [...]}")
+        elif any(s <= 0 for s in norm["std"]):
+            problems.append("normalisation.std values must be positive")
+    names = data.get("class_names")
+    if names is not None and not (isinstance(names, list) and all(isinstance(n, str) for n in names)):
+        problems.append("class_names must be null or a list of strings")
+    if not isinstance(data.get("leaves", []), list):
+        problems.append("leaves must be a list of strings")
+
+
+def _points(data: dict, problems: list[str]) -> None:
+    pts = data.get("points")
+    if not isinstance(pts, list):
+        problems.append("points must be a list")
+        pts = []
+    seen: set[str] = set()
+    for i, p in enumerate(pts):
+        if not isinstance(p, dict) or not isinstance(p.get("name"), str):
+            problems.append(f"points[{i}] must be an object with a string name")
+            continue
+        if p["name"] in seen:
+            problems.append(f"points[{i}] repeats point {p['name']!r}")
+        seen.add(p["name"])
+        try:
+            WarpConfig.from_dict(p.get("warp") if isinstance(p.get("warp"), dict) else {"family": None})
+        except (ValueError, TypeError) as exc:
+            problems.append(f"points[{i}].warp: {exc}")
+
+
+def _weights(data: dict, problems: list[str]) -> None:
+    w = data.get("weights")
+    if not (isinstance(w, dict) and isinstance(w.get("file"), str) and isinstance(w.get("sha256"), str)):
+        problems.append("weights must be {\"file\": str, \"sha256\": str, ...}")
+    elif "/" in w["file"] or "\\" in w["file"] or w["file"].startswith("."):
+        problems.append(f"weights.file must be a plain file name inside the folder, found {w['file']!r}")
+
+
+def _tuning(data: dict, problems: list[str]) -> None:
+    tuning = data.get("tuning")
+    if tuning is not None and not isinstance(tuning, dict):
+        problems.append("tuning must be null or an object")
+
+
+# in the order of the file; the record checks its own part (no header, no weights)
+_FILE_CHECKS: tuple[Callable[[dict, list[str]], None], ...] = (_header, _source, _inputs, _points, _weights, _tuning)
+_RECORD_CHECKS = (_source, _inputs, _points, _tuning)
+
+
+def _problems(data: dict, checks) -> list[str]:
+    problems: list[str] = []
+    for check in checks:
+        check(data, problems)
+    return problems
+
+
+def validate_manifest(data: Any, where: str = MANIFEST_NAME) -> dict:
+    """Check a parsed ``splice.json``; raise :class:`ManifestError` naming every violation."""
+    if not isinstance(data, dict):
+        raise ManifestError(f"{where} must hold a JSON object, found {type(data).__name__}; re-create the folder with 'splice insert'")
+    problems = _problems(data, _FILE_CHECKS)
+    if problems:
+        raise ManifestError(
+            f"{where} violates the splice folder schema: " + "; ".join(problems)
+            + ". Re-create the folder with 'splice insert' rather than editing it by hand"
+        )
+    return data
+
+
+# ----------------------------------------------------------------------------- the record
+
+
+@dataclass(frozen=True)
+class PointRecord:
+    """One spliced point: its name, the warp's configuration, and the shape and cut seen at splice time."""
+
+    name: str
+    warp: WarpConfig
+    shape: tuple[int, int, int] | None = None
+    cut: bool | None = None
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.name, str) or not self.name:
+            raise ManifestError(f"a point needs a non-empty string name, got {self.name!r}; name a point from "
+                                "'splice points MODEL'")
+        if isinstance(self.warp, Mapping):
+            object.__setattr__(self, "warp", WarpConfig.from_dict(self.warp))
+        if not isinstance(self.warp, WarpConfig):
+            raise ManifestError(f"point {self.name!r}: warp must be a WarpConfig or its dict, got "
+                                f"{type(self.warp).__name__}; pass WarpConfig(family=...)")
+        if self.shape is not None:
+            object.__setattr__(self, "shape", tuple(self.shape))
+            if not _shape_ok(list(self.shape)):
+                raise ManifestError(f"point {self.name!r}: shape must be (C, H, W) positive integers, found "
+                                    f"{self.shape!r}; take it from 'splice points MODEL'")
+
+    def to_json(self) -> dict:
+        out: dict[str, Any] = {"name": self.name, "warp": self.warp.to_dict()}
+        if self.shape is not None:
+            out["shape"] = list(self.shape)
+        if self.cut is not None:
+            out["cut"] = bool(self.cut)
+        return out
+
+    @classmethod
+    def from_json(cls, data: Mapping) -> PointRecord:
+        shape = data.get("shape")
+        return cls(data["name"], WarpConfig.from_dict(data.get("warp") or {}),
+                   tuple(shape) if shape else None, data.get("cut"))
+
+
+_LEGACY_KEYS = ("spec", "kwargs", "input_shape", "normalisation", "class_names", "leaves", "source_weights_sha256",
+                "source_weights_path", "random_init", "points", "tuning", "folder", "check")
+
+
+@dataclass(frozen=True)
+class SpliceInfo:
+    """What a splice is: its source, input, points and warps, and its tuning history.
+
+    ``spec``/``kwargs`` rebuild the base architecture; ``source_weights_sha256``
+    and ``source_weights_path`` say which weights it started from
+    (``random_init`` when none). ``points`` are :class:`PointRecord` in
+    graph order. ``tuning`` is what ``splice tune`` recorded (``None`` for a
+    fresh splice). Not written to ``splice.json``: ``folder`` (where the
+    record was read from) and ``check`` (:func:`splice.insert`'s identity
+    check on the spliced model).
+    """
+
+    spec: str = "<module>"
+    input_shape: tuple[int, int, int] | None = None
+    kwargs: dict = field(default_factory=dict)
+    normalisation: dict | None = None
+    class_names: list[str] | None = None
+    leaves: tuple[str, ...] = ()
+    source_weights_sha256: str | None = None
+    source_weights_path: str | None = None
+    random_init: bool = False
+    points: tuple[PointRecord, ...] = ()
+    tuning: dict | None = None
+    folder: str | None = None
+    check: dict | None = None
+
+    def __post_init__(self) -> None:
+        norm = self.normalisation
+        if isinstance(norm, Mapping) and all(isinstance(v, Sequence) for v in norm.values()):
+            object.__setattr__(self, "normalisation", {k: list(v) for k, v in norm.items()})
+        if self.class_names is not None and isinstance(self.class_names, (list, tuple)):
+            object.__setattr__(self, "class_names", list(self.class_names))
+        if self.input_shape is not None and isinstance(self.input_shape, Sequence):
+            object.__setattr__(self, "input_shape", tuple(self.input_shape))
+        object.__setattr__(self, "kwargs", dict(self.kwargs or {}))
+        object.__setattr__(self, "leaves", tuple(self.leaves or ()))
+        object.__setattr__(self, "points", tuple(p if isinstance(p, PointRecord) else PointRecord.from_json(p)
+                                                 for p in self.points or ()))
+        if self.folder is not None:
+            object.__setattr__(self, "folder", str(self.folder))
+        problems = _problems(self._json(), _RECORD_CHECKS)
+        if problems:
+            raise ManifestError("splice info is invalid: " + "; ".join(problems)
+                                + ". Build it with SpliceInfo.from_source or SpliceInfo.from_manifest")
+
+    # -- the one round trip
+
+    def _json(self) -> dict:
+        """The record's part of ``splice.json`` (no header, weights, versions or date)."""
+        return {
+            "source": {"spec": self.spec, "kwargs": self.kwargs, "weights_file": self.source_weights_path,
+                       "weights_sha256": self.source_weights_sha256, "random_init": bool(self.random_init)},
+            "input_shape": list(self.input_shape) if isinstance(self.input_shape, tuple) else self.input_shape,
+            "normalisation": self.normalisation,
+            "class_names": self.class_names,
+            "leaves": list(self.leaves),
+            "points": [p.to_json() for p in self.points],
+            "tuning": self.tuning,
+        }
+
+    def to_manifest(self, *, weights: Mapping, versions: Mapping, created: str) -> dict:
+        """The ``splice.json`` dict for this record, with the folder's ``weights`` entry, versions and date."""
+        return {"schema_version": SCHEMA_VERSION, "format": FORMAT, **self._json(), "weights": dict(weights),
+                "versions": dict(versions), "created": created}
+
+    @classmethod
+    def from_manifest(cls, data: Any, *, folder=None, where: str = MANIFEST_NAME) -> SpliceInfo:
+        """The record of a parsed ``splice.json``, validated first (:class:`ManifestError` names every violation)."""
+        validate_manifest(data, where)
+        src = data["source"]
+        return cls(
+            spec=src["spec"], kwargs=dict(src.get("kwargs") or {}), input_shape=tuple(data["input_shape"]),
+            normalisation=data.get("normalisation"), class_names=data.get("class_names"),
+            leaves=tuple(data.get("leaves") or ()), source_weights_sha256=src.get("weights_sha256"),
+            source_weights_path=src.get("weights_file"), random_init=bool(src.get("random_init", False)),
+            points=tuple(PointRecord.from_json(p) for p in data["points"]), tuning=data.get("tuning"),
+            folder=None if folder is None else str(folder),
+        )
+
+    @classmethod
+    def from_source(cls, src, *, points: Sequence[PointRecord] = (), leaves: Sequence[str] | None = None,
+                    check: dict | None = None) -> SpliceInfo:
+        """The record of a :class:`~splice.sources.Source` spliced at ``points`` (none: the plain model)."""
+        return cls(
+            spec=src.spec, kwargs=dict(src.kwargs), input_shape=src.input_shape, normalisation=src.normalisation,
+            class_names=src.class_names, leaves=tuple(src.leaves if leaves is None else leaves),
+            source_weights_sha256=src.weights_sha256, source_weights_path=src.weights_path,
+            random_init=bool(src.random_init), points=tuple(points), check=check,
+        )
+
+    # -- reading it
+
+    def replace(self, **changes) -> SpliceInfo:
+        """A copy with ``changes`` (validated again)."""
+        return dataclasses.replace(self, **changes)
+
+    @property
+    def point_names(self) -> list[str]:
+        return [p.name for p in self.points]
+
+    def recorded_shapes(self) -> dict[str, tuple[int, ...]] | None:
+        """``{point: (C, H, W)}`` as recorded, or ``None`` if a point (or a warp's ``loc_from``) has none."""
+        shapes = {p.name: tuple(p.shape) for p in self.points if p.shape}
+        if len(shapes) != len(self.points):
+            return None
+        if any(p.warp.loc_from is not None and p.warp.loc_from not in shapes for p in self.points):
+            return None
+        return shapes
+
+    # Key access for callers written against the dict this record replaced (cli, demo,
+    # inspection, benchmarks); points come back as their splice.json dicts. Temporary:
+    # remove once those callers read attributes.
+    def __getitem__(self, key: str) -> Any:
+        if key not in _LEGACY_KEYS:
+            raise KeyError(key)
+        return [p.to_json() for p in self.points] if key == "points" else getattr(self, key)
+
+    def get(self, key: str, default: Any = None) -> Any:
+        try:
+            return self[key]
+        except KeyError:
+            return default
+
+
+# ----------------------------------------------------------------------------- on a model
+
+
+def info_of(model) -> SpliceInfo | None:
+    """The :class:`SpliceInfo` a spliced (or loaded) model carries, or ``None`` for plain models.
+
+    It lives in ``model.splice_info`` and, so that ``copy.deepcopy`` keeps it
+    (fx's deepcopy drops custom attributes), in ``model.meta["splice_info"]``.
+    """
+    info = getattr(model, "splice_info", None)
+    if info is None:
+        info = (getattr(model, "meta", None) or {}).get("splice_info")
+        if info is not None:
+            model.splice_info = info
+    return info
+
+
+def attach_info(model, info: SpliceInfo) -> None:
+    """Give ``model`` its record (``model.splice_info``, and ``model.meta`` where fx keeps it through deepcopy)."""
+    if not isinstance(info, SpliceInfo):
+        raise TypeError(f"attach_info needs a SpliceInfo, got {type(info).__name__}")
+    model.splice_info = info
+    if isinstance(getattr(model, "meta", None), dict):
+        model.meta["splice_info"] = info

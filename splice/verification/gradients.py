@@ -1,0 +1,131 @@
+"""The ``gradients`` row (one backward pass reaches every warp head) and the ``onnx`` row."""
+
+from __future__ import annotations
+
+import copy
+import math
+import time
+from typing import Any
+
+import torch
+from torch import nn
+
+from ..compare import flatten_outputs
+from ..errors import CheckFailed, SpliceError
+from ..exporting import check_onnx_graph, export_onnx_bytes, onnx_parity
+from ..warps.perturb import final_layer
+from .probe import _error_text, _fmt, _names
+from .report import CheckResult
+
+__all__: list[str] = []
+
+
+def _gradients_row(warps, grads: dict[str, dict], error: str | None) -> CheckResult:
+    numbers: dict[str, Any] = {"warps": grads}
+    if error is not None:
+        return CheckResult("gradients", False, numbers, f"the backward pass failed ({error})", "backward failed")
+    if not warps:
+        return CheckResult("gradients", True, numbers, "the model has no warps", "no warps")
+    problems = []
+    for name, g in grads.items():
+        if not g["finite"]:
+            problems.append(f"warp {name!r} gets NaN/Inf gradients")
+        elif g["final_weight"] == 0.0 or g["final_bias"] == 0.0:
+            sampler = getattr(getattr(warps[name], "config", None), "sampler", None)
+            why = (" — the 'nearest' sampler passes no gradient to its grid, so this warp cannot be trained; "
+                   "use bilinear or bicubic") if sampler == "nearest" else (
+                   " — the warp does not influence the outputs, or its head is cut off from the loss")
+            problems.append(f"warp {name!r}'s final layer gets a zero gradient "
+                            f"(weight {g['final_weight']:.3g}, bias {g['final_bias']:.3g}){why}")
+    summary = ", ".join(f"{n} {g['final_bias']:.3g}" for n, g in grads.items())
+    if problems:
+        return CheckResult("gradients", False, numbers, "; ".join(problems), f"|grad| final bias: {summary}")
+    upstream = [n for n, g in grads.items() if g["upstream"] == 0.0]
+    note = (f"; earlier head layers of {_names(upstream)} get exactly 0, as they must at the identity "
+            "(the gradient flows through the zero final weight)") if upstream else ""
+    return CheckResult("gradients", True, numbers,
+                       f"every warp's final layer gets a finite, non-zero gradient{note}",
+                       f"|grad| final bias: {summary}")
+
+def _gradients(out, head_params: dict[str, dict[str, list]], seed: int) -> tuple[dict, str | None]:
+    """Norms of d(random projection of the outputs)/d(head parameters), per warp."""
+    gen = torch.Generator().manual_seed(int(seed) + 1)
+    flat = [t for t in flatten_outputs(out).values() if t.is_floating_point() and t.requires_grad]
+    grads: dict[str, dict] = {}
+    if not flat:
+        return grads, "no output depends on the parameters" if head_params else None
+    loss = sum((t * torch.randn(t.shape, generator=gen, dtype=torch.float32).to(t.dtype)).sum() for t in flat)
+    order = [(name, part, p) for name, parts in head_params.items() for part, ps in parts.items() for p in ps]
+    if not order:
+        return grads, None
+    try:
+        got = torch.autograd.grad(loss, [p for _, _, p in order], allow_unused=True)
+    except RuntimeError as exc:
+        return grads, _error_text(exc)
+    for (name, part, p), g in zip(order, got):
+        rec = grads.setdefault(name, {"final_weight": 0.0, "final_bias": 0.0, "upstream": 0.0, "finite": True})
+        if g is None:
+            continue
+        g64 = g.detach().double()
+        rec["finite"] = rec["finite"] and bool(torch.isfinite(g64).all())
+        norm = float(g64.norm())
+        rec[part] = math.hypot(rec[part], norm) if part == "upstream" else norm
+    for name in head_params:
+        grads.setdefault(name, {"final_weight": 0.0, "final_bias": 0.0, "upstream": 0.0, "finite": True})
+    return grads, None
+
+def _head_params(warps) -> dict[str, dict[str, list]]:
+    out: dict[str, dict[str, list]] = {}
+    for name, warp in warps.items():
+        final = final_layer(warp)
+        ids = {id(final.weight), id(final.bias) if final.bias is not None else None}
+        out[name] = {"final_weight": [final.weight],
+                     "final_bias": [final.bias] if final.bias is not None else [],
+                     "upstream": [p for p in warp.parameters() if id(p) not in ids]}
+    return out
+
+def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
+              n_outputs: int | None, reference=None) -> CheckResult:
+    twin = model if example.dtype == torch.float32 else copy.deepcopy(model).float()
+    x = example.float()
+    if twin is not model:
+        reference = None  # the probe outputs were computed in another dtype
+    fed = exporter == "torchscript"
+    result = None
+    if fed:
+        try:
+            result = check_onnx_graph(twin, x, opset=opset, reference=reference)
+        except SpliceError:
+            # a model whose forward reads its tensors in ways the feeding cannot
+            # follow (or a graph onnxruntime refuses): check a self-contained graph instead
+            fed = False
+    if result is None:
+        start = time.perf_counter()
+        try:
+            # constant folding only tidies the graph (onnxruntime folds again when it
+            # loads it) and costs more than the export itself on deep nets
+            data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False,
+                                     n_outputs=n_outputs)
+        except SpliceError as exc:
+            return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed")
+        seconds = time.perf_counter() - start
+        start = time.perf_counter()
+        try:
+            parity = onnx_parity(twin, data, x, references=None if reference is None else [reference])
+        except CheckFailed as exc:
+            return CheckResult("onnx", False, {"opset": opset, "exporter": exporter, "export_seconds": seconds},
+                               str(exc), "onnxruntime failed")
+        result = {**parity, "export_seconds": seconds, "check_seconds": time.perf_counter() - start,
+                  "bytes": len(data)}
+    seconds = result["export_seconds"]
+    numbers = {"opset": opset, "exporter": exporter, "weights_as_inputs": fed,
+               **{k: result[k] for k in ("export_seconds", "check_seconds", "bytes", "max_abs", "max_rel",
+                                         "max_abs_perturbed", "max_rel_perturbed", "tolerance", "perturbed_by",
+                                         "batch_sizes")}}
+    if example.dtype != torch.float32:
+        numbers["note"] = "run in float32 (onnxruntime's GridSample is float32)"
+    summary = (f"abs {_fmt(result['max_abs'])}, perturbed {_fmt(result['max_abs_perturbed'])}, "
+               f"export {seconds:.2f}s")
+    return CheckResult("onnx", bool(result["passed"]), numbers,
+                       f"onnxruntime vs torch (opset {opset}, {exporter}{', weights fed as inputs' if fed else ''}): "
+                       f"{result['detail']}", summary)

@@ -1,0 +1,181 @@
+"""What the checks run on and with: the probe batch, images, and the instruments around a run
+(buffer snapshot, warp hooks, timings, identity-reset copies)."""
+
+from __future__ import annotations
+
+import copy
+import os
+import time
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from ..data import IMAGE_SUFFIXES, load_images, normalise
+from ..errors import DataError, SpliceError, first_line
+from ..surgery import warps_of
+from .report import CheckResult
+
+__all__ = ["DTYPES", "probe_batch"]
+
+DTYPES = {"float32": torch.float32, "float64": torch.float64}
+
+
+def probe_batch(input_shape: Sequence[int], batch: int = 1, *, seed: int = 0, dtype=torch.float32) -> torch.Tensor:
+    """The seeded N(0,1) probe ``(batch, C, H, W)``; the same seed gives the same tensor on any machine."""
+    gen = torch.Generator().manual_seed(int(seed))
+    return torch.randn((int(batch), *[int(d) for d in input_shape]), generator=gen, dtype=torch.float32).to(dtype)
+
+def _resolve_dtype(dtype) -> torch.dtype:
+    if isinstance(dtype, torch.dtype) and dtype in DTYPES.values():
+        return dtype
+    if isinstance(dtype, str) and dtype in DTYPES:
+        return DTYPES[dtype]
+    raise SpliceError(f"dtype {dtype!r} is not supported by verify; choose float32 or float64 (--dtype)")
+
+def _check_batch(batch) -> int:
+    if isinstance(batch, bool) or not isinstance(batch, int) or batch < 1:
+        raise SpliceError(f"probe batch must be a positive integer, got {batch!r}; pass e.g. --batch 2")
+    return batch
+
+def _image_files(images) -> list[Path]:
+    items = [images] if isinstance(images, (str, os.PathLike)) else list(images)
+    files: list[Path] = []
+    for item in items:
+        path = Path(item)
+        if path.is_dir():
+            found = sorted(p for p in path.iterdir() if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES)
+            if not found:
+                raise DataError(
+                    f"image folder '{path}' holds no images (looked for {', '.join(IMAGE_SUFFIXES)}); "
+                    "point --images at a folder of image files"
+                )
+            files.extend(found)
+        elif path.is_file():
+            files.append(path)
+        else:
+            raise DataError(f"--images '{path}' does not exist; give a folder of images or an image file")
+    return files
+
+def _read_images(images, input_shape, normalisation) -> tuple[torch.Tensor, list[str]]:
+    files = _image_files(images)
+    return normalise(load_images(files, input_shape), normalisation), [str(f) for f in files]
+
+def _fmt(x: float | None) -> str:
+    return "n/a" if x is None else f"{x:.3g}"
+
+def _names(items: Sequence[str], limit: int = 4) -> str:
+    shown = ", ".join(items[:limit])
+    return shown + (f" and {len(items) - limit} more" if len(items) > limit else "")
+
+def _bitwise_equal(a: torch.Tensor, b: torch.Tensor) -> bool:
+    if a.shape != b.shape or a.dtype != b.dtype:
+        return False
+    if a.numel() == 0:
+        return True
+    return torch.equal(a.detach().contiguous().reshape(-1).view(torch.uint8),
+                       b.detach().contiguous().reshape(-1).view(torch.uint8))
+
+class _Snapshot:
+    """Buffers and train/eval modes of some models, to prove the checks changed neither."""
+
+    def __init__(self, models: Mapping[str, nn.Module]) -> None:
+        self.models = dict(models)
+        self.buffers = {f"{tag}:{n}": b.detach().clone() for tag, m in self.models.items()
+                        for n, b in m.named_buffers()}
+        self.modes = {f"{tag}:{n or '<root>'}": mod.training for tag, m in self.models.items()
+                      for n, mod in m.named_modules()}
+
+    def restore_modes(self) -> None:
+        for tag, m in self.models.items():
+            for n, mod in m.named_modules():
+                mod.training = self.modes[f"{tag}:{n or '<root>'}"]
+
+    def check(self) -> CheckResult:
+        now = {f"{tag}:{n}": b for tag, m in self.models.items() for n, b in m.named_buffers()}
+        changed = sorted(k for k, v in self.buffers.items() if k not in now or not _bitwise_equal(v, now[k]))
+        modes = {f"{tag}:{n or '<root>'}": mod.training for tag, m in self.models.items()
+                 for n, mod in m.named_modules()}
+        wrong_modes = sorted(k for k, v in self.modes.items() if modes.get(k) != v)
+        # put back whatever a misbehaving model changed, so verify leaves no trace
+        with torch.no_grad():
+            for k in changed:
+                if k in now and now[k].shape == self.buffers[k].shape:
+                    now[k].copy_(self.buffers[k])
+        self.restore_modes()
+        numbers = {"buffers": len(self.buffers), "changed": changed, "modes_restored": not wrong_modes}
+        if changed:
+            detail = (f"{len(changed)} of {len(self.buffers)} buffers changed while the checks ran in eval mode: "
+                      f"{_names(changed)} (restored); the model updates state outside training mode")
+        elif wrong_modes:
+            detail = f"train/eval modes were not restored for {_names(wrong_modes)}"
+        else:
+            detail = f"all {len(self.buffers)} buffers bitwise unchanged; train/eval modes restored"
+        return CheckResult("buffers", not changed and not wrong_modes, numbers, detail,
+                           f"{len(self.buffers)} buffers, {len(changed)} changed")
+
+class _Laps:
+    """Wall-clock seconds per phase of a verification (reported in ``meta['seconds']``)."""
+
+    def __init__(self) -> None:
+        self.seconds: dict[str, float] = {}
+        self._last = time.perf_counter()
+
+    def __call__(self, name: str) -> None:
+        now = time.perf_counter()
+        self.seconds[name] = self.seconds.get(name, 0.0) + now - self._last
+        self._last = now
+
+class _WarpProbe:
+    """Forward hooks on every warp: input/output shapes and how far the output is from the input."""
+
+    def __init__(self, warps: Mapping[str, nn.Module]) -> None:
+        self.seen: dict[str, dict] = {}
+        self.handles = [w.register_forward_hook(self._hook(name)) for name, w in warps.items()]
+
+    def _hook(self, name: str):
+        def hook(module, args, output):
+            x = args[0] if args else None
+            rec = {"in": tuple(x.shape) if isinstance(x, torch.Tensor) else None,
+                   "out": tuple(output.shape) if isinstance(output, torch.Tensor) else None}
+            if rec["in"] is not None and rec["in"] == rec["out"]:
+                with torch.no_grad():
+                    diff = float((output.detach().double() - x.detach().double()).abs().max()) if x.numel() else 0.0
+                    scale = float(x.detach().double().abs().max()) if x.numel() else 0.0
+                rec["max_abs"] = diff
+                rec["max_rel"] = diff / scale if scale > 0 else diff
+            self.seen[name] = rec
+        return hook
+
+    def remove(self) -> None:
+        for h in self.handles:
+            h.remove()
+
+def _error_text(exc: BaseException) -> str:
+    first = first_line(exc)
+    return type(exc).__name__ if first == type(exc).__name__ else f"{type(exc).__name__}: {first}"
+
+def _reset_copy(model: nn.Module) -> nn.Module:
+    """A copy with every warp back at the identity (``Warp.reset_parameters``), RNG untouched."""
+    work = copy.deepcopy(model)
+    with torch.random.fork_rng(devices=[]):
+        for warp in warps_of(work).values():
+            warp.reset_parameters()
+    return work
+
+def _only_copy(model: nn.Module, keep: str) -> nn.Module:
+    work = copy.deepcopy(model)
+    with torch.random.fork_rng(devices=[]):
+        for name, warp in warps_of(work).items():
+            if name != keep:
+                warp.reset_parameters()
+    return work
+
+def _run(model: nn.Module, x: torch.Tensor, what: str):
+    try:
+        with torch.no_grad():
+            return model(x)
+    except Exception as exc:
+        raise SpliceError(f"the {what} fails on a probe batch of shape {tuple(x.shape)} ({_error_text(exc)}); "
+                          "check the input shape recorded in splice.json") from exc

@@ -1,0 +1,93 @@
+"""The ``provenance`` row: are the base weights bitwise the source checkpoint's?"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import torch
+
+from .._io import state_dict_sha256
+from ..errors import SpliceError
+from ..manifest import SpliceInfo
+from ..sources import load_source
+from .probe import _bitwise_equal
+from .report import CheckResult
+
+__all__: list[str] = []
+
+
+def _source_state(info: SpliceInfo, input_shape) -> tuple[dict | None, str]:
+    """The source checkpoint's state dict, or ``None`` and the reason it is unavailable."""
+    path = info.source_weights_path
+    if path is None:
+        why = "the source was a random init" if info.random_init else "no source weights file was recorded"
+        return None, f"{why}, so only hashes are compared"
+    if not Path(path).is_file():
+        return None, f"the source weights file '{path}' is no longer on disk, so only hashes are compared"
+    try:
+        src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape, warn_random=False,
+                          leaves=info.leaves)
+    except SpliceError as exc:
+        return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
+    return dict(src.model.state_dict()), f"compared with '{path}'"
+
+def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Tensor]) -> dict:
+    changed: list[tuple[str, float]] = []
+    missing = sorted(set(source) - set(base))
+    extra = sorted(set(base) - set(source))
+    for name in sorted(set(base) & set(source)):
+        a, b = base[name], source[name]
+        if _bitwise_equal(a, b):
+            continue
+        if a.shape != b.shape:
+            changed.append((name, float("inf")))
+        elif a.is_floating_point() or b.is_floating_point():
+            changed.append((name, float((a.detach().double() - b.detach().double()).abs().max())))
+        else:
+            changed.append((name, float((a.long() - b.long()).abs().max())))
+    changed.sort(key=lambda t: -t[1])
+    return {"tensors": len(source), "changed": len(changed), "max_abs_diff": changed[0][1] if changed else 0.0,
+            "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]],
+            "missing": missing, "unexpected": extra}
+
+def _provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
+                    input_shape) -> CheckResult:
+    """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
+    source = info.source_weights_sha256
+    tuning = info.tuning
+    declared = bool(isinstance(tuning, Mapping) and tuning.get("base_changed"))
+    numbers: dict[str, Any] = {"base_sha256": actual, "source_sha256": source, "base_changed_recorded": declared}
+    if recorded_base is not None:
+        numbers["recorded_base_sha256"] = recorded_base
+    stale = recorded_base is not None and recorded_base != actual
+    if source is None:
+        return CheckResult("provenance", False, numbers,
+                           "splice.json records no source-weights hash, so the base cannot be traced to its source; "
+                           "re-create the folder with 'splice insert'", "no source hash")
+    if source == actual and not stale:
+        note = " (tuning records base_changed, but the base weights did not move)" if declared else ""
+        return CheckResult("provenance", True, numbers,
+                           f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…){note}",
+                           f"sha256 {actual[:12]}… = source")
+    state, how = _source_state(info, input_shape)
+    if state is not None:
+        diff = _tensor_diff(base_state, state)
+        numbers["diff"] = diff
+        if state_dict_sha256(state) != source:
+            how += " (that file no longer hashes to the recorded source hash: it changed since the splice)"
+        largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
+        how += f": {diff['changed']} of {diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}" + (
+            f" ({largest})" if largest else "")
+    differs = (f"base weights (sha256 {actual[:12]}…) differ from the source checkpoint (sha256 {source[:12]}…)"
+               if source != actual else
+               f"the base weights' sha256 {actual[:12]}… differs from the one recorded at save time "
+               f"({recorded_base[:12]}…)")
+    if declared and source != actual:
+        return CheckResult("provenance", True, numbers,
+                           f"the base was tuned as well (joint recipe, recorded in splice.json): {differs}; {how}",
+                           "base tuned (recorded)")
+    return CheckResult("provenance", False, numbers,
+                       f"{differs}, and no tuning of the base is recorded; {how}. The weights were edited after "
+                       "splicing — re-create the folder from the source with 'splice insert'", "base changed")

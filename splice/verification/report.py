@@ -1,0 +1,106 @@
+"""The certificate: one :class:`CheckResult` row per check, the :class:`VerifyReport`, and its outputs."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import torch
+
+from .._io import atomic_write_json, json_safe
+
+__all__ = ["CheckResult", "VerifyReport", "versions", "render_verify", "write_report"]
+
+_CERTIFICATE = "splice-verify-certificate"
+
+_CERTIFICATE_VERSION = 1
+
+
+@dataclass
+class CheckResult:
+    """One row of the certificate: the check's name, verdict, numbers and a sentence."""
+
+    check: str
+    passed: bool
+    numbers: dict = field(default_factory=dict)
+    detail: str = ""
+    summary: str = ""
+
+    def to_json(self) -> dict:
+        return {"check": self.check, "passed": bool(self.passed), "numbers": json_safe(self.numbers),
+                "detail": self.detail, "summary": self.summary}
+
+@dataclass
+class VerifyReport:
+    """Every check of one verification plus what is needed to reproduce it."""
+
+    checks: list[CheckResult]
+    meta: dict = field(default_factory=dict)
+
+    @property
+    def passed(self) -> bool:
+        return bool(self.checks) and all(c.passed for c in self.checks)
+
+    @property
+    def failed(self) -> list[str]:
+        return [c.check for c in self.checks if not c.passed]
+
+    def __getitem__(self, name: str) -> CheckResult:
+        for c in self.checks:
+            if c.check == name:
+                return c
+        raise KeyError(f"no check named {name!r} in this report; it has {', '.join(c.check for c in self.checks)}")
+
+    def __contains__(self, name: object) -> bool:
+        return any(c.check == name for c in self.checks)
+
+    def to_json(self) -> dict:
+        return {"format": _CERTIFICATE, "schema_version": _CERTIFICATE_VERSION, "passed": self.passed,
+                **json_safe(self.meta), "checks": [c.to_json() for c in self.checks]}
+
+def versions() -> dict[str, str | None]:
+    """Versions of splice and the libraries a certificate depends on (``None`` if not installed)."""
+    import platform
+    from importlib import metadata
+
+    from .. import __version__
+
+    out: dict[str, str | None] = {"splice": __version__, "python": platform.python_version(),
+                                  "torch": torch.__version__}
+    for name in ("torchvision", "onnx", "onnxruntime", "numpy", "safetensors"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = None
+    return out
+
+def render_verify(report: VerifyReport, console) -> None:
+    """Print the certificate as a rich table (check, numbers, PASS/FAIL), then the failures' details."""
+    from rich.table import Table
+
+    where = report.meta.get("folder") or "model"
+    table = Table(title=f"splice verify {where} (seed {report.meta.get('seed')}, {report.meta.get('dtype')}, "
+                        f"batch {report.meta.get('batch')})")
+    table.add_column("check")
+    table.add_column("numbers")
+    table.add_column("result", justify="center")
+    for row in report.checks:
+        table.add_row(row.check, row.summary or row.detail,
+                      "[bold green]PASS[/]" if row.passed else "[bold red]FAIL[/]")
+    console.print(table)
+    for row in report.checks:
+        if not row.passed:
+            console.print(f"[bold red]{row.check}[/]: {row.detail}", markup=True, highlight=False)
+    if report.meta.get("not_run"):
+        console.print(f"not run: {report.meta['not_run']}")
+    n = len(report.checks)
+    if report.passed:
+        console.print(f"[bold green]PASS[/]: all {n} checks passed", markup=True)
+    else:
+        console.print(f"[bold red]FAIL[/]: {len(report.failed)} of {n} checks failed ({', '.join(report.failed)})",
+                      markup=True)
+
+def write_report(report: VerifyReport, path: str | os.PathLike) -> Path:
+    """Write the JSON certificate to ``path`` atomically."""
+    return atomic_write_json(path, report.to_json())

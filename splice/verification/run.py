@@ -1,0 +1,290 @@
+"""The runner: :func:`verify` (a folder, opened with :func:`splice.store.open_folder`) and
+:func:`verify_models` (models in memory) run the rows in order and return a :class:`VerifyReport`."""
+
+from __future__ import annotations
+
+import copy
+import datetime as _dt
+import math
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from .._io import file_sha256, state_dict_sha256
+from ..compare import compare_outputs, detached, first_rows, flatten_outputs
+from ..errors import SpliceError
+from ..exporting import check_opset
+from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
+from ..store import base_part, open_folder
+from ..surgery import warps_of
+from .gradients import _gradients, _gradients_row, _head_params, _onnx_row
+from .probe import (
+    _check_batch,
+    _error_text,
+    _Laps,
+    _only_copy,
+    _read_images,
+    _reset_copy,
+    _resolve_dtype,
+    _run,
+    _Snapshot,
+    _WarpProbe,
+    probe_batch,
+)
+from .provenance import _provenance_row
+from .report import CheckResult, VerifyReport, versions
+from .rows import _finite_row, _integrity_row, _merge_compares, _outputs_row, _shapes_row, _warps_row
+
+__all__ = ["verify", "verify_models"]
+
+
+@dataclass(frozen=True)
+class _Options:
+    """The options of one verification, checked once (bad input raises :class:`SpliceError`)."""
+
+    batch: int
+    dtype: torch.dtype
+    onnx: bool
+    opset: int
+    exporter: str
+    seed: int
+    tol: float | None
+
+    @classmethod
+    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol) -> _Options:
+        dt = _resolve_dtype(dtype)
+        _check_batch(batch)
+        if onnx:
+            check_opset(opset, exporter)
+        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol)
+
+
+def _info_of(spliced: nn.Module, info: SpliceInfo | Mapping | None) -> SpliceInfo:
+    if isinstance(info, Mapping):
+        info = SpliceInfo(**info) if info.get("input_shape") else None
+    elif info is None:
+        info = info_of(spliced)
+    if info is None or not info.input_shape:
+        raise SpliceError("verify needs the model's input shape: pass a model from splice.insert/splice.load "
+                          "(it carries splice_info) or info={'input_shape': (C, H, W), ...}")
+    return info
+
+
+def _meta(*, folder, opts: _Options, info: SpliceInfo) -> dict:
+    return {
+        "folder": str(folder) if folder is not None else None,
+        "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
+        "seed": int(opts.seed), "dtype": str(opts.dtype).replace("torch.", ""), "batch": int(opts.batch),
+        "onnx": {"opset": opts.opset, "exporter": opts.exporter} if opts.onnx else None,
+        "input_shape": list(info.input_shape),
+        "points": info.point_names,
+        "tuning": info.tuning,
+        "versions": versions(), "hashes": {}, "tuned": None,
+    }
+
+
+@dataclass
+class _Forward:
+    """What the forward rows leave for the later ones."""
+
+    x: torch.Tensor | None = None  # the probe batch
+    out: object = None  # the spliced model's output on the probe (with its autograd graph)
+    n_outputs: int | None = None
+    first_sample: object = None  # the stored model's outputs for the first probe sample
+
+
+def _image_rows(base, identity_model, images, opts: _Options, tuned: bool) -> CheckResult:
+    chunks = []
+    for start in range(0, images.shape[0], opts.batch):
+        chunk = images[start:start + opts.batch].to(opts.dtype)
+        chunks.append(compare_outputs(_run(base, chunk, "base model"),
+                                      _run(identity_model, chunk, "spliced model"), tol=opts.tol))
+    return _outputs_row("images", _merge_compares(chunks), tuned, f"{images.shape[0]} image(s) from --images")
+
+
+def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, tuned: bool, tuned_declared: bool,
+                 distances: dict[str, float]) -> list[CheckResult]:
+    """``outputs``, ``images`` (with images) and ``warps``, from a spliced forward pass that worked."""
+    warps = warps_of(spliced)
+    identity_model = _reset_copy(spliced) if tuned else spliced
+    with torch.no_grad():
+        id_out = identity_model(x) if tuned else out
+    rows = [_outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
+                         f"seeded N(0,1) probe of {opts.batch}")]
+    if images is not None:
+        rows.append(_image_rows(base, identity_model, images, opts, tuned))
+    deviation = compare_outputs(detached(id_out), detached(out), tol=math.inf) if tuned else None
+    per_warp = {}
+    moved = [n for n, d in distances.items() if d > 0]
+    if tuned and len(moved) > 1:
+        for name in moved:
+            with torch.no_grad():
+                per_warp[name] = compare_outputs(detached(id_out), _only_copy(spliced, name)(x), tol=math.inf)
+    rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
+    return rows
+
+
+def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tuned: bool, tuned_declared: bool,
+                  distances, rows: list[CheckResult], lap: _Laps) -> _Forward:
+    """Probe both models; append ``shapes``, ``outputs``, ``images`` and ``warps``."""
+    warps = warps_of(spliced)
+    points = {p.name: tuple(p.shape) for p in info.points if p.shape}
+    x = probe_batch(info.input_shape, opts.batch, seed=opts.seed, dtype=opts.dtype)
+    ref = _run(base, x, "base model")
+    lap("base forward")
+    probe = _WarpProbe(warps)
+    error = None
+    result = _Forward(x)
+    try:
+        with torch.enable_grad():
+            result.out = spliced(x)
+    except Exception as exc:
+        error = _error_text(exc)
+    finally:
+        probe.remove()
+    lap("spliced forward")
+    rows.append(_shapes_row(probe, warps, points, ref, result.out, error))
+    if result.out is None:
+        rows.append(CheckResult("outputs", False, {}, f"the spliced model fails on the probe ({error})",
+                                "forward failed"))
+        rows.append(_warps_row(warps, distances, probe, tuned_declared, None, {}))
+        return result
+    rows.extend(_output_rows(base, spliced, x, ref, result.out, probe, images=images, opts=opts, tuned=tuned,
+                             tuned_declared=tuned_declared, distances=distances))
+    result.n_outputs = len(flatten_outputs(result.out))
+    result.first_sample = first_rows(detached(result.out), opts.batch)
+    return result
+
+
+def _in_dtype(base, spliced, dtype: torch.dtype, owned: bool):
+    current = next(iter(spliced.parameters()), None)
+    if current is not None and current.dtype != dtype:
+        if not owned:  # never change the caller's models
+            base, spliced = copy.deepcopy(base), copy.deepcopy(spliced)
+        base.to(dtype)
+        spliced.to(dtype)
+    return base, spliced
+
+
+def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Options, *, images, image_files,
+                recorded_base: str | None, rows: list[CheckResult], meta: dict, owned: bool,
+                lap: _Laps) -> VerifyReport:
+    base_state = base_part(spliced.state_dict())
+    meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
+    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape)
+    lap("provenance")
+    base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
+    warps = warps_of(spliced)
+    distances = {name: float(w.identity_distance()) for name, w in warps.items()}
+    tuned_declared = info.tuning is not None
+    tuned = tuned_declared or any(d > 0 for d in distances.values())
+    meta["tuned"] = tuned
+    snapshot = _Snapshot({"base": base, "spliced": spliced})
+    head_params = _head_params(warps)
+    flat_params = [p for parts in head_params.values() for ps in parts.values() for p in ps]
+    grad_flags = {id(p): p.requires_grad for p in flat_params}
+    base.eval()
+    spliced.eval()
+    try:
+        for p in flat_params:
+            p.requires_grad_(True)
+        fwd = _forward_rows(base, spliced, info, opts, images=images, tuned=tuned, tuned_declared=tuned_declared,
+                            distances=distances, rows=rows, lap=lap)
+        lap("outputs")
+        rows.append(provenance)
+        if fwd.out is not None:
+            grads, gerr = _gradients(fwd.out, head_params, opts.seed)
+            rows.append(_gradients_row(warps, grads, gerr))
+            lap("gradients")
+            fwd.out = None  # free the autograd graph before exporting
+        else:
+            rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
+                                    "not run"))
+        if opts.onnx:
+            rows.append(_onnx_row(spliced, fwd.x[:1], opset=opts.opset, exporter=opts.exporter,
+                                  n_outputs=fwd.n_outputs, reference=fwd.first_sample))
+            lap("onnx")
+    finally:
+        for p in flat_params:
+            p.requires_grad_(grad_flags[id(p)])
+        snapshot.restore_modes()
+    rows.append(snapshot.check())
+    lap("buffers")
+    meta["seconds"] = {k: round(v, 4) for k, v in lap.seconds.items()}
+    if image_files is not None:
+        meta["images"] = image_files
+    return VerifyReport(rows, meta)
+
+
+def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Mapping | None = None, images=None,
+                  batch: int = 1, dtype="float32", onnx: bool = False, opset: int = 17, seed: int = 0,
+                  exporter: str = "torchscript", tol: float | None = None) -> VerifyReport:
+    """Run the checks on a base and a spliced model in memory (neither is changed).
+
+    ``info`` defaults to the :class:`~splice.manifest.SpliceInfo` the spliced
+    model carries (set by :func:`splice.insert` and :func:`splice.load`); a
+    mapping of its fields (at least ``input_shape``) also does. ``images`` is
+    a folder, files, or an already normalised ``(N, C, H, W)`` tensor. The
+    folder-only checks (integrity, finite) are not run.
+    """
+    lap = _Laps()
+    info = _info_of(spliced, info)
+    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol)
+    files = None
+    if images is not None and not isinstance(images, torch.Tensor):
+        images, files = _read_images(images, info.input_shape, info.normalisation)
+    meta = _meta(folder=info.folder, opts=opts, info=info)
+    meta["hashes"]["source_sha256"] = info.source_weights_sha256
+    return _run_checks(base, spliced, info, opts, images=images, image_files=files, recorded_base=None, rows=[],
+                       meta=meta, owned=False, lap=lap)
+
+
+def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False,
+           opset: int = 17, seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript",
+           tol: float | None = None) -> VerifyReport:
+    """Certify a spliced folder against its base, rebuilt from the manifest.
+
+    Returns a :class:`VerifyReport`; ``report.passed`` is ``True`` only when
+    every check passed. The checks and their tolerances are described in
+    :mod:`splice.verification`. Bad input (missing folder, schema violations,
+    bad options, unreadable images) raises :class:`~splice.errors.SpliceError`;
+    a certificate that does not hold is a report with failed rows.
+
+    >>> report = splice.verify("out/r18-affine", onnx=True)   # doctest: +SKIP
+    >>> report.passed, report.failed                          # doctest: +SKIP
+    (True, [])
+    """
+    lap = _Laps()
+    folder = Path(folder)
+    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol)
+    # the tensors stay backed by the mapped file: both models live only as long as this call
+    opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False)
+    info = opened.info
+    files = images_t = None
+    if images is not None:
+        images_t, files = _read_images(images, info.input_shape, info.normalisation)
+    meta = _meta(folder=folder, opts=opts, info=info)
+    meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME),
+                           "weights_sha256_recorded": opened.recorded_sha256,
+                           "source_sha256": info.source_weights_sha256, "weights_sha256": opened.actual_sha256})
+    rows = [_integrity_row(opened.weights_path, opened.recorded_sha256, opened.actual_sha256)]
+    if not rows[0].passed:
+        meta["not_run"] = "the weights file cannot be trusted, so no other check ran"
+        return VerifyReport(rows, meta)
+    lap("integrity")
+    rows.append(_finite_row(opened.state, f"'{opened.weights_path}'"))
+    lap("finite")
+    if not rows[-1].passed:
+        meta["not_run"] = "the weights hold NaN/Inf values, so no other check ran"
+        return VerifyReport(rows, meta)
+    spliced = opened.spliced()
+    lap("spliced")
+    base = opened.base()
+    lap("base")
+    return _run_checks(base, spliced, info, opts, images=images_t, image_files=files,
+                       recorded_base=opened.manifest["weights"].get("base_sha256"), rows=rows, meta=meta, owned=True,
+                       lap=lap)
