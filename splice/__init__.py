@@ -43,7 +43,7 @@ _EXPORTS = {
 # functions are not re-exported under the same name, so ``import splice.verify``
 # and ``splice.verify`` always mean the module
 _SUBMODULES = ("graph", "warps", "surgery", "store", "sources", "verify", "export", "data", "distort",
-               "recipes", "tune", "inspection", "evaluate", "demo", "models", "errors", "cli")
+               "recipes", "training", "inspection", "evaluation", "demo", "models", "errors", "cli")
 
 __all__ = ["__version__", *_EXPORTS]
 

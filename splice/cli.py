@@ -161,7 +161,7 @@ def _cmd_export(args) -> int:
 
 
 def _cmd_tune(args) -> int:
-    from .tune import tune
+    from .training import tune_keywords as tune
 
     summary = tune(
         args.model, recipe=args.recipe, data=args.data, out=args.out, resume=args.resume,
