@@ -8,7 +8,7 @@ from typing import Any
 
 import torch
 
-from .._io import state_dict_sha256
+from .._io import atomic_write_text, state_dict_sha256
 from ..facts import splice_facts
 from . import distributed
 from .checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
@@ -138,7 +138,7 @@ def finish(run: Run, ips, stopped_early: bool) -> dict[str, Any]:
     final = unwrap(run.net_wrapped)
     base_changed = _base_changed(run)
     if os.environ.get(HASH_ENV):
-        (run.run_dir / f"rank{ctx.rank}.sha256").write_text(state_dict_sha256(final.state_dict()) + "\n")
+        atomic_write_text(run.run_dir / f"rank{ctx.rank}.sha256", state_dict_sha256(final.state_dict()) + "\n")
     last_rows = [r for r in read_metrics(run.run_dir) if r.get("phase") == "epoch"] if ctx.is_main else []
     if ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="stopped early" if stopped_early else "finished"))

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import os
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -24,13 +26,16 @@ from .runfolder import RECIPE_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, 
 __all__ = ["Request", "resolve", "load_model", "open_splits", "reference_images", "normalisation", "run_info"]
 
 
+@dataclass
 class Request:
-    """What was asked for, completed from the run folder when resuming."""
+    """What was asked for, completed from the run folder when resuming (``info``: its run.json)."""
 
-    def __init__(self, model: Any, recipe: Recipe, data: str, model_options: ModelOptions,
-                 info: dict | None, ckpt: dict | None) -> None:
-        self.model, self.recipe, self.data = model, recipe, data
-        self.model_options, self.info, self.ckpt = model_options, info, ckpt
+    model: Any
+    recipe: Recipe
+    data: str
+    model_options: ModelOptions
+    info: dict | None
+    ckpt: dict | None
 
 
 def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overrides: RecipeOverrides,
@@ -56,8 +61,6 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
 
 def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: RecipeOverrides,
              model_options: ModelOptions) -> Request:
-    import dataclasses
-
     recorded = load_recipe(run_dir / RECIPE_FILE)
     if recipe is not None or overrides.any_recipe_key:
         given = load_recipe(recipe if recipe is not None else run_dir / RECIPE_FILE)
