@@ -1,6 +1,6 @@
 """Does the warp pay? Spliced tuning against plain fine-tuning on moved digits.
 
-The flow, all through ``splice.tune`` with the shipped recipes and one seed:
+The flow, all through ``splice.training.tune`` with the shipped recipes and one seed:
 
 1. base: ``splice.models:tray_net`` trained with ``baseline`` on ``digits``
    (upright, centred);
@@ -43,19 +43,22 @@ def _test_accuracy(folder: Path, data: str) -> float:
     import splice
     from splice.data import normalise, open_data
 
+    from splice.facts import splice_facts
+
     model = splice.load(folder)
-    ds = open_data(data, "test", input_shape=model.splice_info["input_shape"])
-    norm = model.splice_info.get("normalisation")
+    facts = splice_facts(model)
+    ds = open_data(data, "test", input_shape=facts.input_shape)
+    norm = facts.normalisation
     with torch.no_grad():
         pred = torch.cat([model(normalise(x, norm)).argmax(1) for x in ds.images.split(256)])
     return float((pred == ds.labels).double().mean())
 
 
 def _arm(log, name: str, **kw) -> dict:
-    from splice.tune import tune
+    from splice.training import tune_keywords
 
     t0, c0 = time.perf_counter(), time.process_time()
-    summary = tune(progress=False, **kw)
+    summary = tune_keywords(progress=False, **kw)
     took = {"wall_s": time.perf_counter() - t0, "cpu_s": time.process_time() - c0}
     log(f"  {name:<10} {took['wall_s']:6.1f} s wall, {took['cpu_s']:6.1f} s cpu; best val acc "
         f"{summary['best_accuracy']:.4f} at epoch {summary['best_epoch']}")

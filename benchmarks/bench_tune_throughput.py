@@ -63,11 +63,11 @@ def _plain_rates(epochs: int, seed: int) -> list[float]:
 
 def _tune_rates(work: Path, epochs: int, seed: int) -> list[float]:
     from splice.recipes import Recipe
-    from splice.tune import read_metrics, tune
+    from splice.training import RunOptions, read_metrics, tune
 
     recipe = Recipe(name="throughput", mode="baseline", optimizer="adamw", lr=1e-3, weight_decay=1e-4,
                     epochs=epochs, batch_size=BATCH, schedule="constant", seed=seed, eval_every=1)
-    tune("splice.models:tray_net", recipe=recipe, data="digits", out=work, progress=False)
+    tune("splice.models:tray_net", recipe=recipe, data="digits", out=work, run_options=RunOptions(progress=False))
     rows = read_metrics(work)
     # one rate per epoch (evaluation time is not in it), as many samples as the plain loop gives
     return [r["images_per_s"] for r in rows if r["phase"] == "epoch"]

@@ -43,7 +43,8 @@ _EXPORTS = {
 # functions are not re-exported under the same name, so ``import splice.verify``
 # and ``splice.verify`` always mean the module
 _SUBMODULES = ("graph", "warps", "surgery", "store", "sources", "manifest", "compare", "verification", "exporting",
-               "data", "distort", "recipes", "tune", "inspection", "evaluate", "demo", "models", "errors", "cli")
+               "data", "distort", "recipes", "training", "inspection", "evaluation", "options", "facts", "demo",
+               "models", "errors", "cli")
 
 __all__ = ["__version__", *_EXPORTS]
 

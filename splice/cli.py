@@ -173,7 +173,7 @@ def _cmd_export(args) -> int:
 
 
 def _cmd_tune(args) -> int:
-    from .tune import tune
+    from .training import tune_keywords as tune
 
     summary = tune(
         args.model, recipe=args.recipe, data=args.data, out=args.out, resume=args.resume,
@@ -199,7 +199,7 @@ def _cmd_inspect(args) -> int:
 
 
 def _cmd_eval(args) -> int:
-    from .evaluate import evaluate, render_eval
+    from .evaluation import evaluate_keywords as evaluate, render_eval
 
     result = evaluate(args.model, data=args.data, split=args.split, against=args.against, distort=args.distort,
                       batch_size=args.batch_size, plot=args.plot, weights=args.weights, kwargs=args.kwargs,

@@ -18,7 +18,6 @@ the parts arrive rotated, scaled and shifted (``digits-moved``). The demo:
 
 from __future__ import annotations
 
-import json
 import shutil
 import time
 from dataclasses import asdict, dataclass
@@ -101,9 +100,33 @@ class _Log:
 
 
 def _accuracy(model, data: str) -> float:
-    from .evaluate import evaluate
+    from .evaluation import evaluate
 
     return float(evaluate(model, data=data, split="test", distort="none")["clean"]["accuracy"])
+
+
+def _errors(model) -> dict[str, float]:
+    return {d: 1 - _accuracy(str(model), d) for d in ("digits", "digits-moved")}
+
+
+class _Demo:
+    """One demo run: where it writes, its plan, its log and the time each stage took."""
+
+    def __init__(self, out: Path, plan: DemoPlan, quiet: bool) -> None:
+        self.out, self.plan, self.quiet = out, plan, quiet
+        self.log = _Log(quiet)
+        self.timings: dict[str, float] = {}
+
+    def lap(self, name: str, t: float) -> None:
+        self.timings[name] = round(time.perf_counter() - t, 1)
+
+    def tune(self, model, recipe, data: str, name: str, epochs: int) -> Path:
+        from .training import RecipeOverrides, RunOptions, tune
+
+        tune(str(model), recipe=recipe, data=data, out=self.out / name,
+             overrides=RecipeOverrides(epochs=epochs, seed=self.plan.seed),
+             run_options=RunOptions(quiet=self.quiet, progress=not self.quiet))
+        return self.out / name / "best"
 
 
 def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = False,
@@ -120,111 +143,118 @@ def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = F
     """
     import warnings
 
-    from . import graph
+    from ._io import atomic_write_json, atomic_write_text
     from .errors import RandomWeightsWarning
-    from .evaluate import evaluate
-    from .inspection import inspect
-    from .store import save
-    from .surgery import insert
-    from .tune import tune
-    from .verification import verify, write_report
 
-    plan = plan or (FAST if fast else FULL)
     out = Path(out)
     _prepare(out)
-    log = _Log(quiet)
+    run = _Demo(out, plan or (FAST if fast else FULL), quiet)
     warnings.filterwarnings("ignore", category=RandomWeightsWarning)
-    timings: dict[str, float] = {}
+    base, errors = _base(run)
+    src, pts, at = _points(run, base)
+    report = _splice_and_verify(run, src, at)
+    _tune_runs(run, base, errors)
+    sweeps = _sweeps(run)
+    run.log.step(8, "inspect the learned warps (joint)")
+    from .inspection import inspect
 
-    def lap(name: str, t: float) -> None:
-        timings[name] = round(time.perf_counter() - t, 1)
+    inspected = inspect(str(out / "joint" / "best"), data="digits-moved", n=run.plan.inspect_images,
+                        split="test", out=out / "inspect")
+    summary = {
+        "plan": asdict(run.plan),
+        "point": at,
+        "errors": errors,
+        "verify": {"passed": report.passed, "failed": report.failed, "certificate": "spliced/certificate.json"},
+        "warps": _warp_digest(inspected),
+        "timings_s": run.timings,
+        "seconds": round(time.perf_counter() - run.log.t0, 1),
+    }
+    atomic_write_json(out / _MARKER, summary)
+    atomic_write_text(out / "report.md", _report_md(summary, sweeps, inspected, pts))
+    run.log.step(9, f"report written to {out / 'report.md'}")
+    _print_summary(summary, run.log)
+    return summary
 
-    # 1. the base network, trained on upright parts
-    log.step(1, "train the base network on upright parts (recipe: baseline, data: digits)")
+
+def _base(run: _Demo) -> tuple[Path, dict]:
+    """1-2: train the base on upright parts, and measure it on upright and moved parts."""
+    run.log.step(1, "train the base network on upright parts (recipe: baseline, data: digits)")
     t = time.perf_counter()
-    tune("splice.models:tray_net", recipe="baseline", data="digits", out=out / "base",
-         epochs=plan.base_epochs, seed=plan.seed, quiet=quiet, progress=not quiet)
-    base = out / "base" / "best"
-    lap("base", t)
+    base = run.tune("splice.models:tray_net", "baseline", "digits", "base", run.plan.base_epochs)
+    run.lap("base", t)
+    run.log.step(2, "the base network on upright and on moved parts")
+    errors = {"base": _errors(base)}
+    run.log.say(f"base error: upright {errors['base']['digits']:.1%}, moved {errors['base']['digits-moved']:.1%}")
+    return base, errors
 
-    # 2. how it does on the line
-    log.step(2, "the base network on upright and on moved parts")
-    errors: dict[str, dict[str, float]] = {}
-    errors["base"] = {d: 1 - _accuracy(str(base), d) for d in ("digits", "digits-moved")}
-    log.say(f"base error: upright {errors['base']['digits']:.1%}, moved {errors['base']['digits-moved']:.1%}")
 
-    # 3. where a warp can go
-    log.step(3, "insertion points")
+def _points(run: _Demo, base: Path):
+    """3: list where a warp can go; returns the source, the points and the recommended one."""
+    from . import graph
     from .sources import load_source
 
+    run.log.step(3, "insertion points")
     src = load_source(str(base))
     pts = graph.points(src.model, src.input_shape)
     for p in pts:
-        log.say(f"  {p.name:<14} {'x'.join(map(str, p.shape)):>10}  stride {p.stride!s:<3} "
-                f"cut {'yes' if p.cut else 'no ':<3}  +{p.warp_params:,} params"
-                + ("   recommended" if p.recommended else ""))
-    at = next(p.name for p in pts if p.recommended)
+        run.log.say(f"  {p.name:<14} {'x'.join(map(str, p.shape)):>10}  stride {p.stride!s:<3} "
+                    f"cut {'yes' if p.cut else 'no ':<3}  +{p.warp_params:,} params"
+                    + ("   recommended" if p.recommended else ""))
+    return src, pts, next(p.name for p in pts if p.recommended)
 
-    # 4. splice at the recommended point
-    log.step(4, f"splice an {plan.warp} warp at '{at}'")
+
+def _splice_and_verify(run: _Demo, src, at: str):
+    """4-5: splice at the recommended point, save, verify with ONNX parity; returns the verify report."""
     import torch
 
+    from .facts import splice_facts
+    from .store import save
+    from .surgery import insert
+    from .verify import verify, write_report
+
+    plan, out = run.plan, run.out
+    run.log.step(4, f"splice an {plan.warp} warp at '{at}'")
     with torch.random.fork_rng(devices=[]):  # the head's hidden layers start from the plan's seed
         torch.manual_seed(plan.seed)
         spliced = insert(src, at=at, warp=plan.warp, head_width=plan.head_width)
     save(spliced, out / "spliced")
-    log.say(f"identity check before saving: {spliced.splice_info['check']['detail']}")
-
-    # 5. verify, ONNX parity included
-    log.step(5, "verify the splice (shapes, outputs, weights, gradients, ONNX)")
+    run.log.say(f"identity check before saving: {splice_facts(spliced).check_detail}")
+    run.log.step(5, "verify the splice (shapes, outputs, weights, gradients, ONNX)")
     t = time.perf_counter()
     report = verify(out / "spliced", onnx=True)
     write_report(report, out / "spliced" / "certificate.json")
-    lap("verify", t)
-    log.say(f"verify: {'PASSED' if report.passed else 'FAILED: ' + ', '.join(report.failed)}")
+    run.lap("verify", t)
+    run.log.say(f"verify: {'PASSED' if report.passed else 'FAILED: ' + ', '.join(report.failed)}")
+    return report
 
-    # 6. tune: warp-only, joint and the control, same budget and seed
-    log.step(6, f"tune on moved parts for {plan.tune_epochs} epochs: warp-only, joint, and the control")
+
+def _tune_runs(run: _Demo, base: Path, errors: dict) -> None:
+    """6: warp-only, joint and the control, same data, budget and seed."""
+    plan, out = run.plan, run.out
+    run.log.step(6, f"tune on moved parts for {plan.tune_epochs} epochs: warp-only, joint, and the control")
     runs = {"warp-only": ("warp-only", out / "spliced"), "joint": ("joint", out / "spliced"),
             "control": ("baseline", base)}
     for name, (recipe, model) in runs.items():
         t = time.perf_counter()
-        log.say(f"[bold]{name}[/] (recipe {recipe})")
-        tune(str(model), recipe=_recipe(recipe, plan), data="digits-moved", out=out / name, epochs=plan.tune_epochs,
-             seed=plan.seed, quiet=quiet, progress=not quiet)
-        lap(name, t)
-        errors[name] = {d: 1 - _accuracy(str(out / name / "best"), d) for d in ("digits", "digits-moved")}
+        run.log.say(f"[bold]{name}[/] (recipe {recipe})")
+        best = run.tune(model, _recipe(recipe, plan), "digits-moved", name, plan.tune_epochs)
+        run.lap(name, t)
+        errors[name] = _errors(best)
 
-    # 7. robustness sweep: each spliced model against the control, on upright parts moved on purpose
-    log.step(7, "distortion sweeps (upright test parts, moved by known amounts)")
+
+def _sweeps(run: _Demo) -> dict:
+    """7: each spliced model against the control, on upright parts moved on purpose."""
+    from .evaluation import evaluate
+
+    out = run.out
+    run.log.step(7, "distortion sweeps (upright test parts, moved by known amounts)")
     t = time.perf_counter()
-    sweeps = {}
-    for name in ("joint", "warp-only"):
-        sweeps[name] = evaluate(str(out / name / "best"), data="digits", split="test", against=str(out / "control" / "best"),
-                                distort=plan.sweep, plot=str(out / f"sweep_{name}.png"))
-    lap("sweeps", t)
-
-    # 8. what the warp learned
-    log.step(8, "inspect the learned warps (joint)")
-    inspected = inspect(str(out / "joint" / "best"), data="digits-moved", n=plan.inspect_images, split="test",
-                        out=out / "inspect")
-    warp_summary = _warp_digest(inspected)
-
-    # 9. the report
-    summary = {
-        "plan": asdict(plan),
-        "point": at,
-        "errors": errors,
-        "verify": {"passed": report.passed, "failed": report.failed, "certificate": "spliced/certificate.json"},
-        "warps": warp_summary,
-        "timings_s": timings,
-        "seconds": round(time.perf_counter() - log.t0, 1),
-    }
-    (out / _MARKER).write_text(json.dumps(summary, indent=2) + "\n")
-    (out / "report.md").write_text(_report_md(summary, sweeps, inspected, pts), encoding="utf-8")
-    log.step(9, f"report written to {out / 'report.md'}")
-    _print_summary(summary, log)
-    return summary
+    sweeps = {name: evaluate(str(out / name / "best"), data="digits", split="test",
+                             against=str(out / "control" / "best"), distort=run.plan.sweep,
+                             plot=str(out / f"sweep_{name}.png"))
+              for name in ("joint", "warp-only")}
+    run.lap("sweeps", t)
+    return sweeps
 
 
 def _warp_digest(inspected: dict) -> dict:
@@ -246,6 +276,21 @@ def _fmt_pct(x: float) -> str:
 
 
 def _report_md(summary: dict, sweeps: dict, inspected: dict, pts) -> str:
+    lines = _report_errors(summary) + _report_splice(summary, pts) + _report_sweeps(sweeps)
+    lines += _report_warps(summary, inspected)
+    lines += [
+        "## Cautions",
+        "",
+        "- A warp can crop away evidence; look at the contact sheets before trusting it.",
+        "- The equivalence check proves step-zero behaviour, not accuracy after tuning.",
+        "- Before any safety- or health-related use, validate on held-out data from the deployment "
+        "site and defer to the applicable regulation and qualified review.",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def _report_errors(summary: dict) -> list[str]:
     e = summary["errors"]
     lines = [
         "# splice demo: reading stamped digits off a tray",
@@ -273,7 +318,11 @@ def _report_md(summary: dict, sweeps: dict, inspected: dict, pts) -> str:
     if ctrl > 0:
         lines += ["", f"On moved parts the joint splice's error is {e['joint']['digits-moved'] / ctrl:.2f}× the "
                       f"control's, warp-only's {e['warp-only']['digits-moved'] / ctrl:.2f}×."]
-    lines += [
+    return lines
+
+
+def _report_splice(summary: dict, pts) -> list[str]:
+    lines = [
         "",
         "## The splice",
         "",
@@ -291,12 +340,13 @@ def _report_md(summary: dict, sweeps: dict, inspected: dict, pts) -> str:
         "",
         f"**Verify:** {'passed' if v['passed'] else 'FAILED (' + ', '.join(v['failed']) + ')'} — the full "
         f"certificate is [`{v['certificate']}`]({v['certificate']}).",
-        "",
-        "## Robustness sweeps",
-        "",
-        "Upright test parts, moved by known amounts; each spliced model against the control.",
-        "",
     ]
+    return lines
+
+
+def _report_sweeps(sweeps: dict) -> list[str]:
+    lines = ["", "## Robustness sweeps", "",
+             "Upright test parts, moved by known amounts; each spliced model against the control.", ""]
     for name, res in sweeps.items():
         if res.get("plot"):
             lines.append(f"![{name} vs control]({Path(res['plot']).name})")
@@ -310,14 +360,18 @@ def _report_md(summary: dict, sweeps: dict, inspected: dict, pts) -> str:
                 other = theirs[i]["accuracy"] if i < len(theirs) else float("nan")
                 lines.append(f"| {kind} | {row['level']} | {_fmt_pct(row['accuracy'])} | {_fmt_pct(other)} |")
         lines.append("")
-    lines += ["## What the warp learned", "",
-              "Sampling-side numbers map output pixels to input pixels; the viewer sees the inverse "
-              "(visible rotation = −angle, zoom = 1/scale).", ""]
+    return lines
+
+
+def _report_warps(summary: dict, inspected: dict) -> list[str]:
+    lines = ["## What the warp learned", "",
+             "Sampling-side numbers map output pixels to input pixels; the viewer sees the inverse "
+             "(visible rotation = −angle, zoom = 1/scale).", ""]
     for point, d in summary["warps"].items():
         lines.append(f"**{point}** ({d.get('family')}):")
         lines.append("")
         for key, stats in d.items():
-            if isinstance(stats, dict) and stats.get("mean") is not None:
+            if isinstance(stats, dict) and isinstance(stats.get("mean"), float):
                 lines.append(f"- `{key}`: mean {stats['mean']:.3g}, std {stats['std']:.3g}, "
                              f"5–95 % [{stats['p5']:.3g}, {stats['p95']:.3g}]")
         lines.append("")
@@ -325,16 +379,7 @@ def _report_md(summary: dict, sweeps: dict, inspected: dict, pts) -> str:
     for pic in pictures:
         rel = f"inspect/{Path(pic).name}"
         lines += [f"![{Path(pic).stem}]({rel})", ""]
-    lines += [
-        "## Cautions",
-        "",
-        "- A warp can crop away evidence; look at the contact sheets before trusting it.",
-        "- The equivalence check proves step-zero behaviour, not accuracy after tuning.",
-        "- Before any safety- or health-related use, validate on held-out data from the deployment "
-        "site and defer to the applicable regulation and qualified review.",
-        "",
-    ]
-    return "\n".join(lines)
+    return lines
 
 
 def _print_summary(summary: dict, log: _Log) -> None:
@@ -354,7 +399,7 @@ def _print_summary(summary: dict, log: _Log) -> None:
     log.console.print(f"verify certificate: {'PASSED' if v['passed'] else 'FAILED'} ({v['certificate']})")
     for point, d in summary["warps"].items():
         rot = d.get("view_rotation_deg", {})
-        if rot.get("std") is not None:
+        if isinstance(rot.get("std"), float) and isinstance(rot.get("mean"), float):
             log.console.print(f"learned warp at {point}: visible rotation mean {rot['mean']:+.1f}°, "
                               f"spread (std) {rot['std']:.1f}° — it undoes the tray's random turns")
     log.console.print(f"total {summary['seconds']:.0f} s; see the report for pictures")

@@ -76,7 +76,8 @@ def test_apply_affine_nearest_matches_torchvision():
 def test_affine_matrix_convention_matches_opencv():
     cv2 = pytest.importorskip("cv2")
     angle, scale, tx, ty = 37.0, 0.85, 3.0, -2.0
-    m = D._to_3x3(D.affine_matrix(angle, scale, (tx / W, ty / H), size=(H, W)))
+    m = torch.cat([D.affine_matrix(angle, scale, (tx / W, ty / H), size=(H, W)),
+                   torch.tensor([[0.0, 0.0, 1.0]], dtype=torch.float64)])
     k = _index_matrix(H, W)
     in_pixels = (k @ m @ torch.linalg.inv(k))[:2]
     # source: OpenCV cv2.getRotationMatrix2D, whose positive angle turns content counter-clockwise
@@ -196,8 +197,10 @@ def test_flip_matches_torchvision():
 def test_random_distort_is_reproducible_and_vectorised(monkeypatch):
     img = _images(n=16, c=1)
     calls = []
-    real = D.F.grid_sample
-    monkeypatch.setattr(D.F, "grid_sample", lambda *a, **k: calls.append(1) or real(*a, **k))
+    import torch.nn.functional as F
+
+    real = F.grid_sample
+    monkeypatch.setattr(F, "grid_sample", lambda *a, **k: calls.append(1) or real(*a, **k))
     a, pa = D.random_distort(img, FULL, torch.Generator().manual_seed(5))
     assert len(calls) == 1  # one grid_sample for the whole batch, no loop per image
     b, pb = D.random_distort(img, FULL, torch.Generator().manual_seed(5))

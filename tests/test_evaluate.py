@@ -1,9 +1,8 @@
-"""splice.evaluate: what eval feeds the model (against torchvision), its numbers (against scikit-learn),
+"""splice.evaluation: what eval feeds the model (against torchvision), its numbers (against scikit-learn),
 the --distort parser, the JSON schema and the class-count check."""
 
 from __future__ import annotations
 
-import importlib
 import json
 import math
 
@@ -13,8 +12,7 @@ import torchvision.transforms.v2.functional as TF
 from torch import nn
 from torchvision.transforms import InterpolationMode
 
-# the package re-exports the function splice.evaluate, which shadows the module of the same name
-E = importlib.import_module("splice.evaluate")
+from splice import evaluation as E
 from splice.data import open_data
 from splice.errors import DataError, SpliceError
 from splice.sources import Source
@@ -86,8 +84,8 @@ def _torchvision_versions(images: torch.Tensor) -> dict[tuple[str, float], torch
 @pytest.fixture(scope="module")
 def recorded_run():
     RECORDED.clear()
-    result = E.evaluate(_recorder_source(), data="digits", split="test", distort=DISTORT, batch_size=BATCH, limit=N,
-                        device="cpu")
+    result = E.evaluate(_recorder_source(), data="digits", split="test", distort=DISTORT,
+                        options=E.EvalOptions(batch_size=BATCH, limit=N, device="cpu"))
     batches = list(RECORDED)
     RECORDED.clear()
     return result, batches
@@ -153,7 +151,7 @@ def test_against_sees_the_same_images_and_has_the_same_shape(tmp_path):
 
     RECORDED.clear()
     first, second = _Recorder(), _Recorder()
-    result = E.evaluate(first, data="digits", against=second, distort="rotate=0,45", limit=4, batch_size=4,
+    result = E.evaluate_keywords(first, data="digits", against=second, distort="rotate=0,45", limit=4, batch_size=4,
                         device="cpu", plot=tmp_path / "sweep.png")
     # batches alternate model / against per condition: clean, rotate 0, rotate 45
     assert len(RECORDED) == 6
@@ -176,7 +174,7 @@ def test_against_sees_the_same_images_and_has_the_same_shape(tmp_path):
 
 def test_class_count_mismatch_is_a_clear_error():
     with pytest.raises(DataError, match=r"outputs 5 classes but digits has 10 \(0, 1, 2.*num_classes\": 10"):
-        E.evaluate(_Recorder(classes=5), data="digits", distort="none", limit=2, device="cpu")
+        E.evaluate_keywords(_Recorder(classes=5), data="digits", distort="none", limit=2, device="cpu")
 
 
 def test_cli_json_prints_the_schema(capsys):
@@ -229,4 +227,13 @@ def test_cli_reports_a_bad_distort_spec(capsys):
 
 def test_evaluate_rejects_an_unknown_device():
     with pytest.raises(SpliceError, match=r"unknown device 'gpu0'; use cpu, cuda"):
-        E.evaluate(_Recorder(), data="digits", distort="none", limit=1, device="gpu0")
+        E.evaluate_keywords(_Recorder(), data="digits", distort="none", limit=1, device="gpu0")
+
+
+def test_options_are_checked_and_the_keyword_path_refuses_unknown_keywords():
+    with pytest.raises(DataError, match=r"batch_size must be a positive integer; got 0"):
+        E.EvalOptions(batch_size=0)
+    with pytest.raises(DataError, match=r"limit must be a positive number of images or None; got -1"):
+        E.EvalOptions(limit=-1)
+    with pytest.raises(TypeError, match=r"evaluate\(\) got unexpected keyword argument\(s\) batchsize; it takes"):
+        E.evaluate_keywords(_Recorder(), data="digits", batchsize=3)

@@ -322,6 +322,25 @@ def test_identity_splice_decomposes_to_the_identity_for_every_image(identity_rep
     assert result["files"]["pictures"] == []
 
 
+def test_summary_json_writes_non_finite_numbers_as_strings(identity_report, tmp_path, monkeypatch):
+    """The one JSON policy of splice._io.json_safe: 'inf'/'-inf'/'nan' strings, never null."""
+    import splice.inspection.run as run
+
+    real = run.summarise
+
+    def with_non_finite(values):
+        stats = real(values)
+        return dict(stats, max=math.inf, min=-math.inf, std=math.nan)
+
+    monkeypatch.setattr(run, "summarise", with_non_finite)
+    folder = identity_report[1].parent / "spliced"
+    result = I.inspect(folder, data="digits-moved", n=2, out=tmp_path / "r", pictures=False)
+    on_disk = json.loads((tmp_path / "r" / "summary.json").read_text(encoding="utf-8"))
+    stats = on_disk["warps"]["input"]["quantities"]["angle_deg"]
+    assert (stats["max"], stats["min"], stats["std"]) == ("inf", "-inf", "nan")
+    assert result["warps"]["input"]["quantities"]["angle_deg"]["max"] == "inf"
+
+
 def test_csv_rows_are_the_decomposition_of_the_captured_thetas(picture_report):
     from splice.data import open_data
     from splice.store import load

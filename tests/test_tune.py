@@ -17,7 +17,8 @@ from splice._io import state_dict_sha256
 from splice.errors import DataError, RecipeError, SpliceError
 from splice.recipes import load_recipe
 from splice.surgery import WARP_PREFIX
-from splice.tune import read_metrics, tune
+from splice.options import ModelOptions
+from splice.training import RecipeOverrides, RunOptions, read_metrics, tune, tune_keywords
 from splice.training.checkpoint import CHECKPOINT_NAME, load_checkpoint
 
 SPEC = "splice.models:tray_net"
@@ -51,8 +52,8 @@ def _recipe(name: str, **changes):
 def base_run(tmp_path_factory):
     """A plain base trained briefly with baseline on upright digits."""
     out = tmp_path_factory.mktemp("base") / "run"
-    summary = tune(SPEC, kwargs=KW, input_shape=SHAPE, recipe=_recipe("baseline", epochs=2), data="digits",
-                   out=out, **QUIET)
+    summary = tune(SPEC, recipe=_recipe("baseline", epochs=2), data="digits", out=out,
+                   model_options=ModelOptions(kwargs=KW, input_shape=SHAPE), run_options=RunOptions(progress=False))
     return out, summary
 
 
@@ -97,8 +98,9 @@ def test_baseline_run_folder_layout(base_run):
 
 def test_overrides_reach_the_run(tmp_path, spliced):
     out = tmp_path / "run"
-    summary = tune(str(spliced), recipe="joint", data="digits-moved", out=out, epochs=1, batch_size=256, seed=3,
-                   lr=0.01, **QUIET)
+    summary = tune(str(spliced), recipe="joint", data="digits-moved", out=out,
+                   overrides=RecipeOverrides(epochs=1, batch_size=256, seed=3, lr=0.01),
+                   run_options=RunOptions(progress=False))
     resolved = load_recipe(out / "recipe.toml")
     assert (resolved.epochs, resolved.batch_size, resolved.seed, resolved.lr) == (1, 256, 3, 0.01)
     assert summary["steps"] == -(-1078 // 256)
@@ -111,7 +113,7 @@ def test_overrides_reach_the_run(tmp_path, spliced):
 def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
     before = splice.load(spliced).state_dict()
     out = tmp_path / "run"
-    summary = tune(str(spliced), recipe=_recipe("warp-only"), data="digits-moved", out=out, **QUIET)
+    summary = tune_keywords(str(spliced), recipe=_recipe("warp-only"), data="digits-moved", out=out, **QUIET)
     assert summary["base_changed"] is False
     for which in ("best", "last"):
         after = splice.load(out / which).state_dict()
@@ -127,7 +129,7 @@ def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
 
 def test_joint_changes_the_base_and_records_it(tmp_path, spliced):
     out = tmp_path / "run"
-    summary = tune(str(spliced), recipe=_recipe("staged", epochs=2), data="digits-moved", out=out, **QUIET)
+    summary = tune_keywords(str(spliced), recipe=_recipe("staged", epochs=2), data="digits-moved", out=out, **QUIET)
     assert summary["base_changed"] is True
     rows = read_metrics(out)
     assert [r["base_frozen"] for r in rows if r["phase"] == "epoch"] == [True, False]  # staged: 0.4 * 2 -> 1 epoch
@@ -141,8 +143,8 @@ def test_a_seed_fixes_the_random_init_of_a_model_built_from_a_spec(tmp_path):
     recipe = _recipe("baseline", epochs=1)
 
     def trained(name, seed):
-        tune(SPEC, kwargs=KW, input_shape=SHAPE, recipe=recipe, data="digits", out=tmp_path / name, seed=seed,
-             **QUIET)
+        tune_keywords(SPEC, kwargs=KW, input_shape=SHAPE, recipe=recipe, data="digits", out=tmp_path / name, seed=seed,
+                      **QUIET)
         return state_dict_sha256(splice.load(tmp_path / name / "last").state_dict())
 
     torch.manual_seed(7)
@@ -157,36 +159,36 @@ def test_a_seed_fixes_the_random_init_of_a_model_built_from_a_spec(tmp_path):
 
 def test_warp_recipe_on_a_plain_model_explains_insert(tmp_path, base_run):
     with pytest.raises(RecipeError, match=r"trains warps, but .* has none; splice it first, e.g. 'splice insert"):
-        tune(str(base_run[0] / "best"), recipe="warp-only", data="digits", out=tmp_path / "a", **QUIET)
+        tune_keywords(str(base_run[0] / "best"), recipe="warp-only", data="digits", out=tmp_path / "a", **QUIET)
 
 
 def test_baseline_on_a_spliced_model_is_refused(tmp_path, spliced):
     with pytest.raises(RecipeError, match=r"trains plain models, but .* holds warps at input; use 'joint'"):
-        tune(str(spliced), recipe="baseline", data="digits", out=tmp_path / "a", **QUIET)
+        tune_keywords(str(spliced), recipe="baseline", data="digits", out=tmp_path / "a", **QUIET)
 
 
 def test_bad_run_arguments(tmp_path, spliced):
     (tmp_path / "full").mkdir()
     (tmp_path / "full" / "x").write_text("x")
     with pytest.raises(SpliceError, match=r"already exists and is not empty; continue it with --resume"):
-        tune(str(spliced), recipe="joint", out=tmp_path / "full", **QUIET)
+        tune_keywords(str(spliced), recipe="joint", out=tmp_path / "full", **QUIET)
     with pytest.raises(SpliceError, match=r"tune needs a run folder: pass --out RUN"):
-        tune(str(spliced), recipe="joint", **QUIET)
+        tune_keywords(str(spliced), recipe="joint", **QUIET)
     with pytest.raises(SpliceError, match=r"is not a splice tune run folder \(no run.json\)"):
-        tune(resume=tmp_path / "full", **QUIET)
+        tune_keywords(resume=tmp_path / "full", **QUIET)
     with pytest.raises(DataError, match=r"model has 7 outputs but data 'digits' has 10 classes.*num_classes"):
-        tune(SPEC, kwargs={"width": 4, "num_classes": 7}, input_shape=SHAPE, recipe="baseline", out=tmp_path / "b",
-             **QUIET)
+        tune_keywords(SPEC, kwargs={"width": 4, "num_classes": 7}, input_shape=SHAPE, recipe="baseline", out=tmp_path / "b",
+                      **QUIET)
     with pytest.raises(RecipeError, match=r"freeze pattern 'nope\*' matches no module"):
-        tune(SPEC, kwargs=KW, input_shape=SHAPE, recipe=_recipe("baseline", freeze=["nope*"]), out=tmp_path / "c",
-             **QUIET)
+        tune_keywords(SPEC, kwargs=KW, input_shape=SHAPE, recipe=_recipe("baseline", freeze=["nope*"]), out=tmp_path / "c",
+                      **QUIET)
 
 
 def test_freeze_patterns_keep_matching_modules_fixed(tmp_path, base_run):
     start = splice.load(base_run[0] / "best").state_dict()
     out = tmp_path / "run"
-    tune(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=1, freeze=["block1*"]), data="digits",
-         out=out, **QUIET)
+    tune_keywords(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=1, freeze=["block1*"]), data="digits",
+                  out=out, **QUIET)
     after = splice.load(out / "last").state_dict()
     for k, v in after.items():
         if k.startswith("block1."):
@@ -201,17 +203,17 @@ def _final_hash(run) -> str:
 def test_stopped_mid_epoch_and_resumed_matches_uninterrupted(tmp_path, spliced):
     recipe = _recipe("joint", epochs=2, batch_size=64)  # augmentation on: its randomness must replay too
     full = tmp_path / "full"
-    tune(str(spliced), recipe=recipe, data="digits-moved", out=full, **QUIET)
+    tune_keywords(str(spliced), recipe=recipe, data="digits-moved", out=full, **QUIET)
 
     part = tmp_path / "part"
-    stopped = tune(str(spliced), recipe=recipe, data="digits-moved", out=part, stop_after_steps=5, **QUIET)
+    stopped = tune_keywords(str(spliced), recipe=recipe, data="digits-moved", out=part, stop_after_steps=5, **QUIET)
     assert stopped["interrupted"] and stopped["resume_at"] == {"epoch": 0, "batch": 5}
     ckpt = load_checkpoint(part / CHECKPOINT_NAME)
     assert (ckpt["epoch"], ckpt["batch"], ckpt["step"]) == (0, 5, 5)
     assert json.loads((part / "run.json").read_text())["status"] == "interrupted"
     with pytest.raises(SpliceError, match=r"started with a different recipe \(differs in epochs\)"):
-        tune(resume=part, epochs=9, **QUIET)
-    summary = tune(resume=part, **QUIET)
+        tune_keywords(resume=part, epochs=9, **QUIET)
+    summary = tune_keywords(resume=part, **QUIET)
     assert summary["steps"] == 2 * 17
     assert _final_hash(part) == _final_hash(full)
     # the same rows, apart from timings
@@ -243,8 +245,8 @@ class _FailingFile:
 @pytest.mark.parametrize("failure", ["disk-full", "read-only"])
 def test_failed_checkpoint_write_leaves_the_previous_one_intact(tmp_path, base_run, monkeypatch, failure):
     out = tmp_path / "run"
-    tune(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=2), data="digits", out=out,
-         stop_after_steps=9, **QUIET)  # epoch 1 is 9 steps at batch 128: the checkpoint sits at an epoch end
+    tune_keywords(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=2), data="digits", out=out,
+                  stop_after_steps=9, **QUIET)  # epoch 1 is 9 steps at batch 128: the checkpoint sits at an epoch end
     good = (out / CHECKPOINT_NAME).read_bytes()
     import splice._io as io_mod
     import splice.training.checkpoint as ckpt_mod
@@ -263,12 +265,12 @@ def test_failed_checkpoint_write_leaves_the_previous_one_intact(tmp_path, base_r
 
     monkeypatch.setattr(ckpt_mod, "atomic_write_bytes", failing_write)
     with pytest.raises(SpliceError, match=r"could not write the checkpoint .* the previous checkpoint is intact"):
-        tune(resume=out, **QUIET)
+        tune_keywords(resume=out, **QUIET)
     monkeypatch.undo()
     assert (out / CHECKPOINT_NAME).read_bytes() == good
     assert load_checkpoint(out / CHECKPOINT_NAME)["step"] == 9
     assert not [p for p in out.iterdir() if p.name.startswith(f".{CHECKPOINT_NAME}")]  # no temp files left
-    assert tune(resume=out, **QUIET)["steps"] == 18  # and the run can still finish
+    assert tune_keywords(resume=out, **QUIET)["steps"] == 18  # and the run can still finish
 
 
 class _Tty(__import__("io").StringIO):
@@ -351,3 +353,15 @@ def test_pretraining_target_grid_undoes_the_distortion():
     inner[..., 12:20, 14:18] = True
     assert float((back - img.double())[inner].abs().max()) < 0.05
     assert float((back - img.double()).abs().mean()) < 0.02
+
+
+def test_options_are_checked_and_the_keyword_path_refuses_unknown_keywords(tmp_path):
+    with pytest.raises(ValueError, match=r"RunOptions.workers must be an integer >= 0; got -1"):
+        RunOptions(workers=-1)
+    with pytest.raises(ValueError, match=r"RunOptions.stop_after_steps must be None or an integer >= 1; got 0"):
+        RunOptions(stop_after_steps=0)
+    with pytest.raises(ValueError, match=r"ModelOptions.leaves must be a sequence of names; got 'Conv2d'"):
+        ModelOptions(leaves="Conv2d")
+    with pytest.raises(TypeError, match=r"tune\(\) got unexpected keyword argument\(s\) epoch; it takes .*epochs"):
+        tune_keywords(SPEC, recipe="baseline", out=tmp_path / "r", epoch=3)
+    assert not (tmp_path / "r").exists()

@@ -1,12 +1,27 @@
-"""Internals of ``splice tune``: the loop, checkpoints, distributed set-up, warp pre-training.
+"""``splice tune``: the public entry point and its internals, one module per concern.
 
-One module per concern: :mod:`~splice.training.batches` (data order and
-per-batch randomness as pure functions of the seed), :mod:`~splice.training.loop`
-(the optimisation step and evaluation), :mod:`~splice.training.pretrain`
-(grid-matching pre-training of warp heads), :mod:`~splice.training.schedule`
-(learning-rate schedules), :mod:`~splice.training.checkpoint` (atomic,
-``weights_only`` checkpoints) and :mod:`~splice.training.distributed`
-(torchrun process groups). The public entry point is :func:`splice.tune`.
+:mod:`~splice.training.tune` (the public :func:`tune` and :func:`tune_keywords`),
+:mod:`~splice.training.options` (:class:`RecipeOverrides`, :class:`RunOptions`),
+:mod:`~splice.training.setup` (recipe, model and data resolution),
+:mod:`~splice.training.runfolder` (run.json, recipe.toml, metrics.jsonl, resume checks),
+:mod:`~splice.training.state` (the state of one run),
+:mod:`~splice.training.epochs` (the loop: start, resume, pre-train, epochs),
+:mod:`~splice.training.recording` (metrics rows, best/last folders, checkpoints),
+:mod:`~splice.training.params` (freezing, optimiser groups, modes),
+:mod:`~splice.training.batches` (data order and per-batch randomness as pure
+functions of the seed), :mod:`~splice.training.loop` (the optimisation step
+and evaluation), :mod:`~splice.training.pretrain` (grid-matching pre-training
+of warp heads), :mod:`~splice.training.schedule` (learning-rate schedules),
+:mod:`~splice.training.checkpoint` (atomic, ``weights_only`` checkpoints) and
+:mod:`~splice.training.distributed` (torchrun process groups).
+
+Importing this package loads the loop (torch); ``import splice`` does not.
 """
 
-__all__: list[str] = []
+from .options import RecipeOverrides, RunOptions
+from .runfolder import RUN_SCHEMA_VERSION, read_metrics
+from .state import TuneInterrupted
+from .tune import tune, tune_keywords
+
+__all__ = ["tune", "tune_keywords", "RecipeOverrides", "RunOptions", "read_metrics", "RUN_SCHEMA_VERSION",
+           "TuneInterrupted"]

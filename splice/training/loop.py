@@ -1,6 +1,6 @@
 """The inner training step and the evaluation pass.
 
-Kept free of files, progress and process groups: :mod:`splice.tune` owns those.
+Kept free of files, progress and process groups: :mod:`splice.training.epochs` owns those.
 A step is forward, loss (cross-entropy with label smoothing, plus the decaying
 identity regulariser on the warps), backward, optional gradient clipping and
 one optimiser step, under autocast + a gradient scaler on CUDA.

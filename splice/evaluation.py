@@ -29,12 +29,14 @@ from __future__ import annotations
 import copy
 import math
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 
 import torch
 from torch import Tensor, nn
 from torch.nn import functional as F
 
 from .errors import DataError, SpliceError, suggest
+from .options import ModelOptions, split_keywords
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -43,7 +45,9 @@ __all__ = [
     "SWEEP_UNITS",
     "parse_distort",
     "sweep_images",
+    "EvalOptions",
     "evaluate",
+    "evaluate_keywords",
     "render_eval",
     "draw_sweep_plot",
 ]
@@ -239,19 +243,40 @@ class _Tally:
 # ----------------------------------------------------------------------------- evaluate
 
 
-def evaluate(model, *, data: str, split: str = "test", against=None, distort=None, batch_size: int = 128,
-             plot=None, weights=None, kwargs=None, input_shape=None, trust_pickle: bool = False,
-             device=None, seed: int = 0, limit: int | None = None) -> dict:
+@dataclass(frozen=True)
+class EvalOptions:
+    """How :func:`evaluate` runs: ``batch_size`` images per forward pass, ``device`` (``cpu``,
+    ``cuda[:N]``, ``mps``; ``None`` picks cuda, then mps, then cpu), ``seed`` of the perspective
+    corners, ``limit``: evaluate only the first ``limit`` images of the split (quick checks)."""
+
+    batch_size: int = 128
+    device: str | None = None
+    seed: int = 0
+    limit: int | None = None
+
+    def __post_init__(self) -> None:
+        if isinstance(self.batch_size, bool) or not isinstance(self.batch_size, int) or self.batch_size < 1:
+            raise DataError(f"batch_size must be a positive integer; got {self.batch_size!r}.")
+        if self.limit is not None and (isinstance(self.limit, bool) or not isinstance(self.limit, int)
+                                       or self.limit < 1):
+            raise DataError(f"limit must be a positive number of images or None; got {self.limit!r}.")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int):
+            raise DataError(f"seed must be an integer; got {self.seed!r}.")
+
+
+def evaluate(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,
+             model_options: ModelOptions | None = None, options: EvalOptions | None = None) -> dict:
     """Accuracy and mean cross-entropy of ``model`` on a split, clean and under distortion sweeps.
 
     ``model`` and ``against`` are anything :func:`splice.sources.load_source`
-    takes (spec string, spliced or plain folder, ``nn.Module``); ``weights``,
-    ``kwargs`` and ``input_shape`` apply to ``model`` only. ``device`` is
-    ``cpu``, ``cuda[:N]`` or ``mps``; ``None`` picks cuda, then mps, then cpu. ``distort`` is a
+    takes (spec string, spliced or plain folder, ``nn.Module``);
+    ``model_options`` (:class:`~splice.options.ModelOptions`) apply to
+    ``model``, and only its ``trust_pickle`` to ``against``. ``distort`` is a
     ``--distort`` string or mapping (see :func:`parse_distort`; ``None`` is
     :data:`DEFAULT_SWEEPS`). ``plot`` is a PNG path for the accuracy-vs-level
-    figure; no plot is written unless it is given. ``limit`` evaluates only
-    the first ``limit`` images of the split (quick checks).
+    figure; no plot is written unless it is given. ``options``
+    (:class:`EvalOptions`): batch size, device, seed, limit.
+    :func:`evaluate_keywords` takes every option as a flat keyword instead.
 
     Returns::
 
@@ -263,52 +288,22 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
          "against": {"clean": {...}, "sweeps": {...}} | None,
          "plot": str | None}
     """
-    from .data import normalise, open_data
-    from .sources import load_source
+    from .data import open_data
     from .training.distributed import pick_device
 
     sweeps = parse_distort(distort)
-    if isinstance(batch_size, bool) or not isinstance(batch_size, int) or batch_size < 1:
-        raise DataError(f"batch_size must be a positive integer; got {batch_size!r}.")
-    dev = pick_device(device)
-    src = load_source(model, weights=weights, kwargs=kwargs, input_shape=input_shape, trust_pickle=trust_pickle)
-    if src.input_shape is None:
-        raise SpliceError("evaluate needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW.")
-    models = [("model", _label(model), src, _prepare(src, dev, model))]
-    if against is not None:
-        src2 = load_source(against, input_shape=src.input_shape if isinstance(against, nn.Module) else None,
-                           trust_pickle=trust_pickle)
-        if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
-            raise DataError(
-                f"the two models take different inputs ({'x'.join(map(str, src.input_shape))} and "
-                f"{'x'.join(map(str, src2.input_shape))}); they can only be compared on the same images."
-            )
-        models.append(("against", _label(against), src2, _prepare(src2, dev, against)))
+    model_options = model_options or ModelOptions()
+    options = options or EvalOptions()
+    dev = pick_device(options.device)
+    models = _load_models(model, against, model_options, dev)
+    src = models[0][2]
     ds = open_data(data, split, input_shape=src.input_shape)
     classes = [str(c) for c in ds.classes]
-    if limit is not None and (isinstance(limit, bool) or not isinstance(limit, int) or limit < 1):
-        raise DataError(f"limit must be a positive number of images or None; got {limit!r}.")
-    n = len(ds) if limit is None else min(limit, len(ds))
+    n = len(ds) if options.limit is None else min(options.limit, len(ds))
     if n == 0:
         raise DataError(f"the {split} split of {data} holds no images; choose another split.")
     conditions = [("clean", None)] + [(kind, level) for kind, levels in sweeps.items() for level in levels]
-    tallies = {(role, cond): _Tally() for role, *_ in models for cond in conditions}
-    checked = set()
-    with torch.no_grad():
-        for first, images, labels in _batches(ds, batch_size, n):
-            images = images.to(torch.float32)
-            for cond in conditions:
-                kind, level = cond
-                x = images if kind == "clean" else sweep_images(images, kind, level, seed=seed,
-                                                                 first_index=first, total=n)
-                for role, name, source, net in models:
-                    param = next(iter(net.parameters()), None)
-                    dtype = param.dtype if param is not None else torch.float32
-                    logits = net(normalise(x, source.normalisation).to(device=dev, dtype=dtype))
-                    if role not in checked:
-                        _check_classes(logits, classes, f"model {name}", source, str(data))
-                        checked.add(role)
-                    tallies[(role, cond)].add(logits.to("cpu"), labels)
+    tallies = _tally(models, ds, n, conditions, classes, str(data), options, dev)
 
     def block(role: str) -> dict:
         return {
@@ -319,23 +314,67 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
 
     mine = block("model")
     result = {
-        "schema_version": SCHEMA_VERSION,
-        "model": models[0][1],
+        "schema_version": SCHEMA_VERSION, "model": models[0][1],
         "against_model": models[1][1] if against is not None else None,
-        "data": str(data),
-        "split": split,
-        "n_images": n,
-        "classes": classes,
-        "device": str(dev),
-        "seed": int(seed),
-        "clean": mine["clean"],
-        "sweeps": mine["sweeps"],
-        "against": block("against") if against is not None else None,
-        "plot": None,
+        "data": str(data), "split": split, "n_images": n, "classes": classes, "device": str(dev),
+        "seed": int(options.seed), "clean": mine["clean"], "sweeps": mine["sweeps"],
+        "against": block("against") if against is not None else None, "plot": None,
     }
     if plot is not None:
         result["plot"] = str(draw_sweep_plot(result, plot))
     return result
+
+
+def evaluate_keywords(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,
+                      **keywords) -> dict:
+    """:func:`evaluate` with the fields of :class:`~splice.options.ModelOptions` and
+    :class:`EvalOptions` as flat keywords (``weights=``, ``batch_size=``, ``device=``, …)."""
+    model_options, options = split_keywords(keywords, (ModelOptions, EvalOptions), "evaluate")
+    return evaluate(model, data=data, split=split, against=against, distort=distort, plot=plot,
+                    model_options=model_options, options=options)
+
+
+def _load_models(model, against, model_options: ModelOptions, dev) -> list[tuple]:
+    """``[(role, label, source, module on dev in eval mode)]`` for the model and ``against``."""
+    src = model_options.load(model)
+    if src.input_shape is None:
+        raise SpliceError("evaluate needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW.")
+    models = [("model", _label(model), src, _prepare(src, dev, model))]
+    if against is not None:
+        other = ModelOptions(input_shape=src.input_shape if isinstance(against, nn.Module) else None,
+                             trust_pickle=model_options.trust_pickle)
+        src2 = other.load(against)
+        if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
+            raise DataError(
+                f"the two models take different inputs ({'x'.join(map(str, src.input_shape))} and "
+                f"{'x'.join(map(str, src2.input_shape))}); they can only be compared on the same images."
+            )
+        models.append(("against", _label(against), src2, _prepare(src2, dev, against)))
+    return models
+
+
+@torch.no_grad()
+def _tally(models, ds, n: int, conditions, classes: list[str], data: str, options: EvalOptions, dev) -> dict:
+    """Correct counts and losses of every model under every condition, batch by batch."""
+    from .data import normalise
+
+    tallies = {(role, cond): _Tally() for role, *_ in models for cond in conditions}
+    checked = set()
+    for first, images, labels in _batches(ds, options.batch_size, n):
+        images = images.to(torch.float32)
+        for cond in conditions:
+            kind, level = cond
+            x = images if kind == "clean" else sweep_images(images, kind, level, seed=options.seed,
+                                                             first_index=first, total=n)
+            for role, name, source, net in models:
+                param = next(iter(net.parameters()), None)
+                dtype = param.dtype if param is not None else torch.float32
+                logits = net(normalise(x, source.normalisation).to(device=dev, dtype=dtype))
+                if role not in checked:
+                    _check_classes(logits, classes, f"model {name}", source, data)
+                    checked.add(role)
+                tallies[(role, cond)].add(logits.to("cpu"), labels)
+    return tallies
 
 
 # ----------------------------------------------------------------------------- screen and picture

@@ -1,0 +1,84 @@
+"""Run a spliced model on images and record every warp's raw parameters per image."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor, nn
+
+from ..errors import DataError, SpliceError
+
+__all__ = ["Capture", "capture", "check_positive_int"]
+
+
+@dataclass
+class Capture:
+    """What :func:`capture` recorded: each warp's ``theta`` per image and the model outputs.
+
+    ``thetas`` maps point name to a float64 CPU tensor ``(N, P)``; ``logits`` is
+    the model's ``(N, K)`` output on the CPU (``None`` when the model does not
+    return one tensor).
+    """
+
+    thetas: dict[str, Tensor]
+    logits: Tensor | None
+
+
+def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None = None,
+            batch_size: int = 64) -> Capture:
+    """Run ``model`` on ``images`` (``(N, C, H, W)`` in [0, 1]) and record every warp's ``theta``.
+
+    Images are normalised with ``normalisation`` first (as the model was
+    trained), moved to the model's device in batches of ``batch_size``, and
+    run in eval mode without gradients. The warps' ``record`` flags and
+    ``last_theta`` and the model's train/eval mode are restored afterwards.
+    """
+    from ..data import normalise
+    from ..surgery import warps_of
+
+    warps = warps_of(model)
+    if not warps:
+        raise SpliceError("capture needs a spliced model with at least one warp; this model has none. "
+                          "Splice one first with splice.insert(...) or 'splice insert'.")
+    if not isinstance(images, Tensor) or images.dim() != 4:
+        raise DataError(f"capture needs images (N, C, H, W) in [0, 1]; got {getattr(images, 'shape', images)!r}.")
+    check_positive_int("batch_size", batch_size)
+    param = next(iter(model.parameters()), None)
+    device = param.device if param is not None else torch.device("cpu")
+    dtype = param.dtype if param is not None else torch.float32
+    was_training = model.training
+    was_recording = {name: (w.record, w.last_theta) for name, w in warps.items()}
+    thetas: dict[str, list[Tensor]] = {name: [] for name in warps}
+    outputs: list[Tensor] = []
+    single_tensor = True
+    try:
+        model.eval()
+        for w in warps.values():
+            w.record = True
+        with torch.no_grad():
+            for start in range(0, images.shape[0], batch_size):
+                x = normalise(images[start:start + batch_size], normalisation).to(device=device, dtype=dtype)
+                out = model(x)
+                for name, w in warps.items():
+                    thetas[name].append(w.last_theta.to("cpu", torch.float64))
+                if isinstance(out, Tensor) and out.dim() == 2:
+                    outputs.append(out.to("cpu", torch.float32))
+                else:
+                    single_tensor = False
+    finally:
+        model.train(was_training)
+        for name, w in warps.items():
+            w.record, w.last_theta = was_recording[name]
+    return Capture(
+        thetas={name: torch.cat(parts) for name, parts in thetas.items()},
+        logits=torch.cat(outputs) if single_tensor and outputs else None,
+    )
+
+
+def check_positive_int(name: str, value) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise DataError(f"{name} must be a positive integer; got {value!r}.")
+    return value
+

@@ -1,0 +1,91 @@
+"""Histograms of a warp's angle, scales and shifts over the inspected images.
+
+Layout, in pixels: one cell per quantity group, HIST_CELL_W x HIST_CELL_H,
+under the sheets' HEADER; width = cells * HIST_CELL_W, height = HEADER + HIST_CELL_H.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+
+import torch
+from torch import Tensor
+
+from .sheets import HEADER, header
+
+__all__ = ["HIST_CELL_W", "HIST_CELL_H", "draw_histograms"]
+
+HIST_CELL_W = 420
+HIST_CELL_H = 340
+
+
+def _bins(*series):
+    import numpy as np
+
+    values = np.concatenate([s[np.isfinite(s)] for s in series]) if series else np.zeros(0)
+    if values.size == 0:
+        return np.linspace(-1.0, 1.0, 11)
+    lo, hi = float(values.min()), float(values.max())
+    if hi - lo < 1e-9 * (1.0 + abs(lo)):
+        pad = max(1e-3, 0.05 * abs(lo))
+        lo, hi = lo - pad, hi + pad
+    # Rice rule, 2 n^(1/3) bins (from memory), kept between 8 and 30
+    return np.linspace(lo, hi, int(min(30, max(8, round(2.0 * values.size ** (1.0 / 3.0))))) + 1)
+
+
+def _hist_groups(family: str) -> list[tuple[str, list[tuple[str, str]]]]:
+    """(axis label, [(quantity, legend)]) for each histogram cell of a family."""
+    groups = [
+        ("sampling angle_deg (°, + = clockwise)", [("angle_deg", "angle_deg")]),
+        ("principal sampling scales (zoom = 1/scale)",
+         [("scale_1", "scale_1 (larger)"), ("scale_2", "scale_2 (smaller)")]),
+        ("shift of the sampled centre (px)", [("shift_x_px", "x (+ = right)"), ("shift_y_px", "y (+ = down)")]),
+    ]
+    if family == "projective":
+        groups.append(("perspective terms (normalised units)", [("persp_x", "g (x)"), ("persp_y", "h (y)")]))
+    if family == "tps":
+        groups.append(("control-point displacement (px)",
+                       [("tps_mean_px", "mean per image"), ("tps_max_px", "max per image")]))
+    return groups
+
+
+def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -> Path:
+    """Histograms of a warp's angle, principal scales and shifts (and perspective / tps terms) over the images."""
+    import numpy as np
+    from matplotlib.ticker import MaxNLocator
+
+    from ..pictures import FONT_SIZE, OKABE_ITO, new_figure, save_png
+
+    groups = _hist_groups(family)
+    size = (len(groups) * HIST_CELL_W, HEADER + HIST_CELL_H)
+    fig = new_figure(*size)
+    w, h = size
+    n = int(next(iter(desc.values())).shape[0])
+    header(fig, size, f"Warp at '{point}' ({family}): distributions over {n} images",
+            "Sampling side (the map from output to input), in pixels of the warped tensor. The top axis of the "
+            "angle shows the content's visible rotation (= -angle); a warp that undoes a clockwise turn by a "
+            "has angle_deg = a." + (" For tps, angle, scales and shift describe the spline's affine part."
+                                    if family == "tps" else ""))
+    colours = [OKABE_ITO["blue"], OKABE_ITO["orange"]]
+    for k, (label, series) in enumerate(groups):
+        left, bottom, aw, ah = k * HIST_CELL_W + 62, 52, HIST_CELL_W - 84, HIST_CELL_H - 120
+        ax = fig.add_axes((left / w, bottom / h, aw / w, ah / h))
+        arrays = [desc[q].detach().to("cpu", torch.float64).numpy() for q, _ in series]
+        bins = _bins(*arrays)
+        for (q, legend), values, colour in zip(series, arrays, colours):
+            finite = values[np.isfinite(values)]
+            ax.hist(finite, bins=bins, histtype="stepfilled" if len(series) == 1 else "step", lw=2.0,
+                    color=colour, alpha=0.85 if len(series) == 1 else 1.0, label=legend)
+        ax.set_xlabel(label, fontsize=FONT_SIZE)
+        ax.set_ylabel("images", fontsize=FONT_SIZE)
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+        ax.tick_params(labelsize=FONT_SIZE - 1)
+        if len(series) > 1:
+            ax.legend(fontsize=FONT_SIZE - 1, frameon=False)
+        if series[0][0] == "angle_deg":
+            top = ax.secondary_xaxis("top", functions=(lambda x: -x, lambda x: -x))
+            top.set_xlabel("visible rotation of the content (°)", fontsize=FONT_SIZE)
+            top.tick_params(labelsize=FONT_SIZE - 1)
+    return save_png(fig, path)
+

@@ -1,0 +1,191 @@
+"""``splice inspect``: capture, describe, summarise and draw every warp of a spliced folder."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+from torch import Tensor
+
+from .._io import json_safe
+from ..errors import DataError, SpliceError
+from .capture import capture, check_positive_int
+from .decompose import QUANTITY_HELP, describe_theta, quantities_for
+from .plots import draw_histograms
+from .sheets import SHEET_IMAGES, draw_contact_sheet, draw_outline_sheet
+from .summary import CSV_QUANTITIES, SCHEMA_VERSION, csv_text, summarise
+
+__all__ = ["inspect"]
+
+
+def _first_images(ds, n: int) -> tuple[Tensor, Tensor, Tensor | None]:
+    """The first ``n`` images of a split (all of them if it is smaller), labels and dataset indices."""
+    k = min(n, len(ds))
+    if k == 0:
+        raise DataError(f"the {getattr(ds, 'split', '')} split of {getattr(ds, 'name', 'the data')} holds no images; "
+                        "choose another split or add images.")
+    if isinstance(getattr(ds, "images", None), Tensor):
+        images, labels = ds.images[:k], ds.labels[:k]
+    else:
+        items = [ds[i] for i in range(k)]
+        images = torch.stack([x for x, _ in items])
+        labels = torch.tensor([int(y) for _, y in items], dtype=torch.long)
+    return images.to(torch.float32), labels, torch.arange(k)
+
+
+def _stride(input_shape, warp_shape) -> tuple[float, float]:
+    """``(sy, sx)`` = input size / point size, as :class:`splice.graph.Point` defines the stride."""
+    return (input_shape[1] / warp_shape[1], input_shape[2] / warp_shape[2])
+
+
+def _safe_name(point: str) -> str:
+    return "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in point)
+
+
+@dataclass
+class _Sample:
+    """The inspected images with what is known about them."""
+
+    images: Tensor
+    labels: Tensor
+    indices: Tensor
+    classes: list[str] | None
+    normalisation: dict | None
+    input_shape: tuple[int, ...]
+    predicted: Tensor | None = None
+    accuracy: float | None = None
+
+
+def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_pickle: bool = False,
+            batch_size: int = 64, sheet_images: int = SHEET_IMAGES, pictures: bool = True) -> dict:
+    """Show what the warps of a spliced folder learned, on ``n`` images of a data split.
+
+    Writes to ``out``: ``warps.csv`` (one row per image per warp, the
+    quantities of :data:`QUANTITY_HELP`), ``summary.json`` (the returned dict)
+    and, with ``pictures=True``, for each warp ``hist_<point>.png`` plus
+    ``sheet_<point>.png`` (input-level warps: input | sampling grid | output for
+    the first ``sheet_images`` images) or ``outline_<point>.png``
+    (feature-level warps: the sampling outline projected onto the input).
+
+    Returns ``{"schema_version", "model", "data", "split", "n_images",
+    "accuracy", "warps": {point: {"family", "level", "shape", "stride",
+    "quantities": {name: {"n", "mean", "std", "p5", "p95", "min", "max"}}}},
+    "help", "files", "out"}``; statistics of a quantity with no finite value
+    are ``None``, and a non-finite number is written as ``"inf"``, ``"-inf"``
+    or ``"nan"`` (:func:`splice._io.json_safe`).
+
+    >>> report = splice.inspect("out/tray-affine", data="digits-moved", out="out/report")  # doctest: +SKIP
+    >>> report["warps"]["input"]["quantities"]["angle_deg"]["mean"]                           # doctest: +SKIP
+    """
+    from .._io import atomic_write_json, atomic_write_text
+
+    check_positive_int("n", n)
+    check_positive_int("sheet_images", sheet_images)
+    if out is None:
+        raise SpliceError("inspect needs an output folder for its report; pass out=DIR (--out DIR).")
+    model, warps, facts = _load(folder, trust_pickle)
+    sample = _sample(facts, data, split, n)
+    cap = capture(model, sample.images, normalisation=sample.normalisation, batch_size=batch_size)
+    _score(sample, cap.logits)
+    outdir = Path(out)
+    outdir.mkdir(parents=True, exist_ok=True)
+    rows: list[dict] = []
+    summary_warps: dict[str, dict] = {}
+    files = {"csv": "warps.csv", "summary": "summary.json", "pictures": []}
+    for point, warp in warps.items():
+        theta = cap.thetas[point]
+        desc = describe_theta(warp, theta)
+        summary_warps[point] = _warp_summary(point, warp, desc, sample)
+        rows += _csv_rows(point, warp, desc, sample)
+        if pictures:
+            files["pictures"] += _draw(outdir, point, warp, theta, desc, sample,
+                                      min(sheet_images, sample.images.shape[0]))
+    atomic_write_text(outdir / "warps.csv", csv_text(rows))
+    used = sorted({q for w in summary_warps.values() for q in w["quantities"]}, key=CSV_QUANTITIES.index)
+    result = json_safe({
+        "schema_version": SCHEMA_VERSION, "model": str(folder), "data": str(data), "split": split,
+        "n_images": int(sample.images.shape[0]), "accuracy": sample.accuracy, "warps": summary_warps,
+        "help": {q: QUANTITY_HELP[q] for q in used}, "files": files,
+    })
+    atomic_write_json(outdir / "summary.json", result)
+    result["out"] = str(outdir)
+    return result
+
+
+def _load(folder, trust_pickle: bool):
+    """The spliced model of ``folder``, its warps and its record's facts."""
+    from ..facts import splice_facts
+    from ..store import load
+    from ..surgery import warps_of
+
+    model = load(folder, trust_pickle=trust_pickle)
+    warps = warps_of(model)
+    if not warps:
+        raise SpliceError(
+            f"'{folder}' holds no warps, so there is nothing to inspect; give a folder written by "
+            "'splice insert' or 'splice tune' with a warp recipe."
+        )
+    return model, warps, splice_facts(model)
+
+
+def _sample(facts, data: str, split: str, n: int) -> _Sample:
+    from ..data import open_data
+
+    input_shape = tuple(facts.input_shape)
+    ds = open_data(data, split, input_shape=input_shape)
+    classes = list(getattr(ds, "classes", []) or []) or facts.class_names
+    images, labels, indices = _first_images(ds, n)
+    return _Sample(images=images, labels=labels, indices=indices, classes=classes,
+                   normalisation=facts.normalisation, input_shape=input_shape)
+
+
+def _score(sample: _Sample, logits: Tensor | None) -> None:
+    """Predicted classes and accuracy, when the model returns one logit per class."""
+    classes = sample.classes
+    if logits is not None and classes and logits.shape[1] == len(classes):
+        sample.predicted = logits.argmax(dim=1)
+        sample.accuracy = float((sample.predicted == sample.labels).to(torch.float64).mean())
+
+
+def _level(point: str) -> str:
+    return "input" if point == "input" else "feature"
+
+
+def _warp_summary(point: str, warp, desc: dict, sample: _Sample) -> dict:
+    stride = _stride(sample.input_shape, warp.shape)
+    return {
+        "family": warp.family,
+        "level": _level(point),
+        "shape": list(warp.shape),
+        "stride": [stride[0], stride[1]],
+        "quantities": {q: summarise(desc[q]) for q in quantities_for(warp.family)},
+    }
+
+
+def _csv_rows(point: str, warp, desc: dict, sample: _Sample) -> list[dict]:
+    rows = []
+    for i in range(sample.images.shape[0]):
+        row = {"image": int(sample.indices[i]), "label": int(sample.labels[i]),
+               "predicted": "" if sample.predicted is None else int(sample.predicted[i]),
+               "point": point, "family": warp.family}
+        row.update({q: float(desc[q][i]) for q in quantities_for(warp.family)})
+        rows.append(row)
+    return rows
+
+
+def _draw(outdir: Path, point: str, warp, theta: Tensor, desc: dict, sample: _Sample, k: int) -> list[str]:
+    """The sheet (input level) or outline (feature level) of the first ``k`` images, and the histograms."""
+    name = _safe_name(point)
+    images = sample.images
+    common = {"labels": sample.labels[:k], "classes": sample.classes, "indices": sample.indices[:k],
+              "of": int(images.shape[0])}
+    if _level(point) == "input":
+        path = draw_contact_sheet(outdir / f"sheet_{name}.png", warp, point, theta[:k], images[:k],
+                                  predicted=None if sample.predicted is None else sample.predicted[:k],
+                                  normalisation=sample.normalisation, **common)
+    else:
+        path = draw_outline_sheet(outdir / f"outline_{name}.png", warp, point, theta[:k], images[:k],
+                                  _stride(sample.input_shape, warp.shape), **common)
+    hist = draw_histograms(outdir / f"hist_{name}.png", point, warp.family, desc)
+    return [path.name, hist.name]

@@ -1,0 +1,77 @@
+"""Options that travel together: how to build a model from its source, and the keyword path.
+
+:class:`ModelOptions` holds the options of :func:`splice.sources.load_source`
+beyond the spec itself; ``tune`` and ``evaluate`` take one instead of six
+loose parameters. :func:`split_keywords` spreads flat keyword arguments (what
+the command line produces) over such dataclasses by field name, so each
+command keeps a keyword path without a long signature.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+__all__ = ["ModelOptions", "split_keywords"]
+
+
+@dataclass(frozen=True)
+class ModelOptions:
+    """How to build a model from a spec: the options of :func:`splice.sources.load_source`.
+
+    ``weights`` is a checkpoint file for the architecture, ``kwargs`` the
+    builder's keyword arguments (a mapping or a JSON string), ``input_shape``
+    ``(C, H, W)`` (or a ``CxHxW`` string) when the builder does not declare one,
+    ``leaves`` extra module types the tracer must not enter, ``trust_pickle``
+    the explicit opt-in to unpickling, ``allow_partial`` accepts a checkpoint
+    that covers only part of the model.
+    """
+
+    weights: str | os.PathLike | None = None
+    kwargs: Mapping | str | None = None
+    input_shape: Any = None
+    leaves: tuple[str, ...] = ()
+    trust_pickle: bool = False
+    allow_partial: bool = False
+
+    def __post_init__(self) -> None:
+        if self.weights is not None and not isinstance(self.weights, (str, os.PathLike)):
+            raise ValueError(f"ModelOptions.weights must be a path or None; got {self.weights!r}")
+        if self.kwargs is not None and not isinstance(self.kwargs, (Mapping, str)):
+            raise ValueError(f"ModelOptions.kwargs must be a mapping, a JSON string or None; got {self.kwargs!r}")
+        leaves = self.leaves
+        if isinstance(leaves, str) or not isinstance(leaves, Sequence) or not all(isinstance(x, str) for x in leaves):
+            raise ValueError(f"ModelOptions.leaves must be a sequence of names; got {leaves!r}")
+        object.__setattr__(self, "leaves", tuple(leaves))
+        for name in ("trust_pickle", "allow_partial"):
+            if not isinstance(getattr(self, name), bool):
+                raise ValueError(f"ModelOptions.{name} must be True or False; got {getattr(self, name)!r}")
+
+    def load(self, model: Any, **extra: Any):
+        """:func:`splice.sources.load_source` of ``model`` with these options (``extra`` passed on)."""
+        from .sources import load_source
+
+        spec = os.fspath(model) if isinstance(model, os.PathLike) else model
+        return load_source(spec, weights=self.weights, kwargs=self.kwargs, input_shape=self.input_shape,
+                           allow_partial=self.allow_partial, trust_pickle=self.trust_pickle, leaves=self.leaves,
+                           **extra)
+
+
+def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: str) -> list:
+    """One instance of each dataclass in ``kinds``, built from the ``keywords`` named like its fields.
+
+    A keyword that no dataclass has raises ``TypeError`` naming ``where`` and the keywords it takes.
+    """
+    left = dict(keywords)
+    out = []
+    for kind in kinds:
+        names = [f.name for f in dataclasses.fields(kind)]
+        out.append(kind(**{k: left.pop(k) for k in names if k in left}))
+    if left:
+        allowed = sorted(f.name for kind in kinds for f in dataclasses.fields(kind))
+        raise TypeError(f"{where}() got unexpected keyword argument(s) {', '.join(sorted(left))}; "
+                        f"it takes {', '.join(allowed)}")
+    return out

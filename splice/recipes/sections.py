@@ -1,0 +1,112 @@
+"""The ``[augment]`` and ``[pretrain]`` tables of a recipe.
+
+Both hold distortion ranges (``rotation``, ``scale``, ``shift``,
+``perspective``); they share one dataclass, :class:`Ranges`, which checks
+them and turns them into a :class:`splice.distort.DistortionRange` in one place.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar
+
+from ..distort import DistortionRange
+from .checks import boolean, integer, number, scale_pair
+
+__all__ = ["Ranges", "Augment", "Pretrain"]
+
+
+@dataclass
+class Ranges:
+    """Random distortion ranges, as a recipe writes them.
+
+    ``rotation`` is the largest |angle| in degrees, ``scale`` a ``[low, high]``
+    range, ``shift`` the largest |shift| as a fraction of the image size per
+    axis, ``perspective`` the corner-offset strength (0..1). All zero (the
+    default) means no distortion. Subclasses name their table in ``_owner``.
+    """
+
+    rotation: float = 0.0
+    scale: tuple[float, float] = (1.0, 1.0)
+    shift: float = 0.0
+    perspective: float = 0.0
+
+    _owner: ClassVar[str] = ""
+
+    def __post_init__(self) -> None:
+        o = self._owner
+        self.rotation = number(o, "rotation", self.rotation, low=0, high=180, hint=" (largest |angle| in degrees)")
+        self.scale = scale_pair(o, "scale", self.scale)
+        self.shift = number(o, "shift", self.shift, low=0, high=1, hint=" (fraction of the image size)")
+        self.perspective = number(o, "perspective", self.perspective, low=0, high=1)
+
+    def to_range(self, **extra) -> DistortionRange:
+        """The equivalent :class:`splice.distort.DistortionRange` (``extra``: its other fields)."""
+        return DistortionRange(rotation_deg=self.rotation, scale=self.scale, shift=self.shift,
+                               perspective=self.perspective, **extra)
+
+
+@dataclass
+class Augment(Ranges):
+    """Training-time random distortions: the :class:`Ranges` plus flips and crops.
+
+    ``crop`` is the largest fraction of the area cropped away (0..0.99),
+    ``hflip``/``vflip`` flip with probability 1/2.
+    """
+
+    hflip: bool = False
+    vflip: bool = False
+    crop: float = 0.0
+
+    _owner: ClassVar[str] = "augment."
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        o = self._owner
+        self.hflip = boolean(o, "hflip", self.hflip)
+        self.vflip = boolean(o, "vflip", self.vflip)
+        self.crop = number(o, "crop", self.crop, low=0, high=0.99, hint=" (fraction of the area removed)")
+
+    def to_range(self, **extra) -> DistortionRange:
+        return super().to_range(hflip=self.hflip, vflip=self.vflip, crop=self.crop, **extra)
+
+    @property
+    def is_identity(self) -> bool:
+        return self.to_range().is_identity
+
+
+@dataclass
+class Pretrain(Ranges):
+    """Warp-head pre-training: regress each head onto known random warps.
+
+    Each step draws distortions from the :class:`Ranges` (same meaning as in
+    ``[augment]``), applies them to reference images, and trains the heads so
+    that their sampling grid matches the grid that undoes the distortion (mean
+    squared error between grids, in normalised coordinates). Only the heads
+    change; the base is untouched.
+
+    ``epochs = 0`` switches pre-training off. ``reference`` picks the images:
+    ``"auto"`` (the data set's upright reference if it has one, e.g.
+    digits-moved -> digits, else its training images), ``"train"`` (the
+    training images), or a data set name / folder.
+    """
+
+    epochs: int = 0
+    lr: float = 0.003
+    batch_size: int = 64
+    weight_decay: float = 0.0
+    reference: str = "auto"
+
+    _owner: ClassVar[str] = "pretrain."
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        o = self._owner
+        self.epochs = integer(o, "epochs", self.epochs)
+        self.lr = number(o, "lr", self.lr, low=0, low_open=True, high=10)
+        self.batch_size = integer(o, "batch_size", self.batch_size, low=1)
+        self.weight_decay = number(o, "weight_decay", self.weight_decay, low=0, high=1)
+        if not isinstance(self.reference, str) or not self.reference:
+            raise ValueError(
+                f"pretrain.reference must be 'auto', 'train', or a data set name / folder; got {self.reference!r}"
+            )

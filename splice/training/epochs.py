@@ -1,0 +1,250 @@
+"""The training loop of ``splice tune``: start or resume, pre-train the warps, run the epochs.
+
+Exact resume: the data order and every random draw are pure functions of
+``(seed, epoch, batch)`` (see :mod:`splice.training.batches`), the learning
+rate a pure function of the step, and the checkpoint holds the model,
+optimiser, gradient scaler and RNG states.
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import torch
+
+from ..distort import random_distort
+from ..errors import RecipeError, SpliceError, first_line
+from . import batches as _b
+from . import distributed
+from .checkpoint import set_rng_state
+from .loop import Stepper, ThetaTap
+from .params import frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
+    set_requires_grad
+from .pretrain import pretrain_warps_
+from .recording import checkpoint, finish, record, stopped
+from .runfolder import truncate_metrics
+from .schedule import lr_factor
+from .setup import reference_images
+from .state import Run, TuneInterrupted
+
+__all__ = ["train"]
+
+
+class _Frozen:
+    """The recipe's frozen parameter names and modules, and which base state the net is in now."""
+
+    def __init__(self, run: Run) -> None:
+        self.names = frozen_names(run.net, run.rec.freeze, run.where)
+        self.modules = frozen_modules(run.net, run.rec.freeze)
+        self.base: bool | None = None
+
+
+def train(run: Run) -> dict[str, Any]:
+    """Train ``run`` to the end (or to a stop request); returns the summary."""
+    frozen = _Frozen(run)
+    stepper, tap = _set_up(run, frozen)
+    try:
+        start_epoch, start_batch = _restore(run, stepper) if run.ckpt is not None else (0, 0)
+        if run.ckpt is None and run.ctx.is_main:
+            truncate_metrics(run.run_dir, 0)
+        run.t_run = time.monotonic()
+        if run.ckpt is None:
+            _start(run, stepper, frozen)
+        return _epochs(run, stepper, frozen, start_epoch, start_batch)
+    finally:
+        if tap is not None:
+            tap.close()
+
+
+def _set_up(run: Run, frozen: _Frozen) -> tuple[Stepper, ThetaTap | None]:
+    """Optimiser, step counts and the stepper (with the identity regulariser's tap when the recipe asks)."""
+    ctx, rec = run.ctx, run.rec
+    run.amp = ctx.device.type == "cuda"
+    groups = param_groups(run.net, rec, frozen.names)
+    if not groups:
+        raise RecipeError(f"{run.where}: nothing left to train (every parameter is frozen); shorten 'freeze'")
+    run.optimizer = make_optimizer(groups, rec)
+    run.per_rank = rec.batch_size // ctx.world_size
+    mine = _b.shard(torch.arange(len(run.train)), ctx.rank, ctx.world_size)
+    run.steps_per_epoch = len(_b.index_batches(mine, run.per_rank))
+    run.total_steps = run.steps_per_epoch * rec.epochs
+    run.warmup_steps = round(rec.warmup_epochs * run.steps_per_epoch)
+    tap = ThetaTap(run.warps) if run.warps and rec.identity_reg > 0 else None
+    stepper = Stepper(run.net, run.optimizer, device=ctx.device, label_smoothing=rec.label_smoothing,
+                      grad_clip=rec.grad_clip, amp=run.amp, tap=tap)
+    run.net_wrapped = run.net
+    return stepper, tap
+
+
+def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
+    """Load the checkpoint into the model, optimiser, scaler and RNG; returns ``(epoch, batch)`` to start at."""
+    ctx, ckpt = run.ctx, run.ckpt
+    if ckpt["world_size"] != ctx.world_size and ckpt["batch"] != 0:
+        raise SpliceError(
+            f"the checkpoint in '{run.run_dir}' was written mid-epoch by {ckpt['world_size']} process(es); "
+            f"resume it with the same number of processes (now {ctx.world_size})"
+        )
+    try:
+        run.net.load_state_dict(ckpt["model"], strict=True)
+    except RuntimeError as exc:
+        raise SpliceError(
+            f"the checkpoint in '{run.run_dir}' does not fit the model ({first_line(exc)}); resume with the "
+            "model, --kwargs and --input-shape the run was started with"
+        ) from None
+    run.optimizer.load_state_dict(ckpt["optimizer"])
+    if stepper.scaler is not None and ckpt.get("scaler"):
+        stepper.scaler.load_state_dict(ckpt["scaler"])
+    set_rng_state(ckpt["rng"])
+    start_epoch, start_batch, run.step = int(ckpt["epoch"]), int(ckpt["batch"]), int(ckpt["step"])
+    run.best, run.bad_evals = dict(ckpt["best"]), int(ckpt["bad_evals"])
+    run.metrics_rows = int(ckpt["metrics_rows"])
+    if ctx.is_main:
+        truncate_metrics(run.run_dir, run.metrics_rows)
+    if start_batch and ctx.is_main:  # the partial epoch's totals (summed over ranks) live on rank 0
+        ls, cor, seen, run.epoch_time = ckpt["epoch_totals"]
+        stepper.loss_sum.fill_(ls)
+        stepper.correct.fill_(cor)
+        stepper.seen = int(seen)
+    elif start_batch:
+        run.epoch_time = float(ckpt["epoch_totals"][3])
+    run.bar.line(f"resuming {run.run_dir} at epoch {start_epoch + 1}, batch {start_batch}, step {run.step}")
+    return start_epoch, start_batch
+
+
+def _start(run: Run, stepper: Stepper, frozen: _Frozen) -> None:
+    """A fresh run: pre-train the warp heads (if the recipe does), record the starting point, checkpoint."""
+    ctx, rec = run.ctx, run.rec
+    if not (run.warps and rec.pretrain.epochs > 0):
+        record(run, "start", 0)
+        checkpoint(run, stepper, epoch=0, batch=0)
+        return
+    ref, ref_name = reference_images(rec, run.data, run.train, run.shape, run.reference_override)
+    set_requires_grad(run.net, frozen.names, base_frozen=True)
+
+    def on_step(i, total, loss):
+        if i == 1:
+            run.bar.start("pre-train warps", total)
+        run.bar.update(i, **{"grid loss": loss})
+        if distributed.broadcast_flag(ctx, run.flag.raised):  # every rank stops at the same step
+            raise TuneInterrupted("interrupted during warp pre-training")
+    try:
+        res = pretrain_warps_(run.net, run.warps, ref, rec.pretrain, seed=rec.seed, prepare=run.prepare,
+                              rank=ctx.rank, world=ctx.world_size, reduce_grads=grad_reducer(ctx),
+                              on_step=on_step, workers=run.workers)
+    except TuneInterrupted:
+        run.bar.line(f"interrupted during warp pre-training (no checkpoint yet); "
+                     f"'splice tune --resume {run.run_dir}' starts the run again from the beginning")
+        raise
+    run.bar.finish(res["steps"])
+    record(run, "pretrain", 0, loss=round(res["grid_loss"], 6),
+           extra={"reference": ref_name, "pretrain_steps": res["steps"]})
+    checkpoint(run, stepper, epoch=0, batch=0)
+
+
+def _wrap(run: Run, base_frozen: bool) -> None:
+    """(Re)build the DDP wrapper for the current set of trainable parameters."""
+    if not run.ctx.distributed:
+        run.net_wrapped = run.net
+        return
+    from torch.nn.parallel import DistributedDataParallel as DDP
+
+    ids = [run.ctx.device.index] if run.ctx.device.type == "cuda" else None
+    run.net_wrapped = DDP(run.net, device_ids=ids, broadcast_buffers=not base_frozen)
+
+
+def _enter_epoch(run: Run, stepper: Stepper, frozen: _Frozen, epoch: int) -> None:
+    """Freeze or thaw the base for ``epoch``, set train/eval modes and the regulariser weight."""
+    rec = run.rec
+    base_frozen = rec.base_frozen(epoch)
+    if base_frozen != frozen.base:
+        set_requires_grad(run.net, frozen.names, base_frozen)
+        _wrap(run, base_frozen)
+        stepper.model = run.net_wrapped
+        frozen.base = base_frozen
+    set_modes(run.net, run.warps, base_frozen, frozen.modules)
+    stepper.reg_weight = rec.identity_reg * rec.identity_reg_decay ** epoch if run.warps else 0.0
+
+
+def _epochs(run: Run, stepper: Stepper, frozen: _Frozen, start_epoch: int, start_batch: int) -> dict[str, Any]:
+    rec = run.rec
+    ips = None
+    for epoch in range(start_epoch, rec.epochs):
+        _enter_epoch(run, stepper, frozen, epoch)
+        first = start_batch if epoch == start_epoch else 0
+        if first == 0:
+            stepper.reset_totals()
+            run.epoch_time = 0.0
+        stop, batch = _batches(run, stepper, epoch, first)
+        if batch is not None:  # stopped mid-epoch, checkpoint written at that batch
+            return stopped(run, epoch, batch)
+        ips = _end_epoch(run, stepper, epoch)
+        if stop:
+            return stopped(run, epoch + 1, 0)
+        if rec.patience and run.bad_evals >= rec.patience and epoch + 1 < rec.epochs:
+            run.bar.line(f"no better validation accuracy for {rec.patience} evaluations: stopping early")
+            return finish(run, ips, stopped_early=True)
+    return finish(run, ips, stopped_early=False)
+
+
+def _batches(run: Run, stepper: Stepper, epoch: int, first: int) -> tuple[bool, int | None]:
+    """Train on the batches of ``epoch`` from ``first``.
+
+    Returns ``(stop requested, batch)``: ``batch`` is set when the run stopped
+    mid-epoch (checkpoint written at that batch); a stop on the epoch's last
+    batch lets the epoch finish (evaluation, checkpoint) first.
+    """
+    ctx, rec = run.ctx, run.rec
+    order = _b.shard(_b.epoch_order(rec.seed, epoch, len(run.train)), ctx.rank, ctx.world_size)
+    batches = _b.index_batches(order, run.per_rank)
+    aug_range = None if rec.augment.is_identity else rec.augment.to_range()
+    run.bar.start(f"epoch {epoch + 1}/{rec.epochs}", len(batches))
+    t0 = time.perf_counter()
+    stop = False
+    for b, (x, y) in enumerate(_b.iterate(run.train, batches[first:], workers=run.workers), start=first):
+        if aug_range is not None:
+            x, _ = random_distort(x, aug_range, _b.generator(rec.seed, "augment", epoch, b, ctx.rank))
+        _set_lr(run)
+        torch.manual_seed(_b.mix(rec.seed, "step", epoch, b, ctx.rank))
+        stepper.step(run.prepare(x), y.to(ctx.device, non_blocking=True))
+        run.step += 1
+        if run.bar.rich:
+            _show(run, stepper, b, run.epoch_time + time.perf_counter() - t0)
+        wanted = run.flag.raised or (run.stop_after_steps is not None and run.step >= run.stop_after_steps)
+        if distributed.broadcast_flag(ctx, wanted) if ctx.distributed else wanted:
+            stop = True
+            if b + 1 < len(batches):  # mid-epoch: checkpoint this exact batch and stop
+                run.epoch_time += time.perf_counter() - t0
+                totals = distributed.all_reduce_sum(ctx, list(stepper.totals()))  # over every rank
+                checkpoint(run, stepper, epoch=epoch, batch=b + 1, extra={"epoch_totals": [*totals, run.epoch_time]})
+                return stop, b + 1
+    run.epoch_time += time.perf_counter() - t0
+    return stop, None
+
+
+def _set_lr(run: Run) -> None:
+    rec = run.rec
+    factor = lr_factor(rec.schedule, run.step, steps_per_epoch=run.steps_per_epoch, total_steps=run.total_steps,
+                       warmup_steps=run.warmup_steps, step_epochs=rec.step_epochs, step_gamma=rec.step_gamma)
+    for g in run.optimizer.param_groups:
+        g["lr"] = g["base_lr"] * factor
+
+
+def _show(run: Run, stepper: Stepper, b: int, elapsed: float) -> None:
+    seen = stepper.seen
+    run.bar.update(b + 1, loss=float(stepper.loss_sum) / max(1, seen), acc=float(stepper.correct) / max(1, seen),
+                   **{"img/s": seen * run.ctx.world_size / max(elapsed, 1e-9)})
+
+
+def _end_epoch(run: Run, stepper: Stepper, epoch: int) -> float:
+    """Sync buffers, evaluate when due, checkpoint; returns the epoch's images per second."""
+    ctx, rec = run.ctx, run.rec
+    distributed.sync_buffers(ctx, run.net)
+    loss_sum, correct, seen = distributed.all_reduce_sum(ctx, list(stepper.totals()))
+    ips = seen / max(run.epoch_time, 1e-9)
+    if (epoch + 1) % rec.eval_every == 0 or epoch + 1 == rec.epochs:
+        improved = record(run, "epoch", epoch + 1, loss=round(loss_sum / max(1, seen), 6),
+                          train_acc=round(correct / max(1, seen), 6), ips=round(ips, 1))
+        run.bad_evals = 0 if improved else run.bad_evals + 1
+    checkpoint(run, stepper, epoch=epoch + 1, batch=0)
+    return ips

@@ -1,0 +1,151 @@
+"""What a run leaves behind: metrics rows, the best/last folders, checkpoints and its end."""
+
+from __future__ import annotations
+
+import os
+import time
+from typing import Any
+
+import torch
+
+from .._io import atomic_write_text, state_dict_sha256
+from ..facts import splice_facts
+from . import distributed
+from .checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
+from .loop import evaluate
+from .params import is_warp_name
+from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, writing
+from .state import Run, TuneInterrupted, unwrap
+
+__all__ = ["record", "checkpoint", "stopped", "finish"]
+
+
+def _evaluate(run: Run) -> tuple[float, float]:
+    """Validation loss and accuracy over every rank's share of the val split."""
+    ctx = run.ctx
+    idx = torch.arange(len(run.val))[ctx.rank::ctx.world_size]
+    loss_sum, correct, seen = evaluate(unwrap(run.net_wrapped), run.val, idx, prepare=run.prepare,
+                                       device=ctx.device, amp=run.amp, workers=run.workers)
+    loss_sum, correct, seen = distributed.all_reduce_sum(ctx, [loss_sum, correct, float(seen)])
+    return loss_sum / max(1.0, seen), correct / max(1.0, seen)
+
+
+def _warp_distances(warps) -> dict[str, float]:
+    return {name: round(float(w.identity_distance()), 6) for name, w in warps.items()}
+
+
+def _base_changed(run: Run) -> bool:
+    base = {k: v for k, v in unwrap(run.net_wrapped).state_dict().items() if not is_warp_name(k)}
+    return state_dict_sha256(base) != run.info["base_sha256_start"]
+
+
+def _tuning(run: Run, which: str, epoch: int, accuracy: float) -> dict:
+    return {
+        "recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
+        "val_accuracy": round(accuracy, 6), "data": run.data, "seed": run.rec.seed,
+        "base_changed": _base_changed(run), "run": str(run.run_dir),
+    }
+
+
+def _save_folder(run: Run, which: str, epoch: int, accuracy: float) -> None:
+    from ..store import save
+
+    if not run.ctx.is_main:
+        return
+    model = unwrap(run.net_wrapped)
+    kwargs = {"overwrite": True, "tuning": _tuning(run, which, epoch, accuracy),
+              "class_names": run.classes, "normalisation": run.norm}
+    if splice_facts(model) is None:
+        kwargs["source"] = run.src
+    with writing(run.run_dir / which):
+        save(model, run.run_dir / which, **kwargs)
+
+
+def _line(run: Run, row: dict) -> str:
+    phase, epoch = row["phase"], row["epoch"]
+    parts = [f"{phase} {epoch}/{run.rec.epochs}" if phase == "epoch" else phase, f"step {row['step']}"]
+    if row["loss"] is not None:
+        parts.append(f"loss {row['loss']:.4f}")
+    parts.append(f"val acc {row['accuracy']:.4f}")
+    if row["images_per_s"]:
+        parts.append(f"{row['images_per_s']:,.0f} img/s")
+    if run.warps:
+        parts.append("warp dist " + ", ".join(f"{k} {v:.3f}" for k, v in row["warp_distance"].items()))
+    return "  ".join(parts)
+
+
+def record(run: Run, phase: str, epoch: int, *, loss=None, train_acc=None, ips=None, extra=None) -> bool:
+    """Evaluate, append a metrics row, save ``best`` (if better) and ``last``, log a line; True if improved."""
+    val_loss, acc = _evaluate(run)
+    row = {"phase": phase, "epoch": epoch, "step": run.step, "loss": loss, "train_accuracy": train_acc,
+           "accuracy": round(acc, 6), "val_loss": round(val_loss, 6), "lr": run.optimizer.param_groups[0]["lr"],
+           "images_per_s": ips, "warp_distance": _warp_distances(run.warps),
+           "base_frozen": run.rec.base_frozen(max(0, epoch - 1)),
+           "time_s": round(time.monotonic() - run.t_run, 3), **(extra or {})}
+    if run.ctx.is_main:
+        append_metrics(run.run_dir, row)
+    run.metrics_rows += 1
+    improved = acc > run.best["accuracy"]
+    if improved:
+        run.best = {"accuracy": acc, "epoch": epoch, "step": run.step}
+        _save_folder(run, "best", epoch, acc)
+    _save_folder(run, "last", epoch, acc)
+    run.bar.line(_line(run, row))
+    return improved
+
+
+def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None = None) -> None:
+    """Write ``checkpoint.pt`` (rank 0): everything needed to continue at ``(epoch, batch)``."""
+    if not run.ctx.is_main:
+        return
+    loss_sum, correct, seen = stepper.totals()
+    payload = {
+        "epoch": epoch, "batch": batch, "step": run.step, "world_size": run.ctx.world_size,
+        "model": {k: v.detach().to("cpu") for k, v in unwrap(run.net_wrapped).state_dict().items()},
+        "optimizer": run.optimizer.state_dict(),
+        "scheduler": {"kind": run.rec.schedule, "step": run.step, "total_steps": run.total_steps,
+                      "steps_per_epoch": run.steps_per_epoch, "warmup_steps": run.warmup_steps},
+        "scaler": stepper.scaler.state_dict() if stepper.scaler is not None else {},
+        "rng": rng_state(),
+        "best": dict(run.best),
+        "bad_evals": run.bad_evals,
+        "metrics_rows": run.metrics_rows,
+        "epoch_totals": [loss_sum, correct, float(seen), run.epoch_time],
+        "recipe": run.rec.to_dict(),
+    }
+    if extra:
+        payload.update(extra)
+    save_checkpoint(run.run_dir / CHECKPOINT_NAME, payload)
+
+
+def stopped(run: Run, epoch: int, batch: int) -> dict[str, Any]:
+    """After a stop request: the checkpoint is written; record it, and raise for Ctrl-C / SIGTERM."""
+    if run.ctx.is_main:
+        write_run_info(run.run_dir, dict(run.info, status="interrupted"))
+    where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
+    run.bar.line(f"stopped at {where} (step {run.step}); checkpoint written. "
+                 f"Continue with: splice tune --resume {run.run_dir}")
+    if run.flag.raised:
+        raise TuneInterrupted(f"stopped at step {run.step}; resume with --resume {run.run_dir}")
+    return {"out": str(run.run_dir), "rank": run.ctx.rank, "world_size": run.ctx.world_size,
+            "best_accuracy": run.best["accuracy"], "best_epoch": run.best["epoch"], "steps": run.step,
+            "epochs": run.rec.epochs, "interrupted": True, "resume_at": {"epoch": epoch, "batch": batch}}
+
+
+def finish(run: Run, ips, stopped_early: bool) -> dict[str, Any]:
+    """The run ended: mark run.json and return the summary."""
+    ctx = run.ctx
+    final = unwrap(run.net_wrapped)
+    base_changed = _base_changed(run)
+    if os.environ.get(HASH_ENV):
+        atomic_write_text(run.run_dir / f"rank{ctx.rank}.sha256", state_dict_sha256(final.state_dict()) + "\n")
+    last_rows = [r for r in read_metrics(run.run_dir) if r.get("phase") == "epoch"] if ctx.is_main else []
+    if ctx.is_main:
+        write_run_info(run.run_dir, dict(run.info, status="stopped early" if stopped_early else "finished"))
+    return {
+        "out": str(run.run_dir), "rank": ctx.rank, "world_size": ctx.world_size,
+        "best_accuracy": run.best["accuracy"], "best_epoch": run.best["epoch"],
+        "last_accuracy": last_rows[-1]["accuracy"] if last_rows else None,
+        "epochs": run.rec.epochs, "steps": run.step, "base_changed": base_changed,
+        "images_per_s": ips, "stopped_early": stopped_early, "interrupted": False,
+    }

@@ -1,0 +1,191 @@
+"""Resolving what a tune run trains: the recipe (fresh or resumed), the model, the data, the run record."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import torch
+from torch import nn
+
+from .._io import state_dict_sha256
+from ..errors import DataError, RecipeError, SpliceError
+from ..facts import copy_model, splice_facts
+from ..options import ModelOptions
+from ..recipes import Recipe, load_recipe
+from ..surgery import WARP_PREFIX, warps_of
+from .batches import mix
+from .checkpoint import CHECKPOINT_NAME, load_checkpoint
+from .options import RecipeOverrides
+from .runfolder import RECIPE_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe
+
+__all__ = ["Request", "resolve", "load_model", "open_splits", "reference_images", "normalisation", "run_info"]
+
+
+@dataclass
+class Request:
+    """What was asked for, completed from the run folder when resuming (``info``: its run.json)."""
+
+    model: Any
+    recipe: Recipe
+    data: str
+    model_options: ModelOptions
+    info: dict | None
+    ckpt: dict | None
+
+
+def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overrides: RecipeOverrides,
+            model_options: ModelOptions) -> Request:
+    """The recipe, model and data of a fresh run, or of a resumed one (whose run folder is the authority)."""
+    if info is None:
+        if recipe is None:
+            raise RecipeError("tune needs a recipe: baseline, warp-only, joint, staged, or a .toml file")
+        if model is None:
+            raise SpliceError("tune needs a model: a spec such as splice.models:tray_net or a splice folder")
+        rec = load_recipe(recipe).with_overrides(**overrides.recipe_keys())
+        req = Request(model, rec, "digits" if data is None else data, model_options, None, None)
+    else:
+        req = _resumed(run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
+                       model_options=model_options)
+    if ctx.world_size > 1 and req.recipe.batch_size % ctx.world_size:
+        raise RecipeError(
+            f"batch_size {req.recipe.batch_size} does not split evenly over {ctx.world_size} processes; the "
+            "recipe's batch size is the global batch — pick a multiple of the process count (--batch-size)"
+        )
+    return req
+
+
+def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: RecipeOverrides,
+             model_options: ModelOptions) -> Request:
+    recorded = load_recipe(run_dir / RECIPE_FILE)
+    if recipe is not None or overrides.any_recipe_key:
+        given = load_recipe(recipe if recipe is not None else run_dir / RECIPE_FILE)
+        given = given.with_overrides(**overrides.recipe_keys())
+        if given.to_dict() | {"name": ""} != recorded.to_dict() | {"name": ""}:
+            diff = [k for k, v in given.to_dict().items() if recorded.to_dict().get(k) != v and k != "name"]
+            raise RecipeError(
+                f"run '{run_dir}' was started with a different recipe (differs in {', '.join(diff)}); "
+                f"resume without --recipe and overrides, or with the same ones"
+            )
+    check_same("model", describe(model) if model is not None else None, info["model"], run_dir)
+    check_same("data", data, info["data"], run_dir)
+    if model is None and info["model"] == "<module>":
+        raise SpliceError(f"run '{run_dir}' was started from an nn.Module object; pass the same model again to resume")
+    # the architecture must be rebuilt exactly as it was: reuse the recorded builder options
+    mo = model_options
+    mo = dataclasses.replace(
+        mo, kwargs=mo.kwargs if mo.kwargs is not None else info.get("model_kwargs") or None,
+        input_shape=mo.input_shape if mo.input_shape is not None else info.get("input_shape"),
+        weights=mo.weights if mo.weights is not None else info.get("model_weights"))
+    ckpt = load_checkpoint(run_dir / CHECKPOINT_NAME) if (run_dir / CHECKPOINT_NAME).is_file() else None
+    return Request(model if model is not None else info["model"], recorded, info["data"], mo, info, ckpt)
+
+
+def load_model(req: Request, where: str):
+    """``(source, a module of our own to train, its warps)``; the recipe and the model must fit each other."""
+    rec, model = req.recipe, req.model
+    with torch.random.fork_rng(devices=[]):
+        # a model built from a spec without weights starts from the recipe seed's
+        # random init, so one seed gives one run; the rest of the run does not see
+        # this seeding (tune() restores the caller's RNG when the run ends)
+        torch.manual_seed(mix(rec.seed, "init"))
+        src = req.model_options.load(model, warn_random=req.ckpt is None and req.info is None)
+    net = src.model if isinstance(model, (str, os.PathLike)) else copy_model(src.model)  # never the caller's module
+    warps = warps_of(net)
+    if rec.uses_warps and not warps:
+        raise RecipeError(
+            f"{where} trains warps, but {describe(model)} has none; splice it first, e.g. "
+            f"'splice insert {describe(model)} --at input --warp affine --out SPLICED', then tune SPLICED"
+        )
+    if not rec.uses_warps and warps:
+        raise RecipeError(
+            f"{where} ({rec.mode}) trains plain models, but {describe(model)} holds warps at "
+            f"{', '.join(warps)}; use 'joint', 'warp-only' or 'staged', or tune the model before splicing"
+        )
+    if not warps and splice_facts(net) is None and getattr(src, "spec", "<module>") == "<module>":
+        raise SpliceError(
+            "tune cannot save a plain nn.Module without knowing how to rebuild it; pass a spec string "
+            "(e.g. 'splice.models:tray_net') or a Source from splice.load_source"
+        )
+    if src.input_shape is None:
+        raise SpliceError("tune needs the model's input shape; pass --input-shape CxHxW (input_shape=...)")
+    return src, net, warps
+
+
+def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
+    was = {m: m.training for m in model.modules()}
+    model.eval()
+    try:
+        with torch.no_grad():
+            out = model(torch.zeros((2, *input_shape), device=device))
+    except Exception:  # noqa: BLE001 - a model that cannot run on zeros is reported later, by the loop
+        return None
+    finally:
+        for m, mode in was.items():
+            m.training = mode
+    return int(out.shape[-1]) if isinstance(out, torch.Tensor) and out.dim() == 2 else None
+
+
+def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:
+    """The train and val splits and their class names, checked against the model's outputs and classes."""
+    from ..data import open_data
+
+    shape = tuple(src.input_shape)
+    train = open_data(data, "train", input_shape=shape)
+    val = open_data(data, "val", input_shape=shape)
+    if len(train) == 0 or len(val) == 0:
+        raise DataError(f"data {data!r} has an empty train or val split; add images to both")
+    classes = list(getattr(train, "classes", []) or [])
+    n_out = _num_outputs(net, shape, device)
+    if n_out is not None and classes and n_out != len(classes):
+        raise DataError(
+            f"the model has {n_out} outputs but data {data!r} has {len(classes)} classes; build the model "
+            f"with that many, e.g. --kwargs '{{\"num_classes\": {len(classes)}}}'"
+        )
+    if src.class_names and classes and list(src.class_names) != classes:
+        raise DataError(
+            f"the model was trained on classes {src.class_names[:6]} but data {data!r} has {classes[:6]}; "
+            "class folders must match the model's classes (same names, same order)"
+        )
+    return train, val, classes
+
+
+def reference_images(recipe: Recipe, data: str, train, input_shape, override: str | None):
+    """The images warp pre-training distorts, and their name (``[pretrain] reference``)."""
+    from ..data import open_data, upright_counterpart
+
+    choice = override or recipe.pretrain.reference
+    if choice == "train":
+        return train, "train"
+    if choice == "auto":
+        upright = getattr(train, "reference", None) or upright_counterpart(data)
+        if upright is None:
+            return train, "train"
+        return open_data(upright, "train", input_shape=input_shape), upright
+    return open_data(choice, "train", input_shape=input_shape), choice
+
+
+def normalisation(recipe: Recipe, src) -> dict | None:
+    if recipe.normalisation == "none":
+        return None
+    if recipe.normalisation == "auto":
+        return src.normalisation
+    return dict(recipe.normalisation)
+
+
+def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm) -> dict:
+    """The run.json record of a fresh run."""
+    base = {k: v for k, v in net.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
+    weights = req.model_options.weights
+    return {
+        "schema_version": RUN_SCHEMA_VERSION, "format": RUN_FORMAT, "model": describe(req.model),
+        "model_kwargs": dict(src.kwargs), "model_weights": str(weights) if weights is not None else None,
+        "data": req.data, "recipe": req.recipe.name, "mode": req.recipe.mode, "world_size": ctx.world_size,
+        "device": str(ctx.device), "input_shape": list(src.input_shape), "class_names": classes or None,
+        "normalisation": norm, "base_sha256_start": state_dict_sha256(base), "status": "running",
+        "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
+    }

@@ -1,0 +1,195 @@
+"""``splice tune``: fine-tune a model with a recipe, in one process or under torchrun.
+
+>>> from splice.training import tune
+>>> summary = tune("out/tray-affine", recipe="joint", data="digits-moved",
+...                out="runs/joint")                                 # doctest: +SKIP
+>>> summary["best_accuracy"], summary["best_epoch"]                  # doctest: +SKIP
+
+The run folder (``out``)::
+
+    RUN/
+      run.json          what was run: model, data, recipe name, world size, status (schema version 1)
+      recipe.toml       the resolved recipe, overrides applied (load it with --recipe RUN/recipe.toml)
+      metrics.jsonl     one JSON row per evaluation (see below)
+      checkpoint.pt     resumable state, rewritten atomically every epoch (torch.load(weights_only=True))
+      best/  last/      splice folders (weights.safetensors + splice.json), the best by validation
+                        accuracy and the latest; plain folders for ``baseline`` runs
+
+A metrics row holds ``phase`` (``start``, ``pretrain`` or ``epoch``), ``epoch``
+(epochs completed), ``step`` (optimiser steps so far), ``loss`` (mean training
+loss of the epoch; the grid loss for ``pretrain``), ``train_accuracy``,
+``accuracy`` and ``val_loss`` (validation split), ``lr`` (base lr, or the warp
+lr when the base is frozen), ``images_per_s`` (training images per second over
+all processes, evaluation excluded), ``warp_distance`` (each warp's
+:meth:`~splice.warps.Warp.identity_distance`), ``base_frozen`` and ``time_s``.
+
+Exact resume: on the CPU, with deterministic algorithms (the default there), a
+run interrupted and resumed ends with the same weights, bit for bit, as one
+that was not (see :mod:`splice.training.epochs`).
+
+Ctrl-C (SIGINT) or SIGTERM finishes the current step, writes a checkpoint at
+that exact batch and stops; ``--resume RUN`` carries on from there.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import threading
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import torch
+
+from ..options import ModelOptions, split_keywords
+from ..recipes import Recipe
+from . import distributed
+from .epochs import train
+from .options import RecipeOverrides, RunOptions
+from .runfolder import prepare_folder, start_files, write_run_info
+from .setup import load_model, normalisation, open_splits, resolve, run_info
+from .state import Run
+
+__all__ = ["tune", "tune_keywords"]
+
+
+class _StopFlag:
+    """SIGINT/SIGTERM set a flag; the loop stops at the next step boundary (second Ctrl-C: immediate)."""
+
+    def __init__(self) -> None:
+        self.raised = False
+        self._old: dict[int, Any] = {}
+
+    def __enter__(self) -> _StopFlag:
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                self._old[sig] = signal.signal(sig, self._handle)
+        return self
+
+    def _handle(self, signum, frame) -> None:  # noqa: ARG002
+        if self.raised and signum == signal.SIGINT:
+            raise KeyboardInterrupt
+        self.raised = True
+
+    def __exit__(self, *exc) -> None:
+        for sig, old in self._old.items():
+            signal.signal(sig, old)
+
+
+def _set_deterministic(mode: bool) -> None:
+    """``torch.use_deterministic_algorithms(mode)`` without its side import of torch._inductor.
+
+    The public function also sets ``torch._inductor.config.deterministic``, which
+    costs seconds of import time and does not matter here (nothing is compiled).
+    """
+    setter = getattr(torch._C, "_set_deterministic_algorithms", None)
+    if setter is None:  # pragma: no cover - other torch builds
+        torch.use_deterministic_algorithms(mode)
+    else:
+        setter(mode, warn_only=False)
+
+
+def tune(
+    model: Any = None,
+    *,
+    recipe: str | os.PathLike | Recipe | Mapping | None = None,
+    data: str | None = None,
+    out: str | os.PathLike | None = None,
+    resume: str | os.PathLike | None = None,
+    overrides: RecipeOverrides | None = None,
+    model_options: ModelOptions | None = None,
+    run_options: RunOptions | None = None,
+) -> dict[str, Any]:
+    """Fine-tune ``model`` with ``recipe`` on ``data``; write the run folder ``out``.
+
+    ``model`` is any model source (spec string, splice folder, :class:`~splice.sources.Source`,
+    module); warp recipes need a spliced model (run ``splice insert`` first),
+    ``baseline`` a plain one; ``model_options`` (:class:`~splice.options.ModelOptions`)
+    say how to build it. ``recipe`` is a shipped name (``baseline``,
+    ``warp-only``, ``joint``, ``staged``), a ``.toml`` path or a
+    :class:`~splice.recipes.Recipe`; ``overrides`` (:class:`RecipeOverrides`)
+    replace its epochs, lr, batch size, seed or pre-training reference.
+    ``resume=RUN`` continues RUN from its checkpoint (``model``, ``recipe`` and
+    ``data`` may then be omitted; if given they must match the run). The seed
+    also fixes the random init of a model built from a spec without weights,
+    so one seed gives one run; the caller's RNG state is restored when the run
+    ends. ``run_options`` (:class:`RunOptions`): device, output, workers,
+    determinism. :func:`tune_keywords` takes every option as a flat keyword.
+
+    Returns a summary dict: ``out``, ``rank``, ``world_size``, ``best_accuracy``,
+    ``best_epoch``, ``last_accuracy``, ``epochs``, ``steps``, ``base_changed``,
+    ``images_per_s``, ``stopped_early``.
+    """
+    run_options = run_options or RunOptions()
+    ctx = distributed.setup(run_options.device)
+    try:
+        deterministic = run_options.deterministic
+        if deterministic is None:
+            deterministic = ctx.device.type == "cpu"
+        previous = torch.are_deterministic_algorithms_enabled()
+        if deterministic:
+            _set_deterministic(True)
+        cuda = [ctx.device.index or 0] if ctx.device.type == "cuda" else []
+        try:
+            # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards
+            with torch.random.fork_rng(devices=cuda):
+                run = _set_up(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume,
+                              overrides=overrides or RecipeOverrides(),
+                              model_options=model_options or ModelOptions(), run_options=run_options)
+                return _train(run, run_options)
+        finally:
+            _set_deterministic(previous)
+    finally:
+        distributed.teardown(ctx)
+
+
+def tune_keywords(model: Any = None, *, recipe=None, data=None, out=None, resume=None, **keywords) -> dict[str, Any]:
+    """:func:`tune` with the fields of :class:`RecipeOverrides`, :class:`~splice.options.ModelOptions`
+    and :class:`RunOptions` as flat keywords (``epochs=``, ``weights=``, ``device=``, …): the CLI's path."""
+    overrides, model_options, run_options = split_keywords(
+        keywords, (RecipeOverrides, ModelOptions, RunOptions), "tune")
+    return tune(model, recipe=recipe, data=data, out=out, resume=resume, overrides=overrides,
+                model_options=model_options, run_options=run_options)
+
+
+def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
+            run_options: RunOptions) -> Run:
+    """Resolve the request, build the model and the data, write (or update) the run record."""
+    run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
+                                   Path(resume) if resume is not None else None)
+    req = resolve(ctx, run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
+                  model_options=model_options)
+    rec = req.recipe
+    where = f"recipe '{rec.name}'"
+    src, net, warps = load_model(req, where)
+    net.to(ctx.device)
+    train_set, val_set, classes = open_splits(req.data, src, net, ctx.device)
+    norm = normalisation(rec, src)
+    dev = ctx.device
+
+    def prepare(x: torch.Tensor) -> torch.Tensor:
+        from ..data import normalise
+
+        return normalise(x, norm).to(dev, non_blocking=True)
+
+    if info is None:
+        info = run_info(ctx, req, src, net, classes, norm)
+        if ctx.is_main:
+            start_files(run_dir, rec, info)
+    elif ctx.is_main:
+        info["status"] = "running"
+        write_run_info(run_dir, info)
+    return Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train_set, val=val_set, prepare=prepare,
+               norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=req.data,
+               shape=tuple(src.input_shape), where=where, ckpt=req.ckpt, workers=run_options.workers,
+               stop_after_steps=run_options.stop_after_steps, reference_override=overrides.reference)
+
+
+def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
+    from ..progress import Progress
+
+    show = run_options.progress and run.ctx.is_main
+    with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
+        run.bar, run.flag = bar, flag
+        return train(run)
