@@ -43,10 +43,10 @@ def _test_accuracy(folder: Path, data: str) -> float:
     import splice
     from splice.data import normalise, open_data
 
-    from splice.facts import splice_facts
+    from splice.manifest import info_of
 
     model = splice.load(folder)
-    facts = splice_facts(model)
+    facts = info_of(model)
     ds = open_data(data, "test", input_shape=facts.input_shape)
     norm = facts.normalisation
     with torch.no_grad():
@@ -85,7 +85,7 @@ def run(epochs: int = EPOCHS, seed: int = SEED, threads: int | None = None, root
         spliced = work / "spliced"
         with torch.random.fork_rng(devices=[]):  # the head's hidden layers start from the seed too
             torch.manual_seed(seed)
-            splice.save(splice.insert(str(base), at=["input"], warp="affine", head_width=HEAD_WIDTH), spliced)
+            splice.save(splice.insert(str(base), at=["input"], warp=splice.WarpConfig(head_width=HEAD_WIDTH)), spliced)
         times["control"] = _arm(log, "control", model=str(base), recipe="baseline", data="digits-moved",
                                 out=work / "control", epochs=epochs, seed=seed)
         for arm in ("warp-only", "joint"):

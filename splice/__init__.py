@@ -8,7 +8,7 @@ The public surface is small and stable::
     model = splice.insert("torchvision:resnet18", at=["recommended"], warp="affine")
     splice.save(model, "out/resnet18-affine")               # safetensors + splice.json
     again = splice.load("out/resnet18-affine")              # no pickle involved
-    report = splice.verify.verify("out/resnet18-affine")    # the equivalence certificate
+    report = splice.verify("out/resnet18-affine")           # the equivalence certificate
 
 Names are resolved lazily so that ``import splice`` stays cheap (it never
 imports onnx, onnxruntime or matplotlib, and never initialises CUDA).
@@ -18,17 +18,24 @@ from __future__ import annotations
 
 import importlib
 
-__version__ = "0.1.0"
+from .version import __version__
 
-# public name -> defining module (relative to this package)
+# public name -> defining module (relative to this package); the verbs mirror the CLI
 _EXPORTS = {
+    "points": "api",
+    "insert": "api",
+    "save": "api",
+    "load": "api",
+    "verify": "api",
+    "export": "api",
+    "tune": "api",
+    "evaluate": "api",
+    "inspect": "api",
     "SpliceError": "errors",
     "load_source": "sources",
+    "open_source": "store",
     "Source": "sources",
-    "points": "api",
-    "insert": "surgery",
-    "save": "store",
-    "load": "store",
+    "SpliceInfo": "manifest",
     "trace": "graph",
     "Point": "graph",
     "register_leaf": "graph",
@@ -36,15 +43,14 @@ _EXPORTS = {
     "Warp": "warps",
     "Recipe": "recipes",
     "load_recipe": "recipes",
-    "inspect": "inspection",
+    "ModelOptions": "options",
 }
 
-# sub-modules reachable as attributes (``splice.verify.verify(...)``); their main
-# functions are not re-exported under the same name, so ``import splice.verify``
-# and ``splice.verify`` always mean the module
+# sub-modules reachable as attributes (``splice.verification.verify_models(...)``); none shares
+# a name with a verb above, so ``splice.verify`` is always the function
 _SUBMODULES = ("graph", "warps", "surgery", "store", "sources", "manifest", "compare", "verification", "exporting",
-               "data", "distort", "recipes", "training", "inspection", "evaluation", "options", "facts", "demo",
-               "models", "errors", "cli")
+               "data", "distort", "recipes", "training", "inspection", "evaluation", "options", "demo",
+               "models", "errors", "cli", "version")
 
 __all__ = ["__version__", *_EXPORTS]
 

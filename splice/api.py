@@ -1,39 +1,211 @@
-"""Spec-accepting front doors for the library functions.
+"""The front doors: one function per CLI verb, each taking whatever the user has at hand.
 
-These accept whatever a user has at hand — an ``nn.Module``, a spec string
-such as ``"torchvision:resnet18"``, a spliced folder or a
-:class:`~splice.sources.Source` — resolve it once, and call the module that
-does the work.
+A model may be given as a spec string (``"torchvision:resnet18"``,
+``"splice.models:tray_net"``), a folder written by :func:`save` or ``splice
+tune``, an ``nn.Module`` or a :class:`~splice.sources.Source`. Each door
+resolves it once and calls the module that does the work; commands that work
+on folders (verify, export, inspect) save an in-memory model to a temporary
+folder first, so the same checks run on exactly what would be written.
+
+The examples use splice's own small demo network, so they run anywhere in
+seconds and download nothing.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import contextlib
+import os
+import tempfile
+from collections.abc import Iterator, Mapping, Sequence
+from pathlib import Path
+from typing import Any
 
-from .surgery import insert
+__all__ = ["points", "insert", "save", "load", "verify", "export", "tune", "evaluate", "inspect"]
 
-__all__ = ["points", "insert"]
+
+def _source(model, **options):
+    from .store import open_source
+
+    return open_source(model, **options)
+
+
+@contextlib.contextmanager
+def _as_folder(model, trust_pickle: bool = False) -> Iterator[Path]:
+    """``model`` as a splice folder: itself when it is one, else saved to a temporary folder."""
+    from .store import is_splice_folder, save
+
+    if isinstance(model, (str, os.PathLike)) and is_splice_folder(model):
+        yield Path(model)
+        return
+    src = _source(model, trust_pickle=trust_pickle, warn_random=False)
+    with tempfile.TemporaryDirectory(prefix="splice-") as tmp:
+        folder = Path(tmp) / "model"
+        from .manifest import info_of
+
+        save(src.model, folder, source=None if info_of(src.model) is not None else src)
+        yield folder
 
 
 def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] = (), warp: str = "affine",
-           weights=None, kwargs=None):
-    """List where a warp can go in ``model``.
+           weights=None, kwargs=None) -> list:
+    """List where a warp can go in ``model`` (a list of :class:`splice.graph.Point`).
 
-    Returns a list of :class:`splice.graph.Point`. By default only points that
-    sit between conv layers (plus the model input) are listed; ``all=True``
-    lists every 4-D activation.
+    By default only the model input and the points between conv layers are
+    listed; ``all=True`` lists every 4-D activation.
 
     >>> import splice
-    >>> [p.name for p in splice.points("torchvision:resnet18") if p.recommended]  # doctest: +SKIP
-    ['input', 'maxpool']
+    >>> pts = splice.points("splice.models:tray_net")
+    >>> [p.name for p in pts if p.recommended]
+    ['input', 'pool2']
+    >>> pts[0].shape, pts[0].cut
+    ((1, 48, 48), True)
     """
     from . import graph
-    from .sources import load_source
+    from .errors import SourceError
 
-    src = load_source(model, input_shape=input_shape, weights=weights, kwargs=kwargs, leaves=leaves)
-    shape = src.input_shape  # load_source already parsed input_shape, or took the model's own
-    if shape is None:
-        from .errors import SourceError
-
+    src = _source(model, input_shape=input_shape, weights=weights, kwargs=kwargs, leaves=leaves, warn_random=False)
+    if src.input_shape is None:
         raise SourceError("points() needs the model's input shape; pass input_shape=(C, H, W)")
-    return graph.points(src.model, shape, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp)
+    return graph.points(src.model, src.input_shape, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp)
+
+
+def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affine", *, input_shape=None,
+           leaves: Sequence[str] = (), check: bool = True, force: bool = False, tol: float = 1e-5):
+    """A copy of ``model`` with identity-initialised warps at ``at`` (your model is not changed).
+
+    ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` or a mapping
+    from point name to either. The result is a ``torch.fx.GraphModule`` that
+    carries its :class:`~splice.manifest.SpliceInfo`.
+
+    >>> import splice, torch
+    >>> spliced = splice.insert("splice.models:tray_net", at="input", warp=splice.WarpConfig(head_width=8))
+    >>> list(spliced.splice_warps)
+    ['input']
+    >>> base = splice.load_source("splice.models:tray_net").model
+    >>> x = torch.randn(2, 1, 48, 48)
+    >>> spliced.load_state_dict(base.state_dict(), strict=False).unexpected_keys
+    []
+    >>> bool(torch.equal(base.eval()(x), spliced.eval()(x)))
+    True
+    """
+    from .surgery import insert as insert_warps
+
+    src = _source(model, input_shape=input_shape, leaves=leaves, warn_random=False)
+    return insert_warps(src, at=at, warp=warp, leaves=leaves, check=check, force=force, tol=tol)
+
+
+def save(model, folder: str | os.PathLike, *, overwrite: bool = False, source=None, tuning: Mapping | None = None,
+         class_names=None, normalisation=None) -> Path:
+    """Write ``model`` as a splice folder (``weights.safetensors`` + ``splice.json``), atomically.
+
+    >>> import splice, tempfile
+    >>> spliced = splice.insert("splice.models:tray_net", at="input")
+    >>> folder = splice.save(spliced, tempfile.mkdtemp() + "/tray-affine")
+    >>> sorted(p.name for p in folder.iterdir())
+    ['splice.json', 'weights.safetensors']
+    """
+    from .store import save as save_folder
+
+    return save_folder(model, folder, overwrite=overwrite, source=source, tuning=tuning, class_names=class_names,
+                       normalisation=normalisation)
+
+
+def load(folder: str | os.PathLike, *, trust_pickle: bool = False):
+    """Rebuild a saved model (base from its recorded spec, warps re-applied, weights checked by hash).
+
+    >>> import splice, tempfile
+    >>> folder = splice.save(splice.insert("splice.models:tray_net", at="input"), tempfile.mkdtemp() + "/t")
+    >>> model = splice.load(folder)
+    >>> [p.name for p in model.splice_info.points], model.training
+    (['input'], False)
+    """
+    from .store import load as load_folder
+
+    return load_folder(folder, trust_pickle=trust_pickle)
+
+
+def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False, opset: int = 17,
+           seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript"):
+    """Certify a spliced model against its base: a :class:`~splice.verification.VerifyReport`.
+
+    ``model`` is a folder, or a spliced model in memory (saved to a temporary
+    folder and checked as written).
+
+    >>> import splice
+    >>> report = splice.verify(splice.insert("splice.models:tray_net", at="input"))
+    >>> report.passed, report.failed
+    (True, [])
+    """
+    from .verification import verify as verify_folder
+
+    with _as_folder(model, trust_pickle) as folder:
+        return verify_folder(folder, images=images, batch=batch, dtype=dtype, onnx=onnx, opset=opset, seed=seed,
+                             trust_pickle=trust_pickle, exporter=exporter)
+
+
+def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None, *,
+           opset: int = 17, dynamic_batch: bool = False, trust_pickle: bool = False,
+           exporter: str = "torchscript") -> dict:
+    """Export to ONNX and/or torch.export; a copy is kept only after its parity check passed.
+
+    >>> import splice, tempfile
+    >>> out = tempfile.mkdtemp() + "/tray.onnx"
+    >>> result = splice.export(splice.insert("splice.models:tray_net", at="input"), onnx=out)
+    >>> [item["format"] for item in result["exports"]]
+    ['onnx']
+    """
+    from .exporting import export as export_folder
+
+    with _as_folder(model, trust_pickle) as folder:
+        return export_folder(folder, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch,
+                             trust_pickle=trust_pickle, exporter=exporter)
+
+
+def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides=None, model_options=None,
+         run_options=None) -> dict:
+    """Fine-tune with a recipe and write a run folder (see :func:`splice.training.tune`).
+
+    >>> import splice, tempfile
+    >>> from splice.training import RecipeOverrides, RunOptions
+    >>> run = tempfile.mkdtemp() + "/run"
+    >>> summary = splice.tune("splice.models:tray_net", recipe="baseline", data="digits", out=run,
+    ...                       overrides=RecipeOverrides(epochs=1), run_options=RunOptions(progress=False))
+    >>> 0.0 <= summary["best_accuracy"] <= 1.0
+    True
+    """
+    from .training import tune as tune_run
+
+    return tune_run(model, recipe=recipe, data=data, out=out, resume=resume, overrides=overrides,
+                    model_options=model_options, run_options=run_options)
+
+
+def evaluate(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,
+             model_options=None, options=None) -> dict:
+    """Accuracy and loss on a split, clean and under distortion sweeps, optionally beside a second model.
+
+    >>> import splice
+    >>> result = splice.evaluate("splice.models:tray_net", data="digits", distort="rotate=0,30")
+    >>> sorted(result["sweeps"]), result["n_images"]
+    (['rotate'], 360)
+    """
+    from .evaluation import evaluate as evaluate_model
+
+    return evaluate_model(model, data=data, split=split, against=against, distort=distort, plot=plot,
+                          model_options=model_options, options=options)
+
+
+def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pickle: bool = False,
+            pictures: bool = True) -> dict:
+    """What the warps learned: per-image polar decomposition, a summary, and pictures, written to ``out``.
+
+    >>> import splice, tempfile
+    >>> result = splice.inspect(splice.insert("splice.models:tray_net", at="input"), data="digits", n=8,
+    ...                         out=tempfile.mkdtemp(), pictures=False)
+    >>> result["warps"]["input"]["quantities"]["angle_deg"]["mean"]   # a fresh splice is the identity
+    0.0
+    """
+    from .inspection import inspect as inspect_folder
+
+    with _as_folder(model, trust_pickle) as folder:
+        return inspect_folder(folder, data=data, n=n, split=split, out=out, trust_pickle=trust_pickle,
+                              pictures=pictures)

@@ -71,9 +71,9 @@ def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, option
 
 
 def _source(args):
-    from .sources import load_source
+    from .store import open_source
 
-    return load_source(
+    return open_source(
         args.model,
         weights=args.weights,
         kwargs=args.kwargs,
@@ -121,19 +121,22 @@ def _cmd_points(args) -> int:
 
 
 def _cmd_insert(args) -> int:
+    from .manifest import info_of
     from .store import save
     from .surgery import insert
+    from .warps import WarpConfig
 
+    given = {"loc_from": args.loc_from, "sampler": args.sampler, "padding": args.padding,
+             "head_width": args.head_width, "tps_k": args.tps_k}
+    warp = WarpConfig.from_dict({"family": args.warp, **{k: v for k, v in given.items() if v is not None}})
     src = _source(args)
-    spliced = insert(
-        src, at=args.at, warp=args.warp, loc_from=args.loc_from, sampler=args.sampler, padding=args.padding,
-        head_width=args.head_width, tps_k=args.tps_k, leaves=_leaves(args, src), force=args.force,
-    )
+    spliced = insert(src, at=args.at, warp=warp, leaves=_leaves(args, src), force=args.force)
     folder = save(spliced, args.out, overwrite=args.overwrite)
-    check = spliced.splice_info.get("check", {})
+    info = info_of(spliced)
+    check = info.check or {}
     out = _console()
-    for p in spliced.splice_info["points"]:
-        out.print(f"spliced {p['warp']['family']} warp at {p['name']} ({'x'.join(map(str, p['shape']))})")
+    for p in info.points:
+        out.print(f"spliced {p.warp.family} warp at {p.name} ({'x'.join(map(str, p.shape))})")
     if check:
         out.print(f"identity check: {'passed' if check['passed'] else 'FAILED (kept with --force)'} — {check['detail']}")
     out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}")
@@ -332,7 +335,7 @@ def _parser_demo(sub) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import __version__
+    from .version import __version__
 
     parser = _Parser(
         prog="splice",

@@ -191,10 +191,10 @@ def _base(run: _Demo) -> tuple[Path, dict]:
 def _points(run: _Demo, base: Path):
     """3: list where a warp can go; returns the source, the points and the recommended one."""
     from . import graph
-    from .sources import load_source
+    from .store import open_source
 
     run.log.step(3, "insertion points")
-    src = load_source(str(base))
+    src = open_source(str(base))
     pts = graph.points(src.model, src.input_shape)
     for p in pts:
         run.log.say(f"  {p.name:<14} {'x'.join(map(str, p.shape)):>10}  stride {p.stride!s:<3} "
@@ -207,18 +207,19 @@ def _splice_and_verify(run: _Demo, src, at: str):
     """4-5: splice at the recommended point, save, verify with ONNX parity; returns the verify report."""
     import torch
 
-    from .facts import splice_facts
+    from .manifest import info_of
     from .store import save
     from .surgery import insert
-    from .verify import verify, write_report
+    from .warps import WarpConfig
+    from .verification import verify, write_report
 
     plan, out = run.plan, run.out
     run.log.step(4, f"splice an {plan.warp} warp at '{at}'")
     with torch.random.fork_rng(devices=[]):  # the head's hidden layers start from the plan's seed
         torch.manual_seed(plan.seed)
-        spliced = insert(src, at=at, warp=plan.warp, head_width=plan.head_width)
+        spliced = insert(src, at=at, warp=WarpConfig(family=plan.warp, head_width=plan.head_width))
     save(spliced, out / "spliced")
-    run.log.say(f"identity check before saving: {splice_facts(spliced).check_detail}")
+    run.log.say(f"identity check before saving: {(info_of(spliced).check or {}).get('detail')}")
     run.log.step(5, "verify the splice (shapes, outputs, weights, gradients, ONNX)")
     t = time.perf_counter()
     report = verify(out / "spliced", onnx=True)

@@ -36,6 +36,7 @@ Layer: beside :mod:`splice.surgery`, which imports it; it imports only
 
 from __future__ import annotations
 
+import copy
 import dataclasses
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -54,6 +55,7 @@ __all__ = [
     "validate_manifest",
     "info_of",
     "attach_info",
+    "copy_model",
 ]
 
 SCHEMA_VERSION = 1
@@ -209,10 +211,6 @@ class PointRecord:
                    tuple(shape) if shape else None, data.get("cut"))
 
 
-_LEGACY_KEYS = ("spec", "kwargs", "input_shape", "normalisation", "class_names", "leaves", "source_weights_sha256",
-                "source_weights_path", "random_init", "points", "tuning", "folder", "check")
-
-
 @dataclass(frozen=True)
 class SpliceInfo:
     """What a splice is: its source, input, points and warps, and its tuning history.
@@ -323,20 +321,6 @@ class SpliceInfo:
             return None
         return shapes
 
-    # Key access for callers written against the dict this record replaced (cli, demo,
-    # inspection, benchmarks); points come back as their splice.json dicts. Temporary:
-    # remove once those callers read attributes.
-    def __getitem__(self, key: str) -> Any:
-        if key not in _LEGACY_KEYS:
-            raise KeyError(key)
-        return [p.to_json() for p in self.points] if key == "points" else getattr(self, key)
-
-    def get(self, key: str, default: Any = None) -> Any:
-        try:
-            return self[key]
-        except KeyError:
-            return default
-
 
 # ----------------------------------------------------------------------------- on a model
 
@@ -362,3 +346,12 @@ def attach_info(model, info: SpliceInfo) -> None:
     model.splice_info = info
     if isinstance(getattr(model, "meta", None), dict):
         model.meta["splice_info"] = info
+
+
+def copy_model(model):
+    """A deep copy of ``model`` that keeps its record (so the caller's module is never trained in place)."""
+    twin = copy.deepcopy(model)
+    info = info_of(model)
+    if info is not None:
+        attach_info(twin, info)
+    return twin

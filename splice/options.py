@@ -1,6 +1,6 @@
 """Options that travel together: how to build a model from its source, and the keyword path.
 
-:class:`ModelOptions` holds the options of :func:`splice.sources.load_source`
+:class:`ModelOptions` holds the options of :func:`splice.store.open_source`
 beyond the spec itself; ``tune`` and ``evaluate`` take one instead of six
 loose parameters. :func:`split_keywords` spreads flat keyword arguments (what
 the command line produces) over such dataclasses by field name, so each
@@ -20,7 +20,7 @@ __all__ = ["ModelOptions", "split_keywords"]
 
 @dataclass(frozen=True)
 class ModelOptions:
-    """How to build a model from a spec: the options of :func:`splice.sources.load_source`.
+    """How to build a model from a spec: the options of :func:`splice.store.open_source`.
 
     ``weights`` is a checkpoint file for the architecture, ``kwargs`` the
     builder's keyword arguments (a mapping or a JSON string), ``input_shape``
@@ -51,11 +51,11 @@ class ModelOptions:
                 raise ValueError(f"ModelOptions.{name} must be True or False; got {getattr(self, name)!r}")
 
     def load(self, model: Any, **extra: Any):
-        """:func:`splice.sources.load_source` of ``model`` with these options (``extra`` passed on)."""
-        from .sources import load_source
+        """:func:`splice.store.open_source` of ``model`` with these options (``extra`` passed on)."""
+        from .store import open_source
 
         spec = os.fspath(model) if isinstance(model, os.PathLike) else model
-        return load_source(spec, weights=self.weights, kwargs=self.kwargs, input_shape=self.input_shape,
+        return open_source(spec, weights=self.weights, kwargs=self.kwargs, input_shape=self.input_shape,
                            allow_partial=self.allow_partial, trust_pickle=self.trust_pickle, leaves=self.leaves,
                            **extra)
 

@@ -37,6 +37,7 @@ from .manifest import (
     info_of,
     validate_manifest,
 )
+from .version import library_versions
 from .sources import Source, build_model, check_finite, load_source, parse_input_shape, read_safetensors, with_metadata
 from .surgery import WARP_PREFIX, SplicePlan, apply_plan
 
@@ -59,11 +60,7 @@ __all__ = [
 
 
 def _versions() -> dict[str, str]:
-    import torchvision
-
-    from . import __version__
-
-    return {"splice": __version__, "torch": torch.__version__, "torchvision": torchvision.__version__}
+    return {**library_versions("torchvision"), "torch": torch.__version__}
 
 
 def is_splice_folder(path: str | os.PathLike) -> bool:

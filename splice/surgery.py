@@ -197,19 +197,16 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
     return gm
 
 
-def _warp_config(warp, name: str, overrides: Mapping[str, Any]):
-    """The :class:`~splice.warps.WarpConfig` for point ``name``: ``warp`` (or its entry) with ``overrides`` set."""
+def _warp_config(warp, name: str):
+    """The :class:`~splice.warps.WarpConfig` for point ``name``: ``warp``, or its entry for ``name``."""
     from .warps import WarpConfig
 
     choice = warp.get(name, "affine") if isinstance(warp, Mapping) else warp
     if isinstance(choice, WarpConfig):
-        cfg = choice.to_dict()
-    elif isinstance(choice, str):
-        cfg = {"family": choice}
-    else:
-        raise TypeError(f"warp must be a family name or WarpConfig, got {type(choice).__name__}")
-    cfg.update({key: value for key, value in overrides.items() if value is not None})
-    return WarpConfig.from_dict(cfg)
+        return choice
+    if isinstance(choice, str):
+        return WarpConfig.from_dict({"family": choice})
+    raise TypeError(f"warp must be a family name or WarpConfig, got {type(choice).__name__}")
 
 
 def _warn_not_cut(point) -> None:
@@ -230,11 +227,6 @@ def insert(
     warp: str | Any | Mapping[str, Any] = "affine",
     *,
     input_shape=None,
-    loc_from: str | None = None,
-    sampler: str | None = None,
-    padding: str | None = None,
-    head_width: int | None = None,
-    tps_k: int | None = None,
     leaves: Sequence[str] = (),
     check: bool = True,
     force: bool = False,
@@ -245,8 +237,9 @@ def insert(
     ``model`` is an ``nn.Module``, a spec string (``"torchvision:resnet18"``,
     ``"pkg.mod:factory"``, a spliced folder) or a :class:`~splice.sources.Source`.
     ``at`` lists point names from :func:`splice.points`, or ``"recommended"``.
-    ``warp`` is a family name, a :class:`~splice.warps.WarpConfig`, or a mapping
-    from point name to either. The caller's model is never modified. The
+    ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` (for the
+    sampler, padding, head width, ``loc_from`` …), or a mapping from point
+    name to either. The caller's model is never modified. The
     result carries its :class:`~splice.manifest.SpliceInfo` (``splice_info``).
 
     >>> import splice
@@ -271,9 +264,7 @@ def insert(
     traced = graph.trace(base, leaves=leaves)
     names = _resolve_points([at] if isinstance(at, str) else list(at), work_listing, traced)
     by_name = {p.name: p for p in work_listing}
-    overrides = {"loc_from": loc_from, "sampler": sampler, "padding": padding, "head_width": head_width,
-                 "tps_k": tps_k}
-    plan = [SplicePlan(name, _warp_config(warp, name, overrides)) for name in names]
+    plan = [SplicePlan(name, _warp_config(warp, name)) for name in names]
     for item in plan:
         _warn_not_cut(by_name[item.point])
     gm = apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)

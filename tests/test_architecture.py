@@ -18,13 +18,13 @@ MAX_FUNCTION_LINES = 80
 
 # DEVELOPERS.md "Layers": the first dotted part under splice -> floor
 FLOORS = {
-    "errors": 1, "_io": 1, "compare": 1, "progress": 1, "pictures": 1,
+    "errors": 1, "_io": 1, "version": 1, "compare": 1, "progress": 1, "pictures": 1,
     "warps": 2, "distort": 2, "data": 2, "recipes": 2, "models": 2,
     "sources": 3, "graph": 3,
-    "surgery": 4,
-    "manifest": 5, "store": 5,
+    "manifest": 4, "surgery": 4,
+    "store": 5,
     "verification": 6, "exporting": 6,
-    "training": 7, "evaluation": 7, "inspection": 7, "adapt": 7,
+    "training": 7, "options": 7, "evaluation": 7, "inspection": 7, "adapt": 7,
     "api": 8, "cli": 8, "demo": 8, "__main__": 8, "__init__": 8,
 }
 
@@ -167,7 +167,7 @@ def test_every_module_has_a_floor():
 
 @pytest.mark.parametrize("path", sorted(MODULES.values()), ids=lambda p: str(p.relative_to(ROOT.parent)))
 def test_file_size(path):
-    lines = sum(1 for _ in path.open(encoding="utf-8"))
+    lines = len(path.read_text(encoding="utf-8").splitlines())
     assert lines <= MAX_FILE_LINES, f"{path.name} has {lines} lines (limit {MAX_FILE_LINES}); split it by concern"
 
 

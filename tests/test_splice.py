@@ -16,7 +16,7 @@ from torch import nn
 import splice
 from splice.errors import IntegrityError, PointError, SpliceError, SpliceWarning
 from splice.surgery import insert, warps_of
-from splice.warps import FAMILIES
+from splice.warps import FAMILIES, WarpConfig
 
 from harness import check_splice, perturb_warps_
 
@@ -74,7 +74,7 @@ class _TwoHeads(nn.Module):
 
 
 def test_dict_output_model_and_loc_from_input():
-    check_splice(_TwoHeads(), (3, 20, 24), at="stem_1", warp="similarity", loc_from="input")
+    check_splice(_TwoHeads(), (3, 20, 24), at="stem_1", warp=WarpConfig(family="similarity", loc_from="input"))
 
 
 def test_round_trip_is_bit_identical_and_tamper_is_refused(tmp_path):
@@ -129,7 +129,7 @@ def test_point_errors():
     with pytest.raises(PointError, match="not a 4-D .* activation"):
         insert(model, at="flatten", input_shape=SHAPE)
     with pytest.raises(PointError, match="comes after point"):
-        insert(model, at="maxpool", loc_from="layer2_0_relu", input_shape=SHAPE)
+        insert(model, at="maxpool", warp=WarpConfig(loc_from="layer2_0_relu"), input_shape=SHAPE)
 
 
 def test_non_cut_point_warns_but_splices():

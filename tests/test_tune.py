@@ -60,7 +60,7 @@ def base_run(tmp_path_factory):
 @pytest.fixture(scope="module")
 def spliced(base_run, tmp_path_factory):
     out = tmp_path_factory.mktemp("spliced") / "affine"
-    model = splice.insert(str(base_run[0] / "best"), at=["input"], warp="affine", head_width=4)
+    model = splice.insert(str(base_run[0] / "best"), at=["input"], warp=splice.WarpConfig(head_width=4))
     splice.save(model, out)
     return out
 

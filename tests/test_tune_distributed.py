@@ -33,7 +33,7 @@ def test_two_process_tune_ends_with_identical_weights_and_one_run_folder(tmp_pat
 
     src = load_source("splice.models:tray_net", kwargs={"width": 4}, input_shape=(1, 24, 24), warn_random=False)
     spliced = tmp_path / "spliced"
-    splice.save(splice.insert(src, at=["input"], warp="affine", head_width=4), spliced)
+    splice.save(splice.insert(src, at=["input"], warp=splice.WarpConfig(head_width=4)), spliced)
     recipe = tmp_path / "tiny.toml"
     recipe.write_text(RECIPE, encoding="utf-8")
     run = tmp_path / "run"

@@ -48,7 +48,7 @@ def setup(tmp_path_factory):
 
     src = load_source(SPEC, kwargs={"width": 4}, input_shape=(1, 24, 24), warn_random=False)
     spliced = root / "spliced"
-    splice.save(splice.insert(src, at=["input"], warp="affine", head_width=4), spliced)
+    splice.save(splice.insert(src, at=["input"], warp=splice.WarpConfig(head_width=4)), spliced)
     recipe = root / "tiny-joint.toml"
     recipe.write_text(RECIPE, encoding="utf-8")
     env = dict(os.environ, OMP_NUM_THREADS="1", MKL_NUM_THREADS="1", PYTHONWARNINGS="ignore")

@@ -31,7 +31,7 @@ from splice.verification import (
     verify_models,
     write_report,
 )
-from splice.warps import Warp
+from splice.warps import Warp, WarpConfig
 
 ALL_CHECKS = ["integrity", "finite", "shapes", "outputs", "warps", "provenance", "gradients", "buffers"]
 TRAY = "splice.models:tray_net"
@@ -437,7 +437,7 @@ def test_buffer_changed_in_eval_mode_is_caught_and_restored(model_file):
 
 
 def test_nearest_sampler_fails_gradients(tray_source, tmp_path):
-    spliced = insert(tray_source, at="pool2", sampler="nearest")
+    spliced = insert(tray_source, at="pool2", warp=WarpConfig(sampler="nearest"))
     report = verify(store.save(spliced, tmp_path / "nearest"))
     assert report.failed == ["gradients"]
     assert "'nearest' sampler passes no gradient" in report["gradients"].detail

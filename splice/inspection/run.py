@@ -115,7 +115,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
 
 def _load(folder, trust_pickle: bool):
     """The spliced model of ``folder``, its warps and its record's facts."""
-    from ..facts import splice_facts
+    from ..manifest import info_of
     from ..store import load
     from ..surgery import warps_of
 
@@ -126,7 +126,7 @@ def _load(folder, trust_pickle: bool):
             f"'{folder}' holds no warps, so there is nothing to inspect; give a folder written by "
             "'splice insert' or 'splice tune' with a warp recipe."
         )
-    return model, warps, splice_facts(model)
+    return model, warps, info_of(model)
 
 
 def _sample(facts, data: str, split: str, n: int) -> _Sample:

@@ -81,10 +81,9 @@ def load_source(
     path = Path(spec)
     if ":" not in spec or path.is_dir():
         if path.is_dir():
-            # INTEGRATION: this folder branch (an upward import of splice.store) moves to the store's opener.
-            from ..store import load_folder_source
-
-            return load_folder_source(path, input_shape=shape, trust_pickle=trust_pickle)
+            # folders written by splice are opened one floor up, by splice.store.open_source
+            raise SourceError(f"'{spec}' is a folder, which load_source does not open; pass it to a splice command "
+                              "or open it with splice.store.open_source")
         if _looks_like_pickled_module(spec):
             return _load_pickled_module(path, shape, trust_pickle=trust_pickle)
         if not path.exists() and ("/" in spec or spec.endswith(_WEIGHT_SUFFIXES)):

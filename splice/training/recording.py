@@ -9,7 +9,7 @@ from typing import Any
 import torch
 
 from .._io import atomic_write_text, state_dict_sha256
-from ..facts import splice_facts
+from ..manifest import info_of
 from . import distributed
 from .checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
 from .loop import evaluate
@@ -55,7 +55,7 @@ def _save_folder(run: Run, which: str, epoch: int, accuracy: float) -> None:
     model = unwrap(run.net_wrapped)
     kwargs = {"overwrite": True, "tuning": _tuning(run, which, epoch, accuracy),
               "class_names": run.classes, "normalisation": run.norm}
-    if splice_facts(model) is None:
+    if info_of(model) is None:
         kwargs["source"] = run.src
     with writing(run.run_dir / which):
         save(model, run.run_dir / which, **kwargs)

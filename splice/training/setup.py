@@ -14,7 +14,7 @@ from torch import nn
 
 from .._io import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError
-from ..facts import copy_model, splice_facts
+from ..manifest import copy_model, info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
 from ..surgery import WARP_PREFIX, warps_of
@@ -106,7 +106,7 @@ def load_model(req: Request, where: str):
             f"{where} ({rec.mode}) trains plain models, but {describe(model)} holds warps at "
             f"{', '.join(warps)}; use 'joint', 'warp-only' or 'staged', or tune the model before splicing"
         )
-    if not warps and splice_facts(net) is None and getattr(src, "spec", "<module>") == "<module>":
+    if not warps and info_of(net) is None and getattr(src, "spec", "<module>") == "<module>":
         raise SpliceError(
             "tune cannot save a plain nn.Module without knowing how to rebuild it; pass a spec string "
             "(e.g. 'splice.models:tray_net') or a Source from splice.load_source"

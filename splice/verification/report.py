@@ -59,21 +59,16 @@ class VerifyReport:
         return {"format": _CERTIFICATE, "schema_version": _CERTIFICATE_VERSION, "passed": self.passed,
                 **json_safe(self.meta), "checks": [c.to_json() for c in self.checks]}
 
+
 def versions() -> dict[str, str | None]:
     """Versions of splice and the libraries a certificate depends on (``None`` if not installed)."""
     import platform
-    from importlib import metadata
 
-    from .. import __version__
+    from ..version import library_versions
 
-    out: dict[str, str | None] = {"splice": __version__, "python": platform.python_version(),
-                                  "torch": torch.__version__}
-    for name in ("torchvision", "onnx", "onnxruntime", "numpy", "safetensors"):
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = None
-    return out
+    return {**library_versions("torchvision", "onnx", "onnxruntime", "numpy", "safetensors"),
+            "python": platform.python_version(), "torch": torch.__version__}
+
 
 def render_verify(report: VerifyReport, console) -> None:
     """Print the certificate as a rich table (check, numbers, PASS/FAIL), then the failures' details."""
