@@ -47,7 +47,8 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):  #
 
     text = " ".join(str(message).split())
     try:
-        _console(stderr=True).print(f"[bold yellow]warning:[/] {escape(text)}", markup=True, highlight=False)
+        _console(stderr=True).print(f"[bold yellow]warning:[/] {escape(text)}", markup=True, highlight=False,
+                                    soft_wrap=True)
     except Exception:  # pragma: no cover - never let a warning crash the command
         print(f"warning: {text}", file=sys.stderr)
 

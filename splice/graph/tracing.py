@@ -22,13 +22,13 @@ from typing import Any
 import torch.fx as fx
 from torch import nn
 
-from ..errors import GraphError, first_line
+from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import _class_path, _LeafRule
 
 __all__ = ["GraphWarning", "TraceModeWarning", "trace"]
 
 
-class GraphWarning(UserWarning):
+class GraphWarning(SpliceWarning):
     """Something about the traced graph the user should know."""
 
 

@@ -1,0 +1,90 @@
+"""What the command line tells its user: every splice warning, and the nearest names for a typo."""
+
+from __future__ import annotations
+
+import textwrap
+
+import pytest
+
+import splice
+from splice import errors
+from splice.cli import main
+from splice.errors import PointError, SpliceWarning
+
+_UNTRACEABLE = textwrap.dedent('''
+    import torch
+    from torch import nn
+
+    class Branchy(nn.Module):
+        """Python control flow in forward: torch.fx cannot trace it."""
+
+        def __init__(self):
+            super().__init__()
+            self.conv1 = nn.Conv2d(1, 4, 3, padding=1)
+            self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+            self.head = nn.Linear(4, 3)
+
+        def forward(self, x):
+            x = torch.relu(self.conv1(x))
+            if x.shape[-1] > 4:  # control flow on a shape: fx cannot trace it
+                x = x * 1.0
+            x = torch.relu(self.conv2(x))
+            return self.head(x.mean(dim=(2, 3)))
+
+    def build():
+        return Branchy()
+''')
+
+
+def _warning_classes():
+    import splice.graph  # noqa: F401  (loads every module that defines a warning)
+    import splice.graph.fallback  # noqa: F401
+    import splice.graph.tracing  # noqa: F401
+
+    seen, todo = set(), [Warning]
+    while todo:
+        cls = todo.pop()
+        for sub in cls.__subclasses__():
+            if sub not in seen:
+                seen.add(sub)
+                todo.append(sub)
+    return sorted((c for c in seen if c.__module__.startswith("splice")), key=lambda c: c.__name__)
+
+
+def test_every_warning_class_splice_defines_is_a_splice_warning():
+    classes = _warning_classes()
+    assert {c.__name__ for c in classes} >= {"GraphWarning", "TraceFallbackWarning", "RandomWeightsWarning"}
+    assert all(issubclass(c, SpliceWarning) for c in classes), [c for c in classes if not issubclass(c, SpliceWarning)]
+
+
+def test_points_tells_the_user_that_tracing_fell_back(tmp_path, capsys):
+    factory = tmp_path / "branchy.py"
+    factory.write_text(_UNTRACEABLE)
+    rc = main(["points", f"{factory}:build", "--input-shape", "1x8x8"])
+    err = capsys.readouterr().err
+    assert rc == 0
+    lines = [line for line in err.splitlines() if line.strip()]
+    fallback = [line for line in lines if "warning:" in line and "fx" in line]
+    assert len(fallback) == 1, err  # one line, not a traceback or a wrapped paragraph
+    assert all(line.startswith("warning:") for line in lines), err
+
+
+def test_unknown_point_suggests_the_nearest_names_in_graph_order():
+    # difflib alone ranks 'layer4_1_relu' first for 'layer1_relu' (alphabetical tie-break)
+    with pytest.raises(PointError) as caught:
+        splice.insert("torchvision:resnet18", at="layer1_relu", input_shape=(3, 64, 64))
+    message = str(caught.value)
+    assert "did you mean 'layer1_0_relu'" in message
+    assert message.index("layer1_0_relu") < message.index("layer4_1_relu") if "layer4_1_relu" in message else True
+
+
+def test_first_line_of_an_empty_exception_is_its_class_name():
+    assert errors.first_line(RuntimeError("")) == "RuntimeError"
+    assert errors.first_line(RuntimeError("\n\n  second\nthird")) == "second"
+
+
+def test_argparse_errors_are_one_line(capsys):
+    with pytest.raises(SystemExit) as stop:
+        main(["insert", "torchvision:resnet18"])
+    err = capsys.readouterr().err
+    assert stop.value.code == 2 and len(err.strip().splitlines()) == 1 and "--help" in err
