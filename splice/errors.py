@@ -17,6 +17,7 @@ __all__ = [
     "SourceError",
     "WeightsError",
     "UnsafeCheckpointError",
+    "UntrustedCodeError",
     "GraphError",
     "PointError",
     "ManifestError",
@@ -38,6 +39,10 @@ class SpliceError(Exception):
 
 class SourceError(SpliceError):
     """The model spec cannot be resolved to an architecture."""
+
+
+class UntrustedCodeError(SourceError):
+    """A model spec read from a file would run code no registry vouches for, and the user did not opt in."""
 
 
 class WeightsError(SpliceError):
