@@ -25,6 +25,7 @@ __all__ = [
     "RecipeError",
     "DataError",
     "CheckFailed",
+    "ResourceError",
     "SpliceWarning",
     "RandomWeightsWarning",
     "suggest",
@@ -75,6 +76,10 @@ class RecipeError(SpliceError):
 
 class DataError(SpliceError):
     """A dataset name, folder or image cannot be used."""
+
+
+class ResourceError(SpliceError):
+    """The work asked for would not fit in this machine's memory; refused before allocating."""
 
 
 class CheckFailed(SpliceError):

@@ -19,6 +19,7 @@ from ..compare import compare_outputs, detached, first_rows, flatten_outputs
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
+from ..sources.memory import check_fits, tensor_bytes
 from ..store import base_part, open_folder
 from ..surgery import warps_of
 from .gradients import _gradients, _gradients_row, _head_params, _onnx_row
@@ -161,6 +162,15 @@ def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tu
     return result
 
 
+def _check_probe_fits(info: SpliceInfo, opts: _Options) -> None:
+    """Refuse a probe batch that cannot fit, before allocating it: the input and every warped activation, kept
+    for the gradient check, about three times over (both models, and the backward pass; a rule of thumb,
+    common practice, no source)."""
+    shapes = [info.input_shape, *(p.shape for p in info.points if p.shape)]
+    check_fits(3 * tensor_bytes(shapes, opts.dtype, opts.batch), f"a probe batch of {opts.batch}",
+               "pass a smaller --batch")
+
+
 def _in_dtype(base, spliced, dtype: torch.dtype, owned: bool):
     current = next(iter(spliced.parameters()), None)
     if current is not None and current.dtype != dtype:
@@ -268,6 +278,7 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     # the tensors stay backed by the mapped file: both models live only as long as this call
     opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False, trust_code=trust_code)
     info = opened.info
+    _check_probe_fits(info, opts)
     files = images_t = None
     if images is not None:
         images_t, files = _read_images(images, info.input_shape, info.normalisation)
