@@ -80,6 +80,12 @@ def _add_trust_code(p: argparse.ArgumentParser) -> None:
     p.add_argument("--trust-code", action="store_true", help=_TRUST_CODE_HELP)
 
 
+def _add_pixel_cap(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--max-image-pixels", type=int, metavar="N",
+                   help="refuse images over N pixels before decoding them (default 89478485, Pillow's "
+                        "decompression-bomb threshold; also SPLICE_MAX_IMAGE_PIXELS)")
+
+
 def _source(args):
     from .store import open_source
 
@@ -275,6 +281,7 @@ def _parser_verify(sub) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of the probe batch (default 0)")
     p.add_argument("--json", action="store_true", help="print the certificate as JSON")
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
+    _add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
     _add_trust_code(p)
     p.set_defaults(func=_cmd_verify)
@@ -312,6 +319,7 @@ def _parser_tune(sub) -> None:
     p.add_argument("--device", help="cuda, mps or cpu (default: the best available)")
     p.add_argument("--workers", type=int, default=0, help="data-loading worker processes (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    _add_pixel_cap(p)
     p.set_defaults(func=_cmd_tune)
 
 
@@ -322,6 +330,7 @@ def _parser_inspect(sub) -> None:
     p.add_argument("--n", type=int, default=64, help="number of images (default 64)")
     p.add_argument("--split", default="test")
     p.add_argument("--out", required=True, metavar="REPORT_DIR")
+    _add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
     _add_trust_code(p)
     p.set_defaults(func=_cmd_inspect)
@@ -339,6 +348,7 @@ def _parser_eval(sub) -> None:
     p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
     p.add_argument("--device", help="cuda, mps or cpu")
     p.add_argument("--json", action="store_true")
+    _add_pixel_cap(p)
     p.set_defaults(func=_cmd_eval)
 
 
@@ -387,7 +397,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         warnings.filterwarnings("default", module=r"splice(\.|$)")
         warnings.filterwarnings("default", category=SpliceWarning)
     try:
-        return int(args.func(args) or 0)
+        from .limits import image_pixel_cap
+
+        with image_pixel_cap(getattr(args, "max_image_pixels", None)):
+            return int(args.func(args) or 0)
     except CheckFailed as exc:
         if args.debug:
             raise

@@ -38,16 +38,8 @@ from .manifest import (
     validate_manifest,
 )
 from .version import library_versions
-from .sources import (
-    Source,
-    build_model,
-    check_finite,
-    check_spec,
-    load_source,
-    parse_input_shape,
-    read_safetensors,
-    with_metadata,
-)
+from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, load_source, parse_input_shape,
+                      read_safetensors, with_metadata)
 from .surgery import WARP_PREFIX, SplicePlan, apply_plan
 
 __all__ = [
@@ -91,6 +83,9 @@ def read_manifest(folder: str | os.PathLike) -> dict:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise ManifestError(f"'{path}' is not valid JSON ({exc}); the file is damaged — re-create the folder") from None
+    except RecursionError:
+        raise ManifestError(f"'{path}' nests its JSON too deeply to read; the file is damaged — re-create the "
+                            "folder") from None
     return validate_manifest(data, str(path))
 
 
@@ -248,6 +243,7 @@ def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
         model = _rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code)
+        check_dtypes(model.state_dict(), base_state, "the folder's weights")
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
@@ -291,6 +287,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
             f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
             "the folder was written by an incompatible version or edited by hand"
         )
+    check_dtypes(own, state, f"'{folder}'")
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
@@ -425,6 +422,8 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
             )
         return opened
     state = read_safetensors(path)
+    if empty is not None:
+        check_dtypes(empty.state_dict(), base_part(state), f"'{path}'")
     opened.state = state if keep_mapped else {k: v.clone() for k, v in state.items()}
     return opened
 

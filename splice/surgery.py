@@ -201,7 +201,7 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
 def _check_plan(plan: Sequence[SplicePlan], nodes: Mapping[str, fx.Node], shapes: Mapping[str, tuple[int, ...]],
                 dtype) -> None:
     """Every planned point exists in this model, and its warps fit in memory (estimated from the shapes)."""
-    from .sources.memory import check_fits
+    from .limits import check_fits
     from .warps import warp_bytes
 
     for item in plan:
@@ -221,7 +221,7 @@ def _check_plan(plan: Sequence[SplicePlan], nodes: Mapping[str, fx.Node], shapes
 def _check_forward_fits(model: nn.Module, input_shape, listing, batch: int) -> None:
     """A no-grad forward of ``batch`` samples fits in memory: about three of its largest activations live at once
     (input, output and one skip of a layer; a rule of thumb, common practice, no source), from the meta shapes."""
-    from .sources.memory import check_fits, tensor_bytes
+    from .limits import check_fits, tensor_bytes
 
     param = next(iter(model.parameters()), None)
     dtype = param.dtype if param is not None else torch.get_default_dtype()

@@ -79,7 +79,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     >>> report = splice.inspect("out/tray-affine", data="digits-moved", out="out/report")  # doctest: +SKIP
     >>> report["warps"]["input"]["quantities"]["angle_deg"]["mean"]                           # doctest: +SKIP
     """
-    from .._io import atomic_write_json, atomic_write_text
+    from .._io import atomic_write_json, atomic_write_text, make_dir
 
     check_positive_int("n", n)
     check_positive_int("sheet_images", sheet_images)
@@ -89,8 +89,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     sample = _sample(facts, data, split, n)
     cap = capture(model, sample.images, normalisation=sample.normalisation, batch_size=batch_size)
     _score(sample, cap.logits)
-    outdir = Path(out)
-    outdir.mkdir(parents=True, exist_ok=True)
+    outdir = make_dir(out)
     rows: list[dict] = []
     summary_warps: dict[str, dict] = {}
     files = {"csv": "warps.csv", "summary": "summary.json", "pictures": []}

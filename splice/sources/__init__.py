@@ -30,6 +30,7 @@ from .trust import REGISTRY_KINDS, TRUST_ENV, RegistryKind, check_spec, code_tru
 from .weights import (
     NESTING_KEYS,
     WRAPPER_PREFIXES,
+    check_dtypes,
     check_finite,
     load_weights_,
     read_safetensors,
@@ -49,6 +50,7 @@ __all__ = [
     "parse_kwargs",
     "format_shape",
     "check_finite",
+    "check_dtypes",
     "IMAGENET_NORMALISATION",
     "check_spec",
     "code_trusted",

@@ -13,7 +13,7 @@ import os
 from pathlib import Path
 from typing import Any
 
-from .._io import atomic_write_json, atomic_write_text
+from .._io import atomic_write_json, atomic_write_text, make_dir
 from ..errors import SpliceError
 from ..recipes import Recipe, recipe_to_toml
 
@@ -161,6 +161,6 @@ def prepare_folder(ctx, out: Path | None, resume: Path | None) -> tuple[Path, di
 
         dist.barrier()
     if ctx.is_main:
-        out.mkdir(parents=True, exist_ok=True)
+        make_dir(out)
     distributed.broadcast_flag(ctx, False)
     return out, None

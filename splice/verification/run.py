@@ -19,7 +19,7 @@ from ..compare import compare_outputs, detached, first_rows, flatten_outputs
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
-from ..sources.memory import check_fits, tensor_bytes
+from ..limits import check_fits, tensor_bytes
 from ..store import base_part, open_folder
 from ..surgery import warps_of
 from .gradients import _gradients, _gradients_row, _head_params, _onnx_row
