@@ -44,11 +44,16 @@ def _fsync_dir(path: Path) -> None:
 
 
 def _target_error(target: Path, exc: OSError):
-    """A failed write as one line that names the user's target, never the temporary file beside it."""
-    from .errors import SpliceError
+    """A failed write as one line that names the user's target, never the temporary file beside it.
 
-    if target.is_dir() and isinstance(exc, (IsADirectoryError, OSError)) and not target.is_symlink():
-        why = "it is a folder; give a file name" if target.suffix else "it is a folder that could not be replaced"
+    The error is a :class:`~splice.errors.WriteError`: a ``SpliceError`` for
+    the command line, and still an ``OSError`` (same errno) for callers that
+    handle those.
+    """
+    from .errors import WriteError
+
+    if isinstance(exc, IsADirectoryError) and target.is_dir():
+        why = "it is a folder; give a file name"
     elif any(p.exists() and not p.is_dir() for p in target.parents):
         blocker = next(p for p in reversed(target.parents) if p.exists() and not p.is_dir())
         why = f"'{blocker}' is a file, not a folder; choose a path inside a folder"
@@ -56,7 +61,7 @@ def _target_error(target: Path, exc: OSError):
         why = "permission denied; make its folder writable or choose another path"
     else:
         why = f"{exc.strerror or type(exc).__name__}; check the path and the disk"
-    return SpliceError(f"could not write '{target}': {why}")
+    return WriteError(f"could not write '{target}': {why}", exc, target)
 
 
 def make_dir(path: str | os.PathLike) -> Path:

@@ -173,6 +173,9 @@ def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides
          run_options=None) -> dict:
     """Fine-tune with a recipe and write a run folder (see :func:`splice.training.tune`).
 
+    A folder (or ``resume``'s run.json) that names a model no registry lists is
+    built only with ``model_options=ModelOptions(trust_code=True)``.
+
     >>> import splice, tempfile
     >>> from splice.training import RecipeOverrides, RunOptions
     >>> run = tempfile.mkdtemp() + "/run"

@@ -26,6 +26,7 @@ __all__ = [
     "DataError",
     "CheckFailed",
     "ResourceError",
+    "WriteError",
     "SpliceWarning",
     "RandomWeightsWarning",
     "suggest",
@@ -80,6 +81,20 @@ class DataError(SpliceError):
 
 class ResourceError(SpliceError):
     """The work asked for would not fit in this machine's memory; refused before allocating."""
+
+
+class WriteError(SpliceError, OSError):
+    """Writing the user's target failed. Also an ``OSError`` carrying the cause's errno and strerror, so code
+    that handles OS errors still does; its message names the target, never a temporary file."""
+
+    def __init__(self, message: str, cause: OSError | None = None, target: object = None) -> None:
+        super().__init__(message)
+        if cause is not None:
+            self.errno, self.strerror = cause.errno, cause.strerror
+        self.filename = None if target is None else str(target)
+
+    def __str__(self) -> str:
+        return str(self.args[0]) if self.args else ""
 
 
 class CheckFailed(SpliceError):
