@@ -21,6 +21,7 @@ __all__ = [
     "atomic_write_text",
     "atomic_write_json",
     "atomic_dir",
+    "make_dir",
     "file_sha256",
     "state_dict_sha256",
     "json_safe",
@@ -42,9 +43,51 @@ def _fsync_dir(path: Path) -> None:
             os.close(fd)
 
 
-def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
-    """Write ``data`` to ``path`` via a temporary file in the same folder and a rename."""
+def _target_error(target: Path, exc: OSError):
+    """A failed write as one line that names the user's target, never the temporary file beside it.
+
+    The error is a :class:`~splice.errors.WriteError`: a ``SpliceError`` for
+    the command line, and still an ``OSError`` (same errno) for callers that
+    handle those.
+    """
+    from .errors import WriteError
+
+    if isinstance(exc, IsADirectoryError) and target.is_dir():
+        why = "it is a folder; give a file name"
+    elif any(p.exists() and not p.is_dir() for p in target.parents):
+        blocker = next(p for p in reversed(target.parents) if p.exists() and not p.is_dir())
+        why = f"'{blocker}' is a file, not a folder; choose a path inside a folder"
+    elif isinstance(exc, PermissionError):
+        why = "permission denied; make its folder writable or choose another path"
+    else:
+        why = f"{exc.strerror or type(exc).__name__}; check the path and the disk"
+    return WriteError(f"could not write '{target}': {why}", exc, target)
+
+
+def make_dir(path: str | os.PathLike) -> Path:
+    """``mkdir -p path``; a failure raises :class:`~splice.errors.SpliceError` naming ``path``."""
     path = Path(path)
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _target_error(path, exc) from exc
+    return path
+
+
+def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
+    """Write ``data`` to ``path`` via a temporary file in the same folder and a rename.
+
+    A failed write raises :class:`~splice.errors.SpliceError` naming ``path``;
+    the previous file, if any, is untouched.
+    """
+    path = Path(path)
+    try:
+        return _write_bytes(path, data)
+    except OSError as exc:
+        raise _target_error(path, exc) from exc
+
+
+def _write_bytes(path: Path, data: bytes) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
@@ -113,15 +156,15 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
             f"output folder '{target}' already exists; pass --overwrite "
             "(overwrite=True) to replace it, or choose another folder"
         )
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
-    os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes 0700
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
+        os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes 0700
+    except OSError as exc:
+        raise _target_error(target, exc) from exc
     try:
         yield tmp
-        for f in tmp.rglob("*"):
-            if f.is_file():
-                with open(f, "rb") as fh:
-                    os.fsync(fh.fileno())
+        _settle(tmp)
         if target.exists():
             old = target.with_name(f".{target.name}.old-{os.getpid()}")
             os.replace(target, old)
@@ -130,9 +173,26 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
         else:
             os.replace(tmp, target)
         _fsync_dir(target.parent)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise _target_error(target, exc) from exc
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def _settle(folder: Path) -> None:
+    """Every file written into ``folder`` gets the usual permissions (0666 less the umask) and reaches the disk.
+
+    Some writers (safetensors among them) create their files 0600; a folder
+    splice writes holds files like any other file the user writes.
+    """
+    mode = 0o666 & ~_umask()
+    for f in folder.rglob("*"):
+        if f.is_file():
+            os.chmod(f, mode)
+            with open(f, "rb") as fh:
+                os.fsync(fh.fileno())
 
 
 def file_sha256(path: str | os.PathLike) -> str:

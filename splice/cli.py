@@ -69,6 +69,22 @@ def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, option
     p.add_argument("--allow-partial", action="store_true", help="load only the weights that fit; report the rest")
     p.add_argument("--trust-pickle", action="store_true",
                    help="allow unpickling whole-module checkpoints (can run arbitrary code: only for files you trust)")
+    _add_trust_code(p)
+
+
+_TRUST_CODE_HELP = ("build a model spec read from a file (a folder's splice.json, a run's run.json) even when no "
+                    "registry lists it; this runs code the file names: only for files you trust. Not remembered; "
+                    "SPLICE_TRUST_CODE=1 does the same for a shell")
+
+
+def _add_trust_code(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--trust-code", action="store_true", help=_TRUST_CODE_HELP)
+
+
+def _add_pixel_cap(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--max-image-pixels", type=int, metavar="N",
+                   help="refuse images over N pixels before decoding them (default 89478485, Pillow's "
+                        "decompression-bomb threshold; also SPLICE_MAX_IMAGE_PIXELS)")
 
 
 def _source(args):
@@ -82,6 +98,7 @@ def _source(args):
         allow_partial=args.allow_partial,
         trust_pickle=args.trust_pickle,
         leaves=tuple(args.leaf),
+        trust_code=args.trust_code,
     )
 
 
@@ -148,7 +165,7 @@ def _cmd_verify(args) -> int:
     from .verification import render_verify, verify, write_report
 
     report = verify(args.folder, images=args.images, batch=args.batch, dtype=args.dtype, onnx=args.onnx,
-                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle)
+                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle, trust_code=args.trust_code)
     if args.report:
         write_report(report, args.report)
     if args.json:
@@ -166,7 +183,8 @@ def _cmd_export(args) -> int:
 
         raise SpliceError("export needs a target: --onnx FILE and/or --pt2 FILE")
     result = export(args.folder, onnx=args.onnx, pt2=args.pt2, opset=args.opset,
-                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle, exporter=args.exporter)
+                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle, exporter=args.exporter,
+                    trust_code=args.trust_code)
     out = _console()
     for item in result["exports"]:
         perturbed = item.get("max_abs_perturbed")
@@ -184,7 +202,7 @@ def _cmd_tune(args) -> int:
         epochs=args.epochs, lr=args.lr, batch_size=args.batch_size, seed=args.seed, device=args.device,
         quiet=args.quiet, weights=args.weights, kwargs=args.kwargs, input_shape=args.input_shape,
         allow_partial=args.allow_partial, trust_pickle=args.trust_pickle, leaves=tuple(args.leaf),
-        workers=args.workers, reference=args.reference,
+        workers=args.workers, reference=args.reference, trust_code=args.trust_code,
     )
     if summary and not args.quiet and summary.get("rank", 0) == 0:
         out = _console()
@@ -197,7 +215,7 @@ def _cmd_inspect(args) -> int:
     from .inspection import inspect, render_inspect
 
     result = inspect(args.folder, data=args.data, n=args.n, split=args.split, out=args.out,
-                     trust_pickle=args.trust_pickle)
+                     trust_pickle=args.trust_pickle, trust_code=args.trust_code)
     render_inspect(result, _console())
     return EXIT_OK
 
@@ -207,7 +225,8 @@ def _cmd_eval(args) -> int:
 
     result = evaluate(args.model, data=args.data, split=args.split, against=args.against, distort=args.distort,
                       batch_size=args.batch_size, plot=args.plot, weights=args.weights, kwargs=args.kwargs,
-                      input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device)
+                      input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device,
+                      trust_code=args.trust_code)
     if args.json:
         print(json.dumps(result, indent=2))
     else:
@@ -263,7 +282,9 @@ def _parser_verify(sub) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of the probe batch (default 0)")
     p.add_argument("--json", action="store_true", help="print the certificate as JSON")
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
+    _add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    _add_trust_code(p)
     p.set_defaults(func=_cmd_verify)
 
 
@@ -277,6 +298,7 @@ def _parser_export(sub) -> None:
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
                    help="ONNX exporter (default torchscript)")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    _add_trust_code(p)
     p.set_defaults(func=_cmd_export)
 
 
@@ -298,6 +320,7 @@ def _parser_tune(sub) -> None:
     p.add_argument("--device", help="cuda, mps or cpu (default: the best available)")
     p.add_argument("--workers", type=int, default=0, help="data-loading worker processes (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    _add_pixel_cap(p)
     p.set_defaults(func=_cmd_tune)
 
 
@@ -308,7 +331,9 @@ def _parser_inspect(sub) -> None:
     p.add_argument("--n", type=int, default=64, help="number of images (default 64)")
     p.add_argument("--split", default="test")
     p.add_argument("--out", required=True, metavar="REPORT_DIR")
+    _add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    _add_trust_code(p)
     p.set_defaults(func=_cmd_inspect)
 
 
@@ -324,6 +349,7 @@ def _parser_eval(sub) -> None:
     p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
     p.add_argument("--device", help="cuda, mps or cpu")
     p.add_argument("--json", action="store_true")
+    _add_pixel_cap(p)
     p.set_defaults(func=_cmd_eval)
 
 
@@ -372,7 +398,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         warnings.filterwarnings("default", module=r"splice(\.|$)")
         warnings.filterwarnings("default", category=SpliceWarning)
     try:
-        return int(args.func(args) or 0)
+        from .limits import image_pixel_cap
+
+        with image_pixel_cap(getattr(args, "max_image_pixels", None)):
+            return int(args.func(args) or 0)
     except CheckFailed as exc:
         if args.debug:
             raise

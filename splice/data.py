@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import functools
 import os
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -53,6 +54,7 @@ from torch.utils.data import Dataset
 
 from splice import distort
 from splice.errors import DataError, suggest
+from splice.limits import max_image_pixels
 
 __all__ = [
     "DATASETS",
@@ -383,6 +385,22 @@ def _open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFo
     return ImageFolderSet(root, split, classes, samples, shape)
 
 
+def _open_capped(path: Path):
+    """``Image.open`` (which reads only the header), refusing an image over the pixel cap before it is decoded."""
+    from PIL import Image
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", Image.DecompressionBombWarning)  # the cap below is the one that counts
+        im = Image.open(path)
+    cap = max_image_pixels()
+    width, height = im.size
+    if width * height > cap:
+        im.close()
+        raise DataError(f"image {path} is {width}x{height} ({width * height:,} pixels), over the cap of {cap:,}; "
+                        "shrink it, or raise the cap with --max-image-pixels N (SPLICE_MAX_IMAGE_PIXELS).")
+    return im
+
+
 def _load_image(path: Path, input_shape: Sequence[int]) -> Tensor:
     """One image as float32 (C, H, W) in [0, 1], resized and channel-converted."""
     import numpy as np
@@ -390,7 +408,7 @@ def _load_image(path: Path, input_shape: Sequence[int]) -> Tensor:
 
     c, h, w = input_shape
     try:
-        with Image.open(path) as im:
+        with _open_capped(path) as im:
             im = ImageOps.exif_transpose(im)
             if im.mode in ("I", "F") or im.mode.startswith("I;16"):
                 # high bit depth grey: scale 16-bit values to [0, 1], keep float images as they are

@@ -17,6 +17,7 @@ __all__ = [
     "SourceError",
     "WeightsError",
     "UnsafeCheckpointError",
+    "UntrustedCodeError",
     "GraphError",
     "PointError",
     "ManifestError",
@@ -24,6 +25,8 @@ __all__ = [
     "RecipeError",
     "DataError",
     "CheckFailed",
+    "ResourceError",
+    "WriteError",
     "SpliceWarning",
     "RandomWeightsWarning",
     "suggest",
@@ -38,6 +41,10 @@ class SpliceError(Exception):
 
 class SourceError(SpliceError):
     """The model spec cannot be resolved to an architecture."""
+
+
+class UntrustedCodeError(SourceError):
+    """A model spec read from a file would run code no registry vouches for, and the user did not opt in."""
 
 
 class WeightsError(SpliceError):
@@ -70,6 +77,24 @@ class RecipeError(SpliceError):
 
 class DataError(SpliceError):
     """A dataset name, folder or image cannot be used."""
+
+
+class ResourceError(SpliceError):
+    """The work asked for would not fit in this machine's memory; refused before allocating."""
+
+
+class WriteError(SpliceError, OSError):
+    """Writing the user's target failed. Also an ``OSError`` carrying the cause's errno and strerror, so code
+    that handles OS errors still does; its message names the target, never a temporary file."""
+
+    def __init__(self, message: str, cause: OSError | None = None, target: object = None) -> None:
+        super().__init__(message)
+        if cause is not None:
+            self.errno, self.strerror = cause.errno, cause.strerror
+        self.filename = None if target is None else str(target)
+
+    def __str__(self) -> str:
+        return str(self.args[0]) if self.args else ""
 
 
 class CheckFailed(SpliceError):

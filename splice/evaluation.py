@@ -271,7 +271,7 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
     ``model`` and ``against`` are anything :func:`splice.sources.load_source`
     takes (spec string, spliced or plain folder, ``nn.Module``);
     ``model_options`` (:class:`~splice.options.ModelOptions`) apply to
-    ``model``, and only its ``trust_pickle`` to ``against``. ``distort`` is a
+    ``model``, and only its ``trust_pickle`` and ``trust_code`` to ``against``. ``distort`` is a
     ``--distort`` string or mapping (see :func:`parse_distort`; ``None`` is
     :data:`DEFAULT_SWEEPS`). ``plot`` is a PNG path for the accuracy-vs-level
     figure; no plot is written unless it is given. ``options``
@@ -342,7 +342,7 @@ def _load_models(model, against, model_options: ModelOptions, dev) -> list[tuple
     models = [("model", _label(model), src, _prepare(src, dev, model))]
     if against is not None:
         other = ModelOptions(input_shape=src.input_shape if isinstance(against, nn.Module) else None,
-                             trust_pickle=model_options.trust_pickle)
+                             trust_pickle=model_options.trust_pickle, trust_code=model_options.trust_code)
         src2 = other.load(against)
         if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
             raise DataError(

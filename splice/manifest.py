@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
+import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -71,6 +72,11 @@ def _shape_ok(v: Any) -> bool:
     return isinstance(v, list) and len(v) == 3 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0 for d in v)
 
 
+def _number(x: Any) -> bool:
+    """A finite JSON number (``NaN``/``Infinity``, which Python's json reads, and booleans are not)."""
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+
+
 def _header(data: dict, problems: list[str]) -> None:
     version = data.get("schema_version")
     if version != SCHEMA_VERSION:
@@ -100,10 +106,12 @@ def _inputs(data: dict, problems: list[str]) -> None:
     norm = data.get("normalisation")
     if norm is not None:
         if not (isinstance(norm, dict) and set(norm) == {"mean", "std"}
-                and all(isinstance(norm[k], list) and all(isinstance(x, (int, float)) for x in norm[k]) for k in norm)):
-            problems.append("normalisation must be null or {\"mean\": [...], \"std\": [...]}")
+                and all(isinstance(norm[k], list) and all(_number(x) for x in norm[k]) for k in norm)):
+            problems.append("normalisation must be null or {\"mean\": [finite numbers], \"std\": [finite numbers]}")
         elif any(s <= 0 for s in norm["std"]):
             problems.append("normalisation.std values must be positive")
+        elif len(norm["mean"]) != len(norm["std"]):
+            problems.append("normalisation.mean and normalisation.std must have one value per channel each")
     names = data.get("class_names")
     if names is not None and not (isinstance(names, list) and all(isinstance(n, str) for n in names)):
         problems.append("class_names must be null or a list of strings")

@@ -27,7 +27,10 @@ class ModelOptions:
     ``(C, H, W)`` (or a ``CxHxW`` string) when the builder does not declare one,
     ``leaves`` extra module types the tracer must not enter, ``trust_pickle``
     the explicit opt-in to unpickling, ``allow_partial`` accepts a checkpoint
-    that covers only part of the model.
+    that covers only part of the model. ``trust_code`` is the explicit opt-in
+    to building a model spec read from a file (a folder's manifest, a run's
+    ``run.json``) that no registry lists; ``origin`` is that file when the
+    spec itself was read from one (``None``: the user gave it).
     """
 
     weights: str | os.PathLike | None = None
@@ -36,6 +39,8 @@ class ModelOptions:
     leaves: tuple[str, ...] = ()
     trust_pickle: bool = False
     allow_partial: bool = False
+    trust_code: bool = False
+    origin: str | os.PathLike | None = None
 
     def __post_init__(self) -> None:
         if self.weights is not None and not isinstance(self.weights, (str, os.PathLike)):
@@ -46,7 +51,9 @@ class ModelOptions:
         if isinstance(leaves, str) or not isinstance(leaves, Sequence) or not all(isinstance(x, str) for x in leaves):
             raise ValueError(f"ModelOptions.leaves must be a sequence of names; got {leaves!r}")
         object.__setattr__(self, "leaves", tuple(leaves))
-        for name in ("trust_pickle", "allow_partial"):
+        if self.origin is not None and not isinstance(self.origin, (str, os.PathLike)):
+            raise ValueError(f"ModelOptions.origin must be a path or None; got {self.origin!r}")
+        for name in ("trust_pickle", "allow_partial", "trust_code"):
             if not isinstance(getattr(self, name), bool):
                 raise ValueError(f"ModelOptions.{name} must be True or False; got {getattr(self, name)!r}")
 
@@ -57,7 +64,7 @@ class ModelOptions:
         spec = os.fspath(model) if isinstance(model, os.PathLike) else model
         return open_source(spec, weights=self.weights, kwargs=self.kwargs, input_shape=self.input_shape,
                            allow_partial=self.allow_partial, trust_pickle=self.trust_pickle, leaves=self.leaves,
-                           **extra)
+                           trust_code=self.trust_code, origin=self.origin, **extra)
 
 
 def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: str) -> list:

@@ -38,7 +38,8 @@ from .manifest import (
     validate_manifest,
 )
 from .version import library_versions
-from .sources import Source, build_model, check_finite, load_source, parse_input_shape, read_safetensors, with_metadata
+from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, load_source, parse_input_shape,
+                      read_safetensors, with_metadata)
 from .surgery import WARP_PREFIX, SplicePlan, apply_plan
 
 __all__ = [
@@ -82,6 +83,9 @@ def read_manifest(folder: str | os.PathLike) -> dict:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise ManifestError(f"'{path}' is not valid JSON ({exc}); the file is damaged — re-create the folder") from None
+    except RecursionError:
+        raise ManifestError(f"'{path}' nests its JSON too deeply to read; the file is damaged — re-create the "
+                            "folder") from None
     return validate_manifest(data, str(path))
 
 
@@ -139,17 +143,35 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
 # ----------------------------------------------------------------------------- building
 
 
-def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False) -> nn.Module:
+def _origin(info: SpliceInfo) -> Path | None:
+    """The file ``info``'s spec was read from (its folder's manifest), or ``None`` for a record made in memory."""
+    return None if info.folder is None else Path(info.folder) / MANIFEST_NAME
+
+
+def _check_base_spec(info: SpliceInfo, trust_code: bool) -> None:
+    """The gate for a recorded base spec (:func:`splice.sources.check_spec`), and no folder inside a folder."""
+    check_spec(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
+    if ":" not in info.spec and Path(info.spec).is_dir():
+        where = _origin(info) or "the splice record"
+        raise ManifestError(
+            f"source.spec in '{where}' names a folder ('{info.spec}'), not an architecture; a folder's base must "
+            "be a model spec such as torchvision:NAME — re-create the folder with 'splice insert'"
+        )
+
+
+def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
+    _check_base_spec(info, trust_code)
     if ":" not in info.spec:  # a pickled whole module
-        return load_source(info.spec, input_shape=info.input_shape, trust_pickle=trust_pickle).model
-    model, _ = build_model(info.spec, info.kwargs)
+        return load_source(info.spec, input_shape=info.input_shape, trust_pickle=trust_pickle,
+                           origin=_origin(info), trust_code=trust_code).model
+    model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
     return model
 
 
 _META = torch.device("meta")
 
 
-def _empty_base(info: SpliceInfo) -> nn.Module | None:
+def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
     """The base architecture with its tensors on the meta device (no memory, no random init), or ``None``.
 
     Only builders (``torchvision:NAME``, ``module:factory``) can be built this
@@ -158,9 +180,10 @@ def _empty_base(info: SpliceInfo) -> nn.Module | None:
     """
     if ":" not in info.spec:
         return None
+    _check_base_spec(info, trust_code)  # refused specs are refused, not left to the slow path
     try:
         with _META:
-            model, _ = build_model(info.spec, info.kwargs)
+            model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
     except Exception:  # any failure here only means "build it the slow way"
         return None
     return model
@@ -211,15 +234,16 @@ def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | No
 
 
 def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *,
-                     trust_pickle: bool = False, empty: nn.Module | None = None) -> nn.Module:
+                     trust_pickle: bool = False, empty: nn.Module | None = None, trust_code: bool = False) -> nn.Module:
     """The base network holding ``base_state``: built empty and filled when it can be, else built and loaded.
 
     ``empty`` may pass in an :func:`_empty_base` to fill (it is used up).
     """
-    empty = empty if empty is not None else _empty_base(info)
+    empty = empty if empty is not None else _empty_base(info, trust_code)
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
-        model = _rebuild_base(info, trust_pickle=trust_pickle)
+        model = _rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code)
+        check_dtypes(model.state_dict(), base_state, "the folder's weights")
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
@@ -263,6 +287,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
             f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
             "the folder was written by an incompatible version or edited by hand"
         )
+    check_dtypes(own, state, f"'{folder}'")
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
@@ -278,7 +303,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
 
 
 def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *, trust_pickle: bool,
-               empty: nn.Module | None = None, frame: nn.Module | None = None) -> nn.Module:
+               empty: nn.Module | None = None, frame: nn.Module | None = None, trust_code: bool = False) -> nn.Module:
     """The spliced model holding ``state``: assembled on an empty base when it can be, else on a built one.
 
     ``empty`` may pass in an :func:`_empty_base`; with points it is traced
@@ -287,7 +312,7 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
     being checked.
     """
     if frame is None:
-        empty = empty if empty is not None else _empty_base(info)
+        empty = empty if empty is not None else _empty_base(info, trust_code)
         if empty is not None:
             frame = _frame(empty, info, copy_base=True)
     if frame is not None:
@@ -295,7 +320,7 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
             return _load_into(frame, state, folder, assign=True)
         except WeightsError:
             pass  # the strict, slow path below names what does not fit
-    return assemble(_rebuild_base(info, trust_pickle=trust_pickle), info, state, folder)
+    return assemble(_rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code), info, state, folder)
 
 
 # ----------------------------------------------------------------------------- opening a folder
@@ -321,6 +346,7 @@ class OpenedFolder:
     trust_pickle: bool = False
     empty: nn.Module | None = field(default=None, repr=False)
     frame: nn.Module | None = field(default=None, repr=False)
+    trust_code: bool = False
 
     @property
     def intact(self) -> bool:
@@ -335,7 +361,7 @@ class OpenedFolder:
     def spliced(self) -> nn.Module:
         """The spliced model (eval mode, carrying :attr:`info`)."""
         model = _assembled(self.info, self._tensors(), self.folder, trust_pickle=self.trust_pickle,
-                           empty=self.empty, frame=self.frame)
+                           empty=self.empty, frame=self.frame, trust_code=self.trust_code)
         self.frame = None  # used up
         attach_info(model, self.info)
         return model.eval()
@@ -343,21 +369,21 @@ class OpenedFolder:
     def base(self) -> nn.Module:
         """The base network: the architecture with the base part of the weights (eval mode)."""
         model = _base_from_state(self.info, base_part(self._tensors()), trust_pickle=self.trust_pickle,
-                                 empty=self.empty)
+                                 empty=self.empty, trust_code=self.trust_code)
         self.empty = None  # used up
         return model
 
 
-def _build_empty(info: SpliceInfo, frame: bool) -> tuple[nn.Module | None, nn.Module | None]:
+def _build_empty(info: SpliceInfo, frame: bool, trust_code: bool) -> tuple[nn.Module | None, nn.Module | None]:
     try:
-        empty = _empty_base(info)
+        empty = _empty_base(info, trust_code)
         return empty, (_frame(empty, info, copy_base=True) if frame and empty is not None else None)
     except Exception:  # left to the slow path, which reports it after the integrity check
         return None, None
 
 
 def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_pickle: bool = False,
-                strict: bool = True, frame: bool = True) -> OpenedFolder:
+                strict: bool = True, frame: bool = True, trust_code: bool = False) -> OpenedFolder:
     """Read a folder's manifest and check its weights against the recorded sha256.
 
     The file is hashed on a second thread while the architecture (and, with
@@ -368,10 +394,15 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
     tensors stay backed by it (for a caller that lives only as long as one
     call: a file truncated while they are alive kills the process with
     SIGBUS), else they are copied out, so a loaded model never depends on it.
+
+    The recorded spec came from a file: it passes the gate of
+    :func:`splice.sources.check_spec` (a registry lookup, or ``trust_code``)
+    before anything is built.
     """
     folder = Path(folder)
     manifest = read_manifest(folder)
     info = SpliceInfo.from_manifest(manifest, folder=folder)
+    _check_base_spec(info, trust_code)
     path = folder / manifest["weights"]["file"]
     if not path.is_file():
         raise WeightsError(f"'{path}' is missing; the folder is incomplete — re-create it with 'splice insert'")
@@ -379,9 +410,9 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
     with ThreadPoolExecutor(max_workers=1) as pool:
         # hashing releases the GIL (file_sha256 hashes the mapped file in one call)
         file_hash = pool.submit(file_sha256, path)
-        empty, framed = _build_empty(info, frame)
+        empty, framed = _build_empty(info, frame, trust_code)
         actual = file_hash.result()
-    opened = OpenedFolder(folder, manifest, info, path, recorded, actual, None, trust_pickle, empty, framed)
+    opened = OpenedFolder(folder, manifest, info, path, recorded, actual, None, trust_pickle, empty, framed, trust_code)
     if actual != recorded:
         if strict:
             raise IntegrityError(
@@ -391,6 +422,8 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
             )
         return opened
     state = read_safetensors(path)
+    if empty is not None:
+        check_dtypes(empty.state_dict(), base_part(state), f"'{path}'")
     opened.state = state if keep_mapped else {k: v.clone() for k, v in state.items()}
     return opened
 
@@ -398,27 +431,30 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
 # ----------------------------------------------------------------------------- load
 
 
-def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+def load(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     """Rebuild a model saved by :func:`save`: base from its spec, warps re-applied, weights loaded.
 
     The weights file is refused if its sha256 differs from the one recorded at
-    save time. The model is returned in eval mode.
+    save time. The model is returned in eval mode. A recorded spec that no
+    registry lists (``pkg.mod:factory``, ``file.py:factory``) is built only
+    with ``trust_code=True`` (or ``SPLICE_TRUST_CODE=1``).
 
     >>> model = splice.load("out/r18-affine")   # doctest: +SKIP
     """
-    opened = open_folder(folder, trust_pickle=trust_pickle)
+    opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     check_finite(opened.state, f"'{opened.weights_path}'")
     return opened.spliced()
 
 
-def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     """The base network of a folder: its architecture with the base part of the saved weights."""
-    return open_folder(folder, trust_pickle=trust_pickle, frame=False).base()
+    return open_folder(folder, trust_pickle=trust_pickle, frame=False, trust_code=trust_code).base()
 
 
-def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False) -> Source:
+def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False,
+                       trust_code: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
-    opened = open_folder(folder, trust_pickle=trust_pickle)
+    opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     check_finite(opened.state, f"'{opened.weights_path}'")
     model = opened.spliced()
     info, manifest = opened.info, opened.manifest
@@ -439,14 +475,20 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
 
 def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapping | str | None = None,
                 input_shape: str | Sequence[int] | None = None, leaves: Sequence[str] = (),
-                trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True) -> Source:
+                trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True,
+                origin: str | os.PathLike | None = None, trust_code: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for anything a command accepts: a folder written by
     :func:`save` (opened here), else whatever :func:`splice.sources.load_source` resolves.
+
+    ``origin`` is the file ``thing`` and ``kwargs`` were read from (``None``:
+    the user gave them); a folder's own manifest is always treated as a file.
 
     >>> src = open_source("out/r18-affine")   # doctest: +SKIP
     """
     if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir():
-        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle)
+        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle,
+                                  trust_code=trust_code)
     spec = os.fspath(thing) if isinstance(thing, os.PathLike) else thing
     return load_source(spec, weights=weights, kwargs=kwargs, input_shape=input_shape, leaves=leaves,
-                       trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random)
+                       trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random,
+                       origin=origin, trust_code=trust_code)

@@ -161,6 +161,7 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
     if factory is None:
         param = next(iter(model.parameters()), None)
         factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
+    _check_plan(plan, nodes, shapes, factory.get("dtype"))
     if WARP_PREFIX in dict(gm.named_children()):
         raise PointError(f"the model already has a submodule named {WARP_PREFIX!r}; it cannot be spliced again")
     container = nn.ModuleDict()
@@ -195,6 +196,39 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
     _restore_missing_state(gm, model)
     gm.train(model.training)
     return gm
+
+
+def _check_plan(plan: Sequence[SplicePlan], nodes: Mapping[str, fx.Node], shapes: Mapping[str, tuple[int, ...]],
+                dtype) -> None:
+    """Every planned point exists in this model, and its warps fit in memory (estimated from the shapes)."""
+    from .limits import check_fits
+    from .warps import warp_bytes
+
+    for item in plan:
+        if item.point not in nodes or item.point not in shapes:
+            raise PointError(
+                f"point {item.point!r} is not a 4-D point of this model{suggest(item.point, list(nodes)) or ';'} "
+                "a splice record that names it was made on another architecture or edited by hand — re-create it "
+                "with 'splice insert'"
+            )
+    need = sum(warp_bytes(it.config, shapes[it.point],
+                          shapes.get(it.config.loc_from) if it.config.loc_from not in (None, it.point) else None,
+                          dtype) for it in plan)
+    check_fits(need, f"the warps at {', '.join(it.point for it in plan)}",
+               "pass a smaller --input-shape, a smaller --head-width, or splice at a smaller point")
+
+
+def _check_forward_fits(model: nn.Module, input_shape, listing, batch: int) -> None:
+    """A no-grad forward of ``batch`` samples fits in memory: about three of its largest activations live at once
+    (input, output and one skip of a layer; a rule of thumb, common practice, no source), from the meta shapes."""
+    from .limits import check_fits, tensor_bytes
+
+    param = next(iter(model.parameters()), None)
+    dtype = param.dtype if param is not None else torch.get_default_dtype()
+    largest = max((tensor_bytes([p.shape], dtype, batch) for p in listing),
+                  default=tensor_bytes([input_shape], dtype, batch))
+    check_fits(3 * largest, f"a forward pass of {batch} x {'x'.join(map(str, input_shape))}",
+               "pass a smaller --input-shape")
 
 
 def _warp_config(warp, name: str):
@@ -267,6 +301,8 @@ def insert(
     plan = [SplicePlan(name, _warp_config(warp, name)) for name in names]
     for item in plan:
         _warn_not_cut(by_name[item.point])
+    if check:
+        _check_forward_fits(base, src.input_shape, work_listing, batch=2)
     gm = apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)
     result = _quick_check(base, gm, src.input_shape, tol=tol) if check else None
     points = [PointRecord(it.point, it.config, tuple(by_name[it.point].shape), bool(by_name[it.point].cut))

@@ -241,7 +241,7 @@ def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_pat
         for p in spliced.parameters():
             p.add_(0.01 * torch.arange(p.numel(), dtype=p.dtype).reshape(p.shape) / max(1, p.numel()))
     folder = splice.save(spliced, tmp_path / factory)
-    loaded = splice.load(folder)
+    loaded = splice.load(folder, trust_code=True)
     assert not any(t.is_meta for t in (*loaded.parameters(), *loaded.buffers()))
     want, got = spliced.state_dict(), loaded.state_dict()
     assert set(want) == set(got)
@@ -249,7 +249,7 @@ def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_pat
     x = torch.randn(2, 1, 12, 12)
     with torch.no_grad():
         assert torch.equal(spliced.eval()(x), loaded(x))
-    base = load_base(folder)
+    base = load_base(folder, trust_code=True)
     assert not any(t.is_meta for t in (*base.parameters(), *base.buffers()))
     assert all(torch.equal(v, base.state_dict()[k]) for k, v in want.items() if not k.startswith("splice_warps."))
     # plain is never built for real (no random init); the other two are, once for load and once for load_base
@@ -260,7 +260,7 @@ def test_float64_folder_loads_with_float64_warp_grids(builders, tmp_path):
     """Warps built around an empty base take the saved dtype, grids rebuilt in float64 (exact identity)."""
     spliced = insert(f"{builders}:plain", at="input", input_shape=(1, 12, 12)).double()
     folder = splice.save(spliced, tmp_path / "f64")
-    loaded = splice.load(folder)
+    loaded = splice.load(folder, trust_code=True)
     warp = loaded.get_submodule("splice_warps.input")
     assert warp.base_grid.dtype == torch.float64
     assert torch.equal(warp.base_grid, spliced.get_submodule("splice_warps.input").base_grid)
@@ -270,7 +270,7 @@ def test_float64_folder_loads_with_float64_warp_grids(builders, tmp_path):
     assert all(p.dtype == torch.float64 for p in loaded.parameters())
     from splice.store import load_base
 
-    assert all(p.dtype == torch.float64 for p in load_base(folder).parameters())  # saved values, not rounded
+    assert all(p.dtype == torch.float64 for p in load_base(folder, trust_code=True).parameters())  # saved values, not rounded
 
 
 def test_file_sha256_matches_hashlib(tmp_path):
@@ -293,7 +293,7 @@ def test_loaded_model_does_not_depend_on_the_file(saved, tmp_path):
 
     folder = tmp_path / "copy"
     shutil.copytree(saved, folder)
-    model = splice.load(folder)
+    model = splice.load(folder, trust_code=True)
     before = {k: v.clone() for k, v in model.state_dict().items()}
     with open(folder / "weights.safetensors", "r+b") as fh:
         fh.truncate(16)  # a mapped tensor would raise SIGBUS when read after this
@@ -309,7 +309,7 @@ def test_tied_weights_stay_tied_through_save_and_load(builders, tmp_path):
     spliced = insert(f"{builders}:tied", at="input", input_shape=(1, 12, 12))
     assert spliced.conv3.weight is spliced.conv2.weight
     folder = splice.save(spliced, tmp_path / "tied")
-    loaded, base = splice.load(folder), load_base(folder)
+    loaded, base = splice.load(folder, trust_code=True), load_base(folder, trust_code=True)
     assert loaded.conv3.weight is loaded.conv2.weight
     assert base.conv3.weight is base.conv2.weight
     x = torch.randn(2, 1, 12, 12)
@@ -318,7 +318,7 @@ def test_tied_weights_stay_tied_through_save_and_load(builders, tmp_path):
     with torch.no_grad():
         loaded.conv2.weight.add_(1.0)  # still one tensor: the change shows under both names
     assert torch.equal(loaded.conv3.weight, loaded.conv2.weight)
-    assert verify(folder, onnx=True).passed
+    assert verify(folder, onnx=True, trust_code=True).passed
 
 
 def test_version_aware_loader_gets_its_metadata(tmp_path):
@@ -329,6 +329,6 @@ def test_version_aware_loader_gets_its_metadata(tmp_path):
 
     src = splice.load_source("torchvision:mnasnet0_5", input_shape=(3, 64, 64), warn_random=False)
     folder = splice.save(insert(src, at="input"), tmp_path / "mnas")
-    assert splice.load(folder) is not None
+    assert splice.load(folder) is not None  # torchvision:NAME is a registry lookup: no opt-in needed
     assert load_base(folder) is not None
     assert verify(folder).passed

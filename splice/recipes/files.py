@@ -49,6 +49,9 @@ def _read_toml(text: str, where: str) -> dict:
         return _toml.loads(text)
     except _toml.TOMLDecodeError as exc:
         raise RecipeError(f"{where} is not valid TOML ({exc}); fix the syntax") from None
+    except RecursionError:
+        raise RecipeError(f"{where} nests its arrays or tables too deeply to read; a recipe is flat key = value "
+                          "pairs and a few tables — fix the file") from None
 
 
 def load_recipe(recipe: str | os.PathLike | Recipe | Mapping) -> Recipe:

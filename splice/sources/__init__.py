@@ -10,6 +10,10 @@ Spec forms, used by every command:
   ``trust_pickle=True`` because unpickling can run arbitrary code.
 - ``path/to/folder`` — a folder written by :func:`splice.save`.
 
+A spec read from a file (a folder's manifest, a run's ``run.json``) is built
+only through a registry lookup unless the user opts in with ``trust_code``
+(:mod:`splice.sources.trust`).
+
 Weights (``.pt``/``.pth``/``.bin`` state dicts through
 ``torch.load(weights_only=True)``, or ``.safetensors``) may be wrapped in
 ``{"state_dict": ...}`` / ``{"model": ...}`` and carry ``module.`` /
@@ -22,9 +26,11 @@ from __future__ import annotations
 from .builders import IMAGENET_NORMALISATION, build_model
 from .source import Source, load_source
 from .specs import format_shape, parse_input_shape, parse_kwargs
+from .trust import REGISTRY_KINDS, TRUST_ENV, RegistryKind, check_spec, code_trusted, register_kind, registry_kind_of
 from .weights import (
     NESTING_KEYS,
     WRAPPER_PREFIXES,
+    check_dtypes,
     check_finite,
     load_weights_,
     read_safetensors,
@@ -44,7 +50,15 @@ __all__ = [
     "parse_kwargs",
     "format_shape",
     "check_finite",
+    "check_dtypes",
     "IMAGENET_NORMALISATION",
+    "check_spec",
+    "code_trusted",
+    "registry_kind_of",
+    "register_kind",
+    "RegistryKind",
+    "REGISTRY_KINDS",
+    "TRUST_ENV",
     "WRAPPER_PREFIXES",
     "NESTING_KEYS",
 ]

@@ -20,6 +20,7 @@ from torch import nn
 
 from ..errors import SourceError, suggest
 from .specs import _split_spec, parse_input_shape
+from .trust import check_spec
 
 __all__ = ["build_model", "IMAGENET_NORMALISATION"]
 
@@ -72,13 +73,17 @@ def _import_factory(head: str, attr: str, spec: str):
     return factory
 
 
-def build_model(spec: str, kwargs: Mapping | None = None):
+def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.PathLike | None = None,
+                trust_code: bool = False):
     """Build an architecture from a spec string (random init, nothing downloaded).
 
     Returns ``(model, meta)`` where ``meta`` holds the declared ``input_shape``
-    and ``normalisation`` (either may be ``None``).
+    and ``normalisation`` (either may be ``None``). ``origin`` is the file the
+    spec was read from (``None``: the user typed it); such a spec passes the
+    gate of :func:`splice.sources.trust.check_spec` first.
     """
     kwargs = dict(kwargs or {})
+    check_spec(spec, kwargs, origin=origin, trust_code=trust_code)
     head, attr = _split_spec(spec)
     meta: dict[str, Any] = {"input_shape": None, "normalisation": None}
     if head == "torchvision":

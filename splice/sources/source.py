@@ -14,6 +14,7 @@ from .._io import state_dict_sha256
 from ..errors import RandomWeightsWarning, SourceError
 from .builders import build_model
 from .specs import parse_input_shape, parse_kwargs
+from .trust import check_spec
 from .weights import _check_file, _torch_load, check_finite, load_weights_, read_weights
 
 __all__ = ["Source", "load_source"]
@@ -61,8 +62,14 @@ def load_source(
     trust_pickle: bool = False,
     leaves: Sequence[str] = (),
     warn_random: bool = True,
+    origin: str | os.PathLike | None = None,
+    trust_code: bool = False,
 ) -> Source:
     """Resolve a model spec (or folder) into a :class:`Source`.
+
+    ``origin`` is the file ``spec`` (and ``kwargs``) were read from, ``None``
+    when the user typed them; a spec from a file is built only when a registry
+    lists it or with ``trust_code`` (see :mod:`splice.sources.trust`).
 
     >>> src = load_source("torchvision:resnet18", kwargs={"num_classes": 10})  # doctest: +SKIP
     >>> src.input_shape
@@ -77,6 +84,7 @@ def load_source(
         return Source(model=spec, spec="<module>", input_shape=shape,
                       weights_sha256=state_dict_sha256(spec.state_dict()))
     kw = parse_kwargs(kwargs)
+    check_spec(spec, kw, origin=origin, trust_code=trust_code)
     shape = parse_input_shape(input_shape)
     path = Path(spec)
     if ":" not in spec or path.is_dir():
@@ -92,7 +100,7 @@ def load_source(
             f"cannot read model spec {spec!r}; use torchvision:NAME (e.g. torchvision:resnet18), "
             "package.module:factory, path/to/file.py:factory, or a folder written by 'splice insert'"
         )
-    model, meta = build_model(spec, kw)
+    model, meta = build_model(spec, kw, origin=origin, trust_code=trust_code)
     random_init = weights is None
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)

@@ -27,6 +27,7 @@ __all__ = [
     "read_safetensors",
     "with_metadata",
     "check_finite",
+    "check_dtypes",
     "load_weights_",
     "WRAPPER_PREFIXES",
     "NESTING_KEYS",
@@ -192,6 +193,20 @@ def check_finite(state: Mapping[str, torch.Tensor], where: str) -> None:
         )
 
 
+def check_dtypes(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], where: str) -> list[str]:
+    """Refuse integer or quantised tensors where the model holds floating point; name the float tensors whose
+    dtype differs from the model's (they are cast on load)."""
+    common = [k for k in own if k in state and own[k].is_floating_point()]
+    bad = [k for k in common if not state[k].is_floating_point()]
+    if bad:
+        raise WeightsError(
+            f"{where} holds {bad[0]} as {str(state[bad[0]].dtype).replace('torch.', '')} where the model has "
+            f"{str(own[bad[0]].dtype).replace('torch.', '')} ({len(bad)} such tensor(s)); integer or quantised "
+            "weights would be truncated or misread — give floating-point weights (float32, float16 or bfloat16)"
+        )
+    return [k for k in common if state[k].dtype != own[k].dtype]
+
+
 def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_partial: bool = False,
                   where: str = "weights", spec: str = "the model") -> dict[str, list[str]]:
     """Load ``state`` into ``model`` in place after checking names and shapes.
@@ -200,6 +215,11 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     """
     own = model.state_dict()
     state = _strip_prefixes(state, set(own))
+    cast = check_dtypes(own, state, where)
+    if cast:
+        kinds = sorted({str(state[k].dtype).replace("torch.", "") for k in cast})
+        warnings.warn(f"{where} holds {len(cast)} tensor(s) in {', '.join(kinds)}; they are cast to the model's "
+                      f"{str(own[cast[0]].dtype).replace('torch.', '')} on load", SpliceWarning, stacklevel=2)
     missing = [k for k in own if k not in state]
     unexpected = [k for k in state if k not in own]
     mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]

@@ -66,6 +66,7 @@ class RunOptions:
         if self.deterministic is not None and not isinstance(self.deterministic, bool):
             raise ValueError(f"RunOptions.deterministic must be None, True or False; got {self.deterministic!r}")
         if isinstance(self.workers, bool) or not isinstance(self.workers, int) or self.workers < 0:
-            raise ValueError(f"RunOptions.workers must be an integer >= 0; got {self.workers!r}")
+            raise ValueError(f"RunOptions.workers must be an integer >= 0; got {self.workers!r} (--workers); "
+                             "pass 0 to load the data in the main process")
         _optional_int("RunOptions", "stop_after_steps", self.stop_after_steps, 1)
 

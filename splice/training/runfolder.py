@@ -13,7 +13,7 @@ import os
 from pathlib import Path
 from typing import Any
 
-from .._io import atomic_write_json, atomic_write_text
+from .._io import atomic_write_json, atomic_write_text, make_dir
 from ..errors import SpliceError
 from ..recipes import Recipe, recipe_to_toml
 
@@ -113,10 +113,29 @@ def _read_info(resume: Path) -> dict:
         info = json.loads(run_file.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise SpliceError(f"'{run_file}' is not valid JSON ({exc}); the run folder is damaged") from None
+    except RecursionError:
+        raise SpliceError(f"'{run_file}' nests its JSON too deeply to read; the run folder is damaged — "
+                          "start a new run") from None
     if not isinstance(info, dict) or info.get("format") != RUN_FORMAT or \
             info.get("schema_version") != RUN_SCHEMA_VERSION:
         raise SpliceError(f"'{run_file}' is not a splice run record of schema version {RUN_SCHEMA_VERSION}")
+    problems = [f"{key} must be {what}" for key, (kinds, what) in _RUN_FIELDS.items()
+                if not isinstance(info.get(key), kinds) or isinstance(info.get(key), bool)]
+    if problems:
+        raise SpliceError(f"'{run_file}' is damaged: {'; '.join(problems)}; start a new run rather than "
+                          "editing run.json by hand")
     return info
+
+
+# the run.json fields a resume reads, with the types it accepts (None: the field may be null)
+_RUN_FIELDS: dict[str, tuple[tuple[type, ...], str]] = {
+    "model": ((str,), "a string"),
+    "model_kwargs": ((dict, type(None)), "an object or null"),
+    "model_weights": ((str, type(None)), "a string or null"),
+    "data": ((str,), "a string"),
+    "input_shape": ((list, type(None)), "a list or null"),
+    "base_sha256_start": ((str,), "a string"),
+}
 
 
 def prepare_folder(ctx, out: Path | None, resume: Path | None) -> tuple[Path, dict | None]:
@@ -142,6 +161,6 @@ def prepare_folder(ctx, out: Path | None, resume: Path | None) -> tuple[Path, di
 
         dist.barrier()
     if ctx.is_main:
-        out.mkdir(parents=True, exist_ok=True)
+        make_dir(out)
     distributed.broadcast_flag(ctx, False)
     return out, None

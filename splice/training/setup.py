@@ -21,7 +21,7 @@ from ..surgery import WARP_PREFIX, warps_of
 from .batches import mix
 from .checkpoint import CHECKPOINT_NAME, load_checkpoint
 from .options import RecipeOverrides
-from .runfolder import RECIPE_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe
+from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe
 
 __all__ = ["Request", "resolve", "load_model", "open_splits", "reference_images", "normalisation", "run_info"]
 
@@ -75,12 +75,14 @@ def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: Recip
     check_same("data", data, info["data"], run_dir)
     if model is None and info["model"] == "<module>":
         raise SpliceError(f"run '{run_dir}' was started from an nn.Module object; pass the same model again to resume")
-    # the architecture must be rebuilt exactly as it was: reuse the recorded builder options
+    # the architecture must be rebuilt exactly as it was: reuse the recorded builder options. A model taken
+    # from run.json names code from a file, so it passes the gate of splice.sources.check_spec
     mo = model_options
     mo = dataclasses.replace(
         mo, kwargs=mo.kwargs if mo.kwargs is not None else info.get("model_kwargs") or None,
         input_shape=mo.input_shape if mo.input_shape is not None else info.get("input_shape"),
-        weights=mo.weights if mo.weights is not None else info.get("model_weights"))
+        weights=mo.weights if mo.weights is not None else info.get("model_weights"),
+        origin=run_dir / RUN_FILE if model is None else mo.origin)
     ckpt = load_checkpoint(run_dir / CHECKPOINT_NAME) if (run_dir / CHECKPOINT_NAME).is_file() else None
     return Request(model if model is not None else info["model"], recorded, info["data"], mo, info, ckpt)
 

@@ -33,6 +33,7 @@ that exact batch and stops; ``--resume RUN`` carries on from there.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import threading
@@ -75,6 +76,11 @@ class _StopFlag:
     def __exit__(self, *exc) -> None:
         for sig, old in self._old.items():
             signal.signal(sig, old)
+
+
+def _remove_if_empty(folder: Path) -> None:
+    with contextlib.suppress(OSError):
+        folder.rmdir()
 
 
 def _set_deterministic(mode: bool) -> None:
@@ -134,9 +140,15 @@ def tune(
         try:
             # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards
             with torch.random.fork_rng(devices=cuda):
-                run = _set_up(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume,
-                              overrides=overrides or RecipeOverrides(),
-                              model_options=model_options or ModelOptions(), run_options=run_options)
+                fresh = out is not None and resume is None and not Path(out).exists()
+                try:
+                    run = _set_up(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume,
+                                  overrides=overrides or RecipeOverrides(),
+                                  model_options=model_options or ModelOptions(), run_options=run_options)
+                except BaseException:
+                    if fresh and ctx.is_main:  # a run that never started leaves no folder behind
+                        _remove_if_empty(Path(out))
+                    raise
                 return _train(run, run_options)
         finally:
             _set_deterministic(previous)

@@ -10,7 +10,7 @@ import torch
 
 from .._io import state_dict_sha256
 from ..errors import SpliceError
-from ..manifest import SpliceInfo
+from ..manifest import MANIFEST_NAME, SpliceInfo
 from ..sources import load_source
 from .probe import _bitwise_equal
 from .report import CheckResult
@@ -18,7 +18,7 @@ from .report import CheckResult
 __all__: list[str] = []
 
 
-def _source_state(info: SpliceInfo, input_shape) -> tuple[dict | None, str]:
+def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tuple[dict | None, str]:
     """The source checkpoint's state dict, or ``None`` and the reason it is unavailable."""
     path = info.source_weights_path
     if path is None:
@@ -27,8 +27,10 @@ def _source_state(info: SpliceInfo, input_shape) -> tuple[dict | None, str]:
     if not Path(path).is_file():
         return None, f"the source weights file '{path}' is no longer on disk, so only hashes are compared"
     try:
+        # a record read from a folder names its spec from a file: the same gate as opening the folder
+        origin = None if info.folder is None else Path(info.folder) / MANIFEST_NAME
         src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape, warn_random=False,
-                          leaves=info.leaves)
+                          leaves=info.leaves, origin=origin, trust_code=trust_code)
     except SpliceError as exc:
         return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
     return dict(src.model.state_dict()), f"compared with '{path}'"
@@ -53,7 +55,7 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             "missing": missing, "unexpected": extra}
 
 def _provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
-                    input_shape) -> CheckResult:
+                    input_shape, trust_code: bool = False) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
     source = info.source_weights_sha256
     tuning = info.tuning
@@ -71,7 +73,7 @@ def _provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], ac
         return CheckResult("provenance", True, numbers,
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…){note}",
                            f"sha256 {actual[:12]}… = source")
-    state, how = _source_state(info, input_shape)
+    state, how = _source_state(info, input_shape, trust_code)
     if state is not None:
         diff = _tensor_diff(base_state, state)
         numbers["diff"] = diff

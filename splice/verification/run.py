@@ -19,6 +19,7 @@ from ..compare import compare_outputs, detached, first_rows, flatten_outputs
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
+from ..limits import check_fits, tensor_bytes
 from ..store import base_part, open_folder
 from ..surgery import warps_of
 from .gradients import _gradients, _gradients_row, _head_params, _onnx_row
@@ -53,14 +54,15 @@ class _Options:
     exporter: str
     seed: int
     tol: float | None
+    trust_code: bool = False
 
     @classmethod
-    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol) -> _Options:
+    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol, trust_code=False) -> _Options:
         dt = _resolve_dtype(dtype)
         _check_batch(batch)
         if onnx:
             check_opset(opset, exporter)
-        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol)
+        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol, bool(trust_code))
 
 
 def _info_of(spliced: nn.Module, info: SpliceInfo | Mapping | None) -> SpliceInfo:
@@ -160,6 +162,15 @@ def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tu
     return result
 
 
+def _check_probe_fits(info: SpliceInfo, opts: _Options) -> None:
+    """Refuse a probe batch that cannot fit, before allocating it: the input and every warped activation, kept
+    for the gradient check, about three times over (both models, and the backward pass; a rule of thumb,
+    common practice, no source)."""
+    shapes = [info.input_shape, *(p.shape for p in info.points if p.shape)]
+    check_fits(3 * tensor_bytes(shapes, opts.dtype, opts.batch), f"a probe batch of {opts.batch}",
+               "pass a smaller --batch")
+
+
 def _in_dtype(base, spliced, dtype: torch.dtype, owned: bool):
     current = next(iter(spliced.parameters()), None)
     if current is not None and current.dtype != dtype:
@@ -175,7 +186,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
                 lap: _Laps) -> VerifyReport:
     base_state = base_part(spliced.state_dict())
     meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
-    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape)
+    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
+                                 trust_code=opts.trust_code)
     lap("provenance")
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
     warps = warps_of(spliced)
@@ -222,7 +234,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
 
 def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Mapping | None = None, images=None,
                   batch: int = 1, dtype="float32", onnx: bool = False, opset: int = 17, seed: int = 0,
-                  exporter: str = "torchscript", tol: float | None = None) -> VerifyReport:
+                  exporter: str = "torchscript", tol: float | None = None, trust_code: bool = False) -> VerifyReport:
     """Run the checks on a base and a spliced model in memory (neither is changed).
 
     ``info`` defaults to the :class:`~splice.manifest.SpliceInfo` the spliced
@@ -233,7 +245,8 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
     """
     lap = _Laps()
     info = _info_of(spliced, info)
-    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol)
+    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol,
+                            trust_code=trust_code)
     files = None
     if images is not None and not isinstance(images, torch.Tensor):
         images, files = _read_images(images, info.input_shape, info.normalisation)
@@ -245,7 +258,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
 
 def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False,
            opset: int = 17, seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript",
-           tol: float | None = None) -> VerifyReport:
+           tol: float | None = None, trust_code: bool = False) -> VerifyReport:
     """Certify a spliced folder against its base, rebuilt from the manifest.
 
     Returns a :class:`VerifyReport`; ``report.passed`` is ``True`` only when
@@ -260,10 +273,12 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     """
     lap = _Laps()
     folder = Path(folder)
-    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol)
+    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol,
+                            trust_code=trust_code)
     # the tensors stay backed by the mapped file: both models live only as long as this call
-    opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False)
+    opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False, trust_code=trust_code)
     info = opened.info
+    _check_probe_fits(info, opts)
     files = images_t = None
     if images is not None:
         images_t, files = _read_images(images, info.input_shape, info.normalisation)

@@ -3,7 +3,7 @@
 - :mod:`~splice.warps.families`: :class:`WarpConfig` and the theta -> matrix maths;
 - :mod:`~splice.warps.grids`: pure sampling-grid maths (base grid, matrices, TPS);
 - :mod:`~splice.warps.head`: the localisation head and its size formula;
-- :mod:`~splice.warps.module`: the :class:`Warp` module and :func:`warp_cost`.
+- :mod:`~splice.warps.module`: the :class:`Warp` module, :func:`warp_cost` and :func:`warp_bytes`.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ from splice.warps.families import (
     identity_theta,
     theta_to_matrix,
 )
-from splice.warps.module import Warp, warp_cost
+from splice.warps.module import Warp, warp_bytes, warp_cost
 
 __all__ = [
     "FAMILIES",
@@ -35,4 +35,5 @@ __all__ = [
     "identity_theta",
     "theta_to_matrix",
     "warp_cost",
+    "warp_bytes",
 ]

@@ -24,7 +24,7 @@ from splice.warps.families import (
 )
 from splice.warps.head import LocalisationHead, head_macs, head_param_count
 
-__all__ = ["SAMPLER_TAPS", "Warp", "needs_rounding_correction", "warp_cost"]
+__all__ = ["SAMPLER_TAPS", "Warp", "needs_rounding_correction", "warp_cost", "warp_bytes"]
 
 # Input pixels read per output element and channel by grid_sample: one
 # multiply-accumulate per tap. Bilinear reads a 2x2 neighbourhood, bicubic 4x4.
@@ -73,6 +73,22 @@ def _check_shape(name: str, shape: Any) -> tuple[int, int, int]:
             "without the batch dimension, e.g. (3, 32, 32)."
         )
     return (int(shape[0]), int(shape[1]), int(shape[2]))
+
+
+def warp_bytes(config: WarpConfig, shape: tuple[int, int, int], loc_shape: tuple[int, int, int] | None = None,
+               dtype: torch.dtype | None = None) -> int:
+    """Peak bytes of building ``Warp(config, shape, loc_shape, dtype=dtype)``, from the shapes alone.
+
+    The head's parameters (:func:`warp_cost`) plus the grid buffers, which are
+    computed in float64 and then rounded once: ``3 H W`` values for the base
+    grid and, for tps, ``H W (K^2 + 3)`` for the kernel, each held in float64
+    and in ``dtype`` while it is built.
+    """
+    size = torch.empty((), dtype=dtype or torch.get_default_dtype()).element_size()
+    params, _ = warp_cost(config, shape, loc_shape)
+    _, h, w = shape
+    per_pixel = 3 + (config.tps_k ** 2 + 3 if config.family == "tps" else 0)
+    return params * size + h * w * per_pixel * (8 + size)
 
 
 def warp_cost(
