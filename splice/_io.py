@@ -100,12 +100,15 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
 
     Yields the temporary folder. If the body raises, the temporary folder is
     removed and ``target`` is left exactly as it was. With ``overwrite=True`` an
-    existing ``target`` is replaced only after the new one is complete.
+    existing ``target`` is replaced only after the new one is complete, and only
+    when splice wrote it (:func:`splice.folders.check_replaceable`): a spliced
+    folder or a run folder that no live process is writing; anything else is refused.
 
     >>> with atomic_dir("out/model", overwrite=True) as tmp:  # doctest: +SKIP
     ...     (tmp / "a.txt").write_text("hi")
     """
     from .errors import SpliceError
+    from .folders import check_replaceable
 
     target = Path(target)
     if target.exists() and not overwrite:
@@ -113,6 +116,7 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
             f"output folder '{target}' already exists; pass --overwrite "
             "(overwrite=True) to replace it, or choose another folder"
         )
+    check_replaceable(target)  # only a folder splice wrote, and not while a run writes to it
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
     os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes 0700

@@ -2,8 +2,8 @@
 
 Each sub-command parses its options, calls one library function, and renders
 the result. Library errors (:class:`~splice.errors.SpliceError`) become one line
-on stderr with exit code 2; a failed check exits 1; ``--debug`` shows the
-traceback.
+on stderr with exit code 2; a failed check (or a diverged training run) exits 1;
+``--debug`` shows the traceback.
 """
 
 from __future__ import annotations
@@ -375,7 +375,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except CheckFailed as exc:
         if args.debug:
             raise
-        print(f"splice {args.command}: check failed: {exc}", file=sys.stderr)
+        print(f"splice {args.command}: {exc.label}: {exc}", file=sys.stderr)
         return EXIT_CHECK_FAILED
     except SpliceError as exc:
         if args.debug:
