@@ -21,6 +21,7 @@ __all__ = [
     "atomic_write_text",
     "atomic_write_json",
     "atomic_dir",
+    "recover_dirs",
     "file_sha256",
     "state_dict_sha256",
     "json_safe",
@@ -137,6 +138,35 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def recover_dirs(parent: str | os.PathLike) -> list[str]:
+    """Tidy ``parent`` after a process died inside :func:`atomic_dir` or :func:`atomic_write_bytes`.
+
+    A death between the two renames of a replacement leaves the old folder at
+    ``.NAME.old-PID`` and no ``NAME``: the old folder is moved back. Temporary
+    files and folders (``.NAME.*.tmp``) and old folders whose target exists are
+    removed. Call it only while no other process writes to ``parent`` (under its
+    lock). Returns the names restored.
+    """
+    parent = Path(parent)
+    restored = []
+    for old in sorted(parent.glob(".*.old-*")):
+        target = parent / old.name[1:].rsplit(".old-", 1)[0]
+        if old.is_dir() and not target.exists():
+            os.replace(old, target)
+            restored.append(target.name)
+        else:
+            shutil.rmtree(old, ignore_errors=True)
+    for tmp in parent.glob(".*.tmp"):
+        if tmp.is_dir():
+            shutil.rmtree(tmp, ignore_errors=True)
+        else:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+    if restored:
+        _fsync_dir(parent)
+    return restored
 
 
 def file_sha256(path: str | os.PathLike) -> str:

@@ -131,7 +131,8 @@ class FolderLock:
         self.stale: dict | None = None  # the record of a dead writer whose lock this one replaced
         self._fd: int | None = None
 
-    def _busy(self, info: dict) -> FolderBusy:
+    def busy(self, info: dict) -> FolderBusy:
+        """The error that says who holds this lock."""
         return FolderBusy(
             f"'{self.folder}' is in use by {_describe(info)}, started {info.get('started', '?')}; wait for it "
             f"to finish or stop it, or choose another folder (lock file {self.path})"
@@ -145,13 +146,13 @@ class FolderLock:
             if taken is False:
                 info = _read_lock(self.path)
                 os.close(fd)
-                raise self._busy(info)
+                raise self.busy(info)
             if taken is None:  # no flock here: the recorded process id decides
                 info = _read_lock(self.path)
                 pid = int(info.get("pid", 0) or 0)
                 if pid != os.getpid() and _alive(pid) and info.get("host") in (None, socket.gethostname()):
                     os.close(fd)
-                    raise self._busy(info)
+                    raise self.busy(info)
             with contextlib.suppress(OSError):
                 if os.fstat(fd).st_ino == os.stat(self.path).st_ino:
                     return fd

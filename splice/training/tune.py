@@ -33,6 +33,7 @@ that exact batch and stops; ``--resume RUN`` carries on from there.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import threading
@@ -42,6 +43,7 @@ from typing import Any
 
 import torch
 
+from ..errors import SpliceError, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
 from ..recipes import Recipe
 from . import distributed
@@ -49,7 +51,7 @@ from .epochs import train
 from .options import RecipeOverrides, RunOptions
 from .runfolder import prepare_folder, start_files, write_run_info
 from .setup import load_model, normalisation, open_splits, resolve, run_info
-from .state import Run
+from .state import Run, TuneInterrupted
 
 __all__ = ["tune", "tune_keywords"]
 
@@ -132,11 +134,13 @@ def tune(
             _set_deterministic(True)
         cuda = [ctx.device.index or 0] if ctx.device.type == "cuda" else []
         try:
-            # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards
-            with torch.random.fork_rng(devices=cuda):
+            # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards;
+            # the run folder's lock is held until the run ends, however it ends
+            with torch.random.fork_rng(devices=cuda), contextlib.ExitStack() as locks:
                 run = _set_up(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume,
                               overrides=overrides or RecipeOverrides(),
-                              model_options=model_options or ModelOptions(), run_options=run_options)
+                              model_options=model_options or ModelOptions(), run_options=run_options,
+                              locks=locks)
                 return _train(run, run_options)
         finally:
             _set_deterministic(previous)
@@ -154,10 +158,10 @@ def tune_keywords(model: Any = None, *, recipe=None, data=None, out=None, resume
 
 
 def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
-            run_options: RunOptions) -> Run:
-    """Resolve the request, build the model and the data, write (or update) the run record."""
+            run_options: RunOptions, locks: contextlib.ExitStack) -> Run:
+    """Lock the run folder, resolve the request, build the model and the data, write (or update) the run record."""
     run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
-                                   Path(resume) if resume is not None else None)
+                                   Path(resume) if resume is not None else None, locks)
     req = resolve(ctx, run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
                   model_options=model_options)
     rec = req.recipe
@@ -183,7 +187,8 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
     return Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train_set, val=val_set, prepare=prepare,
                norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=req.data,
                shape=tuple(src.input_shape), where=where, ckpt=req.ckpt, workers=run_options.workers,
-               stop_after_steps=run_options.stop_after_steps, reference_override=overrides.reference)
+               stop_after_steps=run_options.stop_after_steps,
+               stop_after_pretrain_steps=run_options.stop_after_pretrain_steps, reference_override=overrides.reference)
 
 
 def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
@@ -192,4 +197,20 @@ def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
     show = run_options.progress and run.ctx.is_main
     with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
         run.bar, run.flag = bar, flag
-        return train(run)
+        try:
+            return train(run)
+        except TrainingDiverged as exc:
+            _mark(run, "diverged", diverged=exc.where)
+            raise
+        except TuneInterrupted:
+            raise  # run.json says "interrupted" once the checkpoint is written
+        except Exception as exc:
+            _mark(run, "failed", error=first_line(exc))
+            raise
+
+
+def _mark(run: Run, status: str, **extra) -> None:
+    """Record how the run ended in run.json (rank 0; a failing write must not hide the first error)."""
+    if run.ctx.is_main:
+        with contextlib.suppress(SpliceError, OSError):
+            write_run_info(run.run_dir, dict(run.info, status=status, **extra))
