@@ -121,6 +121,7 @@ def _cmd_points(args) -> int:
 
 
 def _cmd_insert(args) -> int:
+    from .folders import check_replaceable
     from .manifest import info_of
     from .store import save
     from .surgery import insert
@@ -129,6 +130,8 @@ def _cmd_insert(args) -> int:
     given = {"loc_from": args.loc_from, "sampler": args.sampler, "padding": args.padding,
              "head_width": args.head_width, "tps_k": args.tps_k}
     warp = WarpConfig.from_dict({"family": args.warp, **{k: v for k, v in given.items() if v is not None}})
+    if args.overwrite:
+        check_replaceable(args.out)  # before any work (save checks again)
     src = _source(args)
     spliced = insert(src, at=args.at, warp=warp, leaves=_leaves(args, src), force=args.force)
     folder = save(spliced, args.out, overwrite=args.overwrite)
