@@ -11,9 +11,16 @@ The run folder (``out``)::
       run.json          what was run: model, data, recipe name, world size, status (schema version 1)
       recipe.toml       the resolved recipe, overrides applied (load it with --recipe RUN/recipe.toml)
       metrics.jsonl     one JSON row per evaluation (see below)
-      checkpoint.pt     resumable state, rewritten atomically every epoch (torch.load(weights_only=True))
+      checkpoint.pt     resumable state, rewritten atomically every epoch and every warp pre-training
+                        epoch, only by a finite state (torch.load(weights_only=True))
       best/  last/      splice folders (weights.safetensors + splice.json), the best by validation
                         accuracy and the latest; plain folders for ``baseline`` runs
+      .splice.lock      while a run writes the folder (see :class:`splice.folders.FolderLock`)
+
+``run.json``'s ``status``: ``running``, ``finished``, ``stopped early``,
+``interrupted``, ``diverged`` (a NaN or infinite loss or weight: the run
+raises :class:`~splice.errors.TrainingDiverged`, exit 1, and the checkpoint
+and ``last/`` keep the last finite state) or ``failed`` (``error`` names why).
 
 A metrics row holds ``phase`` (``start``, ``pretrain`` or ``epoch``), ``epoch``
 (epochs completed), ``step`` (optimiser steps so far), ``loss`` (mean training
@@ -182,6 +189,7 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
         if ctx.is_main:
             start_files(run_dir, rec, info)
     elif ctx.is_main:
+        info = {k: v for k, v in info.items() if k not in ("diverged", "error")}
         info["status"] = "running"
         write_run_info(run_dir, info)
     return Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train_set, val=val_set, prepare=prepare,
