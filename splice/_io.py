@@ -22,6 +22,7 @@ __all__ = [
     "atomic_write_json",
     "atomic_dir",
     "make_dir",
+    "recover_dirs",
     "file_sha256",
     "state_dict_sha256",
     "json_safe",
@@ -143,12 +144,15 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
 
     Yields the temporary folder. If the body raises, the temporary folder is
     removed and ``target`` is left exactly as it was. With ``overwrite=True`` an
-    existing ``target`` is replaced only after the new one is complete.
+    existing ``target`` is replaced only after the new one is complete, and only
+    when splice wrote it (:func:`splice.folders.check_replaceable`): a spliced
+    folder or a run folder that no live process is writing; anything else is refused.
 
     >>> with atomic_dir("out/model", overwrite=True) as tmp:  # doctest: +SKIP
     ...     (tmp / "a.txt").write_text("hi")
     """
     from .errors import SpliceError
+    from .folders import check_replaceable
 
     target = Path(target)
     if target.exists() and not overwrite:
@@ -156,6 +160,7 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
             f"output folder '{target}' already exists; pass --overwrite "
             "(overwrite=True) to replace it, or choose another folder"
         )
+    check_replaceable(target)  # only a folder splice wrote, and not while a run writes to it
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
@@ -193,6 +198,35 @@ def _settle(folder: Path) -> None:
             os.chmod(f, mode)
             with open(f, "rb") as fh:
                 os.fsync(fh.fileno())
+
+
+def recover_dirs(parent: str | os.PathLike) -> list[str]:
+    """Tidy ``parent`` after a process died inside :func:`atomic_dir` or :func:`atomic_write_bytes`.
+
+    A death between the two renames of a replacement leaves the old folder at
+    ``.NAME.old-PID`` and no ``NAME``: the old folder is moved back. Temporary
+    files and folders (``.NAME.*.tmp``) and old folders whose target exists are
+    removed. Call it only while no other process writes to ``parent`` (under its
+    lock). Returns the names restored.
+    """
+    parent = Path(parent)
+    restored = []
+    for old in sorted(parent.glob(".*.old-*")):
+        target = parent / old.name[1:].rsplit(".old-", 1)[0]
+        if old.is_dir() and not target.exists():
+            os.replace(old, target)
+            restored.append(target.name)
+        else:
+            shutil.rmtree(old, ignore_errors=True)
+    for tmp in parent.glob(".*.tmp"):
+        if tmp.is_dir():
+            shutil.rmtree(tmp, ignore_errors=True)
+        else:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+    if restored:
+        _fsync_dir(parent)
+    return restored
 
 
 def file_sha256(path: str | os.PathLike) -> str:

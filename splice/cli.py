@@ -2,8 +2,8 @@
 
 Each sub-command parses its options, calls one library function, and renders
 the result. Library errors (:class:`~splice.errors.SpliceError`) become one line
-on stderr with exit code 2; a failed check exits 1; ``--debug`` shows the
-traceback.
+on stderr with exit code 2; a failed check (or a diverged training run) exits 1;
+``--debug`` shows the traceback.
 """
 
 from __future__ import annotations
@@ -139,6 +139,7 @@ def _cmd_points(args) -> int:
 
 
 def _cmd_insert(args) -> int:
+    from .folders import check_replaceable
     from .manifest import info_of
     from .store import save
     from .surgery import insert
@@ -147,6 +148,8 @@ def _cmd_insert(args) -> int:
     given = {"loc_from": args.loc_from, "sampler": args.sampler, "padding": args.padding,
              "head_width": args.head_width, "tps_k": args.tps_k}
     warp = WarpConfig.from_dict({"family": args.warp, **{k: v for k, v in given.items() if v is not None}})
+    if args.overwrite:
+        check_replaceable(args.out)  # before any work (save checks again)
     src = _source(args)
     spliced = insert(src, at=args.at, warp=warp, leaves=_leaves(args, src), force=args.force)
     folder = save(spliced, args.out, overwrite=args.overwrite)
@@ -405,7 +408,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except CheckFailed as exc:
         if args.debug:
             raise
-        print(f"splice {args.command}: check failed: {exc}", file=sys.stderr)
+        print(f"splice {args.command}: {exc.label}: {exc}", file=sys.stderr)
         return EXIT_CHECK_FAILED
     except SpliceError as exc:
         if args.debug:

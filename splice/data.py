@@ -413,7 +413,12 @@ def _load_image(path: Path, input_shape: Sequence[int]) -> Tensor:
             if im.mode in ("I", "F") or im.mode.startswith("I;16"):
                 # high bit depth grey: scale 16-bit values to [0, 1], keep float images as they are
                 scale = 1.0 if im.mode == "F" else 1.0 / 65535.0
-                grey = Image.fromarray(np.asarray(im.convert("F"), dtype=np.float32) * np.float32(scale), mode="F")
+                raw = np.asarray(im.convert("F"), dtype=np.float32)
+                if not np.isfinite(raw).all():  # only float images can hold these; 8/16-bit ones cannot
+                    bad = int(np.size(raw) - np.count_nonzero(np.isfinite(raw)))
+                    raise DataError(f"image {path} holds {bad} NaN or infinite pixel value(s); a single one turns "
+                                    "the training loss into NaN. Fix or remove the file.")
+                grey = Image.fromarray(raw * np.float32(scale), mode="F")
                 grey = grey.resize((w, h), Image.Resampling.BILINEAR)
                 arr = np.clip(np.asarray(grey, dtype=np.float32), 0.0, 1.0)[None]
                 if c == 3:

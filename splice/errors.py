@@ -27,6 +27,7 @@ __all__ = [
     "CheckFailed",
     "ResourceError",
     "WriteError",
+    "TrainingDiverged",
     "SpliceWarning",
     "RandomWeightsWarning",
     "suggest",
@@ -99,6 +100,22 @@ class WriteError(SpliceError, OSError):
 
 class CheckFailed(SpliceError):
     """An equivalence or parity check failed (``splice verify`` exits 1, not 2)."""
+
+    label = "check failed"  # how the CLI introduces the one-line message
+
+
+class TrainingDiverged(CheckFailed):
+    """A loss or a weight became NaN or infinite during training (``splice tune`` exits 1).
+
+    ``where`` says when: ``{"phase", "epoch", "step", "what"}``; the run folder
+    keeps the last finite state.
+    """
+
+    label = "training diverged"
+
+    def __init__(self, message: str, where: dict | None = None) -> None:
+        super().__init__(message)
+        self.where = dict(where or {})
 
 
 class SpliceWarning(UserWarning):

@@ -414,12 +414,12 @@ def test_the_property_tests_start_from_good_records(tmp_path):
     """The random records are mutations of records that load, so the loaders get past their first check."""
     from splice.manifest import SpliceInfo
     from splice.recipes import load_recipe
-    from splice.training.runfolder import prepare_folder
+    from splice.training.runfolder import read_run_info
 
     assert SpliceInfo.from_manifest(_good_manifest()).point_names == ["input"]
     assert load_recipe(_GOOD_RECIPE).mode == "joint"
     (tmp_path / "run.json").write_text(json.dumps(_GOOD_RUN))
-    assert prepare_folder(None, None, tmp_path)[1]["model"] == TRAY
+    assert read_run_info(tmp_path)["model"] == TRAY
 
 
 @_PROPERTY
@@ -444,14 +444,14 @@ def test_random_manifests_raise_only_splice_errors(tmp_path, data):
 @given(data=st.data())
 def test_random_run_records_raise_only_splice_errors(tmp_path, data):
     from splice.errors import SpliceError
-    from splice.training.runfolder import prepare_folder
+    from splice.training.runfolder import read_run_info
 
     record = _mutated(_GOOD_RUN, data)
     run = tmp_path / "run"
     run.mkdir(exist_ok=True)
     (run / "run.json").write_text(json.dumps(record))
     try:
-        folder, info = prepare_folder(None, None, run)
+        info = read_run_info(run)
     except SpliceError:
         return
     assert isinstance(info["model"], str) and isinstance(info["data"], str)

@@ -22,11 +22,11 @@ from .loop import Stepper, ThetaTap
 from .params import frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
-from .recording import checkpoint, finish, record, stopped
+from .recording import checkpoint, diverged, finish, record, stopped
 from .runfolder import truncate_metrics
 from .schedule import lr_factor
 from .setup import reference_images
-from .state import Run, TuneInterrupted
+from .state import Run
 
 __all__ = ["train"]
 
@@ -49,8 +49,11 @@ def train(run: Run) -> dict[str, Any]:
         if run.ckpt is None and run.ctx.is_main:
             truncate_metrics(run.run_dir, 0)
         run.t_run = time.monotonic()
-        if run.ckpt is None:
-            _start(run, stepper, frozen)
+        pretraining = run.ckpt.get("pretrain") if run.ckpt is not None else None
+        if run.ckpt is None or pretraining is not None:
+            summary = _start(run, stepper, frozen, pretraining)
+            if summary is not None:  # stopped during pre-training
+                return summary
         return _epochs(run, stepper, frozen, start_epoch, start_batch)
     finally:
         if tap is not None:
@@ -101,6 +104,7 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
     run.metrics_rows = int(ckpt["metrics_rows"])
     if ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
+    run.last_good = {"epoch": start_epoch, "step": run.step}
     if start_batch and ctx.is_main:  # the partial epoch's totals (summed over ranks) live on rank 0
         ls, cor, seen, run.epoch_time = ckpt["epoch_totals"]
         stepper.loss_sum.fill_(ls)
@@ -108,38 +112,48 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
         stepper.seen = int(seen)
     elif start_batch:
         run.epoch_time = float(ckpt["epoch_totals"][3])
-    run.bar.line(f"resuming {run.run_dir} at epoch {start_epoch + 1}, batch {start_batch}, step {run.step}")
+    pre = ckpt.get("pretrain")
+    if pre is not None:
+        run.bar.line(f"resuming {run.run_dir} in warp pre-training at epoch {int(pre['epoch']) + 1}, "
+                     f"batch {int(pre['batch'])}, step {int(pre['step'])}")
+    else:
+        run.bar.line(f"resuming {run.run_dir} at epoch {start_epoch + 1}, batch {start_batch}, step {run.step}")
     return start_epoch, start_batch
 
 
-def _start(run: Run, stepper: Stepper, frozen: _Frozen) -> None:
-    """A fresh run: pre-train the warp heads (if the recipe does), record the starting point, checkpoint."""
+def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = None) -> dict[str, Any] | None:
+    """A fresh run: pre-train the warp heads (if the recipe does; ``resume`` continues a pre-training
+    checkpoint), record the starting point, checkpoint. Returns a summary if stopped during pre-training."""
     ctx, rec = run.ctx, run.rec
     if not (run.warps and rec.pretrain.epochs > 0):
         record(run, "start", 0)
         checkpoint(run, stepper, epoch=0, batch=0)
-        return
+        return None
     ref, ref_name = reference_images(rec, run.data, run.train, run.shape, run.reference_override)
     set_requires_grad(run.net, frozen.names, base_frozen=True)
+    shown = []
 
-    def on_step(i, total, loss):
-        if i == 1:
+    def on_step(i, total, loss) -> bool:
+        if not shown:
             run.bar.start("pre-train warps", total)
+            shown.append(True)
         run.bar.update(i, **{"grid loss": loss})
-        if distributed.broadcast_flag(ctx, run.flag.raised):  # every rank stops at the same step
-            raise TuneInterrupted("interrupted during warp pre-training")
-    try:
-        res = pretrain_warps_(run.net, run.warps, ref, rec.pretrain, seed=rec.seed, prepare=run.prepare,
-                              rank=ctx.rank, world=ctx.world_size, reduce_grads=grad_reducer(ctx),
-                              on_step=on_step, workers=run.workers)
-    except TuneInterrupted:
-        run.bar.line(f"interrupted during warp pre-training (no checkpoint yet); "
-                     f"'splice tune --resume {run.run_dir}' starts the run again from the beginning")
-        raise
+        wanted = run.flag.raised or (run.stop_after_pretrain_steps is not None and i >= run.stop_after_pretrain_steps)
+        return distributed.broadcast_flag(ctx, wanted)  # every rank stops at the same step
+
+    def on_checkpoint(state: dict) -> None:  # the pre-training loop's state; the heads are in the model
+        checkpoint(run, stepper, epoch=0, batch=0, extra={"pretrain": state})
+
+    res = pretrain_warps_(run.net, run.warps, ref, rec.pretrain, seed=rec.seed, prepare=run.prepare,
+                          rank=ctx.rank, world=ctx.world_size, reduce_grads=grad_reducer(ctx),
+                          on_step=on_step, workers=run.workers, resume=resume, on_checkpoint=on_checkpoint)
+    if res["stopped"]:
+        return stopped(run, 0, 0, where=f"warp pre-training step {res['steps']}")
     run.bar.finish(res["steps"])
     record(run, "pretrain", 0, loss=round(res["grid_loss"], 6),
            extra={"reference": ref_name, "pretrain_steps": res["steps"]})
     checkpoint(run, stepper, epoch=0, batch=0)
+    return None
 
 
 def _wrap(run: Run, base_frozen: bool) -> None:
@@ -211,7 +225,13 @@ def _batches(run: Run, stepper: Stepper, epoch: int, first: int) -> tuple[bool, 
         if run.bar.rich:
             _show(run, stepper, b, run.epoch_time + time.perf_counter() - t0)
         wanted = run.flag.raised or (run.stop_after_steps is not None and run.step >= run.stop_after_steps)
-        if distributed.broadcast_flag(ctx, wanted) if ctx.distributed else wanted:
+        bad = not stepper.finite
+        if ctx.distributed:  # one collective for both: every rank stops (or fails) at the same step
+            bad, wanted = (v > 0 for v in distributed.all_reduce_sum(ctx, [float(bad), float(wanted)]))
+        if bad:
+            loss = stepper.last_loss if stepper.last_loss is not None else "NaN or infinite on another process"
+            raise diverged(run, f"the training loss became {loss}", epoch + 1)
+        if wanted:
             stop = True
             if b + 1 < len(batches):  # mid-epoch: checkpoint this exact batch and stop
                 run.epoch_time += time.perf_counter() - t0

@@ -3,7 +3,10 @@
 Kept free of files, progress and process groups: :mod:`splice.training.epochs` owns those.
 A step is forward, loss (cross-entropy with label smoothing, plus the decaying
 identity regulariser on the warps), backward, optional gradient clipping and
-one optimiser step, under autocast + a gradient scaler on CUDA.
+one optimiser step, under autocast + a gradient scaler on CUDA. The step
+notes whether its loss was finite (:attr:`Stepper.finite`); the step itself
+is still taken, so that every process of a distributed run stays in step, and
+the loop stops before anything of that state is saved.
 """
 
 from __future__ import annotations
@@ -72,6 +75,8 @@ class Stepper:
         self.scaler = torch.amp.GradScaler("cuda") if amp else None
         self.tap = tap
         self.reg_weight = 0.0
+        self.finite = True  # the last step's loss was finite
+        self.last_loss: float | None = None  # the last step's loss when it was not
         self.reset_totals()
 
     def reset_totals(self) -> None:
@@ -92,6 +97,9 @@ class Stepper:
                 penalty = identity_penalty(self.tap.warps, self.tap.theta)
                 if penalty is not None:
                     total = loss + self.reg_weight * penalty
+        # one host sync per step: a NaN/Inf loss stops the run at this step (the caller decides how)
+        self.finite = bool(torch.isfinite(total.detach()))
+        self.last_loss = float(total.detach()) if not self.finite else None
         self.optimizer.zero_grad(set_to_none=True)
         if self.scaler is not None:
             self.scaler.scale(total).backward()

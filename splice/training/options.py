@@ -49,7 +49,8 @@ class RunOptions:
     nothing. ``workers``: data-loader processes for image folders.
     ``deterministic``: ``torch.use_deterministic_algorithms`` for the run
     (``None``: on for the CPU). ``stop_after_steps`` stops like Ctrl-C after
-    that many optimiser steps (tests and debugging).
+    that many optimiser steps (tests and debugging);
+    ``stop_after_pretrain_steps`` does the same during warp-head pre-training.
     """
 
     device: str | None = None
@@ -58,6 +59,7 @@ class RunOptions:
     workers: int = 0
     deterministic: bool | None = None
     stop_after_steps: int | None = None
+    stop_after_pretrain_steps: int | None = None
 
     def __post_init__(self) -> None:
         for name in ("quiet", "progress"):
@@ -69,4 +71,5 @@ class RunOptions:
             raise ValueError(f"RunOptions.workers must be an integer >= 0; got {self.workers!r} (--workers); "
                              "pass 0 to load the data in the main process")
         _optional_int("RunOptions", "stop_after_steps", self.stop_after_steps, 1)
+        _optional_int("RunOptions", "stop_after_pretrain_steps", self.stop_after_pretrain_steps, 1)
 

@@ -102,6 +102,14 @@ def grid_loss(warp: nn.Module, args: tuple, matrix: Tensor | None) -> Tensor:
     return (grid - target).pow(2).mean()
 
 
+def _finite(loss: Tensor, params: list[Tensor]) -> bool:
+    """The loss and every gradient are finite (after any cross-rank averaging, so all ranks agree)."""
+    if not bool(torch.isfinite(loss.detach())):
+        return False
+    grads = [p.grad for p in params if p.grad is not None]
+    return all(bool(torch.isfinite(g).all()) for g in grads)
+
+
 def pretrain_warps_(
     model: nn.Module,
     warps: Mapping[str, nn.Module],
@@ -113,8 +121,10 @@ def pretrain_warps_(
     rank: int = 0,
     world: int = 1,
     reduce_grads: Callable[[list[Tensor]], None] | None = None,
-    on_step: Callable[[int, int, float], None] | None = None,
+    on_step: Callable[[int, int, float], bool | None] | None = None,
     workers: int = 0,
+    resume: Mapping[str, Any] | None = None,
+    on_checkpoint: Callable[[dict[str, Any]], None] | None = None,
 ) -> dict[str, Any]:
     """Pre-train the heads of ``warps`` in place (the trailing ``_``); the base is not touched.
 
@@ -124,48 +134,115 @@ def pretrain_warps_(
     ``config.to_range()`` (seeded by ``(seed, epoch, batch, rank)``) and takes
     one AdamW step on the grid loss; the learning rate follows a cosine decay
     over all pre-training steps. ``reduce_grads`` averages gradients across
-    ranks under torchrun. Returns ``{"steps", "grid_loss", "images"}``.
+    ranks under torchrun. Returns ``{"steps", "grid_loss", "mean_grid_loss",
+    "images", "stopped"}``.
+
+    Resuming: ``on_checkpoint(state)`` is called at the end of every epoch and
+    when ``on_step`` returns True (a stop request; the loop then returns with
+    ``stopped=True``). ``state`` is the loop's whole state apart from the head
+    weights (which live in the model): ``epoch`` and ``batch`` to continue at,
+    ``step``, the optimiser's state dict and the running loss sums. Passing it
+    back as ``resume`` (with the model's weights restored) continues the run
+    exactly where it left off: the batches and distortions are pure functions
+    of ``(seed, epoch, batch, rank)`` and the learning rate of the step.
+
+    A non-finite grid loss or gradient raises
+    :class:`~splice.errors.TrainingDiverged` before the step is taken.
     """
-    spec = config.to_range()
-    params = [p for w in warps.values() for p in w.parameters() if p.requires_grad]
-    opt = torch.optim.AdamW(params, lr=config.lr, weight_decay=config.weight_decay)
+    loop = _Loop(model, warps, reference, config, seed=seed, prepare=prepare, rank=rank, world=world,
+                 reduce_grads=reduce_grads, workers=workers)
+    if resume is not None:
+        loop.load(resume)
     was_training = model.training
     model.eval()
-    n = len(reference)
-    per_rank = max(1, config.batch_size // max(1, world))
-    probe = prepare(_b.fetch(reference, torch.arange(min(2, n)))[0])
-    order = execution_order(model, warps, probe)
-    first, last = order[0], order[-1]
-    steps_per_epoch = len(_b.index_batches(_b.shard(torch.arange(n), rank, world), per_rank))
-    total = steps_per_epoch * config.epochs
-    step = 0
-    running, seen, recent = 0.0, 0, 0.0
     try:
-        for epoch in range(config.epochs):
-            mine = _b.shard(_b.epoch_order(seed, epoch, n, tag="pretrain-order"), rank, world)
-            batches = _b.index_batches(mine, per_rank)
-            for b, (images, _labels) in enumerate(_b.iterate(reference, batches, workers=workers)):
-                gen = _b.generator(seed, "pretrain-distort", epoch, b, rank)
-                distorted, meta = random_distort(images, spec, gen, fill=0.0)
-                x = prepare(distorted)
-                captured, _ = warp_inputs(model, warps, x, stop_after=last)
-                loss = sum(grid_loss(warps[name], captured[name], meta["matrix"] if name == first else None)
-                           for name in order)
-                for g in opt.param_groups:
-                    g["lr"] = config.lr * lr_factor("cosine", step, steps_per_epoch=steps_per_epoch,
-                                                    total_steps=total)
-                opt.zero_grad(set_to_none=True)
-                loss.backward()
-                if reduce_grads is not None:
-                    reduce_grads([p.grad for p in params if p.grad is not None])
-                opt.step()
-                value = float(loss.detach())
-                running += value * images.shape[0]
-                seen += images.shape[0]
-                recent = value if step == 0 else 0.9 * recent + 0.1 * value
-                step += 1
-                if on_step is not None:
-                    on_step(step, total, recent)
+        stopped = loop.run(on_step, on_checkpoint)
     finally:
         model.train(was_training)
-    return {"steps": step, "grid_loss": recent, "mean_grid_loss": running / max(1, seen), "images": seen}
+    return {"steps": loop.step, "grid_loss": loop.recent, "mean_grid_loss": loop.running / max(1, loop.seen),
+            "images": loop.seen, "stopped": stopped}
+
+
+class _Loop:
+    """The state of one pre-training run and its epochs."""
+
+    def __init__(self, model, warps, reference, config, *, seed, prepare, rank, world, reduce_grads, workers):
+        self.model, self.warps, self.reference, self.config = model, warps, reference, config
+        self.seed, self.prepare, self.rank, self.world = seed, prepare, rank, world
+        self.reduce_grads, self.workers = reduce_grads, workers
+        self.params = [p for w in warps.values() for p in w.parameters() if p.requires_grad]
+        self.opt = torch.optim.AdamW(self.params, lr=config.lr, weight_decay=config.weight_decay)
+        self.n = len(reference)
+        self.per_rank = max(1, config.batch_size // max(1, world))
+        self.steps_per_epoch = len(_b.index_batches(_b.shard(torch.arange(self.n), rank, world), self.per_rank))
+        self.total = self.steps_per_epoch * config.epochs
+        self.epoch, self.batch, self.step = 0, 0, 0
+        self.running, self.seen, self.recent = 0.0, 0, 0.0
+
+    def state(self) -> dict[str, Any]:
+        return {"epoch": self.epoch, "batch": self.batch, "step": self.step, "optimizer": self.opt.state_dict(),
+                "running": self.running, "seen": self.seen, "recent": self.recent, "total_steps": self.total}
+
+    def load(self, state: Mapping[str, Any]) -> None:
+        from ..errors import SpliceError
+
+        if int(state["total_steps"]) != self.total:
+            raise SpliceError(
+                f"the pre-training checkpoint was written for {int(state['total_steps'])} steps, but this run has "
+                f"{self.total}; resume with the data and recipe the run was started with"
+            )
+        self.epoch, self.batch, self.step = int(state["epoch"]), int(state["batch"]), int(state["step"])
+        self.opt.load_state_dict(state["optimizer"])
+        self.running, self.seen, self.recent = float(state["running"]), int(state["seen"]), float(state["recent"])
+
+    def run(self, on_step, on_checkpoint) -> bool:
+        """Train to the end (False) or to a stop request (True, after a checkpoint)."""
+        probe = self.prepare(_b.fetch(self.reference, torch.arange(min(2, self.n)))[0])
+        order = execution_order(self.model, self.warps, probe)
+        while self.epoch < self.config.epochs:
+            mine = _b.shard(_b.epoch_order(self.seed, self.epoch, self.n, tag="pretrain-order"), self.rank, self.world)
+            batches = _b.index_batches(mine, self.per_rank)
+            stop = False
+            for b, (images, _labels) in enumerate(
+                    _b.iterate(self.reference, batches[self.batch:], workers=self.workers), start=self.batch):
+                self._step(images, b, order)
+                self.batch = b + 1
+                stop = bool(on_step is not None and on_step(self.step, self.total, self.recent))
+                if stop and self.batch < len(batches):  # mid-epoch: checkpoint this exact batch
+                    if on_checkpoint is not None:
+                        on_checkpoint(self.state())
+                    return True
+            self.epoch, self.batch = self.epoch + 1, 0
+            if on_checkpoint is not None:
+                on_checkpoint(self.state())
+            if stop:
+                return True
+        return False
+
+    def _step(self, images: Tensor, b: int, order: list[str]) -> None:
+        from ..errors import TrainingDiverged
+
+        gen = _b.generator(self.seed, "pretrain-distort", self.epoch, b, self.rank)
+        distorted, meta = random_distort(images, self.config.to_range(), gen, fill=0.0)
+        captured, _ = warp_inputs(self.model, self.warps, self.prepare(distorted), stop_after=order[-1])
+        loss = sum(grid_loss(self.warps[name], captured[name], meta["matrix"] if name == order[0] else None)
+                   for name in order)
+        for g in self.opt.param_groups:
+            g["lr"] = self.config.lr * lr_factor("cosine", self.step, steps_per_epoch=self.steps_per_epoch,
+                                                 total_steps=self.total)
+        self.opt.zero_grad(set_to_none=True)
+        loss.backward()
+        if self.reduce_grads is not None:
+            self.reduce_grads([p.grad for p in self.params if p.grad is not None])
+        if not _finite(loss, self.params):
+            raise TrainingDiverged(
+                f"warp pre-training diverged: the grid loss or its gradient became {float(loss.detach())} at "
+                f"pre-training epoch {self.epoch + 1}/{self.config.epochs}, step {self.step + 1}; the checkpoint keeps "
+                "the last finite state. Lower [pretrain] lr in the recipe and start a new run",
+                {"phase": "pretrain", "epoch": self.epoch + 1, "step": self.step + 1, "what": "grid loss"})
+        self.opt.step()
+        value = float(loss.detach())
+        self.running += value * images.shape[0]
+        self.seen += images.shape[0]
+        self.recent = value if self.step == 0 else 0.9 * self.recent + 0.1 * value
+        self.step += 1

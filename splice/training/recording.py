@@ -9,6 +9,7 @@ from typing import Any
 import torch
 
 from .._io import atomic_write_text, state_dict_sha256
+from ..errors import TrainingDiverged
 from ..manifest import info_of
 from . import distributed
 from .checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
@@ -17,7 +18,40 @@ from .params import is_warp_name
 from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, writing
 from .state import Run, TuneInterrupted, unwrap
 
-__all__ = ["record", "checkpoint", "stopped", "finish"]
+__all__ = ["record", "checkpoint", "stopped", "finish", "nonfinite", "diverged"]
+
+
+def nonfinite(tensors) -> str | None:
+    """The name of the first floating-point tensor in ``tensors`` (a mapping) holding a NaN or an Inf, else None."""
+    for name, t in tensors.items():
+        if isinstance(t, torch.Tensor) and t.is_floating_point() and not bool(torch.isfinite(t).all()):
+            return name
+    return None
+
+
+def _optimizer_tensors(optimizer) -> dict:
+    return {f"optimizer state {k} of parameter {i}": v
+            for i, state in enumerate(optimizer.state.values()) for k, v in state.items()}
+
+
+def diverged(run: Run, what: str, epoch: int) -> TrainingDiverged:
+    """The one-line error of a run that turned non-finite at ``epoch`` (1-based) and the current step."""
+    good = run.last_good
+    keep = (f"checkpoint.pt and last/ keep the last finite state (epoch {good['epoch']}, step {good['step']})"
+            if good else "no checkpoint had been written yet")
+    return TrainingDiverged(
+        f"{what} at epoch {epoch}/{run.rec.epochs}, step {run.step}; {keep}. Lower the learning rate (--lr) "
+        "or set grad_clip in the recipe, then start a new run",
+        {"phase": "epoch", "epoch": epoch, "step": run.step, "what": what})
+
+
+def _check_finite(run: Run, epoch: int, *, optimizer: bool = False) -> None:
+    """Raise :class:`TrainingDiverged` if a weight (or optimiser state) is NaN or infinite: never save it."""
+    bad = nonfinite(unwrap(run.net_wrapped).state_dict())
+    if bad is None and optimizer:
+        bad = nonfinite(_optimizer_tensors(run.optimizer))
+    if bad is not None:
+        raise diverged(run, f"'{bad}' became NaN or infinite", epoch)
 
 
 def _evaluate(run: Run) -> tuple[float, float]:
@@ -76,7 +110,10 @@ def _line(run: Run, row: dict) -> str:
 
 def record(run: Run, phase: str, epoch: int, *, loss=None, train_acc=None, ips=None, extra=None) -> bool:
     """Evaluate, append a metrics row, save ``best`` (if better) and ``last``, log a line; True if improved."""
+    _check_finite(run, max(epoch, 1))
     val_loss, acc = _evaluate(run)
+    if not torch.isfinite(torch.tensor(val_loss)):
+        raise diverged(run, f"the validation loss became {val_loss}", max(epoch, 1))
     row = {"phase": phase, "epoch": epoch, "step": run.step, "loss": loss, "train_accuracy": train_acc,
            "accuracy": round(acc, 6), "val_loss": round(val_loss, 6), "lr": run.optimizer.param_groups[0]["lr"],
            "images_per_s": ips, "warp_distance": _warp_distances(run.warps),
@@ -95,8 +132,15 @@ def record(run: Run, phase: str, epoch: int, *, loss=None, train_acc=None, ips=N
 
 
 def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None = None) -> None:
-    """Write ``checkpoint.pt`` (rank 0): everything needed to continue at ``(epoch, batch)``."""
+    """Write ``checkpoint.pt`` (rank 0): everything needed to continue at ``(epoch, batch)``.
+
+    The state is checked first: a NaN or infinite weight or optimiser state
+    raises :class:`TrainingDiverged` and the previous checkpoint stays as it
+    was (it is replaced atomically, and only by a checked state).
+    """
+    _check_finite(run, max(1, epoch + (1 if batch else 0)), optimizer=True)
     if not run.ctx.is_main:
+        run.last_good = {"epoch": epoch, "step": run.step}
         return
     loss_sum, correct, seen = stepper.totals()
     payload = {
@@ -116,13 +160,15 @@ def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None 
     if extra:
         payload.update(extra)
     save_checkpoint(run.run_dir / CHECKPOINT_NAME, payload)
+    run.last_good = {"epoch": epoch, "step": run.step}
 
 
-def stopped(run: Run, epoch: int, batch: int) -> dict[str, Any]:
+def stopped(run: Run, epoch: int, batch: int, where: str | None = None) -> dict[str, Any]:
     """After a stop request: the checkpoint is written; record it, and raise for Ctrl-C / SIGTERM."""
     if run.ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="interrupted"))
-    where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
+    if where is None:
+        where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
     run.bar.line(f"stopped at {where} (step {run.step}); checkpoint written. "
                  f"Continue with: splice tune --resume {run.run_dir}")
     if run.flag.raised:

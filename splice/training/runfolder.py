@@ -3,6 +3,11 @@
 Rank 0 alone writes; every write goes through :mod:`splice._io` (atomic) or,
 for the append-only metrics file, is flushed and fsynced per row. A torn last
 metrics line (a crash mid-write) is skipped on reading and cut off on resume.
+
+Rank 0 holds the folder's lock (:class:`splice.folders.FolderLock`) from the
+moment it starts or resumes a run until the run ends, however it ends; a
+second run into a locked folder is refused, naming the process that holds it.
+``run.json``'s ``status`` is one of :data:`STATUSES`.
 """
 
 from __future__ import annotations
@@ -10,20 +15,24 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import sys
 from pathlib import Path
 from typing import Any
 
-from .._io import atomic_write_json, atomic_write_text, make_dir
+from .._io import atomic_write_json, atomic_write_text, make_dir, recover_dirs
 from ..errors import SpliceError
+from ..folders import LOCK_FILE, RUN_FILE, RUN_FORMAT, FolderLock, lock_holder
 from ..recipes import Recipe, recipe_to_toml
 
-__all__ = ["RUN_SCHEMA_VERSION", "RUN_FORMAT", "RUN_FILE", "RECIPE_FILE", "METRICS_FILE", "HASH_ENV",
+__all__ = ["RUN_SCHEMA_VERSION", "RUN_FORMAT", "RUN_FILE", "RECIPE_FILE", "METRICS_FILE", "HASH_ENV", "STATUSES",
            "read_metrics", "truncate_metrics", "append_metrics", "writing", "prepare_folder", "check_same",
-           "describe", "write_run_info", "start_files"]
+           "describe", "write_run_info", "start_files", "read_run_info"]
 
 RUN_SCHEMA_VERSION = 1
-RUN_FORMAT = "splice-run"
-RUN_FILE = "run.json"
+# running: a process is writing (or died: then no live lock; --resume continues); finished; stopped early
+# (patience); interrupted (Ctrl-C / SIGTERM, checkpoint written); diverged (a NaN/Inf loss or weight: the
+# checkpoint and last/ keep the last finite state); failed (any other error, named in "error")
+STATUSES = ("running", "finished", "stopped early", "interrupted", "diverged", "failed")
 RECIPE_FILE = "recipe.toml"
 METRICS_FILE = "metrics.jsonl"
 # Debug aid for the distributed tests: when set, every rank writes the sha256 of
@@ -102,6 +111,11 @@ def check_same(what: str, given: Any, recorded: Any, run: Path) -> None:
         )
 
 
+def read_run_info(resume: Path) -> dict:
+    """The checked run.json of the run folder ``resume`` (nothing is written)."""
+    return _read_info(resume)
+
+
 def _read_info(resume: Path) -> dict:
     run_file = resume / RUN_FILE
     if not run_file.is_file():
@@ -138,20 +152,54 @@ _RUN_FIELDS: dict[str, tuple[tuple[type, ...], str]] = {
 }
 
 
-def prepare_folder(ctx, out: Path | None, resume: Path | None) -> tuple[Path, dict | None]:
-    """The run folder, and its run.json when resuming (a fresh folder is created by rank 0)."""
+def _lock(ctx, folder: Path, locks: contextlib.ExitStack, check=None) -> None:
+    """Rank 0 takes the folder's lock (held until ``locks`` closes) and runs ``check`` under it;
+    every rank fails together if either fails."""
     from . import distributed
 
+    error: SpliceError | None = None
+    if ctx.is_main:
+        lock = FolderLock(folder, "splice tune")
+        try:
+            lock.acquire()
+            locks.callback(lock.release)
+            if check is not None:
+                check()
+        except SpliceError as exc:
+            error = exc
+        else:
+            if lock.stale:
+                print(f"splice tune: note: replaced the stale lock of process {lock.stale.get('pid')} "
+                      f"in '{folder}' (that process no longer runs)", file=sys.stderr)
+    if distributed.broadcast_flag(ctx, error is not None):
+        raise error or SpliceError(f"rank 0 could not lock the run folder '{folder}'; see its message")
+
+
+def _content(folder: Path) -> list[Path]:
+    return [p for p in folder.iterdir() if p.name != LOCK_FILE]
+
+
+def prepare_folder(ctx, out: Path | None, resume: Path | None,
+                   locks: contextlib.ExitStack) -> tuple[Path, dict | None]:
+    """The run folder, locked, and its run.json when resuming (a fresh folder is created by rank 0)."""
     if resume is not None:
         if out is not None and Path(out).resolve() != Path(resume).resolve():
             raise SpliceError(
                 f"--out {out} and --resume {resume} name different folders; a resumed run writes into "
                 "its own folder, so drop --out"
             )
+        _read_info(resume)  # a run folder at all?
+        # a run killed while replacing best/ or last/ left the old one aside: put it back
+        _lock(ctx, resume, locks, lambda: recover_dirs(resume))
         return resume, _read_info(resume)
     if out is None:
         raise SpliceError("tune needs a run folder: pass --out RUN (out=...), or --resume RUN to continue one")
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+    if out.exists() and not out.is_dir():
+        raise SpliceError(f"run folder '{out}' exists and is a file; choose another --out folder")
+    holder = lock_holder(out) if out.is_dir() else None
+    if holder is not None:
+        raise FolderLock(out).busy(holder)
+    if out.exists() and _content(out):
         raise SpliceError(
             f"run folder '{out}' already exists and is not empty; continue it with --resume {out}, "
             "or choose another --out folder"
@@ -162,5 +210,10 @@ def prepare_folder(ctx, out: Path | None, resume: Path | None) -> tuple[Path, di
         dist.barrier()
     if ctx.is_main:
         make_dir(out)
-    distributed.broadcast_flag(ctx, False)
+
+    def still_empty() -> None:  # another run may have got there between the check and the lock
+        if _content(out):
+            raise SpliceError(f"run folder '{out}' was filled by another run meanwhile; choose another --out folder")
+
+    _lock(ctx, out, locks, still_empty)
     return out, None

@@ -46,6 +46,7 @@ class Run:
     ckpt: dict | None = None
     workers: int = 0
     stop_after_steps: int | None = None
+    stop_after_pretrain_steps: int | None = None
     reference_override: str | None = None
 
     bar: Any = None  # splice.progress.Progress
@@ -63,3 +64,4 @@ class Run:
     epoch_time: float = 0.0
     step: int = 0
     t_run: float = 0.0
+    last_good: dict | None = None  # epoch/step of the checkpoint on disk (the last finite state)

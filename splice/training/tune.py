@@ -11,9 +11,16 @@ The run folder (``out``)::
       run.json          what was run: model, data, recipe name, world size, status (schema version 1)
       recipe.toml       the resolved recipe, overrides applied (load it with --recipe RUN/recipe.toml)
       metrics.jsonl     one JSON row per evaluation (see below)
-      checkpoint.pt     resumable state, rewritten atomically every epoch (torch.load(weights_only=True))
+      checkpoint.pt     resumable state, rewritten atomically every epoch and every warp pre-training
+                        epoch, only by a finite state (torch.load(weights_only=True))
       best/  last/      splice folders (weights.safetensors + splice.json), the best by validation
                         accuracy and the latest; plain folders for ``baseline`` runs
+      .splice.lock      while a run writes the folder (see :class:`splice.folders.FolderLock`)
+
+``run.json``'s ``status``: ``running``, ``finished``, ``stopped early``,
+``interrupted``, ``diverged`` (a NaN or infinite loss or weight: the run
+raises :class:`~splice.errors.TrainingDiverged`, exit 1, and the checkpoint
+and ``last/`` keep the last finite state) or ``failed`` (``error`` names why).
 
 A metrics row holds ``phase`` (``start``, ``pretrain`` or ``epoch``), ``epoch``
 (epochs completed), ``step`` (optimiser steps so far), ``loss`` (mean training
@@ -43,14 +50,16 @@ from typing import Any
 
 import torch
 
+from ..errors import SpliceError, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
 from ..recipes import Recipe
 from . import distributed
 from .epochs import train
 from .options import RecipeOverrides, RunOptions
-from .runfolder import prepare_folder, start_files, write_run_info
+from ..sources import check_spec
+from .runfolder import RUN_FILE, prepare_folder, read_run_info, start_files, write_run_info
 from .setup import load_model, normalisation, open_splits, resolve, run_info
-from .state import Run
+from .state import Run, TuneInterrupted
 
 __all__ = ["tune", "tune_keywords"]
 
@@ -79,7 +88,12 @@ class _StopFlag:
 
 
 def _remove_if_empty(folder: Path) -> None:
+    """Remove a run folder this call created, if nothing but its released lock file is in it."""
+    from ..folders import LOCK_FILE
+
     with contextlib.suppress(OSError):
+        if [p.name for p in folder.iterdir()] == [LOCK_FILE]:
+            (folder / LOCK_FILE).unlink()
         folder.rmdir()
 
 
@@ -138,15 +152,18 @@ def tune(
             _set_deterministic(True)
         cuda = [ctx.device.index or 0] if ctx.device.type == "cuda" else []
         try:
-            # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards
-            with torch.random.fork_rng(devices=cuda):
+            # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards;
+            # the run folder's lock is held until the run ends, however it ends
+            with torch.random.fork_rng(devices=cuda), contextlib.ExitStack() as locks:
                 fresh = out is not None and resume is None and not Path(out).exists()
                 try:
                     run = _set_up(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume,
                                   overrides=overrides or RecipeOverrides(),
-                                  model_options=model_options or ModelOptions(), run_options=run_options)
+                                  model_options=model_options or ModelOptions(), run_options=run_options,
+                                  locks=locks)
                 except BaseException:
                     if fresh and ctx.is_main:  # a run that never started leaves no folder behind
+                        locks.close()
                         _remove_if_empty(Path(out))
                     raise
                 return _train(run, run_options)
@@ -166,10 +183,15 @@ def tune_keywords(model: Any = None, *, recipe=None, data=None, out=None, resume
 
 
 def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
-            run_options: RunOptions) -> Run:
-    """Resolve the request, build the model and the data, write (or update) the run record."""
+            run_options: RunOptions, locks: contextlib.ExitStack) -> Run:
+    """Lock the run folder, resolve the request, build the model and the data, write (or update) the run record."""
+    if resume is not None and model is None:  # run.json's model passes the code gate before anything is written
+        recorded = read_run_info(Path(resume))
+        if recorded["model"] != "<module>" and not Path(recorded["model"]).is_dir():  # folders: the store's gate
+            check_spec(recorded["model"], recorded.get("model_kwargs"), origin=Path(resume) / RUN_FILE,
+                       trust_code=model_options.trust_code)
     run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
-                                   Path(resume) if resume is not None else None)
+                                   Path(resume) if resume is not None else None, locks)
     req = resolve(ctx, run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
                   model_options=model_options)
     rec = req.recipe
@@ -190,12 +212,14 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
         if ctx.is_main:
             start_files(run_dir, rec, info)
     elif ctx.is_main:
+        info = {k: v for k, v in info.items() if k not in ("diverged", "error")}
         info["status"] = "running"
         write_run_info(run_dir, info)
     return Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train_set, val=val_set, prepare=prepare,
                norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=req.data,
                shape=tuple(src.input_shape), where=where, ckpt=req.ckpt, workers=run_options.workers,
-               stop_after_steps=run_options.stop_after_steps, reference_override=overrides.reference)
+               stop_after_steps=run_options.stop_after_steps,
+               stop_after_pretrain_steps=run_options.stop_after_pretrain_steps, reference_override=overrides.reference)
 
 
 def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
@@ -204,4 +228,20 @@ def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
     show = run_options.progress and run.ctx.is_main
     with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
         run.bar, run.flag = bar, flag
-        return train(run)
+        try:
+            return train(run)
+        except TrainingDiverged as exc:
+            _mark(run, "diverged", diverged=exc.where)
+            raise
+        except TuneInterrupted:
+            raise  # run.json says "interrupted" once the checkpoint is written
+        except Exception as exc:
+            _mark(run, "failed", error=first_line(exc))
+            raise
+
+
+def _mark(run: Run, status: str, **extra) -> None:
+    """Record how the run ended in run.json (rank 0; a failing write must not hide the first error)."""
+    if run.ctx.is_main:
+        with contextlib.suppress(SpliceError, OSError):
+            write_run_info(run.run_dir, dict(run.info, status=status, **extra))

@@ -1,0 +1,217 @@
+"""splice's own folders: how to recognise them, and the lock a run holds while it writes one.
+
+Two kinds of folder are splice's: a spliced folder (``splice.json`` whose
+``format`` is ``splice-folder``) and a tune run folder (``run.json`` whose
+``format`` is ``splice-run``). Only those may be replaced by ``--overwrite``
+(:func:`check_replaceable`); anything else is the user's and is left alone.
+
+A run folder is locked while a run writes to it (:class:`FolderLock`): the
+file ``.splice.lock`` holds the writer's process id, and the writer holds an
+exclusive ``flock`` on it. The kernel drops that lock when the process dies,
+however it dies (SIGKILL included), so a lock file whose lock nobody holds is
+stale: the next run takes it over and says so. Where ``flock`` is not
+available the process id alone decides (a lock of a process that no longer
+exists is stale).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import json
+import os
+import socket
+from pathlib import Path
+
+from .errors import SpliceError
+
+__all__ = ["MANIFEST_FILE", "FOLDER_FORMAT", "RUN_FILE", "RUN_FORMAT", "LOCK_FILE", "FolderBusy",
+           "FolderLock", "folder_kind", "lock_holder", "check_replaceable"]
+
+MANIFEST_FILE = "splice.json"
+FOLDER_FORMAT = "splice-folder"
+RUN_FILE = "run.json"
+RUN_FORMAT = "splice-run"
+LOCK_FILE = ".splice.lock"
+
+
+class FolderBusy(SpliceError):
+    """Another live process holds the folder's lock."""
+
+
+def _format_of(path: Path) -> str | None:
+    try:
+        if path.stat().st_size > 1 << 20:  # a record of ours is a few kB; do not read a huge file
+            return None
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data.get("format") if isinstance(data, dict) else None
+
+
+def folder_kind(folder: str | os.PathLike) -> str | None:
+    """``"spliced folder"``, ``"run folder"``, or ``None`` for anything splice did not write."""
+    folder = Path(folder)
+    if _format_of(folder / MANIFEST_FILE) == FOLDER_FORMAT:
+        return "spliced folder"
+    if _format_of(folder / RUN_FILE) == RUN_FORMAT:
+        return "run folder"
+    return None
+
+
+def _alive(pid: int) -> bool:
+    if pid <= 0:
+        return False
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OSError):
+        return True  # exists, owned by someone else
+    return True
+
+
+def _read_lock(path: Path) -> dict:
+    try:
+        data = json.loads(path.read_text(encoding="utf-8") or "{}")
+    except (OSError, ValueError):
+        return {}
+    return data if isinstance(data, dict) else {}
+
+
+def _describe(info: dict) -> str:
+    pid = info.get("pid", "?")
+    what = info.get("command") or "splice"
+    host = info.get("host")
+    here = f" on {host}" if host and host != socket.gethostname() else ""
+    return f"process {pid}{here} ({what})"
+
+
+def _flock(fd: int, exclusive: bool = True) -> bool | None:
+    """True if taken, False if another process holds it, None if this platform or file system has no flock."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        return None
+    try:
+        fcntl.flock(fd, (fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH) | fcntl.LOCK_NB)
+    except (BlockingIOError, PermissionError):
+        return False
+    except OSError:  # e.g. a file system without flock
+        return None
+    return True
+
+
+def lock_holder(folder: str | os.PathLike) -> dict | None:
+    """The lock record (``pid``, ``host``, ``command``, ``started``) of a live writer of ``folder``, else None."""
+    path = Path(folder) / LOCK_FILE
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return None
+    try:
+        taken = _flock(fd, exclusive=False)  # a shared lock is refused while a writer holds its exclusive one
+        info = _read_lock(path)
+    finally:
+        os.close(fd)  # closing drops the probe's shared lock
+    if taken is None:
+        return info if _alive(int(info.get("pid", 0) or 0)) else None
+    return None if taken else (info or {"pid": "?"})
+
+
+class FolderLock:
+    """The exclusive write lock on a folder; ``acquire()`` it, ``release()`` it (or use ``with``)."""
+
+    def __init__(self, folder: str | os.PathLike, command: str = "splice tune") -> None:
+        self.folder = Path(folder)
+        self.path = self.folder / LOCK_FILE
+        self.command = command
+        self.stale: dict | None = None  # the record of a dead writer whose lock this one replaced
+        self._fd: int | None = None
+
+    def busy(self, info: dict) -> FolderBusy:
+        """The error that says who holds this lock."""
+        return FolderBusy(
+            f"'{self.folder}' is in use by {_describe(info)}, started {info.get('started', '?')}; wait for it "
+            f"to finish or stop it, or choose another folder (lock file {self.path})"
+        )
+
+    def _open_locked(self) -> int:
+        """Open the lock file and take its lock; retry if a releasing writer unlinked it meanwhile."""
+        for _ in range(20):
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o666)
+            taken = _flock(fd)
+            if taken is False:
+                info = _read_lock(self.path)
+                os.close(fd)
+                raise self.busy(info)
+            if taken is None:  # no flock here: the recorded process id decides
+                info = _read_lock(self.path)
+                pid = int(info.get("pid", 0) or 0)
+                if pid != os.getpid() and _alive(pid) and info.get("host") in (None, socket.gethostname()):
+                    os.close(fd)
+                    raise self.busy(info)
+            with contextlib.suppress(OSError):
+                if os.fstat(fd).st_ino == os.stat(self.path).st_ino:
+                    return fd
+            os.close(fd)  # the file we locked was unlinked by its last owner: lock the new one
+        raise SpliceError(f"could not take the lock '{self.path}' (it keeps changing); try again")
+
+    def acquire(self) -> FolderLock:
+        """Take the lock; raise :class:`FolderBusy` naming the live process that holds it."""
+        fd = self._open_locked()
+        previous = _read_lock(self.path)
+        if previous.get("pid") not in (None, os.getpid()):
+            self.stale = previous
+        record = {"pid": os.getpid(), "host": socket.gethostname(), "command": self.command,
+                  "started": _dt.datetime.now().astimezone().replace(microsecond=0).isoformat()}
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, (json.dumps(record) + "\n").encode("utf-8"), 0)
+        os.fsync(fd)
+        self._fd = fd
+        return self
+
+    def release(self) -> None:
+        """Remove the lock file and drop the lock (a no-op when not held)."""
+        if self._fd is None:
+            return
+        with contextlib.suppress(OSError):
+            os.unlink(self.path)
+        os.close(self._fd)
+        self._fd = None
+
+    def __enter__(self) -> FolderLock:
+        return self.acquire()
+
+    def __exit__(self, *exc) -> None:
+        self.release()
+
+
+def _listing(folder: Path, n: int = 4) -> str:
+    names = sorted(p.name + ("/" if p.is_dir() else "") for p in folder.iterdir())
+    if not names:
+        return "nothing"
+    return ", ".join(names[:n]) + (f" and {len(names) - n} more" if len(names) > n else "")
+
+
+def check_replaceable(target: str | os.PathLike) -> None:
+    """Raise unless ``target`` may be replaced by ``--overwrite``: absent, empty, or a folder splice wrote, not in use."""
+    target = Path(target)
+    if not target.exists() and not target.is_symlink():
+        return
+    if target.is_symlink() or not target.is_dir():
+        raise SpliceError(
+            f"--overwrite replaces only folders splice wrote, but '{target}' is a "
+            f"{'symbolic link' if target.is_symlink() else 'file'}; choose another output folder"
+        )
+    holder = lock_holder(target)
+    if holder is not None:
+        raise FolderBusy(f"cannot replace '{target}': it is in use by {_describe(holder)}; wait for it to finish")
+    if not any(target.iterdir()) or folder_kind(target) is not None:
+        return
+    raise SpliceError(
+        f"--overwrite replaces only a spliced folder (with {MANIFEST_FILE}) or a run folder (with {RUN_FILE}), "
+        f"but '{target}' holds {_listing(target)}; choose another output folder or remove it yourself"
+    )

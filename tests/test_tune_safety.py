@@ -1,0 +1,337 @@
+"""No run ends worse than its last good state: divergence, NaN images, the run-folder lock, --overwrite,
+and exact resume of warp pre-training.
+
+The model built to diverge is a small convolutional net with a layer that
+counts its training calls and, from a given call on, returns NaN (or plants an
+infinite weight while the loss stays finite). Its count is a buffer, so it is
+checkpointed and replayed like every other state.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import torch
+from safetensors.torch import load_file
+
+import splice
+from splice import cli
+from splice._io import state_dict_sha256
+from splice.data import ImageSet, open_data
+from splice.errors import DataError, SpliceError, TrainingDiverged
+from splice.folders import LOCK_FILE, FolderBusy, FolderLock, check_replaceable, lock_holder
+from splice.options import ModelOptions
+from splice.recipes import Recipe, load_recipe
+from splice.training import RunOptions, read_metrics, tune
+from splice.training.checkpoint import CHECKPOINT_NAME, load_checkpoint
+from splice.training.pretrain import pretrain_warps_
+
+QUIET = RunOptions(progress=False)
+STEPS_PER_EPOCH = -(-1078 // 128)  # 1078 training digits (splice.data docstring), batch 128
+
+DIVERGE = '''\
+import torch
+from torch import nn
+
+
+class Trip(nn.Module):
+    """Counts its training calls; from call `trip` on it returns NaN ("loss") or makes `spare` infinite ("weight")."""
+
+    def __init__(self, trip, where):
+        super().__init__()
+        self.trip, self.where = trip, where
+        self.register_buffer("calls", torch.zeros((), dtype=torch.long))
+        self.spare = nn.Parameter(torch.zeros(1))
+
+    def forward(self, x):
+        if self.training:
+            self.calls += 1
+            if int(self.calls) >= self.trip:
+                if self.where == "loss":
+                    return x * float("nan")
+                with torch.no_grad():
+                    self.spare.fill_(float("inf"))
+        return x
+
+
+def factory(trip=1000, where="loss"):
+    return nn.Sequential(nn.Conv2d(1, 4, 3, padding=1), nn.ReLU(), Trip(trip, where), nn.AdaptiveAvgPool2d(4),
+                         nn.Flatten(), nn.Linear(64, 10))
+
+
+factory.input_shape = (1, 24, 24)
+'''
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _one_thread():
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+@pytest.fixture(scope="module")
+def diverging_spec(tmp_path_factory):
+    path = tmp_path_factory.mktemp("models") / "diverge.py"
+    path.write_text(DIVERGE, encoding="utf-8")
+    return f"{path}:factory"
+
+
+def _baseline(epochs=3):
+    return load_recipe("baseline").with_overrides(epochs=epochs, batch_size=128)
+
+
+def _run_diverging(spec, out, **kwargs):
+    with pytest.raises(TrainingDiverged) as caught:
+        tune(spec, recipe=_baseline(), data="digits", out=out, run_options=QUIET,
+             model_options=ModelOptions(kwargs=kwargs))
+    return caught.value
+
+
+def _folder_state(folder):
+    return load_file(str(folder / "weights.safetensors"))  # the tensors alone: no model code runs
+
+
+def _all_finite(state) -> bool:
+    return all(bool(torch.isfinite(t).all()) for t in state.values() if t.is_floating_point())
+
+
+@pytest.mark.filterwarnings("ignore::splice.errors.RandomWeightsWarning")
+def test_a_nan_loss_stops_the_run_and_keeps_the_last_finite_state(tmp_path, diverging_spec):
+    out = tmp_path / "run"
+    trip = STEPS_PER_EPOCH + 3  # the 3rd step of epoch 2
+    exc = _run_diverging(diverging_spec, out, trip=trip)
+    msg = str(exc)
+    assert "\n" not in msg
+    assert f"the training loss became nan at epoch 2/3, step {trip}" in msg
+    assert f"keep the last finite state (epoch 1, step {STEPS_PER_EPOCH})" in msg
+    info = json.loads((out / "run.json").read_text())
+    assert info["status"] == "diverged"
+    assert info["diverged"] == {"phase": "epoch", "epoch": 2, "step": trip, "what": "the training loss became nan"}
+    ckpt = load_checkpoint(out / CHECKPOINT_NAME)
+    assert (ckpt["epoch"], ckpt["batch"], ckpt["step"]) == (1, 0, STEPS_PER_EPOCH)
+    assert _all_finite(ckpt["model"])
+    last = _folder_state(out / "last")
+    assert _all_finite(last)
+    assert state_dict_sha256(last) == state_dict_sha256(ckpt["model"])  # last/ is the checkpointed state
+    assert [r["epoch"] for r in read_metrics(out)] == [0, 1]  # no row of the diverged epoch
+    assert not (out / LOCK_FILE).exists()  # the lock went with the run
+
+
+@pytest.mark.filterwarnings("ignore::splice.errors.RandomWeightsWarning")
+def test_an_infinite_weight_with_a_finite_loss_is_caught_before_it_is_saved(tmp_path, diverging_spec):
+    out = tmp_path / "run"
+    exc = _run_diverging(diverging_spec, out, trip=STEPS_PER_EPOCH + 1, where="weight")
+    assert f"'2.spare' became NaN or infinite at epoch 2/3, step {2 * STEPS_PER_EPOCH}" in str(exc)
+    assert json.loads((out / "run.json").read_text())["status"] == "diverged"
+    ckpt = load_checkpoint(out / CHECKPOINT_NAME)
+    assert ckpt["epoch"] == 1 and _all_finite(ckpt["model"])
+    assert _all_finite(_folder_state(out / "last")) and _all_finite(_folder_state(out / "best"))
+
+
+def test_the_cli_exits_1_with_one_line_naming_epoch_and_step(tmp_path, diverging_spec, capsys):
+    out = tmp_path / "run"
+    code = cli.main(["tune", diverging_spec, "--kwargs", '{"trip": 2}', "--recipe", "baseline", "--data", "digits",
+                     "--epochs", "2", "--batch-size", "128", "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1
+    lines = [line for line in err if not line.startswith("splice tune: note") and "RandomWeights" not in line
+             and "random weights" not in line]
+    assert len(lines) == 1, err
+    assert lines[0].startswith("splice tune: training diverged: the training loss became nan at epoch 1/2, step 2;")
+    assert json.loads((out / "run.json").read_text())["status"] == "diverged"
+
+
+def test_diverged_pretraining_raises_before_the_step():
+    spliced = splice.insert(splice.models.tray_net(width=4), at=["input"], input_shape=(1, 24, 24),
+                            warp=splice.WarpConfig(head_width=4))
+    warps = {n: m for n, m in spliced.named_modules() if isinstance(m, splice.warps.Warp)}
+    images = torch.rand(8, 1, 24, 24)
+    images[3, 0, 5, 5] = float("nan")  # one bad pixel in memory (files with one are refused when read)
+    ref = ImageSet(images, torch.zeros(8, dtype=torch.long), ["0"], "bad", "train")
+    before = {k: v.clone() for k, v in spliced.state_dict().items()}
+    cfg = load_recipe("joint").pretrain
+    with pytest.raises(TrainingDiverged, match=r"grid loss or its gradient became nan at pre-training epoch 1/\d+, "
+                                               r"step 1;") as caught:
+        pretrain_warps_(spliced, warps, ref, cfg, seed=0, prepare=lambda x: x)
+    assert caught.value.where["phase"] == "pretrain"
+    after = spliced.state_dict()
+    assert all(torch.equal(before[k], after[k]) for k in before)  # no step was taken
+
+
+# ----------------------------------------------------------------------------- NaN / Inf images
+
+
+@pytest.mark.parametrize("bad", [float("nan"), float("inf"), -float("inf")])
+def test_a_float_image_with_a_non_finite_pixel_is_refused_when_read(tmp_path, bad):
+    from PIL import Image
+
+    root = tmp_path / "data"
+    for split in ("train", "val"):
+        for cls in ("a", "b"):
+            (root / split / cls).mkdir(parents=True)
+            for i in range(2):
+                arr = np.full((8, 8), 0.5, dtype=np.float32)
+                Image.fromarray(arr, mode="F").save(root / split / cls / f"{i}.tif")
+    poisoned = root / "train" / "b" / "1.tif"
+    arr = np.full((8, 8), 0.5, dtype=np.float32)
+    arr[2, 3] = bad
+    Image.fromarray(arr, mode="F").save(poisoned)
+    ds = open_data(str(root), "train", input_shape=(1, 8, 8))
+    index = [i for i, (p, _) in enumerate(ds.samples) if p == poisoned][0]
+    with pytest.raises(DataError, match=r"image .*1\.tif holds 1 NaN or infinite pixel value\(s\)"):
+        ds[index]
+    with pytest.raises(DataError, match=r"1 of 4 images .* cannot be read: .*1\.tif"):
+        ds.check()
+    assert torch.isfinite(ds[0][0]).all()  # good float images still read
+
+
+# ----------------------------------------------------------------------------- the run-folder lock
+
+
+def test_lock_names_the_holder_and_a_dead_holder_is_stale(tmp_path):
+    folder = tmp_path / "f"
+    folder.mkdir()
+    lock = FolderLock(folder).acquire()
+    record = json.loads((folder / LOCK_FILE).read_text())
+    assert record["pid"] == os.getpid()
+    assert lock_holder(folder)["pid"] == os.getpid()
+    with pytest.raises(FolderBusy, match=rf"'{folder}' is in use by process {os.getpid()} \(splice tune\)"):
+        FolderLock(folder).acquire()  # a second open file description: refused like another process
+    lock.release()
+    assert not (folder / LOCK_FILE).exists() and lock_holder(folder) is None
+    # a lock file left by a process that died (SIGKILL leaves it behind): stale, taken over
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    (folder / LOCK_FILE).write_text(json.dumps({"pid": dead.pid, "command": "splice tune"}))
+    assert lock_holder(folder) is None
+    with FolderLock(folder) as again:
+        assert again.stale["pid"] == dead.pid
+
+
+@pytest.mark.filterwarnings("ignore::splice.errors.RandomWeightsWarning")
+def test_a_second_run_into_a_locked_folder_is_refused(tmp_path, capsys):
+    out = tmp_path / "run"
+    tune("splice.models:tray_net", recipe=_baseline(epochs=1), data="digits", out=out, run_options=QUIET,
+         model_options=ModelOptions(kwargs={"width": 4}, input_shape=(1, 24, 24)))
+    before = {p.name: p.stat().st_mtime_ns for p in out.iterdir()}
+    with FolderLock(out):  # a run is writing to it
+        with pytest.raises(FolderBusy, match=rf"in use by process {os.getpid()}"):
+            tune(resume=out, run_options=QUIET)
+        code = cli.main(["tune", "--resume", str(out), "--quiet"])
+        err = capsys.readouterr().err.strip().splitlines()
+        assert code == 2 and len(err) == 1 and f"in use by process {os.getpid()}" in err[0]
+        fresh = tmp_path / "fresh"
+        fresh.mkdir()
+        with FolderLock(fresh), pytest.raises(FolderBusy, match="in use by process"):
+            tune("splice.models:tray_net", recipe=_baseline(epochs=1), data="digits", out=fresh, run_options=QUIET)
+        with pytest.raises(FolderBusy, match="cannot replace .* in use by process"):
+            check_replaceable(out)
+    after = {p.name: p.stat().st_mtime_ns for p in out.iterdir()}
+    assert after == before  # the refused runs wrote nothing
+
+
+# ----------------------------------------------------------------------------- --overwrite
+
+
+@pytest.fixture(scope="module")
+def spliced_folder(tmp_path_factory):
+    out = tmp_path_factory.mktemp("ow") / "spliced"
+    src = splice.load_source("splice.models:tray_net", kwargs={"width": 4}, input_shape=(1, 24, 24),
+                             warn_random=False)
+    splice.save(splice.insert(src, at=["input"]), out)
+    return out
+
+
+def _insert(target, *extra):
+    return cli.main(["insert", "splice.models:tray_net", "--kwargs", '{"width": 4}', "--input-shape", "1x24x24",
+                     "--at", "input", "--out", str(target), *extra])
+
+
+@pytest.mark.filterwarnings("ignore::splice.errors.RandomWeightsWarning")
+def test_overwrite_refuses_a_folder_splice_did_not_write(tmp_path, capsys):
+    mine = tmp_path / "photos"
+    (mine / "album").mkdir(parents=True)
+    (mine / "a.jpg").write_bytes(b"x")
+    (mine / "notes.txt").write_text("keep me")
+    assert _insert(mine, "--overwrite") == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1
+    assert "replaces only a spliced folder" in err[0] and "holds a.jpg, album/, notes.txt" in err[0]
+    assert (mine / "notes.txt").read_text() == "keep me" and (mine / "album").is_dir()
+    a_file = tmp_path / "file.bin"
+    a_file.write_bytes(b"data")
+    assert _insert(a_file, "--overwrite") == 2
+    assert "is a file" in capsys.readouterr().err and a_file.read_bytes() == b"data"
+    # a manifest that only looks like ours is not ours
+    fake = tmp_path / "fake"
+    fake.mkdir()
+    (fake / "splice.json").write_text('{"format": "something-else"}')
+    assert _insert(fake, "--overwrite") == 2
+    assert (fake / "splice.json").exists()
+
+
+@pytest.mark.filterwarnings("ignore::splice.errors.RandomWeightsWarning")
+def test_overwrite_replaces_a_spliced_folder_a_run_folder_or_an_empty_one(tmp_path, spliced_folder, capsys):
+    import shutil
+
+    target = tmp_path / "spliced"
+    shutil.copytree(spliced_folder, target)
+    (target / "stray.txt").write_text("from an earlier version")
+    assert _insert(target, "--overwrite") == 0
+    assert not (target / "stray.txt").exists() and (target / "splice.json").is_file()
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "run.json").write_text(json.dumps({"format": "splice-run", "schema_version": 1}))
+    assert _insert(run, "--overwrite") == 0 and not (run / "run.json").exists()
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert _insert(empty, "--overwrite") == 0
+    capsys.readouterr()
+    with pytest.raises(SpliceError, match="already exists; pass --overwrite"):
+        splice.save(splice.load(target), target)
+
+
+# ----------------------------------------------------------------------------- pre-training resume
+
+
+def _joint(pretrain_epochs=2):
+    d = load_recipe("joint").with_overrides(epochs=1, batch_size=128).to_dict()
+    d["pretrain"]["epochs"] = pretrain_epochs
+    return Recipe.from_dict(d)
+
+
+def _last_hash(run):
+    return state_dict_sha256(_folder_state(run / "last"))
+
+
+@pytest.mark.parametrize("stop_at", [3, None], ids=["mid-epoch", "epoch-end"])
+def test_pretraining_checkpoints_and_resumes_exactly(tmp_path, spliced_folder, stop_at):
+    full = tmp_path / "full"
+    tune(str(spliced_folder), recipe=_joint(), data="digits-moved", out=full, run_options=QUIET)
+    ckpt = load_checkpoint(full / CHECKPOINT_NAME)
+    assert "pretrain" not in ckpt and ckpt["epoch"] == 1
+    per_epoch = json.loads((full / "metrics.jsonl").read_text().splitlines()[0])["pretrain_steps"] // 2
+    stop = stop_at if stop_at is not None else per_epoch  # the end of pre-training epoch 1
+    part = tmp_path / "part"
+    summary = tune(str(spliced_folder), recipe=_joint(), data="digits-moved", out=part,
+                   run_options=RunOptions(progress=False, stop_after_pretrain_steps=stop))
+    assert summary["interrupted"]
+    ckpt = load_checkpoint(part / CHECKPOINT_NAME)
+    pre = ckpt["pretrain"]
+    assert pre["step"] == stop
+    assert (pre["epoch"], pre["batch"]) == ((0, stop) if stop_at is not None else (1, 0))
+    assert ckpt["step"] == 0 and read_metrics(part) == []
+    assert json.loads((part / "run.json").read_text())["status"] == "interrupted"
+    tune(resume=part, run_options=QUIET)
+    assert _last_hash(part) == _last_hash(full)
+    strip = ("time_s", "images_per_s")
+    rows = [{k: v for k, v in r.items() if k not in strip} for r in read_metrics(part)]
+    assert rows == [{k: v for k, v in r.items() if k not in strip} for r in read_metrics(full)]
+    assert json.loads((part / "run.json").read_text())["status"] == "finished"
