@@ -38,7 +38,8 @@ from ..distort import random_distort
 from . import batches as _b
 from .schedule import lr_factor
 
-__all__ = ["target_grid", "execution_order", "warp_inputs", "grid_loss", "pretrain_warps_"]
+__all__ = ["target_grid", "execution_order", "warp_inputs", "grid_loss", "leave_unmoved", "reference_distance",
+           "pretrain_warps_"]
 
 
 class _Stop(Exception):
@@ -102,6 +103,53 @@ def grid_loss(warp: nn.Module, args: tuple, matrix: Tensor | None) -> Tensor:
     return (grid - target).pow(2).mean()
 
 
+def leave_unmoved(images: Tensor, distorted: Tensor, matrix: Tensor, fraction: float,
+                  generator: torch.Generator) -> tuple[Tensor, Tensor]:
+    """Put back the unmoved image, with the identity as its target, for a random ``fraction`` of a batch.
+
+    A head that only ever sees moved images learns to move every image, upright
+    ones included; mixing in unmoved references with the identity as the
+    target teaches it to leave those alone. Draws from ``generator`` (one
+    uniform number per image), so the choice is a pure function of the batch seed.
+    """
+    if fraction <= 0:
+        return distorted, matrix
+    keep = torch.rand(images.shape[0], generator=generator) < fraction
+    distorted = torch.where(keep.view(-1, 1, 1, 1), images, distorted)
+    matrix = matrix.clone()
+    matrix[keep] = torch.eye(3, dtype=matrix.dtype)
+    return distorted, matrix
+
+
+@torch.no_grad()
+def reference_distance(model: nn.Module, warps: Mapping[str, nn.Module], x: Tensor) -> dict[str, float]:
+    """How far each warp moves the prepared inputs ``x``: RMS displacement of its sampling grid from the identity.
+
+    In pixels of the tensor the warp samples (the point's feature map), averaged
+    over every output pixel and image. On upright reference images a warp that
+    leaves them alone scores 0. The model's modes are restored.
+    """
+    modes = {m: m.training for m in model.modules()}
+    model.eval()
+    try:
+        captured, order = warp_inputs(model, warps, x)
+    finally:
+        for m, mode in modes.items():
+            m.training = mode
+    out = {}
+    for name in order:
+        args = captured[name]
+        feats = args[0]
+        h, w = feats.shape[-2], feats.shape[-1]
+        grid = warps[name].grid(warps[name].predict(args[1] if len(args) > 1 else feats), h, w)
+        ident = target_grid(torch.eye(3, dtype=torch.float64).expand(feats.shape[0], 3, 3), h, w,
+                            dtype=grid.dtype, device=grid.device)
+        # normalised coordinates span 2 units across the width and the height
+        px = (grid - ident) * torch.tensor([w / 2.0, h / 2.0], dtype=grid.dtype, device=grid.device)
+        out[name] = round(float(px.pow(2).sum(-1).mean().sqrt()), 6)
+    return out
+
+
 def pretrain_warps_(
     model: nn.Module,
     warps: Mapping[str, nn.Module],
@@ -147,9 +195,11 @@ def pretrain_warps_(
             for b, (images, _labels) in enumerate(_b.iterate(reference, batches, workers=workers)):
                 gen = _b.generator(seed, "pretrain-distort", epoch, b, rank)
                 distorted, meta = random_distort(images, spec, gen, fill=0.0)
+                distorted, matrix = leave_unmoved(images, distorted, meta["matrix"],
+                                                  getattr(config, "identity_fraction", 0.0), gen)
                 x = prepare(distorted)
                 captured, _ = warp_inputs(model, warps, x, stop_after=last)
-                loss = sum(grid_loss(warps[name], captured[name], meta["matrix"] if name == first else None)
+                loss = sum(grid_loss(warps[name], captured[name], matrix if name == first else None)
                            for name in order)
                 for g in opt.param_groups:
                     g["lr"] = config.lr * lr_factor("cosine", step, steps_per_epoch=steps_per_epoch,

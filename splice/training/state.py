@@ -46,7 +46,9 @@ class Run:
     ckpt: dict | None = None
     workers: int = 0
     stop_after_steps: int | None = None
-    reference_override: str | None = None
+    reference: Any = None  # splice.training.reference.Reference, None for baseline
+    reference_probe: torch.Tensor | None = None  # held-out reference images for reference_distance
+    trained_on: str | None = None
 
     bar: Any = None  # splice.progress.Progress
     flag: Any = None  # the SIGINT/SIGTERM stop flag
