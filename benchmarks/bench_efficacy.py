@@ -215,7 +215,7 @@ def _ratio_rows(label: str, cases: list[dict]) -> list[dict]:
 
 
 def run(seeds=SEEDS, settings=tuple(SETTINGS), epochs: int = EPOCHS, threads: int | None = None,
-        root: str | None = None, verbose: bool = True) -> list[dict]:
+        root: str | None = None, verbose: bool = True, models: tuple[str, ...] | None = None) -> list[dict]:
     import torch
 
     log = (lambda s: print(s, file=sys.stderr, flush=True)) if verbose else (lambda s: None)
@@ -234,6 +234,8 @@ def run(seeds=SEEDS, settings=tuple(SETTINGS), epochs: int = EPOCHS, threads: in
             else:
                 upright, moved = make_folders(work / "data")
             for spec in SETTINGS[setting]:
+                if models and spec.split(":")[-1] not in models:
+                    continue
                 cases = []
                 for seed in seeds:
                     log(f"  {setting} {spec} seed {seed}")
@@ -253,9 +255,11 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--settings", nargs="+", choices=list(SETTINGS), default=list(SETTINGS))
     p.add_argument("--epochs", type=int, default=EPOCHS)
     p.add_argument("--threads", type=int, default=None)
+    p.add_argument("--models", nargs="+", help="only these models (e.g. conv5_net)")
     p.add_argument("--keep", metavar="DIR", help="keep the run folders in DIR")
     args = p.parse_args(argv)
-    rows = run(seeds=args.seeds, settings=args.settings, epochs=args.epochs, threads=args.threads, root=args.keep)
+    rows = run(seeds=args.seeds, settings=args.settings, epochs=args.epochs, threads=args.threads, root=args.keep,
+               models=tuple(args.models) if args.models else None)
     width = max(len(r["name"]) for r in rows)
     print(f"{'benchmark':<{width}}  {'ratio':>7}  {'goal':>7}  pass  note")
     for r in rows:

@@ -292,7 +292,9 @@ def _parser_tune(sub) -> None:
     p.add_argument("--data", default=None, metavar="NAME|DIR",
                    help="digits (default), digits-moved, or an ImageFolder tree")
     p.add_argument("--reference", metavar="NAME|DIR",
-                   help="upright images for warp-head pre-training (default: the recipe's [pretrain] reference)")
+                   help="images of the kind the base was trained on, for warp-head pre-training; 'train' for the "
+                        "training images (default: the recipe's [pretrain] reference; 'auto' finds digits for "
+                        "digits-moved and the base's recorded data for a base trained by splice)")
     p.add_argument("--out", metavar="RUN", help="run folder to write")
     p.add_argument("--resume", metavar="RUN", help="continue the run in RUN from its last checkpoint")
     p.add_argument("--epochs", type=int, help="override the recipe's epochs")
