@@ -199,3 +199,36 @@ def test_control_that_collapses_is_flagged(trees, base_run, tmp_path):
     flag = improved(base_run / "best", tmp_path / "collapsed", data=str(upright))
     assert not flag["improved"] and flag["tuned_error"] == pytest.approx(0.5)
     assert improved(tmp_path / "collapsed", base_run / "best", data=str(upright))["improved"]
+
+
+# ----------------------------------------------------------------------------- upright-safe pre-training
+
+
+def test_leave_unmoved_puts_back_the_image_with_the_identity():
+    from splice.training.pretrain import leave_unmoved
+
+    images, moved = torch.rand(64, 1, 8, 8), torch.rand(64, 1, 8, 8)
+    matrix = torch.rand(64, 3, 3, dtype=torch.float64)
+    out, target = leave_unmoved(images, moved, matrix, 0.25, torch.Generator().manual_seed(0))
+    kept = torch.tensor([torch.equal(out[i], images[i]) for i in range(64)])
+    assert 5 <= int(kept.sum()) <= 30  # about a quarter
+    assert torch.equal(target[kept], torch.eye(3, dtype=torch.float64).expand(int(kept.sum()), 3, 3))
+    assert torch.equal(out[~kept], moved[~kept]) and torch.equal(target[~kept], matrix[~kept])
+    same, _ = leave_unmoved(images, moved, matrix, 0.0, torch.Generator().manual_seed(0))
+    assert same is moved
+
+
+def test_reference_distance_is_zero_at_the_identity_and_the_shift_in_pixels():
+    import splice
+    from splice.surgery import warps_of
+    from splice.training.pretrain import reference_distance
+
+    src = splice.load_source(SPEC, kwargs=MODEL["kwargs"], input_shape=MODEL["input_shape"], warn_random=False)
+    model = splice.insert(src, at=["input"], warp=splice.WarpConfig(head_width=8))
+    warps = warps_of(model)
+    x = torch.rand(4, *MODEL["input_shape"])
+    assert reference_distance(model, warps, x) == {"input": 0.0}
+    with torch.no_grad():  # affine theta is the 2x3 matrix row by row: shift by (0.25, 0) normalised units
+        warps["input"].head.final.bias[2] += 0.25
+    # a shift of 0.25 in normalised coordinates (which span 2) is 0.25 * 16 / 2 = 2 pixels everywhere
+    assert reference_distance(model, warps, x)["input"] == pytest.approx(2.0, abs=1e-5)
