@@ -19,10 +19,10 @@ from ..errors import RecipeError, SpliceError, first_line
 from . import batches as _b
 from . import distributed
 from .checkpoint import set_rng_state
+from .head import confidently_wrong, final_layer, zero_final_layer_
 from .loop import Stepper, ThetaTap
 from .params import frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
     set_requires_grad
-from .head import confidently_wrong, final_layer, zero_final_layer_
 from .pretrain import pretrain_warps_
 from .recording import checkpoint, evaluate_val, finish, record, stopped
 from .runfolder import truncate_metrics
@@ -156,9 +156,10 @@ def _head_to_reset(run: Run) -> str | None:
     if rec.mode != "baseline" or rec.reset_head == "never":
         return None
     if rec.reset_head == "auto":
-        fresh = run.src.random_init and run.src.manifest is None
+        if (run.src.random_init and run.src.manifest is None) or not run.classes:
+            return None  # a random init has nothing to forget
         val_loss, _ = evaluate_val(run)
-        if fresh or not run.classes or not confidently_wrong(val_loss, len(run.classes)):
+        if not confidently_wrong(val_loss, len(run.classes)):
             return None
     head = final_layer(run.net, run.prepare(_b.fetch(run.val, torch.arange(min(2, len(run.val))))[0]))
     if head is None:
