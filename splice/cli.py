@@ -135,6 +135,10 @@ def _cmd_points(args) -> int:
     out = _console()
     out.print(table)
     out.print(f"{len(pts)} points; '*' = recommended. Splice with: splice insert {args.model} --at NAME --out DIR")
+    if any(p.stride != 1 for p in pts):
+        out.print("Feature-level points (stride > 1) are listed but not recommended: measured on plain CNNs, a warp "
+                  "there matched the input warp on one model and gave nothing on another, at 1.4-1.7x the time "
+                  "(README, 'Where to put the warp').")
     return EXIT_OK
 
 
@@ -313,7 +317,9 @@ def _parser_tune(sub) -> None:
     p.add_argument("--data", default=None, metavar="NAME|DIR",
                    help="digits (default), digits-moved, or an ImageFolder tree")
     p.add_argument("--reference", metavar="NAME|DIR",
-                   help="upright images for warp-head pre-training (default: the recipe's [pretrain] reference)")
+                   help="images of the kind the base was trained on, for warp-head pre-training; 'train' for the "
+                        "training images (default: the recipe's [pretrain] reference; 'auto' finds digits for "
+                        "digits-moved and the base's recorded data for a base trained by splice)")
     p.add_argument("--out", metavar="RUN", help="run folder to write")
     p.add_argument("--resume", metavar="RUN", help="continue the run in RUN from its last checkpoint")
     p.add_argument("--epochs", type=int, help="override the recipe's epochs")

@@ -39,6 +39,7 @@ from .errors import DataError, SpliceError, suggest
 from .options import ModelOptions, split_keywords
 
 __all__ = [
+    "improved",
     "SCHEMA_VERSION",
     "DEFAULT_SWEEPS",
     "SWEEP_KINDS",
@@ -323,6 +324,21 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
     if plot is not None:
         result["plot"] = str(draw_sweep_plot(result, plot))
     return result
+
+
+def improved(start, tuned, *, data: str, split: str = "test") -> dict:
+    """Did a fine-tune improve on the model it started from? The check a fair control must pass.
+
+    ``start`` and ``tuned`` are model sources (folders, typically ``BASE/best``
+    and ``RUN/best``). Returns ``{"start_error", "tuned_error", "improved"}``
+    with clean errors on ``data``/``split``; ``improved`` is True only when the
+    tuned error is strictly lower. A run that never beat its start on
+    validation keeps the unchanged start as ``best/``, and is flagged here.
+    """
+    both = evaluate(tuned, data=data, split=split, against=start, distort="none")
+    start_error = 1.0 - both["against"]["clean"]["accuracy"]
+    tuned_error = 1.0 - both["clean"]["accuracy"]
+    return {"start_error": start_error, "tuned_error": tuned_error, "improved": tuned_error < start_error}
 
 
 def evaluate_keywords(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,

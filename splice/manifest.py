@@ -13,7 +13,8 @@ classes: warp configurations become :class:`~splice.warps.WarpConfig`.
       "schema_version": 1,
       "format": "splice-folder",
       "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
-                 "weights_sha256": str | null, "random_init": bool},
+                 "weights_sha256": str | null, "random_init": bool,
+                 "trained_on": str | null},
       "input_shape": [C, H, W],
       "normalisation": {"mean": [...], "std": [...]} | null,
       "class_names": [str, ...] | null,
@@ -29,6 +30,10 @@ classes: warp configurations become :class:`~splice.warps.WarpConfig`.
 splice started from (provenance); ``weights.sha256`` is the hash of the
 ``weights.safetensors`` bytes as written (integrity); ``weights.base_sha256``
 is the canonical hash of the base part of the saved state dict.
+``source.trained_on`` names the images the base network was trained on (a
+data set name or an absolute folder path), as ``splice tune`` recorded it;
+``splice insert`` carries it over from a folder, and warp pre-training takes
+its upright reference from it. Absent or null when unknown.
 
 Layer: beside :mod:`splice.surgery`, which imports it; it imports only
 :mod:`splice.errors` and :mod:`splice.warps`.
@@ -94,7 +99,7 @@ def _source(data: dict, problems: list[str]) -> None:
         problems.append("source.spec must be a non-empty string")
     if not isinstance(src.get("kwargs", {}), dict):
         problems.append("source.kwargs must be an object")
-    for key in ("weights_sha256", "weights_file"):
+    for key in ("weights_sha256", "weights_file", "trained_on"):
         if src.get(key) is not None and not isinstance(src.get(key), str):
             problems.append(f"source.{key} must be a string or null")
 
@@ -225,7 +230,8 @@ class SpliceInfo:
 
     ``spec``/``kwargs`` rebuild the base architecture; ``source_weights_sha256``
     and ``source_weights_path`` say which weights it started from
-    (``random_init`` when none). ``points`` are :class:`PointRecord` in
+    (``random_init`` when none); ``trained_on`` the images the base was
+    trained on, when known. ``points`` are :class:`PointRecord` in
     graph order. ``tuning`` is what ``splice tune`` recorded (``None`` for a
     fresh splice). Not written to ``splice.json``: ``folder`` (where the
     record was read from) and ``check`` (:func:`splice.insert`'s identity
@@ -243,6 +249,7 @@ class SpliceInfo:
     random_init: bool = False
     points: tuple[PointRecord, ...] = ()
     tuning: dict | None = None
+    trained_on: str | None = None
     folder: str | None = None
     check: dict | None = None
 
@@ -271,7 +278,8 @@ class SpliceInfo:
         """The record's part of ``splice.json`` (no header, weights, versions or date)."""
         return {
             "source": {"spec": self.spec, "kwargs": self.kwargs, "weights_file": self.source_weights_path,
-                       "weights_sha256": self.source_weights_sha256, "random_init": bool(self.random_init)},
+                       "weights_sha256": self.source_weights_sha256, "random_init": bool(self.random_init),
+                       "trained_on": self.trained_on},
             "input_shape": list(self.input_shape) if isinstance(self.input_shape, tuple) else self.input_shape,
             "normalisation": self.normalisation,
             "class_names": self.class_names,
@@ -296,7 +304,7 @@ class SpliceInfo:
             leaves=tuple(data.get("leaves") or ()), source_weights_sha256=src.get("weights_sha256"),
             source_weights_path=src.get("weights_file"), random_init=bool(src.get("random_init", False)),
             points=tuple(PointRecord.from_json(p) for p in data["points"]), tuning=data.get("tuning"),
-            folder=None if folder is None else str(folder),
+            trained_on=src.get("trained_on"), folder=None if folder is None else str(folder),
         )
 
     @classmethod
@@ -308,6 +316,7 @@ class SpliceInfo:
             class_names=src.class_names, leaves=tuple(src.leaves if leaves is None else leaves),
             source_weights_sha256=src.weights_sha256, source_weights_path=src.weights_path,
             random_init=bool(src.random_init), points=tuple(points), check=check,
+            trained_on=((src.manifest or {}).get("source") or {}).get("trained_on"),
         )
 
     # -- reading it

@@ -13,7 +13,7 @@ from collections import OrderedDict
 import torch
 from torch import nn
 
-__all__ = ["TrayNet", "tray_net"]
+__all__ = ["TrayNet", "tray_net", "PlainNet", "conv3_net", "conv5_net"]
 
 
 def _block(c_in: int, c_out: int) -> nn.Sequential:
@@ -85,3 +85,69 @@ def tray_net(num_classes: int = 10, in_channels: int = 1, width: int = 16) -> Tr
 
 tray_net.input_shape = (1, 48, 48)
 tray_net.normalisation = None
+
+
+# ----------------------------------------------------------------------------- plain networks
+
+
+class PlainNet(nn.Module):
+    """Two conv-ReLU-maxpool stages, flatten, a hidden linear layer with ReLU, a linear classifier.
+
+    The kind of small classifier users already have: no batch norm, PyTorch's
+    default initialisation, and nothing declared about input normalisation
+    (the factories below set ``input_shape`` only). ``kernel`` is 3 (padding 1,
+    the maps keep their size) or 5 (no padding). fx node names: ``conv1``,
+    ``relu1``, ``pool1``, ``conv2``, ``relu2``, ``pool2``, ``flatten``,
+    ``fc1``, ``relu3``, ``fc2``.
+    """
+
+    def __init__(self, num_classes: int = 10, in_channels: int = 1, size: int = 40, *, kernel: int = 3,
+                 widths: tuple[int, int, int] = (32, 64, 128)) -> None:
+        super().__init__()
+        for name, value in (("num_classes", num_classes), ("in_channels", in_channels), ("size", size)):
+            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+                raise ValueError(f"PlainNet {name} must be a positive integer; got {value!r}")
+        pad = 1 if kernel == 3 else 0
+        side = size
+        for _ in range(2):
+            side = (side + 2 * pad - kernel + 1) // 2
+        if side < 1:
+            raise ValueError(f"PlainNet size {size} is too small for two {kernel}x{kernel} conv + pool stages")
+        c1, c2, hidden = widths
+        self.conv1 = nn.Conv2d(in_channels, c1, kernel, padding=pad)
+        self.relu1 = nn.ReLU()
+        self.pool1 = nn.MaxPool2d(2)
+        self.conv2 = nn.Conv2d(c1, c2, kernel, padding=pad)
+        self.relu2 = nn.ReLU()
+        self.pool2 = nn.MaxPool2d(2)
+        self.flatten = nn.Flatten(1)
+        self.fc1 = nn.Linear(c2 * side * side, hidden)
+        self.relu3 = nn.ReLU()
+        self.fc2 = nn.Linear(hidden, num_classes)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        x = self.pool1(self.relu1(self.conv1(x)))
+        x = self.pool2(self.relu2(self.conv2(x)))
+        return self.fc2(self.relu3(self.fc1(self.flatten(x))))
+
+
+def conv3_net(num_classes: int = 10, in_channels: int = 1, size: int = 40) -> PlainNet:
+    """3x3 convs of 32 and 64 channels, a 128-unit hidden layer (``splice.models:conv3_net``).
+
+    Declares ``input_shape = (1, 40, 40)`` and no normalisation; ``size`` is the
+    (square) input side. About 0.84 M parameters at 40x40, most in ``fc1``.
+    """
+    return PlainNet(num_classes, in_channels, size, kernel=3, widths=(32, 64, 128))
+
+
+def conv5_net(num_classes: int = 10, in_channels: int = 1, size: int = 40) -> PlainNet:
+    """5x5 convs of 20 and 50 channels without padding, a 500-unit hidden layer (``splice.models:conv5_net``).
+
+    Declares ``input_shape = (1, 40, 40)`` and no normalisation. About 1.25 M
+    parameters at 40x40.
+    """
+    return PlainNet(num_classes, in_channels, size, kernel=5, widths=(20, 50, 500))
+
+
+conv3_net.input_shape = (1, 40, 40)
+conv5_net.input_shape = (1, 40, 40)

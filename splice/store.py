@@ -108,13 +108,15 @@ def _plain_info(source) -> SpliceInfo:
 
 
 def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False, source=None,
-         tuning: Mapping | None = None, class_names=None, normalisation=None) -> Path:
+         tuning: Mapping | None = None, class_names=None, normalisation=None, trained_on: str | None = None) -> Path:
     """Write ``model`` to ``folder`` as ``weights.safetensors`` + ``splice.json``, atomically.
 
     ``model`` is a spliced model from :func:`splice.insert` (it carries its own
     provenance) or a plain model together with ``source`` (a spec string or
     :class:`~splice.sources.Source`). The folder is built beside the target and
-    renamed into place, so a failure leaves no partial output.
+    renamed into place, so a failure leaves no partial output. ``tuning``,
+    ``class_names``, ``normalisation`` and ``trained_on`` (the images the base
+    was trained on) replace the record's values when given.
 
     >>> spliced = splice.insert("torchvision:resnet18", at="layer1")   # doctest: +SKIP
     >>> splice.save(spliced, "out/r18-affine")                          # doctest: +SKIP
@@ -125,7 +127,8 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     info = info_of(model) or _plain_info(source)
     changes = {"tuning": dict(tuning) if tuning is not None else None,
                "class_names": list(class_names) if class_names is not None else None,
-               "normalisation": dict(normalisation) if normalisation is not None else None}
+               "normalisation": dict(normalisation) if normalisation is not None else None,
+               "trained_on": trained_on}
     info = info.replace(**{k: v for k, v in changes.items() if v is not None})
     state = {k: v.detach().to("cpu").contiguous().clone() for k, v in model.state_dict().items()}
     weights = {"file": WEIGHTS_NAME, "sha256": "",

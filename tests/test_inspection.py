@@ -12,6 +12,7 @@ import torch
 from splice import inspection as I
 from splice.errors import SpliceError
 from splice.warps import Warp, WarpConfig, grids, identity_theta, theta_to_matrix
+from splice.inspection import run
 
 H, W = 32, 40  # non-square on purpose: angles must be rigid in pixels
 
@@ -324,7 +325,6 @@ def test_identity_splice_decomposes_to_the_identity_for_every_image(identity_rep
 
 def test_summary_json_writes_non_finite_numbers_as_strings(identity_report, tmp_path, monkeypatch):
     """The one JSON policy of splice._io.json_safe: 'inf'/'-inf'/'nan' strings, never null."""
-    import splice.inspection.run as run
 
     real = run.summarise
 
@@ -350,12 +350,14 @@ def test_csv_rows_are_the_decomposition_of_the_captured_thetas(picture_report):
     rows = _read_csv(out / "warps.csv")
     assert "angle_deg" in rows[0] and len(rows) == 2 * N_IMAGES
     model = load(folder)
-    images = open_data("digits-moved", "test").images[:N_IMAGES]
+    ds = open_data("digits-moved", "test")
+    picked = run.sample_indices(ds.labels, N_IMAGES)
+    images = ds.images[picked]
     cap = I.capture(model, images)  # the batch inspect used, so the float32 model rounds the same way
     for point, warp in warps_of(model).items():
         desc = I.describe_theta(warp, cap.thetas[point])
         mine = [r for r in rows if r["point"] == point]
-        assert [int(r["image"]) for r in mine] == list(range(N_IMAGES))
+        assert [int(r["image"]) for r in mine] == picked.tolist()
         for q in I.quantities_for(warp.family):
             np.testing.assert_allclose([float(r[q]) for r in mine], desc[q].numpy(), rtol=1e-8, atol=1e-12)
         stats = result["warps"][point]["quantities"]["angle_deg"]
@@ -474,3 +476,14 @@ def test_a_warp_that_undoes_a_distortion_reports_that_distortion():
     assert abs(float(d["angle_deg"][0]) - a) < 1e-6 and abs(float(d["view_rotation_deg"][0]) + a) < 1e-6
     assert abs(float(d["scale_1"][0]) - s) < 1e-6 and abs(float(d["scale_2"][0]) - s) < 1e-6
     assert abs(float(d["shift_x_frac"][0]) - t[0]) < 1e-6 and abs(float(d["shift_y_frac"][0]) - t[1]) < 1e-6
+
+
+def test_sample_spans_classes_and_is_seeded():
+    # a class-sorted split (the ImageFolder order): the sample must not be the first images
+    labels = torch.arange(5).repeat_interleave(20)
+    picked = run.sample_indices(labels, 12)
+    assert torch.equal(picked, run.sample_indices(labels, 12))  # same seed, same sample
+    assert not torch.equal(picked, run.sample_indices(labels, 12, seed=1))
+    assert len(set(picked.tolist())) == 12
+    assert set(labels[picked[:5]].tolist()) == set(range(5))  # any first k cover min(k, classes) classes
+    assert sorted(run.sample_indices(labels, 500).tolist()) == list(range(100))  # n above the size: all of them

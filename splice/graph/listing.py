@@ -108,6 +108,9 @@ def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], ever
         ):
             chosen = e
             break
+    # the input first: a warp there beat feature-level ones in bench_efficacy, so a feature point is
+    # recommended only when the input is not a cut
+    input_cut = any(e.kind == "input" and e.cut for e in entries)
     out = []
     costs: dict[tuple[int, int, int], tuple[int, int]] = {}
     for e in entries:
@@ -120,7 +123,7 @@ def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], ever
             name=e.name, module=e.module, shape=e.shape, stride=_stride(in_hw, e.shape[1:]),
             cut=e.cut, in_branch=e.join is not None, join=e.join,
             warp_params=int(params), warp_macs=int(macs),
-            recommended=e.cut and (e.kind == "input" or e is chosen), kind=e.kind,
+            recommended=e.cut and (e.kind == "input" or (e is chosen and not input_cut)), kind=e.kind,
         ))
     return out
 

@@ -16,22 +16,41 @@ from .plots import draw_histograms
 from .sheets import SHEET_IMAGES, draw_contact_sheet, draw_outline_sheet
 from .summary import CSV_QUANTITIES, SCHEMA_VERSION, csv_text, summarise
 
-__all__ = ["inspect"]
+__all__ = ["inspect", "sample_indices"]
 
 
-def _first_images(ds, n: int) -> tuple[Tensor, Tensor, Tensor | None]:
-    """The first ``n`` images of a split (all of them if it is smaller), labels and dataset indices."""
-    k = min(n, len(ds))
-    if k == 0:
+def sample_indices(labels: Tensor, n: int, seed: int = 0) -> Tensor:
+    """``n`` dataset indices drawn across classes: a seeded shuffle within each class, then one class after another.
+
+    A class-sorted ImageFolder would otherwise give a contact sheet of one
+    class. Index ``i`` of the result comes from class ``i mod C`` while that
+    class has images left (classes in label order), so any first ``k`` cover
+    ``min(k, C)`` classes. The same ``seed`` gives the same sample.
+    """
+    gen = torch.Generator().manual_seed(seed)
+    order = torch.randperm(labels.numel(), generator=gen)
+    per_class = [order[labels[order] == c].tolist() for c in torch.unique(labels).tolist()]
+    picked: list[int] = []
+    depth = 0
+    while len(picked) < min(n, labels.numel()):
+        picked += [members[depth] for members in per_class if depth < len(members)]
+        depth += 1
+    return torch.tensor(picked[:n], dtype=torch.long)
+
+
+def _sample_images(ds, n: int, seed: int = 0) -> tuple[Tensor, Tensor, Tensor]:
+    """A seeded sample of ``n`` images of a split across its classes (all of them if it is smaller)."""
+    if len(ds) == 0:
         raise DataError(f"the {getattr(ds, 'split', '')} split of {getattr(ds, 'name', 'the data')} holds no images; "
                         "choose another split or add images.")
+    idx = sample_indices(torch.as_tensor(ds.labels, dtype=torch.long), n, seed)
     if isinstance(getattr(ds, "images", None), Tensor):
-        images, labels = ds.images[:k], ds.labels[:k]
+        images, labels = ds.images[idx], ds.labels[idx]
     else:
-        items = [ds[i] for i in range(k)]
+        items = [ds[int(i)] for i in idx]
         images = torch.stack([x for x, _ in items])
         labels = torch.tensor([int(y) for _, y in items], dtype=torch.long)
-    return images.to(torch.float32), labels, torch.arange(k)
+    return images.to(torch.float32), labels, idx
 
 
 def _stride(input_shape, warp_shape) -> tuple[float, float]:
@@ -60,13 +79,14 @@ class _Sample:
 def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_pickle: bool = False,
             batch_size: int = 64, sheet_images: int = SHEET_IMAGES, pictures: bool = True,
             trust_code: bool = False) -> dict:
-    """Show what the warps of a spliced folder learned, on ``n`` images of a data split.
+    """Show what the warps of a spliced folder learned, on ``n`` images of a data split (a seeded sample across
+    its classes, :func:`sample_indices`).
 
     Writes to ``out``: ``warps.csv`` (one row per image per warp, the
     quantities of :data:`QUANTITY_HELP`), ``summary.json`` (the returned dict)
     and, with ``pictures=True``, for each warp ``hist_<point>.png`` plus
     ``sheet_<point>.png`` (input-level warps: input | sampling grid | output for
-    the first ``sheet_images`` images) or ``outline_<point>.png``
+    the first ``sheet_images`` images of the sample) or ``outline_<point>.png``
     (feature-level warps: the sampling outline projected onto the input).
 
     Returns ``{"schema_version", "model", "data", "split", "n_images",
@@ -135,7 +155,7 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
     input_shape = tuple(facts.input_shape)
     ds = open_data(data, split, input_shape=input_shape)
     classes = list(getattr(ds, "classes", []) or []) or facts.class_names
-    images, labels, indices = _first_images(ds, n)
+    images, labels, indices = _sample_images(ds, n)
     return _Sample(images=images, labels=labels, indices=indices, classes=classes,
                    normalisation=facts.normalisation, input_shape=input_shape)
 

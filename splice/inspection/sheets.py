@@ -100,7 +100,7 @@ def header(fig, size: tuple[int, int], title: str, note: str) -> None:
 
 
 def _count(n: int, of: int | None) -> str:
-    return f"the first {n} of {of} images" if of is not None and of > n else f"{n} images"
+    return f"{n} of {of} images (seeded, across classes)" if of is not None and of > n else f"{n} images"
 
 
 def _class_text(classes: list[str] | None, k: int | None) -> str:

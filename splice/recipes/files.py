@@ -26,13 +26,15 @@ _DATA_PACKAGE = "splice.recipe_files"
 
 
 def _recipe_root():
+    # the checkout this package was imported from comes first: an editable install
+    # of another checkout would otherwise answer for splice.recipe_files
+    here = Path(__file__).resolve().parents[2] / "recipes"
+    if (here / "baseline.toml").is_file():
+        return here
     try:
         return resources.files(_DATA_PACKAGE)
     except ModuleNotFoundError:
         pass
-    here = Path(__file__).resolve().parents[2] / "recipes"
-    if here.is_dir():
-        return here
     raise RecipeError(
         "the shipped recipes are missing from this installation (no recipes/ folder and no "
         f"{_DATA_PACKAGE} package data); reinstall splice, or pass a recipe file with --recipe path.toml"

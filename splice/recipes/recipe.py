@@ -11,7 +11,8 @@ from ..errors import RecipeError, suggest
 from .checks import choice, integer, is_number, number
 from .sections import Augment, Pretrain
 
-__all__ = ["RECIPE_SCHEMA_VERSION", "MODES", "OPTIMIZERS", "SCHEDULES", "REFERENCES", "WARP_MODES", "Recipe"]
+__all__ = ["RECIPE_SCHEMA_VERSION", "MODES", "OPTIMIZERS", "SCHEDULES", "REFERENCES", "RESET_HEAD", "WARP_MODES",
+           "Recipe"]
 
 RECIPE_SCHEMA_VERSION = 1
 MODES = ("baseline", "warp-only", "joint", "staged")
@@ -22,6 +23,9 @@ SCHEDULES = ("cosine", "step", "constant")
 # "train" always uses the training images; anything else names a data set
 # (digits, or an ImageFolder DIR) whose train split is the reference.
 REFERENCES = ("auto", "train")
+# Zero the final layer before a baseline fine-tune: "auto" when the trained
+# model is confidently wrong on the new data (see splice.training.head).
+RESET_HEAD = ("auto", "always", "never")
 WARP_MODES = ("warp-only", "joint", "staged")
 
 
@@ -52,7 +56,12 @@ class Recipe:
     better validation accuracy (0 = never stop early). ``freeze`` holds
     module-name glob patterns (``fnmatch``, e.g. ``"features.0*"``) whose
     parameters never train. ``normalisation`` is ``"auto"`` (from the model's
-    manifest or factory, else none), ``"none"``, or ``{mean = [...], std = [...]}``.
+    manifest or factory; for a random-init model whose factory declares
+    nothing, the mean and std of the training split), ``"none"``, or
+    ``{mean = [...], std = [...]}``. ``reset_head`` (``baseline`` only):
+    ``"auto"`` zeroes the final layer of a trained model whose validation loss
+    on the new data is above a uniform guess's, ``"always"``, or ``"never"``
+    (see :mod:`splice.training.head`).
     """
 
     name: str = "custom"
@@ -78,6 +87,7 @@ class Recipe:
     eval_every: int = 1
     patience: int = 0
     normalisation: Any = "auto"
+    reset_head: str = "never"
     augment: Augment = field(default_factory=Augment)
     pretrain: Pretrain = field(default_factory=Pretrain)
     schema_version: int = RECIPE_SCHEMA_VERSION
@@ -118,6 +128,7 @@ class Recipe:
         self.eval_every = integer(o, "eval_every", self.eval_every, low=1)
         self.patience = integer(o, "patience", self.patience, hint=" (0 never stops early)")
         self.normalisation = _check_normalisation(self.normalisation)
+        self.reset_head = choice(o, "reset_head", self.reset_head, RESET_HEAD)
         if isinstance(self.augment, Mapping):
             self.augment = _build(Augment, self.augment, "augment.")
         if isinstance(self.pretrain, Mapping):

@@ -78,14 +78,16 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
     """Build an architecture from a spec string (random init, nothing downloaded).
 
     Returns ``(model, meta)`` where ``meta`` holds the declared ``input_shape``
-    and ``normalisation`` (either may be ``None``). ``origin`` is the file the
+    and ``normalisation`` (either may be ``None``), and ``declares_normalisation``:
+    whether the builder says anything about it (``factory.normalisation = None``
+    declares "none"; no attribute declares nothing). ``origin`` is the file the
     spec was read from (``None``: the user typed it); such a spec passes the
     gate of :func:`splice.sources.trust.check_spec` first.
     """
     kwargs = dict(kwargs or {})
     check_spec(spec, kwargs, origin=origin, trust_code=trust_code)
     head, attr = _split_spec(spec)
-    meta: dict[str, Any] = {"input_shape": None, "normalisation": None}
+    meta: dict[str, Any] = {"input_shape": None, "normalisation": None, "declares_normalisation": False}
     if head == "torchvision":
         builder = _torchvision_builder(attr)
         if "weights" in kwargs and kwargs["weights"] is not None:
@@ -102,6 +104,7 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
             raise SourceError(f"torchvision:{attr} does not accept --kwargs {kwargs}: {exc}") from None
         meta["input_shape"] = _TORCHVISION_DEFAULT_SHAPES.get(attr, (3, 224, 224))
         meta["normalisation"] = IMAGENET_NORMALISATION
+        meta["declares_normalisation"] = True
     else:
         factory = _import_factory(head, attr, spec)
         try:
@@ -114,4 +117,5 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
         if declared is not None:
             meta["input_shape"] = parse_input_shape(declared)
         meta["normalisation"] = getattr(factory, "normalisation", None)
+        meta["declares_normalisation"] = hasattr(factory, "normalisation")
     return model, meta

@@ -29,6 +29,8 @@ class Source:
     ``weights_sha256`` is the canonical hash of the model's state dict after the
     weights were loaded (see :func:`splice._io.state_dict_sha256`): two sources
     hash equal exactly when every tensor is bitwise equal.
+    ``declares_normalisation`` is False when nothing (factory attribute,
+    torchvision, a folder's record) says how inputs are normalised.
     """
 
     model: nn.Module
@@ -42,6 +44,7 @@ class Source:
     manifest: dict | None = None
     random_init: bool = False
     leaves: tuple[str, ...] = ()
+    declares_normalisation: bool = True
 
     @property
     def is_spliced(self) -> bool:
@@ -127,6 +130,7 @@ def load_source(
         weights_path=str(weights) if weights is not None else None,
         weights_sha256=state_dict_sha256(model.state_dict()),
         normalisation=meta["normalisation"],
+        declares_normalisation=meta["declares_normalisation"],
         random_init=random_init,
         leaves=tuple(leaves),
     )

@@ -12,8 +12,13 @@
 functions of the seed), :mod:`~splice.training.loop` (the optimisation step
 and evaluation), :mod:`~splice.training.pretrain` (grid-matching pre-training
 of warp heads), :mod:`~splice.training.schedule` (learning-rate schedules),
-:mod:`~splice.training.checkpoint` (atomic, ``weights_only`` checkpoints) and
-:mod:`~splice.training.distributed` (torchrun process groups).
+:mod:`~splice.training.checkpoint` (atomic, ``weights_only`` checkpoints),
+:mod:`~splice.training.distributed` (torchrun process groups),
+:mod:`~splice.training.reference` (the upright reference of warp
+pre-training: :func:`~splice.training.reference.resolve_reference`),
+:mod:`~splice.training.normalisation` (the training split's statistics for a
+model that declares no normalisation) and :mod:`~splice.training.head` (the
+final-layer reset of a confidently wrong model before ``baseline``).
 
 Importing this package loads the loop (torch); ``import splice`` does not.
 """

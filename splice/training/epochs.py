@@ -8,6 +8,7 @@ optimiser, gradient scaler and RNG states.
 
 from __future__ import annotations
 
+import math
 import time
 from typing import Any
 
@@ -18,11 +19,12 @@ from ..errors import RecipeError, SpliceError, first_line
 from . import batches as _b
 from . import distributed
 from .checkpoint import set_rng_state
+from .head import confidently_wrong, final_layer, zero_final_layer_
 from .loop import Stepper, ThetaTap
 from .params import frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
-from .recording import checkpoint, diverged, finish, record, stopped
+from .recording import checkpoint, diverged, evaluate_val, finish, record, stopped
 from .runfolder import truncate_metrics
 from .schedule import lr_factor
 from .setup import reference_images
@@ -125,11 +127,17 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     """A fresh run: pre-train the warp heads (if the recipe does; ``resume`` continues a pre-training
     checkpoint), record the starting point, checkpoint. Returns a summary if stopped during pre-training."""
     ctx, rec = run.ctx, run.rec
-    if not (run.warps and rec.pretrain.epochs > 0):
-        record(run, "start", 0)
+    if not (run.warps and rec.pretrain.epochs > 0) or run.reference.skipped:
+        if run.warps and rec.pretrain.epochs > 0:
+            run.bar.line(f"no upright reference for {run.data!r} ([pretrain] if_no_reference = \"skip\"): "
+                         "warp pre-training skipped")
+        head = _head_to_reset(run)
+        record(run, "start", 0, extra={"head_reset": head} if rec.mode == "baseline" else None)
+        if head is not None:  # after the start was recorded: best/ keeps the unchanged model until beaten
+            zero_final_layer_(run.net, head)
         checkpoint(run, stepper, epoch=0, batch=0)
         return None
-    ref, ref_name = reference_images(rec, run.data, run.train, run.shape, run.reference_override)
+    ref = reference_images(run.reference, run.train, run.shape)
     set_requires_grad(run.net, frozen.names, base_frozen=True)
     shown = []
 
@@ -151,9 +159,31 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
         return stopped(run, 0, 0, where=f"warp pre-training step {res['steps']}")
     run.bar.finish(res["steps"])
     record(run, "pretrain", 0, loss=round(res["grid_loss"], 6),
-           extra={"reference": ref_name, "pretrain_steps": res["steps"]})
+           extra={"reference": run.reference.data, "pretrain_steps": res["steps"]})
     checkpoint(run, stepper, epoch=0, batch=0)
     return None
+
+
+def _head_to_reset(run: Run) -> str | None:
+    """The final layer to zero before a ``baseline`` fine-tune (recipe ``reset_head``), else ``None``."""
+    rec = run.rec
+    if rec.mode != "baseline" or rec.reset_head == "never":
+        return None
+    if rec.reset_head == "auto":
+        if (run.src.random_init and run.src.manifest is None) or not run.classes:
+            return None  # a random init has nothing to forget
+        val_loss, _ = evaluate_val(run)
+        if not confidently_wrong(val_loss, len(run.classes)):
+            return None
+    head = final_layer(run.net, run.prepare(_b.fetch(run.val, torch.arange(min(2, len(run.val))))[0]))
+    if head is None:
+        run.bar.line("reset_head: the model's output is not the output of one layer with parameters; nothing reset")
+        return None
+    why = "recipe reset_head = always" if rec.reset_head == "always" else (
+        f"its validation loss {val_loss:.2f} is above ln {len(run.classes)} = {math.log(len(run.classes)):.2f}, "
+        "a uniform guess's")
+    run.bar.line(f"final layer '{head}' zeroed before fine-tuning ({why}); see splice.training.head")
+    return head
 
 
 def _wrap(run: Run, base_frozen: bool) -> None:

@@ -38,7 +38,8 @@ from ..distort import random_distort
 from . import batches as _b
 from .schedule import lr_factor
 
-__all__ = ["target_grid", "execution_order", "warp_inputs", "grid_loss", "pretrain_warps_"]
+__all__ = ["target_grid", "execution_order", "warp_inputs", "grid_loss", "leave_unmoved", "reference_distance",
+           "pretrain_warps_"]
 
 
 class _Stop(Exception):
@@ -108,6 +109,53 @@ def _finite(loss: Tensor, params: list[Tensor]) -> bool:
         return False
     grads = [p.grad for p in params if p.grad is not None]
     return all(bool(torch.isfinite(g).all()) for g in grads)
+
+
+def leave_unmoved(images: Tensor, distorted: Tensor, matrix: Tensor, fraction: float,
+                  generator: torch.Generator) -> tuple[Tensor, Tensor]:
+    """Put back the unmoved image, with the identity as its target, for a random ``fraction`` of a batch.
+
+    A head that only ever sees moved images learns to move every image, upright
+    ones included; mixing in unmoved references with the identity as the
+    target teaches it to leave those alone. Draws from ``generator`` (one
+    uniform number per image), so the choice is a pure function of the batch seed.
+    """
+    if fraction <= 0:
+        return distorted, matrix
+    keep = torch.rand(images.shape[0], generator=generator) < fraction
+    distorted = torch.where(keep.view(-1, 1, 1, 1), images, distorted)
+    matrix = matrix.clone()
+    matrix[keep] = torch.eye(3, dtype=matrix.dtype)
+    return distorted, matrix
+
+
+@torch.no_grad()
+def reference_distance(model: nn.Module, warps: Mapping[str, nn.Module], x: Tensor) -> dict[str, float]:
+    """How far each warp moves the prepared inputs ``x``: RMS displacement of its sampling grid from the identity.
+
+    In pixels of the tensor the warp samples (the point's feature map), averaged
+    over every output pixel and image. On upright reference images a warp that
+    leaves them alone scores 0. The model's modes are restored.
+    """
+    modes = {m: m.training for m in model.modules()}
+    model.eval()
+    try:
+        captured, order = warp_inputs(model, warps, x)
+    finally:
+        for m, mode in modes.items():
+            m.training = mode
+    out = {}
+    for name in order:
+        args = captured[name]
+        feats = args[0]
+        h, w = feats.shape[-2], feats.shape[-1]
+        grid = warps[name].grid(warps[name].predict(args[1] if len(args) > 1 else feats), h, w)
+        ident = target_grid(torch.eye(3, dtype=torch.float64).expand(feats.shape[0], 3, 3), h, w,
+                            dtype=grid.dtype, device=grid.device)
+        # normalised coordinates span 2 units across the width and the height
+        px = (grid - ident) * torch.tensor([w / 2.0, h / 2.0], dtype=grid.dtype, device=grid.device)
+        out[name] = round(float(px.pow(2).sum(-1).mean().sqrt()), 6)
+    return out
 
 
 def pretrain_warps_(
@@ -224,8 +272,10 @@ class _Loop:
 
         gen = _b.generator(self.seed, "pretrain-distort", self.epoch, b, self.rank)
         distorted, meta = random_distort(images, self.config.to_range(), gen, fill=0.0)
+        distorted, matrix = leave_unmoved(images, distorted, meta["matrix"],
+                                          getattr(self.config, "identity_fraction", 0.0), gen)
         captured, _ = warp_inputs(self.model, self.warps, self.prepare(distorted), stop_after=order[-1])
-        loss = sum(grid_loss(self.warps[name], captured[name], meta["matrix"] if name == order[0] else None)
+        loss = sum(grid_loss(self.warps[name], captured[name], matrix if name == order[0] else None)
                    for name in order)
         for g in self.opt.param_groups:
             g["lr"] = self.config.lr * lr_factor("cosine", self.step, steps_per_epoch=self.steps_per_epoch,

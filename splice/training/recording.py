@@ -18,7 +18,7 @@ from .params import is_warp_name
 from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, writing
 from .state import Run, TuneInterrupted, unwrap
 
-__all__ = ["record", "checkpoint", "stopped", "finish", "nonfinite", "diverged"]
+__all__ = ["evaluate_val", "record", "checkpoint", "stopped", "finish", "nonfinite", "diverged"]
 
 
 def nonfinite(tensors) -> str | None:
@@ -54,7 +54,7 @@ def _check_finite(run: Run, epoch: int, *, optimizer: bool = False) -> None:
         raise diverged(run, f"'{bad}' became NaN or infinite", epoch)
 
 
-def _evaluate(run: Run) -> tuple[float, float]:
+def evaluate_val(run: Run) -> tuple[float, float]:
     """Validation loss and accuracy over every rank's share of the val split."""
     ctx = run.ctx
     idx = torch.arange(len(run.val))[ctx.rank::ctx.world_size]
@@ -66,6 +66,15 @@ def _evaluate(run: Run) -> tuple[float, float]:
 
 def _warp_distances(warps) -> dict[str, float]:
     return {name: round(float(w.identity_distance()), 6) for name, w in warps.items()}
+
+
+def _reference_distance(run: Run) -> dict[str, float] | None:
+    """Each warp's RMS grid displacement in pixels on held-out upright reference images (0: the identity)."""
+    from .pretrain import reference_distance
+
+    if not run.warps or run.reference_probe is None:
+        return None
+    return reference_distance(unwrap(run.net_wrapped), run.warps, run.prepare(run.reference_probe))
 
 
 def _base_changed(run: Run) -> bool:
@@ -88,7 +97,7 @@ def _save_folder(run: Run, which: str, epoch: int, accuracy: float) -> None:
         return
     model = unwrap(run.net_wrapped)
     kwargs = {"overwrite": True, "tuning": _tuning(run, which, epoch, accuracy),
-              "class_names": run.classes, "normalisation": run.norm}
+              "class_names": run.classes, "normalisation": run.norm, "trained_on": run.trained_on}
     if info_of(model) is None:
         kwargs["source"] = run.src
     with writing(run.run_dir / which):
@@ -105,18 +114,21 @@ def _line(run: Run, row: dict) -> str:
         parts.append(f"{row['images_per_s']:,.0f} img/s")
     if run.warps:
         parts.append("warp dist " + ", ".join(f"{k} {v:.3f}" for k, v in row["warp_distance"].items()))
+    if row.get("reference_distance"):
+        parts.append("upright shift px " + ", ".join(f"{k} {v:.2f}" for k, v in row["reference_distance"].items()))
     return "  ".join(parts)
 
 
 def record(run: Run, phase: str, epoch: int, *, loss=None, train_acc=None, ips=None, extra=None) -> bool:
     """Evaluate, append a metrics row, save ``best`` (if better) and ``last``, log a line; True if improved."""
     _check_finite(run, max(epoch, 1))
-    val_loss, acc = _evaluate(run)
+    val_loss, acc = evaluate_val(run)
     if not torch.isfinite(torch.tensor(val_loss)):
         raise diverged(run, f"the validation loss became {val_loss}", max(epoch, 1))
     row = {"phase": phase, "epoch": epoch, "step": run.step, "loss": loss, "train_accuracy": train_acc,
            "accuracy": round(acc, 6), "val_loss": round(val_loss, 6), "lr": run.optimizer.param_groups[0]["lr"],
            "images_per_s": ips, "warp_distance": _warp_distances(run.warps),
+           "reference_distance": _reference_distance(run),
            "base_frozen": run.rec.base_frozen(max(0, epoch - 1)),
            "time_s": round(time.monotonic() - run.t_run, 3), **(extra or {})}
     if run.ctx.is_main:

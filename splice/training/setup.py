@@ -20,10 +20,13 @@ from ..recipes import Recipe, load_recipe
 from ..surgery import WARP_PREFIX, warps_of
 from .batches import mix
 from .checkpoint import CHECKPOINT_NAME, load_checkpoint
+from .normalisation import estimate_normalisation
 from .options import RecipeOverrides
+from .reference import Reference, data_record, resolve_reference
 from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe
 
-__all__ = ["Request", "resolve", "load_model", "open_splits", "reference_images", "normalisation", "run_info"]
+__all__ = ["Request", "resolve", "load_model", "open_splits", "reference", "reference_images", "reference_probe",
+           "normalisation", "run_info"]
 
 
 @dataclass
@@ -156,30 +159,74 @@ def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[
     return train, val, classes
 
 
-def reference_images(recipe: Recipe, data: str, train, input_shape, override: str | None):
-    """The images warp pre-training distorts, and their name (``[pretrain] reference``)."""
-    from ..data import open_data, upright_counterpart
+def reference(req: Request, net: nn.Module, override: str | None) -> Reference | None:
+    """The upright reference of a warp run (``None`` for ``baseline``), resolved once and kept in run.json.
 
-    choice = override or recipe.pretrain.reference
-    if choice == "train":
-        return train, "train"
-    if choice == "auto":
-        upright = getattr(train, "reference", None) or upright_counterpart(data)
-        if upright is None:
-            return train, "train"
-        return open_data(upright, "train", input_shape=input_shape), upright
-    return open_data(choice, "train", input_shape=input_shape), choice
-
-
-def normalisation(recipe: Recipe, src) -> dict | None:
-    if recipe.normalisation == "none":
+    A resumed run keeps the reference it started with. When pre-training is
+    off (``[pretrain] epochs = 0``) a missing reference is no error: the run
+    then only lacks the ``reference_distance`` metric.
+    """
+    rec = req.recipe
+    if not rec.uses_warps:
         return None
-    if recipe.normalisation == "auto":
-        return src.normalisation
-    return dict(recipe.normalisation)
+    if req.info is not None and "reference" in req.info:
+        return Reference(req.info["reference"], req.info.get("reference_origin") or "recorded")
+    record = info_of(net)
+    given = override or rec.pretrain.reference
+    if_missing = rec.pretrain.if_no_reference if rec.pretrain.epochs > 0 else "skip"
+    return resolve_reference(req.data, given=given, trained_on=record.trained_on if record else None,
+                             if_missing=if_missing)
 
 
-def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm) -> dict:
+def reference_images(ref: Reference, train, input_shape, split: str = "train"):
+    """The images of ``ref`` (``"train"``: the run's own training split ``train``)."""
+    from ..data import open_data
+
+    if ref.data == "train":
+        return train
+    return open_data(ref.data, split, input_shape=input_shape)
+
+
+def reference_probe(ref: Reference | None, train, val, input_shape, n: int = 256) -> torch.Tensor | None:
+    """Up to ``n`` held-out reference images (its val split, else its train split) for ``reference_distance``."""
+    from . import batches as _b
+
+    if ref is None or ref.skipped:
+        return None
+    if ref.data == "train":
+        images = val
+    else:
+        try:
+            images = reference_images(ref, train, input_shape, split="val")
+        except DataError:
+            images = reference_images(ref, train, input_shape)
+    k = min(n, len(images))
+    pick = torch.randperm(len(images), generator=_b.generator(0, "reference-probe"))[:k]
+    return _b.fetch(images, pick)[0]
+
+
+def normalisation(recipe: Recipe, src, train) -> tuple[dict | None, str]:
+    """The input normalisation of a run and where it came from (``recipe``, ``model``, ``estimated``, ``none``).
+
+    ``"auto"`` takes the model's (its factory's declaration or its folder's
+    record). A model built from a spec whose factory declares nothing, with a
+    random init, gets the per-channel mean and std of the training split
+    (:func:`splice.training.normalisation.estimate_normalisation`): plain CNNs without batch
+    norm barely train on raw [0, 1] images (measured in bench_efficacy).
+    """
+    if recipe.normalisation == "none":
+        return None, "none"
+    if recipe.normalisation != "auto":
+        return dict(recipe.normalisation), "recipe"
+    if src.normalisation is not None:
+        return src.normalisation, "model"
+    if not src.declares_normalisation and src.random_init and src.manifest is None:
+        return estimate_normalisation(train), "estimated"
+    return None, "model"
+
+
+def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm, *, norm_origin: str,
+             ref: Reference | None) -> dict:
     """The run.json record of a fresh run."""
     base = {k: v for k, v in net.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
     weights = req.model_options.weights
@@ -188,6 +235,8 @@ def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm) -
         "model_kwargs": dict(src.kwargs), "model_weights": str(weights) if weights is not None else None,
         "data": req.data, "recipe": req.recipe.name, "mode": req.recipe.mode, "world_size": ctx.world_size,
         "device": str(ctx.device), "input_shape": list(src.input_shape), "class_names": classes or None,
-        "normalisation": norm, "base_sha256_start": state_dict_sha256(base), "status": "running",
+        "data_path": data_record(req.data), "normalisation": norm, "normalisation_origin": norm_origin,
+        "reference": None if ref is None else ref.data, "reference_origin": None if ref is None else ref.origin,
+        "base_sha256_start": state_dict_sha256(base), "status": "running",
         "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
     }

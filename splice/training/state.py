@@ -47,7 +47,9 @@ class Run:
     workers: int = 0
     stop_after_steps: int | None = None
     stop_after_pretrain_steps: int | None = None
-    reference_override: str | None = None
+    reference: Any = None  # splice.training.reference.Reference, None for baseline
+    reference_probe: torch.Tensor | None = None  # held-out reference images for reference_distance
+    trained_on: str | None = None
 
     bar: Any = None  # splice.progress.Progress
     flag: Any = None  # the SIGINT/SIGTERM stop flag

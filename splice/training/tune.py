@@ -57,8 +57,9 @@ from . import distributed
 from .epochs import train
 from .options import RecipeOverrides, RunOptions
 from ..sources import check_spec
+from .reference import data_record
 from .runfolder import RUN_FILE, prepare_folder, read_run_info, start_files, write_run_info
-from .setup import load_model, normalisation, open_splits, resolve, run_info
+from .setup import load_model, normalisation, open_splits, reference, reference_probe, resolve, run_info
 from .state import Run, TuneInterrupted
 
 __all__ = ["tune", "tune_keywords"]
@@ -199,7 +200,13 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
     src, net, warps = load_model(req, where)
     net.to(ctx.device)
     train_set, val_set, classes = open_splits(req.data, src, net, ctx.device)
-    norm = normalisation(rec, src)
+    ref = reference(req, net, overrides.reference)
+    if info is not None and ref is not None and "reference" not in info:
+        info = dict(info, reference=ref.data, reference_origin=ref.origin)
+    if info is not None and info.get("normalisation_origin") == "estimated":
+        norm, norm_origin = info["normalisation"], "estimated"  # a resumed run keeps its estimate
+    else:
+        norm, norm_origin = normalisation(rec, src, train_set)
     dev = ctx.device
 
     def prepare(x: torch.Tensor) -> torch.Tensor:
@@ -208,7 +215,7 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
         return normalise(x, norm).to(dev, non_blocking=True)
 
     if info is None:
-        info = run_info(ctx, req, src, net, classes, norm)
+        info = run_info(ctx, req, src, net, classes, norm, norm_origin=norm_origin, ref=ref)
         if ctx.is_main:
             start_files(run_dir, rec, info)
     elif ctx.is_main:
@@ -219,7 +226,25 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
                norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=req.data,
                shape=tuple(src.input_shape), where=where, ckpt=req.ckpt, workers=run_options.workers,
                stop_after_steps=run_options.stop_after_steps,
-               stop_after_pretrain_steps=run_options.stop_after_pretrain_steps, reference_override=overrides.reference)
+               stop_after_pretrain_steps=run_options.stop_after_pretrain_steps, reference=ref,
+               reference_probe=reference_probe(ref, train_set, val_set, tuple(src.input_shape)),
+               trained_on=_trained_on(rec, req.data, net, ref))
+
+
+def _trained_on(rec, data: str, net, ref) -> str:
+    """What the folders this run saves record as the images their base was trained on.
+
+    A ``baseline`` run trains its base on ``data``; a warp run keeps its base's
+    record, else the reference it pre-trained on (its own data for ``train``).
+    """
+    from ..manifest import info_of
+
+    info = info_of(net)
+    if rec.uses_warps and info is not None and info.trained_on:
+        return info.trained_on
+    if rec.uses_warps and ref is not None and not ref.skipped and ref.data != "train":
+        return ref.data
+    return data_record(data)
 
 
 def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
