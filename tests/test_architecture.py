@@ -180,3 +180,14 @@ def test_function_size():
                 if n > MAX_FUNCTION_LINES:
                     long.append(f"{path.relative_to(ROOT.parent)}:{node.lineno} {node.name} ({n} lines)")
     assert not long, f"functions over {MAX_FUNCTION_LINES} lines: " + "; ".join(long)
+
+
+def test_every_package_ships_in_the_wheel():
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+
+    declared = set(tomllib.loads((ROOT.parent / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"])
+    packages = {_module_name(p) for p in ROOT.rglob("__init__.py")}
+    assert packages <= declared, f"packages missing from pyproject.toml: {sorted(packages - declared)}"
