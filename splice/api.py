@@ -62,7 +62,7 @@ def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] 
     >>> import splice
     >>> pts = splice.points("splice.models:tray_net")
     >>> [p.name for p in pts if p.recommended]
-    ['input', 'pool2']
+    ['input']
     >>> pts[0].shape, pts[0].cut
     ((1, 48, 48), True)
     """
