@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import RecipeError, suggest
-from .recipe import Recipe
+from .recipe import SECTIONS, Recipe
 
 if sys.version_info >= (3, 11):
     import tomllib as _toml
@@ -26,13 +26,15 @@ _DATA_PACKAGE = "splice.recipe_files"
 
 
 def _recipe_root():
+    # the checkout beside this package first: an editable install's package data
+    # may point at another checkout of the same project
+    here = Path(__file__).resolve().parents[2] / "recipes"
+    if here.is_dir() and (here / "baseline.toml").is_file():
+        return here
     try:
         return resources.files(_DATA_PACKAGE)
     except ModuleNotFoundError:
         pass
-    here = Path(__file__).resolve().parents[2] / "recipes"
-    if here.is_dir():
-        return here
     raise RecipeError(
         "the shipped recipes are missing from this installation (no recipes/ folder and no "
         f"{_DATA_PACKAGE} package data); reinstall splice, or pass a recipe file with --recipe path.toml"
@@ -110,7 +112,9 @@ def recipe_to_toml(recipe: Recipe) -> str:
     """The recipe as TOML text that :func:`load_recipe` reads back to an equal recipe."""
     d = recipe.to_dict()
     lines = [f"# resolved splice recipe '{recipe.name}'", f"schema_version = {d.pop('schema_version')}"]
-    sections = {k: d.pop(k) for k in ("augment", "pretrain")}
+    sections = {k: d.pop(k) for k in SECTIONS}
+    if recipe.mode != "label-free" and recipe.site == SECTIONS["site"]():
+        del sections["site"]  # only the label-free recipe reads [site]; a default one is left out
     lines += [f"{k} = {_toml_value(v)}" for k, v in d.items()]
     for sec, values in sections.items():
         lines += ["", f"[{sec}]"] + [f"{k} = {_toml_value(v)}" for k, v in values.items()]
