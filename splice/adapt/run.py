@@ -190,12 +190,14 @@ def run_label_free(run: AdaptRun) -> dict[str, Any]:
         _pretrain(run)
     plan = Epochs(run)
     order = execution_order(run.net, run.warps, run.prepare(run.site.batch(torch.arange(min(2, len(run.site))))))
+    resumed = tuple(run.ckpt.get("epoch_totals", (0.0, 0))) if run.ckpt is not None else (0.0, 0)
     for epoch in range(start_epoch, run.rec.epochs):
-        stop, batch, loss = adapt_epoch(run, plan, order, epoch, start_batch if epoch == start_epoch else 0)
+        first = start_batch if epoch == start_epoch else 0
+        stop, batch, (total, seen) = adapt_epoch(run, plan, order, epoch, first, resumed if first else (0.0, 0))
         if batch is not None:
-            save_state(run, phase="adapt", epoch=epoch, batch=batch)
+            save_state(run, phase="adapt", epoch=epoch, batch=batch, extra={"epoch_totals": [total, seen]})
             return _stopped(run, epoch, batch)
-        _checkpointed_row(run, "epoch", epoch + 1, round(loss, 6))
+        _checkpointed_row(run, "epoch", epoch + 1, round(total / max(1, seen), 6))
         if stop:
             return _stopped(run, epoch + 1, 0)
     return end(run, read_metrics(run.run_dir) if run.ctx.is_main else [])

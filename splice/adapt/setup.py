@@ -120,11 +120,11 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
         return normalise(x, norm).to(dev, non_blocking=True)
 
     ref_name = None
-    if rec.mode == "label-free":
+    if rec.mode == "label-free" and info is not None:  # resuming: the run folder says which
+        check_same("reference", overrides.reference, info.get("reference"), run_dir)
+        ref_name = info.get("reference")
+    if rec.mode == "label-free" and ref_name is None:
         ref_name = resolve_reference(rec, req.data, overrides.reference)
-        if info is not None:
-            check_same("reference", overrides.reference, info.get("reference"), run_dir)
-            ref_name = info.get("reference") or ref_name
     site_images = open_images(req.data, shape, what="site")
     reference = open_images(ref_name, shape, what="reference") if ref_name else None
     classes = list(src.class_names) if src.class_names else []

@@ -69,12 +69,14 @@ def _anchor_loss(run: AdaptRun, order: list[str], n: int, gen: torch.Generator) 
     return regression_loss(run.net, run.warps, order, run.prepare(moved), matrix)
 
 
-def adapt_epoch(run: AdaptRun, plan: Epochs, order: list[str], epoch: int, first: int) -> tuple[bool, int | None, float]:
+def adapt_epoch(run: AdaptRun, plan: Epochs, order: list[str], epoch: int, first: int,
+                totals: tuple[float, int] = (0.0, 0)) -> tuple[bool, int | None, tuple[float, int]]:
     """Train the heads on ``epoch``'s site batches from ``first``.
 
-    Returns ``(stop requested, batch, mean loss)``: ``batch`` is set when the run
-    stopped mid-epoch (the caller checkpoints it); a stop on the last batch lets
-    the epoch finish first.
+    ``totals`` are the loss sum and image count of the batches before
+    ``first`` (a resumed epoch). Returns ``(stop requested, batch, totals)``:
+    ``batch`` is set when the run stopped mid-epoch (the caller checkpoints
+    it); a stop on the last batch lets the epoch finish first.
     """
     ctx, rec = run.ctx, run.rec
     batches = _b.index_batches(_b.shard(_b.epoch_order(rec.seed, epoch, len(run.site), tag="site"),
@@ -82,7 +84,7 @@ def adapt_epoch(run: AdaptRun, plan: Epochs, order: list[str], epoch: int, first
     params = [p for w in run.warps.values() for p in w.parameters() if p.requires_grad]
     reduce = grad_reducer(ctx)
     run.bar.start(f"adapt {epoch + 1}/{rec.epochs}", len(batches))
-    total, seen, t0 = 0.0, 0, time.perf_counter()
+    (total, seen), t0 = totals, time.perf_counter()
     for b in range(first, len(batches)):
         gen = _b.generator(rec.seed, "adapt", epoch, b, ctx.rank)
         images = run.site.batch(batches[b])
@@ -106,5 +108,5 @@ def adapt_epoch(run: AdaptRun, plan: Epochs, order: list[str], epoch: int, first
         run.bar.update(b + 1, loss=total / max(1, seen), **{"img/s": seen / max(time.perf_counter() - t0, 1e-9)})
         wanted = run.flag.raised or (run.stop_after_steps is not None and run.step >= run.stop_after_steps)
         if distributed.broadcast_flag(ctx, wanted) if ctx.distributed else wanted:
-            return True, (b + 1 if b + 1 < len(batches) else None), total / max(1, seen)
-    return False, None, total / max(1, seen)
+            return True, (b + 1 if b + 1 < len(batches) else None), (total, seen)
+    return False, None, (total, seen)
