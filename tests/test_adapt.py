@@ -268,3 +268,49 @@ def test_site_table_is_written_for_the_label_free_recipe_only():
     assert "[site]" not in recipe_to_toml(load_recipe("joint"))
     assert load_recipe("label-free").site.objective in ("entropy", "consistency", "none")
     assert load_recipe("batchnorm-stats").label_free and not load_recipe("warp-only").label_free
+
+
+_TINY_TOML = """\
+schema_version = 1
+mode = "label-free"
+epochs = 2
+batch_size = 64
+[pretrain]
+epochs = 1
+batch_size = 32
+[site]
+probe_epochs = 1
+probe_width = 4
+"""
+
+
+@pytest.mark.slow
+def test_two_process_label_free_run_ends_with_identical_weights_and_one_run_folder(tmp_path):
+    import os
+    import subprocess
+    import sys
+
+    from splice.sources import load_source
+
+    src = load_source(SPEC, kwargs=KW, input_shape=SHAPE, warn_random=False)
+    spliced = tmp_path / "spliced"
+    splice.save(splice.insert(src, at=["input"], warp=splice.WarpConfig(head_width=4)), spliced)
+    recipe = tmp_path / "tiny.toml"
+    recipe.write_text(_TINY_TOML, encoding="utf-8")
+    run = tmp_path / "run"
+    env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONWARNINGS="ignore", SPLICE_TUNE_RANK_HASHES="1")
+    cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc-per-node", "2",
+           "-m", "splice", "tune", str(spliced), "--recipe", str(recipe), "--site", "digits-moved",
+           "--out", str(run), "--device", "cpu"]
+    proc = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600, cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    hashes = [(run / f"rank{r}.sha256").read_text().strip() for r in (0, 1)]
+    assert hashes[0] == hashes[1]  # gradients averaged over the ranks kept them in lockstep
+    assert state_dict_sha256(splice.load(run / "last").state_dict()) == hashes[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run", "spliced", "tiny.toml"]
+    rows = read_metrics(run)
+    assert [r["phase"] for r in rows] == ["start", "estimate", "pretrain", "epoch", "epoch"]
+    assert rows[-1]["step"] == 2 * -(-1078 // 64)
+    info = json.loads((run / "run.json").read_text())
+    assert info["world_size"] == 2 and info["status"] == "finished"
+    assert proc.stdout.count("epoch 2/2") == 1 and proc.stdout.count("no label read") == 1
