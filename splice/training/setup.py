@@ -43,7 +43,8 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
     """The recipe, model and data of a fresh run, or of a resumed one (whose run folder is the authority)."""
     if info is None:
         if recipe is None:
-            raise RecipeError("tune needs a recipe: baseline, warp-only, joint, staged, or a .toml file")
+            raise RecipeError("tune needs a recipe: baseline, warp-only, joint, staged, label-free, batchnorm-stats, "
+                              "or a .toml file")
         if model is None:
             raise SpliceError("tune needs a model: a spec such as splice.models:tray_net or a splice folder")
         rec = load_recipe(recipe).with_overrides(**overrides.recipe_keys())
