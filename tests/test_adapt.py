@@ -314,3 +314,16 @@ def test_two_process_label_free_run_ends_with_identical_weights_and_one_run_fold
     info = json.loads((run / "run.json").read_text())
     assert info["world_size"] == 2 and info["status"] == "finished"
     assert proc.stdout.count("epoch 2/2") == 1 and proc.stdout.count("no label read") == 1
+
+
+def test_small_folders_are_held_in_memory_and_large_ones_read_batch_by_batch(folders, monkeypatch):
+    from splice.adapt.images import FileImages
+
+    _, site = folders
+    held = open_images(str(site), SHAPE)
+    assert isinstance(held, TensorImages) and len(held) == 40
+    monkeypatch.setattr("splice.adapt.images.MEMORY_LIMIT", 0)
+    lazy = open_images(str(site), SHAPE)
+    assert isinstance(lazy, FileImages)
+    idx = torch.tensor([3, 0, 39])
+    assert torch.equal(lazy.batch(idx), held.batch(idx))

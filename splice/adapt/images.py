@@ -10,7 +10,10 @@ class names are wrong all give the same images. When a folder has a
 
 An :class:`Images` is a length and a ``batch(indices)`` that returns
 ``(N, C, H, W)`` float32 in [0, 1], resized like every other splice data path
-(:func:`splice.data.load_images`).
+(:func:`splice.data.load_images`). A folder whose images fit in
+:data:`MEMORY_LIMIT` bytes is read once and held in memory (pre-training
+passes over the reference a hundred times and more); a larger one is read
+batch by batch.
 """
 
 from __future__ import annotations
@@ -24,7 +27,11 @@ from torch import Tensor
 
 from ..errors import DataError
 
-__all__ = ["Images", "TensorImages", "FileImages", "SubsetImages", "open_images", "image_files", "split_off"]
+__all__ = ["MEMORY_LIMIT", "Images", "TensorImages", "FileImages", "SubsetImages", "open_images", "image_files", "split_off"]
+
+
+# Folders up to this many bytes of float32 pixels are held in memory (common practice, no source).
+MEMORY_LIMIT = 512 * 2**20
 
 
 class Images:
@@ -139,4 +146,6 @@ def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") ->
         raise DataError(
             f"{what} folder '{root}' holds no images; add files with one of the suffixes {', '.join(IMAGE_SUFFIXES)}"
         )
-    return FileImages(files, input_shape, str(root.resolve()))
+    images = FileImages(files, input_shape, str(root.resolve()))
+    pixels = len(files) * int(torch.tensor(images.input_shape).prod())
+    return TensorImages(images.all(), images.name) if 4 * pixels <= MEMORY_LIMIT else images
