@@ -135,14 +135,17 @@ def _pretrain(run: AdaptRun) -> None:
 
 
 def _checkpointed_row(run: AdaptRun, phase: str, epoch: int, loss, extra=None) -> None:
-    """Diagnose, write the row, save best (by agreement) and last, checkpoint at the start of the next epoch."""
+    """Diagnose, write the row, save best and last, checkpoint at the start of the next epoch.
+
+    ``best/`` is the latest state, like ``last/``: without labels nothing told
+    the checkpoints of one run apart (see :mod:`splice.adapt.record`).
+    """
     diag = _diagnose(run)
     row(run, phase, epoch, site=diag, loss=loss, extra=extra)
     score = diag["agreement"] if diag else None
-    if score is not None and score >= run.best["score"]:
-        run.best = {"score": score, "epoch": epoch, "step": run.step}
-        save_folder(run, "best", epoch, score)
-    save_folder(run, "last", epoch, score)
+    run.best = {"score": score if score is not None else -1.0, "epoch": epoch, "step": run.step}
+    for which in ("best", "last"):
+        save_folder(run, which, epoch, score)
     save_state(run, phase="adapt", epoch=epoch, batch=0)
 
 
