@@ -170,7 +170,7 @@ def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike 
 
 
 def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides=None, model_options=None,
-         run_options=None) -> dict:
+         run_options=None, site=None) -> dict:
     """Fine-tune with a recipe and write a run folder (see :func:`splice.training.tune`).
 
     A folder (or ``resume``'s run.json) that names a model no registry lists is
@@ -187,7 +187,7 @@ def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides
     from .training import tune as tune_run
 
     return tune_run(model, recipe=recipe, data=data, out=out, resume=resume, overrides=overrides,
-                    model_options=model_options, run_options=run_options)
+                    model_options=model_options, run_options=run_options, site=site)
 
 
 def evaluate(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,

@@ -209,12 +209,15 @@ def _cmd_tune(args) -> int:
         epochs=args.epochs, lr=args.lr, batch_size=args.batch_size, seed=args.seed, device=args.device,
         quiet=args.quiet, weights=args.weights, kwargs=args.kwargs, input_shape=args.input_shape,
         allow_partial=args.allow_partial, trust_pickle=args.trust_pickle, leaves=tuple(args.leaf),
-        workers=args.workers, reference=args.reference, trust_code=args.trust_code,
+        workers=args.workers, reference=args.reference, trust_code=args.trust_code, site=args.site,
     )
     if summary and not args.quiet and summary.get("rank", 0) == 0:
         out = _console()
-        out.print(f"best val accuracy {summary['best_accuracy']:.4f} at epoch {summary['best_epoch']}; "
-                  f"run folder {summary['out']}")
+        if summary.get("best_accuracy") is None:  # a label-free run: no accuracy without labels
+            out.print(f"run folder {summary['out']} (no label read; see the site diagnostics above)")
+        else:
+            out.print(f"best val accuracy {summary['best_accuracy']:.4f} at epoch {summary['best_epoch']}; "
+                      f"run folder {summary['out']}")
     return EXIT_OK
 
 
@@ -313,9 +316,13 @@ def _parser_tune(sub) -> None:
     p = sub.add_parser("tune", help="fine-tune with a shipped recipe (torchrun for several processes)")
     _add_model_options(p, optional=True)
     p.add_argument("--recipe", metavar="NAME|FILE",
-                   help="baseline, warp-only, joint, staged, or a path to a .toml recipe (optional with --resume)")
+                   help="baseline, warp-only, joint, staged, label-free, batchnorm-stats, or a path to a .toml "
+                        "recipe (optional with --resume)")
     p.add_argument("--data", default=None, metavar="NAME|DIR",
                    help="digits (default), digits-moved, or an ImageFolder tree")
+    p.add_argument("--site", default=None, metavar="NAME|DIR",
+                   help="label-free and batchnorm-stats: unlabelled images from the new site (a folder, or "
+                        "digits-moved); no label is read")
     p.add_argument("--reference", metavar="NAME|DIR",
                    help="images of the kind the base was trained on, for warp-head pre-training; 'train' for the "
                         "training images (default: the recipe's [pretrain] reference; 'auto' finds digits for "

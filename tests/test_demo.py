@@ -32,6 +32,9 @@ def test_demo_fast_end_to_end(tmp_path):
     e = summary["errors"]
     assert e["joint"]["digits-moved"] < e["control"]["digits-moved"]
     assert e["warp-only"]["digits-moved"] < e["control"]["digits-moved"]
+    # without a label the warp still reads moved parts far better than the base does
+    assert e["label-free"]["digits-moved"] < e["base"]["digits-moved"]
+    assert "label-free (no label read" in report and summary["label_free"]["ranges"]["rotation"] > 0
     # the rerun replaces a previous demo folder, but never a foreign one
     (tmp_path / "foreign").mkdir()
     (tmp_path / "foreign" / "keep.txt").write_text("mine")

@@ -46,7 +46,7 @@ def test_shipped_recipes_have_the_documented_roles():
         assert load_recipe(name).pretrain.epochs > 0
 
 
-@pytest.mark.parametrize("name", ["baseline", "warp-only", "joint", "staged"])
+@pytest.mark.parametrize("name", ["baseline", "warp-only", "joint", "staged", "label-free", "batchnorm-stats"])
 def test_resolved_recipe_round_trips_through_toml(tmp_path, name):
     recipe = load_recipe(name).with_overrides(epochs=3, lr=0.02)
     path = dump_recipe(recipe, tmp_path / "recipe.toml")

@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import RecipeError, suggest
-from .recipe import Recipe
+from .recipe import SECTIONS, Recipe
 
 if sys.version_info >= (3, 11):
     import tomllib as _toml
@@ -115,7 +115,9 @@ def recipe_to_toml(recipe: Recipe) -> str:
     """The recipe as TOML text that :func:`load_recipe` reads back to an equal recipe."""
     d = recipe.to_dict()
     lines = [f"# resolved splice recipe '{recipe.name}'", f"schema_version = {d.pop('schema_version')}"]
-    sections = {k: d.pop(k) for k in ("augment", "pretrain")}
+    sections = {k: d.pop(k) for k in SECTIONS}
+    if recipe.mode != "label-free" and recipe.site == SECTIONS["site"]():
+        del sections["site"]  # only the label-free recipe reads [site]; a default one is left out
     lines += [f"{k} = {_toml_value(v)}" for k, v in d.items()]
     for sec, values in sections.items():
         lines += ["", f"[{sec}]"] + [f"{k} = {_toml_value(v)}" for k, v in values.items()]

@@ -9,13 +9,13 @@ from typing import Any
 
 from ..errors import RecipeError, suggest
 from .checks import choice, integer, is_number, number
-from .sections import Augment, Pretrain
+from .sections import Augment, Pretrain, Site
 
 __all__ = ["RECIPE_SCHEMA_VERSION", "MODES", "OPTIMIZERS", "SCHEDULES", "REFERENCES", "RESET_HEAD", "WARP_MODES",
-           "Recipe"]
+           "LABEL_FREE_MODES", "SECTIONS", "Recipe"]
 
 RECIPE_SCHEMA_VERSION = 1
-MODES = ("baseline", "warp-only", "joint", "staged")
+MODES = ("baseline", "warp-only", "joint", "staged", "label-free", "batchnorm-stats")
 OPTIMIZERS = ("sgd", "adamw")
 SCHEDULES = ("cosine", "step", "constant")
 # Where warp pre-training takes its images: "auto" uses the data set's upright
@@ -26,7 +26,11 @@ REFERENCES = ("auto", "train")
 # Zero the final layer before a baseline fine-tune: "auto" when the trained
 # model is confidently wrong on the new data (see splice.training.head).
 RESET_HEAD = ("auto", "always", "never")
-WARP_MODES = ("warp-only", "joint", "staged")
+WARP_MODES = ("warp-only", "joint", "staged", "label-free")
+# Modes that read no label: they learn from unlabelled site images (splice.adapt)
+LABEL_FREE_MODES = ("label-free", "batchnorm-stats")
+# The recipe's tables, in file order
+SECTIONS = {"augment": Augment, "pretrain": Pretrain, "site": Site}
 
 
 
@@ -43,6 +47,13 @@ class Recipe:
     - ``joint``: everything trains; warp heads at ``warp_lr_scale * lr``.
     - ``staged``: ``warp-only`` for the first ``round(warp_only_fraction * epochs)``
       epochs, then ``joint`` (a fraction, so ``--epochs`` keeps the proportion).
+    - ``label-free``: no label is read. The base is frozen as in ``warp-only``;
+      the warp heads learn from upright reference images and unlabelled site
+      images (``[site]``, :mod:`splice.adapt`); ``epochs`` counts passes over
+      the site images.
+    - ``batchnorm-stats``: no label is read and nothing trains; the BatchNorm
+      running statistics are re-estimated on the site images (AdaBN), over
+      ``epochs`` passes.
 
     Learning-rate schedule: linear warm-up over ``warmup_epochs`` (fractions
     allowed), then ``cosine`` (to 0 at the end), ``step`` (times
@@ -90,6 +101,7 @@ class Recipe:
     reset_head: str = "never"
     augment: Augment = field(default_factory=Augment)
     pretrain: Pretrain = field(default_factory=Pretrain)
+    site: Site = field(default_factory=Site)
     schema_version: int = RECIPE_SCHEMA_VERSION
 
     def __post_init__(self) -> None:
@@ -129,14 +141,11 @@ class Recipe:
         self.patience = integer(o, "patience", self.patience, hint=" (0 never stops early)")
         self.normalisation = _check_normalisation(self.normalisation)
         self.reset_head = choice(o, "reset_head", self.reset_head, RESET_HEAD)
-        if isinstance(self.augment, Mapping):
-            self.augment = _build(Augment, self.augment, "augment.")
-        if isinstance(self.pretrain, Mapping):
-            self.pretrain = _build(Pretrain, self.pretrain, "pretrain.")
-        if not isinstance(self.augment, Augment):
-            raise ValueError(f"augment must be a table of distortion ranges; got {self.augment!r}")
-        if not isinstance(self.pretrain, Pretrain):
-            raise ValueError(f"pretrain must be a table; got {self.pretrain!r}")
+        for sec, kind in SECTIONS.items():
+            if isinstance(getattr(self, sec), Mapping):
+                setattr(self, sec, _build(kind, getattr(self, sec), f"{sec}."))
+            if not isinstance(getattr(self, sec), kind):
+                raise ValueError(f"{sec} must be a table ([{sec}]); got {getattr(self, sec)!r}")
 
     # -- derived -----------------------------------------------------------------
 
@@ -145,9 +154,14 @@ class Recipe:
         """True for recipes that need a spliced model (everything but ``baseline``)."""
         return self.mode in WARP_MODES
 
+    @property
+    def label_free(self) -> bool:
+        """True for recipes that read no label (``label-free``, ``batchnorm-stats``)."""
+        return self.mode in LABEL_FREE_MODES
+
     def base_frozen(self, epoch: int) -> bool:
         """Whether the base is frozen during (0-based) ``epoch``."""
-        if self.mode == "warp-only":
+        if self.mode in ("warp-only", "label-free"):
             return True
         return self.mode == "staged" and epoch < self.warp_only_epochs
 
@@ -168,8 +182,8 @@ class Recipe:
         if not changes:
             return self
         try:
-            return dataclasses.replace(self, augment=dataclasses.replace(self.augment),
-                                       pretrain=dataclasses.replace(self.pretrain), **changes)
+            return dataclasses.replace(self, **{sec: dataclasses.replace(getattr(self, sec)) for sec in SECTIONS},
+                                       **changes)
         except ValueError as exc:
             flag = {"epochs": "--epochs", "lr": "--lr", "batch_size": "--batch-size", "seed": "--seed"}
             given = ", ".join(f"{flag[k]} {v}" for k, v in changes.items())
@@ -178,7 +192,7 @@ class Recipe:
     def to_dict(self) -> dict[str, Any]:
         """A plain dict (JSON/TOML-ready) with every key, sections as nested dicts."""
         d = dataclasses.asdict(self)
-        for sec in ("augment", "pretrain"):
+        for sec in SECTIONS:
             d[sec]["scale"] = list(d[sec]["scale"])
         return d
 
@@ -196,7 +210,7 @@ class Recipe:
             )
         try:
             _check_keys(cls, data, "", where)
-            for sec, kind in (("augment", Augment), ("pretrain", Pretrain)):
+            for sec, kind in SECTIONS.items():
                 if sec in data:
                     if not isinstance(data[sec], Mapping):
                         raise RecipeError(f"{where}: '{sec}' must be a table ([{sec}]); got {data[sec]!r}")

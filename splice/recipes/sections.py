@@ -1,6 +1,6 @@
-"""The ``[augment]`` and ``[pretrain]`` tables of a recipe.
+"""The ``[augment]``, ``[pretrain]`` and ``[site]`` tables of a recipe.
 
-Both hold distortion ranges (``rotation``, ``scale``, ``shift``,
+All three hold distortion ranges (``rotation``, ``scale``, ``shift``,
 ``perspective``); they share one dataclass, :class:`Ranges`, which checks
 them and turns them into a :class:`splice.distort.DistortionRange` in one place.
 """
@@ -13,7 +13,10 @@ from typing import ClassVar
 from ..distort import DistortionRange
 from .checks import boolean, choice, integer, number, scale_pair
 
-__all__ = ["Ranges", "Augment", "Pretrain"]
+__all__ = ["OBJECTIVES", "Ranges", "Augment", "Pretrain", "Site"]
+
+# What the label-free recipe learns from the site images themselves (see Site).
+OBJECTIVES = ("consistency", "entropy", "none")
 
 
 @dataclass
@@ -124,3 +127,58 @@ class Pretrain(Ranges):
         self.if_no_reference = choice(o, "if_no_reference", self.if_no_reference, ("stop", "skip"))
         self.identity_fraction = number(o, "identity_fraction", self.identity_fraction, low=0, high=0.9,
                                         hint=" (share of each batch left unmoved, target the identity)")
+
+
+@dataclass
+class Site(Ranges):
+    """Label-free adaptation to a new site (read by the ``label-free`` recipe only).
+
+    The :class:`Ranges` here are the *outer limits* of the range estimate: a
+    probe (a projective warp head on the input, ``probe_width`` wide, apart
+    from the model) is pre-trained for ``probe_epochs`` on random warps within
+    them, on all but a ``holdout`` share of the reference images; it then reads
+    the site images, and the ranges whose simulation on the held-out reference
+    reads the same are the estimate (:mod:`splice.adapt.ranges`). No estimate
+    goes beyond these limits. ``estimate = false`` skips all this and keeps the
+    ``[pretrain]`` ranges as typed.
+
+    ``unmoved`` is the share of every pre-training batch left unmoved, with the
+    identity as target, so that the warp leaves upright images alone.
+
+    ``objective`` is what the heads learn from the unlabelled site images after
+    pre-training: ``"consistency"`` (the canonical view of a site image must not
+    change when a known small extra warp is applied to it first),
+    ``"entropy"`` (the frozen classifier's prediction entropy on the canonical
+    views, with a class-balance term against collapse) or ``"none"``;
+    ``weight`` scales it. ``anchor`` weighs the pre-training loss on reference
+    images that keeps running beside it.
+    """
+
+    rotation: float = 90.0
+    scale: tuple[float, float] = (0.6, 1.6)
+    shift: float = 0.3
+    perspective: float = 0.3
+    estimate: bool = True
+    probe_epochs: int = 40
+    probe_width: int = 32
+    holdout: float = 0.2
+    unmoved: float = 0.25
+    objective: str = "consistency"
+    weight: float = 1.0
+    anchor: float = 1.0
+
+    _owner: ClassVar[str] = "site."
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        o = self._owner
+        self.estimate = boolean(o, "estimate", self.estimate)
+        self.probe_epochs = integer(o, "probe_epochs", self.probe_epochs, low=1)
+        self.probe_width = integer(o, "probe_width", self.probe_width, low=1)
+        self.holdout = number(o, "holdout", self.holdout, low=0.05, high=0.5,
+                              hint=" (share of the reference kept from the probe to simulate ranges on)")
+        self.unmoved = number(o, "unmoved", self.unmoved, low=0, high=0.9,
+                              hint=" (share of each pre-training batch left unmoved, target the identity)")
+        self.objective = choice(o, "objective", self.objective, OBJECTIVES)
+        self.weight = number(o, "weight", self.weight, low=0, high=1000)
+        self.anchor = number(o, "anchor", self.anchor, low=0, high=1000)

@@ -46,7 +46,8 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
     """The recipe, model and data of a fresh run, or of a resumed one (whose run folder is the authority)."""
     if info is None:
         if recipe is None:
-            raise RecipeError("tune needs a recipe: baseline, warp-only, joint, staged, or a .toml file")
+            raise RecipeError("tune needs a recipe: baseline, warp-only, joint, staged, label-free, batchnorm-stats, "
+                              "or a .toml file")
         if model is None:
             raise SpliceError("tune needs a model: a spec such as splice.models:tray_net or a splice folder")
         rec = load_recipe(recipe).with_overrides(**overrides.recipe_keys())
@@ -212,7 +213,9 @@ def normalisation(recipe: Recipe, src, train) -> tuple[dict | None, str]:
     record). A model built from a spec whose factory declares nothing, with a
     random init, gets the per-channel mean and std of the training split
     (:func:`splice.training.normalisation.estimate_normalisation`): plain CNNs without batch
-    norm barely train on raw [0, 1] images (measured in bench_efficacy).
+    norm barely train on raw [0, 1] images (measured in bench_efficacy). A
+    run without a labelled training split (``train=None``: the label-free
+    recipes, whose base is frozen) never estimates.
     """
     if recipe.normalisation == "none":
         return None, "none"
@@ -220,7 +223,7 @@ def normalisation(recipe: Recipe, src, train) -> tuple[dict | None, str]:
         return dict(recipe.normalisation), "recipe"
     if src.normalisation is not None:
         return src.normalisation, "model"
-    if not src.declares_normalisation and src.random_init and src.manifest is None:
+    if not src.declares_normalisation and src.random_init and src.manifest is None and train is not None:
         return estimate_normalisation(train), "estimated"
     return None, "model"
 

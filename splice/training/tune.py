@@ -52,13 +52,14 @@ import torch
 
 from ..errors import SpliceError, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
-from ..recipes import Recipe
+from ..errors import RecipeError
+from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
 from .epochs import train
 from .options import RecipeOverrides, RunOptions
 from ..sources import check_spec
 from .reference import data_record
-from .runfolder import RUN_FILE, prepare_folder, read_run_info, start_files, write_run_info
+from .runfolder import RECIPE_FILE, RUN_FILE, prepare_folder, read_run_info, start_files, write_run_info
 from .setup import load_model, normalisation, open_splits, reference, reference_probe, resolve, run_info
 from .state import Run, TuneInterrupted
 
@@ -121,6 +122,7 @@ def tune(
     overrides: RecipeOverrides | None = None,
     model_options: ModelOptions | None = None,
     run_options: RunOptions | None = None,
+    site: str | None = None,
 ) -> dict[str, Any]:
     """Fine-tune ``model`` with ``recipe`` on ``data``; write the run folder ``out``.
 
@@ -137,6 +139,13 @@ def tune(
     so one seed gives one run; the caller's RNG state is restored when the run
     ends. ``run_options`` (:class:`RunOptions`): device, output, workers,
     determinism. :func:`tune_keywords` takes every option as a flat keyword.
+
+    The recipes that read no label, ``label-free`` and ``batchnorm-stats``
+    (:mod:`splice.adapt`), take unlabelled ``site`` images instead of ``data``
+    (a folder, or ``digits-moved``); ``label-free`` also needs
+    ``overrides.reference``, the upright images the base was trained on,
+    unless the site is ``digits-moved``. Their summary adds ``ranges``,
+    ``site_before`` and ``site_after`` (label-free diagnostics) and has no accuracy.
 
     Returns a summary dict: ``out``, ``rank``, ``world_size``, ``best_accuracy``,
     ``best_epoch``, ``last_accuracy``, ``epochs``, ``steps``, ``base_changed``,
@@ -156,8 +165,19 @@ def tune(
             # the run seeds the global RNG step by step; the caller's RNG state comes back afterwards;
             # the run folder's lock is held until the run ends, however it ends
             with torch.random.fork_rng(devices=cuda), contextlib.ExitStack() as locks:
+                label_free = _mode(recipe, resume) in LABEL_FREE_MODES
+                if site is not None and not label_free:
+                    raise RecipeError(
+                        f"site images are read only by the label-free and batchnorm-stats recipes; pass labelled "
+                        f"data with --data (given --site {site})"
+                    )
                 fresh = out is not None and resume is None and not Path(out).exists()
                 try:
+                    if label_free:
+                        return _adapt(ctx, model=model, recipe=recipe, data=data, site=site, out=out, resume=resume,
+                                      overrides=overrides or RecipeOverrides(),
+                                      model_options=model_options or ModelOptions(), run_options=run_options,
+                                      locks=locks)
                     run = _set_up(ctx, model=model, recipe=recipe, data=data, out=out, resume=resume,
                                   overrides=overrides or RecipeOverrides(),
                                   model_options=model_options or ModelOptions(), run_options=run_options,
@@ -174,13 +194,49 @@ def tune(
         distributed.teardown(ctx)
 
 
-def tune_keywords(model: Any = None, *, recipe=None, data=None, out=None, resume=None, **keywords) -> dict[str, Any]:
+def tune_keywords(model: Any = None, *, recipe=None, data=None, out=None, resume=None, site=None,
+                  **keywords) -> dict[str, Any]:
     """:func:`tune` with the fields of :class:`RecipeOverrides`, :class:`~splice.options.ModelOptions`
     and :class:`RunOptions` as flat keywords (``epochs=``, ``weights=``, ``device=``, …): the CLI's path."""
     overrides, model_options, run_options = split_keywords(
         keywords, (RecipeOverrides, ModelOptions, RunOptions), "tune")
     return tune(model, recipe=recipe, data=data, out=out, resume=resume, overrides=overrides,
-                model_options=model_options, run_options=run_options)
+                model_options=model_options, run_options=run_options, site=site)
+
+
+def _mode(recipe, resume) -> str | None:
+    """The mode of the recipe a run will use (the recorded one when resuming without a recipe)."""
+    if recipe is not None:
+        return load_recipe(recipe).mode
+    if resume is not None and (Path(resume) / RECIPE_FILE).is_file():
+        return load_recipe(Path(resume) / RECIPE_FILE).mode
+    return None
+
+
+def _adapt(ctx, *, model, recipe, data, site, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
+           run_options: RunOptions, locks: contextlib.ExitStack) -> dict[str, Any]:
+    """A run that reads no label (:mod:`splice.adapt`), with the same folder, progress and stop handling."""
+    from ..adapt.bnstats import run_batchnorm_stats
+    from ..adapt.run import run_label_free
+    from ..adapt.setup import set_up
+    from ..progress import Progress
+
+    if data is not None:
+        raise RecipeError(
+            f"the label-free recipes read unlabelled site images, not labelled data; pass --site {data} instead "
+            "of --data"
+        )
+    if site is None and resume is None:
+        raise RecipeError(
+            "the label-free recipes need unlabelled images from the new site: pass --site SITE (a folder of "
+            "images, or digits-moved)"
+        )
+    run = set_up(ctx, model=model, recipe=recipe, site=site, out=out, resume=resume, overrides=overrides,
+                 model_options=model_options, stop_after_steps=run_options.stop_after_steps, locks=locks)
+    show = run_options.progress and ctx.is_main
+    with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
+        run.bar, run.flag = bar, flag
+        return run_label_free(run) if run.rec.mode == "label-free" else run_batchnorm_stats(run)
 
 
 def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,

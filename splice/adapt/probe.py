@@ -1,0 +1,91 @@
+"""The range probe: a projective warp head, apart from the model, that reads how images are moved.
+
+The probe sees what the model's input sees (prepared images) and is trained
+by grid regression (:mod:`splice.adapt.regress`) to undo random warps within
+the recipe's outer limits (``[site]``), on the reference images minus a
+held-out share. It is projective so that it can express every parameter the
+estimate reports, whatever family and point the model's own warps use; it is
+thrown away after the estimate (only the estimate is kept, in ``ranges.json``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import torch
+from torch import Tensor, nn
+
+from ..training import batches as _b
+from ..warps import Warp, WarpConfig
+from .images import Images, split_off
+from .ranges import (OBSERVABLE_RATIO, PARAMETERS, RangeEstimate, fit_ranges, observability, read_matrices,
+                     site_statistics)
+from .regress import near_identity, regress_warps_
+
+__all__ = ["ProbeNet", "build_probe", "train_probe", "estimate_ranges"]
+
+
+class ProbeNet(nn.Module):
+    """A lone warp as a model (``forward`` warps the input), so the pre-training loop can drive it."""
+
+    def __init__(self, warp: Warp) -> None:
+        super().__init__()
+        self.probe = warp
+
+    def forward(self, x: Tensor) -> Tensor:
+        return self.probe(x)
+
+    def matrices(self, x: Tensor) -> Tensor:
+        """The probe's ``(N, 3, 3)`` sampling matrices for prepared images ``x``."""
+        return self.probe.matrix(self.probe.predict(x))
+
+
+def build_probe(input_shape, width: int, seed: int, device=None) -> ProbeNet:
+    """A fresh projective probe for inputs of ``input_shape``; its random init is fixed by ``seed``."""
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(_b.mix(seed, "probe-init"))
+        warp = Warp(WarpConfig(family="projective", head_width=width), tuple(input_shape))
+    return ProbeNet(warp).to(device)
+
+
+def train_probe(probe: ProbeNet, reference: Images, site_cfg, *, seed: int, prepare: Callable[[Tensor], Tensor],
+                batch_size: int, lr: float, rank: int = 0, world: int = 1, reduce_grads=None,
+                on_step=None) -> tuple[Images, dict]:
+    """Pre-train ``probe`` on the reference minus a held-out share; returns ``(held-out images, result)``."""
+    rest, held = split_off(reference, site_cfg.holdout, _b.generator(seed, "probe-holdout"))
+    draw = near_identity(site_cfg.to_range(), site_cfg.unmoved)
+    result = regress_warps_(probe, {"probe": probe.probe}, rest, draw, epochs=site_cfg.probe_epochs, lr=lr,
+                            batch_size=batch_size, seed=seed, prepare=prepare, tag="probe", rank=rank,
+                            world=world, reduce_grads=reduce_grads, on_step=on_step)
+    return held, result
+
+
+def estimate_ranges(probe: ProbeNet, site: Images, held: Images, *, outer: RangeEstimate, fallback: RangeEstimate,
+                    seed: int, prepare: Callable[[Tensor], Tensor], batch_size: int = 256,
+                    max_simulated: int = 1024) -> RangeEstimate:
+    """The site's ranges (:func:`splice.adapt.ranges.fit_ranges`) as read by a trained ``probe``.
+
+    Simulations run on at most ``max_simulated`` held-out reference images (a
+    few hundred fix the statistics to about a percent; common practice, no source).
+    """
+    probe.eval()
+    reference = torch.cat([held.batch(chunk) for chunk in torch.arange(min(len(held), max_simulated)).split(batch_size)])
+
+    def read(images: Tensor) -> Tensor:
+        return probe.matrices(prepare(images))
+
+    def simulate(est: RangeEstimate) -> dict[str, float]:
+        from ..distort import random_distort
+
+        moved, _ = random_distort(reference, est.to_range(), _b.generator(seed, "simulate"), fill=0.0)
+        return site_statistics(read_matrices(read, moved, batch_size=batch_size))
+
+    idx = torch.arange(len(site))
+    site_m = torch.cat([read_matrices(read, site.batch(chunk), batch_size=batch_size)
+                        for chunk in idx.split(batch_size)])
+    stats = site_statistics(site_m)
+    ratios = observability(simulate, outer)
+    observable = {p: ratios[p] >= OBSERVABLE_RATIO for p in PARAMETERS}
+    est = fit_ranges(stats, simulate, outer=outer, fallback=fallback, observable=observable)
+    est.statistics["observability_ratio"] = {p: float(r) for p, r in ratios.items()}
+    return est

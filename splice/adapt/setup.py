@@ -1,0 +1,142 @@
+"""Setting up a run that reads no label: the recipe (fresh or resumed), the model, the site and the reference.
+
+The run folder is the one every ``splice tune`` run writes (run.json,
+recipe.toml, metrics.jsonl, checkpoint.pt, best/, last/), through the same
+helpers (:mod:`splice.training.runfolder`, :mod:`splice.training.setup`).
+``run.json`` records ``data`` = the site and ``reference``; the label-free
+run adds ``ranges.json`` (the estimated ranges) and rewrites ``recipe.toml``
+with the re-centred ``[pretrain]`` ranges.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import torch
+from torch import Tensor, nn
+
+from ..errors import RecipeError
+from ..options import ModelOptions
+from ..recipes import Recipe, load_recipe
+from ..training.options import RecipeOverrides
+from ..training.runfolder import RECIPE_FILE, check_same, prepare_folder, start_files, write_run_info
+from ..training.setup import load_model, normalisation, resolve, run_info
+from .images import Images, open_images
+
+__all__ = ["AdaptRun", "set_up", "resolve_reference"]
+
+
+@dataclass
+class AdaptRun:
+    """One label-free or batchnorm-stats run (one per process)."""
+
+    ctx: Any  # splice.training.distributed.Context
+    rec: Recipe
+    src: Any
+    net: nn.Module
+    warps: dict[str, nn.Module]
+    site: Images
+    reference: Images | None
+    prepare: Callable[[Tensor], Tensor]
+    norm: dict | None
+    classes: list[str] | None
+    run_dir: Path
+    info: dict
+    where: str
+    ckpt: dict | None = None
+    stop_after_steps: int | None = None
+    bar: Any = None
+    flag: Any = None
+    optimizer: torch.optim.Optimizer | None = None
+    estimate: Any = None  # splice.adapt.ranges.RangeEstimate
+    step: int = 0
+    metrics_rows: int = 0
+    best: dict = field(default_factory=lambda: {"score": -1.0, "epoch": -1, "step": 0})
+    t_run: float = field(default_factory=time.monotonic)
+
+
+def resolve_reference(rec: Recipe, site: str, override: str | None) -> str:
+    """The reference images' spec: ``--reference``, else ``[pretrain] reference``; ``auto`` only for the digits."""
+    from ..data import upright_counterpart
+
+    choice = override or rec.pretrain.reference
+    if choice == "auto":
+        choice = upright_counterpart(site)
+    if choice is None or choice == "train":
+        raise RecipeError(
+            f"the label-free recipe needs upright reference images (the kind the base was trained on) and none "
+            f"is known for site {site!r}; pass --reference REF (an ImageFolder, a flat folder of images, or digits)"
+        )
+    return choice
+
+
+def _resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, site: str, overrides: RecipeOverrides,
+             model_options: ModelOptions):
+    """:func:`splice.training.setup.resolve`, except that on resume an estimated ``[pretrain]`` range is not a change."""
+    if info is not None and (recipe is not None or overrides.any_recipe_key):
+        recorded = load_recipe(run_dir / RECIPE_FILE)
+        given = load_recipe(recipe if recipe is not None else run_dir / RECIPE_FILE)
+        given = given.with_overrides(**overrides.recipe_keys())
+        if given.site.estimate:  # the run replaced the ranges by its estimate
+            keep = {k: getattr(recorded.pretrain, k) for k in ("rotation", "scale", "shift", "perspective")}
+            given = dataclasses.replace(given, pretrain=dataclasses.replace(given.pretrain, **keep))
+        if given.to_dict() | {"name": ""} != recorded.to_dict() | {"name": ""}:
+            diff = [k for k, v in given.to_dict().items() if recorded.to_dict().get(k) != v and k != "name"]
+            raise RecipeError(
+                f"run '{run_dir}' was started with a different recipe (differs in {', '.join(diff)}); "
+                "resume without --recipe and overrides, or with the same ones"
+            )
+        recipe, overrides = None, RecipeOverrides(reference=overrides.reference)
+    return resolve(ctx, run_dir, info, model=model, recipe=recipe, data=site, overrides=overrides,
+                   model_options=model_options)
+
+
+def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverrides,
+           model_options: ModelOptions, stop_after_steps: int | None = None, locks=None) -> AdaptRun:
+    """Lock the run folder (held until ``locks``, an ``ExitStack``, closes), resolve the request, build the
+    model, open the images, write (or update) the run record."""
+    run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
+                                   Path(resume) if resume is not None else None, locks)
+    if info is not None:
+        check_same("site", site, info["data"], run_dir)
+        site = info["data"]
+    req = _resolve(ctx, run_dir, info, model=model, recipe=recipe, site=site, overrides=overrides,
+                   model_options=model_options)
+    rec = req.recipe
+    where = f"recipe '{rec.name}'"
+    src, net, warps = load_model(req, where)
+    net.to(ctx.device)
+    shape = tuple(src.input_shape)
+    norm, _ = normalisation(rec, src, None)  # the frozen base's own normalisation, never an estimate
+    dev = ctx.device
+
+    def prepare(x: Tensor) -> Tensor:
+        from ..data import normalise
+
+        return normalise(x, norm).to(dev, non_blocking=True)
+
+    ref_name = None
+    if rec.mode == "label-free" and info is not None:  # resuming: the run folder says which
+        check_same("reference", overrides.reference, info.get("reference"), run_dir)
+        ref_name = info.get("reference")
+    if rec.mode == "label-free" and ref_name is None:
+        ref_name = resolve_reference(rec, req.data, overrides.reference)
+    site_images = open_images(req.data, shape, what="site")
+    reference = open_images(ref_name, shape, what="reference") if ref_name else None
+    classes = list(src.class_names) if src.class_names else []
+    if info is None:
+        info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin="model", ref=None), reference=ref_name,
+                    site_images=len(site_images))
+        if ctx.is_main:
+            start_files(run_dir, rec, info)
+    elif ctx.is_main:
+        info["status"] = "running"
+        write_run_info(run_dir, info)
+    return AdaptRun(ctx=ctx, rec=rec, src=src, net=net, warps=warps, site=site_images, reference=reference,
+                    prepare=prepare, norm=norm, classes=classes or None, run_dir=run_dir, info=info, where=where,
+                    ckpt=req.ckpt, stop_after_steps=stop_after_steps)

@@ -1,0 +1,329 @@
+"""Adapting to a new site without labels: the label-free and batchnorm-stats recipes (splice.adapt).
+
+The model is a narrow tray_net on 24x24 digits, the images a few dozen PNG
+files, so that a whole label-free run takes a second or two.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+import torch
+
+import splice
+from splice._io import state_dict_sha256
+from splice.adapt.batchnorm import refresh_batchnorm_
+from splice.adapt.diagnostics import base_view
+from splice.adapt.images import TensorImages, image_files, open_images
+from splice.adapt.objective import entropy_loss
+from splice.adapt.ranges import RangeEstimate, fit_ranges, site_statistics
+from splice.data import open_data
+from splice.distort import DistortionRange, random_distort
+from splice.errors import RecipeError
+from splice.options import ModelOptions
+from splice.recipes import Recipe, load_recipe, recipe_to_toml
+from splice.surgery import WARP_PREFIX
+from splice.training import RecipeOverrides, RunOptions, read_metrics, tune
+from splice.training.checkpoint import CHECKPOINT_NAME, load_checkpoint
+
+SPEC = "splice.models:tray_net"
+KW = {"width": 4}
+SHAPE = (1, 24, 24)
+QUIET = RunOptions(progress=False)
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _one_thread():
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+def _tiny(name: str = "label-free", **site) -> Recipe:
+    """A shipped recipe made tiny: 2 epochs of batches of 8, one epoch of probe and of pre-training."""
+    d = load_recipe(name).to_dict()
+    d.update(epochs=2, batch_size=8)
+    d["pretrain"].update(epochs=1, batch_size=8)
+    d["site"].update(probe_epochs=1, probe_width=4, **site)
+    return Recipe.from_dict(d)
+
+
+def _write_pngs(folder, images: torch.Tensor) -> None:
+    from PIL import Image
+
+    folder.mkdir(parents=True, exist_ok=True)
+    for i, img in enumerate(images):
+        pixels = (img[0].clamp(0, 1) * 255).round().to(torch.uint8).numpy()
+        Image.fromarray(pixels, mode="L").save(folder / f"{i:03d}.png")
+
+
+@pytest.fixture(scope="module")
+def folders(tmp_path_factory):
+    """REF: 40 upright digits in a flat folder; SITE: 40 moved digits in ONE class folder with a wrong name."""
+    root = tmp_path_factory.mktemp("images")
+    upright = open_data("digits", "val", input_shape=SHAPE).images[:40]
+    moved, _ = random_distort(upright, DistortionRange(rotation_deg=45, scale=(0.9, 1.1), shift=0.1),
+                              torch.Generator().manual_seed(3), fill=0.0)
+    _write_pngs(root / "ref", upright)
+    _write_pngs(root / "site" / "not-a-class", moved)
+    return root / "ref", root / "site"
+
+
+@pytest.fixture(scope="module")
+def base(tmp_path_factory):
+    out = tmp_path_factory.mktemp("base") / "run"
+    d = load_recipe("baseline").to_dict()
+    d.update(epochs=1, batch_size=128)
+    tune(SPEC, recipe=Recipe.from_dict(d), data="digits", out=out,
+         model_options=ModelOptions(kwargs=KW, input_shape=SHAPE), run_options=QUIET)
+    return out / "best"
+
+
+@pytest.fixture(scope="module")
+def spliced(base, tmp_path_factory):
+    out = tmp_path_factory.mktemp("spliced") / "affine"
+    splice.save(splice.insert(str(base), at=["input"], warp=splice.WarpConfig(head_width=4)), out)
+    return out
+
+
+def _base_hash(folder) -> str:
+    state = splice.load(folder).state_dict()
+    return state_dict_sha256({k: v for k, v in state.items() if not k.startswith(WARP_PREFIX + ".")})
+
+
+def test_no_label_is_read_and_the_base_stays_bit_for_bit(tmp_path, folders, spliced, monkeypatch):
+    ref, site = folders
+
+    def no_labelled_data(*args, **kwargs):
+        raise AssertionError("a label-free run opened a labelled data set")
+    monkeypatch.setattr("splice.data.open_data", no_labelled_data)
+    out = tmp_path / "run"
+    summary = tune(str(spliced), recipe=_tiny(), site=str(site), out=out,
+                   overrides=RecipeOverrides(reference=str(ref)), run_options=QUIET)
+    assert summary["best_accuracy"] is None and not summary["base_changed"] and not summary["interrupted"]
+    assert _base_hash(out / "last") == _base_hash(spliced) == _base_hash(out / "best")
+    rows = read_metrics(out)
+    assert [r["phase"] for r in rows] == ["start", "estimate", "pretrain", "epoch", "epoch"]
+    assert all(r["accuracy"] is None for r in rows)
+    for r in rows[:1] + rows[2:]:
+        assert {"confidence", "entropy", "agreement", "class_balance"} <= set(r["site"])
+    assert "warp_spread" in rows[-1]["site"] and "warp_spread" not in rows[0]["site"]  # the start row is the base
+    info = json.loads((out / "run.json").read_text())
+    assert info["data"] == str(site) and info["reference"] == str(ref) and info["status"] == "finished"
+    # the estimate is in ranges.json and, re-centred, in the resolved recipe
+    ranges = json.loads((out / "ranges.json").read_text())
+    recorded = load_recipe(out / "recipe.toml")
+    assert recorded.pretrain.rotation == pytest.approx(ranges["pretrain"]["rotation"], abs=1e-4)
+    assert recorded.pretrain.scale[0] <= 1.0 <= recorded.pretrain.scale[1]  # the identity is always in range
+    assert rows[1]["ranges"]["rotation"] == ranges["estimate"]["rotation"]
+
+
+def test_stopped_and_resumed_label_free_run_matches_an_uninterrupted_one(tmp_path, folders, spliced):
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full = tmp_path / "full"
+    tune(str(spliced), out=full, run_options=QUIET, **kw)
+    part = tmp_path / "part"
+    stopped = tune(str(spliced), out=part, run_options=RunOptions(progress=False, stop_after_steps=3), **kw)
+    assert stopped["interrupted"] and stopped["resume_at"] == {"epoch": 0, "batch": 3}
+    assert load_checkpoint(part / CHECKPOINT_NAME)["phase"] == "adapt"
+    with pytest.raises(RecipeError, match=r"different recipe \(differs in epochs\)"):
+        tune(resume=part, overrides=RecipeOverrides(epochs=5), run_options=QUIET)
+    tune(resume=part, run_options=QUIET)
+    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
+        state_dict_sha256(splice.load(full / "last").state_dict())
+    strip = ("time_s",)
+    rows = [{k: v for k, v in r.items() if k not in strip} for r in read_metrics(part)]
+    assert rows == [{k: v for k, v in r.items() if k not in strip} for r in read_metrics(full)]
+
+
+def test_batchnorm_stats_changes_only_the_statistics(tmp_path, base):
+    out = tmp_path / "bn"
+    summary = tune(str(base), recipe=_tiny("batchnorm-stats"), site="digits-moved", out=out, run_options=QUIET)
+    before, after = splice.load(base).state_dict(), splice.load(out / "best").state_dict()
+    stats = [k for k in before if "running_" in k]
+    assert stats and all(not torch.equal(before[k], after[k]) for k in stats)
+    assert all(torch.equal(before[k], after[k]) for k in before if "running_" not in k and "num_batches" not in k)
+    assert summary["base_changed"] and [r["phase"] for r in read_metrics(out)] == ["start", "epoch"]
+
+
+def test_refreshed_statistics_are_those_of_the_site_images():
+    # AdaBN (Li et al., 2016): the running statistics become the target domain's; with one batch
+    # they are its per-channel mean and unbiased variance, computed here with numpy as the reference
+    model = torch.nn.Sequential(torch.nn.Conv2d(1, 3, 3), torch.nn.BatchNorm2d(3), torch.nn.ReLU()).eval()
+    x = torch.rand(16, 1, 10, 10) * 2 + 1
+    refresh_batchnorm_(model, TensorImages(x), prepare=lambda t: t, batch_size=16, seed=0)
+    with torch.no_grad():
+        feats = model[0](x).numpy()
+    bn = model[1]
+    np.testing.assert_allclose(bn.running_mean.numpy(), feats.mean(axis=(0, 2, 3)), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(bn.running_var.numpy(), feats.var(axis=(0, 2, 3), ddof=1), rtol=1e-4)
+    assert bn.momentum == 0.1 and not bn.training  # restored
+
+
+def test_fit_ranges_undoes_a_reader_that_shrinks_and_blurs():
+    # a reader that pulls every reading 30 % towards no motion and adds noise: the first guess is
+    # biased, the simulation through the same reader is not
+    gen = torch.Generator().manual_seed(0)
+    upright = torch.zeros(400, 1, 8, 8)
+
+    def read(matrix: torch.Tensor) -> torch.Tensor:
+        eye = torch.eye(3, dtype=torch.float64)
+        return eye + 0.7 * (matrix - eye) + 0.01 * torch.randn(matrix.shape, generator=gen, dtype=torch.float64) * \
+            torch.tensor([[1.0, 1.0, 1.0], [1.0, 1.0, 1.0], [0.0, 0.0, 0.0]], dtype=torch.float64)
+
+    def simulate(est: RangeEstimate) -> dict:
+        _, meta = random_distort(upright, est.to_range(), torch.Generator().manual_seed(5))
+        return site_statistics(read(meta["matrix"]))
+
+    truth = RangeEstimate(40.0, (0.85, 1.15), 0.2, 0.0)
+    _, meta = random_distort(torch.zeros(2000, 1, 8, 8), truth.to_range(), torch.Generator().manual_seed(9))
+    site = site_statistics(read(meta["matrix"]))
+    outer = RangeEstimate(90.0, (0.5, 2.0), 0.5, 0.3)
+    est = fit_ranges(site, simulate, outer=outer, fallback=RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0),
+                     observable={"rotation": True, "scale": True, "shift": True, "perspective": False})
+    assert est.rotation == pytest.approx(40.0, rel=0.05) and est.shift == pytest.approx(0.2, rel=0.05)
+    assert est.scale[0] == pytest.approx(0.85, rel=0.03) and est.scale[1] == pytest.approx(1.15, rel=0.03)
+    assert est.perspective == 0.0 and est.observable["perspective"] is False
+
+
+@pytest.mark.slow
+def test_range_estimate_recovers_known_synthetic_sites_within_20_percent():
+    from splice.adapt.probe import build_probe, estimate_ranges, train_probe
+    from splice.recipes import Site
+
+    cfg = Site()
+    ref = open_images("digits", (1, 48, 48))
+    probe = build_probe((1, 48, 48), cfg.probe_width, seed=0)
+    held, _ = train_probe(probe, ref, cfg, seed=0, prepare=lambda x: x, batch_size=32, lr=0.003)
+    fresh = torch.cat([open_data("digits", "val").images, open_data("digits", "test").images])
+    for truth in (RangeEstimate(30.0, (0.9, 1.1), 0.1, 0.0), RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0),
+                  RangeEstimate(20.0, (1.0, 1.4), 0.05, 0.0)):
+        moved, _ = random_distort(fresh, truth.to_range(), torch.Generator().manual_seed(7), fill=0.0)
+        est = estimate_ranges(probe, TensorImages(moved), held, outer=RangeEstimate.of_ranges(cfg),
+                              fallback=RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0), seed=0, prepare=lambda x: x)
+        half, true_half = (est.scale[1] - est.scale[0]) / 2, (truth.scale[1] - truth.scale[0]) / 2
+        centre, true_centre = sum(est.scale) / 2, sum(truth.scale) / 2
+        assert est.rotation == pytest.approx(truth.rotation, rel=0.2), est.to_dict()
+        assert est.shift == pytest.approx(truth.shift, rel=0.2), est.to_dict()
+        assert half == pytest.approx(true_half, rel=0.2), est.to_dict()
+        assert abs(centre - true_centre) <= 0.2 * true_half, est.to_dict()
+        assert est.observable == {"rotation": True, "scale": True, "shift": True, "perspective": False}
+
+
+def test_entropy_objective_prefers_confident_and_balanced_over_collapsed():
+    balanced = torch.eye(4).repeat(2, 1) * 8.0       # confident, every class used
+    collapsed = torch.zeros(8, 4)
+    collapsed[:, 0] = 8.0                             # confident, one class for everything
+    unsure = torch.zeros(8, 4)
+    assert entropy_loss(balanced) < entropy_loss(unsure) and entropy_loss(balanced) < entropy_loss(collapsed)
+    assert float(entropy_loss(unsure)) == pytest.approx(math.log(4) - math.log(4), abs=1e-6)
+
+
+def test_site_folders_are_walked_without_reading_class_names(tmp_path):
+    for rel in ("train/a/1.png", "train/b/2.png", "train/.hidden/3.png", "val/a/4.png", "train/b/notes.txt"):
+        path = tmp_path / "tree" / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(b"")
+    found = [p.relative_to(tmp_path / "tree").as_posix() for p in image_files(tmp_path / "tree")]
+    assert found == ["train/a/1.png", "train/b/2.png"]
+
+
+def test_base_view_predicts_like_the_base(spliced, base):
+    model = splice.load(spliced)
+    with torch.no_grad():
+        for w in splice.surgery.warps_of(model).values():
+            w.head.fc2.bias.add_(0.3)  # move the warp away from the identity
+        x = open_data("digits-moved", "val", input_shape=SHAPE).images[:16]
+        twin = base_view(model, splice.surgery.warps_of(model)).eval()
+        assert torch.equal(twin(x), splice.load(base).eval()(x))
+        assert not torch.equal(model.eval()(x), twin(x))
+
+
+def test_label_free_arguments_are_checked(tmp_path, spliced, base, folders):
+    ref, site = folders
+    with pytest.raises(RecipeError, match="pass --site digits-moved instead of --data"):
+        tune(str(spliced), recipe=_tiny(), data="digits-moved", out=tmp_path / "a", run_options=QUIET)
+    with pytest.raises(RecipeError, match="need unlabelled images from the new site: pass --site"):
+        tune(str(spliced), recipe=_tiny(), out=tmp_path / "b", run_options=QUIET)
+    with pytest.raises(RecipeError, match="read only by the label-free and batchnorm-stats recipes"):
+        tune(str(base), recipe="baseline", site=str(site), out=tmp_path / "c", run_options=QUIET)
+    with pytest.raises(RecipeError, match="pass --reference REF"):
+        tune(str(spliced), recipe=_tiny(), site=str(site), out=tmp_path / "d", run_options=QUIET)
+    with pytest.raises(RecipeError, match="site.objective = 'both' is not allowed"):
+        _tiny(objective="both")
+    plain = tmp_path / "plain.py"
+    plain.write_text("import torch\n\ndef net():\n    return torch.nn.Sequential(torch.nn.Conv2d(1, 4, 3), "
+                     "torch.nn.Flatten(), torch.nn.Linear(1936, 10))\n\nnet.input_shape = (1, 24, 24)\n")
+    with pytest.raises(RecipeError, match="no BatchNorm layer"):
+        tune(f"{plain}:net", recipe=_tiny("batchnorm-stats"), site=str(site), out=tmp_path / "e", run_options=QUIET)
+
+
+def test_site_table_is_written_for_the_label_free_recipe_only():
+    assert "[site]" in recipe_to_toml(load_recipe("label-free"))
+    assert "[site]" not in recipe_to_toml(load_recipe("joint"))
+    assert load_recipe("label-free").site.objective in ("entropy", "consistency", "none")
+    assert load_recipe("batchnorm-stats").label_free and not load_recipe("warp-only").label_free
+
+
+_TINY_TOML = """\
+schema_version = 1
+mode = "label-free"
+epochs = 2
+batch_size = 64
+[pretrain]
+epochs = 1
+batch_size = 32
+[site]
+probe_epochs = 1
+probe_width = 4
+"""
+
+
+@pytest.mark.slow
+def test_two_process_label_free_run_ends_with_identical_weights_and_one_run_folder(tmp_path):
+    import os
+    import subprocess
+    import sys
+
+    from splice.sources import load_source
+
+    src = load_source(SPEC, kwargs=KW, input_shape=SHAPE, warn_random=False)
+    spliced = tmp_path / "spliced"
+    splice.save(splice.insert(src, at=["input"], warp=splice.WarpConfig(head_width=4)), spliced)
+    recipe = tmp_path / "tiny.toml"
+    recipe.write_text(_TINY_TOML, encoding="utf-8")
+    run = tmp_path / "run"
+    env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONWARNINGS="ignore", SPLICE_TUNE_RANK_HASHES="1")
+    cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc-per-node", "2",
+           "-m", "splice", "tune", str(spliced), "--recipe", str(recipe), "--site", "digits-moved",
+           "--out", str(run), "--device", "cpu"]
+    proc = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600, cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    hashes = [(run / f"rank{r}.sha256").read_text().strip() for r in (0, 1)]
+    assert hashes[0] == hashes[1]  # gradients averaged over the ranks kept them in lockstep
+    assert state_dict_sha256(splice.load(run / "last").state_dict()) == hashes[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run", "spliced", "tiny.toml"]
+    rows = read_metrics(run)
+    assert [r["phase"] for r in rows] == ["start", "estimate", "pretrain", "epoch", "epoch"]
+    assert rows[-1]["step"] == 2 * -(-1078 // 64)
+    info = json.loads((run / "run.json").read_text())
+    assert info["world_size"] == 2 and info["status"] == "finished"
+    assert proc.stdout.count("epoch 2/2") == 1 and proc.stdout.count("no label read") == 1
+
+
+def test_small_folders_are_held_in_memory_and_large_ones_read_batch_by_batch(folders, monkeypatch):
+    from splice.adapt.images import FileImages
+
+    _, site = folders
+    held = open_images(str(site), SHAPE)
+    assert isinstance(held, TensorImages) and len(held) == 40
+    monkeypatch.setattr("splice.adapt.images.MEMORY_LIMIT", 0)
+    lazy = open_images(str(site), SHAPE)
+    assert isinstance(lazy, FileImages)
+    idx = torch.tensor([3, 0, 39])
+    assert torch.equal(lazy.batch(idx), held.batch(idx))
