@@ -25,7 +25,7 @@ from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
 from ..training.options import RecipeOverrides
 from ..training.runfolder import RECIPE_FILE, check_same, prepare_folder, start_files, write_run_info
-from ..training.setup import load_model, normalisation, resolve, run_info
+from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
 from .images import Images, open_images
 
 __all__ = ["AdaptRun", "set_up", "resolve_reference"]
@@ -100,6 +100,7 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
            model_options: ModelOptions, stop_after_steps: int | None = None, locks=None) -> AdaptRun:
     """Lock the run folder (held until ``locks``, an ``ExitStack``, closes), resolve the request, build the
     model, open the images, write (or update) the run record."""
+    gate_recorded_model(resume, model, model_options)
     run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
                                    Path(resume) if resume is not None else None, locks)
     if info is not None:

@@ -23,10 +23,10 @@ from .checkpoint import CHECKPOINT_NAME, load_checkpoint
 from .normalisation import estimate_normalisation
 from .options import RecipeOverrides
 from .reference import Reference, data_record, resolve_reference
-from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe
+from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info
 
-__all__ = ["Request", "resolve", "load_model", "open_splits", "reference", "reference_images", "reference_probe",
-           "normalisation", "run_info"]
+__all__ = ["gate_recorded_model", "Request", "resolve", "load_model", "open_splits", "reference", "reference_images",
+           "reference_probe", "normalisation", "run_info"]
 
 
 @dataclass
@@ -61,6 +61,19 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
             "recipe's batch size is the global batch — pick a multiple of the process count (--batch-size)"
         )
     return req
+
+
+def gate_recorded_model(resume, model, model_options: ModelOptions) -> None:
+    """On a resume that takes its model from run.json, pass that spec through the code gate
+    (:func:`splice.sources.check_spec`) before the run folder is locked or anything is written.
+    A folder is left to the store's own gate on its manifest."""
+    if resume is None or model is not None:
+        return
+    from ..sources import check_spec
+    recorded = read_run_info(Path(resume))
+    if recorded["model"] != "<module>" and not Path(recorded["model"]).is_dir():
+        check_spec(recorded["model"], recorded.get("model_kwargs"), origin=Path(resume) / RUN_FILE,
+                   trust_code=model_options.trust_code)
 
 
 def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: RecipeOverrides,

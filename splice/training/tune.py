@@ -57,10 +57,9 @@ from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
 from .epochs import train
 from .options import RecipeOverrides, RunOptions
-from ..sources import check_spec
 from .reference import data_record
-from .runfolder import RECIPE_FILE, RUN_FILE, prepare_folder, read_run_info, start_files, write_run_info
-from .setup import load_model, normalisation, open_splits, reference, reference_probe, resolve, run_info
+from .runfolder import RECIPE_FILE, prepare_folder, start_files, write_run_info
+from .setup import gate_recorded_model, load_model, normalisation, open_splits, reference, reference_probe, resolve, run_info
 from .state import Run, TuneInterrupted
 
 __all__ = ["tune", "tune_keywords"]
@@ -242,11 +241,7 @@ def _adapt(ctx, *, model, recipe, data, site, out, resume, overrides: RecipeOver
 def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
             run_options: RunOptions, locks: contextlib.ExitStack) -> Run:
     """Lock the run folder, resolve the request, build the model and the data, write (or update) the run record."""
-    if resume is not None and model is None:  # run.json's model passes the code gate before anything is written
-        recorded = read_run_info(Path(resume))
-        if recorded["model"] != "<module>" and not Path(recorded["model"]).is_dir():  # folders: the store's gate
-            check_spec(recorded["model"], recorded.get("model_kwargs"), origin=Path(resume) / RUN_FILE,
-                       trust_code=model_options.trust_code)
+    gate_recorded_model(resume, model, model_options)
     run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
                                    Path(resume) if resume is not None else None, locks)
     req = resolve(ctx, run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
