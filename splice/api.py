@@ -165,6 +165,9 @@ def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides
          run_options=None, site=None) -> dict:
     """Fine-tune with a recipe and write a run folder (see :func:`splice.training.tune`).
 
+    The ``label-free`` and ``batchnorm-stats`` recipes read unlabelled ``site``
+    images instead of ``data`` (``--site`` on the command line).
+
     >>> import splice, tempfile
     >>> from splice.training import RecipeOverrides, RunOptions
     >>> run = tempfile.mkdtemp() + "/run"
