@@ -176,6 +176,9 @@ def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides
     A folder (or ``resume``'s run.json) that names a model no registry lists is
     built only with ``model_options=ModelOptions(trust_code=True)``.
 
+    The ``label-free`` and ``batchnorm-stats`` recipes read unlabelled ``site``
+    images instead of ``data`` (``--site`` on the command line).
+
     >>> import splice, tempfile
     >>> from splice.training import RecipeOverrides, RunOptions
     >>> run = tempfile.mkdtemp() + "/run"

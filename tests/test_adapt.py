@@ -327,3 +327,30 @@ def test_small_folders_are_held_in_memory_and_large_ones_read_batch_by_batch(fol
     assert isinstance(lazy, FileImages)
     idx = torch.tensor([3, 0, 39])
     assert torch.equal(lazy.batch(idx), held.batch(idx))
+
+
+def test_a_stop_during_pre_training_resumes_at_that_phase_with_the_same_result(tmp_path, folders, spliced,
+                                                                               monkeypatch):
+    from splice.adapt import run as adapt_run
+    from splice.training import TuneInterrupted
+
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full = tmp_path / "full"
+    tune(str(spliced), out=full, run_options=QUIET, **kw)
+
+    real = adapt_run.regress_warps_
+
+    def stop(*args, **kwargs):
+        raise TuneInterrupted("interrupted during pre-train warps")
+    monkeypatch.setattr(adapt_run, "regress_warps_", stop)
+    part = tmp_path / "part"
+    with pytest.raises(TuneInterrupted):
+        tune(str(spliced), out=part, run_options=QUIET, **kw)
+    assert json.loads((part / "run.json").read_text())["status"] == "interrupted"
+    assert load_checkpoint(part / CHECKPOINT_NAME)["phase"] == "pretrain"  # the estimate is kept
+    monkeypatch.setattr(adapt_run, "regress_warps_", real)
+    tune(resume=part, run_options=QUIET)
+    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
+        state_dict_sha256(splice.load(full / "last").state_dict())
+    assert [r["phase"] for r in read_metrics(part)] == [r["phase"] for r in read_metrics(full)]

@@ -183,14 +183,21 @@ def run_label_free(run: AdaptRun) -> dict[str, Any]:
     check_objective(run)
     run.optimizer = _optimizer(run, _freeze(run))
     phase, start_epoch, start_batch = _restore(run) if run.ckpt is not None else ("start", 0, 0)
-    if phase == "start":
+    try:
+        if phase == "start":
+            if run.ctx.is_main:
+                truncate_metrics(run.run_dir, 0)
+            row(run, "start", 0, site=_diagnose(run, base_view(run.net, run.warps)))
+            _estimate(run)
+            phase = "pretrain"
+        if phase == "pretrain":
+            _pretrain(run)
+    except TuneInterrupted:
         if run.ctx.is_main:
-            truncate_metrics(run.run_dir, 0)
-        row(run, "start", 0, site=_diagnose(run, base_view(run.net, run.warps)))
-        _estimate(run)
-        phase = "pretrain"
-    if phase == "pretrain":
-        _pretrain(run)
+            write_run_info(run.run_dir, dict(run.info, status="interrupted"))
+        run.bar.line(f"interrupted during the {'range estimate' if phase == 'start' else 'pre-training'}; "
+                     f"'splice tune --resume {run.run_dir}' starts that phase again")
+        raise
     plan = Epochs(run)
     order = execution_order(run.net, run.warps, run.prepare(run.site.batch(torch.arange(min(2, len(run.site))))))
     resumed = tuple(run.ckpt.get("epoch_totals", (0.0, 0))) if run.ckpt is not None else (0.0, 0)
