@@ -20,6 +20,7 @@ import torch
 from torch import fx, nn
 
 from .compare import compare_outputs
+from .copies import private_buffers
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .manifest import PointRecord, SpliceInfo, attach_info
 
@@ -119,22 +120,20 @@ def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
 
 
 def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float = 1e-5) -> dict:
-    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32)."""
+    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32).
+
+    Both models run as twins with their own buffers and modes
+    (:func:`splice.copies.private_buffers`): a forward that counts its calls
+    changes neither the caller's model nor the splice about to be saved.
+    """
     gen = torch.Generator().manual_seed(0)
     x = torch.randn((2, *input_shape), generator=gen)
     param = next(iter(base.parameters()), None)
     if param is not None:
         x = x.to(device=param.device, dtype=param.dtype)
-    modes = (base.training, spliced.training)
-    base.eval()
-    spliced.eval()
-    try:
-        with torch.no_grad():
-            result = compare_outputs(base(x), spliced(x.clone()), tol=tol)
-    finally:
-        base.train(modes[0])
-        spliced.train(modes[1])
-    return result
+    base_twin, spliced_twin = private_buffers(base).eval(), private_buffers(spliced).eval()
+    with torch.no_grad():
+        return compare_outputs(base_twin(x), spliced_twin(x.clone()), tol=tol)
 
 
 def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,

@@ -6,7 +6,9 @@
    so only rounding remains);
 3. every new parameter gets a gradient (the final layer of each head at the
    identity; every head parameter once the warp is off the identity);
-4. neither the input nor the source model was changed.
+4. neither the input nor the source model was changed: every buffer bit for
+   bit (``num_batches_tracked`` and non-persistent buffers included), every
+   parameter by hash, and every module's train/eval mode.
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ import torch
 
 from splice import graph
 from splice._io import state_dict_sha256
+from splice.copies import buffer_snapshot, changed_buffers
 from splice.surgery import insert, warps_of
 from splice.compare import compare_outputs
 
@@ -39,13 +42,15 @@ def check_splice(model, input_shape, at, warp="affine", *, dtype=torch.float32, 
     """Splice ``model`` and assert the four promises; return the spliced model."""
     model = model.to(dtype).eval()
     before = state_dict_sha256(model.state_dict())
+    buffers = buffer_snapshot(model)
+    modes = [m.training for m in model.modules()]
     x = torch.randn((batch, *input_shape), dtype=dtype)
     x_copy = x.clone()
 
     # 1. traced == eager, exactly
     with torch.no_grad():
-        eager = model(x)
-        traced = graph.trace(copy.deepcopy(model))(x)
+        eager = copy.deepcopy(model)(x)  # the harness itself never runs the source model
+        traced = graph.trace(model)(x)
     traced_cmp = compare_outputs(eager, traced, tol=0.0)
     assert traced_cmp["passed"], f"fx trace differs from eager: {traced_cmp['detail']}"
 
@@ -82,6 +87,8 @@ def check_splice(model, input_shape, at, warp="affine", *, dtype=torch.float32, 
     # 4. input and source untouched
     assert torch.equal(x, x_copy)
     assert state_dict_sha256(model.state_dict()) == before
+    assert changed_buffers(buffers, model) == [], "splicing changed the source model's buffers"
+    assert [m.training for m in model.modules()] == modes, "splicing changed the source model's modes"
     return spliced
 
 

@@ -421,19 +421,30 @@ def test_nan_weights_are_named_by_finite(tray_folder, tmp_path):
     assert "fc.weight" in report["finite"].detail
 
 
-def test_buffer_changed_in_eval_mode_is_caught_and_restored(model_file):
-    # Tally is a leaf, so the traced model keeps its in-place update
-    spliced = insert(f"{model_file}:counting_net", at="input", leaves=["Tally"], check=False)
+def test_a_model_that_counts_in_eval_mode_is_checked_on_copies(model_file):
+    # the checks run on twins with their own buffers: the models stay as they were, and the row says
+    # that base and splice both update the counter
+    spliced = insert(f"{model_file}:counting_net", at="input", check=False)
     base = splice.load_source(f"{model_file}:counting_net").model
-    with torch.no_grad():  # start both from the source's state (listing points ran the model once)
-        spliced.get_buffer("tally.calls").zero_()
     base.load_state_dict({k: v for k, v in spliced.state_dict().items() if not k.startswith("splice_warps.")})
-    before = state_dict_sha256(spliced.state_dict())
+    assert int(spliced.get_buffer("tally.calls")) == 0  # listing and splicing never ran the counter
+    before = state_dict_sha256(spliced.state_dict()), state_dict_sha256(base.state_dict())
+    report = verify_models(base, spliced)
+    assert report.passed, report.failed
+    assert report["buffers"].numbers["updated_in_eval"] == ["base:tally.calls", "spliced:tally.calls"]
+    assert "tally.calls" in report["buffers"].detail
+    assert (state_dict_sha256(spliced.state_dict()), state_dict_sha256(base.state_dict())) == before
+
+
+def test_a_splice_that_stopped_updating_a_buffer_fails_buffers(model_file):
+    spliced = insert(f"{model_file}:counting_net", at="input", check=False)
+    spliced.tally.forward = lambda x: x  # as a graph traced through the counter would behave
+    base = splice.load_source(f"{model_file}:counting_net").model
+    base.load_state_dict({k: v for k, v in spliced.state_dict().items() if not k.startswith("splice_warps.")})
     report = verify_models(base, spliced)
     assert report.failed == ["buffers"]
-    assert report["buffers"].numbers["changed"] == ["base:tally.calls", "spliced:tally.calls"]
-    assert "tally.calls" in report["buffers"].detail
-    assert state_dict_sha256(spliced.state_dict()) == before  # put back
+    assert report["buffers"].numbers["not_updated_by_splice"] == ["base:tally.calls"]
+    assert "the spliced model does not" in report["buffers"].detail
 
 
 def test_nearest_sampler_fails_gradients(tray_source, tmp_path):

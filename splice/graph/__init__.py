@@ -14,7 +14,9 @@ to import its package.
 The graph is traced in eval mode. Whenever traced code reads a module's
 ``training`` flag, the model is traced again in train mode and a
 :class:`TraceModeWarning` is raised if the two graphs differ. Tracing works on
-a private clone of the module tree; the caller's model is never changed.
+a private clone of the module tree that owns copies of the buffers
+(:func:`splice.copies.private_buffers`): code that updates a buffer while it
+is traced (a fused BatchNorm counting batches) never changes the caller's model.
 
 Points
 ------

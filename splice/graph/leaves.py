@@ -127,6 +127,11 @@ class _LeafRule:
         self.types = tuple(_registered_types | types)
         self._cache: dict[type, bool] = {}
 
+    def add(self, types: Iterable[type]) -> None:
+        """Keep these module classes (and their subclasses) as leaves too, for this rule only."""
+        self.types = (*self.types, *types)
+        self._cache.clear()
+
     def __call__(self, cls: type) -> bool:
         hit = self._cache.get(cls)
         if hit is None:

@@ -23,6 +23,7 @@ from typing import Any
 
 from torch import nn
 
+from ..copies import private_buffers
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shape
 from .entries import _Entry, _graph_entries
@@ -30,7 +31,7 @@ from .fallback import _module_view
 from .leaves import _LeafRule
 from .naming import _describe_node, _point_names
 from .shapes import _propagate, _ShapeFailure
-from .tracing import _check_model, _FxFailure, _reason, _shadow, _trace_owned
+from .tracing import _check_model, _FxFailure, _reason, _trace_owned
 
 __all__ = ["Point", "points", "points_report"]
 
@@ -158,7 +159,7 @@ def points(
     _check_model(model, "points()")
     shape = _check_input_shape(input_shape)
     rule = _LeafRule(leaves)
-    root = _shadow(model)
+    root = private_buffers(model)
     try:
         graph = _trace_owned(root, rule)
     except _FxFailure as failure:

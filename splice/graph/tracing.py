@@ -7,7 +7,9 @@ except containers) and the leaf registry (:mod:`splice.graph.leaves`).
 The graph is traced in eval mode. Whenever traced code reads a module's
 ``training`` flag, the model is traced again in train mode and a
 :class:`TraceModeWarning` is raised if the two graphs differ. Tracing works on
-a private clone of the module tree; the caller's model is never changed.
+a private clone of the module tree that owns copies of the buffers
+(:func:`splice.copies.private_buffers`): code that updates a buffer while it
+is traced (a fused BatchNorm counting batches) never changes the caller's model.
 """
 
 from __future__ import annotations
@@ -19,9 +21,11 @@ from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from typing import Any
 
+import torch
 import torch.fx as fx
 from torch import nn
 
+from ..copies import private_buffers
 from ..errors import GraphError, first_line
 from .leaves import _class_path, _LeafRule
 
@@ -71,27 +75,6 @@ def _run_tracer(root: nn.Module, rule: _LeafRule) -> fx.Graph:
         return tracer.trace(root)
     except Exception as exc:
         raise _FxFailure(exc, tracer.failed_in) from exc
-
-
-def _shadow(model: nn.Module) -> nn.Module:
-    """A clone of the module tree that shares every tensor with ``model``.
-
-    Each module gets its own ``__dict__`` (so flags, class and attributes fx
-    adds can be changed freely) and its own ``_modules`` dict; parameters,
-    buffers and hooks are the caller's objects and are only read.
-    """
-    memo: dict[int, nn.Module] = {}
-
-    def clone(m: nn.Module) -> nn.Module:
-        c = memo.get(id(m))
-        if c is None:
-            c = object.__new__(type(m))
-            c.__dict__.update(m.__dict__)
-            memo[id(m)] = c
-            c.__dict__["_modules"] = {k: (None if v is None else clone(v)) for k, v in m._modules.items()}
-        return c
-
-    return clone(model)
 
 
 def _can_spy(cls: type) -> bool:
@@ -179,10 +162,11 @@ def _describe_difference(eval_graph: fx.Graph, train_graph: fx.Graph) -> str | N
     return "; ".join(parts)
 
 
-def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
-    """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ."""
+def _trace_modes(root: nn.Module, rule: _LeafRule) -> tuple[fx.Graph, str | None]:
+    """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not)."""
     mods = list(root.modules())
     saved = [(m, m.__dict__.get("training", True)) for m in mods]
+    difference = None
     try:
         for m in mods:
             m.__dict__["training"] = False
@@ -197,18 +181,54 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
                 difference = _describe_difference(graph, _run_tracer(root, rule))
             except _FxFailure as failure:
                 difference = f"the train-mode trace fails: {_reason(failure.error)}"
-            if difference is not None:
-                warnings.warn(
-                    f"the train-mode and eval-mode graphs of {type(root).__name__} differ "
-                    f"({difference}); splice uses the eval-mode graph. Code outside leaf modules "
-                    "reads self.training; mark such modules as leaves (leaves=[...], --leaf TYPE) "
-                    "to keep the check at run time.",
-                    TraceModeWarning,
-                    stacklevel=3,
-                )
     finally:
         for m, flag in saved:
             m.__dict__["training"] = flag
+    return graph, difference
+
+
+def _buffer_states(root: nn.Module) -> dict[tuple[int, str], tuple[nn.Module, object, int]]:
+    return {(id(m), name): (m, b, b._version if b is not None else -1)
+            for m in root.modules() for name, b in m._buffers.items()}
+
+
+def _updating_classes(root: nn.Module, before: dict) -> set[type]:
+    """Classes of the modules (not the root) whose buffers a trace updated in place or replaced."""
+    found = set()
+    for key, (m, b, version) in before.items():
+        now = m._buffers.get(key[1])
+        if now is not b or (now is not None and now._version != version):
+            if m is not root:
+                found.add(_original_class(type(m)))
+    return found
+
+
+def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
+    """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ.
+
+    A module whose forward updates its own buffers (a BatchNorm fused with an
+    activation counting batches, a call counter) would run that update once,
+    while tracing, and never again in the traced graph. Such modules are kept
+    as leaves (opaque steps that run their own forward), found by the buffers'
+    version counters, which works on the meta device too; the tracer then runs
+    again. ``rule`` keeps them (see :meth:`_LeafRule.add`).
+    """
+    for _ in range(4):
+        before = _buffer_states(root)
+        graph, difference = _trace_modes(root, rule)
+        updating = {c for c in _updating_classes(root, before) if not rule(c)}
+        if not updating:
+            break
+        rule.add(updating)
+    if difference is not None:
+        warnings.warn(
+            f"the train-mode and eval-mode graphs of {type(root).__name__} differ "
+            f"({difference}); splice uses the eval-mode graph. Code outside leaf modules "
+            "reads self.training; mark such modules as leaves (leaves=[...], --leaf TYPE) "
+            "to keep the check at run time.",
+            TraceModeWarning,
+            stacklevel=3,
+        )
     return graph
 
 
@@ -253,14 +273,42 @@ def _check_model(model: Any, what: str) -> None:
         raise GraphError(f"{what} needs a torch.nn.Module, got {type(model).__name__}; pass the model object")
 
 
+def _adopt_lifted(graph: fx.Graph, traced: nn.Module, work: nn.Module) -> list[str]:
+    """Copy the constants the tracer lifted onto ``traced`` (``_tensor_constant0``, ...) onto ``work``.
+
+    Returns the names of the lifted tensors: the GraphModule registers them as
+    buffers, and they must stay out of its state dict (every trace makes them
+    again, so a folder rebuilds them and its base part is the source's state).
+    """
+    lifted = []
+    for node in graph.nodes:
+        if node.op != "get_attr":
+            continue
+        owner_path, _, leaf = node.target.rpartition(".")
+        try:
+            owner = work.get_submodule(owner_path) if owner_path else work
+        except AttributeError:
+            continue
+        if hasattr(owner, leaf):
+            continue
+        value = getattr(traced.get_submodule(owner_path) if owner_path else traced, leaf)
+        setattr(owner, leaf, value)
+        if isinstance(value, torch.Tensor) and not owner_path:
+            lifted.append(leaf)
+    return lifted
+
+
 def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
 
     The GraphModule owns deep copies of the model's parameters and buffers; the
     caller's model is not changed and shares no tensors with the result. The
-    graph is the eval-mode graph (see the module docstring); node names are
-    stable from run to run. Raises :class:`~splice.errors.GraphError` naming the
-    module fx could not trace.
+    tracer runs on a twin with its own buffers (:func:`splice.copies.private_buffers`),
+    so code that updates a buffer while it is traced changes neither the caller's
+    model nor the result. Constants the tracer lifts (``_tensor_constant0``, ...)
+    are non-persistent buffers of the result. The graph is the eval-mode graph
+    (see the module docstring); node names are stable from run to run. Raises
+    :class:`~splice.errors.GraphError` naming the module fx could not trace.
     """
     _check_model(model, "trace()")
     rule = _LeafRule(leaves)
@@ -271,12 +319,16 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
             f"cannot copy {type(model).__name__} for tracing ({_reason(exc)}); "
             "splice never traces the caller's model in place: make the model deep-copyable"
         ) from exc
+    twin = private_buffers(work)
     try:
-        graph = _trace_owned(work, rule)
+        graph = _trace_owned(twin, rule)
     except _FxFailure as failure:
         where, todo = _fx_failure_hint(failure, model)
         raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
     _unspy_meta(graph)
+    lifted = _adopt_lifted(graph, twin, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
+    for name in lifted:
+        gm._non_persistent_buffers_set.add(name)
     gm.training = model.training  # submodules keep their own (copied) flags
     return gm

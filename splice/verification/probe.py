@@ -12,6 +12,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
+from ..copies import bitwise_equal
 from ..data import IMAGE_SUFFIXES, load_images, normalise
 from ..errors import DataError, SpliceError, first_line
 from ..surgery import warps_of
@@ -69,14 +70,6 @@ def _names(items: Sequence[str], limit: int = 4) -> str:
     shown = ", ".join(items[:limit])
     return shown + (f" and {len(items) - limit} more" if len(items) > limit else "")
 
-def _bitwise_equal(a: torch.Tensor, b: torch.Tensor) -> bool:
-    if a.shape != b.shape or a.dtype != b.dtype:
-        return False
-    if a.numel() == 0:
-        return True
-    return torch.equal(a.detach().contiguous().reshape(-1).view(torch.uint8),
-                       b.detach().contiguous().reshape(-1).view(torch.uint8))
-
 class _Snapshot:
     """Buffers and train/eval modes of some models, to prove the checks changed neither."""
 
@@ -92,9 +85,10 @@ class _Snapshot:
             for n, mod in m.named_modules():
                 mod.training = self.modes[f"{tag}:{n or '<root>'}"]
 
-    def check(self) -> CheckResult:
+    def check(self, runs: Mapping[str, nn.Module] | None = None) -> CheckResult:
+        """The ``buffers`` row; ``runs`` are the twins the checks ran (their updates are reported, not failed)."""
         now = {f"{tag}:{n}": b for tag, m in self.models.items() for n, b in m.named_buffers()}
-        changed = sorted(k for k, v in self.buffers.items() if k not in now or not _bitwise_equal(v, now[k]))
+        changed = sorted(k for k, v in self.buffers.items() if k not in now or not bitwise_equal(v, now[k]))
         modes = {f"{tag}:{n or '<root>'}": mod.training for tag, m in self.models.items()
                  for n, mod in m.named_modules()}
         wrong_modes = sorted(k for k, v in self.modes.items() if modes.get(k) != v)
@@ -104,16 +98,31 @@ class _Snapshot:
                 if k in now and now[k].shape == self.buffers[k].shape:
                     now[k].copy_(self.buffers[k])
         self.restore_modes()
-        numbers = {"buffers": len(self.buffers), "changed": changed, "modes_restored": not wrong_modes}
+        ran = {f"{tag}:{n}": b for tag, m in (runs or {}).items() for n, b in m.named_buffers()}
+        updated = sorted(k for k, v in ran.items() if k in self.buffers and not bitwise_equal(self.buffers[k], v))
+        # a buffer the base updates in its forward must be updated by the splice too (a traced graph that
+        # ran the update once, while tracing, would not)
+        lost = [k for k in updated if k.startswith("base:") and "spliced:" + k[5:] in ran
+                and "spliced:" + k[5:] not in updated]
+        numbers = {"buffers": len(self.buffers), "changed": changed, "modes_restored": not wrong_modes,
+                   "updated_in_eval": updated, "not_updated_by_splice": lost}
         if changed:
-            detail = (f"{len(changed)} of {len(self.buffers)} buffers changed while the checks ran in eval mode: "
-                      f"{_names(changed)} (restored); the model updates state outside training mode")
+            detail = (f"{len(changed)} of {len(self.buffers)} buffers changed while the checks ran: "
+                      f"{_names(changed)} (restored); the checks must leave the models as they were")
         elif wrong_modes:
             detail = f"train/eval modes were not restored for {_names(wrong_modes)}"
+        elif lost:
+            detail = (f"the base updates {_names(lost)} in its forward, the spliced model does not; "
+                      "mark the updating module as a leaf (--leaf TYPE) and re-create the splice")
         else:
             detail = f"all {len(self.buffers)} buffers bitwise unchanged; train/eval modes restored"
-        return CheckResult("buffers", not changed and not wrong_modes, numbers, detail,
-                           f"{len(self.buffers)} buffers, {len(changed)} changed")
+            if updated:
+                detail += (f"; the forward updates {_names(updated)} even in eval mode, in base and splice "
+                           "alike (the checks ran on copies of the buffers)")
+        passed = not changed and not wrong_modes and not lost
+        return CheckResult("buffers", passed, numbers, detail,
+                           f"{len(self.buffers)} buffers, {len(changed) + len(lost)} changed")
+
 
 class _Laps:
     """Wall-clock seconds per phase of a verification (reported in ``meta['seconds']``)."""

@@ -9,10 +9,10 @@ from typing import Any
 import torch
 
 from .._io import state_dict_sha256
+from ..copies import bitwise_equal
 from ..errors import SpliceError
 from ..manifest import SpliceInfo
 from ..sources import load_source
-from .probe import _bitwise_equal
 from .report import CheckResult
 
 __all__: list[str] = []
@@ -39,7 +39,7 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
     extra = sorted(set(base) - set(source))
     for name in sorted(set(base) & set(source)):
         a, b = base[name], source[name]
-        if _bitwise_equal(a, b):
+        if bitwise_equal(a, b):
             continue
         if a.shape != b.shape:
             changed.append((name, float("inf")))

@@ -16,6 +16,7 @@ from torch import nn
 
 from .._io import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, first_rows, flatten_outputs
+from ..copies import private_buffers
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
@@ -178,17 +179,18 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
     provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape)
     lap("provenance")
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
+    snapshot = _Snapshot({"base": base, "spliced": spliced})
+    # every forward runs on twins with their own buffers and modes: a model that
+    # updates a buffer in eval mode (a call counter) is left as it was
+    base, spliced = private_buffers(base).eval(), private_buffers(spliced).eval()
     warps = warps_of(spliced)
     distances = {name: float(w.identity_distance()) for name, w in warps.items()}
     tuned_declared = info.tuning is not None
     tuned = tuned_declared or any(d > 0 for d in distances.values())
     meta["tuned"] = tuned
-    snapshot = _Snapshot({"base": base, "spliced": spliced})
     head_params = _head_params(warps)
     flat_params = [p for parts in head_params.values() for ps in parts.values() for p in ps]
     grad_flags = {id(p): p.requires_grad for p in flat_params}
-    base.eval()
-    spliced.eval()
     try:
         for p in flat_params:
             p.requires_grad_(True)
@@ -212,7 +214,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         for p in flat_params:
             p.requires_grad_(grad_flags[id(p)])
         snapshot.restore_modes()
-    rows.append(snapshot.check())
+    rows.append(snapshot.check({"base": base, "spliced": spliced}))
     lap("buffers")
     meta["seconds"] = {k: round(v, 4) for k, v in lap.seconds.items()}
     if image_files is not None:

@@ -1,0 +1,94 @@
+"""Twins of a module tree that keep the caller's model unchanged while splice runs it.
+
+Running a model can change it even in eval mode: a BatchNorm fused with an
+activation counts ``num_batches_tracked`` in a train-mode forward, a module
+may count its own calls in a buffer, and torch.fx runs such code while it
+traces. splice therefore runs, traces and exports *twins*:
+:func:`private_buffers` clones the module tree (each module gets its own
+``__dict__``, child, parameter, buffer and hook mappings), shares the
+parameters (read, never written) and gives every twin its own copy of each
+buffer. A buffer registered under several names stays one tensor in the twin.
+
+:func:`buffers_equal` is the bit-for-bit comparison of two buffer snapshots
+(:func:`buffer_snapshot`) that the checks use to prove nothing changed.
+
+Layer: the bottom floor; imports only torch.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import torch
+from torch import nn
+
+__all__ = ["private_buffers", "buffer_snapshot", "changed_buffers", "bitwise_equal"]
+
+# the per-module mappings a twin must own so that adding a hook, a flag or an
+# attribute to it never reaches the caller's module
+_OWNED_DICTS = (
+    "_modules", "_parameters", "_buffers", "_non_persistent_buffers_set",
+    "_forward_hooks", "_forward_hooks_with_kwargs", "_forward_hooks_always_called",
+    "_forward_pre_hooks", "_forward_pre_hooks_with_kwargs", "_backward_hooks", "_backward_pre_hooks",
+    "_state_dict_hooks", "_state_dict_pre_hooks", "_load_state_dict_pre_hooks", "_load_state_dict_post_hooks",
+)
+
+
+def private_buffers(model: nn.Module) -> nn.Module:
+    """A twin of ``model`` that shares its parameters and owns copies of its buffers.
+
+    Each module of the twin has its own ``__dict__`` (flags and attributes can
+    be set freely), its own child/parameter/buffer/hook mappings, and its own
+    buffer tensors (``detach().clone()``); parameters are the caller's objects.
+    Running, tracing or exporting the twin leaves ``model`` bit for bit as it
+    was. The twin is for one job: it is not a copy to train or keep.
+    """
+    modules: dict[int, nn.Module] = {}
+    buffers: dict[int, torch.Tensor] = {}
+
+    def own(t):
+        if t is None:
+            return None
+        c = buffers.get(id(t))
+        if c is None:
+            c = buffers[id(t)] = t.detach().clone()
+        return c
+
+    def clone(m: nn.Module) -> nn.Module:
+        c = modules.get(id(m))
+        if c is not None:
+            return c
+        c = object.__new__(type(m))
+        c.__dict__.update(m.__dict__)
+        modules[id(m)] = c
+        for key in _OWNED_DICTS:
+            value = m.__dict__.get(key)
+            if value is not None:
+                c.__dict__[key] = type(value)(value)
+        c.__dict__["_buffers"] = {k: own(v) for k, v in m._buffers.items()}
+        c.__dict__["_modules"] = {k: (None if v is None else clone(v)) for k, v in m._modules.items()}
+        return c
+
+    return clone(model)
+
+
+def buffer_snapshot(model: nn.Module) -> dict[str, torch.Tensor]:
+    """``{name: copy}`` of every buffer (persistent or not, ``num_batches_tracked`` included)."""
+    return {name: b.detach().clone() for name, b in model.named_buffers(remove_duplicate=False)}
+
+
+def bitwise_equal(a: torch.Tensor, b: torch.Tensor) -> bool:
+    """Same shape, dtype and bytes (NaN payloads and signed zeros included)."""
+    if a.shape != b.shape or a.dtype != b.dtype:
+        return False
+    if a.numel() == 0:
+        return True
+    return torch.equal(a.detach().contiguous().reshape(-1).view(torch.uint8),
+                       b.detach().contiguous().reshape(-1).view(torch.uint8))
+
+
+def changed_buffers(before: Mapping[str, torch.Tensor], model: nn.Module) -> list[str]:
+    """Names of the buffers of ``model`` that differ from ``before`` (a :func:`buffer_snapshot`), or appeared/vanished."""
+    now = dict(model.named_buffers(remove_duplicate=False))
+    names = set(before) | set(now)
+    return sorted(k for k in names if k not in before or k not in now or not bitwise_equal(before[k], now[k]))

@@ -1,0 +1,184 @@
+"""Nothing splice does changes the caller's model, buffers included; the certificate holds on models that
+update buffers in their forward (a BatchNorm fused with an activation, a call counter) and on graphs whose
+tracer lifts constants."""
+
+from __future__ import annotations
+
+import warnings
+
+import pytest
+import torch
+from torch import nn
+
+import splice
+from splice import graph
+from splice.copies import bitwise_equal, buffer_snapshot, changed_buffers, private_buffers
+from splice.exporting import export
+from splice.store import save
+from splice.surgery import insert
+from splice.verification import verify
+
+from harness import check_splice
+
+
+class _CountingBNAct(nn.BatchNorm2d):
+    """A BatchNorm fused with an activation that counts batches itself in a train-mode forward, reading
+    self.training in code the tracer sees (the pattern of timm's BatchNormAct2d)."""
+
+    def forward(self, x):
+        if self.training and self.num_batches_tracked is not None:
+            self.num_batches_tracked.add_(1)
+        x = nn.functional.batch_norm(x, self.running_mean, self.running_var, self.weight, self.bias,
+                                     self.training, 0.1, self.eps)
+        return torch.relu(x)
+
+
+class _CallCounter(nn.Module):
+    """Counts its calls in a buffer, in every mode."""
+
+    def __init__(self):
+        super().__init__()
+        self.register_buffer("calls", torch.zeros((), dtype=torch.long))
+
+    def forward(self, x):
+        self.calls += 1
+        return x
+
+
+class _Net(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 8, 3, stride=2, padding=1)
+        self.bn = _CountingBNAct(8)
+        self.count = _CallCounter()
+        self.conv2 = nn.Conv2d(8, 8, 3, stride=2, padding=1)
+        self.conv3 = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.conv3(self.conv2(self.count(self.bn(self.conv1(x))))).mean((2, 3))
+
+
+class _ConstNet(nn.Module):
+    """A forward that makes a tensor constant: torch.fx lifts it as ``_tensor_constant0``."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        offset = torch.arange(4, dtype=torch.float32).reshape(1, 4, 1, 1)
+        return self.conv2(self.conv1(x) + offset).mean((2, 3))
+
+
+def counting_net():
+    return _Net()
+
+
+def const_net():
+    return _ConstNet()
+
+
+counting_net.input_shape = (3, 32, 32)
+const_net.input_shape = (3, 16, 16)
+NET = f"{__file__}:counting_net"
+CONST = f"{__file__}:const_net"
+
+
+def _modes(model):
+    return [m.training for m in model.modules()]
+
+
+def test_private_buffers_shares_parameters_and_copies_buffers():
+    model = _Net()
+    twin = private_buffers(model)
+    assert twin.conv1.weight is model.conv1.weight
+    assert twin.bn.running_mean is not model.bn.running_mean
+    assert bitwise_equal(twin.bn.running_mean, model.bn.running_mean)
+    twin.train()(torch.randn(2, 3, 8, 8))
+    twin.register_forward_hook(lambda *a: None)
+    assert not model._forward_hooks  # hooks on the twin never reach the caller's modules
+    assert int(model.count.calls) == 0 and int(model.bn.num_batches_tracked) == 0
+    assert int(twin.count.calls) == 1 and int(twin.bn.num_batches_tracked) == 1
+    assert _modes(model) == [True] * len(_modes(model))  # a fresh module is in train mode; the twin's eval is its own
+    twin.eval()
+    assert model.training
+
+
+def test_private_buffers_keeps_a_buffer_under_two_names_one_tensor():
+    model = nn.Sequential(nn.BatchNorm2d(2))
+    model.add_module("again", model[0])
+    twin = private_buffers(model)
+    assert twin[0].running_mean is twin.again.running_mean
+
+
+@pytest.mark.parametrize("train", [False, True], ids=["eval", "train"])
+def test_points_trace_and_insert_leave_the_caller_alone(train):
+    model = _Net().train(train)
+    before, modes = buffer_snapshot(model), _modes(model)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        splice.points(model, (3, 32, 32), all=True)
+        graph.trace(model)
+        spliced = insert(model, at="recommended", input_shape=(3, 32, 32))
+    assert changed_buffers(before, model) == []
+    assert _modes(model) == modes
+    # the splice holds the caller's buffers, not ones counted while tracing
+    got = {k: v for k, v in spliced.named_buffers() if k in before}
+    assert got.keys() == before.keys() and all(bitwise_equal(before[k], got[k]) for k in got)
+
+
+def test_the_harness_promises_hold_for_models_that_update_buffers():
+    check_splice(_Net(), (3, 32, 32), at="recommended")
+
+
+def test_a_module_that_updates_its_buffers_stays_a_step_of_its_own():
+    # traced through, the counter would count once while tracing and never again
+    spliced = insert(_Net(), at="recommended", input_shape=(3, 32, 32))
+    assert "bn" in dict(spliced.named_children()) and "count" in dict(spliced.named_children())
+    assert any(n.op == "call_module" and n.target == "count" for n in spliced.graph.nodes)
+    base = _Net()
+    with torch.no_grad():
+        for model in (base, spliced):
+            model.train()(torch.randn(2, 3, 32, 32))
+            model.eval()(torch.randn(1, 3, 32, 32))
+    assert int(spliced.count.calls) == int(base.count.calls) == 2
+    assert int(spliced.bn.num_batches_tracked) == int(base.bn.num_batches_tracked) == 1
+
+
+def test_a_fresh_splice_of_a_buffer_updating_model_passes_verify(tmp_path):
+    folder = save(insert(NET, at="recommended"), tmp_path / "net")
+    report = verify(folder)
+    assert report.passed, report.failed
+    assert report["provenance"].passed
+    # the call counter counts even in eval mode: the checks ran on copies and say so
+    assert any(k.endswith("count.calls") for k in report["buffers"].numbers["updated_in_eval"])
+
+
+def test_lifted_constants_stay_out_of_the_state_dict():
+    gm = graph.trace(_ConstNet())
+    assert "_tensor_constant0" in dict(gm.named_buffers())
+    assert "_tensor_constant0" not in gm.state_dict()
+    assert set(gm.state_dict()) == set(_ConstNet().state_dict())
+
+
+def test_lifted_constants_do_not_break_verify_or_export(tmp_path):
+    # a folder whose traced graph lifts constants verifies and exports alike
+    folder = save(insert(CONST, at="conv1"), tmp_path / "const")
+    report = verify(folder, onnx=True)
+    assert report.passed, [(r.check, r.detail) for r in report.checks if not r.passed]
+    result = export(folder, onnx=tmp_path / "const.onnx")
+    assert result["exports"][0]["max_abs"] <= 1e-5
+
+
+@pytest.mark.slow
+def test_timm_fused_batchnorm_models_keep_provenance(tmp_path):
+    src = splice.load_source("timm:efficientnet_b0", kwargs={"num_classes": 5}, input_shape=(3, 32, 32))
+    before = buffer_snapshot(src.model)
+    splice.points(src.model, (3, 32, 32))
+    assert changed_buffers(before, src.model) == []
+    folder = save(insert(src, at="recommended"), tmp_path / "effnet")
+    assert changed_buffers(before, src.model) == []
+    report = verify(folder)
+    assert report["provenance"].passed, report["provenance"].detail
+    assert report.passed, report.failed
