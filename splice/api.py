@@ -30,14 +30,14 @@ def _source(model, **options):
 
 
 @contextlib.contextmanager
-def _as_folder(model, trust_pickle: bool = False) -> Iterator[Path]:
+def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> Iterator[Path]:
     """``model`` as a splice folder: itself when it is one, else saved to a temporary folder."""
     from .store import is_splice_folder, save
 
     if isinstance(model, (str, os.PathLike)) and is_splice_folder(model):
         yield Path(model)
         return
-    src = _source(model, trust_pickle=trust_pickle, warn_random=False)
+    src = _source(model, trust_pickle=trust_pickle, warn_random=False, trust_code=trust_code)
     with tempfile.TemporaryDirectory(prefix="splice-") as tmp:
         folder = Path(tmp) / "model"
         from .manifest import info_of
@@ -47,7 +47,7 @@ def _as_folder(model, trust_pickle: bool = False) -> Iterator[Path]:
 
 
 def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] = (), warp: str = "affine",
-           weights=None, kwargs=None) -> list:
+           weights=None, kwargs=None, trust_code: bool = False) -> list:
     """List where a warp can go in ``model`` (a list of :class:`splice.graph.Point`).
 
     By default only the model input and the points between conv layers are
@@ -63,14 +63,16 @@ def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] 
     from . import graph
     from .errors import SourceError
 
-    src = _source(model, input_shape=input_shape, weights=weights, kwargs=kwargs, leaves=leaves, warn_random=False)
+    src = _source(model, input_shape=input_shape, weights=weights, kwargs=kwargs, leaves=leaves, warn_random=False,
+                  trust_code=trust_code)
     if src.input_shape is None:
         raise SourceError("points() needs the model's input shape; pass input_shape=(C, H, W)")
     return graph.points(src.model, src.input_shape, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp)
 
 
 def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affine", *, input_shape=None,
-           leaves: Sequence[str] = (), check: bool = True, force: bool = False, tol: float = 1e-5):
+           leaves: Sequence[str] = (), check: bool = True, force: bool = False, tol: float = 1e-5,
+           trust_code: bool = False):
     """A copy of ``model`` with identity-initialised warps at ``at`` (your model is not changed).
 
     ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` or a mapping
@@ -90,7 +92,7 @@ def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affin
     """
     from .surgery import insert as insert_warps
 
-    src = _source(model, input_shape=input_shape, leaves=leaves, warn_random=False)
+    src = _source(model, input_shape=input_shape, leaves=leaves, warn_random=False, trust_code=trust_code)
     return insert_warps(src, at=at, warp=warp, leaves=leaves, check=check, force=force, tol=tol)
 
 
@@ -110,7 +112,7 @@ def save(model, folder: str | os.PathLike, *, overwrite: bool = False, source=No
                        normalisation=normalisation)
 
 
-def load(folder: str | os.PathLike, *, trust_pickle: bool = False):
+def load(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False):
     """Rebuild a saved model (base from its recorded spec, warps re-applied, weights checked by hash).
 
     >>> import splice, tempfile
@@ -121,11 +123,11 @@ def load(folder: str | os.PathLike, *, trust_pickle: bool = False):
     """
     from .store import load as load_folder
 
-    return load_folder(folder, trust_pickle=trust_pickle)
+    return load_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
 
 
 def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False, opset: int = 17,
-           seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript"):
+           seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript", trust_code: bool = False):
     """Certify a spliced model against its base: a :class:`~splice.verification.VerifyReport`.
 
     ``model`` is a folder, or a spliced model in memory (saved to a temporary
@@ -138,14 +140,14 @@ def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = 
     """
     from .verification import verify as verify_folder
 
-    with _as_folder(model, trust_pickle) as folder:
+    with _as_folder(model, trust_pickle, trust_code) as folder:
         return verify_folder(folder, images=images, batch=batch, dtype=dtype, onnx=onnx, opset=opset, seed=seed,
-                             trust_pickle=trust_pickle, exporter=exporter)
+                             trust_pickle=trust_pickle, exporter=exporter, trust_code=trust_code)
 
 
 def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None, *,
-           opset: int = 17, dynamic_batch: bool = False, trust_pickle: bool = False,
-           exporter: str = "torchscript") -> dict:
+           opset: int = 17, dynamic_batch: bool = True, trust_pickle: bool = False,
+           exporter: str = "torchscript", trust_code: bool = False) -> dict:
     """Export to ONNX and/or torch.export; a copy is kept only after its parity check passed.
 
     >>> import splice, tempfile
@@ -156,9 +158,9 @@ def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike 
     """
     from .exporting import export as export_folder
 
-    with _as_folder(model, trust_pickle) as folder:
+    with _as_folder(model, trust_pickle, trust_code) as folder:
         return export_folder(folder, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch,
-                             trust_pickle=trust_pickle, exporter=exporter)
+                             trust_pickle=trust_pickle, exporter=exporter, trust_code=trust_code)
 
 
 def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides=None, model_options=None,
@@ -195,7 +197,7 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
 
 
 def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pickle: bool = False,
-            pictures: bool = True) -> dict:
+            pictures: bool = True, trust_code: bool = False) -> dict:
     """What the warps learned: per-image polar decomposition, a summary, and pictures, written to ``out``.
 
     >>> import splice, tempfile
@@ -206,6 +208,6 @@ def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pi
     """
     from .inspection import inspect as inspect_folder
 
-    with _as_folder(model, trust_pickle) as folder:
+    with _as_folder(model, trust_pickle, trust_code) as folder:
         return inspect_folder(folder, data=data, n=n, split=split, out=out, trust_pickle=trust_pickle,
-                              pictures=pictures)
+                              pictures=pictures, trust_code=trust_code)

@@ -57,8 +57,8 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):  #
 
 def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, optional: bool = False) -> None:
     p.add_argument("model", metavar="MODEL", nargs="?" if optional else None,
-                   help="torchvision:NAME, package.module:factory, path/file.py:factory, or a splice folder"
-                   + (" (optional with --resume)" if optional else ""))
+                   help="torchvision:NAME, timm:NAME, package.module:factory, path/file.py:factory, a Hugging Face "
+                   "save_pretrained folder, or a splice folder" + (" (optional with --resume)" if optional else ""))
     p.add_argument("--weights", metavar="FILE", help=".pt/.pth state dict or .safetensors file")
     p.add_argument("--kwargs", metavar="JSON", help="builder arguments as a JSON object, e.g. '{\"num_classes\": 10}'")
     if shape:
@@ -68,6 +68,12 @@ def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, option
     p.add_argument("--allow-partial", action="store_true", help="load only the weights that fit; report the rest")
     p.add_argument("--trust-pickle", action="store_true",
                    help="allow unpickling whole-module checkpoints (can run arbitrary code: only for files you trust)")
+    _add_trust_code(p)
+
+
+def _add_trust_code(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--trust-code", action="store_true",
+                   help="allow code shipped with a model (a Hugging Face config's auto_map): only for models you trust")
 
 
 def _source(args):
@@ -81,6 +87,7 @@ def _source(args):
         allow_partial=args.allow_partial,
         trust_pickle=args.trust_pickle,
         leaves=tuple(args.leaf),
+        trust_code=args.trust_code,
     )
 
 
@@ -147,7 +154,7 @@ def _cmd_verify(args) -> int:
     from .verification import render_verify, verify, write_report
 
     report = verify(args.folder, images=args.images, batch=args.batch, dtype=args.dtype, onnx=args.onnx,
-                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle)
+                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle, trust_code=args.trust_code)
     if args.report:
         write_report(report, args.report)
     if args.json:
@@ -165,7 +172,8 @@ def _cmd_export(args) -> int:
 
         raise SpliceError("export needs a target: --onnx FILE and/or --pt2 FILE")
     result = export(args.folder, onnx=args.onnx, pt2=args.pt2, opset=args.opset,
-                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle, exporter=args.exporter)
+                    dynamic_batch=not args.static_batch, trust_pickle=args.trust_pickle, exporter=args.exporter,
+                    trust_code=args.trust_code)
     out = _console()
     for item in result["exports"]:
         perturbed = item.get("max_abs_perturbed")
@@ -183,7 +191,7 @@ def _cmd_tune(args) -> int:
         epochs=args.epochs, lr=args.lr, batch_size=args.batch_size, seed=args.seed, device=args.device,
         quiet=args.quiet, weights=args.weights, kwargs=args.kwargs, input_shape=args.input_shape,
         allow_partial=args.allow_partial, trust_pickle=args.trust_pickle, leaves=tuple(args.leaf),
-        workers=args.workers, reference=args.reference,
+        workers=args.workers, reference=args.reference, trust_code=args.trust_code,
     )
     if summary and not args.quiet and summary.get("rank", 0) == 0:
         out = _console()
@@ -196,7 +204,7 @@ def _cmd_inspect(args) -> int:
     from .inspection import inspect, render_inspect
 
     result = inspect(args.folder, data=args.data, n=args.n, split=args.split, out=args.out,
-                     trust_pickle=args.trust_pickle)
+                     trust_pickle=args.trust_pickle, trust_code=args.trust_code)
     render_inspect(result, _console())
     return EXIT_OK
 
@@ -206,7 +214,8 @@ def _cmd_eval(args) -> int:
 
     result = evaluate(args.model, data=args.data, split=args.split, against=args.against, distort=args.distort,
                       batch_size=args.batch_size, plot=args.plot, weights=args.weights, kwargs=args.kwargs,
-                      input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device)
+                      input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device,
+                      trust_code=args.trust_code)
     if args.json:
         print(json.dumps(result, indent=2))
     else:
@@ -263,6 +272,7 @@ def _parser_verify(sub) -> None:
     p.add_argument("--json", action="store_true", help="print the certificate as JSON")
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    _add_trust_code(p)
     p.set_defaults(func=_cmd_verify)
 
 
@@ -272,10 +282,12 @@ def _parser_export(sub) -> None:
     p.add_argument("--onnx", metavar="FILE", help="write an ONNX file")
     p.add_argument("--pt2", metavar="FILE", help="write a torch.export program (.pt2)")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
-    p.add_argument("--dynamic-batch", action="store_true", help="leave the batch dimension free")
+    p.add_argument("--static-batch", action="store_true",
+                   help="fix the batch dimension to 1 (default: a dynamic batch dimension)")
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
                    help="ONNX exporter (default torchscript)")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    _add_trust_code(p)
     p.set_defaults(func=_cmd_export)
 
 
@@ -308,6 +320,7 @@ def _parser_inspect(sub) -> None:
     p.add_argument("--split", default="test")
     p.add_argument("--out", required=True, metavar="REPORT_DIR")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    _add_trust_code(p)
     p.set_defaults(func=_cmd_inspect)
 
 

@@ -27,7 +27,8 @@ class ModelOptions:
     ``(C, H, W)`` (or a ``CxHxW`` string) when the builder does not declare one,
     ``leaves`` extra module types the tracer must not enter, ``trust_pickle``
     the explicit opt-in to unpickling, ``allow_partial`` accepts a checkpoint
-    that covers only part of the model.
+    that covers only part of the model, ``trust_code`` the explicit opt-in to
+    code shipped with a model (a Hugging Face config's ``auto_map``).
     """
 
     weights: str | os.PathLike | None = None
@@ -36,6 +37,7 @@ class ModelOptions:
     leaves: tuple[str, ...] = ()
     trust_pickle: bool = False
     allow_partial: bool = False
+    trust_code: bool = False
 
     def __post_init__(self) -> None:
         if self.weights is not None and not isinstance(self.weights, (str, os.PathLike)):
@@ -46,7 +48,7 @@ class ModelOptions:
         if isinstance(leaves, str) or not isinstance(leaves, Sequence) or not all(isinstance(x, str) for x in leaves):
             raise ValueError(f"ModelOptions.leaves must be a sequence of names; got {leaves!r}")
         object.__setattr__(self, "leaves", tuple(leaves))
-        for name in ("trust_pickle", "allow_partial"):
+        for name in ("trust_pickle", "allow_partial", "trust_code"):
             if not isinstance(getattr(self, name), bool):
                 raise ValueError(f"ModelOptions.{name} must be True or False; got {getattr(self, name)!r}")
 
@@ -57,7 +59,7 @@ class ModelOptions:
         spec = os.fspath(model) if isinstance(model, os.PathLike) else model
         return open_source(spec, weights=self.weights, kwargs=self.kwargs, input_shape=self.input_shape,
                            allow_partial=self.allow_partial, trust_pickle=self.trust_pickle, leaves=self.leaves,
-                           **extra)
+                           trust_code=self.trust_code, **extra)
 
 
 def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: str) -> list:

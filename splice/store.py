@@ -38,7 +38,16 @@ from .manifest import (
     validate_manifest,
 )
 from .version import library_versions
-from .sources import Source, build_model, check_finite, load_source, parse_input_shape, read_safetensors, with_metadata
+from .sources import (
+    Source,
+    build_model,
+    check_finite,
+    is_hf_folder,
+    load_source,
+    parse_input_shape,
+    read_safetensors,
+    with_metadata,
+)
 from .surgery import WARP_PREFIX, SplicePlan, apply_plan
 
 __all__ = [
@@ -139,17 +148,17 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
 # ----------------------------------------------------------------------------- building
 
 
-def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False) -> nn.Module:
+def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     if ":" not in info.spec:  # a pickled whole module
         return load_source(info.spec, input_shape=info.input_shape, trust_pickle=trust_pickle).model
-    model, _ = build_model(info.spec, info.kwargs)
+    model, _ = build_model(info.spec, info.kwargs, trust_code=trust_code)
     return model
 
 
 _META = torch.device("meta")
 
 
-def _empty_base(info: SpliceInfo) -> nn.Module | None:
+def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
     """The base architecture with its tensors on the meta device (no memory, no random init), or ``None``.
 
     Only builders (``torchvision:NAME``, ``module:factory``) can be built this
@@ -160,7 +169,7 @@ def _empty_base(info: SpliceInfo) -> nn.Module | None:
         return None
     try:
         with _META:
-            model, _ = build_model(info.spec, info.kwargs)
+            model, _ = build_model(info.spec, info.kwargs, trust_code=trust_code)
     except Exception:  # any failure here only means "build it the slow way"
         return None
     return model
@@ -211,15 +220,15 @@ def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | No
 
 
 def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *,
-                     trust_pickle: bool = False, empty: nn.Module | None = None) -> nn.Module:
+                     trust_pickle: bool = False, trust_code: bool = False, empty: nn.Module | None = None) -> nn.Module:
     """The base network holding ``base_state``: built empty and filled when it can be, else built and loaded.
 
     ``empty`` may pass in an :func:`_empty_base` to fill (it is used up).
     """
-    empty = empty if empty is not None else _empty_base(info)
+    empty = empty if empty is not None else _empty_base(info, trust_code)
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
-        model = _rebuild_base(info, trust_pickle=trust_pickle)
+        model = _rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code)
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
@@ -278,7 +287,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
 
 
 def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *, trust_pickle: bool,
-               empty: nn.Module | None = None, frame: nn.Module | None = None) -> nn.Module:
+               trust_code: bool = False, empty: nn.Module | None = None, frame: nn.Module | None = None) -> nn.Module:
     """The spliced model holding ``state``: assembled on an empty base when it can be, else on a built one.
 
     ``empty`` may pass in an :func:`_empty_base`; with points it is traced
@@ -287,7 +296,7 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
     being checked.
     """
     if frame is None:
-        empty = empty if empty is not None else _empty_base(info)
+        empty = empty if empty is not None else _empty_base(info, trust_code)
         if empty is not None:
             frame = _frame(empty, info, copy_base=True)
     if frame is not None:
@@ -295,7 +304,7 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
             return _load_into(frame, state, folder, assign=True)
         except WeightsError:
             pass  # the strict, slow path below names what does not fit
-    return assemble(_rebuild_base(info, trust_pickle=trust_pickle), info, state, folder)
+    return assemble(_rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code), info, state, folder)
 
 
 # ----------------------------------------------------------------------------- opening a folder
@@ -319,6 +328,7 @@ class OpenedFolder:
     actual_sha256: str
     state: dict[str, torch.Tensor] | None
     trust_pickle: bool = False
+    trust_code: bool = False
     empty: nn.Module | None = field(default=None, repr=False)
     frame: nn.Module | None = field(default=None, repr=False)
 
@@ -335,7 +345,7 @@ class OpenedFolder:
     def spliced(self) -> nn.Module:
         """The spliced model (eval mode, carrying :attr:`info`)."""
         model = _assembled(self.info, self._tensors(), self.folder, trust_pickle=self.trust_pickle,
-                           empty=self.empty, frame=self.frame)
+                           trust_code=self.trust_code, empty=self.empty, frame=self.frame)
         self.frame = None  # used up
         attach_info(model, self.info)
         return model.eval()
@@ -343,21 +353,21 @@ class OpenedFolder:
     def base(self) -> nn.Module:
         """The base network: the architecture with the base part of the weights (eval mode)."""
         model = _base_from_state(self.info, base_part(self._tensors()), trust_pickle=self.trust_pickle,
-                                 empty=self.empty)
+                                 trust_code=self.trust_code, empty=self.empty)
         self.empty = None  # used up
         return model
 
 
-def _build_empty(info: SpliceInfo, frame: bool) -> tuple[nn.Module | None, nn.Module | None]:
+def _build_empty(info: SpliceInfo, frame: bool, trust_code: bool) -> tuple[nn.Module | None, nn.Module | None]:
     try:
-        empty = _empty_base(info)
+        empty = _empty_base(info, trust_code)
         return empty, (_frame(empty, info, copy_base=True) if frame and empty is not None else None)
     except Exception:  # left to the slow path, which reports it after the integrity check
         return None, None
 
 
 def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_pickle: bool = False,
-                strict: bool = True, frame: bool = True) -> OpenedFolder:
+                strict: bool = True, frame: bool = True, trust_code: bool = False) -> OpenedFolder:
     """Read a folder's manifest and check its weights against the recorded sha256.
 
     The file is hashed on a second thread while the architecture (and, with
@@ -379,9 +389,9 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
     with ThreadPoolExecutor(max_workers=1) as pool:
         # hashing releases the GIL (file_sha256 hashes the mapped file in one call)
         file_hash = pool.submit(file_sha256, path)
-        empty, framed = _build_empty(info, frame)
+        empty, framed = _build_empty(info, frame, trust_code)
         actual = file_hash.result()
-    opened = OpenedFolder(folder, manifest, info, path, recorded, actual, None, trust_pickle, empty, framed)
+    opened = OpenedFolder(folder, manifest, info, path, recorded, actual, None, trust_pickle, trust_code, empty, framed)
     if actual != recorded:
         if strict:
             raise IntegrityError(
@@ -398,7 +408,7 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
 # ----------------------------------------------------------------------------- load
 
 
-def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+def load(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     """Rebuild a model saved by :func:`save`: base from its spec, warps re-applied, weights loaded.
 
     The weights file is refused if its sha256 differs from the one recorded at
@@ -406,19 +416,20 @@ def load(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
 
     >>> model = splice.load("out/r18-affine")   # doctest: +SKIP
     """
-    opened = open_folder(folder, trust_pickle=trust_pickle)
+    opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     check_finite(opened.state, f"'{opened.weights_path}'")
     return opened.spliced()
 
 
-def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False) -> nn.Module:
+def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     """The base network of a folder: its architecture with the base part of the saved weights."""
-    return open_folder(folder, trust_pickle=trust_pickle, frame=False).base()
+    return open_folder(folder, trust_pickle=trust_pickle, frame=False, trust_code=trust_code).base()
 
 
-def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False) -> Source:
+def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False,
+                       trust_code: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
-    opened = open_folder(folder, trust_pickle=trust_pickle)
+    opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     check_finite(opened.state, f"'{opened.weights_path}'")
     model = opened.spliced()
     info, manifest = opened.info, opened.manifest
@@ -439,14 +450,17 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
 
 def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapping | str | None = None,
                 input_shape: str | Sequence[int] | None = None, leaves: Sequence[str] = (),
-                trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True) -> Source:
+                trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True,
+                trust_code: bool = False, default_input_shape=None) -> Source:
     """A :class:`~splice.sources.Source` for anything a command accepts: a folder written by
     :func:`save` (opened here), else whatever :func:`splice.sources.load_source` resolves.
 
     >>> src = open_source("out/r18-affine")   # doctest: +SKIP
     """
-    if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir():
-        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle)
+    if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir() and not is_hf_folder(thing):
+        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle,
+                                  trust_code=trust_code)
     spec = os.fspath(thing) if isinstance(thing, os.PathLike) else thing
     return load_source(spec, weights=weights, kwargs=kwargs, input_shape=input_shape, leaves=leaves,
-                       trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random)
+                       trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random,
+                       trust_code=trust_code, default_input_shape=default_input_shape)

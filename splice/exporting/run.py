@@ -41,8 +41,8 @@ def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
     return target, digest
 
 def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None,
-           *, opset: int = 17, dynamic_batch: bool = False, trust_pickle: bool = False,
-           exporter: str = "torchscript", seed: int = 0, tol: float | None = None) -> dict:
+           *, opset: int = 17, dynamic_batch: bool = True, trust_pickle: bool = False,
+           exporter: str = "torchscript", seed: int = 0, tol: float | None = None, trust_code: bool = False) -> dict:
     """Export a spliced folder to ONNX and/or torch.export, keeping only copies that pass parity.
 
     Each export is checked with :func:`onnx_parity` / :func:`pt2_parity` (as
@@ -64,7 +64,7 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
     for target in (onnx, pt2):
         if target is not None and Path(target).is_dir():
             raise SpliceError(f"export target '{target}' is a folder; give a file name such as model.onnx")
-    model = load(folder, trust_pickle=trust_pickle)
+    model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     shape = info_of(model).input_shape
     example, batches = _probe_inputs(shape, _model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
     jobs: list[tuple[str, str | os.PathLike]] = []

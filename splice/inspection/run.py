@@ -58,7 +58,8 @@ class _Sample:
 
 
 def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_pickle: bool = False,
-            batch_size: int = 64, sheet_images: int = SHEET_IMAGES, pictures: bool = True) -> dict:
+            batch_size: int = 64, sheet_images: int = SHEET_IMAGES, pictures: bool = True,
+            trust_code: bool = False) -> dict:
     """Show what the warps of a spliced folder learned, on ``n`` images of a data split.
 
     Writes to ``out``: ``warps.csv`` (one row per image per warp, the
@@ -84,7 +85,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     check_positive_int("sheet_images", sheet_images)
     if out is None:
         raise SpliceError("inspect needs an output folder for its report; pass out=DIR (--out DIR).")
-    model, warps, facts = _load(folder, trust_pickle)
+    model, warps, facts = _load(folder, trust_pickle, trust_code)
     sample = _sample(facts, data, split, n)
     cap = capture(model, sample.images, normalisation=sample.normalisation, batch_size=batch_size)
     _score(sample, cap.logits)
@@ -113,13 +114,13 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     return result
 
 
-def _load(folder, trust_pickle: bool):
+def _load(folder, trust_pickle: bool, trust_code: bool = False):
     """The spliced model of ``folder``, its warps and its record's facts."""
     from ..manifest import info_of
     from ..store import load
     from ..surgery import warps_of
 
-    model = load(folder, trust_pickle=trust_pickle)
+    model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     warps = warps_of(model)
     if not warps:
         raise SpliceError(

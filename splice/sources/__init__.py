@@ -8,7 +8,14 @@ Spec forms, used by every command:
 - ``path/to/file.py:factory`` — a callable defined in a Python file.
 - ``path/to/model.pt`` — a whole pickled ``nn.Module``; loads only with
   ``trust_pickle=True`` because unpickling can run arbitrary code.
-- ``path/to/folder`` — a folder written by :func:`splice.save`.
+- ``timm:NAME`` — a timm architecture by name (``pretrained=False``; timm is optional).
+- ``transformers:ClassName`` with ``kwargs={"config": {...}}`` — a Hugging Face
+  model class of the installed transformers, built from its config.
+- ``path/to/hf_folder`` — a folder written by ``save_pretrained`` (``config.json``
+  and weights), built from its config; custom code (``auto_map``) only with
+  ``trust_code=True``.
+- ``path/to/folder`` — a folder written by :func:`splice.save` (opened by
+  :func:`splice.store.open_source`).
 
 Weights (``.pt``/``.pth``/``.bin`` state dicts through
 ``torch.load(weights_only=True)``, or ``.safetensors``) may be wrapped in
@@ -20,6 +27,7 @@ unexpected and shape-mismatched names are refused unless ``allow_partial``.
 from __future__ import annotations
 
 from .builders import IMAGENET_NORMALISATION, build_model
+from .huggingface import is_hf_folder, read_hf_folder
 from .source import Source, load_source
 from .specs import format_shape, parse_input_shape, parse_kwargs
 from .weights import (
@@ -36,6 +44,8 @@ __all__ = [
     "Source",
     "load_source",
     "build_model",
+    "is_hf_folder",
+    "read_hf_folder",
     "read_weights",
     "read_safetensors",
     "with_metadata",

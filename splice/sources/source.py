@@ -13,6 +13,7 @@ from torch import nn
 from .._io import state_dict_sha256
 from ..errors import RandomWeightsWarning, SourceError
 from .builders import build_model
+from .huggingface import is_hf_folder, read_hf_folder
 from .specs import parse_input_shape, parse_kwargs
 from .weights import _check_file, _torch_load, check_finite, load_weights_, read_weights
 
@@ -61,8 +62,15 @@ def load_source(
     trust_pickle: bool = False,
     leaves: Sequence[str] = (),
     warn_random: bool = True,
+    trust_code: bool = False,
+    default_input_shape: Sequence[int] | None = None,
 ) -> Source:
-    """Resolve a model spec (or folder) into a :class:`Source`.
+    """Resolve a model spec (or a Hugging Face ``save_pretrained`` folder) into a :class:`Source`.
+
+    ``trust_code`` allows a Hugging Face config that runs code shipped with the
+    model (``auto_map``). ``default_input_shape`` is used when neither
+    ``input_shape`` nor the builder gives one. Folders written by splice are
+    opened by :func:`splice.store.open_source`.
 
     >>> src = load_source("torchvision:resnet18", kwargs={"num_classes": 10})  # doctest: +SKIP
     >>> src.input_shape
@@ -80,6 +88,10 @@ def load_source(
     shape = parse_input_shape(input_shape)
     path = Path(spec)
     if ":" not in spec or path.is_dir():
+        if is_hf_folder(path):
+            return _load_hf_folder(path, weights=weights, input_shape=shape, allow_partial=allow_partial,
+                                   trust_pickle=trust_pickle, leaves=leaves, trust_code=trust_code,
+                                   default_input_shape=default_input_shape)
         if path.is_dir():
             # folders written by splice are opened one floor up, by splice.store.open_source
             raise SourceError(f"'{spec}' is a folder, which load_source does not open; pass it to a splice command "
@@ -92,7 +104,7 @@ def load_source(
             f"cannot read model spec {spec!r}; use torchvision:NAME (e.g. torchvision:resnet18), "
             "package.module:factory, path/to/file.py:factory, or a folder written by 'splice insert'"
         )
-    model, meta = build_model(spec, kw)
+    model, meta = build_model(spec, kw, trust_code=trust_code)
     random_init = weights is None
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
@@ -105,7 +117,7 @@ def load_source(
             stacklevel=2,
         )
     model.eval()
-    final_shape = shape or meta["input_shape"]
+    final_shape = shape or meta["input_shape"] or parse_input_shape(default_input_shape)
     if final_shape is None:
         raise SourceError(
             f"cannot tell the input shape of {spec}; pass --input-shape CxHxW "
@@ -122,6 +134,22 @@ def load_source(
         random_init=random_init,
         leaves=tuple(leaves),
     )
+
+
+def _load_hf_folder(path: Path, *, weights, input_shape, allow_partial: bool, trust_pickle: bool, leaves,
+                    trust_code: bool, default_input_shape) -> Source:
+    """A ``save_pretrained`` folder: built from its config, its own weights file loaded (or ``weights``)."""
+    hf = read_hf_folder(path)
+    weights = weights if weights is not None else hf.weights
+    if weights is None:
+        raise SourceError(f"'{path}' holds a config.json but no weights (model.safetensors, pytorch_model.bin or "
+                          "a shard index); re-save the model with save_pretrained, or pass --weights FILE")
+    src = load_source(hf.spec, weights=weights, kwargs=hf.kwargs, input_shape=input_shape or hf.input_shape,
+                      allow_partial=allow_partial, trust_pickle=trust_pickle, leaves=leaves, warn_random=False,
+                      trust_code=trust_code, default_input_shape=default_input_shape)
+    if hf.normalisation is not None:
+        src.normalisation = hf.normalisation
+    return src
 
 
 def _load_pickled_module(path: Path, shape, *, trust_pickle: bool) -> Source:

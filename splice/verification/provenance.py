@@ -18,7 +18,7 @@ from .report import CheckResult
 __all__: list[str] = []
 
 
-def _source_state(info: SpliceInfo, input_shape) -> tuple[dict | None, str]:
+def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tuple[dict | None, str]:
     """The source checkpoint's state dict, or ``None`` and the reason it is unavailable."""
     path = info.source_weights_path
     if path is None:
@@ -28,7 +28,7 @@ def _source_state(info: SpliceInfo, input_shape) -> tuple[dict | None, str]:
         return None, f"the source weights file '{path}' is no longer on disk, so only hashes are compared"
     try:
         src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape, warn_random=False,
-                          leaves=info.leaves)
+                          leaves=info.leaves, trust_code=trust_code)
     except SpliceError as exc:
         return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
     return dict(src.model.state_dict()), f"compared with '{path}'"
@@ -53,7 +53,7 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             "missing": missing, "unexpected": extra}
 
 def _provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
-                    input_shape) -> CheckResult:
+                    input_shape, trust_code: bool = False) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
     source = info.source_weights_sha256
     tuning = info.tuning
@@ -71,7 +71,7 @@ def _provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], ac
         return CheckResult("provenance", True, numbers,
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…){note}",
                            f"sha256 {actual[:12]}… = source")
-    state, how = _source_state(info, input_shape)
+    state, how = _source_state(info, input_shape, trust_code)
     if state is not None:
         diff = _tensor_diff(base_state, state)
         numbers["diff"] = diff

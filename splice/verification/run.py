@@ -54,14 +54,15 @@ class _Options:
     exporter: str
     seed: int
     tol: float | None
+    trust_code: bool = False
 
     @classmethod
-    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol) -> _Options:
+    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol, trust_code=False) -> _Options:
         dt = _resolve_dtype(dtype)
         _check_batch(batch)
         if onnx:
             check_opset(opset, exporter)
-        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol)
+        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol, bool(trust_code))
 
 
 def _info_of(spliced: nn.Module, info: SpliceInfo | Mapping | None) -> SpliceInfo:
@@ -176,7 +177,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
                 lap: _Laps) -> VerifyReport:
     base_state = base_part(spliced.state_dict())
     meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
-    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape)
+    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
+                                 opts.trust_code)
     lap("provenance")
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
     snapshot = _Snapshot({"base": base, "spliced": spliced})
@@ -247,7 +249,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
 
 def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False,
            opset: int = 17, seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript",
-           tol: float | None = None) -> VerifyReport:
+           tol: float | None = None, trust_code: bool = False) -> VerifyReport:
     """Certify a spliced folder against its base, rebuilt from the manifest.
 
     Returns a :class:`VerifyReport`; ``report.passed`` is ``True`` only when
@@ -262,9 +264,10 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     """
     lap = _Laps()
     folder = Path(folder)
-    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol)
+    opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol,
+                            trust_code=trust_code)
     # the tensors stay backed by the mapped file: both models live only as long as this call
-    opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False)
+    opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False, trust_code=trust_code)
     info = opened.info
     files = images_t = None
     if images is not None:
