@@ -47,7 +47,7 @@ def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> I
 
 
 def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] = (), warp: str = "affine",
-           weights=None, kwargs=None, trust_code: bool = False) -> list:
+           weights=None, kwargs=None, trust_code: bool = False, within: str = "") -> list:
     """List where a warp can go in ``model`` (a list of :class:`splice.graph.Point`).
 
     By default only the model input and the points between conv layers are
@@ -67,12 +67,13 @@ def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] 
                   trust_code=trust_code)
     if src.input_shape is None:
         raise SourceError("points() needs the model's input shape; pass input_shape=(C, H, W)")
-    return graph.points(src.model, src.input_shape, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp)
+    return graph.points(src.model, src.input_shapes, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp,
+                        within=within)
 
 
 def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affine", *, input_shape=None,
            leaves: Sequence[str] = (), check: bool = True, force: bool = False, tol: float = 1e-5,
-           trust_code: bool = False):
+           trust_code: bool = False, within: str = ""):
     """A copy of ``model`` with identity-initialised warps at ``at`` (your model is not changed).
 
     ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` or a mapping
@@ -93,7 +94,7 @@ def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affin
     from .surgery import insert as insert_warps
 
     src = _source(model, input_shape=input_shape, leaves=leaves, warn_random=False, trust_code=trust_code)
-    return insert_warps(src, at=at, warp=warp, leaves=leaves, check=check, force=force, tol=tol)
+    return insert_warps(src, at=at, warp=warp, leaves=leaves, check=check, force=force, tol=tol, within=within)
 
 
 def save(model, folder: str | os.PathLike, *, overwrite: bool = False, source=None, tuning: Mapping | None = None,

@@ -44,11 +44,11 @@ from .sources import (
     check_finite,
     is_hf_folder,
     load_source,
-    parse_input_shape,
+    parse_input_shapes,
     read_safetensors,
     with_metadata,
 )
-from .surgery import WARP_PREFIX, SplicePlan, apply_plan
+from .surgery import WARP_PREFIX, apply_info
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -253,9 +253,7 @@ def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.
     """
     if not info.points:
         return copy.deepcopy(base) if copy_base else base
-    plan = [SplicePlan(p.name, p.warp) for p in info.points]
-    return apply_plan(base, plan, info.input_shape, leaves=info.leaves,
-                      factory={"device": "cpu"} if _on_meta(base) else None, shapes=info.recorded_shapes())
+    return apply_info(base, info, factory={"device": "cpu"} if _on_meta(base) else None)
 
 
 def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
@@ -445,6 +443,7 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
         manifest=manifest,
         random_init=info.random_init,
         leaves=info.leaves,
+        extra_inputs=info.extra_inputs,
     )
 
 
@@ -458,7 +457,8 @@ def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapp
     >>> src = open_source("out/r18-affine")   # doctest: +SKIP
     """
     if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir() and not is_hf_folder(thing):
-        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle,
+        shapes = parse_input_shapes(input_shape)
+        return load_folder_source(thing, input_shape=shapes[0] if shapes else None, trust_pickle=trust_pickle,
                                   trust_code=trust_code)
     spec = os.fspath(thing) if isinstance(thing, os.PathLike) else thing
     return load_source(spec, weights=weights, kwargs=kwargs, input_shape=input_shape, leaves=leaves,

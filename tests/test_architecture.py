@@ -21,7 +21,7 @@ FLOORS = {
     "errors": 1, "_io": 1, "version": 1, "compare": 1, "copies": 1, "progress": 1, "pictures": 1,
     "warps": 2, "distort": 2, "data": 2, "recipes": 2, "models": 2,
     "sources": 3, "graph": 3,
-    "manifest": 4, "surgery": 4,
+    "manifest": 4, "surgery": 4, "hooks": 4,
     "store": 5,
     "verification": 6, "exporting": 6,
     "training": 7, "options": 7, "evaluation": 7, "inspection": 7, "adapt": 7,

@@ -29,7 +29,7 @@ from __future__ import annotations
 from .builders import IMAGENET_NORMALISATION, build_model
 from .huggingface import is_hf_folder, read_hf_folder
 from .source import Source, load_source
-from .specs import format_shape, parse_input_shape, parse_kwargs
+from .specs import format_shape, parse_input_shape, parse_input_shapes, parse_kwargs
 from .weights import (
     NESTING_KEYS,
     WRAPPER_PREFIXES,
@@ -51,6 +51,7 @@ __all__ = [
     "with_metadata",
     "load_weights_",
     "parse_input_shape",
+    "parse_input_shapes",
     "parse_kwargs",
     "format_shape",
     "check_finite",

@@ -87,7 +87,7 @@ from __future__ import annotations
 
 from ..compare import DEFAULT_TOLERANCES, compare_outputs, flatten_outputs
 from ..data import IMAGE_SUFFIXES
-from .probe import DTYPES, probe_batch
+from .probe import DTYPES, probe_batch, probe_inputs
 from .report import CheckResult, VerifyReport, render_verify, versions, write_report
 from .run import verify, verify_models
 
@@ -102,6 +102,7 @@ __all__ = [
     "verify",
     "verify_models",
     "probe_batch",
+    "probe_inputs",
     "render_verify",
     "write_report",
     "versions",
