@@ -145,7 +145,7 @@ def _site_module(scope_module: nn.Module, qualname: str, point: str) -> nn.Modul
     except AttributeError:
         names = [q for q, _ in scope_module.named_modules() if q]
         raise PointError(f"point {point!r} sits on module {qualname!r}, which the model does not have"
-                         f"{suggest(qualname, names) or ';'} re-create the splice from 'splice points'") from None
+                         f"{suggest(qualname, names) or ';'} Re-create the splice from 'splice points'") from None
 
 
 def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str, int]],

@@ -212,3 +212,22 @@ def test_a_bad_weights_index_is_refused(tmp_path):
     (tmp_path / "model.safetensors.index.json").write_text(json.dumps({"weight_map": {"a": "../x.safetensors"}}))
     with pytest.raises(WeightsError, match="is not a shard index"):
         splice.sources.read_weights(tmp_path / "model.safetensors.index.json")
+
+
+def test_a_spliced_hugging_face_folder_is_self_contained(tmp_path):
+    import shutil
+
+    source = tmp_path / "hf"
+    _hf_resnet().save_pretrained(source)
+    with pytest.warns(splice.graph.TraceFallbackWarning):  # HF forwards branch on Python values
+        spliced = splice.insert(str(source), at="recommended", input_shape=(3, 32, 32))
+    assert spliced.splice_info.spec == "transformers:ResNetForImageClassification"
+    folder = splice.save(spliced, tmp_path / "spliced")
+    shutil.rmtree(source)  # the manifest holds the config: nothing is read from the source folder again
+    model = splice.load(folder)
+    x = torch.randn(1, 3, 32, 32)
+    with torch.no_grad():
+        assert torch.equal(model(x).logits, _hf_resnet()(x).logits)
+    report = splice.verify(folder)
+    assert report.passed, report.failed
+    assert "no longer on disk" in report["provenance"].detail or report["provenance"].summary.endswith("= source")

@@ -161,6 +161,22 @@ def _check_images(model: nn.Module) -> None:
                          "images (C, H, W) for now, and volumes and video come in a later release")
 
 
+def _check_arity(model: nn.Module, shapes: tuple) -> None:
+    """One shape per required input of ``forward``, or a one-line error naming the inputs."""
+    import inspect
+
+    try:
+        params = inspect.signature(model.forward).parameters.values()
+    except (TypeError, ValueError):  # a forward without a signature: let the forward itself tell
+        return
+    kinds = (inspect.Parameter.POSITIONAL_ONLY, inspect.Parameter.POSITIONAL_OR_KEYWORD)
+    required = [p.name for p in params if p.kind in kinds and p.default is inspect.Parameter.empty]
+    if len(required) > len(shapes):
+        raise GraphError(f"{type(model).__name__}'s forward takes {len(required)} inputs ({', '.join(required)}) "
+                         f"and {len(shapes)} shape{' was' if len(shapes) == 1 else 's were'} given; give one "
+                         "--input-shape per input (input_shape=[(C, H, W), ...])")
+
+
 def _fx_entries(model: nn.Module, shapes: tuple, rule: _LeafRule) -> list[_Entry]:
     """Entries of the fx graph (raises :class:`_FxFailure` when fx cannot trace the model)."""
     root = private_buffers(model)
@@ -205,6 +221,7 @@ def points(
     _check_model(model, "points()")
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
+    _check_arity(model, shapes)
     rule = _LeafRule(leaves)
     if within:
         scope, args, kwargs = _scope_inputs(model, shapes, within)

@@ -37,7 +37,7 @@ def _resolve_scope(model: nn.Module, within: str) -> nn.Module:
         scope = None
     if not isinstance(scope, nn.Module) or not within:
         raise GraphError(f"--within {within!r} is not a submodule of {type(model).__name__}"
-                         f"{suggest(within, names) or ';'} give a module qualname such as "
+                         f"{suggest(within, names) or ';'} Give a module qualname such as "
                          f"{names[0] if names else 'backbone'!r}")
     return scope
 
