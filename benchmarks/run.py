@@ -25,6 +25,7 @@ MODULES = [
     "bench_verify",
     "bench_tune_throughput",
     "bench_efficacy",
+    "bench_zoo",
 ]
 
 

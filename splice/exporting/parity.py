@@ -2,10 +2,14 @@
 
 Tolerances (:data:`EXPORT_TOLERANCES`) are the max error relative to the
 output's scale (max ``|y|``), as in :func:`splice.compare.compare_outputs`:
-float32 1e-4, float64 1e-9. onnxruntime picks other convolution algorithms
-and summation orders than torch, which shows as relative errors of 1e-7..1e-5
-on deep nets; 1e-4 leaves room for that and still catches any changed weight
-or mis-lowered op (common practice, no source).
+float32 1e-3, float64 1e-9. onnxruntime picks other convolution algorithms
+and summation orders than torch, and the exporter folds BatchNorm into the
+convolutions: relative errors of 1e-7..1e-5 on small nets, about 1e-4 on a
+ResNet-50 segmentation net whose BatchNorms carry real statistics (measured).
+1e-3 is the relative tolerance PyTorch's own ONNX Runtime tutorial compares
+with (``np.testing.assert_allclose(..., rtol=1e-03, atol=1e-05)``, "Exporting
+a model from PyTorch to ONNX and running it using ONNX Runtime"); a
+mis-lowered op or a warp applied in the wrong place differs by 1e-1 or more.
 """
 
 from __future__ import annotations
@@ -25,7 +29,7 @@ from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
 __all__ = ["EXPORT_TOLERANCES", "onnx_parity", "check_onnx_graph"]
 
-EXPORT_TOLERANCES = {torch.float32: 1e-4, torch.float64: 1e-9}
+EXPORT_TOLERANCES = {torch.float32: 1e-3, torch.float64: 1e-9}
 
 
 def _as_batches(inputs) -> list[tuple[torch.Tensor, ...]]:
@@ -150,7 +154,7 @@ def _tolerance(model: nn.Module, tol: float | None) -> float:
     if tol is not None:
         return tol
     p = next(iter(model.parameters()), None)
-    return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, 1e-4)
+    return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, EXPORT_TOLERANCES[torch.float32])
 
 def _model_dtype(model: nn.Module) -> torch.dtype:
     p = next(iter(model.parameters()), None)
