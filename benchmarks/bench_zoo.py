@@ -4,7 +4,8 @@ For every architecture of ``tests/zoo.py`` (timm, Hugging Face and torchvision m
 weights and BatchNorm statistics calibrated on random inputs), this runs the whole certificate: points ->
 insert at ``recommended`` with ``affine`` -> verify with ONNX -> export. It prints the fraction that pass
 (goal 1.0) and, per model, the cost of ``points``, ``insert`` and ``verify`` (without ONNX) divided by one
-batch-1 eval forward pass of the same model at the same input shape, measured in the same run. Goals:
+batch-1 eval forward pass of the same model at the input size it is used at (224x224, 320x320 for the
+detector), measured in the same run. Goals:
 ``points`` at most 1 forward pass on every model, ``verify`` without ONNX at most 10; ``insert`` is
 reported (it lists the points, splices and runs one identity check). Each cost is the median of
 ``repeats`` runs; the forward pass is the best of as many.
@@ -46,9 +47,9 @@ def _costs(entry, workdir: Path, repeats: int) -> dict:
     from zoo import forward_seconds
 
     spec, weights = entry.prepare(workdir)
-    src = splice.load_source(spec, kwargs=entry.kwargs or None, input_shape=list(entry.input_shapes),
+    src = splice.load_source(spec, kwargs=entry.kwargs or None, input_shape=list(entry.usual_shapes),
                              weights=weights)
-    forward = forward_seconds(src.model, entry.input_shapes, repeat=repeats)
+    forward = forward_seconds(src.model, entry.usual_shapes, repeat=repeats)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         points = _median_seconds(lambda: splice.points(src, within=entry.within), repeats)

@@ -262,11 +262,12 @@ def test_value_gate_as_leaf_works():
     assert [n.target for n in gm.graph.nodes if n.op == "call_module"] == ["conv1", "gate", "conv2"]
 
 
-def test_shape_gate_falls_back_to_the_export_view():
-    # torch.export specialises the shape test on the static input shape: the full cut analysis, with hooks
+def test_shape_gate_falls_back_to_a_recorded_meta_forward():
+    # the meta forward takes the branch the static shape decides: the full cut analysis, with hooks
     model = _Gated(_ShapeGate())
     with pytest.warns(TraceFallbackWarning, match=r"could not trace module 'gate' \(_ShapeGate\) \(TraceError: "
-                                                  r"symbolically traced variables.*points come from torch\.export"):
+                                                  r"symbolically traced variables.*points come from a meta-device "
+                                                  r"run of the forward"):
         pts = points(model, (3, 8, 8), all=True)
     assert [p.name for p in pts] == ["input", "conv1", "gate", "conv2"]
     assert [p.shape for p in pts] == [(3, 8, 8), (4, 8, 8), (4, 4, 4), (4, 4, 4)]
@@ -279,7 +280,60 @@ def test_shape_gate_falls_back_to_the_export_view():
     assert full["gate"].cut and full["gate"].shape == (4, 4, 4) and full["gate"].mechanism == "fx"
 
 
-def test_the_export_view_finds_branches():
+def test_the_recorded_and_exported_views_agree(monkeypatch):
+    import splice.graph.fallback as fallback
+
+    class Gated(_Residual):
+        def forward(self, x):
+            if x.shape[-1] > 4:  # fx cannot trace this
+                x = x * 1
+            return super().forward(x)
+
+    def listing():
+        with pytest.warns(TraceFallbackWarning) as caught:
+            pts = points(Gated(), (3, 16, 16), all=True)
+        return [(p.name, p.site, p.shape, p.cut, p.in_branch) for p in pts], str(caught[0].message)
+
+    recorded, how = listing()
+    assert "meta-device run" in how
+
+    def refuse(*args, **kwargs):
+        raise RuntimeError("needs real values")
+
+    monkeypatch.setattr(fallback, "_recorded_entries", refuse)
+    exported, how = listing()
+    assert "torch.export" in how
+    assert recorded == exported
+
+
+def test_an_output_written_again_in_place_is_still_a_point(monkeypatch):
+    import splice.graph.fallback as fallback
+
+    class InPlace(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 4, 3, padding=1)
+            self.bn = nn.BatchNorm2d(4)
+            self.relu = nn.ReLU(inplace=True)  # writes the bn's output tensor again
+            self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+
+        def forward(self, x):
+            if x.shape[-1] > 4:
+                x = self.relu(self.bn(self.conv(x)))
+            return self.conv2(x)
+
+    def listing():
+        with pytest.warns(TraceFallbackWarning):
+            return [(p.name, p.site, p.cut) for p in points(InPlace(), (3, 8, 8), all=True)]
+
+    recorded = listing()
+    assert recorded == [("input", None, True), ("conv", ("conv", 0), True), ("bn", ("bn", 0), True),
+                        ("relu", ("relu", 0), True), ("conv2", ("conv2", 0), True)]
+    monkeypatch.setattr(fallback, "_recorded_entries", lambda *a, **k: 1 / 0)
+    assert listing() == recorded  # torch.export agrees
+
+
+def test_the_hooks_view_finds_branches():
     class Gated(_Residual):
         def forward(self, x):
             if x.shape[-1] > 4:  # fx cannot trace this
@@ -296,13 +350,15 @@ def test_the_export_view_finds_branches():
 
 def test_without_export_the_module_view_lists_module_outputs(monkeypatch):
     import splice.graph.exported as exported
+    import splice.graph.fallback as fallback
 
     def refuse(*args, **kwargs):
-        raise RuntimeError("export refused")
+        raise RuntimeError("refused")
 
     monkeypatch.setattr(exported, "_export", refuse)
+    monkeypatch.setattr(fallback, "_recorded_entries", refuse)
     model = _Gated(_ShapeGate())
-    with pytest.warns(TraceFallbackWarning, match=r"torch\.export failed too \(RuntimeError: export refused\).*"
+    with pytest.warns(TraceFallbackWarning, match=r"torch\.export failed too \(RuntimeError: refused\).*"
                                                   r"only 'input' is marked"):
         pts = points(model, (3, 8, 8), all=True)
     assert [p.name for p in pts] == ["input", "conv1", "gate", "conv2"]
@@ -325,9 +381,11 @@ def test_leaf_reaches_the_meta_pass():
 
     with pytest.raises(GraphError, match=r"failed in module 'value_gate' \(_ValueGate\).*--leaf test_graph\._ValueGate"):
         points(Both(), (3, 16, 16))
-    with pytest.warns(TraceFallbackWarning, match="only 'input' is marked"):
+    with pytest.warns(TraceFallbackWarning, match="points come from a meta-device run"):
         pts = _by_name(points(Both(), (3, 16, 16), leaves=["_ValueGate"], all=True))
+    # the leaf ran once on zeros (the pooling branch) and counts as one step of the recorded data flow
     assert pts["value_gate"].shape == (4, 4, 4) and pts["value_gate"].site == ("value_gate", 0)
+    assert pts["value_gate"].cut and pts["shape_gate"].cut
 
 
 def test_fallback_numbers_repeat_calls():

@@ -62,6 +62,8 @@ class ZooModel:
     """One architecture of the zoo: how to name it, its input shape(s), and where to splice.
 
     ``spec`` is a model spec, or ``"hf:KIND"`` for a Hugging Face model saved with ``save_pretrained``.
+    ``input_shapes`` are small ones for the tests; ``bench_shapes`` the sizes the model is used at, for
+    ``benchmarks/bench_zoo.py`` (default 3x224x224 per input).
     """
 
     id: str
@@ -70,6 +72,11 @@ class ZooModel:
     kwargs: dict = field(default_factory=dict)
     within: str = ""
     slow: bool = False
+    bench_shapes: tuple[tuple[int, int, int], ...] | None = None
+
+    @property
+    def usual_shapes(self) -> tuple[tuple[int, int, int], ...]:
+        return self.bench_shapes or tuple((3, 224, 224) for _ in self.input_shapes)
 
     def prepare(self, workdir: Path) -> tuple[str, Path | None]:
         """``(model argument, weights file)``: random weights with calibrated BatchNorms, written as a user
@@ -112,7 +119,7 @@ ZOO = (
     ZooModel("torchvision:raft_small", "torchvision:raft_small", ((3, 128, 128), (3, 128, 128)),
              within="feature_encoder", slow=True),
     ZooModel("torchvision:fasterrcnn_mobilenet_v3_large_320_fpn", "torchvision:fasterrcnn_mobilenet_v3_large_320_fpn",
-             ((3, 64, 64),), {"num_classes": 3}, within="backbone", slow=True),
+             ((3, 64, 64),), {"num_classes": 3}, within="backbone", slow=True, bench_shapes=((3, 320, 320),)),
 )
 
 

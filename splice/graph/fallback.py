@@ -1,11 +1,12 @@
-"""The views for models torch.fx cannot trace: the export view, else module outputs.
+"""The views for models torch.fx cannot trace: recorded, exported, else module outputs.
 
 :func:`~splice.graph.points` then lists the points a forward hook can reach
-(:mod:`splice.hooks` puts the warps there): first from a ``torch.export``
-graph, with the full cut analysis (:mod:`splice.graph.exported`); if
-torch.export fails too, from module outputs recorded by forward hooks during
-a meta-device forward pass, without a data-flow graph (only ``input`` is then
-marked as a cut). Names come from module qualnames (dots become underscores,
+(:mod:`splice.hooks` puts the warps there), with the full cut analysis: first
+from the data flow of one meta-device forward (:mod:`splice.graph.recorded`),
+else, for a forward that needs real values, from a ``torch.export`` graph
+(:mod:`splice.graph.exported`); if torch.export fails too, from module outputs
+recorded by forward hooks during a meta-device forward pass, without a
+data-flow graph (only ``input`` is then marked as a cut). Names come from module qualnames (dots become underscores,
 with ``_1``, ``_2`` for repeat calls) in both. Leaf modules (``--leaf``) run
 for real, alone, on zeros during the meta pass, so a module whose forward
 needs real values can be stepped over. If that forward fails as well,
@@ -26,6 +27,7 @@ from torch import nn
 from ..errors import GraphError
 from .entries import _CONV_MODULES, _Entry
 from .exported import _export_entries
+from .recorded import _recorded_entries
 from .leaves import _class_path, _is_torch_builtin, _LeafRule
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
 from .tracing import GraphWarning, _reason
@@ -138,21 +140,28 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
 
 def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
                 input_shape: tuple[int, int, int]) -> list[_Entry]:
-    """The points a forward hook reaches: the export view, else module outputs.
+    """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
 
     ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
     """
+    shapes = "x".join(map(str, input_shape))
     try:
-        entries = _export_entries(model, args, kwargs)
-    except Exception as exc:  # whatever torch.export cannot handle: fall back to module outputs
-        export_problem = f"torch.export failed too ({_reason(exc)})"
-        why = f"{problem}; {export_problem}" if problem else export_problem
-        entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
-        warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked as "
-                      f"a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=4)
-        return entries
+        entries = _recorded_entries(model, args, kwargs, rule)
+        how = f"a meta-device run of the forward (specialised to input {shapes})"
+    except Exception as exc:  # a forward that needs real values: torch.export may still manage
+        recorded_problem = _reason(exc)
+        try:
+            entries = _export_entries(model, args, kwargs)
+            how = f"torch.export (specialised to input {shapes})"
+        except Exception as exc2:  # whatever torch.export cannot handle either: module outputs
+            export_problem = (f"recording a meta-device forward failed ({recorded_problem}) and torch.export failed "
+                              f"too ({_reason(exc2)})")
+            why = f"{problem}; {export_problem}" if problem else export_problem
+            entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
+            warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "
+                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=4)
+            return entries
     if problem:
-        shapes = "x".join(map(str, input_shape))
-        warnings.warn(f"{problem}; points come from torch.export (specialised to input {shapes}) and warps go in "
-                      "by forward hooks at module outputs (mechanism 'hooks')", TraceFallbackWarning, stacklevel=4)
+        warnings.warn(f"{problem}; points come from {how} and warps go in by forward hooks at module outputs "
+                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=4)
     return entries
