@@ -379,7 +379,8 @@ def test_leaf_reaches_the_meta_pass():
         def forward(self, x):
             return self.conv2(self.value_gate(self.shape_gate(self.conv1(x))))
 
-    with pytest.raises(GraphError, match=r"failed in module 'value_gate' \(_ValueGate\).*--leaf test_graph\._ValueGate"):
+    with pytest.raises(GraphError,
+                       match=r"failed in module 'value_gate' \(_ValueGate\).*--leaf test_graph\._ValueGate"):
         points(Both(), (3, 16, 16))
     with pytest.warns(TraceFallbackWarning, match="points come from a meta-device run"):
         pts = _by_name(points(Both(), (3, 16, 16), leaves=["_ValueGate"], all=True))

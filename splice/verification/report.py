@@ -85,7 +85,8 @@ def render_verify(report: VerifyReport, console) -> None:
     table.add_column("numbers")
     table.add_column("result", justify="center")
     for row in report.checks:
-        result = "[bold red]FAIL[/]" if not row.passed else "[bold yellow]WARN[/]" if row.warning else "[bold green]PASS[/]"
+        result = ("[bold red]FAIL[/]" if not row.passed else
+                  "[bold yellow]WARN[/]" if row.warning else "[bold green]PASS[/]")
         table.add_row(row.check, row.summary or row.detail, result)
     console.print(table)
     for row in report.checks:
