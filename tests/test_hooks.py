@@ -350,3 +350,59 @@ def test_eval_against_a_spec_without_a_shape_takes_the_first_models():
     result = splice.evaluate("splice.models:tray_net", data="digits", distort="rotate=0",
                              against=f"{__file__}:net_without_shape")
     assert result["n_images"] > 0 and result["against_model"] is not None
+
+
+# ----------------------------------------------------------------------------- ONNX batch
+
+
+class _PerImage(nn.Module):
+    """Loops over the images of a batch: a traced graph holds one step per image of the traced batch."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        return torch.cat([self.conv2(self.conv(x[i:i + 1])) for i in range(x.shape[0])]).mean((2, 3))
+
+
+def per_image():
+    torch.manual_seed(0)
+    return _PerImage()
+
+
+per_image.input_shape = (3, 16, 16)
+
+
+def test_export_is_dynamic_by_default_and_static_on_request(tmp_path, capsys):
+    import onnxruntime as ort
+
+    folder = save(_quiet_insert(HOOKED, at="recommended"), tmp_path / "hooked")
+    assert main(["export", str(folder), "--onnx", str(tmp_path / "dynamic.onnx")]) == 0
+    assert "dynamic batch" in capsys.readouterr().out
+    assert main(["export", str(folder), "--onnx", str(tmp_path / "static.onnx"), "--static-batch"]) == 0
+    assert "batch 1" in capsys.readouterr().out
+    x = np.random.default_rng(0).standard_normal((2, 3, 32, 32)).astype(np.float32)
+    ort.InferenceSession(str(tmp_path / "dynamic.onnx"), providers=["CPUExecutionProvider"]).run(None, {"input": x})
+    static = ort.InferenceSession(str(tmp_path / "static.onnx"), providers=["CPUExecutionProvider"])
+    with pytest.raises(Exception, match="dimensions"):  # onnxruntime refuses a batch of 2 for a batch-1 graph
+        static.run(None, {"input": x})
+
+
+def test_modules_called_once_per_image_are_not_points():
+    # a hook counts calls: at batch 2 the conv's first call would be the first image only
+    with pytest.warns(TraceFallbackWarning):
+        assert [p.name for p in graph.points(per_image(), (3, 16, 16), all=True)] == ["input"]
+
+
+def test_a_graph_that_depends_on_the_batch_size_is_exported_at_batch_1(tmp_path):
+    with pytest.warns(TraceFallbackWarning):
+        spliced = insert(f"{__file__}:per_image", at="input")
+    folder = save(spliced, tmp_path / "per-image")
+    with warnings.catch_warnings(record=True) as caught:  # pytest.warns would re-raise torch.onnx's own notes
+        warnings.simplefilter("always")
+        result = export(folder, onnx=tmp_path / "per-image.onnx")["exports"][0]
+    ours = [str(w.message) for w in caught if issubclass(w.category, splice.errors.SpliceWarning)]
+    assert len(ours) == 1 and "depends on its batch size, so a static batch of 1" in ours[0]
+    assert not result["dynamic_batch"] and result["batch_sizes"] == [1]

@@ -6,7 +6,9 @@ from the data flow of one meta-device forward (:mod:`splice.graph.recorded`),
 else, for a forward that needs real values, from a ``torch.export`` graph
 (:mod:`splice.graph.exported`); if torch.export fails too, from module outputs
 recorded by forward hooks during a meta-device forward pass, without a
-data-flow graph (only ``input`` is then marked as a cut). Names come from module qualnames (dots become underscores,
+data-flow graph (only ``input`` is then marked as a cut). A point whose module
+is called more often for a bigger batch (a loop over the images of the batch)
+is left out: a hook counts calls, and would warp the first image only. Names come from module qualnames (dots become underscores,
 with ``_1``, ``_2`` for repeat calls) in both. Leaf modules (``--leaf``) run
 for real, alone, on zeros during the meta pass, so a module whose forward
 needs real values can be stepped over. If that forward fails as well,
@@ -22,6 +24,7 @@ import warnings
 from collections.abc import Callable
 
 import torch
+import torch.fx as fx
 from torch import nn
 
 from ..errors import GraphError
@@ -138,8 +141,58 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
                       f"failed in {here} ({_reason(exc)}); {advice}")
 
 
+def _doubled(value):
+    """Every tensor of ``value`` with its batch repeated twice (a batch of 2 from a batch of 1)."""
+    return fx.node.map_aggregate(value, lambda v: torch.cat([v, v]) if isinstance(v, torch.Tensor) and v.dim() else v)
+
+
+def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> dict[str, int] | None:
+    """How often each module is called in one meta forward, or ``None`` when that forward fails."""
+    meta = _meta_module(model)
+    _step_over_leaves(meta, model, rule)
+    names = {m: q for q, m in meta.named_modules() if q}
+    counts: dict[str, int] = {}
+
+    def count(mod, call_args, out):
+        counts[names[mod]] = counts.get(names[mod], 0) + 1
+
+    handles = [m.register_forward_hook(count) for m in names]
+    try:
+        with torch.no_grad(), torch.device(_META):
+            meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
+    except Exception:  # the forward does not run at this batch size: nothing to compare
+        return None
+    finally:
+        for h in handles:
+            h.remove()
+    return counts
+
+
+def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                  entries: list[_Entry]) -> list[_Entry]:
+    """The entries whose module is called as often at batch 2 as at batch 1.
+
+    A hook counts the calls of its module within one forward. A module called
+    once per image (a loop over the batch) is called more often for a bigger
+    batch, so its recorded call would reach the first image only: such points
+    are not listed.
+    """
+    one = _call_counts(model, args, kwargs, rule)
+    two = _call_counts(model, _doubled(args), _doubled(kwargs), rule) if one is not None else None
+    if one is None or two is None:
+        return entries
+    return [e for e in entries if e.site is None or one.get(e.site[0]) == two.get(e.site[0])]
+
+
 def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
                 input_shape: tuple[int, int, int]) -> list[_Entry]:
+    """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`)."""
+    entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape)
+    return _batch_stable(model, args, kwargs, rule, entries)
+
+
+def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
+                   input_shape: tuple[int, int, int]) -> list[_Entry]:
     """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
 
     ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
@@ -159,9 +212,9 @@ def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *,
             why = f"{problem}; {export_problem}" if problem else export_problem
             entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
             warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "
-                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=4)
+                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=5)
             return entries
     if problem:
         warnings.warn(f"{problem}; points come from {how} and warps go in by forward hooks at module outputs "
-                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=4)
+                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=5)
     return entries
