@@ -406,3 +406,27 @@ def test_a_graph_that_depends_on_the_batch_size_is_exported_at_batch_1(tmp_path)
     ours = [str(w.message) for w in caught if issubclass(w.category, splice.errors.SpliceWarning)]
     assert len(ours) == 1 and "depends on its batch size, so a static batch of 1" in ours[0]
     assert not result["dynamic_batch"] and result["batch_sizes"] == [1]
+
+
+class _TrainOnly(nn.Module):
+    """Calls its conv once more while training (as an auxiliary branch would): the call count shifts."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 4, 3, padding=1)
+        self.conv = nn.Conv2d(4, 4, 3, padding=1)
+        self.head = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        if x.shape[-1] < 4:
+            raise ValueError("too small")
+        x = self.stem(x)
+        if self.training:
+            x = x + 0 * self.conv(x)
+        return self.head(self.conv(x)).mean((2, 3))
+
+
+def test_modules_called_more_often_in_training_are_not_points():
+    with pytest.warns(TraceFallbackWarning):
+        names = [p.name for p in graph.points(_TrainOnly(), (3, 16, 16), all=True)]
+    assert names == ["input", "stem", "head"]

@@ -146,9 +146,12 @@ def _doubled(value):
     return fx.node.map_aggregate(value, lambda v: torch.cat([v, v]) if isinstance(v, torch.Tensor) and v.dim() else v)
 
 
-def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> dict[str, int] | None:
-    """How often each module is called in one meta forward, or ``None`` when that forward fails."""
+def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                 train: bool = False) -> dict[str, int] | None:
+    """How often each module is called in one meta forward (in train mode with ``train``), or ``None`` when that
+    forward fails."""
     meta = _meta_module(model)
+    meta.train(train)
     _step_over_leaves(meta, model, rule)
     names = {m: q for q, m in meta.named_modules() if q}
     counts: dict[str, int] = {}
@@ -170,18 +173,20 @@ def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -
 
 def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
                   entries: list[_Entry]) -> list[_Entry]:
-    """The entries whose module is called as often at batch 2 as at batch 1.
+    """The entries whose module is called as often at batch 2, and in train mode, as at batch 1 in eval mode.
 
     A hook counts the calls of its module within one forward. A module called
     once per image (a loop over the batch) is called more often for a bigger
-    batch, so its recorded call would reach the first image only: such points
-    are not listed.
+    batch, and a module called only while training shifts the count during
+    training, so the recorded call would reach another tensor: such points are
+    not listed.
     """
     one = _call_counts(model, args, kwargs, rule)
-    two = _call_counts(model, _doubled(args), _doubled(kwargs), rule) if one is not None else None
-    if one is None or two is None:
+    if one is None:
         return entries
-    return [e for e in entries if e.site is None or one.get(e.site[0]) == two.get(e.site[0])]
+    others = [c for c in (_call_counts(model, _doubled(args), _doubled(kwargs), rule),
+                          _call_counts(model, _doubled(args), _doubled(kwargs), rule, train=True)) if c is not None]
+    return [e for e in entries if e.site is None or all(one.get(e.site[0]) == c.get(e.site[0]) for c in others)]
 
 
 def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
