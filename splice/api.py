@@ -51,7 +51,10 @@ def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] 
     """List where a warp can go in ``model`` (a list of :class:`splice.graph.Point`).
 
     By default only the model input and the points between conv layers are
-    listed; ``all=True`` lists every 4-D activation.
+    listed; ``all=True`` lists every 4-D activation. ``input_shape`` may give
+    one ``(C, H, W)`` per input of a model with several; ``within="backbone"``
+    lists the points inside that submodule. Each point says its ``mechanism``
+    (``"fx"`` or ``"hooks"``).
 
     >>> import splice
     >>> pts = splice.points("splice.models:tray_net")
@@ -77,8 +80,10 @@ def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affin
     """A copy of ``model`` with identity-initialised warps at ``at`` (your model is not changed).
 
     ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` or a mapping
-    from point name to either. The result is a ``torch.fx.GraphModule`` that
-    carries its :class:`~splice.manifest.SpliceInfo`.
+    from point name to either; ``within`` splices inside a submodule. The result
+    is a ``torch.fx.GraphModule`` (mechanism ``fx``) or a copy of the model with
+    forward hooks at the points (mechanism ``hooks``) that carries its
+    :class:`~splice.manifest.SpliceInfo`.
 
     >>> import splice, torch
     >>> spliced = splice.insert("splice.models:tray_net", at="input", warp=splice.WarpConfig(head_width=8))
