@@ -13,7 +13,6 @@ import numpy as np
 import pytest
 import torch
 from torch import nn
-from torch.nn import functional as F
 
 import splice
 from splice import graph
