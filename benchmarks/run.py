@@ -26,6 +26,7 @@ MODULES = [
     "bench_tune_throughput",
     "bench_efficacy",
     "bench_label_free",
+    "bench_zoo",
 ]
 
 

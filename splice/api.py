@@ -53,11 +53,14 @@ def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> I
 
 
 def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] = (), warp: str = "affine",
-           weights=None, kwargs=None, trust_code: bool = False) -> list:
+           weights=None, kwargs=None, trust_code: bool = False, within: str = "") -> list:
     """List where a warp can go in ``model`` (a list of :class:`splice.graph.Point`).
 
     By default only the model input and the points between conv layers are
-    listed; ``all=True`` lists every 4-D activation.
+    listed; ``all=True`` lists every 4-D activation. ``input_shape`` may give
+    one ``(C, H, W)`` per input of a model with several; ``within="backbone"``
+    lists the points inside that submodule. Each point says its ``mechanism``
+    (``"fx"`` or ``"hooks"``).
 
     >>> import splice
     >>> pts = splice.points("splice.models:tray_net")
@@ -73,17 +76,20 @@ def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] 
                   trust_code=trust_code)
     if src.input_shape is None:
         raise SourceError("points() needs the model's input shape; pass input_shape=(C, H, W)")
-    return graph.points(src.model, src.input_shape, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp)
+    return graph.points(src.model, src.input_shapes, all=all, leaves=tuple(leaves) or tuple(src.leaves), warp=warp,
+                        within=within)
 
 
 def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affine", *, input_shape=None,
            leaves: Sequence[str] = (), check: bool = True, force: bool = False, tol: float = 1e-5,
-           trust_code: bool = False):
+           trust_code: bool = False, within: str = ""):
     """A copy of ``model`` with identity-initialised warps at ``at`` (your model is not changed).
 
     ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` or a mapping
-    from point name to either. The result is a ``torch.fx.GraphModule`` that
-    carries its :class:`~splice.manifest.SpliceInfo`.
+    from point name to either; ``within`` splices inside a submodule. The result
+    is a ``torch.fx.GraphModule`` (mechanism ``fx``) or a copy of the model with
+    forward hooks at the points (mechanism ``hooks``) that carries its
+    :class:`~splice.manifest.SpliceInfo`.
 
     >>> import splice, torch
     >>> spliced = splice.insert("splice.models:tray_net", at="input", warp=splice.WarpConfig(head_width=8))
@@ -99,7 +105,7 @@ def insert(model, at: str | Sequence[str] = ("recommended",), warp: Any = "affin
     from .surgery import insert as insert_warps
 
     src = _source(model, input_shape=input_shape, leaves=leaves, warn_random=False, trust_code=trust_code)
-    return insert_warps(src, at=at, warp=warp, leaves=leaves, check=check, force=force, tol=tol)
+    return insert_warps(src, at=at, warp=warp, leaves=leaves, check=check, force=force, tol=tol, within=within)
 
 
 def save(model, folder: str | os.PathLike, *, overwrite: bool = False, source=None, tuning: Mapping | None = None,
@@ -152,7 +158,7 @@ def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = 
 
 
 def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None, *,
-           opset: int = 17, dynamic_batch: bool = False, trust_pickle: bool = False,
+           opset: int = 17, dynamic_batch: bool = True, trust_pickle: bool = False,
            exporter: str = "torchscript", trust_code: bool = False) -> dict:
     """Export to ONNX and/or torch.export; a copy is kept only after its parity check passed.
 

@@ -58,12 +58,14 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):  #
 
 def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, optional: bool = False) -> None:
     p.add_argument("model", metavar="MODEL", nargs="?" if optional else None,
-                   help="torchvision:NAME, package.module:factory, path/file.py:factory, or a splice folder"
-                   + (" (optional with --resume)" if optional else ""))
+                   help="torchvision:NAME, timm:NAME, package.module:factory, path/file.py:factory, a Hugging Face "
+                   "save_pretrained folder, or a splice folder" + (" (optional with --resume)" if optional else ""))
     p.add_argument("--weights", metavar="FILE", help=".pt/.pth state dict or .safetensors file")
     p.add_argument("--kwargs", metavar="JSON", help="builder arguments as a JSON object, e.g. '{\"num_classes\": 10}'")
     if shape:
-        p.add_argument("--input-shape", metavar="CxHxW", help="input shape without the batch, e.g. 3x224x224")
+        p.add_argument("--input-shape", metavar="CxHxW", action="append",
+                       help="input shape without the batch, e.g. 3x224x224; repeat it for each input of a model "
+                            "with several, or give a JSON list such as '[[3,128,128],[3,128,128]]'")
     p.add_argument("--leaf", action="append", default=[], metavar="TYPE",
                    help="module class (name or dotted path) to keep opaque when tracing; repeatable")
     p.add_argument("--allow-partial", action="store_true", help="load only the weights that fit; report the rest")
@@ -73,12 +75,19 @@ def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, option
 
 
 _TRUST_CODE_HELP = ("build a model spec read from a file (a folder's splice.json, a run's run.json) even when no "
-                    "registry lists it; this runs code the file names: only for files you trust. Not remembered; "
+                    "registry lists it, and allow code shipped with a model (a Hugging Face config's auto_map); "
+                    "this runs code the file names: only for files you trust. Not remembered; "
                     "SPLICE_TRUST_CODE=1 does the same for a shell")
 
 
 def _add_trust_code(p: argparse.ArgumentParser) -> None:
     p.add_argument("--trust-code", action="store_true", help=_TRUST_CODE_HELP)
+
+
+def _add_within(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--within", metavar="MODULE", default="",
+                   help="list and splice points inside this submodule only (e.g. backbone); the whole model is "
+                        "saved, loaded and verified")
 
 
 def _add_pixel_cap(p: argparse.ArgumentParser) -> None:
@@ -109,18 +118,26 @@ def _leaves(args, src) -> tuple[str, ...]:
 # ----------------------------------------------------------------------------- commands
 
 
+_MECHANISMS = {
+    "fx": "mechanism fx: warps are rewired into the traced graph",
+    "hooks": "mechanism hooks: warps go in by forward hooks on the modules that return these points",
+}
+
+
 def _cmd_points(args) -> int:
     from . import graph
 
     src = _source(args)
-    pts = graph.points(src.model, src.input_shape, all=args.all, leaves=_leaves(args, src))
-    report = graph.points_report(args.model, src.input_shape, pts)
+    pts = graph.points(src.model, src.input_shapes, all=args.all, leaves=_leaves(args, src), within=args.within)
+    report = graph.points_report(args.model, pts[0].shape if args.within else src.input_shape, pts)
     if args.json:
         print(json.dumps(report, indent=2))
         return EXIT_OK
     from rich.table import Table
 
-    table = Table(title=f"insertion points of {args.model} (input {'x'.join(map(str, src.input_shape))})")
+    where = f" within {args.within}" if args.within else ""
+    shape = "x".join(map(str, report["input_shape"]))
+    table = Table(title=f"insertion points of {args.model}{where} (input {shape})")
     for col, just in (("name", "left"), ("module", "left"), ("shape", "right"), ("stride", "right"),
                       ("cut", "center"), ("in branch (join)", "left"), ("+params", "right"),
                       ("+MACs", "right"), ("recommended", "center")):
@@ -134,11 +151,13 @@ def _cmd_points(args) -> int:
         )
     out = _console()
     out.print(table)
-    out.print(f"{len(pts)} points; '*' = recommended. Splice with: splice insert {args.model} --at NAME --out DIR")
+    out.print(f"{len(pts)} points; '*' = recommended; {_MECHANISMS[report['mechanism']]}.")
     if any(p.stride != 1 for p in pts):
         out.print("Feature-level points (stride > 1) are listed but not recommended: measured on plain CNNs, a warp "
                   "there matched the input warp on one model and gave nothing on another, at 1.4-1.7x the time "
                   "(README, 'Where to put the warp').")
+    within = f" --within {args.within}" if args.within else ""
+    out.print(f"Splice with: splice insert {args.model}{within} --at NAME --out DIR")
     return EXIT_OK
 
 
@@ -155,13 +174,14 @@ def _cmd_insert(args) -> int:
     if args.overwrite:
         check_replaceable(args.out)  # before any work (save checks again)
     src = _source(args)
-    spliced = insert(src, at=args.at, warp=warp, leaves=_leaves(args, src), force=args.force)
+    spliced = insert(src, at=args.at, warp=warp, leaves=_leaves(args, src), force=args.force, within=args.within)
     folder = save(spliced, args.out, overwrite=args.overwrite)
     info = info_of(spliced)
     check = info.check or {}
     out = _console()
     for p in info.points:
         out.print(f"spliced {p.warp.family} warp at {p.name} ({'x'.join(map(str, p.shape))})")
+    out.print(_MECHANISMS[info.mechanism] + (f", within {info.within}" if info.within else ""))
     if check:
         out.print(f"identity check: {'passed' if check['passed'] else 'FAILED (kept with --force)'} — {check['detail']}")
     out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}")
@@ -190,13 +210,14 @@ def _cmd_export(args) -> int:
 
         raise SpliceError("export needs a target: --onnx FILE and/or --pt2 FILE")
     result = export(args.folder, onnx=args.onnx, pt2=args.pt2, opset=args.opset,
-                    dynamic_batch=args.dynamic_batch, trust_pickle=args.trust_pickle, exporter=args.exporter,
+                    dynamic_batch=not args.static_batch, trust_pickle=args.trust_pickle, exporter=args.exporter,
                     trust_code=args.trust_code)
     out = _console()
     for item in result["exports"]:
         perturbed = item.get("max_abs_perturbed")
         extra = f", {perturbed:.3g} with a perturbed warp" if perturbed is not None else " (no warps to perturb)"
-        out.print(f"wrote {item['path']} ({item['format']}): parity max error {item['max_abs']:.3g} "
+        batch = "dynamic batch" if item["dynamic_batch"] else "batch 1"
+        out.print(f"wrote {item['path']} ({item['format']}, {batch}): parity max error {item['max_abs']:.3g} "
                   f"as saved{extra} — passed")
     return EXIT_OK
 
@@ -258,6 +279,7 @@ def _parser_points(sub) -> None:
     p = sub.add_parser("points", help="list where a warp can go")
     _add_model_options(p)
     p.add_argument("--all", action="store_true", help="list every 4-D activation, not just those between convs")
+    _add_within(p)
     p.add_argument("--json", action="store_true", help="print the listing as JSON (schema in the README)")
     p.set_defaults(func=_cmd_points)
 
@@ -267,6 +289,7 @@ def _parser_insert(sub) -> None:
     _add_model_options(p)
     p.add_argument("--at", action="append", required=True, metavar="POINT",
                    help="point name from 'splice points', or 'recommended'; repeatable")
+    _add_within(p)
     p.add_argument("--warp", default="affine", metavar="FAMILY",
                    help="translation, attention, similarity, affine (default), projective or tps")
     p.add_argument("--loc-from", metavar="NAME", help="point the localisation head reads (default: the warped tensor)")
@@ -304,7 +327,8 @@ def _parser_export(sub) -> None:
     p.add_argument("--onnx", metavar="FILE", help="write an ONNX file")
     p.add_argument("--pt2", metavar="FILE", help="write a torch.export program (.pt2)")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
-    p.add_argument("--dynamic-batch", action="store_true", help="leave the batch dimension free")
+    p.add_argument("--static-batch", action="store_true",
+                   help="fix the batch dimension to 1 (default: a dynamic batch dimension)")
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
                    help="ONNX exporter (default torchscript)")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)

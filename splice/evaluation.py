@@ -359,7 +359,8 @@ def _load_models(model, against, model_options: ModelOptions, dev) -> list[tuple
     if against is not None:
         other = ModelOptions(input_shape=src.input_shape if isinstance(against, nn.Module) else None,
                              trust_pickle=model_options.trust_pickle, trust_code=model_options.trust_code)
-        src2 = other.load(against)
+        # both models see the same preprocessed images: a second model that declares no shape takes the first's
+        src2 = other.load(against, default_input_shape=src.input_shape)
         if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
             raise DataError(
                 f"the two models take different inputs ({'x'.join(map(str, src.input_shape))} and "

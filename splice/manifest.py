@@ -7,24 +7,36 @@ A spliced model carries its :class:`SpliceInfo` (:func:`attach_info`,
 (:func:`validate_manifest`). The record is rebuilt only from splice's own
 classes: warp configurations become :class:`~splice.warps.WarpConfig`.
 
-``splice.json`` (schema version 1)::
+``splice.json`` (schema version 1, or 2 when the splice needs more than a
+graph rewrite)::
 
     {
-      "schema_version": 1,
+      "schema_version": 1 | 2,
       "format": "splice-folder",
       "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
                  "weights_sha256": str | null, "random_init": bool,
                  "trained_on": str | null},
       "input_shape": [C, H, W],
+      "extra_inputs": [[C, H, W], ...],          (2: a model with several inputs)
+      "mechanism": "fx" | "hooks",               (2: "hooks")
+      "within": str,                             (2: a submodule's qualname)
       "normalisation": {"mean": [...], "std": [...]} | null,
       "class_names": [str, ...] | null,
       "leaves": [str, ...],
       "points": [{"name": str, "shape": [C, H, W], "cut": bool, "warp": {WarpConfig}}],
+      "sites": {point: {"module": str, "call": int, "shape": [C, H, W]}},   (2: hooks)
       "weights": {"file": "weights.safetensors", "sha256": str, "base_sha256": str},
       "tuning": null | {"recipe": str, "base_changed": bool, ...},
       "versions": {"splice": str, "torch": str, "torchvision": str},
       "created": ISO-8601 UTC
     }
+
+The *mechanism* says how the warps sit in the model: ``fx`` rewrites the
+traced graph (:func:`splice.surgery.apply_plan`); ``hooks`` keeps the model's
+own class and puts each warp on a module's output with a forward hook
+(:mod:`splice.hooks`), for models torch.fx cannot trace and for splices
+``within`` a submodule. A folder that uses anything schema 1 does not know is
+written as schema 2, which older readers refuse instead of misreading.
 
 ``source.weights_sha256`` is the canonical hash of the base state dict the
 splice started from (provenance); ``weights.sha256`` is the hash of the
@@ -53,6 +65,8 @@ from .warps import WarpConfig
 
 __all__ = [
     "SCHEMA_VERSION",
+    "SCHEMA_VERSIONS",
+    "MECHANISMS",
     "FORMAT",
     "MANIFEST_NAME",
     "WEIGHTS_NAME",
@@ -65,6 +79,8 @@ __all__ = [
 ]
 
 SCHEMA_VERSION = 1
+SCHEMA_VERSIONS = (1, 2)  # the versions this splice reads; 2 is written only when needed
+MECHANISMS = ("fx", "hooks")
 FORMAT = "splice-folder"
 MANIFEST_NAME = "splice.json"
 WEIGHTS_NAME = "weights.safetensors"
@@ -84,8 +100,8 @@ def _number(x: Any) -> bool:
 
 def _header(data: dict, problems: list[str]) -> None:
     version = data.get("schema_version")
-    if version != SCHEMA_VERSION:
-        problems.append(f"schema_version is {version!r}, this splice reads {SCHEMA_VERSION}")
+    if version not in SCHEMA_VERSIONS or isinstance(version, bool):
+        problems.append(f"schema_version is {version!r}, this splice reads {' and '.join(map(str, SCHEMA_VERSIONS))}")
     if data.get("format") != FORMAT:
         problems.append(f"format is {data.get('format')!r}, expected {FORMAT!r}")
 
@@ -122,6 +138,13 @@ def _inputs(data: dict, problems: list[str]) -> None:
         problems.append("class_names must be null or a list of strings")
     if not isinstance(data.get("leaves", []), list):
         problems.append("leaves must be a list of strings")
+    extra = data.get("extra_inputs", [])
+    if not (isinstance(extra, list) and all(_shape_ok(s) for s in extra)):
+        problems.append("extra_inputs must be a list of [C, H, W] positive integers")
+    if data.get("mechanism", "fx") not in MECHANISMS:
+        problems.append(f"mechanism must be one of {', '.join(MECHANISMS)}, found {data.get('mechanism')!r}")
+    if not _qualname_ok(data.get("within", ""), empty=True):
+        problems.append(f"within must be a module qualname such as 'backbone.body', found {data.get('within')!r}")
 
 
 def _points(data: dict, problems: list[str]) -> None:
@@ -143,6 +166,33 @@ def _points(data: dict, problems: list[str]) -> None:
             problems.append(f"points[{i}].warp: {exc}")
 
 
+def _qualname_ok(name: Any, empty: bool) -> bool:
+    return isinstance(name, str) and (name == "" and empty or
+                                      name != "" and all(p.isidentifier() or p.isdigit() for p in name.split(".")))
+
+
+def _sites(data: dict, problems: list[str]) -> None:
+    """Where the hooks mechanism puts each point: the n-th call of a module, and the point's shape."""
+    sites = data.get("sites", {})
+    if not isinstance(sites, dict):
+        problems.append("sites must be an object {point: {module, call, shape}}")
+        return
+    for name, site in sites.items():
+        ok = (isinstance(site, dict) and set(site) == {"module", "call", "shape"}
+              and _qualname_ok(site["module"], empty=name == "input") and _shape_ok(site["shape"])
+              and isinstance(site["call"], int) and not isinstance(site["call"], bool) and site["call"] >= 0)
+        if not ok:
+            problems.append(f"sites[{name!r}] must be {{\"module\": qualname, \"call\": n >= 0, "
+                            "\"shape\": [C, H, W]}")
+    if data.get("mechanism", "fx") == "hooks":
+        needed = {p.get("name") for p in data.get("points") or [] if isinstance(p, dict)}
+        needed |= {p["warp"].get("loc_from") for p in data.get("points") or []
+                   if isinstance(p, dict) and isinstance(p.get("warp"), dict)} - {None}
+        missing = sorted(str(n) for n in needed if n not in sites)
+        if missing:
+            problems.append(f"the hooks mechanism needs a site for every point; none for {', '.join(missing)}")
+
+
 def _weights(data: dict, problems: list[str]) -> None:
     w = data.get("weights")
     if not (isinstance(w, dict) and isinstance(w.get("file"), str) and isinstance(w.get("sha256"), str)):
@@ -158,8 +208,9 @@ def _tuning(data: dict, problems: list[str]) -> None:
 
 
 # in the order of the file; the record checks its own part (no header, no weights)
-_FILE_CHECKS: tuple[Callable[[dict, list[str]], None], ...] = (_header, _source, _inputs, _points, _weights, _tuning)
-_RECORD_CHECKS = (_source, _inputs, _points, _tuning)
+_FILE_CHECKS: tuple[Callable[[dict, list[str]], None], ...] = (_header, _source, _inputs, _points, _sites, _weights,
+                                                               _tuning)
+_RECORD_CHECKS = (_source, _inputs, _points, _sites, _tuning)
 
 
 def _problems(data: dict, checks) -> list[str]:
@@ -233,9 +284,13 @@ class SpliceInfo:
     (``random_init`` when none); ``trained_on`` the images the base was
     trained on, when known. ``points`` are :class:`PointRecord` in
     graph order. ``tuning`` is what ``splice tune`` recorded (``None`` for a
-    fresh splice). Not written to ``splice.json``: ``folder`` (where the
-    record was read from) and ``check`` (:func:`splice.insert`'s identity
-    check on the spliced model).
+    fresh splice). ``extra_inputs`` are the shapes of the model's inputs after
+    the first. ``mechanism`` is ``"fx"`` (a graph rewrite) or ``"hooks"``
+    (forward hooks at module outputs, see :mod:`splice.hooks`); ``within`` the
+    submodule the points belong to (``""``: the whole model); ``sites`` where
+    the hooks go, ``{point: {"module", "call", "shape"}}``. Not written to
+    ``splice.json``: ``folder`` (where the record was read from) and ``check``
+    (:func:`splice.insert`'s identity check on the spliced model).
     """
 
     spec: str = "<module>"
@@ -252,6 +307,10 @@ class SpliceInfo:
     trained_on: str | None = None
     folder: str | None = None
     check: dict | None = None
+    extra_inputs: tuple[tuple[int, int, int], ...] = ()
+    mechanism: str = "fx"
+    within: str = ""
+    sites: dict = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         norm = self.normalisation
@@ -263,6 +322,11 @@ class SpliceInfo:
             object.__setattr__(self, "input_shape", tuple(self.input_shape))
         object.__setattr__(self, "kwargs", dict(self.kwargs or {}))
         object.__setattr__(self, "leaves", tuple(self.leaves or ()))
+        object.__setattr__(self, "extra_inputs", tuple(tuple(s) if isinstance(s, Sequence) else s
+                                                       for s in self.extra_inputs or ()))
+        object.__setattr__(self, "sites", {k: ({**v, "shape": list(v["shape"])} if isinstance(v, Mapping)
+                                               and isinstance(v.get("shape"), Sequence) else v)
+                                           for k, v in dict(self.sites or {}).items()})
         object.__setattr__(self, "points", tuple(p if isinstance(p, PointRecord) else PointRecord.from_json(p)
                                                  for p in self.points or ()))
         if self.folder is not None:
@@ -286,11 +350,24 @@ class SpliceInfo:
             "leaves": list(self.leaves),
             "points": [p.to_json() for p in self.points],
             "tuning": self.tuning,
+            **({"extra_inputs": [list(s) for s in self.extra_inputs]} if self.extra_inputs else {}),
+            **({"mechanism": self.mechanism, "within": self.within, "sites": self.sites}
+               if self.mechanism != "fx" or self.within else {}),
         }
+
+    @property
+    def schema_version(self) -> int:
+        """1 for a plain graph rewrite; 2 when the splice needs hooks, a submodule or several inputs."""
+        return 2 if self.extra_inputs or self.mechanism != "fx" or self.within else SCHEMA_VERSION
+
+    @property
+    def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
+        """One ``(C, H, W)`` per model input."""
+        return () if self.input_shape is None else (tuple(self.input_shape), *self.extra_inputs)
 
     def to_manifest(self, *, weights: Mapping, versions: Mapping, created: str) -> dict:
         """The ``splice.json`` dict for this record, with the folder's ``weights`` entry, versions and date."""
-        return {"schema_version": SCHEMA_VERSION, "format": FORMAT, **self._json(), "weights": dict(weights),
+        return {"schema_version": self.schema_version, "format": FORMAT, **self._json(), "weights": dict(weights),
                 "versions": dict(versions), "created": created}
 
     @classmethod
@@ -305,11 +382,14 @@ class SpliceInfo:
             source_weights_path=src.get("weights_file"), random_init=bool(src.get("random_init", False)),
             points=tuple(PointRecord.from_json(p) for p in data["points"]), tuning=data.get("tuning"),
             trained_on=src.get("trained_on"), folder=None if folder is None else str(folder),
+            extra_inputs=tuple(tuple(s) for s in data.get("extra_inputs") or ()),
+            mechanism=data.get("mechanism", "fx"), within=data.get("within", ""), sites=data.get("sites") or {},
         )
 
     @classmethod
     def from_source(cls, src, *, points: Sequence[PointRecord] = (), leaves: Sequence[str] | None = None,
-                    check: dict | None = None) -> SpliceInfo:
+                    check: dict | None = None, mechanism: str = "fx", within: str = "",
+                    sites: Mapping | None = None) -> SpliceInfo:
         """The record of a :class:`~splice.sources.Source` spliced at ``points`` (none: the plain model)."""
         return cls(
             spec=src.spec, kwargs=dict(src.kwargs), input_shape=src.input_shape, normalisation=src.normalisation,
@@ -317,6 +397,8 @@ class SpliceInfo:
             source_weights_sha256=src.weights_sha256, source_weights_path=src.weights_path,
             random_init=bool(src.random_init), points=tuple(points), check=check,
             trained_on=((src.manifest or {}).get("source") or {}).get("trained_on"),
+            extra_inputs=tuple(getattr(src, "extra_inputs", ()) or ()), mechanism=mechanism, within=within,
+            sites=dict(sites or {}),
         )
 
     # -- reading it

@@ -30,7 +30,8 @@ class ModelOptions:
     that covers only part of the model. ``trust_code`` is the explicit opt-in
     to building a model spec read from a file (a folder's manifest, a run's
     ``run.json``) that no registry lists; ``origin`` is that file when the
-    spec itself was read from one (``None``: the user gave it).
+    spec itself was read from one (``None``: the user gave it). ``trust_code``
+    also allows code shipped with a model (a Hugging Face config's ``auto_map``).
     """
 
     weights: str | os.PathLike | None = None

@@ -38,9 +38,9 @@ from .manifest import (
     validate_manifest,
 )
 from .version import library_versions
-from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, load_source, parse_input_shape,
-                      read_safetensors, with_metadata)
-from .surgery import WARP_PREFIX, SplicePlan, apply_plan
+from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, is_hf_folder, load_source,
+                      parse_input_shapes, read_safetensors, with_metadata)
+from .surgery import WARP_PREFIX, apply_info
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -271,9 +271,7 @@ def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.
     """
     if not info.points:
         return copy.deepcopy(base) if copy_base else base
-    plan = [SplicePlan(p.name, p.warp) for p in info.points]
-    return apply_plan(base, plan, info.input_shape, leaves=info.leaves,
-                      factory={"device": "cpu"} if _on_meta(base) else None, shapes=info.recorded_shapes())
+    return apply_info(base, info, factory={"device": "cpu"} if _on_meta(base) else None)
 
 
 def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
@@ -473,25 +471,29 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
         manifest=manifest,
         random_init=info.random_init,
         leaves=info.leaves,
+        extra_inputs=info.extra_inputs,
     )
 
 
 def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapping | str | None = None,
                 input_shape: str | Sequence[int] | None = None, leaves: Sequence[str] = (),
                 trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True,
-                origin: str | os.PathLike | None = None, trust_code: bool = False) -> Source:
+                origin: str | os.PathLike | None = None, trust_code: bool = False,
+                default_input_shape=None) -> Source:
     """A :class:`~splice.sources.Source` for anything a command accepts: a folder written by
     :func:`save` (opened here), else whatever :func:`splice.sources.load_source` resolves.
 
     ``origin`` is the file ``thing`` and ``kwargs`` were read from (``None``:
     the user gave them); a folder's own manifest is always treated as a file.
+    ``default_input_shape`` is the shape a model that declares none takes.
 
     >>> src = open_source("out/r18-affine")   # doctest: +SKIP
     """
-    if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir():
-        return load_folder_source(thing, input_shape=parse_input_shape(input_shape), trust_pickle=trust_pickle,
+    if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir() and not is_hf_folder(thing):
+        shapes = parse_input_shapes(input_shape)
+        return load_folder_source(thing, input_shape=shapes[0] if shapes else None, trust_pickle=trust_pickle,
                                   trust_code=trust_code)
     spec = os.fspath(thing) if isinstance(thing, os.PathLike) else thing
     return load_source(spec, weights=weights, kwargs=kwargs, input_shape=input_shape, leaves=leaves,
                        trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random,
-                       origin=origin, trust_code=trust_code)
+                       origin=origin, trust_code=trust_code, default_input_shape=default_input_shape)

@@ -1,11 +1,16 @@
-"""Splicing: put warp modules into a traced model's fx graph.
+"""Splicing: put warp modules into a model, by rewriting its fx graph or with forward hooks.
 
-:func:`insert` traces a *copy* of the model, adds one :class:`~splice.warps.Warp`
-per point under the ``splice_warps`` prefix, and rewires every consumer of the
-point to read the warped tensor. Base parameter and buffer names are unchanged,
-so the spliced model's ``state_dict`` is the base's plus ``splice_warps.*``.
-Every warp starts at the exact identity, and by default the result is checked
-(shapes and outputs) against the base before it is returned.
+:func:`insert` lists the points (:func:`splice.graph.points`), which says the
+mechanism. ``fx``: a *copy* of the model is traced, one
+:class:`~splice.warps.Warp` per point is added under the ``splice_warps``
+prefix, and every consumer of the point is rewired to read the warped tensor.
+``hooks`` (models fx cannot trace, and splices ``within`` a submodule): a copy
+of the model gets the warps under the same prefix and forward hooks that
+apply them at module outputs (:mod:`splice.hooks`). Either way, base parameter
+and buffer names are unchanged, so the spliced model's ``state_dict`` is the
+base's plus ``splice_warps.*``. Every warp starts at the exact identity, and
+by default the result is checked (shapes and outputs) against the base before
+it is returned. :func:`apply_info` re-applies a recorded splice.
 """
 
 from __future__ import annotations
@@ -22,11 +27,10 @@ from torch import fx, nn
 from .compare import compare_outputs
 from .copies import private_buffers
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
+from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info
 
-__all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "insert", "warps_of", "base_state_dict"]
-
-WARP_PREFIX = "splice_warps"
+__all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "warps_of", "base_state_dict"]
 
 
 @dataclass(frozen=True)
@@ -48,9 +52,9 @@ def base_state_dict(model: nn.Module) -> dict[str, torch.Tensor]:
     return {k: v for k, v in model.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
 
 
-def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphModule) -> list[str]:
+def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphModule | None) -> list[str]:
     by_name = {p.name: p for p in listing}
-    node_names = _node_map(gm)
+    node_names = _node_map(gm) if gm is not None else {}
     names: list[str] = []
     for raw in requested:
         if raw == "recommended":
@@ -119,21 +123,21 @@ def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
         have.add(key)
 
 
-def _quick_check(base: nn.Module, spliced: nn.Module, input_shape, *, tol: float = 1e-5) -> dict:
-    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32).
+def _quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float = 1e-5) -> dict:
+    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32) per input.
 
     Both models run as twins with their own buffers and modes
     (:func:`splice.copies.private_buffers`): a forward that counts its calls
     changes neither the caller's model nor the splice about to be saved.
     """
     gen = torch.Generator().manual_seed(0)
-    x = torch.randn((2, *input_shape), generator=gen)
+    xs = [torch.randn((2, *shape), generator=gen) for shape in input_shapes]
     param = next(iter(base.parameters()), None)
     if param is not None:
-        x = x.to(device=param.device, dtype=param.dtype)
+        xs = [x.to(device=param.device, dtype=param.dtype) for x in xs]
     base_twin, spliced_twin = private_buffers(base).eval(), private_buffers(spliced).eval()
     with torch.no_grad():
-        return compare_outputs(base_twin(x), spliced_twin(x.clone()), tol=tol)
+        return compare_outputs(base_twin(*xs), spliced_twin(*[x.clone() for x in xs]), tol=tol)
 
 
 def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
@@ -254,6 +258,54 @@ def _warn_not_cut(point) -> None:
     )
 
 
+def _hooks_plan(plan: Sequence[SplicePlan], listing: Sequence) -> dict[str, dict]:
+    """The sites a hooks splice needs (every planned point and localisation input), checked for order."""
+    order = {p.name: i for i, p in enumerate(listing)}
+    by_name = {p.name: p for p in listing}
+    needed: dict[str, dict] = {}
+    for item in plan:
+        loc = item.config.loc_from
+        names = [item.point] + ([loc] if loc not in (None, item.point) else [])
+        for name in names:
+            if name not in by_name:
+                raise PointError(f"--loc-from {name!r} is not a point a warp can read here"
+                                 f"{suggest(name, list(by_name))} Run 'splice points MODEL --all' to list them.")
+            p = by_name[name]
+            needed[name] = {"module": p.site[0] if p.site else "", "call": p.site[1] if p.site else 0,
+                            "shape": list(p.shape)}
+        if loc not in (None, item.point) and order[loc] > order[item.point]:
+            raise PointError(
+                f"--loc-from {loc!r} comes after point {item.point!r} in the forward pass; the localisation head "
+                "must read a tensor computed before the warp (e.g. 'input')"
+            )
+    return needed
+
+
+def apply_info(model: nn.Module, info, *, factory: dict | None = None) -> nn.Module:
+    """Re-apply the splice a :class:`~splice.manifest.SpliceInfo` records to ``model`` (the base; not changed).
+
+    A graph splice (``mechanism "fx"``) traces a copy of ``model``; a hooks
+    splice copies it and puts the hooks back at the recorded sites.
+    """
+    plan = [SplicePlan(p.name, p.warp) for p in info.points]
+    if info.mechanism == "hooks":
+        sites = {name: (s["module"], s["call"]) for name, s in info.sites.items()}
+        shapes = {name: tuple(s["shape"]) for name, s in info.sites.items()}
+        return apply_hooks(model, plan, sites, shapes, within=info.within, factory=factory)
+    return apply_plan(model, plan, info.input_shape, leaves=info.leaves, factory=factory,
+                      shapes=info.recorded_shapes())
+
+
+def _splice(base: nn.Module, plan: Sequence[SplicePlan], listing: Sequence, src, *, leaves, traced, within: str):
+    """``(spliced model, sites)`` with the mechanism the listing says."""
+    if listing[0].mechanism == "hooks":
+        sites = _hooks_plan(plan, listing)
+        model = apply_hooks(base, plan, {n: (s["module"], s["call"]) for n, s in sites.items()},
+                            {n: tuple(s["shape"]) for n, s in sites.items()}, within=within)
+        return model, sites
+    return apply_plan(base, plan, src.input_shape, leaves=leaves, listing=listing, traced=traced), {}
+
+
 def insert(
     model,
     at: str | Sequence[str] = ("recommended",),
@@ -264,7 +316,8 @@ def insert(
     check: bool = True,
     force: bool = False,
     tol: float = 1e-5,
-) -> fx.GraphModule:
+    within: str = "",
+) -> nn.Module:
     """Return a copy of ``model`` with identity-initialised warps at the given points.
 
     ``model`` is an ``nn.Module``, a spec string (``"torchvision:resnet18"``,
@@ -272,8 +325,12 @@ def insert(
     ``at`` lists point names from :func:`splice.points`, or ``"recommended"``.
     ``warp`` is a family name, a :class:`~splice.warps.WarpConfig` (for the
     sampler, padding, head width, ``loc_from`` …), or a mapping from point
-    name to either. The caller's model is never modified. The
-    result carries its :class:`~splice.manifest.SpliceInfo` (``splice_info``).
+    name to either. ``within`` restricts the points to a submodule (the whole
+    model is returned). The result is a ``torch.fx.GraphModule`` when the
+    graph could be rewritten (mechanism ``fx``), else a copy of the model with
+    forward hooks at the points (mechanism ``hooks``, see :mod:`splice.hooks`).
+    The caller's model is never modified. The result carries its
+    :class:`~splice.manifest.SpliceInfo` (``splice_info``).
 
     >>> import splice
     >>> spliced = splice.insert("torchvision:resnet18", at="layer1", warp="affine")  # doctest: +SKIP
@@ -293,20 +350,21 @@ def insert(
         raise SourceError("insert needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW")
     leaves = tuple(leaves) or tuple(src.leaves)
     base = src.model
-    work_listing = graph.points(base, src.input_shape, all=True, leaves=leaves)
-    traced = graph.trace(base, leaves=leaves)
-    names = _resolve_points([at] if isinstance(at, str) else list(at), work_listing, traced)
-    by_name = {p.name: p for p in work_listing}
+    listing = graph.points(base, src.input_shapes, all=True, leaves=leaves, within=within)
+    traced = graph.trace(base, leaves=leaves) if listing[0].mechanism == "fx" else None
+    names = _resolve_points([at] if isinstance(at, str) else list(at), listing, traced)
+    by_name = {p.name: p for p in listing}
     plan = [SplicePlan(name, _warp_config(warp, name)) for name in names]
     for item in plan:
         _warn_not_cut(by_name[item.point])
     if check:
-        _check_forward_fits(base, src.input_shape, work_listing, batch=2)
-    gm = apply_plan(base, plan, src.input_shape, leaves=leaves, listing=work_listing, traced=traced)
-    result = _quick_check(base, gm, src.input_shape, tol=tol) if check else None
+        _check_forward_fits(base, src.input_shape, listing, batch=2)
+    gm, sites = _splice(base, plan, listing, src, leaves=leaves, traced=traced, within=within)
+    result = _quick_check(base, gm, src.input_shapes, tol=tol) if check else None
     points = [PointRecord(it.point, it.config, tuple(by_name[it.point].shape), bool(by_name[it.point].cut))
               for it in plan]
-    attach_info(gm, SpliceInfo.from_source(src, points=points, leaves=leaves, check=result))
+    attach_info(gm, SpliceInfo.from_source(src, points=points, leaves=leaves, check=result,
+                                           mechanism=listing[0].mechanism, within=within, sites=sites))
     if result is not None and not result["passed"] and not force:
         raise CheckFailed(
             f"the spliced model differs from the base at the identity ({result['detail']}); "

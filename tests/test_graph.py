@@ -156,10 +156,11 @@ def test_unequal_stride_is_a_pair():
 def test_json_report_schema():
     pts = points(_Residual(), (3, 16, 16))
     report = points_report("tests:_Residual", (3, 16, 16), pts)
-    assert set(report) == {"model", "input_shape", "points"}
+    assert set(report) == {"model", "input_shape", "mechanism", "points"}
     assert report["model"] == "tests:_Residual" and report["input_shape"] == [3, 16, 16]
+    assert report["mechanism"] == "fx"
     keys = {"name", "module", "shape", "stride", "cut", "in_branch", "join", "warp_params", "warp_macs",
-            "recommended"}
+            "recommended", "mechanism"}
     for row in report["points"]:
         assert set(row) == keys
         assert isinstance(row["name"], str) and isinstance(row["module"], str)
@@ -261,19 +262,131 @@ def test_value_gate_as_leaf_works():
     assert [n.target for n in gm.graph.nodes if n.op == "call_module"] == ["conv1", "gate", "conv2"]
 
 
-def test_shape_gate_falls_back_to_module_boundaries():
+def test_shape_gate_falls_back_to_a_recorded_meta_forward():
+    # the meta forward takes the branch the static shape decides: the full cut analysis, with hooks
     model = _Gated(_ShapeGate())
     with pytest.warns(TraceFallbackWarning, match=r"could not trace module 'gate' \(_ShapeGate\) \(TraceError: "
-                                                  r"symbolically traced variables.*only 'input'"):
+                                                  r"symbolically traced variables.*points come from a meta-device "
+                                                  r"run of the forward"):
         pts = points(model, (3, 8, 8), all=True)
     assert [p.name for p in pts] == ["input", "conv1", "gate", "conv2"]
     assert [p.shape for p in pts] == [(3, 8, 8), (4, 8, 8), (4, 4, 4), (4, 4, 4)]
-    assert [p.cut for p in pts] == [True, False, False, False]
-    assert [p.name for p in pts if p.recommended] == ["input"]
+    assert [p.cut for p in pts] == [True, True, True, True]
+    assert {p.mechanism for p in pts} == {"hooks"}
+    assert [p.site for p in pts] == [None, ("conv1", 0), ("gate", 0), ("conv2", 0)]
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         full = _by_name(points(model, (3, 8, 8), leaves=[_ShapeGate]))
-    assert full["gate"].cut and full["gate"].shape == (4, 4, 4)
+    assert full["gate"].cut and full["gate"].shape == (4, 4, 4) and full["gate"].mechanism == "fx"
+
+
+def test_the_recorded_and_exported_views_agree(monkeypatch):
+    import splice.graph.fallback as fallback
+
+    class Gated(_Residual):
+        def forward(self, x):
+            if x.shape[-1] > 4:  # fx cannot trace this
+                x = x * 1
+            return super().forward(x)
+
+    def listing():
+        with pytest.warns(TraceFallbackWarning) as caught:
+            pts = points(Gated(), (3, 16, 16), all=True)
+        return [(p.name, p.site, p.shape, p.cut, p.in_branch) for p in pts], str(caught[0].message)
+
+    recorded, how = listing()
+    assert "meta-device run" in how
+
+    def refuse(*args, **kwargs):
+        raise RuntimeError("needs real values")
+
+    monkeypatch.setattr(fallback, "_recorded_entries", refuse)
+    exported, how = listing()
+    assert "torch.export" in how
+    assert recorded == exported
+
+
+def test_an_output_written_again_in_place_is_still_a_point(monkeypatch):
+    import splice.graph.fallback as fallback
+
+    class InPlace(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 4, 3, padding=1)
+            self.bn = nn.BatchNorm2d(4)
+            self.relu = nn.ReLU(inplace=True)  # writes the bn's output tensor again
+            self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+
+        def forward(self, x):
+            if x.shape[-1] > 4:
+                x = self.relu(self.bn(self.conv(x)))
+            return self.conv2(x)
+
+    def listing():
+        with pytest.warns(TraceFallbackWarning):
+            return [(p.name, p.site, p.cut) for p in points(InPlace(), (3, 8, 8), all=True)]
+
+    recorded = listing()
+    assert recorded == [("input", None, True), ("conv", ("conv", 0), True), ("bn", ("bn", 0), True),
+                        ("relu", ("relu", 0), True), ("conv2", ("conv2", 0), True)]
+    monkeypatch.setattr(fallback, "_recorded_entries", lambda *a, **k: 1 / 0)
+    assert listing() == recorded  # torch.export agrees
+
+
+def test_the_hooks_view_finds_branches():
+    class Gated(_Residual):
+        def forward(self, x):
+            if x.shape[-1] > 4:  # fx cannot trace this
+                x = x * 1
+            return super().forward(x)
+
+    with pytest.warns(TraceFallbackWarning):
+        got = _by_name(points(Gated(), (3, 16, 16), all=True))
+    want = _by_name(points(_Residual(), (3, 16, 16), all=True))
+    # the same cut analysis as on the fx graph, for the points a hook can reach (module outputs)
+    for name, p in got.items():
+        assert (p.cut, p.in_branch, p.shape) == (want[name].cut, want[name].in_branch, want[name].shape), name
+
+
+def test_without_export_the_module_view_lists_module_outputs(monkeypatch):
+    import splice.graph.exported as exported
+    import splice.graph.fallback as fallback
+
+    def refuse(*args, **kwargs):
+        raise RuntimeError("refused")
+
+    monkeypatch.setattr(exported, "_export", refuse)
+    monkeypatch.setattr(fallback, "_recorded_entries", refuse)
+    model = _Gated(_ShapeGate())
+    with pytest.warns(TraceFallbackWarning, match=r"torch\.export failed too \(RuntimeError: refused\).*"
+                                                  r"only 'input' is marked"):
+        pts = points(model, (3, 8, 8), all=True)
+    assert [p.name for p in pts] == ["input", "conv1", "gate", "conv2"]
+    assert [p.cut for p in pts] == [True, False, False, False]
+    assert [p.name for p in pts if p.recommended] == ["input"]
+
+
+def test_leaf_reaches_the_meta_pass():
+    # fx fails on the shape gate, torch.export and the meta pass on the value gate: marking the value gate
+    # as a leaf makes it run alone, for real, and the listing works (the advice does not loop)
+    class Both(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
+            self.shape_gate, self.value_gate = _ShapeGate(), _ValueGate()
+            self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+
+        def forward(self, x):
+            return self.conv2(self.value_gate(self.shape_gate(self.conv1(x))))
+
+    with pytest.raises(GraphError,
+                       match=r"failed in module 'value_gate' \(_ValueGate\).*--leaf test_graph\._ValueGate"):
+        points(Both(), (3, 16, 16))
+    with pytest.warns(TraceFallbackWarning, match="points come from a meta-device run"):
+        pts = _by_name(points(Both(), (3, 16, 16), leaves=["_ValueGate"], all=True))
+    # the leaf ran once on zeros (the pooling branch) and counts as one step of the recorded data flow
+    assert pts["value_gate"].shape == (4, 4, 4) and pts["value_gate"].site == ("value_gate", 0)
+    assert pts["value_gate"].cut and pts["shape_gate"].cut
 
 
 def test_fallback_numbers_repeat_calls():
@@ -287,9 +400,10 @@ def test_fallback_numbers_repeat_calls():
             return self.conv(self.block(self.conv(x)))
 
     with pytest.warns(TraceFallbackWarning, match=r"module 'block\.1' \(_ShapeGate\)"):
-        names = [p.name for p in points(Repeat(), (2, 8, 8), all=True)]
-    # module outputs in the order they finish; containers after their children
-    assert names == ["input", "conv", "block_0", "block_1", "block", "conv_1"]
+        pts = points(Repeat(), (2, 8, 8), all=True)
+    # the tensor a module call hands back, named after the innermost module that returns it
+    assert [p.name for p in pts] == ["input", "conv", "block_0", "block_1", "conv_1"]
+    assert [p.site for p in pts] == [None, ("conv", 0), ("block.0", 0), ("block.1", 0), ("conv", 1)]
 
 
 def test_register_leaf():

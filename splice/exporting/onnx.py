@@ -14,7 +14,8 @@ from ..compare import flatten_outputs
 from ..errors import SpliceError, first_line
 from .weights import WeightsAsInputs
 
-__all__ = ["MIN_OPSET", "DYNAMO_MIN_OPSET", "EXPORTERS", "check_opset", "export_onnx_bytes"]
+__all__ = ["MIN_OPSET", "DYNAMO_MIN_OPSET", "EXPORTERS", "check_opset", "export_onnx_bytes", "as_inputs",
+           "input_names"]
 
 # GridSample (the op a warp's sampler lowers to) entered the ONNX standard at
 # opset 16 (onnx/docs/Operators.md, GridSample "since version 16").
@@ -26,6 +27,16 @@ MIN_OPSET = 16
 DYNAMO_MIN_OPSET = 18
 
 EXPORTERS = ("torchscript", "dynamo")
+
+
+def as_inputs(example) -> tuple[torch.Tensor, ...]:
+    """One batch as a tuple with one tensor per model input (a tensor alone is a model with one input)."""
+    return (example,) if isinstance(example, torch.Tensor) else tuple(example)
+
+
+def input_names(n: int) -> list[str]:
+    """The ONNX names of a model's ``n`` inputs: ``input``, then ``input_1``, ``input_2``, ..."""
+    return ["input", *(f"input_{i}" for i in range(1, n))]
 
 
 def check_opset(opset: int, exporter: str) -> None:
@@ -67,10 +78,10 @@ def _downgrade(data: bytes, opset: int) -> bytes:
         ) from None
     return converted.SerializeToString()
 
-def _output_names(model: nn.Module, example: torch.Tensor, n_outputs: int | None) -> list[str]:
+def _output_names(model: nn.Module, example, n_outputs: int | None) -> list[str]:
     if n_outputs is None:
         with torch.no_grad():
-            n_outputs = len(flatten_outputs(model(example)))
+            n_outputs = len(flatten_outputs(model(*as_inputs(example))))
     return [f"output_{i}" for i in range(n_outputs)]
 
 @contextlib.contextmanager
@@ -125,18 +136,21 @@ def _stdout_to_nowhere():
         os.close(saved)
 
 def _torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
-                 dynamic_batch: bool, fold_constants: bool) -> bytes:
+                 dynamic_batch: bool, fold_constants: bool, n_images: int = 1) -> bytes:
     buf = io.BytesIO()
-    axes = {n: {0: "batch"} for n in [inputs[0], *names]} if dynamic_batch else None
+    axes = {n: {0: "batch"} for n in [*inputs[:n_images], *names]} if dynamic_batch else None
     with _stdout_to_nowhere():
         torch.onnx.export(target, args, buf, opset_version=opset, dynamo=False, input_names=inputs,
                           output_names=names, dynamic_axes=axes, do_constant_folding=fold_constants)
     return buf.getvalue()
 
-def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 17, dynamic_batch: bool = False,
+def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_batch: bool = False,
                       exporter: str = "torchscript", fold_constants: bool = True,
                       n_outputs: int | None = None, weights_as_inputs: bool = False) -> bytes:
     """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
+
+    ``example`` is a tensor, or a tuple with one tensor per input of a model
+    with several (named ``input``, ``input_1``, ...; see :func:`input_names`).
 
     ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
     ``'dynamo'`` uses the torch.export based exporter (which writes opset 18+;
@@ -153,18 +167,21 @@ def export_onnx_bytes(model: nn.Module, example: torch.Tensor, *, opset: int = 1
     check_opset(opset, exporter)
     if weights_as_inputs and exporter != "torchscript":
         raise SpliceError("weights_as_inputs needs exporter='torchscript'")
+    xs = as_inputs(example)
+    inputs = input_names(len(xs))
     with _exporting(model, exporter, opset):
-        names = _output_names(model, example, n_outputs)
+        names = _output_names(model, xs, n_outputs)
         if weights_as_inputs:
-            target = WeightsAsInputs(model)
-            return _torchscript(target, (example, *target.values), ["input", *target.names], names, opset=opset,
-                                dynamic_batch=dynamic_batch, fold_constants=fold_constants)
+            target = WeightsAsInputs(model, n_inputs=len(xs))
+            return _torchscript(target, (*xs, *target.values), [*inputs, *target.names], names, opset=opset,
+                                dynamic_batch=dynamic_batch, fold_constants=fold_constants, n_images=len(xs))
         if exporter == "torchscript":
-            return _torchscript(model, (example,), ["input"], names, opset=opset, dynamic_batch=dynamic_batch,
-                                fold_constants=fold_constants)
-        dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
-        program = torch.onnx.export(model, (example,), dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
-                                    input_names=["input"], output_names=names, dynamic_shapes=dims,
+            return _torchscript(model, xs, inputs, names, opset=opset, dynamic_batch=dynamic_batch,
+                                fold_constants=fold_constants, n_images=len(xs))
+        batch = torch.export.Dim("batch", min=1, max=4096)
+        dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
+        program = torch.onnx.export(model, xs, dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
+                                    input_names=inputs, output_names=names, dynamic_shapes=dims,
                                     optimize=fold_constants, verbose=False)
         data = program.model_proto.SerializeToString()
         return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data

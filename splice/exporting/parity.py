@@ -2,10 +2,14 @@
 
 Tolerances (:data:`EXPORT_TOLERANCES`) are the max error relative to the
 output's scale (max ``|y|``), as in :func:`splice.compare.compare_outputs`:
-float32 1e-4, float64 1e-9. onnxruntime picks other convolution algorithms
-and summation orders than torch, which shows as relative errors of 1e-7..1e-5
-on deep nets; 1e-4 leaves room for that and still catches any changed weight
-or mis-lowered op (common practice, no source).
+float32 1e-3, float64 1e-9. onnxruntime picks other convolution algorithms
+and summation orders than torch, and the exporter folds BatchNorm into the
+convolutions: relative errors of 1e-7..1e-5 on small nets, about 1e-4 on a
+ResNet-50 segmentation net whose BatchNorms carry real statistics (measured).
+1e-3 is the relative tolerance PyTorch's own ONNX Runtime tutorial compares
+with (``np.testing.assert_allclose(..., rtol=1e-03, atol=1e-05)``, "Exporting
+a model from PyTorch to ONNX and running it using ONNX Runtime"); a
+mis-lowered op or a warp applied in the wrong place differs by 1e-1 or more.
 """
 
 from __future__ import annotations
@@ -19,19 +23,20 @@ from torch import nn
 
 from ..compare import compare_outputs, detached, flatten_outputs
 from ..errors import CheckFailed, SpliceError, first_line
-from .onnx import MIN_OPSET, check_opset, export_onnx_bytes
+from .onnx import MIN_OPSET, as_inputs, check_opset, export_onnx_bytes, input_names
 from .onnx import _exporting, _output_names, _torchscript
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
 __all__ = ["EXPORT_TOLERANCES", "onnx_parity", "check_onnx_graph"]
 
-EXPORT_TOLERANCES = {torch.float32: 1e-4, torch.float64: 1e-9}
+EXPORT_TOLERANCES = {torch.float32: 1e-3, torch.float64: 1e-9}
 
 
-def _as_batches(inputs) -> list[torch.Tensor]:
-    if isinstance(inputs, torch.Tensor):
-        return [inputs]
-    return list(inputs)
+def _as_batches(inputs) -> list[tuple[torch.Tensor, ...]]:
+    """Batches as tuples of one tensor per model input, from a tensor, a tuple (one batch) or a list of either."""
+    if isinstance(inputs, (torch.Tensor, tuple)):
+        return [as_inputs(inputs)]
+    return [as_inputs(b) for b in inputs]
 
 def _load_onnx(onnx_model):
     import onnx
@@ -68,21 +73,22 @@ def _ort_session(model, *, optimise: bool = True):
         raise CheckFailed(f"onnxruntime cannot load the exported graph ({first}); try another --opset, "
                           "or report the model") from None
 
-def _run_batches(torch_model, session, feed_name: str, batches, extra: dict, tol, known=None) -> dict:
+def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra: dict, tol, known=None) -> dict:
     """Compare ``session`` with ``torch_model`` on every batch (``known``: torch outputs already at hand)."""
     results = []
-    for i, x in enumerate(batches):
+    for i, xs in enumerate(batches):
         if known is not None:
             ref = known[i]
         else:
             with torch.no_grad():
-                ref = torch_model(x)
+                ref = torch_model(*xs)
+        feeds = {name: x.detach().cpu().numpy() for name, x in zip(feed_names, xs)}
         try:
-            outs = session.run(None, {feed_name: x.detach().cpu().numpy(), **extra})
+            outs = session.run(None, {**feeds, **extra})
         except Exception as exc:  # onnxruntime raises its own exception types
             first = first_line(exc)
             return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
-                    "detail": f"onnxruntime failed on a batch of {x.shape[0]}: {first}"}
+                    "detail": f"onnxruntime failed on a batch of {xs[0].shape[0]}: {first}"}
         results.append(_compare_flat(ref, outs, tol))
     return _merge(results)
 
@@ -148,7 +154,7 @@ def _tolerance(model: nn.Module, tol: float | None) -> float:
     if tol is not None:
         return tol
     p = next(iter(model.parameters()), None)
-    return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, 1e-4)
+    return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, EXPORT_TOLERANCES[torch.float32])
 
 def _model_dtype(model: nn.Module) -> torch.dtype:
     p = next(iter(model.parameters()), None)
@@ -213,7 +219,8 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
         session = _ort_session(checked)
 
         def run(torch_model, sess, extra: dict, known=None) -> dict:
-            return _run_batches(torch_model, sess, sess.get_inputs()[0].name, batches, extra, tol, known)
+            names = [i.name for i in sess.get_inputs()[:len(batches[0])]]
+            return _run_batches(torch_model, sess, names, batches, extra, tol, known)
 
         stored = run(model, session, {}, references)
         perturbed = None
@@ -223,12 +230,12 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
                 perturbed = run(twin, session, {k: v.detach().cpu().numpy() for k, v in values.items()})
             else:
                 again = export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
-                                          dynamic_batch=len({b.shape[0] for b in batches}) > 1,
+                                          dynamic_batch=len({b[0].shape[0] for b in batches}) > 1,
                                           fold_constants=False, n_outputs=n_outputs)
                 perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     finally:
         model.train(was_training)
-    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
+    return _summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
 
 def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
     """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
@@ -240,13 +247,15 @@ def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
     return {**own, **{k: v.detach().cpu().numpy() for k, v in values.items()}}
 
 def _weight_inputs(proto, model: nn.Module) -> list[str]:
-    """The graph inputs after the image that are ``model``'s state entries, if all of them are; else ``[]``."""
+    """The graph inputs after the model's own inputs, if they are all ``model``'s state entries; else ``[]``."""
     inits = {init.name for init in proto.graph.initializer}
-    extra = [i.name for i in proto.graph.input[1:] if i.name not in inits]
-    if not extra:
-        return []
     state = model.state_dict(keep_vars=True)
-    return extra if all(n in state for n in extra) else []
+    graph_inputs = [i.name for i in proto.graph.input if i.name not in inits]
+    images = [n for n in graph_inputs if n not in state]
+    extra = graph_inputs[len(images):]
+    if not extra or graph_inputs[:len(images)] != images or images != input_names(len(images)):
+        return []
+    return extra
 
 def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, references,
                                perturbed_references=None, optimise: bool = True) -> dict:
@@ -256,24 +265,25 @@ def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, ref
     caller has them (the tracer's pass in :func:`check_onnx_graph`).
     """
     session = _ort_session(graph, optimise=optimise)
-    image = session.get_inputs()[0].name
+    images = [i.name for i in session.get_inputs()[:len(batches[0])]]
     state = model.state_dict(keep_vars=True)
-    own = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[1:] if i.name in state}
+    own = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[len(images):]
+           if i.name in state}
     was_training = model.training
     model.eval()
     try:
-        stored = _run_batches(model, session, image, batches, own, tol, references)
+        stored = _run_batches(model, session, images, batches, own, tol, references)
         perturbed = None
         values = perturbed_tensors(model) if perturb else {}
         if values:
             twin = perturbed_copy(model) if perturbed_references is None else None
-            perturbed = _run_batches(twin, session, image, batches, _perturbed_feeds(own, values), tol,
+            perturbed = _run_batches(twin, session, images, batches, _perturbed_feeds(own, values), tol,
                                      perturbed_references)
     finally:
         model.train(was_training)
-    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], "feeds" if perturbed else None)
+    return _summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
 
-def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17, reference=None,
+def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=None,
                      tol: float | None = None, perturb: bool = True) -> dict:
     """Export a checking graph of ``model`` and compare it in onnxruntime, as stored and perturbed.
 
@@ -283,7 +293,8 @@ def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17
     pass is the torch side of the perturbed comparison; one session is then
     run fed the model's own tensors (compared with ``reference``, the
     model's output for ``example``, computed when not given) and fed the
-    perturbed ones. ``example`` is one batch. Returns the
+    perturbed ones. ``example`` is one batch (a tensor, or a tuple of one
+    tensor per model input). Returns the
     :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``
     and ``bytes``; raises :class:`SpliceError` when the export fails. Used by
     ``splice verify --onnx``; ``splice export`` checks the file it ships.
@@ -292,17 +303,18 @@ def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17
     tol = _tolerance(model, tol)
     swapped = perturbed_tensors(model) if perturb else {}
     start = time.perf_counter()
+    xs = as_inputs(example)
     with _exporting(model, "torchscript", opset):
-        target = WeightsAsInputs(model, keep_output=True)
+        target = WeightsAsInputs(model, keep_output=True, n_inputs=len(xs))
         missing = sorted(set(swapped) - set(target.names))
         if missing:
             raise SpliceError(f"the warp head tensor(s) {', '.join(missing)} are not state-dict entries of their "
                               "own; check the graph with onnx_parity on a self-contained export instead")
         values = [swapped.get(name, v) for name, v in zip(target.names, target.values)]
-        names = (_output_names(model, example, None) if reference is None
+        names = (_output_names(model, xs, None) if reference is None
                  else [f"output_{i}" for i in range(len(flatten_outputs(reference)))])
-        data = _torchscript(target, (example, *values), ["input", *target.names], names, opset=opset,
-                            dynamic_batch=False, fold_constants=False)
+        data = _torchscript(target, (*xs, *values), [*input_names(len(xs)), *target.names], names, opset=opset,
+                            dynamic_batch=False, fold_constants=False, n_images=len(xs))
         traced = detached(target.output)
     seconds = time.perf_counter() - start
     start = time.perf_counter()
@@ -310,7 +322,7 @@ def check_onnx_graph(model: nn.Module, example: torch.Tensor, *, opset: int = 17
         reference = traced  # traced as stored: the tracer's pass is the stored model's output
     # op for op: with the weights fed there is nothing for onnxruntime to fold
     # or fuse ahead of time, and the file that ships is checked by export()
-    result = _parity_with_weight_inputs(model, data, [example], perturb=bool(swapped), tol=tol,
+    result = _parity_with_weight_inputs(model, data, [xs], perturb=bool(swapped), tol=tol,
                                         references=None if reference is None else [reference],
                                         perturbed_references=[traced], optimise=False)
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}

@@ -12,19 +12,25 @@ from torch import nn
 
 from ..compare import flatten_outputs
 from ..errors import SpliceError, first_line
+from .onnx import as_inputs
 from .parity import _as_batches, _compare_flat, _merge, _summary, _tolerance
 from .weights import perturbed_copy, perturbed_tensors
 
 __all__ = ["export_pt2_bytes", "pt2_parity"]
 
 
-def export_pt2_bytes(model: nn.Module, example: torch.Tensor, *, dynamic_batch: bool = False) -> bytes:
-    """``torch.export.export`` + ``torch.export.save`` into bytes (the model is not changed)."""
+def export_pt2_bytes(model: nn.Module, example, *, dynamic_batch: bool = False) -> bytes:
+    """``torch.export.export`` + ``torch.export.save`` into bytes (the model is not changed).
+
+    ``example`` is a tensor, or a tuple of one tensor per model input.
+    """
+    xs = as_inputs(example)
     was_training = model.training
     model.eval()
     try:
-        dims = ({0: torch.export.Dim("batch", min=1, max=4096)},) if dynamic_batch else None
-        program = torch.export.export(model, (example,), dynamic_shapes=dims)
+        batch = torch.export.Dim("batch", min=1, max=4096)
+        dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
+        program = torch.export.export(model, xs, dynamic_shapes=dims)
         buf = io.BytesIO()
         torch.export.save(program, buf)
         return buf.getvalue()
@@ -55,15 +61,15 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
     try:
         def run(torch_model, exported) -> dict:
             results = []
-            for x in batches:
+            for xs in batches:
                 with torch.no_grad():
-                    ref = torch_model(x)
+                    ref = torch_model(*xs)
                     try:
-                        out = exported(x)
+                        out = exported(*xs)
                     except Exception as exc:
                         first = first_line(exc)
                         return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
-                                "detail": f"the exported program failed on a batch of {x.shape[0]}: {first}"}
+                                "detail": f"the exported program failed on a batch of {xs[0].shape[0]}: {first}"}
                 results.append(_compare_flat(ref, list(flatten_outputs(out).values()), tol))
             return _merge(results)
 
@@ -82,9 +88,9 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
                         params[n].copy_(v)
                 how = "parameters"
             else:
-                module = torch.export.export(twin, (batches[0],)).module()
+                module = torch.export.export(twin, batches[0]).module()
                 how = "re-export"
             perturbed = run(twin, module)
     finally:
         model.train(was_training)
-    return _summary(stored, perturbed, tol, [int(b.shape[0]) for b in batches], how)
+    return _summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import os
 import time
+import warnings
 from pathlib import Path
 
 import torch
 
-from ..errors import CheckFailed, SpliceError
+from ..errors import CheckFailed, SpliceError, SpliceWarning
 from ..manifest import info_of
 from ..store import load
 from .onnx import check_opset, export_onnx_bytes
@@ -18,14 +19,18 @@ from .pt2 import export_pt2_bytes, pt2_parity
 __all__ = ["export"]
 
 
-def _probe_inputs(shape, dtype, *, dynamic_batch: bool, seed: int) -> tuple[torch.Tensor, list[torch.Tensor]]:
-    """(trace example, check batches): batch 1 static; dynamic traces at 2 and checks at 1 and 3."""
+def _probe_inputs(shapes, dtype, *, dynamic_batch: bool, seed: int) -> tuple[tuple, list[tuple]]:
+    """(trace example, check batches), one tensor per input each: batch 1 static; dynamic traces at 2 and
+    checks at 1 and 3."""
     gen = torch.Generator().manual_seed(seed)
+
+    def batch(n: int) -> tuple[torch.Tensor, ...]:
+        return tuple(torch.randn((n, *shape), generator=gen).to(dtype) for shape in shapes)
+
     if dynamic_batch:
-        example = torch.randn((2, *shape), generator=gen).to(dtype)
-        checks = [torch.randn((n, *shape), generator=gen).to(dtype) for n in (1, 3)]
-        return example, checks
-    x = torch.randn((1, *shape), generator=gen).to(dtype)
+        example = batch(2)
+        return example, [batch(1), batch(3)]
+    x = batch(1)
     return x, [x]
 
 def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
@@ -40,16 +45,59 @@ def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
         raise SpliceError(f"'{target}' reads back different bytes than were written; check the disk and retry")
     return target, digest
 
+def _one(model, fmt: str, shapes, *, dynamic_batch: bool, opset: int, exporter: str, seed: int, tol) -> tuple:
+    """``(bytes, parity result, seconds)`` of one export, traced and checked on seeded inputs."""
+    example, batches = _probe_inputs(shapes, _model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
+    start = time.perf_counter()
+    if fmt == "onnx":
+        data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
+        seconds = time.perf_counter() - start
+        return data, onnx_parity(model, data, batches, tol=tol), seconds
+    data = export_pt2_bytes(model, example, dynamic_batch=dynamic_batch)
+    seconds = time.perf_counter() - start
+    return data, pt2_parity(model, data, batches, tol=tol), seconds
+
+
+def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tuple:
+    """:func:`_one`, with a dynamic batch when asked and the model allows it, else a static batch of 1.
+
+    A model whose graph depends on the batch size (a detector that loops over
+    the images of a batch) traces into a graph for one batch size only: its
+    dynamic-batch export fails at batch sizes 1 and 3, and a static one is
+    written instead, with a warning.
+    """
+    if dynamic_batch:
+        try:
+            data, result, seconds = _one(model, fmt, shapes, dynamic_batch=True, **options)
+        except SpliceError as exc:
+            data, result, seconds = None, {"passed": False, "detail": str(exc)}, 0.0
+        if result["passed"]:
+            return data, result, seconds, True
+        static = _one(model, fmt, shapes, dynamic_batch=False, **options)
+        if not static[1]["passed"]:
+            return (data, result, seconds, True) if data is not None else (*static, False)
+        warnings.warn(
+            f"the {fmt} export with a dynamic batch does not match the model at batch sizes 1 and 3 "
+            f"({result['detail']}); the model's graph depends on its batch size, so a static batch of 1 is "
+            "exported instead (--static-batch says so explicitly)", SpliceWarning, stacklevel=3)
+        return (*static, False)
+    data, result, seconds = _one(model, fmt, shapes, dynamic_batch=False, **options)
+    return data, result, seconds, False
+
+
 def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None,
-           *, opset: int = 17, dynamic_batch: bool = False, trust_pickle: bool = False,
+           *, opset: int = 17, dynamic_batch: bool = True, trust_pickle: bool = False,
            exporter: str = "torchscript", seed: int = 0, tol: float | None = None, trust_code: bool = False) -> dict:
     """Export a spliced folder to ONNX and/or torch.export, keeping only copies that pass parity.
 
     Each export is checked with :func:`onnx_parity` / :func:`pt2_parity` (as
-    stored and with a perturbed warp) on seeded N(0,1) inputs: one batch of 1,
-    or with ``dynamic_batch`` batches of 1 and 3 (the trace uses 2). A failed
-    check raises :class:`~splice.errors.CheckFailed` and writes nothing. An
-    existing file at the target is replaced atomically.
+    stored and with a perturbed warp) on seeded N(0,1) inputs. The batch
+    dimension is dynamic by default: traced at 2, checked at 1 and 3; a model
+    whose graph depends on the batch size gets a static export of batch 1
+    instead, with a :class:`~splice.errors.SpliceWarning` (``dynamic_batch=False``,
+    ``--static-batch``, asks for that directly). A failed check raises
+    :class:`~splice.errors.CheckFailed` and writes nothing. An existing file
+    at the target is replaced atomically.
 
     Returns ``{"exports": [{"path", "format", "sha256", "seconds", "max_abs",
     "max_rel", "max_abs_perturbed", "max_rel_perturbed", "tolerance",
@@ -65,24 +113,12 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
         if target is not None and Path(target).is_dir():
             raise SpliceError(f"export target '{target}' is a folder; give a file name such as model.onnx")
     model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
-    shape = info_of(model).input_shape
-    example, batches = _probe_inputs(shape, _model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
-    jobs: list[tuple[str, str | os.PathLike]] = []
-    if onnx is not None:
-        jobs.append(("onnx", onnx))
-    if pt2 is not None:
-        jobs.append(("pt2", pt2))
+    shapes = info_of(model).input_shapes
+    jobs = [(fmt, target) for fmt, target in (("onnx", onnx), ("pt2", pt2)) if target is not None]
     done = []
     for fmt, target in jobs:
-        start = time.perf_counter()
-        if fmt == "onnx":
-            data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
-            seconds = time.perf_counter() - start
-            result = onnx_parity(model, data, batches, tol=tol)
-        else:
-            data = export_pt2_bytes(model, example, dynamic_batch=dynamic_batch)
-            seconds = time.perf_counter() - start
-            result = pt2_parity(model, data, batches, tol=tol)
+        data, result, seconds, dynamic = _checked(model, fmt, shapes, dynamic_batch=dynamic_batch, opset=opset,
+                                                  exporter=exporter, seed=seed, tol=tol)
         if not result["passed"]:
             raise CheckFailed(
                 f"the {fmt} export of '{folder}' does not match the model ({result['detail']}); "
@@ -90,7 +126,7 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
             )
         path, digest = _keep(target, data)
         done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,
-                     "dynamic_batch": dynamic_batch,
+                     "dynamic_batch": dynamic,
                      **({"opset": opset, "exporter": exporter} if fmt == "onnx" else {}),
                      **{k: v for k, v in result.items() if k != "passed"}})
     return {"exports": done}

@@ -68,7 +68,7 @@ def _skeleton(module: nn.Module, memo: dict[int, nn.Module]) -> nn.Module:
     return twin
 
 class WeightsAsInputs(nn.Module):
-    """The model with every parameter and persistent buffer taken as an input after the image.
+    """The model with every parameter and persistent buffer taken as an input after its ``n_inputs`` inputs.
 
     Built on a :func:`_skeleton` of the model: no tensor is copied and the
     caller's modules are never touched. The extra inputs are named after the
@@ -77,9 +77,10 @@ class WeightsAsInputs(nn.Module):
     buffers (a warp's base grid) stay constants of the graph.
     """
 
-    def __init__(self, model: nn.Module, *, keep_output: bool = False) -> None:
+    def __init__(self, model: nn.Module, *, keep_output: bool = False, n_inputs: int = 1) -> None:
         super().__init__()
         self.keep_output = keep_output
+        self.n_inputs = n_inputs
         self.output = None  # with keep_output: what the last forward pass returned
         state = model.state_dict(keep_vars=True)
         first: dict[int, str] = {}
@@ -102,10 +103,11 @@ class WeightsAsInputs(nn.Module):
                     del slots[attr]
                     self._slots.append((twin, attr, index[id(t)]))
 
-    def forward(self, x, *tensors):
+    def forward(self, *args):
+        xs, tensors = args[:self.n_inputs], args[self.n_inputs:]
         for module, attr, i in self._slots:
             module.__dict__[attr] = tensors[i]  # a plain attribute: Module.__getattr__ is not consulted
-        out = self.model(x)
+        out = self.model(*xs)
         if self.keep_output:
             self.output = out  # a reference only: the tracer records no operation for it
         return out

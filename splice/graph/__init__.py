@@ -17,6 +17,8 @@ The graph is traced in eval mode. Whenever traced code reads a module's
 a private clone of the module tree that owns copies of the buffers
 (:func:`splice.copies.private_buffers`): code that updates a buffer while it
 is traced (a fused BatchNorm counting batches) never changes the caller's model.
+Such a module is kept as a leaf (found by its buffers' version counters), so
+the traced graph keeps updating its buffers as the model does.
 
 Points
 ------
@@ -54,22 +56,29 @@ of common CNNs ends (a strided conv followed by a pool or a second strided
 conv), so the second warp works on low-level features that still have spatial
 detail; a cut means one warp sees the whole signal.
 
-Fallback view
--------------
+Where fx cannot trace: the hooks views
+--------------------------------------
 If fx cannot trace the model, :func:`points` warns (:class:`TraceFallbackWarning`)
-and lists module outputs instead, recorded by forward hooks during a meta
-forward pass. Names come from module qualnames (dots become underscores, with
-``_1``, ``_2`` for repeat calls); there is no data-flow graph, so only ``input``
-is marked as a cut. If that forward fails too, :class:`~splice.errors.GraphError`
-names the failing module and how to mark it as a leaf.
+and lists the points a forward hook can reach (mechanism ``"hooks"``, see
+:mod:`splice.hooks`): tensors that one module call creates and hands back,
+named after the module's qualname (``_1``, ``_2`` for repeat calls), each with
+its *site* ``(qualname, call index)``. The data flow comes from one recorded
+meta-device forward (:mod:`.recorded`), or, for a forward that needs real
+values, from ``torch.export`` (:mod:`.exported`); the cut analysis is the
+same. If both fail, module outputs of a meta forward are listed without a
+data-flow graph (only ``input`` is a cut; :mod:`.fallback`). If that forward
+fails too, :class:`~splice.errors.GraphError` names the failing module and how
+to mark it as a leaf; leaves run alone, for real, in every one of these
+passes. ``within="backbone"`` lists the hooks view of a submodule, called
+with the inputs the model gives it (:mod:`.scope`).
 
 Files
 -----
 ``leaves`` (the leaf registry), ``tracing`` (the fx tracer, train/eval
-comparison, shadow copies), ``shapes`` (meta-device propagation), ``cuts``
-(dominators), ``naming`` (point names, lookup), ``entries`` (4-D activations
-between convs), ``fallback`` (module outputs), ``listing`` (:class:`Point`,
-:func:`points`).
+comparison), ``shapes`` (meta-device propagation), ``cuts`` (dominators),
+``naming`` (point names, lookup), ``entries`` (4-D activations between
+convs), ``recorded``, ``exported`` and ``fallback`` (the hooks views),
+``scope`` (``within``), ``listing`` (:class:`Point`, :func:`points`).
 """
 
 from __future__ import annotations

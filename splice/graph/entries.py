@@ -35,6 +35,7 @@ class _Entry:
     cut: bool
     join: str | None
     between_convs: bool
+    site: tuple[str, int] | None = None  # hooks: (module qualname, call index); None for fx and the input
 
 
 def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:

@@ -1,11 +1,19 @@
-"""The fallback view: module outputs, when torch.fx cannot trace the model.
+"""The views for models torch.fx cannot trace: recorded, exported, else module outputs.
 
-:func:`~splice.graph.points` then warns (:class:`TraceFallbackWarning`) and
-lists module outputs instead, recorded by forward hooks during a meta forward
-pass. Names come from module qualnames (dots become underscores, with ``_1``,
-``_2`` for repeat calls); there is no data-flow graph, so only ``input`` is
-marked as a cut. If that forward fails too, :class:`~splice.errors.GraphError`
-names the failing module and how to mark it as a leaf.
+:func:`~splice.graph.points` then lists the points a forward hook can reach
+(:mod:`splice.hooks` puts the warps there), with the full cut analysis: first
+from the data flow of one meta-device forward (:mod:`splice.graph.recorded`),
+else, for a forward that needs real values, from a ``torch.export`` graph
+(:mod:`splice.graph.exported`); if torch.export fails too, from module outputs
+recorded by forward hooks during a meta-device forward pass, without a
+data-flow graph (only ``input`` is then marked as a cut). A point whose module
+is called more often for a bigger batch (a loop over the images of the batch)
+is left out: a hook counts calls, and would warp the first image only. Names come from module qualnames (dots become underscores,
+with ``_1``, ``_2`` for repeat calls) in both. Leaf modules (``--leaf``) run
+for real, alone, on zeros during the meta pass, so a module whose forward
+needs real values can be stepped over. If that forward fails as well,
+:class:`~splice.errors.GraphError` names the failing module and how to mark
+it as a leaf.
 """
 
 from __future__ import annotations
@@ -13,97 +21,205 @@ from __future__ import annotations
 import itertools
 import math
 import warnings
+from collections.abc import Callable
 
 import torch
+import torch.fx as fx
 from torch import nn
 
 from ..errors import GraphError
 from .entries import _CONV_MODULES, _Entry
-from .leaves import _class_path, _is_torch_builtin
-from .shapes import _META, _input_dtype, _meta_empty, _meta_module
-from .tracing import GraphWarning, _FxFailure, _fx_failure_hint, _reason
+from .exported import _export_entries
+from .recorded import _recorded_entries
+from .leaves import _class_path, _is_torch_builtin, _LeafRule
+from .shapes import _META, _meta_module, _run_for_real, _to_meta
+from .tracing import GraphWarning, _reason
 
 __all__ = ["TraceFallbackWarning"]
 
 
 class TraceFallbackWarning(GraphWarning):
-    """fx could not trace the model; points come from module boundaries instead."""
+    """fx could not trace the model; points come from torch.export or module boundaries instead."""
 
 
-def _module_view(model: nn.Module, shape: tuple[int, int, int], failure: _FxFailure) -> list[_Entry]:
+class _Timeline:
+    """Forward hooks on a meta copy: module outputs in completion order, and when convs start and end."""
+
+    def __init__(self, meta: nn.Module):
+        self.qualnames = {m: q for q, m in meta.named_modules() if q}
+        self.stack: list[nn.Module] = []
+        self.records: list[tuple[int, str, str, tuple[int, int, int], int]] = []
+        self.conv_starts: list[int] = []
+        self.conv_ends: list[int] = []
+        self.calls: dict[str, int] = {}
+        self.clock = itertools.count()
+        self.handles = []
+        for mod in self.qualnames:
+            self.handles.append(mod.register_forward_pre_hook(self.before))
+            self.handles.append(mod.register_forward_hook(self.after))
+
+    def before(self, mod, args):
+        self.stack.append(mod)
+        if isinstance(mod, _CONV_MODULES):
+            self.conv_starts.append(next(self.clock))
+
+    def after(self, mod, args, out):
+        self.stack.pop()
+        t = next(self.clock)
+        if isinstance(mod, _CONV_MODULES):
+            self.conv_ends.append(t)
+        if isinstance(out, torch.Tensor) and out.dim() == 4:
+            qualname = self.qualnames[mod]
+            k = self.calls.get(qualname, 0)
+            self.calls[qualname] = k + 1
+            base = qualname.replace(".", "_")
+            self.records.append((t, base if k == 0 else f"{base}_{k}", qualname,
+                                 tuple(int(s) for s in out.shape[1:]), k))
+
+    def remove(self) -> None:
+        for h in self.handles:
+            h.remove()
+
+
+def _step_over_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule) -> None:
+    """Let every leaf of ``meta`` run its real twin on zeros (meta outputs back): ``--leaf`` reaches this pass."""
+    real_modules = dict(real.named_modules())
+    for q, m in meta.named_modules():
+        if q and rule(type(m)) and not _is_torch_builtin(type(m)):
+            original = real_modules[q]
+            m.forward = _real_forward(original)
+
+
+def _real_forward(original: nn.Module) -> Callable:
+    def forward(*args, **kwargs):
+        return _run_for_real(original, args, kwargs)
+    return forward
+
+
+def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, problem: str, todo: str,
+                 input_shape: tuple[int, int, int]) -> list[_Entry]:
     """Entries for module outputs seen by forward hooks during a meta forward pass."""
-    where, todo = _fx_failure_hint(failure, model)
-    fx_problem = f"torch.fx could not trace {where} ({_reason(failure.error)})"
     try:
         meta = _meta_module(model)
     except Exception as exc:
         raise GraphError(
-            f"cannot list points of {type(model).__name__}: {fx_problem}, and copying it to the meta "
+            f"cannot list points of {type(model).__name__}: {problem}, and copying it to the meta "
             f"device failed ({_reason(exc)}); {todo}"
         ) from exc
-    qualnames = {m: q for q, m in meta.named_modules() if q}
-    stack: list[nn.Module] = []
-    records: list[tuple[int, str, tuple[int, int, int]]] = []
-    conv_starts: list[int] = []
-    conv_ends: list[int] = []
-    calls: dict[str, int] = {}
-    clock = itertools.count()
-
-    def before(mod, args):
-        stack.append(mod)
-        if isinstance(mod, _CONV_MODULES):
-            conv_starts.append(next(clock))
-
-    def after(mod, args, out):
-        stack.pop()
-        t = next(clock)
-        if isinstance(mod, _CONV_MODULES):
-            conv_ends.append(t)
-        if isinstance(out, torch.Tensor) and out.dim() == 4:
-            qualname = qualnames[mod]
-            k = calls.get(qualname, 0)
-            calls[qualname] = k + 1
-            base = qualname.replace(".", "_")
-            records.append((t, base if k == 0 else f"{base}_{k}", qualname, tuple(int(s) for s in out.shape[1:])))
-
-    handles = []
-    for mod in qualnames:
-        handles.append(mod.register_forward_pre_hook(before))
-        handles.append(mod.register_forward_hook(after))
+    _step_over_leaves(meta, model, rule)
+    timeline = _Timeline(meta)
     try:
         with torch.no_grad(), torch.device(_META):
-            meta(_meta_empty((1, *shape), _input_dtype(model)))
+            meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
     except Exception as exc:
-        if stack:
-            failing = stack[-1]
-            cls = type(failing)
-            here = f"module '{qualnames[failing]}' ({cls.__name__})"
-            advice = (
-                f"mark '{qualnames[failing]}' opaque with --leaf {_class_path(cls)} "
-                f"(Python: leaves=[{cls.__name__}]) and try again"
-            )
-            if _is_torch_builtin(cls):
-                advice = f"check that the model takes inputs of shape (C, H, W) = {shape}"
-        else:
-            here = f"the forward of {type(model).__name__} itself"
-            advice = todo
-        raise GraphError(
-            f"cannot list points of {type(model).__name__}: {fx_problem}, and a meta-device forward "
-            f"failed in {here} ({_reason(exc)}); {advice}"
-        ) from exc
+        raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
+    finally:
+        timeline.remove()
+    first_conv_end = min(timeline.conv_ends, default=math.inf)
+    last_conv_start = max(timeline.conv_starts, default=-math.inf)
+    entries = [_Entry("input", "", "input", input_shape, True, None, True)]
+    for t, name, qualname, out_shape, k in timeline.records:
+        entries.append(_Entry(name, qualname, "activation", out_shape, False, None,
+                              first_conv_end <= t < last_conv_start, (qualname, k)))
+    return entries
+
+
+def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo: str, input_shape) -> GraphError:
+    if timeline.stack:
+        failing = timeline.stack[-1]
+        cls = type(failing)
+        name = timeline.qualnames[failing]
+        here = f"module '{name}' ({cls.__name__})"
+        advice = (f"mark '{name}' opaque with --leaf {_class_path(cls)} (Python: leaves=[{cls.__name__}]) "
+                  "so that it runs alone, for real, and try again")
+        if _is_torch_builtin(cls):
+            advice = f"check that the model takes inputs of shape (C, H, W) = {input_shape}"
+    else:
+        here = f"the forward of {type(model).__name__} itself"
+        advice = todo
+    return GraphError(f"cannot list points of {type(model).__name__}: {problem}, and a meta-device forward "
+                      f"failed in {here} ({_reason(exc)}); {advice}")
+
+
+def _doubled(value):
+    """Every tensor of ``value`` with its batch repeated twice (a batch of 2 from a batch of 1)."""
+    return fx.node.map_aggregate(value, lambda v: torch.cat([v, v]) if isinstance(v, torch.Tensor) and v.dim() else v)
+
+
+def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                 train: bool = False) -> dict[str, int] | None:
+    """How often each module is called in one meta forward (in train mode with ``train``), or ``None`` when that
+    forward fails."""
+    meta = _meta_module(model)
+    meta.train(train)
+    _step_over_leaves(meta, model, rule)
+    names = {m: q for q, m in meta.named_modules() if q}
+    counts: dict[str, int] = {}
+
+    def count(mod, call_args, out):
+        counts[names[mod]] = counts.get(names[mod], 0) + 1
+
+    handles = [m.register_forward_hook(count) for m in names]
+    try:
+        with torch.no_grad(), torch.device(_META):
+            meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
+    except Exception:  # the forward does not run at this batch size: nothing to compare
+        return None
     finally:
         for h in handles:
             h.remove()
-    warnings.warn(
-        f"{fx_problem}; listing module outputs instead, without cut analysis (only 'input' is "
-        f"marked as a cut). To get the full analysis, {todo}.",
-        TraceFallbackWarning,
-        stacklevel=3,
-    )
-    first_conv_end = min(conv_ends, default=math.inf)
-    last_conv_start = max(conv_starts, default=-math.inf)
-    entries = [_Entry("input", "", "input", shape, True, None, True)]
-    for t, name, qualname, out_shape in records:
-        entries.append(_Entry(name, qualname, "activation", out_shape, False, None,
-                              first_conv_end <= t < last_conv_start))
+    return counts
+
+
+def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                  entries: list[_Entry]) -> list[_Entry]:
+    """The entries whose module is called as often at batch 2, and in train mode, as at batch 1 in eval mode.
+
+    A hook counts the calls of its module within one forward. A module called
+    once per image (a loop over the batch) is called more often for a bigger
+    batch, and a module called only while training shifts the count during
+    training, so the recorded call would reach another tensor: such points are
+    not listed.
+    """
+    one = _call_counts(model, args, kwargs, rule)
+    if one is None:
+        return entries
+    others = [c for c in (_call_counts(model, _doubled(args), _doubled(kwargs), rule),
+                          _call_counts(model, _doubled(args), _doubled(kwargs), rule, train=True)) if c is not None]
+    return [e for e in entries if e.site is None or all(one.get(e.site[0]) == c.get(e.site[0]) for c in others)]
+
+
+def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
+                input_shape: tuple[int, int, int]) -> list[_Entry]:
+    """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`)."""
+    entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape)
+    return _batch_stable(model, args, kwargs, rule, entries)
+
+
+def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
+                   input_shape: tuple[int, int, int]) -> list[_Entry]:
+    """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
+
+    ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
+    """
+    shapes = "x".join(map(str, input_shape))
+    try:
+        entries = _recorded_entries(model, args, kwargs, rule)
+        how = f"a meta-device run of the forward (specialised to input {shapes})"
+    except Exception as exc:  # a forward that needs real values: torch.export may still manage
+        recorded_problem = _reason(exc)
+        try:
+            entries = _export_entries(model, args, kwargs)
+            how = f"torch.export (specialised to input {shapes})"
+        except Exception as exc2:  # whatever torch.export cannot handle either: module outputs
+            export_problem = (f"recording a meta-device forward failed ({recorded_problem}) and torch.export failed "
+                              f"too ({_reason(exc2)})")
+            why = f"{problem}; {export_problem}" if problem else export_problem
+            entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
+            warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "
+                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=5)
+            return entries
+    if problem:
+        warnings.warn(f"{problem}; points come from {how} and warps go in by forward hooks at module outputs "
+                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=5)
     return entries

@@ -21,17 +21,19 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
+import torch
 from torch import nn
 
 from ..copies import private_buffers
 from ..errors import GraphError, SourceError
-from ..sources.specs import parse_input_shape
+from ..sources.specs import parse_input_shapes
 from .entries import _Entry, _graph_entries
-from .fallback import _module_view
+from .fallback import _hooks_view
 from .leaves import _LeafRule
 from .naming import _describe_node, _point_names
-from .shapes import _propagate, _ShapeFailure
-from .tracing import _check_model, _FxFailure, _reason, _trace_owned
+from .scope import _scope_inputs
+from .shapes import _input_dtype, _propagate, _ShapeFailure
+from .tracing import _check_model, _fx_failure_hint, _FxFailure, _reason, _trace_owned
 
 __all__ = ["Point", "points", "points_report"]
 
@@ -63,6 +65,8 @@ class Point:
     warp_macs: int
     recommended: bool
     kind: str = "activation"
+    site: tuple[str, int] | None = None
+    mechanism: str = "fx"
 
     def __post_init__(self):
         if len(self.shape) != 3 or not all(isinstance(s, int) and s > 0 for s in self.shape):
@@ -73,6 +77,10 @@ class Point:
             raise ValueError(f"point {self.name!r} is recommended but not a cut; only cuts can be recommended")
         if self.in_branch and self.join is None:
             raise ValueError(f"point {self.name!r} is in a branch but has no join")
+        if self.mechanism not in ("fx", "hooks"):
+            raise ValueError(f"Point.mechanism must be 'fx' or 'hooks', got {self.mechanism!r}")
+        if self.mechanism == "hooks" and self.kind != "input" and self.site is None:
+            raise ValueError(f"point {self.name!r} needs a site (module, call) to be reached by a hook")
 
     def to_json(self) -> dict:
         return {
@@ -86,6 +94,7 @@ class Point:
             "warp_params": self.warp_params,
             "warp_macs": self.warp_macs,
             "recommended": self.recommended,
+            "mechanism": self.mechanism,
         }
 
 
@@ -94,7 +103,8 @@ def _stride(in_hw: tuple[int, int], hw: tuple[int, int]) -> int | float | tuple:
     return parts[0] if parts[0] == parts[1] else tuple(parts)
 
 
-def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], every: bool, warp: str) -> list[Point]:
+def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], every: bool, warp: str,
+                  mechanism: str) -> list[Point]:
     from ..warps import WarpConfig, warp_cost
 
     config = WarpConfig(family=warp)
@@ -125,66 +135,127 @@ def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], ever
             cut=e.cut, in_branch=e.join is not None, join=e.join,
             warp_params=int(params), warp_macs=int(macs),
             recommended=e.cut and (e.kind == "input" or (e is chosen and not input_cut)), kind=e.kind,
+            site=e.site, mechanism=mechanism,
         ))
     return out
 
 
-def _check_input_shape(input_shape: Any) -> tuple[int, int, int]:
-    # the one input-shape rule is splice.sources.parse_input_shape; here only tuples, not "CxHxW" text
+def _check_input_shapes(input_shape: Any) -> tuple[tuple[int, int, int], ...]:
+    # the one input-shape rule is splice.sources.parse_input_shape(s); here only tuples, not "CxHxW" text
     try:
-        shape = None if isinstance(input_shape, str) else parse_input_shape(input_shape)
-    except SourceError:
-        shape = None
-    if shape is None:
+        shapes = None if isinstance(input_shape, str) else parse_input_shapes(input_shape)
+    except SourceError as exc:
+        if "four dimensions" in str(exc):
+            raise GraphError(str(exc)) from None
+        shapes = None
+    if not shapes:
         raise GraphError(
-            f"input_shape must be (C, H, W) with three positive ints, got {input_shape!r}; "
+            f"input_shape must be (C, H, W) with three positive ints (one per input), got {input_shape!r}; "
             "for example (3, 224, 224)"
         )
-    return shape
+    return shapes
+
+
+def _check_images(model: nn.Module) -> None:
+    """A model of volumes or clips (3-D convolutions and no 2-D ones) gets one line, not a shape error."""
+    kinds = {type(m) for m in model.modules()}
+    if nn.Conv3d in kinds and nn.Conv2d not in kinds:
+        raise GraphError(f"{type(model).__name__} convolves volumes or video (Conv3d, 5-D inputs); splice works on "
+                         "images (C, H, W) for now, and volumes and video come in a later release")
+
+
+def _check_arity(model: nn.Module, shapes: tuple) -> None:
+    """One shape per required input of ``forward``, or a one-line error naming the inputs."""
+    import inspect
+
+    try:
+        params = inspect.signature(model.forward).parameters.values()
+    except (TypeError, ValueError):  # a forward without a signature: let the forward itself tell
+        return
+    kinds = (inspect.Parameter.POSITIONAL_ONLY, inspect.Parameter.POSITIONAL_OR_KEYWORD)
+    required = [p.name for p in params if p.kind in kinds and p.default is inspect.Parameter.empty]
+    if len(required) > len(shapes):
+        raise GraphError(f"{type(model).__name__}'s forward takes {len(required)} inputs ({', '.join(required)}) "
+                         f"and {len(shapes)} shape{' was' if len(shapes) == 1 else 's were'} given; give one "
+                         "--input-shape per input (input_shape=[(C, H, W), ...])")
+
+
+def _fx_entries(model: nn.Module, shapes: tuple, rule: _LeafRule) -> list[_Entry]:
+    """Entries of the fx graph (raises :class:`_FxFailure` when fx cannot trace the model)."""
+    root = private_buffers(model)
+    graph = _trace_owned(root, rule)
+    modules = dict(root.named_modules())
+    try:
+        values = _propagate(graph, root, modules, shapes)
+    except _ShapeFailure as failure:
+        raise GraphError(
+            f"shape propagation on the meta device failed at point {_point_names(graph)[failure.node]!r} "
+            f"({_describe_node(failure.node, root)}) for input shape "
+            f"{shapes[0] if len(shapes) == 1 else list(shapes)}: {_reason(failure.error)}; "
+            "check that the model takes inputs of this (C, H, W), or mark the failing module as a leaf "
+            "(--leaf TYPE, Python: leaves=[TYPE])"
+        ) from failure.error
+    return _graph_entries(graph, modules, values)
 
 
 def points(
     model: nn.Module,
-    input_shape: tuple[int, int, int],
+    input_shape,
     *,
     all: bool = False,
     leaves: Iterable[Any] = (),
     warp: str = "affine",
+    within: str = "",
 ) -> list[Point]:
     """List the places where a warp can go, in graph order.
 
-    ``input_shape`` is (C, H, W). By default: ``input`` and the 4-D activations
-    between convs; ``all=True`` lists every 4-D activation. ``warp`` is the warp
-    family whose cost is reported. See the :mod:`splice.graph` docstring for cuts, branches,
-    the recommendation rule and the fallback when fx cannot trace the model.
-    The model is not changed, and no weight or activation memory is allocated.
+    ``input_shape`` is (C, H, W), or one such shape per input of a model with
+    several. By default: ``input`` and the 4-D activations between convs;
+    ``all=True`` lists every 4-D activation. ``warp`` is the warp family whose
+    cost is reported. ``within`` restricts the points to a submodule (a
+    qualname such as ``"backbone"``), whose inputs are found by running the
+    model on the meta device; its first input is ``input``. Each point says
+    which ``mechanism`` puts a warp there: ``"fx"`` (a graph rewrite) or
+    ``"hooks"`` (a forward hook on the module that returns it, for models fx
+    cannot trace and for ``within``). See the :mod:`splice.graph` docstring
+    for cuts, branches, the recommendation rule and the fallbacks. The model
+    is not changed, and no weight or activation memory is allocated.
     """
     _check_model(model, "points()")
-    shape = _check_input_shape(input_shape)
+    shapes = _check_input_shapes(input_shape)
+    _check_images(model)
+    _check_arity(model, shapes)
     rule = _LeafRule(leaves)
-    root = private_buffers(model)
+    if within:
+        scope, args, kwargs = _scope_inputs(model, shapes, within)
+        first = next((a for a in args if isinstance(a, torch.Tensor) and a.dim() == 4), None)
+        if first is None:
+            raise GraphError(f"--within {within!r}: that module is not called with an (N, C, H, W) tensor first; "
+                             "pick a module that takes images or feature maps")
+        shape = tuple(int(s) for s in first.shape[1:])
+        entries = _hooks_view(scope, args, kwargs, rule, problem=None, todo=_WITHIN_TODO, input_shape=shape)
+        return _build_points(entries, shape, all, warp, "hooks")
     try:
-        graph = _trace_owned(root, rule)
+        entries = _fx_entries(model, shapes, rule)
     except _FxFailure as failure:
-        entries = _module_view(model, shape, failure)
-        return _build_points(entries, shape, all, warp)
-    modules = dict(root.named_modules())
-    try:
-        values = _propagate(graph, root, modules, shape)
-    except _ShapeFailure as failure:
-        raise GraphError(
-            f"shape propagation on the meta device failed at point {_point_names(graph)[failure.node]!r} "
-            f"({_describe_node(failure.node, root)}) for input shape {shape}: {_reason(failure.error)}; "
-            "check that the model takes inputs of this (C, H, W), or mark the failing module as a leaf "
-            "(--leaf TYPE, Python: leaves=[TYPE])"
-        ) from failure.error
-    return _build_points(_graph_entries(graph, modules, values), shape, all, warp)
+        where, todo = _fx_failure_hint(failure, model)
+        problem = f"torch.fx could not trace {where} ({_reason(failure.error)})"
+        dtype = _input_dtype(model)
+        args = tuple(torch.empty((1, *s), dtype=dtype) for s in shapes)
+        entries = _hooks_view(model, args, {}, rule, problem=problem, todo=todo, input_shape=shapes[0])
+        return _build_points(entries, shapes[0], all, warp, "hooks")
+    return _build_points(entries, shapes[0], all, warp, "fx")
+
+
+_WITHIN_TODO = "mark the module that fails as a leaf (--leaf TYPE, Python: leaves=[TYPE])"
 
 
 def points_report(model_name: str, input_shape: tuple[int, int, int], pts: Iterable[Point]) -> dict:
-    """The JSON form of a listing: ``{"model", "input_shape": [C, H, W], "points": [...]}``."""
+    """The JSON form of a listing: ``{"model", "input_shape": [C, H, W], "mechanism", "points": [...]}``."""
+    pts = list(pts)
     return {
         "model": model_name,
         "input_shape": [int(s) for s in input_shape],
+        "mechanism": pts[0].mechanism if pts else "fx",
         "points": [p.to_json() for p in pts],
     }

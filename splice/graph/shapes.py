@@ -224,31 +224,30 @@ def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: d
 
 
 def _propagate(
-    graph: fx.Graph, root: nn.Module, modules: dict[str, nn.Module], input_shape: tuple[int, int, int]
+    graph: fx.Graph, root: nn.Module, modules: dict[str, nn.Module], input_shapes: tuple[tuple[int, int, int], ...]
 ) -> dict[fx.Node, Any]:
-    """Run ``graph`` on a batch-1 meta tensor; return every node's (meta) value.
+    """Run ``graph`` on batch-1 meta tensors (one per input shape); return every node's (meta) value.
 
     ``modules`` maps qualnames to the modules of ``root``.
     """
     meta_modules: dict[str, nn.Module] = {}
     values: dict[fx.Node, Any] = {}
     load = values.__getitem__
-    seen_input = False
+    given = list(input_shapes)
     with torch.no_grad():
         for node in graph.nodes:
             op = node.op
             try:
                 if op == "placeholder":
-                    if not seen_input:
-                        value = _meta_empty((1, *input_shape), _input_dtype(root))
-                        seen_input = True
+                    if given:
+                        value = _meta_empty((1, *given.pop(0)), _input_dtype(root))
                     elif node.args:
                         value = node.args[0]  # an optional argument: its default
                     else:
+                        n = len(input_shapes)
                         raise GraphError(
-                            f"the model's forward takes more than one input (also {node.target!r}); "
-                            "splice lists points of single-input models: wrap the model so that "
-                            "forward(x) takes one tensor"
+                            f"the model's forward takes more inputs than the {n} shape(s) given (also "
+                            f"{node.target!r}); give one --input-shape per input (input_shape=[(C, H, W), ...])"
                         )
                 elif op == "get_attr":
                     value = _to_meta(_fetch_attr(root, node.target))

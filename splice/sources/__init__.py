@@ -8,7 +8,14 @@ Spec forms, used by every command:
 - ``path/to/file.py:factory`` — a callable defined in a Python file.
 - ``path/to/model.pt`` — a whole pickled ``nn.Module``; loads only with
   ``trust_pickle=True`` because unpickling can run arbitrary code.
-- ``path/to/folder`` — a folder written by :func:`splice.save`.
+- ``timm:NAME`` — a timm architecture by name (``pretrained=False``; timm is optional).
+- ``transformers:ClassName`` with ``kwargs={"config": {...}}`` — a Hugging Face
+  model class of the installed transformers, built from its config.
+- ``path/to/hf_folder`` — a folder written by ``save_pretrained`` (``config.json``
+  and weights), built from its config; custom code (``auto_map``) only with
+  ``trust_code=True``.
+- ``path/to/folder`` — a folder written by :func:`splice.save` (opened by
+  :func:`splice.store.open_source`).
 
 A spec read from a file (a folder's manifest, a run's ``run.json``) is built
 only through a registry lookup unless the user opts in with ``trust_code``
@@ -24,8 +31,9 @@ unexpected and shape-mismatched names are refused unless ``allow_partial``.
 from __future__ import annotations
 
 from .builders import IMAGENET_NORMALISATION, build_model
+from .huggingface import is_hf_folder, read_hf_folder
 from .source import Source, load_source
-from .specs import format_shape, parse_input_shape, parse_kwargs
+from .specs import format_shape, parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import REGISTRY_KINDS, TRUST_ENV, RegistryKind, check_spec, code_trusted, register_kind, registry_kind_of
 from .weights import (
     NESTING_KEYS,
@@ -42,11 +50,14 @@ __all__ = [
     "Source",
     "load_source",
     "build_model",
+    "is_hf_folder",
+    "read_hf_folder",
     "read_weights",
     "read_safetensors",
     "with_metadata",
     "load_weights_",
     "parse_input_shape",
+    "parse_input_shapes",
     "parse_kwargs",
     "format_shape",
     "check_finite",

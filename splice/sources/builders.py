@@ -1,7 +1,9 @@
-"""Building an architecture from a spec: torchvision builders and user factories.
+"""Building an architecture from a spec: torchvision, timm and transformers registries, user factories.
 
-Nothing is downloaded: torchvision models are built with ``weights=None`` and
-every model starts from random init; weights come separately
+Nothing is downloaded: torchvision models are built with ``weights=None`` (and
+``weights_backbone=None`` where the builder takes one), timm models with
+``pretrained=False``, Hugging Face models from their config; every model
+starts from random init and weights come separately
 (:mod:`splice.sources.weights`).
 """
 
@@ -19,7 +21,9 @@ from typing import Any
 from torch import nn
 
 from ..errors import SourceError, suggest
+from .huggingface import build_transformers
 from .specs import _split_spec, parse_input_shape
+from .timm import build_timm
 from .trust import check_spec
 
 __all__ = ["build_model", "IMAGENET_NORMALISATION"]
@@ -73,6 +77,36 @@ def _import_factory(head: str, attr: str, spec: str):
     return factory
 
 
+def _torchvision_kwargs(builder, kwargs: dict) -> dict:
+    """``kwargs`` with ``weights=None``, and ``weights_backbone=None`` when the builder takes a backbone."""
+    import inspect
+
+    for key in ("weights", "weights_backbone"):
+        if kwargs.get(key) is not None:
+            raise SourceError(
+                f"torchvision weights are never downloaded; drop {key!r} from --kwargs and "
+                "pass a local file with --weights FILE"
+            )
+    out = {**kwargs, "weights": None}
+    if "weights_backbone" in inspect.signature(builder).parameters:
+        out["weights_backbone"] = None
+    return out
+
+
+def _build_torchvision(attr: str, kwargs: dict):
+    builder = _torchvision_builder(attr)
+    call = _torchvision_kwargs(builder, kwargs)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            model = builder(**call)
+    except TypeError as exc:
+        shown = {k: v for k, v in kwargs.items() if k not in ("weights", "weights_backbone")}
+        raise SourceError(f"torchvision:{attr} does not accept --kwargs {shown}: {exc}") from None
+    return model, {"input_shape": _TORCHVISION_DEFAULT_SHAPES.get(attr, (3, 224, 224)),
+                   "normalisation": IMAGENET_NORMALISATION}
+
+
 def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.PathLike | None = None,
                 trust_code: bool = False):
     """Build an architecture from a spec string (random init, nothing downloaded).
@@ -82,40 +116,33 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
     whether the builder says anything about it (``factory.normalisation = None``
     declares "none"; no attribute declares nothing). ``origin`` is the file the
     spec was read from (``None``: the user typed it); such a spec passes the
-    gate of :func:`splice.sources.trust.check_spec` first.
+    gate of :func:`splice.sources.trust.check_spec` first. ``trust_code`` is
+    that gate's opt-in, and also allows a Hugging Face config that ships its
+    own code (``auto_map``).
     """
     kwargs = dict(kwargs or {})
     check_spec(spec, kwargs, origin=origin, trust_code=trust_code)
     head, attr = _split_spec(spec)
-    meta: dict[str, Any] = {"input_shape": None, "normalisation": None, "declares_normalisation": False}
     if head == "torchvision":
-        builder = _torchvision_builder(attr)
-        if "weights" in kwargs and kwargs["weights"] is not None:
-            raise SourceError(
-                "torchvision weights are never downloaded; drop 'weights' from --kwargs and "
-                "pass a local file with --weights FILE"
-            )
-        kwargs.pop("weights", None)
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", UserWarning)
-                model = builder(weights=None, **kwargs)
-        except TypeError as exc:
-            raise SourceError(f"torchvision:{attr} does not accept --kwargs {kwargs}: {exc}") from None
-        meta["input_shape"] = _TORCHVISION_DEFAULT_SHAPES.get(attr, (3, 224, 224))
-        meta["normalisation"] = IMAGENET_NORMALISATION
-        meta["declares_normalisation"] = True
-    else:
-        factory = _import_factory(head, attr, spec)
-        try:
-            model = factory(**kwargs)
-        except TypeError as exc:
-            raise SourceError(f"{spec} does not accept --kwargs {kwargs}: {exc}") from None
-        if not isinstance(model, nn.Module):
-            raise SourceError(f"{spec} returned {type(model).__name__}, not a torch.nn.Module")
-        declared = getattr(factory, "input_shape", None) or getattr(model, "input_shape", None)
-        if declared is not None:
-            meta["input_shape"] = parse_input_shape(declared)
-        meta["normalisation"] = getattr(factory, "normalisation", None)
-        meta["declares_normalisation"] = hasattr(factory, "normalisation")
+        model, meta = _build_torchvision(attr, kwargs)
+        return model, {**meta, "declares_normalisation": True}
+    if head in ("timm", "transformers"):
+        if head == "timm":
+            model, meta = build_timm(attr, kwargs)
+        else:
+            model, meta = build_transformers(attr, kwargs, trust_code=trust_code)
+        return model, {**meta, "declares_normalisation": meta["normalisation"] is not None}
+    meta: dict[str, Any] = {"input_shape": None, "normalisation": None, "declares_normalisation": False}
+    factory = _import_factory(head, attr, spec)
+    try:
+        model = factory(**kwargs)
+    except TypeError as exc:
+        raise SourceError(f"{spec} does not accept --kwargs {kwargs}: {exc}") from None
+    if not isinstance(model, nn.Module):
+        raise SourceError(f"{spec} returned {type(model).__name__}, not a torch.nn.Module")
+    declared = getattr(factory, "input_shape", None) or getattr(model, "input_shape", None)
+    if declared is not None:
+        meta["input_shape"] = parse_input_shape(declared)
+    meta["normalisation"] = getattr(factory, "normalisation", None)
+    meta["declares_normalisation"] = hasattr(factory, "normalisation")
     return model, meta

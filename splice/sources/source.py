@@ -13,7 +13,8 @@ from torch import nn
 from .._io import state_dict_sha256
 from ..errors import RandomWeightsWarning, SourceError
 from .builders import build_model
-from .specs import parse_input_shape, parse_kwargs
+from .huggingface import is_hf_folder, read_hf_folder
+from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import check_spec
 from .weights import _check_file, _torch_load, check_finite, load_weights_, read_weights
 
@@ -30,7 +31,7 @@ class Source:
     weights were loaded (see :func:`splice._io.state_dict_sha256`): two sources
     hash equal exactly when every tensor is bitwise equal.
     ``declares_normalisation`` is False when nothing (factory attribute,
-    torchvision, a folder's record) says how inputs are normalised.
+    torchvision, timm, a folder's record) says how inputs are normalised.
     """
 
     model: nn.Module
@@ -45,6 +46,12 @@ class Source:
     random_init: bool = False
     leaves: tuple[str, ...] = ()
     declares_normalisation: bool = True
+    extra_inputs: tuple[tuple[int, int, int], ...] = ()
+
+    @property
+    def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
+        """One ``(C, H, W)`` per model input: :attr:`input_shape`, then :attr:`extra_inputs`."""
+        return () if self.input_shape is None else (tuple(self.input_shape), *self.extra_inputs)
 
     @property
     def is_spliced(self) -> bool:
@@ -60,19 +67,26 @@ def load_source(
     *,
     weights: str | os.PathLike | None = None,
     kwargs: Mapping | str | None = None,
-    input_shape: str | Sequence[int] | None = None,
+    input_shape: str | Sequence | None = None,
     allow_partial: bool = False,
     trust_pickle: bool = False,
     leaves: Sequence[str] = (),
     warn_random: bool = True,
     origin: str | os.PathLike | None = None,
     trust_code: bool = False,
+    default_input_shape: Sequence[int] | None = None,
 ) -> Source:
-    """Resolve a model spec (or folder) into a :class:`Source`.
+    """Resolve a model spec (or a Hugging Face ``save_pretrained`` folder) into a :class:`Source`.
 
-    ``origin`` is the file ``spec`` (and ``kwargs``) were read from, ``None``
-    when the user typed them; a spec from a file is built only when a registry
-    lists it or with ``trust_code`` (see :mod:`splice.sources.trust`).
+    ``input_shape`` is ``(C, H, W)``, or one such shape per input of a model
+    with several (:func:`~splice.sources.parse_input_shapes`). ``origin`` is
+    the file ``spec`` (and ``kwargs``) were read from, ``None`` when the user
+    typed them; a spec from a file is built only when a registry lists it or
+    with ``trust_code`` (see :mod:`splice.sources.trust`). ``trust_code`` also
+    allows a Hugging Face config that runs code shipped with the model
+    (``auto_map``). ``default_input_shape`` is used when neither
+    ``input_shape`` nor the builder gives one. Folders written by splice are
+    opened by :func:`splice.store.open_source`.
 
     >>> src = load_source("torchvision:resnet18", kwargs={"num_classes": 10})  # doctest: +SKIP
     >>> src.input_shape
@@ -80,31 +94,22 @@ def load_source(
     """
     if isinstance(spec, Source):
         return spec
+    shapes = parse_input_shapes(input_shape) or ()
     if isinstance(spec, nn.Module):
-        shape = parse_input_shape(input_shape) or (
-            parse_input_shape(spec.input_shape) if getattr(spec, "input_shape", None) else None
-        )
-        return Source(model=spec, spec="<module>", input_shape=shape,
-                      weights_sha256=state_dict_sha256(spec.state_dict()))
-    kw = parse_kwargs(kwargs)
-    check_spec(spec, kw, origin=origin, trust_code=trust_code)
-    shape = parse_input_shape(input_shape)
+        if not shapes and getattr(spec, "input_shape", None):
+            shapes = parse_input_shapes(spec.input_shape) or ()
+        return Source(model=spec, spec="<module>", input_shape=shapes[0] if shapes else None,
+                      weights_sha256=state_dict_sha256(spec.state_dict()), extra_inputs=tuple(shapes[1:]))
+    options = {"weights": weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle, "leaves": leaves,
+               "origin": origin, "trust_code": trust_code, "default_input_shape": default_input_shape}
     path = Path(spec)
+    kw = parse_kwargs(kwargs)
+    if is_hf_folder(path):  # JSON and weights only: its transformers:Class spec passes the gate below
+        return _load_hf_folder(path, shapes, **options)
+    check_spec(spec, kw, origin=origin, trust_code=trust_code)
     if ":" not in spec or path.is_dir():
-        if path.is_dir():
-            # folders written by splice are opened one floor up, by splice.store.open_source
-            raise SourceError(f"'{spec}' is a folder, which load_source does not open; pass it to a splice command "
-                              "or open it with splice.store.open_source")
-        if _looks_like_pickled_module(spec):
-            return _load_pickled_module(path, shape, trust_pickle=trust_pickle)
-        if not path.exists() and ("/" in spec or spec.endswith(_WEIGHT_SUFFIXES)):
-            raise SourceError(f"model path '{spec}' does not exist; check the path")
-        raise SourceError(
-            f"cannot read model spec {spec!r}; use torchvision:NAME (e.g. torchvision:resnet18), "
-            "package.module:factory, path/to/file.py:factory, or a folder written by 'splice insert'"
-        )
+        return _load_path(spec, path, shapes, options)
     model, meta = build_model(spec, kw, origin=origin, trust_code=trust_code)
-    random_init = weights is None
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
@@ -116,27 +121,53 @@ def load_source(
             stacklevel=2,
         )
     model.eval()
-    final_shape = shape or meta["input_shape"]
-    if final_shape is None:
+    first = shapes[0] if shapes else (meta["input_shape"] or parse_input_shape(default_input_shape))
+    if first is None:
         raise SourceError(
             f"cannot tell the input shape of {spec}; pass --input-shape CxHxW "
             "(input_shape=...), or set factory.input_shape = (C, H, W)"
         )
-    return Source(
-        model=model,
-        spec=spec,
-        kwargs=kw,
-        input_shape=final_shape,
-        weights_path=str(weights) if weights is not None else None,
-        weights_sha256=state_dict_sha256(model.state_dict()),
-        normalisation=meta["normalisation"],
-        declares_normalisation=meta["declares_normalisation"],
-        random_init=random_init,
-        leaves=tuple(leaves),
+    return Source(model=model, spec=spec, kwargs=kw, input_shape=first,
+                  weights_path=str(weights) if weights is not None else None,
+                  weights_sha256=state_dict_sha256(model.state_dict()), normalisation=meta["normalisation"],
+                  declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
+                  leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]))
+
+
+def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
+    """A spec without ``factory``: a pickled module (folders of splice are refused)."""
+    if path.is_dir():
+        # folders written by splice are opened one floor up, by splice.store.open_source
+        raise SourceError(f"'{spec}' is a folder, which load_source does not open; pass it to a splice command "
+                          "or open it with splice.store.open_source")
+    if _looks_like_pickled_module(spec):
+        return _load_pickled_module(path, shapes, trust_pickle=options["trust_pickle"])
+    if not path.exists() and ("/" in spec or spec.endswith(_WEIGHT_SUFFIXES)):
+        raise SourceError(f"model path '{spec}' does not exist; check the path")
+    raise SourceError(
+        f"cannot read model spec {spec!r}; use torchvision:NAME (e.g. torchvision:resnet18), timm:NAME, "
+        "package.module:factory, path/to/file.py:factory, a save_pretrained folder, or a folder written by "
+        "'splice insert'"
     )
 
 
-def _load_pickled_module(path: Path, shape, *, trust_pickle: bool) -> Source:
+def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, trust_pickle: bool, leaves,
+                    origin, trust_code: bool, default_input_shape) -> Source:
+    """A ``save_pretrained`` folder: built from its config, its own weights file loaded (or ``weights``)."""
+    hf = read_hf_folder(path)
+    weights = weights if weights is not None else hf.weights
+    if weights is None:
+        raise SourceError(f"'{path}' holds a config.json but no weights (model.safetensors, pytorch_model.bin or "
+                          "a shard index); re-save the model with save_pretrained, or pass --weights FILE")
+    src = load_source(hf.spec, weights=weights, kwargs=hf.kwargs, input_shape=shapes or hf.input_shape,
+                      allow_partial=allow_partial, trust_pickle=trust_pickle, leaves=leaves, warn_random=False,
+                      origin=origin, trust_code=trust_code, default_input_shape=default_input_shape)
+    if hf.normalisation is not None:
+        src.normalisation, src.declares_normalisation = hf.normalisation, True
+    return src
+
+
+def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> Source:
     _check_file(path, "model file")
     obj = _torch_load(path, trust_pickle=trust_pickle)
     if not isinstance(obj, nn.Module):
@@ -144,10 +175,10 @@ def _load_pickled_module(path: Path, shape, *, trust_pickle: bool) -> Source:
             f"'{path}' holds a {type(obj).__name__}, not a whole model; a state dict needs an "
             "architecture: use a spec such as torchvision:NAME or file.py:factory with --weights"
         )
-    if shape is None and getattr(obj, "input_shape", None):
-        shape = parse_input_shape(obj.input_shape)
-    if shape is None:
+    if not shapes and getattr(obj, "input_shape", None):
+        shapes = parse_input_shapes(obj.input_shape) or ()
+    if not shapes:
         raise SourceError(f"cannot tell the input shape of '{path}'; pass --input-shape CxHxW")
     obj.eval()
-    return Source(model=obj, spec=str(path), input_shape=shape, weights_path=str(path),
-                  weights_sha256=state_dict_sha256(obj.state_dict()))
+    return Source(model=obj, spec=str(path), input_shape=shapes[0], weights_path=str(path),
+                  weights_sha256=state_dict_sha256(obj.state_dict()), extra_inputs=tuple(shapes[1:]))

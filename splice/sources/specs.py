@@ -4,6 +4,11 @@
 positive integers (C, H, W), given as text (``"3x224x224"``, ``"3,224,224"``)
 or as a sequence of ints. Bools and non-integral numbers are refused, never
 rounded. :mod:`splice.graph` checks its ``input_shape`` argument with it.
+A model with several inputs takes one shape per input
+(:func:`parse_input_shapes`: a list of shapes, repeated ``--input-shape``, or
+a JSON list such as ``[[3, 128, 128], [3, 128, 128]]``). Four numbers (a
+volume or a video clip, 5-D with the batch) get one line saying that those
+come later.
 """
 
 from __future__ import annotations
@@ -16,7 +21,9 @@ from typing import Any
 
 from ..errors import SourceError
 
-__all__ = ["parse_input_shape", "format_shape", "parse_kwargs"]
+__all__ = ["parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs"]
+
+_LATER = ("splice works on images (C, H, W) for now; volumes and video (5-D inputs) come in a later release")
 
 
 def _dims(value: Any) -> tuple[int, int, int] | None:
@@ -53,11 +60,60 @@ def parse_input_shape(text: str | Sequence[int] | None) -> tuple[int, int, int] 
         return None
     dims = _dims(text)
     if dims is None:
+        if _four_dims(text):
+            raise SourceError(f"input shape {text!r} has four dimensions; {_LATER}")
         raise SourceError(
             f"malformed input shape {text!r}; expected CxHxW with three positive integers, "
             "e.g. --input-shape 3x224x224"
         )
     return dims
+
+
+def _four_dims(value: Any) -> bool:
+    if isinstance(value, str):
+        parts = [p for p in re.split(r"[x×,\s]+", value.strip().lower()) if p]
+        return len(parts) == 4 and all(p.isdigit() and int(p) > 0 for p in parts)
+    try:
+        items = list(value)
+    except TypeError:
+        return False
+    return len(items) == 4 and all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in items)
+
+
+def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
+    """One ``(C, H, W)`` per model input, from one shape, a list of shapes, or a JSON list of shapes.
+
+    ``None`` (or an empty list) gives ``None``.
+
+    >>> parse_input_shapes("3x64x64")
+    ((3, 64, 64),)
+    >>> parse_input_shapes(["3x64x64", "3x64x64"])
+    ((3, 64, 64), (3, 64, 64))
+    >>> parse_input_shapes("[[1, 8, 8], [2, 8, 8]]")
+    ((1, 8, 8), (2, 8, 8))
+    """
+    if value is None:
+        return None
+    if isinstance(value, str) and value.strip().startswith("["):
+        try:
+            value = json.loads(value)
+        except (json.JSONDecodeError, RecursionError):
+            raise SourceError(f"--input-shape {value!r} is not valid JSON; give CxHxW, repeat --input-shape "
+                              "for each input, or a JSON list such as [[3, 128, 128], [3, 128, 128]]") from None
+        if not isinstance(value, list):
+            raise SourceError(f"--input-shape JSON must be a list of [C, H, W] shapes, got {type(value).__name__}")
+    if isinstance(value, str) or _dims(value) is not None or _four_dims(value):
+        return (parse_input_shape(value),)
+    try:
+        items = list(value)
+    except TypeError:
+        raise SourceError(f"input shape {value!r} is neither CxHxW nor a list of such shapes; "
+                          "e.g. --input-shape 3x224x224") from None
+    if not items:
+        return None
+    if len(items) == 1 and isinstance(items[0], str) and items[0].strip().startswith("["):
+        return parse_input_shapes(items[0])
+    return tuple(parse_input_shape(v) for v in items)
 
 
 def format_shape(shape: Sequence[int]) -> str:

@@ -9,6 +9,9 @@ of an installed library lists it (:data:`REGISTRY_KINDS`):
 
 - ``torchvision:NAME`` for a name ``torchvision.models.list_models()`` gives;
 - ``splice.models:NAME`` for a name :mod:`splice.models` exports;
+- ``timm:NAME`` for a name timm's registry holds (timm installed);
+- ``transformers:Class`` for a model class the installed transformers
+  exports, with a config that ships no code (no ``auto_map``);
 - ``package.module:factory`` when an installed distribution registers exactly
   that factory under the ``splice.models`` entry-point group (read from the
   package metadata; nothing is imported to look it up).
@@ -32,6 +35,8 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
 from ..errors import UntrustedCodeError
+from .huggingface import transformers_lists
+from .timm import timm_lists
 
 __all__ = [
     "TRUST_ENV",
@@ -87,10 +92,12 @@ def _entry_point_lists(head: str, name: str, kwargs: Mapping) -> bool:  # noqa: 
     return any(f"{ep.module}:{ep.attr}" == wanted for ep in entry_points(group=ENTRY_POINT_GROUP))
 
 
-# The extension point: library sources append a RegistryKind here (timm:NAME, Hugging Face configs, ...).
+# The extension point: a library source appends a RegistryKind here (or calls register_kind).
 REGISTRY_KINDS: list[RegistryKind] = [
     RegistryKind("torchvision:NAME", _torchvision_lists),
     RegistryKind("splice.models:NAME", _splice_models_lists),
+    RegistryKind("timm:NAME", timm_lists),
+    RegistryKind("transformers:Class (config without auto_map)", transformers_lists),
     RegistryKind(f"a '{ENTRY_POINT_GROUP}' entry point", _entry_point_lists),
 ]
 

@@ -160,9 +160,29 @@ def read_weights(path: str | os.PathLike, *, trust_pickle: bool = False) -> dict
     """
     path = Path(path)
     _check_file(path)
+    if path.name.endswith(".index.json"):
+        return _read_shards(path, trust_pickle=trust_pickle)
     if path.suffix == ".safetensors":
         return read_safetensors(path)
     return _unnest(_torch_load(path, trust_pickle=trust_pickle), path)
+
+
+def _read_shards(index: Path, *, trust_pickle: bool) -> dict[str, torch.Tensor]:
+    """The state dict of a sharded checkpoint: the files its ``*.index.json`` names, beside it."""
+    import json
+
+    try:
+        weight_map = json.loads(index.read_text(encoding="utf-8")).get("weight_map")
+    except (json.JSONDecodeError, UnicodeDecodeError, AttributeError, RecursionError):
+        weight_map = None
+    files = sorted(set(weight_map.values())) if isinstance(weight_map, dict) else []
+    if not files or not all(isinstance(f, str) and Path(f).name == f and not f.startswith(".") for f in files):
+        raise WeightsError(f"'{index}' is not a shard index (a 'weight_map' of key -> file name beside it); "
+                           "re-save the model or pass one weights file")
+    state: dict[str, torch.Tensor] = {}
+    for name in files:
+        state.update(read_weights(index.parent / name, trust_pickle=trust_pickle))
+    return state
 
 
 def _strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str]) -> dict[str, torch.Tensor]:

@@ -20,12 +20,21 @@ from .report import CheckResult
 __all__: list[str] = []
 
 
-def _gradients_row(warps, grads: dict[str, dict], error: str | None) -> CheckResult:
-    numbers: dict[str, Any] = {"warps": grads}
+def _gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: float | None = None) -> CheckResult:
+    numbers: dict[str, Any] = {"warps": grads, "input_grad": input_grad}
     if error is not None:
         return CheckResult("gradients", False, numbers, f"the backward pass failed ({error})", "backward failed")
     if not warps:
         return CheckResult("gradients", True, numbers, "the model has no warps", "no warps")
+    if input_grad == 0.0:
+        # nothing reaches the input either: the outputs do not depend on it (a zero-initialised head, say),
+        # so no warp can get a gradient, however well it is spliced
+        return CheckResult(
+            "gradients", True, numbers,
+            "the model's outputs do not depend on its input at all (zero gradient with respect to the input, as "
+            "with a zero-initialised final layer), so the warps get none either; train or load the base first",
+            "output independent of the input",
+            warning="the outputs do not depend on the input: the warps cannot be checked for gradients")
     problems = []
     for name, g in grads.items():
         if not g["finite"]:
@@ -47,21 +56,28 @@ def _gradients_row(warps, grads: dict[str, dict], error: str | None) -> CheckRes
                        f"every warp's final layer gets a finite, non-zero gradient{note}",
                        f"|grad| final bias: {summary}")
 
-def _gradients(out, head_params: dict[str, dict[str, list]], seed: int) -> tuple[dict, str | None]:
-    """Norms of d(random projection of the outputs)/d(head parameters), per warp."""
+def _gradients(out, head_params: dict[str, dict[str, list]], seed: int,
+               inputs: tuple = ()) -> tuple[dict, str | None, float | None]:
+    """Norms of d(random projection of the outputs)/d(head parameters), per warp, and the norm of the
+    gradient with respect to the ``inputs`` that require one (``None`` without such inputs)."""
     gen = torch.Generator().manual_seed(int(seed) + 1)
     flat = [t for t in flatten_outputs(out).values() if t.is_floating_point() and t.requires_grad]
     grads: dict[str, dict] = {}
+    inputs = tuple(x for x in inputs if isinstance(x, torch.Tensor) and x.requires_grad)
     if not flat:
-        return grads, "no output depends on the parameters" if head_params else None
+        return grads, ("no output depends on the parameters" if head_params else None), (0.0 if inputs else None)
     loss = sum((t * torch.randn(t.shape, generator=gen, dtype=torch.float32).to(t.dtype)).sum() for t in flat)
     order = [(name, part, p) for name, parts in head_params.items() for part, ps in parts.items() for p in ps]
-    if not order:
-        return grads, None
+    if not order and not inputs:
+        return grads, None, None
     try:
-        got = torch.autograd.grad(loss, [p for _, _, p in order], allow_unused=True)
+        got = torch.autograd.grad(loss, [p for _, _, p in order] + list(inputs), allow_unused=True)
     except RuntimeError as exc:
-        return grads, _error_text(exc)
+        return grads, _error_text(exc), None
+    in_grads = got[len(order):]
+    got = got[:len(order)]
+    input_grad = (math.hypot(*(float(g.detach().double().norm()) if g is not None else 0.0 for g in in_grads))
+                  if inputs else None)
     for (name, part, p), g in zip(order, got):
         rec = grads.setdefault(name, {"final_weight": 0.0, "final_bias": 0.0, "upstream": 0.0, "finite": True})
         if g is None:
@@ -72,7 +88,7 @@ def _gradients(out, head_params: dict[str, dict[str, list]], seed: int) -> tuple
         rec[part] = math.hypot(rec[part], norm) if part == "upstream" else norm
     for name in head_params:
         grads.setdefault(name, {"final_weight": 0.0, "final_bias": 0.0, "upstream": 0.0, "finite": True})
-    return grads, None
+    return grads, None, input_grad
 
 def _head_params(warps) -> dict[str, dict[str, list]]:
     out: dict[str, dict[str, list]] = {}
@@ -84,10 +100,11 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
                      "upstream": [p for p in warp.parameters() if id(p) not in ids]}
     return out
 
-def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: str,
+def _onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int, exporter: str,
               n_outputs: int | None, reference=None) -> CheckResult:
-    twin = model if example.dtype == torch.float32 else copy.deepcopy(model).float()
-    x = example.float()
+    """``example`` holds one tensor per model input."""
+    twin = model if example[0].dtype == torch.float32 else copy.deepcopy(model).float()
+    x = tuple(t.float() for t in example)
     if twin is not model:
         reference = None  # the probe outputs were computed in another dtype
     fed = exporter == "torchscript"
@@ -122,7 +139,7 @@ def _onnx_row(model: nn.Module, example: torch.Tensor, *, opset: int, exporter: 
                **{k: result[k] for k in ("export_seconds", "check_seconds", "bytes", "max_abs", "max_rel",
                                          "max_abs_perturbed", "max_rel_perturbed", "tolerance", "perturbed_by",
                                          "batch_sizes")}}
-    if example.dtype != torch.float32:
+    if example[0].dtype != torch.float32:
         numbers["note"] = "run in float32 (onnxruntime's GridSample is float32)"
     summary = (f"abs {_fmt(result['max_abs'])}, perturbed {_fmt(result['max_abs_perturbed'])}, "
                f"export {seconds:.2f}s")

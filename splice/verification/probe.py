@@ -18,7 +18,7 @@ from ..errors import DataError, SpliceError, first_line
 from ..surgery import warps_of
 from .report import CheckResult
 
-__all__ = ["DTYPES", "probe_batch"]
+__all__ = ["DTYPES", "probe_batch", "probe_inputs"]
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
 
@@ -27,6 +27,13 @@ def probe_batch(input_shape: Sequence[int], batch: int = 1, *, seed: int = 0, dt
     """The seeded N(0,1) probe ``(batch, C, H, W)``; the same seed gives the same tensor on any machine."""
     gen = torch.Generator().manual_seed(int(seed))
     return torch.randn((int(batch), *[int(d) for d in input_shape]), generator=gen, dtype=torch.float32).to(dtype)
+
+def probe_inputs(input_shapes: Sequence[Sequence[int]], batch: int = 1, *, seed: int = 0,
+                 dtype=torch.float32) -> tuple[torch.Tensor, ...]:
+    """One seeded N(0,1) probe per model input, drawn in order from one generator (one input: :func:`probe_batch`)."""
+    gen = torch.Generator().manual_seed(int(seed))
+    return tuple(torch.randn((int(batch), *[int(d) for d in shape]), generator=gen, dtype=torch.float32).to(dtype)
+                 for shape in input_shapes)
 
 def _resolve_dtype(dtype) -> torch.dtype:
     if isinstance(dtype, torch.dtype) and dtype in DTYPES.values():
@@ -181,10 +188,13 @@ def _only_copy(model: nn.Module, keep: str) -> nn.Module:
                 warp.reset_parameters()
     return work
 
-def _run(model: nn.Module, x: torch.Tensor, what: str):
+def _run(model: nn.Module, x, what: str):
+    """``model(*x)`` without gradients; ``x`` is a tensor or one tensor per model input."""
+    xs = (x,) if isinstance(x, torch.Tensor) else tuple(x)
     try:
         with torch.no_grad():
-            return model(x)
+            return model(*xs)
     except Exception as exc:
-        raise SpliceError(f"the {what} fails on a probe batch of shape {tuple(x.shape)} ({_error_text(exc)}); "
+        shapes = ", ".join(str(tuple(t.shape)) for t in xs)
+        raise SpliceError(f"the {what} fails on a probe batch of shape {shapes} ({_error_text(exc)}); "
                           "check the input shape recorded in splice.json") from exc

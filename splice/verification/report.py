@@ -26,10 +26,14 @@ class CheckResult:
     numbers: dict = field(default_factory=dict)
     detail: str = ""
     summary: str = ""
+    warning: str = ""  # a passed check the user should still know about (shown as WARN)
 
     def to_json(self) -> dict:
-        return {"check": self.check, "passed": bool(self.passed), "numbers": json_safe(self.numbers),
-                "detail": self.detail, "summary": self.summary}
+        out = {"check": self.check, "passed": bool(self.passed), "numbers": json_safe(self.numbers),
+               "detail": self.detail, "summary": self.summary}
+        if self.warning:
+            out["warning"] = self.warning
+        return out
 
 @dataclass
 class VerifyReport:
@@ -81,17 +85,22 @@ def render_verify(report: VerifyReport, console) -> None:
     table.add_column("numbers")
     table.add_column("result", justify="center")
     for row in report.checks:
-        table.add_row(row.check, row.summary or row.detail,
-                      "[bold green]PASS[/]" if row.passed else "[bold red]FAIL[/]")
+        result = ("[bold red]FAIL[/]" if not row.passed else
+                  "[bold yellow]WARN[/]" if row.warning else "[bold green]PASS[/]")
+        table.add_row(row.check, row.summary or row.detail, result)
     console.print(table)
     for row in report.checks:
         if not row.passed:
             console.print(f"[bold red]{row.check}[/]: {row.detail}", markup=True, highlight=False)
+        elif row.warning:
+            console.print(f"[bold yellow]{row.check}[/]: {row.detail}", markup=True, highlight=False)
     if report.meta.get("not_run"):
         console.print(f"not run: {report.meta['not_run']}")
     n = len(report.checks)
     if report.passed:
-        console.print(f"[bold green]PASS[/]: all {n} checks passed", markup=True)
+        warned = [row.check for row in report.checks if row.warning]
+        note = f" ({len(warned)} with a warning: {', '.join(warned)})" if warned else ""
+        console.print(f"[bold green]PASS[/]: all {n} checks passed{note}", markup=True)
     else:
         console.print(f"[bold red]FAIL[/]: {len(report.failed)} of {n} checks failed ({', '.join(report.failed)})",
                       markup=True)

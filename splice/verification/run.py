@@ -35,7 +35,7 @@ from .probe import (
     _run,
     _Snapshot,
     _WarpProbe,
-    probe_batch,
+    probe_inputs,
 )
 from .provenance import _provenance_row
 from .report import CheckResult, VerifyReport, versions
@@ -77,6 +77,13 @@ def _info_of(spliced: nn.Module, info: SpliceInfo | Mapping | None) -> SpliceInf
     return info
 
 
+def _images_for(info: SpliceInfo, images) -> tuple[torch.Tensor, list[str]]:
+    if info.extra_inputs:
+        raise SpliceError(f"--images probes models with one input; this one takes {len(info.input_shapes)} "
+                          "(the seeded probe covers every input): drop --images")
+    return _read_images(images, info.input_shape, info.normalisation)
+
+
 def _meta(*, folder, opts: _Options, info: SpliceInfo) -> dict:
     return {
         "folder": str(folder) if folder is not None else None,
@@ -94,7 +101,7 @@ def _meta(*, folder, opts: _Options, info: SpliceInfo) -> dict:
 class _Forward:
     """What the forward rows leave for the later ones."""
 
-    x: torch.Tensor | None = None  # the probe batch
+    x: tuple[torch.Tensor, ...] = ()  # the probe batch, one tensor per model input
     out: object = None  # the spliced model's output on the probe (with its autograd graph)
     n_outputs: int | None = None
     first_sample: object = None  # the stored model's outputs for the first probe sample
@@ -115,7 +122,7 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     warps = warps_of(spliced)
     identity_model = _reset_copy(spliced) if tuned else spliced
     with torch.no_grad():
-        id_out = identity_model(x) if tuned else out
+        id_out = identity_model(*x) if tuned else out
     rows = [_outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
                          f"seeded N(0,1) probe of {opts.batch}")]
     if images is not None:
@@ -126,7 +133,7 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     if tuned and len(moved) > 1:
         for name in moved:
             with torch.no_grad():
-                per_warp[name] = compare_outputs(detached(id_out), _only_copy(spliced, name)(x), tol=math.inf)
+                per_warp[name] = compare_outputs(detached(id_out), _only_copy(spliced, name)(*x), tol=math.inf)
     rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
     return rows
 
@@ -136,15 +143,15 @@ def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tu
     """Probe both models; append ``shapes``, ``outputs``, ``images`` and ``warps``."""
     warps = warps_of(spliced)
     points = {p.name: tuple(p.shape) for p in info.points if p.shape}
-    x = probe_batch(info.input_shape, opts.batch, seed=opts.seed, dtype=opts.dtype)
+    x = probe_inputs(info.input_shapes, opts.batch, seed=opts.seed, dtype=opts.dtype)
     ref = _run(base, x, "base model")
     lap("base forward")
     probe = _WarpProbe(warps)
     error = None
-    result = _Forward(x)
+    result = _Forward(tuple(t.detach().requires_grad_(t.is_floating_point()) for t in x))
     try:
         with torch.enable_grad():
-            result.out = spliced(x)
+            result.out = spliced(*result.x)
     except Exception as exc:
         error = _error_text(exc)
     finally:
@@ -211,15 +218,16 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         lap("outputs")
         rows.append(provenance)
         if fwd.out is not None:
-            grads, gerr = _gradients(fwd.out, head_params, opts.seed)
-            rows.append(_gradients_row(warps, grads, gerr))
+            grads, gerr, input_grad = _gradients(fwd.out, head_params, opts.seed, fwd.x)
+            rows.append(_gradients_row(warps, grads, gerr, input_grad))
             lap("gradients")
             fwd.out = None  # free the autograd graph before exporting
         else:
             rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
                                     "not run"))
         if opts.onnx:
-            rows.append(_onnx_row(spliced, fwd.x[:1], opset=opts.opset, exporter=opts.exporter,
+            example = tuple(t[:1].detach() for t in fwd.x)
+            rows.append(_onnx_row(spliced, example, opset=opts.opset, exporter=opts.exporter,
                                   n_outputs=fwd.n_outputs, reference=fwd.first_sample))
             lap("onnx")
     finally:
@@ -251,7 +259,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
                             trust_code=trust_code)
     files = None
     if images is not None and not isinstance(images, torch.Tensor):
-        images, files = _read_images(images, info.input_shape, info.normalisation)
+        images, files = _images_for(info, images)
     meta = _meta(folder=info.folder, opts=opts, info=info)
     meta["hashes"]["source_sha256"] = info.source_weights_sha256
     return _run_checks(base, spliced, info, opts, images=images, image_files=files, recorded_base=None, rows=[],
@@ -283,7 +291,7 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     _check_probe_fits(info, opts)
     files = images_t = None
     if images is not None:
-        images_t, files = _read_images(images, info.input_shape, info.normalisation)
+        images_t, files = _images_for(info, images)
     meta = _meta(folder=folder, opts=opts, info=info)
     meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME),
                            "weights_sha256_recorded": opened.recorded_sha256,

@@ -1,0 +1,218 @@
+"""The export view: points from a ``torch.export`` graph, when torch.fx cannot trace the model.
+
+``torch.export`` (non-strict) runs the forward once on fake tensors, so Python
+control flow is specialised on the static input shapes instead of failing.
+Every node carries ``nn_module_stack``: which module calls it sits in (the
+n-th call of a module is keyed ``...@n``). A warp can go where a module call
+hands exactly one tensor back to its caller: a forward hook on that module
+(:mod:`splice.hooks`) replaces the tensor at run time. Such a node is a point,
+named as fx names a module call (``layer1_0_relu``, ``_1``, ``_2`` for the
+second and third call); the input is ``input``. Cut analysis is the same
+dominator analysis as for fx graphs (:mod:`splice.graph.cuts`), on the
+exported data flow.
+
+Forward hooks record what every module call really returned while the
+program is exported (the same, single run), so a module that returns a tuple
+or a list never becomes a point, however the graph looks.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+from torch import nn
+
+from ..copies import private_buffers
+from .cuts import _cut_analysis
+from .entries import _NCHW, _Entry
+
+__all__: list[str] = []
+
+_CONV_OPS = frozenset({"conv2d", "convolution", "_convolution", "conv_transpose2d", "cudnn_convolution"})
+
+
+@dataclass(frozen=True)
+class _Site:
+    """The ``call``-th call (from 0) of module ``module`` (qualname) in one forward of the scope."""
+
+    module: str
+    call: int
+
+
+class _Recorder:
+    """Forward hooks that note, per module call, the shape of a 4-D tensor output (``None`` for anything else)."""
+
+    def __init__(self, root: nn.Module):
+        self.outputs: dict[tuple[str, int], tuple[int, ...] | None] = {}
+        self.calls: dict[int, int] = {}
+        self.names = {id(m): q for q, m in root.named_modules() if q}
+        root.register_forward_pre_hook(self._reset)
+        for m in root.modules():
+            if m is not root:
+                m.register_forward_hook(self._record)
+
+    def _reset(self, module, args):
+        self.outputs.clear()
+        self.calls.clear()
+
+    def _record(self, module, args, output):
+        k = self.calls.get(id(module), 0)
+        self.calls[id(module)] = k + 1
+        shape = tuple(output.shape) if isinstance(output, torch.Tensor) and output.dim() == 4 else None
+        self.outputs[(self.names[id(module)], k)] = shape
+
+
+def _op(node) -> str:
+    target = node.target
+    name = getattr(target, "_opname", None) or getattr(target, "__name__", str(target))
+    return name.split(".")[0]
+
+
+def _calls(node) -> list[tuple[str, int]]:
+    out = []
+    for key, value in (node.meta.get("nn_module_stack") or {}).items():
+        call = int(key.rsplit("@", 1)[1]) if "@" in key else 0
+        out.append((value[0], call))
+    return out
+
+
+def _sites(nodes: list, recorded: Mapping) -> dict[Any, _Site]:
+    """node -> the innermost module call that hands back exactly that node (and returned a 4-D tensor of its shape)."""
+    bodies: dict[tuple[str, int], list] = {}
+    for n in nodes:
+        for call in _calls(n):
+            bodies.setdefault(call, []).append(n)
+    found: dict[Any, _Site] = {}
+    depth: dict[Any, int] = {}
+    for (qualname, call), body in bodies.items():
+        if not qualname:
+            continue  # the root itself: its outputs are the model outputs
+        inside = set(body)
+        leaving = [n for n in body if any(u not in inside for u in n.users)]
+        if len(leaving) != 1:
+            continue
+        n = leaving[0]
+        val = n.meta.get("val")
+        shape = recorded.get((qualname, call))
+        if shape is None or not isinstance(val, torch.Tensor) or tuple(val.shape) != shape:
+            continue
+        d = qualname.count(".") + 1
+        if d > depth.get(n, -1):
+            found[n], depth[n] = _Site(qualname, call), d
+    return found
+
+
+def _names(nodes: list, user_inputs: set[str], sites: Mapping) -> dict[Any, str]:
+    names: dict[Any, str] = {}
+    taken: set[str] = set()
+    first = True
+    for n in nodes:
+        if n.op == "placeholder":
+            if n.name in user_inputs:
+                names[n] = "input" if first else n.name
+                taken.add(names[n])
+                first = False
+            continue
+        site = sites.get(n)
+        if site is None:
+            continue
+        stem = site.module.replace(".", "_")
+        name = stem if site.call == 0 else f"{stem}_{site.call}"
+        j = 1
+        while name in taken:  # two qualnames can meet ('a_1' and the second call of 'a')
+            name, j = f"{stem}_{site.call}_{j}", j + 1
+        taken.add(name)
+        names[n] = name
+    return names
+
+
+def _node_name(n) -> str:
+    """A readable name for a node that is not a point (a join): its owner module and op, ``layer1_0_add``."""
+    calls = _calls(n)
+    owner = calls[-1][0].replace(".", "_") if calls and calls[-1][0] else ""
+    return f"{owner}_{_op(n)}" if owner else _op(n)
+
+
+def _permutation(n) -> tuple[int, ...] | None:
+    op = _op(n)
+    args = n.args[1:]
+    if op == "permute" and args and isinstance(args[0], (list, tuple)) and len(args[0]) == 4:
+        return tuple(int(d) % 4 for d in args[0])
+    if op in ("transpose", "swapaxes", "swapdims") and len(args) == 2 and all(isinstance(d, int) for d in args):
+        perm = list(_NCHW)
+        a, b = args[0] % 4, args[1] % 4
+        perm[a], perm[b] = perm[b], perm[a]
+        return tuple(perm)
+    return None
+
+
+def _layouts(nodes: list, values: Mapping, is_conv: Mapping) -> dict:
+    """Which input axis each axis of a 4-D node holds (``_NCHW`` unless a permute made it channels-last)."""
+    layout: dict = {}
+    for n in nodes:
+        v = values.get(n)
+        if not (isinstance(v, torch.Tensor) and v.dim() == 4):
+            continue
+        source = next((p for p in n.all_input_nodes if p in layout), None)
+        base = layout[source] if source is not None and not is_conv[n] else _NCHW
+        perm = _permutation(n) if source is not None else None
+        layout[n] = tuple(base[d] for d in perm) if perm is not None else base
+    return layout
+
+
+def _export(model: nn.Module, args: tuple, kwargs: dict):
+    """(program, recorded module outputs) of an eval-mode twin of ``model``; raises what torch.export raises."""
+    twin = private_buffers(model)
+    for m in twin.modules():
+        m.__dict__["training"] = False
+    recorder = _Recorder(twin)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # torch.export's own notes on specialised shapes
+        program = torch.export.export(twin, args, kwargs, strict=False)
+    return program, recorder.outputs
+
+
+def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:
+    up: dict = {}  # a conv upstream, or the node itself
+    for n in nodes:
+        up[n] = is_conv[n] or any(up[p] for p in n.all_input_nodes)
+    down: dict = {}  # a conv strictly downstream
+    for n in reversed(nodes):
+        down[n] = any(is_conv[u] or down[u] for u in n.users)
+    return up, down
+
+
+def _export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[_Entry]:
+    """Entries for the points of ``model`` a forward hook can reach, from its exported program."""
+    program, recorded = _export(model, args, kwargs)
+    graph = program.graph
+    nodes = list(graph.nodes)
+    user_inputs = set(program.graph_signature.user_inputs)
+    # parameters and buffers are placeholders too: only the user's inputs start the data flow
+    values = {n: n.meta.get("val") for n in nodes if n.op != "placeholder" or n.name in user_inputs}
+    sites = _sites(nodes, recorded)
+    names = _names(nodes, user_inputs, sites)
+    is_conv = {n: n.op == "call_function" and _op(n) in _CONV_OPS for n in nodes}
+    up, down = _flows(nodes, is_conv)
+    cuts, joins = _cut_analysis(graph, values)
+    layouts = _layouts(nodes, values, is_conv)
+    entries = []
+    for n in nodes:
+        if n not in names or layouts.get(n) != _NCHW:
+            continue
+        is_input = names[n] == "input"
+        if not is_input and n not in sites:
+            continue  # another input of the model: a hook cannot reach it
+        join = joins.get(n)
+        site = None if is_input else sites[n]
+        entries.append(_Entry(
+            name=names[n], module="" if is_input else site.module, kind="input" if is_input else "activation",
+            shape=tuple(int(s) for s in values[n].shape[1:]), cut=n in cuts,
+            join=None if join is None else names.get(join) or _node_name(join),
+            between_convs=up[n] and down[n], site=None if site is None else (site.module, site.call),
+        ))
+    return entries

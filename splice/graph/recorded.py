@@ -1,0 +1,262 @@
+"""The recorded view: the data flow of one meta-device forward, for models torch.fx cannot trace.
+
+The model runs once on the meta device (no memory, no arithmetic), as Python
+runs it: control flow takes the branch the static shapes decide. A
+:class:`torch.overrides.TorchFunctionMode` records every torch operation that
+reads a tensor computed from the inputs, and forward hooks record each module
+call: when it started and ended, and which tensor it returned. That is a
+data-flow graph, on which the cut analysis of :mod:`splice.graph.cuts` runs
+unchanged.
+
+A point is a tensor that one module call creates and hands back, read by
+nothing but the code after the call (so a forward hook that replaces the
+call's output replaces the tensor for every consumer): named like fx names a
+module call (``layer1_0_relu``; ``_1``, ``_2`` for the second and third call),
+innermost call first. Leaf modules (``--leaf``) run for real, alone, on zeros
+and count as one operation. A forward that needs real values (``.item()``,
+value-dependent branches) cannot run on the meta device: the caller then
+tries torch.export.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import torch
+import torch.fx as fx
+from torch import nn
+from torch.overrides import TorchFunctionMode
+from torch.utils._pytree import tree_leaves
+
+from .cuts import _cut_analysis
+from .entries import _NCHW, _Entry
+from .leaves import _is_torch_builtin, _LeafRule
+from .shapes import _META, _meta_module, _run_for_real, _to_meta
+
+__all__: list[str] = []
+
+_CONVS = frozenset({"conv2d", "conv_transpose2d", "convolution", "_convolution"})
+
+
+class _Op:
+    """One recorded operation: its name, the recorded operations it read, when it ran and in which module."""
+
+    __slots__ = ("index", "name", "inputs", "value", "owner", "layout", "users")
+
+    def __init__(self, index: int, name: str, inputs: list[int], value: Any, owner: str, layout):
+        self.index, self.name, self.inputs, self.value, self.owner = index, name, inputs, value, owner
+        self.layout = layout
+        self.users: list[int] = []
+
+
+def _name(func) -> str:
+    """``add``, ``add_`` (in place), ``getitem``, ``setitem``: the function's name without dunder marks."""
+    name = getattr(func, "__name__", None) or str(func)
+    return name[2:-2] if name.startswith("__") and name.endswith("__") and len(name) > 4 else name
+
+
+def _permutation(name: str, args: tuple) -> tuple[int, ...] | None:
+    """Output dim j = input dim perm[j] for a 4-D permute or transpose, else None."""
+    rest = args[1:]
+    if name == "permute":
+        dims = rest[0] if len(rest) == 1 and isinstance(rest[0], (list, tuple)) else rest
+        if len(dims) == 4 and all(isinstance(d, int) for d in dims):
+            return tuple(d % 4 for d in dims)
+    elif name in ("transpose", "swapaxes", "swapdims") and len(rest) == 2 and all(isinstance(d, int) for d in rest):
+        perm = list(_NCHW)
+        a, b = rest[0] % 4, rest[1] % 4
+        perm[a], perm[b] = perm[b], perm[a]
+        return tuple(perm)
+    return None
+
+
+class _Recording(TorchFunctionMode):
+    """Records the operations on tensors computed from the inputs, and the module calls around them."""
+
+    def __init__(self):
+        super().__init__()
+        self.ops: list[_Op] = []
+        self.producer: dict[int, int] = {}  # id(tensor) -> index of the op that last wrote it
+        self.keep: list[torch.Tensor] = []  # every recorded tensor stays alive, so no id is reused
+        self.stack: list[str] = []
+        # (qualname, call, start, end, the op that wrote the output when the call returned, or None)
+        self.calls: list[tuple[str, int, int, int, int | None]] = []
+
+    def source(self, t: torch.Tensor) -> int:
+        return self._add("input", [], t, _NCHW if t.dim() == 4 else None)
+
+    def _add(self, name: str, inputs: list[int], value, layout) -> int:
+        op = _Op(len(self.ops), name, inputs, value, self.stack[-1] if self.stack else "", layout)
+        self.ops.append(op)
+        for i in inputs:
+            self.ops[i].users.append(op.index)
+        if isinstance(value, torch.Tensor):
+            self.producer[id(value)] = op.index
+            self.keep.append(value)
+        return op.index
+
+    def record(self, name: str, args: tuple, kwargs: dict, out) -> None:
+        read = [self.producer[id(t)] for t in tree_leaves((args, kwargs))
+                if isinstance(t, torch.Tensor) and id(t) in self.producer]
+        if not read:
+            return  # constants and parameters only: not data flow from the inputs
+        inputs = list(dict.fromkeys(read))
+        written = [t for t in tree_leaves(out) if isinstance(t, torch.Tensor)]
+        if not written and name == "setitem" and args and isinstance(args[0], torch.Tensor):
+            written = [args[0]]  # x[...] = y writes into x: its new value reads y
+        for t in written:
+            self._add(name, inputs, t, self._layout(name, args, inputs, t))
+
+    def _layout(self, name: str, args: tuple, inputs: list[int], t: torch.Tensor):
+        if t.dim() != 4:
+            return None
+        if name in _CONVS:
+            return _NCHW
+        base = next((self.ops[i].layout for i in inputs if self.ops[i].layout is not None), _NCHW)
+        perm = _permutation(name, args)
+        return tuple(base[d] for d in perm) if perm is not None else base
+
+    def __torch_function__(self, func, types, args=(), kwargs=None):
+        kwargs = kwargs or {}
+        out = func(*args, **kwargs)
+        self.record(_name(func), args, kwargs, out)
+        return out
+
+
+def _hook_calls(meta: nn.Module, rec: _Recording) -> list:
+    names = {m: q for q, m in meta.named_modules() if q}
+    counts: dict[int, int] = {}
+    starts: list[int] = []
+
+    def before(mod, args):
+        rec.stack.append(names[mod])
+        starts.append(len(rec.ops))
+
+    def after(mod, args, out):
+        rec.stack.pop()
+        k = counts.get(id(mod), 0)
+        counts[id(mod)] = k + 1
+        # the op that wrote the returned tensor now: an in-place op after the call writes the same tensor again
+        wrote = rec.producer.get(id(out)) if isinstance(out, torch.Tensor) and out.dim() == 4 else None
+        rec.calls.append((names[mod], k, starts.pop(), len(rec.ops), wrote))
+
+    return [h for m in names for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after))]
+
+
+def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule, rec: _Recording) -> None:
+    """Leaves run their real twin on zeros and are recorded as one operation (``--leaf`` reaches this pass)."""
+    real_modules = dict(real.named_modules())
+    for q, m in meta.named_modules():
+        if q and rule(type(m)) and not _is_torch_builtin(type(m)):
+            m.forward = _leaf_forward(real_modules[q], type(m).__name__, rec)
+
+
+def _leaf_forward(original: nn.Module, name: str, rec: _Recording):
+    def forward(*args, **kwargs):
+        out = _run_for_real(original, args, kwargs)  # reads zeros, not recorded tensors: nothing is recorded
+        rec.record(name, args, kwargs, out)
+        return out
+    return forward
+
+
+def _sites(rec: _Recording) -> dict[int, tuple[str, int]]:
+    """op index -> (qualname, call) of the innermost module call that creates it and hands it back alone."""
+    found: dict[int, tuple[str, int]] = {}
+    span: dict[int, int] = {}
+    for qualname, k, start, end, i in rec.calls:
+        if i is None:
+            continue
+        op = rec.ops[i]
+        if not (start <= i < end) or any(u < end for u in op.users):
+            continue  # made before the call, or also read inside it: a hook would not replace it everywhere
+        if end - start < span.get(i, 1 << 62):
+            found[i], span[i] = (qualname, k), end - start
+    return found
+
+
+def _graph(rec: _Recording, outputs: list[int]) -> tuple[fx.Graph, dict, dict]:
+    """The recorded data flow as an fx graph (for the cut analysis), with each node's meta value."""
+    graph = fx.Graph()
+    nodes: dict[int, fx.Node] = {}
+    values: dict[fx.Node, Any] = {}
+    for op in rec.ops:
+        args = tuple(nodes[i] for i in op.inputs)
+        node = graph.placeholder(f"in{op.index}") if op.name == "input" else graph.call_function(_step, args)
+        nodes[op.index] = node
+        values[node] = op.value
+    graph.output(tuple(nodes[i] for i in outputs))
+    return graph, nodes, values
+
+
+def _step(*args):  # the target of every recorded operation in the analysis graph (never called)
+    raise NotImplementedError
+
+
+def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> tuple[_Recording, Any]:
+    meta = _meta_module(model)
+    rec = _Recording()
+    _opaque_leaves(meta, model, rule, rec)
+    handles = _hook_calls(meta, rec)
+    args = tuple(_to_meta(a) for a in args)
+    kwargs = {k: _to_meta(v) for k, v in kwargs.items()}
+    for t in args:
+        if isinstance(t, torch.Tensor):
+            rec.source(t)
+    try:
+        with torch.no_grad(), torch.device(_META), rec:
+            out = meta(*args, **kwargs)
+    finally:
+        for h in handles:
+            h.remove()
+    return rec, out
+
+
+def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> list[_Entry]:
+    """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails)."""
+    rec, out = _record(model, args, kwargs, rule)
+    outputs = [rec.producer[id(t)] for t in tree_leaves(out) if isinstance(t, torch.Tensor) and id(t) in rec.producer]
+    graph, nodes, values = _graph(rec, list(dict.fromkeys(outputs)))
+    cuts, joins = _cut_analysis(graph, values)
+    sites = _sites(rec)
+    conv_up = [False] * len(rec.ops)
+    for op in rec.ops:
+        conv_up[op.index] = op.name in _CONVS or any(conv_up[i] for i in op.inputs)
+    conv_down = [False] * len(rec.ops)
+    for op in reversed(rec.ops):
+        conv_down[op.index] = any(rec.ops[u].name in _CONVS or conv_down[u] for u in op.users)
+    index = {node: i for i, node in nodes.items()}
+    names = _names(rec, sites)
+    entries = []
+    for op in rec.ops:
+        is_input = op.index == 0
+        if not (is_input or op.index in sites) or op.layout != _NCHW:
+            continue
+        join = joins.get(nodes[op.index])
+        join_name = None if join is None else names.get(index[join]) or _owner_name(rec.ops[index[join]])
+        entries.append(_Entry(
+            name="input" if is_input else names[op.index], module="" if is_input else sites[op.index][0],
+            kind="input" if is_input else "activation", shape=tuple(int(s) for s in op.value.shape[1:]),
+            cut=nodes[op.index] in cuts, join=join_name, between_convs=conv_up[op.index] and conv_down[op.index],
+            site=None if is_input else sites[op.index],
+        ))
+    return entries
+
+
+def _owner_name(op: _Op) -> str:
+    owner = op.owner.replace(".", "_")
+    return f"{owner}_{op.name}" if owner else op.name
+
+
+def _names(rec: _Recording, sites: dict[int, tuple[str, int]]) -> dict[int, str]:
+    names: dict[int, str] = {}
+    taken = {"input"}
+    for i in sorted(sites):
+        qualname, k = sites[i]
+        stem = qualname.replace(".", "_")
+        name = stem if k == 0 else f"{stem}_{k}"
+        j = 1
+        while name in taken:  # two qualnames can meet ('a_1' and the second call of 'a')
+            name, j = f"{stem}_{k}_{j}", j + 1
+        taken.add(name)
+        names[i] = name
+    return names

@@ -1,0 +1,194 @@
+"""Splicing by forward hooks: warps at module outputs of an otherwise unchanged copy of the model.
+
+When torch.fx cannot trace a model, or the splice lives ``within`` one of its
+submodules, the points come from :mod:`splice.graph`'s hooks view: each is
+the tensor one call of one module returns (its *site*: the module's qualname
+and which call, counted from 0 within one call of the scope). :func:`apply_hooks`
+deep-copies the model, adds the warps under ``splice_warps`` at the root, and
+registers:
+
+- a forward pre-hook on the root that notes which module tree is running
+  (the model itself, or a twin of it that shares these hooks: a copy for
+  export, a perturbed copy), so the warps are looked up on the module that
+  is actually called;
+- a forward pre-hook on the scope (the root, or the ``within`` submodule)
+  that resets the per-call counts and warps the scope's first input (the
+  point ``input``);
+- a forward hook on each site module that counts its calls and, at the
+  recorded call, returns ``warp(output)``;
+- a forward hook on the scope that drops the activations kept for
+  localisation inputs (``loc_from``).
+
+Base parameter and buffer names are unchanged; the model keeps its own class,
+so it trains (``.train()``), exports and deep-copies like the original. The
+hook objects live in the modules' hook dictionaries: ``copy.deepcopy`` and
+pickling carry them along, and the per-forward state is never copied.
+"""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Mapping, Sequence
+
+import torch
+from torch import nn
+
+from .errors import PointError, suggest
+
+__all__ = ["WARP_PREFIX", "apply_hooks", "hooks_installed"]
+
+WARP_PREFIX = "splice_warps"  # where every splice keeps its warps (splice.surgery re-exports it)
+
+
+class _Scope:
+    """The shared, per-forward state of one spliced scope (never copied or pickled: it holds activations)."""
+
+    def __init__(self, root: nn.Module, within: str):
+        self.root, self.within = root, within
+        self.calls: dict[int, int] = {}
+        self.seen: dict[str, torch.Tensor] = {}
+        self.active = False
+        self.current: nn.Module | None = None
+
+    def __getstate__(self):
+        return {"root": self.root, "within": self.within}
+
+    def __setstate__(self, state):
+        self.__init__(state["root"], state["within"])
+
+    def warp(self, name: str) -> nn.Module:
+        holder = self.current if self.current is not None else self.root
+        return getattr(holder, WARP_PREFIX)[name]
+
+    def clear(self) -> None:
+        self.calls, self.seen, self.active = {}, {}, False
+
+
+class _RootHook:
+    """Pre-hook on the model: the warps are those of the module tree actually called."""
+
+    def __init__(self, scope: _Scope):
+        self.scope = scope
+
+    def __call__(self, module, args):
+        self.scope.current = module
+
+
+class _EnterHook:
+    """Pre-hook on the scope module: a new forward of the scope; its first input may be warped."""
+
+    def __init__(self, scope: _Scope, warp: str | None, loc: str | None):
+        self.scope, self.warp, self.loc = scope, warp, loc
+
+    def __call__(self, module, args):
+        scope = self.scope
+        scope.calls, scope.seen, scope.active = {}, {}, True
+        if not args or not isinstance(args[0], torch.Tensor):
+            return None
+        scope.seen["input"] = args[0]
+        if self.warp is None:
+            return None
+        warp = scope.warp(self.warp)
+        out = warp(args[0]) if self.loc is None else warp(args[0], scope.seen[self.loc])
+        scope.seen["input"] = out
+        return (out, *args[1:])
+
+
+class _ExitHook:
+    """Forward hook on the scope module: drops the activations kept for localisation inputs."""
+
+    def __init__(self, scope: _Scope):
+        self.scope = scope
+
+    def __call__(self, module, args, output):
+        self.scope.clear()
+
+
+class _SiteHook:
+    """Forward hook on one module: its ``call``-th output in a scope forward goes through a warp (or is kept)."""
+
+    def __init__(self, scope: _Scope, sites: Mapping[int, tuple[str, str | None, str | None]]):
+        # sites: {call index: (point, warp name or None, localisation point or None)}
+        self.scope, self.sites = scope, dict(sites)
+
+    def __call__(self, module, args, output):
+        scope = self.scope
+        if not scope.active:
+            return None
+        k = scope.calls.get(id(module), 0)
+        scope.calls[id(module)] = k + 1
+        site = self.sites.get(k)
+        if site is None:
+            return None
+        point, warp, loc = site
+        if warp is not None:
+            if not isinstance(output, torch.Tensor):
+                raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
+                                   "not a tensor; re-create the splice at a point from 'splice points'")
+            if loc is not None and loc not in scope.seen:
+                raise RuntimeError(f"splice: the localisation input {loc!r} of point {point!r} was not computed "
+                                   "before it in this forward")
+            w = scope.warp(warp)
+            output = w(output) if loc is None else w(output, scope.seen[loc])
+        scope.seen[point] = output
+        return output
+
+
+def hooks_installed(model: nn.Module) -> bool:
+    """True when ``model`` carries the hooks of :func:`apply_hooks`."""
+    return any(isinstance(h, _RootHook) for h in model._forward_pre_hooks.values())
+
+
+def _site_module(scope_module: nn.Module, qualname: str, point: str) -> nn.Module:
+    try:
+        return scope_module.get_submodule(qualname)
+    except AttributeError:
+        names = [q for q, _ in scope_module.named_modules() if q]
+        raise PointError(f"point {point!r} sits on module {qualname!r}, which the model does not have"
+                         f"{suggest(qualname, names) or ';'} Re-create the splice from 'splice points'") from None
+
+
+def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str, int]],
+                shapes: Mapping[str, tuple[int, ...]], *, within: str = "", factory: dict | None = None) -> nn.Module:
+    """A deep copy of ``model`` with the warps of ``plan`` (``SplicePlan`` items) at module outputs.
+
+    ``sites`` maps every planned point (and localisation input) but
+    ``input`` to ``(module qualname, call index)`` inside the scope;
+    ``shapes`` maps them to ``(C, H, W)``. ``within`` is the scope's
+    qualname (``""``: the whole model). The warps are built on the device and
+    in the dtype of the model's first parameter unless ``factory`` says
+    otherwise. The caller's model is not changed.
+    """
+    from .warps import Warp
+
+    if WARP_PREFIX in dict(model.named_children()) or hooks_installed(model):
+        raise PointError(f"the model already has warps ({WARP_PREFIX!r}); splice the original model instead")
+    work = copy.deepcopy(model)
+    if factory is None:
+        param = next(iter(model.parameters()), None)
+        factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
+    scope_module = work.get_submodule(within) if within else work
+    container = nn.ModuleDict()
+    work.add_module(WARP_PREFIX, container)
+    scope = _Scope(work, within)
+    per_module: dict[str, dict[int, tuple]] = {}
+    input_warp = input_loc = None
+    for item in plan:
+        point, config = item.point, item.config
+        loc = config.loc_from if config.loc_from not in (None, point) else None
+        container[point] = Warp(config, shapes[point], shapes[loc] if loc else None, **factory)
+        if point == "input":
+            input_warp, input_loc = point, loc
+        else:
+            qualname, call = sites[point]
+            per_module.setdefault(qualname, {})[call] = (point, point, loc)
+        if loc is not None and loc != "input":
+            qualname, call = sites[loc]
+            per_module.setdefault(qualname, {}).setdefault(call, (loc, None, None))
+    work.register_forward_pre_hook(_RootHook(scope))
+    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc))
+    for qualname, calls in per_module.items():
+        point = next(iter(calls.values()))[0]
+        _site_module(scope_module, qualname, point).register_forward_hook(_SiteHook(scope, calls))
+    scope_module.register_forward_hook(_ExitHook(scope))
+    return work

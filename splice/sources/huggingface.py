@@ -1,0 +1,211 @@
+"""Hugging Face models: ``transformers:ClassName`` built from a config, and local ``save_pretrained`` folders.
+
+A folder written by ``save_pretrained`` (``config.json`` plus
+``model.safetensors``, ``pytorch_model.bin`` or a sharded index) is a model
+source. Only JSON is read to build it: ``config.json``'s ``model_type`` picks
+the configuration class of the installed transformers
+(``CONFIG_MAPPING``), and ``architectures[0]`` names the model class, which
+must be a ``PreTrainedModel`` exported by transformers that takes that
+configuration. The weights are read safely (safetensors, or
+``torch.load(weights_only=True)``).
+
+The splice records ``transformers:ClassName`` with ``{"config": {...}}`` as its
+kwargs, so a spliced folder rebuilds without the source folder.
+
+A config with ``auto_map`` asks for code shipped in the folder. It is built
+only with ``trust_code=True`` (``--trust-code``), through transformers' own
+loader for local code; the spliced folder then records the code folder and
+needs it (and the opt-in) to rebuild.
+
+Nothing is downloaded: ``use_pretrained_backbone`` is forced off.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from ..errors import SourceError
+
+__all__ = ["build_transformers", "transformers_lists", "is_hf_folder", "read_hf_folder", "HF_WEIGHT_FILES", "HFFolder"]
+
+HF_WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
+                   "pytorch_model.bin.index.json")
+_CONFIG = "config.json"
+_PREPROCESSOR = "preprocessor_config.json"
+_MAX_JSON_BYTES = 16 * 1024 * 1024
+
+
+def _transformers():
+    try:
+        import transformers
+    except ImportError:
+        raise SourceError("a Hugging Face model needs the transformers package, which is not installed; "
+                          "run: pip install transformers") from None
+    return transformers
+
+
+def is_hf_folder(path) -> bool:
+    """True for a folder holding a ``config.json`` (and no splice manifest)."""
+    path = Path(path)
+    return path.is_dir() and (path / _CONFIG).is_file() and not (path / "splice.json").is_file()
+
+
+def _read_json(path: Path) -> dict:
+    if path.stat().st_size > _MAX_JSON_BYTES:
+        raise SourceError(f"'{path}' is larger than {_MAX_JSON_BYTES >> 20} MB, too big for a model config; "
+                          "check that it is the folder's config.json")
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError) as exc:
+        raise SourceError(f"'{path}' is not valid JSON ({type(exc).__name__}); re-save the model with "
+                          "save_pretrained") from None
+    if not isinstance(data, dict):
+        raise SourceError(f"'{path}' must hold a JSON object, found {type(data).__name__}")
+    return data
+
+
+def _config_object(transformers, config: Mapping, where: str):
+    from transformers import CONFIG_MAPPING
+
+    model_type = config.get("model_type")
+    if not isinstance(model_type, str) or model_type not in CONFIG_MAPPING:
+        raise SourceError(f"{where}: model_type {model_type!r} is not known to the installed transformers "
+                          f"{transformers.__version__}; upgrade transformers")
+    config = dict(config)
+    if "use_pretrained_backbone" in config:
+        config["use_pretrained_backbone"] = False  # never download a backbone
+    return CONFIG_MAPPING[model_type].from_dict(config)
+
+
+def _model_class(transformers, name: str, config_obj, where: str):
+    cls = getattr(transformers, name, None) if name.isidentifier() and not name.startswith("_") else None
+    if not (isinstance(cls, type) and issubclass(cls, transformers.PreTrainedModel)):
+        raise SourceError(f"{where}: {name!r} is not a model class of the installed transformers "
+                          f"{transformers.__version__}; use the class named in config.json's 'architectures'")
+    if getattr(cls, "config_class", None) is not type(config_obj):
+        raise SourceError(f"{where}: {name} takes a {getattr(cls.config_class, '__name__', '?')}, the config is a "
+                          f"{type(config_obj).__name__}; use the class named in config.json's 'architectures'")
+    return cls
+
+
+def _custom_classes(name: str, config: Mapping, code_folder: str, where: str):
+    """The config and model classes an ``auto_map`` names, imported from ``code_folder`` by transformers."""
+    from transformers.dynamic_module_utils import get_class_from_dynamic_module
+
+    auto_map = config.get("auto_map")
+    if not isinstance(auto_map, Mapping) or not isinstance(auto_map.get("AutoConfig"), str):
+        raise SourceError(f"{where}: auto_map must name an AutoConfig class; re-save the model with save_pretrained")
+    refs = [v for k, v in auto_map.items() if k != "AutoConfig" and isinstance(v, str)]
+    ref = next((r for r in refs if r.rsplit(".", 1)[-1] == name), refs[0] if refs else None)
+    if ref is None:
+        raise SourceError(f"{where}: auto_map names no model class; re-save the model with save_pretrained")
+    folder = Path(code_folder)
+    if not folder.is_dir():
+        raise SourceError(f"{where}: the model's code folder '{folder}' does not exist; the model was built from "
+                          "code shipped in that folder, which must stay on disk")
+    try:
+        config_cls = get_class_from_dynamic_module(auto_map["AutoConfig"], str(folder))
+        model_cls = get_class_from_dynamic_module(ref, str(folder))
+    except Exception as exc:  # the folder's own code failed to import
+        raise SourceError(f"{where}: importing the model's code from '{folder}' failed "
+                          f"({type(exc).__name__}: {exc})") from None
+    return config_cls, model_cls
+
+
+def transformers_lists(head: str, name: str, kwargs: Mapping) -> bool:
+    """True when ``head:name`` is ``transformers:Class`` for a model class the installed transformers exports,
+    with a config that asks for no shipped code (no ``auto_map``, no code folder).
+
+    The registry lookup of :mod:`splice.sources.trust`; a config with
+    ``auto_map`` is code the file chose, so it needs the opt-in.
+    """
+    if head != "transformers" or not name.isidentifier() or name.startswith("_"):
+        return False
+    config = kwargs.get("config")
+    if not isinstance(config, Mapping) or "auto_map" in config or "code_folder" in kwargs:
+        return False
+    try:
+        import transformers
+    except ImportError:
+        return False
+    cls = getattr(transformers, name, None)
+    return isinstance(cls, type) and issubclass(cls, transformers.PreTrainedModel)
+
+
+def build_transformers(name: str, kwargs: Mapping[str, Any], *, trust_code: bool = False):
+    """``(model, meta)`` for ``transformers:ClassName`` with ``kwargs={"config": {...}}`` (random weights).
+
+    A config with ``auto_map`` needs ``trust_code`` and ``kwargs["code_folder"]``.
+    """
+    where = f"transformers:{name}"
+    config = kwargs.get("config")
+    if not isinstance(config, Mapping) or set(kwargs) - {"config", "code_folder"}:
+        raise SourceError(f"{where} needs --kwargs '{{\"config\": {{...the contents of config.json...}}}}' and "
+                          "nothing else; or give the save_pretrained folder itself as the model")
+    transformers = _transformers()
+    if "auto_map" in config:
+        if not trust_code:
+            raise SourceError(f"{where}: the config asks for custom code (auto_map), which runs Python shipped with "
+                              "the model; pass --trust-code (trust_code=True) if you trust its origin")
+        config_cls, model_cls = _custom_classes(name, config, str(kwargs.get("code_folder", "")), where)
+        model = model_cls(config_cls.from_dict(dict(config)))
+        cfg = model.config
+    else:
+        cfg = _config_object(transformers, config, where)
+        model = _model_class(transformers, name, cfg, where)(cfg)
+    return model, {"input_shape": _config_shape(cfg), "normalisation": None}
+
+
+def _config_shape(cfg) -> tuple[int, int, int] | None:
+    size = getattr(cfg, "image_size", None)
+    if isinstance(size, int) and size > 0:
+        size = (size, size)
+    elif not (isinstance(size, (list, tuple)) and len(size) == 2 and all(isinstance(s, int) and s > 0 for s in size)):
+        return None
+    channels = getattr(cfg, "num_channels", 3)
+    return (int(channels), int(size[0]), int(size[1])) if isinstance(channels, int) and channels > 0 else None
+
+
+class HFFolder:
+    """What a ``save_pretrained`` folder holds: its spec and kwargs, weights file, shape and normalisation."""
+
+    def __init__(self, folder: Path, spec: str, kwargs: dict, weights: Path | None,
+                 input_shape: tuple[int, int, int] | None, normalisation: dict | None):
+        self.folder, self.spec, self.kwargs, self.weights = folder, spec, kwargs, weights
+        self.input_shape, self.normalisation = input_shape, normalisation
+
+
+def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None]:
+    """(H, W) and normalisation from ``preprocessor_config.json``, when it says."""
+    path = folder / _PREPROCESSOR
+    if not path.is_file():
+        return None, None
+    pre = _read_json(path)
+    mean, std = pre.get("image_mean"), pre.get("image_std")
+    ok = all(isinstance(v, list) and v and all(isinstance(x, (int, float)) for x in v) for v in (mean, std))
+    norm = {"mean": [float(x) for x in mean], "std": [float(x) for x in std]} if ok else None
+    size = pre.get("crop_size") if pre.get("do_center_crop") else pre.get("size")
+    if isinstance(size, Mapping) and isinstance(size.get("height"), int) and isinstance(size.get("width"), int):
+        return (size["height"], size["width"]), norm
+    return None, norm
+
+
+def read_hf_folder(path) -> HFFolder:
+    """Read a ``save_pretrained`` folder (JSON only; nothing is imported or built)."""
+    folder = Path(path)
+    config = _read_json(folder / _CONFIG)
+    archs = config.get("architectures")
+    if not (isinstance(archs, list) and archs and isinstance(archs[0], str)):
+        raise SourceError(f"'{folder / _CONFIG}' names no model class ('architectures' is missing or empty); "
+                          "re-save the model with save_pretrained")
+    weights = next((folder / f for f in HF_WEIGHT_FILES if (folder / f).is_file()), None)
+    kwargs: dict[str, Any] = {"config": config}
+    if "auto_map" in config:
+        kwargs["code_folder"] = str(folder.resolve())
+    hw, norm = _preprocessing(folder)
+    channels = config.get("num_channels", 3)
+    shape = (channels, *hw) if hw and isinstance(channels, int) else None
+    return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm)

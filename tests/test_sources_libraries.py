@@ -1,0 +1,233 @@
+"""Model sources from libraries people use: timm names, Hugging Face save_pretrained folders, torchvision
+builders with backbones — all built with random weights, nothing downloaded."""
+
+from __future__ import annotations
+
+import json
+import sys
+
+import pytest
+import torch
+
+import splice
+from splice.compare import flatten_outputs
+from splice.errors import SourceError, WeightsError
+from splice.sources import build_model, is_hf_folder, load_source, read_hf_folder
+
+pytest.importorskip("timm")  # both are in the test extra
+pytest.importorskip("transformers")
+
+
+def _hf_resnet():
+    from transformers import ResNetConfig, ResNetForImageClassification
+
+    torch.manual_seed(0)
+    config = ResNetConfig(embedding_size=8, hidden_sizes=[8, 16], depths=[1, 1], num_labels=3)
+    return ResNetForImageClassification(config).eval()
+
+
+@pytest.fixture(scope="module")
+def hf_folder(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("hf") / "resnet"
+    _hf_resnet().save_pretrained(folder)
+    return folder
+
+
+# ----------------------------------------------------------------------------- timm
+
+
+def test_timm_name_builds_with_its_pretrained_cfg():
+    import timm
+
+    src = load_source("timm:resnet18", kwargs={"num_classes": 7})
+    assert src.spec == "timm:resnet18" and src.random_init
+    cfg = timm.create_model("resnet18", pretrained=False).pretrained_cfg
+    assert src.input_shape == tuple(cfg["input_size"])
+    assert src.normalisation == {"mean": list(cfg["mean"]), "std": list(cfg["std"])}
+    assert src.model(torch.randn(1, 3, 32, 32)).shape == (1, 7)
+
+
+def test_timm_takes_a_local_checkpoint(tmp_path):
+    import timm
+
+    torch.manual_seed(1)
+    trained = timm.create_model("resnet18", pretrained=False, num_classes=4)
+    torch.save(trained.state_dict(), tmp_path / "r18.pth")
+    src = load_source("timm:resnet18", kwargs={"num_classes": 4}, weights=tmp_path / "r18.pth")
+    x = torch.randn(1, 3, 32, 32)
+    assert torch.equal(src.model.eval()(x), trained.eval()(x))
+
+
+@pytest.mark.parametrize("key", ["pretrained", "checkpoint_path", "pretrained_cfg_overlay"])
+def test_timm_never_downloads_or_reads_through_kwargs(key):
+    with pytest.raises(SourceError, match=f"--kwargs '{key}' would download or read weights.*--weights FILE"):
+        build_model("timm:resnet18", {key: True})
+
+
+def test_unknown_timm_name_is_one_line():
+    with pytest.raises(SourceError, match=r"unknown timm model 'resnet18x'; did you mean .*resnet18") as info:
+        build_model("timm:resnet18x")
+    assert "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize("spec, package", [("timm:resnet18", "timm"), ("transformers:ResNetModel", "transformers")])
+def test_a_missing_optional_library_says_how_to_install_it(monkeypatch, spec, package):
+    monkeypatch.setitem(sys.modules, package, None)  # import fails as if it were not installed
+    with pytest.raises(SourceError, match=f"not installed; run: pip install {package}$"):
+        build_model(spec, {"config": {"model_type": "resnet"}} if package == "transformers" else {})
+
+
+# ----------------------------------------------------------------------------- Hugging Face folders
+
+
+def test_a_save_pretrained_folder_is_a_source(hf_folder):
+    assert is_hf_folder(hf_folder)
+    src = load_source(str(hf_folder), input_shape=(3, 32, 32))
+    assert src.spec == "transformers:ResNetForImageClassification"
+    assert src.kwargs["config"]["model_type"] == "resnet"
+    assert src.weights_path == str(hf_folder / "model.safetensors") and not src.random_init
+    x = torch.randn(2, 3, 32, 32)
+    assert torch.equal(src.model(x).logits, _hf_resnet()(x).logits)
+
+
+def test_the_recorded_spec_rebuilds_without_the_folder(hf_folder):
+    src = load_source(str(hf_folder), input_shape=(3, 32, 32))
+    model, _ = build_model(src.spec, json.loads(json.dumps(src.kwargs)))  # as splice.json holds it
+    assert set(model.state_dict()) == set(src.model.state_dict())
+
+
+def test_model_output_is_compared_like_a_dict_logits_first(hf_folder):
+    out = load_source(str(hf_folder), input_shape=(3, 32, 32)).model(torch.randn(1, 3, 32, 32))
+    assert list(flatten_outputs(out))[0] == "out.logits"
+
+
+@pytest.mark.parametrize("how", ["bin", "sharded"])
+def test_pickle_free_bin_and_sharded_folders_load(tmp_path, how):
+    model = _hf_resnet()
+    if how == "bin":
+        model.save_pretrained(tmp_path / how, safe_serialization=False)
+    else:
+        model.save_pretrained(tmp_path / how, max_shard_size="2KB")
+        assert (tmp_path / how / "model.safetensors.index.json").is_file()
+    src = load_source(str(tmp_path / how), input_shape=(3, 32, 32))
+    x = torch.randn(1, 3, 32, 32)
+    assert torch.equal(src.model(x).logits, model(x).logits)
+
+
+def test_a_folder_without_weights_is_refused(tmp_path):
+    config = _hf_resnet().config
+    config.architectures = ["ResNetForImageClassification"]
+    config.save_pretrained(tmp_path)
+    with pytest.raises(SourceError, match="holds a config.json but no weights"):
+        load_source(str(tmp_path), input_shape=(3, 32, 32))
+
+
+def test_an_unknown_model_type_is_refused(tmp_path, hf_folder):
+    config = json.loads((hf_folder / "config.json").read_text())
+    with pytest.raises(SourceError, match="model_type 'no-such-type' is not known to the installed transformers"):
+        build_model("transformers:ResNetForImageClassification", {"config": {**config, "model_type": "no-such-type"}})
+    with pytest.raises(SourceError, match="'os' is not a model class of the installed transformers"):
+        build_model("transformers:os", {"config": config})
+    with pytest.raises(SourceError, match="ConvNextModel takes a ConvNextConfig, the config is a ResNetConfig"):
+        build_model("transformers:ConvNextModel", {"config": config})
+
+
+_CONFIG_PY = """
+from transformers import PretrainedConfig
+class TinyConfig(PretrainedConfig):
+    model_type = "splice_tiny_test"
+    def __init__(self, width=4, **kwargs):
+        self.width = width
+        super().__init__(**kwargs)
+"""
+
+_MODELING_PY = """
+import pathlib
+pathlib.Path({marker!r}).write_text("the folder's code ran")
+from torch import nn
+from transformers import PreTrainedModel
+from .configuration_tiny import TinyConfig
+class TinyNet(PreTrainedModel):
+    config_class = TinyConfig
+    def __init__(self, config):
+        super().__init__(config)
+        self.conv = nn.Conv2d(3, config.width, 3, padding=1)
+        self.post_init()
+    def forward(self, x):
+        return self.conv(x)
+"""
+
+
+@pytest.fixture
+def custom_code_folder(tmp_path, monkeypatch):
+    import transformers.dynamic_module_utils as dynamic
+
+    monkeypatch.setattr(dynamic, "HF_MODULES_CACHE", str(tmp_path / "modules"))
+    folder = tmp_path / "custom"
+    folder.mkdir()
+    marker = tmp_path / "ran.txt"
+    (folder / "configuration_tiny.py").write_text(_CONFIG_PY)
+    (folder / "modeling_tiny.py").write_text(_MODELING_PY.format(marker=str(marker)))
+    config = {"model_type": "splice_tiny_test", "architectures": ["TinyNet"], "width": 4,
+              "auto_map": {"AutoConfig": "configuration_tiny.TinyConfig", "AutoModel": "modeling_tiny.TinyNet"}}
+    (folder / "config.json").write_text(json.dumps(config))
+    from safetensors.torch import save_file
+
+    save_file({"conv.weight": torch.randn(4, 3, 3, 3), "conv.bias": torch.zeros(4)}, folder / "model.safetensors")
+    return folder, marker
+
+
+def test_custom_code_needs_trust_code_and_does_not_run_without_it(custom_code_folder):
+    folder, marker = custom_code_folder
+    with pytest.raises(SourceError, match=r"custom code \(auto_map\).*--trust-code \(trust_code=True\)") as info:
+        splice.points(str(folder), (3, 16, 16))
+    assert "\n" not in str(info.value)
+    assert not marker.exists()  # the folder's code never ran
+    pts = splice.points(str(folder), (3, 16, 16), trust_code=True)
+    assert marker.exists() and pts[0].name == "input"
+
+
+def test_read_hf_folder_reads_only_json(custom_code_folder):
+    folder, marker = custom_code_folder
+    hf = read_hf_folder(folder)
+    assert hf.spec == "transformers:TinyNet" and hf.kwargs["code_folder"] == str(folder.resolve())
+    assert not marker.exists()
+
+
+# ----------------------------------------------------------------------------- torchvision backbones
+
+
+def test_torchvision_backbone_builders_download_nothing(monkeypatch):
+    def no_network(*args, **kwargs):
+        raise AssertionError("a builder tried to download weights")
+
+    monkeypatch.setattr(torch.hub, "load_state_dict_from_url", no_network)
+    model, meta = build_model("torchvision:fcn_resnet50", {"num_classes": 3})
+    assert meta["input_shape"] == (3, 224, 224)
+    with pytest.raises(SourceError, match="drop 'weights_backbone' from --kwargs"):
+        build_model("torchvision:fcn_resnet50", {"weights_backbone": "DEFAULT"})
+
+
+def test_a_bad_weights_index_is_refused(tmp_path):
+    (tmp_path / "model.safetensors.index.json").write_text(json.dumps({"weight_map": {"a": "../x.safetensors"}}))
+    with pytest.raises(WeightsError, match="is not a shard index"):
+        splice.sources.read_weights(tmp_path / "model.safetensors.index.json")
+
+
+def test_a_spliced_hugging_face_folder_is_self_contained(tmp_path):
+    import shutil
+
+    source = tmp_path / "hf"
+    _hf_resnet().save_pretrained(source)
+    with pytest.warns(splice.graph.TraceFallbackWarning):  # HF forwards branch on Python values
+        spliced = splice.insert(str(source), at="recommended", input_shape=(3, 32, 32))
+    assert spliced.splice_info.spec == "transformers:ResNetForImageClassification"
+    folder = splice.save(spliced, tmp_path / "spliced")
+    shutil.rmtree(source)  # the manifest holds the config: nothing is read from the source folder again
+    model = splice.load(folder)
+    x = torch.randn(1, 3, 32, 32)
+    with torch.no_grad():
+        assert torch.equal(model(x).logits, _hf_resnet()(x).logits)
+    report = splice.verify(folder)
+    assert report.passed, report.failed
+    assert "no longer on disk" in report["provenance"].detail or report["provenance"].summary.endswith("= source")
