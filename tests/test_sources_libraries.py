@@ -231,3 +231,42 @@ def test_a_spliced_hugging_face_folder_is_self_contained(tmp_path):
     report = splice.verify(folder)
     assert report.passed, report.failed
     assert "no longer on disk" in report["provenance"].detail or report["provenance"].summary.endswith("= source")
+
+
+# ----------------------------------------------------------------------------- the trust gate
+
+
+def test_library_specs_read_from_a_file_pass_the_gate_by_registry(tmp_path, monkeypatch):
+    from splice.errors import UntrustedCodeError
+    from splice.sources import check_spec
+
+    monkeypatch.delenv("SPLICE_TRUST_CODE", raising=False)
+    origin = tmp_path / "splice.json"
+    config = _hf_resnet().config.to_dict()
+    check_spec("timm:resnet18", {}, origin=origin)  # timm's registry lists it
+    check_spec("timm:resnet18.a1_in1k", {"num_classes": 3}, origin=origin)  # a pretrained tag of a listed name
+    check_spec("transformers:ResNetForImageClassification", {"config": config}, origin=origin)
+    refused = [("timm:no_such_net", {}), ("timm:resnet18", {"pretrained": True}),
+               ("transformers:ResNetForImageClassification", {"config": {**config, "auto_map": {"AutoConfig": "x.Y"}}}),
+               ("transformers:ResNetForImageClassification", {"config": config, "code_folder": str(tmp_path)}),
+               ("transformers:AutoConfig", {"config": config}), ("transformers:os", {"config": config})]
+    for spec, kwargs in refused:
+        with pytest.raises(UntrustedCodeError, match="--trust-code"):
+            check_spec(spec, kwargs, origin=origin)
+
+
+def test_a_spliced_custom_code_folder_needs_the_opt_in_again(custom_code_folder, tmp_path, monkeypatch):
+    from splice.errors import UntrustedCodeError
+
+    monkeypatch.delenv("SPLICE_TRUST_CODE", raising=False)
+    source, marker = custom_code_folder
+    spliced = splice.insert(str(source), at="input", input_shape=(3, 16, 16), trust_code=True)
+    folder = splice.save(spliced, tmp_path / "spliced")
+    marker.unlink()
+    with pytest.raises(UntrustedCodeError, match=r"read from '.*splice.json'.*--trust-code"):
+        splice.load(folder)  # the manifest names code in the source folder: not run without the opt-in
+    assert not marker.exists()
+    again = splice.load(folder, trust_code=True)
+    x = torch.randn(1, 3, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(again(x), spliced.eval()(x))
