@@ -354,3 +354,42 @@ def test_a_stop_during_pre_training_resumes_at_that_phase_with_the_same_result(t
     assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
         state_dict_sha256(splice.load(full / "last").state_dict())
     assert [r["phase"] for r in read_metrics(part)] == [r["phase"] for r in read_metrics(full)]
+
+
+@pytest.mark.parametrize("where", ["adapt", "pretrain"])
+def test_a_label_free_run_that_turns_non_finite_stops_and_keeps_its_last_finite_state(tmp_path, folders, spliced,
+                                                                                      monkeypatch, where):
+    from splice.errors import TrainingDiverged
+
+    ref, site = folders
+    if where == "adapt":  # the site objective turns NaN in the second epoch
+        calls = {"n": 0}
+
+        def nan_after_a_while(logits):
+            calls["n"] += 1
+            loss = entropy_loss(logits)
+            return loss * float("nan") if calls["n"] > 6 else loss
+        monkeypatch.setattr("splice.adapt.steps.entropy_loss", nan_after_a_while)
+    else:
+        from splice.adapt import regress, run
+
+        real, real_estimate, probed = regress.regression_loss, run.estimate_ranges, {"done": False}
+
+        def estimate_then_break(*args, **kwargs):  # the probe trains finite; the heads' pre-training does not
+            probed["done"] = True
+            return real_estimate(*args, **kwargs)
+        monkeypatch.setattr(run, "estimate_ranges", estimate_then_break)
+        monkeypatch.setattr(regress, "regression_loss",
+                            lambda *a, **k: real(*a, **k) * (float("inf") if probed["done"] else 1.0))
+    out = tmp_path / "run"
+    with pytest.raises(TrainingDiverged, match=rf"{'label-free adaptation' if where == 'adapt' else 'pre-training'}"
+                                               r".* diverged: .*became (nan|inf)"):
+        tune(str(spliced), recipe=_tiny(), site=str(site), out=out, overrides=RecipeOverrides(reference=str(ref)),
+             run_options=QUIET)
+    info = json.loads((out / "run.json").read_text())
+    assert info["status"] == "diverged" and info["diverged"]["phase"] == where
+    ckpt = load_checkpoint(out / CHECKPOINT_NAME)  # written after the estimate (and after pre-training)
+    assert all(bool(torch.isfinite(v).all()) for v in ckpt["model"].values() if v.is_floating_point())
+    if where == "adapt":  # best/ and last/ hold the state after pre-training, finite and verifying
+        assert splice.verify(out / "last").passed
+        assert _base_hash(out / "last") == _base_hash(spliced)

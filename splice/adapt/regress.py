@@ -28,7 +28,8 @@ from torch import Tensor, nn
 
 from ..distort import DistortionRange, random_distort
 from ..training import batches as _b
-from ..training.pretrain import execution_order, grid_loss, warp_inputs
+from ..errors import TrainingDiverged
+from ..training.pretrain import execution_order, finite_step, grid_loss, warp_inputs
 from ..training.schedule import lr_factor
 from .images import Images
 
@@ -108,6 +109,12 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
                 loss.backward()
                 if reduce_grads is not None:
                     reduce_grads([p.grad for p in params if p.grad is not None])
+                if not finite_step(loss, params):  # before the step: the heads keep their last finite state
+                    raise TrainingDiverged(
+                        f"warp pre-training ({tag}) diverged: the grid loss or its gradient became "
+                        f"{float(loss.detach())} at epoch {epoch + 1}/{epochs}, step {step + 1}; the checkpoint keeps "
+                        "the last finite state. Lower [pretrain] lr in the recipe and start a new run",
+                        {"phase": tag, "epoch": epoch + 1, "step": step + 1, "what": "grid loss"})
                 opt.step()
                 value = float(loss.detach())
                 running += value * len(idx)

@@ -16,10 +16,11 @@ import time
 
 import torch
 
-from ..errors import RecipeError
+from ..errors import RecipeError, TrainingDiverged
 from ..training import batches as _b
 from ..training import distributed
 from ..training.params import grad_reducer
+from ..training.pretrain import finite_step
 from ..training.schedule import lr_factor
 from .objective import consistency_loss, entropy_loss
 from .regress import regression_loss, upright_safe
@@ -99,6 +100,12 @@ def adapt_epoch(run: AdaptRun, plan: Epochs, order: list[str], epoch: int, first
         loss.backward()
         if reduce is not None:
             reduce([p.grad for p in params if p.grad is not None])
+        if not finite_step(loss, params):  # before the step: the heads keep their last finite state
+            raise TrainingDiverged(
+                f"label-free adaptation diverged: the loss or its gradient became {float(loss.detach())} at epoch "
+                f"{epoch + 1}/{rec.epochs}, step {run.step + 1}; checkpoint.pt, best/ and last/ keep the last finite "
+                "state. Lower the learning rate (--lr) or set grad_clip in the recipe, then start a new run",
+                {"phase": "adapt", "epoch": epoch + 1, "step": run.step + 1, "what": "loss"})
         if rec.grad_clip > 0:
             torch.nn.utils.clip_grad_norm_(params, rec.grad_clip)
         run.optimizer.step()

@@ -39,7 +39,7 @@ from . import batches as _b
 from .schedule import lr_factor
 
 __all__ = ["target_grid", "execution_order", "warp_inputs", "grid_loss", "leave_unmoved", "reference_distance",
-           "pretrain_warps_"]
+           "pretrain_warps_", "finite_step"]
 
 
 class _Stop(Exception):
@@ -103,7 +103,7 @@ def grid_loss(warp: nn.Module, args: tuple, matrix: Tensor | None) -> Tensor:
     return (grid - target).pow(2).mean()
 
 
-def _finite(loss: Tensor, params: list[Tensor]) -> bool:
+def finite_step(loss: Tensor, params: list[Tensor]) -> bool:
     """The loss and every gradient are finite (after any cross-rank averaging, so all ranks agree)."""
     if not bool(torch.isfinite(loss.detach())):
         return False
@@ -284,7 +284,7 @@ class _Loop:
         loss.backward()
         if self.reduce_grads is not None:
             self.reduce_grads([p.grad for p in self.params if p.grad is not None])
-        if not _finite(loss, self.params):
+        if not finite_step(loss, self.params):
             raise TrainingDiverged(
                 f"warp pre-training diverged: the grid loss or its gradient became {float(loss.detach())} at "
                 f"pre-training epoch {self.epoch + 1}/{self.config.epochs}, step {self.step + 1}; the checkpoint keeps "

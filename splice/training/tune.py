@@ -235,7 +235,16 @@ def _adapt(ctx, *, model, recipe, data, site, out, resume, overrides: RecipeOver
     show = run_options.progress and ctx.is_main
     with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
         run.bar, run.flag = bar, flag
-        return run_label_free(run) if run.rec.mode == "label-free" else run_batchnorm_stats(run)
+        try:
+            return run_label_free(run) if run.rec.mode == "label-free" else run_batchnorm_stats(run)
+        except TrainingDiverged as exc:
+            _mark(run, "diverged", diverged=exc.where)
+            raise
+        except TuneInterrupted:
+            raise  # run.json says "interrupted" once the checkpoint is written
+        except Exception as exc:
+            _mark(run, "failed", error=first_line(exc))
+            raise
 
 
 def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
@@ -316,8 +325,9 @@ def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
             raise
 
 
-def _mark(run: Run, status: str, **extra) -> None:
-    """Record how the run ended in run.json (rank 0; a failing write must not hide the first error)."""
+def _mark(run, status: str, **extra) -> None:
+    """Record how a run (a :class:`Run` or a label-free run) ended in run.json (rank 0; a failing write must not
+    hide the first error)."""
     if run.ctx.is_main:
         with contextlib.suppress(SpliceError, OSError):
             write_run_info(run.run_dir, dict(run.info, status=status, **extra))
