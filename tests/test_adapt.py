@@ -252,8 +252,10 @@ def test_label_free_arguments_are_checked(tmp_path, spliced, base, folders):
         tune(str(spliced), recipe=_tiny(), out=tmp_path / "b", run_options=QUIET)
     with pytest.raises(RecipeError, match="read only by the label-free and batchnorm-stats recipes"):
         tune(str(base), recipe="baseline", site=str(site), out=tmp_path / "c", run_options=QUIET)
-    with pytest.raises(RecipeError, match="pass --reference REF"):
-        tune(str(spliced), recipe=_tiny(), site=str(site), out=tmp_path / "d", run_options=QUIET)
+    unknown = splice.save(splice.insert(splice.load_source(SPEC, kwargs=KW, input_shape=SHAPE, warn_random=False),
+                                        at=["input"], warp=splice.WarpConfig(head_width=4)), tmp_path / "unknown")
+    with pytest.raises(RecipeError, match="pass --reference REF"):  # no record says what its base was trained on
+        tune(str(unknown), recipe=_tiny(), site=str(site), out=tmp_path / "d", run_options=QUIET)
     with pytest.raises(RecipeError, match="site.objective = 'both' is not allowed"):
         _tiny(objective="both")
     plain = tmp_path / "plain.py"
@@ -393,3 +395,13 @@ def test_a_label_free_run_that_turns_non_finite_stops_and_keeps_its_last_finite_
     if where == "adapt":  # best/ and last/ hold the state after pre-training, finite and verifying
         assert splice.verify(out / "last").passed
         assert _base_hash(out / "last") == _base_hash(spliced)
+
+
+def test_the_reference_comes_from_the_base_record_when_none_is_given(tmp_path, folders, spliced):
+    # the base was trained by splice on "digits" (its folder records it); the site folder has no upright twin
+    _, site = folders
+    assert splice.load(spliced).splice_info.trained_on == "digits"
+    out = tmp_path / "run"
+    tune(str(spliced), recipe=_tiny(), site=str(site), out=out,
+         run_options=RunOptions(progress=False, stop_after_steps=1))
+    assert json.loads((out / "run.json").read_text())["reference"] == "digits"

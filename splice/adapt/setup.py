@@ -21,6 +21,7 @@ import torch
 from torch import Tensor, nn
 
 from ..errors import RecipeError
+from ..manifest import info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
 from ..training.options import RecipeOverrides
@@ -28,7 +29,7 @@ from ..training.runfolder import RECIPE_FILE, check_same, prepare_folder, start_
 from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
 from .images import Images, open_images
 
-__all__ = ["AdaptRun", "set_up", "resolve_reference"]
+__all__ = ["AdaptRun", "set_up", "reference_for_site"]
 
 
 @dataclass
@@ -60,19 +61,19 @@ class AdaptRun:
     t_run: float = field(default_factory=time.monotonic)
 
 
-def resolve_reference(rec: Recipe, site: str, override: str | None) -> str:
-    """The reference images' spec: ``--reference``, else ``[pretrain] reference``; ``auto`` only for the digits."""
-    from ..data import upright_counterpart
+def reference_for_site(rec: Recipe, site: str, override: str | None, trained_on: str | None = None) -> str:
+    """The reference images' spec, by the one rule of :func:`splice.training.reference.resolve_reference`
+    (``--reference``, else ``[pretrain] reference``, else the site's upright counterpart, else what the base
+    was trained on); the site's own images are never the reference: they are the moved ones."""
+    from ..training.reference import resolve_reference
 
-    choice = override or rec.pretrain.reference
-    if choice == "auto":
-        choice = upright_counterpart(site)
-    if choice is None or choice == "train":
+    ref = resolve_reference(site, given=override or rec.pretrain.reference, trained_on=trained_on, if_missing="skip")
+    if ref.data is None or ref.data == "train":
         raise RecipeError(
             f"the label-free recipe needs upright reference images (the kind the base was trained on) and none "
             f"is known for site {site!r}; pass --reference REF (an ImageFolder, a flat folder of images, or digits)"
         )
-    return choice
+    return ref.data
 
 
 def _resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, site: str, overrides: RecipeOverrides,
@@ -126,7 +127,8 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
         check_same("reference", overrides.reference, info.get("reference"), run_dir)
         ref_name = info.get("reference")
     if rec.mode == "label-free" and ref_name is None:
-        ref_name = resolve_reference(rec, req.data, overrides.reference)
+        record = info_of(net)
+        ref_name = reference_for_site(rec, req.data, overrides.reference, record.trained_on if record else None)
     site_images = open_images(req.data, shape, what="site")
     reference = open_images(ref_name, shape, what="reference") if ref_name else None
     classes = list(src.class_names) if src.class_names else []
