@@ -26,6 +26,7 @@ __all__ = [
     "file_sha256",
     "state_dict_sha256",
     "json_safe",
+    "read_json",
 ]
 
 
@@ -269,3 +270,20 @@ def state_dict_sha256(state: Mapping[str, object], *, prefix_exclude: str | None
         if t.numel():
             h.update(memoryview(t.reshape(-1).view(torch.uint8).numpy()))  # no copy of the bytes
     return h.hexdigest()
+
+
+def read_json(path: str | os.PathLike, error: type[Exception], remedy: str, *, max_bytes: int | None = None):
+    """The JSON value in ``path``; a damaged file raises ``error`` with one line that ends in ``remedy``.
+
+    Invalid JSON, undecodable text, nesting too deep for the parser and (with
+    ``max_bytes``) a file larger than that are all refused the same way.
+    """
+    path = Path(path)
+    if max_bytes is not None and path.stat().st_size > max_bytes:
+        raise error(f"'{path}' is larger than {max_bytes >> 20} MB, too big for this file; {remedy}")
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise error(f"'{path}' is not valid JSON ({type(exc).__name__}: {exc}); {remedy}") from None
+    except RecursionError:
+        raise error(f"'{path}' nests its JSON too deeply to read; {remedy}") from None

@@ -26,7 +26,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ._io import atomic_dir, file_sha256, state_dict_sha256
+from ._io import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
 from .manifest import (
     MANIFEST_NAME,
@@ -79,13 +79,7 @@ def read_manifest(folder: str | os.PathLike) -> dict:
             f"'{folder}' is not a splice folder (no {MANIFEST_NAME}); give a folder written by "
             "'splice insert' or 'splice tune', or a model spec such as torchvision:resnet18"
         )
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise ManifestError(f"'{path}' is not valid JSON ({exc}); the file is damaged — re-create the folder") from None
-    except RecursionError:
-        raise ManifestError(f"'{path}' nests its JSON too deeply to read; the file is damaged — re-create the "
-                            "folder") from None
+    data = read_json(path, ManifestError, "the file is damaged — re-create the folder")
     return validate_manifest(data, str(path))
 
 

@@ -163,6 +163,11 @@ def custom_code_folder(tmp_path, monkeypatch):
     import transformers.dynamic_module_utils as dynamic
 
     monkeypatch.setattr(dynamic, "HF_MODULES_CACHE", str(tmp_path / "modules"))
+    # transformers appends its module cache to sys.path and keeps the package of imported model code in
+    # sys.modules: each test starts without either and leaves neither behind
+    monkeypatch.setattr(sys, "path", list(sys.path))
+    for name in [m for m in sys.modules if m.split(".")[0] == "transformers_modules"]:
+        monkeypatch.delitem(sys.modules, name)
     folder = tmp_path / "custom"
     folder.mkdir()
     marker = tmp_path / "ran.txt"

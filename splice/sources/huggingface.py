@@ -22,11 +22,11 @@ Nothing is downloaded: ``use_pretrained_backbone`` is forced off.
 
 from __future__ import annotations
 
-import json
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from .._io import read_json
 from ..errors import SourceError
 
 __all__ = ["build_transformers", "transformers_lists", "is_hf_folder", "read_hf_folder", "HF_WEIGHT_FILES", "HFFolder"]
@@ -54,14 +54,7 @@ def is_hf_folder(path) -> bool:
 
 
 def _read_json(path: Path) -> dict:
-    if path.stat().st_size > _MAX_JSON_BYTES:
-        raise SourceError(f"'{path}' is larger than {_MAX_JSON_BYTES >> 20} MB, too big for a model config; "
-                          "check that it is the folder's config.json")
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError) as exc:
-        raise SourceError(f"'{path}' is not valid JSON ({type(exc).__name__}); re-save the model with "
-                          "save_pretrained") from None
+    data = read_json(path, SourceError, "re-save the model with save_pretrained", max_bytes=_MAX_JSON_BYTES)
     if not isinstance(data, dict):
         raise SourceError(f"'{path}' must hold a JSON object, found {type(data).__name__}")
     return data

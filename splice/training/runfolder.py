@@ -19,7 +19,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from .._io import atomic_write_json, atomic_write_text, make_dir, recover_dirs
+from .._io import atomic_write_json, atomic_write_text, make_dir, read_json, recover_dirs
 from ..errors import SpliceError
 from ..folders import LOCK_FILE, RUN_FILE, RUN_FORMAT, FolderLock, lock_holder
 from ..recipes import Recipe, recipe_to_toml
@@ -123,13 +123,7 @@ def _read_info(resume: Path) -> dict:
             f"'{resume}' is not a splice tune run folder (no {RUN_FILE}); pass the --out folder of an "
             "earlier 'splice tune'"
         )
-    try:
-        info = json.loads(run_file.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise SpliceError(f"'{run_file}' is not valid JSON ({exc}); the run folder is damaged") from None
-    except RecursionError:
-        raise SpliceError(f"'{run_file}' nests its JSON too deeply to read; the run folder is damaged — "
-                          "start a new run") from None
+    info = read_json(run_file, SpliceError, "the run folder is damaged — start a new run")
     if not isinstance(info, dict) or info.get("format") != RUN_FORMAT or \
             info.get("schema_version") != RUN_SCHEMA_VERSION:
         raise SpliceError(f"'{run_file}' is not a splice run record of schema version {RUN_SCHEMA_VERSION}")
