@@ -1,6 +1,6 @@
 """The zoo: architectures people have, built with random weights, and the one harness that takes each
-through the whole certificate (points -> insert at ``recommended`` with ``affine`` -> verify with ONNX ->
-export). Used by ``tests/test_zoo.py`` and ``benchmarks/bench_zoo.py``.
+through the whole certificate (points -> insert at ``recommended`` and at the first feature-level cut with
+``affine`` -> verify with ONNX -> export). Used by ``tests/test_zoo.py`` and ``benchmarks/bench_zoo.py``.
 
 Input sizes are small (the certificate does not depend on them) except where an architecture needs
 more: maxvit's 7x7 windows need 224, RAFT needs at least 128 (its correlation pyramid pools the
@@ -136,10 +136,18 @@ def forward_seconds(model, input_shapes, repeat: int = 1) -> float:
     return best
 
 
-def run_zoo_model(entry: ZooModel, workdir: Path, *, onnx: bool = True) -> dict:
-    """points -> insert at ``recommended`` (affine) -> save -> verify (with ONNX) -> export, timing each step.
+def _coarser(shape, input_shape, factor: int) -> bool:
+    """A feature map at least ``factor`` times smaller than the input on both sides."""
+    return input_shape[1] >= factor * shape[1] and input_shape[2] >= factor * shape[2]
 
-    Returns ``{"id", "mechanism", "points", "source_changed", "recommended", "seconds": {...}, "report",
+
+def run_zoo_model(entry: ZooModel, workdir: Path, *, onnx: bool = True) -> dict:
+    """points -> insert (affine) at ``recommended`` and at the first cut point of stride 4 or more (so that a
+    warp inside the network is certified too, whatever the mechanism) -> save -> verify (with ONNX) -> export,
+    timing each step.
+
+    Returns ``{"id", "mechanism", "points", "source_changed", "recommended", "spliced_at", "seconds": {...},
+    "report",
     "export", "source", "folder", "warnings"}`` (``warnings``: splice's own, as (category, message)); raises
     whatever a step raises (a splice error is a failure of the zoo model).
     """
@@ -159,7 +167,8 @@ def run_zoo_model(entry: ZooModel, workdir: Path, *, onnx: bool = True) -> dict:
         pts = splice.points(src, within=entry.within)
         seconds["points"] = time.perf_counter() - start
         start = time.perf_counter()
-        spliced = splice.insert(src, at="recommended", warp="affine", within=entry.within)
+        inside = [p.name for p in pts if p.cut and p.kind != "input" and _coarser(p.shape, pts[0].shape, 4)][:1]
+        spliced = splice.insert(src, at=["recommended", *inside], warp="affine", within=entry.within)
         seconds["insert"] = time.perf_counter() - start
         folder = splice.save(spliced, workdir / f"{entry.id.replace(':', '-')}-affine")
         start = time.perf_counter()
@@ -173,6 +182,7 @@ def run_zoo_model(entry: ZooModel, workdir: Path, *, onnx: bool = True) -> dict:
     ours = [w for w in caught if issubclass(w.category, (SpliceWarning, GraphWarning))]
     return {"id": entry.id, "mechanism": pts[0].mechanism, "points": len(pts),
             "source_changed": changed_buffers(before, src.model),
-            "recommended": [p.name for p in pts if p.recommended], "seconds": seconds, "report": report,
+            "recommended": [p.name for p in pts if p.recommended],
+            "spliced_at": [p.name for p in spliced.splice_info.points], "seconds": seconds, "report": report,
             "export": exported, "source": src, "folder": folder,
             "warnings": [(w.category.__name__, str(w.message)) for w in ours]}
