@@ -232,3 +232,17 @@ def test_reference_distance_is_zero_at_the_identity_and_the_shift_in_pixels():
         warps["input"].head.final.bias[2] += 0.25
     # a shift of 0.25 in normalised coordinates (which span 2) is 0.25 * 16 / 2 = 2 pixels everywhere
     assert reference_distance(model, warps, x)["input"] == pytest.approx(2.0, abs=1e-5)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["conv3_net", "conv5_net"])
+def test_shipped_baseline_trains_plain_cnns_from_random_init(tmp_path, name):
+    """No normalisation declared, no recipe edits: 3 epochs of the shipped baseline on the embedded digits
+    reach 90 % validation accuracy (measured 95-96 % at 24x24; chance is 10 %)."""
+    from splice.options import ModelOptions
+
+    summary = tune(f"splice.models:{name}", recipe="baseline", data="digits", out=tmp_path / "run",
+                   overrides=RecipeOverrides(epochs=3),
+                   model_options=ModelOptions(kwargs={"size": 24}, input_shape=(1, 24, 24)), run_options=QUIET)
+    assert summary["best_accuracy"] >= 0.90
+    assert json.loads((tmp_path / "run" / "run.json").read_text())["normalisation_origin"] == "estimated"

@@ -365,3 +365,29 @@ def test_options_are_checked_and_the_keyword_path_refuses_unknown_keywords(tmp_p
     with pytest.raises(TypeError, match=r"tune\(\) got unexpected keyword argument\(s\) epoch; it takes .*epochs"):
         tune_keywords(SPEC, recipe="baseline", out=tmp_path / "r", epoch=3)
     assert not (tmp_path / "r").exists()
+
+
+def test_training_loss_smooths_labels_and_validation_loss_does_not():
+    """The shipped baseline and joint recipes smooth labels by 0.1 (Szegedy et al., CVPR 2016): the step's
+    loss is (1 - e) * CE + e * mean over classes of -log p, written out here by hand; validation reports the
+    plain cross-entropy, so the collapse check against ln(classes) keeps its meaning."""
+    from splice.training.loop import Stepper, evaluate
+
+    assert load_recipe("baseline").label_smoothing == pytest.approx(0.1)
+    assert load_recipe("joint").label_smoothing == pytest.approx(0.1)
+    torch.manual_seed(0)
+    model = torch.nn.Linear(5, 4)
+    x, y = torch.randn(6, 5), torch.tensor([0, 1, 2, 3, 0, 1])
+    with torch.no_grad():
+        logp = torch.log_softmax(model(x), dim=1)
+    by_hand = float((0.9 * -logp[torch.arange(6), y] + 0.1 * -logp.mean(dim=1)).mean())
+    plain = float(-logp[torch.arange(6), y].mean())
+    stepper = Stepper(model, torch.optim.SGD(model.parameters(), lr=0.0), device=torch.device("cpu"),
+                      label_smoothing=0.1)
+    stepper.step(x, y)
+    loss_sum, _, seen = stepper.totals()
+    assert seen == 6 and loss_sum / seen == pytest.approx(by_hand, rel=1e-6)
+    dataset = torch.utils.data.TensorDataset(x, y)
+    val_sum, _, val_seen = evaluate(model, dataset, torch.arange(6), prepare=lambda t: t, device=torch.device("cpu"))
+    assert val_seen == 6 and val_sum / val_seen == pytest.approx(plain, rel=1e-6)
+    assert abs(by_hand - plain) > 1e-3  # the two differ, so the checks above can tell them apart
