@@ -60,7 +60,7 @@ __all__ = [
 SEEDS = (0, 1, 2)
 BASE_EPOCHS = 8
 EPOCHS = 8
-CONTROL_LRS = (3e-3, 1e-3, 3e-4)
+CONTROL_LRS = (1e-2, 3e-3, 1e-3)
 HEAD_WIDTH = 32
 SETTINGS = {
     "digits": ("splice.models:tray_net",),
