@@ -86,7 +86,7 @@ from __future__ import annotations
 from . import leaves as _leaves
 from .fallback import TraceFallbackWarning
 from .leaves import leaves_added, register_leaf
-from .listing import Point, points, points_report
+from .listing import Point, points, points_report, trace_points
 from .naming import find_point, point_names
 from .tracing import GraphWarning, TraceModeWarning, trace
 
@@ -100,6 +100,7 @@ __all__ = [
     "leaves_added",
     "trace",
     "points",
+    "trace_points",
     "find_point",
     "point_names",
     "points_report",

@@ -217,9 +217,9 @@ def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
             why = f"{problem}; {export_problem}" if problem else export_problem
             entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
             warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "
-                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=5)
+                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=6)
             return entries
     if problem:
         warnings.warn(f"{problem}; points come from {how} and warps go in by forward hooks at module outputs "
-                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=5)
+                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=6)
     return entries

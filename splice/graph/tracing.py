@@ -25,6 +25,7 @@ import torch
 import torch.fx as fx
 from torch import nn
 
+from ..collecting import gc_paused
 from ..copies import private_buffers
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import _class_path, _LeafRule
@@ -45,6 +46,39 @@ class _Tracer(fx.Tracer):
         super().__init__()
         self._rule = rule
         self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
+        # id(tensor) -> (tensor, its first name), for the root's parameters and its buffers: fx's own
+        # getattr searches every parameter, then every buffer, of the root on each attribute read
+        self._params: dict[int, tuple[torch.Tensor, str]] = {}
+        self._buffers: dict[int, tuple[torch.Tensor, str]] = {}
+
+    def trace(self, root, concrete_args=None):
+        self._params, self._buffers = {}, {}
+        if isinstance(root, nn.Module):
+            for table, items in ((self._params, root.named_parameters()), (self._buffers, root.named_buffers())):
+                for name, t in items:
+                    table.setdefault(id(t), (t, name))
+        return super().trace(root, concrete_args)
+
+    def _root_name(self, value: Any) -> str | None:
+        """The name fx's search would find for ``value`` (parameters first, then buffers), or None."""
+        tables = ((self._params,) if isinstance(value, nn.Parameter) else ()) + (
+            (self._buffers,) if self.proxy_buffer_attributes else ())
+        for table in tables:
+            found = table.get(id(value))
+            if found is not None and found[0] is value:
+                return found[1]
+        return None
+
+    def getattr(self, attr: str, attr_val: Any, parameter_proxy_cache: dict[str, Any]) -> Any:
+        """fx's rule (a parameter or buffer of the root becomes one ``get_attr`` node, shared by every read),
+        with the root's tensors looked up by identity instead of searched; anything else is fx's own."""
+        name = self._root_name(attr_val) if isinstance(attr_val, torch.Tensor) else None
+        if name is None or self.param_shapes_constant:
+            return super().getattr(attr, attr_val, parameter_proxy_cache)
+        proxy = parameter_proxy_cache.get(name)
+        if proxy is None:
+            proxy = parameter_proxy_cache[name] = self.create_proxy("get_attr", name, (), {})
+        return proxy
 
     def is_leaf_module(self, m: nn.Module, module_qualified_name: str) -> bool:
         return self._rule(type(m)) or super().is_leaf_module(m, module_qualified_name)
@@ -311,7 +345,19 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     :class:`~splice.errors.GraphError` naming the module fx could not trace.
     """
     _check_model(model, "trace()")
-    rule = _LeafRule(leaves)
+    try:
+        gm, _ = _trace_copy(model, _LeafRule(leaves))
+    except _FxFailure as failure:
+        where, todo = _fx_failure_hint(failure, model)
+        raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
+    return gm
+
+
+def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.Module]:
+    """:func:`trace`'s GraphModule, and the twin the tracer ran on (whose modules the graph's nodes name).
+
+    Raises :class:`_FxFailure` when fx cannot trace the model.
+    """
     try:
         work = copy.deepcopy(model)
     except Exception as exc:
@@ -320,15 +366,12 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
             "splice never traces the caller's model in place: make the model deep-copyable"
         ) from exc
     twin = private_buffers(work)
-    try:
+    with gc_paused():
         graph = _trace_owned(twin, rule)
-    except _FxFailure as failure:
-        where, todo = _fx_failure_hint(failure, model)
-        raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
     _unspy_meta(graph)
     lifted = _adopt_lifted(graph, twin, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     for name in lifted:
         gm._non_persistent_buffers_set.add(name)
     gm.training = model.training  # submodules keep their own (copied) flags
-    return gm
+    return gm, twin

@@ -1,0 +1,101 @@
+"""The graph passes' shortcuts give what the long way gives: fx's own tracer, listing then tracing again,
+and the collector switched back on."""
+
+from __future__ import annotations
+
+import gc
+
+import pytest
+import torch
+import torch.fx as fx
+from torch import nn
+
+from splice import graph
+from splice.collecting import gc_paused
+from splice.graph.leaves import _LeafRule
+from splice.graph.tracing import _Tracer
+
+
+class _Shared(nn.Module):
+    """One conv called twice, a weight tied under two names, a buffer and a constant tensor read in forward."""
+
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 4, 3, padding=1)
+        self.b = nn.Conv2d(4, 4, 3, padding=1)
+        self.c = nn.Conv2d(4, 4, 3, padding=1)
+        self.c.weight = self.b.weight  # tied: one tensor, two names
+        self.register_buffer("scale", torch.full((1, 4, 1, 1), 2.0))
+        self.offset = nn.Parameter(torch.zeros(1, 4, 1, 1))
+        self.plain = torch.ones(1)  # neither a parameter nor a buffer
+
+    def forward(self, x):
+        y = self.a(x)
+        y = self.b(y) * self.scale + self.offset
+        y = self.c(y) + self.b(y) + self.offset * self.scale
+        return y * self.plain + torch.nn.functional.conv2d(y, self.b.weight, padding=1)
+
+
+def _signature(g: fx.Graph) -> list:
+    return [(n.name, n.op, str(n.target), str(n.args), str(n.kwargs)) for n in g.nodes]
+
+
+def test_tracer_lookups_give_fx_own_graph():
+    model = _Shared().eval()
+    ours = _Tracer(_LeafRule(())).trace(model)
+    theirs = fx.Tracer().trace(model)
+    assert _signature(ours) == _signature(theirs)
+    # a tied weight is read under its first name, as fx's search finds it
+    targets = {n.target for n in ours.nodes if n.op == "get_attr"}
+    assert {"b.weight", "offset", "scale"} <= targets and "c.weight" not in targets
+
+
+def test_trace_points_lists_what_points_lists_and_traces_what_trace_traces():
+    model = _Shared().eval()
+    listed, gm = graph.trace_points(model, (3, 16, 16))
+    assert [p.to_json() for p in listed] == [p.to_json() for p in graph.points(model, (3, 16, 16), all=True)]
+    assert _signature(gm.graph) == _signature(graph.trace(model).graph)
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(gm(x), model(x))
+    # the GraphModule owns copies: nothing is shared with the caller's model
+    ours = {id(t) for t in (*gm.parameters(), *gm.buffers())}
+    assert not ours & {id(t) for t in (*model.parameters(), *model.buffers())}
+    assert set(graph.point_names(gm)) >= {p.name for p in listed}
+
+
+def test_trace_points_without_fx_gives_no_graph():
+    class Gate(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 3, 3, padding=1)
+
+        def forward(self, x):
+            if x.shape[-1] > 4:  # a shape decides: fx cannot trace it, a meta forward can run it
+                return self.conv(x)
+            return -self.conv(x)
+
+    with pytest.warns(graph.TraceFallbackWarning, match="could not trace"):
+        listed, gm = graph.trace_points(Gate(), (3, 8, 8))
+    assert gm is None and listed[0].mechanism == "hooks"
+
+
+def test_gc_paused_puts_the_collector_back():
+    assert gc.isenabled()
+    with gc_paused():
+        assert not gc.isenabled()
+        with gc_paused():
+            assert not gc.isenabled()
+        assert not gc.isenabled()  # the inner block found it off and leaves it off
+    assert gc.isenabled()
+    with pytest.raises(RuntimeError, match="boom"):
+        with gc_paused():
+            raise RuntimeError("boom")
+    assert gc.isenabled()
+    gc.disable()
+    try:
+        with gc_paused():
+            pass
+        assert not gc.isenabled()  # it was off before: it stays off
+    finally:
+        gc.enable()
