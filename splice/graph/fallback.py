@@ -32,6 +32,7 @@ from .entries import _CONV_MODULES, _Entry
 from .exported import _export_entries
 from .recorded import _recorded_entries
 from .leaves import _class_path, _is_torch_builtin, _LeafRule
+from .rules import _ShapeRules
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
 from .tracing import GraphWarning, _reason
 
@@ -109,7 +110,7 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, p
     _step_over_leaves(meta, model, rule)
     timeline = _Timeline(meta)
     try:
-        with torch.no_grad(), torch.device(_META):
+        with torch.no_grad(), torch.device(_META), _ShapeRules():
             meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
     except Exception as exc:
         raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
@@ -161,7 +162,7 @@ def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
 
     handles = [m.register_forward_hook(count) for m in names]
     try:
-        with torch.no_grad(), torch.device(_META):
+        with torch.no_grad(), torch.device(_META), _ShapeRules():
             meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
     except Exception:  # the forward does not run at this batch size: nothing to compare
         return None

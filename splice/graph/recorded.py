@@ -31,6 +31,7 @@ from torch.utils._pytree import tree_leaves
 from .cuts import _cut_analysis
 from .entries import _NCHW, _Entry
 from .leaves import _is_torch_builtin, _LeafRule
+from .rules import meta_rule
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
 
 __all__: list[str] = []
@@ -118,7 +119,9 @@ class _Recording(TorchFunctionMode):
 
     def __torch_function__(self, func, types, args=(), kwargs=None):
         kwargs = kwargs or {}
-        out = func(*args, **kwargs)
+        out = meta_rule(func, args, kwargs)
+        if out is None:
+            out = func(*args, **kwargs)
         self.record(_name(func), args, kwargs, out)
         return out
 

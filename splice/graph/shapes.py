@@ -1,7 +1,8 @@
 """Shapes on the meta device: one batch-1 propagation through a traced graph.
 
 No activation memory, no arithmetic. Common layers use closed-form shape
-rules; everything else runs its meta kernel. A user-registered leaf that
+rules (here for modules and graph functions, :mod:`.rules` for the torch
+functions that leaf modules call); everything else runs its meta kernel. A user-registered leaf that
 cannot run on the meta device (value-dependent control flow) is run once,
 alone, on a CPU copy with an all-zeros input.
 """
@@ -20,6 +21,7 @@ from torch import nn
 
 from ..errors import GraphError
 from .leaves import _is_torch_builtin
+from .rules import _ShapeRules, meta_rule
 
 __all__: list[str] = []
 
@@ -211,7 +213,8 @@ def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: d
     if meta_mod is None:
         meta_mod = cache[target] = _meta_module(mod)
     try:
-        return meta_mod(*args, **kwargs)
+        with _ShapeRules():
+            return meta_mod(*args, **kwargs)
     except Exception:
         if _is_torch_builtin(type(mod)):
             raise
@@ -276,6 +279,10 @@ def _propagate(
 
 
 def _call(node: fx.Node, args: tuple, kwargs: dict) -> Any:
+    if node.op == "call_function":
+        value = meta_rule(node.target, args, kwargs)
+        if value is not None:
+            return value
     fn = node.target if node.op == "call_function" else getattr(args[0], node.target)
     if node.op == "call_method":
         args = args[1:]

@@ -80,6 +80,15 @@ class _Tracer(fx.Tracer):
             proxy = parameter_proxy_cache[name] = self.create_proxy("get_attr", name, (), {})
         return proxy
 
+    def create_arg(self, a: Any) -> Any:
+        """fx's rule (a tensor of the root is a ``get_attr`` node), with the same identity lookup."""
+        if isinstance(a, torch.Tensor):
+            table = self._params if isinstance(a, nn.Parameter) else self._buffers
+            found = table.get(id(a))
+            if found is not None and found[0] is a:
+                return self.create_node("get_attr", found[1], (), {})
+        return super().create_arg(a)
+
     def is_leaf_module(self, m: nn.Module, module_qualified_name: str) -> bool:
         return self._rule(type(m)) or super().is_leaf_module(m, module_qualified_name)
 
