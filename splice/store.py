@@ -38,8 +38,8 @@ from .manifest import (
     validate_manifest,
 )
 from .version import library_versions
-from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, is_hf_folder, load_source,
-                      parse_input_shapes, read_safetensors, with_metadata)
+from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped, is_hf_folder,
+                      load_source, parse_input_shapes, read_safetensors, with_metadata)
 from .surgery import WARP_PREFIX, apply_info
 
 __all__ = [
@@ -179,7 +179,7 @@ def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
         return None
     _check_base_spec(info, trust_code)  # refused specs are refused, not left to the slow path
     try:
-        with _META:
+        with _META, initialisers_skipped():
             model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
     except Exception:  # any failure here only means "build it the slow way"
         return None

@@ -139,3 +139,24 @@ def test_points_are_the_same_without_rules(monkeypatch, model):
     with pytest.warns() if model is _Opaque else nullcontext():
         slow = [p.to_json() for p in graph.points(net, (3, 20, 18), all=True)]
     assert fast == slow and len(fast) > 3
+
+
+def test_initialisers_are_skipped_on_meta_tensors_only():
+    from splice.sources import initialisers_skipped
+
+    torch.manual_seed(0)
+    want = torch.rand(3)
+    torch.manual_seed(0)
+    with torch.device("meta"), initialisers_skipped():
+        net = nn.Sequential(nn.Conv2d(3, 8, 3), nn.BatchNorm2d(8), nn.Linear(8, 4), nn.LayerNorm(4))
+        w = torch.empty(5, 5)
+        assert nn.init.trunc_normal_(w, std=0.02) is w and nn.init.kaiming_uniform_(w) is w
+        assert w.mul_(2.0).add_(1.0).clamp_(-1, 1) is w
+        with pytest.raises(RuntimeError):
+            w.add_(torch.empty(3))  # not a number: the kernel runs and checks the shapes
+    assert all(p.is_meta for p in net.parameters())
+    assert torch.equal(torch.rand(3), want)  # the random generator did not move, as with the real meta kernels
+    with initialisers_skipped():
+        real = torch.zeros(4)
+        nn.init.ones_(real)  # a real tensor is written as usual
+    assert torch.equal(real, torch.ones(4))
