@@ -99,3 +99,26 @@ def test_gc_paused_puts_the_collector_back():
         assert not gc.isenabled()  # it was off before: it stays off
     finally:
         gc.enable()
+
+
+def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
+    from splice.graph.fallback import _call_counts
+    from splice.graph.recorded import _recorded_entries
+
+    class Twice(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.stem = nn.Conv2d(3, 4, 3, padding=1)
+            self.block = nn.Sequential(nn.Conv2d(4, 4, 3, padding=1), nn.BatchNorm2d(4), nn.ReLU())
+            self.head = nn.Conv2d(4, 2, 1)
+
+        def forward(self, x):
+            y = self.block(self.block(self.stem(x)))  # every module of the block runs twice
+            return self.head(y)
+
+    model = Twice().eval()
+    args = (torch.empty(1, 3, 8, 8),)
+    counts: dict[str, int] = {}
+    _recorded_entries(model, args, {}, _LeafRule(()), counts)
+    assert counts == _call_counts(model, args, {}, _LeafRule(()))
+    assert counts["block.0"] == 2 and counts["head"] == 1

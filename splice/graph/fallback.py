@@ -173,7 +173,7 @@ def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
 
 
 def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
-                  entries: list[_Entry]) -> list[_Entry]:
+                  entries: list[_Entry], one: dict[str, int] | None = None) -> list[_Entry]:
     """The entries whose module is called as often at batch 2, and in train mode, as at batch 1 in eval mode.
 
     A hook counts the calls of its module within one forward. A module called
@@ -182,7 +182,7 @@ def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
     training, so the recorded call would reach another tensor: such points are
     not listed.
     """
-    one = _call_counts(model, args, kwargs, rule)
+    one = one or _call_counts(model, args, kwargs, rule)
     if one is None:
         return entries
     others = [c for c in (_call_counts(model, _doubled(args), _doubled(kwargs), rule),
@@ -193,19 +193,21 @@ def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
 def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
                 input_shape: tuple[int, int, int]) -> list[_Entry]:
     """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`)."""
-    entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape)
-    return _batch_stable(model, args, kwargs, rule, entries)
+    counts: dict[str, int] = {}  # batch 1, eval mode: the recorded forward counts the calls too
+    entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape,
+                             counts=counts)
+    return _batch_stable(model, args, kwargs, rule, entries, counts or None)
 
 
 def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
-                   input_shape: tuple[int, int, int]) -> list[_Entry]:
+                   input_shape: tuple[int, int, int], counts: dict[str, int] | None = None) -> list[_Entry]:
     """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
 
     ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
     """
     shapes = "x".join(map(str, input_shape))
     try:
-        entries = _recorded_entries(model, args, kwargs, rule)
+        entries = _recorded_entries(model, args, kwargs, rule, counts)
         how = f"a meta-device run of the forward (specialised to input {shapes})"
     except Exception as exc:  # a forward that needs real values: torch.export may still manage
         recorded_problem = _reason(exc)

@@ -214,9 +214,16 @@ def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> tup
     return rec, out
 
 
-def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> list[_Entry]:
-    """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails)."""
+def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                      counts: dict[str, int] | None = None) -> list[_Entry]:
+    """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails).
+
+    ``counts``, when given, receives how often each module (by qualname) was called in that forward.
+    """
     rec, out = _record(model, args, kwargs, rule)
+    if counts is not None:
+        for qualname, *_ in rec.calls:
+            counts[qualname] = counts.get(qualname, 0) + 1
     outputs = [rec.producer[id(t)] for t in tree_leaves(out) if isinstance(t, torch.Tensor) and id(t) in rec.producer]
     graph, nodes, values = _graph(rec, list(dict.fromkeys(outputs)))
     cuts, joins = _cut_analysis(graph, values)
