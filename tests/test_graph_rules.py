@@ -31,6 +31,8 @@ def _cases():
         yield F.batch_norm, (_m(*shape, dtype=dtype), *stats), {}
         yield F.batch_norm, (_m(*shape, dtype=dtype), *stats, _m(c, dtype=dtype), _m(c, dtype=dtype)), {
             "training": False, "momentum": 0.1, "eps": 1e-5}
+        yield F.batch_norm, (_m(*shape, dtype=dtype), *stats), {"training": True}
+        yield F.batch_norm, (_m(*shape, dtype=dtype), None, None), {"training": True}
         last = shape[-1]
         yield F.layer_norm, (_m(*shape, dtype=dtype), (last,)), {}
         yield F.layer_norm, (_m(*shape, dtype=dtype), shape[-2:], _m(*shape[-2:], dtype=dtype),
@@ -76,8 +78,9 @@ def test_in_place_rules_hand_back_the_input(func, args, kwargs):
 
 @pytest.mark.parametrize("func,args,kwargs", [
     (F.batch_norm, (_m(1, 4, 5, 5), _m(3), _m(3)), {}),  # wrong channel count: the kernel names it
-    (F.batch_norm, (_m(2, 4, 5, 5), _m(4), _m(4)), {"training": True}),  # batch statistics
-    (F.batch_norm, (_m(2, 4, 5, 5), None, None), {}),
+    (F.batch_norm, (_m(1, 4), _m(4), _m(4)), {"training": True}),  # one value per channel: refused
+    (F.batch_norm, (_m(1, 4, 1, 1), _m(4), _m(4), None, None, True), {}),
+    (F.batch_norm, (_m(2, 4, 5, 5), None, None), {}),  # evaluation needs running statistics
     (F.batch_norm, (_m(1, 4, 5, 5), _m(4, dtype=torch.float64), _m(4)), {}),  # mixed dtypes
     (F.layer_norm, (_m(1, 4, 5, 5), (4,)), {}),  # not the trailing shape
     (F.linear, (_m(2, 5), _m(3, 4)), {}),  # in_features do not match

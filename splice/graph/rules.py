@@ -71,8 +71,11 @@ def _batch_norm(args: tuple, kwargs: dict):
     if not all(p is None or (isinstance(p, torch.Tensor) and p.is_meta and tuple(p.shape) == (x.shape[1],)
                              and p.dtype == x.dtype) for p in params):
         return None
-    if _arg(args, kwargs, 5, "training", False) or params[0] is None or params[1] is None:
-        return None  # batch statistics: leave the checks on the batch to the kernel
+    if _arg(args, kwargs, 5, "training", False):
+        if x.numel() // x.shape[1] <= 1:
+            return None  # batch statistics of one value per channel: F.batch_norm refuses them in its own words
+    elif params[0] is None or params[1] is None:
+        return None  # evaluation without running statistics: the kernel refuses it
     return _fresh(x.shape, x.dtype)
 
 
