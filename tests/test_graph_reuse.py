@@ -122,3 +122,43 @@ def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
     _recorded_entries(model, args, {}, _LeafRule(()), counts)
     assert counts == _call_counts(model, args, {}, _LeafRule(()))
     assert counts["block.0"] == 2 and counts["head"] == 1
+
+
+class _NormAct(nn.BatchNorm2d):
+    """A batch norm fused with its activation, written out as such layers are (it counts batches itself)."""
+
+    def forward(self, x):
+        if self.training:
+            self.num_batches_tracked.add_(1)
+        y = torch.nn.functional.batch_norm(x, self.running_mean, self.running_var, self.weight, self.bias,
+                                           self.training, 0.1, self.eps)
+        return torch.relu(y)
+
+
+class _FusedNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 4, 3, padding=1)
+        self.n = _NormAct(4)
+        self.b = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.b(self.n(self.a(x)))
+
+
+def test_a_train_mode_trace_first_finds_batch_counting_norms_with_one_trace_less(monkeypatch):
+    from splice.graph import tracing
+
+    calls = []
+    real = tracing._run_tracer
+    monkeypatch.setattr(tracing, "_run_tracer", lambda root, rule: calls.append(1) or real(root, rule))
+    model = _FusedNet().eval()
+    fast = graph.trace(model)
+    fast_calls = len(calls)
+    calls.clear()
+    monkeypatch.setattr(tracing, "_counts_batches_when_traced", lambda root, rule: False)
+    slow = graph.trace(model)
+    assert (fast_calls, len(calls)) == (2, 3)  # train + eval, against eval + train + eval
+    assert _signature(fast.graph) == _signature(slow.graph)
+    assert [n.target for n in fast.graph.nodes if n.op == "call_module"] == ["a", "n", "b"]  # the norm is a leaf
+    assert model.n.num_batches_tracked.item() == 0

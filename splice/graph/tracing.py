@@ -28,7 +28,7 @@ from torch import nn
 from ..collecting import gc_paused
 from ..copies import private_buffers
 from ..errors import GraphError, SpliceWarning, first_line
-from .leaves import _class_path, _LeafRule
+from .leaves import _class_path, _is_torch_builtin, _LeafRule
 
 __all__ = ["GraphWarning", "TraceModeWarning", "trace"]
 
@@ -246,6 +246,29 @@ def _updating_classes(root: nn.Module, before: dict) -> set[type]:
     return found
 
 
+def _counts_batches_when_traced(root: nn.Module, rule: _LeafRule) -> bool:
+    """A batch norm that tracks statistics and that the tracer would trace through (not a leaf) is in ``root``."""
+    from torch.nn.modules.batchnorm import _BatchNorm
+
+    return any(isinstance(m, _BatchNorm) and m.track_running_stats and not rule(type(m))
+               and not _is_torch_builtin(type(m)) for m in root.modules())
+
+
+def _train_trace(root: nn.Module, rule: _LeafRule) -> None:
+    """Trace ``root`` once in train mode, for the buffers it updates (a failure is left to the eval-mode rounds)."""
+    mods = list(root.modules())
+    saved = [(m, m.__dict__.get("training", True)) for m in mods]
+    try:
+        for m in mods:
+            m.__dict__["training"] = True
+        _run_tracer(root, rule)
+    except _FxFailure:
+        pass
+    finally:
+        for m, flag in saved:
+            m.__dict__["training"] = flag
+
+
 def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ.
 
@@ -255,7 +278,19 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     as leaves (opaque steps that run their own forward), found by the buffers'
     version counters, which works on the meta device too; the tracer then runs
     again. ``rule`` keeps them (see :meth:`_LeafRule.add`).
+
+    A batch norm that fx traces through (a subclass fused with its activation)
+    counts batches only in train mode, which the eval-mode trace cannot see:
+    when the tree holds one, a train-mode trace runs first to find the
+    updating modules, so that the eval-mode trace runs once with them as
+    leaves, not once before and once after. The last round (an eval-mode
+    trace, and a train-mode one if ``training`` is read, neither updating a
+    buffer) is the same either way.
     """
+    if _counts_batches_when_traced(root, rule):
+        before = _buffer_states(root)
+        _train_trace(root, rule)
+        rule.add({c for c in _updating_classes(root, before) if not rule(c)})
     for _ in range(4):
         before = _buffer_states(root)
         graph, difference = _trace_modes(root, rule)

@@ -22,25 +22,30 @@ __all__ = ["initialisers_skipped"]
 
 # in-place methods that only write values (random draws, fills): on a meta tensor they do nothing
 _WRITERS = frozenset({
-    torch.Tensor.normal_, torch.Tensor.uniform_, torch.Tensor.zero_, torch.Tensor.fill_, torch.Tensor.erfinv_,
-    torch.Tensor.exponential_, torch.Tensor.log_normal_, torch.Tensor.cauchy_, torch.Tensor.geometric_,
-    torch.Tensor.random_, torch.Tensor.bernoulli_,
+    "normal_", "uniform_", "zero_", "fill_", "erfinv_", "exponential_", "log_normal_", "cauchy_", "geometric_",
+    "random_", "bernoulli_",
 })
 # in-place arithmetic that initialisers apply to the draws (scale, shift, clip): skipped only with numbers
-_SCALERS = frozenset({
-    torch.Tensor.mul_, torch.Tensor.add_, torch.Tensor.sub_, torch.Tensor.div_, torch.Tensor.clamp_,
-    torch.Tensor.clamp_min_, torch.Tensor.clamp_max_,
-})
+_SCALERS = frozenset({"mul_", "add_", "sub_", "div_", "clamp_", "clamp_min_", "clamp_max_"})
+
+
+def _tensor_method(func, name: str) -> bool:
+    return func is getattr(torch.Tensor, name, None) or func is getattr(torch._C.TensorBase, name, None)
 
 
 def _skippable(func, args: tuple, kwargs: dict) -> bool:
-    if not args or not isinstance(args[0], torch.Tensor) or not args[0].is_meta:
+    name = getattr(func, "__name__", "")
+    if getattr(func, "__module__", None) == "torch.nn.init" and name.endswith("_"):
+        # torch.nn.init's initialisers (normal_, trunc_normal_, kaiming_uniform_, ...) fill their first argument
+        target = args[0] if args else kwargs.get("tensor")
+        return isinstance(target, torch.Tensor) and target.is_meta
+    if not args or not isinstance(args[0], torch.Tensor) or not args[0].is_meta or not _tensor_method(func, name):
         return False
-    if func in _WRITERS:
-        values = (*args[1:], *kwargs.values())
+    values = (*args[1:], *kwargs.values())
+    if name in _WRITERS:
         return all(not isinstance(v, torch.Tensor) or (v.is_meta and v.dim() == 0) for v in values)
-    if func in _SCALERS:
-        return all(isinstance(v, (int, float, bool)) or v is None for v in (*args[1:], *kwargs.values()))
+    if name in _SCALERS:
+        return all(isinstance(v, (int, float, bool)) or v is None for v in values)
     return False
 
 
@@ -48,7 +53,7 @@ class _SkipInitialisers(TorchFunctionMode):
     def __torch_function__(self, func, types, args=(), kwargs=None):
         kwargs = kwargs or {}
         if _skippable(func, args, kwargs):
-            return args[0]
+            return args[0] if args else kwargs["tensor"]
         return func(*args, **kwargs)
 
 
