@@ -314,6 +314,13 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
         try:
             return _load_into(frame, state, folder, assign=True)
         except WeightsError:
+            pass  # the paths below name what does not fit
+        try:
+            # traced on the meta device, the frame may hold constants the tracer lifted (a view of a
+            # buffer): trace the base filled with the folder's tensors instead, which needs no random init
+            base = _base_from_state(info, base_part(state), trust_pickle=trust_pickle, trust_code=trust_code)
+            return assemble(base, info, state, folder)
+        except WeightsError:
             pass  # the strict, slow path below names what does not fit
     return assemble(_rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code), info, state, folder)
 
