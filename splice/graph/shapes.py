@@ -19,6 +19,7 @@ import torch
 import torch.fx as fx
 from torch import nn
 
+from ..copies import tree_copy
 from ..errors import GraphError
 from .leaves import _is_torch_builtin
 from .rules import _ShapeRules, meta_rule
@@ -47,7 +48,7 @@ def _meta_module(mod: nn.Module) -> nn.Module:
             continue
         meta = _meta_empty(t.shape, t.dtype)
         memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
-    copied = copy.deepcopy(mod, memo)
+    copied = tree_copy(mod, memo)
     copied.eval()
     return copied
 

@@ -14,7 +14,6 @@ is traced (a fused BatchNorm counting batches) never changes the caller's model.
 
 from __future__ import annotations
 
-import copy
 import operator
 import warnings
 from collections.abc import Iterable, Iterator
@@ -26,7 +25,7 @@ import torch.fx as fx
 from torch import nn
 
 from ..collecting import gc_paused
-from ..copies import private_buffers
+from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import _class_path, _is_torch_builtin, _LeafRule
 
@@ -403,7 +402,7 @@ def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.M
     Raises :class:`_FxFailure` when fx cannot trace the model.
     """
     try:
-        work = copy.deepcopy(model)
+        work = tree_copy(model)
     except Exception as exc:
         raise GraphError(
             f"cannot copy {type(model).__name__} for tracing ({_reason(exc)}); "
