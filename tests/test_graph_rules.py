@@ -40,6 +40,11 @@ def _cases():
         yield F.linear, (_m(*shape, dtype=dtype), _m(11, last, dtype=dtype)), {}
         yield F.linear, (_m(*shape, dtype=dtype), _m(3, last, dtype=dtype), _m(3, dtype=dtype)), {}
         yield F.linear, (_m(*shape, dtype=dtype), _m(3, last, dtype=dtype)), {"bias": _m(3, dtype=dtype)}
+        if len(shape) == 4:  # a channels-last view, as convnext blocks make: the output is contiguous anyway
+            view = _m(*shape, dtype=dtype).permute(0, 2, 3, 1)
+            yield F.layer_norm, (view, (c,), _m(c, dtype=dtype), _m(c, dtype=dtype)), {"eps": 1e-6}
+            yield F.linear, (view, _m(5, c, dtype=dtype), _m(5, dtype=dtype)), {}
+            yield F.linear, (_m(*shape, dtype=dtype).transpose(2, 3), _m(5, shape[2], dtype=dtype)), {}
         for fn in (F.relu, F.relu6, F.silu, F.hardswish, F.hardsigmoid, F.mish, F.gelu, F.sigmoid, F.tanh,
                    torch.relu, torch.sigmoid, torch.tanh):
             yield fn, (_m(*shape, dtype=dtype),), {}

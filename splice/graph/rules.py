@@ -8,7 +8,8 @@ input's dtype whose shape follows from the arguments' shapes alone (or, for
 an in-place activation, the input itself).
 
 A rule applies only when it is sure: every tensor on the meta device,
-contiguous inputs, matching dtypes and the shapes the real kernel accepts.
+contiguous inputs (layer norm and linear give a contiguous output from any
+layout), matching dtypes and the shapes the real kernel accepts.
 Otherwise it returns ``None`` and the real meta kernel runs, and reports any
 error in its own words. :class:`_ShapeRules` applies the rules to every
 torch function called inside a ``with`` block (the leaf modules of a traced
@@ -31,9 +32,14 @@ __all__: list[str] = []
 _META = torch.device("meta")
 
 
+def _floating(t: Any) -> bool:
+    """A floating-point tensor on the meta device."""
+    return isinstance(t, torch.Tensor) and t.is_meta and t.is_floating_point()
+
+
 def _plain(t: Any) -> bool:
     """A contiguous floating-point tensor on the meta device."""
-    return isinstance(t, torch.Tensor) and t.is_meta and t.is_floating_point() and t.is_contiguous()
+    return _floating(t) and t.is_contiguous()
 
 
 def _fresh(shape, dtype: torch.dtype) -> torch.Tensor:
@@ -81,7 +87,8 @@ def _batch_norm(args: tuple, kwargs: dict):
 
 def _layer_norm(args: tuple, kwargs: dict):
     """``F.layer_norm(input, normalized_shape, weight, bias, eps)``."""
-    if len(args) < 2 or not _plain(args[0]) or set(kwargs) - {"weight", "bias", "eps"}:
+    # the output is contiguous whatever the input's layout (a channels-last view, as in convnext blocks)
+    if len(args) < 2 or not _floating(args[0]) or set(kwargs) - {"weight", "bias", "eps"}:
         return None
     x, shape = args[0], args[1]
     shape = (shape,) if isinstance(shape, int) else tuple(shape) if isinstance(shape, (list, tuple)) else None
@@ -98,7 +105,7 @@ def _layer_norm(args: tuple, kwargs: dict):
 
 def _linear(args: tuple, kwargs: dict):
     """``F.linear(input, weight, bias)``: (..., in) @ (out, in)^T -> (..., out)."""
-    if len(args) < 2 or not _plain(args[0]) or set(kwargs) - {"bias"}:
+    if len(args) < 2 or not _floating(args[0]) or set(kwargs) - {"bias"}:  # contiguous output, as layer_norm
         return None
     x, w = args[0], args[1]
     b = _arg(args, kwargs, 2, "bias", None)
