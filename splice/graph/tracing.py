@@ -45,23 +45,30 @@ class _Tracer(fx.Tracer):
         super().__init__()
         self._rule = rule
         self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
-        # id(tensor) -> (tensor, its first name), for the root's parameters and its buffers: fx's own
-        # getattr searches every parameter, then every buffer, of the root on each attribute read
-        self._params: dict[int, tuple[torch.Tensor, str]] = {}
+        # id(tensor) -> (tensor, its first name), for the root's parameters and its buffers, made on the first
+        # lookup: fx's own getattr searches every parameter, then every buffer, of the root on each read
+        self._params: dict[int, tuple[torch.Tensor, str]] | None = None
         self._buffers: dict[int, tuple[torch.Tensor, str]] = {}
 
     def trace(self, root, concrete_args=None):
-        self._params, self._buffers = {}, {}
-        if isinstance(root, nn.Module):
-            for table, items in ((self._params, root.named_parameters()), (self._buffers, root.named_buffers())):
-                for name, t in items:
-                    table.setdefault(id(t), (t, name))
+        self._params, self._buffers = None, {}
         return super().trace(root, concrete_args)
+
+    def _tables(self) -> tuple[dict, dict]:
+        if self._params is None:
+            self._params = {}
+            if isinstance(getattr(self, "root", None), nn.Module):
+                for table, items in ((self._params, self.root.named_parameters()),
+                                     (self._buffers, self.root.named_buffers())):
+                    for name, t in items:
+                        table.setdefault(id(t), (t, name))
+        return self._params, self._buffers
 
     def _root_name(self, value: Any) -> str | None:
         """The name fx's search would find for ``value`` (parameters first, then buffers), or None."""
-        tables = ((self._params,) if isinstance(value, nn.Parameter) else ()) + (
-            (self._buffers,) if self.proxy_buffer_attributes else ())
+        params, buffers = self._tables()
+        tables = ((params,) if isinstance(value, nn.Parameter) else ()) + (
+            (buffers,) if self.proxy_buffer_attributes else ())
         for table in tables:
             found = table.get(id(value))
             if found is not None and found[0] is value:
@@ -82,8 +89,8 @@ class _Tracer(fx.Tracer):
     def create_arg(self, a: Any) -> Any:
         """fx's rule (a tensor of the root is a ``get_attr`` node), with the same identity lookup."""
         if isinstance(a, torch.Tensor):
-            table = self._params if isinstance(a, nn.Parameter) else self._buffers
-            found = table.get(id(a))
+            params, buffers = self._tables()
+            found = (params if isinstance(a, nn.Parameter) else buffers).get(id(a))
             if found is not None and found[0] is a:
                 return self.create_node("get_attr", found[1], (), {})
         return super().create_arg(a)
