@@ -28,18 +28,12 @@ from torch import nn
 
 from ._io import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
-from .manifest import (
-    MANIFEST_NAME,
-    SCHEMA_VERSION,
-    WEIGHTS_NAME,
-    SpliceInfo,
-    attach_info,
-    info_of,
-    validate_manifest,
-)
+from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
+                       validate_manifest)
 from .version import library_versions
 from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped, is_hf_folder,
                       load_source, parse_input_shapes, read_safetensors, with_metadata)
+from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
 __all__ = [
@@ -287,6 +281,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
         _adopt(model, state)
+        relink_lifted(model)  # constants the tracer lifted from buffer views, on the meta device until now
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
             if p is not None and (p.dtype != warp.base_grid.dtype or p.device != warp.base_grid.device):
@@ -316,8 +311,8 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
         except WeightsError:
             pass  # the paths below name what does not fit
         try:
-            # traced on the meta device, the frame may hold constants the tracer lifted (a view of a
-            # buffer): trace the base filled with the folder's tensors instead, which needs no random init
+            # traced on the meta device, the frame may hold other constants the tracer lifted: trace the
+            # base filled with the folder's tensors instead, which needs no random init
             base = _base_from_state(info, base_part(state), trust_pickle=trust_pickle, trust_code=trust_code)
             return assemble(base, info, state, folder)
         except WeightsError:

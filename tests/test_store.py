@@ -250,9 +250,10 @@ def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_pat
     from splice import store
     from splice.store import load_base
 
-    real_builds = []
-    rebuild = store._rebuild_base
+    real_builds, retraced = [], []
+    rebuild, assemble = store._rebuild_base, store.assemble
     monkeypatch.setattr(store, "_rebuild_base", lambda *a, **k: real_builds.append(1) or rebuild(*a, **k))
+    monkeypatch.setattr(store, "assemble", lambda *a, **k: retraced.append(1) or assemble(*a, **k))
     spliced = insert(f"{builders}:{factory}", at="input", input_shape=(1, 12, 12))
     with torch.no_grad():  # weights a fresh init would not give, so a random init cannot pass for them
         for p in spliced.parameters():
@@ -269,10 +270,11 @@ def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_pat
     base = load_base(folder, trust_code=True)
     assert not any(t.is_meta for t in (*base.parameters(), *base.buffers()))
     assert all(torch.equal(v, base.state_dict()[k]) for k, v in want.items() if not k.startswith("splice_warps."))
-    # plain is never built for real (no random init), nor is buffer_view (its spliced graph, whose lifted
-    # constant the meta device cannot hold, is traced on the base filled with the folder's tensors); the
-    # other two are, once for load and once for load_base
+    # plain is never built for real (no random init), nor is buffer_view (the view of a buffer its graph
+    # lifts, on the meta device while the frame was traced, is taken again from the adopted buffer: no second
+    # trace either); the other two are, once for load and once for load_base
     assert len(real_builds) == (0 if factory in ("plain", "buffer_view") else 2)
+    assert len(retraced) == (0 if factory in ("plain", "buffer_view") else 1)
 
 
 def test_float64_folder_loads_with_float64_warp_grids(builders, tmp_path):

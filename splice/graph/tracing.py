@@ -29,7 +29,7 @@ from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import _class_path, _is_torch_builtin, _LeafRule
 
-__all__ = ["GraphWarning", "TraceModeWarning", "trace"]
+__all__ = ["GraphWarning", "TraceModeWarning", "trace", "relink_lifted"]
 
 
 class GraphWarning(SpliceWarning):
@@ -382,6 +382,36 @@ def _adopt_lifted(graph: fx.Graph, traced: nn.Module, work: nn.Module) -> list[s
     return lifted
 
 
+_VIEWS = "_splice_lifted_views"  # on a GraphModule: {constant: (buffer, size, stride, offset in the buffer)}
+
+
+def _buffer_views(twin: nn.Module, constants: dict[str, Any]) -> dict[str, tuple]:
+    """The lifted constants that are views of one of ``twin``'s buffers (code that reads ``self.index.view(-1)``
+    hands the tracer a real tensor), each with where it sits in that buffer."""
+    owners = {id(b): (name, b) for name, b in twin.named_buffers()}
+    views = {}
+    for name, c in constants.items():
+        base = c._base if isinstance(c, torch.Tensor) else None
+        found = owners.get(id(base)) if base is not None else None
+        if found is not None and found[1] is base:
+            views[name] = (found[0], tuple(c.shape), tuple(c.stride()), c.storage_offset() - base.storage_offset())
+    return views
+
+
+def relink_lifted(gm: nn.Module) -> None:
+    """Make each lifted constant that was a view of a buffer a view of that buffer again.
+
+    A graph traced on the meta device lifts such a view as a meta tensor; once
+    the buffers hold real tensors (a folder's weights adopted), the view is
+    taken again from them, with the same size, stride and offset, so it holds
+    what a trace of the real model would have lifted.
+    """
+    for name, (buffer, size, stride, offset) in getattr(gm, _VIEWS, {}).items():
+        source = gm.get_buffer(buffer)
+        if not source.is_meta and gm._buffers.get(name) is not None and gm._buffers[name].is_meta:
+            gm._buffers[name] = source.as_strided(size, stride, source.storage_offset() + offset)
+
+
 def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
 
@@ -423,5 +453,8 @@ def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.M
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     for name in lifted:
         gm._non_persistent_buffers_set.add(name)
+    views = _buffer_views(twin, {name: getattr(gm, name) for name in lifted})
+    if views:
+        gm.__dict__[_VIEWS] = views
     gm.training = model.training  # submodules keep their own (copied) flags
     return gm, twin
