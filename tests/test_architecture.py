@@ -19,7 +19,7 @@ MAX_FUNCTION_LINES = 80
 # DEVELOPERS.md "Layers": the first dotted part under splice -> floor
 FLOORS = {
     "errors": 1, "_io": 1, "folders": 1, "version": 1, "compare": 1, "copies": 1, "progress": 1, "pictures": 1,
-    "limits": 1, "collecting": 1,
+    "limits": 1,
     "warps": 2, "distort": 2, "data": 2, "recipes": 2, "models": 2,
     "sources": 3, "graph": 3,
     "manifest": 4, "surgery": 4, "hooks": 4,

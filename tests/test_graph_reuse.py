@@ -1,9 +1,7 @@
 """The graph passes' shortcuts give what the long way gives: fx's own tracer, listing then tracing again,
-and the collector switched back on."""
+counting calls in the recorded forward, a train-mode trace first."""
 
 from __future__ import annotations
-
-import gc
 
 import pytest
 import torch
@@ -11,7 +9,6 @@ import torch.fx as fx
 from torch import nn
 
 from splice import graph
-from splice.collecting import gc_paused
 from splice.graph.leaves import _LeafRule
 from splice.graph.tracing import _Tracer
 
@@ -78,27 +75,6 @@ def test_trace_points_without_fx_gives_no_graph():
     with pytest.warns(graph.TraceFallbackWarning, match="could not trace"):
         listed, gm = graph.trace_points(Gate(), (3, 8, 8))
     assert gm is None and listed[0].mechanism == "hooks"
-
-
-def test_gc_paused_puts_the_collector_back():
-    assert gc.isenabled()
-    with gc_paused():
-        assert not gc.isenabled()
-        with gc_paused():
-            assert not gc.isenabled()
-        assert not gc.isenabled()  # the inner block found it off and leaves it off
-    assert gc.isenabled()
-    with pytest.raises(RuntimeError, match="boom"):
-        with gc_paused():
-            raise RuntimeError("boom")
-    assert gc.isenabled()
-    gc.disable()
-    try:
-        with gc_paused():
-            pass
-        assert not gc.isenabled()  # it was off before: it stays off
-    finally:
-        gc.enable()
 
 
 def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():

@@ -25,7 +25,6 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from ..collecting import gc_paused
 from ..copies import private_buffers
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes
@@ -233,8 +232,7 @@ def points(
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
-    with gc_paused():  # tracing and recording make many objects that live until the listing is done
-        return _list(model, shapes, _LeafRule(leaves), all, warp, within)[0]
+    return _list(model, shapes, _LeafRule(leaves), all, warp, within)[0]
 
 
 def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), warp: str = "affine",
@@ -249,8 +247,7 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
-    with gc_paused():
-        return _list(model, shapes, _LeafRule(leaves), True, warp, within, keep=True)
+    return _list(model, shapes, _LeafRule(leaves), True, warp, within, keep=True)
 
 
 def _list(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,

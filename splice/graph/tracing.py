@@ -24,7 +24,6 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from ..collecting import gc_paused
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import _class_path, _is_torch_builtin, _LeafRule
@@ -446,8 +445,7 @@ def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.M
             "splice never traces the caller's model in place: make the model deep-copyable"
         ) from exc
     twin = private_buffers(work)
-    with gc_paused():
-        graph = _trace_owned(twin, rule)
+    graph = _trace_owned(twin, rule)
     _unspy_meta(graph)
     lifted = _adopt_lifted(graph, twin, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
