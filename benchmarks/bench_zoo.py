@@ -4,10 +4,11 @@ For every architecture of ``tests/zoo.py`` (timm, Hugging Face and torchvision m
 weights and BatchNorm statistics calibrated on random inputs), this runs the whole certificate: points ->
 insert at ``recommended`` with ``affine`` -> verify with ONNX -> export. It prints the fraction that pass
 (goal 1.0) and, per model, the cost of ``points``, ``insert`` and ``verify`` (without ONNX) divided by one
-batch-1 eval forward pass of the same model at the input size it is used at (224x224, 320x320 for the
-detector), measured in the same run. Goals:
+batch-1 eval forward pass of the same model at the input size it is used at (224x224 per input, 320x320
+for the detector), measured in the same run. Goals:
 ``points`` at most 1 forward pass on every model, ``verify`` without ONNX at most 10; ``insert`` is
-reported (it lists the points, splices and runs one identity check). Each cost is the median of
+reported (it lists the points and traces the model in one pass, splices, and runs one identity check on a
+batch of 2). Each cost is the median of
 ``repeats`` runs; the forward pass is the best of as many.
 
 Run ``python benchmarks/bench_zoo.py [--threads T] [MODEL_ID ...]``; ``run()`` returns the rows for
