@@ -4,14 +4,18 @@ For every architecture of ``tests/zoo.py`` (timm, Hugging Face and torchvision m
 weights and BatchNorm statistics calibrated on random inputs), this runs the whole certificate: points ->
 insert at ``recommended`` with ``affine`` -> verify with ONNX -> export. It prints the fraction that pass
 (goal 1.0) and, per model, the cost of ``points``, ``insert`` and ``verify`` (without ONNX) divided by one
-batch-1 eval forward pass of the same model at the input size it is used at (224x224, 320x320 for the
-detector), measured in the same run. Goals:
+batch-1 eval forward pass of the same model at the input size it is used at (224x224 per input, 320x320
+for the detector), measured in the same run. Goals:
 ``points`` at most 1 forward pass on every model, ``verify`` without ONNX at most 10; ``insert`` is
-reported (it lists the points, splices and runs one identity check). Each cost is the median of
+reported (it lists the points and traces the model in one pass, splices, and runs one identity check on a
+batch of 2). Each cost is the median of
 ``repeats`` runs; the forward pass is the best of as many.
 
-Run ``python benchmarks/bench_zoo.py [MODEL_ID ...]``; ``run()`` returns the rows for ``benchmarks/run.py``.
-It takes several minutes: run it on an otherwise idle machine.
+Run ``python benchmarks/bench_zoo.py [--threads T] [MODEL_ID ...]``; ``run()`` returns the rows for
+``benchmarks/run.py``. ``--threads`` sets torch's thread count for the forward baseline and the steps alike
+(default: torch's own). It takes several minutes: run it on an otherwise idle machine, or, when other jobs
+share the cores, with ``--threads 1`` so that neither the baseline nor the steps fight for a core they do not
+have (the ratios then compare single-threaded work on both sides).
 """
 
 from __future__ import annotations
@@ -97,7 +101,18 @@ def run(ids=None, repeats: int = _REPEATS) -> list[dict]:
 
 
 def main(argv: list[str]) -> int:
-    rows, fraction = _measure(argv or None)
+    import argparse
+
+    import torch
+
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's own)")
+    parser.add_argument("ids", nargs="*", metavar="MODEL_ID")
+    args = parser.parse_args(argv)
+    if args.threads:
+        torch.set_num_threads(args.threads)
+    print(f"torch {torch.__version__}, {torch.get_num_threads()} thread(s)")
+    rows, fraction = _measure(args.ids or None)
     print(f"{'model':52} {'result':6} {'mechanism':9} {'forward ms':>10} {'points':>7} {'insert':>7} {'verify':>7}")
     for row in rows:
         c = row["costs"]

@@ -27,12 +27,12 @@ pickling carry them along, and the per-forward state is never copied.
 
 from __future__ import annotations
 
-import copy
 from collections.abc import Mapping, Sequence
 
 import torch
 from torch import nn
 
+from .copies import tree_copy
 from .errors import PointError, suggest
 
 __all__ = ["WARP_PREFIX", "apply_hooks", "hooks_installed"]
@@ -163,7 +163,7 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
 
     if WARP_PREFIX in dict(model.named_children()) or hooks_installed(model):
         raise PointError(f"the model already has warps ({WARP_PREFIX!r}); splice the original model instead")
-    work = copy.deepcopy(model)
+    work = tree_copy(model)
     if factory is None:
         param = next(iter(model.parameters()), None)
         factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}

@@ -28,18 +28,12 @@ from torch import nn
 
 from ._io import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
-from .manifest import (
-    MANIFEST_NAME,
-    SCHEMA_VERSION,
-    WEIGHTS_NAME,
-    SpliceInfo,
-    attach_info,
-    info_of,
-    validate_manifest,
-)
+from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
+                       validate_manifest)
 from .version import library_versions
-from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, is_hf_folder, load_source,
-                      parse_input_shapes, read_safetensors, with_metadata)
+from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped, is_hf_folder,
+                      load_source, parse_input_shapes, read_safetensors, with_metadata)
+from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
 __all__ = [
@@ -179,7 +173,7 @@ def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
         return None
     _check_base_spec(info, trust_code)  # refused specs are refused, not left to the slow path
     try:
-        with _META:
+        with _META, initialisers_skipped():
             model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
     except Exception:  # any failure here only means "build it the slow way"
         return None
@@ -287,6 +281,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
         _adopt(model, state)
+        relink_lifted(model)  # constants the tracer lifted from buffer views, on the meta device until now
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
             if p is not None and (p.dtype != warp.base_grid.dtype or p.device != warp.base_grid.device):
@@ -313,6 +308,13 @@ def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *
     if frame is not None:
         try:
             return _load_into(frame, state, folder, assign=True)
+        except WeightsError:
+            pass  # the paths below name what does not fit
+        try:
+            # traced on the meta device, the frame may hold other constants the tracer lifted: trace the
+            # base filled with the folder's tensors instead, which needs no random init
+            base = _base_from_state(info, base_part(state), trust_pickle=trust_pickle, trust_code=trust_code)
+            return assemble(base, info, state, folder)
         except WeightsError:
             pass  # the strict, slow path below names what does not fit
     return assemble(_rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code), info, state, folder)

@@ -350,8 +350,7 @@ def insert(
         raise SourceError("insert needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW")
     leaves = tuple(leaves) or tuple(src.leaves)
     base = src.model
-    listing = graph.points(base, src.input_shapes, all=True, leaves=leaves, within=within)
-    traced = graph.trace(base, leaves=leaves) if listing[0].mechanism == "fx" else None
+    listing, traced = graph.trace_points(base, src.input_shapes, leaves=leaves, within=within)
     names = _resolve_points([at] if isinstance(at, str) else list(at), listing, traced)
     by_name = {p.name: p for p in listing}
     plan = [SplicePlan(name, _warp_config(warp, name)) for name in names]

@@ -4,6 +4,8 @@ tracer lifts constants."""
 
 from __future__ import annotations
 
+import copy
+
 import warnings
 
 import pytest
@@ -182,3 +184,67 @@ def test_timm_fused_batchnorm_models_keep_provenance(tmp_path):
     report = verify(folder)  # timm:NAME is a registry kind: no code opt-in needed
     assert report["provenance"].passed, report["provenance"].detail
     assert report.passed, report.failed
+
+
+class _OwnCopy(nn.Module):
+    """Copies itself its own way: tree_copy must leave that to copy.deepcopy."""
+
+    copies = 0
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(2, 2, 1)
+
+    def forward(self, x):
+        return self.conv(x)
+
+    def __deepcopy__(self, memo):
+        type(self).copies += 1
+        fresh = _OwnCopy()
+        fresh.load_state_dict(self.state_dict())
+        return fresh
+
+
+class _Tree(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.shared = nn.Conv2d(2, 2, 3, padding=1)
+        self.pair = nn.ModuleList([self.shared, nn.BatchNorm2d(2)])  # one module under two names
+        self.other = nn.Conv2d(2, 2, 3, padding=1)
+        self.other.weight = self.shared.weight  # tied
+        self.own = _OwnCopy()
+        self.notes = ["a"]
+        self.table = {"k": [1, 2]}
+        self.register_buffer("steps", torch.zeros(()), persistent=False)
+        self.seen = []
+        self.shared.register_forward_hook(lambda m, a, o: None)
+
+    def forward(self, x):
+        return self.own(self.other(self.pair[1](self.shared(x))))
+
+
+def test_tree_copy_is_a_deep_copy():
+    from splice.copies import tree_copy
+
+    model = _Tree().eval()
+    before = _OwnCopy.copies
+    ours, theirs = tree_copy(model), copy.deepcopy(model)
+    assert _OwnCopy.copies == before + 2  # the module with its own __deepcopy__ was copied its way both times
+    assert [(n, type(m)) for n, m in ours.named_modules()] == [(n, type(m)) for n, m in theirs.named_modules()]
+    assert ours.pair[0] is ours.shared and ours.other.weight is ours.shared.weight  # sharing kept
+    assert list(ours.shared._forward_hooks) == list(model.shared._forward_hooks)
+    mine = {id(t) for t in (*model.parameters(), *model.buffers())}
+    assert not mine & {id(t) for t in (*ours.parameters(), *ours.buffers())}
+    ours.notes.append("b")
+    ours.table["k"].append(3)
+    ours.shared._forward_hooks.clear()
+    assert model.notes == ["a"] and model.table == {"k": [1, 2]} and len(model.shared._forward_hooks) == 1
+    assert ours._non_persistent_buffers_set == {"steps"} and ours._non_persistent_buffers_set is not \
+        model._non_persistent_buffers_set
+    x = torch.randn(1, 2, 5, 5)
+    with torch.no_grad():
+        assert torch.equal(ours(x), model(x)) and torch.equal(theirs(x), model(x))
+    # a memo swaps tensors, as with copy.deepcopy (how the meta twins are made)
+    memo = {id(p): nn.Parameter(torch.empty(p.shape, device="meta")) for p in model.parameters()}
+    meta = tree_copy(model, memo)
+    assert all(p.is_meta for n, p in meta.named_parameters() if not n.startswith("own."))

@@ -86,9 +86,9 @@ from __future__ import annotations
 from . import leaves as _leaves
 from .fallback import TraceFallbackWarning
 from .leaves import leaves_added, register_leaf
-from .listing import Point, points, points_report
+from .listing import Point, points, points_report, trace_points
 from .naming import find_point, point_names
-from .tracing import GraphWarning, TraceModeWarning, trace
+from .tracing import GraphWarning, TraceModeWarning, relink_lifted, trace
 
 __all__ = [
     "DEFAULT_LEAVES",
@@ -99,7 +99,9 @@ __all__ = [
     "register_leaf",
     "leaves_added",
     "trace",
+    "relink_lifted",
     "points",
+    "trace_points",
     "find_point",
     "point_names",
     "points_report",

@@ -32,6 +32,7 @@ from .entries import _CONV_MODULES, _Entry
 from .exported import _export_entries
 from .recorded import _recorded_entries
 from .leaves import _class_path, _is_torch_builtin, _LeafRule
+from .rules import _ShapeRules
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
 from .tracing import GraphWarning, _reason
 
@@ -109,7 +110,7 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, p
     _step_over_leaves(meta, model, rule)
     timeline = _Timeline(meta)
     try:
-        with torch.no_grad(), torch.device(_META):
+        with torch.no_grad(), torch.device(_META), _ShapeRules():
             meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
     except Exception as exc:
         raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
@@ -161,7 +162,7 @@ def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
 
     handles = [m.register_forward_hook(count) for m in names]
     try:
-        with torch.no_grad(), torch.device(_META):
+        with torch.no_grad(), torch.device(_META), _ShapeRules():
             meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
     except Exception:  # the forward does not run at this batch size: nothing to compare
         return None
@@ -172,7 +173,7 @@ def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
 
 
 def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
-                  entries: list[_Entry]) -> list[_Entry]:
+                  entries: list[_Entry], one: dict[str, int] | None = None) -> list[_Entry]:
     """The entries whose module is called as often at batch 2, and in train mode, as at batch 1 in eval mode.
 
     A hook counts the calls of its module within one forward. A module called
@@ -181,7 +182,7 @@ def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
     training, so the recorded call would reach another tensor: such points are
     not listed.
     """
-    one = _call_counts(model, args, kwargs, rule)
+    one = one or _call_counts(model, args, kwargs, rule)
     if one is None:
         return entries
     others = [c for c in (_call_counts(model, _doubled(args), _doubled(kwargs), rule),
@@ -192,19 +193,21 @@ def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
 def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
                 input_shape: tuple[int, int, int]) -> list[_Entry]:
     """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`)."""
-    entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape)
-    return _batch_stable(model, args, kwargs, rule, entries)
+    counts: dict[str, int] = {}  # batch 1, eval mode: the recorded forward counts the calls too
+    entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape,
+                             counts=counts)
+    return _batch_stable(model, args, kwargs, rule, entries, counts or None)
 
 
 def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
-                   input_shape: tuple[int, int, int]) -> list[_Entry]:
+                   input_shape: tuple[int, int, int], counts: dict[str, int] | None = None) -> list[_Entry]:
     """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
 
     ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
     """
     shapes = "x".join(map(str, input_shape))
     try:
-        entries = _recorded_entries(model, args, kwargs, rule)
+        entries = _recorded_entries(model, args, kwargs, rule, counts)
         how = f"a meta-device run of the forward (specialised to input {shapes})"
     except Exception as exc:  # a forward that needs real values: torch.export may still manage
         recorded_problem = _reason(exc)
@@ -217,9 +220,9 @@ def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
             why = f"{problem}; {export_problem}" if problem else export_problem
             entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
             warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "
-                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=5)
+                          f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=6)
             return entries
     if problem:
         warnings.warn(f"{problem}; points come from {how} and warps go in by forward hooks at module outputs "
-                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=5)
+                      "(mechanism 'hooks')", TraceFallbackWarning, stacklevel=6)
     return entries

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import torch
+import torch.fx as fx
 from torch import nn
 
 from ..copies import private_buffers
@@ -33,9 +34,9 @@ from .leaves import _LeafRule
 from .naming import _describe_node, _point_names
 from .scope import _scope_inputs
 from .shapes import _input_dtype, _propagate, _ShapeFailure
-from .tracing import _check_model, _fx_failure_hint, _FxFailure, _reason, _trace_owned
+from .tracing import _check_model, _fx_failure_hint, _FxFailure, _reason, _trace_copy, _trace_owned
 
-__all__ = ["Point", "points", "points_report"]
+__all__ = ["Point", "points", "trace_points", "points_report"]
 
 # the rule in the module docstring, "Recommended points"
 _RECOMMEND_MIN_STRIDE = 4
@@ -180,10 +181,16 @@ def _check_arity(model: nn.Module, shapes: tuple) -> None:
                          "--input-shape per input (input_shape=[(C, H, W), ...])")
 
 
-def _fx_entries(model: nn.Module, shapes: tuple, rule: _LeafRule) -> list[_Entry]:
-    """Entries of the fx graph (raises :class:`_FxFailure` when fx cannot trace the model)."""
-    root = private_buffers(model)
-    graph = _trace_owned(root, rule)
+def _fx_entries(model: nn.Module, shapes: tuple, rule: _LeafRule,
+                keep: bool = False) -> tuple[list[_Entry], fx.GraphModule | None]:
+    """Entries of the fx graph, and with ``keep`` the traced GraphModule they name (:func:`trace`'s result);
+    raises :class:`_FxFailure` when fx cannot trace the model."""
+    if keep:
+        gm, root = _trace_copy(model, rule)
+        graph = gm.graph
+    else:
+        gm, root = None, private_buffers(model)
+        graph = _trace_owned(root, rule)
     modules = dict(root.named_modules())
     try:
         values = _propagate(graph, root, modules, shapes)
@@ -195,7 +202,7 @@ def _fx_entries(model: nn.Module, shapes: tuple, rule: _LeafRule) -> list[_Entry
             "check that the model takes inputs of this (C, H, W), or mark the failing module as a leaf "
             "(--leaf TYPE, Python: leaves=[TYPE])"
         ) from failure.error
-    return _graph_entries(graph, modules, values)
+    return _graph_entries(graph, modules, values), gm
 
 
 def points(
@@ -225,7 +232,26 @@ def points(
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
-    rule = _LeafRule(leaves)
+    return _list(model, shapes, _LeafRule(leaves), all, warp, within)[0]
+
+
+def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), warp: str = "affine",
+                 within: str = "") -> tuple[list[Point], fx.GraphModule | None]:
+    """``points(model, input_shape, all=True, ...)`` and, for mechanism ``fx``, ``trace(model)``, from one trace.
+
+    The GraphModule is :func:`~splice.graph.trace`'s (it owns copies of the
+    model's tensors) and its nodes are the ones listed; it is ``None`` when the
+    points are reached by hooks.
+    """
+    _check_model(model, "trace_points()")
+    shapes = _check_input_shapes(input_shape)
+    _check_images(model)
+    _check_arity(model, shapes)
+    return _list(model, shapes, _LeafRule(leaves), True, warp, within, keep=True)
+
+
+def _list(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,
+          keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
     if within:
         scope, args, kwargs = _scope_inputs(model, shapes, within)
         first = next((a for a in args if isinstance(a, torch.Tensor) and a.dim() == 4), None)
@@ -234,17 +260,17 @@ def points(
                              "pick a module that takes images or feature maps")
         shape = tuple(int(s) for s in first.shape[1:])
         entries = _hooks_view(scope, args, kwargs, rule, problem=None, todo=_WITHIN_TODO, input_shape=shape)
-        return _build_points(entries, shape, all, warp, "hooks")
+        return _build_points(entries, shape, every, warp, "hooks"), None
     try:
-        entries = _fx_entries(model, shapes, rule)
+        entries, gm = _fx_entries(model, shapes, rule, keep)
     except _FxFailure as failure:
         where, todo = _fx_failure_hint(failure, model)
         problem = f"torch.fx could not trace {where} ({_reason(failure.error)})"
         dtype = _input_dtype(model)
         args = tuple(torch.empty((1, *s), dtype=dtype) for s in shapes)
         entries = _hooks_view(model, args, {}, rule, problem=problem, todo=todo, input_shape=shapes[0])
-        return _build_points(entries, shapes[0], all, warp, "hooks")
-    return _build_points(entries, shapes[0], all, warp, "fx")
+        return _build_points(entries, shapes[0], every, warp, "hooks"), None
+    return _build_points(entries, shapes[0], every, warp, "fx"), gm
 
 
 _WITHIN_TODO = "mark the module that fails as a leaf (--leaf TYPE, Python: leaves=[TYPE])"

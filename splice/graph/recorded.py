@@ -31,6 +31,7 @@ from torch.utils._pytree import tree_leaves
 from .cuts import _cut_analysis
 from .entries import _NCHW, _Entry
 from .leaves import _is_torch_builtin, _LeafRule
+from .rules import meta_rule
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
 
 __all__: list[str] = []
@@ -118,7 +119,9 @@ class _Recording(TorchFunctionMode):
 
     def __torch_function__(self, func, types, args=(), kwargs=None):
         kwargs = kwargs or {}
-        out = func(*args, **kwargs)
+        out = meta_rule(func, args, kwargs)
+        if out is None:
+            out = func(*args, **kwargs)
         self.record(_name(func), args, kwargs, out)
         return out
 
@@ -211,9 +214,16 @@ def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> tup
     return rec, out
 
 
-def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> list[_Entry]:
-    """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails)."""
+def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                      counts: dict[str, int] | None = None) -> list[_Entry]:
+    """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails).
+
+    ``counts``, when given, receives how often each module (by qualname) was called in that forward.
+    """
     rec, out = _record(model, args, kwargs, rule)
+    if counts is not None:
+        for qualname, *_ in rec.calls:
+            counts[qualname] = counts.get(qualname, 0) + 1
     outputs = [rec.producer[id(t)] for t in tree_leaves(out) if isinstance(t, torch.Tensor) and id(t) in rec.producer]
     graph, nodes, values = _graph(rec, list(dict.fromkeys(outputs)))
     cuts, joins = _cut_analysis(graph, values)

@@ -18,6 +18,7 @@ from torch import nn
 
 from ..copies import private_buffers
 from ..errors import GraphError, suggest
+from .rules import _ShapeRules
 from .shapes import _META, _input_dtype, _meta_empty, _meta_module
 from .tracing import _reason
 
@@ -76,7 +77,7 @@ def _scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Modu
     dtype = _input_dtype(model)
     try:
         meta = _meta_module(model)
-        with torch.device(_META):
+        with torch.device(_META), _ShapeRules():
             args, kwargs = _capture(meta, within, tuple(_meta_empty((1, *s), dtype) for s in shapes))
     except GraphError:
         raise

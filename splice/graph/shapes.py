@@ -1,7 +1,8 @@
 """Shapes on the meta device: one batch-1 propagation through a traced graph.
 
 No activation memory, no arithmetic. Common layers use closed-form shape
-rules; everything else runs its meta kernel. A user-registered leaf that
+rules (here for modules and graph functions, :mod:`.rules` for the torch
+functions that leaf modules call); everything else runs its meta kernel. A user-registered leaf that
 cannot run on the meta device (value-dependent control flow) is run once,
 alone, on a CPU copy with an all-zeros input.
 """
@@ -18,8 +19,10 @@ import torch
 import torch.fx as fx
 from torch import nn
 
+from ..copies import tree_copy
 from ..errors import GraphError
 from .leaves import _is_torch_builtin
+from .rules import _ShapeRules, meta_rule
 
 __all__: list[str] = []
 
@@ -45,7 +48,7 @@ def _meta_module(mod: nn.Module) -> nn.Module:
             continue
         meta = _meta_empty(t.shape, t.dtype)
         memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
-    copied = copy.deepcopy(mod, memo)
+    copied = tree_copy(mod, memo)
     copied.eval()
     return copied
 
@@ -211,7 +214,8 @@ def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: d
     if meta_mod is None:
         meta_mod = cache[target] = _meta_module(mod)
     try:
-        return meta_mod(*args, **kwargs)
+        with _ShapeRules():
+            return meta_mod(*args, **kwargs)
     except Exception:
         if _is_torch_builtin(type(mod)):
             raise
@@ -276,6 +280,10 @@ def _propagate(
 
 
 def _call(node: fx.Node, args: tuple, kwargs: dict) -> Any:
+    if node.op == "call_function":
+        value = meta_rule(node.target, args, kwargs)
+        if value is not None:
+            return value
     fn = node.target if node.op == "call_function" else getattr(args[0], node.target)
     if node.op == "call_method":
         args = args[1:]

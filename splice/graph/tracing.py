@@ -14,7 +14,6 @@ is traced (a fused BatchNorm counting batches) never changes the caller's model.
 
 from __future__ import annotations
 
-import copy
 import operator
 import warnings
 from collections.abc import Iterable, Iterator
@@ -25,11 +24,11 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from ..copies import private_buffers
+from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
-from .leaves import _class_path, _LeafRule
+from .leaves import _class_path, _is_torch_builtin, _LeafRule
 
-__all__ = ["GraphWarning", "TraceModeWarning", "trace"]
+__all__ = ["GraphWarning", "TraceModeWarning", "trace", "relink_lifted"]
 
 
 class GraphWarning(SpliceWarning):
@@ -45,6 +44,55 @@ class _Tracer(fx.Tracer):
         super().__init__()
         self._rule = rule
         self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
+        # id(tensor) -> (tensor, its first name), for the root's parameters and its buffers, made on the first
+        # lookup: fx's own getattr searches every parameter, then every buffer, of the root on each read
+        self._params: dict[int, tuple[torch.Tensor, str]] | None = None
+        self._buffers: dict[int, tuple[torch.Tensor, str]] = {}
+
+    def trace(self, root, concrete_args=None):
+        self._params, self._buffers = None, {}
+        return super().trace(root, concrete_args)
+
+    def _tables(self) -> tuple[dict, dict]:
+        if self._params is None:
+            self._params = {}
+            if isinstance(getattr(self, "root", None), nn.Module):
+                for table, items in ((self._params, self.root.named_parameters()),
+                                     (self._buffers, self.root.named_buffers())):
+                    for name, t in items:
+                        table.setdefault(id(t), (t, name))
+        return self._params, self._buffers
+
+    def _root_name(self, value: Any) -> str | None:
+        """The name fx's search would find for ``value`` (parameters first, then buffers), or None."""
+        params, buffers = self._tables()
+        tables = ((params,) if isinstance(value, nn.Parameter) else ()) + (
+            (buffers,) if self.proxy_buffer_attributes else ())
+        for table in tables:
+            found = table.get(id(value))
+            if found is not None and found[0] is value:
+                return found[1]
+        return None
+
+    def getattr(self, attr: str, attr_val: Any, parameter_proxy_cache: dict[str, Any]) -> Any:
+        """fx's rule (a parameter or buffer of the root becomes one ``get_attr`` node, shared by every read),
+        with the root's tensors looked up by identity instead of searched; anything else is fx's own."""
+        name = self._root_name(attr_val) if isinstance(attr_val, torch.Tensor) else None
+        if name is None or self.param_shapes_constant:
+            return super().getattr(attr, attr_val, parameter_proxy_cache)
+        proxy = parameter_proxy_cache.get(name)
+        if proxy is None:
+            proxy = parameter_proxy_cache[name] = self.create_proxy("get_attr", name, (), {})
+        return proxy
+
+    def create_arg(self, a: Any) -> Any:
+        """fx's rule (a tensor of the root is a ``get_attr`` node), with the same identity lookup."""
+        if isinstance(a, torch.Tensor):
+            params, buffers = self._tables()
+            found = (params if isinstance(a, nn.Parameter) else buffers).get(id(a))
+            if found is not None and found[0] is a:
+                return self.create_node("get_attr", found[1], (), {})
+        return super().create_arg(a)
 
     def is_leaf_module(self, m: nn.Module, module_qualified_name: str) -> bool:
         return self._rule(type(m)) or super().is_leaf_module(m, module_qualified_name)
@@ -203,6 +251,29 @@ def _updating_classes(root: nn.Module, before: dict) -> set[type]:
     return found
 
 
+def _counts_batches_when_traced(root: nn.Module, rule: _LeafRule) -> bool:
+    """A batch norm that tracks statistics and that the tracer would trace through (not a leaf) is in ``root``."""
+    from torch.nn.modules.batchnorm import _BatchNorm
+
+    return any(isinstance(m, _BatchNorm) and m.track_running_stats and not rule(type(m))
+               and not _is_torch_builtin(type(m)) for m in root.modules())
+
+
+def _train_trace(root: nn.Module, rule: _LeafRule) -> None:
+    """Trace ``root`` once in train mode, for the buffers it updates (a failure is left to the eval-mode rounds)."""
+    mods = list(root.modules())
+    saved = [(m, m.__dict__.get("training", True)) for m in mods]
+    try:
+        for m in mods:
+            m.__dict__["training"] = True
+        _run_tracer(root, rule)
+    except _FxFailure:
+        pass
+    finally:
+        for m, flag in saved:
+            m.__dict__["training"] = flag
+
+
 def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ.
 
@@ -212,7 +283,19 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     as leaves (opaque steps that run their own forward), found by the buffers'
     version counters, which works on the meta device too; the tracer then runs
     again. ``rule`` keeps them (see :meth:`_LeafRule.add`).
+
+    A batch norm that fx traces through (a subclass fused with its activation)
+    counts batches only in train mode, which the eval-mode trace cannot see:
+    when the tree holds one, a train-mode trace runs first to find the
+    updating modules, so that the eval-mode trace runs once with them as
+    leaves, not once before and once after. The last round (an eval-mode
+    trace, and a train-mode one if ``training`` is read, neither updating a
+    buffer) is the same either way.
     """
+    if _counts_batches_when_traced(root, rule):
+        before = _buffer_states(root)
+        _train_trace(root, rule)
+        rule.add({c for c in _updating_classes(root, before) if not rule(c)})
     for _ in range(4):
         before = _buffer_states(root)
         graph, difference = _trace_modes(root, rule)
@@ -298,6 +381,36 @@ def _adopt_lifted(graph: fx.Graph, traced: nn.Module, work: nn.Module) -> list[s
     return lifted
 
 
+_VIEWS = "_splice_lifted_views"  # on a GraphModule: {constant: (buffer, size, stride, offset in the buffer)}
+
+
+def _buffer_views(twin: nn.Module, constants: dict[str, Any]) -> dict[str, tuple]:
+    """The lifted constants that are views of one of ``twin``'s buffers (code that reads ``self.index.view(-1)``
+    hands the tracer a real tensor), each with where it sits in that buffer."""
+    owners = {id(b): (name, b) for name, b in twin.named_buffers()}
+    views = {}
+    for name, c in constants.items():
+        base = c._base if isinstance(c, torch.Tensor) else None
+        found = owners.get(id(base)) if base is not None else None
+        if found is not None and found[1] is base:
+            views[name] = (found[0], tuple(c.shape), tuple(c.stride()), c.storage_offset() - base.storage_offset())
+    return views
+
+
+def relink_lifted(gm: nn.Module) -> None:
+    """Make each lifted constant that was a view of a buffer a view of that buffer again.
+
+    A graph traced on the meta device lifts such a view as a meta tensor; once
+    the buffers hold real tensors (a folder's weights adopted), the view is
+    taken again from them, with the same size, stride and offset, so it holds
+    what a trace of the real model would have lifted.
+    """
+    for name, (buffer, size, stride, offset) in getattr(gm, _VIEWS, {}).items():
+        source = gm.get_buffer(buffer)
+        if not source.is_meta and gm._buffers.get(name) is not None and gm._buffers[name].is_meta:
+            gm._buffers[name] = source.as_strided(size, stride, source.storage_offset() + offset)
+
+
 def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
 
@@ -311,24 +424,35 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     :class:`~splice.errors.GraphError` naming the module fx could not trace.
     """
     _check_model(model, "trace()")
-    rule = _LeafRule(leaves)
     try:
-        work = copy.deepcopy(model)
+        gm, _ = _trace_copy(model, _LeafRule(leaves))
+    except _FxFailure as failure:
+        where, todo = _fx_failure_hint(failure, model)
+        raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
+    return gm
+
+
+def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.Module]:
+    """:func:`trace`'s GraphModule, and the twin the tracer ran on (whose modules the graph's nodes name).
+
+    Raises :class:`_FxFailure` when fx cannot trace the model.
+    """
+    try:
+        work = tree_copy(model)
     except Exception as exc:
         raise GraphError(
             f"cannot copy {type(model).__name__} for tracing ({_reason(exc)}); "
             "splice never traces the caller's model in place: make the model deep-copyable"
         ) from exc
     twin = private_buffers(work)
-    try:
-        graph = _trace_owned(twin, rule)
-    except _FxFailure as failure:
-        where, todo = _fx_failure_hint(failure, model)
-        raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
+    graph = _trace_owned(twin, rule)
     _unspy_meta(graph)
     lifted = _adopt_lifted(graph, twin, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     for name in lifted:
         gm._non_persistent_buffers_set.add(name)
+    views = _buffer_views(twin, {name: getattr(gm, name) for name in lifted})
+    if views:
+        gm.__dict__[_VIEWS] = views
     gm.training = model.training  # submodules keep their own (copied) flags
-    return gm
+    return gm, twin

@@ -31,6 +31,7 @@ unexpected and shape-mismatched names are refused unless ``allow_partial``.
 from __future__ import annotations
 
 from .builders import IMAGENET_NORMALISATION, build_model
+from .empty import initialisers_skipped
 from .huggingface import is_hf_folder, read_hf_folder
 from .source import Source, load_source
 from .specs import format_shape, parse_input_shape, parse_input_shapes, parse_kwargs
@@ -50,6 +51,7 @@ __all__ = [
     "Source",
     "load_source",
     "build_model",
+    "initialisers_skipped",
     "is_hf_folder",
     "read_hf_folder",
     "read_weights",

@@ -1,0 +1,140 @@
+"""The graph passes' shortcuts give what the long way gives: fx's own tracer, listing then tracing again,
+counting calls in the recorded forward, a train-mode trace first."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+import torch.fx as fx
+from torch import nn
+
+from splice import graph
+from splice.graph.leaves import _LeafRule
+from splice.graph.tracing import _Tracer
+
+
+class _Shared(nn.Module):
+    """One conv called twice, a weight tied under two names, a buffer and a constant tensor read in forward."""
+
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 4, 3, padding=1)
+        self.b = nn.Conv2d(4, 4, 3, padding=1)
+        self.c = nn.Conv2d(4, 4, 3, padding=1)
+        self.c.weight = self.b.weight  # tied: one tensor, two names
+        self.register_buffer("scale", torch.full((1, 4, 1, 1), 2.0))
+        self.offset = nn.Parameter(torch.zeros(1, 4, 1, 1))
+        self.plain = torch.ones(1)  # neither a parameter nor a buffer
+
+    def forward(self, x):
+        y = self.a(x)
+        y = self.b(y) * self.scale + self.offset
+        y = self.c(y) + self.b(y) + self.offset * self.scale
+        return y * self.plain + torch.nn.functional.conv2d(y, self.b.weight, padding=1)
+
+
+def _signature(g: fx.Graph) -> list:
+    return [(n.name, n.op, str(n.target), str(n.args), str(n.kwargs)) for n in g.nodes]
+
+
+def test_tracer_lookups_give_fx_own_graph():
+    model = _Shared().eval()
+    ours = _Tracer(_LeafRule(())).trace(model)
+    theirs = fx.Tracer().trace(model)
+    assert _signature(ours) == _signature(theirs)
+    # a tied weight is read under its first name, as fx's search finds it
+    targets = {n.target for n in ours.nodes if n.op == "get_attr"}
+    assert {"b.weight", "offset", "scale"} <= targets and "c.weight" not in targets
+
+
+def test_trace_points_lists_what_points_lists_and_traces_what_trace_traces():
+    model = _Shared().eval()
+    listed, gm = graph.trace_points(model, (3, 16, 16))
+    assert [p.to_json() for p in listed] == [p.to_json() for p in graph.points(model, (3, 16, 16), all=True)]
+    assert _signature(gm.graph) == _signature(graph.trace(model).graph)
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(gm(x), model(x))
+    # the GraphModule owns copies: nothing is shared with the caller's model
+    ours = {id(t) for t in (*gm.parameters(), *gm.buffers())}
+    assert not ours & {id(t) for t in (*model.parameters(), *model.buffers())}
+    assert set(graph.point_names(gm)) >= {p.name for p in listed}
+
+
+def test_trace_points_without_fx_gives_no_graph():
+    class Gate(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 3, 3, padding=1)
+
+        def forward(self, x):
+            if x.shape[-1] > 4:  # a shape decides: fx cannot trace it, a meta forward can run it
+                return self.conv(x)
+            return -self.conv(x)
+
+    with pytest.warns(graph.TraceFallbackWarning, match="could not trace"):
+        listed, gm = graph.trace_points(Gate(), (3, 8, 8))
+    assert gm is None and listed[0].mechanism == "hooks"
+
+
+def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
+    from splice.graph.fallback import _call_counts
+    from splice.graph.recorded import _recorded_entries
+
+    class Twice(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.stem = nn.Conv2d(3, 4, 3, padding=1)
+            self.block = nn.Sequential(nn.Conv2d(4, 4, 3, padding=1), nn.BatchNorm2d(4), nn.ReLU())
+            self.head = nn.Conv2d(4, 2, 1)
+
+        def forward(self, x):
+            y = self.block(self.block(self.stem(x)))  # every module of the block runs twice
+            return self.head(y)
+
+    model = Twice().eval()
+    args = (torch.empty(1, 3, 8, 8),)
+    counts: dict[str, int] = {}
+    _recorded_entries(model, args, {}, _LeafRule(()), counts)
+    assert counts == _call_counts(model, args, {}, _LeafRule(()))
+    assert counts["block.0"] == 2 and counts["head"] == 1
+
+
+class _NormAct(nn.BatchNorm2d):
+    """A batch norm fused with its activation, written out as such layers are (it counts batches itself)."""
+
+    def forward(self, x):
+        if self.training:
+            self.num_batches_tracked.add_(1)
+        y = torch.nn.functional.batch_norm(x, self.running_mean, self.running_var, self.weight, self.bias,
+                                           self.training, 0.1, self.eps)
+        return torch.relu(y)
+
+
+class _FusedNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 4, 3, padding=1)
+        self.n = _NormAct(4)
+        self.b = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.b(self.n(self.a(x)))
+
+
+def test_a_train_mode_trace_first_finds_batch_counting_norms_with_one_trace_less(monkeypatch):
+    from splice.graph import tracing
+
+    calls = []
+    real = tracing._run_tracer
+    monkeypatch.setattr(tracing, "_run_tracer", lambda root, rule: calls.append(1) or real(root, rule))
+    model = _FusedNet().eval()
+    fast = graph.trace(model)
+    fast_calls = len(calls)
+    calls.clear()
+    monkeypatch.setattr(tracing, "_counts_batches_when_traced", lambda root, rule: False)
+    slow = graph.trace(model)
+    assert (fast_calls, len(calls)) == (2, 3)  # train + eval, against eval + train + eval
+    assert _signature(fast.graph) == _signature(slow.graph)
+    assert [n.target for n in fast.graph.nodes if n.op == "call_module"] == ["a", "n", "b"]  # the norm is a leaf
+    assert model.n.num_batches_tracked.item() == 0
