@@ -172,6 +172,7 @@ def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = F
         "plan": asdict(run.plan),
         "point": at,
         "errors": errors,
+        "best_epochs": {name: r.get("best_epoch") for name, r in run.summaries.items()},
         "label_free": {k: run.summaries["label-free"].get(k) for k in ("ranges", "site_before", "site_after")},
         "verify": {"passed": report.passed, "failed": report.failed, "certificate": "spliced/certificate.json"},
         "warps": _warp_digest(inspected),
@@ -323,15 +324,23 @@ def _report_errors(summary: dict) -> list[str]:
         "",
         "## Test error",
         "",
-        "| model | upright (`digits`) | moved (`digits-moved`) |",
-        "| --- | ---: | ---: |",
+        "| model | upright (`digits`) | moved (`digits-moved`) | kept epoch |",
+        "| --- | ---: | ---: | ---: |",
     ]
+    kept = summary.get("best_epochs") or {}
     labels = {"base": "base (trained upright)", "control": "control: base fine-tuned on moved parts",
               "warp-only": "spliced, warp-only (base frozen)", "joint": "spliced, joint",
               "label-free": "spliced, label-free (no label read, base frozen)"}
     for name in ("base", "control", "warp-only", "joint", "label-free"):
         if name in e:
-            lines.append(f"| {labels[name]} | {_fmt_pct(e[name]['digits'])} | {_fmt_pct(e[name]['digits-moved'])} |")
+            lines.append(f"| {labels[name]} | {_fmt_pct(e[name]['digits'])} | {_fmt_pct(e[name]['digits-moved'])} | "
+                         f"{'' if kept.get(name) is None else kept[name]} |")
+    lines += ["", "Each run keeps the epoch with the best validation accuracy (`best/`); for a spliced run, epoch 0 "
+                  "is the state after warp pre-training, before any tuning epoch."]
+    at_zero = [n for n in ("warp-only", "joint") if kept.get(n) == 0]
+    if at_zero:
+        lines += ["", f"{' and '.join(at_zero)} kept epoch 0: the tuning epochs on labelled moved parts did not "
+                      "beat warp pre-training alone on validation."]
     ctrl = e["control"]["digits-moved"]
     if ctrl > 0:
         lines += ["", f"On moved parts the joint splice's error is {e['joint']['digits-moved'] / ctrl:.2f}× the "

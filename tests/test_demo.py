@@ -35,6 +35,12 @@ def test_demo_fast_end_to_end(tmp_path):
     # without a label the warp still reads moved parts far better than the base does
     assert e["label-free"]["digits-moved"] < e["base"]["digits-moved"]
     assert "label-free (no label read" in report and summary["label_free"]["ranges"]["rotation"] > 0
+    # each labelled row says which epoch its best/ kept: the first best validation accuracy in its metrics
+    for name in ("control", "warp-only", "joint"):
+        rows = [json.loads(line) for line in (out / name / "metrics.jsonl").read_text().splitlines()]
+        scored = [(r["accuracy"], -r["epoch"]) for r in rows if r.get("accuracy") is not None]
+        assert summary["best_epochs"][name] == -max(scored)[1]
+    assert "| kept epoch |" in report
     # the rerun replaces a previous demo folder, but never a foreign one
     (tmp_path / "foreign").mkdir()
     (tmp_path / "foreign" / "keep.txt").write_text("mine")
