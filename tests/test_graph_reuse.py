@@ -122,19 +122,80 @@ class _FusedNet(nn.Module):
         return self.b(self.n(self.a(x)))
 
 
-def test_a_train_mode_trace_first_finds_batch_counting_norms_with_one_trace_less(monkeypatch):
+def test_a_train_mode_trace_of_each_norm_class_alone_finds_batch_counting_norms(monkeypatch):
     from splice.graph import tracing
 
-    calls = []
+    roots = []
     real = tracing._run_tracer
-    monkeypatch.setattr(tracing, "_run_tracer", lambda root, rule: calls.append(1) or real(root, rule))
+    monkeypatch.setattr(tracing, "_run_tracer", lambda root, rule: roots.append(type(root).__name__) or real(root, rule))
     model = _FusedNet().eval()
     fast = graph.trace(model)
-    fast_calls = len(calls)
-    calls.clear()
-    monkeypatch.setattr(tracing, "_counts_batches_when_traced", lambda root, rule: False)
+    fast_roots = list(roots)
+    roots.clear()
+    monkeypatch.setattr(tracing, "_traced_through_norms", lambda root, rule: {})
     slow = graph.trace(model)
-    assert (fast_calls, len(calls)) == (2, 3)  # train + eval, against eval + train + eval
+    # the norm alone in train mode, then the tree once; against eval + train + eval of the whole tree
+    assert fast_roots == ["_NormAct", "_FusedNet"] and roots == ["_FusedNet"] * 3
     assert _signature(fast.graph) == _signature(slow.graph)
     assert [n.target for n in fast.graph.nodes if n.op == "call_module"] == ["a", "n", "b"]  # the norm is a leaf
     assert model.n.num_batches_tracked.item() == 0
+
+
+class _NeedsTwo(nn.BatchNorm2d):
+    """A norm whose forward cannot be traced alone: it branches on a second argument, a proxy when alone."""
+
+    def forward(self, x, scale):
+        if self.training:
+            self.num_batches_tracked.add_(1)
+        y = super().forward(x)
+        return y * scale if scale > 1 else y
+
+
+class _TwoArgNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 4, 3, padding=1)
+        self.n = _NeedsTwo(4)
+
+    def forward(self, x):
+        return self.n(self.a(x), 2.0)
+
+
+def test_a_norm_that_cannot_be_traced_alone_is_found_by_a_whole_tree_trace(monkeypatch):
+    from splice.graph import tracing
+
+    roots = []
+    real = tracing._run_tracer
+
+    def spy(root, rule):
+        roots.append(type(root).__name__)
+        return real(root, rule)
+
+    monkeypatch.setattr(tracing, "_run_tracer", spy)
+    model = _TwoArgNet().eval()
+    traced = graph.trace(model)
+    assert roots[:2] == ["_NeedsTwo", "_TwoArgNet"]  # alone (fails), then the whole tree in train mode
+    assert [n.target for n in traced.graph.nodes if n.op == "call_module"] == ["a", "n"]
+    assert model.n.num_batches_tracked.item() == 0
+
+
+class _BranchyNet(nn.Module):
+    """A counting norm, then a branch on a value fx cannot trace."""
+
+    def __init__(self):
+        super().__init__()
+        self.n = _NormAct(3)
+
+    def forward(self, x):
+        y = self.n(x)
+        return y if y.sum() > 0 else -y
+
+
+def test_norms_made_leaves_for_a_trace_that_fails_are_not_leaves_for_the_fallback():
+    from splice.graph import tracing
+
+    rule = _LeafRule([])
+    with pytest.raises(tracing._FxFailure):
+        tracing._trace_owned(_BranchyNet().eval(), rule)
+    assert not rule(_NormAct)
+    assert tracing._trace_owned(_FusedNet().eval(), rule) is not None and rule(_NormAct)  # kept when it traces

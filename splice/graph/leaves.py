@@ -132,6 +132,11 @@ class _LeafRule:
         self.types = (*self.types, *types)
         self._cache.clear()
 
+    def reset(self, types: tuple[type, ...]) -> None:
+        """Go back to these leaf classes (``self.types`` as it was before an :meth:`add`)."""
+        self.types = types
+        self._cache.clear()
+
     def __call__(self, cls: type) -> bool:
         hit = self._cache.get(cls)
         if hit is None:

@@ -251,27 +251,45 @@ def _updating_classes(root: nn.Module, before: dict) -> set[type]:
     return found
 
 
-def _counts_batches_when_traced(root: nn.Module, rule: _LeafRule) -> bool:
-    """A batch norm that tracks statistics and that the tracer would trace through (not a leaf) is in ``root``."""
+def _traced_through_norms(root: nn.Module, rule: _LeafRule) -> dict[type, nn.Module]:
+    """One instance of each batch norm class in ``root`` that tracks statistics and that the tracer would trace
+    through (not a leaf, not torch's own), by class."""
     from torch.nn.modules.batchnorm import _BatchNorm
 
-    return any(isinstance(m, _BatchNorm) and m.track_running_stats and not rule(type(m))
-               and not _is_torch_builtin(type(m)) for m in root.modules())
+    found: dict[type, nn.Module] = {}
+    for m in root.modules():
+        cls = _original_class(type(m))
+        if (m is not root and isinstance(m, _BatchNorm) and m.track_running_stats and not rule(cls)
+                and not _is_torch_builtin(cls)):
+            found.setdefault(cls, m)
+    return found
 
 
-def _train_trace(root: nn.Module, rule: _LeafRule) -> None:
-    """Trace ``root`` once in train mode, for the buffers it updates (a failure is left to the eval-mode rounds)."""
+def _counting_norm_classes(root: nn.Module, rule: _LeafRule, norms: dict[type, nn.Module]) -> set[type]:
+    """The classes of ``norms`` that update their buffers when traced in train mode.
+
+    Each class is traced alone, one instance, in train mode (a few nodes, not the whole tree); if one of
+    them cannot be traced alone, the whole tree is traced once in train mode instead. A failure is left
+    to the eval-mode rounds, which find any updating module the way they always do.
+    """
+    before = _buffer_states(root)
     mods = list(root.modules())
     saved = [(m, m.__dict__.get("training", True)) for m in mods]
     try:
         for m in mods:
             m.__dict__["training"] = True
-        _run_tracer(root, rule)
-    except _FxFailure:
-        pass
+        try:
+            for m in norms.values():
+                _run_tracer(m, rule)
+        except _FxFailure:
+            try:
+                _run_tracer(root, rule)
+            except _FxFailure:
+                pass
     finally:
         for m, flag in saved:
             m.__dict__["training"] = flag
+    return {c for c in _updating_classes(root, before) if not rule(c)}
 
 
 def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
@@ -286,23 +304,31 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
 
     A batch norm that fx traces through (a subclass fused with its activation)
     counts batches only in train mode, which the eval-mode trace cannot see:
-    when the tree holds one, a train-mode trace runs first to find the
-    updating modules, so that the eval-mode trace runs once with them as
-    leaves, not once before and once after. The last round (an eval-mode
+    when the tree holds one, one instance of each such class is traced alone
+    in train mode first to find the updating ones, so that the eval-mode
+    trace of the tree runs once with them as leaves, not once before and once
+    after. The last round (an eval-mode
     trace, and a train-mode one if ``training`` is read, neither updating a
     buffer) is the same either way.
     """
-    if _counts_batches_when_traced(root, rule):
-        before = _buffer_states(root)
-        _train_trace(root, rule)
-        rule.add({c for c in _updating_classes(root, before) if not rule(c)})
-    for _ in range(4):
-        before = _buffer_states(root)
-        graph, difference = _trace_modes(root, rule)
-        updating = {c for c in _updating_classes(root, before) if not rule(c)}
-        if not updating:
-            break
-        rule.add(updating)
+    kept = rule.types
+    norms = _traced_through_norms(root, rule)
+    if norms:
+        rule.add(_counting_norm_classes(root, rule, norms))
+    with_norms = len(rule.types)
+    try:
+        for _ in range(4):
+            before = _buffer_states(root)
+            graph, difference = _trace_modes(root, rule)
+            updating = {c for c in _updating_classes(root, before) if not rule(c)}
+            if not updating:
+                break
+            rule.add(updating)
+    except _FxFailure:
+        # the norms were made leaves for this trace only; a fallback that does not trace keeps the leaves
+        # it had before, and any the eval-mode rounds found
+        rule.reset((*kept, *rule.types[with_norms:]))
+        raise
     if difference is not None:
         warnings.warn(
             f"the train-mode and eval-mode graphs of {type(root).__name__} differ "
