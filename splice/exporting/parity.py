@@ -63,7 +63,7 @@ def _ort_session(model, *, optimise: bool = True):
 
     data = bytes(model) if isinstance(model, (bytes, bytearray)) else model.SerializeToString()
     opts = ort.SessionOptions()
-    opts.log_severity_level = 3
+    opts.log_severity_level = 4  # fatal only: a failing run is reported through its exception, once
     if not optimise:
         opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
     try:
