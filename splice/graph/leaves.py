@@ -132,9 +132,10 @@ class _LeafRule:
         self.types = (*self.types, *types)
         self._cache.clear()
 
-    def reset(self, types: tuple[type, ...]) -> None:
-        """Go back to these leaf classes (``self.types`` as it was before an :meth:`add`)."""
-        self.types = types
+    def discard(self, types: Iterable[type]) -> None:
+        """Undo an :meth:`add` of these classes (the classes this rule held before stay)."""
+        gone = set(types)
+        self.types = tuple(t for t in self.types if t not in gone)
         self._cache.clear()
 
     def __call__(self, cls: type) -> bool:

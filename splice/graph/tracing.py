@@ -210,28 +210,38 @@ def _describe_difference(eval_graph: fx.Graph, train_graph: fx.Graph) -> str | N
     return "; ".join(parts)
 
 
+@contextmanager
+def _modes_restored(mods: list[nn.Module]) -> Iterator[None]:
+    """Every module's ``training`` flag as it was when the block began, whatever the block set."""
+    saved = [(m, m.__dict__.get("training", True)) for m in mods]
+    try:
+        yield
+    finally:
+        for m, flag in saved:
+            m.__dict__["training"] = flag
+
+
+def _set_training(mods: list[nn.Module], flag: bool) -> None:
+    for m in mods:
+        m.__dict__["training"] = flag
+
+
 def _trace_modes(root: nn.Module, rule: _LeafRule) -> tuple[fx.Graph, str | None]:
     """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not)."""
     mods = list(root.modules())
-    saved = [(m, m.__dict__.get("training", True)) for m in mods]
     difference = None
-    try:
-        for m in mods:
-            m.__dict__["training"] = False
+    with _modes_restored(mods):
+        _set_training(mods, False)
         reads: list[nn.Module] = []
         with _spying(mods, reads) as spied:
             graph = _run_tracer(root, rule)
         # if no traced code read a `training` flag, a train-mode trace takes the same path
         if not spied or reads:
-            for m in mods:
-                m.__dict__["training"] = True
+            _set_training(mods, True)
             try:
                 difference = _describe_difference(graph, _run_tracer(root, rule))
             except _FxFailure as failure:
                 difference = f"the train-mode trace fails: {_reason(failure.error)}"
-    finally:
-        for m, flag in saved:
-            m.__dict__["training"] = flag
     return graph, difference
 
 
@@ -272,23 +282,19 @@ def _counting_norm_classes(root: nn.Module, rule: _LeafRule, norms: dict[type, n
     them cannot be traced alone, the whole tree is traced once in train mode instead. A failure is left
     to the eval-mode rounds, which find any updating module the way they always do.
     """
+    def traces(module: nn.Module) -> bool:
+        try:
+            _run_tracer(module, rule)
+        except _FxFailure:
+            return False
+        return True
+
     before = _buffer_states(root)
     mods = list(root.modules())
-    saved = [(m, m.__dict__.get("training", True)) for m in mods]
-    try:
-        for m in mods:
-            m.__dict__["training"] = True
-        try:
-            for m in norms.values():
-                _run_tracer(m, rule)
-        except _FxFailure:
-            try:
-                _run_tracer(root, rule)
-            except _FxFailure:
-                pass
-    finally:
-        for m, flag in saved:
-            m.__dict__["training"] = flag
+    with _modes_restored(mods):
+        _set_training(mods, True)
+        if not all(traces(m) for m in norms.values()):
+            traces(root)
     return {c for c in _updating_classes(root, before) if not rule(c)}
 
 
@@ -311,11 +317,9 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     trace, and a train-mode one if ``training`` is read, neither updating a
     buffer) is the same either way.
     """
-    kept = rule.types
     norms = _traced_through_norms(root, rule)
-    if norms:
-        rule.add(_counting_norm_classes(root, rule, norms))
-    with_norms = len(rule.types)
+    counting = _counting_norm_classes(root, rule, norms) if norms else set()
+    rule.add(counting)
     try:
         for _ in range(4):
             before = _buffer_states(root)
@@ -327,7 +331,7 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     except _FxFailure:
         # the norms were made leaves for this trace only; a fallback that does not trace keeps the leaves
         # it had before, and any the eval-mode rounds found
-        rule.reset((*kept, *rule.types[with_norms:]))
+        rule.discard(counting)
         raise
     if difference is not None:
         warnings.warn(
