@@ -80,6 +80,7 @@ def test_trace_points_without_fx_gives_no_graph():
 def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
     from splice.graph.fallback import _call_counts
     from splice.graph.recorded import _recorded_entries
+    from splice.graph.shapes import _meta_module
 
     class Twice(nn.Module):
         def __init__(self):
@@ -94,10 +95,53 @@ def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
 
     model = Twice().eval()
     args = (torch.empty(1, 3, 8, 8),)
-    counts: dict[str, int] = {}
-    _recorded_entries(model, args, {}, _LeafRule(()), counts)
-    assert counts == _call_counts(model, args, {}, _LeafRule(()))
-    assert counts["block.0"] == 2 and counts["head"] == 1
+    for leaves in ((), (nn.Sequential,)):  # a leaf's forward is patched for the recording, and put back after it
+        counts: dict[str, int] = {}
+        meta = _meta_module(model)
+        _recorded_entries(model, args, {}, _LeafRule(leaves), counts, meta=meta)
+        assert counts == _call_counts(_meta_module(model), model, args, {}, _LeafRule(leaves))
+        assert counts == _call_counts(meta, model, args, {}, _LeafRule(leaves))  # the same copy runs again alike
+        assert "forward" not in meta.block.__dict__
+    assert counts["block"] == 2 and counts["head"] == 1
+
+
+class _Gated(nn.Module):
+    """fx cannot trace it (a branch on a shape); its batch norms read ``training``, and with ``branch`` so does
+    the root, which then calls one more module while training."""
+
+    def __init__(self, branch: bool):
+        super().__init__()
+        self.branch = branch
+        self.stem = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.BatchNorm2d(4), nn.ReLU())
+        self.aux = nn.Conv2d(4, 4, 1)
+        self.head = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        if x.shape[-1] < 4:
+            raise ValueError("too small")
+        y = self.stem(x)
+        if self.branch and self.training:
+            y = y + 0 * self.aux(y)
+        return self.head(self.aux(y))
+
+
+@pytest.mark.parametrize("branch", [False, True])
+def test_one_batch_2_forward_checks_the_counts_in_train_mode_only_when_a_parent_reads_the_flag(monkeypatch, branch):
+    from splice.graph import fallback
+
+    modes, real = [], fallback._call_counts
+
+    def spy(*args, train=False):
+        modes.append(train)
+        return real(*args, train=train)
+
+    monkeypatch.setattr(fallback, "_call_counts", spy)
+    with pytest.warns(graph.TraceFallbackWarning):
+        names = [p.name for p in graph.points(_Gated(branch).eval(), (3, 8, 8), all=True)]
+    # batch norms read the flag too, but call no module: train mode cannot change anyone's call count
+    assert modes == [branch]
+    assert names == (["input", "stem_0", "stem_1", "stem_2", "head"] if branch
+                     else ["input", "stem_0", "stem_1", "stem_2", "aux", "head"])
 
 
 class _NormAct(nn.BatchNorm2d):

@@ -52,6 +52,20 @@ def _cases():
         yield F.leaky_relu, (_m(*shape, dtype=dtype),), {"negative_slope": 0.2}
         yield F.elu, (_m(*shape, dtype=dtype), 0.5), {}
         yield F.gelu, (_m(*shape, dtype=dtype),), {"approximate": "tanh"}
+        if len(shape) == 4:
+            x = _m(*shape, dtype=dtype)
+            for kw in ({"scale_factor": 2, "mode": "bilinear"}, {"scale_factor": 1.7, "mode": "bilinear",
+                                                                  "align_corners": False},
+                       {"scale_factor": (0.5, 3.0), "mode": "nearest"}, {"size": (5, 6), "mode": "nearest-exact"},
+                       {"size": 4, "mode": "bicubic", "align_corners": True},
+                       {"size": (9, 3), "mode": "bilinear", "antialias": True}):
+                yield F.interpolate, (x,), kw
+            n, heads, length = shape[0], shape[1], shape[2] * shape[3]
+            q, k, v = _m(n, heads, length, 8, dtype=dtype), _m(n, heads, 7, 8, dtype=dtype), _m(n, heads, 7, 5,
+                                                                                                 dtype=dtype)
+            yield F.scaled_dot_product_attention, (q, k, v), {}
+            yield F.scaled_dot_product_attention, (q, q, q), {"is_causal": True, "scale": 0.3}
+            yield F.scaled_dot_product_attention, (q.transpose(1, 2).contiguous().transpose(1, 2), k, v, None, 0.1), {}
 
 
 CASES = list(_cases())
@@ -94,6 +108,16 @@ def test_in_place_rules_hand_back_the_input(func, args, kwargs):
     (F.relu, (torch.empty(1, 4),), {}),  # not on the meta device
     (F.relu, (torch.empty(1, 4, dtype=torch.int64, device="meta"),), {}),
     (F.conv2d, (_m(1, 3, 8, 8), _m(4, 3, 3, 3)), {}),  # no rule: the meta kernel runs
+    (F.interpolate, (_m(1, 3, 8, 8),), {"size": 4, "scale_factor": 2.0}),  # both: F.interpolate refuses it
+    (F.interpolate, (_m(1, 3, 8, 8),), {"scale_factor": 2.0, "mode": "nearest", "align_corners": True}),
+    (F.interpolate, (_m(1, 3, 8, 8),), {"scale_factor": 2.0, "mode": "area"}),  # adaptive pooling: not ruled
+    (F.interpolate, (_m(1, 3, 8, 8),), {"scale_factor": 0.1}),  # an empty output: the kernel says so
+    (F.interpolate, (_m(1, 3, 8, 8),), {"scale_factor": 2.0, "recompute_scale_factor": True}),
+    (F.interpolate, (_m(1, 3, 8, 8).permute(0, 2, 3, 1),), {"scale_factor": 2.0}),  # not contiguous
+    (F.scaled_dot_product_attention, (_m(1, 2, 5, 4), _m(1, 2, 6, 4), _m(1, 2, 5, 4)), {}),  # lengths differ
+    (F.scaled_dot_product_attention, (_m(1, 2, 5, 4), _m(1, 2, 5, 4), _m(1, 2, 5, 4), _m(5, 5)), {}),  # a mask
+    (F.scaled_dot_product_attention, (_m(1, 4, 5, 4), _m(1, 2, 5, 4), _m(1, 2, 5, 4)), {"enable_gqa": True}),
+    (F.scaled_dot_product_attention, (_m(1, 2, 5, 4), _m(1, 2, 6, 4), _m(1, 2, 6, 4)), {"is_causal": True}),
 ])
 def test_rules_decline_when_unsure(func, args, kwargs):
     assert meta_rule(func, args, kwargs) is None

@@ -147,11 +147,10 @@ def _doubled(value):
     return fx.node.map_aggregate(value, lambda v: torch.cat([v, v]) if isinstance(v, torch.Tensor) and v.dim() else v)
 
 
-def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
                  train: bool = False) -> dict[str, int] | None:
-    """How often each module is called in one meta forward (in train mode with ``train``), or ``None`` when that
-    forward fails."""
-    meta = _meta_module(model)
+    """How often each module is called in one forward of ``meta`` (a :func:`_meta_module` copy of ``model``; in
+    train mode with ``train``), or ``None`` when that forward fails."""
     meta.train(train)
     _step_over_leaves(meta, model, rule)
     names = {m: q for q, m in meta.named_modules() if q}
@@ -169,45 +168,72 @@ def _call_counts(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
     finally:
         for h in handles:
             h.remove()
+        meta.eval()
     return counts
 
 
-def _batch_stable(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
-                  entries: list[_Entry], one: dict[str, int] | None = None) -> list[_Entry]:
-    """The entries whose module is called as often at batch 2, and in train mode, as at batch 1 in eval mode.
+def _batch_stable(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+                  entries: list[_Entry], one: dict[str, int], train: bool) -> list[_Entry]:
+    """The entries whose module is called as often at batch 2 (in train mode with ``train``) as at batch 1 in eval
+    mode (``one``).
 
     A hook counts the calls of its module within one forward. A module called
     once per image (a loop over the batch) is called more often for a bigger
     batch, and a module called only while training shifts the count during
     training, so the recorded call would reach another tensor: such points are
-    not listed.
+    not listed. ``train`` is set when a module that calls others read its
+    ``training`` flag in the recorded forward (only then can train mode call
+    other modules); one batch-2 forward then checks both at once, unless it
+    fails in train mode, when an eval-mode one checks the batch alone.
     """
-    one = one or _call_counts(model, args, kwargs, rule)
-    if one is None:
+    two = _call_counts(meta, model, _doubled(args), _doubled(kwargs), rule, train=train)
+    if two is None and train:
+        two = _call_counts(meta, model, _doubled(args), _doubled(kwargs), rule)
+    if two is None:
         return entries
-    others = [c for c in (_call_counts(model, _doubled(args), _doubled(kwargs), rule),
-                          _call_counts(model, _doubled(args), _doubled(kwargs), rule, train=True)) if c is not None]
-    return [e for e in entries if e.site is None or all(one.get(e.site[0]) == c.get(e.site[0]) for c in others)]
+    return [e for e in entries if e.site is None or one.get(e.site[0]) == two.get(e.site[0])]
 
 
 def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
                 input_shape: tuple[int, int, int]) -> list[_Entry]:
-    """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`)."""
-    counts: dict[str, int] = {}  # batch 1, eval mode: the recorded forward counts the calls too
+    """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`).
+
+    One meta copy of the model serves the recorded forward (batch 1, eval mode,
+    which also counts the calls and watches the ``training`` flags) and the
+    counting one (batch 2).
+    """
+    try:
+        meta = _meta_module(model)
+    except Exception:  # the recorded view fails the same way and says why; the fallbacks take over
+        meta = None
+    counts: dict[str, int] = {}
+    readers: list[nn.Module] = []
     entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape,
-                             counts=counts)
-    return _batch_stable(model, args, kwargs, rule, entries, counts or None)
+                             counts=counts, meta=meta, readers=readers)
+    if not counts:  # the recorded forward did not run: a fresh copy counts the calls at batch 1
+        try:
+            meta = _meta_module(model)
+        except Exception:  # no meta copy: nothing to count with
+            return entries
+        counts = _call_counts(meta, model, args, kwargs, rule)
+        if counts is None:
+            return entries
+        readers = [meta]  # unwatched: assume train mode may call other modules
+    train = any(next(iter(m.children()), None) is not None for m in readers)
+    return _batch_stable(meta, model, args, kwargs, rule, entries, counts, train)
 
 
 def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
-                   input_shape: tuple[int, int, int], counts: dict[str, int] | None = None) -> list[_Entry]:
+                   input_shape: tuple[int, int, int], counts: dict[str, int] | None = None,
+                   meta: nn.Module | None = None, readers: list[nn.Module] | None = None) -> list[_Entry]:
     """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
 
     ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
+    ``counts``, ``meta`` and ``readers`` go to :func:`~splice.graph.recorded._recorded_entries`.
     """
     shapes = "x".join(map(str, input_shape))
     try:
-        entries = _recorded_entries(model, args, kwargs, rule, counts)
+        entries = _recorded_entries(model, args, kwargs, rule, counts, meta=meta, readers=readers)
         how = f"a meta-device run of the forward (specialised to input {shapes})"
     except Exception as exc:  # a forward that needs real values: torch.export may still manage
         recorded_problem = _reason(exc)

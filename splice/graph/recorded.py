@@ -33,6 +33,7 @@ from .entries import _NCHW, _Entry
 from .leaves import _is_torch_builtin, _LeafRule
 from .rules import meta_rule
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
+from .tracing import _spying
 
 __all__: list[str] = []
 
@@ -146,12 +147,21 @@ def _hook_calls(meta: nn.Module, rec: _Recording) -> list:
     return [h for m in names for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after))]
 
 
-def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule, rec: _Recording) -> None:
-    """Leaves run their real twin on zeros and are recorded as one operation (``--leaf`` reaches this pass)."""
+def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule, rec: _Recording) -> dict[nn.Module, Any]:
+    """Leaves run their real twin on zeros and are recorded as one operation (``--leaf`` reaches this pass).
+
+    Returns each patched module's own instance ``forward`` (``_NONE``: none), to put back after the run.
+    """
     real_modules = dict(real.named_modules())
+    patched: dict[nn.Module, Any] = {}
     for q, m in meta.named_modules():
         if q and rule(type(m)) and not _is_torch_builtin(type(m)):
+            patched[m] = m.__dict__.get("forward", _NONE)
             m.forward = _leaf_forward(real_modules[q], type(m).__name__, rec)
+    return patched
+
+
+_NONE = object()
 
 
 def _leaf_forward(original: nn.Module, name: str, rec: _Recording):
@@ -195,32 +205,45 @@ def _step(*args):  # the target of every recorded operation in the analysis grap
     raise NotImplementedError
 
 
-def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule) -> tuple[_Recording, Any]:
-    meta = _meta_module(model)
+def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, meta: nn.Module | None = None,
+            readers: list[nn.Module] | None = None) -> tuple[_Recording, Any]:
+    meta = _meta_module(model) if meta is None else meta
     rec = _Recording()
-    _opaque_leaves(meta, model, rule, rec)
+    patched = _opaque_leaves(meta, model, rule, rec)
     handles = _hook_calls(meta, rec)
     args = tuple(_to_meta(a) for a in args)
     kwargs = {k: _to_meta(v) for k, v in kwargs.items()}
     for t in args:
         if isinstance(t, torch.Tensor):
             rec.source(t)
+    mods = list(meta.modules())
+    reads: list[nn.Module] = []
     try:
-        with torch.no_grad(), torch.device(_META), rec:
+        with _spying(mods, reads) as spied, torch.no_grad(), torch.device(_META), rec:
             out = meta(*args, **kwargs)
     finally:
         for h in handles:
             h.remove()
+        for m, own in patched.items():  # the copy can run again: leaves back to their own forward
+            if own is _NONE:
+                del m.forward
+            else:
+                m.forward = own
+    if readers is not None:
+        readers.extend(dict.fromkeys(reads) if spied else [meta])
     return rec, out
 
 
 def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
-                      counts: dict[str, int] | None = None) -> list[_Entry]:
+                      counts: dict[str, int] | None = None, *, meta: nn.Module | None = None,
+                      readers: list[nn.Module] | None = None) -> list[_Entry]:
     """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails).
 
     ``counts``, when given, receives how often each module (by qualname) was called in that forward.
+    ``meta`` is the meta copy of ``model`` to run (default: a new one); ``readers``, when given, receives the
+    modules of that copy that read their ``training`` flag (the root alone when the flags could not be watched).
     """
-    rec, out = _record(model, args, kwargs, rule)
+    rec, out = _record(model, args, kwargs, rule, meta, readers)
     if counts is not None:
         for qualname, *_ in rec.calls:
             counts[qualname] = counts.get(qualname, 0) + 1

@@ -3,7 +3,8 @@
 On the meta device most kernels are Python decompositions: a batch norm, a
 layer norm or a linear layer costs ten to a hundred times what its real work
 costs at batch size 1. The functions below are the ones that dominate CNN and
-small-transformer forwards; their output is a fresh contiguous tensor of the
+small-transformer forwards (with attention and resizing, as hybrid
+conv-attention and segmentation nets use them); their output is a fresh contiguous tensor of the
 input's dtype whose shape follows from the arguments' shapes alone (or, for
 an in-place activation, the input itself).
 
@@ -118,10 +119,64 @@ def _linear(args: tuple, kwargs: dict):
     return _fresh((*x.shape[:-1], w.shape[0]), x.dtype)
 
 
+def _attention(args: tuple, kwargs: dict):
+    """``F.scaled_dot_product_attention(q, k, v, attn_mask, dropout_p, is_causal, scale)``: (..., Lq, Ev)."""
+    names = ("attn_mask", "dropout_p", "is_causal", "scale", "enable_gqa")
+    if len(args) < 3 or len(args) > 7 or set(kwargs) - set(names) or kwargs.get("enable_gqa", False):
+        return None
+    q, k, v = args[:3]
+    if not all(_floating(t) and t.dim() == 4 and t.dtype == q.dtype for t in (q, k, v)):
+        return None
+    if not (q.shape[:2] == k.shape[:2] == v.shape[:2] and q.shape[-1] == k.shape[-1] and k.shape[-2] == v.shape[-2]):
+        return None  # grouped heads, broadcast batches, mismatched lengths: the kernel decides
+    mask = _arg(args, kwargs, 3, "attn_mask", None)
+    causal = _arg(args, kwargs, 5, "is_causal", False)
+    if mask is not None or causal not in (False, True):
+        return None
+    if causal and q.shape[-2] != k.shape[-2]:
+        return None
+    return _fresh((*q.shape[:-1], v.shape[-1]), q.dtype)
+
+
+_RESIZE_MODES = frozenset({"nearest", "nearest-exact", "bilinear", "bicubic"})
+
+
+def _interpolate(args: tuple, kwargs: dict):
+    """``F.interpolate`` of an (N, C, H, W) tensor by ``size`` or ``scale_factor`` (floor of size * scale)."""
+    names = ("size", "scale_factor", "mode", "align_corners", "recompute_scale_factor", "antialias")
+    if not args or len(args) > 7 or set(kwargs) - set(names) or not _plain(args[0]) or args[0].dim() != 4:
+        return None
+    x = args[0]
+    size, scale, mode, corners, recompute, antialias = (_arg(args, kwargs, i + 1, n, d) for i, (n, d) in
+                                                         enumerate(zip(names, (None, None, "nearest", None, None,
+                                                                               False))))
+    if mode not in _RESIZE_MODES or recompute or (corners is not None and mode not in ("bilinear", "bicubic")):
+        return None
+    if antialias and mode not in ("bilinear", "bicubic"):
+        return None
+    if (size is None) == (scale is None):
+        return None
+    if size is not None:
+        out = [size, size] if isinstance(size, int) else list(size) if isinstance(size, (list, tuple)) else None
+        if out is None or len(out) != 2 or not all(type(s) is int for s in out):
+            return None
+    else:
+        scales = [scale, scale] if isinstance(scale, (int, float)) else scale
+        if not isinstance(scales, (list, tuple)) or len(scales) != 2 or not all(
+                type(s) in (int, float) and s > 0 for s in scales):
+            return None
+        out = [int(float(n) * float(s)) for n, s in zip(x.shape[2:], scales)]  # floor: both are positive
+    if not all(s > 0 for s in out):
+        return None
+    return _fresh((*x.shape[:2], *out), x.dtype)
+
+
 _RULES: dict[Any, Callable[[tuple, dict], Any]] = {
     F.batch_norm: _batch_norm,
     F.layer_norm: _layer_norm,
     F.linear: _linear,
+    F.scaled_dot_product_attention: _attention,
+    F.interpolate: _interpolate,
     F.relu: _activation(1),
     F.relu6: _activation(1),
     F.silu: _activation(1),
