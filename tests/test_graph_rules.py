@@ -52,8 +52,12 @@ def _cases():
         yield F.leaky_relu, (_m(*shape, dtype=dtype),), {"negative_slope": 0.2}
         yield F.elu, (_m(*shape, dtype=dtype), 0.5), {}
         yield F.gelu, (_m(*shape, dtype=dtype),), {"approximate": "tanh"}
+        for dims, keep in (((-1,), False), ((1,), True), (1, False), ([0, -1], True)):
+            yield torch.mean, (_m(*shape, dtype=dtype), dims, keep), {}
+            yield torch.Tensor.mean, (_m(*shape, dtype=dtype),), {"dim": dims, "keepdim": keep}
         if len(shape) == 4:
             x = _m(*shape, dtype=dtype)
+            yield torch.Tensor.mean, (x, (2, 3)), {"keepdim": True}  # a squeeze-excite's global pool
             for kw in ({"scale_factor": 2, "mode": "bilinear"}, {"scale_factor": 1.7, "mode": "bilinear",
                                                                   "align_corners": False},
                        {"scale_factor": (0.5, 3.0), "mode": "nearest"}, {"size": (5, 6), "mode": "nearest-exact"},
@@ -108,6 +112,12 @@ def test_in_place_rules_hand_back_the_input(func, args, kwargs):
     (F.relu, (torch.empty(1, 4),), {}),  # not on the meta device
     (F.relu, (torch.empty(1, 4, dtype=torch.int64, device="meta"),), {}),
     (F.conv2d, (_m(1, 3, 8, 8), _m(4, 3, 3, 3)), {}),  # no rule: the meta kernel runs
+    (torch.mean, (_m(1, 3, 8, 8),), {}),  # the mean of everything: not ruled
+    (torch.Tensor.mean, (_m(1, 3, 8, 8), (2, 2)), {}),  # a dim twice: the kernel refuses it
+    (torch.Tensor.mean, (_m(1, 3, 8, 8),), {"dim": [1, -3]}),
+    (torch.Tensor.mean, (_m(1, 3, 8, 8), 4), {}),  # out of range
+    (torch.Tensor.mean, (_m(1, 3, 8, 8), 1), {"dtype": torch.float64}),
+    (torch.Tensor.mean, (_m(1, 3, 8, 8).permute(0, 2, 3, 1), 1), {}),  # not contiguous
     (F.interpolate, (_m(1, 3, 8, 8),), {"size": 4, "scale_factor": 2.0}),  # both: F.interpolate refuses it
     (F.interpolate, (_m(1, 3, 8, 8),), {"scale_factor": 2.0, "mode": "nearest", "align_corners": True}),
     (F.interpolate, (_m(1, 3, 8, 8),), {"scale_factor": 2.0, "mode": "area"}),  # adaptive pooling: not ruled

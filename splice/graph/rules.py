@@ -171,12 +171,30 @@ def _interpolate(args: tuple, kwargs: dict):
     return _fresh((*x.shape[:2], *out), x.dtype)
 
 
+def _mean(args: tuple, kwargs: dict):
+    """``torch.mean(input, dim, keepdim)`` / ``Tensor.mean`` over given dims (a global pool: ``x.mean((2, 3))``)."""
+    if not args or len(args) > 3 or set(kwargs) - {"dim", "keepdim"} or not _plain(args[0]):
+        return None
+    x = args[0]
+    dim, keepdim = _arg(args, kwargs, 1, "dim", None), _arg(args, kwargs, 2, "keepdim", False)
+    dims = [dim] if type(dim) is int else list(dim) if isinstance(dim, (list, tuple)) and dim else None
+    if dims is None or type(keepdim) is not bool or not all(type(d) is int and -x.dim() <= d < x.dim() for d in dims):
+        return None
+    if len({d % x.dim() for d in dims}) != len(dims):
+        return None  # a dim named twice: the kernel refuses it
+    dims = {d % x.dim() for d in dims}
+    shape = [1 if i in dims else n for i, n in enumerate(x.shape) if keepdim or i not in dims]
+    return _fresh(shape, x.dtype)
+
+
 _RULES: dict[Any, Callable[[tuple, dict], Any]] = {
     F.batch_norm: _batch_norm,
     F.layer_norm: _layer_norm,
     F.linear: _linear,
     F.scaled_dot_product_attention: _attention,
     F.interpolate: _interpolate,
+    torch.mean: _mean,
+    torch.Tensor.mean: _mean,
     F.relu: _activation(1),
     F.relu6: _activation(1),
     F.silu: _activation(1),

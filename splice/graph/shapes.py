@@ -280,10 +280,10 @@ def _propagate(
 
 
 def _call(node: fx.Node, args: tuple, kwargs: dict) -> Any:
-    if node.op == "call_function":
-        value = meta_rule(node.target, args, kwargs)
-        if value is not None:
-            return value
+    func = node.target if node.op == "call_function" else getattr(torch.Tensor, node.target, None)
+    value = meta_rule(func, args, kwargs)  # a method's rule takes the tensor first, as torch.Tensor.mean does
+    if value is not None:
+        return value
     fn = node.target if node.op == "call_function" else getattr(args[0], node.target)
     if node.op == "call_method":
         args = args[1:]
