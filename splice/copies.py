@@ -79,6 +79,10 @@ def private_buffers(model: nn.Module) -> nn.Module:
     return clone(model)
 
 
+# immutable values deepcopy returns as they are (flags, sizes, names, dtypes)
+_ATOMS = frozenset({type(None), bool, int, float, complex, str, bytes, torch.dtype})
+
+
 def _plain_module_class(cls: type) -> bool:
     """Deep-copied by nn.Module's own state protocol, with nothing of its own in the way."""
     return (cls.__getstate__ is nn.Module.__getstate__ and cls.__setstate__ is nn.Module.__setstate__
@@ -112,6 +116,8 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
                 state[key] = memo[id(value)] = {k: (None if v is None else walk(v)) for k, v in value.items()}
             elif type(value) in (dict, OrderedDict, set) and not value:
                 state[key] = memo.get(id(value)) or memo.setdefault(id(value), type(value)())
+            elif type(value) in _ATOMS or (type(value) is tuple and all(type(v) in _ATOMS for v in value)):
+                state[key] = value  # what deepcopy hands back for these, without its dispatch
             else:
                 state[key] = copy.deepcopy(value, memo)
         c.__setstate__(state)

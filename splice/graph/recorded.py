@@ -72,6 +72,21 @@ def _permutation(name: str, args: tuple) -> tuple[int, ...] | None:
     return None
 
 
+def _tensors(value: Any):
+    """The tensors in ``value``: itself, or inside tuples, lists and dicts (the containers torch functions take and
+    give; anything else goes to pytree, which knows named tuples and registered types)."""
+    if isinstance(value, torch.Tensor):
+        yield value
+    elif type(value) in (tuple, list):
+        for v in value:
+            yield from _tensors(v)
+    elif type(value) is dict:
+        for v in value.values():
+            yield from _tensors(v)
+    elif not isinstance(value, (int, float, str, bool, type(None), torch.dtype, torch.device)):
+        yield from (t for t in tree_leaves(value) if isinstance(t, torch.Tensor))
+
+
 class _Recording(TorchFunctionMode):
     """Records the operations on tensors computed from the inputs, and the module calls around them."""
 
@@ -98,12 +113,11 @@ class _Recording(TorchFunctionMode):
         return op.index
 
     def record(self, name: str, args: tuple, kwargs: dict, out) -> None:
-        read = [self.producer[id(t)] for t in tree_leaves((args, kwargs))
-                if isinstance(t, torch.Tensor) and id(t) in self.producer]
+        read = [self.producer[id(t)] for t in _tensors((args, kwargs)) if id(t) in self.producer]
         if not read:
             return  # constants and parameters only: not data flow from the inputs
         inputs = list(dict.fromkeys(read))
-        written = [t for t in tree_leaves(out) if isinstance(t, torch.Tensor)]
+        written = list(_tensors(out))
         if not written and name == "setitem" and args and isinstance(args[0], torch.Tensor):
             written = [args[0]]  # x[...] = y writes into x: its new value reads y
         for t in written:
