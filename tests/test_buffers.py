@@ -248,3 +248,24 @@ def test_tree_copy_is_a_deep_copy():
     memo = {id(p): nn.Parameter(torch.empty(p.shape, device="meta")) for p in model.parameters()}
     meta = tree_copy(model, memo)
     assert all(p.is_meta for n, p in meta.named_parameters() if not n.startswith("own."))
+
+
+def test_the_collector_is_paused_in_the_block_and_left_as_it_was():
+    import gc
+
+    from splice.copies import collector_paused
+
+    assert gc.isenabled()
+    with collector_paused():
+        assert not gc.isenabled()
+    assert gc.isenabled()
+    with pytest.raises(ZeroDivisionError), collector_paused():
+        1 / 0
+    assert gc.isenabled()  # an error in the block does not leave it off
+    gc.disable()
+    try:
+        with collector_paused():
+            pass
+        assert not gc.isenabled()  # a caller who turned it off keeps it off
+    finally:
+        gc.enable()

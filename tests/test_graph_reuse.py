@@ -243,3 +243,19 @@ def test_norms_made_leaves_for_a_trace_that_fails_are_not_leaves_for_the_fallbac
         tracing._trace_owned(_BranchyNet().eval(), rule)
     assert not rule(_NormAct)
     assert tracing._trace_owned(_FusedNet().eval(), rule) is not None and rule(_NormAct)  # kept when it traces
+
+
+def test_listing_runs_with_the_collector_paused(monkeypatch):
+    import gc
+
+    from splice.graph import listing
+
+    seen, real = [], listing._list_points
+
+    def spy(*args):
+        seen.append(gc.isenabled())
+        return real(*args)
+
+    monkeypatch.setattr(listing, "_list_points", spy)
+    graph.points(nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU(), nn.Conv2d(4, 4, 3)), (3, 8, 8))
+    assert seen == [False] and gc.isenabled()

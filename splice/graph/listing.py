@@ -25,7 +25,7 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from ..copies import private_buffers
+from ..copies import collector_paused, private_buffers
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes
 from .entries import _Entry, _graph_entries
@@ -252,6 +252,12 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
 
 def _list(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,
           keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
+    with collector_paused():
+        return _list_points(model, shapes, rule, every, warp, within, keep)
+
+
+def _list_points(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,
+                 keep: bool) -> tuple[list[Point], fx.GraphModule | None]:
     if within:
         scope, args, kwargs = _scope_inputs(model, shapes, within)
         first = next((a for a in args if isinstance(a, torch.Tensor) and a.dim() == 4), None)
