@@ -89,8 +89,13 @@ _ATOMS = frozenset({type(None), bool, int, float, complex, str, bytes, torch.dty
 
 
 def _plain_module_class(cls: type) -> bool:
-    """Deep-copied by nn.Module's own state protocol, with nothing of its own in the way."""
-    return (cls.__getstate__ is nn.Module.__getstate__ and cls.__setstate__ is nn.Module.__setstate__
+    """Deep-copied by nn.Module's own state protocol, with nothing of its own in the way.
+
+    A class's own ``__setstate__`` (convolutions fill in a default for old
+    pickles) is no obstacle: deepcopy and :func:`tree_copy` both hand it the
+    copied state.
+    """
+    return (cls.__getstate__ is nn.Module.__getstate__
             and cls.__reduce_ex__ is object.__reduce_ex__ and cls.__reduce__ is object.__reduce__
             and getattr(cls, "__deepcopy__", None) is None and not copyreg._slotnames(cls))
 

@@ -205,6 +205,14 @@ class _OwnCopy(nn.Module):
         return fresh
 
 
+class _Restores(nn.Conv2d):
+    """Has its own __setstate__ (as convolutions do): deepcopy and tree_copy both run it on the copied state."""
+
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        self.restored = self.__dict__.get("restored", 0) + 1
+
+
 class _Tree(nn.Module):
     def __init__(self):
         super().__init__()
@@ -213,6 +221,7 @@ class _Tree(nn.Module):
         self.other = nn.Conv2d(2, 2, 3, padding=1)
         self.other.weight = self.shared.weight  # tied
         self.own = _OwnCopy()
+        self.restores = _Restores(2, 2, 1)
         self.notes = ["a"]
         self.table = {"k": [1, 2]}
         self.register_buffer("steps", torch.zeros(()), persistent=False)
@@ -232,6 +241,7 @@ def test_tree_copy_is_a_deep_copy():
     assert _OwnCopy.copies == before + 2  # the module with its own __deepcopy__ was copied its way both times
     assert [(n, type(m)) for n, m in ours.named_modules()] == [(n, type(m)) for n, m in theirs.named_modules()]
     assert ours.pair[0] is ours.shared and ours.other.weight is ours.shared.weight  # sharing kept
+    assert ours.restores.restored == theirs.restores.restored == 1 and not hasattr(model.restores, "restored")
     assert list(ours.shared._forward_hooks) == list(model.shared._forward_hooks)
     mine = {id(t) for t in (*model.parameters(), *model.buffers())}
     assert not mine & {id(t) for t in (*ours.parameters(), *ours.buffers())}
