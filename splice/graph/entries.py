@@ -9,6 +9,7 @@ entries into :class:`~splice.graph.Point` records.
 
 from __future__ import annotations
 
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -51,25 +52,30 @@ def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:
 _NCHW = (0, 1, 2, 3)
 
 
-def _permutation(node: fx.Node) -> tuple[int, ...] | None:
-    """The dims of a permute/transpose node (output dim j = input dim perm[j]), else None."""
-    if node.op not in ("call_method", "call_function"):
-        return None
-    name = node.target if node.op == "call_method" else getattr(node.target, "__name__", "")
-    args = node.args[1:]
+def _dims_permutation(name: str, dims: tuple) -> tuple[int, ...] | None:
+    """Output dim j = input dim perm[j] for a 4-D ``permute`` or a ``transpose`` (``dims``: the call's arguments
+    after the tensor), else None. The fx, recorded and exported views all name their ops this way."""
     if name == "permute":
-        dims = args[0] if len(args) == 1 and isinstance(args[0], (list, tuple)) else args
+        dims = dims[0] if len(dims) == 1 and isinstance(dims[0], (list, tuple)) else dims
         if len(dims) == 4 and all(isinstance(d, int) for d in dims):
             return tuple(d % 4 for d in dims)
-    elif name in ("transpose", "swapaxes", "swapdims") and len(args) == 2 and all(isinstance(d, int) for d in args):
+    elif name in ("transpose", "swapaxes", "swapdims") and len(dims) == 2 and all(isinstance(d, int) for d in dims):
         perm = list(_NCHW)
-        a, b = args[0] % 4, args[1] % 4
+        a, b = dims[0] % 4, dims[1] % 4
         perm[a], perm[b] = perm[b], perm[a]
         return tuple(perm)
     return None
 
 
-def _layouts(nodes: list[fx.Node], values: dict[fx.Node, Any], is_conv: dict[fx.Node, bool]) -> dict:
+def _permutation(node: fx.Node) -> tuple[int, ...] | None:
+    """The dims of a permute/transpose node (output dim j = input dim perm[j]), else None."""
+    if node.op not in ("call_method", "call_function"):
+        return None
+    name = node.target if node.op == "call_method" else getattr(node.target, "__name__", "")
+    return _dims_permutation(name, node.args[1:])
+
+
+def _layouts(nodes: list, values: Mapping, is_conv: Mapping, permutation: Callable = _permutation) -> dict:
     """For each 4-D node, which input axis each of its axes holds (``_NCHW`` when unpermuted).
 
     Follows permute/transpose through the graph so that channels-last tensors
@@ -83,9 +89,20 @@ def _layouts(nodes: list[fx.Node], values: dict[fx.Node, Any], is_conv: dict[fx.
             continue
         source = next((p for p in n.all_input_nodes if p in layout), None)
         base = layout[source] if source is not None and not is_conv[n] else _NCHW
-        perm = _permutation(n) if source is not None else None
+        perm = permutation(n) if source is not None else None
         layout[n] = tuple(base[d] for d in perm) if perm is not None else base
     return layout
+
+
+def _site_name(stem: str, call: int, taken: set[str]) -> str:
+    """``stem`` for a module's first call, ``stem_K`` for call K; ``stem_K_J`` when another qualname took that
+    (``a_1`` and the second call of ``a`` meet). Adds the name to ``taken``."""
+    name = stem if call == 0 else f"{stem}_{call}"
+    j = 1
+    while name in taken:
+        name, j = f"{stem}_{call}_{j}", j + 1
+    taken.add(name)
+    return name
 
 
 def _graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[fx.Node, Any]) -> list[_Entry]:

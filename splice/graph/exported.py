@@ -28,7 +28,7 @@ from torch import nn
 
 from ..copies import private_buffers
 from .cuts import _cut_analysis
-from .entries import _NCHW, _Entry
+from .entries import _NCHW, _dims_permutation, _Entry, _layouts, _site_name
 
 __all__: list[str] = []
 
@@ -120,13 +120,7 @@ def _names(nodes: list, user_inputs: set[str], sites: Mapping) -> dict[Any, str]
         site = sites.get(n)
         if site is None:
             continue
-        stem = site.module.replace(".", "_")
-        name = stem if site.call == 0 else f"{stem}_{site.call}"
-        j = 1
-        while name in taken:  # two qualnames can meet ('a_1' and the second call of 'a')
-            name, j = f"{stem}_{site.call}_{j}", j + 1
-        taken.add(name)
-        names[n] = name
+        names[n] = _site_name(site.module.replace(".", "_"), site.call, taken)
     return names
 
 
@@ -138,30 +132,7 @@ def _node_name(n) -> str:
 
 
 def _permutation(n) -> tuple[int, ...] | None:
-    op = _op(n)
-    args = n.args[1:]
-    if op == "permute" and args and isinstance(args[0], (list, tuple)) and len(args[0]) == 4:
-        return tuple(int(d) % 4 for d in args[0])
-    if op in ("transpose", "swapaxes", "swapdims") and len(args) == 2 and all(isinstance(d, int) for d in args):
-        perm = list(_NCHW)
-        a, b = args[0] % 4, args[1] % 4
-        perm[a], perm[b] = perm[b], perm[a]
-        return tuple(perm)
-    return None
-
-
-def _layouts(nodes: list, values: Mapping, is_conv: Mapping) -> dict:
-    """Which input axis each axis of a 4-D node holds (``_NCHW`` unless a permute made it channels-last)."""
-    layout: dict = {}
-    for n in nodes:
-        v = values.get(n)
-        if not (isinstance(v, torch.Tensor) and v.dim() == 4):
-            continue
-        source = next((p for p in n.all_input_nodes if p in layout), None)
-        base = layout[source] if source is not None and not is_conv[n] else _NCHW
-        perm = _permutation(n) if source is not None else None
-        layout[n] = tuple(base[d] for d in perm) if perm is not None else base
-    return layout
+    return _dims_permutation(_op(n), n.args[1:])
 
 
 def _export(model: nn.Module, args: tuple, kwargs: dict):
@@ -199,7 +170,7 @@ def _export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[_Entry]
     is_conv = {n: n.op == "call_function" and _op(n) in _CONV_OPS for n in nodes}
     up, down = _flows(nodes, is_conv)
     cuts, joins = _cut_analysis(graph, values)
-    layouts = _layouts(nodes, values, is_conv)
+    layouts = _layouts(nodes, values, is_conv, _permutation)
     entries = []
     for n in nodes:
         if n not in names or layouts.get(n) != _NCHW:

@@ -5,14 +5,8 @@ A point is an (N, C, H, W) activation of the traced model. By default
 ``all=True`` lists every 4-D activation. Shapes come from one propagation on
 the meta device (batch size 1).
 
-Recommended points
-------------------
-splice recommends at most two points, both cuts that sit between convs: the
-model ``input``, and the first point in graph order whose stride is at least 4
-on both axes and whose feature map is at least 8x8. Stride 4 is where the stem
-of common CNNs ends (a strided conv followed by a pool or a second strided
-conv), so the second warp works on low-level features that still have spatial
-detail; a cut means one warp sees the whole signal.
+The recommendation rule (``input``, and the first cut between convs of stride
+4 or more and at least 8x8) is told in full in the :mod:`splice.graph` docstring.
 """
 
 from __future__ import annotations

@@ -29,7 +29,7 @@ from torch.overrides import TorchFunctionMode
 from torch.utils._pytree import tree_leaves
 
 from .cuts import _cut_analysis
-from .entries import _NCHW, _Entry
+from .entries import _NCHW, _dims_permutation, _Entry, _site_name
 from .leaves import _is_torch_builtin, _LeafRule
 from .rules import meta_rule
 from .shapes import _META, _meta_module, _run_for_real, _to_meta
@@ -55,21 +55,6 @@ def _name(func) -> str:
     """``add``, ``add_`` (in place), ``getitem``, ``setitem``: the function's name without dunder marks."""
     name = getattr(func, "__name__", None) or str(func)
     return name[2:-2] if name.startswith("__") and name.endswith("__") and len(name) > 4 else name
-
-
-def _permutation(name: str, args: tuple) -> tuple[int, ...] | None:
-    """Output dim j = input dim perm[j] for a 4-D permute or transpose, else None."""
-    rest = args[1:]
-    if name == "permute":
-        dims = rest[0] if len(rest) == 1 and isinstance(rest[0], (list, tuple)) else rest
-        if len(dims) == 4 and all(isinstance(d, int) for d in dims):
-            return tuple(d % 4 for d in dims)
-    elif name in ("transpose", "swapaxes", "swapdims") and len(rest) == 2 and all(isinstance(d, int) for d in rest):
-        perm = list(_NCHW)
-        a, b = rest[0] % 4, rest[1] % 4
-        perm[a], perm[b] = perm[b], perm[a]
-        return tuple(perm)
-    return None
 
 
 def _tensors(value: Any):
@@ -129,7 +114,7 @@ class _Recording(TorchFunctionMode):
         if name in _CONVS:
             return _NCHW
         base = next((self.ops[i].layout for i in inputs if self.ops[i].layout is not None), _NCHW)
-        perm = _permutation(name, args)
+        perm = _dims_permutation(name, args[1:])
         return tuple(base[d] for d in perm) if perm is not None else base
 
     def __torch_function__(self, func, types, args=(), kwargs=None):
@@ -299,11 +284,5 @@ def _names(rec: _Recording, sites: dict[int, tuple[str, int]]) -> dict[int, str]
     taken = {"input"}
     for i in sorted(sites):
         qualname, k = sites[i]
-        stem = qualname.replace(".", "_")
-        name = stem if k == 0 else f"{stem}_{k}"
-        j = 1
-        while name in taken:  # two qualnames can meet ('a_1' and the second call of 'a')
-            name, j = f"{stem}_{k}_{j}", j + 1
-        taken.add(name)
-        names[i] = name
+        names[i] = _site_name(qualname.replace(".", "_"), k, taken)
     return names
