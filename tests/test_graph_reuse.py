@@ -199,3 +199,40 @@ def test_norms_made_leaves_for_a_trace_that_fails_are_not_leaves_for_the_fallbac
         tracing._trace_owned(_BranchyNet().eval(), rule)
     assert not rule(_NormAct)
     assert tracing._trace_owned(_FusedNet().eval(), rule) is not None and rule(_NormAct)  # kept when it traces
+
+
+def test_warps_go_into_the_graph_as_it_is_traced_and_the_code_is_generated_once(monkeypatch):
+    """apply_plan without a trace in hand edits the graph before the GraphModule is made: one code generation,
+    and the same spliced module as splicing a finished trace (which generates it twice)."""
+    from splice.surgery import WARP_PREFIX, SplicePlan, apply_plan
+    from splice.warps import WarpConfig
+
+    model = _Shared().eval()
+    plan = [SplicePlan("a", WarpConfig(family="affine")), SplicePlan("input", WarpConfig(family="translation"))]
+    shapes = {"input": (3, 8, 8), "a": (4, 8, 8)}
+    calls = []
+    real = fx.GraphModule.recompile
+    monkeypatch.setattr(fx.GraphModule, "recompile", lambda self: calls.append(1) or real(self))
+    torch.manual_seed(0)
+    edited = apply_plan(model, plan, (3, 8, 8), shapes=shapes)
+    assert len(calls) == 1
+    torch.manual_seed(0)
+    finished = apply_plan(model, plan, (3, 8, 8), traced=graph.trace(model), shapes=shapes)
+    assert len(calls) == 3
+    assert _signature(edited.graph) == _signature(finished.graph)
+    assert edited.code == finished.code
+    assert isinstance(getattr(edited, WARP_PREFIX), nn.ModuleDict)
+    assert list(getattr(edited, WARP_PREFIX)) == ["input", "a"]
+    assert edited.state_dict().keys() == finished.state_dict().keys()
+    x = torch.randn(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(edited(x), model(x)) and torch.equal(finished(x), model(x))
+
+
+def test_an_edit_that_refuses_the_plan_leaves_no_graph_module():
+    from splice.errors import PointError
+    from splice.surgery import SplicePlan, apply_plan
+    from splice.warps import WarpConfig
+
+    with pytest.raises(PointError, match="not a 4-D point"):
+        apply_plan(_Shared(), [SplicePlan("nowhere", WarpConfig())], (3, 8, 8), shapes={"input": (3, 8, 8)})
