@@ -181,7 +181,9 @@ def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
 
 
 def _on_meta(model: nn.Module) -> bool:
-    return any(t.is_meta for t in (*model.parameters(), *model.buffers()))
+    """Some parameter or buffer of ``model`` is on the meta device (one walk, stopping at the first)."""
+    return any(t is not None and t.is_meta for m in model.modules()
+               for t in (*m._parameters.values(), *m._buffers.values()))
 
 
 def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | None:
@@ -242,7 +244,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     """Load ``state`` into ``model`` strictly (adopting the tensors with ``assign``), naming what does not fit."""
     from .warps import Warp
 
-    own = model.state_dict()
+    own = model.state_dict(keep_vars=True)
     missing = sorted(set(own) - set(state))
     unexpected = sorted(set(state) - set(own))
     wrong = sorted(k for k in own if k in state and tuple(own[k].shape) != tuple(state[k].shape))
@@ -396,7 +398,7 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
         return opened
     state = read_safetensors(path)
     if empty is not None:
-        check_dtypes(empty.state_dict(), base_part(state), f"'{path}'")
+        check_dtypes(empty.state_dict(keep_vars=True), base_part(state), f"'{path}'")
     opened.state = state if keep_mapped else {k: v.clone() for k, v in state.items()}
     return opened
 

@@ -97,7 +97,7 @@ def _node_map(gm: fx.GraphModule) -> dict[str, fx.Node]:
 
 def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
     """fx keeps only modules the graph touches; put back any others so names don't change."""
-    have = set(gm.state_dict())
+    have = set(gm.state_dict(keep_vars=True))
     want = original.state_dict(keep_vars=True)
     for key in want:
         if key in have:
