@@ -89,15 +89,13 @@ _ATOMS = frozenset({type(None), bool, int, float, complex, str, bytes, torch.dty
 
 
 def _plain_module_class(cls: type) -> bool:
-    """Deep-copied by nn.Module's own state protocol, with nothing of its own in the way.
-
-    A class's own ``__setstate__`` (convolutions fill in a default for old
-    pickles) is no obstacle: deepcopy and :func:`tree_copy` both hand it the
-    copied state.
-    """
-    return (cls.__getstate__ is nn.Module.__getstate__
+    """Deep-copied by nn.Module's own state protocol: made by ``cls.__new__(cls)`` and handed a deep copy of
+    ``__getstate__()`` by its ``__setstate__`` (its own, as convolutions have, is called just as deepcopy calls
+    it); nothing of its own in the way (no reduce, deepcopy, new-arguments or slots)."""
+    return (cls.__getstate__ is nn.Module.__getstate__ and callable(getattr(cls, "__setstate__", None))
             and cls.__reduce_ex__ is object.__reduce_ex__ and cls.__reduce__ is object.__reduce__
-            and getattr(cls, "__deepcopy__", None) is None and not copyreg._slotnames(cls))
+            and getattr(cls, "__deepcopy__", None) is None and getattr(cls, "__getnewargs_ex__", None) is None
+            and getattr(cls, "__getnewargs__", None) is None and not copyreg._slotnames(cls))
 
 
 def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module:

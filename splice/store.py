@@ -31,8 +31,8 @@ from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)
 from .version import library_versions
-from .sources import (Source, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped, is_hf_folder,
-                      load_source, parse_input_shapes, read_safetensors, with_metadata)
+from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped,
+                      is_hf_folder, load_source, parse_input_shapes, read_safetensors, with_metadata)
 from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
@@ -181,31 +181,9 @@ def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
 
 
 def _on_meta(model: nn.Module) -> bool:
-    return any(t.is_meta for t in (*model.parameters(), *model.buffers()))
-
-
-def _adopt(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
-    """``load_state_dict(state, strict=True, assign=True)``, keeping tied tensors tied.
-
-    Assigning gives every state-dict name a tensor of its own; a tensor that
-    sat under several names (tied weights, a module used twice) would come
-    out untied. Each such group is pointed back at one adopted tensor.
-    """
-    groups: dict[int, list[str]] = {}
-    for name, t in model.state_dict(keep_vars=True).items():
-        if isinstance(t, torch.Tensor):
-            groups.setdefault(id(t), []).append(name)
-    model.load_state_dict(with_metadata(model, state), strict=True, assign=True)
-    for names in (g for g in groups.values() if len(g) > 1):
-        first_owner, _, first_leaf = names[0].rpartition(".")
-        keep = getattr(model.get_submodule(first_owner) if first_owner else model, first_leaf)
-        for name in names[1:]:
-            owner_path, _, leaf = name.rpartition(".")
-            owner = model.get_submodule(owner_path) if owner_path else model
-            if leaf in owner._parameters:
-                owner._parameters[leaf] = keep
-            else:
-                owner._buffers[leaf] = keep
+    """Some parameter or buffer of ``model`` is on the meta device (one walk, stopping at the first)."""
+    return any(t is not None and t.is_meta for m in model.modules()
+               for t in (*m._parameters.values(), *m._buffers.values()))
 
 
 def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | None:
@@ -220,7 +198,7 @@ def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | No
     own = model.state_dict(keep_vars=True)
     if set(own) != set(state) or any(tuple(own[k].shape) != tuple(state[k].shape) for k in own):
         return None
-    _adopt(model, state)
+    adopt_state(model, state)
     return None if _on_meta(model) else model
 
 
@@ -266,7 +244,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     """Load ``state`` into ``model`` strictly (adopting the tensors with ``assign``), naming what does not fit."""
     from .warps import Warp
 
-    own = model.state_dict()
+    own = model.state_dict(keep_vars=True)
     missing = sorted(set(own) - set(state))
     unexpected = sorted(set(state) - set(own))
     wrong = sorted(k for k in own if k in state and tuple(own[k].shape) != tuple(state[k].shape))
@@ -280,7 +258,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
-        _adopt(model, state)
+        adopt_state(model, state)
         relink_lifted(model)  # constants the tracer lifted from buffer views, on the meta device until now
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
@@ -420,7 +398,7 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
         return opened
     state = read_safetensors(path)
     if empty is not None:
-        check_dtypes(empty.state_dict(), base_part(state), f"'{path}'")
+        check_dtypes(empty.state_dict(keep_vars=True), base_part(state), f"'{path}'")
     opened.state = state if keep_mapped else {k: v.clone() for k, v in state.items()}
     return opened
 

@@ -97,7 +97,7 @@ def _node_map(gm: fx.GraphModule) -> dict[str, fx.Node]:
 
 def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
     """fx keeps only modules the graph touches; put back any others so names don't change."""
-    have = set(gm.state_dict())
+    have = set(gm.state_dict(keep_vars=True))
     want = original.state_dict(keep_vars=True)
     for key in want:
         if key in have:
@@ -141,8 +141,8 @@ def _quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: floa
 
 
 def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
-                traced: fx.GraphModule | None = None, factory: dict | None = None,
-                shapes: Mapping[str, tuple[int, ...]] | None = None) -> fx.GraphModule:
+               traced: fx.GraphModule | None = None, factory: dict | None = None,
+               shapes: Mapping[str, tuple[int, ...]] | None = None) -> fx.GraphModule:
     """Trace ``model`` (fx works on a private clone) and insert the planned warps (no checks).
 
     ``traced`` may pass in a fresh, unused result of ``graph.trace(model)``;
@@ -150,25 +150,48 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
     localisation input) when they are known, which saves listing the points.
     The warps are built on the device and in the dtype of the model's first
     parameter unless ``factory`` (``{"device", "dtype"}``) says otherwise.
+    Without ``traced``, the warps go into the graph as it is traced, so the
+    GraphModule's code is generated once.
     """
     from . import graph
-    from .warps import Warp
 
-    gm = traced if traced is not None else graph.trace(model, leaves=leaves)
     if shapes is None:
         if listing is None:
             listing = graph.points(model, input_shape, all=True, leaves=leaves)
         shapes = {p.name: tuple(p.shape) for p in listing}
-    nodes = _node_map(gm)
-    order = {n: i for i, n in enumerate(gm.graph.nodes)}
     if factory is None:
         param = next(iter(model.parameters()), None)
         factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
-    _check_plan(plan, nodes, shapes, factory.get("dtype"))
-    if WARP_PREFIX in dict(gm.named_children()):
-        raise PointError(f"the model already has a submodule named {WARP_PREFIX!r}; it cannot be spliced again")
     container = nn.ModuleDict()
-    gm.add_module(WARP_PREFIX, container)
+
+    def edit(g: fx.Graph, root: nn.Module) -> None:
+        _insert_warps(g, root, container, plan, shapes, factory)
+
+    if traced is not None:
+        gm = traced
+        edit(gm.graph, gm)
+        gm.recompile()
+    else:
+        gm = graph.trace(model, leaves=leaves, edit=edit)
+        gm.add_module(WARP_PREFIX, container)  # fx copied the warps into a plain module: the ModuleDict instead
+    gm.graph.lint()
+    _restore_missing_state(gm, model)
+    gm.train(model.training)
+    return gm
+
+
+def _insert_warps(g: fx.Graph, root: nn.Module, container: nn.ModuleDict, plan: Sequence[SplicePlan],
+                  shapes: Mapping[str, tuple[int, ...]], factory: dict) -> None:
+    """Add one warp per planned point to ``container`` (a child of ``root``) and rewire ``g`` through them."""
+    from . import graph
+    from .warps import Warp
+
+    nodes = graph.point_names(g)
+    order = {n: i for i, n in enumerate(g.nodes)}
+    _check_plan(plan, nodes, shapes, factory.get("dtype"))
+    if WARP_PREFIX in dict(root.named_children()):
+        raise PointError(f"the model already has a submodule named {WARP_PREFIX!r}; it cannot be spliced again")
+    root.add_module(WARP_PREFIX, container)
     for item in sorted(plan, key=lambda it: order[nodes[it.point]]):
         node = nodes[item.point]
         loc_name = item.config.loc_from
@@ -189,16 +212,11 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
             loc_shape = shapes[loc_name]
         warp = Warp(item.config, shapes[item.point], loc_shape, **factory)
         container[item.point] = warp
-        with gm.graph.inserting_after(node):
+        with g.inserting_after(node):
             args = (node,) if loc_node is None else (node, loc_node)
-            new = gm.graph.call_module(f"{WARP_PREFIX}.{item.point}", args=args)
+            new = g.call_module(f"{WARP_PREFIX}.{item.point}", args=args)
         node.replace_all_uses_with(new, delete_user_cb=lambda user, new=new: user is not new)
         # a later warp may read this point as its localisation input: it sees the warped tensor
-    gm.graph.lint()
-    gm.recompile()
-    _restore_missing_state(gm, model)
-    gm.train(model.training)
-    return gm
 
 
 def _check_plan(plan: Sequence[SplicePlan], nodes: Mapping[str, fx.Node], shapes: Mapping[str, tuple[int, ...]],

@@ -279,3 +279,39 @@ def test_the_collector_is_paused_in_the_block_and_left_as_it_was():
         assert not gc.isenabled()  # a caller who turned it off keeps it off
     finally:
         gc.enable()
+
+
+class _OwnSetState(nn.Module):
+    """Fixes up its state when it is restored, as convolutions do (``padding_mode``)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(2, 2, 1)
+        self.items = [1]
+
+    def __setstate__(self, state):
+        super().__setstate__(state)
+        self.restored = getattr(self, "restored", 0) + 1
+
+    def forward(self, x):
+        return self.conv(x)
+
+
+class _NewArgs(_OwnSetState):
+    def __getnewargs__(self):
+        return ()
+
+
+def test_tree_copy_restores_a_module_by_its_own_setstate_as_deepcopy_does():
+    from splice import copies
+
+    assert copies._plain_module_class(nn.Conv2d) and copies._plain_module_class(_OwnSetState)
+    assert not copies._plain_module_class(_NewArgs)  # a reduction with arguments is left to copy.deepcopy
+    for cls in (_OwnSetState, _NewArgs):
+        model = nn.Sequential(cls(), cls())
+        ours, theirs = copies.tree_copy(model), copy.deepcopy(model)
+        for a, b, orig in zip(ours, theirs, model):
+            assert a.restored == b.restored == 1 and not hasattr(orig, "restored")
+            assert a.items == orig.items and a.items is not orig.items
+            assert a.conv.padding_mode == orig.conv.padding_mode and a.conv.weight is not orig.conv.weight
+            assert torch.equal(a.conv.weight, orig.conv.weight)

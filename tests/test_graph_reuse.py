@@ -259,3 +259,40 @@ def test_listing_runs_with_the_collector_paused(monkeypatch):
     monkeypatch.setattr(listing, "_list_points", spy)
     graph.points(nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU(), nn.Conv2d(4, 4, 3)), (3, 8, 8))
     assert seen == [False] and gc.isenabled()
+
+
+def test_warps_go_into_the_graph_as_it_is_traced_and_the_code_is_generated_once(monkeypatch):
+    """apply_plan without a trace in hand edits the graph before the GraphModule is made: one code generation,
+    and the same spliced module as splicing a finished trace (which generates it twice)."""
+    from splice.surgery import WARP_PREFIX, SplicePlan, apply_plan
+    from splice.warps import WarpConfig
+
+    model = _Shared().eval()
+    plan = [SplicePlan("a", WarpConfig(family="affine")), SplicePlan("input", WarpConfig(family="translation"))]
+    shapes = {"input": (3, 8, 8), "a": (4, 8, 8)}
+    calls = []
+    real = fx.GraphModule.recompile
+    monkeypatch.setattr(fx.GraphModule, "recompile", lambda self: calls.append(1) or real(self))
+    torch.manual_seed(0)
+    edited = apply_plan(model, plan, (3, 8, 8), shapes=shapes)
+    assert len(calls) == 1
+    torch.manual_seed(0)
+    finished = apply_plan(model, plan, (3, 8, 8), traced=graph.trace(model), shapes=shapes)
+    assert len(calls) == 3
+    assert _signature(edited.graph) == _signature(finished.graph)
+    assert edited.code == finished.code
+    assert isinstance(getattr(edited, WARP_PREFIX), nn.ModuleDict)
+    assert list(getattr(edited, WARP_PREFIX)) == ["input", "a"]
+    assert edited.state_dict().keys() == finished.state_dict().keys()
+    x = torch.randn(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(edited(x), model(x)) and torch.equal(finished(x), model(x))
+
+
+def test_an_edit_that_refuses_the_plan_leaves_no_graph_module():
+    from splice.errors import PointError
+    from splice.surgery import SplicePlan, apply_plan
+    from splice.warps import WarpConfig
+
+    with pytest.raises(PointError, match="not a 4-D point"):
+        apply_plan(_Shared(), [SplicePlan("nowhere", WarpConfig())], (3, 8, 8), shapes={"input": (3, 8, 8)})

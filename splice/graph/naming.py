@@ -56,9 +56,10 @@ def _point_names(graph: fx.Graph) -> dict[fx.Node, str]:
     return names
 
 
-def point_names(gm: fx.GraphModule) -> dict[str, fx.Node]:
-    """``{point name: fx node}`` for a traced module (the names :func:`points` prints)."""
-    return {name: node for node, name in _point_names(gm.graph).items() if node.op not in ("get_attr", "output")}
+def point_names(gm: fx.GraphModule | fx.Graph) -> dict[str, fx.Node]:
+    """``{point name: fx node}`` for a traced module or its graph (the names :func:`points` prints)."""
+    graph = gm if isinstance(gm, fx.Graph) else gm.graph
+    return {name: node for node, name in _point_names(graph).items() if node.op not in ("get_attr", "output")}
 
 
 def find_point(model_or_gm: nn.Module, name: str, *, leaves: Iterable[Any] = ()) -> fx.Node:

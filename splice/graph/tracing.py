@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import operator
 import warnings
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from typing import Any
 
@@ -441,7 +441,8 @@ def relink_lifted(gm: nn.Module) -> None:
             gm._buffers[name] = source.as_strided(size, stride, source.storage_offset() + offset)
 
 
-def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
+def trace(model: nn.Module, *, leaves: Iterable[Any] = (),
+          edit: Callable[[fx.Graph, nn.Module], None] | None = None) -> fx.GraphModule:
     """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
 
     The GraphModule owns deep copies of the model's parameters and buffers; the
@@ -452,18 +453,27 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = ()) -> fx.GraphModule:
     are non-persistent buffers of the result. The graph is the eval-mode graph
     (see the module docstring); node names are stable from run to run. Raises
     :class:`~splice.errors.GraphError` naming the module fx could not trace.
+
+    ``edit(graph, root)``, when given, changes the graph before the GraphModule
+    is made from it, so that its code is generated once, not once for the trace
+    and again for the edit. ``root`` is the private copy the GraphModule takes
+    its modules from; a module the edit adds to it under a dotted target
+    (``"box.item"``) reaches the GraphModule inside a plain ``nn.Module``
+    container ``box``, as fx copies any target.
     """
     _check_model(model, "trace()")
     try:
-        gm, _ = _trace_copy(model, _LeafRule(leaves))
+        gm, _ = _trace_copy(model, _LeafRule(leaves), edit)
     except _FxFailure as failure:
         where, todo = _fx_failure_hint(failure, model)
         raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
     return gm
 
 
-def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.Module]:
-    """:func:`trace`'s GraphModule, and the twin the tracer ran on (whose modules the graph's nodes name).
+def _trace_copy(model: nn.Module, rule: _LeafRule, edit: Callable[[fx.Graph, nn.Module], None] | None = None,
+                ) -> tuple[fx.GraphModule, nn.Module]:
+    """:func:`trace`'s GraphModule (its graph changed by ``edit`` first), and the twin the tracer ran on (whose
+    modules the graph's nodes name).
 
     Raises :class:`_FxFailure` when fx cannot trace the model.
     """
@@ -478,6 +488,8 @@ def _trace_copy(model: nn.Module, rule: _LeafRule) -> tuple[fx.GraphModule, nn.M
     graph = _trace_owned(twin, rule)
     _unspy_meta(graph)
     lifted = _adopt_lifted(graph, twin, work)
+    if edit is not None:
+        edit(graph, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     for name in lifted:
         gm._non_persistent_buffers_set.add(name)

@@ -30,6 +30,7 @@ unexpected and shape-mismatched names are refused unless ``allow_partial``.
 
 from __future__ import annotations
 
+from .adopting import adopt_state
 from .builders import IMAGENET_NORMALISATION, build_model
 from .empty import initialisers_skipped
 from .huggingface import is_hf_folder, read_hf_folder
@@ -49,6 +50,7 @@ from .weights import (
 
 __all__ = [
     "Source",
+    "adopt_state",
     "load_source",
     "build_model",
     "initialisers_skipped",

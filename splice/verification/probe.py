@@ -84,12 +84,13 @@ class _Snapshot:
         self.models = dict(models)
         self.buffers = {f"{tag}:{n}": b.detach().clone() for tag, m in self.models.items()
                         for n, b in m.named_buffers()}
-        self.modes = {f"{tag}:{n or '<root>'}": mod.training for tag, m in self.models.items()
-                      for n, mod in m.named_modules()}
+        # the module trees, listed once: the modes are read, restored and compared from this list
+        self.trees = {tag: list(m.named_modules()) for tag, m in self.models.items()}
+        self.modes = {f"{tag}:{n or '<root>'}": mod.training for tag, mods in self.trees.items() for n, mod in mods}
 
     def restore_modes(self) -> None:
-        for tag, m in self.models.items():
-            for n, mod in m.named_modules():
+        for tag, mods in self.trees.items():
+            for n, mod in mods:
                 mod.training = self.modes[f"{tag}:{n or '<root>'}"]
 
     def check(self, runs: Mapping[str, nn.Module] | None = None) -> CheckResult:
