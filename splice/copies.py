@@ -158,14 +158,17 @@ def changed_buffers(before: Mapping[str, torch.Tensor], model: nn.Module) -> lis
 
 @contextmanager
 def collector_paused() -> Iterator[None]:
-    """Python's cyclic garbage collector held off for the block (as it was before, after it).
+    """Python's cyclic garbage collector held off for the block (as it was before, after it); also a decorator.
 
     Building twins and running them on the meta device makes tens of
-    thousands of short-lived objects; their allocations trigger collections,
-    and a full one walks the whole heap (torch, timm and transformers loaded:
-    100 to 400 ms on the zoo's models, several times the pass itself). Nothing
-    is lost: cycles made in the block are collected at the next collection
-    after it.
+    thousands of objects that live until the pass ends; their allocations
+    trigger collections that cannot free them, and a full one walks the
+    whole heap (torch, timm and transformers loaded: 100 to 400 ms on the
+    zoo's models, several times the pass itself). Nothing is lost: cycles
+    made in the block are collected at the next collection after it. Eight
+    verifies of a spliced efficientnet_b0 and of a mobilevit_xxs in a row
+    took 20-22 % less time in all with the collector paused, the collections
+    that ran after each block included (measured 2026-12-03, one thread).
     """
     was = gc.isenabled()
     gc.disable()

@@ -296,3 +296,21 @@ def test_an_edit_that_refuses_the_plan_leaves_no_graph_module():
 
     with pytest.raises(PointError, match="not a 4-D point"):
         apply_plan(_Shared(), [SplicePlan("nowhere", WarpConfig())], (3, 8, 8), shapes={"input": (3, 8, 8)})
+
+
+def test_verify_runs_with_the_collector_paused(monkeypatch, tmp_path):
+    import gc
+
+    import splice
+    from splice.verification import run
+
+    seen, real = [], run._run_checks
+
+    def spy(*args, **kwargs):
+        seen.append(gc.isenabled())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(run, "_run_checks", spy)
+    folder = splice.save(splice.insert("splice.models:tray_net", at="input"), tmp_path / "tray")
+    assert splice.verify(folder).passed
+    assert seen == [False] and gc.isenabled()

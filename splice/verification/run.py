@@ -16,7 +16,7 @@ from torch import nn
 
 from .._io import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, first_rows, flatten_outputs
-from ..copies import private_buffers
+from ..copies import collector_paused, private_buffers
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
@@ -242,6 +242,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
     return VerifyReport(rows, meta)
 
 
+@collector_paused()
 def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Mapping | None = None, images=None,
                   batch: int = 1, dtype="float32", onnx: bool = False, opset: int = 17, seed: int = 0,
                   exporter: str = "torchscript", tol: float | None = None, trust_code: bool = False) -> VerifyReport:
@@ -266,6 +267,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
                        meta=meta, owned=False, lap=lap)
 
 
+@collector_paused()
 def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False,
            opset: int = 17, seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript",
            tol: float | None = None, trust_code: bool = False) -> VerifyReport:
