@@ -5,11 +5,12 @@ weights and BatchNorm statistics calibrated on random inputs), this runs the who
 insert at ``recommended`` with ``affine`` -> verify with ONNX -> export. It prints the fraction that pass
 (goal 1.0) and, per model, the cost of ``points``, ``insert`` and ``verify`` (without ONNX) divided by one
 batch-1 eval forward pass of the same model at the input size it is used at (224x224 per input, 320x320
-for the detector), measured in the same run. Goals:
+for the detector), the best of three timed just before each run of the step. Goals:
 ``points`` at most 1 forward pass on every model, ``verify`` without ONNX at most 10; ``insert`` is
 reported (it lists the points and traces the model in one pass, splices, and runs one identity check on a
 batch of 2). Each cost is the median of
-``repeats`` runs; the forward pass is the best of as many.
+``repeats`` such ratios (the machine's speed drifts on a shared host: a ratio of two timings taken a second
+apart is steadier than two medians taken minutes apart).
 
 Run ``python benchmarks/bench_zoo.py [--threads T] [MODEL_ID ...]``; ``run()`` returns the rows for
 ``benchmarks/run.py``. ``--threads`` sets torch's thread count for the forward baseline and the steps alike
@@ -33,16 +34,20 @@ __all__ = ["run", "main"]
 
 _POINTS_GOAL = 1.0
 _VERIFY_GOAL = 10.0
-_REPEATS = 3
+_REPEATS = 5
 
 
-def _median_seconds(fn, repeats: int) -> float:
-    times = []
+def _median_ratio(fn, forward, repeats: int) -> float:
+    """The median over ``repeats`` of (seconds of ``fn()``) / (seconds of one forward, the best of three timed just
+    before it): each ratio compares work done within the same second or so, so a machine whose speed drifts (other
+    jobs, a shared host) moves both sides of it alike."""
+    ratios = []
     for _ in range(repeats):
+        base = min(forward() for _ in range(3))
         start = time.perf_counter()
         fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
+        ratios.append((time.perf_counter() - start) / base)
+    return statistics.median(ratios)
 
 
 def _costs(entry, workdir: Path, repeats: int) -> dict:
@@ -53,15 +58,19 @@ def _costs(entry, workdir: Path, repeats: int) -> dict:
     spec, weights = entry.prepare(workdir)
     src = splice.load_source(spec, kwargs=entry.kwargs or None, input_shape=list(entry.usual_shapes),
                              weights=weights)
-    forward = forward_seconds(src.model, entry.usual_shapes, repeat=repeats)
+
+    def forward():
+        return forward_seconds(src.model, entry.usual_shapes)
+
+    seconds = min(forward() for _ in range(repeats))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        points = _median_seconds(lambda: splice.points(src, within=entry.within), repeats)
-        insert = _median_seconds(lambda: splice.insert(src, at="recommended", within=entry.within), repeats)
+        points = _median_ratio(lambda: splice.points(src, within=entry.within), forward, repeats)
+        insert = _median_ratio(lambda: splice.insert(src, at="recommended", within=entry.within), forward, repeats)
         folder = splice.save(splice.insert(src, at="recommended", within=entry.within),
                              workdir / f"{entry.id.replace(':', '-')}-bench", overwrite=True)
-        verify = _median_seconds(lambda: splice.verify(folder), repeats)
-    return {"forward": forward, "points": points / forward, "insert": insert / forward, "verify": verify / forward}
+        verify = _median_ratio(lambda: splice.verify(folder), forward, repeats)
+    return {"forward": seconds, "points": points, "insert": insert, "verify": verify}
 
 
 def _measure(ids=None, repeats: int = _REPEATS) -> tuple[list[dict], float]:
