@@ -7,7 +7,9 @@ traces. splice therefore runs, traces and exports *twins*:
 :func:`private_buffers` clones the module tree (each module gets its own
 ``__dict__``, child, parameter, buffer and hook mappings), shares the
 parameters (read, never written) and gives every twin its own copy of each
-buffer. A buffer registered under several names stays one tensor in the twin.
+buffer and of the Python state a forward may change (a dict it caches grids
+in, a list it logs to). A buffer registered under several names stays one
+tensor in the twin, and an object shared by several modules stays shared.
 
 :func:`tree_copy` is ``copy.deepcopy`` for a module tree, without the generic
 machinery for every module and every empty hook mapping.
@@ -47,16 +49,23 @@ _OWNED_DICTS = (
 
 
 def private_buffers(model: nn.Module) -> nn.Module:
-    """A twin of ``model`` that shares its parameters and owns copies of its buffers.
+    """A twin of ``model`` that shares its parameters and owns copies of its buffers and of its Python state.
 
     Each module of the twin has its own ``__dict__`` (flags and attributes can
     be set freely), its own child/parameter/buffer/hook mappings, and its own
     buffer tensors (``detach().clone()``); parameters are the caller's objects.
-    Running, tracing or exporting the twin leaves ``model`` bit for bit as it
-    was. The twin is for one job: it is not a copy to train or keep.
+    Any other attribute that is not immutable (a dict a forward caches grids
+    in, a list it appends to, a config object) is deep-copied, with the
+    tree's modules, parameters and buffers mapped to the twin's, so that
+    shared objects stay shared within the twin. Plain tensor attributes stay
+    shared (a view of a buffer must stay a view); so does an object that
+    cannot be deep-copied. Running, tracing or exporting the twin leaves
+    ``model`` bit for bit as it was. The twin is for one job: it is not a copy
+    to train or keep.
     """
     modules: dict[int, nn.Module] = {}
     buffers: dict[int, torch.Tensor] = {}
+    pairs: list[tuple[nn.Module, nn.Module]] = []
 
     def own(t):
         if t is None:
@@ -73,6 +82,7 @@ def private_buffers(model: nn.Module) -> nn.Module:
         c = object.__new__(type(m))
         c.__dict__.update(m.__dict__)
         modules[id(m)] = c
+        pairs.append((m, c))
         for key in _OWNED_DICTS:
             value = m.__dict__.get(key)
             if value is not None:
@@ -81,7 +91,33 @@ def private_buffers(model: nn.Module) -> nn.Module:
         c.__dict__["_modules"] = {k: (None if v is None else clone(v)) for k, v in m._modules.items()}
         return c
 
-    return clone(model)
+    twin = clone(model)
+    memo: dict[int, Any] = {**modules, **buffers}
+    for t in model.parameters():
+        memo[id(t)] = t
+    for m, c in pairs:
+        for key, value in m.__dict__.items():
+            if key not in _TREE_KEYS and not _immutable(value):
+                c.__dict__[key] = _own_copy(value, memo)
+    return twin
+
+
+# a module's own mappings, which private_buffers copies itself
+_TREE_KEYS = frozenset({*_OWNED_DICTS, "_modules", "_buffers"})
+
+
+def _immutable(value: Any) -> bool:
+    t = type(value)
+    return (t in _ATOMS or isinstance(value, (torch.Tensor, nn.Module)) or callable(value) and not hasattr(
+        value, "__dict__") or (t is tuple and all(type(v) in _ATOMS for v in value)))
+
+
+def _own_copy(value: Any, memo: dict[int, Any]) -> Any:
+    """A deep copy of ``value`` through ``memo``; the value itself when it cannot be copied."""
+    try:
+        return copy.deepcopy(value, memo)
+    except Exception:  # a lock, a handle, a generator: shared, as before
+        return value
 
 
 # immutable values deepcopy returns as they are (flags, sizes, names, dtypes)

@@ -157,6 +157,65 @@ def test_a_fresh_splice_of_a_buffer_updating_model_passes_verify(tmp_path):
     assert any(k.endswith("count.calls") for k in report["buffers"].numbers["updated_in_eval"])
 
 
+class _Caching(nn.Module):
+    """Keeps Python state that its forward changes: a cache of grids by input size and a call log; with
+    ``branch``, a branch on a shape too (fx cannot trace it: the hooks mechanism takes over)."""
+
+    def __init__(self, branch: bool = False):
+        super().__init__()
+        self.branch = branch
+        self.conv = nn.Conv2d(3, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, stride=2, padding=1)
+        self.grids: dict = {}
+        self.log: list = []
+        self.shared = self.log  # one list under two names
+
+    def forward(self, x):
+        size = tuple(x.shape[-2:])
+        if size not in self.grids:
+            self.grids[size] = torch.zeros(1)
+        self.log.append(size)
+        if self.branch and x.shape[-1] < 4:
+            raise ValueError("too small")
+        return self.head(torch.relu(self.conv(x))).mean((2, 3))
+
+
+def caching_net():
+    return _Caching()
+
+
+def caching_branchy_net():
+    return _Caching(branch=True)
+
+
+caching_net.input_shape = caching_branchy_net.input_shape = (3, 16, 16)
+
+
+def test_private_buffers_owns_the_python_state_a_forward_changes():
+    model = _Caching()
+    model.pair = [model.conv, model.head.weight]  # modules and parameters inside a plain container
+    twin = private_buffers(model)
+    with torch.no_grad():
+        twin(torch.randn(1, 3, 8, 8))
+    assert model.grids == {} and model.log == [] and twin.log == [(8, 8)]
+    assert twin.shared is twin.log  # shared within the twin as in the model
+    assert twin.pair[0] is twin.conv and twin.pair[1] is model.head.weight  # the twin's module, the shared weight
+
+
+@pytest.mark.parametrize("factory", ["caching_net", "caching_branchy_net"], ids=["fx", "hooks"])
+def test_splice_never_changes_the_python_state_of_the_callers_model(factory):
+    from splice.verification import verify_models
+
+    model = globals()[factory]().eval()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        splice.points(model, (3, 16, 16), all=True)
+        spliced = insert(model, at="recommended", input_shape=(3, 16, 16))
+        report = verify_models(model, spliced)
+    assert report.passed, report.failed
+    assert model.grids == {} and model.log == [] and model.shared is model.log
+
+
 def test_lifted_constants_stay_out_of_the_state_dict():
     gm = graph.trace(_ConstNet())
     assert "_tensor_constant0" in dict(gm.named_buffers())
