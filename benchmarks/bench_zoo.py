@@ -43,7 +43,7 @@ def _median_ratio(fn, forward, repeats: int) -> float:
     jobs, a shared host) moves both sides of it alike."""
     ratios = []
     for _ in range(repeats):
-        base = min(forward() for _ in range(3))
+        base = forward(3)
         start = time.perf_counter()
         fn()
         ratios.append((time.perf_counter() - start) / base)
@@ -59,10 +59,10 @@ def _costs(entry, workdir: Path, repeats: int) -> dict:
     src = splice.load_source(spec, kwargs=entry.kwargs or None, input_shape=list(entry.usual_shapes),
                              weights=weights)
 
-    def forward():
-        return forward_seconds(src.model, entry.usual_shapes)
+    def forward(repeat: int) -> float:
+        return forward_seconds(src.model, entry.usual_shapes, repeat=repeat)
 
-    seconds = min(forward() for _ in range(repeats))
+    seconds = forward(repeats)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         points = _median_ratio(lambda: splice.points(src, within=entry.within), forward, repeats)

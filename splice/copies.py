@@ -47,6 +47,18 @@ _OWNED_DICTS = (
     "_state_dict_hooks", "_state_dict_pre_hooks", "_load_state_dict_pre_hooks", "_load_state_dict_post_hooks",
 )
 
+# a module's own mappings, which private_buffers copies itself
+_TREE_KEYS = frozenset({*_OWNED_DICTS, "_modules", "_buffers"})
+
+# immutable values deepcopy returns as they are (flags, sizes, names, dtypes)
+_ATOMS = frozenset({type(None), bool, int, float, complex, str, bytes, torch.dtype})
+
+
+def _atomic(value: Any) -> bool:
+    """An immutable value, or a tuple of them, that ``copy.deepcopy`` would hand back as it is."""
+    t = type(value)
+    return t in _ATOMS or (t is tuple and all(type(v) in _ATOMS for v in value))
+
 
 def private_buffers(model: nn.Module) -> nn.Module:
     """A twin of ``model`` that shares its parameters and owns copies of its buffers and of its Python state.
@@ -102,14 +114,10 @@ def private_buffers(model: nn.Module) -> nn.Module:
     return twin
 
 
-# a module's own mappings, which private_buffers copies itself
-_TREE_KEYS = frozenset({*_OWNED_DICTS, "_modules", "_buffers"})
-
-
 def _immutable(value: Any) -> bool:
-    t = type(value)
-    return (t in _ATOMS or isinstance(value, (torch.Tensor, nn.Module)) or callable(value) and not hasattr(
-        value, "__dict__") or (t is tuple and all(type(v) in _ATOMS for v in value)))
+    """Kept as it is by a twin: an atomic value, a tensor, a module, or a callable without state of its own."""
+    return (_atomic(value) or isinstance(value, (torch.Tensor, nn.Module))
+            or (callable(value) and not hasattr(value, "__dict__")))
 
 
 def _own_copy(value: Any, memo: dict[int, Any]) -> Any:
@@ -118,10 +126,6 @@ def _own_copy(value: Any, memo: dict[int, Any]) -> Any:
         return copy.deepcopy(value, memo)
     except Exception:  # a lock, a handle, a generator: shared, as before
         return value
-
-
-# immutable values deepcopy returns as they are (flags, sizes, names, dtypes)
-_ATOMS = frozenset({type(None), bool, int, float, complex, str, bytes, torch.dtype})
 
 
 def _plain_module_class(cls: type) -> bool:
@@ -160,7 +164,7 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
                 state[key] = memo[id(value)] = {k: (None if v is None else walk(v)) for k, v in value.items()}
             elif type(value) in (dict, OrderedDict, set) and not value:
                 state[key] = memo.get(id(value)) or memo.setdefault(id(value), type(value)())
-            elif type(value) in _ATOMS or (type(value) is tuple and all(type(v) in _ATOMS for v in value)):
+            elif _atomic(value):
                 state[key] = value  # what deepcopy hands back for these, without its dispatch
             else:
                 state[key] = copy.deepcopy(value, memo)

@@ -250,13 +250,13 @@ def test_listing_runs_with_the_collector_paused(monkeypatch):
 
     from splice.graph import listing
 
-    seen, real = [], listing._list_points
+    seen, real = [], listing._build_points
 
     def spy(*args):
         seen.append(gc.isenabled())
         return real(*args)
 
-    monkeypatch.setattr(listing, "_list_points", spy)
+    monkeypatch.setattr(listing, "_build_points", spy)
     graph.points(nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU(), nn.Conv2d(4, 4, 3)), (3, 8, 8))
     assert seen == [False] and gc.isenabled()
 

@@ -244,14 +244,9 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     return _list(model, shapes, _LeafRule(leaves), True, warp, within, keep=True)
 
 
+@collector_paused()
 def _list(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,
           keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
-    with collector_paused():
-        return _list_points(model, shapes, rule, every, warp, within, keep)
-
-
-def _list_points(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,
-                 keep: bool) -> tuple[list[Point], fx.GraphModule | None]:
     if within:
         scope, args, kwargs = _scope_inputs(model, shapes, within)
         first = next((a for a in args if isinstance(a, torch.Tensor) and a.dim() == 4), None)

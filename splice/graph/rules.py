@@ -143,16 +143,17 @@ _RESIZE_MODES = frozenset({"nearest", "nearest-exact", "bilinear", "bicubic"})
 
 def _interpolate(args: tuple, kwargs: dict):
     """``F.interpolate`` of an (N, C, H, W) tensor by ``size`` or ``scale_factor`` (floor of size * scale)."""
-    names = ("size", "scale_factor", "mode", "align_corners", "recompute_scale_factor", "antialias")
-    if not args or len(args) > 7 or set(kwargs) - set(names) or not _plain(args[0]) or args[0].dim() != 4:
+    names = {"size", "scale_factor", "mode", "align_corners", "recompute_scale_factor", "antialias"}
+    if not args or len(args) > 7 or set(kwargs) - names or not _plain(args[0]) or args[0].dim() != 4:
         return None
     x = args[0]
-    size, scale, mode, corners, recompute, antialias = (_arg(args, kwargs, i + 1, n, d) for i, (n, d) in
-                                                         enumerate(zip(names, (None, None, "nearest", None, None,
-                                                                               False))))
-    if mode not in _RESIZE_MODES or recompute or (corners is not None and mode not in ("bilinear", "bicubic")):
-        return None
-    if antialias and mode not in ("bilinear", "bicubic"):
+    size, scale = _arg(args, kwargs, 1, "size", None), _arg(args, kwargs, 2, "scale_factor", None)
+    mode = _arg(args, kwargs, 3, "mode", "nearest")
+    corners = _arg(args, kwargs, 4, "align_corners", None)
+    recompute = _arg(args, kwargs, 5, "recompute_scale_factor", None)
+    antialias = _arg(args, kwargs, 6, "antialias", False)
+    smooth = mode in ("bilinear", "bicubic")  # the modes that take align_corners and antialias
+    if mode not in _RESIZE_MODES or recompute or (not smooth and (corners is not None or antialias)):
         return None
     if (size is None) == (scale is None):
         return None
@@ -180,10 +181,10 @@ def _mean(args: tuple, kwargs: dict):
     dims = [dim] if type(dim) is int else list(dim) if isinstance(dim, (list, tuple)) and dim else None
     if dims is None or type(keepdim) is not bool or not all(type(d) is int and -x.dim() <= d < x.dim() for d in dims):
         return None
-    if len({d % x.dim() for d in dims}) != len(dims):
+    reduced = {d % x.dim() for d in dims}
+    if len(reduced) != len(dims):
         return None  # a dim named twice: the kernel refuses it
-    dims = {d % x.dim() for d in dims}
-    shape = [1 if i in dims else n for i, n in enumerate(x.shape) if keepdim or i not in dims]
+    shape = [1 if i in reduced else n for i, n in enumerate(x.shape) if keepdim or i not in reduced]
     return _fresh(shape, x.dtype)
 
 
