@@ -151,7 +151,7 @@ def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = F
     """
     import warnings
 
-    from ._io import atomic_write_json, atomic_write_text
+    from .fileio import atomic_write_json, atomic_write_text
     from .errors import RandomWeightsWarning
 
     out = Path(out)

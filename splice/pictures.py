@@ -16,7 +16,7 @@ from pathlib import Path
 import torch
 from torch import Tensor
 
-from ._io import atomic_write_bytes
+from .fileio import atomic_write_bytes
 
 __all__ = ["DPI", "OKABE_ITO", "FONT_SIZE", "new_figure", "save_png", "image_array", "image_cmap"]
 

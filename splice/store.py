@@ -26,7 +26,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ._io import atomic_dir, file_sha256, read_json, state_dict_sha256
+from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)

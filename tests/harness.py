@@ -18,7 +18,7 @@ import copy
 import torch
 
 from splice import graph
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 from splice.copies import buffer_snapshot, changed_buffers
 from splice.surgery import insert, warps_of
 from splice.compare import compare_outputs

@@ -14,7 +14,7 @@ import pytest
 import torch
 
 import splice
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 from splice.adapt.batchnorm import refresh_batchnorm_
 from splice.adapt.diagnostics import base_view
 from splice.adapt.images import TensorImages, image_files, open_images

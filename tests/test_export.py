@@ -72,7 +72,7 @@ def test_onnx_export_matches_onnxruntime(onnx_file, model):
     item = result["exports"][0]
     assert item["format"] == "onnx" and item["opset"] == 17 and item["path"] == str(path)
     assert item["max_rel"] <= 1e-4 and item["max_rel_perturbed"] <= 1e-4
-    from splice._io import file_sha256
+    from splice.fileio import file_sha256
 
     assert item["sha256"] == file_sha256(path)
     # independent check: the written file in onnxruntime against eager torch

@@ -17,7 +17,14 @@ from torch import nn
 
 from splice import graph
 from splice.errors import GraphError, PointError
-from splice.graph import Point, TraceFallbackWarning, TraceModeWarning, find_point, points, points_report
+from splice.graph import (
+    Point,
+    TraceFallbackWarning,
+    TraceModeWarning,
+    find_point,
+    points,
+    points_report,
+)
 from splice.warps import Warp, WarpConfig
 
 
@@ -300,7 +307,7 @@ def test_the_recorded_and_exported_views_agree(monkeypatch):
     def refuse(*args, **kwargs):
         raise RuntimeError("needs real values")
 
-    monkeypatch.setattr(fallback, "_recorded_entries", refuse)
+    monkeypatch.setattr(fallback, "recorded_entries", refuse)
     exported, how = listing()
     assert "torch.export" in how
     assert recorded == exported
@@ -329,7 +336,7 @@ def test_an_output_written_again_in_place_is_still_a_point(monkeypatch):
     recorded = listing()
     assert recorded == [("input", None, True), ("conv", ("conv", 0), True), ("bn", ("bn", 0), True),
                         ("relu", ("relu", 0), True), ("conv2", ("conv2", 0), True)]
-    monkeypatch.setattr(fallback, "_recorded_entries", lambda *a, **k: 1 / 0)
+    monkeypatch.setattr(fallback, "recorded_entries", lambda *a, **k: 1 / 0)
     assert listing() == recorded  # torch.export agrees
 
 
@@ -356,7 +363,7 @@ def test_without_export_the_module_view_lists_module_outputs(monkeypatch):
         raise RuntimeError("refused")
 
     monkeypatch.setattr(exported, "_export", refuse)
-    monkeypatch.setattr(fallback, "_recorded_entries", refuse)
+    monkeypatch.setattr(fallback, "recorded_entries", refuse)
     model = _Gated(_ShapeGate())
     with pytest.warns(TraceFallbackWarning, match=r"torch\.export failed too \(RuntimeError: refused\).*"
                                                   r"only 'input' is marked"):

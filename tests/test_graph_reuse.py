@@ -9,7 +9,7 @@ import torch.fx as fx
 from torch import nn
 
 from splice import graph
-from splice.graph.leaves import _LeafRule
+from splice.graph.leaves import LeafRule
 from splice.graph.tracing import _Tracer
 
 
@@ -39,7 +39,7 @@ def _signature(g: fx.Graph) -> list:
 
 def test_tracer_lookups_give_fx_own_graph():
     model = _Shared().eval()
-    ours = _Tracer(_LeafRule(())).trace(model)
+    ours = _Tracer(LeafRule(())).trace(model)
     theirs = fx.Tracer().trace(model)
     assert _signature(ours) == _signature(theirs)
     # a tied weight is read under its first name, as fx's search finds it
@@ -79,8 +79,8 @@ def test_trace_points_without_fx_gives_no_graph():
 
 def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
     from splice.graph.fallback import _call_counts
-    from splice.graph.recorded import _recorded_entries
-    from splice.graph.shapes import _meta_module
+    from splice.graph.recorded import recorded_entries
+    from splice.graph.shapes import meta_module
 
     class Twice(nn.Module):
         def __init__(self):
@@ -97,10 +97,10 @@ def test_the_recorded_forward_counts_calls_as_the_counting_pass_does():
     args = (torch.empty(1, 3, 8, 8),)
     for leaves in ((), (nn.Sequential,)):  # a leaf's forward is patched for the recording, and put back after it
         counts: dict[str, int] = {}
-        meta = _meta_module(model)
-        _recorded_entries(model, args, {}, _LeafRule(leaves), counts, meta=meta)
-        assert counts == _call_counts(_meta_module(model), model, args, {}, _LeafRule(leaves))
-        assert counts == _call_counts(meta, model, args, {}, _LeafRule(leaves))  # the same copy runs again alike
+        meta = meta_module(model)
+        recorded_entries(model, args, {}, LeafRule(leaves), counts, meta=meta)
+        assert counts == _call_counts(meta_module(model), model, args, {}, LeafRule(leaves))
+        assert counts == _call_counts(meta, model, args, {}, LeafRule(leaves))  # the same copy runs again alike
         assert "forward" not in meta.block.__dict__
     assert counts["block"] == 2 and counts["head"] == 1
 
@@ -238,11 +238,11 @@ class _BranchyNet(nn.Module):
 def test_norms_made_leaves_for_a_trace_that_fails_are_not_leaves_for_the_fallback():
     from splice.graph import tracing
 
-    rule = _LeafRule([])
-    with pytest.raises(tracing._FxFailure):
-        tracing._trace_owned(_BranchyNet().eval(), rule)
+    rule = LeafRule([])
+    with pytest.raises(tracing.FxFailure):
+        tracing.trace_owned(_BranchyNet().eval(), rule)
     assert not rule(_NormAct)
-    assert tracing._trace_owned(_FusedNet().eval(), rule) is not None and rule(_NormAct)  # kept when it traces
+    assert tracing.trace_owned(_FusedNet().eval(), rule) is not None and rule(_NormAct)  # kept when it traces
 
 
 def test_listing_runs_with_the_collector_paused(monkeypatch):

@@ -16,7 +16,7 @@ from torch import nn
 
 from splice import graph
 from splice.graph import rules
-from splice.graph.rules import _ShapeRules, meta_rule
+from splice.graph.rules import ShapeRules, meta_rule
 
 
 def _m(*shape, dtype=torch.float32):
@@ -134,7 +134,7 @@ def test_rules_decline_when_unsure(func, args, kwargs):
 
 
 def test_the_mode_runs_the_kernel_when_no_rule_applies():
-    with _ShapeRules():
+    with ShapeRules():
         with pytest.raises(RuntimeError):
             F.linear(_m(2, 5), _m(3, 4))
         assert F.conv2d(_m(1, 3, 8, 8), _m(4, 3, 3, 3), padding=1).shape == (1, 4, 8, 8)

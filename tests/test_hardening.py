@@ -136,7 +136,7 @@ def _more_files(d: Path, folder: Path, state: dict, key: str) -> None:
     from PIL import Image
     from safetensors.torch import load_file, save_file
 
-    from splice._io import file_sha256
+    from splice.fileio import file_sha256
 
     _edited_copy(d, folder, "nopoint", lambda m, _: m["points"][0].update(name="block9_relu"))
     _edited_copy(d, folder, "nannorm", lambda m, _: m.update(normalisation={"mean": [0.5], "std": [float("nan")]}))

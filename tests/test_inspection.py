@@ -324,7 +324,7 @@ def test_identity_splice_decomposes_to_the_identity_for_every_image(identity_rep
 
 
 def test_summary_json_writes_non_finite_numbers_as_strings(identity_report, tmp_path, monkeypatch):
-    """The one JSON policy of splice._io.json_safe: 'inf'/'-inf'/'nan' strings, never null."""
+    """The one JSON policy of splice.fileio.json_safe: 'inf'/'-inf'/'nan' strings, never null."""
 
     real = run.summarise
 

@@ -12,7 +12,7 @@ import pytest
 import torch
 from torch import nn
 
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 from splice.cli import main
 from splice.errors import RandomWeightsWarning, SourceError, UnsafeCheckpointError, WeightsError
 from splice.sources import load_source, parse_input_shape, read_safetensors, read_weights

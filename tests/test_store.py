@@ -298,7 +298,7 @@ def test_file_sha256_matches_hashlib(tmp_path):
     """Reference: hashlib.sha256 over the bytes read in one piece (Python standard library)."""
     import hashlib
 
-    from splice._io import file_sha256
+    from splice.fileio import file_sha256
 
     empty = tmp_path / "empty.bin"
     empty.write_bytes(b"")

@@ -13,7 +13,7 @@ import pytest
 import torch
 
 import splice
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 from splice.errors import DataError, RecipeError, SpliceError
 from splice.recipes import load_recipe
 from splice.surgery import WARP_PREFIX
@@ -248,7 +248,7 @@ def test_failed_checkpoint_write_leaves_the_previous_one_intact(tmp_path, base_r
     tune_keywords(str(base_run[0] / "best"), recipe=_recipe("baseline", epochs=2), data="digits", out=out,
                   stop_after_steps=9, **QUIET)  # epoch 1 is 9 steps at batch 128: the checkpoint sits at an epoch end
     good = (out / CHECKPOINT_NAME).read_bytes()
-    import splice._io as io_mod
+    import splice.fileio as io_mod
     import splice.training.checkpoint as ckpt_mod
 
     def failing_write(path, data):

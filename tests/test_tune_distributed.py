@@ -10,7 +10,7 @@ import sys
 import pytest
 
 import splice
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 
 pytestmark = pytest.mark.slow
 

@@ -22,7 +22,7 @@ import pytest
 
 import splice
 from splice import cli
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 from splice.folders import lock_holder
 from splice.training.checkpoint import CHECKPOINT_NAME, load_checkpoint
 from splice.verification import verify

@@ -21,7 +21,7 @@ from safetensors.torch import load_file
 
 import splice
 from splice import cli
-from splice._io import state_dict_sha256
+from splice.fileio import state_dict_sha256
 from splice.data import ImageSet, open_data
 from splice.errors import DataError, SpliceError, TrainingDiverged
 from splice.folders import LOCK_FILE, FolderBusy, FolderLock, check_replaceable, lock_holder

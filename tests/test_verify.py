@@ -16,7 +16,7 @@ from safetensors.torch import load_file, save_file
 
 import splice
 from splice import store
-from splice._io import file_sha256, state_dict_sha256
+from splice.fileio import file_sha256, state_dict_sha256
 from splice.cli import main
 from splice.errors import DataError, ManifestError, SpliceError
 from splice.surgery import insert, warps_of

@@ -23,7 +23,7 @@ import os
 import time
 from typing import Any
 
-from .._io import atomic_write_json, atomic_write_text, state_dict_sha256
+from ..fileio import atomic_write_json, atomic_write_text, state_dict_sha256
 from ..training.checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
 from ..training.params import is_warp_name
 from ..training.runfolder import HASH_ENV, append_metrics, write_run_info, writing

@@ -26,7 +26,7 @@ from typing import Any
 
 import torch
 
-from .._io import atomic_write_text
+from ..fileio import atomic_write_text
 from ..recipes import recipe_to_toml
 from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer

@@ -58,7 +58,7 @@ def _batch_size(*params: Tensor, trailing: Sequence[int]) -> int | None:
     return sizes.pop() if sizes else None
 
 
-def _to_3x3(m: Tensor) -> Tensor:
+def to_3x3(m: Tensor) -> Tensor:
     bottom = torch.zeros(m.shape[:-2] + (1, 3), dtype=m.dtype, device=m.device)
     bottom[..., 0, 2] = 1.0
     return torch.cat([m, bottom], dim=-2)
@@ -114,7 +114,7 @@ def affine_matrix(
     return torch.stack([row0, row1], dim=-2)
 
 
-def _as_points(points, name: str) -> Tensor:
+def as_points(points, name: str) -> Tensor:
     t = torch.as_tensor(points, dtype=torch.float64) if not isinstance(points, Tensor) else points.to(torch.float64)
     if t.shape[-2:] != (4, 2) or t.dim() not in (2, 3):
         raise DataError(
@@ -124,7 +124,7 @@ def _as_points(points, name: str) -> Tensor:
     return t
 
 
-def _homography(src: Tensor, dst: Tensor) -> Tensor:
+def homography(src: Tensor, dst: Tensor) -> Tensor:
     """3x3 matrices (float64, batched) mapping each of 4 ``src`` points onto ``dst``.
 
     With ``h33 = 1`` the map ``x' = (a x + b y + c) / (g x + h y + 1)``,
@@ -150,7 +150,7 @@ def _homography(src: Tensor, dst: Tensor) -> Tensor:
     return h.reshape(src.shape[:-2] + (3, 3))
 
 
-def _pixel_to_normalised(size: tuple[int, int]) -> tuple[Tensor, Tensor]:
+def pixel_to_normalised(size: tuple[int, int]) -> tuple[Tensor, Tensor]:
     """``T`` with ``x_pix = T u`` (pixel-edge origin) and its inverse."""
     h, w = size
     t = torch.tensor([[w / 2, 0.0, w / 2], [0.0, h / 2, h / 2], [0.0, 0.0, 1.0]], dtype=torch.float64)
@@ -164,10 +164,10 @@ def perspective_matrix(startpoints, endpoints, size: tuple[int, int]) -> Tensor:
     Points are pixel coordinates of an image of ``size=(H, W)`` (see the module
     docstring); ``(4, 2)`` gives ``(3, 3)``, ``(N, 4, 2)`` gives ``(N, 3, 3)``.
     """
-    start = _as_points(startpoints, "startpoints")
-    end = _as_points(endpoints, "endpoints")
-    t, t_inv = _pixel_to_normalised(size)
-    return t_inv @ _homography(start, end) @ t
+    start = as_points(startpoints, "startpoints")
+    end = as_points(endpoints, "endpoints")
+    t, t_inv = pixel_to_normalised(size)
+    return t_inv @ homography(start, end) @ t
 
 
 
@@ -179,7 +179,7 @@ def _corners(h: int, w: int) -> Tensor:
 _INWARD = torch.tensor([[1.0, 1.0], [-1.0, 1.0], [-1.0, -1.0], [1.0, -1.0]], dtype=torch.float64)
 
 
-def _perspective_points_from_offsets(offsets: Tensor, h: int, w: int) -> tuple[Tensor, Tensor]:
+def perspective_points_from_offsets(offsets: Tensor, h: int, w: int) -> tuple[Tensor, Tensor]:
     half = torch.tensor([w / 2, h / 2], dtype=torch.float64)
     start = _corners(h, w).expand(offsets.shape)
     end = start + offsets * half * _INWARD

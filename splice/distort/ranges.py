@@ -11,8 +11,13 @@ import torch
 from torch import Tensor
 
 from ..errors import DataError
-from .matrices import _perspective_points_from_offsets, _to_3x3, affine_matrix, perspective_matrix
-from .sampling import _check_images, apply_homography
+from .matrices import (
+    affine_matrix,
+    perspective_matrix,
+    perspective_points_from_offsets,
+    to_3x3,
+)
+from .sampling import apply_homography, check_images
 
 __all__ = ["random_perspective_points", "DistortionRange", "sample_distortion", "distortion_matrix",
            "random_distort"]
@@ -32,7 +37,7 @@ def random_perspective_points(
         raise DataError(f"perspective strength must be in [0, 1]; got {strength}.")
     shape = (4, 2) if n is None else (n, 4, 2)
     offsets = torch.rand(shape, generator=generator, dtype=torch.float64) * float(strength)
-    return _perspective_points_from_offsets(offsets, h, w)
+    return perspective_points_from_offsets(offsets, h, w)
 
 
 
@@ -177,13 +182,13 @@ def distortion_matrix(params: dict[str, Tensor], size: tuple[int, int]) -> Tenso
     flip[:, 0, 0] = 1.0 - 2.0 * params["hflip"].to(torch.float64)
     flip[:, 1, 1] = 1.0 - 2.0 * params["vflip"].to(torch.float64)
     flip[:, 2, 2] = 1.0
-    aff = _to_3x3(affine_matrix(params["angle_deg"], params["scale"], params["shift"],
+    aff = to_3x3(affine_matrix(params["angle_deg"], params["scale"], params["shift"],
                                 params["shear_deg"], size=(h, w)).reshape(n, 2, 3))
     offsets = params["perspective"]
     persp = torch.eye(3, dtype=torch.float64).repeat(n, 1, 1)
     moved = (offsets != 0).any(dim=(-1, -2))
     if moved.any():
-        start, end = _perspective_points_from_offsets(offsets[moved], h, w)
+        start, end = perspective_points_from_offsets(offsets[moved], h, w)
         persp[moved] = perspective_matrix(start, end, (h, w))
     cx, cy, hw, hh = params["crop"].unbind(-1)
     crop = torch.zeros(n, 3, 3, dtype=torch.float64)
@@ -210,7 +215,7 @@ def random_distort(
     :func:`sample_distortion` plus ``"matrix"``: the forward ``(N, 3, 3)``
     normalised matrix applied to each image.
     """
-    _check_images(images)
+    check_images(images)
     n, _, h, w = images.shape
     params = sample_distortion(generator, n, spec)
     matrix = distortion_matrix(params, (h, w))

@@ -11,14 +11,14 @@ import torch.nn.functional as F
 from torch import Tensor
 
 from ..errors import DataError
-from .matrices import _as_points, _homography, _pixel_to_normalised, _to_3x3, affine_matrix
+from .matrices import affine_matrix, as_points, homography, pixel_to_normalised, to_3x3
 
 __all__ = ["apply_homography", "apply_affine", "apply_perspective"]
 
 _MODES = ("bilinear", "nearest")
 
 
-def _check_images(images: Tensor) -> None:
+def check_images(images: Tensor) -> None:
     if not isinstance(images, Tensor) or images.dim() != 4:
         shape = tuple(images.shape) if isinstance(images, Tensor) else type(images).__name__
         raise DataError(f"images must be a 4-D tensor (N, C, H, W); got {shape}.")
@@ -94,11 +94,11 @@ def apply_homography(images: Tensor, matrix: Tensor, *, fill=0.0, mode: str = "b
     ``matrix`` is ``(3, 3)`` (shared), ``(N, 3, 3)`` (per image), or a 2x3
     affine (``(2, 3)`` / ``(N, 2, 3)``). Content at ``p`` moves to ``matrix @ p``.
     """
-    _check_images(images)
+    check_images(images)
     _check_mode(mode)
     m = torch.as_tensor(matrix).to("cpu", torch.float64)  # tiny; the grid is built where the images are
     if m.shape[-2:] == (2, 3):
-        m = _to_3x3(m)
+        m = to_3x3(m)
     if m.shape[-2:] != (3, 3) or m.dim() not in (2, 3):
         raise DataError(f"matrix must be (3, 3), (N, 3, 3), (2, 3) or (N, 2, 3); got {tuple(m.shape)}.")
     m = _batched(m, images.shape[0])
@@ -129,7 +129,7 @@ def apply_affine(
     parameters may be scalars or per-image ``(N,)`` tensors (``shift``:
     ``(N, 2)``). One ``grid_sample`` for the whole batch.
     """
-    _check_images(images)
+    check_images(images)
     h, w = images.shape[-2:]
     m = affine_matrix(angle_deg, scale, shift, shear_deg, size=(h, w))
     return apply_homography(images, m, fill=fill, mode=mode)
@@ -142,14 +142,14 @@ def apply_perspective(images: Tensor, startpoints, endpoints, *, fill=0.0, mode:
     points are ``(4, 2)`` shared or ``(N, 4, 2)`` per image, ordered
     top-left, top-right, bottom-right, bottom-left.
     """
-    _check_images(images)
+    check_images(images)
     _check_mode(mode)
     n, _, h, w = images.shape
-    start = _as_points(startpoints, "startpoints")
-    end = _as_points(endpoints, "endpoints")
-    t, t_inv = _pixel_to_normalised((h, w))
+    start = as_points(startpoints, "startpoints")
+    end = as_points(endpoints, "endpoints")
+    t, t_inv = pixel_to_normalised((h, w))
     # Solve directly in the sampling direction (end -> start), as torchvision does.
-    inverse = t_inv @ _homography(end.cpu(), start.cpu()) @ t
+    inverse = t_inv @ homography(end.cpu(), start.cpu()) @ t
     inverse = _batched(inverse, n)
     if n == 0:
         return images.clone()

@@ -28,7 +28,7 @@ comparison.
 
 An export that fails its check raises :class:`~splice.errors.CheckFailed` and
 leaves no file: the program is built and checked in memory, then written with
-:func:`splice._io.atomic_write_bytes` (a temporary file in the target's folder
+:func:`splice.fileio.atomic_write_bytes` (a temporary file in the target's folder
 renamed into place).
 
 Modules: :mod:`.onnx` (exporters, opsets), :mod:`.weights` (perturbed heads,

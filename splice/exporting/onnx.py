@@ -78,14 +78,14 @@ def _downgrade(data: bytes, opset: int) -> bytes:
         ) from None
     return converted.SerializeToString()
 
-def _output_names(model: nn.Module, example, n_outputs: int | None) -> list[str]:
+def onnx_output_names(model: nn.Module, example, n_outputs: int | None) -> list[str]:
     if n_outputs is None:
         with torch.no_grad():
             n_outputs = len(flatten_outputs(model(*as_inputs(example))))
     return [f"output_{i}" for i in range(n_outputs)]
 
 @contextlib.contextmanager
-def _exporting(model: nn.Module, exporter: str, opset: int):
+def exporting(model: nn.Module, exporter: str, opset: int):
     """Eval mode, the exporters' own chatter silenced, and failures as :class:`SpliceError`."""
     was_training = model.training
     model.eval()
@@ -135,7 +135,7 @@ def _stdout_to_nowhere():
         os.dup2(saved, fd)
         os.close(saved)
 
-def _torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
+def torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
                  dynamic_batch: bool, fold_constants: bool, n_images: int = 1) -> bytes:
     buf = io.BytesIO()
     axes = {n: {0: "batch"} for n in [*inputs[:n_images], *names]} if dynamic_batch else None
@@ -169,14 +169,14 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
         raise SpliceError("weights_as_inputs needs exporter='torchscript'")
     xs = as_inputs(example)
     inputs = input_names(len(xs))
-    with _exporting(model, exporter, opset):
-        names = _output_names(model, xs, n_outputs)
+    with exporting(model, exporter, opset):
+        names = onnx_output_names(model, xs, n_outputs)
         if weights_as_inputs:
             target = WeightsAsInputs(model, n_inputs=len(xs))
-            return _torchscript(target, (*xs, *target.values), [*inputs, *target.names], names, opset=opset,
+            return torchscript(target, (*xs, *target.values), [*inputs, *target.names], names, opset=opset,
                                 dynamic_batch=dynamic_batch, fold_constants=fold_constants, n_images=len(xs))
         if exporter == "torchscript":
-            return _torchscript(model, xs, inputs, names, opset=opset, dynamic_batch=dynamic_batch,
+            return torchscript(model, xs, inputs, names, opset=opset, dynamic_batch=dynamic_batch,
                                 fold_constants=fold_constants, n_images=len(xs))
         batch = torch.export.Dim("batch", min=1, max=4096)
         dims = tuple({0: batch} for _ in xs) if dynamic_batch else None

@@ -23,8 +23,16 @@ from torch import nn
 
 from ..compare import compare_outputs, detached, flatten_outputs
 from ..errors import CheckFailed, SpliceError, first_line
-from .onnx import MIN_OPSET, as_inputs, check_opset, export_onnx_bytes, input_names
-from .onnx import _exporting, _output_names, _torchscript
+from .onnx import (
+    MIN_OPSET,
+    as_inputs,
+    check_opset,
+    export_onnx_bytes,
+    exporting,
+    input_names,
+    onnx_output_names,
+    torchscript,
+)
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
 __all__ = ["EXPORT_TOLERANCES", "onnx_parity", "check_onnx_graph"]
@@ -32,7 +40,7 @@ __all__ = ["EXPORT_TOLERANCES", "onnx_parity", "check_onnx_graph"]
 EXPORT_TOLERANCES = {torch.float32: 1e-3, torch.float64: 1e-9}
 
 
-def _as_batches(inputs) -> list[tuple[torch.Tensor, ...]]:
+def as_batches(inputs) -> list[tuple[torch.Tensor, ...]]:
     """Batches as tuples of one tensor per model input, from a tensor, a tuple (one batch) or a list of either."""
     if isinstance(inputs, (torch.Tensor, tuple)):
         return [as_inputs(inputs)]
@@ -89,8 +97,8 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
             first = first_line(exc)
             return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
                     "detail": f"onnxruntime failed on a batch of {xs[0].shape[0]}: {first}"}
-        results.append(_compare_flat(ref, outs, tol))
-    return _merge(results)
+        results.append(compare_flat(ref, outs, tol))
+    return merge_parities(results)
 
 def _overridable(proto, names: Sequence[str]):
     """Declare the named initializers overridable graph inputs (values unchanged), in place.
@@ -132,7 +140,7 @@ def _overridable(proto, names: Sequence[str]):
         graph.input.append(helper.make_tensor_value_info(name, inits[name].data_type, list(inits[name].dims)))
     return proto
 
-def _merge(results: list[dict]) -> dict:
+def merge_parities(results: list[dict]) -> dict:
     ok = all(r["passed"] for r in results)
     nums = [r for r in results if r.get("max_abs") is not None]
     worst = max(nums, key=lambda r: r["max_rel"]) if nums else results[0]
@@ -141,7 +149,7 @@ def _merge(results: list[dict]) -> dict:
             "max_rel": max((r["max_rel"] for r in nums), default=None), "top1": min(top1) if top1 else None,
             "detail": next((r["detail"] for r in results if not r["passed"]), worst["detail"])}
 
-def _compare_flat(reference, outputs: list, tol: float) -> dict:
+def compare_flat(reference, outputs: list, tol: float) -> dict:
     ref = flatten_outputs(reference)
     if len(outputs) != len(ref):
         return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
@@ -150,17 +158,17 @@ def _compare_flat(reference, outputs: list, tol: float) -> dict:
     ref = {k: v.to(cand[k].dtype) if v.dtype != cand[k].dtype else v for k, v in ref.items()}
     return compare_outputs(ref, cand, tol=tol)
 
-def _tolerance(model: nn.Module, tol: float | None) -> float:
+def parity_tolerance(model: nn.Module, tol: float | None) -> float:
     if tol is not None:
         return tol
     p = next(iter(model.parameters()), None)
     return EXPORT_TOLERANCES.get(p.dtype if p is not None else torch.float32, EXPORT_TOLERANCES[torch.float32])
 
-def _model_dtype(model: nn.Module) -> torch.dtype:
+def model_dtype(model: nn.Module) -> torch.dtype:
     p = next(iter(model.parameters()), None)
     return p.dtype if p is not None else torch.float32
 
-def _summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
+def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
     passed = stored["passed"] and (perturbed is None or perturbed["passed"])
     if not stored["passed"]:
         detail = f"as stored: {stored['detail']}"
@@ -196,8 +204,8 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     import onnx
 
     proto = _load_onnx(onnx_model)
-    tol = _tolerance(model, tol)
-    batches = _as_batches(inputs)
+    tol = parity_tolerance(model, tol)
+    batches = as_batches(inputs)
     if references is not None and len(references) != len(batches):
         raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
     if _weight_inputs(proto, model):
@@ -235,7 +243,7 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
                 perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     finally:
         model.train(was_training)
-    return _summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
+    return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
 
 def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
     """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
@@ -281,7 +289,7 @@ def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, ref
                                      perturbed_references)
     finally:
         model.train(was_training)
-    return _summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
+    return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
 
 def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=None,
                      tol: float | None = None, perturb: bool = True) -> dict:
@@ -300,20 +308,20 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     ``splice verify --onnx``; ``splice export`` checks the file it ships.
     """
     check_opset(opset, "torchscript")
-    tol = _tolerance(model, tol)
+    tol = parity_tolerance(model, tol)
     swapped = perturbed_tensors(model) if perturb else {}
     start = time.perf_counter()
     xs = as_inputs(example)
-    with _exporting(model, "torchscript", opset):
+    with exporting(model, "torchscript", opset):
         target = WeightsAsInputs(model, keep_output=True, n_inputs=len(xs))
         missing = sorted(set(swapped) - set(target.names))
         if missing:
             raise SpliceError(f"the warp head tensor(s) {', '.join(missing)} are not state-dict entries of their "
                               "own; check the graph with onnx_parity on a self-contained export instead")
         values = [swapped.get(name, v) for name, v in zip(target.names, target.values)]
-        names = (_output_names(model, xs, None) if reference is None
+        names = (onnx_output_names(model, xs, None) if reference is None
                  else [f"output_{i}" for i in range(len(flatten_outputs(reference)))])
-        data = _torchscript(target, (*xs, *values), [*input_names(len(xs)), *target.names], names, opset=opset,
+        data = torchscript(target, (*xs, *values), [*input_names(len(xs)), *target.names], names, opset=opset,
                             dynamic_batch=False, fold_constants=False, n_images=len(xs))
         traced = detached(target.output)
     seconds = time.perf_counter() - start

@@ -13,7 +13,13 @@ from torch import nn
 from ..compare import flatten_outputs
 from ..errors import SpliceError, first_line
 from .onnx import as_inputs
-from .parity import _as_batches, _compare_flat, _merge, _summary, _tolerance
+from .parity import (
+    as_batches,
+    compare_flat,
+    merge_parities,
+    parity_summary,
+    parity_tolerance,
+)
 from .weights import perturbed_copy, perturbed_tensors
 
 __all__ = ["export_pt2_bytes", "pt2_parity"]
@@ -54,8 +60,8 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
         ep = torch.export.load(str(program))
     else:
         ep = program
-    tol = _tolerance(model, tol)
-    batches = _as_batches(inputs)
+    tol = parity_tolerance(model, tol)
+    batches = as_batches(inputs)
     was_training = model.training
     model.eval()
     try:
@@ -70,8 +76,8 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
                         first = first_line(exc)
                         return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
                                 "detail": f"the exported program failed on a batch of {xs[0].shape[0]}: {first}"}
-                results.append(_compare_flat(ref, list(flatten_outputs(out).values()), tol))
-            return _merge(results)
+                results.append(compare_flat(ref, list(flatten_outputs(out).values()), tol))
+            return merge_parities(results)
 
         exported = ep.module()
         stored = run(model, exported)
@@ -93,4 +99,4 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
             perturbed = run(twin, module)
     finally:
         model.train(was_training)
-    return _summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
+    return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)

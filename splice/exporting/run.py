@@ -13,7 +13,7 @@ from ..errors import CheckFailed, SpliceError, SpliceWarning
 from ..manifest import info_of
 from ..store import load
 from .onnx import check_opset, export_onnx_bytes
-from .parity import _model_dtype, onnx_parity
+from .parity import model_dtype, onnx_parity
 from .pt2 import export_pt2_bytes, pt2_parity
 
 __all__ = ["export"]
@@ -36,7 +36,7 @@ def _probe_inputs(shapes, dtype, *, dynamic_batch: bool, seed: int) -> tuple[tup
 def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
     import hashlib
 
-    from .._io import atomic_write_bytes, file_sha256
+    from ..fileio import atomic_write_bytes, file_sha256
 
     target = atomic_write_bytes(path, data)
     digest = hashlib.sha256(data).hexdigest()
@@ -47,7 +47,7 @@ def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
 
 def _one(model, fmt: str, shapes, *, dynamic_batch: bool, opset: int, exporter: str, seed: int, tol) -> tuple:
     """``(bytes, parity result, seconds)`` of one export, traced and checked on seeded inputs."""
-    example, batches = _probe_inputs(shapes, _model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
+    example, batches = _probe_inputs(shapes, model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
     start = time.perf_counter()
     if fmt == "onnx":
         data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)

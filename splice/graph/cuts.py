@@ -66,7 +66,7 @@ def _dominators(order: list, preds: dict, root: Any) -> dict:
     return idom
 
 
-def _cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.Node], dict[fx.Node, fx.Node]]:
+def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.Node], dict[fx.Node, fx.Node]]:
     """Return the cut nodes and, for each non-cut node on an input-to-output path, its join.
 
     Only nodes that carry tensors count (shape queries such as ``x.size(0)`` are

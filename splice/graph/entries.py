@@ -17,18 +17,18 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from .cuts import _cut_analysis
-from .naming import _enclosing_module, _point_names
+from .cuts import cut_analysis
+from .naming import enclosing_module, names_by_node
 
 __all__: list[str] = []
 
-_CONV_MODULES = (nn.Conv2d, nn.ConvTranspose2d)
+CONV_MODULES = (nn.Conv2d, nn.ConvTranspose2d)
 _CONV_FUNCTIONS = frozenset({torch.conv2d, torch.nn.functional.conv2d, torch.conv_transpose2d,
                              torch.nn.functional.conv_transpose2d})
 
 
 @dataclass
-class _Entry:
+class Entry:
     name: str
     module: str
     kind: str
@@ -43,16 +43,16 @@ def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:
     if node.op == "call_module":
         mod = modules[node.target]
         # a leaf that contains a conv counts as one
-        return isinstance(mod, _CONV_MODULES) or (
-            bool(mod._modules) and any(isinstance(m, _CONV_MODULES) for m in mod.modules())
+        return isinstance(mod, CONV_MODULES) or (
+            bool(mod._modules) and any(isinstance(m, CONV_MODULES) for m in mod.modules())
         )
     return node.op == "call_function" and node.target in _CONV_FUNCTIONS
 
 
-_NCHW = (0, 1, 2, 3)
+NCHW = (0, 1, 2, 3)
 
 
-def _dims_permutation(name: str, dims: tuple) -> tuple[int, ...] | None:
+def dims_permutation(name: str, dims: tuple) -> tuple[int, ...] | None:
     """Output dim j = input dim perm[j] for a 4-D ``permute`` or a ``transpose`` (``dims``: the call's arguments
     after the tensor), else None. The fx, recorded and exported views all name their ops this way."""
     if name == "permute":
@@ -60,7 +60,7 @@ def _dims_permutation(name: str, dims: tuple) -> tuple[int, ...] | None:
         if len(dims) == 4 and all(isinstance(d, int) for d in dims):
             return tuple(d % 4 for d in dims)
     elif name in ("transpose", "swapaxes", "swapdims") and len(dims) == 2 and all(isinstance(d, int) for d in dims):
-        perm = list(_NCHW)
+        perm = list(NCHW)
         a, b = dims[0] % 4, dims[1] % 4
         perm[a], perm[b] = perm[b], perm[a]
         return tuple(perm)
@@ -72,11 +72,11 @@ def _permutation(node: fx.Node) -> tuple[int, ...] | None:
     if node.op not in ("call_method", "call_function"):
         return None
     name = node.target if node.op == "call_method" else getattr(node.target, "__name__", "")
-    return _dims_permutation(name, node.args[1:])
+    return dims_permutation(name, node.args[1:])
 
 
-def _layouts(nodes: list, values: Mapping, is_conv: Mapping, permutation: Callable = _permutation) -> dict:
-    """For each 4-D node, which input axis each of its axes holds (``_NCHW`` when unpermuted).
+def layouts_of(nodes: list, values: Mapping, is_conv: Mapping, permutation: Callable = _permutation) -> dict:
+    """For each 4-D node, which input axis each of its axes holds (``NCHW`` when unpermuted).
 
     Follows permute/transpose through the graph so that channels-last tensors
     (a convnext block permutes to N, H, W, C around its LayerNorm and Linear
@@ -88,13 +88,13 @@ def _layouts(nodes: list, values: Mapping, is_conv: Mapping, permutation: Callab
         if not (isinstance(v, torch.Tensor) and v.dim() == 4):
             continue
         source = next((p for p in n.all_input_nodes if p in layout), None)
-        base = layout[source] if source is not None and not is_conv[n] else _NCHW
+        base = layout[source] if source is not None and not is_conv[n] else NCHW
         perm = permutation(n) if source is not None else None
         layout[n] = tuple(base[d] for d in perm) if perm is not None else base
     return layout
 
 
-def _site_name(stem: str, call: int, taken: set[str]) -> str:
+def site_name(stem: str, call: int, taken: set[str]) -> str:
     """``stem`` for a module's first call, ``stem_K`` for call K; ``stem_K_J`` when another qualname took that
     (``a_1`` and the second call of ``a`` meet). Adds the name to ``taken``."""
     name = stem if call == 0 else f"{stem}_{call}"
@@ -105,7 +105,7 @@ def _site_name(stem: str, call: int, taken: set[str]) -> str:
     return name
 
 
-def _graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[fx.Node, Any]) -> list[_Entry]:
+def graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[fx.Node, Any]) -> list[Entry]:
     nodes = list(graph.nodes)
     is_conv = {n: _is_conv_node(n, modules) for n in nodes}
     conv_up: dict[fx.Node, bool] = {}  # a conv upstream, or the node itself
@@ -114,18 +114,18 @@ def _graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[
     conv_down: dict[fx.Node, bool] = {}  # a conv strictly downstream
     for n in reversed(nodes):
         conv_down[n] = any(is_conv[u] or conv_down[u] for u in n.users)
-    cuts, joins = _cut_analysis(graph, values)
-    names = _point_names(graph)
-    layouts = _layouts(nodes, values, is_conv)
+    cuts, joins = cut_analysis(graph, values)
+    names = names_by_node(graph)
+    layouts = layouts_of(nodes, values, is_conv)
     entries = []
     for n in nodes:
-        if n.op in ("get_attr", "output") or layouts.get(n) != _NCHW:
+        if n.op in ("get_attr", "output") or layouts.get(n) != NCHW:
             continue
         v = values[n]
         is_input = n.op == "placeholder" and names[n] == "input"
-        module = n.target if n.op == "call_module" else ("" if is_input else _enclosing_module(n))
+        module = n.target if n.op == "call_module" else ("" if is_input else enclosing_module(n))
         join = joins.get(n)
-        entries.append(_Entry(
+        entries.append(Entry(
             name=names[n], module=module, kind="input" if is_input else "activation",
             shape=tuple(int(s) for s in v.shape[1:]), cut=n in cuts,
             join=None if join is None else names[join],

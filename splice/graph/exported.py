@@ -27,8 +27,8 @@ import torch
 from torch import nn
 
 from ..copies import private_buffers
-from .cuts import _cut_analysis
-from .entries import _NCHW, _dims_permutation, _Entry, _layouts, _site_name
+from .cuts import cut_analysis
+from .entries import NCHW, Entry, dims_permutation, layouts_of, site_name
 
 __all__: list[str] = []
 
@@ -120,7 +120,7 @@ def _names(nodes: list, user_inputs: set[str], sites: Mapping) -> dict[Any, str]
         site = sites.get(n)
         if site is None:
             continue
-        names[n] = _site_name(site.module.replace(".", "_"), site.call, taken)
+        names[n] = site_name(site.module.replace(".", "_"), site.call, taken)
     return names
 
 
@@ -132,7 +132,7 @@ def _node_name(n) -> str:
 
 
 def _permutation(n) -> tuple[int, ...] | None:
-    return _dims_permutation(_op(n), n.args[1:])
+    return dims_permutation(_op(n), n.args[1:])
 
 
 def _export(model: nn.Module, args: tuple, kwargs: dict):
@@ -157,7 +157,7 @@ def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:
     return up, down
 
 
-def _export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[_Entry]:
+def export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[Entry]:
     """Entries for the points of ``model`` a forward hook can reach, from its exported program."""
     program, recorded = _export(model, args, kwargs)
     graph = program.graph
@@ -169,18 +169,18 @@ def _export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[_Entry]
     names = _names(nodes, user_inputs, sites)
     is_conv = {n: n.op == "call_function" and _op(n) in _CONV_OPS for n in nodes}
     up, down = _flows(nodes, is_conv)
-    cuts, joins = _cut_analysis(graph, values)
-    layouts = _layouts(nodes, values, is_conv, _permutation)
+    cuts, joins = cut_analysis(graph, values)
+    layouts = layouts_of(nodes, values, is_conv, _permutation)
     entries = []
     for n in nodes:
-        if n not in names or layouts.get(n) != _NCHW:
+        if n not in names or layouts.get(n) != NCHW:
             continue
         is_input = names[n] == "input"
         if not is_input and n not in sites:
             continue  # another input of the model: a hook cannot reach it
         join = joins.get(n)
         site = None if is_input else sites[n]
-        entries.append(_Entry(
+        entries.append(Entry(
             name=names[n], module="" if is_input else site.module, kind="input" if is_input else "activation",
             shape=tuple(int(s) for s in values[n].shape[1:]), cut=n in cuts,
             join=None if join is None else names.get(join) or _node_name(join),

@@ -28,13 +28,13 @@ import torch.fx as fx
 from torch import nn
 
 from ..errors import GraphError
-from .entries import _CONV_MODULES, _Entry
-from .exported import _export_entries
-from .recorded import _recorded_entries
-from .leaves import _class_path, _is_torch_builtin, _LeafRule
-from .rules import _ShapeRules
-from .shapes import _META, _meta_module, _run_for_real, _to_meta
-from .tracing import GraphWarning, _reason
+from .entries import CONV_MODULES, Entry
+from .exported import export_entries
+from .leaves import LeafRule, class_path, is_torch_builtin
+from .recorded import recorded_entries
+from .rules import ShapeRules
+from .shapes import META, meta_module, run_for_real, to_meta
+from .tracing import GraphWarning, reason
 
 __all__ = ["TraceFallbackWarning"]
 
@@ -61,13 +61,13 @@ class _Timeline:
 
     def before(self, mod, args):
         self.stack.append(mod)
-        if isinstance(mod, _CONV_MODULES):
+        if isinstance(mod, CONV_MODULES):
             self.conv_starts.append(next(self.clock))
 
     def after(self, mod, args, out):
         self.stack.pop()
         t = next(self.clock)
-        if isinstance(mod, _CONV_MODULES):
+        if isinstance(mod, CONV_MODULES):
             self.conv_ends.append(t)
         if isinstance(out, torch.Tensor) and out.dim() == 4:
             qualname = self.qualnames[mod]
@@ -82,45 +82,45 @@ class _Timeline:
             h.remove()
 
 
-def _step_over_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule) -> None:
+def _step_over_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule) -> None:
     """Let every leaf of ``meta`` run its real twin on zeros (meta outputs back): ``--leaf`` reaches this pass."""
     real_modules = dict(real.named_modules())
     for q, m in meta.named_modules():
-        if q and rule(type(m)) and not _is_torch_builtin(type(m)):
+        if q and rule(type(m)) and not is_torch_builtin(type(m)):
             original = real_modules[q]
             m.forward = _real_forward(original)
 
 
 def _real_forward(original: nn.Module) -> Callable:
     def forward(*args, **kwargs):
-        return _run_for_real(original, args, kwargs)
+        return run_for_real(original, args, kwargs)
     return forward
 
 
-def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, problem: str, todo: str,
-                 input_shape: tuple[int, int, int]) -> list[_Entry]:
+def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, problem: str, todo: str,
+                 input_shape: tuple[int, int, int]) -> list[Entry]:
     """Entries for module outputs seen by forward hooks during a meta forward pass."""
     try:
-        meta = _meta_module(model)
+        meta = meta_module(model)
     except Exception as exc:
         raise GraphError(
             f"cannot list points of {type(model).__name__}: {problem}, and copying it to the meta "
-            f"device failed ({_reason(exc)}); {todo}"
+            f"device failed ({reason(exc)}); {todo}"
         ) from exc
     _step_over_leaves(meta, model, rule)
     timeline = _Timeline(meta)
     try:
-        with torch.no_grad(), torch.device(_META), _ShapeRules():
-            meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
+        with torch.no_grad(), torch.device(META), ShapeRules():
+            meta(*[to_meta(a) for a in args], **{k: to_meta(v) for k, v in kwargs.items()})
     except Exception as exc:
         raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
     finally:
         timeline.remove()
     first_conv_end = min(timeline.conv_ends, default=math.inf)
     last_conv_start = max(timeline.conv_starts, default=-math.inf)
-    entries = [_Entry("input", "", "input", input_shape, True, None, True)]
+    entries = [Entry("input", "", "input", input_shape, True, None, True)]
     for t, name, qualname, out_shape, k in timeline.records:
-        entries.append(_Entry(name, qualname, "activation", out_shape, False, None,
+        entries.append(Entry(name, qualname, "activation", out_shape, False, None,
                               first_conv_end <= t < last_conv_start, (qualname, k)))
     return entries
 
@@ -131,15 +131,15 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
         cls = type(failing)
         name = timeline.qualnames[failing]
         here = f"module '{name}' ({cls.__name__})"
-        advice = (f"mark '{name}' opaque with --leaf {_class_path(cls)} (Python: leaves=[{cls.__name__}]) "
+        advice = (f"mark '{name}' opaque with --leaf {class_path(cls)} (Python: leaves=[{cls.__name__}]) "
                   "so that it runs alone, for real, and try again")
-        if _is_torch_builtin(cls):
+        if is_torch_builtin(cls):
             advice = f"check that the model takes inputs of shape (C, H, W) = {input_shape}"
     else:
         here = f"the forward of {type(model).__name__} itself"
         advice = todo
     return GraphError(f"cannot list points of {type(model).__name__}: {problem}, and a meta-device forward "
-                      f"failed in {here} ({_reason(exc)}); {advice}")
+                      f"failed in {here} ({reason(exc)}); {advice}")
 
 
 def _doubled(value):
@@ -147,9 +147,9 @@ def _doubled(value):
     return fx.node.map_aggregate(value, lambda v: torch.cat([v, v]) if isinstance(v, torch.Tensor) and v.dim() else v)
 
 
-def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule,
                  train: bool = False) -> dict[str, int] | None:
-    """How often each module is called in one forward of ``meta`` (a :func:`_meta_module` copy of ``model``; in
+    """How often each module is called in one forward of ``meta`` (a :func:`meta_module` copy of ``model``; in
     train mode with ``train``), or ``None`` when that forward fails."""
     meta.train(train)
     _step_over_leaves(meta, model, rule)
@@ -161,8 +161,8 @@ def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, r
 
     handles = [m.register_forward_hook(count) for m in names]
     try:
-        with torch.no_grad(), torch.device(_META), _ShapeRules():
-            meta(*[_to_meta(a) for a in args], **{k: _to_meta(v) for k, v in kwargs.items()})
+        with torch.no_grad(), torch.device(META), ShapeRules():
+            meta(*[to_meta(a) for a in args], **{k: to_meta(v) for k, v in kwargs.items()})
     except Exception:  # the forward does not run at this batch size: nothing to compare
         return None
     finally:
@@ -172,8 +172,8 @@ def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, r
     return counts
 
 
-def _batch_stable(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
-                  entries: list[_Entry], one: dict[str, int], train: bool) -> list[_Entry]:
+def _batch_stable(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule,
+                  entries: list[Entry], one: dict[str, int], train: bool) -> list[Entry]:
     """The entries whose module is called as often at batch 2 (in train mode with ``train``) as at batch 1 in eval
     mode (``one``).
 
@@ -194,8 +194,8 @@ def _batch_stable(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, 
     return [e for e in entries if e.site is None or one.get(e.site[0]) == two.get(e.site[0])]
 
 
-def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
-                input_shape: tuple[int, int, int]) -> list[_Entry]:
+def hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, problem: str | None, todo: str,
+                input_shape: tuple[int, int, int]) -> list[Entry]:
     """The points a forward hook reaches that hold at any batch size (see :func:`_batch_stable`).
 
     One meta copy of the model serves the recorded forward (batch 1, eval mode,
@@ -203,7 +203,7 @@ def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *,
     counting one (batch 2).
     """
     try:
-        meta = _meta_module(model)
+        meta = meta_module(model)
     except Exception:  # the recorded view fails the same way and says why; the fallbacks take over
         meta = None
     counts: dict[str, int] = {}
@@ -212,7 +212,7 @@ def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *,
                              counts=counts, meta=meta, readers=readers)
     if not counts:  # the recorded forward did not run: a fresh copy counts the calls at batch 1
         try:
-            meta = _meta_module(model)
+            meta = meta_module(model)
         except Exception:  # no meta copy: nothing to count with
             return entries
         counts = _call_counts(meta, model, args, kwargs, rule)
@@ -223,26 +223,26 @@ def _hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *,
     return _batch_stable(meta, model, args, kwargs, rule, entries, counts, train)
 
 
-def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, *, problem: str | None, todo: str,
+def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, problem: str | None, todo: str,
                    input_shape: tuple[int, int, int], counts: dict[str, int] | None = None,
-                   meta: nn.Module | None = None, readers: list[nn.Module] | None = None) -> list[_Entry]:
+                   meta: nn.Module | None = None, readers: list[nn.Module] | None = None) -> list[Entry]:
     """The points a forward hook reaches: recorded on the meta device, else by torch.export, else module outputs.
 
     ``problem`` says why fx was not used (``None``: hooks were asked for, with ``within``); a warning tells it.
-    ``counts``, ``meta`` and ``readers`` go to :func:`~splice.graph.recorded._recorded_entries`.
+    ``counts``, ``meta`` and ``readers`` go to :func:`~splice.graph.recorded.recorded_entries`.
     """
     shapes = "x".join(map(str, input_shape))
     try:
-        entries = _recorded_entries(model, args, kwargs, rule, counts, meta=meta, readers=readers)
+        entries = recorded_entries(model, args, kwargs, rule, counts, meta=meta, readers=readers)
         how = f"a meta-device run of the forward (specialised to input {shapes})"
     except Exception as exc:  # a forward that needs real values: torch.export may still manage
-        recorded_problem = _reason(exc)
+        recorded_problem = reason(exc)
         try:
-            entries = _export_entries(model, args, kwargs)
+            entries = export_entries(model, args, kwargs)
             how = f"torch.export (specialised to input {shapes})"
         except Exception as exc2:  # whatever torch.export cannot handle either: module outputs
             export_problem = (f"recording a meta-device forward failed ({recorded_problem}) and torch.export failed "
-                              f"too ({_reason(exc2)})")
+                              f"too ({reason(exc2)})")
             why = f"{problem}; {export_problem}" if problem else export_problem
             entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
             warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "

@@ -107,11 +107,11 @@ def leaves_added(*types: type | str) -> Iterator[None]:
         _registered_names.update(saved_names)
 
 
-def _class_path(cls: type) -> str:
+def class_path(cls: type) -> str:
     return f"{cls.__module__}.{cls.__qualname__}"
 
 
-class _LeafRule:
+class LeafRule:
     """Decides whether a module class is a leaf (registry + per-call leaves), with a cache."""
 
     def __init__(self, leaves: Iterable[Any]):
@@ -142,7 +142,7 @@ class _LeafRule:
         hit = self._cache.get(cls)
         if hit is None:
             hit = issubclass(cls, self.types) or any(
-                _class_path(c) in self.names or c.__name__ in self.names
+                class_path(c) in self.names or c.__name__ in self.names
                 for c in cls.__mro__
                 if c is not nn.Module and c is not object
             )
@@ -150,5 +150,5 @@ class _LeafRule:
         return hit
 
 
-def _is_torch_builtin(cls: type) -> bool:
+def is_torch_builtin(cls: type) -> bool:
     return cls.__module__.startswith(("torch.nn", "torch.ao.nn"))

@@ -22,13 +22,20 @@ from torch import nn
 from ..copies import collector_paused, private_buffers
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes
-from .entries import _Entry, _graph_entries
-from .fallback import _hooks_view
-from .leaves import _LeafRule
-from .naming import _describe_node, _point_names
-from .scope import _scope_inputs
-from .shapes import _input_dtype, _propagate, _ShapeFailure
-from .tracing import _check_model, _fx_failure_hint, _FxFailure, _reason, _trace_copy, _trace_owned
+from .entries import Entry, graph_entries
+from .fallback import hooks_view
+from .leaves import LeafRule
+from .naming import describe_node, names_by_node
+from .scope import scope_inputs
+from .shapes import ShapeFailure, input_dtype, propagate
+from .tracing import (
+    FxFailure,
+    check_model,
+    fx_failure_hint,
+    reason,
+    trace_copy,
+    trace_owned,
+)
 
 __all__ = ["Point", "points", "trace_points", "points_report"]
 
@@ -98,7 +105,7 @@ def _stride(in_hw: tuple[int, int], hw: tuple[int, int]) -> int | float | tuple:
     return parts[0] if parts[0] == parts[1] else tuple(parts)
 
 
-def _build_points(entries: list[_Entry], input_shape: tuple[int, int, int], every: bool, warp: str,
+def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every: bool, warp: str,
                   mechanism: str) -> list[Point]:
     from ..warps import WarpConfig, warp_cost
 
@@ -175,28 +182,28 @@ def _check_arity(model: nn.Module, shapes: tuple) -> None:
                          "--input-shape per input (input_shape=[(C, H, W), ...])")
 
 
-def _fx_entries(model: nn.Module, shapes: tuple, rule: _LeafRule,
-                keep: bool = False) -> tuple[list[_Entry], fx.GraphModule | None]:
+def _fx_entries(model: nn.Module, shapes: tuple, rule: LeafRule,
+                keep: bool = False) -> tuple[list[Entry], fx.GraphModule | None]:
     """Entries of the fx graph, and with ``keep`` the traced GraphModule they name (:func:`trace`'s result);
-    raises :class:`_FxFailure` when fx cannot trace the model."""
+    raises :class:`FxFailure` when fx cannot trace the model."""
     if keep:
-        gm, root = _trace_copy(model, rule)
+        gm, root = trace_copy(model, rule)
         graph = gm.graph
     else:
         gm, root = None, private_buffers(model)
-        graph = _trace_owned(root, rule)
+        graph = trace_owned(root, rule)
     modules = dict(root.named_modules())
     try:
-        values = _propagate(graph, root, modules, shapes)
-    except _ShapeFailure as failure:
+        values = propagate(graph, root, modules, shapes)
+    except ShapeFailure as failure:
         raise GraphError(
-            f"shape propagation on the meta device failed at point {_point_names(graph)[failure.node]!r} "
-            f"({_describe_node(failure.node, root)}) for input shape "
-            f"{shapes[0] if len(shapes) == 1 else list(shapes)}: {_reason(failure.error)}; "
+            f"shape propagation on the meta device failed at point {names_by_node(graph)[failure.node]!r} "
+            f"({describe_node(failure.node, root)}) for input shape "
+            f"{shapes[0] if len(shapes) == 1 else list(shapes)}: {reason(failure.error)}; "
             "check that the model takes inputs of this (C, H, W), or mark the failing module as a leaf "
             "(--leaf TYPE, Python: leaves=[TYPE])"
         ) from failure.error
-    return _graph_entries(graph, modules, values), gm
+    return graph_entries(graph, modules, values), gm
 
 
 def points(
@@ -222,11 +229,11 @@ def points(
     for cuts, branches, the recommendation rule and the fallbacks. The model
     is not changed, and no weight or activation memory is allocated.
     """
-    _check_model(model, "points()")
+    check_model(model, "points()")
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
-    return _list(model, shapes, _LeafRule(leaves), all, warp, within)[0]
+    return _list(model, shapes, LeafRule(leaves), all, warp, within)[0]
 
 
 def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), warp: str = "affine",
@@ -237,33 +244,33 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     model's tensors) and its nodes are the ones listed; it is ``None`` when the
     points are reached by hooks.
     """
-    _check_model(model, "trace_points()")
+    check_model(model, "trace_points()")
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
-    return _list(model, shapes, _LeafRule(leaves), True, warp, within, keep=True)
+    return _list(model, shapes, LeafRule(leaves), True, warp, within, keep=True)
 
 
 @collector_paused()
-def _list(model: nn.Module, shapes: tuple, rule: _LeafRule, every: bool, warp: str, within: str,
+def _list(model: nn.Module, shapes: tuple, rule: LeafRule, every: bool, warp: str, within: str,
           keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
     if within:
-        scope, args, kwargs = _scope_inputs(model, shapes, within)
+        scope, args, kwargs = scope_inputs(model, shapes, within)
         first = next((a for a in args if isinstance(a, torch.Tensor) and a.dim() == 4), None)
         if first is None:
             raise GraphError(f"--within {within!r}: that module is not called with an (N, C, H, W) tensor first; "
                              "pick a module that takes images or feature maps")
         shape = tuple(int(s) for s in first.shape[1:])
-        entries = _hooks_view(scope, args, kwargs, rule, problem=None, todo=_WITHIN_TODO, input_shape=shape)
+        entries = hooks_view(scope, args, kwargs, rule, problem=None, todo=_WITHIN_TODO, input_shape=shape)
         return _build_points(entries, shape, every, warp, "hooks"), None
     try:
         entries, gm = _fx_entries(model, shapes, rule, keep)
-    except _FxFailure as failure:
-        where, todo = _fx_failure_hint(failure, model)
-        problem = f"torch.fx could not trace {where} ({_reason(failure.error)})"
-        dtype = _input_dtype(model)
+    except FxFailure as failure:
+        where, todo = fx_failure_hint(failure, model)
+        problem = f"torch.fx could not trace {where} ({reason(failure.error)})"
+        dtype = input_dtype(model)
         args = tuple(torch.empty((1, *s), dtype=dtype) for s in shapes)
-        entries = _hooks_view(model, args, {}, rule, problem=problem, todo=todo, input_shape=shapes[0])
+        entries = hooks_view(model, args, {}, rule, problem=problem, todo=todo, input_shape=shapes[0])
         return _build_points(entries, shapes[0], every, warp, "hooks"), None
     return _build_points(entries, shapes[0], every, warp, "fx"), gm
 

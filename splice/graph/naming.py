@@ -16,12 +16,12 @@ import torch.fx as fx
 from torch import nn
 
 from ..errors import PointError, suggest
-from .tracing import _check_model, trace
+from .tracing import check_model, trace
 
 __all__ = ["point_names", "find_point"]
 
 
-def _point_names(graph: fx.Graph) -> dict[fx.Node, str]:
+def names_by_node(graph: fx.Graph) -> dict[fx.Node, str]:
     """Stable point names: module qualnames, ``_1``, ``_2`` for repeats.
 
     Module calls keep fx's names (``layer1_0_relu``, ``layer1_0_relu_1``).
@@ -59,7 +59,7 @@ def _point_names(graph: fx.Graph) -> dict[fx.Node, str]:
 def point_names(gm: fx.GraphModule | fx.Graph) -> dict[str, fx.Node]:
     """``{point name: fx node}`` for a traced module or its graph (the names :func:`points` prints)."""
     graph = gm if isinstance(gm, fx.Graph) else gm.graph
-    return {name: node for node, name in _point_names(graph).items() if node.op not in ("get_attr", "output")}
+    return {name: node for node, name in names_by_node(graph).items() if node.op not in ("get_attr", "output")}
 
 
 def find_point(model_or_gm: nn.Module, name: str, *, leaves: Iterable[Any] = ()) -> fx.Node:
@@ -70,7 +70,7 @@ def find_point(model_or_gm: nn.Module, name: str, *, leaves: Iterable[Any] = ())
     placeholder. Unknown names raise :class:`~splice.errors.PointError` with the
     closest matches.
     """
-    _check_model(model_or_gm, "find_point()")
+    check_model(model_or_gm, "find_point()")
     gm = model_or_gm if isinstance(model_or_gm, fx.GraphModule) else trace(model_or_gm, leaves=leaves)
     names = point_names(gm)
     node = names.get(name) if isinstance(name, str) else None
@@ -82,15 +82,15 @@ def find_point(model_or_gm: nn.Module, name: str, *, leaves: Iterable[Any] = ())
     return node
 
 
-def _describe_node(node: fx.Node, root: nn.Module) -> str:
+def describe_node(node: fx.Node, root: nn.Module) -> str:
     if node.op == "call_module":
         return f"module '{node.target}' ({type(root.get_submodule(node.target)).__name__})"
-    where = _enclosing_module(node)
+    where = enclosing_module(node)
     fn = getattr(node.target, "__name__", str(node.target))
     return f"{node.op.replace('call_', '')} {fn!r}" + (f" in module '{where}'" if where else "")
 
 
-def _enclosing_module(node: fx.Node) -> str:
+def enclosing_module(node: fx.Node) -> str:
     stack = node.meta.get("nn_module_stack")
     if not stack:
         return ""

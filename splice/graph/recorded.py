@@ -20,20 +20,21 @@ tries torch.export.
 
 from __future__ import annotations
 
+import dataclasses
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import torch
 import torch.fx as fx
 from torch import nn
 from torch.overrides import TorchFunctionMode
-from torch.utils._pytree import tree_leaves
 
-from .cuts import _cut_analysis
-from .entries import _NCHW, _dims_permutation, _Entry, _site_name
-from .leaves import _is_torch_builtin, _LeafRule
+from .cuts import cut_analysis
+from .entries import NCHW, Entry, dims_permutation, site_name
+from .leaves import LeafRule, is_torch_builtin
 from .rules import meta_rule
-from .shapes import _META, _meta_module, _run_for_real, _to_meta
-from .tracing import _spying
+from .shapes import META, meta_module, run_for_real, to_meta
+from .tracing import spying
 
 __all__: list[str] = []
 
@@ -59,7 +60,7 @@ def _name(func) -> str:
 
 def _tensors(value: Any):
     """The tensors in ``value``: itself, or inside tuples, lists and dicts (the containers torch functions take and
-    give; anything else goes to pytree, which knows named tuples and registered types)."""
+    give) and, more slowly, any other mapping, sequence or dataclass (named tuples, a Hugging Face ``ModelOutput``)."""
     if isinstance(value, torch.Tensor):
         yield value
     elif type(value) in (tuple, list):
@@ -68,8 +69,17 @@ def _tensors(value: Any):
     elif type(value) is dict:
         for v in value.values():
             yield from _tensors(v)
-    elif not isinstance(value, (int, float, str, bool, type(None), torch.dtype, torch.device)):
-        yield from (t for t in tree_leaves(value) if isinstance(t, torch.Tensor))
+    elif isinstance(value, (int, float, str, bytes, bool, type(None), torch.dtype, torch.device)):
+        return
+    elif isinstance(value, Mapping):
+        for v in value.values():
+            yield from _tensors(v)
+    elif isinstance(value, Sequence):
+        for v in value:
+            yield from _tensors(v)
+    elif dataclasses.is_dataclass(value) and not isinstance(value, type):
+        for f in dataclasses.fields(value):
+            yield from _tensors(getattr(value, f.name, None))
 
 
 class _Recording(TorchFunctionMode):
@@ -85,7 +95,7 @@ class _Recording(TorchFunctionMode):
         self.calls: list[tuple[str, int, int, int, int | None]] = []
 
     def source(self, t: torch.Tensor) -> int:
-        return self._add("input", [], t, _NCHW if t.dim() == 4 else None)
+        return self._add("input", [], t, NCHW if t.dim() == 4 else None)
 
     def _add(self, name: str, inputs: list[int], value, layout) -> int:
         op = _Op(len(self.ops), name, inputs, value, self.stack[-1] if self.stack else "", layout)
@@ -112,9 +122,9 @@ class _Recording(TorchFunctionMode):
         if t.dim() != 4:
             return None
         if name in _CONVS:
-            return _NCHW
-        base = next((self.ops[i].layout for i in inputs if self.ops[i].layout is not None), _NCHW)
-        perm = _dims_permutation(name, args[1:])
+            return NCHW
+        base = next((self.ops[i].layout for i in inputs if self.ops[i].layout is not None), NCHW)
+        perm = dims_permutation(name, args[1:])
         return tuple(base[d] for d in perm) if perm is not None else base
 
     def __torch_function__(self, func, types, args=(), kwargs=None):
@@ -146,7 +156,7 @@ def _hook_calls(meta: nn.Module, rec: _Recording) -> list:
     return [h for m in names for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after))]
 
 
-def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule, rec: _Recording) -> dict[nn.Module, Any]:
+def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule, rec: _Recording) -> dict[nn.Module, Any]:
     """Leaves run their real twin on zeros and are recorded as one operation (``--leaf`` reaches this pass).
 
     Returns each patched module's own instance ``forward`` (``_NONE``: none), to put back after the run.
@@ -154,7 +164,7 @@ def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: _LeafRule, rec: _Reco
     real_modules = dict(real.named_modules())
     patched: dict[nn.Module, Any] = {}
     for q, m in meta.named_modules():
-        if q and rule(type(m)) and not _is_torch_builtin(type(m)):
+        if q and rule(type(m)) and not is_torch_builtin(type(m)):
             patched[m] = m.__dict__.get("forward", _NONE)
             m.forward = _leaf_forward(real_modules[q], type(m).__name__, rec)
     return patched
@@ -165,7 +175,7 @@ _NONE = object()
 
 def _leaf_forward(original: nn.Module, name: str, rec: _Recording):
     def forward(*args, **kwargs):
-        out = _run_for_real(original, args, kwargs)  # reads zeros, not recorded tensors: nothing is recorded
+        out = run_for_real(original, args, kwargs)  # reads zeros, not recorded tensors: nothing is recorded
         rec.record(name, args, kwargs, out)
         return out
     return forward
@@ -204,21 +214,21 @@ def _step(*args):  # the target of every recorded operation in the analysis grap
     raise NotImplementedError
 
 
-def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, meta: nn.Module | None = None,
+def _record(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, meta: nn.Module | None = None,
             readers: list[nn.Module] | None = None) -> tuple[_Recording, Any]:
-    meta = _meta_module(model) if meta is None else meta
+    meta = meta_module(model) if meta is None else meta
     rec = _Recording()
     patched = _opaque_leaves(meta, model, rule, rec)
     handles = _hook_calls(meta, rec)
-    args = tuple(_to_meta(a) for a in args)
-    kwargs = {k: _to_meta(v) for k, v in kwargs.items()}
+    args = tuple(to_meta(a) for a in args)
+    kwargs = {k: to_meta(v) for k, v in kwargs.items()}
     for t in args:
         if isinstance(t, torch.Tensor):
             rec.source(t)
     mods = list(meta.modules())
     reads: list[nn.Module] = []
     try:
-        with _spying(mods, reads) as spied, torch.no_grad(), torch.device(_META), rec:
+        with spying(mods, reads) as spied, torch.no_grad(), torch.device(META), rec:
             out = meta(*args, **kwargs)
     finally:
         for h in handles:
@@ -233,9 +243,9 @@ def _record(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule, meta: 
     return rec, out
 
 
-def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRule,
+def recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule,
                       counts: dict[str, int] | None = None, *, meta: nn.Module | None = None,
-                      readers: list[nn.Module] | None = None) -> list[_Entry]:
+                      readers: list[nn.Module] | None = None) -> list[Entry]:
     """Entries for the points a forward hook reaches, from one recorded meta forward (raises if it fails).
 
     ``counts``, when given, receives how often each module (by qualname) was called in that forward.
@@ -246,9 +256,9 @@ def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRu
     if counts is not None:
         for qualname, *_ in rec.calls:
             counts[qualname] = counts.get(qualname, 0) + 1
-    outputs = [rec.producer[id(t)] for t in tree_leaves(out) if isinstance(t, torch.Tensor) and id(t) in rec.producer]
+    outputs = [rec.producer[id(t)] for t in _tensors(out) if id(t) in rec.producer]
     graph, nodes, values = _graph(rec, list(dict.fromkeys(outputs)))
-    cuts, joins = _cut_analysis(graph, values)
+    cuts, joins = cut_analysis(graph, values)
     sites = _sites(rec)
     conv_up = [False] * len(rec.ops)
     for op in rec.ops:
@@ -261,11 +271,11 @@ def _recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: _LeafRu
     entries = []
     for op in rec.ops:
         is_input = op.index == 0
-        if not (is_input or op.index in sites) or op.layout != _NCHW:
+        if not (is_input or op.index in sites) or op.layout != NCHW:
             continue
         join = joins.get(nodes[op.index])
         join_name = None if join is None else names.get(index[join]) or _owner_name(rec.ops[index[join]])
-        entries.append(_Entry(
+        entries.append(Entry(
             name="input" if is_input else names[op.index], module="" if is_input else sites[op.index][0],
             kind="input" if is_input else "activation", shape=tuple(int(s) for s in op.value.shape[1:]),
             cut=nodes[op.index] in cuts, join=join_name, between_convs=conv_up[op.index] and conv_down[op.index],
@@ -284,5 +294,5 @@ def _names(rec: _Recording, sites: dict[int, tuple[str, int]]) -> dict[int, str]
     taken = {"input"}
     for i in sorted(sites):
         qualname, k = sites[i]
-        names[i] = _site_name(qualname.replace(".", "_"), k, taken)
+        names[i] = site_name(qualname.replace(".", "_"), k, taken)
     return names

@@ -12,7 +12,7 @@ A rule applies only when it is sure: every tensor on the meta device,
 contiguous inputs (layer norm and linear give a contiguous output from any
 layout), matching dtypes and the shapes the real kernel accepts.
 Otherwise it returns ``None`` and the real meta kernel runs, and reports any
-error in its own words. :class:`_ShapeRules` applies the rules to every
+error in its own words. :class:`ShapeRules` applies the rules to every
 torch function called inside a ``with`` block (the leaf modules of a traced
 graph, the recorded and counted meta forwards of the hooks views).
 ``tests/test_graph_rules.py`` checks each rule against the real meta kernel
@@ -220,7 +220,7 @@ def meta_rule(func: Any, args: tuple, kwargs: dict | None) -> Any:
     return None if rule is None else rule(args, kwargs or {})
 
 
-class _ShapeRules(TorchFunctionMode):
+class ShapeRules(TorchFunctionMode):
     """Inside the block, a torch function with a rule that applies returns the rule's output."""
 
     def __torch_function__(self, func, types, args=(), kwargs=None):

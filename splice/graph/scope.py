@@ -2,7 +2,7 @@
 
 A detector's backbone or a flow network's feature encoder is called by the
 model's own code with tensors the user never sees (resized, or two images
-concatenated). :func:`_scope_inputs` runs the whole model once on the meta
+concatenated). :func:`scope_inputs` runs the whole model once on the meta
 device (no memory, no arithmetic) until the submodule is called, and keeps
 what it was called with; a forward that needs real values falls back to one
 CPU run on zeros, stopped at the same place.
@@ -18,9 +18,9 @@ from torch import nn
 
 from ..copies import private_buffers
 from ..errors import GraphError, suggest
-from .rules import _ShapeRules
-from .shapes import _META, _input_dtype, _meta_empty, _meta_module
-from .tracing import _reason
+from .rules import ShapeRules
+from .shapes import META, input_dtype, meta_empty, meta_module
+from .tracing import reason
 
 __all__: list[str] = []
 
@@ -71,14 +71,14 @@ def _as_examples(value: Any) -> Any:
                                  if isinstance(v, torch.Tensor) else v)
 
 
-def _scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Module, tuple, dict]:
+def scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Module, tuple, dict]:
     """``(submodule, example args, example kwargs)`` for a splice ``within`` that submodule."""
     scope = _resolve_scope(model, within)
-    dtype = _input_dtype(model)
+    dtype = input_dtype(model)
     try:
-        meta = _meta_module(model)
-        with torch.device(_META), _ShapeRules():
-            args, kwargs = _capture(meta, within, tuple(_meta_empty((1, *s), dtype) for s in shapes))
+        meta = meta_module(model)
+        with torch.device(META), ShapeRules():
+            args, kwargs = _capture(meta, within, tuple(meta_empty((1, *s), dtype) for s in shapes))
     except GraphError:
         raise
     except Exception:
@@ -90,7 +90,7 @@ def _scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Modu
             raise
         except Exception as exc:
             raise GraphError(f"--within {within!r}: running {type(model).__name__} up to that module failed "
-                             f"({_reason(exc)}); check the input shape(s) {list(shapes)}") from exc
+                             f"({reason(exc)}); check the input shape(s) {list(shapes)}") from exc
     return scope, _as_examples(tuple(args)), _as_examples(dict(kwargs))
 
 

@@ -21,22 +21,22 @@ from torch import nn
 
 from ..copies import tree_copy
 from ..errors import GraphError
-from .leaves import _is_torch_builtin
-from .rules import _ShapeRules, meta_rule
+from .leaves import is_torch_builtin
+from .rules import ShapeRules, meta_rule
 
 __all__: list[str] = []
 
-_META = torch.device("meta")
+META = torch.device("meta")
 
 
-class _ShapeFailure(Exception):
+class ShapeFailure(Exception):
     def __init__(self, node: fx.Node, error: BaseException):
         super().__init__(str(error))
         self.node = node
         self.error = error
 
 
-def _meta_module(mod: nn.Module) -> nn.Module:
+def meta_module(mod: nn.Module) -> nn.Module:
     """An eval-mode copy of ``mod`` whose parameters and buffers live on the meta device.
 
     Tensors are swapped for meta tensors through deepcopy's memo, so no weight
@@ -46,23 +46,23 @@ def _meta_module(mod: nn.Module) -> nn.Module:
     for t in itertools.chain(mod.parameters(), mod.buffers()):
         if isinstance(t, (nn.parameter.UninitializedParameter, nn.parameter.UninitializedBuffer)):
             continue
-        meta = _meta_empty(t.shape, t.dtype)
+        meta = meta_empty(t.shape, t.dtype)
         memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
     copied = tree_copy(mod, memo)
     copied.eval()
     return copied
 
 
-def _meta_empty(shape, dtype: torch.dtype) -> torch.Tensor:
+def meta_empty(shape, dtype: torch.dtype) -> torch.Tensor:
     # torch.empty is a C++ call on meta; torch.empty_like goes through a Python reference and costs ten times more
-    return torch.empty(shape, dtype=dtype, device=_META)
+    return torch.empty(shape, dtype=dtype, device=META)
 
 
-def _to_meta(value: Any) -> Any:
-    return _meta_empty(value.shape, value.dtype) if isinstance(value, torch.Tensor) else value
+def to_meta(value: Any) -> Any:
+    return meta_empty(value.shape, value.dtype) if isinstance(value, torch.Tensor) else value
 
 
-def _input_dtype(model: nn.Module) -> torch.dtype:
+def input_dtype(model: nn.Module) -> torch.dtype:
     """The dtype of the model's first floating-point parameter or buffer (float32 if none)."""
     for t in itertools.chain(model.parameters(), model.buffers()):
         if t.is_floating_point():
@@ -93,7 +93,7 @@ def _conv2d_rule(mod: nn.Conv2d, x: torch.Tensor) -> torch.Tensor | None:
         return None
     n, _, h, w = x.shape
     if mod.padding == "same":
-        return _meta_empty((n, mod.out_channels, h, w), x.dtype)
+        return meta_empty((n, mod.out_channels, h, w), x.dtype)
     padding = (0, 0) if mod.padding == "valid" else mod.padding
     out = []
     # output size of a convolution: floor((size + 2 pad - dilation (kernel - 1) - 1) / stride) + 1
@@ -102,7 +102,7 @@ def _conv2d_rule(mod: nn.Conv2d, x: torch.Tensor) -> torch.Tensor | None:
         if o <= 0:
             return None
         out.append(o)
-    return _meta_empty((n, mod.out_channels, *out), x.dtype)
+    return meta_empty((n, mod.out_channels, *out), x.dtype)
 
 
 def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | None:
@@ -111,7 +111,7 @@ def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | No
     x = args[0]
     cls = type(mod)
     if cls in _SAME_SHAPE_MODULES:
-        return _meta_empty(x.shape, x.dtype)
+        return meta_empty(x.shape, x.dtype)
     if cls is nn.Conv2d:
         return _conv2d_rule(mod, x)
     if cls is nn.BatchNorm2d:
@@ -123,16 +123,16 @@ def _module_rule(mod: nn.Module, args: tuple, kwargs: dict) -> torch.Tensor | No
         ok = x.dim() >= k and tuple(x.shape[x.dim() - k:]) == tuple(mod.normalized_shape)
     elif cls is nn.Linear:
         if x.dim() >= 1 and x.shape[-1] == mod.in_features and x.dtype == mod.weight.dtype:
-            return _meta_empty((*x.shape[:-1], mod.out_features), x.dtype)
+            return meta_empty((*x.shape[:-1], mod.out_features), x.dtype)
         return None
     elif cls is nn.AdaptiveAvgPool2d and x.dim() in (3, 4):
         size = mod.output_size
         size = (size, size) if isinstance(size, int) else size
         h, w = (o if o is not None else i for o, i in zip(size, x.shape[-2:]))
-        return _meta_empty((*x.shape[:-2], h, w), x.dtype)
+        return meta_empty((*x.shape[:-2], h, w), x.dtype)
     else:
         return None
-    return _meta_empty(x.shape, x.dtype) if ok else None
+    return meta_empty(x.shape, x.dtype) if ok else None
 
 
 def _broadcast(a: tuple[int, ...], b: tuple[int, ...]) -> tuple[int, ...] | None:
@@ -160,7 +160,7 @@ def _elementwise_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
     )
     if shape is None:
         return None
-    return _meta_empty(shape, torch.result_type(a, b))
+    return meta_empty(shape, torch.result_type(a, b))
 
 
 def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
@@ -182,7 +182,7 @@ def _cat_rule(args: tuple, kwargs: dict) -> torch.Tensor | None:
         if any(a != b for i, (a, b) in enumerate(zip(shape, t.shape)) if i != dim):
             return None
         shape[dim] += t.shape[dim]
-    return _meta_empty(shape, first.dtype)
+    return meta_empty(shape, first.dtype)
 
 
 _FUNCTION_RULES: dict[Any, Callable[[tuple, dict], torch.Tensor | None]] = {
@@ -194,7 +194,7 @@ _METHOD_RULES: dict[str, Callable[[tuple, dict], torch.Tensor | None]] = dict.fr
 )
 
 
-def _run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
+def run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
     """Run a copy of ``mod`` once on all-zeros inputs of the given meta shapes; return meta outputs."""
     tensor = next(itertools.chain(mod.parameters(), mod.buffers()), None)
     device = tensor.device if tensor is not None else torch.device("cpu")
@@ -206,28 +206,28 @@ def _run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
         work = copy.deepcopy(mod)
         work.eval()
         out = work(*fx.node.map_aggregate(args, real), **fx.node.map_aggregate(kwargs, real))
-    return fx.node.map_aggregate(out, _to_meta)
+    return fx.node.map_aggregate(out, to_meta)
 
 
 def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: dict[str, nn.Module]) -> Any:
     meta_mod = cache.get(target)
     if meta_mod is None:
-        meta_mod = cache[target] = _meta_module(mod)
+        meta_mod = cache[target] = meta_module(mod)
     try:
-        with _ShapeRules():
+        with ShapeRules():
             return meta_mod(*args, **kwargs)
     except Exception:
-        if _is_torch_builtin(type(mod)):
+        if is_torch_builtin(type(mod)):
             raise
         # a user leaf whose forward needs real values (value-dependent control flow)
         try:
-            return _run_for_real(mod, args, kwargs)
+            return run_for_real(mod, args, kwargs)
         except Exception:
             pass
         raise
 
 
-def _propagate(
+def propagate(
     graph: fx.Graph, root: nn.Module, modules: dict[str, nn.Module], input_shapes: tuple[tuple[int, int, int], ...]
 ) -> dict[fx.Node, Any]:
     """Run ``graph`` on batch-1 meta tensors (one per input shape); return every node's (meta) value.
@@ -244,7 +244,7 @@ def _propagate(
             try:
                 if op == "placeholder":
                     if given:
-                        value = _meta_empty((1, *given.pop(0)), _input_dtype(root))
+                        value = meta_empty((1, *given.pop(0)), input_dtype(root))
                     elif node.args:
                         value = node.args[0]  # an optional argument: its default
                     else:
@@ -254,7 +254,7 @@ def _propagate(
                             f"{node.target!r}); give one --input-shape per input (input_shape=[(C, H, W), ...])"
                         )
                 elif op == "get_attr":
-                    value = _to_meta(_fetch_attr(root, node.target))
+                    value = to_meta(_fetch_attr(root, node.target))
                 elif op == "output":
                     value = fx.node.map_arg(node.args[0], load)
                 else:
@@ -274,7 +274,7 @@ def _propagate(
             except GraphError:
                 raise
             except Exception as exc:
-                raise _ShapeFailure(node, exc) from exc
+                raise ShapeFailure(node, exc) from exc
             values[node] = value
     return values
 
@@ -292,5 +292,5 @@ def _call(node: fx.Node, args: tuple, kwargs: dict) -> Any:
     except Exception:
         # a factory call (torch.zeros(...), torch.arange(...)) made a CPU tensor
         # that then met a meta one: run the node again with meta as the default device
-        with torch.device(_META):
+        with torch.device(META):
             return fn(*args, **kwargs)

@@ -26,7 +26,7 @@ from torch import nn
 
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
-from .leaves import _class_path, _is_torch_builtin, _LeafRule
+from .leaves import LeafRule, class_path, is_torch_builtin
 
 __all__ = ["GraphWarning", "TraceModeWarning", "trace", "relink_lifted"]
 
@@ -40,7 +40,7 @@ class TraceModeWarning(GraphWarning):
 
 
 class _Tracer(fx.Tracer):
-    def __init__(self, rule: _LeafRule):
+    def __init__(self, rule: LeafRule):
         super().__init__()
         self._rule = rule
         self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
@@ -110,19 +110,19 @@ class _Tracer(fx.Tracer):
             raise
 
 
-class _FxFailure(Exception):
+class FxFailure(Exception):
     def __init__(self, error: BaseException, failed_in: tuple[str, type] | None):
         super().__init__(str(error))
         self.error = error
         self.failed_in = failed_in
 
 
-def _run_tracer(root: nn.Module, rule: _LeafRule) -> fx.Graph:
+def _run_tracer(root: nn.Module, rule: LeafRule) -> fx.Graph:
     tracer = _Tracer(rule)
     try:
         return tracer.trace(root)
     except Exception as exc:
-        raise _FxFailure(exc, tracer.failed_in) from exc
+        raise FxFailure(exc, tracer.failed_in) from exc
 
 
 def _can_spy(cls: type) -> bool:
@@ -136,7 +136,7 @@ def _original_class(cls: type) -> type:
 
 
 @contextmanager
-def _spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
+def spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
     """Temporarily give each module a class whose ``training`` property records reads.
 
     Yields False (and changes nothing) if some module's class cannot take part.
@@ -226,22 +226,22 @@ def _set_training(mods: list[nn.Module], flag: bool) -> None:
         m.__dict__["training"] = flag
 
 
-def _trace_modes(root: nn.Module, rule: _LeafRule) -> tuple[fx.Graph, str | None]:
+def _trace_modes(root: nn.Module, rule: LeafRule) -> tuple[fx.Graph, str | None]:
     """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not)."""
     mods = list(root.modules())
     difference = None
     with _modes_restored(mods):
         _set_training(mods, False)
         reads: list[nn.Module] = []
-        with _spying(mods, reads) as spied:
+        with spying(mods, reads) as spied:
             graph = _run_tracer(root, rule)
         # if no traced code read a `training` flag, a train-mode trace takes the same path
         if not spied or reads:
             _set_training(mods, True)
             try:
                 difference = _describe_difference(graph, _run_tracer(root, rule))
-            except _FxFailure as failure:
-                difference = f"the train-mode trace fails: {_reason(failure.error)}"
+            except FxFailure as failure:
+                difference = f"the train-mode trace fails: {reason(failure.error)}"
     return graph, difference
 
 
@@ -261,21 +261,23 @@ def _updating_classes(root: nn.Module, before: dict) -> set[type]:
     return found
 
 
-def _traced_through_norms(root: nn.Module, rule: _LeafRule) -> dict[type, nn.Module]:
+_BATCH_NORMS = (nn.BatchNorm1d, nn.BatchNorm2d, nn.BatchNorm3d, nn.SyncBatchNorm,  # torch's, by public class
+                nn.LazyBatchNorm1d, nn.LazyBatchNorm2d, nn.LazyBatchNorm3d)
+
+
+def _traced_through_norms(root: nn.Module, rule: LeafRule) -> dict[type, nn.Module]:
     """One instance of each batch norm class in ``root`` that tracks statistics and that the tracer would trace
     through (not a leaf, not torch's own), by class."""
-    from torch.nn.modules.batchnorm import _BatchNorm
-
     found: dict[type, nn.Module] = {}
     for m in root.modules():
         cls = _original_class(type(m))
-        if (m is not root and isinstance(m, _BatchNorm) and m.track_running_stats and not rule(cls)
-                and not _is_torch_builtin(cls)):
+        if (m is not root and isinstance(m, _BATCH_NORMS) and m.track_running_stats and not rule(cls)
+                and not is_torch_builtin(cls)):
             found.setdefault(cls, m)
     return found
 
 
-def _counting_norm_classes(root: nn.Module, rule: _LeafRule, norms: dict[type, nn.Module]) -> set[type]:
+def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn.Module]) -> set[type]:
     """The classes of ``norms`` that update their buffers when traced in train mode.
 
     Each class is traced alone, one instance, in train mode (a few nodes, not the whole tree); if one of
@@ -285,7 +287,7 @@ def _counting_norm_classes(root: nn.Module, rule: _LeafRule, norms: dict[type, n
     def traces(module: nn.Module) -> bool:
         try:
             _run_tracer(module, rule)
-        except _FxFailure:
+        except FxFailure:
             return False
         return True
 
@@ -298,7 +300,7 @@ def _counting_norm_classes(root: nn.Module, rule: _LeafRule, norms: dict[type, n
     return {c for c in _updating_classes(root, before) if not rule(c)}
 
 
-def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
+def trace_owned(root: nn.Module, rule: LeafRule) -> fx.Graph:
     """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ.
 
     A module whose forward updates its own buffers (a BatchNorm fused with an
@@ -306,7 +308,7 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
     while tracing, and never again in the traced graph. Such modules are kept
     as leaves (opaque steps that run their own forward), found by the buffers'
     version counters, which works on the meta device too; the tracer then runs
-    again. ``rule`` keeps them (see :meth:`_LeafRule.add`).
+    again. ``rule`` keeps them (see :meth:`LeafRule.add`).
 
     A batch norm that fx traces through (a subclass fused with its activation)
     counts batches only in train mode, which the eval-mode trace cannot see:
@@ -328,7 +330,7 @@ def _trace_owned(root: nn.Module, rule: _LeafRule) -> fx.Graph:
             if not updating:
                 break
             rule.add(updating)
-    except _FxFailure:
+    except FxFailure:
         # the norms were made leaves for this trace only; a fallback that does not trace keeps the leaves
         # it had before, and any the eval-mode rounds found
         rule.discard(counting)
@@ -355,13 +357,13 @@ def _unspy_meta(graph: fx.Graph) -> None:
             )
 
 
-def _fx_failure_hint(failure: _FxFailure, model: nn.Module) -> tuple[str, str]:
+def fx_failure_hint(failure: FxFailure, model: nn.Module) -> tuple[str, str]:
     """(where, what to do) for an fx failure."""
     if failure.failed_in is not None and failure.failed_in[0] not in ("", "?"):
         qualname, cls = failure.failed_in
         where = f"module '{qualname}' ({cls.__name__})"
         todo = (
-            f"mark it opaque with --leaf {_class_path(cls)} (Python: leaves=[{cls.__name__}]) "
+            f"mark it opaque with --leaf {class_path(cls)} (Python: leaves=[{cls.__name__}]) "
             "so the tracer keeps it as one step"
         )
     else:
@@ -373,15 +375,13 @@ def _fx_failure_hint(failure: _FxFailure, model: nn.Module) -> tuple[str, str]:
     return where, todo
 
 
-
-def _reason(exc: BaseException) -> str:
+def reason(exc: BaseException) -> str:
     """``"TypeError: first line of the message"`` (the class name alone when there is no message)."""
     name = type(exc).__name__
     return f"{name}: {first_line(exc)}" if str(exc).strip() else name
 
 
-
-def _check_model(model: Any, what: str) -> None:
+def check_model(model: Any, what: str) -> None:
     if not isinstance(model, nn.Module):
         raise GraphError(f"{what} needs a torch.nn.Module, got {type(model).__name__}; pass the model object")
 
@@ -461,31 +461,31 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = (),
     (``"box.item"``) reaches the GraphModule inside a plain ``nn.Module``
     container ``box``, as fx copies any target.
     """
-    _check_model(model, "trace()")
+    check_model(model, "trace()")
     try:
-        gm, _ = _trace_copy(model, _LeafRule(leaves), edit)
-    except _FxFailure as failure:
-        where, todo = _fx_failure_hint(failure, model)
-        raise GraphError(f"torch.fx cannot trace {where}: {_reason(failure.error)}; {todo}") from failure.error
+        gm, _ = trace_copy(model, LeafRule(leaves), edit)
+    except FxFailure as failure:
+        where, todo = fx_failure_hint(failure, model)
+        raise GraphError(f"torch.fx cannot trace {where}: {reason(failure.error)}; {todo}") from failure.error
     return gm
 
 
-def _trace_copy(model: nn.Module, rule: _LeafRule, edit: Callable[[fx.Graph, nn.Module], None] | None = None,
+def trace_copy(model: nn.Module, rule: LeafRule, edit: Callable[[fx.Graph, nn.Module], None] | None = None,
                 ) -> tuple[fx.GraphModule, nn.Module]:
     """:func:`trace`'s GraphModule (its graph changed by ``edit`` first), and the twin the tracer ran on (whose
     modules the graph's nodes name).
 
-    Raises :class:`_FxFailure` when fx cannot trace the model.
+    Raises :class:`FxFailure` when fx cannot trace the model.
     """
     try:
         work = tree_copy(model)
     except Exception as exc:
         raise GraphError(
-            f"cannot copy {type(model).__name__} for tracing ({_reason(exc)}); "
+            f"cannot copy {type(model).__name__} for tracing ({reason(exc)}); "
             "splice never traces the caller's model in place: make the model deep-copyable"
         ) from exc
     twin = private_buffers(work)
-    graph = _trace_owned(twin, rule)
+    graph = trace_owned(twin, rule)
     _unspy_meta(graph)
     lifted = _adopt_lifted(graph, twin, work)
     if edit is not None:

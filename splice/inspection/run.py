@@ -8,7 +8,7 @@ from pathlib import Path
 import torch
 from torch import Tensor
 
-from .._io import json_safe
+from ..fileio import json_safe
 from ..errors import DataError, SpliceError
 from .capture import capture, check_positive_int
 from .decompose import QUANTITY_HELP, describe_theta, quantities_for
@@ -94,12 +94,12 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     "quantities": {name: {"n", "mean", "std", "p5", "p95", "min", "max"}}}},
     "help", "files", "out"}``; statistics of a quantity with no finite value
     are ``None``, and a non-finite number is written as ``"inf"``, ``"-inf"``
-    or ``"nan"`` (:func:`splice._io.json_safe`).
+    or ``"nan"`` (:func:`splice.fileio.json_safe`).
 
     >>> report = splice.inspect("out/tray-affine", data="digits-moved", out="out/report")  # doctest: +SKIP
     >>> report["warps"]["input"]["quantities"]["angle_deg"]["mean"]                           # doctest: +SKIP
     """
-    from .._io import atomic_write_json, atomic_write_text, make_dir
+    from ..fileio import atomic_write_json, atomic_write_text, make_dir
 
     check_positive_int("n", n)
     check_positive_int("sheet_images", sheet_images)

@@ -126,6 +126,6 @@ def recipe_to_toml(recipe: Recipe) -> str:
 
 def dump_recipe(recipe: Recipe, path: str | os.PathLike) -> Path:
     """Write the resolved recipe atomically (TOML)."""
-    from .._io import atomic_write_text
+    from ..fileio import atomic_write_text
 
     return atomic_write_text(path, recipe_to_toml(recipe))

@@ -22,7 +22,7 @@ from torch import nn
 
 from ..errors import SourceError, suggest
 from .huggingface import build_transformers
-from .specs import _split_spec, parse_input_shape
+from .specs import parse_input_shape, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
@@ -122,7 +122,7 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
     """
     kwargs = dict(kwargs or {})
     check_spec(spec, kwargs, origin=origin, trust_code=trust_code)
-    head, attr = _split_spec(spec)
+    head, attr = split_spec(spec)
     if head == "torchvision":
         model, meta = _build_torchvision(attr, kwargs)
         return model, {**meta, "declares_normalisation": True}

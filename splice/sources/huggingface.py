@@ -26,7 +26,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from .._io import read_json
+from ..fileio import read_json
 from ..errors import SourceError
 
 __all__ = ["build_transformers", "transformers_lists", "is_hf_folder", "read_hf_folder", "HF_WEIGHT_FILES", "HFFolder"]

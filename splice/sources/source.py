@@ -10,13 +10,13 @@ from pathlib import Path
 
 from torch import nn
 
-from .._io import state_dict_sha256
+from ..fileio import state_dict_sha256
 from ..errors import RandomWeightsWarning, SourceError
 from .builders import build_model
 from .huggingface import is_hf_folder, read_hf_folder
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import check_spec
-from .weights import _check_file, _torch_load, check_finite, load_weights_, read_weights
+from .weights import check_file, check_finite, load_weights_, read_weights, torch_load
 
 __all__ = ["Source", "load_source"]
 
@@ -28,7 +28,7 @@ class Source:
     """A resolved model: the module plus everything needed to rebuild it.
 
     ``weights_sha256`` is the canonical hash of the model's state dict after the
-    weights were loaded (see :func:`splice._io.state_dict_sha256`): two sources
+    weights were loaded (see :func:`splice.fileio.state_dict_sha256`): two sources
     hash equal exactly when every tensor is bitwise equal.
     ``declares_normalisation`` is False when nothing (factory attribute,
     torchvision, timm, a folder's record) says how inputs are normalised.
@@ -168,8 +168,8 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
 
 
 def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> Source:
-    _check_file(path, "model file")
-    obj = _torch_load(path, trust_pickle=trust_pickle)
+    check_file(path, "model file")
+    obj = torch_load(path, trust_pickle=trust_pickle)
     if not isinstance(obj, nn.Module):
         raise SourceError(
             f"'{path}' holds a {type(obj).__name__}, not a whole model; a state dict needs an "

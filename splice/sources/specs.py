@@ -138,7 +138,7 @@ def parse_kwargs(text: str | Mapping | None) -> dict:
     return value
 
 
-def _split_spec(spec: str) -> tuple[str, str]:
+def split_spec(spec: str) -> tuple[str, str]:
     head, sep, tail = spec.rpartition(":")
     if not sep or not head or not tail:
         raise SourceError(

@@ -37,7 +37,7 @@ WRAPPER_PREFIXES = ("module.", "model.", "_orig_mod.")
 NESTING_KEYS = ("state_dict", "model", "model_state_dict", "model_state", "net", "module", "weights")
 
 
-def _check_file(path: Path, what: str = "weights file") -> None:
+def check_file(path: Path, what: str = "weights file") -> None:
     if not path.exists():
         raise WeightsError(f"{what} '{path}' does not exist; check the path")
     if path.is_dir():
@@ -55,7 +55,7 @@ def _looks_serialised(path: Path) -> bool:
     return zipfile.is_zipfile(path) or head[:1] == b"\x80"
 
 
-def _torch_load(path: Path, *, trust_pickle: bool):
+def torch_load(path: Path, *, trust_pickle: bool):
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -159,12 +159,12 @@ def read_weights(path: str | os.PathLike, *, trust_pickle: bool = False) -> dict
     that need ``trust_pickle``.
     """
     path = Path(path)
-    _check_file(path)
+    check_file(path)
     if path.name.endswith(".index.json"):
         return _read_shards(path, trust_pickle=trust_pickle)
     if path.suffix == ".safetensors":
         return read_safetensors(path)
-    return _unnest(_torch_load(path, trust_pickle=trust_pickle), path)
+    return _unnest(torch_load(path, trust_pickle=trust_pickle), path)
 
 
 def _read_shards(index: Path, *, trust_pickle: bool) -> dict[str, torch.Tensor]:

@@ -4,7 +4,7 @@ A checkpoint is a dict of tensors, numbers, strings, lists and dicts only (no
 pickled objects): the model and optimiser state dicts, the step counters, the
 RNG states, the best-so-far bookkeeping and the schedule position. It is
 serialised to memory first and then written through
-:func:`splice._io.atomic_write_bytes` (temporary file, fsync, rename), so a
+:func:`splice.fileio.atomic_write_bytes` (temporary file, fsync, rename), so a
 crash or a failed write (read-only folder, full disk) leaves the previous
 checkpoint exactly as it was.
 """
@@ -18,7 +18,7 @@ from typing import Any
 
 import torch
 
-from .._io import atomic_write_bytes
+from ..fileio import atomic_write_bytes
 from ..errors import SpliceError
 
 __all__ = ["CHECKPOINT_NAME", "CHECKPOINT_FORMAT", "CHECKPOINT_VERSION", "save_checkpoint", "load_checkpoint",

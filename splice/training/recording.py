@@ -8,7 +8,7 @@ from typing import Any
 
 import torch
 
-from .._io import atomic_write_text, state_dict_sha256
+from ..fileio import atomic_write_text, state_dict_sha256
 from ..errors import TrainingDiverged
 from ..manifest import info_of
 from . import distributed

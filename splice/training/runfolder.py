@@ -1,6 +1,6 @@
 """The run folder of ``splice tune``: ``run.json``, ``recipe.toml``, ``metrics.jsonl``, creation and resume checks.
 
-Rank 0 alone writes; every write goes through :mod:`splice._io` (atomic) or,
+Rank 0 alone writes; every write goes through :mod:`splice.fileio` (atomic) or,
 for the append-only metrics file, is flushed and fsynced per row. A torn last
 metrics line (a crash mid-write) is skipped on reading and cut off on resume.
 
@@ -19,7 +19,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from .._io import atomic_write_json, atomic_write_text, make_dir, read_json, recover_dirs
+from ..fileio import atomic_write_json, atomic_write_text, make_dir, read_json, recover_dirs
 from ..errors import SpliceError
 from ..folders import LOCK_FILE, RUN_FILE, RUN_FORMAT, FolderLock, lock_holder
 from ..recipes import Recipe, recipe_to_toml

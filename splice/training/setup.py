@@ -12,7 +12,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from .._io import state_dict_sha256
+from ..fileio import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError
 from ..manifest import copy_model, info_of
 from ..options import ModelOptions

@@ -42,7 +42,7 @@ module trees over the same read-only weights) and runs the checks below;
     fresh splice (no tuning recorded) every distance must be exactly 0: a head
     that is not zero-initialised fails here.
 ``provenance``
-    The base part of the weights hashes (:func:`splice._io.state_dict_sha256`)
+    The base part of the weights hashes (:func:`splice.fileio.state_dict_sha256`)
     to the source checkpoint's hash recorded at splice time: bitwise equal. A
     joint recipe (tuning records ``base_changed``) may move them; then the row
     says so, passes, and compares them with the source weights (hashes, and

@@ -14,13 +14,13 @@ from ..compare import flatten_outputs
 from ..errors import CheckFailed, SpliceError
 from ..exporting import check_onnx_graph, export_onnx_bytes, onnx_parity
 from ..warps.perturb import final_layer
-from .probe import _error_text, _fmt, _names
+from .probe import error_text, listed_names, short_number
 from .report import CheckResult
 
 __all__: list[str] = []
 
 
-def _gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: float | None = None) -> CheckResult:
+def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: float | None = None) -> CheckResult:
     numbers: dict[str, Any] = {"warps": grads, "input_grad": input_grad}
     if error is not None:
         return CheckResult("gradients", False, numbers, f"the backward pass failed ({error})", "backward failed")
@@ -50,13 +50,13 @@ def _gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad:
     if problems:
         return CheckResult("gradients", False, numbers, "; ".join(problems), f"|grad| final bias: {summary}")
     upstream = [n for n, g in grads.items() if g["upstream"] == 0.0]
-    note = (f"; earlier head layers of {_names(upstream)} get exactly 0, as they must at the identity "
+    note = (f"; earlier head layers of {listed_names(upstream)} get exactly 0, as they must at the identity "
             "(the gradient flows through the zero final weight)") if upstream else ""
     return CheckResult("gradients", True, numbers,
                        f"every warp's final layer gets a finite, non-zero gradient{note}",
                        f"|grad| final bias: {summary}")
 
-def _gradients(out, head_params: dict[str, dict[str, list]], seed: int,
+def gradient_norms(out, head_params: dict[str, dict[str, list]], seed: int,
                inputs: tuple = ()) -> tuple[dict, str | None, float | None]:
     """Norms of d(random projection of the outputs)/d(head parameters), per warp, and the norm of the
     gradient with respect to the ``inputs`` that require one (``None`` without such inputs)."""
@@ -73,7 +73,7 @@ def _gradients(out, head_params: dict[str, dict[str, list]], seed: int,
     try:
         got = torch.autograd.grad(loss, [p for _, _, p in order] + list(inputs), allow_unused=True)
     except RuntimeError as exc:
-        return grads, _error_text(exc), None
+        return grads, error_text(exc), None
     in_grads = got[len(order):]
     got = got[:len(order)]
     input_grad = (math.hypot(*(float(g.detach().double().norm()) if g is not None else 0.0 for g in in_grads))
@@ -90,7 +90,7 @@ def _gradients(out, head_params: dict[str, dict[str, list]], seed: int,
         grads.setdefault(name, {"final_weight": 0.0, "final_bias": 0.0, "upstream": 0.0, "finite": True})
     return grads, None, input_grad
 
-def _head_params(warps) -> dict[str, dict[str, list]]:
+def warp_head_params(warps) -> dict[str, dict[str, list]]:
     out: dict[str, dict[str, list]] = {}
     for name, warp in warps.items():
         final = final_layer(warp)
@@ -100,7 +100,7 @@ def _head_params(warps) -> dict[str, dict[str, list]]:
                      "upstream": [p for p in warp.parameters() if id(p) not in ids]}
     return out
 
-def _onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int, exporter: str,
+def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int, exporter: str,
               n_outputs: int | None, reference=None) -> CheckResult:
     """``example`` holds one tensor per model input."""
     twin = model if example[0].dtype == torch.float32 else copy.deepcopy(model).float()
@@ -141,7 +141,7 @@ def _onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int
                                          "batch_sizes")}}
     if example[0].dtype != torch.float32:
         numbers["note"] = "run in float32 (onnxruntime's GridSample is float32)"
-    summary = (f"abs {_fmt(result['max_abs'])}, perturbed {_fmt(result['max_abs_perturbed'])}, "
+    summary = (f"abs {short_number(result['max_abs'])}, perturbed {short_number(result['max_abs_perturbed'])}, "
                f"export {seconds:.2f}s")
     return CheckResult("onnx", bool(result["passed"]), numbers,
                        f"onnxruntime vs torch (opset {opset}, {exporter}{', weights fed as inputs' if fed else ''}): "

@@ -35,14 +35,14 @@ def probe_inputs(input_shapes: Sequence[Sequence[int]], batch: int = 1, *, seed:
     return tuple(torch.randn((int(batch), *[int(d) for d in shape]), generator=gen, dtype=torch.float32).to(dtype)
                  for shape in input_shapes)
 
-def _resolve_dtype(dtype) -> torch.dtype:
+def resolve_dtype(dtype) -> torch.dtype:
     if isinstance(dtype, torch.dtype) and dtype in DTYPES.values():
         return dtype
     if isinstance(dtype, str) and dtype in DTYPES:
         return DTYPES[dtype]
     raise SpliceError(f"dtype {dtype!r} is not supported by verify; choose float32 or float64 (--dtype)")
 
-def _check_batch(batch) -> int:
+def check_batch(batch) -> int:
     if isinstance(batch, bool) or not isinstance(batch, int) or batch < 1:
         raise SpliceError(f"probe batch must be a positive integer, got {batch!r}; pass e.g. --batch 2")
     return batch
@@ -66,18 +66,18 @@ def _image_files(images) -> list[Path]:
             raise DataError(f"--images '{path}' does not exist; give a folder of images or an image file")
     return files
 
-def _read_images(images, input_shape, normalisation) -> tuple[torch.Tensor, list[str]]:
+def read_images(images, input_shape, normalisation) -> tuple[torch.Tensor, list[str]]:
     files = _image_files(images)
     return normalise(load_images(files, input_shape), normalisation), [str(f) for f in files]
 
-def _fmt(x: float | None) -> str:
+def short_number(x: float | None) -> str:
     return "n/a" if x is None else f"{x:.3g}"
 
-def _names(items: Sequence[str], limit: int = 4) -> str:
+def listed_names(items: Sequence[str], limit: int = 4) -> str:
     shown = ", ".join(items[:limit])
     return shown + (f" and {len(items) - limit} more" if len(items) > limit else "")
 
-class _Snapshot:
+class Snapshot:
     """Buffers and train/eval modes of some models, to prove the checks changed neither."""
 
     def __init__(self, models: Mapping[str, nn.Module]) -> None:
@@ -116,23 +116,23 @@ class _Snapshot:
                    "updated_in_eval": updated, "not_updated_by_splice": lost}
         if changed:
             detail = (f"{len(changed)} of {len(self.buffers)} buffers changed while the checks ran: "
-                      f"{_names(changed)} (restored); the checks must leave the models as they were")
+                      f"{listed_names(changed)} (restored); the checks must leave the models as they were")
         elif wrong_modes:
-            detail = f"train/eval modes were not restored for {_names(wrong_modes)}"
+            detail = f"train/eval modes were not restored for {listed_names(wrong_modes)}"
         elif lost:
-            detail = (f"the base updates {_names(lost)} in its forward, the spliced model does not; "
+            detail = (f"the base updates {listed_names(lost)} in its forward, the spliced model does not; "
                       "mark the updating module as a leaf (--leaf TYPE) and re-create the splice")
         else:
             detail = f"all {len(self.buffers)} buffers bitwise unchanged; train/eval modes restored"
             if updated:
-                detail += (f"; the forward updates {_names(updated)} even in eval mode, in base and splice "
+                detail += (f"; the forward updates {listed_names(updated)} even in eval mode, in base and splice "
                            "alike (the checks ran on copies of the buffers)")
         passed = not changed and not wrong_modes and not lost
         return CheckResult("buffers", passed, numbers, detail,
                            f"{len(self.buffers)} buffers, {len(changed) + len(lost)} changed")
 
 
-class _Laps:
+class Laps:
     """Wall-clock seconds per phase of a verification (reported in ``meta['seconds']``)."""
 
     def __init__(self) -> None:
@@ -144,7 +144,7 @@ class _Laps:
         self.seconds[name] = self.seconds.get(name, 0.0) + now - self._last
         self._last = now
 
-class _WarpProbe:
+class WarpProbe:
     """Forward hooks on every warp: input/output shapes and how far the output is from the input."""
 
     def __init__(self, warps: Mapping[str, nn.Module]) -> None:
@@ -169,11 +169,11 @@ class _WarpProbe:
         for h in self.handles:
             h.remove()
 
-def _error_text(exc: BaseException) -> str:
+def error_text(exc: BaseException) -> str:
     first = first_line(exc)
     return type(exc).__name__ if first == type(exc).__name__ else f"{type(exc).__name__}: {first}"
 
-def _reset_copy(model: nn.Module) -> nn.Module:
+def reset_copy(model: nn.Module) -> nn.Module:
     """A copy with every warp back at the identity (``Warp.reset_parameters``), RNG untouched."""
     work = copy.deepcopy(model)
     with torch.random.fork_rng(devices=[]):
@@ -181,7 +181,7 @@ def _reset_copy(model: nn.Module) -> nn.Module:
             warp.reset_parameters()
     return work
 
-def _only_copy(model: nn.Module, keep: str) -> nn.Module:
+def only_copy(model: nn.Module, keep: str) -> nn.Module:
     work = copy.deepcopy(model)
     with torch.random.fork_rng(devices=[]):
         for name, warp in warps_of(work).items():
@@ -189,7 +189,7 @@ def _only_copy(model: nn.Module, keep: str) -> nn.Module:
                 warp.reset_parameters()
     return work
 
-def _run(model: nn.Module, x, what: str):
+def run_no_grad(model: nn.Module, x, what: str):
     """``model(*x)`` without gradients; ``x`` is a tensor or one tensor per model input."""
     xs = (x,) if isinstance(x, torch.Tensor) else tuple(x)
     try:
@@ -197,5 +197,5 @@ def _run(model: nn.Module, x, what: str):
             return model(*xs)
     except Exception as exc:
         shapes = ", ".join(str(tuple(t.shape)) for t in xs)
-        raise SpliceError(f"the {what} fails on a probe batch of shape {shapes} ({_error_text(exc)}); "
+        raise SpliceError(f"the {what} fails on a probe batch of shape {shapes} ({error_text(exc)}); "
                           "check the input shape recorded in splice.json") from exc

@@ -8,7 +8,7 @@ from typing import Any
 
 import torch
 
-from .._io import state_dict_sha256
+from ..fileio import state_dict_sha256
 from ..copies import bitwise_equal
 from ..errors import SpliceError
 from ..manifest import MANIFEST_NAME, SpliceInfo
@@ -54,7 +54,7 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]],
             "missing": missing, "unexpected": extra}
 
-def _provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
+def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
                     input_shape, trust_code: bool = False) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
     source = info.source_weights_sha256

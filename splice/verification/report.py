@@ -8,7 +8,7 @@ from pathlib import Path
 
 import torch
 
-from .._io import atomic_write_json, json_safe
+from ..fileio import atomic_write_json, json_safe
 
 __all__ = ["CheckResult", "VerifyReport", "versions", "render_verify", "write_report"]
 

@@ -9,13 +9,13 @@ from typing import Any
 import torch
 
 from ..compare import flatten_outputs
-from .probe import _fmt, _names, _WarpProbe
+from .probe import WarpProbe, listed_names, short_number
 from .report import CheckResult
 
 __all__: list[str] = []
 
 
-def _integrity_row(path: Path, recorded: str, actual: str) -> CheckResult:
+def integrity_row(path: Path, recorded: str, actual: str) -> CheckResult:
     ok = recorded == actual
     numbers = {"file": str(path), "recorded_sha256": recorded, "actual_sha256": actual}
     if ok:
@@ -35,16 +35,16 @@ def _all_finite(t: torch.Tensor) -> bool:
     total = t.detach().double().sum() if t.dtype in (torch.float16, torch.bfloat16) else t.detach().sum()
     return bool(torch.isfinite(total)) or bool(torch.isfinite(t).all())
 
-def _finite_row(state: Mapping[str, torch.Tensor], where: str) -> CheckResult:
+def finite_row(state: Mapping[str, torch.Tensor], where: str) -> CheckResult:
     bad = sorted(k for k, v in state.items() if v.is_floating_point() and not _all_finite(v))
     numbers = {"tensors": len(state), "non_finite": bad}
     if not bad:
         return CheckResult("finite", True, numbers, f"all {len(state)} tensors are finite", f"{len(state)} tensors")
     return CheckResult("finite", False, numbers,
-                       f"{where} has NaN or Inf values in {len(bad)} tensor(s): {_names(bad, 6)}; the checkpoint is "
+                       f"{where} has NaN or Inf values in {len(bad)} tensor(s): {listed_names(bad, 6)}; the checkpoint is "
                        "damaged or diverged — use an earlier one", f"{len(bad)} non-finite")
 
-def _shapes_row(probe: _WarpProbe, warps, points: Mapping[str, Sequence[int]], ref_out, out,
+def shapes_row(probe: WarpProbe, warps, points: Mapping[str, Sequence[int]], ref_out, out,
                 error: str | None) -> CheckResult:
     per: dict[str, dict] = {}
     problems: list[str] = []
@@ -82,17 +82,17 @@ def _shapes_row(probe: _WarpProbe, warps, points: Mapping[str, Sequence[int]], r
                        f"{n} warp(s) keep their input shape; {len(outputs)} output(s) keep the base's shapes",
                        f"{n} warps, {len(outputs)} outputs")
 
-def _outputs_row(name: str, cmp: dict, reset: bool, what: str) -> CheckResult:
+def outputs_row(name: str, cmp: dict, reset: bool, what: str) -> CheckResult:
     numbers = {k: cmp.get(k) for k in ("max_abs", "max_rel", "top1", "tolerance", "shapes_equal")}
     numbers["warps_reset"] = reset
     numbers["probe"] = what
     where = " (warps reset to the identity on a copy)" if reset else ""
-    summary = f"abs {_fmt(cmp.get('max_abs'))}, rel {_fmt(cmp.get('max_rel'))}"
+    summary = f"abs {short_number(cmp.get('max_abs'))}, rel {short_number(cmp.get('max_rel'))}"
     if cmp.get("top1") is not None:
         summary += f", top-1 {cmp['top1']:.0%}"
     return CheckResult(name, bool(cmp["passed"]), numbers, f"{what}{where}: {cmp['detail']}", summary)
 
-def _merge_compares(results: list[dict]) -> dict:
+def merge_compares(results: list[dict]) -> dict:
     if not results:
         return {"passed": False, "max_abs": None, "max_rel": None, "top1": None, "detail": "no images"}
     failed = [r for r in results if not r["passed"]]
@@ -105,11 +105,11 @@ def _merge_compares(results: list[dict]) -> dict:
               "tolerance": results[0].get("tolerance"),
               "shapes_equal": all(r.get("shapes_equal", True) for r in results)}
     merged["detail"] = failed[0]["detail"] if failed else (
-        f"max abs error {_fmt(merged['max_abs'])}, max relative error {_fmt(merged['max_rel'])} "
+        f"max abs error {short_number(merged['max_abs'])}, max relative error {short_number(merged['max_rel'])} "
         f"(tolerance {merged['tolerance']:g})")
     return merged
 
-def _warps_row(warps, distances: dict[str, float], probe: _WarpProbe, tuned_declared: bool,
+def warps_row(warps, distances: dict[str, float], probe: WarpProbe, tuned_declared: bool,
                deviation: dict | None, per_warp_model: dict[str, dict]) -> CheckResult:
     per = {}
     for name, warp in warps.items():
@@ -131,14 +131,14 @@ def _warps_row(warps, distances: dict[str, float], probe: _WarpProbe, tuned_decl
     if not moved:
         return CheckResult("warps", True, numbers, f"all {len(warps)} warp(s) are exactly at the identity (distance 0)",
                            f"distance {summary}")
-    dev = (f"; they move the model output by up to {_fmt(deviation.get('max_abs'))} "
-           f"({_fmt(deviation.get('max_rel'))} of its scale)") if deviation else ""
+    dev = (f"; they move the model output by up to {short_number(deviation.get('max_abs'))} "
+           f"({short_number(deviation.get('max_rel'))} of its scale)") if deviation else ""
     moved_text = ", ".join(f"{n!r} distance {distances[n]:.3g} (shifts its point by up to "
-                           f"{_fmt(per[n]['point_max_abs'])})" for n in moved)
+                           f"{short_number(per[n]['point_max_abs'])})" for n in moved)
     if not tuned_declared:
         return CheckResult(
             "warps", False, numbers,
             f"the manifest records no tuning, yet {moved_text}{dev}: a fresh splice must start at the exact identity "
             "(the head's final layer zero weight, identity bias); re-create it with 'splice insert'",
-            f"moved: {_names(moved)}")
+            f"moved: {listed_names(moved)}")
     return CheckResult("warps", True, numbers, f"tuned model: {moved_text}{dev}", f"distance {summary}")

@@ -14,32 +14,39 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .._io import file_sha256, state_dict_sha256
+from ..fileio import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, first_rows, flatten_outputs
 from ..copies import collector_paused, private_buffers
 from ..errors import SpliceError
 from ..exporting import check_opset
-from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
 from ..limits import check_fits, tensor_bytes
+from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
 from ..store import base_part, open_folder
 from ..surgery import warps_of
-from .gradients import _gradients, _gradients_row, _head_params, _onnx_row
+from .gradients import gradient_norms, gradients_row, onnx_row, warp_head_params
 from .probe import (
-    _check_batch,
-    _error_text,
-    _Laps,
-    _only_copy,
-    _read_images,
-    _reset_copy,
-    _resolve_dtype,
-    _run,
-    _Snapshot,
-    _WarpProbe,
+    Laps,
+    Snapshot,
+    WarpProbe,
+    check_batch,
+    error_text,
+    only_copy,
     probe_inputs,
+    read_images,
+    reset_copy,
+    resolve_dtype,
+    run_no_grad,
 )
-from .provenance import _provenance_row
+from .provenance import provenance_row
 from .report import CheckResult, VerifyReport, versions
-from .rows import _finite_row, _integrity_row, _merge_compares, _outputs_row, _shapes_row, _warps_row
+from .rows import (
+    finite_row,
+    integrity_row,
+    merge_compares,
+    outputs_row,
+    shapes_row,
+    warps_row,
+)
 
 __all__ = ["verify", "verify_models"]
 
@@ -59,8 +66,8 @@ class _Options:
 
     @classmethod
     def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol, trust_code=False) -> _Options:
-        dt = _resolve_dtype(dtype)
-        _check_batch(batch)
+        dt = resolve_dtype(dtype)
+        check_batch(batch)
         if onnx:
             check_opset(opset, exporter)
         return cls(batch, dt, bool(onnx), opset, exporter, seed, tol, bool(trust_code))
@@ -81,7 +88,7 @@ def _images_for(info: SpliceInfo, images) -> tuple[torch.Tensor, list[str]]:
     if info.extra_inputs:
         raise SpliceError(f"--images probes models with one input; this one takes {len(info.input_shapes)} "
                           "(the seeded probe covers every input): drop --images")
-    return _read_images(images, info.input_shape, info.normalisation)
+    return read_images(images, info.input_shape, info.normalisation)
 
 
 def _meta(*, folder, opts: _Options, info: SpliceInfo) -> dict:
@@ -111,19 +118,19 @@ def _image_rows(base, identity_model, images, opts: _Options, tuned: bool) -> Ch
     chunks = []
     for start in range(0, images.shape[0], opts.batch):
         chunk = images[start:start + opts.batch].to(opts.dtype)
-        chunks.append(compare_outputs(_run(base, chunk, "base model"),
-                                      _run(identity_model, chunk, "spliced model"), tol=opts.tol))
-    return _outputs_row("images", _merge_compares(chunks), tuned, f"{images.shape[0]} image(s) from --images")
+        chunks.append(compare_outputs(run_no_grad(base, chunk, "base model"),
+                                      run_no_grad(identity_model, chunk, "spliced model"), tol=opts.tol))
+    return outputs_row("images", merge_compares(chunks), tuned, f"{images.shape[0]} image(s) from --images")
 
 
 def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, tuned: bool, tuned_declared: bool,
                  distances: dict[str, float]) -> list[CheckResult]:
     """``outputs``, ``images`` (with images) and ``warps``, from a spliced forward pass that worked."""
     warps = warps_of(spliced)
-    identity_model = _reset_copy(spliced) if tuned else spliced
+    identity_model = reset_copy(spliced) if tuned else spliced
     with torch.no_grad():
         id_out = identity_model(*x) if tuned else out
-    rows = [_outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
+    rows = [outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
                          f"seeded N(0,1) probe of {opts.batch}")]
     if images is not None:
         rows.append(_image_rows(base, identity_model, images, opts, tuned))
@@ -133,35 +140,35 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     if tuned and len(moved) > 1:
         for name in moved:
             with torch.no_grad():
-                per_warp[name] = compare_outputs(detached(id_out), _only_copy(spliced, name)(*x), tol=math.inf)
-    rows.append(_warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
+                per_warp[name] = compare_outputs(detached(id_out), only_copy(spliced, name)(*x), tol=math.inf)
+    rows.append(warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
     return rows
 
 
 def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tuned: bool, tuned_declared: bool,
-                  distances, rows: list[CheckResult], lap: _Laps) -> _Forward:
+                  distances, rows: list[CheckResult], lap: Laps) -> _Forward:
     """Probe both models; append ``shapes``, ``outputs``, ``images`` and ``warps``."""
     warps = warps_of(spliced)
     points = {p.name: tuple(p.shape) for p in info.points if p.shape}
     x = probe_inputs(info.input_shapes, opts.batch, seed=opts.seed, dtype=opts.dtype)
-    ref = _run(base, x, "base model")
+    ref = run_no_grad(base, x, "base model")
     lap("base forward")
-    probe = _WarpProbe(warps)
+    probe = WarpProbe(warps)
     error = None
     result = _Forward(tuple(t.detach().requires_grad_(t.is_floating_point()) for t in x))
     try:
         with torch.enable_grad():
             result.out = spliced(*result.x)
     except Exception as exc:
-        error = _error_text(exc)
+        error = error_text(exc)
     finally:
         probe.remove()
     lap("spliced forward")
-    rows.append(_shapes_row(probe, warps, points, ref, result.out, error))
+    rows.append(shapes_row(probe, warps, points, ref, result.out, error))
     if result.out is None:
         rows.append(CheckResult("outputs", False, {}, f"the spliced model fails on the probe ({error})",
                                 "forward failed"))
-        rows.append(_warps_row(warps, distances, probe, tuned_declared, None, {}))
+        rows.append(warps_row(warps, distances, probe, tuned_declared, None, {}))
         return result
     rows.extend(_output_rows(base, spliced, x, ref, result.out, probe, images=images, opts=opts, tuned=tuned,
                              tuned_declared=tuned_declared, distances=distances))
@@ -191,14 +198,14 @@ def _in_dtype(base, spliced, dtype: torch.dtype, owned: bool):
 
 def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Options, *, images, image_files,
                 recorded_base: str | None, rows: list[CheckResult], meta: dict, owned: bool,
-                lap: _Laps) -> VerifyReport:
+                lap: Laps) -> VerifyReport:
     base_state = base_part(spliced.state_dict())
     meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
-    provenance = _provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
+    provenance = provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
                                  trust_code=opts.trust_code)
     lap("provenance")
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
-    snapshot = _Snapshot({"base": base, "spliced": spliced})
+    snapshot = Snapshot({"base": base, "spliced": spliced})
     # every forward runs on twins with their own buffers and modes: a model that
     # updates a buffer in eval mode (a call counter) is left as it was
     base, spliced = private_buffers(base).eval(), private_buffers(spliced).eval()
@@ -207,7 +214,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
     tuned_declared = info.tuning is not None
     tuned = tuned_declared or any(d > 0 for d in distances.values())
     meta["tuned"] = tuned
-    head_params = _head_params(warps)
+    head_params = warp_head_params(warps)
     flat_params = [p for parts in head_params.values() for ps in parts.values() for p in ps]
     grad_flags = {id(p): p.requires_grad for p in flat_params}
     try:
@@ -218,8 +225,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         lap("outputs")
         rows.append(provenance)
         if fwd.out is not None:
-            grads, gerr, input_grad = _gradients(fwd.out, head_params, opts.seed, fwd.x)
-            rows.append(_gradients_row(warps, grads, gerr, input_grad))
+            grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
+            rows.append(gradients_row(warps, grads, gerr, input_grad))
             lap("gradients")
             fwd.out = None  # free the autograd graph before exporting
         else:
@@ -227,7 +234,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
                                     "not run"))
         if opts.onnx:
             example = tuple(t[:1].detach() for t in fwd.x)
-            rows.append(_onnx_row(spliced, example, opset=opts.opset, exporter=opts.exporter,
+            rows.append(onnx_row(spliced, example, opset=opts.opset, exporter=opts.exporter,
                                   n_outputs=fwd.n_outputs, reference=fwd.first_sample))
             lap("onnx")
     finally:
@@ -254,7 +261,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
     a folder, files, or an already normalised ``(N, C, H, W)`` tensor. The
     folder-only checks (integrity, finite) are not run.
     """
-    lap = _Laps()
+    lap = Laps()
     info = _info_of(spliced, info)
     opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol,
                             trust_code=trust_code)
@@ -283,7 +290,7 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     >>> report.passed, report.failed                          # doctest: +SKIP
     (True, [])
     """
-    lap = _Laps()
+    lap = Laps()
     folder = Path(folder)
     opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol,
                             trust_code=trust_code)
@@ -298,12 +305,12 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME),
                            "weights_sha256_recorded": opened.recorded_sha256,
                            "source_sha256": info.source_weights_sha256, "weights_sha256": opened.actual_sha256})
-    rows = [_integrity_row(opened.weights_path, opened.recorded_sha256, opened.actual_sha256)]
+    rows = [integrity_row(opened.weights_path, opened.recorded_sha256, opened.actual_sha256)]
     if not rows[0].passed:
         meta["not_run"] = "the weights file cannot be trusted, so no other check ran"
         return VerifyReport(rows, meta)
     lap("integrity")
-    rows.append(_finite_row(opened.state, f"'{opened.weights_path}'"))
+    rows.append(finite_row(opened.state, f"'{opened.weights_path}'"))
     lap("finite")
     if not rows[-1].passed:
         meta["not_run"] = "the weights hold NaN/Inf values, so no other check ran"
