@@ -223,6 +223,22 @@ def test_lifted_constants_stay_out_of_the_state_dict():
     assert set(gm.state_dict()) == set(_ConstNet().state_dict())
 
 
+class _ConstReadsMode(_ConstNet):
+    """Reads ``self.training`` without changing its graph: the train-mode trace of the same root numbers its
+    lifted constant after the eval-mode trace's."""
+
+    def forward(self, x):
+        scale = 1.0 if self.training else 1.0
+        return super().forward(x) * scale
+
+
+def test_lifted_constants_do_not_make_the_two_modes_differ():
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", graph.TraceModeWarning)
+        gm = graph.trace(_ConstReadsMode())
+    assert [n.target for n in gm.graph.nodes if n.op == "get_attr"] == ["_tensor_constant0"]
+
+
 def test_lifted_constants_do_not_break_verify_or_export(tmp_path):
     # a folder whose traced graph lifts constants verifies and exports alike
     folder = save(insert(CONST, at="conv1"), tmp_path / "const")

@@ -216,8 +216,36 @@ class BufferView(Plain):
         return self.head(x.mean((2, 3)))
 
 
+class _Mixer(nn.Module):
+    """Reorders channels with views of two buffers it owns, one saved and one rebuilt in __init__ (as windowed
+    attention keeps its position index): the tracer lifts the views, and the graph never reads the buffers."""
+
+    def __init__(self):
+        super().__init__()
+        self.proj = nn.Conv2d(4, 4, 1)
+        self.register_buffer("order", torch.tensor([[3, 2], [1, 0]]))
+        self.register_buffer("again", torch.tensor([[1, 0], [3, 2]]), persistent=False)
+
+    def forward(self, x):
+        return self.proj(x[:, self.order.view(-1)][:, self.again.view(-1)])
+
+
+class InnerBufferView(Plain):
+    def __init__(self):
+        super().__init__()
+        self.mix = _Mixer()
+
+    def forward(self, x):
+        x = self.conv2(self.mix(torch.relu(self.bn(self.conv1(x)))))
+        return self.head(x.mean((2, 3)))
+
+
 def plain():
     return Plain()
+
+
+def inner_buffer_view():
+    return InnerBufferView()
 
 
 def buffer_view():
@@ -244,7 +272,7 @@ def builders(tmp_path_factory):
     return path
 
 
-@pytest.mark.parametrize("factory", ["plain", "buffer_view", "with_table", "computing"])
+@pytest.mark.parametrize("factory", ["plain", "buffer_view", "inner_buffer_view", "with_table", "computing"])
 def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_path, factory, monkeypatch):
     """Built empty and filled (plain), or built for real when that cannot hold (the other two)."""
     from splice import store
@@ -273,6 +301,8 @@ def test_load_equals_the_saved_model_whichever_way_it_is_built(builders, tmp_pat
     # plain is never built for real (no random init), nor is buffer_view (the view of a buffer its graph
     # lifts, on the meta device while the frame was traced, is taken again from the adopted buffer: no second
     # trace either); the other two are, once for load and once for load_base
+    # inner_buffer_view's buffers belong to a submodule the GraphModule copies only in part (it keeps them now:
+    # the view of one was taken again from a buffer it did not have); one of them is not saved, so it is built
     assert len(real_builds) == (0 if factory in ("plain", "buffer_view") else 2)
     assert len(retraced) == (0 if factory in ("plain", "buffer_view") else 1)
 

@@ -75,7 +75,7 @@ with the inputs the model gives it (:mod:`.scope`).
 Files
 -----
 ``leaves`` (the leaf registry), ``tracing`` (the fx tracer, train/eval
-comparison), ``shapes`` (meta-device propagation), ``cuts`` (dominators),
+comparison), ``lifted`` (constants the tracer lifts), ``shapes`` (meta-device propagation), ``cuts`` (dominators),
 ``naming`` (point names, lookup), ``entries`` (4-D activations between
 convs), ``recorded``, ``exported`` and ``fallback`` (the hooks views),
 ``scope`` (``within``), ``listing`` (:class:`Point`, :func:`points`).
@@ -86,9 +86,10 @@ from __future__ import annotations
 from . import leaves as _leaves
 from .fallback import TraceFallbackWarning
 from .leaves import leaves_added, register_leaf
+from .lifted import relink_lifted
 from .listing import Point, points, points_report, trace_points
 from .naming import find_point, point_names
-from .tracing import GraphWarning, TraceModeWarning, relink_lifted, trace
+from .tracing import GraphWarning, TraceModeWarning, trace
 
 __all__ = [
     "DEFAULT_LEAVES",

@@ -14,7 +14,6 @@ is traced (a fused BatchNorm counting batches) never changes the caller's model.
 
 from __future__ import annotations
 
-import operator
 import warnings
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
@@ -27,8 +26,9 @@ from torch import nn
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import LeafRule, class_path, is_torch_builtin
+from .lifted import adopt_lifted, keep_view_sources
 
-__all__ = ["GraphWarning", "TraceModeWarning", "trace", "relink_lifted"]
+__all__ = ["GraphWarning", "TraceModeWarning", "trace"]
 
 
 class GraphWarning(SpliceWarning):
@@ -180,9 +180,19 @@ def spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
 
 
 def _signature(graph: fx.Graph) -> list[tuple]:
-    name = operator.attrgetter("name")
+    """Each node's name, op, target and arguments; constants the tracer lifted are named by their order in the
+    graph, as a second trace of the same root numbers its constants after the first's."""
+    renamed: dict[str, str] = {}
+    constants = (n for n in graph.nodes if n.op == "get_attr" and n.target.startswith("_tensor_constant"))
+    for i, n in enumerate(constants):
+        renamed[n.name] = renamed[n.target] = f"<constant {i}>"
+
+    def name(node: fx.Node) -> str:
+        return renamed.get(node.name, node.name)
+
     return [
-        (n.name, n.op, n.target, fx.node.map_arg(n.args, name), fx.node.map_arg(n.kwargs, name))
+        (name(n), n.op, renamed.get(n.target, n.target) if isinstance(n.target, str) else n.target,
+         fx.node.map_arg(n.args, name), fx.node.map_arg(n.kwargs, name))
         for n in graph.nodes
     ]
 
@@ -386,61 +396,6 @@ def check_model(model: Any, what: str) -> None:
         raise GraphError(f"{what} needs a torch.nn.Module, got {type(model).__name__}; pass the model object")
 
 
-def _adopt_lifted(graph: fx.Graph, traced: nn.Module, work: nn.Module) -> list[str]:
-    """Copy the constants the tracer lifted onto ``traced`` (``_tensor_constant0``, ...) onto ``work``.
-
-    Returns the names of the lifted tensors: the GraphModule registers them as
-    buffers, and they must stay out of its state dict (every trace makes them
-    again, so a folder rebuilds them and its base part is the source's state).
-    """
-    lifted = []
-    for node in graph.nodes:
-        if node.op != "get_attr":
-            continue
-        owner_path, _, leaf = node.target.rpartition(".")
-        try:
-            owner = work.get_submodule(owner_path) if owner_path else work
-        except AttributeError:
-            continue
-        if hasattr(owner, leaf):
-            continue
-        value = getattr(traced.get_submodule(owner_path) if owner_path else traced, leaf)
-        setattr(owner, leaf, value)
-        if isinstance(value, torch.Tensor) and not owner_path:
-            lifted.append(leaf)
-    return lifted
-
-
-_VIEWS = "_splice_lifted_views"  # on a GraphModule: {constant: (buffer, size, stride, offset in the buffer)}
-
-
-def _buffer_views(twin: nn.Module, constants: dict[str, Any]) -> dict[str, tuple]:
-    """The lifted constants that are views of one of ``twin``'s buffers (code that reads ``self.index.view(-1)``
-    hands the tracer a real tensor), each with where it sits in that buffer."""
-    owners = {id(b): (name, b) for name, b in twin.named_buffers()}
-    views = {}
-    for name, c in constants.items():
-        base = c._base if isinstance(c, torch.Tensor) else None
-        found = owners.get(id(base)) if base is not None else None
-        if found is not None and found[1] is base:
-            views[name] = (found[0], tuple(c.shape), tuple(c.stride()), c.storage_offset() - base.storage_offset())
-    return views
-
-
-def relink_lifted(gm: nn.Module) -> None:
-    """Make each lifted constant that was a view of a buffer a view of that buffer again.
-
-    A graph traced on the meta device lifts such a view as a meta tensor; once
-    the buffers hold real tensors (a folder's weights adopted), the view is
-    taken again from them, with the same size, stride and offset, so it holds
-    what a trace of the real model would have lifted.
-    """
-    for name, (buffer, size, stride, offset) in getattr(gm, _VIEWS, {}).items():
-        source = gm.get_buffer(buffer)
-        if not source.is_meta and gm._buffers.get(name) is not None and gm._buffers[name].is_meta:
-            gm._buffers[name] = source.as_strided(size, stride, source.storage_offset() + offset)
-
-
 def trace(model: nn.Module, *, leaves: Iterable[Any] = (),
           edit: Callable[[fx.Graph, nn.Module], None] | None = None) -> fx.GraphModule:
     """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
@@ -487,14 +442,12 @@ def trace_copy(model: nn.Module, rule: LeafRule, edit: Callable[[fx.Graph, nn.Mo
     twin = private_buffers(work)
     graph = trace_owned(twin, rule)
     _unspy_meta(graph)
-    lifted = _adopt_lifted(graph, twin, work)
+    lifted = adopt_lifted(graph, twin, work)
     if edit is not None:
         edit(graph, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     for name in lifted:
         gm._non_persistent_buffers_set.add(name)
-    views = _buffer_views(twin, {name: getattr(gm, name) for name in lifted})
-    if views:
-        gm.__dict__[_VIEWS] = views
+    keep_view_sources(gm, work, twin, lifted)
     gm.training = model.training  # submodules keep their own (copied) flags
     return gm, twin
