@@ -143,9 +143,10 @@ def _cmd_points(args) -> int:
                       ("+MACs", "right"), ("recommended", "center")):
         table.add_column(col, justify=just)  # type: ignore[arg-type]
     for p in pts:
-        stride = p.stride if isinstance(p.stride, int) else "x".join(map(str, p.stride))
+        # an int, a float where the input size is not a multiple of the map's, or (sy, sx)
+        stride = "x".join(map(str, p.stride)) if isinstance(p.stride, tuple) else str(p.stride)
         table.add_row(
-            p.name, p.module or "-", "x".join(map(str, p.shape)), str(stride),
+            p.name, p.module or "-", "x".join(map(str, p.shape)), stride,
             "yes" if p.cut else "no", (f"yes ({p.join})" if p.in_branch else "no"),
             f"{p.warp_params:,}", f"{p.warp_macs:,}", "*" if p.recommended else "",
         )

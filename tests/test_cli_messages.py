@@ -69,6 +69,36 @@ def test_points_tells_the_user_that_tracing_fell_back(tmp_path, capsys):
     assert all(line.startswith("warning:") for line in lines), err
 
 
+_ODD_STRIDES = """
+import torch
+from torch import nn
+
+
+class OddStrides(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(1, 4, 3, stride=3)             # 10x10 -> 3x3: stride 3.3333 both ways
+        self.b = nn.Conv2d(4, 4, (1, 2), stride=(1, 2))   # 3x3 -> 3x1: (3.3333, 10)
+        self.c = nn.Conv2d(4, 4, 1)
+
+    def forward(self, x):
+        return self.c(self.b(torch.relu(self.a(x)))).mean((2, 3))
+
+
+def build():
+    return OddStrides()
+"""
+
+
+def test_points_table_shows_strides_that_are_not_whole_numbers(tmp_path, capsys):
+    # an input size that the map's size does not divide gives a float stride (10 / 3), per axis a tuple
+    factory = tmp_path / "odd.py"
+    factory.write_text(_ODD_STRIDES)
+    assert main(["points", f"{factory}:build", "--input-shape", "1x10x10", "--all"]) == 0
+    out = capsys.readouterr().out
+    assert "3.3333" in out and "3.3333x10" in out, out
+
+
 def test_unknown_point_suggests_the_nearest_names_in_graph_order():
     # difflib alone ranks 'layer4_1_relu' first for 'layer1_relu' (alphabetical tie-break)
     with pytest.raises(PointError) as caught:
