@@ -383,3 +383,35 @@ def test_failed_export_keeps_stdout_clean(capfd):
         export_onnx_bytes(Unexportable(), torch.randn(1, 2, 5, 5))
     out, _ = capfd.readouterr()
     assert "Torch IR graph" not in out and out == ""
+
+
+class _WithOptions(torch.nn.Module):
+    """A forward with options after its input, as attention models have: ``is_causal`` must reach
+    scaled_dot_product_attention as a bool."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = torch.nn.Conv2d(3, 8, 3, padding=1)
+        self.head = torch.nn.Linear(8, 4)
+
+    def forward(self, x, attn_mask=None, is_causal: bool = False, scale: float = 1.0):
+        tokens = self.conv(x).flatten(2).transpose(1, 2)  # (N, HW, 8)
+        mixed = torch.nn.functional.scaled_dot_product_attention(tokens, tokens, tokens, attn_mask=attn_mask,
+                                                                 is_causal=is_causal)
+        return self.head(mixed.mean(1)) * scale
+
+
+def test_onnx_export_of_a_forward_with_options_runs_with_their_defaults(tmp_path):
+    # the TorchScript exporter passes unset options as graph inputs (is_causal=False arrived as a tensor and
+    # scaled_dot_product_attention refused it); the export runs the model with its own defaults instead
+    model = _WithOptions().eval()
+    x = torch.randn(2, 3, 6, 6)
+    data = export_onnx_bytes(model, x[:1], dynamic_batch=True)
+    path = tmp_path / "options.onnx"
+    path.write_bytes(data)
+    with torch.no_grad():
+        ref = model(x)
+    assert _rel(ref, _ort_run(path, x)[0]) <= 1e-5  # onnxruntime is the reference
+    names = {init.name for init in __import__("onnx").load(str(path)).graph.initializer}
+    assert {"conv.weight", "head.weight"} <= names  # the model's own names, not a wrapper's
+    assert model.forward.__func__ is _WithOptions.forward  # the caller's model keeps its forward

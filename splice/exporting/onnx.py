@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import copy
 import io
 import os
 import warnings
@@ -135,6 +136,25 @@ def _stdout_to_nowhere():
         os.dup2(saved, fd)
         os.close(saved)
 
+def inputs_only(model: nn.Module) -> nn.Module:
+    """A shallow copy of ``model`` (the same modules, parameters and names) whose forward takes its inputs only.
+
+    The TorchScript exporter passes the default of every forward parameter it was not given as one more
+    graph input, and traced as an input a default such as ``is_causal=False`` arrives as a tensor, which
+    the function that needs a bool refuses (timm's vision transformers take ``attn_mask`` and
+    ``is_causal``; a Hugging Face model takes a dozen such options). The copy's forward takes ``*inputs``,
+    so the model runs with its own defaults, as it does when called.
+    """
+    view = copy.copy(model)
+    forward = type(model).forward
+
+    def inputs_only_forward(*inputs):
+        return forward(view, *inputs)
+
+    view.__dict__["forward"] = inputs_only_forward
+    return view
+
+
 def torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[str], *, opset: int,
                  dynamic_batch: bool, fold_constants: bool, n_images: int = 1) -> bytes:
     buf = io.BytesIO()
@@ -176,7 +196,7 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
             return torchscript(target, (*xs, *target.values), [*inputs, *target.names], names, opset=opset,
                                 dynamic_batch=dynamic_batch, fold_constants=fold_constants, n_images=len(xs))
         if exporter == "torchscript":
-            return torchscript(model, xs, inputs, names, opset=opset, dynamic_batch=dynamic_batch,
+            return torchscript(inputs_only(model), xs, inputs, names, opset=opset, dynamic_batch=dynamic_batch,
                                 fold_constants=fold_constants, n_images=len(xs))
         batch = torch.export.Dim("batch", min=1, max=4096)
         dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
