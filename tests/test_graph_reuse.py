@@ -314,3 +314,26 @@ def test_verify_runs_with_the_collector_paused(monkeypatch, tmp_path):
     folder = splice.save(splice.insert("splice.models:tray_net", at="input"), tmp_path / "tray")
     assert splice.verify(folder).passed
     assert seen == [False] and gc.isenabled()
+
+
+def test_a_leaf_stand_in_has_meta_tensors_ties_kept_and_leaves_the_module_as_it_was():
+    from splice.graph.shapes import stand_in
+
+    block = nn.Sequential(nn.Conv2d(3, 4, 3), nn.BatchNorm2d(4), nn.Conv2d(4, 4, 1))
+    block[2].weight = nn.Parameter(torch.randn(4, 4, 1, 1))
+    tied = nn.Linear(4, 4)
+    block.add_module("again", tied)
+    block.add_module("twice", tied)  # the same module twice, as a shared head is
+    block.train()
+    before = {k: v.clone() for k, v in block.state_dict().items()}
+    memo: dict = {}
+    meta = stand_in(block, memo)
+    assert all(t.is_meta for t in (*meta.parameters(), *meta.buffers()))
+    assert all(isinstance(p, nn.Parameter) for p in meta.parameters())
+    assert not meta.training and not meta[1].training and block.training and block[1].training
+    assert meta.again.weight is meta.twice.weight  # one meta tensor for one weight
+    assert stand_in(block, memo)[0].weight is meta[0].weight  # and across stand-ins made with the same memo
+    out = meta[:3](torch.empty(1, 3, 8, 8, device="meta"))
+    assert out.shape == (1, 4, 6, 6) and out.is_meta
+    assert all(torch.equal(before[k], v) for k, v in block.state_dict().items())
+    assert not any(t.is_meta for t in (*block.parameters(), *block.buffers()))

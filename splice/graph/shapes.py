@@ -53,6 +53,32 @@ def meta_module(mod: nn.Module) -> nn.Module:
     return copied
 
 
+def stand_in(mod: nn.Module, memo: dict[int, torch.Tensor]) -> nn.Module:
+    """An eval-mode stand-in for ``mod`` whose parameters and buffers are meta tensors, for a module of a tree
+    splice owns (a twin): only the tree's mappings are new, its other attributes are the twin's, not copies.
+
+    Cheaper than :func:`meta_module` by the deep copy of every attribute (a fused norm-and-activation leaf: 30
+    microseconds, not 170); ``memo`` maps tensors to their meta twins, so weights tied across leaves stay tied.
+    """
+    c = object.__new__(type(mod))
+    c.__dict__.update(mod.__dict__)
+    c.__dict__["training"] = False
+    c.__dict__["_parameters"] = {k: _meta_twin(v, memo) for k, v in mod._parameters.items()}
+    c.__dict__["_buffers"] = {k: _meta_twin(v, memo) for k, v in mod._buffers.items()}
+    c.__dict__["_modules"] = {k: (None if v is None else stand_in(v, memo)) for k, v in mod._modules.items()}
+    return c
+
+
+def _meta_twin(t: torch.Tensor | None, memo: dict[int, torch.Tensor]) -> torch.Tensor | None:
+    if t is None or isinstance(t, (nn.parameter.UninitializedParameter, nn.parameter.UninitializedBuffer)):
+        return t
+    found = memo.get(id(t))
+    if found is None:
+        meta = meta_empty(t.shape, t.dtype)
+        found = memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
+    return found
+
+
 def meta_empty(shape, dtype: torch.dtype) -> torch.Tensor:
     # torch.empty is a C++ call on meta; torch.empty_like goes through a Python reference and costs ten times more
     return torch.empty(shape, dtype=dtype, device=META)
@@ -209,10 +235,11 @@ def run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
     return fx.node.map_aggregate(out, to_meta)
 
 
-def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: dict[str, nn.Module]) -> Any:
+def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: dict[str, nn.Module],
+                memo: dict[int, torch.Tensor]) -> Any:
     meta_mod = cache.get(target)
     if meta_mod is None:
-        meta_mod = cache[target] = meta_module(mod)
+        meta_mod = cache[target] = stand_in(mod, memo)
     try:
         with ShapeRules():
             return meta_mod(*args, **kwargs)
@@ -232,9 +259,11 @@ def propagate(
 ) -> dict[fx.Node, Any]:
     """Run ``graph`` on batch-1 meta tensors (one per input shape); return every node's (meta) value.
 
-    ``modules`` maps qualnames to the modules of ``root``.
+    ``modules`` maps qualnames to the modules of ``root``, a tree splice owns (a twin: leaves run as
+    :func:`stand_in` copies that share its Python state).
     """
     meta_modules: dict[str, nn.Module] = {}
+    memo: dict[int, torch.Tensor] = {}
     values: dict[fx.Node, Any] = {}
     load = values.__getitem__
     given = list(input_shapes)
@@ -264,7 +293,7 @@ def propagate(
                         mod = modules[node.target]
                         value = _module_rule(mod, args, kwargs)
                         if value is None:
-                            value = _run_module(mod, node.target, args, kwargs, meta_modules)
+                            value = _run_module(mod, node.target, args, kwargs, meta_modules, memo)
                     else:
                         rules = _FUNCTION_RULES if op == "call_function" else _METHOD_RULES
                         rule = rules.get(node.target)
