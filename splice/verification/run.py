@@ -8,6 +8,7 @@ import datetime as _dt
 import math
 import os
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -200,10 +201,11 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
                 recorded_base: str | None, rows: list[CheckResult], meta: dict, owned: bool,
                 lap: Laps) -> VerifyReport:
     base_state = base_part(spliced.state_dict())
-    meta["hashes"]["base_sha256"] = state_dict_sha256(base_state)
-    provenance = provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
-                                 trust_code=opts.trust_code)
-    lap("provenance")
+    # hashing releases the GIL: the base part is hashed on a second thread while the probes run (the checks
+    # only read the weights, and every forward runs on twins that own their buffers)
+    hashing = ThreadPoolExecutor(max_workers=1)
+    base_hash = hashing.submit(state_dict_sha256, base_state)
+    hashing.shutdown(wait=False)
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
     snapshot = Snapshot({"base": base, "spliced": spliced})
     # every forward runs on twins with their own buffers and modes: a model that
@@ -223,7 +225,10 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         fwd = _forward_rows(base, spliced, info, opts, images=images, tuned=tuned, tuned_declared=tuned_declared,
                             distances=distances, rows=rows, lap=lap)
         lap("outputs")
-        rows.append(provenance)
+        meta["hashes"]["base_sha256"] = base_hash.result()
+        rows.append(provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
+                                   trust_code=opts.trust_code))
+        lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
             rows.append(gradients_row(warps, grads, gerr, input_grad))
