@@ -157,6 +157,43 @@ def test_a_seed_fixes_the_random_init_of_a_model_built_from_a_spec(tmp_path):
     assert trained("c", 1) != first
 
 
+def test_a_cpu_run_is_deterministic_without_the_nan_fill_and_restores_the_callers_settings(tmp_path, monkeypatch):
+    """On the CPU a run uses deterministic algorithms but does not fill fresh memory with NaN (a speed-up,
+    see splice.training.tune); its weights are bit-identical to a run that fills, and the caller's three
+    settings (mode, warn_only, fill) come back afterwards."""
+    import importlib
+
+    tune_module = importlib.import_module("splice.training.tune")
+    real_train, seen = tune_module.train, []
+
+    def spying(fill):
+        def train(run):
+            if fill is not None:
+                torch.utils.deterministic.fill_uninitialized_memory = fill
+            fills = torch.utils.deterministic.fill_uninitialized_memory
+            seen.append((torch.are_deterministic_algorithms_enabled(), fills))
+            return real_train(run)
+        return train
+
+    def trained(name, fill):
+        monkeypatch.setattr(tune_module, "train", spying(fill))
+        tune_keywords(SPEC, kwargs=KW, input_shape=SHAPE, recipe=_recipe("baseline", epochs=1), data="digits",
+                      out=tmp_path / name, **QUIET)
+        return state_dict_sha256(splice.load(tmp_path / name / "last").state_dict())
+
+    before = (torch.are_deterministic_algorithms_enabled(), torch.is_deterministic_algorithms_warn_only_enabled(),
+              torch.utils.deterministic.fill_uninitialized_memory)
+    torch.use_deterministic_algorithms(True, warn_only=True)  # the caller's own choice, kept through the run
+    try:
+        assert trained("fast", None) == trained("filled", True)
+        assert seen == [(True, False), (True, True)]
+        assert torch.is_deterministic_algorithms_warn_only_enabled()
+        assert torch.utils.deterministic.fill_uninitialized_memory
+    finally:
+        torch.use_deterministic_algorithms(before[0], warn_only=before[1])
+        torch.utils.deterministic.fill_uninitialized_memory = before[2]
+
+
 def test_warp_recipe_on_a_plain_model_explains_insert(tmp_path, base_run):
     with pytest.raises(RecipeError, match=r"trains warps, but .* has none; splice it first, e.g. 'splice insert"):
         tune_keywords(str(base_run[0] / "best"), recipe="warp-only", data="digits", out=tmp_path / "a", **QUIET)

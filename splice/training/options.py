@@ -48,7 +48,8 @@ class RunOptions:
     ``quiet``: plain lines instead of progress bars; ``progress=False`` prints
     nothing. ``workers``: data-loader processes for image folders.
     ``deterministic``: ``torch.use_deterministic_algorithms`` for the run
-    (``None``: on for the CPU). ``stop_after_steps`` stops like Ctrl-C after
+    (``None``: on for the CPU), without filling uninitialised memory with NaN
+    (see ``splice.training.tune``). ``stop_after_steps`` stops like Ctrl-C after
     that many optimiser steps (tests and debugging);
     ``stop_after_pretrain_steps`` does the same during warp-head pre-training.
     """
