@@ -11,7 +11,7 @@ import torch
 
 import splice
 from splice.compare import flatten_outputs
-from splice.errors import SourceError, WeightsError
+from splice.errors import SourceError, SpliceWarning, WeightsError
 from splice.sources import build_model, is_hf_folder, load_source, read_hf_folder
 
 pytest.importorskip("timm")  # both are in the test extra
@@ -112,6 +112,50 @@ def test_pickle_free_bin_and_sharded_folders_load(tmp_path, how):
     src = load_source(str(tmp_path / how), input_shape=(3, 32, 32))
     x = torch.randn(1, 3, 32, 32)
     assert torch.equal(src.model(x).logits, model(x).logits)
+
+
+def _hf_vit():
+    import transformers
+
+    torch.manual_seed(0)
+    config = transformers.ViTConfig(hidden_size=32, num_hidden_layers=1, num_attention_heads=2,
+                                    intermediate_size=64, image_size=32, patch_size=8, num_labels=4)
+    return transformers.ViTForImageClassification(config).eval()
+
+
+def test_a_folder_whose_checkpoint_names_are_not_the_models_loads_as_saved(tmp_path):
+    # save_pretrained writes the checkpoint's names, which transformers renames on load (a ViT's
+    # attention.attention.key is attention.k_proj in transformers 5): the folder is read by transformers
+    from safetensors import safe_open
+
+    model = _hf_vit()
+    model.save_pretrained(tmp_path / "vit")
+    with safe_open(str(tmp_path / "vit" / "model.safetensors"), "pt") as f:
+        on_disk = set(f.keys())
+    src = load_source(str(tmp_path / "vit"), input_shape=(3, 32, 32))
+    want, got = model.state_dict(), src.model.state_dict()
+    assert set(want) == set(got) and all(torch.equal(want[k], got[k]) for k in want)
+    x = torch.randn(2, 3, 32, 32)
+    with torch.no_grad():
+        assert torch.equal(src.model(x).logits, model(x).logits)
+    assert not src.random_init and src.weights_path.endswith("model.safetensors")
+    # with transformers 5.24 the folder holds vit.encoder.layer.0.attention.attention.key.weight, and so on
+    assert on_disk == set(want) or on_disk - set(want)
+
+
+def test_a_folder_with_a_tensor_the_model_lacks_is_refused_by_name(tmp_path):
+    from safetensors.torch import load_file, save_file
+
+    _hf_vit().save_pretrained(tmp_path / "vit")
+    path = tmp_path / "vit" / "model.safetensors"
+    state = load_file(str(path))
+    save_file({**state, "extra.weight": torch.zeros(3)}, str(path), metadata={"format": "pt"})
+    with pytest.raises(WeightsError, match=r"holds 1 tensor\(s\) ViTForImageClassification does not have "
+                                           r"\(extra.weight\); pass --allow-partial"):
+        load_source(str(tmp_path / "vit"), input_shape=(3, 32, 32))
+    with pytest.warns(SpliceWarning, match=r"1 tensor\(s\) of .* not used \(extra.weight\)"):
+        src = load_source(str(tmp_path / "vit"), input_shape=(3, 32, 32), allow_partial=True)
+    assert torch.equal(src.model.state_dict()["classifier.weight"], state["classifier.weight"])
 
 
 def test_a_folder_without_weights_is_refused(tmp_path):

@@ -22,14 +22,16 @@ Nothing is downloaded: ``use_pretrained_backbone`` is forced off.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
-from ..errors import SourceError
 
-__all__ = ["build_transformers", "transformers_lists", "is_hf_folder", "read_hf_folder", "HF_WEIGHT_FILES", "HFFolder"]
+__all__ = ["build_transformers", "transformers_lists", "is_hf_folder", "read_hf_folder", "read_hf_weights",
+           "HF_WEIGHT_FILES", "HFFolder"]
 
 HF_WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                    "pytorch_model.bin.index.json")
@@ -202,3 +204,40 @@ def read_hf_folder(path) -> HFFolder:
     channels = config.get("num_channels", 3)
     shape = (channels, *hw) if hw and isinstance(channels, int) else None
     return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm)
+
+
+def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict:
+    """The weights of a ``save_pretrained`` folder in ``model``'s own names, read by transformers.
+
+    A folder holds its checkpoint's names, which are not always the model's: transformers 5 renames a ViT's
+    ``attention.attention.key`` to ``attention.k_proj`` (and many more) when it loads, and back when it saves.
+    So ``type(model).from_pretrained`` reads the folder (the class already built, ``local_files_only``, no code
+    from the folder: safetensors, or ``torch.load(weights_only=True)``) and the state it loaded is returned,
+    without the tensors it reports missing (left at their initial values). Tensors the folder has that the
+    model does not, or of another shape, are refused by name unless ``allow_partial``.
+    """
+    transformers = _transformers()
+    verbosity = transformers.logging.get_verbosity()
+    transformers.logging.set_verbosity_error()  # its own report of missing keys is ours to make
+    try:
+        loaded, info = type(model).from_pretrained(
+            str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
+            output_loading_info=True, ignore_mismatched_sizes=allow_partial)
+    except Exception as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
+                           f"({type(exc).__name__}: {first[:300]}); re-save the model with save_pretrained, "
+                           "or pass --allow-partial to load only the tensors that fit") from exc
+    finally:
+        transformers.logging.set_verbosity(verbosity)
+    unexpected = sorted(info.get("unexpected_keys") or ())
+    shown = ", ".join(unexpected[:6]) + (f" and {len(unexpected) - 6} more" if len(unexpected) > 6 else "")
+    if unexpected and not allow_partial:
+        raise WeightsError(f"'{folder}' holds {len(unexpected)} tensor(s) {type(model).__name__} does not have "
+                           f"({shown}); pass --allow-partial (allow_partial=True) to load only the tensors that fit")
+    if unexpected:
+        warnings.warn(f"partial load: {len(unexpected)} tensor(s) of '{folder}' not used ({shown})", SpliceWarning,
+                      stacklevel=3)
+    left_out = set(info.get("missing_keys") or ()) | {m[0] if isinstance(m, (tuple, list)) else m
+                                                       for m in info.get("mismatched_keys") or ()}
+    return {k: v for k, v in loaded.state_dict().items() if k not in left_out}

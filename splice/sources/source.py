@@ -10,10 +10,10 @@ from pathlib import Path
 
 from torch import nn
 
-from ..fileio import state_dict_sha256
 from ..errors import RandomWeightsWarning, SourceError
+from ..fileio import state_dict_sha256
 from .builders import build_model
-from .huggingface import is_hf_folder, read_hf_folder
+from .huggingface import is_hf_folder, read_hf_folder, read_hf_weights
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import check_spec
 from .weights import check_file, check_finite, load_weights_, read_weights, torch_load
@@ -153,15 +153,25 @@ def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
 
 def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, trust_pickle: bool, leaves,
                     origin, trust_code: bool, default_input_shape) -> Source:
-    """A ``save_pretrained`` folder: built from its config, its own weights file loaded (or ``weights``)."""
+    """A ``save_pretrained`` folder: built from its config, its own weights read by transformers (which knows
+    how the checkpoint's names map to the model's), or ``weights`` loaded as any weights file is."""
     hf = read_hf_folder(path)
+    own = weights is None
     weights = weights if weights is not None else hf.weights
     if weights is None:
         raise SourceError(f"'{path}' holds a config.json but no weights (model.safetensors, pytorch_model.bin or "
                           "a shard index); re-save the model with save_pretrained, or pass --weights FILE")
-    src = load_source(hf.spec, weights=weights, kwargs=hf.kwargs, input_shape=shapes or hf.input_shape,
-                      allow_partial=allow_partial, trust_pickle=trust_pickle, leaves=leaves, warn_random=False,
-                      origin=origin, trust_code=trust_code, default_input_shape=default_input_shape)
+    src = load_source(hf.spec, weights=None if own else weights, kwargs=hf.kwargs,
+                      input_shape=shapes or hf.input_shape, allow_partial=allow_partial, trust_pickle=trust_pickle,
+                      leaves=leaves, warn_random=False, origin=origin, trust_code=trust_code,
+                      default_input_shape=default_input_shape)
+    if own:
+        state = read_hf_weights(path, src.model, allow_partial=allow_partial)
+        check_finite(state, f"weights '{weights}'")
+        load_weights_(src.model, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=hf.spec)
+        src.model.eval()
+        src.weights_path, src.random_init = str(weights), False
+        src.weights_sha256 = state_dict_sha256(src.model.state_dict())
     if hf.normalisation is not None:
         src.normalisation, src.declares_normalisation = hf.normalisation, True
     return src
