@@ -588,3 +588,41 @@ def test_cli_exit_codes(tray_folder, tmp_path, capsys):
     assert "does not exist" in capsys.readouterr().err
     assert main(["verify", str(tray_folder), "--onnx", "--opset", "11"]) == 2
     assert "GridSample" in capsys.readouterr().err
+
+
+class _CachedBias(torch.nn.Module):
+    """Indexes a bias table once in eval mode and keeps the result, as attention with relative position biases
+    does: a forward with gradients leaves a cached tensor that requires grad. Its check on a size keeps fx
+    out (the warps go in by hooks, and the model's own forward runs)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = torch.nn.Conv2d(3, 4, 3, padding=1)
+        self.table = torch.nn.Parameter(torch.randn(6))
+        self.register_buffer("index", torch.tensor([0, 2, 4, 5]))
+        self.cache: dict = {}
+        self.head = torch.nn.Linear(4, 3)
+
+    def forward(self, x):
+        if self.training:
+            bias = self.table[self.index]
+        else:
+            if "bias" not in self.cache:
+                self.cache["bias"] = self.table[self.index]
+            bias = self.cache["bias"]
+        y = self.conv(x) + bias.view(1, -1, 1, 1)
+        if y.shape[-1] % 2 == 0:  # Python on a size: torch.fx cannot trace it, the meta device can
+            y = y * 1.0
+        return self.head(y.mean((2, 3)))
+
+
+def test_the_onnx_check_runs_on_a_model_no_probe_has_run():
+    # the gradient check's forward filled the twin's cache with a tensor that requires grad; exported from
+    # that twin, the TorchScript exporter refused it as a constant
+    model = _CachedBias().eval()
+    with pytest.warns(splice.graph.TraceFallbackWarning):
+        spliced = insert(model, at="recommended", input_shape=(3, 8, 8))
+    report = verify_models(model, spliced, onnx=True)
+    assert report["onnx"].passed, report["onnx"].detail
+    assert report.passed, report.failed
+    assert model.cache == {}  # and the caller's model still has none

@@ -210,6 +210,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
     snapshot = Snapshot({"base": base, "spliced": spliced})
     # every forward runs on twins with their own buffers and modes: a model that
     # updates a buffer in eval mode (a call counter) is left as it was
+    unrun = spliced  # the ONNX check starts from a twin of this one, which no probe has run
     base, spliced = private_buffers(base).eval(), private_buffers(spliced).eval()
     warps = warps_of(spliced)
     distances = {name: float(w.identity_distance()) for name, w in warps.items()}
@@ -239,7 +240,9 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
                                     "not run"))
         if opts.onnx:
             example = tuple(t[:1].detach() for t in fwd.x)
-            rows.append(onnx_row(spliced, example, opset=opts.opset, exporter=opts.exporter,
+            # a fresh twin: a forward that caches tensors derived from parameters (attention biases indexed once
+            # in eval mode) left them requiring grad after the gradient check, and the exporter refuses those
+            rows.append(onnx_row(private_buffers(unrun).eval(), example, opset=opts.opset, exporter=opts.exporter,
                                   n_outputs=fwd.n_outputs, reference=fwd.first_sample))
             lap("onnx")
     finally:
