@@ -16,7 +16,7 @@ from pathlib import Path
 
 import torch
 
-__all__ = ["ZOO", "ZooModel", "run_zoo_model", "forward_seconds"]
+__all__ = ["ZOO", "HF_KINDS", "ZooModel", "run_zoo_model", "forward_seconds"]
 
 
 def calibrate_(model, input_shapes, *, passes: int = 2, seed: int = 0):
@@ -46,15 +46,37 @@ def calibrate_(model, input_shapes, *, passes: int = 2, seed: int = 0):
     return model.eval()
 
 
+# small configurations of the Hugging Face models the zoo and the wider sweep build (kind: config class, model
+# class, config arguments); sizes are the library's defaults unless a test needs a smaller model
+_TINY_VIT = {"hidden_size": 64, "num_hidden_layers": 2, "num_attention_heads": 2, "intermediate_size": 128,
+             "image_size": 64, "patch_size": 8}
+HF_KINDS = {
+    "resnet": ("ResNetConfig", "ResNetForImageClassification", {}),
+    "convnext": ("ConvNextConfig", "ConvNextForImageClassification", {}),
+    "mobilenet_v2": ("MobileNetV2Config", "MobileNetV2ForImageClassification", {}),
+    "vit": ("ViTConfig", "ViTForImageClassification", _TINY_VIT),
+    "swin": ("SwinConfig", "SwinForImageClassification",
+             {"embed_dim": 24, "depths": [1, 1], "num_heads": [2, 2], "image_size": 64, "window_size": 4}),
+    "segformer": ("SegformerConfig", "SegformerForSemanticSegmentation",
+                  {"hidden_sizes": [16, 32, 48, 64], "decoder_hidden_size": 32}),
+    "regnet": ("RegNetConfig", "RegNetForImageClassification", {}),
+    "efficientnet": ("EfficientNetConfig", "EfficientNetForImageClassification", {"image_size": 64}),
+    "mobilevit": ("MobileViTConfig", "MobileViTForImageClassification", {"image_size": 64}),
+    "convnextv2": ("ConvNextV2Config", "ConvNextV2ForImageClassification", {}),
+    "beit": ("BeitConfig", "BeitForImageClassification", _TINY_VIT),
+    "dinov2": ("Dinov2Config", "Dinov2ForImageClassification", _TINY_VIT),
+    "levit": ("LevitConfig", "LevitForImageClassification", {"image_size": 224}),
+    "poolformer": ("PoolFormerConfig", "PoolFormerForImageClassification", {}),
+    "cvt": ("CvtConfig", "CvtForImageClassification", {}),
+    "bit": ("BitConfig", "BitForImageClassification", {}),
+}
+
+
 def _hf_model(kind: str):
     import transformers
 
-    config_cls, model_cls = {
-        "resnet": ("ResNetConfig", "ResNetForImageClassification"),
-        "convnext": ("ConvNextConfig", "ConvNextForImageClassification"),
-        "mobilenet_v2": ("MobileNetV2Config", "MobileNetV2ForImageClassification"),
-    }[kind]
-    return getattr(transformers, model_cls)(getattr(transformers, config_cls)(num_labels=10))
+    config_cls, model_cls, kwargs = HF_KINDS[kind]
+    return getattr(transformers, model_cls)(getattr(transformers, config_cls)(num_labels=10, **kwargs))
 
 
 @dataclass(frozen=True)
