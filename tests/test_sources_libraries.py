@@ -123,7 +123,7 @@ def _hf_vit():
     return transformers.ViTForImageClassification(config).eval()
 
 
-def test_a_folder_whose_checkpoint_names_are_not_the_models_loads_as_saved(tmp_path):
+def test_a_folder_whose_checkpoint_names_are_not_the_models_loads_as_saved(tmp_path, capsys):
     # save_pretrained writes the checkpoint's names, which transformers renames on load (a ViT's
     # attention.attention.key is attention.k_proj in transformers 5): the folder is read by transformers
     from safetensors import safe_open
@@ -132,7 +132,12 @@ def test_a_folder_whose_checkpoint_names_are_not_the_models_loads_as_saved(tmp_p
     model.save_pretrained(tmp_path / "vit")
     with safe_open(str(tmp_path / "vit" / "model.safetensors"), "pt") as f:
         on_disk = set(f.keys())
+    import transformers
+
+    capsys.readouterr()
     src = load_source(str(tmp_path / "vit"), input_shape=(3, 32, 32))
+    assert "Loading weights" not in capsys.readouterr().err  # transformers' progress bar stays off the terminal
+    assert transformers.logging.is_progress_bar_enabled()  # and is on again for the caller
     want, got = model.state_dict(), src.model.state_dict()
     assert set(want) == set(got) and all(torch.equal(want[k], got[k]) for k in want)
     x = torch.randn(2, 3, 32, 32)

@@ -217,8 +217,9 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
     model does not, or of another shape, are refused by name unless ``allow_partial``.
     """
     transformers = _transformers()
-    verbosity = transformers.logging.get_verbosity()
+    verbosity, bars = transformers.logging.get_verbosity(), transformers.logging.is_progress_bar_enabled()
     transformers.logging.set_verbosity_error()  # its own report of missing keys is ours to make
+    transformers.logging.disable_progress_bar()  # and no bar on the terminal for a folder read in a second
     try:
         loaded, info = type(model).from_pretrained(
             str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
@@ -230,6 +231,8 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
                            "or pass --allow-partial to load only the tensors that fit") from exc
     finally:
         transformers.logging.set_verbosity(verbosity)
+        if bars:
+            transformers.logging.enable_progress_bar()
     unexpected = sorted(info.get("unexpected_keys") or ())
     shown = ", ".join(unexpected[:6]) + (f" and {len(unexpected) - 6} more" if len(unexpected) > 6 else "")
     if unexpected and not allow_partial:
