@@ -415,3 +415,55 @@ def test_onnx_export_of_a_forward_with_options_runs_with_their_defaults(tmp_path
     names = {init.name for init in __import__("onnx").load(str(path)).graph.initializer}
     assert {"conv.weight", "head.weight"} <= names  # the model's own names, not a wrapper's
     assert model.forward.__func__ is _WithOptions.forward  # the caller's model keeps its forward
+
+
+class _MixedModes(torch.nn.Module):
+    """In train mode with a frozen norm in eval mode (as detection fine-tuning keeps its BatchNorms), and a
+    counter its forward bumps in eval mode."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = torch.nn.Conv2d(1, 4, 3, padding=1)
+        self.bn = torch.nn.BatchNorm2d(4)
+        self.head = torch.nn.Linear(4, 3)
+        self.register_buffer("calls", torch.zeros((), dtype=torch.long))
+        self.cache: dict = {}
+
+    def forward(self, x):
+        if not self.training:
+            self.calls += 1
+            self.cache["last"] = tuple(x.shape)
+        return self.head(torch.relu(self.bn(self.conv(x))).mean((2, 3)))
+
+
+@pytest.mark.filterwarnings("ignore:ONNX Preprocess - Removing mutation")  # the counter, dropped from the graph
+@pytest.mark.parametrize("step", ["export_onnx_bytes", "check_onnx_graph", "onnx_parity", "export_pt2_bytes",
+                                  "pt2_parity"])
+def test_exporting_and_checking_leave_the_callers_model_as_it_was(step):
+    # each step ran the model in eval mode and then set every module to the root's mode, so a frozen norm came
+    # back in train mode; and its forwards bumped the caller's buffers
+    from splice.exporting import export_pt2_bytes
+
+    model = _MixedModes().train()
+    model.bn.eval()
+    with pytest.warns(splice.graph.TraceFallbackWarning):  # its forward iterates a shape: warps go in by hooks
+        spliced = insert(model, at="input", input_shape=(1, 8, 8)).train()
+    spliced.get_submodule("bn").eval()
+    modes = {n: m.training for n, m in spliced.named_modules()}
+    state = {k: v.clone() for k, v in spliced.state_dict().items()}
+    x = torch.randn(1, 1, 8, 8)
+    if step == "export_onnx_bytes":
+        export_onnx_bytes(spliced, x)
+    elif step == "check_onnx_graph":
+        check_onnx_graph(spliced, x)
+    elif step == "onnx_parity":
+        onnx_parity(spliced, export_onnx_bytes(spliced.eval(), x), x)
+        spliced.train()
+        spliced.get_submodule("bn").eval()
+    elif step == "export_pt2_bytes":
+        export_pt2_bytes(spliced, x)
+    else:
+        program = export_pt2_bytes(spliced, x)
+        pt2_parity(spliced, program, x)
+    assert {n: m.training for n, m in spliced.named_modules()} == modes
+    assert all(torch.equal(state[k], v) for k, v in spliced.state_dict().items())

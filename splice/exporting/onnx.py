@@ -12,6 +12,7 @@ import torch
 from torch import nn
 
 from ..compare import flatten_outputs
+from ..copies import private_buffers
 from ..errors import SpliceError, first_line
 from .weights import WeightsAsInputs
 
@@ -187,6 +188,7 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
     check_opset(opset, exporter)
     if weights_as_inputs and exporter != "torchscript":
         raise SpliceError("weights_as_inputs needs exporter='torchscript'")
+    model = private_buffers(model)  # modes, buffers and Python state of its own: the caller's stay as they are
     xs = as_inputs(example)
     inputs = input_names(len(xs))
     with exporting(model, exporter, opset):

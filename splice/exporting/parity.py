@@ -22,6 +22,7 @@ import torch
 from torch import nn
 
 from ..compare import compare_outputs, detached, flatten_outputs
+from ..copies import private_buffers
 from ..errors import CheckFailed, SpliceError, first_line
 from .onnx import (
     MIN_OPSET,
@@ -203,6 +204,7 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     """
     import onnx
 
+    model = private_buffers(model)  # evaluated in eval mode on a twin: the caller's modes and buffers stay
     proto = _load_onnx(onnx_model)
     tol = parity_tolerance(model, tol)
     batches = as_batches(inputs)
@@ -308,6 +310,7 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     ``splice verify --onnx``; ``splice export`` checks the file it ships.
     """
     check_opset(opset, "torchscript")
+    model = private_buffers(model)  # traced and run in eval mode on a twin: the caller's modes and buffers stay
     tol = parity_tolerance(model, tol)
     swapped = perturbed_tensors(model) if perturb else {}
     start = time.perf_counter()

@@ -11,6 +11,7 @@ import torch
 from torch import nn
 
 from ..compare import flatten_outputs
+from ..copies import private_buffers
 from ..errors import SpliceError, first_line
 from .onnx import as_inputs
 from .parity import (
@@ -31,6 +32,7 @@ def export_pt2_bytes(model: nn.Module, example, *, dynamic_batch: bool = False) 
     ``example`` is a tensor, or a tuple of one tensor per model input.
     """
     xs = as_inputs(example)
+    model = private_buffers(model)  # exported in eval mode on a twin: the caller's modes and buffers stay
     was_training = model.training
     model.eval()
     try:
@@ -60,6 +62,7 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
         ep = torch.export.load(str(program))
     else:
         ep = program
+    model = private_buffers(model)  # run in eval mode on a twin: the caller's modes and buffers stay
     tol = parity_tolerance(model, tol)
     batches = as_batches(inputs)
     was_training = model.training
