@@ -405,9 +405,13 @@ def test_capture_restores_the_model_and_rejects_plain_models():
 
     warp_model = _tiny_spliced()
     warp_model.train()
+    frozen = next(m for m in warp_model.modules() if isinstance(m, torch.nn.BatchNorm2d))
+    frozen.eval()  # a norm kept frozen while the rest trains: it stays so (the root's mode is not spread)
+    modes = {n: m.training for n, m in warp_model.named_modules()}
     cap = I.capture(warp_model, torch.rand(3, 1, 48, 48), batch_size=2)
     assert cap.thetas["input"].shape == (3, 6) and cap.logits.shape == (3, 10)
-    assert warp_model.training and all(not w.record and w.last_theta is None for w in warps_of(warp_model).values())
+    assert {n: m.training for n, m in warp_model.named_modules()} == modes and not frozen.training
+    assert all(not w.record and w.last_theta is None for w in warps_of(warp_model).values())
     with pytest.raises(SpliceError, match=r"capture needs a spliced model with at least one warp"):
         I.capture(torch.nn.Conv2d(1, 1, 1), torch.rand(1, 1, 4, 4))
 

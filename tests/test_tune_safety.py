@@ -9,6 +9,7 @@ checkpointed and replayed like every other state.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import subprocess
@@ -163,6 +164,21 @@ def test_diverged_pretraining_raises_before_the_step():
     assert caught.value.where["phase"] == "pretrain"
     after = spliced.state_dict()
     assert all(torch.equal(before[k], after[k]) for k in before)  # no step was taken
+
+
+def test_pretraining_gives_each_module_its_own_mode_back():
+    # pre-training runs the model in eval mode; afterwards a norm the caller kept frozen stays frozen (the root's
+    # mode used to be set on every module)
+    spliced = splice.insert(splice.models.tray_net(width=4), at=["input"], input_shape=(1, 24, 24),
+                            warp=splice.WarpConfig(head_width=4)).train()
+    frozen = next(m for m in spliced.modules() if isinstance(m, torch.nn.BatchNorm2d))
+    frozen.eval()
+    modes = {n: m.training for n, m in spliced.named_modules()}
+    warps = {n: m for n, m in spliced.named_modules() if isinstance(m, splice.warps.Warp)}
+    ref = ImageSet(torch.rand(8, 1, 24, 24), torch.zeros(8, dtype=torch.long), ["0"], "ok", "train")
+    cfg = dataclasses.replace(load_recipe("joint").pretrain, epochs=1)
+    pretrain_warps_(spliced, warps, ref, cfg, seed=0, prepare=lambda x: x)
+    assert {n: m.training for n, m in spliced.named_modules()} == modes and not frozen.training
 
 
 # ----------------------------------------------------------------------------- NaN / Inf images

@@ -48,7 +48,7 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
     param = next(iter(model.parameters()), None)
     device = param.device if param is not None else torch.device("cpu")
     dtype = param.dtype if param is not None else torch.float32
-    was_training = model.training
+    modes = [(m, m.training) for m in model.modules()]  # each module's own, not the root's for all
     was_recording = {name: (w.record, w.last_theta) for name, w in warps.items()}
     thetas: dict[str, list[Tensor]] = {name: [] for name in warps}
     outputs: list[Tensor] = []
@@ -68,7 +68,8 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
                 else:
                     single_tensor = False
     finally:
-        model.train(was_training)
+        for m, flag in modes:
+            m.training = flag
         for name, w in warps.items():
             w.record, w.last_theta = was_recording[name]
     return Capture(

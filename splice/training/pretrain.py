@@ -201,12 +201,13 @@ def pretrain_warps_(
                  reduce_grads=reduce_grads, workers=workers)
     if resume is not None:
         loop.load(resume)
-    was_training = model.training
+    modes = [(m, m.training) for m in model.modules()]  # each module's own, not the root's for all
     model.eval()
     try:
         stopped = loop.run(on_step, on_checkpoint)
     finally:
-        model.train(was_training)
+        for m, flag in modes:
+            m.training = flag
     return {"steps": loop.step, "grid_loss": loop.recent, "mean_grid_loss": loop.running / max(1, loop.seen),
             "images": loop.seen, "stopped": stopped}
 
