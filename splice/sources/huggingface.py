@@ -223,7 +223,7 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
     try:
         loaded, info = type(model).from_pretrained(
             str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
-            output_loading_info=True, ignore_mismatched_sizes=allow_partial)
+            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True)
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
