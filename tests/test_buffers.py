@@ -390,3 +390,24 @@ def test_tree_copy_restores_a_module_by_its_own_setstate_as_deepcopy_does():
             assert a.items == orig.items and a.items is not orig.items
             assert a.conv.padding_mode == orig.conv.padding_mode and a.conv.weight is not orig.conv.weight
             assert torch.equal(a.conv.weight, orig.conv.weight)
+
+
+class _Tally(nn.Module):
+    """A leaf that counts its calls in a plain tensor attribute (not a registered buffer)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+        self.seen = torch.zeros(())
+
+    def forward(self, x):
+        self.seen.add_(1)
+        return self.conv(x)
+
+
+def test_listing_never_updates_a_plain_tensor_attribute_of_an_opaque_leaf():
+    # shapes are propagated through a leaf on a stand-in; its tensor attributes are meta there, so the count
+    # in the caller's tensor stays where it was
+    model = nn.Sequential(nn.Conv2d(3, 3, 3, padding=1), _Tally(), nn.Conv2d(3, 3, 3, padding=1)).eval()
+    splice.points(model, (3, 8, 8), leaves=[_Tally])
+    assert float(model[1].seen) == 0.0

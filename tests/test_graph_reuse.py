@@ -324,6 +324,7 @@ def test_a_leaf_stand_in_has_meta_tensors_ties_kept_and_leaves_the_module_as_it_
     tied = nn.Linear(4, 4)
     block.add_module("again", tied)
     block.add_module("twice", tied)  # the same module twice, as a shared head is
+    block.scale = torch.ones(4)  # a plain tensor attribute, not a buffer
     block.train()
     before = {k: v.clone() for k, v in block.state_dict().items()}
     memo: dict = {}
@@ -337,3 +338,4 @@ def test_a_leaf_stand_in_has_meta_tensors_ties_kept_and_leaves_the_module_as_it_
     assert out.shape == (1, 4, 6, 6) and out.is_meta
     assert all(torch.equal(before[k], v) for k, v in block.state_dict().items())
     assert not any(t.is_meta for t in (*block.parameters(), *block.buffers()))
+    assert meta.scale.is_meta and not block.scale.is_meta  # an in-place update of the stand-in's reaches nobody
