@@ -44,15 +44,14 @@ import contextlib
 import os
 import signal
 import threading
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
 
 import torch
 
-from ..errors import SpliceError, TrainingDiverged, first_line
+from ..errors import RecipeError, SpliceError, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
-from ..errors import RecipeError
 from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
 from .epochs import train
@@ -236,7 +235,6 @@ def _adapt(ctx, *, model, recipe, data, site, out, resume, overrides: RecipeOver
     from ..adapt.bnstats import run_batchnorm_stats
     from ..adapt.run import run_label_free
     from ..adapt.setup import set_up
-    from ..progress import Progress
 
     if data is not None:
         raise RecipeError(
@@ -250,19 +248,7 @@ def _adapt(ctx, *, model, recipe, data, site, out, resume, overrides: RecipeOver
         )
     run = set_up(ctx, model=model, recipe=recipe, site=site, out=out, resume=resume, overrides=overrides,
                  model_options=model_options, stop_after_steps=run_options.stop_after_steps, locks=locks)
-    show = run_options.progress and ctx.is_main
-    with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
-        run.bar, run.flag = bar, flag
-        try:
-            return run_label_free(run) if run.rec.mode == "label-free" else run_batchnorm_stats(run)
-        except TrainingDiverged as exc:
-            _mark(run, "diverged", diverged=exc.where)
-            raise
-        except TuneInterrupted:
-            raise  # run.json says "interrupted" once the checkpoint is written
-        except Exception as exc:
-            _mark(run, "failed", error=first_line(exc))
-            raise
+    return _run_marked(run, run_options, run_label_free if run.rec.mode == "label-free" else run_batchnorm_stats)
 
 
 def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides, model_options: ModelOptions,
@@ -326,13 +312,18 @@ def _trained_on(rec, data: str, net, ref) -> str:
 
 
 def _train(run: Run, run_options: RunOptions) -> dict[str, Any]:
+    return _run_marked(run, run_options, train)
+
+
+def _run_marked(run, run_options: RunOptions, body: Callable[[Any], dict[str, Any]]) -> dict[str, Any]:
+    """``body(run)`` with the progress bar and the stop flag; run.json says so when it diverges or fails."""
     from ..progress import Progress
 
     show = run_options.progress and run.ctx.is_main
     with Progress(enabled=show, quiet=run_options.quiet) as bar, _StopFlag() as flag:
         run.bar, run.flag = bar, flag
         try:
-            return train(run)
+            return body(run)
         except TrainingDiverged as exc:
             _mark(run, "diverged", diverged=exc.where)
             raise
