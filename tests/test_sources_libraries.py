@@ -324,3 +324,18 @@ def test_a_spliced_custom_code_folder_needs_the_opt_in_again(custom_code_folder,
     x = torch.randn(1, 3, 16, 16)
     with torch.no_grad():
         assert torch.equal(again(x), spliced.eval()(x))
+
+
+def test_a_torch_compiled_model_is_spliced_through_the_module_it_compiled():
+    # the compiled wrapper's forward is code neither fx nor a meta-device run can follow (points found the input
+    # alone, and insert failed with an AttributeError); the module inside holds the same weights
+    model = splice.models.tray_net().eval()
+    compiled = torch.compile(model)  # lazy: nothing is compiled until it is called, and it never is here
+    with pytest.warns(SpliceWarning, match=r"a torch.compile'd TrayNet: splice works on the module it compiled"):
+        pts = splice.points(compiled, (1, 48, 48))
+    assert [p.name for p in pts] == [p.name for p in splice.points(model, (1, 48, 48))] and len(pts) > 1
+    with pytest.warns(SpliceWarning, match="torch.compile'd"):
+        spliced = splice.insert(compiled, at="recommended", input_shape=(1, 48, 48))
+    x = torch.randn(2, 1, 48, 48)
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))

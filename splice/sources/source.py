@@ -10,7 +10,7 @@ from pathlib import Path
 
 from torch import nn
 
-from ..errors import RandomWeightsWarning, SourceError
+from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
 from .builders import build_model
 from .huggingface import is_hf_folder, read_hf_folder, read_hf_weights
@@ -96,6 +96,7 @@ def load_source(
         return spec
     shapes = parse_input_shapes(input_shape) or ()
     if isinstance(spec, nn.Module):
+        spec = _uncompiled(spec)
         if not shapes and getattr(spec, "input_shape", None):
             shapes = parse_input_shapes(spec.input_shape) or ()
         return Source(model=spec, spec="<module>", input_shape=shapes[0] if shapes else None,
@@ -132,6 +133,20 @@ def load_source(
                   weights_sha256=state_dict_sha256(model.state_dict()), normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
                   leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]))
+
+
+def _uncompiled(model: nn.Module) -> nn.Module:
+    """The module ``torch.compile`` wrapped, when ``model`` is that wrapper, with a warning; else ``model``.
+
+    The wrapper's forward is compiled code that neither torch.fx nor a meta-device run can follow, and the
+    warps need the module's own Python forward. The wrapped module holds the same parameters.
+    """
+    inner = model._modules.get("_orig_mod") if type(model).__name__ == "OptimizedModule" else None
+    if not isinstance(inner, nn.Module):
+        return model
+    warnings.warn(f"a torch.compile'd {type(inner).__name__}: splice works on the module it compiled (the same "
+                  "weights); compile the spliced model again to run it compiled", SpliceWarning, stacklevel=3)
+    return inner
 
 
 def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
