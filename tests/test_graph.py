@@ -15,6 +15,7 @@ import torch.fx as fx
 import torch.nn.functional as F
 from torch import nn
 
+import splice
 from splice import graph
 from splice.errors import GraphError, PointError
 from splice.graph import (
@@ -612,3 +613,28 @@ def test_half_precision_model_gets_half_input():
     model = nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU(), nn.Conv2d(4, 4, 3)).half()
     assert [(p.name, p.shape) for p in points(model, (3, 16, 16))] == [
         ("input", (3, 16, 16)), ("_0", (4, 14, 14)), ("_1", (4, 14, 14))]
+
+
+class _TakesExtras(nn.Module):
+    """A forward that also takes ``*args`` and ``**kwargs`` (options it passes on, or ignores)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+        self.head = nn.Linear(4, 2)
+
+    def forward(self, x, *args, **kwargs):
+        return self.head(self.conv2(torch.relu(self.conv1(x))).mean((2, 3)))
+
+
+def test_a_forward_with_star_args_and_star_kwargs_is_listed_and_spliced():
+    # fx gives *args and **kwargs placeholders of their own; they were taken for inputs without a shape
+    # ("the model's forward takes more inputs than the 1 shape(s) given (also '**kwargs')")
+    model = _TakesExtras().eval()
+    pts = splice.points(model, (3, 8, 8))
+    assert [p.name for p in pts][:2] == ["input", "conv1"] and pts[0].mechanism == "fx"
+    spliced = splice.insert(model, at="conv1", input_shape=(3, 8, 8))
+    x = torch.randn(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))

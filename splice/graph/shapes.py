@@ -276,7 +276,9 @@ def propagate(
             op = node.op
             try:
                 if op == "placeholder":
-                    if given:
+                    if str(node.target).startswith("*"):
+                        value = {} if str(node.target).startswith("**") else ()  # *args, **kwargs: none given
+                    elif given:
                         value = meta_empty((1, *given.pop(0)), input_dtype(root))
                     elif node.args:
                         value = node.args[0]  # an optional argument: its default
