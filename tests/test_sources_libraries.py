@@ -4,6 +4,7 @@ builders with backbones — all built with random weights, nothing downloaded.""
 from __future__ import annotations
 
 import json
+import warnings
 import sys
 
 import pytest
@@ -339,3 +340,30 @@ def test_a_torch_compiled_model_is_spliced_through_the_module_it_compiled():
     x = torch.randn(2, 1, 48, 48)
     with torch.no_grad():
         assert torch.equal(spliced(x), model(x))
+
+
+class _WithScripted(torch.nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = torch.nn.Conv2d(3, 4, 3, padding=1)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # torch.jit.script is deprecated in favour of torch.compile
+            self.body = torch.jit.script(torch.nn.Sequential(torch.nn.Conv2d(4, 4, 3, padding=1), torch.nn.ReLU()))
+        self.head = torch.nn.Linear(4, 2)
+
+    def forward(self, x):
+        return self.head(self.body(self.stem(x)).mean((2, 3)))
+
+
+def test_torchscript_is_refused_in_one_line_naming_where(tmp_path):
+    # a scripted submodule failed deep inside the twin copy with a TypeError; a TorchScript archive given as
+    # a checkpoint was "not a readable PyTorch checkpoint"
+    with pytest.raises(SourceError, match=r"^the model given: its module 'body' \(RecursiveScriptModule\) is "
+                                          r"TorchScript \(torch.jit.script or trace\), which splice can neither copy "
+                                          r"nor trace; use the Python module it was scripted from"):
+        splice.points(_WithScripted().eval(), (3, 8, 8))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        torch.jit.save(torch.jit.script(torch.nn.Sequential(torch.nn.Conv2d(3, 4, 3))), str(tmp_path / "ts.pt"))
+    with pytest.raises(WeightsError, match=r"is a TorchScript archive \(torch.jit.save\), not a state dict"):
+        load_source(str(tmp_path / "ts.pt"), input_shape=(3, 8, 8))

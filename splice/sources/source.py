@@ -8,6 +8,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import torch
 from torch import nn
 
 from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
@@ -97,6 +98,7 @@ def load_source(
     shapes = parse_input_shapes(input_shape) or ()
     if isinstance(spec, nn.Module):
         spec = _uncompiled(spec)
+        _refuse_scripted(spec, "the model given")
         if not shapes and getattr(spec, "input_shape", None):
             shapes = parse_input_shapes(spec.input_shape) or ()
         return Source(model=spec, spec="<module>", input_shape=shapes[0] if shapes else None,
@@ -111,6 +113,7 @@ def load_source(
     if ":" not in spec or path.is_dir():
         return _load_path(spec, path, shapes, options)
     model, meta = build_model(spec, kw, origin=origin, trust_code=trust_code)
+    _refuse_scripted(model, spec)
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
@@ -133,6 +136,15 @@ def load_source(
                   weights_sha256=state_dict_sha256(model.state_dict()), normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
                   leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]))
+
+
+def _refuse_scripted(model: nn.Module, what: str) -> None:
+    """One line, not a TypeError from deep inside, for a model that is or holds a TorchScript module."""
+    for name, m in model.named_modules():
+        if isinstance(m, torch.jit.ScriptModule):
+            where = f"its module '{name}' ({type(m).__name__})" if name else "it"
+            raise SourceError(f"{what}: {where} is TorchScript (torch.jit.script or trace), which splice can neither "
+                              "copy nor trace; use the Python module it was scripted from, with its weights")
 
 
 def _uncompiled(model: nn.Module) -> nn.Module:

@@ -78,11 +78,28 @@ def torch_load(path: Path, *, trust_pickle: bool):
             ) from None
         raise WeightsError(f"'{path}' is not a readable checkpoint ({exc}); it may be truncated or corrupt") from None
     except Exception as exc:  # any failure to parse the file means it is not a usable checkpoint
+        if _is_torchscript(path):
+            raise WeightsError(
+                f"'{path}' is a TorchScript archive (torch.jit.save), not a state dict: splice splices Python "
+                "modules; give the model's builder (path/file.py:factory or a library name) and its weights "
+                "saved with torch.save(model.state_dict(), ...)"
+            ) from None
         msg = (str(exc).splitlines()[0] if str(exc) else type(exc).__name__).split(". ")[0]
         raise WeightsError(
             f"'{path}' is not a readable PyTorch checkpoint ({msg}); it may be truncated, "
             "corrupt, or not a checkpoint at all"
         ) from None
+
+
+def _is_torchscript(path: Path) -> bool:
+    """A zip archive with a ``code/`` folder: what torch.jit.save writes (a torch.save archive has none)."""
+    import zipfile
+
+    try:
+        with zipfile.ZipFile(path) as archive:
+            return any("/code/" in f"/{name}" for name in archive.namelist())
+    except (OSError, zipfile.BadZipFile):
+        return False
 
 
 def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:
