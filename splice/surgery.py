@@ -142,7 +142,7 @@ def _quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: floa
 
 def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,
                traced: fx.GraphModule | None = None, factory: dict | None = None,
-               shapes: Mapping[str, tuple[int, ...]] | None = None) -> fx.GraphModule:
+               shapes: Mapping[str, tuple[int, ...]] | None = None, n_inputs: int | None = None) -> fx.GraphModule:
     """Trace ``model`` (fx works on a private clone) and insert the planned warps (no checks).
 
     ``traced`` may pass in a fresh, unused result of ``graph.trace(model)``;
@@ -172,7 +172,7 @@ def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, lea
         edit(gm.graph, gm)
         gm.recompile()
     else:
-        gm = graph.trace(model, leaves=leaves, edit=edit)
+        gm = graph.trace(model, leaves=leaves, edit=edit, n_inputs=n_inputs)
         gm.add_module(WARP_PREFIX, container)  # fx copied the warps into a plain module: the ModuleDict instead
     gm.graph.lint()
     _restore_missing_state(gm, model)
@@ -311,7 +311,7 @@ def apply_info(model: nn.Module, info, *, factory: dict | None = None) -> nn.Mod
         shapes = {name: tuple(s["shape"]) for name, s in info.sites.items()}
         return apply_hooks(model, plan, sites, shapes, within=info.within, factory=factory)
     return apply_plan(model, plan, info.input_shape, leaves=info.leaves, factory=factory,
-                      shapes=info.recorded_shapes())
+                      shapes=info.recorded_shapes(), n_inputs=1 + len(info.extra_inputs))
 
 
 def _splice(base: nn.Module, plan: Sequence[SplicePlan], listing: Sequence, src, *, leaves, traced, within: str):

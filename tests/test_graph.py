@@ -638,3 +638,41 @@ def test_a_forward_with_star_args_and_star_kwargs_is_listed_and_spliced():
     x = torch.randn(2, 3, 8, 8)
     with torch.no_grad():
         assert torch.equal(spliced(x), model(x))
+
+
+class _WithTargets(nn.Module):
+    """A training-code forward: options after the image, and a branch on whether one was given."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+        self.head = nn.Linear(4, 3)
+
+    def forward(self, x, targets=None, mask=None, temperature: float = 1.0):
+        f = torch.relu(self.conv1(x))
+        if mask is not None:
+            f = f * mask
+        logits = self.head(self.conv2(f).mean((2, 3))) / temperature
+        if targets is not None:
+            return logits, F.cross_entropy(logits, targets)
+        return logits
+
+
+def test_options_after_the_inputs_are_traced_at_their_defaults():
+    # a Proxy for targets=None is not None: fx traced the loss branch, and shape propagation then failed on
+    # cross_entropy(logits, None); splice calls the model with its inputs alone, so the graph is traced so
+    from splice.surgery import apply_info
+    from splice.verification import verify_models
+
+    model = _WithTargets().eval()
+    pts = splice.points(model, (3, 8, 8))
+    assert pts[0].mechanism == "fx" and "conv1" in [p.name for p in pts]
+    spliced = splice.insert(model, at=["input", "conv1"], input_shape=(3, 8, 8))
+    report = verify_models(model, spliced, onnx=True)
+    assert report.passed, report.failed
+    again = apply_info(model, spliced.splice_info)  # as a folder is rebuilt
+    again.load_state_dict(spliced.state_dict())
+    x = torch.randn(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(again.eval()(x), model(x)) and torch.equal(spliced(x), model(x))

@@ -171,7 +171,7 @@ def test_a_train_mode_trace_of_each_norm_class_alone_finds_batch_counting_norms(
 
     roots = []
     real = tracing._run_tracer
-    monkeypatch.setattr(tracing, "_run_tracer", lambda root, rule: roots.append(type(root).__name__) or real(root, rule))
+    monkeypatch.setattr(tracing, "_run_tracer", lambda root, rule, *a, **k: roots.append(type(root).__name__) or real(root, rule, *a, **k))
     model = _FusedNet().eval()
     fast = graph.trace(model)
     fast_roots = list(roots)
@@ -211,9 +211,9 @@ def test_a_norm_that_cannot_be_traced_alone_is_found_by_a_whole_tree_trace(monke
     roots = []
     real = tracing._run_tracer
 
-    def spy(root, rule):
+    def spy(root, rule, *args, **kwargs):
         roots.append(type(root).__name__)
-        return real(root, rule)
+        return real(root, rule, *args, **kwargs)
 
     monkeypatch.setattr(tracing, "_run_tracer", spy)
     model = _TwoArgNet().eval()

@@ -187,11 +187,11 @@ def _fx_entries(model: nn.Module, shapes: tuple, rule: LeafRule,
     """Entries of the fx graph, and with ``keep`` the traced GraphModule they name (:func:`trace`'s result);
     raises :class:`FxFailure` when fx cannot trace the model."""
     if keep:
-        gm, root = trace_copy(model, rule)
+        gm, root = trace_copy(model, rule, n_inputs=len(shapes))
         graph = gm.graph
     else:
         gm, root = None, private_buffers(model)
-        graph = trace_owned(root, rule)
+        graph = trace_owned(root, rule, len(shapes))
     modules = dict(root.named_modules())
     try:
         values = propagate(graph, root, modules, shapes)

@@ -14,6 +14,7 @@ is traced (a fused BatchNorm counting batches) never changes the caller's model.
 
 from __future__ import annotations
 
+import inspect
 import warnings
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
@@ -117,10 +118,27 @@ class FxFailure(Exception):
         self.failed_in = failed_in
 
 
-def _run_tracer(root: nn.Module, rule: LeafRule) -> fx.Graph:
+def specialised_options(root: nn.Module, n_inputs: int | None) -> dict[str, Any] | None:
+    """The forward's options after its ``n_inputs`` inputs (by default, after the ones without a default) whose
+    default is ``None``, a bool, a number or a string, each at that default: the graph is traced for a call with
+    the inputs alone, as splice makes it. A Proxy for ``mask=None`` is not None, so ``if mask is not None:``
+    would trace the branch the call never takes."""
+    try:
+        params = list(inspect.signature(root.forward).parameters.values())
+    except (TypeError, ValueError):
+        return None
+    kinds = (inspect.Parameter.POSITIONAL_ONLY, inspect.Parameter.POSITIONAL_OR_KEYWORD, inspect.Parameter.KEYWORD_ONLY)
+    params = [p for p in params if p.kind in kinds]
+    skip = n_inputs if n_inputs is not None else sum(1 for p in params if p.default is inspect.Parameter.empty)
+    found = {p.name: p.default for p in params[skip:]
+             if p.default is None or type(p.default) in (bool, int, float, str)}
+    return found or None
+
+
+def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, whole: bool = True) -> fx.Graph:
     tracer = _Tracer(rule)
     try:
-        return tracer.trace(root)
+        return tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
     except Exception as exc:
         raise FxFailure(exc, tracer.failed_in) from exc
 
@@ -236,7 +254,7 @@ def _set_training(mods: list[nn.Module], flag: bool) -> None:
         m.__dict__["training"] = flag
 
 
-def _trace_modes(root: nn.Module, rule: LeafRule) -> tuple[fx.Graph, str | None]:
+def _trace_modes(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) -> tuple[fx.Graph, str | None]:
     """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not)."""
     mods = list(root.modules())
     difference = None
@@ -244,12 +262,12 @@ def _trace_modes(root: nn.Module, rule: LeafRule) -> tuple[fx.Graph, str | None]
         _set_training(mods, False)
         reads: list[nn.Module] = []
         with spying(mods, reads) as spied:
-            graph = _run_tracer(root, rule)
+            graph = _run_tracer(root, rule, n_inputs)
         # if no traced code read a `training` flag, a train-mode trace takes the same path
         if not spied or reads:
             _set_training(mods, True)
             try:
-                difference = _describe_difference(graph, _run_tracer(root, rule))
+                difference = _describe_difference(graph, _run_tracer(root, rule, n_inputs))
             except FxFailure as failure:
                 difference = f"the train-mode trace fails: {reason(failure.error)}"
     return graph, difference
@@ -287,7 +305,8 @@ def _traced_through_norms(root: nn.Module, rule: LeafRule) -> dict[type, nn.Modu
     return found
 
 
-def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn.Module]) -> set[type]:
+def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn.Module],
+                           n_inputs: int | None = None) -> set[type]:
     """The classes of ``norms`` that update their buffers when traced in train mode.
 
     Each class is traced alone, one instance, in train mode (a few nodes, not the whole tree); if one of
@@ -296,7 +315,7 @@ def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn
     """
     def traces(module: nn.Module) -> bool:
         try:
-            _run_tracer(module, rule)
+            _run_tracer(module, rule, n_inputs, whole=module is root)
         except FxFailure:
             return False
         return True
@@ -310,7 +329,7 @@ def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn
     return {c for c in _updating_classes(root, before) if not rule(c)}
 
 
-def trace_owned(root: nn.Module, rule: LeafRule) -> fx.Graph:
+def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) -> fx.Graph:
     """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ.
 
     A module whose forward updates its own buffers (a BatchNorm fused with an
@@ -330,12 +349,12 @@ def trace_owned(root: nn.Module, rule: LeafRule) -> fx.Graph:
     buffer) is the same either way.
     """
     norms = _traced_through_norms(root, rule)
-    counting = _counting_norm_classes(root, rule, norms) if norms else set()
+    counting = _counting_norm_classes(root, rule, norms, n_inputs) if norms else set()
     rule.add(counting)
     try:
         for _ in range(4):
             before = _buffer_states(root)
-            graph, difference = _trace_modes(root, rule)
+            graph, difference = _trace_modes(root, rule, n_inputs)
             updating = {c for c in _updating_classes(root, before) if not rule(c)}
             if not updating:
                 break
@@ -397,7 +416,7 @@ def check_model(model: Any, what: str) -> None:
 
 
 def trace(model: nn.Module, *, leaves: Iterable[Any] = (),
-          edit: Callable[[fx.Graph, nn.Module], None] | None = None) -> fx.GraphModule:
+          edit: Callable[[fx.Graph, nn.Module], None] | None = None, n_inputs: int | None = None) -> fx.GraphModule:
     """Trace a copy of ``model`` with torch.fx and return it as a new GraphModule.
 
     The GraphModule owns deep copies of the model's parameters and buffers; the
@@ -418,7 +437,7 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = (),
     """
     check_model(model, "trace()")
     try:
-        gm, _ = trace_copy(model, LeafRule(leaves), edit)
+        gm, _ = trace_copy(model, LeafRule(leaves), edit, n_inputs)
     except FxFailure as failure:
         where, todo = fx_failure_hint(failure, model)
         raise GraphError(f"torch.fx cannot trace {where}: {reason(failure.error)}; {todo}") from failure.error
@@ -426,7 +445,7 @@ def trace(model: nn.Module, *, leaves: Iterable[Any] = (),
 
 
 def trace_copy(model: nn.Module, rule: LeafRule, edit: Callable[[fx.Graph, nn.Module], None] | None = None,
-                ) -> tuple[fx.GraphModule, nn.Module]:
+               n_inputs: int | None = None) -> tuple[fx.GraphModule, nn.Module]:
     """:func:`trace`'s GraphModule (its graph changed by ``edit`` first), and the twin the tracer ran on (whose
     modules the graph's nodes name).
 
@@ -440,7 +459,7 @@ def trace_copy(model: nn.Module, rule: LeafRule, edit: Callable[[fx.Graph, nn.Mo
             "splice never traces the caller's model in place: make the model deep-copyable"
         ) from exc
     twin = private_buffers(work)
-    graph = trace_owned(twin, rule)
+    graph = trace_owned(twin, rule, n_inputs)
     _unspy_meta(graph)
     lifted = adopt_lifted(graph, twin, work)
     if edit is not None:
