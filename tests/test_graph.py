@@ -676,3 +676,29 @@ def test_options_after_the_inputs_are_traced_at_their_defaults():
     x = torch.randn(2, 3, 8, 8)
     with torch.no_grad():
         assert torch.equal(again.eval()(x), model(x)) and torch.equal(spliced(x), model(x))
+
+
+class _ValueBranch(nn.Module):
+    """A branch on a value: no tracer, meta run or export can follow it."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3)
+        self.conv2 = nn.Conv2d(4, 4, 3)
+
+    def forward(self, x):
+        f = torch.relu(self.conv1(x))
+        if f.mean().item() > 0.5:
+            f = f * 2
+        return self.conv2(f).mean((2, 3))
+
+
+def test_a_model_no_pass_can_follow_gets_one_line_and_no_dump(capfd):
+    # torch.export printed the graph it had so far to stderr before splice's one-line error
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(GraphError, match=r"cannot list points of _ValueBranch: .*; move the Python control flow "
+                                             r"into a submodule and mark that submodule opaque") as caught:
+            splice.points(_ValueBranch().eval(), (3, 16, 16))
+    assert "\n" not in str(caught.value)
+    assert "def forward(" not in capfd.readouterr().err

@@ -18,6 +18,8 @@ or a list never becomes a point, however the graph looks.
 
 from __future__ import annotations
 
+import contextlib
+import io
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -141,8 +143,10 @@ def _export(model: nn.Module, args: tuple, kwargs: dict):
     for m in twin.modules():
         m.__dict__["training"] = False
     recorder = _Recorder(twin)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # torch.export's own notes on specialised shapes
+    # torch.export's own notes on specialised shapes are warnings; on a forward it cannot export it also prints
+    # the graph so far to stderr: the reason reaches the user as one line in splice's error instead
+    with warnings.catch_warnings(), contextlib.redirect_stderr(io.StringIO()):
+        warnings.simplefilter("ignore")
         program = torch.export.export(twin, args, kwargs, strict=False)
     return program, recorder.outputs
 
