@@ -88,8 +88,8 @@ def onnx_output_names(model: nn.Module, example, n_outputs: int | None) -> list[
 
 @contextlib.contextmanager
 def exporting(model: nn.Module, exporter: str, opset: int):
-    """Eval mode, the exporters' own chatter silenced, and failures as :class:`SpliceError`."""
-    was_training = model.training
+    """Eval mode (for a twin: the caller's model is never passed here), the exporters' own chatter silenced, and
+    failures as :class:`SpliceError`."""
     model.eval()
     try:
         with warnings.catch_warnings():
@@ -106,8 +106,6 @@ def exporting(model: nn.Module, exporter: str, opset: int):
             f"ONNX export ({exporter}, opset {opset}) failed: {type(exc).__name__}: {first}; "
             "try another --opset, or exporter='dynamo'/'torchscript'"
         ) from exc
-    finally:
-        model.train(was_training)
 
 @contextlib.contextmanager
 def _stdout_to_nowhere():

@@ -223,28 +223,24 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     if checked is None:  # the exporter merged the head tensors beyond repair: the original graph is used
         proto = _load_onnx(onnx_model)
         checked = proto
-    was_training = model.training
-    model.eval()
-    try:
-        session = _ort_session(checked)
+    model.eval()  # a twin of the caller's model
+    session = _ort_session(checked)
 
-        def run(torch_model, sess, extra: dict, known=None) -> dict:
-            names = [i.name for i in sess.get_inputs()[:len(batches[0])]]
-            return _run_batches(torch_model, sess, names, batches, extra, tol, known)
+    def run(torch_model, sess, extra: dict, known=None) -> dict:
+        names = [i.name for i in sess.get_inputs()[:len(batches[0])]]
+        return _run_batches(torch_model, sess, names, batches, extra, tol, known)
 
-        stored = run(model, session, {}, references)
-        perturbed = None
-        if values:
-            twin = perturbed_copy(model)
-            if how == "feeds":
-                perturbed = run(twin, session, {k: v.detach().cpu().numpy() for k, v in values.items()})
-            else:
-                again = export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
-                                          dynamic_batch=len({b[0].shape[0] for b in batches}) > 1,
-                                          fold_constants=False, n_outputs=n_outputs)
-                perturbed = run(twin, _ort_session(_load_onnx(again)), {})
-    finally:
-        model.train(was_training)
+    stored = run(model, session, {}, references)
+    perturbed = None
+    if values:
+        twin = perturbed_copy(model)
+        if how == "feeds":
+            perturbed = run(twin, session, {k: v.detach().cpu().numpy() for k, v in values.items()})
+        else:
+            again = export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
+                                      dynamic_batch=len({b[0].shape[0] for b in batches}) > 1,
+                                      fold_constants=False, n_outputs=n_outputs)
+            perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
 
 def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
@@ -279,18 +275,14 @@ def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, ref
     state = model.state_dict(keep_vars=True)
     own = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[len(images):]
            if i.name in state}
-    was_training = model.training
-    model.eval()
-    try:
-        stored = _run_batches(model, session, images, batches, own, tol, references)
-        perturbed = None
-        values = perturbed_tensors(model) if perturb else {}
-        if values:
-            twin = perturbed_copy(model) if perturbed_references is None else None
-            perturbed = _run_batches(twin, session, images, batches, _perturbed_feeds(own, values), tol,
-                                     perturbed_references)
-    finally:
-        model.train(was_training)
+    model.eval()  # a twin of the caller's model
+    stored = _run_batches(model, session, images, batches, own, tol, references)
+    perturbed = None
+    values = perturbed_tensors(model) if perturb else {}
+    if values:
+        twin = perturbed_copy(model) if perturbed_references is None else None
+        perturbed = _run_batches(twin, session, images, batches, _perturbed_feeds(own, values), tol,
+                                 perturbed_references)
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
 
 def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=None,

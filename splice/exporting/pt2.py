@@ -32,9 +32,7 @@ def export_pt2_bytes(model: nn.Module, example, *, dynamic_batch: bool = False) 
     ``example`` is a tensor, or a tuple of one tensor per model input.
     """
     xs = as_inputs(example)
-    model = private_buffers(model)  # exported in eval mode on a twin: the caller's modes and buffers stay
-    was_training = model.training
-    model.eval()
+    model = private_buffers(model).eval()  # exported on a twin: the caller's modes and buffers stay
     try:
         batch = torch.export.Dim("batch", min=1, max=4096)
         dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
@@ -45,8 +43,6 @@ def export_pt2_bytes(model: nn.Module, example, *, dynamic_batch: bool = False) 
     except Exception as exc:
         first = first_line(exc)
         raise SpliceError(f"torch.export failed: {type(exc).__name__}: {first}") from exc
-    finally:
-        model.train(was_training)
 
 def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:
     """Reload a torch.export program (path, bytes or ``ExportedProgram``) and compare it with ``model``.
@@ -62,44 +58,39 @@ def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: 
         ep = torch.export.load(str(program))
     else:
         ep = program
-    model = private_buffers(model)  # run in eval mode on a twin: the caller's modes and buffers stay
+    model = private_buffers(model).eval()  # run on a twin: the caller's modes and buffers stay
     tol = parity_tolerance(model, tol)
     batches = as_batches(inputs)
-    was_training = model.training
-    model.eval()
-    try:
-        def run(torch_model, exported) -> dict:
-            results = []
-            for xs in batches:
-                with torch.no_grad():
-                    ref = torch_model(*xs)
-                    try:
-                        out = exported(*xs)
-                    except Exception as exc:
-                        first = first_line(exc)
-                        return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
-                                "detail": f"the exported program failed on a batch of {xs[0].shape[0]}: {first}"}
-                results.append(compare_flat(ref, list(flatten_outputs(out).values()), tol))
-            return merge_parities(results)
+    def run(torch_model, exported) -> dict:
+        results = []
+        for xs in batches:
+            with torch.no_grad():
+                ref = torch_model(*xs)
+                try:
+                    out = exported(*xs)
+                except Exception as exc:
+                    first = first_line(exc)
+                    return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
+                            "detail": f"the exported program failed on a batch of {xs[0].shape[0]}: {first}"}
+            results.append(compare_flat(ref, list(flatten_outputs(out).values()), tol))
+        return merge_parities(results)
 
-        exported = ep.module()
-        stored = run(model, exported)
-        perturbed, how = None, None
-        values = perturbed_tensors(model)
-        if perturb and values:
-            twin = perturbed_copy(model)
-            swapped = torch.export.load(io.BytesIO(program)) if isinstance(program, (bytes, bytearray)) else None
-            module = (swapped or copy.deepcopy(ep)).module()
-            params = dict(module.named_parameters())
-            if all(n in params for n in values):
-                with torch.no_grad():
-                    for n, v in values.items():
-                        params[n].copy_(v)
-                how = "parameters"
-            else:
-                module = torch.export.export(twin, batches[0]).module()
-                how = "re-export"
-            perturbed = run(twin, module)
-    finally:
-        model.train(was_training)
+    exported = ep.module()
+    stored = run(model, exported)
+    perturbed, how = None, None
+    values = perturbed_tensors(model)
+    if perturb and values:
+        twin = perturbed_copy(model)
+        swapped = torch.export.load(io.BytesIO(program)) if isinstance(program, (bytes, bytearray)) else None
+        module = (swapped or copy.deepcopy(ep)).module()
+        params = dict(module.named_parameters())
+        if all(n in params for n in values):
+            with torch.no_grad():
+                for n, v in values.items():
+                    params[n].copy_(v)
+            how = "parameters"
+        else:
+            module = torch.export.export(twin, batches[0]).module()
+            how = "re-export"
+        perturbed = run(twin, module)
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)

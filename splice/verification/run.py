@@ -240,9 +240,10 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
                                     "not run"))
         if opts.onnx:
             example = tuple(t[:1].detach() for t in fwd.x)
-            # a fresh twin: a forward that caches tensors derived from parameters (attention biases indexed once
-            # in eval mode) left them requiring grad after the gradient check, and the exporter refuses those
-            rows.append(onnx_row(private_buffers(unrun).eval(), example, opset=opts.opset, exporter=opts.exporter,
+            # the model no probe ran (the export makes its own twin of it): a forward that caches tensors derived
+            # from parameters (attention biases indexed once in eval mode) left them requiring grad in the probed
+            # twin after the gradient check, and the exporter refuses those
+            rows.append(onnx_row(unrun, example, opset=opts.opset, exporter=opts.exporter,
                                   n_outputs=fwd.n_outputs, reference=fwd.first_sample))
             lap("onnx")
     finally:
