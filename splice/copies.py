@@ -36,7 +36,8 @@ from typing import Any
 import torch
 from torch import nn
 
-__all__ = ["private_buffers", "tree_copy", "buffer_snapshot", "changed_buffers", "bitwise_equal", "collector_paused"]
+__all__ = ["private_buffers", "tree_copy", "buffer_snapshot", "changed_buffers", "bitwise_equal", "collector_paused",
+           "modes_kept"]
 
 # the per-module mappings a twin must own so that adding a hook, a flag or an
 # attribute to it never reaches the caller's module
@@ -194,6 +195,21 @@ def changed_buffers(before: Mapping[str, torch.Tensor], model: nn.Module) -> lis
     now = dict(model.named_buffers(remove_duplicate=False))
     names = set(before) | set(now)
     return sorted(k for k in names if k not in before or k not in now or not bitwise_equal(before[k], now[k]))
+
+
+@contextmanager
+def modes_kept(model: nn.Module) -> Iterator[nn.Module]:
+    """Every module's own train/eval flag back as it was when the block began, whatever the block set.
+
+    ``model.train(was_training)`` would give every module the root's flag, so a norm the caller keeps
+    frozen in a training model would come back in train mode.
+    """
+    saved = [(m, m.training) for m in model.modules()]
+    try:
+        yield model
+    finally:
+        for m, flag in saved:
+            m.training = flag
 
 
 @contextmanager

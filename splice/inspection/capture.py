@@ -8,6 +8,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor, nn
 
+from ..copies import modes_kept
 from ..errors import DataError, SpliceError
 
 __all__ = ["Capture", "capture", "check_positive_int"]
@@ -48,28 +49,26 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
     param = next(iter(model.parameters()), None)
     device = param.device if param is not None else torch.device("cpu")
     dtype = param.dtype if param is not None else torch.float32
-    modes = [(m, m.training) for m in model.modules()]  # each module's own, not the root's for all
     was_recording = {name: (w.record, w.last_theta) for name, w in warps.items()}
     thetas: dict[str, list[Tensor]] = {name: [] for name in warps}
     outputs: list[Tensor] = []
     single_tensor = True
     try:
-        model.eval()
-        for w in warps.values():
-            w.record = True
-        with torch.no_grad():
-            for start in range(0, images.shape[0], batch_size):
-                x = normalise(images[start:start + batch_size], normalisation).to(device=device, dtype=dtype)
-                out = model(x)
-                for name, w in warps.items():
-                    thetas[name].append(w.last_theta.to("cpu", torch.float64))
-                if isinstance(out, Tensor) and out.dim() == 2:
-                    outputs.append(out.to("cpu", torch.float32))
-                else:
-                    single_tensor = False
+        with modes_kept(model):
+            model.eval()
+            for w in warps.values():
+                w.record = True
+            with torch.no_grad():
+                for start in range(0, images.shape[0], batch_size):
+                    x = normalise(images[start:start + batch_size], normalisation).to(device=device, dtype=dtype)
+                    out = model(x)
+                    for name, w in warps.items():
+                        thetas[name].append(w.last_theta.to("cpu", torch.float64))
+                    if isinstance(out, Tensor) and out.dim() == 2:
+                        outputs.append(out.to("cpu", torch.float32))
+                    else:
+                        single_tensor = False
     finally:
-        for m, flag in modes:
-            m.training = flag
         for name, w in warps.items():
             w.record, w.last_theta = was_recording[name]
     return Capture(

@@ -34,6 +34,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
+from ..copies import modes_kept
 from ..distort import random_distort
 from . import batches as _b
 from .schedule import lr_factor
@@ -137,13 +138,9 @@ def reference_distance(model: nn.Module, warps: Mapping[str, nn.Module], x: Tens
     over every output pixel and image. On upright reference images a warp that
     leaves them alone scores 0. The model's modes are restored.
     """
-    modes = {m: m.training for m in model.modules()}
-    model.eval()
-    try:
+    with modes_kept(model):
+        model.eval()
         captured, order = warp_inputs(model, warps, x)
-    finally:
-        for m, mode in modes.items():
-            m.training = mode
     out = {}
     for name in order:
         args = captured[name]
@@ -201,13 +198,9 @@ def pretrain_warps_(
                  reduce_grads=reduce_grads, workers=workers)
     if resume is not None:
         loop.load(resume)
-    modes = [(m, m.training) for m in model.modules()]  # each module's own, not the root's for all
-    model.eval()
-    try:
+    with modes_kept(model):
+        model.eval()
         stopped = loop.run(on_step, on_checkpoint)
-    finally:
-        for m, flag in modes:
-            m.training = flag
     return {"steps": loop.step, "grid_loss": loop.recent, "mean_grid_loss": loop.running / max(1, loop.seen),
             "images": loop.seen, "stopped": stopped}
 
