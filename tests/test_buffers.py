@@ -411,3 +411,16 @@ def test_listing_never_updates_a_plain_tensor_attribute_of_an_opaque_leaf():
     model = nn.Sequential(nn.Conv2d(3, 3, 3, padding=1), _Tally(), nn.Conv2d(3, 3, 3, padding=1)).eval()
     splice.points(model, (3, 8, 8), leaves=[_Tally])
     assert float(model[1].seen) == 0.0
+
+
+def test_a_twin_of_a_graph_module_shares_its_graph_and_owns_its_buffers():
+    spliced = insert(_Net(), at="recommended", input_shape=(3, 32, 32))
+    code, modes = spliced.code, _modes(spliced)
+    twin = private_buffers(spliced)
+    assert twin.graph is spliced.graph  # running a GraphModule never touches its graph: not copied
+    before = buffer_snapshot(spliced)
+    with torch.no_grad():
+        twin.train()(torch.randn(2, 3, 32, 32))
+    assert changed_buffers(before, spliced) == []
+    assert int(twin.count.calls) == 1 and int(twin.bn.num_batches_tracked) == 1
+    assert spliced.code == code and _modes(spliced) == modes
