@@ -117,6 +117,36 @@ def counting_net():
 
 for _f in (dict_net, two_net, counting_net, flat_net):
     _f.input_shape = (1, 20, 20)
+
+
+class CachedBias(nn.Module):
+    """Keeps, in eval mode, a bias indexed from a parameter table; branches on a size (warps go in by hooks)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+        self.table = nn.Parameter(torch.randn(6))
+        self.register_buffer("index", torch.tensor([0, 2, 4, 5]))
+        self.cache = {}
+        self.head = nn.Linear(4, 3)
+
+    def forward(self, x):
+        if self.training or "bias" not in self.cache:
+            bias = self.table[self.index]
+            if not self.training:
+                self.cache["bias"] = bias
+        bias = bias if self.training else self.cache["bias"]
+        y = self.conv(x) + bias.view(1, -1, 1, 1)
+        if y.shape[-1] % 2 == 0:
+            y = y * 1.0
+        return self.head(y.mean((2, 3)))
+
+
+def cached_bias_net():
+    return CachedBias()
+
+
+cached_bias_net.input_shape = (1, 8, 8)
 '''
 
 
@@ -626,3 +656,14 @@ def test_the_onnx_check_runs_on_a_model_no_probe_has_run():
     assert report["onnx"].passed, report["onnx"].detail
     assert report.passed, report.failed
     assert model.cache == {}  # and the caller's model still has none
+
+
+def test_a_folders_onnx_check_runs_on_a_model_no_probe_has_run(model_file, tmp_path):
+    # verify runs the models it rebuilt as they are (each with its own copies of the buffers); the export
+    # still starts from one whose cache no probe has filled with a tensor that requires grad
+    with pytest.warns(splice.graph.TraceFallbackWarning):
+        spliced = insert(f"{model_file}:cached_bias_net", at="recommended", check=False)
+    folder = store.save(spliced, tmp_path / "cached")
+    report = verify(folder, onnx=True, trust_code=True)
+    assert report["onnx"].passed, report["onnx"].detail
+    assert report.passed, report.failed

@@ -88,6 +88,15 @@ class Snapshot:
         self.trees = {tag: list(m.named_modules()) for tag, m in self.models.items()}
         self.modes = {f"{tag}:{n or '<root>'}": mod.training for tag, mods in self.trees.items() for n, mod in mods}
 
+    @classmethod
+    def of_own(cls, buffers: Mapping[str, Mapping[str, torch.Tensor]]) -> Snapshot:
+        """For models verify built itself and runs as they are, each with its own copies of the buffers
+        (:func:`splice.copies.own_buffers_`): ``buffers`` are the tensors they held before, by tag. Nothing of a
+        caller's is there to change or restore; :meth:`check` reports what the forwards updated."""
+        snap = cls({})
+        snap.buffers = {f"{tag}:{n}": b for tag, named in buffers.items() for n, b in named.items()}
+        return snap
+
     def restore_modes(self) -> None:
         for tag, mods in self.trees.items():
             for n, mod in mods:
@@ -96,7 +105,8 @@ class Snapshot:
     def check(self, runs: Mapping[str, nn.Module] | None = None) -> CheckResult:
         """The ``buffers`` row; ``runs`` are the twins the checks ran (their updates are reported, not failed)."""
         now = {f"{tag}:{n}": b for tag, m in self.models.items() for n, b in m.named_buffers()}
-        changed = sorted(k for k, v in self.buffers.items() if k not in now or not bitwise_equal(v, now[k]))
+        changed = sorted(k for k, v in self.buffers.items() if k.split(":", 1)[0] in self.models
+                         and (k not in now or not bitwise_equal(v, now[k])))
         modes = {f"{tag}:{n or '<root>'}": mod.training for tag, m in self.models.items()
                  for n, mod in m.named_modules()}
         wrong_modes = sorted(k for k, v in self.modes.items() if modes.get(k) != v)

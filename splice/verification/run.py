@@ -17,7 +17,7 @@ from torch import nn
 
 from ..fileio import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, first_rows, flatten_outputs
-from ..copies import collector_paused, private_buffers
+from ..copies import collector_paused, own_buffers_, private_buffers
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..limits import check_fits, tensor_bytes
@@ -207,11 +207,19 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
     base_hash = hashing.submit(state_dict_sha256, base_state)
     hashing.shutdown(wait=False)
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
-    snapshot = Snapshot({"base": base, "spliced": spliced})
-    # every forward runs on twins with their own buffers and modes: a model that
-    # updates a buffer in eval mode (a call counter) is left as it was
-    unrun = spliced  # the ONNX check starts from a twin of this one, which no probe has run
-    base, spliced = private_buffers(base).eval(), private_buffers(spliced).eval()
+    # the ONNX check starts from a model no probe has run (it makes its own twin of it)
+    if owned:
+        # verify built both models for this call: they run as they are, each module with its own copy of every
+        # buffer; the tensors they held before (the folder's) are the snapshot the updates are measured against
+        unrun = private_buffers(spliced) if opts.onnx else None
+        snapshot = Snapshot.of_own({"base": own_buffers_(base), "spliced": own_buffers_(spliced)})
+        base, spliced = base.eval(), spliced.eval()
+    else:
+        # the caller's models: every forward runs on twins with their own buffers, modes and Python state, so a
+        # model that updates a buffer in eval mode (a call counter) is left as it was
+        snapshot = Snapshot({"base": base, "spliced": spliced})
+        unrun = spliced
+        base, spliced = private_buffers(base).eval(), private_buffers(spliced).eval()
     warps = warps_of(spliced)
     distances = {name: float(w.identity_distance()) for name, w in warps.items()}
     tuned_declared = info.tuning is not None
