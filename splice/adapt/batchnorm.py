@@ -17,6 +17,7 @@ from collections.abc import Callable
 import torch
 from torch import Tensor, nn
 
+from ..copies import modes_kept
 from ..training import batches as _b
 from .images import Images
 
@@ -40,24 +41,22 @@ def refresh_batchnorm_(model: nn.Module, images: Images, *, prepare: Callable[[T
     layers = batchnorm_layers(model)
     if not layers:
         return 0
-    modes = {m: m.training for m in model.modules()}
     momenta = {m: m.momentum for m in layers}
     n = len(images)
     batches = [idx for p in range(passes)
                for idx in _b.index_batches(_b.epoch_order(seed, p, n, tag="batchnorm"), batch_size) if len(idx) > 1]
-    try:
-        model.eval()
-        for m in layers:
-            m.reset_running_stats()
-            m.momentum = None
-            m.train()
-        for i, idx in enumerate(batches):
-            model(prepare(images.batch(idx)))
-            if on_step is not None:
-                on_step(i + 1, len(batches))
-    finally:
-        for m, momentum in momenta.items():
-            m.momentum = momentum
-        for m, mode in modes.items():
-            m.training = mode
+    with modes_kept(model):
+        try:
+            model.eval()
+            for m in layers:
+                m.reset_running_stats()
+                m.momentum = None
+                m.train()
+            for i, idx in enumerate(batches):
+                model(prepare(images.batch(idx)))
+                if on_step is not None:
+                    on_step(i + 1, len(batches))
+        finally:
+            for m, momentum in momenta.items():
+                m.momentum = momentum
     return len(layers)

@@ -30,6 +30,7 @@ from collections.abc import Callable, Mapping
 import torch
 from torch import Tensor, nn
 
+from ..copies import modes_kept
 from ..distort import random_distort
 from ..training import batches as _b
 from ..training.pretrain import warp_inputs
@@ -86,9 +87,8 @@ def site_diagnostics(model: nn.Module, warps: Mapping[str, nn.Module], site: Ima
                      prepare: Callable[[Tensor], Tensor], seed: int, rewarps: int = 2,
                      batch_size: int = 256) -> dict:
     """The label-free diagnostics of ``model`` on ``site`` (see the module docstring); modes are restored."""
-    modes = {m: m.training for m in model.modules()}
-    model.eval()
-    try:
+    with modes_kept(model):
+        model.eval()
         images = site.batch(sample_indices(len(site), seed))
         logits = _logits(model, images, prepare, batch_size)
         p = logits.softmax(1)
@@ -109,6 +109,3 @@ def site_diagnostics(model: nn.Module, warps: Mapping[str, nn.Module], site: Ima
         if warps:
             out["warp_spread"] = _spread(model, warps, images, prepare, batch_size)
         return out
-    finally:
-        for m, mode in modes.items():
-            m.training = mode

@@ -26,6 +26,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
+from ..copies import modes_kept
 from ..distort import DistortionRange, random_distort
 from ..training import batches as _b
 from ..errors import TrainingDiverged
@@ -94,10 +95,9 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
     steps_per_epoch = len(_b.index_batches(_b.shard(torch.arange(n), rank, world), per_rank))
     total = steps_per_epoch * epochs
     order = execution_order(model, warps, prepare(images.batch(torch.arange(min(2, n)))))
-    modes = {m: m.training for m in model.modules()}
-    model.eval()
     step, running, seen, recent = 0, 0.0, 0, 0.0
-    try:
+    with modes_kept(model):
+        model.eval()
         for epoch in range(epochs):
             mine = _b.shard(_b.epoch_order(seed, epoch, n, tag=f"{tag}-order"), rank, world)
             for b, idx in enumerate(_b.index_batches(mine, per_rank)):
@@ -123,7 +123,4 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
                 step += 1
                 if on_step is not None:
                     on_step(step, total, recent)
-    finally:
-        for m, mode in modes.items():
-            m.training = mode
     return {"steps": step, "grid_loss": recent, "mean_grid_loss": running / max(1, seen), "images": seen}

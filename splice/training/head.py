@@ -26,6 +26,8 @@ import math
 import torch
 from torch import Tensor, nn
 
+from ..copies import modes_kept
+
 __all__ = ["final_layer", "zero_final_layer_", "confidently_wrong"]
 
 
@@ -38,15 +40,12 @@ def final_layer(model: nn.Module, example: Tensor) -> str | None:
         if name and not any(True for _ in module.children()) and any(True for _ in module.parameters(recurse=False)):
             handles.append(module.register_forward_hook(
                 lambda _m, _a, out, name=name: calls.append((name, out))))
-    modes = {m: m.training for m in model.modules()}
-    model.eval()
     try:
-        out = model(example)
+        with modes_kept(model):
+            out = model.eval()(example)
     finally:
         for h in handles:
             h.remove()
-        for m, mode in modes.items():
-            m.training = mode
     if calls and calls[-1][1] is out:
         return calls[-1][0]
     return None

@@ -18,6 +18,8 @@ import torch
 import torch.nn.functional as F
 from torch import Tensor, nn
 
+from ..copies import modes_kept
+
 __all__ = ["ThetaTap", "identity_penalty", "Stepper", "evaluate"]
 
 
@@ -133,11 +135,10 @@ def evaluate(model: nn.Module, dataset, indices: Tensor, *, prepare: Callable[[T
     """``(loss sum, correct, images)`` of ``model`` on ``dataset[indices]`` in eval mode (modes restored)."""
     from . import batches as _b
 
-    modes = {m: m.training for m in model.modules()}
-    model.eval()
     loss_sum, correct, seen = 0.0, 0.0, 0
     ctx = torch.autocast(device_type="cuda", dtype=torch.float16) if amp else contextlib.nullcontext()
-    try:
+    with modes_kept(model):
+        model.eval()
         for x, y in _b.iterate(dataset, _b.index_batches(indices, batch_size), workers=workers):
             x, y = prepare(x), y.to(device)
             with ctx:
@@ -145,7 +146,4 @@ def evaluate(model: nn.Module, dataset, indices: Tensor, *, prepare: Callable[[T
             loss_sum += float(F.cross_entropy(out.float(), y, reduction="sum"))
             correct += float((out.argmax(1) == y).sum())
             seen += y.shape[0]
-    finally:
-        for m, mode in modes.items():
-            m.training = mode
     return loss_sum, correct, seen

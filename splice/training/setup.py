@@ -12,6 +12,7 @@ from typing import Any
 import torch
 from torch import nn
 
+from ..copies import modes_kept
 from ..fileio import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError
 from ..manifest import copy_model, info_of
@@ -136,16 +137,11 @@ def load_model(req: Request, where: str):
 
 
 def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
-    was = {m: m.training for m in model.modules()}
-    model.eval()
     try:
-        with torch.no_grad():
-            out = model(torch.zeros((2, *input_shape), device=device))
+        with modes_kept(model), torch.no_grad():
+            out = model.eval()(torch.zeros((2, *input_shape), device=device))
     except Exception:  # noqa: BLE001 - a model that cannot run on zeros is reported later, by the loop
         return None
-    finally:
-        for m, mode in was.items():
-            m.training = mode
     return int(out.shape[-1]) if isinstance(out, torch.Tensor) and out.dim() == 2 else None
 
 
