@@ -367,3 +367,16 @@ def test_torchscript_is_refused_in_one_line_naming_where(tmp_path):
         torch.jit.save(torch.jit.script(torch.nn.Sequential(torch.nn.Conv2d(3, 4, 3))), str(tmp_path / "ts.pt"))
     with pytest.raises(WeightsError, match=r"is a TorchScript archive \(torch.jit.save\), not a state dict"):
         load_source(str(tmp_path / "ts.pt"), input_shape=(3, 8, 8))
+
+
+def test_reading_a_folder_leaves_device_contexts_working(hf_folder):
+    # a fresh process whose first device context is the one transformers' loader enters
+    import subprocess
+    import sys
+
+    code = ("import warnings, torch, splice; warnings.simplefilter('ignore'); "
+            f"splice.load_source({str(hf_folder)!r}, input_shape=(3, 32, 32)); "
+            "ctx = torch.device('meta'); ctx.__enter__(); print(torch.linspace(0.0, 1.0, 3).device)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.strip().splitlines()[-1] == "meta"

@@ -206,6 +206,24 @@ def read_hf_folder(path) -> HFFolder:
     return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm)
 
 
+def _device_contexts_primed() -> None:
+    """Make torch list the functions a device context redirects before transformers loads anything.
+
+    ``from_pretrained`` builds the model under ``torch.device("meta")`` with
+    ``torch.linspace`` swapped for a wrapper that defaults to the CPU. torch
+    lists the factory functions a device context redirects once per process,
+    the first time a context meets one; if that first time falls inside the
+    load, the list holds the wrapper, and ``torch.linspace`` ignores every
+    device context for the rest of the process (a meta-device build then
+    computes on the CPU). One factory call under a device context first
+    fixes the list with torch's own functions (transformers 5.24, torch 2.14).
+    """
+    import torch
+
+    with torch.device("meta"):
+        torch.empty(0)
+
+
 def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict:
     """The weights of a ``save_pretrained`` folder in ``model``'s own names, read by transformers.
 
@@ -217,6 +235,7 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
     model does not, or of another shape, are refused by name unless ``allow_partial``.
     """
     transformers = _transformers()
+    _device_contexts_primed()
     verbosity, bars = transformers.logging.get_verbosity(), transformers.logging.is_progress_bar_enabled()
     transformers.logging.set_verbosity_error()  # its own report of missing keys is ours to make
     transformers.logging.disable_progress_bar()  # and no bar on the terminal for a folder read in a second
