@@ -91,6 +91,18 @@ def test_a_save_pretrained_folder_is_a_source(hf_folder):
     assert torch.equal(src.model(x).logits, _hf_resnet()(x).logits)
 
 
+def test_a_folder_hashes_the_weights_it_read_and_only_those(hf_folder, monkeypatch):
+    import splice.sources.source as source_module
+    from splice.fileio import state_dict_sha256
+
+    hashed = []
+    monkeypatch.setattr(source_module, "state_dict_sha256", lambda state: hashed.append(state) or
+                        state_dict_sha256(state))
+    src = load_source(str(hf_folder), input_shape=(3, 32, 32))
+    assert len(hashed) == 1  # not the initial weights the folder's replace
+    assert src.weights_sha256 == state_dict_sha256(_hf_resnet().state_dict())
+
+
 def test_the_recorded_spec_rebuilds_without_the_folder(hf_folder):
     src = load_source(str(hf_folder), input_shape=(3, 32, 32))
     model, _ = build_model(src.spec, json.loads(json.dumps(src.kwargs)))  # as splice.json holds it

@@ -109,6 +109,16 @@ def load_source(
     kw = parse_kwargs(kwargs)
     if is_hf_folder(path):  # JSON and weights only: its transformers:Class spec passes the gate below
         return _load_hf_folder(path, shapes, **options)
+    return _built(spec, path, kw, shapes, options, warn_random=warn_random)
+
+
+def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, warn_random: bool,
+           hashed: bool = True) -> Source:
+    """:func:`load_source` for a spec that passed no folder test; without ``hashed`` the weights are left
+    unhashed (``weights_sha256=None``), for a caller about to load others."""
+    weights, allow_partial, trust_pickle = options["weights"], options["allow_partial"], options["trust_pickle"]
+    origin, trust_code, leaves = options["origin"], options["trust_code"], options["leaves"]
+    default_input_shape = options["default_input_shape"]
     check_spec(spec, kw, origin=origin, trust_code=trust_code)
     if ":" not in spec or path.is_dir():
         return _load_path(spec, path, shapes, options)
@@ -122,7 +132,7 @@ def load_source(
         warnings.warn(
             f"{spec} has random weights (no --weights given): its outputs mean nothing for accuracy",
             RandomWeightsWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
     model.eval()
     first = shapes[0] if shapes else (meta["input_shape"] or parse_input_shape(default_input_shape))
@@ -133,7 +143,8 @@ def load_source(
         )
     return Source(model=model, spec=spec, kwargs=kw, input_shape=first,
                   weights_path=str(weights) if weights is not None else None,
-                  weights_sha256=state_dict_sha256(model.state_dict()), normalisation=meta["normalisation"],
+                  weights_sha256=state_dict_sha256(model.state_dict()) if hashed else None,
+                  normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
                   leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]))
 
@@ -188,10 +199,12 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     if weights is None:
         raise SourceError(f"'{path}' holds a config.json but no weights (model.safetensors, pytorch_model.bin or "
                           "a shard index); re-save the model with save_pretrained, or pass --weights FILE")
-    src = load_source(hf.spec, weights=None if own else weights, kwargs=hf.kwargs,
-                      input_shape=shapes or hf.input_shape, allow_partial=allow_partial, trust_pickle=trust_pickle,
-                      leaves=leaves, warn_random=False, origin=origin, trust_code=trust_code,
-                      default_input_shape=default_input_shape)
+    options = {"weights": None if own else weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle,
+               "leaves": leaves, "origin": origin, "trust_code": trust_code,
+               "default_input_shape": default_input_shape}
+    # with the folder's own weights, the initial ones are not hashed: they are replaced below
+    src = _built(hf.spec, Path(hf.spec), parse_kwargs(hf.kwargs), parse_input_shapes(shapes or hf.input_shape) or (),
+                 options, warn_random=False, hashed=not own)
     if own:
         state = read_hf_weights(path, src.model, allow_partial=allow_partial)
         check_finite(state, f"weights '{weights}'")
