@@ -36,8 +36,8 @@ from typing import Any
 import torch
 from torch import fx, nn
 
-__all__ = ["private_buffers", "own_buffers_", "tree_copy", "buffer_snapshot", "changed_buffers", "bitwise_equal", "collector_paused",
-           "modes_kept"]
+__all__ = ["private_buffers", "own_buffers_", "tree_copy", "buffer_snapshot", "changed_buffers", "bitwise_equal",
+           "collector_paused", "modes_kept", "rng_kept"]
 
 # the per-module mappings a twin must own so that adding a hook, a flag or an
 # attribute to it never reaches the caller's module
@@ -257,3 +257,17 @@ def collector_paused() -> Iterator[None]:
     finally:
         if was:
             gc.enable()
+
+
+@contextmanager
+def rng_kept() -> Iterator[None]:
+    """The caller's random number generators as they were before the block, whatever it drew; also a decorator.
+
+    The CPU generator always, and each CUDA device's once CUDA is initialised
+    (forking them earlier would initialise it). A check or an export draws
+    numbers (a warp's initial weights while a model is rebuilt, a probe
+    batch); the caller's next draw is the one it would have been without it.
+    """
+    devices = list(range(torch.cuda.device_count())) if torch.cuda.is_initialized() else []
+    with torch.random.fork_rng(devices=devices):
+        yield

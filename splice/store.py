@@ -26,6 +26,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
+from .copies import rng_kept
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
@@ -406,6 +407,7 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
 # ----------------------------------------------------------------------------- load
 
 
+@rng_kept()
 def load(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     """Rebuild a model saved by :func:`save`: base from its spec, warps re-applied, weights loaded.
 
@@ -421,6 +423,7 @@ def load(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: b
     return opened.spliced()
 
 
+@rng_kept()
 def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> nn.Module:
     """The base network of a folder: its architecture with the base part of the saved weights."""
     return open_folder(folder, trust_pickle=trust_pickle, frame=False, trust_code=trust_code).base()

@@ -383,3 +383,18 @@ def test_version_aware_loader_gets_its_metadata(tmp_path):
     assert splice.load(folder) is not None  # torchvision:NAME is a registry lookup: no opt-in needed
     assert load_base(folder) is not None
     assert verify(folder).passed
+
+
+@pytest.mark.parametrize("step", ["load", "load_base", "verify", "verify onnx", "export"])
+def test_load_verify_and_export_leave_the_callers_random_numbers_alone(tmp_path, step):
+    from splice.store import load_base
+
+    folder = splice.save(insert("splice.models:tray_net", at="input"), tmp_path / "tray")
+    run = {"load": lambda: splice.load(folder), "load_base": lambda: load_base(folder),
+           "verify": lambda: splice.verify(folder), "verify onnx": lambda: splice.verify(folder, onnx=True),
+           "export": lambda: splice.export(folder, onnx=tmp_path / "tray.onnx")}[step]
+    torch.manual_seed(7)
+    want = torch.rand(4)
+    torch.manual_seed(7)
+    run()
+    assert torch.equal(torch.rand(4), want)  # the next draw is the one it would have been

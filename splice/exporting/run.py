@@ -9,6 +9,7 @@ from pathlib import Path
 
 import torch
 
+from ..copies import rng_kept
 from ..errors import CheckFailed, SpliceError, SpliceWarning
 from ..manifest import info_of
 from ..store import load
@@ -85,6 +86,7 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
     return data, result, seconds, False
 
 
+@rng_kept()
 def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike | None = None,
            *, opset: int = 17, dynamic_batch: bool = True, trust_pickle: bool = False,
            exporter: str = "torchscript", seed: int = 0, tol: float | None = None, trust_code: bool = False) -> dict:

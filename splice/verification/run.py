@@ -17,7 +17,7 @@ from torch import nn
 
 from ..fileio import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, first_rows, flatten_outputs
-from ..copies import collector_paused, own_buffers_, private_buffers
+from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..limits import check_fits, tensor_bytes
@@ -267,6 +267,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
 
 
 @collector_paused()
+@rng_kept()
 def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Mapping | None = None, images=None,
                   batch: int = 1, dtype="float32", onnx: bool = False, opset: int = 17, seed: int = 0,
                   exporter: str = "torchscript", tol: float | None = None, trust_code: bool = False) -> VerifyReport:
@@ -292,6 +293,7 @@ def verify_models(base: nn.Module, spliced: nn.Module, *, info: SpliceInfo | Map
 
 
 @collector_paused()
+@rng_kept()
 def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="float32", onnx: bool = False,
            opset: int = 17, seed: int = 0, trust_pickle: bool = False, exporter: str = "torchscript",
            tol: float | None = None, trust_code: bool = False) -> VerifyReport:
