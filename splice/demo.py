@@ -157,17 +157,18 @@ def demo(out: str | Path = "splice-demo", *, fast: bool = False, quiet: bool = F
     out = Path(out)
     _prepare(out)
     run = _Demo(out, plan or (FAST if fast else FULL), quiet)
-    warnings.filterwarnings("ignore", category=RandomWeightsWarning)
-    base, errors = _base(run)
-    src, pts, at = _points(run, base)
-    report = _splice_and_verify(run, src, at)
-    _tune_runs(run, base, errors)
-    sweeps = _sweeps(run)
-    run.log.step(8, "inspect the learned warps (joint)")
-    from .inspection import inspect
+    with warnings.catch_warnings():  # the caller's own filters are back afterwards
+        warnings.filterwarnings("ignore", category=RandomWeightsWarning)
+        base, errors = _base(run)
+        src, pts, at = _points(run, base)
+        report = _splice_and_verify(run, src, at)
+        _tune_runs(run, base, errors)
+        sweeps = _sweeps(run)
+        run.log.step(8, "inspect the learned warps (joint)")
+        from .inspection import inspect
 
-    inspected = inspect(str(out / "joint" / "best"), data="digits-moved", n=run.plan.inspect_images,
-                        split="test", out=out / "inspect")
+        inspected = inspect(str(out / "joint" / "best"), data="digits-moved", n=run.plan.inspect_images,
+                            split="test", out=out / "inspect")
     summary = {
         "plan": asdict(run.plan),
         "point": at,

@@ -46,3 +46,21 @@ def test_demo_fast_end_to_end(tmp_path):
     (tmp_path / "foreign" / "keep.txt").write_text("mine")
     assert main(["demo", "--fast", "--quiet", "--out", str(tmp_path / "foreign")]) == 2
     assert (tmp_path / "foreign" / "keep.txt").exists()
+
+
+def test_the_demo_gives_the_caller_its_warning_filters_back(tmp_path, monkeypatch):
+    import warnings
+
+    import splice.demo as demo_module
+
+    def stop(run):
+        raise RuntimeError("stop after the filters are set")
+
+    monkeypatch.setattr(demo_module, "_base", stop)
+    with warnings.catch_warnings():
+        warnings.resetwarnings()
+        warnings.simplefilter("error")  # the caller's choice: every warning an error
+        before = list(warnings.filters)
+        with pytest.raises(RuntimeError, match="stop after"):
+            demo_module.demo(tmp_path / "demo", fast=True, quiet=True)
+        assert warnings.filters == before
