@@ -428,10 +428,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    from .errors import CheckFailed, SpliceError, SpliceWarning, first_line
-
     parser = build_parser()
     args = parser.parse_args(argv)
+    with warnings.catch_warnings():  # a Python caller of main() gets its own filters and printer back
+        return _run(args)
+
+
+def _run(args) -> int:
+    from .errors import CheckFailed, SpliceError, SpliceWarning, first_line
+
     warnings.showwarning = _show_warning
     if not args.debug:
         # every warning splice itself raises reaches the user (one line each); third-party noise does not

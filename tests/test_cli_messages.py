@@ -118,3 +118,16 @@ def test_argparse_errors_are_one_line(capsys):
         main(["insert", "torchvision:resnet18"])
     err = capsys.readouterr().err
     assert stop.value.code == 2 and len(err.strip().splitlines()) == 1 and "--help" in err
+
+
+def test_main_gives_a_python_caller_its_warning_filters_and_printer_back(tmp_path):
+    import warnings
+
+    from splice.cli import main
+
+    with warnings.catch_warnings():
+        warnings.resetwarnings()
+        warnings.simplefilter("error")
+        before, printer = list(warnings.filters), warnings.showwarning
+        assert main(["points", "splice.models:tray_net"]) == 0
+        assert warnings.filters == before and warnings.showwarning is printer
