@@ -35,6 +35,21 @@ def _source(model, **options):
     return open_source(model, **options)
 
 
+def _unrebuildable(model) -> bool:
+    from .manifest import info_of
+    from .objects import MODULE_SPEC
+
+    info = info_of(model) if not isinstance(model, (str, os.PathLike)) else None
+    return info is not None and info.spec == MODULE_SPEC
+
+
+def _in_memory_base(model):
+    """The base to verify ``model`` against in memory (a splice of a module object), else ``None``."""
+    from .objects import base_to_check_against
+
+    return None if isinstance(model, (str, os.PathLike)) else base_to_check_against(model)
+
+
 @contextlib.contextmanager
 def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> Iterator[Path]:
     """``model`` as a splice folder: itself when it is one, else saved to a temporary folder."""
@@ -143,7 +158,10 @@ def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = 
     """Certify a spliced model against its base: a :class:`~splice.verification.VerifyReport`.
 
     ``model`` is a folder, or a spliced model in memory (saved to a temporary
-    folder and checked as written).
+    folder and checked as written). A splice of a module object (not a spec)
+    cannot be rebuilt from a folder: it is checked in memory against the
+    module it was made from, while that is alive and holds the weights it was
+    spliced with (else :func:`splice.verification.verify_models` takes a base).
 
     >>> import splice
     >>> report = splice.verify(splice.insert("splice.models:tray_net", at="input"))
@@ -151,7 +169,12 @@ def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = 
     (True, [])
     """
     from .verification import verify as verify_folder
+    from .verification import verify_models
 
+    reference = _in_memory_base(model)
+    if reference is not None:
+        return verify_models(reference, model, images=images, batch=batch, dtype=dtype, onnx=onnx, opset=opset,
+                             seed=seed, exporter=exporter, trust_code=trust_code)
     with _as_folder(model, trust_pickle, trust_code) as folder:
         return verify_folder(folder, images=images, batch=batch, dtype=dtype, onnx=onnx, opset=opset, seed=seed,
                              trust_pickle=trust_pickle, exporter=exporter, trust_code=trust_code)
@@ -169,7 +192,10 @@ def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike 
     ['onnx']
     """
     from .exporting import export as export_folder
+    from .exporting import export_model
 
+    if _unrebuildable(model):  # a splice of a module object: exported as it is, in memory
+        return export_model(model, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
     with _as_folder(model, trust_pickle, trust_code) as folder:
         return export_folder(folder, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch,
                              trust_pickle=trust_pickle, exporter=exporter, trust_code=trust_code)
@@ -226,6 +252,8 @@ def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pi
     """
     from .inspection import inspect as inspect_folder
 
+    if _unrebuildable(model):  # a splice of a module object: inspected as it is, in memory
+        return inspect_folder(model, data=data, n=n, split=split, out=out, pictures=pictures)
     with _as_folder(model, trust_pickle, trust_code) as folder:
         return inspect_folder(folder, data=data, n=n, split=split, out=out, trust_pickle=trust_pickle,
                               pictures=pictures, trust_code=trust_code)

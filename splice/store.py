@@ -29,6 +29,7 @@ from torch import nn
 from .copies import rng_kept
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
+from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)
 from .version import library_versions
@@ -114,6 +115,8 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     from safetensors.torch import save_file
 
     info = info_of(model) or _plain_info(source)
+    if info.spec == MODULE_SPEC and source is not None:
+        info = respecified(info, model, source)
     changes = {"tuning": dict(tuning) if tuning is not None else None,
                "class_names": list(class_names) if class_names is not None else None,
                "normalisation": dict(normalisation) if normalisation is not None else None,
@@ -142,6 +145,8 @@ def _origin(info: SpliceInfo) -> Path | None:
 
 def _check_base_spec(info: SpliceInfo, trust_code: bool) -> None:
     """The gate for a recorded base spec (:func:`splice.sources.check_spec`), and no folder inside a folder."""
+    if info.spec == MODULE_SPEC:
+        raise cannot_rebuild(info.folder or "the splice record")
     check_spec(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
     if ":" not in info.spec and Path(info.spec).is_dir():
         where = _origin(info) or "the splice record"
@@ -470,6 +475,9 @@ def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapp
         shapes = parse_input_shapes(input_shape)
         return load_folder_source(thing, input_shape=shapes[0] if shapes else None, trust_pickle=trust_pickle,
                                   trust_code=trust_code)
+    spliced = source_of_spliced(thing, input_shape) if isinstance(thing, nn.Module) else None
+    if spliced is not None:
+        return spliced
     spec = os.fspath(thing) if isinstance(thing, os.PathLike) else thing
     return load_source(spec, weights=weights, kwargs=kwargs, input_shape=input_shape, leaves=leaves,
                        trust_pickle=trust_pickle, allow_partial=allow_partial, warn_random=warn_random,

@@ -29,6 +29,7 @@ from .copies import private_buffers
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info
+from .objects import MODULE_SPEC, remember_base
 
 __all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "warps_of", "base_state_dict"]
 
@@ -382,6 +383,8 @@ def insert(
               for it in plan]
     attach_info(gm, SpliceInfo.from_source(src, points=points, leaves=leaves, check=result,
                                            mechanism=listing[0].mechanism, within=within, sites=sites))
+    if src.spec == MODULE_SPEC:
+        remember_base(gm, base)  # no folder can rebuild it: verify and export compare with it in memory
     if result is not None and not result["passed"] and not force:
         raise CheckFailed(
             f"the spliced model differs from the base at the identity ({result['detail']}); "

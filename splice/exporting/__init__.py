@@ -33,7 +33,7 @@ renamed into place).
 
 Modules: :mod:`.onnx` (exporters, opsets), :mod:`.weights` (perturbed heads,
 weights as graph inputs), :mod:`.parity` (onnxruntime parity), :mod:`.pt2`
-(torch.export), :mod:`.run` (:func:`export`, the command).
+(torch.export), :mod:`.run` (:func:`export`, the command; :func:`export_model` for a spliced model in memory).
 """
 
 from __future__ import annotations
@@ -42,7 +42,7 @@ from ..warps.perturb import PERTURBATION_SIZE, final_layer, perturbation_theta
 from .onnx import DYNAMO_MIN_OPSET, EXPORTERS, MIN_OPSET, check_opset, export_onnx_bytes
 from .parity import EXPORT_TOLERANCES, check_onnx_graph, onnx_parity
 from .pt2 import export_pt2_bytes, pt2_parity
-from .run import export
+from .run import export, export_model
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
 __all__ = [
@@ -52,6 +52,7 @@ __all__ = [
     "EXPORT_TOLERANCES",
     "PERTURBATION_SIZE",
     "export",
+    "export_model",
     "export_onnx_bytes",
     "export_pt2_bytes",
     "onnx_parity",

@@ -17,7 +17,7 @@ from .onnx import check_opset, export_onnx_bytes
 from .parity import model_dtype, onnx_parity
 from .pt2 import export_pt2_bytes, pt2_parity
 
-__all__ = ["export"]
+__all__ = ["export", "export_model"]
 
 
 def _probe_inputs(shapes, dtype, *, dynamic_batch: bool, seed: int) -> tuple[tuple, list[tuple]]:
@@ -107,6 +107,27 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
 
     >>> splice.export("out/r18-affine", onnx="r18.onnx")   # doctest: +SKIP
     """
+    _check_targets(onnx, pt2, opset, exporter)
+    model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+    return _export_loaded(model, f"'{folder}'", onnx, pt2, opset=opset, dynamic_batch=dynamic_batch,
+                          exporter=exporter, seed=seed, tol=tol)
+
+
+@rng_kept()
+def export_model(model: torch.nn.Module, onnx: str | os.PathLike | None = None,
+                 pt2: str | os.PathLike | None = None, *, opset: int = 17, dynamic_batch: bool = True,
+                 exporter: str = "torchscript", seed: int = 0, tol: float | None = None) -> dict:
+    """:func:`export` for a spliced model in memory (one that carries its record, from :func:`splice.insert`
+    or :func:`splice.load`); the model is not changed. Same checks, same result."""
+    if info_of(model) is None:
+        raise SpliceError("export_model needs a spliced model (from splice.insert or splice.load), which carries "
+                          "its input shapes; save a plain model with splice.save(model, folder, source=SPEC) first")
+    _check_targets(onnx, pt2, opset, exporter)
+    return _export_loaded(model, "the model", onnx, pt2, opset=opset, dynamic_batch=dynamic_batch,
+                          exporter=exporter, seed=seed, tol=tol)
+
+
+def _check_targets(onnx, pt2, opset: int, exporter: str) -> None:
     if onnx is None and pt2 is None:
         raise SpliceError("export needs a target: onnx=FILE (--onnx FILE) and/or pt2=FILE (--pt2 FILE)")
     if onnx is not None:
@@ -114,7 +135,10 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
     for target in (onnx, pt2):
         if target is not None and Path(target).is_dir():
             raise SpliceError(f"export target '{target}' is a folder; give a file name such as model.onnx")
-    model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+
+
+def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bool, exporter: str, seed: int,
+                   tol: float | None) -> dict:
     shapes = info_of(model).input_shapes
     jobs = [(fmt, target) for fmt, target in (("onnx", onnx), ("pt2", pt2)) if target is not None]
     done = []
@@ -123,7 +147,7 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
                                                   exporter=exporter, seed=seed, tol=tol)
         if not result["passed"]:
             raise CheckFailed(
-                f"the {fmt} export of '{folder}' does not match the model ({result['detail']}); "
+                f"the {fmt} export of {what} does not match the model ({result['detail']}); "
                 f"nothing was written to '{target}'. Try another --opset or report the model"
             )
         path, digest = _keep(target, data)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -124,7 +125,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     atomic_write_text(outdir / "warps.csv", csv_text(rows))
     used = sorted({q for w in summary_warps.values() for q in w["quantities"]}, key=CSV_QUANTITIES.index)
     result = json_safe({
-        "schema_version": SCHEMA_VERSION, "model": str(folder), "data": str(data), "split": split,
+        "schema_version": SCHEMA_VERSION, "model": _name(folder), "data": str(data), "split": split,
         "n_images": int(sample.images.shape[0]), "accuracy": sample.accuracy, "warps": summary_warps,
         "help": {q: QUANTITY_HELP[q] for q in used}, "files": files,
     })
@@ -133,17 +134,31 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     return result
 
 
+def _name(folder) -> str:
+    from ..manifest import info_of
+
+    info = info_of(folder) if not isinstance(folder, (str, os.PathLike)) else None
+    return info.spec if info is not None else str(folder)
+
+
 def _load(folder, trust_pickle: bool, trust_code: bool = False):
-    """The spliced model of ``folder``, its warps and its record's facts."""
+    """The spliced model of ``folder`` (or ``folder`` itself, a spliced model in memory, run on a twin), its warps
+    and its record's facts."""
+    from torch import nn
+
+    from ..copies import private_buffers
     from ..manifest import info_of
     from ..store import load
     from ..surgery import warps_of
 
-    model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+    if isinstance(folder, nn.Module) and info_of(folder) is not None:
+        model = private_buffers(folder)  # the caller's model keeps its buffers and modes
+    else:
+        model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     warps = warps_of(model)
     if not warps:
         raise SpliceError(
-            f"'{folder}' holds no warps, so there is nothing to inspect; give a folder written by "
+            f"'{_name(folder)}' holds no warps, so there is nothing to inspect; give a folder written by "
             "'splice insert' or 'splice tune' with a warp recipe."
         )
     return model, warps, info_of(model)

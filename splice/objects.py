@@ -1,0 +1,121 @@
+"""Spliced models in memory, and those whose base was a module object rather than a spec.
+
+``splice.insert(model)`` with an ``nn.Module`` records its base as
+:data:`MODULE_SPEC`: only the caller's Python knows how that module was made,
+so no folder can rebuild it. Such a splice is checked and exported in memory:
+
+- :func:`remember_base` keeps a weak reference from the splice to the caller's
+  base module (it neither copies nor keeps it alive);
+- :func:`base_to_check_against` is the base :func:`splice.verify` compares
+  with: the one remembered, provided its weights still hash to those
+  recorded when it was spliced; else one line says what to do (hand the
+  base to :func:`splice.verification.verify_models`);
+- :func:`respecified` records a spec for it when the caller names one
+  (``splice.save(model, folder, source="pkg.module:factory")``), after
+  checking that the spec builds the same tensors;
+- :func:`cannot_rebuild` is the error a folder recording
+  :data:`MODULE_SPEC` gives instead of a build that cannot work.
+
+:func:`source_of_spliced` makes a :class:`~splice.sources.Source` from a
+spliced model's own record, for commands handed one in memory.
+
+Layer: above :mod:`splice.manifest` and :mod:`splice.sources`, below
+:mod:`splice.store` and :mod:`splice.api`.
+"""
+
+from __future__ import annotations
+
+import weakref
+from typing import Any
+
+from torch import nn
+
+from .errors import ManifestError, SpliceError
+from .fileio import state_dict_sha256
+from .hooks import WARP_PREFIX
+from .manifest import SpliceInfo, info_of
+from .sources import Source, load_source, parse_input_shapes
+
+__all__ = ["MODULE_SPEC", "remember_base", "base_to_check_against", "respecified", "cannot_rebuild",
+           "source_of_spliced"]
+
+MODULE_SPEC = "<module>"  # the spec a Source made from a module object carries
+
+# spliced model -> weak reference to the caller's base module it was made from
+_BASES: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+
+
+def _base_state(model: nn.Module) -> dict:
+    return {k: v for k, v in model.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
+
+
+def remember_base(spliced: nn.Module, base: nn.Module) -> None:
+    """Remember, weakly, that ``spliced`` was made from the module object ``base``."""
+    _BASES[spliced] = weakref.ref(base)
+
+
+_BY_HAND = "check it with splice.verification.verify_models(base, spliced), the base as it was when spliced"
+
+
+def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
+    """The module to verify ``spliced`` against in memory, or ``None`` when its record names a spec (a folder
+    can rebuild its base, and the checks run on what would be written).
+
+    For a splice of a module object: the module it was made from, if that is
+    still alive and still holds the weights recorded when it was spliced
+    (same sha256); else the comparison would say nothing about the splice.
+    """
+    info = info_of(spliced)
+    if info is None or info.spec != MODULE_SPEC:
+        return None
+    ref = _BASES.get(spliced)
+    base = ref() if ref is not None else None
+    if base is None:
+        raise SpliceError(f"this splice was made from a module object that is no longer there to compare with; "
+                          f"{_BY_HAND}")
+    if info.source_weights_sha256 and state_dict_sha256(base.state_dict()) != info.source_weights_sha256:
+        raise SpliceError(f"the module this splice was made from has changed since (its weights no longer hash to "
+                          f"those recorded); {_BY_HAND}")
+    return base
+
+
+def respecified(info: SpliceInfo, spliced: nn.Module, source: Any) -> SpliceInfo:
+    """``info`` with the spec (and builder options) of ``source`` in place of :data:`MODULE_SPEC`.
+
+    ``source`` is a spec string or a :class:`~splice.sources.Source`; what it
+    builds must have the splice's base tensors, name for name and shape for
+    shape, or a folder could not load its own weights.
+    """
+    src = load_source(source, warn_random=False) if isinstance(source, str) else source
+    if not isinstance(src, Source) or src.spec == MODULE_SPEC:
+        raise SpliceError("save(source=...) needs a spec string or a Source made from one, to record how the base "
+                          "is built; a module object cannot be rebuilt from a folder")
+    want = {k: tuple(v.shape) for k, v in _base_state(spliced).items()}
+    got = {k: tuple(v.shape) for k, v in src.model.state_dict().items()}
+    if want != got:
+        differ = sorted(set(want) ^ set(got)) or sorted(k for k in want if want[k] != got.get(k))
+        raise SpliceError(f"source {src.spec!r} does not build this splice's base (tensors differ: "
+                          f"{', '.join(differ[:4])}); pass the spec and kwargs the base module was made with")
+    return info.replace(spec=src.spec, kwargs=dict(src.kwargs))
+
+
+def cannot_rebuild(where: Any) -> ManifestError:
+    """The error for a record whose base is :data:`MODULE_SPEC`."""
+    return ManifestError(
+        f"'{where}' records its base as a module object given in memory, which no folder can rebuild; save the "
+        "spliced model again with the spec that builds its base (splice.save(model, folder, source='pkg.module:"
+        "factory')), or check it in memory (splice.verification.verify_models(base, model))"
+    )
+
+
+def source_of_spliced(model: nn.Module, input_shape=None) -> Source | None:
+    """A Source for a spliced model in memory, from the record it carries (``None`` for a plain model)."""
+    info = info_of(model)
+    if info is None:
+        return None
+    shapes = parse_input_shapes(input_shape) or ()
+    return Source(model=model, spec=info.spec, kwargs=dict(info.kwargs),
+                  input_shape=shapes[0] if shapes else info.input_shape,
+                  weights_sha256=state_dict_sha256(_base_state(model)), normalisation=info.normalisation,
+                  class_names=info.class_names, random_init=info.random_init, leaves=info.leaves,
+                  extra_inputs=tuple(shapes[1:]) if shapes else info.extra_inputs)

@@ -1,0 +1,115 @@
+"""Splices of a module object (not a spec): checked, exported and inspected in memory, and saved with a spec.
+
+Only the caller's Python knows how such a module was made, so no folder can
+rebuild its base; these tests hold splice to what a notebook user expects
+instead: ``splice.verify(splice.insert(model))`` works, and a folder that
+cannot be rebuilt says so in one line with the two ways out.
+"""
+
+from __future__ import annotations
+
+import gc
+import warnings
+
+import pytest
+import torch
+from torch import nn
+
+import splice
+from splice.errors import ManifestError, SpliceError
+from splice.objects import MODULE_SPEC
+from splice.store import open_source
+from splice.verification import verify_models
+
+
+def _net(channels: int = 8) -> nn.Module:
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Conv2d(1, channels, 3, padding=1), nn.BatchNorm2d(channels), nn.ReLU(),
+                         nn.Conv2d(channels, 8, 3, stride=2, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1),
+                         nn.Flatten(), nn.Linear(8, 10)).eval()
+
+
+def _spliced(base: nn.Module) -> nn.Module:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return splice.insert(base, at="recommended", input_shape=(1, 16, 16))
+
+
+def test_a_module_object_is_recorded_as_such():
+    assert splice.load_source(_net(), input_shape=(1, 16, 16)).spec == MODULE_SPEC
+    assert splice.manifest.info_of(_spliced(_net())).spec == MODULE_SPEC
+
+
+def test_verify_and_export_run_in_memory_against_the_module_it_was_made_from(tmp_path):
+    base = _net()
+    spliced = _spliced(base)
+    report = splice.verify(spliced, onnx=True)
+    assert report.passed, report.failed
+    assert "integrity" not in [c.check for c in report.checks]  # no folder was written: nothing to hash
+    result = splice.export(spliced, onnx=tmp_path / "net.onnx")
+    assert (tmp_path / "net.onnx").is_file() and result["exports"][0]["max_abs"] < 1e-5
+    # onnxruntime on the written file agrees with the model (outside reference)
+    import onnxruntime as ort
+
+    x = torch.randn(3, 1, 16, 16)
+    sess = ort.InferenceSession(str(tmp_path / "net.onnx"), providers=["CPUExecutionProvider"])
+    got = sess.run(None, {sess.get_inputs()[0].name: x.numpy()})[0]
+    with torch.no_grad():
+        assert torch.allclose(torch.from_numpy(got), base(x), atol=1e-5)
+
+
+def test_verify_needs_the_base_as_it_was():
+    base = _net()
+    spliced = _spliced(base)
+    with torch.no_grad():
+        base[0].weight.add_(1.0)  # trained on after splicing: no longer the base of this splice
+    with pytest.raises(SpliceError, match="has changed since.*verify_models"):
+        splice.verify(spliced)
+    assert verify_models(_net(), spliced).passed  # the same weights, in another object
+
+
+def test_verify_says_how_to_pass_a_base_that_is_gone():
+    spliced = _spliced(_net())
+    gc.collect()  # the base was only referenced weakly
+    with pytest.raises(SpliceError, match=r"no longer there.*verify_models\(base, spliced\)"):
+        splice.verify(spliced)
+    assert verify_models(_net(), spliced).passed
+
+
+def test_a_folder_of_a_module_object_says_it_cannot_be_rebuilt(tmp_path):
+    folder = splice.save(_spliced(_net()), tmp_path / "net")
+    for step in (lambda: splice.load(folder), lambda: splice.load(folder, trust_code=True),
+                 lambda: splice.verify(folder)):
+        with pytest.raises(ManifestError, match="module object given in memory.*source='pkg.module:factory'"):
+            step()
+
+
+def test_saved_with_the_spec_that_builds_it_the_folder_loads_and_verifies(tmp_path):
+    from splice.models import tray_net
+
+    src = splice.load_source("splice.models:tray_net", warn_random=False)
+    base = tray_net()
+    base.load_state_dict(src.model.state_dict())
+    spliced = _spliced_tray(base.eval())
+    folder = splice.save(spliced, tmp_path / "tray", source="splice.models:tray_net")
+    loaded = splice.load(folder)
+    x = torch.randn(2, *src.input_shape)
+    with torch.no_grad():
+        assert torch.equal(loaded(x), spliced(x))
+    assert splice.verify(folder).passed
+    with pytest.raises(SpliceError, match="does not build this splice's base"):
+        splice.save(_spliced(_net()), tmp_path / "wrong", source="splice.models:tray_net")
+
+
+def _spliced_tray(base):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return splice.insert(base, at="input", input_shape=(1, 28, 28))
+
+
+def test_commands_take_the_input_shape_from_the_record_a_spliced_model_carries(tmp_path):
+    spliced = _spliced(_net())
+    src = open_source(spliced)
+    assert src.input_shape == (1, 16, 16) and src.spec == MODULE_SPEC and src.model is spliced
+    result = splice.inspect(spliced, data="digits", n=4, out=tmp_path / "inspect", pictures=False)
+    assert result["model"] == MODULE_SPEC and result["n_images"] == 4
