@@ -381,6 +381,31 @@ def test_torchscript_is_refused_in_one_line_naming_where(tmp_path):
         load_source(str(tmp_path / "ts.pt"), input_shape=(3, 8, 8))
 
 
+
+def _float_net():
+    return torch.nn.Sequential(torch.nn.Conv2d(3, 4, 3, padding=1), torch.nn.ReLU(), torch.nn.AdaptiveAvgPool2d(1),
+                               torch.nn.Flatten(), torch.nn.Linear(4, 2)).eval()
+
+
+def test_a_quantized_model_is_refused_in_one_line_and_its_qat_form_is_not(tmp_path):
+    # meta-device shape propagation failed in the int8 Linear ("no fake impl"), with advice that could not help
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # torch.ao.quantization is deprecated in favour of torchao
+        quantized = torch.ao.quantization.quantize_dynamic(_float_net(), {torch.nn.Linear}, dtype=torch.qint8)
+    with pytest.raises(SourceError, match=r"^the model given: its module '4' \(Linear\) is quantized .*splice and "
+                                          r"tune the float model, then quantize the result"):
+        splice.points(quantized, (3, 8, 8))
+    torch.save(quantized, tmp_path / "q.pt")
+    with pytest.raises(SourceError, match="is quantized"):
+        load_source(str(tmp_path / "q.pt"), input_shape=(3, 8, 8), trust_pickle=True)
+    # quantization-aware training keeps float weights (with fake quantisation): that model trains, and passes
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        qat = _float_net().train()
+        qat.qconfig = torch.ao.quantization.get_default_qat_qconfig("fbgemm")
+        qat = torch.ao.quantization.prepare_qat(qat).eval()
+        assert splice.points(qat, (3, 8, 8))
+
 def test_reading_a_folder_leaves_device_contexts_working(hf_folder):
     # a fresh process whose first device context is the one transformers' loader enters
     import subprocess

@@ -99,6 +99,7 @@ def load_source(
     if isinstance(spec, nn.Module):
         spec = _uncompiled(spec)
         _refuse_scripted(spec, "the model given")
+        _refuse_quantized(spec, "the model given")
         if not shapes and getattr(spec, "input_shape", None):
             shapes = parse_input_shapes(spec.input_shape) or ()
         return Source(model=spec, spec="<module>", input_shape=shapes[0] if shapes else None,
@@ -124,6 +125,7 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
         return _load_path(spec, path, shapes, options)
     model, meta = build_model(spec, kw, origin=origin, trust_code=trust_code)
     _refuse_scripted(model, spec)
+    _refuse_quantized(model, spec)
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
@@ -156,6 +158,20 @@ def _refuse_scripted(model: nn.Module, what: str) -> None:
             where = f"its module '{name}' ({type(m).__name__})" if name else "it"
             raise SourceError(f"{what}: {where} is TorchScript (torch.jit.script or trace), which splice can neither "
                               "copy nor trace; use the Python module it was scripted from, with its weights")
+
+
+def _refuse_quantized(model: nn.Module, what: str) -> None:
+    """One line for a converted quantized model (torch.ao.quantization's int8 layers): a warp is trained by
+    gradients those layers do not pass, and their kernels have no meta-device version to list points with.
+    Quantization-aware training modules (float, with fake quantisation) are trainable and pass."""
+    for name, m in model.named_modules():
+        quantized = type(m).__module__.startswith(("torch.ao.nn.quantized", "torch.nn.quantized",
+                                                   "torch.ao.nn.intrinsic.quantized"))
+        if quantized or any(t.is_quantized for t in (*m._parameters.values(), *m._buffers.values())
+                            if t is not None):
+            where = f"its module '{name}' ({type(m).__name__})" if name else "it"
+            raise SourceError(f"{what}: {where} is quantized (int8 kernels pass no gradient to train a warp "
+                              "with); splice and tune the float model, then quantize the result")
 
 
 def _uncompiled(model: nn.Module) -> nn.Module:
@@ -225,6 +241,8 @@ def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> So
             f"'{path}' holds a {type(obj).__name__}, not a whole model; a state dict needs an "
             "architecture: use a spec such as torchvision:NAME or file.py:factory with --weights"
         )
+    _refuse_scripted(obj, str(path))
+    _refuse_quantized(obj, str(path))
     if not shapes and getattr(obj, "input_shape", None):
         shapes = parse_input_shapes(obj.input_shape) or ()
     if not shapes:
