@@ -127,14 +127,25 @@ def save(model, folder: str | os.PathLike, *, overwrite: bool = False, source=No
          class_names=None, normalisation=None) -> Path:
     """Write ``model`` as a splice folder (``weights.safetensors`` + ``splice.json``), atomically.
 
+    A splice of a module object records how to build its base only when
+    ``source`` names a spec; without one it is saved with a warning, since
+    ``load`` and ``verify`` cannot rebuild that folder.
+
     >>> import splice, tempfile
     >>> spliced = splice.insert("splice.models:tray_net", at="input")
     >>> folder = splice.save(spliced, tempfile.mkdtemp() + "/tray-affine")
     >>> sorted(p.name for p in folder.iterdir())
     ['splice.json', 'weights.safetensors']
     """
+    import warnings
+
+    from .errors import SpliceWarning
     from .store import save as save_folder
 
+    if source is None and _unrebuildable(model):
+        warnings.warn(f"'{folder}' will record its base as a module object, which load and verify cannot rebuild; "
+                      "pass source='pkg.module:factory' (a spec that builds the base) to save a folder they can",
+                      SpliceWarning, stacklevel=2)
     return save_folder(model, folder, overwrite=overwrite, source=source, tuning=tuning, class_names=class_names,
                        normalisation=normalisation)
 

@@ -77,7 +77,8 @@ def test_verify_says_how_to_pass_a_base_that_is_gone():
 
 
 def test_a_folder_of_a_module_object_says_it_cannot_be_rebuilt(tmp_path):
-    folder = splice.save(_spliced(_net()), tmp_path / "net")
+    with pytest.warns(splice.errors.SpliceWarning, match="load and verify cannot rebuild"):
+        folder = splice.save(_spliced(_net()), tmp_path / "net")
     for step in (lambda: splice.load(folder), lambda: splice.load(folder, trust_code=True),
                  lambda: splice.verify(folder)):
         with pytest.raises(ManifestError, match="module object given in memory.*source='pkg.module:factory'"):
@@ -99,6 +100,7 @@ def test_saved_with_the_spec_that_builds_it_the_folder_loads_and_verifies(tmp_pa
     assert splice.verify(folder).passed
     with pytest.raises(SpliceError, match="does not build this splice's base"):
         splice.save(_spliced(_net()), tmp_path / "wrong", source="splice.models:tray_net")
+    assert not (tmp_path / "wrong").exists()
 
 
 def _spliced_tray(base):
