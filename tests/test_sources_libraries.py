@@ -103,6 +103,32 @@ def test_a_folder_hashes_the_weights_it_read_and_only_those(hf_folder, monkeypat
     assert src.weights_sha256 == state_dict_sha256(_hf_resnet().state_dict())
 
 
+
+def test_a_folder_with_its_own_weights_is_built_once_for_real(hf_folder, monkeypatch):
+    # splice's own build is empty (meta device, no random init, no memory): transformers builds the model that
+    # holds the folder's weights, so a large model is not built and initialised twice
+    import splice.sources.source as source_module
+
+    devices = []
+    build = source_module.build_model
+    monkeypatch.setattr(source_module, "build_model",
+                        lambda *a, **k: devices.append(torch.empty(0).device.type) or build(*a, **k))
+    src = load_source(str(hf_folder), input_shape=(3, 32, 32))
+    assert devices == ["meta"]
+    assert not any(t.is_meta for t in (*src.model.parameters(), *src.model.buffers()))
+    x = torch.randn(2, 3, 32, 32)
+    with torch.no_grad():
+        assert torch.equal(src.model(x).logits, _hf_resnet()(x).logits)
+
+
+def test_a_bfloat16_folder_loads_in_float32_and_says_so(tmp_path):
+    _hf_resnet().to(torch.bfloat16).save_pretrained(tmp_path / "bf16")
+    with pytest.warns(SpliceWarning, match=r"were saved in bfloat16; they are cast to the model's float32"):
+        src = load_source(str(tmp_path / "bf16"), input_shape=(3, 32, 32))
+    want = _hf_resnet().to(torch.bfloat16).float().state_dict()
+    got = src.model.state_dict()
+    assert all(got[k].dtype == want[k].dtype and torch.equal(got[k], want[k]) for k in want)
+
 def test_the_recorded_spec_rebuilds_without_the_folder(hf_folder):
     src = load_source(str(hf_folder), input_shape=(3, 32, 32))
     model, _ = build_model(src.spec, json.loads(json.dumps(src.kwargs)))  # as splice.json holds it

@@ -224,8 +224,10 @@ def _device_contexts_primed() -> None:
         torch.empty(0)
 
 
-def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict:
-    """The weights of a ``save_pretrained`` folder in ``model``'s own names, read by transformers.
+def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tuple[Any, dict]:
+    """The model transformers builds from a ``save_pretrained`` folder for ``model``'s class and config (in the
+    dtype of ``model``'s parameters, which may be on the meta device), and the state it loaded, in the model's
+    own names.
 
     A folder holds its checkpoint's names, which are not always the model's: transformers 5 renames a ViT's
     ``attention.attention.key`` to ``attention.k_proj`` (and many more) when it loads, and back when it saves.
@@ -234,6 +236,9 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
     without the tensors it reports missing (left at their initial values). Tensors the folder has that the
     model does not, or of another shape, are refused by name unless ``allow_partial``.
     """
+    import torch
+
+    dtype = next((p.dtype for p in model.parameters() if p.is_floating_point()), torch.get_default_dtype())
     transformers = _transformers()
     _device_contexts_primed()
     verbosity, bars = transformers.logging.get_verbosity(), transformers.logging.is_progress_bar_enabled()
@@ -242,7 +247,7 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
     try:
         loaded, info = type(model).from_pretrained(
             str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
-            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True)
+            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True, dtype=dtype)
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
@@ -262,4 +267,4 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> dict
                       stacklevel=3)
     left_out = set(info.get("missing_keys") or ()) | {m[0] if isinstance(m, (tuple, list)) else m
                                                        for m in info.get("mismatched_keys") or ()}
-    return {k: v for k, v in loaded.state_dict().items() if k not in left_out}
+    return loaded, {k: v for k, v in loaded.state_dict().items() if k not in left_out}

@@ -14,6 +14,7 @@ from torch import nn
 from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
 from .builders import build_model
+from .empty import initialisers_skipped
 from .huggingface import is_hf_folder, read_hf_folder, read_hf_weights
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import check_spec
@@ -114,16 +115,17 @@ def load_source(
 
 
 def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, warn_random: bool,
-           hashed: bool = True) -> Source:
+           hashed: bool = True, empty: bool = False) -> Source:
     """:func:`load_source` for a spec that passed no folder test; without ``hashed`` the weights are left
-    unhashed (``weights_sha256=None``), for a caller about to load others."""
+    unhashed (``weights_sha256=None``), for a caller about to load others. With ``empty`` the model is built on
+    the meta device when it can be (no memory, no random init), for a caller that replaces it."""
     weights, allow_partial, trust_pickle = options["weights"], options["allow_partial"], options["trust_pickle"]
     origin, trust_code, leaves = options["origin"], options["trust_code"], options["leaves"]
     default_input_shape = options["default_input_shape"]
     check_spec(spec, kw, origin=origin, trust_code=trust_code)
     if ":" not in spec or path.is_dir():
         return _load_path(spec, path, shapes, options)
-    model, meta = build_model(spec, kw, origin=origin, trust_code=trust_code)
+    model, meta = _build(spec, kw, origin=origin, trust_code=trust_code, empty=empty)
     _refuse_scripted(model, spec)
     _refuse_quantized(model, spec)
     if weights is not None:
@@ -149,6 +151,22 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                   normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
                   leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]))
+
+
+def _state_dtype(state: Mapping[str, torch.Tensor]) -> str:
+    """The floating dtype of a state dict's first floating tensor, without ``torch.`` (``float32`` if none)."""
+    t = next((v for v in state.values() if isinstance(v, torch.Tensor) and v.is_floating_point()), None)
+    return str(t.dtype if t is not None else torch.float32).replace("torch.", "")
+
+
+def _build(spec: str, kw: dict, *, origin, trust_code: bool, empty: bool):
+    if not empty:
+        return build_model(spec, kw, origin=origin, trust_code=trust_code)
+    try:
+        with torch.device("meta"), initialisers_skipped():
+            return build_model(spec, kw, origin=origin, trust_code=trust_code)
+    except Exception:  # noqa: BLE001 - a model that computes with its tensors while it is built: for real
+        return build_model(spec, kw, origin=origin, trust_code=trust_code)
 
 
 def _refuse_scripted(model: nn.Module, what: str) -> None:
@@ -218,14 +236,21 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     options = {"weights": None if own else weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle,
                "leaves": leaves, "origin": origin, "trust_code": trust_code,
                "default_input_shape": default_input_shape}
-    # with the folder's own weights, the initial ones are not hashed: they are replaced below
+    # with the folder's own weights the model is built empty (no random init, no memory) and not hashed:
+    # transformers builds the model that holds them
     src = _built(hf.spec, Path(hf.spec), parse_kwargs(hf.kwargs), parse_input_shapes(shapes or hf.input_shape) or (),
-                 options, warn_random=False, hashed=not own)
+                 options, warn_random=False, hashed=not own, empty=own)
     if own:
-        state = read_hf_weights(path, src.model, allow_partial=allow_partial)
+        loaded, state = read_hf_weights(path, src.model, allow_partial=allow_partial)
         check_finite(state, f"weights '{weights}'")
-        load_weights_(src.model, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=hf.spec)
-        src.model.eval()
+        config = hf.kwargs.get("config") or {}
+        saved, now = str(config.get("dtype") or config.get("torch_dtype") or ""), str(_state_dtype(state))
+        if saved and saved != now:  # as for any weights file: the model keeps its dtype, and says so
+            warnings.warn(f"weights '{weights}' were saved in {saved}; they are cast to the model's {now} on load",
+                          SpliceWarning, stacklevel=3)
+        # names and shapes checked as for any weights file (a tensor the folder lacks is refused by name)
+        load_weights_(loaded, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=hf.spec)
+        src.model = loaded.eval()
         src.weights_path, src.random_init = str(weights), False
         src.weights_sha256 = state_dict_sha256(src.model.state_dict())
     if hf.normalisation is not None:
