@@ -102,9 +102,10 @@ def respecified(info: SpliceInfo, spliced: nn.Module, source: Any) -> SpliceInfo
 def cannot_rebuild(where: Any) -> ManifestError:
     """The error for a record whose base is :data:`MODULE_SPEC`."""
     return ManifestError(
-        f"'{where}' records its base as a module object given in memory, which no folder can rebuild; save the "
-        "spliced model again with the spec that builds its base (splice.save(model, folder, source='pkg.module:"
-        "factory')), or check it in memory (splice.verification.verify_models(base, model))"
+        f"'{where}' records its base as a module object given in memory, which no folder can rebuild; load its "
+        "weights into a splice of that module (spliced.load_state_dict(safetensors.torch.load_file(WEIGHTS))), "
+        "or save it again with the spec that builds its base (splice.save(model, folder, source='pkg.module:"
+        "factory'))"
     )
 
 
