@@ -245,7 +245,7 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
         check_finite(state, f"weights '{weights}'")
         config = hf.kwargs.get("config") or {}
         saved, now = str(config.get("dtype") or config.get("torch_dtype") or ""), str(_state_dtype(state))
-        if saved and saved != now:  # as for any weights file: the model keeps its dtype, and says so
+        if isinstance(getattr(torch, saved, None), torch.dtype) and saved != now:  # as a weights file does
             warnings.warn(f"weights '{weights}' were saved in {saved}; they are cast to the model's {now} on load",
                           SpliceWarning, stacklevel=3)
         # names and shapes checked as for any weights file (a tensor the folder lacks is refused by name)
