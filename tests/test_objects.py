@@ -121,3 +121,24 @@ def test_commands_take_the_input_shape_from_the_record_a_spliced_model_carries(t
     assert src.input_shape == (1, 16, 16) and src.spec == MODULE_SPEC and src.model is spliced
     result = splice.inspect(spliced, data="digits", n=4, out=tmp_path / "inspect", pictures=False)
     assert result["model"] == MODULE_SPEC and result["n_images"] == 4
+
+
+@pytest.mark.slow
+def test_tune_of_a_module_object_splice_says_what_its_run_folders_are(tmp_path):
+    from safetensors.torch import load_file
+
+    from splice.training import RecipeOverrides, RunOptions
+
+    spliced = _spliced_tray(_tray())
+    with pytest.warns(splice.errors.SpliceWarning, match="run's folders keep its weights, but load and verify cannot"):
+        splice.tune(spliced, recipe="warp-only", data="digits", out=tmp_path / "run",
+                    overrides=RecipeOverrides(epochs=1), run_options=RunOptions(quiet=True, progress=False))
+    again = _spliced_tray(_tray())
+    again.load_state_dict(load_file(str(tmp_path / "run" / "best" / "weights.safetensors")))  # the way out it names
+
+
+def _tray():
+    from splice.models import tray_net
+
+    torch.manual_seed(0)
+    return tray_net().eval()

@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as _dt
 import os
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -14,8 +15,9 @@ from torch import nn
 
 from ..copies import modes_kept
 from ..fileio import state_dict_sha256
-from ..errors import DataError, RecipeError, SpliceError
+from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
+from ..objects import MODULE_SPEC
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
 from ..surgery import WARP_PREFIX, warps_of
@@ -133,6 +135,10 @@ def load_model(req: Request, where: str):
         )
     if src.input_shape is None:
         raise SpliceError("tune needs the model's input shape; pass --input-shape CxHxW (input_shape=...)")
+    if getattr(info_of(net), "spec", None) == MODULE_SPEC and req.ckpt is None:
+        warnings.warn("this splice was made from a module object: the run's folders keep its weights, but load and "
+                      "verify cannot rebuild them; load their weights into the spliced model (load_state_dict), or "
+                      "splice a spec (pkg.module:factory)", SpliceWarning, stacklevel=4)
     return src, net, warps
 
 
