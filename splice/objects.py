@@ -71,8 +71,8 @@ def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
     ref = _BASES.get(spliced)
     base = ref() if ref is not None else None
     if base is None:
-        raise SpliceError(f"this splice was made from a module object that is no longer there to compare with; "
-                          f"{_BY_HAND}")
+        raise SpliceError(f"this splice was made from a module object, and splice holds no live reference to it "
+                          f"for this model (it is gone, or this model is a copy); {_BY_HAND}")
     if info.source_weights_sha256 and state_dict_sha256(base.state_dict()) != info.source_weights_sha256:
         raise SpliceError(f"the module this splice was made from has changed since (its weights no longer hash to "
                           f"those recorded); {_BY_HAND}")
