@@ -155,6 +155,8 @@ def test_a_fresh_splice_of_a_buffer_updating_model_passes_verify(tmp_path):
     assert report["provenance"].passed
     # the call counter counts even in eval mode: the checks ran on copies and say so
     assert any(k.endswith("count.calls") for k in report["buffers"].numbers["updated_in_eval"])
+    # verify built both models itself: the row says what it checked, copies of the folder's buffers
+    assert report["buffers"].detail.startswith("the checks ran on copies of the ")
 
 
 class _Caching(nn.Module):

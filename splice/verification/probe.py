@@ -132,6 +132,11 @@ class Snapshot:
         elif lost:
             detail = (f"the base updates {listed_names(lost)} in its forward, the spliced model does not; "
                       "mark the updating module as a leaf (--leaf TYPE) and re-create the splice")
+        elif not self.models:  # models verify built for itself: they ran on copies of the folder's buffers
+            detail = f"the checks ran on copies of the {len(self.buffers)} buffers read from the folder"
+            if updated:
+                detail += (f"; the forward updates {listed_names(updated)} even in eval mode, in base and splice "
+                           "alike")
         else:
             detail = f"all {len(self.buffers)} buffers bitwise unchanged; train/eval modes restored"
             if updated:
