@@ -35,6 +35,15 @@ def _source(model, **options):
     return open_source(model, **options)
 
 
+def _module(model):
+    """``model``, or the module ``torch.compile`` wrapped when it is such a wrapper (splice works on that one)."""
+    from torch import nn
+
+    from .sources import uncompiled
+
+    return uncompiled(model) if isinstance(model, nn.Module) else model
+
+
 def _unrebuildable(model) -> bool:
     from .manifest import info_of
     from .objects import MODULE_SPEC
@@ -182,6 +191,7 @@ def verify(model, *, images=None, batch: int = 1, dtype="float32", onnx: bool = 
     from .verification import verify as verify_folder
     from .verification import verify_models
 
+    model = _module(model)
     reference = _in_memory_base(model)
     if reference is not None:
         return verify_models(reference, model, images=images, batch=batch, dtype=dtype, onnx=onnx, opset=opset,
@@ -205,6 +215,7 @@ def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike 
     from .exporting import export as export_folder
     from .exporting import export_model
 
+    model = _module(model)
     if _unrebuildable(model):  # a splice of a module object: exported as it is, in memory
         return export_model(model, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
     with _as_folder(model, trust_pickle, trust_code) as folder:
@@ -263,6 +274,7 @@ def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pi
     """
     from .inspection import inspect as inspect_folder
 
+    model = _module(model)
     if _unrebuildable(model):  # a splice of a module object: inspected as it is, in memory
         return inspect_folder(model, data=data, n=n, split=split, out=out, pictures=pictures)
     with _as_folder(model, trust_pickle, trust_code) as folder:

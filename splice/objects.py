@@ -25,12 +25,17 @@ Layer: above :mod:`splice.manifest` and :mod:`splice.sources`, below
 
 from __future__ import annotations
 
+import copy
 import weakref
+from collections.abc import Callable
 from typing import Any
 
+import torch
 from torch import nn
 
-from .errors import ManifestError, SpliceError
+from .compare import compare_outputs
+from .copies import private_buffers, rng_kept
+from .errors import ManifestError, SpliceError, first_line
 from .fileio import state_dict_sha256
 from .hooks import WARP_PREFIX
 from .manifest import SpliceInfo, info_of
@@ -79,14 +84,21 @@ def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
     return base
 
 
-def respecified(info: SpliceInfo, spliced: nn.Module, source: Any) -> SpliceInfo:
-    """``info`` with the spec (and builder options) of ``source`` in place of :data:`MODULE_SPEC`.
+@rng_kept()
+def respecified(info: SpliceInfo, spliced: nn.Module, source: Any, assemble: Callable) -> SpliceInfo:
+    """``info`` with the spec (and builder options) of ``source`` in place of :data:`MODULE_SPEC`, once that
+    spec is shown to rebuild ``spliced``.
 
-    ``source`` is a spec string or a :class:`~splice.sources.Source`; what it
+    ``source`` is a spec string or a :class:`~splice.sources.Source`. What it
     builds must have the splice's base tensors, name for name and shape for
-    shape, or a folder could not load its own weights.
+    shape; then the recorded splice is applied to it (``assemble``, the
+    store's own rebuild), it takes the splice's weights, and its outputs on a
+    seeded probe must match ``spliced``'s: a network with the same tensors
+    and another forward would load, and pass every check, as a different
+    model. The caller's random generators are kept.
     """
-    src = load_source(source, warn_random=False) if isinstance(source, str) else source
+    src = (load_source(source, warn_random=False, input_shape=[tuple(s) for s in info.input_shapes])
+           if isinstance(source, str) else source)
     if not isinstance(src, Source) or src.spec == MODULE_SPEC:
         raise SpliceError("save(source=...) needs a spec string or a Source made from one, to record how the base "
                           "is built; a module object cannot be rebuilt from a folder")
@@ -96,7 +108,23 @@ def respecified(info: SpliceInfo, spliced: nn.Module, source: Any) -> SpliceInfo
         differ = sorted(set(want) ^ set(got)) or sorted(k for k in want if want[k] != got.get(k))
         raise SpliceError(f"source {src.spec!r} does not build this splice's base (tensors differ: "
                           f"{', '.join(differ[:4])}); pass the spec and kwargs the base module was made with")
-    return info.replace(spec=src.spec, kwargs=dict(src.kwargs))
+    new = info.replace(spec=src.spec, kwargs=dict(src.kwargs))
+    state = {k: v.detach().clone() for k, v in spliced.state_dict().items()}
+    try:
+        again = assemble(copy.deepcopy(src.model), new, state, f"source {src.spec!r}")
+    except Exception as exc:  # noqa: BLE001 - whatever stops the rebuild means the spec does not rebuild it
+        raise SpliceError(f"source {src.spec!r} does not rebuild this splice ({first_line(exc)}); pass the spec "
+                          "and kwargs the base module was made with") from exc
+    param = next(iter(spliced.parameters()), None)
+    gen = torch.Generator().manual_seed(0)
+    xs = [torch.randn((2, *shape), generator=gen).to(dtype=param.dtype if param is not None else torch.float32)
+          for shape in info.input_shapes]
+    with torch.no_grad():
+        result = compare_outputs(private_buffers(spliced).eval()(*xs), private_buffers(again).eval()(*xs))
+    if not result["passed"]:
+        raise SpliceError(f"source {src.spec!r} builds a network with this splice's tensors but other outputs "
+                          f"({result['detail']}); pass the spec and kwargs the base module was made with")
+    return new
 
 
 def cannot_rebuild(where: Any) -> ManifestError:

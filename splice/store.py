@@ -116,7 +116,7 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
 
     info = info_of(model) or _plain_info(source)
     if info.spec == MODULE_SPEC and source is not None:
-        info = respecified(info, model, source)
+        info = respecified(info, model, source, assemble)
     changes = {"tuning": dict(tuning) if tuning is not None else None,
                "class_names": list(class_names) if class_names is not None else None,
                "normalisation": dict(normalisation) if normalisation is not None else None,

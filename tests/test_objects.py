@@ -142,3 +142,63 @@ def _tray():
 
     torch.manual_seed(0)
     return tray_net().eval()
+
+
+_LOOKALIKES = """
+import torch
+from torch import nn
+
+
+class Same(nn.Sequential):
+    def __init__(self):
+        super().__init__(nn.Conv2d(1, 8, 3, padding=1), nn.BatchNorm2d(8), nn.ReLU(),
+                         nn.Conv2d(8, 8, 3, stride=2, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
+                         nn.Linear(8, 10))
+
+
+class Other(Same):
+    # the same tensors, another forward: a sigmoid where the base has its first ReLU
+    def forward(self, x):
+        return super().forward(torch.sigmoid(x))
+
+
+def same():
+    return Same()
+
+
+def other():
+    return Other()
+"""
+
+
+def test_save_records_a_spec_only_if_it_rebuilds_the_same_network(tmp_path):
+    # a spec with the splice's tensors but another forward loaded and passed every check as a different model
+    path = tmp_path / "lookalikes.py"
+    path.write_text(_LOOKALIKES)
+    spliced = _spliced(_net())
+    torch.manual_seed(3)
+    want = torch.rand(3)
+    torch.manual_seed(3)
+    with pytest.raises(SpliceError, match=r"builds a network with this splice's tensors but other outputs"):
+        splice.save(spliced, tmp_path / "other", source=f"{path}:other")
+    assert not (tmp_path / "other").exists()
+    folder = splice.save(spliced, tmp_path / "same", source=f"{path}:same")
+    assert torch.equal(torch.rand(3), want)  # building the spec to check it drew none of the caller's numbers
+    loaded = splice.load(folder, trust_code=True)
+    x = torch.randn(2, 1, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(loaded(x), spliced(x))
+    assert splice.verify(folder, trust_code=True).passed
+
+
+def test_a_compiled_splice_of_a_module_object_is_checked_as_the_module_it_wraps(tmp_path):
+    base = _net()
+    compiled = torch.compile(_spliced(base))  # wrapping only: nothing compiles until it is called
+    with pytest.warns(splice.errors.SpliceWarning, match="torch.compile'd"):
+        report = splice.verify(compiled)
+    assert report.passed, report.failed
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")  # the exporter's own deprecation notes too
+        splice.export(compiled, onnx=tmp_path / "net.onnx")
+    assert any("torch.compile'd" in str(w.message) for w in seen)
+    assert (tmp_path / "net.onnx").is_file()

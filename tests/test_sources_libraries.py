@@ -431,6 +431,12 @@ def test_a_quantized_model_is_refused_in_one_line_and_its_qat_form_is_not(tmp_pa
         qat.qconfig = torch.ao.quantization.get_default_qat_qconfig("fbgemm")
         qat = torch.ao.quantization.prepare_qat(qat).eval()
         assert splice.points(qat, (3, 8, 8))
+        # a float model ready to quantize: its adds are FloatFunctional modules, which live beside the int8 ones
+        import torchvision
+
+        ready = torchvision.models.quantization.mobilenet_v2(quantize=False, weights=None).eval()
+        assert any(type(m).__name__ == "FloatFunctional" for m in ready.modules())
+        assert splice.points(ready, (3, 32, 32))
 
 def test_reading_a_folder_leaves_device_contexts_working(hf_folder):
     # a fresh process whose first device context is the one transformers' loader enters

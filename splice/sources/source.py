@@ -98,7 +98,7 @@ def load_source(
         return spec
     shapes = parse_input_shapes(input_shape) or ()
     if isinstance(spec, nn.Module):
-        spec = _uncompiled(spec)
+        spec = uncompiled(spec)
         _refuse_scripted(spec, "the model given")
         _refuse_quantized(spec, "the model given")
         if not shapes and getattr(spec, "input_shape", None):
@@ -178,21 +178,32 @@ def _refuse_scripted(model: nn.Module, what: str) -> None:
                               "copy nor trace; use the Python module it was scripted from, with its weights")
 
 
+def _converted_quantized_classes() -> frozenset:
+    """The module classes torch.ao.quantization converts float layers into (int8 kernels), by its own tables."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # torch.ao.quantization is deprecated in favour of torchao
+        from torch.ao.quantization import quantization_mappings as tables
+    return frozenset({*tables.get_default_static_quant_module_mappings().values(),
+                      *tables.get_default_dynamic_quant_module_mappings().values()})
+
+
 def _refuse_quantized(model: nn.Module, what: str) -> None:
     """One line for a converted quantized model (torch.ao.quantization's int8 layers): a warp is trained by
     gradients those layers do not pass, and their kernels have no meta-device version to list points with.
-    Quantization-aware training modules (float, with fake quantisation) are trainable and pass."""
+    Float models that are ready to quantize (FloatFunctional, quantization-aware training) pass."""
+    converted = None
     for name, m in model.named_modules():
-        quantized = type(m).__module__.startswith(("torch.ao.nn.quantized", "torch.nn.quantized",
-                                                   "torch.ao.nn.intrinsic.quantized"))
-        if quantized or any(t.is_quantized for t in (*m._parameters.values(), *m._buffers.values())
-                            if t is not None):
+        quantized = any(t.is_quantized for t in (*m._parameters.values(), *m._buffers.values()) if t is not None)
+        if not quantized and type(m).__module__.startswith(("torch.ao.nn", "torch.nn.quantized")):
+            converted = _converted_quantized_classes() if converted is None else converted
+            quantized = type(m) in converted
+        if quantized:
             where = f"its module '{name}' ({type(m).__name__})" if name else "it"
             raise SourceError(f"{what}: {where} is quantized (int8 kernels pass no gradient to train a warp "
                               "with); splice and tune the float model, then quantize the result")
 
 
-def _uncompiled(model: nn.Module) -> nn.Module:
+def uncompiled(model: nn.Module) -> nn.Module:
     """The module ``torch.compile`` wrapped, when ``model`` is that wrapper, with a warning; else ``model``.
 
     The wrapper's forward is compiled code that neither torch.fx nor a meta-device run can follow, and the
