@@ -151,3 +151,18 @@ def test_cli_insert_writes_folder(tmp_path, capsys):
     assert main(["points", str(out), "--json"]) == 0
     listing = capsys.readouterr().out
     assert '"splice_warps_input"' in listing or "splice_warps" in listing
+
+
+def test_a_spliced_model_survives_torch_save_and_load(tmp_path):
+    # torch.load re-traces a pickled GraphModule with its recorded tracer class, made without arguments
+    import io
+
+    spliced = insert("splice.models:tray_net", at="input")
+    buf = io.BytesIO()
+    torch.save(spliced, buf)
+    buf.seek(0)
+    again = torch.load(buf, weights_only=False)  # a whole pickled module: the caller's own choice to unpickle
+    x = torch.randn(2, 1, 28, 28)
+    with torch.no_grad():
+        assert torch.equal(again.eval()(x), spliced.eval()(x))
+    assert again.splice_info.point_names == ["input"]

@@ -41,9 +41,11 @@ class TraceModeWarning(GraphWarning):
 
 
 class _Tracer(fx.Tracer):
-    def __init__(self, rule: LeafRule):
+    def __init__(self, rule: LeafRule | None = None):
+        # ``rule`` has a default because a pickled GraphModule records its tracer class and torch.load re-traces
+        # the module with an instance made without arguments (a subclass that keeps every module a leaf)
         super().__init__()
-        self._rule = rule
+        self._rule = rule if rule is not None else LeafRule(())
         self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
         # id(tensor) -> (tensor, its first name), for the root's parameters and its buffers, made on the first
         # lookup: fx's own getattr searches every parameter, then every buffer, of the root on each read
