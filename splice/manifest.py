@@ -61,6 +61,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .errors import ManifestError
+from .sources import MODULE_SPEC
 from .warps import WarpConfig
 
 __all__ = [
@@ -293,7 +294,7 @@ class SpliceInfo:
     (:func:`splice.insert`'s identity check on the spliced model).
     """
 
-    spec: str = "<module>"
+    spec: str = MODULE_SPEC
     input_shape: tuple[int, int, int] | None = None
     kwargs: dict = field(default_factory=dict)
     normalisation: dict | None = None

@@ -39,12 +39,10 @@ from .errors import ManifestError, SpliceError, first_line
 from .fileio import state_dict_sha256
 from .hooks import WARP_PREFIX
 from .manifest import SpliceInfo, info_of
-from .sources import Source, load_source, parse_input_shapes
+from .sources import MODULE_SPEC, Source, load_source, parse_input_shapes
 
 __all__ = ["MODULE_SPEC", "remember_base", "base_to_check_against", "respecified", "cannot_rebuild",
            "source_of_spliced"]
-
-MODULE_SPEC = "<module>"  # the spec a Source made from a module object carries
 
 # spliced model -> weak reference to the caller's base module it was made from
 _BASES: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()

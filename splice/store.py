@@ -89,7 +89,7 @@ def base_part(state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
 
 def _plain_info(source) -> SpliceInfo:
     src = load_source(source, warn_random=False) if isinstance(source, str) else source
-    if src is None or getattr(src, "spec", "<module>") == "<module>":
+    if src is None or getattr(src, "spec", MODULE_SPEC) == MODULE_SPEC:
         raise SpliceError(
             "save() needs to know how to rebuild the base architecture; pass "
             "source='torchvision:NAME' / 'pkg.mod:factory' or a Source from splice.load_source"

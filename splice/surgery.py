@@ -29,7 +29,8 @@ from .copies import private_buffers
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info
-from .objects import MODULE_SPEC, remember_base
+from .objects import remember_base
+from .sources import MODULE_SPEC
 
 __all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "warps_of", "base_state_dict"]
 

@@ -34,7 +34,7 @@ from .adopting import adopt_state
 from .builders import IMAGENET_NORMALISATION, build_model
 from .empty import initialisers_skipped
 from .huggingface import is_hf_folder, read_hf_folder
-from .source import Source, load_source, uncompiled
+from .source import MODULE_SPEC, Source, load_source, uncompiled
 from .specs import format_shape, parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import REGISTRY_KINDS, TRUST_ENV, RegistryKind, check_spec, code_trusted, register_kind, registry_kind_of
 from .weights import (
@@ -51,6 +51,7 @@ from .weights import (
 __all__ = [
     "Source",
     "adopt_state",
+    "MODULE_SPEC",
     "load_source",
     "uncompiled",
     "build_model",

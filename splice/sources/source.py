@@ -60,6 +60,9 @@ class Source:
         return bool(self.manifest and self.manifest.get("points"))
 
 
+MODULE_SPEC = "<module>"  # the spec of a Source made from a module object: no spec can rebuild it
+
+
 def _looks_like_pickled_module(spec: str) -> bool:
     return ":" not in spec and spec.endswith(_WEIGHT_SUFFIXES) and not spec.endswith(".safetensors")
 
@@ -103,7 +106,7 @@ def load_source(
         _refuse_quantized(spec, "the model given")
         if not shapes and getattr(spec, "input_shape", None):
             shapes = parse_input_shapes(spec.input_shape) or ()
-        return Source(model=spec, spec="<module>", input_shape=shapes[0] if shapes else None,
+        return Source(model=spec, spec=MODULE_SPEC, input_shape=shapes[0] if shapes else None,
                       weights_sha256=state_dict_sha256(spec.state_dict()), extra_inputs=tuple(shapes[1:]))
     options = {"weights": weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle, "leaves": leaves,
                "origin": origin, "trust_code": trust_code, "default_input_shape": default_input_shape}

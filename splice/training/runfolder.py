@@ -23,6 +23,7 @@ from ..fileio import atomic_write_json, atomic_write_text, make_dir, read_json, 
 from ..errors import SpliceError
 from ..folders import LOCK_FILE, RUN_FILE, RUN_FORMAT, FolderLock, lock_holder
 from ..recipes import Recipe, recipe_to_toml
+from ..sources import MODULE_SPEC
 
 __all__ = ["RUN_SCHEMA_VERSION", "RUN_FORMAT", "RUN_FILE", "RECIPE_FILE", "METRICS_FILE", "HASH_ENV", "STATUSES",
            "read_metrics", "truncate_metrics", "append_metrics", "writing", "prepare_folder", "check_same",
@@ -99,7 +100,7 @@ def describe(model: Any) -> str:
         text = os.fspath(model)
         p = Path(text)
         return str(p.resolve()) if p.exists() else text
-    return getattr(model, "spec", "<module>")
+    return getattr(model, "spec", MODULE_SPEC)
 
 
 def check_same(what: str, given: Any, recorded: Any, run: Path) -> None:

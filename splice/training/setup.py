@@ -17,9 +17,9 @@ from ..copies import modes_kept
 from ..fileio import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
-from ..objects import MODULE_SPEC
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
+from ..sources import MODULE_SPEC
 from ..surgery import WARP_PREFIX, warps_of
 from .batches import mix
 from .checkpoint import CHECKPOINT_NAME, load_checkpoint
@@ -74,7 +74,7 @@ def gate_recorded_model(resume, model, model_options: ModelOptions) -> None:
         return
     from ..sources import check_spec
     recorded = read_run_info(Path(resume))
-    if recorded["model"] != "<module>" and not Path(recorded["model"]).is_dir():
+    if recorded["model"] != MODULE_SPEC and not Path(recorded["model"]).is_dir():
         check_spec(recorded["model"], recorded.get("model_kwargs"), origin=Path(resume) / RUN_FILE,
                    trust_code=model_options.trust_code)
 
@@ -93,7 +93,7 @@ def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: Recip
             )
     check_same("model", describe(model) if model is not None else None, info["model"], run_dir)
     check_same("data", data, info["data"], run_dir)
-    if model is None and info["model"] == "<module>":
+    if model is None and info["model"] == MODULE_SPEC:
         raise SpliceError(f"run '{run_dir}' was started from an nn.Module object; pass the same model again to resume")
     # the architecture must be rebuilt exactly as it was: reuse the recorded builder options. A model taken
     # from run.json names code from a file, so it passes the gate of splice.sources.check_spec
@@ -128,7 +128,7 @@ def load_model(req: Request, where: str):
             f"{where} ({rec.mode}) trains plain models, but {describe(model)} holds warps at "
             f"{', '.join(warps)}; use 'joint', 'warp-only' or 'staged', or tune the model before splicing"
         )
-    if not warps and info_of(net) is None and getattr(src, "spec", "<module>") == "<module>":
+    if not warps and info_of(net) is None and getattr(src, "spec", MODULE_SPEC) == MODULE_SPEC:
         raise SpliceError(
             "tune cannot save a plain nn.Module without knowing how to rebuild it; pass a spec string "
             "(e.g. 'splice.models:tray_net') or a Source from splice.load_source"
