@@ -56,6 +56,7 @@ from __future__ import annotations
 import copy
 import dataclasses
 import math
+import weakref
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -76,6 +77,8 @@ __all__ = [
     "validate_manifest",
     "info_of",
     "attach_info",
+    "remember_base",
+    "remembered_base",
     "copy_model",
 ]
 
@@ -446,6 +449,22 @@ def attach_info(model, info: SpliceInfo) -> None:
     model.splice_info = info
     if isinstance(getattr(model, "meta", None), dict):
         model.meta["splice_info"] = info
+
+
+# spliced model -> weak reference to the module object it was made from (see splice.objects)
+_BASES: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+
+
+def remember_base(spliced, base) -> None:
+    """Remember, weakly, that ``spliced`` was made from the module object ``base`` (kept neither alive nor copied:
+    a copy of ``spliced`` has no link)."""
+    _BASES[spliced] = weakref.ref(base)
+
+
+def remembered_base(spliced):
+    """The module object ``spliced`` was made from, while it is alive; else ``None``."""
+    ref = _BASES.get(spliced)
+    return ref() if ref is not None else None
 
 
 def copy_model(model):

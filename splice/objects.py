@@ -4,58 +4,44 @@
 :data:`MODULE_SPEC`: only the caller's Python knows how that module was made,
 so no folder can rebuild it. Such a splice is checked and exported in memory:
 
-- :func:`remember_base` keeps a weak reference from the splice to the caller's
-  base module (it neither copies nor keeps it alive);
+- :func:`splice.manifest.remember_base` (re-exported here) keeps a weak
+  reference from the splice to the caller's base module (it neither copies
+  nor keeps it alive), beside the record the splice carries;
 - :func:`base_to_check_against` is the base :func:`splice.verify` compares
   with: the one remembered, provided its weights still hash to those
   recorded when it was spliced; else one line says what to do (hand the
   base to :func:`splice.verification.verify_models`);
 - :func:`respecified` records a spec for it when the caller names one
   (``splice.save(model, folder, source="pkg.module:factory")``), after
-  checking that the spec builds the same tensors;
+  checking that the splice rebuilt on it gives the same outputs;
 - :func:`cannot_rebuild` is the error a folder recording
   :data:`MODULE_SPEC` gives instead of a build that cannot work.
 
 :func:`source_of_spliced` makes a :class:`~splice.sources.Source` from a
 spliced model's own record, for commands handed one in memory.
 
-Layer: above :mod:`splice.manifest` and :mod:`splice.sources`, below
-:mod:`splice.store` and :mod:`splice.api`.
+Layer: beside :mod:`splice.surgery` (whose probe comparison it uses), above
+:mod:`splice.manifest` and :mod:`splice.sources`, below :mod:`splice.store`
+and :mod:`splice.api`.
 """
 
 from __future__ import annotations
 
 import copy
-import weakref
 from collections.abc import Callable
 from typing import Any
 
-import torch
 from torch import nn
 
-from .compare import compare_outputs
-from .copies import private_buffers, rng_kept
+from .copies import rng_kept
 from .errors import ManifestError, SpliceError, first_line
 from .fileio import state_dict_sha256
-from .hooks import WARP_PREFIX
-from .manifest import SpliceInfo, info_of
+from .manifest import SpliceInfo, info_of, remember_base, remembered_base
 from .sources import MODULE_SPEC, Source, load_source, parse_input_shapes
+from .surgery import base_state_dict, quick_check
 
 __all__ = ["MODULE_SPEC", "remember_base", "base_to_check_against", "respecified", "cannot_rebuild",
            "source_of_spliced"]
-
-# spliced model -> weak reference to the caller's base module it was made from
-_BASES: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
-
-
-def _base_state(model: nn.Module) -> dict:
-    return {k: v for k, v in model.state_dict().items() if not k.startswith(WARP_PREFIX + ".")}
-
-
-def remember_base(spliced: nn.Module, base: nn.Module) -> None:
-    """Remember, weakly, that ``spliced`` was made from the module object ``base``."""
-    _BASES[spliced] = weakref.ref(base)
-
 
 _BY_HAND = "check it with splice.verification.verify_models(base, spliced), the base as it was when spliced"
 
@@ -71,8 +57,7 @@ def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
     info = info_of(spliced)
     if info is None or info.spec != MODULE_SPEC:
         return None
-    ref = _BASES.get(spliced)
-    base = ref() if ref is not None else None
+    base = remembered_base(spliced)
     if base is None:
         raise SpliceError(f"this splice was made from a module object, and splice holds no live reference to it "
                           f"for this model (it is gone, or this model is a copy); {_BY_HAND}")
@@ -100,7 +85,7 @@ def respecified(info: SpliceInfo, spliced: nn.Module, source: Any, assemble: Cal
     if not isinstance(src, Source) or src.spec == MODULE_SPEC:
         raise SpliceError("save(source=...) needs a spec string or a Source made from one, to record how the base "
                           "is built; a module object cannot be rebuilt from a folder")
-    want = {k: tuple(v.shape) for k, v in _base_state(spliced).items()}
+    want = {k: tuple(v.shape) for k, v in base_state_dict(spliced).items()}
     got = {k: tuple(v.shape) for k, v in src.model.state_dict().items()}
     if want != got:
         differ = sorted(set(want) ^ set(got)) or sorted(k for k in want if want[k] != got.get(k))
@@ -113,12 +98,7 @@ def respecified(info: SpliceInfo, spliced: nn.Module, source: Any, assemble: Cal
     except Exception as exc:  # noqa: BLE001 - whatever stops the rebuild means the spec does not rebuild it
         raise SpliceError(f"source {src.spec!r} does not rebuild this splice ({first_line(exc)}); pass the spec "
                           "and kwargs the base module was made with") from exc
-    param = next(iter(spliced.parameters()), None)
-    gen = torch.Generator().manual_seed(0)
-    xs = [torch.randn((2, *shape), generator=gen).to(dtype=param.dtype if param is not None else torch.float32)
-          for shape in info.input_shapes]
-    with torch.no_grad():
-        result = compare_outputs(private_buffers(spliced).eval()(*xs), private_buffers(again).eval()(*xs))
+    result = quick_check(spliced, again, info.input_shapes, tol=None)
     if not result["passed"]:
         raise SpliceError(f"source {src.spec!r} builds a network with this splice's tensors but other outputs "
                           f"({result['detail']}); pass the spec and kwargs the base module was made with")
@@ -143,6 +123,6 @@ def source_of_spliced(model: nn.Module, input_shape=None) -> Source | None:
     shapes = parse_input_shapes(input_shape) or ()
     return Source(model=model, spec=info.spec, kwargs=dict(info.kwargs),
                   input_shape=shapes[0] if shapes else info.input_shape,
-                  weights_sha256=state_dict_sha256(_base_state(model)), normalisation=info.normalisation,
+                  weights_sha256=state_dict_sha256(base_state_dict(model)), normalisation=info.normalisation,
                   class_names=info.class_names, random_init=info.random_init, leaves=info.leaves,
                   extra_inputs=tuple(shapes[1:]) if shapes else info.extra_inputs)

@@ -28,8 +28,7 @@ from .compare import compare_outputs
 from .copies import private_buffers
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .hooks import WARP_PREFIX, apply_hooks
-from .manifest import PointRecord, SpliceInfo, attach_info
-from .objects import remember_base
+from .manifest import PointRecord, SpliceInfo, attach_info, remember_base
 from .sources import MODULE_SPEC
 
 __all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "warps_of", "base_state_dict"]
@@ -125,8 +124,9 @@ def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
         have.add(key)
 
 
-def _quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float = 1e-5) -> dict:
-    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32) per input.
+def quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float | None = 1e-5) -> dict:
+    """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32) per input (``tol=None``: the
+    tolerance of the outputs' dtype).
 
     Both models run as twins with their own buffers and modes
     (:func:`splice.copies.private_buffers`): a forward that counts its calls
@@ -379,7 +379,7 @@ def insert(
     if check:
         _check_forward_fits(base, src.input_shape, listing, batch=2)
     gm, sites = _splice(base, plan, listing, src, leaves=leaves, traced=traced, within=within)
-    result = _quick_check(base, gm, src.input_shapes, tol=tol) if check else None
+    result = quick_check(base, gm, src.input_shapes, tol=tol) if check else None
     points = [PointRecord(it.point, it.config, tuple(by_name[it.point].shape), bool(by_name[it.point].cut))
               for it in plan]
     attach_info(gm, SpliceInfo.from_source(src, points=points, leaves=leaves, check=result,

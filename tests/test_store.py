@@ -121,7 +121,7 @@ def test_failed_insert_writes_nothing(tmp_path, capsys, monkeypatch):
     def broken_check(*args, **kwargs):
         return {"passed": False, "detail": "max relative error 0.5 (tolerance 1e-05)"}
 
-    monkeypatch.setattr(surgery, "_quick_check", broken_check)
+    monkeypatch.setattr(surgery, "quick_check", broken_check)
     out = tmp_path / "never"
     assert main(["insert", "splice.models:tray_net", "--at", "input", "--out", str(out)]) == 1
     assert "differs from the base" in capsys.readouterr().err
