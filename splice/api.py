@@ -44,14 +44,6 @@ def _module(model):
     return uncompiled(model) if isinstance(model, nn.Module) else model
 
 
-def _unrebuildable(model) -> bool:
-    from .manifest import info_of
-    from .objects import MODULE_SPEC
-
-    info = info_of(model) if not isinstance(model, (str, os.PathLike)) else None
-    return info is not None and info.spec == MODULE_SPEC
-
-
 def _in_memory_base(model):
     """The base to verify ``model`` against in memory (a splice of a module object), else ``None``."""
     from .objects import base_to_check_against
@@ -149,9 +141,10 @@ def save(model, folder: str | os.PathLike, *, overwrite: bool = False, source=No
     import warnings
 
     from .errors import SpliceWarning
+    from .objects import made_from_object
     from .store import save as save_folder
 
-    if source is None and _unrebuildable(model):
+    if source is None and made_from_object(model):
         warnings.warn(f"'{folder}' will record its base as a module object, which load and verify cannot rebuild; "
                       "pass source='pkg.module:factory' (a spec that builds the base) to save a folder they can",
                       SpliceWarning, stacklevel=2)
@@ -214,9 +207,10 @@ def export(model, onnx: str | os.PathLike | None = None, pt2: str | os.PathLike 
     """
     from .exporting import export as export_folder
     from .exporting import export_model
+    from .objects import made_from_object
 
     model = _module(model)
-    if _unrebuildable(model):  # a splice of a module object: exported as it is, in memory
+    if made_from_object(model):  # a splice of a module object: exported as it is, in memory
         return export_model(model, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
     with _as_folder(model, trust_pickle, trust_code) as folder:
         return export_folder(folder, onnx=onnx, pt2=pt2, opset=opset, dynamic_batch=dynamic_batch,
@@ -273,9 +267,10 @@ def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pi
     0.0
     """
     from .inspection import inspect as inspect_folder
+    from .objects import made_from_object
 
     model = _module(model)
-    if _unrebuildable(model):  # a splice of a module object: inspected as it is, in memory
+    if made_from_object(model):  # a splice of a module object: inspected as it is, in memory
         return inspect_folder(model, data=data, n=n, split=split, out=out, pictures=pictures)
     with _as_folder(model, trust_pickle, trust_code) as folder:
         return inspect_folder(folder, data=data, n=n, split=split, out=out, trust_pickle=trust_pickle,

@@ -40,10 +40,16 @@ from .manifest import SpliceInfo, info_of, remember_base, remembered_base
 from .sources import MODULE_SPEC, Source, load_source, parse_input_shapes
 from .surgery import base_state_dict, quick_check
 
-__all__ = ["MODULE_SPEC", "remember_base", "base_to_check_against", "respecified", "cannot_rebuild",
-           "source_of_spliced"]
+__all__ = ["MODULE_SPEC", "remember_base", "made_from_object", "base_to_check_against", "respecified",
+           "cannot_rebuild", "source_of_spliced"]
 
 _BY_HAND = "check it with splice.verification.verify_models(base, spliced), the base as it was when spliced"
+
+
+def made_from_object(model: Any) -> bool:
+    """``model`` is a spliced model in memory whose record names :data:`MODULE_SPEC` (no folder rebuilds it)."""
+    info = info_of(model) if isinstance(model, nn.Module) else None
+    return info is not None and info.spec == MODULE_SPEC
 
 
 def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
@@ -54,9 +60,9 @@ def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
     still alive and still holds the weights recorded when it was spliced
     (same sha256); else the comparison would say nothing about the splice.
     """
-    info = info_of(spliced)
-    if info is None or info.spec != MODULE_SPEC:
+    if not made_from_object(spliced):
         return None
+    info = info_of(spliced)
     base = remembered_base(spliced)
     if base is None:
         raise SpliceError(f"this splice was made from a module object, and splice holds no live reference to it "

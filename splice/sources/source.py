@@ -102,8 +102,7 @@ def load_source(
     shapes = parse_input_shapes(input_shape) or ()
     if isinstance(spec, nn.Module):
         spec = uncompiled(spec)
-        _refuse_scripted(spec, "the model given")
-        _refuse_quantized(spec, "the model given")
+        _refuse_unspliceable(spec, "the model given")
         if not shapes and getattr(spec, "input_shape", None):
             shapes = parse_input_shapes(spec.input_shape) or ()
         return Source(model=spec, spec=MODULE_SPEC, input_shape=shapes[0] if shapes else None,
@@ -129,8 +128,7 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
     if ":" not in spec or path.is_dir():
         return _load_path(spec, path, shapes, options)
     model, meta = _build(spec, kw, origin=origin, trust_code=trust_code, empty=empty)
-    _refuse_scripted(model, spec)
-    _refuse_quantized(model, spec)
+    _refuse_unspliceable(model, spec)
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
@@ -170,6 +168,12 @@ def _build(spec: str, kw: dict, *, origin, trust_code: bool, empty: bool):
             return build_model(spec, kw, origin=origin, trust_code=trust_code)
     except Exception:  # noqa: BLE001 - a model that computes with its tensors while it is built: for real
         return build_model(spec, kw, origin=origin, trust_code=trust_code)
+
+
+def _refuse_unspliceable(model: nn.Module, what: str) -> None:
+    """One line for a model splice cannot copy, trace or train a warp in (TorchScript, converted int8 layers)."""
+    _refuse_scripted(model, what)
+    _refuse_quantized(model, what)
 
 
 def _refuse_scripted(model: nn.Module, what: str) -> None:
@@ -280,8 +284,7 @@ def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> So
             f"'{path}' holds a {type(obj).__name__}, not a whole model; a state dict needs an "
             "architecture: use a spec such as torchvision:NAME or file.py:factory with --weights"
         )
-    _refuse_scripted(obj, str(path))
-    _refuse_quantized(obj, str(path))
+    _refuse_unspliceable(obj, str(path))
     if not shapes and getattr(obj, "input_shape", None):
         shapes = parse_input_shapes(obj.input_shape) or ()
     if not shapes:

@@ -19,6 +19,7 @@ from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
+from ..objects import made_from_object
 from ..sources import MODULE_SPEC
 from ..surgery import WARP_PREFIX, warps_of
 from .batches import mix
@@ -135,7 +136,7 @@ def load_model(req: Request, where: str):
         )
     if src.input_shape is None:
         raise SpliceError("tune needs the model's input shape; pass --input-shape CxHxW (input_shape=...)")
-    if getattr(info_of(net), "spec", None) == MODULE_SPEC and req.ckpt is None:
+    if made_from_object(net) and req.ckpt is None:
         warnings.warn("this splice was made from a module object: the run's folders keep its weights, but load and "
                       "verify cannot rebuild them; load their weights into the spliced model (load_state_dict), or "
                       "splice a spec (pkg.module:factory)", SpliceWarning, stacklevel=4)
