@@ -615,14 +615,18 @@ def test_half_precision_model_gets_half_input():
         ("input", (3, 16, 16)), ("_0", (4, 14, 14)), ("_1", (4, 14, 14))]
 
 
-class _TakesExtras(nn.Module):
-    """A forward that also takes ``*args`` and ``**kwargs`` (options it passes on, or ignores)."""
+class _TwoConvs(nn.Module):
+    """Two convolutions and a linear head, for forwards that differ only in the options they take."""
 
-    def __init__(self):
+    def __init__(self, classes: int = 2):
         super().__init__()
         self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
         self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
-        self.head = nn.Linear(4, 2)
+        self.head = nn.Linear(4, classes)
+
+
+class _TakesExtras(_TwoConvs):
+    """A forward that also takes ``*args`` and ``**kwargs`` (options it passes on, or ignores)."""
 
     def forward(self, x, *args, **kwargs):
         return self.head(self.conv2(torch.relu(self.conv1(x))).mean((2, 3)))
@@ -640,14 +644,11 @@ def test_a_forward_with_star_args_and_star_kwargs_is_listed_and_spliced():
         assert torch.equal(spliced(x), model(x))
 
 
-class _WithTargets(nn.Module):
+class _WithTargets(_TwoConvs):
     """A training-code forward: options after the image, and a branch on whether one was given."""
 
     def __init__(self):
-        super().__init__()
-        self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
-        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
-        self.head = nn.Linear(4, 3)
+        super().__init__(classes=3)
 
     def forward(self, x, targets=None, mask=None, temperature: float = 1.0):
         f = torch.relu(self.conv1(x))
