@@ -27,7 +27,6 @@ and :mod:`splice.api`.
 
 from __future__ import annotations
 
-import copy
 from collections.abc import Callable
 from typing import Any
 
@@ -100,7 +99,8 @@ def respecified(info: SpliceInfo, spliced: nn.Module, source: Any, assemble: Cal
     new = info.replace(spec=src.spec, kwargs=dict(src.kwargs))
     state = {k: v.detach().clone() for k, v in spliced.state_dict().items()}
     try:
-        again = assemble(copy.deepcopy(src.model), new, state, f"source {src.spec!r}")
+        # the record's points are re-applied to a copy (assemble's copy_base covers a record without any)
+        again = assemble(src.model, new, state, f"source {src.spec!r}", copy_base=True)
     except Exception as exc:  # noqa: BLE001 - whatever stops the rebuild means the spec does not rebuild it
         raise SpliceError(f"source {src.spec!r} does not rebuild this splice ({first_line(exc)}); pass the spec "
                           "and kwargs the base module was made with") from exc
