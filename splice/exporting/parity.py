@@ -15,14 +15,14 @@ mis-lowered op or a warp applied in the wrong place differs by 1e-1 or more.
 from __future__ import annotations
 
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
 import torch
 from torch import nn
 
 from ..compare import compare_outputs, detached, flatten_outputs
-from ..copies import private_buffers
+from ..copies import private_buffers, tree_copy
 from ..errors import CheckFailed, SpliceError, first_line
 from .onnx import (
     MIN_OPSET,
@@ -36,9 +36,11 @@ from .onnx import (
 )
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
-__all__ = ["EXPORT_TOLERANCES", "onnx_parity", "check_onnx_graph"]
+__all__ = ["EXPORT_TOLERANCES", "LOWERING_ERROR", "onnx_parity", "check_onnx_graph"]
 
 EXPORT_TOLERANCES = {torch.float32: 1e-3, torch.float64: 1e-9}
+#: the relative error of a mis-lowered operator or a warp applied in the wrong place (measured, see above)
+LOWERING_ERROR = 0.1
 
 
 def as_batches(inputs) -> list[tuple[torch.Tensor, ...]]:
@@ -82,8 +84,14 @@ def _ort_session(model, *, optimise: bool = True):
         raise CheckFailed(f"onnxruntime cannot load the exported graph ({first}); try another --opset, "
                           "or report the model") from None
 
-def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra: dict, tol, known=None) -> dict:
-    """Compare ``session`` with ``torch_model`` on every batch (``known``: torch outputs already at hand)."""
+def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra: dict, tol, known=None,
+                 model_of: Callable[[], nn.Module] | None = None) -> dict:
+    """Compare ``session`` with ``torch_model`` on every batch (``known``: torch outputs already at hand).
+
+    ``model_of`` gives the torch model (``torch_model`` by default) for a
+    float64 re-run when a float32 batch misses the tolerance (:func:`_judged_exactly`).
+    """
+    model_of = model_of or (None if torch_model is None else (lambda: torch_model))
     results = []
     for i, xs in enumerate(batches):
         if known is not None:
@@ -98,8 +106,45 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
             first = first_line(exc)
             return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
                     "detail": f"onnxruntime failed on a batch of {xs[0].shape[0]}: {first}"}
-        results.append(compare_flat(ref, outs, tol))
+        results.append(_judged_exactly(compare_flat(ref, outs, tol), ref, outs, xs, model_of))
     return merge_parities(results)
+
+def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
+    """A float32 comparison that missed its tolerance, judged against the model run in float64.
+
+    A probe can be ill-conditioned in float32: a LayerNorm over channels that
+    are almost zero (a warp that samples outside the image, a zero-initialised
+    bias) turns rounding into output. Then torch itself is far from exact
+    arithmetic, and onnxruntime, rounding in another order, cannot be closer
+    to torch than that. The comparison passes when the export differs from
+    torch float32 by no more than torch float32 differs from float64 on the
+    same probe, and that rounding stays below :data:`LOWERING_ERROR` (above
+    it, float32 cannot tell a mis-lowered operator from rounding).
+    """
+    if result["passed"] or result.get("max_rel") is None or not result.get("shapes_equal") or model_of is None:
+        return result
+    if any(not (x.is_floating_point() and x.dtype == torch.float32) for x in xs):
+        return result
+    try:
+        with torch.no_grad():
+            exact = tree_copy(model_of()).double().eval()(*[x.double() for x in xs])
+    except Exception:  # a model that cannot run in float64: the float32 verdict stands
+        return result
+    own = compare_outputs(exact, ref)
+    export = compare_flat(exact, outs, 1.0)
+    if own.get("max_rel") is None or not own.get("shapes_equal") or export.get("max_rel") is None:
+        return result
+    rounding = own["max_rel"]
+    if rounding > LOWERING_ERROR or result["max_rel"] > rounding:
+        if rounding > result["tolerance"]:
+            return {**result, "detail": f"{result['detail']}; torch float32 itself is {rounding:.3g} from float64 on "
+                    "this probe" + (", too far to tell an export error from rounding" if rounding > LOWERING_ERROR
+                                    else "")}
+        return result
+    return {**result, "passed": True, "float64_rounding": rounding,
+            "detail": (f"max abs error {result['max_abs']:.3g}, max relative error {result['max_rel']:.3g}: above the "
+                       f"tolerance {result['tolerance']:g}, within this probe's float32 rounding (torch float32 is "
+                       f"{rounding:.3g} from float64, the export {export['max_rel']:.3g})")}
 
 def _overridable(proto, names: Sequence[str]):
     """Declare the named initializers overridable graph inputs (values unchanged), in place.
@@ -146,8 +191,10 @@ def merge_parities(results: list[dict]) -> dict:
     nums = [r for r in results if r.get("max_abs") is not None]
     worst = max(nums, key=lambda r: r["max_rel"]) if nums else results[0]
     top1 = [r["top1"] for r in results if r.get("top1") is not None]
+    rounding = [r["float64_rounding"] for r in results if r.get("float64_rounding") is not None]
     return {"passed": ok, "max_abs": max((r["max_abs"] for r in nums), default=None),
             "max_rel": max((r["max_rel"] for r in nums), default=None), "top1": min(top1) if top1 else None,
+            "float64_rounding": max(rounding, default=None),
             "detail": next((r["detail"] for r in results if not r["passed"]), worst["detail"])}
 
 def compare_flat(reference, outputs: list, tol: float) -> dict:
@@ -179,12 +226,19 @@ def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list
         detail = (f"max abs error {stored['max_abs']:.3g} as stored"
                   + (f", {perturbed['max_abs']:.3g} with a perturbed warp" if perturbed else ", no warps to perturb")
                   + f" (relative tolerance {tol:g})")
+        lenient = [(what, r) for what, r in (("as stored", stored), ("perturbed", perturbed))
+                   if r is not None and r.get("float64_rounding") is not None]
+        for what, r in lenient:
+            detail += (f"; {what}, relative error {r['max_rel']:.3g} is within the probe's float32 rounding (torch "
+                       f"float32 is {r['float64_rounding']:.3g} from float64)")
     return {
         "passed": passed,
         "max_abs": stored["max_abs"], "max_rel": stored["max_rel"], "top1": stored["top1"],
         "max_abs_perturbed": perturbed["max_abs"] if perturbed else None,
         "max_rel_perturbed": perturbed["max_rel"] if perturbed else None,
         "tolerance": tol, "batch_sizes": sizes, "perturbed_by": how, "detail": detail,
+        "float64_rounding": max((r["float64_rounding"] for r in (stored, perturbed)
+                                 if r is not None and r.get("float64_rounding") is not None), default=None),
     }
 
 def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
@@ -282,7 +336,7 @@ def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, ref
     if values:
         twin = perturbed_copy(model) if perturbed_references is None else None
         perturbed = _run_batches(twin, session, images, batches, _perturbed_feeds(own, values), tol,
-                                 perturbed_references)
+                                 perturbed_references, model_of=lambda: twin or perturbed_copy(model))
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
 
 def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=None,

@@ -138,7 +138,7 @@ def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int,
     numbers = {"opset": opset, "exporter": exporter, "weights_as_inputs": fed,
                **{k: result[k] for k in ("export_seconds", "check_seconds", "bytes", "max_abs", "max_rel",
                                          "max_abs_perturbed", "max_rel_perturbed", "tolerance", "perturbed_by",
-                                         "batch_sizes")}}
+                                         "float64_rounding", "batch_sizes")}}
     if example[0].dtype != torch.float32:
         numbers["note"] = "run in float32 (onnxruntime's GridSample is float32)"
     summary = (f"abs {short_number(result['max_abs'])}, perturbed {short_number(result['max_abs_perturbed'])}, "
