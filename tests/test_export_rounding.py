@@ -1,4 +1,5 @@
-"""A float32 parity miss judged against float64: rounding passes, a real difference does not.
+"""Export parity misses: a float32 miss judged against float64 (rounding passes, a real difference does not),
+and an export that fails with a dynamic and a static batch alike.
 
 onnxruntime and torch round in different orders; on an ill-conditioned probe
 (a LayerNorm over nearly-zero channels behind a warp that samples outside the
@@ -87,3 +88,36 @@ def test_rounding_too_large_to_judge_fails():
     result = _parity(rounding=2 * LOWERING_ERROR, offset=0.01)
     assert not result["passed"]
     assert "too far to tell" in result["detail"]
+
+
+class _Offset(nn.Module):
+    """Adds 1 while exporting: the export computes something else than the model (kept a leaf, so that the
+    check runs at export time, not once at trace time)."""
+
+    def forward(self, y):
+        return y + 1.0 if torch.onnx.is_in_onnx_export() else y
+
+
+class _OffWhenExported(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.off = _Offset()
+
+    def forward(self, x):
+        return self.off(self.conv(x).mean((2, 3)))
+
+
+def test_export_failing_at_both_batch_kinds_says_how_each_failed(tmp_path):
+    import splice
+    from splice.errors import CheckFailed
+
+    torch.manual_seed(0)
+    spliced = splice.insert(_OffWhenExported().eval(), at="input", input_shape=(3, 16, 16), leaves=[_Offset])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(CheckFailed) as caught:
+            splice.export(spliced, onnx=tmp_path / "off.onnx")
+    message = str(caught.value)
+    assert "as stored" in message and "with a static batch of 1: as stored" in message
+    assert not (tmp_path / "off.onnx").exists()

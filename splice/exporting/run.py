@@ -75,8 +75,11 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
         if result["passed"]:
             return data, result, seconds, True
         static = _one(model, fmt, shapes, dynamic_batch=False, **options)
-        if not static[1]["passed"]:
-            return (data, result, seconds, True) if data is not None else (*static, False)
+        if not static[1]["passed"]:  # both fail: say how each did, so --static-batch is not tried in vain
+            if data is None:
+                return (*static, False)
+            both = {**result, "detail": f"{result['detail']}; with a static batch of 1: {static[1]['detail']}"}
+            return data, both, seconds, True
         warnings.warn(
             f"the {fmt} export with a dynamic batch does not match the model at batch sizes 1 and 3 "
             f"({result['detail']}); the model's graph depends on its batch size, so a static batch of 1 is "
