@@ -102,9 +102,12 @@ def exporting(model: nn.Module, exporter: str, opset: int):
         raise
     except Exception as exc:
         first = first_line(exc)
+        other = (f"--exporter dynamo --opset {max(opset, DYNAMO_MIN_OPSET)} (Python: exporter='dynamo', "
+                 f"opset={max(opset, DYNAMO_MIN_OPSET)})" if exporter == "torchscript"
+                 else "--exporter torchscript (Python: exporter='torchscript')")
         raise SpliceError(
             f"ONNX export ({exporter}, opset {opset}) failed: {type(exc).__name__}: {first}; "
-            "try another --opset, or exporter='dynamo'/'torchscript'"
+            f"try {other}, or another --opset"
         ) from exc
 
 @contextlib.contextmanager

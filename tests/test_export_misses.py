@@ -121,3 +121,31 @@ def test_export_failing_at_both_batch_kinds_says_how_each_failed(tmp_path):
     message = str(caught.value)
     assert "as stored" in message and "with a static batch of 1: as stored" in message
     assert not (tmp_path / "off.onnx").exists()
+
+
+class _Folds(nn.Module):
+    """Unfolds and folds back (im2col, col2im): the TorchScript exporter has col2im from opset 18 only."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+
+    def forward(self, x):
+        cols = nn.functional.unfold(self.conv(x), kernel_size=2, stride=2)
+        return nn.functional.fold(cols, output_size=x.shape[-2:], kernel_size=2, stride=2).mean((2, 3))
+
+
+@pytest.mark.slow  # the dynamo exporter takes seconds
+def test_failed_export_names_the_other_exporter_and_an_opset_it_takes(tmp_path):
+    import splice
+    from splice.errors import SpliceError
+
+    torch.manual_seed(0)
+    spliced = splice.insert(_Folds().eval(), at="input", input_shape=(3, 16, 16))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(SpliceError, match=r"col2im.*try --exporter dynamo --opset 18 \(Python: exporter='dynamo'"):
+            splice.export(spliced, onnx=tmp_path / "folds.onnx")
+        # and the advice works
+        result = splice.export(spliced, onnx=tmp_path / "folds.onnx", opset=18, exporter="dynamo")["exports"][0]
+    assert result["max_abs"] < 1e-5 and (tmp_path / "folds.onnx").is_file()
