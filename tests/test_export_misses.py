@@ -24,7 +24,7 @@ import torch
 from torch import nn
 
 from splice.exporting import onnx_parity
-from splice.exporting.parity import EXPORT_TOLERANCES, LOWERING_ERROR
+from splice.exporting.parity import EXPORT_TOLERANCES, ROUNDING_LIMIT
 
 pytest.importorskip("onnxruntime")
 
@@ -49,7 +49,7 @@ def _probe() -> tuple[torch.Tensor, float]:
     return x, r
 
 
-def _parity(rounding: float, offset: float) -> dict:
+def _parity(rounding: float, offset: float, tol: float | None = None) -> dict:
     """onnx_parity of a model whose float32 output is ``rounding`` (relative) from float64, exported with
     ``offset`` (relative) added."""
     x, r = _probe()
@@ -59,7 +59,7 @@ def _parity(rounding: float, offset: float) -> dict:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DeprecationWarning)  # the TorchScript exporter, which splice uses too
         torch.onnx.export(model, (x,), buf, opset_version=17, dynamo=False, input_names=["input"])
-    return onnx_parity(model, buf.getvalue(), x)
+    return onnx_parity(model, buf.getvalue(), x, tol=tol)
 
 
 def test_exact_export_passes_without_float64():
@@ -81,13 +81,19 @@ def test_difference_beyond_float32_rounding_fails():
     result = _parity(rounding=0.02, offset=0.04)
     assert not result["passed"]
     assert result["max_rel"] == pytest.approx(0.04, rel=0.05)
-    assert "from float64" in result["detail"]
+    assert "more than rounding explains" in result["detail"]
 
 
-def test_rounding_too_large_to_judge_fails():
-    result = _parity(rounding=2 * LOWERING_ERROR, offset=0.01)
+def test_very_ill_conditioned_probe_passes_a_small_difference():
+    # as measured on twins_svt_small and focalnet_tiny_srf: torch float32 0.16-0.17 from float64, export 3e-3..7e-3
+    result = _parity(rounding=0.16, offset=0.005)
+    assert result["passed"] and result["float64_rounding"] == pytest.approx(0.16, rel=0.05)
+
+
+def test_difference_too_large_for_rounding_fails_however_ill_conditioned():
+    result = _parity(rounding=0.5, offset=2 * ROUNDING_LIMIT)
     assert not result["passed"]
-    assert "too far to tell" in result["detail"]
+    assert "too large to put down to rounding" in result["detail"]
 
 
 class _Offset(nn.Module):
@@ -149,3 +155,9 @@ def test_failed_export_names_the_other_exporter_and_an_opset_it_takes(tmp_path):
         # and the advice works
         result = splice.export(spliced, onnx=tmp_path / "folds.onnx", opset=18, exporter="dynamo")["exports"][0]
     assert result["max_abs"] < 1e-5 and (tmp_path / "folds.onnx").is_file()
+
+
+def test_a_tolerance_the_caller_sets_is_kept_as_it_is():
+    assert _parity(rounding=0.02, offset=0.01)["passed"]  # the default tolerance is judged against float64
+    result = _parity(rounding=0.02, offset=0.01, tol=EXPORT_TOLERANCES[torch.float32])
+    assert not result["passed"] and result["float64_rounding"] is None

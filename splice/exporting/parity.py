@@ -36,11 +36,14 @@ from .onnx import (
 )
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
-__all__ = ["EXPORT_TOLERANCES", "LOWERING_ERROR", "onnx_parity", "check_onnx_graph"]
+__all__ = ["EXPORT_TOLERANCES", "ROUNDING_LIMIT", "onnx_parity", "check_onnx_graph"]
 
 EXPORT_TOLERANCES = {torch.float32: 1e-3, torch.float64: 1e-9}
-#: the relative error of a mis-lowered operator or a warp applied in the wrong place (measured, see above)
-LOWERING_ERROR = 0.1
+#: the largest float32 miss that can be put down to rounding (see :func:`_judged_exactly`): a rule of thumb, our
+#: choice, no source. A GridSample lowered with another mode or align_corners differs by 0.26-0.40 on the
+#: tray model with the perturbed warp, another padding mode by 0.013-0.02 (measured); on a well-conditioned
+#: probe those fail anyway, as torch float32 is then within 1e-6 of float64
+ROUNDING_LIMIT = 0.02
 
 
 def as_batches(inputs) -> list[tuple[torch.Tensor, ...]]:
@@ -85,13 +88,15 @@ def _ort_session(model, *, optimise: bool = True):
                           "or report the model") from None
 
 def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra: dict, tol, known=None,
-                 model_of: Callable[[], nn.Module] | None = None) -> dict:
+                 model_of: Callable[[], nn.Module] | None = None, judged: bool = True) -> dict:
     """Compare ``session`` with ``torch_model`` on every batch (``known``: torch outputs already at hand).
 
     ``model_of`` gives the torch model (``torch_model`` by default) for a
-    float64 re-run when a float32 batch misses the tolerance (:func:`_judged_exactly`).
+    float64 re-run when a float32 batch misses the tolerance (:func:`_judged_exactly`); not with ``judged``
+    false (a tolerance the caller set is kept as it is).
     """
     model_of = model_of or (None if torch_model is None else (lambda: torch_model))
+    model_of = model_of if judged else None
     results = []
     for i, xs in enumerate(batches):
         if known is not None:
@@ -113,13 +118,13 @@ def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
     """A float32 comparison that missed its tolerance, judged against the model run in float64.
 
     A probe can be ill-conditioned in float32: a LayerNorm over channels that
-    are almost zero (a warp that samples outside the image, a zero-initialised
-    bias) turns rounding into output. Then torch itself is far from exact
-    arithmetic, and onnxruntime, rounding in another order, cannot be closer
-    to torch than that. The comparison passes when the export differs from
-    torch float32 by no more than torch float32 differs from float64 on the
-    same probe, and that rounding stays below :data:`LOWERING_ERROR` (above
-    it, float32 cannot tell a mis-lowered operator from rounding).
+    are zero in exact arithmetic but rounding noise in float32 (a warp whose
+    grid lands a hair inside the image, a zero-initialised conv bias) turns
+    rounding into output. Then torch float32 is far from exact arithmetic,
+    and onnxruntime, rounding in another order, cannot be expected to agree
+    with torch more closely than that. The comparison passes when the export
+    differs from torch float32 by no more than torch float32 differs from
+    float64 on the same probe, and by no more than :data:`ROUNDING_LIMIT`.
     """
     if result["passed"] or result.get("max_rel") is None or not result.get("shapes_equal") or model_of is None:
         return result
@@ -134,15 +139,16 @@ def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
     export = compare_flat(exact, outs, 1.0)
     if own.get("max_rel") is None or not own.get("shapes_equal") or export.get("max_rel") is None:
         return result
-    rounding = own["max_rel"]
-    if rounding > LOWERING_ERROR or result["max_rel"] > rounding:
-        if rounding > result["tolerance"]:
-            return {**result, "detail": f"{result['detail']}; torch float32 itself is {rounding:.3g} from float64 on "
-                    "this probe" + (", too far to tell an export error from rounding" if rounding > LOWERING_ERROR
-                                    else "")}
-        return result
+    rounding, miss = own["max_rel"], result["max_rel"]
+    if miss > rounding or miss > ROUNDING_LIMIT:
+        if rounding <= result["tolerance"]:
+            return result
+        why = ("more than rounding explains" if miss > rounding
+               else f"too large to put down to rounding (limit {ROUNDING_LIMIT:g})")
+        return {**result, "detail": f"{result['detail']}; torch float32 itself is {rounding:.3g} from float64 on "
+                                    f"this probe, but the difference is {why}"}
     return {**result, "passed": True, "float64_rounding": rounding,
-            "detail": (f"max abs error {result['max_abs']:.3g}, max relative error {result['max_rel']:.3g}: above the "
+            "detail": (f"max abs error {result['max_abs']:.3g}, max relative error {miss:.3g}: above the "
                        f"tolerance {result['tolerance']:g}, within this probe's float32 rounding (torch float32 is "
                        f"{rounding:.3g} from float64, the export {export['max_rel']:.3g})")}
 
@@ -260,12 +266,13 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
 
     model = private_buffers(model)  # evaluated in eval mode on a twin: the caller's modes and buffers stay
     proto = _load_onnx(onnx_model)
-    tol = parity_tolerance(model, tol)
+    judged, tol = tol is None, parity_tolerance(model, tol)
     batches = as_batches(inputs)
     if references is not None and len(references) != len(batches):
         raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
     if _weight_inputs(proto, model):
-        return _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references)
+        return _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references,
+                                          judged=judged)
     if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
         proto = onnx.ModelProto()
         proto.CopyFrom(onnx_model)
@@ -282,7 +289,7 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
 
     def run(torch_model, sess, extra: dict, known=None) -> dict:
         names = [i.name for i in sess.get_inputs()[:len(batches[0])]]
-        return _run_batches(torch_model, sess, names, batches, extra, tol, known)
+        return _run_batches(torch_model, sess, names, batches, extra, tol, known, judged=judged)
 
     stored = run(model, session, {}, references)
     perturbed = None
@@ -318,7 +325,7 @@ def _weight_inputs(proto, model: nn.Module) -> list[str]:
     return extra
 
 def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, references,
-                               perturbed_references=None, optimise: bool = True) -> dict:
+                               perturbed_references=None, optimise: bool = True, judged: bool = True) -> dict:
     """One session of a weights-as-inputs graph, fed ``model``'s tensors, then the perturbed head tensors.
 
     ``perturbed_references`` may hold the perturbed model's outputs when the
@@ -330,13 +337,13 @@ def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, ref
     own = {i.name: state[i.name].detach().cpu().numpy() for i in session.get_inputs()[len(images):]
            if i.name in state}
     model.eval()  # a twin of the caller's model
-    stored = _run_batches(model, session, images, batches, own, tol, references)
+    stored = _run_batches(model, session, images, batches, own, tol, references, judged=judged)
     perturbed = None
     values = perturbed_tensors(model) if perturb else {}
     if values:
         twin = perturbed_copy(model) if perturbed_references is None else None
         perturbed = _run_batches(twin, session, images, batches, _perturbed_feeds(own, values), tol,
-                                 perturbed_references, model_of=lambda: twin or perturbed_copy(model))
+                                 perturbed_references, model_of=lambda: twin or perturbed_copy(model), judged=judged)
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
 
 def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=None,
@@ -357,7 +364,7 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     """
     check_opset(opset, "torchscript")
     model = private_buffers(model)  # traced and run in eval mode on a twin: the caller's modes and buffers stay
-    tol = parity_tolerance(model, tol)
+    judged, tol = tol is None, parity_tolerance(model, tol)
     swapped = perturbed_tensors(model) if perturb else {}
     start = time.perf_counter()
     xs = as_inputs(example)
@@ -381,5 +388,5 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     # or fuse ahead of time, and the file that ships is checked by export()
     result = _parity_with_weight_inputs(model, data, [xs], perturb=bool(swapped), tol=tol,
                                         references=None if reference is None else [reference],
-                                        perturbed_references=[traced], optimise=False)
+                                        perturbed_references=[traced], optimise=False, judged=judged)
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
