@@ -102,8 +102,9 @@ def test_no_label_is_read_and_the_base_stays_bit_for_bit(tmp_path, folders, spli
         raise AssertionError("a label-free run opened a labelled data set")
     monkeypatch.setattr("splice.data.open_data", no_labelled_data)
     out = tmp_path / "run"
-    summary = tune(str(spliced), recipe=_tiny(), site=str(site), out=out,
-                   overrides=RecipeOverrides(reference=str(ref)), run_options=QUIET)
+    # the folders as pathlib.Path objects, as a Python caller has them (recorded as strings)
+    summary = tune(str(spliced), recipe=_tiny(), site=site, out=out,
+                   overrides=RecipeOverrides(reference=ref), run_options=QUIET)
     assert summary["best_accuracy"] is None and not summary["base_changed"] and not summary["interrupted"]
     assert _base_hash(out / "last") == _base_hash(spliced) == _base_hash(out / "best")
     rows = read_metrics(out)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 
 __all__ = ["RecipeOverrides", "RunOptions"]
@@ -25,11 +26,14 @@ class RecipeOverrides:
     lr: float | None = None
     batch_size: int | None = None
     seed: int | None = None
-    reference: str | None = None
+    reference: str | os.PathLike | None = None
 
     def __post_init__(self) -> None:
+        if isinstance(self.reference, os.PathLike):  # a folder given as a path is recorded as its string
+            object.__setattr__(self, "reference", os.fspath(self.reference))
         if self.reference is not None and (not isinstance(self.reference, str) or not self.reference):
-            raise ValueError(f"RecipeOverrides.reference must be None or a data set name; got {self.reference!r}")
+            raise ValueError(f"RecipeOverrides.reference must be None, a data set name or a folder; "
+                             f"got {self.reference!r}")
 
     def recipe_keys(self) -> dict:
         """The overrides of recipe keys, for :meth:`splice.recipes.Recipe.with_overrides`."""

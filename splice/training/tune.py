@@ -138,13 +138,13 @@ def tune(
     model: Any = None,
     *,
     recipe: str | os.PathLike | Recipe | Mapping | None = None,
-    data: str | None = None,
+    data: str | os.PathLike | None = None,
     out: str | os.PathLike | None = None,
     resume: str | os.PathLike | None = None,
     overrides: RecipeOverrides | None = None,
     model_options: ModelOptions | None = None,
     run_options: RunOptions | None = None,
-    site: str | None = None,
+    site: str | os.PathLike | None = None,
 ) -> dict[str, Any]:
     """Fine-tune ``model`` with ``recipe`` on ``data``; write the run folder ``out``.
 
@@ -174,6 +174,7 @@ def tune(
     ``images_per_s``, ``stopped_early``.
     """
     run_options = run_options or RunOptions()
+    data, site = (os.fspath(v) if isinstance(v, os.PathLike) else v for v in (data, site))  # recorded as strings
     ctx = distributed.setup(run_options.device)
     try:
         deterministic = run_options.deterministic
