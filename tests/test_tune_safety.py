@@ -208,6 +208,27 @@ def test_a_float_image_with_a_non_finite_pixel_is_refused_when_read(tmp_path, ba
     assert torch.isfinite(ds[0][0]).all()  # good float images still read
 
 
+def test_an_unreadable_image_read_by_a_worker_is_one_line_naming_it(tmp_path, capsys):
+    # a DataLoader worker wraps an error in its own traceback; the run says what the main process would
+    from PIL import Image
+
+    root = tmp_path / "data"
+    for split in ("train", "val"):
+        for cls in ("a", "b"):
+            (root / split / cls).mkdir(parents=True)
+            for i in range(3):
+                Image.fromarray(np.full((8, 8), 40 * i, dtype=np.uint8)).save(root / split / cls / f"{i}.png")
+    (root / "train" / "b" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n not really a png")
+    out = tmp_path / "run"
+    code = cli.main(["tune", "splice.models:tray_net", "--kwargs", '{"num_classes": 2}', "--recipe", "baseline",
+                     "--epochs", "1", "--quiet", "--data", str(root), "--out", str(out), "--workers", "1"])
+    err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+    assert code != 0 and len(err) == 1, err
+    assert "broken.png" in err[0] and "Remove or replace the file" in err[0] and "Caught" not in err[0]
+    recorded = json.loads((out / "run.json").read_text())["error"]
+    assert "broken.png" in recorded and "Caught" not in recorded
+
+
 # ----------------------------------------------------------------------------- the run-folder lock
 
 

@@ -20,6 +20,8 @@ from collections.abc import Iterator, Sequence
 import torch
 from torch import Tensor
 
+from ..errors import SpliceError
+
 __all__ = ["mix", "generator", "epoch_order", "shard", "index_batches", "fetch", "iterate", "in_memory"]
 
 
@@ -70,7 +72,31 @@ def fetch(dataset, idx: Tensor) -> tuple[Tensor, Tensor]:
     return images, labels
 
 
+class _Guarded:
+    """A lazy dataset whose items hand back a splice error instead of raising it.
+
+    A DataLoader worker would wrap the error's one line in its own traceback
+    (and a run record would keep only "Caught DataError in DataLoader worker
+    process 0."); :func:`iterate` raises it again in the main process, as it is.
+    """
+
+    def __init__(self, dataset):
+        self.dataset = dataset
+
+    def __len__(self) -> int:
+        return len(self.dataset)
+
+    def __getitem__(self, i):
+        try:
+            return self.dataset[i]
+        except SpliceError as exc:
+            return exc
+
+
 def _collate(items):
+    failed = next((it for it in items if isinstance(it, SpliceError)), None)
+    if failed is not None:
+        return failed
     images = torch.stack([it[0] for it in items])
     labels = torch.as_tensor([int(it[1]) for it in items], dtype=torch.long)
     return images, labels
@@ -89,6 +115,9 @@ def iterate(dataset, batches: Sequence[Tensor], *, workers: int = 0) -> Iterator
         return
     from torch.utils.data import DataLoader
 
-    loader = DataLoader(dataset, batch_sampler=[b.tolist() for b in batches], num_workers=workers,
+    loader = DataLoader(_Guarded(dataset), batch_sampler=[b.tolist() for b in batches], num_workers=workers,
                         collate_fn=_collate, persistent_workers=False)
-    yield from loader
+    for batch in loader:
+        if isinstance(batch, SpliceError):
+            raise batch  # the worker's error, as one line
+        yield batch
