@@ -73,8 +73,10 @@ class _Sample:
     classes: list[str] | None
     normalisation: dict | None
     input_shape: tuple[int, ...]
+    model_classes: list[str] | None = None
     predicted: Tensor | None = None
     accuracy: float | None = None
+    accuracy_note: str | None = None
 
 
 def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_pickle: bool = False,
@@ -91,7 +93,7 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     (feature-level warps: the sampling outline projected onto the input).
 
     Returns ``{"schema_version", "model", "data", "split", "n_images",
-    "accuracy", "warps": {point: {"family", "level", "shape", "stride",
+    "accuracy", "accuracy_note", "warps": {point: {"family", "level", "shape", "stride",
     "quantities": {name: {"n", "mean", "std", "p5", "p95", "min", "max"}}}},
     "help", "files", "out"}``; statistics of a quantity with no finite value
     are ``None``, and a non-finite number is written as ``"inf"``, ``"-inf"``
@@ -126,7 +128,8 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     used = sorted({q for w in summary_warps.values() for q in w["quantities"]}, key=CSV_QUANTITIES.index)
     result = json_safe({
         "schema_version": SCHEMA_VERSION, "model": _name(folder), "data": str(data), "split": split,
-        "n_images": int(sample.images.shape[0]), "accuracy": sample.accuracy, "warps": summary_warps,
+        "n_images": int(sample.images.shape[0]), "accuracy": sample.accuracy,
+        "accuracy_note": sample.accuracy_note, "warps": summary_warps,
         "help": {q: QUANTITY_HELP[q] for q in used}, "files": files,
     })
     atomic_write_json(outdir / "summary.json", result)
@@ -172,12 +175,17 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
     classes = list(getattr(ds, "classes", []) or []) or facts.class_names
     images, labels, indices = _sample_images(ds, n)
     return _Sample(images=images, labels=labels, indices=indices, classes=classes,
-                   normalisation=facts.normalisation, input_shape=input_shape)
+                   normalisation=facts.normalisation, input_shape=input_shape,
+                   model_classes=list(facts.class_names) if facts.class_names else None)
 
 
 def _score(sample: _Sample, logits: Tensor | None) -> None:
     """Predicted classes and accuracy, when the model returns one logit per class."""
     classes = sample.classes
+    if sample.model_classes and classes and sample.model_classes != list(classes):
+        sample.accuracy_note = (f"no accuracy: the model was trained on classes {sample.model_classes[:12]} but the "
+                                f"data has {list(classes)[:12]}, so the labels would not line up")
+        return
     if logits is not None and classes and logits.shape[1] == len(classes):
         sample.predicted = logits.argmax(dim=1)
         sample.accuracy = float((sample.predicted == sample.labels).to(torch.float64).mean())

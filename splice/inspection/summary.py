@@ -88,6 +88,8 @@ def render_inspect(result: Mapping, console) -> None:
     acc = result.get("accuracy")
     console.print(f"inspected {result['model']} on {result['n_images']} images of {result['data']}/{result['split']}"
                   + (f"; accuracy on them {acc:.4f}" if acc is not None else ""))
+    if result.get("accuracy_note"):
+        console.print(result["accuracy_note"])
     for point, w in result["warps"].items():
         shape = "x".join(str(d) for d in w["shape"])
         table = Table(title=f"warp at '{point}': {w['family']}, {shape}, {w['level']} level", title_justify="left")

@@ -1,0 +1,36 @@
+"""inspect's accuracy is given only when the data's classes are the ones the model was trained on."""
+
+from __future__ import annotations
+
+import warnings
+
+import pytest
+
+import splice
+from splice.data import open_data
+from splice.errors import RandomWeightsWarning
+
+
+def _folder(path, class_names):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RandomWeightsWarning)
+        model = splice.insert("splice.models:tray_net", at="input")
+    return splice.save(model, path, class_names=class_names)
+
+
+@pytest.mark.parametrize("same", [True, False])
+def test_accuracy_only_when_the_classes_line_up(tmp_path, same, capsys):
+    from splice.cli import main
+
+    digits = open_data("digits", "test").classes
+    names = list(digits) if same else [f"part-{c}" for c in digits]
+    folder = _folder(tmp_path / "spliced", names)
+    result = splice.inspect(folder, data="digits", n=8, out=tmp_path / "report", pictures=False)
+    if same:
+        assert 0.0 <= result["accuracy"] <= 1.0 and result["accuracy_note"] is None
+    else:
+        assert result["accuracy"] is None
+        assert "trained on classes ['part-0'" in result["accuracy_note"] and "would not line up" in result["accuracy_note"]
+        assert main(["inspect", str(folder), "--data", "digits", "--n", "8", "--out", str(tmp_path / "cli")]) == 0
+        out = capsys.readouterr().out
+        assert "no accuracy: the model was trained on classes" in out and "accuracy on them" not in out
