@@ -22,7 +22,7 @@ from splice.adapt.objective import entropy_loss
 from splice.adapt.ranges import RangeEstimate, fit_ranges, site_statistics
 from splice.data import open_data
 from splice.distort import DistortionRange, random_distort
-from splice.errors import RecipeError
+from splice.errors import DataError, RecipeError
 from splice.options import ModelOptions
 from splice.recipes import Recipe, load_recipe, recipe_to_toml
 from splice.surgery import WARP_PREFIX
@@ -406,3 +406,17 @@ def test_the_reference_comes_from_the_base_record_when_none_is_given(tmp_path, f
     tune(str(spliced), recipe=_tiny(), site=str(site), out=out,
          run_options=RunOptions(progress=False, stop_after_steps=1))
     assert json.loads((out / "run.json").read_text())["reference"] == "digits"
+
+
+def test_a_reference_too_small_to_estimate_from_is_refused_before_any_work(tmp_path, folders, spliced):
+    ref, site = folders
+    small = tmp_path / "small"
+    small.mkdir()
+    for f in sorted(ref.iterdir())[:5]:
+        (small / f.name).write_bytes(f.read_bytes())
+    out = tmp_path / "run"
+    with pytest.raises(DataError, match=r"the reference has 5 images; estimating the site's ranges holds out 20% of "
+                                        r"them and needs 8 held out, so at least 38 reference images"):
+        tune(str(spliced), recipe=_tiny(), site=str(site), out=out, overrides=RecipeOverrides(reference=str(small)),
+             run_options=QUIET)
+    assert not out.exists()  # refused before the run folder was made

@@ -15,6 +15,7 @@ from collections.abc import Callable
 import torch
 from torch import Tensor, nn
 
+from ..errors import DataError
 from ..training import batches as _b
 from ..warps import Warp, WarpConfig
 from .images import Images, split_off
@@ -22,7 +23,11 @@ from .ranges import (OBSERVABLE_RATIO, PARAMETERS, RangeEstimate, fit_ranges, ob
                      site_statistics)
 from .regress import near_identity, regress_warps_
 
-__all__ = ["ProbeNet", "build_probe", "train_probe", "estimate_ranges"]
+__all__ = ["MIN_HELD_OUT", "ProbeNet", "build_probe", "train_probe", "estimate_ranges", "check_reference_size"]
+
+#: the fewest held-out reference images the estimate simulates the site's moves on: with fewer, its spreads and
+#: percentiles are a handful of numbers (our choice, no source; a few hundred fix them to about a percent)
+MIN_HELD_OUT = 8
 
 
 class ProbeNet(nn.Module):
@@ -46,6 +51,18 @@ def build_probe(input_shape, width: int, seed: int, device=None) -> ProbeNet:
         torch.manual_seed(_b.mix(seed, "probe-init"))
         warp = Warp(WarpConfig(family="projective", head_width=width), tuple(input_shape))
     return ProbeNet(warp).to(device)
+
+
+def check_reference_size(n: int, holdout: float) -> None:
+    """Refuse, before any work, a reference too small to hold out :data:`MIN_HELD_OUT` images for the estimate
+    (the rest trains the probe; :func:`~splice.adapt.images.split_off` holds out ``holdout`` of them)."""
+    held = min(n - 1, max(1, round(holdout * n)))
+    if held < MIN_HELD_OUT:
+        need = next(k for k in range(MIN_HELD_OUT, 100 * MIN_HELD_OUT) if round(holdout * k) >= MIN_HELD_OUT)
+        raise DataError(f"the reference has {n} image{'s' if n != 1 else ''}; estimating the site's ranges holds out "
+                        f"{holdout:.0%} of them and needs {MIN_HELD_OUT} held out, so at least {need} reference images. "
+                        "Add reference images, or set [site] estimate = false to pre-train within the recipe's "
+                        "ranges as typed")
 
 
 def train_probe(probe: ProbeNet, reference: Images, site_cfg, *, seed: int, prepare: Callable[[Tensor], Tensor],

@@ -28,6 +28,7 @@ from ..training.options import RecipeOverrides
 from ..training.runfolder import RECIPE_FILE, check_same, prepare_folder, start_files, write_run_info
 from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
 from .images import Images, open_images
+from .probe import check_reference_size
 
 __all__ = ["AdaptRun", "set_up", "reference_for_site"]
 
@@ -131,6 +132,8 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
         ref_name = reference_for_site(rec, req.data, overrides.reference, record.trained_on if record else None)
     site_images = open_images(req.data, shape, what="site")
     reference = open_images(ref_name, shape, what="reference") if ref_name else None
+    if reference is not None and rec.site.estimate:
+        check_reference_size(len(reference), rec.site.holdout)
     classes = list(src.class_names) if src.class_names else []
     if info is None:
         info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin="model", ref=None), reference=ref_name,
