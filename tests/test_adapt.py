@@ -115,6 +115,7 @@ def test_no_label_is_read_and_the_base_stays_bit_for_bit(tmp_path, folders, spli
     assert "warp_spread" in rows[-1]["site"] and "warp_spread" not in rows[0]["site"]  # the start row is the base
     info = json.loads((out / "run.json").read_text())
     assert info["data"] == str(site) and info["reference"] == str(ref) and info["status"] == "finished"
+    assert info["site_images"] == info["reference_images"] == 40
     # the estimate is in ranges.json and, re-centred, in the resolved recipe
     ranges = json.loads((out / "ranges.json").read_text())
     recorded = load_recipe(out / "recipe.toml")

@@ -92,6 +92,7 @@ def test_baseline_run_folder_layout(base_run):
     assert not any(k.startswith(WARP_PREFIX) for k in model.state_dict())
     info = json.loads((out / "run.json").read_text())
     assert info["status"] == "finished" and info["data"] == "digits"
+    assert (info["train_images"], info["val_images"]) == (1078, 359)  # splice.data's digits splits
     ckpt = load_checkpoint(out / CHECKPOINT_NAME)  # torch.load(weights_only=True) inside
     assert ckpt["epoch"] == 2 and ckpt["batch"] == 0 and ckpt["step"] == summary["steps"]
 

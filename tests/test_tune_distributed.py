@@ -56,4 +56,5 @@ def test_two_process_tune_ends_with_identical_weights_and_one_run_folder(tmp_pat
     info = json.loads((run / "run.json").read_text())
     assert info["world_size"] == 2 and info["status"] == "finished"
     assert proc.stdout.count("epoch 2/2") == 1  # only rank 0 prints
+    assert proc.stdout.count("data digits-moved: 1,078 train and 359 val images in 10 classes") == 1
     assert proc.stdout.count("best val accuracy") == 1

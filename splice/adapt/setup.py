@@ -137,7 +137,7 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
     classes = list(src.class_names) if src.class_names else []
     if info is None:
         info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin="model", ref=None), reference=ref_name,
-                    site_images=len(site_images))
+                    site_images=len(site_images), reference_images=None if reference is None else len(reference))
         if ctx.is_main:
             start_files(run_dir, rec, info)
     elif ctx.is_main:

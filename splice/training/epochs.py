@@ -127,6 +127,8 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     """A fresh run: pre-train the warp heads (if the recipe does; ``resume`` continues a pre-training
     checkpoint), record the starting point, checkpoint. Returns a summary if stopped during pre-training."""
     ctx, rec = run.ctx, run.rec
+    kinds = f" in {len(run.classes)} classes" if run.classes else ""
+    run.bar.line(f"data {run.data}: {len(run.train):,} train and {len(run.val):,} val images{kinds}")
     if not (run.warps and rec.pretrain.epochs > 0) or run.reference.skipped:
         if run.warps and rec.pretrain.epochs > 0:
             run.bar.line(f"no upright reference for {run.data!r} ([pretrain] if_no_reference = \"skip\"): "

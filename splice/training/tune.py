@@ -280,7 +280,8 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
         return normalise(x, norm).to(dev, non_blocking=True)
 
     if info is None:
-        info = run_info(ctx, req, src, net, classes, norm, norm_origin=norm_origin, ref=ref)
+        info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin=norm_origin, ref=ref),
+                    train_images=len(train_set), val_images=len(val_set))
         if ctx.is_main:
             start_files(run_dir, rec, info)
     elif ctx.is_main:
