@@ -6,7 +6,7 @@ cut of stride 4 or more with ``affine`` -> verify with ONNX -> export) over a wi
 weights: timm classifiers of many families, torchvision classifiers and dense-prediction models, and Hugging
 Face models saved with ``save_pretrained`` (small configurations). It prints one row per model (pass or the
 first line of what failed, the mechanism, the number of points) and the fraction that pass. It takes about
-twenty minutes on two cores, so it is a script, not a test.
+twenty-five minutes on one core, so it is a script, not a test.
 
 Run ``python benchmarks/bench_wider.py [--threads T] [NAME_PART ...]`` (names containing any NAME_PART);
 ``run()`` returns the rows for ``benchmarks/run.py``.
