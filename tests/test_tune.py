@@ -402,6 +402,10 @@ def test_options_are_checked_and_the_keyword_path_refuses_unknown_keywords(tmp_p
         ModelOptions(leaves="Conv2d")
     with pytest.raises(TypeError, match=r"tune\(\) got unexpected keyword argument\(s\) epoch; it takes .*epochs"):
         tune_keywords(SPEC, recipe="baseline", out=tmp_path / "r", epoch=3)
+    with pytest.raises(TypeError, match=r"tune's overrides must be a RecipeOverrides \(got dict\); build one"):
+        tune(SPEC, recipe="baseline", data="digits", out=tmp_path / "r", overrides={"epochs": 1})
+    with pytest.raises(TypeError, match=r"tune's run_options must be a RunOptions \(got dict\)"):
+        tune(SPEC, recipe="baseline", data="digits", out=tmp_path / "r", run_options={"progress": False})
     assert not (tmp_path / "r").exists()
 
 

@@ -173,6 +173,11 @@ def tune(
     ``best_epoch``, ``last_accuracy``, ``epochs``, ``steps``, ``base_changed``,
     ``images_per_s``, ``stopped_early``.
     """
+    for name, value, cls in (("overrides", overrides, RecipeOverrides), ("model_options", model_options, ModelOptions),
+                             ("run_options", run_options, RunOptions)):
+        if value is not None and not isinstance(value, cls):
+            raise TypeError(f"tune's {name} must be a {cls.__name__} (got {type(value).__name__}); build one, e.g. "
+                            f"{cls.__name__}(...), or pass every option as a keyword to tune_keywords")
     run_options = run_options or RunOptions()
     data, site = (os.fspath(v) if isinstance(v, os.PathLike) else v for v in (data, site))  # recorded as strings
     ctx = distributed.setup(run_options.device)
