@@ -24,7 +24,7 @@ import splice
 from splice import cli
 from splice.fileio import state_dict_sha256
 from splice.data import ImageSet, open_data
-from splice.errors import DataError, SpliceError, TrainingDiverged
+from splice.errors import DataError, SpliceError, SpliceWarning, TrainingDiverged
 from splice.folders import LOCK_FILE, FolderBusy, FolderLock, check_replaceable, lock_holder
 from splice.options import ModelOptions
 from splice.recipes import Recipe, load_recipe
@@ -208,16 +208,21 @@ def test_a_float_image_with_a_non_finite_pixel_is_refused_when_read(tmp_path, ba
     assert torch.isfinite(ds[0][0]).all()  # good float images still read
 
 
-def test_an_unreadable_image_read_by_a_worker_is_one_line_naming_it(tmp_path, capsys):
-    # a DataLoader worker wraps an error in its own traceback; the run says what the main process would
+def _two_classes(root, n: int = 3):
+    """An ImageFolder of 8x8 grey PNGs: train/ and val/, classes a and b, ``n`` images each."""
     from PIL import Image
 
-    root = tmp_path / "data"
     for split in ("train", "val"):
         for cls in ("a", "b"):
             (root / split / cls).mkdir(parents=True)
-            for i in range(3):
+            for i in range(n):
                 Image.fromarray(np.full((8, 8), 40 * i, dtype=np.uint8)).save(root / split / cls / f"{i}.png")
+    return root
+
+
+def test_an_unreadable_image_read_by_a_worker_is_one_line_naming_it(tmp_path, capsys):
+    # a DataLoader worker wraps an error in its own traceback; the run says what the main process would
+    root = _two_classes(tmp_path / "data")
     (root / "train" / "b" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n not really a png")
     out = tmp_path / "run"
     code = cli.main(["tune", "splice.models:tray_net", "--kwargs", '{"num_classes": 2}', "--recipe", "baseline",
@@ -227,6 +232,21 @@ def test_an_unreadable_image_read_by_a_worker_is_one_line_naming_it(tmp_path, ca
     assert "broken.png" in err[0] and "Remove or replace the file" in err[0] and "Caught" not in err[0]
     recorded = json.loads((out / "run.json").read_text())["error"]
     assert "broken.png" in recorded and "Caught" not in recorded
+
+
+def test_resuming_on_changed_data_says_the_batches_differ(tmp_path):
+    root = _two_classes(tmp_path / "data", n=6)
+    out = tmp_path / "run"
+    options = ModelOptions(kwargs={"num_classes": 2})
+    recipe = dataclasses.replace(load_recipe("baseline"), batch_size=4, epochs=2)
+    with pytest.warns(SpliceWarning):  # random weights
+        tune("splice.models:tray_net", recipe=recipe, data=str(root), out=out, model_options=options,
+             run_options=RunOptions(progress=False, stop_after_steps=1))
+    assert json.loads((out / "run.json").read_text())["train_images"] == 12
+    (root / "train" / "b" / "5.png").unlink()  # a bad file removed before resuming
+    with pytest.warns(SpliceWarning, match=r"resuming with 11 train and 12 val images where the run started with "
+                                           r"12 and 12: from here on its batches are not the ones"):
+        tune(resume=out, run_options=QUIET)
 
 
 # ----------------------------------------------------------------------------- the run-folder lock

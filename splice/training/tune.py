@@ -44,13 +44,14 @@ import contextlib
 import os
 import signal
 import threading
+import warnings
 from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
 
 import torch
 
-from ..errors import RecipeError, SpliceError, TrainingDiverged, first_line
+from ..errors import RecipeError, SpliceError, SpliceWarning, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
 from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
@@ -289,10 +290,12 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
                     train_images=len(train_set), val_images=len(val_set))
         if ctx.is_main:
             start_files(run_dir, rec, info)
-    elif ctx.is_main:
-        info = {k: v for k, v in info.items() if k not in ("diverged", "error")}
-        info["status"] = "running"
-        write_run_info(run_dir, info)
+    else:
+        _warn_if_data_changed(info, len(train_set), len(val_set))
+        if ctx.is_main:
+            info = {k: v for k, v in info.items() if k not in ("diverged", "error")}
+            info["status"] = "running"
+            write_run_info(run_dir, info)
     return Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train_set, val=val_set, prepare=prepare,
                norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=req.data,
                shape=tuple(src.input_shape), where=where, ckpt=req.ckpt, workers=run_options.workers,
@@ -300,6 +303,17 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
                stop_after_pretrain_steps=run_options.stop_after_pretrain_steps, reference=ref,
                reference_probe=reference_probe(ref, train_set, val_set, tuple(src.input_shape)),
                trained_on=_trained_on(rec, req.data, net, ref))
+
+
+def _warn_if_data_changed(info: dict, n_train: int, n_val: int) -> None:
+    """A resumed run whose splits no longer hold the images it started with (a bad file removed, say) goes on,
+    but its batches from here on are not the ones an uninterrupted run would have drawn: say so."""
+    started = (info.get("train_images"), info.get("val_images"))
+    if None in started or started == (n_train, n_val):
+        return
+    warnings.warn(f"resuming with {n_train:,} train and {n_val:,} val images where the run started with "
+                  f"{started[0]:,} and {started[1]:,}: from here on its batches are not the ones an uninterrupted run "
+                  "would have drawn", SpliceWarning, stacklevel=5)
 
 
 def _trained_on(rec, data: str, net, ref) -> str:
