@@ -59,6 +59,31 @@ def test_factory_from_file(tmp_path):
         load_source(f"{tmp_path / 'nope.py'}:build")
 
 
+def test_a_class_of_a_model_file_is_named_so_that_leaf_matches_it(tmp_path, capsys):
+    # a model file is imported under splice's own module name: the --leaf advice names the class alone, and
+    # following it works (it named the import module, salted per process, so it could never match)
+    from splice.cli import main
+
+    f = tmp_path / "gated.py"
+    f.write_text(textwrap.dedent("""
+        import torch.nn as nn
+        class Gate(nn.Module):  # a branch on a value: fx, torch.export and the meta pass all need real values
+            def __init__(self):
+                super().__init__()
+                self.a, self.b = nn.Conv2d(4, 4, 3, padding=1), nn.Conv2d(4, 4, 1)
+            def forward(self, x):
+                return self.a(x) if x.mean() > 0 else self.b(x)
+        def net():
+            return nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), Gate(), nn.Conv2d(4, 2, 3, padding=1))
+    """))
+    argv = ["points", f"{f}:net", "--trust-code", "--input-shape", "3x16x16"]
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert "--leaf Gate (Python: leaves=[Gate])" in err and "_splice_user_" not in err
+    assert main([*argv, "--leaf", "Gate"]) == 0
+    assert "points;" in capsys.readouterr().out
+
+
 @pytest.mark.parametrize("wrap", ["plain", "state_dict", "model", "module_prefix", "orig_mod_prefix", "nested_prefix"])
 def test_nested_and_prefixed_state_dicts(tmp_path, wrap):
     state = _small_state()

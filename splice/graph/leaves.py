@@ -18,6 +18,7 @@ from typing import Any
 from torch import nn
 
 from ..errors import GraphError
+from ..sources.specs import FILE_MODULE_PREFIX
 
 __all__ = ["DEFAULT_LEAVES", "register_leaf", "leaves_added"]
 
@@ -108,6 +109,10 @@ def leaves_added(*types: type | str) -> Iterator[None]:
 
 
 def class_path(cls: type) -> str:
+    """How ``--leaf`` names ``cls``: its dotted path, or its bare name for a class of a model file (a spec
+    ``path/to/file.py:factory``), whose module name is splice's own and means nothing to the user."""
+    if cls.__module__.startswith(FILE_MODULE_PREFIX):
+        return cls.__qualname__
     return f"{cls.__module__}.{cls.__qualname__}"
 
 

@@ -9,6 +9,7 @@ starts from random init and weights come separately
 
 from __future__ import annotations
 
+import hashlib
 import importlib
 import importlib.util
 import os
@@ -22,7 +23,7 @@ from torch import nn
 
 from ..errors import SourceError, suggest
 from .huggingface import build_transformers
-from .specs import parse_input_shape, split_spec
+from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
@@ -49,7 +50,8 @@ def _import_factory(head: str, attr: str, spec: str):
         path = Path(head)
         if not path.is_file():
             raise SourceError(f"model file '{path}' does not exist (from spec {spec!r}); check the path")
-        mod_name = f"_splice_user_{abs(hash(str(path.resolve())))}"
+        # the same name in every process (str hashes are salted per process)
+        mod_name = FILE_MODULE_PREFIX + hashlib.sha256(str(path.resolve()).encode()).hexdigest()[:16]
         module = sys.modules.get(mod_name)
         if module is None:
             loader_spec = importlib.util.spec_from_file_location(mod_name, path)

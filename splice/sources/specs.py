@@ -21,7 +21,11 @@ from typing import Any
 
 from ..errors import SourceError
 
-__all__ = ["parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs"]
+__all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs"]
+
+#: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
+#: are named to the user by their bare class name, which ``--leaf`` matches
+FILE_MODULE_PREFIX = "_splice_user_"
 
 _LATER = ("splice works on images (C, H, W) for now; volumes and video (5-D inputs) come in a later release")
 
