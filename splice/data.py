@@ -30,9 +30,13 @@ Two kinds of data source are understood by :func:`open_data`:
 
 A folder (ImageFolder layout)
     ``DIR/train/<class>/*``, ``DIR/val/<class>/*``, optionally ``DIR/test/<class>/*``.
-    Images are read lazily with Pillow, resized to the model's ``H x W``
-    (bilinear, aspect ratio not kept) and converted to its channels (``L`` for
-    one channel, ``RGB`` for three).
+    Every image file anywhere under a class folder belongs to that class; which
+    files count and how each is read is :mod:`splice.imagefiles`. Images are
+    read lazily. The class folders of the split being opened must be those of
+    ``train`` (names compared after Unicode NFC normalisation); other splits are
+    not looked at. Without ``train/`` the class list is the opened split's own,
+    and a folder of class folders with no split folder at all is read as one
+    ``val`` or ``test`` split.
 
 Everything returned is float32 in [0, 1]. Normalisation is a separate step
 (:func:`normalise`) done by the training and evaluation code.
@@ -42,7 +46,7 @@ from __future__ import annotations
 
 import functools
 import os
-import warnings
+import unicodedata
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -54,7 +58,14 @@ from torch.utils.data import Dataset
 
 from splice import distort
 from splice.errors import DataError, suggest
-from splice.limits import max_image_pixels
+from splice.imagefiles import (
+    IMAGE_SUFFIXES,
+    check_input_shape,
+    image_suffixes,
+    list_image_files,
+    load_images,
+    read_image,
+)
 
 __all__ = [
     "DATASETS",
@@ -73,7 +84,6 @@ __all__ = [
 DATASETS = ("digits", "digits-moved")
 SPLITS = ("train", "val", "test")
 DIGITS_SHAPE = (1, 48, 48)
-IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".gif", ".tif", ".tiff", ".webp", ".ppm", ".pgm", ".pbm")
 
 _SPLIT_SEED = 8_8_1797  # fixed: the digits splits never change
 _SPLIT_FRACTIONS = (0.6, 0.2)  # train, val; test is the rest
@@ -133,9 +143,10 @@ class ImageFolderSet(Dataset):
     """One split of an ImageFolder tree, loaded lazily: items are ``(image (C, H, W), label)``."""
 
     def __init__(self, root: Path, split: str, classes: list[str], samples: list[tuple[Path, int]],
-                 input_shape: tuple[int, int, int]) -> None:
+                 input_shape: tuple[int, int, int], *, folder: Path | None = None) -> None:
         self.root = root
         self.split = split
+        self.folder = root / split if folder is None else folder
         self.name = str(root)
         self.classes = classes
         self.samples = samples
@@ -147,7 +158,7 @@ class ImageFolderSet(Dataset):
 
     def __getitem__(self, i):
         path, label = self.samples[i]
-        return _load_image(path, self.input_shape), label
+        return read_image(path, self.input_shape), label
 
     @property
     def labels(self) -> Tensor:
@@ -158,13 +169,13 @@ class ImageFolderSet(Dataset):
         bad = []
         for path, _ in self.samples:
             try:
-                _load_image(path, self.input_shape)
+                read_image(path, self.input_shape)
             except DataError as exc:
                 bad.append(f"{path} ({exc.__cause__ or exc})")
         if bad:
             listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
             raise DataError(
-                f"{len(bad)} of {len(self.samples)} images in {self.root / self.split} cannot be read: "
+                f"{len(bad)} of {len(self.samples)} images in {self.folder} cannot be read: "
                 f"{listed}. Remove or replace them."
             )
 
@@ -193,7 +204,7 @@ def open_data(spec: str, split: str = "train", *, input_shape: Sequence[int] | N
     """
     if split not in SPLITS:
         raise DataError(f"unknown split {split!r}{_hint(str(split), SPLITS)} one of {', '.join(SPLITS)}.")
-    shape = None if input_shape is None else _check_shape(input_shape, 8 if spec in DATASETS else 1)
+    shape = None if input_shape is None else check_input_shape(input_shape, 8 if spec in DATASETS else 1)
     if spec in DATASETS:
         return _open_digits(spec, split, shape or DIGITS_SHAPE, seed)
     path = Path(os.fspath(spec)).expanduser()
@@ -219,20 +230,6 @@ def _hint(word: str, choices: Sequence[str]) -> str:
     """"; did you mean 'x'? Use" or "; use", to be followed by the list of choices."""
     close = suggest(word, choices)
     return f"{close} Use" if close else "; use"
-
-
-def _check_shape(input_shape, min_size: int = 1) -> tuple[int, int, int]:
-    try:
-        shape = tuple(int(v) for v in input_shape)
-        exact = all(float(v) == int(v) for v in input_shape)
-    except (TypeError, ValueError):
-        shape, exact = (), False
-    if len(shape) != 3 or not exact or shape[0] not in (1, 3) or min(shape[1:]) < min_size:
-        raise DataError(
-            f"input_shape must be (C, H, W) with C = 1 or 3 and H, W >= {min_size}; got {input_shape!r}. "
-            "Use the model's input shape, e.g. (1, 48, 48)."
-        )
-    return shape
 
 
 # ---------------------------------------------------------------------------
@@ -326,128 +323,94 @@ def _visible_dirs(path: Path) -> list[Path]:
     return sorted((p for p in path.iterdir() if p.is_dir() and not p.name.startswith(".")), key=lambda p: p.name)
 
 
-def _images_in(path: Path) -> list[Path]:
-    return sorted(p for p in path.iterdir()
-                  if p.is_file() and not p.name.startswith(".") and p.suffix.lower() in IMAGE_SUFFIXES)
+def _form(name: str) -> str:
+    for form in ("NFC", "NFD"):
+        if unicodedata.is_normalized(form, name):
+            return form
+    return "neither NFC nor NFD"
 
 
-def _split_classes(root: Path, split: str) -> dict[str, list[Path]]:
-    where = root / split
-    class_dirs = _visible_dirs(where)
-    if not class_dirs:
-        loose = _images_in(where)
+def _class_names(where: Path) -> dict[str, str]:
+    """``{NFC name: folder name}`` of the class folders in ``where`` (a split folder, or a folder of classes)."""
+    names: dict[str, str] = {}
+    for d in _visible_dirs(where):
+        key = unicodedata.normalize("NFC", d.name)
+        if key in names:
+            raise DataError(
+                f"{where} holds two class folders whose names differ only in Unicode normalisation: "
+                f"{names[key]!r} ({_form(names[key])}) and {d.name!r} ({_form(d.name)}), as when a tree is copied "
+                "together from macOS and Linux; merge them into one folder."
+            )
+        names[key] = d.name
+    if not names:
+        loose = list_image_files(where)
         extra = (f" It holds {len(loose)} image files directly; move them into one subfolder per class."
                  if loose else "")
         raise DataError(f"{where} has no class folders; expected {where}/<class>/<image>.{extra}")
-    found = {d.name: _images_in(d) for d in class_dirs}
-    empty = [name for name, files in found.items() if not files]
+    return names
+
+
+def _class_images(where: Path, names: dict[str, str]) -> dict[str, list[Path]]:
+    """``{NFC name: image files}``: every image anywhere under each class folder; an empty class is refused."""
+    found = {key: list_image_files(where / name) for key, name in names.items()}
+    empty = [names[key] for key, files in found.items() if not files]
     if empty:
         raise DataError(
             f"{where}: {len(empty)} class folder(s) hold no images: {', '.join(empty)}. "
-            f"Add images (suffixes {', '.join(IMAGE_SUFFIXES)}) or remove the empty folders."
+            f"Add images (suffixes {', '.join(image_suffixes())}) or remove the empty folders."
         )
     return found
 
 
-def _open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFolderSet:
-    if not root.is_dir():
-        raise DataError(f"{root} is a file, not a folder; give an image folder laid out as {_FOLDER_LAYOUT}.")
+def _check_same_classes(root: Path, split: str, train: dict[str, str], other: dict[str, str]) -> None:
+    missing = sorted(train[k] for k in train.keys() - other.keys())
+    extra = sorted(other[k] for k in other.keys() - train.keys())
+    parts = ([f"{split} lacks {', '.join(missing)}"] if missing else []) + \
+        ([f"{split} has extra {', '.join(extra)}"] if extra else [])
+    if parts:
+        raise DataError(
+            f"class folders differ between train and {split} in {root}: {'; '.join(parts)}. "
+            f"Give {split} the class folders of train."
+        )
+
+
+def _split_folder(root: Path, split: str) -> tuple[Path, bool]:
+    """The folder holding ``split``'s class folders, and whether ``root`` has a ``train`` split beside it.
+
+    A folder without any split folder is one split of class folders: it is read
+    as ``val`` or ``test``, never as ``train`` (training and validating on the
+    same images would go unnoticed).
+    """
     present = [s for s in SPLITS if (root / s).is_dir()]
+    if split in present:
+        return root / split, "train" in present
     others = [d.name for d in _visible_dirs(root) if d.name not in SPLITS]
     found = ", ".join(present + others) or "nothing"
-    if "train" not in present:
-        raise DataError(f"{root} has no 'train' folder (found: {found}); lay it out as {_FOLDER_LAYOUT}.")
-    if split not in present:
-        if split == "val":
-            raise DataError(f"{root} has no 'val' folder (found: {found}); lay it out as {_FOLDER_LAYOUT}.")
-        raise DataError(
-            f"split {split!r} is not available in {root}; available splits: {', '.join(present)}. "
-            f"Add {root / split}/<class>/* or choose one of those."
-        )
-    per_split = {s: _split_classes(root, s) for s in present}
-    classes = sorted(per_split["train"])
-    for s in present:
-        names = set(per_split[s])
-        if names != set(classes):
-            missing = sorted(set(classes) - names)
-            extra = sorted(names - set(classes))
-            parts = []
-            if missing:
-                parts.append(f"{s} lacks {', '.join(missing)}")
-            if extra:
-                parts.append(f"{s} has extra {', '.join(extra)}")
-            raise DataError(
-                f"class folders differ between train and {s} in {root}: {'; '.join(parts)}. "
-                "Every split needs the same class folders."
-            )
-    index = {name: i for i, name in enumerate(classes)}
-    samples = [(p, index[name]) for name in classes for p in per_split[split][name]]
-    return ImageFolderSet(root, split, classes, samples, shape)
+    if not present and split != "train":
+        return root, False
+    if split in ("train", "val"):
+        alone = " (a folder of class folders alone is read only as a val or test split)" if not present else ""
+        raise DataError(f"{root} has no {split!r} folder (found: {found}); lay it out as {_FOLDER_LAYOUT}{alone}.")
+    raise DataError(
+        f"split {split!r} is not available in {root}; available splits: {', '.join(present)}. "
+        f"Add {root / split}/<class>/* or choose one of those."
+    )
 
 
-def _open_capped(path: Path):
-    """``Image.open`` (which reads only the header), refusing an image over the pixel cap before it is decoded."""
-    from PIL import Image
-
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", Image.DecompressionBombWarning)  # the cap below is the one that counts
-        im = Image.open(path)
-    cap = max_image_pixels()
-    width, height = im.size
-    if width * height > cap:
-        im.close()
-        raise DataError(f"image {path} is {width}x{height} ({width * height:,} pixels), over the cap of {cap:,}; "
-                        "shrink it, or raise the cap with --max-image-pixels N (SPLICE_MAX_IMAGE_PIXELS).")
-    return im
-
-
-def _load_image(path: Path, input_shape: Sequence[int]) -> Tensor:
-    """One image as float32 (C, H, W) in [0, 1], resized and channel-converted."""
-    import numpy as np
-    from PIL import Image, ImageOps
-
-    c, h, w = input_shape
-    try:
-        with _open_capped(path) as im:
-            im = ImageOps.exif_transpose(im)
-            if im.mode in ("I", "F") or im.mode.startswith("I;16"):
-                # high bit depth grey: scale 16-bit values to [0, 1], keep float images as they are
-                scale = 1.0 if im.mode == "F" else 1.0 / 65535.0
-                raw = np.asarray(im.convert("F"), dtype=np.float32)
-                if not np.isfinite(raw).all():  # only float images can hold these; 8/16-bit ones cannot
-                    bad = int(np.size(raw) - np.count_nonzero(np.isfinite(raw)))
-                    raise DataError(f"image {path} holds {bad} NaN or infinite pixel value(s); a single one turns "
-                                    "the training loss into NaN. Fix or remove the file.")
-                grey = Image.fromarray(raw * np.float32(scale), mode="F")
-                grey = grey.resize((w, h), Image.Resampling.BILINEAR)
-                arr = np.clip(np.asarray(grey, dtype=np.float32), 0.0, 1.0)[None]
-                if c == 3:
-                    arr = np.repeat(arr, 3, axis=0)
-            else:
-                if im.mode == "P":
-                    im = im.convert("RGBA")  # palette transparency must go through RGBA
-                im = im.convert("L" if c == 1 else "RGB").resize((w, h), Image.Resampling.BILINEAR)
-                arr = np.asarray(im, dtype=np.float32) / np.float32(255.0)
-                arr = arr[None] if c == 1 else arr.transpose(2, 0, 1)
-    except FileNotFoundError:
-        raise DataError(f"image file not found: {path}. Check the path.") from None
-    except (OSError, ValueError, SyntaxError, Image.DecompressionBombError) as exc:
-        raise DataError(f"cannot read image {path}: {exc}. Remove or replace the file.") from exc
-    return torch.from_numpy(np.ascontiguousarray(arr))
-
-
-def load_images(paths: Sequence[str | os.PathLike], input_shape: Sequence[int]) -> Tensor:
-    """Read image files into one float32 batch ``(N, C, H, W)`` in [0, 1] (for ``verify --images``)."""
-    shape = _check_shape(input_shape)
-    if isinstance(paths, (str, os.PathLike)):
-        paths = [paths]
-    paths = [Path(os.fspath(p)) for p in paths]
-    if not paths:
-        raise DataError("no image files given; pass at least one path.")
-    for p in paths:
-        if p.is_dir():
-            raise DataError(f"{p} is a folder, not an image file; pass image files (or open_data for folders).")
-    return torch.stack([_load_image(p, shape) for p in paths])
+def _open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFolderSet:
+    """One split; its class folders are checked against train's only (tune never reads test, eval may lack train)."""
+    if not root.is_dir():
+        raise DataError(f"{root} is a file, not a folder; give an image folder laid out as {_FOLDER_LAYOUT}.")
+    where, has_train = _split_folder(root, split)
+    names = _class_names(where)
+    train = names
+    if has_train and split != "train":
+        train = _class_names(root / "train")
+        _check_same_classes(root, split, train, names)
+    classes = sorted(train.values())
+    files = _class_images(where, names)
+    samples = [(p, i) for i, name in enumerate(classes) for p in files[unicodedata.normalize("NFC", name)]]
+    return ImageFolderSet(root, split, classes, samples, shape, folder=where)
 
 
 # ---------------------------------------------------------------------------

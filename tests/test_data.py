@@ -263,7 +263,7 @@ def test_folder_errors(tmp_path):
     only_val = _tree(tmp_path / "only_val", splits=("val",))
     (only_val / "extra").mkdir()
     with pytest.raises(DataError, match=r"has no 'train' folder \(found: val, extra\)"):
-        data.open_data(str(only_val), "val", input_shape=shape)
+        data.open_data(str(only_val), "train", input_shape=shape)
     only_train = _tree(tmp_path / "only_train", splits=("train",))
     with pytest.raises(DataError, match=r"has no 'val' folder \(found: train\)"):
         data.open_data(str(only_train), "val", input_shape=shape)
@@ -290,7 +290,7 @@ def test_folder_errors(tmp_path):
     (differ / "val" / "dog").rmdir()
     with pytest.raises(DataError, match=r"class folders differ between train and val .*: val lacks dog; "
                                         r"val has extra cow"):
-        data.open_data(str(differ), input_shape=shape)
+        data.open_data(str(differ), "val", input_shape=shape)
 
 
 def test_corrupt_image(tmp_path):

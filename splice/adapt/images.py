@@ -111,17 +111,12 @@ def split_off(images: Images, share: float, generator: torch.Generator) -> tuple
 
 
 def image_files(root: Path) -> list[Path]:
-    """Every image file under ``root`` (recursive, sorted, hidden entries skipped); ``train/`` only if present."""
-    from ..data import IMAGE_SUFFIXES
+    """Every image file under ``root`` (:func:`splice.imagefiles.list_image_files`); ``train/`` only if present."""
+    from ..imagefiles import list_image_files
 
     if (root / "train").is_dir():
         root = root / "train"
-    found = []
-    for folder, dirs, files in os.walk(root):
-        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
-        found += [Path(folder) / f for f in files
-                  if not f.startswith(".") and Path(f).suffix.lower() in IMAGE_SUFFIXES]
-    return sorted(found)
+    return list_image_files(root)
 
 
 def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") -> Images:
@@ -141,10 +136,10 @@ def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") ->
         )
     files = image_files(root)
     if not files:
-        from ..data import IMAGE_SUFFIXES
+        from ..imagefiles import image_suffixes
 
         raise DataError(
-            f"{what} folder '{root}' holds no images; add files with one of the suffixes {', '.join(IMAGE_SUFFIXES)}"
+            f"{what} folder '{root}' holds no images; add files with one of the suffixes {', '.join(image_suffixes())}"
         )
     images = FileImages(files, input_shape, str(root.resolve()))
     pixels = len(files) * int(torch.tensor(images.input_shape).prod())

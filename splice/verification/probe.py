@@ -13,8 +13,9 @@ import torch
 from torch import nn
 
 from ..copies import bitwise_equal
-from ..data import IMAGE_SUFFIXES, load_images, normalise
+from ..data import normalise
 from ..errors import DataError, SpliceError, first_line
+from ..imagefiles import image_suffixes, list_image_files, load_images
 from ..surgery import warps_of
 from .report import CheckResult
 
@@ -53,10 +54,10 @@ def _image_files(images) -> list[Path]:
     for item in items:
         path = Path(item)
         if path.is_dir():
-            found = sorted(p for p in path.iterdir() if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES)
+            found = list_image_files(path)
             if not found:
                 raise DataError(
-                    f"image folder '{path}' holds no images (looked for {', '.join(IMAGE_SUFFIXES)}); "
+                    f"image folder '{path}' holds no images (looked for {', '.join(image_suffixes())}); "
                     "point --images at a folder of image files"
                 )
             files.extend(found)

@@ -1,0 +1,281 @@
+"""Image files: which files count as images, finding them in folders, and reading one into a tensor.
+
+Every splice data path goes through here: the class folders of an ImageFolder
+tree (:mod:`splice.data`), the unlabelled folders of label-free adaptation
+(:mod:`splice.adapt.images`) and ``verify --images``.
+
+Finding
+    :func:`list_image_files` walks a folder and everything below it, following
+    symbolic links to folders, skipping names that start with ``.`` (hidden
+    files and folders, macOS ``._*`` companions), and keeps the files whose
+    suffix is in :func:`image_suffixes`, sorted. A link to a missing file with
+    an image suffix is an error, the same for every command; a link to a folder
+    that contains it is an error too (walking it would never end).
+
+Reading
+    :func:`read_image` opens one file with Pillow, refuses it from its header
+    when it is over the pixel cap (:func:`splice.limits.max_image_pixels`),
+    applies its EXIF orientation, takes the first frame of a multi-frame file,
+    and returns float32 ``(C, H, W)`` in [0, 1], resized bilinearly to the
+    model's ``H x W`` (aspect ratio not kept). Colour images become grey by
+    Pillow's ``L`` conversion and grey images RGB by copying the channel;
+    transparency is dropped (``convert("RGB")``, as torchvision's default
+    loader does). 8-bit images are divided by 255; 16-bit images (modes
+    ``I;16*``) and 32-bit integer images (mode ``I``, how many tools store
+    16-bit grey) by 65535, and an ``I`` image with values outside 0..65535 is
+    refused; 32-bit float images (mode ``F``) are taken as they are and must
+    lie in 0..1 (within :data:`FLOAT_SLACK`), else they are refused rather
+    than clipped.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import threading
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+import torch
+from torch import Tensor
+
+from .errors import DataError
+from .limits import max_image_pixels
+
+__all__ = [
+    "IMAGE_SUFFIXES",
+    "OPTIONAL_SUFFIXES",
+    "FLOAT_SLACK",
+    "image_suffixes",
+    "list_image_files",
+    "check_input_shape",
+    "open_capped",
+    "read_image",
+    "load_images",
+]
+
+# Suffixes every Pillow build reads (.jfif, .jpe: JPEG; .dib: BMP without the file header).
+IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".jpe", ".jfif", ".bmp", ".dib", ".gif", ".tif", ".tiff", ".webp",
+                  ".ppm", ".pgm", ".pbm")
+# Suffixes counted only when the installed Pillow (or a plugin such as pillow-heif) registers a reader for them.
+OPTIONAL_SUFFIXES = (".avif", ".heic", ".heif")
+# A float image may stray this far outside 0..1 (rounding in the tool that wrote it); it is then clipped. A
+# quarter of an 8-bit step, so the clipping cannot be seen in any 8-bit rendering.
+FLOAT_SLACK = 1e-3
+_SIXTEEN_BIT = 65535
+
+
+def image_suffixes() -> tuple[str, ...]:
+    """:data:`IMAGE_SUFFIXES` and those of :data:`OPTIONAL_SUFFIXES` the installed Pillow can open, now."""
+    from PIL import Image
+
+    registered = Image.registered_extensions()  # loads Pillow's plugins on first use
+    return IMAGE_SUFFIXES + tuple(s for s in OPTIONAL_SUFFIXES if registered.get(s) in Image.OPEN)
+
+
+# ---------------------------------------------------------------------------
+# finding
+# ---------------------------------------------------------------------------
+
+
+def list_image_files(folder: str | os.PathLike) -> list[Path]:
+    """Every image file in ``folder`` and its subfolders, sorted (see the module docstring for the rules)."""
+    folder = Path(os.fspath(folder))
+    suffixes = image_suffixes()
+    found: list[Path] = []
+    broken: list[Path] = []
+    pending = [(folder, (os.path.realpath(folder),))]
+    while pending:
+        where, ancestors = pending.pop()
+        for entry in _entries(where):
+            if entry.name.startswith("."):
+                continue
+            path = Path(entry.path)
+            if entry.is_dir():  # follows a link to a folder
+                real = os.path.realpath(entry.path)
+                if real in ancestors:
+                    raise DataError(f"folder link {path} points back to {real}, which contains it, so the folder "
+                                    "would be walked forever; remove the link.")
+                pending.append((path, (*ancestors, real)))
+            elif path.suffix.lower() not in suffixes:
+                continue
+            elif entry.is_file():
+                found.append(path)
+            elif entry.is_symlink() and not os.path.exists(entry.path):
+                broken.append(path)
+    if broken:
+        shown = "; ".join(f"{p} -> {os.readlink(p)}" for p in sorted(broken)[:5])
+        more = f"; and {len(broken) - 5} more" if len(broken) > 5 else ""
+        raise DataError(f"{len(broken)} image link(s) under {folder} point to missing files: {shown}{more}. "
+                        "Remove the links or restore the files they point to.")
+    return sorted(found)
+
+
+def _entries(folder: Path) -> list[os.DirEntry]:
+    try:
+        with os.scandir(folder) as it:
+            return sorted(it, key=lambda e: e.name)
+    except OSError as exc:
+        raise DataError(f"cannot list the folder {folder}: {exc.strerror or exc}. Check that it exists and "
+                        "that you may read it.") from exc
+
+
+# ---------------------------------------------------------------------------
+# reading
+# ---------------------------------------------------------------------------
+
+
+def check_input_shape(input_shape, min_size: int = 1) -> tuple[int, int, int]:
+    """``input_shape`` as ``(C, H, W)`` ints with C = 1 or 3 and H, W >= ``min_size``, else a :class:`DataError`."""
+    try:
+        shape = tuple(int(v) for v in input_shape)
+        exact = all(float(v) == int(v) for v in input_shape)
+    except (TypeError, ValueError):
+        shape, exact = (), False
+    if len(shape) != 3 or not exact or shape[0] not in (1, 3) or min(shape[1:]) < min_size:
+        raise DataError(
+            f"input_shape must be (C, H, W) with C = 1 or 3 and H, W >= {min_size}; got {input_shape!r}. "
+            "Use the model's input shape, e.g. (1, 48, 48)."
+        )
+    return shape
+
+
+class _PillowLimit:
+    """Pillow's own decompression-bomb limit, lifted while splice reads files under a cap the user raised past
+    it, and put back afterwards.
+
+    Pillow refuses images over twice ``Image.MAX_IMAGE_PIXELS`` when it opens
+    them (and at a few points while decoding), with a message that knows
+    nothing of ``--max-image-pixels``. When splice's cap is at least that high
+    (the user raised it), Pillow's is set to ``None`` while any thread is
+    inside :meth:`lifted` and restored when the last one leaves; below it,
+    Pillow's limit is left alone (it is process-wide) and its refusal is
+    turned into splice's message.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._users = 0
+        self._saved: int | None = None
+
+    @contextlib.contextmanager
+    def lifted(self) -> Iterator[None]:
+        from PIL import Image
+
+        with self._lock:
+            if self._users == 0:
+                self._saved = Image.MAX_IMAGE_PIXELS
+                Image.MAX_IMAGE_PIXELS = None
+            self._users += 1
+        try:
+            yield
+        finally:
+            with self._lock:
+                self._users -= 1
+                if self._users == 0:
+                    Image.MAX_IMAGE_PIXELS = self._saved
+
+
+_PILLOW_LIMIT = _PillowLimit()
+
+
+def _over_cap(path: Path, cap: int, size: str) -> DataError:
+    return DataError(f"image {path} is {size}, over the cap of {cap:,}; shrink it, or raise the cap with "
+                     "--max-image-pixels N (SPLICE_MAX_IMAGE_PIXELS).")
+
+
+@contextlib.contextmanager
+def open_capped(path: Path):
+    """``Image.open`` (which reads only the header), refusing an image over splice's pixel cap before it is decoded.
+
+    splice's cap is the only one the user meets (see :class:`_PillowLimit`).
+    """
+    import warnings
+
+    from PIL import Image
+
+    cap = max_image_pixels()
+    pillow = Image.MAX_IMAGE_PIXELS
+    lift = pillow is not None and cap >= 2 * pillow
+    with _PILLOW_LIMIT.lifted() if lift else contextlib.nullcontext():
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", Image.DecompressionBombWarning)  # splice's cap is the one that counts
+                im = Image.open(path)
+        except Image.DecompressionBombError:  # over twice Pillow's limit, which is above splice's cap here
+            raise _over_cap(path, cap, f"over {2 * pillow:,} pixels") from None
+        try:
+            width, height = im.size
+            if width * height > cap:
+                raise _over_cap(path, cap, f"{width}x{height} ({width * height:,} pixels)")
+            yield im
+        finally:
+            im.close()
+
+
+def read_image(path: Path, input_shape: Sequence[int]) -> Tensor:
+    """One image as float32 ``(C, H, W)`` in [0, 1], resized and channel-converted."""
+    import numpy as np
+    from PIL import Image, ImageOps
+
+    c, h, w = input_shape
+    try:
+        with open_capped(path) as im:
+            im = ImageOps.exif_transpose(im)
+            if im.mode in ("I", "F") or im.mode.startswith("I;16"):
+                arr = _deep_grey(im, path, (w, h))
+                if c == 3:
+                    arr = np.repeat(arr, 3, axis=0)
+            else:
+                if im.mode == "P":
+                    im = im.convert("RGBA")  # palette transparency must go through RGBA
+                im = im.convert("L" if c == 1 else "RGB").resize((w, h), Image.Resampling.BILINEAR)
+                arr = np.asarray(im, dtype=np.float32) / np.float32(255.0)
+                arr = arr[None] if c == 1 else arr.transpose(2, 0, 1)
+    except FileNotFoundError:
+        raise DataError(f"image file not found: {path}. Check the path.") from None
+    except (OSError, ValueError, SyntaxError, Image.DecompressionBombError) as exc:
+        raise DataError(f"cannot read image {path}: {exc}. Remove or replace the file.") from exc
+    return torch.from_numpy(np.ascontiguousarray(arr))
+
+
+def _deep_grey(im, path: Path, size: tuple[int, int]):
+    """A grey image of more than 8 bits (modes ``I;16*``, ``I``, ``F``) as float32 ``(1, H, W)`` in [0, 1]."""
+    import numpy as np
+    from PIL import Image
+
+    raw = np.asarray(im)
+    if im.mode == "F":
+        finite = np.isfinite(raw)
+        if not finite.all():
+            raise DataError(f"image {path} holds {int(raw.size - np.count_nonzero(finite))} NaN or infinite pixel "
+                            "value(s); a single one turns the training loss into NaN. Fix or remove the file.")
+        lo, hi = (float(raw.min()), float(raw.max())) if raw.size else (0.0, 0.0)
+        if lo < -FLOAT_SLACK or hi > 1.0 + FLOAT_SLACK:
+            raise DataError(f"image {path} is a 32-bit float image with values {lo:g}..{hi:g}, outside 0..1, "
+                            "and splice would have to clip them; rescale it to 0..1, or save it as an 8- or "
+                            "16-bit image.")
+        grey = raw.astype(np.float32)
+    else:
+        lo, hi = (int(raw.min()), int(raw.max())) if raw.size else (0, 0)
+        if lo < 0 or hi > _SIXTEEN_BIT:
+            raise DataError(f"image {path} is a 32-bit integer image with values {lo}..{hi}, outside the 0..65535 "
+                            "that splice reads as 16-bit; rescale it to 0..65535 (or to 0..1 as a float image), "
+                            "or save it as an 8- or 16-bit image.")
+        grey = raw.astype(np.float32) / np.float32(_SIXTEEN_BIT)
+    resized = Image.fromarray(np.ascontiguousarray(grey)).resize(size, Image.Resampling.BILINEAR)
+    return np.clip(np.asarray(resized, dtype=np.float32), 0.0, 1.0)[None]
+
+
+def load_images(paths: Sequence[str | os.PathLike], input_shape: Sequence[int]) -> Tensor:
+    """Read image files into one float32 batch ``(N, C, H, W)`` in [0, 1] (for ``verify --images``)."""
+    shape = check_input_shape(input_shape)
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    paths = [Path(os.fspath(p)) for p in paths]
+    if not paths:
+        raise DataError("no image files given; pass at least one path.")
+    for p in paths:
+        if p.is_dir():
+            raise DataError(f"{p} is a folder, not an image file; pass image files (or open_data for folders).")
+    return torch.stack([read_image(p, shape) for p in paths])
