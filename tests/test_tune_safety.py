@@ -223,7 +223,13 @@ def _two_classes(root, n: int = 3):
 def test_an_unreadable_image_read_by_a_worker_is_one_line_naming_it(tmp_path, capsys):
     # a DataLoader worker wraps an error in its own traceback; the run says what the main process would
     root = _two_classes(tmp_path / "data")
-    (root / "train" / "b" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n not really a png")
+    from PIL import Image
+
+    # a header that reads and pixels cut short: found only when a worker decodes the file
+    noise = np.random.default_rng(0).integers(0, 256, (64, 64), dtype=np.uint8)
+    Image.fromarray(noise).save(root / "train" / "b" / "broken.png")
+    whole = (root / "train" / "b" / "broken.png").read_bytes()
+    (root / "train" / "b" / "broken.png").write_bytes(whole[: len(whole) // 2])
     out = tmp_path / "run"
     code = cli.main(["tune", "splice.models:tray_net", "--kwargs", '{"num_classes": 2}', "--recipe", "baseline",
                      "--epochs", "1", "--quiet", "--data", str(root), "--out", str(out), "--workers", "1"])
@@ -247,6 +253,20 @@ def test_resuming_on_changed_data_says_the_batches_differ(tmp_path):
     with pytest.warns(SpliceWarning, match=r"resuming with 11 train and 12 val images where the run started with "
                                            r"12 and 12: from here on its batches are not the ones"):
         tune(resume=out, run_options=QUIET)
+
+
+def test_every_file_that_is_no_image_is_named_before_the_run_starts(tmp_path):
+    root = _two_classes(tmp_path / "data")
+    for name in ("x.png", "y.jpg"):
+        (root / "train" / "a" / name).write_bytes(b"not an image at all")
+    (root / "val" / "b" / "z.png").write_bytes(b"")
+    out = tmp_path / "run"
+    with pytest.warns(SpliceWarning), pytest.raises(DataError) as caught:  # random weights
+        tune("splice.models:tray_net", recipe="baseline", data=str(root), out=out,
+             model_options=ModelOptions(kwargs={"num_classes": 2}), run_options=QUIET)
+    message = str(caught.value)
+    assert "2 of 8 images in" in message and "x.png" in message and "y.jpg" in message
+    assert not out.exists()  # refused before the run folder was made
 
 
 # ----------------------------------------------------------------------------- the run-folder lock

@@ -154,13 +154,16 @@ def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
 
 def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:
     """The train and val splits and their class names, checked against the model's outputs and classes."""
-    from ..data import open_data
+    from ..data import ImageFolderSet, open_data
 
     shape = tuple(src.input_shape)
     train = open_data(data, "train", input_shape=shape)
     val = open_data(data, "val", input_shape=shape)
     if len(train) == 0 or len(val) == 0:
         raise DataError(f"data {data!r} has an empty train or val split; add images to both")
+    for split in (train, val):  # every unreadable file named at once, before the run starts, not one per run
+        if isinstance(split, ImageFolderSet):
+            split.check_headers()
     classes = list(getattr(train, "classes", []) or [])
     n_out = _num_outputs(net, shape, device)
     if n_out is not None and classes and n_out != len(classes):
