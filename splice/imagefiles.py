@@ -148,7 +148,7 @@ class _PillowLimit:
     them (and at a few points while decoding), with a message that knows
     nothing of ``--max-image-pixels``. When splice's cap is at least that high
     (the user raised it), Pillow's is set to ``None`` while any thread is
-    inside :meth:`lifted` and restored when the last one leaves; below it,
+    inside :meth:`entered` and restored when the last one leaves; below it,
     Pillow's limit is left alone (it is process-wide) and its refusal is
     turned into splice's message.
     """
@@ -159,21 +159,27 @@ class _PillowLimit:
         self._saved: int | None = None
 
     @contextlib.contextmanager
-    def lifted(self) -> Iterator[None]:
+    def entered(self, cap: int) -> Iterator[int | None]:
+        """Lift Pillow's limit for the block if ``cap`` reaches twice it; yields Pillow's own limit (as the
+        caller set it, whatever other threads have lifted), decided under the lock."""
         from PIL import Image
 
         with self._lock:
-            if self._users == 0:
-                self._saved = Image.MAX_IMAGE_PIXELS
-                Image.MAX_IMAGE_PIXELS = None
-            self._users += 1
-        try:
-            yield
-        finally:
-            with self._lock:
-                self._users -= 1
+            limit = self._saved if self._users else Image.MAX_IMAGE_PIXELS
+            lift = limit is not None and cap >= 2 * limit
+            if lift:
                 if self._users == 0:
-                    Image.MAX_IMAGE_PIXELS = self._saved
+                    self._saved = Image.MAX_IMAGE_PIXELS
+                    Image.MAX_IMAGE_PIXELS = None
+                self._users += 1
+        try:
+            yield limit
+        finally:
+            if lift:
+                with self._lock:
+                    self._users -= 1
+                    if self._users == 0:
+                        Image.MAX_IMAGE_PIXELS = self._saved
 
 
 _PILLOW_LIMIT = _PillowLimit()
@@ -195,15 +201,13 @@ def open_capped(path: Path):
     from PIL import Image
 
     cap = max_image_pixels()
-    pillow = Image.MAX_IMAGE_PIXELS
-    lift = pillow is not None and cap >= 2 * pillow
-    with _PILLOW_LIMIT.lifted() if lift else contextlib.nullcontext():
+    with _PILLOW_LIMIT.entered(cap) as pillow:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", Image.DecompressionBombWarning)  # splice's cap is the one that counts
                 im = Image.open(path)
         except Image.DecompressionBombError:  # over twice Pillow's limit, which is above splice's cap here
-            raise _over_cap(path, cap, f"over {2 * pillow:,} pixels") from None
+            raise _over_cap(path, cap, f"over {2 * (pillow or 0):,} pixels") from None
         try:
             width, height = im.size
             if width * height > cap:

@@ -6,12 +6,13 @@ onnxruntime and torch round in different orders; on an ill-conditioned probe
 image) both can be far from exact arithmetic while agreeing with each other
 to 1e-3 or so. Measured on timm pvt_v2_b0, twins_svt_small and
 focalnet_tiny_srf with random weights and a perturbed input warp: torch
-float32 was 0.03-0.07 from float64, the export 1e-3..3e-3 from torch. The
+float32 was 0.03-0.17 from float64, the export 1e-3..7e-3 from torch. The
 model here makes that situation exact: its output is ``x`` plus a gain times
-``(3x)/3 - x``, which is zero in exact arithmetic and a rounding error in
+``r = (3x)/3 - x``, which is zero in exact arithmetic and a rounding error in
 float32 (computed the same way by both runtimes: IEEE 754 multiplication and
-division are correctly rounded), and its export adds a known offset, a
-stand-in for a lowering error.
+division are correctly rounded). Its export adds ``share`` times that same
+rounding term (a runtime rounding in another order, where rounding is) and
+an ``offset`` everywhere (a lowering error, also where torch is exact).
 """
 
 from __future__ import annotations
@@ -30,31 +31,36 @@ pytest.importorskip("onnxruntime")
 
 
 class _Rounding(nn.Module):
-    def __init__(self, gain: float, offset: float):
+    def __init__(self, gain: float, share: float, offset: float, second: float | None):
         super().__init__()
-        self.gain, self.offset = gain, offset
+        self.gain, self.share, self.offset, self.second = gain, share, offset, second
 
     def forward(self, x):
-        y = x + self.gain * ((x * 3.0) / 3.0 - x)
-        if torch.onnx.is_in_onnx_export():  # what the export computes: torch's output plus a known offset
-            y = y + self.offset
-        return y
+        r = (x * 3.0) / 3.0 - x
+        y = x + self.gain * r
+        clean = x.mean((2, 3))  # a second output, exact in float32 too
+        if torch.onnx.is_in_onnx_export():  # what the export computes
+            y = y + self.share * self.gain * r + self.offset
+            clean = clean + (self.second or 0.0)
+        return y if self.second is None else (y, clean)
 
 
 def _probe() -> tuple[torch.Tensor, float]:
     """An input in [1, 2] and the largest float32 rounding of (3x)/3 - x on it."""
     x = torch.linspace(1.0, 2.0, 64).reshape(1, 1, 8, 8)
-    r = float(((x * 3.0) / 3.0 - x).abs().max())
-    assert r > 0  # the probe does round in float32
-    return x, r
+    r = ((x * 3.0) / 3.0 - x).abs()
+    assert float(r.max()) > 0 and float(r.min()) == 0  # the probe rounds at some elements, not at all
+    return x, float(r.max())
 
 
-def _parity(rounding: float, offset: float, tol: float | None = None) -> dict:
-    """onnx_parity of a model whose float32 output is ``rounding`` (relative) from float64, exported with
-    ``offset`` (relative) added."""
+def _parity(rounding: float, share: float = 0.0, offset: float = 0.0, tol: float | None = None,
+            second: float | None = None) -> dict:
+    """onnx_parity of a model whose float32 output is up to ``rounding`` (relative) from float64, exported with
+    ``share`` of that rounding and ``offset`` (relative) added, and ``second`` added to a second, exact output."""
     x, r = _probe()
     scale = float(x.abs().max())
-    model = _Rounding(gain=rounding * scale / r, offset=offset * scale).eval()
+    model = _Rounding(gain=rounding * scale / r, share=share, offset=offset * scale,
+                      second=None if second is None else second * float(x.mean())).eval()
     buf = io.BytesIO()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DeprecationWarning)  # the TorchScript exporter, which splice uses too
@@ -63,36 +69,47 @@ def _parity(rounding: float, offset: float, tol: float | None = None) -> dict:
 
 
 def test_exact_export_passes_without_float64():
-    result = _parity(rounding=0.02, offset=0.0)
+    result = _parity(rounding=0.02)
     assert result["passed"] and result["max_abs"] == 0.0
     assert result["float64_rounding"] is None  # only a miss is judged against float64
 
 
-def test_difference_within_float32_rounding_passes_and_says_why():
+def test_difference_where_torch_itself_rounds_passes_and_says_why():
     tol = EXPORT_TOLERANCES[torch.float32]
-    result = _parity(rounding=0.02, offset=0.01)
-    assert result["max_rel"] > tol  # missed the float32 tolerance ...
-    assert result["passed"]  # ... but torch float32 itself is 0.02 from exact, farther than the export from torch
+    result = _parity(rounding=0.02, share=1.0)
+    assert result["max_rel"] == pytest.approx(0.02, rel=0.05) and result["max_rel"] > tol  # missed 1e-3 ...
+    assert result["passed"]  # ... but only where torch float32 is itself 0.02 from exact
     assert result["float64_rounding"] == pytest.approx(0.02, rel=0.05)
-    assert "float32 rounding" in result["detail"] and "0.02" in result["detail"]
+    assert "within the probe's float32 rounding" in result["detail"]
 
 
-def test_difference_beyond_float32_rounding_fails():
-    result = _parity(rounding=0.02, offset=0.04)
+def test_difference_beyond_twice_the_rounding_fails():
+    result = _parity(rounding=0.01, share=3.0)
     assert not result["passed"]
-    assert result["max_rel"] == pytest.approx(0.04, rel=0.05)
     assert "more than rounding explains" in result["detail"]
+
+
+def test_rounding_at_some_elements_excuses_nothing_at_others():
+    # an offset of 0.01 everywhere: below the probe's largest rounding (0.02), but also where torch is exact
+    result = _parity(rounding=0.02, offset=0.01)
+    assert not result["passed"] and "more than rounding explains" in result["detail"]
+
+
+def test_rounding_in_one_output_excuses_nothing_in_another():
+    result = _parity(rounding=0.02, share=1.0, second=0.015)
+    assert not result["passed"]
+    assert _parity(rounding=0.02, share=1.0, second=0.0)["passed"]
 
 
 def test_very_ill_conditioned_probe_passes_a_small_difference():
     # as measured on twins_svt_small and focalnet_tiny_srf: torch float32 0.16-0.17 from float64, export 3e-3..7e-3
-    result = _parity(rounding=0.16, offset=0.005)
+    result = _parity(rounding=0.16, share=0.05)
     assert result["passed"] and result["float64_rounding"] == pytest.approx(0.16, rel=0.05)
 
 
 def test_difference_too_large_for_rounding_fails_however_ill_conditioned():
-    result = _parity(rounding=0.5, offset=2 * ROUNDING_LIMIT)
-    assert not result["passed"]
+    result = _parity(rounding=0.5, share=0.1)
+    assert result["max_rel"] > ROUNDING_LIMIT and not result["passed"]
     assert "too large to put down to rounding" in result["detail"]
 
 
@@ -158,6 +175,42 @@ def test_failed_export_names_the_other_exporter_and_an_opset_it_takes(tmp_path):
 
 
 def test_a_tolerance_the_caller_sets_is_kept_as_it_is():
-    assert _parity(rounding=0.02, offset=0.01)["passed"]  # the default tolerance is judged against float64
-    result = _parity(rounding=0.02, offset=0.01, tol=EXPORT_TOLERANCES[torch.float32])
+    assert _parity(rounding=0.02, share=1.0)["passed"]  # the default tolerance is judged against float64
+    result = _parity(rounding=0.02, share=1.0, tol=EXPORT_TOLERANCES[torch.float32])
     assert not result["passed"] and result["float64_rounding"] is None
+
+
+class _RoundingLeaf(nn.Module):
+    """(3x)/3 - x, amplified: exact arithmetic gives 0, float32 its rounding. Behind a perturbed warp the two
+    runtimes sample x in their own orders, so their roundings differ where x does (independent noise)."""
+
+    def forward(self, x):
+        return x + 1e5 * ((x * 3.0) / 3.0 - x)
+
+
+class _WarpedRounding(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 2, 3, padding=1)
+        self.leaf = _RoundingLeaf()
+
+    def forward(self, x):
+        return self.leaf(x) + self.conv(x).mean()
+
+
+def test_verify_s_checking_graph_judges_the_perturbed_run():
+    # verify's path: weights fed as inputs, the perturbed run's float64 model built from perturbed_copy. The
+    # runtimes' independent rounding behind the off-grid warp misses 1e-3 and is put down to rounding
+    import splice
+    from splice.exporting import check_onnx_graph
+
+    torch.manual_seed(0)
+    spliced = splice.insert(_WarpedRounding().eval(), at="input", input_shape=(1, 8, 8), leaves=[_RoundingLeaf])
+    x = torch.linspace(1.0, 2.0, 128).reshape(2, 1, 8, 8)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        result = check_onnx_graph(spliced, x)
+    tol = EXPORT_TOLERANCES[torch.float32]
+    assert result["passed"] and result["max_rel"] <= tol < result["max_rel_perturbed"]
+    assert result["float64_rounding"] == pytest.approx(result["max_rel_perturbed"], rel=0.05)
+    assert "perturbed, relative error" in result["detail"]

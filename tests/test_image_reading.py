@@ -284,3 +284,45 @@ def test_a_folder_of_class_folders_is_one_evaluation_split(tmp_path):
         data.open_data(flat, "test", input_shape=(1, 6, 6)).check()
     with pytest.raises(DataError, match=r"has no 'train' folder \(found: u, v\); .*read only as a val or test split"):
         data.open_data(flat, "train", input_shape=(1, 6, 6))
+
+
+def test_two_threads_share_the_lifted_limit_and_it_comes_back_once(tmp_path, monkeypatch):
+    # B enters while A holds the lift; A leaves before B's Image.open. B must still read (the limit stays lifted
+    # for it), and Pillow's limit must come back when both have left
+    import threading
+
+    big = _bmp_header(tmp_path / "big.bmp", 20_000, 10_000)
+    before = Image.MAX_IMAGE_PIXELS
+    a_inside, b_entered, a_left = threading.Event(), threading.Event(), threading.Event()
+    real_open = Image.open
+
+    def slow_open(path, *args, **kwargs):
+        if threading.current_thread().name == "B":
+            b_entered.set()
+            a_left.wait(10)
+        return real_open(path, *args, **kwargs)
+
+    monkeypatch.setattr(Image, "open", slow_open)
+    seen = {}
+
+    def a():
+        with image_pixel_cap(300_000_000), open_capped(big):
+            a_inside.set()
+            b_entered.wait(10)
+        a_left.set()
+
+    def b():
+        a_inside.wait(10)
+        try:
+            with image_pixel_cap(300_000_000), open_capped(big) as im:
+                seen["size"] = im.size
+        except Exception as exc:  # what the thread met, for the assertion below
+            seen["error"] = exc
+
+    threads = [threading.Thread(target=a, name="A"), threading.Thread(target=b, name="B")]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(20)
+    assert seen == {"size": (20_000, 10_000)}
+    assert Image.MAX_IMAGE_PIXELS == before

@@ -19,7 +19,7 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
 import torch
-from torch import nn
+from torch import Tensor, nn
 
 from ..compare import compare_outputs, detached, flatten_outputs
 from ..copies import private_buffers, tree_copy
@@ -36,7 +36,7 @@ from .onnx import (
 )
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
-__all__ = ["EXPORT_TOLERANCES", "ROUNDING_LIMIT", "onnx_parity", "check_onnx_graph"]
+__all__ = ["EXPORT_TOLERANCES", "JUDGED_QUANTILES", "ROUNDING_LIMIT", "onnx_parity", "check_onnx_graph"]
 
 EXPORT_TOLERANCES = {torch.float32: 1e-3, torch.float64: 1e-9}
 #: the largest float32 miss that can be put down to rounding (see :func:`_judged_exactly`): a rule of thumb, our
@@ -114,17 +114,31 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
         results.append(_judged_exactly(compare_flat(ref, outs, tol), ref, outs, xs, model_of))
     return merge_parities(results)
 
+#: the quantiles of each output's errors against float64 that :func:`_judged_exactly` compares
+JUDGED_QUANTILES = (0.5, 0.9, 0.99, 1.0)
+
+
+def _quantiles(values: Tensor) -> list[float]:
+    ordered = values.flatten().sort().values
+    return [float(ordered[round(q * (ordered.numel() - 1))]) for q in JUDGED_QUANTILES]
+
+
 def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
     """A float32 comparison that missed its tolerance, judged against the model run in float64.
 
     A probe can be ill-conditioned in float32: a LayerNorm over channels that
     are zero in exact arithmetic but rounding noise in float32 (a warp whose
     grid lands a hair inside the image, a zero-initialised conv bias) turns
-    rounding into output. Then torch float32 is far from exact arithmetic,
-    and onnxruntime, rounding in another order, cannot be expected to agree
-    with torch more closely than that. The comparison passes when the export
-    differs from torch float32 by no more than torch float32 differs from
-    float64 on the same probe, and by no more than :data:`ROUNDING_LIMIT`.
+    rounding into output. There torch float32 is far from exact arithmetic,
+    and onnxruntime, rounding in its own order, cannot agree with torch more
+    closely than that. The comparison passes when, for every output, the
+    export's errors against float64 are at most twice torch float32's plus
+    the tolerance at each of :data:`JUDGED_QUANTILES` (the median, 90th and
+    99th percentiles and the maximum: two float32 runs round about alike, in
+    the same places or not), and the export is nowhere more than
+    :data:`ROUNDING_LIMIT` of the output's scale from torch. An error where
+    torch is exact moves the export's median or percentiles, and rounding in
+    one output excuses nothing in another.
     """
     if result["passed"] or result.get("max_rel") is None or not result.get("shapes_equal") or model_of is None:
         return result
@@ -132,25 +146,34 @@ def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
         return result
     try:
         with torch.no_grad():
-            exact = tree_copy(model_of()).double().eval()(*[x.double() for x in xs])
+            exact = flatten_outputs(tree_copy(model_of()).double().eval()(*[x.double() for x in xs]))
     except Exception:  # a model that cannot run in float64: the float32 verdict stands
         return result
-    own = compare_outputs(exact, ref)
-    export = compare_flat(exact, outs, 1.0)
-    if own.get("max_rel") is None or not own.get("shapes_equal") or export.get("max_rel") is None:
+    torch32 = flatten_outputs(ref)
+    if list(exact) != list(torch32) or any(exact[k].shape != torch32[k].shape for k in exact):
         return result
-    rounding, miss = own["max_rel"], result["max_rel"]
-    if miss > rounding or miss > ROUNDING_LIMIT:
-        if rounding <= result["tolerance"]:
+    tol, miss = result["tolerance"], result["max_rel"]
+    rounding, worse = 0.0, False
+    for key, out in zip(torch32, outs):
+        t, e = torch32[key].detach().double().cpu(), exact[key].detach().double().cpu()
+        if not t.numel():
+            continue
+        o = torch.as_tensor(out).double()
+        scale = float(e.abs().max()) or 1.0  # the output's true scale
+        theirs, ours = _quantiles((o - e).abs()), _quantiles((t - e).abs())
+        rounding = max(rounding, ours[-1] / scale)
+        worse = worse or any(a > 2 * b + tol * scale for a, b in zip(theirs, ours))
+    if worse or miss > ROUNDING_LIMIT:
+        if rounding <= tol:
             return result
-        why = ("more than rounding explains" if miss > rounding
+        why = ("more than rounding explains" if worse
                else f"too large to put down to rounding (limit {ROUNDING_LIMIT:g})")
-        return {**result, "detail": f"{result['detail']}; torch float32 itself is {rounding:.3g} from float64 on "
-                                    f"this probe, but the difference is {why}"}
+        return {**result, "detail": f"{result['detail']}; torch float32 itself is up to {rounding:.3g} from float64 "
+                                    f"on this probe, but the difference is {why}"}
     return {**result, "passed": True, "float64_rounding": rounding,
-            "detail": (f"max abs error {result['max_abs']:.3g}, max relative error {miss:.3g}: above the "
-                       f"tolerance {result['tolerance']:g}, within this probe's float32 rounding (torch float32 is "
-                       f"{rounding:.3g} from float64, the export {export['max_rel']:.3g})")}
+            "detail": (f"max abs error {result['max_abs']:.3g}, max relative error {miss:.3g}: above the tolerance "
+                       f"{tol:g}, and within this probe's float32 rounding (torch float32 is up to {rounding:.3g} "
+                       "from float64, the export no more than twice as far at any percentile)")}
 
 def _overridable(proto, names: Sequence[str]):
     """Declare the named initializers overridable graph inputs (values unchanged), in place.
