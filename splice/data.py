@@ -69,6 +69,7 @@ from .imagefiles import (
 )
 
 __all__ = [
+    "same_classes",
     "DATASETS",
     "SPLITS",
     "DIGITS_SHAPE",
@@ -179,6 +180,10 @@ class ImageFolderSet(Dataset):
         """Open every image's header, not its pixels (tens of microseconds a file); raise one :class:`DataError`
         naming all that are missing, not images, or over the pixel cap. A file whose pixels are cut short
         still fails only when it is read (:meth:`check` decodes everything)."""
+        self._refuse(self.bad_headers())
+
+    def bad_headers(self) -> list[str]:
+        """``"path (why)"`` for every image whose header cannot be read (see :meth:`check_headers`)."""
         bad = []
         for path, _ in self.samples:
             try:
@@ -188,7 +193,7 @@ class ImageFolderSet(Dataset):
                 bad.append(f"{path} ({exc})")
             except (OSError, ValueError, SyntaxError) as exc:  # Pillow's refusals of a file that is no image
                 bad.append(f"{path} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})")
-        self._refuse(bad)
+        return bad
 
     def _refuse(self, bad: list[str]) -> None:
         if bad:
@@ -426,15 +431,22 @@ def _open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFo
     if has_train and split != "train":
         train = _class_names(root / "train")
         _check_same_classes(root, split, train, names)
-    classes = sorted(train.values())
+    classes = sorted(train)  # NFC names, sorted as such: the same labels whichever way the disk spells them
     files = _class_images(where, names)
-    samples = [(p, i) for i, name in enumerate(classes) for p in files[unicodedata.normalize("NFC", name)]]
+    samples = [(p, i) for i, name in enumerate(classes) for p in files[name]]
     return ImageFolderSet(root, split, classes, samples, shape, folder=where)
 
 
 # ---------------------------------------------------------------------------
 # normalisation
 # ---------------------------------------------------------------------------
+
+
+def same_classes(a: Sequence[str] | None, b: Sequence[str] | None) -> bool:
+    """Two class lists name the same classes in the same order, compared after Unicode NFC normalisation (a
+    model trained on a tree written on macOS, where names are decomposed, matches the same tree elsewhere)."""
+    return [unicodedata.normalize("NFC", str(n)) for n in a or []] == [unicodedata.normalize("NFC", str(n))
+                                                                          for n in b or []]
 
 
 def normalise(x: Tensor, normalisation: dict | None) -> Tensor:

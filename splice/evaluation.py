@@ -215,8 +215,10 @@ def _check_classes(logits, classes: list[str], who: str, source, data: str) -> N
             f"{', ...' if len(classes) > 12 else ''}); evaluate it on data with the same classes, or build "
             f"it for this data (e.g. --kwargs '{{\"num_classes\": {len(classes)}}}' and matching --weights)."
         )
+    from .data import same_classes
+
     names = getattr(source, "class_names", None)
-    if names and list(names) != list(classes):
+    if names and not same_classes(names, classes):
         raise DataError(
             f"{who} was trained on classes {names[:12]} but {data} has {classes[:12]} in that order; "
             "the labels would not line up. Use data with the same class folders."

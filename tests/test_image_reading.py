@@ -255,12 +255,24 @@ def test_class_names_are_compared_after_nfc(tmp_path):
     root = _tree(tmp_path / "t", {"train": (nfc, "b"), "val": (nfd, "b")})
     train = data.open_data(root, "train", input_shape=(1, 6, 6))
     val = data.open_data(root, "val", input_shape=(1, 6, 6))
-    assert train.classes == val.classes == ["b", nfc]  # train's spelling
+    assert train.classes == val.classes == ["b", nfc]  # NFC, whichever way the disk spells them
     assert [(Path(p).parent.name, label) for p, label in val.samples] == [("b", 0), (nfd, 1)]
     _grey(root / "train" / nfd / "1.png")
     with pytest.raises(DataError, match=rf"holds two class folders whose names differ only in Unicode normalisation: "
                                         rf"'{nfd}' \(NFD\) and '{nfc}' \(NFC\).*merge them into one folder"):
         data.open_data(root, "train", input_shape=(1, 6, 6))
+
+
+def test_a_tree_spelled_nfd_gives_the_labels_of_the_same_tree_spelled_nfc(tmp_path):
+    # sorted as NFD, "éa" (e + combining accent) comes before "f"; as NFC after it: one order for both trees
+    names = {form: unicodedata.normalize(form, "éa") for form in ("NFC", "NFD")}
+    trees = {form: data.open_data(_tree(tmp_path / form, {"train": (name, "f")}), "train", input_shape=(1, 6, 6))
+             for form, name in names.items()}
+    assert trees["NFC"].classes == trees["NFD"].classes == ["f", names["NFC"]]
+    assert trees["NFC"].labels.tolist() == trees["NFD"].labels.tolist() == [0, 1]
+    # a model whose record spells its classes the other way still matches, in the same order only
+    assert data.same_classes([names["NFD"], "f"], [names["NFC"], "f"])
+    assert not data.same_classes(["f", names["NFD"]], [names["NFC"], "f"])
 
 
 def test_without_train_the_opened_split_gives_the_classes(tmp_path):

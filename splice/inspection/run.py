@@ -181,8 +181,10 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
 
 def _score(sample: _Sample, logits: Tensor | None) -> None:
     """Predicted classes and accuracy, when the model returns one logit per class."""
+    from ..data import same_classes
+
     classes = sample.classes
-    if sample.model_classes and classes and sample.model_classes != list(classes):
+    if sample.model_classes and classes and not same_classes(sample.model_classes, classes):
         sample.accuracy_note = (f"no accuracy: the model was trained on classes {sample.model_classes[:12]} but the "
                                 f"data has {list(classes)[:12]}, so the labels would not line up")
         return

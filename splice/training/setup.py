@@ -154,16 +154,19 @@ def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
 
 def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:
     """The train and val splits and their class names, checked against the model's outputs and classes."""
-    from ..data import ImageFolderSet, open_data
+    from ..data import ImageFolderSet, open_data, same_classes
 
     shape = tuple(src.input_shape)
     train = open_data(data, "train", input_shape=shape)
     val = open_data(data, "val", input_shape=shape)
     if len(train) == 0 or len(val) == 0:
         raise DataError(f"data {data!r} has an empty train or val split; add images to both")
-    for split in (train, val):  # every unreadable file named at once, before the run starts, not one per run
-        if isinstance(split, ImageFolderSet):
-            split.check_headers()
+    # every unreadable file of both splits named at once, before the run starts, not one per run
+    bad = [b for split in (train, val) if isinstance(split, ImageFolderSet) for b in split.bad_headers()]
+    if bad:
+        listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
+        raise DataError(f"{len(bad)} of {len(train) + len(val)} images of data {data!r} cannot be read: {listed}. "
+                        "Remove or replace them.")
     classes = list(getattr(train, "classes", []) or [])
     n_out = _num_outputs(net, shape, device)
     if n_out is not None and classes and n_out != len(classes):
@@ -171,7 +174,7 @@ def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[
             f"the model has {n_out} outputs but data {data!r} has {len(classes)} classes; build the model "
             f"with that many, e.g. --kwargs '{{\"num_classes\": {len(classes)}}}'"
         )
-    if src.class_names and classes and list(src.class_names) != classes:
+    if src.class_names and classes and not same_classes(src.class_names, classes):
         raise DataError(
             f"the model was trained on classes {src.class_names[:6]} but data {data!r} has {classes[:6]}; "
             "class folders must match the model's classes (same names, same order)"
