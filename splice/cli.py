@@ -193,7 +193,8 @@ def _cmd_verify(args) -> int:
     from .verification import render_verify, verify, write_report
 
     report = verify(args.folder, images=args.images, batch=args.batch, dtype=args.dtype, onnx=args.onnx,
-                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle, trust_code=args.trust_code)
+                    opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle, exporter=args.exporter,
+                    trust_code=args.trust_code)
     if args.report:
         write_report(report, args.report)
     if args.json:
@@ -313,6 +314,8 @@ def _parser_verify(sub) -> None:
     p.add_argument("--dtype", choices=("float32", "float64"), default="float32")
     p.add_argument("--onnx", action="store_true", help="also export to ONNX and check onnxruntime parity")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
+    p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
+                   help="ONNX exporter of the --onnx check (default torchscript)")
     p.add_argument("--seed", type=int, default=0, help="seed of the probe batch (default 0)")
     p.add_argument("--json", action="store_true", help="print the certificate as JSON")
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")

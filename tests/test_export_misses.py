@@ -214,3 +214,19 @@ def test_verify_s_checking_graph_judges_the_perturbed_run():
     assert result["passed"] and result["max_rel"] <= tol < result["max_rel_perturbed"]
     assert result["float64_rounding"] == pytest.approx(result["max_rel_perturbed"], rel=0.05)
     assert "perturbed, relative error" in result["detail"]
+
+
+@pytest.mark.slow  # the dynamo exporter takes seconds
+def test_verify_s_advice_can_be_followed_on_the_command_line(tmp_path, capsys):
+    import splice
+    from splice.cli import main
+
+    torch.manual_seed(0)
+    folder = splice.save(splice.insert(_Folds().eval(), at="input", input_shape=(3, 16, 16)), tmp_path / "folds",
+                         source=f"{__file__}:_Folds")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["verify", str(folder), "--onnx", "--trust-code"]) == 1
+        out = capsys.readouterr()
+        assert "try --exporter dynamo --opset 18" in out.out + out.err
+        assert main(["verify", str(folder), "--onnx", "--trust-code", "--exporter", "dynamo", "--opset", "18"]) == 0
