@@ -58,6 +58,7 @@ from torch.utils.data import Dataset
 
 from . import distort
 from .errors import DataError, suggest
+from .limits import image_pixel_cap, max_image_pixels
 from .imagefiles import (
     IMAGE_SUFFIXES,
     check_input_shape,
@@ -154,13 +155,17 @@ class ImageFolderSet(Dataset):
         self.samples = samples
         self.input_shape = input_shape
         self.reference = None
+        # the pixel cap in force when the split was opened, carried with it (a spawned DataLoader worker does not
+        # inherit the caller's context, where --max-image-pixels sets the cap)
+        self.pixel_cap = max_image_pixels()
 
     def __len__(self) -> int:
         return len(self.samples)
 
     def __getitem__(self, i):
         path, label = self.samples[i]
-        return read_image(path, self.input_shape), label
+        with image_pixel_cap(self.pixel_cap):
+            return read_image(path, self.input_shape), label
 
     @property
     def labels(self) -> Tensor:
@@ -171,7 +176,8 @@ class ImageFolderSet(Dataset):
         bad = []
         for path, _ in self.samples:
             try:
-                read_image(path, self.input_shape)
+                with image_pixel_cap(self.pixel_cap):
+                    read_image(path, self.input_shape)
             except DataError as exc:
                 bad.append(f"{path} ({exc.__cause__ or exc})")
         self._refuse(bad)
@@ -187,7 +193,7 @@ class ImageFolderSet(Dataset):
         bad = []
         for path, _ in self.samples:
             try:
-                with open_capped(path):
+                with image_pixel_cap(self.pixel_cap), open_capped(path):
                     pass
             except DataError as exc:
                 bad.append(f"{path} ({exc})")

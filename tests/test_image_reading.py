@@ -338,3 +338,23 @@ def test_two_threads_share_the_lifted_limit_and_it_comes_back_once(tmp_path, mon
         t.join(20)
     assert seen == {"size": (20_000, 10_000)}
     assert Image.MAX_IMAGE_PIXELS == before
+
+
+def test_a_split_carries_the_pixel_cap_it_was_opened_under(tmp_path):
+    # a spawned DataLoader worker gets the dataset pickled, not the caller's context where the cap was set
+    import pickle
+
+    root = tmp_path / "t"
+    for split in ("train", "val"):
+        Image.new("L", (40, 40), 51).save(_made(root / split / "a") / "0.png")
+    with image_pixel_cap(1000):
+        ds = data.open_data(root, "train", input_shape=(1, 5, 5))
+    far = pickle.loads(pickle.dumps(ds))  # what a spawned worker holds, outside the block
+    with pytest.raises(DataError, match=r"is 40x40 \(1,600 pixels\), over the cap of 1,000"):
+        far[0]
+    assert ds.bad_headers() and "over the cap of 1,000" in ds.bad_headers()[0]
+
+
+def _made(folder: Path) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    return folder
