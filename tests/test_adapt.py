@@ -22,7 +22,7 @@ from splice.adapt.objective import entropy_loss
 from splice.adapt.ranges import RangeEstimate, fit_ranges, site_statistics
 from splice.data import open_data
 from splice.distort import DistortionRange, random_distort
-from splice.errors import DataError, RecipeError
+from splice.errors import DataError, RecipeError, SpliceWarning
 from splice.options import ModelOptions
 from splice.recipes import Recipe, load_recipe, recipe_to_toml
 from splice.surgery import WARP_PREFIX
@@ -421,3 +421,18 @@ def test_a_reference_too_small_to_estimate_from_is_refused_before_any_work(tmp_p
         tune(str(spliced), recipe=_tiny(), site=str(site), out=out, overrides=RecipeOverrides(reference=str(small)),
              run_options=QUIET)
     assert not out.exists()  # refused before the run folder was made
+
+
+def test_resuming_a_label_free_run_on_changed_site_images_says_the_batches_differ(tmp_path, folders, spliced):
+    import shutil
+
+    ref, site = folders
+    mine = tmp_path / "site"
+    shutil.copytree(site, mine)
+    out = tmp_path / "run"
+    kw = {"recipe": _tiny(), "site": str(mine), "overrides": RecipeOverrides(reference=str(ref))}
+    tune(str(spliced), out=out, run_options=RunOptions(progress=False, stop_after_steps=2), **kw)
+    next(p for p in sorted(mine.rglob("*.png"))).unlink()
+    with pytest.warns(SpliceWarning, match=r"resuming with 39 site and 40 reference images where the run started "
+                                           r"with 40 and 40"):
+        tune(resume=out, run_options=RunOptions(progress=False, stop_after_steps=3))

@@ -249,7 +249,11 @@ def test_resuming_on_changed_data_says_the_batches_differ(tmp_path):
         tune("splice.models:tray_net", recipe=recipe, data=str(root), out=out, model_options=options,
              run_options=RunOptions(progress=False, stop_after_steps=1))
     assert json.loads((out / "run.json").read_text())["train_images"] == 12
-    (root / "train" / "b" / "5.png").unlink()  # a bad file removed before resuming
+    (root / "train" / "b" / "5.png").rename(root / "train" / "b" / "6.png")  # as many files, but not the same
+    with pytest.warns(SpliceWarning, match=r"resuming with other image files than the run started with \(12 train "
+                                           r"and 12 val, as before\): from here on its batches are not the ones"):
+        tune(resume=out, run_options=dataclasses.replace(QUIET, stop_after_steps=2))
+    (root / "train" / "b" / "6.png").unlink()  # a bad file removed before resuming
     with pytest.warns(SpliceWarning, match=r"resuming with 11 train and 12 val images where the run started with "
                                            r"12 and 12: from here on its batches are not the ones"):
         tune(resume=out, run_options=QUIET)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,7 +21,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from ..errors import RecipeError
+from ..errors import RecipeError, SpliceWarning
 from ..manifest import info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
@@ -141,6 +142,12 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
         if ctx.is_main:
             start_files(run_dir, rec, info)
     elif ctx.is_main:
+        started = (info.get("site_images"), info.get("reference_images"))
+        now = (len(site_images), None if reference is None else len(reference))
+        if started[0] is not None and started != now:
+            warnings.warn(f"resuming with {now[0]:,} site and {now[1] or 0:,} reference images where the run "
+                          f"started with {started[0]:,} and {started[1] or 0:,}: from here on its batches are not "
+                          "the ones an uninterrupted run would have drawn", SpliceWarning, stacklevel=5)
         info["status"] = "running"
         write_run_info(run_dir, info)
     return AdaptRun(ctx=ctx, rec=rec, src=src, net=net, warps=warps, site=site_images, reference=reference,

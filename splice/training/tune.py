@@ -287,11 +287,13 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
 
     if info is None:
         info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin=norm_origin, ref=ref),
-                    train_images=len(train_set), val_images=len(val_set))
+                    train_images=len(train_set), val_images=len(val_set),
+                    images_sha256=_image_list_sha256(train_set, val_set))
         if ctx.is_main:
             start_files(run_dir, rec, info)
     else:
-        _warn_if_data_changed(info, len(train_set), len(val_set))
+        if ctx.is_main:
+            _warn_if_data_changed(info, train_set, val_set)
         if ctx.is_main:
             info = {k: v for k, v in info.items() if k not in ("diverged", "error")}
             info["status"] = "running"
@@ -305,15 +307,34 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
                trained_on=_trained_on(rec, req.data, net, ref))
 
 
-def _warn_if_data_changed(info: dict, n_train: int, n_val: int) -> None:
-    """A resumed run whose splits no longer hold the images it started with (a bad file removed, say) goes on,
-    but its batches from here on are not the ones an uninterrupted run would have drawn: say so."""
+def _image_list_sha256(*splits) -> str | None:
+    """A hash of which image files the splits hold and their labels (paths relative to each split's root), or
+    ``None`` for splits held in memory (the embedded digits: the same images every time)."""
+    import hashlib
+
+    if not all(hasattr(s, "samples") for s in splits):
+        return None
+    h = hashlib.sha256()
+    for s in splits:
+        for path, label in s.samples:
+            h.update(f"{s.split}\t{Path(path).relative_to(s.root).as_posix()}\t{label}\n".encode())
+    return h.hexdigest()
+
+
+def _warn_if_data_changed(info: dict, train_set, val_set) -> None:
+    """A resumed run whose splits no longer hold the images it started with (a bad file removed or replaced,
+    say) goes on, but its batches from here on are not the ones an uninterrupted run would have drawn: say so."""
     started = (info.get("train_images"), info.get("val_images"))
-    if None in started or started == (n_train, n_val):
+    now = (len(train_set), len(val_set))
+    recorded = info.get("images_sha256")
+    same_files = recorded is None or recorded == _image_list_sha256(train_set, val_set)
+    if None in started or (started == now and same_files):
         return
-    warnings.warn(f"resuming with {n_train:,} train and {n_val:,} val images where the run started with "
-                  f"{started[0]:,} and {started[1]:,}: from here on its batches are not the ones an uninterrupted run "
-                  "would have drawn", SpliceWarning, stacklevel=5)
+    what = (f"{now[0]:,} train and {now[1]:,} val images where the run started with {started[0]:,} and "
+            f"{started[1]:,}" if started != now else f"other image files than the run started with ({now[0]:,} "
+            f"train and {now[1]:,} val, as before)")
+    warnings.warn(f"resuming with {what}: from here on its batches are not the ones an uninterrupted run would "
+                  "have drawn", SpliceWarning, stacklevel=5)
 
 
 def _trained_on(rec, data: str, net, ref) -> str:
