@@ -94,8 +94,8 @@ def list_image_files(folder: str | os.PathLike) -> list[Path]:
             if entry.is_dir():  # follows a link to a folder
                 real = os.path.realpath(entry.path)
                 if real in ancestors:
-                    raise DataError(f"folder link {path} points back to {real}, which contains it, so the folder "
-                                    "would be walked forever; remove the link.")
+                    raise DataError(f"{path} leads back to {real}, a folder that contains it (through a symbolic "
+                                    "link), so the walk would never end; remove the link.")
                 pending.append((path, (*ancestors, real)))
             elif path.suffix.lower() not in suffixes:
                 continue
@@ -263,7 +263,8 @@ def _deep_grey(im, path: Path, size: tuple[int, int]):
     else:
         lo, hi = (int(raw.min()), int(raw.max())) if raw.size else (0, 0)
         if lo < 0 or hi > _SIXTEEN_BIT:
-            raise DataError(f"image {path} is a 32-bit integer image with values {lo}..{hi}, outside the 0..65535 "
+            kind = "16-bit" if im.mode.startswith("I;16") else "32-bit integer"
+            raise DataError(f"image {path} is a {kind} image with values {lo}..{hi}, outside the 0..65535 "
                             "that splice reads as 16-bit; rescale it to 0..65535 (or to 0..1 as a float image), "
                             "or save it as an 8- or 16-bit image.")
         grey = raw.astype(np.float32) / np.float32(_SIXTEEN_BIT)

@@ -179,7 +179,7 @@ def test_links_are_followed_and_a_broken_one_is_one_line_everywhere(tmp_path):
 def test_a_link_back_up_the_tree_is_refused(tmp_path):
     _grey(tmp_path / "site" / "a" / "0.png")
     os.symlink(tmp_path / "site", tmp_path / "site" / "a" / "loop")
-    with pytest.raises(DataError, match=r"folder link .*loop points back to .*site, which contains it"):
+    with pytest.raises(DataError, match=r"loop leads back to .*site, a folder that contains it \(through a symbolic link\)"):
         list_image_files(tmp_path / "site")
 
 
@@ -358,3 +358,15 @@ def test_a_split_carries_the_pixel_cap_it_was_opened_under(tmp_path):
 def _made(folder: Path) -> Path:
     folder.mkdir(parents=True, exist_ok=True)
     return folder
+
+
+def test_verify_images_too_many_to_hold_are_refused_before_reading(tmp_path, monkeypatch):
+    from splice.errors import ResourceError
+
+    for k in range(3):
+        Image.new("L", (8, 8), 40 * k).save(_made(tmp_path / "many" / f"part{k}") / f"{k}.png")
+    monkeypatch.setattr("splice.limits.available_bytes", lambda: 2 * 4 * 3 * 10 * 10 - 1)  # one byte short
+    with pytest.raises(ResourceError, match=r"reading 3 images of 1x10x10 for --images.*point --images at fewer"):
+        read_images(tmp_path / "many", (1, 10, 10), None)
+    monkeypatch.setattr("splice.limits.available_bytes", lambda: 2 * 4 * 3 * 10 * 10)
+    assert read_images(tmp_path / "many", (1, 10, 10), None)[0].shape == (3, 1, 10, 10)

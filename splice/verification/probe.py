@@ -16,6 +16,7 @@ from ..copies import bitwise_equal
 from ..data import normalise
 from ..errors import DataError, SpliceError, first_line
 from ..imagefiles import image_suffixes, list_image_files, load_images
+from ..limits import check_fits
 from ..surgery import warps_of
 from .report import CheckResult
 
@@ -69,6 +70,10 @@ def _image_files(images) -> list[Path]:
 
 def read_images(images, input_shape, normalisation) -> tuple[torch.Tensor, list[str]]:
     files = _image_files(images)
+    c, h, w = input_shape
+    # held at once, twice (read, then normalised): refused before reading when that would not fit
+    check_fits(2 * 4 * len(files) * c * h * w, f"reading {len(files):,} images of {c}x{h}x{w} for --images",
+               "point --images at fewer images (a few hundred probe the model as well as many thousands)")
     return normalise(load_images(files, input_shape), normalisation), [str(f) for f in files]
 
 def short_number(x: float | None) -> str:
