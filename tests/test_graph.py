@@ -259,6 +259,29 @@ def test_value_gate_without_leaf_names_the_module():
         graph.trace(_Gated(_ValueGate()))
 
 
+class _PartThenValues(nn.Module):
+    """A part that takes the images (it traces), then a head that needs real values (as a detector's is)."""
+
+    def __init__(self):
+        super().__init__()
+        self.backbone = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 4, 3, padding=1))
+        self.head = _ValueGate()
+
+    def forward(self, x):
+        return self.head(self.backbone(x))
+
+
+def test_when_nothing_lists_the_whole_model_the_parts_that_take_the_images_are_named():
+    with pytest.raises(GraphError, match=r"failed in module 'head' \(_ValueGate\).*--leaf test_graph\._ValueGate.*"
+                                         r"or splice inside one part with --within NAME \(Python: within='NAME'\), "
+                                         r"NAME being a part that takes the images: backbone$"):
+        points(_PartThenValues(), (3, 8, 8))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        inside = points(_PartThenValues(), (3, 8, 8), within="backbone")  # and the advice can be followed
+    assert inside[0].name == "input" and inside[0].mechanism == "hooks"
+
+
 def test_value_gate_as_leaf_works():
     model = _Gated(_ValueGate())
     for leaves in ([_ValueGate], ["_ValueGate"], ["test_graph._ValueGate"]):

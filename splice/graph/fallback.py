@@ -53,6 +53,8 @@ class _Timeline:
         self.conv_starts: list[int] = []
         self.conv_ends: list[int] = []
         self.calls: dict[str, int] = {}
+        # direct children with children of their own (not single layers) called with an (N, C, H, W) tensor first
+        self.take_images: list[str] = []
         self.clock = itertools.count()
         self.handles = []
         for mod in self.qualnames:
@@ -61,6 +63,10 @@ class _Timeline:
 
     def before(self, mod, args):
         self.stack.append(mod)
+        name = self.qualnames[mod]
+        if ("." not in name and args and isinstance(args[0], torch.Tensor) and args[0].dim() == 4
+                and next(mod.children(), None) is not None and name not in self.take_images):
+            self.take_images.append(name)
         if isinstance(mod, CONV_MODULES):
             self.conv_starts.append(next(self.clock))
 
@@ -138,6 +144,10 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
     else:
         here = f"the forward of {type(model).__name__} itself"
         advice = todo
+    parts = [n for n in timeline.take_images if not (timeline.stack and timeline.qualnames[timeline.stack[0]] == n)]
+    if parts:  # a part of the model that takes the images may trace where the whole does not (a detector)
+        advice += (f"; or splice inside one part with --within NAME (Python: within='NAME'), NAME being a part that "
+                   f"takes the images: {', '.join(parts)}")
     return GraphError(f"cannot list points of {type(model).__name__}: {problem}, and a meta-device forward "
                       f"failed in {here} ({reason(exc)}); {advice}")
 
