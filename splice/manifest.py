@@ -456,15 +456,15 @@ _BASES: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 
 
 def remember_base(spliced, base) -> None:
-    """Remember, weakly, that ``spliced`` was made from the module object ``base`` (kept neither alive nor copied:
-    a copy of ``spliced`` has no link)."""
-    _BASES[spliced] = weakref.ref(base)
+    """Remember that ``spliced`` was made from the module object ``base``: kept alive (not copied) while
+    ``spliced`` lives, so that ``splice.verify(splice.insert(Net()))`` can compare with it; a copy of
+    ``spliced`` (deepcopy, pickle) has no link."""
+    _BASES[spliced] = base
 
 
 def remembered_base(spliced):
-    """The module object ``spliced`` was made from, while it is alive; else ``None``."""
-    ref = _BASES.get(spliced)
-    return ref() if ref is not None else None
+    """The module object ``spliced`` was made from, or ``None`` (a copy, or a splice of a spec)."""
+    return _BASES.get(spliced)
 
 
 def copy_model(model):

@@ -4,9 +4,10 @@
 :data:`MODULE_SPEC`: only the caller's Python knows how that module was made,
 so no folder can rebuild it. Such a splice is checked and exported in memory:
 
-- :func:`splice.manifest.remember_base` (re-exported here) keeps a weak
-  reference from the splice to the caller's base module (it neither copies
-  nor keeps it alive), beside the record the splice carries;
+- :func:`splice.manifest.remember_base` (re-exported here) keeps the
+  caller's base module (not a copy) alive while the splice lives, beside the
+  record the splice carries, so that a base the caller holds no name for
+  (``splice.insert(Net())``) can still be compared with;
 - :func:`base_to_check_against` is the base :func:`splice.verify` compares
   with: the one remembered, provided its weights still hash to those
   recorded when it was spliced; else one line says what to do (hand the
@@ -64,8 +65,8 @@ def base_to_check_against(spliced: nn.Module) -> nn.Module | None:
     info = info_of(spliced)
     base = remembered_base(spliced)
     if base is None:
-        raise SpliceError(f"this splice was made from a module object, and splice holds no live reference to it "
-                          f"for this model (it is gone, or this model is a copy); {_BY_HAND}")
+        raise SpliceError(f"this splice was made from a module object, and splice holds no reference to it for "
+                          f"this model (it is a copy: deepcopy and pickle do not carry the base); {_BY_HAND}")
     if info.source_weights_sha256 and state_dict_sha256(base.state_dict()) != info.source_weights_sha256:
         raise SpliceError(f"the module this splice was made from has changed since (its weights no longer hash to "
                           f"those recorded); {_BY_HAND}")

@@ -68,12 +68,20 @@ def test_verify_needs_the_base_as_it_was():
     assert verify_models(_net(), spliced).passed  # the same weights, in another object
 
 
-def test_verify_says_how_to_pass_a_base_that_is_gone():
-    spliced = _spliced(_net())
-    gc.collect()  # the base was only referenced weakly
-    with pytest.raises(SpliceError, match=r"no live reference.*verify_models\(base, spliced\)"):
-        splice.verify(spliced)
-    assert verify_models(_net(), spliced).passed
+def test_a_base_the_caller_holds_no_name_for_is_kept_for_verify():
+    spliced = _spliced(_net())  # splice.insert(Net()): the caller keeps no name for the base
+    gc.collect()
+    assert splice.verify(spliced).passed  # the splice keeps its base alive
+
+
+def test_verify_of_a_copy_says_how_to_pass_the_base():
+    import copy
+
+    twin = copy.deepcopy(_spliced(_net()))  # deepcopy and pickle do not carry the base
+    with pytest.raises(SpliceError, match=r"no reference to it for this model \(it is a copy.*"
+                                          r"verify_models\(base, spliced\)"):
+        splice.verify(twin)
+    assert verify_models(_net(), twin).passed
 
 
 def test_a_folder_of_a_module_object_says_it_cannot_be_rebuilt(tmp_path):
