@@ -38,3 +38,26 @@ def test_accuracy_only_when_the_classes_line_up(tmp_path, same, capsys):
         assert main(["inspect", str(folder), "--data", "digits", "--n", "8", "--out", str(tmp_path / "cli")]) == 0
         out = capsys.readouterr().out
         assert "no accuracy: the model was trained on classes" in out and "accuracy on them" not in out
+
+
+def test_a_folder_of_unlabelled_images_is_inspected_without_an_accuracy(tmp_path):
+    # a new site's images arrive unlabelled, in one folder: what the warp does on them is what a user wants to see
+    import csv
+
+    import numpy as np
+    from PIL import Image
+
+    site = tmp_path / "site"
+    site.mkdir()
+    digits = open_data("digits-moved", "test").images[:5]
+    for k, img in enumerate(digits):
+        Image.fromarray((img[0].numpy() * 255).round().astype(np.uint8)).save(site / f"part{k}.png")
+    (site / "notes.txt").write_text("not an image")
+    folder = _folder(tmp_path / "spliced", [str(d) for d in range(10)])
+    result = splice.inspect(folder, data=str(site), n=8, out=tmp_path / "report", pictures=True)
+    assert result["n_images"] == 5 and result["split"] is None and result["accuracy"] is None
+    assert result["accuracy_note"].startswith("no accuracy: the images carry no labels")
+    with open(tmp_path / "report" / "warps.csv") as f:
+        rows = list(csv.DictReader(f))
+    assert len(rows) == 5 and all(r["label"] == "" and r["predicted"] != "" for r in rows)
+    assert (tmp_path / "report" / "sheet_input.png").is_file()

@@ -74,6 +74,7 @@ class _Sample:
     normalisation: dict | None
     input_shape: tuple[int, ...]
     model_classes: list[str] | None = None
+    unlabelled: bool = False
     predicted: Tensor | None = None
     accuracy: float | None = None
     accuracy_note: str | None = None
@@ -127,7 +128,8 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     atomic_write_text(outdir / "warps.csv", csv_text(rows))
     used = sorted({q for w in summary_warps.values() for q in w["quantities"]}, key=CSV_QUANTITIES.index)
     result = json_safe({
-        "schema_version": SCHEMA_VERSION, "model": _name(folder), "data": str(data), "split": split,
+        "schema_version": SCHEMA_VERSION, "model": _name(folder), "data": str(data),
+        "split": None if sample.unlabelled else split,
         "n_images": int(sample.images.shape[0]), "accuracy": sample.accuracy,
         "accuracy_note": sample.accuracy_note, "warps": summary_warps,
         "help": {q: QUANTITY_HELP[q] for q in used}, "files": files,
@@ -171,12 +173,37 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
     from ..data import open_data
 
     input_shape = tuple(facts.input_shape)
-    ds = open_data(data, split, input_shape=input_shape)
+    try:
+        ds = open_data(data, split, input_shape=input_shape)
+    except DataError:
+        ds = _unlabelled(data, input_shape)  # a folder of images without class folders (a site's), else re-raised
+        if ds is None:
+            raise
+    unlabelled = ds.classes == []
     classes = list(getattr(ds, "classes", []) or []) or facts.class_names
     images, labels, indices = _sample_images(ds, n)
-    return _Sample(images=images, labels=labels, indices=indices, classes=classes,
-                   normalisation=facts.normalisation, input_shape=input_shape,
-                   model_classes=list(facts.class_names) if facts.class_names else None)
+    sample = _Sample(images=images, labels=labels, indices=indices, classes=classes,
+                     normalisation=facts.normalisation, input_shape=input_shape,
+                     model_classes=list(facts.class_names) if facts.class_names else None, unlabelled=unlabelled)
+    if unlabelled:
+        sample.accuracy_note = "no accuracy: the images carry no labels (a folder of images without class folders)"
+    return sample
+
+
+def _unlabelled(data, input_shape):
+    """The images lying directly in the folder ``data``, as a split without labels (label -1), or ``None`` when
+    ``data`` is not such a folder."""
+    from ..data import ImageFolderSet
+    from ..imagefiles import image_suffixes
+
+    root = Path(str(data))
+    if not root.is_dir():
+        return None
+    files = sorted(f for f in root.iterdir()
+                   if f.is_file() and not f.name.startswith(".") and f.suffix.lower() in image_suffixes())
+    if not files:
+        return None
+    return ImageFolderSet(root, "images", [], [(f, -1) for f in files], input_shape, folder=root)
 
 
 def _score(sample: _Sample, logits: Tensor | None) -> None:
@@ -184,6 +211,10 @@ def _score(sample: _Sample, logits: Tensor | None) -> None:
     from ..data import same_classes
 
     classes = sample.classes
+    if sample.unlabelled:
+        if logits is not None:
+            sample.predicted = logits.argmax(dim=1)  # what the model says, with nothing to score it against
+        return
     if sample.model_classes and classes and not same_classes(sample.model_classes, classes):
         sample.accuracy_note = (f"no accuracy: the model was trained on classes {sample.model_classes[:12]} but the "
                                 f"data has {list(classes)[:12]}, so the labels would not line up")
@@ -211,7 +242,7 @@ def _warp_summary(point: str, warp, desc: dict, sample: _Sample) -> dict:
 def _csv_rows(point: str, warp, desc: dict, sample: _Sample) -> list[dict]:
     rows = []
     for i in range(sample.images.shape[0]):
-        row = {"image": int(sample.indices[i]), "label": int(sample.labels[i]),
+        row = {"image": int(sample.indices[i]), "label": "" if sample.unlabelled else int(sample.labels[i]),
                "predicted": "" if sample.predicted is None else int(sample.predicted[i]),
                "point": point, "family": warp.family}
         row.update({q: float(desc[q][i]) for q in quantities_for(warp.family)})
@@ -223,7 +254,8 @@ def _draw(outdir: Path, point: str, warp, theta: Tensor, desc: dict, sample: _Sa
     """The sheet (input level) or outline (feature level) of the first ``k`` images, and the histograms."""
     name = _safe_name(point)
     images = sample.images
-    common = {"labels": sample.labels[:k], "classes": sample.classes, "indices": sample.indices[:k],
+    common = {"labels": None if sample.unlabelled else sample.labels[:k], "classes": sample.classes,
+              "indices": sample.indices[:k],
               "of": int(images.shape[0])}
     if _level(point) == "input":
         path = draw_contact_sheet(outdir / f"sheet_{name}.png", warp, point, theta[:k], images[:k],

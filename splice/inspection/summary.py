@@ -86,7 +86,8 @@ def render_inspect(result: Mapping, console) -> None:
     from rich.table import Table
 
     acc = result.get("accuracy")
-    console.print(f"inspected {result['model']} on {result['n_images']} images of {result['data']}/{result['split']}"
+    where = result["data"] if result["split"] is None else f"{result['data']}/{result['split']}"
+    console.print(f"inspected {result['model']} on {result['n_images']} images of {where}"
                   + (f"; accuracy on them {acc:.4f}" if acc is not None else ""))
     if result.get("accuracy_note"):
         console.print(result["accuracy_note"])
