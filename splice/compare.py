@@ -12,7 +12,7 @@ from collections.abc import Mapping, Sequence
 
 import torch
 
-__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows"]
+__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows", "class_logits"]
 
 # max error relative to the output's scale (max |y|), by dtype. float32 rounding
 # through a bilinear resample at the identity stays near 1e-7; 1e-5 leaves room
@@ -35,6 +35,19 @@ def flatten_outputs(out, prefix: str = "out") -> dict[str, torch.Tensor]:
             flat.update(flatten_outputs(v, f"{prefix}[{i}]"))
         return flat
     return {}
+
+
+def class_logits(out):
+    """A classifier's logits in its output: the output itself when it is a tensor, else its ``logits`` (a Hugging
+    Face ``ModelOutput``, torchvision's Inception and GoogLeNet outputs), else its first tensor (a tuple, a list,
+    a dict). The output unchanged when none of these is a tensor (the caller says what it needed)."""
+    if isinstance(out, torch.Tensor):
+        return out
+    named = out.get("logits") if isinstance(out, Mapping) else getattr(out, "logits", None)
+    if isinstance(named, torch.Tensor):
+        return named
+    values = out.values() if isinstance(out, Mapping) else out if isinstance(out, (tuple, list)) else ()
+    return next((v for v in values if isinstance(v, torch.Tensor)), out)
 
 
 def _failed(detail: str, *, inf: bool = False) -> dict:

@@ -16,6 +16,7 @@ import time
 
 import torch
 
+from ..compare import class_logits
 from ..errors import RecipeError, TrainingDiverged
 from ..training import batches as _b
 from ..training import distributed
@@ -57,7 +58,7 @@ def check_objective(run: AdaptRun) -> None:
 def _site_loss(run: AdaptRun, images: torch.Tensor, gen: torch.Generator) -> torch.Tensor:
     site = run.rec.site
     if site.objective == "entropy":
-        return entropy_loss(run.net(run.prepare(images)))
+        return entropy_loss(class_logits(run.net(run.prepare(images))))
     if site.objective == "consistency":
         return consistency_loss(run.warps["input"], images, run.prepare, gen)
     return torch.zeros((), device=run.ctx.device)

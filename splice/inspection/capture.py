@@ -8,6 +8,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor, nn
 
+from ..compare import class_logits
 from ..copies import modes_kept
 from ..errors import DataError, SpliceError
 
@@ -61,7 +62,7 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
             with torch.no_grad():
                 for start in range(0, images.shape[0], batch_size):
                     x = normalise(images[start:start + batch_size], normalisation).to(device=device, dtype=dtype)
-                    out = model(x)
+                    out = class_logits(model(x))
                     for name, w in warps.items():
                         thetas[name].append(w.last_theta.to("cpu", torch.float64))
                     if isinstance(out, Tensor) and out.dim() == 2:

@@ -26,6 +26,7 @@ import math
 import torch
 from torch import Tensor, nn
 
+from ..compare import class_logits
 from ..copies import modes_kept
 
 __all__ = ["final_layer", "zero_final_layer_", "confidently_wrong"]
@@ -42,7 +43,7 @@ def final_layer(model: nn.Module, example: Tensor) -> str | None:
                 lambda _m, _a, out, name=name: calls.append((name, out))))
     try:
         with modes_kept(model):
-            out = model.eval()(example)
+            out = class_logits(model.eval()(example))
     finally:
         for h in handles:
             h.remove()
