@@ -12,7 +12,9 @@ from collections.abc import Mapping, Sequence
 
 import torch
 
-__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows", "class_logits"]
+from .errors import DataError
+
+__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows", "class_logits", "logits_or_refuse"]
 
 # max error relative to the output's scale (max |y|), by dtype. float32 rounding
 # through a bilinear resample at the identity stays near 1e-7; 1e-5 leaves room
@@ -38,16 +40,34 @@ def flatten_outputs(out, prefix: str = "out") -> dict[str, torch.Tensor]:
 
 
 def class_logits(out):
-    """A classifier's logits in its output: the output itself when it is a tensor, else its ``logits`` (a Hugging
-    Face ``ModelOutput``, torchvision's Inception and GoogLeNet outputs), else its first tensor (a tuple, a list,
-    a dict). The output unchanged when none of these is a tensor (the caller says what it needed)."""
+    """A classifier's logits in its output, or ``None`` when the output does not say which tensor they are.
+
+    The output itself when it is a tensor; else its ``logits`` (a Hugging Face
+    ``ModelOutput``, torchvision's Inception and GoogLeNet outputs); else the
+    one tensor a tuple, list or dict holds. A container of several tensors
+    and no ``logits`` (an embedding beside the scores, a segmentation map
+    beside an auxiliary one) is ``None``: guessing would train on the wrong one.
+    """
     if isinstance(out, torch.Tensor):
         return out
     named = out.get("logits") if isinstance(out, Mapping) else getattr(out, "logits", None)
     if isinstance(named, torch.Tensor):
         return named
-    values = out.values() if isinstance(out, Mapping) else out if isinstance(out, (tuple, list)) else ()
-    return next((v for v in values if isinstance(v, torch.Tensor)), out)
+    flat = flatten_outputs(out)
+    return next(iter(flat.values())) if len(flat) == 1 else None
+
+
+def logits_or_refuse(out, who: str, classes: int | None = None):
+    """:func:`class_logits` of ``out`` as ``(N, K)``, with ``K == classes`` when given; else a one-line
+    :class:`~splice.errors.DataError` naming what the model returns and what splice needs."""
+    logits = class_logits(out)
+    if isinstance(logits, torch.Tensor) and logits.dim() == 2 and (classes is None or logits.shape[1] == classes):
+        return logits
+    flat = flatten_outputs(out)
+    shown = ", ".join(f"{k} {tuple(v.shape)}" for k, v in list(flat.items())[:6]) or type(out).__name__
+    want = f"(N, {classes}) logits, one per class" if classes is not None else "(N, classes) logits"
+    raise DataError(f"{who} returns {shown}; this needs {want}: return them alone, or as the output's .logits "
+                    "(or key 'logits')")
 
 
 def _failed(detail: str, *, inf: bool = False) -> dict:

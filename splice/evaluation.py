@@ -35,7 +35,7 @@ import torch
 from torch import Tensor, nn
 from torch.nn import functional as F
 
-from .compare import class_logits
+from .compare import class_logits, logits_or_refuse
 from .errors import DataError, SpliceError, suggest
 from .options import ModelOptions, split_keywords
 
@@ -389,7 +389,10 @@ def _tally(models, ds, n: int, conditions, classes: list[str], data: str, option
             for role, name, source, net in models:
                 param = next(iter(net.parameters()), None)
                 dtype = param.dtype if param is not None else torch.float32
-                logits = class_logits(net(normalise(x, source.normalisation).to(device=dev, dtype=dtype)))
+                out = net(normalise(x, source.normalisation).to(device=dev, dtype=dtype))
+                logits = class_logits(out)
+                if logits is None:
+                    logits_or_refuse(out, f"model {name}")  # says what it returns instead
                 if role not in checked:
                     _check_classes(logits, classes, f"model {name}", source, data)
                     checked.add(role)

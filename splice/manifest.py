@@ -56,7 +56,6 @@ from __future__ import annotations
 import copy
 import dataclasses
 import math
-import weakref
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -451,20 +450,34 @@ def attach_info(model, info: SpliceInfo) -> None:
         model.meta["splice_info"] = info
 
 
-# spliced model -> weak reference to the module object it was made from (see splice.objects)
-_BASES: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+class _BaseLink:
+    """The module object a splice was made from, held on the splice itself (so that ordinary garbage collection
+    frees the two together, cycles included); a copy of the splice (deepcopy, pickle) carries no base."""
+
+    def __init__(self, base=None):
+        self.base = base
+
+    def __deepcopy__(self, memo):
+        return _BaseLink()
+
+    def __reduce__(self):
+        return (_BaseLink, ())
+
+
+_LINK = "_splice_base_link"
 
 
 def remember_base(spliced, base) -> None:
     """Remember that ``spliced`` was made from the module object ``base``: kept alive (not copied) while
     ``spliced`` lives, so that ``splice.verify(splice.insert(Net()))`` can compare with it; a copy of
     ``spliced`` (deepcopy, pickle) has no link."""
-    _BASES[spliced] = base
+    object.__setattr__(spliced, _LINK, _BaseLink(base))  # a plain attribute: not a submodule, not in state_dict
 
 
 def remembered_base(spliced):
     """The module object ``spliced`` was made from, or ``None`` (a copy, or a splice of a spec)."""
-    return _BASES.get(spliced)
+    link = spliced.__dict__.get(_LINK) if hasattr(spliced, "__dict__") else None
+    return link.base if isinstance(link, _BaseLink) else None
 
 
 def copy_model(model):

@@ -271,10 +271,26 @@ class _PartThenValues(nn.Module):
         return self.head(self.backbone(x))
 
 
+class _Wrapped(nn.Module):
+    """A wrapper around the model (as a library's task head puts it): the part to splice is one level down."""
+
+    def __init__(self):
+        super().__init__()
+        self.model = _PartThenValues()
+
+    def forward(self, x):
+        return self.model(x)
+
+
+def test_a_part_one_level_down_is_named_too():
+    with pytest.raises(GraphError, match=r"tensor: model\.backbone$"):
+        points(_Wrapped(), (3, 8, 8))
+
+
 def test_when_nothing_lists_the_whole_model_the_parts_that_take_the_images_are_named():
     with pytest.raises(GraphError, match=r"failed in module 'head' \(_ValueGate\).*--leaf test_graph\._ValueGate.*"
                                          r"or splice inside one part with --within NAME \(Python: within='NAME'\), "
-                                         r"NAME being a part that takes the images: backbone$"):
+                                         r"NAME being a part that ran on an \(N, C, H, W\) tensor: backbone$"):
         points(_PartThenValues(), (3, 8, 8))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -29,9 +29,35 @@ def test_class_logits_finds_a_classifier_s_logits_in_the_usual_outputs():
     assert class_logits(transformers.modeling_outputs.ImageClassifierOutput(logits=x)) is x
     assert class_logits(inception(x, aux)) is x
     assert class_logits({"logits": x, "aux": aux}) is x
-    assert class_logits({"out": x, "aux": aux}) is x  # the first tensor of a dict, tuple or list
-    assert class_logits((x, aux)) is x and class_logits([x]) is x
-    assert class_logits("no tensor") == "no tensor"  # handed back: the caller says what it needed
+    assert class_logits({"out": x}) is x and class_logits((x,)) is x and class_logits([x]) is x  # the one tensor
+    # several tensors and no logits (an embedding beside the scores, a map beside an auxiliary one): no guess
+    assert class_logits({"out": x, "aux": aux}) is None and class_logits((x, aux)) is None
+    assert class_logits("no tensor") is None
+
+
+def test_an_output_without_logits_is_refused_in_one_line_naming_what_it_holds(tmp_path):
+    from splice.errors import DataError
+
+    class Embeds(torch.nn.Module):  # (embedding, scores): which one is the classifier's is not for splice to guess
+        def __init__(self):
+            super().__init__()
+            self.conv = torch.nn.Conv2d(1, 4, 3, padding=1)
+            self.embed, self.fc = torch.nn.Linear(4, 16), torch.nn.Linear(16, 10)
+
+        def forward(self, x):
+            e = self.embed(self.conv(x).mean((2, 3)))
+            return e, self.fc(e)
+
+    spliced = splice.insert(Embeds().eval(), at="input", input_shape=DIGITS_SHAPE)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(DataError, match=r"the model returns out\[0\] \(2, 16\), out\[1\] \(2, 10\); this needs "
+                                            r"\(N, classes\) logits: return them alone, or as the output's \.logits"):
+            splice.tune(spliced, recipe="warp-only", data="digits", out=tmp_path / "run", run_options=QUIET)
+        with pytest.raises(DataError, match=r"returns out\[0\] \(\d+, 16\), out\[1\] \(\d+, 10\)"):
+            splice.evaluate(spliced, data="digits")
+        report = splice.inspect(spliced, data="digits", n=4, out=tmp_path / "insp", pictures=False)
+    assert report["accuracy"] is None and "no (N, classes) logits" in report["accuracy_note"]
 
 
 @pytest.fixture(scope="module")
@@ -63,7 +89,10 @@ def test_tune_reads_the_logits_of_a_model_output(tmp_path, hf_digits, recipe):
     rows = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
     assert 0.0 <= rows[0]["accuracy"] <= 1.0 and rows[0]["val_loss"] > 0
     if recipe == "baseline":  # the head is found through the ModelOutput: the classifier's Linear
-        assert rows[0]["head_reset"] in ("classifier.1", None)
+        from splice.training.head import final_layer
+
+        net = splice.load_source(str(base), input_shape=[DIGITS_SHAPE], warn_random=False).model
+        assert final_layer(net, torch.zeros(1, *DIGITS_SHAPE)) == "classifier.1"
 
 
 def test_eval_and_inspect_read_the_logits_of_a_model_output(tmp_path, hf_digits):
@@ -73,7 +102,15 @@ def test_eval_and_inspect_read_the_logits_of_a_model_output(tmp_path, hf_digits)
         result = splice.evaluate(str(spliced), data="digits", distort="rotate=0,30")
         report = splice.inspect(str(spliced), data="digits", n=360, out=tmp_path / "insp", pictures=False)
     clean = result["clean"]["accuracy"]
-    assert 0.0 <= clean <= 1.0 and report["accuracy"] == pytest.approx(clean, abs=1e-9)  # two paths, one model
+    assert report["accuracy"] == pytest.approx(clean, abs=1e-9)  # two paths, one model
+    # and by hand: the folder's model, its recorded normalisation, the logits of the ModelOutput
+    from splice.data import normalise, open_data
+
+    test = open_data("digits", "test")
+    model = splice.load(spliced).eval()
+    with torch.no_grad():
+        logits = model(normalise(test.images, model.splice_info.normalisation)).logits
+    assert clean == pytest.approx(float((logits.argmax(1) == test.labels).double().mean()), abs=1e-9)
 
 
 def test_label_free_reads_the_logits_of_a_model_output(tmp_path, hf_digits):

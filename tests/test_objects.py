@@ -210,3 +210,15 @@ def test_a_compiled_splice_of_a_module_object_is_checked_as_the_module_it_wraps(
         splice.export(compiled, onnx=tmp_path / "net.onnx")
     assert any("torch.compile'd" in str(w.message) for w in seen)
     assert (tmp_path / "net.onnx").is_file()
+
+
+def test_the_kept_base_goes_with_its_splice_even_when_it_refers_to_it():
+    import weakref
+
+    base = _net()
+    spliced = _spliced(base)
+    handle = base.register_forward_hook(lambda module, args, out, keep=spliced: None)  # base -> splice -> base
+    alive = weakref.ref(base), weakref.ref(spliced)
+    del base, spliced, handle
+    gc.collect()
+    assert all(ref() is None for ref in alive)

@@ -30,7 +30,7 @@ from collections.abc import Callable, Mapping
 import torch
 from torch import Tensor, nn
 
-from ..compare import class_logits
+from ..compare import logits_or_refuse
 from ..copies import modes_kept
 from ..distort import random_distort
 from ..training import batches as _b
@@ -64,7 +64,8 @@ def base_view(model: nn.Module, warps: Mapping[str, nn.Module]) -> nn.Module:
 
 
 def _logits(model: nn.Module, images: Tensor, prepare: Callable[[Tensor], Tensor], batch_size: int) -> Tensor:
-    return torch.cat([class_logits(model(prepare(chunk))).float() for chunk in images.split(batch_size)])
+    return torch.cat([logits_or_refuse(model(prepare(chunk)), "the model").float()
+                      for chunk in images.split(batch_size)])
 
 
 def _spread(model: nn.Module, warps: Mapping[str, nn.Module], images: Tensor, prepare, batch_size: int) -> dict:

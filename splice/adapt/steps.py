@@ -16,7 +16,7 @@ import time
 
 import torch
 
-from ..compare import class_logits
+from ..compare import logits_or_refuse
 from ..errors import RecipeError, TrainingDiverged
 from ..training import batches as _b
 from ..training import distributed
@@ -58,7 +58,7 @@ def check_objective(run: AdaptRun) -> None:
 def _site_loss(run: AdaptRun, images: torch.Tensor, gen: torch.Generator) -> torch.Tensor:
     site = run.rec.site
     if site.objective == "entropy":
-        return entropy_loss(class_logits(run.net(run.prepare(images))))
+        return entropy_loss(logits_or_refuse(run.net(run.prepare(images)), "the model"))
     if site.objective == "consistency":
         return consistency_loss(run.warps["input"], images, run.prepare, gen)
     return torch.zeros((), device=run.ctx.device)

@@ -53,7 +53,8 @@ class _Timeline:
         self.conv_starts: list[int] = []
         self.conv_ends: list[int] = []
         self.calls: dict[str, int] = {}
-        # direct children with children of their own (not single layers) called with an (N, C, H, W) tensor first
+        # modules with children of their own (not single layers), at any depth, that ran to the end after being
+        # called with an (N, C, H, W) tensor first: where --within can list points when the whole model fails
         self.take_images: list[str] = []
         self.clock = itertools.count()
         self.handles = []
@@ -63,15 +64,15 @@ class _Timeline:
 
     def before(self, mod, args):
         self.stack.append(mod)
-        name = self.qualnames[mod]
-        if ("." not in name and args and isinstance(args[0], torch.Tensor) and args[0].dim() == 4
-                and next(mod.children(), None) is not None and name not in self.take_images):
-            self.take_images.append(name)
         if isinstance(mod, CONV_MODULES):
             self.conv_starts.append(next(self.clock))
 
     def after(self, mod, args, out):
         self.stack.pop()
+        name = self.qualnames[mod]
+        if (args and isinstance(args[0], torch.Tensor) and args[0].dim() == 4 and next(mod.children(), None) is not None
+                and name not in self.take_images):
+            self.take_images.append(name)
         t = next(self.clock)
         if isinstance(mod, CONV_MODULES):
             self.conv_ends.append(t)
@@ -144,10 +145,13 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
     else:
         here = f"the forward of {type(model).__name__} itself"
         advice = todo
-    parts = [n for n in timeline.take_images if not (timeline.stack and timeline.qualnames[timeline.stack[0]] == n)]
-    if parts:  # a part of the model that takes the images may trace where the whole does not (a detector)
+    # the outermost of them, outside the module that failed (a part inside another is listed within it)
+    failed = timeline.qualnames[timeline.stack[-1]] if timeline.stack else None
+    done = [n for n in timeline.take_images if failed is None or not n.startswith(f"{failed}.")]
+    parts = [n for n in done if not any(n.startswith(f"{other}.") for other in done)]
+    if parts:  # a part of the model may be listed where the whole is not (a detector's backbone)
         advice += (f"; or splice inside one part with --within NAME (Python: within='NAME'), NAME being a part that "
-                   f"takes the images: {', '.join(parts)}")
+                   f"ran on an (N, C, H, W) tensor: {', '.join(parts)}")
     return GraphError(f"cannot list points of {type(model).__name__}: {problem}, and a meta-device forward "
                       f"failed in {here} ({reason(exc)}); {advice}")
 

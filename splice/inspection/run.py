@@ -173,12 +173,9 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
     from ..data import open_data
 
     input_shape = tuple(facts.input_shape)
-    try:
+    ds = _unlabelled(data, input_shape)  # a folder of images and no subfolder (a site's), else a labelled split
+    if ds is None:
         ds = open_data(data, split, input_shape=input_shape)
-    except DataError:
-        ds = _unlabelled(data, input_shape)  # a folder of images without class folders (a site's), else re-raised
-        if ds is None:
-            raise
     unlabelled = ds.classes == []
     classes = list(getattr(ds, "classes", []) or []) or facts.class_names
     images, labels, indices = _sample_images(ds, n)
@@ -191,16 +188,16 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
 
 
 def _unlabelled(data, input_shape):
-    """The images lying directly in the folder ``data``, as a split without labels (label -1), or ``None`` when
-    ``data`` is not such a folder."""
+    """The images of the folder ``data`` as a split without labels (label -1), when it holds image files and no
+    visible subfolder (as a site's unlabelled images arrive); else ``None`` (a data set name, or an ImageFolder
+    tree, which :func:`splice.data.open_data` reads and checks)."""
     from ..data import ImageFolderSet
-    from ..imagefiles import image_suffixes
+    from ..imagefiles import list_image_files
 
     root = Path(str(data))
-    if not root.is_dir():
+    if not root.is_dir() or any(d.is_dir() and not d.name.startswith(".") for d in root.iterdir()):
         return None
-    files = sorted(f for f in root.iterdir()
-                   if f.is_file() and not f.name.startswith(".") and f.suffix.lower() in image_suffixes())
+    files = list_image_files(root)
     if not files:
         return None
     return ImageFolderSet(root, "images", [], [(f, -1) for f in files], input_shape, folder=root)
@@ -211,9 +208,14 @@ def _score(sample: _Sample, logits: Tensor | None) -> None:
     from ..data import same_classes
 
     classes = sample.classes
+    if logits is None or (classes and logits.shape[1] != len(classes)):
+        shape = "no (N, classes) logits" if logits is None else f"{logits.shape[1]} scores per image"
+        sample.accuracy_note = sample.accuracy_note or (
+            f"no accuracy or predictions: the model's output holds {shape}"
+            + (f", and the classes are {len(classes)}" if classes and logits is not None else ""))
+        return
     if sample.unlabelled:
-        if logits is not None:
-            sample.predicted = logits.argmax(dim=1)  # what the model says, with nothing to score it against
+        sample.predicted = logits.argmax(dim=1)  # what the model says, with nothing to score it against
         return
     if sample.model_classes and classes and not same_classes(sample.model_classes, classes):
         sample.accuracy_note = (f"no accuracy: the model was trained on classes {sample.model_classes[:12]} but the "

@@ -18,7 +18,7 @@ import torch
 import torch.nn.functional as F
 from torch import Tensor, nn
 
-from ..compare import class_logits
+from ..compare import logits_or_refuse
 from ..copies import modes_kept
 
 __all__ = ["ThetaTap", "identity_penalty", "Stepper", "evaluate"]
@@ -93,7 +93,7 @@ class Stepper:
     def step(self, x: Tensor, y: Tensor) -> None:
         ctx = torch.autocast(device_type="cuda", dtype=torch.float16) if self.amp else contextlib.nullcontext()
         with ctx:
-            out = class_logits(self.model(x))
+            out = logits_or_refuse(self.model(x), "the model")
             loss = F.cross_entropy(out, y, label_smoothing=self.label_smoothing)
             total = loss
             if self.tap is not None and self.reg_weight > 0:
@@ -143,7 +143,7 @@ def evaluate(model: nn.Module, dataset, indices: Tensor, *, prepare: Callable[[T
         for x, y in _b.iterate(dataset, _b.index_batches(indices, batch_size), workers=workers):
             x, y = prepare(x), y.to(device)
             with ctx:
-                out = class_logits(model(x))
+                out = logits_or_refuse(model(x), "the model")
             loss_sum += float(F.cross_entropy(out.float(), y, reduction="sum"))
             correct += float((out.argmax(1) == y).sum())
             seen += y.shape[0]

@@ -13,7 +13,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from ..compare import class_logits
+from ..compare import logits_or_refuse
 from ..copies import modes_kept
 from ..fileio import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
@@ -147,10 +147,10 @@ def load_model(req: Request, where: str):
 def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
     try:
         with modes_kept(model), torch.no_grad():
-            out = class_logits(model.eval()(torch.zeros((2, *input_shape), device=device)))
+            out = model.eval()(torch.zeros((2, *input_shape), device=device))
     except Exception:  # noqa: BLE001 - a model that cannot run on zeros is reported later, by the loop
         return None
-    return int(out.shape[-1]) if isinstance(out, torch.Tensor) and out.dim() == 2 else None
+    return int(logits_or_refuse(out, "the model").shape[1])  # a model whose output holds no logits: refused now
 
 
 def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:
