@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
 import pytest
+import torch
 
 import splice
-from splice.data import open_data
+from splice.data import DIGITS_SHAPE, open_data
 from splice.errors import RandomWeightsWarning
 
 
@@ -60,4 +62,13 @@ def test_a_folder_of_unlabelled_images_is_inspected_without_an_accuracy(tmp_path
     with open(tmp_path / "report" / "warps.csv") as f:
         rows = list(csv.DictReader(f))
     assert len(rows) == 5 and all(r["label"] == "" and r["predicted"] != "" for r in rows)
+    assert sorted(Path(r["file"]).name for r in rows) == [f"part{k}.png" for k in range(5)]  # traced to its file
+    # the predictions are the model's own on those files
+    from splice.imagefiles import load_images
+
+    model = splice.load(folder).eval()
+    files = [r["file"] for r in rows]
+    with torch.no_grad():
+        own = model(load_images(files, DIGITS_SHAPE)).argmax(1).tolist()
+    assert [int(r["predicted"]) for r in rows] == own
     assert (tmp_path / "report" / "sheet_input.png").is_file()

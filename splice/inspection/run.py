@@ -75,6 +75,7 @@ class _Sample:
     input_shape: tuple[int, ...]
     model_classes: list[str] | None = None
     unlabelled: bool = False
+    files: list[str] | None = None  # the image files of a folder, by sample position
     predicted: Tensor | None = None
     accuracy: float | None = None
     accuracy_note: str | None = None
@@ -181,7 +182,8 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
     images, labels, indices = _sample_images(ds, n)
     sample = _Sample(images=images, labels=labels, indices=indices, classes=classes,
                      normalisation=facts.normalisation, input_shape=input_shape,
-                     model_classes=list(facts.class_names) if facts.class_names else None, unlabelled=unlabelled)
+                     model_classes=list(facts.class_names) if facts.class_names else None, unlabelled=unlabelled,
+                     files=[str(ds.samples[int(i)][0]) for i in indices] if hasattr(ds, "samples") else None)
     if unlabelled:
         sample.accuracy_note = "no accuracy: the images carry no labels (a folder of images without class folders)"
     return sample
@@ -246,7 +248,7 @@ def _csv_rows(point: str, warp, desc: dict, sample: _Sample) -> list[dict]:
     for i in range(sample.images.shape[0]):
         row = {"image": int(sample.indices[i]), "label": "" if sample.unlabelled else int(sample.labels[i]),
                "predicted": "" if sample.predicted is None else int(sample.predicted[i]),
-               "point": point, "family": warp.family}
+               "point": point, "family": warp.family, "file": sample.files[i] if sample.files else ""}
         row.update({q: float(desc[q][i]) for q in quantities_for(warp.family)})
         rows.append(row)
     return rows

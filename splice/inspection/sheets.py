@@ -99,8 +99,9 @@ def header(fig, size: tuple[int, int], title: str, note: str) -> None:
     fig.text(MARGIN / w, 1.0 - 40 / h, note, ha="left", va="top", fontsize=FONT_SIZE, wrap=True)
 
 
-def _count(n: int, of: int | None) -> str:
-    return f"{n} of {of} images (seeded, across classes)" if of is not None and of > n else f"{n} images"
+def _count(n: int, of: int | None, labelled: bool = True) -> str:
+    how = "seeded, across classes" if labelled else "seeded"
+    return f"{n} of {of} images ({how})" if of is not None and of > n else f"{n} images"
 
 
 def _class_text(classes: list[str] | None, k: int | None) -> str:
@@ -146,7 +147,7 @@ def draw_contact_sheet(path, warp, point: str, theta: Tensor, images: Tensor, *,
     outline, lattice = outline_and_lattice(warp, theta, images.shape[-2:], (1.0, 1.0))
     warped = _warp_output(warp, theta, images, normalisation)
     c, h, w = images.shape[1:]
-    header(fig, size, f"Warp at '{point}' ({warp.family}, {c}x{h}x{w}): {_count(n, of)}",
+    header(fig, size, f"Warp at '{point}' ({warp.family}, {c}x{h}x{w}): {_count(n, of, labels is not None)}",
             "Each image: the input  |  the input with the region the output samples (orange: the output's "
             "border, blue: lattice, yellow dot: the output's top-left corner; grey: outside the input)  |  "
             "the warped image the network sees.  'view' = visible rotation (+ = clockwise) and zoom.")
@@ -156,7 +157,7 @@ def draw_contact_sheet(path, warp, point: str, theta: Tensor, images: Tensor, *,
         top = HEADER + row * (TITLE + PANEL) + TITLE
         index = int(indices[i]) if indices is not None else i
         truth = _class_text(classes, None if labels is None else int(labels[i]))
-        titles = (f"#{index}  true {truth}", _view_text(desc, i),
+        titles = (f"#{index}" + ("" if labels is None else f"  true {truth}"), _view_text(desc, i),
                   "output" + ("" if predicted is None else f", predicted {_class_text(classes, int(predicted[i]))}"))
         axes = [_panel(fig, size, left + k * (PANEL + INNER), top) for k in range(3)]
         _show(axes[0], images[i])
@@ -181,7 +182,7 @@ def draw_outline_sheet(path, warp, point: str, theta: Tensor, images: Tensor, st
     sy, sx = stride
     stride_text = f"{sx:g}" if sx == sy else f"{sy:g}x{sx:g}"
     header(fig, size, f"Warp at feature point '{point}' ({warp.family}, {c}x{h}x{w}, stride {stride_text}): "
-            f"{_count(n, of)}",
+            f"{_count(n, of, labels is not None)}",
             "The region the warp samples from its feature map, projected back onto the input image "
             "through the stride (orange: border, blue: lattice, yellow dot: top-left corner).")
     for i in range(n):
@@ -192,6 +193,7 @@ def draw_outline_sheet(path, warp, point: str, theta: Tensor, images: Tensor, st
         _draw_grid(ax, images[i], outline[i], [line[i] for line in lattice])
         index = int(indices[i]) if indices is not None else i
         truth = _class_text(classes, None if labels is None else int(labels[i]))
-        ax.set_title(f"#{index} true {truth}\n{_view_text(desc, i)}", fontsize=FONT_SIZE - 2, pad=3)
+        shown = f"#{index}" + ("" if labels is None else f" true {truth}")
+        ax.set_title(f"{shown}\n{_view_text(desc, i)}", fontsize=FONT_SIZE - 2, pad=3)
     return save_png(fig, path)
 

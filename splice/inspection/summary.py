@@ -37,7 +37,7 @@ _SHORT_HELP = {
 }
 
 SCHEMA_VERSION = 1
-_CSV_FIXED = ("image", "label", "predicted", "point", "family")
+_CSV_FIXED = ("image", "label", "predicted", "point", "family", "file")
 CSV_QUANTITIES = MATRIX_QUANTITIES + PROJECTIVE_QUANTITIES + TPS_QUANTITIES
 
 
