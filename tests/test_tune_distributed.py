@@ -58,3 +58,49 @@ def test_two_process_tune_ends_with_identical_weights_and_one_run_folder(tmp_pat
     assert proc.stdout.count("epoch 2/2") == 1  # only rank 0 prints
     assert proc.stdout.count("data digits-moved: 1,078 train and 359 val images in 10 classes") == 1
     assert proc.stdout.count("best val accuracy") == 1
+
+
+AUX_NET = '''\
+import collections
+import torch
+from torch import nn
+
+Outputs = collections.namedtuple("Outputs", "logits aux_logits")  # as torchvision's GoogLeNet and Inception return
+
+
+class AuxNet(nn.Module):
+    """A classifier with an auxiliary head that returns it only while training; the loss reads the logits."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+        self.fc, self.aux = nn.Linear(4, 10), nn.Linear(4, 10)
+
+    def forward(self, x):
+        f = torch.relu(self.conv(x)).mean((2, 3))
+        return Outputs(self.fc(f), self.aux(f)) if self.training else self.fc(f)
+
+
+def aux_net():
+    return AuxNet()
+
+
+aux_net.input_shape = (1, 24, 24)
+'''
+
+
+def test_an_auxiliary_head_the_loss_does_not_read_trains_under_torchrun(tmp_path):
+    # its parameters get no gradient: DDP must look for unused parameters, or it stops at the second step
+    (tmp_path / "auxnet.py").write_text(AUX_NET, encoding="utf-8")
+    run = tmp_path / "run"
+    env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONWARNINGS="ignore")
+    cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc-per-node", "2",
+           "-m", "splice", "tune", f"{tmp_path / 'auxnet.py'}:aux_net", "--trust-code", "--recipe", "baseline",
+           "--data", "digits", "--epochs", "1", "--out", str(run), "--device", "cpu", "--quiet"]
+    proc = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600, cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    rows = [json.loads(line) for line in (run / "metrics.jsonl").read_text().splitlines()]
+    from splice.recipes import load_recipe
+
+    steps = -(-1078 // load_recipe("baseline").batch_size)  # 1078 training digits; the global batch is split
+    assert rows[-1]["phase"] == "epoch" and rows[-1]["step"] == steps  # every step of the epoch ran

@@ -16,7 +16,8 @@ import torch.distributed as dist
 
 from ..errors import SpliceError
 
-__all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag", "sync_buffers"]
+__all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag", "sync_buffers",
+           "drops_outputs"]
 
 
 def pick_device(requested: str | None = None, *, local_rank: int = 0) -> torch.device:
@@ -123,3 +124,22 @@ def sync_buffers(ctx: Context, model) -> None:
         return
     for buf in model.buffers():
         dist.broadcast(buf.data, src=0)
+
+
+def drops_outputs(model, input_shape, device) -> bool:
+    """Whether ``model``'s train-mode output holds tensors besides the logits the loss reads (torchvision's
+    GoogLeNet and Inception auxiliary heads): their parameters get no gradient, and DDP must then look for unused
+    parameters or it stops at the second step. Run once, on a copy (the run's statistics and random state stay
+    as they are)."""
+    import copy
+
+    from ..compare import flatten_outputs
+
+    twin = copy.deepcopy(model)
+    cuda = [device.index or 0] if device.type == "cuda" else []
+    try:
+        with torch.random.fork_rng(devices=cuda), torch.no_grad():
+            out = twin.train()(torch.zeros((2, *input_shape), device=device))
+    except Exception:  # noqa: BLE001 - a model that cannot run on zeros is reported by the loop
+        return False
+    return len(flatten_outputs(out)) > 1

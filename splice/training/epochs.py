@@ -195,8 +195,11 @@ def _wrap(run: Run, base_frozen: bool) -> None:
         return
     from torch.nn.parallel import DistributedDataParallel as DDP
 
+    from .distributed import drops_outputs
+
     ids = [run.ctx.device.index] if run.ctx.device.type == "cuda" else None
-    run.net_wrapped = DDP(run.net, device_ids=ids, broadcast_buffers=not base_frozen)
+    run.net_wrapped = DDP(run.net, device_ids=ids, broadcast_buffers=not base_frozen,
+                          find_unused_parameters=drops_outputs(run.net, run.shape, run.ctx.device))
 
 
 def _enter_epoch(run: Run, stepper: Stepper, frozen: _Frozen, epoch: int) -> None:
