@@ -14,7 +14,8 @@ import torch
 
 from .errors import DataError
 
-__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows", "class_logits", "logits_or_refuse"]
+__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows", "class_logits",
+           "logits_or_refuse"]
 
 # max error relative to the output's scale (max |y|), by dtype. float32 rounding
 # through a bilinear resample at the identity stays near 1e-7; 1e-5 leaves room

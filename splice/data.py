@@ -70,6 +70,7 @@ from .imagefiles import (
 )
 
 __all__ = [
+    "refuse_unreadable",
     "same_classes",
     "DATASETS",
     "SPLITS",
@@ -180,16 +181,12 @@ class ImageFolderSet(Dataset):
                     read_image(path, self.input_shape)
             except DataError as exc:
                 bad.append(f"{path} ({exc.__cause__ or exc})")
-        self._refuse(bad)
-
-    def check_headers(self) -> None:
-        """Open every image's header, not its pixels (tens of microseconds a file); raise one :class:`DataError`
-        naming all that are missing, not images, or over the pixel cap. A file whose pixels are cut short
-        still fails only when it is read (:meth:`check` decodes everything)."""
-        self._refuse(self.bad_headers())
+        refuse_unreadable(bad, len(self.samples), f"in {self.folder}")
 
     def bad_headers(self) -> list[str]:
-        """``"path (why)"`` for every image whose header cannot be read (see :meth:`check_headers`)."""
+        """``"path (why)"`` for every image whose header, not its pixels, cannot be read (tens of microseconds a
+        file): missing, not an image, or over the pixel cap. A file whose pixels are cut short still fails only
+        when it is read (:meth:`check` decodes everything)."""
         bad = []
         for path, _ in self.samples:
             try:
@@ -200,14 +197,6 @@ class ImageFolderSet(Dataset):
             except (OSError, ValueError, SyntaxError) as exc:  # Pillow's refusals of a file that is no image
                 bad.append(f"{path} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})")
         return bad
-
-    def _refuse(self, bad: list[str]) -> None:
-        if bad:
-            listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
-            raise DataError(
-                f"{len(bad)} of {len(self.samples)} images in {self.folder} cannot be read: "
-                f"{listed}. Remove or replace them."
-            )
 
     def __repr__(self) -> str:
         return (f"ImageFolderSet(root={str(self.root)!r}, split={self.split!r}, "
@@ -446,6 +435,14 @@ def _open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFo
 # ---------------------------------------------------------------------------
 # normalisation
 # ---------------------------------------------------------------------------
+
+
+def refuse_unreadable(bad: Sequence[str], total: int, where: str) -> None:
+    """One :class:`DataError` naming the unreadable images ``bad`` (``"path (why)"``, the first ten) of ``total``
+    images ``where`` (``"in FOLDER"``, ``"of data 'NAME'"``); nothing when ``bad`` is empty."""
+    if bad:
+        listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
+        raise DataError(f"{len(bad)} of {total} images {where} cannot be read: {listed}. Remove or replace them.")
 
 
 def same_classes(a: Sequence[str] | None, b: Sequence[str] | None) -> bool:

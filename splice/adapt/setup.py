@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import dataclasses
 import time
-import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,12 +20,13 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from ..errors import RecipeError, SpliceWarning
+from ..errors import RecipeError
 from ..manifest import info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
 from ..training.options import RecipeOverrides
-from ..training.runfolder import RECIPE_FILE, check_same, prepare_folder, start_files, write_run_info
+from ..training.runfolder import (RECIPE_FILE, check_same, prepare_folder, start_files, warn_other_data,
+                                  write_run_info)
 from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
 from .images import Images, open_images
 from .probe import check_reference_size
@@ -145,9 +145,8 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
         started = (info.get("site_images"), info.get("reference_images"))
         now = (len(site_images), None if reference is None else len(reference))
         if started[0] is not None and started != now:
-            warnings.warn(f"resuming with {now[0]:,} site and {now[1] or 0:,} reference images where the run "
-                          f"started with {started[0]:,} and {started[1] or 0:,}: from here on its batches are not "
-                          "the ones an uninterrupted run would have drawn", SpliceWarning, stacklevel=5)
+            warn_other_data(f"{now[0]:,} site and {now[1] or 0:,} reference images where the run started with "
+                            f"{started[0]:,} and {started[1] or 0:,}")
         info["status"] = "running"
         write_run_info(run_dir, info)
     return AdaptRun(ctx=ctx, rec=rec, src=src, net=net, warps=warps, site=site_images, reference=reference,

@@ -96,7 +96,7 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
     false (a tolerance the caller set is kept as it is).
     """
     model_of = model_of or (None if torch_model is None else (lambda: torch_model))
-    model_of = model_of if judged else None
+    exact_of = _float64_once(model_of) if judged and model_of is not None else None
     results = []
     for i, xs in enumerate(batches):
         if known is not None:
@@ -111,8 +111,18 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
             first = first_line(exc)
             return {"passed": False, "max_abs": None, "max_rel": None, "top1": None,
                     "detail": f"onnxruntime failed on a batch of {xs[0].shape[0]}: {first}"}
-        results.append(_judged_exactly(compare_flat(ref, outs, tol), ref, outs, xs, model_of))
+        results.append(_judged_exactly(compare_flat(ref, outs, tol), ref, outs, xs, exact_of))
     return merge_parities(results)
+
+def _float64_once(model_of: Callable[[], nn.Module]) -> Callable[[], nn.Module]:
+    """A float64 copy of ``model_of()``, made on the first call and reused for every later batch."""
+    made: list[nn.Module] = []
+
+    def exact() -> nn.Module:
+        if not made:
+            made.append(tree_copy(model_of()).double().eval())
+        return made[0]
+    return exact
 
 #: the quantiles of each output's errors against float64 that :func:`_judged_exactly` compares
 JUDGED_QUANTILES = (0.5, 0.9, 0.99, 1.0)
@@ -123,7 +133,7 @@ def _quantiles(values: Tensor) -> list[float]:
     return [float(ordered[round(q * (ordered.numel() - 1))]) for q in JUDGED_QUANTILES]
 
 
-def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
+def _judged_exactly(result: dict, ref, outs: list, xs: tuple, exact_of) -> dict:
     """A float32 comparison that missed its tolerance, judged against the model run in float64.
 
     A probe can be ill-conditioned in float32: a LayerNorm over channels that
@@ -140,13 +150,13 @@ def _judged_exactly(result: dict, ref, outs: list, xs: tuple, model_of) -> dict:
     torch is exact moves the export's median or percentiles, and rounding in
     one output excuses nothing in another.
     """
-    if result["passed"] or result.get("max_rel") is None or not result.get("shapes_equal") or model_of is None:
+    if result["passed"] or result.get("max_rel") is None or not result.get("shapes_equal") or exact_of is None:
         return result
     if any(not (x.is_floating_point() and x.dtype == torch.float32) for x in xs):
         return result
     try:
         with torch.no_grad():
-            exact = flatten_outputs(tree_copy(model_of()).double().eval()(*[x.double() for x in xs]))
+            exact = flatten_outputs(exact_of()(*[x.double() for x in xs]))
     except Exception:  # a model that cannot run in float64: the float32 verdict stands
         return result
     torch32 = flatten_outputs(ref)
@@ -366,7 +376,8 @@ def _parity_with_weight_inputs(model, graph, batches, *, perturb: bool, tol, ref
     if values:
         twin = perturbed_copy(model) if perturbed_references is None else None
         perturbed = _run_batches(twin, session, images, batches, _perturbed_feeds(own, values), tol,
-                                 perturbed_references, model_of=lambda: twin or perturbed_copy(model), judged=judged)
+                                 perturbed_references, judged=judged,
+                                 model_of=None if twin is not None else (lambda: perturbed_copy(model)))
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], "feeds" if perturbed else None)
 
 def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=None,

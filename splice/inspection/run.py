@@ -223,7 +223,7 @@ def _score(sample: _Sample, logits: Tensor | None) -> None:
         sample.accuracy_note = (f"no accuracy: the model was trained on classes {sample.model_classes[:12]} but the "
                                 f"data has {list(classes)[:12]}, so the labels would not line up")
         return
-    if logits is not None and classes and logits.shape[1] == len(classes):
+    if classes:  # the early returns above leave logits of one score per class
         sample.predicted = logits.argmax(dim=1)
         sample.accuracy = float((sample.predicted == sample.labels).to(torch.float64).mean())
 

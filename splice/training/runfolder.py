@@ -16,18 +16,19 @@ import contextlib
 import json
 import os
 import sys
+import warnings
 from pathlib import Path
 from typing import Any
 
 from ..fileio import atomic_write_json, atomic_write_text, make_dir, read_json, recover_dirs
-from ..errors import SpliceError
+from ..errors import SpliceError, SpliceWarning
 from ..folders import LOCK_FILE, RUN_FILE, RUN_FORMAT, FolderLock, lock_holder
 from ..recipes import Recipe, recipe_to_toml
 from ..sources import MODULE_SPEC
 
 __all__ = ["RUN_SCHEMA_VERSION", "RUN_FORMAT", "RUN_FILE", "RECIPE_FILE", "METRICS_FILE", "HASH_ENV", "STATUSES",
            "read_metrics", "truncate_metrics", "append_metrics", "writing", "prepare_folder", "check_same",
-           "describe", "write_run_info", "start_files", "read_run_info"]
+           "describe", "write_run_info", "start_files", "read_run_info", "warn_other_data"]
 
 RUN_SCHEMA_VERSION = 1
 # running: a process is writing (or died: then no live lock; --resume continues); finished; stopped early
@@ -110,6 +111,13 @@ def check_same(what: str, given: Any, recorded: Any, run: Path) -> None:
             f"run '{run}' was started with {what} {recorded!r}, but {given!r} was given; pass the same "
             f"{what} (or omit it) to resume"
         )
+
+
+def warn_other_data(what: str) -> None:
+    """Warn that a run is resumed on ``what`` (other images than it started with): it goes on, but its batches from
+    here on are not the ones an uninterrupted run would have drawn."""
+    warnings.warn(f"resuming with {what}: from here on its batches are not the ones an uninterrupted run would "
+                  "have drawn", SpliceWarning, stacklevel=6)
 
 
 def read_run_info(resume: Path) -> dict:

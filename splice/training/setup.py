@@ -155,7 +155,7 @@ def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
 
 def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:
     """The train and val splits and their class names, checked against the model's outputs and classes."""
-    from ..data import ImageFolderSet, open_data, same_classes
+    from ..data import ImageFolderSet, open_data, refuse_unreadable, same_classes
 
     shape = tuple(src.input_shape)
     train = open_data(data, "train", input_shape=shape)
@@ -164,10 +164,7 @@ def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[
         raise DataError(f"data {data!r} has an empty train or val split; add images to both")
     # every unreadable file of both splits named at once, before the run starts, not one per run
     bad = [b for split in (train, val) if isinstance(split, ImageFolderSet) for b in split.bad_headers()]
-    if bad:
-        listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
-        raise DataError(f"{len(bad)} of {len(train) + len(val)} images of data {data!r} cannot be read: {listed}. "
-                        "Remove or replace them.")
+    refuse_unreadable(bad, len(train) + len(val), f"of data {data!r}")
     classes = list(getattr(train, "classes", []) or [])
     n_out = _num_outputs(net, shape, device)
     if n_out is not None and classes and n_out != len(classes):

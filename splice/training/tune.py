@@ -44,21 +44,20 @@ import contextlib
 import os
 import signal
 import threading
-import warnings
 from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
 
 import torch
 
-from ..errors import RecipeError, SpliceError, SpliceWarning, TrainingDiverged, first_line
+from ..errors import RecipeError, SpliceError, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
 from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
 from .epochs import train
 from .options import RecipeOverrides, RunOptions
 from .reference import data_record
-from .runfolder import RECIPE_FILE, prepare_folder, start_files, write_run_info
+from .runfolder import RECIPE_FILE, prepare_folder, start_files, warn_other_data, write_run_info
 from .setup import gate_recorded_model, load_model, normalisation, open_splits, reference, reference_probe, resolve, run_info
 from .state import Run, TuneInterrupted
 
@@ -333,8 +332,7 @@ def _warn_if_data_changed(info: dict, train_set, val_set) -> None:
     what = (f"{now[0]:,} train and {now[1]:,} val images where the run started with {started[0]:,} and "
             f"{started[1]:,}" if started != now else f"other image files than the run started with ({now[0]:,} "
             f"train and {now[1]:,} val, as before)")
-    warnings.warn(f"resuming with {what}: from here on its batches are not the ones an uninterrupted run would "
-                  "have drawn", SpliceWarning, stacklevel=5)
+    warn_other_data(what)
 
 
 def _trained_on(rec, data: str, net, ref) -> str:
