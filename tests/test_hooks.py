@@ -451,3 +451,22 @@ def test_modules_called_more_often_in_training_are_not_points():
     with pytest.warns(TraceFallbackWarning):
         names = [p.name for p in graph.points(_TrainOnly(), (3, 16, 16), all=True)]
     assert names == ["input", "stem", "head"]
+
+
+class _RefusesMetaModes(_TrainOnly):
+    """A train() override that refuses the meta device, as transformers' does with hub kernels on (it
+    re-kernelizes on every mode switch, and kernels know no meta device)."""
+
+    def train(self, mode: bool = True):
+        if next(self.parameters()).is_meta:
+            raise ValueError("Unsupported device type 'meta'")
+        return super().train(mode)
+
+
+@pytest.mark.parametrize("training", [False, True])
+def test_a_train_override_that_refuses_the_meta_device_still_lists_and_checks(training):
+    model = _RefusesMetaModes().train(training)
+    with pytest.warns(TraceFallbackWarning):
+        names = [p.name for p in graph.points(model, (3, 16, 16), all=True)]
+    assert names == ["input", "stem", "head"]  # the train-mode count still ran, and still drops conv
+    assert model.training is training and not next(model.parameters()).is_meta

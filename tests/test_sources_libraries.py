@@ -13,6 +13,7 @@ import torch
 import splice
 from splice.compare import flatten_outputs
 from splice.errors import SourceError, SpliceWarning, WeightsError
+from splice.graph import TraceFallbackWarning
 from splice.sources import build_model, is_hf_folder, load_source, read_hf_folder
 
 pytest.importorskip("timm")  # both are in the test extra
@@ -89,6 +90,29 @@ def test_a_save_pretrained_folder_is_a_source(hf_folder):
     assert src.weights_path == str(hf_folder / "model.safetensors") and not src.random_init
     x = torch.randn(2, 3, 32, 32)
     assert torch.equal(src.model(x).logits, _hf_resnet()(x).logits)
+
+
+def test_a_folder_is_read_with_hub_kernels_off(hf_folder, monkeypatch):
+    """transformers 5.25 turns hub kernels on by default in from_pretrained: code fetched from the Hub, and a
+    re-kernelize on every train()/eval() switch, which fails on a meta-device copy. A folder is read with them off,
+    on any transformers in the supported range (use_kernels is a from_pretrained argument since 4.56)."""
+    from transformers import ResNetForImageClassification
+
+    seen = {}
+    original = ResNetForImageClassification.from_pretrained.__func__
+
+    def spy(cls, *args, **kwargs):
+        seen.update(kwargs)
+        return original(cls, *args, **kwargs)
+
+    monkeypatch.setattr(ResNetForImageClassification, "from_pretrained", classmethod(spy))
+    src = load_source(str(hf_folder), input_shape=(3, 32, 32))
+    assert seen["use_kernels"] is False
+    assert not getattr(src.model, "use_kernels", False)
+    src.model.train()  # no kernelize on a mode switch
+    with pytest.warns(TraceFallbackWarning):
+        pts = splice.points(src, all=True)
+    assert pts and all(p.mechanism == "hooks" for p in pts)
 
 
 def test_a_folder_hashes_the_weights_it_read_and_only_those(hf_folder, monkeypatch):

@@ -33,7 +33,7 @@ from .exported import export_entries
 from .leaves import LeafRule, class_path, is_torch_builtin
 from .recorded import recorded_entries
 from .rules import ShapeRules
-from .shapes import META, meta_module, run_for_real, to_meta
+from .shapes import META, meta_module, run_for_real, set_mode, to_meta
 from .tracing import GraphWarning, reason
 
 __all__ = ["TraceFallbackWarning"]
@@ -165,7 +165,6 @@ def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, r
                  train: bool = False) -> dict[str, int] | None:
     """How often each module is called in one forward of ``meta`` (a :func:`meta_module` copy of ``model``; in
     train mode with ``train``), or ``None`` when that forward fails."""
-    meta.train(train)
     _step_over_leaves(meta, model, rule)
     names = {m: q for q, m in meta.named_modules() if q}
     counts: dict[str, int] = {}
@@ -175,14 +174,15 @@ def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, r
 
     handles = [m.register_forward_hook(count) for m in names]
     try:
+        set_mode(meta, train)
         with torch.no_grad(), torch.device(META), ShapeRules():
             meta(*[to_meta(a) for a in args], **{k: to_meta(v) for k, v in kwargs.items()})
-    except Exception:  # the forward does not run at this batch size: nothing to compare
+    except Exception:  # the forward does not run at this batch size, or in this mode: nothing to compare
         return None
     finally:
         for h in handles:
             h.remove()
-        meta.eval()
+        set_mode(meta, False)
     return counts
 
 

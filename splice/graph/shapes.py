@@ -49,8 +49,19 @@ def meta_module(mod: nn.Module) -> nn.Module:
         meta = meta_empty(t.shape, t.dtype)
         memo[id(t)] = nn.Parameter(meta, requires_grad=t.requires_grad) if isinstance(t, nn.Parameter) else meta
     copied = tree_copy(mod, memo)
-    copied.eval()
+    set_mode(copied, False)
     return copied
+
+
+def set_mode(meta: nn.Module, train: bool) -> None:
+    """``meta.train(train)`` for a meta-device copy splice owns, unless an override of ``train`` refuses the meta
+    device (transformers re-kernelizes there when hub kernels are on), when every module's flag is set as
+    ``nn.Module.train`` would: the copy is splice's own, and its flags are all its forward reads."""
+    try:
+        meta.train(train)
+    except Exception:  # noqa: BLE001 - whatever the override raises, the flags below are what it failed to set
+        for m in meta.modules():
+            m.training = train
 
 
 def stand_in(mod: nn.Module, memo: dict[int, torch.Tensor]) -> nn.Module:

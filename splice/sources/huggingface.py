@@ -234,7 +234,10 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tupl
     So ``type(model).from_pretrained`` reads the folder (the class already built, ``local_files_only``, no code
     from the folder: safetensors, or ``torch.load(weights_only=True)``) and the state it loaded is returned,
     without the tensors it reports missing (left at their initial values). Tensors the folder has that the
-    model does not, or of another shape, are refused by name unless ``allow_partial``.
+    model does not, or of another shape, are refused by name unless ``allow_partial``. Hub kernels stay off
+    (``use_kernels=False``; transformers 5.25 turns them on by default): they are code fetched from the Hub,
+    and a model that has them re-kernelizes on every ``train()``/``eval()`` switch, which fails on the meta
+    device splice lists points on.
     """
     import torch
 
@@ -247,7 +250,8 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tupl
     try:
         loaded, info = type(model).from_pretrained(
             str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
-            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True, dtype=dtype)
+            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True, dtype=dtype,
+            use_kernels=False)
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
