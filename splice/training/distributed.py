@@ -8,16 +8,19 @@ prints; every rank computes.
 
 from __future__ import annotations
 
+import inspect
 import os
 from dataclasses import dataclass
 
 import torch
 import torch.distributed as dist
+from torch import nn
 
+from ..compare import flatten_outputs, logits_or_refuse
 from ..errors import SpliceError
 
 __all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag", "sync_buffers",
-           "drops_outputs"]
+           "drops_outputs", "LogitsOnly", "data_parallel"]
 
 
 def pick_device(requested: str | None = None, *, local_rank: int = 0) -> torch.device:
@@ -126,14 +129,48 @@ def sync_buffers(ctx: Context, model) -> None:
         dist.broadcast(buf.data, src=0)
 
 
+class LogitsOnly(nn.Module):
+    """``net`` returning only the class logits the loss reads, for DDP.
+
+    DDP counts a parameter as used when any tensor the forward returns depends
+    on it. A train-mode output that also holds an auxiliary head's logits
+    (torchvision's GoogLeNet and Inception) makes that head "used", though the
+    loss never gives it a gradient; returning the logits alone lets DDP's
+    search for unused parameters find it, as DDP's documentation asks (every
+    returned tensor takes part in the loss).
+    """
+
+    def __init__(self, net: nn.Module):
+        super().__init__()
+        self.net = net
+
+    def forward(self, x):
+        return logits_or_refuse(self.net(x), "the model")
+
+
+def data_parallel(net: nn.Module, ctx: Context, input_shape: tuple, *, sync_buffers_in_forward: bool) -> nn.Module:
+    """``net`` in a DistributedDataParallel wrapper for ``ctx`` (its logits alone, see :class:`LogitsOnly`).
+
+    DDP searches for unused parameters only when :func:`drops_outputs` finds
+    a train-mode output the loss does not read (the search costs a traversal
+    of the graph every step). Rank 0's buffers reach every rank when the
+    wrapper is built, and at every forward with ``sync_buffers_in_forward``
+    (``forward_sync_buffers`` since torch 2.14, ``broadcast_buffers`` before).
+    """
+    from torch.nn.parallel import DistributedDataParallel as DDP
+
+    key = "forward_sync_buffers" if "forward_sync_buffers" in inspect.signature(DDP).parameters else "broadcast_buffers"
+    ids = [ctx.device.index] if ctx.device.type == "cuda" else None
+    return DDP(LogitsOnly(net), device_ids=ids, find_unused_parameters=drops_outputs(net, input_shape, ctx.device),
+               **{key: sync_buffers_in_forward})
+
+
 def drops_outputs(model, input_shape, device) -> bool:
     """Whether ``model``'s train-mode output holds tensors besides the logits the loss reads (torchvision's
     GoogLeNet and Inception auxiliary heads): their parameters get no gradient, and DDP must then look for unused
     parameters or it stops at the second step. Run once, on a copy (the run's statistics and random state stay
     as they are)."""
     import copy
-
-    from ..compare import flatten_outputs
 
     twin = copy.deepcopy(model)
     cuda = [device.index or 0] if device.type == "cuda" else []

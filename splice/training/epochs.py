@@ -193,13 +193,7 @@ def _wrap(run: Run, base_frozen: bool) -> None:
     if not run.ctx.distributed:
         run.net_wrapped = run.net
         return
-    from torch.nn.parallel import DistributedDataParallel as DDP
-
-    from .distributed import drops_outputs
-
-    ids = [run.ctx.device.index] if run.ctx.device.type == "cuda" else None
-    run.net_wrapped = DDP(run.net, device_ids=ids, broadcast_buffers=not base_frozen,
-                          find_unused_parameters=drops_outputs(run.net, run.shape, run.ctx.device))
+    run.net_wrapped = distributed.data_parallel(run.net, run.ctx, run.shape, sync_buffers_in_forward=not base_frozen)
 
 
 def _enter_epoch(run: Run, stepper: Stepper, frozen: _Frozen, epoch: int) -> None:

@@ -11,6 +11,7 @@ import torch
 from torch import nn
 
 from ..recipes import Recipe
+from .distributed import LogitsOnly
 
 __all__ = ["TuneInterrupted", "Run", "unwrap"]
 
@@ -20,8 +21,9 @@ class TuneInterrupted(KeyboardInterrupt):
 
 
 def unwrap(model: nn.Module) -> nn.Module:
-    """The module inside a DistributedDataParallel wrapper (or the module itself)."""
-    return model.module if isinstance(model, nn.parallel.DistributedDataParallel) else model
+    """The model inside a :func:`~splice.training.distributed.data_parallel` wrapper (or the model itself)."""
+    inner = model.module if isinstance(model, nn.parallel.DistributedDataParallel) else model
+    return inner.net if isinstance(inner, LogitsOnly) else inner
 
 
 @dataclass
