@@ -4,6 +4,7 @@ builders with backbones — all built with random weights, nothing downloaded.""
 from __future__ import annotations
 
 import json
+import shutil
 import warnings
 import sys
 
@@ -113,6 +114,51 @@ def test_a_folder_is_read_with_hub_kernels_off(hf_folder, monkeypatch):
     with pytest.warns(TraceFallbackWarning):
         pts = splice.points(src, all=True)
     assert pts and all(p.mechanism == "hooks" for p in pts)
+
+
+@pytest.mark.parametrize("key, value", [("attn_implementation", "kernels-community/flash-attn2"),
+                                        ("attn_implementation", "flash_attention_2"),
+                                        ("attn_implementation", {"": "sdpa", "vision_config": "org/repo@v1"}),
+                                        ("experts_implementation", "deepgemm")])
+def test_a_config_naming_an_implementation_from_the_hub_needs_trust_code(tmp_path, hf_folder, key, value):
+    """transformers fetches a Hub attention kernel ('org/repo', or flash_attention_* without flash_attn installed)
+    as code when it builds the model: a folder's config.json must not choose that without the opt-in."""
+    folder = tmp_path / "asks"
+    shutil.copytree(hf_folder, folder)
+    config = json.loads((folder / "config.json").read_text())
+    (folder / "config.json").write_text(json.dumps({**config, key: value}))
+    import transformers.integrations.hub_kernels as hub
+
+    def never(*args, **kwargs):
+        raise AssertionError("a kernel was looked up")
+
+    with pytest.MonkeyPatch.context() as mp:
+        for name in ("load_and_register_attn_kernel", "get_kernel"):
+            if hasattr(hub, name):
+                mp.setattr(hub, name, never)
+        with pytest.raises(SourceError, match=rf"asks for {key} .*from the Hugging Face Hub as code.*--trust-code"):
+            load_source(str(folder), input_shape=(3, 32, 32))
+
+
+def test_code_request_reads_nested_configs_and_passes_torchs_own():
+    from splice.sources.huggingface import code_request
+
+    assert code_request({"attn_implementation": "sdpa", "vision_config": {"attn_implementation": "eager"}}) is None
+    assert code_request({"text_config": {"_attn_implementation": "paged|flash_attention_2"}}).startswith(
+        "text_config._attn_implementation 'paged|flash_attention_2'")
+    assert code_request({"layers": [{}, {"experts_implementation": "sonicmoe"}]}).startswith(
+        "layers.1.experts_implementation 'sonicmoe'")
+    assert code_request({"auto_map": {}}).startswith("custom code (auto_map)")
+
+
+def test_a_quantized_folder_is_refused_in_one_line(tmp_path, hf_folder):
+    folder = tmp_path / "quantized"
+    shutil.copytree(hf_folder, folder)
+    config = json.loads((folder / "config.json").read_text())
+    config["quantization_config"] = {"quant_method": "bitsandbytes", "load_in_8bit": True}
+    (folder / "config.json").write_text(json.dumps(config))
+    with pytest.raises(SourceError, match=r"quantization_config \(quant_method 'bitsandbytes'\).*unquantized"):
+        load_source(str(folder), input_shape=(3, 32, 32))
 
 
 def test_a_folder_hashes_the_weights_it_read_and_only_those(hf_folder, monkeypatch):
@@ -366,6 +412,8 @@ def test_library_specs_read_from_a_file_pass_the_gate_by_registry(tmp_path, monk
     refused = [("timm:no_such_net", {}), ("timm:resnet18", {"pretrained": True}),
                ("transformers:ResNetForImageClassification", {"config": {**config, "auto_map": {"AutoConfig": "x.Y"}}}),
                ("transformers:ResNetForImageClassification", {"config": config, "code_folder": str(tmp_path)}),
+               ("transformers:ResNetForImageClassification",
+                {"config": {**config, "attn_implementation": "kernels-community/flash-attn2"}}),
                ("transformers:AutoConfig", {"config": config}), ("transformers:os", {"config": config})]
     for spec, kwargs in refused:
         with pytest.raises(UntrustedCodeError, match="--trust-code"):

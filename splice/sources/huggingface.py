@@ -15,9 +15,13 @@ kwargs, so a spliced folder rebuilds without the source folder.
 A config with ``auto_map`` asks for code shipped in the folder. It is built
 only with ``trust_code=True`` (``--trust-code``), through transformers' own
 loader for local code; the spliced folder then records the code folder and
-needs it (and the opt-in) to rebuild.
+needs it (and the opt-in) to rebuild. So is a config that names an attention
+or experts implementation other than torch's own (``flash_attention_2``, a
+Hub reference ``org/repo``): transformers may fetch those from the Hugging
+Face Hub as code. A quantized config (``quantization_config``) is refused.
 
-Nothing is downloaded: ``use_pretrained_backbone`` is forced off.
+Nothing is downloaded: ``use_pretrained_backbone`` is forced off, and hub
+kernels stay off when the weights are read.
 """
 
 from __future__ import annotations
@@ -30,7 +34,7 @@ from typing import Any
 from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
 
-__all__ = ["build_transformers", "transformers_lists", "is_hf_folder", "read_hf_folder", "read_hf_weights",
+__all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder", "read_hf_weights",
            "HF_WEIGHT_FILES", "HFFolder"]
 
 HF_WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
@@ -60,6 +64,42 @@ def _read_json(path: Path) -> dict:
     if not isinstance(data, dict):
         raise SourceError(f"'{path}' must hold a JSON object, found {type(data).__name__}")
     return data
+
+
+# Implementations transformers runs with torch alone. Any other a config names (flash_attention_*, "paged|...", a
+# Hub reference "org/repo", an external experts kernel) may be fetched from the Hugging Face Hub as code by the
+# kernels package (transformers 5.25 falls back to it when flash_attn is missing).
+_TORCH_IMPLEMENTATIONS = {"attn": frozenset({"eager", "sdpa", "flex_attention"}),
+                          "experts": frozenset({"eager", "batched_mm", "grouped_mm"})}
+_IMPLEMENTATION_KEYS = {f"{prefix}{kind}_implementation{suffix}": kind for kind in _TORCH_IMPLEMENTATIONS
+                        for prefix in ("", "_") for suffix in ("", "_internal")}
+
+
+def _implementations(config: Any, where: str = ""):
+    """``(place, key, value)`` for every attention or experts implementation a config names, sub-configs included."""
+    if isinstance(config, Mapping):
+        for key, value in config.items():
+            if key in _IMPLEMENTATION_KEYS:
+                for v in (value.values() if isinstance(value, Mapping) else [value]):
+                    yield where, key, v
+            elif isinstance(value, (Mapping, list)):
+                yield from _implementations(value, f"{where}{key}.")
+    elif isinstance(config, list):
+        for i, value in enumerate(config):
+            yield from _implementations(value, f"{where}{i}.")
+
+
+def code_request(config: Mapping) -> str | None:
+    """What in a config (the contents of ``config.json``) asks transformers to run code the file chose, in words
+    (custom code in ``auto_map``, or an attention or experts implementation other than torch's own, which the
+    kernels package may fetch from the Hugging Face Hub); ``None`` when nothing does."""
+    if "auto_map" in config:
+        return "custom code (auto_map), which runs Python shipped with the model"
+    for place, key, value in _implementations(config):
+        if value is not None and value not in _TORCH_IMPLEMENTATIONS[_IMPLEMENTATION_KEYS[key]]:
+            return (f"{place}{key} {value!r}, which transformers may fetch from the Hugging Face Hub as code "
+                    f"(torch's own: {', '.join(sorted(_TORCH_IMPLEMENTATIONS[_IMPLEMENTATION_KEYS[key]]))})")
+    return None
 
 
 def _config_object(transformers, config: Mapping, where: str):
@@ -112,15 +152,16 @@ def _custom_classes(name: str, config: Mapping, code_folder: str, where: str):
 
 def transformers_lists(head: str, name: str, kwargs: Mapping) -> bool:
     """True when ``head:name`` is ``transformers:Class`` for a model class the installed transformers exports,
-    with a config that asks for no shipped code (no ``auto_map``, no code folder).
+    with a config that asks for no code (:func:`code_request`: no ``auto_map``, no attention or experts
+    implementation but torch's own) and no code folder.
 
-    The registry lookup of :mod:`splice.sources.trust`; a config with
-    ``auto_map`` is code the file chose, so it needs the opt-in.
+    The registry lookup of :mod:`splice.sources.trust`; code a config asks
+    for is code the file chose, so it needs the opt-in.
     """
     if head != "transformers" or not name.isidentifier() or name.startswith("_"):
         return False
     config = kwargs.get("config")
-    if not isinstance(config, Mapping) or "auto_map" in config or "code_folder" in kwargs:
+    if not isinstance(config, Mapping) or code_request(config) or "code_folder" in kwargs:
         return False
     try:
         import transformers
@@ -133,18 +174,25 @@ def transformers_lists(head: str, name: str, kwargs: Mapping) -> bool:
 def build_transformers(name: str, kwargs: Mapping[str, Any], *, trust_code: bool = False):
     """``(model, meta)`` for ``transformers:ClassName`` with ``kwargs={"config": {...}}`` (random weights).
 
-    A config with ``auto_map`` needs ``trust_code`` and ``kwargs["code_folder"]``.
+    A config that asks for code (:func:`code_request`) needs ``trust_code``; one with ``auto_map`` also
+    ``kwargs["code_folder"]``. A quantized config is refused: a warp goes into a floating-point model.
     """
     where = f"transformers:{name}"
     config = kwargs.get("config")
     if not isinstance(config, Mapping) or set(kwargs) - {"config", "code_folder"}:
         raise SourceError(f"{where} needs --kwargs '{{\"config\": {{...the contents of config.json...}}}}' and "
                           "nothing else; or give the save_pretrained folder itself as the model")
+    quantized = config.get("quantization_config")
+    if quantized is not None:
+        method = quantized.get("quant_method", "?") if isinstance(quantized, Mapping) else "?"
+        raise SourceError(f"{where}: the config holds a quantization_config (quant_method {method!r}); splice "
+                          "inserts warps into floating-point models, so give the unquantized checkpoint")
     transformers = _transformers()
+    asked = code_request(config)
+    if asked and not trust_code:
+        raise SourceError(f"{where}: the config asks for {asked}; pass --trust-code (trust_code=True) if you trust "
+                          "its origin")
     if "auto_map" in config:
-        if not trust_code:
-            raise SourceError(f"{where}: the config asks for custom code (auto_map), which runs Python shipped with "
-                              "the model; pass --trust-code (trust_code=True) if you trust its origin")
         config_cls, model_cls = _custom_classes(name, config, str(kwargs.get("code_folder", "")), where)
         model = model_cls(config_cls.from_dict(dict(config)))
         cfg = model.config

@@ -97,7 +97,7 @@ REGISTRY_KINDS: list[RegistryKind] = [
     RegistryKind("torchvision:NAME", _torchvision_lists),
     RegistryKind("splice.models:NAME", _splice_models_lists),
     RegistryKind("timm:NAME", timm_lists),
-    RegistryKind("transformers:Class (config without auto_map)", transformers_lists),
+    RegistryKind("transformers:Class (config asking for no code)", transformers_lists),
     RegistryKind(f"a '{ENTRY_POINT_GROUP}' entry point", _entry_point_lists),
 ]
 
