@@ -149,16 +149,60 @@ def test_code_request_reads_nested_configs_and_passes_torchs_own():
     assert code_request({"layers": [{}, {"experts_implementation": "sonicmoe"}]}).startswith(
         "layers.1.experts_implementation 'sonicmoe'")
     assert code_request({"auto_map": {}}).startswith("custom code (auto_map)")
+    # transformers applies a nested mapping to sub-configs of sub-configs; any other kind of value is not torch's
+    assert "'org/repo'" in code_request({"attn_implementation": {"": "sdpa", "x": {"": "org/repo"}}})
+    assert "['org/repo']" not in code_request({"attn_implementation": ["org/repo"]})
+    assert "3" in code_request({"attn_implementation": 3})
 
 
-def test_a_quantized_folder_is_refused_in_one_line(tmp_path, hf_folder):
+def test_a_nested_hub_implementation_is_refused_and_builds_with_trust_code(tmp_path, hf_folder, monkeypatch):
+    folder = tmp_path / "nested"
+    shutil.copytree(hf_folder, folder)
+    config = json.loads((folder / "config.json").read_text())
+    (folder / "config.json").write_text(json.dumps({**config, "attn_implementation": {"": "eager", "x": {"": "a/b"}}}))
+    with pytest.raises(SourceError, match=r"attn_implementation 'a/b'.*--trust-code"):
+        load_source(str(folder), input_shape=(3, 32, 32))
+    # with the opt-in the check lets the build through (a ResNet has no attention to fetch a kernel for)
+    assert load_source(str(folder), input_shape=(3, 32, 32), trust_code=True).model is not None
+
+
+@pytest.mark.parametrize("nest", [(), ("text_config",)])
+def test_a_quantized_folder_is_refused_in_one_line(tmp_path, hf_folder, nest):
+    # transformers also reads a quantization_config in a sub-config (get_text_config), and fp8 fetches a Hub kernel
     folder = tmp_path / "quantized"
     shutil.copytree(hf_folder, folder)
     config = json.loads((folder / "config.json").read_text())
-    config["quantization_config"] = {"quant_method": "bitsandbytes", "load_in_8bit": True}
+    inner = config
+    for key in nest:
+        inner = inner.setdefault(key, {})
+    inner["quantization_config"] = {"quant_method": "bitsandbytes", "load_in_8bit": True}
     (folder / "config.json").write_text(json.dumps(config))
-    with pytest.raises(SourceError, match=r"quantization_config \(quant_method 'bitsandbytes'\).*unquantized"):
+    where = "".join(f"{k}." for k in nest)
+    with pytest.raises(SourceError, match=rf"{where}quantization_config \(quant_method 'bitsandbytes'\).*unquantized"):
         load_source(str(folder), input_shape=(3, 32, 32))
+
+
+def test_a_backbone_named_without_its_config_is_refused_before_any_lookup(monkeypatch):
+    """transformers looks a backbone name up on the Hub (repo_exists, then its config.json) when a config names one
+    without backbone_config; an old or crafted config.json would make the build reach the network."""
+    import transformers.backbone_utils as backbones
+
+    from splice.sources import build_model
+
+    def offline(*args, **kwargs):
+        raise AssertionError("the Hub was asked")
+
+    monkeypatch.setattr(backbones, "hf_api", offline)
+    config = transformers_config("UperNetConfig")
+    config.update(backbone="someone/their-backbone", backbone_config=None, backbone_kwargs={"out_indices": [1]})
+    with pytest.raises(SourceError, match=r"backbone 'someone/their-backbone' without a backbone_config.*re-save"):
+        build_model("transformers:UperNetForSemanticSegmentation", kwargs={"config": config})
+
+
+def transformers_config(name: str) -> dict:
+    import transformers
+
+    return getattr(transformers, name)().to_dict()
 
 
 def test_a_folder_hashes_the_weights_it_read_and_only_those(hf_folder, monkeypatch):

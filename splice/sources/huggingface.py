@@ -34,8 +34,8 @@ from typing import Any
 from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
 
-__all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder", "read_hf_weights",
-           "HF_WEIGHT_FILES", "HFFolder"]
+__all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
+           "read_hf_weights", "HF_WEIGHT_FILES", "HFFolder"]
 
 HF_WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                    "pytorch_model.bin.index.json")
@@ -75,31 +75,62 @@ _IMPLEMENTATION_KEYS = {f"{prefix}{kind}_implementation{suffix}": kind for kind 
                         for prefix in ("", "_") for suffix in ("", "_internal")}
 
 
-def _implementations(config: Any, where: str = ""):
-    """``(place, key, value)`` for every attention or experts implementation a config names, sub-configs included."""
+def _entries(config: Any, where: str = ""):
+    """``(place, key, value, parent)`` for every key of a config and of every config inside it, at any depth
+    (``place`` is where ``parent`` sits, as ``"vision_config."``)."""
     if isinstance(config, Mapping):
         for key, value in config.items():
-            if key in _IMPLEMENTATION_KEYS:
-                for v in (value.values() if isinstance(value, Mapping) else [value]):
-                    yield where, key, v
-            elif isinstance(value, (Mapping, list)):
-                yield from _implementations(value, f"{where}{key}.")
+            yield where, key, value, config
+            yield from _entries(value, f"{where}{key}.")
     elif isinstance(config, list):
         for i, value in enumerate(config):
-            yield from _implementations(value, f"{where}{i}.")
+            yield from _entries(value, f"{where}{i}.")
+
+
+def _leaves(value: Any):
+    """The innermost values of an implementation setting (a name, or a mapping of sub-config to setting)."""
+    if isinstance(value, Mapping):
+        for v in value.values():
+            yield from _leaves(v)
+    elif isinstance(value, list):
+        for v in value:
+            yield from _leaves(v)
+    else:
+        yield value
 
 
 def code_request(config: Mapping) -> str | None:
     """What in a config (the contents of ``config.json``) asks transformers to run code the file chose, in words
-    (custom code in ``auto_map``, or an attention or experts implementation other than torch's own, which the
-    kernels package may fetch from the Hugging Face Hub); ``None`` when nothing does."""
+    (custom code in ``auto_map``, or an attention or experts implementation other than torch's own, at any depth,
+    which the kernels package may fetch from the Hugging Face Hub); ``None`` when nothing does."""
     if "auto_map" in config:
         return "custom code (auto_map), which runs Python shipped with the model"
-    for place, key, value in _implementations(config):
-        if value is not None and value not in _TORCH_IMPLEMENTATIONS[_IMPLEMENTATION_KEYS[key]]:
-            return (f"{place}{key} {value!r}, which transformers may fetch from the Hugging Face Hub as code "
-                    f"(torch's own: {', '.join(sorted(_TORCH_IMPLEMENTATIONS[_IMPLEMENTATION_KEYS[key]]))})")
+    for place, key, value, _ in _entries(config):
+        kind = _IMPLEMENTATION_KEYS.get(key) if isinstance(key, str) else None
+        if kind is None:
+            continue
+        torchs = _TORCH_IMPLEMENTATIONS[kind]
+        for v in _leaves(value):
+            if v is not None and not (isinstance(v, str) and v in torchs):
+                return (f"{place}{key} {v!r}, which transformers may fetch from the Hugging Face Hub as code "
+                        f"(torch's own: {', '.join(sorted(torchs))})")
     return None
+
+
+def _check_buildable(config: Mapping, where: str) -> None:
+    """Refuse, in one line, a config splice cannot build without transformers reaching the Hub or quantizing:
+    a ``quantization_config`` anywhere (a warp goes into a floating-point model), or a ``backbone`` named without
+    its ``backbone_config`` (transformers then looks the name up on the Hub)."""
+    for place, key, value, parent in _entries(config):
+        if key == "quantization_config" and value is not None:
+            method = value.get("quant_method", "?") if isinstance(value, Mapping) else "?"
+            raise SourceError(f"{where}: the config holds a {place}quantization_config (quant_method {method!r}); "
+                              "splice inserts warps into floating-point models, so give the unquantized checkpoint")
+        if key == "backbone" and isinstance(value, str) and value:
+            if parent.get("backbone_config") is None:
+                raise SourceError(f"{where}: the config names {place}backbone {value!r} without a backbone_config, "
+                                  "so transformers would look it up on the Hugging Face Hub; re-save the model with "
+                                  "save_pretrained from transformers 5, which writes the backbone's config")
 
 
 def _config_object(transformers, config: Mapping, where: str):
@@ -182,11 +213,7 @@ def build_transformers(name: str, kwargs: Mapping[str, Any], *, trust_code: bool
     if not isinstance(config, Mapping) or set(kwargs) - {"config", "code_folder"}:
         raise SourceError(f"{where} needs --kwargs '{{\"config\": {{...the contents of config.json...}}}}' and "
                           "nothing else; or give the save_pretrained folder itself as the model")
-    quantized = config.get("quantization_config")
-    if quantized is not None:
-        method = quantized.get("quant_method", "?") if isinstance(quantized, Mapping) else "?"
-        raise SourceError(f"{where}: the config holds a quantization_config (quant_method {method!r}); splice "
-                          "inserts warps into floating-point models, so give the unquantized checkpoint")
+    _check_buildable(config, where)
     transformers = _transformers()
     asked = code_request(config)
     if asked and not trust_code:

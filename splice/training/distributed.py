@@ -153,9 +153,11 @@ def data_parallel(net: nn.Module, ctx: Context, input_shape: tuple, *, sync_buff
 
     DDP searches for unused parameters only when :func:`drops_outputs` finds
     a train-mode output the loss does not read (the search costs a traversal
-    of the graph every step). Rank 0's buffers reach every rank when the
-    wrapper is built, and at every forward with ``sync_buffers_in_forward``
-    (``forward_sync_buffers`` since torch 2.14, ``broadcast_buffers`` before).
+    of the graph every step). Rank 0's buffers reach every rank at every
+    forward with ``sync_buffers_in_forward`` (``forward_sync_buffers`` since
+    torch 2.14, ``broadcast_buffers`` before); without it, torch 2.14 still
+    copies them once when the wrapper is built and older torch does not (the
+    loop copies them at the end of every epoch either way, :func:`sync_buffers`).
     """
     from torch.nn.parallel import DistributedDataParallel as DDP
 
