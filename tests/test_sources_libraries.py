@@ -197,6 +197,13 @@ def test_a_backbone_named_without_its_config_is_refused_before_any_lookup(monkey
     config.update(backbone="someone/their-backbone", backbone_config=None, backbone_kwargs={"out_indices": [1]})
     with pytest.raises(SourceError, match=r"backbone 'someone/their-backbone' without a backbone_config.*re-save"):
         build_model("transformers:UperNetForSemanticSegmentation", kwargs={"config": config})
+    # a timm backbone's own config names a timm architecture, which timm builds: DETR's, as transformers writes it
+    detr = transformers_config("DetrConfig")
+    assert detr["backbone_config"]["model_type"] == "timm_backbone" and detr["backbone_config"]["backbone"]
+    detr.update(num_queries=4, encoder_layers=1, decoder_layers=1, d_model=16, encoder_ffn_dim=16, decoder_ffn_dim=16)
+    detr["backbone_config"].update(backbone="resnet18", use_pretrained_backbone=True)
+    model = build_model("transformers:DetrForObjectDetection", kwargs={"config": detr})[0]
+    assert not model.config.backbone_config.use_pretrained_backbone
 
 
 def transformers_config(name: str) -> dict:

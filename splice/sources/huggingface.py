@@ -126,8 +126,11 @@ def _check_buildable(config: Mapping, where: str) -> None:
             method = value.get("quant_method", "?") if isinstance(value, Mapping) else "?"
             raise SourceError(f"{where}: the config holds a {place}quantization_config (quant_method {method!r}); "
                               "splice inserts warps into floating-point models, so give the unquantized checkpoint")
-        if key == "backbone" and isinstance(value, str) and value:
-            if parent.get("backbone_config") is None:
+        # a timm backbone's own config names the timm architecture, which timm builds; a parent config's name
+        # is looked up on the Hub unless timm builds it (use_timm_backbone, no backbone_kwargs)
+        if key == "backbone" and isinstance(value, str) and value and parent.get("model_type") != "timm_backbone":
+            by_timm = parent.get("use_timm_backbone", True) is True and not parent.get("backbone_kwargs")
+            if parent.get("backbone_config") is None and not by_timm:
                 raise SourceError(f"{where}: the config names {place}backbone {value!r} without a backbone_config, "
                                   "so transformers would look it up on the Hugging Face Hub; re-save the model with "
                                   "save_pretrained from transformers 5, which writes the backbone's config")
@@ -140,10 +143,17 @@ def _config_object(transformers, config: Mapping, where: str):
     if not isinstance(model_type, str) or model_type not in CONFIG_MAPPING:
         raise SourceError(f"{where}: model_type {model_type!r} is not known to the installed transformers "
                           f"{transformers.__version__}; upgrade transformers")
-    config = dict(config)
-    if "use_pretrained_backbone" in config:
-        config["use_pretrained_backbone"] = False  # never download a backbone
-    return CONFIG_MAPPING[model_type].from_dict(config)
+    return CONFIG_MAPPING[model_type].from_dict(_no_pretrained_backbone(config))
+
+
+def _no_pretrained_backbone(config: Any) -> Any:
+    """A copy of ``config`` with ``use_pretrained_backbone`` off wherever it is set, sub-configs included: never
+    download a backbone."""
+    if isinstance(config, Mapping):
+        return {k: False if k == "use_pretrained_backbone" else _no_pretrained_backbone(v) for k, v in config.items()}
+    if isinstance(config, list):
+        return [_no_pretrained_backbone(v) for v in config]
+    return config
 
 
 def _model_class(transformers, name: str, config_obj, where: str):
