@@ -50,6 +50,26 @@ def test_timm_name_builds_with_its_pretrained_cfg():
     assert src.model(torch.randn(1, 3, 32, 32)).shape == (1, 7)
 
 
+@pytest.mark.parametrize("chans", [1, 4])
+def test_a_timm_model_built_for_other_channels_gets_their_shape_and_normalisation(chans):
+    """timm keeps a pretrained_cfg's RGB input size, mean and std when in_chans changes; a grey model with three
+    means failed its first batch ("'mean' has 3 values but the images have 1 channel(s)")."""
+    import timm
+
+    rgb = timm.create_model("resnet18", pretrained=False).pretrained_cfg
+    src = load_source("timm:resnet18", kwargs={"num_classes": 3, "in_chans": chans})
+    assert src.input_shape == (chans, *rgb["input_size"][1:])
+    if chans == 1:  # the average of the RGB values (a grey image is about the average of its channels)
+        assert src.normalisation["mean"] == pytest.approx([sum(rgb["mean"]) / 3])
+        assert src.normalisation["std"] == pytest.approx([sum(rgb["std"]) / 3])
+    else:  # repeated in turn, as timm's adapt_input_conv repeats the RGB filters
+        assert src.normalisation["mean"] == pytest.approx([*rgb["mean"], rgb["mean"][0]])
+    from splice.data import normalise
+
+    x = torch.rand(2, chans, 8, 8)
+    assert normalise(x, src.normalisation).shape == x.shape
+
+
 def test_timm_takes_a_local_checkpoint(tmp_path):
     import timm
 
