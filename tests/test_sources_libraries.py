@@ -70,6 +70,20 @@ def test_a_timm_model_built_for_other_channels_gets_their_shape_and_normalisatio
     assert normalise(x, src.normalisation).shape == x.shape
 
 
+def test_a_grey_hugging_face_folder_with_rgb_preprocessing_gets_one_value_per_channel(tmp_path):
+    from transformers import ResNetConfig, ResNetForImageClassification
+
+    config = ResNetConfig(num_channels=1, embedding_size=8, hidden_sizes=[8, 16], depths=[1, 1], num_labels=3)
+    folder = tmp_path / "grey"
+    ResNetForImageClassification(config).eval().save_pretrained(folder)
+    (folder / "preprocessor_config.json").write_text(json.dumps({
+        "image_mean": [0.485, 0.456, 0.406], "image_std": [0.229, 0.224, 0.225], "size": {"height": 40, "width": 48}}))
+    src = load_source(str(folder))
+    assert src.input_shape == (1, 40, 48)
+    assert src.normalisation["mean"] == pytest.approx([(0.485 + 0.456 + 0.406) / 3])
+    assert src.normalisation["std"] == pytest.approx([(0.229 + 0.224 + 0.225) / 3])
+
+
 def test_timm_takes_a_local_checkpoint(tmp_path):
     import timm
 

@@ -33,6 +33,7 @@ from typing import Any
 
 from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
+from .specs import per_channel
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
            "read_hf_weights", "HF_WEIGHT_FILES", "HFFolder"]
@@ -287,7 +288,10 @@ def read_hf_folder(path) -> HFFolder:
         kwargs["code_folder"] = str(folder.resolve())
     hw, norm = _preprocessing(folder)
     channels = config.get("num_channels", 3)
-    shape = (channels, *hw) if hw and isinstance(channels, int) else None
+    channels = channels if isinstance(channels, int) and not isinstance(channels, bool) and channels > 0 else None
+    shape = (channels, *hw) if hw and channels else None
+    if norm is not None and channels:
+        norm = {k: per_channel(v, channels) for k, v in norm.items()}
     return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm)
 
 

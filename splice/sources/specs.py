@@ -21,7 +21,8 @@ from typing import Any
 
 from ..errors import SourceError
 
-__all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs"]
+__all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs",
+           "per_channel"]
 
 #: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
 #: are named to the user by their bare class name, which ``--leaf`` matches
@@ -150,3 +151,20 @@ def split_spec(spec: str) -> tuple[str, str]:
             "path/to/file.py:factory, or a folder written by 'splice insert'"
         )
     return head, tail
+
+
+def per_channel(values, chans: int | None) -> list[float]:
+    """RGB normalisation ``values`` (a ``mean`` or ``std``) for a model that takes ``chans`` channels.
+
+    timm keeps a pretrained_cfg's RGB values when ``in_chans`` changes, and a
+    Hugging Face preprocessor may keep them for a grey model. One channel takes
+    their average (a grey image is about the average of its RGB channels;
+    common practice, no source); more channels repeat them in turn, as timm's
+    ``adapt_input_conv`` repeats the RGB filters of a first convolution.
+    """
+    values = [float(v) for v in values]
+    if chans is None or chans == len(values):
+        return values
+    if chans == 1:
+        return [sum(values) / len(values)]
+    return [values[i % len(values)] for i in range(chans)]

@@ -13,6 +13,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from ..errors import SourceError, suggest
+from .specs import per_channel
 
 __all__ = ["build_timm", "timm_lists", "REFUSED_TIMM_KWARGS"]
 
@@ -75,21 +76,5 @@ def build_timm(name: str, kwargs: Mapping[str, Any]):
     if shape is not None and chans is not None:
         shape = (chans, *shape[1:])  # the pretrained_cfg keeps the RGB shape when in_chans changes it
     mean, std = cfg.get("mean"), cfg.get("std")
-    norm = {"mean": _per_channel(mean, chans), "std": _per_channel(std, chans)} if mean and std else None
+    norm = {"mean": per_channel(mean, chans), "std": per_channel(std, chans)} if mean and std else None
     return model, {"input_shape": shape, "normalisation": norm}
-
-
-def _per_channel(values, chans: int | None) -> list[float]:
-    """A pretrained_cfg's RGB ``mean`` or ``std`` for a model built with ``in_chans`` channels.
-
-    timm keeps the RGB values when ``in_chans`` changes. One channel takes
-    their average (a grey image is about the average of its RGB channels;
-    common practice, no source); more channels repeat them in turn, as timm's
-    ``adapt_input_conv`` repeats the RGB filters of a first convolution.
-    """
-    values = [float(v) for v in values]
-    if chans is None or chans == len(values):
-        return values
-    if chans == 1:
-        return [sum(values) / len(values)]
-    return [values[i % len(values)] for i in range(chans)]
