@@ -227,10 +227,17 @@ def test_a_backbone_named_without_its_config_is_refused_before_any_lookup(monkey
         raise AssertionError("the Hub was asked")
 
     monkeypatch.setattr(backbones, "hf_api", offline)
-    config = transformers_config("UperNetConfig")
-    config.update(backbone="someone/their-backbone", backbone_config=None, backbone_kwargs={"out_indices": [1]})
-    with pytest.raises(SourceError, match=r"backbone 'someone/their-backbone' without a backbone_config.*re-save"):
-        build_model("transformers:UperNetForSemanticSegmentation", kwargs={"config": config})
+    for extra in ({"backbone_kwargs": {"out_indices": [1]}}, {}):  # UperNet asks the Hub with kwargs or without
+        config = transformers_config("UperNetConfig")
+        config.update(backbone="someone/their-backbone", backbone_config=None, **extra)
+        with pytest.raises(SourceError, match=r"backbone 'someone/their-backbone' without a backbone_config.*re-save"):
+            build_model("transformers:UperNetForSemanticSegmentation", kwargs={"config": config})
+    # DETR's own use_timm_backbone builds a named timm backbone without the Hub (when no backbone_kwargs are given)
+    old_detr = transformers_config("DetrConfig")
+    old_detr.update(backbone="resnet18", backbone_config=None, use_timm_backbone=True, backbone_kwargs=None,
+                    num_queries=4, encoder_layers=1, decoder_layers=1, d_model=16, encoder_ffn_dim=16,
+                    decoder_ffn_dim=16)
+    assert build_model("transformers:DetrForObjectDetection", kwargs={"config": old_detr})[0] is not None
     # a timm backbone's own config names a timm architecture, which timm builds: DETR's, as transformers writes it
     detr = transformers_config("DetrConfig")
     assert detr["backbone_config"]["model_type"] == "timm_backbone" and detr["backbone_config"]["backbone"]

@@ -127,10 +127,11 @@ def _check_buildable(config: Mapping, where: str) -> None:
             method = value.get("quant_method", "?") if isinstance(value, Mapping) else "?"
             raise SourceError(f"{where}: the config holds a {place}quantization_config (quant_method {method!r}); "
                               "splice inserts warps into floating-point models, so give the unquantized checkpoint")
-        # a timm backbone's own config names the timm architecture, which timm builds; a parent config's name
-        # is looked up on the Hub unless timm builds it (use_timm_backbone, no backbone_kwargs)
+        # a timm backbone's own config names the timm architecture, which timm builds; a parent config's name is
+        # looked up on the Hub unless the config says timm builds it (use_timm_backbone, DETR's, without
+        # backbone_kwargs; measured on transformers 5.25: with them, or without the key, as UperNet's, it is)
         if key == "backbone" and isinstance(value, str) and value and parent.get("model_type") != "timm_backbone":
-            by_timm = parent.get("use_timm_backbone", True) is True and not parent.get("backbone_kwargs")
+            by_timm = parent.get("use_timm_backbone") is True and not parent.get("backbone_kwargs")
             if parent.get("backbone_config") is None and not by_timm:
                 raise SourceError(f"{where}: the config names {place}backbone {value!r} without a backbone_config, "
                                   "so transformers would look it up on the Hugging Face Hub; re-save the model with "
