@@ -294,6 +294,27 @@ def test_dynamo_exporter(tray_folder, model, tmp_path):
     assert _rel(ref, _ort_run(target, x)[0]) <= 1e-4  # onnxruntime is the reference
 
 
+@pytest.mark.slow
+def test_the_perturbed_check_exports_again_with_the_exporter_asked_for(tray_folder, tmp_path, monkeypatch):
+    """When the perturbed heads cannot be fed to the stored graph, the twin is exported again: with the exporter
+    the user chose. It used TorchScript, so a model only dynamo exports passed verify and failed export, with
+    advice to use the dynamo exporter it was already using."""
+    import splice.exporting.parity as parity
+
+    used = []
+    original = parity.export_onnx_bytes
+
+    def spy(*args, **kwargs):
+        used.append(kwargs.get("exporter", "torchscript"))
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(parity, "_overridable", lambda proto, names: None)  # as when the exporter merged them
+    monkeypatch.setattr(parity, "export_onnx_bytes", spy)
+    item = export(tray_folder, onnx=tmp_path / "again.onnx", exporter="dynamo", opset=18)["exports"][0]
+    assert used and set(used) == {"dynamo"}
+    assert item["exporter"] == "dynamo" and item["dynamic_batch"] and item["max_rel_perturbed"] <= 1e-4
+
+
 # ----------------------------------------------------------------------------- torch.export
 
 

@@ -281,7 +281,7 @@ def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list
     }
 
 def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
-                references: Sequence | None = None) -> dict:
+                references: Sequence | None = None, exporter: str = "torchscript") -> dict:
     """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
 
     ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
@@ -294,6 +294,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     has them already (one per batch); they are used for the as-stored check.
     A graph from ``export_onnx_bytes(weights_as_inputs=True)`` is recognised by
     its inputs and fed ``model``'s own tensors, then the perturbed head tensors.
+    When the perturbed heads cannot be fed to the graph (the exporter merged
+    their tensors), the perturbed twin is exported again with ``exporter``,
+    the one that wrote ``onnx_model``.
     """
     import onnx
 
@@ -331,9 +334,10 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
         if how == "feeds":
             perturbed = run(twin, session, {k: v.detach().cpu().numpy() for k, v in values.items()})
         else:
-            again = export_onnx_bytes(twin, batches[0], opset=max(opset, MIN_OPSET),
+            # traced on the biggest batch: torch.export specialises a dynamic batch of 1 to that size
+            again = export_onnx_bytes(twin, max(batches, key=lambda b: b[0].shape[0]), opset=max(opset, MIN_OPSET),
                                       dynamic_batch=len({b[0].shape[0] for b in batches}) > 1,
-                                      fold_constants=False, n_outputs=n_outputs)
+                                      fold_constants=False, n_outputs=n_outputs, exporter=exporter)
             perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
 

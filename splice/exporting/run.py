@@ -53,7 +53,7 @@ def _one(model, fmt: str, shapes, *, dynamic_batch: bool, opset: int, exporter: 
     if fmt == "onnx":
         data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
         seconds = time.perf_counter() - start
-        return data, onnx_parity(model, data, batches, tol=tol), seconds
+        return data, onnx_parity(model, data, batches, tol=tol, exporter=exporter), seconds
     data = export_pt2_bytes(model, example, dynamic_batch=dynamic_batch)
     seconds = time.perf_counter() - start
     return data, pt2_parity(model, data, batches, tol=tol), seconds
