@@ -470,3 +470,22 @@ def test_a_train_override_that_refuses_the_meta_device_still_lists_and_checks(tr
         names = [p.name for p in graph.points(model, (3, 16, 16), all=True)]
     assert names == ["input", "stem", "head"]  # the train-mode count still ran, and still drops conv
     assert model.training is training and not next(model.parameters()).is_meta
+
+
+class _WithMask(nn.Module):
+    """Images and a pixel mask that goes to the output untouched, as a detection backbone's (DETR's) does."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv1, self.conv2 = nn.Conv2d(3, 4, 3, padding=1), nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x, mask):
+        return self.conv2(torch.relu(self.conv1(x))), mask
+
+
+def test_a_second_input_that_reaches_the_outputs_alone_keeps_the_cuts_of_the_first():
+    # the mask's own path to the outputs made nothing a cut, so --at recommended found no point at all
+    pts = {p.name: p for p in graph.points(_WithMask(), [(3, 16, 16), (1, 16, 16)], all=True)}
+    assert {n for n, p in pts.items() if p.cut} == {"input", "conv1", "relu", "conv2"}  # not the mask itself
+    spliced = splice.insert(_WithMask(), at="recommended", input_shape=[(3, 16, 16), (1, 16, 16)])
+    assert list(warps_of(spliced)) and splice.verify(spliced).passed

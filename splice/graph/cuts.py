@@ -2,7 +2,10 @@
 
 The data-flow graph runs from the input to the output node (which gathers
 every model output). A point is a *cut* when every path from the input to the
-outputs passes through it: it dominates the output node and post-dominates
+outputs passes through it (for a model with several inputs, from the first,
+``input``, whose images the warps move: a second input that reaches the
+outputs on its own, such as a detector backbone's pixel mask, does not take
+the cuts of the first away): it dominates the output node and post-dominates
 the input (Cooper, Harvey & Kennedy's iterative dominator algorithm, forwards
 and backwards). A point that is not a cut but lies between a fork and the cut
 where the paths meet again is *in a branch*; its *join* is that meeting node
@@ -19,9 +22,6 @@ import torch
 import torch.fx as fx
 
 __all__: list[str] = []
-
-_SOURCE = object()  # virtual source when a graph has several tensor inputs
-
 
 def _has_tensor(value: Any) -> bool:
     if isinstance(value, torch.Tensor):
@@ -71,11 +71,11 @@ def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.No
 
     Only nodes that carry tensors count (shape queries such as ``x.size(0)`` are
     not data flow), get_attr constants are ignored, and so are nodes that are
-    not reachable from an input or do not reach the output node (the sink).
+    not reachable from the first input or do not reach the output node (the sink).
     """
     sink = next(n for n in reversed(graph.nodes) if n.op == "output")
     carries = {n for n in graph.nodes if n.op not in ("get_attr", "output") and _has_tensor(values.get(n))}
-    sources = [n for n in graph.nodes if n.op == "placeholder" and n in carries]
+    sources = [n for n in graph.nodes if n.op == "placeholder" and n in carries][:1]  # the first input's paths
     reach = set(sources)
     for n in graph.nodes:
         if n in carries and n not in reach and any(p in reach for p in n.all_input_nodes):
@@ -91,15 +91,7 @@ def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.No
     preds: dict[Any, list] = {n: [p for p in n.all_input_nodes if p in members] for n in order}
     preds[sink] = [p for p in sink.all_input_nodes if p in members]
     order.append(sink)
-    roots = [n for n in order if n.op == "placeholder"]
-    if len(roots) == 1:
-        root = roots[0]
-    else:
-        root = _SOURCE
-        order.insert(0, _SOURCE)
-        preds[_SOURCE] = []
-        for r in roots:
-            preds[r] = [_SOURCE]
+    root = sources[0]
     succs: dict[Any, list] = {n: [] for n in order}
     for n in order:
         for p in preds[n]:
@@ -117,12 +109,12 @@ def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.No
     while n is not sink:
         n = ipdom[n]
         postdominate_source.add(n)
-    cuts = (dominate_sink & postdominate_source) - {_SOURCE}
+    cuts = dominate_sink & postdominate_source
     cuts.add(sink)
 
     joins: dict[fx.Node, fx.Node] = {}
     for n in order:
-        if n is _SOURCE or n in cuts:
+        if n in cuts:
             continue
         p = ipdom[n]
         while p not in cuts:
