@@ -78,7 +78,8 @@ def _measure(parts=None) -> list[dict]:
             try:
                 result = run_zoo_model(entry, Path(tmp))
                 report = result["report"]
-                why = "" if report.passed else "; ".join(f"{r.check}: {r.detail[:120]}" for r in report.failed)
+                why = "" if report.passed else "; ".join(f"{name}: {report[name].detail[:120]}"
+                                                         for name in report.failed)
                 rows.append({"id": entry.id, "passed": report.passed, "mechanism": result["mechanism"],
                              "points": result["points"], "why": why})
             except Exception as exc:  # a failure of that model, shown in its row

@@ -197,7 +197,7 @@ def run_zoo_model(entry: ZooModel, workdir: Path, *, onnx: bool = True) -> dict:
         report = splice.verify(folder, onnx=onnx)
         seconds["verify"] = time.perf_counter() - start
         exported = None
-        if onnx:
+        if onnx and report.passed:  # a failed certificate is the result; export would only refuse it again
             start = time.perf_counter()
             exported = splice.export(folder, onnx=workdir / f"{entry.id.replace(':', '-')}.onnx")["exports"][0]
             seconds["export"] = time.perf_counter() - start
