@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import difflib
 import os
+import re
 from collections.abc import Iterable
 
 __all__ = [
@@ -126,9 +127,13 @@ class RandomWeightsWarning(SpliceWarning):
     """The model was built without trained weights; its outputs mean nothing for accuracy."""
 
 
+_TERMINAL_CODES = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")  # colours a library wrote for its own terminal
+
+
 def first_line(exc: BaseException) -> str:
-    """The first non-empty line of ``str(exc)``, or the exception's class name when it has no message."""
-    for line in str(exc).strip().splitlines():
+    """The first non-empty line of ``str(exc)`` without terminal colour codes (torch.onnx's dynamo exporter writes
+    them into its messages), or the exception's class name when it has no message."""
+    for line in _TERMINAL_CODES.sub("", str(exc)).strip().splitlines():
         if line.strip():
             return line.strip()
     return type(exc).__name__

@@ -113,6 +113,12 @@ def test_first_line_of_an_empty_exception_is_its_class_name():
     assert errors.first_line(RuntimeError("\n\n  second\nthird")) == "second"
 
 
+def test_first_line_drops_terminal_colour_codes():
+    # torch.onnx's dynamo exporter colours its step lines; they reached splice's one-line errors as escapes
+    assert errors.first_line(RuntimeError("\x1b[96mThis is step 2/3\x1b[0m of it\nrest")) == "This is step 2/3 of it"
+    assert errors.first_line(RuntimeError("\x1b[1;31m\x1b[0m\nsecond")) == "second"
+
+
 def test_argparse_errors_are_one_line(capsys):
     with pytest.raises(SystemExit) as stop:
         main(["insert", "torchvision:resnet18"])
