@@ -84,6 +84,21 @@ def test_a_grey_hugging_face_folder_with_rgb_preprocessing_gets_one_value_per_ch
     assert src.normalisation["std"] == pytest.approx([(0.229 + 0.224 + 0.225) / 3])
 
 
+def test_a_folder_given_the_wrong_channels_says_so_in_one_line(tmp_path):
+    from transformers import ResNetConfig, ResNetForImageClassification
+
+    config = ResNetConfig(num_channels=1, embedding_size=8, hidden_sizes=[8, 16], depths=[1, 1], num_labels=3)
+    folder = tmp_path / "grey"
+    ResNetForImageClassification(config).eval().save_pretrained(folder)
+    with pytest.raises(SourceError, match=r"--input-shape 3x40x40 gives 3 channel\(s\), but .*config.json' says "
+                                          r"the model takes num_channels=1; pass --input-shape 1x40x40$"):
+        load_source(str(folder), input_shape=(3, 40, 40))
+    with pytest.raises(SourceError, match=r"pass --input-shape CxHxW .*neither preprocessor_config.json nor the "
+                                          r"config gives an image size$"):
+        load_source(str(folder))  # no preprocessor and no image_size in a ResNet config: no size to take
+    assert load_source(str(folder), input_shape=(1, 40, 40)).input_shape == (1, 40, 40)
+
+
 def test_timm_takes_a_local_checkpoint(tmp_path):
     import timm
 

@@ -142,10 +142,9 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
     model.eval()
     first = shapes[0] if shapes else (meta["input_shape"] or parse_input_shape(default_input_shape))
     if first is None:
-        raise SourceError(
-            f"cannot tell the input shape of {spec}; pass --input-shape CxHxW "
-            "(input_shape=...), or set factory.input_shape = (C, H, W)"
-        )
+        where = ("neither preprocessor_config.json nor the config gives an image size"
+                 if spec.startswith("transformers:") else "or set factory.input_shape = (C, H, W)")
+        raise SourceError(f"cannot tell the input shape of {spec}; pass --input-shape CxHxW (input_shape=...); {where}")
     return Source(model=model, spec=spec, kwargs=kw, input_shape=first,
                   weights_path=str(weights) if weights is not None else None,
                   weights_sha256=state_dict_sha256(model.state_dict()) if hashed else None,
@@ -251,6 +250,12 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     if weights is None:
         raise SourceError(f"'{path}' holds a config.json but no weights (model.safetensors, pytorch_model.bin or "
                           "a shard index); re-save the model with save_pretrained, or pass --weights FILE")
+    channels = (hf.kwargs.get("config") or {}).get("num_channels")
+    given = parse_input_shapes(shapes) or ()
+    if given and isinstance(channels, int) and not isinstance(channels, bool) and given[0][0] != channels:
+        c, h, w = given[0]
+        raise SourceError(f"--input-shape {c}x{h}x{w} gives {c} channel(s), but '{path / 'config.json'}' says the "
+                          f"model takes num_channels={channels}; pass --input-shape {channels}x{h}x{w}")
     options = {"weights": None if own else weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle,
                "leaves": leaves, "origin": origin, "trust_code": trust_code,
                "default_input_shape": default_input_shape}
