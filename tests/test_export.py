@@ -6,6 +6,7 @@ torch.export.load is the reference loader for .pt2 programs.
 
 from __future__ import annotations
 
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -313,6 +314,28 @@ def test_the_perturbed_check_exports_again_with_the_exporter_asked_for(tray_fold
     item = export(tray_folder, onnx=tmp_path / "again.onnx", exporter="dynamo", opset=18)["exports"][0]
     assert used and set(used) == {"dynamo"}
     assert item["exporter"] == "dynamo" and item["dynamic_batch"] and item["max_rel_perturbed"] <= 1e-4
+
+
+def test_a_dynamic_export_that_fails_is_named_a_failure_in_one_line(tray_folder, tmp_path, monkeypatch):
+    """When the dynamic-batch export itself fails (not a mismatch), the warning says so, with its first line."""
+    import splice.exporting.run as run
+
+    original = run._one
+
+    def dynamic_fails(model, fmt, shapes, *, dynamic_batch, **options):
+        if dynamic_batch:
+            raise SpliceError("ONNX export (torchscript, opset 17) failed: RuntimeError: no pool\ngraph(%x : Float...")
+        return original(model, fmt, shapes, dynamic_batch=dynamic_batch, **options)
+
+    monkeypatch.setattr(run, "_one", dynamic_fails)
+    with warnings.catch_warnings(record=True) as caught:  # pytest.warns would re-raise torch.onnx's own notes
+        warnings.simplefilter("always")
+        item = export(tray_folder, onnx=tmp_path / "static.onnx")["exports"][0]
+    ours = [str(w.message) for w in caught if issubclass(w.category, splice.errors.SpliceWarning)]
+    assert len(ours) == 1
+    message = ours[0]
+    assert "with a dynamic batch failed (ONNX export (torchscript, opset 17) failed: RuntimeError: no pool)" in message
+    assert "does not match" not in message and "\n" not in message and not item["dynamic_batch"]
 
 
 # ----------------------------------------------------------------------------- torch.export

@@ -10,7 +10,7 @@ from pathlib import Path
 import torch
 
 from ..copies import rng_kept
-from ..errors import CheckFailed, SpliceError, SpliceWarning
+from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
 from ..manifest import info_of
 from ..store import load
 from .onnx import check_opset, export_onnx_bytes
@@ -71,7 +71,7 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
         try:
             data, result, seconds = _one(model, fmt, shapes, dynamic_batch=True, **options)
         except SpliceError as exc:
-            data, result, seconds = None, {"passed": False, "detail": str(exc)}, 0.0
+            data, result, seconds = None, {"passed": False, "detail": first_line(exc)}, 0.0
         if result["passed"]:
             return data, result, seconds, True
         static = _one(model, fmt, shapes, dynamic_batch=False, **options)
@@ -80,10 +80,11 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
                 return (*static, False)
             both = {**result, "detail": f"{result['detail']}; with a static batch of 1: {static[1]['detail']}"}
             return data, both, seconds, True
-        warnings.warn(
-            f"the {fmt} export with a dynamic batch does not match the model at batch sizes 1 and 3 "
-            f"({result['detail']}); the model's graph depends on its batch size, so a static batch of 1 is "
-            "exported instead (--static-batch says so explicitly)", SpliceWarning, stacklevel=3)
+        how = (f"failed ({result['detail']})" if data is None else
+               f"does not match the model at batch sizes 1 and 3 ({result['detail']}); the model's graph depends on "
+               "its batch size")
+        warnings.warn(f"the {fmt} export with a dynamic batch {how}, so a static batch of 1 is exported instead "
+                      "(--static-batch says so explicitly)", SpliceWarning, stacklevel=3)
         return (*static, False)
     data, result, seconds = _one(model, fmt, shapes, dynamic_batch=False, **options)
     return data, result, seconds, False
