@@ -61,10 +61,14 @@ def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphMod
         if raw == "recommended":
             rec = [p.name for p in listing if p.recommended]
             if not rec:
-                raise PointError(
-                    "no recommended point for this model (no cut between convs); "
-                    "choose one with --at NAME from 'splice points MODEL --all'"
-                )
+                first = by_name.get("input")
+                cuts = [p.name for p in listing if p.cut][:3]
+                why = ("'input' is not a cut" + (f": its paths meet another input's at {first.join!r}" if first.join
+                                                else "") if first is not None and not first.cut
+                       else "no cut between convs")
+                raise PointError(f"no recommended point for this model ({why}); choose one with --at NAME"
+                                 + (f" (cuts: {', '.join(cuts)})" if cuts else "")
+                                 + " from 'splice points MODEL --all'")
             expanded = rec
         else:
             expanded = [raw]

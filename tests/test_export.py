@@ -6,7 +6,6 @@ torch.export.load is the reference loader for .pt2 programs.
 
 from __future__ import annotations
 
-import warnings
 from pathlib import Path
 
 import numpy as np
@@ -293,49 +292,6 @@ def test_dynamo_exporter(tray_folder, model, tmp_path):
     with torch.no_grad():
         ref = model(x)
     assert _rel(ref, _ort_run(target, x)[0]) <= 1e-4  # onnxruntime is the reference
-
-
-@pytest.mark.slow
-def test_the_perturbed_check_exports_again_with_the_exporter_asked_for(tray_folder, tmp_path, monkeypatch):
-    """When the perturbed heads cannot be fed to the stored graph, the twin is exported again: with the exporter
-    the user chose. It used TorchScript, so a model only dynamo exports passed verify and failed export, with
-    advice to use the dynamo exporter it was already using."""
-    import splice.exporting.parity as parity
-
-    used = []
-    original = parity.export_onnx_bytes
-
-    def spy(*args, **kwargs):
-        used.append(kwargs.get("exporter", "torchscript"))
-        return original(*args, **kwargs)
-
-    monkeypatch.setattr(parity, "_overridable", lambda proto, names: None)  # as when the exporter merged them
-    monkeypatch.setattr(parity, "export_onnx_bytes", spy)
-    item = export(tray_folder, onnx=tmp_path / "again.onnx", exporter="dynamo", opset=18)["exports"][0]
-    assert used and set(used) == {"dynamo"}
-    assert item["exporter"] == "dynamo" and item["dynamic_batch"] and item["max_rel_perturbed"] <= 1e-4
-
-
-def test_a_dynamic_export_that_fails_is_named_a_failure_in_one_line(tray_folder, tmp_path, monkeypatch):
-    """When the dynamic-batch export itself fails (not a mismatch), the warning says so, with its first line."""
-    import splice.exporting.run as run
-
-    original = run._one
-
-    def dynamic_fails(model, fmt, shapes, *, dynamic_batch, **options):
-        if dynamic_batch:
-            raise SpliceError("ONNX export (torchscript, opset 17) failed: RuntimeError: no pool\ngraph(%x : Float...")
-        return original(model, fmt, shapes, dynamic_batch=dynamic_batch, **options)
-
-    monkeypatch.setattr(run, "_one", dynamic_fails)
-    with warnings.catch_warnings(record=True) as caught:  # pytest.warns would re-raise torch.onnx's own notes
-        warnings.simplefilter("always")
-        item = export(tray_folder, onnx=tmp_path / "static.onnx")["exports"][0]
-    ours = [str(w.message) for w in caught if issubclass(w.category, splice.errors.SpliceWarning)]
-    assert len(ours) == 1
-    message = ours[0]
-    assert "with a dynamic batch failed (ONNX export (torchscript, opset 17) failed: RuntimeError: no pool)" in message
-    assert "does not match" not in message and "\n" not in message and not item["dynamic_batch"]
 
 
 # ----------------------------------------------------------------------------- torch.export

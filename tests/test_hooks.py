@@ -489,3 +489,23 @@ def test_a_second_input_that_reaches_the_outputs_alone_keeps_the_cuts_of_the_fir
     assert {n for n, p in pts.items() if p.cut} == {"input", "conv1", "relu", "conv2"}  # not the mask itself
     spliced = splice.insert(_WithMask(), at="recommended", input_shape=[(3, 16, 16), (1, 16, 16)])
     assert list(warps_of(spliced)) and splice.verify(spliced).passed
+
+
+class _PairConcat(nn.Module):
+    """Two frames concatenated, then convolved: the first frame's paths meet the second's at the cat."""
+
+    def __init__(self):
+        super().__init__()
+        self.c1, self.c2 = nn.Conv2d(6, 4, 3, padding=1), nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, a, b):
+        return self.c2(torch.relu(self.c1(torch.cat([a, b], 1))))
+
+
+def test_inputs_that_merge_keep_their_branches_and_say_why_nothing_is_recommended():
+    # a warp on one frame of a pair before they meet is in a branch; a second input that meets the first is kept
+    pts = {p.name: p for p in graph.points(_PairConcat(), [(3, 16, 16), (3, 16, 16)], all=True)}
+    assert not pts["input"].cut and pts["input"].join == "cat" and pts["c1"].cut and pts["c2"].cut
+    with pytest.raises(PointError, match=r"'input' is not a cut: its paths meet another input's at 'cat'\); "
+                                         r"choose one with --at NAME \(cuts: cat, c1, relu\)"):
+        splice.insert(_PairConcat(), at="recommended", input_shape=[(3, 16, 16), (3, 16, 16)])

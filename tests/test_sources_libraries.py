@@ -91,12 +91,21 @@ def test_a_folder_given_the_wrong_channels_says_so_in_one_line(tmp_path):
     folder = tmp_path / "grey"
     ResNetForImageClassification(config).eval().save_pretrained(folder)
     with pytest.raises(SourceError, match=r"--input-shape 3x40x40 gives 3 channel\(s\), but .*config.json' says "
-                                          r"the model takes num_channels=1; pass --input-shape 1x40x40$"):
+                                          r"the model takes 1 \(num_channels\); pass --input-shape 1x40x40$"):
         load_source(str(folder), input_shape=(3, 40, 40))
     with pytest.raises(SourceError, match=r"pass --input-shape CxHxW .*neither preprocessor_config.json nor the "
                                           r"config gives an image size$"):
         load_source(str(folder))  # no preprocessor and no image_size in a ResNet config: no size to take
     assert load_source(str(folder), input_shape=(1, 40, 40)).input_shape == (1, 40, 40)
+
+
+def test_image_channels_are_the_backbones_when_a_config_has_one():
+    from splice.sources.huggingface import image_channels
+
+    # DETR and DPT run their backbone on the images, whatever their own num_channels says (a grey DETR: 3 and 1)
+    assert image_channels({"num_channels": 3, "backbone_config": {"model_type": "resnet", "num_channels": 1}}) == 1
+    assert image_channels({"num_channels": 1}) == 1 and image_channels({}) == 3
+    assert image_channels({"num_channels": True}) is None and image_channels({"num_channels": 0}) is None
 
 
 def test_timm_takes_a_local_checkpoint(tmp_path):

@@ -2,10 +2,11 @@
 
 The data-flow graph runs from the input to the output node (which gathers
 every model output). A point is a *cut* when every path from the input to the
-outputs passes through it (for a model with several inputs, from the first,
-``input``, whose images the warps move: a second input that reaches the
-outputs on its own, such as a detector backbone's pixel mask, does not take
-the cuts of the first away): it dominates the output node and post-dominates
+outputs passes through it (for a model with several inputs: the first,
+``input``, whose images the warps move, and the paths of the others into
+them; a second input that reaches the outputs apart from the first's paths,
+such as a detector backbone's pixel mask, does not take the cuts of the first
+away): it dominates the output node and post-dominates
 the input (Cooper, Harvey & Kennedy's iterative dominator algorithm, forwards
 and backwards). A point that is not a cut but lies between a fork and the cut
 where the paths meet again is *in a branch*; its *join* is that meeting node
@@ -22,6 +23,17 @@ import torch
 import torch.fx as fx
 
 __all__: list[str] = []
+
+_SOURCE = object()  # virtual source when paths from several inputs meet those of the first
+
+
+def _reached(graph: fx.Graph, sources: list, carries: set) -> set:
+    """The tensor-carrying nodes reachable from ``sources`` (themselves included)."""
+    reach = set(sources)
+    for n in graph.nodes:
+        if n in carries and n not in reach and any(p in reach for p in n.all_input_nodes):
+            reach.add(n)
+    return reach
 
 def _has_tensor(value: Any) -> bool:
     if isinstance(value, torch.Tensor):
@@ -71,27 +83,39 @@ def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.No
 
     Only nodes that carry tensors count (shape queries such as ``x.size(0)`` are
     not data flow), get_attr constants are ignored, and so are nodes that are
-    not reachable from the first input or do not reach the output node (the sink).
+    neither on the first input's paths to the output node (the sink) nor on
+    another input's paths into them.
     """
     sink = next(n for n in reversed(graph.nodes) if n.op == "output")
     carries = {n for n in graph.nodes if n.op not in ("get_attr", "output") and _has_tensor(values.get(n))}
-    sources = [n for n in graph.nodes if n.op == "placeholder" and n in carries][:1]  # the first input's paths
-    reach = set(sources)
-    for n in graph.nodes:
-        if n in carries and n not in reach and any(p in reach for p in n.all_input_nodes):
-            reach.add(n)
-    live = {sink}
+    sources = [n for n in graph.nodes if n.op == "placeholder" and n in carries]
+    live = {sink}  # reaches the outputs
     for n in reversed(graph.nodes):
-        if n in reach and any(u in live for u in n.users):
+        if n in carries and any(u in live for u in n.users):
             live.add(n)
-    order: list[Any] = [n for n in graph.nodes if n in reach and n in live]
-    if not order or not any(p in live for p in sink.all_input_nodes):
+    first = _reached(graph, sources[:1], carries) & live  # on the first input's paths to the outputs
+    # every input's paths into those (the other image of a pair, a skip tensor), not what reaches the outputs
+    # apart from them (a detection backbone's pixel mask)
+    keep = set(first)
+    for n in reversed(graph.nodes):
+        if n not in keep and n in carries and n in live and any(u in keep for u in n.users):
+            keep.add(n)
+    keep &= _reached(graph, sources, carries)
+    order: list[Any] = [n for n in graph.nodes if n in keep]
+    if not first or not any(p in first for p in sink.all_input_nodes):
         return set(), {}
-    members = set(order)
-    preds: dict[Any, list] = {n: [p for p in n.all_input_nodes if p in members] for n in order}
-    preds[sink] = [p for p in sink.all_input_nodes if p in members]
+    preds: dict[Any, list] = {n: [p for p in n.all_input_nodes if p in keep] for n in order}
+    preds[sink] = [p for p in sink.all_input_nodes if p in first]  # the outputs the first input reaches
     order.append(sink)
-    root = sources[0]
+    roots = [n for n in order if n.op == "placeholder"]
+    if len(roots) == 1:
+        root = roots[0]
+    else:
+        root = _SOURCE
+        order.insert(0, _SOURCE)
+        preds[_SOURCE] = []
+        for r in roots:
+            preds[r] = [_SOURCE]
     succs: dict[Any, list] = {n: [] for n in order}
     for n in order:
         for p in preds[n]:
@@ -109,12 +133,12 @@ def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.No
     while n is not sink:
         n = ipdom[n]
         postdominate_source.add(n)
-    cuts = dominate_sink & postdominate_source
+    cuts = (dominate_sink & postdominate_source) - {_SOURCE}
     cuts.add(sink)
 
     joins: dict[fx.Node, fx.Node] = {}
     for n in order:
-        if n in cuts:
+        if n is _SOURCE or n in cuts:
             continue
         p = ipdom[n]
         while p not in cuts:

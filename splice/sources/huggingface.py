@@ -36,7 +36,7 @@ from ..fileio import read_json
 from .specs import per_channel
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
-           "read_hf_weights", "HF_WEIGHT_FILES", "HFFolder"]
+           "read_hf_weights", "image_channels", "HF_WEIGHT_FILES", "HFFolder"]
 
 HF_WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                    "pytorch_model.bin.index.json")
@@ -251,6 +251,16 @@ def _config_shape(cfg) -> tuple[int, int, int] | None:
     return (int(channels), int(size[0]), int(size[1])) if isinstance(channels, int) and channels > 0 else None
 
 
+def image_channels(config: Mapping) -> int | None:
+    """The channels of the images a config's model takes: its ``backbone_config``'s ``num_channels`` when it has
+    one (DETR and DPT read their backbone's, whatever their own says), else its own (3 when it says none); ``None``
+    when that is not a positive whole number."""
+    backbone = config.get("backbone_config")
+    channels = (backbone.get("num_channels") if isinstance(backbone, Mapping) and "num_channels" in backbone
+                else config.get("num_channels", 3))
+    return channels if isinstance(channels, int) and not isinstance(channels, bool) and channels > 0 else None
+
+
 class HFFolder:
     """What a ``save_pretrained`` folder holds: its spec and kwargs, weights file, shape and normalisation."""
 
@@ -288,8 +298,7 @@ def read_hf_folder(path) -> HFFolder:
     if "auto_map" in config:
         kwargs["code_folder"] = str(folder.resolve())
     hw, norm = _preprocessing(folder)
-    channels = config.get("num_channels", 3)
-    channels = channels if isinstance(channels, int) and not isinstance(channels, bool) and channels > 0 else None
+    channels = image_channels(config)
     shape = (channels, *hw) if hw and channels else None
     if norm is not None and channels:
         norm = {k: per_channel(v, channels) for k, v in norm.items()}

@@ -15,7 +15,7 @@ from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
 from .builders import build_model
 from .empty import initialisers_skipped
-from .huggingface import is_hf_folder, read_hf_folder, read_hf_weights
+from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import check_spec
 from .weights import check_file, check_finite, load_weights_, read_weights, torch_load
@@ -250,12 +250,12 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     if weights is None:
         raise SourceError(f"'{path}' holds a config.json but no weights (model.safetensors, pytorch_model.bin or "
                           "a shard index); re-save the model with save_pretrained, or pass --weights FILE")
-    channels = (hf.kwargs.get("config") or {}).get("num_channels")
+    channels = image_channels(hf.kwargs.get("config") or {})
     given = parse_input_shapes(shapes) or ()
-    if given and isinstance(channels, int) and not isinstance(channels, bool) and given[0][0] != channels:
+    if given and channels is not None and given[0][0] != channels:
         c, h, w = given[0]
         raise SourceError(f"--input-shape {c}x{h}x{w} gives {c} channel(s), but '{path / 'config.json'}' says the "
-                          f"model takes num_channels={channels}; pass --input-shape {channels}x{h}x{w}")
+                          f"model takes {channels} (num_channels); pass --input-shape {channels}x{h}x{w}")
     options = {"weights": None if own else weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle,
                "leaves": leaves, "origin": origin, "trust_code": trust_code,
                "default_input_shape": default_input_shape}

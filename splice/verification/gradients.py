@@ -128,10 +128,14 @@ def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int,
         seconds = time.perf_counter() - start
         start = time.perf_counter()
         try:
-            parity = onnx_parity(twin, data, x, references=None if reference is None else [reference])
+            parity = onnx_parity(twin, data, x, references=None if reference is None else [reference],
+                                 exporter=exporter)
         except CheckFailed as exc:
             return CheckResult("onnx", False, {"opset": opset, "exporter": exporter, "export_seconds": seconds},
                                str(exc), "onnxruntime failed")
+        except SpliceError as exc:  # the perturbed twin's own export, when its heads could not be fed
+            return CheckResult("onnx", False, {"opset": opset, "exporter": exporter, "export_seconds": seconds},
+                               str(exc), "export failed")
         result = {**parity, "export_seconds": seconds, "check_seconds": time.perf_counter() - start,
                   "bytes": len(data)}
     seconds = result["export_seconds"]

@@ -1,0 +1,90 @@
+"""Which exporter checks a file, and what export says when a dynamic batch fails: the perturbed check exports
+the twin again with the exporter the user chose (export and verify alike), and a failed dynamic-batch export is
+named a failure in one line."""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+
+import pytest
+
+import splice
+from splice import store
+from splice.errors import SpliceError
+from splice.exporting import export
+from splice.surgery import insert
+
+TRAY = "splice.models:tray_net"
+SMALL = {"width": 4}
+
+
+@pytest.fixture(scope="module")
+def tray_folder(tmp_path_factory) -> Path:
+    src = splice.load_source(TRAY, kwargs=SMALL)
+    return store.save(insert(src, at="pool2"), tmp_path_factory.mktemp("exporters") / "tray")
+
+
+@pytest.fixture
+def re_exports(monkeypatch) -> list:
+    """The exporters the perturbed check exported the twin with, with its heads made unfeedable (as when an
+    exporter merges their tensors)."""
+    import splice.exporting.parity as parity
+
+    used = []
+    original = parity.export_onnx_bytes
+
+    def spy(*args, **kwargs):
+        used.append(kwargs.get("exporter", "torchscript"))
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(parity, "_overridable", lambda proto, names: None)
+    monkeypatch.setattr(parity, "export_onnx_bytes", spy)
+    return used
+
+
+@pytest.mark.slow
+def test_the_perturbed_check_exports_again_with_the_exporter_asked_for(tray_folder, tmp_path, re_exports):
+    """When the perturbed heads cannot be fed to the stored graph, the twin is exported again: with the exporter
+    the user chose. It used TorchScript, so a model only dynamo exports passed verify and failed export, with
+    advice to use the dynamo exporter it was already using."""
+    item = export(tray_folder, onnx=tmp_path / "again.onnx", exporter="dynamo", opset=18)["exports"][0]
+    assert re_exports and set(re_exports) == {"dynamo"}
+    assert item["exporter"] == "dynamo" and item["dynamic_batch"] and item["max_rel_perturbed"] <= 1e-4
+
+
+def test_a_dynamic_export_that_fails_is_named_a_failure_in_one_line(tray_folder, tmp_path, monkeypatch):
+    """When the dynamic-batch export itself fails (not a mismatch), the warning says so, with its first line."""
+    import splice.exporting.run as run
+
+    original = run._one
+
+    def dynamic_fails(model, fmt, shapes, *, dynamic_batch, **options):
+        if dynamic_batch:
+            raise SpliceError("ONNX export (torchscript, opset 17) failed: RuntimeError: no pool\ngraph(%x : Float...")
+        return original(model, fmt, shapes, dynamic_batch=dynamic_batch, **options)
+
+    monkeypatch.setattr(run, "_one", dynamic_fails)
+    with warnings.catch_warnings(record=True) as caught:  # pytest.warns would re-raise torch.onnx's own notes
+        warnings.simplefilter("always")
+        item = export(tray_folder, onnx=tmp_path / "static.onnx")["exports"][0]
+    ours = [str(w.message) for w in caught if issubclass(w.category, splice.errors.SpliceWarning)]
+    assert len(ours) == 1
+    message = ours[0]
+    assert "with a dynamic batch failed (ONNX export (torchscript, opset 17) failed: RuntimeError: no pool)" in message
+    assert "does not match" not in message and "\n" not in message and not item["dynamic_batch"]
+
+
+@pytest.mark.slow
+def test_verify_checks_with_the_exporter_asked_for_and_reports_its_failure_as_a_row(tray_folder, re_exports,
+                                                                                    monkeypatch):
+    report = splice.verify(tray_folder, onnx=True, exporter="dynamo", opset=18)
+    assert report["onnx"].passed and set(re_exports) == {"dynamo"}
+    import splice.exporting.parity as parity
+
+    def failing(*args, **kwargs):
+        raise SpliceError("ONNX export (dynamo, opset 18) failed: RuntimeError: no col2im; try another --opset")
+
+    monkeypatch.setattr(parity, "export_onnx_bytes", failing)
+    report = splice.verify(tray_folder, onnx=True, exporter="dynamo", opset=18)  # a failed row, not a raise
+    assert not report.passed and report.failed == ["onnx"] and "no col2im" in report["onnx"].detail
