@@ -45,7 +45,10 @@ and backwards). A point that is not a cut but lies between a fork and the cut
 where the paths meet again is *in a branch*; ``join`` names that meeting node
 (the ``add`` of a residual block, the ``cat`` of a dense block). A point whose
 paths only meet at the model outputs (one head of a two-headed model) is
-neither.
+neither. With several inputs the paths are the first input's and the other
+inputs' paths into them (a second frame concatenated with the first, a skip
+tensor added); what reaches the outputs apart from them (a detection
+backbone's pixel mask) does not count.
 
 Recommended points
 ------------------
