@@ -63,9 +63,10 @@ def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphMod
             if not rec:
                 first = by_name.get("input")
                 cuts = [p.name for p in listing if p.cut][:3]
-                why = ("'input' is not a cut" + (f": its paths meet another input's at {first.join!r}" if first.join
-                                                else "") if first is not None and not first.cut
-                       else "no cut between convs")
+                why = "no cut between convs"
+                if first is not None and not first.cut:
+                    why = "'input' is not a cut" + (f": its paths meet another input's at {first.join!r}"
+                                                    if first.join else "")
                 raise PointError(f"no recommended point for this model ({why}); choose one with --at NAME"
                                  + (f" (cuts: {', '.join(cuts)})" if cuts else "")
                                  + " from 'splice points MODEL --all'")

@@ -18,5 +18,16 @@ def _fixed_seed():
     yield
 
 
+@pytest.fixture(scope="module")
+def tray_folder(tmp_path_factory):
+    """A small tray net (width 4) spliced at pool2 and saved: the folder the export tests export."""
+    import splice
+    from splice import store
+    from splice.surgery import insert
+
+    src = splice.load_source("splice.models:tray_net", kwargs={"width": 4})
+    return store.save(insert(src, at="pool2"), tmp_path_factory.mktemp("export") / "tray")
+
+
 def pytest_configure(config):
     torch.set_num_threads(max(1, min(2, torch.get_num_threads())))

@@ -34,12 +34,6 @@ SMALL = {"width": 4}
 
 
 @pytest.fixture(scope="module")
-def tray_folder(tmp_path_factory) -> Path:
-    src = splice.load_source(TRAY, kwargs=SMALL)
-    return store.save(insert(src, at="pool2"), tmp_path_factory.mktemp("export") / "tray")
-
-
-@pytest.fixture(scope="module")
 def model(tray_folder):
     return store.load(tray_folder)
 

@@ -5,24 +5,14 @@ named a failure in one line."""
 from __future__ import annotations
 
 import warnings
-from pathlib import Path
 
 import pytest
 
 import splice
-from splice import store
 from splice.errors import SpliceError
 from splice.exporting import export
-from splice.surgery import insert
 
-TRAY = "splice.models:tray_net"
-SMALL = {"width": 4}
-
-
-@pytest.fixture(scope="module")
-def tray_folder(tmp_path_factory) -> Path:
-    src = splice.load_source(TRAY, kwargs=SMALL)
-    return store.save(insert(src, at="pool2"), tmp_path_factory.mktemp("exporters") / "tray")
+# tray_folder: conftest's small tray net spliced at pool2
 
 
 @pytest.fixture

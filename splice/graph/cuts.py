@@ -35,6 +35,7 @@ def _reached(graph: fx.Graph, sources: list, carries: set) -> set:
             reach.add(n)
     return reach
 
+
 def _has_tensor(value: Any) -> bool:
     if isinstance(value, torch.Tensor):
         return True

@@ -33,7 +33,7 @@ from typing import Any
 
 from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
-from .specs import per_channel
+from .specs import per_channel, positive_int
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
            "read_hf_weights", "image_channels", "HF_WEIGHT_FILES", "HFFolder"]
@@ -258,7 +258,7 @@ def image_channels(config: Mapping) -> int | None:
     backbone = config.get("backbone_config")
     channels = (backbone.get("num_channels") if isinstance(backbone, Mapping) and "num_channels" in backbone
                 else config.get("num_channels", 3))
-    return channels if isinstance(channels, int) and not isinstance(channels, bool) and channels > 0 else None
+    return positive_int(channels)
 
 
 class HFFolder:

@@ -22,7 +22,7 @@ from typing import Any
 from ..errors import SourceError
 
 __all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs",
-           "per_channel"]
+           "per_channel", "positive_int"]
 
 #: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
 #: are named to the user by their bare class name, which ``--leaf`` matches
@@ -82,7 +82,7 @@ def _four_dims(value: Any) -> bool:
         items = list(value)
     except TypeError:
         return False
-    return len(items) == 4 and all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in items)
+    return len(items) == 4 and all(positive_int(v) is not None for v in items)
 
 
 def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
@@ -151,6 +151,11 @@ def split_spec(spec: str) -> tuple[str, str]:
             "path/to/file.py:factory, or a folder written by 'splice insert'"
         )
     return head, tail
+
+
+def positive_int(value: Any) -> int | None:
+    """``value`` when it is a whole number above 0 (not a bool), else ``None``."""
+    return value if isinstance(value, int) and not isinstance(value, bool) and value > 0 else None
 
 
 def per_channel(values, chans: int | None) -> list[float]:

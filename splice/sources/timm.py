@@ -13,7 +13,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from ..errors import SourceError, suggest
-from .specs import per_channel
+from .specs import per_channel, positive_int
 
 __all__ = ["build_timm", "timm_lists", "REFUSED_TIMM_KWARGS"]
 
@@ -71,8 +71,7 @@ def build_timm(name: str, kwargs: Mapping[str, Any]):
     cfg = getattr(model, "pretrained_cfg", None) or {}
     size = cfg.get("input_size")
     shape = tuple(int(s) for s in size) if size and len(size) == 3 else None
-    chans = kwargs.get("in_chans")
-    chans = chans if isinstance(chans, int) and not isinstance(chans, bool) and chans > 0 else None
+    chans = positive_int(kwargs.get("in_chans"))
     if shape is not None and chans is not None:
         shape = (chans, *shape[1:])  # the pretrained_cfg keeps the RGB shape when in_chans changes it
     mean, std = cfg.get("mean"), cfg.get("std")
