@@ -194,8 +194,48 @@ def describe_matrix(m: Tensor, size: tuple[int, int]) -> dict[str, Tensor]:
     return out
 
 
+# Newton's method for the input centre's place in the output of a tps warp: steps, and the residual (normalised
+# units) below which it has converged. Common practice, no source.
+_NEWTON_STEPS = 30
+_NEWTON_TOL = 1e-10
+
+
+def _tps_at(coeffs: Tensor, control: Tensor, p: Tensor) -> tuple[Tensor, Tensor]:
+    """The splines ``f`` of ``coeffs`` ``(N, K^2 + 3, 2)`` and their Jacobians at one point ``p`` ``(N, 2)`` each.
+
+    ``f(p) = p + a_0 + a_1 x + a_2 y + sum_j w_j U(|p - c_j|)`` with
+    ``U = r^2 log r^2``; ``grad U = 2 (p - c_j)(log r^2 + 1)``, which tends to 0
+    at ``r = 0`` (``r log r -> 0``).
+    """
+    n_ctrl = control.shape[0]
+    w, a0, a1, a2 = coeffs[:, :n_ctrl], coeffs[:, n_ctrl], coeffs[:, n_ctrl + 1], coeffs[:, n_ctrl + 2]
+    diff = p[:, None, :] - control[None]  # (N, K^2, 2)
+    r2 = diff.pow(2).sum(-1)
+    positive = r2 > 0
+    log_r2 = torch.log(torch.where(positive, r2, torch.ones_like(r2)))
+    u = torch.where(positive, r2 * log_r2, torch.zeros_like(r2))
+    grad = torch.where(positive.unsqueeze(-1), 2.0 * diff * (log_r2 + 1.0).unsqueeze(-1), torch.zeros_like(diff))
+    f = p + a0 + a1 * p[:, :1] + a2 * p[:, 1:] + torch.einsum("nj,nja->na", u, w)
+    jac = torch.eye(2, dtype=p.dtype).expand(p.shape[0], 2, 2) + torch.stack([a1, a2], dim=-1)
+    jac = jac + torch.einsum("nja,njb->nab", w, grad)
+    return f, jac
+
+
+def _tps_preimage_of_centre(coeffs: Tensor, control: Tensor, start: Tensor) -> Tensor:
+    """The output point ``q`` with ``f(q) = 0`` found by Newton's method from ``start``; NaN where it does not
+    converge (a fold, or no such point near the output)."""
+    q = start.clone()
+    for _ in range(_NEWTON_STEPS):
+        f, jac = _tps_at(coeffs, control, q)
+        step, info = torch.linalg.solve_ex(jac, f)
+        q = torch.where((info == 0).unsqueeze(-1), q - step, q)
+    f, _ = _tps_at(coeffs, control, q)
+    ok = torch.isfinite(q).all(-1) & (f.norm(dim=-1) < _NEWTON_TOL)
+    return torch.where(ok.unsqueeze(-1), q, torch.full_like(q, math.nan))
+
+
 def describe_tps(theta: Tensor, size: tuple[int, int], k: int) -> dict[str, Tensor]:
-    """Describe thin-plate-spline warps: control-point displacement and the spline's affine part.
+    """Describe thin-plate-spline warps: control-point displacement, and the spline at the output centre.
 
     ``theta`` is ``(N, 2 K^2)``: the offsets ``d_j`` (normalised, row-major
     ``(dx, dy)`` per control point) that move control point ``c_j`` of the
@@ -204,12 +244,15 @@ def describe_tps(theta: Tensor, size: tuple[int, int], k: int) -> dict[str, Tens
     - ``tps_mean_px``, ``tps_max_px``: mean and maximum over the control
       points of ``|D d_j|``, the displacement length in pixels of the warped
       tensor (``D = diag(W/2, H/2)``).
-    - the keys of :func:`describe_matrix` for the spline's own affine part.
-      The spline is ``f(p) = p + a_0 + a_1 x + a_2 y + sum_j w_j U(|p - c_j|)``
-      with ``[w; a] = L^-1[:, :K^2] d``; the radial sum has zero affine
-      content (the side conditions ``sum w_j = 0``, ``sum w_j c_j = 0``), so the
-      best affine description of ``f`` is ``A = I + [a_1 a_2]`` (columns),
-      ``t = a_0``.
+    - the keys of :func:`describe_matrix`, with the meaning they have for a
+      projective warp: the rotation and scales are those of the Jacobian of
+      the spline at the output centre, the shift is ``f(0)`` (the input point
+      the output centre reads) and the viewer shift is ``f^-1(0)``, found by
+      Newton's method from the Jacobian's estimate (NaN where it does not
+      converge). The spline is ``f(p) = p + a_0 + a_1 x + a_2 y + sum_j w_j
+      U(|p - c_j|)`` with ``[w; a] = L^-1[:, :K^2] d``. Its polynomial term
+      alone is not the spline's affine description: the radial sum bends and
+      shifts the map everywhere but at the control points.
     """
     from ..warps import grids
 
@@ -224,18 +267,19 @@ def describe_tps(theta: Tensor, size: tuple[int, int], k: int) -> dict[str, Tens
     offsets = theta.reshape(theta.shape[0], n_ctrl, 2)
     d = _pixel_scale((h, w))
     length = (offsets * d).norm(dim=-1)
-    inverse = grids.tps_system_inverse(grids.tps_control_points(k))
-    coeffs = torch.matmul(inverse, offsets)  # (N, K^2 + 3, 2): w, then a_0, a_1, a_2
-    a0, a1, a2 = coeffs[:, n_ctrl], coeffs[:, n_ctrl + 1], coeffs[:, n_ctrl + 2]
+    control = grids.tps_control_points(k)
+    coeffs = torch.matmul(grids.tps_system_inverse(control), offsets)  # (N, K^2 + 3, 2): w, then a_0, a_1, a_2
+    centre, jac = _tps_at(coeffs, control, torch.zeros(theta.shape[0], 2, dtype=torch.float64))
     m = torch.zeros(theta.shape[0], 3, 3, dtype=torch.float64)
-    m[:, :2, 0] = a1
-    m[:, :2, 1] = a2
-    m[:, 0, 0] += 1.0
-    m[:, 1, 1] += 1.0
-    m[:, :2, 2] = a0
+    m[:, :2, :2] = jac
+    m[:, :2, 2] = centre
     m[:, 2, 2] = 1.0
     out = describe_matrix(m, (h, w))
     del out["persp_x"], out["persp_y"]
+    start = torch.stack([out["view_shift_x_px"], out["view_shift_y_px"]], dim=-1) / d
+    start = torch.where(torch.isfinite(start), start, torch.zeros_like(start))
+    view = _tps_preimage_of_centre(coeffs, control, start) * d
+    out["view_shift_x_px"], out["view_shift_y_px"] = view[:, 0], view[:, 1]
     out["tps_mean_px"] = length.mean(dim=1)
     out["tps_max_px"] = length.amax(dim=1)
     return out
@@ -267,8 +311,10 @@ PROJECTIVE_QUANTITIES = ("persp_x", "persp_y")
 TPS_QUANTITIES = ("tps_mean_px", "tps_max_px")
 
 QUANTITY_HELP = {
-    "angle_deg": "sampling rotation, degrees (clockwise on screen); the content turns by -angle",
-    "reflection": "1 if the sampling map flips the image (det < 0), else 0",
+    "angle_deg": "sampling rotation, degrees (clockwise on screen); the content turns by -angle, or by +angle "
+                 "where the map flips the image (view_rotation_deg)",
+    "reflection": "1 if the sampling map flips the image (det < 0), else 0; a flip is written as an up-down flip "
+                  "followed by a rotation by angle_deg, so a left-right mirror reads angle 180",
     "scale_1": "larger principal sampling scale (input pixels read per output pixel)",
     "scale_2": "smaller principal sampling scale",
     "scale_axis_deg": "direction of scale_1 in the output, degrees in (-90, 90]",

@@ -13,6 +13,7 @@ import torch
 from torch import Tensor
 
 from .sheets import HEADER, header
+from .summary import ANGLE_QUANTITIES, around_circular_mean
 
 __all__ = ["HIST_CELL_W", "HIST_CELL_H", "draw_histograms"]
 
@@ -62,16 +63,22 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
     fig = new_figure(*size)
     w, h = size
     n = int(next(iter(desc.values())).shape[0])
-    header(fig, size, f"Warp at '{point}' ({family}): distributions over {n} images",
-            "Sampling side (the map from output to input), in pixels of the warped tensor. The top axis of the "
-            "angle shows the content's visible rotation (= -angle); a warp that undoes a clockwise turn by a "
-            "has angle_deg = a." + (" For tps, angle, scales and shift describe the spline's affine part."
-                                    if family == "tps" else ""))
+    flipped = bool((desc["reflection"] > 0).any()) if "reflection" in desc else False
+    note = "Sampling side (output to input), pixels of the warped tensor; angles centred on their circular mean. "
+    if flipped:
+        note += ("Some images are flipped, and a flipped image's content turns by +angle (see view_rotation_deg), "
+                 "so no axis of visible rotation is drawn.")
+    else:
+        note += "Top axis: the content's visible rotation (= -angle)."
+    if family in ("tps", "projective"):
+        note += f" For {family}, angle and scales are the map's Jacobian at the output centre; shift, the point it reads."
+    header(fig, size, f"Warp at '{point}' ({family}): distributions over {n} images", note)
     colours = [OKABE_ITO["blue"], OKABE_ITO["orange"]]
     for k, (label, series) in enumerate(groups):
         left, bottom, aw, ah = k * HIST_CELL_W + 62, 52, HIST_CELL_W - 84, HIST_CELL_H - 120
         ax = fig.add_axes((left / w, bottom / h, aw / w, ah / h))
         arrays = [desc[q].detach().to("cpu", torch.float64).numpy() for q, _ in series]
+        arrays = [around_circular_mean(a) if q in ANGLE_QUANTITIES else a for (q, _), a in zip(series, arrays)]
         bins = _bins(*arrays)
         for (q, legend), values, colour in zip(series, arrays, colours):
             finite = values[np.isfinite(values)]
@@ -83,7 +90,7 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
         ax.tick_params(labelsize=FONT_SIZE - 1)
         if len(series) > 1:
             ax.legend(fontsize=FONT_SIZE - 1, frameon=False)
-        if series[0][0] == "angle_deg":
+        if series[0][0] == "angle_deg" and not flipped:
             top = ax.secondary_xaxis("top", functions=(lambda x: -x, lambda x: -x))
             top.set_xlabel("visible rotation of the content (°)", fontsize=FONT_SIZE)
             top.tick_params(labelsize=FONT_SIZE - 1)

@@ -113,8 +113,8 @@ def _class_text(classes: list[str] | None, k: int | None) -> str:
 def _view_text(desc: dict[str, Tensor], i: int) -> str:
     rot = float(desc["view_rotation_deg"][i])
     zoom = math.sqrt(float(desc["view_zoom_1"][i]) * float(desc["view_zoom_2"][i]))
-    flip = ", flipped" if float(desc["reflection"][i]) else ""
-    return f"view: {rot:+.0f}°, zoom ×{zoom:.2f}{flip}"
+    flip = " flipped" if float(desc["reflection"][i]) else ""
+    return f"view {rot:+.0f}° ×{zoom:.2f}{flip}"
 
 
 def _warp_output(warp, theta: Tensor, images: Tensor, normalisation: Mapping | None) -> Tensor:

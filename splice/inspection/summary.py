@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import math
 from collections.abc import Mapping
 
 import torch
@@ -10,7 +11,8 @@ from torch import Tensor
 
 from .decompose import MATRIX_QUANTITIES, PROJECTIVE_QUANTITIES, TPS_QUANTITIES
 
-__all__ = ["SCHEMA_VERSION", "CSV_QUANTITIES", "summarise", "csv_text", "render_inspect"]
+__all__ = ["SCHEMA_VERSION", "CSV_QUANTITIES", "ANGLE_QUANTITIES", "circular_mean", "around_circular_mean",
+           "summarise", "csv_text", "render_inspect"]
 
 # one-line versions for the table on screen (summary.json carries QUANTITY_HELP)
 _SHORT_HELP = {
@@ -41,10 +43,46 @@ _CSV_FIXED = ("image", "label", "predicted", "point", "family", "file")
 CSV_QUANTITIES = MATRIX_QUANTITIES + PROJECTIVE_QUANTITIES + TPS_QUANTITIES
 
 
-def summarise(values: Tensor) -> dict[str, float | int | None]:
+#: quantities that are angles on a circle: summarised around their circular mean (see :func:`summarise`)
+ANGLE_QUANTITIES = ("angle_deg", "view_rotation_deg")
+
+
+def circular_mean(v) -> float | None:
+    """The circular mean in degrees of the finite angles of ``v`` (a numpy array, degrees): the direction of their
+    mean unit vector, in (-180, 180] (``scipy.stats.circmean``'s); ``None`` when it has no direction."""
+    import numpy as np
+
+    rad = np.deg2rad(v[np.isfinite(v)])
+    if rad.size == 0:
+        return None
+    sin, cos = float(np.sin(rad).mean()), float(np.cos(rad).mean())
+    if math.hypot(sin, cos) < 1e-12:  # the angles balance out: no direction to centre on
+        return None
+    centre = math.degrees(math.atan2(sin, cos))
+    return centre + 360.0 if centre <= -180.0 else centre
+
+
+def around_circular_mean(v):
+    """Angles in degrees (a numpy array) moved by whole turns to within 180 degrees of their circular mean
+    (:func:`circular_mean`); unchanged when that mean is undefined."""
+    import numpy as np
+
+    centre = circular_mean(v)
+    if centre is None:
+        return v
+    finite = np.isfinite(v)
+    out = v.copy()
+    out[finite] = v[finite] - 360.0 * np.round((v[finite] - centre) / 360.0)
+    return out
+
+
+def summarise(values: Tensor, circular: bool = False) -> dict[str, float | int | None]:
     """Mean, population std (ddof 0), 5th/95th percentiles (linear), min and max of the finite values.
 
-    ``n`` counts the finite values; every statistic is ``None`` when there are none.
+    ``n`` counts the finite values; every statistic is ``None`` when there are none. With ``circular`` the
+    values are angles in degrees: the mean is their circular mean (:func:`circular_mean`), and the other
+    statistics are taken after moving each angle by whole turns to within 180 degrees of it, so that angles on
+    both sides of +-180 make one spread, not two (the percentiles, min and max may then lie beyond +-180).
     """
     import numpy as np
 
@@ -52,8 +90,12 @@ def summarise(values: Tensor) -> dict[str, float | int | None]:
     v = v[np.isfinite(v)]
     if v.size == 0:
         return {"n": 0, "mean": None, "std": None, "p5": None, "p95": None, "min": None, "max": None}
+    centre = circular_mean(v) if circular else None
+    if centre is not None:
+        v = around_circular_mean(v)
+    mean = float(v.mean()) if centre is None else centre
     p5, p95 = np.percentile(v, [5.0, 95.0])
-    return {"n": int(v.size), "mean": float(v.mean()), "std": float(v.std()), "p5": float(p5),
+    return {"n": int(v.size), "mean": mean, "std": float(v.std()), "p5": float(p5),
             "p95": float(p95), "min": float(v.min()), "max": float(v.max())}
 
 
@@ -103,10 +145,12 @@ def render_inspect(result: Mapping, console) -> None:
                           _SHORT_HELP.get(q, result["help"].get(q, "")))
         console.print(table)
         if w["family"] == "tps":
-            console.print("  tps: the rotation, scale and shift rows describe the spline's affine part; "
-                          "tps_mean_px / tps_max_px measure the control points' displacement.")
+            console.print("  tps: the rotation and scale rows describe the spline at the output centre (its Jacobian), "
+                          "the shift rows the point the centre reads; tps_mean_px / tps_max_px measure the control "
+                          "points' displacement.")
     files = result["files"]
     written = [files["csv"], files["summary"], *files["pictures"]]
     console.print(f"wrote {result.get('out', '.')}/: {', '.join(written)}")
     console.print("sampling side: the map from output to input pixels; VIEWER rows: what the content visibly does "
-                  "(rotation = -angle, zoom = 1/scale). Angles: + = clockwise on screen.")
+                  "(rotation = -angle, or +angle where flipped; zoom = 1/scale). Angles: + = clockwise on screen, "
+                  "summarised around their circular mean.")
