@@ -71,7 +71,8 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
     else:
         note += "Top axis: the content's visible rotation (= -angle)."
     if family in ("tps", "projective"):
-        note += f" For {family}, angle and scales are the map's Jacobian at the output centre; shift, the point it reads."
+        note += (f" For {family}, angle and scales are the map's Jacobian at the output centre; shift, the point "
+                 "it reads.")
     header(fig, size, f"Warp at '{point}' ({family}): distributions over {n} images", note)
     colours = [OKABE_ITO["blue"], OKABE_ITO["orange"]]
     for k, (label, series) in enumerate(groups):
