@@ -46,6 +46,7 @@ __all__ = [
     "IMAGE_SUFFIXES",
     "OPTIONAL_SUFFIXES",
     "FLOAT_SLACK",
+    "image_formats",
     "image_suffixes",
     "list_image_files",
     "check_input_shape",
@@ -63,6 +64,19 @@ OPTIONAL_SUFFIXES = (".avif", ".heic", ".heif")
 # quarter of an 8-bit step, so the clipping cannot be seen in any 8-bit rendering.
 FLOAT_SLACK = 1e-3
 _SIXTEEN_BIT = 65535
+
+
+def image_formats() -> tuple[str, ...]:
+    """The Pillow formats of :func:`image_suffixes`, the only ones :func:`open_capped` lets Pillow read.
+
+    Pillow picks its reader from a file's first bytes, whatever its name says, and some of its readers run
+    another program: EPS hands the file to Ghostscript, a PostScript interpreter. A file named ``.png`` that
+    holds PostScript must not reach one, so the readers are limited to the raster formats splice lists.
+    """
+    from PIL import Image
+
+    registered = Image.registered_extensions()
+    return tuple(sorted({registered[s] for s in image_suffixes() if s in registered}))
 
 
 def image_suffixes() -> tuple[str, ...]:
@@ -205,9 +219,12 @@ def open_capped(path: Path):
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", Image.DecompressionBombWarning)  # splice's cap is the one that counts
-                im = Image.open(path)
+                im = Image.open(path, formats=image_formats())
         except Image.DecompressionBombError:  # over twice Pillow's limit, which is above splice's cap here
             raise _over_cap(path, cap, f"over {2 * (pillow or 0):,} pixels") from None
+        except Image.UnidentifiedImageError:
+            raise DataError(f"cannot read image {path}: it is damaged, or not in a format splice reads "
+                            f"({', '.join(image_formats())}). Remove or replace the file.") from None
         try:
             width, height = im.size
             if width * height > cap:

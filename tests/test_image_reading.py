@@ -155,6 +155,31 @@ def test_avif_files_are_read_when_pillow_can(tmp_path):
     assert abs(float(ds[1][0].mean()) - 120 / 255) < 4 / 255
 
 
+def test_a_file_named_as_an_image_never_reaches_a_reader_that_runs_another_program(tmp_path, monkeypatch):
+    # Pillow picks its reader from the bytes, not the name; its EPS reader runs Ghostscript. A stand-in `gs` on
+    # PATH records any call: it must never be made, and the file is refused in one line.
+    marker = tmp_path / "gs-ran"
+    fake = tmp_path / "bin" / "gs"
+    fake.parent.mkdir()
+    fake.write_text(f"#!/bin/sh\necho \"$@\" >> {marker}\n")
+    fake.chmod(0o755)
+    monkeypatch.setenv("PATH", f"{fake.parent}{os.pathsep}{os.environ['PATH']}")
+    eps = tmp_path / "tray" / "train" / "7" / "part.png"
+    eps.parent.mkdir(parents=True)
+    _grey(tmp_path / "tray" / "train" / "1" / "ok.png")
+    eps.write_bytes(b"%!PS-Adobe-3.0 EPSF-3.0\n%%BoundingBox: 0 0 8 8\nnewpath 0 0 moveto 8 8 lineto stroke\n"
+                    b"showpage\n%%EOF\n")
+    with Image.open(eps) as im:  # what Pillow alone makes of it
+        assert im.format == "EPS"
+    with pytest.raises(DataError, match=r"^cannot read image .*part.png: it is damaged, or not in a format splice "
+                                        r"reads \(.*PNG.*\). Remove or replace the file.$"):
+        read_image(eps, (1, 8, 8))
+    bad = data.open_data(tmp_path / "tray", "train", input_shape=(1, 8, 8)).bad_headers()
+    assert len(bad) == 1 and "not in a format splice reads" in bad[0]
+    assert not marker.exists()
+    assert "EPS" not in imagefiles.image_formats() and "PNG" in imagefiles.image_formats()
+
+
 def test_links_are_followed_and_a_broken_one_is_one_line_everywhere(tmp_path):
     root = tmp_path / "tree"
     for k in range(2):
