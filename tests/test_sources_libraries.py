@@ -4,6 +4,7 @@ builders with backbones — all built with random weights, nothing downloaded.""
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import warnings
 import sys
@@ -269,6 +270,35 @@ def test_a_backbone_named_without_its_config_is_refused_before_any_lookup(monkey
     detr["backbone_config"].update(backbone="resnet18", use_pretrained_backbone=True)
     model = build_model("transformers:DetrForObjectDetection", kwargs={"config": detr})[0]
     assert not model.config.backbone_config.use_pretrained_backbone
+
+
+@pytest.mark.parametrize("name", ["hf-hub:someone/their-model", "hf_hub:someone/their-model", "local-dir:/elsewhere"])
+def test_a_timm_model_named_by_a_source_is_refused_before_timm_is_asked(monkeypatch, name):
+    """timm fetches an 'hf-hub:' name from the Hub and reads a 'local-dir:' one from any folder, config included,
+    whatever pretrained says; a config.json (or a recorded config) chooses that name."""
+    import timm
+
+    from splice.sources import build_model
+
+    def asked(*args, **kwargs):
+        raise AssertionError("timm was asked")
+
+    monkeypatch.setattr(timm, "create_model", asked)
+    wrapper = transformers_config("TimmWrapperConfig")
+    wrapper.update(architecture=name)
+    backbone = transformers_config("TimmBackboneConfig")
+    backbone.update(backbone=name)
+    detr = transformers_config("DetrConfig")
+    detr["backbone_config"].update(backbone=name)
+    cases = [("TimmWrapperForImageClassification", wrapper, "architecture"),
+             ("TimmBackbone", backbone, "backbone"), ("DetrForObjectDetection", detr, "backbone_config.backbone")]
+    for cls, config, where in cases:
+        with pytest.raises(SourceError, match=rf"names {re.escape(where)} '{name}', a model timm would fetch"):
+            build_model(f"transformers:{cls}", kwargs={"config": config})
+    wrapper = transformers_config("TimmWrapperConfig")
+    wrapper.update(architecture="resnet18", model_args={"checkpoint_path": "/elsewhere/w.pth"})
+    with pytest.raises(SourceError, match=r"model_args sets 'checkpoint_path', which makes timm download or read"):
+        build_model("transformers:TimmWrapperForImageClassification", kwargs={"config": wrapper})
 
 
 def transformers_config(name: str) -> dict:

@@ -34,6 +34,7 @@ from typing import Any
 from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
 from .specs import per_channel, positive_int
+from .timm import REFUSED_TIMM_KWARGS
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
            "read_hf_weights", "image_channels", "HF_WEIGHT_FILES", "HFFolder"]
@@ -118,11 +119,28 @@ def code_request(config: Mapping) -> str | None:
     return None
 
 
+# keys whose value names a model that timm (TimmWrapper, TimmBackbone, a backbone timm builds) or transformers
+# builds, and the keys holding the keyword arguments transformers hands to timm.create_model
+_MODEL_NAME_KEYS = ("architecture", "backbone")
+_TIMM_ARGUMENT_KEYS = ("model_args", "backbone_kwargs")
+
+
 def _check_buildable(config: Mapping, where: str) -> None:
-    """Refuse, in one line, a config splice cannot build without transformers reaching the Hub or quantizing:
-    a ``quantization_config`` anywhere (a warp goes into a floating-point model), or a ``backbone`` named without
-    its ``backbone_config`` (transformers then looks the name up on the Hub)."""
+    """Refuse, in one line, a config splice cannot build without transformers reaching the Hub, reading files
+    outside the folder or quantizing: a ``quantization_config`` anywhere (a warp goes into a floating-point model),
+    a model named with a source (``hf-hub:org/repo``, ``local-dir:/path``, which timm fetches or reads), timm
+    arguments that load weights, or a ``backbone`` named without its ``backbone_config`` (transformers then looks
+    the name up on the Hub)."""
     for place, key, value, parent in _entries(config):
+        if key in _MODEL_NAME_KEYS and isinstance(value, str) and ":" in value:
+            raise SourceError(f"{where}: the config names {place}{key} {value!r}, a model timm would fetch from the "
+                              "Hugging Face Hub or read from another folder; name a timm architecture "
+                              "(timm.list_models()) and give the weights with the folder")
+        if key in _TIMM_ARGUMENT_KEYS and isinstance(value, Mapping):
+            loads = [k for k in REFUSED_TIMM_KWARGS if k in value]
+            if loads:
+                raise SourceError(f"{where}: the config's {place}{key} sets {loads[0]!r}, which makes timm download "
+                                  "or read weights; drop it (the folder's own weights are loaded)")
         if key == "quantization_config" and value is not None:
             method = value.get("quant_method", "?") if isinstance(value, Mapping) else "?"
             raise SourceError(f"{where}: the config holds a {place}quantization_config (quant_method {method!r}); "
