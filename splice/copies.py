@@ -37,7 +37,7 @@ import torch
 from torch import fx, nn
 
 __all__ = ["private_buffers", "own_buffers_", "tree_copy", "buffer_snapshot", "changed_buffers", "bitwise_equal",
-           "collector_paused", "modes_kept", "rng_kept"]
+           "collector_paused", "modes_kept", "rng_kept", "same_draws"]
 
 # the per-module mappings a twin must own so that adding a hook, a flag or an
 # attribute to it never reaches the caller's module
@@ -270,4 +270,25 @@ def rng_kept() -> Iterator[None]:
     """
     devices = list(range(torch.cuda.device_count())) if torch.cuda.is_initialized() else []
     with torch.random.fork_rng(devices=devices):
+        yield
+
+
+#: the seed of :func:`same_draws`: any fixed number would do
+DRAWS_SEED = 20151
+
+
+@contextmanager
+def same_draws() -> Iterator[None]:
+    """The block draws the same random numbers every time it runs, and the caller's generators come back as they
+    were (:func:`rng_kept`).
+
+    A model that keeps dropout (or any sampling) active in eval mode, as
+    Monte Carlo dropout does, gives another output on every call; a base and
+    its splice each run under this draw the same masks, since a warp draws no
+    random numbers, so comparing them compares the splice and not the dice.
+    """
+    with rng_kept():
+        torch.random.default_generator.manual_seed(DRAWS_SEED)
+        if torch.cuda.is_initialized():  # torch.manual_seed would queue a seed for a CUDA not yet started
+            torch.cuda.manual_seed_all(DRAWS_SEED)
         yield

@@ -25,7 +25,7 @@ import torch
 from torch import fx, nn
 
 from .compare import compare_outputs
-from .copies import private_buffers
+from .copies import private_buffers, same_draws
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info, remember_base
@@ -144,7 +144,12 @@ def quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float
         xs = [x.to(device=param.device, dtype=param.dtype) for x in xs]
     base_twin, spliced_twin = private_buffers(base).eval(), private_buffers(spliced).eval()
     with torch.no_grad():
-        return compare_outputs(base_twin(*xs), spliced_twin(*[x.clone() for x in xs]), tol=tol)
+        # each model gets its own copy of the batch: a forward may normalise its input in place
+        with same_draws():
+            base_out = base_twin(*[x.clone() for x in xs])
+        with same_draws():  # a model that samples in eval mode (Monte Carlo dropout) draws the same masks
+            spliced_out = spliced_twin(*[x.clone() for x in xs])
+        return compare_outputs(base_out, spliced_out, tol=tol)
 
 
 def apply_plan(model: nn.Module, plan: Sequence[SplicePlan], input_shape, *, leaves=(), listing=None,

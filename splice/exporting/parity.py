@@ -103,7 +103,7 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
             ref = known[i]
         else:
             with torch.no_grad():
-                ref = torch_model(*xs)
+                ref = torch_model(*[x.clone() for x in xs])  # a forward may change its input in place
         feeds = {name: x.detach().cpu().numpy() for name, x in zip(feed_names, xs)}
         try:
             outs = session.run(None, {**feeds, **extra})

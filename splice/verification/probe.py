@@ -12,7 +12,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..copies import bitwise_equal
+from ..copies import bitwise_equal, same_draws
 from ..data import normalise
 from ..errors import DataError, SpliceError, first_line
 from ..imagefiles import image_suffixes, list_image_files, load_images
@@ -211,11 +211,12 @@ def only_copy(model: nn.Module, keep: str) -> nn.Module:
     return work
 
 def run_no_grad(model: nn.Module, x, what: str):
-    """``model(*x)`` without gradients; ``x`` is a tensor or one tensor per model input."""
+    """``model(*x)`` without gradients, on a copy of ``x`` (a forward may normalise its input in place) and with
+    :func:`~splice.copies.same_draws`; ``x`` is a tensor or one tensor per model input."""
     xs = (x,) if isinstance(x, torch.Tensor) else tuple(x)
     try:
-        with torch.no_grad():
-            return model(*xs)
+        with torch.no_grad(), same_draws():
+            return model(*[t.clone() for t in xs])
     except Exception as exc:
         shapes = ", ".join(str(tuple(t.shape)) for t in xs)
         raise SpliceError(f"the {what} fails on a probe batch of shape {shapes} ({error_text(exc)}); "

@@ -17,7 +17,7 @@ from torch import nn
 
 from ..fileio import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, first_rows, flatten_outputs
-from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept
+from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept, same_draws
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..limits import check_fits, tensor_bytes
@@ -129,8 +129,8 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     """``outputs``, ``images`` (with images) and ``warps``, from a spliced forward pass that worked."""
     warps = warps_of(spliced)
     identity_model = reset_copy(spliced) if tuned else spliced
-    with torch.no_grad():
-        id_out = identity_model(*x) if tuned else out
+    with torch.no_grad(), same_draws():
+        id_out = identity_model(*[t.clone() for t in x]) if tuned else out
     rows = [outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
                          f"seeded N(0,1) probe of {opts.batch}")]
     if images is not None:
@@ -140,8 +140,9 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     moved = [n for n, d in distances.items() if d > 0]
     if tuned and len(moved) > 1:
         for name in moved:
-            with torch.no_grad():
-                per_warp[name] = compare_outputs(detached(id_out), only_copy(spliced, name)(*x), tol=math.inf)
+            with torch.no_grad(), same_draws():
+                per_warp[name] = compare_outputs(detached(id_out), only_copy(spliced, name)(*[t.clone() for t in x]),
+                                                 tol=math.inf)
     rows.append(warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
     return rows
 
@@ -158,8 +159,8 @@ def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tu
     error = None
     result = _Forward(tuple(t.detach().requires_grad_(t.is_floating_point()) for t in x))
     try:
-        with torch.enable_grad():
-            result.out = spliced(*result.x)
+        with torch.enable_grad(), same_draws():  # the base's draws (see run_no_grad)
+            result.out = spliced(*[t.clone() for t in result.x])  # the leaves stay as they are; grads reach them
     except Exception as exc:
         error = error_text(exc)
     finally:
