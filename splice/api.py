@@ -242,8 +242,11 @@ def tune(model=None, *, recipe=None, data=None, out=None, resume=None, overrides
 
 
 def evaluate(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,
-             model_options=None, options=None) -> dict:
+             model_options=None, options=None, against_options=None) -> dict:
     """Accuracy and loss on a split, clean and under distortion sweeps, optionally beside a second model.
+
+    ``against_options`` holds the opt-ins for ``against`` (``ModelOptions(trust_code=True)``); those of
+    ``model_options`` are for ``model`` alone.
 
     >>> import splice
     >>> result = splice.evaluate("splice.models:tray_net", data="digits", distort="rotate=0,30")
@@ -253,7 +256,7 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
     from .evaluation import evaluate as evaluate_model
 
     return evaluate_model(model, data=data, split=split, against=against, distort=distort, plot=plot,
-                          model_options=model_options, options=options)
+                          model_options=model_options, options=options, against_options=against_options)
 
 
 def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pickle: bool = False,

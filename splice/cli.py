@@ -259,7 +259,8 @@ def _cmd_eval(args) -> int:
     result = evaluate(args.model, data=args.data, split=args.split, against=args.against, distort=args.distort,
                       batch_size=args.batch_size, plot=args.plot, weights=args.weights, kwargs=args.kwargs,
                       input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device,
-                      trust_code=args.trust_code)
+                      trust_code=args.trust_code, against_trust_code=args.against_trust_code,
+                      against_trust_pickle=args.against_trust_pickle)
     if args.json:
         print(json.dumps(result, indent=2))
     else:
@@ -387,6 +388,11 @@ def _parser_eval(sub) -> None:
     p.add_argument("--data", required=True, metavar="NAME|DIR")
     p.add_argument("--split", default="test")
     p.add_argument("--against", metavar="MODEL2", help="a second model (source or folder) to compare with")
+    p.add_argument("--against-trust-code", action="store_true",
+                   help="build MODEL2 even when a file it reads names code no registry lists (--trust-code is for "
+                        "MODEL alone)")
+    p.add_argument("--against-trust-pickle", action="store_true",
+                   help="allow unpickling MODEL2's files (--trust-pickle is for MODEL alone)")
     p.add_argument("--distort", metavar="SPEC",
                    help="sweeps, e.g. 'rotate=0,15,30;scale=0.8,1.2;shift=0.1;perspective=0.2' (default: a standard sweep)")
     p.add_argument("--batch-size", type=int, default=128)

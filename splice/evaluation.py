@@ -269,13 +269,16 @@ class EvalOptions:
 
 
 def evaluate(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,
-             model_options: ModelOptions | None = None, options: EvalOptions | None = None) -> dict:
+             model_options: ModelOptions | None = None, options: EvalOptions | None = None,
+             against_options: ModelOptions | None = None) -> dict:
     """Accuracy and mean cross-entropy of ``model`` on a split, clean and under distortion sweeps.
 
     ``model`` and ``against`` are anything :func:`splice.sources.load_source`
     takes (spec string, spliced or plain folder, ``nn.Module``);
     ``model_options`` (:class:`~splice.options.ModelOptions`) apply to
-    ``model``, and only its ``trust_pickle`` and ``trust_code`` to ``against``. ``distort`` is a
+    ``model``; of ``against_options``, only ``trust_pickle`` and ``trust_code`` are read, for ``against``
+    (an opt-in is for one use: trusting the first model's file trusts nothing
+    the second names). ``distort`` is a
     ``--distort`` string or mapping (see :func:`parse_distort`; ``None`` is
     :data:`DEFAULT_SWEEPS`). ``plot`` is a PNG path for the accuracy-vs-level
     figure; no plot is written unless it is given. ``options``
@@ -299,7 +302,7 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
     model_options = model_options or ModelOptions()
     options = options or EvalOptions()
     dev = pick_device(options.device)
-    models = _load_models(model, against, model_options, dev)
+    models = _load_models(model, against, model_options, against_options or ModelOptions(), dev)
     src = models[0][2]
     ds = open_data(data, split, input_shape=src.input_shape)
     classes = [str(c) for c in ds.classes]
@@ -347,13 +350,37 @@ def improved(start, tuned, *, data: str, split: str = "test") -> dict:
 def evaluate_keywords(model, *, data: str, split: str = "test", against=None, distort=None, plot=None,
                       **keywords) -> dict:
     """:func:`evaluate` with the fields of :class:`~splice.options.ModelOptions` and
-    :class:`EvalOptions` as flat keywords (``weights=``, ``batch_size=``, ``device=``, …)."""
+    :class:`EvalOptions` as flat keywords (``weights=``, ``batch_size=``, ``device=``, …), and the opt-ins for
+    ``against`` as ``against_trust_code=`` and ``against_trust_pickle=``."""
+    against_options = ModelOptions(trust_code=keywords.pop("against_trust_code", False),
+                                   trust_pickle=keywords.pop("against_trust_pickle", False))
     model_options, options = split_keywords(keywords, (ModelOptions, EvalOptions), "evaluate")
     return evaluate(model, data=data, split=split, against=against, distort=distort, plot=plot,
-                    model_options=model_options, options=options)
+                    model_options=model_options, options=options, against_options=against_options)
 
 
-def _load_models(model, against, model_options: ModelOptions, dev) -> list[tuple]:
+# the opt-ins a refusal of ``against`` names, as the user gives them for that model
+_AGAINST_OPT_INS = (("--trust-code", "--against-trust-code"), ("trust_code=True", "against_trust_code=True"),
+                    ("--trust-pickle", "--against-trust-pickle"), ("trust_pickle=True", "against_trust_pickle=True"))
+
+
+def _load_against(against, options: ModelOptions, default_input_shape):
+    try:
+        return options.load(against, default_input_shape=default_input_shape)
+    except SpliceError as exc:
+        text = str(exc)
+        for mine, theirs in _AGAINST_OPT_INS:
+            text = text.replace(mine, theirs)
+        if text == str(exc):
+            raise
+        try:
+            again = type(exc)(f"--against: {text}")
+        except TypeError:  # an error class that takes more than a message
+            again = SpliceError(f"--against: {text}")
+        raise again from exc
+
+
+def _load_models(model, against, model_options: ModelOptions, against_options: ModelOptions, dev) -> list[tuple]:
     """``[(role, label, source, module on dev in eval mode)]`` for the model and ``against``."""
     src = model_options.load(model)
     if src.input_shape is None:
@@ -361,9 +388,9 @@ def _load_models(model, against, model_options: ModelOptions, dev) -> list[tuple
     models = [("model", _label(model), src, _prepare(src, dev, model))]
     if against is not None:
         other = ModelOptions(input_shape=src.input_shape if isinstance(against, nn.Module) else None,
-                             trust_pickle=model_options.trust_pickle, trust_code=model_options.trust_code)
+                             trust_pickle=against_options.trust_pickle, trust_code=against_options.trust_code)
         # both models see the same preprocessed images: a second model that declares no shape takes the first's
-        src2 = other.load(against, default_input_shape=src.input_shape)
+        src2 = _load_against(against, other, src.input_shape)
         if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
             raise DataError(
                 f"the two models take different inputs ({'x'.join(map(str, src.input_shape))} and "

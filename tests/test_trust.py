@@ -118,7 +118,8 @@ def test_a_planted_manifest_is_refused_by_every_command(tmp_path, base_folder, c
     code = main(_argv(command, planted["folder"], tmp_path))
     line = _one_error_line(capsys)
     assert code == 2, line
-    assert planted["spec"] in line and "splice.json" in line and "--trust-code" in line, line
+    opt_in = "--against-trust-code" if command == "eval --against" else "--trust-code"
+    assert planted["spec"] in line and "splice.json" in line and f"pass {opt_in} " in line, line
     assert not _ran(planted), f"the {payload} payload ran on 'splice {command}'"
     assert not any(p.name.startswith("out-") for p in tmp_path.iterdir()), "something was written"
 
@@ -164,6 +165,24 @@ def test_the_opt_in_is_not_remembered(tmp_path, base_folder, capsys, monkeypatch
     assert main(["points", str(planted["folder"])]) == 2
     assert "--trust-code" in _one_error_line(capsys)
     assert not _ran(planted)
+
+
+def test_trusting_the_model_does_not_trust_the_one_it_is_compared_with(tmp_path, base_folder, capsys, monkeypatch):
+    """An opt-in is for one use: --trust-code for MODEL (the user's own file) must not build what a second folder's
+    manifest names; --against-trust-code does, for that folder alone."""
+    monkeypatch.delenv("SPLICE_TRUST_CODE", raising=False)
+    mine = _plant(tmp_path / "mine", base_folder, "py")
+    theirs = _plant(tmp_path / "theirs", base_folder, "py")
+    argv = ["eval", str(mine["folder"]), "--data", "digits", "--distort", "none", "--against", str(theirs["folder"])]
+    assert main([*argv, "--trust-code"]) == 2
+    line = _one_error_line(capsys)
+    assert "error: --against: refused" in line and "pass --against-trust-code" in line, line
+    assert not _ran(theirs)
+    mine["sentinel"].unlink()  # built, as asked
+    assert main([*argv, "--against-trust-code"]) == 2  # and the other way round
+    assert "--trust-code" in _one_error_line(capsys) and not _ran(mine)
+    assert main([*argv, "--trust-code", "--against-trust-code"]) == 0
+    assert _ran(mine) and _ran(theirs)
 
 
 def test_the_api_and_the_environment_opt_in(tmp_path, base_folder, monkeypatch):
