@@ -86,18 +86,87 @@ def onnx_output_names(model: nn.Module, example, n_outputs: int | None) -> list[
             n_outputs = len(flatten_outputs(model(*as_inputs(example))))
     return [f"output_{i}" for i in range(n_outputs)]
 
+#: how the TorchScript tracer's warning starts when traced code turns a tensor into a Python value (a branch, a
+#: count, a number): the graph keeps the value it had on the example, whether it came from a shape or from pixels
+CONVERSION_WARNING = "Converting a tensor to a Python"
+
+
+def _conversion_sites(caught: list) -> list[str]:
+    """``file:line`` of each place the tracer turned a tensor into a Python value; other warnings shown again."""
+    sites = []
+    for w in caught:
+        if issubclass(w.category, torch.jit.TracerWarning):
+            if str(w.message).startswith(CONVERSION_WARNING):
+                site = f"{os.path.basename(w.filename)}:{w.lineno}"
+                sites += [] if site in sites else [site]
+        else:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return sites
+
+
+# torch.export's errors for a Python branch or number taken from a tensor's values (fake tensors have none)
+_DATA_DEPENDENT = ("GuardOnDataDependentSymNode", "DataDependentOutputException", "DataDependentOutputError")
+# the loggers that write a failed torch.export's guard on the terminal (the error says enough)
+_EXPORT_LOGGERS = ("torch.fx.experimental.symbolic_shapes", "torch.export", "torch._export")
+
+
 @contextlib.contextmanager
-def exporting(model: nn.Module, exporter: str, opset: int):
-    """Eval mode (for a twin: the caller's model is never passed here), the exporters' own chatter silenced, and
-    failures as :class:`SpliceError`."""
-    model.eval()
+def _loggers_quiet(names: tuple[str, ...]):
+    import logging
+
+    loggers = [logging.getLogger(n) for n in names]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.ERROR)
     try:
-        with warnings.catch_warnings():
-            # the TorchScript exporter announces its own deprecation; the tracer
-            # warns about shape-dependent Python branches, which are static here
-            warnings.filterwarnings("ignore", message=".*legacy TorchScript-based ONNX export.*")
-            warnings.filterwarnings("ignore", category=torch.jit.TracerWarning)
-            yield
+        yield
+    finally:
+        for lg, level in zip(loggers, levels):
+            lg.setLevel(level)
+
+
+def value_branch(model: nn.Module, example) -> tuple[str, str]:
+    """Does ``model`` take a Python branch or number from tensor values? ``("values", why)``, ``("shapes", "")``
+    (torch.export traced it on ``example`` with no such branch: what the TorchScript tracer fixed came from
+    shapes) or ``("unknown", why)`` (torch.export failed for another reason).
+
+    torch.export runs the forward on fake tensors, which have shapes but no values, so a branch on values stops
+    it with a data-dependent error; the TorchScript tracer instead fixes the branch the example took. Runs on a
+    twin in eval mode; the caller's model is not changed.
+    """
+    twin = private_buffers(model).eval()
+    try:
+        # torch.export prints the partial graph of a failure to sys.stderr itself, and logs a warning
+        with warnings.catch_warnings(), torch.no_grad(), _loggers_quiet(_EXPORT_LOGGERS), \
+                contextlib.redirect_stderr(io.StringIO()):
+            warnings.simplefilter("ignore")
+            torch.export.export(twin, as_inputs(example), strict=False)
+    except Exception as exc:
+        if type(exc).__name__ in _DATA_DEPENDENT or "data-dependent" in str(exc):
+            return "values", "torch.export stops there: the branch needs the values"
+        return "unknown", f"{type(exc).__name__}: {first_line(exc)}"
+    return "shapes", ""
+
+
+@contextlib.contextmanager
+def exporting(model: nn.Module, exporter: str, opset: int, conversions: list[str] | None = None):
+    """Eval mode (for a twin: the caller's model is never passed here), the exporters' own chatter silenced, and
+    failures as :class:`SpliceError`. ``conversions`` gets the ``file:line`` of each place where the tracer turned
+    a tensor into a Python value (see :data:`CONVERSION_WARNING`)."""
+    model.eval()
+    caught: list = []
+    try:
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                # the TorchScript exporter announces its own deprecation; the tracer's warnings are read below
+                warnings.filterwarnings("ignore", message=".*legacy TorchScript-based ONNX export.*")
+                warnings.filterwarnings("ignore", message="Constant folding - Only steps=1")  # a note, not a fault
+                warnings.filterwarnings("always", category=torch.jit.TracerWarning)
+                yield
+        finally:
+            sites = _conversion_sites(caught)
+        if conversions is not None:
+            conversions.extend(sites)
     except SpliceError:
         raise
     except Exception as exc:
@@ -168,7 +237,8 @@ def torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[s
 
 def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_batch: bool = False,
                       exporter: str = "torchscript", fold_constants: bool = True,
-                      n_outputs: int | None = None, weights_as_inputs: bool = False) -> bytes:
+                      n_outputs: int | None = None, weights_as_inputs: bool = False,
+                      conversions: list[str] | None = None) -> bytes:
     """Serialised ONNX model of ``model`` traced on ``example`` (the model is not changed).
 
     ``example`` is a tensor, or a tuple with one tensor per input of a model
@@ -184,7 +254,9 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
     entry, instead of a stored initializer: the same operators, without the
     cost of serialising the weights and of onnxruntime preparing them, and one
     graph runs at any warp. Such a graph is for checking (see
-    :func:`onnx_parity`), not for shipping.
+    :func:`onnx_parity`), not for shipping. ``conversions`` gets the places
+    where the TorchScript tracer turned a tensor into a Python value (see
+    :func:`exporting`).
     """
     check_opset(opset, exporter)
     if weights_as_inputs and exporter != "torchscript":
@@ -192,7 +264,7 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
     model = private_buffers(model)  # modes, buffers and Python state of its own: the caller's stay as they are
     xs = as_inputs(example)
     inputs = input_names(len(xs))
-    with exporting(model, exporter, opset):
+    with exporting(model, exporter, opset, conversions):
         names = onnx_output_names(model, xs, n_outputs)
         if weights_as_inputs:
             target = WeightsAsInputs(model, n_inputs=len(xs))

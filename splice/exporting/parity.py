@@ -33,6 +33,7 @@ from .onnx import (
     input_names,
     onnx_output_names,
     torchscript,
+    value_branch,
 )
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
@@ -99,7 +100,7 @@ def _run_batches(torch_model, session, feed_names: Sequence[str], batches, extra
     exact_of = _float64_once(model_of) if judged and model_of is not None else None
     results = []
     for i, xs in enumerate(batches):
-        if known is not None:
+        if known is not None and known[i] is not None:
             ref = known[i]
         else:
             with torch.no_grad():
@@ -255,6 +256,57 @@ def model_dtype(model: nn.Module) -> torch.dtype:
     p = next(iter(model.parameters()), None)
     return p.dtype if p is not None else torch.float32
 
+#: the scales of the extra probes run when the tracer fixed Python values (:data:`~.onnx.CONVERSION_WARNING`): a
+#: branch on brightness or contrast taken one way on the N(0,1) probe is taken the other way on one of them
+REGIME_SCALES = (8.0, 0.125)
+
+
+def value_regimes(batches) -> list[tuple]:
+    """The smallest of ``batches`` (one tensor per input each) at each of :data:`REGIME_SCALES`."""
+    smallest = min(batches, key=lambda b: b[0].shape[0])
+    return [tuple(t * scale for t in smallest) for scale in REGIME_SCALES]
+
+
+def _sites(sites: Sequence[str]) -> str:
+    return ", ".join(sites[:3]) + (", ..." if len(sites) > 3 else "")
+
+
+def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[str],
+                      regimes: Callable[[], dict]) -> dict:
+    """``summary`` judged again when the TorchScript tracer turned tensors into Python values at ``sites``.
+
+    The traced graph keeps the branch or number each took on the example. If
+    torch.export finds one taken from tensor values (:func:`~.onnx.value_branch`),
+    the graph is wrong for inputs that go the other way, whatever the probes
+    show: the check fails. If torch.export traces the model, they came from
+    shapes, which the graph fixes anyway. If it cannot tell, ``regimes()``
+    runs the graph on the probe scaled by :data:`REGIME_SCALES` as well.
+    """
+    if not sites:
+        return summary
+    kind, why = value_branch(model, example)
+    where = _sites(sites)
+    if kind == "values":
+        return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": True,
+                "detail": f"the model takes a Python branch or number from tensor values at {where} ({why}), and "
+                          "the ONNX graph keeps only the one the probe took; write it with torch.where (or "
+                          "torch.cond) so that the graph holds both, or keep this model in PyTorch"}
+    if kind == "shapes":
+        return {**summary, "tracer_conversions": list(sites),
+                "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, from shapes only "
+                          "(torch.export traced the model with no branch on values)"}
+    found = regimes()
+    scales = " and ".join(f"{s:g}" for s in REGIME_SCALES)
+    fixed = (f"the tracer fixed Python values at {where}, and torch.export could not tell whether from shapes or "
+             f"values ({why})")
+    if not found["passed"]:
+        return {**summary, "passed": False, "tracer_conversions": list(sites),
+                "detail": f"on the probe scaled by {scales}: {found['detail']}; {fixed}"}
+    return {**summary, "tracer_conversions": list(sites),
+            "detail": f"{summary['detail']}; {fixed}; the graph also matched on the probe scaled by {scales}, but "
+                      "a branch on values may still go another way on other inputs"}
+
+
 def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
     passed = stored["passed"] and (perturbed is None or perturbed["passed"])
     if not stored["passed"]:
@@ -281,7 +333,8 @@ def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list
     }
 
 def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, tol: float | None = None,
-                references: Sequence | None = None, exporter: str = "torchscript") -> dict:
+                references: Sequence | None = None, exporter: str = "torchscript",
+                conversions: Sequence[str] = ()) -> dict:
     """Run an ONNX model in onnxruntime (CPU) and compare it with ``model`` in torch.
 
     ``onnx_model`` is a path, serialised bytes or an ``onnx.ModelProto``;
@@ -296,7 +349,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     its inputs and fed ``model``'s own tensors, then the perturbed head tensors.
     When the perturbed heads cannot be fed to the graph (the exporter merged
     their tensors), the perturbed twin is exported again with ``exporter``,
-    the one that wrote ``onnx_model``.
+    the one that wrote ``onnx_model``. ``conversions`` are the places where
+    the exporter's tracer turned a tensor into a Python value, judged by
+    :func:`judge_conversions`.
     """
     import onnx
 
@@ -307,8 +362,10 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     if references is not None and len(references) != len(batches):
         raise SpliceError(f"onnx_parity got {len(references)} references for {len(batches)} input batches")
     if _weight_inputs(proto, model):
-        return _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references,
-                                          judged=judged)
+        result = _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references,
+                                            judged=judged)
+        return judge_conversions(result, model, batches[-1], conversions, lambda: _parity_with_weight_inputs(
+            model, proto, value_regimes(batches), perturb=False, tol=tol, references=None, judged=judged))
     if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
         proto = onnx.ModelProto()
         proto.CopyFrom(onnx_model)
@@ -323,9 +380,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     model.eval()  # a twin of the caller's model
     session = _ort_session(checked)
 
-    def run(torch_model, sess, extra: dict, known=None) -> dict:
+    def run(torch_model, sess, extra: dict, known=None, on=batches) -> dict:
         names = [i.name for i in sess.get_inputs()[:len(batches[0])]]
-        return _run_batches(torch_model, sess, names, batches, extra, tol, known, judged=judged)
+        return _run_batches(torch_model, sess, names, on, extra, tol, known, judged=judged)
 
     stored = run(model, session, {}, references)
     perturbed = None
@@ -339,7 +396,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
                                       dynamic_batch=len({b[0].shape[0] for b in batches}) > 1,
                                       fold_constants=False, n_outputs=n_outputs, exporter=exporter)
             perturbed = run(twin, _ort_session(_load_onnx(again)), {})
-    return parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
+    summary = parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
+    return judge_conversions(summary, model, batches[-1], conversions,
+                             lambda: run(model, session, {}, on=value_regimes(batches)))
 
 def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
     """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
@@ -406,7 +465,8 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     swapped = perturbed_tensors(model) if perturb else {}
     start = time.perf_counter()
     xs = as_inputs(example)
-    with exporting(model, "torchscript", opset):
+    conversions: list[str] = []
+    with exporting(model, "torchscript", opset, conversions):
         target = WeightsAsInputs(model, keep_output=True, n_inputs=len(xs))
         missing = sorted(set(swapped) - set(target.names))
         if missing:
@@ -427,4 +487,7 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     result = _parity_with_weight_inputs(model, data, [xs], perturb=bool(swapped), tol=tol,
                                         references=None if reference is None else [reference],
                                         perturbed_references=[traced], optimise=False, judged=judged)
+    # the graph was traced on the very batch it is checked on: a branch on values is judged apart
+    result = judge_conversions(result, model, xs, conversions, lambda: _parity_with_weight_inputs(
+        model, data, value_regimes([xs]), perturb=False, tol=tol, references=None, optimise=False, judged=judged))
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}

@@ -51,9 +51,11 @@ def _one(model, fmt: str, shapes, *, dynamic_batch: bool, opset: int, exporter: 
     example, batches = _probe_inputs(shapes, model_dtype(model), dynamic_batch=dynamic_batch, seed=seed)
     start = time.perf_counter()
     if fmt == "onnx":
-        data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter)
+        conversions: list[str] = []
+        data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter,
+                                 conversions=conversions)
         seconds = time.perf_counter() - start
-        return data, onnx_parity(model, data, batches, tol=tol, exporter=exporter), seconds
+        return data, onnx_parity(model, data, batches, tol=tol, exporter=exporter, conversions=conversions), seconds
     data = export_pt2_bytes(model, example, dynamic_batch=dynamic_batch)
     seconds = time.perf_counter() - start
     return data, pt2_parity(model, data, batches, tol=tol), seconds
@@ -72,7 +74,7 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
             data, result, seconds = _one(model, fmt, shapes, dynamic_batch=True, **options)
         except SpliceError as exc:
             data, result, seconds = None, {"passed": False, "detail": first_line(exc)}, 0.0
-        if result["passed"]:
+        if result["passed"] or result.get("branch_on_values"):  # a static batch fixes no branch on values
             return data, result, seconds, True
         static = _one(model, fmt, shapes, dynamic_batch=False, **options)
         if not static[1]["passed"]:  # both fail: say how each did, so --static-batch is not tried in vain

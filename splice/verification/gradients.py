@@ -121,15 +121,16 @@ def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int,
         try:
             # constant folding only tidies the graph (onnxruntime folds again when it
             # loads it) and costs more than the export itself on deep nets
+            conversions: list[str] = []
             data = export_onnx_bytes(twin, x, opset=opset, exporter=exporter, fold_constants=False,
-                                     n_outputs=n_outputs)
+                                     n_outputs=n_outputs, conversions=conversions)
         except SpliceError as exc:
             return CheckResult("onnx", False, {"opset": opset, "exporter": exporter}, str(exc), "export failed")
         seconds = time.perf_counter() - start
         start = time.perf_counter()
         try:
             parity = onnx_parity(twin, data, x, references=None if reference is None else [reference],
-                                 exporter=exporter)
+                                 exporter=exporter, conversions=conversions)
         except CheckFailed as exc:
             return CheckResult("onnx", False, {"opset": opset, "exporter": exporter, "export_seconds": seconds},
                                str(exc), "onnxruntime failed")

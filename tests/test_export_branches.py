@@ -1,0 +1,99 @@
+"""A graph traced by the TorchScript exporter keeps the branch its example took. When the branch came from tensor
+values, the ONNX file is wrong for inputs that go the other way, whatever the probes show: verify and export must
+say so. Outside reference: onnxruntime (CPUExecutionProvider) on a bright input."""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+import splice
+from splice.errors import CheckFailed
+from splice.exporting.onnx import export_onnx_bytes, value_branch
+
+
+class Gate(nn.Module):
+    """Negates bright feature maps: a Python branch on tensor values."""
+
+    def forward(self, x):
+        if x.amax() > 3.0:
+            return -x
+        return x
+
+
+class GatedNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.gate = Gate()
+        self.fc = nn.Linear(4, 5)
+        with torch.no_grad():  # an averaging conv: N(0,1) probes stay far below the gate's threshold
+            self.conv.weight.fill_(1 / 27)
+            self.conv.bias.zero_()
+
+    def forward(self, x):
+        return self.fc(F.adaptive_avg_pool2d(self.gate(self.conv(x)), 1).flatten(1))
+
+
+class SamePadNet(nn.Module):
+    """'Same' padding computed from the input's size in Python, as TensorFlow ports do: the tracer fixes numbers
+    taken from shapes, which is right for the shape it was traced at."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, stride=2)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        ih, iw = x.size()[-2:]
+        ph = max((math.ceil(ih / 2) - 1) * 2 + 3 - ih, 0)
+        pw = max((math.ceil(iw / 2) - 1) * 2 + 3 - iw, 0)
+        x = F.pad(x, [pw // 2, pw - pw // 2, ph // 2, ph - ph // 2])
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+def _spliced(net: nn.Module):
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)  # SamePadNet's sizes stop torch.fx: hooks it is
+        return splice.insert(net, at="input", input_shape=(3, 16, 16), leaves=["Gate"])
+
+
+def test_a_branch_on_values_is_found_and_the_export_it_fixes_is_refused(tmp_path):
+    import onnxruntime as ort
+
+    spliced = _spliced(GatedNet())
+    assert value_branch(spliced, torch.randn(2, 3, 16, 16))[0] == "values"
+    # the reference: the graph the tracer writes answers a bright image with the probe's branch
+    data = export_onnx_bytes(spliced, torch.randn(2, 3, 16, 16), dynamic_batch=True)
+    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
+    bright = torch.full((2, 3, 16, 16), 5.0)
+    with torch.no_grad():
+        expected = spliced(bright).numpy()
+    got = session.run(None, {session.get_inputs()[0].name: bright.numpy()})[0]
+    assert np.abs(got - expected).max() > 1.0
+    report = splice.verify(spliced, onnx=True)
+    row = next(c for c in report.checks if c.check == "onnx")
+    assert not row.passed and "Python branch or number from tensor values at test_export_branches.py:" in row.detail
+    assert "torch.where" in row.detail
+    target = tmp_path / "gated.onnx"
+    with pytest.raises(CheckFailed, match=r"from tensor values at test_export_branches\.py:\d+.*torch\.where"):
+        splice.export(spliced, onnx=target)
+    assert not target.exists()
+
+
+def test_numbers_the_tracer_takes_from_shapes_pass_and_are_named():
+    spliced = _spliced(SamePadNet())
+    assert value_branch(spliced, torch.randn(2, 3, 16, 16)) == ("shapes", "")
+    report = splice.verify(spliced, onnx=True)
+    row = next(c for c in report.checks if c.check == "onnx")
+    assert row.passed, row.detail
+    assert "from shapes only" in row.detail
