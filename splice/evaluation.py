@@ -416,7 +416,9 @@ def _tally(models, ds, n: int, conditions, classes: list[str], data: str, option
             for role, name, source, net in models:
                 param = next(iter(net.parameters()), None)
                 dtype = param.dtype if param is not None else torch.float32
-                out = net(normalise(x, source.normalisation).to(device=dev, dtype=dtype))
+                fed = normalise(x, source.normalisation).to(device=dev, dtype=dtype)
+                # a forward may normalise its input in place: the next model and condition get the images
+                out = net(fed.clone() if fed.data_ptr() == x.data_ptr() else fed)
                 logits = class_logits(out)
                 if logits is None:
                     logits_or_refuse(out, f"model {name}")  # says what it returns instead

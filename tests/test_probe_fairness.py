@@ -79,3 +79,15 @@ def test_a_warp_that_moves_is_still_caught_under_the_same_draws():
         warp.head.fc2.bias.add_(torch.tensor([0.0, 0.0, 0.3, 0.0, 0.0, 0.0]))  # a shift of 0.3 half-widths
     report = splice.verify(spliced)
     assert not report.passed and not _rows(report)["warps"]
+
+
+def test_eval_gives_each_model_and_condition_the_images_themselves():
+    torch.manual_seed(0)
+    base = InPlaceNormNet()
+    base.head = nn.Linear(4, 10)  # the digits' ten classes
+    result = splice.evaluate(base, data="digits", against=base, distort="rotate=0",
+                             model_options=splice.ModelOptions(input_shape=(1, 16, 16)))
+    mine, theirs = result, result["against"]
+    assert mine["clean"] == theirs["clean"]  # the second model used to get the first's normalised images
+    assert mine["sweeps"]["rotate"][0]["accuracy"] == mine["clean"]["accuracy"]
+    assert mine["sweeps"]["rotate"][0]["loss"] == pytest.approx(mine["clean"]["loss"], rel=1e-6)
