@@ -129,6 +129,21 @@ def test_missing_unexpected_and_mismatched_keys_are_named(tmp_path):
         load_source("splice.models:tray_net", weights=path)
 
 
+def test_a_checkpoint_without_batch_counters_loads_as_torch_loads_it(tmp_path):
+    # reference: torch's own strict load_state_dict accepts a state dict without num_batches_tracked (older
+    # checkpoints, hand-built ones), filling the counter in; the running statistics are what count
+    from splice.models import tray_net
+
+    state = {k: v for k, v in _small_state().items() if not k.endswith("num_batches_tracked")}
+    reference = tray_net()
+    reference.load_state_dict(state, strict=True)
+    path = tmp_path / "old_bn.pt"
+    torch.save(state, path)
+    model = load_source("splice.models:tray_net", weights=path).model
+    for key, value in reference.state_dict().items():
+        assert torch.equal(model.state_dict()[key], value), key
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

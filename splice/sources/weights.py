@@ -257,7 +257,8 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
         kinds = sorted({str(state[k].dtype).replace("torch.", "") for k in cast})
         warnings.warn(f"{where} holds {len(cast)} tensor(s) in {', '.join(kinds)}; they are cast to the model's "
                       f"{str(own[cast[0]].dtype).replace('torch.', '')} on load", SpliceWarning, stacklevel=2)
-    missing = [k for k in own if k not in state]
+    # a batch norm's batch counter is left out of older checkpoints; torch's own strict load accepts that too
+    missing = [k for k in own if k not in state and k.rsplit(".", 1)[-1] != "num_batches_tracked"]
     unexpected = [k for k in state if k not in own]
     mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]
     matched = len(own) - len(missing) - len(mismatched)
