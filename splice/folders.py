@@ -26,7 +26,7 @@ from pathlib import Path
 from .errors import SpliceError
 
 __all__ = ["MANIFEST_FILE", "FOLDER_FORMAT", "RUN_FILE", "RUN_FORMAT", "LOCK_FILE", "FolderBusy",
-           "FolderLock", "folder_kind", "lock_holder", "check_replaceable"]
+           "FolderLock", "folder_kind", "lock_holder", "check_replaceable", "check_keeps_inputs"]
 
 MANIFEST_FILE = "splice.json"
 FOLDER_FORMAT = "splice-folder"
@@ -215,3 +215,19 @@ def check_replaceable(target: str | os.PathLike) -> None:
         f"--overwrite replaces only a spliced folder (with {MANIFEST_FILE}) or a run folder (with {RUN_FILE}), "
         f"but '{target}' holds {_listing(target)}; choose another output folder or remove it yourself"
     )
+
+
+def check_keeps_inputs(target: str | os.PathLike, inputs) -> None:
+    """Raise when replacing ``target`` would delete one of ``inputs``: a model spec (a folder, a file, or the file of
+    ``path/file.py:factory``) or a weights file the command reads, at or inside ``target``."""
+    out = Path(target).resolve()
+    for given in inputs:
+        if given is None or not isinstance(given, (str, os.PathLike)):
+            continue
+        text = os.fspath(given)
+        candidates = [text] + ([text.rsplit(":", 1)[0]] if ":" in text else [])
+        for candidate in candidates:
+            path = Path(candidate)
+            if path.exists() and (path.resolve() == out or out in path.resolve().parents):
+                raise SpliceError(f"--overwrite would delete '{target}', which holds '{text}', read by this command; "
+                                  "choose another output folder")

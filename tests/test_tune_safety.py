@@ -379,6 +379,24 @@ def test_overwrite_replaces_a_spliced_folder_a_run_folder_or_an_empty_one(tmp_pa
         splice.save(splice.load(target), target)
 
 
+def test_overwrite_never_deletes_what_the_command_reads(tmp_path, spliced_folder, capsys):
+    import shutil
+
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "run.json").write_text(json.dumps({"format": "splice-run", "schema_version": 1}))
+    shutil.copytree(spliced_folder, run / "best")
+    argv = ["insert", str(run / "best"), "--at", "input", "--out", str(run), "--overwrite"]
+    assert cli.main(argv) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "would delete" in err[0] and "read by this command" in err[0], err
+    assert (run / "best" / "splice.json").is_file() and (run / "run.json").is_file()
+    weights = run / "w.pt"
+    torch.save({}, weights)
+    assert _insert(run, "--weights", str(weights), "--overwrite") == 2
+    assert "would delete" in capsys.readouterr().err and weights.is_file()
+
+
 # ----------------------------------------------------------------------------- pre-training resume
 
 
