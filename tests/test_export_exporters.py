@@ -78,3 +78,15 @@ def test_verify_checks_with_the_exporter_asked_for_and_reports_its_failure_as_a_
     monkeypatch.setattr(parity, "export_onnx_bytes", failing)
     report = splice.verify(tray_folder, onnx=True, exporter="dynamo", opset=18)  # a failed row, not a raise
     assert not report.passed and report.failed == ["onnx"] and "no col2im" in report["onnx"].detail
+
+
+def test_an_export_replaces_an_earlier_export_but_no_other_file(tray_folder, tmp_path):
+    victim = tmp_path / "train.py"
+    victim.write_text("print('my training script')\n")
+    with pytest.raises(SpliceError, match=r"exists and is not a \.onnx file, so it is not replaced"):
+        export(str(tray_folder), onnx=victim)
+    assert victim.read_text() == "print('my training script')\n"
+    earlier = tmp_path / "model.onnx"
+    earlier.write_bytes(b"an earlier export")
+    export(str(tray_folder), onnx=earlier)
+    assert earlier.read_bytes() != b"an earlier export"

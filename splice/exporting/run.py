@@ -104,8 +104,9 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
     whose graph depends on the batch size gets a static export of batch 1
     instead, with a :class:`~splice.errors.SpliceWarning` (``dynamic_batch=False``,
     ``--static-batch``, asks for that directly). A failed check raises
-    :class:`~splice.errors.CheckFailed` and writes nothing. An existing file
-    at the target is replaced atomically.
+    :class:`~splice.errors.CheckFailed` and writes nothing. An existing
+    ``.onnx`` / ``.pt2`` file at the target is replaced atomically; an existing
+    file of any other name is refused.
 
     Returns ``{"exports": [{"path", "format", "sha256", "seconds", "max_abs",
     "max_rel", "max_abs_perturbed", "max_rel_perturbed", "tolerance",
@@ -141,9 +142,13 @@ def _check_targets(onnx, pt2, opset: int, exporter: str) -> None:
         raise SpliceError("export needs a target: onnx=FILE (--onnx FILE) and/or pt2=FILE (--pt2 FILE)")
     if onnx is not None:
         check_opset(opset, exporter)
-    for target in (onnx, pt2):
+    for target, suffix in ((onnx, ".onnx"), (pt2, ".pt2")):
         if target is not None and Path(target).is_dir():
-            raise SpliceError(f"export target '{target}' is a folder; give a file name such as model.onnx")
+            raise SpliceError(f"export target '{target}' is a folder; give a file name such as model{suffix}")
+        # an earlier export is replaced; a file of another kind (a typo'd source file, a checkpoint) is not
+        if target is not None and Path(target).exists() and Path(target).suffix.lower() != suffix:
+            raise SpliceError(f"export target '{target}' exists and is not a {suffix} file, so it is not replaced; "
+                              f"give a file name ending in {suffix}, or move that file away")
 
 
 def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bool, exporter: str, seed: int,
