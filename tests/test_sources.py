@@ -144,6 +144,25 @@ def test_a_checkpoint_without_batch_counters_loads_as_torch_loads_it(tmp_path):
         assert torch.equal(model.state_dict()[key], value), key
 
 
+def test_a_folder_records_its_model_file_by_absolute_path(tmp_path, monkeypatch):
+    import splice
+
+    project = tmp_path / "project"
+    project.mkdir()
+    (project / "mynet.py").write_text(textwrap.dedent("""
+        import torch.nn as nn
+        def build():
+            return nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 2, 3, padding=1))
+        build.input_shape = (3, 16, 16)
+    """))
+    monkeypatch.chdir(project)
+    src = load_source("mynet.py:build")
+    assert src.spec == f"{project / 'mynet.py'}:build"
+    splice.save(splice.insert(src, at="input"), tmp_path / "spliced")
+    monkeypatch.chdir(tmp_path)  # read from elsewhere, as a colleague or a CI job would
+    assert splice.load(tmp_path / "spliced", trust_code=True).splice_info.point_names == ["input"]
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

@@ -27,7 +27,7 @@ from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
-__all__ = ["build_model", "IMAGENET_NORMALISATION"]
+__all__ = ["build_model", "absolute_spec", "IMAGENET_NORMALISATION"]
 
 IMAGENET_NORMALISATION = {"mean": [0.485, 0.456, 0.406], "std": [0.229, 0.224, 0.225]}
 _TORCHVISION_DEFAULT_SHAPES = {"inception_v3": (3, 299, 299)}
@@ -45,8 +45,21 @@ def _torchvision_builder(name: str):
     return tvm.get_model_builder(name)
 
 
+def _is_file_head(head: str) -> bool:
+    return head.endswith(".py") or os.sep in head or "/" in head
+
+
+def absolute_spec(spec: str) -> str:
+    """``path/file.py:factory`` with the file's absolute path (a folder records it, and is read from anywhere);
+    any other spec as it is."""
+    head, sep, attr = spec.rpartition(":")
+    if not sep or not _is_file_head(head) or not Path(head).is_file():
+        return spec
+    return f"{Path(head).resolve()}:{attr}"
+
+
 def _import_factory(head: str, attr: str, spec: str):
-    if head.endswith(".py") or os.sep in head or "/" in head:
+    if _is_file_head(head):
         path = Path(head)
         if not path.is_file():
             raise SourceError(f"model file '{path}' does not exist (from spec {spec!r}); check the path")

@@ -13,7 +13,7 @@ from torch import nn
 
 from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
-from .builders import build_model
+from .builders import absolute_spec, build_model
 from .empty import initialisers_skipped
 from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
@@ -145,8 +145,8 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
         where = ("neither preprocessor_config.json nor the config gives an image size"
                  if spec.startswith("transformers:") else "or set factory.input_shape = (C, H, W)")
         raise SourceError(f"cannot tell the input shape of {spec}; pass --input-shape CxHxW (input_shape=...); {where}")
-    return Source(model=model, spec=spec, kwargs=kw, input_shape=first,
-                  weights_path=str(weights) if weights is not None else None,
+    return Source(model=model, spec=spec if origin is not None else absolute_spec(spec), kwargs=kw,
+                  input_shape=first, weights_path=str(weights) if weights is not None else None,
                   weights_sha256=state_dict_sha256(model.state_dict()) if hashed else None,
                   normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
