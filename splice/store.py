@@ -28,13 +28,13 @@ from torch import nn
 
 from .copies import rng_kept
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256
-from .errors import IntegrityError, ManifestError, SpliceError, WeightsError
+from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
 from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)
 from .version import library_versions
 from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped,
-                      is_hf_folder, load_source, parse_input_shapes, read_safetensors, with_metadata)
+                      is_hf_folder, load_source, parse_input_shapes, parse_kwargs, read_safetensors, with_metadata)
 from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
@@ -457,6 +457,23 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
     )
 
 
+def _folder_source(folder, weights, kwargs, input_shape, *, trust_pickle: bool, trust_code: bool) -> Source:
+    """:func:`load_folder_source`, refusing the options a folder settles itself rather than ignoring them."""
+    src = load_folder_source(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+    # a resumed run passes back the folder's own builder arguments, which are not ignored but the same
+    other_kwargs = bool(kwargs) and parse_kwargs(kwargs) != dict(src.kwargs)
+    given = "--weights (weights=)" if weights is not None else "--kwargs (kwargs=)" if other_kwargs else None
+    if given is not None:
+        raise SourceError(f"'{folder}' is a folder splice wrote: it carries its own weights and builder arguments, "
+                          f"so {given} would be ignored; drop it, or splice the model spec with those weights")
+    shapes = parse_input_shapes(input_shape)
+    if shapes and tuple(shapes[0]) != tuple(src.input_shape):
+        recorded = "x".join(map(str, src.input_shape))
+        raise SourceError(f"'{folder}' takes {recorded} images (its splice.json records them), not "
+                          f"{'x'.join(map(str, shapes[0]))}; drop --input-shape")
+    return src
+
+
 def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapping | str | None = None,
                 input_shape: str | Sequence[int] | None = None, leaves: Sequence[str] = (),
                 trust_pickle: bool = False, allow_partial: bool = False, warn_random: bool = True,
@@ -472,9 +489,7 @@ def open_source(thing, *, weights: str | os.PathLike | None = None, kwargs: Mapp
     >>> src = open_source("out/r18-affine")   # doctest: +SKIP
     """
     if isinstance(thing, (str, os.PathLike)) and Path(thing).is_dir() and not is_hf_folder(thing):
-        shapes = parse_input_shapes(input_shape)
-        return load_folder_source(thing, input_shape=shapes[0] if shapes else None, trust_pickle=trust_pickle,
-                                  trust_code=trust_code)
+        return _folder_source(thing, weights, kwargs, input_shape, trust_pickle=trust_pickle, trust_code=trust_code)
     spliced = source_of_spliced(thing, input_shape) if isinstance(thing, nn.Module) else None
     if spliced is not None:
         return spliced

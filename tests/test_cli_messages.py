@@ -137,3 +137,23 @@ def test_main_gives_a_python_caller_its_warning_filters_and_printer_back(tmp_pat
         before, printer = list(warnings.filters), warnings.showwarning
         assert main(["points", "splice.models:tray_net"]) == 0
         assert warnings.filters == before and warnings.showwarning is printer
+
+
+def test_options_a_folder_settles_itself_are_refused_not_ignored(tmp_path, capsys):
+    """A folder carries its weights, builder arguments and input shape: --weights, --kwargs or another
+    --input-shape given with one used to be dropped without a word (eval ran the folder's own weights)."""
+    import torch
+
+    folder = tmp_path / "spliced"
+    splice.save(splice.insert("splice.models:tray_net", at="input", warp=splice.WarpConfig(head_width=4)), folder)
+    weights = tmp_path / "other.pt"
+    torch.save({}, weights)
+    base = ["eval", str(folder), "--data", "digits", "--distort", "none"]
+    for extra, needle in ((["--weights", str(weights)], "so --weights (weights=) would be ignored"),
+                          (["--kwargs", '{"width": 4}'], "so --kwargs (kwargs=) would be ignored"),
+                          (["--input-shape", "1x64x64"], "takes 1x48x48 images (its splice.json records them), "
+                                                         "not 1x64x64; drop --input-shape")):
+        assert main([*base, *extra]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and needle in err[0], err
+    assert main([*base, "--input-shape", "1x48x48"]) == 0  # the folder's own shape is no conflict
