@@ -163,6 +163,28 @@ def test_a_folder_records_its_model_file_by_absolute_path(tmp_path, monkeypatch)
     assert splice.load(tmp_path / "spliced", trust_code=True).splice_info.point_names == ["input"]
 
 
+def test_a_model_file_imports_what_lies_beside_it_and_its_errors_are_its_own(tmp_path, capsys):
+    nets = tmp_path / "nets"
+    nets.mkdir()
+    (nets / "blocks_of_mine.py").write_text("import torch.nn as nn\ndef stem():\n    return nn.Conv2d(3, 4, 3)\n")
+    (nets / "model.py").write_text(textwrap.dedent("""
+        import torch.nn as nn
+        from blocks_of_mine import stem  # beside this file, as `python model.py` would find it
+        def build():
+            return nn.Sequential(stem(), nn.ReLU())
+        def broken():
+            raise RuntimeError("no camera calibration found")
+        build.input_shape = broken.input_shape = (3, 16, 16)
+    """))
+    before = list(sys.path)
+    assert load_source(f"{nets / 'model.py'}:build").model[0].out_channels == 4
+    assert sys.path == before  # the folder was importable while the file ran, and only then
+    assert main(["points", f"{nets / 'model.py'}:broken"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "raised RuntimeError: no camera calibration found; fix the factory" in err[0], err
+    assert "internal error" not in err[0]
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

@@ -9,6 +9,7 @@ starts from random init and weights come separately
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import importlib
 import importlib.util
@@ -21,7 +22,7 @@ from typing import Any
 
 from torch import nn
 
-from ..errors import SourceError, suggest
+from ..errors import SourceError, first_line, suggest
 from .huggingface import build_transformers
 from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
 from .timm import build_timm
@@ -58,6 +59,22 @@ def absolute_spec(spec: str) -> str:
     return f"{Path(head).resolve()}:{attr}"
 
 
+@contextlib.contextmanager
+def _folder_importable(path: Path | None):
+    """``path``'s folder at the end of ``sys.path`` for the block (unless it is there already), as ``python
+    file.py`` would make it: a model file may import the modules beside it. Appended, so nothing installed is
+    shadowed, and taken out again after."""
+    folder = None if path is None else str(path.resolve().parent)
+    added = folder is not None and folder not in sys.path
+    if added:
+        sys.path.append(folder)
+    try:
+        yield
+    finally:
+        if added and folder in sys.path:
+            sys.path.remove(folder)
+
+
 def _import_factory(head: str, attr: str, spec: str):
     if _is_file_head(head):
         path = Path(head)
@@ -73,7 +90,8 @@ def _import_factory(head: str, attr: str, spec: str):
             module = importlib.util.module_from_spec(loader_spec)
             sys.modules[mod_name] = module
             try:
-                loader_spec.loader.exec_module(module)
+                with _folder_importable(path):
+                    loader_spec.loader.exec_module(module)
             except Exception as exc:
                 del sys.modules[mod_name]
                 raise SourceError(f"importing '{path}' failed: {type(exc).__name__}: {exc}") from exc
@@ -83,7 +101,8 @@ def _import_factory(head: str, attr: str, spec: str):
         except ImportError as exc:
             raise SourceError(
                 f"cannot import module {head!r} from spec {spec!r} ({exc}); "
-                "is the package installed, or did you mean a path like path/to/file.py:factory?"
+                "is the package installed (or its folder on PYTHONPATH), or did you mean a path like "
+                "path/to/file.py:factory?"
             ) from None
     factory = getattr(module, attr, None)
     if factory is None or not callable(factory):
@@ -150,9 +169,16 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
     meta: dict[str, Any] = {"input_shape": None, "normalisation": None, "declares_normalisation": False}
     factory = _import_factory(head, attr, spec)
     try:
-        model = factory(**kwargs)
+        with _folder_importable(Path(head) if _is_file_head(head) else None):
+            model = factory(**kwargs)
     except TypeError as exc:
-        raise SourceError(f"{spec} does not accept --kwargs {kwargs}: {exc}") from None
+        if kwargs:
+            raise SourceError(f"{spec} does not accept --kwargs {kwargs}: {exc}") from None
+        raise SourceError(f"building {spec} raised TypeError: {first_line(exc)}; fix the factory (run it in Python "
+                          "to see where)") from exc
+    except Exception as exc:  # the user's own code: say where it came from, not "internal error"
+        raise SourceError(f"building {spec} raised {type(exc).__name__}: {first_line(exc)}; fix the factory (run "
+                          "it in Python to see where)") from exc
     if not isinstance(model, nn.Module):
         raise SourceError(f"{spec} returned {type(model).__name__}, not a torch.nn.Module")
     declared = getattr(factory, "input_shape", None) or getattr(model, "input_shape", None)
