@@ -185,6 +185,33 @@ def test_a_model_file_imports_what_lies_beside_it_and_its_errors_are_its_own(tmp
     assert "internal error" not in err[0]
 
 
+@pytest.mark.parametrize("wrapper", ["torch.compile", "nn.DataParallel"])
+def test_a_factory_that_wraps_its_model_gives_the_module_it_wraps(tmp_path, wrapper):
+    """A training script's factory often returns its model compiled or data-parallel; the checkpoint holds the
+    plain module's names (no _orig_mod. / module.), and a folder rebuilds it the same way."""
+    import splice
+    from splice.errors import SpliceWarning
+
+    (tmp_path / "wrapped.py").write_text(textwrap.dedent(f"""
+        import torch
+        import torch.nn as nn
+        def build():
+            net = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 2, 3, padding=1))
+            return {wrapper}(net)
+        build.input_shape = (3, 16, 16)
+    """))
+    plain = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 2, 3, padding=1))
+    torch.save(plain.state_dict(), tmp_path / "w.pt")
+    spec = f"{tmp_path / 'wrapped.py'}:build"
+    with pytest.warns(SpliceWarning, match="splice works on the module it"):
+        src = load_source(spec, weights=tmp_path / "w.pt")
+    assert isinstance(src.model, nn.Sequential)
+    assert torch.equal(src.model[0].weight, plain[0].weight)
+    splice.save(splice.insert(src, at="input"), tmp_path / "spliced")
+    with pytest.warns(SpliceWarning, match="splice works on the module it"):
+        assert splice.verify(tmp_path / "spliced", trust_code=True).passed
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

@@ -22,13 +22,13 @@ from typing import Any
 
 from torch import nn
 
-from ..errors import SourceError, first_line, suggest
+from ..errors import SourceError, SpliceWarning, first_line, suggest
 from .huggingface import build_transformers
 from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
-__all__ = ["build_model", "absolute_spec", "IMAGENET_NORMALISATION"]
+__all__ = ["build_model", "absolute_spec", "uncompiled", "IMAGENET_NORMALISATION"]
 
 IMAGENET_NORMALISATION = {"mean": [0.485, 0.456, 0.406], "std": [0.229, 0.224, 0.225]}
 _TORCHVISION_DEFAULT_SHAPES = {"inception_v3": (3, 299, 299)}
@@ -111,6 +111,36 @@ def _import_factory(head: str, attr: str, spec: str):
     return factory
 
 
+def uncompiled(model: nn.Module) -> nn.Module:
+    """The module a ``torch.compile`` or ``DataParallel`` wrapper holds, with a warning, when ``model`` is one (at
+    any depth of such wrappers); else ``model``.
+
+    A compiled forward is code neither torch.fx nor a meta-device run can follow, a data-parallel one splits the
+    batch, and the warps need the module's own Python forward; its checkpoints also lack the wrapper's
+    ``_orig_mod.`` / ``module.`` prefix. The wrapped module holds the same parameters.
+    """
+    from torch.nn.parallel import DataParallel, DistributedDataParallel
+
+    inner = model
+    while True:
+        wrapped = (inner._modules.get("_orig_mod") if type(inner).__name__ == "OptimizedModule" else
+                   inner._modules.get("module") if isinstance(inner, (DataParallel, DistributedDataParallel)) else
+                   None)
+        if not isinstance(wrapped, nn.Module):
+            break
+        inner = wrapped
+    if inner is model:
+        return model
+    if type(model).__name__ == "OptimizedModule":
+        warnings.warn(f"a torch.compile'd {type(inner).__name__}: splice works on the module it compiled (the same "
+                      "weights); compile the spliced model again to run it compiled", SpliceWarning, stacklevel=3)
+    else:
+        warnings.warn(f"a {type(model).__name__}-wrapped {type(inner).__name__}: splice works on the module it "
+                      "wraps (the same weights); wrap the spliced model again to run it so", SpliceWarning,
+                      stacklevel=3)
+    return inner
+
+
 def _torchvision_kwargs(builder, kwargs: dict) -> dict:
     """``kwargs`` with ``weights=None``, and ``weights_backbone=None`` when the builder takes a backbone."""
     import inspect
@@ -181,6 +211,7 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
                           "it in Python to see where)") from exc
     if not isinstance(model, nn.Module):
         raise SourceError(f"{spec} returned {type(model).__name__}, not a torch.nn.Module")
+    model = uncompiled(model)  # here, so that a folder's rebuild unwraps it too
     declared = getattr(factory, "input_shape", None) or getattr(model, "input_shape", None)
     if declared is not None:
         meta["input_shape"] = parse_input_shape(declared)

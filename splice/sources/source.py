@@ -13,7 +13,7 @@ from torch import nn
 
 from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
-from .builders import absolute_spec, build_model
+from .builders import absolute_spec, build_model, uncompiled
 from .empty import initialisers_skipped
 from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
@@ -207,20 +207,6 @@ def _refuse_quantized(model: nn.Module, what: str) -> None:
             where = f"its module '{name}' ({type(m).__name__})" if name else "it"
             raise SourceError(f"{what}: {where} is quantized (int8 kernels pass no gradient to train a warp "
                               "with); splice and tune the float model, then quantize the result")
-
-
-def uncompiled(model: nn.Module) -> nn.Module:
-    """The module ``torch.compile`` wrapped, when ``model`` is that wrapper, with a warning; else ``model``.
-
-    The wrapper's forward is compiled code that neither torch.fx nor a meta-device run can follow, and the
-    warps need the module's own Python forward. The wrapped module holds the same parameters.
-    """
-    inner = model._modules.get("_orig_mod") if type(model).__name__ == "OptimizedModule" else None
-    if not isinstance(inner, nn.Module):
-        return model
-    warnings.warn(f"a torch.compile'd {type(inner).__name__}: splice works on the module it compiled (the same "
-                  "weights); compile the spliced model again to run it compiled", SpliceWarning, stacklevel=3)
-    return inner
 
 
 def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
