@@ -37,7 +37,7 @@ from torch.nn import functional as F
 
 from .compare import class_logits, logits_or_refuse
 from .errors import DataError, SpliceError, suggest
-from .options import ModelOptions, split_keywords
+from .options import ModelOptions, load_against, split_keywords
 
 __all__ = [
     "improved",
@@ -359,27 +359,6 @@ def evaluate_keywords(model, *, data: str, split: str = "test", against=None, di
                     model_options=model_options, options=options, against_options=against_options)
 
 
-# the opt-ins a refusal of ``against`` names, as the user gives them for that model
-_AGAINST_OPT_INS = (("--trust-code", "--against-trust-code"), ("trust_code=True", "against_trust_code=True"),
-                    ("--trust-pickle", "--against-trust-pickle"), ("trust_pickle=True", "against_trust_pickle=True"))
-
-
-def _load_against(against, options: ModelOptions, default_input_shape):
-    try:
-        return options.load(against, default_input_shape=default_input_shape)
-    except SpliceError as exc:
-        text = str(exc)
-        for mine, theirs in _AGAINST_OPT_INS:
-            text = text.replace(mine, theirs)
-        if text == str(exc):
-            raise
-        try:
-            again = type(exc)(f"--against: {text}")
-        except TypeError:  # an error class that takes more than a message
-            again = SpliceError(f"--against: {text}")
-        raise again from exc
-
-
 def _load_models(model, against, model_options: ModelOptions, against_options: ModelOptions, dev) -> list[tuple]:
     """``[(role, label, source, module on dev in eval mode)]`` for the model and ``against``."""
     src = model_options.load(model)
@@ -390,7 +369,7 @@ def _load_models(model, against, model_options: ModelOptions, against_options: M
         other = ModelOptions(input_shape=src.input_shape if isinstance(against, nn.Module) else None,
                              trust_pickle=against_options.trust_pickle, trust_code=against_options.trust_code)
         # both models see the same preprocessed images: a second model that declares no shape takes the first's
-        src2 = _load_against(against, other, src.input_shape)
+        src2 = load_against(against, other, src.input_shape)
         if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
             raise DataError(
                 f"the two models take different inputs ({'x'.join(map(str, src.input_shape))} and "

@@ -15,7 +15,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["ModelOptions", "split_keywords"]
+from .errors import SpliceError
+
+__all__ = ["ModelOptions", "split_keywords", "load_against"]
 
 
 @dataclass(frozen=True)
@@ -83,3 +85,26 @@ def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: st
         raise TypeError(f"{where}() got unexpected keyword argument(s) {', '.join(sorted(left))}; "
                         f"it takes {', '.join(allowed)}")
     return out
+
+
+# the opt-ins a refusal of ``against`` names, as the user gives them for that model
+_AGAINST_OPT_INS = (("--trust-code", "--against-trust-code"), ("trust_code=True", "against_trust_code=True"),
+                    ("--trust-pickle", "--against-trust-pickle"), ("trust_pickle=True", "against_trust_pickle=True"))
+
+
+def load_against(against, options: ModelOptions, default_input_shape):
+    """``options.load(against)`` for the second model of a comparison (``--against MODEL2``); a refusal names the
+    opt-ins that model takes (``--against-trust-code``, ...), not the first model's."""
+    try:
+        return options.load(against, default_input_shape=default_input_shape)
+    except SpliceError as exc:
+        text = str(exc)
+        for mine, theirs in _AGAINST_OPT_INS:
+            text = text.replace(mine, theirs)
+        if text == str(exc):
+            raise
+        try:
+            again = type(exc)(f"--against: {text}")
+        except TypeError:  # an error class that takes more than a message
+            again = SpliceError(f"--against: {text}")
+        raise again from exc
