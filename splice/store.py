@@ -33,8 +33,9 @@ from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)
 from .version import library_versions
-from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_spec, initialisers_skipped,
-                      is_hf_folder, load_source, parse_input_shapes, parse_kwargs, read_safetensors, with_metadata)
+from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_fits, check_spec,
+                      initialisers_skipped, is_hf_folder, load_source, parse_input_shapes, parse_kwargs,
+                      read_safetensors, with_metadata)
 from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
@@ -218,7 +219,8 @@ def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
         model = _rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code)
-        check_dtypes(model.state_dict(), base_state, "the folder's weights")
+        check_fits(model.state_dict(), base_state, f"the weights of '{info.folder}'",
+                   "the model's code changed since the splice: build it as it was, or splice it again")
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
@@ -251,16 +253,8 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     from .warps import Warp
 
     own = model.state_dict(keep_vars=True)
-    missing = sorted(set(own) - set(state))
-    unexpected = sorted(set(state) - set(own))
-    wrong = sorted(k for k in own if k in state and tuple(own[k].shape) != tuple(state[k].shape))
-    if missing or unexpected or wrong:
-        raise WeightsError(
-            f"'{folder}' weights do not fit the architecture in its manifest "
-            f"(missing {missing[:4]}, unexpected {unexpected[:4]}, wrong shape {wrong[:4]}); "
-            "the folder was written by an incompatible version or edited by hand"
-        )
-    check_dtypes(own, state, f"'{folder}'")
+    check_fits(own, state, f"the weights of '{folder}'", "the folder was edited by hand or written by an "
+               "incompatible version, or the model's code changed since the splice")
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:

@@ -398,3 +398,27 @@ def test_load_verify_and_export_leave_the_callers_random_numbers_alone(tmp_path,
     torch.manual_seed(7)
     run()
     assert torch.equal(torch.rand(4), want)  # the next draw is the one it would have been
+
+
+def test_a_model_file_changed_since_the_splice_is_named_in_one_line(tmp_path, capsys):
+    from splice.cli import main
+
+    model_file = tmp_path / "mine.py"
+    code = ("import torch.nn as nn\n"
+            "def build():\n"
+            "    return nn.Sequential(nn.Conv2d(3, {w}, 3, padding=1), nn.ReLU(), nn.Conv2d({w}, 2, 3, padding=1))\n"
+            "build.input_shape = (3, 16, 16)\n")
+    model_file.write_text(code.format(w=4))
+    splice.save(splice.insert(f"{model_file}:build", at="input"), tmp_path / "spliced")
+    model_file.write_text(code.format(w=8))  # someone widened the layer afterwards
+    import sys
+
+    from splice.sources.specs import FILE_MODULE_PREFIX
+
+    for name in [n for n in sys.modules if n.startswith(FILE_MODULE_PREFIX)]:  # a new process, as the CLI runs
+        del sys.modules[name]
+    assert main(["verify", str(tmp_path / "spliced"), "--trust-code"]) == 2
+    err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+    assert len(err) == 1 and "internal error" not in err[0], err
+    assert "wrong shape 3: 0.weight (4, 3, 3, 3) vs (8, 3, 3, 3)" in err[0]
+    assert "the model's code changed since the splice" in err[0]

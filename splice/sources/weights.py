@@ -28,6 +28,7 @@ __all__ = [
     "with_metadata",
     "check_finite",
     "check_dtypes",
+    "check_fits",
     "load_weights_",
     "WRAPPER_PREFIXES",
     "NESTING_KEYS",
@@ -244,6 +245,31 @@ def check_dtypes(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tens
     return [k for k in common if state[k].dtype != own[k].dtype]
 
 
+def _differences(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], missing, unexpected,
+                 mismatched) -> str:
+    parts = []
+    if missing:
+        parts.append(f"missing {len(missing)}: {_names(missing)}")
+    if unexpected:
+        parts.append(f"unexpected {len(unexpected)}: {_names(unexpected)}")
+    if mismatched:
+        shapes = [f"{k} {tuple(state[k].shape)} vs {tuple(own[k].shape)}" for k in mismatched[:4]]
+        parts.append(f"wrong shape {len(mismatched)}: {'; '.join(shapes)}")
+    return "; ".join(parts)
+
+
+def check_fits(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], where: str, advice: str) -> None:
+    """Refuse, in one line ending in ``advice``, a ``state`` whose names or shapes are not exactly ``own``'s, and
+    integer tensors where ``own`` holds floating point (:func:`check_dtypes`)."""
+    missing = [k for k in own if k not in state]
+    unexpected = [k for k in state if k not in own]
+    mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]
+    if missing or unexpected or mismatched:
+        raise WeightsError(f"{where} do not fit the network its spec builds now "
+                           f"({_differences(own, state, missing, unexpected, mismatched)}); {advice}")
+    check_dtypes(own, state, where)
+
+
 def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_partial: bool = False,
                   where: str = "weights", spec: str = "the model") -> dict[str, list[str]]:
     """Load ``state`` into ``model`` in place after checking names and shapes.
@@ -269,16 +295,8 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
             "these look like weights for another architecture — check the model spec and --kwargs"
         )
     if (missing or unexpected or mismatched) and not allow_partial:
-        parts = []
-        if missing:
-            parts.append(f"missing {len(missing)}: {_names(missing)}")
-        if unexpected:
-            parts.append(f"unexpected {len(unexpected)}: {_names(unexpected)}")
-        if mismatched:
-            shapes = [f"{k} {tuple(state[k].shape)} vs {tuple(own[k].shape)}" for k in mismatched[:4]]
-            parts.append(f"wrong shape {len(mismatched)}: {'; '.join(shapes)}")
         raise WeightsError(
-            f"{where} does not match {spec} ({'; '.join(parts)}); "
+            f"{where} does not match {spec} ({_differences(own, state, missing, unexpected, mismatched)}); "
             "pass --allow-partial (allow_partial=True) to load only the tensors that fit"
         )
     usable = with_metadata(model, state)
