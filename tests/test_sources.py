@@ -212,6 +212,21 @@ def test_a_factory_that_wraps_its_model_gives_the_module_it_wraps(tmp_path, wrap
         assert splice.verify(tmp_path / "spliced", trust_code=True).passed
 
 
+def test_a_pickled_module_whose_class_is_gone_says_so(tmp_path, monkeypatch):
+    code = tmp_path / "code"
+    code.mkdir()
+    (code / "traycam_net.py").write_text("import torch.nn as nn\nclass Net(nn.Sequential):\n    pass\n")
+    monkeypatch.syspath_prepend(str(code))
+    import traycam_net
+
+    torch.save(traycam_net.Net(nn.Conv2d(3, 4, 3)), tmp_path / "whole.pt")
+    monkeypatch.delitem(sys.modules, "traycam_net")
+    monkeypatch.setattr(sys, "path", [p for p in sys.path if p != str(code)])
+    with pytest.raises(WeightsError, match=r"holds a pickled object whose class cannot be found \(No module named "
+                                           r"'traycam_net'\); run from the folder that holds its code"):
+        load_source(str(tmp_path / "whole.pt"), trust_pickle=True, input_shape=(3, 8, 8))
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

@@ -20,7 +20,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..errors import SpliceWarning, UnsafeCheckpointError, WeightsError
+from ..errors import SpliceWarning, UnsafeCheckpointError, WeightsError, first_line
 
 __all__ = [
     "read_weights",
@@ -79,6 +79,10 @@ def torch_load(path: Path, *, trust_pickle: bool):
             ) from None
         raise WeightsError(f"'{path}' is not a readable checkpoint ({exc}); it may be truncated or corrupt") from None
     except Exception as exc:  # any failure to parse the file means it is not a usable checkpoint
+        if trust_pickle and isinstance(exc, (ModuleNotFoundError, AttributeError)):
+            # a whole pickled module names its class's module, which must import here as where it was saved
+            raise WeightsError(f"'{path}' holds a pickled object whose class cannot be found ({first_line(exc)}); "
+                               "run from the folder that holds its code, or put that folder on PYTHONPATH") from None
         if _is_torchscript(path):
             raise WeightsError(
                 f"'{path}' is a TorchScript archive (torch.jit.save), not a state dict: splice splices Python "
