@@ -156,7 +156,7 @@ def _cmd_points(args) -> int:
     if any(p.stride != 1 for p in pts):
         out.print("Feature-level points (stride > 1) are listed but not recommended: measured on plain CNNs, a warp "
                   "there matched the input warp on one model and gave nothing on another, at 1.4-1.7x the time "
-                  "(README, 'Where to put the warp').")
+                  "(README, 'splice points', on recommended).")
     within = f" --within {args.within}" if args.within else ""
     out.print(f"Splice with: splice insert {args.model}{within} --at NAME --out DIR")
     return EXIT_OK

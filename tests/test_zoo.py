@@ -24,7 +24,7 @@ def test_the_zoo_passes_the_whole_certificate(entry, workdir):
                                                 "gradients", "onnx", "buffers"]
     assert not report["gradients"].warning, report["gradients"].detail  # the outputs depend on the input
     assert result["source_changed"] == [], "listing or splicing changed the source model"
-    assert result["recommended"] == ["input"]  # the input first (README, "Where to put the warp")
+    assert result["recommended"] == ["input"]  # the input first (README, "splice points", on recommended)
     assert result["spliced_at"][0] == "input" and len(result["spliced_at"]) == 2  # and one warp inside
     if entry.within:
         assert result["mechanism"] == "hooks" and report.meta["points"] == result["spliced_at"]
