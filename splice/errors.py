@@ -26,6 +26,7 @@ __all__ = [
     "RecipeError",
     "DataError",
     "CheckFailed",
+    "NormalisationWarning",
     "ResourceError",
     "WriteError",
     "TrainingDiverged",
@@ -125,6 +126,10 @@ class SpliceWarning(UserWarning):
 
 class RandomWeightsWarning(SpliceWarning):
     """The model was built without trained weights; its outputs mean nothing for accuracy."""
+
+
+class NormalisationWarning(SpliceWarning):
+    """Trained weights for a model that declares no normalisation: its images arrive as [0, 1] pixels."""
 
 
 _TERMINAL_CODES = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")  # colours a library wrote for its own terminal

@@ -7,6 +7,7 @@ import pickle
 import subprocess
 import sys
 import textwrap
+import warnings
 
 import pytest
 import torch
@@ -225,6 +226,26 @@ def test_a_pickled_module_whose_class_is_gone_says_so(tmp_path, monkeypatch):
     with pytest.raises(WeightsError, match=r"holds a pickled object whose class cannot be found \(No module named "
                                            r"'traycam_net'\); run from the folder that holds its code"):
         load_source(str(tmp_path / "whole.pt"), trust_pickle=True, input_shape=(3, 8, 8))
+
+
+def test_trained_weights_for_a_factory_that_declares_no_normalisation_are_flagged(tmp_path):
+    from splice.errors import NormalisationWarning
+
+    (tmp_path / "nets.py").write_text(textwrap.dedent("""
+        import torch.nn as nn
+        def plain():
+            return nn.Sequential(nn.Conv2d(3, 4, 3))
+        def declared():
+            return nn.Sequential(nn.Conv2d(3, 4, 3))
+        plain.input_shape = declared.input_shape = (3, 16, 16)
+        declared.normalisation = None  # it takes [0, 1] pixels, and says so
+    """))
+    torch.save(nn.Sequential(nn.Conv2d(3, 4, 3)).state_dict(), tmp_path / "w.pt")
+    with pytest.warns(NormalisationWarning, match=r"declares no normalisation, so images reach it as \[0, 1\]"):
+        load_source(f"{tmp_path / 'nets.py'}:plain", weights=tmp_path / "w.pt")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", NormalisationWarning)
+        load_source(f"{tmp_path / 'nets.py'}:declared", weights=tmp_path / "w.pt")
 
 
 def test_weights_for_another_architecture(tmp_path):

@@ -196,7 +196,8 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
         else:
             model, meta = build_transformers(attr, kwargs, trust_code=trust_code)
         return model, {**meta, "declares_normalisation": meta["normalisation"] is not None}
-    meta: dict[str, Any] = {"input_shape": None, "normalisation": None, "declares_normalisation": False}
+    meta: dict[str, Any] = {"input_shape": None, "normalisation": None, "declares_normalisation": False,
+                            "factory": True}
     factory = _import_factory(head, attr, spec)
     try:
         with _folder_importable(Path(head) if _is_file_head(head) else None):

@@ -11,7 +11,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..errors import RandomWeightsWarning, SourceError, SpliceWarning
+from ..errors import NormalisationWarning, RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
 from .builders import absolute_spec, build_model, uncompiled
 from .empty import initialisers_skipped
@@ -139,6 +139,10 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
             RandomWeightsWarning,
             stacklevel=3,
         )
+    if weights is not None and not meta["declares_normalisation"] and meta.get("factory"):
+        warnings.warn(f"{spec} declares no normalisation, so images reach it as [0, 1] pixels; if it was trained on "
+                      "normalised images, set factory.normalisation = {'mean': [...], 'std': [...]} (None says it "
+                      "takes [0, 1])", NormalisationWarning, stacklevel=3)
     model.eval()
     first = shapes[0] if shapes else (meta["input_shape"] or parse_input_shape(default_input_shape))
     if first is None:
