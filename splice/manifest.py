@@ -15,7 +15,7 @@ graph rewrite)::
       "format": "splice-folder",
       "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
                  "weights_sha256": str | null, "random_init": bool,
-                 "trained_on": str | null},
+                 "trained_on": str | null, "code_sha256": str (path/file.py:factory only)},
       "input_shape": [C, H, W],
       "extra_inputs": [[C, H, W], ...],          (2: a model with several inputs)
       "mechanism": "fx" | "hooks",               (2: "hooks")
@@ -118,7 +118,7 @@ def _source(data: dict, problems: list[str]) -> None:
         problems.append("source.spec must be a non-empty string")
     if not isinstance(src.get("kwargs", {}), dict):
         problems.append("source.kwargs must be an object")
-    for key in ("weights_sha256", "weights_file", "trained_on"):
+    for key in ("weights_sha256", "weights_file", "trained_on", "code_sha256"):
         if src.get(key) is not None and not isinstance(src.get(key), str):
             problems.append(f"source.{key} must be a string or null")
 
@@ -284,7 +284,8 @@ class SpliceInfo:
 
     ``spec``/``kwargs`` rebuild the base architecture; ``source_weights_sha256``
     and ``source_weights_path`` say which weights it started from
-    (``random_init`` when none); ``trained_on`` the images the base was
+    (``random_init`` when none); ``code_sha256`` the sha256 of the model file a
+    ``path/file.py:factory`` spec builds from; ``trained_on`` the images the base was
     trained on, when known. ``points`` are :class:`PointRecord` in
     graph order. ``tuning`` is what ``splice tune`` recorded (``None`` for a
     fresh splice). ``extra_inputs`` are the shapes of the model's inputs after
@@ -308,6 +309,7 @@ class SpliceInfo:
     points: tuple[PointRecord, ...] = ()
     tuning: dict | None = None
     trained_on: str | None = None
+    code_sha256: str | None = None
     folder: str | None = None
     check: dict | None = None
     extra_inputs: tuple[tuple[int, int, int], ...] = ()
@@ -346,7 +348,8 @@ class SpliceInfo:
         return {
             "source": {"spec": self.spec, "kwargs": self.kwargs, "weights_file": self.source_weights_path,
                        "weights_sha256": self.source_weights_sha256, "random_init": bool(self.random_init),
-                       "trained_on": self.trained_on},
+                       "trained_on": self.trained_on,
+                       **({"code_sha256": self.code_sha256} if self.code_sha256 else {})},
             "input_shape": list(self.input_shape) if isinstance(self.input_shape, tuple) else self.input_shape,
             "normalisation": self.normalisation,
             "class_names": self.class_names,
@@ -384,7 +387,8 @@ class SpliceInfo:
             leaves=tuple(data.get("leaves") or ()), source_weights_sha256=src.get("weights_sha256"),
             source_weights_path=src.get("weights_file"), random_init=bool(src.get("random_init", False)),
             points=tuple(PointRecord.from_json(p) for p in data["points"]), tuning=data.get("tuning"),
-            trained_on=src.get("trained_on"), folder=None if folder is None else str(folder),
+            trained_on=src.get("trained_on"), code_sha256=src.get("code_sha256"),
+            folder=None if folder is None else str(folder),
             extra_inputs=tuple(tuple(s) for s in data.get("extra_inputs") or ()),
             mechanism=data.get("mechanism", "fx"), within=data.get("within", ""), sites=data.get("sites") or {},
         )
@@ -400,6 +404,8 @@ class SpliceInfo:
             source_weights_sha256=src.weights_sha256, source_weights_path=src.weights_path,
             random_init=bool(src.random_init), points=tuple(points), check=check,
             trained_on=((src.manifest or {}).get("source") or {}).get("trained_on"),
+            code_sha256=(getattr(src, "code_sha256", None)
+                         or ((src.manifest or {}).get("source") or {}).get("code_sha256")),
             extra_inputs=tuple(getattr(src, "extra_inputs", ()) or ()), mechanism=mechanism, within=within,
             sites=dict(sites or {}),
         )

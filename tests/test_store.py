@@ -422,3 +422,36 @@ def test_a_model_file_changed_since_the_splice_is_named_in_one_line(tmp_path, ca
     assert len(err) == 1 and "internal error" not in err[0], err
     assert "wrong shape 3: 0.weight (4, 3, 3, 3) vs (8, 3, 3, 3)" in err[0]
     assert "the model's code changed since the splice" in err[0]
+
+
+def test_verify_fails_provenance_when_the_model_file_changed_its_forward(tmp_path):
+    """Base and splice are both rebuilt from the file: after a forward was edited they still equal each other,
+    yet neither is the model that was spliced. The folder records the file's sha256, and verify compares."""
+    import hashlib
+    import sys
+
+    from splice.sources.specs import FILE_MODULE_PREFIX
+
+    model_file = tmp_path / "mine.py"
+    code = ("import torch.nn as nn\n"
+            "class Net(nn.Module):\n"
+            "    def __init__(self):\n"
+            "        super().__init__()\n"
+            "        self.conv, self.fc = nn.Conv2d(3, 4, 3, padding=1), nn.Linear(4, 3)\n"
+            "    def forward(self, x):\n"
+            "        return self.fc(self.conv(x).{pool}((2, 3)))\n"
+            "def build():\n"
+            "    return Net()\n"
+            "build.input_shape = (3, 16, 16)\n")
+    model_file.write_text(code.format(pool="mean"))
+    folder = splice.save(splice.insert(f"{model_file}:build", at="input"), tmp_path / "spliced")
+    recorded = json.loads((folder / "splice.json").read_text())["source"]["code_sha256"]
+    assert recorded == hashlib.sha256(model_file.read_bytes()).hexdigest()
+    assert splice.verify(folder, trust_code=True).passed
+    model_file.write_text(code.format(pool="amax"))  # the same weights, another forward
+    for name in [n for n in sys.modules if n.startswith(FILE_MODULE_PREFIX)]:  # a new process, as the CLI runs
+        del sys.modules[name]
+    report = splice.verify(folder, trust_code=True)
+    rows = {c.check: c for c in report.checks}
+    assert not report.passed and not rows["provenance"].passed
+    assert "changed since the splice" in rows["provenance"].detail and rows["outputs"].passed

@@ -28,7 +28,7 @@ from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
-__all__ = ["build_model", "absolute_spec", "uncompiled", "IMAGENET_NORMALISATION"]
+__all__ = ["build_model", "absolute_spec", "code_sha256", "uncompiled", "IMAGENET_NORMALISATION"]
 
 IMAGENET_NORMALISATION = {"mean": [0.485, 0.456, 0.406], "std": [0.229, 0.224, 0.225]}
 _TORCHVISION_DEFAULT_SHAPES = {"inception_v3": (3, 299, 299)}
@@ -73,6 +73,15 @@ def _folder_importable(path: Path | None):
     finally:
         if added and folder in sys.path:
             sys.path.remove(folder)
+
+
+def code_sha256(spec: str) -> str | None:
+    """The sha256 of the Python file a ``path/file.py:factory`` spec builds from (what a folder records, to tell
+    when that code changed), ``None`` for any other spec or a file that is not there."""
+    head, sep, _ = spec.rpartition(":")
+    if not sep or not _is_file_head(head) or not Path(head).is_file():
+        return None
+    return hashlib.sha256(Path(head).read_bytes()).hexdigest()
 
 
 def _import_factory(head: str, attr: str, spec: str):

@@ -13,7 +13,7 @@ from torch import nn
 
 from ..errors import NormalisationWarning, RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
-from .builders import absolute_spec, build_model, uncompiled
+from .builders import absolute_spec, build_model, code_sha256, uncompiled
 from .empty import initialisers_skipped
 from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
 from .specs import parse_input_shape, parse_input_shapes, parse_kwargs
@@ -34,6 +34,8 @@ class Source:
     hash equal exactly when every tensor is bitwise equal.
     ``declares_normalisation`` is False when nothing (factory attribute,
     torchvision, timm, a folder's record) says how inputs are normalised.
+    ``code_sha256`` is the sha256 of the Python file a ``path/file.py:factory``
+    spec builds from (``None`` for any other spec).
     """
 
     model: nn.Module
@@ -49,6 +51,7 @@ class Source:
     leaves: tuple[str, ...] = ()
     declares_normalisation: bool = True
     extra_inputs: tuple[tuple[int, int, int], ...] = ()
+    code_sha256: str | None = None
 
     @property
     def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
@@ -154,7 +157,7 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                   weights_sha256=state_dict_sha256(model.state_dict()) if hashed else None,
                   normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
-                  leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]))
+                  leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]), code_sha256=code_sha256(spec))
 
 
 def _state_dtype(state: Mapping[str, torch.Tensor]) -> str:

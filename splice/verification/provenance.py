@@ -12,7 +12,7 @@ from ..fileio import state_dict_sha256
 from ..copies import bitwise_equal
 from ..errors import SpliceError
 from ..manifest import MANIFEST_NAME, SpliceInfo
-from ..sources import load_source
+from ..sources import code_sha256, load_source
 from .report import CheckResult
 
 __all__: list[str] = []
@@ -54,9 +54,26 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]],
             "missing": missing, "unexpected": extra}
 
+def _code_changed(info: SpliceInfo) -> CheckResult | None:
+    """A failed row when the model file the base is built from is not the one that was spliced, else ``None``:
+    the base and the splice would both be rebuilt from the new code, and equal each other, yet not the model
+    that was spliced."""
+    now = code_sha256(info.spec)
+    if info.code_sha256 is None or now is None or now == info.code_sha256:
+        return None
+    file = info.spec.rpartition(":")[0]
+    return CheckResult("provenance", False, {"code_sha256": now, "recorded_code_sha256": info.code_sha256},
+                       f"the model file '{file}' changed since the splice (sha256 {info.code_sha256[:12]}… then, "
+                       f"{now[:12]}… now): the base is built from other code than was spliced; restore the file, "
+                       "or splice the new code again", "model file changed")
+
+
 def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
                     input_shape, trust_code: bool = False) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
+    changed = _code_changed(info)
+    if changed is not None:
+        return changed
     source = info.source_weights_sha256
     tuning = info.tuning
     declared = bool(isinstance(tuning, Mapping) and tuning.get("base_changed"))
