@@ -248,6 +248,23 @@ def test_trained_weights_for_a_factory_that_declares_no_normalisation_are_flagge
         load_source(f"{tmp_path / 'nets.py'}:declared", weights=tmp_path / "w.pt")
 
 
+def test_a_volume_network_without_a_shape_is_told_about_volumes_not_asked_for_a_shape(tmp_path, capsys):
+    (tmp_path / "ct.py").write_text("import torch.nn as nn\ndef net():\n    return nn.Sequential(nn.Conv3d(1, 4, 3))\n")
+    assert main(["points", f"{tmp_path / 'ct.py'}:net"]) == 2
+    err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+    assert len(err) == 1 and "convolves volumes or video (Conv3d, 5-D inputs)" in err[0], err
+    assert "--input-shape" not in err[0]
+
+
+def test_a_checkpoint_with_another_number_of_classes_is_told_how_to_build_for_it(tmp_path):
+    state = _small_state()
+    state["fc.weight"], state["fc.bias"] = torch.zeros(5, state["fc.weight"].shape[1]), torch.zeros(5)
+    torch.save(state, tmp_path / "w5.pt")
+    with pytest.raises(WeightsError, match=r"if it was trained for 5 classes, build the model for them \(e\.g\. "
+                                           r"--kwargs '\{\"num_classes\": 5\}'\)"):
+        load_source("splice.models:tray_net", weights=tmp_path / "w5.pt")
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

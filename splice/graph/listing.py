@@ -21,7 +21,7 @@ from torch import nn
 
 from ..copies import collector_paused, private_buffers
 from ..errors import GraphError, SourceError
-from ..sources.specs import parse_input_shapes
+from ..sources.specs import parse_input_shapes, volumes_not_images
 from .entries import Entry, graph_entries
 from .fallback import hooks_view
 from .leaves import LeafRule
@@ -160,10 +160,9 @@ def _check_input_shapes(input_shape: Any) -> tuple[tuple[int, int, int], ...]:
 
 def _check_images(model: nn.Module) -> None:
     """A model of volumes or clips (3-D convolutions and no 2-D ones) gets one line, not a shape error."""
-    kinds = {type(m) for m in model.modules()}
-    if nn.Conv3d in kinds and nn.Conv2d not in kinds:
-        raise GraphError(f"{type(model).__name__} convolves volumes or video (Conv3d, 5-D inputs); splice works on "
-                         "images (C, H, W) for now, and volumes and video come in a later release")
+    why = volumes_not_images(model)
+    if why is not None:
+        raise GraphError(why)
 
 
 def _check_arity(model: nn.Module, shapes: tuple) -> None:

@@ -22,7 +22,7 @@ from typing import Any
 from ..errors import SourceError
 
 __all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs",
-           "per_channel", "positive_int"]
+           "per_channel", "positive_int", "volumes_not_images"]
 
 #: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
 #: are named to the user by their bare class name, which ``--leaf`` matches
@@ -173,3 +173,14 @@ def per_channel(values, chans: int | None) -> list[float]:
     if chans == 1:
         return [sum(values) / len(values)]
     return [values[i % len(values)] for i in range(chans)]
+
+
+def volumes_not_images(model) -> str | None:
+    """The one line for a model of volumes or clips (3-D convolutions and no 2-D ones), else ``None``."""
+    from torch import nn
+
+    kinds = {type(m) for m in model.modules()}
+    if nn.Conv3d in kinds and nn.Conv2d not in kinds:
+        return (f"{type(model).__name__} convolves volumes or video (Conv3d, 5-D inputs); splice works on images "
+                "(C, H, W) for now, and volumes and video come in a later release")
+    return None

@@ -262,6 +262,16 @@ def _differences(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tens
     return "; ".join(parts)
 
 
+def _classes_hint(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], mismatched) -> str:
+    """Advice when only the last layer's output size differs: the checkpoint has another number of classes."""
+    last = [k for k in own if own[k].dim() >= 1][-2:]
+    head = [k for k in mismatched if k in last and tuple(state[k].shape[1:]) == tuple(own[k].shape[1:])]
+    if not head or len(head) != len(mismatched):
+        return ""
+    n = int(state[head[0]].shape[0])
+    return f"if it was trained for {n} classes, build the model for them (e.g. --kwargs '{{\"num_classes\": {n}}}'); "
+
+
 def check_fits(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], where: str, advice: str) -> None:
     """Refuse, in one line ending in ``advice``, a ``state`` whose names or shapes are not exactly ``own``'s, and
     integer tensors where ``own`` holds floating point (:func:`check_dtypes`)."""
@@ -301,6 +311,7 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     if (missing or unexpected or mismatched) and not allow_partial:
         raise WeightsError(
             f"{where} does not match {spec} ({_differences(own, state, missing, unexpected, mismatched)}); "
+            + _classes_hint(own, state, mismatched) +
             "pass --allow-partial (allow_partial=True) to load only the tensors that fit"
         )
     usable = with_metadata(model, state)
