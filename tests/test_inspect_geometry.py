@@ -1,0 +1,72 @@
+"""What inspect says of a warp, checked against references outside splice: a bent thin-plate spline described
+at the output centre (scipy's thin-plate RBFInterpolator, scipy.linalg.polar, scipy.optimize.fsolve), and angles
+on both sides of the half turn summarised as one spread (scipy.stats.circmean / circstd)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import torch
+
+from splice import inspection as I
+from splice.warps import grids
+
+H, W = 32, 40  # non-square on purpose: angles must be rigid in pixels
+
+
+def test_a_bent_tps_is_described_at_the_output_centre_as_scipy_interpolates_it():
+    # reference: scipy.interpolate.RBFInterpolator with the thin-plate kernel and a degree-1 polynomial is the
+    # same interpolant (its kernel r^2 log r is half of r^2 log r^2, which the same constraints absorb). Only
+    # the inner control points move, so the polynomial term alone misstates the centre (3.6 px against 6.3).
+    from scipy.interpolate import RBFInterpolator
+    from scipy.linalg import polar
+    from scipy.optimize import fsolve
+
+    k = 4
+    ctrl = grids.tps_control_points(k).numpy()
+    rng = np.random.default_rng(3)
+    cases = [np.where((np.abs(ctrl) < 0.5).all(axis=1, keepdims=True), [0.2, 0.0], 0.0),
+             rng.normal(0.0, 0.08, ctrl.shape)]
+    for offsets in cases:
+        f = RBFInterpolator(ctrl, ctrl + offsets, kernel="thin_plate_spline", degree=1)
+        d = I.describe_tps(torch.from_numpy(offsets.reshape(1, -1)), (H, W), k)
+        centre = f(np.zeros((1, 2)))[0]
+        assert abs(float(d["shift_x_px"][0]) - centre[0] * W / 2) < 1e-9
+        assert abs(float(d["shift_y_px"][0]) - centre[1] * H / 2) < 1e-9
+        eps = 1e-6
+        jac = np.stack([(f(np.array([[eps, 0.0]])) - f(np.array([[-eps, 0.0]])))[0] / (2 * eps),
+                        (f(np.array([[0.0, eps]])) - f(np.array([[0.0, -eps]])))[0] / (2 * eps)], axis=1)
+        dmat = np.diag([W / 2, H / 2])
+        u, pos = polar(dmat @ jac @ np.linalg.inv(dmat))
+        scales = np.linalg.eigvalsh(pos)
+        assert abs(float(d["scale_1"][0]) - scales[1]) < 1e-6 and abs(float(d["scale_2"][0]) - scales[0]) < 1e-6
+        assert abs(float(d["angle_deg"][0]) - math.degrees(math.atan2(u[1, 0], u[0, 0]))) < 1e-5
+        seen = fsolve(lambda q: f(q.reshape(1, 2))[0], np.zeros(2), xtol=1e-13)
+        assert abs(float(d["view_shift_x_px"][0]) - seen[0] * W / 2) < 1e-7
+        assert abs(float(d["view_shift_y_px"][0]) - seen[1] * H / 2) < 1e-7
+    assert float(d["tps_max_px"][0]) > 0
+
+
+def test_angles_across_the_half_turn_are_summarised_as_one_spread():
+    # reference: scipy.stats.circmean / circstd. Parts lying upside down read angles on both sides of +-180;
+    # a linear mean of them is near 0, and their spread looks like a full turn.
+    from scipy.stats import circmean, circstd
+
+    from splice.inspection.summary import summarise
+
+    rng = np.random.default_rng(0)
+    angles = (180.0 + rng.normal(0.0, 4.0, 400) + 180.0) % 360.0 - 180.0
+    stats = summarise(torch.from_numpy(np.append(angles, np.nan)), circular=True)
+    assert stats["n"] == 400
+    assert stats["mean"] == pytest.approx(float(circmean(angles, high=180, low=-180)), abs=1e-9)
+    assert stats["std"] == pytest.approx(float(circstd(angles, high=180, low=-180)), rel=0.01)
+    assert stats["p95"] - stats["p5"] == pytest.approx(2 * 1.645 * 4.0, rel=0.15)  # a normal's 5-95 % width
+    assert stats["max"] > 180.0 and stats["min"] < 180.0  # unwrapped around the mean, not split in two
+    plain = summarise(torch.from_numpy(angles))
+    assert plain["std"] > 150.0  # what a linear summary says of the same angles
+    near_zero = torch.tensor([10.0, -10.0, 20.0], dtype=torch.float64)
+    circ, lin = summarise(near_zero, circular=True), summarise(near_zero)
+    assert circ["mean"] == pytest.approx(float(circmean(near_zero.numpy(), high=180, low=-180)), abs=1e-9)
+    assert {k: v for k, v in circ.items() if k != "mean"} == {k: v for k, v in lin.items() if k != "mean"}
