@@ -16,6 +16,7 @@ from __future__ import annotations
 import copy
 
 import torch
+from torch import nn
 
 from splice import graph
 from splice.fileio import state_dict_sha256
@@ -98,3 +99,28 @@ def _backward(model, x):
     out = model(x)
     loss = sum(t.float().pow(2).mean() for t in flatten_outputs(out).values() if t.is_floating_point())
     loss.backward()
+
+
+def by_name(pts):
+    """Points by name."""
+    return {p.name: p for p in pts}
+
+
+# input -> stem -> conv_a -> act -> conv_b -> add(stem, conv_b) -> head -> output
+# The skip stem -> add bypasses conv_a, act and conv_b, so every path from the
+# input passes through: input, stem, add, head (cuts). conv_a, act, conv_b lie
+# between the fork (stem) and the join (add): in_branch with join 'add'.
+# Between convs (a conv upstream or itself, and one downstream): stem, conv_a,
+# act, conv_b, add; head is the last conv, so only all=True lists it.
+class Residual(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.conv_a = nn.Conv2d(8, 8, 3, padding=1)
+        self.act = nn.ReLU()
+        self.conv_b = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 1)
+
+    def forward(self, x):
+        y = self.stem(x)
+        return self.head(y + self.conv_b(self.act(self.conv_a(y))))

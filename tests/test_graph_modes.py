@@ -1,0 +1,272 @@
+"""Listing points, continued: train/eval modes, the caller's model left alone, lookups and suggestions, and the
+forwards that take more than an image (channels-last tensors, half precision, *args, options, value branches)."""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import pytest
+import torch
+import torch.fx as fx
+import torch.nn.functional as F
+from torch import nn
+
+import splice
+from splice import graph
+from splice.errors import GraphError, PointError
+from splice.graph import (
+    Point,
+    TraceFallbackWarning,
+    TraceModeWarning,
+    find_point,
+    points,
+    points_report,
+)
+from splice.warps import Warp, WarpConfig
+
+from harness import Residual as _Residual, by_name as _by_name
+
+
+# ----------------------------------------------------------------------------- modes and the caller's model
+
+
+class _ModeDependent(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+
+    def forward(self, x):
+        x = self.conv(x)
+        if self.training:
+            x = x * 0.5
+        return x
+
+
+def test_train_eval_difference_warns():
+    with pytest.warns(TraceModeWarning, match=r"train-mode and eval-mode graphs of _ModeDependent differ"):
+        pts = points(_ModeDependent(), (3, 4, 4), all=True)
+    assert [p.name for p in pts] == ["input", "conv"]  # the eval-mode graph
+    with pytest.warns(TraceModeWarning):
+        gm = graph.trace(_ModeDependent())
+    assert "mul" not in {n.name for n in gm.graph.nodes}
+
+
+class _ReadsTrainingOnly(nn.Module):
+    # reads self.training, but both modes trace to the same graph: no warning
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+
+    def forward(self, x):
+        scale = 1.0 if self.training else 1.0
+        return self.conv(x) * scale
+
+
+class _Registered(_ModeDependent):
+    # a class with __init_subclass__ is never given a spy subclass, so splice
+    # always traces it twice; the difference must still be found
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+
+
+def test_mode_check_paths():
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert [p.name for p in points(_ReadsTrainingOnly(), (3, 4, 4), all=True)] == ["input", "conv", "mul"]
+    with pytest.warns(TraceModeWarning, match=r"graphs of _Registered differ \(train mode adds node 'mul'\)"):
+        points(_Registered(), (3, 4, 4))
+
+
+_OFFSET = torch.full((1, 3, 1, 1), 0.25)  # a global tensor: fx stores it on the traced root
+
+
+class _Offset(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+        self.bn = nn.BatchNorm2d(3)
+
+    def forward(self, x):
+        return self.bn(self.conv(x + _OFFSET))
+
+
+def test_caller_model_is_not_changed():
+    model = _Offset()
+    model.train()
+    model.bn.eval()  # mixed modes must survive
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    attrs = set(vars(model))
+    pts = points(model, (3, 6, 6), all=True)
+    gm = graph.trace(model)
+    assert {p.name for p in pts} >= {"input", "add", "conv", "bn"}
+    assert set(vars(model)) == attrs  # no _tensor_constant0 on the caller's root
+    assert model.training and model.conv.training and not model.bn.training
+    assert type(model) is _Offset and type(model.conv) is nn.Conv2d
+    for k, v in model.state_dict().items():
+        assert torch.equal(v, before[k])
+    assert gm.training and gm.conv.training and not gm.bn.training
+    x = torch.randn(2, 3, 6, 6)
+    model.eval()
+    gm.eval()
+    with torch.no_grad():
+        torch.testing.assert_close(gm(x), model(x), rtol=0, atol=0)
+        # the GraphModule owns copies: changing it leaves the caller's weights alone
+        gm.conv.weight.add_(1.0)
+    assert torch.equal(model.conv.weight, before["conv.weight"])
+
+
+# ----------------------------------------------------------------------------- lookups and errors
+
+
+def test_find_point_resolves_and_suggests():
+    import torchvision
+
+    gm = graph.trace(torchvision.models.resnet18(weights=None))
+    assert find_point(gm, "input").op == "placeholder"
+    assert find_point(gm, "layer1_0_relu").target == "layer1.0.relu"
+    with pytest.raises(PointError, match=r"unknown point 'layer1_relu'; did you mean .*'layer1_0_relu'.*"
+                                         r"Run 'splice points MODEL' to list them\."):
+        find_point(gm, "layer1_relu")
+    with pytest.raises(PointError, match=r"unknown point 'zzz'; Run 'splice points MODEL'"):
+        find_point(gm, "zzz")
+    node = find_point(_Residual(), "conv_b")
+    assert isinstance(node, fx.Node) and node.target == "conv_b"
+
+
+def test_bad_input_shape_and_model():
+    with pytest.raises(GraphError, match=r"input_shape must be \(C, H, W\).*got \(3, 224\)"):
+        points(_Residual(), (3, 224))
+    with pytest.raises(GraphError, match=r"input_shape must be .*got \(3, 0, 8\)"):
+        points(_Residual(), (3, 0, 8))
+    # the same rule as splice.sources.parse_input_shape: no floats, no bools; text is for the front doors
+    for bad in [(3.0, 8, 8), (True, 8, 8), "3x8x8", None]:
+        with pytest.raises(GraphError, match=r"input_shape must be \(C, H, W\) with three positive ints"):
+            points(_Residual(), bad)
+    with pytest.raises(GraphError, match=r"points\(\) needs a torch.nn.Module, got str"):
+        points("resnet18", (3, 8, 8))
+    with pytest.raises(GraphError, match=r"failed at point 'stem' \(module 'stem' \(Conv2d\)\) for input shape "
+                                         r"\(1, 16, 16\).*check that the model takes inputs"):
+        points(_Residual(), (1, 16, 16))
+
+
+def test_point_validation():
+    with pytest.raises(ValueError, match="recommended but not a cut"):
+        Point("x", "", (1, 2, 2), 1, False, False, None, 0, 0, True)
+    with pytest.raises(ValueError, match="three positive ints"):
+        Point("x", "", (1, 2), 1, True, False, None, 0, 0, False)
+
+
+class _ChannelsLast(nn.Module):
+    # conv -> permute to (N, H, W, C) -> LayerNorm over C -> permute back -> conv
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 5, 1)
+        self.norm = nn.LayerNorm(5)
+        self.b = nn.Conv2d(5, 5, 1)
+
+    def forward(self, x):
+        return self.b(self.norm(self.a(x).permute(0, 2, 3, 1)).permute(0, 3, 1, 2))
+
+
+def test_channels_last_tensors_are_not_points():
+    pts = _by_name(points(_ChannelsLast(), (3, 6, 7), all=True))
+    # 'permute' and 'norm' hold (N, H, W, C) = (1, 6, 7, 5): not points
+    assert list(pts) == ["input", "a", "permute_1", "b"]
+    assert pts["permute_1"].shape == (5, 6, 7) and pts["permute_1"].cut
+
+
+def test_half_precision_model_gets_half_input():
+    model = nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU(), nn.Conv2d(4, 4, 3)).half()
+    assert [(p.name, p.shape) for p in points(model, (3, 16, 16))] == [
+        ("input", (3, 16, 16)), ("_0", (4, 14, 14)), ("_1", (4, 14, 14))]
+
+
+class _TwoConvs(nn.Module):
+    """Two convolutions and a linear head, for forwards that differ only in the options they take."""
+
+    def __init__(self, classes: int = 2):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3, padding=1)
+        self.conv2 = nn.Conv2d(4, 4, 3, padding=1)
+        self.head = nn.Linear(4, classes)
+
+
+class _TakesExtras(_TwoConvs):
+    """A forward that also takes ``*args`` and ``**kwargs`` (options it passes on, or ignores)."""
+
+    def forward(self, x, *args, **kwargs):
+        return self.head(self.conv2(torch.relu(self.conv1(x))).mean((2, 3)))
+
+
+def test_a_forward_with_star_args_and_star_kwargs_is_listed_and_spliced():
+    # fx gives *args and **kwargs placeholders of their own; they were taken for inputs without a shape
+    # ("the model's forward takes more inputs than the 1 shape(s) given (also '**kwargs')")
+    model = _TakesExtras().eval()
+    pts = splice.points(model, (3, 8, 8))
+    assert [p.name for p in pts][:2] == ["input", "conv1"] and pts[0].mechanism == "fx"
+    spliced = splice.insert(model, at="conv1", input_shape=(3, 8, 8))
+    x = torch.randn(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))
+
+
+class _WithTargets(_TwoConvs):
+    """A training-code forward: options after the image, and a branch on whether one was given."""
+
+    def __init__(self):
+        super().__init__(classes=3)
+
+    def forward(self, x, targets=None, mask=None, temperature: float = 1.0):
+        f = torch.relu(self.conv1(x))
+        if mask is not None:
+            f = f * mask
+        logits = self.head(self.conv2(f).mean((2, 3))) / temperature
+        if targets is not None:
+            return logits, F.cross_entropy(logits, targets)
+        return logits
+
+
+def test_options_after_the_inputs_are_traced_at_their_defaults():
+    # a Proxy for targets=None is not None: fx traced the loss branch, and shape propagation then failed on
+    # cross_entropy(logits, None); splice calls the model with its inputs alone, so the graph is traced so
+    from splice.surgery import apply_info
+    from splice.verification import verify_models
+
+    model = _WithTargets().eval()
+    pts = splice.points(model, (3, 8, 8))
+    assert pts[0].mechanism == "fx" and "conv1" in [p.name for p in pts]
+    spliced = splice.insert(model, at=["input", "conv1"], input_shape=(3, 8, 8))
+    report = verify_models(model, spliced, onnx=True)
+    assert report.passed, report.failed
+    again = apply_info(model, spliced.splice_info)  # as a folder is rebuilt
+    again.load_state_dict(spliced.state_dict())
+    x = torch.randn(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(again.eval()(x), model(x)) and torch.equal(spliced(x), model(x))
+
+
+class _ValueBranch(nn.Module):
+    """A branch on a value: no tracer, meta run or export can follow it."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv1 = nn.Conv2d(3, 4, 3)
+        self.conv2 = nn.Conv2d(4, 4, 3)
+
+    def forward(self, x):
+        f = torch.relu(self.conv1(x))
+        if f.mean().item() > 0.5:
+            f = f * 2
+        return self.conv2(f).mean((2, 3))
+
+
+def test_a_model_no_pass_can_follow_gets_one_line_and_no_dump(capfd):
+    # torch.export printed the graph it had so far to stderr before splice's one-line error
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(GraphError, match=r"cannot list points of _ValueBranch: .*; move the Python control flow "
+                                             r"into a submodule and mark that submodule opaque") as caught:
+            splice.points(_ValueBranch().eval(), (3, 16, 16))
+    assert "\n" not in str(caught.value)
+    assert "def forward(" not in capfd.readouterr().err

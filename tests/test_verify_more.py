@@ -1,0 +1,234 @@
+"""splice.verify, continued: tuned folders, the in-memory API, bad input, the command line, and the ONNX check on
+a model no probe has run."""
+
+from __future__ import annotations
+
+import copy
+import json
+from pathlib import Path
+
+import pytest
+import torch
+from safetensors.torch import load_file, save_file
+
+import splice
+from splice import store
+from splice.fileio import file_sha256, state_dict_sha256
+from splice.cli import main
+from splice.errors import DataError, ManifestError, SpliceError
+from splice.surgery import insert, warps_of
+from splice.verification import (
+    DEFAULT_TOLERANCES,
+    CheckResult,
+    VerifyReport,
+    compare_outputs,
+    probe_batch,
+    render_verify,
+    verify,
+    verify_models,
+    write_report,
+)
+from splice.warps import Warp, WarpConfig
+
+from verify_fixtures import (  # noqa: F401 - fixtures are found by name
+    ALL_CHECKS,
+    TRAY,
+    SMALL,
+    MODEL_FILE,
+    work,
+    source_weights,
+    tray_source,
+    tray_spliced,
+    tray_folder,
+    digits_folder,
+    model_file,
+    copy_folder as _copy_folder,
+    rewrite_weights as _rewrite_weights,
+    final_layer as _final,
+    clone_spliced as _clone,
+)
+
+
+# ----------------------------------------------------------------------------- tuned models
+
+
+def _tuned(spliced, *, scale=0.05):
+    from harness import perturb_warps_
+
+    moved = _clone(spliced)
+    perturb_warps_(moved, scale=scale)
+    return moved
+
+
+def test_tuned_warps_reported_and_reset_recheck_passes(tray_spliced, tmp_path):
+    moved = _tuned(tray_spliced)
+    folder = store.save(moved, tmp_path / "tuned", tuning={"recipe": "warp-only", "base_changed": False})
+    report = verify(folder)
+    assert report.passed, [(c.check, c.detail) for c in report.checks if not c.passed]
+    assert report.meta["tuned"] is True
+    warps_row = report["warps"].numbers
+    for name, warp in warps_of(moved).items():
+        assert warps_row["warps"][name]["distance"] == pytest.approx(warp.identity_distance())
+        assert warps_row["warps"][name]["point_max_abs"] > 0
+        assert warps_row["warps"][name]["output_max_abs"] > 0  # two moved warps: one deviation each
+    assert warps_row["output_max_abs"] > 0
+    assert report["outputs"].numbers["warps_reset"] is True
+    assert report["outputs"].numbers["max_rel"] <= DEFAULT_TOLERANCES[torch.float32]
+    # off the identity, every head layer gets a gradient
+    for g in report["gradients"].numbers["warps"].values():
+        assert g["upstream"] > 0
+
+
+def test_joint_tuning_declares_and_compares_base(tray_spliced, tmp_path):
+    moved = _tuned(tray_spliced)
+    with torch.no_grad():
+        moved.get_parameter("fc.bias").add_(0.5)
+    folder = store.save(moved, tmp_path / "joint", tuning={"recipe": "joint", "base_changed": True})
+    report = verify(folder)
+    assert report.passed, report.failed
+    row = report["provenance"]
+    assert "joint recipe" in row.detail
+    assert row.numbers["diff"]["largest"][0]["name"] == "fc.bias"
+    assert row.numbers["diff"]["max_abs_diff"] == pytest.approx(0.5, rel=1e-6)
+    # the same change without the declaration fails
+    undeclared = store.save(moved, tmp_path / "undeclared", tuning={"recipe": "warp-only", "base_changed": False})
+    assert verify(undeclared).failed == ["provenance"]
+
+
+# ----------------------------------------------------------------------------- the in-memory API
+
+
+def test_verify_models_leaves_callers_models_alone(tray_source, tray_spliced):
+    base = copy.deepcopy(tray_source.model).train()
+    spliced = _clone(tray_spliced).train()
+    hashes = (state_dict_sha256(base.state_dict()), state_dict_sha256(spliced.state_dict()))
+    report = verify_models(base, spliced, dtype="float64")
+    assert report.passed, report.failed
+    assert "integrity" not in report
+    assert base.training and spliced.training
+    assert all(m.training for m in spliced.modules())
+    assert next(base.parameters()).dtype == torch.float32
+    assert (state_dict_sha256(base.state_dict()), state_dict_sha256(spliced.state_dict())) == hashes
+
+
+def test_report_types():
+    rows = [CheckResult("a", True, {"x": float("inf")}), CheckResult("b", False)]
+    report = VerifyReport(rows, {"seed": 1})
+    assert not report.passed and report.failed == ["b"]
+    assert report.to_json()["checks"][0]["numbers"]["x"] == "inf"
+    with pytest.raises(KeyError, match="no check named 'c'"):
+        report["c"]
+    assert not VerifyReport([]).passed
+
+
+def test_compare_outputs_flags_shape_and_nan():
+    a = torch.ones(2, 3)
+    assert not compare_outputs(a, torch.ones(2, 4))["passed"]
+    nan = torch.ones(2, 3)
+    nan[0, 0] = float("nan")
+    assert "NaN" in compare_outputs(a, nan)["detail"]
+
+
+# ----------------------------------------------------------------------------- bad input
+
+
+def test_bad_input_errors(tray_folder, tmp_path):
+    with pytest.raises(ManifestError, match="does not exist"):
+        verify(tmp_path / "nowhere")
+    with pytest.raises(ManifestError, match="not a splice folder"):
+        verify(tmp_path)
+    with pytest.raises(SpliceError, match="probe batch must be a positive integer, got 0"):
+        verify(tray_folder, batch=0)
+    with pytest.raises(SpliceError, match="dtype 'float16' is not supported"):
+        verify(tray_folder, dtype="float16")
+    with pytest.raises(SpliceError, match="opset 15 is too old.*GridSample"):
+        verify(tray_folder, onnx=True, opset=15)
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(DataError, match="holds no images"):
+        verify(tray_folder, images=tmp_path / "empty")
+    with pytest.raises(DataError, match="does not exist"):
+        verify(tray_folder, images=tmp_path / "missing")
+    with pytest.raises(SpliceError, match="needs the model's input shape"):
+        verify_models(torch.nn.Identity(), torch.nn.Identity())
+
+
+def test_missing_weights_file_is_bad_input(tray_folder, tmp_path):
+    from splice.errors import WeightsError
+
+    folder = _copy_folder(tray_folder, tmp_path / "incomplete")
+    (folder / store.WEIGHTS_NAME).unlink()
+    with pytest.raises(WeightsError, match="is missing; the folder is incomplete"):
+        verify(folder)
+
+
+# ----------------------------------------------------------------------------- CLI
+
+
+def test_cli_exit_codes(tray_folder, tmp_path, capsys):
+    cert = tmp_path / "cert.json"
+    assert main(["verify", str(tray_folder), "--report", str(cert), "--batch", "2"]) == 0
+    assert json.loads(cert.read_text())["passed"] is True
+    assert "PASS" in capsys.readouterr().out
+
+    broken = _copy_folder(tray_folder, tmp_path / "broken")
+    path = broken / store.WEIGHTS_NAME
+    data = bytearray(path.read_bytes())
+    data[-1] ^= 0x01
+    path.write_bytes(bytes(data))
+    assert main(["verify", str(broken), "--json"]) == 1
+    printed = json.loads(capsys.readouterr().out)
+    assert printed["passed"] is False and printed["checks"][0]["check"] == "integrity"
+
+    assert main(["verify", str(tmp_path / "nowhere")]) == 2
+    assert "does not exist" in capsys.readouterr().err
+    assert main(["verify", str(tray_folder), "--onnx", "--opset", "11"]) == 2
+    assert "GridSample" in capsys.readouterr().err
+
+
+class _CachedBias(torch.nn.Module):
+    """Indexes a bias table once in eval mode and keeps the result, as attention with relative position biases
+    does: a forward with gradients leaves a cached tensor that requires grad. Its check on a size keeps fx
+    out (the warps go in by hooks, and the model's own forward runs)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = torch.nn.Conv2d(3, 4, 3, padding=1)
+        self.table = torch.nn.Parameter(torch.randn(6))
+        self.register_buffer("index", torch.tensor([0, 2, 4, 5]))
+        self.cache: dict = {}
+        self.head = torch.nn.Linear(4, 3)
+
+    def forward(self, x):
+        if self.training:
+            bias = self.table[self.index]
+        else:
+            if "bias" not in self.cache:
+                self.cache["bias"] = self.table[self.index]
+            bias = self.cache["bias"]
+        y = self.conv(x) + bias.view(1, -1, 1, 1)
+        if y.shape[-1] % 2 == 0:  # Python on a size: torch.fx cannot trace it, the meta device can
+            y = y * 1.0
+        return self.head(y.mean((2, 3)))
+
+
+def test_the_onnx_check_runs_on_a_model_no_probe_has_run():
+    # the gradient check's forward filled the twin's cache with a tensor that requires grad; exported from
+    # that twin, the TorchScript exporter refused it as a constant
+    model = _CachedBias().eval()
+    with pytest.warns(splice.graph.TraceFallbackWarning):
+        spliced = insert(model, at="recommended", input_shape=(3, 8, 8))
+    report = verify_models(model, spliced, onnx=True)
+    assert report["onnx"].passed, report["onnx"].detail
+    assert report.passed, report.failed
+    assert model.cache == {}  # and the caller's model still has none
+
+
+def test_a_folders_onnx_check_runs_on_a_model_no_probe_has_run(model_file, tmp_path):
+    # verify runs the models it rebuilt as they are (each with its own copies of the buffers); the export
+    # still starts from one whose cache no probe has filled with a tensor that requires grad
+    with pytest.warns(splice.graph.TraceFallbackWarning):
+        spliced = insert(f"{model_file}:cached_bias_net", at="recommended", check=False)
+    folder = store.save(spliced, tmp_path / "cached")
+    report = verify(folder, onnx=True, trust_code=True)
+    assert report["onnx"].passed, report["onnx"].detail
+    assert report.passed, report.failed
