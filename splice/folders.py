@@ -225,7 +225,10 @@ def check_keeps_inputs(target: str | os.PathLike, inputs) -> None:
         if given is None or not isinstance(given, (str, os.PathLike)):
             continue
         text = os.fspath(given)
-        candidates = [text] + ([text.rsplit(":", 1)[0]] if ":" in text else [])
+        head = text.rpartition(":")[0]
+        # the file of path/file.py:factory; a registry spec (torchvision:NAME) names no file
+        is_file = head.endswith(".py") or "/" in head or os.sep in head
+        candidates = [text] + ([head] if is_file else [])
         for candidate in candidates:
             path = Path(candidate)
             if path.exists() and (path.resolve() == out or out in path.resolve().parents):

@@ -97,7 +97,7 @@ def respecified(info: SpliceInfo, spliced: nn.Module, source: Any, assemble: Cal
         differ = sorted(set(want) ^ set(got)) or sorted(k for k in want if want[k] != got.get(k))
         raise SpliceError(f"source {src.spec!r} does not build this splice's base (tensors differ: "
                           f"{', '.join(differ[:4])}); pass the spec and kwargs the base module was made with")
-    new = info.replace(spec=src.spec, kwargs=dict(src.kwargs))
+    new = info.replace(spec=src.spec, kwargs=dict(src.kwargs), code_sha256=src.code_sha256)
     state = {k: v.detach().clone() for k, v in spliced.state_dict().items()}
     try:
         # the record's points are re-applied to a copy (assemble's copy_base covers a record without any)

@@ -33,7 +33,7 @@ from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)
 from .version import library_versions
-from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_fits, check_spec,
+from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_state_fits, check_spec,
                       initialisers_skipped, is_hf_folder, load_source, parse_input_shapes, parse_kwargs,
                       read_safetensors, with_metadata)
 from .graph import relink_lifted
@@ -219,7 +219,7 @@ def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *
     model = _fill(empty, base_state) if empty is not None else None
     if model is None:
         model = _rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code)
-        check_fits(model.state_dict(), base_state, f"the weights of '{info.folder}'",
+        check_state_fits(model.state_dict(), base_state, f"the weights of '{info.folder}'",
                    "the model's code changed since the splice: build it as it was, or splice it again")
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
@@ -253,7 +253,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     from .warps import Warp
 
     own = model.state_dict(keep_vars=True)
-    check_fits(own, state, f"the weights of '{folder}'", "the folder was edited by hand or written by an "
+    check_state_fits(own, state, f"the weights of '{folder}'", "the folder was edited by hand or written by an "
                "incompatible version, or the model's code changed since the splice")
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
@@ -453,10 +453,13 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
 
 def _folder_source(folder, weights, kwargs, input_shape, *, trust_pickle: bool, trust_code: bool) -> Source:
     """:func:`load_folder_source`, refusing the options a folder settles itself rather than ignoring them."""
+    if weights is not None:  # before any work: a folder never takes other weights
+        raise SourceError(f"'{folder}' is a folder splice wrote: it carries its own weights and builder arguments, "
+                          "so --weights (weights=) would be ignored; drop it, or splice the model spec with those "
+                          "weights")
     src = load_folder_source(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     # a resumed run passes back the folder's own builder arguments, which are not ignored but the same
-    other_kwargs = bool(kwargs) and parse_kwargs(kwargs) != dict(src.kwargs)
-    given = "--weights (weights=)" if weights is not None else "--kwargs (kwargs=)" if other_kwargs else None
+    given = "--kwargs (kwargs=)" if kwargs and parse_kwargs(kwargs) != dict(src.kwargs) else None
     if given is not None:
         raise SourceError(f"'{folder}' is a folder splice wrote: it carries its own weights and builder arguments, "
                           f"so {given} would be ignored; drop it, or splice the model spec with those weights")

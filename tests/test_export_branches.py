@@ -97,3 +97,40 @@ def test_numbers_the_tracer_takes_from_shapes_pass_and_are_named():
     row = next(c for c in report.checks if c.check == "onnx")
     assert row.passed, row.detail
     assert "from shapes only" in row.detail
+
+
+class ReadsANumber(nn.Module):
+    """Scales by a number read from the pixels: .item() traces through torch.export as a value of its own."""
+
+    def forward(self, x):
+        return x / x.abs().amax().item()
+
+
+class NumpySign(nn.Module):
+    """A branch taken on a NumPy copy of the input: torch.export cannot run it at all."""
+
+    def forward(self, x):
+        return x * 2 if x.numpy().mean() > 0 else x * 3
+
+
+@pytest.mark.parametrize("net, kind", [(ReadsANumber, "values"), (NumpySign, "unknown")])
+def test_numbers_read_from_values_and_numpy_branches_are_not_taken_for_shapes(net, kind):
+    from splice.exporting.parity import onnx_parity
+
+    model = net().eval()
+    x = torch.randn(2, 3, 8, 8)
+    conversions = []
+    data = export_onnx_bytes(model, x, conversions=conversions)
+    assert conversions  # the tracer's warning, NumPy's included, names the line
+    assert value_branch(model, x)[0] == kind
+    # checked on the very batch it was traced on, as verify does: the values verdict, or the scaled probes
+    # (the sign flip catches the NumPy branch), must fail it
+    result = onnx_parity(model, data, [x], conversions=conversions, perturb=False)
+    assert not result["passed"], result["detail"]
+    assert ("tensor values" in result["detail"]) if kind == "values" else ("probe scaled by" in result["detail"])
+
+
+def test_a_static_export_is_checked_on_a_batch_it_was_not_traced_on(tmp_path):
+    spliced = _spliced(SamePadNet())
+    result = splice.export(spliced, onnx=tmp_path / "static.onnx", dynamic_batch=False)
+    assert result["exports"][0]["batch_sizes"] == [1, 1]  # the traced batch, and a fresh one

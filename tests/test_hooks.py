@@ -237,7 +237,7 @@ def test_within_splices_the_part_and_keeps_the_whole(tmp_path):
     report = verify(folder, onnx=True, trust_code=True)
     assert report.passed, [(r.check, r.detail) for r in report.checks if not r.passed]
     result = export(folder, onnx=tmp_path / "two.onnx", trust_code=True)["exports"][0]  # raises unless parity holds
-    assert result["batch_sizes"] == ([1, 3] if result["dynamic_batch"] else [1])
+    assert result["batch_sizes"] == ([1, 3] if result["dynamic_batch"] else [1, 1])
 
 
 def test_within_names_a_module_that_exists():

@@ -265,6 +265,56 @@ def test_a_checkpoint_with_another_number_of_classes_is_told_how_to_build_for_it
         load_source("splice.models:tray_net", weights=tmp_path / "w5.pt")
 
 
+def test_two_model_files_each_import_their_own_neighbours_and_an_edit_is_run(tmp_path):
+    """Both folders hold a layers.py; each model file gets its own. A file edited within one session is run again,
+    and the hash the splice records is that of the code it ran."""
+    import hashlib
+
+    import splice
+
+    for name, act in (("a", "relu"), ("b", "tanh")):
+        (tmp_path / name).mkdir()
+        (tmp_path / name / "layers.py").write_text(f"import torch\ndef act(x):\n    return torch.{act}(x)\n")
+        (tmp_path / name / "net.py").write_text(textwrap.dedent("""
+            import torch.nn as nn
+            from layers import act
+            class Net(nn.Module):
+                def __init__(self):
+                    super().__init__()
+                    self.conv = nn.Conv2d(3, 2, 1)
+                def forward(self, x):
+                    return act(self.conv(x))
+            def build():
+                return Net()
+            build.input_shape = (3, 8, 8)
+        """))
+    x = -torch.ones(1, 3, 8, 8)
+    a = load_source(f"{tmp_path / 'a' / 'net.py'}:build").model
+    b = load_source(f"{tmp_path / 'b' / 'net.py'}:build").model
+    with torch.no_grad():
+        assert (a(x) >= 0).all() and torch.equal(b(x), torch.tanh(b.conv(x)))
+    assert "layers" not in sys.modules
+    net = tmp_path / "a" / "net.py"
+    net.write_text(net.read_text().replace("return act(self.conv(x))", "return -act(self.conv(x))"))
+    edited = splice.insert(f"{net}:build", at="input")
+    with torch.no_grad():
+        assert (edited(x) <= 0).all()  # the new code ran, not the module cached from the first build
+    assert edited.splice_info.code_sha256 == hashlib.sha256(net.read_bytes()).hexdigest()
+
+
+def test_a_module_saved_with_its_spec_records_the_code_it_was_built_from(tmp_path):
+    import splice
+
+    (tmp_path / "net.py").write_text("import torch.nn as nn\ndef build():\n    return nn.Sequential(nn.Conv2d(3, 2, 1))\n"
+                                     "build.input_shape = (3, 8, 8)\n")
+    spec = f"{tmp_path / 'net.py'}:build"
+    module = load_source(spec).model
+    folder = splice.save(splice.insert(module, at="input", input_shape=(3, 8, 8)), tmp_path / "out", source=spec)
+    import json
+
+    assert json.loads((folder / "splice.json").read_text())["source"]["code_sha256"] == load_source(spec).code_sha256
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

@@ -379,7 +379,7 @@ def test_overwrite_replaces_a_spliced_folder_a_run_folder_or_an_empty_one(tmp_pa
         splice.save(splice.load(target), target)
 
 
-def test_overwrite_never_deletes_what_the_command_reads(tmp_path, spliced_folder, capsys):
+def test_overwrite_never_deletes_what_the_command_reads(tmp_path, spliced_folder, capsys, monkeypatch):
     import shutil
 
     run = tmp_path / "run"
@@ -395,6 +395,10 @@ def test_overwrite_never_deletes_what_the_command_reads(tmp_path, spliced_folder
     torch.save({}, weights)
     assert _insert(run, "--weights", str(weights), "--overwrite") == 2
     assert "would delete" in capsys.readouterr().err and weights.is_file()
+    # a registry spec names no file: an output folder that happens to share its head is no input
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "splice.models").mkdir()
+    assert _insert(tmp_path / "splice.models", "--overwrite") == 0
 
 
 # ----------------------------------------------------------------------------- pre-training resume

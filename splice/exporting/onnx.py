@@ -87,8 +87,9 @@ def onnx_output_names(model: nn.Module, example, n_outputs: int | None) -> list[
     return [f"output_{i}" for i in range(n_outputs)]
 
 #: how the TorchScript tracer's warning starts when traced code turns a tensor into a Python value (a branch, a
-#: count, a number): the graph keeps the value it had on the example, whether it came from a shape or from pixels
-CONVERSION_WARNING = "Converting a tensor to a Python"
+#: count, a number) or a NumPy array: the graph keeps the value it had on the example, whether it came from a
+#: shape or from pixels
+CONVERSION_WARNING = "Converting a tensor to a"
 
 
 def _conversion_sites(caught: list) -> list[str]:
@@ -131,8 +132,9 @@ def value_branch(model: nn.Module, example) -> tuple[str, str]:
     shapes) or ``("unknown", why)`` (torch.export failed for another reason).
 
     torch.export runs the forward on fake tensors, which have shapes but no values, so a branch on values stops
-    it with a data-dependent error; the TorchScript tracer instead fixes the branch the example took. Runs on a
-    twin in eval mode; the caller's model is not changed.
+    it with a data-dependent error; a number read from values (``.item()``, ``.tolist()``) traces through as
+    a value of the graph's own (an ``item`` node, an unbacked symbol), which the TorchScript tracer would fix
+    instead. Runs on a twin in eval mode; the caller's model is not changed.
     """
     twin = private_buffers(model).eval()
     try:
@@ -140,12 +142,21 @@ def value_branch(model: nn.Module, example) -> tuple[str, str]:
         with warnings.catch_warnings(), torch.no_grad(), _loggers_quiet(_EXPORT_LOGGERS), \
                 contextlib.redirect_stderr(io.StringIO()):
             warnings.simplefilter("ignore")
-            torch.export.export(twin, as_inputs(example), strict=False)
+            program = torch.export.export(twin, as_inputs(example), strict=False)
     except Exception as exc:
         if type(exc).__name__ in _DATA_DEPENDENT or "data-dependent" in str(exc):
             return "values", "torch.export stops there: the branch needs the values"
         return "unknown", f"{type(exc).__name__}: {first_line(exc)}"
+    read = [n for n in program.graph.nodes if n.op == "call_function" and _reads_a_value(n)]
+    if read:
+        return "values", "a number read from tensor values (.item(), .tolist(), float(tensor))"
     return "shapes", ""
+
+
+def _reads_a_value(node) -> bool:
+    """An exported node that turns a tensor's value into a number: ``item`` (and its ``_local_scalar_dense``)."""
+    name = getattr(node.target, "__name__", str(node.target))
+    return name.split(".")[0] in ("item", "_local_scalar_dense")
 
 
 @contextlib.contextmanager

@@ -257,8 +257,8 @@ def model_dtype(model: nn.Module) -> torch.dtype:
     return p.dtype if p is not None else torch.float32
 
 #: the scales of the extra probes run when the tracer fixed Python values (:data:`~.onnx.CONVERSION_WARNING`): a
-#: branch on brightness or contrast taken one way on the N(0,1) probe is taken the other way on one of them
-REGIME_SCALES = (8.0, 0.125)
+#: branch on brightness, contrast or sign taken one way on the N(0,1) probe is taken the other way on one of them
+REGIME_SCALES = (8.0, 0.125, -1.0)
 
 
 def value_regimes(batches) -> list[tuple]:
@@ -289,8 +289,10 @@ def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[
     if kind == "values":
         return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": True,
                 "detail": f"the model takes a Python branch or number from tensor values at {where} ({why}), and "
-                          "the ONNX graph keeps only the one the probe took; write it with torch.where (or "
-                          "torch.cond) so that the graph holds both, or keep this model in PyTorch"}
+                          "the ONNX graph keeps what the probe gave; keep such values tensors (torch.where or "
+                          "torch.cond for a branch, no .item() or float() on them) so that the graph computes "
+                          "them, or keep this model in PyTorch (an input check that raises belongs outside "
+                          "forward)"}
     if kind == "shapes":
         return {**summary, "tracer_conversions": list(sites),
                 "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, from shapes only "

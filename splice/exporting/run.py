@@ -21,8 +21,9 @@ __all__ = ["export", "export_model"]
 
 
 def _probe_inputs(shapes, dtype, *, dynamic_batch: bool, seed: int) -> tuple[tuple, list[tuple]]:
-    """(trace example, check batches), one tensor per input each: batch 1 static; dynamic traces at 2 and
-    checks at 1 and 3."""
+    """(trace example, check batches), one tensor per input each: static traces at 1 and checks on that batch and
+    a fresh one (a graph checked only on what it was traced on proves nothing of other inputs); dynamic traces at
+    2 and checks at 1 and 3."""
     gen = torch.Generator().manual_seed(seed)
 
     def batch(n: int) -> tuple[torch.Tensor, ...]:
@@ -32,7 +33,7 @@ def _probe_inputs(shapes, dtype, *, dynamic_batch: bool, seed: int) -> tuple[tup
         example = batch(2)
         return example, [batch(1), batch(3)]
     x = batch(1)
-    return x, [x]
+    return x, [x, batch(1)]
 
 def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
     import hashlib

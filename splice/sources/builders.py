@@ -63,9 +63,11 @@ def absolute_spec(spec: str) -> str:
 def _folder_importable(path: Path | None):
     """``path``'s folder at the end of ``sys.path`` for the block (unless it is there already), as ``python
     file.py`` would make it: a model file may import the modules beside it. Appended, so nothing installed is
-    shadowed, and taken out again after."""
+    shadowed; taken out again after, with the modules imported from it, so that another model file's
+    ``layers.py`` is its own and not this one's."""
     folder = None if path is None else str(path.resolve().parent)
     added = folder is not None and folder not in sys.path
+    before = set(sys.modules)
     if added:
         sys.path.append(folder)
     try:
@@ -73,6 +75,11 @@ def _folder_importable(path: Path | None):
     finally:
         if added and folder in sys.path:
             sys.path.remove(folder)
+        if added:
+            for name in set(sys.modules) - before:
+                file = getattr(sys.modules[name], "__file__", None)
+                if file and os.path.dirname(os.path.abspath(file)) == folder:
+                    del sys.modules[name]
 
 
 def code_sha256(spec: str) -> str | None:
@@ -92,12 +99,16 @@ def _import_factory(head: str, attr: str, spec: str):
         # the same name in every process (str hashes are salted per process)
         mod_name = FILE_MODULE_PREFIX + hashlib.sha256(str(path.resolve()).encode()).hexdigest()[:16]
         module = sys.modules.get(mod_name)
+        if module is not None and getattr(module, "__splice_code_sha256__", None) != code_sha256(spec):
+            del sys.modules[mod_name]  # the file changed since it was run here: run what it holds now
+            module = None
         if module is None:
             loader_spec = importlib.util.spec_from_file_location(mod_name, path)
             if loader_spec is None or loader_spec.loader is None:
                 raise SourceError(f"cannot import model file '{path}'; is it a Python file?")
             module = importlib.util.module_from_spec(loader_spec)
             sys.modules[mod_name] = module
+            module.__splice_code_sha256__ = code_sha256(spec)  # what code_sha256 records, of the code run
             try:
                 with _folder_importable(path):
                     loader_spec.loader.exec_module(module)

@@ -28,7 +28,7 @@ __all__ = [
     "with_metadata",
     "check_finite",
     "check_dtypes",
-    "check_fits",
+    "check_state_fits",
     "load_weights_",
     "WRAPPER_PREFIXES",
     "NESTING_KEYS",
@@ -272,7 +272,8 @@ def _classes_hint(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Ten
     return f"if it was trained for {n} classes, build the model for them (e.g. --kwargs '{{\"num_classes\": {n}}}'); "
 
 
-def check_fits(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], where: str, advice: str) -> None:
+def check_state_fits(own: Mapping[str, torch.Tensor], state: Mapping[str, torch.Tensor], where: str,
+                     advice: str) -> None:
     """Refuse, in one line ending in ``advice``, a ``state`` whose names or shapes are not exactly ``own``'s, and
     integer tensors where ``own`` holds floating point (:func:`check_dtypes`)."""
     missing = [k for k in own if k not in state]
@@ -297,7 +298,8 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
         kinds = sorted({str(state[k].dtype).replace("torch.", "") for k in cast})
         warnings.warn(f"{where} holds {len(cast)} tensor(s) in {', '.join(kinds)}; they are cast to the model's "
                       f"{str(own[cast[0]].dtype).replace('torch.', '')} on load", SpliceWarning, stacklevel=2)
-    # a batch norm's batch counter is left out of older checkpoints; torch's own strict load accepts that too
+    # a batch norm's batch counter is left out of older and hand-built checkpoints (torch's strict load accepts a
+    # state dict without version metadata that lacks it); the model keeps its own, and the load below is not strict
     missing = [k for k in own if k not in state and k.rsplit(".", 1)[-1] != "num_batches_tracked"]
     unexpected = [k for k in state if k not in own]
     mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]
