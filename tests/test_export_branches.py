@@ -134,3 +134,32 @@ def test_a_static_export_is_checked_on_a_batch_it_was_not_traced_on(tmp_path):
     spliced = _spliced(SamePadNet())
     result = splice.export(spliced, onnx=tmp_path / "static.onnx", dynamic_batch=False)
     assert result["exports"][0]["batch_sizes"] == [1, 1]  # the traced batch, and a fresh one
+
+
+class Guard(nn.Module):
+    """An input check: the model refuses non-finite images, and computes the same for every image it takes."""
+
+    def forward(self, x):
+        if not torch.isfinite(x).all():
+            raise ValueError("non-finite input")
+        return x
+
+
+class CheckedNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.guard = Guard()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(self.guard(x))), 1).flatten(1))
+
+
+def test_an_input_check_that_raises_is_not_a_branch_the_graph_gets_wrong(tmp_path):
+    torch.manual_seed(0)
+    spliced = splice.insert(CheckedNet(), at="input", input_shape=(3, 16, 16), leaves=["Guard"])
+    row = next(c for c in splice.verify(spliced, onnx=True).checks if c.check == "onnx")
+    assert row.passed and "input checks that raise, which the ONNX graph does not carry" in row.detail, row.detail
+    splice.export(spliced, onnx=tmp_path / "checked.onnx")
+    assert (tmp_path / "checked.onnx").is_file()

@@ -7,6 +7,7 @@ import copy
 import io
 import os
 import warnings
+from pathlib import Path
 
 import torch
 from torch import nn
@@ -93,16 +94,46 @@ CONVERSION_WARNING = "Converting a tensor to a"
 
 
 def _conversion_sites(caught: list) -> list[str]:
-    """``file:line`` of each place the tracer turned a tensor into a Python value; other warnings shown again."""
+    """``path:line`` of each place the tracer turned a tensor into a Python value; other warnings shown again."""
     sites = []
     for w in caught:
         if issubclass(w.category, torch.jit.TracerWarning):
             if str(w.message).startswith(CONVERSION_WARNING):
-                site = f"{os.path.basename(w.filename)}:{w.lineno}"
+                site = f"{w.filename}:{w.lineno}"
                 sites += [] if site in sites else [site]
         else:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     return sites
+
+
+def site_names(sites) -> str:
+    """``file:line, ...`` (file names without their folders; three at most) for a message."""
+    short = [f"{os.path.basename(s.rpartition(':')[0])}:{s.rpartition(':')[2]}" for s in sites]
+    return ", ".join(short[:3]) + (", ..." if len(short) > 3 else "")
+
+
+def input_checks(sites) -> list[str]:
+    """The ``path:line`` sites that are input checks: an ``assert``, or an ``if`` whose branch only raises. The
+    model refuses such inputs; the traced graph does not carry the check, and is right for every input the model
+    takes. Read from the source file (a site whose file cannot be read or parsed is not a check)."""
+    import ast
+
+    checks = []
+    for site in sites:
+        path, _, line = site.rpartition(":")
+        try:
+            tree = ast.parse(Path(path).read_text(encoding="utf-8"))
+        except (OSError, SyntaxError, ValueError):
+            continue
+        for node in ast.walk(tree):
+            if getattr(node, "lineno", None) != int(line):
+                continue
+            raises = isinstance(node, ast.If) and any(
+                branch and all(isinstance(s, ast.Raise) for s in branch) for branch in (node.body, node.orelse))
+            if isinstance(node, ast.Assert) or raises:
+                checks.append(site)
+                break
+    return checks
 
 
 # torch.export's errors for a Python branch or number taken from a tensor's values (fake tensors have none)

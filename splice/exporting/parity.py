@@ -30,8 +30,10 @@ from .onnx import (
     check_opset,
     export_onnx_bytes,
     exporting,
+    input_checks,
     input_names,
     onnx_output_names,
+    site_names,
     torchscript,
     value_branch,
 )
@@ -267,10 +269,6 @@ def value_regimes(batches) -> list[tuple]:
     return [tuple(t * scale for t in smallest) for scale in REGIME_SCALES]
 
 
-def _sites(sites: Sequence[str]) -> str:
-    return ", ".join(sites[:3]) + (", ..." if len(sites) > 3 else "")
-
-
 def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[str],
                       regimes: Callable[[], dict]) -> dict:
     """``summary`` judged again when the TorchScript tracer turned tensors into Python values at ``sites``.
@@ -279,13 +277,16 @@ def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[
     torch.export finds one taken from tensor values (:func:`~.onnx.value_branch`),
     the graph is wrong for inputs that go the other way, whatever the probes
     show: the check fails. If torch.export traces the model, they came from
-    shapes, which the graph fixes anyway. If it cannot tell, ``regimes()``
+    shapes, which the graph fixes anyway. If it cannot tell, or a site is an
+    input check that raises (:func:`~.onnx.input_checks`), ``regimes()``
     runs the graph on the probe scaled by :data:`REGIME_SCALES` as well.
     """
     if not sites:
         return summary
-    kind, why = value_branch(model, example)
-    where = _sites(sites)
+    checks = input_checks(sites)  # torch.export stops at a check that raises: what comes after goes unseen
+    kind, why = (("unknown", "input checks that raise, which the ONNX graph does not carry") if checks else
+                 value_branch(model, example))
+    where = site_names(sites)
     if kind == "values":
         return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": True,
                 "detail": f"the model takes a Python branch or number from tensor values at {where} ({why}), and "
