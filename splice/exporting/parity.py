@@ -260,7 +260,7 @@ def model_dtype(model: nn.Module) -> torch.dtype:
 
 #: the scales of the extra probes run when the tracer fixed Python values (:data:`~.onnx.CONVERSION_WARNING`): a
 #: branch on brightness, contrast or sign taken one way on the N(0,1) probe is taken the other way on one of them
-REGIME_SCALES = (8.0, 0.125, -1.0)
+REGIME_SCALES = (8.0, 64.0, 0.125, -1.0)
 
 
 def value_regimes(batches) -> list[tuple]:
@@ -274,12 +274,13 @@ def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[
     """``summary`` judged again when the TorchScript tracer turned tensors into Python values at ``sites``.
 
     The traced graph keeps the branch or number each took on the example. If
-    torch.export finds one taken from tensor values (:func:`~.onnx.value_branch`),
-    the graph is wrong for inputs that go the other way, whatever the probes
-    show: the check fails. If torch.export traces the model, they came from
-    shapes, which the graph fixes anyway. If it cannot tell, or a site is an
-    input check that raises (:func:`~.onnx.input_checks`), ``regimes()``
-    runs the graph on the probe scaled by :data:`REGIME_SCALES` as well.
+    torch.export traces the model (:func:`~.onnx.value_branch`), they came
+    from shapes, which the graph fixes anyway. Otherwise ``regimes()`` runs the
+    graph on the probe scaled by :data:`REGIME_SCALES` as well, and a miss
+    there fails the check: torch.export finding a branch or number on values
+    (which may still come from shapes turned into tensors, as in a detector's
+    resizing), an input check that raises (:func:`~.onnx.input_checks`), or
+    no answer at all are each told in the detail.
     """
     if not sites:
         return summary
@@ -287,27 +288,30 @@ def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[
     kind, why = (("unknown", "input checks that raise, which the ONNX graph does not carry") if checks else
                  value_branch(model, example))
     where = site_names(sites)
-    if kind == "values":
-        return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": True,
-                "detail": f"the model takes a Python branch or number from tensor values at {where} ({why}), and "
-                          "the ONNX graph keeps what the probe gave; keep such values tensors (torch.where or "
-                          "torch.cond for a branch, no .item() or float() on them) so that the graph computes "
-                          "them, or keep this model in PyTorch (an input check that raises belongs outside "
-                          "forward)"}
     if kind == "shapes":
         return {**summary, "tracer_conversions": list(sites),
                 "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, from shapes only "
                           "(torch.export traced the model with no branch on values)"}
     found = regimes()
     scales = " and ".join(f"{s:g}" for s in REGIME_SCALES)
-    fixed = (f"the tracer fixed Python values at {where}, and torch.export could not tell whether from shapes or "
-             f"values ({why})")
+    if kind == "values":
+        fixed = (f"the model takes a Python branch or number from tensor values at {where} ({why}), which the ONNX "
+                 "graph fixes at what the probe gave; keep such values tensors (torch.where or torch.cond for a "
+                 "branch, no .item() or float() on them) so that the graph computes them")
+    else:
+        fixed = (f"the tracer fixed Python values at {where}, and torch.export could not tell whether from shapes "
+                 f"or values ({why})")
+    if found.get("max_abs") is None and "onnxruntime failed" in str(found.get("detail")):
+        # onnxruntime cannot run a scaled probe at all (a detector that finds nothing there): no comparison made
+        return {**summary, "tracer_conversions": list(sites),
+                "detail": f"{summary['detail']}; {fixed}; onnxruntime could not run the probe scaled by {scales} "
+                          f"({first_line(str(found['detail']))[:160]}), so other inputs were not compared"}
     if not found["passed"]:
-        return {**summary, "passed": False, "tracer_conversions": list(sites),
+        return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": kind == "values",
                 "detail": f"on the probe scaled by {scales}: {found['detail']}; {fixed}"}
     return {**summary, "tracer_conversions": list(sites),
             "detail": f"{summary['detail']}; {fixed}; the graph also matched on the probe scaled by {scales}, but "
-                      "a branch on values may still go another way on other inputs"}
+                      "other inputs may still go another way"}
 
 
 def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
