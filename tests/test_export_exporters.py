@@ -90,3 +90,22 @@ def test_an_export_replaces_an_earlier_export_but_no_other_file(tray_folder, tmp
     earlier.write_bytes(b"an earlier export")
     export(str(tray_folder), onnx=earlier)
     assert earlier.read_bytes() != b"an earlier export"
+
+
+def test_an_onnx_file_says_what_it_needs_and_what_it_returns(tray_folder, tmp_path):
+    """The metadata a deployment reads back with onnxruntime (InferenceSession.get_modelmeta, the outside
+    reference): input shapes, normalisation, class names, and which output is which."""
+    import json
+
+    import onnxruntime as ort
+
+    target = tmp_path / "tray.onnx"
+    export(str(tray_folder), onnx=target)
+    session = ort.InferenceSession(str(target), providers=["CPUExecutionProvider"])
+    meta = session.get_modelmeta().custom_metadata_map
+    info = splice.load(tray_folder).splice_info
+    assert json.loads(meta["splice.input_shapes"]) == [list(s) for s in info.input_shapes]
+    assert json.loads(meta["splice.normalisation"]) == info.normalisation
+    assert json.loads(meta["splice.class_names"]) == info.class_names
+    assert len(json.loads(meta["splice.outputs"])) == len(session.get_outputs())
+    assert json.loads(meta["splice.points"]) == [p.name for p in info.points]

@@ -322,3 +322,18 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
                                     optimize=fold_constants, verbose=False)
         data = program.model_proto.SerializeToString()
         return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data
+
+
+def with_metadata(data: bytes, props: dict[str, str]) -> bytes:
+    """``data`` (a serialised ONNX model) with ``props`` as its ``metadata_props``: what a deployment needs to feed
+    the graph and read its outputs, carried in the file. The graph itself is not touched."""
+    import onnx
+
+    proto = onnx.load_from_string(data)
+    kept = [p for p in proto.metadata_props if p.key not in props]
+    del proto.metadata_props[:]
+    proto.metadata_props.extend(kept)
+    for key, value in props.items():
+        entry = proto.metadata_props.add()
+        entry.key, entry.value = key, value
+    return proto.SerializeToString()

@@ -13,7 +13,7 @@ from ..copies import rng_kept
 from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
 from ..manifest import info_of
 from ..store import load
-from .onnx import check_opset, export_onnx_bytes
+from .onnx import check_opset, export_onnx_bytes, with_metadata
 from .parity import model_dtype, onnx_parity
 from .pt2 import export_pt2_bytes, pt2_parity
 
@@ -152,6 +152,28 @@ def _check_targets(onnx, pt2, opset: int, exporter: str) -> None:
                               f"give a file name ending in {suffix}, or move that file away")
 
 
+def _deployment_notes(model) -> dict[str, str]:
+    """What the ONNX file says of itself (``metadata_props``, JSON values): the input shapes, the normalisation the
+    images need first, the class names, the outputs in the graph's order (``output_i`` is the i-th), the warp
+    points and the splice version."""
+    import json
+
+    from ..compare import flatten_outputs
+    from ..copies import private_buffers
+    from ..version import __version__
+
+    info = info_of(model)
+    twin = private_buffers(model).eval()  # a forward of splice's own: the caller's modes and buffers stay
+    param = next(iter(model.parameters()), None)
+    like = {"dtype": model_dtype(model), "device": param.device if param is not None else "cpu"}
+    with torch.no_grad():
+        outputs = list(flatten_outputs(twin(*[torch.zeros((1, *s), **like) for s in info.input_shapes])))
+    return {"splice.input_shapes": json.dumps([list(s) for s in info.input_shapes]),
+            "splice.normalisation": json.dumps(info.normalisation), "splice.class_names": json.dumps(info.class_names),
+            "splice.outputs": json.dumps(outputs), "splice.points": json.dumps([p.name for p in info.points]),
+            "splice.version": __version__}
+
+
 def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bool, exporter: str, seed: int,
                    tol: float | None) -> dict:
     shapes = info_of(model).input_shapes
@@ -161,10 +183,13 @@ def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bo
         data, result, seconds, dynamic = _checked(model, fmt, shapes, dynamic_batch=dynamic_batch, opset=opset,
                                                   exporter=exporter, seed=seed, tol=tol)
         if not result["passed"]:
+            hint = "" if result.get("tracer_conversions") else ". Try another --opset or report the model"
             raise CheckFailed(
                 f"the {fmt} export of {what} does not match the model ({result['detail']}); "
-                f"nothing was written to '{target}'. Try another --opset or report the model"
+                f"nothing was written to '{target}'{hint}"
             )
+        if fmt == "onnx":
+            data = with_metadata(data, _deployment_notes(model))
         path, digest = _keep(target, data)
         done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,
                      "dynamic_batch": dynamic,
