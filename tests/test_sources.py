@@ -315,6 +315,17 @@ def test_a_module_saved_with_its_spec_records_the_code_it_was_built_from(tmp_pat
     assert json.loads((folder / "splice.json").read_text())["source"]["code_sha256"] == load_source(spec).code_sha256
 
 
+def test_a_checkpoint_with_an_ema_copy_says_which_weights_it_loads(tmp_path):
+    from splice.errors import SpliceWarning
+
+    state = _small_state()
+    ema = {k: v + 1 if v.is_floating_point() else v for k, v in state.items()}
+    torch.save({"model": state, "model_ema": ema, "epoch": 3}, tmp_path / "ckpt.pt")
+    with pytest.warns(SpliceWarning, match=r"holds 'model' and 'model_ema'; splice loads 'model'"):
+        src = load_source("splice.models:tray_net", weights=tmp_path / "ckpt.pt")
+    assert src.weights_sha256 == state_dict_sha256(state)
+
+
 def test_weights_for_another_architecture(tmp_path):
     import torchvision
 

@@ -150,6 +150,15 @@ def _is_tensor_dict(obj: object) -> bool:
     )
 
 
+def _note_other_weights(obj: Mapping, key: str, path: Path) -> None:
+    """Say which weights were taken when a checkpoint holds more than one set (a training script's EMA copy)."""
+    others = [k for k in obj if isinstance(k, str) and k != key and "ema" in k.lower() and isinstance(obj[k], Mapping)]
+    if others:
+        warnings.warn(f"'{path}' holds {key!r} and {', '.join(repr(k) for k in others)}; splice loads {key!r}. To load "
+                      f"another, save it alone: torch.save(checkpoint[{others[0]!r}], 'weights.pt')", SpliceWarning,
+                      stacklevel=2)
+
+
 def _unnest(obj: object, path: Path) -> dict[str, torch.Tensor]:
     if isinstance(obj, nn.Module):
         return dict(obj.state_dict())
@@ -159,9 +168,11 @@ def _unnest(obj: object, path: Path) -> dict[str, torch.Tensor]:
         for key in NESTING_KEYS:
             if key in obj:
                 try:
-                    return _unnest(obj[key], path)
+                    found = _unnest(obj[key], path)
                 except WeightsError:
                     continue
+                _note_other_weights(obj, key, path)
+                return found
         tensors = {k: v for k, v in obj.items() if isinstance(k, str) and isinstance(v, torch.Tensor)}
         if tensors:
             return tensors
