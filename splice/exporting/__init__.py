@@ -32,7 +32,8 @@ leaves no file: the program is built and checked in memory, then written with
 renamed into place).
 
 Modules: :mod:`.onnx` (exporters, opsets), :mod:`.weights` (perturbed heads,
-weights as graph inputs), :mod:`.parity` (onnxruntime parity), :mod:`.pt2`
+weights as graph inputs), :mod:`.parity` (onnxruntime parity), :mod:`.branches` (places the tracer fixed
+a Python value), :mod:`.pt2`
 (torch.export), :mod:`.run` (:func:`export`, the command; :func:`export_model` for a spliced model in memory).
 """
 

@@ -30,13 +30,11 @@ from .onnx import (
     check_opset,
     export_onnx_bytes,
     exporting,
-    input_checks,
     input_names,
     onnx_output_names,
-    site_names,
     torchscript,
-    value_branch,
 )
+from .branches import REGIME_TOLERANCE, judge_conversions, value_regimes
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
 __all__ = ["EXPORT_TOLERANCES", "JUDGED_QUANTILES", "ROUNDING_LIMIT", "onnx_parity", "check_onnx_graph"]
@@ -258,62 +256,6 @@ def model_dtype(model: nn.Module) -> torch.dtype:
     p = next(iter(model.parameters()), None)
     return p.dtype if p is not None else torch.float32
 
-#: the scales of the extra probes run when the tracer fixed Python values (:data:`~.onnx.CONVERSION_WARNING`): a
-#: branch on brightness, contrast or sign taken one way on the N(0,1) probe is taken the other way on one of them
-REGIME_SCALES = (8.0, 64.0, 0.125, -1.0)
-
-
-def value_regimes(batches) -> list[tuple]:
-    """The smallest of ``batches`` (one tensor per input each) at each of :data:`REGIME_SCALES`."""
-    smallest = min(batches, key=lambda b: b[0].shape[0])
-    return [tuple(t * scale for t in smallest) for scale in REGIME_SCALES]
-
-
-def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[str],
-                      regimes: Callable[[], dict]) -> dict:
-    """``summary`` judged again when the TorchScript tracer turned tensors into Python values at ``sites``.
-
-    The traced graph keeps the branch or number each took on the example. If
-    torch.export traces the model (:func:`~.onnx.value_branch`), they came
-    from shapes, which the graph fixes anyway. Otherwise ``regimes()`` runs the
-    graph on the probe scaled by :data:`REGIME_SCALES` as well, and a miss
-    there fails the check: torch.export finding a branch or number on values
-    (which may still come from shapes turned into tensors, as in a detector's
-    resizing), an input check that raises (:func:`~.onnx.input_checks`), or
-    no answer at all are each told in the detail.
-    """
-    if not sites:
-        return summary
-    checks = input_checks(sites)  # torch.export stops at a check that raises: what comes after goes unseen
-    kind, why = (("unknown", "input checks that raise, which the ONNX graph does not carry") if checks else
-                 value_branch(model, example))
-    where = site_names(sites)
-    if kind == "shapes":
-        return {**summary, "tracer_conversions": list(sites),
-                "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, from shapes only "
-                          "(torch.export traced the model with no branch on values)"}
-    found = regimes()
-    scales = " and ".join(f"{s:g}" for s in REGIME_SCALES)
-    if kind == "values":
-        fixed = (f"the model takes a Python branch or number from tensor values at {where} ({why}), which the ONNX "
-                 "graph fixes at what the probe gave; keep such values tensors (torch.where or torch.cond for a "
-                 "branch, no .item() or float() on them) so that the graph computes them")
-    else:
-        fixed = (f"the tracer fixed Python values at {where}, and torch.export could not tell whether from shapes "
-                 f"or values ({why})")
-    if found.get("max_abs") is None and "onnxruntime failed" in str(found.get("detail")):
-        # onnxruntime cannot run a scaled probe at all (a detector that finds nothing there): no comparison made
-        return {**summary, "tracer_conversions": list(sites),
-                "detail": f"{summary['detail']}; {fixed}; onnxruntime could not run the probe scaled by {scales} "
-                          f"({first_line(str(found['detail']))[:160]}), so other inputs were not compared"}
-    if not found["passed"]:
-        return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": kind == "values",
-                "detail": f"on the probe scaled by {scales}: {found['detail']}; {fixed}"}
-    return {**summary, "tracer_conversions": list(sites),
-            "detail": f"{summary['detail']}; {fixed}; the graph also matched on the probe scaled by {scales}, but "
-                      "other inputs may still go another way"}
-
-
 def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list[int], how: str | None) -> dict:
     passed = stored["passed"] and (perturbed is None or perturbed["passed"])
     if not stored["passed"]:
@@ -372,7 +314,7 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
         result = _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references,
                                             judged=judged)
         return judge_conversions(result, model, batches[-1], conversions, lambda: _parity_with_weight_inputs(
-            model, proto, value_regimes(batches), perturb=False, tol=tol, references=None, judged=judged))
+            model, proto, value_regimes(batches), perturb=False, tol=REGIME_TOLERANCE, references=None, judged=False))
     if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
         proto = onnx.ModelProto()
         proto.CopyFrom(onnx_model)
@@ -387,9 +329,9 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     model.eval()  # a twin of the caller's model
     session = _ort_session(checked)
 
-    def run(torch_model, sess, extra: dict, known=None, on=batches) -> dict:
+    def run(torch_model, sess, extra: dict, known=None, on=batches, within=tol) -> dict:
         names = [i.name for i in sess.get_inputs()[:len(batches[0])]]
-        return _run_batches(torch_model, sess, names, on, extra, tol, known, judged=judged)
+        return _run_batches(torch_model, sess, names, on, extra, within, known, judged=judged and within == tol)
 
     stored = run(model, session, {}, references)
     perturbed = None
@@ -405,7 +347,7 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
             perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     summary = parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
     return judge_conversions(summary, model, batches[-1], conversions,
-                             lambda: run(model, session, {}, on=value_regimes(batches)))
+                             lambda: run(model, session, {}, on=value_regimes(batches), within=REGIME_TOLERANCE))
 
 def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
     """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
@@ -496,5 +438,6 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
                                         perturbed_references=[traced], optimise=False, judged=judged)
     # the graph was traced on the very batch it is checked on: a branch on values is judged apart
     result = judge_conversions(result, model, xs, conversions, lambda: _parity_with_weight_inputs(
-        model, data, value_regimes([xs]), perturb=False, tol=tol, references=None, optimise=False, judged=judged))
+        model, data, value_regimes([xs]), perturb=False, tol=REGIME_TOLERANCE, references=None, optimise=False,
+        judged=False))
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
