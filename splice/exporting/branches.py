@@ -38,19 +38,25 @@ def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[
 
     The traced graph keeps the branch or number each took on the example. If
     torch.export traces the model (:func:`~.onnx.value_branch`), they came
-    from shapes, which the graph fixes anyway. Otherwise ``regimes()`` runs the
-    graph on the probe scaled by :data:`REGIME_SCALES` as well, and a miss
-    there fails the check: torch.export finding a branch or number on values
-    (which may still come from shapes turned into tensors, as in a detector's
-    resizing), an input check that raises (:func:`~.onnx.input_checks`), or
-    no answer at all are each told in the detail.
+    from shapes, which the graph fixes anyway; when every place is an input
+    check that raises (:func:`~.onnx.input_checks`), the graph computes as the
+    model on every input it takes. Otherwise ``regimes()`` runs the graph on
+    the probe scaled by :data:`REGIME_SCALES` as well, and a miss there fails
+    the check: torch.export finding a branch or number on values (which may
+    still come from shapes turned into tensors, as in a detector's resizing),
+    or no answer at all, is told in the detail.
     """
     if not sites:
         return summary
-    checks = input_checks(sites)  # torch.export stops at a check that raises: what comes after goes unseen
-    kind, why = (("unknown", "input checks that raise, which the ONNX graph does not carry") if checks else
-                 value_branch(model, example))
+    checks = input_checks(sites)
     where = site_names(sites)
+    if len(checks) == len(sites):  # each place only refuses inputs: the graph computes as the model on the rest
+        return {**summary, "tracer_conversions": list(sites),
+                "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, input checks that raise, "
+                          "which the ONNX graph does not carry (it computes as the model on every input the model "
+                          "takes)"}
+    # torch.export stops at a check that raises: what comes after it goes unseen
+    kind, why = (("unknown", "input checks that raise come first") if checks else value_branch(model, example))
     if kind == "shapes":
         return {**summary, "tracer_conversions": list(sites),
                 "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, from shapes only "

@@ -409,6 +409,7 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     ``splice verify --onnx``; ``splice export`` checks the file it ships.
     """
     check_opset(opset, "torchscript")
+    plain = model
     model = private_buffers(model)  # traced and run in eval mode on a twin: the caller's modes and buffers stay
     judged, tol = tol is None, parity_tolerance(model, tol)
     swapped = perturbed_tensors(model) if perturb else {}
@@ -437,7 +438,7 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
                                         references=None if reference is None else [reference],
                                         perturbed_references=[traced], optimise=False, judged=judged)
     # the graph was traced on the very batch it is checked on: a branch on values is judged apart
-    result = judge_conversions(result, model, xs, conversions, lambda: _parity_with_weight_inputs(
-        model, data, value_regimes([xs]), perturb=False, tol=REGIME_TOLERANCE, references=None, optimise=False,
-        judged=False))
+    result = judge_conversions(result, plain, xs, conversions, lambda: _parity_with_weight_inputs(
+        private_buffers(plain), data, value_regimes([xs]), perturb=False, tol=REGIME_TOLERANCE, references=None,
+        optimise=False, judged=False))
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
