@@ -174,13 +174,30 @@ def _deployment_notes(model) -> dict[str, str]:
             "splice.version": __version__}
 
 
+def _float32_for_onnx(model):
+    """``model``, or a float32 copy of a float64 one, with a warning: onnxruntime runs no float64 convolution or
+    grid sampling, and ``verify --onnx`` checks a float32 copy too. The caller's model is not changed."""
+    if model_dtype(model) != torch.float64:
+        return model
+    import copy
+
+    from ..manifest import attach_info
+
+    warnings.warn("the model is float64, and onnxruntime runs no float64 convolution or grid sampling: the ONNX "
+                  "file is exported from a float32 copy (as verify --onnx checks it)", SpliceWarning, stacklevel=4)
+    twin = copy.deepcopy(model).float()
+    attach_info(twin, info_of(model))  # a GraphModule's deepcopy drops its record
+    return twin
+
+
 def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bool, exporter: str, seed: int,
                    tol: float | None) -> dict:
     shapes = info_of(model).input_shapes
     jobs = [(fmt, target) for fmt, target in (("onnx", onnx), ("pt2", pt2)) if target is not None]
     done = []
     for fmt, target in jobs:
-        data, result, seconds, dynamic = _checked(model, fmt, shapes, dynamic_batch=dynamic_batch, opset=opset,
+        model_fmt = _float32_for_onnx(model) if fmt == "onnx" else model
+        data, result, seconds, dynamic = _checked(model_fmt, fmt, shapes, dynamic_batch=dynamic_batch, opset=opset,
                                                   exporter=exporter, seed=seed, tol=tol)
         if not result["passed"]:
             hint = "" if result.get("tracer_conversions") else ". Try another --opset or report the model"
@@ -189,7 +206,7 @@ def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bo
                 f"nothing was written to '{target}'{hint}"
             )
         if fmt == "onnx":
-            data = with_metadata(data, _deployment_notes(model))
+            data = with_metadata(data, _deployment_notes(model_fmt))
         path, digest = _keep(target, data)
         done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,
                      "dynamic_batch": dynamic,
