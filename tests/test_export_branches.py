@@ -163,3 +163,63 @@ def test_an_input_check_that_raises_is_not_a_branch_the_graph_gets_wrong(tmp_pat
     assert row.passed and "input checks that raise, which the ONNX graph does not carry" in row.detail, row.detail
     splice.export(spliced, onnx=tmp_path / "checked.onnx")
     assert (tmp_path / "checked.onnx").is_file()
+
+
+class TracingOnlyGate(nn.Module):
+    """A branch on values written only on the tracing path, as export-minded code keeps one: torch.export runs the
+    eager path (torch.where) and sees no branch, the TorchScript tracer fixes the other."""
+
+    def forward(self, x):
+        if torch.jit.is_tracing():
+            if x.amax() > 6.0:
+                return -x
+            return x
+        return torch.where(x.amax() > 6.0, -x, x)
+
+
+class StripPad(nn.Module):
+    """Drops right-hand zero padding: a count read from the pixels, which no scaled probe changes."""
+
+    def forward(self, x):
+        width = int((x.abs().amax(dim=(0, 1, 2)) > 0).sum())
+        return x[..., :max(width, 1)]
+
+
+class TriedCheck(nn.Module):
+    """A raise caught nearby is control flow, not an input check."""
+
+    def forward(self, x):
+        try:
+            assert x.amax() < 3.0
+            return x
+        except AssertionError:
+            return -x
+
+
+def _with(layer: nn.Module):
+    """GatedNet's gate replaced by ``layer``, kept a leaf so that the spliced graph calls its Python forward."""
+    net = GatedNet()
+    net.gate = layer
+    torch.manual_seed(0)
+    return splice.insert(net, at="input", input_shape=(3, 16, 16), leaves=[type(layer).__name__])
+
+
+def test_the_scaled_probes_run_on_shapes_too_and_an_unproven_pass_says_so(tmp_path):
+    row = next(c for c in splice.verify(_with(TracingOnlyGate()), onnx=True).checks if c.check == "onnx")
+    assert not row.passed and "from shapes only" in row.detail and "on the probe scaled by" in row.detail
+    stripped = _with(StripPad())
+    row = next(c for c in splice.verify(stripped, onnx=True).checks if c.check == "onnx")
+    assert row.passed and row.warning and "not proven for other inputs" in row.detail
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        splice.export(stripped, onnx=tmp_path / "strip.onnx")
+    assert any("not proven for every input" in str(w.message) for w in seen)
+
+
+def test_a_raise_caught_nearby_is_not_an_input_check():
+    from splice.exporting.onnx import input_checks
+
+    sites = [f"{__file__}:{TriedCheck.forward.__code__.co_firstlineno + 2}"]
+    assert input_checks(sites) == []
+    guard = [f"{__file__}:{Guard.forward.__code__.co_firstlineno + 1}"]
+    assert input_checks(guard) == guard

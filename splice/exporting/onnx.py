@@ -125,12 +125,15 @@ def input_checks(sites) -> list[str]:
             tree = ast.parse(Path(path).read_text(encoding="utf-8"))
         except (OSError, SyntaxError, ValueError):
             continue
+        guarded = {id(n) for t in ast.walk(tree) if isinstance(t, ast.Try) for s in t.body for n in ast.walk(s)}
         for node in ast.walk(tree):
-            if getattr(node, "lineno", None) != int(line):
+            test = getattr(node, "test", None)
+            if not isinstance(node, (ast.If, ast.Assert)) or not node.lineno <= int(line) <= test.end_lineno:
                 continue
-            raises = isinstance(node, ast.If) and any(
+            raises = isinstance(node, ast.Assert) or any(
                 branch and all(isinstance(s, ast.Raise) for s in branch) for branch in (node.body, node.orelse))
-            if isinstance(node, ast.Assert) or raises:
+            # a raise caught nearby is control flow, and a value named in the test may be used after it
+            if raises and id(node) not in guarded and not any(isinstance(n, ast.NamedExpr) for n in ast.walk(test)):
                 checks.append(site)
                 break
     return checks

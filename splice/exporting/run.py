@@ -13,7 +13,7 @@ from ..copies import rng_kept
 from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
 from ..manifest import info_of
 from ..store import load
-from .onnx import check_opset, export_onnx_bytes, with_metadata
+from .onnx import check_opset, export_onnx_bytes, site_names, with_metadata
 from .parity import model_dtype, onnx_parity
 from .pt2 import export_pt2_bytes, pt2_parity
 
@@ -166,8 +166,11 @@ def _deployment_notes(model) -> dict[str, str]:
     twin = private_buffers(model).eval()  # a forward of splice's own: the caller's modes and buffers stay
     param = next(iter(model.parameters()), None)
     like = {"dtype": model_dtype(model), "device": param.device if param is not None else "cpu"}
-    with torch.no_grad():
-        outputs = list(flatten_outputs(twin(*[torch.zeros((1, *s), **like) for s in info.input_shapes])))
+    try:
+        with torch.no_grad():
+            outputs = list(flatten_outputs(twin(*[torch.zeros((1, *s), **like) for s in info.input_shapes])))
+    except Exception:  # a forward that refuses zeros: the outputs keep the graph's own names
+        outputs = None
     return {"splice.input_shapes": json.dumps([list(s) for s in info.input_shapes]),
             "splice.normalisation": json.dumps(info.normalisation), "splice.class_names": json.dumps(info.class_names),
             "splice.outputs": json.dumps(outputs), "splice.points": json.dumps([p.name for p in info.points]),
@@ -207,6 +210,11 @@ def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bo
             )
         if fmt == "onnx":
             data = with_metadata(data, _deployment_notes(model_fmt))
+            if result.get("unproven"):
+                warnings.warn(f"the ONNX graph of {what} holds Python values the tracer fixed at "
+                              f"{site_names(result.get('tracer_conversions', []))}; it matched torch on the probes, "
+                              "but is not proven for every input: compare it on your own images", SpliceWarning,
+                              stacklevel=3)
         path, digest = _keep(target, data)
         done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,
                      "dynamic_batch": dynamic,

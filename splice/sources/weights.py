@@ -152,7 +152,8 @@ def _is_tensor_dict(obj: object) -> bool:
 
 def _note_other_weights(obj: Mapping, key: str, path: Path) -> None:
     """Say which weights were taken when a checkpoint holds more than one set (a training script's EMA copy)."""
-    others = [k for k in obj if isinstance(k, str) and k != key and "ema" in k.lower() and isinstance(obj[k], Mapping)]
+    others = [k for k in obj if isinstance(k, str) and k != key and re.search(r"(^|_)ema($|_)", k.lower())
+              and (isinstance(obj[k], nn.Module) or (isinstance(obj[k], Mapping) and len(obj[k]) > 0))]
     if others:
         warnings.warn(f"'{path}' holds {key!r} and {', '.join(repr(k) for k in others)}; splice loads {key!r}. To load "
                       f"another, save it alone: torch.save(checkpoint[{others[0]!r}], 'weights.pt')", SpliceWarning,

@@ -148,6 +148,8 @@ def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int,
         numbers["note"] = "run in float32 (onnxruntime's GridSample is float32)"
     summary = (f"abs {short_number(result['max_abs'])}, perturbed {short_number(result['max_abs_perturbed'])}, "
                f"export {seconds:.2f}s")
+    unproven = ("the tracer fixed Python values the graph is not proven to hold for every input (see the detail)"
+                if result.get("passed") and result.get("unproven") else "")
     return CheckResult("onnx", bool(result["passed"]), numbers,
                        f"onnxruntime vs torch (opset {opset}, {exporter}{', weights fed as inputs' if fed else ''}): "
-                       f"{result['detail']}", summary)
+                       f"{result['detail']}", summary, warning=unproven)
