@@ -198,6 +198,13 @@ def test_a_cpu_run_is_deterministic_without_the_nan_fill_and_restores_the_caller
 def test_warp_recipe_on_a_plain_model_explains_insert(tmp_path, base_run):
     with pytest.raises(RecipeError, match=r"trains warps, but .* has none; splice it first, e.g. 'splice insert"):
         tune_keywords(str(base_run[0] / "best"), recipe="warp-only", data="digits", out=tmp_path / "a", **QUIET)
+    from splice.models import tray_net
+
+    torch.save(tray_net().state_dict(), tmp_path / "my weights.pt")
+    with pytest.raises(RecipeError, match=r"'splice insert splice.models:tray_net --weights '.*my weights.pt' --at "
+                                          r"input --warp affine --out SPLICED'"):  # the advice keeps the weights
+        tune_keywords("splice.models:tray_net", weights=tmp_path / "my weights.pt", recipe="warp-only", data="digits",
+                      out=tmp_path / "b", **QUIET)
 
 
 def test_baseline_on_a_spliced_model_is_refused(tmp_path, spliced):
