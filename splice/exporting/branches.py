@@ -26,10 +26,9 @@ REGIME_SCALES = (8.0, 64.0, 0.125, -1.0)
 REGIME_TOLERANCE = 0.25
 
 
-def value_regimes(batches) -> list[tuple]:
-    """The smallest of ``batches`` (one tensor per input each) at each of :data:`REGIME_SCALES`."""
-    smallest = min(batches, key=lambda b: b[0].shape[0])
-    return [tuple(t * scale for t in smallest) for scale in REGIME_SCALES]
+def value_regimes(batch: tuple) -> list[tuple]:
+    """``batch`` (one tensor per input) at each of :data:`REGIME_SCALES`."""
+    return [tuple(t * scale for t in batch) for scale in REGIME_SCALES]
 
 
 def _probe(run: Callable[[tuple], dict], batch: tuple) -> tuple[str, str]:
@@ -50,11 +49,13 @@ def _probe(run: Callable[[tuple], dict], batch: tuple) -> tuple[str, str]:
     return "miss", detail
 
 
-def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[str],
+def judge_conversions(summary: dict, model: nn.Module, batches: Sequence[tuple], sites: Sequence[str],
                       run: Callable[[tuple], dict]) -> dict:
     """``summary`` judged again when the TorchScript tracer turned tensors into Python values at ``sites``.
 
     The traced graph keeps the branch or number each took on the example.
+    ``batches`` are the batches checked (one tensor per input each); the
+    smallest is the probe torch.export and the scaled probes start from.
     When every place is an input check that raises (:func:`~.onnx.input_checks`),
     the graph computes as the model on every input it takes. Otherwise the
     graph runs on the probe scaled by each of :data:`REGIME_SCALES` (``run``
@@ -75,9 +76,10 @@ def judge_conversions(summary: dict, model: nn.Module, example, sites: Sequence[
                 "detail": f"{summary['detail']}; the tracer fixed Python values at {where}, input checks that raise, "
                           "which the ONNX graph does not carry (it computes as the model on every input the model "
                           "takes)"}
+    example = min(batches, key=lambda b: b[0].shape[0])
     # torch.export stops at a check that raises: what comes after it goes unseen
     kind, why = (("unknown", "input checks that raise come first") if checks else value_branch(model, example))
-    outcomes = [(scale, *_probe(run, batch)) for scale, batch in zip(REGIME_SCALES, value_regimes([example]))]
+    outcomes = [(scale, *_probe(run, batch)) for scale, batch in zip(REGIME_SCALES, value_regimes(example))]
     if kind == "values":
         fixed = (f"the model takes a Python branch or number from tensor values at {where} ({why}), which the ONNX "
                  "graph fixes at what the probe gave; keep such values tensors (torch.where or torch.cond for a "

@@ -15,6 +15,7 @@ from torch import nn
 from ..compare import flatten_outputs
 from ..copies import private_buffers
 from ..errors import SpliceError, first_line
+from ..graph.exported import export_quietly
 from .weights import WeightsAsInputs
 
 __all__ = ["MIN_OPSET", "DYNAMO_MIN_OPSET", "EXPORTERS", "check_opset", "export_onnx_bytes", "as_inputs",
@@ -141,23 +142,6 @@ def input_checks(sites) -> list[str]:
 
 # torch.export's errors for a Python branch or number taken from a tensor's values (fake tensors have none)
 _DATA_DEPENDENT = ("GuardOnDataDependentSymNode", "DataDependentOutputException", "DataDependentOutputError")
-# the loggers that write a failed torch.export's guard on the terminal (the error says enough)
-_EXPORT_LOGGERS = ("torch.fx.experimental.symbolic_shapes", "torch.export", "torch._export")
-
-
-@contextlib.contextmanager
-def _loggers_quiet(names: tuple[str, ...]):
-    import logging
-
-    loggers = [logging.getLogger(n) for n in names]
-    levels = [lg.level for lg in loggers]
-    for lg in loggers:
-        lg.setLevel(logging.ERROR)
-    try:
-        yield
-    finally:
-        for lg, level in zip(loggers, levels):
-            lg.setLevel(level)
 
 
 def value_branch(model: nn.Module, example) -> tuple[str, str]:
@@ -172,11 +156,8 @@ def value_branch(model: nn.Module, example) -> tuple[str, str]:
     """
     twin = private_buffers(model).eval()
     try:
-        # torch.export prints the partial graph of a failure to sys.stderr itself, and logs a warning
-        with warnings.catch_warnings(), torch.no_grad(), _loggers_quiet(_EXPORT_LOGGERS), \
-                contextlib.redirect_stderr(io.StringIO()):
-            warnings.simplefilter("ignore")
-            program = torch.export.export(twin, as_inputs(example), strict=False)
+        with torch.no_grad():
+            program = export_quietly(twin, as_inputs(example))
     except Exception as exc:
         if type(exc).__name__ in _DATA_DEPENDENT or "data-dependent" in str(exc):
             return "values", "torch.export stops there: the branch needs the values"

@@ -32,7 +32,37 @@ from ..copies import private_buffers
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, layouts_of, site_name
 
-__all__: list[str] = []
+__all__ = ["export_quietly"]
+
+# the loggers that write a failed torch.export's guard on the terminal (the error says enough)
+_EXPORT_LOGGERS = ("torch.fx.experimental.symbolic_shapes", "torch.export", "torch._export")
+
+
+@contextlib.contextmanager
+def _loggers_quiet(names: tuple[str, ...]):
+    import logging
+
+    loggers = [logging.getLogger(n) for n in names]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        for lg, level in zip(loggers, levels):
+            lg.setLevel(level)
+
+
+def export_quietly(twin: nn.Module, args: tuple, kwargs: dict | None = None):
+    """``torch.export.export(twin, args, kwargs, strict=False)`` with nothing on the terminal; raises what it raises.
+
+    torch.export's notes on specialised shapes are warnings; on a forward it cannot export it logs the guard and
+    prints the graph so far to stderr itself: the reason reaches the user as one line in splice's error instead.
+    ``twin`` is splice's own copy (the export runs its forward).
+    """
+    with warnings.catch_warnings(), _loggers_quiet(_EXPORT_LOGGERS), contextlib.redirect_stderr(io.StringIO()):
+        warnings.simplefilter("ignore")
+        return torch.export.export(twin, args, kwargs or {}, strict=False)
 
 _CONV_OPS = frozenset({"conv2d", "convolution", "_convolution", "conv_transpose2d", "cudnn_convolution"})
 
@@ -143,12 +173,7 @@ def _export(model: nn.Module, args: tuple, kwargs: dict):
     for m in twin.modules():
         m.__dict__["training"] = False
     recorder = _Recorder(twin)
-    # torch.export's own notes on specialised shapes are warnings; on a forward it cannot export it also prints
-    # the graph so far to stderr: the reason reaches the user as one line in splice's error instead
-    with warnings.catch_warnings(), contextlib.redirect_stderr(io.StringIO()):
-        warnings.simplefilter("ignore")
-        program = torch.export.export(twin, args, kwargs, strict=False)
-    return program, recorder.outputs
+    return export_quietly(twin, args, kwargs), recorder.outputs
 
 
 def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:
