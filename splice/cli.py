@@ -164,6 +164,7 @@ def _cmd_points(args) -> int:
 
 def _cmd_insert(args) -> int:
     from .folders import check_keeps_inputs, check_replaceable
+    from .sources import spec_file
     from .manifest import info_of
     from .store import save
     from .surgery import insert
@@ -174,7 +175,7 @@ def _cmd_insert(args) -> int:
     warp = WarpConfig.from_dict({"family": args.warp, **{k: v for k, v in given.items() if v is not None}})
     if args.overwrite:
         check_replaceable(args.out)  # before any work (save checks again)
-        check_keeps_inputs(args.out, [args.model, args.weights])
+        check_keeps_inputs(args.out, [args.model, spec_file(args.model), args.weights])
     src = _source(args)
     spliced = insert(src, at=args.at, warp=warp, leaves=_leaves(args, src), force=args.force, within=args.within)
     folder = save(spliced, args.out, overwrite=args.overwrite)

@@ -218,19 +218,11 @@ def check_replaceable(target: str | os.PathLike) -> None:
 
 
 def check_keeps_inputs(target: str | os.PathLike, inputs) -> None:
-    """Raise when replacing ``target`` would delete one of ``inputs``: a model spec (a folder, a file, or the file of
-    ``path/file.py:factory``) or a weights file the command reads, at or inside ``target``."""
+    """Raise when replacing ``target`` would delete one of ``inputs``, the paths the command reads (a model's
+    folder or file, a weights file; ``None`` entries are skipped), at or inside ``target``."""
     out = Path(target).resolve()
     for given in inputs:
-        if given is None or not isinstance(given, (str, os.PathLike)):
-            continue
-        text = os.fspath(given)
-        head = text.rpartition(":")[0]
-        # the file of path/file.py:factory; a registry spec (torchvision:NAME) names no file
-        is_file = head.endswith(".py") or "/" in head or os.sep in head
-        candidates = [text] + ([head] if is_file else [])
-        for candidate in candidates:
-            path = Path(candidate)
-            if path.exists() and (path.resolve() == out or out in path.resolve().parents):
-                raise SpliceError(f"--overwrite would delete '{target}', which holds '{text}', read by this command; "
-                                  "choose another output folder")
+        path = None if given is None else Path(given)
+        if path is not None and path.exists() and (path.resolve() == out or out in path.resolve().parents):
+            raise SpliceError(f"--overwrite would delete '{target}', which holds '{given}', read by this command; "
+                              "choose another output folder")

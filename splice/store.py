@@ -220,7 +220,7 @@ def _base_from_state(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], *
     if model is None:
         model = _rebuild_base(info, trust_pickle=trust_pickle, trust_code=trust_code)
         check_state_fits(model.state_dict(), base_state, f"the weights of '{info.folder}'",
-                   "the model's code changed since the splice: build it as it was, or splice it again")
+                         "the model's code changed since the splice: build it as it was, or splice it again")
         model.load_state_dict(with_metadata(model, base_state), strict=True)
     return model.eval()
 
@@ -254,7 +254,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
 
     own = model.state_dict(keep_vars=True)
     check_state_fits(own, state, f"the weights of '{folder}'", "the folder was edited by hand or written by an "
-               "incompatible version, or the model's code changed since the splice")
+                     "incompatible version, or the model's code changed since the splice")
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
@@ -428,8 +428,7 @@ def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_co
     return open_folder(folder, trust_pickle=trust_pickle, frame=False, trust_code=trust_code).base()
 
 
-def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pickle: bool = False,
-                       trust_code: bool = False) -> Source:
+def load_folder_source(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
     opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     check_finite(opened.state, f"'{opened.weights_path}'")
@@ -439,7 +438,7 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
         model=model,
         spec=info.spec,
         kwargs=dict(info.kwargs),
-        input_shape=tuple(input_shape) if input_shape is not None else info.input_shape,  # type: ignore[arg-type]
+        input_shape=info.input_shape,
         weights_path=str(opened.weights_path),
         weights_sha256=manifest["weights"].get("base_sha256"),
         normalisation=info.normalisation,
@@ -453,16 +452,16 @@ def load_folder_source(folder: str | os.PathLike, *, input_shape=None, trust_pic
 
 def _folder_source(folder, weights, kwargs, input_shape, *, trust_pickle: bool, trust_code: bool) -> Source:
     """:func:`load_folder_source`, refusing the options a folder settles itself rather than ignoring them."""
+    def ignored(given: str) -> SourceError:
+        return SourceError(f"'{folder}' is a folder splice wrote: it carries its own weights and builder arguments, "
+                           f"so {given} would be ignored; drop it, or splice the model spec with those weights")
+
     if weights is not None:  # before any work: a folder never takes other weights
-        raise SourceError(f"'{folder}' is a folder splice wrote: it carries its own weights and builder arguments, "
-                          "so --weights (weights=) would be ignored; drop it, or splice the model spec with those "
-                          "weights")
+        raise ignored("--weights (weights=)")
     src = load_folder_source(folder, trust_pickle=trust_pickle, trust_code=trust_code)
     # a resumed run passes back the folder's own builder arguments, which are not ignored but the same
-    given = "--kwargs (kwargs=)" if kwargs and parse_kwargs(kwargs) != dict(src.kwargs) else None
-    if given is not None:
-        raise SourceError(f"'{folder}' is a folder splice wrote: it carries its own weights and builder arguments, "
-                          f"so {given} would be ignored; drop it, or splice the model spec with those weights")
+    if kwargs and parse_kwargs(kwargs) != dict(src.kwargs):
+        raise ignored("--kwargs (kwargs=)")
     shapes = parse_input_shapes(input_shape)
     if shapes and tuple(shapes[0]) != tuple(src.input_shape):
         recorded = "x".join(map(str, src.input_shape))

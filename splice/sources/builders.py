@@ -28,7 +28,7 @@ from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
-__all__ = ["build_model", "absolute_spec", "code_sha256", "uncompiled", "IMAGENET_NORMALISATION"]
+__all__ = ["build_model", "absolute_spec", "code_sha256", "spec_file", "uncompiled", "IMAGENET_NORMALISATION"]
 
 IMAGENET_NORMALISATION = {"mean": [0.485, 0.456, 0.406], "std": [0.229, 0.224, 0.225]}
 _TORCHVISION_DEFAULT_SHAPES = {"inception_v3": (3, 299, 299)}
@@ -50,13 +50,18 @@ def _is_file_head(head: str) -> bool:
     return head.endswith(".py") or os.sep in head or "/" in head
 
 
+def spec_file(spec: str) -> Path | None:
+    """The Python file of a ``path/file.py:factory`` spec, when it is there; ``None`` for any other spec (a
+    registry name such as ``torchvision:NAME`` names no file)."""
+    head, sep, _ = spec.rpartition(":")
+    return Path(head) if sep and _is_file_head(head) and Path(head).is_file() else None
+
+
 def absolute_spec(spec: str) -> str:
     """``path/file.py:factory`` with the file's absolute path (a folder records it, and is read from anywhere);
     any other spec as it is."""
-    head, sep, attr = spec.rpartition(":")
-    if not sep or not _is_file_head(head) or not Path(head).is_file():
-        return spec
-    return f"{Path(head).resolve()}:{attr}"
+    file = spec_file(spec)
+    return spec if file is None else f"{file.resolve()}:{spec.rpartition(':')[2]}"
 
 
 @contextlib.contextmanager
@@ -85,10 +90,8 @@ def _folder_importable(path: Path | None):
 def code_sha256(spec: str) -> str | None:
     """The sha256 of the Python file a ``path/file.py:factory`` spec builds from (what a folder records, to tell
     when that code changed), ``None`` for any other spec or a file that is not there."""
-    head, sep, _ = spec.rpartition(":")
-    if not sep or not _is_file_head(head) or not Path(head).is_file():
-        return None
-    return hashlib.sha256(Path(head).read_bytes()).hexdigest()
+    file = spec_file(spec)
+    return None if file is None else hashlib.sha256(file.read_bytes()).hexdigest()
 
 
 def _import_factory(head: str, attr: str, spec: str):
@@ -99,7 +102,8 @@ def _import_factory(head: str, attr: str, spec: str):
         # the same name in every process (str hashes are salted per process)
         mod_name = FILE_MODULE_PREFIX + hashlib.sha256(str(path.resolve()).encode()).hexdigest()[:16]
         module = sys.modules.get(mod_name)
-        if module is not None and getattr(module, "__splice_code_sha256__", None) != code_sha256(spec):
+        digest = code_sha256(spec)
+        if module is not None and getattr(module, "__splice_code_sha256__", None) != digest:
             del sys.modules[mod_name]  # the file changed since it was run here: run what it holds now
             module = None
         if module is None:
@@ -108,7 +112,7 @@ def _import_factory(head: str, attr: str, spec: str):
                 raise SourceError(f"cannot import model file '{path}'; is it a Python file?")
             module = importlib.util.module_from_spec(loader_spec)
             sys.modules[mod_name] = module
-            module.__splice_code_sha256__ = code_sha256(spec)  # what code_sha256 records, of the code run
+            module.__splice_code_sha256__ = digest  # what code_sha256 records, of the code run
             try:
                 with _folder_importable(path):
                     loader_spec.loader.exec_module(module)

@@ -129,8 +129,7 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     """``outputs``, ``images`` (with images) and ``warps``, from a spliced forward pass that worked."""
     warps = warps_of(spliced)
     identity_model = reset_copy(spliced) if tuned else spliced
-    with torch.no_grad(), same_draws():
-        id_out = identity_model(*[t.clone() for t in x]) if tuned else out
+    id_out = run_no_grad(identity_model, x, "spliced model at the identity") if tuned else out
     rows = [outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
                          f"seeded N(0,1) probe of {opts.batch}")]
     if images is not None:
@@ -140,9 +139,9 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     moved = [n for n, d in distances.items() if d > 0]
     if tuned and len(moved) > 1:
         for name in moved:
-            with torch.no_grad(), same_draws():
-                per_warp[name] = compare_outputs(detached(id_out), only_copy(spliced, name)(*[t.clone() for t in x]),
-                                                 tol=math.inf)
+            per_warp[name] = compare_outputs(detached(id_out), run_no_grad(only_copy(spliced, name), x,
+                                                                           f"spliced model with '{name}' alone moved"),
+                                             tol=math.inf)
     rows.append(warps_row(warps, distances, probe, tuned_declared, deviation, per_warp))
     return rows
 
