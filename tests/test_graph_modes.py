@@ -270,3 +270,36 @@ def test_a_model_no_pass_can_follow_gets_one_line_and_no_dump(capfd):
             splice.points(_ValueBranch().eval(), (3, 16, 16))
     assert "\n" not in str(caught.value)
     assert "def forward(" not in capfd.readouterr().err
+
+
+class _Excite(nn.Module):
+    """A squeeze-and-excitation gate: a global mean to 1x1, two 1x1 convs, a sigmoid, a product."""
+
+    def __init__(self, c: int = 8):
+        super().__init__()
+        self.reduce, self.expand = nn.Conv2d(c, 2, 1), nn.Conv2d(2, c, 1)
+
+    def forward(self, x):
+        return x * torch.sigmoid(self.expand(torch.relu(self.reduce(x.mean((2, 3), keepdim=True)))))
+
+
+class _ExciteNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.body = nn.Sequential(nn.Conv2d(3, 8, 3, padding=1), _Excite(), nn.Conv2d(8, 8, 3, padding=1))
+
+    def forward(self, x):
+        return self.body(x).mean((2, 3))
+
+
+@pytest.mark.parametrize("within", ["", "body"])
+def test_one_by_one_maps_are_listed_only_with_all(within):
+    """A 1x1 map (the gate of a squeeze-and-excitation block) sits between convs, but a warp has nothing to move
+    there: the default listing leaves it out, ``all=True`` keeps it, by fx and by hooks alike."""
+    model = _ExciteNet().eval()
+    default = points(model, (3, 16, 16), within=within)
+    every = points(model, (3, 16, 16), all=True, within=within)
+    tiny = [p.name for p in every if p.shape[1:] == (1, 1)]
+    assert len(tiny) >= 2  # the 1x1 convs at least (hooks reach module outputs only)
+    assert all(p.shape[1:] != (1, 1) for p in default)
+    assert {p.name for p in default} >= {"input"} and len(default) >= 3  # the 16x16 maps stay

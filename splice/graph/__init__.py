@@ -28,8 +28,9 @@ points). It is named
 after the node, which fx derives from the module qualname (``layer1_0_relu``,
 with ``_1``, ``_2`` for repeated calls); the model input is always ``input``.
 By default :func:`points` lists ``input`` and the points that sit between
-convolutions (a conv upstream or the point itself, and a conv downstream);
-``all=True`` lists every 4-D activation. Shapes come from one propagation on
+convolutions (a conv upstream or the point itself, and a conv downstream),
+except 1x1 maps (the gate of a squeeze-and-excitation block), where a warp
+has nothing to move; ``all=True`` lists every 4-D activation. Shapes come from one propagation on
 the meta device (batch size 1): no activation memory, no arithmetic. Common
 layers use closed-form shape rules; everything else runs its meta kernel. A
 user-registered leaf that cannot run on the meta device (value-dependent

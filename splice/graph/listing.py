@@ -127,8 +127,8 @@ def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every
     out = []
     costs: dict[tuple[int, int, int], tuple[int, int]] = {}
     for e in entries:
-        if not (every or e.kind == "input" or e.between_convs):
-            continue
+        if not (every or e.kind == "input" or (e.between_convs and e.shape[1:] != (1, 1))):
+            continue  # a 1x1 map (a squeeze-and-excitation gate) has nothing a warp could move
         if e.shape not in costs:
             costs[e.shape] = warp_cost(config, e.shape)
         params, macs = costs[e.shape]
@@ -217,8 +217,9 @@ def points(
     """List the places where a warp can go, in graph order.
 
     ``input_shape`` is (C, H, W), or one such shape per input of a model with
-    several. By default: ``input`` and the 4-D activations between convs;
-    ``all=True`` lists every 4-D activation. ``warp`` is the warp family whose
+    several. By default: ``input`` and the 4-D activations between convs,
+    1x1 maps left out (nothing there for a warp to move); ``all=True`` lists
+    every 4-D activation. ``warp`` is the warp family whose
     cost is reported. ``within`` restricts the points to a submodule (a
     qualname such as ``"backbone"``), whose inputs are found by running the
     model on the meta device; its first input is ``input``. Each point says
