@@ -158,7 +158,13 @@ def _cmd_points(args) -> int:
                   "there matched the input warp on one model and gave nothing on another, at 1.4-1.7x the time "
                   "(README, 'splice points', on recommended).")
     within = f" --within {args.within}" if args.within else ""
-    out.print(f"Splice with: splice insert {args.model}{within} --at NAME --out DIR")
+    if src.is_spliced:  # insert takes an original model, with all its points at once
+        held = [p["name"] for p in src.manifest["points"]]
+        out.print(f"{args.model} already holds warps at {', '.join(held)} (points 'splice_warps_*' are theirs); to "
+                  f"splice elsewhere, splice the original model: splice insert {src.spec}{within} "
+                  f"{' '.join(f'--at {h}' for h in held)} --at NAME --out DIR")
+    else:
+        out.print(f"Splice with: splice insert {args.model}{within} --at NAME --out DIR")
     return EXIT_OK
 
 

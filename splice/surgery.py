@@ -28,10 +28,11 @@ from .compare import compare_outputs
 from .copies import private_buffers, same_draws
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .hooks import WARP_PREFIX, apply_hooks
-from .manifest import PointRecord, SpliceInfo, attach_info, remember_base
+from .manifest import PointRecord, SpliceInfo, attach_info, info_of, remember_base
 from .sources import MODULE_SPEC
 
-__all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "warps_of", "base_state_dict"]
+__all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "check_unspliced", "warps_of",
+           "base_state_dict"]
 
 
 @dataclass(frozen=True)
@@ -336,6 +337,21 @@ def _splice(base: nn.Module, plan: Sequence[SplicePlan], listing: Sequence, src,
     return apply_plan(base, plan, src.input_shape, leaves=leaves, listing=listing, traced=traced), {}
 
 
+def _base_name(spec: str) -> str:
+    return "a module object" if spec == MODULE_SPEC else spec
+
+
+def check_unspliced(src) -> None:
+    """Refuse a model that already holds warps, for ``insert`` and ``points``: both are about an original model
+    (a splice goes into the base, all its points at once), not about a spliced one."""
+    info = info_of(src.model)  # a spliced model in memory carries its record; a folder's is in its manifest
+    held = [p["name"] for p in src.manifest["points"]] if src.is_spliced else [p.name for p in info.points] if (
+        info is not None) else []
+    if held:  # a tuned plain folder carries a record without points: an original model
+        raise PointError(f"this model is already spliced (warps at {', '.join(held)}; base {_base_name(src.spec)}); "
+                         "list and splice points of the original model instead, all in one insert (--at A --at B)")
+
+
 def insert(
     model,
     at: str | Sequence[str] = ("recommended",),
@@ -371,11 +387,7 @@ def insert(
     from .sources import load_source
 
     src = load_source(model, input_shape=input_shape, leaves=leaves)
-    if src.is_spliced:
-        raise PointError(
-            f"{src.spec} already holds warps at {', '.join(p['name'] for p in src.manifest['points'])}; "
-            "splice the original model instead (points can be given together: --at A --at B)"
-        )
+    check_unspliced(src)
     if src.input_shape is None:
         raise SourceError("insert needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW")
     leaves = tuple(leaves) or tuple(src.leaves)

@@ -151,6 +151,17 @@ def test_cli_insert_writes_folder(tmp_path, capsys):
     assert main(["points", str(out), "--json"]) == 0
     listing = capsys.readouterr().out
     assert '"splice_warps_input"' in listing or "splice_warps" in listing
+    assert main(["points", str(out)]) == 0  # the way on names the original model, not the folder insert refuses
+    text = " ".join(capsys.readouterr().out.split())
+    assert "splice insert splice.models:tray_net --at input --at NAME" in text
+    assert main(["insert", str(out), "--at", "pool1", "--out", str(tmp_path / "again")]) == 2
+    assert "already spliced (warps at input; base splice.models:tray_net)" in capsys.readouterr().err
+
+
+def test_a_spliced_model_in_memory_is_not_spliced_again():
+    spliced = insert("splice.models:tray_net", at="input")
+    with pytest.raises(PointError, match="already spliced .warps at input; base splice.models:tray_net"):
+        splice.insert(spliced, at="pool1")
 
 
 def test_a_spliced_model_survives_torch_save_and_load(tmp_path):
