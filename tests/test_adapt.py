@@ -167,6 +167,19 @@ def test_refreshed_statistics_are_those_of_the_site_images():
     assert bn.momentum == 0.1 and not bn.training  # restored
 
 
+@pytest.mark.parametrize("images, batch", [(1, 64), (12, 1)])
+def test_statistics_that_no_batch_can_give_are_refused_and_left_alone(images, batch):
+    # batches of one image are skipped; had none been left, the reset values (mean 0, variance 1) were saved
+    model = torch.nn.Sequential(torch.nn.Conv2d(1, 3, 3), torch.nn.BatchNorm2d(3)).eval()
+    model[1].running_mean.fill_(0.5)
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    with pytest.raises(DataError, match=f"at least 2 site images; got {images} image.* at batch size {batch}"):
+        refresh_batchnorm_(model, TensorImages(torch.rand(images, 1, 10, 10)), prepare=lambda t: t,
+                           batch_size=batch, seed=0)
+    assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())
+    assert model[1].momentum == 0.1 and not model[1].training
+
+
 def test_fit_ranges_undoes_a_reader_that_shrinks_and_blurs():
     # a reader that pulls every reading 30 % towards no motion and adds noise: the first guess is
     # biased, the simulation through the same reader is not

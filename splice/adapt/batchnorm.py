@@ -18,6 +18,7 @@ import torch
 from torch import Tensor, nn
 
 from ..copies import modes_kept
+from ..errors import DataError
 from ..training import batches as _b
 from .images import Images
 
@@ -36,7 +37,8 @@ def refresh_batchnorm_(model: nn.Module, images: Images, *, prepare: Callable[[T
     """Replace the running statistics of every BatchNorm layer of ``model`` (in place) by those of ``images``.
 
     Returns the number of layers refreshed. Batches of one image are skipped
-    (a variance needs two). Modes and momenta are restored afterwards.
+    (a variance needs two); with no batch left, :class:`~splice.errors.DataError`
+    is raised and nothing is changed. Modes and momenta are restored afterwards.
     """
     layers = batchnorm_layers(model)
     if not layers:
@@ -45,6 +47,10 @@ def refresh_batchnorm_(model: nn.Module, images: Images, *, prepare: Callable[[T
     n = len(images)
     batches = [idx for p in range(passes)
                for idx in _b.index_batches(_b.epoch_order(seed, p, n, tag="batchnorm"), batch_size) if len(idx) > 1]
+    if not batches:  # checked before any statistic is reset: nothing would replace the reset values
+        raise DataError(f"re-estimating BatchNorm statistics needs batches of at least 2 site images; got {n} "
+                        f"image{'' if n == 1 else 's'} at batch size {batch_size}: add site images, or raise "
+                        "--batch-size")
     with modes_kept(model):
         try:
             model.eval()
