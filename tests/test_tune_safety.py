@@ -253,10 +253,31 @@ def test_resuming_on_changed_data_says_the_batches_differ(tmp_path):
     with pytest.warns(SpliceWarning, match=r"resuming with other image files than the run started with \(12 train "
                                            r"and 12 val, as before\): from here on its batches are not the ones"):
         tune(resume=out, run_options=dataclasses.replace(QUIET, stop_after_steps=2))
+    from PIL import Image
+
+    Image.fromarray(np.full((9, 7), 200, np.uint8)).save(root / "train" / "b" / "6.png")  # replaced in place
+    with pytest.warns(SpliceWarning, match=r"resuming with other image files than the run started with"):
+        tune(resume=out, run_options=dataclasses.replace(QUIET, stop_after_steps=3))
     (root / "train" / "b" / "6.png").unlink()  # a bad file removed before resuming
     with pytest.warns(SpliceWarning, match=r"resuming with 11 train and 12 val images where the run started with "
                                            r"12 and 12: from here on its batches are not the ones"):
         tune(resume=out, run_options=QUIET)
+
+
+def test_resuming_after_class_folders_were_renamed_is_refused(tmp_path):
+    # a renamed class folder reorders the classes: each output would go on meaning another class
+    root = _two_classes(tmp_path / "data", n=6)
+    out = tmp_path / "run"
+    recipe = dataclasses.replace(load_recipe("baseline"), batch_size=4, epochs=2)
+    with pytest.warns(SpliceWarning):  # random weights
+        tune("splice.models:tray_net", recipe=recipe, data=str(root), out=out,
+             model_options=ModelOptions(kwargs={"num_classes": 2}), run_options=RunOptions(progress=False,
+                                                                                           stop_after_steps=1))
+    for split in ("train", "val"):
+        (root / split / "a").rename(root / split / "z")
+    with pytest.raises(DataError, match=r"the run started with classes \['a', 'b'\] but data .* now has \['b', 'z'\]"):
+        tune(resume=out, run_options=QUIET)
+    assert json.loads((out / "run.json").read_text())["class_names"] == ["a", "b"]
 
 
 def test_every_file_that_is_no_image_is_named_before_the_run_starts(tmp_path):

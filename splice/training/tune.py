@@ -50,7 +50,8 @@ from typing import Any
 
 import torch
 
-from ..errors import RecipeError, SpliceError, TrainingDiverged, first_line
+from ..data import same_classes
+from ..errors import DataError, RecipeError, SpliceError, TrainingDiverged, first_line
 from ..options import ModelOptions, split_keywords
 from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
@@ -291,6 +292,7 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
         if ctx.is_main:
             start_files(run_dir, rec, info)
     else:
+        _refuse_other_classes(info, classes, req.data)
         if ctx.is_main:
             _warn_if_data_changed(info, train_set, val_set)
         if ctx.is_main:
@@ -306,9 +308,19 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
                trained_on=_trained_on(rec, req.data, net, ref))
 
 
+def _refuse_other_classes(info: dict, classes, data) -> None:
+    """A resumed run whose class folders were renamed or added would go on with each output meaning another class."""
+    started = info.get("class_names")
+    if not same_classes(started, classes or None):
+        raise DataError(f"the run started with classes {list(started or [])[:8]} but data {data!r} now has "
+                        f"{list(classes or [])[:8]}; restore the class folders as they were, or start a new run "
+                        "with another --out")
+
+
 def _image_list_sha256(*splits) -> str | None:
-    """A hash of which image files the splits hold and their labels (paths relative to each split's root), or
-    ``None`` for splits held in memory (the embedded digits: the same images every time)."""
+    """A hash of which image files the splits hold, their sizes in bytes (a file replaced under the same name) and
+    their labels (paths relative to each split's root), or ``None`` for splits held in memory (the embedded digits:
+    the same images every time)."""
     import hashlib
 
     if not all(hasattr(s, "samples") for s in splits):
@@ -316,7 +328,8 @@ def _image_list_sha256(*splits) -> str | None:
     h = hashlib.sha256()
     for s in splits:
         for path, label in s.samples:
-            h.update(f"{s.split}\t{Path(path).relative_to(s.root).as_posix()}\t{label}\n".encode())
+            size = os.stat(path).st_size if os.path.exists(path) else -1
+            h.update(f"{s.split}\t{Path(path).relative_to(s.root).as_posix()}\t{label}\t{size}\n".encode())
     return h.hexdigest()
 
 
