@@ -440,3 +440,17 @@ def test_training_loss_smooths_labels_and_validation_loss_does_not():
     val_sum, _, val_seen = evaluate(model, dataset, torch.arange(6), prepare=lambda t: t, device=torch.device("cpu"))
     assert val_seen == 6 and val_sum / val_seen == pytest.approx(plain, rel=1e-6)
     assert abs(by_hand - plain) > 1e-3  # the two differ, so the checks above can tell them apart
+
+
+@pytest.mark.parametrize("world", [2, 4])
+def test_the_ranks_of_a_step_together_hold_the_one_process_batch(world):
+    # README, "Several processes": the same global batches on 1 or N processes (DistributedSampler-style strided
+    # shards of one permutation, each split into batches of batch_size / world)
+    from splice.training import batches as b
+
+    order, batch = b.epoch_order(0, 3, 48), 16
+    one = b.index_batches(order, batch)
+    ranks = [b.index_batches(b.shard(order, r, world), batch // world) for r in range(world)]
+    assert all(len(r) == len(one) for r in ranks)
+    for step, expected in enumerate(one):
+        assert sorted(torch.cat([r[step] for r in ranks]).tolist()) == sorted(expected.tolist())
