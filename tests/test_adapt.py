@@ -436,6 +436,21 @@ def test_a_reference_too_small_to_estimate_from_is_refused_before_any_work(tmp_p
     assert not out.exists()  # refused before the run folder was made
 
 
+@pytest.mark.parametrize("count", [1, 7])
+def test_a_site_too_small_to_estimate_from_is_refused_before_any_work(tmp_path, folders, spliced, count):
+    # the spread of one reading is zero whatever the site does: an estimate reported "shift +-0.000"
+    _, site = folders
+    small = tmp_path / "small"
+    small.mkdir()
+    for f in [f for f in sorted(site.rglob("*.png"))][:count]:
+        (small / f.name).write_bytes(f.read_bytes())
+    out = tmp_path / "run"
+    with pytest.raises(DataError, match=rf"the site has {count} images?; estimating how its images are moved reads "
+                                        r"the spread of their warps and needs at least 8"):
+        tune(str(spliced), recipe=_tiny(), site=str(small), out=out, run_options=QUIET)
+    assert not out.exists()
+
+
 def test_resuming_a_label_free_run_on_changed_site_images_says_the_batches_differ(tmp_path, folders, spliced):
     import shutil
 

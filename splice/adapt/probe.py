@@ -23,7 +23,8 @@ from .ranges import (OBSERVABLE_RATIO, PARAMETERS, RangeEstimate, fit_ranges, ob
                      site_statistics)
 from .regress import near_identity, regress_warps_
 
-__all__ = ["MIN_HELD_OUT", "ProbeNet", "build_probe", "train_probe", "estimate_ranges", "check_reference_size"]
+__all__ = ["MIN_HELD_OUT", "ProbeNet", "build_probe", "train_probe", "estimate_ranges", "check_reference_size",
+           "check_site_size"]
 
 #: the fewest held-out reference images the estimate simulates the site's moves on: with fewer, its spreads and
 #: percentiles are a handful of numbers (our choice, no source; a few hundred fix them to about a percent)
@@ -63,6 +64,16 @@ def check_reference_size(n: int, holdout: float) -> None:
                         f"{holdout:.0%} of them and needs {MIN_HELD_OUT} held out, so at least {need} reference images. "
                         "Add reference images, or set [site] estimate = false to pre-train within the recipe's "
                         "ranges as typed")
+
+
+def check_site_size(n: int) -> None:
+    """Refuse, before any work, a site of fewer than :data:`MIN_HELD_OUT` images for the estimate: the spread of
+    the site's readings is matched to that of as many held-out reference images, and the spread of one reading
+    is zero whatever the site does."""
+    if n < MIN_HELD_OUT:
+        raise DataError(f"the site has {n} image{'s' if n != 1 else ''}; estimating how its images are moved reads "
+                        f"the spread of their warps and needs at least {MIN_HELD_OUT}. Add site images, or set "
+                        "[site] estimate = false to pre-train within the recipe's ranges as typed")
 
 
 def train_probe(probe: ProbeNet, reference: Images, site_cfg, *, seed: int, prepare: Callable[[Tensor], Tensor],

@@ -29,7 +29,7 @@ from ..training.runfolder import (RECIPE_FILE, check_same, prepare_folder, start
                                   write_run_info)
 from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
 from .images import Images, open_images
-from .probe import check_reference_size
+from .probe import check_reference_size, check_site_size
 
 __all__ = ["AdaptRun", "set_up", "reference_for_site"]
 
@@ -134,6 +134,7 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
     site_images = open_images(req.data, shape, what="site")
     reference = open_images(ref_name, shape, what="reference") if ref_name else None
     if reference is not None and rec.site.estimate:
+        check_site_size(len(site_images))
         check_reference_size(len(reference), rec.site.holdout)
     classes = list(src.class_names) if src.class_names else []
     if info is None:
