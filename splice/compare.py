@@ -14,7 +14,7 @@ import torch
 
 from .errors import DataError
 
-__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "first_rows", "class_logits",
+__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "class_logits",
            "logits_or_refuse"]
 
 # max error relative to the output's scale (max |y|), by dtype. float32 rounding
@@ -136,10 +136,3 @@ def detached(out):
     """``out`` (a tensor or nested tuple/list/dict of them) with every tensor detached, containers kept."""
     return _map_tensors(out, lambda t: t.detach())
 
-
-def first_rows(out, batch: int):
-    """``out`` restricted to the first sample, or ``None`` if some output has no batch dimension."""
-    flat = flatten_outputs(out)
-    if not flat or any(t.dim() == 0 or t.shape[0] != batch for t in flat.values()):
-        return None
-    return _map_tensors(out, lambda t: t[:1])

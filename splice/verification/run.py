@@ -16,7 +16,7 @@ import torch
 from torch import nn
 
 from ..fileio import file_sha256, state_dict_sha256
-from ..compare import compare_outputs, detached, first_rows, flatten_outputs
+from ..compare import compare_outputs, detached, flatten_outputs
 from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept, same_draws
 from ..errors import SpliceError
 from ..exporting import check_opset
@@ -112,7 +112,7 @@ class _Forward:
     x: tuple[torch.Tensor, ...] = ()  # the probe batch, one tensor per model input
     out: object = None  # the spliced model's output on the probe (with its autograd graph)
     n_outputs: int | None = None
-    first_sample: object = None  # the stored model's outputs for the first probe sample
+    first_sample: object = None  # the stored model's outputs for a probe of one sample (None for a larger probe)
 
 
 def _image_rows(base, identity_model, images, opts: _Options, tuned: bool) -> CheckResult:
@@ -174,7 +174,9 @@ def _forward_rows(base, spliced, info: SpliceInfo, opts: _Options, *, images, tu
     rows.extend(_output_rows(base, spliced, x, ref, result.out, probe, images=images, opts=opts, tuned=tuned,
                              tuned_declared=tuned_declared, distances=distances))
     result.n_outputs = len(flatten_outputs(result.out))
-    result.first_sample = first_rows(detached(result.out), opts.batch)
+    # the ONNX row runs the probe's first sample alone: the probe's outputs are its outputs only for a probe of one
+    # (a model whose samples meet, a batch-centred one, answers one sample alone otherwise), else it runs torch itself
+    result.first_sample = detached(result.out) if opts.batch == 1 else None
     return result
 
 
