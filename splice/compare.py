@@ -14,7 +14,7 @@ import torch
 
 from .errors import DataError
 
-__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "class_logits",
+__all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "tensors_out", "class_logits",
            "logits_or_refuse"]
 
 # max error relative to the output's scale (max |y|), by dtype. float32 rounding
@@ -38,6 +38,22 @@ def flatten_outputs(out, prefix: str = "out") -> dict[str, torch.Tensor]:
             flat.update(flatten_outputs(v, f"{prefix}[{i}]"))
         return flat
     return {}
+
+
+def tensors_out(out):
+    """``out`` as the exporters take it: itself when every leaf is a tensor (or ``None``), else the tuple of its
+    tensors in the order of :func:`flatten_outputs` (the graph's ``output_0 ...``): a number or a
+    string among the outputs (``{"logits": t, "classes": 3}``) has no place in a graph, and both exporters refuse it."""
+    def plain(v) -> bool:
+        if v is None or isinstance(v, torch.Tensor):
+            return True
+        if isinstance(v, Mapping):
+            return all(plain(x) for x in v.values())
+        if isinstance(v, Sequence) and not isinstance(v, (str, bytes)):
+            return all(plain(x) for x in v)
+        return False
+
+    return out if plain(out) else tuple(flatten_outputs(out).values())
 
 
 def class_logits(out):

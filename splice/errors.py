@@ -135,13 +135,31 @@ class NormalisationWarning(SpliceWarning):
 _TERMINAL_CODES = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")  # colours a library wrote for its own terminal
 
 
-def first_line(exc: BaseException) -> str:
+def first_line(exc: BaseException, limit: int = 300) -> str:
     """The first non-empty line of ``str(exc)`` without terminal colour codes (torch.onnx's dynamo exporter writes
-    them into its messages), or the exception's class name when it has no message."""
-    for line in _TERMINAL_CODES.sub("", str(exc)).strip().splitlines():
-        if line.strip():
-            return line.strip()
-    return type(exc).__name__
+    them into its messages), or the exception's class name when it has no message.
+
+    A line cut off mid-sentence (brackets left open, or a closing ``:``) goes on with the next lines, joined by
+    spaces, up to ``limit`` characters (the first line is never cut) (the TorchScript exporter prints a tensor inside its sentence). A message
+    with an ``## Exception summary`` section (torch.onnx's) gives that summary's first line: the cause, where the
+    first line says only which step failed.
+    """
+    text = _TERMINAL_CODES.sub("", str(exc))
+    if "## Exception summary" in text:
+        text = text.split("## Exception summary", 1)[1]
+    lines = [line.strip() for line in text.strip().splitlines() if line.strip()]
+    if not lines:
+        return type(exc).__name__
+    out = lines[0]
+    for line in lines[1:]:
+        if len(out) >= limit or not (out.endswith(":") or _open_brackets(out)):
+            break
+        out = f"{out} {line}"
+    return out if len(out) <= max(limit, len(lines[0])) else out[:limit - 3] + "..."
+
+
+def _open_brackets(text: str) -> bool:
+    return any(text.count(a) > text.count(b) for a, b in ("()", "[]", "{}"))
 
 
 def closest(word: str, choices: Iterable[str], n: int = 3, cutoff: float = 0.0) -> list[str]:

@@ -119,6 +119,17 @@ def test_first_line_drops_terminal_colour_codes():
     assert errors.first_line(RuntimeError("\x1b[1;31m\x1b[0m\nsecond")) == "second"
 
 
+def test_first_line_goes_on_where_the_line_is_cut_mid_sentence():
+    # the TorchScript exporter prints a tensor inside its sentence; torch.onnx puts the cause in a summary
+    cut = RuntimeError("output 1 (3\n[ torch.LongTensor{} ]) of traced region did not have observable data\nmore")
+    assert errors.first_line(cut) == "output 1 (3 [ torch.LongTensor{} ]) of traced region did not have observable data"
+    summary = RuntimeError("Failed to convert. \x1b[96mThis is step 3/3\x1b[0m. Next steps:\n- report it\n\n"
+                           "## Exception summary\n\n<class 'AttributeError'>: 'int' object has no attribute 'name'\n")
+    assert errors.first_line(summary) == "<class 'AttributeError'>: 'int' object has no attribute 'name'"
+    assert errors.first_line(RuntimeError("x" * 400 + "\nnext")) == "x" * 400  # a whole first line is never cut
+    assert len(errors.first_line(RuntimeError("(" + "y\n" * 400))) == 300
+
+
 def test_argparse_errors_are_one_line(capsys):
     with pytest.raises(SystemExit) as stop:
         main(["insert", "torchvision:resnet18"])

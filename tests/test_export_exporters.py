@@ -7,10 +7,12 @@ from __future__ import annotations
 import warnings
 
 import pytest
+import torch
 
 import splice
 from splice.errors import SpliceError
 from splice.exporting import export
+from splice.verification import verify_models
 
 # tray_folder: conftest's small tray net spliced at pool2
 
@@ -137,3 +139,35 @@ def test_a_float64_model_exports_as_verify_checks_it(tmp_path):
         expected = spliced(torch.from_numpy(x).double()).numpy()
     assert np.abs(session.run(None, {session.get_inputs()[0].name: x})[0] - expected).max() < 1e-5
     assert next(spliced.parameters()).dtype == torch.float64  # the caller's model is as it was
+
+
+class _CountedClasses(torch.nn.Module):
+    """A classifier that returns its class count beside the logits: a number no graph can carry."""
+
+    def __init__(self):
+        super().__init__()
+        torch.manual_seed(0)
+        self.conv, self.head = torch.nn.Conv2d(3, 4, 3, padding=1), torch.nn.Linear(4, 3)
+
+    def forward(self, x):
+        return {"logits": self.head(self.conv(x).mean((2, 3))), "classes": 3}
+
+
+@pytest.mark.parametrize("exporter, opset", [("torchscript", 17), ("dynamo", 18)])
+def test_a_number_among_the_outputs_stays_out_of_the_graph(tmp_path, exporter, opset):
+    # both exporters refused the number ("output 1 (3" / "'int' object has no attribute 'name'"); the graph's
+    # outputs are the tensors, output_0 ..., as splice's comparisons already read them
+    import onnxruntime as ort
+
+    model = _CountedClasses().eval()
+    spliced = splice.insert(model, at="input", input_shape=(3, 12, 12))
+    report = verify_models(model, spliced, onnx=True, exporter=exporter, opset=opset)
+    assert report["onnx"].passed, report["onnx"].detail
+    with warnings.catch_warnings(record=True):
+        result = splice.export(spliced, onnx=tmp_path / "m.onnx", exporter=exporter, opset=opset)
+    assert result["exports"][0]["dynamic_batch"], result
+    session = ort.InferenceSession(str(tmp_path / "m.onnx"), providers=["CPUExecutionProvider"])
+    x = torch.rand(2, 3, 12, 12)
+    (got,) = session.run(None, {session.get_inputs()[0].name: x.numpy()})  # onnxruntime, the outside reference
+    with torch.no_grad():
+        torch.testing.assert_close(torch.from_numpy(got), model(x)["logits"], rtol=1e-4, atol=1e-5)

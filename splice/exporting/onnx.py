@@ -12,7 +12,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..compare import flatten_outputs
+from ..compare import flatten_outputs, tensors_out
 from ..copies import private_buffers
 from ..errors import SpliceError, first_line
 from ..graph.exported import export_quietly
@@ -233,6 +233,19 @@ def _stdout_to_nowhere():
         os.dup2(saved, fd)
         os.close(saved)
 
+class TensorsOnly(nn.Module):
+    """``model`` whose outputs are :func:`~splice.compare.tensors_out` (a module of its own: torch.export reads a
+    GraphModule's graph, not a ``forward`` set on a copy of it)."""
+
+    def __init__(self, model: nn.Module):
+        super().__init__()
+        self.model = model
+        self.training = model.training
+
+    def forward(self, *args, **kwargs):
+        return tensors_out(self.model(*args, **kwargs))
+
+
 def inputs_only(model: nn.Module) -> nn.Module:
     """A shallow copy of ``model`` (the same modules, parameters and names) whose forward takes its inputs only.
 
@@ -246,7 +259,7 @@ def inputs_only(model: nn.Module) -> nn.Module:
     forward = type(model).forward
 
     def inputs_only_forward(*inputs):
-        return forward(view, *inputs)
+        return tensors_out(forward(view, *inputs))
 
     view.__dict__["forward"] = inputs_only_forward
     return view
@@ -301,7 +314,12 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
                                 fold_constants=fold_constants, n_images=len(xs))
         batch = torch.export.Dim("batch", min=1, max=4096)
         dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
-        program = torch.onnx.export(model, xs, dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
+        with torch.no_grad():
+            out = model(*xs)
+        target = model if tensors_out(out) is out else TensorsOnly(model)
+        if dims is not None and target is not model:
+            dims = (dims,)  # TensorsOnly's forward takes *args: torch.export sees one tuple of inputs
+        program = torch.onnx.export(target, xs, dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
                                     input_names=inputs, output_names=names, dynamic_shapes=dims,
                                     optimize=fold_constants, verbose=False)
         data = program.model_proto.SerializeToString()

@@ -7,6 +7,7 @@ import copy
 import torch
 from torch import nn
 
+from ..compare import tensors_out
 from ..errors import SpliceError
 from ..surgery import WARP_PREFIX, warps_of
 from ..warps.perturb import final_layer, perturbation_theta
@@ -110,4 +111,4 @@ class WeightsAsInputs(nn.Module):
         out = self.model(*xs)
         if self.keep_output:
             self.output = out  # a reference only: the tracer records no operation for it
-        return out
+        return tensors_out(out)
