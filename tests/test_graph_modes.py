@@ -303,3 +303,26 @@ def test_one_by_one_maps_are_listed_only_with_all(within):
     assert len(tiny) >= 2  # the 1x1 convs at least (hooks reach module outputs only)
     assert all(p.shape[1:] != (1, 1) for p in default)
     assert {p.name for p in default} >= {"input"} and len(default) >= 3  # the 16x16 maps stay
+
+
+class _ArgsForward(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a, self.b = nn.Conv2d(3, 4, 3, padding=1), nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, *args, **kwargs):
+        return self.b(torch.relu(self.a(args[0]))).mean((2, 3)) / kwargs.get("temperature", 1.0)
+
+
+def test_a_forward_that_takes_args_is_listed_and_spliced_by_hooks():
+    # fx traces forward(*args) with one tuple input, which shape propagation fed empty ("IndexError: tuple index
+    # out of range ... check that the model takes inputs of this (C, H, W)"); hooks call it as the model is called
+    model = _ArgsForward().eval()
+    with pytest.warns(TraceFallbackWarning, match=r"takes its inputs as \*args"):
+        pts = points(model, (3, 8, 8))
+    assert {p.name for p in pts} == {"input", "a"} and {p.mechanism for p in pts} == {"hooks"}
+    with pytest.warns(TraceFallbackWarning):
+        spliced = splice.insert(model, at=["input", "a"], input_shape=(3, 8, 8))
+    x = torch.rand(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))

@@ -140,9 +140,15 @@ def specialised_options(root: nn.Module, n_inputs: int | None) -> dict[str, Any]
 def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, whole: bool = True) -> fx.Graph:
     tracer = _Tracer(rule)
     try:
-        return tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
+        graph = tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
     except Exception as exc:
         raise FxFailure(exc, tracer.failed_in) from exc
+    first = next((n for n in graph.nodes if n.op == "placeholder"), None)
+    if whole and first is not None and str(first.target).startswith("*"):
+        # forward(self, *args): the graph's input is a tuple, not an image a warp could take; hooks call the
+        # forward as the model is called
+        raise FxFailure(GraphError(f"the forward takes its inputs as {first.target}, not as named tensors"), None)
+    return graph
 
 
 def _can_spy(cls: type) -> bool:
