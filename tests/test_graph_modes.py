@@ -326,3 +326,37 @@ def test_a_forward_that_takes_args_is_listed_and_spliced_by_hooks():
     x = torch.rand(2, 3, 8, 8)
     with torch.no_grad():
         assert torch.equal(spliced(x), model(x))
+
+
+class _Blocks(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 4, 3, padding=1)
+        self.block = nn.Sequential(nn.Conv2d(4, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 4, 3, padding=1))
+        self.head = nn.Linear(4, 3)
+
+    def forward(self, x):
+        return self.head(self.block(self.stem(x)).mean((2, 3)))
+
+
+@pytest.mark.parametrize("where", ["", "block"])
+def test_the_models_own_hooks_run_in_the_spliced_model(where):
+    # a traced graph calls no hook of the modules it traces through, nor of the root it replaces: the identity
+    # check failed 0.236 off ("this is a bug or an unusual model - pass --force") for a softmax hook on the model
+    # (a hook traced into the graph would also run its Python side effects once, while tracing: a feature
+    # collector would collect nothing from the spliced model)
+    model = _Blocks().eval()
+    hooked = model.get_submodule(where)
+    hooked.register_forward_hook(lambda mod, args, out: out.softmax(1) if where else out.softmax(-1))
+    hooked.register_forward_pre_hook(lambda mod, args: (args[0] * 2,))
+    seen: list = []
+    hooked.register_forward_hook(lambda mod, args, out: seen.append(out.shape))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)
+        spliced = splice.insert(model, at=["input", "stem"], input_shape=(3, 8, 8))
+    assert spliced.splice_info.mechanism == ("hooks" if not where else "fx")
+    x = torch.rand(2, 3, 8, 8)
+    seen.clear()
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))
+    assert len(seen) == 2  # once for each model: the hook ran in the spliced one too

@@ -98,7 +98,8 @@ class _Tracer(fx.Tracer):
         return super().create_arg(a)
 
     def is_leaf_module(self, m: nn.Module, module_qualified_name: str) -> bool:
-        return self._rule(type(m)) or super().is_leaf_module(m, module_qualified_name)
+        # a module with hooks of its own stays one call: a graph traced through it would drop them
+        return self._rule(type(m)) or has_call_hooks(m) or super().is_leaf_module(m, module_qualified_name)
 
     def call_module(self, m, forward, args, kwargs):
         try:
@@ -111,6 +112,12 @@ class _Tracer(fx.Tracer):
                     qualname = "?"
                 self.failed_in = (qualname, _original_class(type(m)))
             raise
+
+
+def has_call_hooks(m: nn.Module) -> bool:
+    """Whether ``m`` has forward, forward-pre or backward hooks of its own: they run only when it is called."""
+    return any(getattr(m, name, None) for name in ("_forward_hooks", "_forward_pre_hooks", "_backward_hooks",
+                                                    "_backward_pre_hooks"))
 
 
 class FxFailure(Exception):
@@ -143,6 +150,8 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
         graph = tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
     except Exception as exc:
         raise FxFailure(exc, tracer.failed_in) from exc
+    if whole and has_call_hooks(root):  # the graph replaces the root's forward, and with it the root's hooks
+        raise FxFailure(GraphError("the model itself carries hooks, which a traced graph would drop"), None)
     first = next((n for n in graph.nodes if n.op == "placeholder"), None)
     if whole and first is not None and str(first.target).startswith("*"):
         # forward(self, *args): the graph's input is a tuple, not an image a warp could take; hooks call the
