@@ -28,6 +28,7 @@ from __future__ import annotations
 import copy
 import copyreg
 import gc
+import itertools
 from collections import OrderedDict
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
@@ -70,8 +71,9 @@ def private_buffers(model: nn.Module) -> nn.Module:
     Any other attribute that is not immutable (a dict a forward caches grids
     in, a list it appends to, a config object) is deep-copied, with the
     tree's modules, parameters and buffers mapped to the twin's, so that
-    shared objects stay shared within the twin. Plain tensor attributes stay
-    shared (a view of a buffer must stay a view); so do a GraphModule's
+    shared objects stay shared within the twin. Plain tensor attributes are
+    copied too, except views of a parameter or buffer (a view must stay one)
+    and tensors of an autograd graph, which stay shared; so do a GraphModule's
     graph, which running it never touches, and an object that cannot be
     deep-copied. Running, tracing or exporting the twin leaves
     ``model`` bit for bit as it was. The twin is for one job: it is not a copy
@@ -109,11 +111,30 @@ def private_buffers(model: nn.Module) -> nn.Module:
     memo: dict[int, Any] = {**modules, **buffers}
     for t in model.parameters():
         memo[id(t)] = t
+    # a plain tensor attribute (a counter kept as a tensor, self.seen += n) is the twin's own copy, unless it is
+    # a view of a parameter or buffer (which must stay one) or part of an autograd graph (a weight recomputed from
+    # parameters by a hook): those stay shared, as before
+    tree = {_storage(t) for t in itertools.chain(model.parameters(), model.buffers())}
+    for m, c in pairs:
+        for key, value in m.__dict__.items():
+            if (type(value) is torch.Tensor and key not in _TREE_KEYS and not value.requires_grad
+                    and _storage(value) not in tree):
+                if id(value) not in memo:
+                    memo[id(value)] = value.clone()
+                c.__dict__[key] = memo[id(value)]
     for m, c in pairs:
         for key, value in m.__dict__.items():
             if key not in _TREE_KEYS and not _immutable(value):
                 c.__dict__[key] = _own_copy(value, memo)
     return twin
+
+
+def _storage(t: torch.Tensor) -> int | None:
+    """Where ``t``'s storage lives (``None`` for a tensor without one, on the meta device or a subclass)."""
+    try:
+        return t.untyped_storage().data_ptr() or None
+    except Exception:  # noqa: BLE001 - a tensor subclass or a device without storage: nothing to compare
+        return None
 
 
 def own_buffers_(model: nn.Module) -> dict[str, torch.Tensor]:

@@ -157,3 +157,9 @@ class LeafRule:
 
 def is_torch_builtin(cls: type) -> bool:
     return cls.__module__.startswith(("torch.nn", "torch.ao.nn"))
+
+
+def has_call_hooks(m: nn.Module) -> bool:
+    """Whether ``m`` has forward, forward-pre or backward hooks of its own: they run only when it is called."""
+    return any(getattr(m, name, None) for name in ("_forward_hooks", "_forward_pre_hooks", "_backward_hooks",
+                                                    "_backward_pre_hooks"))

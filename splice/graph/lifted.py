@@ -43,6 +43,24 @@ def adopt_lifted(graph: fx.Graph, traced: nn.Module, work: nn.Module) -> list[st
     return lifted
 
 
+def plain_tensor_targets(graph: fx.Graph, work: nn.Module) -> list[str]:
+    """The ``get_attr`` targets of ``graph`` that are plain tensor attributes of ``work`` (``self.seen``, a counter
+    kept as a tensor, not a buffer): the GraphModule registers them as buffers, and they must stay out of its state
+    dict as they are out of the model's."""
+    found = []
+    for node in graph.nodes:
+        if node.op != "get_attr":
+            continue
+        owner_path, _, leaf = node.target.rpartition(".")
+        try:
+            owner = work.get_submodule(owner_path) if owner_path else work
+        except AttributeError:
+            continue
+        if isinstance(owner.__dict__.get(leaf), torch.Tensor):
+            found.append(node.target)
+    return found
+
+
 _VIEWS = "_splice_lifted_views"  # on a GraphModule: {constant: (buffer, size, stride, offset in the buffer)}
 
 
@@ -94,3 +112,19 @@ def keep_view_sources(gm: fx.GraphModule, work: nn.Module, twin: nn.Module, lift
         if owner._buffers.get(leaf) is None:
             owner.register_buffer(leaf, source._buffers[leaf],
                                   persistent=leaf not in source._non_persistent_buffers_set)
+
+
+def root_tensors_back(root: nn.Module, buffers: dict, tensors: dict) -> str | None:
+    """Put back the root's buffers and tensor attributes that tracing replaced (``self.seen += n`` leaves the
+    Proxy of the update there; the graph holds the update itself), and name a buffer that tracing updated in
+    place for real, if any."""
+    eager = None
+    for k, (b, version) in buffers.items():
+        if root._buffers.get(k) is not b:
+            root._buffers[k] = b
+        elif b is not None and b._version != version:
+            eager = eager or k
+    for k, v in tensors.items():
+        if root.__dict__.get(k) is not v:
+            root.__dict__[k] = v
+    return eager

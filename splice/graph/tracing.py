@@ -26,8 +26,8 @@ from torch import nn
 
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
-from .leaves import LeafRule, class_path, is_torch_builtin
-from .lifted import adopt_lifted, keep_view_sources
+from .leaves import LeafRule, class_path, has_call_hooks, is_torch_builtin
+from .lifted import adopt_lifted, keep_view_sources, plain_tensor_targets, root_tensors_back
 
 __all__ = ["GraphWarning", "TraceModeWarning", "trace"]
 
@@ -114,12 +114,6 @@ class _Tracer(fx.Tracer):
             raise
 
 
-def has_call_hooks(m: nn.Module) -> bool:
-    """Whether ``m`` has forward, forward-pre or backward hooks of its own: they run only when it is called."""
-    return any(getattr(m, name, None) for name in ("_forward_hooks", "_forward_pre_hooks", "_backward_hooks",
-                                                    "_backward_pre_hooks"))
-
-
 class FxFailure(Exception):
     def __init__(self, error: BaseException, failed_in: tuple[str, type] | None):
         super().__init__(str(error))
@@ -146,10 +140,17 @@ def specialised_options(root: nn.Module, n_inputs: int | None) -> dict[str, Any]
 
 def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, whole: bool = True) -> fx.Graph:
     tracer = _Tracer(rule)
+    buffers = {k: (b, -1 if b is None else b._version) for k, b in root._buffers.items()}
+    tensors = {k: v for k, v in root.__dict__.items() if isinstance(v, torch.Tensor)}
     try:
         graph = tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
     except Exception as exc:
         raise FxFailure(exc, tracer.failed_in) from exc
+    finally:
+        eager = root_tensors_back(root, buffers, tensors)
+    if eager and whole:  # an update that ran while tracing, not in the graph (the root cannot be kept a leaf)
+        raise FxFailure(GraphError(f"the forward of {type(root).__name__} updates its buffer {eager!r} in place "
+                                   "where the tracer cannot record it"), None)
     if whole and has_call_hooks(root):  # the graph replaces the root's forward, and with it the root's hooks
         raise FxFailure(GraphError("the model itself carries hooks, which a traced graph would drop"), None)
     first = next((n for n in graph.nodes if n.op == "placeholder"), None)
@@ -478,12 +479,16 @@ def trace_copy(model: nn.Module, rule: LeafRule, edit: Callable[[fx.Graph, nn.Mo
     twin = private_buffers(work)
     graph = trace_owned(twin, rule, n_inputs)
     _unspy_meta(graph)
+    plain = plain_tensor_targets(graph, work)
     lifted = adopt_lifted(graph, twin, work)
     if edit is not None:
         edit(graph, work)
     gm = fx.GraphModule(work, graph, class_name=type(model).__name__)
     for name in lifted:
         gm._non_persistent_buffers_set.add(name)
+    for target in plain:
+        owner_path, _, leaf = target.rpartition(".")
+        gm.get_submodule(owner_path)._non_persistent_buffers_set.add(leaf)
     keep_view_sources(gm, work, twin, lifted)
     gm.training = model.training  # submodules keep their own (copied) flags
     return gm, twin
