@@ -257,3 +257,32 @@ def test_the_onnx_check_of_a_larger_probe_compares_one_sample_with_itself():
     report = verify_models(model, spliced, onnx=True, batch=3)
     assert report["onnx"].passed, report["onnx"].detail
     assert report["onnx"].numbers["max_abs"] < 1e-5
+
+
+@pytest.mark.parametrize("suffix", [".pt", ".safetensors"])
+def test_provenance_reads_the_source_file_not_only_the_hashes_beside_the_weights(tmp_path, suffix):
+    # a base tensor edited and the three hashes in splice.json written again to match: every row passed, and the
+    # row said "bitwise equal to the source checkpoint" of a file the base no longer equals
+    torch.manual_seed(0)
+    base = splice.load_source("splice.models:tray_net", warn_random=False).model
+    source = tmp_path / f"tray{suffix}"
+    if suffix == ".pt":
+        torch.save({"state_dict": {f"module.{k}": v for k, v in base.state_dict().items()}}, source)
+    else:
+        save_file(base.state_dict(), source)
+    folder = store.save(insert(store.open_source("splice.models:tray_net", weights=source), at="input"),
+                        tmp_path / "spliced")
+    assert "bitwise equal to the source checkpoint" in verify(folder)["provenance"].detail
+    weights = load_file(folder / "weights.safetensors")
+    weights["block1.bn.weight"] = weights["block1.bn.weight"] + 0.05
+    save_file(weights, folder / "weights.safetensors")
+    manifest = json.loads((folder / "splice.json").read_text())
+    forged = state_dict_sha256({k: v for k, v in weights.items() if not k.startswith("splice_warps.")})
+    manifest["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
+    manifest["weights"]["base_sha256"] = manifest["source"]["weights_sha256"] = forged
+    (folder / "splice.json").write_text(json.dumps(manifest))
+    row = verify(folder)["provenance"]
+    assert not row.passed
+    assert "1 of 26 tensors differ, max abs diff 0.05" in row.detail and "block1.bn.weight" in row.detail
+    source.unlink()  # without the file, only the hashes are left to compare, and the row says so
+    assert "only hashes are compared" in verify(folder)["provenance"].detail

@@ -46,6 +46,7 @@ from .weights import (
     load_weights_,
     read_safetensors,
     read_weights,
+    strip_prefixes,
     with_metadata,
 )
 
@@ -62,6 +63,7 @@ __all__ = [
     "is_hf_folder",
     "read_hf_folder",
     "read_weights",
+    "strip_prefixes",
     "read_safetensors",
     "with_metadata",
     "load_weights_",

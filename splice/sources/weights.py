@@ -30,6 +30,7 @@ __all__ = [
     "check_dtypes",
     "check_state_fits",
     "load_weights_",
+    "strip_prefixes",
     "WRAPPER_PREFIXES",
     "NESTING_KEYS",
 ]
@@ -219,7 +220,8 @@ def _read_shards(index: Path, *, trust_pickle: bool) -> dict[str, torch.Tensor]:
     return state
 
 
-def _strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str]) -> dict[str, torch.Tensor]:
+def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str]) -> dict[str, torch.Tensor]:
+    """``state`` without the wrapper prefixes (``module.``, ...) that every key shares, as a load reads it."""
     changed = True
     while changed:
         changed = False
@@ -304,7 +306,7 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     Returns ``{"missing": [...], "unexpected": [...], "mismatched": [...]}``.
     """
     own = model.state_dict()
-    state = _strip_prefixes(state, set(own))
+    state = strip_prefixes(state, set(own))
     cast = check_dtypes(own, state, where)
     if cast:
         kinds = sorted({str(state[k].dtype).replace("torch.", "") for k in cast})

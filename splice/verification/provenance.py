@@ -12,7 +12,7 @@ from ..fileio import state_dict_sha256
 from ..copies import bitwise_equal
 from ..errors import SpliceError
 from ..manifest import MANIFEST_NAME, SpliceInfo
-from ..sources import code_sha256, load_source
+from ..sources import code_sha256, load_source, read_weights, strip_prefixes
 from .report import CheckResult
 
 __all__: list[str] = []
@@ -34,6 +34,28 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tu
     except SpliceError as exc:
         return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
     return dict(src.model.state_dict()), f"compared with '{path}'"
+
+def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape,
+                  trust_code: bool) -> tuple[bool | None, str, dict | None]:
+    """Whether the base is bitwise the recorded source file's weights, read now (``None``: cannot tell), how it was
+    found, and the differences when it is not. The file is read as it is first (cheap); only when that does not
+    settle it is the source model rebuilt from it, as a load would (a cast, a nested or renamed state)."""
+    path = info.source_weights_path
+    if path is not None and Path(path).is_file():
+        try:
+            read = strip_prefixes(read_weights(path), set(base_state))
+        except (SpliceError, OSError, RuntimeError, ValueError):  # a pickle without trust, a folder: rebuild below
+            read = None
+        names = [k for k in base_state if k.rsplit(".", 1)[-1] != "num_batches_tracked"]
+        if read is not None and all(k in read and read[k].shape == base_state[k].shape for k in names) and all(
+                bitwise_equal(base_state[k], read[k].to(base_state[k].dtype)) for k in names):
+            return True, f"read from '{path}'", None
+    state, how = _source_state(info, input_shape, trust_code)
+    if state is None:
+        return None, how, None
+    diff = _tensor_diff(base_state, state)
+    return diff["changed"] == 0 and not diff["missing"], how, diff
+
 
 def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Tensor]) -> dict:
     changed: list[tuple[str, float]] = []
@@ -86,10 +108,22 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                            "splice.json records no source-weights hash, so the base cannot be traced to its source; "
                            "re-create the folder with 'splice insert'", "no source hash")
     if source == actual and not stale:
+        # the hashes are splice.json's, written with the folder: the source file itself, when it is on disk, says
+        # whether the base is still its weights
+        same, how, diff = _against_file(info, base_state, input_shape, trust_code)
+        if same is False:
+            numbers["diff"] = diff
+            largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
+            return CheckResult("provenance", False, numbers,
+                               f"the base weights differ from the source checkpoint ({how}: {diff['changed']} of "
+                               f"{diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}"
+                               f"{f' ({largest})' if largest else ''}), although splice.json's hashes agree: the "
+                               "folder was edited after splicing — re-create it from the source with 'splice "
+                               "insert'", "base edited")
         note = " (tuning records base_changed, but the base weights did not move)" if declared else ""
         return CheckResult("provenance", True, numbers,
-                           f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…){note}",
-                           f"sha256 {actual[:12]}… = source")
+                           f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
+                           f"{how}){note}", f"sha256 {actual[:12]}… = source")
     state, how = _source_state(info, input_shape, trust_code)
     if state is not None:
         diff = _tensor_diff(base_state, state)
