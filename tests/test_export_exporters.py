@@ -113,9 +113,11 @@ def test_an_onnx_file_says_what_it_needs_and_what_it_returns(tray_folder, tmp_pa
     assert json.loads(meta["splice.points"]) == [p.name for p in info.points]
 
 
-def test_a_float64_model_exports_as_verify_checks_it(tmp_path):
-    """verify --onnx checks a float32 copy (onnxruntime runs no float64 Conv or GridSample); export used to write
-    the float64 graph, which onnxruntime then refused. Reference: onnxruntime on the written file."""
+@pytest.mark.parametrize("dtype, tol", [("float64", 1e-5), ("bfloat16", 0.05)])
+def test_a_float64_model_exports_as_verify_checks_it(tmp_path, dtype, tol):
+    """verify --onnx checks a float32 copy (onnxruntime samples grids in float32 only, and runs no float64 Conv);
+    export used to write the float64 or bfloat16 graph, which onnxruntime then refused after verify had passed.
+    Reference: onnxruntime on the written file."""
     import numpy as np
     import onnxruntime as ort
     import torch
@@ -125,7 +127,7 @@ def test_a_float64_model_exports_as_verify_checks_it(tmp_path):
 
     torch.manual_seed(0)
     base = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
-                         nn.Linear(4, 2)).double()
+                         nn.Linear(4, 2)).to(getattr(torch, dtype))
     spliced = splice.insert(base, at="input", input_shape=(3, 16, 16))
     assert splice.verify(spliced, onnx=True).passed
     with warnings.catch_warnings(record=True) as seen:
@@ -136,9 +138,9 @@ def test_a_float64_model_exports_as_verify_checks_it(tmp_path):
     session = ort.InferenceSession(str(tmp_path / "f64.onnx"), providers=["CPUExecutionProvider"])
     x = np.random.default_rng(0).random((2, 3, 16, 16), dtype=np.float32)
     with torch.no_grad():
-        expected = spliced(torch.from_numpy(x).double()).numpy()
-    assert np.abs(session.run(None, {session.get_inputs()[0].name: x})[0] - expected).max() < 1e-5
-    assert next(spliced.parameters()).dtype == torch.float64  # the caller's model is as it was
+        expected = spliced(torch.from_numpy(x).to(getattr(torch, dtype))).double().numpy()
+    assert np.abs(session.run(None, {session.get_inputs()[0].name: x})[0] - expected).max() < tol
+    assert next(spliced.parameters()).dtype == getattr(torch, dtype)  # the caller's model is as it was
 
 
 class _CountedClasses(torch.nn.Module):

@@ -178,16 +178,19 @@ def _deployment_notes(model) -> dict[str, str]:
 
 
 def _float32_for_onnx(model):
-    """``model``, or a float32 copy of a float64 one, with a warning: onnxruntime runs no float64 convolution or
-    grid sampling, and ``verify --onnx`` checks a float32 copy too. The caller's model is not changed."""
-    if model_dtype(model) != torch.float64:
+    """``model``, or a float32 copy of a float64, float16 or bfloat16 one, with a warning: onnxruntime's grid
+    sampling runs in float32 only (and no float64 convolution), and ``verify --onnx`` checks a float32 copy too.
+    The caller's model is not changed."""
+    dtype = model_dtype(model)
+    if not dtype.is_floating_point or dtype == torch.float32:
         return model
     import copy
 
     from ..manifest import attach_info
 
-    warnings.warn("the model is float64, and onnxruntime runs no float64 convolution or grid sampling: the ONNX "
-                  "file is exported from a float32 copy (as verify --onnx checks it)", SpliceWarning, stacklevel=4)
+    warnings.warn(f"the model is {str(dtype).replace('torch.', '')}, and onnxruntime samples grids in float32 only: "
+                  "the ONNX file is exported from a float32 copy (as verify --onnx checks it)", SpliceWarning,
+                  stacklevel=4)
     twin = copy.deepcopy(model).float()
     attach_info(twin, info_of(model))  # a GraphModule's deepcopy drops its record
     return twin
