@@ -191,7 +191,9 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
     this does too, but walks child modules and empty mappings (most of a
     module's hook dictionaries) directly. Any value it does not know, and any
     module whose class copies itself its own way, goes to ``copy.deepcopy``
-    with the same ``memo``, so shared objects stay shared.
+    with the same ``memo``, so shared objects stay shared. A tensor attribute
+    computed from parameters (not a leaf of autograd), which deepcopy
+    refuses, is copied detached.
     """
     memo = {} if memo is None else memo
 
@@ -212,6 +214,10 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
                 state[key] = memo.get(id(value)) or memo.setdefault(id(value), type(value)())
             elif _atomic(value):
                 state[key] = value  # what deepcopy hands back for these, without its dispatch
+            elif isinstance(value, torch.Tensor) and not value.is_leaf:
+                # a tensor computed from parameters and kept on the module (the weight a classic weight_norm hook
+                # recomputes before every forward): deepcopy refuses it; the copy holds its value, detached
+                state[key] = memo.get(id(value)) or memo.setdefault(id(value), value.detach().clone())
             else:
                 state[key] = copy.deepcopy(value, memo)
         c.__setstate__(state)

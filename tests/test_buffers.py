@@ -426,3 +426,22 @@ def test_a_twin_of_a_graph_module_shares_its_graph_and_owns_its_buffers():
     assert changed_buffers(before, spliced) == []
     assert int(twin.count.calls) == 1 and int(twin.bn.num_batches_tracked) == 1
     assert spliced.code == code and _modes(spliced) == modes
+
+
+@pytest.mark.parametrize("wrap", [nn.utils.weight_norm, nn.utils.spectral_norm])
+def test_classic_weight_reparametrisations_are_spliced(wrap):
+    # their hooks keep the weight computed from parameters on the module, which deepcopy refuses ("cannot copy
+    # ... make the model deep-copyable"); a copy holds it detached, and the hook computes it again on every call
+    from splice.verification import verify_models
+
+    torch.manual_seed(0)
+    model = nn.Sequential(wrap(nn.Conv2d(3, 4, 3, padding=1)), nn.ReLU(), nn.Conv2d(4, 4, 3, padding=1),
+                          nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(4, 3)).eval()
+    model(torch.rand(1, 3, 8, 8))  # an eval forward with grad on: the weight it keeps is part of a graph
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    spliced = insert(model, at="input", input_shape=(3, 8, 8))
+    x = torch.rand(2, 3, 8, 8)
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))
+    assert verify_models(model, spliced).passed
+    assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())
