@@ -54,6 +54,8 @@ def _in_memory_base(model):
 @contextlib.contextmanager
 def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> Iterator[Path]:
     """``model`` as a splice folder: itself when it is one, else saved to a temporary folder."""
+    from .errors import UntrustedCodeError
+    from .sources import TRUST_ENV
     from .store import is_splice_folder, save
 
     if isinstance(model, (str, os.PathLike)) and is_splice_folder(model):
@@ -65,7 +67,12 @@ def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> I
         from .manifest import info_of
 
         save(src.model, folder, source=None if info_of(src.model) is not None else src)
-        yield folder
+        try:
+            yield folder
+        except UntrustedCodeError as exc:  # the refusal named splice's own temporary manifest, not the user's spec
+            raise UntrustedCodeError(
+                f"checking this model rebuilds its base from spec {src.spec!r}, which runs code from that file; "
+                f"if you trust it, pass trust_code=True (--trust-code, or {TRUST_ENV}=1)") from exc
 
 
 def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] = (), warp: str = "affine",

@@ -286,3 +286,14 @@ def test_provenance_reads_the_source_file_not_only_the_hashes_beside_the_weights
     assert "1 of 26 tensors differ, max abs diff 0.05" in row.detail and "block1.bn.weight" in row.detail
     source.unlink()  # without the file, only the hashes are left to compare, and the row says so
     assert "only hashes are compared" in verify(folder)["provenance"].detail
+
+
+def test_checking_a_splice_of_a_file_spec_in_memory_names_the_spec_not_a_temporary_manifest(model_file):
+    from splice.errors import UntrustedCodeError
+
+    spliced = splice.insert(f"{model_file}:flat_net", at="input", trust_code=True)
+    with pytest.raises(UntrustedCodeError, match=r"rebuilds its base from spec '.*:flat_net', which runs code from "
+                                                  r"that file; if you trust it, pass trust_code=True") as caught:
+        splice.verify(spliced)
+    assert "splice-" not in str(caught.value)  # the temporary folder is splice's, not the user's
+    assert splice.verify(spliced, trust_code=True).passed
