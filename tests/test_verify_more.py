@@ -297,3 +297,22 @@ def test_checking_a_splice_of_a_file_spec_in_memory_names_the_spec_not_a_tempora
         splice.verify(spliced)
     assert "splice-" not in str(caught.value)  # the temporary folder is splice's, not the user's
     assert splice.verify(spliced, trust_code=True).passed
+
+
+def test_a_tuned_warp_that_sends_the_noise_probe_off_the_image_still_passes_the_gradient_check():
+    # a tuned head may map the N(0,1) probe to a grid wholly outside the image: zero samples, zero gradient, and
+    # the row failed a working model (seen on the demo's label-free result, for 3 seeds of 4)
+    torch.manual_seed(0)
+    base = splice.load_source("splice.models:tray_net", warn_random=False).model.eval()
+    spliced = insert(base, at="input", warp=WarpConfig(head_width=4), input_shape=(1, 48, 48))
+    with torch.no_grad():
+        warps_of(spliced)["input"].head.fc2.bias.copy_(torch.tensor([1.0, 0.0, 5.0, 0.0, 1.0, 5.0]))
+    report = verify_models(base, spliced)
+    row = report["gradients"]
+    assert row.passed, row.detail
+    assert "at the identity, every warp's final layer gets a finite, non-zero gradient" in row.detail
+    assert "weight 0, bias 0" in row.detail  # what the tuned warp itself gave, told
+    nearest = insert(base, at="input", warp=WarpConfig(head_width=4, sampler="nearest"), input_shape=(1, 48, 48))
+    with torch.no_grad():
+        warps_of(nearest)["input"].head.fc2.bias.add_(0.01)
+    assert not verify_models(base, nearest)["gradients"].passed  # no gradient at the identity either: a failure

@@ -11,10 +11,12 @@ import torch
 from torch import nn
 
 from ..compare import flatten_outputs
+from ..copies import same_draws
 from ..errors import CheckFailed, SpliceError
 from ..exporting import check_onnx_graph, export_onnx_bytes, onnx_parity
+from ..surgery import warps_of
 from ..warps.perturb import final_layer
-from .probe import error_text, listed_names, short_number
+from .probe import error_text, listed_names, reset_copy, short_number
 from .report import CheckResult
 
 __all__: list[str] = []
@@ -55,6 +57,32 @@ def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: 
     return CheckResult("gradients", True, numbers,
                        f"every warp's final layer gets a finite, non-zero gradient{note}",
                        f"|grad| final bias: {summary}")
+
+def at_identity(spliced: nn.Module, x: tuple, seed: int, tuned_row: CheckResult) -> CheckResult:
+    """The row of a tuned model whose warps got no gradient on the probe, checked again on a copy with every warp
+    at the identity: a tuned head may send a noise probe's grid off the image (zero samples, zero gradient) or
+    leave its hidden units silent on noise, which says nothing of whether the warps are connected to the loss."""
+    twin = reset_copy(spliced)
+    warps = warps_of(twin)
+    heads = warp_head_params(warps)
+    for parts in heads.values():
+        for ps in parts.values():
+            for p in ps:
+                p.requires_grad_(True)
+    xs = tuple(t.detach().requires_grad_(t.is_floating_point()) for t in x)
+    try:
+        with torch.enable_grad(), same_draws():
+            out = twin(*[t.clone() for t in xs])
+    except Exception:  # noqa: BLE001 - the tuned row's own failure stands
+        return tuned_row
+    again = gradients_row(warps, *gradient_norms(out, heads, seed, xs))
+    if not again.passed or again.warning:
+        return tuned_row
+    return CheckResult("gradients", True, {**tuned_row.numbers, "at_identity": again.numbers},
+                       f"at the identity, {again.detail}; at the tuned warps this probe gave none ("
+                       f"{tuned_row.detail}), as a tuned head can on noise (a grid sent off the image, hidden units "
+                       "silent): the warps are connected to the loss", again.summary)
+
 
 def gradient_norms(out, head_params: dict[str, dict[str, list]], seed: int,
                inputs: tuple = ()) -> tuple[dict, str | None, float | None]:
