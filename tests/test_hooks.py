@@ -253,6 +253,14 @@ def test_a_second_input_needs_its_shape():
         graph.points(two_images(), (3, 32, 32), within="encoder")
 
 
+def test_a_shape_for_an_input_the_forward_does_not_take_is_refused():
+    # points listed the first shape and ignored the other; insert failed with an internal TypeError
+    with pytest.raises(GraphError, match=r"forward takes 2 inputs \(image1, image2\) and 3 shapes were given"):
+        graph.points(two_images(), [*SHAPES, (3, 32, 32)])
+    with pytest.raises(GraphError, match=r"Sequential's forward takes 1 input \(input\) and 2 shapes were given"):
+        graph.points(torch.nn.Sequential(torch.nn.Conv2d(3, 3, 1)), [(3, 8, 8), (1, 8, 8)])
+
+
 def test_cli_takes_several_input_shapes_and_within(capsys):
     code = main(["points", TWO, "--input-shape", "3x32x32", "--input-shape", "3x32x32", "--within", "encoder",
                  "--json"])

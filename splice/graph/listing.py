@@ -174,7 +174,13 @@ def _check_arity(model: nn.Module, shapes: tuple) -> None:
     except (TypeError, ValueError):  # a forward without a signature: let the forward itself tell
         return
     kinds = (inspect.Parameter.POSITIONAL_ONLY, inspect.Parameter.POSITIONAL_OR_KEYWORD)
+    params = list(params)
     required = [p.name for p in params if p.kind in kinds and p.default is inspect.Parameter.empty]
+    positional = [p.name for p in params if p.kind in kinds]
+    if len(shapes) > len(positional) and not any(p.kind is inspect.Parameter.VAR_POSITIONAL for p in params):
+        raise GraphError(f"{type(model).__name__}'s forward takes {len(positional)} input"
+                         f"{'' if len(positional) == 1 else 's'} ({', '.join(positional) or 'none'}) and "
+                         f"{len(shapes)} shapes were given; give one --input-shape per input")
     if len(required) > len(shapes):
         raise GraphError(f"{type(model).__name__}'s forward takes {len(required)} inputs ({', '.join(required)}) "
                          f"and {len(shapes)} shape{' was' if len(shapes) == 1 else 's were'} given; give one "
