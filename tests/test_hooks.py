@@ -278,6 +278,8 @@ def test_a_volume_gets_one_line_not_a_shape_error(capsys):
     with pytest.raises(SourceError, match=r"has four dimensions; splice works on images \(C, H, W\) for now; "
                                           r"volumes and video \(5-D inputs\) come in a later release"):
         splice.load_source("splice.models:tray_net", input_shape="3x8x32x32")
+    with pytest.raises(SourceError, match=r"if the first is the batch size, drop it: --input-shape 1x48x48$"):
+        splice.load_source("splice.models:tray_net", input_shape="1x1x48x48")  # a shape with its batch, a slip
     video = nn.Sequential(nn.Conv3d(3, 4, 3), nn.ReLU())
     with pytest.raises(GraphError, match=r"convolves volumes or video \(Conv3d, 5-D inputs\).*a later release"):
         graph.points(video, (3, 32, 32))

@@ -66,7 +66,9 @@ def parse_input_shape(text: str | Sequence[int] | None) -> tuple[int, int, int] 
     dims = _dims(text)
     if dims is None:
         if _four_dims(text):
-            raise SourceError(f"input shape {text!r} has four dimensions; {_LATER}")
+            parts = [p for p in re.split(r"[x×,\s]+", text.strip().lower()) if p] if isinstance(text, str) else list(text)
+            raise SourceError(f"input shape {text!r} has four dimensions; {_LATER}; if the first is the batch size, "
+                              f"drop it: --input-shape {'x'.join(str(p) for p in parts[1:])}")
         raise SourceError(
             f"malformed input shape {text!r}; expected CxHxW with three positive integers, "
             "e.g. --input-shape 3x224x224"
