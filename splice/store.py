@@ -27,6 +27,7 @@ import torch
 from torch import nn
 
 from .copies import rng_kept
+from .folders import folder_kind
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256
 from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
 from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
@@ -72,9 +73,12 @@ def read_manifest(folder: str | os.PathLike) -> dict:
     if not folder.exists():
         raise ManifestError(f"folder '{folder}' does not exist; check the path")
     if not path.is_file():
+        if folder_kind(folder) == "run folder":
+            raise ManifestError(f"'{folder}' is the run folder of a 'splice tune' run; give one of the models it "
+                                f"saved: '{folder / 'best'}' or '{folder / 'last'}'")
         raise ManifestError(
-            f"'{folder}' is not a splice folder (no {MANIFEST_NAME}); give a folder written by "
-            "'splice insert' or 'splice tune', or a model spec such as torchvision:resnet18"
+            f"'{folder}' is not a splice folder (no {MANIFEST_NAME}); give a folder written by 'splice insert', "
+            "or the best/ or last/ folder of a 'splice tune' run"
         )
     data = read_json(path, ManifestError, "the file is damaged — re-create the folder")
     return validate_manifest(data, str(path))

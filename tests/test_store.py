@@ -455,3 +455,16 @@ def test_verify_fails_provenance_when_the_model_file_changed_its_forward(tmp_pat
     rows = {c.check: c for c in report.checks}
     assert not report.passed and not rows["provenance"].passed
     assert "changed since the splice" in rows["provenance"].detail and rows["outputs"].passed
+
+
+def test_a_run_folder_where_a_model_folder_is_wanted_names_the_models_it_saved(tmp_path):
+    # the message said "give a folder written by ... 'splice tune'", which this one is
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "run.json").write_text(json.dumps({"format": "splice-run"}))
+    with pytest.raises(ManifestError, match=r"is the run folder of a 'splice tune' run; give one of the models it "
+                                            r"saved: '.*best' or '.*last'"):
+        splice.verify(run)
+    with pytest.raises(ManifestError, match=r"is not a splice folder \(no splice.json\); give a folder written by "
+                                            r"'splice insert', or the best/ or last/ folder of a 'splice tune' run$"):
+        splice.verify(tmp_path)
