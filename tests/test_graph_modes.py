@@ -360,3 +360,14 @@ def test_the_models_own_hooks_run_in_the_spliced_model(where):
     with torch.no_grad():
         assert torch.equal(spliced(x), model(x))
     assert len(seen) == 2  # once for each model: the hook ran in the spliced one too
+
+
+def test_a_leaf_that_names_no_module_of_the_model_is_refused():
+    # a typo in --leaf was ignored, and the trace then failed where the leaf was meant to help
+    model = _Blocks().eval()
+    with pytest.raises(GraphError, match=r"leaf 'Sequentail' names no module class of _Blocks; did you mean "
+                                         r"'Sequential'"):
+        points(model, (3, 8, 8), leaves=["Sequentail"])
+    with pytest.raises(GraphError, match=r"leaf 'torch.nn.Conv3d' names no module class"):
+        splice.insert(model, at="input", input_shape=(3, 8, 8), leaves=["torch.nn.Conv3d"])
+    assert [p.name for p in points(model, (3, 8, 8), leaves=[nn.Sequential, "torch.nn.modules.conv.Conv2d"])]

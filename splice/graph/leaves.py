@@ -17,7 +17,7 @@ from typing import Any
 
 from torch import nn
 
-from ..errors import GraphError
+from ..errors import GraphError, suggest
 from ..sources.specs import FILE_MODULE_PREFIX
 
 __all__ = ["DEFAULT_LEAVES", "register_leaf", "leaves_added"]
@@ -163,3 +163,18 @@ def has_call_hooks(m: nn.Module) -> bool:
     """Whether ``m`` has forward, forward-pre or backward hooks of its own: they run only when it is called."""
     return any(getattr(m, name, None) for name in ("_forward_hooks", "_forward_pre_hooks", "_backward_hooks",
                                                     "_backward_pre_hooks"))
+
+
+def check_leaves_found(leaves: Iterable[Any], model: nn.Module) -> None:
+    """Refuse, in one line with a suggestion, a leaf given for this call that names no module class of ``model``
+    (a typo would otherwise be ignored, and the trace fail where the leaf was meant to help)."""
+    types, names = _split_leaves(leaves, "leaves")
+    classes = {c for m in model.modules() for c in type(m).__mro__ if c is not nn.Module and c is not object
+               and isinstance(c, type) and issubclass(c, nn.Module)}
+    missing = [t.__name__ for t in types if not any(issubclass(c, t) for c in classes)]
+    missing += [n for n in sorted(names) if not any(class_path(c) == n or c.__name__ == n for c in classes)]
+    if missing:
+        known = sorted({c.__name__ for c in classes} | {class_path(c) for c in classes})
+        hint = suggest(missing[0], known)
+        raise GraphError(f"leaf {missing[0]!r} names no module class of {type(model).__name__}{hint}; give a class "
+                         "the model holds, by its name or dotted path (--leaf pkg.mod.ClassName)")

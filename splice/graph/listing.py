@@ -24,7 +24,7 @@ from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes, volumes_not_images
 from .entries import Entry, graph_entries
 from .fallback import hooks_view
-from .leaves import LeafRule
+from .leaves import LeafRule, check_leaves_found
 from .naming import describe_node, names_by_node
 from .scope import scope_inputs
 from .shapes import ShapeFailure, input_dtype, propagate
@@ -239,6 +239,7 @@ def points(
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
+    check_leaves_found(leaves, model)
     return _list(model, shapes, LeafRule(leaves), all, warp, within)[0]
 
 
@@ -254,6 +255,7 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     shapes = _check_input_shapes(input_shape)
     _check_images(model)
     _check_arity(model, shapes)
+    check_leaves_found(leaves, model)
     return _list(model, shapes, LeafRule(leaves), True, warp, within, keep=True)
 
 
