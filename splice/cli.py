@@ -96,6 +96,23 @@ def _add_pixel_cap(p: argparse.ArgumentParser) -> None:
                         "decompression-bomb threshold; also SPLICE_MAX_IMAGE_PIXELS)")
 
 
+def _model_flags(args) -> str:
+    """The model-source options the user gave, as flags for the next command to carry (quoted for a shell)."""
+    import shlex
+
+    flags = []
+    for name, value in (("--weights", args.weights), ("--kwargs", args.kwargs)):
+        if value:
+            flags += [name, value]
+    for shape in getattr(args, "input_shape", None) or []:
+        flags += ["--input-shape", shape]
+    for leaf in args.leaf:
+        flags += ["--leaf", leaf]
+    flags += [f for f, on in (("--allow-partial", args.allow_partial), ("--trust-pickle", args.trust_pickle),
+                              ("--trust-code", args.trust_code)) if on]
+    return "".join(f" {shlex.quote(f)}" for f in flags)
+
+
 def _source(args):
     from .store import open_source
 
@@ -164,13 +181,13 @@ def _cmd_points(args) -> int:
                   f"splice elsewhere, splice the original model: splice insert {src.spec}{within} "
                   f"{' '.join(f'--at {h}' for h in held)} --at NAME --out DIR")
     else:
-        out.print(f"Splice with: splice insert {args.model}{within} --at NAME --out DIR")
+        out.print(f"Splice with: splice insert {args.model}{_model_flags(args)}{within} --at NAME --out DIR")
     return EXIT_OK
 
 
 def _cmd_insert(args) -> int:
     from .folders import check_keeps_inputs, check_replaceable
-    from .sources import spec_file
+    from .sources import MODULE_SPEC, registry_kind_of, spec_file
     from .manifest import info_of
     from .store import save
     from .surgery import insert
@@ -193,7 +210,9 @@ def _cmd_insert(args) -> int:
     out.print(_MECHANISMS[info.mechanism] + (f", within {info.within}" if info.within else ""))
     if check:
         out.print(f"identity check: {'passed' if check['passed'] else 'FAILED (kept with --force)'} — {check['detail']}")
-    out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}")
+    # a spec no registry lists is code a folder names: verifying the folder rebuilds it only with the opt-in
+    trust = " --trust-code" if info.spec != MODULE_SPEC and registry_kind_of(info.spec, info.kwargs) is None else ""
+    out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}{trust}")
     return EXIT_OK
 
 

@@ -168,3 +168,17 @@ def test_options_a_folder_settles_itself_are_refused_not_ignored(tmp_path, capsy
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and needle in err[0], err
     assert main([*base, "--input-shape", "1x48x48"]) == 0  # the folder's own shape is no conflict
+
+
+def test_the_next_command_carries_the_options_it_needs(tmp_path, capsys):
+    # the insert that points suggested dropped --kwargs and --input-shape; the verify that insert suggested
+    # lacked the --trust-code a model file needs
+    assert main(["points", "splice.models:tray_net", "--kwargs", '{"num_classes": 3}', "--input-shape",
+                 "1x32x32"]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "splice insert splice.models:tray_net --kwargs '{\"num_classes\": 3}' --input-shape 1x32x32 --at NAME" in text
+    model_file = tmp_path / "net.py"
+    model_file.write_text("from splice.models import tray_net as net\nnet.input_shape = (1, 32, 32)\n")
+    out = tmp_path / "spliced"
+    assert main(["insert", f"{model_file}:net", "--trust-code", "--at", "input", "--out", str(out)]) == 0
+    assert f"Next: splice verify {out} --trust-code" in " ".join(capsys.readouterr().out.split())
