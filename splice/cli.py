@@ -339,7 +339,8 @@ def _parser_verify(sub) -> None:
     p.add_argument("--images", metavar="FOLDER", help="also probe with the images in FOLDER")
     p.add_argument("--batch", type=int, default=1, metavar="N",
                    help="probe batch size (default 1; more also exercises batch-size-dependent code)")
-    p.add_argument("--dtype", choices=("float32", "float64"), default="float32")
+    p.add_argument("--dtype", choices=("float32", "float64"), default="float32",
+                   help="dtype both models run the checks in (default float32; float64 for a tighter tolerance)")
     p.add_argument("--onnx", action="store_true", help="also export to ONNX and check onnxruntime parity")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
@@ -401,7 +402,7 @@ def _parser_inspect(sub) -> None:
     p.add_argument("folder", metavar="DIR")
     p.add_argument("--data", required=True, metavar="NAME|DIR")
     p.add_argument("--n", type=int, default=64, help="number of images (default 64)")
-    p.add_argument("--split", default="test")
+    p.add_argument("--split", default="test", help="the data split to read (default test)")
     p.add_argument("--out", required=True, metavar="REPORT_DIR")
     _add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
@@ -413,7 +414,7 @@ def _parser_eval(sub) -> None:
     p = sub.add_parser("eval", help="accuracy on clean data and under distortion sweeps")
     _add_model_options(p)
     p.add_argument("--data", required=True, metavar="NAME|DIR")
-    p.add_argument("--split", default="test")
+    p.add_argument("--split", default="test", help="the data split to read (default test)")
     p.add_argument("--against", metavar="MODEL2", help="a second model (source or folder) to compare with")
     p.add_argument("--against-trust-code", action="store_true",
                    help="build MODEL2 even when a file it reads names code no registry lists (--trust-code is for "
@@ -422,7 +423,7 @@ def _parser_eval(sub) -> None:
                    help="allow unpickling MODEL2's files (--trust-pickle is for MODEL alone)")
     p.add_argument("--distort", metavar="SPEC",
                    help="sweeps, e.g. 'rotate=0,15,30;scale=0.8,1.2;shift=0.1;perspective=0.2' (default: a standard sweep)")
-    p.add_argument("--batch-size", type=int, default=128)
+    p.add_argument("--batch-size", type=int, default=128, help="images per forward pass (default 128)")
     p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
     p.add_argument("--device", help="cuda, mps or cpu")
     p.add_argument("--json", action="store_true")
@@ -434,7 +435,7 @@ def _parser_demo(sub) -> None:
     p = sub.add_parser("demo", help="run the whole job on the embedded tray-camera digits")
     p.add_argument("--out", default="splice-demo", metavar="DIR")
     p.add_argument("--fast", action="store_true", help="a shorter run (about a minute)")
-    p.add_argument("--quiet", action="store_true")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
     p.set_defaults(func=_cmd_demo)
 
 
