@@ -111,6 +111,19 @@ def test_overrides_reach_the_run(tmp_path, spliced):
     assert warm > 0 and rows[-1]["lr"] < 0.01  # cosine decayed from the overridden lr
 
 
+def test_a_given_reference_is_in_the_resolved_recipe_that_can_be_passed_back(tmp_path, spliced):
+    # recipe.toml said reference = "auto", so passed back as --recipe it stopped: no reference known for the data
+    out = tmp_path / "run"
+    stop = RunOptions(progress=False, stop_after_pretrain_steps=1)
+    tune(str(spliced), recipe=_recipe("warp-only", epochs=1), data="digits-moved", out=out,
+         overrides=RecipeOverrides(reference="digits"), run_options=stop)
+    assert load_recipe(out / "recipe.toml").pretrain.reference == "digits"
+    again = tmp_path / "again"
+    tune(str(spliced), recipe=str(out / "recipe.toml"), data="digits-moved", out=again, run_options=stop)
+    recorded = json.loads((again / "run.json").read_text())
+    assert (recorded["reference"], recorded["reference_origin"]) == ("digits", "given"), recorded
+
+
 def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
     before = splice.load(spliced).state_dict()
     out = tmp_path / "run"

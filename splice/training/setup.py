@@ -56,6 +56,8 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
         if model is None:
             raise SpliceError("tune needs a model: a spec such as splice.models:tray_net or a splice folder")
         rec = load_recipe(recipe).with_overrides(**overrides.recipe_keys())
+        if overrides.reference is not None:  # recipe.toml is the resolved recipe: passed back, it runs the same
+            rec = dataclasses.replace(rec, pretrain=dataclasses.replace(rec.pretrain, reference=overrides.reference))
         req = Request(model, rec, "digits" if data is None else data, model_options, None, None)
     else:
         req = _resumed(run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
@@ -81,14 +83,20 @@ def gate_recorded_model(resume, model, model_options: ModelOptions) -> None:
                    trust_code=model_options.trust_code)
 
 
+def _without_reference(recipe: dict) -> dict:
+    return {**recipe, "name": "", "pretrain": {k: v for k, v in recipe["pretrain"].items() if k != "reference"}}
+
+
 def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: RecipeOverrides,
              model_options: ModelOptions) -> Request:
     recorded = load_recipe(run_dir / RECIPE_FILE)
     if recipe is not None or overrides.any_recipe_key:
         given = load_recipe(recipe if recipe is not None else run_dir / RECIPE_FILE)
         given = given.with_overrides(**overrides.recipe_keys())
-        if given.to_dict() | {"name": ""} != recorded.to_dict() | {"name": ""}:
-            diff = [k for k, v in given.to_dict().items() if recorded.to_dict().get(k) != v and k != "name"]
+        # the reference a run started with is run.json's (checked on its own); the recipe file may name it
+        mine, theirs = _without_reference(given.to_dict()), _without_reference(recorded.to_dict())
+        if mine != theirs:
+            diff = [k for k, v in mine.items() if theirs.get(k) != v]
             raise RecipeError(
                 f"run '{run_dir}' was started with a different recipe (differs in {', '.join(diff)}); "
                 f"resume without --recipe and overrides, or with the same ones"
