@@ -421,7 +421,8 @@ def render_eval(result: Mapping, console) -> None:
     from rich.table import Table
 
     other = result.get("against")
-    table = Table(title=f"{result['model']} on {result['data']}/{result['split']} ({result['n_images']} images)",
+    table = Table(title=f"{result['model']} on {str(result['data']).rstrip('/')}/{result['split']} "
+                        f"({result['n_images']} images)",
                   title_justify="left")
     table.add_column("distortion", justify="left")
     table.add_column("level", justify="right")

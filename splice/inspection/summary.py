@@ -128,7 +128,8 @@ def render_inspect(result: Mapping, console) -> None:
     from rich.table import Table
 
     acc = result.get("accuracy")
-    where = result["data"] if result["split"] is None else f"{result['data']}/{result['split']}"
+    data = str(result["data"]).rstrip("/") or "/"  # 'my_images/' given: not 'my_images//test'
+    where = data if result["split"] is None else f"{data}/{result['split']}"
     console.print(f"inspected {result['model']} on {result['n_images']} images of {where}"
                   + (f"; accuracy on them {acc:.4f}" if acc is not None else ""))
     if result.get("accuracy_note"):
