@@ -15,6 +15,8 @@ import sys
 import warnings
 from collections.abc import Sequence
 
+from .cliargs import add_model_options, add_pixel_cap, add_trust_code, add_within, model_flags
+
 __all__ = ["main", "build_parser"]
 
 EXIT_OK, EXIT_CHECK_FAILED, EXIT_USAGE = 0, 1, 2
@@ -54,63 +56,6 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):  #
 
 
 # ----------------------------------------------------------------------------- option groups
-
-
-def _add_model_options(p: argparse.ArgumentParser, *, shape: bool = True, optional: bool = False) -> None:
-    p.add_argument("model", metavar="MODEL", nargs="?" if optional else None,
-                   help="torchvision:NAME, timm:NAME, package.module:factory, path/file.py:factory, a Hugging Face "
-                   "save_pretrained folder, or a splice folder" + (" (optional with --resume)" if optional else ""))
-    p.add_argument("--weights", metavar="FILE", help=".pt/.pth state dict or .safetensors file")
-    p.add_argument("--kwargs", metavar="JSON", help="builder arguments as a JSON object, e.g. '{\"num_classes\": 10}'")
-    if shape:
-        p.add_argument("--input-shape", metavar="CxHxW", action="append",
-                       help="input shape without the batch, e.g. 3x224x224; repeat it for each input of a model "
-                            "with several, or give a JSON list such as '[[3,128,128],[3,128,128]]'")
-    p.add_argument("--leaf", action="append", default=[], metavar="TYPE",
-                   help="module class (name or dotted path) to keep opaque when tracing; repeatable")
-    p.add_argument("--allow-partial", action="store_true", help="load only the weights that fit; report the rest")
-    p.add_argument("--trust-pickle", action="store_true",
-                   help="allow unpickling whole-module checkpoints (can run arbitrary code: only for files you trust)")
-    _add_trust_code(p)
-
-
-_TRUST_CODE_HELP = ("build a model spec read from a file (a folder's splice.json, a run's run.json) even when no "
-                    "registry lists it, and allow code shipped with a model (a Hugging Face config's auto_map); "
-                    "this runs code the file names: only for files you trust. Not remembered; "
-                    "SPLICE_TRUST_CODE=1 does the same for a shell")
-
-
-def _add_trust_code(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--trust-code", action="store_true", help=_TRUST_CODE_HELP)
-
-
-def _add_within(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--within", metavar="MODULE", default="",
-                   help="list and splice points inside this submodule only (e.g. backbone); the whole model is "
-                        "saved, loaded and verified")
-
-
-def _add_pixel_cap(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--max-image-pixels", type=int, metavar="N",
-                   help="refuse images over N pixels before decoding them (default 89478485, Pillow's "
-                        "decompression-bomb threshold; also SPLICE_MAX_IMAGE_PIXELS)")
-
-
-def _model_flags(args) -> str:
-    """The model-source options the user gave, as flags for the next command to carry (quoted for a shell)."""
-    import shlex
-
-    flags = []
-    for name, value in (("--weights", args.weights), ("--kwargs", args.kwargs)):
-        if value:
-            flags += [name, value]
-    for shape in getattr(args, "input_shape", None) or []:
-        flags += ["--input-shape", shape]
-    for leaf in args.leaf:
-        flags += ["--leaf", leaf]
-    flags += [f for f, on in (("--allow-partial", args.allow_partial), ("--trust-pickle", args.trust_pickle),
-                              ("--trust-code", args.trust_code)) if on]
-    return "".join(f" {shlex.quote(f)}" for f in flags)
 
 
 def _source(args):
@@ -181,7 +126,7 @@ def _cmd_points(args) -> int:
                   f"splice elsewhere, splice the original model: splice insert {src.spec}{within} "
                   f"{' '.join(f'--at {h}' for h in held)} --at NAME --out DIR")
     else:
-        out.print(f"Splice with: splice insert {args.model}{_model_flags(args)}{within} --at NAME --out DIR")
+        out.print(f"Splice with: splice insert {args.model}{model_flags(args)}{within} --at NAME --out DIR")
     return EXIT_OK
 
 
@@ -307,19 +252,19 @@ def _cmd_demo(args) -> int:
 
 def _parser_points(sub) -> None:
     p = sub.add_parser("points", help="list where a warp can go")
-    _add_model_options(p)
+    add_model_options(p)
     p.add_argument("--all", action="store_true", help="list every 4-D activation, not just those between convs")
-    _add_within(p)
+    add_within(p)
     p.add_argument("--json", action="store_true", help="print the listing as JSON (schema in the README)")
     p.set_defaults(func=_cmd_points)
 
 
 def _parser_insert(sub) -> None:
     p = sub.add_parser("insert", help="splice identity-initialised warps into a model and save it")
-    _add_model_options(p)
+    add_model_options(p)
     p.add_argument("--at", action="append", required=True, metavar="POINT",
                    help="point name from 'splice points', or 'recommended'; repeatable")
-    _add_within(p)
+    add_within(p)
     p.add_argument("--warp", default="affine", metavar="FAMILY",
                    help="translation, attention, similarity, affine (default), projective or tps")
     p.add_argument("--loc-from", metavar="NAME", help="point the localisation head reads (default: the warped tensor)")
@@ -348,9 +293,9 @@ def _parser_verify(sub) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of the probe batch (default 0)")
     p.add_argument("--json", action="store_true", help="print the certificate as JSON")
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
-    _add_pixel_cap(p)
+    add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
-    _add_trust_code(p)
+    add_trust_code(p)
     p.set_defaults(func=_cmd_verify)
 
 
@@ -365,13 +310,13 @@ def _parser_export(sub) -> None:
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
                    help="ONNX exporter (default torchscript)")
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
-    _add_trust_code(p)
+    add_trust_code(p)
     p.set_defaults(func=_cmd_export)
 
 
 def _parser_tune(sub) -> None:
     p = sub.add_parser("tune", help="fine-tune with a shipped recipe (torchrun for several processes)")
-    _add_model_options(p, optional=True)
+    add_model_options(p, optional=True)
     p.add_argument("--recipe", metavar="NAME|FILE",
                    help="baseline, warp-only, joint, staged, label-free, batchnorm-stats, or a path to a .toml "
                         "recipe (optional with --resume)")
@@ -393,7 +338,7 @@ def _parser_tune(sub) -> None:
     p.add_argument("--device", help="cuda, mps or cpu (default: the best available)")
     p.add_argument("--workers", type=int, default=0, help="data-loading worker processes (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
-    _add_pixel_cap(p)
+    add_pixel_cap(p)
     p.set_defaults(func=_cmd_tune)
 
 
@@ -404,15 +349,15 @@ def _parser_inspect(sub) -> None:
     p.add_argument("--n", type=int, default=64, help="number of images (default 64)")
     p.add_argument("--split", default="test", help="the data split to read (default test)")
     p.add_argument("--out", required=True, metavar="REPORT_DIR")
-    _add_pixel_cap(p)
+    add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
-    _add_trust_code(p)
+    add_trust_code(p)
     p.set_defaults(func=_cmd_inspect)
 
 
 def _parser_eval(sub) -> None:
     p = sub.add_parser("eval", help="accuracy on clean data and under distortion sweeps")
-    _add_model_options(p)
+    add_model_options(p)
     p.add_argument("--data", required=True, metavar="NAME|DIR")
     p.add_argument("--split", default="test", help="the data split to read (default test)")
     p.add_argument("--against", metavar="MODEL2", help="a second model (source or folder) to compare with")
@@ -427,7 +372,7 @@ def _parser_eval(sub) -> None:
     p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
     p.add_argument("--device", help="cuda, mps or cpu")
     p.add_argument("--json", action="store_true")
-    _add_pixel_cap(p)
+    add_pixel_cap(p)
     p.set_defaults(func=_cmd_eval)
 
 

@@ -178,7 +178,8 @@ def test_the_next_command_carries_the_options_it_needs(tmp_path, capsys):
     text = " ".join(capsys.readouterr().out.split())
     assert "splice insert splice.models:tray_net --kwargs '{\"num_classes\": 3}' --input-shape 1x32x32 --at NAME" in text
     model_file = tmp_path / "net.py"
-    model_file.write_text("from splice.models import tray_net as net\nnet.input_shape = (1, 32, 32)\n")
+    model_file.write_text("from splice.models import tray_net\n\n\ndef net():\n    return tray_net()\n\n\n"
+                          "net.input_shape = (1, 32, 32)\n")
     out = tmp_path / "spliced"
     assert main(["insert", f"{model_file}:net", "--trust-code", "--at", "input", "--out", str(out)]) == 0
     assert f"Next: splice verify {out} --trust-code" in " ".join(capsys.readouterr().out.split())

@@ -11,13 +11,14 @@ from __future__ import annotations
 
 import importlib
 import sys
+import warnings
 from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from typing import Any
 
 from torch import nn
 
-from ..errors import GraphError, suggest
+from ..errors import GraphError, SpliceWarning, suggest
 from ..sources.specs import FILE_MODULE_PREFIX
 
 __all__ = ["DEFAULT_LEAVES", "register_leaf", "leaves_added"]
@@ -166,8 +167,9 @@ def has_call_hooks(m: nn.Module) -> bool:
 
 
 def check_leaves_found(leaves: Iterable[Any], model: nn.Module) -> None:
-    """Refuse, in one line with a suggestion, a leaf given for this call that names no module class of ``model``
-    (a typo would otherwise be ignored, and the trace fail where the leaf was meant to help)."""
+    """Warn, in one line with a suggestion, of a leaf given for this call that names no module class of ``model``
+    (a typo would otherwise pass unseen, and the trace fail where the leaf was meant to help; a list of leaves
+    kept for several models is not an error)."""
     types, names = _split_leaves(leaves, "leaves")
     classes = {c for m in model.modules() for c in type(m).__mro__ if c is not nn.Module and c is not object
                and isinstance(c, type) and issubclass(c, nn.Module)}
@@ -176,5 +178,6 @@ def check_leaves_found(leaves: Iterable[Any], model: nn.Module) -> None:
     if missing:
         known = sorted({c.__name__ for c in classes} | {class_path(c) for c in classes})
         hint = suggest(missing[0], known)
-        raise GraphError(f"leaf {missing[0]!r} names no module class of {type(model).__name__}{hint}; give a class "
-                         "the model holds, by its name or dotted path (--leaf pkg.mod.ClassName)")
+        warnings.warn(f"leaf {missing[0]!r} names no module class of {type(model).__name__}{hint}; it changes "
+                      "nothing: give a class the model holds, by its name or dotted path (--leaf pkg.mod.ClassName)",
+                      SpliceWarning, stacklevel=3)
