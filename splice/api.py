@@ -67,12 +67,54 @@ def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> I
         from .manifest import info_of
 
         save(src.model, folder, source=None if info_of(src.model) is not None else src)
+        _warn_unsaved(src.model, folder, trust_pickle, trust_code)
         try:
             yield folder
         except UntrustedCodeError as exc:  # the refusal named splice's own temporary manifest, not the user's spec
             raise UntrustedCodeError(
                 f"checking this model rebuilds its base from spec {src.spec!r}, which runs code from that file; "
                 f"if you trust it, pass trust_code=True (--trust-code, or {TRUST_ENV}=1)") from exc
+
+
+def _unsaved_tensors(model) -> dict:
+    """The base's tensors a folder does not carry: non-persistent buffers and plain tensor attributes."""
+    import torch
+
+    from .surgery import WARP_PREFIX
+
+    found = {}
+    for qualname, m in model.named_modules():
+        if qualname == WARP_PREFIX or qualname.startswith(WARP_PREFIX + "."):
+            continue
+        names = [*(k for k in m._non_persistent_buffers_set if m._buffers.get(k) is not None),
+                 *(k for k, v in m.__dict__.items() if type(v) is torch.Tensor)]
+        for k in names:
+            found[f"{qualname}.{k}" if qualname else k] = getattr(m, k)
+    return found
+
+
+def _warn_unsaved(model, folder: Path, trust_pickle: bool, trust_code: bool) -> None:
+    """Warn when the model in hand holds tensors a folder does not carry (a non-persistent buffer the caller set
+    after building it) that differ from those its spec builds: the checks and the export see the rebuilt ones."""
+    import warnings
+
+    from .copies import bitwise_equal
+    from .errors import SpliceError, SpliceWarning
+    from .store import load as load_folder
+
+    mine = _unsaved_tensors(model)
+    if not mine:
+        return
+    try:
+        rebuilt = _unsaved_tensors(load_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code))
+    except SpliceError:  # the checks that follow say why the folder does not load
+        return
+    differ = [k for k, t in mine.items() if k not in rebuilt or not bitwise_equal(t, rebuilt[k])]
+    if differ:
+        warnings.warn(f"the model holds tensors a folder does not carry (non-persistent buffers or tensor attributes: "
+                      f"{', '.join(differ[:4])}{' ...' if len(differ) > 4 else ''}) that differ from those its spec "
+                      "builds; what is checked, exported and loaded has the rebuilt ones: set them in the factory, or "
+                      "register them as persistent buffers", SpliceWarning, stacklevel=4)
 
 
 def points(model, input_shape=None, *, all: bool = False, leaves: Sequence[str] = (), warp: str = "affine",
