@@ -316,3 +316,20 @@ def test_a_tuned_warp_that_sends_the_noise_probe_off_the_image_still_passes_the_
     with torch.no_grad():
         warps_of(nearest)["input"].head.fc2.bias.add_(0.01)
     assert not verify_models(base, nearest)["gradients"].passed  # no gradient at the identity either: a failure
+
+
+def test_a_weights_file_given_relative_is_recorded_absolute(tmp_path, monkeypatch):
+    # recorded as given ('tray.pt'), the source file was "no longer on disk" for a verify run from elsewhere, and
+    # provenance fell back to the hashes beside the weights
+    torch.manual_seed(0)
+    base = splice.load_source("splice.models:tray_net", warn_random=False).model
+    monkeypatch.chdir(tmp_path)
+    torch.save(base.state_dict(), "tray.pt")
+    folder = store.save(insert(store.open_source("splice.models:tray_net", weights="tray.pt"), at="input"),
+                        tmp_path / "spliced")
+    recorded = json.loads((folder / "splice.json").read_text())["source"]["weights_file"]
+    assert recorded == str(tmp_path / "tray.pt")
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    assert f"read from '{tmp_path / 'tray.pt'}'" in verify(folder)["provenance"].detail

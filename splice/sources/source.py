@@ -70,6 +70,14 @@ def _looks_like_pickled_module(spec: str) -> bool:
     return ":" not in spec and spec.endswith(_WEIGHT_SUFFIXES) and not spec.endswith(".safetensors")
 
 
+
+def _weights_path(weights, origin) -> str | None:
+    """The weights file as a folder records it: absolute when the user gave it (a path relative to where a command
+    ran means nothing to a verify run from elsewhere), as written when it was read from a file."""
+    if weights is None:
+        return None
+    return str(weights) if origin is not None else os.path.abspath(os.fspath(weights))
+
 def load_source(
     spec: str | Source | nn.Module,
     *,
@@ -155,7 +163,7 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                  if spec.startswith("transformers:") else "or set factory.input_shape = (C, H, W)")
         raise SourceError(f"cannot tell the input shape of {spec}; pass --input-shape CxHxW (input_shape=...); {where}")
     return Source(model=model, spec=spec if origin is not None else absolute_spec(spec), kwargs=kw,
-                  input_shape=first, weights_path=str(weights) if weights is not None else None,
+                  input_shape=first, weights_path=_weights_path(weights, origin),
                   weights_sha256=state_dict_sha256(model.state_dict()) if hashed else None,
                   normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
@@ -269,7 +277,7 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
         # names and shapes checked as for any weights file (a tensor the folder lacks is refused by name)
         load_weights_(loaded, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=hf.spec)
         src.model = loaded.eval()
-        src.weights_path, src.random_init = str(weights), False
+        src.weights_path, src.random_init = _weights_path(weights, None), False
         src.weights_sha256 = state_dict_sha256(src.model.state_dict())
     if hf.normalisation is not None:
         src.normalisation, src.declares_normalisation = hf.normalisation, True
