@@ -98,6 +98,8 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
     ``max_rel`` is the max absolute error divided by the reference's max
     absolute value (per output, then the worst). ``top1`` is the fraction of
     rows whose argmax agrees, for 2-D classifier-like outputs (else ``None``).
+    NaN and Inf values agree only at the same places, with the same values;
+    the errors are those of the finite values.
     """
     ref, cand = flatten_outputs(reference), flatten_outputs(candidate)
     if not ref:
@@ -106,6 +108,7 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
         return _failed(f"output structure differs: {sorted(ref)} vs {sorted(cand)}")
     max_abs = 0.0
     max_rel = 0.0
+    nonfinite = 0
     top1: list[float] = []
     shapes_ok = True
     dtype = next(iter(ref.values())).dtype
@@ -115,14 +118,21 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
             shapes_ok = False
             continue
         a64, b64 = a.detach().double().cpu(), b.detach().double().cpu()
-        if not torch.isfinite(b64).all():
-            return _failed(f"{key} has NaN or Inf values", inf=True)
+        odd_a, odd_b = ~torch.isfinite(a64), ~torch.isfinite(b64)
+        if bool(odd_a.any()) or bool(odd_b.any()):
+            # NaN and Inf compare by place (a NaN in the reference made every error NaN, which max() then dropped):
+            # the same non-finite values at the same places agree, anything else is a failure
+            if not (torch.equal(odd_a, odd_b) and torch.equal(torch.isnan(a64), torch.isnan(b64))
+                    and torch.equal(a64[odd_a & ~torch.isnan(a64)], b64[odd_b & ~torch.isnan(b64)])):
+                return _failed(f"{key} has NaN or Inf values at other places than the reference", inf=True)
+            nonfinite += int(odd_a.sum())
+            a64, b64 = a64[~odd_a], b64[~odd_b]
+        elif a.ndim == 2 and a.shape[1] > 1 and a.is_floating_point():
+            top1.append(float((a64.argmax(1) == b64.argmax(1)).double().mean()))
         err = float((a64 - b64).abs().max()) if a64.numel() else 0.0
         scale = float(a64.abs().max()) if a64.numel() else 0.0
         max_abs = max(max_abs, err)
         max_rel = max(max_rel, err / scale if scale > 0 else err)
-        if a.ndim == 2 and a.shape[1] > 1 and a.is_floating_point():
-            top1.append(float((a64.argmax(1) == b64.argmax(1)).double().mean()))
     limit = DEFAULT_TOLERANCES.get(dtype, 1e-5) if tol is None else tol
     agree = min(top1) if top1 else None
     passed = shapes_ok and max_rel <= limit
@@ -131,6 +141,8 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
             f"{k} {tuple(ref[k].shape)} vs {tuple(cand[k].shape)}" for k in ref if ref[k].shape != cand[k].shape)
     else:
         detail = f"max abs error {max_abs:.3g}, max relative error {max_rel:.3g} (tolerance {limit:g})"
+        if nonfinite:
+            detail += f"; {nonfinite} NaN or Inf value{'s' if nonfinite > 1 else ''}, at the same places in both"
     return {"passed": passed, "max_abs": max_abs, "max_rel": max_rel, "top1": agree,
             "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail}
 

@@ -333,3 +333,17 @@ def test_a_weights_file_given_relative_is_recorded_absolute(tmp_path, monkeypatc
     elsewhere.mkdir()
     monkeypatch.chdir(elsewhere)
     assert f"read from '{tmp_path / 'tray.pt'}'" in verify(folder)["provenance"].detail
+
+
+def test_non_finite_outputs_agree_only_at_the_same_places():
+    # a NaN in the reference made every error NaN, which max() dropped: [1, 2, nan] against [100, -50, 0] passed
+    # with max_abs 0; and a NaN both models give (a log of a negative mean) failed a splice that is exact
+    nan, inf = float("nan"), float("inf")
+    ref = torch.tensor([[1.0, 2.0, nan, inf]])
+    assert not compare_outputs(ref, torch.tensor([[100.0, -50.0, 0.0, 1.0]]))["passed"]
+    assert not compare_outputs(ref, torch.tensor([[1.0, 2.0, nan, -inf]]))["passed"]
+    assert not compare_outputs(torch.tensor([1.0, 2.0]), torch.tensor([1.0, nan]))["passed"]
+    same = compare_outputs(ref, ref.clone())
+    assert same["passed"] and same["max_abs"] == 0.0 and "2 NaN or Inf values, at the same places" in same["detail"]
+    off = compare_outputs(ref, torch.tensor([[1.0, 2.5, nan, inf]]))
+    assert not off["passed"] and off["max_abs"] == pytest.approx(0.5)  # the finite values still count
