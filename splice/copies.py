@@ -291,13 +291,23 @@ def rng_kept() -> Iterator[None]:
     """The caller's random number generators as they were before the block, whatever it drew; also a decorator.
 
     The CPU generator always, and each CUDA device's once CUDA is initialised
-    (forking them earlier would initialise it). A check or an export draws
+    (forking them earlier would initialise it); Python's ``random`` and
+    NumPy's global generator too. A check or an export draws
     numbers (a warp's initial weights while a model is rebuilt, a probe
     batch); the caller's next draw is the one it would have been without it.
     """
+    import random
+
+    import numpy as np
+
     devices = list(range(torch.cuda.device_count())) if torch.cuda.is_initialized() else []
-    with torch.random.fork_rng(devices=devices):
-        yield
+    python, numpy = random.getstate(), np.random.get_state()
+    try:
+        with torch.random.fork_rng(devices=devices):
+            yield
+    finally:
+        random.setstate(python)
+        np.random.set_state(numpy)
 
 
 #: the seed of :func:`same_draws`: any fixed number would do
@@ -314,8 +324,14 @@ def same_draws() -> Iterator[None]:
     its splice each run under this draw the same masks, since a warp draws no
     random numbers, so comparing them compares the splice and not the dice.
     """
+    import random
+
+    import numpy as np
+
     with rng_kept():
         torch.random.default_generator.manual_seed(DRAWS_SEED)
         if torch.cuda.is_initialized():  # torch.manual_seed would queue a seed for a CUDA not yet started
             torch.cuda.manual_seed_all(DRAWS_SEED)
+        random.seed(DRAWS_SEED)  # a forward that draws from Python's or NumPy's generator (test-time flips)
+        np.random.seed(DRAWS_SEED)
         yield

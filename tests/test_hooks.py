@@ -341,9 +341,12 @@ def test_an_output_independent_of_the_input_is_a_warning_not_a_failure(tmp_path)
 
 
 def test_a_warp_cut_off_from_the_loss_fails(tmp_path):
-    with pytest.warns(splice.errors.SpliceWarning, match="is not a cut"):
-        spliced = insert(f"{__file__}:side_branch", at="side")
-    report = verify(save(spliced, tmp_path / "side"), trust_code=True)
+    # the forward keeps the side branch on self, which a traced graph would not: a hooks model
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", splice.graph.TraceFallbackWarning)
+        with pytest.warns(splice.errors.SpliceWarning, match="is not a cut"):
+            spliced = insert(f"{__file__}:side_branch", at="side")
+        report = verify(save(spliced, tmp_path / "side"), trust_code=True)
     assert report.failed == ["gradients"]
     assert report["gradients"].numbers["input_grad"] > 0
     assert "zero gradient" in report["gradients"].detail and not report["gradients"].warning

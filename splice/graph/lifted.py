@@ -114,17 +114,46 @@ def keep_view_sources(gm: fx.GraphModule, work: nn.Module, twin: nn.Module, lift
                                   persistent=leaf not in source._non_persistent_buffers_set)
 
 
-def root_tensors_back(root: nn.Module, buffers: dict, tensors: dict) -> str | None:
-    """Put back the root's buffers and tensor attributes that tracing replaced (``self.seen += n`` leaves the
-    Proxy of the update there; the graph holds the update itself), and name a buffer that tracing updated in
-    place for real, if any."""
-    eager = None
-    for k, (b, version) in buffers.items():
-        if root._buffers.get(k) is not b:
-            root._buffers[k] = b
-        elif b is not None and b._version != version:
-            eager = eager or k
-    for k, v in tensors.items():
-        if root.__dict__.get(k) is not v:
-            root.__dict__[k] = v
-    return eager
+def buffer_states(root: nn.Module) -> dict[tuple[int, str], tuple[nn.Module, object, int]]:
+    """Each buffer slot of ``root``'s modules: the module, the tensor and its version."""
+    return {(id(m), name): (m, b, b._version if b is not None else -1)
+            for m in root.modules() for name, b in m._buffers.items()}
+
+
+_ATOMS = (int, float, bool, str, bytes, type(None))
+
+
+def module_state(root: nn.Module) -> list:
+    """What a trace could change on each module of ``root``: its buffer slots, its tensor attributes, and its plain
+    Python values (a step counter, a flag), with the version of each buffer."""
+    state = []
+    for m in root.modules():
+        buffers = {k: (b, -1 if b is None else b._version) for k, b in m._buffers.items()}
+        tensors = {k: v for k, v in m.__dict__.items() if isinstance(v, torch.Tensor)}
+        plain = {k: v for k, v in m.__dict__.items() if k != "training" and type(v) in _ATOMS}
+        state.append((m, buffers, tensors, plain))
+    return state
+
+
+def state_back(state: list) -> dict[nn.Module, str]:
+    """Put back every buffer and tensor attribute a trace replaced (``self.seen += n`` leaves the Proxy of the
+    update there), and name, per module, what the trace changed: a slot replaced, a buffer updated in place for
+    real, a Python value changed. Such a change ran once, while tracing; the graph may not hold it."""
+    changed: dict[nn.Module, str] = {}
+    for m, buffers, tensors, plain in state:
+        for k, (b, version) in buffers.items():
+            if m._buffers.get(k) is not b:
+                m._buffers[k] = b
+                changed.setdefault(m, f"buffer {k!r}")
+            elif b is not None and b._version != version:
+                changed.setdefault(m, f"buffer {k!r}")
+        for k, v in tensors.items():
+            if m.__dict__.get(k) is not v:
+                m.__dict__[k] = v
+                changed.setdefault(m, f"attribute {k!r}")
+        for k, v in plain.items():
+            now = m.__dict__.get(k, v)
+            if type(now) is not type(v) or (now is not v and now != v):
+                m.__dict__[k] = v
+                changed.setdefault(m, f"attribute {k!r}")
+    return changed

@@ -27,7 +27,8 @@ from torch import nn
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import LeafRule, class_path, has_call_hooks, is_torch_builtin
-from .lifted import adopt_lifted, keep_view_sources, plain_tensor_targets, root_tensors_back
+from .lifted import (adopt_lifted, buffer_states, keep_view_sources, module_state, plain_tensor_targets,
+                     state_back)
 
 __all__ = ["GraphWarning", "TraceModeWarning", "trace"]
 
@@ -138,25 +139,36 @@ def specialised_options(root: nn.Module, n_inputs: int | None) -> dict[str, Any]
     return found or None
 
 
-def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, whole: bool = True) -> fx.Graph:
+def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, whole: bool = True,
+                changed: set[type] | None = None) -> fx.Graph:
+    """One fx trace of ``root``. What it changed on a module (an update that ran once, while tracing) is put back,
+    and the module's class goes to ``changed`` (a leaf); a change on the root, a draw from Python's or NumPy's
+    generator, hooks on the root or a ``*args`` forward fail it: hooks then run the real forward."""
+    import random
+
+    import numpy as np
+
     tracer = _Tracer(rule)
-    buffers = {k: (b, -1 if b is None else b._version) for k, b in root._buffers.items()}
-    tensors = {k: v for k, v in root.__dict__.items() if isinstance(v, torch.Tensor)}
+    state = module_state(root)
+    draws = (random.getstate(), np.random.get_state()[1].tobytes())
     try:
         graph = tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
     except Exception as exc:
         raise FxFailure(exc, tracer.failed_in) from exc
     finally:
-        eager = root_tensors_back(root, buffers, tensors)
-    if eager and whole:  # an update that ran while tracing, not in the graph (the root cannot be kept a leaf)
-        raise FxFailure(GraphError(f"the forward of {type(root).__name__} updates its buffer {eager!r} in place "
-                                   "where the tracer cannot record it"), None)
+        updated = state_back(state)
+    if changed is not None:
+        changed.update(_original_class(type(m)) for m in updated if m is not root)
+    if whole and root in updated:
+        raise FxFailure(GraphError(f"the forward of {type(root).__name__} changes its {updated[root]} as it runs, "
+                                   "which a traced graph would do once, while tracing"), None)
+    if whole and draws != (random.getstate(), np.random.get_state()[1].tobytes()):
+        raise FxFailure(GraphError(f"the forward of {type(root).__name__} draws from Python's or NumPy's random "
+                                   "generator, whose draw a traced graph would fix"), None)
     if whole and has_call_hooks(root):  # the graph replaces the root's forward, and with it the root's hooks
         raise FxFailure(GraphError("the model itself carries hooks, which a traced graph would drop"), None)
     first = next((n for n in graph.nodes if n.op == "placeholder"), None)
-    if whole and first is not None and str(first.target).startswith("*"):
-        # forward(self, *args): the graph's input is a tuple, not an image a warp could take; hooks call the
-        # forward as the model is called
+    if whole and first is not None and str(first.target).startswith("*"):  # a tuple, not an image to warp
         raise FxFailure(GraphError(f"the forward takes its inputs as {first.target}, not as named tensors"), None)
     return graph
 
@@ -272,7 +284,8 @@ def _set_training(mods: list[nn.Module], flag: bool) -> None:
         m.__dict__["training"] = flag
 
 
-def _trace_modes(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) -> tuple[fx.Graph, str | None]:
+def _trace_modes(root: nn.Module, rule: LeafRule, n_inputs: int | None = None,
+                 changed: set[type] | None = None) -> tuple[fx.Graph, str | None]:
     """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not)."""
     mods = list(root.modules())
     difference = None
@@ -280,20 +293,15 @@ def _trace_modes(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) -
         _set_training(mods, False)
         reads: list[nn.Module] = []
         with spying(mods, reads) as spied:
-            graph = _run_tracer(root, rule, n_inputs)
+            graph = _run_tracer(root, rule, n_inputs, changed=changed)
         # if no traced code read a `training` flag, a train-mode trace takes the same path
         if not spied or reads:
             _set_training(mods, True)
             try:
-                difference = _describe_difference(graph, _run_tracer(root, rule, n_inputs))
+                difference = _describe_difference(graph, _run_tracer(root, rule, n_inputs, changed=changed))
             except FxFailure as failure:
                 difference = f"the train-mode trace fails: {reason(failure.error)}"
     return graph, difference
-
-
-def _buffer_states(root: nn.Module) -> dict[tuple[int, str], tuple[nn.Module, object, int]]:
-    return {(id(m), name): (m, b, b._version if b is not None else -1)
-            for m in root.modules() for name, b in m._buffers.items()}
 
 
 def _updating_classes(root: nn.Module, before: dict) -> set[type]:
@@ -338,7 +346,7 @@ def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn
             return False
         return True
 
-    before = _buffer_states(root)
+    before = buffer_states(root)
     mods = list(root.modules())
     with _modes_restored(mods):
         _set_training(mods, True)
@@ -359,21 +367,18 @@ def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) ->
 
     A batch norm that fx traces through (a subclass fused with its activation)
     counts batches only in train mode, which the eval-mode trace cannot see:
-    when the tree holds one, one instance of each such class is traced alone
-    in train mode first to find the updating ones, so that the eval-mode
-    trace of the tree runs once with them as leaves, not once before and once
-    after. The last round (an eval-mode
-    trace, and a train-mode one if ``training`` is read, neither updating a
-    buffer) is the same either way.
+    one instance of each such class is traced alone in train mode first, so
+    that the tree is traced once with the updating ones as leaves.
     """
     norms = _traced_through_norms(root, rule)
     counting = _counting_norm_classes(root, rule, norms, n_inputs) if norms else set()
     rule.add(counting)
     try:
         for _ in range(4):
-            before = _buffer_states(root)
-            graph, difference = _trace_modes(root, rule, n_inputs)
-            updating = {c for c in _updating_classes(root, before) if not rule(c)}
+            before = buffer_states(root)
+            changed: set[type] = set()
+            graph, difference = _trace_modes(root, rule, n_inputs, changed)
+            updating = {c for c in _updating_classes(root, before) | changed if not rule(c)}
             if not updating:
                 break
             rule.add(updating)
