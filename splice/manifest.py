@@ -45,10 +45,8 @@ is the canonical hash of the base part of the saved state dict.
 ``source.trained_on`` names the images the base network was trained on (a
 data set name or an absolute folder path), as ``splice tune`` recorded it;
 ``splice insert`` carries it over from a folder, and warp pre-training takes
-its upright reference from it. Absent or null when unknown.
-
-Layer: beside :mod:`splice.surgery`, which imports it; it imports only
-:mod:`splice.errors` and :mod:`splice.warps`.
+its upright reference from it. Absent or null when unknown. A folder read
+while its model file differs from ``source.code_sha256`` is told, with a warning.
 """
 
 from __future__ import annotations
@@ -56,12 +54,13 @@ from __future__ import annotations
 import copy
 import dataclasses
 import math
+import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from .errors import ManifestError
-from .sources import MODULE_SPEC
+from .errors import ManifestError, SpliceWarning
+from .sources import MODULE_SPEC, code_change
 from .warps import WarpConfig
 
 __all__ = [
@@ -381,6 +380,9 @@ class SpliceInfo:
         """The record of a parsed ``splice.json``, validated first (:class:`ManifestError` names every violation)."""
         validate_manifest(data, where)
         src = data["source"]
+        told = code_change(src["spec"], src.get("code_sha256")) if folder is not None else None
+        if told is not None:  # what loads is built from other code than was spliced (verify fails provenance)
+            warnings.warn(f"'{folder}': {told}", SpliceWarning, stacklevel=3)
         return cls(
             spec=src["spec"], kwargs=dict(src.get("kwargs") or {}), input_shape=tuple(data["input_shape"]),
             normalisation=data.get("normalisation"), class_names=data.get("class_names"),

@@ -11,7 +11,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import splice
-from splice.errors import ManifestError, SpliceError
+from splice.errors import ManifestError, SpliceError, SpliceWarning
 from splice.manifest import validate_manifest
 from splice.store import read_manifest
 from splice.surgery import insert
@@ -451,10 +451,18 @@ def test_verify_fails_provenance_when_the_model_file_changed_its_forward(tmp_pat
     model_file.write_text(code.format(pool="amax"))  # the same weights, another forward
     for name in [n for n in sys.modules if n.startswith(FILE_MODULE_PREFIX)]:  # a new process, as the CLI runs
         del sys.modules[name]
-    report = splice.verify(folder, trust_code=True)
+    with pytest.warns(SpliceWarning, match=r"'.*spliced': the model file '.*mine.py' changed since the splice"):
+        report = splice.verify(folder, trust_code=True)
     rows = {c.check: c for c in report.checks}
     assert not report.passed and not rows["provenance"].passed
     assert "changed since the splice" in rows["provenance"].detail and rows["outputs"].passed
+    # loading it is told (tune, eval and inspect open folders the same way), and exporting it is refused: the
+    # parity check would compare the new code with itself
+    with pytest.warns(SpliceWarning, match="changed since the splice"):
+        splice.load(folder, trust_code=True)
+    with pytest.warns(SpliceWarning), pytest.raises(splice.errors.CheckFailed, match="nothing was exported"):
+        splice.export(folder, onnx=tmp_path / "m.onnx", trust_code=True)
+    assert not (tmp_path / "m.onnx").exists()
 
 
 def test_a_run_folder_where_a_model_folder_is_wanted_names_the_models_it_saved(tmp_path):

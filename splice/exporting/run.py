@@ -12,6 +12,7 @@ import torch
 from ..copies import rng_kept
 from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
 from ..manifest import info_of
+from ..sources import code_change
 from ..store import load
 from .onnx import check_opset, export_onnx_bytes, site_names, with_metadata
 from .parity import model_dtype, onnx_parity
@@ -120,6 +121,9 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
     """
     _check_targets(onnx, pt2, opset, exporter)
     model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+    told = code_change(info_of(model).spec, info_of(model).code_sha256)
+    if told is not None:  # the parity check would compare the new code with itself, and pass
+        raise CheckFailed(f"'{folder}': {told}; nothing was exported")
     return _export_loaded(model, f"'{folder}'", onnx, pt2, opset=opset, dynamic_batch=dynamic_batch,
                           exporter=exporter, seed=seed, tol=tol)
 

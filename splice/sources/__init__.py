@@ -31,7 +31,7 @@ unexpected and shape-mismatched names are refused unless ``allow_partial``.
 from __future__ import annotations
 
 from .adopting import adopt_state
-from .builders import IMAGENET_NORMALISATION, build_model, code_sha256, spec_file
+from .builders import IMAGENET_NORMALISATION, build_model, code_change, code_sha256, spec_file
 from .empty import initialisers_skipped
 from .huggingface import is_hf_folder, read_hf_folder
 from .source import MODULE_SPEC, Source, load_source, uncompiled
@@ -58,6 +58,7 @@ __all__ = [
     "uncompiled",
     "build_model",
     "code_sha256",
+    "code_change",
     "spec_file",
     "initialisers_skipped",
     "is_hf_folder",

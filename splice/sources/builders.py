@@ -94,6 +94,17 @@ def code_sha256(spec: str) -> str | None:
     return None if file is None else hashlib.sha256(file.read_bytes()).hexdigest()
 
 
+def code_change(spec: str, recorded: str | None) -> str | None:
+    """What to tell when the model file of ``spec`` is no longer the one whose sha256 was ``recorded`` at the splice
+    (a folder rebuilt from it is not the model that was spliced), else ``None``."""
+    now = code_sha256(spec)
+    if recorded is None or now is None or now == recorded:
+        return None
+    return (f"the model file '{spec.rpartition(':')[0]}' changed since the splice (sha256 {recorded[:12]}… then, "
+            f"{now[:12]}… now): the base is built from other code than was spliced; restore the file, or splice "
+            "the new code again")
+
+
 def _import_factory(head: str, attr: str, spec: str):
     if _is_file_head(head):
         path = Path(head)

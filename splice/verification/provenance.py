@@ -12,7 +12,7 @@ from ..fileio import state_dict_sha256
 from ..copies import bitwise_equal
 from ..errors import SpliceError
 from ..manifest import MANIFEST_NAME, SpliceInfo
-from ..sources import code_sha256, load_source, read_weights, strip_prefixes
+from ..sources import code_change, code_sha256, load_source, read_weights, strip_prefixes
 from .report import CheckResult
 
 __all__: list[str] = []
@@ -80,14 +80,11 @@ def _code_changed(info: SpliceInfo) -> CheckResult | None:
     """A failed row when the model file the base is built from is not the one that was spliced, else ``None``:
     the base and the splice would both be rebuilt from the new code, and equal each other, yet not the model
     that was spliced."""
-    now = code_sha256(info.spec)
-    if info.code_sha256 is None or now is None or now == info.code_sha256:
+    told = code_change(info.spec, info.code_sha256)
+    if told is None:
         return None
-    file = info.spec.rpartition(":")[0]
-    return CheckResult("provenance", False, {"code_sha256": now, "recorded_code_sha256": info.code_sha256},
-                       f"the model file '{file}' changed since the splice (sha256 {info.code_sha256[:12]}… then, "
-                       f"{now[:12]}… now): the base is built from other code than was spliced; restore the file, "
-                       "or splice the new code again", "model file changed")
+    return CheckResult("provenance", False, {"code_sha256": code_sha256(info.spec),
+                                             "recorded_code_sha256": info.code_sha256}, told, "model file changed")
 
 
 def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
