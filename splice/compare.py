@@ -108,7 +108,7 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
         return _failed(f"output structure differs: {sorted(ref)} vs {sorted(cand)}")
     max_abs = 0.0
     max_rel = 0.0
-    nonfinite = 0
+    nonfinite = compared = 0
     top1: list[float] = []
     shapes_ok = True
     dtype = next(iter(ref.values())).dtype
@@ -127,8 +127,9 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
                 return _failed(f"{key} has NaN or Inf values at other places than the reference", inf=True)
             nonfinite += int(odd_a.sum())
             a64, b64 = a64[~odd_a], b64[~odd_b]
-        elif a.ndim == 2 and a.shape[1] > 1 and a.is_floating_point():
+        elif a.ndim == 2 and a.shape[0] > 0 and a.shape[1] > 1 and a.is_floating_point():
             top1.append(float((a64.argmax(1) == b64.argmax(1)).double().mean()))
+        compared += a64.numel()
         err = float((a64 - b64).abs().max()) if a64.numel() else 0.0
         scale = float(a64.abs().max()) if a64.numel() else 0.0
         max_abs = max(max_abs, err)
@@ -143,8 +144,10 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
         detail = f"max abs error {max_abs:.3g}, max relative error {max_rel:.3g} (tolerance {limit:g})"
         if nonfinite:
             detail += f"; {nonfinite} NaN or Inf value{'s' if nonfinite > 1 else ''}, at the same places in both"
+        if not compared:
+            detail += "; but every output is empty (no detection, say): no value was compared"
     return {"passed": passed, "max_abs": max_abs, "max_rel": max_rel, "top1": agree,
-            "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail}
+            "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail, "compared": compared}
 
 
 def _map_tensors(out, fn):

@@ -347,3 +347,24 @@ def test_non_finite_outputs_agree_only_at_the_same_places():
     assert same["passed"] and same["max_abs"] == 0.0 and "2 NaN or Inf values, at the same places" in same["detail"]
     off = compare_outputs(ref, torch.tensor([[1.0, 2.5, nan, inf]]))
     assert not off["passed"] and off["max_abs"] == pytest.approx(0.5)  # the finite values still count
+
+
+class _NothingFound(torch.nn.Module):
+    """A detector-like head that finds nothing on noise: its one output has no rows."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = torch.nn.Conv2d(3, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.conv(x).flatten(1)[:, :0]  # no value, as a detector's boxes when it finds nothing
+
+
+def test_outputs_that_hold_no_value_pass_with_a_warning_not_silently():
+    # every probe gave boxes (0, 4): nothing was compared, and the row said PASS like any other
+    model = _NothingFound().eval()
+    spliced = insert(model, at="input", input_shape=(3, 8, 8))
+    row = verify_models(model, spliced)["outputs"]
+    assert row.passed and "no value was compared" in row.warning and "every output is empty" in row.detail
+    assert compare_outputs(torch.zeros(0, 4), torch.zeros(0, 4))["compared"] == 0
+    assert compare_outputs(torch.zeros(2, 4), torch.zeros(2, 4))["compared"] == 8

@@ -90,7 +90,9 @@ def outputs_row(name: str, cmp: dict, reset: bool, what: str) -> CheckResult:
     summary = f"abs {short_number(cmp.get('max_abs'))}, rel {short_number(cmp.get('max_rel'))}"
     if cmp.get("top1") is not None:
         summary += f", top-1 {cmp['top1']:.0%}"
-    return CheckResult(name, bool(cmp["passed"]), numbers, f"{what}{where}: {cmp['detail']}", summary)
+    empty = ("every output is empty on this probe, so no value was compared: give --images on which the model "
+             "answers") if cmp.get("compared") == 0 and cmp["passed"] else ""
+    return CheckResult(name, bool(cmp["passed"]), numbers, f"{what}{where}: {cmp['detail']}", summary, warning=empty)
 
 def merge_compares(results: list[dict]) -> dict:
     if not results:
@@ -103,7 +105,8 @@ def merge_compares(results: list[dict]) -> dict:
               "max_rel": max((r["max_rel"] for r in have), default=None),
               "top1": sum(top) / len(top) if top else None,
               "tolerance": results[0].get("tolerance"),
-              "shapes_equal": all(r.get("shapes_equal", True) for r in results)}
+              "shapes_equal": all(r.get("shapes_equal", True) for r in results),
+              "compared": sum(r.get("compared", 0) for r in results)}
     merged["detail"] = failed[0]["detail"] if failed else (
         f"max abs error {short_number(merged['max_abs'])}, max relative error {short_number(merged['max_rel'])} "
         f"(tolerance {merged['tolerance']:g})")
