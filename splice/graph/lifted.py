@@ -26,14 +26,7 @@ def adopt_lifted(graph: fx.Graph, traced: nn.Module, work: nn.Module) -> list[st
     again, so a folder rebuilds them and its base part is the source's state).
     """
     lifted = []
-    for node in graph.nodes:
-        if node.op != "get_attr":
-            continue
-        owner_path, _, leaf = node.target.rpartition(".")
-        try:
-            owner = work.get_submodule(owner_path) if owner_path else work
-        except AttributeError:
-            continue
+    for node, owner_path, owner, leaf in _attribute_reads(graph, work):
         if hasattr(owner, leaf):
             continue
         value = getattr(traced.get_submodule(owner_path) if owner_path else traced, leaf)
@@ -47,7 +40,13 @@ def plain_tensor_targets(graph: fx.Graph, work: nn.Module) -> list[str]:
     """The ``get_attr`` targets of ``graph`` that are plain tensor attributes of ``work`` (``self.seen``, a counter
     kept as a tensor, not a buffer): the GraphModule registers them as buffers, and they must stay out of its state
     dict as they are out of the model's."""
-    found = []
+    return [node.target for node, _, owner, leaf in _attribute_reads(graph, work)
+            if isinstance(owner.__dict__.get(leaf), torch.Tensor)]
+
+
+def _attribute_reads(graph: fx.Graph, work: nn.Module):
+    """``(node, owner path, owner module of work, attribute name)`` for each ``get_attr`` node whose owner
+    ``work`` has."""
     for node in graph.nodes:
         if node.op != "get_attr":
             continue
@@ -56,9 +55,7 @@ def plain_tensor_targets(graph: fx.Graph, work: nn.Module) -> list[str]:
             owner = work.get_submodule(owner_path) if owner_path else work
         except AttributeError:
             continue
-        if isinstance(owner.__dict__.get(leaf), torch.Tensor):
-            found.append(node.target)
-    return found
+        yield node, owner_path, owner, leaf
 
 
 _VIEWS = "_splice_lifted_views"  # on a GraphModule: {constant: (buffer, size, stride, offset in the buffer)}
