@@ -120,14 +120,22 @@ def buffer_states(root: nn.Module) -> dict[tuple[int, str], tuple[nn.Module, obj
 _ATOMS = (int, float, bool, str, bytes, type(None))
 
 
-def module_state(root: nn.Module) -> list:
-    """What a trace could change on each module of ``root``: its buffer slots, its tensor attributes, and its plain
-    Python values (a step counter, a flag), with the version of each buffer."""
+def module_state(root: nn.Module, opaque=None) -> list:
+    """What a trace could change on each module of ``root`` the tracer runs (``opaque(module)`` says it does not:
+    a leaf is one call in the graph): its buffer slots, its tensor attributes, and its plain Python values (a step
+    counter, a flag), with the version of each buffer."""
     state = []
     for m in root.modules():
+        if opaque is not None and m is not root and opaque(m):
+            continue
+        tensors, plain = {}, {}
+        for k, v in m.__dict__.items():
+            if type(v) in _ATOMS:
+                if k != "training":
+                    plain[k] = v
+            elif isinstance(v, torch.Tensor):
+                tensors[k] = v
         buffers = {k: (b, -1 if b is None else b._version) for k, b in m._buffers.items()}
-        tensors = {k: v for k, v in m.__dict__.items() if isinstance(v, torch.Tensor)}
-        plain = {k: v for k, v in m.__dict__.items() if k != "training" and type(v) in _ATOMS}
         state.append((m, buffers, tensors, plain))
     return state
 

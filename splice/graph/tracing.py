@@ -149,7 +149,7 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
     import numpy as np
 
     tracer = _Tracer(rule)
-    state = module_state(root)
+    state = module_state(root, lambda m: is_torch_builtin(type(m)) or rule(type(m)))
     draws = (random.getstate(), np.random.get_state()[1].tobytes())
     try:
         graph = tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
