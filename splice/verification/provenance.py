@@ -36,10 +36,11 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tu
     return dict(src.model.state_dict()), f"compared with '{path}'"
 
 def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape,
-                  trust_code: bool) -> tuple[bool | None, str, dict | None]:
+                  trust_code: bool) -> tuple[bool | None, str, dict | None, dict | None]:
     """Whether the base is bitwise the recorded source file's weights, read now (``None``: cannot tell), how it was
-    found, and the differences when it is not. The file is read as it is first (cheap); only when that does not
-    settle it is the source model rebuilt from it, as a load would (a cast, a nested or renamed state)."""
+    found, the differences, and the source state when it was rebuilt. The file is read as it is first (cheap);
+    only when its tensors do not line up with the base's is the source model rebuilt from it, as a load would (a
+    nested or renamed state)."""
     path = info.source_weights_path
     if path is not None and Path(path).is_file():
         try:
@@ -47,14 +48,16 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
         except (SpliceError, OSError, RuntimeError, ValueError):  # a pickle without trust, a folder: rebuild below
             read = None
         names = [k for k in base_state if k.rsplit(".", 1)[-1] != "num_batches_tracked"]
-        if read is not None and all(k in read and read[k].shape == base_state[k].shape for k in names) and all(
-                bitwise_equal(base_state[k], read[k].to(base_state[k].dtype)) for k in names):
-            return True, f"read from '{path}'", None
+        if read is not None and all(k in read and read[k].shape == base_state[k].shape for k in names):
+            aligned = {k: read[k].to(base_state[k].dtype) for k in names}
+            diff = _tensor_diff({k: base_state[k] for k in names}, aligned)
+            # the file's state as a load gives it (a batch counter it lacks is the model's own)
+            return diff["changed"] == 0, f"read from '{path}'", diff, {**base_state, **aligned}
     state, how = _source_state(info, input_shape, trust_code)
     if state is None:
-        return None, how, None
+        return None, how, None, None
     diff = _tensor_diff(base_state, state)
-    return diff["changed"] == 0 and not diff["missing"], how, diff
+    return diff["changed"] == 0 and not diff["missing"], how, diff, state
 
 
 def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Tensor]) -> dict:
@@ -73,7 +76,7 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             changed.append((name, float((a.long() - b.long()).abs().max())))
     changed.sort(key=lambda t: -t[1])
     return {"tensors": len(source), "changed": len(changed), "max_abs_diff": changed[0][1] if changed else 0.0,
-            "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]],
+            "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]], "names": [n for n, _ in changed],
             "missing": missing, "unexpected": extra}
 
 def _code_changed(info: SpliceInfo) -> CheckResult | None:
@@ -88,8 +91,9 @@ def _code_changed(info: SpliceInfo) -> CheckResult | None:
 
 
 def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
-                    input_shape, trust_code: bool = False) -> CheckResult:
-    """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller."""
+                    input_shape, trust_code: bool = False, buffers: frozenset = frozenset()) -> CheckResult:
+    """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller; ``buffers`` names the base's
+    buffers (a difference in buffers alone is told as what running the model does to them)."""
     changed = _code_changed(info)
     if changed is not None:
         return changed
@@ -107,7 +111,7 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
     if source == actual and not stale:
         # the hashes are splice.json's, written with the folder: the source file itself, when it is on disk, says
         # whether the base is still its weights
-        same, how, diff = _against_file(info, base_state, input_shape, trust_code)
+        same, how, diff, _ = _against_file(info, base_state, input_shape, trust_code)
         if same is False:
             numbers["diff"] = diff
             largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
@@ -121,11 +125,10 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         return CheckResult("provenance", True, numbers,
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
                            f"{how}){note}", f"sha256 {actual[:12]}… = source")
-    state, how = _source_state(info, input_shape, trust_code)
-    if state is not None:
-        diff = _tensor_diff(base_state, state)
+    _, how, diff, state = _against_file(info, base_state, input_shape, trust_code)
+    if diff is not None:
         numbers["diff"] = diff
-        if state_dict_sha256(state) != source:
+        if state is not None and state_dict_sha256(state) != source:
             how += " (that file no longer hashes to the recorded source hash: it changed since the splice)"
         largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
         how += f": {diff['changed']} of {diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}" + (
@@ -138,6 +141,13 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         return CheckResult("provenance", True, numbers,
                            f"the base was tuned as well (joint recipe, recorded in splice.json): {differs}; {how}",
                            "base tuned (recorded)")
+    moved = numbers.get("diff", {}).get("names") or []
+    if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
+        return CheckResult("provenance", False, numbers,
+                           f"{differs}, and no tuning of the base is recorded; {how}. Only buffers differ: a forward "
+                           "that updates them (a counter, running statistics) changes them whenever the model runs, "
+                           "so a model that ran since it was spliced is no longer its source; re-create the folder "
+                           "from the source with 'splice insert'", "base buffers changed")
     return CheckResult("provenance", False, numbers,
                        f"{differs}, and no tuning of the base is recorded; {how}. The weights were edited after "
                        "splicing — re-create the folder from the source with 'splice insert'", "base changed")
