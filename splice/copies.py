@@ -217,7 +217,9 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
             elif isinstance(value, torch.Tensor) and not value.is_leaf:
                 # a tensor computed from parameters and kept on the module (the weight a classic weight_norm hook
                 # recomputes before every forward): deepcopy refuses it; the copy holds its value, detached
-                state[key] = memo.get(id(value)) or memo.setdefault(id(value), value.detach().clone())
+                if id(value) not in memo:  # a tensor's truth value is no test of whether it was copied
+                    memo[id(value)] = value.detach().clone()
+                state[key] = memo[id(value)]
             else:
                 state[key] = copy.deepcopy(value, memo)
         c.__setstate__(state)

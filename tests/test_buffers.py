@@ -445,3 +445,14 @@ def test_classic_weight_reparametrisations_are_spliced(wrap):
         assert torch.equal(spliced(x), model(x))
     assert verify_models(model, spliced).passed
     assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())
+
+
+def test_tree_copy_keeps_one_copy_of_a_computed_tensor_held_twice():
+    # the memo lookup asked a tensor for its truth value ("ambiguous") the second time it met the same one
+    from splice.copies import tree_copy
+
+    m = nn.Linear(3, 3)
+    m.cached = m.weight * 2  # computed from a parameter: part of an autograd graph
+    m.again = m.cached
+    c = tree_copy(m)
+    assert c.cached is c.again and not c.cached.requires_grad and torch.equal(c.cached, m.cached.detach())
