@@ -139,10 +139,10 @@ def first_line(exc: BaseException, limit: int = 300) -> str:
     """The first non-empty line of ``str(exc)`` without terminal colour codes (torch.onnx's dynamo exporter writes
     them into its messages), or the exception's class name when it has no message.
 
-    A line cut off mid-sentence (brackets left open, or a closing ``:``) goes on with the next lines, joined by
-    spaces, up to ``limit`` characters (the first line is never cut) (the TorchScript exporter prints a tensor inside its sentence). A message
-    with an ``## Exception summary`` section (torch.onnx's) gives that summary's first line: the cause, where the
-    first line says only which step failed.
+    A line cut off mid-sentence (brackets left open, or a closing ``:``; the TorchScript exporter prints a tensor
+    inside its sentence) goes on with the next lines, joined by spaces, up to ``limit`` characters; the first line
+    itself is never cut. A message with an ``## Exception summary`` section (torch.onnx's) gives that summary's
+    first line: the cause, where the first line says only which step failed.
     """
     text = _TERMINAL_CODES.sub("", str(exc))
     if "## Exception summary" in text:

@@ -342,8 +342,8 @@ def _base_name(spec: str) -> str:
 
 
 def check_unspliced(src) -> None:
-    """Refuse a model that already holds warps, for ``insert`` and ``points``: both are about an original model
-    (a splice goes into the base, all its points at once), not about a spliced one."""
+    """Refuse a model that already holds warps, in a folder or in memory: a splice goes into the original model,
+    all its points at once, not into a spliced one."""
     info = info_of(src.model)  # a spliced model in memory carries its record; a folder's is in its manifest
     held = [p["name"] for p in src.manifest["points"]] if src.is_spliced else [p.name for p in info.points] if (
         info is not None) else []

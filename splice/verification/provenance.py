@@ -38,9 +38,9 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tu
 def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape,
                   trust_code: bool) -> tuple[bool | None, str, dict | None, dict | None]:
     """Whether the base is bitwise the recorded source file's weights, read now (``None``: cannot tell), how it was
-    found, the differences, and the source state when it was rebuilt. The file is read as it is first (cheap);
-    only when its tensors do not line up with the base's is the source model rebuilt from it, as a load would (a
-    nested or renamed state)."""
+    found, the differences, and the source's state dict. The file is read as it is first (cheap); only when its
+    tensors do not line up with the base's is the source model rebuilt from it, as a load would (a nested or
+    renamed state)."""
     path = info.source_weights_path
     if path is not None and Path(path).is_file():
         try:
@@ -79,6 +79,13 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]], "names": [n for n, _ in changed],
             "missing": missing, "unexpected": extra}
 
+def _told(diff: dict) -> str:
+    """``"N of M tensors differ, max abs diff X (the largest)"``."""
+    largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
+    return (f"{diff['changed']} of {diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}"
+            + (f" ({largest})" if largest else ""))
+
+
 def _code_changed(info: SpliceInfo) -> CheckResult | None:
     """A failed row when the model file the base is built from is not the one that was spliced, else ``None``:
     the base and the splice would both be rebuilt from the new code, and equal each other, yet not the model
@@ -114,13 +121,10 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         same, how, diff, _ = _against_file(info, base_state, input_shape, trust_code)
         if same is False:
             numbers["diff"] = diff
-            largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
             return CheckResult("provenance", False, numbers,
-                               f"the base weights differ from the source checkpoint ({how}: {diff['changed']} of "
-                               f"{diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}"
-                               f"{f' ({largest})' if largest else ''}), although splice.json's hashes agree: the "
-                               "folder was edited after splicing — re-create it from the source with 'splice "
-                               "insert'", "base edited")
+                               f"the base weights differ from the source checkpoint ({how}: {_told(diff)}), although "
+                               "splice.json's hashes agree: the folder was edited after splicing — re-create it "
+                               "from the source with 'splice insert'", "base edited")
         note = " (tuning records base_changed, but the base weights did not move)" if declared else ""
         return CheckResult("provenance", True, numbers,
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
@@ -130,9 +134,7 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         numbers["diff"] = diff
         if state is not None and state_dict_sha256(state) != source:
             how += " (that file no longer hashes to the recorded source hash: it changed since the splice)"
-        largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
-        how += f": {diff['changed']} of {diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}" + (
-            f" ({largest})" if largest else "")
+        how += f": {_told(diff)}"
     differs = (f"base weights (sha256 {actual[:12]}…) differ from the source checkpoint (sha256 {source[:12]}…)"
                if source != actual else
                f"the base weights' sha256 {actual[:12]}… differs from the one recorded at save time "
