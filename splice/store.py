@@ -255,6 +255,7 @@ def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.
 def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
     """Load ``state`` into ``model`` strictly (adopting the tensors with ``assign``), naming what does not fit."""
     from .warps import Warp
+    from .warps.grids import grid_dtype
 
     own = model.state_dict(keep_vars=True)
     check_state_fits(own, state, f"the weights of '{folder}'", "the folder was edited by hand or written by an "
@@ -266,7 +267,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
         relink_lifted(model)  # constants the tracer lifted from buffer views, on the meta device until now
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
-            if p is not None and (p.dtype != warp.base_grid.dtype or p.device != warp.base_grid.device):
+            if p is not None and (grid_dtype(p.dtype) != warp.base_grid.dtype or p.device != warp.base_grid.device):
                 warp.to(device=p.device, dtype=p.dtype)  # rebuilds its grid buffers in float64, then rounds once
         if _on_meta(model):
             raise WeightsError(f"'{folder}': the model keeps tensors outside its state dict; build its base for "

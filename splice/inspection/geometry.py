@@ -65,10 +65,8 @@ def map_points(warp, theta: Tensor, points: Tensor) -> Tensor:
     base = torch.cat([pts, torch.ones(pts.shape[0], 1, dtype=torch.float64)], dim=1)  # (M, 3)
     if warp.family == "tps":
         control = grids.tps_control_points(warp.config.tps_k)
-        kernel = grids.tps_kernel(base, control)
-        inverse = grids.tps_system_inverse(control)
         offsets = theta.reshape(theta.shape[0], -1, 2)
-        return grids.tps_grid(base, kernel, inverse, offsets, 1, pts.shape[0]).reshape(theta.shape[0], -1, 2)
+        return grids.tps_grid(base, grids.tps_weights(base, control), offsets, 1, pts.shape[0]).reshape(theta.shape[0], -1, 2)
     m = warp.matrix(theta)
     q = torch.matmul(base, m.transpose(1, 2))
     return q[..., :2] / grids.safe_denominator(q[..., 2:3])

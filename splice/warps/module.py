@@ -8,6 +8,7 @@ non-persistent grid buffers) and wires the pieces together.
 
 from __future__ import annotations
 
+import contextlib
 from typing import Any
 
 import torch
@@ -61,6 +62,14 @@ def needs_rounding_correction(sampler: str, height: int, width: int) -> bool:
     return sampler != "nearest" and not (_is_pow2(height) and _is_pow2(width))
 
 
+def _autocast_off(t: Tensor):
+    """A block with autocast off on ``t``'s device when it is on there (else nothing, so tracers see no context)."""
+    kind = t.device.type
+    if kind in ("cpu", "cuda", "xpu", "mps") and torch.is_autocast_enabled(kind):
+        return torch.autocast(kind, enabled=False)
+    return contextlib.nullcontext()
+
+
 def _check_shape(name: str, shape: Any) -> tuple[int, int, int]:
     ok = (
         isinstance(shape, (tuple, list))
@@ -80,15 +89,20 @@ def warp_bytes(config: WarpConfig, shape: tuple[int, int, int], loc_shape: tuple
     """Peak bytes of building ``Warp(config, shape, loc_shape, dtype=dtype)``, from the shapes alone.
 
     The head's parameters (:func:`warp_cost`) plus the grid buffers, which are
-    computed in float64 and then rounded once: ``3 H W`` values for the base
-    grid and, for tps, ``H W (K^2 + 3)`` for the kernel, each held in float64
-    and in ``dtype`` while it is built.
+    computed in float64 and then rounded once to at least float32: ``3 H W``
+    values for the base grid and, for tps, ``H W K^2`` weights, each held in
+    float64 and in the grid's dtype while it is built, with the tps kernel
+    (``H W (K^2 + 3)`` values in float64) beside them.
     """
-    size = torch.empty((), dtype=dtype or torch.get_default_dtype()).element_size()
+    dtype = dtype or torch.get_default_dtype()
+    size = torch.empty((), dtype=dtype).element_size()
+    grid_size = torch.empty((), dtype=grids.grid_dtype(dtype)).element_size()
     params, _ = warp_cost(config, shape, loc_shape)
     _, h, w = shape
-    per_pixel = 3 + (config.tps_k ** 2 + 3 if config.family == "tps" else 0)
-    return params * size + h * w * per_pixel * (8 + size)
+    per_pixel = (3 + (config.tps_k ** 2 if config.family == "tps" else 0)) * (8 + grid_size)
+    if config.family == "tps":
+        per_pixel += (config.tps_k ** 2 + 3) * 8
+    return params * size + h * w * per_pixel
 
 
 def warp_cost(
@@ -104,7 +118,7 @@ def warp_cost(
         head      see splice.warps.head.head_macs (pool, two 3x3 convs, 4x4 pool, two Linear)
         grid      matrix families: 6 HW  (B M[:2]^T, 3 MACs per coordinate)
                   projective:     11 HW  (B M^T, 9 MACs per point, plus 2 divisions)
-                  tps:             2 (K^2+3) K^2 + 2 HW (K^2+3)  (coefficients, then displacement)
+                  tps:             2 HW K^2  (the displacement, A d; A is formed once, in float64)
         sampler   taps * C * H * W  with taps = 1 nearest, 4 bilinear, 16 bicubic,
                   twice that plus C H W when the identity rounding correction runs
                   (see needs_rounding_correction)
@@ -123,8 +137,7 @@ def warp_cost(
     macs = head_macs(loc, config.head_width, p)
     hw = h * w
     if config.family == "tps":
-        m = config.tps_k * config.tps_k
-        macs += 2 * (m + 3) * m + 2 * hw * (m + 3)
+        macs += 2 * hw * config.tps_k * config.tps_k
     elif config.family == "projective":
         macs += 11 * hw
     else:
@@ -194,21 +207,23 @@ class Warp(nn.Module):
     # -- buffers -----------------------------------------------------------------
 
     def _grid_buffers(self, height: int, width: int, dtype, device) -> dict[str, Tensor]:
-        """Base grid (and TPS kernel / inverse), computed in float64 and rounded once."""
+        """Base grid (and the TPS weights), computed in float64 and rounded once to at least float32."""
+        gdt = grids.grid_dtype(dtype)
         base = grids.base_grid(height, width)
-        out = {"base_grid": base.to(dtype=dtype, device=device)}
+        out = {"base_grid": base.to(dtype=gdt, device=device)}
         if self.family == "tps":
             control = grids.tps_control_points(self.config.tps_k)
-            out["tps_kernel"] = grids.tps_kernel(base, control).to(dtype=dtype, device=device)
-            out["tps_inverse"] = grids.tps_system_inverse(control).to(dtype=dtype, device=device)
+            out["tps_weights"] = grids.tps_weights(base, control).to(dtype=gdt, device=device)
         return out
 
-    def _apply(self, fn, recurse=True):  # torch hook behind .to(), .double(), .cuda() ...
+    def _apply(self, fn, recurse=True):  # torch hook behind .to(), .double(), .half(), .cuda() ...
         super()._apply(fn, recurse)
         # Casting the float32 buffers to float64 would keep float32 rounding and
-        # break the exact identity, so rebuild them from float64 instead.
-        ref = self.base_grid
-        for name, value in self._grid_buffers(self.shape[1], self.shape[2], ref.dtype, ref.device).items():
+        # break the exact identity, so rebuild them from float64 instead; a
+        # float16 or bfloat16 warp keeps float32 grids (see grids.grid_dtype).
+        p = next(self.head.parameters(), None)
+        dtype = p.dtype if p is not None and p.is_floating_point() else self.base_grid.dtype
+        for name, value in self._grid_buffers(self.shape[1], self.shape[2], dtype, self.base_grid.device).items():
             setattr(self, name, value)
         return self
 
@@ -231,23 +246,18 @@ class Warp(nn.Module):
                 f"this {self.family!r} warp takes theta of shape (N, {self.n_params}), "
                 f"got {tuple(theta.shape)}; pass the output of predict()."
             )
-        bufs: dict[str, Tensor]
-        if (height, width) == self.shape[1:] and self.base_grid.dtype == theta.dtype:
-            bufs = {"base_grid": self.base_grid}
+        gdt = grids.grid_dtype(theta.dtype)
+        with _autocast_off(theta):  # autocast would run the products in float16
+            theta = theta.to(gdt)
+            if (height, width) == self.shape[1:] and self.base_grid.dtype == gdt:
+                bufs = dict(self.named_buffers(recurse=False))
+            else:  # another size (dynamic shapes) or dtype: build the grid on the fly
+                bufs = self._grid_buffers(height, width, gdt, theta.device)
             if self.family == "tps":
-                bufs["tps_kernel"] = self.tps_kernel
-                bufs["tps_inverse"] = self.tps_inverse
-        else:  # another size (dynamic shapes) or dtype: build the grid on the fly
-            bufs = self._grid_buffers(height, width, theta.dtype, theta.device)
-        if self.family == "tps":
-            offsets = theta.clamp(-THETA_LIMIT, THETA_LIMIT).reshape(-1, self.n_params // 2, 2)
-            return grids.tps_grid(
-                bufs["base_grid"], bufs["tps_kernel"], bufs["tps_inverse"], offsets, height, width
-            )
-        m = theta_to_matrix(self.family, theta)
-        return grids.matrix_grid(
-            bufs["base_grid"], m, height, width, projective=self.family == "projective"
-        )
+                offsets = theta.clamp(-THETA_LIMIT, THETA_LIMIT).reshape(-1, self.n_params // 2, 2)
+                return grids.tps_grid(bufs["base_grid"], bufs["tps_weights"], offsets, height, width)
+            m = theta_to_matrix(self.family, theta)
+            return grids.matrix_grid(bufs["base_grid"], m, height, width, projective=self.family == "projective")
 
     def forward(self, x: Tensor, loc: Tensor | None = None) -> Tensor:
         if x.dim() != 4:
@@ -259,25 +269,32 @@ class Warp(nn.Module):
         if self.record:
             self.last_theta = theta.detach()
         h, w = grids.spatial_size(x)
-        out = self._sample(x, self.grid(theta, h, w))
+        grid = self.grid(theta, h, w)
+        # sampled in at least the grid's precision (CPU grid_sample in float16 is unreliable, and a float16 grid is
+        # off by a fraction of a pixel), the result in x's dtype
+        sdt = torch.promote_types(x.dtype, grid.dtype)
+        xs = x if x.dtype == sdt else x.to(sdt)
+        out = self._sample(xs, grid if grid.dtype == sdt else grid.to(sdt))
         if needs_rounding_correction(self.config.sampler, h, w):
-            # x + (out - identity resample), in place: the sampler's backward needs
+            # xs + (out - identity resample), in place: the sampler's backward needs
             # its inputs, not its output, and two full-size temporaries are saved
-            out = out.sub_(self._sample(x, self._identity_grid(x))).add_(x)
-        return out
+            ident = self._identity_grid(xs, grid.dtype)
+            out = out.sub_(self._sample(xs, ident if ident.dtype == sdt else ident.to(sdt))).add_(xs)
+        return out if out.dtype == x.dtype else out.to(x.dtype)
 
     def _sample(self, x: Tensor, grid: Tensor) -> Tensor:
         return F.grid_sample(
             x, grid, mode=self.config.sampler, padding_mode=self.config.padding, align_corners=False
         )
 
-    def _identity_grid(self, x: Tensor) -> Tensor:
-        """The base grid as ``(N, H, W, 2)`` for ``x`` (bit-identical to the identity warp's grid)."""
+    def _identity_grid(self, x: Tensor, dtype: torch.dtype) -> Tensor:
+        """The base grid in ``dtype`` as ``(N, H, W, 2)`` for ``x``: bit for bit the identity warp's grid, which
+        is built from the same base grid in the same dtype."""
         h, w = grids.spatial_size(x)
-        if (h, w) == self.shape[1:] and self.base_grid.dtype == x.dtype:
+        if (h, w) == self.shape[1:] and self.base_grid.dtype == dtype:
             base = self.base_grid
         else:
-            base = grids.base_grid(h, w, dtype=x.dtype, device=x.device)
+            base = grids.base_grid(h, w, dtype=dtype, device=x.device)
         return base[:, :2].reshape(1, h, w, 2).expand(x.shape[0], h, w, 2)
 
     # -- identity ----------------------------------------------------------------
