@@ -70,3 +70,21 @@ def test_angles_across_the_half_turn_are_summarised_as_one_spread():
     circ, lin = summarise(near_zero, circular=True), summarise(near_zero)
     assert circ["mean"] == pytest.approx(float(circmean(near_zero.numpy(), high=180, low=-180)), abs=1e-9)
     assert {k: v for k, v in circ.items() if k != "mean"} == {k: v for k, v in lin.items() if k != "mean"}
+
+
+def test_scale_axes_near_the_vertical_are_summarised_as_one_spread():
+    # reference: scipy.stats.circmean / circstd with high - low = 180 (an undirected axis repeats every half
+    # turn). A vertical stretch reads axes of 89 and -89 degrees; a linear mean of them is near 0, the
+    # horizontal, with a spread of +-89.
+    from scipy.stats import circmean, circstd
+
+    from splice.inspection.summary import AXIS_QUANTITIES, period_of, summarise
+
+    assert period_of("scale_axis_deg") == 180.0 and set(AXIS_QUANTITIES) == {"scale_axis_deg", "view_zoom_axis_deg"}
+    rng = np.random.default_rng(1)
+    axes = (90.0 + rng.normal(0.0, 3.0, 300) + 90.0) % 180.0 - 90.0  # folded into [-90, 90)
+    stats = summarise(torch.from_numpy(axes), period=180.0)
+    assert stats["mean"] == pytest.approx(float(circmean(axes, high=90, low=-90)), abs=1e-9)
+    assert abs(abs(stats["mean"]) - 90.0) < 1.0
+    assert stats["std"] == pytest.approx(float(circstd(axes, high=90, low=-90)), rel=0.01)
+    assert stats["std"] < 4.0 and summarise(torch.from_numpy(axes))["std"] > 80.0

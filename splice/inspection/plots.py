@@ -13,7 +13,7 @@ import torch
 from torch import Tensor
 
 from .sheets import HEADER, header
-from .summary import ANGLE_QUANTITIES, around_circular_mean
+from .summary import around_circular_mean, period_of
 
 __all__ = ["HIST_CELL_W", "HIST_CELL_H", "draw_histograms"]
 
@@ -64,7 +64,7 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
     w, h = size
     n = int(next(iter(desc.values())).shape[0])
     flipped = bool((desc["reflection"] > 0).any()) if "reflection" in desc else False
-    note = "Sampling side (output to input), pixels of the warped tensor; angles centred on their circular mean. "
+    note = "Sampling side (output to input), pixels of the warped tensor; angles and axes centred on their circular mean. "
     if flipped:
         note += ("Some images are flipped, and a flipped image's content turns by +angle (see view_rotation_deg), "
                  "so no axis of visible rotation is drawn.")
@@ -79,7 +79,7 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
         left, bottom, aw, ah = k * HIST_CELL_W + 62, 52, HIST_CELL_W - 84, HIST_CELL_H - 120
         ax = fig.add_axes((left / w, bottom / h, aw / w, ah / h))
         arrays = [desc[q].detach().to("cpu", torch.float64).numpy() for q, _ in series]
-        arrays = [around_circular_mean(a) if q in ANGLE_QUANTITIES else a for (q, _), a in zip(series, arrays)]
+        arrays = [around_circular_mean(a, period_of(q)) if period_of(q) else a for (q, _), a in zip(series, arrays)]
         bins = _bins(*arrays)
         for (q, legend), values, colour in zip(series, arrays, colours):
             finite = values[np.isfinite(values)]

@@ -15,7 +15,7 @@ from .capture import capture, check_positive_int
 from .decompose import QUANTITY_HELP, describe_theta, quantities_for
 from .plots import draw_histograms
 from .sheets import SHEET_IMAGES, draw_contact_sheet, draw_outline_sheet
-from .summary import ANGLE_QUANTITIES, CSV_QUANTITIES, SCHEMA_VERSION, csv_text, summarise
+from .summary import CSV_QUANTITIES, SCHEMA_VERSION, csv_text, period_of, summarise
 
 __all__ = ["inspect", "sample_indices"]
 
@@ -239,7 +239,7 @@ def _warp_summary(point: str, warp, desc: dict, sample: _Sample) -> dict:
         "level": _level(point),
         "shape": list(warp.shape),
         "stride": [stride[0], stride[1]],
-        "quantities": {q: summarise(desc[q], circular=q in ANGLE_QUANTITIES)
+        "quantities": {q: summarise(desc[q], period=period_of(q))
                        for q in quantities_for(warp.family)},
     }
 

@@ -11,7 +11,7 @@ from torch import Tensor
 
 from .decompose import MATRIX_QUANTITIES, PROJECTIVE_QUANTITIES, TPS_QUANTITIES
 
-__all__ = ["SCHEMA_VERSION", "CSV_QUANTITIES", "ANGLE_QUANTITIES", "circular_mean", "around_circular_mean",
+__all__ = ["SCHEMA_VERSION", "CSV_QUANTITIES", "ANGLE_QUANTITIES", "AXIS_QUANTITIES", "period_of", "circular_mean", "around_circular_mean",
            "summarise", "csv_text", "render_inspect"]
 
 # one-line versions for the table on screen (summary.json carries QUANTITY_HELP)
@@ -45,54 +45,65 @@ CSV_QUANTITIES = MATRIX_QUANTITIES + PROJECTIVE_QUANTITIES + TPS_QUANTITIES
 
 #: quantities that are angles on a circle: summarised around their circular mean (see :func:`summarise`)
 ANGLE_QUANTITIES = ("angle_deg", "view_rotation_deg")
+#: quantities that are undirected axes, in (-90, 90]: an axis at 89 degrees and one at -89 are 2 degrees apart
+AXIS_QUANTITIES = ("scale_axis_deg", "view_zoom_axis_deg")
 
 
-def circular_mean(v) -> float | None:
-    """The circular mean in degrees of the finite angles of ``v`` (a numpy array, degrees): the direction of their
-    mean unit vector, in (-180, 180] (``scipy.stats.circmean``'s); ``None`` when it has no direction."""
+def period_of(quantity: str) -> float | None:
+    """The period in degrees of a quantity that repeats (360 for an angle, 180 for an axis), else ``None``."""
+    return 360.0 if quantity in ANGLE_QUANTITIES else 180.0 if quantity in AXIS_QUANTITIES else None
+
+
+def circular_mean(v, period: float = 360.0) -> float | None:
+    """The circular mean in degrees of the finite values of ``v`` (a numpy array, degrees) that repeat every
+    ``period`` degrees: the direction of their mean unit vector once each is scaled to a full turn
+    (``scipy.stats.circmean``'s with ``high - low = period``), in (-period/2, period/2]; ``None`` when they
+    have no direction."""
     import numpy as np
 
-    rad = np.deg2rad(v[np.isfinite(v)])
+    rad = np.deg2rad(v[np.isfinite(v)] * (360.0 / period))
     if rad.size == 0:
         return None
     sin, cos = float(np.sin(rad).mean()), float(np.cos(rad).mean())
     if math.hypot(sin, cos) < 1e-12:  # the angles balance out: no direction to centre on
         return None
-    centre = math.degrees(math.atan2(sin, cos))
-    return centre + 360.0 if centre <= -180.0 else centre
+    centre = math.degrees(math.atan2(sin, cos)) * (period / 360.0)
+    return centre + period if centre <= -period / 2 else centre
 
 
-def around_circular_mean(v):
-    """Angles in degrees (a numpy array) moved by whole turns to within 180 degrees of their circular mean
-    (:func:`circular_mean`); unchanged when that mean is undefined."""
+def around_circular_mean(v, period: float = 360.0):
+    """Values in degrees (a numpy array) that repeat every ``period`` moved by whole periods to within half a
+    period of their circular mean (:func:`circular_mean`); unchanged when that mean is undefined."""
     import numpy as np
 
-    centre = circular_mean(v)
+    centre = circular_mean(v, period)
     if centre is None:
         return v
     finite = np.isfinite(v)
     out = v.copy()
-    out[finite] = v[finite] - 360.0 * np.round((v[finite] - centre) / 360.0)
+    out[finite] = v[finite] - period * np.round((v[finite] - centre) / period)
     return out
 
 
-def summarise(values: Tensor, circular: bool = False) -> dict[str, float | int | None]:
+def summarise(values: Tensor, circular: bool = False, period: float | None = None) -> dict[str, float | int | None]:
     """Mean, population std (ddof 0), 5th/95th percentiles (linear), min and max of the finite values.
 
-    ``n`` counts the finite values; every statistic is ``None`` when there are none. With ``circular`` the
-    values are angles in degrees: the mean is their circular mean (:func:`circular_mean`), and the other
-    statistics are taken after moving each angle by whole turns to within 180 degrees of it, so that angles on
-    both sides of +-180 make one spread, not two (the percentiles, min and max may then lie beyond +-180).
+    ``n`` counts the finite values; every statistic is ``None`` when there are none. With ``circular`` (or a
+    ``period``: 360 for angles, 180 for undirected axes) the values repeat every period degrees: the mean is
+    their circular mean (:func:`circular_mean`), and the other statistics are taken after moving each value
+    by whole periods to within half a period of it, so that values on both sides of the seam make one spread,
+    not two (the percentiles, min and max may then lie beyond it).
     """
     import numpy as np
 
+    period = period if period is not None else 360.0 if circular else None
     v = values.detach().to("cpu", torch.float64).numpy()
     v = v[np.isfinite(v)]
     if v.size == 0:
         return {"n": 0, "mean": None, "std": None, "p5": None, "p95": None, "min": None, "max": None}
-    centre = circular_mean(v) if circular else None
+    centre = circular_mean(v, period) if period is not None else None
     if centre is not None:
-        v = around_circular_mean(v)
+        v = around_circular_mean(v, period)
     mean = float(v.mean()) if centre is None else centre
     p5, p95 = np.percentile(v, [5.0, 95.0])
     return {"n": int(v.size), "mean": mean, "std": float(v.std()), "p5": float(p5),
