@@ -22,7 +22,7 @@ FLOORS = {
     "limits": 1,
     "warps": 2, "distort": 2, "data": 2, "imagefiles": 2, "recipes": 2, "models": 2,
     "sources": 3, "graph": 3,
-    "manifest": 4, "surgery": 4, "hooks": 4, "objects": 4,
+    "schema": 3, "manifest": 4, "surgery": 4, "hooks": 4, "objects": 4,
     "store": 5,
     "verification": 6, "exporting": 6,
     "training": 7, "options": 7, "evaluation": 7, "inspection": 7, "adapt": 7,
