@@ -15,7 +15,8 @@ graph rewrite)::
       "format": "splice-folder",
       "source": {"spec": str, "kwargs": {...}, "weights_file": str | null,
                  "weights_sha256": str | null, "random_init": bool,
-                 "trained_on": str | null, "code_sha256": str (path/file.py:factory only)},
+                 "trained_on": str | null, "code_sha256": str (path/file.py:factory only),
+                 "not_loaded": [str, ...] (a partial load: tensors no weights file gave)},
       "input_shape": [C, H, W],
       "extra_inputs": [[C, H, W], ...],          (2: a model with several inputs)
       "mechanism": "fx" | "hooks",               (2: "hooks")
@@ -132,7 +133,9 @@ class SpliceInfo:
     ``spec``/``kwargs`` rebuild the base architecture; ``source_weights_sha256``
     and ``source_weights_path`` say which weights it started from
     (``random_init`` when none); ``code_sha256`` the sha256 of the model file a
-    ``path/file.py:factory`` spec builds from; ``trained_on`` the images the base was
+    ``path/file.py:factory`` spec builds from; ``source_not_loaded`` the base's
+    tensors the weights file did not give (a partial load, ``--allow-partial``),
+    which kept the builder's initialisation; ``trained_on`` the images the base was
     trained on, when known. ``points`` are :class:`PointRecord` in
     graph order. ``tuning`` is what ``splice tune`` recorded (``None`` for a
     fresh splice). ``extra_inputs`` are the shapes of the model's inputs after
@@ -163,6 +166,7 @@ class SpliceInfo:
     mechanism: str = "fx"
     within: str = ""
     sites: dict = field(default_factory=dict)
+    source_not_loaded: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         norm = self.normalisation
@@ -174,6 +178,7 @@ class SpliceInfo:
             object.__setattr__(self, "input_shape", tuple(self.input_shape))
         object.__setattr__(self, "kwargs", dict(self.kwargs or {}))
         object.__setattr__(self, "leaves", tuple(self.leaves or ()))
+        object.__setattr__(self, "source_not_loaded", tuple(self.source_not_loaded or ()))
         object.__setattr__(self, "extra_inputs", tuple(tuple(s) if isinstance(s, Sequence) else s
                                                        for s in self.extra_inputs or ()))
         object.__setattr__(self, "sites", {k: ({**v, "shape": list(v["shape"])} if isinstance(v, Mapping)
@@ -196,7 +201,8 @@ class SpliceInfo:
             "source": {"spec": self.spec, "kwargs": self.kwargs, "weights_file": self.source_weights_path,
                        "weights_sha256": self.source_weights_sha256, "random_init": bool(self.random_init),
                        "trained_on": self.trained_on,
-                       **({"code_sha256": self.code_sha256} if self.code_sha256 else {})},
+                       **({"code_sha256": self.code_sha256} if self.code_sha256 else {}),
+                       **({"not_loaded": list(self.source_not_loaded)} if self.source_not_loaded else {})},
             "input_shape": list(self.input_shape) if isinstance(self.input_shape, tuple) else self.input_shape,
             "normalisation": self.normalisation,
             "class_names": self.class_names,
@@ -241,6 +247,7 @@ class SpliceInfo:
             folder=None if folder is None else str(folder),
             extra_inputs=tuple(tuple(s) for s in data.get("extra_inputs") or ()),
             mechanism=data.get("mechanism", "fx"), within=data.get("within", ""), sites=data.get("sites") or {},
+            source_not_loaded=tuple(src.get("not_loaded") or ()),
         )
 
     @classmethod
@@ -257,7 +264,7 @@ class SpliceInfo:
             code_sha256=(getattr(src, "code_sha256", None)
                          or ((src.manifest or {}).get("source") or {}).get("code_sha256")),
             extra_inputs=tuple(getattr(src, "extra_inputs", ()) or ()), mechanism=mechanism, within=within,
-            sites=dict(sites or {}),
+            sites=dict(sites or {}), source_not_loaded=tuple(getattr(src, "not_loaded", ()) or ()),
         )
 
     # -- reading it

@@ -56,6 +56,9 @@ def _source(data: dict, problems: list[str]) -> None:
     for key in ("weights_sha256", "weights_file", "trained_on", "code_sha256"):
         if src.get(key) is not None and not isinstance(src.get(key), str):
             problems.append(f"source.{key} must be a string or null")
+    left = src.get("not_loaded", [])
+    if not (isinstance(left, list) and all(isinstance(n, str) for n in left)):
+        problems.append("source.not_loaded must be a list of tensor names")
 
 
 def _inputs(data: dict, problems: list[str]) -> None:

@@ -409,3 +409,52 @@ def dataclasses_replace(obj, **changes):
     import dataclasses
 
     return dataclasses.replace(obj, **changes)
+
+
+def test_a_partial_load_is_recorded_and_provenance_vouches_only_for_what_the_file_gave(tmp_path):
+    # a 10-class checkpoint loaded into a 5-class net with allow_partial: the head keeps the builder's random init.
+    # Before, splice.json said nothing of it and the provenance row called the base "bitwise equal to the source
+    # checkpoint" (the recorded hash was taken after the partial load).
+    import warnings
+
+    from splice.models import tray_net
+
+    torch.manual_seed(0)
+    ckpt = tmp_path / "ten.pt"
+    torch.save(tray_net(num_classes=10).state_dict(), ckpt)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        src = splice.load_source("splice.models:tray_net", weights=ckpt, kwargs={"num_classes": 5},
+                                 allow_partial=True)
+        folder = splice.save(splice.insert(src, at="input"), tmp_path / "sp")
+    heads = [k for k, v in torch.load(ckpt).items() if v.shape != src.model.state_dict()[k].shape]
+    assert heads and list(src.not_loaded) == sorted(heads)
+    assert json.loads((folder / "splice.json").read_text())["source"]["not_loaded"] == sorted(heads)
+
+    row = splice.verify(folder)["provenance"]
+    assert row.passed and row.warning == "partial load"
+    assert "bitwise equal to the source checkpoint" in row.detail and all(h in row.detail for h in heads)
+
+    # a tensor the file did give still fails when edited (the file is read again)
+    state = load_file(str(folder / "weights.safetensors"))
+    name = next(k for k in state if not k.startswith("splice_warps.") and k.endswith("weight") and k not in heads)
+    state[name] = state[name] + 1.0
+    save_file(state, str(folder / "weights.safetensors"))
+    data = json.loads((folder / "splice.json").read_text())
+    data["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
+    data["weights"]["base_sha256"] = data["source"]["weights_sha256"] = state_dict_sha256(
+        state, prefix_exclude="splice_warps.")
+    (folder / "splice.json").write_text(json.dumps(data))
+    assert not splice.verify(folder)["provenance"].passed
+
+
+def test_provenance_says_when_only_hashes_could_be_compared(tmp_path, source_weights):
+    # the source file gone: the row passes on splice.json's hashes alone, and says so (it claimed bitwise equality)
+    ckpt = tmp_path / "w.safetensors"
+    ckpt.write_bytes(Path(source_weights).read_bytes())
+    folder = splice.save(splice.insert(splice.load_source("splice.models:tray_net", weights=ckpt, kwargs=SMALL),
+                                       at="input"), tmp_path / "sp")
+    ckpt.unlink()
+    row = splice.verify(folder)["provenance"]
+    assert row.passed and row.warning == "only splice.json's hashes compared"
+    assert "no longer on disk" in row.detail and "bitwise equal" not in row.detail

@@ -35,7 +35,9 @@ class Source:
     ``declares_normalisation`` is False when nothing (factory attribute,
     torchvision, timm, a folder's record) says how inputs are normalised.
     ``code_sha256`` is the sha256 of the Python file a ``path/file.py:factory``
-    spec builds from (``None`` for any other spec).
+    spec builds from (``None`` for any other spec). ``not_loaded`` names the
+    model's tensors that no weights file gave (a partial load: missing there,
+    or of another shape), which keep the builder's initialisation.
     """
 
     model: nn.Module
@@ -52,6 +54,7 @@ class Source:
     declares_normalisation: bool = True
     extra_inputs: tuple[tuple[int, int, int], ...] = ()
     code_sha256: str | None = None
+    not_loaded: tuple[str, ...] = ()
 
     @property
     def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
@@ -135,6 +138,7 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
     weights, allow_partial, trust_pickle = options["weights"], options["allow_partial"], options["trust_pickle"]
     origin, trust_code, leaves = options["origin"], options["trust_code"], options["leaves"]
     default_input_shape = options["default_input_shape"]
+    not_loaded: tuple[str, ...] = ()
     check_spec(spec, kw, origin=origin, trust_code=trust_code)
     if ":" not in spec or path.is_dir():
         return _load_path(spec, path, shapes, options)
@@ -143,7 +147,8 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
-        load_weights_(model, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=spec)
+        told = load_weights_(model, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=spec)
+        not_loaded = tuple(sorted(told["missing"] + told["mismatched"]))
     elif warn_random:
         warnings.warn(
             f"{spec} has random weights (no --weights given): its outputs mean nothing for accuracy",
@@ -167,7 +172,8 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                   weights_sha256=state_dict_sha256(model.state_dict()) if hashed else None,
                   normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
-                  leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]), code_sha256=code_sha256(spec))
+                  leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]), code_sha256=code_sha256(spec),
+                  not_loaded=not_loaded)
 
 
 def _state_dtype(state: Mapping[str, torch.Tensor]) -> str:
@@ -275,7 +281,8 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
             warnings.warn(f"weights '{weights}' were saved in {saved}; they are cast to the model's {now} on load",
                           SpliceWarning, stacklevel=3)
         # names and shapes checked as for any weights file (a tensor the folder lacks is refused by name)
-        load_weights_(loaded, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=hf.spec)
+        told = load_weights_(loaded, state, allow_partial=allow_partial, where=f"weights '{weights}'", spec=hf.spec)
+        src.not_loaded = tuple(sorted(told["missing"] + told["mismatched"]))
         src.model = loaded.eval()
         src.weights_path, src.random_init = _weights_path(weights, None), False
         src.weights_sha256 = state_dict_sha256(src.model.state_dict())

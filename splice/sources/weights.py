@@ -341,3 +341,4 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
             SpliceWarning,
             stacklevel=2,
         )
+    return {"missing": missing, "unexpected": unexpected, "mismatched": mismatched}

@@ -30,7 +30,8 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tu
         # a record read from a folder names its spec from a file: the same gate as opening the folder
         origin = None if info.folder is None else Path(info.folder) / MANIFEST_NAME
         src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape, warn_random=False,
-                          leaves=info.leaves, origin=origin, trust_code=trust_code)
+                          leaves=info.leaves, origin=origin, trust_code=trust_code,
+                          allow_partial=bool(info.source_not_loaded))
     except SpliceError as exc:
         return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
     return dict(src.model.state_dict()), f"compared with '{path}'"
@@ -42,6 +43,8 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
     tensors do not line up with the base's is the source model rebuilt from it, as a load would (a nested or
     renamed state)."""
     path = info.source_weights_path
+    # a partial load's left-out tensors kept the builder's initialisation: the file cannot speak for them
+    base_state = {k: v for k, v in base_state.items() if k not in set(info.source_not_loaded)}
     if path is not None and Path(path).is_file():
         try:
             read = strip_prefixes(read_weights(path), set(base_state))
@@ -56,7 +59,7 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
     state, how = _source_state(info, input_shape, trust_code)
     if state is None:
         return None, how, None, None
-    diff = _tensor_diff(base_state, state)
+    diff = _tensor_diff(base_state, {k: v for k, v in state.items() if k not in set(info.source_not_loaded)})
     return diff["changed"] == 0 and not diff["missing"], how, diff, state
 
 
@@ -84,6 +87,16 @@ def _told(diff: dict) -> str:
     largest = ", ".join(f"{d['name']} {d['max_abs_diff']:.3g}" for d in diff["largest"][:3])
     return (f"{diff['changed']} of {diff['tensors']} tensors differ, max abs diff {diff['max_abs_diff']:.3g}"
             + (f" ({largest})" if largest else ""))
+
+
+def _partial(info: SpliceInfo) -> str:
+    """``"; N tensors (names) are not from it: ..."`` for a partial load, else ``""``."""
+    left = info.source_not_loaded
+    if not left:
+        return ""
+    shown = ", ".join(left[:4]) + (f" and {len(left) - 4} more" if len(left) > 4 else "")
+    return (f"; {len(left)} tensor{'s are' if len(left) > 1 else ' is'} not from it ({shown}): a partial load "
+            "(--allow-partial) left them at the builder's initialisation, and no file can vouch for them")
 
 
 def _code_changed(info: SpliceInfo) -> CheckResult | None:
@@ -126,9 +139,17 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                                "splice.json's hashes agree: the folder was edited after splicing — re-create it "
                                "from the source with 'splice insert'", "base edited")
         note = " (tuning records base_changed, but the base weights did not move)" if declared else ""
+        left = _partial(info)
+        if same is None:  # nothing but splice.json's own hashes could be compared
+            return CheckResult("provenance", True, numbers,
+                               f"base weights hash to the source hash splice.json recorded (sha256 {actual[:12]}…), "
+                               f"but {how}{note}{left}", f"sha256 {actual[:12]}… = recorded",
+                               warning="" if info.random_init else
+                               "only splice.json's hashes compared" + (", partial load" if left else ""))
         return CheckResult("provenance", True, numbers,
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
-                           f"{how}){note}", f"sha256 {actual[:12]}… = source")
+                           f"{how}){note}{left}", f"sha256 {actual[:12]}… = source",
+                           warning="partial load" if left else "")
     _, how, diff, state = _against_file(info, base_state, input_shape, trust_code)
     if diff is not None:
         numbers["diff"] = diff
