@@ -266,3 +266,39 @@ def test_checking_a_splice_in_memory_tells_of_state_a_folder_does_not_carry(tmp_
     with warnings.catch_warnings():
         warnings.simplefilter("error", SpliceWarning)
         assert splice.verify(fresh, trust_code=True).passed  # the same as its spec builds: nothing to tell
+
+
+class _Counting(nn.Module):
+    """A call counter and a running mean updated in every forward, eval mode included."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 3)
+        self.register_buffer("calls", torch.zeros((), dtype=torch.long))
+        self.register_buffer("mean", torch.zeros(4))
+
+    def forward(self, x):
+        h = torch.relu(self.conv(x))
+        with torch.no_grad():
+            self.calls += 1
+            self.mean.mul_(0.9).add_(0.1 * h.mean((0, 2, 3)))
+        return self.fc(h.mean((2, 3)))
+
+
+def test_provenance_of_an_in_memory_splice_that_ran_names_the_buffers_its_forward_moved():
+    # no source file: the row compared hashes only and said "the weights were edited after splicing"; it now
+    # compares with the module the splice was made from, and names what moved
+    torch.manual_seed(0)
+    base = _Counting().eval()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        spliced = splice.insert(base, at="input", input_shape=(3, 16, 16))
+        assert splice.verify(spliced)["provenance"].passed
+        with torch.no_grad():
+            spliced(torch.rand(2, 3, 16, 16))
+        row = splice.verify(spliced)["provenance"]
+    assert not row.passed and row.summary == "base buffers changed"
+    assert row.numbers["diff"]["names"] == ["calls", "mean"] and row.numbers["diff"]["max_abs_diff"] == 1.0
+    assert "compared with the module it was spliced from" in row.detail and "edited" not in row.detail
+    assert int(base.calls) == 0  # the caller's module never ran

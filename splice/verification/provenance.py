@@ -36,8 +36,8 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tu
         return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
     return dict(src.model.state_dict()), f"compared with '{path}'"
 
-def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape,
-                  trust_code: bool) -> tuple[bool | None, str, dict | None, dict | None]:
+def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape, trust_code: bool,
+                  reference=None) -> tuple[bool | None, str, dict | None, dict | None]:
     """Whether the base is bitwise the recorded source file's weights, read now (``None``: cannot tell), how it was
     found, the differences, and the source's state dict. The file is read as it is first (cheap); only when its
     tensors do not line up with the base's is the source model rebuilt from it, as a load would (a nested or
@@ -57,6 +57,11 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
             # the file's state as a load gives it (a batch counter it lacks is the model's own)
             return diff["changed"] == 0, f"read from '{path}'", diff, {**base_state, **aligned}
     state, how = _source_state(info, input_shape, trust_code)
+    if state is None and reference is not None:
+        # the module a splice of a module object was made from, while it still hashes to the recorded source
+        ref = dict(reference.state_dict())
+        if state_dict_sha256(ref) == info.source_weights_sha256:
+            state, how = ref, "compared with the module it was spliced from"
     if state is None:
         return None, how, None, None
     diff = _tensor_diff(base_state, {k: v for k, v in state.items() if k not in set(info.source_not_loaded)})
@@ -111,9 +116,12 @@ def _code_changed(info: SpliceInfo) -> CheckResult | None:
 
 
 def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
-                    input_shape, trust_code: bool = False, buffers: frozenset = frozenset()) -> CheckResult:
+                   input_shape, trust_code: bool = False, buffers: frozenset = frozenset(),
+                   reference=None) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller; ``buffers`` names the base's
-    buffers (a difference in buffers alone is told as what running the model does to them)."""
+    buffers (a difference in buffers alone is told as what running the model does to them); ``reference`` is the
+    module an in-memory splice of a module object was made from, compared with when no source file is on disk
+    (and only while it hashes to the recorded source)."""
     changed = _code_changed(info)
     if changed is not None:
         return changed
@@ -150,7 +158,7 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
                            f"{how}){note}{left}", f"sha256 {actual[:12]}… = source",
                            warning="partial load" if left else "")
-    _, how, diff, state = _against_file(info, base_state, input_shape, trust_code)
+    _, how, diff, state = _against_file(info, base_state, input_shape, trust_code, reference)
     if diff is not None:
         numbers["diff"] = diff
         if state is not None and state_dict_sha256(state) != source:
@@ -169,8 +177,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         return CheckResult("provenance", False, numbers,
                            f"{differs}, and no tuning of the base is recorded; {how}. Only buffers differ: a forward "
                            "that updates them (a counter, running statistics) changes them whenever the model runs, "
-                           "so a model that ran since it was spliced is no longer its source; re-create the folder "
-                           "from the source with 'splice insert'", "base buffers changed")
+                           "so a model that ran since it was spliced is no longer its source; splice the source again "
+                           "('splice insert', splice.insert) and verify before running it", "base buffers changed")
     return CheckResult("provenance", False, numbers,
                        f"{differs}, and no tuning of the base is recorded; {how}. The weights were edited after "
                        "splicing — re-create the folder from the source with 'splice insert'", "base changed")

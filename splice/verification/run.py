@@ -208,6 +208,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
     hashing = ThreadPoolExecutor(max_workers=1)
     base_hash = hashing.submit(state_dict_sha256, base_state)
     hashing.shutdown(wait=False)
+    reference = None if owned else base  # the caller's base: provenance's last resort when no file is on disk
     base, spliced = _in_dtype(base, spliced, opts.dtype, owned)
     # the ONNX check starts from a model no probe has run (it makes its own twin of it)
     if owned:
@@ -239,7 +240,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         meta["hashes"]["base_sha256"] = base_hash.result()
         buffers = frozenset(n for n, _ in base.named_buffers())
         rows.append(provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
-                                   trust_code=opts.trust_code, buffers=buffers))
+                                   trust_code=opts.trust_code, buffers=buffers, reference=reference))
         lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
