@@ -43,13 +43,43 @@ class _ModeDependent(nn.Module):
         return x
 
 
-def test_train_eval_difference_warns():
-    with pytest.warns(TraceModeWarning, match=r"train-mode and eval-mode graphs of _ModeDependent differ"):
+def test_a_forward_that_takes_another_path_in_train_mode_keeps_it():
+    # the eval-mode graph alone ran the eval path in train mode too (tuning a network whose training behaviour
+    # differs from its code's); the model's own forward now keeps the check: its points come by hooks
+    with pytest.warns(TraceFallbackWarning, match=r"takes another path in train mode \(train mode adds node 'mul'\)"):
         pts = points(_ModeDependent(), (3, 4, 4), all=True)
-    assert [p.name for p in pts] == ["input", "conv"]  # the eval-mode graph
-    with pytest.warns(TraceModeWarning):
-        gm = graph.trace(_ModeDependent())
-    assert "mul" not in {n.name for n in gm.graph.nodes}
+    assert {p.mechanism for p in pts} == {"hooks"} and [p.name for p in pts][:2] == ["input", "conv"]
+    with pytest.raises(GraphError, match="takes another path in train mode"):
+        graph.trace(_ModeDependent())
+
+
+class _Inner(nn.Module):
+    def forward(self, x):
+        return x * 0.5 if self.training else x
+
+
+class _HoldsModeDependent(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+        self.inner = _Inner()
+        self.head = nn.Conv2d(3, 3, 1)
+
+    def forward(self, x):
+        return self.head(self.inner(torch.relu(self.conv(x))))
+
+
+def test_a_submodule_that_takes_another_path_in_train_mode_becomes_a_leaf():
+    torch.manual_seed(0)
+    base = _HoldsModeDependent()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # nothing to warn of: the check stays in the module's own forward
+        spliced = splice.insert(base, at="relu", input_shape=(3, 8, 8))
+    x = torch.rand(2, 3, 8, 8)
+    for mode in (True, False):
+        base.train(mode)
+        spliced.train(mode)
+        assert torch.equal(spliced(x), base(x)), mode
 
 
 class _ReadsTrainingOnly(nn.Module):

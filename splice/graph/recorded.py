@@ -34,7 +34,7 @@ from .entries import NCHW, Entry, dims_permutation, site_name
 from .leaves import LeafRule, is_torch_builtin
 from .rules import meta_rule
 from .shapes import META, meta_module, run_for_real, to_meta
-from .tracing import spying
+from .modes import spying
 
 __all__: list[str] = []
 

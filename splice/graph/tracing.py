@@ -16,8 +16,7 @@ from __future__ import annotations
 
 import inspect
 import warnings
-from collections.abc import Callable, Iterable, Iterator
-from contextlib import contextmanager
+from collections.abc import Callable, Iterable
 from typing import Any
 
 import torch
@@ -27,6 +26,7 @@ from torch import nn
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
 from .leaves import LeafRule, class_path, has_call_hooks, is_torch_builtin
+from .modes import describe_difference, modes_restored, original_class, set_training, spying, unspy_meta
 from .lifted import (adopt_lifted, buffer_states, keep_view_sources, module_state, plain_tensor_targets,
                      state_back)
 
@@ -111,7 +111,7 @@ class _Tracer(fx.Tracer):
                     qualname = self.path_of_module(m)
                 except Exception:
                     qualname = "?"
-                self.failed_in = (qualname, _original_class(type(m)))
+                self.failed_in = (qualname, original_class(type(m)))
             raise
 
 
@@ -158,7 +158,7 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
     finally:
         updated = state_back(state)
     if changed is not None:
-        changed.update(_original_class(type(m)) for m in updated if m is not root)
+        changed.update(original_class(type(m)) for m in updated if m is not root)
     if whole and root in updated:
         raise FxFailure(GraphError(f"the forward of {type(root).__name__} changes its {updated[root]} as it runs, "
                                    "which a traced graph would do once, while tracing"), None)
@@ -173,132 +173,22 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
     return graph
 
 
-def _can_spy(cls: type) -> bool:
-    # creating a subclass runs __init_subclass__ and metaclass code, which may
-    # register the class somewhere: only spy on plain classes
-    return type(cls) is type and not any("__init_subclass__" in c.__dict__ for c in cls.__mro__[:-1])
-
-
-def _original_class(cls: type) -> type:
-    return cls.__dict__.get("_splice_original", cls)
-
-
-@contextmanager
-def spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
-    """Temporarily give each module a class whose ``training`` property records reads.
-
-    Yields False (and changes nothing) if some module's class cannot take part.
-    """
-
-    def _get(self):
-        reads.append(self)
-        return self.__dict__["training"]
-
-    def _set(self, value):
-        self.__dict__["training"] = value
-
-    classes: dict[type, type] = {}
-    swapped: list[tuple[nn.Module, type]] = []
-    try:
-        ok = all(_can_spy(cls) for cls in {type(m) for m in mods})
-        if ok:
-            for m in mods:
-                cls = type(m)
-                spy = classes.get(cls)
-                if spy is None:
-                    ns = {
-                        "training": property(_get, _set),
-                        "__module__": cls.__module__,
-                        "__qualname__": cls.__qualname__,
-                        "_splice_original": cls,
-                    }
-                    spy = classes[cls] = type(cls.__name__, (cls,), ns)
-                m.__class__ = spy
-                swapped.append((m, cls))
-    except TypeError:  # __class__ assignment refused (layout differs)
-        ok = False
-        for m, cls in swapped:
-            m.__class__ = cls
-        swapped.clear()
-    try:
-        yield ok
-    finally:
-        for m, cls in swapped:
-            m.__class__ = cls
-
-
-def _signature(graph: fx.Graph) -> list[tuple]:
-    """Each node's name, op, target and arguments; constants the tracer lifted are named by their order in the
-    graph, as a second trace of the same root numbers its constants after the first's."""
-    renamed: dict[str, str] = {}
-    constants = (n for n in graph.nodes if n.op == "get_attr" and n.target.startswith("_tensor_constant"))
-    for i, n in enumerate(constants):
-        renamed[n.name] = renamed[n.target] = f"<constant {i}>"
-
-    def name(node: fx.Node) -> str:
-        return renamed.get(node.name, node.name)
-
-    return [
-        (name(n), n.op, renamed.get(n.target, n.target) if isinstance(n.target, str) else n.target,
-         fx.node.map_arg(n.args, name), fx.node.map_arg(n.kwargs, name))
-        for n in graph.nodes
-    ]
-
-
-def _describe_difference(eval_graph: fx.Graph, train_graph: fx.Graph) -> str | None:
-    a, b = _signature(eval_graph), _signature(train_graph)
-    if a == b:
-        return None
-    in_eval, in_train = [x[0] for x in a], [y[0] for y in b]
-    eval_names, train_names = set(in_eval), set(in_train)
-    added = [n for n in in_train if n not in eval_names]
-    dropped = [n for n in in_eval if n not in train_names]
-
-    def some(names):
-        return ", ".join(repr(n) for n in names[:3]) + (", ..." if len(names) > 3 else "")
-
-    parts = []
-    if added:
-        parts.append(f"train mode adds node {some(added)}")
-    if dropped:
-        parts.append(f"eval mode adds node {some(dropped)}")
-    if not parts:
-        first = next(x for x, y in zip(a, b) if x != y)
-        parts.append(f"node {first[0]!r} differs")
-    return "; ".join(parts)
-
-
-@contextmanager
-def _modes_restored(mods: list[nn.Module]) -> Iterator[None]:
-    """Every module's ``training`` flag as it was when the block began, whatever the block set."""
-    saved = [(m, m.__dict__.get("training", True)) for m in mods]
-    try:
-        yield
-    finally:
-        for m, flag in saved:
-            m.__dict__["training"] = flag
-
-
-def _set_training(mods: list[nn.Module], flag: bool) -> None:
-    for m in mods:
-        m.__dict__["training"] = flag
-
-
 def _trace_modes(root: nn.Module, rule: LeafRule, n_inputs: int | None = None,
-                 changed: set[type] | None = None) -> tuple[fx.Graph, str | None]:
-    """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not)."""
+                 changed: set[type] | None = None, reads: list[nn.Module] | None = None) -> tuple[fx.Graph, str | None]:
+    """The eval-mode graph of ``root``, and how the train-mode graph differs (``None``: it does not); ``reads``
+    collects the modules whose ``training`` flag the traced code read."""
     mods = list(root.modules())
     difference = None
-    with _modes_restored(mods):
-        _set_training(mods, False)
-        reads: list[nn.Module] = []
+    reads = [] if reads is None else reads
+    with modes_restored(mods):
+        set_training(mods, False)
         with spying(mods, reads) as spied:
             graph = _run_tracer(root, rule, n_inputs, changed=changed)
         # if no traced code read a `training` flag, a train-mode trace takes the same path
         if not spied or reads:
-            _set_training(mods, True)
+            set_training(mods, True)
             try:
-                difference = _describe_difference(graph, _run_tracer(root, rule, n_inputs, changed=changed))
+                difference = describe_difference(graph, _run_tracer(root, rule, n_inputs, changed=changed))
             except FxFailure as failure:
                 difference = f"the train-mode trace fails: {reason(failure.error)}"
     return graph, difference
@@ -311,7 +201,7 @@ def _updating_classes(root: nn.Module, before: dict) -> set[type]:
         now = m._buffers.get(key[1])
         if now is not b or (now is not None and now._version != version):
             if m is not root:
-                found.add(_original_class(type(m)))
+                found.add(original_class(type(m)))
     return found
 
 
@@ -324,7 +214,7 @@ def _traced_through_norms(root: nn.Module, rule: LeafRule) -> dict[type, nn.Modu
     through (not a leaf, not torch's own), by class."""
     found: dict[type, nn.Module] = {}
     for m in root.modules():
-        cls = _original_class(type(m))
+        cls = original_class(type(m))
         if (m is not root and isinstance(m, _BATCH_NORMS) and m.track_running_stats and not rule(cls)
                 and not is_torch_builtin(cls)):
             found.setdefault(cls, m)
@@ -348,8 +238,8 @@ def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn
 
     before = buffer_states(root)
     mods = list(root.modules())
-    with _modes_restored(mods):
-        _set_training(mods, True)
+    with modes_restored(mods):
+        set_training(mods, True)
         if not all(traces(m) for m in norms.values()):
             traces(root)
     return {c for c in _updating_classes(root, before) if not rule(c)}
@@ -377,8 +267,14 @@ def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) ->
         for _ in range(4):
             before = buffer_states(root)
             changed: set[type] = set()
-            graph, difference = _trace_modes(root, rule, n_inputs, changed)
+            reads: list[nn.Module] = []
+            graph, difference = _trace_modes(root, rule, n_inputs, changed, reads)
             updating = {c for c in _updating_classes(root, before) | changed if not rule(c)}
+            if difference is not None:
+                # code that reads a `training` flag takes another path in train mode: the modules whose flag it
+                # reads run their own forward (leaves), so tuning in train mode runs what the model's code runs
+                _refuse_root_reading_training(root, reads, difference)
+                updating |= {original_class(type(m)) for m in reads if not rule(original_class(type(m)))}
             if not updating:
                 break
             rule.add(updating)
@@ -399,14 +295,12 @@ def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) ->
     return graph
 
 
-def _unspy_meta(graph: fx.Graph) -> None:
-    """Put the real classes back into ``nn_module_stack`` metadata (the tracer saw spies)."""
-    for n in graph.nodes:
-        stack = n.meta.get("nn_module_stack")
-        if stack:
-            n.meta["nn_module_stack"] = type(stack)(
-                (k, (q, _original_class(t))) for k, (q, t) in stack.items()
-            )
+def _refuse_root_reading_training(root: nn.Module, reads: list[nn.Module], difference: str) -> None:
+    """An :class:`FxFailure` when the model's own forward reads ``self.training`` on a path that changes the
+    graph: the root cannot be a leaf, so its points are reached by hooks (its own forward keeps the check)."""
+    if any(m is root for m in reads):
+        raise FxFailure(GraphError(f"the forward of {type(root).__name__} takes another path in train mode "
+                                   f"({difference}), which a traced graph would fix to eval mode"), None)
 
 
 def fx_failure_hint(failure: FxFailure, model: nn.Module) -> tuple[str, str]:
@@ -483,7 +377,7 @@ def trace_copy(model: nn.Module, rule: LeafRule, edit: Callable[[fx.Graph, nn.Mo
         ) from exc
     twin = private_buffers(work)
     graph = trace_owned(twin, rule, n_inputs)
-    _unspy_meta(graph)
+    unspy_meta(graph)
     plain = plain_tensor_targets(graph, work)
     lifted = adopt_lifted(graph, twin, work)
     if edit is not None:
