@@ -467,3 +467,49 @@ def test_the_ranks_of_a_step_together_hold_the_one_process_batch(world):
     assert all(len(r) == len(one) for r in ranks)
     for step, expected in enumerate(one):
         assert sorted(torch.cat([r[step] for r in ranks]).tolist()) == sorted(expected.tolist())
+
+
+_COUNTING_NET = '''
+import torch
+from torch import nn
+
+
+class Counting(nn.Module):
+    """A small digit classifier that counts its calls in a buffer, eval mode included."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 10)
+        self.register_buffer("calls", torch.zeros((), dtype=torch.long))
+
+    def forward(self, x):
+        with torch.no_grad():
+            self.calls += 1
+        return self.fc(torch.relu(self.conv(x)).mean((2, 3)))
+
+
+def build():
+    return Counting()
+'''
+
+
+def test_warp_only_on_a_model_that_counts_its_calls_records_that_only_buffers_moved(tmp_path):
+    # the counter moves whenever the model runs, warp-only or not: the record says the base changed, and
+    # verify says it was only buffers, not that the base was tuned "as well (joint recipe)"
+    (tmp_path / "counting.py").write_text(_COUNTING_NET)
+    torch.manual_seed(0)
+    weights = tmp_path / "w.pt"
+    spec = f"{tmp_path / 'counting.py'}:build"
+    torch.save(splice.load_source(spec, input_shape=SHAPE, trust_code=True, warn_random=False).model.state_dict(),
+               weights)
+    src = splice.load_source(spec, weights=weights, input_shape=SHAPE, trust_code=True)
+    with pytest.warns(UserWarning, match="changes its buffer 'calls' as it runs"):  # reached by hooks
+        spliced = splice.save(splice.insert(src, at="input"), tmp_path / "sp")
+    out = tmp_path / "run"
+    summary = tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1), data="digits-moved", out=out,
+                            trust_code=True, **QUIET)
+    assert summary["base_changed"] is True
+    row = splice.verify(out / "last", trust_code=True)["provenance"]
+    assert row.passed and row.summary == "base buffers moved (recorded)"
+    assert row.numbers["diff"]["names"] == ["calls"] and "'warp-only'" in row.detail

@@ -168,11 +168,16 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                if source != actual else
                f"the base weights' sha256 {actual[:12]}… differs from the one recorded at save time "
                f"({recorded_base[:12]}…)")
-    if declared and source != actual:
-        return CheckResult("provenance", True, numbers,
-                           f"the base was tuned as well (joint recipe, recorded in splice.json): {differs}; {how}",
-                           "base tuned (recorded)")
     moved = numbers.get("diff", {}).get("names") or []
+    if declared and source != actual:
+        recipe = tuning.get("recipe") or "a recipe"
+        if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
+            return CheckResult("provenance", True, numbers,
+                               f"only the base's buffers moved while {recipe!r} tuned it (recorded in splice.json): "
+                               f"its forward updates them as it runs; {differs}; {how}", "base buffers moved (recorded)")
+        return CheckResult("provenance", True, numbers,
+                           f"the base was tuned as well ({recipe!r}, recorded in splice.json): {differs}; {how}",
+                           "base tuned (recorded)")
     if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
         return CheckResult("provenance", False, numbers,
                            f"{differs}, and no tuning of the base is recorded; {how}. Only buffers differ: a forward "
