@@ -220,17 +220,43 @@ def _read_shards(index: Path, *, trust_pickle: bool) -> dict[str, torch.Tensor]:
     return state
 
 
-def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str]) -> dict[str, torch.Tensor]:
-    """``state`` without the wrapper prefixes (``module.``, ...) that every key shares, as a load reads it."""
-    changed = True
-    while changed:
-        changed = False
-        for prefix in WRAPPER_PREFIXES:
-            if state and all(k.startswith(prefix) for k in state):
-                stripped = {k[len(prefix):]: v for k, v in state.items()}
-                if len(wanted & set(stripped)) >= len(wanted & set(state)):
-                    state, changed = stripped, True
-    return state
+def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str],
+                   where: str = "the weights") -> dict[str, torch.Tensor]:
+    """``state`` without the prefixes its names carry but the model's (``wanted``) do not, as a load reads it.
+
+    A wrapper prefix (``module.``, ...) every key shares is stripped silently. With a warning: a wrapper prefix
+    shared by all keys but a few bookkeeping entries with no place in the model (an averaged model's
+    ``n_averaged``), which are dropped, when the stripped keys all are the model's.
+    """
+    while True:
+        for prefix in _candidates(state):
+            step = _stripped(state, wanted, prefix, where)
+            if step is not None:
+                state = step
+                break
+        else:
+            return state
+
+
+def _candidates(state: Mapping[str, torch.Tensor]) -> list[str]:
+    """The wrapper prefixes."""
+    return list(WRAPPER_PREFIXES)
+
+
+def _stripped(state: dict[str, torch.Tensor], wanted: set[str], prefix: str, where: str) -> dict | None:
+    """``state`` with ``prefix`` stripped (see :func:`strip_prefixes`), or ``None`` when it should stay."""
+    stripped = {k[len(prefix):]: v for k, v in state.items() if k.startswith(prefix)}
+    rest = [k for k in state if not k.startswith(prefix)]
+    before, after = len(wanted & set(state)), len(wanted & set(stripped))
+    if not stripped or after < before or (after == before and (rest or prefix not in WRAPPER_PREFIXES)):
+        return None
+    if rest:
+        if any(k in wanted for k in rest) or not set(stripped) <= wanted:
+            return None
+        warnings.warn(f"{where}: every name but {_names(rest, 3)} starts with {prefix!r}; the model has no place "
+                      f"for {'it' if len(rest) == 1 else 'them'}: dropped, and {prefix!r} stripped",
+                      SpliceWarning, stacklevel=4)
+    return stripped
 
 
 def _names(keys: Sequence[str], limit: int = 6) -> str:
@@ -306,7 +332,7 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     Returns ``{"missing": [...], "unexpected": [...], "mismatched": [...]}``.
     """
     own = model.state_dict()
-    state = strip_prefixes(state, set(own))
+    state = strip_prefixes(state, set(own), where)
     cast = check_dtypes(own, state, where)
     if cast:
         kinds = sorted({str(state[k].dtype).replace("torch.", "") for k in cast})
@@ -317,7 +343,7 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     missing = [k for k in own if k not in state and k.rsplit(".", 1)[-1] != "num_batches_tracked"]
     unexpected = [k for k in state if k not in own]
     mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]
-    matched = len(own) - len(missing) - len(mismatched)
+    matched = sum(1 for k in own if k in state and tuple(state[k].shape) == tuple(own[k].shape))
     if own and matched < 0.5 * len(own) and not allow_partial:
         raise WeightsError(
             f"{where} does not fit {spec}: only {matched} of {len(own)} tensors match by name and shape "
