@@ -55,3 +55,29 @@ def test_only_tensors_present_with_their_shape_count_as_matched(tmp_path):
                tmp_path / "few.pt")
     with pytest.raises(WeightsError, match=rf"only 2 of {len(state)} tensors match"):
         load_source("splice.models:tray_net", weights=tmp_path / "few.pt")
+
+
+class _Payload:
+    def __init__(self, marker):
+        self.marker = marker
+
+    def __reduce__(self):
+        return (open, (str(self.marker), "w"))
+
+
+def test_a_training_checkpoint_with_its_arguments_loads_safely(tmp_path):
+    # reference: torch.load(weights_only=True) under torch.serialization.safe_globals([argparse.Namespace]) reads
+    # the checkpoint timm's train.py writes; a payload in place of the arguments is still refused, and never runs
+    state = _net().state_dict()
+    ckpt = {"epoch": 5, "arch": "tray_net", "state_dict": state, "args": argparse.Namespace(lr=0.1, model="x")}
+    torch.save(ckpt, tmp_path / "model_best.pth.tar")
+    src = load_source("splice.models:tray_net", weights=tmp_path / "model_best.pth.tar")
+    assert src.weights_sha256 == state_dict_sha256(state)
+    marker = tmp_path / "pwned"
+    torch.save({**ckpt, "args": _Payload(marker)}, tmp_path / "evil.pth.tar")
+    with pytest.raises(UnsafeCheckpointError, match=r"pickled Python objects.*--trust-pickle"):
+        load_source("splice.models:tray_net", weights=tmp_path / "evil.pth.tar")
+    with pytest.raises(UnsafeCheckpointError):  # the namespace's own attributes are checked too
+        torch.save({**ckpt, "args": argparse.Namespace(cb=_Payload(marker))}, tmp_path / "evil2.pth.tar")
+        load_source("splice.models:tray_net", weights=tmp_path / "evil2.pth.tar")
+    assert not os.path.exists(marker)

@@ -57,9 +57,20 @@ def _looks_serialised(path: Path) -> bool:
     return zipfile.is_zipfile(path) or head[:1] == b"\x80"
 
 
+def _plain_objects_allowed():
+    """torch's safe loader with ``argparse.Namespace`` allowed too: training scripts (timm's train.py, torchvision's
+    references) save their arguments as one beside the weights. It is rebuilt as an empty Namespace given the
+    saved attributes, which the safe loader checks like any others; nothing of the file's choosing runs."""
+    import argparse
+    import contextlib
+
+    allow = getattr(torch.serialization, "safe_globals", None)  # torch >= 2.5
+    return allow([argparse.Namespace]) if allow is not None else contextlib.nullcontext()
+
+
 def torch_load(path: Path, *, trust_pickle: bool):
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), _plain_objects_allowed():
             warnings.simplefilter("ignore")
             return torch.load(path, map_location="cpu", weights_only=not trust_pickle)
     except pickle.UnpicklingError as exc:
