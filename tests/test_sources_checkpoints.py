@@ -81,3 +81,24 @@ def test_a_training_checkpoint_with_its_arguments_loads_safely(tmp_path):
         torch.save({**ckpt, "args": argparse.Namespace(cb=_Payload(marker))}, tmp_path / "evil2.pth.tar")
         load_source("splice.models:tray_net", weights=tmp_path / "evil2.pth.tar")
     assert not os.path.exists(marker)
+
+
+def test_a_checkpoint_holding_only_its_moving_average_loads_it(tmp_path):
+    state = _net().state_dict()
+    torch.save({"state_dict_ema": state}, tmp_path / "ema_only.pth")
+    with pytest.warns(SpliceWarning, match=r"holds only 'state_dict_ema', a moving average"):
+        src = load_source("splice.models:tray_net", weights=tmp_path / "ema_only.pth")
+    assert src.weights_sha256 == state_dict_sha256(state)
+
+
+def test_a_prefix_every_name_shares_is_stripped_when_it_makes_them_fit(tmp_path):
+    state = _net().state_dict()
+    torch.save({"state_dict": {f"net.{k}": v for k, v in state.items()}, "epoch": 3}, tmp_path / "lightning.ckpt")
+    with pytest.warns(SpliceWarning, match=r"every name starts with 'net.'.*stripped"):
+        src = load_source("splice.models:tray_net", weights=tmp_path / "lightning.ckpt")
+    assert src.weights_sha256 == state_dict_sha256(state)
+    # a shared first part the model's names also have is theirs, not a wrapper's: kept, and told as a mismatch
+    block1 = {k: v for k, v in state.items() if k.startswith("block1.")}
+    torch.save(block1, tmp_path / "block1.pt")
+    with pytest.raises(WeightsError, match=r"missing"):
+        load_source("splice.models:tray_net", weights=tmp_path / "block1.pt")

@@ -37,6 +37,7 @@ __all__ = [
 
 WRAPPER_PREFIXES = ("module.", "model.", "_orig_mod.")
 NESTING_KEYS = ("state_dict", "model", "model_state_dict", "model_state", "net", "module", "weights")
+_EMA = re.compile(r"(^|_)ema($|_)")
 
 
 def check_file(path: Path, what: str = "weights file") -> None:
@@ -164,7 +165,7 @@ def _is_tensor_dict(obj: object) -> bool:
 
 def _note_other_weights(obj: Mapping, key: str, path: Path) -> None:
     """Say which weights were taken when a checkpoint holds more than one set (a training script's EMA copy)."""
-    others = [k for k in obj if isinstance(k, str) and k != key and re.search(r"(^|_)ema($|_)", k.lower())
+    others = [k for k in obj if isinstance(k, str) and k != key and _EMA.search(k.lower())
               and (isinstance(obj[k], nn.Module) or (isinstance(obj[k], Mapping) and len(obj[k]) > 0))]
     if others:
         warnings.warn(f"'{path}' holds {key!r} and {', '.join(repr(k) for k in others)}; splice loads {key!r}. To load "
@@ -189,6 +190,12 @@ def _unnest(obj: object, path: Path) -> dict[str, torch.Tensor]:
         tensors = {k: v for k, v in obj.items() if isinstance(k, str) and isinstance(v, torch.Tensor)}
         if tensors:
             return tensors
+        emas = [k for k in obj if isinstance(k, str) and _EMA.search(k.lower()) and isinstance(obj[k], Mapping)]
+        if len(emas) == 1:  # a training script that kept only its moving average of the weights
+            found = _unnest(obj[emas[0]], path)
+            warnings.warn(f"'{path}' holds only {emas[0]!r}, a moving average of the weights; splice loads it",
+                          SpliceWarning, stacklevel=2)
+            return found
         keys = ", ".join(repr(k) for k in list(obj)[:8])
         raise WeightsError(
             f"'{path}' holds a dict without tensors (keys: {keys}); expected a state dict, "
@@ -235,8 +242,9 @@ def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str],
                    where: str = "the weights") -> dict[str, torch.Tensor]:
     """``state`` without the prefixes its names carry but the model's (``wanted``) do not, as a load reads it.
 
-    A wrapper prefix (``module.``, ...) every key shares is stripped silently. With a warning: a wrapper prefix
-    shared by all keys but a few bookkeeping entries with no place in the model (an averaged model's
+    A wrapper prefix (``module.``, ...) every key shares is stripped silently. With a warning: any other dotted
+    prefix every key shares (a training module's ``net.``), when stripping it makes the keys fit the model; and a
+    prefix shared by all keys but a few bookkeeping entries with no place in the model (an averaged model's
     ``n_averaged``), which are dropped, when the stripped keys all are the model's.
     """
     while True:
@@ -250,8 +258,9 @@ def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str],
 
 
 def _candidates(state: Mapping[str, torch.Tensor]) -> list[str]:
-    """The wrapper prefixes."""
-    return list(WRAPPER_PREFIXES)
+    """The wrapper prefixes, then the first name part of the dotted keys when they all share one."""
+    firsts = {k.split(".", 1)[0] + "." for k in state if "." in k}
+    return [*WRAPPER_PREFIXES, *(p for p in firsts if len(firsts) == 1 and p not in WRAPPER_PREFIXES)]
 
 
 def _stripped(state: dict[str, torch.Tensor], wanted: set[str], prefix: str, where: str) -> dict | None:
@@ -266,6 +275,9 @@ def _stripped(state: dict[str, torch.Tensor], wanted: set[str], prefix: str, whe
             return None
         warnings.warn(f"{where}: every name but {_names(rest, 3)} starts with {prefix!r}; the model has no place "
                       f"for {'it' if len(rest) == 1 else 'them'}: dropped, and {prefix!r} stripped",
+                      SpliceWarning, stacklevel=4)
+    elif prefix not in WRAPPER_PREFIXES:
+        warnings.warn(f"{where}: every name starts with {prefix!r}, which the model's names do not; it was stripped",
                       SpliceWarning, stacklevel=4)
     return stripped
 
