@@ -280,27 +280,52 @@ def image_channels(config: Mapping) -> int | None:
 
 
 class HFFolder:
-    """What a ``save_pretrained`` folder holds: its spec and kwargs, weights file, shape and normalisation."""
+    """What a ``save_pretrained`` folder holds: its spec and kwargs, weights file, shape and normalisation
+    (``declares`` is False when no ``preprocessor_config.json`` says how images are prepared)."""
 
     def __init__(self, folder: Path, spec: str, kwargs: dict, weights: Path | None,
-                 input_shape: tuple[int, int, int] | None, normalisation: dict | None):
+                 input_shape: tuple[int, int, int] | None, normalisation: dict | None, declares: bool = True):
         self.folder, self.spec, self.kwargs, self.weights = folder, spec, kwargs, weights
-        self.input_shape, self.normalisation = input_shape, normalisation
+        self.input_shape, self.normalisation, self.declares = input_shape, normalisation, declares
 
 
-def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None]:
-    """(H, W) and normalisation from ``preprocessor_config.json``, when it says."""
+def _numbers(value: Any) -> bool:
+    return isinstance(value, list) and bool(value) and all(isinstance(x, (int, float)) for x in value)
+
+
+def _normalisation(pre: Mapping, path: Path) -> tuple[dict | None, bool]:
+    """The normalisation of [0, 1] pixels that gives what an image processor feeds the model: ``pixels *
+    rescale_factor`` (when ``do_rescale``; 1 otherwise, 0-255 pixels), then ``(x - image_mean) / image_std`` (when
+    ``do_normalize``). With ``s = 255 * rescale_factor`` that is ``(p - mean / s) / (std / s)`` for ``p`` in [0, 1].
+    ``None`` for [0, 1] pixels as they are; ``(None, False)`` for a processor that names no mean and std (its
+    class's defaults apply, unknown here)."""
+    factor = pre.get("rescale_factor", 1 / 255) if pre.get("do_rescale", True) is not False else 1.0
+    if isinstance(factor, bool) or not isinstance(factor, (int, float)) or not 0 < factor < float("inf"):
+        raise SourceError(f"'{path}': rescale_factor {factor!r} is not a positive number; re-save the image "
+                          "processor with save_pretrained")
+    mean, std = pre.get("image_mean"), pre.get("image_std")
+    if pre.get("do_normalize", True) is False:
+        mean, std = [0.0], [1.0]
+    elif not (_numbers(mean) and _numbers(std)):
+        return None, False
+    scale = 255.0 * float(factor)
+    if abs(scale - 1.0) < 1e-6 and mean == [0.0] and std == [1.0]:
+        return None, True
+    return {"mean": [float(x) / scale for x in mean], "std": [float(x) / scale for x in std]}, True
+
+
+def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None, bool]:
+    """(H, W), normalisation (:func:`_normalisation`) and whether ``preprocessor_config.json`` says how images
+    are prepared."""
     path = folder / _PREPROCESSOR
     if not path.is_file():
-        return None, None
+        return None, None, False
     pre = _read_json(path)
-    mean, std = pre.get("image_mean"), pre.get("image_std")
-    ok = all(isinstance(v, list) and v and all(isinstance(x, (int, float)) for x in v) for v in (mean, std))
-    norm = {"mean": [float(x) for x in mean], "std": [float(x) for x in std]} if ok else None
+    norm, declares = _normalisation(pre, path)
     size = pre.get("crop_size") if pre.get("do_center_crop") else pre.get("size")
     if isinstance(size, Mapping) and isinstance(size.get("height"), int) and isinstance(size.get("width"), int):
-        return (size["height"], size["width"]), norm
-    return None, norm
+        return (size["height"], size["width"]), norm, declares
+    return None, norm, declares
 
 
 def read_hf_folder(path) -> HFFolder:
@@ -315,12 +340,12 @@ def read_hf_folder(path) -> HFFolder:
     kwargs: dict[str, Any] = {"config": config}
     if "auto_map" in config:
         kwargs["code_folder"] = str(folder.resolve())
-    hw, norm = _preprocessing(folder)
+    hw, norm, declares = _preprocessing(folder)
     channels = image_channels(config)
     shape = (channels, *hw) if hw and channels else None
     if norm is not None and channels:
         norm = {k: per_channel(v, channels) for k, v in norm.items()}
-    return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm)
+    return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm, declares)
 
 
 def _device_contexts_primed() -> None:
