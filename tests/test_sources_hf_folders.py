@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 import torch
 
-from splice.errors import NormalisationWarning
+from splice.errors import NormalisationWarning, SpliceWarning, UnsafeCheckpointError, WeightsError
 from splice.sources import load_source
 
 pytest.importorskip("transformers")
@@ -60,3 +60,58 @@ def test_a_folder_without_an_image_processor_is_flagged(tmp_path):
                                                   r"normalisation; .*processor.save_pretrained"):
         src = load_source(str(tmp_path / "bare"), input_shape="3x32x32")
     assert src.normalisation is None and not src.declares_normalisation
+
+
+def test_a_folder_whose_head_has_another_size_names_the_tensors_and_num_labels(tmp_path):
+    # reference: the shapes safetensors' own load_file reads from the file, and the model's
+    from safetensors.torch import load_file, save_file
+
+    _resnet(3).save_pretrained(tmp_path / "head")
+    path = tmp_path / "head" / "model.safetensors"
+    five = {k: v.contiguous() for k, v in _resnet(5).state_dict().items()}
+    save_file(five, str(path), metadata={"format": "pt"})
+    assert tuple(load_file(str(path))["classifier.1.weight"].shape) == (5, 16)
+    with pytest.raises(WeightsError, match=r"2 tensor\(s\) of another shape than ResNetForImageClassification's "
+                                           r"\(classifier.1.bias \(5,\) vs \(3,\); classifier.1.weight \(5, 16\) vs "
+                                           r"\(3, 16\)\); if it was trained for 5 labels, set num_labels .* to 5 in "
+                                           r".*config.json'; pass --allow-partial"):
+        load_source(str(tmp_path / "head"), input_shape="3x32x32")
+    with pytest.warns(SpliceWarning, match=r"partial load"):
+        src = load_source(str(tmp_path / "head"), input_shape="3x32x32", allow_partial=True)
+    state = src.model.state_dict()
+    assert tuple(state["classifier.1.weight"].shape) == (3, 16)
+    assert all(torch.equal(state[k], v) for k, v in five.items() if not k.startswith("classifier.1."))
+
+
+def test_an_unsafe_pickle_in_a_folder_is_refused_as_any_unsafe_checkpoint(tmp_path, capsys):
+    from splice.cli import main
+
+    marker = tmp_path / "pwned"
+
+    class Payload:
+        def __reduce__(self):
+            return (open, (str(marker), "w"))
+
+    _resnet().save_pretrained(tmp_path / "bin")
+    (tmp_path / "bin" / "model.safetensors").unlink()
+    torch.save({**_resnet().state_dict(), "x": Payload()}, tmp_path / "bin" / "pytorch_model.bin")
+    with pytest.raises(UnsafeCheckpointError, match=r"contains pickled Python objects \(.*open\), not just tensors; "
+                                                    r"unpickling can run arbitrary code.*--trust-pickle"):
+        load_source(str(tmp_path / "bin"), input_shape="3x32x32")
+    assert main(["points", str(tmp_path / "bin"), "--input-shape", "3x32x32"]) == 2
+    err = capsys.readouterr().err
+    assert "--trust-pickle" in err and "--allow-partial" not in err and "\x1b" not in err
+    assert not marker.exists()
+
+
+def test_transformers_errors_reach_the_user_without_terminal_codes(folder, monkeypatch):
+    from transformers import ResNetForImageClassification
+
+    def fails(*args, **kwargs):
+        raise RuntimeError("\x1b[1mthe file is odd\x1b[0m. see above")
+
+    monkeypatch.setattr(ResNetForImageClassification, "from_pretrained", fails)
+    with pytest.raises(WeightsError) as caught:
+        load_source(str(folder), input_shape="3x32x32")
+    assert "(RuntimeError: the file is odd. see above); re-save the model with save_pretrained" in str(caught.value)
+    assert "\x1b" not in str(caught.value) and "--allow-partial" not in str(caught.value)

@@ -26,6 +26,7 @@ kernels stay off when the weights are read.
 
 from __future__ import annotations
 
+import re
 import warnings
 from collections.abc import Mapping
 from pathlib import Path
@@ -35,6 +36,7 @@ from ..errors import SourceError, SpliceWarning, WeightsError
 from ..fileio import read_json
 from .specs import per_channel, positive_int
 from .timm import REFUSED_TIMM_KWARGS
+from .weights import unsafe_checkpoint
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
            "read_hf_weights", "image_channels", "HF_WEIGHT_FILES", "HFFolder"]
@@ -366,7 +368,8 @@ def _device_contexts_primed() -> None:
         torch.empty(0)
 
 
-def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tuple[Any, dict]:
+def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
+                    trust_pickle: bool = False) -> tuple[Any, dict]:
     """The model transformers builds from a ``save_pretrained`` folder for ``model``'s class and config (in the
     dtype of ``model``'s parameters, which may be on the meta device), and the state it loaded, in the model's
     own names.
@@ -374,13 +377,15 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tupl
     A folder holds its checkpoint's names, which are not always the model's: transformers 5 renames a ViT's
     ``attention.attention.key`` to ``attention.k_proj`` (and many more) when it loads, and back when it saves.
     So ``type(model).from_pretrained`` reads the folder (the class already built, ``local_files_only``, no code
-    from the folder: safetensors, or ``torch.load(weights_only=True)``) and the state it loaded is returned,
-    without the tensors it reports missing (left at their initial values). Tensors the folder has that the
-    model does not, or of another shape, are refused by name unless ``allow_partial``. Hub kernels stay off
-    (``use_kernels=False``; transformers 5.25 turns them on by default): they are code fetched from the Hub,
-    and a model that has them re-kernelizes on every ``train()``/``eval()`` switch, which fails on the meta
+    from the folder: safetensors, or ``torch.load(weights_only=True)`` unless ``trust_pickle``) and the state it
+    loaded is returned, without the tensors it reports missing (left at their initial values). Tensors the folder
+    has that the model does not, or of another shape, are refused by name unless ``allow_partial``. Hub kernels
+    stay off (``use_kernels=False``; transformers 5.25 turns them on by default): they are code fetched from the
+    Hub, and a model that has them re-kernelizes on every ``train()``/``eval()`` switch, which fails on the meta
     device splice lists points on.
     """
+    import pickle
+
     import torch
 
     dtype = next((p.dtype for p in model.parameters() if p.is_floating_point()), torch.get_default_dtype())
@@ -390,27 +395,55 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tupl
     transformers.logging.set_verbosity_error()  # its own report of missing keys is ours to make
     transformers.logging.disable_progress_bar()  # and no bar on the terminal for a folder read in a second
     try:
+        # wrong shapes are read from the loading info and refused below by name (transformers' own refusal
+        # points at a report it prints, which is silenced)
         loaded, info = type(model).from_pretrained(
             str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
-            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True, dtype=dtype,
+            output_loading_info=True, ignore_mismatched_sizes=True, weights_only=not trust_pickle, dtype=dtype,
             use_kernels=False)
+    except pickle.UnpicklingError as exc:
+        raise unsafe_checkpoint(folder, exc, "model.save_pretrained(folder), which writes safetensors") from None
     except Exception as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        first = _ANSI.sub("", str(exc)).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
-                           f"({type(exc).__name__}: {first[:300]}); re-save the model with save_pretrained, "
-                           "or pass --allow-partial to load only the tensors that fit") from exc
+                           f"({type(exc).__name__}: {first[:300]}); re-save the model with save_pretrained") from exc
     finally:
         transformers.logging.set_verbosity(verbosity)
         if bars:
             transformers.logging.enable_progress_bar()
-    unexpected = sorted(info.get("unexpected_keys") or ())
-    shown = ", ".join(unexpected[:6]) + (f" and {len(unexpected) - 6} more" if len(unexpected) > 6 else "")
-    if unexpected and not allow_partial:
-        raise WeightsError(f"'{folder}' holds {len(unexpected)} tensor(s) {type(model).__name__} does not have "
-                           f"({shown}); pass --allow-partial (allow_partial=True) to load only the tensors that fit")
-    if unexpected:
-        warnings.warn(f"partial load: {len(unexpected)} tensor(s) of '{folder}' not used ({shown})", SpliceWarning,
-                      stacklevel=3)
-    left_out = set(info.get("missing_keys") or ()) | {m[0] if isinstance(m, (tuple, list)) else m
-                                                       for m in info.get("mismatched_keys") or ()}
+    mismatched = sorted((m[0], tuple(m[1]), tuple(m[2])) for m in info.get("mismatched_keys") or ()
+                        if isinstance(m, (tuple, list)) and len(m) == 3)
+    _refuse_unfitting(folder, model, sorted(info.get("unexpected_keys") or ()), mismatched, allow_partial)
+    left_out = set(info.get("missing_keys") or ()) | {m[0] for m in mismatched}
     return loaded, {k: v for k, v in loaded.state_dict().items() if k not in left_out}
+
+
+_ANSI = re.compile(r"\x1b\[[0-9;?]*[ -/]*[@-~]")
+
+
+def _refuse_unfitting(folder: Path, model, unexpected: list[str], mismatched: list[tuple], allow_partial: bool):
+    """Refuse by name, unless ``allow_partial`` (then warn), the tensors of a folder the model has no place for and
+    those of another shape (``(name, shape in the folder, shape in the model)``), with a ``num_labels`` hint when
+    only the label count differs."""
+    cls = type(model).__name__
+    extra = ", ".join(unexpected[:6]) + (f" and {len(unexpected) - 6} more" if len(unexpected) > 6 else "")
+    shapes = "; ".join(f"{k} {saved} vs {own}" for k, saved, own in mismatched[:4]) + (
+        f" and {len(mismatched) - 4} more" if len(mismatched) > 4 else "")
+    if allow_partial:
+        told = ([f"{len(unexpected)} tensor(s) of '{folder}' not used ({extra})"] if unexpected else []) + (
+            [f"{len(mismatched)} of another shape left as built ({shapes})"] if mismatched else [])
+        if told:
+            warnings.warn(f"partial load: {'; '.join(told)}", SpliceWarning, stacklevel=4)
+        return
+    parts = ([f"{len(unexpected)} tensor(s) {cls} does not have ({extra})"] if unexpected else []) + (
+        [f"{len(mismatched)} tensor(s) of another shape than {cls}'s ({shapes})"] if mismatched else [])
+    if not parts:
+        return
+    labels, counts = getattr(model.config, "num_labels", None), {saved[:1] for _, saved, _ in mismatched}
+    hint = ""
+    if not unexpected and len(counts) == 1 and all(own[:1] == (labels,) and saved[1:] == own[1:]
+                                                   for _, saved, own in mismatched):
+        n = counts.pop()[0]
+        hint = f"if it was trained for {n} labels, set num_labels (and id2label) to {n} in '{folder / _CONFIG}'; "
+    raise WeightsError(f"'{folder}' holds {' and '.join(parts)}; {hint}"
+                       "pass --allow-partial (allow_partial=True) to load only the tensors that fit")

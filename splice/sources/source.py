@@ -267,7 +267,7 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     src = _built(hf.spec, Path(hf.spec), parse_kwargs(hf.kwargs), parse_input_shapes(shapes or hf.input_shape) or (),
                  options, warn_random=False, hashed=not own, empty=own)
     if own:
-        loaded, state = read_hf_weights(path, src.model, allow_partial=allow_partial)
+        loaded, state = read_hf_weights(path, src.model, allow_partial=allow_partial, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
         config = hf.kwargs.get("config") or {}
         saved, now = str(config.get("dtype") or config.get("torch_dtype") or ""), str(_state_dtype(state))

@@ -69,6 +69,16 @@ def _plain_objects_allowed():
     return allow([argparse.Namespace]) if allow is not None else contextlib.nullcontext()
 
 
+def unsafe_checkpoint(path, exc: BaseException, resave: str = "torch.save(model.state_dict(), ...)"):
+    """The one refusal of a checkpoint torch's safe loader would not read (``exc``, its UnpicklingError), naming
+    what it blocked."""
+    blocked = re.search(r"GLOBAL ([\w.]+)", str(exc))
+    what = blocked.group(1) if blocked else "objects or pickle opcodes the safe loader does not accept"
+    return UnsafeCheckpointError(f"'{path}' contains pickled Python objects ({what}), not just tensors; unpickling can "
+                                 "run arbitrary code, so splice refused to load it. If you trust the file's origin, "
+                                 f"pass --trust-pickle (trust_pickle=True), or re-save it with {resave}")
+
+
 def torch_load(path: Path, *, trust_pickle: bool):
     try:
         with warnings.catch_warnings(), _plain_objects_allowed():
@@ -83,13 +93,7 @@ def torch_load(path: Path, *, trust_pickle: bool):
                 "check that you passed the weights file"
             ) from None
         if not trust_pickle and ("weights_only" in text or "weights only" in text):
-            what = blocked.group(1) if blocked else "objects or pickle opcodes the safe loader does not accept"
-            raise UnsafeCheckpointError(
-                f"'{path}' contains pickled Python objects ({what}), not just tensors; "
-                "unpickling can run arbitrary code, so splice refused to load it. "
-                "If you trust the file's origin, pass --trust-pickle (trust_pickle=True), "
-                "or re-save it with torch.save(model.state_dict(), ...)"
-            ) from None
+            raise unsafe_checkpoint(path, exc) from None
         raise WeightsError(f"'{path}' is not a readable checkpoint ({exc}); it may be truncated or corrupt") from None
     except Exception as exc:  # any failure to parse the file means it is not a usable checkpoint
         if trust_pickle and isinstance(exc, (ModuleNotFoundError, AttributeError)):
