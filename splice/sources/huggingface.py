@@ -26,13 +26,12 @@ kernels stay off when the weights are read.
 
 from __future__ import annotations
 
-import re
 import warnings
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from ..errors import SourceError, SpliceWarning, WeightsError
+from ..errors import SourceError, SpliceWarning, WeightsError, first_line
 from ..fileio import read_json
 from .specs import per_channel, positive_int
 from .timm import REFUSED_TIMM_KWARGS
@@ -404,9 +403,9 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
     except pickle.UnpicklingError as exc:
         raise unsafe_checkpoint(folder, exc, "model.save_pretrained(folder), which writes safetensors") from None
     except Exception as exc:
-        first = _ANSI.sub("", str(exc)).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
-                           f"({type(exc).__name__}: {first[:300]}); re-save the model with save_pretrained") from exc
+                           f"({type(exc).__name__}: {first_line(exc)[:300]}); re-save the model with save_pretrained"
+                           ) from exc
     finally:
         transformers.logging.set_verbosity(verbosity)
         if bars:
@@ -416,9 +415,6 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
     _refuse_unfitting(folder, model, sorted(info.get("unexpected_keys") or ()), mismatched, allow_partial)
     left_out = set(info.get("missing_keys") or ()) | {m[0] for m in mismatched}
     return loaded, {k: v for k, v in loaded.state_dict().items() if k not in left_out}
-
-
-_ANSI = re.compile(r"\x1b\[[0-9;?]*[ -/]*[@-~]")
 
 
 def _refuse_unfitting(folder: Path, model, unexpected: list[str], mismatched: list[tuple], allow_partial: bool):
