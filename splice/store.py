@@ -34,28 +34,14 @@ from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
                        validate_manifest)
 from .version import library_versions
-from .sources import (Source, adopt_state, build_model, check_dtypes, check_finite, check_state_fits, check_spec,
+from .sources import (Source, adopt_state, build_model, check_finite, check_state_fits, check_spec,
                       initialisers_skipped, is_hf_folder, load_source, parse_input_shapes, parse_kwargs,
                       read_safetensors, with_metadata)
 from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
-__all__ = [
-    "SCHEMA_VERSION",
-    "MANIFEST_NAME",
-    "WEIGHTS_NAME",
-    "OpenedFolder",
-    "open_folder",
-    "open_source",
-    "save",
-    "load",
-    "load_base",
-    "assemble",
-    "read_manifest",
-    "load_folder_source",
-    "is_splice_folder",
-    "base_part",
-]
+__all__ = ["SCHEMA_VERSION", "MANIFEST_NAME", "WEIGHTS_NAME", "OpenedFolder", "open_folder", "open_source", "save",
+           "load", "load_base", "assemble", "read_manifest", "load_folder_source", "is_splice_folder", "base_part"]
 
 
 def _versions() -> dict[str, str]:
@@ -171,6 +157,8 @@ def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False, trust_code: b
 
 
 _META = torch.device("meta")
+_EDITED = ("the folder was edited by hand or written by an incompatible version, or the model's code changed since "
+           "the splice")
 
 
 def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
@@ -201,8 +189,8 @@ def _fill(model: nn.Module, state: Mapping[str, torch.Tensor]) -> nn.Module | No
     """``model`` (built on the meta device) with ``state`` as its tensors, or ``None`` if that does not cover it.
 
     The tensors are adopted, not copied (``load_state_dict(assign=True)``),
-    in the dtype they were saved in; a key or shape that does not fit is left
-    to the strict load of the slow path, which names it. ``None`` also when a
+    in the dtype they were saved in; a key or shape that does not fit (which
+    :func:`open_folder` refuses first) is left to the strict load of the slow path. ``None`` also when a
     tensor outside the state dict (a non-persistent buffer) would stay on the
     meta device.
     """
@@ -258,8 +246,7 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
     from .warps.grids import grid_dtype
 
     own = model.state_dict(keep_vars=True)
-    check_state_fits(own, state, f"the weights of '{folder}'", "the folder was edited by hand or written by an "
-                     "incompatible version, or the model's code changed since the splice")
+    check_state_fits(own, state, f"the weights of '{folder}'", _EDITED)
     if not assign:
         model.load_state_dict(with_metadata(model, state), strict=True)
     else:
@@ -402,8 +389,9 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
             )
         return opened
     state = read_safetensors(path)
-    if empty is not None:
-        check_dtypes(empty.state_dict(keep_vars=True), base_part(state), f"'{path}'")
+    own = empty.state_dict(keep_vars=True) if empty is not None else {}
+    if own and not any(nn.parameter.is_lazy(t) for t in own.values()):  # shapes known: refuse before a real build
+        check_state_fits(own, base_part(state), f"the weights of '{folder}'", _EDITED)
     opened.state = state if keep_mapped else {k: v.clone() for k, v in state.items()}
     return opened
 

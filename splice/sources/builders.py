@@ -14,6 +14,7 @@ import hashlib
 import importlib
 import importlib.util
 import os
+import re
 import sys
 import warnings
 from collections.abc import Mapping
@@ -219,6 +220,21 @@ def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.Pa
     that gate's opt-in, and also allows a Hugging Face config that ships its
     own code (``auto_map``).
     """
+    try:
+        return _build(spec, kwargs, origin=origin, trust_code=trust_code)
+    except Exception as exc:  # an allocation that failed, even inside a factory's own code, is told as such
+        cause = exc.__cause__ if isinstance(exc, SourceError) and exc.__cause__ is not None else exc
+        if not (isinstance(cause, MemoryError) or isinstance(cause, RuntimeError) and _NO_MEMORY.search(str(cause))):
+            raise
+        raise SourceError(f"building {spec} ran out of memory ({first_line(cause, 160)}); its builder arguments "
+                          "(--kwargs, or a folder's splice.json) ask for a larger model than this machine holds: "
+                          "check them") from None
+
+
+_NO_MEMORY = re.compile(r"can't allocate memory|out of memory|not enough memory", re.IGNORECASE)
+
+
+def _build(spec: str, kwargs: Mapping | None, *, origin, trust_code: bool):
     kwargs = dict(kwargs or {})
     check_spec(spec, kwargs, origin=origin, trust_code=trust_code)
     head, attr = split_spec(spec)

@@ -31,10 +31,11 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from ..errors import SourceError, SpliceWarning, WeightsError
+from ..errors import SourceError, SpliceWarning, WeightsError, first_line
 from ..fileio import read_json
 from .specs import per_channel, positive_int
 from .timm import REFUSED_TIMM_KWARGS
+from .weights import unsafe_checkpoint
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
            "read_hf_weights", "image_channels", "HF_WEIGHT_FILES", "HFFolder"]
@@ -280,27 +281,52 @@ def image_channels(config: Mapping) -> int | None:
 
 
 class HFFolder:
-    """What a ``save_pretrained`` folder holds: its spec and kwargs, weights file, shape and normalisation."""
+    """What a ``save_pretrained`` folder holds: its spec and kwargs, weights file, shape and normalisation
+    (``declares`` is False when no ``preprocessor_config.json`` says how images are prepared)."""
 
     def __init__(self, folder: Path, spec: str, kwargs: dict, weights: Path | None,
-                 input_shape: tuple[int, int, int] | None, normalisation: dict | None):
+                 input_shape: tuple[int, int, int] | None, normalisation: dict | None, declares: bool = True):
         self.folder, self.spec, self.kwargs, self.weights = folder, spec, kwargs, weights
-        self.input_shape, self.normalisation = input_shape, normalisation
+        self.input_shape, self.normalisation, self.declares = input_shape, normalisation, declares
 
 
-def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None]:
-    """(H, W) and normalisation from ``preprocessor_config.json``, when it says."""
+def _numbers(value: Any) -> bool:
+    return isinstance(value, list) and bool(value) and all(isinstance(x, (int, float)) for x in value)
+
+
+def _normalisation(pre: Mapping, path: Path) -> tuple[dict | None, bool]:
+    """The normalisation of [0, 1] pixels that gives what an image processor feeds the model: ``pixels *
+    rescale_factor`` (when ``do_rescale``; 1 otherwise, 0-255 pixels), then ``(x - image_mean) / image_std`` (when
+    ``do_normalize``). With ``s = 255 * rescale_factor`` that is ``(p - mean / s) / (std / s)`` for ``p`` in [0, 1].
+    ``None`` for [0, 1] pixels as they are; ``(None, False)`` for a processor that names no mean and std (its
+    class's defaults apply, unknown here)."""
+    factor = pre.get("rescale_factor", 1 / 255) if pre.get("do_rescale", True) is not False else 1.0
+    if isinstance(factor, bool) or not isinstance(factor, (int, float)) or not 0 < factor < float("inf"):
+        raise SourceError(f"'{path}': rescale_factor {factor!r} is not a positive number; re-save the image "
+                          "processor with save_pretrained")
+    mean, std = pre.get("image_mean"), pre.get("image_std")
+    if pre.get("do_normalize", True) is False:
+        mean, std = [0.0], [1.0]
+    elif not (_numbers(mean) and _numbers(std)):
+        return None, False
+    scale = 255.0 * float(factor)
+    if abs(scale - 1.0) < 1e-6 and mean == [0.0] and std == [1.0]:
+        return None, True
+    return {"mean": [float(x) / scale for x in mean], "std": [float(x) / scale for x in std]}, True
+
+
+def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None, bool]:
+    """(H, W), normalisation (:func:`_normalisation`) and whether ``preprocessor_config.json`` says how images
+    are prepared."""
     path = folder / _PREPROCESSOR
     if not path.is_file():
-        return None, None
+        return None, None, False
     pre = _read_json(path)
-    mean, std = pre.get("image_mean"), pre.get("image_std")
-    ok = all(isinstance(v, list) and v and all(isinstance(x, (int, float)) for x in v) for v in (mean, std))
-    norm = {"mean": [float(x) for x in mean], "std": [float(x) for x in std]} if ok else None
+    norm, declares = _normalisation(pre, path)
     size = pre.get("crop_size") if pre.get("do_center_crop") else pre.get("size")
     if isinstance(size, Mapping) and isinstance(size.get("height"), int) and isinstance(size.get("width"), int):
-        return (size["height"], size["width"]), norm
-    return None, norm
+        return (size["height"], size["width"]), norm, declares
+    return None, norm, declares
 
 
 def read_hf_folder(path) -> HFFolder:
@@ -315,12 +341,12 @@ def read_hf_folder(path) -> HFFolder:
     kwargs: dict[str, Any] = {"config": config}
     if "auto_map" in config:
         kwargs["code_folder"] = str(folder.resolve())
-    hw, norm = _preprocessing(folder)
+    hw, norm, declares = _preprocessing(folder)
     channels = image_channels(config)
     shape = (channels, *hw) if hw and channels else None
     if norm is not None and channels:
         norm = {k: per_channel(v, channels) for k, v in norm.items()}
-    return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm)
+    return HFFolder(folder, f"transformers:{archs[0]}", kwargs, weights, shape, norm, declares)
 
 
 def _device_contexts_primed() -> None:
@@ -341,7 +367,8 @@ def _device_contexts_primed() -> None:
         torch.empty(0)
 
 
-def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tuple[Any, dict]:
+def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
+                    trust_pickle: bool = False) -> tuple[Any, dict]:
     """The model transformers builds from a ``save_pretrained`` folder for ``model``'s class and config (in the
     dtype of ``model``'s parameters, which may be on the meta device), and the state it loaded, in the model's
     own names.
@@ -349,13 +376,15 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tupl
     A folder holds its checkpoint's names, which are not always the model's: transformers 5 renames a ViT's
     ``attention.attention.key`` to ``attention.k_proj`` (and many more) when it loads, and back when it saves.
     So ``type(model).from_pretrained`` reads the folder (the class already built, ``local_files_only``, no code
-    from the folder: safetensors, or ``torch.load(weights_only=True)``) and the state it loaded is returned,
-    without the tensors it reports missing (left at their initial values). Tensors the folder has that the
-    model does not, or of another shape, are refused by name unless ``allow_partial``. Hub kernels stay off
-    (``use_kernels=False``; transformers 5.25 turns them on by default): they are code fetched from the Hub,
-    and a model that has them re-kernelizes on every ``train()``/``eval()`` switch, which fails on the meta
+    from the folder: safetensors, or ``torch.load(weights_only=True)`` unless ``trust_pickle``) and the state it
+    loaded is returned, without the tensors it reports missing (left at their initial values). Tensors the folder
+    has that the model does not, or of another shape, are refused by name unless ``allow_partial``. Hub kernels
+    stay off (``use_kernels=False``; transformers 5.25 turns them on by default): they are code fetched from the
+    Hub, and a model that has them re-kernelizes on every ``train()``/``eval()`` switch, which fails on the meta
     device splice lists points on.
     """
+    import pickle
+
     import torch
 
     dtype = next((p.dtype for p in model.parameters() if p.is_floating_point()), torch.get_default_dtype())
@@ -365,27 +394,52 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False) -> tupl
     transformers.logging.set_verbosity_error()  # its own report of missing keys is ours to make
     transformers.logging.disable_progress_bar()  # and no bar on the terminal for a folder read in a second
     try:
+        # wrong shapes are read from the loading info and refused below by name (transformers' own refusal
+        # points at a report it prints, which is silenced)
         loaded, info = type(model).from_pretrained(
             str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
-            output_loading_info=True, ignore_mismatched_sizes=allow_partial, weights_only=True, dtype=dtype,
+            output_loading_info=True, ignore_mismatched_sizes=True, weights_only=not trust_pickle, dtype=dtype,
             use_kernels=False)
+    except pickle.UnpicklingError as exc:
+        raise unsafe_checkpoint(folder, exc, "model.save_pretrained(folder), which writes safetensors") from None
     except Exception as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise WeightsError(f"transformers could not read the weights in '{folder}' into {type(model).__name__} "
-                           f"({type(exc).__name__}: {first[:300]}); re-save the model with save_pretrained, "
-                           "or pass --allow-partial to load only the tensors that fit") from exc
+                           f"({type(exc).__name__}: {first_line(exc)[:300]}); re-save the model with save_pretrained"
+                           ) from exc
     finally:
         transformers.logging.set_verbosity(verbosity)
         if bars:
             transformers.logging.enable_progress_bar()
-    unexpected = sorted(info.get("unexpected_keys") or ())
-    shown = ", ".join(unexpected[:6]) + (f" and {len(unexpected) - 6} more" if len(unexpected) > 6 else "")
-    if unexpected and not allow_partial:
-        raise WeightsError(f"'{folder}' holds {len(unexpected)} tensor(s) {type(model).__name__} does not have "
-                           f"({shown}); pass --allow-partial (allow_partial=True) to load only the tensors that fit")
-    if unexpected:
-        warnings.warn(f"partial load: {len(unexpected)} tensor(s) of '{folder}' not used ({shown})", SpliceWarning,
-                      stacklevel=3)
-    left_out = set(info.get("missing_keys") or ()) | {m[0] if isinstance(m, (tuple, list)) else m
-                                                       for m in info.get("mismatched_keys") or ()}
+    mismatched = sorted((m[0], tuple(m[1]), tuple(m[2])) for m in info.get("mismatched_keys") or ()
+                        if isinstance(m, (tuple, list)) and len(m) == 3)
+    _refuse_unfitting(folder, model, sorted(info.get("unexpected_keys") or ()), mismatched, allow_partial)
+    left_out = set(info.get("missing_keys") or ()) | {m[0] for m in mismatched}
     return loaded, {k: v for k, v in loaded.state_dict().items() if k not in left_out}
+
+
+def _refuse_unfitting(folder: Path, model, unexpected: list[str], mismatched: list[tuple], allow_partial: bool):
+    """Refuse by name, unless ``allow_partial`` (then warn), the tensors of a folder the model has no place for and
+    those of another shape (``(name, shape in the folder, shape in the model)``), with a ``num_labels`` hint when
+    only the label count differs."""
+    cls = type(model).__name__
+    extra = ", ".join(unexpected[:6]) + (f" and {len(unexpected) - 6} more" if len(unexpected) > 6 else "")
+    shapes = "; ".join(f"{k} {saved} vs {own}" for k, saved, own in mismatched[:4]) + (
+        f" and {len(mismatched) - 4} more" if len(mismatched) > 4 else "")
+    if allow_partial:
+        told = ([f"{len(unexpected)} tensor(s) of '{folder}' not used ({extra})"] if unexpected else []) + (
+            [f"{len(mismatched)} of another shape left as built ({shapes})"] if mismatched else [])
+        if told:
+            warnings.warn(f"partial load: {'; '.join(told)}", SpliceWarning, stacklevel=4)
+        return
+    parts = ([f"{len(unexpected)} tensor(s) {cls} does not have ({extra})"] if unexpected else []) + (
+        [f"{len(mismatched)} tensor(s) of another shape than {cls}'s ({shapes})"] if mismatched else [])
+    if not parts:
+        return
+    labels, counts = getattr(model.config, "num_labels", None), {saved[:1] for _, saved, _ in mismatched}
+    hint = ""
+    if not unexpected and len(counts) == 1 and all(own[:1] == (labels,) and saved[1:] == own[1:]
+                                                   for _, saved, own in mismatched):
+        n = counts.pop()[0]
+        hint = f"if it was trained for {n} labels, set num_labels (and id2label) to {n} in '{folder / _CONFIG}'; "
+    raise WeightsError(f"'{folder}' holds {' and '.join(parts)}; {hint}"
+                       "pass --allow-partial (allow_partial=True) to load only the tensors that fit")

@@ -273,7 +273,7 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     src = _built(hf.spec, Path(hf.spec), parse_kwargs(hf.kwargs), parse_input_shapes(shapes or hf.input_shape) or (),
                  options, warn_random=False, hashed=not own, empty=own)
     if own:
-        loaded, state = read_hf_weights(path, src.model, allow_partial=allow_partial)
+        loaded, state = read_hf_weights(path, src.model, allow_partial=allow_partial, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
         config = hf.kwargs.get("config") or {}
         saved, now = str(config.get("dtype") or config.get("torch_dtype") or ""), str(_state_dtype(state))
@@ -286,8 +286,12 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
         src.model = loaded.eval()
         src.weights_path, src.random_init = _weights_path(weights, None), False
         src.weights_sha256 = state_dict_sha256(src.model.state_dict())
-    if hf.normalisation is not None:
+    if hf.declares:
         src.normalisation, src.declares_normalisation = hf.normalisation, True
+    else:
+        warnings.warn(f"'{path}': no preprocessor_config.json names the image mean and std, so images reach the model "
+                      "as [0, 1] pixels without normalisation; if it was trained on normalised images, save its image "
+                      "processor in the folder (processor.save_pretrained(folder))", NormalisationWarning, stacklevel=3)
     return src
 
 

@@ -37,6 +37,7 @@ __all__ = [
 
 WRAPPER_PREFIXES = ("module.", "model.", "_orig_mod.")
 NESTING_KEYS = ("state_dict", "model", "model_state_dict", "model_state", "net", "module", "weights")
+_EMA = re.compile(r"(^|_)ema($|_)")
 
 
 def check_file(path: Path, what: str = "weights file") -> None:
@@ -57,9 +58,30 @@ def _looks_serialised(path: Path) -> bool:
     return zipfile.is_zipfile(path) or head[:1] == b"\x80"
 
 
+def _plain_objects_allowed():
+    """torch's safe loader with ``argparse.Namespace`` allowed too: training scripts (timm's train.py, torchvision's
+    references) save their arguments as one beside the weights. It is rebuilt as an empty Namespace given the
+    saved attributes, which the safe loader checks like any others; nothing of the file's choosing runs."""
+    import argparse
+    import contextlib
+
+    allow = getattr(torch.serialization, "safe_globals", None)  # torch >= 2.5
+    return allow([argparse.Namespace]) if allow is not None else contextlib.nullcontext()
+
+
+def unsafe_checkpoint(path, exc: BaseException, resave: str = "torch.save(model.state_dict(), ...)"):
+    """The one refusal of a checkpoint torch's safe loader would not read (``exc``, its UnpicklingError), naming
+    what it blocked."""
+    blocked = re.search(r"GLOBAL ([\w.]+)", str(exc))
+    what = blocked.group(1) if blocked else "objects or pickle opcodes the safe loader does not accept"
+    return UnsafeCheckpointError(f"'{path}' contains pickled Python objects ({what}), not just tensors; unpickling can "
+                                 "run arbitrary code, so splice refused to load it. If you trust the file's origin, "
+                                 f"pass --trust-pickle (trust_pickle=True), or re-save it with {resave}")
+
+
 def torch_load(path: Path, *, trust_pickle: bool):
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), _plain_objects_allowed():
             warnings.simplefilter("ignore")
             return torch.load(path, map_location="cpu", weights_only=not trust_pickle)
     except pickle.UnpicklingError as exc:
@@ -71,13 +93,7 @@ def torch_load(path: Path, *, trust_pickle: bool):
                 "check that you passed the weights file"
             ) from None
         if not trust_pickle and ("weights_only" in text or "weights only" in text):
-            what = blocked.group(1) if blocked else "objects or pickle opcodes the safe loader does not accept"
-            raise UnsafeCheckpointError(
-                f"'{path}' contains pickled Python objects ({what}), not just tensors; "
-                "unpickling can run arbitrary code, so splice refused to load it. "
-                "If you trust the file's origin, pass --trust-pickle (trust_pickle=True), "
-                "or re-save it with torch.save(model.state_dict(), ...)"
-            ) from None
+            raise unsafe_checkpoint(path, exc) from None
         raise WeightsError(f"'{path}' is not a readable checkpoint ({exc}); it may be truncated or corrupt") from None
     except Exception as exc:  # any failure to parse the file means it is not a usable checkpoint
         if trust_pickle and isinstance(exc, (ModuleNotFoundError, AttributeError)):
@@ -153,7 +169,7 @@ def _is_tensor_dict(obj: object) -> bool:
 
 def _note_other_weights(obj: Mapping, key: str, path: Path) -> None:
     """Say which weights were taken when a checkpoint holds more than one set (a training script's EMA copy)."""
-    others = [k for k in obj if isinstance(k, str) and k != key and re.search(r"(^|_)ema($|_)", k.lower())
+    others = [k for k in obj if isinstance(k, str) and k != key and _EMA.search(k.lower())
               and (isinstance(obj[k], nn.Module) or (isinstance(obj[k], Mapping) and len(obj[k]) > 0))]
     if others:
         warnings.warn(f"'{path}' holds {key!r} and {', '.join(repr(k) for k in others)}; splice loads {key!r}. To load "
@@ -178,6 +194,12 @@ def _unnest(obj: object, path: Path) -> dict[str, torch.Tensor]:
         tensors = {k: v for k, v in obj.items() if isinstance(k, str) and isinstance(v, torch.Tensor)}
         if tensors:
             return tensors
+        emas = [k for k in obj if isinstance(k, str) and _EMA.search(k.lower()) and isinstance(obj[k], Mapping)]
+        if len(emas) == 1:  # a training script that kept only its moving average of the weights
+            found = _unnest(obj[emas[0]], path)
+            warnings.warn(f"'{path}' holds only {emas[0]!r}, a moving average of the weights; splice loads it",
+                          SpliceWarning, stacklevel=2)
+            return found
         keys = ", ".join(repr(k) for k in list(obj)[:8])
         raise WeightsError(
             f"'{path}' holds a dict without tensors (keys: {keys}); expected a state dict, "
@@ -220,17 +242,48 @@ def _read_shards(index: Path, *, trust_pickle: bool) -> dict[str, torch.Tensor]:
     return state
 
 
-def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str]) -> dict[str, torch.Tensor]:
-    """``state`` without the wrapper prefixes (``module.``, ...) that every key shares, as a load reads it."""
-    changed = True
-    while changed:
-        changed = False
-        for prefix in WRAPPER_PREFIXES:
-            if state and all(k.startswith(prefix) for k in state):
-                stripped = {k[len(prefix):]: v for k, v in state.items()}
-                if len(wanted & set(stripped)) >= len(wanted & set(state)):
-                    state, changed = stripped, True
-    return state
+def strip_prefixes(state: dict[str, torch.Tensor], wanted: set[str],
+                   where: str = "the weights") -> dict[str, torch.Tensor]:
+    """``state`` without the prefixes its names carry but the model's (``wanted``) do not, as a load reads it.
+
+    A wrapper prefix (``module.``, ...) every key shares is stripped silently. With a warning: any other dotted
+    prefix every key shares (a training module's ``net.``), when stripping it makes the keys fit the model; and a
+    prefix shared by all keys but a few bookkeeping entries with no place in the model (an averaged model's
+    ``n_averaged``), which are dropped, when the stripped keys all are the model's.
+    """
+    while True:
+        for prefix in _candidates(state):
+            step = _stripped(state, wanted, prefix, where)
+            if step is not None:
+                state = step
+                break
+        else:
+            return state
+
+
+def _candidates(state: Mapping[str, torch.Tensor]) -> list[str]:
+    """The wrapper prefixes, then the first name part of the dotted keys when they all share one."""
+    firsts = {k.split(".", 1)[0] + "." for k in state if "." in k}
+    return [*WRAPPER_PREFIXES, *(p for p in firsts if len(firsts) == 1 and p not in WRAPPER_PREFIXES)]
+
+
+def _stripped(state: dict[str, torch.Tensor], wanted: set[str], prefix: str, where: str) -> dict | None:
+    """``state`` with ``prefix`` stripped (see :func:`strip_prefixes`), or ``None`` when it should stay."""
+    stripped = {k[len(prefix):]: v for k, v in state.items() if k.startswith(prefix)}
+    rest = [k for k in state if not k.startswith(prefix)]
+    before, after = len(wanted & set(state)), len(wanted & set(stripped))
+    if not stripped or after < before or (after == before and (rest or prefix not in WRAPPER_PREFIXES)):
+        return None
+    if rest:
+        if any(k in wanted for k in rest) or not set(stripped) <= wanted:
+            return None
+        warnings.warn(f"{where}: every name but {_names(rest, 3)} starts with {prefix!r}; the model has no place "
+                      f"for {'it' if len(rest) == 1 else 'them'}: dropped, and {prefix!r} stripped",
+                      SpliceWarning, stacklevel=4)
+    elif prefix not in WRAPPER_PREFIXES:
+        warnings.warn(f"{where}: every name starts with {prefix!r}, which the model's names do not; it was stripped",
+                      SpliceWarning, stacklevel=4)
+    return stripped
 
 
 def _names(keys: Sequence[str], limit: int = 6) -> str:
@@ -306,7 +359,7 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     Returns ``{"missing": [...], "unexpected": [...], "mismatched": [...]}``.
     """
     own = model.state_dict()
-    state = strip_prefixes(state, set(own))
+    state = strip_prefixes(state, set(own), where)
     cast = check_dtypes(own, state, where)
     if cast:
         kinds = sorted({str(state[k].dtype).replace("torch.", "") for k in cast})
@@ -317,7 +370,7 @@ def load_weights_(model: nn.Module, state: dict[str, torch.Tensor], *, allow_par
     missing = [k for k in own if k not in state and k.rsplit(".", 1)[-1] != "num_batches_tracked"]
     unexpected = [k for k in state if k not in own]
     mismatched = [k for k in own if k in state and tuple(state[k].shape) != tuple(own[k].shape)]
-    matched = len(own) - len(missing) - len(mismatched)
+    matched = sum(1 for k in own if k in state and tuple(state[k].shape) == tuple(own[k].shape))
     if own and matched < 0.5 * len(own) and not allow_partial:
         raise WeightsError(
             f"{where} does not fit {spec}: only {matched} of {len(own)} tensors match by name and shape "

@@ -1,0 +1,117 @@
+"""Hugging Face save_pretrained folders: how their images are prepared, and what their weights' errors say."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+
+from splice.errors import NormalisationWarning, SpliceWarning, UnsafeCheckpointError, WeightsError
+from splice.sources import load_source
+
+pytest.importorskip("transformers")
+
+
+def _resnet(num_labels: int = 3):
+    from transformers import ResNetConfig, ResNetForImageClassification
+
+    torch.manual_seed(0)
+    config = ResNetConfig(embedding_size=8, hidden_sizes=[8, 16], depths=[1, 1], layer_type="basic",
+                          num_labels=num_labels)
+    return ResNetForImageClassification(config).eval()
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    path = tmp_path_factory.mktemp("hf") / "resnet"
+    _resnet().save_pretrained(path)
+    return path
+
+
+@pytest.mark.parametrize("settings", [
+    {},
+    {"do_normalize": False},
+    {"do_rescale": False},
+    {"do_rescale": False, "do_normalize": False},
+    {"rescale_factor": 1 / 127.5, "image_mean": [1.0, 1.0, 1.0], "image_std": [1.0, 1.0, 1.0]},
+])
+def test_a_folders_images_are_prepared_as_its_image_processor_prepares_them(folder, settings):
+    # reference: transformers' own ViTImageProcessor, on the same 32x32 image (already its size, so not resized)
+    import numpy as np
+    from transformers import ViTImageProcessor
+
+    from splice.data import normalise
+
+    options = {"image_mean": [0.485, 0.456, 0.406], "image_std": [0.229, 0.224, 0.225], **settings}
+    processor = ViTImageProcessor(size={"height": 32, "width": 32}, **options)
+    processor.save_pretrained(folder)
+    image = np.random.default_rng(0).integers(0, 256, (32, 32, 3), dtype=np.uint8)
+    reference = processor(images=image, return_tensors="pt")["pixel_values"][0]
+    src = load_source(str(folder))
+    fed = normalise(torch.from_numpy(image).permute(2, 0, 1).float() / 255, src.normalisation)
+    assert src.declares_normalisation and src.input_shape == (3, 32, 32)
+    assert torch.allclose(fed, reference.float(), rtol=1e-5, atol=1e-4), float((fed - reference).abs().max())
+    if settings == {"do_normalize": False}:
+        assert src.normalisation is None
+
+
+def test_a_folder_without_an_image_processor_is_flagged(tmp_path):
+    _resnet().save_pretrained(tmp_path / "bare")
+    with pytest.warns(NormalisationWarning, match=r"no preprocessor_config.json .* \[0, 1\] pixels without "
+                                                  r"normalisation; .*processor.save_pretrained"):
+        src = load_source(str(tmp_path / "bare"), input_shape="3x32x32")
+    assert src.normalisation is None and not src.declares_normalisation
+
+
+def test_a_folder_whose_head_has_another_size_names_the_tensors_and_num_labels(tmp_path):
+    # reference: the shapes safetensors' own load_file reads from the file, and the model's
+    from safetensors.torch import load_file, save_file
+
+    _resnet(3).save_pretrained(tmp_path / "head")
+    path = tmp_path / "head" / "model.safetensors"
+    five = {k: v.contiguous() for k, v in _resnet(5).state_dict().items()}
+    save_file(five, str(path), metadata={"format": "pt"})
+    assert tuple(load_file(str(path))["classifier.1.weight"].shape) == (5, 16)
+    with pytest.raises(WeightsError, match=r"2 tensor\(s\) of another shape than ResNetForImageClassification's "
+                                           r"\(classifier.1.bias \(5,\) vs \(3,\); classifier.1.weight \(5, 16\) vs "
+                                           r"\(3, 16\)\); if it was trained for 5 labels, set num_labels .* to 5 in "
+                                           r".*config.json'; pass --allow-partial"):
+        load_source(str(tmp_path / "head"), input_shape="3x32x32")
+    with pytest.warns(SpliceWarning, match=r"partial load"):
+        src = load_source(str(tmp_path / "head"), input_shape="3x32x32", allow_partial=True)
+    state = src.model.state_dict()
+    assert tuple(state["classifier.1.weight"].shape) == (3, 16)
+    assert all(torch.equal(state[k], v) for k, v in five.items() if not k.startswith("classifier.1."))
+
+
+def test_an_unsafe_pickle_in_a_folder_is_refused_as_any_unsafe_checkpoint(tmp_path, capsys):
+    from splice.cli import main
+
+    marker = tmp_path / "pwned"
+
+    class Payload:
+        def __reduce__(self):
+            return (open, (str(marker), "w"))
+
+    _resnet().save_pretrained(tmp_path / "bin")
+    (tmp_path / "bin" / "model.safetensors").unlink()
+    torch.save({**_resnet().state_dict(), "x": Payload()}, tmp_path / "bin" / "pytorch_model.bin")
+    with pytest.raises(UnsafeCheckpointError, match=r"contains pickled Python objects \(.*open\), not just tensors; "
+                                                    r"unpickling can run arbitrary code.*--trust-pickle"):
+        load_source(str(tmp_path / "bin"), input_shape="3x32x32")
+    assert main(["points", str(tmp_path / "bin"), "--input-shape", "3x32x32"]) == 2
+    err = capsys.readouterr().err
+    assert "--trust-pickle" in err and "--allow-partial" not in err and "\x1b" not in err
+    assert not marker.exists()
+
+
+def test_transformers_errors_reach_the_user_without_terminal_codes(folder, monkeypatch):
+    from transformers import ResNetForImageClassification
+
+    def fails(*args, **kwargs):
+        raise RuntimeError("\x1b[1mthe file is odd\x1b[0m. see above")
+
+    monkeypatch.setattr(ResNetForImageClassification, "from_pretrained", fails)
+    with pytest.raises(WeightsError) as caught:
+        load_source(str(folder), input_shape="3x32x32")
+    assert "(RuntimeError: the file is odd. see above); re-save the model with save_pretrained" in str(caught.value)
+    assert "\x1b" not in str(caught.value) and "--allow-partial" not in str(caught.value)

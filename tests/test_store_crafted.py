@@ -1,0 +1,53 @@
+"""Folders whose splice.json asks for an architecture their weights do not fit: refused before a real build."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+import torch
+
+import splice
+from splice.errors import SourceError, WeightsError
+from splice.sources import load_source
+
+
+@pytest.fixture()
+def folder(tmp_path):
+    src = load_source("splice.models:tray_net", kwargs={"width": 4}, warn_random=False)
+    return splice.save(splice.insert(src, at="input"), tmp_path / "tray")
+
+
+def _ask_for(folder, **kwargs):
+    manifest = json.loads((folder / "splice.json").read_text())
+    manifest["source"]["kwargs"].update(kwargs)
+    (folder / "splice.json").write_text(json.dumps(manifest))
+
+
+@pytest.mark.parametrize("num_classes", [20, 10**12])
+def test_a_folder_asking_for_another_head_is_refused_before_any_real_build(folder, monkeypatch, num_classes):
+    # the saved fc is (10, 16); the record asks for (num_classes, 16): the meta-device build already shows it, so
+    # the architecture is never built on a real device (a trillion classes would be 64 TB)
+    import splice.store as store
+
+    real = []
+    built = store.build_model
+
+    def watched(*args, **kwargs):
+        real.append(torch.empty(0).device.type != "meta")
+        return built(*args, **kwargs)
+
+    monkeypatch.setattr(store, "build_model", watched)
+    _ask_for(folder, num_classes=num_classes)
+    for opener in (splice.load, splice.store.load_base):
+        with pytest.raises(WeightsError, match=rf"wrong shape 2: fc.weight \(10, 16\) vs \({num_classes}, 16\)"):
+            opener(folder)
+    assert real and not any(real)
+
+
+@pytest.mark.parametrize("spec", ["splice.models:tray_net", "torchvision:resnet18"])
+def test_a_build_that_cannot_allocate_is_one_line(spec):
+    # reference: torch's own allocator refuses a (10**13, C) weight with "can't allocate memory"
+    with pytest.raises(SourceError, match=rf"building {spec} ran out of memory \(.*allocate.*\); its builder "
+                                          r"arguments .* ask for a larger model than this machine holds"):
+        load_source(spec, kwargs={"num_classes": 10**13}, warn_random=False)
