@@ -88,7 +88,7 @@ def test_joint_tuning_declares_and_compares_base(tray_spliced, tmp_path):
     report = verify(folder)
     assert report.passed, report.failed
     row = report["provenance"]
-    assert "joint recipe" in row.detail
+    assert "recipe 'joint'" in row.detail
     assert row.numbers["diff"]["largest"][0]["name"] == "fc.bias"
     assert row.numbers["diff"]["max_abs_diff"] == pytest.approx(0.5, rel=1e-6)
     # the same change without the declaration fails

@@ -176,7 +176,7 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                                f"only the base's buffers moved while {recipe!r} tuned it (recorded in splice.json): "
                                f"its forward updates them as it runs; {differs}; {how}", "base buffers moved (recorded)")
         return CheckResult("provenance", True, numbers,
-                           f"the base was tuned as well ({recipe!r}, recorded in splice.json): {differs}; {how}",
+                           f"the base was tuned as well (recipe {recipe!r}, recorded in splice.json): {differs}; {how}",
                            "base tuned (recorded)")
     if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
         return CheckResult("provenance", False, numbers,
