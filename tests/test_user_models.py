@@ -68,3 +68,34 @@ def test_a_declaration_is_read_only_when_no_shape_is_given():
     assert _quiet_source(spec, input_shape=["3x16x16", "1x16x16"]).input_shapes == ((3, 16, 16), (1, 16, 16))
     with pytest.raises(SourceError, match=r"malformed input shape 'sixteen by sixteen'"):
         _quiet_source(spec)
+
+
+# ----------------------------------------------------------------------------- one image per sample
+
+
+@pytest.fixture(scope="module")
+def two_input_folder(tmp_path_factory):
+    import splice
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # random weights, on purpose
+        spliced = splice.insert(RGB_DEPTH, at="input", warp=splice.WarpConfig(head_width=4))
+    return splice.save(spliced, tmp_path_factory.mktemp("two") / "rgbd")
+
+
+@pytest.mark.parametrize("command", ["tune", "eval", "inspect"])
+def test_commands_that_feed_one_image_refuse_a_model_with_two_inputs(two_input_folder, tmp_path, capsys, command):
+    from splice.cli import main
+
+    # was: "internal error: TypeError: forward() missing 1 required positional argument: 'depth'"
+    args = {"tune": ["tune", str(two_input_folder), "--recipe", "warp-only", "--data", "digits", "--epochs", "1",
+                     "--out", str(tmp_path / "run"), "--quiet"],
+            "eval": ["eval", str(two_input_folder), "--data", "digits", "--distort", "none"],
+            "inspect": ["inspect", str(two_input_folder), "--data", "digits", "--n", "2", "--out", str(tmp_path / "i")]}
+    assert main([*args[command], "--trust-code"]) == 2
+    err = capsys.readouterr().err.strip()
+    verb = "evaluate" if command == "eval" else command
+    assert len(err.splitlines()) == 1 and "internal error" not in err
+    assert f"{verb} feeds one image per sample, but the model takes 2 inputs (3x16x16, 1x16x16)" in err
+    assert "in your own code" in err
+    assert not (tmp_path / "run").exists() and not (tmp_path / "i").exists()  # refused before anything was written
