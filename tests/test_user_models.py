@@ -47,6 +47,26 @@ badly_declared.input_shape = "sixteen by sixteen"
 RGB_DEPTH = f"{__file__}:rgb_depth"
 
 
+class _Constant(nn.Module):
+    """Outputs that do not depend on the input: the input's path to them is detached and multiplied by zero."""
+
+    def __init__(self):
+        super().__init__()
+        self.c1 = nn.Conv2d(1, 4, 3, padding=1)
+        self.bias = nn.Parameter(torch.randn(10))
+
+    def forward(self, x):
+        return self.bias.expand(x.shape[0], -1) + 0 * self.c1(x).mean((1, 2, 3))[:, None].detach()
+
+
+def constant():
+    torch.manual_seed(0)
+    return _Constant().eval()
+
+
+constant.input_shape = (1, 24, 24)
+
+
 def _quiet_source(spec, **kwargs):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # random weights, on purpose
@@ -99,3 +119,30 @@ def test_commands_that_feed_one_image_refuse_a_model_with_two_inputs(two_input_f
     assert f"{verb} feeds one image per sample, but the model takes 2 inputs (3x16x16, 1x16x16)" in err
     assert "in your own code" in err
     assert not (tmp_path / "run").exists() and not (tmp_path / "i").exists()  # refused before anything was written
+
+
+# ----------------------------------------------------------------------------- nothing for the warps to learn
+
+
+def test_tune_stops_in_one_line_when_the_outputs_ignore_the_input(tmp_path):
+    import splice
+    from splice.errors import SpliceError
+    from splice.recipes import Recipe, load_recipe
+    from splice.training import RunOptions, tune
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # random weights, on purpose
+        folder = splice.save(splice.insert(f"{__file__}:constant", at="input", warp=splice.WarpConfig(head_width=4)),
+                             tmp_path / "const")
+    d = load_recipe("warp-only").with_overrides(epochs=1, batch_size=64).to_dict()
+    d["pretrain"]["epochs"] = 0
+    # was: "element 0 of tensors does not require grad and does not have a grad_fn" from loss.backward()
+    with pytest.raises(SpliceError, match=r"^the loss does not depend on any parameter being trained: the model's "
+                                          r"outputs do not depend on its input at all .* nothing for the warps to "
+                                          r"learn; 'splice verify' shows it"):
+        tune(str(folder), recipe=Recipe.from_dict(d), data="digits", out=tmp_path / "run",
+             run_options=RunOptions(progress=False), model_options=splice.ModelOptions(trust_code=True))
+    import json
+
+    run = json.loads((tmp_path / "run" / "run.json").read_text())
+    assert run["status"] == "failed" and run["error"].startswith("the loss does not depend on any parameter")
