@@ -4,6 +4,7 @@ factory froze, channels_last models."""
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 
 import pytest
@@ -45,6 +46,43 @@ def badly_declared():
 badly_declared.input_shape = "sixteen by sixteen"
 
 RGB_DEPTH = f"{__file__}:rgb_depth"
+
+
+@dataclasses.dataclass
+class Scores:
+    logits: torch.Tensor
+    fmap: torch.Tensor
+    note: str = "scores"
+
+
+class _DataclassOut(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.c1 = nn.Conv2d(3, 4, 3, padding=1)
+        self.c2 = nn.Conv2d(4, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        f = self.c2(F.relu(self.c1(x)))
+        return Scores(self.fc(f.mean((2, 3))), f)
+
+
+def dataclass_out():
+    torch.manual_seed(0)
+    return _DataclassOut().eval()
+
+
+dataclass_out.input_shape = (3, 16, 16)
+
+
+class Plain:  # neither a dataclass nor a container: splice cannot look into it
+    def __init__(self, logits):
+        self.logits = logits
+
+
+class _PlainOut(_DataclassOut):
+    def forward(self, x):
+        return Plain(super().forward(x).logits)
 
 
 class _Constant(nn.Module):
@@ -146,3 +184,56 @@ def test_tune_stops_in_one_line_when_the_outputs_ignore_the_input(tmp_path):
 
     run = json.loads((tmp_path / "run" / "run.json").read_text())
     assert run["status"] == "failed" and run["error"].startswith("the loss does not depend on any parameter")
+
+
+# ----------------------------------------------------------------------------- dataclass outputs
+
+
+def test_dataclass_outputs_are_walked_field_by_field():
+    from splice.compare import class_logits, detached, flatten_outputs, tensors_out
+
+    a, b = torch.randn(2, 5, requires_grad=True), torch.randn(2, 4, 3, 3)
+    out = [Scores(a, b), {"s": Scores(b, a)}]
+    flat = flatten_outputs(out)
+    assert list(flat) == ["out[0].logits", "out[0].fmap", "out[1].s.logits", "out[1].s.fmap"]  # declared order
+    assert flat["out[0].logits"] is a and flat["out[1].s.fmap"] is a
+    kept = detached(Scores(a, b, note="kept"))
+    assert type(kept) is Scores and kept.note == "kept" and not kept.logits.requires_grad
+    assert torch.equal(kept.logits, a) and torch.equal(kept.fmap, b)
+    assert class_logits(Scores(a, b)) is a
+    assert tensors_out(Scores(a, b)) == (a, b)  # what the exporters take: the tensors, in flatten order
+
+
+def test_a_model_returning_a_dataclass_is_spliced_and_exported(tmp_path):
+    import onnxruntime as ort
+
+    import splice
+
+    model = dataclass_out()
+    pts = splice.points(model, input_shape=(3, 16, 16))
+    assert [(p.name, p.cut) for p in pts] == [("input", True), ("c1", True), ("relu", True)]  # was: no cut at all
+    spliced = splice.insert(model, at="recommended", warp=splice.WarpConfig(head_width=4), input_shape=(3, 16, 16))
+    spliced.eval()
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        want, got = model(x), spliced(x)
+    assert type(got) is Scores and torch.equal(got.logits, want.logits) and torch.equal(got.fmap, want.fmap)
+    result = splice.export(spliced, onnx=tmp_path / "m.onnx")["exports"][0]
+    assert result["format"] == "onnx"
+    session = ort.InferenceSession(str(tmp_path / "m.onnx"), providers=["CPUExecutionProvider"])
+    outs = session.run(None, {session.get_inputs()[0].name: x.numpy()})
+    # onnxruntime is the outside reference: the file's outputs are the dataclass's tensors, in field order
+    assert len(outs) == 2
+    torch.testing.assert_close(torch.from_numpy(outs[0]), want.logits, rtol=1e-5, atol=1e-5)
+    torch.testing.assert_close(torch.from_numpy(outs[1]), want.fmap, rtol=1e-5, atol=1e-5)
+
+
+def test_an_output_splice_cannot_look_into_is_named_with_what_it_supports():
+    import splice
+    from splice.errors import GraphError
+
+    torch.manual_seed(0)
+    with pytest.raises(GraphError, match=r"^_PlainOut returns Plain, which holds no tensors splice can find; splice "
+                                         r"supports outputs that are a tensor, or tuples, lists, dicts and dataclass "
+                                         r"instances holding tensors"):
+        splice.points(_PlainOut().eval(), input_shape=(3, 16, 16))
