@@ -75,6 +75,19 @@ def dataclass_out():
 dataclass_out.input_shape = (3, 16, 16)
 
 
+def frozen_backbone():
+    """A factory that freezes its backbone (BatchNorm included) itself, as users fine-tuning a head do."""
+    torch.manual_seed(0)
+    back = nn.Sequential(nn.Conv2d(1, 4, 3, padding=1), nn.BatchNorm2d(4), nn.ReLU(),
+                         nn.Conv2d(4, 4, 3, stride=2, padding=1), nn.ReLU())
+    for p in back.parameters():
+        p.requires_grad_(False)
+    return nn.Sequential(back, nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(4, 10))
+
+
+frozen_backbone.input_shape = (1, 24, 24)
+
+
 class Plain:  # neither a dataclass nor a container: splice cannot look into it
     def __init__(self, logits):
         self.logits = logits
@@ -237,3 +250,38 @@ def test_an_output_splice_cannot_look_into_is_named_with_what_it_supports():
                                          r"supports outputs that are a tensor, or tuples, lists, dicts and dataclass "
                                          r"instances holding tensors"):
         splice.points(_PlainOut().eval(), input_shape=(3, 16, 16))
+
+
+# ----------------------------------------------------------------------------- parameters the factory froze
+
+
+def test_joint_tune_keeps_what_the_factory_froze(tmp_path, capsys):
+    import json
+
+    from safetensors.torch import load_file
+
+    import splice
+    from splice.recipes import Recipe, load_recipe
+    from splice.training import RunOptions, tune
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # random weights, on purpose
+        folder = splice.save(splice.insert(f"{__file__}:frozen_backbone", at="input",
+                                           warp=splice.WarpConfig(head_width=4)), tmp_path / "frozen")
+    d = load_recipe("joint").with_overrides(epochs=1, batch_size=64).to_dict()
+    d["pretrain"]["epochs"] = 0
+    tune(str(folder), recipe=Recipe.from_dict(d), data="digits", out=tmp_path / "run",
+         run_options=RunOptions(quiet=True), model_options=splice.ModelOptions(trust_code=True))
+    before, after = load_file(folder / "weights.safetensors"), load_file(tmp_path / "run" / "last" / "weights.safetensors")
+    frozen = [k for k, p in frozen_backbone().named_parameters() if not p.requires_grad]
+    assert len(frozen) == 6
+    for k in [*frozen, "0.1.running_mean", "0.1.running_var", "0.1.num_batches_tracked"]:
+        assert torch.equal(before[k], after[k]), k  # bitwise unchanged (was: trained, and BatchNorm stats moved)
+    for k in ["3.weight", "3.bias", "splice_warps.input.head.fc2.bias"]:
+        assert not torch.equal(before[k], after[k]), k  # what is not frozen did train
+    run = json.loads((tmp_path / "run" / "run.json").read_text())
+    assert run["frozen_by_model"] == {"parameters": 6, "modules": ["0"]}
+    out = capsys.readouterr()
+    told = [line for line in (out.out + out.err).splitlines() if "requires_grad=False" in line]
+    assert told == ["6 base parameters the model sets requires_grad=False stay frozen, as if the recipe's 'freeze' "
+                    "named them; module 0 in eval mode"]

@@ -27,6 +27,7 @@ from .batches import mix
 from .checkpoint import CHECKPOINT_NAME, load_checkpoint
 from .normalisation import estimate_normalisation
 from .options import RecipeOverrides
+from .params import frozen_by_model
 from .reference import Reference, data_record, resolve_reference
 from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info
 
@@ -269,6 +270,12 @@ def normalisation(recipe: Recipe, src, train) -> tuple[dict | None, str]:
     return None, "model"
 
 
+def _frozen_by_model(net: nn.Module) -> dict | None:
+    """What the run record says of the base parameters the model froze itself (kept frozen by the run)."""
+    names, modules = frozen_by_model(net)
+    return {"parameters": len(names), "modules": [q for q, _ in modules]} if names else None
+
+
 def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm, *, norm_origin: str,
              ref: Reference | None) -> dict:
     """The run.json record of a fresh run."""
@@ -282,5 +289,6 @@ def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm, *
         "data_path": data_record(req.data), "normalisation": norm, "normalisation_origin": norm_origin,
         "reference": None if ref is None else ref.data, "reference_origin": None if ref is None else ref.origin,
         "base_sha256_start": state_dict_sha256(base), "status": "running",
+        "frozen_by_model": _frozen_by_model(net),
         "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
     }
