@@ -88,6 +88,27 @@ def frozen_backbone():
 frozen_backbone.input_shape = (1, 24, 24)
 
 
+class _Grouped(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.c1 = nn.Conv2d(3, 8, 3, padding=1)
+        self.gn = nn.GroupNorm(2, 8)
+        self.c2 = nn.Conv2d(8, 8, 3, padding=1)
+        self.fc = nn.Linear(8, 5)
+
+    def forward(self, x):
+        x = F.gelu(self.gn(self.c1(x)))
+        return self.fc(self.c2(x).mean((2, 3)))
+
+
+def channels_last_net():
+    torch.manual_seed(0)
+    return _Grouped().eval().to(memory_format=torch.channels_last)
+
+
+channels_last_net.input_shape = (3, 16, 16)
+
+
 class Plain:  # neither a dataclass nor a container: splice cannot look into it
     def __init__(self, logits):
         self.logits = logits
@@ -285,3 +306,42 @@ def test_joint_tune_keeps_what_the_factory_froze(tmp_path, capsys):
     told = [line for line in (out.out + out.err).splitlines() if "requires_grad=False" in line]
     assert told == ["6 base parameters the model sets requires_grad=False stay frozen, as if the recipe's 'freeze' "
                     "named them; module 0 in eval mode"]
+
+
+# ----------------------------------------------------------------------------- channels_last
+
+
+def test_a_warp_returns_a_channels_last_input_in_that_layout():
+    from splice.warps import Warp, WarpConfig
+
+    warp = Warp(WarpConfig(head_width=4), (8, 16, 16)).eval()
+    with torch.no_grad():
+        warp.head.fc2.bias.add_(0.05)  # away from the identity: a real resample
+    x = torch.randn(2, 8, 16, 16)
+    cl = x.contiguous(memory_format=torch.channels_last)
+    with torch.no_grad():
+        plain, last = warp(x), warp(cl)
+    assert plain.is_contiguous()
+    assert last.is_contiguous(memory_format=torch.channels_last) and not last.is_contiguous()
+    torch.testing.assert_close(last, plain, rtol=1e-6, atol=1e-6)  # torch.nn.functional.grid_sample on either
+
+
+def test_a_channels_last_model_spliced_at_a_group_norm_is_bit_exact(tmp_path):
+    import splice
+
+    spec = f"{__file__}:channels_last_net"
+    base = channels_last_net()
+    x = torch.randn(3, 3, 16, 16)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # random weights, on purpose
+        for at in ("input", "c1", "gn"):
+            spliced = splice.insert(spec, at=at, warp=splice.WarpConfig(head_width=4)).eval()
+            with torch.no_grad():
+                assert torch.equal(spliced(x), base(x)), at  # was 6e-8 off at gn, 1e-7 at c1
+        folder = splice.save(spliced, tmp_path / "cl")
+    loaded = splice.load(folder, trust_code=True)
+    assert loaded.c1.weight.is_contiguous(memory_format=torch.channels_last)  # was: contiguous after load
+    with torch.no_grad():
+        assert torch.equal(loaded(x), base(x))
+    result = splice.export(folder, onnx=tmp_path / "cl.onnx", trust_code=True)["exports"][0]
+    assert result["format"] == "onnx"  # written only after its onnxruntime parity check passed
