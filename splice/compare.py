@@ -1,13 +1,16 @@
 """Comparing model outputs: the bottom layer shared by insert, verify and export.
 
-Model outputs may be a tensor or any nesting of tuples, lists and dicts of
-tensors; :func:`flatten_outputs` names each tensor by its path (``out``,
-``out[0]``, ``out.logits``), and :func:`compare_outputs` compares two outputs
+Model outputs may be a tensor or any nesting of tuples, lists, dicts and
+dataclass instances of tensors; :func:`flatten_outputs` names each tensor by
+its path (``out``, ``out[0]``, ``out.logits``; a dataclass's fields in their
+declared order), and :func:`compare_outputs` compares two outputs
 path by path. Imports only torch and :mod:`splice.errors`.
 """
 
 from __future__ import annotations
 
+import copy
+import dataclasses
 from collections.abc import Mapping, Sequence
 
 import torch
@@ -15,7 +18,15 @@ import torch
 from .errors import DataError
 
 __all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "tensors_out", "class_logits",
-           "logits_or_refuse"]
+           "logits_or_refuse", "SUPPORTED_OUTPUTS"]
+
+# what the outputs may be, as the refusals of other types say it
+SUPPORTED_OUTPUTS = "a tensor, or tuples, lists, dicts and dataclass instances holding tensors"
+
+
+def is_dataclass_instance(value) -> bool:
+    """True for an instance of a dataclass (not the class itself)."""
+    return dataclasses.is_dataclass(value) and not isinstance(value, type)
 
 # max error relative to the output's scale (max |y|), by dtype. float32 rounding
 # through a bilinear resample at the identity stays near 1e-7; 1e-5 leaves room
@@ -24,13 +35,18 @@ DEFAULT_TOLERANCES = {torch.float32: 1e-5, torch.float64: 1e-10, torch.float16: 
 
 
 def flatten_outputs(out, prefix: str = "out") -> dict[str, torch.Tensor]:
-    """Flatten tensors in nested tuple/list/dict outputs into ``{path: tensor}``."""
+    """Flatten tensors in nested tuple/list/dict/dataclass outputs into ``{path: tensor}``."""
     if isinstance(out, torch.Tensor):
         return {prefix: out}
     if isinstance(out, Mapping):
         flat: dict[str, torch.Tensor] = {}
         for k in out:
             flat.update(flatten_outputs(out[k], f"{prefix}.{k}"))
+        return flat
+    if is_dataclass_instance(out):  # a Hugging Face ModelOutput is a Mapping, met above
+        flat = {}
+        for f in dataclasses.fields(out):
+            flat.update(flatten_outputs(getattr(out, f.name), f"{prefix}.{f.name}"))
         return flat
     if isinstance(out, Sequence) and not isinstance(out, (str, bytes)):
         flat = {}
@@ -103,7 +119,8 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
     """
     ref, cand = flatten_outputs(reference), flatten_outputs(candidate)
     if not ref:
-        return _failed(f"the model returned {type(reference).__name__}, which holds no tensors")
+        return _failed(f"the model returned {type(reference).__name__}, which holds no tensors; splice compares "
+                       f"outputs that are {SUPPORTED_OUTPUTS}")
     if set(ref) != set(cand):
         return _failed(f"output structure differs: {sorted(ref)} vs {sorted(cand)}")
     max_abs = 0.0
@@ -151,7 +168,7 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
 
 
 def _map_tensors(out, fn):
-    """``out`` with ``fn`` applied to every tensor, containers (named tuples included) kept."""
+    """``out`` with ``fn`` applied to every tensor, containers (named tuples and dataclasses included) kept."""
     if isinstance(out, torch.Tensor):
         return fn(out)
     if isinstance(out, Mapping):
@@ -160,10 +177,15 @@ def _map_tensors(out, fn):
         return type(out)(*(_map_tensors(v, fn) for v in out))
     if isinstance(out, (tuple, list)):
         return type(out)(_map_tensors(v, fn) for v in out)
+    if is_dataclass_instance(out):  # a shallow copy with each field mapped (no __init__ or __post_init__ run again)
+        new = copy.copy(out)
+        for f in dataclasses.fields(out):
+            object.__setattr__(new, f.name, _map_tensors(getattr(out, f.name), fn))
+        return new
     return out
 
 
 def detached(out):
-    """``out`` (a tensor or nested tuple/list/dict of them) with every tensor detached, containers kept."""
+    """``out`` (a tensor or nested tuple/list/dict/dataclass of them) with every tensor detached, containers kept."""
     return _map_tensors(out, lambda t: t.detach())
 

@@ -87,6 +87,19 @@ def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: st
     return out
 
 
+_OWN_CODE = {"tune": "train", "evaluate": "evaluate", "inspect": "inspect"}
+
+
+def refuse_several_inputs(command: str, shapes: Sequence, what: str = "the model") -> None:
+    """One line when ``command`` (which feeds one image per sample) meets a model with several inputs."""
+    if len(shapes) <= 1:
+        return
+    listed = ", ".join("x".join(str(int(v)) for v in s) for s in shapes)
+    raise SpliceError(f"{command} feeds one image per sample, but {what} takes {len(shapes)} inputs ({listed}); "
+                      f"{command} a model that takes one image (e.g. a factory returning the submodule that sees the "
+                      f"images, spliced on its own), or {_OWN_CODE.get(command, command)} this one in your own code")
+
+
 # the opt-ins a refusal of ``against`` names, as the user gives them for that model
 _AGAINST_OPT_INS = (("--trust-code", "--against-trust-code"), ("trust_code=True", "against_trust_code=True"),
                     ("--trust-pickle", "--against-trust-pickle"), ("trust_pickle=True", "against_trust_pickle=True"))

@@ -17,10 +17,13 @@ neither.
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Any
 
 import torch
 import torch.fx as fx
+
+from ..compare import is_dataclass_instance
 
 __all__: list[str] = []
 
@@ -43,6 +46,8 @@ def _has_tensor(value: Any) -> bool:
         return any(_has_tensor(v) for v in value)
     if isinstance(value, dict):
         return any(_has_tensor(v) for v in value.values())
+    if is_dataclass_instance(value):  # a model output such as @dataclass class Out: logits: Tensor
+        return any(_has_tensor(getattr(value, f.name, None)) for f in dataclasses.fields(value))
     return False
 
 

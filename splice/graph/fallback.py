@@ -31,7 +31,7 @@ from ..errors import GraphError
 from .entries import CONV_MODULES, Entry
 from .exported import export_entries
 from .leaves import LeafRule, class_path, is_torch_builtin
-from .recorded import recorded_entries
+from .recorded import UnsupportedOutput, recorded_entries
 from .rules import ShapeRules
 from .shapes import META, meta_module, run_for_real, set_mode, to_meta
 from .tracing import GraphWarning, reason
@@ -249,6 +249,8 @@ def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, 
     try:
         entries = recorded_entries(model, args, kwargs, rule, counts, meta=meta, readers=readers)
         how = f"a meta-device run of the forward (specialised to input {shapes})"
+    except UnsupportedOutput:  # no other view finds the outputs either
+        raise
     except Exception as exc:  # a forward that needs real values: torch.export may still manage
         recorded_problem = reason(exc)
         try:

@@ -29,6 +29,8 @@ import torch.fx as fx
 from torch import nn
 from torch.overrides import TorchFunctionMode
 
+from ..compare import SUPPORTED_OUTPUTS
+from ..errors import GraphError
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, site_name
 from .leaves import LeafRule, is_torch_builtin
@@ -37,6 +39,11 @@ from .shapes import META, meta_module, run_for_real, to_meta
 from .modes import spying
 
 __all__: list[str] = []
+
+
+class UnsupportedOutput(GraphError):
+    """The model's output holds no tensor splice can find (an object of a class it does not look into)."""
+
 
 _CONVS = frozenset({"conv2d", "conv_transpose2d", "convolution", "_convolution"})
 
@@ -256,7 +263,12 @@ def recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule
     if counts is not None:
         for qualname, *_ in rec.calls:
             counts[qualname] = counts.get(qualname, 0) + 1
-    outputs = [rec.producer[id(t)] for t in _tensors(out) if id(t) in rec.producer]
+    found = list(_tensors(out))
+    if not found and out is not None and not isinstance(out, (Mapping, Sequence)):
+        raise UnsupportedOutput(f"{type(model).__name__} returns {type(out).__name__}, which holds no tensors splice "
+                                f"can find; splice supports outputs that are {SUPPORTED_OUTPUTS}: return one of those "
+                                f"(make {type(out).__name__} a @dataclass, say)")
+    outputs = [rec.producer[id(t)] for t in found if id(t) in rec.producer]
     graph, nodes, values = _graph(rec, list(dict.fromkeys(outputs)))
     cuts, joins = cut_analysis(graph, values)
     sites = _sites(rec)

@@ -11,6 +11,7 @@ from torch import Tensor
 
 from ..fileio import json_safe
 from ..errors import DataError, SpliceError
+from ..options import refuse_several_inputs
 from .capture import capture, check_positive_int
 from .decompose import QUANTITY_HELP, describe_theta, quantities_for
 from .plots import draw_histograms
@@ -167,7 +168,9 @@ def _load(folder, trust_pickle: bool, trust_code: bool = False):
             f"'{_name(folder)}' holds no warps, so there is nothing to inspect; give a folder written by "
             "'splice insert' or 'splice tune' with a warp recipe."
         )
-    return model, warps, info_of(model)
+    info = info_of(model)
+    refuse_several_inputs("inspect", info.input_shapes if info is not None else ())
+    return model, warps, info
 
 
 def _sample(facts, data: str, split: str, n: int) -> _Sample:

@@ -101,7 +101,12 @@ def _direct_plan(model: nn.Module, state: Mapping[str, torch.Tensor]):
 
 def _assign(m: nn.Module, name: str, value: torch.Tensor) -> None:
     """What ``load_state_dict(assign=True)`` does for one tensor: a parameter stays a parameter and keeps its
-    ``requires_grad``; a buffer becomes ``value``."""
+    ``requires_grad``; a buffer becomes ``value``. A 4-D tensor the model holds channels_last (built with
+    ``.to(memory_format=torch.channels_last)``) adopts ``value`` in that layout, so that it computes as built."""
+    held = m._parameters[name] if name in m._parameters else m._buffers.get(name)
+    if (held is not None and held.dim() == 4 and value.dim() == 4 and not held.is_contiguous()
+            and held.is_contiguous(memory_format=torch.channels_last)):
+        value = value.contiguous(memory_format=torch.channels_last)
     old = m._parameters.get(name)
     if old is not None:
         if isinstance(value, nn.Parameter):

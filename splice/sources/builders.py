@@ -25,7 +25,7 @@ from torch import nn
 
 from ..errors import SourceError, SpliceWarning, first_line, suggest
 from .huggingface import build_transformers
-from .specs import FILE_MODULE_PREFIX, parse_input_shape, split_spec
+from .specs import FILE_MODULE_PREFIX, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
@@ -266,7 +266,7 @@ def _build(spec: str, kwargs: Mapping | None, *, origin, trust_code: bool):
     model = uncompiled(model)  # here, so that a folder's rebuild unwraps it too
     declared = getattr(factory, "input_shape", None) or getattr(model, "input_shape", None)
     if declared is not None:
-        meta["input_shape"] = parse_input_shape(declared)
+        meta["input_shape"] = declared  # one shape or one per input: parsed by load_source, only when none is given
     meta["normalisation"] = getattr(factory, "normalisation", None)
     meta["declares_normalisation"] = hasattr(factory, "normalisation")
     return model, meta

@@ -16,7 +16,7 @@ from ..fileio import state_dict_sha256
 from .builders import absolute_spec, build_model, code_sha256, uncompiled
 from .empty import initialisers_skipped
 from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
-from .specs import parse_input_shape, parse_input_shapes, parse_kwargs, volumes_not_images
+from .specs import parse_input_shapes, parse_kwargs, volumes_not_images
 from .trust import check_spec
 from .weights import check_file, check_finite, load_weights_, read_weights, torch_load
 
@@ -160,7 +160,8 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                       "normalised images, set factory.normalisation = {'mean': [...], 'std': [...]} (None says it "
                       "takes [0, 1])", NormalisationWarning, stacklevel=3)
     model.eval()
-    first = shapes[0] if shapes else (meta["input_shape"] or parse_input_shape(default_input_shape))
+    shapes = shapes or parse_input_shapes(meta["input_shape"]) or parse_input_shapes(default_input_shape) or ()
+    first = shapes[0] if shapes else None
     if first is None and volumes_not_images(model) is not None:  # say that first, not "give a shape"
         raise SourceError(volumes_not_images(model))
     if first is None:

@@ -21,7 +21,7 @@ from . import distributed
 from .checkpoint import set_rng_state
 from .head import confidently_wrong, final_layer, zero_final_layer_
 from .loop import Stepper, ThetaTap
-from .params import frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
+from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
 from .recording import checkpoint, diverged, evaluate_val, finish, record, stopped
@@ -37,15 +37,30 @@ class _Frozen:
     """The recipe's frozen parameter names and modules, and which base state the net is in now."""
 
     def __init__(self, run: Run) -> None:
-        self.names = frozen_names(run.net, run.rec.freeze, run.where)
-        self.modules = frozen_modules(run.net, run.rec.freeze)
+        # parameters the model's own code froze (requires_grad=False) stay frozen, as if 'freeze' named them
+        self.by_model, by_model_modules = frozen_by_model(run.net)
+        self.names = frozen_names(run.net, run.rec.freeze, run.where) | self.by_model
+        self.modules = frozen_modules(run.net, run.rec.freeze) + [m for _, m in by_model_modules]
+        self.by_model_modules = [q for q, _ in by_model_modules]
         self.base: bool | None = None
+
+    def told(self) -> str | None:
+        """The line a run prints about the parameters the model froze, or ``None``."""
+        if not self.by_model:
+            return None
+        n, mods = len(self.by_model), self.by_model_modules
+        shown = ", ".join(mods[:6]) + (" ..." if len(mods) > 6 else "")
+        return (f"{n} base parameter{'s' if n > 1 else ''} the model sets requires_grad=False stay frozen, as if the "
+                f"recipe's 'freeze' named them" + (f"; module{'s' if len(mods) > 1 else ''} {shown} in eval mode"
+                                                   if mods else ""))
 
 
 def train(run: Run) -> dict[str, Any]:
     """Train ``run`` to the end (or to a stop request); returns the summary."""
     frozen = _Frozen(run)
     stepper, tap = _set_up(run, frozen)
+    if frozen.told() is not None:
+        run.bar.line(frozen.told())
     try:
         start_epoch, start_batch = _restore(run, stepper) if run.ckpt is not None else (0, 0)
         if run.ckpt is None and run.ctx.is_main:

@@ -20,6 +20,7 @@ from torch import Tensor, nn
 
 from ..compare import logits_or_refuse
 from ..copies import modes_kept
+from ..errors import SpliceError
 
 __all__ = ["ThetaTap", "identity_penalty", "Stepper", "evaluate"]
 
@@ -100,6 +101,11 @@ class Stepper:
                 penalty = identity_penalty(self.tap.warps, self.tap.theta)
                 if penalty is not None:
                     total = loss + self.reg_weight * penalty
+        if self.seen == 0 and not loss.requires_grad:  # an epoch's first step: a loss no trained parameter reaches
+            raise SpliceError(
+                "the loss does not depend on any parameter being trained: the model's outputs do not depend on its "
+                "input at all (or only through detached or non-differentiable operations), so there is nothing for "
+                "the warps to learn; 'splice verify' shows it, train or load the base first")
         # one host sync per step: a NaN/Inf loss stops the run at this step (the caller decides how)
         self.finite = bool(torch.isfinite(total.detach()))
         self.last_loss = float(total.detach()) if not self.finite else None

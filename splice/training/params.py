@@ -12,7 +12,7 @@ from ..errors import RecipeError
 from ..recipes import Recipe
 from ..surgery import WARP_PREFIX
 
-__all__ = ["frozen_names", "frozen_modules", "param_groups", "make_optimizer", "set_requires_grad", "set_modes",
+__all__ = ["frozen_names", "frozen_modules", "frozen_by_model", "param_groups", "make_optimizer", "set_requires_grad", "set_modes",
            "grad_reducer", "is_warp_name"]
 
 
@@ -41,6 +41,23 @@ def frozen_names(model: nn.Module, patterns: Sequence[str], where: str) -> set[s
 
 def frozen_modules(model: nn.Module, patterns: Sequence[str]) -> list[nn.Module]:
     return [m for name, m in model.named_modules() if name and any(fnmatch.fnmatchcase(name, p) for p in patterns)]
+
+
+def frozen_by_model(model: nn.Module) -> tuple[set[str], list[tuple[str, nn.Module]]]:
+    """The base parameters that arrive with ``requires_grad=False`` (the model's own code froze them), and the
+    largest modules all of whose parameters are among them: frozen as a ``freeze`` pattern naming them would be
+    (kept out of the optimiser, the modules in eval mode, BatchNorm statistics included)."""
+    names = {n for n, p in model.named_parameters() if not p.requires_grad and not is_warp_name(n)}
+    modules: list[tuple[str, nn.Module]] = []
+    if not names:
+        return names, modules
+    for qualname, m in model.named_modules():
+        if not qualname or any(qualname.startswith(q + ".") for q, _ in modules):
+            continue
+        own = [f"{qualname}.{n}" for n, _ in m.named_parameters()]
+        if own and all(n in names for n in own):
+            modules.append((qualname, m))
+    return names, modules
 
 
 def param_groups(model: nn.Module, recipe: Recipe, frozen: set[str]) -> list[dict]:

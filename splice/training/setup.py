@@ -18,7 +18,7 @@ from ..copies import modes_kept
 from ..fileio import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
-from ..options import ModelOptions
+from ..options import ModelOptions, refuse_several_inputs
 from ..recipes import Recipe, load_recipe
 from ..objects import made_from_object
 from ..sources import MODULE_SPEC
@@ -27,6 +27,7 @@ from .batches import mix
 from .checkpoint import CHECKPOINT_NAME, load_checkpoint
 from .normalisation import estimate_normalisation
 from .options import RecipeOverrides
+from .params import frozen_by_model
 from .reference import Reference, data_record, resolve_reference
 from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info
 
@@ -157,6 +158,7 @@ def load_model(req: Request, where: str):
         )
     if src.input_shape is None:
         raise SpliceError("tune needs the model's input shape; pass --input-shape CxHxW (input_shape=...)")
+    refuse_several_inputs("tune", src.input_shapes)
     if made_from_object(net) and req.ckpt is None:
         warnings.warn("this splice was made from a module object: the run's folders keep its weights, but load and "
                       "verify cannot rebuild them; load their weights into the spliced model (load_state_dict), or "
@@ -268,6 +270,12 @@ def normalisation(recipe: Recipe, src, train) -> tuple[dict | None, str]:
     return None, "model"
 
 
+def _frozen_by_model(net: nn.Module) -> dict | None:
+    """What the run record says of the base parameters the model froze itself (kept frozen by the run)."""
+    names, modules = frozen_by_model(net)
+    return {"parameters": len(names), "modules": [q for q, _ in modules]} if names else None
+
+
 def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm, *, norm_origin: str,
              ref: Reference | None) -> dict:
     """The run.json record of a fresh run."""
@@ -281,5 +289,6 @@ def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm, *
         "data_path": data_record(req.data), "normalisation": norm, "normalisation_origin": norm_origin,
         "reference": None if ref is None else ref.data, "reference_origin": None if ref is None else ref.origin,
         "base_sha256_start": state_dict_sha256(base), "status": "running",
+        "frozen_by_model": _frozen_by_model(net),
         "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
     }

@@ -280,7 +280,12 @@ class Warp(nn.Module):
             # its inputs, not its output, and two full-size temporaries are saved
             ident = self._identity_grid(xs, grid.dtype)
             out = out.sub_(self._sample(xs, ident if ident.dtype == sdt else ident.to(sdt))).add_(xs)
-        return out if out.dtype == x.dtype else out.to(x.dtype)
+        out = out if out.dtype == x.dtype else out.to(x.dtype)
+        # grid_sample returns a contiguous tensor: a channels_last input gets its layout back, so that the layers
+        # after the warp compute as they do without it (a channels_last GroupNorm or conv sums in another order)
+        if x.is_contiguous(memory_format=torch.channels_last) and not x.is_contiguous():
+            out = out.contiguous(memory_format=torch.channels_last)
+        return out
 
     def _sample(self, x: Tensor, grid: Tensor) -> Tensor:
         return F.grid_sample(
