@@ -6,11 +6,14 @@ torch.export.load is the reference loader for .pt2 programs.
 
 from __future__ import annotations
 
+import collections
+import dataclasses
 from pathlib import Path
 
 import numpy as np
 import pytest
 import torch
+from torch import nn
 
 import splice
 from splice import store
@@ -23,6 +26,7 @@ from splice.exporting import (
     export_onnx_bytes,
     onnx_parity,
     perturbation_theta,
+    export_pt2_bytes,
     perturbed_copy,
     pt2_parity,
 )
@@ -461,3 +465,43 @@ def test_exporting_and_checking_leave_the_callers_model_as_it_was(step):
         pt2_parity(spliced, program, x)
     assert {n: m.training for n, m in spliced.named_modules()} == modes
     assert all(torch.equal(state[k], v) for k, v in spliced.state_dict().items())
+
+
+_Pair = collections.namedtuple("_Pair", "logits features")
+
+
+@dataclasses.dataclass
+class _PairDC:
+    logits: torch.Tensor
+    features: torch.Tensor
+
+
+class _Structured(nn.Module):
+    def __init__(self, kind: type):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.kind = kind
+
+    def forward(self, x):
+        h = torch.relu(self.conv(x))
+        return self.kind(h.mean((2, 3)), h)
+
+
+@pytest.mark.parametrize("kind", [_Pair, _PairDC])
+def test_pt2_of_a_model_returning_a_named_tuple_or_a_dataclass_is_its_flat_tuple(kind):
+    # torch.export refuses a dataclass output and cannot save a named tuple's (pytree classes it was not told
+    # of): the program returns the tensors flat, in flatten_outputs' order. Reference: torch.export.load.
+    import io
+
+    from splice.compare import flatten_outputs
+
+    torch.manual_seed(0)
+    model = _Structured(kind).eval()
+    x = torch.rand(2, 3, 8, 8)
+    with pytest.warns(UserWarning, match="flat tuple"):
+        data = export_pt2_bytes(model, x, dynamic_batch=True)
+    out = torch.export.load(io.BytesIO(data)).module()(x)
+    expected = list(flatten_outputs(model(x)).values())
+    assert isinstance(out, tuple) and len(out) == 2
+    assert all(torch.allclose(a, b, rtol=0, atol=1e-6) for a, b in zip(out, expected))
+    assert pt2_parity(model, data, [x], perturb=False)["passed"]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import copy
 import io
 import os
+import warnings
 from pathlib import Path
 
 import torch
@@ -12,7 +13,7 @@ from torch import nn
 
 from ..compare import flatten_outputs
 from ..copies import private_buffers
-from ..errors import SpliceError, first_line
+from ..errors import SpliceError, SpliceWarning, first_line
 from .onnx import as_inputs
 from .parity import (
     as_batches,
@@ -26,23 +27,51 @@ from .weights import perturbed_copy, perturbed_tensors
 __all__ = ["export_pt2_bytes", "pt2_parity"]
 
 
+class _FlatOutputs(nn.Module):
+    """``model`` returning its output's tensors as one flat tuple, in :func:`~splice.compare.flatten_outputs`'s
+    order (a module of its own: torch.export reads a GraphModule's graph, not a ``forward`` set on a copy)."""
+
+    def __init__(self, model: nn.Module):
+        super().__init__()
+        self.model = model
+        self.training = model.training
+
+    def forward(self, *args):
+        return tuple(flatten_outputs(self.model(*args)).values())
+
+
+def _program_bytes(model: nn.Module, xs: tuple, dims) -> bytes:
+    program = torch.export.export(model, xs, dynamic_shapes=dims)
+    buf = io.BytesIO()
+    torch.export.save(program, buf)
+    return buf.getvalue()
+
+
 def export_pt2_bytes(model: nn.Module, example, *, dynamic_batch: bool = False) -> bytes:
     """``torch.export.export`` + ``torch.export.save`` into bytes (the model is not changed).
 
-    ``example`` is a tensor, or a tuple of one tensor per model input.
+    ``example`` is a tensor, or a tuple of one tensor per model input. An output whose structure torch.export
+    cannot export or store (a dataclass, a named tuple: pytree classes it was not told of) is exported as the flat
+    tuple of its tensors, in the order splice names them (``out.logits, out.features``), with a warning.
     """
     xs = as_inputs(example)
     model = private_buffers(model).eval()  # exported on a twin: the caller's modes and buffers stay
+    batch = torch.export.Dim("batch", min=1, max=4096)
+    dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
     try:
-        batch = torch.export.Dim("batch", min=1, max=4096)
-        dims = tuple({0: batch} for _ in xs) if dynamic_batch else None
-        program = torch.export.export(model, xs, dynamic_shapes=dims)
-        buf = io.BytesIO()
-        torch.export.save(program, buf)
-        return buf.getvalue()
+        return _program_bytes(model, xs, dims)
     except Exception as exc:
-        first = first_line(exc)
-        raise SpliceError(f"torch.export failed: {type(exc).__name__}: {first}") from exc
+        first = f"{type(exc).__name__}: {first_line(exc)}"
+        try:
+            # the wrapper takes ``*args``, whose dynamic shapes torch.export reads as one tuple
+            data = _program_bytes(_FlatOutputs(model), xs, None if dims is None else (dims,))
+        except Exception:
+            raise SpliceError(f"torch.export failed: {first}") from exc
+    warnings.warn(f"torch.export could not keep the model's output structure ({first}); "
+                  "the program returns its tensors as a flat tuple, in the order 'splice verify' names them",
+                  SpliceWarning, stacklevel=2)
+    return data
+
 
 def pt2_parity(model: nn.Module, program, inputs, *, perturb: bool = True, tol: float | None = None) -> dict:
     """Reload a torch.export program (path, bytes or ``ExportedProgram``) and compare it with ``model``.
