@@ -458,3 +458,22 @@ def test_provenance_says_when_only_hashes_could_be_compared(tmp_path, source_wei
     row = splice.verify(folder)["provenance"]
     assert row.passed and row.warning == "only splice.json's hashes compared"
     assert "no longer on disk" in row.detail and "bitwise equal" not in row.detail
+
+
+def test_verify_reads_a_prefixed_checkpoint_again_without_repeating_the_load_warning(tmp_path):
+    # a training module's checkpoint ('net.' before every name): the load strips it with a warning; verify reads
+    # the file again to compare, silently, and still compares every tensor
+    import warnings
+
+    from splice.models import tray_net
+
+    torch.manual_seed(0)
+    ckpt = tmp_path / "lightning.pt"
+    torch.save({f"net.{k}": v for k, v in tray_net(**SMALL).state_dict().items()}, ckpt)
+    with pytest.warns(UserWarning, match="'net.'"):
+        src = splice.load_source(TRAY, weights=ckpt, kwargs=SMALL)
+    folder = splice.save(splice.insert(src, at="input"), tmp_path / "sp")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        row = verify(folder)["provenance"]
+    assert row.passed and not row.warning and f"read from '{ckpt}'" in row.detail

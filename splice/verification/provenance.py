@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -10,7 +11,7 @@ import torch
 
 from ..fileio import state_dict_sha256
 from ..copies import bitwise_equal
-from ..errors import SpliceError
+from ..errors import SpliceError, SpliceWarning
 from ..manifest import MANIFEST_NAME, SpliceInfo
 from ..sources import code_change, code_sha256, load_source, read_weights, strip_prefixes
 from .report import CheckResult
@@ -47,7 +48,9 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
     base_state = {k: v for k, v in base_state.items() if k not in set(info.source_not_loaded)}
     if path is not None and Path(path).is_file():
         try:
-            read = strip_prefixes(read_weights(path), set(base_state))
+            with warnings.catch_warnings():  # what a load strips was told when the folder was made
+                warnings.simplefilter("ignore", SpliceWarning)
+                read = strip_prefixes(read_weights(path), set(base_state))
         except (SpliceError, OSError, RuntimeError, ValueError):  # a pickle without trust, a folder: rebuild below
             read = None
         names = [k for k in base_state if k.rsplit(".", 1)[-1] != "num_batches_tracked"]
