@@ -148,6 +148,14 @@ def _site_module(scope_module: nn.Module, qualname: str, point: str) -> nn.Modul
                          f"{suggest(qualname, names) or ';'} Re-create the splice from 'splice points'") from None
 
 
+class WarpHolder(nn.ModuleDict):
+    """The warps of a hooks splice, held under the model as ``splice_warps``. A container's own forward may call
+    every child in turn (``nn.Sequential`` does): the holder, its last child, then hands its input on unchanged."""
+
+    def forward(self, x, *args, **kwargs):
+        return x
+
+
 def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str, int]],
                 shapes: Mapping[str, tuple[int, ...]], *, within: str = "", factory: dict | None = None) -> nn.Module:
     """A deep copy of ``model`` with the warps of ``plan`` (``SplicePlan`` items) at module outputs.
@@ -168,7 +176,7 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
         param = next(iter(model.parameters()), None)
         factory = {"device": param.device, "dtype": param.dtype} if param is not None else {}
     scope_module = work.get_submodule(within) if within else work
-    container = nn.ModuleDict()
+    container = WarpHolder()
     work.add_module(WARP_PREFIX, container)
     scope = _Scope(work, within)
     per_module: dict[str, dict[int, tuple]] = {}

@@ -405,3 +405,45 @@ def test_a_leaf_that_names_no_module_of_the_model_is_told():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         assert [p.name for p in points(model, (3, 8, 8), leaves=[nn.Sequential, "torch.nn.modules.conv.Conv2d"])]
+
+
+def test_a_module_is_named_alike_by_the_graph_rewrite_and_by_hooks():
+    # a Sequential's children are 0, 1, ...: fx names their calls _0, _1; the hooks mechanism (a model carrying a
+    # hook of its own is reached by hooks) named them 0, 1, so the same point changed its name with the mechanism
+    def net():
+        torch.manual_seed(0)
+        return nn.Sequential(nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU()), nn.Conv2d(4, 4, 3), nn.ReLU(),
+                             nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(4, 2))
+
+    plain, hooked = net(), net()
+    hooked.register_forward_hook(lambda *args: None)
+    by_fx = points(plain, (3, 16, 16), all=True)
+    with pytest.warns(TraceFallbackWarning):
+        by_hooks = points(hooked, (3, 16, 16), all=True)
+    assert {p.mechanism for p in by_fx} == {"fx"} and {p.mechanism for p in by_hooks} == {"hooks"}
+    assert [p.name for p in by_hooks] == [p.name for p in by_fx] == ["input", "_0_0", "_0_1", "_1", "_2", "_3"]
+    with pytest.warns(TraceFallbackWarning):
+        spliced = splice.insert(hooked, at="_0_1", input_shape=(3, 16, 16))
+    x = torch.rand(2, 3, 16, 16)
+    assert torch.equal(spliced(x), hooked(x))
+
+
+class _SizeBranch(nn.Module):
+    def forward(self, x):
+        return x * 2 if x.shape[-1] > 8 else x  # a branch on a size: fx's proxies cannot decide it
+
+
+def test_a_sequential_reached_by_hooks_runs_and_certifies():
+    # the hooks mechanism keeps its warps as a child of the model; nn.Sequential's forward calls every child in
+    # turn, and called the warps' container too ("ModuleDict is missing the required forward")
+    torch.manual_seed(0)
+    base = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), _SizeBranch(), nn.ReLU(), nn.Conv2d(4, 4, 3, padding=1),
+                         nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(4, 3)).eval()
+    with pytest.warns(TraceFallbackWarning):
+        spliced = splice.insert(base, at=["input", "_2"], input_shape=(3, 12, 12))
+    x = torch.rand(2, 3, 12, 12)
+    assert torch.equal(spliced(x), base(x))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        report = splice.verify(spliced, onnx=True)
+    assert report.passed, report.failed

@@ -94,6 +94,14 @@ def layouts_of(nodes: list, values: Mapping, is_conv: Mapping, permutation: Call
     return layout
 
 
+def module_stem(qualname: str) -> str:
+    """The point name of a module's output, as fx names a call of it: dots become underscores, and a name that
+    would start with a digit (a Sequential's ``0.1``) starts with ``_`` (``_0_1``), so that the hooks mechanism
+    and the graph rewrite name the same module alike."""
+    stem = qualname.replace(".", "_")
+    return f"_{stem}" if stem[:1].isdigit() else stem
+
+
 def site_name(stem: str, call: int, taken: set[str]) -> str:
     """``stem`` for a module's first call, ``stem_K`` for call K; ``stem_K_J`` when another qualname took that
     (``a_1`` and the second call of ``a`` meet). Adds the name to ``taken``."""

@@ -30,7 +30,7 @@ from torch import nn
 
 from ..copies import private_buffers
 from .cuts import cut_analysis
-from .entries import NCHW, Entry, dims_permutation, layouts_of, site_name
+from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, site_name
 
 __all__ = ["export_quietly"]
 
@@ -152,7 +152,7 @@ def _names(nodes: list, user_inputs: set[str], sites: Mapping) -> dict[Any, str]
         site = sites.get(n)
         if site is None:
             continue
-        names[n] = site_name(site.module.replace(".", "_"), site.call, taken)
+        names[n] = site_name(module_stem(site.module), site.call, taken)
     return names
 
 

@@ -28,7 +28,7 @@ import torch.fx as fx
 from torch import nn
 
 from ..errors import GraphError
-from .entries import CONV_MODULES, Entry
+from .entries import CONV_MODULES, Entry, module_stem
 from .exported import export_entries
 from .leaves import LeafRule, class_path, is_torch_builtin
 from .recorded import UnsupportedOutput, recorded_entries
@@ -80,7 +80,7 @@ class _Timeline:
             qualname = self.qualnames[mod]
             k = self.calls.get(qualname, 0)
             self.calls[qualname] = k + 1
-            base = qualname.replace(".", "_")
+            base = module_stem(qualname)
             self.records.append((t, base if k == 0 else f"{base}_{k}", qualname,
                                  tuple(int(s) for s in out.shape[1:]), k))
 

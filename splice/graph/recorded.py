@@ -32,7 +32,7 @@ from torch.overrides import TorchFunctionMode
 from ..compare import SUPPORTED_OUTPUTS
 from ..errors import GraphError
 from .cuts import cut_analysis
-from .entries import NCHW, Entry, dims_permutation, site_name
+from .entries import NCHW, Entry, dims_permutation, module_stem, site_name
 from .leaves import LeafRule, is_torch_builtin
 from .rules import meta_rule
 from .shapes import META, meta_module, run_for_real, to_meta
@@ -306,5 +306,5 @@ def _names(rec: _Recording, sites: dict[int, tuple[str, int]]) -> dict[int, str]
     taken = {"input"}
     for i in sorted(sites):
         qualname, k = sites[i]
-        names[i] = site_name(qualname.replace(".", "_"), k, taken)
+        names[i] = site_name(module_stem(qualname), k, taken)
     return names
