@@ -447,3 +447,40 @@ def test_a_sequential_reached_by_hooks_runs_and_certifies():
         warnings.simplefilter("ignore")
         report = splice.verify(spliced, onnx=True)
     assert report.passed, report.failed
+
+
+class _ReadsChildFlag(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 3, 1)
+        self.bn = nn.BatchNorm2d(3)
+
+    def forward(self, x):
+        y = self.bn(self.conv(x))
+        if self.bn.training:  # this module's code takes the other path, on its child's flag
+            y = y * 0.5
+        return y
+
+
+class _HoldsChildFlagReader(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.block = _ReadsChildFlag()
+        self.head = nn.Conv2d(3, 3, 1)
+
+    def forward(self, x):
+        return self.head(torch.relu(self.block(x)))
+
+
+def test_the_module_whose_code_reads_a_childs_flag_is_the_leaf():
+    # the read was charged to the child (bn, already a leaf): the block's branch stayed fixed to eval mode
+    torch.manual_seed(0)
+    base = _HoldsChildFlagReader()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        spliced = splice.insert(base, at="input", input_shape=(3, 8, 8))
+    x = torch.rand(4, 3, 8, 8)
+    for mode in (True, False):
+        base.train(mode)
+        spliced.train(mode)
+        assert torch.equal(spliced(x), base(x)), mode

@@ -3,6 +3,7 @@ flags set and put back, and how two traced graphs differ."""
 
 from __future__ import annotations
 
+import inspect
 from collections.abc import Iterator
 from contextlib import contextmanager
 
@@ -26,11 +27,27 @@ def original_class(cls: type) -> type:
 def spying(mods: list[nn.Module], reads: list[nn.Module]) -> Iterator[bool]:
     """Temporarily give each module a class whose ``training`` property records reads.
 
-    Yields False (and changes nothing) if some module's class cannot take part.
+    A read is recorded as the module whose code made it: the nearest caller frame whose ``self`` is one of
+    ``mods`` (``Block.forward`` reading ``self.bn.training`` is ``Block``'s read: its own code takes the other
+    path), else the module whose flag was read. Yields False (and changes nothing) if some module's class cannot
+    take part.
     """
+    spied = {id(m) for m in mods}
+
+    def _reader(owner: nn.Module) -> nn.Module:
+        frame = inspect.currentframe()
+        frame = frame.f_back.f_back if frame is not None and frame.f_back is not None else None  # past _get
+        for _ in range(64):
+            if frame is None:
+                break
+            me = frame.f_locals.get("self")
+            if isinstance(me, nn.Module) and id(me) in spied:
+                return me
+            frame = frame.f_back
+        return owner
 
     def _get(self):
-        reads.append(self)
+        reads.append(_reader(self))
         return self.__dict__["training"]
 
     def _set(self, value):
