@@ -84,11 +84,14 @@ def test_joint_tuning_declares_and_compares_base(tray_spliced, tmp_path):
     moved = _tuned(tray_spliced)
     with torch.no_grad():
         moved.get_parameter("fc.bias").add_(0.5)
+        for name, b in moved.named_buffers():  # training counts batches: the source file does not change for it
+            if name.endswith("num_batches_tracked"):
+                b.add_(7)
     folder = store.save(moved, tmp_path / "joint", tuning={"recipe": "joint", "base_changed": True})
     report = verify(folder)
     assert report.passed, report.failed
     row = report["provenance"]
-    assert "recipe 'joint'" in row.detail
+    assert "recipe 'joint'" in row.detail and "changed since the splice" not in row.detail
     assert row.numbers["diff"]["largest"][0]["name"] == "fc.bias"
     assert row.numbers["diff"]["max_abs_diff"] == pytest.approx(0.5, rel=1e-6)
     # the same change without the declaration fails
@@ -446,6 +449,11 @@ def test_a_partial_load_is_recorded_and_provenance_vouches_only_for_what_the_fil
         state, prefix_exclude="splice_warps.")
     (folder / "splice.json").write_text(json.dumps(data))
     assert not splice.verify(folder)["provenance"].passed
+    # nor does naming it among the tensors a partial load left out hide it: the file gives it
+    data["source"]["not_loaded"] = sorted([*heads, name])
+    (folder / "splice.json").write_text(json.dumps(data))
+    row = splice.verify(folder)["provenance"]
+    assert not row.passed and row.summary == "record edited" and name in row.detail
 
 
 def test_provenance_says_when_only_hashes_could_be_compared(tmp_path, source_weights):

@@ -19,33 +19,47 @@ from .report import CheckResult
 __all__: list[str] = []
 
 
-def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tuple[dict | None, str]:
-    """The source checkpoint's state dict, or ``None`` and the reason it is unavailable."""
+def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tuple[dict | None, str, tuple]:
+    """The source checkpoint's state dict as a load builds it, how it was found (or why it is unavailable), and the
+    tensors that load left out (a partial load)."""
     path = info.source_weights_path
     if path is None:
         why = "the source was a random init" if info.random_init else "no source weights file was recorded"
-        return None, f"{why}, so only hashes are compared"
+        return None, f"{why}, so only hashes are compared", ()
     if not Path(path).is_file():
-        return None, f"the source weights file '{path}' is no longer on disk, so only hashes are compared"
+        return None, f"the source weights file '{path}' is no longer on disk, so only hashes are compared", ()
     try:
         # a record read from a folder names its spec from a file: the same gate as opening the folder
         origin = None if info.folder is None else Path(info.folder) / MANIFEST_NAME
-        src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape, warn_random=False,
-                          leaves=info.leaves, origin=origin, trust_code=trust_code,
-                          allow_partial=bool(info.source_not_loaded))
+        with warnings.catch_warnings():  # a partial load was told when the folder was made
+            warnings.simplefilter("ignore", SpliceWarning)
+            src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape,
+                              warn_random=False, leaves=info.leaves, origin=origin, trust_code=trust_code,
+                              allow_partial=bool(info.source_not_loaded))
     except SpliceError as exc:
-        return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared"
-    return dict(src.model.state_dict()), f"compared with '{path}'"
+        return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared", ()
+    return dict(src.model.state_dict()), f"compared with '{path}'", tuple(src.not_loaded)
+
+
+def _claimed_but_given(info: SpliceInfo, given: set[str]) -> dict | None:
+    """The differences to report when splice.json says tensors were not loaded that the source does give (the
+    record was edited: a claim of a partial load excuses nothing the file can vouch for), else ``None``."""
+    false = sorted(set(info.source_not_loaded) & given)
+    if not false:
+        return None
+    return {"tensors": len(info.source_not_loaded), "changed": len(false), "max_abs_diff": float("inf"),
+            "largest": [], "names": false, "missing": [], "unexpected": [], "falsely_not_loaded": false}
+
 
 def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape, trust_code: bool,
                   reference=None) -> tuple[bool | None, str, dict | None, dict | None]:
     """Whether the base is bitwise the recorded source file's weights, read now (``None``: cannot tell), how it was
-    found, the differences, and the source's state dict. The file is read as it is first (cheap); only when its
+    found, the differences, and the source's state dict as a load gives it (``None`` when that cannot be told
+    exactly: the recorded source hash is compared with it). The file is read as it is first (cheap); only when its
     tensors do not line up with the base's is the source model rebuilt from it, as a load would (a nested or
-    renamed state)."""
+    renamed state). Tensors splice.json says a partial load left out are excused only if the file lacks them."""
     path = info.source_weights_path
-    # a partial load's left-out tensors kept the builder's initialisation: the file cannot speak for them
-    base_state = {k: v for k, v in base_state.items() if k not in set(info.source_not_loaded)}
+    claimed = set(info.source_not_loaded)
     if path is not None and Path(path).is_file():
         try:
             with warnings.catch_warnings():  # what a load strips was told when the folder was made
@@ -53,13 +67,24 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
                 read = strip_prefixes(read_weights(path), set(base_state))
         except (SpliceError, OSError, RuntimeError, ValueError):  # a pickle without trust, a folder: rebuild below
             read = None
-        names = [k for k in base_state if k.rsplit(".", 1)[-1] != "num_batches_tracked"]
-        if read is not None and all(k in read and read[k].shape == base_state[k].shape for k in names):
-            aligned = {k: read[k].to(base_state[k].dtype) for k in names}
-            diff = _tensor_diff({k: base_state[k] for k in names}, aligned)
-            # the file's state as a load gives it (a batch counter it lacks is the model's own)
-            return diff["changed"] == 0, f"read from '{path}'", diff, {**base_state, **aligned}
-    state, how = _source_state(info, input_shape, trust_code)
+        if read is not None:
+            fits = {k for k in base_state if k in read and read[k].shape == base_state[k].shape}
+            false = _claimed_but_given(info, fits)
+            if false is not None:
+                return False, f"read from '{path}'", false, None
+            names = [k for k in base_state if k.rsplit(".", 1)[-1] != "num_batches_tracked" and k not in claimed]
+            if all(k in fits for k in names):
+                aligned = {k: read[k].to(base_state[k].dtype) for k in names}
+                diff = _tensor_diff({k: base_state[k] for k in names}, aligned)
+                # the file's whole state as a load gives it, when it holds every tensor (batch counters included)
+                whole = None if claimed or set(base_state) - fits else {
+                    k: read[k].to(base_state[k].dtype) for k in base_state}
+                return diff["changed"] == 0, f"read from '{path}'", diff, whole
+    state, how, left = _source_state(info, input_shape, trust_code)
+    if state is not None:
+        false = _claimed_but_given(info, set(state) - set(left))
+        if false is not None:
+            return False, how, false, None
     if state is None and reference is not None:
         # the module a splice of a module object was made from, while it still hashes to the recorded source
         ref = dict(reference.state_dict())
@@ -67,8 +92,9 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
             state, how = ref, "compared with the module it was spliced from"
     if state is None:
         return None, how, None, None
-    diff = _tensor_diff(base_state, {k: v for k, v in state.items() if k not in set(info.source_not_loaded)})
-    return diff["changed"] == 0 and not diff["missing"], how, diff, state
+    base_state = {k: v for k, v in base_state.items() if k not in claimed}
+    diff = _tensor_diff(base_state, {k: v for k, v in state.items() if k not in claimed})
+    return diff["changed"] == 0 and not diff["missing"], how, diff, None if claimed else state
 
 
 def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Tensor]) -> dict:
@@ -107,6 +133,17 @@ def _partial(info: SpliceInfo) -> str:
             "(--allow-partial) left them at the builder's initialisation, and no file can vouch for them")
 
 
+def _false_claim(numbers: dict, diff: dict, how: str) -> CheckResult:
+    """The failed row for a record that says tensors were not loaded which the source gives."""
+    numbers["diff"] = diff
+    names = ", ".join(diff["falsely_not_loaded"][:4]) + (" …" if len(diff["falsely_not_loaded"]) > 4 else "")
+    return CheckResult("provenance", False, numbers,
+                       f"splice.json says {names} did not come from the source checkpoint (a partial load), but the "
+                       f"source gives {'it' if len(diff['falsely_not_loaded']) == 1 else 'them'} in the model's "
+                       f"shape ({how}): the record was edited — re-create the folder from the source with "
+                       "'splice insert'", "record edited")
+
+
 def _code_changed(info: SpliceInfo) -> CheckResult | None:
     """A failed row when the model file the base is built from is not the one that was spliced, else ``None``:
     the base and the splice would both be rebuilt from the new code, and equal each other, yet not the model
@@ -143,6 +180,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         # the hashes are splice.json's, written with the folder: the source file itself, when it is on disk, says
         # whether the base is still its weights
         same, how, diff, _ = _against_file(info, base_state, input_shape, trust_code)
+        if diff is not None and diff.get("falsely_not_loaded"):
+            return _false_claim(numbers, diff, how)
         if same is False:
             numbers["diff"] = diff
             return CheckResult("provenance", False, numbers,
@@ -162,6 +201,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                            f"{how}){note}{left}", f"sha256 {actual[:12]}… = source",
                            warning="partial load" if left else "")
     _, how, diff, state = _against_file(info, base_state, input_shape, trust_code, reference)
+    if diff is not None and diff.get("falsely_not_loaded"):
+        return _false_claim(numbers, diff, how)
     if diff is not None:
         numbers["diff"] = diff
         if state is not None and state_dict_sha256(state) != source:
@@ -179,8 +220,9 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                                f"only the base's buffers moved while {recipe!r} tuned it (recorded in splice.json): "
                                f"its forward updates them as it runs; {differs}; {how}", "base buffers moved (recorded)")
         return CheckResult("provenance", True, numbers,
-                           f"the base was tuned as well (recipe {recipe!r}, recorded in splice.json): {differs}; {how}",
-                           "base tuned (recorded)")
+                           f"the base was tuned as well (recipe {recipe!r}, recorded in splice.json): {differs}; "
+                           f"{how}{_partial(info)}", "base tuned (recorded)",
+                           warning="partial load" if info.source_not_loaded else "")
     if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
         return CheckResult("provenance", False, numbers,
                            f"{differs}, and no tuning of the base is recorded; {how}. Only buffers differ: a forward "
