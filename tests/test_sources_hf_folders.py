@@ -115,3 +115,33 @@ def test_transformers_errors_reach_the_user_without_terminal_codes(folder, monke
         load_source(str(folder), input_shape="3x32x32")
     assert "(RuntimeError: the file is odd. see above); re-save the model with save_pretrained" in str(caught.value)
     assert "\x1b" not in str(caught.value) and "--allow-partial" not in str(caught.value)
+
+
+@pytest.mark.parametrize("settings", [
+    {},  # include_top: the processor divides by the std a second time
+    {"include_top": False},
+    {"rescale_factor": 1 / 127.5, "rescale_offset": True},  # [-1, 1] pixels
+    {"rescale_offset": True, "do_normalize": False},
+])
+def test_an_efficientnet_folder_is_prepared_as_its_image_processor_prepares_it(folder, settings):
+    # reference: transformers' own EfficientNetImageProcessor (include_top and rescale_offset are its own steps)
+    import numpy as np
+    from transformers import EfficientNetImageProcessor
+
+    from splice.data import normalise
+
+    processor = EfficientNetImageProcessor(size={"height": 32, "width": 32}, do_center_crop=False, **settings)
+    processor.save_pretrained(folder)
+    image = np.random.default_rng(1).integers(0, 256, (32, 32, 3), dtype=np.uint8)
+    reference = processor(images=image, return_tensors="pt")["pixel_values"][0]
+    src = load_source(str(folder))
+    fed = normalise(torch.from_numpy(image).permute(2, 0, 1).float() / 255, src.normalisation)
+    assert torch.allclose(fed, reference.float(), rtol=1e-5, atol=1e-4), float((fed - reference).abs().max())
+
+
+def test_a_processor_that_flips_channels_is_flagged(folder):
+    from transformers import MobileViTImageProcessor
+
+    MobileViTImageProcessor(size={"shortest_edge": 32}, crop_size={"height": 32, "width": 32}).save_pretrained(folder)
+    with pytest.warns(NormalisationWarning, match="BGR"):
+        load_source(str(folder))

@@ -31,7 +31,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from ..errors import SourceError, SpliceWarning, WeightsError, first_line
+from ..errors import NormalisationWarning, SourceError, SpliceWarning, WeightsError, first_line
 from ..fileio import read_json
 from .specs import per_channel, positive_int
 from .timm import REFUSED_TIMM_KWARGS
@@ -295,24 +295,35 @@ def _numbers(value: Any) -> bool:
 
 
 def _normalisation(pre: Mapping, path: Path) -> tuple[dict | None, bool]:
-    """The normalisation of [0, 1] pixels that gives what an image processor feeds the model: ``pixels *
-    rescale_factor`` (when ``do_rescale``; 1 otherwise, 0-255 pixels), then ``(x - image_mean) / image_std`` (when
-    ``do_normalize``). With ``s = 255 * rescale_factor`` that is ``(p - mean / s) / (std / s)`` for ``p`` in [0, 1].
-    ``None`` for [0, 1] pixels as they are; ``(None, False)`` for a processor that names no mean and std (its
-    class's defaults apply, unknown here)."""
+    """The normalisation of [0, 1] pixels that gives what an image processor feeds the model.
+
+    An image processor takes 0-255 pixels ``v``: ``r = v * rescale_factor`` (when ``do_rescale``; ``v`` otherwise),
+    less 1 with ``rescale_offset`` (EfficientNet's, for [-1, 1]); then ``(r - image_mean) / image_std`` (when
+    ``do_normalize``), divided by ``image_std`` once more with ``include_top`` (EfficientNet's). Each step is
+    affine per channel, so with ``s = 255 * rescale_factor`` the whole is ``(p - mean') / std'`` for ``p`` in
+    [0, 1]: ``mean' = (m + offset) / s`` and ``std' = d / s``, where ``(m, d)`` are the processor's mean and std
+    (``(0, 1)`` without ``do_normalize``) and ``d`` takes the extra ``image_std`` factor. ``None`` for [0, 1]
+    pixels as they are; ``(None, False)`` for a processor that names no mean and std (its class's defaults apply,
+    unknown here)."""
     factor = pre.get("rescale_factor", 1 / 255) if pre.get("do_rescale", True) is not False else 1.0
     if isinstance(factor, bool) or not isinstance(factor, (int, float)) or not 0 < factor < float("inf"):
         raise SourceError(f"'{path}': rescale_factor {factor!r} is not a positive number; re-save the image "
                           "processor with save_pretrained")
     mean, std = pre.get("image_mean"), pre.get("image_std")
-    if pre.get("do_normalize", True) is False:
+    top = bool(pre.get("include_top"))
+    if pre.get("do_normalize", True) is False and not top:
         mean, std = [0.0], [1.0]
     elif not (_numbers(mean) and _numbers(std)):
         return None, False
+    elif pre.get("do_normalize", True) is False:  # only include_top's division by the std, below
+        mean, std = [0.0] * len(std), [1.0] * len(std)
+    if top:
+        std = [float(d) * float(t) for d, t in zip(std, pre["image_std"])]
+    offset = 1.0 if pre.get("rescale_offset") and pre.get("do_rescale", True) is not False else 0.0
     scale = 255.0 * float(factor)
-    if abs(scale - 1.0) < 1e-6 and mean == [0.0] and std == [1.0]:
+    if abs(scale - 1.0) < 1e-6 and not offset and mean == [0.0] and std == [1.0]:
         return None, True
-    return {"mean": [float(x) / scale for x in mean], "std": [float(x) / scale for x in std]}, True
+    return {"mean": [(float(x) + offset) / scale for x in mean], "std": [float(x) / scale for x in std]}, True
 
 
 def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None, bool]:
@@ -323,6 +334,10 @@ def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None, b
         return None, None, False
     pre = _read_json(path)
     norm, declares = _normalisation(pre, path)
+    if pre.get("do_flip_channel_order"):
+        warnings.warn(f"'{path}' flips images to BGR channel order before the model sees them; splice feeds RGB "
+                      "images, so eval, tune and verify --images show the model its channels swapped: save the "
+                      "model's images as BGR files, or fine-tune it on RGB", NormalisationWarning, stacklevel=4)
     size = pre.get("crop_size") if pre.get("do_center_crop") else pre.get("size")
     if isinstance(size, Mapping) and isinstance(size.get("height"), int) and isinstance(size.get("width"), int):
         return (size["height"], size["width"]), norm, declares
