@@ -154,7 +154,8 @@ def _cmd_insert(args) -> int:
         out.print(f"spliced {p.warp.family} warp at {p.name} ({'x'.join(map(str, p.shape))})")
     out.print(_MECHANISMS[info.mechanism] + (f", within {info.within}" if info.within else ""))
     if check:
-        out.print(f"identity check: {'passed' if check['passed'] else 'FAILED (kept with --force)'} — {check['detail']}")
+        verdict = "passed" if check["passed"] else "FAILED (kept with --force)"
+        out.print(f"identity check: {verdict} — {check['detail']}")
     # a spec no registry lists is code a folder names: verifying the folder rebuilds it only with the opt-in
     trust = " --trust-code" if info.spec != MODULE_SPEC and registry_kind_of(info.spec, info.kwargs) is None else ""
     out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}{trust}")
@@ -269,7 +270,8 @@ def _parser_insert(sub) -> None:
                    help="translation, attention, similarity, affine (default), projective or tps")
     p.add_argument("--loc-from", metavar="NAME", help="point the localisation head reads (default: the warped tensor)")
     p.add_argument("--sampler", choices=("bilinear", "nearest", "bicubic"), help="interpolation (default bilinear)")
-    p.add_argument("--padding", choices=("zeros", "border", "reflection"), help="outside-the-image values (default zeros)")
+    p.add_argument("--padding", choices=("zeros", "border", "reflection"),
+                   help="outside-the-image values (default zeros)")
     p.add_argument("--head-width", type=int, metavar="N", help="localisation head width (default 16)")
     p.add_argument("--tps-k", type=int, metavar="K", help="thin-plate spline control grid size KxK (default 4)")
     p.add_argument("--out", required=True, metavar="DIR", help="folder to write")
@@ -367,7 +369,8 @@ def _parser_eval(sub) -> None:
     p.add_argument("--against-trust-pickle", action="store_true",
                    help="allow unpickling MODEL2's files (--trust-pickle is for MODEL alone)")
     p.add_argument("--distort", metavar="SPEC",
-                   help="sweeps, e.g. 'rotate=0,15,30;scale=0.8,1.2;shift=0.1;perspective=0.2' (default: a standard sweep)")
+                   help="sweeps, e.g. 'rotate=0,15,30;scale=0.8,1.2;shift=0.1;perspective=0.2' "
+                        "(default: a standard sweep)")
     p.add_argument("--batch-size", type=int, default=128, help="images per forward pass (default 128)")
     p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
     p.add_argument("--device", help="cuda, mps or cpu")

@@ -244,7 +244,8 @@ def bitwise_equal(a: torch.Tensor, b: torch.Tensor) -> bool:
 
 
 def changed_buffers(before: Mapping[str, torch.Tensor], model: nn.Module) -> list[str]:
-    """Names of the buffers of ``model`` that differ from ``before`` (a :func:`buffer_snapshot`), or appeared/vanished."""
+    """Names of the buffers of ``model`` that differ from ``before`` (a :func:`buffer_snapshot`), or that appeared
+    or vanished."""
     now = dict(model.named_buffers(remove_duplicate=False))
     names = set(before) | set(now)
     return sorted(k for k in names if k not in before or k not in now or not bitwise_equal(before[k], now[k]))

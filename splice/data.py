@@ -127,7 +127,8 @@ class ImageSet(Dataset):
                 or self.labels.dtype != torch.long:
             raise ValueError(
                 f"ImageSet.labels must be a LongTensor with one label per image ({self.images.shape[0]}); "
-                f"got {getattr(self.labels, 'dtype', type(self.labels))} of shape {tuple(getattr(self.labels, 'shape', ()))}"
+                f"got {getattr(self.labels, 'dtype', type(self.labels))} of shape "
+                f"{tuple(getattr(self.labels, 'shape', ()))}"
             )
         if len(self.labels) and not 0 <= int(self.labels.min()) <= int(self.labels.max()) < len(self.classes):
             raise ValueError(f"ImageSet.labels must lie in [0, {len(self.classes)}) for classes {self.classes}")

@@ -359,7 +359,8 @@ def _report_label_free(lf: dict) -> list[str]:
     return ["", f"The label-free run estimated the site's motion from its images: rotation ±{r['rotation']:.0f}°, "
                 f"scale {r['scale'][0]:.2f}–{r['scale'][1]:.2f}, shift ±{r['shift']:.2f} (true: ±60°, 0.8–1.2, "
                 f"±0.25). On the site images, base → adapted: mean confidence {b['confidence']:.2f} → "
-                f"{a['confidence']:.2f}, agreement under random re-warps {b['agreement']:.2f} → {a['agreement']:.2f}."]
+                f"{a['confidence']:.2f}, agreement under random re-warps {b['agreement']:.2f} → "
+                f"{a['agreement']:.2f}."]
 
 
 def _report_splice(summary: dict, pts) -> list[str]:

@@ -197,7 +197,8 @@ def _listing(folder: Path, n: int = 4) -> str:
 
 
 def check_replaceable(target: str | os.PathLike) -> None:
-    """Raise unless ``target`` may be replaced by ``--overwrite``: absent, empty, or a folder splice wrote, not in use."""
+    """Raise unless ``target`` may be replaced by ``--overwrite``: absent, empty, or a folder splice wrote, not in
+    use."""
     target = Path(target)
     if not target.exists() and not target.is_symlink():
         return

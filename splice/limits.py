@@ -102,7 +102,8 @@ def check_fits(nbytes: int, what: str, fix: str) -> None:
 
 
 def max_image_pixels() -> int:
-    """The pixel cap in force: :func:`image_pixel_cap`, else ``SPLICE_MAX_IMAGE_PIXELS``, else :data:`MAX_IMAGE_PIXELS`."""
+    """The pixel cap in force: :func:`image_pixel_cap`, else ``SPLICE_MAX_IMAGE_PIXELS``, else
+    :data:`MAX_IMAGE_PIXELS`."""
     cap = _PIXEL_CAP.get()
     if cap is not None:
         return cap

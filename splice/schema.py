@@ -28,7 +28,8 @@ WEIGHTS_NAME = "weights.safetensors"
 
 def shape_ok(v: Any) -> bool:
     """A JSON ``[C, H, W]`` of positive integers."""
-    return isinstance(v, list) and len(v) == 3 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0 for d in v)
+    return isinstance(v, list) and len(v) == 3 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0
+                                                       for d in v)
 
 
 def _number(x: Any) -> bool:
@@ -169,7 +170,8 @@ def record_problems(record: dict) -> list[str]:
 def validate_manifest(data: Any, where: str = MANIFEST_NAME) -> dict:
     """Check a parsed ``splice.json``; raise :class:`ManifestError` naming every violation."""
     if not isinstance(data, dict):
-        raise ManifestError(f"{where} must hold a JSON object, found {type(data).__name__}; re-create the folder with 'splice insert'")
+        raise ManifestError(f"{where} must hold a JSON object, found {type(data).__name__}; re-create the folder "
+                            "with 'splice insert'")
     problems = _problems(data, _FILE_CHECKS)
     if problems:
         raise ManifestError(

@@ -15,6 +15,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1] / "splice"
 MAX_FILE_LINES = 500
 MAX_FUNCTION_LINES = 80
+MAX_LINE_LENGTH = 120  # DEVELOPERS.md and ../shared/STYLE.md
 
 # DEVELOPERS.md "Layers": the first dotted part under splice -> floor
 FLOORS = {
@@ -192,6 +193,12 @@ def test_every_module_has_a_floor():
 def test_file_size(path):
     lines = len(path.read_text(encoding="utf-8").splitlines())
     assert lines <= MAX_FILE_LINES, f"{path.name} has {lines} lines (limit {MAX_FILE_LINES}); split it by concern"
+
+
+def test_line_length():
+    long = [f"{path.relative_to(ROOT.parent)}:{i}" for path in MODULES.values()
+            for i, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1) if len(line) > MAX_LINE_LENGTH]
+    assert not long, f"lines over {MAX_LINE_LENGTH} characters: " + ", ".join(long)
 
 
 def test_function_size():

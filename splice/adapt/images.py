@@ -27,7 +27,8 @@ from torch import Tensor
 
 from ..errors import DataError
 
-__all__ = ["MEMORY_LIMIT", "Images", "TensorImages", "FileImages", "SubsetImages", "open_images", "image_files", "split_off"]
+__all__ = ["MEMORY_LIMIT", "Images", "TensorImages", "FileImages", "SubsetImages", "open_images", "image_files",
+           "split_off"]
 
 
 # Folders up to this many bytes of float32 pixels are held in memory (common practice, no source).

@@ -61,7 +61,8 @@ def check_reference_size(n: int, holdout: float) -> None:
     if held < MIN_HELD_OUT:
         need = next(k for k in range(MIN_HELD_OUT, 100 * MIN_HELD_OUT) if round(holdout * k) >= MIN_HELD_OUT)
         raise DataError(f"the reference has {n} image{'s' if n != 1 else ''}; estimating the site's ranges holds out "
-                        f"{holdout:.0%} of them and needs {MIN_HELD_OUT} held out, so at least {need} reference images. "
+                        f"{holdout:.0%} of them and needs {MIN_HELD_OUT} held out, so at least {need} reference "
+                        "images. "
                         "Add reference images, or set [site] estimate = false to pre-train within the recipe's "
                         "ranges as typed")
 
@@ -97,7 +98,8 @@ def estimate_ranges(probe: ProbeNet, site: Images, held: Images, *, outer: Range
     few hundred fix the statistics to about a percent; common practice, no source).
     """
     probe.eval()
-    reference = torch.cat([held.batch(chunk) for chunk in torch.arange(min(len(held), max_simulated)).split(batch_size)])
+    chunks = torch.arange(min(len(held), max_simulated)).split(batch_size)
+    reference = torch.cat([held.batch(chunk) for chunk in chunks])
 
     def read(images: Tensor) -> Tensor:
         return probe.matrices(prepare(images))

@@ -71,7 +71,8 @@ def near_identity(spec: DistortionRange, share: float) -> Draw:
 
 def regression_loss(model: nn.Module, warps: Mapping[str, nn.Module], order: list[str], x: Tensor,
                     matrix: Tensor) -> Tensor:
-    """The grid loss of every warp on prepared images ``x``: the first in ``order`` learns ``matrix``, the rest the identity."""
+    """The grid loss of every warp on prepared images ``x``: the first in ``order`` learns ``matrix``, the rest the
+    identity."""
     captured, _ = warp_inputs(model, warps, x, stop_after=order[-1])
     return sum(grid_loss(warps[name], captured[name], matrix if name == order[0] else None) for name in order)
 

@@ -187,7 +187,8 @@ def run_label_free(run: AdaptRun) -> dict[str, Any]:
         if phase == "start":
             if run.ctx.is_main:
                 truncate_metrics(run.run_dir, 0)
-            ref = f"; reference {run.info.get('reference')}: {len(run.reference):,}" if run.reference is not None else ""
+            ref = (f"; reference {run.info.get('reference')}: {len(run.reference):,}"
+                   if run.reference is not None else "")
             run.bar.line(f"site {run.info['data']}: {len(run.site):,} images{ref}")
             row(run, "start", 0, site=_diagnose(run, base_view(run.net, run.warps)))
             _estimate(run)

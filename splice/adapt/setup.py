@@ -80,7 +80,8 @@ def reference_for_site(rec: Recipe, site: str, override: str | None, trained_on:
 
 def _resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, site: str, overrides: RecipeOverrides,
              model_options: ModelOptions):
-    """:func:`splice.training.setup.resolve`, except that on resume an estimated ``[pretrain]`` range is not a change."""
+    """:func:`splice.training.setup.resolve`, except that on resume an estimated ``[pretrain]`` range is not a
+    change."""
     if info is not None and (recipe is not None or overrides.any_recipe_key):
         recorded = load_recipe(run_dir / RECIPE_FILE)
         given = load_recipe(recipe if recipe is not None else run_dir / RECIPE_FILE)

@@ -8,8 +8,10 @@ else, for a forward that needs real values, from a ``torch.export`` graph
 recorded by forward hooks during a meta-device forward pass, without a
 data-flow graph (only ``input`` is then marked as a cut). A point whose module
 is called more often for a bigger batch (a loop over the images of the batch)
-is left out: a hook counts calls, and would warp the first image only. Names come from module qualnames (dots become underscores,
-with ``_1``, ``_2`` for repeat calls) in both. Leaf modules (``--leaf``) run
+is left out: a hook counts calls, and would warp the first image only. Names
+come from module qualnames as fx names a module's call (dots become
+underscores, a leading digit gets ``_``, with ``_1``, ``_2`` for repeat calls)
+in both. Leaf modules (``--leaf``) run
 for real, alone, on zeros during the meta pass, so a module whose forward
 needs real values can be stepped over. If that forward fails as well,
 :class:`~splice.errors.GraphError` names the failing module and how to mark

@@ -66,7 +66,8 @@ def map_points(warp, theta: Tensor, points: Tensor) -> Tensor:
     if warp.family == "tps":
         control = grids.tps_control_points(warp.config.tps_k)
         offsets = theta.reshape(theta.shape[0], -1, 2)
-        return grids.tps_grid(base, grids.tps_weights(base, control), offsets, 1, pts.shape[0]).reshape(theta.shape[0], -1, 2)
+        grid = grids.tps_grid(base, grids.tps_weights(base, control), offsets, 1, pts.shape[0])
+        return grid.reshape(theta.shape[0], -1, 2)
     m = warp.matrix(theta)
     q = torch.matmul(base, m.transpose(1, 2))
     return q[..., :2] / grids.safe_denominator(q[..., 2:3])

@@ -64,7 +64,8 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
     w, h = size
     n = int(next(iter(desc.values())).shape[0])
     flipped = bool((desc["reflection"] > 0).any()) if "reflection" in desc else False
-    note = "Sampling side (output to input), pixels of the warped tensor; angles and axes centred on their circular mean. "
+    note = ("Sampling side (output to input), pixels of the warped tensor; angles and axes centred on their "
+            "circular mean. ")
     if flipped:
         note += ("Some images are flipped, and a flipped image's content turns by +angle (see view_rotation_deg), "
                  "so no axis of visible rotation is drawn.")

@@ -11,7 +11,8 @@ from torch import Tensor
 
 from .decompose import MATRIX_QUANTITIES, PROJECTIVE_QUANTITIES, TPS_QUANTITIES
 
-__all__ = ["SCHEMA_VERSION", "CSV_QUANTITIES", "ANGLE_QUANTITIES", "AXIS_QUANTITIES", "period_of", "circular_mean", "around_circular_mean",
+__all__ = ["SCHEMA_VERSION", "CSV_QUANTITIES", "ANGLE_QUANTITIES", "AXIS_QUANTITIES", "period_of", "circular_mean",
+           "around_circular_mean",
            "summarise", "csv_text", "render_inspect"]
 
 # one-line versions for the table on screen (summary.json carries QUANTITY_HELP)

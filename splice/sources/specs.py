@@ -66,7 +66,8 @@ def parse_input_shape(text: str | Sequence[int] | None) -> tuple[int, int, int] 
     dims = _dims(text)
     if dims is None:
         if _four_dims(text):
-            parts = [p for p in re.split(r"[x×,\s]+", text.strip().lower()) if p] if isinstance(text, str) else list(text)
+            parts = ([p for p in re.split(r"[x×,\s]+", text.strip().lower()) if p] if isinstance(text, str)
+                     else list(text))
             raise SourceError(f"input shape {text!r} has four dimensions; {_LATER}; if the first is the batch size, "
                               f"drop it: --input-shape {'x'.join(str(p) for p in parts[1:])}")
         raise SourceError(

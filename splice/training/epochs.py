@@ -21,7 +21,8 @@ from . import distributed
 from .checkpoint import set_rng_state
 from .head import confidently_wrong, final_layer, zero_final_layer_
 from .loop import Stepper, ThetaTap
-from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, set_modes, \
+from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, \
+    set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
 from .recording import checkpoint, diverged, evaluate_val, finish, record, stopped

@@ -12,7 +12,8 @@ from ..errors import RecipeError
 from ..recipes import Recipe
 from ..surgery import WARP_PREFIX
 
-__all__ = ["frozen_names", "frozen_modules", "frozen_by_model", "param_groups", "make_optimizer", "set_requires_grad", "set_modes",
+__all__ = ["frozen_names", "frozen_modules", "frozen_by_model", "param_groups", "make_optimizer", "set_requires_grad",
+           "set_modes",
            "grad_reducer", "is_warp_name"]
 
 

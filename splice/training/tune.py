@@ -59,7 +59,8 @@ from .epochs import train
 from .options import RecipeOverrides, RunOptions
 from .reference import data_record
 from .runfolder import RECIPE_FILE, prepare_folder, start_files, warn_other_data, write_run_info
-from .setup import gate_recorded_model, load_model, normalisation, open_splits, reference, reference_probe, resolve, run_info
+from .setup import (gate_recorded_model, load_model, normalisation, open_splits, reference, reference_probe, resolve,
+                    run_info)
 from .state import Run, TuneInterrupted
 
 __all__ = ["tune", "tune_keywords"]

@@ -218,7 +218,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
             return CheckResult("provenance", True, numbers,
                                f"only the base's buffers moved while {recipe!r} tuned it (recorded in splice.json): "
-                               f"its forward updates them as it runs; {differs}; {how}", "base buffers moved (recorded)")
+                               f"its forward updates them as it runs; {differs}; {how}",
+                               "base buffers moved (recorded)")
         return CheckResult("provenance", True, numbers,
                            f"the base was tuned as well (recipe {recipe!r}, recorded in splice.json): {differs}; "
                            f"{how}{_partial(info)}", "base tuned (recorded)",

@@ -41,7 +41,8 @@ def finite_row(state: Mapping[str, torch.Tensor], where: str) -> CheckResult:
     if not bad:
         return CheckResult("finite", True, numbers, f"all {len(state)} tensors are finite", f"{len(state)} tensors")
     return CheckResult("finite", False, numbers,
-                       f"{where} has NaN or Inf values in {len(bad)} tensor(s): {listed_names(bad, 6)}; the checkpoint is "
+                       f"{where} has NaN or Inf values in {len(bad)} tensor(s): {listed_names(bad, 6)}; the "
+                       "checkpoint is "
                        "damaged or diverged — use an earlier one", f"{len(bad)} non-finite")
 
 def shapes_row(probe: WarpProbe, warps, points: Mapping[str, Sequence[int]], ref_out, out,
