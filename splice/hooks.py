@@ -27,6 +27,7 @@ pickling carry them along, and the per-forward state is never copied.
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Mapping, Sequence
 
 import torch
@@ -41,14 +42,12 @@ WARP_PREFIX = "splice_warps"  # where every splice keeps its warps (splice.surge
 
 
 class _Scope:
-    """The shared, per-forward state of one spliced scope (never copied or pickled: it holds activations)."""
+    """The per-forward state of one spliced scope, one per thread (two threads may run one model at once, as they
+    may run any module in eval mode); never copied or pickled: it holds activations."""
 
     def __init__(self, root: nn.Module, within: str):
         self.root, self.within = root, within
-        self.calls: dict[int, int] = {}
-        self.seen: dict[str, torch.Tensor] = {}
-        self.active = False
-        self.current: nn.Module | None = None
+        self.local = threading.local()
 
     def __getstate__(self):
         return {"root": self.root, "within": self.within}
@@ -56,12 +55,21 @@ class _Scope:
     def __setstate__(self, state):
         self.__init__(state["root"], state["within"])
 
+    def mine(self) -> threading.local:
+        """This thread's state: ``calls`` (per module), ``seen`` (activations by point), ``active``, ``current``."""
+        st = self.local
+        if not hasattr(st, "calls"):
+            st.calls, st.seen, st.active, st.current = {}, {}, False, None
+        return st
+
     def warp(self, name: str) -> nn.Module:
-        holder = self.current if self.current is not None else self.root
+        current = self.mine().current
+        holder = current if current is not None else self.root
         return getattr(holder, WARP_PREFIX)[name]
 
     def clear(self) -> None:
-        self.calls, self.seen, self.active = {}, {}, False
+        st = self.mine()
+        st.calls, st.seen, st.active = {}, {}, False
 
 
 class _RootHook:
@@ -71,7 +79,7 @@ class _RootHook:
         self.scope = scope
 
     def __call__(self, module, args):
-        self.scope.current = module
+        self.scope.mine().current = module
 
 
 class _EnterHook:
@@ -81,16 +89,16 @@ class _EnterHook:
         self.scope, self.warp, self.loc = scope, warp, loc
 
     def __call__(self, module, args):
-        scope = self.scope
-        scope.calls, scope.seen, scope.active = {}, {}, True
+        st = self.scope.mine()
+        st.calls, st.seen, st.active = {}, {}, True
         if not args or not isinstance(args[0], torch.Tensor):
             return None
-        scope.seen["input"] = args[0]
+        st.seen["input"] = args[0]
         if self.warp is None:
             return None
-        warp = scope.warp(self.warp)
-        out = warp(args[0]) if self.loc is None else warp(args[0], scope.seen[self.loc])
-        scope.seen["input"] = out
+        warp = self.scope.warp(self.warp)
+        out = warp(args[0]) if self.loc is None else warp(args[0], st.seen[self.loc])
+        st.seen["input"] = out
         return (out, *args[1:])
 
 
@@ -112,11 +120,11 @@ class _SiteHook:
         self.scope, self.sites = scope, dict(sites)
 
     def __call__(self, module, args, output):
-        scope = self.scope
-        if not scope.active:
+        st = self.scope.mine()
+        if not st.active:
             return None
-        k = scope.calls.get(id(module), 0)
-        scope.calls[id(module)] = k + 1
+        k = st.calls.get(id(module), 0)
+        st.calls[id(module)] = k + 1
         site = self.sites.get(k)
         if site is None:
             return None
@@ -125,12 +133,12 @@ class _SiteHook:
             if not isinstance(output, torch.Tensor):
                 raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
                                    "not a tensor; re-create the splice at a point from 'splice points'")
-            if loc is not None and loc not in scope.seen:
+            if loc is not None and loc not in st.seen:
                 raise RuntimeError(f"splice: the localisation input {loc!r} of point {point!r} was not computed "
                                    "before it in this forward")
-            w = scope.warp(warp)
-            output = w(output) if loc is None else w(output, scope.seen[loc])
-        scope.seen[point] = output
+            w = self.scope.warp(warp)
+            output = w(output) if loc is None else w(output, st.seen[loc])
+        st.seen[point] = output
         return output
 
 

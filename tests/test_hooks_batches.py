@@ -193,3 +193,36 @@ def test_inputs_that_merge_keep_their_branches_and_say_why_nothing_is_recommende
     with pytest.raises(PointError, match=r"'input' is not a cut: its paths meet another input's at 'cat'\); "
                                          r"choose one with --at NAME \(cuts: cat, c1, relu\)"):
         splice.insert(_PairConcat(), at="recommended", input_shape=[(3, 16, 16), (3, 16, 16)])
+
+
+# ----------------------------------------------------------------------------- threads
+
+
+def test_two_threads_may_run_one_hooks_splice_at_once():
+    # a serving process runs one model from several threads; the hooks' per-forward state (call counts, the
+    # activations kept for localisation inputs) was shared, and one thread's forward reset the other's counts
+    import threading
+
+    from test_hooks import hooked
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # points that are not cuts: what matters is that each thread warps alike
+        spliced = insert(hooked(), at=["input", "block", "block_1"], input_shape=(3, 32, 32)).eval()
+    perturb_warps_(spliced, scale=0.2)
+    gen = torch.Generator().manual_seed(1)
+    xs = [torch.randn(4, 3, 32, 32, generator=gen) for _ in range(2)]
+    with torch.no_grad():
+        want = [spliced(x) for x in xs]
+    wrong = [0, 0]
+
+    def run(i):
+        with torch.no_grad():
+            for _ in range(25):
+                wrong[i] += not torch.equal(spliced(xs[i]), want[i])
+
+    threads = [threading.Thread(target=run, args=(i,)) for i in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert wrong == [0, 0]
