@@ -91,13 +91,18 @@ class _Timeline:
             h.remove()
 
 
-def _step_over_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule) -> None:
-    """Let every leaf of ``meta`` run its real twin on zeros (meta outputs back): ``--leaf`` reaches this pass."""
+def _step_over_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule) -> set[str]:
+    """Let every leaf of ``meta`` run its real twin on zeros (meta outputs back): ``--leaf`` reaches this pass.
+    Returns the qualnames of the modules inside the leaves, whose calls there go unseen (no site)."""
     real_modules = dict(real.named_modules())
+    names = {m: q for q, m in meta.named_modules()}
+    inside: set[str] = set()
     for q, m in meta.named_modules():
         if q and rule(type(m)) and not is_torch_builtin(type(m)):
             original = real_modules[q]
             m.forward = _real_forward(original)
+            inside.update(names[sub] for sub in m.modules() if sub is not m)
+    return inside
 
 
 def _real_forward(original: nn.Module) -> Callable:
@@ -116,7 +121,7 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
             f"cannot list points of {type(model).__name__}: {problem}, and copying it to the meta "
             f"device failed ({reason(exc)}); {todo}"
         ) from exc
-    _step_over_leaves(meta, model, rule)
+    inside = _step_over_leaves(meta, model, rule)
     timeline = _Timeline(meta)
     try:
         with torch.no_grad(), torch.device(META), ShapeRules():
@@ -129,6 +134,8 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
     last_conv_start = max(timeline.conv_starts, default=-math.inf)
     entries = [Entry("input", "", "input", input_shape, True, None, True)]
     for t, name, qualname, out_shape, k in timeline.records:
+        if qualname in inside:
+            continue
         entries.append(Entry(name, qualname, "activation", out_shape, False, None,
                               first_conv_end <= t < last_conv_start, (qualname, k)))
     return entries

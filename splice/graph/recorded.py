@@ -100,6 +100,9 @@ class _Recording(TorchFunctionMode):
         self.stack: list[str] = []
         # (qualname, call, start, end, the op that wrote the output when the call returned, or None)
         self.calls: list[tuple[str, int, int, int, int | None]] = []
+        # modules inside a leaf (a leaf runs for real, unseen): one called outside it too is counted here fewer
+        # times than a hook counts it at run time, so it is no site
+        self.in_leaves: set[str] = set()
 
     def source(self, t: torch.Tensor) -> int:
         return self._add("input", [], t, NCHW if t.dim() == 4 else None)
@@ -169,11 +172,13 @@ def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule, rec: _Recor
     Returns each patched module's own instance ``forward`` (``_NONE``: none), to put back after the run.
     """
     real_modules = dict(real.named_modules())
+    names = {m: q for q, m in meta.named_modules()}
     patched: dict[nn.Module, Any] = {}
     for q, m in meta.named_modules():
         if q and rule(type(m)) and not is_torch_builtin(type(m)):
             patched[m] = m.__dict__.get("forward", _NONE)
             m.forward = _leaf_forward(real_modules[q], type(m).__name__, rec)
+            rec.in_leaves.update(names[sub] for sub in m.modules() if sub is not m)
     return patched
 
 
@@ -193,7 +198,7 @@ def _sites(rec: _Recording) -> dict[int, tuple[str, int]]:
     found: dict[int, tuple[str, int]] = {}
     span: dict[int, int] = {}
     for qualname, k, start, end, i in rec.calls:
-        if i is None:
+        if i is None or qualname in rec.in_leaves:
             continue
         op = rec.ops[i]
         if not (start <= i < end) or any(u < end for u in op.users):
