@@ -402,3 +402,27 @@ def test_a_module_also_called_inside_a_leaf_is_no_point():
         names = [p.name for p in graph.points(_SharesWithALeaf(), (3, 16, 16), all=True, leaves=[_NeedsReal])]
     assert "act" not in names and "act_1" not in names
     assert {"stem", "c1", "mid", "c2"} <= set(names)
+
+
+class _Siamese(nn.Module):
+    """One image; the encoder sees it and its mirror image."""
+
+    def __init__(self):
+        super().__init__()
+        self.encoder = _Encoder()
+        self.fc = nn.Linear(8, 3)
+
+    def forward(self, x):
+        f = self.encoder(x) + self.encoder(x.flip(-1))
+        return self.fc(f.mean((2, 3)))
+
+
+def test_inspecting_a_warp_that_runs_twice_per_forward_is_refused():
+    # the capture kept the last call's theta (the mirror image's) and drew it on the image
+    from splice.errors import DataError
+    from splice.inspection import capture
+
+    torch.manual_seed(0)
+    spliced = _quiet_insert(_Siamese().eval(), at="input", within="encoder", input_shape=(3, 16, 16))
+    with pytest.raises(DataError, match="warp 'input' ran 2 times in one forward"):
+        capture(spliced, torch.rand(2, 3, 16, 16))

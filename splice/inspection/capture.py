@@ -54,6 +54,9 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
     thetas: dict[str, list[Tensor]] = {name: [] for name in warps}
     outputs: list[Tensor] = []
     single_tensor = True
+    runs = {name: 0 for name in warps}
+    handles = [w.register_forward_hook(lambda m, a, o, name=name: runs.__setitem__(name, runs[name] + 1))
+               for name, w in warps.items()]
     try:
         with modes_kept(model):
             model.eval()
@@ -62,7 +65,9 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
             with torch.no_grad():
                 for start in range(0, images.shape[0], batch_size):
                     x = normalise(images[start:start + batch_size], normalisation).to(device=device, dtype=dtype)
+                    runs.update(dict.fromkeys(runs, 0))
                     out = class_logits(model(x))
+                    _check_one_call(runs)
                     for name, w in warps.items():
                         thetas[name].append(w.last_theta.to("cpu", torch.float64))
                     if isinstance(out, Tensor) and out.dim() == 2:
@@ -70,12 +75,27 @@ def capture(model: nn.Module, images: Tensor, *, normalisation: Mapping | None =
                     else:
                         single_tensor = False
     finally:
+        for h in handles:
+            h.remove()
         for name, w in warps.items():
             w.record, w.last_theta = was_recording[name]
     return Capture(
         thetas={name: torch.cat(parts) for name, parts in thetas.items()},
         logits=torch.cat(outputs) if single_tensor and outputs else None,
     )
+
+
+def _check_one_call(runs: Mapping[str, int]) -> None:
+    """Refuse a warp that ran other than once in a forward: the capture keeps one ``theta`` per image."""
+    odd = {name: n for name, n in runs.items() if n != 1}
+    if odd:
+        name, n = next(iter(odd.items()))
+        if n == 0:
+            raise DataError(f"warp {name!r} did not run in a forward on these images (its point is not reached at "
+                            "this input size); inspect the model on images of the size it was spliced at")
+        raise DataError(f"warp {name!r} ran {n} times in one forward (its module is called {n} times, as a module "
+                        "spliced --within and called on several inputs is); inspection describes one warp per image, "
+                        "so it cannot tell which call it would draw: inspect a splice whose warps run once")
 
 
 def check_positive_int(name: str, value) -> int:
