@@ -302,3 +302,14 @@ def test_provenance_of_an_in_memory_splice_that_ran_names_the_buffers_its_forwar
     assert row.numbers["diff"]["names"] == ["calls", "mean"] and row.numbers["diff"]["max_abs_diff"] == 1.0
     assert "compared with the module it was spliced from" in row.detail and "edited" not in row.detail
     assert int(base.calls) == 0  # the caller's module never ran
+
+
+def test_a_fresh_splice_of_a_module_object_verifies_against_it_without_a_warning():
+    # no source file: the row compares with the module the splice was made from (it warned "only hashes compared")
+    torch.manual_seed(0)
+    base = _Counting().eval()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        spliced = splice.insert(base, at="input", input_shape=(3, 16, 16))
+        row = splice.verify(spliced)["provenance"]
+    assert row.passed and not row.warning and "compared with the module it was spliced from" in row.detail

@@ -179,7 +179,7 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
     if source == actual and not stale:
         # the hashes are splice.json's, written with the folder: the source file itself, when it is on disk, says
         # whether the base is still its weights
-        same, how, diff, _ = _against_file(info, base_state, input_shape, trust_code)
+        same, how, diff, _ = _against_file(info, base_state, input_shape, trust_code, reference)
         if diff is not None and diff.get("falsely_not_loaded"):
             return _false_claim(numbers, diff, how)
         if same is False:
@@ -198,7 +198,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
                                "only splice.json's hashes compared" + (", partial load" if left else ""))
         return CheckResult("provenance", True, numbers,
                            f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
-                           f"{how}){note}{left}", f"sha256 {actual[:12]}… = source",
+                           f"{how}){note}{left}",
+                           f"sha256 {actual[:12]}… = source" + (" (partial load)" if left else ""),
                            warning="partial load" if left else "")
     _, how, diff, state = _against_file(info, base_state, input_shape, trust_code, reference)
     if diff is not None and diff.get("falsely_not_loaded"):
@@ -208,7 +209,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         if state is not None and state_dict_sha256(state) != source:
             how += " (that file no longer hashes to the recorded source hash: it changed since the splice)"
         how += f": {_told(diff)}"
-    differs = (f"base weights (sha256 {actual[:12]}…) differ from the source checkpoint (sha256 {source[:12]}…)"
+    what = "the source checkpoint" if info.source_weights_path is not None else "the source"
+    differs = (f"base weights (sha256 {actual[:12]}…) differ from {what} (sha256 {source[:12]}…)"
                if source != actual else
                f"the base weights' sha256 {actual[:12]}… differs from the one recorded at save time "
                f"({recorded_base[:12]}…)")
