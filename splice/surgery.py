@@ -82,7 +82,7 @@ def _resolve_points(requested: Sequence[str], listing: Sequence, gm: fx.GraphMod
                         "pick one listed by 'splice points MODEL --all'"
                     )
                 raise PointError(
-                    f"unknown point {name!r}{suggest(name, list(by_name))} "
+                    f"unknown point {name!r}{suggest(name, list(by_name)) or ';'} "
                     "Run 'splice points MODEL' to list them."
                 )
             if name in names:
