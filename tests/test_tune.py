@@ -513,3 +513,16 @@ def test_warp_only_on_a_model_that_counts_its_calls_records_that_only_buffers_mo
     row = splice.verify(out / "last", trust_code=True)["provenance"]
     assert row.passed and row.summary == "base buffers moved (recorded)"
     assert row.numbers["diff"]["names"] == ["calls"] and "'warp-only'" in row.detail
+
+
+def test_warp_only_after_joint_is_certified_as_both(tmp_path, spliced):
+    # the warp-only run recorded base_changed False (its own start) and forgot the joint run, so verify said the
+    # base "was edited after splicing"; the record now compares with the source and keeps the tuning before it
+    tune_keywords(str(spliced), recipe=_recipe("joint", epochs=1), data="digits-moved", out=tmp_path / "j", **QUIET)
+    summary = tune_keywords(str(tmp_path / "j" / "last"), recipe=_recipe("warp-only", epochs=1), data="digits-moved",
+                            out=tmp_path / "w", **QUIET)
+    assert summary["base_changed"] is True
+    tuning = json.loads((tmp_path / "w" / "last" / "splice.json").read_text())["tuning"]
+    assert tuning["mode"] == "warp-only" and tuning["before"]["mode"] == "joint"
+    row = splice.verify(tmp_path / "w" / "last")["provenance"]
+    assert row.passed and "'warp-only' after 'joint'" in row.detail

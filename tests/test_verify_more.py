@@ -91,12 +91,40 @@ def test_joint_tuning_declares_and_compares_base(tray_spliced, tmp_path):
     report = verify(folder)
     assert report.passed, report.failed
     row = report["provenance"]
-    assert "recipe 'joint'" in row.detail and "changed since the splice" not in row.detail
-    assert row.numbers["diff"]["largest"][0]["name"] == "fc.bias"
-    assert row.numbers["diff"]["max_abs_diff"] == pytest.approx(0.5, rel=1e-6)
+    assert "tuned as well ('joint'" in row.detail and "changed since the splice" not in row.detail
+    diff = row.numbers["diff"]
+    assert "fc.bias" in diff["names"] and all(n == "fc.bias" or n.endswith("num_batches_tracked")
+                                              for n in diff["names"])
+    assert {d["name"]: d["max_abs_diff"] for d in diff["largest"]}["fc.bias"] == pytest.approx(0.5, rel=1e-6)
     # the same change without the declaration fails
     undeclared = store.save(moved, tmp_path / "undeclared", tuning={"recipe": "warp-only", "base_changed": False})
     assert verify(undeclared).failed == ["provenance"]
+    # and a record that declares it under a recipe that never moves a base's parameters contradicts itself
+    frozen = store.save(moved, tmp_path / "frozen", tuning={"recipe": "warp-only", "mode": "warp-only",
+                                                            "base_changed": True})
+    row = verify(frozen)["provenance"]
+    assert not row.passed and row.summary == "tuning record contradicted"
+    # a chain of tunings: warp-only after joint (each record keeps the one before it)
+    chained = store.save(moved, tmp_path / "chained", tuning={
+        "recipe": "warp-only", "mode": "warp-only", "base_changed": True,
+        "before": {"recipe": "joint", "mode": "joint", "base_changed": True}})
+    row = verify(chained)["provenance"]
+    assert row.passed and "'warp-only' after 'joint'" in row.detail
+
+
+def test_a_changed_batch_counter_is_a_changed_tensor(tray_spliced, tmp_path, source_weights):
+    # the source file holds its batch counters: they are compared (they were skipped, so an edited counter was
+    # certified bitwise equal); a file without them leaves the model's own
+    edited = _clone(tray_spliced)
+    name = next(n for n, _ in edited.named_buffers() if n.endswith("num_batches_tracked"))
+    with torch.no_grad():
+        edited.get_buffer(name).fill_(12345)
+    folder = store.save(edited, tmp_path / "nbt")
+    data = json.loads((folder / "splice.json").read_text())
+    data["source"]["weights_sha256"] = data["weights"]["base_sha256"]
+    (folder / "splice.json").write_text(json.dumps(data))
+    row = verify(folder)["provenance"]
+    assert not row.passed and row.numbers["diff"]["names"] == [name]
 
 
 # ----------------------------------------------------------------------------- the in-memory API
@@ -485,3 +513,57 @@ def test_verify_reads_a_prefixed_checkpoint_again_without_repeating_the_load_war
         warnings.simplefilter("error")
         row = verify(folder)["provenance"]
     assert row.passed and not row.warning and f"read from '{ckpt}'" in row.detail
+
+
+def test_a_folder_spliced_again_by_a_relative_path_is_recorded_absolutely(tray_spliced, tmp_path, monkeypatch):
+    # a plain tuned folder named relative to the working directory was recorded relative to it, and verify run
+    # elsewhere said the source file was "no longer on disk" (only hashes compared)
+    src = splice.load_source(TRAY, kwargs=SMALL)
+    plain = store.save(src.model, tmp_path / "plain", source=src)
+    monkeypatch.chdir(tmp_path)
+    folder = splice.save(splice.insert("plain", at="input"), tmp_path / "again")
+    assert Path(json.loads((folder / "splice.json").read_text())["source"]["weights_file"]).is_absolute()
+    monkeypatch.chdir("/")
+    row = verify(folder)["provenance"]
+    assert row.passed and not row.warning and str(plain) in row.detail
+
+
+def test_verify_trust_pickle_reaches_the_provenance_row(tmp_path):
+    # a whole-model pickle as the source: the row could not read it ("pass --trust-pickle", already passed) and
+    # fell back to splice.json's hashes, so an edit with the hashes rewritten passed with a warning
+    from splice.models import tray_net
+
+    torch.manual_seed(0)
+    torch.save(tray_net(**SMALL), tmp_path / "whole.pt")
+    src = splice.load_source(str(tmp_path / "whole.pt"), trust_pickle=True, input_shape=(1, 48, 48))
+    folder = splice.save(splice.insert(src, at="input"), tmp_path / "sp")
+    row = verify(folder, trust_pickle=True, trust_code=True)["provenance"]
+    assert row.passed and not row.warning and "read from" in row.detail
+    state = load_file(str(folder / "weights.safetensors"))
+    name = next(k for k in state if k.endswith("fc.weight"))
+    state[name] = -state[name]
+    save_file(state, str(folder / "weights.safetensors"))
+    data = json.loads((folder / "splice.json").read_text())
+    data["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
+    data["weights"]["base_sha256"] = data["source"]["weights_sha256"] = state_dict_sha256(
+        state, prefix_exclude="splice_warps.")
+    (folder / "splice.json").write_text(json.dumps(data))
+    assert not verify(folder, trust_pickle=True, trust_code=True)["provenance"].passed
+
+
+def test_a_checkpoint_overwritten_after_the_splice_is_not_blamed_on_the_folder(tmp_path):
+    # training went on and overwrote the checkpoint in place; the folder is untouched. The row said "the folder
+    # was edited after splicing"; it now names both things that could have happened
+    from splice.models import tray_net
+
+    torch.manual_seed(0)
+    ckpt = tmp_path / "best.pt"
+    torch.save(tray_net(**SMALL).state_dict(), ckpt)
+    folder = splice.save(splice.insert(splice.load_source(TRAY, weights=ckpt, kwargs=SMALL), at="input"),
+                         tmp_path / "sp")
+    state = torch.load(ckpt)
+    state["fc.bias"] = state["fc.bias"] + 0.1
+    torch.save(state, ckpt)
+    row = verify(folder)["provenance"]
+    assert not row.passed and row.summary == "base differs from source"
+    assert "either the checkpoint changed since the splice" in row.detail and "or the folder was edited" in row.detail

@@ -35,9 +35,14 @@ RANGES_FILE = "ranges.json"
 
 
 def base_changed(run: AdaptRun) -> bool:
-    """Whether the base's tensors differ from the start of the run (never, for these recipes)."""
-    base = {k: v for k, v in run.net.state_dict().items() if not is_warp_name(k)}
-    return state_dict_sha256(base) != run.info["base_sha256_start"]
+    """Whether the base's tensors differ from the start of the run (label-free never moves them, batchnorm-stats
+    only its statistics), or from the source its record names (a folder tuned before)."""
+    from ..manifest import info_of
+
+    now = state_dict_sha256({k: v for k, v in run.net.state_dict().items() if not is_warp_name(k)})
+    info = info_of(run.net)
+    source = info.source_weights_sha256 if info is not None else None
+    return now != run.info["base_sha256_start"] or (source is not None and now != source)
 
 
 def row(run: AdaptRun, phase: str, epoch: int, *, site: dict | None, loss=None, extra: dict | None = None) -> dict:
@@ -61,10 +66,14 @@ def row(run: AdaptRun, phase: str, epoch: int, *, site: dict | None, loss=None, 
 
 
 def _tuning(run: AdaptRun, which: str, epoch: int, score: float | None) -> dict:
+    from ..manifest import info_of
+
+    info = info_of(run.net)
+    before = info.tuning if info is not None else None
     return {"recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
             "val_accuracy": None, "site_agreement": score, "data": run.info["data"],
             "reference": run.info.get("reference"), "seed": run.rec.seed, "base_changed": base_changed(run),
-            "run": str(run.run_dir)}
+            "run": str(run.run_dir), **({"before": before} if before else {})}
 
 
 def save_folder(run: AdaptRun, which: str, epoch: int, score: float | None) -> None:

@@ -78,15 +78,22 @@ def _reference_distance(run: Run) -> dict[str, float] | None:
 
 
 def _base_changed(run: Run) -> bool:
-    base = {k: v for k, v in unwrap(run.net_wrapped).state_dict().items() if not is_warp_name(k)}
-    return state_dict_sha256(base) != run.info["base_sha256_start"]
+    """Whether the base differs from the start of this run, or from the source its record names (a folder tuned
+    before: a warp-only run of a joint-tuned folder leaves a base that is not its source's)."""
+    model = unwrap(run.net_wrapped)
+    now = state_dict_sha256({k: v for k, v in model.state_dict().items() if not is_warp_name(k)})
+    info = info_of(model)
+    source = info.source_weights_sha256 if info is not None else None
+    return now != run.info["base_sha256_start"] or (source is not None and now != source)
 
 
 def _tuning(run: Run, which: str, epoch: int, accuracy: float) -> dict:
+    info = info_of(unwrap(run.net_wrapped))
+    before = info.tuning if info is not None else None
     return {
         "recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
         "val_accuracy": round(accuracy, 6), "data": run.data, "seed": run.rec.seed,
-        "base_changed": _base_changed(run), "run": str(run.run_dir),
+        "base_changed": _base_changed(run), "run": str(run.run_dir), **({"before": before} if before else {}),
     }
 
 

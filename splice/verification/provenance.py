@@ -13,13 +13,15 @@ from ..fileio import state_dict_sha256
 from ..copies import bitwise_equal
 from ..errors import SpliceError, SpliceWarning
 from ..manifest import MANIFEST_NAME, SpliceInfo
+from ..recipes import MODES
 from ..sources import code_change, code_sha256, load_source, read_weights, strip_prefixes
 from .report import CheckResult
 
 __all__: list[str] = []
 
 
-def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tuple[dict | None, str, tuple]:
+def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False,
+                  trust_pickle: bool = False) -> tuple[dict | None, str, tuple]:
     """The source checkpoint's state dict as a load builds it, how it was found (or why it is unavailable), and the
     tensors that load left out (a partial load)."""
     path = info.source_weights_path
@@ -35,7 +37,7 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False) -> tu
             warnings.simplefilter("ignore", SpliceWarning)
             src = load_source(info.spec, weights=path, kwargs=info.kwargs, input_shape=input_shape,
                               warn_random=False, leaves=info.leaves, origin=origin, trust_code=trust_code,
-                              allow_partial=bool(info.source_not_loaded))
+                              allow_partial=bool(info.source_not_loaded), trust_pickle=trust_pickle)
     except SpliceError as exc:
         return None, f"the source '{path}' could not be rebuilt ({exc}), so only hashes are compared", ()
     return dict(src.model.state_dict()), f"compared with '{path}'", tuple(src.not_loaded)
@@ -52,7 +54,7 @@ def _claimed_but_given(info: SpliceInfo, given: set[str]) -> dict | None:
 
 
 def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], input_shape, trust_code: bool,
-                  reference=None) -> tuple[bool | None, str, dict | None, dict | None]:
+                  reference=None, trust_pickle: bool = False) -> tuple[bool | None, str, dict | None, dict | None]:
     """Whether the base is bitwise the recorded source file's weights, read now (``None``: cannot tell), how it was
     found, the differences, and the source's state dict as a load gives it (``None`` when that cannot be told
     exactly: the recorded source hash is compared with it). The file is read as it is first (cheap); only when its
@@ -64,7 +66,7 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
         try:
             with warnings.catch_warnings():  # what a load strips was told when the folder was made
                 warnings.simplefilter("ignore", SpliceWarning)
-                read = strip_prefixes(read_weights(path), set(base_state))
+                read = strip_prefixes(read_weights(path, trust_pickle=trust_pickle), set(base_state))
         except (SpliceError, OSError, RuntimeError, ValueError):  # a pickle without trust, a folder: rebuild below
             read = None
         if read is not None:
@@ -72,7 +74,9 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
             false = _claimed_but_given(info, fits)
             if false is not None:
                 return False, f"read from '{path}'", false, None
-            names = [k for k in base_state if k.rsplit(".", 1)[-1] != "num_batches_tracked" and k not in claimed]
+            # a batch counter the file lacks is the model's own (older checkpoints have none); one it holds counts
+            names = [k for k in base_state if k not in claimed
+                     and (k in read or k.rsplit(".", 1)[-1] != "num_batches_tracked")]
             if all(k in fits for k in names):
                 aligned = {k: read[k].to(base_state[k].dtype) for k in names}
                 diff = _tensor_diff({k: base_state[k] for k in names}, aligned)
@@ -80,7 +84,7 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
                 whole = None if claimed or set(base_state) - fits else {
                     k: read[k].to(base_state[k].dtype) for k in base_state}
                 return diff["changed"] == 0, f"read from '{path}'", diff, whole
-    state, how, left = _source_state(info, input_shape, trust_code)
+    state, how, left = _source_state(info, input_shape, trust_code, trust_pickle)
     if state is not None:
         false = _claimed_but_given(info, set(state) - set(left))
         if false is not None:
@@ -140,8 +144,8 @@ def _false_claim(numbers: dict, diff: dict, how: str) -> CheckResult:
     return CheckResult("provenance", False, numbers,
                        f"splice.json says {names} did not come from the source checkpoint (a partial load), but the "
                        f"source gives {'it' if len(diff['falsely_not_loaded']) == 1 else 'them'} in the model's "
-                       f"shape ({how}): the record was edited — re-create the folder from the source with "
-                       "'splice insert'", "record edited")
+                       f"shape ({how}): the record was edited, or the checkpoint changed since the splice — "
+                       "re-create the folder from the source with 'splice insert'", "record edited")
 
 
 def _code_changed(info: SpliceInfo) -> CheckResult | None:
@@ -155,9 +159,21 @@ def _code_changed(info: SpliceInfo) -> CheckResult | None:
                                              "recorded_code_sha256": info.code_sha256}, told, "model file changed")
 
 
+_TRAINS_PARAMETERS = ("baseline", "joint", "staged")  # the recipes' modes that may move a base's parameters
+
+
+def _tunings(tuning) -> list[Mapping]:
+    """The tunings a folder went through, latest first (each record keeps the one before it as ``before``)."""
+    chain: list[Mapping] = []
+    while isinstance(tuning, Mapping) and len(chain) < 100:
+        chain.append(tuning)
+        tuning = tuning.get("before")
+    return chain
+
+
 def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
                    input_shape, trust_code: bool = False, buffers: frozenset = frozenset(),
-                   reference=None) -> CheckResult:
+                   reference=None, trust_pickle: bool = False) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller; ``buffers`` names the base's
     buffers (a difference in buffers alone is told as what running the model does to them); ``reference`` is the
     module an in-memory splice of a module object was made from, compared with when no source file is on disk
@@ -166,72 +182,107 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
     if changed is not None:
         return changed
     source = info.source_weights_sha256
-    tuning = info.tuning
-    declared = bool(isinstance(tuning, Mapping) and tuning.get("base_changed"))
+    chain = _tunings(info.tuning)
+    declared = any(t.get("base_changed") for t in chain)
     numbers: dict[str, Any] = {"base_sha256": actual, "source_sha256": source, "base_changed_recorded": declared}
     if recorded_base is not None:
         numbers["recorded_base_sha256"] = recorded_base
-    stale = recorded_base is not None and recorded_base != actual
     if source is None:
         return CheckResult("provenance", False, numbers,
                            "splice.json records no source-weights hash, so the base cannot be traced to its source; "
                            "re-create the folder with 'splice insert'", "no source hash")
-    if source == actual and not stale:
-        # the hashes are splice.json's, written with the folder: the source file itself, when it is on disk, says
-        # whether the base is still its weights
-        same, how, diff, _ = _against_file(info, base_state, input_shape, trust_code, reference)
-        if diff is not None and diff.get("falsely_not_loaded"):
-            return _false_claim(numbers, diff, how)
-        if same is False:
-            numbers["diff"] = diff
-            return CheckResult("provenance", False, numbers,
-                               f"the base weights differ from the source checkpoint ({how}: {_told(diff)}), although "
-                               "splice.json's hashes agree: the folder was edited after splicing — re-create it "
-                               "from the source with 'splice insert'", "base edited")
-        note = " (tuning records base_changed, but the base weights did not move)" if declared else ""
-        left = _partial(info)
-        if same is None:  # nothing but splice.json's own hashes could be compared
-            return CheckResult("provenance", True, numbers,
-                               f"base weights hash to the source hash splice.json recorded (sha256 {actual[:12]}…), "
-                               f"but {how}{note}{left}", f"sha256 {actual[:12]}… = recorded",
-                               warning="" if info.random_init else
-                               "only splice.json's hashes compared" + (", partial load" if left else ""))
+    found = _against_file(info, base_state, input_shape, trust_code, reference, trust_pickle)
+    if found[2] is not None and found[2].get("falsely_not_loaded"):
+        return _false_claim(numbers, found[2], found[1])
+    if source == actual and (recorded_base is None or recorded_base == actual):
+        return _as_recorded(info, numbers, found, actual, declared)
+    return _moved(info, numbers, found, actual, recorded_base, chain, buffers)
+
+
+def _what(info: SpliceInfo) -> str:
+    return "the source checkpoint" if info.source_weights_path is not None else "the source"
+
+
+def _as_recorded(info: SpliceInfo, numbers: dict, found: tuple, actual: str, declared: bool) -> CheckResult:
+    """The row when the base hashes to the recorded source hash: the source file itself, when it is on disk, says
+    whether the base is still its weights (the hashes are splice.json's, written with the folder)."""
+    same, how, diff, whole = found
+    if same is False:
+        numbers["diff"] = diff
+        if whole is not None and state_dict_sha256(whole) != info.source_weights_sha256:
+            cause = ("either the checkpoint changed since the splice (its tensors no longer hash to the recorded "
+                     "source hash: splice the new one, or keep the one the folder was made from), or the folder was "
+                     "edited after splicing and its hashes rewritten (re-create it from the source with "
+                     "'splice insert')")
+        else:
+            cause = "the folder was edited after splicing — re-create it from the source with 'splice insert'"
+        return CheckResult("provenance", False, numbers,
+                           f"the base weights differ from {_what(info)} ({how}: {_told(diff)}), although "
+                           f"splice.json's hashes agree: {cause}", "base differs from source")
+    note = " (tuning records base_changed, but the base weights did not move)" if declared else ""
+    left = _partial(info)
+    if same is None:  # nothing but the recorded hashes could be compared
+        why = ("the source was a random init: nothing outside splice.json vouches for the base"
+               if info.random_init else "only splice.json's hashes compared")
         return CheckResult("provenance", True, numbers,
-                           f"base weights are bitwise equal to the source checkpoint (sha256 {actual[:12]}…; "
-                           f"{how}){note}{left}",
-                           f"sha256 {actual[:12]}… = source" + (" (partial load)" if left else ""),
-                           warning="partial load" if left else "")
-    _, how, diff, state = _against_file(info, base_state, input_shape, trust_code, reference)
-    if diff is not None and diff.get("falsely_not_loaded"):
-        return _false_claim(numbers, diff, how)
+                           f"base weights hash to the recorded source hash (sha256 {actual[:12]}…), but {how}{note}"
+                           f"{left}", f"sha256 {actual[:12]}… = recorded",
+                           warning=why + (", partial load" if left else ""))
+    return CheckResult("provenance", True, numbers,
+                       f"base weights are bitwise equal to {_what(info)} (sha256 {actual[:12]}…; {how}){note}{left}",
+                       f"sha256 {actual[:12]}… = source" + (" (partial load)" if left else ""),
+                       warning="partial load" if left else "")
+
+
+def _moved(info: SpliceInfo, numbers: dict, found: tuple, actual: str, recorded_base: str | None,
+           chain: list[Mapping], buffers: frozenset) -> CheckResult:
+    """The row when the base no longer hashes as recorded: tuned (as recorded), or changed since."""
+    _, how, diff, state = found
+    source = info.source_weights_sha256
     if diff is not None:
         numbers["diff"] = diff
-        if state is not None and state_dict_sha256(state) != source:
+        if state is not None and source != actual and state_dict_sha256(state) != source:
             how += " (that file no longer hashes to the recorded source hash: it changed since the splice)"
         how += f": {_told(diff)}"
-    what = "the source checkpoint" if info.source_weights_path is not None else "the source"
-    differs = (f"base weights (sha256 {actual[:12]}…) differ from {what} (sha256 {source[:12]}…)"
+    differs = (f"base weights (sha256 {actual[:12]}…) differ from {_what(info)} (sha256 {source[:12]}…)"
                if source != actual else
                f"the base weights' sha256 {actual[:12]}… differs from the one recorded at save time "
-               f"({recorded_base[:12]}…)")
+               f"({recorded_base[:12]}…), and splice.json's source hash was rewritten to match it")
     moved = numbers.get("diff", {}).get("names") or []
-    if declared and source != actual:
-        recipe = tuning.get("recipe") or "a recipe"
-        if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
-            return CheckResult("provenance", True, numbers,
-                               f"only the base's buffers moved while {recipe!r} tuned it (recorded in splice.json): "
-                               f"its forward updates them as it runs; {differs}; {how}",
-                               "base buffers moved (recorded)")
-        return CheckResult("provenance", True, numbers,
-                           f"the base was tuned as well (recipe {recipe!r}, recorded in splice.json): {differs}; "
-                           f"{how}{_partial(info)}", "base tuned (recorded)",
-                           warning="partial load" if info.source_not_loaded else "")
-    if moved and not numbers["diff"]["missing"] and set(moved) <= buffers:
+    only_buffers = bool(moved) and not numbers["diff"]["missing"] and set(moved) <= buffers
+    if any(t.get("base_changed") for t in chain) and source != actual:
+        return _tuned(info, numbers, chain, differs, how, only_buffers)
+    again = "splice the source again ('splice insert', splice.insert)" + (
+        " and verify before running it" if only_buffers else "")
+    if only_buffers:
         return CheckResult("provenance", False, numbers,
                            f"{differs}, and no tuning of the base is recorded; {how}. Only buffers differ: a forward "
                            "that updates them (a counter, running statistics) changes them whenever the model runs, "
-                           "so a model that ran since it was spliced is no longer its source; splice the source again "
-                           "('splice insert', splice.insert) and verify before running it", "base buffers changed")
+                           f"so a model that ran since it was spliced is no longer its source; {again}",
+                           "base buffers changed")
     return CheckResult("provenance", False, numbers,
                        f"{differs}, and no tuning of the base is recorded; {how}. The weights were edited after "
-                       "splicing — re-create the folder from the source with 'splice insert'", "base changed")
+                       f"splicing — {again}", "base changed")
+
+
+def _tuned(info: SpliceInfo, numbers: dict, chain: list[Mapping], differs: str, how: str,
+           only_buffers: bool) -> CheckResult:
+    """A base whose tuning is recorded: passed when the recorded recipes could move what moved."""
+    modes = [t.get("mode") if t.get("mode") in MODES else t.get("recipe") for t in chain]
+    told = " after ".join(repr(m) if m in MODES else "an unnamed recipe" for m in modes)
+    left = _partial(info)
+    if only_buffers:
+        return CheckResult("provenance", True, numbers,
+                           f"only the base's buffers moved while {told} tuned it (recorded in splice.json): its "
+                           f"forward updates them as it runs; {differs}; {how}{left}", "base buffers moved (recorded)",
+                           warning="partial load" if left else "")
+    if all(m in MODES for m in modes) and not any(m in _TRAINS_PARAMETERS for m in modes):
+        return CheckResult("provenance", False, numbers,
+                           f"{differs}; {how}. splice.json records tuning by {told}, which never moves a base's "
+                           "parameters: the record does not account for them — re-create the folder from the source "
+                           "with 'splice insert' and tune it again", "tuning record contradicted")
+    unnamed = "" if all(m in MODES for m in modes) else "the tuning record names no recipe"
+    return CheckResult("provenance", True, numbers,
+                       f"the base was tuned as well ({told}, recorded in splice.json): {differs}; {how}{left}",
+                       "base tuned (recorded)",
+                       warning=", ".join(w for w in (unnamed, "partial load" if left else "") if w))

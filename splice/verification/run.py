@@ -64,14 +64,16 @@ class _Options:
     seed: int
     tol: float | None
     trust_code: bool = False
+    trust_pickle: bool = False
 
     @classmethod
-    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol, trust_code=False) -> _Options:
+    def checked(cls, *, batch, dtype, onnx, opset, exporter, seed, tol, trust_code=False,
+                trust_pickle=False) -> _Options:
         dt = resolve_dtype(dtype)
         check_batch(batch)
         if onnx:
             check_opset(opset, exporter)
-        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol, bool(trust_code))
+        return cls(batch, dt, bool(onnx), opset, exporter, seed, tol, bool(trust_code), bool(trust_pickle))
 
 
 def _info_of(spliced: nn.Module, info: SpliceInfo | Mapping | None) -> SpliceInfo:
@@ -240,7 +242,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         meta["hashes"]["base_sha256"] = base_hash.result()
         buffers = frozenset(n for n, _ in base.named_buffers())
         rows.append(provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
-                                   trust_code=opts.trust_code, buffers=buffers, reference=reference))
+                                   trust_code=opts.trust_code, buffers=buffers, reference=reference,
+                                   trust_pickle=opts.trust_pickle))
         lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
@@ -319,7 +322,7 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     lap = Laps()
     folder = Path(folder)
     opts = _Options.checked(batch=batch, dtype=dtype, onnx=onnx, opset=opset, exporter=exporter, seed=seed, tol=tol,
-                            trust_code=trust_code)
+                            trust_code=trust_code, trust_pickle=trust_pickle)
     # the tensors stay backed by the mapped file: both models live only as long as this call
     opened = open_folder(folder, keep_mapped=True, trust_pickle=trust_pickle, strict=False, trust_code=trust_code)
     info = opened.info
