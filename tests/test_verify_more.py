@@ -567,3 +567,19 @@ def test_a_checkpoint_overwritten_after_the_splice_is_not_blamed_on_the_folder(t
     row = verify(folder)["provenance"]
     assert not row.passed and row.summary == "base differs from source"
     assert "either the checkpoint changed since the splice" in row.detail and "or the folder was edited" in row.detail
+
+
+def test_a_stale_base_hash_is_not_blamed_on_the_source_file(tray_spliced, tmp_path):
+    # the folder edited, its file hash and source hash rewritten but not its base hash: the row said the (untouched)
+    # source file "changed since the splice"
+    edited = _clone(tray_spliced)
+    with torch.no_grad():
+        edited.get_parameter("fc.bias").add_(0.25)
+    folder = store.save(edited, tmp_path / "stale")
+    data = json.loads((folder / "splice.json").read_text())
+    data["source"]["weights_sha256"] = data["weights"]["base_sha256"]
+    data["weights"]["base_sha256"] = "0" * 64
+    (folder / "splice.json").write_text(json.dumps(data))
+    row = verify(folder)["provenance"]
+    assert not row.passed and "changed since the splice" not in row.detail
+    assert "source hash was rewritten to match it" in row.detail
