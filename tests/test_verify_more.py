@@ -583,3 +583,48 @@ def test_a_stale_base_hash_is_not_blamed_on_the_source_file(tray_spliced, tmp_pa
     row = verify(folder)["provenance"]
     assert not row.passed and "changed since the splice" not in row.detail
     assert "source hash was rewritten to match it" in row.detail
+
+
+def _saved_with(spliced, folder, tuning, edit):
+    """``spliced`` with ``edit`` applied to its base (in place on a clone), saved with ``tuning``."""
+    moved = _clone(spliced)
+    with torch.no_grad():
+        edit(moved)
+    return store.save(moved, folder, tuning=tuning)
+
+
+def test_a_tuning_record_accounts_only_for_what_its_recipes_move(tray_spliced, tmp_path):
+    def stats(m):
+        m.get_buffer(next(n for n, _ in m.named_buffers() if n.endswith("running_mean"))).add_(1.0)
+
+    def weights(m):
+        m.get_parameter("fc.bias").add_(0.5)
+
+    # BatchNorm statistics under warp-only (BatchNorm in eval mode, this forward updates no buffer): contradicted
+    row = verify(_saved_with(tray_spliced, tmp_path / "a", {"mode": "warp-only", "base_changed": True},
+                             stats))["provenance"]
+    assert not row.passed and row.summary == "tuning record contradicted"
+    # ... and re-estimated by batchnorm-stats: told so
+    row = verify(_saved_with(tray_spliced, tmp_path / "b", {"mode": "batchnorm-stats", "base_changed": True},
+                             stats))["provenance"]
+    assert row.passed and "re-estimated them on site images" in row.detail
+    # the latest record says whether the base differs from its source: an older joint record excuses nothing
+    chain = {"mode": "warp-only", "base_changed": False, "before": {"mode": "joint", "base_changed": True}}
+    row = verify(_saved_with(tray_spliced, tmp_path / "c", chain, weights))["provenance"]
+    assert not row.passed and row.summary == "base changed"
+
+
+def test_a_tuned_folder_whose_checkpoint_was_overwritten_is_not_passed(tray_spliced, tmp_path, source_weights):
+    # the differences would be measured against a file the folder was not made from
+    ckpt = tmp_path / "src.safetensors"
+    ckpt.write_bytes(Path(source_weights).read_bytes())
+    src = splice.load_source(TRAY, weights=ckpt, kwargs=SMALL)
+    spliced = splice.insert(src, at="input")
+    folder = _saved_with(spliced, tmp_path / "tuned", {"mode": "joint", "base_changed": True},
+                         lambda m: m.get_parameter("fc.bias").add_(0.5))
+    assert verify(folder)["provenance"].passed
+    state = load_file(str(ckpt))
+    state["fc.weight"] = state["fc.weight"] * 2
+    save_file(state, str(ckpt))
+    row = verify(folder)["provenance"]
+    assert not row.passed and row.summary == "source changed"

@@ -108,6 +108,12 @@ class Snapshot:
             for n, mod in mods:
                 mod.training = self.modes[f"{tag}:{n or '<root>'}"]
 
+    def updated_by(self, tag: str, model: nn.Module) -> frozenset[str]:
+        """The buffers of ``model`` (a twin the checks ran, tagged ``tag``) that differ from the snapshot: those its
+        own forward updates."""
+        return frozenset(n for n, b in model.named_buffers()
+                         if f"{tag}:{n}" in self.buffers and not bitwise_equal(self.buffers[f"{tag}:{n}"], b))
+
     def check(self, runs: Mapping[str, nn.Module] | None = None) -> CheckResult:
         """The ``buffers`` row; ``runs`` are the twins the checks ran (their updates are reported, not failed)."""
         now = {f"{tag}:{n}": b for tag, m in self.models.items() for n, b in m.named_buffers()}

@@ -115,7 +115,10 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
             changed.append((name, float((a.detach().double() - b.detach().double()).abs().max())))
         else:
             changed.append((name, float((a.long() - b.long()).abs().max())))
-    changed.sort(key=lambda t: -t[1])
+    # values first, by size; integer tensors (batch counters) after them: a counter's +34 says nothing of how far
+    # the weights moved
+    ints = {n for n in set(base) & set(source) if not base[n].is_floating_point()}
+    changed.sort(key=lambda t: (t[0] in ints, -t[1]))
     return {"tensors": len(source), "changed": len(changed), "max_abs_diff": changed[0][1] if changed else 0.0,
             "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]], "names": [n for n, _ in changed],
             "missing": missing, "unexpected": extra}
@@ -160,12 +163,13 @@ def _code_changed(info: SpliceInfo) -> CheckResult | None:
 
 
 _TRAINS_PARAMETERS = ("baseline", "joint", "staged")  # the recipes' modes that may move a base's parameters
+_MAX_CHAIN = 100
 
 
 def _tunings(tuning) -> list[Mapping]:
     """The tunings a folder went through, latest first (each record keeps the one before it as ``before``)."""
     chain: list[Mapping] = []
-    while isinstance(tuning, Mapping) and len(chain) < 100:
+    while isinstance(tuning, Mapping) and len(chain) < _MAX_CHAIN:
         chain.append(tuning)
         tuning = tuning.get("before")
     return chain
@@ -173,7 +177,7 @@ def _tunings(tuning) -> list[Mapping]:
 
 def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], actual: str, recorded_base: str | None,
                    input_shape, trust_code: bool = False, buffers: frozenset = frozenset(),
-                   reference=None, trust_pickle: bool = False) -> CheckResult:
+                   reference=None, trust_pickle: bool = False, self_updated: frozenset = frozenset()) -> CheckResult:
     """``actual`` is ``state_dict_sha256(base_state)``, computed once by the caller; ``buffers`` names the base's
     buffers (a difference in buffers alone is told as what running the model does to them); ``reference`` is the
     module an in-memory splice of a module object was made from, compared with when no source file is on disk
@@ -183,7 +187,8 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         return changed
     source = info.source_weights_sha256
     chain = _tunings(info.tuning)
-    declared = any(t.get("base_changed") for t in chain)
+    # the latest record says whether the base differs from its source (each run measures it against the source)
+    declared = bool(chain) and chain[0].get("base_changed") is True
     numbers: dict[str, Any] = {"base_sha256": actual, "source_sha256": source, "base_changed_recorded": declared}
     if recorded_base is not None:
         numbers["recorded_base_sha256"] = recorded_base
@@ -196,7 +201,7 @@ def provenance_row(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], act
         return _false_claim(numbers, found[2], found[1])
     if source == actual and (recorded_base is None or recorded_base == actual):
         return _as_recorded(info, numbers, found, actual, declared)
-    return _moved(info, numbers, found, actual, recorded_base, chain, buffers)
+    return _moved(info, numbers, found, (actual, recorded_base), chain, buffers, self_updated)
 
 
 def _what(info: SpliceInfo) -> str:
@@ -234,10 +239,12 @@ def _as_recorded(info: SpliceInfo, numbers: dict, found: tuple, actual: str, dec
                        warning="partial load" if left else "")
 
 
-def _moved(info: SpliceInfo, numbers: dict, found: tuple, actual: str, recorded_base: str | None,
-           chain: list[Mapping], buffers: frozenset) -> CheckResult:
-    """The row when the base no longer hashes as recorded: tuned (as recorded), or changed since."""
+def _moved(info: SpliceInfo, numbers: dict, found: tuple, hashes: tuple, chain: list[Mapping], buffers: frozenset,
+           self_updated: frozenset) -> CheckResult:
+    """The row when the base no longer hashes as recorded (``hashes``: its own and the recorded base's): tuned (as
+    recorded), or changed since."""
     _, how, diff, state = found
+    actual, recorded_base = hashes
     source = info.source_weights_sha256
     if diff is not None:
         numbers["diff"] = diff
@@ -250,8 +257,14 @@ def _moved(info: SpliceInfo, numbers: dict, found: tuple, actual: str, recorded_
                f"({recorded_base[:12]}…), and splice.json's source hash was rewritten to match it")
     moved = numbers.get("diff", {}).get("names") or []
     only_buffers = bool(moved) and not numbers["diff"]["missing"] and set(moved) <= buffers
-    if any(t.get("base_changed") for t in chain) and source != actual:
-        return _tuned(info, numbers, chain, differs, how, only_buffers)
+    if numbers["base_changed_recorded"] and source != actual:
+        if state is not None and state_dict_sha256(state) != source:
+            return CheckResult("provenance", False, numbers,
+                               f"{differs}; {how}: the checkpoint changed since the splice, so the differences are "
+                               "against a file the folder was not made from (or the folder was edited and its "
+                               "hashes rewritten) — verify against the checkpoint it was spliced from",
+                               "source changed")
+        return _tuned(info, numbers, chain, differs, how, moved if only_buffers else None, self_updated)
     again = "splice the source again ('splice insert', splice.insert)" + (
         " and verify before running it" if only_buffers else "")
     if only_buffers:
@@ -265,24 +278,51 @@ def _moved(info: SpliceInfo, numbers: dict, found: tuple, actual: str, recorded_
                        f"splicing — {again}", "base changed")
 
 
+def _named(modes: list) -> str:
+    """``'warp-only' after 'joint'``, repeats collapsed (``'warp-only' ×3 after 'joint'``)."""
+    parts: list[list] = []
+    for m in modes:
+        if parts and parts[-1][0] == m:
+            parts[-1][1] += 1
+        else:
+            parts.append([m, 1])
+    return " after ".join((repr(m) if m in MODES else f"a mode splice does not know ({m!r})")
+                          + (f" ×{n}" if n > 1 else "") for m, n in parts)
+
+
 def _tuned(info: SpliceInfo, numbers: dict, chain: list[Mapping], differs: str, how: str,
-           only_buffers: bool) -> CheckResult:
-    """A base whose tuning is recorded: passed when the recorded recipes could move what moved."""
-    modes = [t.get("mode") if t.get("mode") in MODES else t.get("recipe") for t in chain]
-    told = " after ".join(repr(m) if m in MODES else "an unnamed recipe" for m in modes)
+           moved_buffers: list | None, self_updated: frozenset) -> CheckResult:
+    """A base whose tuning is recorded: passed when the recorded recipes could move what moved (``moved_buffers``:
+    the names, when only buffers moved; ``self_updated``: the buffers the base's own eval-mode forward updates)."""
+    modes = [t.get("mode") if t.get("mode") in MODES else t.get("mode") or t.get("recipe") for t in chain]
+    cut = len(chain) >= _MAX_CHAIN
+    told = _named(modes) + (" (the record's chain was cut)" if cut else "")
+    known = all(m in MODES for m in modes) and not cut
+    trains = any(m in _TRAINS_PARAMETERS for m in modes)
     left = _partial(info)
-    if only_buffers:
+    warn = "partial load" if left else ""
+    if moved_buffers is not None:
+        if "batchnorm-stats" in modes and not trains:
+            why = "'batchnorm-stats' re-estimated them on site images"
+        elif set(moved_buffers) <= self_updated:
+            why = "its forward updates them as it runs"
+        elif trains or not known:
+            why = f"{told} tuned it"
+        else:
+            return _contradicted(numbers, differs, how, told, "moves no buffer but those a forward updates")
         return CheckResult("provenance", True, numbers,
-                           f"only the base's buffers moved while {told} tuned it (recorded in splice.json): its "
-                           f"forward updates them as it runs; {differs}; {how}{left}", "base buffers moved (recorded)",
-                           warning="partial load" if left else "")
-    if all(m in MODES for m in modes) and not any(m in _TRAINS_PARAMETERS for m in modes):
-        return CheckResult("provenance", False, numbers,
-                           f"{differs}; {how}. splice.json records tuning by {told}, which never moves a base's "
-                           "parameters: the record does not account for them — re-create the folder from the source "
-                           "with 'splice insert' and tune it again", "tuning record contradicted")
-    unnamed = "" if all(m in MODES for m in modes) else "the tuning record names no recipe"
+                           f"only the base's buffers moved ({why}; {told}, recorded in splice.json): {differs}; "
+                           f"{how}{left}", "base buffers moved (recorded)", warning=warn)
+    if known and not trains:
+        return _contradicted(numbers, differs, how, told, "never moves a base's parameters")
+    unnamed = "" if known else "the tuning record names a recipe splice does not know"
     return CheckResult("provenance", True, numbers,
                        f"the base was tuned as well ({told}, recorded in splice.json): {differs}; {how}{left}",
-                       "base tuned (recorded)",
-                       warning=", ".join(w for w in (unnamed, "partial load" if left else "") if w))
+                       "base tuned (recorded)", warning=", ".join(w for w in (unnamed, warn) if w))
+
+
+def _contradicted(numbers: dict, differs: str, how: str, told: str, rule: str) -> CheckResult:
+    return CheckResult("provenance", False, numbers,
+                       f"{differs}; {how}. splice.json records tuning by {told}, which {rule}: the record does not "
+                       "account for what moved — re-create the folder from the source with 'splice insert' and "
+                       "tune it again", "tuning record contradicted")

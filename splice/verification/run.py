@@ -243,7 +243,7 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         buffers = frozenset(n for n, _ in base.named_buffers())
         rows.append(provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
                                    trust_code=opts.trust_code, buffers=buffers, reference=reference,
-                                   trust_pickle=opts.trust_pickle))
+                                   trust_pickle=opts.trust_pickle, self_updated=snapshot.updated_by("base", base)))
         lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
