@@ -158,6 +158,7 @@ def _cmd_insert(args) -> int:
         out.print(f"identity check: {verdict} — {check['detail']}")
     # a spec no registry lists is code a folder names: verifying the folder rebuilds it only with the opt-in
     trust = " --trust-code" if info.spec != MODULE_SPEC and registry_kind_of(info.spec, info.kwargs) is None else ""
+    trust += " --trust-pickle" if getattr(args, "trust_pickle", False) else ""
     out.print(f"wrote {folder}/ (weights.safetensors, splice.json). Next: splice verify {folder}{trust}")
     return EXIT_OK
 
@@ -296,7 +297,8 @@ def _parser_verify(sub) -> None:
     p.add_argument("--json", action="store_true", help="print the certificate as JSON")
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
     add_pixel_cap(p)
-    p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    p.add_argument("--trust-pickle", action="store_true",
+                   help="allow the pickled checkpoint or module the folder was made from (the same opt-in as insert)")
     add_trust_code(p)
     p.set_defaults(func=_cmd_verify)
 
@@ -311,7 +313,8 @@ def _parser_export(sub) -> None:
                    help="fix the batch dimension to 1 (default: a dynamic batch dimension)")
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
                    help="ONNX exporter (default torchscript)")
-    p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    p.add_argument("--trust-pickle", action="store_true",
+                   help="allow the pickled checkpoint or module the folder was made from (the same opt-in as insert)")
     add_trust_code(p)
     p.set_defaults(func=_cmd_export)
 
@@ -352,7 +355,8 @@ def _parser_inspect(sub) -> None:
     p.add_argument("--split", default="test", help="the data split to read (default test)")
     p.add_argument("--out", required=True, metavar="REPORT_DIR")
     add_pixel_cap(p)
-    p.add_argument("--trust-pickle", action="store_true", help=argparse.SUPPRESS)
+    p.add_argument("--trust-pickle", action="store_true",
+                   help="allow the pickled checkpoint or module the folder was made from (the same opt-in as insert)")
     add_trust_code(p)
     p.set_defaults(func=_cmd_inspect)
 

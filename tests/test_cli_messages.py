@@ -183,3 +183,21 @@ def test_the_next_command_carries_the_options_it_needs(tmp_path, capsys):
     out = tmp_path / "spliced"
     assert main(["insert", f"{model_file}:net", "--trust-code", "--at", "input", "--out", str(out)]) == 0
     assert f"Next: splice verify {out} --trust-code" in " ".join(capsys.readouterr().out.split())
+
+
+def test_a_pickled_module_spliced_by_a_relative_path_verifies_from_anywhere(tmp_path, monkeypatch, capsys):
+    # the spec was kept relative ('mod.pt'), so verify run elsewhere could not find it, and the next-command hint
+    # left out the --trust-pickle that verify needs as well
+    import torch
+
+    from splice.models import tray_net
+
+    torch.manual_seed(0)
+    torch.save(tray_net(width=4), tmp_path / "mod.pt")
+    monkeypatch.chdir(tmp_path)
+    assert main(["insert", "mod.pt", "--at", "input", "--out", "sp", "--input-shape", "1x48x48", "--trust-pickle",
+                 "--trust-code"]) == 0
+    out = capsys.readouterr().out
+    assert "Next: splice verify sp --trust-code --trust-pickle" in out
+    monkeypatch.chdir("/")
+    assert main(["verify", str(tmp_path / "sp"), "--trust-code", "--trust-pickle"]) == 0

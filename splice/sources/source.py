@@ -310,5 +310,5 @@ def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> So
     if not shapes:
         raise SourceError(f"cannot tell the input shape of '{path}'; pass --input-shape CxHxW")
     obj.eval()
-    return Source(model=obj, spec=str(path), input_shape=shapes[0], weights_path=os.path.abspath(path),
+    return Source(model=obj, spec=os.path.abspath(path), input_shape=shapes[0], weights_path=os.path.abspath(path),
                   weights_sha256=state_dict_sha256(obj.state_dict()), extra_inputs=tuple(shapes[1:]))
