@@ -8,6 +8,7 @@ from __future__ import annotations
 import errno
 import json
 import os
+from pathlib import Path
 
 import pytest
 import torch
@@ -524,5 +525,6 @@ def test_warp_only_after_joint_is_certified_as_both(tmp_path, spliced):
     assert summary["base_changed"] is True
     tuning = json.loads((tmp_path / "w" / "last" / "splice.json").read_text())["tuning"]
     assert tuning["mode"] == "warp-only" and tuning["before"]["mode"] == "joint"
+    assert Path(tuning["run"]).is_absolute() and Path(tuning["before"]["run"]).is_absolute()
     row = splice.verify(tmp_path / "w" / "last")["provenance"]
     assert row.passed and "'warp-only' after 'joint'" in row.detail

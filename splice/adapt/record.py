@@ -73,7 +73,7 @@ def _tuning(run: AdaptRun, which: str, epoch: int, score: float | None) -> dict:
     return {"recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
             "val_accuracy": None, "site_agreement": score, "data": run.info["data"],
             "reference": run.info.get("reference"), "seed": run.rec.seed, "base_changed": base_changed(run),
-            "run": str(run.run_dir), **({"before": before} if before else {})}
+            "run": os.path.abspath(run.run_dir), **({"before": before} if before else {})}
 
 
 def save_folder(run: AdaptRun, which: str, epoch: int, score: float | None) -> None:
