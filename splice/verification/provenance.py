@@ -317,7 +317,8 @@ def _tuned(info: SpliceInfo, numbers: dict, chain: list[Mapping], differs: str, 
         return _contradicted(numbers, differs, how, told, "never moves a base's parameters")
     unnamed = "" if known else "the tuning record names a recipe splice does not know"
     return CheckResult("provenance", True, numbers,
-                       f"the base was tuned as well ({told}, recorded in splice.json): {differs}; {how}{left}",
+                       f"the base was tuned as well ({told}, recorded in splice.json; nothing outside it vouches for "
+                       f"the tuning, so keep the run folder it names): {differs}; {how}{left}",
                        "base tuned (recorded)", warning=", ".join(w for w in (unnamed, warn) if w))
 
 
