@@ -29,7 +29,8 @@ def _source_state(info: SpliceInfo, input_shape, trust_code: bool = False,
         why = "the source was a random init" if info.random_init else "no source weights file was recorded"
         return None, f"{why}, so only hashes are compared", ()
     if not Path(path).is_file():
-        return None, f"the source weights file '{path}' is no longer on disk, so only hashes are compared", ()
+        gone = "is not a file" if Path(path).exists() else "is no longer on disk"
+        return None, f"the source weights file '{path}' {gone}, so only hashes are compared", ()
     try:
         # a record read from a folder names its spec from a file: the same gate as opening the folder
         origin = None if info.folder is None else Path(info.folder) / MANIFEST_NAME
