@@ -93,7 +93,8 @@ def _tuning(run: Run, which: str, epoch: int, accuracy: float) -> dict:
     return {
         "recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
         "val_accuracy": round(accuracy, 6), "data": run.data, "seed": run.rec.seed,
-        "base_changed": _base_changed(run), "run": os.path.abspath(run.run_dir), **({"before": before} if before else {}),
+        "base_changed": _base_changed(run), "run": os.path.abspath(run.run_dir),
+        **({"before": before} if before else {}),
     }
 
 
