@@ -28,13 +28,14 @@ pickling carry them along, and the per-forward state is never copied.
 from __future__ import annotations
 
 import threading
+import warnings
 from collections.abc import Mapping, Sequence
 
 import torch
 from torch import nn
 
 from .copies import tree_copy
-from .errors import PointError, suggest
+from .errors import PointError, SpliceWarning, suggest
 
 __all__ = ["WARP_PREFIX", "apply_hooks", "hooks_installed"]
 
@@ -45,15 +46,15 @@ class _Scope:
     """The per-forward state of one spliced scope, one per thread (two threads may run one model at once, as they
     may run any module in eval mode); never copied or pickled: it holds activations."""
 
-    def __init__(self, root: nn.Module, within: str):
-        self.root, self.within = root, within
+    def __init__(self, root: nn.Module, within: str, expected: Sequence[str] = ()):
+        self.root, self.within, self.expected = root, within, tuple(expected)
         self.local = threading.local()
 
     def __getstate__(self):
-        return {"root": self.root, "within": self.within}
+        return {"root": self.root, "within": self.within, "expected": self.expected}
 
     def __setstate__(self, state):
-        self.__init__(state["root"], state["within"])
+        self.__init__(state["root"], state["within"], state.get("expected", ()))
 
     def mine(self) -> threading.local:
         """This thread's state: ``calls`` (per module), ``seen`` (activations by point), ``active``, ``current``."""
@@ -109,7 +110,13 @@ class _ExitHook:
         self.scope = scope
 
     def __call__(self, module, args, output):
+        missing = [p for p in self.scope.expected if p not in self.scope.mine().seen]
         self.scope.clear()
+        if missing:  # the module calls of these points did not happen (a loop that ran fewer times, at this size)
+            warnings.warn(f"the spliced model's forward did not reach point{'s' if len(missing) > 1 else ''} "
+                          f"{', '.join(missing)}, so {'their warps' if len(missing) > 1 else 'its warp'} did not "
+                          "run: the model calls that module fewer times on this input (another size?) than when "
+                          "it was spliced; run it on inputs of the spliced size", SpliceWarning, stacklevel=2)
 
 
 class _SiteHook:
@@ -186,7 +193,7 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
     scope_module = work.get_submodule(within) if within else work
     container = WarpHolder()
     work.add_module(WARP_PREFIX, container)
-    scope = _Scope(work, within)
+    scope = _Scope(work, within, [item.point for item in plan if item.point != "input"])
     per_module: dict[str, dict[int, tuple]] = {}
     input_warp = input_loc = None
     for item in plan:

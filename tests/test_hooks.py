@@ -426,3 +426,31 @@ def test_inspecting_a_warp_that_runs_twice_per_forward_is_refused():
     spliced = _quiet_insert(_Siamese().eval(), at="input", within="encoder", input_shape=(3, 16, 16))
     with pytest.raises(DataError, match="warp 'input' ran 2 times in one forward"):
         capture(spliced, torch.rand(2, 3, 16, 16))
+
+
+class _LoopBySize(nn.Module):
+    """Calls one block once per 16 pixels of width: fewer calls on a smaller input."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 4, 3, padding=1)
+        self.block = nn.Conv2d(4, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 2)
+
+    def forward(self, x):
+        h = self.stem(x)
+        for _ in range(x.shape[-1] // 16):
+            h = torch.relu(self.block(h))
+        return self.fc(h.mean((2, 3)))
+
+
+def test_a_point_the_forward_does_not_reach_is_told():
+    # spliced at the third call of a block that runs once per 16 px: at 32 px it runs twice, and the warp was
+    # skipped without a word
+    torch.manual_seed(0)
+    spliced = _quiet_insert(_LoopBySize().eval(), at="block_2", input_shape=(3, 48, 48))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        spliced(torch.rand(1, 3, 48, 48))  # the spliced size: no warning
+    with pytest.warns(splice.errors.SpliceWarning, match="did not reach point block_2, so its warp did not run"):
+        spliced(torch.rand(1, 3, 32, 32))
