@@ -25,7 +25,7 @@ from typing import Any
 
 from ..fileio import atomic_write_json, atomic_write_text, state_dict_sha256
 from ..training.checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
-from ..training.params import is_warp_name
+from ..training.recording import base_differs, tuning_record
 from ..training.runfolder import HASH_ENV, append_metrics, write_run_info, writing
 from .setup import AdaptRun
 
@@ -36,13 +36,8 @@ RANGES_FILE = "ranges.json"
 
 def base_changed(run: AdaptRun) -> bool:
     """Whether the base's tensors differ from the start of the run (label-free never moves them, batchnorm-stats
-    only its statistics), or from the source its record names (a folder tuned before)."""
-    from ..manifest import info_of
-
-    now = state_dict_sha256({k: v for k, v in run.net.state_dict().items() if not is_warp_name(k)})
-    info = info_of(run.net)
-    source = info.source_weights_sha256 if info is not None else None
-    return now != run.info["base_sha256_start"] or (source is not None and now != source)
+    only its statistics), or from the source its record names (:func:`splice.training.recording.base_differs`)."""
+    return base_differs(run.net, run.info["base_sha256_start"])
 
 
 def row(run: AdaptRun, phase: str, epoch: int, *, site: dict | None, loss=None, extra: dict | None = None) -> dict:
@@ -66,14 +61,9 @@ def row(run: AdaptRun, phase: str, epoch: int, *, site: dict | None, loss=None, 
 
 
 def _tuning(run: AdaptRun, which: str, epoch: int, score: float | None) -> dict:
-    from ..manifest import info_of
-
-    info = info_of(run.net)
-    before = info.tuning if info is not None else None
-    return {"recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
-            "val_accuracy": None, "site_agreement": score, "data": run.info["data"],
-            "reference": run.info.get("reference"), "seed": run.rec.seed, "base_changed": base_changed(run),
-            "run": os.path.abspath(run.run_dir), **({"before": before} if before else {})}
+    return tuning_record(run.net, run.run_dir, recipe=run.rec.name, mode=run.rec.mode, which=which, epoch=epoch,
+                         step=run.step, val_accuracy=None, site_agreement=score, data=run.info["data"],
+                         reference=run.info.get("reference"), seed=run.rec.seed, base_changed=base_changed(run))
 
 
 def save_folder(run: AdaptRun, which: str, epoch: int, score: float | None) -> None:

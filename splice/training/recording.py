@@ -77,25 +77,32 @@ def _reference_distance(run: Run) -> dict[str, float] | None:
     return reference_distance(unwrap(run.net_wrapped), run.warps, run.prepare(run.reference_probe))
 
 
-def _base_changed(run: Run) -> bool:
-    """Whether the base differs from the start of this run, or from the source its record names (a folder tuned
-    before: a warp-only run of a joint-tuned folder leaves a base that is not its source's)."""
-    model = unwrap(run.net_wrapped)
+def base_differs(model, start_sha256: str) -> bool:
+    """Whether ``model``'s base differs from the start of a run (``start_sha256``), or from the source its record
+    names (a folder tuned before: a warp-only run of a joint-tuned folder leaves a base that is not its source's).
+    The one rule of ``base_changed`` for every recipe."""
     now = state_dict_sha256({k: v for k, v in model.state_dict().items() if not is_warp_name(k)})
     info = info_of(model)
     source = info.source_weights_sha256 if info is not None else None
-    return now != run.info["base_sha256_start"] or (source is not None and now != source)
+    return now != start_sha256 or (source is not None and now != source)
+
+
+def tuning_record(model, run_dir, **fields) -> dict:
+    """A tuning record for ``splice.json``: ``fields``, the run folder (absolute) and, when ``model`` was tuned
+    before, that tuning's record as ``before``."""
+    info = info_of(model)
+    before = info.tuning if info is not None else None
+    return {**fields, "run": os.path.abspath(run_dir), **({"before": before} if before else {})}
+
+
+def _base_changed(run: Run) -> bool:
+    return base_differs(unwrap(run.net_wrapped), run.info["base_sha256_start"])
 
 
 def _tuning(run: Run, which: str, epoch: int, accuracy: float) -> dict:
-    info = info_of(unwrap(run.net_wrapped))
-    before = info.tuning if info is not None else None
-    return {
-        "recipe": run.rec.name, "mode": run.rec.mode, "which": which, "epoch": epoch, "step": run.step,
-        "val_accuracy": round(accuracy, 6), "data": run.data, "seed": run.rec.seed,
-        "base_changed": _base_changed(run), "run": os.path.abspath(run.run_dir),
-        **({"before": before} if before else {}),
-    }
+    return tuning_record(unwrap(run.net_wrapped), run.run_dir, recipe=run.rec.name, mode=run.rec.mode, which=which,
+                         epoch=epoch, step=run.step, val_accuracy=round(accuracy, 6), data=run.data,
+                         seed=run.rec.seed, base_changed=_base_changed(run))
 
 
 def _save_folder(run: Run, which: str, epoch: int, accuracy: float) -> None:
