@@ -129,7 +129,7 @@ class Snapshot:
                     now[k].copy_(self.buffers[k])
         self.restore_modes()
         ran = {f"{tag}:{n}": b for tag, m in (runs or {}).items() for n, b in m.named_buffers()}
-        updated = sorted(k for k, v in ran.items() if k in self.buffers and not bitwise_equal(self.buffers[k], v))
+        updated = sorted(f"{tag}:{n}" for tag, m in (runs or {}).items() for n in self.updated_by(tag, m))
         # a buffer the base updates in its forward must be updated by the splice too (a traced graph that
         # ran the update once, while tracing, would not)
         lost = [k for k in updated if k.startswith("base:") and "spliced:" + k[5:] in ran

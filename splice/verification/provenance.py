@@ -81,9 +81,9 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
             if all(k in fits for k in names):
                 aligned = {k: read[k].to(base_state[k].dtype) for k in names}
                 diff = _tensor_diff({k: base_state[k] for k in names}, aligned)
-                # the file's whole state as a load gives it, when it holds every tensor (batch counters included)
-                whole = None if claimed or set(base_state) - fits else {
-                    k: read[k].to(base_state[k].dtype) for k in base_state}
+                # the file's whole state as a load gives it, when it holds every tensor (batch counters included):
+                # then ``names`` is every tensor, and ``aligned`` that state
+                whole = None if claimed or set(base_state) - fits else aligned
                 return diff["changed"] == 0, f"read from '{path}'", diff, whole
     state, how, left = _source_state(info, input_shape, trust_code, trust_pickle)
     if state is not None:
@@ -103,7 +103,7 @@ def _against_file(info: SpliceInfo, base_state: Mapping[str, torch.Tensor], inpu
 
 
 def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Tensor]) -> dict:
-    changed: list[tuple[str, float]] = []
+    changed: list[tuple[str, float, bool]] = []  # name, max abs diff, an integer tensor (a batch counter)
     missing = sorted(set(source) - set(base))
     extra = sorted(set(base) - set(source))
     for name in sorted(set(base) & set(source)):
@@ -111,17 +111,18 @@ def _tensor_diff(base: Mapping[str, torch.Tensor], source: Mapping[str, torch.Te
         if bitwise_equal(a, b):
             continue
         if a.shape != b.shape:
-            changed.append((name, float("inf")))
+            changed.append((name, float("inf"), not a.is_floating_point()))
         elif a.is_floating_point() or b.is_floating_point():
-            changed.append((name, float((a.detach().double() - b.detach().double()).abs().max())))
+            changed.append((name, float((a.detach().double() - b.detach().double()).abs().max()),
+                            not a.is_floating_point()))
         else:
-            changed.append((name, float((a.long() - b.long()).abs().max())))
+            changed.append((name, float((a.long() - b.long()).abs().max()), True))
     # values first, by size; integer tensors (batch counters) after them: a counter's +34 says nothing of how far
     # the weights moved
-    ints = {n for n in set(base) & set(source) if not base[n].is_floating_point()}
-    changed.sort(key=lambda t: (t[0] in ints, -t[1]))
+    changed.sort(key=lambda t: (t[2], -t[1]))
     return {"tensors": len(source), "changed": len(changed), "max_abs_diff": changed[0][1] if changed else 0.0,
-            "largest": [{"name": n, "max_abs_diff": d} for n, d in changed[:5]], "names": [n for n, _ in changed],
+            "largest": [{"name": n, "max_abs_diff": d} for n, d, _ in changed[:5]],
+            "names": [n for n, _, _ in changed],
             "missing": missing, "unexpected": extra}
 
 def _told(diff: dict) -> str:
@@ -247,9 +248,11 @@ def _moved(info: SpliceInfo, numbers: dict, found: tuple, hashes: tuple, chain: 
     _, how, diff, state = found
     actual, recorded_base = hashes
     source = info.source_weights_sha256
+    # the file as it is now no longer hashes to the recorded source (hashed once: it may be large)
+    file_changed = state is not None and source != actual and state_dict_sha256(state) != source
     if diff is not None:
         numbers["diff"] = diff
-        if state is not None and source != actual and state_dict_sha256(state) != source:
+        if file_changed:
             how += " (that file no longer hashes to the recorded source hash: it changed since the splice)"
         how += f": {_told(diff)}"
     differs = (f"base weights (sha256 {actual[:12]}…) differ from {_what(info)} (sha256 {source[:12]}…)"
@@ -259,7 +262,7 @@ def _moved(info: SpliceInfo, numbers: dict, found: tuple, hashes: tuple, chain: 
     moved = numbers.get("diff", {}).get("names") or []
     only_buffers = bool(moved) and not numbers["diff"]["missing"] and set(moved) <= buffers
     if numbers["base_changed_recorded"] and source != actual:
-        if state is not None and state_dict_sha256(state) != source:
+        if file_changed:
             return CheckResult("provenance", False, numbers,
                                f"{differs}; {how}: the checkpoint changed since the splice, so the differences are "
                                "against a file the folder was not made from (or the folder was edited and its "
@@ -295,7 +298,7 @@ def _tuned(info: SpliceInfo, numbers: dict, chain: list[Mapping], differs: str, 
            moved_buffers: list | None, self_updated: frozenset) -> CheckResult:
     """A base whose tuning is recorded: passed when the recorded recipes could move what moved (``moved_buffers``:
     the names, when only buffers moved; ``self_updated``: the buffers the base's own eval-mode forward updates)."""
-    modes = [t.get("mode") if t.get("mode") in MODES else t.get("mode") or t.get("recipe") for t in chain]
+    modes = [t.get("mode") or t.get("recipe") for t in chain]
     cut = len(chain) >= _MAX_CHAIN
     told = _named(modes) + (" (the record's chain was cut)" if cut else "")
     known = all(m in MODES for m in modes) and not cut
