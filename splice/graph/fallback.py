@@ -32,7 +32,7 @@ from torch import nn
 from ..errors import GraphError
 from .entries import CONV_MODULES, Entry, module_stem
 from .exported import export_entries
-from .leaves import LeafRule, class_path, is_torch_builtin
+from .leaves import LeafRule, class_path, is_torch_builtin, stepped_leaves
 from .recorded import UnsupportedOutput, recorded_entries
 from .rules import ShapeRules
 from .shapes import META, meta_module, run_for_real, set_mode, to_meta
@@ -95,13 +95,9 @@ def _step_over_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule) -> set[s
     """Let every leaf of ``meta`` run its real twin on zeros (meta outputs back): ``--leaf`` reaches this pass.
     Returns the qualnames of the modules inside the leaves, whose calls there go unseen (no site)."""
     real_modules = dict(real.named_modules())
-    names = {m: q for q, m in meta.named_modules()}
-    inside: set[str] = set()
-    for q, m in meta.named_modules():
-        if q and rule(type(m)) and not is_torch_builtin(type(m)):
-            original = real_modules[q]
-            m.forward = _real_forward(original)
-            inside.update(names[sub] for sub in m.modules() if sub is not m)
+    leaves, inside = stepped_leaves(meta, rule)
+    for q, m in leaves:
+        m.forward = _real_forward(real_modules[q])
     return inside
 
 

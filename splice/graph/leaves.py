@@ -160,6 +160,14 @@ def is_torch_builtin(cls: type) -> bool:
     return cls.__module__.startswith(("torch.nn", "torch.ao.nn"))
 
 
+def stepped_leaves(model: nn.Module, rule: LeafRule) -> tuple[list[tuple[str, nn.Module]], set[str]]:
+    """The leaves a meta-device pass over ``model`` steps over (``rule``'s, not torch's own modules), with their
+    qualnames, and the qualnames of the modules inside them, whose calls there go unseen (no site)."""
+    names = {m: q for q, m in model.named_modules()}
+    found = [(q, m) for q, m in model.named_modules() if q and rule(type(m)) and not is_torch_builtin(type(m))]
+    return found, {names[sub] for _, m in found for sub in m.modules() if sub is not m}
+
+
 def has_call_hooks(m: nn.Module) -> bool:
     """Whether ``m`` has forward, forward-pre or backward hooks of its own: they run only when it is called."""
     return any(getattr(m, name, None) for name in ("_forward_hooks", "_forward_pre_hooks", "_backward_hooks",

@@ -33,7 +33,7 @@ from ..compare import SUPPORTED_OUTPUTS
 from ..errors import GraphError
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, module_stem, site_name
-from .leaves import LeafRule, is_torch_builtin
+from .leaves import LeafRule, stepped_leaves
 from .rules import meta_rule
 from .shapes import META, meta_module, run_for_real, to_meta
 from .modes import spying
@@ -172,13 +172,11 @@ def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule, rec: _Recor
     Returns each patched module's own instance ``forward`` (``_NONE``: none), to put back after the run.
     """
     real_modules = dict(real.named_modules())
-    names = {m: q for q, m in meta.named_modules()}
+    leaves, rec.in_leaves = stepped_leaves(meta, rule)
     patched: dict[nn.Module, Any] = {}
-    for q, m in meta.named_modules():
-        if q and rule(type(m)) and not is_torch_builtin(type(m)):
-            patched[m] = m.__dict__.get("forward", _NONE)
-            m.forward = _leaf_forward(real_modules[q], type(m).__name__, rec)
-            rec.in_leaves.update(names[sub] for sub in m.modules() if sub is not m)
+    for q, m in leaves:
+        patched[m] = m.__dict__.get("forward", _NONE)
+        m.forward = _leaf_forward(real_modules[q], type(m).__name__, rec)
     return patched
 
 
