@@ -80,6 +80,18 @@ def test_tuned_warps_reported_and_reset_recheck_passes(tray_spliced, tmp_path):
         assert g["upstream"] > 0
 
 
+def _forged(folder: Path, weights: dict) -> dict:
+    """Write ``weights`` into ``folder`` and every hash of its splice.json again to match, as a forger would; the
+    manifest written."""
+    save_file(weights, str(folder / "weights.safetensors"))
+    manifest = json.loads((folder / "splice.json").read_text())
+    manifest["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
+    manifest["weights"]["base_sha256"] = manifest["source"]["weights_sha256"] = state_dict_sha256(
+        {k: v for k, v in weights.items() if not k.startswith("splice_warps.")})
+    (folder / "splice.json").write_text(json.dumps(manifest))
+    return manifest
+
+
 def test_joint_tuning_declares_and_compares_base(tray_spliced, tmp_path):
     moved = _tuned(tray_spliced)
     with torch.no_grad():
@@ -307,12 +319,7 @@ def test_provenance_reads_the_source_file_not_only_the_hashes_beside_the_weights
     assert "bitwise equal to the source checkpoint" in verify(folder)["provenance"].detail
     weights = load_file(folder / "weights.safetensors")
     weights["block1.bn.weight"] = weights["block1.bn.weight"] + 0.05
-    save_file(weights, folder / "weights.safetensors")
-    manifest = json.loads((folder / "splice.json").read_text())
-    forged = state_dict_sha256({k: v for k, v in weights.items() if not k.startswith("splice_warps.")})
-    manifest["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
-    manifest["weights"]["base_sha256"] = manifest["source"]["weights_sha256"] = forged
-    (folder / "splice.json").write_text(json.dumps(manifest))
+    _forged(folder, weights)
     row = verify(folder)["provenance"]
     assert not row.passed
     assert re.search(r"1 of \d+ tensors differ, max abs diff 0.05", row.detail) and "block1.bn.weight" in row.detail
@@ -470,12 +477,7 @@ def test_a_partial_load_is_recorded_and_provenance_vouches_only_for_what_the_fil
     state = load_file(str(folder / "weights.safetensors"))
     name = next(k for k in state if not k.startswith("splice_warps.") and k.endswith("weight") and k not in heads)
     state[name] = state[name] + 1.0
-    save_file(state, str(folder / "weights.safetensors"))
-    data = json.loads((folder / "splice.json").read_text())
-    data["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
-    data["weights"]["base_sha256"] = data["source"]["weights_sha256"] = state_dict_sha256(
-        state, prefix_exclude="splice_warps.")
-    (folder / "splice.json").write_text(json.dumps(data))
+    data = _forged(folder, state)
     assert not splice.verify(folder)["provenance"].passed
     # nor does naming it among the tensors a partial load left out hide it: the file gives it
     data["source"]["not_loaded"] = sorted([*heads, name])
@@ -542,12 +544,7 @@ def test_verify_trust_pickle_reaches_the_provenance_row(tmp_path):
     state = load_file(str(folder / "weights.safetensors"))
     name = next(k for k in state if k.endswith("fc.weight"))
     state[name] = -state[name]
-    save_file(state, str(folder / "weights.safetensors"))
-    data = json.loads((folder / "splice.json").read_text())
-    data["weights"]["sha256"] = file_sha256(folder / "weights.safetensors")
-    data["weights"]["base_sha256"] = data["source"]["weights_sha256"] = state_dict_sha256(
-        state, prefix_exclude="splice_warps.")
-    (folder / "splice.json").write_text(json.dumps(data))
+    _forged(folder, state)
     assert not verify(folder, trust_pickle=True, trust_code=True)["provenance"].passed
 
 
