@@ -69,17 +69,22 @@ class _HoldsModeDependent(nn.Module):
         return self.head(self.inner(torch.relu(self.conv(x))))
 
 
-def test_a_submodule_that_takes_another_path_in_train_mode_becomes_a_leaf():
-    torch.manual_seed(0)
-    base = _HoldsModeDependent()
+def _same_in_both_modes(base: nn.Module, at: str, batch: int) -> None:
+    """Splice ``base`` at ``at`` with no warning (the mode check stays in the module's own forward) and assert the
+    splice equals it bit for bit in train mode and in eval mode."""
     with warnings.catch_warnings():
-        warnings.simplefilter("error")  # nothing to warn of: the check stays in the module's own forward
-        spliced = splice.insert(base, at="relu", input_shape=(3, 8, 8))
-    x = torch.rand(2, 3, 8, 8)
+        warnings.simplefilter("error")
+        spliced = splice.insert(base, at=at, input_shape=(3, 8, 8))
+    x = torch.rand(batch, 3, 8, 8)
     for mode in (True, False):
         base.train(mode)
         spliced.train(mode)
         assert torch.equal(spliced(x), base(x)), mode
+
+
+def test_a_submodule_that_takes_another_path_in_train_mode_becomes_a_leaf():
+    torch.manual_seed(0)
+    _same_in_both_modes(_HoldsModeDependent(), "relu", 2)
 
 
 class _ReadsTrainingOnly(nn.Module):
@@ -475,12 +480,4 @@ class _HoldsChildFlagReader(nn.Module):
 def test_the_module_whose_code_reads_a_childs_flag_is_the_leaf():
     # the read was charged to the child (bn, already a leaf): the block's branch stayed fixed to eval mode
     torch.manual_seed(0)
-    base = _HoldsChildFlagReader()
-    with warnings.catch_warnings():
-        warnings.simplefilter("error")
-        spliced = splice.insert(base, at="input", input_shape=(3, 8, 8))
-    x = torch.rand(4, 3, 8, 8)
-    for mode in (True, False):
-        base.train(mode)
-        spliced.train(mode)
-        assert torch.equal(spliced(x), base(x)), mode
+    _same_in_both_modes(_HoldsChildFlagReader(), "input", 4)
