@@ -88,3 +88,28 @@ def test_scale_axes_near_the_vertical_are_summarised_as_one_spread():
     assert abs(abs(stats["mean"]) - 90.0) < 1.0
     assert stats["std"] == pytest.approx(float(circstd(axes, high=90, low=-90)), rel=0.01)
     assert stats["std"] < 4.0 and summarise(torch.from_numpy(axes))["std"] > 80.0
+
+
+def test_equal_principal_scales_leave_both_outlines_visible(tmp_path):
+    """A warp that zooms evenly has scale_1 == scale_2 on every image: both outlines must still show (the second
+    is dashed over the first). Counted in the scales cell's pixels, against the palette's own colours."""
+    import numpy as np
+    from PIL import Image
+
+    from splice.inspection.plots import HIST_CELL_W, draw_histograms
+    from splice.pictures import OKABE_ITO
+
+    gen = torch.Generator().manual_seed(0)
+    scales = 1.0 + 0.1 * torch.rand(40, generator=gen)
+    desc = {"angle_deg": 5 * torch.randn(40, generator=gen), "scale_1": scales, "scale_2": scales.clone(),
+            "shift_x_px": torch.randn(40, generator=gen), "shift_y_px": torch.randn(40, generator=gen)}
+    path = draw_histograms(tmp_path / "hist.png", "input", "affine", desc)
+    with Image.open(path) as im:
+        cell = np.asarray(im.convert("RGB"))[:, HIST_CELL_W:2 * HIST_CELL_W].astype(int)
+
+    def pixels_of(hex_colour: str) -> int:
+        rgb = np.array([int(hex_colour[i:i + 2], 16) for i in (1, 3, 5)])
+        return int((np.abs(cell - rgb).sum(axis=-1) < 40).sum())
+
+    assert pixels_of(OKABE_ITO["orange"]) > 200  # scale_2, on top
+    assert pixels_of(OKABE_ITO["blue"]) > 200  # scale_1 shows between the dashes (it was hidden before)

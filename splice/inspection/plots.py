@@ -82,9 +82,12 @@ def draw_histograms(path, point: str, family: str, desc: Mapping[str, Tensor]) -
         arrays = [desc[q].detach().to("cpu", torch.float64).numpy() for q, _ in series]
         arrays = [around_circular_mean(a, period_of(q)) if period_of(q) else a for (q, _), a in zip(series, arrays)]
         bins = _bins(*arrays)
-        for (q, legend), values, colour in zip(series, arrays, colours):
+        for j, ((q, legend), values, colour) in enumerate(zip(series, arrays, colours)):
             finite = values[np.isfinite(values)]
-            ax.hist(finite, bins=bins, histtype="stepfilled" if len(series) == 1 else "step", lw=2.0,
+            # two outlines that coincide (equal principal scales) stay both visible: the second is drawn dashed
+            # and thinner over the first, whose colour shows between the dashes
+            ax.hist(finite, bins=bins, histtype="stepfilled" if len(series) == 1 else "step",
+                    lw=2.0 if len(series) == 1 else (3.2 if j == 0 else 1.6), ls="-" if j == 0 else (0, (4, 3)),
                     color=colour, alpha=0.85 if len(series) == 1 else 1.0, label=legend)
         ax.set_xlabel(label, fontsize=FONT_SIZE)
         ax.set_ylabel("images", fontsize=FONT_SIZE)
