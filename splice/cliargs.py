@@ -50,16 +50,9 @@ def add_pixel_cap(p: argparse.ArgumentParser) -> None:
 
 def model_flags(args) -> str:
     """The model-source options the user gave, as flags for the next command to carry (quoted for a shell)."""
-    import shlex
+    from .options import ModelOptions
 
-    flags = []
-    for name, value in (("--weights", args.weights), ("--kwargs", args.kwargs)):
-        if value:
-            flags += [name, value]
-    for shape in getattr(args, "input_shape", None) or []:
-        flags += ["--input-shape", shape]
-    for leaf in args.leaf:
-        flags += ["--leaf", leaf]
-    flags += [f for f, on in (("--allow-partial", args.allow_partial), ("--trust-pickle", args.trust_pickle),
-                              ("--trust-code", args.trust_code)) if on]
-    return "".join(f" {shlex.quote(f)}" for f in flags)
+    return ModelOptions(weights=args.weights or None, kwargs=args.kwargs or None,
+                        input_shape=getattr(args, "input_shape", None) or None, leaves=tuple(args.leaf),
+                        trust_pickle=args.trust_pickle, allow_partial=args.allow_partial,
+                        trust_code=args.trust_code).as_flags()

@@ -60,6 +60,23 @@ class ModelOptions:
             if not isinstance(getattr(self, name), bool):
                 raise ValueError(f"ModelOptions.{name} must be True or False; got {getattr(self, name)!r}")
 
+    def as_flags(self) -> str:
+        """These options as the flags a next command takes (each quoted for a shell, each with a leading space);
+        ``origin`` is not a flag."""
+        import json
+        import shlex
+
+        flags = [] if self.weights is None else ["--weights", os.fspath(self.weights)]
+        if self.kwargs:
+            flags += ["--kwargs", self.kwargs if isinstance(self.kwargs, str) else json.dumps(dict(self.kwargs))]
+        for shape in _shape_texts(self.input_shape):
+            flags += ["--input-shape", shape]
+        for leaf in self.leaves:
+            flags += ["--leaf", leaf]
+        flags += [f for f, on in (("--allow-partial", self.allow_partial), ("--trust-pickle", self.trust_pickle),
+                                  ("--trust-code", self.trust_code)) if on]
+        return "".join(f" {shlex.quote(f)}" for f in flags)
+
     def load(self, model: Any, **extra: Any):
         """:func:`splice.store.open_source` of ``model`` with these options (``extra`` passed on)."""
         from .store import open_source
@@ -68,6 +85,19 @@ class ModelOptions:
         return open_source(spec, weights=self.weights, kwargs=self.kwargs, input_shape=self.input_shape,
                            allow_partial=self.allow_partial, trust_pickle=self.trust_pickle, leaves=self.leaves,
                            trust_code=self.trust_code, origin=self.origin, **extra)
+
+
+def _shape_texts(shape: Any) -> list[str]:
+    """``CxHxW`` texts of an input shape as :class:`ModelOptions` holds it: ``None``, a ``CxHxW`` string, one
+    (C, H, W) or a sequence of those."""
+    if shape is None:
+        return []
+    if isinstance(shape, str):
+        return [shape]
+    items = list(shape)
+    if items and all(isinstance(v, int) for v in items):
+        return ["x".join(str(v) for v in items)]
+    return [s if isinstance(s, str) else "x".join(str(int(v)) for v in s) for s in items]
 
 
 def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: str) -> list:

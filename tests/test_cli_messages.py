@@ -201,3 +201,24 @@ def test_a_pickled_module_spliced_by_a_relative_path_verifies_from_anywhere(tmp_
     assert "Next: splice verify sp --trust-code --trust-pickle" in out
     monkeypatch.chdir("/")
     assert main(["verify", str(tmp_path / "sp"), "--trust-code", "--trust-pickle"]) == 0
+
+
+def test_model_options_written_as_flags_parse_back_to_the_same_options(tmp_path):
+    """The advice commands carry every model option the user gave; splice's own parser reads them back alike
+    (a path with a space, JSON kwargs, two input shapes, a leaf and the opt-ins)."""
+    import shlex
+
+    from splice.cli import build_parser
+    from splice.cliargs import model_flags
+    from splice.options import ModelOptions
+
+    given = ModelOptions(weights=tmp_path / "my weights.pt", kwargs={"width": 4}, input_shape=[(3, 32, 48), "1x8x8"],
+                         leaves=("pkg.mod.Block",), trust_pickle=True, allow_partial=True, trust_code=True)
+    flags = given.as_flags()
+    args = build_parser().parse_args(["insert", "pkg:factory", *shlex.split(flags), "--at", "input", "--out", "o"])
+    assert (args.weights, args.kwargs, args.input_shape, args.leaf) == (
+        str(tmp_path / "my weights.pt"), '{"width": 4}', ["3x32x48", "1x8x8"], ["pkg.mod.Block"])
+    assert args.trust_pickle and args.allow_partial and args.trust_code
+    assert model_flags(args) == flags  # the CLI's own echo is the same text
+    assert ModelOptions(input_shape=(1, 28, 28)).as_flags() == " --input-shape 1x28x28"
+    assert ModelOptions().as_flags() == ""

@@ -118,17 +118,6 @@ def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: Recip
     return Request(model if model is not None else info["model"], recorded, info["data"], mo, info, ckpt)
 
 
-def _given_options(options: ModelOptions) -> str:
-    """The builder options the user gave, as ``splice insert`` takes them (so that the advice keeps the weights)."""
-    import json
-    import shlex
-
-    parts = [] if options.weights is None else ["--weights", os.fspath(options.weights)]
-    if options.kwargs:
-        parts += ["--kwargs", options.kwargs if isinstance(options.kwargs, str) else json.dumps(dict(options.kwargs))]
-    return "".join(f" {shlex.quote(p)}" for p in parts)
-
-
 def load_model(req: Request, where: str):
     """``(source, a module of our own to train, its warps)``; the recipe and the model must fit each other."""
     rec, model = req.recipe, req.model
@@ -143,7 +132,7 @@ def load_model(req: Request, where: str):
     if rec.uses_warps and not warps:
         raise RecipeError(
             f"{where} trains warps, but {describe(model)} has none; splice it first, e.g. "
-            f"'splice insert {describe(model)}{_given_options(req.model_options)} --at input --warp affine "
+            f"'splice insert {describe(model)}{req.model_options.as_flags()} --at input --warp affine "
             "--out SPLICED', then tune SPLICED"
         )
     if not rec.uses_warps and warps:
