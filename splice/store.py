@@ -254,12 +254,22 @@ def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, a
         relink_lifted(model)  # constants the tracer lifted from buffer views, on the meta device until now
         for warp in (m for m in model.modules() if isinstance(m, Warp)):
             p = next(iter(warp.parameters()), None)
-            if p is not None and (grid_dtype(p.dtype) != warp.base_grid.dtype or p.device != warp.base_grid.device):
+            # the frame built every buffer the state does not hold (grids, the head's pooling and identity) in
+            # the default dtype on the CPU: all of them follow the adopted parameters (a half model's head too)
+            if p is not None and any(b.is_floating_point() and b.dtype != (grid_dtype(p.dtype) if is_grid else p.dtype)
+                                     or b.device != p.device for b, is_grid in _warp_buffers(warp)):
                 warp.to(device=p.device, dtype=p.dtype)  # rebuilds its grid buffers in float64, then rounds once
         if _on_meta(model):
             raise WeightsError(f"'{folder}': the model keeps tensors outside its state dict; build its base for "
                                "real before assembling it")
     return model
+
+
+def _warp_buffers(warp: nn.Module):
+    """``(buffer, is it a grid buffer)`` for each buffer of ``warp``: its own are grids (kept at least float32,
+    :func:`~splice.warps.grids.grid_dtype`), its submodules' run in the parameters' dtype."""
+    own = set(map(id, warp.buffers(recurse=False)))
+    return [(b, id(b) in own) for b in warp.buffers()]
 
 
 def _assembled(info: SpliceInfo, state: dict[str, torch.Tensor], folder: Path, *, trust_pickle: bool,

@@ -85,3 +85,25 @@ def test_a_half_warp_keeps_float32_grid_buffers_and_loads_back():
     assert warp.base_grid.dtype == torch.float32 and warp.tps_weights.dtype == torch.float32
     assert warp.double().base_grid.dtype == torch.float64
     assert torch.equal(warp.base_grid, grids.base_grid(16, 20))
+
+
+@pytest.mark.parametrize("dtype", ["float16", "bfloat16"])
+def test_a_spliced_half_model_runs_after_save_and_load(tmp_path, dtype):
+    """Loading adopts the saved tensors on an empty frame; the warp's pooling and identity buffers, which the file
+    does not hold, must follow the parameters' dtype (they stayed float32 and the loaded model raised "expected m1
+    and m2 to have the same dtype")."""
+    import splice
+
+    (tmp_path / "nets.py").write_text(
+        "import torch\nfrom splice.models import tray_net\n\n"
+        f"def low():\n    torch.manual_seed(0)\n    return tray_net(width=8).to(torch.{dtype})\n\n\n"
+        "low.input_shape = (1, 48, 48)\n")
+    spliced = splice.insert(f"{tmp_path / 'nets.py'}:low", at="input", trust_code=True)
+    torch.manual_seed(1)
+    with torch.no_grad():
+        spliced.splice_warps.input.head.fc2.bias.add_(0.05 * torch.randn_like(spliced.splice_warps.input.head.fc2.bias))
+    back = splice.load(splice.save(spliced, tmp_path / "low"), trust_code=True)
+    x = torch.rand(2, 1, 48, 48).to(getattr(torch, dtype))
+    assert {b.dtype for n, b in back.named_buffers() if ".head." in n} == {getattr(torch, dtype)}
+    with torch.no_grad():
+        assert torch.equal(back.eval()(x), spliced.eval()(x))  # the same model as before saving, bit for bit
