@@ -92,6 +92,12 @@ def test_an_export_replaces_an_earlier_export_but_no_other_file(tray_folder, tmp
     earlier.write_bytes(b"an earlier export")
     export(str(tray_folder), onnx=earlier)
     assert earlier.read_bytes() != b"an earlier export"
+    checked = earlier.read_bytes()
+    (tmp_path / "link.pt2").symlink_to(earlier)
+    for pt2 in (earlier, tmp_path / "link.pt2"):  # one file under two names: the .pt2 would replace the checked ONNX
+        with pytest.raises(SpliceError, match=r"--onnx and --pt2 name the same file .* give each its own file"):
+            export(str(tray_folder), onnx=earlier, pt2=pt2)
+    assert earlier.read_bytes() == checked
 
 
 def test_an_onnx_file_says_what_it_needs_and_what_it_returns(tray_folder, tmp_path):

@@ -147,6 +147,9 @@ def _check_targets(onnx, pt2, opset: int, exporter: str) -> None:
         raise SpliceError("export needs a target: onnx=FILE (--onnx FILE) and/or pt2=FILE (--pt2 FILE)")
     if onnx is not None:
         check_opset(opset, exporter)
+    if onnx is not None and pt2 is not None and Path(onnx).resolve() == Path(pt2).resolve():
+        raise SpliceError(f"--onnx and --pt2 name the same file '{onnx}', and the second export would replace the "
+                          "first; give each its own file (model.onnx, model.pt2)")
     for target, suffix in ((onnx, ".onnx"), (pt2, ".pt2")):
         if target is not None and Path(target).is_dir():
             raise SpliceError(f"export target '{target}' is a folder; give a file name such as model{suffix}")
