@@ -224,3 +224,21 @@ def test_a_raise_caught_nearby_is_not_an_input_check():
     assert input_checks(sites) == []
     guard = [f"{__file__}:{Guard.forward.__code__.co_firstlineno + 1}"]
     assert input_checks(guard) == guard
+
+
+def test_a_miss_on_the_checked_batches_is_told_before_the_scaled_probes():
+    """When the graph already differs on a batch it was checked on, the detail says that first (it named only the
+    first scaled probe, as if the checked batches had passed)."""
+    import inspect
+
+    from splice.exporting.branches import judge_conversions
+
+    net = GatedNet()
+    line = inspect.getsourcelines(Gate.forward)[1] + 1  # the `if` on values
+    site = f"{inspect.getsourcefile(Gate)}:{line}"
+    summary = {"passed": False, "detail": "max rel error 0.27 at batch 2, over the tolerance"}
+    judged = judge_conversions(summary, net, [(torch.randn(1, 3, 16, 16),)], [site],
+                               lambda batch: {"passed": False, "max_abs": 1.0, "detail": "max rel error 0.9"})
+    assert not judged["passed"] and judged["branch_on_values"]
+    assert judged["detail"].startswith("max rel error 0.27 at batch 2, over the tolerance; the model takes a Python "
+                                       "branch or number from tensor values at test_export_branches.py:")

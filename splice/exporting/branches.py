@@ -97,8 +97,10 @@ def judge_conversions(summary: dict, model: nn.Module, batches: Sequence[tuple],
         fixed += f"; on the probe scaled by {misses[0][0]:g} the graph answered otherwise ({misses[0][1][:160]})"
         misses = []
     if misses:
+        # a miss on the checked batches themselves comes first: the scaled probes only add to it
+        first = summary["detail"] if not summary["passed"] else f"on the probe scaled by {misses[0][0]:g}: {misses[0][1]}"
         return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": kind == "values",
-                "detail": f"on the probe scaled by {misses[0][0]:g}: {misses[0][1]}; {fixed}"}
+                "detail": f"{first}; {fixed}"}
     ran = [f"{scale:g}" for scale, outcome, _ in outcomes if outcome == "match"]
     others = "; ".join(f"scaled by {scale:g}: {outcome}, {detail}" for scale, outcome, detail in outcomes
                        if outcome != "match")
