@@ -98,7 +98,8 @@ def judge_conversions(summary: dict, model: nn.Module, batches: Sequence[tuple],
         misses = []
     if misses:
         # a miss on the checked batches themselves comes first: the scaled probes only add to it
-        first = summary["detail"] if not summary["passed"] else f"on the probe scaled by {misses[0][0]:g}: {misses[0][1]}"
+        first = (summary["detail"] if not summary["passed"]
+                 else f"on the probe scaled by {misses[0][0]:g}: {misses[0][1]}")
         return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_values": kind == "values",
                 "detail": f"{first}; {fixed}"}
     ran = [f"{scale:g}" for scale, outcome, _ in outcomes if outcome == "match"]
