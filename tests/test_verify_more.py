@@ -227,6 +227,14 @@ def test_cli_exit_codes(tray_folder, tmp_path, capsys):
     assert "does not exist" in capsys.readouterr().err
     assert main(["verify", str(tray_folder), "--onnx", "--opset", "11"]) == 2
     assert "GridSample" in capsys.readouterr().err
+    # an opset newer than torch.onnx writes is bad input too, not a failed row (it was exit 1 at --opset 99)
+    from splice.exporting.onnx import newest_opset
+
+    assert newest_opset() == torch.onnx._constants.ONNX_MAX_OPSET  # torch's own number
+    for command in (["verify", str(tray_folder), "--onnx"], ["export", str(tray_folder), "--onnx",
+                                                             str(tmp_path / "new.onnx")]):
+        assert main([*command, "--opset", str(newest_opset() + 1)]) == 2
+        assert f"newer than the installed torch exports (at most {newest_opset()})" in capsys.readouterr().err
 
 
 class _CachedBias(torch.nn.Module):

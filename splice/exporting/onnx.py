@@ -52,6 +52,22 @@ def check_opset(opset: int, exporter: str) -> None:
             f"ONNX opset {opset!r} is too old for a spliced model: warps need GridSample, "
             f"added in opset {MIN_OPSET}; pass --opset {MIN_OPSET} or newer (default 17)"
         )
+    newest = newest_opset()
+    if newest is not None and opset > newest:
+        raise SpliceError(f"ONNX opset {opset} is newer than the installed torch exports (at most {newest}); pass "
+                          f"--opset {MIN_OPSET} to {newest} (default 17)")
+
+
+def newest_opset() -> int | None:
+    """The newest opset the installed torch.onnx writes (``None`` when it does not say). torch keeps the number in a
+    module of its own (``torch.onnx._constants.ONNX_MAX_OPSET``, 23 in torch 2.14), read defensively."""
+    import importlib
+
+    try:
+        value = importlib.import_module("torch.onnx._constants").ONNX_MAX_OPSET
+    except (ImportError, AttributeError):
+        return None
+    return value if isinstance(value, int) and not isinstance(value, bool) else None
 
 def _downgrade(data: bytes, opset: int) -> bytes:
     """Convert an opset-18 graph from the dynamo exporter down to ``opset`` (16 or 17).
