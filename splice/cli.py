@@ -31,6 +31,14 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # noqa: D401 - argparse's hook
         self.exit(EXIT_USAGE, f"{self.prog}: error: {message}; see '{self.prog} --help'\n")
 
+    def parse_known_args(self, args=None, namespace=None):
+        # an unknown option is reported by the command's own parser, whose --help lists the options it takes
+        parsed, extras = super().parse_known_args(args, namespace)
+        command = getattr(parsed, "command_parser", None)
+        if extras and command is not None and command is not self:
+            command.error(f"unrecognized arguments: {' '.join(extras)}")
+        return parsed, extras
+
 
 # ----------------------------------------------------------------------------- consoles
 
@@ -309,8 +317,11 @@ def _parser_export(sub) -> None:
     p.add_argument("--onnx", metavar="FILE", help="write an ONNX file")
     p.add_argument("--pt2", metavar="FILE", help="write a torch.export program (.pt2)")
     p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX opset (default 17)")
-    p.add_argument("--static-batch", action="store_true",
-                   help="fix the batch dimension to 1 (default: a dynamic batch dimension)")
+    batch = p.add_mutually_exclusive_group()
+    batch.add_argument("--static-batch", action="store_true",
+                       help="fix the batch dimension to 1 (default: a dynamic batch dimension)")
+    batch.add_argument("--dynamic-batch", action="store_true",
+                       help="a dynamic batch dimension (the default; kept so that scripts that ask for it work)")
     p.add_argument("--exporter", choices=("torchscript", "dynamo"), default="torchscript",
                    help="ONNX exporter (default torchscript)")
     p.add_argument("--trust-pickle", action="store_true",
@@ -413,6 +424,7 @@ def build_parser() -> argparse.ArgumentParser:
     _parser_demo(sub)
     for sp in sub.choices.values():  # `splice CMD ... --debug` works as well as `splice --debug CMD`
         sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show full tracebacks")
+        sp.set_defaults(command_parser=sp)
     return parser
 
 

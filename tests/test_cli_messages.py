@@ -135,6 +135,24 @@ def test_argparse_errors_are_one_line(capsys):
         main(["insert", "torchvision:resnet18"])
     err = capsys.readouterr().err
     assert stop.value.code == 2 and len(err.strip().splitlines()) == 1 and "--help" in err
+    # an option the command does not take points at that command's help, which lists the ones it does
+    with pytest.raises(SystemExit) as stop:
+        main(["export", "folder", "--onnx", "m.onnx", "--frobnicate"])
+    err = capsys.readouterr().err
+    assert stop.value.code == 2 and err == ("splice export: error: unrecognized arguments: --frobnicate; see 'splice "
+                                            "export --help'\n")
+
+
+def test_export_takes_dynamic_batch_the_default_by_name(tray_folder, tmp_path):
+    """``--dynamic-batch`` (the default, as the export issue wrote it) is taken; with --static-batch it is refused."""
+    import onnxruntime as ort
+
+    assert main(["export", str(tray_folder), "--onnx", str(tmp_path / "d.onnx"), "--dynamic-batch"]) == 0
+    session = ort.InferenceSession(str(tmp_path / "d.onnx"), providers=["CPUExecutionProvider"])
+    assert session.get_inputs()[0].shape[0] == "batch"  # symbolic, as onnxruntime reads it
+    with pytest.raises(SystemExit) as stop:
+        main(["export", str(tray_folder), "--onnx", "x.onnx", "--dynamic-batch", "--static-batch"])
+    assert stop.value.code == 2
 
 
 def test_main_gives_a_python_caller_its_warning_filters_and_printer_back(tmp_path):
