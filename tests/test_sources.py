@@ -224,8 +224,21 @@ def test_a_pickled_module_whose_class_is_gone_says_so(tmp_path, monkeypatch):
     monkeypatch.delitem(sys.modules, "traycam_net")
     monkeypatch.setattr(sys, "path", [p for p in sys.path if p != str(code)])
     with pytest.raises(WeightsError, match=r"holds a pickled object whose class cannot be found \(No module named "
-                                           r"'traycam_net'\); run from the folder that holds its code"):
+                                           r"'traycam_net'\); put the folder that holds its code on PYTHONPATH"):
         load_source(str(tmp_path / "whole.pt"), trust_pickle=True, input_shape=(3, 8, 8))
+    # the advice works with the installed 'splice' command, which does not search the current folder: the same
+    # command fails from the code's folder and lists the points with the folder on PYTHONPATH
+    import os
+    import shutil
+    import subprocess
+
+    command = [shutil.which("splice"), "points", str(tmp_path / "whole.pt"), "--trust-pickle", "--input-shape",
+               "3x8x8"]
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONPATH"}
+    there = subprocess.run(command, cwd=code, env=env, capture_output=True, text=True)
+    assert there.returncode == 2 and "PYTHONPATH" in there.stderr
+    fixed = subprocess.run(command, cwd=tmp_path, env={**env, "PYTHONPATH": str(code)}, capture_output=True, text=True)
+    assert fixed.returncode == 0 and "input" in fixed.stdout
 
 
 def test_trained_weights_for_a_factory_that_declares_no_normalisation_are_flagged(tmp_path):

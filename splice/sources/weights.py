@@ -99,7 +99,8 @@ def torch_load(path: Path, *, trust_pickle: bool):
         if trust_pickle and isinstance(exc, (ModuleNotFoundError, AttributeError)):
             # a whole pickled module names its class's module, which must import here as where it was saved
             raise WeightsError(f"'{path}' holds a pickled object whose class cannot be found ({first_line(exc)}); "
-                               "run from the folder that holds its code, or put that folder on PYTHONPATH") from None
+                               "put the folder that holds its code on PYTHONPATH (or run 'python -m splice' from that "
+                               "folder; the 'splice' command does not search the current folder)") from None
         if _is_torchscript(path):
             raise WeightsError(
                 f"'{path}' is a TorchScript archive (torch.jit.save), not a state dict: splice splices Python "
