@@ -92,6 +92,26 @@ def test_export_is_dynamic_by_default_and_static_on_request(tmp_path, capsys):
         static.run(None, {"input": x})
 
 
+def _big_cpu_allocations(fn) -> list[tuple[str, int]]:
+    """The CPU allocations over 1 MiB while ``fn`` runs, as torch.profiler's memory accounting (the outside
+    reference) counts them: (op name, bytes)."""
+    from torch.profiler import ProfilerActivity, profile
+
+    with profile(activities=[ProfilerActivity.CPU], profile_memory=True) as prof:
+        fn()
+    return [(e.name, e.cpu_memory_usage) for e in prof.events() if e.cpu_memory_usage > 2 ** 20]
+
+
+def test_listing_through_hooks_allocates_no_image_sized_memory():
+    """A model fx cannot trace is listed on the meta device at a large input (3x2048x2048, 48 MiB a batch): no
+    image-sized CPU tensor is made, for the whole model or within a part (a real probe and its batch-2 copy were
+    allocated and filled, three times the input)."""
+    with pytest.warns(TraceFallbackWarning):
+        assert _big_cpu_allocations(lambda: graph.points(per_image(), (3, 2048, 2048))) == []
+    outer = nn.Sequential(nn.Conv2d(3, 3, 1), per_image())
+    assert _big_cpu_allocations(lambda: graph.points(outer, (3, 2048, 2048), within="1")) == []
+
+
 def test_modules_called_once_per_image_are_not_points():
     # a hook counts calls: at batch 2 the conv's first call would be the first image only
     with pytest.warns(TraceFallbackWarning):

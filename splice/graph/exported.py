@@ -20,12 +20,14 @@ from __future__ import annotations
 
 import contextlib
 import io
+import itertools
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import torch
+import torch.fx as fx
 from torch import nn
 
 from ..copies import private_buffers
@@ -173,7 +175,16 @@ def _export(model: nn.Module, args: tuple, kwargs: dict):
     for m in twin.modules():
         m.__dict__["training"] = False
     recorder = _Recorder(twin)
-    return export_quietly(twin, args, kwargs), recorder.outputs
+    return export_quietly(twin, _as_examples(args, twin), _as_examples(kwargs, twin)), recorder.outputs
+
+
+def _as_examples(value: Any, model: nn.Module) -> Any:
+    """Meta tensors as uninitialised real ones of the same shape and dtype on ``model``'s device (torch.export
+    needs real example inputs, but reads only their shapes and dtypes); anything else as it is."""
+    tensor = next(itertools.chain(model.parameters(), model.buffers()), None)
+    device = tensor.device if tensor is not None else torch.device("cpu")
+    return fx.node.map_aggregate(value, lambda v: torch.empty(v.shape, dtype=v.dtype, device=device)
+                                 if isinstance(v, torch.Tensor) and v.is_meta else v)
 
 
 def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:

@@ -27,7 +27,7 @@ from .fallback import hooks_view
 from .leaves import LeafRule, check_leaves_found
 from .naming import describe_node, names_by_node
 from .scope import scope_inputs
-from .shapes import ShapeFailure, input_dtype, propagate
+from .shapes import ShapeFailure, input_dtype, meta_empty, propagate
 from .tracing import (
     FxFailure,
     check_model,
@@ -277,7 +277,7 @@ def _list(model: nn.Module, shapes: tuple, rule: LeafRule, every: bool, warp: st
         where, todo = fx_failure_hint(failure, model)
         problem = f"torch.fx could not trace {where} ({reason(failure.error)})"
         dtype = input_dtype(model)
-        args = tuple(torch.empty((1, *s), dtype=dtype) for s in shapes)
+        args = tuple(meta_empty((1, *s), dtype) for s in shapes)  # no memory: real tensors only where needed
         entries = hooks_view(model, args, {}, rule, problem=problem, todo=todo, input_shape=shapes[0])
         return _build_points(entries, shapes[0], every, warp, "hooks"), None
     return _build_points(entries, shapes[0], every, warp, "fx"), gm

@@ -19,7 +19,7 @@ from torch import nn
 from ..copies import private_buffers
 from ..errors import GraphError, suggest
 from .rules import ShapeRules
-from .shapes import META, input_dtype, meta_empty, meta_module
+from .shapes import META, input_dtype, meta_empty, meta_module, to_meta
 from .tracing import reason
 
 __all__: list[str] = []
@@ -65,12 +65,6 @@ def _capture(model: nn.Module, scope_name: str, args: tuple) -> tuple[tuple, dic
     return seen["args"], seen["kwargs"]
 
 
-def _as_examples(value: Any) -> Any:
-    """Meta or real tensors -> uninitialised real tensors of the same shape and dtype (inputs to export)."""
-    return fx.node.map_aggregate(value, lambda v: torch.empty(v.shape, dtype=v.dtype)
-                                 if isinstance(v, torch.Tensor) else v)
-
-
 def scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Module, tuple, dict]:
     """``(submodule, example args, example kwargs)`` for a splice ``within`` that submodule."""
     scope = _resolve_scope(model, within)
@@ -91,7 +85,8 @@ def scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Modul
         except Exception as exc:
             raise GraphError(f"--within {within!r}: running {type(model).__name__} up to that module failed "
                              f"({reason(exc)}); check the input shape(s) {list(shapes)}") from exc
-    return scope, _as_examples(tuple(args)), _as_examples(dict(kwargs))
+    # meta tensors: the listing runs on the meta device, and whatever needs real ones makes its own
+    return scope, fx.node.map_aggregate(tuple(args), to_meta), fx.node.map_aggregate(dict(kwargs), to_meta)
 
 
 def _eval_copy(model: nn.Module) -> nn.Module:
