@@ -367,6 +367,22 @@ def test_eval_against_a_spec_without_a_shape_takes_the_first_models():
     assert result["n_images"] > 0 and result["against_model"] is not None
 
 
+def test_eval_against_a_pickled_module_without_a_shape_takes_the_first_models(tmp_path):
+    """A whole pickled model that declares no input shape is compared like a spec without one (it asked for
+    --input-shape, which --against does not pass on). Both see the same images, so the same module scores alike."""
+    from splice.models import tray_net
+    from splice.options import ModelOptions
+
+    torch.manual_seed(0)
+    net = tray_net()
+    torch.save(net, tmp_path / "whole.pt")
+    torch.save(net.state_dict(), tmp_path / "weights.pt")
+    result = splice.evaluate("splice.models:tray_net", data="digits", distort="rotate=0,30", against=tmp_path / "whole.pt",
+                             model_options=ModelOptions(weights=tmp_path / "weights.pt"),
+                             against_options=ModelOptions(trust_pickle=True))
+    assert result["against"] == {"clean": result["clean"], "sweeps": result["sweeps"]}
+
+
 class _NeedsReal(nn.Module):
     """Reads a value (so it must be a leaf) and calls its parent's activation."""
 

@@ -240,7 +240,8 @@ def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
         raise SourceError(f"'{spec}' is a folder, which load_source does not open; pass it to a splice command "
                           "or open it with splice.store.open_source")
     if _looks_like_pickled_module(spec):
-        return _load_pickled_module(path, shapes, trust_pickle=options["trust_pickle"])
+        return _load_pickled_module(path, shapes, trust_pickle=options["trust_pickle"],
+                                    default=parse_input_shapes(options["default_input_shape"]) or ())
     if not path.exists() and ("/" in spec or spec.endswith(_WEIGHT_SUFFIXES)):
         raise SourceError(f"model path '{spec}' does not exist; check the path")
     raise SourceError(
@@ -296,7 +297,9 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     return src
 
 
-def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> Source:
+def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool, default: tuple = ()) -> Source:
+    """A whole pickled module; its input shapes are the given ones, else its own ``input_shape``, else
+    ``default`` (the first model's, for a second model compared with it)."""
     check_file(path, "model file")
     obj = torch_load(path, trust_pickle=trust_pickle)
     if not isinstance(obj, nn.Module):
@@ -307,6 +310,7 @@ def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool) -> So
     _refuse_unspliceable(obj, str(path))
     if not shapes and getattr(obj, "input_shape", None):
         shapes = parse_input_shapes(obj.input_shape) or ()
+    shapes = shapes or default
     if not shapes:
         raise SourceError(f"cannot tell the input shape of '{path}'; pass --input-shape CxHxW")
     obj.eval()
