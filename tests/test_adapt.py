@@ -6,6 +6,7 @@ files, so that a whole label-free run takes a second or two.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -464,3 +465,32 @@ def test_resuming_a_label_free_run_on_changed_site_images_says_the_batches_diffe
     with pytest.warns(SpliceWarning, match=r"resuming with 39 site and 40 reference images where the run started "
                                            r"with 40 and 40"):
         tune(resume=out, run_options=RunOptions(progress=False, stop_after_steps=3))
+
+
+def test_a_resumed_run_draws_from_the_exact_estimated_ranges(tmp_path, folders, spliced, monkeypatch):
+    """An estimate is seldom a round number; the checkpoint kept it rounded to 4 decimals, so a run stopped after the
+    estimate pre-trained and adapted within other ranges than an uninterrupted one (weights off by up to 0.6)."""
+    from splice.adapt import run as adapt_run
+    from splice.training import TuneInterrupted
+
+    real_estimate, real_regress = adapt_run.estimate_ranges, adapt_run.regress_warps_
+
+    def unround(*args, **kwargs):  # what a probe reads off real site images: no short decimal
+        est = real_estimate(*args, **kwargs)
+        return dataclasses.replace(est, rotation=est.rotation + 0.123456789, shift=est.shift + 1.23456789e-5)
+    monkeypatch.setattr(adapt_run, "estimate_ranges", unround)
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full = tmp_path / "full"
+    tune(str(spliced), out=full, run_options=QUIET, **kw)
+
+    def stop(*args, **kwargs):
+        raise TuneInterrupted("interrupted during pre-train warps")
+    monkeypatch.setattr(adapt_run, "regress_warps_", stop)
+    part = tmp_path / "part"
+    with pytest.raises(TuneInterrupted):
+        tune(str(spliced), out=part, run_options=QUIET, **kw)
+    monkeypatch.setattr(adapt_run, "regress_warps_", real_regress)
+    tune(resume=part, run_options=QUIET)
+    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
+        state_dict_sha256(splice.load(full / "last").state_dict())

@@ -94,11 +94,15 @@ class RangeEstimate:
         return RangeEstimate(self.rotation, (min(lo, 1.0), max(hi, 1.0)), self.shift, self.perspective,
                              dict(self.observable), dict(self.statistics))
 
-    def to_dict(self) -> dict:
-        return {"rotation": round(self.rotation, 4), "scale": [round(self.scale[0], 4), round(self.scale[1], 4)],
-                "shift": round(self.shift, 4), "perspective": round(self.perspective, 4),
-                "observable": dict(self.observable),
-                "statistics": {k: {s: round(v, 6) for s, v in d.items()} for k, d in self.statistics.items()}}
+    def to_dict(self, exact: bool = False) -> dict:
+        """Plain JSON types, rounded for reading (4 decimals, statistics 6); with ``exact`` every float as it
+        is, for a checkpoint whose resumed run must draw from the very ranges the interrupted one used."""
+        def r(v: float, digits: int = 4) -> float:
+            return float(v) if exact else round(v, digits)
+
+        return {"rotation": r(self.rotation), "scale": [r(self.scale[0]), r(self.scale[1])],
+                "shift": r(self.shift), "perspective": r(self.perspective), "observable": dict(self.observable),
+                "statistics": {k: {s: r(v, 6) for s, v in d.items()} for k, d in self.statistics.items()}}
 
     @classmethod
     def from_dict(cls, d: dict) -> RangeEstimate:

@@ -91,7 +91,7 @@ def save_state(run: AdaptRun, *, phase: str, epoch: int, batch: int, extra: dict
         "optimizer": run.optimizer.state_dict() if run.optimizer is not None else {},
         "scheduler": {"kind": run.rec.schedule, "step": run.step}, "rng": rng_state(), "best": dict(run.best),
         "metrics_rows": run.metrics_rows, "recipe": run.rec.to_dict(),
-        "estimate": run.estimate.to_dict() if run.estimate is not None else None,
+        "estimate": run.estimate.to_dict(exact=True) if run.estimate is not None else None,
     }
     if extra:
         payload.update(extra)
