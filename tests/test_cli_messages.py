@@ -77,12 +77,13 @@ from torch import nn
 class OddStrides(nn.Module):
     def __init__(self):
         super().__init__()
-        self.a = nn.Conv2d(1, 4, 3, stride=3)             # 10x10 -> 3x3: stride 3.3333 both ways
-        self.b = nn.Conv2d(4, 4, (1, 2), stride=(1, 2))   # 3x3 -> 3x1: (3.3333, 10)
+        self.a = nn.Conv2d(1, 4, 3, stride=2, padding=1)  # 10x10 -> 5x5: stride 2
+        self.up = nn.Upsample(scale_factor=1.5)            # 5x5 -> 7x7: stride 2 / 1.5 = 1.3333
+        self.b = nn.Conv2d(4, 4, (1, 2), stride=(1, 2))   # 7x7 -> 7x3: (1.3333, 2.6667)
         self.c = nn.Conv2d(4, 4, 1)
 
     def forward(self, x):
-        return self.c(self.b(torch.relu(self.a(x)))).mean((2, 3))
+        return self.c(self.b(self.up(torch.relu(self.a(x))))).mean((2, 3))
 
 
 def build():
@@ -91,12 +92,12 @@ def build():
 
 
 def test_points_table_shows_strides_that_are_not_whole_numbers(tmp_path, capsys):
-    # an input size that the map's size does not divide gives a float stride (10 / 3), per axis a tuple
+    # a stride after an upsampling by 1.5 is a fraction (2 / 1.5), per axis a tuple
     factory = tmp_path / "odd.py"
     factory.write_text(_ODD_STRIDES)
     assert main(["points", f"{factory}:build", "--input-shape", "1x10x10", "--all"]) == 0
     out = capsys.readouterr().out
-    assert "3.3333" in out and "3.3333x10" in out, out
+    assert "1.3333" in out and "1.3333x2.6667" in out, out
 
 
 def test_unknown_point_suggests_the_nearest_names_in_graph_order():

@@ -60,6 +60,17 @@ of common CNNs ends (a strided conv followed by a pool or a second strided
 conv), so the second warp works on low-level features that still have spatial
 detail; a cut means one warp sees the whole signal.
 
+Strides
+-------
+A point's ``stride`` is the cumulative stride from the input: each op
+multiplies the stride of the tensor it reads by its own, and a join keeps the
+largest product over its inputs (:mod:`.strides`). Convs, pools, unpools,
+upsamplings, pixel shuffles, slices and pads give their own from their
+arguments (modules and functional forms alike); any other op from its sizes:
+the integer whose floor or ceil division gives its output size, else the
+exact ratio. So six stride-2 convs give 64 at 37x53 as at 64x64, where input
+size / point size would give 37 and 53.
+
 Where fx cannot trace: the hooks views
 --------------------------------------
 If fx cannot trace the model, :func:`points` warns (:class:`TraceFallbackWarning`)
@@ -80,7 +91,7 @@ Files
 -----
 ``leaves`` (the leaf registry), ``tracing`` (the fx tracer, train/eval
 comparison), ``lifted`` (constants the tracer lifts), ``shapes`` (meta-device propagation), ``cuts`` (dominators),
-``naming`` (point names, lookup), ``entries`` (4-D activations between
+``naming`` (point names, lookup), ``strides`` (cumulative strides), ``entries`` (4-D activations between
 convs), ``recorded``, ``exported`` and ``fallback`` (the hooks views),
 ``scope`` (``within``), ``listing`` (:class:`Point`, :func:`points`).
 """

@@ -19,6 +19,7 @@ from torch import nn
 
 from .cuts import cut_analysis
 from .naming import enclosing_module, names_by_node
+from .strides import Stride, call_stride, cumulative, holds_tensor, module_stride, spatial
 
 __all__: list[str] = []
 
@@ -37,6 +38,7 @@ class Entry:
     join: str | None
     between_convs: bool
     site: tuple[str, int] | None = None  # hooks: (module qualname, call index); None for fx and the input
+    stride: Stride | None = None  # the cumulative stride from the input (splice.graph.strides); None: not followed
 
 
 def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:
@@ -113,6 +115,42 @@ def site_name(stem: str, call: int, taken: set[str]) -> str:
     return name
 
 
+def op_name(target: Any) -> str:
+    """``max_pool2d``, ``getitem``: a function's or method's name without dunder marks, as the stride rules key it."""
+    name = target if isinstance(target, str) else getattr(target, "__name__", "")
+    return name[2:-2] if name.startswith("__") and name.endswith("__") and len(name) > 4 else name
+
+
+def _own_stride(n: fx.Node, modules: dict[str, nn.Module]) -> Stride | None:
+    if n.op == "call_module":
+        return module_stride(modules[n.target])
+    if n.op in ("call_function", "call_method"):
+        return call_stride(op_name(n.target), n.args, n.kwargs)
+    return None
+
+
+def node_strides(nodes: list[fx.Node], modules: dict[str, nn.Module], values: Mapping, layouts: Mapping) -> dict:
+    """Each fx node's (stride, (H, W)) from the graph's inputs (:func:`splice.graph.strides.cumulative`)."""
+    sources, steps = [], []
+    for n in nodes:
+        if n.op in ("get_attr", "output"):
+            continue
+        value = values.get(n)
+        if not holds_tensor(value):
+            continue
+        layout = layouts.get(n)
+        hw = spatial(value, layout)
+        if n.op == "placeholder":
+            sources.append((n, hw))
+            continue
+        own = first = None
+        if hw is not None and (layout is None or layout == NCHW):
+            own = _own_stride(n, modules)
+            first = n.args[0] if own is not None and n.args else None
+        steps.append((n, n.all_input_nodes, hw, own, first))
+    return cumulative(steps, sources)
+
+
 def graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[fx.Node, Any]) -> list[Entry]:
     nodes = list(graph.nodes)
     is_conv = {n: _is_conv_node(n, modules) for n in nodes}
@@ -125,6 +163,7 @@ def graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[f
     cuts, joins = cut_analysis(graph, values)
     names = names_by_node(graph)
     layouts = layouts_of(nodes, values, is_conv)
+    strides = node_strides(nodes, modules, values, layouts)
     entries = []
     for n in nodes:
         if n.op in ("get_attr", "output") or layouts.get(n) != NCHW:
@@ -137,6 +176,6 @@ def graph_entries(graph: fx.Graph, modules: dict[str, nn.Module], values: dict[f
             name=names[n], module=module, kind="input" if is_input else "activation",
             shape=tuple(int(s) for s in v.shape[1:]), cut=n in cuts,
             join=None if join is None else names[join],
-            between_convs=conv_up[n] and conv_down[n],
+            between_convs=conv_up[n] and conv_down[n], stride=strides[n][0] if n in strides else None,
         ))
     return entries

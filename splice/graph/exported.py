@@ -33,6 +33,7 @@ from torch import nn
 from ..copies import private_buffers
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, site_name
+from .strides import call_stride, cumulative, holds_tensor, spatial
 
 __all__ = ["export_quietly"]
 
@@ -211,6 +212,7 @@ def export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[Entry]:
     up, down = _flows(nodes, is_conv)
     cuts, joins = cut_analysis(graph, values)
     layouts = layouts_of(nodes, values, is_conv, _permutation)
+    strides = _strides(nodes, values, layouts)
     entries = []
     for n in nodes:
         if n not in names or layouts.get(n) != NCHW:
@@ -225,5 +227,27 @@ def export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[Entry]:
             shape=tuple(int(s) for s in values[n].shape[1:]), cut=n in cuts,
             join=None if join is None else names.get(join) or _node_name(join),
             between_convs=up[n] and down[n], site=None if site is None else (site.module, site.call),
+            stride=strides[n][0] if n in strides else None,
         ))
     return entries
+
+
+def _strides(nodes: list, values: Mapping, layouts: Mapping) -> dict:
+    """Each exported node's (stride, (H, W)) from the user's inputs (:func:`splice.graph.strides.cumulative`);
+    parameters and buffers are no sources."""
+    sources, steps = [], []
+    for n in nodes:
+        if n.op == "output" or (n.op == "placeholder" and n not in values):
+            continue
+        value = values.get(n)
+        if not holds_tensor(value):
+            continue
+        layout = layouts.get(n)
+        hw = spatial(value, layout)
+        if n.op == "placeholder":
+            sources.append((n, hw))
+            continue
+        own = call_stride(_op(n), n.args, n.kwargs) if hw is not None and layout in (None, NCHW) else None
+        first = n.args[0] if n.args and isinstance(n.args[0], torch.fx.Node) else None
+        steps.append((n, n.all_input_nodes, hw, own, first))
+    return cumulative(steps, sources)

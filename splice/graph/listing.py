@@ -28,6 +28,7 @@ from .leaves import LeafRule, check_leaves_found
 from .naming import describe_node, names_by_node
 from .scope import scope_inputs
 from .shapes import ShapeFailure, input_dtype, meta_empty, propagate
+from .strides import Stride, at_least, input_relative, stride_value
 from .tracing import (
     FxFailure,
     check_model,
@@ -48,9 +49,11 @@ _RECOMMEND_MIN_SIZE = 8
 class Point:
     """One place where a warp can go: a 4-D activation of the traced model.
 
-    ``shape`` is (C, H, W); ``stride`` is input size / point size, an int when
-    both axes agree and an exact division, else an ``(sh, sw)`` tuple (floats
-    when the division is not exact). ``module`` is the qualname of the module
+    ``shape`` is (C, H, W); ``stride`` is the cumulative stride from the input
+    (the product of the strides of the ops on the way, the largest over the
+    inputs of a join; :mod:`splice.graph.strides`), an int when both axes
+    agree, else an ``(sh, sw)`` tuple (a float, to 4 decimals, only when truly
+    fractional: after an upsampling by 1.5). ``module`` is the qualname of the module
     that produces the tensor (for functional ops, the module whose forward
     calls them; ``""`` at the top level and for the input). ``warp_params`` and
     ``warp_macs`` are what the default warp would add there.
@@ -100,9 +103,9 @@ class Point:
         }
 
 
-def _stride(in_hw: tuple[int, int], hw: tuple[int, int]) -> int | float | tuple:
-    parts = [a // b if a % b == 0 else round(a / b, 4) for a, b in zip(in_hw, hw)]
-    return parts[0] if parts[0] == parts[1] else tuple(parts)
+def _stride(e: Entry, in_hw: tuple[int, int]) -> Stride:
+    """The entry's stride from the data flow; a view without one (module outputs alone) reads the sizes."""
+    return e.stride if e.stride is not None else input_relative(in_hw, e.shape[1:])
 
 
 def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every: bool, warp: str,
@@ -112,11 +115,11 @@ def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every
     config = WarpConfig(family=warp)
     in_hw = input_shape[1:]
     chosen = None
+    strides = {id(e): _stride(e, in_hw) for e in entries}
     for e in entries:
         h, w = e.shape[1:]
         if (
-            e.kind != "input" and e.cut and e.between_convs
-            and in_hw[0] >= _RECOMMEND_MIN_STRIDE * h and in_hw[1] >= _RECOMMEND_MIN_STRIDE * w
+            e.kind != "input" and e.cut and e.between_convs and at_least(strides[id(e)], _RECOMMEND_MIN_STRIDE)
             and h >= _RECOMMEND_MIN_SIZE and w >= _RECOMMEND_MIN_SIZE
         ):
             chosen = e
@@ -133,7 +136,7 @@ def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every
             costs[e.shape] = warp_cost(config, e.shape)
         params, macs = costs[e.shape]
         out.append(Point(
-            name=e.name, module=e.module, shape=e.shape, stride=_stride(in_hw, e.shape[1:]),
+            name=e.name, module=e.module, shape=e.shape, stride=stride_value(strides[id(e)]),
             cut=e.cut, in_branch=e.join is not None, join=e.join,
             warp_params=int(params), warp_macs=int(macs),
             recommended=e.cut and (e.kind == "input" or (e is chosen and not input_cut)), kind=e.kind,

@@ -36,6 +36,7 @@ from .entries import NCHW, Entry, dims_permutation, module_stem, site_name
 from .leaves import LeafRule, stepped_leaves
 from .rules import meta_rule
 from .shapes import META, meta_module, run_for_real, to_meta
+from .strides import Stride, call_stride, cumulative, spatial
 from .modes import spying
 
 __all__: list[str] = []
@@ -51,12 +52,15 @@ _CONVS = frozenset({"conv2d", "conv_transpose2d", "convolution", "_convolution"}
 class _Op:
     """One recorded operation: its name, the recorded operations it read, when it ran and in which module."""
 
-    __slots__ = ("index", "name", "inputs", "value", "owner", "layout", "users")
+    __slots__ = ("index", "name", "inputs", "value", "owner", "layout", "users", "own", "first")
 
-    def __init__(self, index: int, name: str, inputs: list[int], value: Any, owner: str, layout):
+    def __init__(self, index: int, name: str, inputs: list[int], value: Any, owner: str, layout,
+                 own: Stride | None = None, first: int | None = None):
         self.index, self.name, self.inputs, self.value, self.owner = index, name, inputs, value, owner
         self.layout = layout
         self.users: list[int] = []
+        # the op's own stride where splice knows it, and the op that wrote the tensor it reads (its first argument)
+        self.own, self.first = own, first
 
 
 def _name(func) -> str:
@@ -107,8 +111,9 @@ class _Recording(TorchFunctionMode):
     def source(self, t: torch.Tensor) -> int:
         return self._add("input", [], t, NCHW if t.dim() == 4 else None)
 
-    def _add(self, name: str, inputs: list[int], value, layout) -> int:
-        op = _Op(len(self.ops), name, inputs, value, self.stack[-1] if self.stack else "", layout)
+    def _add(self, name: str, inputs: list[int], value, layout, own: Stride | None = None,
+             first: int | None = None) -> int:
+        op = _Op(len(self.ops), name, inputs, value, self.stack[-1] if self.stack else "", layout, own, first)
         self.ops.append(op)
         for i in inputs:
             self.ops[i].users.append(op.index)
@@ -125,8 +130,13 @@ class _Recording(TorchFunctionMode):
         written = list(_tensors(out))
         if not written and name == "setitem" and args and isinstance(args[0], torch.Tensor):
             written = [args[0]]  # x[...] = y writes into x: its new value reads y
+        own = first = None
+        if any(t.dim() == 4 for t in written):
+            own = call_stride(name, args, kwargs)
+            lead = args[0] if args else None
+            first = self.producer.get(id(lead)) if isinstance(lead, torch.Tensor) else None
         for t in written:
-            self._add(name, inputs, t, self._layout(name, args, inputs, t))
+            self._add(name, inputs, t, self._layout(name, args, inputs, t), own, first)
 
     def _layout(self, name: str, args: tuple, inputs: list[int], t: torch.Tensor):
         if t.dim() != 4:
@@ -283,6 +293,7 @@ def recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule
         conv_down[op.index] = any(rec.ops[u].name in _CONVS or conv_down[u] for u in op.users)
     index = {node: i for i, node in nodes.items()}
     names = _names(rec, sites)
+    strides = _strides(rec)
     entries = []
     for op in rec.ops:
         is_input = op.index == 0
@@ -295,8 +306,22 @@ def recorded_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule
             kind="input" if is_input else "activation", shape=tuple(int(s) for s in op.value.shape[1:]),
             cut=nodes[op.index] in cuts, join=join_name, between_convs=conv_up[op.index] and conv_down[op.index],
             site=None if is_input else sites[op.index],
+            stride=strides[op.index][0] if op.index in strides else None,
         ))
     return entries
+
+
+def _strides(rec: _Recording) -> dict[int, tuple]:
+    """Each recorded op's (stride, (H, W)) from the inputs (:func:`splice.graph.strides.cumulative`)."""
+    sources, steps = [], []
+    for op in rec.ops:
+        hw = spatial(op.value, op.layout) if op.layout is not None else None
+        if op.name == "input":
+            sources.append((op.index, hw))
+        else:
+            own = op.own if op.layout == NCHW else None
+            steps.append((op.index, op.inputs, hw, own, op.first))
+    return cumulative(steps, sources)
 
 
 def _owner_name(op: _Op) -> str:

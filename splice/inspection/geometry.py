@@ -18,7 +18,8 @@ __all__ = ["map_points", "outline_and_lattice"]
 # pixel (matplotlib's imshow extent (0, W, H, 0) uses the same frame).
 #
 # Feature-level warps read a feature map of h x w pixels with stride
-# (sy, sx) = input size / point size (the definition of splice.graph.Point.stride).
+# (sy, sx) = input size / point size: the map's footprint scale, not splice.graph.Point.stride (the
+# cumulative stride of the ops, 2 for a 37 -> 19 conv where this ratio is 1.947).
 # A feature pixel edge X_f covers input pixels up to X = sx X_f, so the
 # feature map's normalised coordinates map onto the input by
 # X = (x + 1) w sx / 2. This is the feature map's footprint on the input; it

@@ -56,7 +56,8 @@ def _sample_images(ds, n: int, seed: int = 0) -> tuple[Tensor, Tensor, Tensor]:
 
 
 def _stride(input_shape, warp_shape) -> tuple[float, float]:
-    """``(sy, sx)`` = input size / point size, as :class:`splice.graph.Point` defines the stride."""
+    """``(sy, sx)`` = input size / point size: the feature map's footprint on the input, which the drawings need
+    (:class:`splice.graph.Point`'s ``stride`` is the ops' cumulative stride, which need not span the image)."""
     return (input_shape[1] / warp_shape[1], input_shape[2] / warp_shape[2])
 
 
