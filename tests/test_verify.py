@@ -290,6 +290,23 @@ def test_a_splice_that_stopped_updating_a_buffer_fails_buffers(model_file):
     assert "the spliced model does not" in report["buffers"].detail
 
 
+def test_a_splice_that_froze_a_value_read_from_an_updated_buffer_fails_buffers(model_file):
+    """The first call of base and splice agree; from the same counter on, the base's warm-up factor grows and the
+    traced graph's does not (it was computed once, while tracing). The certificate must not pass it."""
+    spliced = insert(f"{model_file}:warming_net", at="input", check=False)
+    base = splice.load_source(f"{model_file}:warming_net").model
+    base.load_state_dict({k: v for k, v in spliced.state_dict().items() if not k.startswith("splice_warps.")})
+    x = torch.randn(2, 1, 20, 20)
+    twin_b, twin_s = copy.deepcopy(base).eval(), copy.deepcopy(spliced).eval()
+    with torch.no_grad():  # the reference: the two models themselves, called twice from the same counter
+        firsts = twin_b(x), twin_s(x)
+        seconds = twin_b(x), twin_s(x)
+    assert torch.allclose(*firsts) and not torch.allclose(*seconds)
+    report = verify_models(base, spliced)
+    assert report.failed == ["buffers"]
+    assert "answer differently" in report["buffers"].detail and "--leaf" in report["buffers"].detail
+
+
 def test_nearest_sampler_fails_gradients(tray_source, tmp_path):
     spliced = insert(tray_source, at="pool2", warp=WarpConfig(sampler="nearest"))
     report = verify(store.save(spliced, tmp_path / "nearest"))

@@ -114,8 +114,9 @@ class Snapshot:
         return frozenset(n for n, b in model.named_buffers()
                          if f"{tag}:{n}" in self.buffers and not bitwise_equal(self.buffers[f"{tag}:{n}"], b))
 
-    def check(self, runs: Mapping[str, nn.Module] | None = None) -> CheckResult:
-        """The ``buffers`` row; ``runs`` are the twins the checks ran (their updates are reported, not failed)."""
+    def check(self, runs: Mapping[str, nn.Module] | None = None, after_updates: dict | None = None) -> CheckResult:
+        """The ``buffers`` row; ``runs`` are the twins the checks ran (their updates are reported, not failed).
+        ``after_updates`` is :func:`after_same_updates`'s comparison, for a base that updates buffers in eval."""
         now = {f"{tag}:{n}": b for tag, m in self.models.items() for n, b in m.named_buffers()}
         changed = sorted(k for k, v in self.buffers.items() if k.split(":", 1)[0] in self.models
                          and (k not in now or not bitwise_equal(v, now[k])))
@@ -134,8 +135,10 @@ class Snapshot:
         # ran the update once, while tracing, would not)
         lost = [k for k in updated if k.startswith("base:") and "spliced:" + k[5:] in ran
                 and "spliced:" + k[5:] not in updated]
+        drift = after_updates is not None and not after_updates["passed"]
         numbers = {"buffers": len(self.buffers), "changed": changed, "modes_restored": not wrong_modes,
-                   "updated_in_eval": updated, "not_updated_by_splice": lost}
+                   "updated_in_eval": updated, "not_updated_by_splice": lost,
+                   "after_updates_max_rel": None if after_updates is None else after_updates.get("max_rel")}
         if changed:
             detail = (f"{len(changed)} of {len(self.buffers)} buffers changed while the checks ran: "
                       f"{listed_names(changed)} (restored); the checks must leave the models as they were")
@@ -144,6 +147,12 @@ class Snapshot:
         elif lost:
             detail = (f"the base updates {listed_names(lost)} in its forward, the spliced model does not; "
                       "mark the updating module as a leaf (--leaf TYPE) and re-create the splice")
+        elif drift:
+            detail = (f"the forward updates {listed_names(updated)} even in eval mode, and from the same buffers base "
+                      f"and splice then answer differently ({after_updates['detail']}): the splice holds a value its "
+                      "trace computed from them once; mark the module whose code reads them as a leaf (--leaf TYPE; "
+                      "when the model's own forward reads them, splice inside a part with --within NAME) and "
+                      "re-create the splice")
         elif not self.models:  # models verify built for itself: they ran on copies of the folder's buffers
             detail = f"the checks ran on copies of the {len(self.buffers)} buffers read from the folder"
             if updated:
@@ -154,9 +163,11 @@ class Snapshot:
             if updated:
                 detail += (f"; the forward updates {listed_names(updated)} even in eval mode, in base and splice "
                            "alike (the checks ran on copies of the buffers)")
-        passed = not changed and not wrong_modes and not lost
+        passed = not changed and not wrong_modes and not lost and not drift
         return CheckResult("buffers", passed, numbers, detail,
-                           f"{len(self.buffers)} buffers, {len(changed) + len(lost)} changed")
+                           f"{len(self.buffers)} buffers, {len(changed) + len(lost)} changed"
+                           + (", calls drift apart" if drift else ""))
+
 
 
 class Laps:
