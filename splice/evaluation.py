@@ -37,7 +37,7 @@ from torch.nn import functional as F
 
 from .compare import class_logits, logits_or_refuse
 from .errors import DataError, SpliceError, suggest
-from .options import ModelOptions, load_against, refuse_several_inputs, split_keywords
+from .options import ModelOptions, load_against, refuse_several_inputs, refuse_unfit_inputs, split_keywords
 
 __all__ = [
     "improved",
@@ -365,6 +365,7 @@ def _load_models(model, against, model_options: ModelOptions, against_options: M
     if src.input_shape is None:
         raise SpliceError("evaluate needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW.")
     refuse_several_inputs("evaluate", src.input_shapes)
+    refuse_unfit_inputs(src.model, src.input_shapes)
     models = [("model", _label(model), src, _prepare(src, dev, model))]
     if against is not None:
         other = ModelOptions(input_shape=src.input_shape if isinstance(against, nn.Module) else None,
@@ -372,6 +373,7 @@ def _load_models(model, against, model_options: ModelOptions, against_options: M
         # both models see the same preprocessed images: a second model that declares no shape takes the first's
         src2 = load_against(against, other, src.input_shape)
         refuse_several_inputs("evaluate", src2.input_shapes, "--against")
+        refuse_unfit_inputs(src2.model, src2.input_shapes, "the --against model")
         if src2.input_shape is not None and tuple(src2.input_shape) != tuple(src.input_shape):
             raise DataError(
                 f"the two models take different inputs ({'x'.join(map(str, src.input_shape))} and "

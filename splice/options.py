@@ -130,6 +130,33 @@ def refuse_several_inputs(command: str, shapes: Sequence, what: str = "the model
                       f"images, spliced on its own), or {_OWN_CODE.get(command, command)} this one in your own code")
 
 
+def refuse_unfit_inputs(model, shapes: Sequence, what: str = "the model") -> None:
+    """One line when ``model`` cannot run on inputs of ``shapes`` at all (an image too small for its pooling),
+    found by one no-grad forward of a batch of one on a twin in eval mode, before any work: the same failure at the
+    first batch was an internal error. Only torch's own refusals (``RuntimeError``) count; the caller's model,
+    buffers and modes are not changed."""
+    import itertools
+
+    import torch
+
+    from .copies import private_buffers
+    from .errors import first_line
+
+    if not shapes:
+        return
+    tensor = next(itertools.chain(model.parameters(), model.buffers()), None)
+    like = {"device": tensor.device if tensor is not None else "cpu",
+            "dtype": tensor.dtype if tensor is not None and tensor.is_floating_point() else torch.float32}
+    twin = private_buffers(model).eval()
+    try:
+        with torch.no_grad():
+            twin(*[torch.rand((1, *(int(v) for v in s)), **like) for s in shapes])
+    except RuntimeError as exc:
+        listed = ", ".join("x".join(str(int(v)) for v in s) for s in shapes)
+        raise SpliceError(f"{what} does not run on inputs of {listed} ({first_line(exc)}); check the "
+                          "input shape (--input-shape CxHxW; the images are resized to it)") from None
+
+
 # the opt-ins a refusal of ``against`` names, as the user gives them for that model
 _AGAINST_OPT_INS = (("--trust-code", "--against-trust-code"), ("trust_code=True", "against_trust_code=True"),
                     ("--trust-pickle", "--against-trust-pickle"), ("trust_pickle=True", "against_trust_pickle=True"))

@@ -86,7 +86,9 @@ def recorded_run():
     RECORDED.clear()
     result = E.evaluate(_recorder_source(), data="digits", split="test", distort=DISTORT,
                         options=E.EvalOptions(batch_size=BATCH, limit=N, device="cpu"))
-    batches = list(RECORDED)
+    # the first call is evaluate's check that the model runs on its input shape at all: one image, before any batch
+    assert RECORDED[0].shape == (1, 1, 48, 48)
+    batches = list(RECORDED)[1:]
     RECORDED.clear()
     return result, batches
 
@@ -153,10 +155,12 @@ def test_against_sees_the_same_images_and_has_the_same_shape(tmp_path):
     first, second = _Recorder(), _Recorder()
     result = E.evaluate_keywords(first, data="digits", against=second, distort="rotate=0,45", limit=4, batch_size=4,
                         device="cpu", plot=tmp_path / "sweep.png")
-    # batches alternate model / against per condition: clean, rotate 0, rotate 45
-    assert len(RECORDED) == 6
+    # each model's check that it runs on the input shape (one image), then batches alternate model / against per
+    # condition: clean, rotate 0, rotate 45
+    assert len(RECORDED) == 8 and RECORDED[0].shape == RECORDED[1].shape == (1, 1, 48, 48)
+    fed = RECORDED[2:]
     for i in range(0, 6, 2):
-        torch.testing.assert_close(RECORDED[i], RECORDED[i + 1], rtol=0, atol=0)
+        torch.testing.assert_close(fed[i], fed[i + 1], rtol=0, atol=0)
     RECORDED.clear()
     assert set(result["against"]) == {"clean", "sweeps"}
     assert [e["level"] for e in result["against"]["sweeps"]["rotate"]] == [0.0, 45.0]

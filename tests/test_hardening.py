@@ -245,6 +245,11 @@ def _cases():
         ("pixel cap not positive", ["eval", TRAY, "--data", "digits", "--max-image-pixels", "0"], "positive"),
         ("--workers -1", ["tune", TRAY, "--recipe", "baseline", "--workers", "-1", "--out", f("r9")], "--workers"),
         ("usage error", ["verify", ("KEY", "folder"), "--dtype", "float8"], "--help"),
+        # an image too small for the model's pooling: refused before the first batch (an internal error there)
+        ("input too small, eval", ["eval", TRAY, "--input-shape", "1x4x4", "--data", "digits"],
+         "does not run on inputs of 1x4x4"),
+        ("input too small, tune", ["tune", TRAY, "--input-shape", "1x4x4", "--recipe", "baseline", "--epochs", "1",
+                                   "--quiet", "--out", f("r10")], "does not run on inputs of 1x4x4"),
     ]
 
 

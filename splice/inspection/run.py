@@ -11,7 +11,7 @@ from torch import Tensor
 
 from ..fileio import json_safe
 from ..errors import DataError, SpliceError
-from ..options import refuse_several_inputs
+from ..options import refuse_several_inputs, refuse_unfit_inputs
 from .capture import capture, check_positive_int
 from .decompose import QUANTITY_HELP, describe_theta, quantities_for
 from .plots import draw_histograms
@@ -171,6 +171,7 @@ def _load(folder, trust_pickle: bool, trust_code: bool = False):
         )
     info = info_of(model)
     refuse_several_inputs("inspect", info.input_shapes if info is not None else ())
+    refuse_unfit_inputs(model, info.input_shapes if info is not None else ())
     return model, warps, info
 
 

@@ -18,7 +18,7 @@ from ..copies import modes_kept
 from ..fileio import state_dict_sha256
 from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
-from ..options import ModelOptions, refuse_several_inputs
+from ..options import ModelOptions, refuse_several_inputs, refuse_unfit_inputs
 from ..recipes import Recipe, load_recipe
 from ..objects import made_from_object
 from ..sources import MODULE_SPEC
@@ -148,6 +148,7 @@ def load_model(req: Request, where: str):
     if src.input_shape is None:
         raise SpliceError("tune needs the model's input shape; pass --input-shape CxHxW (input_shape=...)")
     refuse_several_inputs("tune", src.input_shapes)
+    refuse_unfit_inputs(net, src.input_shapes)
     if made_from_object(net) and req.ckpt is None:
         warnings.warn("this splice was made from a module object: the run's folders keep its weights, but load and "
                       "verify cannot rebuild them; load their weights into the spliced model (load_state_dict), or "
