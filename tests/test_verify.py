@@ -290,10 +290,31 @@ def test_a_splice_that_stopped_updating_a_buffer_fails_buffers(model_file):
     assert "the spliced model does not" in report["buffers"].detail
 
 
+def test_a_leafs_buffer_read_outside_it_is_a_node_of_the_graph(model_file):
+    """WarmingNet's own forward reads the counter its leaf updates: the graph reads the buffer at each call (fx
+    hands traced code a buffer's value, so the factor computed from it was a constant of the graph)."""
+    spliced = insert(f"{model_file}:warming_net", at="input", check=False)
+    assert splice.manifest.info_of(spliced).mechanism == "fx"
+    assert [n.target for n in spliced.graph.nodes if n.op == "get_attr"] == ["tally.calls"]
+    base = splice.load_source(f"{model_file}:warming_net").model
+    base.load_state_dict({k: v for k, v in spliced.state_dict().items() if not k.startswith("splice_warps.")})
+    report = verify_models(base, spliced)  # before either has run: their counters are the source's
+    assert report.passed, [(c.check, c.detail) for c in report.checks if not c.passed]
+    x = torch.randn(2, 1, 20, 20)
+    with torch.no_grad():  # the reference: the base itself, call after call
+        for _ in range(3):
+            torch.testing.assert_close(spliced.eval()(x), base.eval()(x), rtol=0, atol=0)
+
+
 def test_a_splice_that_froze_a_value_read_from_an_updated_buffer_fails_buffers(model_file):
     """The first call of base and splice agree; from the same counter on, the base's warm-up factor grows and the
-    traced graph's does not (it was computed once, while tracing). The certificate must not pass it."""
+    frozen graph's does not (as a trace that computed it once would). The certificate must not pass it."""
     spliced = insert(f"{model_file}:warming_net", at="input", check=False)
+    read = next(n for n in spliced.graph.nodes if n.op == "get_attr" and n.target == "tally.calls")
+    # its value after one call, kept by the graph (out of the state dict, as a lifted constant is)
+    spliced.register_buffer("frozen_calls", spliced.get_buffer("tally.calls").clone() + 1, persistent=False)
+    read.target = "frozen_calls"
+    spliced.recompile()
     base = splice.load_source(f"{model_file}:warming_net").model
     base.load_state_dict({k: v for k, v in spliced.state_dict().items() if not k.startswith("splice_warps.")})
     x = torch.randn(2, 1, 20, 20)

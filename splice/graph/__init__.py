@@ -18,7 +18,10 @@ a private clone of the module tree that owns copies of the buffers
 (:func:`splice.copies.private_buffers`): code that updates a buffer while it
 is traced (a fused BatchNorm counting batches) never changes the caller's model.
 Such a module is kept as a leaf (found by its buffers' version counters), so
-the traced graph keeps updating its buffers as the model does.
+the traced graph keeps updating its buffers as the model does. Code outside a
+leaf that reads one of its buffers (a warm-up factor computed from a call
+counter) reads it as a node of the graph, not as the value it held while
+tracing, so the graph computes from the buffer at every call.
 
 Points
 ------

@@ -68,19 +68,39 @@ class _Tracer(fx.Tracer):
         return self._params, self._buffers
 
     def _root_name(self, value: Any) -> str | None:
-        """The name fx's search would find for ``value`` (parameters first, then buffers), or None."""
+        """The name fx's search would find for ``value`` (parameters first, then buffers), or None; a buffer of a
+        leaf is found too (see :meth:`getattr`)."""
         params, buffers = self._tables()
-        tables = ((params,) if isinstance(value, nn.Parameter) else ()) + (
-            (buffers,) if self.proxy_buffer_attributes else ())
-        for table in tables:
-            found = table.get(id(value))
+        if isinstance(value, nn.Parameter):
+            found = params.get(id(value))
             if found is not None and found[0] is value:
                 return found[1]
+        found = buffers.get(id(value))
+        if found is not None and found[0] is value and (self.proxy_buffer_attributes or self._in_a_leaf(found[1])):
+            return found[1]
         return None
+
+    def _in_a_leaf(self, name: str) -> bool:
+        """Whether buffer ``name`` belongs to a leaf (or a module inside one), whose own forward may change it."""
+        path = name.rpartition(".")[0]
+        parts = path.split(".") if path else []
+        module = self.root
+        for i, part in enumerate(parts):
+            module = module._modules.get(part)
+            if module is None:
+                return False
+            if self.is_leaf_module(module, ".".join(parts[:i + 1])):
+                return True
+        return False
 
     def getattr(self, attr: str, attr_val: Any, parameter_proxy_cache: dict[str, Any]) -> Any:
         """fx's rule (a parameter or buffer of the root becomes one ``get_attr`` node, shared by every read),
-        with the root's tensors looked up by identity instead of searched; anything else is fx's own."""
+        with the root's tensors looked up by identity instead of searched; anything else is fx's own.
+
+        fx hands traced code a buffer's value, not a node, so whatever the code computes from it becomes a
+        constant of the graph. That is right for a buffer no forward changes, but not for one a leaf's own
+        forward updates (a call counter, a batch norm's statistics in train mode) read by code outside it: such
+        a buffer is read as a node, so the graph computes from its value at each call."""
         name = self._root_name(attr_val) if isinstance(attr_val, torch.Tensor) else None
         if name is None or self.param_shapes_constant:
             return super().getattr(attr, attr_val, parameter_proxy_cache)
