@@ -309,8 +309,11 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
 
 
 def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pickle: bool = False,
-            pictures: bool = True, trust_code: bool = False) -> dict:
+            pictures: bool = True, trust_code: bool = False, overwrite: bool = False) -> dict:
     """What the warps learned: per-image polar decomposition, a summary, and pictures, written to ``out``.
+
+    ``out`` is new, empty, or an earlier report of inspect's (replaced); a folder holding anything else is
+    refused unless ``overwrite=True``, which writes the report beside its files.
 
     >>> import splice, tempfile
     >>> result = splice.inspect(splice.insert("splice.models:tray_net", at="input"), data="digits", n=8,
@@ -318,12 +321,14 @@ def inspect(model, *, data: str, out, n: int = 64, split: str = "test", trust_pi
     >>> result["warps"]["input"]["quantities"]["angle_deg"]["mean"]   # a fresh splice is the identity
     0.0
     """
+    from .folders import check_report_folder
     from .inspection import inspect as inspect_folder
     from .objects import made_from_object
 
+    check_report_folder(out, overwrite=overwrite)  # before a model is saved to a temporary folder
     model = _module(model)
     if made_from_object(model):  # a splice of a module object: inspected as it is, in memory
-        return inspect_folder(model, data=data, n=n, split=split, out=out, pictures=pictures)
+        return inspect_folder(model, data=data, n=n, split=split, out=out, pictures=pictures, overwrite=overwrite)
     with _as_folder(model, trust_pickle, trust_code) as folder:
         return inspect_folder(folder, data=data, n=n, split=split, out=out, trust_pickle=trust_pickle,
-                              pictures=pictures, trust_code=trust_code)
+                              pictures=pictures, trust_code=trust_code, overwrite=overwrite)

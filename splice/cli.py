@@ -172,8 +172,10 @@ def _cmd_insert(args) -> int:
 
 
 def _cmd_verify(args) -> int:
-    from .verification import render_verify, verify, write_report
+    from .verification import check_report_target, render_verify, verify, write_report
 
+    if args.report:
+        check_report_target(args.report)  # before any work: a certificate never replaces a file of the user's
     report = verify(args.folder, images=args.images, batch=args.batch, dtype=args.dtype, onnx=args.onnx,
                     opset=args.opset, seed=args.seed, trust_pickle=args.trust_pickle, exporter=args.exporter,
                     trust_code=args.trust_code)
@@ -230,7 +232,7 @@ def _cmd_inspect(args) -> int:
     from .inspection import inspect, render_inspect
 
     result = inspect(args.folder, data=args.data, n=args.n, split=args.split, out=args.out,
-                     trust_pickle=args.trust_pickle, trust_code=args.trust_code)
+                     trust_pickle=args.trust_pickle, trust_code=args.trust_code, overwrite=args.overwrite)
     render_inspect(result, _console())
     return EXIT_OK
 
@@ -364,7 +366,10 @@ def _parser_inspect(sub) -> None:
     p.add_argument("--data", required=True, metavar="NAME|DIR")
     p.add_argument("--n", type=int, default=64, help="number of images (default 64)")
     p.add_argument("--split", default="test", help="the data split to read (default test)")
-    p.add_argument("--out", required=True, metavar="REPORT_DIR")
+    p.add_argument("--out", required=True, metavar="REPORT_DIR",
+                   help="folder to write the report to: new, empty, or an earlier report (replaced)")
+    p.add_argument("--overwrite", action="store_true",
+                   help="write the report into a REPORT_DIR that holds other files (same-named files are replaced)")
     add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true",
                    help="allow the pickled checkpoint or module the folder was made from (the same opt-in as insert)")

@@ -296,8 +296,13 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
          "plot": str | None}
     """
     from .data import open_data
+    from .folders import check_outside
+    from .pictures import check_png_target
     from .training.distributed import pick_device
 
+    if plot is not None:  # before any work: a plot never replaces a file of the user's
+        check_png_target(plot, "--plot target")
+        check_outside(plot, data, "--plot target", "images")
     sweeps = parse_distort(distort)
     model_options = model_options or ModelOptions()
     options = options or EvalOptions()
@@ -492,4 +497,4 @@ def draw_sweep_plot(result: Mapping, path):
     if handles:
         fig.legend(handles=handles, loc="upper right", bbox_to_anchor=(1 - 12 / w, 1 - 8 / h), ncols=1,
                    fontsize=FONT_SIZE, frameon=False)
-    return save_png(fig, path)
+    return save_png(fig, path, "--plot target")

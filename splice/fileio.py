@@ -7,6 +7,7 @@ failed write never leaves a half-written file where a good one used to be.
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import json
 import math
@@ -21,6 +22,7 @@ __all__ = [
     "atomic_write_text",
     "atomic_write_json",
     "atomic_dir",
+    "write_safetensors",
     "make_dir",
     "recover_dirs",
     "file_sha256",
@@ -45,6 +47,9 @@ def _fsync_dir(path: Path) -> None:
             os.close(fd)
 
 
+_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC)}  # no room left: the disk, or the user's quota
+
+
 def _target_error(target: Path, exc: OSError):
     """A failed write as one line that names the user's target, never the temporary file beside it.
 
@@ -61,6 +66,10 @@ def _target_error(target: Path, exc: OSError):
         why = f"'{blocker}' is a file, not a folder; choose a path inside a folder"
     elif isinstance(exc, PermissionError):
         why = "permission denied; make its folder writable or choose another path"
+    elif exc.errno == errno.EFBIG:  # a file-size limit ('ulimit -f') or the largest file the file system holds
+        why = f"{exc.strerror}; raise the file-size limit ('ulimit -f'), free disk space or write to another disk"
+    elif exc.errno in _FULL:
+        why = f"{exc.strerror}; free disk space or write to another disk"
     else:
         why = f"{exc.strerror or type(exc).__name__}; check the path and the disk"
     return WriteError(f"could not write '{target}': {why}", exc, target)
@@ -185,6 +194,30 @@ def atomic_dir(target: str | os.PathLike, *, overwrite: bool = False) -> Iterato
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def write_safetensors(path: str | os.PathLike, state: Mapping, metadata: Mapping[str, str] | None = None) -> Path:
+    """``safetensors.torch.save_file`` into a folder :func:`atomic_dir` is building; a failure to write is an
+    ``OSError``.
+
+    safetensors reports a failed write (a full disk, a file-size limit) as its own ``SafetensorError``, whose
+    text ends in the ``(os error N)`` of the cause; raised here as that ``OSError`` (``EIO`` when no number is
+    given), so :func:`atomic_dir` names the folder in one line, removes the half-written copy and keeps the old.
+    """
+    import re
+
+    from safetensors import SafetensorError
+    from safetensors.torch import save_file
+
+    try:
+        save_file(dict(state), str(path), metadata=None if metadata is None else dict(metadata))
+    except SafetensorError as exc:
+        text = " ".join(str(exc).split())
+        code = re.search(r"\(os error (\d+)\)", text)
+        if code is not None:
+            raise OSError(int(code.group(1)), os.strerror(int(code.group(1)))) from exc
+        raise OSError(errno.EIO, f"the weights file could not be written ({text[:300]})") from exc
+    return Path(path)
 
 
 def _settle(folder: Path) -> None:

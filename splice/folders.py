@@ -4,6 +4,10 @@ Two kinds of folder are splice's: a spliced folder (``splice.json`` whose
 ``format`` is ``splice-folder``) and a tune run folder (``run.json`` whose
 ``format`` is ``splice-run``). Only those may be replaced by ``--overwrite``
 (:func:`check_replaceable`); anything else is the user's and is left alone.
+The same rule holds for the files and report folders a command writes where
+the user says (:func:`check_file_target`, :func:`check_report_folder`): an
+earlier output of the same kind is replaced, anything else is refused in one
+line before any work.
 
 A run folder is locked while a run writes to it (:class:`FolderLock`): the
 file ``.splice.lock`` holds the writer's process id, and the writer holds an
@@ -25,14 +29,17 @@ from pathlib import Path
 
 from .errors import SpliceError
 
-__all__ = ["MANIFEST_FILE", "FOLDER_FORMAT", "RUN_FILE", "RUN_FORMAT", "LOCK_FILE", "FolderBusy",
-           "FolderLock", "folder_kind", "lock_holder", "check_replaceable", "check_keeps_inputs"]
+__all__ = ["MANIFEST_FILE", "FOLDER_FORMAT", "RUN_FILE", "RUN_FORMAT", "LOCK_FILE", "REPORT_FILE", "REPORT_FORMAT",
+           "FolderBusy", "FolderLock", "folder_kind", "lock_holder", "check_replaceable", "check_keeps_inputs",
+           "check_file_target", "check_report_folder", "check_outside"]
 
 MANIFEST_FILE = "splice.json"
 FOLDER_FORMAT = "splice-folder"
 RUN_FILE = "run.json"
 RUN_FORMAT = "splice-run"
 LOCK_FILE = ".splice.lock"
+REPORT_FILE = "summary.json"  # the record of a report folder 'splice inspect' wrote
+REPORT_FORMAT = "splice-inspect-report"
 
 
 class FolderBusy(SpliceError):
@@ -227,3 +234,59 @@ def check_keeps_inputs(target: str | os.PathLike, inputs) -> None:
         if path is not None and path.exists() and (path.resolve() == out or out in path.resolve().parents):
             raise SpliceError(f"--overwrite would delete '{target}', which holds '{given}', read by this command; "
                               "choose another output folder")
+
+
+def check_file_target(target: str | os.PathLike, label: str, example: str, *, suffix: str | None = None,
+                      fmt: tuple[str, str] | None = None) -> None:
+    """Raise unless writing the file ``target`` destroys nothing of the user's, before any work is done.
+
+    A folder is refused. An existing file is replaced only when it is an earlier output of the same kind: its
+    name ends in ``suffix`` (any case; ``.png``, ``.onnx``) or, for ``fmt = (format, what it is)``, it is JSON
+    whose ``format`` is that (a certificate). ``label`` names the option in the message (``--plot target``),
+    ``example`` a file name to give.
+    """
+    path = Path(target)
+    if path.is_dir():
+        raise SpliceError(f"{label} '{target}' is a folder; give a file name such as {example}")
+    if not path.exists() and not path.is_symlink():
+        return
+    if suffix is not None and path.suffix.lower() == suffix.lower():
+        return
+    if fmt is not None and _format_of(path) == fmt[0]:
+        return
+    kind = f"a {suffix} file" if suffix is not None else f"{fmt[1]} (its 'format' is not '{fmt[0]}')"
+    ending = f"give a file name ending in {suffix}" if suffix is not None else "give another file name"
+    raise SpliceError(f"{label} '{target}' exists and is not {kind}, so it is not replaced; {ending}, "
+                      "or move that file away")
+
+
+def check_report_folder(out: str | os.PathLike | None, *, overwrite: bool = False) -> None:
+    """Raise unless ``out`` may take the files of an ``inspect`` report, before any work is done.
+
+    ``out`` may be absent, empty, or an earlier report (its ``summary.json`` has ``format`` ``REPORT_FORMAT``),
+    whose files are replaced. Any other folder is the user's: refused unless ``overwrite``, which writes the
+    report's files beside what it holds (files of the same names are replaced). A file is always refused.
+    """
+    if out is None:  # the command says it needs one
+        return
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise SpliceError(f"report folder '{out}' is a file; give a folder name (--out DIR)")
+    if overwrite or not out.is_dir() or not any(out.iterdir()) or _format_of(out / REPORT_FILE) == REPORT_FORMAT:
+        return
+    raise SpliceError(
+        f"report folder '{out}' holds {_listing(out)}, not a report 'splice inspect' wrote, and the report's files "
+        "would go among them; choose another --out folder, or pass --overwrite (overwrite=True) to write them there"
+    )
+
+
+def check_outside(target: str | os.PathLike, folder, label: str, what: str) -> None:
+    """Raise when ``target`` is ``folder`` or inside it, where ``folder`` is a folder the command reads ``what``
+    from (an image folder: a picture written there would be read as one of its images). A ``folder`` that is not
+    an existing folder (a data set's name) is no concern."""
+    if folder is None or not Path(str(folder)).is_dir():
+        return
+    inside, out = Path(str(folder)).resolve(), Path(target).resolve()
+    if out == inside or inside in out.parents:
+        raise SpliceError(f"{label} '{target}' is inside '{folder}', which this command reads {what} from, so "
+                          f"what it writes would be read as {what} next time; write it outside that folder")

@@ -17,8 +17,10 @@ import torch
 from torch import Tensor
 
 from .fileio import atomic_write_bytes
+from .folders import check_file_target
 
-__all__ = ["DPI", "OKABE_ITO", "FONT_SIZE", "new_figure", "save_png", "image_array", "image_cmap"]
+__all__ = ["DPI", "OKABE_ITO", "FONT_SIZE", "new_figure", "save_png", "check_png_target", "image_array",
+           "image_cmap"]
 
 DPI = 100
 FONT_SIZE = 10
@@ -47,8 +49,15 @@ def new_figure(width_px: int, height_px: int):
     return fig
 
 
-def save_png(fig, path: str | os.PathLike) -> Path:
-    """Render ``fig`` to PNG and write it atomically; returns the path."""
+def check_png_target(path: str | os.PathLike, label: str = "picture target") -> None:
+    """Raise unless a PNG may be written at ``path``: a folder, or an existing file that is not a ``.png``, is
+    refused (:func:`splice.folders.check_file_target`); an earlier PNG is replaced."""
+    check_file_target(path, label, "plot.png", suffix=".png")
+
+
+def save_png(fig, path: str | os.PathLike, label: str = "picture target") -> Path:
+    """Render ``fig`` to PNG and write it atomically (:func:`check_png_target` first); returns the path."""
+    check_png_target(path, label)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=DPI)
     return atomic_write_bytes(path, buf.getvalue())

@@ -28,7 +28,7 @@ from torch import nn
 
 from .copies import rng_kept
 from .folders import folder_kind
-from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256
+from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256, write_safetensors
 from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
 from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
@@ -103,8 +103,6 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     >>> splice.save(spliced, "out/r18-affine")                          # doctest: +SKIP
     PosixPath('out/r18-affine')
     """
-    from safetensors.torch import save_file
-
     info = info_of(model) or _plain_info(source)
     if info.spec == MODULE_SPEC and source is not None:
         info = respecified(info, model, source, assemble)
@@ -120,7 +118,7 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     manifest = info.to_manifest(weights=weights, versions=_versions(), created=created)
     validate_manifest(manifest, "the manifest being written")
     with atomic_dir(folder, overwrite=overwrite) as tmp:
-        save_file(state, str(tmp / WEIGHTS_NAME), metadata={"format": "pt"})
+        write_safetensors(tmp / WEIGHTS_NAME, state, {"format": "pt"})
         manifest["weights"]["sha256"] = file_sha256(tmp / WEIGHTS_NAME)
         (tmp / MANIFEST_NAME).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")
     return Path(folder)

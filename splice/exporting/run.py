@@ -11,6 +11,7 @@ import torch
 
 from ..copies import rng_kept
 from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
+from ..folders import check_file_target
 from ..manifest import info_of
 from ..sources import code_change
 from ..store import load
@@ -151,12 +152,9 @@ def _check_targets(onnx, pt2, opset: int, exporter: str) -> None:
         raise SpliceError(f"--onnx and --pt2 name the same file '{onnx}', and the second export would replace the "
                           "first; give each its own file (model.onnx, model.pt2)")
     for target, suffix in ((onnx, ".onnx"), (pt2, ".pt2")):
-        if target is not None and Path(target).is_dir():
-            raise SpliceError(f"export target '{target}' is a folder; give a file name such as model{suffix}")
         # an earlier export is replaced; a file of another kind (a typo'd source file, a checkpoint) is not
-        if target is not None and Path(target).exists() and Path(target).suffix.lower() != suffix:
-            raise SpliceError(f"export target '{target}' exists and is not a {suffix} file, so it is not replaced; "
-                              f"give a file name ending in {suffix}, or move that file away")
+        if target is not None:
+            check_file_target(target, "export target", f"model{suffix}", suffix=suffix)
 
 
 def _deployment_notes(model) -> dict[str, str]:

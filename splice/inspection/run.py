@@ -11,6 +11,7 @@ from torch import Tensor
 
 from ..fileio import json_safe
 from ..errors import DataError, SpliceError
+from ..folders import REPORT_FILE, REPORT_FORMAT, check_outside, check_report_folder
 from ..options import refuse_several_inputs, refuse_unfit_inputs
 from .capture import capture, check_positive_int
 from .decompose import QUANTITY_HELP, describe_theta, quantities_for
@@ -84,8 +85,8 @@ class _Sample:
 
 
 def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_pickle: bool = False,
-            batch_size: int = 64, sheet_images: int = SHEET_IMAGES, pictures: bool = True,
-            trust_code: bool = False) -> dict:
+            sheet_images: int = SHEET_IMAGES, pictures: bool = True, trust_code: bool = False,
+            overwrite: bool = False) -> dict:
     """Show what the warps of a spliced folder learned, on ``n`` images of a data split (a seeded sample across
     its classes, :func:`sample_indices`).
 
@@ -95,8 +96,12 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     ``sheet_<point>.png`` (input-level warps: input | sampling grid | output for
     the first ``sheet_images`` images of the sample) or ``outline_<point>.png``
     (feature-level warps: the sampling outline projected onto the input).
+    ``out`` may be new, empty or an earlier report (its ``summary.json`` says ``"format":
+    "splice-inspect-report"``), whose files are replaced; any other folder is refused before any work unless
+    ``overwrite=True`` (``--overwrite``), which writes the report beside what the folder holds. ``out`` inside
+    the ``data`` folder is refused (its pictures would be read as images).
 
-    Returns ``{"schema_version", "model", "data", "split", "n_images",
+    Returns ``{"format", "schema_version", "model", "data", "split", "n_images",
     "accuracy", "accuracy_note", "warps": {point: {"family", "level", "shape", "stride",
     "quantities": {name: {"n", "mean", "std", "p5", "p95", "min", "max"}}}},
     "help", "files", "out"}``; statistics of a quantity with no finite value
@@ -112,14 +117,16 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     check_positive_int("sheet_images", sheet_images)
     if out is None:
         raise SpliceError("inspect needs an output folder for its report; pass out=DIR (--out DIR).")
+    check_report_folder(out, overwrite=overwrite)  # before any work: the user's files are not written over
+    check_outside(out, data, "report folder", "images")
     model, warps, facts = _load(folder, trust_pickle, trust_code)
     sample = _sample(facts, data, split, n)
-    cap = capture(model, sample.images, normalisation=sample.normalisation, batch_size=batch_size)
+    cap = capture(model, sample.images, normalisation=sample.normalisation)
     _score(sample, cap.logits)
     outdir = make_dir(out)
     rows: list[dict] = []
     summary_warps: dict[str, dict] = {}
-    files = {"csv": "warps.csv", "summary": "summary.json", "pictures": []}
+    files = {"csv": "warps.csv", "summary": REPORT_FILE, "pictures": []}
     for point, warp in warps.items():
         theta = cap.thetas[point]
         desc = describe_theta(warp, theta)
@@ -131,13 +138,13 @@ def inspect(folder, *, data: str, n: int = 64, split: str = "test", out, trust_p
     atomic_write_text(outdir / "warps.csv", csv_text(rows))
     used = sorted({q for w in summary_warps.values() for q in w["quantities"]}, key=CSV_QUANTITIES.index)
     result = json_safe({
-        "schema_version": SCHEMA_VERSION, "model": _name(folder), "data": str(data),
+        "format": REPORT_FORMAT, "schema_version": SCHEMA_VERSION, "model": _name(folder), "data": str(data),
         "split": None if sample.unlabelled else split,
         "n_images": int(sample.images.shape[0]), "accuracy": sample.accuracy,
         "accuracy_note": sample.accuracy_note, "warps": summary_warps,
         "help": {q: QUANTITY_HELP[q] for q in used}, "files": files,
     })
-    atomic_write_json(outdir / "summary.json", result)
+    atomic_write_json(outdir / REPORT_FILE, result)
     result["out"] = str(outdir)
     return result
 

@@ -125,7 +125,10 @@ def recipe_to_toml(recipe: Recipe) -> str:
 
 
 def dump_recipe(recipe: Recipe, path: str | os.PathLike) -> Path:
-    """Write the resolved recipe atomically (TOML)."""
+    """Write the resolved recipe atomically (TOML); an existing file is replaced only when it is a ``.toml``
+    (:func:`splice.folders.check_file_target`)."""
     from ..fileio import atomic_write_text
+    from ..folders import check_file_target
 
+    check_file_target(path, "recipe target", "recipe.toml", suffix=".toml")
     return atomic_write_text(path, recipe_to_toml(recipe))

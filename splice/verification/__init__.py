@@ -88,7 +88,7 @@ from __future__ import annotations
 from ..compare import DEFAULT_TOLERANCES, compare_outputs, flatten_outputs
 from ..data import IMAGE_SUFFIXES
 from .probe import DTYPES, probe_batch, probe_inputs
-from .report import CheckResult, VerifyReport, render_verify, versions, write_report
+from .report import CheckResult, VerifyReport, check_report_target, render_verify, versions, write_report
 from .run import verify, verify_models
 
 __all__ = [
@@ -105,5 +105,6 @@ __all__ = [
     "probe_inputs",
     "render_verify",
     "write_report",
+    "check_report_target",
     "versions",
 ]

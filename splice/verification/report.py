@@ -9,8 +9,9 @@ from pathlib import Path
 import torch
 
 from ..fileio import atomic_write_json, json_safe
+from ..folders import check_file_target
 
-__all__ = ["CheckResult", "VerifyReport", "versions", "render_verify", "write_report"]
+__all__ = ["CheckResult", "VerifyReport", "versions", "render_verify", "write_report", "check_report_target"]
 
 _CERTIFICATE = "splice-verify-certificate"
 
@@ -105,6 +106,13 @@ def render_verify(report: VerifyReport, console) -> None:
         console.print(f"[bold red]FAIL[/]: {len(report.failed)} of {n} checks failed ({', '.join(report.failed)})",
                       markup=True)
 
+def check_report_target(path: str | os.PathLike) -> None:
+    """Raise unless the certificate may be written at ``path``: new, or an earlier certificate (JSON whose
+    ``format`` is the certificate's), never a folder or another file (:func:`splice.folders.check_file_target`)."""
+    check_file_target(path, "--report target", "certificate.json", fmt=(_CERTIFICATE, "a certificate splice wrote"))
+
+
 def write_report(report: VerifyReport, path: str | os.PathLike) -> Path:
-    """Write the JSON certificate to ``path`` atomically."""
+    """Write the JSON certificate to ``path`` atomically (:func:`check_report_target` first)."""
+    check_report_target(path)
     return atomic_write_json(path, report.to_json())
