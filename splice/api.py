@@ -62,10 +62,16 @@ def _as_folder(model, trust_pickle: bool = False, trust_code: bool = False) -> I
         yield Path(model)
         return
     src = _source(model, trust_pickle=trust_pickle, warn_random=False, trust_code=trust_code)
+    from .errors import SpliceError
+    from .manifest import info_of
+    from .sources import MODULE_SPEC
+
+    if info_of(src.model) is None and getattr(src, "spec", MODULE_SPEC) == MODULE_SPEC:
+        raise SpliceError("this module holds no warps: give a spliced model (a folder splice wrote, or the module "
+                          "splice.insert returned), or splice it first (splice.insert(model, at=..., "
+                          "input_shape=...))")
     with tempfile.TemporaryDirectory(prefix="splice-") as tmp:
         folder = Path(tmp) / "model"
-        from .manifest import info_of
-
         save(src.model, folder, source=None if info_of(src.model) is not None else src)
         _warn_unsaved(src.model, folder, trust_pickle, trust_code)
         try:

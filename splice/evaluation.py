@@ -368,7 +368,8 @@ def _load_models(model, against, model_options: ModelOptions, against_options: M
     """``[(role, label, source, module on dev in eval mode)]`` for the model and ``against``."""
     src = model_options.load(model)
     if src.input_shape is None:
-        raise SpliceError("evaluate needs the model's input shape; pass input_shape=(C, H, W) / --input-shape CxHxW.")
+        raise SpliceError("evaluate needs the model's input shape; pass --input-shape CxHxW (Python: "
+                          "model_options=ModelOptions(input_shape=(C, H, W)))")
     refuse_several_inputs("evaluate", src.input_shapes)
     refuse_unfit_inputs(src.model, src.input_shapes)
     models = [("model", _label(model), src, _prepare(src, dev, model))]

@@ -83,7 +83,7 @@ def _plain_info(source) -> SpliceInfo:
     if src is None or getattr(src, "spec", MODULE_SPEC) == MODULE_SPEC:
         raise SpliceError(
             "save() needs to know how to rebuild the base architecture; pass "
-            "source='torchvision:NAME' / 'pkg.mod:factory' or a Source from splice.load_source"
+            "source='torchvision:NAME' / 'pkg.mod:factory' or a Source loaded from such a spec"
         )
     return SpliceInfo.from_source(src)
 

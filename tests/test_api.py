@@ -49,3 +49,29 @@ def test_docstring_examples_run(verb, tmp_path, monkeypatch):
         runner.run(test)
     result = runner.summarize(verbose=False)
     assert result.failed == 0, f"{result.failed} of {result.attempted} examples of splice.{verb} failed"
+
+
+def test_a_plain_module_object_gets_advice_it_can_follow(tmp_path):
+    """verify, export and inspect of a module with no warps, and evaluate without a shape, say what to pass, by
+    parameters those functions take (they named save()'s source= and an input_shape= evaluate has no such name for)."""
+    import torch
+    from torch import nn
+
+    from splice.errors import SpliceError
+    from splice.evaluation import EvalOptions
+    from splice.options import ModelOptions
+
+    torch.manual_seed(0)
+    plain = nn.Sequential(nn.Conv2d(1, 4, 3, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
+                          nn.Linear(4, 10))
+    for call in (lambda: splice.verify(plain), lambda: splice.export(plain, onnx=tmp_path / "p.onnx"),
+                 lambda: splice.inspect(plain, data="digits", out=tmp_path / "r")):
+        with pytest.raises(SpliceError, match=r"this module holds no warps: .*splice\.insert\(model, at="):
+            call()
+    spliced = splice.insert(plain, at="input", input_shape=(1, 16, 16))  # the advice, followed
+    assert splice.verify(spliced).passed
+    with pytest.raises(SpliceError, match=r"model_options=ModelOptions\(input_shape=\(C, H, W\)\)"):
+        splice.evaluate(plain, data="digits")
+    result = splice.evaluate(plain, data="digits", distort="none", model_options=ModelOptions(input_shape=(1, 16, 16)),
+                             options=EvalOptions(limit=8))
+    assert result["n_images"] == 8

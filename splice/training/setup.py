@@ -142,8 +142,9 @@ def load_model(req: Request, where: str):
         )
     if not warps and info_of(net) is None and getattr(src, "spec", MODULE_SPEC) == MODULE_SPEC:
         raise SpliceError(
-            "tune cannot save a plain nn.Module without knowing how to rebuild it; pass a spec string "
-            "(e.g. 'splice.models:tray_net') or a Source from splice.load_source"
+            "tune cannot save a plain nn.Module: nothing says how to rebuild its architecture; pass a spec string "
+            "(e.g. 'splice.models:tray_net' or 'path/file.py:factory') or a Source loaded from one "
+            "(splice.load_source(spec))"
         )
     if src.input_shape is None:
         raise SpliceError("tune needs the model's input shape; pass --input-shape CxHxW (input_shape=...)")
