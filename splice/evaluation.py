@@ -340,11 +340,10 @@ def evaluate(model, *, data: str, split: str = "test", against=None, distort=Non
 def improved(start, tuned, *, data: str, split: str = "test") -> dict:
     """Did a fine-tune improve on the model it started from? The check a fair control must pass.
 
-    ``start`` and ``tuned`` are model sources (folders, typically ``BASE/best``
-    and ``RUN/best``). Returns ``{"start_error", "tuned_error", "improved"}``
-    with clean errors on ``data``/``split``; ``improved`` is True only when the
-    tuned error is strictly lower. A run that never beat its start on
-    validation keeps the unchanged start as ``best/``, and is flagged here.
+    ``start`` and ``tuned`` are model sources (folders, typically ``BASE/best`` and ``RUN/best``). Returns
+    ``{"start_error", "tuned_error", "improved"}`` with clean errors on ``data``/``split``; ``improved`` is True
+    only when the tuned error is strictly lower. A run that never beat its start on validation keeps the
+    unchanged start as ``best/``, and is flagged here.
     """
     both = evaluate(tuned, data=data, split=split, against=start, distort="none")
     start_error = 1.0 - both["against"]["clean"]["accuracy"]
