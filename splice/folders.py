@@ -30,8 +30,8 @@ from pathlib import Path
 from .errors import SpliceError
 
 __all__ = ["MANIFEST_FILE", "FOLDER_FORMAT", "RUN_FILE", "RUN_FORMAT", "LOCK_FILE", "REPORT_FILE", "REPORT_FORMAT",
-           "FolderBusy", "FolderLock", "folder_kind", "lock_holder", "check_replaceable", "check_keeps_inputs",
-           "check_file_target", "check_report_folder", "check_outside"]
+           "CERTIFICATE_FORMAT", "FolderBusy", "FolderLock", "folder_kind", "lock_holder", "check_replaceable",
+           "check_keeps_inputs", "check_file_target", "check_report_folder", "check_outside"]
 
 MANIFEST_FILE = "splice.json"
 FOLDER_FORMAT = "splice-folder"
@@ -40,6 +40,10 @@ RUN_FORMAT = "splice-run"
 LOCK_FILE = ".splice.lock"
 REPORT_FILE = "summary.json"  # the record of a report folder 'splice inspect' wrote
 REPORT_FORMAT = "splice-inspect-report"
+CERTIFICATE_FORMAT = "splice-verify-certificate"  # the JSON record 'splice verify --report' writes
+# what a spliced folder holds of splice's own, and the kinds of output splice writes that users keep beside it
+_FOLDER_FILES = frozenset({MANIFEST_FILE, "weights.safetensors", LOCK_FILE})
+_OUTPUT_SUFFIXES = (".onnx", ".pt2", ".png")
 
 
 class FolderBusy(SpliceError):
@@ -217,12 +221,34 @@ def check_replaceable(target: str | os.PathLike) -> None:
     holder = lock_holder(target)
     if holder is not None:
         raise FolderBusy(f"cannot replace '{target}': it is in use by {_describe(holder)}; wait for it to finish")
-    if not any(target.iterdir()) or folder_kind(target) is not None:
+    kind = folder_kind(target) if any(target.iterdir()) else None
+    if kind == "spliced folder":
+        foreign = sorted(p.name for p in target.iterdir() if not _splice_output(p))
+        if foreign:
+            raise SpliceError(f"--overwrite would delete '{target}', which also holds {_names(foreign)}, not written "
+                              "by splice; move those out of the folder first, or choose another output folder")
+    if kind is not None or not any(target.iterdir()):
         return
     raise SpliceError(
         f"--overwrite replaces only a spliced folder (with {MANIFEST_FILE}) or a run folder (with {RUN_FILE}), "
         f"but '{target}' holds {_listing(target)}; choose another output folder or remove it yourself"
     )
+
+
+def _splice_output(path: Path) -> bool:
+    """Whether ``path``, inside a spliced folder, is splice's: the folder's own files, a certificate, an inspect
+    report, or an export or picture (``.onnx``, ``.pt2``, ``.png``), which a replaced splice leaves out of date."""
+    if path.is_symlink():
+        return False
+    if path.is_dir():
+        return _format_of(path / REPORT_FILE) == REPORT_FORMAT
+    return (path.name in _FOLDER_FILES or path.suffix.lower() in _OUTPUT_SUFFIXES
+            or (path.suffix.lower() == ".json" and _format_of(path) == CERTIFICATE_FORMAT))
+
+
+def _names(names: list[str], limit: int = 4) -> str:
+    shown = ", ".join(f"'{n}'" for n in names[:limit])
+    return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
 
 
 def check_keeps_inputs(target: str | os.PathLike, inputs) -> None:

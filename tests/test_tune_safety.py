@@ -385,9 +385,22 @@ def test_overwrite_replaces_a_spliced_folder_a_run_folder_or_an_empty_one(tmp_pa
 
     target = tmp_path / "spliced"
     shutil.copytree(spliced_folder, target)
-    (target / "stray.txt").write_text("from an earlier version")
+    # what splice writes beside a splice (a certificate, an inspect report, an export) goes with it; a file of the
+    # user's is never deleted: the replacement is refused, naming it, until it is moved out
+    from splice.cli import main
+
+    assert main(["verify", str(target), "--report", str(target / "certificate.json")]) == 0
+    (target / "inspect").mkdir()
+    (target / "inspect" / "summary.json").write_text(json.dumps({"format": "splice-inspect-report"}))
+    (target / "model.onnx").write_bytes(b"an earlier export")
+    (target / "notes.txt").write_text("mine")
+    capsys.readouterr()
+    assert _insert(target, "--overwrite") == 2
+    assert "also holds 'notes.txt', not written by splice" in capsys.readouterr().err
+    assert (target / "notes.txt").read_text() == "mine" and (target / "certificate.json").is_file()
+    (target / "notes.txt").unlink()
     assert _insert(target, "--overwrite") == 0
-    assert not (target / "stray.txt").exists() and (target / "splice.json").is_file()
+    assert sorted(p.name for p in target.iterdir()) == ["splice.json", "weights.safetensors"]
     run = tmp_path / "run"
     run.mkdir()
     (run / "run.json").write_text(json.dumps({"format": "splice-run", "schema_version": 1}))

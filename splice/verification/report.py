@@ -9,11 +9,11 @@ from pathlib import Path
 import torch
 
 from ..fileio import atomic_write_json, json_safe
-from ..folders import check_file_target
+from ..folders import CERTIFICATE_FORMAT, check_file_target
 
 __all__ = ["CheckResult", "VerifyReport", "versions", "render_verify", "write_report", "check_report_target"]
 
-_CERTIFICATE = "splice-verify-certificate"
+_CERTIFICATE = CERTIFICATE_FORMAT
 
 _CERTIFICATE_VERSION = 1
 
