@@ -494,3 +494,39 @@ def test_a_resumed_run_draws_from_the_exact_estimated_ranges(tmp_path, folders, 
     tune(resume=part, run_options=QUIET)
     assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
         state_dict_sha256(splice.load(full / "last").state_dict())
+
+
+def test_a_stop_late_in_pre_training_resumes_at_its_last_epoch_with_the_same_result(tmp_path, folders, spliced,
+                                                                                  monkeypatch):
+    """Pre-training is checkpointed after every epoch (the shipped recipe runs 160 of them): a stop in the third
+    continues from the end of the second, to the weights of a run never stopped."""
+    from splice.adapt import run as adapt_run
+    from splice.training import TuneInterrupted
+
+    ref, site = folders
+    recipe = _tiny().to_dict()
+    recipe["pretrain"]["epochs"] = 3
+    kw = {"recipe": Recipe.from_dict(recipe), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full = tmp_path / "full"
+    tune(str(spliced), out=full, run_options=QUIET, **kw)
+
+    real = adapt_run.regress_warps_
+    per_epoch = math.ceil(40 / 8)  # 40 reference images, batches of 8
+
+    def stopping(*args, on_step, **kwargs):
+        def step(i, total, loss):
+            if i == 2 * per_epoch + 2:
+                raise TuneInterrupted("stopped in the third pre-training epoch")
+            on_step(i, total, loss)
+        return real(*args, on_step=step, **kwargs)
+    monkeypatch.setattr(adapt_run, "regress_warps_", stopping)
+    part = tmp_path / "part"
+    with pytest.raises(TuneInterrupted):
+        tune(str(spliced), out=part, run_options=QUIET, **kw)
+    saved = load_checkpoint(part / CHECKPOINT_NAME)
+    assert saved["phase"] == "pretrain" and saved["pretrain"]["epoch"] == 2
+    assert saved["pretrain"]["step"] == 2 * per_epoch
+    monkeypatch.setattr(adapt_run, "regress_warps_", real)
+    tune(resume=part, run_options=QUIET)
+    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
+        state_dict_sha256(splice.load(full / "last").state_dict())

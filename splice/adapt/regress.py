@@ -29,7 +29,7 @@ from torch import Tensor, nn
 from ..copies import modes_kept
 from ..distort import DistortionRange, random_distort
 from ..training import batches as _b
-from ..errors import TrainingDiverged
+from ..errors import SpliceError, TrainingDiverged
 from ..training.pretrain import execution_order, finite_step, grid_loss, warp_inputs
 from ..training.schedule import lr_factor
 from .images import Images
@@ -81,13 +81,19 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
                    epochs: int, lr: float, batch_size: int, seed: int, prepare: Callable[[Tensor], Tensor],
                    tag: str = "pretrain", weight_decay: float = 0.0, rank: int = 0, world: int = 1,
                    reduce_grads: Callable[[list[Tensor]], None] | None = None,
-                   on_step: Callable[[int, int, float], None] | None = None) -> dict[str, Any]:
+                   on_step: Callable[[int, int, float], None] | None = None,
+                   on_epoch: Callable[[dict[str, Any]], None] | None = None,
+                   resume: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Train the heads of ``warps`` in place to undo the warps ``draw`` applies to ``images``.
 
     One AdamW step per batch on the grid loss (the first warp in execution
     order learns the drawn matrix, later ones the identity), learning rate on
     a cosine over all steps. ``tag`` keeps the data order and draws of two
     calls with the same seed apart. Returns ``{"steps", "grid_loss", "mean_grid_loss", "images"}``.
+
+    ``on_epoch(state)`` is called after every epoch but the last with the loop's state (the heads' weights live
+    in the model); passed back as ``resume``, with the model's weights restored, it continues at the next epoch
+    with the same data order, draws and learning rates, so the result is the uninterrupted run's.
     """
     params = [p for w in warps.values() for p in w.parameters() if p.requires_grad]
     opt = torch.optim.AdamW(params, lr=lr, weight_decay=weight_decay)
@@ -96,10 +102,17 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
     steps_per_epoch = len(_b.index_batches(_b.shard(torch.arange(n), rank, world), per_rank))
     total = steps_per_epoch * epochs
     order = execution_order(model, warps, prepare(images.batch(torch.arange(min(2, n)))))
-    step, running, seen, recent = 0, 0.0, 0, 0.0
+    step, running, seen, recent, first = 0, 0.0, 0, 0.0, 0
+    if resume is not None:
+        if int(resume["total_steps"]) != total:
+            raise SpliceError(f"the pre-training checkpoint was written for {int(resume['total_steps'])} steps, but "
+                              f"this run has {total}; resume with the data and recipe the run was started with")
+        opt.load_state_dict(resume["optimizer"])
+        first, step = int(resume["epoch"]), int(resume["step"])
+        running, seen, recent = float(resume["running"]), int(resume["seen"]), float(resume["recent"])
     with modes_kept(model):
         model.eval()
-        for epoch in range(epochs):
+        for epoch in range(first, epochs):
             mine = _b.shard(_b.epoch_order(seed, epoch, n, tag=f"{tag}-order"), rank, world)
             for b, idx in enumerate(_b.index_batches(mine, per_rank)):
                 moved, matrix = draw(images.batch(idx), _b.generator(seed, f"{tag}-draw", epoch, b, rank))
@@ -124,4 +137,7 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
                 step += 1
                 if on_step is not None:
                     on_step(step, total, recent)
+            if on_epoch is not None and epoch + 1 < epochs:
+                on_epoch({"epoch": epoch + 1, "step": step, "optimizer": opt.state_dict(), "running": running,
+                          "seen": seen, "recent": recent, "total_steps": total})
     return {"steps": step, "grid_loss": recent, "mean_grid_loss": running / max(1, seen), "images": seen}

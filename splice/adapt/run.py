@@ -13,10 +13,11 @@ Phases, each recorded in ``metrics.jsonl`` (see :mod:`splice.adapt.record`):
    (``[site] objective``) beside the pre-training loss (:mod:`splice.adapt.steps`).
 
 The base stays bit-for-bit frozen (``requires_grad`` off, eval mode). A
-checkpoint follows the estimate, the pre-training and every epoch (and a
-stop request mid-epoch, at that batch); ``--resume`` continues from it, to the
-same weights as a run that was not stopped. A stop during the probe or the
-pre-training resumes at the start of that phase.
+checkpoint follows the estimate, every pre-training epoch, the pre-training and
+every epoch (and a stop request mid-epoch, at that batch); ``--resume``
+continues from it, to the same weights as a run that was not stopped. A stop
+during the probe resumes at the start of the estimate; one during
+pre-training, at the start of the pre-training epoch it stopped in.
 """
 
 from __future__ import annotations
@@ -122,12 +123,17 @@ def _pretrain(run: AdaptRun) -> None:
     rec, ctx = run.rec, run.ctx
     pre = rec.pretrain
     result = {"steps": 0, "grid_loss": None}
+    resume = run.ckpt.get("pretrain") if run.ckpt is not None and run.ckpt.get("phase") == "pretrain" else None
+
+    def on_epoch(state: dict) -> None:  # the heads are in the model; the loop's state rides along
+        save_state(run, phase="pretrain", epoch=0, batch=0, extra={"pretrain": state})
+
     if pre.epochs > 0:
         result = regress_warps_(run.net, run.warps, run.reference, upright_safe(run.estimate.to_range(),
                                 rec.site.unmoved), epochs=pre.epochs, lr=pre.lr, batch_size=pre.batch_size,
                                 seed=rec.seed, prepare=run.prepare, tag="pretrain", weight_decay=pre.weight_decay,
                                 rank=ctx.rank, world=ctx.world_size, reduce_grads=grad_reducer(ctx),
-                                on_step=_on_step(run, "pre-train warps"))
+                                on_step=_on_step(run, "pre-train warps"), on_epoch=on_epoch, resume=resume)
         run.bar.finish(result["steps"])
     loss = round(result["grid_loss"], 6) if result["grid_loss"] is not None else None
     _checkpointed_row(run, "pretrain", 0, loss, extra={"pretrain_steps": result["steps"],
@@ -199,7 +205,8 @@ def run_label_free(run: AdaptRun) -> dict[str, Any]:
         if run.ctx.is_main:
             write_run_info(run.run_dir, dict(run.info, status="interrupted"))
         run.bar.line(f"interrupted during the {'range estimate' if phase == 'start' else 'pre-training'}; "
-                     f"'splice tune --resume {run.run_dir}' starts that phase again")
+                     f"'splice tune --resume {run.run_dir}' continues "
+                     f"{'that phase from its start' if phase == 'start' else 'from its last finished epoch'}")
         raise
     plan = Epochs(run)
     order = execution_order(run.net, run.warps, run.prepare(run.site.batch(torch.arange(min(2, len(run.site))))))
