@@ -131,9 +131,21 @@ def _own_stride(n: fx.Node, modules: dict[str, nn.Module]) -> Stride | None:
 
 def node_strides(nodes: list[fx.Node], modules: dict[str, nn.Module], values: Mapping, layouts: Mapping) -> dict:
     """Each fx node's (stride, (H, W)) from the graph's inputs (:func:`splice.graph.strides.cumulative`)."""
+    def own_of(n: fx.Node) -> tuple:
+        own = _own_stride(n, modules)
+        return own, (n.args[0] if own is not None and n.args else None)
+
+    return path_strides(nodes, values, layouts, skip=lambda n: n.op in ("get_attr", "output"), own_of=own_of)
+
+
+def path_strides(nodes: list, values: Mapping, layouts: Mapping, *, skip: Callable[[Any], bool],
+                 own_of: Callable[[Any], tuple]) -> dict:
+    """Each node's (stride, (H, W)) along the graph (:func:`splice.graph.strides.cumulative`): the placeholders
+    that hold tensors start it, ``own_of(node)`` gives an (N, C, H, W) node's own stride and the input it applies
+    to (``(None, None)``: none known), and nodes that ``skip`` names take no part."""
     sources, steps = [], []
     for n in nodes:
-        if n.op in ("get_attr", "output"):
+        if skip(n):
             continue
         value = values.get(n)
         if not holds_tensor(value):
@@ -143,10 +155,7 @@ def node_strides(nodes: list[fx.Node], modules: dict[str, nn.Module], values: Ma
         if n.op == "placeholder":
             sources.append((n, hw))
             continue
-        own = first = None
-        if hw is not None and (layout is None or layout == NCHW):
-            own = _own_stride(n, modules)
-            first = n.args[0] if own is not None and n.args else None
+        own, first = own_of(n) if hw is not None and layout in (None, NCHW) else (None, None)
         steps.append((n, n.all_input_nodes, hw, own, first))
     return cumulative(steps, sources)
 

@@ -32,8 +32,8 @@ from torch import nn
 
 from ..copies import private_buffers
 from .cuts import cut_analysis
-from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, site_name
-from .strides import call_stride, cumulative, holds_tensor, spatial
+from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, path_strides, site_name
+from .strides import call_stride
 
 __all__ = ["export_quietly"]
 
@@ -235,19 +235,9 @@ def export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[Entry]:
 def _strides(nodes: list, values: Mapping, layouts: Mapping) -> dict:
     """Each exported node's (stride, (H, W)) from the user's inputs (:func:`splice.graph.strides.cumulative`);
     parameters and buffers are no sources."""
-    sources, steps = [], []
-    for n in nodes:
-        if n.op == "output" or (n.op == "placeholder" and n not in values):
-            continue
-        value = values.get(n)
-        if not holds_tensor(value):
-            continue
-        layout = layouts.get(n)
-        hw = spatial(value, layout)
-        if n.op == "placeholder":
-            sources.append((n, hw))
-            continue
-        own = call_stride(_op(n), n.args, n.kwargs) if hw is not None and layout in (None, NCHW) else None
-        first = n.args[0] if n.args and isinstance(n.args[0], torch.fx.Node) else None
-        steps.append((n, n.all_input_nodes, hw, own, first))
-    return cumulative(steps, sources)
+    def own_of(n) -> tuple:
+        return (call_stride(_op(n), n.args, n.kwargs),
+                n.args[0] if n.args and isinstance(n.args[0], torch.fx.Node) else None)
+
+    return path_strides(nodes, values, layouts, own_of=own_of,
+                        skip=lambda n: n.op == "output" or (n.op == "placeholder" and n not in values))
