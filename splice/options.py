@@ -131,10 +131,10 @@ def refuse_several_inputs(command: str, shapes: Sequence, what: str = "the model
 
 
 def refuse_unfit_inputs(model, shapes: Sequence, what: str = "the model") -> None:
-    """One line when ``model`` cannot run on inputs of ``shapes`` at all (an image too small for its pooling),
-    found by one no-grad forward of a batch of one on a twin in eval mode, before any work: the same failure at the
-    first batch was an internal error. Only torch's own refusals (``RuntimeError``) count; the caller's model,
-    buffers and modes are not changed."""
+    """One line when ``model`` fails on a probe batch of two random images of ``shapes`` (an image too small for
+    its pooling), found by one no-grad forward on a twin in eval mode, before any work: the same failure at the
+    first batch was an internal error. Two images, not one: a model may squeeze the batch dimension away or
+    normalise over the batch. The caller's model, buffers and modes are not changed."""
     import itertools
 
     import torch
@@ -150,11 +150,12 @@ def refuse_unfit_inputs(model, shapes: Sequence, what: str = "the model") -> Non
     twin = private_buffers(model).eval()
     try:
         with torch.no_grad():
-            twin(*[torch.rand((1, *(int(v) for v in s)), **like) for s in shapes])
-    except RuntimeError as exc:
+            twin(*[torch.rand((2, *(int(v) for v in s)), **like) for s in shapes])
+    except Exception as exc:  # whatever the first batch would have raised, said before any work
         listed = ", ".join("x".join(str(int(v)) for v in s) for s in shapes)
-        raise SpliceError(f"{what} does not run on inputs of {listed} ({first_line(exc)}); check the "
-                          "input shape (--input-shape CxHxW; the images are resized to it)") from None
+        raise SpliceError(f"{what} fails on a probe batch of two {listed} images ({type(exc).__name__}: "
+                          f"{first_line(exc)}); if the input shape is wrong, pass --input-shape CxHxW (the images "
+                          "are resized to it)") from None
 
 
 # the opt-ins a refusal of ``against`` names, as the user gives them for that model

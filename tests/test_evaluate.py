@@ -9,6 +9,7 @@ import math
 import pytest
 import torch
 import torchvision.transforms.v2.functional as TF
+import torch.nn.functional as F
 from torch import nn
 from torchvision.transforms import InterpolationMode
 
@@ -86,8 +87,8 @@ def recorded_run():
     RECORDED.clear()
     result = E.evaluate(_recorder_source(), data="digits", split="test", distort=DISTORT,
                         options=E.EvalOptions(batch_size=BATCH, limit=N, device="cpu"))
-    # the first call is evaluate's check that the model runs on its input shape at all: one image, before any batch
-    assert RECORDED[0].shape == (1, 1, 48, 48)
+    # the first call is evaluate's check that the model runs on its input shape at all: two images, before any batch
+    assert RECORDED[0].shape == (2, 1, 48, 48)
     batches = list(RECORDED)[1:]
     RECORDED.clear()
     return result, batches
@@ -155,9 +156,9 @@ def test_against_sees_the_same_images_and_has_the_same_shape(tmp_path):
     first, second = _Recorder(), _Recorder()
     result = E.evaluate_keywords(first, data="digits", against=second, distort="rotate=0,45", limit=4, batch_size=4,
                         device="cpu", plot=tmp_path / "sweep.png")
-    # each model's check that it runs on the input shape (one image), then batches alternate model / against per
+    # each model's check that it runs on the input shape (two images), then batches alternate model / against per
     # condition: clean, rotate 0, rotate 45
-    assert len(RECORDED) == 8 and RECORDED[0].shape == RECORDED[1].shape == (1, 1, 48, 48)
+    assert len(RECORDED) == 8 and RECORDED[0].shape == RECORDED[1].shape == (2, 1, 48, 48)
     fed = RECORDED[2:]
     for i in range(0, 6, 2):
         torch.testing.assert_close(fed[i], fed[i + 1], rtol=0, atol=0)
@@ -241,3 +242,24 @@ def test_options_are_checked_and_the_keyword_path_refuses_unknown_keywords():
         E.EvalOptions(limit=-1)
     with pytest.raises(TypeError, match=r"evaluate\(\) got unexpected keyword argument\(s\) batchsize; it takes"):
         E.evaluate_keywords(_Recorder(), data="digits", batchsize=3)
+
+
+class _SqueezesTheBatch(nn.Module):
+    """Pools, squeezes (a batch of one would lose its batch dimension) and normalises over the batch: it runs on
+    any batch of two or more, as every batch eval feeds it here."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+        self.norm = nn.BatchNorm1d(4, track_running_stats=False)
+        self.fc = nn.Linear(4, 10)
+
+    def forward(self, x):
+        return self.fc(self.norm(F.adaptive_avg_pool2d(self.conv(x), 1).squeeze()))
+
+
+def test_the_input_check_does_not_refuse_a_model_that_needs_two_images():
+    torch.manual_seed(0)
+    result = E.evaluate_keywords(_SqueezesTheBatch(), data="digits", distort="none", input_shape=(1, 16, 16),
+                                 limit=6, batch_size=3, device="cpu")
+    assert result["n_images"] == 6

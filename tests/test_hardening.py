@@ -247,9 +247,9 @@ def _cases():
         ("usage error", ["verify", ("KEY", "folder"), "--dtype", "float8"], "--help"),
         # an image too small for the model's pooling: refused before the first batch (an internal error there)
         ("input too small, eval", ["eval", TRAY, "--input-shape", "1x4x4", "--data", "digits"],
-         "does not run on inputs of 1x4x4"),
+         "fails on a probe batch of two 1x4x4 images"),
         ("input too small, tune", ["tune", TRAY, "--input-shape", "1x4x4", "--recipe", "baseline", "--epochs", "1",
-                                   "--quiet", "--out", f("r10")], "does not run on inputs of 1x4x4"),
+                                   "--quiet", "--out", f("r10")], "fails on a probe batch of two 1x4x4 images"),
     ]
 
 
