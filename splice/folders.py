@@ -41,9 +41,8 @@ LOCK_FILE = ".splice.lock"
 REPORT_FILE = "summary.json"  # the record of a report folder 'splice inspect' wrote
 REPORT_FORMAT = "splice-inspect-report"
 CERTIFICATE_FORMAT = "splice-verify-certificate"  # the JSON record 'splice verify --report' writes
-# what a spliced folder holds of splice's own, and the kinds of output splice writes that users keep beside it
+# what a spliced folder holds of splice's own
 _FOLDER_FILES = frozenset({MANIFEST_FILE, "weights.safetensors", LOCK_FILE})
-_OUTPUT_SUFFIXES = (".onnx", ".pt2", ".png")
 
 
 class FolderBusy(SpliceError):
@@ -236,14 +235,14 @@ def check_replaceable(target: str | os.PathLike) -> None:
 
 
 def _splice_output(path: Path) -> bool:
-    """Whether ``path``, inside a spliced folder, is splice's: the folder's own files, a certificate, an inspect
-    report, or an export or picture (``.onnx``, ``.pt2``, ``.png``), which a replaced splice leaves out of date."""
+    """Whether ``path``, inside a spliced folder, is splice's by what it says of itself: the folder's own files, a
+    certificate or an inspect report (their JSON ``format``), which a replaced splice leaves out of date. An export
+    or a picture cannot be told from a file of the user's by its name, so it is not (the replacement is refused)."""
     if path.is_symlink():
         return False
     if path.is_dir():
         return _format_of(path / REPORT_FILE) == REPORT_FORMAT
-    return (path.name in _FOLDER_FILES or path.suffix.lower() in _OUTPUT_SUFFIXES
-            or (path.suffix.lower() == ".json" and _format_of(path) == CERTIFICATE_FORMAT))
+    return path.name in _FOLDER_FILES or (path.suffix.lower() == ".json" and _format_of(path) == CERTIFICATE_FORMAT)
 
 
 def _names(names: list[str], limit: int = 4) -> str:

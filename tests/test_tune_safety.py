@@ -392,13 +392,14 @@ def test_overwrite_replaces_a_spliced_folder_a_run_folder_or_an_empty_one(tmp_pa
     assert main(["verify", str(target), "--report", str(target / "certificate.json")]) == 0
     (target / "inspect").mkdir()
     (target / "inspect" / "summary.json").write_text(json.dumps({"format": "splice-inspect-report"}))
-    (target / "model.onnx").write_bytes(b"an earlier export")
+    (target / "photo.png").write_bytes(b"a picture of the user's")  # a name alone does not make it splice's
     (target / "notes.txt").write_text("mine")
     capsys.readouterr()
     assert _insert(target, "--overwrite") == 2
-    assert "also holds 'notes.txt', not written by splice" in capsys.readouterr().err
+    assert "also holds 'notes.txt', 'photo.png', not written by splice" in capsys.readouterr().err
     assert (target / "notes.txt").read_text() == "mine" and (target / "certificate.json").is_file()
     (target / "notes.txt").unlink()
+    (target / "photo.png").unlink()
     assert _insert(target, "--overwrite") == 0
     assert sorted(p.name for p in target.iterdir()) == ["splice.json", "weights.safetensors"]
     run = tmp_path / "run"
