@@ -306,6 +306,26 @@ def test_a_leafs_buffer_read_outside_it_is_a_node_of_the_graph(model_file):
             torch.testing.assert_close(spliced.eval()(x), base.eval()(x), rtol=0, atol=0)
 
 
+class _ChannelsFromStatistics(torch.nn.Module):
+    """Takes a Python number from a batch norm's statistics (len): a node cannot give one, so that read is traced
+    as a value, as fx reads buffers, and the model stays on fx."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv, self.bn = torch.nn.Conv2d(1, 6, 3, padding=1), torch.nn.BatchNorm2d(6)
+        self.conv2, self.fc = torch.nn.Conv2d(4, 4, 3, padding=1), torch.nn.Linear(4, 3)
+
+    def forward(self, x):
+        y = torch.relu(self.bn(self.conv(x)))[:, :len(self.bn.running_mean) - 2]
+        return self.fc(torch.relu(self.conv2(y)).mean((2, 3)))
+
+
+def test_a_python_number_read_from_a_leafs_buffer_keeps_the_model_on_fx():
+    torch.manual_seed(0)
+    pts = splice.points(_ChannelsFromStatistics(), input_shape=(1, 16, 16))
+    assert {p.mechanism for p in pts} == {"fx"} and len(pts) >= 3
+
+
 def test_a_splice_that_froze_a_value_read_from_an_updated_buffer_fails_buffers(model_file):
     """The first call of base and splice agree; from the same counter on, the base's warm-up factor grows and the
     frozen graph's does not (as a trace that computed it once would). The certificate must not pass it."""

@@ -42,11 +42,13 @@ class TraceModeWarning(GraphWarning):
 
 
 class _Tracer(fx.Tracer):
-    def __init__(self, rule: LeafRule | None = None):
+    def __init__(self, rule: LeafRule | None = None, leaf_buffers: bool = True):
         # ``rule`` has a default because a pickled GraphModule records its tracer class and torch.load re-traces
         # the module with an instance made without arguments (a subclass that keeps every module a leaf)
         super().__init__()
         self._rule = rule if rule is not None else LeafRule(())
+        self._leaf_buffers = leaf_buffers  # read a leaf's buffers as nodes (see getattr)
+        self.read_leaf_buffer = False  # whether this trace did
         self.failed_in: tuple[str, type] | None = None  # innermost module whose tracing raised
         # id(tensor) -> (tensor, its first name), for the root's parameters and its buffers, made on the first
         # lookup: fx's own getattr searches every parameter, then every buffer, of the root on each read
@@ -76,7 +78,12 @@ class _Tracer(fx.Tracer):
             if found is not None and found[0] is value:
                 return found[1]
         found = buffers.get(id(value))
-        if found is not None and found[0] is value and (self.proxy_buffer_attributes or self._in_a_leaf(found[1])):
+        if found is None or found[0] is not value:
+            return None
+        if self.proxy_buffer_attributes:
+            return found[1]
+        if self._leaf_buffers and self._in_a_leaf(found[1]):
+            self.read_leaf_buffer = True
             return found[1]
         return None
 
@@ -171,8 +178,18 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
     tracer = _Tracer(rule)
     state = module_state(root, lambda m: is_torch_builtin(type(m)) or rule(type(m)))
     draws = (random.getstate(), np.random.get_state()[1].tobytes())
+    concrete = specialised_options(root, n_inputs) if whole else None
     try:
-        graph = tracer.trace(root, concrete_args=specialised_options(root, n_inputs) if whole else None)
+        try:
+            graph = tracer.trace(root, concrete_args=concrete)
+        except Exception:
+            if not tracer.read_leaf_buffer:
+                raise
+            # code that takes a Python value from a leaf's buffer (len(), int(), a branch) cannot read it as a
+            # node: it is traced as fx reads buffers, as values (verify's buffers row compares later calls)
+            state_back(state)
+            tracer = _Tracer(rule, leaf_buffers=False)
+            graph = tracer.trace(root, concrete_args=concrete)
     except Exception as exc:
         raise FxFailure(exc, tracer.failed_in) from exc
     finally:
