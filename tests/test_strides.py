@@ -272,3 +272,31 @@ def test_inception_v3_at_its_own_size_has_whole_strides():
     assert all(type(p.stride) is int for p in pts.values()), {n: p.stride for n, p in pts.items()}
     want = {"Conv2d_1a_3x3_relu": 2, "maxpool1": 4, "maxpool2": 8, "Mixed_6a_cat": 16, "Mixed_7c_cat_2": 32}
     assert {n: pts[n].stride for n in want} == want
+
+
+class _CropsAndJoins(nn.Module):
+    """Crops (narrow, chunk, tensor_split) take part of a map at the same sampling, and a cat along W puts two maps
+    side by side: none of them resamples, whatever the sizes say (they were read as strides 2 and 0.5)."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, stride=2, padding=1)
+        self.a, self.b, self.c = (nn.Conv2d(8, 8, 3, padding=1) for _ in range(3))
+
+    def forward(self, x):
+        y = torch.relu(self.stem(x))
+        top = self.a(y.narrow(2, 0, y.shape[2] // 2))
+        left = self.b(y.chunk(2, dim=3)[0])
+        middle = self.c(torch.tensor_split(y, 3, dim=2)[1])
+        return torch.cat([top, top], dim=3).mean((2, 3)) + left.mean((2, 3)) + middle.mean((2, 3))
+
+
+def test_crops_and_side_by_side_joins_keep_the_stride():
+    torch.manual_seed(0)
+    import splice
+
+    pts = {p.name: p for p in splice.points(_CropsAndJoins(), input_shape=(3, 64, 64), all=True)}
+    by_module = {p.module: p.stride for p in pts.values() if p.module in ("a", "b", "c")}
+    assert by_module == {"a": 2, "b": 2, "c": 2}  # after the stride-2 stem, the crops sample as it does
+    cat = next(p for p in pts.values() if p.name.startswith("cat"))
+    assert cat.stride == 2 and cat.shape == (8, 16, 64)

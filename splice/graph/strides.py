@@ -40,6 +40,8 @@ __all__: list[str] = []
 Number = int | Fraction
 Stride = tuple[Number, Number]
 ONE: Stride = (1, 1)
+# the own "stride" of a join that puts its inputs side by side (cat): each keeps its own, the largest holds
+JOINED: Stride = (0, 0)
 
 
 def _int_if_whole(x: Number) -> Number:
@@ -169,6 +171,8 @@ def _unshuffle(args: tuple, kwargs: Mapping) -> Stride | None:
 
 
 def _getitem(args: tuple, kwargs: Mapping) -> Stride | None:
+    if len(args) == 2 and isinstance(args[1], int) and not isinstance(args[1], bool):
+        return ONE  # a piece of a split (or an image of a batch, which is no point): the same sampling
     return _slice_steps(args[1]) if len(args) == 2 else None
 
 
@@ -194,6 +198,10 @@ _CALLS: dict[str, Callable[[tuple, Mapping], Stride | None]] = {
     "getitem": _getitem,
     "slice": _aten_slice,
     **dict.fromkeys(("pad", "constant_pad_nd", "reflection_pad2d", "replication_pad2d"), _same),
+    # crops: a part of the map at the same sampling (split's pieces come out through getitem)
+    **dict.fromkeys(("narrow", "chunk", "split", "split_with_sizes", "tensor_split", "unsafe_split", "unbind"),
+                    _same),
+    **dict.fromkeys(("cat", "concat", "concatenate"), lambda args, kwargs: JOINED),
 }
 
 
@@ -255,6 +263,11 @@ def cumulative(steps: Iterable[tuple[Any, list, tuple[int, int] | None, Stride |
             out[key] = (ONE, hw)
     for key, inputs, hw, own, first in steps:
         if key in out:
+            continue
+        if own == JOINED and hw is not None:  # maps side by side: each keeps its sampling, the largest holds
+            found = [out[i][0] for i in inputs if i in out]
+            if found:
+                out[key] = ((max(f[0] for f in found), max(f[1] for f in found)), hw)
             continue
         if own is not None and hw is not None and first in out:
             (sh, sw), _ = out[first]
