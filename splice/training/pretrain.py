@@ -86,8 +86,16 @@ def warp_inputs(model: nn.Module, warps: Mapping[str, nn.Module], x: Tensor, *,
 
 
 def execution_order(model: nn.Module, warps: Mapping[str, nn.Module], example: Tensor) -> list[str]:
-    """Names of ``warps`` in the order a forward pass reaches them."""
-    _, order = warp_inputs(model, warps, example)
+    """Names of ``warps`` in the order a forward pass reaches them. The model's buffers are left as they were (a
+    counter its forward updates does not count this look, so a resumed run counts as an uninterrupted one)."""
+    saved = [(m, k, b, b.detach().clone()) for m in model.modules() for k, b in m._buffers.items() if b is not None]
+    try:
+        _, order = warp_inputs(model, warps, example)
+    finally:
+        with torch.no_grad():
+            for m, k, b, value in saved:
+                m._buffers[k] = b  # a forward that rebinds a buffer (self.n = self.n + 1) gets its own back too
+                b.copy_(value)
     return order
 
 
