@@ -12,6 +12,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+import splice
 from splice.errors import SourceError
 from splice.sources import load_source
 
@@ -345,3 +346,27 @@ def test_a_channels_last_model_spliced_at_a_group_norm_is_bit_exact(tmp_path):
         assert torch.equal(loaded(x), base(x))
     result = splice.export(folder, onnx=tmp_path / "cl.onnx", trust_code=True)["exports"][0]
     assert result["format"] == "onnx"  # written only after its onnxruntime parity check passed
+
+
+class _NamedLikeAGraphModule(nn.Module):
+    """A parameter named ``code``, which a traced GraphModule keeps for its generated source."""
+
+    def __init__(self):
+        super().__init__()
+        self.c1, self.c2 = nn.Conv2d(3, 4, 3, padding=1), nn.Conv2d(4, 4, 3, padding=1)
+        self.code = nn.Parameter(torch.full((4,), 0.1))
+
+    def forward(self, x):
+        return self.c2(torch.relu(self.c1(x) + self.code.view(1, -1, 1, 1))).mean((2, 3))
+
+
+def test_a_model_attribute_named_like_a_graph_modules_goes_to_hooks():
+    """It was an internal error ("Code has not been generated"); points and insert now agree on hooks."""
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    with pytest.warns(TraceFallbackWarning, match="'code' share a name"):
+        assert {p.mechanism for p in splice.points(_NamedLikeAGraphModule(), input_shape=(3, 16, 16))} == {"hooks"}
+    with pytest.warns(TraceFallbackWarning):
+        spliced = splice.insert(_NamedLikeAGraphModule(), at="recommended", input_shape=(3, 16, 16))
+    assert splice.verify(spliced).passed

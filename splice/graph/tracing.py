@@ -297,6 +297,10 @@ def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) ->
     one instance of each such class is traced alone in train mode first, so
     that the tree is traced once with the updating ones as leaves.
     """
+    clash = sorted(n for n in (*root._parameters, *root._buffers, *root._modules) if hasattr(fx.GraphModule, n))
+    if clash:  # a traced graph module would shadow them (a parameter named 'code' broke fx's own code attribute)
+        raise FxFailure(GraphError(f"the model's own {', '.join(map(repr, clash))} share a name with what a traced "
+                                   "graph module keeps"), None)
     norms = _traced_through_norms(root, rule)
     counting = _counting_norm_classes(root, rule, norms, n_inputs) if norms else set()
     rule.add(counting)
