@@ -320,6 +320,18 @@ class _ChannelsFromStatistics(torch.nn.Module):
         return self.fc(torch.relu(self.conv2(y)).mean((2, 3)))
 
 
+@pytest.mark.filterwarnings("ignore:ONNX Preprocess - Removing mutation")  # the exporter's own note on the counter
+def test_exporting_a_model_that_counts_its_calls_says_why_no_file_can_follow(model_file, tmp_path):
+    """An exported graph holds a buffer at its value when exported; a model whose answer follows a call counter
+    cannot be exported as it runs, and the refusal says so (it said to try another opset)."""
+    from splice.errors import CheckFailed
+
+    folder = store.save(insert(f"{model_file}:warming_net", at="input", check=False), tmp_path / "warm")
+    with pytest.raises(CheckFailed, match=r"updates tally\.calls at every call, which an exported graph holds"):
+        splice.export(folder, onnx=tmp_path / "warm.onnx", trust_code=True)
+    assert not (tmp_path / "warm.onnx").exists()
+
+
 def test_a_python_number_read_from_a_leafs_buffer_keeps_the_model_on_fx():
     torch.manual_seed(0)
     pts = splice.points(_ChannelsFromStatistics(), input_shape=(1, 16, 16))

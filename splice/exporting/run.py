@@ -182,6 +182,23 @@ def _deployment_notes(model) -> dict[str, str]:
             "splice.version": __version__}
 
 
+def _updated_by_a_call(model, shapes) -> list[str]:
+    """The buffers one eval-mode forward of ``model`` changes (a call counter), run on a twin: the caller's model
+    is not changed."""
+    from ..copies import bitwise_equal, private_buffers
+
+    twin = private_buffers(model).eval()
+    param = next(iter(model.parameters()), None)
+    like = {"dtype": model_dtype(model), "device": param.device if param is not None else "cpu"}
+    before = {n: b.detach().clone() for n, b in twin.named_buffers()}
+    try:
+        with torch.no_grad():
+            twin(*[torch.randn((2, *s), **like) for s in shapes])
+    except Exception:  # the failure the check reported says enough
+        return []
+    return [n for n, b in twin.named_buffers() if n in before and not bitwise_equal(before[n], b)]
+
+
 def _float32_for_onnx(model):
     """``model``, or a float32 copy of a float64, float16 or bfloat16 one, with a warning: onnxruntime's grid
     sampling runs in float32 only (and no float64 convolution), and ``verify --onnx`` checks a float32 copy too.
@@ -212,6 +229,10 @@ def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bo
                                                   exporter=exporter, seed=seed, tol=tol)
         if not result["passed"]:
             hint = "" if result.get("tracer_conversions") else ". Try another --opset or report the model"
+            moved = _updated_by_a_call(model_fmt, shapes)
+            if moved:  # no exported graph can follow state that every call changes
+                hint = (f". The model updates {', '.join(moved[:4])} at every call, which an exported graph holds at "
+                        "its value when exported, so no such file answers as the model does on later calls")
             raise CheckFailed(
                 f"the {fmt} export of {what} does not match the model ({result['detail']}); "
                 f"nothing was written to '{target}'{hint}"
