@@ -133,7 +133,8 @@ def load_model(req: Request, where: str):
         raise RecipeError(
             f"{where} trains warps, but {describe(model)} has none; splice it first, e.g. "
             f"'splice insert {describe(model)}{req.model_options.as_flags()} --at input --warp affine "
-            "--out SPLICED', then tune SPLICED"
+            "--out SPLICED', then tune SPLICED (Python: splice.insert(model, at='input', warp='affine'), then "
+            "tune what it returns)"
         )
     if not rec.uses_warps and warps:
         raise RecipeError(
