@@ -330,6 +330,9 @@ def test_exporting_a_model_that_counts_its_calls_says_why_no_file_can_follow(mod
     with pytest.raises(CheckFailed, match=r"updates tally\.calls at every call, which an exported graph holds"):
         splice.export(folder, onnx=tmp_path / "warm.onnx", trust_code=True)
     assert not (tmp_path / "warm.onnx").exists()
+    report = splice.verify(folder, onnx=True, trust_code=True)  # verify's onnx row says the same
+    assert report.failed == ["onnx"]
+    assert "updates tally.calls at every call, which an exported graph holds" in report["onnx"].detail
 
 
 def test_a_python_number_read_from_a_leafs_buffer_keeps_the_model_on_fx():

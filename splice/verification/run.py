@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import copy
+import dataclasses
 import datetime as _dt
 import math
 import os
@@ -217,6 +218,15 @@ def _after_same_updates(base: nn.Module, identity: nn.Module, x, tol: float | No
                                            run_no_grad(identity, x, "spliced model"), tol=tol) for _ in range(2)])
 
 
+def _with_moving_state(row: CheckResult, moved: list[str]) -> CheckResult:
+    """A failed onnx ``row`` that says why, when the model updates buffers at every call (``moved``): an exported
+    graph holds them at their values when exported."""
+    if row.passed or not moved:
+        return row
+    return dataclasses.replace(row, detail=f"{row.detail}; the model updates {', '.join(moved[:4])} at every call, "
+                               "which an exported graph holds at its value when exported")
+
+
 def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Options, *, images, image_files,
                 recorded_base: str | None, rows: list[CheckResult], meta: dict, owned: bool,
                 lap: Laps) -> VerifyReport:
@@ -277,8 +287,9 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
             # the model no probe ran (the export makes its own twin of it): a forward that caches tensors derived
             # from parameters (attention biases indexed once in eval mode) left them requiring grad in the probed
             # twin after the gradient check, and the exporter refuses those
-            rows.append(onnx_row(unrun, example, opset=opts.opset, exporter=opts.exporter,
-                                  n_outputs=fwd.n_outputs, reference=fwd.first_sample))
+            rows.append(_with_moving_state(onnx_row(unrun, example, opset=opts.opset, exporter=opts.exporter,
+                                                    n_outputs=fwd.n_outputs, reference=fwd.first_sample),
+                                           sorted(snapshot.updated_by("base", base))))
             lap("onnx")
     finally:
         for p in flat_params:
