@@ -85,9 +85,11 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
                 return (*static, False)
             both = {**result, "detail": f"{result['detail']}; with a static batch of 1: {static[1]['detail']}"}
             return data, both, seconds, True
+        # a graph that holds the traced batch's sizes (a loop over the images) is the usual cause; an
+        # ill-conditioned probe (torch float32 itself far from float64) is the other, and the detail shows it
         how = (f"failed ({result['detail']})" if data is None else
-               f"does not match the model at batch sizes 1 and 3 ({result['detail']}); the model's graph depends on "
-               "its batch size")
+               f"does not match the model at batch sizes 1 and 3 ({result['detail']}), while a static batch of 1 "
+               "does (the graph may hold the traced batch's sizes, or the probe is ill-conditioned)")
         warnings.warn(f"the {fmt} export with a dynamic batch {how}, so a static batch of 1 is exported instead "
                       "(--static-batch says so explicitly)", SpliceWarning, stacklevel=3)
         return (*static, False)
