@@ -230,3 +230,27 @@ def test_verify_s_advice_can_be_followed_on_the_command_line(tmp_path, capsys):
         out = capsys.readouterr()
         assert "try --exporter dynamo --opset 18" in out.out + out.err
         assert main(["verify", str(folder), "--onnx", "--trust-code", "--exporter", "dynamo", "--opset", "18"]) == 0
+
+
+def test_a_dynamic_miss_in_values_alone_is_not_called_batch_dependence(monkeypatch):
+    """When the dynamic export misses in values only (same shapes, numbers compared) and the static one passes,
+    the warning names both causes instead of asserting the graph depends on the batch size; with differing output
+    shapes it does say so."""
+    import warnings as _warnings
+
+    from splice.errors import SpliceWarning
+    from splice.exporting import run as export_run
+
+    def fake(model, fmt, shapes, *, dynamic_batch, **options):
+        if not dynamic_batch:
+            return b"static", {"passed": True, "detail": "ok"}, 0.0
+        return b"dynamic", {"passed": False, "max_abs": 62.6, "shapes_equal": shape_ok,
+                            "detail": "as stored: max relative error 0.054"}, 0.0
+    monkeypatch.setattr(export_run, "_one", fake)
+    for shape_ok, said in ((True, "the graph may hold the traced batch's sizes, or the probe is ill-conditioned"),
+                           (False, "the model's graph depends on its batch size")):
+        with _warnings.catch_warnings(record=True) as caught:
+            _warnings.simplefilter("always")
+            data, _, _, dynamic = export_run._checked(None, "onnx", [(3, 8, 8)], dynamic_batch=True)
+        assert data == b"static" and not dynamic
+        assert [str(w.message) for w in caught if issubclass(w.category, SpliceWarning) and said in str(w.message)]

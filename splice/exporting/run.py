@@ -85,11 +85,14 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
                 return (*static, False)
             both = {**result, "detail": f"{result['detail']}; with a static batch of 1: {static[1]['detail']}"}
             return data, both, seconds, True
-        # a graph that holds the traced batch's sizes (a loop over the images) is the usual cause; an
-        # ill-conditioned probe (torch float32 itself far from float64) is the other, and the detail shows it
+        # output shapes that follow the traced batch (a loop over the images), or a graph onnxruntime cannot run
+        # at another batch, show a graph that depends on the batch size (the static one passed); differing values
+        # alone may also come from an ill-conditioned probe (torch float32 far from float64)
+        sized = result.get("shapes_equal") is False or result.get("max_abs") is None
+        why = ("the model's graph depends on its batch size" if sized else
+               "the graph may hold the traced batch's sizes, or the probe is ill-conditioned")
         how = (f"failed ({result['detail']})" if data is None else
-               f"does not match the model at batch sizes 1 and 3 ({result['detail']}), while a static batch of 1 "
-               "does (the graph may hold the traced batch's sizes, or the probe is ill-conditioned)")
+               f"does not match the model at batch sizes 1 and 3 ({result['detail']}); {why}")
         warnings.warn(f"the {fmt} export with a dynamic batch {how}, so a static batch of 1 is exported instead "
                       "(--static-batch says so explicitly)", SpliceWarning, stacklevel=3)
         return (*static, False)
