@@ -199,11 +199,14 @@ class FolderLock:
         self.release()
 
 
+def _some(items: list[str], n: int = 4) -> str:
+    """The first ``n`` of ``items`` and how many more."""
+    return ", ".join(items[:n]) + (f" and {len(items) - n} more" if len(items) > n else "")
+
+
 def _listing(folder: Path, n: int = 4) -> str:
     names = sorted(p.name + ("/" if p.is_dir() else "") for p in folder.iterdir())
-    if not names:
-        return "nothing"
-    return ", ".join(names[:n]) + (f" and {len(names) - n} more" if len(names) > n else "")
+    return _some(names, n) if names else "nothing"
 
 
 def check_replaceable(target: str | os.PathLike) -> None:
@@ -220,13 +223,15 @@ def check_replaceable(target: str | os.PathLike) -> None:
     holder = lock_holder(target)
     if holder is not None:
         raise FolderBusy(f"cannot replace '{target}': it is in use by {_describe(holder)}; wait for it to finish")
-    kind = folder_kind(target) if any(target.iterdir()) else None
+    if not any(target.iterdir()):
+        return
+    kind = folder_kind(target)
     if kind == "spliced folder":
-        foreign = sorted(p.name for p in target.iterdir() if not _splice_output(p))
+        foreign = sorted(f"'{p.name}'" for p in target.iterdir() if not _splice_output(p))
         if foreign:
-            raise SpliceError(f"--overwrite would delete '{target}', which also holds {_names(foreign)}, not written "
+            raise SpliceError(f"--overwrite would delete '{target}', which also holds {_some(foreign)}, not written "
                               "by splice; move those out of the folder first, or choose another output folder")
-    if kind is not None or not any(target.iterdir()):
+    if kind is not None:
         return
     raise SpliceError(
         f"--overwrite replaces only a spliced folder (with {MANIFEST_FILE}) or a run folder (with {RUN_FILE}), "
@@ -243,11 +248,6 @@ def _splice_output(path: Path) -> bool:
     if path.is_dir():
         return _format_of(path / REPORT_FILE) == REPORT_FORMAT
     return path.name in _FOLDER_FILES or (path.suffix.lower() == ".json" and _format_of(path) == CERTIFICATE_FORMAT)
-
-
-def _names(names: list[str], limit: int = 4) -> str:
-    shown = ", ".join(f"'{n}'" for n in names[:limit])
-    return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
 
 
 def check_keeps_inputs(target: str | os.PathLike, inputs) -> None:
