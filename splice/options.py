@@ -94,10 +94,12 @@ def _shape_texts(shape: Any) -> list[str]:
         return []
     if isinstance(shape, str):
         return [shape]
+    from .sources import format_shape
+
     items = list(shape)
     if items and all(isinstance(v, int) for v in items):
-        return ["x".join(str(v) for v in items)]
-    return [s if isinstance(s, str) else "x".join(str(int(v)) for v in s) for s in items]
+        return [format_shape(items)]
+    return [s if isinstance(s, str) else format_shape(s) for s in items]
 
 
 def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: str) -> list:
@@ -124,7 +126,9 @@ def refuse_several_inputs(command: str, shapes: Sequence, what: str = "the model
     """One line when ``command`` (which feeds one image per sample) meets a model with several inputs."""
     if len(shapes) <= 1:
         return
-    listed = ", ".join("x".join(str(int(v)) for v in s) for s in shapes)
+    from .sources import format_shape
+
+    listed = ", ".join(format_shape(s) for s in shapes)
     raise SpliceError(f"{command} feeds one image per sample, but {what} takes {len(shapes)} inputs ({listed}); "
                       f"{command} a model that takes one image (e.g. a factory returning the submodule that sees the "
                       f"images, spliced on its own), or {_OWN_CODE.get(command, command)} this one in your own code")
@@ -135,24 +139,22 @@ def refuse_unfit_inputs(model, shapes: Sequence, what: str = "the model") -> Non
     its pooling), found by one no-grad forward on a twin in eval mode, before any work: the same failure at the
     first batch was an internal error. Two images, not one: a model may squeeze the batch dimension away or
     normalise over the batch. The caller's model, buffers and modes are not changed."""
-    import itertools
-
     import torch
 
     from .copies import private_buffers
     from .errors import first_line
+    from .graph.shapes import input_dtype, model_device
+    from .sources import format_shape
 
     if not shapes:
         return
-    tensor = next(itertools.chain(model.parameters(), model.buffers()), None)
-    like = {"device": tensor.device if tensor is not None else "cpu",
-            "dtype": tensor.dtype if tensor is not None and tensor.is_floating_point() else torch.float32}
+    like = {"device": model_device(model), "dtype": input_dtype(model)}
     twin = private_buffers(model).eval()
     try:
         with torch.no_grad():
             twin(*[torch.rand((2, *(int(v) for v in s)), **like) for s in shapes])
     except Exception as exc:  # whatever the first batch would have raised, said before any work
-        listed = ", ".join("x".join(str(int(v)) for v in s) for s in shapes)
+        listed = ", ".join(format_shape(s) for s in shapes)
         raise SpliceError(f"{what} fails on a probe batch of two {listed} images ({type(exc).__name__}: "
                           f"{first_line(exc)}); if the input shape is wrong, pass --input-shape CxHxW (the images "
                           "are resized to it)") from None

@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import contextlib
 import io
-import itertools
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -33,6 +32,7 @@ from torch import nn
 from ..copies import private_buffers
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, path_strides, site_name
+from .shapes import model_device
 from .strides import call_stride
 
 __all__ = ["export_quietly"]
@@ -182,8 +182,7 @@ def _export(model: nn.Module, args: tuple, kwargs: dict):
 def _as_examples(value: Any, model: nn.Module) -> Any:
     """Meta tensors as uninitialised real ones of the same shape and dtype on ``model``'s device (torch.export
     needs real example inputs, but reads only their shapes and dtypes); anything else as it is."""
-    tensor = next(itertools.chain(model.parameters(), model.buffers()), None)
-    device = tensor.device if tensor is not None else torch.device("cpu")
+    device = model_device(model)
     return fx.node.map_aggregate(value, lambda v: torch.empty(v.shape, dtype=v.dtype, device=device)
                                  if isinstance(v, torch.Tensor) and v.is_meta else v)
 

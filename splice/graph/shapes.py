@@ -103,6 +103,12 @@ def to_meta(value: Any) -> Any:
     return meta_empty(value.shape, value.dtype) if isinstance(value, torch.Tensor) else value
 
 
+def model_device(model: nn.Module) -> torch.device:
+    """The device of the model's first parameter or buffer (the CPU if it has none): where inputs for it go."""
+    tensor = next(itertools.chain(model.parameters(), model.buffers()), None)
+    return tensor.device if tensor is not None else torch.device("cpu")
+
+
 def input_dtype(model: nn.Module) -> torch.dtype:
     """The dtype of the model's first floating-point parameter or buffer (float32 if none)."""
     for t in itertools.chain(model.parameters(), model.buffers()):
@@ -237,8 +243,7 @@ _METHOD_RULES: dict[str, Callable[[tuple, dict], torch.Tensor | None]] = dict.fr
 
 def run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
     """Run a copy of ``mod`` once on all-zeros inputs of the given meta shapes; return meta outputs."""
-    tensor = next(itertools.chain(mod.parameters(), mod.buffers()), None)
-    device = tensor.device if tensor is not None else torch.device("cpu")
+    device = model_device(mod)
 
     def real(v):
         return torch.zeros(v.shape, dtype=v.dtype, device=device) if isinstance(v, torch.Tensor) else v
