@@ -190,18 +190,24 @@ def _deployment_notes(model) -> dict[str, str]:
 def _updated_by_a_call(model, shapes) -> list[str]:
     """The buffers one eval-mode forward of ``model`` changes (a call counter), run on a twin: the caller's model
     is not changed."""
-    from ..copies import bitwise_equal, private_buffers
+    from ..copies import buffer_snapshot, changed_buffers, private_buffers
+    from ..graph.shapes import model_device
 
     twin = private_buffers(model).eval()
-    param = next(iter(model.parameters()), None)
-    like = {"dtype": model_dtype(model), "device": param.device if param is not None else "cpu"}
-    before = {n: b.detach().clone() for n, b in twin.named_buffers()}
+    like = {"dtype": model_dtype(model), "device": model_device(model)}
+    before = buffer_snapshot(twin)
     try:
         with torch.no_grad():
             twin(*[torch.randn((2, *s), **like) for s in shapes])
     except Exception:  # the failure the check reported says enough
         return []
-    return [n for n, b in twin.named_buffers() if n in before and not bitwise_equal(before[n], b)]
+    return changed_buffers(before, twin)
+
+
+def moving_state(moved: list[str]) -> str:
+    """Why an exported graph cannot answer as a model whose forward updates the buffers ``moved`` at every call."""
+    return (f"the model updates {', '.join(moved[:4])} at every call, which an exported graph holds at its value "
+            "when exported")
 
 
 def _float32_for_onnx(model):
@@ -236,8 +242,8 @@ def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bo
             hint = "" if result.get("tracer_conversions") else ". Try another --opset or report the model"
             moved = _updated_by_a_call(model_fmt, shapes)
             if moved:  # no exported graph can follow state that every call changes
-                hint = (f". The model updates {', '.join(moved[:4])} at every call, which an exported graph holds at "
-                        "its value when exported, so no such file answers as the model does on later calls")
+                note = moving_state(moved)
+                hint = f". {note[0].upper()}{note[1:]}, so no such file answers as the model does on later calls"
             raise CheckFailed(
                 f"the {fmt} export of {what} does not match the model ({result['detail']}); "
                 f"nothing was written to '{target}'{hint}"

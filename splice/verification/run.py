@@ -21,6 +21,7 @@ from ..compare import compare_outputs, detached, flatten_outputs
 from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept, same_draws
 from ..errors import SpliceError
 from ..exporting import check_opset
+from ..exporting.run import moving_state
 from ..limits import check_fits, tensor_bytes
 from ..manifest import MANIFEST_NAME, SpliceInfo, info_of
 from ..store import base_part, open_folder
@@ -223,8 +224,7 @@ def _with_moving_state(row: CheckResult, moved: list[str]) -> CheckResult:
     graph holds them at their values when exported."""
     if row.passed or not moved:
         return row
-    return dataclasses.replace(row, detail=f"{row.detail}; the model updates {', '.join(moved[:4])} at every call, "
-                               "which an exported graph holds at its value when exported")
+    return dataclasses.replace(row, detail=f"{row.detail}; {moving_state(moved)}")
 
 
 def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Options, *, images, image_files,
