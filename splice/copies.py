@@ -38,7 +38,7 @@ import torch
 from torch import fx, nn
 
 __all__ = ["private_buffers", "own_buffers_", "tree_copy", "buffer_snapshot", "changed_buffers", "bitwise_equal",
-           "collector_paused", "modes_kept", "rng_kept", "same_draws"]
+           "collector_paused", "modes_kept", "rng_kept", "same_draws", "buffers_kept"]
 
 # the per-module mappings a twin must own so that adding a hook, a flag or an
 # attribute to it never reaches the caller's module
@@ -249,6 +249,20 @@ def changed_buffers(before: Mapping[str, torch.Tensor], model: nn.Module) -> lis
     now = dict(model.named_buffers(remove_duplicate=False))
     names = set(before) | set(now)
     return sorted(k for k in names if k not in before or k not in now or not bitwise_equal(before[k], now[k]))
+
+
+@contextmanager
+def buffers_kept(model: nn.Module) -> Iterator[nn.Module]:
+    """Every buffer back as it was when the block began: the same tensor in each slot (a forward that rebinds one,
+    ``self.n = self.n + 1``, gets its own back) holding the same values (one updated in place is copied back)."""
+    saved = [(m, k, b, b.detach().clone()) for m in model.modules() for k, b in m._buffers.items() if b is not None]
+    try:
+        yield model
+    finally:
+        with torch.no_grad():
+            for m, k, b, value in saved:
+                m._buffers[k] = b
+                b.copy_(value)
 
 
 @contextmanager

@@ -29,8 +29,8 @@ from torch import Tensor, nn
 from ..copies import modes_kept
 from ..distort import DistortionRange, random_distort
 from ..training import batches as _b
-from ..errors import SpliceError, TrainingDiverged
-from ..training.pretrain import execution_order, finite_step, grid_loss, warp_inputs
+from ..errors import TrainingDiverged
+from ..training.pretrain import check_resumable, execution_order, finite_step, grid_loss, warp_inputs
 from ..training.schedule import lr_factor
 from .images import Images
 
@@ -104,9 +104,7 @@ def regress_warps_(model: nn.Module, warps: Mapping[str, nn.Module], images: Ima
     order = execution_order(model, warps, prepare(images.batch(torch.arange(min(2, n)))))
     step, running, seen, recent, first = 0, 0.0, 0, 0.0, 0
     if resume is not None:
-        if int(resume["total_steps"]) != total:
-            raise SpliceError(f"the pre-training checkpoint was written for {int(resume['total_steps'])} steps, but "
-                              f"this run has {total}; resume with the data and recipe the run was started with")
+        check_resumable(resume, total)
         opt.load_state_dict(resume["optimizer"])
         first, step = int(resume["epoch"]), int(resume["step"])
         running, seen, recent = float(resume["running"]), int(resume["seen"]), float(resume["recent"])

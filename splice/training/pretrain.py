@@ -34,7 +34,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from ..copies import modes_kept
+from ..copies import buffers_kept, modes_kept
 from ..distort import random_distort
 from . import batches as _b
 from .schedule import lr_factor
@@ -85,17 +85,22 @@ def warp_inputs(model: nn.Module, warps: Mapping[str, nn.Module], x: Tensor, *,
     return captured, order
 
 
+def check_resumable(state: Mapping[str, Any], total: int) -> None:
+    """Refuse a pre-training checkpoint ``state`` written for another number of steps than ``total``."""
+    from ..errors import SpliceError
+
+    if int(state["total_steps"]) != total:
+        raise SpliceError(
+            f"the pre-training checkpoint was written for {int(state['total_steps'])} steps, but this run has "
+            f"{total}; resume with the data and recipe the run was started with"
+        )
+
+
 def execution_order(model: nn.Module, warps: Mapping[str, nn.Module], example: Tensor) -> list[str]:
     """Names of ``warps`` in the order a forward pass reaches them. The model's buffers are left as they were (a
     counter its forward updates does not count this look, so a resumed run counts as an uninterrupted one)."""
-    saved = [(m, k, b, b.detach().clone()) for m in model.modules() for k, b in m._buffers.items() if b is not None]
-    try:
+    with buffers_kept(model):
         _, order = warp_inputs(model, warps, example)
-    finally:
-        with torch.no_grad():
-            for m, k, b, value in saved:
-                m._buffers[k] = b  # a forward that rebinds a buffer (self.n = self.n + 1) gets its own back too
-                b.copy_(value)
     return order
 
 
@@ -234,13 +239,7 @@ class _Loop:
                 "running": self.running, "seen": self.seen, "recent": self.recent, "total_steps": self.total}
 
     def load(self, state: Mapping[str, Any]) -> None:
-        from ..errors import SpliceError
-
-        if int(state["total_steps"]) != self.total:
-            raise SpliceError(
-                f"the pre-training checkpoint was written for {int(state['total_steps'])} steps, but this run has "
-                f"{self.total}; resume with the data and recipe the run was started with"
-            )
+        check_resumable(state, self.total)
         self.epoch, self.batch, self.step = int(state["epoch"]), int(state["batch"]), int(state["step"])
         self.opt.load_state_dict(state["optimizer"])
         self.running, self.seen, self.recent = float(state["running"]), int(state["seen"]), float(state["recent"])
