@@ -116,7 +116,8 @@ class Snapshot:
 
     def check(self, runs: Mapping[str, nn.Module] | None = None, after_updates: dict | None = None) -> CheckResult:
         """The ``buffers`` row; ``runs`` are the twins the checks ran (their updates are reported, not failed).
-        ``after_updates`` is :func:`after_same_updates`'s comparison, for a base that updates buffers in eval."""
+        ``after_updates`` compares base and splice on later calls from the same buffers (verify runs it for a base
+        that updates buffers in eval mode)."""
         now = {f"{tag}:{n}": b for tag, m in self.models.items() for n, b in m.named_buffers()}
         changed = sorted(k for k, v in self.buffers.items() if k.split(":", 1)[0] in self.models
                          and (k not in now or not bitwise_equal(v, now[k])))
@@ -167,7 +168,6 @@ class Snapshot:
         return CheckResult("buffers", passed, numbers, detail,
                            f"{len(self.buffers)} buffers, {len(changed) + len(lost)} changed"
                            + (", calls drift apart" if drift else ""))
-
 
 
 class Laps:

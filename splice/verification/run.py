@@ -267,9 +267,10 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         lap("outputs")
         meta["hashes"]["base_sha256"] = base_hash.result()
         buffers = frozenset(n for n, _ in base.named_buffers())
+        self_updated = snapshot.updated_by("base", base)  # what the base's own forwards moved, measured once
         rows.append(provenance_row(info, base_state, meta["hashes"]["base_sha256"], recorded_base, info.input_shape,
                                    trust_code=opts.trust_code, buffers=buffers, reference=reference,
-                                   trust_pickle=opts.trust_pickle, self_updated=snapshot.updated_by("base", base)))
+                                   trust_pickle=opts.trust_pickle, self_updated=self_updated))
         lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
@@ -289,14 +290,14 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
             # twin after the gradient check, and the exporter refuses those
             rows.append(_with_moving_state(onnx_row(unrun, example, opset=opts.opset, exporter=opts.exporter,
                                                     n_outputs=fwd.n_outputs, reference=fwd.first_sample),
-                                           sorted(snapshot.updated_by("base", base))))
+                                           sorted(self_updated)))
             lap("onnx")
     finally:
         for p in flat_params:
             p.requires_grad_(grad_flags[id(p)])
         snapshot.restore_modes()
     drift = None
-    if fwd.n_outputs is not None and snapshot.updated_by("base", base):  # the spliced forward ran
+    if fwd.n_outputs is not None and self_updated:  # the spliced forward ran
         drift = _after_same_updates(base, reset_copy(spliced) if tuned else spliced,
                                    tuple(t.detach() for t in fwd.x), opts.tol)
     rows.append(snapshot.check({"base": base, "spliced": spliced}, after_updates=drift))
