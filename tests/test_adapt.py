@@ -347,30 +347,40 @@ def test_small_folders_are_held_in_memory_and_large_ones_read_batch_by_batch(fol
     assert torch.equal(lazy.batch(idx), held.batch(idx))
 
 
-def test_a_stop_during_pre_training_resumes_at_that_phase_with_the_same_result(tmp_path, folders, spliced,
-                                                                               monkeypatch):
+def _stopped_in_pre_training(tmp_path, spliced, kw, monkeypatch, stopping=None):
+    """``(full, part)``: a label-free run never stopped, and one stopped in pre-training (by ``stopping``, a
+    stand-in for ``regress_warps_`` given the real one; by default at its start), not yet resumed. The real
+    pre-training is back in place when this returns."""
     from splice.adapt import run as adapt_run
     from splice.training import TuneInterrupted
 
-    ref, site = folders
-    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
-    full = tmp_path / "full"
+    full, part = tmp_path / "full", tmp_path / "part"
     tune(str(spliced), out=full, run_options=QUIET, **kw)
-
     real = adapt_run.regress_warps_
 
     def stop(*args, **kwargs):
         raise TuneInterrupted("interrupted during pre-train warps")
-    monkeypatch.setattr(adapt_run, "regress_warps_", stop)
-    part = tmp_path / "part"
+    monkeypatch.setattr(adapt_run, "regress_warps_", stop if stopping is None else stopping(real))
     with pytest.raises(TuneInterrupted):
         tune(str(spliced), out=part, run_options=QUIET, **kw)
+    monkeypatch.setattr(adapt_run, "regress_warps_", real)
+    return full, part
+
+
+def _same_last(part, full) -> bool:
+    return state_dict_sha256(splice.load(part / "last").state_dict()) == \
+        state_dict_sha256(splice.load(full / "last").state_dict())
+
+
+def test_a_stop_during_pre_training_resumes_at_that_phase_with_the_same_result(tmp_path, folders, spliced,
+                                                                               monkeypatch):
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full, part = _stopped_in_pre_training(tmp_path, spliced, kw, monkeypatch)
     assert json.loads((part / "run.json").read_text())["status"] == "interrupted"
     assert load_checkpoint(part / CHECKPOINT_NAME)["phase"] == "pretrain"  # the estimate is kept
-    monkeypatch.setattr(adapt_run, "regress_warps_", real)
     tune(resume=part, run_options=QUIET)
-    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
-        state_dict_sha256(splice.load(full / "last").state_dict())
+    assert _same_last(part, full)
     assert [r["phase"] for r in read_metrics(part)] == [r["phase"] for r in read_metrics(full)]
 
 
@@ -471,9 +481,8 @@ def test_a_resumed_run_draws_from_the_exact_estimated_ranges(tmp_path, folders, 
     """An estimate is seldom a round number; the checkpoint kept it rounded to 4 decimals, so a run stopped after the
     estimate pre-trained and adapted within other ranges than an uninterrupted one (weights off by up to 0.6)."""
     from splice.adapt import run as adapt_run
-    from splice.training import TuneInterrupted
 
-    real_estimate, real_regress = adapt_run.estimate_ranges, adapt_run.regress_warps_
+    real_estimate = adapt_run.estimate_ranges
 
     def unround(*args, **kwargs):  # what a probe reads off real site images: no short decimal
         est = real_estimate(*args, **kwargs)
@@ -481,52 +490,34 @@ def test_a_resumed_run_draws_from_the_exact_estimated_ranges(tmp_path, folders, 
     monkeypatch.setattr(adapt_run, "estimate_ranges", unround)
     ref, site = folders
     kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
-    full = tmp_path / "full"
-    tune(str(spliced), out=full, run_options=QUIET, **kw)
-
-    def stop(*args, **kwargs):
-        raise TuneInterrupted("interrupted during pre-train warps")
-    monkeypatch.setattr(adapt_run, "regress_warps_", stop)
-    part = tmp_path / "part"
-    with pytest.raises(TuneInterrupted):
-        tune(str(spliced), out=part, run_options=QUIET, **kw)
-    monkeypatch.setattr(adapt_run, "regress_warps_", real_regress)
+    full, part = _stopped_in_pre_training(tmp_path, spliced, kw, monkeypatch)
     tune(resume=part, run_options=QUIET)
-    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
-        state_dict_sha256(splice.load(full / "last").state_dict())
+    assert _same_last(part, full)
 
 
 def test_a_stop_late_in_pre_training_resumes_at_its_last_epoch_with_the_same_result(tmp_path, folders, spliced,
                                                                                   monkeypatch):
     """Pre-training is checkpointed after every epoch (the shipped recipe runs 160 of them): a stop in the third
     continues from the end of the second, to the weights of a run never stopped."""
-    from splice.adapt import run as adapt_run
     from splice.training import TuneInterrupted
 
     ref, site = folders
     recipe = _tiny().to_dict()
     recipe["pretrain"]["epochs"] = 3
     kw = {"recipe": Recipe.from_dict(recipe), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
-    full = tmp_path / "full"
-    tune(str(spliced), out=full, run_options=QUIET, **kw)
-
-    real = adapt_run.regress_warps_
     per_epoch = math.ceil(40 / 8)  # 40 reference images, batches of 8
 
-    def stopping(*args, on_step, **kwargs):
-        def step(i, total, loss):
-            if i == 2 * per_epoch + 2:
-                raise TuneInterrupted("stopped in the third pre-training epoch")
-            on_step(i, total, loss)
-        return real(*args, on_step=step, **kwargs)
-    monkeypatch.setattr(adapt_run, "regress_warps_", stopping)
-    part = tmp_path / "part"
-    with pytest.raises(TuneInterrupted):
-        tune(str(spliced), out=part, run_options=QUIET, **kw)
+    def stopping(real):
+        def regress(*args, on_step, **kwargs):
+            def step(i, total, loss):
+                if i == 2 * per_epoch + 2:
+                    raise TuneInterrupted("stopped in the third pre-training epoch")
+                on_step(i, total, loss)
+            return real(*args, on_step=step, **kwargs)
+        return regress
+    full, part = _stopped_in_pre_training(tmp_path, spliced, kw, monkeypatch, stopping)
     saved = load_checkpoint(part / CHECKPOINT_NAME)
     assert saved["phase"] == "pretrain" and saved["pretrain"]["epoch"] == 2
     assert saved["pretrain"]["step"] == 2 * per_epoch
-    monkeypatch.setattr(adapt_run, "regress_warps_", real)
     tune(resume=part, run_options=QUIET)
-    assert state_dict_sha256(splice.load(part / "last").state_dict()) == \
-        state_dict_sha256(splice.load(full / "last").state_dict())
+    assert _same_last(part, full)
