@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
 import warnings
 from collections.abc import Sequence
@@ -464,9 +465,10 @@ def _run(args) -> int:
             raise
         print(f"splice {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
         print(f"splice {args.command}: interrupted", file=sys.stderr)
-        return 130
+        # the shell's convention: 128 plus the signal that asked for the stop (SIGINT 130, SIGTERM 143)
+        return 128 + int(getattr(exc, "signal_number", None) or signal.SIGINT)
     except (OSError, ValueError) as exc:
         if args.debug:
             raise

@@ -528,3 +528,36 @@ def test_warp_only_after_joint_is_certified_as_both(tmp_path, spliced):
     assert Path(tuning["run"]).is_absolute() and Path(tuning["before"]["run"]).is_absolute()
     row = splice.verify(tmp_path / "w" / "last")["provenance"]
     assert row.passed and "'warp-only' after 'joint'" in row.detail
+
+
+def test_a_signal_stops_the_run_exits_128_plus_it_and_names_the_command_that_continues(tmp_path, spliced,
+                                                                                      monkeypatch, capsys):
+    # the shell's convention for a process ended by a signal: 128 + its number (SIGTERM is 15: 143)
+    import signal
+
+    from splice import cli
+    from splice.progress import Progress
+    from splice.training.recording import resume_command
+
+    real = Progress.update
+    sent = []
+
+    def update(self, completed, **fields):
+        if not sent:  # a scheduler's SIGTERM arrives during the first step
+            sent.append(True)
+            os.kill(os.getpid(), signal.SIGTERM)
+        return real(self, completed, **fields)
+    monkeypatch.setattr(Progress, "update", update)
+    run = tmp_path / "run"
+    recipe = tmp_path / "tiny.toml"
+    from splice.recipes import recipe_to_toml
+
+    recipe.write_text(recipe_to_toml(_recipe("warp-only", epochs=1, batch_size=64)), encoding="utf-8")
+    code = cli.main(["tune", str(spliced), "--recipe", str(recipe), "--data", "digits-moved", "--out", str(run)])
+    said = capsys.readouterr()
+    err = said.out + said.err
+    assert sent and code == 128 + signal.SIGTERM == 143, err
+    assert json.loads((run / "run.json").read_text())["status"] == "interrupted"
+    assert f"Continue with: splice tune --resume {run}" in err
+    # a run of several processes is continued by as many: a plain resume would be refused
+    assert resume_command(run, 4) == f"torchrun -m splice tune --resume {run}, with the same 4 processes"

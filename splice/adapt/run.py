@@ -32,6 +32,7 @@ from ..recipes import recipe_to_toml
 from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
 from ..training.pretrain import execution_order
+from ..training.recording import announce_stop, resume_command
 from ..training.runfolder import RECIPE_FILE, read_metrics, truncate_metrics, write_run_info, writing
 from ..training.state import TuneInterrupted
 from .diagnostics import base_view, site_diagnostics
@@ -78,7 +79,7 @@ def _on_step(run: AdaptRun, title: str):
             run.bar.start(title, total)
         run.bar.update(i, **{"grid loss": loss})
         if distributed.broadcast_flag(run.ctx, run.flag.raised):  # every rank stops at the same step
-            raise TuneInterrupted(f"interrupted during {title}")
+            raise TuneInterrupted(f"interrupted during {title}", run.flag.signal)
     return on_step
 
 
@@ -175,10 +176,7 @@ def _stopped(run: AdaptRun, epoch: int, batch: int) -> dict[str, Any]:
     if run.ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="interrupted"))
     where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
-    run.bar.line(f"stopped at {where} (step {run.step}); checkpoint written. "
-                 f"Continue with: splice tune --resume {run.run_dir}")
-    if run.flag.raised:
-        raise TuneInterrupted(f"stopped at step {run.step}; resume with --resume {run.run_dir}")
+    announce_stop(run, where)
     return {"out": str(run.run_dir), "rank": run.ctx.rank, "world_size": run.ctx.world_size, "steps": run.step,
             "epochs": run.rec.epochs, "best_accuracy": None, "best_epoch": run.best["epoch"], "interrupted": True,
             "resume_at": {"epoch": epoch, "batch": batch}}
@@ -205,7 +203,7 @@ def run_label_free(run: AdaptRun) -> dict[str, Any]:
         if run.ctx.is_main:
             write_run_info(run.run_dir, dict(run.info, status="interrupted"))
         run.bar.line(f"interrupted during the {'range estimate' if phase == 'start' else 'pre-training'}; "
-                     f"'splice tune --resume {run.run_dir}' continues "
+                     f"'{resume_command(run.run_dir, run.ctx.world_size)}' continues "
                      f"{'that phase from its start' if phase == 'start' else 'from its last finished epoch'}")
         raise
     plan = Epochs(run)

@@ -18,7 +18,8 @@ from .params import is_warp_name
 from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, writing
 from .state import Run, TuneInterrupted, unwrap
 
-__all__ = ["evaluate_val", "record", "checkpoint", "stopped", "finish", "nonfinite", "diverged"]
+__all__ = ["evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
+           "finish", "nonfinite", "diverged"]
 
 
 def nonfinite(tensors) -> str | None:
@@ -190,16 +191,30 @@ def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None 
     run.last_good = {"epoch": epoch, "step": run.step}
 
 
+def resume_command(run_dir, world_size: int) -> str:
+    """The command that continues the run in ``run_dir``: torchrun with as many processes when it ran in several
+    (a resume in another number of processes is refused)."""
+    if world_size > 1:
+        return f"torchrun -m splice tune --resume {run_dir}, with the same {world_size} processes"
+    return f"splice tune --resume {run_dir}"
+
+
+def announce_stop(run: Any, where: str) -> None:
+    """Say where ``run`` (a tune or label-free run) stopped and how to continue it; raise
+    :class:`TuneInterrupted` when a signal asked for the stop."""
+    command = resume_command(run.run_dir, run.ctx.world_size)
+    run.bar.line(f"stopped at {where} (step {run.step}); checkpoint written. Continue with: {command}")
+    if run.flag.raised:
+        raise TuneInterrupted(f"stopped at step {run.step}; continue with: {command}", run.flag.signal)
+
+
 def stopped(run: Run, epoch: int, batch: int, where: str | None = None) -> dict[str, Any]:
     """After a stop request: the checkpoint is written; record it, and raise for Ctrl-C / SIGTERM."""
     if run.ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="interrupted"))
     if where is None:
         where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
-    run.bar.line(f"stopped at {where} (step {run.step}); checkpoint written. "
-                 f"Continue with: splice tune --resume {run.run_dir}")
-    if run.flag.raised:
-        raise TuneInterrupted(f"stopped at step {run.step}; resume with --resume {run.run_dir}")
+    announce_stop(run, where)
     return {"out": str(run.run_dir), "rank": run.ctx.rank, "world_size": run.ctx.world_size,
             "best_accuracy": run.best["accuracy"], "best_epoch": run.best["epoch"], "steps": run.step,
             "epochs": run.rec.epochs, "interrupted": True, "resume_at": {"epoch": epoch, "batch": batch}}

@@ -17,7 +17,12 @@ __all__ = ["TuneInterrupted", "Run", "unwrap"]
 
 
 class TuneInterrupted(KeyboardInterrupt):
-    """Raised after Ctrl-C / SIGTERM once the checkpoint is safely written."""
+    """Raised after Ctrl-C / SIGTERM once the checkpoint is safely written; ``signal_number`` is the signal that
+    asked for the stop (``None``: a stop asked for otherwise), so that the CLI exits with 128 plus it."""
+
+    def __init__(self, message: str = "", signal_number: int | None = None) -> None:
+        super().__init__(message)
+        self.signal_number = signal_number
 
 
 def unwrap(model: nn.Module) -> nn.Module:

@@ -71,6 +71,7 @@ class _StopFlag:
 
     def __init__(self) -> None:
         self.raised = False
+        self.signal: int | None = None  # the first signal that asked for the stop
         self._old: dict[int, Any] = {}
 
     def __enter__(self) -> _StopFlag:
@@ -83,6 +84,7 @@ class _StopFlag:
         if self.raised and signum == signal.SIGINT:
             raise KeyboardInterrupt
         self.raised = True
+        self.signal = self.signal or signum
 
     def __exit__(self, *exc) -> None:
         for sig, old in self._old.items():
