@@ -65,8 +65,10 @@ from .imagefiles import (
     image_suffixes,
     list_image_files,
     load_images,
+    bad_headers,
     open_capped,
     read_image,
+    refuse_unreadable,
 )
 
 __all__ = [
@@ -185,19 +187,9 @@ class ImageFolderSet(Dataset):
         refuse_unreadable(bad, len(self.samples), f"in {self.folder}")
 
     def bad_headers(self) -> list[str]:
-        """``"path (why)"`` for every image whose header, not its pixels, cannot be read (tens of microseconds a
-        file): missing, not an image, or over the pixel cap. A file whose pixels are cut short still fails only
-        when it is read (:meth:`check` decodes everything)."""
-        bad = []
-        for path, _ in self.samples:
-            try:
-                with image_pixel_cap(self.pixel_cap), open_capped(path):
-                    pass
-            except DataError as exc:
-                bad.append(f"{path} ({exc})")
-            except (OSError, ValueError, SyntaxError) as exc:  # Pillow's refusals of a file that is no image
-                bad.append(f"{path} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})")
-        return bad
+        """:func:`bad_headers` of this split's images, under the pixel cap it was opened with."""
+        with image_pixel_cap(self.pixel_cap):
+            return bad_headers([path for path, _ in self.samples])
 
     def __repr__(self) -> str:
         return (f"ImageFolderSet(root={str(self.root)!r}, split={self.split!r}, "
@@ -436,14 +428,6 @@ def _open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFo
 # ---------------------------------------------------------------------------
 # normalisation
 # ---------------------------------------------------------------------------
-
-
-def refuse_unreadable(bad: Sequence[str], total: int, where: str) -> None:
-    """One :class:`DataError` naming the unreadable images ``bad`` (``"path (why)"``, the first ten) of ``total``
-    images ``where`` (``"in FOLDER"``, ``"of data 'NAME'"``); nothing when ``bad`` is empty."""
-    if bad:
-        listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
-        raise DataError(f"{len(bad)} of {total} images {where} cannot be read: {listed}. Remove or replace them.")
 
 
 def same_classes(a: Sequence[str] | None, b: Sequence[str] | None) -> bool:

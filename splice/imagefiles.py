@@ -53,6 +53,9 @@ __all__ = [
     "open_capped",
     "read_image",
     "load_images",
+    "bad_headers",
+    "read_all",
+    "refuse_unreadable",
 ]
 
 # Suffixes every Pillow build reads (.jfif, .jpe: JPEG; .dib: BMP without the file header).
@@ -301,3 +304,40 @@ def load_images(paths: Sequence[str | os.PathLike], input_shape: Sequence[int]) 
         if p.is_dir():
             raise DataError(f"{p} is a folder, not an image file; pass image files (or open_data for folders).")
     return torch.stack([read_image(p, shape) for p in paths])
+
+
+def bad_headers(paths: Sequence[Path]) -> list[str]:
+    """``"path (why)"`` for every image of ``paths`` whose header, not its pixels, cannot be read (tens of
+    microseconds a file): missing, not an image, or over the pixel cap in force. A file whose pixels are cut short
+    still fails only when it is decoded."""
+    bad = []
+    for path in paths:
+        try:
+            with open_capped(path):
+                pass
+        except DataError as exc:
+            bad.append(f"{path} ({exc})")
+        except (OSError, ValueError, SyntaxError) as exc:  # Pillow's refusals of a file that is no image
+            bad.append(f"{path} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})")
+    return bad
+
+
+def read_all(paths: Sequence[Path], input_shape: Sequence[int], where: str) -> Tensor:
+    """Every image of ``paths`` decoded into one ``(N, C, H, W)`` batch; one :class:`DataError` names all that
+    fail (:func:`refuse_unreadable`)."""
+    images, bad = [], []
+    for path in paths:
+        try:
+            images.append(read_image(path, input_shape))
+        except DataError as exc:
+            bad.append(f"{path} ({exc.__cause__ or exc})")
+    refuse_unreadable(bad, len(paths), where)
+    return torch.stack(images)
+
+
+def refuse_unreadable(bad: Sequence[str], total: int, where: str) -> None:
+    """One :class:`DataError` naming the unreadable images ``bad`` (``"path (why)"``, the first ten) of ``total``
+    images ``where`` (``"in FOLDER"``, ``"of data 'NAME'"``); nothing when ``bad`` is empty."""
+    if bad:
+        listed = "; ".join(bad[:10]) + (f"; and {len(bad) - 10} more" if len(bad) > 10 else "")
+        raise DataError(f"{len(bad)} of {total} images {where} cannot be read: {listed}. Remove or replace them.")

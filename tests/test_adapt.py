@@ -521,3 +521,22 @@ def test_a_stop_late_in_pre_training_resumes_at_its_last_epoch_with_the_same_res
     assert saved["pretrain"]["step"] == 2 * per_epoch
     tune(resume=part, run_options=QUIET)
     assert _same_last(part, full)
+
+
+@pytest.mark.parametrize("in_memory", [True, False])
+def test_every_unreadable_site_image_is_named_in_one_refusal(tmp_path, folders, monkeypatch, in_memory):
+    # a site folder with two bad files named them one run at a time
+    ref, _ = folders
+    site = tmp_path / "site"
+    site.mkdir()
+    good = sorted(ref.iterdir())[:3]
+    for f in good:
+        (site / f.name).write_bytes(f.read_bytes())
+    (site / "empty.png").write_bytes(b"")
+    (site / "zz-cut.png").write_bytes(good[0].read_bytes()[:60])  # a PNG cut inside its pixel data
+    if not in_memory:  # a site too big to decode up front is read batch by batch: its headers are checked now
+        monkeypatch.setattr("splice.adapt.images.MEMORY_LIMIT", 0)
+    with pytest.raises(DataError, match=r"^(2|1) of 5 images in site folder .* cannot be read: .*empty\.png") as err:
+        open_images(str(site), SHAPE)
+    if in_memory:
+        assert "2 of 5" in str(err.value) and "zz-cut.png" in str(err.value)

@@ -123,6 +123,7 @@ def image_files(root: Path) -> list[Path]:
 def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") -> Images:
     """The images of ``spec``: ``digits``, ``digits-moved`` (train split) or a folder; no label is read."""
     from ..data import DATASETS, open_data
+    from ..imagefiles import bad_headers, read_all, refuse_unreadable
 
     if not isinstance(spec, (str, os.PathLike)) or not os.fspath(spec):
         raise DataError(f"the {what} images must be a folder or one of {', '.join(DATASETS)}; got {spec!r}")
@@ -144,4 +145,8 @@ def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") ->
         )
     images = FileImages(files, input_shape, str(root.resolve()))
     pixels = len(files) * int(torch.tensor(images.input_shape).prod())
-    return TensorImages(images.all(), images.name) if 4 * pixels <= MEMORY_LIMIT else images
+    where = f"in {what} folder '{root}'"
+    if 4 * pixels <= MEMORY_LIMIT:  # decoded now: every file that fails is named at once
+        return TensorImages(read_all(files, images.input_shape, where), images.name)
+    refuse_unreadable(bad_headers(files), len(files), where)  # read batch by batch: the headers are checked now
+    return images
