@@ -242,7 +242,8 @@ def _cmd_eval(args) -> int:
     from .evaluation import evaluate_keywords as evaluate, render_eval
 
     result = evaluate(args.model, data=args.data, split=args.split, against=args.against, distort=args.distort,
-                      batch_size=args.batch_size, plot=args.plot, weights=args.weights, kwargs=args.kwargs,
+                      batch_size=args.batch_size, seed=args.seed, plot=args.plot, weights=args.weights,
+                      kwargs=args.kwargs,
                       input_shape=args.input_shape, trust_pickle=args.trust_pickle, device=args.device,
                       trust_code=args.trust_code, against_trust_code=args.against_trust_code,
                       against_trust_pickle=args.against_trust_pickle)
@@ -393,6 +394,8 @@ def _parser_eval(sub) -> None:
                    help="sweeps, e.g. 'rotate=0,15,30;scale=0.8,1.2;shift=0.1;perspective=0.2' "
                         "(default: a standard sweep)")
     p.add_argument("--batch-size", type=int, default=128, help="images per forward pass (default 128)")
+    p.add_argument("--seed", type=int, default=0,
+                   help="seed of the perspective sweep's random corner moves (default 0)")
     p.add_argument("--plot", metavar="PNG", help="where to write the accuracy-vs-distortion plot")
     p.add_argument("--device", help="cuda, mps or cpu")
     p.add_argument("--json", action="store_true")

@@ -194,6 +194,23 @@ def test_cli_json_prints_the_schema(capsys):
     assert out["against"] is None and out["n_images"] == len(open_data("digits", "val"))
 
 
+def test_cli_seed_redraws_the_perspective_corners_as_the_api_does(capsys):
+    from splice.cli import main
+
+    def cli(seed):
+        torch.manual_seed(0)  # the same random weights in every call
+        assert main(["eval", "splice.models:tray_net", "--kwargs", '{"width": 2}', "--data", "digits", "--split",
+                     "val", "--distort", "perspective=0.4", "--device", "cpu", "--json", "--seed", str(seed)]) == 0
+        return json.loads(capsys.readouterr().out)
+
+    torch.manual_seed(0)
+    api = E.evaluate_keywords("splice.models:tray_net", kwargs={"width": 2}, data="digits", split="val",
+                              distort="perspective=0.4", device="cpu", seed=7)
+    seven = cli(7)
+    assert seven["seed"] == 7 and seven["sweeps"] == api["sweeps"]
+    assert cli(0)["sweeps"]["perspective"] != seven["sweeps"]["perspective"]  # other corners, another loss
+
+
 # ----------------------------------------------------------------------------- the --distort parser
 
 
