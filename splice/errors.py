@@ -27,6 +27,7 @@ __all__ = [
     "DataError",
     "CheckFailed",
     "NormalisationWarning",
+    "UprightChangeWarning",
     "ResourceError",
     "WriteError",
     "TrainingDiverged",
@@ -126,6 +127,10 @@ class SpliceWarning(UserWarning):
 
 class RandomWeightsWarning(SpliceWarning):
     """The model was built without trained weights; its outputs mean nothing for accuracy."""
+
+
+class UprightChangeWarning(SpliceWarning):
+    """A warp run changes the base's predictions on many upright reference images."""
 
 
 class NormalisationWarning(SpliceWarning):

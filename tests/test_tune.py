@@ -561,3 +561,36 @@ def test_a_signal_stops_the_run_exits_128_plus_it_and_names_the_command_that_con
     assert f"Continue with: splice tune --resume {run}" in err
     # a run of several processes is continued by as many: a plain resume would be refused
     assert resume_command(run, 4) == f"torchrun -m splice tune --resume {run}, with the same 4 processes"
+
+
+def test_upright_agreement_is_recorded_and_a_warp_that_moves_upright_predictions_is_a_caution(tmp_path, spliced):
+    # what the base predicts for held-out upright reference images, against what the warped model predicts: no label
+    # is needed, and a warp that changes those predictions costs upright accuracy
+    from splice.data import normalise
+    from splice.errors import UprightChangeWarning
+    from splice.manifest import info_of
+    from splice.training.recording import UPRIGHT_AGREEMENT
+    from splice.training.reference import Reference
+    from splice.training.setup import reference_probe
+
+    run = tmp_path / "run"
+    with pytest.warns(UprightChangeWarning, match=r"best/ change the base's prediction on .* % of 256 held-out") as w:
+        summary = tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1, batch_size=64, lr=0.05),
+                                data="digits-moved", out=run, **QUIET)
+    rows = read_metrics(run)
+    assert [r["phase"] for r in rows] == ["pretrain", "epoch"]
+    best = next(r for r in rows if r["epoch"] == summary["best_epoch"])
+    assert summary["best_reference_agreement"] == best["reference_agreement"] < UPRIGHT_AGREEMENT
+    # recomputed from the folders: the spliced base (warps at the identity) against best/, on the same probe
+    probe = reference_probe(Reference("digits", "upright counterpart"), None, None, SHAPE)
+    base, tuned = splice.load(spliced).eval(), splice.load(run / "best").eval()
+    x = normalise(probe, info_of(tuned).normalisation)
+    with torch.no_grad():
+        mine = float((base(x).argmax(1) == tuned(x).argmax(1)).float().mean())
+    assert mine == pytest.approx(best["reference_agreement"], abs=1e-6)
+    assert f"{100 * (1 - mine):.1f} %" in str(w[0].message)
+    # the starting model agrees with itself: the start row of a run without pre-training reads exactly 1
+    still = tmp_path / "still"
+    tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1, batch_size=64, pretrain_epochs=0),
+                  data="digits-moved", out=still, **QUIET)
+    assert read_metrics(still)[0]["phase"] == "start" and read_metrics(still)[0]["reference_agreement"] == 1.0

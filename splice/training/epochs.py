@@ -25,7 +25,7 @@ from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer,
     set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
-from .recording import checkpoint, diverged, evaluate_val, finish, record, stopped
+from .recording import checkpoint, diverged, evaluate_val, finish, record, reference_predictions, stopped
 from .runfolder import truncate_metrics
 from .schedule import lr_factor
 from .setup import reference_images
@@ -120,6 +120,8 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
     start_epoch, start_batch, run.step = int(ckpt["epoch"]), int(ckpt["batch"]), int(ckpt["step"])
     run.best, run.bad_evals = dict(ckpt["best"]), int(ckpt["bad_evals"])
     run.metrics_rows = int(ckpt["metrics_rows"])
+    if ckpt.get("reference_start") is not None:
+        run.reference_start = torch.tensor(ckpt["reference_start"], dtype=torch.long)
     if ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     run.last_good = {"epoch": start_epoch, "step": run.step}
@@ -145,6 +147,8 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     ctx, rec = run.ctx, run.rec
     kinds = f" in {len(run.classes)} classes" if run.classes else ""
     run.bar.line(f"data {run.data}: {len(run.train):,} train and {len(run.val):,} val images{kinds}")
+    if resume is None:  # what the base predicts for the upright reference, before any warp moves
+        run.reference_start = reference_predictions(run)
     if not (run.warps and rec.pretrain.epochs > 0) or run.reference.skipped:
         if run.warps and rec.pretrain.epochs > 0:
             run.bar.line(f"no upright reference for {run.data!r} ([pretrain] if_no_reference = \"skip\"): "

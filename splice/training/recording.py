@@ -4,12 +4,15 @@ from __future__ import annotations
 
 import os
 import time
+import warnings
 from typing import Any
 
 import torch
 
+from ..compare import logits_or_refuse
+from ..copies import buffers_kept, modes_kept
 from ..fileio import atomic_write_text, state_dict_sha256
-from ..errors import TrainingDiverged
+from ..errors import TrainingDiverged, UprightChangeWarning
 from ..manifest import info_of
 from . import distributed
 from .checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
@@ -18,8 +21,12 @@ from .params import is_warp_name
 from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, writing
 from .state import Run, TuneInterrupted, unwrap
 
-__all__ = ["evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
-           "finish", "nonfinite", "diverged"]
+__all__ = ["UPRIGHT_AGREEMENT", "evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
+           "reference_predictions", "finish", "nonfinite", "diverged"]
+
+#: below this share of held-out upright reference images keeping the base's predicted class, a warp run warns that
+#: upright accuracy may fall: a rule of thumb, our choice, no source (two points is what a warp should not cost)
+UPRIGHT_AGREEMENT = 0.98
 
 
 def nonfinite(tensors) -> str | None:
@@ -78,6 +85,41 @@ def _reference_distance(run: Run) -> dict[str, float] | None:
     return reference_distance(unwrap(run.net_wrapped), run.warps, run.prepare(run.reference_probe))
 
 
+def reference_predictions(run: Run) -> torch.Tensor | None:
+    """The class the model predicts now for each held-out upright reference image (``None`` for a run without
+    warps or reference); eval mode, and the model's modes and buffers are put back."""
+    if not run.warps or run.reference_probe is None:
+        return None
+    model = unwrap(run.net_wrapped) if run.net_wrapped is not None else run.net
+    with torch.no_grad(), modes_kept(model), buffers_kept(model):
+        model.eval()
+        return torch.cat([logits_or_refuse(model(run.prepare(chunk)), "the model").argmax(1).cpu()
+                          for chunk in run.reference_probe.split(256)])
+
+
+def _reference_agreement(run: Run) -> float | None:
+    """The share of held-out upright reference images whose predicted class is the one the run's starting model
+    (the base, warps at the identity) gave them."""
+    if run.reference_start is None:
+        return None
+    return round(float((reference_predictions(run) == run.reference_start).float().mean()), 6)
+
+
+def _caution_upright(run: Run, rows: list[dict]) -> float | None:
+    """The upright agreement of the model ``best/`` holds (its metrics row), with a warning and a line when it is
+    below :data:`UPRIGHT_AGREEMENT`."""
+    best = [r for r in rows if r.get("step") == run.best["step"] and r.get("epoch") == run.best["epoch"]]
+    agreement = best[-1].get("reference_agreement") if best else None
+    if agreement is not None and agreement < UPRIGHT_AGREEMENT:
+        text = (f"the warps of best/ change the base's prediction on {100 * (1 - agreement):.1f} % of "
+                f"{len(run.reference_start)} held-out upright reference images: its upright accuracy may be lower "
+                "by as much; more warp pre-training epochs or a larger [pretrain] identity_fraction keep upright "
+                "images nearer the identity")
+        run.bar.line(f"caution: {text}")
+        warnings.warn(text, UprightChangeWarning, stacklevel=4)
+    return agreement
+
+
 def base_differs(model, start_sha256: str) -> bool:
     """Whether ``model``'s base differs from the start of a run (``start_sha256``), or from the source its record
     names (a folder tuned before: a warp-only run of a joint-tuned folder leaves a base that is not its source's).
@@ -132,6 +174,8 @@ def _line(run: Run, row: dict) -> str:
         parts.append("warp dist " + ", ".join(f"{k} {v:.3f}" for k, v in row["warp_distance"].items()))
     if row.get("reference_distance"):
         parts.append("upright shift px " + ", ".join(f"{k} {v:.2f}" for k, v in row["reference_distance"].items()))
+    if row.get("reference_agreement") is not None:
+        parts.append(f"upright agree {row['reference_agreement']:.3f}")
     return "  ".join(parts)
 
 
@@ -145,6 +189,7 @@ def record(run: Run, phase: str, epoch: int, *, loss=None, train_acc=None, ips=N
            "accuracy": round(acc, 6), "val_loss": round(val_loss, 6), "lr": run.optimizer.param_groups[0]["lr"],
            "images_per_s": ips, "warp_distance": _warp_distances(run.warps),
            "reference_distance": _reference_distance(run),
+           "reference_agreement": _reference_agreement(run),
            "base_frozen": run.rec.base_frozen(max(0, epoch - 1)),
            "time_s": round(time.monotonic() - run.t_run, 3), **(extra or {})}
     if run.ctx.is_main:
@@ -184,6 +229,7 @@ def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None 
         "metrics_rows": run.metrics_rows,
         "epoch_totals": [loss_sum, correct, float(seen), run.epoch_time],
         "recipe": run.rec.to_dict(),
+        "reference_start": None if run.reference_start is None else run.reference_start.tolist(),
     }
     if extra:
         payload.update(extra)
@@ -227,7 +273,9 @@ def finish(run: Run, ips, stopped_early: bool) -> dict[str, Any]:
     base_changed = _base_changed(run)
     if os.environ.get(HASH_ENV):
         atomic_write_text(run.run_dir / f"rank{ctx.rank}.sha256", state_dict_sha256(final.state_dict()) + "\n")
-    last_rows = [r for r in read_metrics(run.run_dir) if r.get("phase") == "epoch"] if ctx.is_main else []
+    rows = read_metrics(run.run_dir) if ctx.is_main else []
+    last_rows = [r for r in rows if r.get("phase") == "epoch"]
+    agreement = _caution_upright(run, rows) if ctx.is_main else None
     if ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="stopped early" if stopped_early else "finished"))
     return {
@@ -236,4 +284,5 @@ def finish(run: Run, ips, stopped_early: bool) -> dict[str, Any]:
         "last_accuracy": last_rows[-1]["accuracy"] if last_rows else None,
         "epochs": run.rec.epochs, "steps": run.step, "base_changed": base_changed,
         "images_per_s": ips, "stopped_early": stopped_early, "interrupted": False,
+        "best_reference_agreement": agreement,
     }

@@ -56,6 +56,7 @@ class Run:
     stop_after_pretrain_steps: int | None = None
     reference: Any = None  # splice.training.reference.Reference, None for baseline
     reference_probe: torch.Tensor | None = None  # held-out reference images for reference_distance
+    reference_start: torch.Tensor | None = None  # the starting model's predicted class for each of them
     trained_on: str | None = None
 
     bar: Any = None  # splice.progress.Progress
