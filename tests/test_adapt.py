@@ -540,3 +540,24 @@ def test_every_unreadable_site_image_is_named_in_one_refusal(tmp_path, folders, 
         open_images(str(site), SHAPE)
     if in_memory:
         assert "2 of 5" in str(err.value) and "zz-cut.png" in str(err.value)
+
+
+def test_a_label_free_run_follows_the_base_predictions_on_upright_reference_images(tmp_path, folders, spliced):
+    # no label: the share of reference images whose predicted class the warps leave as the base gave it
+    from splice.data import normalise
+    from splice.manifest import info_of
+
+    ref, site = folders
+    out = tmp_path / "run"
+    summary = tune(str(spliced), recipe=_tiny(), site=str(site), out=out,
+                   overrides=RecipeOverrides(reference=str(ref)), run_options=QUIET)
+    rows = read_metrics(out)
+    assert rows[0]["phase"] == "start" and rows[0]["reference_agreement"] == 1.0  # the base agrees with itself
+    assert summary["reference_agreement"] == rows[-1]["reference_agreement"]
+    # recomputed from the folders on the 40 reference images (all of them: fewer than the 256 followed)
+    images = open_images(str(ref), SHAPE).all()
+    base, adapted = splice.load(spliced).eval(), splice.load(out / "last").eval()
+    x = normalise(images, info_of(adapted).normalisation)
+    with torch.no_grad():
+        mine = float((base(x).argmax(1) == adapted(x).argmax(1)).float().mean())
+    assert mine == pytest.approx(rows[-1]["reference_agreement"], abs=1e-6)

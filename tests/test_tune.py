@@ -574,7 +574,7 @@ def test_upright_agreement_is_recorded_and_a_warp_that_moves_upright_predictions
     from splice.training.setup import reference_probe
 
     run = tmp_path / "run"
-    with pytest.warns(UprightChangeWarning, match=r"best/ change the base's prediction on .* % of 256 held-out") as w:
+    with pytest.warns(UprightChangeWarning, match=r"best/ change the base's prediction on .* % of 256 upright") as w:
         summary = tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1, batch_size=64, lr=0.05),
                                 data="digits-moved", out=run, **QUIET)
     rows = read_metrics(run)

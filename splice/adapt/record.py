@@ -25,7 +25,7 @@ from typing import Any
 
 from ..fileio import atomic_write_json, atomic_write_text, state_dict_sha256
 from ..training.checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
-from ..training.recording import base_differs, tuning_record
+from ..training.recording import agreement, base_differs, caution_upright, predicted_classes, tuning_record
 from ..training.runfolder import HASH_ENV, append_metrics, write_run_info, writing
 from .setup import AdaptRun
 
@@ -43,10 +43,13 @@ def base_changed(run: AdaptRun) -> bool:
 def row(run: AdaptRun, phase: str, epoch: int, *, site: dict | None, loss=None, extra: dict | None = None) -> dict:
     """Append one metrics row (rank 0) and print its line."""
     lr = run.optimizer.param_groups[0]["lr"] if run.optimizer is not None else None
+    upright = None
+    if run.reference_start is not None:
+        upright = agreement(predicted_classes(run.net, run.reference_probe, run.prepare), run.reference_start)
     data = {"phase": phase, "epoch": epoch, "step": run.step, "loss": loss, "lr": lr, "accuracy": None,
             "warp_distance": {n: round(float(w.identity_distance()), 6) for n, w in run.warps.items()},
             "base_frozen": True, "time_s": round(time.monotonic() - run.t_run, 3), "site": site,
-            **(extra or {})}
+            "reference_agreement": upright, **(extra or {})}
     if run.ctx.is_main:
         append_metrics(run.run_dir, data)
     run.metrics_rows += 1
@@ -56,6 +59,8 @@ def row(run: AdaptRun, phase: str, epoch: int, *, site: dict | None, loss=None, 
     if site:
         parts.append(f"site confidence {site['confidence']:.3f}  entropy {site['entropy']:.3f}  "
                       f"agreement {site['agreement']:.3f}")
+    if upright is not None:
+        parts.append(f"upright agree {upright:.3f}")
     run.bar.line("  ".join(parts))
     return data
 
@@ -92,6 +97,7 @@ def save_state(run: AdaptRun, *, phase: str, epoch: int, batch: int, extra: dict
         "scheduler": {"kind": run.rec.schedule, "step": run.step}, "rng": rng_state(), "best": dict(run.best),
         "metrics_rows": run.metrics_rows, "recipe": run.rec.to_dict(),
         "estimate": run.estimate.to_dict(exact=True) if run.estimate is not None else None,
+        "reference_start": None if run.reference_start is None else run.reference_start.tolist(),
     }
     if extra:
         payload.update(extra)
@@ -118,8 +124,12 @@ def end(run: AdaptRun, rows: list[dict], *, interrupted: bool = False) -> dict[s
                "best_accuracy": None, "best_epoch": run.best["epoch"], "best_agreement": run.best["score"],
                "base_changed": base_changed(run), "interrupted": interrupted,
                "ranges": run.estimate.to_dict() if run.estimate is not None else None,
-               "site_before": before, "site_after": after}
+               "site_before": before, "site_after": after,
+               "reference_agreement": rows[-1].get("reference_agreement") if rows else None}
     _print_summary(run, summary)
+    if run.ctx.is_main and not interrupted:
+        images = 0 if run.reference_start is None else len(run.reference_start)
+        caution_upright(run.bar, summary["reference_agreement"], images, "best/ and last/")
     return summary
 
 

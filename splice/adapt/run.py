@@ -32,7 +32,7 @@ from ..recipes import recipe_to_toml
 from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
 from ..training.pretrain import execution_order
-from ..training.recording import announce_stop, resume_command
+from ..training.recording import announce_stop, predicted_classes, resume_command
 from ..training.runfolder import RECIPE_FILE, read_metrics, truncate_metrics, write_run_info, writing
 from ..training.state import TuneInterrupted
 from .diagnostics import base_view, site_diagnostics
@@ -164,6 +164,8 @@ def _restore(run: AdaptRun) -> tuple[str, int, int]:
     set_rng_state(ckpt["rng"])
     run.step, run.best, run.metrics_rows = int(ckpt["step"]), dict(ckpt["best"]), int(ckpt["metrics_rows"])
     run.estimate = RangeEstimate.from_dict(ckpt["estimate"]) if ckpt.get("estimate") else None
+    if ckpt.get("reference_start") is not None:
+        run.reference_start = torch.tensor(ckpt["reference_start"], dtype=torch.long)
     if run.ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     phase, epoch, batch = str(ckpt["phase"]), int(ckpt["epoch"]), int(ckpt["batch"])
@@ -194,7 +196,10 @@ def run_label_free(run: AdaptRun) -> dict[str, Any]:
             ref = (f"; reference {run.info.get('reference')}: {len(run.reference):,}"
                    if run.reference is not None else "")
             run.bar.line(f"site {run.info['data']}: {len(run.site):,} images{ref}")
-            row(run, "start", 0, site=_diagnose(run, base_view(run.net, run.warps)))
+            base = base_view(run.net, run.warps)
+            if run.reference_probe is not None:  # what the base predicts for upright images
+                run.reference_start = predicted_classes(base, run.reference_probe, run.prepare)
+            row(run, "start", 0, site=_diagnose(run, base))
             _estimate(run)
             phase = "pretrain"
         if phase == "pretrain":

@@ -28,10 +28,14 @@ from ..training.options import RecipeOverrides
 from ..training.runfolder import (RECIPE_FILE, check_same, prepare_folder, start_files, warn_other_data,
                                   write_run_info)
 from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
+from .diagnostics import sample_indices
 from .images import Images, open_images
 from .probe import check_reference_size, check_site_size
 
-__all__ = ["AdaptRun", "set_up", "reference_for_site"]
+__all__ = ["AdaptRun", "set_up", "reference_for_site", "REFERENCE_PROBE"]
+
+#: reference images whose predicted class a label-free run follows (as many as a supervised warp run holds out)
+REFERENCE_PROBE = 256
 
 
 @dataclass
@@ -57,6 +61,8 @@ class AdaptRun:
     flag: Any = None
     optimizer: torch.optim.Optimizer | None = None
     estimate: Any = None  # splice.adapt.ranges.RangeEstimate
+    reference_probe: Tensor | None = None  # up to 256 reference images whose predictions the run follows
+    reference_start: Tensor | None = None  # the base's predicted class for each of them
     step: int = 0
     metrics_rows: int = 0
     best: dict = field(default_factory=lambda: {"score": -1.0, "epoch": -1, "step": 0})
@@ -151,6 +157,9 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
                             f"{started[0]:,} and {started[1] or 0:,}")
         info["status"] = "running"
         write_run_info(run_dir, info)
+    probe = None
+    if reference is not None and warps:
+        probe = reference.batch(sample_indices(len(reference), 0, REFERENCE_PROBE))
     return AdaptRun(ctx=ctx, rec=rec, src=src, net=net, warps=warps, site=site_images, reference=reference,
                     prepare=prepare, norm=norm, classes=classes or None, run_dir=run_dir, info=info, where=where,
-                    ckpt=req.ckpt, stop_after_steps=stop_after_steps)
+                    ckpt=req.ckpt, stop_after_steps=stop_after_steps, reference_probe=probe)

@@ -22,7 +22,8 @@ from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, w
 from .state import Run, TuneInterrupted, unwrap
 
 __all__ = ["UPRIGHT_AGREEMENT", "evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
-           "reference_predictions", "finish", "nonfinite", "diverged"]
+           "reference_predictions", "predicted_classes", "agreement", "caution_upright", "finish", "nonfinite",
+           "diverged"]
 
 #: below this share of held-out upright reference images keeping the base's predicted class, a warp run warns that
 #: upright accuracy may fall: a rule of thumb, our choice, no source (two points is what a warp should not cost)
@@ -85,39 +86,50 @@ def _reference_distance(run: Run) -> dict[str, float] | None:
     return reference_distance(unwrap(run.net_wrapped), run.warps, run.prepare(run.reference_probe))
 
 
-def reference_predictions(run: Run) -> torch.Tensor | None:
-    """The class the model predicts now for each held-out upright reference image (``None`` for a run without
-    warps or reference); eval mode, and the model's modes and buffers are put back."""
-    if not run.warps or run.reference_probe is None:
-        return None
-    model = unwrap(run.net_wrapped) if run.net_wrapped is not None else run.net
+def predicted_classes(model, images: torch.Tensor, prepare) -> torch.Tensor:
+    """The class ``model`` predicts for each of ``images`` (prepared by ``prepare``), in eval mode; the model's
+    modes and buffers are put back."""
     with torch.no_grad(), modes_kept(model), buffers_kept(model):
         model.eval()
-        return torch.cat([logits_or_refuse(model(run.prepare(chunk)), "the model").argmax(1).cpu()
-                          for chunk in run.reference_probe.split(256)])
+        return torch.cat([logits_or_refuse(model(prepare(chunk)), "the model").argmax(1).cpu()
+                          for chunk in images.split(256)])
 
 
-def _reference_agreement(run: Run) -> float | None:
-    """The share of held-out upright reference images whose predicted class is the one the run's starting model
-    (the base, warps at the identity) gave them."""
-    if run.reference_start is None:
+def reference_predictions(run: Run) -> torch.Tensor | None:
+    """:func:`predicted_classes` of the held-out upright reference images (``None`` for a run without warps or
+    reference)."""
+    if not run.warps or run.reference_probe is None:
         return None
-    return round(float((reference_predictions(run) == run.reference_start).float().mean()), 6)
+    return predicted_classes(unwrap(run.net_wrapped) if run.net_wrapped is not None else run.net,
+                             run.reference_probe, run.prepare)
+
+
+def agreement(now: torch.Tensor | None, start: torch.Tensor | None) -> float | None:
+    """The share of images whose predicted class ``now`` is the one they had at the ``start``."""
+    if now is None or start is None:
+        return None
+    return round(float((now == start).float().mean()), 6)
+
+
+def caution_upright(bar, share: float | None, images: int, which: str) -> None:
+    """A line and an :class:`~splice.errors.UprightChangeWarning` when ``which`` (the model a run leaves, as the
+    user knows it) keeps fewer than :data:`UPRIGHT_AGREEMENT` of ``images`` upright reference images at the base's
+    predicted class; nothing otherwise."""
+    if share is None or share >= UPRIGHT_AGREEMENT:
+        return
+    text = (f"the warps of {which} change the base's prediction on {100 * (1 - share):.1f} % of {images} upright "
+            "reference images: its upright accuracy may be lower by as much; more warp pre-training epochs or a "
+            "larger [pretrain] identity_fraction keep upright images nearer the identity")
+    bar.line(f"caution: {text}")
+    warnings.warn(text, UprightChangeWarning, stacklevel=4)
 
 
 def _caution_upright(run: Run, rows: list[dict]) -> float | None:
-    """The upright agreement of the model ``best/`` holds (its metrics row), with a warning and a line when it is
-    below :data:`UPRIGHT_AGREEMENT`."""
+    """The upright agreement of the model ``best/`` holds (its metrics row), cautioned by :func:`caution_upright`."""
     best = [r for r in rows if r.get("step") == run.best["step"] and r.get("epoch") == run.best["epoch"]]
-    agreement = best[-1].get("reference_agreement") if best else None
-    if agreement is not None and agreement < UPRIGHT_AGREEMENT:
-        text = (f"the warps of best/ change the base's prediction on {100 * (1 - agreement):.1f} % of "
-                f"{len(run.reference_start)} held-out upright reference images: its upright accuracy may be lower "
-                "by as much; more warp pre-training epochs or a larger [pretrain] identity_fraction keep upright "
-                "images nearer the identity")
-        run.bar.line(f"caution: {text}")
-        warnings.warn(text, UprightChangeWarning, stacklevel=4)
-    return agreement
+    share = best[-1].get("reference_agreement") if best else None
+    caution_upright(run.bar, share, 0 if run.reference_start is None else len(run.reference_start), "best/")
+    return share
 
 
 def base_differs(model, start_sha256: str) -> bool:
@@ -189,7 +201,7 @@ def record(run: Run, phase: str, epoch: int, *, loss=None, train_acc=None, ips=N
            "accuracy": round(acc, 6), "val_loss": round(val_loss, 6), "lr": run.optimizer.param_groups[0]["lr"],
            "images_per_s": ips, "warp_distance": _warp_distances(run.warps),
            "reference_distance": _reference_distance(run),
-           "reference_agreement": _reference_agreement(run),
+           "reference_agreement": agreement(reference_predictions(run), run.reference_start),
            "base_frozen": run.rec.base_frozen(max(0, epoch - 1)),
            "time_s": round(time.monotonic() - run.t_run, 3), **(extra or {})}
     if run.ctx.is_main:
@@ -275,7 +287,7 @@ def finish(run: Run, ips, stopped_early: bool) -> dict[str, Any]:
         atomic_write_text(run.run_dir / f"rank{ctx.rank}.sha256", state_dict_sha256(final.state_dict()) + "\n")
     rows = read_metrics(run.run_dir) if ctx.is_main else []
     last_rows = [r for r in rows if r.get("phase") == "epoch"]
-    agreement = _caution_upright(run, rows) if ctx.is_main else None
+    upright = _caution_upright(run, rows) if ctx.is_main else None
     if ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="stopped early" if stopped_early else "finished"))
     return {
@@ -284,5 +296,5 @@ def finish(run: Run, ips, stopped_early: bool) -> dict[str, Any]:
         "last_accuracy": last_rows[-1]["accuracy"] if last_rows else None,
         "epochs": run.rec.epochs, "steps": run.step, "base_changed": base_changed,
         "images_per_s": ips, "stopped_early": stopped_early, "interrupted": False,
-        "best_reference_agreement": agreement,
+        "best_reference_agreement": upright,
     }
