@@ -52,13 +52,13 @@ while its model file differs from ``source.code_sha256`` is told, with a warning
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from .copies import tree_copy
 from .errors import ManifestError, SpliceWarning
 from .schema import (FORMAT, MANIFEST_NAME, MECHANISMS, SCHEMA_VERSION, SCHEMA_VERSIONS, WEIGHTS_NAME,
                      record_problems, shape_ok, validate_manifest)
@@ -345,7 +345,7 @@ def remembered_base(spliced):
 
 def copy_model(model):
     """A deep copy of ``model`` that keeps its record (so the caller's module is never trained in place)."""
-    twin = copy.deepcopy(model)
+    twin = tree_copy(model)
     info = info_of(model)
     if info is not None:
         attach_info(twin, info)

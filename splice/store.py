@@ -14,7 +14,6 @@ init), and hands out the checked tensors, which the models then adopt.
 
 from __future__ import annotations
 
-import copy
 import datetime as _dt
 import json
 import os
@@ -26,7 +25,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .copies import rng_kept
+from .copies import rng_kept, tree_copy
 from .folders import folder_kind
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256, write_safetensors
 from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
@@ -234,7 +233,7 @@ def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.
     :func:`_load_into` gives them the dtype of the saved tensors.
     """
     if not info.points:
-        return copy.deepcopy(base) if copy_base else base
+        return tree_copy(base) if copy_base else base
     return apply_info(base, info, factory={"device": "cpu"} if _on_meta(base) else None)
 
 

@@ -23,7 +23,6 @@ Which of these tracked the accuracy on the digits is in the README, section
 
 from __future__ import annotations
 
-import copy
 import math
 from collections.abc import Callable, Mapping
 
@@ -31,7 +30,7 @@ import torch
 from torch import Tensor, nn
 
 from ..compare import logits_or_refuse
-from ..copies import modes_kept
+from ..copies import modes_kept, tree_copy
 from ..distort import random_distort
 from ..training import batches as _b
 from ..training.pretrain import warp_inputs
@@ -57,7 +56,7 @@ def base_view(model: nn.Module, warps: Mapping[str, nn.Module]) -> nn.Module:
     """A copy of a spliced ``model`` with every warp reset to the identity: the base network's predictions."""
     from ..surgery import warps_of
 
-    twin = copy.deepcopy(model)
+    twin = tree_copy(model)
     for w in warps_of(twin).values():
         w.reset_parameters()
     return twin
