@@ -76,11 +76,12 @@ def _looks_like_pickled_module(spec: str) -> bool:
 
 
 def _weights_path(weights, origin) -> str | None:
-    """The weights file as a folder records it: absolute when the user gave it (a path relative to where a command
-    ran means nothing to a verify run from elsewhere), as written when it was read from a file."""
+    """The weights file as a folder records it: the absolute path of the file read (a path relative to where a
+    command ran means nothing to a verify run from elsewhere). A relative path read from a file was resolved
+    against that file's folder by whoever read it (``splice.json``, ``run.json``)."""
     if weights is None:
         return None
-    return str(weights) if origin is not None else os.path.abspath(os.fspath(weights))
+    return os.path.abspath(os.fspath(weights))
 
 def load_source(
     spec: str | Source | nn.Module,
