@@ -310,7 +310,9 @@ def _parser_verify(sub) -> None:
     p.add_argument("--report", metavar="FILE", help="write the JSON certificate to FILE")
     add_pixel_cap(p)
     p.add_argument("--trust-pickle", action="store_true",
-                   help="allow the pickled checkpoint or module the folder was made from (the same opt-in as insert)")
+                   help="allow unpickling the module the folder was made from and the source checkpoint its "
+                        "splice.json names (source.weights_file, read for the provenance check); unpickling can run "
+                        "arbitrary code: only for folders you trust")
     add_trust_code(p)
     p.set_defaults(func=_cmd_verify)
 

@@ -193,9 +193,17 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
     module whose class copies itself its own way, goes to ``copy.deepcopy``
     with the same ``memo``, so shared objects stay shared. A tensor attribute
     computed from parameters (not a leaf of autograd), which deepcopy
-    refuses, is copied detached.
+    refuses, is copied detached, wherever it sits in the tree: such tensors
+    go into ``memo`` first, so a module that copies itself its own way (a
+    GraphModule around a pruned convolution) finds them there.
     """
     memo = {} if memo is None else memo
+    # a tensor computed from parameters and kept on a module (the weight a pruning or classic weight_norm hook
+    # recomputes before every forward): deepcopy refuses it; the copy holds its value, detached
+    for m in model.modules():
+        for value in m.__dict__.values():
+            if isinstance(value, torch.Tensor) and not value.is_leaf and id(value) not in memo:
+                memo[id(value)] = value.detach().clone()
 
     def walk(m: Any) -> Any:
         done = memo.get(id(m))
@@ -214,12 +222,6 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
                 state[key] = memo.get(id(value)) or memo.setdefault(id(value), type(value)())
             elif _atomic(value):
                 state[key] = value  # what deepcopy hands back for these, without its dispatch
-            elif isinstance(value, torch.Tensor) and not value.is_leaf:
-                # a tensor computed from parameters and kept on the module (the weight a classic weight_norm hook
-                # recomputes before every forward): deepcopy refuses it; the copy holds its value, detached
-                if id(value) not in memo:  # a tensor's truth value is no test of whether it was copied
-                    memo[id(value)] = value.detach().clone()
-                state[key] = memo[id(value)]
             else:
                 state[key] = copy.deepcopy(value, memo)
         c.__setstate__(state)

@@ -26,7 +26,6 @@ images (each model then applies its own normalisation).
 
 from __future__ import annotations
 
-import copy
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -36,6 +35,7 @@ from torch import Tensor, nn
 from torch.nn import functional as F
 
 from .compare import class_logits, logits_or_refuse
+from .copies import tree_copy
 from .errors import DataError, SpliceError, suggest
 from .options import ModelOptions, load_against, refuse_several_inputs, refuse_unfit_inputs, split_keywords
 
@@ -184,7 +184,7 @@ def sweep_images(images: Tensor, kind: str, level: float, *, seed: int = 0, firs
 
 def _prepare(source, device: torch.device, given) -> nn.Module:
     """The source's model in eval mode on ``device``; a module the caller passed in is copied first."""
-    model = copy.deepcopy(source.model) if isinstance(given, nn.Module) else source.model
+    model = tree_copy(source.model) if isinstance(given, nn.Module) else source.model
     return model.to(device).eval()
 
 

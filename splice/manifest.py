@@ -52,13 +52,14 @@ while its model file differs from ``source.code_sha256`` is told, with a warning
 
 from __future__ import annotations
 
-import copy
 import dataclasses
+import os
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from .copies import tree_copy
 from .errors import ManifestError, SpliceWarning
 from .schema import (FORMAT, MANIFEST_NAME, MECHANISMS, SCHEMA_VERSION, SCHEMA_VERSIONS, WEIGHTS_NAME,
                      record_problems, shape_ok, validate_manifest)
@@ -124,6 +125,15 @@ class PointRecord:
         shape = data.get("shape")
         return cls(data["name"], WarpConfig.from_dict(data.get("warp") or {}),
                    tuple(shape) if shape else None, data.get("cut"))
+
+
+def _in_folder(path: str | None, folder) -> str | None:
+    """``source.weights_file`` as a path to open: splice writes it absolute; a relative one (written by hand, or
+    by an older run that recorded ``--weights`` as typed) is read as relative to the folder, never to the current
+    directory of whoever opens it."""
+    if path is None or folder is None or os.path.isabs(path):
+        return path
+    return os.path.join(os.path.abspath(os.fspath(folder)), path)
 
 
 @dataclass(frozen=True)
@@ -241,7 +251,8 @@ class SpliceInfo:
             spec=src["spec"], kwargs=dict(src.get("kwargs") or {}), input_shape=tuple(data["input_shape"]),
             normalisation=data.get("normalisation"), class_names=data.get("class_names"),
             leaves=tuple(data.get("leaves") or ()), source_weights_sha256=src.get("weights_sha256"),
-            source_weights_path=src.get("weights_file"), random_init=bool(src.get("random_init", False)),
+            source_weights_path=_in_folder(src.get("weights_file"), folder),
+            random_init=bool(src.get("random_init", False)),
             points=tuple(PointRecord.from_json(p) for p in data["points"]), tuning=data.get("tuning"),
             trained_on=src.get("trained_on"), code_sha256=src.get("code_sha256"),
             folder=None if folder is None else str(folder),
@@ -345,7 +356,7 @@ def remembered_base(spliced):
 
 def copy_model(model):
     """A deep copy of ``model`` that keeps its record (so the caller's module is never trained in place)."""
-    twin = copy.deepcopy(model)
+    twin = tree_copy(model)
     info = info_of(model)
     if info is not None:
         attach_info(twin, info)

@@ -14,7 +14,6 @@ init), and hands out the checked tensors, which the models then adopt.
 
 from __future__ import annotations
 
-import copy
 import datetime as _dt
 import json
 import os
@@ -26,7 +25,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .copies import rng_kept
+from .copies import rng_kept, tree_copy
 from .folders import folder_kind
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256, write_safetensors
 from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
@@ -35,8 +34,8 @@ from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, 
                        validate_manifest)
 from .version import library_versions
 from .sources import (Source, adopt_state, build_model, check_finite, check_state_fits, check_spec,
-                      initialisers_skipped, is_hf_folder, load_source, parse_input_shapes, parse_kwargs,
-                      read_safetensors, with_metadata)
+                      initialisers_skipped, is_hf_folder, load_source, materialise_lazy_, parse_input_shapes,
+                      parse_kwargs, read_safetensors, with_metadata)
 from .graph import relink_lifted
 from .surgery import WARP_PREFIX, apply_info
 
@@ -151,7 +150,7 @@ def _rebuild_base(info: SpliceInfo, *, trust_pickle: bool = False, trust_code: b
         return load_source(info.spec, input_shape=info.input_shape, trust_pickle=trust_pickle,
                            origin=_origin(info), trust_code=trust_code).model
     model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
-    return model
+    return materialise_lazy_(model, info.input_shapes, info.spec)  # lazy modules shaped as the saved weights
 
 
 _META = torch.device("meta")
@@ -172,9 +171,9 @@ def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
     try:
         with _META, initialisers_skipped():
             model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
+        return materialise_lazy_(model, info.input_shapes, info.spec)
     except Exception:  # any failure here only means "build it the slow way"
         return None
-    return model
 
 
 def _on_meta(model: nn.Module) -> bool:
@@ -234,7 +233,7 @@ def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.
     :func:`_load_into` gives them the dtype of the saved tensors.
     """
     if not info.points:
-        return copy.deepcopy(base) if copy_base else base
+        return tree_copy(base) if copy_base else base
     return apply_info(base, info, factory={"device": "cpu"} if _on_meta(base) else None)
 
 

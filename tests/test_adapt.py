@@ -561,3 +561,38 @@ def test_a_label_free_run_follows_the_base_predictions_on_upright_reference_imag
     with torch.no_grad():
         mine = float((base(x).argmax(1) == adapted(x).argmax(1)).float().mean())
     assert mine == pytest.approx(rows[-1]["reference_agreement"], abs=1e-6)
+
+
+def test_site_diagnostics_leave_the_callers_model_as_it_was():
+    # a model that counts its calls in a buffer and keeps a BatchNorm in train mode: the diagnostics run on a
+    # twin, so the caller's buffers, modes and warps are as they were, and the numbers are those of a deep copy
+    # (copy.deepcopy, Python's own, as the reference) diagnosed the same way
+    import copy
+
+    from splice.adapt import site_diagnostics
+    from splice.copies import buffer_snapshot, changed_buffers
+
+    class Count(torch.nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.register_buffer("calls", torch.zeros((), dtype=torch.long))
+
+        def forward(self, x):
+            self.calls += 1
+            return x
+
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(torch.nn.Conv2d(1, 4, 3, padding=1), torch.nn.BatchNorm2d(4), Count(),
+                                torch.nn.ReLU(), torch.nn.AdaptiveAvgPool2d(2), torch.nn.Flatten(),
+                                torch.nn.Linear(16, 10)).eval()
+    spliced = splice.insert(model, at="input", input_shape=SHAPE)
+    spliced.get_submodule("1").train()
+    reference = copy.deepcopy(spliced)
+    before, modes = buffer_snapshot(spliced), [m.training for m in spliced.modules()]
+    site = open_images("digits-moved", SHAPE)
+    ours = site_diagnostics(spliced, dict(spliced.splice_warps.named_children()), site, prepare=lambda t: t, seed=0)
+    assert changed_buffers(before, spliced) == [] and int(spliced.get_submodule("2").calls) == 0
+    assert [m.training for m in spliced.modules()] == modes
+    theirs = site_diagnostics(reference.eval(), dict(reference.splice_warps.named_children()), site,
+                              prepare=lambda t: t, seed=0)
+    assert ours == theirs and set(ours["warp_spread"]) == {"input"}

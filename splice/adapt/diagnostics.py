@@ -23,7 +23,6 @@ Which of these tracked the accuracy on the digits is in the README, section
 
 from __future__ import annotations
 
-import copy
 import math
 from collections.abc import Callable, Mapping
 
@@ -31,7 +30,7 @@ import torch
 from torch import Tensor, nn
 
 from ..compare import logits_or_refuse
-from ..copies import modes_kept
+from ..copies import private_buffers, tree_copy
 from ..distort import random_distort
 from ..training import batches as _b
 from ..training.pretrain import warp_inputs
@@ -57,7 +56,7 @@ def base_view(model: nn.Module, warps: Mapping[str, nn.Module]) -> nn.Module:
     """A copy of a spliced ``model`` with every warp reset to the identity: the base network's predictions."""
     from ..surgery import warps_of
 
-    twin = copy.deepcopy(model)
+    twin = tree_copy(model)
     for w in warps_of(twin).values():
         w.reset_parameters()
     return twin
@@ -88,26 +87,31 @@ def _spread(model: nn.Module, warps: Mapping[str, nn.Module], images: Tensor, pr
 def site_diagnostics(model: nn.Module, warps: Mapping[str, nn.Module], site: Images, *,
                      prepare: Callable[[Tensor], Tensor], seed: int, rewarps: int = 2,
                      batch_size: int = 256) -> dict:
-    """The label-free diagnostics of ``model`` on ``site`` (see the module docstring); modes are restored."""
-    with modes_kept(model):
-        model.eval()
-        images = site.batch(sample_indices(len(site), seed))
-        logits = _logits(model, images, prepare, batch_size)
-        p = logits.softmax(1)
-        pred = p.argmax(1)
-        mean = p.mean(0)
-        agree = []
-        for k in range(rewarps):
-            moved, _ = random_distort(images, EXTRA, _b.generator(seed, "diagnostics-rewarp", k), fill=0.0)
-            agree.append((_logits(model, moved, prepare, batch_size).argmax(1) == pred).double().mean())
-        out = {
-            "images": int(images.shape[0]),
-            "confidence": round(float(p.max(1).values.mean()), 6),
-            "entropy": round(float(prediction_entropy(logits).mean()), 6),
-            "class_balance": round(float(-(mean * mean.clamp_min(1e-12).log()).sum()) / math.log(p.shape[1]), 6)
-            if p.shape[1] > 1 else 1.0,
-            "agreement": round(float(torch.stack(agree).mean()), 6) if agree else None,
-        }
-        if warps:
-            out["warp_spread"] = _spread(model, warps, images, prepare, batch_size)
-        return out
+    """The label-free diagnostics of ``model`` on ``site`` (see the module docstring).
+
+    They run on a :func:`~splice.copies.private_buffers` twin in eval mode (``warps``, modules of ``model``,
+    are read through the twin's own): ``model`` keeps its modes, buffers and Python state.
+    """
+    names = {id(m): name for name, m in model.named_modules()}
+    model = private_buffers(model).eval()
+    warps = {k: model.get_submodule(names[id(w)]) if id(w) in names else w for k, w in warps.items()}
+    images = site.batch(sample_indices(len(site), seed))
+    logits = _logits(model, images, prepare, batch_size)
+    p = logits.softmax(1)
+    pred = p.argmax(1)
+    mean = p.mean(0)
+    agree = []
+    for k in range(rewarps):
+        moved, _ = random_distort(images, EXTRA, _b.generator(seed, "diagnostics-rewarp", k), fill=0.0)
+        agree.append((_logits(model, moved, prepare, batch_size).argmax(1) == pred).double().mean())
+    out = {
+        "images": int(images.shape[0]),
+        "confidence": round(float(p.max(1).values.mean()), 6),
+        "entropy": round(float(prediction_entropy(logits).mean()), 6),
+        "class_balance": round(float(-(mean * mean.clamp_min(1e-12).log()).sum()) / math.log(p.shape[1]), 6)
+        if p.shape[1] > 1 else 1.0,
+        "agreement": round(float(torch.stack(agree).mean()), 6) if agree else None,
+    }
+    if warps:
+        out["warp_spread"] = _spread(model, warps, images, prepare, batch_size)
+    return out

@@ -46,12 +46,13 @@ class ProbeNet(nn.Module):
         return self.probe.matrix(self.probe.predict(x))
 
 
-def build_probe(input_shape, width: int, seed: int, device=None) -> ProbeNet:
-    """A fresh projective probe for inputs of ``input_shape``; its random init is fixed by ``seed``."""
+def build_probe(input_shape, width: int, seed: int, device=None, dtype=None) -> ProbeNet:
+    """A fresh projective probe for inputs of ``input_shape`` (in the model's ``dtype``, as the prepared batches
+    are); its random init is fixed by ``seed``."""
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(_b.mix(seed, "probe-init"))
         warp = Warp(WarpConfig(family="projective", head_width=width), tuple(input_shape))
-    return ProbeNet(warp).to(device)
+    return ProbeNet(warp).to(device=device, dtype=dtype)
 
 
 def check_reference_size(n: int, holdout: float) -> None:

@@ -28,6 +28,7 @@ from typing import Any
 import torch
 
 from ..fileio import atomic_write_text
+from ..graph.shapes import input_dtype
 from ..recipes import recipe_to_toml
 from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
@@ -90,7 +91,7 @@ def _estimate(run: AdaptRun) -> None:
     typed = RangeEstimate.of_ranges(pre)
     probe_info: dict[str, Any] = {}
     if site.estimate:
-        probe = build_probe(run.src.input_shape, site.probe_width, rec.seed, ctx.device)
+        probe = build_probe(run.src.input_shape, site.probe_width, rec.seed, ctx.device, input_dtype(run.net))
         held, res = train_probe(probe, run.reference, site, seed=rec.seed, prepare=run.prepare,
                                 batch_size=pre.batch_size, lr=pre.lr, rank=ctx.rank, world=ctx.world_size,
                                 reduce_grads=grad_reducer(ctx), on_step=_on_step(run, "probe"))

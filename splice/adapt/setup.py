@@ -21,6 +21,7 @@ import torch
 from torch import Tensor, nn
 
 from ..errors import RecipeError
+from ..graph.shapes import input_dtype
 from ..manifest import info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
@@ -124,12 +125,12 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
     net.to(ctx.device)
     shape = tuple(src.input_shape)
     norm, _ = normalisation(rec, src, None)  # the frozen base's own normalisation, never an estimate
-    dev = ctx.device
+    dev, dtype = ctx.device, input_dtype(net)  # a float64 model takes float64 batches
 
     def prepare(x: Tensor) -> Tensor:
         from ..data import normalise
 
-        return normalise(x, norm).to(dev, non_blocking=True)
+        return normalise(x, norm).to(dev, dtype, non_blocking=True)
 
     ref_name = None
     if rec.mode == "label-free" and info is not None:  # resuming: the run folder says which

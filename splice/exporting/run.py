@@ -9,7 +9,7 @@ from pathlib import Path
 
 import torch
 
-from ..copies import rng_kept
+from ..copies import rng_kept, tree_copy
 from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
 from ..folders import check_file_target
 from ..manifest import info_of
@@ -217,14 +217,12 @@ def _float32_for_onnx(model):
     dtype = model_dtype(model)
     if not dtype.is_floating_point or dtype == torch.float32:
         return model
-    import copy
-
     from ..manifest import attach_info
 
     warnings.warn(f"the model is {str(dtype).replace('torch.', '')}, and onnxruntime samples grids in float32 only: "
                   "the ONNX file is exported from a float32 copy (as verify --onnx checks it)", SpliceWarning,
                   stacklevel=4)
-    twin = copy.deepcopy(model).float()
+    twin = tree_copy(model).float()
     attach_info(twin, info_of(model))  # a GraphModule's deepcopy drops its record
     return twin
 

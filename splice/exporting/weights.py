@@ -2,12 +2,11 @@
 
 from __future__ import annotations
 
-import copy
-
 import torch
 from torch import nn
 
 from ..compare import tensors_out
+from ..copies import tree_copy
 from ..errors import SpliceError
 from ..surgery import WARP_PREFIX, warps_of
 from ..warps.perturb import final_layer, perturbation_theta
@@ -45,11 +44,11 @@ def perturbed_copy(model: nn.Module) -> nn.Module:
 def _own_warps(model: nn.Module) -> nn.Module:
     """A shallow copy of ``model`` that owns a deep copy of its warp container."""
     if WARP_PREFIX not in model._modules:
-        return copy.deepcopy(model)
+        return tree_copy(model)
     twin = object.__new__(type(model))
     twin.__dict__.update(model.__dict__)
     twin.__dict__["_modules"] = dict(model._modules)  # a new mapping: the original keeps its warps
-    twin._modules[WARP_PREFIX] = copy.deepcopy(model._modules[WARP_PREFIX])
+    twin._modules[WARP_PREFIX] = tree_copy(model._modules[WARP_PREFIX])
     return twin
 
 def _skeleton(module: nn.Module, memo: dict[int, nn.Module]) -> nn.Module:

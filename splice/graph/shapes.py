@@ -9,7 +9,6 @@ alone, on a CPU copy with an all-zeros input.
 
 from __future__ import annotations
 
-import copy
 import itertools
 import operator
 from collections.abc import Callable
@@ -249,7 +248,7 @@ def run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
         return torch.zeros(v.shape, dtype=v.dtype, device=device) if isinstance(v, torch.Tensor) else v
 
     with torch.device(device):
-        work = copy.deepcopy(mod)
+        work = tree_copy(mod)
         work.eval()
         out = work(*fx.node.map_aggregate(args, real), **fx.node.map_aggregate(kwargs, real))
     return fx.node.map_aggregate(out, to_meta)

@@ -34,6 +34,7 @@ from .adopting import adopt_state
 from .builders import IMAGENET_NORMALISATION, build_model, code_change, code_sha256, spec_file
 from .empty import initialisers_skipped
 from .huggingface import is_hf_folder, read_hf_folder
+from .lazy import materialise_lazy_
 from .source import MODULE_SPEC, Source, load_source, uncompiled
 from .specs import format_shape, parse_input_shape, parse_input_shapes, parse_kwargs
 from .trust import REGISTRY_KINDS, TRUST_ENV, RegistryKind, check_spec, code_trusted, register_kind, registry_kind_of
@@ -61,6 +62,7 @@ __all__ = [
     "code_change",
     "spec_file",
     "initialisers_skipped",
+    "materialise_lazy_",
     "is_hf_folder",
     "read_hf_folder",
     "read_weights",

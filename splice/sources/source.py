@@ -16,6 +16,7 @@ from ..fileio import state_dict_sha256
 from .builders import absolute_spec, build_model, code_sha256, uncompiled
 from .empty import initialisers_skipped
 from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
+from .lazy import materialise_lazy_, refuse_lazy
 from .specs import parse_input_shapes, parse_kwargs, volumes_not_images
 from .trust import check_spec
 from .weights import check_file, check_finite, load_weights_, read_weights, torch_load
@@ -75,11 +76,12 @@ def _looks_like_pickled_module(spec: str) -> bool:
 
 
 def _weights_path(weights, origin) -> str | None:
-    """The weights file as a folder records it: absolute when the user gave it (a path relative to where a command
-    ran means nothing to a verify run from elsewhere), as written when it was read from a file."""
+    """The weights file as a folder records it: the absolute path of the file read (a path relative to where a
+    command ran means nothing to a verify run from elsewhere). A relative path read from a file was resolved
+    against that file's folder by whoever read it (``splice.json``, ``run.json``)."""
     if weights is None:
         return None
-    return str(weights) if origin is not None else os.path.abspath(os.fspath(weights))
+    return os.path.abspath(os.fspath(weights))
 
 def load_source(
     spec: str | Source | nn.Module,
@@ -117,6 +119,7 @@ def load_source(
     if isinstance(spec, nn.Module):
         spec = uncompiled(spec)
         _refuse_unspliceable(spec, "the model given")
+        refuse_lazy(spec, "the model given")
         if not shapes and getattr(spec, "input_shape", None):
             shapes = parse_input_shapes(spec.input_shape) or ()
         return Source(model=spec, spec=MODULE_SPEC, input_shape=shapes[0] if shapes else None,
@@ -144,6 +147,8 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
         return _load_path(spec, path, shapes, options)
     model, meta = _build(spec, kw, origin=origin, trust_code=trust_code, empty=empty)
     _refuse_unspliceable(model, spec)
+    shapes = shapes or parse_input_shapes(meta["input_shape"]) or parse_input_shapes(default_input_shape) or ()
+    materialise_lazy_(model, shapes, spec)  # splice's own model: lazy modules get their weights before any load
     if weights is not None:
         state = read_weights(weights, trust_pickle=trust_pickle)
         check_finite(state, f"weights '{weights}'")
@@ -160,7 +165,6 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                       "normalised images, set factory.normalisation = {'mean': [...], 'std': [...]} (None says it "
                       "takes [0, 1])", NormalisationWarning, stacklevel=3)
     model.eval()
-    shapes = shapes or parse_input_shapes(meta["input_shape"]) or parse_input_shapes(default_input_shape) or ()
     first = shapes[0] if shapes else None
     if first is None and volumes_not_images(model) is not None:  # say that first, not "give a shape"
         raise SourceError(volumes_not_images(model))
@@ -313,6 +317,7 @@ def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool, defau
     shapes = shapes or default
     if not shapes:
         raise SourceError(f"cannot tell the input shape of '{path}'; pass --input-shape CxHxW")
+    materialise_lazy_(obj, shapes, str(path))  # unpickled here: splice's own object
     obj.eval()
     return Source(model=obj, spec=os.path.abspath(path), input_shape=shapes[0], weights_path=os.path.abspath(path),
                   weights_sha256=state_dict_sha256(obj.state_dict()), extra_inputs=tuple(shapes[1:]))

@@ -17,6 +17,7 @@ import torch.distributed as dist
 from torch import nn
 
 from ..compare import flatten_outputs, logits_or_refuse
+from ..copies import tree_copy
 from ..errors import SpliceError
 
 __all__ = ["Context", "pick_device", "setup", "teardown", "all_reduce_sum", "broadcast_flag", "sync_buffers",
@@ -172,9 +173,7 @@ def drops_outputs(model, input_shape, device) -> bool:
     GoogLeNet and Inception auxiliary heads): their parameters get no gradient, and DDP must then look for unused
     parameters or it stops at the second step. Run once, on a copy (the run's statistics and random state stay
     as they are)."""
-    import copy
-
-    twin = copy.deepcopy(model)
+    twin = tree_copy(model)
     cuda = [device.index or 0] if device.type == "cuda" else []
     try:
         with torch.random.fork_rng(devices=cuda), torch.no_grad():

@@ -112,10 +112,16 @@ def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: Recip
     mo = dataclasses.replace(
         mo, kwargs=mo.kwargs if mo.kwargs is not None else info.get("model_kwargs") or None,
         input_shape=mo.input_shape if mo.input_shape is not None else info.get("input_shape"),
-        weights=mo.weights if mo.weights is not None else info.get("model_weights"),
+        weights=mo.weights if mo.weights is not None else _in_run(info.get("model_weights"), run_dir),
         origin=run_dir / RUN_FILE if model is None else mo.origin)
     ckpt = load_checkpoint(run_dir / CHECKPOINT_NAME) if (run_dir / CHECKPOINT_NAME).is_file() else None
     return Request(model if model is not None else info["model"], recorded, info["data"], mo, info, ckpt)
+
+
+def _in_run(path: str | None, run_dir: Path) -> str | None:
+    """run.json's ``model_weights`` as a path to open: splice writes it absolute; a relative one is the run
+    folder's, never the current directory's."""
+    return path if path is None or os.path.isabs(path) else str(Path(run_dir).resolve() / path)
 
 
 def load_model(req: Request, where: str):
@@ -275,7 +281,7 @@ def run_info(ctx, req: Request, src, net: nn.Module, classes: list[str], norm, *
     weights = req.model_options.weights
     return {
         "schema_version": RUN_SCHEMA_VERSION, "format": RUN_FORMAT, "model": describe(req.model),
-        "model_kwargs": dict(src.kwargs), "model_weights": str(weights) if weights is not None else None,
+        "model_kwargs": dict(src.kwargs), "model_weights": os.path.abspath(weights) if weights is not None else None,
         "data": req.data, "recipe": req.recipe.name, "mode": req.recipe.mode, "world_size": ctx.world_size,
         "device": str(ctx.device), "input_shape": list(src.input_shape), "class_names": classes or None,
         "data_path": data_record(req.data), "normalisation": norm, "normalisation_origin": norm_origin,

@@ -52,6 +52,7 @@ import torch
 
 from ..data import same_classes
 from ..errors import DataError, RecipeError, SpliceError, TrainingDiverged, first_line
+from ..graph.shapes import input_dtype
 from ..options import ModelOptions, split_keywords
 from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
 from . import distributed
@@ -281,12 +282,12 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
         norm, norm_origin = info["normalisation"], "estimated"  # a resumed run keeps its estimate
     else:
         norm, norm_origin = normalisation(rec, src, train_set)
-    dev = ctx.device
+    dev, dtype = ctx.device, input_dtype(net)  # a float64 model takes float64 batches
 
     def prepare(x: torch.Tensor) -> torch.Tensor:
         from ..data import normalise
 
-        return normalise(x, norm).to(dev, non_blocking=True)
+        return normalise(x, norm).to(dev, dtype, non_blocking=True)
 
     if info is None:
         info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin=norm_origin, ref=ref),

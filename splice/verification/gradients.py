@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import copy
 import math
 import time
 from typing import Any
@@ -11,7 +10,7 @@ import torch
 from torch import nn
 
 from ..compare import flatten_outputs
-from ..copies import same_draws
+from ..copies import same_draws, tree_copy
 from ..errors import CheckFailed, SpliceError
 from ..exporting import check_onnx_graph, export_onnx_bytes, onnx_parity
 from ..surgery import warps_of
@@ -131,7 +130,7 @@ def warp_head_params(warps) -> dict[str, dict[str, list]]:
 def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int, exporter: str,
               n_outputs: int | None, reference=None) -> CheckResult:
     """``example`` holds one tensor per model input."""
-    twin = model if example[0].dtype == torch.float32 else copy.deepcopy(model).float()
+    twin = model if example[0].dtype == torch.float32 else tree_copy(model).float()
     x = tuple(t.float() for t in example)
     if twin is not model:
         reference = None  # the probe outputs were computed in another dtype

@@ -3,7 +3,6 @@
 
 from __future__ import annotations
 
-import copy
 import os
 import time
 from collections.abc import Mapping, Sequence
@@ -12,7 +11,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..copies import bitwise_equal, same_draws
+from ..copies import bitwise_equal, same_draws, tree_copy
 from ..data import normalise
 from ..errors import DataError, SpliceError, first_line
 from ..imagefiles import image_suffixes, list_image_files, load_images
@@ -213,14 +212,14 @@ def error_text(exc: BaseException) -> str:
 
 def reset_copy(model: nn.Module) -> nn.Module:
     """A copy with every warp back at the identity (``Warp.reset_parameters``), RNG untouched."""
-    work = copy.deepcopy(model)
+    work = tree_copy(model)
     with torch.random.fork_rng(devices=[]):
         for warp in warps_of(work).values():
             warp.reset_parameters()
     return work
 
 def only_copy(model: nn.Module, keep: str) -> nn.Module:
-    work = copy.deepcopy(model)
+    work = tree_copy(model)
     with torch.random.fork_rng(devices=[]):
         for name, warp in warps_of(work).items():
             if name != keep:

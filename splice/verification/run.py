@@ -3,7 +3,6 @@
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 import datetime as _dt
 import math
@@ -18,7 +17,7 @@ from torch import nn
 
 from ..fileio import file_sha256, state_dict_sha256
 from ..compare import compare_outputs, detached, flatten_outputs
-from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept, same_draws
+from ..copies import collector_paused, own_buffers_, private_buffers, rng_kept, same_draws, tree_copy
 from ..errors import SpliceError
 from ..exporting import check_opset
 from ..exporting.run import moving_state
@@ -197,7 +196,7 @@ def _in_dtype(base, spliced, dtype: torch.dtype, owned: bool):
     current = next(iter(spliced.parameters()), None)
     if current is not None and current.dtype != dtype:
         if not owned:  # never change the caller's models
-            base, spliced = copy.deepcopy(base), copy.deepcopy(spliced)
+            base, spliced = tree_copy(base), tree_copy(spliced)
         base.to(dtype)
         spliced.to(dtype)
     return base, spliced
