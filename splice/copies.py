@@ -184,6 +184,15 @@ def _plain_module_class(cls: type) -> bool:
             and getattr(cls, "__getnewargs__", None) is None and not copyreg._slotnames(cls))
 
 
+def _kept_tensors(values, depth: int = 3) -> Iterator[torch.Tensor]:
+    """The tensors among ``values`` and inside the lists, tuples and dicts among them, ``depth`` levels down."""
+    for value in values:
+        if isinstance(value, torch.Tensor):
+            yield value
+        elif depth and type(value) in (list, tuple, dict, OrderedDict):
+            yield from _kept_tensors(value.values() if isinstance(value, dict) else value, depth - 1)
+
+
 def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module:
     """``copy.deepcopy(model, memo)``, faster on a deep tree: the same copy, built the same way.
 
@@ -199,10 +208,11 @@ def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module
     """
     memo = {} if memo is None else memo
     # a tensor computed from parameters and kept on a module (the weight a pruning or classic weight_norm hook
-    # recomputes before every forward): deepcopy refuses it; the copy holds its value, detached
+    # recomputes before every forward, a cache of attention biases filled by a train-mode forward): deepcopy
+    # refuses it; the copy holds its value, detached
     for m in model.modules():
-        for value in m.__dict__.values():
-            if isinstance(value, torch.Tensor) and not value.is_leaf and id(value) not in memo:
+        for value in _kept_tensors(m.__dict__.values()):
+            if not value.is_leaf and id(value) not in memo:
                 memo[id(value)] = value.detach().clone()
 
     def walk(m: Any) -> Any:

@@ -76,3 +76,30 @@ def test_a_pruned_model_after_a_forward_is_evaluated_tuned_and_verified(tmp_path
     assert summary["steps"] == -(-1078 // 256)  # 1078 training digits (splice.data), batch 256
     assert verify_models(model, spliced, dtype="float64").passed
     assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())  # the caller's model as it was
+
+
+class _CachedBias(nn.Module):
+    """An attention-bias cache as some vision transformers keep one: a dict filled, in train mode, with a tensor
+    computed from a parameter (so not a leaf), read back in later calls."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+        self.bias_table = nn.Parameter(torch.randn(4, 1, 1))
+        self.cache: dict[str, torch.Tensor] = {}
+
+    def forward(self, x):
+        if "bias" not in self.cache:
+            self.cache["bias"] = self.bias_table * 2.0
+        return (self.conv(x) + self.cache["bias"]).mean((2, 3))
+
+
+def test_a_cache_of_computed_tensors_in_a_dict_is_copied_detached():
+    model = _CachedBias().train()
+    model(torch.rand(2, *SHAPE))
+    assert not model.cache["bias"].is_leaf
+    twin = tree_copy(model)
+    assert twin.cache["bias"].is_leaf and torch.equal(twin.cache["bias"], model.cache["bias"].detach())
+    assert twin.cache["bias"] is not model.cache["bias"] and twin.bias_table is not model.bias_table
+    x = torch.rand(3, *SHAPE)
+    assert torch.equal(twin(x), model(x))
