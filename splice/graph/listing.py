@@ -23,6 +23,7 @@ from ..copies import collector_paused, private_buffers
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes, volumes_not_images
 from .entries import Entry, graph_entries
+from .caches import caches_kept
 from .fallback import hooks_view
 from .leaves import LeafRule, check_leaves_found
 from .naming import describe_node, names_by_node
@@ -262,9 +263,15 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     return _list(model, shapes, LeafRule(leaves), True, warp, within, keep=True)
 
 
-@collector_paused()
 def _list(model: nn.Module, shapes: tuple, rule: LeafRule, every: bool, warp: str, within: str,
           keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
+    with caches_kept(model):  # meta-device and fake passes must leave no tensor without data in a library's cache
+        return _listed(model, shapes, rule, every, warp, within, keep)
+
+
+@collector_paused()
+def _listed(model: nn.Module, shapes: tuple, rule: LeafRule, every: bool, warp: str, within: str,
+            keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
     if within:
         scope, args, kwargs = scope_inputs(model, shapes, within)
         first = next((a for a in args if isinstance(a, torch.Tensor) and a.dim() == 4), None)

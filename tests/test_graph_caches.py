@@ -1,0 +1,64 @@
+"""Listing points runs the model on the meta device: a library function that caches a tensor it builds from plain
+numbers (``functools.lru_cache``) must not keep a meta tensor from that pass for the caller's later real calls."""
+
+from __future__ import annotations
+
+import functools
+import warnings
+
+import torch
+from torch import nn
+
+import splice
+from splice.graph.caches import model_caches
+
+
+@functools.lru_cache(maxsize=4)
+def _ramp(n: int) -> torch.Tensor:
+    return torch.arange(n, dtype=torch.float32) / n
+
+
+def _wrapping_cache(fn):
+    cached = functools.lru_cache(maxsize=4)(fn)
+
+    @functools.wraps(fn)
+    def wrapper(*args):  # a decorator that keeps the cached function in its closure (some libraries do)
+        return cached(*args)
+    return wrapper
+
+
+class _Ramped(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+
+    @staticmethod
+    @_wrapping_cache
+    def column_bias(n: int) -> torch.Tensor:
+        return torch.linspace(0.0, 1.0, n)
+
+    def forward(self, x):
+        if x.shape[-1] > 4:  # Python control flow on the input: fx cannot trace it, the listing runs on meta
+            x = x + _ramp(x.shape[-1]) + self.column_bias(x.shape[-1])
+        return self.conv(x).mean((2, 3))
+
+
+def test_the_caches_near_a_model_are_found():
+    found = model_caches(_Ramped())
+    assert _ramp in found and len(found) == 2  # the module-level one and the one in the decorator's closure
+
+
+def test_listing_points_leaves_no_meta_tensor_in_a_library_cache():
+    torch.manual_seed(0)
+    model = _Ramped().eval()
+    _ramp.cache_clear()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        splice.points(model, input_shape=(1, 16, 16))
+        spliced = splice.insert(model, at="input", input_shape=(1, 16, 16))
+    assert _ramp(16).device.type == "cpu" and _Ramped.column_bias(16).device.type == "cpu"
+    x = torch.rand(2, 1, 16, 16)
+    # the reference: the same sums written out with torch's own arange and linspace
+    expected = model.conv(x + torch.arange(16.0) / 16 + torch.linspace(0.0, 1.0, 16)).mean((2, 3))
+    with torch.no_grad():
+        assert torch.allclose(model(x), expected, atol=1e-6) and torch.allclose(spliced(x), expected, atol=1e-6)
