@@ -594,3 +594,42 @@ def test_upright_agreement_is_recorded_and_a_warp_that_moves_upright_predictions
     tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1, batch_size=64, pretrain_epochs=0),
                   data="digits-moved", out=still, **QUIET)
     assert read_metrics(still)[0]["phase"] == "start" and read_metrics(still)[0]["reference_agreement"] == 1.0
+
+
+class _AuxInTraining(torch.nn.Module):
+    """Logits in eval mode, (logits, auxiliary logits) in train mode, as an Inception-style net returns them."""
+
+    def __init__(self):
+        super().__init__()
+        self.body = splice.models.tray_net(width=4)
+
+    def forward(self, x):
+        out = self.body(x)
+        return (out, out.detach() * 0.5) if self.training else out
+
+
+def test_a_model_whose_train_mode_output_holds_no_logits_is_refused_before_any_work(tmp_path, monkeypatch):
+    # the joint recipe trains the base in train mode; the refusal came after the whole warp pre-training
+    import sys
+    import types
+
+    from splice.training import pretrain
+
+    module = types.ModuleType("aux_in_training")
+    module.make = _AuxInTraining
+    monkeypatch.setitem(sys.modules, "aux_in_training", module)
+    spliced = tmp_path / "sp"
+    from splice.graph import TraceFallbackWarning
+
+    with pytest.warns(TraceFallbackWarning):  # the forward reads its own training flag: a hooks splice
+        splice.save(splice.insert(splice.load_source("aux_in_training:make", input_shape=SHAPE, warn_random=False),
+                                  at="input", warp=splice.WarpConfig(head_width=4)), spliced)
+
+    def no_pretraining(*args, **kwargs):
+        raise AssertionError("warp pre-training ran before the output was checked")
+    monkeypatch.setattr(pretrain, "pretrain_warps_", no_pretraining)
+    monkeypatch.setattr("splice.training.epochs.pretrain_warps_", no_pretraining)
+    with pytest.raises(DataError, match=r"in train mode \(the mode the recipe trains the base in\), the model "
+                                        r"returns out\[0\] \(2, 10\), out\[1\] \(2, 10\)"):
+        tune_keywords(str(spliced), recipe=_recipe("joint", epochs=1), data="digits-moved", out=tmp_path / "run",
+                      trust_code=True, **QUIET)

@@ -14,8 +14,9 @@ import torch
 from torch import nn
 
 from ..compare import logits_or_refuse
-from ..copies import modes_kept
+from ..copies import modes_kept, tree_copy
 from ..fileio import state_dict_sha256
+from ..graph.shapes import input_dtype
 from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
 from ..options import ModelOptions, refuse_several_inputs, refuse_unfit_inputs
@@ -31,7 +32,8 @@ from .params import frozen_by_model
 from .reference import Reference, data_record, resolve_reference
 from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info
 
-__all__ = ["gate_recorded_model", "Request", "resolve", "load_model", "open_splits", "reference", "reference_images",
+__all__ = ["refuse_train_mode_output",
+           "gate_recorded_model", "Request", "resolve", "load_model", "open_splits", "reference", "reference_images",
            "reference_probe", "normalisation", "run_info"]
 
 
@@ -171,6 +173,21 @@ def _num_outputs(model: nn.Module, input_shape, device) -> int | None:
     except Exception:  # noqa: BLE001 - a model that cannot run on zeros is reported later, by the loop
         return None
     return int(logits_or_refuse(out, "the model").shape[1])  # a model whose output holds no logits: refused now
+
+
+def refuse_train_mode_output(net: nn.Module, input_shape, rec: Recipe, device) -> None:
+    """A recipe that trains the base runs it in train mode, where some models return more (an auxiliary head
+    beside the logits): one train-mode forward of a twin (its buffers its own) checks the output before any work,
+    warp pre-training included, and refuses it in one line."""
+    if all(rec.base_frozen(e) for e in range(rec.epochs)):
+        return
+    twin = tree_copy(net)
+    try:
+        with torch.no_grad():
+            out = twin.train()(torch.zeros((2, *input_shape), device=device, dtype=input_dtype(net)))
+    except Exception:  # noqa: BLE001 - a model that cannot run on zeros in train mode is reported by the loop
+        return
+    logits_or_refuse(out, "in train mode (the mode the recipe trains the base in), the model")
 
 
 def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:

@@ -60,8 +60,8 @@ from .epochs import train
 from .options import RecipeOverrides, RunOptions
 from .reference import data_record
 from .runfolder import RECIPE_FILE, prepare_folder, start_files, warn_other_data, write_run_info
-from .setup import (gate_recorded_model, load_model, normalisation, open_splits, reference, reference_probe, resolve,
-                    run_info)
+from .setup import (gate_recorded_model, load_model, normalisation, open_splits, reference, reference_probe,
+                    refuse_train_mode_output, resolve, run_info)
 from .state import Run, TuneInterrupted
 
 __all__ = ["tune", "tune_keywords"]
@@ -275,6 +275,7 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
     src, net, warps = load_model(req, where)
     net.to(ctx.device)
     train_set, val_set, classes = open_splits(req.data, src, net, ctx.device)
+    refuse_train_mode_output(net, tuple(src.input_shape), rec, ctx.device)
     ref = reference(req, net, overrides.reference)
     if info is not None and ref is not None and "reference" not in info:
         info = dict(info, reference=ref.data, reference_origin=ref.origin)
