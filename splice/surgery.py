@@ -25,14 +25,14 @@ import torch
 from torch import fx, nn
 
 from .compare import compare_outputs
-from .copies import private_buffers, same_draws
+from .copies import private_buffers, same_draws, tree_copy
 from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
 from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info, info_of, remember_base
 from .sources import MODULE_SPEC
 
 __all__ = ["WARP_PREFIX", "SplicePlan", "apply_plan", "apply_info", "insert", "check_unspliced", "warps_of",
-           "base_state_dict"]
+           "base_view", "base_state_dict"]
 
 
 @dataclass(frozen=True)
@@ -47,6 +47,15 @@ def warps_of(model: nn.Module) -> dict[str, nn.Module]:
     """``{point name: Warp}`` for a spliced model (empty for plain models)."""
     container = getattr(model, WARP_PREFIX, None)
     return dict(container.items()) if isinstance(container, nn.ModuleDict) else {}
+
+
+def base_view(model: nn.Module, warps: Mapping[str, nn.Module] | None = None) -> nn.Module:  # noqa: ARG001
+    """A copy of a spliced ``model`` with every warp reset to the identity: the base network's predictions
+    (``warps`` is not read: the copy's own warps are reset)."""
+    twin = tree_copy(model)
+    for w in warps_of(twin).values():
+        w.reset_parameters()
+    return twin
 
 
 def base_state_dict(model: nn.Module) -> dict[str, torch.Tensor]:

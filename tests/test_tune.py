@@ -589,11 +589,16 @@ def test_upright_agreement_is_recorded_and_a_warp_that_moves_upright_predictions
         mine = float((base(x).argmax(1) == tuned(x).argmax(1)).float().mean())
     assert mine == pytest.approx(best["reference_agreement"], abs=1e-6)
     assert f"{100 * (1 - mine):.1f} %" in str(w[0].message)
-    # the starting model agrees with itself: the start row of a run without pre-training reads exactly 1
+    # the base agrees with itself: the start row of a run without pre-training reads exactly 1
     still = tmp_path / "still"
     tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1, batch_size=64, pretrain_epochs=0),
                   data="digits-moved", out=still, **QUIET)
     assert read_metrics(still)[0]["phase"] == "start" and read_metrics(still)[0]["reference_agreement"] == 1.0
+    # tuning best/ again: its start row compares its warps with the base, not with itself
+    again = tmp_path / "again"
+    tune_keywords(str(run / "best"), recipe=_recipe("warp-only", epochs=1, batch_size=64, pretrain_epochs=0),
+                  data="digits-moved", out=again, **QUIET)
+    assert read_metrics(again)[0]["reference_agreement"] == pytest.approx(mine, abs=1e-6)
 
 
 class _AuxInTraining(torch.nn.Module):

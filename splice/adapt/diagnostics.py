@@ -30,8 +30,9 @@ import torch
 from torch import Tensor, nn
 
 from ..compare import logits_or_refuse
-from ..copies import private_buffers, tree_copy
+from ..copies import private_buffers
 from ..distort import random_distort
+from ..surgery import base_view
 from ..training import batches as _b
 from ..training.pretrain import warp_inputs
 from .images import Images
@@ -50,16 +51,6 @@ def sample_indices(n: int, seed: int, size: int = SAMPLE) -> Tensor:
     if n <= size:
         return torch.arange(n)
     return torch.randperm(n, generator=_b.generator(seed, "diagnostics-sample"))[:size].sort().values
-
-
-def base_view(model: nn.Module, warps: Mapping[str, nn.Module]) -> nn.Module:
-    """A copy of a spliced ``model`` with every warp reset to the identity: the base network's predictions."""
-    from ..surgery import warps_of
-
-    twin = tree_copy(model)
-    for w in warps_of(twin).values():
-        w.reset_parameters()
-    return twin
 
 
 def _logits(model: nn.Module, images: Tensor, prepare: Callable[[Tensor], Tensor], batch_size: int) -> Tensor:

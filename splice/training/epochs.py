@@ -16,6 +16,7 @@ import torch
 
 from ..distort import random_distort
 from ..errors import RecipeError, SpliceError, first_line
+from ..surgery import base_view
 from . import batches as _b
 from . import distributed
 from .checkpoint import set_rng_state
@@ -25,7 +26,7 @@ from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer,
     set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
-from .recording import checkpoint, diverged, evaluate_val, finish, record, reference_predictions, stopped
+from .recording import checkpoint, diverged, evaluate_val, finish, predicted_classes, record, stopped
 from .runfolder import truncate_metrics
 from .schedule import lr_factor
 from .setup import reference_images
@@ -147,8 +148,9 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     ctx, rec = run.ctx, run.rec
     kinds = f" in {len(run.classes)} classes" if run.classes else ""
     run.bar.line(f"data {run.data}: {len(run.train):,} train and {len(run.val):,} val images{kinds}")
-    if resume is None:  # what the base predicts for the upright reference, before any warp moves
-        run.reference_start = reference_predictions(run)
+    if resume is None and run.warps and run.reference_probe is not None:
+        # what the base (every warp at the identity) predicts for the upright reference
+        run.reference_start = predicted_classes(base_view(run.net), run.reference_probe, run.prepare)
     if not (run.warps and rec.pretrain.epochs > 0) or run.reference.skipped:
         if run.warps and rec.pretrain.epochs > 0:
             run.bar.line(f"no upright reference for {run.data!r} ([pretrain] if_no_reference = \"skip\"): "
