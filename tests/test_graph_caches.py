@@ -10,7 +10,7 @@ import torch
 from torch import nn
 
 import splice
-from splice.graph.caches import model_caches
+from splice.caches import clear_filled_caches, model_caches
 
 
 @functools.lru_cache(maxsize=4)
@@ -62,3 +62,34 @@ def test_listing_points_leaves_no_meta_tensor_in_a_library_cache():
     expected = model.conv(x + torch.arange(16.0) / 16 + torch.linspace(0.0, 1.0, 16)).mean((2, 3))
     with torch.no_grad():
         assert torch.allclose(model(x), expected, atol=1e-6) and torch.allclose(spliced(x), expected, atol=1e-6)
+
+
+class _BuiltFromCache(nn.Module):
+    """A model whose constructor takes a buffer from a cached function (as positional tables often are)."""
+
+    def __init__(self, size: int = 8):
+        super().__init__()
+        self.conv = nn.Conv2d(1, 4, 3, padding=1)
+        self.register_buffer("offset", _ramp(size), persistent=False)
+
+    def forward(self, x):
+        return self.conv(x + self.offset).mean((2, 3))
+
+
+def make_built_from_cache():
+    return _BuiltFromCache()
+
+
+def test_a_model_built_on_the_meta_device_leaves_no_meta_tensor_in_a_cache(tmp_path, monkeypatch):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "built_from_cache", sys.modules[__name__])
+    src = splice.load_source("built_from_cache:make_built_from_cache", input_shape=(1, 8, 8), warn_random=False)
+    folder = tmp_path / "sp"
+    splice.save(splice.insert(src, at="input"), folder)
+    _ramp.cache_clear()
+    splice.load(folder, trust_code=True)  # built empty on the meta device, then filled from its weights
+    assert _ramp(8).device.type == "cpu"
+    model = _BuiltFromCache()
+    clear_filled_caches(model)
+    assert _ramp.cache_info().currsize == 0

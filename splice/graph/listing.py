@@ -23,7 +23,7 @@ from ..copies import collector_paused, private_buffers
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes, volumes_not_images
 from .entries import Entry, graph_entries
-from .caches import caches_kept
+from ..caches import caches_kept
 from .fallback import hooks_view
 from .leaves import LeafRule, check_leaves_found
 from .naming import describe_node, names_by_node

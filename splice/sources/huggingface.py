@@ -31,6 +31,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from ..caches import clear_filled_caches
 from ..errors import NormalisationWarning, SourceError, SpliceWarning, WeightsError, first_line
 from ..fileio import read_json
 from .specs import per_channel, positive_int
@@ -425,6 +426,7 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
         transformers.logging.set_verbosity(verbosity)
         if bars:
             transformers.logging.enable_progress_bar()
+    clear_filled_caches(loaded)  # transformers builds the model on the meta device before it reads the weights
     mismatched = sorted((m[0], tuple(m[1]), tuple(m[2])) for m in info.get("mismatched_keys") or ()
                         if isinstance(m, (tuple, list)) and len(m) == 3)
     _refuse_unfitting(folder, model, sorted(info.get("unexpected_keys") or ()), mismatched, allow_partial)

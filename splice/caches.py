@@ -8,7 +8,9 @@ builds a tensor without data, and the cache hands that tensor to every later
 real forward in the process: the caller's own model then computes with it.
 :func:`caches_kept` clears every cache near the model (see
 :func:`model_caches`) that computed something new during the pass; the next
-real call fills it again with real tensors.
+real call fills it again with real tensors. A model built on the meta device
+(weights to be loaded next) may have called such a function while it was built:
+:func:`clear_filled_caches` empties every cache near it afterwards.
 """
 
 from __future__ import annotations
@@ -20,7 +22,7 @@ from typing import Any
 
 from torch import nn
 
-__all__ = ["model_caches", "caches_kept"]
+__all__ = ["model_caches", "caches_kept", "clear_filled_caches"]
 
 
 def _is_cache(value: Any) -> bool:
@@ -72,3 +74,11 @@ def caches_kept(model: nn.Module) -> Iterator[None]:
         for cache, misses in zip(caches, before):
             if cache.cache_info().misses != misses:
                 cache.cache_clear()
+
+
+def clear_filled_caches(model: nn.Module) -> None:
+    """Empty every one of :func:`model_caches` that holds an entry (after ``model`` was built on the meta device,
+    where an entry made then holds tensors without data); a cleared cache only computes again."""
+    for cache in model_caches(model):
+        if cache.cache_info().currsize:
+            cache.cache_clear()
