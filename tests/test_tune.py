@@ -638,3 +638,16 @@ def test_a_model_whose_train_mode_output_holds_no_logits_is_refused_before_any_w
                                         r"returns out\[0\] \(2, 10\), out\[1\] \(2, 10\)"):
         tune_keywords(str(spliced), recipe=_recipe("joint", epochs=1), data="digits-moved", out=tmp_path / "run",
                       trust_code=True, **QUIET)
+
+
+def test_pre_training_without_any_range_is_a_caution(tmp_path, spliced):
+    # a recipe file that leaves out every [pretrain] range: they default to no motion, and the heads would learn
+    # the identity alone while the run looked normal
+    from splice.errors import SpliceWarning
+
+    d = _recipe("warp-only", epochs=1, batch_size=64).to_dict()
+    d["pretrain"].update(rotation=0.0, scale=[1.0, 1.0], shift=0.0, perspective=0.0)
+    from splice.recipes import Recipe
+
+    with pytest.warns(SpliceWarning, match=r"\[pretrain\] has 1 epochs but no rotation, scale, shift or perspective"):
+        tune_keywords(str(spliced), recipe=Recipe.from_dict(d), data="digits-moved", out=tmp_path / "run", **QUIET)

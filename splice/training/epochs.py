@@ -10,12 +10,13 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from typing import Any
 
 import torch
 
 from ..distort import random_distort
-from ..errors import RecipeError, SpliceError, first_line
+from ..errors import RecipeError, SpliceError, SpliceWarning, first_line
 from ..surgery import base_view
 from . import batches as _b
 from . import distributed
@@ -142,6 +143,18 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
     return start_epoch, start_batch
 
 
+def _warn_if_still(run: Run) -> None:
+    """Pre-training whose ranges move nothing (a recipe that leaves out every range of ``[pretrain]``, which then
+    default to no motion) teaches the heads the identity alone: say so before it runs."""
+    pre = run.rec.pretrain
+    if pre.rotation == 0 and tuple(pre.scale) == (1.0, 1.0) and pre.shift == 0 and pre.perspective == 0:
+        text = (f"recipe {run.rec.name!r}: [pretrain] has {pre.epochs} epochs but no rotation, scale, shift or "
+                "perspective range, so warp pre-training draws no motion and teaches the identity only; give the "
+                "ranges the site's images move by (e.g. rotation = 30.0), or set [pretrain] epochs = 0")
+        run.bar.line(f"caution: {text}")
+        warnings.warn(text, SpliceWarning, stacklevel=4)
+
+
 def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = None) -> dict[str, Any] | None:
     """A fresh run: pre-train the warp heads (if the recipe does; ``resume`` continues a pre-training
     checkpoint), record the starting point, checkpoint. Returns a summary if stopped during pre-training."""
@@ -163,6 +176,7 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
         return None
     ref = reference_images(run.reference, run.train, run.shape)
     set_requires_grad(run.net, frozen.names, base_frozen=True)
+    _warn_if_still(run)
     shown = []
 
     def on_step(i, total, loss) -> bool:
