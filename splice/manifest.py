@@ -123,8 +123,10 @@ class PointRecord:
     @classmethod
     def from_json(cls, data: Mapping) -> PointRecord:
         shape = data.get("shape")
-        return cls(data["name"], WarpConfig.from_dict(data.get("warp") or {}),
-                   tuple(shape) if shape else None, data.get("cut"))
+        warp = dict(data.get("warp") or {})
+        if warp.get("family") == "similarity":  # written before frames were recorded: normalised coordinates
+            warp.setdefault("frame", "normalised")
+        return cls(data["name"], WarpConfig.from_dict(warp), tuple(shape) if shape else None, data.get("cut"))
 
 
 def _in_folder(path: str | None, folder) -> str | None:

@@ -31,6 +31,27 @@ def test_manifest_round_trip(saved):
     assert validate_manifest(copy.deepcopy(manifest)) == manifest
 
 
+def test_a_similarity_folder_records_its_frame_and_an_older_one_keeps_normalised_coordinates(saved, tmp_path):
+    import shutil
+
+    from splice.manifest import MANIFEST_NAME
+    from splice.surgery import warps_of
+
+    manifest = read_manifest(saved)
+    assert manifest["points"][0]["warp"]["frame"] == "pixels"
+    older = tmp_path / "older"
+    shutil.copytree(saved, older)
+    data = json.loads((older / MANIFEST_NAME).read_text())
+    del data["points"][0]["warp"]["frame"]  # as a release before frames wrote it
+    (older / MANIFEST_NAME).write_text(json.dumps(data))
+    (warp,) = warps_of(splice.load(older)).values()
+    assert warp.config.frame == "normalised"
+    (now,) = warps_of(splice.load(saved)).values()
+    assert now.config.frame == "pixels"
+    # an affine warp is the same in either frame: nothing is written for it
+    assert "frame" not in splice.WarpConfig(family="affine").to_dict()
+
+
 _JSON = st.recursive(
     st.none() | st.booleans() | st.integers(-5, 5) | st.floats(allow_nan=False, width=16) | st.text(max_size=6),
     lambda children: st.lists(children, max_size=3) | st.dictionaries(st.text(max_size=6), children, max_size=3),

@@ -53,10 +53,10 @@ def _expected_matrix(family: str, t: list[float]) -> np.ndarray:
     if family == "attention":
         s = math.exp(-abs(t[0]))
         return np.array([[s, 0, t[1]], [0, s, t[2]], [0, 0, 1]], dtype=float)
-    if family == "similarity":
+    if family == "similarity":  # rigid in pixels: the rotation is conjugated by D = diag(W/2, H/2)
         a, k = t[0], math.exp(t[1])
         c, s = k * math.cos(a), k * math.sin(a)
-        return np.array([[c, -s, t[2]], [s, c, t[3]], [0, 0, 1]], dtype=float)
+        return np.array([[c, -s * H / W, t[2]], [s * W / H, c, t[3]], [0, 0, 1]], dtype=float)
     if family == "affine":
         return np.array([t[0:3], t[3:6], [0, 0, 1]], dtype=float)
     return np.array([t[0:3], t[3:6], [t[6], t[7], 1.0]], dtype=float)
@@ -106,6 +106,23 @@ def _opencv_tolerance(image: np.ndarray) -> float:
     # bound the error by the largest neighbour difference times 2/64.
     step = max(np.abs(np.diff(image, axis=0)).max(), np.abs(np.diff(image, axis=1)).max())
     return 2.0 * step / 64.0 + 1e-9
+
+
+def test_a_similarity_warp_is_rigid_in_pixels_on_a_tensor_that_is_not_square():
+    # the pixel map of the warp (output pixel -> input pixel) has a scaled rotation as its linear part: the same
+    # angle and scale along both axes, whatever the aspect ratio (37x45 here)
+    theta = THETAS["similarity"]
+    warp = Warp(WarpConfig(family="similarity"), (1, H, W), dtype=torch.float64)
+    m = warp.matrix(torch.tensor([theta], dtype=torch.float64))[0].numpy()
+    linear = _pixel_matrix(m, H, W)[:2, :2]
+    k, a = math.exp(theta[1]), theta[0]
+    np.testing.assert_allclose(linear, k * np.array([[math.cos(a), -math.sin(a)], [math.sin(a), math.cos(a)]]),
+                               atol=1e-12)
+    # a folder written before frames were recorded keeps the normalised-coordinate angle it was trained with
+    old = Warp(WarpConfig(family="similarity", frame="normalised"), (1, H, W), dtype=torch.float64)
+    c, s = k * math.cos(a), k * math.sin(a)
+    np.testing.assert_allclose(old.matrix(torch.tensor([theta], dtype=torch.float64))[0].numpy(),
+                               [[c, -s, theta[2]], [s, c, theta[3]], [0, 0, 1]], atol=1e-12)
 
 
 @pytest.mark.parametrize("family", ["translation", "attention", "similarity", "affine"])

@@ -18,7 +18,12 @@ Parameter vectors ``theta`` (the raw head output, shape ``(N, P)``):
 - ``attention`` (P=3): ``(r, tx, ty)`` with isotropic scale ``s = exp(-|r|)``;
   ``M = [[s, 0, tx], [0, s, ty], [0, 0, 1]]``. See :func:`attention_scale`.
 - ``similarity`` (P=4): ``(a, l, tx, ty)``, angle ``a`` in radians and
-  log-scale ``l``; ``M = [[e^l cos a, -e^l sin a, tx], [e^l sin a, e^l cos a, ty], [0, 0, 1]]``.
+  log-scale ``l``; ``M = [[e^l cos a, -e^l sin a / r, tx], [e^l sin a r, e^l cos a, ty], [0, 0, 1]]``
+  with ``r = W / H``, the aspect ratio of the warped tensor (``frame = "pixels"``,
+  the default): the rotation ``R(a)`` turns pixel offsets, ``M = D^-1 R(a) D``
+  with ``D = diag(W/2, H/2)``, so the warp is rigid in pixels on any tensor.
+  ``frame = "normalised"`` keeps ``r = 1`` (rigid on square tensors only): what
+  a similarity warp was before frames were recorded, as older folders hold it.
 - ``affine`` (P=6): the top two rows of ``M``, row-major; identity ``[1, 0, 0, 0, 1, 0]``.
 - ``projective`` (P=8): the first eight entries of ``M`` row-major, ``M[2, 2] = 1``.
 - ``tps`` (P=2K^2): offsets ``(dx, dy)`` of a KxK grid of control points; no matrix.
@@ -40,6 +45,7 @@ from splice.warps.grids import static_shape
 __all__ = [
     "FAMILIES",
     "SAMPLERS",
+    "FRAMES",
     "PADDINGS",
     "MATRIX_FAMILIES",
     "THETA_LIMIT",
@@ -55,6 +61,8 @@ __all__ = [
 
 FAMILIES = ("translation", "attention", "similarity", "affine", "projective", "tps")
 SAMPLERS = ("bilinear", "nearest", "bicubic")
+#: the frame a similarity warp's rotation turns (see the module docstring)
+FRAMES = ("pixels", "normalised")
 PADDINGS = ("zeros", "border", "reflection")
 MATRIX_FAMILIES = FAMILIES[:-1]
 
@@ -113,9 +121,13 @@ class WarpConfig:
     head_width: int = 16
     tps_k: int = 4
     loc_from: str | None = None
+    frame: str = "pixels"
 
     def __post_init__(self) -> None:
         _check_choice("family", self.family, FAMILIES)
+        _check_choice("frame", self.frame, FRAMES)
+        if self.family != "similarity":  # the other families are the same in either frame
+            self.frame = "pixels"
         _check_choice("sampler", self.sampler, SAMPLERS)
         _check_choice("padding", self.padding, PADDINGS)
         _check_int("head_width", self.head_width, 1, 1024)
@@ -132,8 +144,16 @@ class WarpConfig:
         return family_param_count(self.family, self.tps_k)
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain JSON-ready dict with every field."""
-        return dataclasses.asdict(self)
+        """Plain JSON-ready dict with every field (``frame`` only for ``similarity``, the one family it changes)."""
+        out = dataclasses.asdict(self)
+        if self.family != "similarity":
+            del out["frame"]
+        return out
+
+    @property
+    def pixel_frame(self) -> bool:
+        """Whether a similarity warp turns pixel offsets (rigid in pixels on any tensor)."""
+        return self.family == "similarity" and self.frame == "pixels"
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> WarpConfig:
@@ -204,10 +224,12 @@ def attention_scale(r: Tensor) -> Tensor:
     return torch.exp(-torch.where(r >= 0, r, -r))
 
 
-def theta_to_matrix(family: str, theta: Tensor) -> Tensor:
+def theta_to_matrix(family: str, theta: Tensor, aspect: float = 1.0) -> Tensor:
     """Map raw parameters ``(N, P)`` to the homogeneous sampling matrix ``(N, 3, 3)``.
 
-    Pure function (no state). Raises :class:`WarpError` for ``tps`` (it has no
+    Pure function (no state). ``aspect`` is ``W / H`` of the warped tensor for
+    a similarity warp in the pixel frame (1 keeps normalised coordinates); no
+    other family reads it. Raises :class:`WarpError` for ``tps`` (it has no
     matrix) and for a ``theta`` of the wrong width.
     """
     _check_choice("family", family, FAMILIES)
@@ -231,11 +253,13 @@ def theta_to_matrix(family: str, theta: Tensor) -> Tensor:
         rows = [s, zero, t[:, 1], zero, s, t[:, 2], zero, zero, one]
     elif family == "similarity":
         # Rotation by a, then isotropic scale e^l, then shift: a composed
-        # rotation-scale R(a) * e^l has entries e^l [[cos, -sin], [sin, cos]].
+        # rotation-scale R(a) * e^l has entries e^l [[cos, -sin], [sin, cos]];
+        # in the pixel frame it is conjugated by D = diag(W/2, H/2), which
+        # divides the upper off-diagonal by W/H and multiplies the lower one.
         scale = torch.exp(t[:, 1].clamp(-LOG_SCALE_LIMIT, LOG_SCALE_LIMIT))
         c = scale * torch.cos(t[:, 0])
         s = scale * torch.sin(t[:, 0])
-        rows = [c, -s, t[:, 2], s, c, t[:, 3], zero, zero, one]
+        rows = [c, -s / aspect, t[:, 2], s * aspect, c, t[:, 3], zero, zero, one]
     elif family == "affine":
         rows = [t[:, 0], t[:, 1], t[:, 2], t[:, 3], t[:, 4], t[:, 5], zero, zero, one]
     else:  # projective

@@ -237,7 +237,11 @@ class Warp(nn.Module):
         """``(N, 3, 3)`` homogeneous sampling matrix (output -> input); ``None`` for tps."""
         if self.family == "tps":
             return None
-        return theta_to_matrix(self.family, theta)
+        return theta_to_matrix(self.family, theta, self._aspect(self.shape[1], self.shape[2]))
+
+    def _aspect(self, height: int, width: int) -> float:
+        """``W / H`` for a similarity warp in the pixel frame (its rotation turns pixel offsets), else 1."""
+        return width / height if self.config.pixel_frame else 1.0
 
     def grid(self, theta: Tensor, height: int, width: int) -> Tensor:
         """``(N, H, W, 2)`` normalised sampling grid for ``theta`` (``align_corners=False``)."""
@@ -256,7 +260,7 @@ class Warp(nn.Module):
             if self.family == "tps":
                 offsets = theta.clamp(-THETA_LIMIT, THETA_LIMIT).reshape(-1, self.n_params // 2, 2)
                 return grids.tps_grid(bufs["base_grid"], bufs["tps_weights"], offsets, height, width)
-            m = theta_to_matrix(self.family, theta)
+            m = theta_to_matrix(self.family, theta, self._aspect(height, width))
             return grids.matrix_grid(bufs["base_grid"], m, height, width, projective=self.family == "projective")
 
     def forward(self, x: Tensor, loc: Tensor | None = None) -> Tensor:
