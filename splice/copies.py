@@ -25,6 +25,7 @@ Layer: the bottom floor; imports only torch.
 
 from __future__ import annotations
 
+import collections
 import copy
 import copyreg
 import gc
@@ -184,13 +185,17 @@ def _plain_module_class(cls: type) -> bool:
             and getattr(cls, "__getnewargs__", None) is None and not copyreg._slotnames(cls))
 
 
-def _kept_tensors(values, depth: int = 3) -> Iterator[torch.Tensor]:
-    """The tensors among ``values`` and inside the lists, tuples and dicts among them, ``depth`` levels down."""
+def _kept_tensors(values, seen: set[int] | None = None) -> Iterator[torch.Tensor]:
+    """The tensors among ``values`` and, at any depth, inside the sequences, sets and mappings among them (named
+    tuples and deques too; each container once, so a cycle ends)."""
+    seen = set() if seen is None else seen
     for value in values:
         if isinstance(value, torch.Tensor):
             yield value
-        elif depth and type(value) in (list, tuple, dict, OrderedDict):
-            yield from _kept_tensors(value.values() if isinstance(value, dict) else value, depth - 1)
+        elif isinstance(value, (tuple, list, set, frozenset, Mapping, collections.deque)) and not isinstance(
+                value, (str, bytes)) and id(value) not in seen:
+            seen.add(id(value))
+            yield from _kept_tensors(value.values() if isinstance(value, Mapping) else value, seen)
 
 
 def tree_copy(model: nn.Module, memo: dict[int, Any] | None = None) -> nn.Module:

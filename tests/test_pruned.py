@@ -103,3 +103,17 @@ def test_a_cache_of_computed_tensors_in_a_dict_is_copied_detached():
     assert twin.cache["bias"] is not model.cache["bias"] and twin.bias_table is not model.bias_table
     x = torch.rand(3, *SHAPE)
     assert torch.equal(twin(x), model(x))
+
+
+def test_computed_tensors_at_any_depth_and_in_any_container_are_copied_detached():
+    import collections
+
+    model = _CachedBias().train()
+    model(torch.rand(2, *SHAPE))
+    computed = model.bias_table * 3.0
+    pair = collections.namedtuple("Pair", "tensor tag")
+    model.kept = [[[[computed]]], pair(computed, 1), {0: collections.deque([computed])}]
+    twin = tree_copy(model)
+    found = [twin.kept[0][0][0][0], twin.kept[1].tensor, twin.kept[2][0][0]]
+    assert all(t.is_leaf and torch.equal(t, computed.detach()) for t in found)
+    assert found[0] is found[1] is found[2]  # one tensor in the original: one in the copy

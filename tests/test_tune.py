@@ -560,7 +560,11 @@ def test_a_signal_stops_the_run_exits_128_plus_it_and_names_the_command_that_con
     assert json.loads((run / "run.json").read_text())["status"] == "interrupted"
     assert f"Continue with: splice tune --resume {run}" in err
     # a run of several processes is continued by as many: a plain resume would be refused
-    assert resume_command(run, 4) == f"torchrun -m splice tune --resume {run}, with the same 4 processes"
+    monkeypatch.delenv("LOCAL_WORLD_SIZE", raising=False)
+    assert resume_command(run, 4) == f"torchrun --nproc-per-node 4 -m splice tune --resume {run}"
+    monkeypatch.setenv("LOCAL_WORLD_SIZE", "2")  # torchrun's own variable: two nodes of two processes
+    assert resume_command(run, 4) == (f"torchrun --nproc-per-node 2 -m splice tune --resume {run} on each of the 2 "
+                                      "nodes, with their rendezvous options")
 
 
 def test_upright_agreement_is_recorded_and_a_warp_that_moves_upright_predictions_is_a_caution(tmp_path, spliced):

@@ -253,7 +253,10 @@ def resume_command(run_dir, world_size: int) -> str:
     """The command that continues the run in ``run_dir``: torchrun with as many processes when it ran in several
     (a resume in another number of processes is refused)."""
     if world_size > 1:
-        return f"torchrun -m splice tune --resume {run_dir}, with the same {world_size} processes"
+        local = int(os.environ.get("LOCAL_WORLD_SIZE") or world_size)  # torchrun's processes on this node
+        nodes = max(1, world_size // max(1, local))
+        command = f"torchrun --nproc-per-node {local} -m splice tune --resume {run_dir}"
+        return command if nodes == 1 else f"{command} on each of the {nodes} nodes, with their rendezvous options"
     return f"splice tune --resume {run_dir}"
 
 
