@@ -655,3 +655,20 @@ def test_pre_training_without_any_range_is_a_caution(tmp_path, spliced):
 
     with pytest.warns(SpliceWarning, match=r"\[pretrain\] has 1 epochs but no rotation, scale, shift or perspective"):
         tune_keywords(str(spliced), recipe=Recipe.from_dict(d), data="digits-moved", out=tmp_path / "run", **QUIET)
+
+
+def test_a_run_an_older_splice_started_records_upright_agreement_after_its_resume(tmp_path, spliced):
+    # its checkpoint holds no starting predictions; a warp-only base is as it started, so they are read again
+    from splice.training.checkpoint import save_checkpoint
+
+    recipe = _recipe("warp-only", epochs=2, batch_size=64)
+    full, part = tmp_path / "full", tmp_path / "part"
+    tune_keywords(str(spliced), recipe=recipe, data="digits-moved", out=full, **QUIET)
+    tune_keywords(str(spliced), recipe=recipe, data="digits-moved", out=part, stop_after_steps=20, **QUIET)
+    ckpt = load_checkpoint(part / CHECKPOINT_NAME)
+    del ckpt["reference_start"]
+    save_checkpoint(part / CHECKPOINT_NAME, ckpt)
+    tune_keywords(resume=part, **QUIET)
+    assert [r["reference_agreement"] for r in read_metrics(part)] == \
+        [r["reference_agreement"] for r in read_metrics(full)]
+    assert all(r["reference_agreement"] is not None for r in read_metrics(part))

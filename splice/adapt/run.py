@@ -167,6 +167,8 @@ def _restore(run: AdaptRun) -> tuple[str, int, int]:
     run.estimate = RangeEstimate.from_dict(ckpt["estimate"]) if ckpt.get("estimate") else None
     if ckpt.get("reference_start") is not None:
         run.reference_start = torch.tensor(ckpt["reference_start"], dtype=torch.long)
+    elif run.reference_probe is not None:  # a checkpoint an older splice wrote: the base never changes here
+        run.reference_start = predicted_classes(base_view(run.net, run.warps), run.reference_probe, run.prepare)
     if run.ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     phase, epoch, batch = str(ckpt["phase"]), int(ckpt["epoch"]), int(ckpt["batch"])

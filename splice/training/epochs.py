@@ -124,6 +124,12 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
     run.metrics_rows = int(ckpt["metrics_rows"])
     if ckpt.get("reference_start") is not None:
         run.reference_start = torch.tensor(ckpt["reference_start"], dtype=torch.long)
+    elif run.warps and run.reference_probe is not None:  # a checkpoint an older splice wrote
+        if all(run.rec.base_frozen(e) for e in range(run.rec.epochs)):  # the base is as it started: read it again
+            run.reference_start = predicted_classes(base_view(run.net), run.reference_probe, run.prepare)
+        else:
+            run.bar.line("upright agreement is not recorded for this run: an older splice started it, and the "
+                         "base it started from has changed since")
     if ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     run.last_good = {"epoch": start_epoch, "step": run.step}
