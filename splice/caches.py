@@ -3,26 +3,44 @@
 Library code keeps some tensors it builds from plain numbers in
 ``functools.lru_cache``-decorated functions (a relative-position index built
 from a window size). Called while splice runs the model on the meta device
-(listing points) or under ``torch.export``'s fake tensors, such a function
-builds a tensor without data, and the cache hands that tensor to every later
-real forward in the process: the caller's own model then computes with it.
-:func:`caches_kept` clears every cache near the model (see
-:func:`model_caches`) that computed something new during the pass; the next
-real call fills it again with real tensors. A model built on the meta device
-(weights to be loaded next) may have called such a function while it was built:
-:func:`clear_filled_caches` empties every cache near it afterwards.
+(listing points), builds a model there (its weights to be loaded next) or
+runs it under ``torch.export``'s fake tensors, such a function builds a
+tensor without data, and the cache hands that tensor to every later real call
+in the process: the caller's own model then computes with it.
+
+:func:`caches_kept` guards such a pass. Before it, it notes how often each
+cache it knows of has computed a new entry (a miss); afterwards it clears each
+one that did, and each cache near the model it did not know of that holds
+anything (one made during the pass: a module imported by a spec being built,
+a cache kept on a module instance). A cleared cache only computes again, with
+real tensors, at its next real call.
+
+The caches it knows of are every ``lru_cache`` the garbage collector tracks
+(found once per process and again whenever the loaded modules changed; about
+50 ms with torch, timm and transformers loaded), and :func:`model_caches`:
+anything with ``cache_info`` and ``cache_clear`` in the classes of the
+model's modules, their instances and the globals of the modules that define
+them. A plain dict used as a cache cannot be told from any other dict, and is
+not guarded.
 """
 
 from __future__ import annotations
 
+import functools
+import gc
 import sys
+import warnings
+import weakref
 from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
 
 from torch import nn
 
-__all__ = ["model_caches", "caches_kept", "clear_filled_caches"]
+__all__ = ["model_caches", "process_caches", "caches_kept"]
+
+_LRU = type(functools.lru_cache(maxsize=1)(lambda: None))
+_SCANNED: dict[str, Any] = {"modules": None, "refs": []}
 
 
 def _is_cache(value: Any) -> bool:
@@ -47,38 +65,47 @@ def _caches_in(value: Any, found: dict[int, Any], depth: int = 2) -> None:
 
 def model_caches(model: nn.Module) -> list[Any]:
     """The ``lru_cache``-style caches (anything with ``cache_info`` and ``cache_clear``) in the classes of
-    ``model``'s modules and in the module globals those classes are defined in; torch's own are left out."""
+    ``model``'s modules, on those modules themselves, and in the module globals those classes are defined in;
+    torch's own classes are left out."""
     found: dict[int, Any] = {}
-    classes = {c for m in model.modules() for c in type(m).__mro__}
-    places = [vars(c) for c in classes if not c.__module__.startswith(("torch.", "builtins"))]
-    names = {c.__module__ for c in classes if not c.__module__.startswith(("torch.", "builtins"))}
-    places += [vars(sys.modules[n]) for n in names if n in sys.modules]
-    for place in places:
-        for value in list(place.values()):
-            try:
-                _caches_in(value, found)
-            except Exception:  # an attribute that cannot be looked at (a lazy module proxy): not a cache of ours
-                continue
+    mods = list(model.modules())
+    classes = {c for m in mods for c in type(m).__mro__ if not c.__module__.startswith(("torch.", "builtins"))}
+    places = [vars(c) for c in classes] + [m.__dict__ for m in mods]
+    places += [vars(sys.modules[n]) for n in {c.__module__ for c in classes} if n in sys.modules]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # a deprecated alias warns when it is looked at
+        for place in places:
+            for value in list(place.values()):
+                try:
+                    _caches_in(value, found)
+                except Exception:  # an attribute that cannot be looked at (a lazy module proxy): not a cache
+                    continue
     return list(found.values())
 
 
+def process_caches() -> list[Any]:
+    """Every ``functools.lru_cache`` the garbage collector tracks, found once and again after imports."""
+    if _SCANNED["modules"] != sys.modules.keys():
+        # type(), not isinstance(): an object that answers for its __class__ (a deprecated alias) is not asked
+        _SCANNED["refs"] = [weakref.ref(o) for o in gc.get_objects() if type(o) is _LRU]
+        _SCANNED["modules"] = set(sys.modules)
+    return [c for c in (r() for r in _SCANNED["refs"]) if c is not None]
+
+
 @contextmanager
-def caches_kept(model: nn.Module) -> Iterator[None]:
-    """Run a pass on meta or fake tensors; afterwards clear each of :func:`model_caches` that computed a new entry
-    during it (a miss), so that no later real call is handed a tensor without data."""
-    caches = model_caches(model)
-    before = [c.cache_info().misses for c in caches]
+def caches_kept(model: nn.Module | None = None) -> Iterator[dict[str, Any]]:
+    """Guard a pass on meta or fake tensors (see the module docstring). Yields a dict whose ``"model"`` a block
+    that builds the model sets, so that the caches near it are looked at afterwards too."""
+    known = {id(c): c for c in [*process_caches(), *(model_caches(model) if model is not None else [])]}
+    misses = {k: c.cache_info().misses for k, c in known.items()}
+    holder: dict[str, Any] = {"model": model}
     try:
-        yield
+        yield holder
     finally:
-        for cache, misses in zip(caches, before):
-            if cache.cache_info().misses != misses:
+        for k, cache in known.items():
+            if cache.cache_info().misses != misses[k]:
                 cache.cache_clear()
-
-
-def clear_filled_caches(model: nn.Module) -> None:
-    """Empty every one of :func:`model_caches` that holds an entry (after ``model`` was built on the meta device,
-    where an entry made then holds tensors without data); a cleared cache only computes again."""
-    for cache in model_caches(model):
-        if cache.cache_info().currsize:
-            cache.cache_clear()
+        if holder["model"] is not None:
+            for cache in model_caches(holder["model"]):
+                if id(cache) not in known and cache.cache_info().currsize:
+                    cache.cache_clear()

@@ -25,7 +25,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .caches import clear_filled_caches
+from .caches import caches_kept
 from .copies import rng_kept, tree_copy
 from .folders import folder_kind
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256, write_safetensors
@@ -170,9 +170,10 @@ def _empty_base(info: SpliceInfo, trust_code: bool = False) -> nn.Module | None:
         return None
     _check_base_spec(info, trust_code)  # refused specs are refused, not left to the slow path
     try:
-        with _META, initialisers_skipped():
+        # what library code caches while the model is built on meta holds no data: cleared afterwards
+        with caches_kept() as kept, _META, initialisers_skipped():
             model, _ = build_model(info.spec, info.kwargs, origin=_origin(info), trust_code=trust_code)
-        clear_filled_caches(model)  # what library code cached while the model was built on meta holds no data
+            kept["model"] = model
         return materialise_lazy_(model, info.input_shapes, info.spec)
     except Exception:  # any failure here only means "build it the slow way"
         return None

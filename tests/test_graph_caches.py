@@ -10,7 +10,7 @@ import torch
 from torch import nn
 
 import splice
-from splice.caches import clear_filled_caches, model_caches
+from splice.caches import caches_kept, model_caches
 
 
 @functools.lru_cache(maxsize=4)
@@ -90,6 +90,44 @@ def test_a_model_built_on_the_meta_device_leaves_no_meta_tensor_in_a_cache(tmp_p
     _ramp.cache_clear()
     splice.load(folder, trust_code=True)  # built empty on the meta device, then filled from its weights
     assert _ramp(8).device.type == "cpu"
-    model = _BuiltFromCache()
-    clear_filled_caches(model)
+    with caches_kept() as kept:  # a cache hit while the block runs is left as it is (it holds a real tensor)
+        kept["model"] = _BuiltFromCache()
+    assert _ramp.cache_info().currsize == 1
+    _ramp.cache_clear()
+    with caches_kept() as kept:  # one the block fills is emptied after it
+        kept["model"] = _BuiltFromCache()
     assert _ramp.cache_info().currsize == 0
+
+
+def test_caches_reached_through_another_module_or_kept_on_the_instance_are_guarded_too(monkeypatch):
+    import sys
+    import types
+
+    util = types.ModuleType("splice_test_position_util")  # a helper module the model's own module never names
+    exec("import functools, torch\n"
+         "@functools.lru_cache(maxsize=4)\n"
+         "def index(n):\n    return torch.arange(n) % 3\n", util.__dict__)
+    monkeypatch.setitem(sys.modules, util.__name__, util)
+
+    class Indexed(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.table = nn.Parameter(torch.randn(3))
+            self.own = functools.lru_cache(maxsize=4)(lambda n: torch.arange(n) % 2)  # a cache on the instance
+
+        def forward(self, x):
+            rows = [r for r in x]  # iterating over the batch: fx cannot trace it, the listing runs on meta
+            x = torch.stack(rows)
+            n = x.shape[-1]
+            return x.mean((1, 2)) + self.table[sys.modules[util.__name__].index(n)] + self.own(n).float()
+
+    torch.manual_seed(0)
+    model = Indexed().eval()
+    x = torch.rand(2, 1, 8, 8)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        splice.points(model, input_shape=(1, 8, 8))
+    assert util.index(8).device.type == "cpu" and model.own(8).device.type == "cpu"
+    expected = x.mean((1, 2)) + model.table[torch.arange(8) % 3] + (torch.arange(8) % 2).float()
+    with torch.no_grad():
+        assert torch.equal(model(x), expected)

@@ -31,7 +31,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from ..caches import clear_filled_caches
+from ..caches import caches_kept
 from ..errors import NormalisationWarning, SourceError, SpliceWarning, WeightsError, first_line
 from ..fileio import read_json
 from .specs import per_channel, positive_int
@@ -412,10 +412,13 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
     try:
         # wrong shapes are read from the loading info and refused below by name (transformers' own refusal
         # points at a report it prints, which is silenced)
-        loaded, info = type(model).from_pretrained(
-            str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
-            output_loading_info=True, ignore_mismatched_sizes=True, weights_only=not trust_pickle, dtype=dtype,
-            use_kernels=False)
+        # transformers builds the model on the meta device before it reads the weights
+        with caches_kept() as kept:
+            loaded, info = type(model).from_pretrained(
+                str(folder), config=model.config, local_files_only=True, trust_remote_code=False,
+                output_loading_info=True, ignore_mismatched_sizes=True, weights_only=not trust_pickle, dtype=dtype,
+                use_kernels=False)
+            kept["model"] = loaded
     except pickle.UnpicklingError as exc:
         raise unsafe_checkpoint(folder, exc, "model.save_pretrained(folder), which writes safetensors") from None
     except Exception as exc:
@@ -426,7 +429,6 @@ def read_hf_weights(folder: Path, model, *, allow_partial: bool = False,
         transformers.logging.set_verbosity(verbosity)
         if bars:
             transformers.logging.enable_progress_bar()
-    clear_filled_caches(loaded)  # transformers builds the model on the meta device before it reads the weights
     mismatched = sorted((m[0], tuple(m[1]), tuple(m[2])) for m in info.get("mismatched_keys") or ()
                         if isinstance(m, (tuple, list)) and len(m) == 3)
     _refuse_unfitting(folder, model, sorted(info.get("unexpected_keys") or ()), mismatched, allow_partial)

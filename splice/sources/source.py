@@ -11,7 +11,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..caches import clear_filled_caches
+from ..caches import caches_kept
 from ..errors import NormalisationWarning, RandomWeightsWarning, SourceError, SpliceWarning
 from ..fileio import state_dict_sha256
 from .builders import absolute_spec, build_model, code_sha256, uncompiled
@@ -192,12 +192,12 @@ def _build(spec: str, kw: dict, *, origin, trust_code: bool, empty: bool):
     if not empty:
         return build_model(spec, kw, origin=origin, trust_code=trust_code)
     try:
-        with torch.device("meta"), initialisers_skipped():
-            model = build_model(spec, kw, origin=origin, trust_code=trust_code)
+        # what library code caches while the model is built on meta holds no data: cleared afterwards
+        with caches_kept() as kept, torch.device("meta"), initialisers_skipped():
+            kept["model"] = build_model(spec, kw, origin=origin, trust_code=trust_code)
     except Exception:  # noqa: BLE001 - a model that computes with its tensors while it is built: for real
         return build_model(spec, kw, origin=origin, trust_code=trust_code)
-    clear_filled_caches(model)  # what library code cached while the model was built on meta holds no data
-    return model
+    return kept["model"]
 
 
 def _refuse_unspliceable(model: nn.Module, what: str) -> None:
