@@ -14,7 +14,7 @@ import torch
 from torch import nn
 
 from ..compare import logits_or_refuse
-from ..copies import modes_kept, tree_copy
+from ..copies import modes_kept, rng_kept, tree_copy
 from ..fileio import state_dict_sha256
 from ..graph.shapes import input_dtype
 from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
@@ -183,7 +183,7 @@ def refuse_train_mode_output(net: nn.Module, input_shape, rec: Recipe, device) -
         return
     twin = tree_copy(net)
     try:
-        with torch.no_grad():
+        with torch.no_grad(), rng_kept():  # a dropout's draws here must not move the run's
             out = twin.train()(torch.zeros((2, *input_shape), device=device, dtype=input_dtype(net)))
     except Exception:  # noqa: BLE001 - a model that cannot run on zeros in train mode is reported by the loop
         return
