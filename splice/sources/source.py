@@ -194,10 +194,11 @@ def _build(spec: str, kw: dict, *, origin, trust_code: bool, empty: bool):
     try:
         # what library code caches while the model is built on meta holds no data: cleared afterwards
         with caches_kept() as kept, torch.device("meta"), initialisers_skipped():
-            kept["model"] = build_model(spec, kw, origin=origin, trust_code=trust_code)
+            built = build_model(spec, kw, origin=origin, trust_code=trust_code)  # (model, its record)
+            kept["model"] = built[0]
     except Exception:  # noqa: BLE001 - a model that computes with its tensors while it is built: for real
         return build_model(spec, kw, origin=origin, trust_code=trust_code)
-    return kept["model"]
+    return built
 
 
 def _refuse_unspliceable(model: nn.Module, what: str) -> None:
