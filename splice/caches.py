@@ -15,9 +15,10 @@ anything (one made during the pass: a module imported by a spec being built,
 a cache kept on a module instance). A cleared cache only computes again, with
 real tensors, at its next real call.
 
-The caches it knows of are every ``lru_cache`` the garbage collector tracks
-(found once per process and again whenever the loaded modules changed; about
-50 ms with torch, timm and transformers loaded), and :func:`model_caches`:
+The caches it knows of are every ``lru_cache`` the garbage collector tracks,
+except Python's, torch's and NumPy's own (found once per process and again
+whenever the loaded modules change; about 60 ms with torch, timm and
+transformers loaded), and :func:`model_caches`:
 anything with ``cache_info`` and ``cache_clear`` in the classes of the
 model's modules, their instances and the globals of the modules that define
 them. A plain dict used as a cache cannot be told from any other dict, and is
@@ -83,11 +84,19 @@ def model_caches(model: nn.Module) -> list[Any]:
     return list(found.values())
 
 
+def _library_cache(cache: Any) -> bool:
+    """Not one of Python's own, torch's or NumPy's (their caches hold no model tensors, and some hand out objects
+    later compared by identity, which clearing them would break)."""
+    top = (getattr(getattr(cache, "__wrapped__", None), "__module__", None) or "").split(".")[0]
+    return bool(top) and top not in sys.stdlib_module_names and top not in ("torch", "numpy", "builtins")
+
+
 def process_caches() -> list[Any]:
-    """Every ``functools.lru_cache`` the garbage collector tracks, found once and again after imports."""
+    """Every ``functools.lru_cache`` of a library (:func:`_library_cache`) the garbage collector tracks, found once
+    and again when the loaded modules change."""
     if _SCANNED["modules"] != sys.modules.keys():
         # type(), not isinstance(): an object that answers for its __class__ (a deprecated alias) is not asked
-        _SCANNED["refs"] = [weakref.ref(o) for o in gc.get_objects() if type(o) is _LRU]
+        _SCANNED["refs"] = [weakref.ref(o) for o in gc.get_objects() if type(o) is _LRU and _library_cache(o)]
         _SCANNED["modules"] = set(sys.modules)
     return [c for c in (r() for r in _SCANNED["refs"]) if c is not None]
 
