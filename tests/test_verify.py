@@ -363,8 +363,16 @@ def test_a_splice_that_froze_a_value_read_from_an_updated_buffer_fails_buffers(m
     assert "answer differently" in report["buffers"].detail and "--leaf" in report["buffers"].detail
 
 
-def test_nearest_sampler_fails_gradients(tray_source, tmp_path):
+def test_a_nearest_sampler_is_a_warning_in_verify_and_refused_by_tune(tray_source, tmp_path):
+    # a nearest warp is piecewise constant in its grid: no gradient reaches its head, by design, not by a fault in
+    # the splice; verify passes it with a warning (every splice made with --sampler nearest failed), tune refuses it
+    from splice.errors import RecipeError
+    from splice.training import RunOptions, tune
+
     spliced = insert(tray_source, at="pool2", warp=WarpConfig(sampler="nearest"))
-    report = verify(store.save(spliced, tmp_path / "nearest"))
-    assert report.failed == ["gradients"]
-    assert "'nearest' sampler passes no gradient" in report["gradients"].detail
+    folder = store.save(spliced, tmp_path / "nearest")
+    report = verify(folder)
+    assert report.passed, report.failed
+    assert "warp pool2 samples with 'nearest', which passes no gradient" in report["gradients"].warning
+    with pytest.raises(RecipeError, match=r"the warp at pool2 samples with 'nearest'.*--sampler bilinear"):
+        tune(folder, recipe="warp-only", data="digits", out=tmp_path / "run", run_options=RunOptions(progress=False))

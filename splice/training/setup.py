@@ -144,6 +144,12 @@ def load_model(req: Request, where: str):
             "--out SPLICED', then tune SPLICED (Python: splice.insert(model, at='input', warp='affine'), then "
             "tune what it returns)"
         )
+    nearest = [n for n, w in warps.items() if getattr(w.config, "sampler", None) == "nearest"]
+    if rec.uses_warps and nearest:
+        raise RecipeError(
+            f"{where} trains warps, but the warp at {', '.join(nearest)} samples with 'nearest', which passes no "
+            "gradient to its grid, so it cannot learn; splice again with --sampler bilinear (or bicubic) and tune that"
+        )
     if not rec.uses_warps and warps:
         raise RecipeError(
             f"{where} ({rec.mode}) trains plain models, but {describe(model)} holds warps at "

@@ -36,20 +36,26 @@ def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: 
             "with a zero-initialised final layer), so the warps get none either; train or load the base first",
             "output independent of the input",
             warning="the outputs do not depend on the input: the warps cannot be checked for gradients")
-    problems = []
+    problems, frozen = [], []
     for name, g in grads.items():
         if not g["finite"]:
             problems.append(f"warp {name!r} gets NaN/Inf gradients")
         elif g["final_weight"] == 0.0 or g["final_bias"] == 0.0:
-            sampler = getattr(getattr(warps[name], "config", None), "sampler", None)
-            why = (" — the 'nearest' sampler passes no gradient to its grid, so this warp cannot be trained; "
-                   "use bilinear or bicubic") if sampler == "nearest" else (
-                   " — the warp does not influence the outputs, or its head is cut off from the loss")
-            problems.append(f"warp {name!r}'s final layer gets a zero gradient "
-                            f"(weight {g['final_weight']:.3g}, bias {g['final_bias']:.3g}){why}")
+            if getattr(getattr(warps[name], "config", None), "sampler", None) == "nearest":
+                frozen.append(name)  # by design: a nearest sampler is piecewise constant in its grid
+                continue
+            problems.append(f"the final layer of warp {name!r} gets a zero gradient (weight {g['final_weight']:.3g}, "
+                            f"bias {g['final_bias']:.3g}) — the warp does not influence the outputs, or its head is "
+                            "cut off from the loss")
     summary = ", ".join(f"{n} {g['final_bias']:.3g}" for n, g in grads.items())
     if problems:
         return CheckResult("gradients", False, numbers, "; ".join(problems), f"|grad| final bias: {summary}")
+    if frozen:
+        text = (f"warp{'' if len(frozen) == 1 else 's'} {listed_names(frozen)} sample{'s' if len(frozen) == 1 else ''} "
+                "with 'nearest', which passes no "
+                "gradient to the grid: such a warp is fixed as it is (tune refuses it); splice with --sampler "
+                "bilinear or bicubic to train one")
+        return CheckResult("gradients", True, numbers, text, f"|grad| final bias: {summary}", warning=text)
     upstream = [n for n, g in grads.items() if g["upstream"] == 0.0]
     note = (f"; earlier head layers of {listed_names(upstream)} get exactly 0, as they must at the identity "
             "(the gradient flows through the zero final weight)") if upstream else ""
