@@ -53,6 +53,7 @@ while its model file differs from ``source.code_sha256`` is told, with a warning
 from __future__ import annotations
 
 import dataclasses
+import json
 import os
 import warnings
 from collections.abc import Mapping, Sequence
@@ -67,6 +68,9 @@ from .sources import MODULE_SPEC, code_change
 from .warps import WarpConfig
 
 __all__ = [
+    "POINTS_KEY",
+    "points_sha256",
+    "points_written",
     "SCHEMA_VERSION",
     "SCHEMA_VERSIONS",
     "MECHANISMS",
@@ -363,3 +367,26 @@ def copy_model(model):
     if info is not None:
         attach_info(twin, info)
     return twin
+
+
+#: the safetensors metadata key that holds :func:`points_sha256` of the points a folder's weights were written with
+POINTS_KEY = "splice_points_sha256"
+
+
+def points_sha256(points) -> str:
+    """sha256 of a manifest's ``points`` list in canonical JSON (sorted keys, no spaces)."""
+    import hashlib
+
+    return hashlib.sha256(json.dumps(points, sort_keys=True, separators=(",", ":")).encode("utf-8")).hexdigest()
+
+
+def points_written(weights_file) -> str | None:
+    """The points hash a folder's weights file was written with (``None``: a folder written before it was kept,
+    or a file whose header cannot be read)."""
+    try:
+        from safetensors import safe_open
+
+        with safe_open(str(weights_file), framework="pt") as f:
+            return (f.metadata() or {}).get(POINTS_KEY)
+    except Exception:  # noqa: BLE001 - an unreadable header is the integrity row's finding, not this one's
+        return None

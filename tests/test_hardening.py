@@ -213,7 +213,7 @@ def _cases():
                                         "--out", f("r7")], "splice insert"),
         ("unknown data", ["eval", TRAY, "--data", "digitz"], "digits"),
         # the trust issue: internal errors that became messages, limits checked before work, OS errors
-        ("point the model lacks", ["verify", f("nopoint")], "block9_relu"),
+        ("point the model lacks", ["points", f("nopoint")], "block9_relu"),  # verify: its integrity row fails
         ("int8 tensors in a folder", ["points", f("int8")], "int8"),
         ("folder naming itself", ["verify", f("loop")], "--trust-code"),
         ("folder naming itself, trusted", ["verify", f("loop"), "--trust-code"], "names a folder"),

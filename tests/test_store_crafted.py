@@ -51,3 +51,22 @@ def test_a_build_that_cannot_allocate_is_one_line(spec):
     with pytest.raises(SourceError, match=rf"building {spec} ran out of memory \(.*allocate.*\); its builder "
                                           r"arguments .* ask for a larger model than this machine holds"):
         load_source(spec, kwargs={"num_classes": 10**13}, warn_random=False)
+
+
+def test_an_edited_warp_config_in_splice_json_fails_verify_integrity(tmp_path):
+    # a tuned folder whose padding or frame was edited by hand computes something else with the same weights; the
+    # weights file holds the hash of the points it was written with
+    import json as _json
+
+    import splice
+    from splice.manifest import MANIFEST_NAME
+    from splice.verification import verify
+
+    folder = splice.save(splice.insert("splice.models:tray_net", at="input", warp="similarity"), tmp_path / "sp")
+    assert verify(folder)["integrity"].passed
+    data = _json.loads((folder / MANIFEST_NAME).read_text())
+    data["points"][0]["warp"]["padding"] = "border"
+    (folder / MANIFEST_NAME).write_text(_json.dumps(data, indent=2))
+    report = verify(folder)
+    assert report.failed == ["integrity"]
+    assert "splice.json was edited after saving" in report["integrity"].detail
