@@ -19,6 +19,17 @@ def _fixed_seed():
 
 
 @pytest.fixture(scope="module")
+def one_thread():
+    """One intra-op thread for a module's tests (``pytestmark = pytest.mark.usefixtures("one_thread")``): their
+    models are too small to gain from more, and spinning OpenMP threads make timings erratic on a busy 2-core
+    machine. The count comes back afterwards."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+@pytest.fixture(scope="module")
 def tray_folder(tmp_path_factory):
     """A small tray net (width 4) spliced at pool2 and saved: the folder the export tests export."""
     import splice

@@ -36,12 +36,7 @@ SHAPE = (1, 24, 24)
 QUIET = RunOptions(progress=False)
 
 
-@pytest.fixture(scope="module", autouse=True)
-def _one_thread():
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")  # see conftest.py
 
 
 def _tiny(name: str = "label-free", **site) -> Recipe:

@@ -19,12 +19,7 @@ from splice.verification import verify_models
 SHAPE = (1, 16, 16)
 
 
-@pytest.fixture(scope="module", autouse=True)
-def _one_thread():
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")  # see conftest.py
 
 
 def _pruned() -> nn.Module:

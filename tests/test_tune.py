@@ -28,14 +28,7 @@ SHAPE = (1, 24, 24)
 QUIET = {"progress": False}
 
 
-@pytest.fixture(scope="module", autouse=True)
-def _one_thread():
-    """One intra-op thread: these models are too small to gain from more, and spinning
-    OpenMP threads make timings erratic on a busy 2-core machine."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")  # see conftest.py
 
 
 def _recipe(name: str, **changes):

@@ -69,12 +69,7 @@ factory.input_shape = (1, 24, 24)
 '''
 
 
-@pytest.fixture(scope="module", autouse=True)
-def _one_thread():
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")  # see conftest.py
 
 
 @pytest.fixture(scope="module")
