@@ -64,24 +64,28 @@ def _caches_in(value: Any, found: dict[int, Any], depth: int = 2) -> None:
                 _caches_in(v, found, depth - 1)
 
 
+def _caches_among(values) -> list[Any]:
+    """The caches :func:`_caches_in` finds among ``values`` (an attribute that cannot be looked at is skipped)."""
+    found: dict[int, Any] = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # a deprecated alias warns when it is looked at
+        for value in values:
+            try:
+                _caches_in(value, found)
+            except Exception:  # noqa: BLE001 - a lazy module proxy and the like: not a cache
+                continue
+    return list(found.values())
+
+
 def model_caches(model: nn.Module) -> list[Any]:
     """The ``lru_cache``-style caches (anything with ``cache_info`` and ``cache_clear``) in the classes of
     ``model``'s modules, on those modules themselves, and in the module globals those classes are defined in;
     torch's own classes are left out."""
-    found: dict[int, Any] = {}
     mods = list(model.modules())
     classes = {c for m in mods for c in type(m).__mro__ if not c.__module__.startswith(("torch.", "builtins"))}
     places = [vars(c) for c in classes] + [m.__dict__ for m in mods]
     places += [vars(sys.modules[n]) for n in {c.__module__ for c in classes} if n in sys.modules]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # a deprecated alias warns when it is looked at
-        for place in places:
-            for value in list(place.values()):
-                try:
-                    _caches_in(value, found)
-                except Exception:  # an attribute that cannot be looked at (a lazy module proxy): not a cache
-                    continue
-    return list(found.values())
+    return _caches_among(v for place in places for v in list(place.values()))
 
 
 def _library_cache(cache: Any) -> bool:
@@ -92,20 +96,13 @@ def _library_cache(cache: Any) -> bool:
 
 
 def _module_caches(names) -> list[Any]:
-    """The caches in the globals of the modules ``names``, and in the classes those define."""
-    found: dict[int, Any] = {}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # a deprecated alias warns when it is looked at
-        for name in names:
-            module = sys.modules.get(name)
-            values = list(vars(module).values()) if module is not None and hasattr(module, "__dict__") else []
-            values += [v for c in values if isinstance(c, type) and c.__module__ == name for v in vars(c).values()]
-            for value in values:
-                try:
-                    _caches_in(value, found)
-                except Exception:  # an attribute that cannot be looked at (a lazy module proxy): not a cache
-                    continue
-    return [c for c in found.values() if _library_cache(c)]
+    """The library caches in the globals of the modules ``names``, and in the classes those define."""
+    values: list[Any] = []
+    for name in names:
+        module = sys.modules.get(name)
+        here = list(vars(module).values()) if module is not None and hasattr(module, "__dict__") else []
+        values += here + [v for c in here if isinstance(c, type) and c.__module__ == name for v in vars(c).values()]
+    return [c for c in _caches_among(values) if _library_cache(c)]
 
 
 def process_caches() -> list[Any]:
