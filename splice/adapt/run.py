@@ -33,7 +33,8 @@ from ..recipes import recipe_to_toml
 from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
 from ..training.pretrain import execution_order
-from ..training.recording import announce_stop, predicted_classes, resume_command
+from ..training.recording import (announce_stop, base_predictions, predicted_classes, resume_command,
+                                  saved_predictions)
 from ..training.runfolder import RECIPE_FILE, read_metrics, truncate_metrics, write_run_info, writing
 from ..training.state import TuneInterrupted
 from .diagnostics import base_view, site_diagnostics
@@ -165,10 +166,9 @@ def _restore(run: AdaptRun) -> tuple[str, int, int]:
     set_rng_state(ckpt["rng"])
     run.step, run.best, run.metrics_rows = int(ckpt["step"]), dict(ckpt["best"]), int(ckpt["metrics_rows"])
     run.estimate = RangeEstimate.from_dict(ckpt["estimate"]) if ckpt.get("estimate") else None
-    if ckpt.get("reference_start") is not None:
-        run.reference_start = torch.tensor(ckpt["reference_start"], dtype=torch.long)
-    elif run.reference_probe is not None:  # a checkpoint an older splice wrote: the base never changes here
-        run.reference_start = predicted_classes(base_view(run.net, run.warps), run.reference_probe, run.prepare)
+    run.reference_start = saved_predictions(ckpt)
+    if run.reference_start is None and run.reference_probe is not None:  # an older splice's: the base never moves
+        run.reference_start = base_predictions(run.net, run.reference_probe, run.prepare)
     if run.ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     phase, epoch, batch = str(ckpt["phase"]), int(ckpt["epoch"]), int(ckpt["batch"])

@@ -17,7 +17,6 @@ import torch
 
 from ..distort import random_distort
 from ..errors import RecipeError, SpliceError, SpliceWarning, first_line
-from ..surgery import base_view
 from . import batches as _b
 from . import distributed
 from .checkpoint import set_rng_state
@@ -27,7 +26,8 @@ from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer,
     set_modes, \
     set_requires_grad
 from .pretrain import pretrain_warps_
-from .recording import checkpoint, diverged, evaluate_val, finish, predicted_classes, record, stopped
+from .recording import (base_predictions, checkpoint, diverged, evaluate_val, finish, record, saved_predictions,
+                        stopped)
 from .runfolder import truncate_metrics
 from .schedule import lr_factor
 from .setup import reference_images
@@ -122,11 +122,10 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
     start_epoch, start_batch, run.step = int(ckpt["epoch"]), int(ckpt["batch"]), int(ckpt["step"])
     run.best, run.bad_evals = dict(ckpt["best"]), int(ckpt["bad_evals"])
     run.metrics_rows = int(ckpt["metrics_rows"])
-    if ckpt.get("reference_start") is not None:
-        run.reference_start = torch.tensor(ckpt["reference_start"], dtype=torch.long)
-    elif run.warps and run.reference_probe is not None:  # a checkpoint an older splice wrote
+    run.reference_start = saved_predictions(ckpt)
+    if run.reference_start is None and run.warps and run.reference_probe is not None:  # an older splice's
         if all(run.rec.base_frozen(e) for e in range(run.rec.epochs)):  # the base is as it started: read it again
-            run.reference_start = predicted_classes(base_view(run.net), run.reference_probe, run.prepare)
+            run.reference_start = base_predictions(run.net, run.reference_probe, run.prepare)
         else:
             run.bar.line("upright agreement is not recorded for this run: an older splice started it, and the "
                          "base it started from has changed since")
@@ -169,7 +168,7 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     run.bar.line(f"data {run.data}: {len(run.train):,} train and {len(run.val):,} val images{kinds}")
     if resume is None and run.warps and run.reference_probe is not None:
         # what the base (every warp at the identity) predicts for the upright reference
-        run.reference_start = predicted_classes(base_view(run.net), run.reference_probe, run.prepare)
+        run.reference_start = base_predictions(run.net, run.reference_probe, run.prepare)
     if not (run.warps and rec.pretrain.epochs > 0) or run.reference.skipped:
         if run.warps and rec.pretrain.epochs > 0:
             run.bar.line(f"no upright reference for {run.data!r} ([pretrain] if_no_reference = \"skip\"): "

@@ -14,6 +14,7 @@ from ..copies import buffers_kept, modes_kept
 from ..fileio import atomic_write_text, state_dict_sha256
 from ..errors import TrainingDiverged, UprightChangeWarning
 from ..manifest import info_of
+from ..surgery import base_view
 from . import distributed
 from .checkpoint import CHECKPOINT_NAME, rng_state, save_checkpoint
 from .loop import evaluate
@@ -22,8 +23,8 @@ from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, w
 from .state import Run, TuneInterrupted, unwrap
 
 __all__ = ["UPRIGHT_AGREEMENT", "evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
-           "reference_predictions", "predicted_classes", "agreement", "caution_upright", "finish", "nonfinite",
-           "diverged"]
+           "reference_predictions", "predicted_classes", "base_predictions", "saved_predictions", "agreement",
+           "caution_upright", "finish", "nonfinite", "diverged"]
 
 #: below this share of held-out upright reference images keeping the base's predicted class, a warp run warns that
 #: upright accuracy may fall: a rule of thumb, our choice, no source (two points is what a warp should not cost)
@@ -93,6 +94,18 @@ def predicted_classes(model, images: torch.Tensor, prepare) -> torch.Tensor:
         model.eval()
         return torch.cat([logits_or_refuse(model(prepare(chunk)), "the model").argmax(1).cpu()
                           for chunk in images.split(256)])
+
+
+def base_predictions(model, images: torch.Tensor, prepare) -> torch.Tensor:
+    """:func:`predicted_classes` of the base of a spliced ``model``: a copy with every warp reset to the identity
+    (the starting point every run's ``reference_agreement`` is measured from)."""
+    return predicted_classes(base_view(model), images, prepare)
+
+
+def saved_predictions(ckpt: dict) -> torch.Tensor | None:
+    """The base's predictions a checkpoint keeps (``reference_start``; ``None`` in one an older splice wrote)."""
+    kept = ckpt.get("reference_start")
+    return None if kept is None else torch.tensor(kept, dtype=torch.long)
 
 
 def reference_predictions(run: Run) -> torch.Tensor | None:
