@@ -9,6 +9,7 @@ path by path. Imports only torch and :mod:`splice.errors`.
 
 from __future__ import annotations
 
+import collections
 import copy
 import dataclasses
 from collections.abc import Mapping, Sequence
@@ -18,7 +19,7 @@ import torch
 from .errors import DataError
 
 __all__ = ["DEFAULT_TOLERANCES", "flatten_outputs", "compare_outputs", "detached", "tensors_out", "class_logits",
-           "logits_or_refuse", "SUPPORTED_OUTPUTS"]
+           "logits_or_refuse", "map_tensors", "SUPPORTED_OUTPUTS"]
 
 # what the outputs may be, as the refusals of other types say it
 SUPPORTED_OUTPUTS = "a tensor, or tuples, lists, dicts and dataclass instances holding tensors"
@@ -167,25 +168,30 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
             "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail, "compared": compared}
 
 
-def _map_tensors(out, fn):
-    """``out`` with ``fn`` applied to every tensor, containers (named tuples and dataclasses included) kept."""
+def map_tensors(out, fn):
+    """``out`` with ``fn`` applied to every tensor, containers (named tuples and dataclasses included) kept.
+
+    Lists, dicts and tuples come back as new plain (mutable) ones of their type, never fx's immutable ones:
+    a module run on the result may update them in place. Other mappings come back as plain dicts.
+    """
     if isinstance(out, torch.Tensor):
         return fn(out)
     if isinstance(out, Mapping):
-        return {k: _map_tensors(v, fn) for k, v in out.items()}
+        mapped = {k: map_tensors(v, fn) for k, v in out.items()}
+        return collections.OrderedDict(mapped) if type(out) is collections.OrderedDict else mapped
     if isinstance(out, tuple) and hasattr(out, "_fields"):  # a named tuple
-        return type(out)(*(_map_tensors(v, fn) for v in out))
+        return type(out)(*(map_tensors(v, fn) for v in out))
     if isinstance(out, (tuple, list)):
-        return type(out)(_map_tensors(v, fn) for v in out)
+        return type(out)(map_tensors(v, fn) for v in out)
     if is_dataclass_instance(out):  # a shallow copy with each field mapped (no __init__ or __post_init__ run again)
         new = copy.copy(out)
         for f in dataclasses.fields(out):
-            object.__setattr__(new, f.name, _map_tensors(getattr(out, f.name), fn))
+            object.__setattr__(new, f.name, map_tensors(getattr(out, f.name), fn))
         return new
     return out
 
 
 def detached(out):
     """``out`` (a tensor or nested tuple/list/dict/dataclass of them) with every tensor detached, containers kept."""
-    return _map_tensors(out, lambda t: t.detach())
+    return map_tensors(out, lambda t: t.detach())
 

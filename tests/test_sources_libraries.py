@@ -386,6 +386,26 @@ def test_torchvision_backbone_builders_download_nothing(monkeypatch):
         build_model("torchvision:fcn_resnet50", {"weights_backbone": "DEFAULT"})
 
 
+@pytest.mark.parametrize(("name", "kwargs", "side"), [
+    # the sizes torchvision's own weights tables and detector transforms name (read from torchvision itself):
+    # inception_v3's crop is 299, efficientnet_b3's 300; a _320_ detector resizes every image to 320, ssd300 to 300
+    ("inception_v3", {"aux_logits": False, "init_weights": False}, 299),
+    ("efficientnet_b3", {}, 300),
+    ("fasterrcnn_mobilenet_v3_large_320_fpn", {"num_classes": 3}, 320),
+    ("ssd300_vgg16", {"num_classes": 3}, 300),
+    ("fasterrcnn_mobilenet_v3_large_fpn", {"num_classes": 3, "min_size": 512}, 512),  # the builder's argument
+    ("vit_b_16", {"image_size": 160}, 160),  # a transformer built for one size: its own, not a weights table's
+    ("vit_h_14", {}, 224),  # its first weights are at 518, but the model built without them takes 224
+    ("resnet18", {}, 224),
+])
+def test_a_torchvision_model_takes_the_size_it_is_built_for(name, kwargs, side):
+    torchvision = pytest.importorskip("torchvision")
+    _, meta = build_model(f"torchvision:{name}", kwargs)
+    assert meta["input_shape"] == (3, side, side)
+    if name == "vit_h_14":
+        assert torchvision.models.get_model_weights(name).DEFAULT.transforms.keywords["crop_size"] == 518
+
+
 def test_a_bad_weights_index_is_refused(tmp_path):
     (tmp_path / "model.safetensors.index.json").write_text(json.dumps({"weight_map": {"a": "../x.safetensors"}}))
     with pytest.raises(WeightsError, match="is not a shard index"):

@@ -26,9 +26,9 @@ from dataclasses import dataclass
 from typing import Any
 
 import torch
-import torch.fx as fx
 from torch import nn
 
+from ..compare import map_tensors
 from ..copies import private_buffers
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, path_strides, site_name
@@ -183,8 +183,7 @@ def _as_examples(value: Any, model: nn.Module) -> Any:
     """Meta tensors as uninitialised real ones of the same shape and dtype on ``model``'s device (torch.export
     needs real example inputs, but reads only their shapes and dtypes); anything else as it is."""
     device = model_device(model)
-    return fx.node.map_aggregate(value, lambda v: torch.empty(v.shape, dtype=v.dtype, device=device)
-                                 if isinstance(v, torch.Tensor) and v.is_meta else v)
+    return map_tensors(value, lambda v: torch.empty(v.shape, dtype=v.dtype, device=device) if v.is_meta else v)
 
 
 def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:

@@ -26,9 +26,9 @@ import warnings
 from collections.abc import Callable
 
 import torch
-import torch.fx as fx
 from torch import nn
 
+from ..compare import map_tensors
 from ..errors import GraphError
 from .entries import CONV_MODULES, Entry, module_stem
 from .exported import export_entries
@@ -163,7 +163,7 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
 
 def _doubled(value):
     """Every tensor of ``value`` with its batch repeated twice (a batch of 2 from a batch of 1)."""
-    return fx.node.map_aggregate(value, lambda v: torch.cat([v, v]) if isinstance(v, torch.Tensor) and v.dim() else v)
+    return map_tensors(value, lambda v: torch.cat([v, v]) if v.dim() else v)
 
 
 def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule,

@@ -13,9 +13,9 @@ from __future__ import annotations
 from typing import Any
 
 import torch
-import torch.fx as fx
 from torch import nn
 
+from ..compare import map_tensors
 from ..copies import private_buffers
 from ..errors import GraphError, suggest
 from .rules import ShapeRules
@@ -86,7 +86,7 @@ def scope_inputs(model: nn.Module, shapes: tuple, within: str) -> tuple[nn.Modul
             raise GraphError(f"--within {within!r}: running {type(model).__name__} up to that module failed "
                              f"({reason(exc)}); check the input shape(s) {list(shapes)}") from exc
     # meta tensors: the listing runs on the meta device, and whatever needs real ones makes its own
-    return scope, fx.node.map_aggregate(tuple(args), to_meta), fx.node.map_aggregate(dict(kwargs), to_meta)
+    return scope, map_tensors(tuple(args), to_meta), map_tensors(dict(kwargs), to_meta)
 
 
 def _eval_copy(model: nn.Module) -> nn.Module:

@@ -18,6 +18,7 @@ import torch
 import torch.fx as fx
 from torch import nn
 
+from ..compare import map_tensors
 from ..copies import tree_copy
 from ..errors import GraphError
 from .leaves import is_torch_builtin
@@ -245,13 +246,13 @@ def run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
     device = model_device(mod)
 
     def real(v):
-        return torch.zeros(v.shape, dtype=v.dtype, device=device) if isinstance(v, torch.Tensor) else v
+        return torch.zeros(v.shape, dtype=v.dtype, device=device)
 
     with torch.device(device):
         work = tree_copy(mod)
         work.eval()
-        out = work(*fx.node.map_aggregate(args, real), **fx.node.map_aggregate(kwargs, real))
-    return fx.node.map_aggregate(out, to_meta)
+        out = work(*map_tensors(tuple(args), real), **map_tensors(dict(kwargs), real))
+    return map_tensors(out, to_meta)
 
 
 def _run_module(mod: nn.Module, target: str, args: tuple, kwargs: dict, cache: dict[str, nn.Module],

@@ -32,7 +32,7 @@ from .trust import check_spec
 __all__ = ["build_model", "absolute_spec", "code_sha256", "spec_file", "uncompiled", "IMAGENET_NORMALISATION"]
 
 IMAGENET_NORMALISATION = {"mean": [0.485, 0.456, 0.406], "std": [0.229, 0.224, 0.225]}
-_TORCHVISION_DEFAULT_SHAPES = {"inception_v3": (3, 299, 299)}
+_TORCHVISION_SIZE = 224  # torchvision's usual classification crop, for a builder that names no size of its own
 
 
 def _torchvision_builder(name: str):
@@ -203,8 +203,30 @@ def _build_torchvision(attr: str, kwargs: dict):
     except TypeError as exc:
         shown = {k: v for k, v in kwargs.items() if k not in ("weights", "weights_backbone")}
         raise SourceError(f"torchvision:{attr} does not accept --kwargs {shown}: {exc}") from None
-    return model, {"input_shape": _TORCHVISION_DEFAULT_SHAPES.get(attr, (3, 224, 224)),
-                   "normalisation": IMAGENET_NORMALISATION}
+    return model, {"input_shape": (3, *[_torchvision_size(attr, model)] * 2), "normalisation": IMAGENET_NORMALISATION}
+
+
+def _torchvision_size(name: str, model) -> int:
+    """The side a torchvision model is built for, as it names it (nothing downloaded, nothing run).
+
+    In order: the model's own ``image_size`` (a transformer built for one size, whichever weights exist); the size
+    a detector's transform resizes every image to (``min_size``, 320 for a ``_320_`` one); the crop of the
+    classification transform its first weights name (299 for inception_v3); else 224.
+    """
+    import torchvision.models as tvm
+
+    own = getattr(model, "image_size", None)
+    if isinstance(own, int) and own > 0:
+        return own
+    sizes = getattr(getattr(model, "transform", None), "min_size", None)
+    if isinstance(sizes, (tuple, list)) and sizes and all(isinstance(v, int) and v > 0 for v in sizes):
+        return max(sizes)
+    try:
+        first = next(iter(tvm.get_model_weights(name)), None)
+    except (ValueError, KeyError):  # a builder without registered weights
+        first = None
+    crop = getattr(getattr(first, "transforms", None), "keywords", {}).get("crop_size")
+    return crop if isinstance(crop, int) and crop > 0 else _TORCHVISION_SIZE
 
 
 def build_model(spec: str, kwargs: Mapping | None = None, *, origin: str | os.PathLike | None = None,
