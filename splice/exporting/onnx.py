@@ -290,6 +290,27 @@ def torchscript(target: nn.Module, args: tuple, inputs: list[str], names: list[s
                           output_names=names, dynamic_axes=axes, do_constant_folding=fold_constants)
     return buf.getvalue()
 
+def parametrizations_baked(twin: nn.Module) -> nn.Module:
+    """``twin`` (a :func:`~splice.copies.private_buffers` twin, which owns its module mappings) with every
+    parametrized tensor (torch's ``spectral_norm``, ``weight_norm``, ``orthogonal``, a user's own) replaced by the
+    value it computes now, in eval mode: the exporters then see a plain weight, not the steps that make it (spectral
+    norm's ``vdot`` has no ONNX form at opset 17). The originals, which the twin shares with the caller, are only
+    read. An export holds the weights as they are anyway; this holds the same values."""
+    from torch.nn.utils import parametrize
+
+    twin.eval()
+    for module in list(twin.modules()):
+        if not parametrize.is_parametrized(module):
+            continue
+        with torch.no_grad():
+            values = {name: getattr(module, name).detach() for name in module.parametrizations.keys()}
+        module.__class__ = parametrize.type_before_parametrizations(module)
+        del module._modules["parametrizations"]
+        for name, value in values.items():
+            module._parameters[name] = nn.Parameter(value, requires_grad=False)
+    return twin
+
+
 def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_batch: bool = False,
                       exporter: str = "torchscript", fold_constants: bool = True,
                       n_outputs: int | None = None, weights_as_inputs: bool = False,
@@ -316,7 +337,7 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
     check_opset(opset, exporter)
     if weights_as_inputs and exporter != "torchscript":
         raise SpliceError("weights_as_inputs needs exporter='torchscript'")
-    model = private_buffers(model)  # modes, buffers and Python state of its own: the caller's stay as they are
+    model = parametrizations_baked(private_buffers(model))  # the caller's modes, buffers and state stay as they are
     xs = as_inputs(example)
     inputs = input_names(len(xs))
     with exporting(model, exporter, opset, conversions):
