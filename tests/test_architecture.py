@@ -21,7 +21,7 @@ MAX_LINE_LENGTH = 120  # DEVELOPERS.md and ../shared/STYLE.md
 FLOORS = {
     "errors": 1, "fileio": 1, "folders": 1, "version": 1, "compare": 1, "copies": 1, "progress": 1, "pictures": 1,
     "limits": 1, "caches": 1,
-    "warps": 2, "distort": 2, "data": 2, "imagefiles": 2, "recipes": 2, "models": 2,
+    "warps": 2, "distort": 2, "data": 2, "imagefolder": 2, "imagefiles": 2, "recipes": 2, "models": 2,
     "sources": 3, "graph": 3,
     "schema": 3, "manifest": 4, "surgery": 4, "hooks": 4, "objects": 4,
     "store": 5,

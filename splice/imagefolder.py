@@ -1,0 +1,181 @@
+"""ImageFolder trees: finding a tree's split and class folders, and one split read lazily.
+
+A tree is ``DIR/train/<class>/*``, ``DIR/val/<class>/*``, optionally
+``DIR/test/<class>/*``. Every image file anywhere under a class folder belongs
+to that class; which files count and how each is read is
+:mod:`splice.imagefiles`. The class folders of the split being opened must be
+those of ``train`` (names compared after Unicode NFC normalisation); other
+splits are not looked at. Without ``train/`` the class list is the opened
+split's own, and a folder of class folders with no split folder at all is read
+as one ``val`` or ``test`` split.
+"""
+
+from __future__ import annotations
+
+import unicodedata
+from pathlib import Path
+
+import torch
+from torch import Tensor
+from torch.utils.data import Dataset
+
+from .errors import DataError
+from .imagefiles import bad_headers, image_suffixes, list_image_files, read_image, refuse_unreadable
+from .limits import image_pixel_cap, max_image_pixels
+
+__all__ = ["SPLITS", "FOLDER_LAYOUT", "ImageFolderSet", "open_folder"]
+
+SPLITS = ("train", "val", "test")
+FOLDER_LAYOUT = "DIR/train/<class>/*, DIR/val/<class>/*, optionally DIR/test/<class>/*"
+
+
+class ImageFolderSet(Dataset):
+    """One split of an ImageFolder tree, loaded lazily: items are ``(image (C, H, W), label)``."""
+
+    def __init__(self, root: Path, split: str, classes: list[str], samples: list[tuple[Path, int]],
+                 input_shape: tuple[int, int, int], *, folder: Path | None = None) -> None:
+        self.root = root
+        self.split = split
+        self.folder = root / split if folder is None else folder
+        self.name = str(root)
+        self.classes = classes
+        self.samples = samples
+        self.input_shape = input_shape
+        self.reference = None
+        # the pixel cap in force when the split was opened, carried with it (a spawned DataLoader worker does not
+        # inherit the caller's context, where --max-image-pixels sets the cap)
+        self.pixel_cap = max_image_pixels()
+
+    def __len__(self) -> int:
+        return len(self.samples)
+
+    def __getitem__(self, i):
+        path, label = self.samples[i]
+        with image_pixel_cap(self.pixel_cap):
+            return read_image(path, self.input_shape), label
+
+    @property
+    def labels(self) -> Tensor:
+        return torch.tensor([label for _, label in self.samples], dtype=torch.long)
+
+    def check(self) -> None:
+        """Decode every image once; raise one :class:`DataError` naming all that fail."""
+        bad = []
+        for path, _ in self.samples:
+            try:
+                with image_pixel_cap(self.pixel_cap):
+                    read_image(path, self.input_shape)
+            except DataError as exc:
+                bad.append(f"{path} ({exc.__cause__ or exc})")
+        refuse_unreadable(bad, len(self.samples), f"in {self.folder}")
+
+    def bad_headers(self) -> list[str]:
+        """:func:`bad_headers` of this split's images, under the pixel cap it was opened with."""
+        with image_pixel_cap(self.pixel_cap):
+            return bad_headers([path for path, _ in self.samples])
+
+    def __repr__(self) -> str:
+        return (f"ImageFolderSet(root={str(self.root)!r}, split={self.split!r}, "
+                f"classes={len(self.classes)}, images={len(self.samples)})")
+
+
+
+# ---------------------------------------------------------------------------
+# finding splits and classes
+# ---------------------------------------------------------------------------
+
+
+def _visible_dirs(path: Path) -> list[Path]:
+    return sorted((p for p in path.iterdir() if p.is_dir() and not p.name.startswith(".")), key=lambda p: p.name)
+
+
+def _form(name: str) -> str:
+    for form in ("NFC", "NFD"):
+        if unicodedata.is_normalized(form, name):
+            return form
+    return "neither NFC nor NFD"
+
+
+def _class_names(where: Path) -> dict[str, str]:
+    """``{NFC name: folder name}`` of the class folders in ``where`` (a split folder, or a folder of classes)."""
+    names: dict[str, str] = {}
+    for d in _visible_dirs(where):
+        key = unicodedata.normalize("NFC", d.name)
+        if key in names:
+            raise DataError(
+                f"{where} holds two class folders whose names differ only in Unicode normalisation: "
+                f"{names[key]!r} ({_form(names[key])}) and {d.name!r} ({_form(d.name)}), as when a tree is copied "
+                "together from macOS and Linux; merge them into one folder."
+            )
+        names[key] = d.name
+    if not names:
+        loose = list_image_files(where)
+        extra = (f" It holds {len(loose)} image files directly; move them into one subfolder per class."
+                 if loose else "")
+        raise DataError(f"{where} has no class folders; expected {where}/<class>/<image>.{extra}")
+    return names
+
+
+def _class_images(where: Path, names: dict[str, str]) -> dict[str, list[Path]]:
+    """``{NFC name: image files}``: every image anywhere under each class folder; an empty class is refused."""
+    found = {key: list_image_files(where / name) for key, name in names.items()}
+    empty = [names[key] for key, files in found.items() if not files]
+    if empty:
+        raise DataError(
+            f"{where}: {len(empty)} class folder(s) hold no images: {', '.join(empty)}. "
+            f"Add images (suffixes {', '.join(image_suffixes())}) or remove the empty folders."
+        )
+    return found
+
+
+def _check_same_classes(root: Path, split: str, train: dict[str, str], other: dict[str, str]) -> None:
+    missing = sorted(train[k] for k in train.keys() - other.keys())
+    extra = sorted(other[k] for k in other.keys() - train.keys())
+    parts = ([f"{split} lacks {', '.join(missing)}"] if missing else []) + \
+        ([f"{split} has extra {', '.join(extra)}"] if extra else [])
+    if parts:
+        raise DataError(
+            f"class folders differ between train and {split} in {root}: {'; '.join(parts)}. "
+            f"Give {split} the class folders of train."
+        )
+
+
+def _split_folder(root: Path, split: str) -> tuple[Path, bool]:
+    """The folder holding ``split``'s class folders, and whether ``root`` has a ``train`` split beside it.
+
+    A folder without any split folder is one split of class folders: it is read
+    as ``val`` or ``test``, never as ``train`` (training and validating on the
+    same images would go unnoticed).
+    """
+    present = [s for s in SPLITS if (root / s).is_dir()]
+    if split in present:
+        return root / split, "train" in present
+    others = [d.name for d in _visible_dirs(root) if d.name not in SPLITS]
+    found = ", ".join(present + others) or "nothing"
+    if not present and split != "train":
+        return root, False
+    if split in ("train", "val"):
+        alone = " (a folder of class folders alone is read only as a val or test split)" if not present else ""
+        raise DataError(f"{root} has no {split!r} folder (found: {found}); lay it out as {FOLDER_LAYOUT}{alone}.")
+    raise DataError(
+        f"split {split!r} is not available in {root}; available splits: {', '.join(present)}. "
+        f"Add {root / split}/<class>/* or choose one of those."
+    )
+
+
+def open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFolderSet:
+    """One split; its class folders are checked against train's only (tune never reads test, eval may lack train)."""
+    if not root.is_dir():
+        raise DataError(f"{root} is a file, not a folder; give an image folder laid out as {FOLDER_LAYOUT}.")
+    where, has_train = _split_folder(root, split)
+    names = _class_names(where)
+    train = names
+    if has_train and split != "train":
+        train = _class_names(root / "train")
+        _check_same_classes(root, split, train, names)
+    classes = sorted(train)  # NFC names, sorted as such: the same labels whichever way the disk spells them
+    files = _class_images(where, names)
+    samples = [(p, i) for i, name in enumerate(classes) for p in files[name]]
+    return ImageFolderSet(root, split, classes, samples, shape, folder=where)
+
+
