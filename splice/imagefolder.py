@@ -23,7 +23,7 @@ from .errors import DataError
 from .imagefiles import bad_headers, image_suffixes, list_image_files, read_image, refuse_unreadable
 from .limits import image_pixel_cap, max_image_pixels
 
-__all__ = ["SPLITS", "FOLDER_LAYOUT", "ImageFolderSet", "open_folder"]
+__all__ = ["SPLITS", "FOLDER_LAYOUT", "ImageFolderSet", "open_folder", "split_folders"]
 
 SPLITS = ("train", "val", "test")
 FOLDER_LAYOUT = "DIR/train/<class>/*, DIR/val/<class>/*, optionally DIR/test/<class>/*"
@@ -140,20 +140,35 @@ def _check_same_classes(root: Path, split: str, train: dict[str, str], other: di
         )
 
 
-def _split_folder(root: Path, split: str) -> tuple[Path, bool]:
-    """The folder holding ``split``'s class folders, and whether ``root`` has a ``train`` split beside it.
+def split_folders(root: Path) -> dict[str, Path]:
+    """``{split: folder}`` of the split folders in ``root``, matched whatever their case (``Train``, ``VAL``), in
+    the order of :data:`SPLITS`; two folders for one split (``Test`` and ``test``) are refused."""
+    found: dict[str, Path] = {}
+    for d in _visible_dirs(root):
+        split = d.name.lower()
+        if split not in SPLITS:
+            continue
+        if split in found:
+            raise DataError(f"{root} holds two folders for the {split!r} split, {found[split].name!r} and "
+                            f"{d.name!r}, whose names differ only in case; merge them into one folder.")
+        found[split] = d
+    return {s: found[s] for s in SPLITS if s in found}
+
+
+def _split_folder(root: Path, split: str) -> tuple[Path, Path | None]:
+    """The folder holding ``split``'s class folders, and ``root``'s ``train`` folder (``None`` without one).
 
     A folder without any split folder is one split of class folders: it is read
     as ``val`` or ``test``, never as ``train`` (training and validating on the
     same images would go unnoticed).
     """
-    present = [s for s in SPLITS if (root / s).is_dir()]
+    present = split_folders(root)
     if split in present:
-        return root / split, "train" in present
-    others = [d.name for d in _visible_dirs(root) if d.name not in SPLITS]
-    found = ", ".join(present + others) or "nothing"
+        return present[split], present.get("train")
+    others = [d.name for d in _visible_dirs(root) if d.name.lower() not in SPLITS]
+    found = ", ".join([d.name for d in present.values()] + others) or "nothing"
     if not present and split != "train":
-        return root, False
+        return root, None
     if split in ("train", "val"):
         alone = " (a folder of class folders alone is read only as a val or test split)" if not present else ""
         raise DataError(f"{root} has no {split!r} folder (found: {found}); lay it out as {FOLDER_LAYOUT}{alone}.")
@@ -167,11 +182,11 @@ def open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFol
     """One split; its class folders are checked against train's only (tune never reads test, eval may lack train)."""
     if not root.is_dir():
         raise DataError(f"{root} is a file, not a folder; give an image folder laid out as {FOLDER_LAYOUT}.")
-    where, has_train = _split_folder(root, split)
+    where, train_folder = _split_folder(root, split)
     names = _class_names(where)
     train = names
-    if has_train and split != "train":
-        train = _class_names(root / "train")
+    if train_folder is not None and split != "train":
+        train = _class_names(train_folder)
         _check_same_classes(root, split, train, names)
     classes = sorted(train)  # NFC names, sorted as such: the same labels whichever way the disk spells them
     files = _class_images(where, names)

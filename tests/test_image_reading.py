@@ -395,3 +395,22 @@ def test_verify_images_too_many_to_hold_are_refused_before_reading(tmp_path, mon
         read_images(tmp_path / "many", (1, 10, 10), None)
     monkeypatch.setattr("splice.limits.available_bytes", lambda: 2 * 4 * 3 * 10 * 10)
     assert read_images(tmp_path / "many", (1, 10, 10), None)[0].shape == (3, 1, 10, 10)
+
+
+def test_split_folders_are_found_whatever_their_case(tmp_path):
+    from torchvision.datasets import ImageFolder
+
+    root = _tree(tmp_path / "t", {"Train": ("a", "b"), "TEST": ("a", "b"), "Val": ("a", "b")})
+    _grey(root / "TEST" / "b" / "1.png")
+    test = data.open_data(root, "test", input_shape=(1, 6, 6))
+    # torchvision's ImageFolder over the split folder itself is the reference: its classes, labels and files
+    tv = ImageFolder(str(root / "TEST"))
+    assert test.classes == tv.classes == ["a", "b"] and test.folder == root / "TEST"
+    assert [(str(p), label) for p, label in test.samples] == tv.samples
+    assert data.open_data(root, "train", input_shape=(1, 6, 6)).folder == root / "Train"
+    assert len(data.open_data(root, "val", input_shape=(1, 6, 6))) == 2
+    assert _rel(image_files(root), root) == ["Train/a/0.png", "Train/b/0.png"]  # label-free reads Train/ only
+    _grey(root / "test" / "a" / "0.png")
+    with pytest.raises(DataError, match=r"holds two folders for the 'test' split, 'TEST' and 'test', whose names "
+                                        r"differ only in case; merge them into one folder\."):
+        data.open_data(root, "test", input_shape=(1, 6, 6))

@@ -112,12 +112,12 @@ def split_off(images: Images, share: float, generator: torch.Generator) -> tuple
 
 
 def image_files(root: Path) -> list[Path]:
-    """Every image file under ``root`` (:func:`splice.imagefiles.list_image_files`); ``train/`` only if present."""
+    """Every image file under ``root`` (:func:`splice.imagefiles.list_image_files`); ``train/`` only if present
+    (in any case: ``Train/``)."""
     from ..imagefiles import list_image_files
+    from ..imagefolder import split_folders
 
-    if (root / "train").is_dir():
-        root = root / "train"
-    return list_image_files(root)
+    return list_image_files(split_folders(root).get("train", root))
 
 
 def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") -> Images:
