@@ -5,7 +5,8 @@ A tree is ``DIR/train/<class>/*``, ``DIR/val/<class>/*``, optionally
 to that class; which files count and how each is read is
 :mod:`splice.imagefiles`. The class folders of the split being opened must be
 those of ``train`` (names compared after Unicode NFC normalisation); other
-splits are not looked at. Without ``train/`` the class list is the opened
+splits are not looked at. Classes are numbered in the order of train's folder
+names as they are on disk, as torchvision's ``ImageFolder`` numbers them. Without ``train/`` the class list is the opened
 split's own, and a folder of class folders with no split folder at all is read
 as one ``val`` or ``test`` split.
 """
@@ -188,7 +189,9 @@ def open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFol
     if train_folder is not None and split != "train":
         train = _class_names(train_folder)
         _check_same_classes(root, split, train, names)
-    classes = sorted(train)  # NFC names, sorted as such: the same labels whichever way the disk spells them
+    # train's folder names sorted as they are on disk, as torchvision's ImageFolder sorts them; NFC only names
+    # the classes and matches them across splits and against a model's recorded classes
+    classes = sorted(train, key=train.__getitem__)
     files = _class_images(where, names)
     samples = [(p, i) for i, name in enumerate(classes) for p in files[name]]
     return ImageFolderSet(root, split, classes, samples, shape, folder=where)

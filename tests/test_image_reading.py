@@ -288,13 +288,24 @@ def test_class_names_are_compared_after_nfc(tmp_path):
         data.open_data(root, "train", input_shape=(1, 6, 6))
 
 
-def test_a_tree_spelled_nfd_gives_the_labels_of_the_same_tree_spelled_nfc(tmp_path):
-    # sorted as NFD, "éa" (e + combining accent) comes before "f"; as NFC after it: one order for both trees
+def test_classes_are_numbered_as_torchvision_numbers_the_folders_on_disk(tmp_path):
+    from torchvision.datasets import ImageFolder
+
+    # sorted as NFD, "éa" (e + combining accent) comes before "f"; as NFC after it: each tree keeps its disk order
     names = {form: unicodedata.normalize(form, "éa") for form in ("NFC", "NFD")}
-    trees = {form: data.open_data(_tree(tmp_path / form, {"train": (name, "f")}), "train", input_shape=(1, 6, 6))
-             for form, name in names.items()}
-    assert trees["NFC"].classes == trees["NFD"].classes == ["f", names["NFC"]]
-    assert trees["NFC"].labels.tolist() == trees["NFD"].labels.tolist() == [0, 1]
+    for form, name in names.items():
+        root = _tree(tmp_path / form, {"train": (name, "f"), "val": (names["NFC"], "f")})
+        train = data.open_data(root, "train", input_shape=(1, 6, 6))
+        val = data.open_data(root, "val", input_shape=(1, 6, 6))  # spelled NFC: matched to train's NFD by NFC
+        # torchvision's ImageFolder class_to_idx (sorted folder names as stored) is the reference for the labels
+        reference = ImageFolder(str(root / "train")).class_to_idx
+        expected = {unicodedata.normalize("NFC", k): v for k, v in reference.items()}
+        assert {c: i for i, c in enumerate(train.classes)} == expected
+        assert val.classes == train.classes and all(c == unicodedata.normalize("NFC", c) for c in train.classes)
+        labels = sorted((Path(p).parent.name == "f", label) for p, label in val.samples)
+        assert labels == [(False, expected[names["NFC"]]), (True, expected["f"])]
+    assert data.open_data(tmp_path / "NFD", "train", input_shape=(1, 6, 6)).classes == [names["NFC"], "f"]
+    assert data.open_data(tmp_path / "NFC", "train", input_shape=(1, 6, 6)).classes == ["f", names["NFC"]]
     # a model whose record spells its classes the other way still matches, in the same order only
     assert data.same_classes([names["NFD"], "f"], [names["NFC"], "f"])
     assert not data.same_classes(["f", names["NFD"]], [names["NFC"], "f"])
