@@ -27,6 +27,7 @@ __all__ = [
     "DataError",
     "CheckFailed",
     "NormalisationWarning",
+    "DataWarning",
     "UprightChangeWarning",
     "ResourceError",
     "WriteError",
@@ -131,6 +132,11 @@ class RandomWeightsWarning(SpliceWarning):
 
 class UprightChangeWarning(SpliceWarning):
     """A warp run changes the base's predictions on many upright reference images."""
+
+
+class DataWarning(SpliceWarning):
+    """Data that is read, but not quite as it might look: a split without images of some class, a data set name
+    that is also the name of a folder."""
 
 
 class NormalisationWarning(SpliceWarning):

@@ -1,26 +1,30 @@
 """ImageFolder trees: finding a tree's split and class folders, and one split read lazily.
 
 A tree is ``DIR/train/<class>/*``, ``DIR/val/<class>/*``, optionally
-``DIR/test/<class>/*``. Every image file anywhere under a class folder belongs
-to that class; which files count and how each is read is
-:mod:`splice.imagefiles`. The class folders of the split being opened must be
-those of ``train`` (names compared after Unicode NFC normalisation); other
-splits are not looked at. Classes are numbered in the order of train's folder
-names as they are on disk, as torchvision's ``ImageFolder`` numbers them. Without ``train/`` the class list is the opened
-split's own, and a folder of class folders with no split folder at all is read
-as one ``val`` or ``test`` split.
+``DIR/test/<class>/*``; split folders are found whatever their case. Every
+image file anywhere under a class folder belongs to that class; which files
+count and how each is read is :mod:`splice.imagefiles`. The class folders of
+the split being opened must be among those of ``train`` (names compared after
+Unicode NFC normalisation); other splits are not looked at. A split other
+than ``train`` may lack a class, or hold an empty class folder (one
+:class:`DataWarning` names them); ``train`` may not. Classes are numbered in
+the order of train's folder names as they are on disk, as torchvision's
+``ImageFolder`` numbers them. Without ``train/`` the class list is the opened
+split's own, and a folder of class folders with no split folder at all is
+read as one ``val`` or ``test`` split.
 """
 
 from __future__ import annotations
 
 import unicodedata
+import warnings
 from pathlib import Path
 
 import torch
 from torch import Tensor
 from torch.utils.data import Dataset
 
-from .errors import DataError
+from .errors import DataError, DataWarning
 from .imagefiles import bad_headers, image_suffixes, list_image_files, read_image, refuse_unreadable
 from .limits import image_pixel_cap, max_image_pixels
 
@@ -117,11 +121,12 @@ def _class_names(where: Path) -> dict[str, str]:
     return names
 
 
-def _class_images(where: Path, names: dict[str, str]) -> dict[str, list[Path]]:
-    """``{NFC name: image files}``: every image anywhere under each class folder; an empty class is refused."""
+def _class_images(where: Path, names: dict[str, str], split: str) -> dict[str, list[Path]]:
+    """``{NFC name: image files}``: every image anywhere under each class folder; an empty class is refused in
+    ``train`` only (another split is only scored, so an empty folder there just has nothing to score)."""
     found = {key: list_image_files(where / name) for key, name in names.items()}
     empty = [names[key] for key, files in found.items() if not files]
-    if empty:
+    if empty and (split == "train" or len(empty) == len(names)):
         raise DataError(
             f"{where}: {len(empty)} class folder(s) hold no images: {', '.join(empty)}. "
             f"Add images (suffixes {', '.join(image_suffixes())}) or remove the empty folders."
@@ -130,15 +135,23 @@ def _class_images(where: Path, names: dict[str, str]) -> dict[str, list[Path]]:
 
 
 def _check_same_classes(root: Path, split: str, train: dict[str, str], other: dict[str, str]) -> None:
-    missing = sorted(train[k] for k in train.keys() - other.keys())
+    """``split``'s class folders must be among train's: its labels are train's. A class it lacks is allowed."""
     extra = sorted(other[k] for k in other.keys() - train.keys())
-    parts = ([f"{split} lacks {', '.join(missing)}"] if missing else []) + \
-        ([f"{split} has extra {', '.join(extra)}"] if extra else [])
-    if parts:
+    if extra:
         raise DataError(
-            f"class folders differ between train and {split} in {root}: {'; '.join(parts)}. "
-            f"Give {split} the class folders of train."
+            f"class folders differ between train and {split} in {root}: {split} has extra {', '.join(extra)}, "
+            f"which train does not have. Remove them from {split}, or add them to train."
         )
+
+
+def _note_lacking(split: str, where: Path, classes: list[str], files: dict[str, list[Path]]) -> None:
+    """One :class:`DataWarning` naming the classes a split has no images of (missing or empty folders): their
+    labels stay reserved, as torchvision's ``ImageFolder(allow_empty=True)`` keeps them."""
+    lacking = [c for c in classes if not files.get(c)]
+    if lacking:
+        shown = ", ".join(lacking[:10]) + (f" and {len(lacking) - 10} more" if len(lacking) > 10 else "")
+        warnings.warn(f"{split} has no images of {shown} (in {where}); the other classes keep their labels.",
+                      DataWarning, stacklevel=4)
 
 
 def split_folders(root: Path) -> dict[str, Path]:
@@ -192,8 +205,10 @@ def open_folder(root: Path, split: str, shape: tuple[int, int, int]) -> ImageFol
     # train's folder names sorted as they are on disk, as torchvision's ImageFolder sorts them; NFC only names
     # the classes and matches them across splits and against a model's recorded classes
     classes = sorted(train, key=train.__getitem__)
-    files = _class_images(where, names)
-    samples = [(p, i) for i, name in enumerate(classes) for p in files[name]]
+    files = _class_images(where, names, split)
+    if split != "train":
+        _note_lacking(split, where, classes, files)
+    samples = [(p, i) for i, name in enumerate(classes) for p in files.get(name, [])]
     return ImageFolderSet(root, split, classes, samples, shape, folder=where)
 
 

@@ -288,8 +288,8 @@ def test_folder_errors(tmp_path):
     for f in (differ / "val" / "dog").iterdir():
         f.unlink()
     (differ / "val" / "dog").rmdir()
-    with pytest.raises(DataError, match=r"class folders differ between train and val .*: val lacks dog; "
-                                        r"val has extra cow"):
+    with pytest.raises(DataError, match=r"class folders differ between train and val .*: val has extra cow, "
+                                        r"which train does not have\. Remove them from val, or add them to train"):
         data.open_data(str(differ), "val", input_shape=shape)
 
 

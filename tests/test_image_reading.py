@@ -14,7 +14,7 @@ from PIL import Image, features
 
 from splice import data, imagefiles
 from splice.adapt.images import image_files
-from splice.errors import DataError
+from splice.errors import DataError, DataWarning
 from splice.imagefiles import image_suffixes, list_image_files, open_capped, read_image
 from splice.limits import image_pixel_cap
 from splice.verification.probe import read_images
@@ -265,9 +265,8 @@ def test_only_train_and_the_opened_split_are_compared(tmp_path):
     root = _tree(tmp_path / "t", {"train": ("a", "b"), "val": ("a", "b"), "test": ("a",)})
     assert data.open_data(root, "train", input_shape=(1, 6, 6)).classes == ["a", "b"]
     assert len(data.open_data(root, "val", input_shape=(1, 6, 6))) == 2  # what tune reads
-    with pytest.raises(DataError, match=r"class folders differ between train and test in .*: test lacks b\. "
-                                        r"Give test the class folders of train\."):
-        data.open_data(root, "test", input_shape=(1, 6, 6))
+    with pytest.warns(DataWarning, match=r"^test has no images of b \(in .*test\); the other classes keep"):
+        assert data.open_data(root, "test", input_shape=(1, 6, 6)).labels.tolist() == [0]
     placeholder = _tree(tmp_path / "p", {"train": ("a", "b"), "val": ("a", "b"), "test": ()})
     assert data.open_data(placeholder, "val", input_shape=(1, 6, 6)).labels.tolist() == [0, 1]
     with pytest.raises(DataError, match=r"test has no class folders"):
@@ -425,3 +424,24 @@ def test_split_folders_are_found_whatever_their_case(tmp_path):
     with pytest.raises(DataError, match=r"holds two folders for the 'test' split, 'TEST' and 'test', whose names "
                                         r"differ only in case; merge them into one folder\."):
         data.open_data(root, "test", input_shape=(1, 6, 6))
+
+
+def test_a_split_other_than_train_may_lack_a_class_and_keeps_trains_labels(tmp_path):
+    from torchvision.datasets import ImageFolder
+
+    root = _tree(tmp_path / "t", {"train": ("c0", "c1", "c2"), "val": ("c0", "c1", "c2"), "test": ("c0", "c2")})
+    (root / "val" / "c1" / "0.png").unlink()  # val/c1 is an empty folder, test/ has no c1 at all
+    for split in ("val", "test"):
+        with pytest.warns(DataWarning, match=rf"^{split} has no images of c1 \(in .*{split}\); the other classes"):
+            ds = data.open_data(root, split, input_shape=(1, 6, 6))
+        # torchvision's ImageFolder(allow_empty=True) over val/ (all three class folders, c1 empty) is the reference
+        reference = ImageFolder(str(root / "val"), allow_empty=True)
+        assert ds.classes == reference.classes == ["c0", "c1", "c2"]
+        assert ds.labels.tolist() == [label for _, label in reference.samples] == [0, 2]
+    (root / "train" / "c1" / "0.png").unlink()
+    with pytest.raises(DataError, match=r"train: 1 class folder\(s\) hold no images: c1"):  # train must have all
+        data.open_data(root, "train", input_shape=(1, 6, 6))
+    for f in (root / "val").rglob("*.png"):
+        f.unlink()
+    with pytest.raises(DataError, match=r"val: 3 class folder\(s\) hold no images: c0, c1, c2"):
+        data.open_data(root, "val", input_shape=(1, 6, 6))
