@@ -442,7 +442,9 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    with warnings.catch_warnings():  # a Python caller of main() gets its own filters and printer back
+    from .fileio import printable_streams
+
+    with warnings.catch_warnings(), printable_streams():  # a Python caller gets its filters and streams back
         return _run(args)
 
 

@@ -1,11 +1,15 @@
-"""Atomic writes and content hashes.
+"""Atomic writes, content hashes, and names that are not UTF-8.
 
 Everything splice writes goes through these helpers, so an interrupted or
 failed write never leaves a half-written file where a good one used to be.
+A file or class name that is not UTF-8 (Python holds its bytes as surrogate
+escapes) is hashed as its bytes (:func:`name_bytes`) and written, printed
+and drawn as :func:`printable` shows it (``caf\\xe9``).
 """
 
 from __future__ import annotations
 
+import codecs
 import contextlib
 import errno
 import hashlib
@@ -13,6 +17,7 @@ import json
 import math
 import os
 import shutil
+import sys
 import tempfile
 from collections.abc import Iterator, Mapping
 from pathlib import Path
@@ -29,6 +34,9 @@ __all__ = [
     "state_dict_sha256",
     "json_safe",
     "read_json",
+    "printable",
+    "printable_streams",
+    "name_bytes",
 ]
 
 
@@ -117,8 +125,54 @@ def _write_bytes(path: Path, data: bytes) -> Path:
 
 
 def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
-    """Text version of :func:`atomic_write_bytes` (UTF-8)."""
-    return atomic_write_bytes(path, text.encode("utf-8"))
+    """Text version of :func:`atomic_write_bytes` (UTF-8; a name that is not UTF-8 as :func:`printable` shows it)."""
+    return atomic_write_bytes(path, printable(text).encode("utf-8"))
+
+
+def name_bytes(text: str) -> bytes:
+    """``text`` as UTF-8 bytes, where a byte Python could not decode from a file name (a surrogate escape, as
+    ``os.listdir`` gives for a Latin-1 name) is that byte again, as :func:`os.fsencode` gives it on POSIX: the same
+    bytes as ``text.encode()`` for any valid text, so a hash of names does not change for them."""
+    try:
+        return text.encode("utf-8", "surrogateescape")
+    except UnicodeEncodeError:  # a lone surrogate that stands for no byte
+        return text.encode("utf-8", "surrogatepass")
+
+
+def printable(text: str) -> str:
+    """``text`` with the bytes of a file name that is not UTF-8 written as ``\\xe9`` (they are surrogate escapes
+    in Python, which UTF-8 files, terminals and fonts refuse): the one form splice writes, prints and draws. Valid
+    text comes back unchanged."""
+    try:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    except UnicodeEncodeError:  # a lone surrogate that stands for no byte: shown as its code point
+        return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def _printable_errors(exc: UnicodeError):
+    """What a stream cannot encode (a file name that is not UTF-8), written as ``fileio.printable`` shows it."""
+    if not isinstance(exc, UnicodeEncodeError):
+        raise exc
+    return printable(exc.object[exc.start:exc.end]).encode("ascii", "backslashreplace").decode("ascii"), exc.end
+
+
+@contextlib.contextmanager
+def printable_streams():
+    """The CLI's stdout and stderr write names that are not UTF-8 as :func:`printable` shows them, for the
+    command's length (a strict stream would fail on them; an escaping one would show ``\\udce9`` or raw bytes)."""
+    codecs.register_error("splice.printable", _printable_errors)
+    saved = []
+    for stream in (sys.stdout, sys.stderr):
+        errors = getattr(stream, "errors", None)
+        with contextlib.suppress(AttributeError, ValueError, OSError):
+            stream.reconfigure(errors="splice.printable")
+            saved.append((stream, errors))
+    try:
+        yield
+    finally:
+        for stream, errors in saved:
+            with contextlib.suppress(AttributeError, ValueError, OSError):
+                stream.reconfigure(errors=errors)
 
 
 def json_safe(value: object) -> object:

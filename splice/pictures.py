@@ -16,7 +16,7 @@ from pathlib import Path
 import torch
 from torch import Tensor
 
-from .fileio import atomic_write_bytes
+from .fileio import atomic_write_bytes, printable
 from .folders import check_file_target
 
 __all__ = ["DPI", "OKABE_ITO", "FONT_SIZE", "new_figure", "save_png", "check_png_target", "image_array",
@@ -57,7 +57,11 @@ def check_png_target(path: str | os.PathLike, label: str = "picture target") -> 
 
 def save_png(fig, path: str | os.PathLike, label: str = "picture target") -> Path:
     """Render ``fig`` to PNG and write it atomically (:func:`check_png_target` first); returns the path."""
+    from matplotlib.text import Text
+
     check_png_target(path, label)
+    for text in fig.findobj(Text):  # a class or file name that is not UTF-8 drawn as printable() shows it
+        text.set_text(printable(text.get_text()))
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=DPI)
     return atomic_write_bytes(path, buf.getvalue())

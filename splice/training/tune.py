@@ -52,6 +52,7 @@ import torch
 
 from ..data import same_classes
 from ..errors import DataError, RecipeError, SpliceError, TrainingDiverged, first_line
+from ..fileio import name_bytes
 from ..graph.shapes import input_dtype
 from ..options import ModelOptions, split_keywords
 from ..recipes import LABEL_FREE_MODES, Recipe, load_recipe
@@ -334,7 +335,8 @@ def _image_list_sha256(*splits) -> str | None:
     for s in splits:
         for path, label in s.samples:
             size = os.stat(path).st_size if os.path.exists(path) else -1
-            h.update(f"{s.split}\t{Path(path).relative_to(s.root).as_posix()}\t{label}\t{size}\n".encode())
+            # name_bytes: a file name that is not UTF-8 hashed as its bytes; any other as its UTF-8, as always
+            h.update(name_bytes(f"{s.split}\t{Path(path).relative_to(s.root).as_posix()}\t{label}\t{size}\n"))
     return h.hexdigest()
 
 
