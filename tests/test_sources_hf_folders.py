@@ -33,6 +33,8 @@ def folder(tmp_path_factory):
     {"do_rescale": False},
     {"do_rescale": False, "do_normalize": False},
     {"rescale_factor": 1 / 127.5, "image_mean": [1.0, 1.0, 1.0], "image_std": [1.0, 1.0, 1.0]},
+    {"image_mean": 0.5, "image_std": 0.25},  # one number for every channel, saved as such
+    {"image_mean": 1, "image_std": [0.2, 0.25, 0.3]},
 ])
 def test_a_folders_images_are_prepared_as_its_image_processor_prepares_them(folder, settings):
     # reference: transformers' own ViTImageProcessor, on the same 32x32 image (already its size, so not resized)
@@ -46,6 +48,9 @@ def test_a_folders_images_are_prepared_as_its_image_processor_prepares_them(fold
     processor.save_pretrained(folder)
     image = np.random.default_rng(0).integers(0, 256, (32, 32, 3), dtype=np.uint8)
     reference = processor(images=image, return_tensors="pt")["pixel_values"][0]
+    import json
+
+    assert json.loads((folder / "preprocessor_config.json").read_text())["image_std"] == options["image_std"]
     src = load_source(str(folder))
     fed = normalise(torch.from_numpy(image).permute(2, 0, 1).float() / 255, src.normalisation)
     assert src.declares_normalisation and src.input_shape == (3, 32, 32)
@@ -122,6 +127,7 @@ def test_transformers_errors_reach_the_user_without_terminal_codes(folder, monke
     {"include_top": False},
     {"rescale_factor": 1 / 127.5, "rescale_offset": True},  # [-1, 1] pixels
     {"rescale_offset": True, "do_normalize": False},
+    {"image_mean": 0.5, "image_std": 0.25},  # scalars, divided by twice with include_top
 ])
 def test_an_efficientnet_folder_is_prepared_as_its_image_processor_prepares_it(folder, settings):
     # reference: transformers' own EfficientNetImageProcessor (include_top and rescale_offset are its own steps)

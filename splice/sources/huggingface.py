@@ -291,8 +291,17 @@ class HFFolder:
         self.input_shape, self.normalisation, self.declares = input_shape, normalisation, declares
 
 
-def _numbers(value: Any) -> bool:
-    return isinstance(value, list) and bool(value) and all(isinstance(x, (int, float)) for x in value)
+def _numbers(value: Any) -> list[float] | None:
+    """A processor's ``image_mean`` or ``image_std`` as a list: its list of numbers, or one number that stands for
+    every channel (transformers takes ``image_mean=0.5`` and saves it so); ``None`` for anything else."""
+    def number(x: Any) -> bool:
+        return isinstance(x, (int, float)) and not isinstance(x, bool)
+
+    if number(value):
+        return [float(value)]
+    if isinstance(value, list) and value and all(number(x) for x in value):
+        return [float(x) for x in value]
+    return None
 
 
 def _normalisation(pre: Mapping, path: Path) -> tuple[dict | None, bool]:
@@ -310,16 +319,17 @@ def _normalisation(pre: Mapping, path: Path) -> tuple[dict | None, bool]:
     if isinstance(factor, bool) or not isinstance(factor, (int, float)) or not 0 < factor < float("inf"):
         raise SourceError(f"'{path}': rescale_factor {factor!r} is not a positive number; re-save the image "
                           "processor with save_pretrained")
-    mean, std = pre.get("image_mean"), pre.get("image_std")
+    mean, std = _numbers(pre.get("image_mean")), _numbers(pre.get("image_std"))
+    top_std = std
     top = bool(pre.get("include_top"))
     if pre.get("do_normalize", True) is False and not top:
         mean, std = [0.0], [1.0]
-    elif not (_numbers(mean) and _numbers(std)):
+    elif mean is None or std is None:
         return None, False
     elif pre.get("do_normalize", True) is False:  # only include_top's division by the std, below
         mean, std = [0.0] * len(std), [1.0] * len(std)
     if top:
-        std = [float(d) * float(t) for d, t in zip(std, pre["image_std"])]
+        std = [d * t for d, t in zip(std, top_std)]
     offset = 1.0 if pre.get("rescale_offset") and pre.get("do_rescale", True) is not False else 0.0
     scale = 255.0 * float(factor)
     if abs(scale - 1.0) < 1e-6 and not offset and mean == [0.0] and std == [1.0]:
