@@ -41,6 +41,7 @@ from __future__ import annotations
 import functools
 import os
 import unicodedata
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -51,7 +52,7 @@ from torch import Tensor
 from torch.utils.data import Dataset
 
 from . import distort
-from .errors import DataError, suggest
+from .errors import DataError, DataWarning, suggest
 from .imagefiles import IMAGE_SUFFIXES, check_input_shape, load_images, refuse_unreadable
 from .imagefolder import FOLDER_LAYOUT, SPLITS, ImageFolderSet, open_folder
 
@@ -66,6 +67,7 @@ __all__ = [
     "ImageFolderSet",
     "open_data",
     "upright_counterpart",
+    "embedded",
     "digits_split_indices",
     "normalise",
     "load_images",
@@ -77,6 +79,7 @@ DIGITS_SHAPE = (1, 48, 48)
 _SPLIT_SEED = 8_8_1797  # fixed: the digits splits never change
 _SPLIT_FRACTIONS = (0.6, 0.2)  # train, val; test is the rest
 _MOVED = distort.DistortionRange(rotation_deg=60.0, scale=(0.8, 1.2), shift=0.25)
+_SHADOWED: set[str] = set()  # folders a data set name has been said to shadow, in this process
 _DIGIT_FRACTION = 0.5  # the upscaled digit spans half the canvas per axis
 
 
@@ -148,8 +151,9 @@ def open_data(spec: str, split: str = "train", *, input_shape: Sequence[int] | N
     """
     if split not in SPLITS:
         raise DataError(f"unknown split {split!r}{_hint(str(split), SPLITS)} one of {', '.join(SPLITS)}.")
-    shape = None if input_shape is None else check_input_shape(input_shape, 8 if spec in DATASETS else 1)
-    if spec in DATASETS:
+    builtin = embedded(spec)
+    shape = None if input_shape is None else check_input_shape(input_shape, 8 if builtin else 1)
+    if builtin:
         return _open_digits(spec, split, shape or DIGITS_SHAPE, seed)
     path = Path(os.fspath(spec)).expanduser()
     if not path.exists():
@@ -168,6 +172,19 @@ def open_data(spec: str, split: str = "train", *, input_shape: Sequence[int] | N
             "e.g. input_shape=source.input_shape."
         )
     return open_folder(path, split, shape)
+
+
+def embedded(spec) -> bool:
+    """Whether the string ``spec`` names an embedded data set (:data:`DATASETS`). The bare name always does, even
+    when a folder of that name lies in the working directory: one :class:`DataWarning` then says how to read the
+    folder (``./digits``). A path object never names one."""
+    if not isinstance(spec, str) or spec not in DATASETS:
+        return False
+    if os.path.isdir(spec) and os.path.realpath(spec) not in _SHADOWED:
+        _SHADOWED.add(os.path.realpath(spec))  # one line a folder, however many splits a command opens
+        warnings.warn(f"{spec!r} names splice's embedded data set; the folder ./{spec} is not read: pass ./{spec} "
+                      "to read it.", DataWarning, stacklevel=3)
+    return True
 
 
 def _hint(word: str, choices: Sequence[str]) -> str:

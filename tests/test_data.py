@@ -370,3 +370,29 @@ def test_tray_net_is_small_traceable_and_fits_the_digits():
     assert tray_net(num_classes=3, in_channels=3, width=8)(torch.rand(2, 3, 48, 48)).shape == (2, 3)
     with pytest.raises(ValueError, match=r"tray_net width must be a positive integer; got 0"):
         tray_net(width=0)
+
+
+def test_a_folder_named_like_an_embedded_set_is_named_not_read_silently(tmp_path, monkeypatch):
+    from pathlib import Path
+
+    from torchvision.datasets import ImageFolder
+
+    from splice.adapt.images import open_images
+    from splice.errors import DataWarning
+
+    monkeypatch.chdir(tmp_path)
+    _tree(tmp_path / "digits", splits=("train", "val", "test"), n=1)
+    _tree(tmp_path / "digits-moved", splits=("train",), n=1)
+    message = r"^'digits' names splice's embedded data set; the folder \./digits is not read: pass \./digits to read it"
+    with pytest.warns(DataWarning, match=message):
+        embedded = data.open_data("digits", "test")
+        data.open_data("digits", "val")  # one line for the folder, however many splits are opened
+    assert len(embedded) == 360  # the embedded test split (splice.data docstring)
+    for spelled in ("./digits", Path("digits")):
+        folder = data.open_data(spelled, "test", input_shape=(1, 8, 8))
+        # torchvision's ImageFolder over the same split is the reference for what the folder holds
+        assert len(folder) == len(ImageFolder(str(tmp_path / "digits" / "test"))) == 2
+    with pytest.warns(DataWarning, match=r"^'digits-moved' names splice's embedded data set; the folder "
+                                         r"\./digits-moved is not read"):
+        site = open_images("digits-moved", (1, 48, 48))
+    assert len(site) == 1078

@@ -122,13 +122,13 @@ def image_files(root: Path) -> list[Path]:
 
 def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") -> Images:
     """The images of ``spec``: ``digits``, ``digits-moved`` (train split) or a folder; no label is read."""
-    from ..data import DATASETS, open_data
+    from ..data import DATASETS, embedded, open_data
     from ..imagefiles import bad_headers, read_all, refuse_unreadable
 
     if not isinstance(spec, (str, os.PathLike)) or not os.fspath(spec):
         raise DataError(f"the {what} images must be a folder or one of {', '.join(DATASETS)}; got {spec!r}")
     text = os.fspath(spec)
-    if text in DATASETS:
+    if embedded(spec):
         return TensorImages(open_data(text, "train", input_shape=input_shape).images, text)
     root = Path(text).expanduser()
     if not root.is_dir():
