@@ -149,6 +149,10 @@ def check_input_shape(input_shape, min_size: int = 1) -> tuple[int, int, int]:
         exact = all(float(v) == int(v) for v in input_shape)
     except (TypeError, ValueError):
         shape, exact = (), False
+    if len(shape) == 3 and exact and shape[0] > 0 and shape[0] not in (1, 3):
+        raise DataError(f"image files and the embedded digits feed 1- or 3-channel models; this model takes "
+                        f"{shape[0]} (input_shape {input_shape!r}). Build it for 1 or 3 channels (e.g. in_chans=3), "
+                        "or feed it from your own loader.")
     if len(shape) != 3 or not exact or shape[0] not in (1, 3) or min(shape[1:]) < min_size:
         raise DataError(
             f"input_shape must be (C, H, W) with C = 1 or 3 and H, W >= {min_size}; got {input_shape!r}. "

@@ -171,10 +171,19 @@ def test_digits_input_shape_and_channels():
     assert image.shape == (3, 64, 80) and label == ds.labels[3]
 
 
-@pytest.mark.parametrize("shape", [(2, 48, 48), (1, 4, 48), (1, 48), "48x48", (1.5, 48, 48)])
+@pytest.mark.parametrize("shape", [(1, 4, 48), (1, 48), "48x48", (1.5, 48, 48), (0, 48, 48)])
 def test_bad_input_shape(shape):
     with pytest.raises(DataError, match=r"input_shape must be \(C, H, W\) with C = 1 or 3 and H, W >= 8; got"):
         data.open_data("digits", input_shape=shape)
+
+
+@pytest.mark.parametrize("channels", [2, 4])
+def test_a_model_of_other_channels_is_told_what_image_folders_feed(tmp_path, channels):
+    root = _tree(tmp_path / "parts")
+    for spec in (str(root), "digits"):
+        with pytest.raises(DataError, match=rf"^image files and the embedded digits feed 1- or 3-channel models; "
+                                            rf"this model takes {channels} \(input_shape \({channels}, 16, 16\)\)"):
+            data.open_data(spec, input_shape=(channels, 16, 16))
 
 
 def test_unknown_names():
