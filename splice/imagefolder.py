@@ -16,6 +16,7 @@ read as one ``val`` or ``test`` split.
 
 from __future__ import annotations
 
+import os
 import unicodedata
 import warnings
 from pathlib import Path
@@ -91,7 +92,15 @@ class ImageFolderSet(Dataset):
 
 
 def _visible_dirs(path: Path) -> list[Path]:
-    return sorted((p for p in path.iterdir() if p.is_dir() and not p.name.startswith(".")), key=lambda p: p.name)
+    """The folders in ``path`` (links to folders followed), hidden ones skipped; a broken link, which would have
+    dropped a split or class unseen, is refused naming it."""
+    entries = [p for p in path.iterdir() if not p.name.startswith(".")]
+    broken = sorted(p for p in entries if p.is_symlink() and not p.exists())
+    if broken:
+        shown = "; ".join(f"{p} -> {os.readlink(p)}" for p in broken[:5])
+        raise DataError(f"{len(broken)} link(s) in {path} point to nothing, where splice reads split and class "
+                        f"folders: {shown}. Remove the links or restore what they point to.")
+    return sorted((p for p in entries if p.is_dir()), key=lambda p: p.name)
 
 
 def _form(name: str) -> str:

@@ -201,6 +201,24 @@ def test_links_are_followed_and_a_broken_one_is_one_line_everywhere(tmp_path):
     assert len(data.open_data(root, "train", input_shape=(1, 6, 6))) == 4
 
 
+
+def test_a_broken_link_where_a_class_or_split_folder_would_be_is_refused_naming_it(tmp_path):
+    from torchvision.datasets import ImageFolder
+
+    root = _tree(tmp_path / "t", {"train": ("a", "b"), "val": ("a", "b")})
+    os.symlink(tmp_path / "gone", root / "train" / "c")
+    # torchvision's ImageFolder drops such a class without a word (its find_classes keeps entry.is_dir()); splice
+    # would have numbered the classes without it too: it names the link instead
+    assert ImageFolder(str(root / "train")).classes == ["a", "b"]
+    message = r"^1 link\(s\) in .*train point to nothing, where splice reads split and class folders: .*train/c -> "
+    for split in ("train", "val"):
+        with pytest.raises(DataError, match=message + r".*gone\. Remove the links or restore what they point to\."):
+            data.open_data(root, split, input_shape=(1, 6, 6))
+    (root / "train" / "c").unlink()
+    os.symlink(tmp_path / "gone", root / "test")
+    with pytest.raises(DataError, match=r"^1 link\(s\) in .*t point to nothing.*t/test -> .*gone"):
+        data.open_data(root, "val", input_shape=(1, 6, 6))
+
 def test_a_link_back_up_the_tree_is_refused(tmp_path):
     _grey(tmp_path / "site" / "a" / "0.png")
     os.symlink(tmp_path / "site", tmp_path / "site" / "a" / "loop")
