@@ -151,3 +151,25 @@ def test_a_processor_that_flips_channels_is_flagged(folder):
     MobileViTImageProcessor(size={"shortest_edge": 32}, crop_size={"height": 32, "width": 32}).save_pretrained(folder)
     with pytest.warns(NormalisationWarning, match="BGR"):
         load_source(str(folder))
+
+
+@pytest.mark.parametrize("image_size", [None, 40])
+@pytest.mark.parametrize("kind", ["shortest_edge", "crop_size", "height_width"])
+def test_a_folders_input_size_is_what_its_image_processor_makes(tmp_path, kind, image_size):
+    # reference: the processor itself (AutoImageProcessor from the folder), on a 50x70 image, whatever
+    # config.image_size says
+    import numpy as np
+    from transformers import (AutoImageProcessor, ConvNextImageProcessor, ResNetConfig, ResNetForImageClassification,
+                              ViTImageProcessor)
+
+    extra = {} if image_size is None else {"image_size": image_size}
+    ResNetForImageClassification(ResNetConfig(embedding_size=8, hidden_sizes=[8, 8], depths=[1, 1], num_labels=3,
+                                              **extra)).save_pretrained(tmp_path)
+    processor = {"shortest_edge": ConvNextImageProcessor(size={"shortest_edge": 48}, crop_pct=0.875),
+                 "crop_size": ViTImageProcessor(size={"height": 72, "width": 72}, do_center_crop=True,
+                                                crop_size={"height": 64, "width": 56}),
+                 "height_width": ViTImageProcessor(size={"height": 36, "width": 44})}[kind]
+    processor.save_pretrained(tmp_path)
+    made = AutoImageProcessor.from_pretrained(tmp_path)(images=np.zeros((50, 70, 3), np.uint8),
+                                                         return_tensors="pt")["pixel_values"]
+    assert load_source(str(tmp_path)).input_shape == tuple(made.shape[1:])

@@ -349,10 +349,20 @@ def _preprocessing(folder: Path) -> tuple[tuple[int, int] | None, dict | None, b
         warnings.warn(f"'{path}' flips images to BGR channel order before the model sees them; splice feeds RGB "
                       "images, so eval, tune and verify --images show the model its channels swapped: save the "
                       "model's images as BGR files, or fine-tune it on RGB", NormalisationWarning, stacklevel=4)
-    size = pre.get("crop_size") if pre.get("do_center_crop") else pre.get("size")
-    if isinstance(size, Mapping) and isinstance(size.get("height"), int) and isinstance(size.get("width"), int):
-        return (size["height"], size["width"]), norm, declares
-    return None, norm, declares
+    hw = (_size(pre.get("crop_size")) if pre.get("do_center_crop") else None) or _size(pre.get("size"))
+    return hw, norm, declares
+
+
+def _size(value: Any) -> tuple[int, int] | None:
+    """(H, W) of a processor's ``size`` or ``crop_size``: ``{"height", "width"}``; ``{"shortest_edge": N}`` or a
+    bare ``N`` as (N, N), the square a processor makes of a square image (ConvNeXt's resize and ``crop_pct`` crop
+    make N x N of any image); ``None`` for anything else (``longest_edge`` alone)."""
+    if isinstance(value, Mapping):
+        if positive_int(value.get("height")) and positive_int(value.get("width")):
+            return int(value["height"]), int(value["width"])
+        value = value.get("shortest_edge")
+    n = positive_int(value)
+    return (n, n) if n else None
 
 
 def read_hf_folder(path) -> HFFolder:
