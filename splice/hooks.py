@@ -137,9 +137,7 @@ class _SiteHook:
             return None
         point, warp, loc = site
         if warp is not None:
-            if not isinstance(output, torch.Tensor):
-                raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
-                                   "not a tensor; re-create the splice at a point from 'splice points'")
+            _check_site(point, output, args)
             if loc is not None and loc not in st.seen:
                 raise RuntimeError(f"splice: the localisation input {loc!r} of point {point!r} was not computed "
                                    "before it in this forward")
@@ -147,6 +145,17 @@ class _SiteHook:
             output = w(output) if loc is None else w(output, st.seen[loc])
         st.seen[point] = output
         return output
+
+
+def _check_site(point: str, output, args: tuple) -> None:
+    """Refuse, in one line, an output a hook cannot warp for every reader."""
+    if not isinstance(output, torch.Tensor):
+        raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
+                           "not a tensor; re-create the splice at a point from 'splice points'")
+    if any(output is a for a in args):  # older references to it (a skip kept before the call) would stay unwarped
+        raise RuntimeError(f"splice: the module at point {point!r} hands back its own input (in place, or "
+                           "unchanged), so a hook cannot warp every reference to it; re-create the splice "
+                           "at another point from 'splice points'")
 
 
 def hooks_installed(model: nn.Module) -> bool:

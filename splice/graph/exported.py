@@ -79,26 +79,61 @@ class _Site:
 
 
 class _Recorder:
-    """Forward hooks that note, per module call, the shape of a 4-D tensor output (``None`` for anything else)."""
+    """Forward hooks that note, per module call, the shape of a 4-D tensor output (``None`` for anything else).
+
+    A call that hands back a tensor object made outside it (one of its own inputs, an in-place
+    ``ReLU(inplace=True)``, an eval-mode ``Dropout``, ``x.contiguous()``, or any tensor a module call took or
+    returned before) is noted ``None`` too: a hook replaces only the value returned, and the older references to
+    that object would stay unwarped. The exported graph cannot tell: it is functional, without aliases.
+    """
 
     def __init__(self, root: nn.Module):
         self.outputs: dict[tuple[str, int], tuple[int, ...] | None] = {}
         self.calls: dict[int, int] = {}
         self.names = {id(m): q for q, m in root.named_modules() if q}
+        # every tensor a module call took or gave: (when it was first seen, itself, kept so no id is reused)
+        self.seen: dict[int, tuple[int, torch.Tensor]] = {}
+        self.starts: list[int] = []  # how many tensors had been seen when each running call began
         root.register_forward_pre_hook(self._reset)
         for m in root.modules():
             if m is not root:
+                m.register_forward_pre_hook(self._enter)
                 m.register_forward_hook(self._record)
 
     def _reset(self, module, args):
         self.outputs.clear()
         self.calls.clear()
+        self.seen.clear()
+        self.starts.clear()
+        self._note(args)
+
+    def _note(self, value) -> None:
+        for t in _flat_tensors(value):
+            self.seen.setdefault(id(t), (len(self.seen), t))
+
+    def _enter(self, module, args):
+        self._note(args)
+        self.starts.append(len(self.seen))
 
     def _record(self, module, args, output):
+        start = self.starts.pop() if self.starts else 0
         k = self.calls.get(id(module), 0)
         self.calls[id(module)] = k + 1
-        shape = tuple(output.shape) if isinstance(output, torch.Tensor) and output.dim() == 4 else None
+        fresh = isinstance(output, torch.Tensor) and self.seen.get(id(output), (start,))[0] >= start
+        shape = tuple(output.shape) if fresh and output.dim() == 4 else None
         self.outputs[(self.names[id(module)], k)] = shape
+        self._note(output)
+
+
+def _flat_tensors(value):
+    if isinstance(value, torch.Tensor):
+        yield value
+    elif isinstance(value, (tuple, list)):
+        for v in value:
+            yield from _flat_tensors(v)
+    elif isinstance(value, Mapping):
+        for v in value.values():
+            yield from _flat_tensors(v)
 
 
 def _op(node) -> str:

@@ -1,0 +1,104 @@
+"""Which module calls a forward hook can really warp, and what the hooks do at run time when a point turns out
+not to be one: outputs that alias older tensors, per-image loops, the model's own hooks, localisation inputs."""
+
+from __future__ import annotations
+
+import warnings
+
+import pytest
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from splice import graph
+from splice.graph import TraceFallbackWarning
+from splice.hooks import apply_hooks
+from splice.surgery import SplicePlan, insert, warps_of
+from splice.warps import WarpConfig
+
+# a fixed, clearly non-identity affine matrix (rows of theta, as torch's F.affine_grid takes it)
+THETA = (0.9, -0.2, 0.1, 0.15, 1.05, -0.08)
+
+
+def _quiet(fn, *args, **kwargs):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)
+        return fn(*args, **kwargs)
+
+
+def _set_theta_(spliced, point: str) -> None:
+    """The warp at ``point`` made to apply THETA whatever it reads (its head's last layer: no weights, THETA bias)."""
+    final = [m for m in warps_of(spliced)[point].head.modules() if isinstance(m, nn.Linear)][-1]
+    with torch.no_grad():
+        final.weight.zero_()
+        final.bias.copy_(torch.tensor(THETA))
+
+
+def reference_warp(x: torch.Tensor) -> torch.Tensor:
+    """The outside reference: torch's own F.affine_grid + F.grid_sample (bilinear, zeros, align_corners=False)."""
+    theta = torch.tensor(THETA, dtype=x.dtype).view(1, 2, 3).expand(x.shape[0], 2, 3)
+    grid = F.affine_grid(theta, list(x.shape), align_corners=False)
+    return F.grid_sample(x, grid, mode="bilinear", padding_mode="zeros", align_corners=False)
+
+
+# ----------------------------------------------------------------------------- outputs that alias older tensors
+
+
+class _Contiguous(nn.Module):
+    def forward(self, x):
+        return x.contiguous()  # the same object when x is contiguous already
+
+
+class _Aliasing(nn.Module):
+    """``skip`` keeps the tensor a module then hands back again: in place (``ReLU(inplace=True)``), unchanged (an
+    eval-mode ``Dropout``) or as itself (``x.contiguous()``). ``*args`` keeps fx out (the hooks view lists it);
+    ``warp_at`` names a module whose output the hand-written reference warps for every reader."""
+
+    def __init__(self, kind: str, needs_real: bool = False):
+        super().__init__()
+        self.needs_real = needs_real
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.mid = {"inplace": nn.ReLU(inplace=True), "dropout": nn.Dropout(0.0), "contiguous": _Contiguous()}[kind]
+        self.c2 = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+        self.warp_at = None
+
+    def forward(self, *args):
+        x = self.stem(args[0])
+        if self.needs_real:  # a real value: the meta recording fails, torch.export lists the points
+            x = x * torch.ones(1).item()
+        if self.warp_at == "stem":
+            x = reference_warp(x)
+        skip = x
+        y = self.mid(x)
+        return self.head(self.c2(y) + skip).mean((2, 3))
+
+
+@pytest.mark.parametrize("kind", ["inplace", "dropout", "contiguous"])
+@pytest.mark.parametrize("needs_real", [False, True], ids=["recorded", "exported"])
+def test_a_module_that_hands_back_an_older_tensor_is_no_point(kind, needs_real):
+    torch.manual_seed(0)
+    model = _Aliasing(kind, needs_real).eval()
+    names = {p.name for p in _quiet(graph.points, model, (3, 16, 16), all=True)}
+    assert "mid" not in names and {"stem", "c2"} <= names
+    # the point before it still warps every reader: the reference applies torch's own affine_grid/grid_sample to
+    # the stem's output in a hand-written forward
+    spliced = _quiet(insert, model, at="stem", input_shape=(3, 16, 16))
+    _set_theta_(spliced, "stem")
+    x = torch.randn(3, 3, 16, 16)
+    with torch.no_grad():
+        got = spliced(x)
+        model.warp_at = "stem"
+        want = model(x)
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+
+
+def test_a_site_that_hands_back_its_input_is_refused_at_run_time():
+    # a record naming such a site (made before the listing knew better) gets one line, not a half-warped output
+    torch.manual_seed(0)
+    model = _Aliasing("inplace").eval()
+    plan = [SplicePlan("mid", WarpConfig())]
+    spliced = apply_hooks(model, plan, {"mid": ("mid", 0)}, {"mid": (8, 16, 16)})
+    with pytest.raises(RuntimeError, match="point 'mid' hands back its own input .* at another point"):
+        spliced(torch.randn(1, 3, 16, 16))
+
