@@ -60,7 +60,7 @@ class _Scope:
         """This thread's state: ``calls`` (per module), ``seen`` (activations by point), ``active``, ``current``."""
         st = self.local
         if not hasattr(st, "calls"):
-            st.calls, st.seen, st.active, st.current = {}, {}, False, None
+            st.calls, st.seen, st.active, st.current, st.batch = {}, {}, False, None, None
         return st
 
     def warp(self, name: str) -> nn.Module:
@@ -91,10 +91,11 @@ class _EnterHook:
 
     def __call__(self, module, args):
         st = self.scope.mine()
-        st.calls, st.seen, st.active = {}, {}, True
+        st.calls, st.seen, st.active, st.batch = {}, {}, True, None
         if not args or not isinstance(args[0], torch.Tensor):
             return None
         st.seen["input"] = args[0]
+        st.batch = args[0].shape[0] if args[0].dim() == 4 else None  # the images of this forward
         if self.warp is None:
             return None
         warp = self.scope.warp(self.warp)
@@ -137,7 +138,7 @@ class _SiteHook:
             return None
         point, warp, loc = site
         if warp is not None:
-            _check_site(point, output, args)
+            _check_site(point, output, args, st.batch)
             if loc is not None and loc not in st.seen:
                 raise RuntimeError(f"splice: the localisation input {loc!r} of point {point!r} was not computed "
                                    "before it in this forward")
@@ -147,8 +148,8 @@ class _SiteHook:
         return output
 
 
-def _check_site(point: str, output, args: tuple) -> None:
-    """Refuse, in one line, an output a hook cannot warp for every reader."""
+def _check_site(point: str, output, args: tuple, batch: int | None) -> None:
+    """Refuse, in one line, an output a hook cannot warp for every reader or for every image."""
     if not isinstance(output, torch.Tensor):
         raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
                            "not a tensor; re-create the splice at a point from 'splice points'")
@@ -156,6 +157,10 @@ def _check_site(point: str, output, args: tuple) -> None:
         raise RuntimeError(f"splice: the module at point {point!r} hands back its own input (in place, or "
                            "unchanged), so a hook cannot warp every reference to it; re-create the splice "
                            "at another point from 'splice points'")
+    if batch is not None and output.dim() == 4 and output.shape[0] < batch:  # a loop over images or chunks
+        raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module returned "
+                           f"{output.shape[0]} of the {batch} images), so its warp would see only some of them; "
+                           "re-create the splice at another point from 'splice points'")
 
 
 def hooks_installed(model: nn.Module) -> bool:

@@ -102,3 +102,31 @@ def test_a_site_that_hands_back_its_input_is_refused_at_run_time():
     with pytest.raises(RuntimeError, match="point 'mid' hands back its own input .* at another point"):
         spliced(torch.randn(1, 3, 16, 16))
 
+
+# ----------------------------------------------------------------------------- loops over parts of the batch
+
+
+class _Chunked(nn.Module):
+    """Runs ``per`` on the batch two images at a time: at batch 1 and 2 it is called once, as at batch 3 twice."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.per = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, *args):
+        x = self.stem(args[0])
+        return self.head(torch.cat([self.per(c) for c in x.split(2)])).mean((2, 3))
+
+
+def test_a_site_reached_once_per_part_of_the_batch_is_refused_at_run_time():
+    torch.manual_seed(0)
+    model = _Chunked().eval()
+    spliced = apply_hooks(model, [SplicePlan("per", WarpConfig())], {"per": ("per", 0)}, {"per": (8, 16, 16)})
+    with torch.no_grad():
+        spliced(torch.randn(2, 3, 16, 16))  # one chunk holds the whole batch: every image is warped
+        with pytest.raises(RuntimeError, match="point 'per' is reached once per part of the batch .* 2 of the 3 "
+                                               "images.* at another point"):
+            spliced(torch.randn(3, 3, 16, 16))
+
