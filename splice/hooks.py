@@ -222,10 +222,12 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
         if loc is not None and loc != "input":
             qualname, call = sites[loc]
             per_module.setdefault(qualname, {}).setdefault(call, (loc, None, None))
-    work.register_forward_pre_hook(_RootHook(scope))
-    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc))
+    # first of all hooks: the model's own hooks on these modules see the warped tensors, as the code after them does
+    # (and the root hook first of those, so the input warp is looked up on the module tree actually called)
+    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc), prepend=True)
+    work.register_forward_pre_hook(_RootHook(scope), prepend=True)
     for qualname, calls in per_module.items():
         point = next(iter(calls.values()))[0]
-        _site_module(scope_module, qualname, point).register_forward_hook(_SiteHook(scope, calls))
+        _site_module(scope_module, qualname, point).register_forward_hook(_SiteHook(scope, calls), prepend=True)
     scope_module.register_forward_hook(_ExitHook(scope))
     return work

@@ -130,3 +130,67 @@ def test_a_site_reached_once_per_part_of_the_batch_is_refused_at_run_time():
                                                "images.* at another point"):
             spliced(torch.randn(3, 3, 16, 16))
 
+
+# ----------------------------------------------------------------------------- the model's own hooks
+
+
+def _stash(module, args, output):
+    module.stashed = output  # a feature tap the forward reads later
+
+
+class _OwnHook(nn.Module):
+    """A forward hook of the model's own keeps ``mid``'s output, which the forward adds back later."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.mid = nn.Conv2d(8, 8, 3, padding=1)
+        self.c3 = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+        self.mid.register_forward_hook(_stash)
+
+    def forward(self, *args):
+        y = self.mid(self.stem(args[0]))
+        return self.head(self.c3(y) + self.mid.stashed).mean((2, 3))
+
+
+def test_the_models_own_hooks_see_the_warped_output():
+    torch.manual_seed(0)
+    model = _OwnHook().eval()
+    spliced = _quiet(insert, model, at="mid", input_shape=(3, 16, 16))
+    _set_theta_(spliced, "mid")
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        got = spliced(x)
+        # outside reference: the forward written out by hand, torch's own affine_grid/grid_sample on mid's output,
+        # read by both of its readers
+        y = reference_warp(model.mid(model.stem(x)))
+        want = model.head(model.c3(y) + y).mean((2, 3))
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+
+
+def _stash_input(module, args):
+    module.stashed = args[0]  # the model's own pre-hook keeps the input it was given
+
+
+class _OwnPreHook(_OwnHook):
+    def __init__(self):
+        super().__init__()
+        self.register_forward_pre_hook(_stash_input)
+
+    def forward(self, *args):
+        return self.head(self.c3(self.stem(args[0]))).mean((2, 3)) + self.stashed.mean((1, 2, 3))[:, None]
+
+
+def test_the_models_own_pre_hooks_see_the_warped_input():
+    torch.manual_seed(0)
+    model = _OwnPreHook().eval()
+    spliced = _quiet(insert, model, at="input", input_shape=(3, 16, 16))
+    _set_theta_(spliced, "input")
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        got = spliced(x)
+        # outside reference: torch's own affine_grid/grid_sample on the input, read by the forward and the pre-hook
+        xw = reference_warp(x)
+        want = model.head(model.c3(model.stem(xw))).mean((2, 3)) + xw.mean((1, 2, 3))[:, None]
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)

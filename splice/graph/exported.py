@@ -98,7 +98,7 @@ class _Recorder:
         for m in root.modules():
             if m is not root:
                 m.register_forward_pre_hook(self._enter)
-                m.register_forward_hook(self._record)
+                m.register_forward_hook(self._record, prepend=True)  # first, as splice's site hook
 
     def _reset(self, module, args):
         self.outputs.clear()

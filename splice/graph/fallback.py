@@ -62,7 +62,7 @@ class _Timeline:
         self.handles = []
         for mod in self.qualnames:
             self.handles.append(mod.register_forward_pre_hook(self.before))
-            self.handles.append(mod.register_forward_hook(self.after))
+            self.handles.append(mod.register_forward_hook(self.after, prepend=True))  # first, as splice's site hook
 
     def before(self, mod, args):
         self.stack.append(mod)

@@ -179,7 +179,9 @@ def _hook_calls(meta: nn.Module, rec: _Recording) -> list:
             wrote, born = rec.producer.get(id(out)), rec.born.get(id(out))
         rec.calls.append((names[mod], k, starts.pop(), len(rec.ops), wrote, born))
 
-    return [h for m in names for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after))]
+    # ``after`` first of the module's forward hooks, as splice's site hook: it sees what the forward returned
+    return [h for m in names
+            for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after, prepend=True))]
 
 
 def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule, rec: _Recording) -> dict[nn.Module, Any]:
