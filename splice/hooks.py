@@ -100,8 +100,7 @@ class _EnterHook:
             return None
         warp = self.scope.warp(self.warp)
         out = warp(args[0]) if self.loc is None else warp(args[0], st.seen[self.loc])
-        st.seen["input"] = out
-        return (out, *args[1:])
+        return (out, *args[1:])  # seen keeps the unwarped input: a localisation head reads it, as under fx
 
 
 class _ExitHook:
@@ -137,6 +136,7 @@ class _SiteHook:
         if site is None:
             return None
         point, warp, loc = site
+        st.seen[point] = output  # unwarped: what a localisation head reading this point gets, as under fx
         if warp is not None:
             _check_site(point, output, args, st.batch)
             if loc is not None and loc not in st.seen:
@@ -144,7 +144,6 @@ class _SiteHook:
                                    "before it in this forward")
             w = self.scope.warp(warp)
             output = w(output) if loc is None else w(output, st.seen[loc])
-        st.seen[point] = output
         return output
 
 

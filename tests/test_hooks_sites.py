@@ -12,7 +12,7 @@ from torch import nn
 
 from splice import graph
 from splice.graph import TraceFallbackWarning
-from splice.hooks import apply_hooks
+from splice.hooks import apply_hooks, hooks_installed
 from splice.surgery import SplicePlan, insert, warps_of
 from splice.warps import WarpConfig
 
@@ -194,3 +194,64 @@ def test_the_models_own_pre_hooks_see_the_warped_input():
         xw = reference_warp(x)
         want = model.head(model.c3(model.stem(xw))).mean((2, 3)) + xw.mean((1, 2, 3))[:, None]
     torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+
+
+# ----------------------------------------------------------------------------- localisation inputs
+
+
+class _Traceable(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.c2 = nn.Conv2d(8, 8, 3, stride=2, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.head(self.c2(torch.relu(self.stem(x)))).mean((2, 3))
+
+
+class _Untraceable(_Traceable):
+    def forward(self, *args):  # *args: fx cannot trace it, the hooks view lists it
+        return _Traceable.forward(self, args[0])
+
+
+def _sample(x, theta):
+    """Torch's own F.affine_grid + F.grid_sample (the outside reference for the sampling); ``theta`` as the warp's
+    head predicts it, the six entries of each 2x3 matrix row by row."""
+    grid = F.affine_grid(theta.view(-1, 2, 3), list(x.shape), align_corners=False)
+    return F.grid_sample(x, grid, mode="bilinear", padding_mode="zeros", align_corners=False)
+
+
+@pytest.mark.parametrize("first", ["input", "stem"])
+def test_a_localisation_head_reads_the_unwarped_point_under_hooks_as_under_fx(first):
+    cfg = WarpConfig(family="affine", loc_from=first)
+    torch.manual_seed(0)
+    fx_model = _Traceable().eval()
+    hk_model = _Untraceable().eval()
+    hk_model.load_state_dict(fx_model.state_dict())
+    by_fx = insert(fx_model, at=[first, "c2"], warp=cfg, input_shape=(3, 16, 16))
+    by_hooks = _quiet(insert, hk_model, at=[first, "c2"], warp=cfg, input_shape=(3, 16, 16))
+    assert isinstance(by_fx, torch.fx.GraphModule) and hooks_installed(by_hooks)
+    gen = torch.Generator().manual_seed(1)
+    warps_fx, warps_hk = warps_of(by_fx), warps_of(by_hooks)
+    for name, warp in warps_fx.items():  # the same non-identity heads in both
+        for p, q in zip(warp.parameters(), warps_hk[name].parameters()):
+            with torch.no_grad():
+                p.add_(0.05 * torch.randn(p.shape, generator=gen))
+                q.copy_(p)
+    x = torch.randn(3, 3, 16, 16)
+    with torch.no_grad():
+        got_fx, got_hooks = by_fx(x), by_hooks(x)
+        # outside reference: the forward written out by hand, torch's own affine_grid/grid_sample at each point, the
+        # thetas from the warps' heads; c2's head reads the unwarped tensor at `first`
+        m, w = fx_model, warps_fx
+        if first == "input":
+            seen = x
+            st = m.stem(_sample(x, w["input"].predict(x)))
+        else:
+            seen = m.stem(x)
+            st = _sample(seen, w["stem"].predict(seen))
+        c = m.c2(torch.relu(st))
+        want = m.head(_sample(c, w["c2"].predict(seen))).mean((2, 3))
+    torch.testing.assert_close(got_fx, want, rtol=1e-5, atol=1e-5)
+    torch.testing.assert_close(got_hooks, want, rtol=1e-5, atol=1e-5)
