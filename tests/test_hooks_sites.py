@@ -255,3 +255,29 @@ def test_a_localisation_head_reads_the_unwarped_point_under_hooks_as_under_fx(fi
         want = m.head(_sample(c, w["c2"].predict(seen))).mean((2, 3))
     torch.testing.assert_close(got_fx, want, rtol=1e-5, atol=1e-5)
     torch.testing.assert_close(got_hooks, want, rtol=1e-5, atol=1e-5)
+
+
+def test_a_loop_over_chunks_of_two_images_is_no_point():
+    # batch 1 and batch 2 call `per` once each; batch 3 twice: the listing compares batch 3 with batch 1
+    names = {p.name for p in _quiet(graph.points, _Chunked().eval(), (3, 16, 16), all=True)}
+    assert "per" not in names and {"stem", "head"} <= names
+
+
+class _Twice(nn.Module):
+    """Needs one real value (the meta recording fails, torch.export lists it) and calls ``block`` twice."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.block = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, *args):
+        x = self.stem(args[0]) * torch.ones(1).item()
+        return self.head(self.block(self.block(x))).mean((2, 3))
+
+
+def test_without_a_count_at_another_batch_a_module_called_twice_is_no_point():
+    # the batch-3 count runs on the meta device, which this forward cannot: `block` may be a loop over the images
+    pts = _quiet(graph.points, _Twice().eval(), (3, 16, 16), all=True)
+    assert [p.module for p in pts] == ["", "stem", "head"]

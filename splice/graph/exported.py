@@ -231,9 +231,15 @@ def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:
     return up, down
 
 
-def export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[Entry]:
-    """Entries for the points of ``model`` a forward hook can reach, from its exported program."""
+def export_entries(model: nn.Module, args: tuple, kwargs: dict, counts: dict[str, int] | None = None) -> list[Entry]:
+    """Entries for the points of ``model`` a forward hook can reach, from its exported program.
+
+    ``counts``, when given, receives how often each module (by qualname) was called in that forward.
+    """
     program, recorded = _export(model, args, kwargs)
+    if counts is not None:
+        for qualname, _ in recorded:
+            counts[qualname] = counts.get(qualname, 0) + 1
     graph = program.graph
     nodes = list(graph.nodes)
     user_inputs = set(program.graph_signature.user_inputs)
