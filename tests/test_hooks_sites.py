@@ -281,3 +281,20 @@ def test_without_a_count_at_another_batch_a_module_called_twice_is_no_point():
     # the batch-3 count runs on the meta device, which this forward cannot: `block` may be a loop over the images
     pts = _quiet(graph.points, _Twice().eval(), (3, 16, 16), all=True)
     assert [p.module for p in pts] == ["", "stem", "head"]
+
+
+class _KeywordOnly(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+
+    def forward(self, *, x):
+        return self.conv(x)
+
+
+def test_a_keyword_only_input_is_told_to_wrap_the_model():
+    from splice.errors import GraphError
+
+    with pytest.raises(GraphError, match="forward takes its input x by keyword only, which splice does not support; "
+                                         "wrap the model in a module whose forward takes the image positionally"):
+        graph.points(_KeywordOnly(), (3, 16, 16))

@@ -181,6 +181,11 @@ def _check_arity(model: nn.Module, shapes: tuple) -> None:
     params = list(params)
     required = [p.name for p in params if p.kind in kinds and p.default is inspect.Parameter.empty]
     positional = [p.name for p in params if p.kind in kinds]
+    keyword_only = [p.name for p in params if p.kind is inspect.Parameter.KEYWORD_ONLY and p.default is p.empty]
+    if keyword_only and len(shapes) > len(positional):
+        raise GraphError(f"{type(model).__name__}'s forward takes its input{'s' if len(keyword_only) > 1 else ''} "
+                         f"{', '.join(keyword_only)} by keyword only, which splice does not support; wrap the model "
+                         "in a module whose forward takes the image positionally and calls it with that keyword")
     if len(shapes) > len(positional) and not any(p.kind is inspect.Parameter.VAR_POSITIONAL for p in params):
         raise GraphError(f"{type(model).__name__}'s forward takes {len(positional)} input"
                          f"{'' if len(positional) == 1 else 's'} ({', '.join(positional) or 'none'}) and "
