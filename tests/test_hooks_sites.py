@@ -298,3 +298,39 @@ def test_a_keyword_only_input_is_told_to_wrap_the_model():
     with pytest.raises(GraphError, match="forward takes its input x by keyword only, which splice does not support; "
                                          "wrap the model in a module whose forward takes the image positionally"):
         graph.points(_KeywordOnly(), (3, 16, 16))
+
+
+class _LayerDrop(nn.Module):
+    """Python's random decides, in train mode, whether block 0 runs; one activation module serves every block."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.act = nn.ReLU()
+        self.convs = nn.ModuleList(nn.Conv2d(8, 8, 3, padding=1) for _ in range(3))
+
+    def forward(self, x):
+        import random
+
+        x = self.stem(x)
+        for i, conv in enumerate(self.convs):
+            if i == 0 and self.training and random.random() < 0.5:
+                continue
+            x = x + self.act(conv(x))
+        return x.mean((2, 3))
+
+
+def test_the_listing_draws_the_same_numbers_every_time_and_leaves_the_callers_generators():
+    import random
+
+    import numpy as np
+
+    model = _LayerDrop()
+    random.seed(3)
+    np.random.seed(3)
+    torch.manual_seed(3)
+    states = random.getstate(), np.random.get_state()[1].copy(), torch.get_rng_state()
+    listings = {tuple(p.name for p in _quiet(graph.points, model, (3, 16, 16), all=True)) for _ in range(8)}
+    assert len(listings) == 1
+    assert random.getstate() == states[0]
+    assert (np.random.get_state()[1] == states[1]).all() and torch.equal(torch.get_rng_state(), states[2])

@@ -19,7 +19,7 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from ..copies import collector_paused, private_buffers
+from ..copies import collector_paused, private_buffers, same_draws
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes, volumes_not_images
 from .entries import Entry, graph_entries
@@ -270,7 +270,9 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
 
 def _list(model: nn.Module, shapes: tuple, rule: LeafRule, every: bool, warp: str, within: str,
           keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
-    with caches_kept(model):  # meta-device and fake passes must leave no tensor without data in a library's cache
+    # a forward that draws from Python's, NumPy's or torch's generator (layer drop) lists the same points every
+    # time, and the caller's generators do not move
+    with caches_kept(model), same_draws():  # meta-device and fake passes leave no tensor without data in a cache
         return _listed(model, shapes, rule, every, warp, within, keep)
 
 
