@@ -60,7 +60,7 @@ class _Scope:
         """This thread's state: ``calls`` (per module), ``seen`` (activations by point), ``active``, ``current``."""
         st = self.local
         if not hasattr(st, "calls"):
-            st.calls, st.seen, st.active, st.current = {}, {}, False, None
+            st.calls, st.seen, st.active, st.current, st.batch = {}, {}, False, None, None
         return st
 
     def warp(self, name: str) -> nn.Module:
@@ -91,16 +91,16 @@ class _EnterHook:
 
     def __call__(self, module, args):
         st = self.scope.mine()
-        st.calls, st.seen, st.active = {}, {}, True
+        st.calls, st.seen, st.active, st.batch = {}, {}, True, None
         if not args or not isinstance(args[0], torch.Tensor):
             return None
         st.seen["input"] = args[0]
+        st.batch = args[0].shape[0] if args[0].dim() == 4 else None  # the images of this forward
         if self.warp is None:
             return None
         warp = self.scope.warp(self.warp)
         out = warp(args[0]) if self.loc is None else warp(args[0], st.seen[self.loc])
-        st.seen["input"] = out
-        return (out, *args[1:])
+        return (out, *args[1:])  # seen keeps the unwarped input: a localisation head reads it, as under fx
 
 
 class _ExitHook:
@@ -136,17 +136,30 @@ class _SiteHook:
         if site is None:
             return None
         point, warp, loc = site
+        st.seen[point] = output  # unwarped: what a localisation head reading this point gets, as under fx
         if warp is not None:
-            if not isinstance(output, torch.Tensor):
-                raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
-                                   "not a tensor; re-create the splice at a point from 'splice points'")
+            _check_site(point, output, args, st.batch)
             if loc is not None and loc not in st.seen:
                 raise RuntimeError(f"splice: the localisation input {loc!r} of point {point!r} was not computed "
                                    "before it in this forward")
             w = self.scope.warp(warp)
             output = w(output) if loc is None else w(output, st.seen[loc])
-        st.seen[point] = output
         return output
+
+
+def _check_site(point: str, output, args: tuple, batch: int | None) -> None:
+    """Refuse, in one line, an output a hook cannot warp for every reader or for every image."""
+    if not isinstance(output, torch.Tensor):
+        raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
+                           "not a tensor; re-create the splice at a point from 'splice points'")
+    if any(output is a for a in args):  # older references to it (a skip kept before the call) would stay unwarped
+        raise RuntimeError(f"splice: the module at point {point!r} hands back its own input (in place, or "
+                           "unchanged), so a hook cannot warp every reference to it; re-create the splice "
+                           "at another point from 'splice points'")
+    if batch is not None and output.dim() == 4 and output.shape[0] < batch:  # a loop over images or chunks
+        raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module returned "
+                           f"{output.shape[0]} of the {batch} images), so its warp would see only some of them; "
+                           "re-create the splice at another point from 'splice points'")
 
 
 def hooks_installed(model: nn.Module) -> bool:
@@ -208,10 +221,12 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
         if loc is not None and loc != "input":
             qualname, call = sites[loc]
             per_module.setdefault(qualname, {}).setdefault(call, (loc, None, None))
-    work.register_forward_pre_hook(_RootHook(scope))
-    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc))
+    # first of all hooks: the model's own hooks on these modules see the warped tensors, as the code after them does
+    # (and the root hook first of those, so the input warp is looked up on the module tree actually called)
+    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc), prepend=True)
+    work.register_forward_pre_hook(_RootHook(scope), prepend=True)
     for qualname, calls in per_module.items():
         point = next(iter(calls.values()))[0]
-        _site_module(scope_module, qualname, point).register_forward_hook(_SiteHook(scope, calls))
+        _site_module(scope_module, qualname, point).register_forward_hook(_SiteHook(scope, calls), prepend=True)
     scope_module.register_forward_hook(_ExitHook(scope))
     return work

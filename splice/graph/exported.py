@@ -79,26 +79,61 @@ class _Site:
 
 
 class _Recorder:
-    """Forward hooks that note, per module call, the shape of a 4-D tensor output (``None`` for anything else)."""
+    """Forward hooks that note, per module call, the shape of a 4-D tensor output (``None`` for anything else).
+
+    A call that hands back a tensor object made outside it (one of its own inputs, an in-place
+    ``ReLU(inplace=True)``, an eval-mode ``Dropout``, ``x.contiguous()``, or any tensor a module call took or
+    returned before) is noted ``None`` too: a hook replaces only the value returned, and the older references to
+    that object would stay unwarped. The exported graph cannot tell: it is functional, without aliases.
+    """
 
     def __init__(self, root: nn.Module):
         self.outputs: dict[tuple[str, int], tuple[int, ...] | None] = {}
         self.calls: dict[int, int] = {}
         self.names = {id(m): q for q, m in root.named_modules() if q}
+        # every tensor a module call took or gave: (when it was first seen, itself, kept so no id is reused)
+        self.seen: dict[int, tuple[int, torch.Tensor]] = {}
+        self.starts: list[int] = []  # how many tensors had been seen when each running call began
         root.register_forward_pre_hook(self._reset)
         for m in root.modules():
             if m is not root:
-                m.register_forward_hook(self._record)
+                m.register_forward_pre_hook(self._enter)
+                m.register_forward_hook(self._record, prepend=True)  # first, as splice's site hook
 
     def _reset(self, module, args):
         self.outputs.clear()
         self.calls.clear()
+        self.seen.clear()
+        self.starts.clear()
+        self._note(args)
+
+    def _note(self, value) -> None:
+        for t in _flat_tensors(value):
+            self.seen.setdefault(id(t), (len(self.seen), t))
+
+    def _enter(self, module, args):
+        self._note(args)
+        self.starts.append(len(self.seen))
 
     def _record(self, module, args, output):
+        start = self.starts.pop() if self.starts else 0
         k = self.calls.get(id(module), 0)
         self.calls[id(module)] = k + 1
-        shape = tuple(output.shape) if isinstance(output, torch.Tensor) and output.dim() == 4 else None
+        fresh = isinstance(output, torch.Tensor) and self.seen.get(id(output), (start,))[0] >= start
+        shape = tuple(output.shape) if fresh and output.dim() == 4 else None
         self.outputs[(self.names[id(module)], k)] = shape
+        self._note(output)
+
+
+def _flat_tensors(value):
+    if isinstance(value, torch.Tensor):
+        yield value
+    elif isinstance(value, (tuple, list)):
+        for v in value:
+            yield from _flat_tensors(v)
+    elif isinstance(value, Mapping):
+        for v in value.values():
+            yield from _flat_tensors(v)
 
 
 def _op(node) -> str:
@@ -196,9 +231,15 @@ def _flows(nodes: list, is_conv: Mapping) -> tuple[dict, dict]:
     return up, down
 
 
-def export_entries(model: nn.Module, args: tuple, kwargs: dict) -> list[Entry]:
-    """Entries for the points of ``model`` a forward hook can reach, from its exported program."""
+def export_entries(model: nn.Module, args: tuple, kwargs: dict, counts: dict[str, int] | None = None) -> list[Entry]:
+    """Entries for the points of ``model`` a forward hook can reach, from its exported program.
+
+    ``counts``, when given, receives how often each module (by qualname) was called in that forward.
+    """
     program, recorded = _export(model, args, kwargs)
+    if counts is not None:
+        for qualname, _ in recorded:
+            counts[qualname] = counts.get(qualname, 0) + 1
     graph = program.graph
     nodes = list(graph.nodes)
     user_inputs = set(program.graph_signature.user_inputs)

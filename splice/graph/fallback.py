@@ -7,8 +7,10 @@ else, for a forward that needs real values, from a ``torch.export`` graph
 (:mod:`splice.graph.exported`); if torch.export fails too, from module outputs
 recorded by forward hooks during a meta-device forward pass, without a
 data-flow graph (only ``input`` is then marked as a cut). A point whose module
-is called more often for a bigger batch (a loop over the images of the batch)
-is left out: a hook counts calls, and would warp the first image only. Names
+is called more often at batch 3 than at batch 1 (a loop over the images of the
+batch, or over chunks of two) is left out: a hook counts calls, and would warp
+part of the batch only; when no forward at batch 3 runs, a module called more
+than once is left out. Names
 come from module qualnames as fx names a module's call (dots become
 underscores, a leading digit gets ``_``, with ``_1``, ``_2`` for repeat calls)
 in both. Leaf modules (``--leaf``) run
@@ -62,7 +64,7 @@ class _Timeline:
         self.handles = []
         for mod in self.qualnames:
             self.handles.append(mod.register_forward_pre_hook(self.before))
-            self.handles.append(mod.register_forward_hook(self.after))
+            self.handles.append(mod.register_forward_hook(self.after, prepend=True))  # first, as splice's site hook
 
     def before(self, mod, args):
         self.stack.append(mod)
@@ -161,9 +163,10 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
                       f"failed in {here} ({reason(exc)}); {advice}")
 
 
-def _doubled(value):
-    """Every tensor of ``value`` with its batch repeated twice (a batch of 2 from a batch of 1)."""
-    return map_tensors(value, lambda v: torch.cat([v, v]) if v.dim() else v)
+def _tripled(value):
+    """Every tensor of ``value`` with its batch repeated three times (a batch of 3 from a batch of 1: odd, so a loop
+    over chunks of two images is called more often too, as a loop over the images is)."""
+    return map_tensors(value, lambda v: torch.cat([v, v, v]) if v.dim() else v)
 
 
 def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule,
@@ -193,8 +196,8 @@ def _call_counts(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, r
 
 def _batch_stable(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule,
                   entries: list[Entry], one: dict[str, int], train: bool) -> list[Entry]:
-    """The entries whose module is called as often at batch 2 (in train mode with ``train``) as at batch 1 in eval
-    mode (``one``).
+    """The entries whose module is called as often at batch 3 (in train mode with ``train``) as at batch 1 in eval
+    mode (``one``); when the batch-3 forward fails, those whose module is called once.
 
     A hook counts the calls of its module within one forward. A module called
     once per image (a loop over the batch) is called more often for a bigger
@@ -202,15 +205,16 @@ def _batch_stable(meta: nn.Module, model: nn.Module, args: tuple, kwargs: dict, 
     training, so the recorded call would reach another tensor: such points are
     not listed. ``train`` is set when a module that calls others read its
     ``training`` flag in the recorded forward (only then can train mode call
-    other modules); one batch-2 forward then checks both at once, unless it
-    fails in train mode, when an eval-mode one checks the batch alone.
+    other modules); one batch-3 forward then checks both at once, unless it
+    fails in train mode, when an eval-mode one checks the batch alone. A loop over chunks of three images or more
+    passes; the hooks refuse it when it runs (its warp would see part of the batch).
     """
-    two = _call_counts(meta, model, _doubled(args), _doubled(kwargs), rule, train=train)
-    if two is None and train:
-        two = _call_counts(meta, model, _doubled(args), _doubled(kwargs), rule)
-    if two is None:
-        return entries
-    return [e for e in entries if e.site is None or one.get(e.site[0]) == two.get(e.site[0])]
+    three = None if meta is None else _call_counts(meta, model, _tripled(args), _tripled(kwargs), rule, train=train)
+    if three is None and train and meta is not None:
+        three = _call_counts(meta, model, _tripled(args), _tripled(kwargs), rule)
+    if three is None:  # not countable at another batch: a module called once is the one kind a loop cannot move
+        return [e for e in entries if e.site is None or one.get(e.site[0], 2) == 1]
+    return [e for e in entries if e.site is None or one.get(e.site[0]) == three.get(e.site[0])]
 
 
 def hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, problem: str | None, todo: str,
@@ -219,7 +223,8 @@ def hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, p
 
     One meta copy of the model serves the recorded forward (batch 1, eval mode,
     which also counts the calls and watches the ``training`` flags) and the
-    counting one (batch 2).
+    counting one (batch 3). When the recorded forward fails, torch.export's run counts the calls at batch 1, else
+    a fresh meta copy, else the listed sites themselves (their highest call index).
     """
     try:
         meta = meta_module(model)
@@ -229,15 +234,18 @@ def hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, p
     readers: list[nn.Module] = []
     entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape,
                              counts=counts, meta=meta, readers=readers)
-    if not counts:  # the recorded forward did not run: a fresh copy counts the calls at batch 1
+    if not counts:  # neither the recorded forward nor torch.export ran: a fresh copy counts the calls at batch 1
         try:
             meta = meta_module(model)
-        except Exception:  # no meta copy: nothing to count with
-            return entries
-        counts = _call_counts(meta, model, args, kwargs, rule)
-        if counts is None:
-            return entries
-        readers = [meta]  # unwatched: assume train mode may call other modules
+        except Exception:  # no meta copy
+            meta = None
+        counts = None if meta is None else _call_counts(meta, model, args, kwargs, rule)
+        if counts is None:  # counted from the sites listed: a module with a second call listed is called again
+            counts = {}
+            for e in entries:
+                if e.site is not None:
+                    counts[e.site[0]] = max(counts.get(e.site[0], 0), e.site[1] + 1)
+        readers = [meta] if meta is not None else []  # unwatched: assume train mode may call other modules
     train = any(next(iter(m.children()), None) is not None for m in readers)
     return _batch_stable(meta, model, args, kwargs, rule, entries, counts, train)
 
@@ -259,7 +267,7 @@ def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, 
     except Exception as exc:  # a forward that needs real values: torch.export may still manage
         recorded_problem = reason(exc)
         try:
-            entries = export_entries(model, args, kwargs)
+            entries = export_entries(model, args, kwargs, counts)
             how = f"torch.export (specialised to input {shapes})"
         except Exception as exc2:  # whatever torch.export cannot handle either: module outputs
             export_problem = (f"recording a meta-device forward failed ({recorded_problem}) and torch.export failed "

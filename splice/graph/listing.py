@@ -19,7 +19,7 @@ import torch
 import torch.fx as fx
 from torch import nn
 
-from ..copies import collector_paused, private_buffers
+from ..copies import collector_paused, private_buffers, same_draws
 from ..errors import GraphError, SourceError
 from ..sources.specs import parse_input_shapes, volumes_not_images
 from .entries import Entry, graph_entries
@@ -181,6 +181,11 @@ def _check_arity(model: nn.Module, shapes: tuple) -> None:
     params = list(params)
     required = [p.name for p in params if p.kind in kinds and p.default is inspect.Parameter.empty]
     positional = [p.name for p in params if p.kind in kinds]
+    keyword_only = [p.name for p in params if p.kind is inspect.Parameter.KEYWORD_ONLY and p.default is p.empty]
+    if keyword_only and len(shapes) > len(positional):
+        raise GraphError(f"{type(model).__name__}'s forward takes its input{'s' if len(keyword_only) > 1 else ''} "
+                         f"{', '.join(keyword_only)} by keyword only, which splice does not support; wrap the model "
+                         "in a module whose forward takes the image positionally and calls it with that keyword")
     if len(shapes) > len(positional) and not any(p.kind is inspect.Parameter.VAR_POSITIONAL for p in params):
         raise GraphError(f"{type(model).__name__}'s forward takes {len(positional)} input"
                          f"{'' if len(positional) == 1 else 's'} ({', '.join(positional) or 'none'}) and "
@@ -265,7 +270,9 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
 
 def _list(model: nn.Module, shapes: tuple, rule: LeafRule, every: bool, warp: str, within: str,
           keep: bool = False) -> tuple[list[Point], fx.GraphModule | None]:
-    with caches_kept(model):  # meta-device and fake passes must leave no tensor without data in a library's cache
+    # a forward that draws from Python's, NumPy's or torch's generator (layer drop) lists the same points every
+    # time, and the caller's generators do not move
+    with caches_kept(model), same_draws():  # meta-device and fake passes leave no tensor without data in a cache
         return _listed(model, shapes, rule, every, warp, within, keep)
 
 

@@ -100,10 +100,12 @@ class _Recording(TorchFunctionMode):
         super().__init__()
         self.ops: list[_Op] = []
         self.producer: dict[int, int] = {}  # id(tensor) -> index of the op that last wrote it
+        self.born: dict[int, int] = {}  # id(tensor) -> index of the op that first produced that object
         self.keep: list[torch.Tensor] = []  # every recorded tensor stays alive, so no id is reused
         self.stack: list[str] = []
-        # (qualname, call, start, end, the op that wrote the output when the call returned, or None)
-        self.calls: list[tuple[str, int, int, int, int | None]] = []
+        # (qualname, call, start, end, the op that wrote the output when the call returned, or None, and the op
+        # that first produced that tensor object)
+        self.calls: list[tuple[str, int, int, int, int | None, int | None]] = []
         # modules inside a leaf (a leaf runs for real, unseen): one called outside it too is counted here fewer
         # times than a hook counts it at run time, so it is no site
         self.in_leaves: set[str] = set()
@@ -119,7 +121,9 @@ class _Recording(TorchFunctionMode):
             self.ops[i].users.append(op.index)
         if isinstance(value, torch.Tensor):
             self.producer[id(value)] = op.index
-            self.keep.append(value)
+            if id(value) not in self.born:  # an in-place op (relu_) hands back an object that already existed
+                self.born[id(value)] = op.index
+                self.keep.append(value)
         return op.index
 
     def record(self, name: str, args: tuple, kwargs: dict, out) -> None:
@@ -170,10 +174,14 @@ def _hook_calls(meta: nn.Module, rec: _Recording) -> list:
         k = counts.get(id(mod), 0)
         counts[id(mod)] = k + 1
         # the op that wrote the returned tensor now: an in-place op after the call writes the same tensor again
-        wrote = rec.producer.get(id(out)) if isinstance(out, torch.Tensor) and out.dim() == 4 else None
-        rec.calls.append((names[mod], k, starts.pop(), len(rec.ops), wrote))
+        wrote = born = None
+        if isinstance(out, torch.Tensor) and out.dim() == 4:
+            wrote, born = rec.producer.get(id(out)), rec.born.get(id(out))
+        rec.calls.append((names[mod], k, starts.pop(), len(rec.ops), wrote, born))
 
-    return [h for m in names for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after))]
+    # ``after`` first of the module's forward hooks, as splice's site hook: it sees what the forward returned
+    return [h for m in names
+            for h in (m.register_forward_pre_hook(before), m.register_forward_hook(after, prepend=True))]
 
 
 def _opaque_leaves(meta: nn.Module, real: nn.Module, rule: LeafRule, rec: _Recording) -> dict[nn.Module, Any]:
@@ -202,14 +210,19 @@ def _leaf_forward(original: nn.Module, name: str, rec: _Recording):
 
 
 def _sites(rec: _Recording) -> dict[int, tuple[str, int]]:
-    """op index -> (qualname, call) of the innermost module call that creates it and hands it back alone."""
+    """op index -> (qualname, call) of the innermost module call that creates it and hands it back alone.
+
+    The tensor object must be born inside the call: a call that hands back one that existed before (an in-place
+    ``ReLU(inplace=True)``, an eval-mode ``Dropout``, ``x.contiguous()``) is no site, since a hook replaces only
+    the value returned, while older references to that object (``skip = x`` kept before the call) stay unwarped.
+    """
     found: dict[int, tuple[str, int]] = {}
     span: dict[int, int] = {}
-    for qualname, k, start, end, i in rec.calls:
-        if i is None or qualname in rec.in_leaves:
+    for qualname, k, start, end, i, born in rec.calls:
+        if i is None or born is None or qualname in rec.in_leaves:
             continue
         op = rec.ops[i]
-        if not (start <= i < end) or any(u < end for u in op.users):
+        if not (start <= born <= i < end) or any(u < end for u in op.users):
             continue  # made before the call, or also read inside it: a hook would not replace it everywhere
         if end - start < span.get(i, 1 << 62):
             found[i], span[i] = (qualname, k), end - start

@@ -1,0 +1,336 @@
+"""Which module calls a forward hook can really warp, and what the hooks do at run time when a point turns out
+not to be one: outputs that alias older tensors, per-image loops, the model's own hooks, localisation inputs."""
+
+from __future__ import annotations
+
+import warnings
+
+import pytest
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from splice import graph
+from splice.graph import TraceFallbackWarning
+from splice.hooks import apply_hooks, hooks_installed
+from splice.surgery import SplicePlan, insert, warps_of
+from splice.warps import WarpConfig
+
+# a fixed, clearly non-identity affine matrix (rows of theta, as torch's F.affine_grid takes it)
+THETA = (0.9, -0.2, 0.1, 0.15, 1.05, -0.08)
+
+
+def _quiet(fn, *args, **kwargs):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)
+        return fn(*args, **kwargs)
+
+
+def _set_theta_(spliced, point: str) -> None:
+    """The warp at ``point`` made to apply THETA whatever it reads (its head's last layer: no weights, THETA bias)."""
+    final = [m for m in warps_of(spliced)[point].head.modules() if isinstance(m, nn.Linear)][-1]
+    with torch.no_grad():
+        final.weight.zero_()
+        final.bias.copy_(torch.tensor(THETA))
+
+
+def reference_warp(x: torch.Tensor) -> torch.Tensor:
+    """The outside reference: torch's own F.affine_grid + F.grid_sample (bilinear, zeros, align_corners=False)."""
+    theta = torch.tensor(THETA, dtype=x.dtype).view(1, 2, 3).expand(x.shape[0], 2, 3)
+    grid = F.affine_grid(theta, list(x.shape), align_corners=False)
+    return F.grid_sample(x, grid, mode="bilinear", padding_mode="zeros", align_corners=False)
+
+
+# ----------------------------------------------------------------------------- outputs that alias older tensors
+
+
+class _Contiguous(nn.Module):
+    def forward(self, x):
+        return x.contiguous()  # the same object when x is contiguous already
+
+
+class _Aliasing(nn.Module):
+    """``skip`` keeps the tensor a module then hands back again: in place (``ReLU(inplace=True)``), unchanged (an
+    eval-mode ``Dropout``) or as itself (``x.contiguous()``). ``*args`` keeps fx out (the hooks view lists it);
+    ``warp_at`` names a module whose output the hand-written reference warps for every reader."""
+
+    def __init__(self, kind: str, needs_real: bool = False):
+        super().__init__()
+        self.needs_real = needs_real
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.mid = {"inplace": nn.ReLU(inplace=True), "dropout": nn.Dropout(0.0), "contiguous": _Contiguous()}[kind]
+        self.c2 = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+        self.warp_at = None
+
+    def forward(self, *args):
+        x = self.stem(args[0])
+        if self.needs_real:  # a real value: the meta recording fails, torch.export lists the points
+            x = x * torch.ones(1).item()
+        if self.warp_at == "stem":
+            x = reference_warp(x)
+        skip = x
+        y = self.mid(x)
+        return self.head(self.c2(y) + skip).mean((2, 3))
+
+
+@pytest.mark.parametrize("kind", ["inplace", "dropout", "contiguous"])
+@pytest.mark.parametrize("needs_real", [False, True], ids=["recorded", "exported"])
+def test_a_module_that_hands_back_an_older_tensor_is_no_point(kind, needs_real):
+    torch.manual_seed(0)
+    model = _Aliasing(kind, needs_real).eval()
+    names = {p.name for p in _quiet(graph.points, model, (3, 16, 16), all=True)}
+    assert "mid" not in names and {"stem", "c2"} <= names
+    # the point before it still warps every reader: the reference applies torch's own affine_grid/grid_sample to
+    # the stem's output in a hand-written forward
+    spliced = _quiet(insert, model, at="stem", input_shape=(3, 16, 16))
+    _set_theta_(spliced, "stem")
+    x = torch.randn(3, 3, 16, 16)
+    with torch.no_grad():
+        got = spliced(x)
+        model.warp_at = "stem"
+        want = model(x)
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+
+
+def test_a_site_that_hands_back_its_input_is_refused_at_run_time():
+    # a record naming such a site (made before the listing knew better) gets one line, not a half-warped output
+    torch.manual_seed(0)
+    model = _Aliasing("inplace").eval()
+    plan = [SplicePlan("mid", WarpConfig())]
+    spliced = apply_hooks(model, plan, {"mid": ("mid", 0)}, {"mid": (8, 16, 16)})
+    with pytest.raises(RuntimeError, match="point 'mid' hands back its own input .* at another point"):
+        spliced(torch.randn(1, 3, 16, 16))
+
+
+# ----------------------------------------------------------------------------- loops over parts of the batch
+
+
+class _Chunked(nn.Module):
+    """Runs ``per`` on the batch two images at a time: at batch 1 and 2 it is called once, as at batch 3 twice."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.per = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, *args):
+        x = self.stem(args[0])
+        return self.head(torch.cat([self.per(c) for c in x.split(2)])).mean((2, 3))
+
+
+def test_a_site_reached_once_per_part_of_the_batch_is_refused_at_run_time():
+    torch.manual_seed(0)
+    model = _Chunked().eval()
+    spliced = apply_hooks(model, [SplicePlan("per", WarpConfig())], {"per": ("per", 0)}, {"per": (8, 16, 16)})
+    with torch.no_grad():
+        spliced(torch.randn(2, 3, 16, 16))  # one chunk holds the whole batch: every image is warped
+        with pytest.raises(RuntimeError, match="point 'per' is reached once per part of the batch .* 2 of the 3 "
+                                               "images.* at another point"):
+            spliced(torch.randn(3, 3, 16, 16))
+
+
+# ----------------------------------------------------------------------------- the model's own hooks
+
+
+def _stash(module, args, output):
+    module.stashed = output  # a feature tap the forward reads later
+
+
+class _OwnHook(nn.Module):
+    """A forward hook of the model's own keeps ``mid``'s output, which the forward adds back later."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.mid = nn.Conv2d(8, 8, 3, padding=1)
+        self.c3 = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+        self.mid.register_forward_hook(_stash)
+
+    def forward(self, *args):
+        y = self.mid(self.stem(args[0]))
+        return self.head(self.c3(y) + self.mid.stashed).mean((2, 3))
+
+
+def test_the_models_own_hooks_see_the_warped_output():
+    torch.manual_seed(0)
+    model = _OwnHook().eval()
+    spliced = _quiet(insert, model, at="mid", input_shape=(3, 16, 16))
+    _set_theta_(spliced, "mid")
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        got = spliced(x)
+        # outside reference: the forward written out by hand, torch's own affine_grid/grid_sample on mid's output,
+        # read by both of its readers
+        y = reference_warp(model.mid(model.stem(x)))
+        want = model.head(model.c3(y) + y).mean((2, 3))
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+
+
+def _stash_input(module, args):
+    module.stashed = args[0]  # the model's own pre-hook keeps the input it was given
+
+
+class _OwnPreHook(_OwnHook):
+    def __init__(self):
+        super().__init__()
+        self.register_forward_pre_hook(_stash_input)
+
+    def forward(self, *args):
+        return self.head(self.c3(self.stem(args[0]))).mean((2, 3)) + self.stashed.mean((1, 2, 3))[:, None]
+
+
+def test_the_models_own_pre_hooks_see_the_warped_input():
+    torch.manual_seed(0)
+    model = _OwnPreHook().eval()
+    spliced = _quiet(insert, model, at="input", input_shape=(3, 16, 16))
+    _set_theta_(spliced, "input")
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        got = spliced(x)
+        # outside reference: torch's own affine_grid/grid_sample on the input, read by the forward and the pre-hook
+        xw = reference_warp(x)
+        want = model.head(model.c3(model.stem(xw))).mean((2, 3)) + xw.mean((1, 2, 3))[:, None]
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+
+
+# ----------------------------------------------------------------------------- localisation inputs
+
+
+class _Traceable(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.c2 = nn.Conv2d(8, 8, 3, stride=2, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, x):
+        return self.head(self.c2(torch.relu(self.stem(x)))).mean((2, 3))
+
+
+class _Untraceable(_Traceable):
+    def forward(self, *args):  # *args: fx cannot trace it, the hooks view lists it
+        return _Traceable.forward(self, args[0])
+
+
+def _sample(x, theta):
+    """Torch's own F.affine_grid + F.grid_sample (the outside reference for the sampling); ``theta`` as the warp's
+    head predicts it, the six entries of each 2x3 matrix row by row."""
+    grid = F.affine_grid(theta.view(-1, 2, 3), list(x.shape), align_corners=False)
+    return F.grid_sample(x, grid, mode="bilinear", padding_mode="zeros", align_corners=False)
+
+
+@pytest.mark.parametrize("first", ["input", "stem"])
+def test_a_localisation_head_reads_the_unwarped_point_under_hooks_as_under_fx(first):
+    cfg = WarpConfig(family="affine", loc_from=first)
+    torch.manual_seed(0)
+    fx_model = _Traceable().eval()
+    hk_model = _Untraceable().eval()
+    hk_model.load_state_dict(fx_model.state_dict())
+    by_fx = insert(fx_model, at=[first, "c2"], warp=cfg, input_shape=(3, 16, 16))
+    by_hooks = _quiet(insert, hk_model, at=[first, "c2"], warp=cfg, input_shape=(3, 16, 16))
+    assert isinstance(by_fx, torch.fx.GraphModule) and hooks_installed(by_hooks)
+    gen = torch.Generator().manual_seed(1)
+    warps_fx, warps_hk = warps_of(by_fx), warps_of(by_hooks)
+    for name, warp in warps_fx.items():  # the same non-identity heads in both
+        for p, q in zip(warp.parameters(), warps_hk[name].parameters()):
+            with torch.no_grad():
+                p.add_(0.05 * torch.randn(p.shape, generator=gen))
+                q.copy_(p)
+    x = torch.randn(3, 3, 16, 16)
+    with torch.no_grad():
+        got_fx, got_hooks = by_fx(x), by_hooks(x)
+        # outside reference: the forward written out by hand, torch's own affine_grid/grid_sample at each point, the
+        # thetas from the warps' heads; c2's head reads the unwarped tensor at `first`
+        m, w = fx_model, warps_fx
+        if first == "input":
+            seen = x
+            st = m.stem(_sample(x, w["input"].predict(x)))
+        else:
+            seen = m.stem(x)
+            st = _sample(seen, w["stem"].predict(seen))
+        c = m.c2(torch.relu(st))
+        want = m.head(_sample(c, w["c2"].predict(seen))).mean((2, 3))
+    torch.testing.assert_close(got_fx, want, rtol=1e-5, atol=1e-5)
+    torch.testing.assert_close(got_hooks, want, rtol=1e-5, atol=1e-5)
+
+
+def test_a_loop_over_chunks_of_two_images_is_no_point():
+    # batch 1 and batch 2 call `per` once each; batch 3 twice: the listing compares batch 3 with batch 1
+    names = {p.name for p in _quiet(graph.points, _Chunked().eval(), (3, 16, 16), all=True)}
+    assert "per" not in names and {"stem", "head"} <= names
+
+
+class _Twice(nn.Module):
+    """Needs one real value (the meta recording fails, torch.export lists it) and calls ``block`` twice."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.block = nn.Conv2d(8, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, *args):
+        x = self.stem(args[0]) * torch.ones(1).item()
+        return self.head(self.block(self.block(x))).mean((2, 3))
+
+
+def test_without_a_count_at_another_batch_a_module_called_twice_is_no_point():
+    # the batch-3 count runs on the meta device, which this forward cannot: `block` may be a loop over the images
+    pts = _quiet(graph.points, _Twice().eval(), (3, 16, 16), all=True)
+    assert [p.module for p in pts] == ["", "stem", "head"]
+
+
+class _KeywordOnly(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+
+    def forward(self, *, x):
+        return self.conv(x)
+
+
+def test_a_keyword_only_input_is_told_to_wrap_the_model():
+    from splice.errors import GraphError
+
+    with pytest.raises(GraphError, match="forward takes its input x by keyword only, which splice does not support; "
+                                         "wrap the model in a module whose forward takes the image positionally"):
+        graph.points(_KeywordOnly(), (3, 16, 16))
+
+
+class _LayerDrop(nn.Module):
+    """Python's random decides, in train mode, whether block 0 runs; one activation module serves every block."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.act = nn.ReLU()
+        self.convs = nn.ModuleList(nn.Conv2d(8, 8, 3, padding=1) for _ in range(3))
+
+    def forward(self, x):
+        import random
+
+        x = self.stem(x)
+        for i, conv in enumerate(self.convs):
+            if i == 0 and self.training and random.random() < 0.5:
+                continue
+            x = x + self.act(conv(x))
+        return x.mean((2, 3))
+
+
+def test_the_listing_draws_the_same_numbers_every_time_and_leaves_the_callers_generators():
+    import random
+
+    import numpy as np
+
+    model = _LayerDrop()
+    random.seed(3)
+    np.random.seed(3)
+    torch.manual_seed(3)
+    states = random.getstate(), np.random.get_state()[1].copy(), torch.get_rng_state()
+    listings = {tuple(p.name for p in _quiet(graph.points, model, (3, 16, 16), all=True)) for _ in range(8)}
+    assert len(listings) == 1
+    assert random.getstate() == states[0]
+    assert (np.random.get_state()[1] == states[1]).all() and torch.equal(torch.get_rng_state(), states[2])
