@@ -33,6 +33,7 @@ __all__ = [
     "TrainingDiverged",
     "SpliceWarning",
     "RandomWeightsWarning",
+    "EditedManifestWarning",
     "suggest",
     "closest",
     "first_line",
@@ -131,6 +132,11 @@ class RandomWeightsWarning(SpliceWarning):
 
 class UprightChangeWarning(SpliceWarning):
     """A warp run changes the base's predictions on many upright reference images."""
+
+
+class EditedManifestWarning(SpliceWarning):
+    """A folder's splice.json points differ from those its weights were written with (``verify``'s integrity row
+    fails it)."""
 
 
 class NormalisationWarning(SpliceWarning):
