@@ -461,30 +461,28 @@ def _run(args) -> int:
         with image_pixel_cap(getattr(args, "max_image_pixels", None)):
             return int(args.func(args) or 0)
     except CheckFailed as exc:
-        if args.debug:
-            raise
-        print(f"splice {args.command}: {exc.label}: {exc}", file=sys.stderr)
-        return EXIT_CHECK_FAILED
+        return _failed(args, f"{exc.label}: {exc}", EXIT_CHECK_FAILED)
     except SpliceError as exc:
-        if args.debug:
-            raise
-        print(f"splice {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_USAGE
+        return _failed(args, f"error: {exc}", EXIT_USAGE)
     except KeyboardInterrupt as exc:
         print(f"splice {args.command}: interrupted", file=sys.stderr)
         # the shell's convention: 128 plus the signal that asked for the stop (SIGINT 130, SIGTERM 143)
         return 128 + int(getattr(exc, "signal_number", None) or signal.SIGINT)
     except (OSError, ValueError) as exc:
-        if args.debug:
-            raise
-        print(f"splice {args.command}: error: {type(exc).__name__}: {exc}", file=sys.stderr)
-        return EXIT_USAGE
+        return _failed(args, f"error: {type(exc).__name__}: {exc}", EXIT_USAGE)
     except Exception as exc:  # a bug: still one line, but say so
-        if args.debug:
-            raise
-        print(f"splice {args.command}: internal error: {type(exc).__name__}: {first_line(exc)} "
-              "(rerun with --debug for the traceback and please report it)", file=sys.stderr)
-        return EXIT_USAGE
+        return _failed(args, f"internal error: {type(exc).__name__}: {first_line(exc)} "
+                             "(rerun with --debug for the traceback and please report it)", EXIT_USAGE)
+
+
+def _failed(args, line: str, code: int) -> int:
+    """The one line on stderr (after the traceback with ``--debug``), and the exit code: the same either way."""
+    if args.debug:
+        import traceback
+
+        traceback.print_exc(file=sys.stderr)
+    print(f"splice {args.command}: {line}", file=sys.stderr)
+    return code
 
 
 if __name__ == "__main__":  # pragma: no cover
