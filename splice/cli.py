@@ -101,13 +101,16 @@ def _cmd_points(args) -> int:
     src = _source(args)
     pts = graph.points(src.model, src.input_shapes, all=args.all, leaves=_leaves(args, src), within=args.within)
     report = graph.points_report(args.model, pts[0].shape if args.within else src.input_shape, pts)
+    if not args.within and len(src.input_shapes) > 1:  # input_shape stays the first input's
+        report = {"model": report.pop("model"), "input_shape": report.pop("input_shape"),
+                  "input_shapes": [[int(v) for v in s] for s in src.input_shapes], **report}
     if args.json:
         print(json.dumps(report, indent=2))
         return EXIT_OK
     from rich.table import Table
 
     where = f" within {args.within}" if args.within else ""
-    shape = "x".join(map(str, report["input_shape"]))
+    shape = ", ".join("x".join(map(str, s)) for s in report.get("input_shapes", [report["input_shape"]]))
     table = Table(title=f"insertion points of {args.model}{where} (input {shape})")
     for col, just in (("name", "left"), ("module", "left"), ("shape", "right"), ("stride", "right"),
                       ("cut", "center"), ("in branch (join)", "left"), ("+params", "right"),
