@@ -696,3 +696,21 @@ def test_warp_heads_train_at_lr_alone_and_at_warp_lr_scale_times_it_beside_the_b
     assert list(_warp_lrs(out)) == [pytest.approx(0.001)]
     groups = load_checkpoint(out / CHECKPOINT_NAME)["optimizer"]["param_groups"]
     assert {g["lr"] for g in groups if g["kind"] == "base"} == {0.01}
+
+
+def test_the_command_line_prints_a_run_caution_once(tmp_path, spliced, capsys):
+    # the upright caution and the no-range pre-training caution were a run line and a warning the CLI prints too
+    from splice.cli import main
+    from splice.recipes.files import recipe_to_toml
+
+    d = _recipe("warp-only", epochs=1, batch_size=64, lr=0.05).to_dict()
+    d["pretrain"].update(rotation=0.0, scale=[1.0, 1.0], shift=0.0, perspective=0.0)
+    from splice.recipes import Recipe
+
+    (tmp_path / "r.toml").write_text(recipe_to_toml(Recipe.from_dict(d)))
+    assert main(["tune", str(spliced), "--recipe", str(tmp_path / "r.toml"), "--data", "digits-moved",
+                 "--out", str(tmp_path / "run"), "--quiet"]) == 0
+    printed = capsys.readouterr()
+    both = printed.out + printed.err
+    assert both.count("but no rotation, scale, shift or perspective range") == 1, both
+    assert both.count("change the base's prediction on") == 1, both

@@ -155,8 +155,7 @@ def _warn_if_still(run: Run) -> None:
         text = (f"recipe {run.rec.name!r}: [pretrain] has {pre.epochs} epochs but no rotation, scale, shift or "
                 "perspective range, so warp pre-training draws no motion and teaches the identity only; give the "
                 "ranges the site's images move by (e.g. rotation = 30.0), or set [pretrain] epochs = 0")
-        run.bar.line(f"caution: {text}")
-        warnings.warn(text, SpliceWarning, stacklevel=4)
+        warnings.warn(text, SpliceWarning, stacklevel=4)  # the warning alone: the command line prints it once
 
 
 def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = None) -> dict[str, Any] | None:
