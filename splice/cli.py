@@ -411,7 +411,7 @@ def _parser_eval(sub) -> None:
 def _parser_demo(sub) -> None:
     p = sub.add_parser("demo", help="run the whole job on the embedded tray-camera digits")
     p.add_argument("--out", default="splice-demo", metavar="DIR")
-    p.add_argument("--fast", action="store_true", help="a shorter run (about a minute)")
+    p.add_argument("--fast", action="store_true", help="a shorter run (a few minutes on 2 CPU cores)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     p.set_defaults(func=_cmd_demo)
 
