@@ -101,13 +101,16 @@ def _cmd_points(args) -> int:
     src = _source(args)
     pts = graph.points(src.model, src.input_shapes, all=args.all, leaves=_leaves(args, src), within=args.within)
     report = graph.points_report(args.model, pts[0].shape if args.within else src.input_shape, pts)
+    if not args.within and len(src.input_shapes) > 1:  # input_shape stays the first input's
+        report = {"model": report.pop("model"), "input_shape": report.pop("input_shape"),
+                  "input_shapes": [[int(v) for v in s] for s in src.input_shapes], **report}
     if args.json:
         print(json.dumps(report, indent=2))
         return EXIT_OK
     from rich.table import Table
 
     where = f" within {args.within}" if args.within else ""
-    shape = "x".join(map(str, report["input_shape"]))
+    shape = ", ".join("x".join(map(str, s)) for s in report.get("input_shapes", [report["input_shape"]]))
     table = Table(title=f"insertion points of {args.model}{where} (input {shape})")
     for col, just in (("name", "left"), ("module", "left"), ("shape", "right"), ("stride", "right"),
                       ("cut", "center"), ("in branch (join)", "left"), ("+params", "right"),
@@ -408,7 +411,7 @@ def _parser_eval(sub) -> None:
 def _parser_demo(sub) -> None:
     p = sub.add_parser("demo", help="run the whole job on the embedded tray-camera digits")
     p.add_argument("--out", default="splice-demo", metavar="DIR")
-    p.add_argument("--fast", action="store_true", help="a shorter run (about a minute)")
+    p.add_argument("--fast", action="store_true", help="a shorter run (a few minutes on 2 CPU cores)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     p.set_defaults(func=_cmd_demo)
 
@@ -463,30 +466,28 @@ def _run(args) -> int:
         with image_pixel_cap(getattr(args, "max_image_pixels", None)):
             return int(args.func(args) or 0)
     except CheckFailed as exc:
-        if args.debug:
-            raise
-        print(f"splice {args.command}: {exc.label}: {exc}", file=sys.stderr)
-        return EXIT_CHECK_FAILED
+        return _failed(args, f"{exc.label}: {exc}", EXIT_CHECK_FAILED)
     except SpliceError as exc:
-        if args.debug:
-            raise
-        print(f"splice {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_USAGE
+        return _failed(args, f"error: {exc}", EXIT_USAGE)
     except KeyboardInterrupt as exc:
         print(f"splice {args.command}: interrupted", file=sys.stderr)
         # the shell's convention: 128 plus the signal that asked for the stop (SIGINT 130, SIGTERM 143)
         return 128 + int(getattr(exc, "signal_number", None) or signal.SIGINT)
     except (OSError, ValueError) as exc:
-        if args.debug:
-            raise
-        print(f"splice {args.command}: error: {type(exc).__name__}: {exc}", file=sys.stderr)
-        return EXIT_USAGE
+        return _failed(args, f"error: {type(exc).__name__}: {exc}", EXIT_USAGE)
     except Exception as exc:  # a bug: still one line, but say so
-        if args.debug:
-            raise
-        print(f"splice {args.command}: internal error: {type(exc).__name__}: {first_line(exc)} "
-              "(rerun with --debug for the traceback and please report it)", file=sys.stderr)
-        return EXIT_USAGE
+        return _failed(args, f"internal error: {type(exc).__name__}: {first_line(exc)} "
+                             "(rerun with --debug for the traceback and please report it)", EXIT_USAGE)
+
+
+def _failed(args, line: str, code: int) -> int:
+    """The one line on stderr (after the traceback with ``--debug``), and the exit code: the same either way."""
+    if args.debug:
+        import traceback
+
+        traceback.print_exc(file=sys.stderr)
+    print(f"splice {args.command}: {line}", file=sys.stderr)
+    return code
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -34,6 +34,7 @@ __all__ = [
     "TrainingDiverged",
     "SpliceWarning",
     "RandomWeightsWarning",
+    "EditedManifestWarning",
     "suggest",
     "closest",
     "first_line",
@@ -137,6 +138,11 @@ class UprightChangeWarning(SpliceWarning):
 class DataWarning(SpliceWarning):
     """Data that is read, but not quite as it might look: a split without images of some class, a data set name
     that is also the name of a folder."""
+
+
+class EditedManifestWarning(SpliceWarning):
+    """A folder's splice.json points differ from those its weights were written with (``verify``'s integrity row
+    fails it)."""
 
 
 class NormalisationWarning(SpliceWarning):

@@ -249,11 +249,15 @@ def read_image(path: Path, input_shape: Sequence[int]) -> Tensor:
     c, h, w = input_shape
     try:
         with open_capped(path) as im:
+            deep_colour = _deep_colour(path, im)  # before the transpose, whose copy has no format or tags
+            kind = im.format
             im = ImageOps.exif_transpose(im)
             if im.mode in ("I", "F") or im.mode.startswith("I;16"):
                 arr = _deep_grey(im, path, (w, h))
                 if c == 3:
                     arr = np.repeat(arr, 3, axis=0)
+            elif deep_colour:
+                arr = _deep_colour_pixels(path, kind, c, (w, h))
             else:
                 if im.mode == "P":
                     im = im.convert("RGBA")  # palette transparency must go through RGBA
@@ -294,6 +298,43 @@ def _deep_grey(im, path: Path, size: tuple[int, int]):
         grey = raw.astype(np.float32) / np.float32(_SIXTEEN_BIT)
     resized = Image.fromarray(np.ascontiguousarray(grey)).resize(size, Image.Resampling.BILINEAR)
     return np.clip(np.asarray(resized, dtype=np.float32), 0.0, 1.0)[None]
+
+
+def _deep_colour(path: Path, im) -> bool:
+    """A colour image of more than 8 bits per sample, which Pillow reads at 8 (a 16-bit RGB(A) PNG or TIFF): the PNG
+    IHDR bit depth byte (PNG specification, ISO/IEC 15948), the TIFF BitsPerSample tag (258)."""
+    if im.mode not in ("RGB", "RGBA", "LA"):
+        return False
+    if im.format == "PNG":
+        with open(path, "rb") as fh:
+            head = fh.read(26)
+        return len(head) == 26 and head[12:16] == b"IHDR" and head[24] > 8
+    bits = im.tag_v2.get(258, ()) if im.format == "TIFF" else ()
+    return any(int(b) > 8 for b in (bits if isinstance(bits, tuple) else (bits,)))
+
+
+def _deep_colour_pixels(path: Path, kind: str, c: int, size: tuple[int, int]):
+    """A 16-bit colour PNG at full depth (torchvision's PNG decoder; alpha dropped, as Pillow's RGB conversion
+    does) as float32 ``(c, H, W)`` in [0, 1]; any other deep colour file is refused."""
+    import numpy as np
+    from PIL import Image
+    from torchvision.io import ImageReadMode, decode_png, read_file
+
+    raw = None
+    if kind == "PNG":
+        raw = decode_png(read_file(str(path)), mode=ImageReadMode.UNCHANGED, apply_exif_orientation=True).numpy()
+    if raw is None or raw.dtype == np.uint8:  # a TIFF (Pillow reads it at 8 bits), or a decoder that truncated
+        raise DataError(f"image {path} has more than 8 bits per colour sample, which splice cannot read at full "
+                        "depth in this format; convert it to 16-bit grey (PNG or TIFF) or to 8-bit colour.")
+    deep = raw.astype(np.float32) / np.float32(_SIXTEEN_BIT)
+    deep = deep[:3] if deep.shape[0] >= 3 else deep[:1]  # without alpha
+    if c == 1 and deep.shape[0] == 3:  # Pillow's convert("L") weights (ITU-R 601-2 luma)
+        deep = (deep[0] * 0.299 + deep[1] * 0.587 + deep[2] * 0.114)[None]
+    elif c == 3 and deep.shape[0] == 1:
+        deep = np.repeat(deep, 3, axis=0)
+    planes = [np.asarray(Image.fromarray(np.ascontiguousarray(p)).resize(size, Image.Resampling.BILINEAR),
+                         dtype=np.float32) for p in deep]
+    return np.clip(np.stack(planes), 0.0, 1.0)
 
 
 def load_images(paths: Sequence[str | os.PathLike], input_shape: Sequence[int]) -> Tensor:

@@ -61,7 +61,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .copies import tree_copy
-from .errors import ManifestError, SpliceWarning
+from .errors import EditedManifestWarning, ManifestError, SpliceWarning
 from .schema import (FORMAT, MANIFEST_NAME, MECHANISMS, SCHEMA_VERSION, SCHEMA_VERSIONS, WEIGHTS_NAME,
                      record_problems, shape_ok, validate_manifest)
 from .sources import MODULE_SPEC, code_change
@@ -71,6 +71,7 @@ __all__ = [
     "POINTS_KEY",
     "points_sha256",
     "points_written",
+    "warn_if_points_edited",
     "SCHEMA_VERSION",
     "SCHEMA_VERSIONS",
     "MECHANISMS",
@@ -390,3 +391,14 @@ def points_written(weights_file) -> str | None:
             return (f.metadata() or {}).get(POINTS_KEY)
     except Exception:  # noqa: BLE001 - an unreadable header is the integrity row's finding, not this one's
         return None
+
+
+def warn_if_points_edited(folder, weights_file, points) -> None:
+    """Warn (:class:`~splice.errors.EditedManifestWarning`) when ``points`` (splice.json's, now) are not those the
+    weights file was written with; a file that holds no points hash (written before it was kept) is not warned."""
+    written = points_written(weights_file)
+    if written is not None and written != points_sha256(points):
+        warnings.warn(f"'{folder}': {MANIFEST_NAME}'s points differ from those its weights were written with (it "
+                      "was edited after saving), so the warps compute something else and verify's integrity row "
+                      f"fails; restore {MANIFEST_NAME} from a good copy or insert again", EditedManifestWarning,
+                      stacklevel=3)

@@ -160,9 +160,15 @@ def refuse_unfit_inputs(model, shapes: Sequence, what: str = "the model") -> Non
                           "are resized to it)") from None
 
 
-# the opt-ins a refusal of ``against`` names, as the user gives them for that model
-_AGAINST_OPT_INS = (("--trust-code", "--against-trust-code"), ("trust_code=True", "against_trust_code=True"),
-                    ("--trust-pickle", "--against-trust-pickle"), ("trust_pickle=True", "against_trust_pickle=True"))
+# the opt-ins a refusal of ``against`` names, as the user gives them for that model: the command line's flag, and
+# in Python evaluate's against_options or evaluate_keywords' flat keyword
+_AGAINST_OPT_INS = (
+    ("--trust-code", "--against-trust-code"), ("--trust-pickle", "--against-trust-pickle"),
+    ("trust_code=True", "against_options=ModelOptions(trust_code=True) to evaluate, against_trust_code=True to "
+                        "evaluate_keywords"),
+    ("trust_pickle=True", "against_options=ModelOptions(trust_pickle=True) to evaluate, against_trust_pickle=True to "
+                          "evaluate_keywords"),
+)
 
 
 def load_against(against, options: ModelOptions, default_input_shape):

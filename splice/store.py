@@ -32,7 +32,7 @@ from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256, write
 from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
 from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
 from .manifest import (MANIFEST_NAME, POINTS_KEY, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
-                       points_sha256, validate_manifest)
+                       points_sha256, validate_manifest, warn_if_points_edited)
 from .version import library_versions
 from .sources import (Source, adopt_state, build_model, check_finite, check_state_fits, check_spec,
                       initialisers_skipped, is_hf_folder, load_source, materialise_lazy_, parse_input_shapes,
@@ -365,18 +365,16 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
                 strict: bool = True, frame: bool = True, trust_code: bool = False) -> OpenedFolder:
     """Read a folder's manifest and check its weights against the recorded sha256.
 
-    The file is hashed on a second thread while the architecture (and, with
-    ``frame``, the spliced frame around it) is built on the meta device; no
-    byte of it is loaded before its hash is known to match. With ``strict`` a
-    mismatch raises :class:`~splice.errors.IntegrityError`, else the result
-    has ``state=None``. safetensors maps the file; with ``keep_mapped`` the
-    tensors stay backed by it (for a caller that lives only as long as one
-    call: a file truncated while they are alive kills the process with
-    SIGBUS), else they are copied out, so a loaded model never depends on it.
+    The file is hashed on a second thread while the architecture (and, with ``frame``, the spliced frame around it)
+    is built on the meta device; no byte of it is loaded before its hash is known to match. With ``strict`` a
+    mismatch raises :class:`~splice.errors.IntegrityError` and edited points warn, else the result has
+    ``state=None`` (the caller reports both: verify's integrity row). safetensors maps the file; with
+    ``keep_mapped`` the tensors stay backed by it (for a caller that lives only as long as one call: a file
+    truncated while they are alive kills the process with SIGBUS), else they are copied out, so a loaded model
+    never depends on it.
 
-    The recorded spec came from a file: it passes the gate of
-    :func:`splice.sources.check_spec` (a registry lookup, or ``trust_code``)
-    before anything is built.
+    The recorded spec came from a file: it passes the gate of :func:`splice.sources.check_spec` (a registry
+    lookup, or ``trust_code``) before anything is built.
     """
     folder = Path(folder)
     manifest = read_manifest(folder)
@@ -400,6 +398,8 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
                 "changed or damaged after saving — restore the folder from a good copy"
             )
         return opened
+    if strict:
+        warn_if_points_edited(folder, path, manifest.get("points"))
     state = read_safetensors(path)
     own = empty.state_dict(keep_vars=True) if empty is not None else {}
     if own and not any(nn.parameter.is_lazy(t) for t in own.values()):  # shapes known: refuse before a real build

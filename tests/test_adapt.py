@@ -322,7 +322,9 @@ def test_label_free_arguments_are_checked(tmp_path, spliced, base, folders):
         tune(str(base), recipe="baseline", site=str(site), out=tmp_path / "c", run_options=QUIET)
     unknown = splice.save(splice.insert(splice.load_source(SPEC, kwargs=KW, input_shape=SHAPE, warn_random=False),
                                         at=["input"], warp=splice.WarpConfig(head_width=4)), tmp_path / "unknown")
-    with pytest.raises(RecipeError, match="pass --reference REF"):  # no record says what its base was trained on
+    # no record says what its base was trained on
+    with pytest.raises(RecipeError,
+                       match=r"pass --reference REF \(in Python, overrides=RecipeOverrides\(reference=REF\)\)"):
         tune(str(unknown), recipe=_tiny(), site=str(site), out=tmp_path / "d", run_options=QUIET)
     with pytest.raises(RecipeError, match="site.objective = 'both' is not allowed"):
         _tiny(objective="both")

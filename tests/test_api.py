@@ -75,3 +75,62 @@ def test_a_plain_module_object_gets_advice_it_can_follow(tmp_path):
     result = splice.evaluate(plain, data="digits", distort="none", model_options=ModelOptions(input_shape=(1, 16, 16)),
                              options=EvalOptions(limit=8))
     assert result["n_images"] == 8
+
+
+def _readme_python_block() -> str:
+    """The first Python block under the README's "## Python API" heading."""
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    section = text[text.index("\n## Python API\n"):]
+    start = section.index("```python\n") + len("```python\n")
+    return section[start:section.index("```", start)]
+
+
+def _image_trees(root) -> None:
+    """my_images/ and upright/ (3 classes, train/, val/ and test/ splits) of 24x24 grey PNGs (written by Pillow)."""
+    import numpy as np
+    from PIL import Image
+
+    rng = np.random.default_rng(0)
+    for tree in ("my_images", "upright"):
+        for split, n in (("train", 6), ("val", 3), ("test", 3)):
+            for k, name in enumerate(("bolt", "nut", "washer")):
+                folder = root / tree / split / name
+                folder.mkdir(parents=True)
+                for i in range(n):
+                    pixels = rng.integers(0, 60, (24, 24), dtype=np.uint8)
+                    pixels[4 + 4 * k:10 + 4 * k, 6:18] = 230  # a bright bar whose height says the class
+                    Image.fromarray(pixels).save(folder / f"{i}.png")
+
+
+def test_the_readme_python_api_block_runs(tmp_path, monkeypatch):
+    # the README's block as written, on a tiny model: tray_net (width 4, 24x24 grey) in place of resnet18, whose
+    # weights file is written here; my_images/ and upright/ are small Pillow-written trees; 1 epoch, short
+    # pre-training (the recipe file's other keys as shipped)
+    import torch
+
+    from splice.recipes import load_recipe
+
+    code = _readme_python_block()
+    subs = {'"torchvision:resnet18"': '"splice.models:tray_net"',
+            'kwargs={"num_classes": 3})': 'kwargs={"num_classes": 3, "width": 4}, input_shape=(1, 24, 24))',
+            "head_width=32": "head_width=4", "epochs=4": "epochs=1", 'recipe="warp-only"': "recipe=RECIPE"}
+    for old, new in subs.items():
+        assert old in code, f"the README's Python API block no longer holds {old!r}: update this test's substitution"
+        code = code.replace(old, new)
+    monkeypatch.chdir(tmp_path)
+    _image_trees(tmp_path)
+    torch.manual_seed(0)
+    torch.save(splice.models.tray_net(num_classes=3, width=4).state_dict(), "r18.pth")
+    recipe = load_recipe("warp-only").to_dict()
+    recipe["pretrain"].update(epochs=1, batch_size=8)
+    recipe["batch_size"] = 8
+    from splice.recipes import Recipe
+
+    scope = {"RECIPE": Recipe.from_dict(recipe)}
+    torch.set_num_threads(1)
+    exec(compile(code, "README.md (Python API)", "exec"), scope)
+    assert scope["report"].passed and (tmp_path / "r18.onnx").is_file()
+    assert scope["summary"]["steps"] == 3  # 18 training images, batch 8 (ceil 18/8), 1 epoch
+    assert (tmp_path / "runs" / "r18" / "inspect").is_dir() and scope["result"] is not None

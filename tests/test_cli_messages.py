@@ -241,3 +241,27 @@ def test_model_options_written_as_flags_parse_back_to_the_same_options(tmp_path)
     assert model_flags(args) == flags  # the CLI's own echo is the same text
     assert ModelOptions(input_shape=(1, 28, 28)).as_flags() == " --input-shape 1x28x28"
     assert ModelOptions().as_flags() == ""
+
+
+@pytest.mark.parametrize("raised, code", [(errors.SourceError("no such model"), 2),
+                                          (errors.TrainingDiverged("the loss became nan"), 1),
+                                          (RuntimeError("a bug"), 2)])
+def test_debug_adds_the_traceback_and_keeps_the_exit_code(tmp_path, monkeypatch, capsys, raised, code):
+    import splice.verification
+
+    def fails(*args, **kwargs):
+        raise raised
+
+    monkeypatch.setattr(splice.verification, "verify", fails)
+    missing = str(tmp_path / "nosuchdir")
+    assert main(["verify", missing]) == code
+    plain = capsys.readouterr().err
+    assert main(["verify", missing, "--debug"]) == code
+    debug = capsys.readouterr().err
+    assert "Traceback" not in plain and len(plain.splitlines()) == 1
+    assert debug.startswith("Traceback (most recent call last):") and debug.splitlines()[-1] == plain.strip()
+
+
+def test_debug_keeps_exit_code_2_for_a_folder_that_does_not_exist(tmp_path, capsys):
+    missing = str(tmp_path / "nosuchdir")
+    assert main(["verify", missing]) == 2 and main(["verify", missing, "--debug"]) == 2

@@ -76,7 +76,8 @@ def test_reference_resolution_order(tmp_path):
     assert (base.data, base.origin) == ("/data/upright", "base")
     assert resolve_reference(folder, trained_on=data_record(folder)).data == "train"  # trained on this very data
     assert resolve_reference(folder, if_missing="skip").skipped
-    with pytest.raises(RecipeError, match=r"pass --reference DATA .* if_no_reference = \"skip\""):
+    with pytest.raises(RecipeError, match=r"pass --reference DATA \(in Python, overrides=RecipeOverrides\("
+                                          r"reference=DATA\)\): .* if_no_reference = \"skip\""):
         resolve_reference(folder)
 
 

@@ -117,6 +117,9 @@ def test_an_onnx_file_says_what_it_needs_and_what_it_returns(tray_folder, tmp_pa
     assert json.loads(meta["splice.class_names"]) == info.class_names
     assert len(json.loads(meta["splice.outputs"])) == len(session.get_outputs())
     assert json.loads(meta["splice.points"]) == [p.name for p in info.points]
+    assert json.loads(meta["splice.version"]) == splice.__version__
+    # README: every splice.* value is JSON (the json module, the reference, reads each one)
+    assert {k: json.loads(v) for k, v in meta.items() if k.startswith("splice.")}
 
 
 @pytest.mark.parametrize("dtype, tol", [("float64", 1e-5), ("bfloat16", 0.05)])

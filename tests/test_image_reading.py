@@ -88,6 +88,33 @@ def test_16_bit_images_keep_their_scale(tmp_path):
     torch.testing.assert_close(read_image(tmp_path / "twelve.png", (1, 4, 4)), torch.full((1, 4, 4), 4095 / 65535))
 
 
+def test_16_bit_colour_png_is_read_at_full_depth_and_a_16_bit_colour_tiff_is_refused(tmp_path):
+    cv2 = pytest.importorskip("cv2")
+    rgb16 = (np.random.default_rng(0).random((10, 14, 3)) * 65535).astype(np.uint16)
+    rgb16[0, 0] = (257, 258, 65535)  # low bytes an 8-bit read drops
+    cv2.imwrite(str(tmp_path / "rgb16.png"), rgb16[:, :, ::-1])  # OpenCV writes BGR
+    with Image.open(tmp_path / "rgb16.png") as im:
+        assert im.mode == "RGB"  # what Pillow would read: 8 bits
+    # reference: OpenCV's IMREAD_UNCHANGED read of the same file, divided by 65535 (README "Bit depth")
+    ref = cv2.imread(str(tmp_path / "rgb16.png"), cv2.IMREAD_UNCHANGED)[:, :, ::-1].transpose(2, 0, 1) / 65535
+    got = read_image(tmp_path / "rgb16.png", (3, 10, 14)).numpy()
+    np.testing.assert_allclose(got, ref, atol=1e-7)
+    assert got[1, 0, 0] != got[0, 0, 0]  # 258 vs 257: 16 bits kept
+    # grey: Pillow's documented L conversion weights, L = R * 299/1000 + G * 587/1000 + B * 114/1000
+    grey = read_image(tmp_path / "rgb16.png", (1, 10, 14)).numpy()[0]
+    np.testing.assert_allclose(grey, ref[0] * 0.299 + ref[1] * 0.587 + ref[2] * 0.114, atol=1e-6)
+    cv2.imwrite(str(tmp_path / "rgb16.tif"), rgb16)  # a 16-bit RGB TIFF: Pillow reads it at 8 bits
+    with pytest.raises(DataError, match=r"rgb16.tif has more than 8 bits per colour sample, .* convert it to "
+                                        r"16-bit grey \(PNG or TIFF\) or to 8-bit colour\.$"):
+        read_image(tmp_path / "rgb16.tif", (3, 10, 14))
+    eight = Image.fromarray((rgb16 >> 8).astype(np.uint8))
+    eight.save(tmp_path / "rgb8.tif")  # 8-bit colour TIFF and PNG: as before
+    eight.save(tmp_path / "rgb8.png")
+    for name in ("rgb8.tif", "rgb8.png"):
+        np.testing.assert_allclose(read_image(tmp_path / name, (3, 10, 14)).numpy(),
+                                   (rgb16 >> 8).transpose(2, 0, 1) / 255, atol=1e-7)
+
+
 def test_alpha_is_dropped_like_torchvision_and_grey_is_luma(tmp_path):
     rgba = Image.new("RGBA", (6, 6), (200, 100, 50, 0))  # fully transparent, yet its colour is what is read
     rgba.save(tmp_path / "clear.png")

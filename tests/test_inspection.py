@@ -96,6 +96,25 @@ def test_describe_linear_scales_match_scipy_and_axis_is_principal():
         np.testing.assert_allclose(float(d["anisotropy"][i]), svdvals(a)[0] / svdvals(a)[1], rtol=1e-12)
 
 
+def test_a_vertical_scale_axis_reads_90_whichever_sign_rounding_gives_it():
+    from scipy.linalg import polar
+
+    # a pure vertical stretch, with off-diagonal terms of rounding size (as a float32 theta gives them): the axis
+    # is the vertical, reported near 90 (README: axes in (-90, 90]), never as -89.9999993
+    for e in (0.0, 1e-9, -1e-9, 4e-8, -4e-8):
+        for dtype in (torch.float64, torch.float32):
+            a = torch.tensor([[[1.0, e], [0.0, 2.0]], [[1.0, 0.0], [e, 2.0]]], dtype=dtype)
+            d = I.describe_linear(a)
+            assert all(90.0 - 1e-5 < v <= 90.0 for v in d["scale_axis_deg"].tolist()), (e, dtype, d)
+            assert all(-90.0 < v <= 90.0 for v in d["view_zoom_axis_deg"].tolist())
+            # source: scipy.linalg.polar — the vertical is still scale_1's eigenvector of P
+            ref_p = polar(a[0].double().numpy(), side="right")[1]
+            np.testing.assert_allclose(ref_p @ np.array([0.0, 1.0]), [0.0, 2.0], atol=1e-6)
+    # an axis a real (not rounding-sized) step off the vertical keeps its sign
+    tilted = I.describe_linear(torch.tensor([[[1.0, -1e-4], [0.0, 2.0]]], dtype=torch.float64))["scale_axis_deg"]
+    assert -90.0 < float(tilted) < -89.99
+
+
 def test_viewer_side_is_the_description_of_the_inverse_map():
     mats = _random_matrices(8, seed=3)[:16]
     d = I.describe_linear(torch.from_numpy(mats))

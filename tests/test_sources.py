@@ -463,8 +463,11 @@ def test_cli_truncated_checkpoint_and_debug(tmp_path, capsys):
     path.write_bytes(path.read_bytes()[:400])
     assert main(["points", "splice.models:tray_net", "--weights", str(path)]) == 2
     assert "truncated" in capsys.readouterr().err
-    with pytest.raises(WeightsError):
-        main(["points", "splice.models:tray_net", "--weights", str(path), "--debug"])
+    # --debug adds the traceback and keeps the exit code (2, as without it)
+    assert main(["points", "splice.models:tray_net", "--weights", str(path), "--debug"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("Traceback (most recent call last):") and "WeightsError" in err
+    assert err.rstrip().splitlines()[-1].startswith("splice points: error: ") and "truncated" in err
 
 
 def test_python_dash_m_entry_point():

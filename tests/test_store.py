@@ -43,6 +43,13 @@ def test_a_similarity_folder_records_its_frame_and_an_older_one_keeps_normalised
     shutil.copytree(saved, older)
     data = json.loads((older / MANIFEST_NAME).read_text())
     del data["points"][0]["warp"]["frame"]  # as a release before frames wrote it
+    from safetensors.torch import load_file, save_file
+
+    from splice.fileio import file_sha256
+
+    # such a release kept no points hash in the weights file either (it came later): nothing to warn about
+    save_file(load_file(older / "weights.safetensors"), older / "weights.safetensors", metadata={"format": "pt"})
+    data["weights"]["sha256"] = file_sha256(older / "weights.safetensors")
     (older / MANIFEST_NAME).write_text(json.dumps(data))
     (warp,) = warps_of(splice.load(older)).values()
     assert warp.config.frame == "normalised"

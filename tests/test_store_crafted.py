@@ -70,3 +70,44 @@ def test_an_edited_warp_config_in_splice_json_fails_verify_integrity(tmp_path):
     report = verify(folder)
     assert report.failed == ["integrity"]
     assert "splice.json was edited after saving" in report["integrity"].detail
+
+
+def test_opening_a_folder_whose_points_were_edited_warns_and_verify_still_fails_its_row(tmp_path):
+    import json as _json
+    import warnings
+
+    from safetensors.torch import load_file, save_file
+
+    import splice
+    from splice.errors import EditedManifestWarning
+    from splice.fileio import file_sha256
+    from splice.manifest import MANIFEST_NAME, WEIGHTS_NAME
+    from splice.store import load_base
+    from splice.verification import verify
+
+    folder = splice.save(splice.insert("splice.models:tray_net", at="input", warp="similarity"), tmp_path / "sp")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # an unedited folder opens silently
+        splice.load(folder)
+    data = _json.loads((folder / MANIFEST_NAME).read_text())
+    data["points"][0]["warp"]["padding"] = "border"
+    (folder / MANIFEST_NAME).write_text(_json.dumps(data, indent=2))
+    for opener in (splice.load, load_base):
+        with pytest.warns(EditedManifestWarning) as caught:
+            opener(folder)
+        (message,) = [str(w.message) for w in caught]
+        assert message.startswith(f"'{folder}': splice.json's points differ from those its weights were written")
+        assert "verify's integrity row fails" in message and "\n" not in message
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # verify reports it in its row, once, and warns nothing
+        report = verify(folder)
+    assert report.failed == ["integrity"] and report["integrity"].summary == "points edited"
+    # a folder written before the hash was kept (safetensors metadata without it, as safetensors.safe_open reads
+    # it): nothing to compare, no warning
+    weights = folder / WEIGHTS_NAME
+    save_file(load_file(weights), weights, metadata={"format": "pt"})
+    data["weights"]["sha256"] = file_sha256(weights)
+    (folder / MANIFEST_NAME).write_text(_json.dumps(data, indent=2))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        splice.load(folder)

@@ -270,3 +270,26 @@ def test_a_folder_naming_itself_is_refused_at_once(tmp_path, base_folder, capsys
     assert "--trust-code" in _one_error_line(capsys)
     assert main(["verify", str(folder), "--trust-code"]) == 2
     assert "names a folder" in _one_error_line(capsys)
+
+
+def test_a_refused_against_model_names_the_python_opt_in_each_entry_point_takes(tmp_path, base_folder, monkeypatch):
+    """The hint is followed as written: evaluate's against_options=ModelOptions(...), evaluate_keywords'
+    against_trust_code= (the CLI's --against-trust-code is test_trusting_the_model_does_not_trust_...)."""
+    from splice.evaluation import evaluate_keywords
+    from splice.options import ModelOptions
+
+    monkeypatch.delenv("SPLICE_TRUST_CODE", raising=False)
+    theirs = _plant(tmp_path, base_folder, "py")
+    both = {"data": "digits", "distort": "none", "against": str(theirs["folder"])}
+    with pytest.raises(UntrustedCodeError) as refused:
+        splice.evaluate(str(base_folder), **both)
+    hint = str(refused.value)
+    assert "pass --against-trust-code (against_options=ModelOptions(trust_code=True) to evaluate, " \
+           "against_trust_code=True to evaluate_keywords, or SPLICE_TRUST_CODE=1)" in hint, hint
+    assert not _ran(theirs)
+    limit = splice.evaluation.EvalOptions(limit=8)
+    splice.evaluate(str(base_folder), **both, options=limit, against_options=ModelOptions(trust_code=True))
+    assert _ran(theirs)
+    theirs["sentinel"].unlink()
+    evaluate_keywords(str(base_folder), **both, limit=8, against_trust_code=True)
+    assert _ran(theirs)

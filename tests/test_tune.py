@@ -665,3 +665,52 @@ def test_a_run_an_older_splice_started_records_upright_agreement_after_its_resum
     assert [r["reference_agreement"] for r in read_metrics(part)] == \
         [r["reference_agreement"] for r in read_metrics(full)]
     assert all(r["reference_agreement"] is not None for r in read_metrics(part))
+
+
+def _warp_lrs(out) -> set[float]:
+    groups = load_checkpoint(out / CHECKPOINT_NAME)["optimizer"]["param_groups"]
+    return {g["lr"] for g in groups if g["kind"] == "warps"}
+
+
+def test_warp_heads_train_at_lr_alone_and_at_warp_lr_scale_times_it_beside_the_base(tmp_path, spliced):
+    from splice.recipes import Recipe
+
+    # a hand-written warp-only recipe: warp_lr_scale keeps its default (0.1), yet the heads are all that trains
+    own = Recipe.from_dict({"schema_version": 1, "mode": "warp-only", "lr": 0.01, "schedule": "constant",
+                            "epochs": 1, "batch_size": 128,
+                            "pretrain": {"epochs": 1, "lr": 0.002, "reference": "digits", "rotation": 30.0}})
+    assert own.warp_lr_scale == 0.1
+    out = tmp_path / "own"
+    tune(str(spliced), recipe=own, data="digits-moved", out=out, run_options=RunOptions(progress=False))
+    rows = read_metrics(out)
+    assert [(r["phase"], r["lr"]) for r in rows] == [("pretrain", 0.002), ("epoch", 0.01)]
+    assert _warp_lrs(out) == {0.01}
+    # staged, 2 epochs (0.4 * 2 -> 1 warp-only epoch): lr while the base is frozen, 0.1 * lr once it trains too
+    staged = _recipe("staged", epochs=2, lr=0.01, schedule="constant", warmup_epochs=0.0, warp_lr_scale=0.1,
+                     pretrain_epochs=0)
+    out = tmp_path / "staged"
+    tune(str(spliced), recipe=staged, data="digits-moved", out=out,
+         run_options=RunOptions(progress=False, stop_after_steps=1))
+    assert _warp_lrs(out) == {0.01}
+    tune_keywords(resume=out, **QUIET)
+    assert list(_warp_lrs(out)) == [pytest.approx(0.001)]
+    groups = load_checkpoint(out / CHECKPOINT_NAME)["optimizer"]["param_groups"]
+    assert {g["lr"] for g in groups if g["kind"] == "base"} == {0.01}
+
+
+def test_the_command_line_prints_a_run_caution_once(tmp_path, spliced, capsys):
+    # the upright caution and the no-range pre-training caution were a run line and a warning the CLI prints too
+    from splice.cli import main
+    from splice.recipes.files import recipe_to_toml
+
+    d = _recipe("warp-only", epochs=1, batch_size=64, lr=0.05).to_dict()
+    d["pretrain"].update(rotation=0.0, scale=[1.0, 1.0], shift=0.0, perspective=0.0)
+    from splice.recipes import Recipe
+
+    (tmp_path / "r.toml").write_text(recipe_to_toml(Recipe.from_dict(d)))
+    assert main(["tune", str(spliced), "--recipe", str(tmp_path / "r.toml"), "--data", "digits-moved",
+                 "--out", str(tmp_path / "run"), "--quiet"]) == 0
+    printed = capsys.readouterr()
+    both = printed.out + printed.err
+    assert both.count("but no rotation, scale, shift or perspective range") == 1, both
+    assert both.count("change the base's prediction on") == 1, both

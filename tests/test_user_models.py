@@ -370,3 +370,17 @@ def test_a_model_attribute_named_like_a_graph_modules_goes_to_hooks():
     with pytest.warns(TraceFallbackWarning):
         spliced = splice.insert(_NamedLikeAGraphModule(), at="recommended", input_shape=(3, 16, 16))
     assert splice.verify(spliced).passed
+
+
+def test_points_json_of_a_two_input_model_lists_every_input_shape(capsys):
+    import json
+
+    from splice.cli import main
+
+    # RGB_DEPTH declares (3, 16, 16) and (1, 16, 16); the json module is the reference reader
+    assert main(["points", RGB_DEPTH, "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["input_shape"] == [3, 16, 16] and report["input_shapes"] == [[3, 16, 16], [1, 16, 16]]
+    assert list(report)[:3] == ["model", "input_shape", "input_shapes"]
+    assert main(["points", "splice.models:tray_net", "--json"]) == 0
+    assert "input_shapes" not in json.loads(capsys.readouterr().out)  # one input: as before

@@ -129,7 +129,7 @@ def end(run: AdaptRun, rows: list[dict], *, interrupted: bool = False) -> dict[s
     _print_summary(run, summary)
     if run.ctx.is_main and not interrupted:
         images = 0 if run.reference_start is None else len(run.reference_start)
-        caution_upright(run.bar, summary["reference_agreement"], images, "best/ and last/")
+        caution_upright(summary["reference_agreement"], images, "best/ and last/")
     return summary
 
 

@@ -80,7 +80,8 @@ def reference_for_site(rec: Recipe, site: str, override: str | None, trained_on:
     if ref.data is None or ref.data == "train":
         raise RecipeError(
             f"the label-free recipe needs upright reference images (the kind the base was trained on) and none "
-            f"is known for site {site!r}; pass --reference REF (an ImageFolder, a flat folder of images, or digits)"
+            f"is known for site {site!r}; pass --reference REF (in Python, overrides=RecipeOverrides(reference=REF)): "
+            "an ImageFolder, a flat folder of images, or digits"
         )
     return ref.data
 

@@ -184,7 +184,7 @@ def _deployment_notes(model) -> dict[str, str]:
     return {"splice.input_shapes": json.dumps([list(s) for s in info.input_shapes]),
             "splice.normalisation": json.dumps(info.normalisation), "splice.class_names": json.dumps(info.class_names),
             "splice.outputs": json.dumps(outputs), "splice.points": json.dumps([p.name for p in info.points]),
-            "splice.version": __version__}
+            "splice.version": json.dumps(__version__)}  # every value JSON, as the README says
 
 
 def _updated_by_a_call(model, shapes) -> list[str]:

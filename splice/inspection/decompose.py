@@ -41,11 +41,17 @@ def polar_decompose(a: Tensor) -> tuple[Tensor, Tensor]:
     return u, p
 
 
+# An axis this close to -90 degrees is the vertical, reported as 90 (a vertical stretch's singular vector comes out
+# at either sign of a rounding-sized x). Common practice, no source.
+_AXIS_TOL_DEG = 1e-5
+
+
 def _fold_axis(x: Tensor, y: Tensor) -> Tensor:
-    """Angle (degrees) of the undirected axis through ``(x, y)``, folded into ``(-90, 90]``."""
+    """Angle (degrees) of the undirected axis through ``(x, y)``, folded into ``(-90, 90]``; within
+    :data:`_AXIS_TOL_DEG` of -90 it is 90."""
     deg = torch.rad2deg(torch.atan2(y, x))
     deg = torch.where(deg > 90.0, deg - 180.0, deg)
-    return torch.where(deg <= -90.0, deg + 180.0, deg)
+    return torch.where(deg <= -90.0 + _AXIS_TOL_DEG, torch.clamp(deg + 180.0, max=90.0), deg)
 
 
 # Two principal scales closer than this (relative) make every axis principal:

@@ -47,6 +47,7 @@ class Recipe:
     - ``joint``: everything trains; warp heads at ``warp_lr_scale * lr``.
     - ``staged``: ``warp-only`` for the first ``round(warp_only_fraction * epochs)``
       epochs, then ``joint`` (a fraction, so ``--epochs`` keeps the proportion).
+      ``warp_lr_scale`` applies only while the base trains too; alone, the heads train at ``lr``.
     - ``label-free``: no label is read. The base is frozen as in ``warp-only``;
       the warp heads learn from upright reference images and unlabelled site
       images (``[site]``, :mod:`splice.adapt`); ``epochs`` counts passes over

@@ -23,8 +23,7 @@ from .checkpoint import set_rng_state
 from .head import confidently_wrong, final_layer, zero_final_layer_
 from .loop import Stepper, ThetaTap
 from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, \
-    set_modes, \
-    set_requires_grad
+    set_modes, set_requires_grad, set_warp_lr
 from .pretrain import pretrain_warps_
 from .recording import (base_predictions, checkpoint, diverged, evaluate_val, finish, record, saved_predictions,
                         stopped)
@@ -156,8 +155,7 @@ def _warn_if_still(run: Run) -> None:
         text = (f"recipe {run.rec.name!r}: [pretrain] has {pre.epochs} epochs but no rotation, scale, shift or "
                 "perspective range, so warp pre-training draws no motion and teaches the identity only; give the "
                 "ranges the site's images move by (e.g. rotation = 30.0), or set [pretrain] epochs = 0")
-        run.bar.line(f"caution: {text}")
-        warnings.warn(text, SpliceWarning, stacklevel=4)
+        warnings.warn(text, SpliceWarning, stacklevel=4)  # the warning alone: the command line prints it once
 
 
 def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = None) -> dict[str, Any] | None:
@@ -201,8 +199,8 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     if res["stopped"]:
         return stopped(run, 0, 0, where=f"warp pre-training step {res['steps']}")
     run.bar.finish(res["steps"])
-    record(run, "pretrain", 0, loss=round(res["grid_loss"], 6),
-           extra={"reference": run.reference.data, "pretrain_steps": res["steps"]})
+    record(run, "pretrain", 0, loss=round(res["grid_loss"], 6),  # lr: the pre-training's peak, not the task's
+           extra={"reference": run.reference.data, "pretrain_steps": res["steps"], "lr": rec.pretrain.lr})
     checkpoint(run, stepper, epoch=0, batch=0)
     return None
 
@@ -246,6 +244,7 @@ def _enter_epoch(run: Run, stepper: Stepper, frozen: _Frozen, epoch: int) -> Non
         _wrap(run, base_frozen)
         stepper.model = run.net_wrapped
         frozen.base = base_frozen
+    set_warp_lr(run.optimizer, rec, base_frozen)
     set_modes(run.net, run.warps, base_frozen, frozen.modules)
     stepper.reg_weight = rec.identity_reg * rec.identity_reg_decay ** epoch if run.warps else 0.0
 

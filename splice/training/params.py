@@ -13,7 +13,7 @@ from ..recipes import Recipe
 from ..surgery import WARP_PREFIX
 
 __all__ = ["frozen_names", "frozen_modules", "frozen_by_model", "param_groups", "make_optimizer", "set_requires_grad",
-           "set_modes",
+           "set_modes", "warp_lr", "set_warp_lr",
            "grad_reducer", "is_warp_name"]
 
 
@@ -61,8 +61,22 @@ def frozen_by_model(model: nn.Module) -> tuple[set[str], list[tuple[str, nn.Modu
     return names, modules
 
 
+def warp_lr(recipe: Recipe, base_frozen: bool) -> float:
+    """The warp heads' learning rate: ``lr`` while the base is frozen (nothing else trains), ``warp_lr_scale * lr``
+    while the base trains too (``joint``, the joint phase of ``staged``)."""
+    return recipe.lr * (1.0 if base_frozen else recipe.warp_lr_scale)
+
+
+def set_warp_lr(optimizer: torch.optim.Optimizer, recipe: Recipe, base_frozen: bool) -> None:
+    """Set the warp groups' ``base_lr`` (the schedule's peak) for the phase: see :func:`warp_lr`."""
+    for g in optimizer.param_groups:
+        if g.get("kind") == "warps":
+            g["base_lr"] = warp_lr(recipe, base_frozen)
+
+
 def param_groups(model: nn.Module, recipe: Recipe, frozen: set[str]) -> list[dict]:
-    """Base and warp groups, each split into decayed (matrices, kernels) and undecayed (biases, norms)."""
+    """Base and warp groups, each split into decayed (matrices, kernels) and undecayed (biases, norms); the warp
+    groups at the first epoch's :func:`warp_lr`."""
     groups: dict[tuple[str, bool], list] = {}
     for name, p in model.named_parameters():
         if name in frozen:
@@ -74,7 +88,7 @@ def param_groups(model: nn.Module, recipe: Recipe, frozen: set[str]) -> list[dic
         groups.setdefault(("warps" if is_warp else "base", p.dim() > 1), []).append(p)
     out = []
     for (kind, decay), params in sorted(groups.items()):
-        base_lr = recipe.lr * (recipe.warp_lr_scale if kind == "warps" else 1.0)
+        base_lr = warp_lr(recipe, recipe.base_frozen(0)) if kind == "warps" else recipe.lr
         out.append({"params": params, "lr": base_lr, "base_lr": base_lr, "kind": kind,
                     "weight_decay": recipe.weight_decay if decay else 0.0})
     return out

@@ -124,16 +124,15 @@ def agreement(now: torch.Tensor | None, start: torch.Tensor | None) -> float | N
     return round(float((now == start).float().mean()), 6)
 
 
-def caution_upright(bar, share: float | None, images: int, which: str) -> None:
-    """A line and an :class:`~splice.errors.UprightChangeWarning` when ``which`` (the model a run leaves, as the
-    user knows it) keeps fewer than :data:`UPRIGHT_AGREEMENT` of ``images`` upright reference images at the base's
-    predicted class; nothing otherwise."""
+def caution_upright(share: float | None, images: int, which: str) -> None:
+    """An :class:`~splice.errors.UprightChangeWarning` when ``which`` (the model a run leaves, as the user knows it)
+    keeps fewer than :data:`UPRIGHT_AGREEMENT` of ``images`` upright reference images at the base's predicted
+    class; nothing otherwise. The warning alone (no run line beside it): the command line prints it once."""
     if share is None or share >= UPRIGHT_AGREEMENT:
         return
     text = (f"the warps of {which} change the base's prediction on {100 * (1 - share):.1f} % of {images} upright "
             "reference images: its upright accuracy may be lower by as much; more warp pre-training epochs or a "
             "larger [pretrain] identity_fraction keep upright images nearer the identity")
-    bar.line(f"caution: {text}")
     warnings.warn(text, UprightChangeWarning, stacklevel=4)
 
 
@@ -141,7 +140,7 @@ def _caution_upright(run: Run, rows: list[dict]) -> float | None:
     """The upright agreement of the model ``best/`` holds (its metrics row), cautioned by :func:`caution_upright`."""
     best = [r for r in rows if r.get("step") == run.best["step"] and r.get("epoch") == run.best["epoch"]]
     share = best[-1].get("reference_agreement") if best else None
-    caution_upright(run.bar, share, 0 if run.reference_start is None else len(run.reference_start), "best/")
+    caution_upright(share, 0 if run.reference_start is None else len(run.reference_start), "best/")
     return share
 
 

@@ -79,6 +79,7 @@ def resolve_reference(data: str, *, given: str | None = None, trained_on: str | 
         return Reference(None, "skipped")
     raise RecipeError(
         f"warp pre-training needs upright reference images, and none is known for data {data!r} (its own images "
-        "may already be moved); pass --reference DATA (images of the kind the base was trained on), or set "
-        "[pretrain] reference = \"train\" to use the training images, or if_no_reference = \"skip\""
+        "may already be moved); pass --reference DATA (in Python, overrides=RecipeOverrides(reference=DATA)): images "
+        "of the kind the base was trained on, or set [pretrain] reference = \"train\" to use the training images, or "
+        "if_no_reference = \"skip\""
     )
