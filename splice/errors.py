@@ -35,6 +35,7 @@ __all__ = [
     "SpliceWarning",
     "RandomWeightsWarning",
     "EditedManifestWarning",
+    "SiteMovedWarning",
     "suggest",
     "closest",
     "first_line",
@@ -138,6 +139,11 @@ class UprightChangeWarning(SpliceWarning):
 class DataWarning(SpliceWarning):
     """Data that is read, but not quite as it might look: a split without images of some class, a data set name
     that is also the name of a folder."""
+
+
+class SiteMovedWarning(SpliceWarning):
+    """A hooks splice ran on a forward that calls a point's module a different number of times than when it was
+    spliced (a loop whose count follows the input size): its warp did not run, or may sit on another tensor."""
 
 
 class EditedManifestWarning(SpliceWarning):

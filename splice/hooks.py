@@ -35,7 +35,7 @@ import torch
 from torch import nn
 
 from .copies import tree_copy
-from .errors import PointError, SpliceWarning, suggest
+from .errors import PointError, SiteMovedWarning, suggest
 
 __all__ = ["WARP_PREFIX", "apply_hooks", "hooks_installed"]
 
@@ -116,15 +116,17 @@ class _ExitHook:
             warnings.warn(f"the spliced model's forward did not reach point{'s' if len(missing) > 1 else ''} "
                           f"{', '.join(missing)}, so {'their warps' if len(missing) > 1 else 'its warp'} did not "
                           "run: the model calls that module fewer times on this input (another size?) than when "
-                          "it was spliced; run it on inputs of the spliced size", SpliceWarning, stacklevel=2)
+                          "it was spliced; run it on inputs of the spliced size", SiteMovedWarning, stacklevel=2)
 
 
 class _SiteHook:
     """Forward hook on one module: its ``call``-th output in a scope forward goes through a warp (or is kept)."""
 
-    def __init__(self, scope: _Scope, sites: Mapping[int, tuple[str, str | None, str | None]]):
-        # sites: {call index: (point, warp name or None, localisation point or None)}
-        self.scope, self.sites = scope, dict(sites)
+    def __init__(self, scope: _Scope, sites: Mapping[int, tuple[str, str | None, str | None]],
+                 total: int | None = None):
+        # sites: {call index: (point, warp name or None, localisation point or None)}; total: the module's calls in
+        # one forward when it was spliced (None: not recorded)
+        self.scope, self.sites, self.total, self.warned = scope, dict(sites), total, False
 
     def __call__(self, module, args, output):
         st = self.scope.mine()
@@ -132,6 +134,14 @@ class _SiteHook:
             return None
         k = st.calls.get(id(module), 0)
         st.calls[id(module)] = k + 1
+        if self.total is not None and k == self.total and not self.warned:
+            self.warned = True  # once per spliced model: the same path repeats on every forward of this size
+            points = ", ".join(repr(p) for p, w, _ in self.sites.values() if w is not None) or "its points"
+            warnings.warn(f"the module of point {points} ran more than the {self.total} time"
+                          f"{'s' if self.total > 1 else ''} it ran in one forward when it was spliced: the model takes "
+                          "another path on this input (another size?), so the warp may sit on another tensor than "
+                          "the one it was spliced at; run it on inputs of the spliced size", SiteMovedWarning,
+                          stacklevel=2)
         site = self.sites.get(k)
         if site is None:
             return None
@@ -185,7 +195,8 @@ class WarpHolder(nn.ModuleDict):
 
 
 def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str, int]],
-                shapes: Mapping[str, tuple[int, ...]], *, within: str = "", factory: dict | None = None) -> nn.Module:
+                shapes: Mapping[str, tuple[int, ...]], *, within: str = "", factory: dict | None = None,
+                calls: Mapping[str, int] | None = None) -> nn.Module:
     """A deep copy of ``model`` with the warps of ``plan`` (``SplicePlan`` items) at module outputs.
 
     ``sites`` maps every planned point (and localisation input) but
@@ -193,7 +204,9 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
     ``shapes`` maps them to ``(C, H, W)``. ``within`` is the scope's
     qualname (``""``: the whole model). The warps are built on the device and
     in the dtype of the model's first parameter unless ``factory`` says
-    otherwise. The caller's model is not changed.
+    otherwise. ``calls`` maps a point to how often its module ran in one forward when it was spliced (when
+    known): a forward that calls it more often warns once (:class:`~splice.errors.SiteMovedWarning`), since the
+    warp's call may then hold another tensor. The caller's model is not changed.
     """
     from .warps import Warp
 
@@ -225,8 +238,10 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
     # (and the root hook first of those, so the input warp is looked up on the module tree actually called)
     scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc), prepend=True)
     work.register_forward_pre_hook(_RootHook(scope), prepend=True)
-    for qualname, calls in per_module.items():
-        point = next(iter(calls.values()))[0]
-        _site_module(scope_module, qualname, point).register_forward_hook(_SiteHook(scope, calls), prepend=True)
+    totals = {sites[name][0]: n for name, n in (calls or {}).items() if name in sites}
+    for qualname, by_call in per_module.items():
+        point = next(iter(by_call.values()))[0]
+        hook = _SiteHook(scope, by_call, totals.get(qualname))
+        _site_module(scope_module, qualname, point).register_forward_hook(hook, prepend=True)
     scope_module.register_forward_hook(_ExitHook(scope))
     return work

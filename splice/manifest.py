@@ -25,7 +25,8 @@ graph rewrite)::
       "class_names": [str, ...] | null,
       "leaves": [str, ...],
       "points": [{"name": str, "shape": [C, H, W], "cut": bool, "warp": {WarpConfig}}],
-      "sites": {point: {"module": str, "call": int, "shape": [C, H, W]}},   (2: hooks)
+      "sites": {point: {"module": str, "call": int, "shape": [C, H, W], "calls": int}},   (2: hooks;
+                                                        calls, optional: the module's calls per forward)
       "weights": {"file": "weights.safetensors", "sha256": str, "base_sha256": str},
       "tuning": null | {"recipe": str, "base_changed": bool, ...},
       "versions": {"splice": str, "torch": str, "torchvision": str},
@@ -159,7 +160,7 @@ class SpliceInfo:
     the first. ``mechanism`` is ``"fx"`` (a graph rewrite) or ``"hooks"``
     (forward hooks at module outputs, see :mod:`splice.hooks`); ``within`` the
     submodule the points belong to (``""``: the whole model); ``sites`` where
-    the hooks go, ``{point: {"module", "call", "shape"}}``. Not written to
+    the hooks go, ``{point: {"module", "call", "shape"}}`` (and ``"calls"``, when known). Not written to
     ``splice.json``: ``folder`` (where the record was read from) and ``check``
     (:func:`splice.insert`'s identity check on the spliced model).
     """

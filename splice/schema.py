@@ -120,12 +120,14 @@ def _sites(data: dict, problems: list[str]) -> None:
         problems.append("sites must be an object {point: {module, call, shape}}")
         return
     for name, site in sites.items():
-        ok = (isinstance(site, dict) and set(site) == {"module", "call", "shape"}
+        calls = site.get("calls", 1) if isinstance(site, dict) else None  # optional: older folders have none
+        ok = (isinstance(site, dict) and set(site) - {"calls"} == {"module", "call", "shape"}
               and _qualname_ok(site["module"], empty=name == "input") and shape_ok(site["shape"])
-              and isinstance(site["call"], int) and not isinstance(site["call"], bool) and site["call"] >= 0)
+              and isinstance(site["call"], int) and not isinstance(site["call"], bool) and site["call"] >= 0
+              and isinstance(calls, int) and not isinstance(calls, bool) and calls > site["call"])
         if not ok:
             problems.append(f"sites[{name!r}] must be {{\"module\": qualname, \"call\": n >= 0, "
-                            "\"shape\": [C, H, W]}")
+                            "\"shape\": [C, H, W]} and optionally \"calls\": more than call")
     if data.get("mechanism", "fx") == "hooks":
         needed = {p.get("name") for p in data.get("points") or [] if isinstance(p, dict)}
         needed |= {p["warp"].get("loc_from") for p in data.get("points") or []

@@ -313,6 +313,8 @@ def _hooks_plan(plan: Sequence[SplicePlan], listing: Sequence) -> dict[str, dict
             p = by_name[name]
             needed[name] = {"module": p.site[0] if p.site else "", "call": p.site[1] if p.site else 0,
                             "shape": list(p.shape)}
+            if p.site is not None and getattr(p, "site_calls", None):
+                needed[name]["calls"] = int(p.site_calls)  # the module's calls per forward, checked at run time
         if loc not in (None, item.point) and order[loc] > order[item.point]:
             raise PointError(
                 f"--loc-from {loc!r} comes after point {item.point!r} in the forward pass; the localisation head "
@@ -331,7 +333,8 @@ def apply_info(model: nn.Module, info, *, factory: dict | None = None) -> nn.Mod
     if info.mechanism == "hooks":
         sites = {name: (s["module"], s["call"]) for name, s in info.sites.items()}
         shapes = {name: tuple(s["shape"]) for name, s in info.sites.items()}
-        return apply_hooks(model, plan, sites, shapes, within=info.within, factory=factory)
+        return apply_hooks(model, plan, sites, shapes, within=info.within, factory=factory,
+                           calls={name: s["calls"] for name, s in info.sites.items() if "calls" in s})
     return apply_plan(model, plan, info.input_shape, leaves=info.leaves, factory=factory,
                       shapes=info.recorded_shapes(), n_inputs=1 + len(info.extra_inputs))
 
@@ -341,7 +344,8 @@ def _splice(base: nn.Module, plan: Sequence[SplicePlan], listing: Sequence, src,
     if listing[0].mechanism == "hooks":
         sites = _hooks_plan(plan, listing)
         model = apply_hooks(base, plan, {n: (s["module"], s["call"]) for n, s in sites.items()},
-                            {n: tuple(s["shape"]) for n, s in sites.items()}, within=within)
+                            {n: tuple(s["shape"]) for n, s in sites.items()}, within=within,
+                            calls={n: s["calls"] for n, s in sites.items() if "calls" in s})
         return model, sites
     return apply_plan(base, plan, src.input_shape, leaves=leaves, listing=listing, traced=traced), {}
 

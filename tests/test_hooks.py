@@ -125,7 +125,7 @@ def test_a_hooks_splice_is_exact_at_the_identity_and_keeps_every_name():
     spliced = _quiet_insert(model, at=["input", "act", "block_1"], input_shape=(3, 32, 32))
     assert type(spliced) is _Hooked and not hooks_installed(model) and hooks_installed(spliced)
     info = spliced.splice_info
-    assert info.mechanism == "hooks" and info.sites["block_1"] == {"module": "block", "call": 1, "shape": [8, 8, 8]}
+    assert info.mechanism == "hooks" and info.sites["block_1"] == {"module": "block", "call": 1, "shape": [8, 8, 8], "calls": 2}
     x = torch.randn(3, 3, 32, 32)
     with torch.no_grad():
         assert torch.equal(model(x), spliced(x))
@@ -185,7 +185,7 @@ def test_a_hooks_folder_records_the_mechanism_and_rebuilds(tmp_path):
     folder = save(_quiet_insert(HOOKED, at=["input", "block_1"]), tmp_path / "hooked")
     manifest = json.loads((folder / MANIFEST_NAME).read_text())
     assert manifest["schema_version"] == 2 and manifest["mechanism"] == "hooks"
-    assert manifest["sites"]["block_1"] == {"module": "block", "call": 1, "shape": [8, 8, 8]}
+    assert manifest["sites"]["block_1"] == {"module": "block", "call": 1, "shape": [8, 8, 8], "calls": 2}
     model = load(folder, trust_code=True)
     assert hooks_installed(model) and model.splice_info.mechanism == "hooks"
     x = torch.randn(2, 3, 32, 32)

@@ -10,6 +10,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+import splice
 from splice import graph
 from splice.graph import TraceFallbackWarning
 from splice.hooks import apply_hooks, hooks_installed
@@ -334,3 +335,52 @@ def test_the_listing_draws_the_same_numbers_every_time_and_leaves_the_callers_ge
     assert len(listings) == 1
     assert random.getstate() == states[0]
     assert (np.random.get_state()[1] == states[1]).all() and torch.equal(torch.get_rng_state(), states[2])
+
+
+class _Pyramid(nn.Module):
+    """Halves its map with one conv until it is 6 pixels wide: the conv's calls follow the input size."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 8, 3, padding=1)
+        self.down = nn.Conv2d(8, 8, 3, stride=2, padding=1)
+        self.head = nn.Conv2d(8, 4, 3, padding=1)
+
+    def forward(self, x):
+        x = self.stem(x)
+        while x.shape[-1] > 6:
+            x = self.down(x)
+        return self.head(x).mean((2, 3))
+
+
+def pyramid() -> nn.Module:
+    """A factory for the folder round trip (a spec typed here; loading the folder needs trust_code)."""
+    torch.manual_seed(0)
+    return _Pyramid()
+
+
+pyramid.input_shape = (3, 24, 24)
+pyramid.normalisation = None
+
+
+def test_a_site_module_that_runs_more_often_than_when_spliced_warns(tmp_path):
+    # spliced at 24 px, `down` runs twice (12, 6) and the warp sits on its second call; at 48 px it runs three times
+    # and that call is the 12x12 map, another tensor: the run now says so, once, and a folder keeps the count
+    from splice.errors import SiteMovedWarning
+
+    with pytest.warns(TraceFallbackWarning):
+        spliced = splice.insert(f"{__file__}:pyramid", at="down_1")
+    assert spliced.splice_info.sites["down_1"]["calls"] == 2
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        spliced(torch.rand(2, 3, 24, 24))  # the spliced size: silent
+    with pytest.warns(SiteMovedWarning, match=r"'down_1' ran more than the 2 times"):
+        spliced(torch.rand(2, 3, 48, 48))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        spliced(torch.rand(2, 3, 48, 48))  # once per spliced model
+    folder = splice.save(spliced, tmp_path / "pyramid")
+    loaded = splice.load(folder, trust_code=True)
+    assert loaded.splice_info.sites["down_1"]["calls"] == 2
+    with pytest.warns(SiteMovedWarning):
+        loaded(torch.rand(1, 3, 48, 48))

@@ -39,6 +39,7 @@ class Entry:
     between_convs: bool
     site: tuple[str, int] | None = None  # hooks: (module qualname, call index); None for fx and the input
     stride: Stride | None = None  # the cumulative stride from the input (splice.graph.strides); None: not followed
+    calls: int | None = None  # hooks: how often the site's module runs in one forward at this input; None: unknown
 
 
 def _is_conv_node(node: fx.Node, modules: dict[str, nn.Module]) -> bool:

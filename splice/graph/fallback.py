@@ -22,6 +22,7 @@ it as a leaf.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 import warnings
@@ -232,6 +233,7 @@ def hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, p
         meta = None
     counts: dict[str, int] = {}
     readers: list[nn.Module] = []
+    exact = True
     entries = _hooks_entries(model, args, kwargs, rule, problem=problem, todo=todo, input_shape=input_shape,
                              counts=counts, meta=meta, readers=readers)
     if not counts:  # neither the recorded forward nor torch.export ran: a fresh copy counts the calls at batch 1
@@ -245,9 +247,13 @@ def hooks_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, p
             for e in entries:
                 if e.site is not None:
                     counts[e.site[0]] = max(counts.get(e.site[0], 0), e.site[1] + 1)
+            exact = False  # a lower bound only: no total is recorded
         readers = [meta] if meta is not None else []  # unwatched: assume train mode may call other modules
     train = any(next(iter(m.children()), None) is not None for m in readers)
-    return _batch_stable(meta, model, args, kwargs, rule, entries, counts, train)
+    stable = _batch_stable(meta, model, args, kwargs, rule, entries, counts, train)
+    # each site's total calls in one forward, which the hooks compare with at run time (another path: another size)
+    return [dataclasses.replace(e, calls=counts.get(e.site[0])) if e.site is not None and exact else e
+            for e in stable]
 
 
 def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, *, problem: str | None, todo: str,

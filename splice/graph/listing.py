@@ -72,6 +72,7 @@ class Point:
     recommended: bool
     kind: str = "activation"
     site: tuple[str, int] | None = None
+    site_calls: int | None = None
     mechanism: str = "fx"
 
     def __post_init__(self):
@@ -141,7 +142,7 @@ def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every
             cut=e.cut, in_branch=e.join is not None, join=e.join,
             warp_params=int(params), warp_macs=int(macs),
             recommended=e.cut and (e.kind == "input" or (e is chosen and not input_cut)), kind=e.kind,
-            site=e.site, mechanism=mechanism,
+            site=e.site, mechanism=mechanism, site_calls=e.calls,
         ))
     return out
 
