@@ -142,8 +142,9 @@ class DataWarning(SpliceWarning):
 
 
 class SiteMovedWarning(SpliceWarning):
-    """A hooks splice ran on a forward that calls a point's module a different number of times than when it was
-    spliced (a loop whose count follows the input size): its warp did not run, or may sit on another tensor."""
+    """A hooks warp may not reach the tensor it was spliced at: the forward calls its module a different number of
+    times than when it was spliced (a loop whose count follows the input size), so the warp did not run or sits on
+    another call; or the module hands back its own input, so a reference kept from before the call stays unwarped."""
 
 
 class EditedManifestWarning(SpliceWarning):

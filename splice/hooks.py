@@ -127,6 +127,7 @@ class _SiteHook:
         # sites: {call index: (point, warp name or None, localisation point or None)}; total: the module's calls in
         # one forward when it was spliced (None: not recorded)
         self.scope, self.sites, self.total, self.warned = scope, dict(sites), total, False
+        self.warned_alias = False
 
     def __call__(self, module, args, output):
         st = self.scope.mine()
@@ -142,13 +143,19 @@ class _SiteHook:
                           "another path on this input (another size?), so the warp may sit on another tensor than "
                           "the one it was spliced at; run it on inputs of the spliced size", SiteMovedWarning,
                           stacklevel=2)
+        if k and st.batch is not None and isinstance(output, torch.Tensor) and output.dim() == 4 \
+                and output.shape[0] < st.batch:  # called again on part of the batch: a loop over images or chunks
+            point = next(iter(self.sites.values()))[0]
+            raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module ran again "
+                               f"and returned {output.shape[0]} of the {st.batch} images), so its warp would see only "
+                               "some of them; re-create the splice at another point from 'splice points'")
         site = self.sites.get(k)
         if site is None:
             return None
         point, warp, loc = site
         st.seen[point] = output  # unwarped: what a localisation head reading this point gets, as under fx
         if warp is not None:
-            _check_site(point, output, args, st.batch)
+            self._check_site(point, output, args)
             if loc is not None and loc not in st.seen:
                 raise RuntimeError(f"splice: the localisation input {loc!r} of point {point!r} was not computed "
                                    "before it in this forward")
@@ -156,20 +163,19 @@ class _SiteHook:
             output = w(output) if loc is None else w(output, st.seen[loc])
         return output
 
-
-def _check_site(point: str, output, args: tuple, batch: int | None) -> None:
-    """Refuse, in one line, an output a hook cannot warp for every reader or for every image."""
-    if not isinstance(output, torch.Tensor):
-        raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
-                           "not a tensor; re-create the splice at a point from 'splice points'")
-    if any(output is a for a in args):  # older references to it (a skip kept before the call) would stay unwarped
-        raise RuntimeError(f"splice: the module at point {point!r} hands back its own input (in place, or "
-                           "unchanged), so a hook cannot warp every reference to it; re-create the splice "
-                           "at another point from 'splice points'")
-    if batch is not None and output.dim() == 4 and output.shape[0] < batch:  # a loop over images or chunks
-        raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module returned "
-                           f"{output.shape[0]} of the {batch} images), so its warp would see only some of them; "
-                           "re-create the splice at another point from 'splice points'")
+    def _check_site(self, point: str, output, args: tuple) -> None:
+        """Refuse an output that is no tensor; caution, once, about one that is the module's own input."""
+        if not isinstance(output, torch.Tensor):
+            raise RuntimeError(f"splice: the module at point {point!r} returned {type(output).__name__}, "
+                               "not a tensor; re-create the splice at a point from 'splice points'")
+        if not self.warned_alias and any(output is a for a in args):
+            # listings no longer offer such a point; a folder made before may hold one, and was right unless the
+            # model kept a reference to the tensor from before the call (a skip connection), which stays unwarped
+            self.warned_alias = True
+            warnings.warn(f"the module at point {point!r} hands back its own input (in place, or unchanged), so its "
+                          "warp reaches what the module returns but not a reference to that tensor kept before the "
+                          "call (a skip connection taken there stays unwarped); 'splice points' now lists the module "
+                          "that computes it instead: re-create the splice there", SiteMovedWarning, stacklevel=3)
 
 
 def hooks_installed(model: nn.Module) -> bool:
