@@ -143,8 +143,8 @@ class _SiteHook:
                           "another path on this input (another size?), so the warp may sit on another tensor than "
                           "the one it was spliced at; run it on inputs of the spliced size", SiteMovedWarning,
                           stacklevel=2)
-        if k and st.batch is not None and isinstance(output, torch.Tensor) and output.dim() == 4 \
-                and output.shape[0] < st.batch:  # called again on part of the batch: a loop over images or chunks
+        if k and isinstance(st.batch, int) and isinstance(output, torch.Tensor) and output.dim() == 4 \
+                and not torch.jit.is_tracing() and output.shape[0] < st.batch:  # again on part of the batch: a loop
             point = next(iter(self.sites.values()))[0]
             raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module ran again "
                                f"and returned {output.shape[0]} of the {st.batch} images), so its warp would see only "
