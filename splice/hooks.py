@@ -46,15 +46,15 @@ class _Scope:
     """The per-forward state of one spliced scope, one per thread (two threads may run one model at once, as they
     may run any module in eval mode); never copied or pickled: it holds activations."""
 
-    def __init__(self, root: nn.Module, within: str, expected: Sequence[str] = ()):
-        self.root, self.within, self.expected = root, within, tuple(expected)
+    def __init__(self, root: nn.Module, within: str, expected: Sequence[str] = (), loc_warped: bool = False):
+        self.root, self.within, self.expected, self.loc_warped = root, within, tuple(expected), loc_warped
         self.local = threading.local()
 
     def __getstate__(self):
-        return {"root": self.root, "within": self.within, "expected": self.expected}
+        return {"root": self.root, "within": self.within, "expected": self.expected, "loc_warped": self.loc_warped}
 
     def __setstate__(self, state):
-        self.__init__(state["root"], state["within"], state.get("expected", ()))
+        self.__init__(state["root"], state["within"], state.get("expected", ()), state.get("loc_warped", False))
 
     def mine(self) -> threading.local:
         """This thread's state: ``calls`` (per module), ``seen`` (activations by point), ``active``, ``current``."""
@@ -100,6 +100,8 @@ class _EnterHook:
             return None
         warp = self.scope.warp(self.warp)
         out = warp(args[0]) if self.loc is None else warp(args[0], st.seen[self.loc])
+        if self.scope.loc_warped:  # an older hooks folder, tuned with heads that read the warped input
+            st.seen["input"] = out
         return (out, *args[1:])  # seen keeps the unwarped input: a localisation head reads it, as under fx
 
 
@@ -161,6 +163,8 @@ class _SiteHook:
                                    "before it in this forward")
             w = self.scope.warp(warp)
             output = w(output) if loc is None else w(output, st.seen[loc])
+            if self.scope.loc_warped:  # an older hooks folder, tuned with heads that read the warped point
+                st.seen[point] = output
         return output
 
     def _check_site(self, point: str, output, args: tuple) -> None:
@@ -202,7 +206,7 @@ class WarpHolder(nn.ModuleDict):
 
 def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str, int]],
                 shapes: Mapping[str, tuple[int, ...]], *, within: str = "", factory: dict | None = None,
-                calls: Mapping[str, int] | None = None) -> nn.Module:
+                calls: Mapping[str, int] | None = None, loc_warped: bool = False) -> nn.Module:
     """A deep copy of ``model`` with the warps of ``plan`` (``SplicePlan`` items) at module outputs.
 
     ``sites`` maps every planned point (and localisation input) but
@@ -212,7 +216,9 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
     in the dtype of the model's first parameter unless ``factory`` says
     otherwise. ``calls`` maps a point to how often its module ran in one forward when it was spliced (when
     known): a forward that calls it more often warns once (:class:`~splice.errors.SiteMovedWarning`), since the
-    warp's call may then hold another tensor. The caller's model is not changed.
+    warp's call may then hold another tensor. A localisation head reads the unwarped tensor at its point, as in a
+    graph splice; ``loc_warped`` gives it the warped one, as hooks did before splice recorded which (an older
+    folder, tuned so). The caller's model is not changed.
     """
     from .warps import Warp
 
@@ -225,7 +231,7 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
     scope_module = work.get_submodule(within) if within else work
     container = WarpHolder()
     work.add_module(WARP_PREFIX, container)
-    scope = _Scope(work, within, [item.point for item in plan if item.point != "input"])
+    scope = _Scope(work, within, [item.point for item in plan if item.point != "input"], loc_warped)
     per_module: dict[str, dict[int, tuple]] = {}
     input_warp = input_loc = None
     for item in plan:

@@ -27,6 +27,7 @@ graph rewrite)::
       "points": [{"name": str, "shape": [C, H, W], "cut": bool, "warp": {WarpConfig}}],
       "sites": {point: {"module": str, "call": int, "shape": [C, H, W], "calls": int}},   (2: hooks;
                                                         calls, optional: the module's calls per forward)
+      "loc_reads": "unwarped" | "warped",        (2: hooks; absent in older folders: "warped")
       "weights": {"file": "weights.safetensors", "sha256": str, "base_sha256": str},
       "tuning": null | {"recipe": str, "base_changed": bool, ...},
       "versions": {"splice": str, "torch": str, "torchvision": str},
@@ -160,7 +161,9 @@ class SpliceInfo:
     the first. ``mechanism`` is ``"fx"`` (a graph rewrite) or ``"hooks"``
     (forward hooks at module outputs, see :mod:`splice.hooks`); ``within`` the
     submodule the points belong to (``""``: the whole model); ``sites`` where
-    the hooks go, ``{point: {"module", "call", "shape"}}`` (and ``"calls"``, when known). Not written to
+    the hooks go, ``{point: {"module", "call", "shape"}}`` (and ``"calls"``, when known); ``loc_reads`` which
+    tensor a localisation head reads at a point that is warped too (``"unwarped"``, as a graph splice does;
+    ``"warped"`` for a hooks folder written before splice recorded it, which was tuned so). Not written to
     ``splice.json``: ``folder`` (where the record was read from) and ``check``
     (:func:`splice.insert`'s identity check on the spliced model).
     """
@@ -185,6 +188,7 @@ class SpliceInfo:
     within: str = ""
     sites: dict = field(default_factory=dict)
     source_not_loaded: tuple[str, ...] = ()
+    loc_reads: str = "unwarped"
 
     def __post_init__(self) -> None:
         norm = self.normalisation
@@ -230,6 +234,7 @@ class SpliceInfo:
             **({"extra_inputs": [list(s) for s in self.extra_inputs]} if self.extra_inputs else {}),
             **({"mechanism": self.mechanism, "within": self.within, "sites": self.sites}
                if self.mechanism != "fx" or self.within else {}),
+            **({"loc_reads": self.loc_reads} if self.mechanism == "hooks" else {}),
         }
 
     @property
@@ -267,6 +272,8 @@ class SpliceInfo:
             extra_inputs=tuple(tuple(s) for s in data.get("extra_inputs") or ()),
             mechanism=data.get("mechanism", "fx"), within=data.get("within", ""), sites=data.get("sites") or {},
             source_not_loaded=tuple(src.get("not_loaded") or ()),
+            # a hooks folder written before the record said so fed localisation heads the warped tensor at a point
+            loc_reads=data.get("loc_reads", "warped" if data.get("mechanism") == "hooks" else "unwarped"),
         )
 
     @classmethod

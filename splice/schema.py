@@ -128,6 +128,8 @@ def _sites(data: dict, problems: list[str]) -> None:
         if not ok:
             problems.append(f"sites[{name!r}] must be {{\"module\": qualname, \"call\": n >= 0, "
                             "\"shape\": [C, H, W]} and optionally \"calls\": more than call")
+    if data.get("loc_reads", "unwarped") not in ("unwarped", "warped"):
+        problems.append("loc_reads must be \"unwarped\" or \"warped\"")
     if data.get("mechanism", "fx") == "hooks":
         needed = {p.get("name") for p in data.get("points") or [] if isinstance(p, dict)}
         needed |= {p["warp"].get("loc_from") for p in data.get("points") or []

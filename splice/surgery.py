@@ -334,7 +334,8 @@ def apply_info(model: nn.Module, info, *, factory: dict | None = None) -> nn.Mod
         sites = {name: (s["module"], s["call"]) for name, s in info.sites.items()}
         shapes = {name: tuple(s["shape"]) for name, s in info.sites.items()}
         return apply_hooks(model, plan, sites, shapes, within=info.within, factory=factory,
-                           calls={name: s["calls"] for name, s in info.sites.items() if "calls" in s})
+                           calls={name: s["calls"] for name, s in info.sites.items() if "calls" in s},
+                           loc_warped=info.loc_reads == "warped")
     return apply_plan(model, plan, info.input_shape, leaves=info.leaves, factory=factory,
                       shapes=info.recorded_shapes(), n_inputs=1 + len(info.extra_inputs))
 

@@ -422,3 +422,61 @@ def test_a_site_module_that_runs_more_often_than_when_spliced_warns(tmp_path):
     assert loaded.splice_info.sites["down_1"]["calls"] == 2
     with pytest.warns(SiteMovedWarning):
         loaded(torch.rand(1, 3, 48, 48))
+
+
+class _LocNet(nn.Module):
+    """Warps at the input and at ``f_2``, whose head reads the input (``*args`` keeps fx out)."""
+
+    def __init__(self):
+        super().__init__()
+        self.f = nn.Sequential(nn.Conv2d(1, 8, 3, padding=1), nn.ReLU(), nn.Conv2d(8, 8, 3, padding=1),
+                               nn.Conv2d(8, 8, 3, padding=1))
+        self.fc = nn.Linear(8, 4)
+
+    def forward(self, *xs):
+        return self.fc(self.f(xs[0]).mean((2, 3)))
+
+
+def loc_net() -> nn.Module:
+    torch.manual_seed(0)
+    return _LocNet()
+
+
+loc_net.input_shape = (1, 16, 16)
+loc_net.normalisation = None
+
+
+def test_an_older_hooks_folder_keeps_the_localisation_reading_it_was_tuned_with(tmp_path):
+    # hooks fed f_2's head the WARPED input until 2026-12-05, fx the unwarped one; a folder written before then
+    # (no loc_reads in splice.json) was tuned so and must compute as it did, a new one as fx does
+    import json
+
+    from splice.manifest import MANIFEST_NAME
+
+    with pytest.warns(TraceFallbackWarning):
+        spliced = splice.insert(f"{__file__}:loc_net", at=["input", "f_2"],
+                                warp={"input": WarpConfig(), "f_2": WarpConfig(loc_from="input")})
+    torch.manual_seed(1)
+    with torch.no_grad():
+        for p in warps_of(spliced)["input"].parameters():
+            p.add_(0.3 * torch.randn_like(p))  # off the identity, as tuning leaves it
+        for p in warps_of(spliced)["f_2"].parameters():
+            p.add_(0.3 * torch.randn_like(p))
+    folder = splice.save(spliced, tmp_path / "new")
+    manifest = json.loads((folder / MANIFEST_NAME).read_text())
+    assert manifest["loc_reads"] == "unwarped"
+    manifest.pop("loc_reads")  # as an older splice wrote it
+    (folder / MANIFEST_NAME).write_text(json.dumps(manifest))
+    older = splice.load(folder, trust_code=True)
+    x = torch.rand(3, 1, 16, 16)
+    base, warps = loc_net().eval(), warps_of(spliced)
+    with torch.no_grad():  # the two readings, written out by hand around the same warp modules
+        moved = warps["input"](x)
+        stem = base.f[2](base.f[1](base.f[0](moved)))
+        unwarped_read = base.fc(base.f[3](warps["f_2"](stem, x)).mean((2, 3)))
+        warped_read = base.fc(base.f[3](warps["f_2"](stem, moved)).mean((2, 3)))
+        assert (unwarped_read - warped_read).abs().max() > 1e-4  # the two readings differ
+        torch.testing.assert_close(spliced(x), unwarped_read)
+        torch.testing.assert_close(older(x), warped_read)
+    again = splice.save(older, tmp_path / "again")
+    assert json.loads((again / MANIFEST_NAME).read_text())["loc_reads"] == "warped"  # kept when written again
