@@ -171,24 +171,41 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
 def map_tensors(out, fn):
     """``out`` with ``fn`` applied to every tensor, containers (named tuples and dataclasses included) kept.
 
-    Lists, dicts and tuples come back as new plain (mutable) ones of their type, never fx's immutable ones:
-    a module run on the result may update them in place. Other mappings come back as plain dicts.
+    Lists, tuples and dicts come back as new plain (mutable) ``list``, ``tuple`` and ``dict``, whatever their
+    subclass (fx's ``immutable_list`` and ``immutable_dict`` included): a module run on the result may update
+    them in place. An ``OrderedDict`` stays one, a named tuple keeps its class, a ``torch.Size`` is returned as it
+    is. A mapping that is also a dataclass (a Hugging Face ``ModelOutput``) comes back as its own class built from
+    the mapped values, so its attributes and keys agree, or as a plain dict when its class cannot be built so.
     """
     if isinstance(out, torch.Tensor):
         return fn(out)
     if isinstance(out, Mapping):
         mapped = {k: map_tensors(v, fn) for k, v in out.items()}
+        if is_dataclass_instance(out):
+            return _rebuilt(out, mapped)
         return collections.OrderedDict(mapped) if type(out) is collections.OrderedDict else mapped
+    if isinstance(out, torch.Size):
+        return out
     if isinstance(out, tuple) and hasattr(out, "_fields"):  # a named tuple
         return type(out)(*(map_tensors(v, fn) for v in out))
     if isinstance(out, (tuple, list)):
-        return type(out)(map_tensors(v, fn) for v in out)
+        return (tuple if isinstance(out, tuple) else list)(map_tensors(v, fn) for v in out)
     if is_dataclass_instance(out):  # a shallow copy with each field mapped (no __init__ or __post_init__ run again)
         new = copy.copy(out)
         for f in dataclasses.fields(out):
             object.__setattr__(new, f.name, map_tensors(getattr(out, f.name), fn))
         return new
     return out
+
+
+def _rebuilt(out: Mapping, mapped: dict):
+    """``type(out)(**mapped)`` (a ``ModelOutput`` sets each field as attribute and key), when that gives back the
+    same keys; else ``mapped``, the plain dict."""
+    try:
+        new = type(out)(**mapped)
+    except Exception:  # a class whose __init__ takes other arguments: the plain dict still holds every value
+        return mapped
+    return new if isinstance(new, Mapping) and list(new.keys()) == list(mapped) else mapped
 
 
 def detached(out):

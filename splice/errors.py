@@ -157,6 +157,7 @@ class NormalisationWarning(SpliceWarning):
 
 
 _TERMINAL_CODES = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")  # colours a library wrote for its own terminal
+_SENTENCE_END = re.compile(r"[.!?](?=\s)")
 
 
 def first_line(exc: BaseException, limit: int = 300) -> str:
@@ -165,8 +166,10 @@ def first_line(exc: BaseException, limit: int = 300) -> str:
 
     A line cut off mid-sentence (brackets left open, or a closing ``:``; the TorchScript exporter prints a tensor
     inside its sentence) goes on with the next lines, joined by spaces, up to ``limit`` characters; the first line
-    itself is never cut. A message with an ``## Exception summary`` section (torch.onnx's) gives that summary's
-    first line: the cause, where the first line says only which step failed.
+    itself is never cut. A line that ends in ``,`` or ``;`` after a whole sentence (torch.fx wraps its messages
+    so) gives its whole sentences alone; without one, it goes on as above. A message with an ``## Exception
+    summary`` section (torch.onnx's) gives that summary's first line: the cause, where the first line says only
+    which step failed.
     """
     text = _TERMINAL_CODES.sub("", str(exc))
     if "## Exception summary" in text:
@@ -176,10 +179,17 @@ def first_line(exc: BaseException, limit: int = 300) -> str:
         return type(exc).__name__
     out = lines[0]
     for line in lines[1:]:
-        if len(out) >= limit or not (out.endswith(":") or _open_brackets(out)):
+        if len(out) >= limit or not (out.endswith(":") or _open_brackets(out) or _unfinished(out)):
             break
         out = f"{out} {line}"
+    if out.endswith((",", ";")) and _SENTENCE_END.search(out):
+        out = out[:list(_SENTENCE_END.finditer(out))[-1].end()]
     return out if len(out) <= max(limit, len(lines[0])) else out[:limit - 3] + "..."
+
+
+def _unfinished(text: str) -> bool:
+    """A clause cut by a line break (``,`` or ``;`` at the end) with no whole sentence before it."""
+    return text.endswith((",", ";")) and not _SENTENCE_END.search(text)
 
 
 def _open_brackets(text: str) -> bool:

@@ -1,7 +1,8 @@
 """ImageFolder trees: finding a tree's split and class folders, and one split read lazily.
 
 A tree is ``DIR/train/<class>/*``, ``DIR/val/<class>/*``, optionally
-``DIR/test/<class>/*``; split folders are found whatever their case. Every
+``DIR/test/<class>/*``; split folders in another case (``Train/`` + ``Test/``)
+count only when every folder of ``DIR`` names a split (:func:`split_folders`). Every
 image file anywhere under a class folder belongs to that class; which files
 count and how each is read is :mod:`splice.imagefiles`. The class folders of
 the split being opened must be among those of ``train`` (names compared after
@@ -164,12 +165,21 @@ def _note_lacking(split: str, where: Path, classes: list[str], files: dict[str, 
 
 
 def split_folders(root: Path) -> dict[str, Path]:
-    """``{split: folder}`` of the split folders in ``root``, matched whatever their case (``Train``, ``VAL``), in
-    the order of :data:`SPLITS`; two folders for one split (``Test`` and ``test``) are refused."""
+    """``{split: folder}`` of the split folders in ``root``, in the order of :data:`SPLITS`.
+
+    ``train``, ``val`` and ``test`` are always split folders. A name that is one
+    of them only in another case (``Train``, ``VAL``) is a split folder only when
+    every folder of ``root`` names a split in some case (``Train/`` + ``Test/``);
+    beside any other folder it is a class (``Bus/``, ``Car/``, ``Train/``), as
+    torchvision's ``ImageFolder`` reads it. Two split folders for one split
+    (``Test`` and ``test``) are refused.
+    """
+    dirs = _visible_dirs(root)
+    any_case = all(d.name.lower() in SPLITS for d in dirs)
     found: dict[str, Path] = {}
-    for d in _visible_dirs(root):
+    for d in dirs:
         split = d.name.lower()
-        if split not in SPLITS:
+        if split not in SPLITS or (d.name != split and not any_case):
             continue
         if split in found:
             raise DataError(f"{root} holds two folders for the {split!r} split, {found[split].name!r} and "
@@ -188,7 +198,7 @@ def _split_folder(root: Path, split: str) -> tuple[Path, Path | None]:
     present = split_folders(root)
     if split in present:
         return present[split], present.get("train")
-    others = [d.name for d in _visible_dirs(root) if d.name.lower() not in SPLITS]
+    others = [d.name for d in _visible_dirs(root) if d not in present.values()]
     found = ", ".join([d.name for d in present.values()] + others) or "nothing"
     if not present and split != "train":
         return root, None

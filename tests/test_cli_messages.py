@@ -128,6 +128,20 @@ def test_first_line_goes_on_where_the_line_is_cut_mid_sentence():
                            "## Exception summary\n\n<class 'AttributeError'>: 'int' object has no attribute 'name'\n")
     assert errors.first_line(summary) == "<class 'AttributeError'>: 'int' object has no attribute 'name'"
     assert errors.first_line(RuntimeError("x" * 400 + "\nnext")) == "x" * 400  # a whole first line is never cut
+
+
+def test_first_line_ends_at_a_whole_sentence_where_a_wrapped_line_stops_at_a_comma():
+    from torch.fx.immutable_collections import immutable_list
+
+    from splice.graph.tracing import reason
+
+    # torch.fx's own message (the reference) wraps its second sentence after a comma
+    with pytest.raises(TypeError) as caught:
+        immutable_list([1]).append(2)
+    assert str(caught.value).splitlines()[0].endswith("kwargs or args of a torch.fx.Node object,")
+    assert errors.first_line(caught.value) == "'immutable_list' object does not support mutation."
+    assert reason(caught.value) == "TypeError: 'immutable_list' object does not support mutation"
+    assert errors.first_line(RuntimeError("a clause cut,\nends here.\nmore")) == "a clause cut, ends here."
     assert len(errors.first_line(RuntimeError("(" + "y\n" * 400))) == 300
 
 

@@ -471,6 +471,27 @@ def test_split_folders_are_found_whatever_their_case(tmp_path):
         data.open_data(root, "test", input_shape=(1, 6, 6))
 
 
+def test_a_class_named_like_a_split_in_another_case_stays_a_class(tmp_path):
+    from torchvision.datasets import ImageFolder
+
+    # a flat folder of classes, one of them named Train: torchvision's ImageFolder over the folder is the reference
+    flat = tmp_path / "flat"
+    for k, name in enumerate(("Bus", "Car", "Train")):
+        _grey(flat / name / "0.png", value=40 * (k + 1))
+    tv = ImageFolder(str(flat))
+    test = data.open_data(flat, "test", input_shape=(1, 6, 6))
+    assert test.classes == tv.classes == ["Bus", "Car", "Train"] and test.folder == flat
+    assert [(str(p), label) for p, label in test.samples] == tv.samples
+    assert _rel(image_files(flat), flat) == ["Bus/0.png", "Car/0.png", "Train/0.png"]  # label-free reads them all
+    # when every folder names a split in some case, they are splits (DIR/TRAIN + DIR/VAL)
+    splits = _tree(tmp_path / "s", {"TRAIN": ("a", "b"), "VAL": ("a", "b")})
+    val = data.open_data(splits, "val", input_shape=(1, 6, 6))
+    assert val.folder == splits / "VAL" and val.classes == ImageFolder(str(splits / "VAL")).classes == ["a", "b"]
+    # an exact lowercase split folder is a split beside anything, and Train beside it is then no split
+    _tree(flat, {"train": ("Bus",)})
+    assert data.open_data(flat, "train", input_shape=(1, 6, 6)).folder == flat / "train"
+
+
 def test_a_split_other_than_train_may_lack_a_class_and_keeps_trains_labels(tmp_path):
     from torchvision.datasets import ImageFolder
 

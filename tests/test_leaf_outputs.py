@@ -69,3 +69,71 @@ def test_map_tensors_keeps_each_container_type_and_makes_new_mutable_ones():
     out[0].append(1)
     out[1]["new"] = 1
     assert len(value[0]) == 1 and "new" not in value[1]
+
+
+class _Fuse(nn.Module):
+    """Updates the list of feature maps it is handed, as an FPN-style fuser does."""
+
+    def forward(self, feats):
+        if self.training:  # reads training: fx keeps the module whole even when it is not named a leaf
+            feats = list(reversed(feats))
+        feats[1] = feats[1] + feats[0]
+        return feats[1]
+
+
+class _Fused(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.a, self.b, self.c = nn.Conv2d(1, 4, 3, padding=1), nn.Conv2d(1, 4, 3, padding=1), nn.Conv2d(4, 4, 1)
+        self.fuse = _Fuse()
+
+    def forward(self, x):
+        return self.c(self.fuse([self.a(x), self.b(x)]))
+
+
+@pytest.mark.parametrize("leaves", [(), (_Fuse,)])
+def test_a_module_kept_whole_may_update_the_list_it_is_handed(leaves):
+    # before, shape propagation handed it fx's immutable_list and failed with "'immutable_list' object does not
+    # support mutation"; torch.fx's own generated code (the reference) hands it a plain list
+    model = _Fused().eval()
+    traced = graph.trace(model, leaves=leaves)
+    x = torch.rand(2, 1, 8, 8)
+    torch.testing.assert_close(traced(x), model(x), rtol=0, atol=0)
+    points = {p.name: p for p in graph.points(model, (1, 8, 8), leaves=leaves)}
+    assert points["fuse"].shape == (4, 8, 8) and points["fuse"].mechanism == "fx"
+
+
+def test_map_tensors_makes_fx_immutable_containers_plain_and_mutable():
+    from torch.fx.immutable_collections import immutable_dict, immutable_list
+
+    value = immutable_list([torch.ones(1), immutable_dict(k=torch.ones(2)), (torch.ones(3),), torch.Size([2, 3])])
+    out = map_tensors(value, lambda t: t * 2)
+    assert type(out) is list and type(out[1]) is dict and type(out[2]) is tuple and type(out[3]) is torch.Size
+    out[1]["new"] = out.append(1)
+    assert out[0].item() == 2 and len(value) == 4
+
+
+def test_map_tensors_keeps_a_hugging_face_model_output():
+    from transformers.modeling_outputs import BaseModelOutputWithPooling
+
+    # transformers' ModelOutput is the reference: each field is both an attribute and a key, None fields neither
+    out = BaseModelOutputWithPooling(last_hidden_state=torch.ones(1, 2, 3), pooler_output=torch.ones(1, 3))
+    mapped = map_tensors(out, lambda t: t * 2)
+    assert type(mapped) is BaseModelOutputWithPooling and list(mapped.keys()) == list(out.keys())
+    assert mapped.last_hidden_state is mapped["last_hidden_state"] and mapped.pooler_output.sum().item() == 6
+    assert mapped.hidden_states is None and "hidden_states" not in mapped and out.pooler_output.sum().item() == 3
+    assert mapped.to_tuple()[0].sum().item() == 12
+
+
+@dataclasses.dataclass
+class _Keyed(collections.OrderedDict):
+    """A mapping and a dataclass whose __init__ does not take its keys: kept as the plain dict of its values."""
+
+    note: str = "x"
+
+
+def test_map_tensors_falls_back_to_a_dict_when_a_mapping_dataclass_cannot_be_rebuilt():
+    value = _Keyed()
+    value["t"] = torch.ones(1)
+    out = map_tensors(value, lambda t: t * 2)
+    assert type(out) is dict and out["t"].item() == 2

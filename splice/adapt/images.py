@@ -113,7 +113,7 @@ def split_off(images: Images, share: float, generator: torch.Generator) -> tuple
 
 def image_files(root: Path) -> list[Path]:
     """Every image file under ``root`` (:func:`splice.imagefiles.list_image_files`); ``train/`` only if present
-    (in any case: ``Train/``)."""
+    (``Train/`` too, when every folder beside it names a split: :func:`splice.imagefolder.split_folders`)."""
     from ..imagefiles import list_image_files
     from ..imagefolder import split_folders
 

@@ -241,6 +241,10 @@ _METHOD_RULES: dict[str, Callable[[tuple, dict], torch.Tensor | None]] = dict.fr
 )
 
 
+def _same(value: torch.Tensor) -> torch.Tensor:
+    return value
+
+
 def run_for_real(mod: nn.Module, args: tuple, kwargs: dict) -> Any:
     """Run a copy of ``mod`` once on all-zeros inputs of the given meta shapes; return meta outputs."""
     device = model_device(mod)
@@ -309,8 +313,10 @@ def propagate(
                 elif op == "output":
                     value = fx.node.map_arg(node.args[0], load)
                 else:
-                    args = fx.node.map_arg(node.args, load)
-                    kwargs = fx.node.map_arg(node.kwargs, load)
+                    # plain lists and dicts, not fx's immutable ones: a module or function may update what it
+                    # is handed (feats[1] = ...), as it may when the traced model runs
+                    args = map_tensors(fx.node.map_arg(node.args, load), _same)
+                    kwargs = map_tensors(fx.node.map_arg(node.kwargs, load), _same)
                     if op == "call_module":
                         mod = modules[node.target]
                         value = _module_rule(mod, args, kwargs)

@@ -363,9 +363,13 @@ def fx_failure_hint(failure: FxFailure, model: nn.Module) -> tuple[str, str]:
 
 
 def reason(exc: BaseException) -> str:
-    """``"TypeError: first line of the message"`` (the class name alone when there is no message)."""
+    """``"TypeError: first line of the message"`` (the class name alone when there is no message), as
+    :func:`~splice.errors.first_line` shortens it, without a closing full stop: it goes inside splice's sentence."""
     name = type(exc).__name__
-    return f"{name}: {first_line(exc)}" if str(exc).strip() else name
+    if not str(exc).strip():
+        return name
+    line = first_line(exc)
+    return f"{name}: {line[:-1] if line.endswith('.') and not line.endswith('..') else line}"
 
 
 def check_model(model: Any, what: str) -> None:
