@@ -171,11 +171,12 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
 def map_tensors(out, fn):
     """``out`` with ``fn`` applied to every tensor, containers (named tuples and dataclasses included) kept.
 
-    Lists, tuples and dicts come back as new plain (mutable) ``list``, ``tuple`` and ``dict``, whatever their
-    subclass (fx's ``immutable_list`` and ``immutable_dict`` included): a module run on the result may update
-    them in place. An ``OrderedDict`` stays one, a named tuple keeps its class, a ``torch.Size`` is returned as it
-    is. A mapping that is also a dataclass (a Hugging Face ``ModelOutput``) comes back as its own class built from
-    the mapped values, so its attributes and keys agree, or as a plain dict when its class cannot be built so.
+    Lists, tuples and dicts come back as new containers a module run on the result may update in place: fx's
+    ``immutable_list`` and ``immutable_dict`` as plain ``list`` and ``dict``, any other subclass as its own class
+    (``torch.max``'s result keeps ``.values``), else plain. An ``OrderedDict`` stays one, a named tuple keeps its
+    class, a ``torch.Size`` is returned as it is. A mapping that is also a dataclass (a Hugging Face
+    ``ModelOutput``) comes back as its own class built from the mapped values, so its attributes and keys agree,
+    or as a plain dict when its class cannot be built so.
     """
     if isinstance(out, torch.Tensor):
         return fn(out)
@@ -189,7 +190,14 @@ def map_tensors(out, fn):
     if isinstance(out, tuple) and hasattr(out, "_fields"):  # a named tuple
         return type(out)(*(map_tensors(v, fn) for v in out))
     if isinstance(out, (tuple, list)):
-        return (tuple if isinstance(out, tuple) else list)(map_tensors(v, fn) for v in out)
+        items = [map_tensors(v, fn) for v in out]
+        plain = tuple if isinstance(out, tuple) else list
+        if type(out) in (tuple, list) or type(out).__module__.startswith("torch.fx"):  # fx's immutable_list too
+            return plain(items)
+        try:  # a result type that reads .values / .indices (torch.return_types), a user's list subclass
+            return type(out)(items)
+        except Exception:  # a class built otherwise: the plain container still holds every value
+            return plain(items)
     if is_dataclass_instance(out):  # a shallow copy with each field mapped (no __init__ or __post_init__ run again)
         new = copy.copy(out)
         for f in dataclasses.fields(out):

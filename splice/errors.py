@@ -157,7 +157,7 @@ class NormalisationWarning(SpliceWarning):
 
 
 _TERMINAL_CODES = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")  # colours a library wrote for its own terminal
-_SENTENCE_END = re.compile(r"[.!?](?=\s)")
+_SENTENCE_END = re.compile(r"[.!?](?=\s+[A-Z])")  # a full stop before a new sentence, not after "e.g."
 
 
 def first_line(exc: BaseException, limit: int = 300) -> str:
@@ -182,14 +182,20 @@ def first_line(exc: BaseException, limit: int = 300) -> str:
         if len(out) >= limit or not (out.endswith(":") or _open_brackets(out) or _unfinished(out)):
             break
         out = f"{out} {line}"
-    if out.endswith((",", ";")) and _SENTENCE_END.search(out):
-        out = out[:list(_SENTENCE_END.finditer(out))[-1].end()]
+    ends = _sentence_ends(out) if out.endswith((",", ";")) else []
+    if ends:
+        out = out[:ends[-1]]
     return out if len(out) <= max(limit, len(lines[0])) else out[:limit - 3] + "..."
+
+
+def _sentence_ends(text: str) -> list[int]:
+    """Where whole sentences of ``text`` end: a full stop before a capital, with every bracket closed."""
+    return [m.end() for m in _SENTENCE_END.finditer(text) if not _open_brackets(text[:m.end()])]
 
 
 def _unfinished(text: str) -> bool:
     """A clause cut by a line break (``,`` or ``;`` at the end) with no whole sentence before it."""
-    return text.endswith((",", ";")) and not _SENTENCE_END.search(text)
+    return text.endswith((",", ";")) and not _sentence_ends(text)
 
 
 def _open_brackets(text: str) -> bool:

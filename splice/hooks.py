@@ -137,20 +137,8 @@ class _SiteHook:
             return None
         k = st.calls.get(id(module), 0)
         st.calls[id(module)] = k + 1
-        if self.total is not None and k == self.total and not self.warned:
-            self.warned = True  # once per spliced model: the same path repeats on every forward of this size
-            points = ", ".join(repr(p) for p, w, _ in self.sites.values() if w is not None) or "its points"
-            warnings.warn(f"the module of point {points} ran more than the {self.total} time"
-                          f"{'s' if self.total > 1 else ''} it ran in one forward when it was spliced: the model takes "
-                          "another path on this input (another size?), so the warp may sit on another tensor than "
-                          "the one it was spliced at; run it on inputs of the spliced size", SiteMovedWarning,
-                          stacklevel=2)
-        if k and isinstance(st.batch, int) and isinstance(output, torch.Tensor) and output.dim() == 4 \
-                and not torch.jit.is_tracing() and output.shape[0] < st.batch:  # again on part of the batch: a loop
-            point = next(iter(self.sites.values()))[0]
-            raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module ran again "
-                               f"and returned {output.shape[0]} of the {st.batch} images), so its warp would see only "
-                               "some of them; re-create the splice at another point from 'splice points'")
+        if self.total is not None and k >= self.total:  # more calls than when it was spliced
+            self._check_extra_call(output, st.batch)
         site = self.sites.get(k)
         if site is None:
             return None
@@ -166,6 +154,25 @@ class _SiteHook:
             if self.scope.loc_warped:  # an older hooks folder, tuned with heads that read the warped point
                 st.seen[point] = output
         return output
+
+    def _check_extra_call(self, output, batch) -> None:
+        """A call beyond those of one forward when the splice was made: on part of the batch it is a loop over images
+        or chunks (refused: the warp would see only some of them); otherwise another path (warned once per model)."""
+        point = next(iter(self.sites.values()))[0]
+        if isinstance(batch, int) and isinstance(output, torch.Tensor) and output.dim() == 4 \
+                and not torch.jit.is_tracing() and output.shape[0] < batch:
+            raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module ran "
+                               f"{self.total + 1} times or more, on {output.shape[0]} of the {batch} images), so its "
+                               "warp would see only some of them; re-create the splice at another point from "
+                               "'splice points'")
+        if not self.warned:
+            self.warned = True  # once per spliced model: the same path repeats on every forward of this size
+            points = ", ".join(repr(p) for p, w, _ in self.sites.values() if w is not None) or repr(point)
+            warnings.warn(f"the module of point {points} ran more than the {self.total} time"
+                          f"{'s' if self.total > 1 else ''} it ran in one forward when it was spliced: the model takes "
+                          "another path on this input (another size?), so the warp may sit on another tensor than "
+                          "the one it was spliced at; run it on inputs of the spliced size", SiteMovedWarning,
+                          stacklevel=3)
 
     def _check_site(self, point: str, output, args: tuple) -> None:
         """Refuse an output that is no tensor; caution, once, about one that is the module's own input."""

@@ -2,7 +2,7 @@
 
 A tree is ``DIR/train/<class>/*``, ``DIR/val/<class>/*``, optionally
 ``DIR/test/<class>/*``; split folders in another case (``Train/`` + ``Test/``)
-count only when every folder of ``DIR`` names a split (:func:`split_folders`). Every
+count only when folders of ``DIR`` name two or more splits (:func:`split_folders`). Every
 image file anywhere under a class folder belongs to that class; which files
 count and how each is read is :mod:`splice.imagefiles`. The class folders of
 the split being opened must be among those of ``train`` (names compared after
@@ -169,13 +169,16 @@ def split_folders(root: Path) -> dict[str, Path]:
 
     ``train``, ``val`` and ``test`` are always split folders. A name that is one
     of them only in another case (``Train``, ``VAL``) is a split folder only when
-    every folder of ``root`` names a split in some case (``Train/`` + ``Test/``);
-    beside any other folder it is a class (``Bus/``, ``Car/``, ``Train/``), as
-    torchvision's ``ImageFolder`` reads it. Two split folders for one split
+    folders of ``root`` name two or more splits in some case (``Train/`` +
+    ``Test/``, with ``Validation/`` or anything else beside them), or every folder
+    does; a lone one beside other folders is a class (``Bus/``, ``Car/``,
+    ``Train/``), as torchvision's ``ImageFolder`` reads it. Two split folders for one split
     (``Test`` and ``test``) are refused.
     """
     dirs = _visible_dirs(root)
-    any_case = all(d.name.lower() in SPLITS for d in dirs)
+    named = [d.name.lower() for d in dirs if d.name.lower() in SPLITS]
+    # Train/ + Test/ (+ Validation/, __MACOSX/): splits; Train/ alone beside Bus/ and Car/ (or train/): a class
+    any_case = len(set(named)) >= 2 or len(named) == len(dirs)
     found: dict[str, Path] = {}
     for d in dirs:
         split = d.name.lower()

@@ -279,3 +279,11 @@ def test_debug_adds_the_traceback_and_keeps_the_exit_code(tmp_path, monkeypatch,
 def test_debug_keeps_exit_code_2_for_a_folder_that_does_not_exist(tmp_path, capsys):
     missing = str(tmp_path / "nosuchdir")
     assert main(["verify", missing]) == 2 and main(["verify", missing, "--debug"]) == 2
+
+
+def test_a_reason_is_not_cut_at_an_abbreviation():
+    # "e.g." inside brackets was taken for the end of a sentence and the reason stopped at "(e.g"
+    from splice.graph.tracing import reason
+
+    said = reason(ValueError("unsupported operand: the value (e.g. a list) is not a tensor, pass one,\nsee the docs"))
+    assert said == "ValueError: unsupported operand: the value (e.g. a list) is not a tensor, pass one, see the docs"

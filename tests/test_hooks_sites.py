@@ -132,14 +132,47 @@ class _Chunked(nn.Module):
 
 
 def test_a_site_reached_once_per_part_of_the_batch_is_refused_at_run_time():
+    # a record says `per` ran once per forward when it was spliced; a forward that runs it again on part of the
+    # batch is a loop over chunks, whose warp would see some images only
     torch.manual_seed(0)
     model = _Chunked().eval()
-    spliced = apply_hooks(model, [SplicePlan("per", WarpConfig())], {"per": ("per", 0)}, {"per": (8, 16, 16)})
+    spliced = apply_hooks(model, [SplicePlan("per", WarpConfig())], {"per": ("per", 0)}, {"per": (8, 16, 16)},
+                          calls={"per": 1})
     with torch.no_grad():
         spliced(torch.randn(2, 3, 16, 16))  # one chunk holds the whole batch: every image is warped
-        with pytest.raises(RuntimeError, match="point 'per' is reached once per part of the batch .* returned 1 "
-                                               "of the 3 images.* at another point"):
+        with pytest.raises(RuntimeError, match="point 'per' is reached once per part of the batch .* on 1 of the 3 "
+                                               "images.* at another point"):
             spliced(torch.randn(3, 3, 16, 16))
+
+
+class _Prototypes(nn.Module):
+    """One backbone runs on the queries, then on the support images (fewer of them): two calls, each legitimate."""
+
+    def __init__(self):
+        super().__init__()
+        self.backbone = nn.Sequential(nn.Conv2d(1, 8, 3, padding=1), nn.ReLU())
+        self.out = nn.Linear(8, 8)
+
+    def forward(self, query, support):
+        q = self.backbone(query).mean((2, 3))
+        s = self.backbone(support).mean((2, 3))
+        if query.shape[-1] > 8:  # a shape branch: fx cannot trace it, hooks reach the backbone
+            q = q + 0
+        return self.out(q) @ s.mean(0, keepdim=True).t()
+
+
+def test_a_module_run_again_on_another_input_with_fewer_images_is_no_loop():
+    # the guard refused the support call (2 of the 4 query images) though the module runs twice at any batch
+    torch.manual_seed(0)
+    model = _Prototypes().eval()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the fx fallback, and 'not a cut' (the support path joins at the end)
+        spliced = insert(model, at=["backbone_1"], input_shape=[(1, 16, 16), (1, 16, 16)])
+    assert spliced.splice_info.sites["backbone_1"]["calls"] == 2
+    q, support = torch.randn(4, 1, 16, 16), torch.randn(2, 1, 16, 16)
+    with torch.no_grad(), warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert torch.equal(spliced(q, support), model(q, support))
 
 
 class _BagPool(nn.Module):

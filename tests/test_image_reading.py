@@ -490,6 +490,11 @@ def test_a_class_named_like_a_split_in_another_case_stays_a_class(tmp_path):
     # an exact lowercase split folder is a split beside anything, and Train beside it is then no split
     _tree(flat, {"train": ("Bus",)})
     assert data.open_data(flat, "train", input_shape=(1, 6, 6)).folder == flat / "train"
+    # two splits named in another case are splits whatever is beside them (a Validation/ splice does not read)
+    named = _tree(tmp_path / "v", {"Train": ("cat", "dog"), "Test": ("cat", "dog"), "Validation": ("cat", "dog")})
+    test = data.open_data(named, "test", input_shape=(1, 6, 6))
+    assert test.folder == named / "Test" and test.classes == ImageFolder(str(named / "Test")).classes
+    assert data.open_data(named, "train", input_shape=(1, 6, 6)).folder == named / "Train"
 
 
 def test_a_split_other_than_train_may_lack_a_class_and_keeps_trains_labels(tmp_path):

@@ -137,3 +137,23 @@ def test_map_tensors_falls_back_to_a_dict_when_a_mapping_dataclass_cannot_be_reb
     value["t"] = torch.ones(1)
     out = map_tensors(value, lambda t: t * 2)
     assert type(out) is dict and out["t"].item() == 2
+
+
+class _ChannelGate(nn.Module):
+    """A channel-max gate that reads ``.values`` of torch.max's result, as attention blocks do."""
+
+    def __init__(self):
+        super().__init__()
+        self.c1, self.c2 = nn.Conv2d(3, 8, 3, padding=1), nn.Conv2d(8, 8, 3, padding=1)
+
+    def forward(self, x):
+        h = torch.relu(self.c1(x))
+        return (self.c2(h).max(dim=1, keepdim=True).values * h).mean((2, 3))
+
+
+def test_a_result_type_keeps_its_fields_through_shape_propagation():
+    # map_tensors turned torch.max's result into a plain tuple, and the traced getattr(.., "values") failed
+    names = [p.name for p in graph.points(_ChannelGate(), (3, 16, 16))]
+    assert names == ["input", "c1", "relu"]
+    top = torch.rand(2, 3).max(dim=1)
+    assert map_tensors(top, lambda t: t * 2).values.tolist() == (top.values * 2).tolist()  # torch's own result type
