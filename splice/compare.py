@@ -195,9 +195,12 @@ def map_tensors(out, fn):
         if type(out) in (tuple, list) or type(out).__module__.startswith("torch.fx"):  # fx's immutable_list too
             return plain(items)
         try:  # a result type that reads .values / .indices (torch.return_types), a user's list subclass
-            return type(out)(items)
+            new = type(out)(items)
         except Exception:  # a class built otherwise: the plain container still holds every value
             return plain(items)
+        # kept only when the class took the items as they are (a tuple built from *items would wrap the list)
+        same = type(new) is type(out) and len(new) == len(items) and all(a is b for a, b in zip(new, items))
+        return new if same else plain(items)
     if is_dataclass_instance(out):  # a shallow copy with each field mapped (no __init__ or __post_init__ run again)
         new = copy.copy(out)
         for f in dataclasses.fields(out):

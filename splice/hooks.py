@@ -137,7 +137,7 @@ class _SiteHook:
             return None
         k = st.calls.get(id(module), 0)
         st.calls[id(module)] = k + 1
-        if self.total is not None and k >= self.total:  # more calls than when it was spliced
+        if k >= (self.total if self.total is not None else 1):  # more calls than recorded (unrecorded: than one)
             self._check_extra_call(output, st.batch)
         site = self.sites.get(k)
         if site is None:
@@ -162,10 +162,10 @@ class _SiteHook:
         if isinstance(batch, int) and isinstance(output, torch.Tensor) and output.dim() == 4 \
                 and not torch.jit.is_tracing() and output.shape[0] < batch:
             raise RuntimeError(f"splice: point {point!r} is reached once per part of the batch (its module ran "
-                               f"{self.total + 1} times or more, on {output.shape[0]} of the {batch} images), so its "
-                               "warp would see only some of them; re-create the splice at another point from "
+                               f"{(self.total or 1) + 1} times or more, on {output.shape[0]} of the {batch} images), "
+                               "so its warp would see only some of them; re-create the splice at another point from "
                                "'splice points'")
-        if not self.warned:
+        if not self.warned and self.total is not None:  # a folder written before the count was recorded: no count
             self.warned = True  # once per spliced model: the same path repeats on every forward of this size
             points = ", ".join(repr(p) for p, w, _ in self.sites.values() if w is not None) or repr(point)
             warnings.warn(f"the module of point {points} ran more than the {self.total} time"

@@ -157,3 +157,15 @@ def test_a_result_type_keeps_its_fields_through_shape_propagation():
     assert names == ["input", "c1", "relu"]
     top = torch.rand(2, 3).max(dim=1)
     assert map_tensors(top, lambda t: t * 2).values.tolist() == (top.values * 2).tolist()  # torch's own result type
+
+
+class _Pair(tuple):
+    """A tuple built from separate arguments (``_Pair(a, b)``): given one list it would hold the list."""
+
+    def __new__(cls, *items):
+        return super().__new__(cls, items)
+
+
+def test_a_tuple_class_built_otherwise_comes_back_as_a_plain_tuple_of_the_mapped_items():
+    out = map_tensors(_Pair(torch.ones(1), torch.ones(2)), lambda t: t * 3)
+    assert type(out) is tuple and [t.tolist() for t in out] == [[3.0], [3.0, 3.0]]
