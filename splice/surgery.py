@@ -313,7 +313,7 @@ def _hooks_plan(plan: Sequence[SplicePlan], listing: Sequence) -> dict[str, dict
             p = by_name[name]
             needed[name] = {"module": p.site[0] if p.site else "", "call": p.site[1] if p.site else 0,
                             "shape": list(p.shape)}
-            if p.site is not None and getattr(p, "site_calls", None):
+            if p.site is not None and p.site_calls:
                 needed[name]["calls"] = int(p.site_calls)  # the module's calls per forward, checked at run time
         if loc not in (None, item.point) and order[loc] > order[item.point]:
             raise PointError(
@@ -331,23 +331,26 @@ def apply_info(model: nn.Module, info, *, factory: dict | None = None) -> nn.Mod
     """
     plan = [SplicePlan(p.name, p.warp) for p in info.points]
     if info.mechanism == "hooks":
-        sites = {name: (s["module"], s["call"]) for name, s in info.sites.items()}
-        shapes = {name: tuple(s["shape"]) for name, s in info.sites.items()}
-        return apply_hooks(model, plan, sites, shapes, within=info.within, factory=factory,
-                           calls={name: s["calls"] for name, s in info.sites.items() if "calls" in s},
-                           loc_warped=info.loc_reads == "warped")
+        return _hooks_at(model, plan, info.sites, within=info.within, factory=factory,
+                         loc_warped=info.loc_reads == "warped")
     return apply_plan(model, plan, info.input_shape, leaves=info.leaves, factory=factory,
                       shapes=info.recorded_shapes(), n_inputs=1 + len(info.extra_inputs))
+
+
+def _hooks_at(model: nn.Module, plan: Sequence[SplicePlan], sites: Mapping[str, Mapping], *, within: str,
+              factory: dict | None = None, loc_warped: bool = False) -> nn.Module:
+    """:func:`~splice.hooks.apply_hooks` at ``sites`` as a record holds them (``{point: {"module", "call",
+    "shape"}}``, and ``"calls"`` when known)."""
+    return apply_hooks(model, plan, {n: (s["module"], s["call"]) for n, s in sites.items()},
+                       {n: tuple(s["shape"]) for n, s in sites.items()}, within=within, factory=factory,
+                       calls={n: s["calls"] for n, s in sites.items() if "calls" in s}, loc_warped=loc_warped)
 
 
 def _splice(base: nn.Module, plan: Sequence[SplicePlan], listing: Sequence, src, *, leaves, traced, within: str):
     """``(spliced model, sites)`` with the mechanism the listing says."""
     if listing[0].mechanism == "hooks":
         sites = _hooks_plan(plan, listing)
-        model = apply_hooks(base, plan, {n: (s["module"], s["call"]) for n, s in sites.items()},
-                            {n: tuple(s["shape"]) for n, s in sites.items()}, within=within,
-                            calls={n: s["calls"] for n, s in sites.items() if "calls" in s})
-        return model, sites
+        return _hooks_at(base, plan, sites, within=within), sites
     return apply_plan(base, plan, src.input_shape, leaves=leaves, listing=listing, traced=traced), {}
 
 
