@@ -28,7 +28,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from ..compare import map_tensors
+from ..compare import flatten_outputs, map_tensors
 from ..copies import private_buffers
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, path_strides, site_name
@@ -108,7 +108,7 @@ class _Recorder:
         self._note(args)
 
     def _note(self, value) -> None:
-        for t in _flat_tensors(value):
+        for t in flatten_outputs(value).values():
             self.seen.setdefault(id(t), (len(self.seen), t))
 
     def _enter(self, module, args):
@@ -123,17 +123,6 @@ class _Recorder:
         shape = tuple(output.shape) if fresh and output.dim() == 4 else None
         self.outputs[(self.names[id(module)], k)] = shape
         self._note(output)
-
-
-def _flat_tensors(value):
-    if isinstance(value, torch.Tensor):
-        yield value
-    elif isinstance(value, (tuple, list)):
-        for v in value:
-            yield from _flat_tensors(v)
-    elif isinstance(value, Mapping):
-        for v in value.values():
-            yield from _flat_tensors(v)
 
 
 def _op(node) -> str:
