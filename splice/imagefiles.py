@@ -274,7 +274,6 @@ def read_image(path: Path, input_shape: Sequence[int]) -> Tensor:
 def _deep_grey(im, path: Path, size: tuple[int, int]):
     """A grey image of more than 8 bits (modes ``I;16*``, ``I``, ``F``) as float32 ``(1, H, W)`` in [0, 1]."""
     import numpy as np
-    from PIL import Image
 
     raw = np.asarray(im)
     if im.mode == "F":
@@ -296,8 +295,17 @@ def _deep_grey(im, path: Path, size: tuple[int, int]):
                             "that splice reads as 16-bit; rescale it to 0..65535 (or to 0..1 as a float image), "
                             "or save it as an 8- or 16-bit image.")
         grey = raw.astype(np.float32) / np.float32(_SIXTEEN_BIT)
-    resized = Image.fromarray(np.ascontiguousarray(grey)).resize(size, Image.Resampling.BILINEAR)
-    return np.clip(np.asarray(resized, dtype=np.float32), 0.0, 1.0)[None]
+    return _resized_planes(grey[None], size)
+
+
+def _resized_planes(planes, size: tuple[int, int]):
+    """Float32 planes ``(c, H, W)`` in [0, 1], each resized bilinearly by Pillow (mode F) to ``size`` and clipped."""
+    import numpy as np
+    from PIL import Image
+
+    resized = [np.asarray(Image.fromarray(np.ascontiguousarray(p)).resize(size, Image.Resampling.BILINEAR),
+                          dtype=np.float32) for p in planes]
+    return np.clip(np.stack(resized), 0.0, 1.0)
 
 
 def _deep_colour(path: Path, im) -> bool:
@@ -317,7 +325,6 @@ def _deep_colour_pixels(path: Path, kind: str, c: int, size: tuple[int, int]):
     """A 16-bit colour PNG at full depth (torchvision's PNG decoder; alpha dropped, as Pillow's RGB conversion
     does) as float32 ``(c, H, W)`` in [0, 1]; any other deep colour file is refused."""
     import numpy as np
-    from PIL import Image
     from torchvision.io import ImageReadMode, decode_png, read_file
 
     raw = None
@@ -332,9 +339,7 @@ def _deep_colour_pixels(path: Path, kind: str, c: int, size: tuple[int, int]):
         deep = (deep[0] * 0.299 + deep[1] * 0.587 + deep[2] * 0.114)[None]
     elif c == 3 and deep.shape[0] == 1:
         deep = np.repeat(deep, 3, axis=0)
-    planes = [np.asarray(Image.fromarray(np.ascontiguousarray(p)).resize(size, Image.Resampling.BILINEAR),
-                         dtype=np.float32) for p in deep]
-    return np.clip(np.stack(planes), 0.0, 1.0)
+    return _resized_planes(deep, size)
 
 
 def load_images(paths: Sequence[str | os.PathLike], input_shape: Sequence[int]) -> Tensor:
