@@ -201,11 +201,11 @@ def _split_folder(root: Path, split: str) -> tuple[Path, Path | None]:
     present = split_folders(root)
     if split in present:
         return present[split], present.get("train")
-    others = [d.name for d in _visible_dirs(root) if d not in present.values()]
-    found = ", ".join([d.name for d in present.values()] + others) or "nothing"
     if not present and split != "train":
         return root, None
-    if split in ("train", "val"):
+    if split in ("train", "val"):  # the refusal names what is there (a second look at the folder, on this path only)
+        others = [d.name for d in _visible_dirs(root) if d not in present.values()]
+        found = ", ".join([d.name for d in present.values()] + others) or "nothing"
         alone = " (a folder of class folders alone is read only as a val or test split)" if not present else ""
         raise DataError(f"{root} has no {split!r} folder (found: {found}); lay it out as {FOLDER_LAYOUT}{alone}.")
     raise DataError(
