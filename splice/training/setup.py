@@ -63,8 +63,11 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
         if model is None:
             raise SpliceError("tune needs a model: a spec such as splice.models:tray_net or a splice folder")
         rec = load_recipe(recipe).with_overrides(**overrides.recipe_keys())
-        if overrides.reference is not None:  # recipe.toml is the resolved recipe: passed back, it runs the same
-            rec = dataclasses.replace(rec, pretrain=dataclasses.replace(rec.pretrain, reference=overrides.reference))
+        # recipe.toml is the resolved recipe: passed back, from any directory, it runs the same (a folder by its
+        # absolute path, a built-in data set by its name)
+        given = overrides.reference if overrides.reference is not None else rec.pretrain.reference
+        if given not in ("auto", "train"):
+            rec = dataclasses.replace(rec, pretrain=dataclasses.replace(rec.pretrain, reference=data_record(given)))
         req = Request(model, rec, "digits" if data is None else data, model_options, None, None)
     else:
         req = _resumed(run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
