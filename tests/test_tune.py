@@ -147,6 +147,24 @@ def test_a_reference_folder_is_written_to_the_resolved_recipe_by_its_absolute_pa
     assert load_recipe(again / "recipe.toml").pretrain.reference == recorded["reference"]
 
 
+def test_the_stop_line_counts_in_the_steps_of_the_phase_it_stopped_in(tmp_path, spliced, capsys):
+    # a stop in warp pre-training read "stopped at warp pre-training step 3 (step 0)": two contradictory counts
+    out = tmp_path / "run"
+    recipe = _recipe("warp-only", epochs=1, batch_size=64)
+    tune(str(spliced), recipe=recipe, data="digits-moved", out=out,
+         run_options=RunOptions(quiet=True, stop_after_pretrain_steps=3))
+    said = capsys.readouterr()
+    lines = [line for line in (said.out + said.err).splitlines() if line.startswith("stopped at")]
+    tune(resume=out, run_options=RunOptions(quiet=True, stop_after_steps=2))
+    total = next(r for r in read_metrics(out) if r["phase"] == "pretrain")["pretrain_steps"]  # what pre-training ran
+    said = capsys.readouterr()
+    lines += [line for line in (said.out + said.err).splitlines() if line.startswith("stopped at")]
+    assert lines == [f"stopped at warp pre-training step 3 of {total}; checkpoint written. Continue with: "
+                     f"splice tune --resume {out}",
+                     f"stopped at epoch 1, batch 2 (step 2); checkpoint written. Continue with: "
+                     f"splice tune --resume {out}"]
+
+
 def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
     before = splice.load(spliced).state_dict()
     out = tmp_path / "run"
