@@ -531,6 +531,58 @@ def test_resuming_a_label_free_run_on_changed_site_images_says_the_batches_diffe
         tune(resume=out, run_options=RunOptions(progress=False, stop_after_steps=3))
 
 
+def test_a_label_free_run_resumed_from_another_directory_reads_its_own_site(tmp_path, folders, spliced, monkeypatch):
+    import os
+    import shutil
+
+    ref, site = folders
+    here = tmp_path / "here"
+    shutil.copytree(site, here / "site")
+    shutil.copytree(ref, here / "ref")
+    monkeypatch.chdir(here)
+    out = tmp_path / "run"
+    tune(str(spliced), recipe=_tiny(), site="site", out=out, overrides=RecipeOverrides(reference="ref"),
+         run_options=RunOptions(progress=False, stop_after_steps=2))
+    # a folder of the same name in another directory: 5 blank images, refused or warned about if it were read
+    _write_pngs(tmp_path / "elsewhere" / "site", torch.zeros(5, 1, 24, 24))
+    monkeypatch.chdir(tmp_path / "elsewhere")
+    tune(resume=out, run_options=RunOptions(progress=False, stop_after_steps=3))
+    info = json.loads((out / "run.json").read_text())
+    # os.path.realpath: the standard library's resolved path, the reference for data_path
+    assert info["data"] == "site" and info["data_path"] == os.path.realpath(here / "site")
+    assert info["reference"] == os.path.realpath(here / "ref") and info["site_images"] == 40
+    # the same site and reference typed otherwise (absolute, with a trailing slash) are the same
+    tune(resume=out, site=f"{here / 'site'}/", overrides=RecipeOverrides(reference=f"{here / 'ref'}/"),
+         run_options=QUIET)
+    assert json.loads((out / "run.json").read_text())["status"] == "finished"
+
+
+def test_a_label_free_run_resumes_on_another_copy_of_its_site_only_with_the_same_files(tmp_path, folders, spliced):
+    import os
+    import shutil
+
+    from splice.errors import SpliceError
+
+    ref, site = folders
+    mine, copy = tmp_path / "site", tmp_path / "copy"
+    shutil.copytree(site, mine)
+    out = tmp_path / "run"
+    tune(str(spliced), recipe=_tiny(), site=str(mine), out=out, overrides=RecipeOverrides(reference=str(ref)),
+         run_options=RunOptions(progress=False, stop_after_steps=2))
+    shutil.copytree(mine, copy)
+    next(p for p in sorted(copy.rglob("*.png"))).unlink()
+    with pytest.raises(DataError, match=r"the run's site folder '.*site' still exists and '.*copy' holds other image "
+                                        r"files; omit --site to resume on the run's own site images"):
+        tune(resume=out, site=str(copy), run_options=QUIET)
+    shutil.rmtree(copy)
+    moved = mine.rename(tmp_path / "moved")
+    with pytest.raises(SpliceError, match=r"was started on the site folder '.*site' \(run.json\), which no longer "
+                                          r"exists; pass --site with the folder's new place to resume"):
+        tune(resume=out, run_options=QUIET)
+    tune(resume=out, site=str(moved), run_options=RunOptions(progress=False, stop_after_steps=3))  # the same files
+    assert json.loads((out / "run.json").read_text())["data_path"] == os.path.realpath(moved)
+
+
 def test_a_resumed_run_draws_from_the_exact_estimated_ranges(tmp_path, folders, spliced, monkeypatch):
     """An estimate is seldom a round number; the checkpoint kept it rounded to 4 decimals, so a run stopped after the
     estimate pre-trained and adapted within other ranges than an uninterrupted one (weights off by up to 0.6)."""

@@ -118,6 +118,53 @@ def test_a_given_reference_is_in_the_resolved_recipe_that_can_be_passed_back(tmp
     assert (recorded["reference"], recorded["reference_origin"]) == ("digits", "given"), recorded
 
 
+def test_a_reference_folder_is_written_to_the_resolved_recipe_by_its_absolute_path(tmp_path, spliced, monkeypatch):
+    # recipe.toml kept the reference as typed ("ref"), so passed back from another directory it named another folder
+    from PIL import Image
+
+    from splice.data import open_data
+
+    upright = open_data("digits", "val", input_shape=SHAPE).images[:12]
+    for split in ("train", "val"):
+        (tmp_path / "here" / "ref" / split / "0").mkdir(parents=True)
+        for i, img in enumerate(upright):
+            pixels = (img[0] * 255).round().to(torch.uint8).numpy()
+            Image.fromarray(pixels, mode="L").save(tmp_path / "here" / "ref" / split / "0" / f"{i}.png")
+    monkeypatch.chdir(tmp_path / "here")
+    stop = RunOptions(progress=False, stop_after_pretrain_steps=1)
+    out = tmp_path / "run"
+    tune(str(spliced), recipe=_recipe("warp-only", epochs=1), data="digits-moved", out=out,
+         overrides=RecipeOverrides(reference="ref/"), run_options=stop)
+    # os.path.realpath: the standard library's resolved path, the reference for what the recipe records
+    assert load_recipe(out / "recipe.toml").pretrain.reference == os.path.realpath(tmp_path / "here" / "ref")
+    (tmp_path / "elsewhere" / "ref").mkdir(parents=True)  # a same-named folder, empty: refused if it were read
+    monkeypatch.chdir(tmp_path / "elsewhere")
+    again = tmp_path / "again"
+    tune(str(spliced), recipe=str(out / "recipe.toml"), data="digits-moved", out=again, run_options=stop)
+    recorded = json.loads((again / "run.json").read_text())
+    assert (recorded["reference"], recorded["reference_origin"]) == (os.path.realpath(tmp_path / "here" / "ref"),
+                                                                      "given")
+    assert load_recipe(again / "recipe.toml").pretrain.reference == recorded["reference"]
+
+
+def test_the_stop_line_counts_in_the_steps_of_the_phase_it_stopped_in(tmp_path, spliced, capsys):
+    # a stop in warp pre-training read "stopped at warp pre-training step 3 (step 0)": two contradictory counts
+    out = tmp_path / "run"
+    recipe = _recipe("warp-only", epochs=1, batch_size=64)
+    tune(str(spliced), recipe=recipe, data="digits-moved", out=out,
+         run_options=RunOptions(quiet=True, stop_after_pretrain_steps=3))
+    said = capsys.readouterr()
+    lines = [line for line in (said.out + said.err).splitlines() if line.startswith("stopped at")]
+    tune(resume=out, run_options=RunOptions(quiet=True, stop_after_steps=2))
+    total = next(r for r in read_metrics(out) if r["phase"] == "pretrain")["pretrain_steps"]  # what pre-training ran
+    said = capsys.readouterr()
+    lines += [line for line in (said.out + said.err).splitlines() if line.startswith("stopped at")]
+    assert lines == [f"stopped at warp pre-training step 3 of {total}; checkpoint written. Continue with: "
+                     f"splice tune --resume {out}",
+                     f"stopped at epoch 1, batch 2 (step 2); checkpoint written. Continue with: "
+                     f"splice tune --resume {out}"]
+
+
 def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
     before = splice.load(spliced).state_dict()
     out = tmp_path / "run"

@@ -259,6 +259,78 @@ def test_resuming_on_changed_data_says_the_batches_differ(tmp_path):
         tune(resume=out, run_options=QUIET)
 
 
+_TINY_BASELINE = dataclasses.replace(load_recipe("baseline"), batch_size=4, epochs=2)
+_TWO = ModelOptions(kwargs={"num_classes": 2})
+
+
+def _started_here(tmp_path, monkeypatch, steps: int):
+    """A baseline run started in tmp_path/here on the folder typed as 'data', stopped after ``steps`` steps."""
+    root = _two_classes(tmp_path / "here" / "data", n=6)
+    monkeypatch.chdir(tmp_path / "here")
+    with pytest.warns(SpliceWarning):  # random weights
+        tune("splice.models:tray_net", recipe=_TINY_BASELINE, data="data", out=tmp_path / "run", model_options=_TWO,
+             run_options=RunOptions(progress=False, stop_after_steps=steps))
+    return root, tmp_path / "run"
+
+
+def test_a_run_resumed_from_another_directory_reads_the_folder_it_started_on(tmp_path, monkeypatch):
+    root, out = _started_here(tmp_path, monkeypatch, steps=2)
+    whole = tmp_path / "whole"
+    with pytest.warns(SpliceWarning):  # random weights
+        tune("splice.models:tray_net", recipe=_TINY_BASELINE, data=str(root), out=whole, model_options=_TWO,
+             run_options=QUIET)
+    # another directory with a folder of the same name (other classes): read, it would be refused or warned about
+    _two_classes(tmp_path / "elsewhere" / "data", n=2)
+    monkeypatch.chdir(tmp_path / "elsewhere")
+    tune(resume=out, run_options=QUIET)
+    resumed, uninterrupted = _folder_state(out / "last"), _folder_state(whole / "last")
+    assert resumed.keys() == uninterrupted.keys()
+    assert all(torch.equal(resumed[k], uninterrupted[k]) for k in resumed)  # bit for bit: the same images
+    info = json.loads((out / "run.json").read_text())
+    # os.path.realpath: the standard library's resolved path, the reference for data_path
+    assert info["data"] == "data" and info["data_path"] == os.path.realpath(root) and info["status"] == "finished"
+
+
+def test_the_run_folder_typed_otherwise_is_the_same_data(tmp_path, monkeypatch):
+    root, out = _started_here(tmp_path, monkeypatch, steps=1)
+    monkeypatch.chdir(tmp_path)
+    for steps, given in enumerate((f"{root}/", "here/data/", "here/./data", "here/data"), start=2):
+        tune(resume=out, data=given, run_options=RunOptions(progress=False, stop_after_steps=steps))
+    assert json.loads((out / "run.json").read_text())["data_path"] == os.path.realpath(root)
+    with pytest.raises(SpliceError, match=r"was started with data 'data', but 'digits' was given"):
+        tune(resume=out, data="digits", run_options=QUIET)
+
+
+def test_a_moved_data_folder_is_named_on_resume_and_recorded_where_it_is_now(tmp_path, monkeypatch, capsys):
+    root, out = _started_here(tmp_path, monkeypatch, steps=1)
+    moved = root.rename(tmp_path / "moved")
+    code = cli.main(["tune", "--resume", str(out), "--quiet"])
+    err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+    assert code == 2 and len(err) == 1, err
+    assert f"was started on the data folder '{os.path.realpath(root)}' (run.json), which no longer exists; pass " \
+           "--data with the folder's new place" in err[0]
+    tune(resume=out, data=str(moved), run_options=RunOptions(progress=False, stop_after_steps=2))  # same files
+    info = json.loads((out / "run.json").read_text())
+    assert info["data"] == info["data_path"] == os.path.realpath(moved)
+    tune(resume=out, run_options=QUIET)  # found again without --data
+    assert json.loads((out / "run.json").read_text())["status"] == "finished"
+
+
+def test_another_copy_of_the_data_is_taken_only_with_the_same_files(tmp_path, monkeypatch):
+    import shutil
+
+    root, out = _started_here(tmp_path, monkeypatch, steps=1)
+    copy = tmp_path / "copy"
+    shutil.copytree(root, copy)
+    tune(resume=out, data=str(copy), run_options=RunOptions(progress=False, stop_after_steps=2))
+    assert json.loads((out / "run.json").read_text())["data_path"] == os.path.realpath(copy)
+    (root / "train" / "b" / "5.png").rename(root / "train" / "b" / "6.png")  # as many files, not the same
+    with pytest.raises(DataError, match=r"the run's data folder '.*copy' still exists and '.*data' holds other image "
+                                        r"files; omit --data to resume on the run's own data"):
+        tune(resume=out, data=str(root), run_options=QUIET)
+    assert json.loads((out / "run.json").read_text())["data_path"] == os.path.realpath(copy)
+
+
 def test_resuming_after_class_folders_were_renamed_is_refused(tmp_path):
     # a renamed class folder reorders the classes: each output would go on meaning another class
     root = _two_classes(tmp_path / "data", n=6)

@@ -28,7 +28,7 @@ from torch import Tensor
 from ..errors import DataError
 
 __all__ = ["MEMORY_LIMIT", "Images", "TensorImages", "FileImages", "SubsetImages", "open_images", "image_files",
-           "split_off"]
+           "split_off", "files_sha256"]
 
 
 # Folders up to this many bytes of float32 pixels are held in memory (common practice, no source).
@@ -118,6 +118,23 @@ def image_files(root: Path) -> list[Path]:
     from ..imagefolder import split_folders
 
     return list_image_files(split_folders(root).get("train", root))
+
+
+def files_sha256(spec) -> str | None:
+    """A hash of which image files :func:`open_images` reads from the folder ``spec`` (their paths relative to it,
+    their sizes in bytes), the same wherever the folder lies; ``None`` for the embedded data sets."""
+    import hashlib
+
+    from ..data import embedded
+    from ..fileio import name_bytes
+
+    if embedded(spec):
+        return None
+    root = Path(os.fspath(spec)).expanduser()
+    h = hashlib.sha256()
+    for path in image_files(root):  # name_bytes: a name that is not UTF-8 hashed as its bytes
+        h.update(name_bytes(f"{path.relative_to(root).as_posix()}\t{path.stat().st_size}\n"))
+    return h.hexdigest()
 
 
 def open_images(spec: str, input_shape: Sequence[int], *, what: str = "site") -> Images:

@@ -33,7 +33,7 @@ from ..recipes import recipe_to_toml
 from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
 from ..training.pretrain import execution_order
-from ..training.recording import (announce_stop, base_predictions, predicted_classes, resume_command,
+from ..training.recording import (announce_stop, epoch_position, base_predictions, predicted_classes, resume_command,
                                   saved_predictions)
 from ..training.runfolder import RECIPE_FILE, read_metrics, truncate_metrics, write_run_info, writing
 from ..training.state import TuneInterrupted
@@ -180,8 +180,7 @@ def _restore(run: AdaptRun) -> tuple[str, int, int]:
 def _stopped(run: AdaptRun, epoch: int, batch: int) -> dict[str, Any]:
     if run.ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="interrupted"))
-    where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
-    announce_stop(run, where)
+    announce_stop(run, epoch_position(epoch, batch, run.step))
     return {"out": str(run.run_dir), "rank": run.ctx.rank, "world_size": run.ctx.world_size, "steps": run.step,
             "epochs": run.rec.epochs, "best_accuracy": None, "best_epoch": run.best["epoch"], "interrupted": True,
             "resume_at": {"epoch": epoch, "batch": batch}}

@@ -20,17 +20,18 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from ..errors import RecipeError
+from ..errors import DataError, RecipeError
 from ..graph.shapes import input_dtype
 from ..manifest import info_of
 from ..options import ModelOptions
 from ..recipes import Recipe, load_recipe
 from ..training.options import RecipeOverrides
+from ..training.reference import data_record
 from ..training.runfolder import (RECIPE_FILE, check_same, prepare_folder, start_files, warn_other_data,
                                   write_run_info)
 from ..training.setup import gate_recorded_model, load_model, normalisation, resolve, run_info
 from .diagnostics import sample_indices
-from .images import Images, open_images
+from .images import Images, files_sha256, open_images
 from .probe import check_reference_size, check_site_size
 
 __all__ = ["AdaptRun", "set_up", "reference_for_site", "REFERENCE_PROBE"]
@@ -105,7 +106,30 @@ def _resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, site: str,
             )
         recipe, overrides = None, RecipeOverrides(reference=overrides.reference)
     return resolve(ctx, run_dir, info, model=model, recipe=recipe, data=site, overrides=overrides,
-                   model_options=model_options)
+                   model_options=model_options, data_flag="--site")
+
+
+def _resumed_site(ctx, req, info: dict, run_dir: Path, now: tuple) -> dict:
+    """run.json of a resumed run, which goes on with the site images it started with: another copy of the site
+    folder (while the recorded one still exists) only if it holds the same files; fewer, more or other files (a
+    bad file removed, a folder moved and changed) with a warning."""
+    recorded = info.get("data_path") or info["data"]
+    fingerprint = files_sha256(req.data)
+    if req.other_copy and (info.get("site_sha256") is None or fingerprint != info["site_sha256"]):
+        raise DataError(f"the run's site folder '{recorded}' still exists and '{req.data}' holds other image files; "
+                        "omit --site to resume on the run's own site images")
+    if ctx.is_main:
+        started = (info.get("site_images"), info.get("reference_images"))
+        if started[0] is not None and started != now:
+            warn_other_data(f"{now[0]:,} site and {now[1] or 0:,} reference images where the run started with "
+                            f"{started[0]:,} and {started[1] or 0:,}")
+        elif info.get("site_sha256") not in (None, fingerprint):
+            warn_other_data(f"other site image files than the run started with ({now[0]:,}, as before)")
+        info["status"] = "running"
+        if data_record(req.data) != info.get("data_path"):  # resumed where the site images are now
+            info.update(data=req.data, data_path=data_record(req.data))
+        write_run_info(run_dir, info)
+    return info
 
 
 def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverrides,
@@ -115,9 +139,6 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
     gate_recorded_model(resume, model, model_options)
     run_dir, info = prepare_folder(ctx, Path(out) if out is not None else None,
                                    Path(resume) if resume is not None else None, locks)
-    if info is not None:
-        check_same("site", site, info["data"], run_dir)
-        site = info["data"]
     req = _resolve(ctx, run_dir, info, model=model, recipe=recipe, site=site, overrides=overrides,
                    model_options=model_options)
     rec = req.recipe
@@ -135,7 +156,9 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
 
     ref_name = None
     if rec.mode == "label-free" and info is not None:  # resuming: the run folder says which
-        check_same("reference", overrides.reference, info.get("reference"), run_dir)
+        given = overrides.reference  # the recorded folder typed otherwise (relative, a trailing slash) is the same
+        check_same("reference", None if given is None or data_record(given) == info.get("reference") else given,
+                   info.get("reference"), run_dir)
         ref_name = info.get("reference")
     if rec.mode == "label-free" and ref_name is None:
         record = info_of(net)
@@ -148,17 +171,12 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
     classes = list(src.class_names) if src.class_names else []
     if info is None:
         info = dict(run_info(ctx, req, src, net, classes, norm, norm_origin="model", ref=None), reference=ref_name,
-                    site_images=len(site_images), reference_images=None if reference is None else len(reference))
+                    site_images=len(site_images), reference_images=None if reference is None else len(reference),
+                    site_sha256=files_sha256(req.data))
         if ctx.is_main:
             start_files(run_dir, rec, info)
-    elif ctx.is_main:
-        started = (info.get("site_images"), info.get("reference_images"))
-        now = (len(site_images), None if reference is None else len(reference))
-        if started[0] is not None and started != now:
-            warn_other_data(f"{now[0]:,} site and {now[1] or 0:,} reference images where the run started with "
-                            f"{started[0]:,} and {started[1] or 0:,}")
-        info["status"] = "running"
-        write_run_info(run_dir, info)
+    else:
+        info = _resumed_site(ctx, req, info, run_dir, (len(site_images), None if reference is None else len(reference)))
     probe = None
     if reference is not None and warps:
         probe = reference.batch(sample_indices(len(reference), 0, REFERENCE_PROBE))

@@ -185,7 +185,7 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
     def on_step(i, total, loss) -> bool:
         if not shown:
             run.bar.start("pre-train warps", total)
-            shown.append(True)
+            shown.append(total)
         run.bar.update(i, **{"grid loss": loss})
         wanted = run.flag.raised or (run.stop_after_pretrain_steps is not None and i >= run.stop_after_pretrain_steps)
         return distributed.broadcast_flag(ctx, wanted)  # every rank stops at the same step
@@ -197,7 +197,9 @@ def _start(run: Run, stepper: Stepper, frozen: _Frozen, resume: dict | None = No
                           rank=ctx.rank, world=ctx.world_size, reduce_grads=grad_reducer(ctx),
                           on_step=on_step, workers=run.workers, resume=resume, on_checkpoint=on_checkpoint)
     if res["stopped"]:
-        return stopped(run, 0, 0, where=f"warp pre-training step {res['steps']}")
+        # in pre-training's own steps: no optimiser step of the task has run yet
+        of = f" of {shown[0]}" if shown else ""
+        return stopped(run, 0, 0, where=f"warp pre-training step {res['steps']}{of}")
     run.bar.finish(res["steps"])
     record(run, "pretrain", 0, loss=round(res["grid_loss"], 6),  # lr: the pre-training's peak, not the task's
            extra={"reference": run.reference.data, "pretrain_steps": res["steps"], "lr": rec.pretrain.lr})

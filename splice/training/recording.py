@@ -23,6 +23,7 @@ from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, w
 from .state import Run, TuneInterrupted, unwrap
 
 __all__ = ["UPRIGHT_AGREEMENT", "evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
+           "epoch_position",
            "reference_predictions", "predicted_classes", "base_predictions", "saved_predictions", "agreement",
            "caution_upright", "finish", "nonfinite", "diverged"]
 
@@ -272,22 +273,26 @@ def resume_command(run_dir, world_size: int) -> str:
     return f"splice tune --resume {run_dir}"
 
 
+def epoch_position(epoch: int, batch: int, step: int) -> str:
+    """Where a stop inside the epochs is: the epoch and batch, and the optimiser steps so far."""
+    return (f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}") + f" (step {step})"
+
+
 def announce_stop(run: Any, where: str) -> None:
-    """Say where ``run`` (a tune or label-free run) stopped and how to continue it; raise
-    :class:`TuneInterrupted` when a signal asked for the stop."""
+    """Say where ``run`` (a tune or label-free run) stopped (``where``, in the steps of the phase it stopped in:
+    :func:`epoch_position`, or warp pre-training's own) and how to continue it; raise :class:`TuneInterrupted`
+    when a signal asked for the stop."""
     command = resume_command(run.run_dir, run.ctx.world_size)
-    run.bar.line(f"stopped at {where} (step {run.step}); checkpoint written. Continue with: {command}")
+    run.bar.line(f"stopped at {where}; checkpoint written. Continue with: {command}")
     if run.flag.raised:
-        raise TuneInterrupted(f"stopped at step {run.step}; continue with: {command}", run.flag.signal)
+        raise TuneInterrupted(f"stopped at {where}; continue with: {command}", run.flag.signal)
 
 
 def stopped(run: Run, epoch: int, batch: int, where: str | None = None) -> dict[str, Any]:
     """After a stop request: the checkpoint is written; record it, and raise for Ctrl-C / SIGTERM."""
     if run.ctx.is_main:
         write_run_info(run.run_dir, dict(run.info, status="interrupted"))
-    if where is None:
-        where = f"epoch {epoch + 1}, batch {batch}" if batch else f"the end of epoch {epoch}"
-    announce_stop(run, where)
+    announce_stop(run, where if where is not None else epoch_position(epoch, batch, run.step))
     return {"out": str(run.run_dir), "rank": run.ctx.rank, "world_size": run.ctx.world_size,
             "best_accuracy": run.best["accuracy"], "best_epoch": run.best["epoch"], "steps": run.step,
             "epochs": run.rec.epochs, "interrupted": True, "resume_at": {"epoch": epoch, "batch": batch}}

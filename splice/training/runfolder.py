@@ -28,7 +28,7 @@ from ..sources import MODULE_SPEC
 
 __all__ = ["RUN_SCHEMA_VERSION", "RUN_FORMAT", "RUN_FILE", "RECIPE_FILE", "METRICS_FILE", "HASH_ENV", "STATUSES",
            "read_metrics", "truncate_metrics", "append_metrics", "writing", "prepare_folder", "check_same",
-           "describe", "write_run_info", "start_files", "read_run_info", "warn_other_data"]
+           "describe", "write_run_info", "start_files", "read_run_info", "warn_other_data", "resumed_data"]
 
 RUN_SCHEMA_VERSION = 1
 # running: a process is writing (or died: then no live lock; --resume continues); finished; stopped early
@@ -111,6 +111,35 @@ def check_same(what: str, given: Any, recorded: Any, run: Path) -> None:
             f"run '{run}' was started with {what} {recorded!r}, but {given!r} was given; pass the same "
             f"{what} (or omit it) to resume"
         )
+
+
+def resumed_data(given: Any, info: dict, run: Path, flag: str = "--data") -> tuple[str, bool]:
+    """What a resumed run opens, as ``(data, another_copy)``.
+
+    The run's own data is run.json's absolute ``data_path`` (its typed ``data``
+    for a built-in data set, or for a run an older splice started), never a
+    folder of that name under the current directory. A given ``flag`` value
+    names the same data when both sides resolve to the same folder (``imgs/``
+    is ``imgs``). Another folder is taken where the recorded one no longer
+    exists (it was moved; the caller warns if its files differ); while the
+    recorded one exists, ``another_copy`` is true and the caller refuses it
+    unless it holds the run's image files.
+    """
+    from .reference import data_record
+
+    recorded, what = info.get("data_path") or info["data"], flag.lstrip("-")
+    theirs = data_record(recorded)  # a built-in data set by its name, a folder by its absolute path
+    if given is None:
+        if os.path.isabs(theirs) and not Path(theirs).exists():
+            raise SpliceError(f"run '{run}' was started on the {what} folder '{recorded}' ({RUN_FILE}), which no "
+                              f"longer exists; pass {flag} with the folder's new place to resume")
+        return recorded, False
+    mine = data_record(os.fspath(given))
+    if mine == theirs:
+        return recorded, False
+    if not (os.path.isabs(mine) and os.path.isabs(theirs)):  # a built-in data set on either side: other data
+        check_same(what, os.fspath(given), info["data"], run)
+    return mine, Path(theirs).exists()
 
 
 def warn_other_data(what: str) -> None:

@@ -30,7 +30,8 @@ from .normalisation import estimate_normalisation
 from .options import RecipeOverrides
 from .params import frozen_by_model
 from .reference import Reference, data_record, resolve_reference
-from .runfolder import RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info
+from .runfolder import (RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info,
+                        resumed_data)
 
 __all__ = ["refuse_train_mode_output",
            "gate_recorded_model", "Request", "resolve", "load_model", "open_splits", "reference", "reference_images",
@@ -47,11 +48,14 @@ class Request:
     model_options: ModelOptions
     info: dict | None
     ckpt: dict | None
+    other_copy: bool = False  # resumed on another folder than the recorded one, which still exists
+
 
 
 def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overrides: RecipeOverrides,
-            model_options: ModelOptions) -> Request:
-    """The recipe, model and data of a fresh run, or of a resumed one (whose run folder is the authority)."""
+            model_options: ModelOptions, data_flag: str = "--data") -> Request:
+    """The recipe, model and data of a fresh run, or of a resumed one (whose run folder is the authority;
+    ``data_flag`` is how its messages name the data option)."""
     if info is None:
         if recipe is None:
             raise RecipeError("tune needs a recipe: baseline, warp-only, joint, staged, label-free, batchnorm-stats, "
@@ -59,12 +63,15 @@ def resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, data, overr
         if model is None:
             raise SpliceError("tune needs a model: a spec such as splice.models:tray_net or a splice folder")
         rec = load_recipe(recipe).with_overrides(**overrides.recipe_keys())
-        if overrides.reference is not None:  # recipe.toml is the resolved recipe: passed back, it runs the same
-            rec = dataclasses.replace(rec, pretrain=dataclasses.replace(rec.pretrain, reference=overrides.reference))
+        # recipe.toml is the resolved recipe: passed back, from any directory, it runs the same (a folder by its
+        # absolute path, a built-in data set by its name)
+        given = overrides.reference if overrides.reference is not None else rec.pretrain.reference
+        if given not in ("auto", "train"):
+            rec = dataclasses.replace(rec, pretrain=dataclasses.replace(rec.pretrain, reference=data_record(given)))
         req = Request(model, rec, "digits" if data is None else data, model_options, None, None)
     else:
         req = _resumed(run_dir, info, model=model, recipe=recipe, data=data, overrides=overrides,
-                       model_options=model_options)
+                       model_options=model_options, data_flag=data_flag)
     if ctx.world_size > 1 and req.recipe.batch_size % ctx.world_size:
         raise RecipeError(
             f"batch_size {req.recipe.batch_size} does not split evenly over {ctx.world_size} processes; the "
@@ -91,7 +98,7 @@ def _without_reference(recipe: dict) -> dict:
 
 
 def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: RecipeOverrides,
-             model_options: ModelOptions) -> Request:
+             model_options: ModelOptions, data_flag: str) -> Request:
     recorded = load_recipe(run_dir / RECIPE_FILE)
     if recipe is not None or overrides.any_recipe_key:
         given = load_recipe(recipe if recipe is not None else run_dir / RECIPE_FILE)
@@ -105,7 +112,7 @@ def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: Recip
                 f"resume without --recipe and overrides, or with the same ones"
             )
     check_same("model", describe(model) if model is not None else None, info["model"], run_dir)
-    check_same("data", data, info["data"], run_dir)
+    data, other_copy = resumed_data(data, info, run_dir, data_flag)
     if model is None and info["model"] == MODULE_SPEC:
         raise SpliceError(f"run '{run_dir}' was started from an nn.Module object; pass the same model again to resume")
     # the architecture must be rebuilt exactly as it was: reuse the recorded builder options. A model taken
@@ -117,7 +124,7 @@ def _resumed(run_dir: Path, info: dict, *, model, recipe, data, overrides: Recip
         weights=mo.weights if mo.weights is not None else _in_run(info.get("model_weights"), run_dir),
         origin=run_dir / RUN_FILE if model is None else mo.origin)
     ckpt = load_checkpoint(run_dir / CHECKPOINT_NAME) if (run_dir / CHECKPOINT_NAME).is_file() else None
-    return Request(model if model is not None else info["model"], recorded, info["data"], mo, info, ckpt)
+    return Request(model if model is not None else info["model"], recorded, data, mo, info, ckpt, other_copy)
 
 
 def _in_run(path: str | None, run_dir: Path) -> str | None:

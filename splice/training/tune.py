@@ -299,11 +299,16 @@ def _set_up(ctx, *, model, recipe, data, out, resume, overrides: RecipeOverrides
             start_files(run_dir, rec, info)
     else:
         _refuse_other_classes(info, classes, req.data)
+        if req.other_copy and info.get("images_sha256") != _image_list_sha256(train_set, val_set):
+            raise DataError(f"the run's data folder '{info.get('data_path') or info['data']}' still exists and "
+                            f"'{req.data}' holds other image files; omit --data to resume on the run's own data")
         if ctx.is_main:
             _warn_if_data_changed(info, train_set, val_set)
         if ctx.is_main:
             info = {k: v for k, v in info.items() if k not in ("diverged", "error")}
             info["status"] = "running"
+            if data_record(req.data) != info.get("data_path"):  # resumed where the data is now
+                info.update(data=req.data, data_path=data_record(req.data))
             write_run_info(run_dir, info)
     return Run(ctx=ctx, rec=rec, src=src, net=net, warps=warps, train=train_set, val=val_set, prepare=prepare,
                norm=norm, classes=classes or None, run_dir=run_dir, info=info, data=req.data,
