@@ -605,6 +605,10 @@ def test_a_signal_stops_the_run_exits_128_plus_it_and_names_the_command_that_con
     monkeypatch.setenv("LOCAL_WORLD_SIZE", "2")  # torchrun's own variable: two nodes of two processes
     assert resume_command(run, 4) == (f"torchrun --nproc-per-node 2 -m splice tune --resume {run} on each of the 2 "
                                       "nodes, with their rendezvous options")
+    # a folder named relative to here, or with a space, is named so that the command works from anywhere
+    monkeypatch.chdir(tmp_path)
+    assert resume_command("run", 1) == f"splice tune --resume {run}"
+    assert resume_command("my run", 1) == f"splice tune --resume '{tmp_path / 'my run'}'"
 
 
 def test_upright_agreement_is_recorded_and_a_warp_that_moves_upright_predictions_is_a_caution(tmp_path, spliced):

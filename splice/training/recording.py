@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shlex
 import time
 import warnings
 from typing import Any
@@ -264,7 +265,9 @@ def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None 
 
 def resume_command(run_dir, world_size: int) -> str:
     """The command that continues the run in ``run_dir``: torchrun with as many processes when it ran in several
-    (a resume in another number of processes is refused)."""
+    (a resume in another number of processes is refused); the folder by its absolute path, quoted for a shell, so
+    the command works from any directory."""
+    run_dir = shlex.quote(os.path.abspath(os.fspath(run_dir)))
     if world_size > 1:
         local = int(os.environ.get("LOCAL_WORLD_SIZE") or world_size)  # torchrun's processes on this node
         nodes = max(1, world_size // max(1, local))
