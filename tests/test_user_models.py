@@ -384,3 +384,53 @@ def test_points_json_of_a_two_input_model_lists_every_input_shape(capsys):
     assert list(report)[:3] == ["model", "input_shape", "input_shapes"]
     assert main(["points", "splice.models:tray_net", "--json"]) == 0
     assert "input_shapes" not in json.loads(capsys.readouterr().out)  # one input: as before
+
+
+class _RescalesItsInput(nn.Module):
+    """A common user pattern: take 0-255 or 0-1 images, decided on the values (no tracer or meta pass follows it)."""
+
+    def __init__(self):
+        super().__init__()
+        self.features = nn.Sequential(nn.Conv2d(3, 8, 3, 2, 1), nn.ReLU(), nn.Conv2d(8, 8, 3, 2, 1), nn.ReLU())
+        self.fc = nn.Linear(8, 4)
+
+    def forward(self, x):
+        if x.max() > 1.0:
+            x = x / 255.0
+        return self.fc(self.features(x).mean((2, 3)))
+
+
+def test_a_model_that_branches_on_its_input_values_is_spliced_at_the_input(tmp_path):
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    model = _RescalesItsInput().eval()
+    with pytest.warns(TraceFallbackWarning, match=r"only 'input' is listed .*a meta-device forward failed in the "
+                                                  r"forward of _RescalesItsInput itself"):
+        spliced = splice.insert(model, at="recommended", input_shape=(3, 32, 32))
+    assert [p.name for p in spliced.splice_info.points] == ["input"]
+    # both branches, through the warp at the identity: the base's own outputs (a pre-hook on the root, the
+    # model's forward itself untouched)
+    for x in (torch.rand(2, 3, 32, 32), 255 * torch.rand(2, 3, 32, 32)):
+        with torch.no_grad():
+            assert torch.equal(spliced(x), model(x))
+    # and from a file, as a user splices it: the folder loads and its certificate holds
+    import inspect
+    import textwrap
+
+    code = "import torch\nfrom torch import nn\n\n" + textwrap.dedent(inspect.getsource(_RescalesItsInput))
+    (tmp_path / "rescales.py").write_text(code + "\n\ndef net():\n    return _RescalesItsInput()\n")
+    spec = f"{tmp_path / 'rescales.py'}:net"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        folder = splice.save(splice.insert(spec, at="input", input_shape=(3, 32, 32), trust_code=True),
+                             tmp_path / "rescaled")
+        loaded = splice.load(folder, trust_code=True).eval()
+        report = splice.verify(folder, trust_code=True)
+    assert report.passed
+    from splice.store import load_base
+
+    base = load_base(folder, trust_code=True).eval()
+    for x in (torch.rand(3, 3, 32, 32), 255 * torch.rand(3, 3, 32, 32)):
+        with torch.no_grad():
+            assert torch.equal(loaded(x), base(x))

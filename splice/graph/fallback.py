@@ -111,8 +111,14 @@ def _real_forward(original: nn.Module) -> Callable:
 
 
 def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, problem: str, todo: str,
-                 input_shape: tuple[int, int, int]) -> list[Entry]:
-    """Entries for module outputs seen by forward hooks during a meta forward pass."""
+                 input_shape: tuple[int, int, int]) -> tuple[list[Entry], str | None]:
+    """Entries for module outputs seen by forward hooks during a meta forward pass.
+
+    When that forward fails in the model's own Python rather than in one of torch's modules (a branch on a
+    tensor's value, ``.item()``), the input alone is listed, with the reason as :func:`_failure` words it: a warp
+    at the input needs no graph, and the splice's identity check runs the model for real. A failure inside one of
+    torch's own modules (a shape the model does not take) is raised.
+    """
     try:
         meta = meta_module(model)
     except Exception as exc:
@@ -126,7 +132,11 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
         with torch.no_grad(), torch.device(META), ShapeRules():
             meta(*[to_meta(a) for a in args], **{k: to_meta(v) for k, v in kwargs.items()})
     except Exception as exc:
-        raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
+        if timeline.stack and is_torch_builtin(type(timeline.stack[-1])):
+            raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
+        only = "only 'input' is listed (a warp there needs no graph), no point inside"
+        return ([Entry("input", "", "input", input_shape, True, None, True)],
+                str(_failure(model, timeline, exc, problem, todo, input_shape, head=only)))
     finally:
         timeline.remove()
     first_conv_end = min(timeline.conv_ends, default=math.inf)
@@ -137,10 +147,11 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
             continue
         entries.append(Entry(name, qualname, "activation", out_shape, False, None,
                               first_conv_end <= t < last_conv_start, (qualname, k)))
-    return entries
+    return entries, None
 
 
-def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo: str, input_shape) -> GraphError:
+def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo: str, input_shape,
+             head: str | None = None) -> GraphError:
     if timeline.stack:
         failing = timeline.stack[-1]
         cls = type(failing)
@@ -160,8 +171,8 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
     if parts:  # a part of the model may be listed where the whole is not (a detector's backbone)
         advice += (f"; or splice inside one part with --within NAME (Python: within='NAME'), NAME being a part that "
                    f"ran on an (N, C, H, W) tensor: {', '.join(parts)}")
-    return GraphError(f"cannot list points of {type(model).__name__}: {problem}, and a meta-device forward "
-                      f"failed in {here} ({reason(exc)}); {advice}")
+    return GraphError(f"{head or 'cannot list points of'} {type(model).__name__}: {problem}, and a meta-device "
+                      f"forward failed in {here} ({reason(exc)}); {advice}")
 
 
 def _tripled(value):
@@ -279,7 +290,10 @@ def _hooks_entries(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, 
             export_problem = (f"recording a meta-device forward failed ({recorded_problem}) and torch.export failed "
                               f"too ({reason(exc2)})")
             why = f"{problem}; {export_problem}" if problem else export_problem
-            entries = _module_view(model, args, kwargs, rule, why, todo, input_shape)
+            entries, failed = _module_view(model, args, kwargs, rule, why, todo, input_shape)
+            if failed is not None:
+                warnings.warn(failed, TraceFallbackWarning, stacklevel=6)
+                return entries
             warnings.warn(f"{why}; listing module outputs instead, without cut analysis (only 'input' is marked "
                           f"as a cut). To get the full analysis, {todo}.", TraceFallbackWarning, stacklevel=6)
             return entries
