@@ -91,6 +91,40 @@ def test_a_branch_on_values_is_found_and_the_export_it_fixes_is_refused(tmp_path
     assert not target.exists()
 
 
+class RescaledNet(nn.Module):
+    """Takes 0-255 or 0-1 images, decided on the values: a branch whose other side moves random-weight outputs by a
+    few percent only (the features are mostly their biases)."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        if x.max() > 1.0:
+            x = x / 255.0
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+def test_a_branch_that_moves_the_outputs_a_little_is_not_taken_for_a_match(tmp_path):
+    import onnxruntime as ort
+
+    spliced = _spliced(RescaledNet())
+    target = tmp_path / "rescaled.onnx"
+    # the N(0,1) probe takes the x / 255 side; scaled by 0.125 it stays below 1 in torch, not in the graph
+    with pytest.raises(CheckFailed, match=r"on the probe scaled by 0\.125: .*tolerance 0\.01\).*from tensor values"):
+        splice.export(spliced, onnx=target)
+    assert not target.exists()
+    # the reference: onnxruntime on the graph the tracer writes, against torch on 0-1 images (the other side)
+    data = export_onnx_bytes(spliced, torch.randn(2, 3, 16, 16), dynamic_batch=True)
+    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
+    images = torch.rand(2, 3, 16, 16)
+    with torch.no_grad():
+        expected = spliced(images).numpy()
+    got = session.run(None, {session.get_inputs()[0].name: images.numpy()})[0]
+    assert np.abs(got - expected).max() > 0.01 * np.abs(expected).max()
+
+
 def test_numbers_the_tracer_takes_from_shapes_pass_and_are_named():
     spliced = _spliced(SamePadNet())
     assert value_branch(spliced, torch.randn(2, 3, 16, 16)) == ("shapes", "")
@@ -238,7 +272,7 @@ def test_a_miss_on_the_checked_batches_is_told_before_the_scaled_probes():
     site = f"{inspect.getsourcefile(Gate)}:{line}"
     summary = {"passed": False, "detail": "max rel error 0.27 at batch 2, over the tolerance"}
     judged = judge_conversions(summary, net, [(torch.randn(1, 3, 16, 16),)], [site],
-                               lambda batch: {"passed": False, "max_abs": 1.0, "detail": "max rel error 0.9"})
+                               lambda batch, tol: {"passed": False, "max_abs": 1.0, "detail": "max rel error 0.9"})
     assert not judged["passed"] and judged["branch_on_values"]
     assert judged["detail"].startswith("max rel error 0.27 at batch 2, over the tolerance; the model takes a Python "
                                        "branch or number from tensor values at test_export_branches.py:")

@@ -34,7 +34,7 @@ from .onnx import (
     onnx_output_names,
     torchscript,
 )
-from .branches import REGIME_TOLERANCE, judge_conversions
+from .branches import judge_conversions
 from .weights import WeightsAsInputs, perturbed_copy, perturbed_tensors
 
 __all__ = ["EXPORT_TOLERANCES", "JUDGED_QUANTILES", "ROUNDING_LIMIT", "onnx_parity", "check_onnx_graph"]
@@ -315,8 +315,8 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
     if _weight_inputs(proto, model):
         result = _parity_with_weight_inputs(model, proto, batches, perturb=perturb, tol=tol, references=references,
                                             judged=judged)
-        return judge_conversions(result, model, batches, conversions, lambda batch: _parity_with_weight_inputs(
-            model, proto, [batch], perturb=False, tol=REGIME_TOLERANCE, references=None, judged=False))
+        return judge_conversions(result, model, batches, conversions, lambda batch, within: _parity_with_weight_inputs(
+            model, proto, [batch], perturb=False, tol=within, references=None, judged=False))
     if isinstance(onnx_model, onnx.ModelProto):  # the caller's proto stays as it was
         proto = onnx.ModelProto()
         proto.CopyFrom(onnx_model)
@@ -349,7 +349,7 @@ def onnx_parity(model: nn.Module, onnx_model, inputs, *, perturb: bool = True, t
             perturbed = run(twin, _ort_session(_load_onnx(again)), {})
     summary = parity_summary(stored, perturbed, tol, [int(b[0].shape[0]) for b in batches], how)
     return judge_conversions(summary, model, batches, conversions,
-                             lambda batch: run(model, session, {}, on=[batch], within=REGIME_TOLERANCE))
+                             lambda batch, within: run(model, session, {}, on=[batch], within=within))
 
 def _perturbed_feeds(own: dict, values: Mapping[str, torch.Tensor]) -> dict:
     """``own`` (graph input -> array) with the warp heads' tensors replaced by the perturbed ``values``."""
@@ -440,7 +440,7 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
                                         references=None if reference is None else [reference],
                                         perturbed_references=[traced], optimise=False, judged=judged)
     # the graph was traced on the very batch it is checked on: a branch on values is judged apart
-    result = judge_conversions(result, plain, [xs], conversions, lambda batch: _parity_with_weight_inputs(
-        private_buffers(plain), data, [batch], perturb=False, tol=REGIME_TOLERANCE, references=None,
+    result = judge_conversions(result, plain, [xs], conversions, lambda batch, within: _parity_with_weight_inputs(
+        private_buffers(plain), data, [batch], perturb=False, tol=within, references=None,
         optimise=False, judged=False))
     return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
