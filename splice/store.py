@@ -234,12 +234,11 @@ def assemble(base: nn.Module, info: SpliceInfo, state: dict[str, torch.Tensor], 
 def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.Module:
     """The spliced architecture of ``info`` around a traced copy of ``base``, weights not loaded.
 
-    Around an empty base the warps are built on the CPU in the default dtype;
-    :func:`_load_into` gives them the dtype of the saved tensors.
-    """
+    Around an empty base the warps are built unfilled (no random draws: the state about to be adopted holds every
+    parameter), with CPU buffers in the default dtype; :func:`_load_into` gives them the saved tensors' dtype."""
     if not info.points:
         return tree_copy(base) if copy_base else base
-    return apply_info(base, info, factory={"device": "cpu"} if _on_meta(base) else None)
+    return apply_info(base, info, unfilled=_on_meta(base))
 
 
 def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
@@ -433,6 +432,7 @@ def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_co
     return open_folder(folder, trust_pickle=trust_pickle, frame=False, trust_code=trust_code).base()
 
 
+@rng_kept()
 def load_folder_source(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
     opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)
