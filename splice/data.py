@@ -201,9 +201,12 @@ def _hint(word: str, choices: Sequence[str]) -> str:
 @functools.lru_cache(maxsize=1)
 def _optdigits() -> tuple[Tensor, Tensor]:
     """The 1797 optdigits images as float32 (N, 1, 8, 8) in [0, 1] and their labels."""
-    from sklearn.datasets import load_digits  # heavy import, kept out of `import splice`
+    from .copies import rng_kept
 
-    bunch = load_digits()
+    with rng_kept():  # importing scikit-learn draws from Python's generator: the caller's next draw is unmoved
+        from sklearn.datasets import load_digits  # heavy import, kept out of `import splice`
+
+        bunch = load_digits()
     images = torch.from_numpy(bunch.images).to(torch.float32).div_(16.0).unsqueeze(1)
     labels = torch.from_numpy(bunch.target).to(torch.long)
     return images, labels

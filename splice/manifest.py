@@ -71,9 +71,13 @@ from .warps import WarpConfig
 
 __all__ = [
     "POINTS_KEY",
+    "FIELDS_KEY",
+    "MODEL_FIELDS",
     "points_sha256",
-    "points_written",
-    "warn_if_points_edited",
+    "fields_sha256",
+    "weights_metadata",
+    "edited_fields",
+    "warn_if_edited",
     "SCHEMA_VERSION",
     "SCHEMA_VERSIONS",
     "MECHANISMS",
@@ -379,7 +383,17 @@ def copy_model(model):
 
 
 #: the safetensors metadata key that holds :func:`points_sha256` of the points a folder's weights were written with
+#: (the only such hash a folder written before :data:`FIELDS_KEY` keeps)
 POINTS_KEY = "splice_points_sha256"
+#: the safetensors metadata key that holds, as a JSON object, the sha256 of each of :data:`MODEL_FIELDS` as splice.json
+#: held it when the weights were written
+FIELDS_KEY = "splice_fields_sha256"
+#: the fields of splice.json (dotted: inside ``source``) that change what the model computes or what its outputs
+#: mean: the builder's arguments, the inputs' shapes, the preprocessing, the class names, the tracing leaves, the
+#: warps (places, configs) and how they are attached. Provenance stays out (the source spec, its weights file and
+#: hashes, ``trained_on``, the tuning record, versions, dates): the provenance row reads those.
+MODEL_FIELDS = ("source.kwargs", "input_shape", "extra_inputs", "normalisation", "class_names", "leaves", "points",
+                "mechanism", "within", "sites", "loc_reads")
 
 
 def points_sha256(points) -> str:
@@ -389,24 +403,51 @@ def points_sha256(points) -> str:
     return hashlib.sha256(json.dumps(points, sort_keys=True, separators=(",", ":")).encode("utf-8")).hexdigest()
 
 
-def points_written(weights_file) -> str | None:
-    """The points hash a folder's weights file was written with (``None``: a folder written before it was kept,
-    or a file whose header cannot be read)."""
+def fields_sha256(manifest: Mapping) -> dict[str, str]:
+    """``{field: sha256}`` of each of :data:`MODEL_FIELDS` in ``manifest`` (an absent field hashes as ``null``).
+    Pass the manifest as it reads back from JSON (tuples as lists)."""
+    out = {}
+    for name in MODEL_FIELDS:
+        node: Any = manifest
+        for part in name.split("."):
+            node = node.get(part) if isinstance(node, Mapping) else None
+        out[name] = points_sha256(node)
+    return out
+
+
+def weights_metadata(manifest: Mapping) -> dict[str, str]:
+    """The hashes a folder's weights file keeps of ``manifest``, taken as it reads back from JSON."""
+    manifest = json.loads(json.dumps(manifest))
+    return {POINTS_KEY: points_sha256(manifest.get("points")), FIELDS_KEY: json.dumps(fields_sha256(manifest))}
+
+
+def edited_fields(weights_file, manifest: Mapping) -> list[str]:
+    """The :data:`MODEL_FIELDS` of ``manifest`` (splice.json now) that are not those ``weights_file`` was written
+    with. A file written before the fields were hashed is checked on its points alone; one written before that
+    (or whose header cannot be read) on nothing."""
     try:
         from safetensors import safe_open
 
         with safe_open(str(weights_file), framework="pt") as f:
-            return (f.metadata() or {}).get(POINTS_KEY)
+            meta = f.metadata() or {}
     except Exception:  # noqa: BLE001 - an unreadable header is the integrity row's finding, not this one's
-        return None
+        return []
+    try:
+        written = json.loads(meta[FIELDS_KEY])
+    except (KeyError, TypeError, ValueError):
+        written = None
+    if isinstance(written, dict):
+        now = fields_sha256(manifest)
+        return [name for name in MODEL_FIELDS if name in written and written[name] != now[name]]
+    points = meta.get(POINTS_KEY)
+    return ["points"] if points is not None and points != points_sha256(manifest.get("points")) else []
 
 
-def warn_if_points_edited(folder, weights_file, points) -> None:
-    """Warn (:class:`~splice.errors.EditedManifestWarning`) when ``points`` (splice.json's, now) are not those the
-    weights file was written with; a file that holds no points hash (written before it was kept) is not warned."""
-    written = points_written(weights_file)
-    if written is not None and written != points_sha256(points):
-        warnings.warn(f"'{folder}': {MANIFEST_NAME}'s points differ from those its weights were written with (it "
-                      "was edited after saving), so the warps compute something else and verify's integrity row "
-                      f"fails; restore {MANIFEST_NAME} from a good copy or insert again", EditedManifestWarning,
-                      stacklevel=3)
+def warn_if_edited(folder, weights_file, manifest: Mapping) -> None:
+    """Warn (:class:`~splice.errors.EditedManifestWarning`) when :func:`edited_fields` names any."""
+    edited = edited_fields(weights_file, manifest)
+    if edited:
+        warnings.warn(f"'{folder}': {MANIFEST_NAME}'s {', '.join(edited)} differ from those its weights were written "
+                      "with (it was edited after saving), so the model computes or labels something else and "
+                      f"verify's integrity row fails; restore {MANIFEST_NAME} from a good copy or insert again",
+                      EditedManifestWarning, stacklevel=3)

@@ -152,7 +152,8 @@ def refuse_unfit_inputs(model, shapes: Sequence, what: str = "the model") -> Non
     twin = private_buffers(model).eval()
     try:
         with torch.no_grad():
-            twin(*[torch.rand((2, *(int(v) for v in s)), **like) for s in shapes])
+            draws = torch.Generator().manual_seed(0)  # its own generator: the caller's next draw is unmoved
+            twin(*[torch.rand((2, *(int(v) for v in s)), generator=draws).to(**like) for s in shapes])
     except Exception as exc:  # whatever the first batch would have raised, said before any work
         listed = ", ".join(format_shape(s) for s in shapes)
         raise SpliceError(f"{what} fails on a probe batch of two {listed} images ({type(exc).__name__}: "

@@ -31,8 +31,8 @@ from .folders import folder_kind
 from .fileio import atomic_dir, file_sha256, read_json, state_dict_sha256, write_safetensors
 from .errors import IntegrityError, ManifestError, SourceError, SpliceError, WeightsError
 from .objects import MODULE_SPEC, cannot_rebuild, respecified, source_of_spliced
-from .manifest import (MANIFEST_NAME, POINTS_KEY, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
-                       points_sha256, validate_manifest, warn_if_points_edited)
+from .manifest import (MANIFEST_NAME, SCHEMA_VERSION, WEIGHTS_NAME, SpliceInfo, attach_info, info_of,
+                       validate_manifest, warn_if_edited, weights_metadata)
 from .version import library_versions
 from .sources import (Source, adopt_state, build_model, check_finite, check_state_fits, check_spec,
                       initialisers_skipped, is_hf_folder, load_source, materialise_lazy_, parse_input_shapes,
@@ -118,9 +118,9 @@ def save(model: nn.Module, folder: str | os.PathLike, *, overwrite: bool = False
     manifest = info.to_manifest(weights=weights, versions=_versions(), created=created)
     validate_manifest(manifest, "the manifest being written")
     with atomic_dir(folder, overwrite=overwrite) as tmp:
-        # the points as splice.json holds them, hashed beside the tensors: verify's integrity row sees an edit of a
-        # warp's config (its padding, frame, sampler) that changes what a tuned warp does
-        write_safetensors(tmp / WEIGHTS_NAME, state, {"format": "pt", POINTS_KEY: points_sha256(manifest["points"])})
+        # what splice.json says the model computes and means, hashed beside the tensors: verify's integrity row sees
+        # an edit of a warp's config, the normalisation or the class names (manifest.MODEL_FIELDS)
+        write_safetensors(tmp / WEIGHTS_NAME, state, {"format": "pt", **weights_metadata(manifest)})
         manifest["weights"]["sha256"] = file_sha256(tmp / WEIGHTS_NAME)
         (tmp / MANIFEST_NAME).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")
     return Path(folder)
@@ -234,12 +234,11 @@ def assemble(base: nn.Module, info: SpliceInfo, state: dict[str, torch.Tensor], 
 def _frame(base: nn.Module, info: SpliceInfo, *, copy_base: bool = False) -> nn.Module:
     """The spliced architecture of ``info`` around a traced copy of ``base``, weights not loaded.
 
-    Around an empty base the warps are built on the CPU in the default dtype;
-    :func:`_load_into` gives them the dtype of the saved tensors.
-    """
+    Around an empty base the warps are built unfilled (no random draws: the state about to be adopted holds every
+    parameter), with CPU buffers in the default dtype; :func:`_load_into` gives them the saved tensors' dtype."""
     if not info.points:
         return tree_copy(base) if copy_base else base
-    return apply_info(base, info, factory={"device": "cpu"} if _on_meta(base) else None)
+    return apply_info(base, info, unfilled=_on_meta(base))
 
 
 def _load_into(model: nn.Module, state: Mapping[str, torch.Tensor], folder, *, assign: bool) -> nn.Module:
@@ -399,7 +398,7 @@ def open_folder(folder: str | os.PathLike, *, keep_mapped: bool = False, trust_p
             )
         return opened
     if strict:
-        warn_if_points_edited(folder, path, manifest.get("points"))
+        warn_if_edited(folder, path, manifest)
     state = read_safetensors(path)
     own = empty.state_dict(keep_vars=True) if empty is not None else {}
     if own and not any(nn.parameter.is_lazy(t) for t in own.values()):  # shapes known: refuse before a real build
@@ -433,6 +432,7 @@ def load_base(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_co
     return open_folder(folder, trust_pickle=trust_pickle, frame=False, trust_code=trust_code).base()
 
 
+@rng_kept()
 def load_folder_source(folder: str | os.PathLike, *, trust_pickle: bool = False, trust_code: bool = False) -> Source:
     """A :class:`~splice.sources.Source` for a spliced (or plain, from ``tune``) folder."""
     opened = open_folder(folder, trust_pickle=trust_pickle, trust_code=trust_code)

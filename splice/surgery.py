@@ -323,12 +323,24 @@ def _hooks_plan(plan: Sequence[SplicePlan], listing: Sequence) -> dict[str, dict
     return needed
 
 
-def apply_info(model: nn.Module, info, *, factory: dict | None = None) -> nn.Module:
+def apply_info(model: nn.Module, info, *, factory: dict | None = None, unfilled: bool = False) -> nn.Module:
     """Re-apply the splice a :class:`~splice.manifest.SpliceInfo` records to ``model`` (the base; not changed).
 
     A graph splice (``mechanism "fx"``) traces a copy of ``model``; a hooks
-    splice copies it and puts the hooks back at the recorded sites.
+    splice copies it and puts the hooks back at the recorded sites. With ``unfilled`` (for a caller about to
+    adopt every warp parameter from a saved state) the warps are built on the meta device, where their
+    initialisers draw no random numbers, then given CPU memory: their parameters hold no values yet, their
+    buffers (grids, pooling bins) are computed again by their own ``_apply``.
     """
+    if unfilled:
+        from .sources import initialisers_skipped
+        from .warps import Warp
+
+        with initialisers_skipped():
+            framed = apply_info(model, info, factory={"device": "meta"})
+        for warp in (m for m in framed.modules() if isinstance(m, Warp)):
+            warp.to_empty(device="cpu")
+        return framed
     plan = [SplicePlan(p.name, p.warp) for p in info.points]
     if info.mechanism == "hooks":
         return _hooks_at(model, plan, info.sites, within=info.within, factory=factory,

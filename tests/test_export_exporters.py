@@ -82,6 +82,33 @@ def test_verify_checks_with_the_exporter_asked_for_and_reports_its_failure_as_a_
     assert not report.passed and report.failed == ["onnx"] and "no col2im" in report["onnx"].detail
 
 
+@pytest.mark.slow
+@pytest.mark.parametrize("opset", [16, 17])
+def test_verify_checks_a_dynamo_export_below_its_floor(tray_folder, opset):
+    """verify's onnx row exported without folding constants, so the dynamo graph kept its reductions' axes as
+    computed inputs, which onnx's version converter cannot turn into the attributes of opsets 16 and 17: the row
+    failed ("No initializer or constant input") where export passed. A graph to be converted is now folded; the
+    warp heads stay inputs fed by the perturbed check. Reference: onnxruntime ran the converted graph."""
+    report = splice.verify(tray_folder, onnx=True, exporter="dynamo", opset=opset)
+    row = report["onnx"]
+    assert row.passed, row.detail
+    assert row.numbers["opset"] == opset and row.numbers["perturbed_by"] == "feeds"
+    assert row.numbers["max_rel"] <= 1e-4 and row.numbers["max_rel_perturbed"] <= 1e-4
+
+
+@pytest.mark.slow
+def test_the_perturbed_re_export_reaches_opset_17_with_dynamo(tray_folder, tmp_path, re_exports):
+    """The perturbed check's second export (when the heads cannot be fed, as for resnet18 with warps at maxpool and
+    layer1_0_bn1) did not fold either, so export --exporter dynamo failed at the default opset 17."""
+    import onnx
+
+    target = tmp_path / "again17.onnx"
+    item = export(tray_folder, onnx=target, exporter="dynamo", opset=17)["exports"][0]
+    assert re_exports and set(re_exports) == {"dynamo"}
+    assert item["perturbed_by"] == "re-export" and item["max_rel_perturbed"] <= 1e-4  # onnxruntime's run
+    assert onnx.load(str(target)).opset_import[0].version == 17
+
+
 def test_an_export_replaces_an_earlier_export_but_no_other_file(tray_folder, tmp_path):
     victim = tmp_path / "train.py"
     victim.write_text("print('my training script')\n")

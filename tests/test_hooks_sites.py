@@ -500,7 +500,15 @@ def test_an_older_hooks_folder_keeps_the_localisation_reading_it_was_tuned_with(
     folder = splice.save(spliced, tmp_path / "new")
     manifest = json.loads((folder / MANIFEST_NAME).read_text())
     assert manifest["loc_reads"] == "unwarped"
-    manifest.pop("loc_reads")  # as an older splice wrote it
+    manifest.pop("loc_reads")  # as an older splice wrote it, with its weights keeping the points hash only
+    from safetensors.torch import load_file, save_file
+
+    from splice.fileio import file_sha256
+    from splice.manifest import POINTS_KEY, WEIGHTS_NAME, points_sha256
+
+    weights = folder / WEIGHTS_NAME
+    save_file(load_file(weights), weights, metadata={"format": "pt", POINTS_KEY: points_sha256(manifest["points"])})
+    manifest["weights"]["sha256"] = file_sha256(weights)
     (folder / MANIFEST_NAME).write_text(json.dumps(manifest))
     older = splice.load(folder, trust_code=True)
     x = torch.rand(3, 1, 16, 16)

@@ -40,7 +40,9 @@ def test_a_folder_asking_for_another_head_is_refused_before_any_real_build(folde
     monkeypatch.setattr(store, "build_model", watched)
     _ask_for(folder, num_classes=num_classes)
     for opener in (splice.load, splice.store.load_base):
-        with pytest.raises(WeightsError, match=rf"wrong shape 2: fc.weight \(10, 16\) vs \({num_classes}, 16\)"):
+        # the builder's arguments are hashed beside the weights: the edit is named first, then refused
+        with pytest.warns(splice.errors.EditedManifestWarning, match="splice.json's source.kwargs differ"), \
+                pytest.raises(WeightsError, match=rf"wrong shape 2: fc.weight \(10, 16\) vs \({num_classes}, 16\)"):
             opener(folder)
     assert real and not any(real)
 
@@ -111,3 +113,100 @@ def test_opening_a_folder_whose_points_were_edited_warns_and_verify_still_fails_
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         splice.load(folder)
+
+
+def _edit(folder, change) -> None:
+    import json as _json
+
+    from splice.manifest import MANIFEST_NAME
+
+    data = _json.loads((folder / MANIFEST_NAME).read_text())
+    change(data)
+    (folder / MANIFEST_NAME).write_text(_json.dumps(data, indent=2))
+
+
+_EDITS = {
+    "normalisation": lambda d: d.update(normalisation={"mean": [0.0], "std": [1.0]}),
+    "class_names": lambda d: d.update(class_names=[str(9 - i) for i in range(10)]),
+    "leaves": lambda d: d.update(leaves=["ReLU"]),
+    "input_shape": lambda d: d.update(input_shape=[1, 40, 40]),
+}
+
+
+@pytest.fixture
+def digits_folder(tmp_path):
+    """A tray net spliced at its input, with the normalisation and class names of the embedded digits."""
+    import splice
+
+    spliced = splice.insert("splice.models:tray_net", at="input")
+    return splice.save(spliced, tmp_path / "sp", normalisation={"mean": [0.1], "std": [0.3]},
+                       class_names=[str(i) for i in range(10)])
+
+
+@pytest.mark.parametrize("field", sorted(_EDITS))
+def test_an_edit_that_changes_what_the_model_computes_or_means_fails_integrity_and_warns(digits_folder, field):
+    """splice.json's normalisation and class names were outside every hash: an edit passed verify silently and
+    shipped in the ONNX metadata. Every field of manifest.MODEL_FIELDS is hashed beside the tensors now."""
+    import warnings
+
+    import splice
+    from splice.errors import EditedManifestWarning
+    from splice.verification import verify
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # an untouched folder opens silently and passes
+        splice.load(digits_folder)
+        assert verify(digits_folder).passed
+    _edit(digits_folder, _EDITS[field])
+    with pytest.warns(EditedManifestWarning) as caught:
+        splice.load(digits_folder)
+    (message,) = [str(w.message) for w in caught if issubclass(w.category, EditedManifestWarning)]
+    assert message.startswith(f"'{digits_folder}': splice.json's {field} differ from those its weights were written")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        report = verify(digits_folder)
+    assert report.failed == ["integrity"] and report["integrity"].summary == f"{field} edited"
+    assert report["integrity"].numbers["edited_fields"] == [field]
+
+
+def test_a_new_layout_of_the_same_values_is_no_edit(digits_folder):
+    import warnings
+
+    import splice
+    from splice.verification import verify
+
+    _edit(digits_folder, lambda d: d.update(normalisation={"std": [0.3], "mean": [0.1]}, leaves=[]))  # same values
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        splice.load(digits_folder)
+        assert verify(digits_folder).passed
+
+
+def test_a_folder_written_before_the_fields_were_hashed_keeps_its_points_check(digits_folder):
+    """An older folder holds the points hash only (safetensors metadata, as safetensors.safe_open reads it): its
+    normalisation is not checked and nothing new is said; an edit of its points still fails."""
+    import warnings
+
+    from safetensors.torch import load_file, save_file
+
+    import splice
+    from splice.fileio import file_sha256
+    from splice.manifest import FIELDS_KEY, POINTS_KEY, WEIGHTS_NAME
+    from splice.verification import verify
+
+    weights = digits_folder / WEIGHTS_NAME
+    from safetensors import safe_open
+
+    with safe_open(str(weights), framework="pt") as f:
+        meta = f.metadata()
+    assert FIELDS_KEY in meta and POINTS_KEY in meta  # a new folder keeps both
+    save_file(load_file(weights), weights, metadata={"format": "pt", POINTS_KEY: meta[POINTS_KEY]})
+    _edit(digits_folder, lambda d: (_EDITS["normalisation"](d), d["weights"].update(sha256=file_sha256(weights))))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        splice.load(digits_folder)
+        assert verify(digits_folder).passed
+    _edit(digits_folder, lambda d: d["points"][0]["warp"].update(padding="border"))
+    with pytest.warns(splice.errors.EditedManifestWarning):
+        splice.load(digits_folder)
+    assert verify(digits_folder)["integrity"].summary == "points edited"

@@ -182,6 +182,26 @@ def test_warp_only_keeps_every_base_tensor_bit_identical(tmp_path, spliced):
     assert any(v > 0 for v in read_metrics(out)[-1]["warp_distance"].values())
 
 
+def test_a_tuned_folder_hashes_what_it_computes_and_means(tmp_path, spliced):
+    """tune writes its folders with save: the normalisation and class names it records are hashed beside the
+    weights, verify passes the folder as written and fails it once its normalisation is edited."""
+    from safetensors import safe_open
+
+    from splice.manifest import FIELDS_KEY, WEIGHTS_NAME
+
+    out = tmp_path / "run"
+    tune_keywords(str(spliced), recipe=_recipe("warp-only", epochs=1), data="digits-moved", out=out, **QUIET)
+    best = out / "best"
+    with safe_open(str(best / WEIGHTS_NAME), framework="pt") as f:  # safetensors' reader is the reference
+        assert FIELDS_KEY in f.metadata()
+    assert splice.verify(best).passed
+    manifest = json.loads((best / "splice.json").read_text())
+    manifest["class_names"] = list(reversed(manifest["class_names"]))
+    (best / "splice.json").write_text(json.dumps(manifest))
+    report = splice.verify(best)
+    assert report.failed == ["integrity"] and report["integrity"].summary == "class_names edited"
+
+
 def test_joint_changes_the_base_and_records_it(tmp_path, spliced):
     out = tmp_path / "run"
     summary = tune_keywords(str(spliced), recipe=_recipe("staged", epochs=2), data="digits-moved", out=out, **QUIET)

@@ -322,7 +322,8 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
 
     ``exporter='torchscript'`` uses ``torch.onnx.export(dynamo=False)``;
     ``'dynamo'`` uses the torch.export based exporter (which writes opset 18+;
-    16 and 17 are reached with onnx's version converter). Outputs are
+    16 and 17 are reached with onnx's version converter, on a graph whose
+    constants are folded whatever ``fold_constants`` says). Outputs are
     named ``output_0 ...`` in the order of :func:`splice.compare.flatten_outputs`;
     pass ``n_outputs`` when it is known to save the forward pass that counts them.
     With ``weights_as_inputs`` (TorchScript only) every parameter and
@@ -356,9 +357,11 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
         target = model if tensors_out(out) is out else TensorsOnly(model)
         if dims is not None and target is not model:
             dims = (dims,)  # TensorsOnly's forward takes *args: torch.export sees one tuple of inputs
+        # onnx's down-converter needs a reduction's axes as constants, which only the optimiser's folding makes
+        # of the axes torch.export computes: a graph to be converted below opset 18 is always optimised
         program = torch.onnx.export(target, xs, dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
                                     input_names=inputs, output_names=names, dynamic_shapes=dims,
-                                    optimize=fold_constants, verbose=False)
+                                    optimize=fold_constants or opset < DYNAMO_MIN_OPSET, verbose=False)
         data = program.model_proto.SerializeToString()
         return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data
 

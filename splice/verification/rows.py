@@ -15,18 +15,17 @@ from .report import CheckResult
 __all__: list[str] = []
 
 
-def integrity_row(path: Path, recorded: str, actual: str, points: tuple[str | None, str] | None = None
-                  ) -> CheckResult:
-    """The weights file against its recorded sha256; ``points``: the points hash the file was written with
-    (``None`` in a folder written before it was kept) and that of splice.json's points now."""
+def integrity_row(path: Path, recorded: str, actual: str, edited: Sequence[str] = ()) -> CheckResult:
+    """The weights file against its recorded sha256; ``edited``: the fields of splice.json that are not those the
+    file was written with (:func:`splice.manifest.edited_fields`)."""
     ok = recorded == actual
     numbers = {"file": str(path), "recorded_sha256": recorded, "actual_sha256": actual}
-    if ok and points is not None and points[0] is not None and points[0] != points[1]:
+    if ok and edited:
         return CheckResult(
-            "integrity", False, {**numbers, "points_sha256_written": points[0], "points_sha256_now": points[1]},
-            "splice.json's points (the warps' places and configs) are not those the weights were written with: "
-            "splice.json was edited after saving, which changes what the warps do; restore it from a good copy",
-            "points edited")
+            "integrity", False, {**numbers, "edited_fields": list(edited)},
+            f"splice.json's {', '.join(edited)} are not those the weights were written with: splice.json was edited "
+            "after saving, which changes what the model computes or what its outputs mean; restore it from a good "
+            "copy", f"{', '.join(edited)} edited")
     if ok:
         return CheckResult("integrity", True, numbers, f"'{path.name}' matches its recorded sha256",
                            f"sha256 {actual[:12]}…")

@@ -22,7 +22,7 @@ from ..errors import SpliceError
 from ..exporting import check_opset
 from ..exporting.run import moving_state
 from ..limits import check_fits, tensor_bytes
-from ..manifest import MANIFEST_NAME, SpliceInfo, info_of, points_sha256, points_written
+from ..manifest import MANIFEST_NAME, SpliceInfo, edited_fields, info_of
 from ..store import base_part, open_folder
 from ..surgery import warps_of
 from .gradients import at_identity, gradient_norms, gradients_row, onnx_row, warp_head_params
@@ -365,8 +365,8 @@ def verify(folder: str | os.PathLike, *, images=None, batch: int = 1, dtype="flo
     meta["hashes"].update({"manifest_sha256": file_sha256(folder / MANIFEST_NAME),
                            "weights_sha256_recorded": opened.recorded_sha256,
                            "source_sha256": info.source_weights_sha256, "weights_sha256": opened.actual_sha256})
-    points = (points_written(opened.weights_path), points_sha256(opened.manifest.get("points")))
-    rows = [integrity_row(opened.weights_path, opened.recorded_sha256, opened.actual_sha256, points)]
+    rows = [integrity_row(opened.weights_path, opened.recorded_sha256, opened.actual_sha256,
+                          edited_fields(opened.weights_path, opened.manifest))]
     if not rows[0].passed:
         meta["not_run"] = "the weights file cannot be trusted, so no other check ran"
         return VerifyReport(rows, meta)

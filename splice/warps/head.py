@@ -164,6 +164,12 @@ class _BlockMean(nn.Module):
             self.register_buffer("weight", torch.full((channels, 1, kh, kw), 1.0 / area, device=device,
                                                       dtype=dtype or torch.get_default_dtype()), persistent=False)
 
+    def _apply(self, fn, recurse=True):  # torch hook behind .to(), .to_empty() ...
+        super()._apply(fn, recurse)
+        if self.depthwise:  # refilled, so .to_empty() (meta -> real) keeps the exact weights
+            self.weight = torch.full_like(self.weight, 1.0 / (self.kernel[0] * self.kernel[1]))
+        return self
+
     def forward(self, x: Tensor) -> Tensor:
         if self.depthwise:
             return F.conv2d(x, self.weight, stride=self.kernel, groups=self.weight.shape[0])
