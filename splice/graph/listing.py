@@ -246,8 +246,8 @@ def points(
     is not changed, and no weight or activation memory is allocated.
     """
     check_model(model, "points()")
+    _check_images(model)  # first: a model of volumes or clips gets its one line whatever shape is given
     shapes = _check_input_shapes(input_shape)
-    _check_images(model)
     _check_arity(model, shapes)
     check_leaves_found(leaves, model)
     return _list(model, shapes, LeafRule(leaves), all, warp, within)[0]
@@ -262,8 +262,8 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     points are reached by hooks.
     """
     check_model(model, "trace_points()")
+    _check_images(model)  # first: a model of volumes or clips gets its one line whatever shape is given
     shapes = _check_input_shapes(input_shape)
-    _check_images(model)
     _check_arity(model, shapes)
     check_leaves_found(leaves, model)
     return _list(model, shapes, LeafRule(leaves), True, warp, within, keep=True)

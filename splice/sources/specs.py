@@ -6,9 +6,10 @@ or as a sequence of ints. Bools and non-integral numbers are refused, never
 rounded. :mod:`splice.graph` checks its ``input_shape`` argument with it.
 A model with several inputs takes one shape per input
 (:func:`parse_input_shapes`: a list of shapes, repeated ``--input-shape``, or
-a JSON list such as ``[[3, 128, 128], [3, 128, 128]]``). Four numbers (a
-volume or a video clip, 5-D with the batch) get one line saying that those
-come later.
+a JSON list such as ``[[3, 128, 128], [3, 128, 128]]``). Four numbers for
+the first input are a video clip or a volume (C, T, H, W), or images with
+their batch: :func:`four_numbers_first` tells a caller to build the model
+first, whose :func:`volumes_not_images` says which line fits.
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from typing import Any
 from ..errors import SourceError
 
 __all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs",
-           "per_channel", "positive_int", "volumes_not_images"]
+           "per_channel", "positive_int", "volumes_not_images", "four_numbers_first"]
 
 #: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
 #: are named to the user by their bare class name, which ``--leaf`` matches
@@ -86,6 +87,26 @@ def _four_dims(value: Any) -> bool:
     except TypeError:
         return False
     return len(items) == 4 and all(positive_int(v) is not None for v in items)
+
+
+def four_numbers_first(value: Any) -> bool:
+    """Whether the first input shape in ``value`` (as :func:`parse_input_shapes` takes it) is four positive
+    integers: a clip or a volume (C, T, H, W) for a model of 3-D convolutions, a slip that kept the batch for
+    one of images. Only the built model can tell which, so a caller builds it before saying either."""
+    if isinstance(value, str) and value.strip().startswith("["):
+        try:
+            value = json.loads(value)
+        except (json.JSONDecodeError, RecursionError):
+            return False
+    if isinstance(value, str) or _four_dims(value):
+        return _four_dims(value)
+    try:
+        items = list(value)
+    except TypeError:
+        return False
+    if len(items) == 1 and isinstance(items[0], str) and items[0].strip().startswith("["):
+        return four_numbers_first(items[0])
+    return bool(items) and _four_dims(items[0])
 
 
 def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
