@@ -54,13 +54,14 @@ class Source:
     random_init: bool = False
     leaves: tuple[str, ...] = ()
     declares_normalisation: bool = True
-    extra_inputs: tuple[tuple[int, int, int], ...] = ()
+    extra_inputs: tuple[tuple[int, ...], ...] = ()
     code_sha256: str | None = None
     not_loaded: tuple[str, ...] = ()
 
     @property
-    def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
-        """One ``(C, H, W)`` per model input: :attr:`input_shape`, then :attr:`extra_inputs`."""
+    def input_shapes(self) -> tuple[tuple[int, ...], ...]:
+        """One shape per model input: :attr:`input_shape` (C, H, W), then :attr:`extra_inputs` (any per-sample
+        shape)."""
         return () if self.input_shape is None else (tuple(self.input_shape), *self.extra_inputs)
 
     @property
