@@ -18,7 +18,7 @@ graph rewrite)::
                  "trained_on": str | null, "code_sha256": str (path/file.py:factory only),
                  "not_loaded": [str, ...] (a partial load: tensors no weights file gave)},
       "input_shape": [C, H, W],
-      "extra_inputs": [[C, H, W], ...],          (2: a model with several inputs)
+      "extra_inputs": [[...], ...],              (2: a model with several inputs; per-sample shapes)
       "mechanism": "fx" | "hooks",               (2: "hooks")
       "within": str,                             (2: a submodule's qualname)
       "normalisation": {"mean": [...], "std": [...]} | null,
@@ -161,8 +161,9 @@ class SpliceInfo:
     which kept the builder's initialisation; ``trained_on`` the images the base was
     trained on, when known. ``points`` are :class:`PointRecord` in
     graph order. ``tuning`` is what ``splice tune`` recorded (``None`` for a
-    fresh splice). ``extra_inputs`` are the shapes of the model's inputs after
-    the first. ``mechanism`` is ``"fx"`` (a graph rewrite) or ``"hooks"``
+    fresh splice). ``extra_inputs`` are the per-sample shapes of the model's
+    inputs after the first (any number of dimensions: a vector of metadata is
+    ``(4,)``). ``mechanism`` is ``"fx"`` (a graph rewrite) or ``"hooks"``
     (forward hooks at module outputs, see :mod:`splice.hooks`); ``within`` the
     submodule the points belong to (``""``: the whole model); ``sites`` where
     the hooks go, ``{point: {"module", "call", "shape"}}`` (and ``"calls"``, when known); ``loc_reads`` which
@@ -187,7 +188,7 @@ class SpliceInfo:
     code_sha256: str | None = None
     folder: str | None = None
     check: dict | None = None
-    extra_inputs: tuple[tuple[int, int, int], ...] = ()
+    extra_inputs: tuple[tuple[int, ...], ...] = ()
     mechanism: str = "fx"
     within: str = ""
     sites: dict = field(default_factory=dict)
@@ -247,8 +248,8 @@ class SpliceInfo:
         return 2 if self.extra_inputs or self.mechanism != "fx" or self.within else SCHEMA_VERSION
 
     @property
-    def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
-        """One ``(C, H, W)`` per model input."""
+    def input_shapes(self) -> tuple[tuple[int, ...], ...]:
+        """One shape per model input: ``(C, H, W)``, then the per-sample shapes of the others."""
         return () if self.input_shape is None else (tuple(self.input_shape), *self.extra_inputs)
 
     def to_manifest(self, *, weights: Mapping, versions: Mapping, created: str) -> dict:

@@ -89,7 +89,7 @@ class ModelOptions:
 
 def _shape_texts(shape: Any) -> list[str]:
     """``CxHxW`` texts of an input shape as :class:`ModelOptions` holds it: ``None``, a ``CxHxW`` string, one
-    (C, H, W) or a sequence of those."""
+    (C, H, W) or a sequence of those (after the first, any per-sample shape, an int for a vector)."""
     if shape is None:
         return []
     if isinstance(shape, str):
@@ -99,7 +99,7 @@ def _shape_texts(shape: Any) -> list[str]:
     items = list(shape)
     if items and all(isinstance(v, int) for v in items):
         return [format_shape(items)]
-    return [s if isinstance(s, str) else format_shape(s) for s in items]
+    return [s if isinstance(s, str) else format_shape((s,) if isinstance(s, int) else s) for s in items]
 
 
 def split_keywords(keywords: Mapping[str, Any], kinds: Sequence[type], where: str) -> list:

@@ -32,6 +32,12 @@ def shape_ok(v: Any) -> bool:
                                                        for d in v)
 
 
+def _extra_shape_ok(v: Any) -> bool:
+    """A JSON per-sample shape of an input after the first: a list of one or more positive integers."""
+    return isinstance(v, list) and len(v) >= 1 and all(isinstance(d, int) and not isinstance(d, bool) and d > 0
+                                                       for d in v)
+
+
 def _number(x: Any) -> bool:
     """A finite JSON number (``NaN``/``Infinity``, which Python's json reads, and booleans are not)."""
     return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
@@ -81,8 +87,8 @@ def _inputs(data: dict, problems: list[str]) -> None:
     if not isinstance(data.get("leaves", []), list):
         problems.append("leaves must be a list of strings")
     extra = data.get("extra_inputs", [])
-    if not (isinstance(extra, list) and all(shape_ok(s) for s in extra)):
-        problems.append("extra_inputs must be a list of [C, H, W] positive integers")
+    if not (isinstance(extra, list) and all(_extra_shape_ok(s) for s in extra)):
+        problems.append("extra_inputs must be a list of per-sample shapes, each a list of positive integers")
     if data.get("mechanism", "fx") not in MECHANISMS:
         problems.append(f"mechanism must be one of {', '.join(MECHANISMS)}, found {data.get('mechanism')!r}")
     if not _qualname_ok(data.get("within", ""), empty=True):

@@ -290,6 +290,32 @@ def test_a_volume_gets_one_line_not_a_shape_error(capsys):
     assert len(err.strip().splitlines()) == 1 and "later release" in err
 
 
+def test_a_clip_shape_for_a_volume_network_gets_the_volume_line_not_the_batch_hint(tmp_path, capsys):
+    # 3x16x32x32 is C x T x H x W for a model of 3-D convolutions (torch's nn.Conv3d takes (N, C, T, H, W)):
+    # dropping its first number as a batch size would be wrong advice
+    (tmp_path / "clips.py").write_text("import torch.nn as nn\n"
+                                       "def video():\n    return nn.Sequential(nn.Conv3d(3, 4, 3))\n"
+                                       "def frames():\n    return nn.Sequential(nn.Conv2d(3, 4, 3))\n")
+    for shape in (["3x16x32x32"], ["[[3, 16, 32, 32]]"], ["3x16x32x32", "--input-shape", "4"]):
+        assert main(["points", f"{tmp_path / 'clips.py'}:video", "--input-shape", *shape]) == 2
+        err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+        assert len(err) == 1 and "Sequential convolves volumes or video (Conv3d, 5-D inputs)" in err[0], err
+        assert "batch size" not in err[0] and "drop it" not in err[0]
+    video = nn.Sequential(nn.Conv3d(3, 4, 3))
+    for call in (lambda: splice.points(video, input_shape=(3, 16, 32, 32)),
+                 lambda: graph.points(video, (3, 16, 32, 32)),
+                 lambda: splice.insert(video, at=["input"], input_shape="3x16x32x32")):
+        with pytest.raises((SourceError, GraphError), match=r"convolves volumes or video") as told:
+            call()
+        assert "drop it" not in str(told.value)
+    # a model of images given four numbers keeps the hint: the first is the batch size, a slip
+    assert main(["points", f"{tmp_path / 'clips.py'}:frames", "--input-shape", "2x3x32x32"]) == 2
+    err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+    assert len(err) == 1 and err[0].endswith("if the first is the batch size, drop it: --input-shape 3x32x32"), err
+    with pytest.raises(SourceError, match=r"drop it: --input-shape 3x32x32$"):
+        splice.points(nn.Sequential(nn.Conv2d(3, 4, 3)), input_shape=(2, 3, 32, 32))
+
+
 # ----------------------------------------------------------------------------- verify's gradient verdicts
 
 

@@ -6,7 +6,11 @@ outputs passes through it (for a model with several inputs: the first,
 ``input``, whose images the warps move, and the paths of the others into
 them; a second input that reaches the outputs apart from the first's paths,
 such as a detector backbone's pixel mask, does not take the cuts of the first
-away): it dominates the output node and post-dominates
+away; nor does a vector per sample, (N, K): metadata added to the pooled
+features has no pixels a warp could misalign, while a mask (N, H, W) or a
+second image has; and another input's path that meets the first's only where
+those hold no pixels any more, (N, C) after a pooling, is not counted
+either): it dominates the output node and post-dominates
 the input (Cooper, Harvey & Kennedy's iterative dominator algorithm, forwards
 and backwards). A point that is not a cut but lies between a fork and the cut
 where the paths meet again is *in a branch*; its *join* is that meeting node
@@ -49,6 +53,11 @@ def _has_tensor(value: Any) -> bool:
     if is_dataclass_instance(value):  # a model output such as @dataclass class Out: logits: Tensor
         return any(_has_tensor(getattr(value, f.name, None)) for f in dataclasses.fields(value))
     return False
+
+
+def _has_pixels(value: Any) -> bool:
+    """Whether an input may be laid out in pixels: two or more dimensions per sample (a mask, an image)."""
+    return not isinstance(value, torch.Tensor) or value.dim() >= 3
 
 
 def _dominators(order: list, preds: dict, root: Any) -> dict:
@@ -95,16 +104,21 @@ def cut_analysis(graph: fx.Graph, values: dict[fx.Node, Any]) -> tuple[set[fx.No
     sink = next(n for n in reversed(graph.nodes) if n.op == "output")
     carries = {n for n in graph.nodes if n.op not in ("get_attr", "output") and _has_tensor(values.get(n))}
     sources = [n for n in graph.nodes if n.op == "placeholder" and n in carries]
+    # after the first, a vector per sample (N, K) does not count: a warp cannot misalign what has no pixels
+    sources = sources[:1] + [n for n in sources[1:] if _has_pixels(values.get(n))]
     live = {sink}  # reaches the outputs
     for n in reversed(graph.nodes):
         if n in carries and any(u in live for u in n.users):
             live.add(n)
     first = _reached(graph, sources[:1], carries) & live  # on the first input's paths to the outputs
     # every input's paths into those (the other image of a pair, a skip tensor), not what reaches the outputs
-    # apart from them (a detection backbone's pixel mask)
+    # apart from them (a detection backbone's pixel mask), nor what meets them once they hold no pixels (metadata
+    # added to pooled features, (N, C))
     keep = set(first)
     for n in reversed(graph.nodes):
-        if n not in keep and n in carries and n in live and any(u in keep for u in n.users):
+        if n not in keep and n in carries and n in live and any(
+                u in keep and (u not in first or any(p in first and _has_pixels(values.get(p))
+                                                     for p in u.all_input_nodes)) for u in n.users):
             keep.add(n)
     keep &= _reached(graph, sources, carries)
     order: list[Any] = [n for n in graph.nodes if n in keep]

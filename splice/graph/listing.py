@@ -147,6 +147,9 @@ def _build_points(entries: list[Entry], input_shape: tuple[int, int, int], every
     return out
 
 
+_OTHERS = " (each input after the first by its per-sample shape: 4 for a vector of shape (N, 4))"
+
+
 def _check_input_shapes(input_shape: Any) -> tuple[tuple[int, int, int], ...]:
     # the one input-shape rule is splice.sources.parse_input_shape(s); here only tuples, not "CxHxW" text
     try:
@@ -157,8 +160,8 @@ def _check_input_shapes(input_shape: Any) -> tuple[tuple[int, int, int], ...]:
         shapes = None
     if not shapes:
         raise GraphError(
-            f"input_shape must be (C, H, W) with three positive ints (one per input), got {input_shape!r}; "
-            "for example (3, 224, 224)"
+            f"input_shape must be (C, H, W) with three positive ints, or a list of one shape per input (C, H, W) "
+            f"first, got {input_shape!r}; for example (3, 224, 224) or [(3, 224, 224), (4,)]"
         )
     return shapes
 
@@ -194,7 +197,8 @@ def _check_arity(model: nn.Module, shapes: tuple) -> None:
     if len(required) > len(shapes):
         raise GraphError(f"{type(model).__name__}'s forward takes {len(required)} inputs ({', '.join(required)}) "
                          f"and {len(shapes)} shape{' was' if len(shapes) == 1 else 's were'} given; give one "
-                         "--input-shape per input (input_shape=[(C, H, W), ...])")
+                         "--input-shape per input, CxHxW for the images and then each other input's per-sample "
+                         "shape, e.g. 4 for a vector (input_shape=[(C, H, W), (4,), ...])")
 
 
 def _fx_entries(model: nn.Module, shapes: tuple, rule: LeafRule,
@@ -215,8 +219,8 @@ def _fx_entries(model: nn.Module, shapes: tuple, rule: LeafRule,
             f"shape propagation on the meta device failed at point {names_by_node(graph)[failure.node]!r} "
             f"({describe_node(failure.node, root)}) for input shape "
             f"{shapes[0] if len(shapes) == 1 else list(shapes)}: {reason(failure.error)}; "
-            "check that the model takes inputs of this (C, H, W), or mark the failing module as a leaf "
-            "(--leaf TYPE, Python: leaves=[TYPE])"
+            f"check that the model takes inputs of this (C, H, W){_OTHERS if len(shapes) > 1 else ''}, or mark the "
+            "failing module as a leaf (--leaf TYPE, Python: leaves=[TYPE])"
         ) from failure.error
     return graph_entries(graph, modules, values), gm
 
@@ -246,8 +250,8 @@ def points(
     is not changed, and no weight or activation memory is allocated.
     """
     check_model(model, "points()")
+    _check_images(model)  # first: a model of volumes or clips gets its one line whatever shape is given
     shapes = _check_input_shapes(input_shape)
-    _check_images(model)
     _check_arity(model, shapes)
     check_leaves_found(leaves, model)
     return _list(model, shapes, LeafRule(leaves), all, warp, within)[0]
@@ -262,8 +266,8 @@ def trace_points(model: nn.Module, input_shape, *, leaves: Iterable[Any] = (), w
     points are reached by hooks.
     """
     check_model(model, "trace_points()")
+    _check_images(model)  # first: a model of volumes or clips gets its one line whatever shape is given
     shapes = _check_input_shapes(input_shape)
-    _check_images(model)
     _check_arity(model, shapes)
     check_leaves_found(leaves, model)
     return _list(model, shapes, LeafRule(leaves), True, warp, within, keep=True)

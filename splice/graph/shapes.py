@@ -306,7 +306,8 @@ def propagate(
                         n = len(input_shapes)
                         raise GraphError(
                             f"the model's forward takes more inputs than the {n} shape(s) given (also "
-                            f"{node.target!r}); give one --input-shape per input (input_shape=[(C, H, W), ...])"
+                            f"{node.target!r}); give one --input-shape per input, CxHxW for the images and "
+                            "then each other input's per-sample shape (input_shape=[(C, H, W), (4,), ...])"
                         )
                 elif op == "get_attr":
                     value = to_meta(_fetch_attr(root, node.target))

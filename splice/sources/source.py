@@ -18,7 +18,7 @@ from .builders import absolute_spec, build_model, code_sha256, uncompiled
 from .empty import initialisers_skipped
 from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
 from .lazy import materialise_lazy_, refuse_lazy
-from .specs import parse_input_shapes, parse_kwargs, volumes_not_images
+from .specs import four_numbers_first, parse_input_shapes, parse_kwargs, volumes_not_images
 from .trust import check_spec
 from .weights import check_file, check_finite, load_weights_, read_weights, torch_load
 
@@ -54,13 +54,14 @@ class Source:
     random_init: bool = False
     leaves: tuple[str, ...] = ()
     declares_normalisation: bool = True
-    extra_inputs: tuple[tuple[int, int, int], ...] = ()
+    extra_inputs: tuple[tuple[int, ...], ...] = ()
     code_sha256: str | None = None
     not_loaded: tuple[str, ...] = ()
 
     @property
-    def input_shapes(self) -> tuple[tuple[int, int, int], ...]:
-        """One ``(C, H, W)`` per model input: :attr:`input_shape`, then :attr:`extra_inputs`."""
+    def input_shapes(self) -> tuple[tuple[int, ...], ...]:
+        """One shape per model input: :attr:`input_shape` (C, H, W), then :attr:`extra_inputs` (any per-sample
+        shape)."""
         return () if self.input_shape is None else (tuple(self.input_shape), *self.extra_inputs)
 
     @property
@@ -116,8 +117,11 @@ def load_source(
     """
     if isinstance(spec, Source):
         return spec
-    shapes = parse_input_shapes(input_shape) or ()
+    # four numbers: a clip (C, T, H, W) or images with their batch; the model, once built, says which line fits
+    clip = input_shape if four_numbers_first(input_shape) else None
+    shapes = () if clip is not None else parse_input_shapes(input_shape) or ()
     if isinstance(spec, nn.Module):
+        _refuse_clip(spec, clip)
         spec = uncompiled(spec)
         _refuse_unspliceable(spec, "the model given")
         refuse_lazy(spec, "the model given")
@@ -126,7 +130,7 @@ def load_source(
         return Source(model=spec, spec=MODULE_SPEC, input_shape=shapes[0] if shapes else None,
                       weights_sha256=state_dict_sha256(spec.state_dict()), extra_inputs=tuple(shapes[1:]))
     options = {"weights": weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle, "leaves": leaves,
-               "origin": origin, "trust_code": trust_code, "default_input_shape": default_input_shape}
+               "origin": origin, "trust_code": trust_code, "default_input_shape": default_input_shape, "clip": clip}
     path = Path(spec)
     kw = parse_kwargs(kwargs)
     if is_hf_folder(path):  # JSON and weights only: its transformers:Class spec passes the gate below
@@ -147,6 +151,7 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
     if ":" not in spec or path.is_dir():
         return _load_path(spec, path, shapes, options)
     model, meta = _build(spec, kw, origin=origin, trust_code=trust_code, empty=empty)
+    _refuse_clip(model, options.get("clip"))
     _refuse_unspliceable(model, spec)
     shapes = shapes or parse_input_shapes(meta["input_shape"]) or parse_input_shapes(default_input_shape) or ()
     materialise_lazy_(model, shapes, spec)  # splice's own model: lazy modules get their weights before any load
@@ -201,6 +206,17 @@ def _build(spec: str, kw: dict, *, origin, trust_code: bool, empty: bool):
     return built
 
 
+def _refuse_clip(model: nn.Module, clip) -> None:
+    """For four numbers given as the first input shape (``clip``): the line for a model of volumes or clips,
+    else the one that says to drop the batch size."""
+    if clip is None:
+        return
+    why = volumes_not_images(model)
+    if why is not None:
+        raise SourceError(why)
+    parse_input_shapes(clip)  # raises: the first shape is four numbers, and the model takes images
+
+
 def _refuse_unspliceable(model: nn.Module, what: str) -> None:
     """One line for a model splice cannot copy, trace or train a warp in (TorchScript, converted int8 layers)."""
     _refuse_scripted(model, what)
@@ -249,7 +265,8 @@ def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
                           "or open it with splice.store.open_source")
     if _looks_like_pickled_module(spec):
         return _load_pickled_module(path, shapes, trust_pickle=options["trust_pickle"],
-                                    default=parse_input_shapes(options["default_input_shape"]) or ())
+                                    default=parse_input_shapes(options["default_input_shape"]) or (),
+                                    clip=options.get("clip"))
     if not path.exists() and ("/" in spec or spec.endswith(_WEIGHT_SUFFIXES)):
         raise SourceError(f"model path '{spec}' does not exist; check the path")
     raise SourceError(
@@ -260,7 +277,7 @@ def _load_path(spec: str, path: Path, shapes: tuple, options: dict) -> Source:
 
 
 def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, trust_pickle: bool, leaves,
-                    origin, trust_code: bool, default_input_shape) -> Source:
+                    origin, trust_code: bool, default_input_shape, clip=None) -> Source:
     """A ``save_pretrained`` folder: built from its config, its own weights read by transformers (which knows
     how the checkpoint's names map to the model's), or ``weights`` loaded as any weights file is."""
     hf = read_hf_folder(path)
@@ -277,7 +294,7 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
                           f"model takes {channels} (num_channels); pass --input-shape {channels}x{h}x{w}")
     options = {"weights": None if own else weights, "allow_partial": allow_partial, "trust_pickle": trust_pickle,
                "leaves": leaves, "origin": origin, "trust_code": trust_code,
-               "default_input_shape": default_input_shape}
+               "default_input_shape": default_input_shape, "clip": clip}
     # with the folder's own weights the model is built empty (no random init, no memory) and not hashed:
     # transformers builds the model that holds them
     src = _built(hf.spec, Path(hf.spec), parse_kwargs(hf.kwargs), parse_input_shapes(shapes or hf.input_shape) or (),
@@ -305,7 +322,8 @@ def _load_hf_folder(path: Path, shapes: tuple, *, weights, allow_partial: bool, 
     return src
 
 
-def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool, default: tuple = ()) -> Source:
+def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool, default: tuple = (),
+                         clip=None) -> Source:
     """A whole pickled module; its input shapes are the given ones, else its own ``input_shape``, else
     ``default`` (the first model's, for a second model compared with it)."""
     check_file(path, "model file")
@@ -315,6 +333,7 @@ def _load_pickled_module(path: Path, shapes: tuple, *, trust_pickle: bool, defau
             f"'{path}' holds a {type(obj).__name__}, not a whole model; a state dict needs an "
             "architecture: use a spec such as torchvision:NAME or file.py:factory with --weights"
         )
+    _refuse_clip(obj, clip)
     _refuse_unspliceable(obj, str(path))
     if not shapes and getattr(obj, "input_shape", None):
         shapes = parse_input_shapes(obj.input_shape) or ()

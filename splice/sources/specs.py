@@ -6,9 +6,13 @@ or as a sequence of ints. Bools and non-integral numbers are refused, never
 rounded. :mod:`splice.graph` checks its ``input_shape`` argument with it.
 A model with several inputs takes one shape per input
 (:func:`parse_input_shapes`: a list of shapes, repeated ``--input-shape``, or
-a JSON list such as ``[[3, 128, 128], [3, 128, 128]]``). Four numbers (a
-volume or a video clip, 5-D with the batch) get one line saying that those
-come later.
+a JSON list such as ``[[3, 128, 128], [3, 128, 128]]``). The first input is
+the images the warps move, (C, H, W); an input after it may have any
+per-sample shape of one or more positive integers (``4`` for a vector of
+metadata, ``10x4``), since no warp touches it (:func:`parse_extra_shape`). Four numbers for
+the first input are a video clip or a volume (C, T, H, W), or images with
+their batch: :func:`four_numbers_first` tells a caller to build the model
+first, whose :func:`volumes_not_images` says which line fits.
 """
 
 from __future__ import annotations
@@ -22,7 +26,8 @@ from typing import Any
 from ..errors import SourceError
 
 __all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs",
-           "per_channel", "positive_int", "volumes_not_images"]
+           "per_channel", "positive_int", "volumes_not_images", "four_numbers_first",
+           "parse_extra_shape"]
 
 #: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
 #: are named to the user by their bare class name, which ``--leaf`` matches
@@ -77,6 +82,30 @@ def parse_input_shape(text: str | Sequence[int] | None) -> tuple[int, int, int] 
     return dims
 
 
+def parse_extra_shape(value: Any, index: int = 2) -> tuple[int, ...]:
+    """The per-sample shape of input ``index`` (counted from 1) after the first: one or more positive integers,
+    as text (``"4"``, ``"10x4"``), an int or a sequence of ints.
+
+    >>> parse_extra_shape("10x4")
+    (10, 4)
+    """
+    if isinstance(value, str):
+        parts = [p for p in re.split(r"[x×,\s]+", value.strip().lower()) if p]
+        dims = tuple(int(p) for p in parts) if all(p.isdigit() for p in parts) else ()
+    elif positive_int(value) is not None:
+        dims = (value,)
+    else:
+        try:
+            items = list(value)
+        except TypeError:
+            items = []
+        dims = tuple(items) if all(positive_int(v) is not None for v in items) else ()
+    if not dims or any(d <= 0 for d in dims):
+        raise SourceError(f"malformed input shape {value!r} for input {index}; an input after the first takes its "
+                          "per-sample shape, one or more positive integers, e.g. --input-shape 4 or 10x4")
+    return dims
+
+
 def _four_dims(value: Any) -> bool:
     if isinstance(value, str):
         parts = [p for p in re.split(r"[x×,\s]+", value.strip().lower()) if p]
@@ -88,8 +117,29 @@ def _four_dims(value: Any) -> bool:
     return len(items) == 4 and all(positive_int(v) is not None for v in items)
 
 
-def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
-    """One ``(C, H, W)`` per model input, from one shape, a list of shapes, or a JSON list of shapes.
+def four_numbers_first(value: Any) -> bool:
+    """Whether the first input shape in ``value`` (as :func:`parse_input_shapes` takes it) is four positive
+    integers: a clip or a volume (C, T, H, W) for a model of 3-D convolutions, a slip that kept the batch for
+    one of images. Only the built model can tell which, so a caller builds it before saying either."""
+    if isinstance(value, str) and value.strip().startswith("["):
+        try:
+            value = json.loads(value)
+        except (json.JSONDecodeError, RecursionError):
+            return False
+    if isinstance(value, str) or _four_dims(value):
+        return _four_dims(value)
+    try:
+        items = list(value)
+    except TypeError:
+        return False
+    if len(items) == 1 and isinstance(items[0], str) and items[0].strip().startswith("["):
+        return four_numbers_first(items[0])
+    return bool(items) and _four_dims(items[0])
+
+
+def parse_input_shapes(value: Any) -> tuple[tuple[int, ...], ...] | None:
+    """One shape per model input, from one shape, a list of shapes, or a JSON list of shapes: ``(C, H, W)``
+    for the first, any per-sample shape (:func:`parse_extra_shape`) for each one after it.
 
     ``None`` (or an empty list) gives ``None``.
 
@@ -99,6 +149,8 @@ def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
     ((3, 64, 64), (3, 64, 64))
     >>> parse_input_shapes("[[1, 8, 8], [2, 8, 8]]")
     ((1, 8, 8), (2, 8, 8))
+    >>> parse_input_shapes(["3x32x32", "4"])
+    ((3, 32, 32), (4,))
     """
     if value is None:
         return None
@@ -109,7 +161,8 @@ def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
             raise SourceError(f"--input-shape {value!r} is not valid JSON; give CxHxW, repeat --input-shape "
                               "for each input, or a JSON list such as [[3, 128, 128], [3, 128, 128]]") from None
         if not isinstance(value, list):
-            raise SourceError(f"--input-shape JSON must be a list of [C, H, W] shapes, got {type(value).__name__}")
+            raise SourceError(f"--input-shape JSON must be a list of shapes, [C, H, W] first, got "
+                              f"{type(value).__name__}")
     if isinstance(value, str) or _dims(value) is not None or _four_dims(value):
         return (parse_input_shape(value),)
     try:
@@ -121,7 +174,7 @@ def parse_input_shapes(value: Any) -> tuple[tuple[int, int, int], ...] | None:
         return None
     if len(items) == 1 and isinstance(items[0], str) and items[0].strip().startswith("["):
         return parse_input_shapes(items[0])
-    return tuple(parse_input_shape(v) for v in items)
+    return (parse_input_shape(items[0]), *(parse_extra_shape(v, i) for i, v in enumerate(items[1:], 2)))
 
 
 def format_shape(shape: Sequence[int]) -> str:
