@@ -69,7 +69,8 @@ def judge_conversions(summary: dict, model: nn.Module, batches: Sequence[tuple],
     When every place is an input check that raises (:func:`~.onnx.input_checks`),
     the graph computes as the model on every input it takes. Otherwise the
     graph runs on the probe scaled by each of :data:`REGIME_SCALES` (``run``
-    compares one batch within a relative tolerance, :func:`regime_tolerance`), and any miss fails the check, except behind input
+    compares one batch within a relative tolerance, :func:`regime_tolerance`),
+    and any miss fails the check, except behind input
     checks, which stop torch.export before it can tell (a miss is then told,
     and the pass is not proven). A pass is proven only
     when torch.export traces the model (:func:`~.onnx.value_branch`: the
