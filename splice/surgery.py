@@ -333,11 +333,11 @@ def apply_info(model: nn.Module, info, *, factory: dict | None = None, unfilled:
     buffers (grids, pooling bins) are computed again by their own ``_apply``.
     """
     if unfilled:
-        from .sources import initialisers_skipped
         from .warps import Warp
 
-        with initialisers_skipped():
-            framed = apply_info(model, info, factory={"device": "meta"})
+        # no initialisers_skipped() here: it would hide a module's in-place buffer update from the trace that
+        # re-applies an fx splice (a call counter would be traced through, not kept as a step of its own)
+        framed = apply_info(model, info, factory={"device": "meta"})
         for warp in (m for m in framed.modules() if isinstance(m, Warp)):
             warp.to_empty(device="cpu")
         return framed

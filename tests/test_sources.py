@@ -78,11 +78,13 @@ def test_a_class_of_a_model_file_is_named_so_that_leaf_matches_it(tmp_path, caps
             return nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), Gate(), nn.Conv2d(4, 2, 3, padding=1))
     """))
     argv = ["points", f"{f}:net", "--trust-code", "--input-shape", "3x16x16"]
-    assert main(argv) == 2
-    err = capsys.readouterr().err
-    assert "--leaf Gate (Python: leaves=[Gate])" in err and "_splice_user_" not in err
+    assert main(argv) == 0  # the input alone is listed, with the advice for the points inside
+    said = capsys.readouterr()
+    assert "--leaf Gate (Python: leaves=[Gate])" in said.err and "_splice_user_" not in said.err
+    assert "1 points;" in said.out
     assert main([*argv, "--leaf", "Gate"]) == 0
-    assert "points;" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "points;" in out and "1 points;" not in out
 
 
 @pytest.mark.parametrize("wrap", ["plain", "state_dict", "model", "module_prefix", "orig_mod_prefix", "nested_prefix"])
