@@ -27,6 +27,7 @@ pickling carry them along, and the per-forward state is never copied.
 
 from __future__ import annotations
 
+import inspect
 import threading
 import warnings
 from collections.abc import Mapping, Sequence
@@ -83,26 +84,51 @@ class _RootHook:
         self.scope.mine().current = module
 
 
+def _first_parameter(module: nn.Module) -> str | None:
+    """The name of the first parameter of ``module``'s forward, by which a caller may pass the images as a keyword
+    (``model(pixel_values=x)``); ``None`` when it takes ``*args`` first or has no signature Python can read."""
+    try:
+        params = list(inspect.signature(module.forward).parameters.values())
+    except (TypeError, ValueError):
+        return None
+    if not params or params[0].kind not in (inspect.Parameter.POSITIONAL_ONLY,
+                                            inspect.Parameter.POSITIONAL_OR_KEYWORD):
+        return None
+    return params[0].name
+
+
 class _EnterHook:
-    """Pre-hook on the scope module: a new forward of the scope; its first input may be warped."""
+    """Pre-hook on the scope module: a new forward of the scope; its first input may be warped, passed by
+    position or by its name (``keyword``, the forward's first parameter)."""
 
-    def __init__(self, scope: _Scope, warp: str | None, loc: str | None):
-        self.scope, self.warp, self.loc = scope, warp, loc
+    def __init__(self, scope: _Scope, warp: str | None, loc: str | None, keyword: str | None = None):
+        self.scope, self.warp, self.loc, self.keyword = scope, warp, loc, keyword
 
-    def __call__(self, module, args):
+    def __call__(self, module, args, kwargs):
         st = self.scope.mine()
         st.calls, st.seen, st.active, st.batch = {}, {}, True, None
-        if not args or not isinstance(args[0], torch.Tensor):
+        if args:
+            images = args[0]
+        elif self.keyword is not None and self.keyword in kwargs:
+            images = kwargs[self.keyword]
+        else:
+            images = None
+        if not isinstance(images, torch.Tensor):
+            if self.warp is not None:  # running on without the warp would look like a working splice
+                raise RuntimeError(f"splice: the warp at 'input' of {type(module).__name__} found no image tensor "
+                                   f"in this call (first argument{f' or {self.keyword}=' if self.keyword else ''}); "
+                                   "pass the images as the forward's first argument")
             return None
-        st.seen["input"] = args[0]
-        st.batch = args[0].shape[0] if args[0].dim() == 4 else None  # the images of this forward
+        st.seen["input"] = images
+        st.batch = images.shape[0] if images.dim() == 4 else None  # the images of this forward
         if self.warp is None:
             return None
         warp = self.scope.warp(self.warp)
-        out = warp(args[0]) if self.loc is None else warp(args[0], st.seen[self.loc])
+        out = warp(images) if self.loc is None else warp(images, st.seen[self.loc])
         if self.scope.loc_warped:  # an older hooks folder, tuned with heads that read the warped input
             st.seen["input"] = out
-        return (out, *args[1:])  # seen keeps the unwarped input: a localisation head reads it, as under fx
+        # seen keeps the unwarped input: a localisation head reads it, as under fx
+        return ((out, *args[1:]), kwargs) if args else (args, {**kwargs, self.keyword: out})
 
 
 class _ExitHook:
@@ -255,7 +281,8 @@ def apply_hooks(model: nn.Module, plan: Sequence, sites: Mapping[str, tuple[str,
             per_module.setdefault(qualname, {}).setdefault(call, (loc, None, None))
     # first of all hooks: the model's own hooks on these modules see the warped tensors, as the code after them does
     # (and the root hook first of those, so the input warp is looked up on the module tree actually called)
-    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc), prepend=True)
+    scope_module.register_forward_pre_hook(_EnterHook(scope, input_warp, input_loc, _first_parameter(scope_module)),
+                                           prepend=True, with_kwargs=True)
     work.register_forward_pre_hook(_RootHook(scope), prepend=True)
     totals = {sites[name][0]: n for name, n in (calls or {}).items() if name in sites}
     for qualname, by_call in per_module.items():

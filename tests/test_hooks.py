@@ -498,3 +498,26 @@ def test_a_point_the_forward_does_not_reach_is_told():
         spliced(torch.rand(1, 3, 48, 48))  # the spliced size: no warning
     with pytest.warns(splice.errors.SpliceWarning, match="did not reach point block_2, so its warp did not run"):
         spliced(torch.rand(1, 3, 32, 32))
+
+
+def test_images_passed_by_keyword_go_through_the_input_warp():
+    # model(x=images), as a Hugging Face caller passes pixel_values=: the pre-hook reads keywords too
+    torch.manual_seed(0)
+    model = _Hooked().eval()
+    spliced = _quiet_insert(model, at="input", input_shape=(3, 32, 32)).eval()
+    perturb_warps_(spliced, scale=0.3)  # as tuned: away from the identity
+    x = torch.rand(2, 3, 32, 32)
+    with torch.no_grad():
+        by_position, by_name, base = spliced(x), spliced(x=x), model(x)
+    assert (by_position - base).abs().max() > 1e-3  # the warp moves the outputs
+    assert torch.equal(by_name, by_position)
+    # a localisation head that reads the input, at a feature point, with the images passed by keyword
+    spliced = _quiet_insert(model, at="act", warp=WarpConfig(loc_from="input"), input_shape=(3, 32, 32)).eval()
+    perturb_warps_(spliced, scale=0.3)
+    with torch.no_grad():
+        assert torch.equal(spliced(x=x), spliced(x))
+    # no images where the input warp looks: refused, never run unwarped
+    spliced = _quiet_insert(model, at="input", input_shape=(3, 32, 32)).eval()
+    with pytest.raises(RuntimeError, match=r"the warp at 'input' of _Hooked found no image tensor in this call "
+                                           r"\(first argument or x=\)"):
+        spliced(images=x)
