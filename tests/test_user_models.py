@@ -406,7 +406,7 @@ def test_a_model_that_branches_on_its_input_values_is_spliced_at_the_input(tmp_p
     torch.manual_seed(0)
     model = _RescalesItsInput().eval()
     with pytest.warns(TraceFallbackWarning, match=r"only 'input' is listed .*a meta-device forward failed in the "
-                                                  r"forward of _RescalesItsInput itself"):
+                                                  r"forward of _RescalesItsInput itself at test_user_models\.py:\d+ "):
         spliced = splice.insert(model, at="recommended", input_shape=(3, 32, 32))
     assert [p.name for p in spliced.splice_info.points] == ["input"]
     # both branches, through the warp at the identity: the base's own outputs (a pre-hook on the root, the

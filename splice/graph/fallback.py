@@ -150,6 +150,22 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
     return entries, None
 
 
+def _user_line(exc: BaseException) -> str:
+    """`` at FILE:LINE`` of the innermost frame of ``exc``'s traceback outside torch, splice and Python's own
+    library (the model's line that needed real values), or ``""``."""
+    import os
+    import sysconfig
+    import traceback
+
+    here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # splice's own package
+    skipped = (os.path.dirname(os.path.abspath(torch.__file__)) + os.sep, here + os.sep)
+    stdlib = os.path.abspath(sysconfig.get_paths()["stdlib"]) + os.sep
+    frames = [f for f in traceback.extract_tb(exc.__traceback__)
+              if not os.path.abspath(f.filename).startswith(skipped) and not (
+                  os.path.abspath(f.filename).startswith(stdlib) and "-packages" not in f.filename)]
+    return f" at {os.path.basename(frames[-1].filename)}:{frames[-1].lineno}" if frames else ""
+
+
 def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo: str, input_shape,
              head: str | None = None) -> GraphError:
     if timeline.stack:
@@ -172,7 +188,7 @@ def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo:
         advice += (f"; or splice inside one part with --within NAME (Python: within='NAME'), NAME being a part that "
                    f"ran on an (N, C, H, W) tensor: {', '.join(parts)}")
     return GraphError(f"{head or 'cannot list points of'} {type(model).__name__}: {problem}, and a meta-device "
-                      f"forward failed in {here} ({reason(exc)}); {advice}")
+                      f"forward failed in {here}{_user_line(exc)} ({reason(exc)}); {advice}")
 
 
 def _tripled(value):
