@@ -1,5 +1,6 @@
-"""Activation checkpointing: fx would trace through torch.utils.checkpoint and drop it (every activation kept),
-so a forward that calls it is spliced by hooks, whose copy runs the model's own forward, checkpointing included.
+"""Code with a backward of its own: fx would trace through activation checkpointing (every activation kept) and
+through a custom autograd Function (its backward dropped), so a forward that has such code is spliced by hooks, whose
+copy runs the model's own forward.
 Outside references: torch's own autograd on the base model (outputs, gradients, how often a checkpointed block
 runs per training step) and torch.autograd.graph.saved_tensors_hooks (bytes saved for the backward pass)."""
 
@@ -16,9 +17,9 @@ from torch import nn
 import splice
 from splice.graph import TraceFallbackWarning
 from splice.manifest import info_of
-from splice.graph.checkpointing import checkpointing_refused
+from splice.graph.backward import backward_refused
 
-DROPPED = "the forward uses activation checkpointing, which a traced graph would drop"
+DROPPED = "the forward has code with a backward of its own"
 
 
 class Blocks(nn.Module):
@@ -134,7 +135,7 @@ def test_checkpointing_works_after_a_trace_and_in_other_threads_during_one():
         torch.testing.assert_close(x.grad, want)
     # while one thread traces, another checkpoints as usual
     results = []
-    with checkpointing_refused():
+    with backward_refused():
         worker = threading.Thread(target=lambda: results.append(cp.checkpoint(block, x, use_reentrant=False)))
         worker.start()
         worker.join()
@@ -175,7 +176,7 @@ class _Staged(nn.Module):
 def test_a_submodule_that_checkpoints_is_named_and_as_a_leaf_keeps_it_under_fx():
     torch.manual_seed(0)
     base = _Staged()
-    with pytest.warns(TraceFallbackWarning, match=r"module 'stage' \(_Stage\) \(GraphError: the forward uses activ"):
+    with pytest.warns(TraceFallbackWarning, match=r"module 'stage' \(_Stage\) \(GraphError: the forward has code with a backward"):
         splice.insert(base, at="recommended", warp="affine", input_shape=(3, 32, 32))
     sp = splice.insert(base, at="recommended", warp="affine", input_shape=(3, 32, 32), leaves=[_Stage])
     assert isinstance(sp, torch.fx.GraphModule)
@@ -187,3 +188,45 @@ def test_a_submodule_that_checkpoints_is_named_and_as_a_leaf_keeps_it_under_fx()
     torch.testing.assert_close(out_s, out_b, rtol=0, atol=1e-6)
     for name, g in grads_b.items():
         torch.testing.assert_close(grads_s[name], g, rtol=1e-5, atol=1e-6)
+
+
+class _Reverse(torch.autograd.Function):
+    """A gradient reversal: identity forward, negated backward (domain-adversarial training)."""
+
+    @staticmethod
+    def forward(ctx, x):
+        return x.view_as(x)
+
+    @staticmethod
+    def backward(ctx, grad):
+        return -grad
+
+
+class _Adversarial(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem, self.head = nn.Conv2d(3, 4, 3, 1, 1), nn.Linear(4, 3)
+
+    def forward(self, x):
+        return self.head(_Reverse.apply(torch.relu(self.stem(x))).mean((2, 3)))
+
+
+def test_a_custom_autograd_function_keeps_its_backward():
+    # torch.fx alone traces through it and drops the backward: gradients come out unreversed
+    torch.manual_seed(0)
+    base = _Adversarial()
+    x = torch.randn(2, 3, 16, 16)
+    traced = torch.fx.symbolic_trace(base)
+    traced(x).sum().backward()
+    plain = base.stem.weight.grad.clone()
+    base.zero_grad()
+    base(x).sum().backward()  # the reference: torch's autograd on the model itself
+    reference = base.stem.weight.grad.clone()
+    assert torch.allclose(plain, -reference)
+    base.zero_grad()
+    with pytest.warns(TraceFallbackWarning, match=DROPPED):
+        spliced = splice.insert(base, at="input", input_shape=(3, 16, 16))
+    assert info_of(spliced).mechanism == "hooks"
+    spliced(x).sum().backward()
+    got = dict(spliced.named_parameters())["stem.weight"].grad
+    assert torch.allclose(got, reference, atol=1e-6)
