@@ -25,6 +25,7 @@ from torch import nn
 
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
+from .backward import OWN_BACKWARD, backward_refused, backward_seen
 from .leaves import LeafRule, class_path, has_call_hooks, is_torch_builtin
 from .modes import describe_difference, modes_restored, original_class, set_training, spying, unspy_meta
 from .lifted import (adopt_lifted, buffer_states, keep_view_sources, module_state, plain_tensor_targets,
@@ -170,7 +171,8 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
                 changed: set[type] | None = None) -> fx.Graph:
     """One fx trace of ``root``. What it changed on a module (an update that ran once, while tracing) is put back,
     and the module's class goes to ``changed`` (a leaf); a change on the root, a draw from Python's or NumPy's
-    generator, hooks on the root or a ``*args`` forward fail it: hooks then run the real forward."""
+    generator, hooks on the root, a ``*args`` forward or code with a backward of its own (activation checkpointing, a
+    custom autograd Function: the graph would drop that backward) fail it: hooks then run the real forward."""
     import random
 
     import numpy as np
@@ -180,20 +182,25 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
     draws = (random.getstate(), np.random.get_state()[1].tobytes())
     concrete = specialised_options(root, n_inputs) if whole else None
     try:
-        try:
-            graph = tracer.trace(root, concrete_args=concrete)
-        except Exception:
-            if not tracer.read_leaf_buffer:
-                raise
-            # code that takes a Python value from a leaf's buffer (len(), int(), a branch) cannot read it as a
-            # node: it is traced as fx reads buffers, as values (verify's buffers row compares later calls)
-            state_back(state)
-            tracer = _Tracer(rule, leaf_buffers=False)
-            graph = tracer.trace(root, concrete_args=concrete)
+        # code with a backward of its own fails the trace: the graph would keep its forward's operations only
+        with backward_refused():
+            try:
+                graph = tracer.trace(root, concrete_args=concrete)
+            except Exception:
+                if not tracer.read_leaf_buffer or backward_seen():
+                    raise
+                # code that takes a Python value from a leaf's buffer (len(), int(), a branch) cannot read it as a
+                # node: it is traced as fx reads buffers, as values (verify's buffers row compares later calls)
+                state_back(state)
+                tracer = _Tracer(rule, leaf_buffers=False)
+                graph = tracer.trace(root, concrete_args=concrete)
     except Exception as exc:
-        raise FxFailure(exc, tracer.failed_in) from exc
+        error = GraphError(OWN_BACKWARD) if backward_seen() else exc  # the cause, not what code made of it
+        raise FxFailure(error, tracer.failed_in) from exc
     finally:
         updated = state_back(state)
+    if backward_seen():  # the traced code caught the error and went on
+        raise FxFailure(GraphError(OWN_BACKWARD), tracer.failed_in)
     if changed is not None:
         changed.update(original_class(type(m)) for m in updated if m is not root)
     if whole and root in updated:

@@ -1,0 +1,102 @@
+"""Noticing, while fx traces a forward, code with a backward of its own.
+
+fx traces through Python: a custom :class:`torch.autograd.Function` runs its
+``forward`` on proxies and the graph keeps those operations, not the
+Function, so its own ``backward`` is gone (a gradient reversal then passes
+gradients unreversed); activation checkpointing (``torch.utils.checkpoint``,
+re-entrant or not, ``checkpoint_sequential``, timm's
+``set_grad_checkpointing``) goes the same way, or through saved-tensor hooks
+the graph leaves out, so the traced graph keeps every activation the model
+meant to recompute. Both are reached through two public doors of
+:mod:`torch.autograd`: ``Function.apply`` and entering a
+:class:`torch.autograd.graph.saved_tensors_hooks` block (which also covers
+``save_on_cpu``). While a trace runs in this thread,
+:func:`backward_refused` puts stand-ins at those doors that raise a
+:class:`~splice.errors.GraphError` saying so (and remember it, for traced code
+that catches the error); other threads go through torch's own, and both are
+put back when the last trace ends, an exception included.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import threading
+from collections.abc import Iterator
+from typing import Any
+
+import torch
+
+from ..errors import GraphError
+
+__all__: list[str] = []
+
+OWN_BACKWARD = ("the forward has code with a backward of its own (activation checkpointing, a custom "
+                "torch.autograd.Function, saved-tensor hooks), which a traced graph would drop")
+
+_lock = threading.Lock()
+_tracing = threading.local()  # depth: this thread's traces in progress; seen: whether one met such code
+_active = [0]  # traces in progress in every thread, and with them the stand-ins in place
+_originals: dict[str, Any] = {}
+
+
+def _meeting() -> bool:
+    """In a thread that traces: remember the meeting and say so."""
+    if getattr(_tracing, "depth", 0):
+        _tracing.seen = True
+        return True
+    return False
+
+
+def _install() -> None:
+    function, hooks = torch.autograd.Function, torch.autograd.graph.saved_tensors_hooks
+    _originals["apply"] = vars(function)["apply"]  # a classmethod (a C-level one in recent torch)
+    _originals["__enter__"] = vars(hooks)["__enter__"]
+    apply = _originals["apply"]
+
+    def stand_in_apply(cls, *args, **kwargs):
+        if _meeting():
+            raise GraphError(OWN_BACKWARD)
+        return apply.__get__(None, cls)(*args, **kwargs)
+
+    enter = _originals["__enter__"]
+
+    def stand_in_enter(self):
+        if _meeting():
+            raise GraphError(OWN_BACKWARD)
+        return enter(self)
+
+    function.apply = classmethod(stand_in_apply)
+    hooks.__enter__ = stand_in_enter
+
+
+def _restore() -> None:
+    torch.autograd.Function.apply = _originals.pop("apply")
+    torch.autograd.graph.saved_tensors_hooks.__enter__ = _originals.pop("__enter__")
+
+
+@contextlib.contextmanager
+def backward_refused() -> Iterator[None]:
+    """For the length of the block, a call of a custom autograd Function or a saved-tensor hooks block entered from
+    this thread raises a :class:`~splice.errors.GraphError`; after the block, :func:`backward_seen` says whether one
+    was (even one the traced code caught)."""
+    with _lock:
+        if _active[0] == 0:
+            _install()
+        _active[0] += 1
+    depth = getattr(_tracing, "depth", 0)
+    if depth == 0:
+        _tracing.seen = False
+    _tracing.depth = depth + 1
+    try:
+        yield
+    finally:
+        _tracing.depth = depth
+        with _lock:
+            _active[0] -= 1
+            if _active[0] == 0:
+                _restore()
+
+
+def backward_seen() -> bool:
+    """Whether the last :func:`backward_refused` block of this thread met code with a backward of its own."""
+    return bool(getattr(_tracing, "seen", False))
