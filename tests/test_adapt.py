@@ -702,3 +702,51 @@ def test_site_diagnostics_leave_the_callers_model_as_it_was():
     theirs = site_diagnostics(reference.eval(), dict(reference.splice_warps.named_children()), site,
                               prepare=lambda t: t, seed=0)
     assert ours == theirs and set(ours["warp_spread"]) == {"input"}
+
+
+def _zoomed_estimate(monkeypatch):
+    """The range estimate replaced by one of a site zoomed 1.2-1.3, whose scale range leaves out 1."""
+    from splice.adapt import run as adapt_run
+
+    real_estimate = adapt_run.estimate_ranges
+
+    def zoomed(*args, **kwargs):
+        return dataclasses.replace(real_estimate(*args, **kwargs), scale=(1.2, 1.3))
+    monkeypatch.setattr(adapt_run, "estimate_ranges", zoomed)
+
+
+def test_the_site_ranges_shown_are_the_estimate_and_the_widened_pretraining_range_is_told_apart(
+        tmp_path, folders, spliced, monkeypatch, capsys):
+    # the summary showed the pre-training range (stretched to contain 1) as the site's: "scale 1.000-1.300"
+    from splice.training.checkpoint import save_checkpoint
+
+    _zoomed_estimate(monkeypatch)
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full = tune(str(spliced), out=tmp_path / "full", run_options=RunOptions(quiet=True), **kw)
+    printed = capsys.readouterr()
+    printed = printed.out + printed.err
+    ranges = json.loads((tmp_path / "full" / "ranges.json").read_text())
+    assert full["ranges"]["scale"] == ranges["estimate"]["scale"] == [1.2, 1.3]
+    assert full["pretrain_ranges"]["scale"] == ranges["pretrain"]["scale"] == [1.0, 1.3]
+    assert "scale 1.200–1.300, shift" in printed and "scale 1.000–1.300, shift" not in printed
+    assert "pre-training ranges: scale 1.000–1.300, the site's widened to contain no scaling (1)" in printed
+    # resumed, from this splice's checkpoint and from an older one's (which kept the widened range alone)
+    for older in (False, True):
+        part = tmp_path / f"part{older}"
+        tune(str(spliced), out=part, run_options=RunOptions(progress=False, stop_after_steps=3), **kw)
+        if older:
+            ckpt = load_checkpoint(part / CHECKPOINT_NAME)
+            del ckpt["site_ranges"]
+            save_checkpoint(part / CHECKPOINT_NAME, ckpt)
+        resumed = tune(resume=part, run_options=QUIET)
+        assert resumed["ranges"] == full["ranges"] and resumed["pretrain_ranges"] == full["pretrain_ranges"]
+
+
+def test_a_site_range_that_contains_1_is_not_said_widened(tmp_path, folders, spliced, capsys):
+    ref, site = folders
+    summary = tune(str(spliced), out=tmp_path / "run", recipe=_tiny(estimate=False), site=str(site),
+                   overrides=RecipeOverrides(reference=str(ref)), run_options=RunOptions(quiet=True))
+    printed = capsys.readouterr()
+    assert summary["ranges"]["scale"] == summary["pretrain_ranges"]["scale"]
+    assert "site ranges: " in printed.out + printed.err and "pre-training ranges" not in printed.out + printed.err

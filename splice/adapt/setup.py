@@ -62,7 +62,8 @@ class AdaptRun:
     bar: Any = None
     flag: Any = None
     optimizer: torch.optim.Optimizer | None = None
-    estimate: Any = None  # splice.adapt.ranges.RangeEstimate
+    estimate: Any = None  # splice.adapt.ranges.RangeEstimate: the ranges pre-training draws from
+    site_ranges: Any = None  # the ranges the site was read as (``estimate`` before it was widened to contain 1)
     reference_probe: Tensor | None = None  # up to 256 reference images whose predictions the run follows
     reference_start: Tensor | None = None  # the base's predicted class for each of them
     step: int = 0
