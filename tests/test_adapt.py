@@ -23,7 +23,7 @@ from splice.adapt.objective import entropy_loss
 from splice.adapt.ranges import RangeEstimate, fit_ranges, site_statistics
 from splice.data import open_data
 from splice.distort import DistortionRange, random_distort
-from splice.errors import DataError, RecipeError, SpliceWarning
+from splice.errors import DataError, DataWarning, RecipeError, SpliceWarning
 from splice.options import ModelOptions
 from splice.recipes import Recipe, load_recipe, recipe_to_toml
 from splice.surgery import WARP_PREFIX
@@ -778,3 +778,35 @@ def test_site_statistics_read_rotations_rigid_in_pixels_on_images_that_are_not_s
     assert stats["angle_std"] == pytest.approx(np.std(polar_angles, ddof=1), rel=1e-9)
     assert stats["scale_mean"] == pytest.approx(np.mean(scales), rel=1e-9) == pytest.approx(np.mean(polar_scales))
     assert stats["scale_std"] == pytest.approx(np.std(scales, ddof=1), rel=1e-9)
+
+
+def test_a_site_that_is_the_reference_is_warned(tmp_path, folders, spliced):
+    ref, _ = folders
+    with pytest.warns(DataWarning, match=r"^the site .* is also the reference: .*pass --reference"):
+        tune(str(spliced), recipe=_tiny(estimate=False, objective="none"), site=str(ref), out=tmp_path / "run",
+             overrides=RecipeOverrides(reference=str(ref) + "/"), run_options=QUIET)
+
+
+def test_a_resume_says_where_it_goes_on_and_a_finished_run_that_it_finished(tmp_path, folders, spliced, base,
+                                                                           monkeypatch, capsys):
+    import shutil
+
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    _, part = _stopped_in_pre_training(tmp_path, spliced, kw, monkeypatch)
+    capsys.readouterr()
+    tune(resume=part, run_options=RunOptions(quiet=True))
+    said = capsys.readouterr()
+    assert f"resuming {part} in warp pre-training at epoch 1, batch 0, step 0\n" in said.out + said.err
+    again = tune(resume=part, run_options=RunOptions(quiet=True))
+    said = capsys.readouterr()
+    assert f"run {part} already finished its 2 epochs (step {again['steps']}); nothing to resume, its summary " \
+           "follows" in said.out + said.err and "resuming" not in said.out + said.err
+    assert json.loads((part / "run.json").read_text())["status"] == "finished"
+    # a supervised run says the same
+    labelled = tmp_path / "labelled"
+    shutil.copytree(base.parent, labelled)
+    done = tune(resume=labelled, run_options=RunOptions(quiet=True))
+    said = capsys.readouterr()
+    assert f"run {labelled} already finished its 1 epoch (step {done['steps']}); nothing to resume" in \
+        said.out + said.err and "resuming" not in said.out + said.err

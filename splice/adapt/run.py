@@ -34,7 +34,7 @@ from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
 from ..training.pretrain import execution_order
 from ..training.recording import (announce_stop, epoch_position, base_predictions, predicted_classes, resume_command,
-                                  saved_predictions)
+                                  resume_line, saved_predictions)
 from ..training.runfolder import RECIPE_FILE, read_metrics, truncate_metrics, write_run_info, writing
 from ..training.state import TuneInterrupted
 from .diagnostics import base_view, site_diagnostics
@@ -173,8 +173,12 @@ def _restore(run: AdaptRun) -> tuple[str, int, int]:
     if run.ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     phase, epoch, batch = str(ckpt["phase"]), int(ckpt["epoch"]), int(ckpt["batch"])
-    run.bar.line(f"resuming {run.run_dir} at {phase} {'epoch ' + str(epoch + 1) if phase == 'adapt' else ''}"
-                 f"{', batch ' + str(batch) if batch else ''} (step {run.step})")
+    pre = ckpt.get("pretrain") if phase == "pretrain" else None
+    if phase == "pretrain":  # the heads' pre-training resumes at an epoch's start
+        run.bar.line(f"resuming {run.run_dir} in warp pre-training at epoch {int(pre['epoch']) + 1 if pre else 1}, "
+                     f"batch 0, step {int(pre['step']) if pre else 0}")
+    else:
+        run.bar.line(resume_line(run.run_dir, run.rec.epochs, epoch, batch, run.step))
     return phase, epoch, batch
 
 
