@@ -23,7 +23,7 @@ from splice.adapt.objective import entropy_loss
 from splice.adapt.ranges import RangeEstimate, fit_ranges, site_statistics
 from splice.data import open_data
 from splice.distort import DistortionRange, random_distort
-from splice.errors import DataError, RecipeError, SpliceWarning
+from splice.errors import DataError, DataWarning, RecipeError, SpliceWarning
 from splice.options import ModelOptions
 from splice.recipes import Recipe, load_recipe, recipe_to_toml
 from splice.surgery import WARP_PREFIX
@@ -176,11 +176,12 @@ def test_statistics_that_no_batch_can_give_are_refused_and_left_alone(images, ba
     assert model[1].momentum == 0.1 and not model[1].training
 
 
-def test_fit_ranges_undoes_a_reader_that_shrinks_and_blurs():
+@pytest.mark.parametrize("size", [(8, 8), (8, 32)])
+def test_fit_ranges_undoes_a_reader_that_shrinks_and_blurs(size):
     # a reader that pulls every reading 30 % towards no motion and adds noise: the first guess is
-    # biased, the simulation through the same reader is not
+    # biased, the simulation through the same reader is not; on images four times wider than high too
     gen = torch.Generator().manual_seed(0)
-    upright = torch.zeros(400, 1, 8, 8)
+    upright = torch.zeros(400, 1, *size)
 
     def read(matrix: torch.Tensor) -> torch.Tensor:
         eye = torch.eye(3, dtype=torch.float64)
@@ -189,11 +190,11 @@ def test_fit_ranges_undoes_a_reader_that_shrinks_and_blurs():
 
     def simulate(est: RangeEstimate) -> dict:
         _, meta = random_distort(upright, est.to_range(), torch.Generator().manual_seed(5))
-        return site_statistics(read(meta["matrix"]))
+        return site_statistics(read(meta["matrix"]), size=size)
 
     truth = RangeEstimate(40.0, (0.85, 1.15), 0.2, 0.0)
-    _, meta = random_distort(torch.zeros(2000, 1, 8, 8), truth.to_range(), torch.Generator().manual_seed(9))
-    site = site_statistics(read(meta["matrix"]))
+    _, meta = random_distort(torch.zeros(2000, 1, *size), truth.to_range(), torch.Generator().manual_seed(9))
+    site = site_statistics(read(meta["matrix"]), size=size)
     outer = RangeEstimate(90.0, (0.5, 2.0), 0.5, 0.3)
     est = fit_ranges(site, simulate, outer=outer, fallback=RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0),
                      observable={"rotation": True, "scale": True, "shift": True, "perspective": False})
@@ -226,11 +227,11 @@ def test_the_scale_centre_is_not_pulled_off_by_resampling_blur_or_a_flat_reading
 
     def simulate(est: RangeEstimate) -> dict:
         _, meta = random_distort(torch.zeros(400, 1, 8, 8), est.to_range(), torch.Generator().manual_seed(5))
-        return site_statistics(_blurred_flat_reader(gen, not est.to_range().is_identity)(meta["matrix"]))
+        return site_statistics(_blurred_flat_reader(gen, not est.to_range().is_identity)(meta["matrix"]), size=(8, 8))
 
     moved = RangeEstimate(5.0, truth, 0.02, 0.0)
     _, meta = random_distort(torch.zeros(300, 1, 8, 8), moved.to_range(), torch.Generator().manual_seed(9))
-    site = site_statistics(_blurred_flat_reader(gen, truth != (1.0, 1.0))(meta["matrix"]))
+    site = site_statistics(_blurred_flat_reader(gen, truth != (1.0, 1.0))(meta["matrix"]), size=(8, 8))
     est = fit_ranges(site, simulate, outer=outer, fallback=RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0),
                      observable={"rotation": True, "scale": True, "shift": True, "perspective": False})
     centre = sum(est.scale) / 2
@@ -702,3 +703,110 @@ def test_site_diagnostics_leave_the_callers_model_as_it_was():
     theirs = site_diagnostics(reference.eval(), dict(reference.splice_warps.named_children()), site,
                               prepare=lambda t: t, seed=0)
     assert ours == theirs and set(ours["warp_spread"]) == {"input"}
+
+
+def _zoomed_estimate(monkeypatch):
+    """The range estimate replaced by one of a site zoomed 1.2-1.3, whose scale range leaves out 1."""
+    from splice.adapt import run as adapt_run
+
+    real_estimate = adapt_run.estimate_ranges
+
+    def zoomed(*args, **kwargs):
+        return dataclasses.replace(real_estimate(*args, **kwargs), scale=(1.2, 1.3))
+    monkeypatch.setattr(adapt_run, "estimate_ranges", zoomed)
+
+
+def test_the_site_ranges_shown_are_the_estimate_and_the_widened_pretraining_range_is_told_apart(
+        tmp_path, folders, spliced, monkeypatch, capsys):
+    # the summary showed the pre-training range (stretched to contain 1) as the site's: "scale 1.000-1.300"
+    from splice.training.checkpoint import save_checkpoint
+
+    _zoomed_estimate(monkeypatch)
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    full = tune(str(spliced), out=tmp_path / "full", run_options=RunOptions(quiet=True), **kw)
+    printed = capsys.readouterr()
+    printed = printed.out + printed.err
+    ranges = json.loads((tmp_path / "full" / "ranges.json").read_text())
+    assert full["ranges"]["scale"] == ranges["estimate"]["scale"] == [1.2, 1.3]
+    assert full["pretrain_ranges"]["scale"] == ranges["pretrain"]["scale"] == [1.0, 1.3]
+    assert "scale 1.200–1.300, shift" in printed and "scale 1.000–1.300, shift" not in printed
+    assert "pre-training ranges: scale 1.000–1.300, the site's widened to contain no scaling (1)" in printed
+    # resumed, from this splice's checkpoint and from an older one's (which kept the widened range alone)
+    for older in (False, True):
+        part = tmp_path / f"part{older}"
+        tune(str(spliced), out=part, run_options=RunOptions(progress=False, stop_after_steps=3), **kw)
+        if older:
+            ckpt = load_checkpoint(part / CHECKPOINT_NAME)
+            del ckpt["site_ranges"]
+            save_checkpoint(part / CHECKPOINT_NAME, ckpt)
+        resumed = tune(resume=part, run_options=QUIET)
+        assert resumed["ranges"] == full["ranges"] and resumed["pretrain_ranges"] == full["pretrain_ranges"]
+
+
+def test_a_site_range_that_contains_1_is_not_said_widened(tmp_path, folders, spliced, capsys):
+    ref, site = folders
+    summary = tune(str(spliced), out=tmp_path / "run", recipe=_tiny(estimate=False), site=str(site),
+                   overrides=RecipeOverrides(reference=str(ref)), run_options=RunOptions(quiet=True))
+    printed = capsys.readouterr()
+    assert summary["ranges"]["scale"] == summary["pretrain_ranges"]["scale"]
+    assert "site ranges: " in printed.out + printed.err and "pre-training ranges" not in printed.out + printed.err
+
+
+@pytest.mark.parametrize("size", [(32, 128), (40, 56), (48, 48)])
+def test_site_statistics_read_rotations_rigid_in_pixels_on_images_that_are_not_square(size):
+    # the polar decomposition ran on the normalised-coordinate matrix D^-1 R D, not a rotation when H != W:
+    # uniform +-45 degree pixel rotations read 42.8 degrees of spread at 32x128 for a true 26.2
+    from scipy.linalg import polar
+
+    from splice.distort.matrices import affine_matrix
+
+    rng = np.random.default_rng(0)
+    angles, scales = rng.uniform(-45.0, 45.0, 500), rng.uniform(0.8, 1.2, 500)
+    forward = affine_matrix(torch.tensor(angles), torch.tensor(scales), torch.zeros(500, 2), size=size)
+    m = torch.cat([forward, torch.tensor([0.0, 0.0, 1.0], dtype=torch.float64).expand(500, 1, 3)], 1)
+    stats = site_statistics(m, size=size)
+    # reference: the angles drawn (numpy's sample standard deviation) ...
+    assert stats["angle_std"] == pytest.approx(np.std(angles, ddof=1), rel=1e-9)
+    # ... and scipy's polar decomposition of the pixel-unit matrix D A D^-1, D = diag(W/2, H/2)
+    d = np.diag([size[1] / 2.0, size[0] / 2.0])
+    polar_angles, polar_scales = [], []
+    for a in m[:, :2, :2].numpy():
+        u, p = polar(d @ a @ np.linalg.inv(d))
+        polar_angles.append(np.degrees(np.arctan2(u[1, 0], u[0, 0])))
+        polar_scales.append(np.sqrt(np.linalg.det(p)))
+    assert stats["angle_std"] == pytest.approx(np.std(polar_angles, ddof=1), rel=1e-9)
+    assert stats["scale_mean"] == pytest.approx(np.mean(scales), rel=1e-9) == pytest.approx(np.mean(polar_scales))
+    assert stats["scale_std"] == pytest.approx(np.std(scales, ddof=1), rel=1e-9)
+
+
+def test_a_site_that_is_the_reference_is_warned(tmp_path, folders, spliced):
+    ref, _ = folders
+    with pytest.warns(DataWarning, match=r"^the site .* is also the reference: .*pass --reference"):
+        tune(str(spliced), recipe=_tiny(estimate=False, objective="none"), site=str(ref), out=tmp_path / "run",
+             overrides=RecipeOverrides(reference=str(ref) + "/"), run_options=QUIET)
+
+
+def test_a_resume_says_where_it_goes_on_and_a_finished_run_that_it_finished(tmp_path, folders, spliced, base,
+                                                                           monkeypatch, capsys):
+    import shutil
+
+    ref, site = folders
+    kw = {"recipe": _tiny(), "site": str(site), "overrides": RecipeOverrides(reference=str(ref))}
+    _, part = _stopped_in_pre_training(tmp_path, spliced, kw, monkeypatch)
+    capsys.readouterr()
+    tune(resume=part, run_options=RunOptions(quiet=True))
+    said = capsys.readouterr()
+    assert f"resuming {part} in warp pre-training at epoch 1, batch 0, step 0\n" in said.out + said.err
+    again = tune(resume=part, run_options=RunOptions(quiet=True))
+    said = capsys.readouterr()
+    assert f"run {part} already finished its 2 epochs (step {again['steps']}); nothing to resume, its summary " \
+           "follows" in said.out + said.err and "resuming" not in said.out + said.err
+    assert json.loads((part / "run.json").read_text())["status"] == "finished"
+    # a supervised run says the same
+    labelled = tmp_path / "labelled"
+    shutil.copytree(base.parent, labelled)
+    done = tune(resume=labelled, run_options=RunOptions(quiet=True))
+    said = capsys.readouterr()
+    assert f"run {labelled} already finished its 1 epoch (step {done['steps']}); nothing to resume" in \
+        said.out + said.err and "resuming" not in said.out + said.err

@@ -68,7 +68,7 @@ def _spread(model: nn.Module, warps: Mapping[str, nn.Module], images: Tensor, pr
             w = warps[name]
             mats[name].append(w.matrix(w.predict(args[1] if len(args) > 1 else args[0])).double())
     for name, parts in mats.items():
-        s = site_statistics(torch.cat(parts))
+        s = site_statistics(torch.cat(parts), size=tuple(warps[name].shape[1:]))
         out[name] = {"rotation_std": round(s["angle_std"], 4), "scale_mean": round(s["scale_mean"], 4),
                      "scale_std": round(s["scale_std"], 4), "shift_std": round(s["shift_std"], 4)}
     return out

@@ -99,6 +99,7 @@ def estimate_ranges(probe: ProbeNet, site: Images, held: Images, *, outer: Range
     few hundred fix the statistics to about a percent; common practice, no source).
     """
     probe.eval()
+    size = tuple(probe.probe.shape[1:])
     chunks = torch.arange(min(len(held), max_simulated)).split(batch_size)
     reference = torch.cat([held.batch(chunk) for chunk in chunks])
 
@@ -109,12 +110,12 @@ def estimate_ranges(probe: ProbeNet, site: Images, held: Images, *, outer: Range
         from ..distort import random_distort
 
         moved, _ = random_distort(reference, est.to_range(), _b.generator(seed, "simulate"), fill=0.0)
-        return site_statistics(read_matrices(read, moved, batch_size=batch_size))
+        return site_statistics(read_matrices(read, moved, batch_size=batch_size), size=size)
 
     idx = torch.arange(len(site))
     site_m = torch.cat([read_matrices(read, site.batch(chunk), batch_size=batch_size)
                         for chunk in idx.split(batch_size)])
-    stats = site_statistics(site_m)
+    stats = site_statistics(site_m, size=size)
     ratios = observability(simulate, outer)
     observable = {p: ratios[p] >= OBSERVABLE_RATIO for p in PARAMETERS}
     est = fit_ranges(stats, simulate, outer=outer, fallback=fallback, observable=observable)

@@ -8,8 +8,11 @@ images; the spread of those readings is the range the warp must undo.
 
 What is read from each prediction ``S`` (normalised by ``S[2, 2]``):
 
-- ``angle``: the rotation of the polar factor ``U`` of the linear part
-  ``A = S[:2, :2] = U P`` (:func:`splice.inspection.decompose.describe_linear`);
+- ``angle``: the rotation of the polar factor ``U`` of the linear part in
+  pixel units, ``A = D S[:2, :2] D^-1 = U P`` with ``D = diag(W/2, H/2)``
+  (:func:`splice.inspection.decompose.pixel_linear`, then ``describe_linear``,
+  as inspect reads a warp): on an image that is not square, ``S[:2, :2]`` of a
+  rotation rigid in pixels is not itself a rotation;
 - ``scale``: the isotropic scale ``sqrt(s1 s2)``, the geometric mean of the
   singular values of ``A``;
 - ``shift``: the translation ``S[:2, 2] / 2``, as a fraction of the image size
@@ -171,13 +174,14 @@ def _corner_residual(m: Tensor) -> Tensor:
     return torch.einsum("k,nkc->nc", v, q)
 
 
-def site_statistics(matrices: Tensor) -> dict[str, float]:
-    """The spread statistics of ``(N, 3, 3)`` predicted sampling matrices (see the module docstring)."""
-    from ..inspection.decompose import describe_linear
+def site_statistics(matrices: Tensor, *, size: tuple[int, int]) -> dict[str, float]:
+    """The spread statistics of ``(N, 3, 3)`` predicted sampling matrices of a warp on tensors of
+    ``size=(H, W)`` (see the module docstring)."""
+    from ..inspection.decompose import describe_linear, pixel_linear
 
     m = matrices.to(torch.float64)
     m = m / m[:, 2:3, 2:3]
-    d = describe_linear(m[:, :2, :2])
+    d = describe_linear(pixel_linear(m[:, :2, :2], size))
     scale = torch.sqrt(d["scale_1"] * d["scale_2"])
     shift = torch.cat([m[:, 0, 2], m[:, 1, 2]]) / 2.0
     corner = _corner_residual(m)

@@ -19,6 +19,7 @@ agreement was worse than the last one in 5 of 6 runs.
 
 from __future__ import annotations
 
+import json
 import os
 import time
 from typing import Any
@@ -29,7 +30,7 @@ from ..training.recording import agreement, base_differs, caution_upright, predi
 from ..training.runfolder import HASH_ENV, append_metrics, write_run_info, writing
 from .setup import AdaptRun
 
-__all__ = ["RANGES_FILE", "row", "save_folder", "save_state", "write_ranges", "base_changed", "end"]
+__all__ = ["RANGES_FILE", "row", "save_folder", "save_state", "write_ranges", "site_ranges", "base_changed", "end"]
 
 RANGES_FILE = "ranges.json"
 
@@ -97,6 +98,7 @@ def save_state(run: AdaptRun, *, phase: str, epoch: int, batch: int, extra: dict
         "scheduler": {"kind": run.rec.schedule, "step": run.step}, "rng": rng_state(), "best": dict(run.best),
         "metrics_rows": run.metrics_rows, "recipe": run.rec.to_dict(),
         "estimate": run.estimate.to_dict(exact=True) if run.estimate is not None else None,
+        "site_ranges": run.site_ranges.to_dict(exact=True) if run.site_ranges is not None else None,
         "reference_start": None if run.reference_start is None else run.reference_start.tolist(),
     }
     if extra:
@@ -107,8 +109,21 @@ def save_state(run: AdaptRun, *, phase: str, epoch: int, batch: int, extra: dict
 def write_ranges(run: AdaptRun, payload: dict) -> None:
     """``RUN/ranges.json``: the estimated ranges, what they were read with, and the ranges pre-training used."""
     if run.ctx.is_main:
-        with writing(run.run_dir / "ranges.json"):
-            atomic_write_json(run.run_dir / "ranges.json", payload)
+        with writing(run.run_dir / RANGES_FILE):
+            atomic_write_json(run.run_dir / RANGES_FILE, payload)
+
+
+def site_ranges(run: AdaptRun, ckpt: dict):
+    """The ranges the site was read as, for a resumed run: from its checkpoint; for a checkpoint an older splice
+    wrote (which kept only the ranges pre-training used), from ``ranges.json``'s ``estimate``, else those."""
+    from .ranges import RangeEstimate
+
+    if ckpt.get("site_ranges"):
+        return RangeEstimate.from_dict(ckpt["site_ranges"])
+    try:
+        return RangeEstimate.from_dict(json.loads((run.run_dir / RANGES_FILE).read_text())["estimate"])
+    except (OSError, ValueError, KeyError, TypeError, IndexError):
+        return run.estimate
 
 
 def end(run: AdaptRun, rows: list[dict], *, interrupted: bool = False) -> dict[str, Any]:
@@ -123,7 +138,8 @@ def end(run: AdaptRun, rows: list[dict], *, interrupted: bool = False) -> dict[s
                "recipe": run.rec.name, "mode": run.rec.mode, "epochs": run.rec.epochs, "steps": run.step,
                "best_accuracy": None, "best_epoch": run.best["epoch"], "best_agreement": run.best["score"],
                "base_changed": base_changed(run), "interrupted": interrupted,
-               "ranges": run.estimate.to_dict() if run.estimate is not None else None,
+               "ranges": run.site_ranges.to_dict() if run.site_ranges is not None else None,
+               "pretrain_ranges": run.estimate.to_dict() if run.estimate is not None else None,
                "site_before": before, "site_after": after,
                "reference_agreement": rows[-1].get("reference_agreement") if rows else None}
     _print_summary(run, summary)
@@ -141,6 +157,10 @@ def _print_summary(run: AdaptRun, s: dict) -> None:
         run.bar.line(f"site ranges: rotation ±{r['rotation']:.1f}°, scale {r['scale'][0]:.3f}–{r['scale'][1]:.3f}, "
                      f"shift ±{r['shift']:.3f}, perspective {r['perspective']:.3f} "
                      f"(estimated: {', '.join(seen) or 'none'}; the rest as typed)")
+        used = s["pretrain_ranges"]
+        if used and used["scale"] != r["scale"]:
+            run.bar.line(f"pre-training ranges: scale {used['scale'][0]:.3f}–{used['scale'][1]:.3f}, the site's "
+                         "widened to contain no scaling (1)")
     if b and a:
         run.bar.line(f"on site images, base → adapted: confidence {b['confidence']:.3f} → {a['confidence']:.3f}, "
                      f"entropy {b['entropy']:.3f} → {a['entropy']:.3f}, agreement under re-warps "

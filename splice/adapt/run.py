@@ -34,13 +34,13 @@ from ..training.checkpoint import set_rng_state
 from ..training.params import grad_reducer
 from ..training.pretrain import execution_order
 from ..training.recording import (announce_stop, epoch_position, base_predictions, predicted_classes, resume_command,
-                                  saved_predictions)
+                                  resume_line, saved_predictions)
 from ..training.runfolder import RECIPE_FILE, read_metrics, truncate_metrics, write_run_info, writing
 from ..training.state import TuneInterrupted
 from .diagnostics import base_view, site_diagnostics
 from .probe import build_probe, estimate_ranges, train_probe
 from .ranges import RangeEstimate
-from .record import end, row, save_folder, save_state, write_ranges
+from .record import end, row, save_folder, save_state, site_ranges, write_ranges
 from .regress import regress_warps_, upright_safe
 from .setup import AdaptRun
 from .steps import Epochs, adapt_epoch, check_objective
@@ -103,7 +103,7 @@ def _estimate(run: AdaptRun) -> None:
     else:
         est = typed
         est.observable = {p: False for p in ("rotation", "scale", "shift", "perspective")}
-    run.estimate = est.covering_identity()
+    run.site_ranges, run.estimate = est, est.covering_identity()
     used = run.estimate
     write_ranges(run, {"estimate": est.to_dict(), "pretrain": used.to_dict() | {"statistics": {}},
                        "outer_limits": RangeEstimate.of_ranges(site).to_dict(), "typed": typed.to_dict(),
@@ -166,14 +166,19 @@ def _restore(run: AdaptRun) -> tuple[str, int, int]:
     set_rng_state(ckpt["rng"])
     run.step, run.best, run.metrics_rows = int(ckpt["step"]), dict(ckpt["best"]), int(ckpt["metrics_rows"])
     run.estimate = RangeEstimate.from_dict(ckpt["estimate"]) if ckpt.get("estimate") else None
+    run.site_ranges = site_ranges(run, ckpt)
     run.reference_start = saved_predictions(ckpt)
     if run.reference_start is None and run.reference_probe is not None:  # an older splice's: the base never moves
         run.reference_start = base_predictions(run.net, run.reference_probe, run.prepare)
     if run.ctx.is_main:
         truncate_metrics(run.run_dir, run.metrics_rows)
     phase, epoch, batch = str(ckpt["phase"]), int(ckpt["epoch"]), int(ckpt["batch"])
-    run.bar.line(f"resuming {run.run_dir} at {phase} {'epoch ' + str(epoch + 1) if phase == 'adapt' else ''}"
-                 f"{', batch ' + str(batch) if batch else ''} (step {run.step})")
+    pre = ckpt.get("pretrain") if phase == "pretrain" else None
+    if phase == "pretrain":  # the heads' pre-training resumes at an epoch's start
+        run.bar.line(f"resuming {run.run_dir} in warp pre-training at epoch {int(pre['epoch']) + 1 if pre else 1}, "
+                     f"batch 0, step {int(pre['step']) if pre else 0}")
+    else:
+        run.bar.line(resume_line(run.run_dir, run.rec.epochs, epoch, batch, run.step))
     return phase, epoch, batch
 
 

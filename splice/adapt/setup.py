@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,7 +21,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from ..errors import DataError, RecipeError
+from ..errors import DataError, DataWarning, RecipeError
 from ..graph.shapes import input_dtype
 from ..manifest import info_of
 from ..options import ModelOptions
@@ -62,7 +63,8 @@ class AdaptRun:
     bar: Any = None
     flag: Any = None
     optimizer: torch.optim.Optimizer | None = None
-    estimate: Any = None  # splice.adapt.ranges.RangeEstimate
+    estimate: Any = None  # splice.adapt.ranges.RangeEstimate: the ranges pre-training draws from
+    site_ranges: Any = None  # the ranges the site was read as (``estimate`` before it was widened to contain 1)
     reference_probe: Tensor | None = None  # up to 256 reference images whose predictions the run follows
     reference_start: Tensor | None = None  # the base's predicted class for each of them
     step: int = 0
@@ -85,6 +87,12 @@ def reference_for_site(rec: Recipe, site: str, override: str | None, trained_on:
             "an ImageFolder, a flat folder of images, or digits"
         )
     return ref.data
+
+
+def _warn_same(site: str) -> None:
+    warnings.warn(f"the site {site!r} is also the reference: the range estimate reads no motion against the "
+                  "images themselves and the run learns next to nothing; pass --reference the upright images "
+                  "the base was trained on", DataWarning, stacklevel=4)
 
 
 def _resolve(ctx, run_dir: Path, info: dict | None, *, model, recipe, site: str, overrides: RecipeOverrides,
@@ -163,6 +171,8 @@ def set_up(ctx, *, model, recipe, site: str, out, resume, overrides: RecipeOverr
     if rec.mode == "label-free" and ref_name is None:
         record = info_of(net)
         ref_name = reference_for_site(rec, req.data, overrides.reference, record.trained_on if record else None)
+    if info is None and ref_name is not None and data_record(ref_name) == data_record(req.data):
+        _warn_same(req.data)
     site_images = open_images(req.data, shape, what="site")
     reference = open_images(ref_name, shape, what="reference") if ref_name else None
     if reference is not None and rec.site.estimate:

@@ -135,6 +135,15 @@ def _check_size(size) -> tuple[int, int]:
     return int(size[0]), int(size[1])
 
 
+def pixel_linear(a: Tensor, size: tuple[int, int]) -> Tensor:
+    """``(N, 2, 2)`` linear maps in normalised coordinates of a tensor of ``size=(H, W)``, in pixel units:
+    ``D a D^-1`` with ``D = diag(W/2, H/2)`` (``p_px = D p``), so a rotation rigid in pixels is a rotation again
+    when ``H != W``. Every polar reading of a warp goes through this (inspect's, the label-free range
+    statistics')."""
+    d = _pixel_scale(_check_size(size))
+    return d.view(1, 2, 1) * torch.as_tensor(a, dtype=torch.float64) / d.view(1, 1, 2)
+
+
 def describe_matrix(m: Tensor, size: tuple[int, int]) -> dict[str, Tensor]:
     """Everything :mod:`splice.inspection` reports about ``(N, 3, 3)`` sampling matrices.
 
@@ -177,8 +186,7 @@ def describe_matrix(m: Tensor, size: tuple[int, int]) -> dict[str, Tensor]:
     a, t, g = m[:, :2, :2], m[:, :2, 2], m[:, 2, :2]
     jac = a - t.unsqueeze(-1) * g.unsqueeze(-2)
     d = _pixel_scale((h, w))
-    jac_px = d.view(1, 2, 1) * jac / d.view(1, 1, 2)
-    out = describe_linear(jac_px)
+    out = describe_linear(pixel_linear(jac, (h, w)))
     shift_px = t * d
     e3 = torch.zeros(m.shape[0], 3, dtype=torch.float64)
     e3[:, 2] = 1.0

@@ -25,8 +25,8 @@ from .loop import Stepper, ThetaTap
 from .params import frozen_by_model, frozen_modules, frozen_names, grad_reducer, make_optimizer, param_groups, \
     set_modes, set_requires_grad, set_warp_lr
 from .pretrain import pretrain_warps_
-from .recording import (base_predictions, checkpoint, diverged, evaluate_val, finish, record, saved_predictions,
-                        stopped)
+from .recording import (base_predictions, checkpoint, diverged, evaluate_val, finish, record, resume_line,
+                        saved_predictions, stopped)
 from .runfolder import truncate_metrics
 from .schedule import lr_factor
 from .setup import reference_images
@@ -143,7 +143,7 @@ def _restore(run: Run, stepper: Stepper) -> tuple[int, int]:
         run.bar.line(f"resuming {run.run_dir} in warp pre-training at epoch {int(pre['epoch']) + 1}, "
                      f"batch {int(pre['batch'])}, step {int(pre['step'])}")
     else:
-        run.bar.line(f"resuming {run.run_dir} at epoch {start_epoch + 1}, batch {start_batch}, step {run.step}")
+        run.bar.line(resume_line(run.run_dir, run.rec.epochs, start_epoch, start_batch, run.step))
     return start_epoch, start_batch
 
 

@@ -24,7 +24,7 @@ from .runfolder import HASH_ENV, append_metrics, read_metrics, write_run_info, w
 from .state import Run, TuneInterrupted, unwrap
 
 __all__ = ["UPRIGHT_AGREEMENT", "evaluate_val", "record", "checkpoint", "stopped", "announce_stop", "resume_command",
-           "epoch_position",
+           "resume_line", "epoch_position",
            "reference_predictions", "predicted_classes", "base_predictions", "saved_predictions", "agreement",
            "caution_upright", "finish", "nonfinite", "diverged"]
 
@@ -261,6 +261,15 @@ def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None 
         payload.update(extra)
     save_checkpoint(run.run_dir / CHECKPOINT_NAME, payload)
     run.last_good = {"epoch": epoch, "step": run.step}
+
+
+def resume_line(run_dir, epochs: int, epoch: int, batch: int, step: int) -> str:
+    """What a resume says before it goes on: where it continues (``epoch``, 0-based, ``batch``, ``step``), or,
+    for a run whose checkpoint is past its last epoch, that it already finished and its summary follows."""
+    if epoch >= epochs and not batch:
+        return (f"run {run_dir} already finished its {epochs} epoch{'s' if epochs != 1 else ''} (step {step}); "
+                "nothing to resume, its summary follows")
+    return f"resuming {run_dir} at epoch {epoch + 1}, batch {batch}, step {step}"
 
 
 def resume_command(run_dir, world_size: int) -> str:
