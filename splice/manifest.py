@@ -329,7 +329,8 @@ def info_of(model) -> SpliceInfo | None:
     """
     info = getattr(model, "splice_info", None)
     if info is None:
-        info = (getattr(model, "meta", None) or {}).get("splice_info")
+        meta = getattr(model, "meta", None)  # fx's dict; a model of the user's may name a submodule so
+        info = meta.get("splice_info") if isinstance(meta, dict) else None
         if info is not None:
             model.splice_info = info
     return info

@@ -434,3 +434,29 @@ def test_a_model_that_branches_on_its_input_values_is_spliced_at_the_input(tmp_p
     for x in (torch.rand(3, 3, 32, 32), 255 * torch.rand(3, 3, 32, 32)):
         with torch.no_grad():
             assert torch.equal(loaded(x), base(x))
+
+
+def test_a_submodule_named_meta_is_the_users_own():
+    # fx keeps a GraphModule's record in the dict `meta`; a user's model may call a submodule so (image + metadata)
+    class WithMeta(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 4, 3, padding=1)
+            self.meta = nn.Linear(4, 4)
+
+        def forward(self, x):
+            return self.meta(self.conv(x).mean((2, 3)))
+
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    model = WithMeta().eval()
+    with pytest.warns(TraceFallbackWarning, match="'meta' share a name"):
+        spliced = splice.insert(model, at="input", input_shape=(3, 16, 16))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        report = splice.verify(spliced)
+    assert report.passed, report.failed
+    x = torch.rand(2, 3, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(spliced(x), model(x))

@@ -14,6 +14,7 @@ is traced (a fused BatchNorm counting batches) never changes the caller's model.
 
 from __future__ import annotations
 
+import functools
 import inspect
 import warnings
 from collections.abc import Callable, Iterable
@@ -289,6 +290,14 @@ def _counting_norm_classes(root: nn.Module, rule: LeafRule, norms: dict[type, nn
     return {c for c in _updating_classes(root, before) if not rule(c)}
 
 
+@functools.lru_cache(maxsize=1)
+def _graph_module_names() -> frozenset[str]:
+    """What a graph module keeps under its own names: its class's attributes and those its ``__init__`` sets
+    (``meta``, ``shape_env``), which a parameter, buffer or submodule of the same name would clash with."""
+    instance = fx.GraphModule(nn.Module(), fx.Graph())
+    return frozenset(n for n in (*dir(fx.GraphModule), *vars(instance)) if not n.startswith("_"))
+
+
 def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) -> fx.Graph:
     """Trace ``root``, a module tree splice owns, in eval mode; check train mode when it could differ.
 
@@ -304,7 +313,8 @@ def trace_owned(root: nn.Module, rule: LeafRule, n_inputs: int | None = None) ->
     one instance of each such class is traced alone in train mode first, so
     that the tree is traced once with the updating ones as leaves.
     """
-    clash = sorted(n for n in (*root._parameters, *root._buffers, *root._modules) if hasattr(fx.GraphModule, n))
+    own = _graph_module_names()
+    clash = sorted(n for n in (*root._parameters, *root._buffers, *root._modules) if n in own)
     if clash:  # a traced graph module would shadow them (a parameter named 'code' broke fx's own code attribute)
         raise FxFailure(GraphError(f"the model's own {', '.join(map(repr, clash))} share a name with what a traced "
                                    "graph module keeps"), None)
