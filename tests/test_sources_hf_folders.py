@@ -173,3 +173,39 @@ def test_a_folders_input_size_is_what_its_image_processor_makes(tmp_path, kind, 
     made = AutoImageProcessor.from_pretrained(tmp_path)(images=np.zeros((50, 70, 3), np.uint8),
                                                          return_tensors="pt")["pixel_values"]
     assert load_source(str(tmp_path)).input_shape == tuple(made.shape[1:])
+
+
+def test_a_configs_id2label_gives_the_class_order_that_data_must_follow(tmp_path):
+    import warnings
+
+    from PIL import Image
+
+    import splice
+    from splice.errors import DataError
+
+    # transformers' own placeholders (LABEL_0, ...) name nothing
+    model = _resnet(4)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model.save_pretrained(tmp_path / "plain")
+        assert load_source(tmp_path / "plain", input_shape=(3, 16, 16)).class_names is None
+        # the outputs' order, as transformers' pipeline labels them, not sorted by name
+        labels = ["scratch", "dent", "ok", "burr"]
+        model.config.id2label = dict(enumerate(labels))
+        model.config.label2id = {n: i for i, n in enumerate(labels)}
+        model.save_pretrained(tmp_path / "named")
+        assert load_source(tmp_path / "named", input_shape=(3, 16, 16)).class_names == labels
+        spliced = splice.insert(str(tmp_path / "named"), at="input", input_shape=(3, 16, 16))
+    assert list(spliced.splice_info.class_names) == labels
+    assert model.config.id2label == {0: "scratch", 1: "dent", 2: "ok", 3: "burr"}  # transformers' reading agrees
+    # class folders read in sorted order (burr, dent, ok, scratch) would swap outputs 0 and 3: refused, not scored
+    for split in ("train", "val", "test"):
+        for name in labels:
+            (tmp_path / "data" / split / name).mkdir(parents=True)
+            Image.new("RGB", (16, 16), (40, 80, 120)).save(tmp_path / "data" / split / name / "a.png")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(DataError, match=r"trained on classes \['scratch', 'dent', 'ok', 'burr'\] but .* has "
+                                            r"\['burr', 'dent', 'ok', 'scratch'\]"):
+            splice.evaluate(str(tmp_path / "named"), data=str(tmp_path / "data"),
+                            model_options=splice.ModelOptions(input_shape=(3, 16, 16)))

@@ -39,7 +39,7 @@ from .timm import REFUSED_TIMM_KWARGS
 from .weights import unsafe_checkpoint
 
 __all__ = ["build_transformers", "transformers_lists", "code_request", "is_hf_folder", "read_hf_folder",
-           "read_hf_weights", "image_channels", "HF_WEIGHT_FILES", "HFFolder"]
+           "read_hf_weights", "image_channels", "hf_class_names", "HF_WEIGHT_FILES", "HFFolder"]
 
 HF_WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                    "pytorch_model.bin.index.json")
@@ -363,6 +363,20 @@ def _size(value: Any) -> tuple[int, int] | None:
         value = value.get("shortest_edge")
     n = positive_int(value)
     return (n, n) if n else None
+
+
+def hf_class_names(kwargs: Mapping | None) -> list[str] | None:
+    """The class names of a transformers model's ``config`` (in ``kwargs``): its ``id2label`` in output order, or
+    ``None`` when it has none, misses an index, or holds transformers' own placeholders (``LABEL_0``, ...)."""
+    config = (kwargs or {}).get("config")
+    labels = config.get("id2label") if isinstance(config, Mapping) else None
+    if not isinstance(labels, Mapping) or not labels:
+        return None
+    by_index = {str(k): v for k, v in labels.items()}
+    names = [by_index.get(str(i)) for i in range(len(by_index))]
+    if not all(isinstance(n, str) for n in names) or names == [f"LABEL_{i}" for i in range(len(names))]:
+        return None
+    return names
 
 
 def read_hf_folder(path) -> HFFolder:

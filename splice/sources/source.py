@@ -16,7 +16,7 @@ from ..errors import NormalisationWarning, RandomWeightsWarning, SourceError, Sp
 from ..fileio import state_dict_sha256
 from .builders import absolute_spec, build_model, code_sha256, uncompiled
 from .empty import initialisers_skipped
-from .huggingface import image_channels, is_hf_folder, read_hf_folder, read_hf_weights
+from .huggingface import hf_class_names, image_channels, is_hf_folder, read_hf_folder, read_hf_weights
 from .lazy import materialise_lazy_, refuse_lazy
 from .specs import four_numbers_first, parse_input_shapes, parse_kwargs, volumes_not_images
 from .trust import check_spec
@@ -184,7 +184,9 @@ def _built(spec: str, path: Path, kw: dict, shapes: tuple, options: dict, *, war
                   normalisation=meta["normalisation"],
                   declares_normalisation=meta["declares_normalisation"], random_init=weights is None,
                   leaves=tuple(leaves), extra_inputs=tuple(shapes[1:]), code_sha256=code_sha256(spec),
-                  not_loaded=not_loaded)
+                  not_loaded=not_loaded,
+                  # a transformers config's id2label: the order of the outputs, which data and reports must follow
+                  class_names=hf_class_names(kw) if spec.startswith("transformers:") else None)
 
 
 def _state_dtype(state: Mapping[str, torch.Tensor]) -> str:

@@ -225,7 +225,8 @@ def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[
     if src.class_names and classes and not same_classes(src.class_names, classes):
         raise DataError(
             f"the model was trained on classes {src.class_names[:6]} but data {data!r} has {classes[:6]}; "
-            "class folders must match the model's classes (same names, same order)"
+            "class folders must match the model's classes (same names, same order: the folders are read in sorted "
+            "order, so name them to sort as the model's outputs do)"
         )
     return train, val, classes
 
