@@ -236,6 +236,7 @@ def merge_parities(results: list[dict]) -> dict:
             "max_rel": max((r["max_rel"] for r in nums), default=None), "top1": min(top1) if top1 else None,
             "float64_rounding": max(rounding, default=None),
             "shapes_equal": all(r.get("shapes_equal", True) for r in results),
+            "nonfinite": sum(r.get("nonfinite", 0) for r in results),
             "detail": next((r["detail"] for r in results if not r["passed"]), worst["detail"])}
 
 def compare_flat(reference, outputs: list, tol: float) -> dict:
@@ -278,6 +279,7 @@ def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list
         "max_abs_perturbed": perturbed["max_abs"] if perturbed else None,
         "max_rel_perturbed": perturbed["max_rel"] if perturbed else None,
         "tolerance": tol, "batch_sizes": sizes, "perturbed_by": how, "detail": detail,
+        "nonfinite": stored.get("nonfinite", 0),
         "shapes_equal": all(r.get("shapes_equal", True) for r in (stored, perturbed) if r is not None),
         "float64_rounding": max((r["float64_rounding"] for r in (stored, perturbed)
                                  if r is not None and r.get("float64_rounding") is not None), default=None),
