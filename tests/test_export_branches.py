@@ -404,3 +404,49 @@ def test_a_probe_where_torch_answers_nan_judges_nothing():
     assert "all-zero inputs: outside, torch's own output is not finite there" in row.detail
     assert "the graph matched on the probe scaled by 8, 64, 0.125, -1, on uniform [0, 1) inputs and on uniform " \
            "[0, 255) inputs" in row.detail
+
+
+class LightOnly(nn.Module):
+    """Inverts a light photo (every pixel between 0.3 and 1): no probe, scaled or natural, takes that side."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        if bool((x.min() > 0.3) & (x.max() <= 1.0)):
+            x = 1 - x
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+def test_verify_runs_the_graph_on_the_images_it_is_given(tmp_path):
+    import onnxruntime as ort
+    from PIL import Image
+
+    from splice.graph import TraceFallbackWarning
+
+    gen = np.random.default_rng(0)
+    for kind, low, high in (("dark", 0, 60), ("light", 150, 256)):
+        (tmp_path / kind).mkdir()
+        for i in range(3):
+            pixels = gen.integers(low, high, (16, 16, 3), dtype=np.uint8)
+            Image.fromarray(pixels).save(tmp_path / kind / f"{i}.png")
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)
+        spliced = splice.insert(LightOnly(), at="input", input_shape=(3, 16, 16))
+    dark = next(c for c in splice.verify(spliced, onnx=True, images=tmp_path / "dark").checks if c.check == "onnx")
+    assert dark.passed and dark.warning and "the graph matched torch on the 3 image(s) from --images" in dark.detail
+    light = next(c for c in splice.verify(spliced, onnx=True, images=tmp_path / "light").checks if c.check == "onnx")
+    assert not light.passed and light.detail.startswith(
+        "onnxruntime vs torch (opset 17, torchscript, weights fed as inputs): on the 3 image(s) from --images the "
+        "graph differs from torch (as stored: max abs error"), light.detail
+    # the reference: onnxruntime on the graph traced from an N(0,1) probe, against torch on a light image
+    data = export_onnx_bytes(spliced, torch.randn(1, 3, 16, 16))
+    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
+    image = torch.from_numpy(np.array(Image.open(tmp_path / "light" / "0.png"))).permute(2, 0, 1)[None] / 255.0
+    with torch.no_grad():
+        expected = spliced(image).numpy()
+    got = session.run(None, {session.get_inputs()[0].name: image.numpy()})[0]
+    assert np.abs(got - expected).max() > 1e-3 * np.abs(expected).max()

@@ -408,8 +408,8 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     model's output for ``example``, computed when not given) and fed the
     perturbed ones. ``example`` is one batch (a tensor, or a tuple of one
     tensor per model input). Returns the
-    :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``
-    and ``bytes``; raises :class:`SpliceError` when the export fails. Used by
+    :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``,
+    ``bytes`` and ``graph`` (the serialised checking graph); raises :class:`SpliceError` when the export fails. Used by
     ``splice verify --onnx``; ``splice export`` checks the file it ships.
     """
     check_opset(opset, "torchscript")
@@ -445,4 +445,5 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     result = judge_conversions(result, plain, [xs], conversions, lambda batch, within: _parity_with_weight_inputs(
         private_buffers(plain), data, [batch], perturb=False, tol=within, references=None,
         optimise=False, judged=False))
-    return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
+    return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data),
+            "graph": data}
