@@ -461,9 +461,10 @@ def _run(args) -> int:
         warnings.filterwarnings("default", module=r"splice(\.|$)")
         warnings.filterwarnings("default", category=SpliceWarning)
     try:
+        from .errors import debugging
         from .limits import image_pixel_cap
 
-        with image_pixel_cap(getattr(args, "max_image_pixels", None)):
+        with image_pixel_cap(getattr(args, "max_image_pixels", None)), debugging(args.debug):
             return int(args.func(args) or 0)
     except CheckFailed as exc:
         return _failed(args, f"{exc.label}: {exc}", EXIT_CHECK_FAILED)

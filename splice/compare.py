@@ -116,7 +116,7 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
     absolute value (per output, then the worst). ``top1`` is the fraction of
     rows whose argmax agrees, for 2-D classifier-like outputs (else ``None``).
     NaN and Inf values agree only at the same places, with the same values;
-    the errors are those of the finite values.
+    the errors are those of the finite values (``nonfinite`` counts them).
     """
     ref, cand = flatten_outputs(reference), flatten_outputs(candidate)
     if not ref:
@@ -165,7 +165,8 @@ def compare_outputs(reference, candidate, *, tol: float | None = None) -> dict:
         if not compared:
             detail += "; but every output is empty (no detection, say): no value was compared"
     return {"passed": passed, "max_abs": max_abs, "max_rel": max_rel, "top1": agree,
-            "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail, "compared": compared}
+            "tolerance": limit, "shapes_equal": shapes_ok, "detail": detail, "compared": compared,
+            "nonfinite": nonfinite}
 
 
 def map_tensors(out, fn):

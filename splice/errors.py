@@ -8,6 +8,8 @@ do*.
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import difflib
 import os
 import re
@@ -40,6 +42,26 @@ __all__ = [
     "closest",
     "first_line",
 ]
+
+# ``--debug``: what torch logs and prints around its exporters reaches the terminal (see :func:`debugging`)
+_DEBUG = contextvars.ContextVar("splice_debug", default=False)
+
+
+@contextlib.contextmanager
+def debugging(on: bool = True):
+    """For the duration, torch's own logs and prints around an export are shown (the CLI's ``--debug``); by
+    default splice keeps them off the terminal and reports a failure in its one line."""
+    token = _DEBUG.set(bool(on))
+    try:
+        yield
+    finally:
+        _DEBUG.reset(token)
+
+
+def debug_shown() -> bool:
+    """Is :func:`debugging` on?"""
+    return _DEBUG.get()
+
 
 
 class SpliceError(Exception):

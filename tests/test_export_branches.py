@@ -5,6 +5,7 @@ say so. Outside reference: onnxruntime (CPUExecutionProvider) on a bright input.
 from __future__ import annotations
 
 import math
+import re
 import warnings
 
 import numpy as np
@@ -276,3 +277,176 @@ def test_a_miss_on_the_checked_batches_is_told_before_the_scaled_probes():
     assert not judged["passed"] and judged["branch_on_values"]
     assert judged["detail"].startswith("max rel error 0.27 at batch 2, over the tolerance; the model takes a Python "
                                        "branch or number from tensor values at test_export_branches.py:")
+
+
+class InvertsLight(nn.Module):
+    """Light photos are inverted, so that digits come bright on dark: a branch on the mean, which no scaled N(0,1)
+    probe moves from 0. Uniform [0, 1) noise inverted is the same noise: the [0, 255) probe catches it."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        if x.mean() > 0.5:
+            x = 1 - x
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+class NormalisesRaw(nn.Module):
+    """Takes [0, 1) images as well as normalised ones, decided on the values: no N(0,1) probe is non-negative."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        if x.min() >= 0:
+            x = (x - 0.5) / 0.25
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+class MetaIfAny(nn.Module):
+    """Adds a metadata term only when some metadata is given: no scaled N(0,1) probe is all zeros."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+        self.extra = nn.Linear(4, 5)
+
+    def forward(self, x, meta):
+        out = self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+        if meta.abs().sum() > 0:
+            out = out + self.extra(meta)
+        return out
+
+
+@pytest.mark.parametrize("net, shape, probe, tol", [
+    (NormalisesRaw, (3, 16, 16), "uniform [0, 1) inputs", 0.01),
+    (InvertsLight, (3, 16, 16), "uniform [0, 255) inputs", 0.25),
+    (MetaIfAny, [(3, 16, 16), (4,)], "all-zero inputs", 0.01),
+])
+def test_branches_that_only_natural_inputs_take_are_probed(net, shape, probe, tol, tmp_path):
+    import onnxruntime as ort
+
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)  # a branch in the forward itself: hooks at 'input'
+        spliced = splice.insert(net(), at="input", input_shape=shape)
+    row = next(c for c in splice.verify(spliced, onnx=True).checks if c.check == "onnx")
+    assert not row.passed and f"on {probe}: " in row.detail and f"(tolerance {tol:g})" in row.detail, row.detail
+    target = tmp_path / "natural.onnx"
+    with pytest.raises(CheckFailed, match=rf"on {re.escape(probe)}: .*from tensor values"):
+        splice.export(spliced, onnx=target)
+    assert not target.exists()
+    # the reference: onnxruntime on the graph the tracer writes from an N(0,1) probe, against torch on ordinary
+    # inputs (a light image; no metadata), which take the branch's other side
+    shapes = [shape] if isinstance(shape, tuple) else shape
+    xs = tuple(torch.randn(2, *s) for s in shapes)
+    data = export_onnx_bytes(spliced, xs, dynamic_batch=True)
+    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
+    ordinary = (0.5 + 0.5 * torch.rand(2, *shapes[0]),) + tuple(torch.zeros(2, *s) for s in shapes[1:])
+    with torch.no_grad():
+        expected = spliced(*ordinary).numpy()
+    got = session.run(None, {i.name: x.numpy() for i, x in zip(session.get_inputs(), ordinary)})[0]
+    assert np.abs(got - expected).max() > 0.05 * np.abs(expected).max()
+
+
+def test_the_probes_are_named_and_drawn_without_the_callers_generators():
+    from splice.exporting.branches import value_regimes
+
+    x = torch.randn(2, 3, 4, 4)
+    state = torch.get_rng_state()
+    probes = value_regimes((x,))
+    assert torch.equal(torch.get_rng_state(), state)
+    assert [(name, tol) for name, _, tol in probes] == [
+        ("the probe scaled by 8", 0.25), ("the probe scaled by 64", 0.25), ("the probe scaled by 0.125", 0.01),
+        ("the probe scaled by -1", 0.01), ("uniform [0, 1) inputs", 0.01), ("uniform [0, 255) inputs", 0.25),
+        ("all-zero inputs", 0.01)]
+    unit, wide, zero = (batch[0] for _, batch, _ in probes[4:])
+    assert torch.equal(probes[3][1][0], -x) and not zero.any() and zero.shape == x.shape
+    assert 0 <= float(unit.min()) and float(unit.max()) < 1 and 0.4 < float(unit.mean()) < 0.6
+    assert 0 <= float(wide.min()) and float(wide.max()) < 255 and float(wide.max()) > 200
+
+
+class Standardised(nn.Module):
+    """Divides by the std (NaN on all-zero inputs, in torch as in the graph), then clips on the values: a branch
+    no probe takes."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        x = (x - x.mean()) / x.std()
+        if x.amax() > 1e4:
+            x = x.clamp(max=1e4)
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+def test_a_probe_where_torch_answers_nan_judges_nothing():
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)
+        spliced = splice.insert(Standardised(), at="input", input_shape=(3, 16, 16))
+    with torch.no_grad():  # the reference: torch itself answers NaN on zeros (0 / 0)
+        assert torch.isnan(spliced(torch.zeros(1, 3, 16, 16))).all()
+    row = next(c for c in splice.verify(spliced, onnx=True).checks if c.check == "onnx")
+    assert row.passed and row.warning and "not proven for other inputs" in row.detail, row.detail
+    assert "all-zero inputs: outside, torch's own output is not finite there" in row.detail
+    assert "the graph matched on the probe scaled by 8, 64, 0.125, -1, on uniform [0, 1) inputs and on uniform " \
+           "[0, 255) inputs" in row.detail
+
+
+class LightOnly(nn.Module):
+    """Inverts a light photo (every pixel between 0.3 and 1): no probe, scaled or natural, takes that side."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 5)
+
+    def forward(self, x):
+        if bool((x.min() > 0.3) & (x.max() <= 1.0)):
+            x = 1 - x
+        return self.fc(F.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+def test_verify_runs_the_graph_on_the_images_it_is_given(tmp_path):
+    import onnxruntime as ort
+    from PIL import Image
+
+    from splice.graph import TraceFallbackWarning
+
+    gen = np.random.default_rng(0)
+    for kind, low, high in (("dark", 0, 60), ("light", 150, 256)):
+        (tmp_path / kind).mkdir()
+        for i in range(3):
+            pixels = gen.integers(low, high, (16, 16, 3), dtype=np.uint8)
+            Image.fromarray(pixels).save(tmp_path / kind / f"{i}.png")
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)
+        spliced = splice.insert(LightOnly(), at="input", input_shape=(3, 16, 16))
+    dark = next(c for c in splice.verify(spliced, onnx=True, images=tmp_path / "dark").checks if c.check == "onnx")
+    assert dark.passed and dark.warning and "the graph matched torch on the 3 image(s) from --images" in dark.detail
+    light = next(c for c in splice.verify(spliced, onnx=True, images=tmp_path / "light").checks if c.check == "onnx")
+    assert not light.passed and light.detail.startswith(
+        "onnxruntime vs torch (opset 17, torchscript, weights fed as inputs): on the 3 image(s) from --images the "
+        "graph differs from torch (as stored: max abs error"), light.detail
+    # the reference: onnxruntime on the graph traced from an N(0,1) probe, against torch on a light image
+    data = export_onnx_bytes(spliced, torch.randn(1, 3, 16, 16))
+    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
+    image = torch.from_numpy(np.array(Image.open(tmp_path / "light" / "0.png"))).permute(2, 0, 1)[None] / 255.0
+    with torch.no_grad():
+        expected = spliced(image).numpy()
+    got = session.run(None, {session.get_inputs()[0].name: image.numpy()})[0]
+    assert np.abs(got - expected).max() > 1e-3 * np.abs(expected).max()

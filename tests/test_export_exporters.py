@@ -246,3 +246,58 @@ def test_a_parametrized_model_exports_with_the_weights_it_computes(tmp_path):
     after = spliced.state_dict()
     assert after.keys() == before.keys() and all(torch.equal(before[k], after[k]) for k in before)
     assert torch.nn.utils.parametrize.is_parametrized(spliced.get_submodule("0"))  # the caller's model keeps them
+
+
+class _LightInverted(torch.nn.Module):
+    """Inverts light photos: a branch on tensor values, which torch.export (the dynamo exporter) cannot follow."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = torch.nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = torch.nn.Linear(4, 5)
+
+    def forward(self, x):
+        if x.mean() > 0.5:
+            x = 1 - x
+        return self.fc(torch.nn.functional.adaptive_avg_pool2d(torch.relu(self.conv(x)), 1).flatten(1))
+
+
+@pytest.mark.slow  # the dynamo exporter takes seconds
+def test_a_failed_dynamo_export_is_one_line_naming_the_branch(tmp_path, capfd):
+    # torch's symbolic-shapes logger and torch.export printed the guard and whole FX graphs (65 KB) to stderr
+    # before splice's line; the user's source line comes from torch.export's own error
+    import inspect
+
+    from splice.cli import main
+    from splice.graph import TraceFallbackWarning
+
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TraceFallbackWarning)  # a branch in the forward itself: hooks at 'input'
+        spliced = splice.insert(_LightInverted().eval(), at="input", input_shape=(3, 16, 16))
+    folder = splice.save(spliced, tmp_path / "light", source=f"{__file__}:_LightInverted")
+    capfd.readouterr()
+    args = ["export", str(folder), "--onnx", str(tmp_path / "x.onnx"), "--exporter", "dynamo", "--opset", "18",
+            "--trust-code"]
+    assert main(args) == 2
+    out, err = capfd.readouterr()
+    line = inspect.getsourcelines(_LightInverted.forward)[1] + 1
+    assert out == "" and err.count("\n") == 1, err[:2000]
+    assert err.startswith("splice export: error: ONNX export (dynamo, opset 18) failed: torch.export cannot follow")
+    assert f"at test_export_exporters.py:{line} (`if x.mean() > 0.5:`)" in err and "torch.cond" in err
+    assert main([*args, "--debug"]) == 2  # --debug shows torch's own output and the traceback
+    assert capfd.readouterr().err.count("\n") > 20
+
+
+@pytest.mark.slow  # torch.export takes seconds
+def test_a_pt2_export_that_stops_at_a_branch_on_values_names_it(tmp_path, capfd):
+    import inspect
+
+    from splice.exporting.pt2 import export_pt2_bytes
+
+    with pytest.raises(SpliceError, match=r"tensor values at test_export_exporters\.py:(\d+) \(`if x\.mean\(\) > 0\.5:`\)"
+                                          r".*torch\.cond") as caught:
+        export_pt2_bytes(_LightInverted().eval(), torch.randn(1, 3, 16, 16))
+    assert str(inspect.getsourcelines(_LightInverted.forward)[1] + 1) in str(caught.value)
+    out, err = capfd.readouterr()
+    assert out == "" and err == "", err[:2000]  # torch's guard log and graph dumps stay off the terminal

@@ -6,6 +6,7 @@ import contextlib
 import copy
 import io
 import os
+import re
 import warnings
 from pathlib import Path
 
@@ -15,7 +16,7 @@ from torch import nn
 from ..compare import flatten_outputs, tensors_out
 from ..copies import private_buffers
 from ..errors import SpliceError, first_line
-from ..graph.exported import export_quietly
+from ..graph.exported import export_quietly, quiet_export
 from .weights import WeightsAsInputs
 
 __all__ = ["MIN_OPSET", "DYNAMO_MIN_OPSET", "EXPORTERS", "check_opset", "export_onnx_bytes", "as_inputs",
@@ -216,10 +217,38 @@ def exporting(model: nn.Module, exporter: str, opset: int, conversions: list[str
         other = (f"--exporter dynamo --opset {max(opset, DYNAMO_MIN_OPSET)} (Python: exporter='dynamo', "
                  f"opset={max(opset, DYNAMO_MIN_OPSET)})" if exporter == "torchscript"
                  else "--exporter torchscript (Python: exporter='torchscript')")
+        guard = data_dependent_site(exc)
+        if guard is not None:
+            raise SpliceError(
+                f"ONNX export ({exporter}, opset {opset}) failed: torch.export cannot follow a Python branch or "
+                f"number taken from tensor values{guard}; compute it with tensors (torch.where, or torch.cond for a "
+                f"branch) so that the graph carries it, or try {other}") from exc
         raise SpliceError(
             f"ONNX export ({exporter}, opset {opset}) failed: {type(exc).__name__}: {first}; "
             f"try {other}, or another --opset"
         ) from exc
+
+
+# where torch.export's error shows the user's line that raised it
+_RAISED_AT = re.compile(r'The following call raised this error:\s*\n\s*File "([^"]+)", line (\d+), in [^\n]*\n'
+                        r'[ \t]*([^\n]*)')
+
+
+def data_dependent_site(exc: BaseException) -> str | None:
+    """``None`` unless ``exc`` (or what caused it) is torch.export stopping at a guard on tensor values; then
+    " at FILE:LINE (`code`)" when the error names the user's line, else ""."""
+    seen, found, text = exc, False, ""
+    while seen is not None:
+        found = found or type(seen).__name__ in _DATA_DEPENDENT or "data-dependent" in str(seen)
+        text += str(seen) + "\n"
+        seen = seen.__cause__ or seen.__context__
+    if not found:
+        return None
+    match = _RAISED_AT.search(text)
+    if match is None:
+        return ""
+    path, line, code = match.groups()
+    return f" at {os.path.basename(path)}:{line} (`{code.strip()[:80]}`)"
 
 @contextlib.contextmanager
 def _stdout_to_nowhere():
@@ -359,9 +388,10 @@ def export_onnx_bytes(model: nn.Module, example, *, opset: int = 17, dynamic_bat
             dims = (dims,)  # TensorsOnly's forward takes *args: torch.export sees one tuple of inputs
         # onnx's down-converter needs a reduction's axes as constants, which only the optimiser's folding makes
         # of the axes torch.export computes: a graph to be converted below opset 18 is always optimised
-        program = torch.onnx.export(target, xs, dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
-                                    input_names=inputs, output_names=names, dynamic_shapes=dims,
-                                    optimize=fold_constants or opset < DYNAMO_MIN_OPSET, verbose=False)
+        with quiet_export():  # torch's guards, graphs and steps are not the user's to read (shown with --debug)
+            program = torch.onnx.export(target, xs, dynamo=True, opset_version=max(opset, DYNAMO_MIN_OPSET),
+                                        input_names=inputs, output_names=names, dynamic_shapes=dims,
+                                        optimize=fold_constants or opset < DYNAMO_MIN_OPSET, verbose=False)
         data = program.model_proto.SerializeToString()
         return _downgrade(data, opset) if opset < DYNAMO_MIN_OPSET else data
 

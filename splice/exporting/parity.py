@@ -236,6 +236,7 @@ def merge_parities(results: list[dict]) -> dict:
             "max_rel": max((r["max_rel"] for r in nums), default=None), "top1": min(top1) if top1 else None,
             "float64_rounding": max(rounding, default=None),
             "shapes_equal": all(r.get("shapes_equal", True) for r in results),
+            "nonfinite": sum(r.get("nonfinite", 0) for r in results),
             "detail": next((r["detail"] for r in results if not r["passed"]), worst["detail"])}
 
 def compare_flat(reference, outputs: list, tol: float) -> dict:
@@ -278,6 +279,7 @@ def parity_summary(stored: dict, perturbed: dict | None, tol: float, sizes: list
         "max_abs_perturbed": perturbed["max_abs"] if perturbed else None,
         "max_rel_perturbed": perturbed["max_rel"] if perturbed else None,
         "tolerance": tol, "batch_sizes": sizes, "perturbed_by": how, "detail": detail,
+        "nonfinite": stored.get("nonfinite", 0),
         "shapes_equal": all(r.get("shapes_equal", True) for r in (stored, perturbed) if r is not None),
         "float64_rounding": max((r["float64_rounding"] for r in (stored, perturbed)
                                  if r is not None and r.get("float64_rounding") is not None), default=None),
@@ -406,8 +408,8 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     model's output for ``example``, computed when not given) and fed the
     perturbed ones. ``example`` is one batch (a tensor, or a tuple of one
     tensor per model input). Returns the
-    :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``
-    and ``bytes``; raises :class:`SpliceError` when the export fails. Used by
+    :func:`onnx_parity` summary plus ``export_seconds``, ``check_seconds``,
+    ``bytes`` and ``graph`` (the serialised checking graph); raises :class:`SpliceError` when the export fails. Used by
     ``splice verify --onnx``; ``splice export`` checks the file it ships.
     """
     check_opset(opset, "torchscript")
@@ -443,4 +445,5 @@ def check_onnx_graph(model: nn.Module, example, *, opset: int = 17, reference=No
     result = judge_conversions(result, plain, [xs], conversions, lambda batch, within: _parity_with_weight_inputs(
         private_buffers(plain), data, [batch], perturb=False, tol=within, references=None,
         optimise=False, judged=False))
-    return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data)}
+    return {**result, "export_seconds": seconds, "check_seconds": time.perf_counter() - start, "bytes": len(data),
+            "graph": data}

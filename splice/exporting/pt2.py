@@ -14,7 +14,8 @@ from torch import nn
 from ..compare import flatten_outputs
 from ..copies import private_buffers
 from ..errors import SpliceError, SpliceWarning, first_line
-from .onnx import as_inputs
+from ..graph.exported import quiet_export
+from .onnx import as_inputs, data_dependent_site
 from .parity import (
     as_batches,
     compare_flat,
@@ -41,7 +42,8 @@ class _FlatOutputs(nn.Module):
 
 
 def _program_bytes(model: nn.Module, xs: tuple, dims) -> bytes:
-    program = torch.export.export(model, xs, dynamic_shapes=dims)
+    with quiet_export():  # torch's guards and graphs are not the user's to read (shown with --debug)
+        program = torch.export.export(model, xs, dynamic_shapes=dims)
     buf = io.BytesIO()
     torch.export.save(program, buf)
     return buf.getvalue()
@@ -66,6 +68,11 @@ def export_pt2_bytes(model: nn.Module, example, *, dynamic_batch: bool = False) 
             # the wrapper takes ``*args``, whose dynamic shapes torch.export reads as one tuple
             data = _program_bytes(_FlatOutputs(model), xs, None if dims is None else (dims,))
         except Exception:
+            guard = data_dependent_site(exc)
+            if guard is not None:
+                raise SpliceError(f"torch.export cannot follow a Python branch or number taken from tensor values"
+                                  f"{guard}; compute it with tensors (torch.where, or torch.cond for a branch) so "
+                                  "that the program carries it, or export ONNX with --exporter torchscript") from exc
             raise SpliceError(f"torch.export failed: {first}") from exc
     warnings.warn(f"torch.export could not keep the model's output structure ({first}); "
                   "the program returns its tensors as a flat tuple, in the order 'splice verify' names them",

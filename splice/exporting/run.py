@@ -251,7 +251,8 @@ def _export_loaded(model, what: str, onnx, pt2, *, opset: int, dynamic_batch: bo
             if result.get("unproven"):
                 warnings.warn(f"the ONNX graph of {what} holds Python values the tracer fixed at "
                               f"{site_names(result.get('tracer_conversions', []))}; it matched torch on the probes, "
-                              "but is not proven for every input: compare it on your own images", SpliceWarning,
+                              "but is not proven for every input: check it on your own images with "
+                              "'splice verify DIR --onnx --images FOLDER'", SpliceWarning,
                               stacklevel=3)
         path, digest = _keep(target, data)
         done.append({"path": str(path), "format": fmt, "sha256": digest, "seconds": seconds,

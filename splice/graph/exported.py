@@ -29,6 +29,7 @@ import torch
 from torch import nn
 
 from ..compare import flatten_outputs, map_tensors
+from ..errors import debug_shown
 from ..copies import private_buffers
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, layouts_of, module_stem, path_strides, site_name
@@ -37,8 +38,10 @@ from .strides import call_stride
 
 __all__ = ["export_quietly"]
 
-# the loggers that write a failed torch.export's guard on the terminal (the error says enough)
-_EXPORT_LOGGERS = ("torch.fx.experimental.symbolic_shapes", "torch.export", "torch._export")
+# the loggers that write a failed torch.export's guard, and the dynamo exporter's steps, on the terminal (the error
+# says enough)
+_EXPORT_LOGGERS = ("torch.fx.experimental.symbolic_shapes", "torch.export", "torch._export", "torch._dynamo",
+                   "torch.onnx")
 
 
 @contextlib.contextmanager
@@ -56,15 +59,26 @@ def _loggers_quiet(names: tuple[str, ...]):
             lg.setLevel(level)
 
 
-def export_quietly(twin: nn.Module, args: tuple, kwargs: dict | None = None):
-    """``torch.export.export(twin, args, kwargs, strict=False)`` with nothing on the terminal; raises what it raises.
-
-    torch.export's notes on specialised shapes are warnings; on a forward it cannot export it logs the guard and
-    prints the graph so far to stderr itself: the reason reaches the user as one line in splice's error instead.
-    ``twin`` is splice's own copy (the export runs its forward).
-    """
+@contextlib.contextmanager
+def quiet_export(*, always: bool = False):
+    """torch.export's (and the dynamo ONNX exporter's) warnings, logs and what they print to stderr kept off the
+    terminal: on a forward it cannot export torch logs the guard and prints the graph so far, and the reason
+    reaches the user as one line in splice's error instead. Shown under ``--debug`` (:func:`~splice.errors.debugging`)
+    unless ``always``."""
+    if debug_shown() and not always:
+        yield
+        return
     with warnings.catch_warnings(), _loggers_quiet(_EXPORT_LOGGERS), contextlib.redirect_stderr(io.StringIO()):
         warnings.simplefilter("ignore")
+        yield
+
+
+def export_quietly(twin: nn.Module, args: tuple, kwargs: dict | None = None):
+    """``torch.export.export(twin, args, kwargs, strict=False)`` with nothing on the terminal (:func:`quiet_export`,
+    even under ``--debug``: splice tries it to learn about the model); raises what it raises. ``twin`` is splice's
+    own copy (the export runs its forward).
+    """
+    with quiet_export(always=True):
         return torch.export.export(twin, args, kwargs or {}, strict=False)
 
 _CONV_OPS = frozenset({"conv2d", "convolution", "_convolution", "conv_transpose2d", "cudnn_convolution"})

@@ -133,9 +133,26 @@ def warp_head_params(warps) -> dict[str, dict[str, list]]:
                      "upstream": [p for p in warp.parameters() if id(p) not in ids]}
     return out
 
+def _on_images(model: nn.Module, result: dict, images: torch.Tensor) -> dict:
+    """``result`` judged again on the user's ``images``: the exported graph (fed the model's weights when it takes
+    them) against torch, one image at a time (the checking graph has a batch of one), within the parity tolerance.
+    A branch the tracer fixed on the probe may go the other way on real images."""
+    n = int(images.shape[0])
+    try:
+        found = onnx_parity(model, result["graph"], [images[i:i + 1].float() for i in range(n)], perturb=False)
+    except CheckFailed as exc:
+        found = {"passed": False, "detail": str(exc)}
+    if found["passed"]:
+        return {**result, "detail": f"{result['detail']}; the graph matched torch on the {n} image(s) from --images"}
+    return {**result, "passed": False, "unproven": False,
+            "detail": f"on the {n} image(s) from --images the graph differs from torch ({found['detail']}); "
+                      f"{result['detail']}"}
+
+
 def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int, exporter: str,
-              n_outputs: int | None, reference=None) -> CheckResult:
-    """``example`` holds one tensor per model input."""
+              n_outputs: int | None, reference=None, images: torch.Tensor | None = None) -> CheckResult:
+    """``example`` holds one tensor per model input; the graph is also run on ``images`` (``verify --images``, one
+    input), which must match torch as the probe does (:func:`_on_images`)."""
     twin = model if example[0].dtype == torch.float32 else tree_copy(model).float()
     x = tuple(t.float() for t in example)
     if twin is not model:
@@ -171,7 +188,9 @@ def onnx_row(model: nn.Module, example: tuple[torch.Tensor, ...], *, opset: int,
             return CheckResult("onnx", False, {"opset": opset, "exporter": exporter, "export_seconds": seconds},
                                str(exc), "export failed")
         result = {**parity, "export_seconds": seconds, "check_seconds": time.perf_counter() - start,
-                  "bytes": len(data)}
+                  "bytes": len(data), "graph": data}
+    if images is not None and result["passed"]:
+        result = _on_images(twin, result, images)
     seconds = result["export_seconds"]
     numbers = {"opset": opset, "exporter": exporter, "weights_as_inputs": fed,
                **{k: result[k] for k in ("export_seconds", "check_seconds", "bytes", "max_abs", "max_rel",

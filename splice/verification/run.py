@@ -288,7 +288,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
             # from parameters (attention biases indexed once in eval mode) left them requiring grad in the probed
             # twin after the gradient check, and the exporter refuses those
             rows.append(_with_moving_state(onnx_row(unrun, example, opset=opts.opset, exporter=opts.exporter,
-                                                    n_outputs=fwd.n_outputs, reference=fwd.first_sample),
+                                                    n_outputs=fwd.n_outputs, reference=fwd.first_sample,
+                                                    images=images),
                                            sorted(self_updated)))
             lap("onnx")
     finally:
