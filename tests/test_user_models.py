@@ -460,3 +460,26 @@ def test_a_submodule_named_meta_is_the_users_own():
     x = torch.rand(2, 3, 16, 16)
     with torch.no_grad():
         assert torch.equal(spliced(x), model(x))
+
+
+def test_a_forward_that_takes_keywords_as_kwargs_keeps_them():
+    # a traced graph would accept shift= into **extra and drop it; hooks run the model's own forward
+    from splice.graph import TraceFallbackWarning
+
+    class Options(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv = nn.Conv2d(3, 4, 3, padding=1)
+
+        def forward(self, x, **extra):
+            return self.conv(x).mean((2, 3)) + extra.get("shift", 0.0)
+
+    torch.manual_seed(0)
+    model = Options().eval()
+    with pytest.warns(TraceFallbackWarning, match=r"takes keywords as \*\*extra"):
+        spliced = splice.insert(model, at="input", input_shape=(3, 16, 16))
+    assert spliced.splice_info.mechanism == "hooks"
+    x = torch.rand(2, 3, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(spliced(x, shift=1.0), model(x, shift=1.0))
+        assert torch.equal(spliced(x=x), model(x))

@@ -172,8 +172,9 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
                 changed: set[type] | None = None) -> fx.Graph:
     """One fx trace of ``root``. What it changed on a module (an update that ran once, while tracing) is put back,
     and the module's class goes to ``changed`` (a leaf); a change on the root, a draw from Python's or NumPy's
-    generator, hooks on the root, a ``*args`` forward or code with a backward of its own (activation checkpointing, a
-    custom autograd Function: the graph would drop that backward) fail it: hooks then run the real forward."""
+    generator, hooks on the root, a ``*args`` or ``**kwargs`` forward or code with a backward of its own (activation
+    checkpointing, a custom autograd Function: the graph would drop that backward) fail it: hooks then run the real
+    forward."""
     import random
 
     import numpy as np
@@ -215,6 +216,10 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
     first = next((n for n in graph.nodes if n.op == "placeholder"), None)
     if whole and first is not None and str(first.target).startswith("*"):  # a tuple, not an image to warp
         raise FxFailure(GraphError(f"the forward takes its inputs as {first.target}, not as named tensors"), None)
+    extra = next((n.target for n in graph.nodes if n.op == "placeholder" and str(n.target).startswith("**")), None)
+    if whole and extra is not None:  # a keyword the graph does not know lands there, and nothing reads it
+        raise FxFailure(GraphError(f"the forward takes keywords as {extra}, which a traced graph would accept and "
+                                   "drop (an option such as labels= or return_dict= would be ignored)"), None)
     return graph
 
 
