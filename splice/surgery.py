@@ -26,7 +26,7 @@ from torch import fx, nn
 
 from .compare import compare_outputs
 from .copies import private_buffers, same_draws, tree_copy
-from .errors import CheckFailed, PointError, SourceError, SpliceWarning, suggest
+from .errors import CheckFailed, PointError, SourceError, SpliceWarning, first_line, suggest
 from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info, info_of, remember_base
 from .sources import MODULE_SPEC
@@ -156,7 +156,12 @@ def quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float
     with torch.no_grad():
         # each model gets its own copy of the batch: a forward may normalise its input in place
         with same_draws():
-            base_out = base_twin(*[x.clone() for x in xs])
+            try:
+                base_out = base_twin(*[x.clone() for x in xs])
+            except Exception as exc:  # the model itself, before any warp: the shape or the model is wrong
+                shapes = ", ".join("x".join(map(str, s)) for s in input_shapes)
+                raise SourceError(f"{type(base).__name__} fails on a batch of two {shapes} inputs before any warp "
+                                  f"({type(exc).__name__}: {first_line(exc)}); check --input-shape") from exc
         with same_draws():  # a model that samples in eval mode (Monte Carlo dropout) draws the same masks
             spliced_out = spliced_twin(*[x.clone() for x in xs])
         return compare_outputs(base_out, spliced_out, tol=tol)

@@ -409,6 +409,14 @@ def test_a_model_that_branches_on_its_input_values_is_spliced_at_the_input(tmp_p
                                                   r"forward of _RescalesItsInput itself at test_user_models\.py:\d+ "):
         spliced = splice.insert(model, at="recommended", input_shape=(3, 32, 32))
     assert [p.name for p in spliced.splice_info.points] == ["input"]
+    # the meta run stopped before any layer could check the shape: a real run does, and says so in one line
+    from splice.errors import GraphError
+
+    with pytest.raises(GraphError, match=r"_RescalesItsInput fails on inputs of shape \(C, H, W\) = \(1, 32, 32\) "
+                                         r"\(RuntimeError: .*channels.*\); check --input-shape"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            splice.points(model, (1, 32, 32))
     # both branches, through the warp at the identity: the base's own outputs (a pre-hook on the root, the
     # model's forward itself untouched)
     for x in (torch.rand(2, 3, 32, 32), 255 * torch.rand(2, 3, 32, 32)):

@@ -265,10 +265,11 @@ def checkpoint(run: Run, stepper, *, epoch: int, batch: int, extra: dict | None 
 
 def resume_line(run_dir, epochs: int, epoch: int, batch: int, step: int) -> str:
     """What a resume says before it goes on: where it continues (``epoch``, 0-based, ``batch``, ``step``), or,
-    for a run whose checkpoint is past its last epoch, that it already finished and its summary follows."""
+    for a run whose checkpoint is past its last epoch, that it already finished (its summary is returned as a run's
+    is, and printed unless quiet)."""
     if epoch >= epochs and not batch:
         return (f"run {run_dir} already finished its {epochs} epoch{'s' if epochs != 1 else ''} (step {step}); "
-                "nothing to resume, its summary follows")
+                "nothing to resume")
     return f"resuming {run_dir} at epoch {epoch + 1}, batch {batch}, step {step}"
 
 
