@@ -113,6 +113,9 @@ class _EnterHook:
             images = kwargs[self.keyword]
         else:
             images = None
+        listed = _listed_images(images)  # a list of (C, H, W) images, as a detector takes them
+        if listed is not None:
+            images = listed
         if not isinstance(images, torch.Tensor):
             if self.warp is not None:  # running on without the warp would look like a working splice
                 raise RuntimeError(f"splice: the warp at 'input' of {type(module).__name__} found no image tensor "
@@ -127,8 +130,25 @@ class _EnterHook:
         out = warp(images) if self.loc is None else warp(images, st.seen[self.loc])
         if self.scope.loc_warped:  # an older hooks folder, tuned with heads that read the warped input
             st.seen["input"] = out
+        if listed is not None:  # handed back as they came: a list (or tuple) of images
+            given = args[0] if args else kwargs[self.keyword]
+            out = type(given)(out.unbind(0)) if isinstance(given, tuple) else list(out.unbind(0))
         # seen keeps the unwarped input: a localisation head reads it, as under fx
         return ((out, *args[1:]), kwargs) if args else (args, {**kwargs, self.keyword: out})
+
+
+def _listed_images(value) -> torch.Tensor | None:
+    """A list or tuple of (C, H, W) image tensors stacked into one batch; ``None`` for anything else. Images of
+    several sizes are refused: the warp at the input was made for one."""
+    if not (isinstance(value, (list, tuple)) and value
+            and all(isinstance(t, torch.Tensor) and t.dim() == 3 for t in value)):
+        return None
+    sizes = sorted({tuple(t.shape) for t in value})
+    if len(sizes) > 1:
+        raise RuntimeError(f"splice: the warp at 'input' takes images of one size, and this call passes "
+                           f"{len(sizes)} ({', '.join('x'.join(map(str, s)) for s in sizes[:3])}); resize them to "
+                           "the spliced input shape first")
+    return torch.stack(list(value))
 
 
 class _ExitHook:

@@ -521,3 +521,32 @@ def test_images_passed_by_keyword_go_through_the_input_warp():
     with pytest.raises(RuntimeError, match=r"the warp at 'input' of _Hooked found no image tensor in this call "
                                            r"\(first argument or x=\)"):
         spliced(images=x)
+
+
+class _TakesAList(nn.Module):
+    """Images as a list of (C, H, W) tensors, as torchvision's detectors take them, and a shape test fx cannot
+    trace."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+
+    def forward(self, images):
+        x = torch.stack(list(images)) if isinstance(images, (list, tuple)) else images
+        if x.shape[-1] < 8:
+            raise ValueError("too small")
+        return self.conv(x).mean((2, 3))
+
+
+def test_a_list_of_images_goes_through_the_input_warp():
+    torch.manual_seed(0)
+    model = _TakesAList().eval()
+    spliced = _quiet_insert(model, at="input", input_shape=(3, 16, 16)).eval()
+    perturb_warps_(spliced, scale=0.3)
+    x = torch.rand(2, 3, 16, 16)
+    with torch.no_grad():
+        batch = spliced(x)
+        assert (batch - model(x)).abs().max() > 1e-3  # warped
+        assert torch.equal(spliced(list(x)), batch) and torch.equal(spliced(tuple(x)), batch)
+    with pytest.raises(RuntimeError, match=r"takes images of one size, and this call passes 2 \(3x16x16, 3x20x20\)"):
+        spliced([x[0], torch.rand(3, 20, 20)])
