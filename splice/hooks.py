@@ -113,9 +113,11 @@ class _EnterHook:
             images = kwargs[self.keyword]
         else:
             images = None
-        listed = _listed_images(images)  # a list of (C, H, W) images, as a detector takes them
+        listed = _listed_images(images) if self.warp is not None else None  # a list of (C, H, W), as a detector's
         if listed is not None:
             images = listed
+        elif _all_images(images):  # no warp to feed: the images are only counted, for the batch guard
+            st.batch = len(images)
         if not isinstance(images, torch.Tensor):
             if self.warp is not None:  # running on without the warp would look like a working splice
                 raise RuntimeError(f"splice: the warp at 'input' of {type(module).__name__} found no image tensor "
@@ -137,11 +139,16 @@ class _EnterHook:
         return ((out, *args[1:]), kwargs) if args else (args, {**kwargs, self.keyword: out})
 
 
+def _all_images(value) -> bool:
+    """Whether ``value`` is a non-empty list or tuple of (C, H, W) tensors."""
+    return isinstance(value, (list, tuple)) and bool(value) and all(
+        isinstance(t, torch.Tensor) and t.dim() == 3 for t in value)
+
+
 def _listed_images(value) -> torch.Tensor | None:
     """A list or tuple of (C, H, W) image tensors stacked into one batch; ``None`` for anything else. Images of
     several sizes are refused: the warp at the input was made for one."""
-    if not (isinstance(value, (list, tuple)) and value
-            and all(isinstance(t, torch.Tensor) and t.dim() == 3 for t in value)):
+    if not _all_images(value):
         return None
     sizes = sorted({tuple(t.shape) for t in value})
     if len(sizes) > 1:

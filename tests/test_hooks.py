@@ -532,6 +532,8 @@ class _TakesAList(nn.Module):
         self.conv = nn.Conv2d(3, 4, 3, padding=1)
 
     def forward(self, images):
+        if isinstance(images, (list, tuple)):  # each resized to 16x16, as a detector's transform does
+            images = [nn.functional.interpolate(t[None], size=(16, 16), mode="bilinear")[0] for t in images]
         x = torch.stack(list(images)) if isinstance(images, (list, tuple)) else images
         if x.shape[-1] < 8:
             raise ValueError("too small")
@@ -550,3 +552,8 @@ def test_a_list_of_images_goes_through_the_input_warp():
         assert torch.equal(spliced(list(x)), batch) and torch.equal(spliced(tuple(x)), batch)
     with pytest.raises(RuntimeError, match=r"takes images of one size, and this call passes 2 \(3x16x16, 3x20x20\)"):
         spliced([x[0], torch.rand(3, 20, 20)])
+    # without a warp at the input, a list of several sizes is the model's business (a detector resizes them)
+    inner = _quiet_insert(model, at="conv", input_shape=(3, 16, 16)).eval()
+    images = [torch.rand(3, 16, 16), torch.rand(3, 20, 24)]
+    with torch.no_grad():
+        assert torch.equal(inner(images), model(images))

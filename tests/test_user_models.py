@@ -409,14 +409,27 @@ def test_a_model_that_branches_on_its_input_values_is_spliced_at_the_input(tmp_p
                                                   r"forward of _RescalesItsInput itself at test_user_models\.py:\d+ "):
         spliced = splice.insert(model, at="recommended", input_shape=(3, 32, 32))
     assert [p.name for p in spliced.splice_info.points] == ["input"]
-    # the meta run stopped before any layer could check the shape: a real run does, and says so in one line
-    from splice.errors import GraphError
+    # the meta run stopped before any layer could check the shape: insert's identity check runs the model for real,
+    # and a layer of torch's refusing the shape is one line that says where to look
+    from splice.errors import SpliceError
 
-    with pytest.raises(GraphError, match=r"_RescalesItsInput fails on inputs of shape \(C, H, W\) = \(1, 32, 32\) "
-                                         r"\(RuntimeError: .*channels.*\); check --input-shape"):
+    with pytest.raises(SpliceError, match=r"_RescalesItsInput fails on the identity check's batch of two 1x32x32 "
+                                          r"inputs \(RuntimeError: .*channels.*\); check --input-shape"):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            splice.points(model, (1, 32, 32))
+            splice.insert(model, at="input", input_shape=(1, 32, 32))
+
+    class NeedsUnitRange(_RescalesItsInput):  # the model's own check of the values: not a shape problem
+        def forward(self, x):
+            if x.min() < 0:
+                raise ValueError("pixels must be in [0, 1]")
+            return super().forward(x)
+
+    with pytest.raises(SpliceError, match=r"\(ValueError: pixels must be in \[0, 1\]\); the check feeds seeded "
+                                          r"N\(0, 1\) values"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            splice.insert(NeedsUnitRange().eval(), at="input", input_shape=(3, 32, 32))
     # both branches, through the warp at the identity: the base's own outputs (a pre-hook on the root, the
     # model's forward itself untouched)
     for x in (torch.rand(2, 3, 32, 32), 255 * torch.rand(2, 3, 32, 32)):

@@ -32,7 +32,6 @@ import torch
 from torch import nn
 
 from ..compare import map_tensors
-from ..copies import private_buffers
 from ..errors import GraphError
 from .entries import CONV_MODULES, Entry, module_stem
 from .exported import export_entries
@@ -135,7 +134,6 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
     except Exception as exc:
         if timeline.stack and is_torch_builtin(type(timeline.stack[-1])):
             raise _failure(model, timeline, exc, problem, todo, input_shape) from exc
-        _runs_for_real(model, args, kwargs, input_shape)  # the meta run stopped early: the shape is not yet checked
         only = "only 'input' is listed (a warp there needs no graph), no point inside"
         return ([Entry("input", "", "input", input_shape, True, None, True)],
                 str(_failure(model, timeline, exc, problem, todo, input_shape, head=only)))
@@ -150,25 +148,6 @@ def _module_view(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, pr
         entries.append(Entry(name, qualname, "activation", out_shape, False, None,
                               first_conv_end <= t < last_conv_start, (qualname, k)))
     return entries, None
-
-
-def _runs_for_real(model: nn.Module, args: tuple, kwargs: dict, input_shape) -> None:
-    """Run a twin of ``model`` (its own buffers and modes, eval) once on the example; a GraphError if it fails."""
-    param = next(iter(model.parameters()), None)
-    if param is not None and param.is_meta:  # a model built without data: nothing to run
-        return
-    twin = private_buffers(model).eval()
-    device = param.device if param is not None else torch.device("cpu")
-
-    def real(t):  # zeros where the example is a meta tensor (no data)
-        return torch.zeros(t.shape, dtype=t.dtype, device=device) if t.is_meta else t
-
-    try:
-        with torch.no_grad():
-            twin(*map_tensors(args, real), **map_tensors(kwargs, real))
-    except Exception as exc:  # the model's own forward refuses these inputs
-        raise GraphError(f"{type(model).__name__} fails on inputs of shape (C, H, W) = {tuple(input_shape)} "
-                         f"({reason(exc)}); check --input-shape") from exc
 
 
 def _user_line(exc: BaseException) -> str:
