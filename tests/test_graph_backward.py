@@ -230,3 +230,16 @@ def test_a_custom_autograd_function_keeps_its_backward():
     spliced(x).sum().backward()
     got = dict(spliced.named_parameters())["stem.weight"].grad
     assert torch.allclose(got, reference, atol=1e-6)
+
+
+def test_points_inside_a_reentrant_checkpoint_are_not_offered():
+    # torch recomputes a re-entrant checkpoint's region in the backward pass, where a forward hook's warp is not
+    # applied again: a warp there would get no gradient and the layers before it the unwarped region's
+    torch.manual_seed(0)
+    with pytest.warns(TraceFallbackWarning, match=DROPPED), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="None of the inputs have requires_grad")  # torch's, other passes
+        names = [p.name for p in splice.points(Blocks("reentrant"), (3, 16, 16), all=True)]
+    with pytest.warns(TraceFallbackWarning, match=DROPPED):
+        plain = [p.name for p in splice.points(Blocks("nonreentrant"), (3, 16, 16), all=True)]
+    assert names == ["input", "stem"]
+    assert any(n.startswith("blocks") for n in plain)  # not seen there without gradients: the backward refuses

@@ -56,7 +56,13 @@ def _install() -> None:
     def stand_in_apply(cls, *args, **kwargs):
         if _meeting():
             raise GraphError(OWN_BACKWARD)
-        return apply.__get__(None, cls)(*args, **kwargs)
+        if not getattr(_tracing, "watching", 0):
+            return apply.__get__(None, cls)(*args, **kwargs)
+        _tracing.inside = getattr(_tracing, "inside", 0) + 1  # a recorded forward: module calls in here are marked
+        try:
+            return apply.__get__(None, cls)(*args, **kwargs)
+        finally:
+            _tracing.inside -= 1
 
     enter = _originals["__enter__"]
 
@@ -75,26 +81,52 @@ def _restore() -> None:
 
 
 @contextlib.contextmanager
-def backward_refused() -> Iterator[None]:
-    """For the length of the block, a call of a custom autograd Function or a saved-tensor hooks block entered from
-    this thread raises a :class:`~splice.errors.GraphError`; after the block, :func:`backward_seen` says whether one
-    was (even one the traced code caught)."""
+def _installed() -> Iterator[None]:
     with _lock:
         if _active[0] == 0:
             _install()
         _active[0] += 1
-    depth = getattr(_tracing, "depth", 0)
-    if depth == 0:
-        _tracing.seen = False
-    _tracing.depth = depth + 1
     try:
         yield
     finally:
-        _tracing.depth = depth
         with _lock:
             _active[0] -= 1
             if _active[0] == 0:
                 _restore()
+
+
+@contextlib.contextmanager
+def functions_watched() -> Iterator[None]:
+    """For the length of the block, a custom autograd Function called from this thread runs as usual, and
+    :func:`inside_function` says whether this thread is inside one (a re-entrant checkpoint recomputes what it
+    runs in the backward pass, where a forward hook's warp is not applied again)."""
+    with _installed():
+        _tracing.watching = getattr(_tracing, "watching", 0) + 1
+        try:
+            yield
+        finally:
+            _tracing.watching -= 1
+
+
+def inside_function() -> bool:
+    """Whether this thread runs inside a custom autograd Function, within :func:`functions_watched`."""
+    return getattr(_tracing, "inside", 0) > 0
+
+
+@contextlib.contextmanager
+def backward_refused() -> Iterator[None]:
+    """For the length of the block, a call of a custom autograd Function or a saved-tensor hooks block entered from
+    this thread raises a :class:`~splice.errors.GraphError`; after the block, :func:`backward_seen` says whether one
+    was (even one the traced code caught)."""
+    with _installed():
+        depth = getattr(_tracing, "depth", 0)
+        if depth == 0:
+            _tracing.seen = False
+        _tracing.depth = depth + 1
+        try:
+            yield
+        finally:
+            _tracing.depth = depth
 
 
 def backward_seen() -> bool:

@@ -21,6 +21,7 @@ tries torch.export.
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -31,6 +32,7 @@ from torch.overrides import TorchFunctionMode
 
 from ..compare import SUPPORTED_OUTPUTS
 from ..errors import GraphError
+from .backward import functions_watched, inside_function
 from .cuts import cut_analysis
 from .entries import NCHW, Entry, dims_permutation, module_stem, site_name
 from .leaves import LeafRule, stepped_leaves
@@ -109,6 +111,9 @@ class _Recording(TorchFunctionMode):
         # modules inside a leaf (a leaf runs for real, unseen): one called outside it too is counted here fewer
         # times than a hook counts it at run time, so it is no site
         self.in_leaves: set[str] = set()
+        # calls made inside a custom autograd Function (a re-entrant checkpoint runs them again in the backward pass,
+        # where a hook's warp is not applied): no site
+        self.in_functions: set[tuple[str, int]] = set()
 
     def source(self, t: torch.Tensor) -> int:
         return self._add("input", [], t, NCHW if t.dim() == 4 else None)
@@ -178,6 +183,8 @@ def _hook_calls(meta: nn.Module, rec: _Recording) -> list:
         if isinstance(out, torch.Tensor) and out.dim() == 4:
             wrote, born = rec.producer.get(id(out)), rec.born.get(id(out))
         rec.calls.append((names[mod], k, starts.pop(), len(rec.ops), wrote, born))
+        if inside_function():  # run again by the Function's backward (a re-entrant checkpoint), where no hook warps
+            rec.in_functions.add((names[mod], k))
 
     # ``after`` first of the module's forward hooks, as splice's site hook: it sees what the forward returned
     return [h for m in names
@@ -219,7 +226,7 @@ def _sites(rec: _Recording) -> dict[int, tuple[str, int]]:
     found: dict[int, tuple[str, int]] = {}
     span: dict[int, int] = {}
     for qualname, k, start, end, i, born in rec.calls:
-        if i is None or born is None or qualname in rec.in_leaves:
+        if i is None or born is None or qualname in rec.in_leaves or (qualname, k) in rec.in_functions:
             continue
         op = rec.ops[i]
         if not (start <= born <= i < end) or any(u < end for u in op.users):
@@ -261,7 +268,10 @@ def _record(model: nn.Module, args: tuple, kwargs: dict, rule: LeafRule, meta: n
     mods = list(meta.modules())
     reads: list[nn.Module] = []
     try:
-        with spying(mods, reads) as spied, torch.no_grad(), torch.device(META), rec:
+        with spying(mods, reads) as spied, torch.no_grad(), torch.device(META), rec, functions_watched(), \
+                warnings.catch_warnings():
+            # a re-entrant checkpoint says its inputs need no gradient: splice's own run, not the user's
+            warnings.filterwarnings("ignore", message="None of the inputs have requires_grad", category=UserWarning)
             out = meta(*args, **kwargs)
     finally:
         for h in handles:
