@@ -167,6 +167,13 @@ def test_an_edit_that_changes_what_the_model_computes_or_means_fails_integrity_a
         report = verify(digits_folder)
     assert report.failed == ["integrity"] and report["integrity"].summary == f"{field} edited"
     assert report["integrity"].numbers["edited_fields"] == [field]
+    # and nothing is exported from it: the file would ship what the integrity row fails
+    from splice.errors import CheckFailed
+
+    target = digits_folder.parent / f"edited-{field}.onnx"
+    with pytest.raises(CheckFailed, match=rf"splice\.json's {field} differ .*; nothing was exported"):
+        splice.export(digits_folder, onnx=target)
+    assert not target.exists()
 
 
 def test_a_new_layout_of_the_same_values_is_no_edit(digits_folder):
