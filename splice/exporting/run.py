@@ -10,7 +10,7 @@ from pathlib import Path
 import torch
 
 from ..copies import rng_kept, tree_copy
-from ..errors import CheckFailed, SpliceError, SpliceWarning, first_line
+from ..errors import CheckFailed, EditedManifestWarning, SpliceError, SpliceWarning, first_line
 from ..folders import check_file_target
 from ..manifest import MANIFEST_NAME, WEIGHTS_NAME, edited_fields, info_of
 from ..sources import code_change
@@ -126,8 +126,15 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
     >>> splice.export("out/r18-affine", onnx="r18.onnx")   # doctest: +SKIP
     """
     _check_targets(onnx, pt2, opset, exporter)
-    _refuse_edited(folder)
-    model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+    edited = _edited(folder)
+    with warnings.catch_warnings():
+        if edited:  # said once, below, after the folder's other checks (its trust gate first)
+            warnings.simplefilter("ignore", EditedManifestWarning)
+        model = load(folder, trust_pickle=trust_pickle, trust_code=trust_code)
+    if edited:  # the file would ship what verify's integrity row fails
+        raise CheckFailed(f"'{folder}': {MANIFEST_NAME}'s {', '.join(edited)} differ from those its weights were "
+                          f"written with (edited after saving); restore {MANIFEST_NAME} from a good copy or insert "
+                          "again; nothing was exported")
     told = code_change(info_of(model).spec, info_of(model).code_sha256)
     if told is not None:  # the parity check would compare the new code with itself, and pass
         raise CheckFailed(f"'{folder}': {told}; nothing was exported")
@@ -135,21 +142,17 @@ def export(folder: str | os.PathLike, onnx: str | os.PathLike | None = None, pt2
                           exporter=exporter, seed=seed, tol=tol)
 
 
-def _refuse_edited(folder) -> None:
-    """A folder whose splice.json was edited after saving (its normalisation, class names or warps are not those the
-    weights were written with) is not exported: the file would ship what verify's integrity row fails."""
+def _edited(folder) -> list[str]:
+    """The fields of a folder's splice.json edited after saving (:func:`~splice.manifest.edited_fields`); none when
+    the manifest cannot be read (:func:`~splice.store.load` says what is wrong with it)."""
     import json
 
     path = Path(folder)
     try:
         manifest = json.loads((path / MANIFEST_NAME).read_text(encoding="utf-8"))
-    except (OSError, ValueError):  # load() says what is wrong with the folder
-        return
-    edited = edited_fields(path / WEIGHTS_NAME, manifest) if isinstance(manifest, dict) else []
-    if edited:
-        raise CheckFailed(f"'{folder}': {MANIFEST_NAME}'s {', '.join(edited)} differ from those its weights were "
-                          f"written with (edited after saving); restore {MANIFEST_NAME} from a good copy or insert "
-                          "again; nothing was exported")
+    except (OSError, ValueError):
+        return []
+    return edited_fields(path / WEIGHTS_NAME, manifest) if isinstance(manifest, dict) else []
 
 
 @rng_kept()
