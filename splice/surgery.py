@@ -27,6 +27,7 @@ from torch import fx, nn
 from .compare import compare_outputs
 from .copies import private_buffers, same_draws, tree_copy
 from .errors import CheckFailed, PointError, SourceError, SpliceError, SpliceWarning, first_line, suggest
+from .graph.tracing import in_package, innermost_frame
 from .hooks import WARP_PREFIX, apply_hooks
 from .manifest import PointRecord, SpliceInfo, attach_info, info_of, remember_base
 from .sources import MODULE_SPEC
@@ -139,17 +140,6 @@ def _restore_missing_state(gm: fx.GraphModule, original: nn.Module) -> None:
         have.add(key)
 
 
-def raised_in_torch(exc: BaseException) -> bool:
-    """Whether the innermost Python frame of ``exc`` is torch's own code (a layer refusing a shape), not the
-    model's (its own check of the values)."""
-    import os
-    import traceback
-
-    frames = traceback.extract_tb(exc.__traceback__)
-    torch_dir = os.path.dirname(os.path.abspath(torch.__file__)) + os.sep
-    return bool(frames) and os.path.abspath(frames[-1].filename).startswith(torch_dir)
-
-
 def quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float | None = 1e-5) -> dict:
     """Shapes and outputs at the identity, on a seeded N(0,1) batch (float32) per input (``tol=None``: the
     tolerance of the outputs' dtype).
@@ -171,7 +161,8 @@ def quick_check(base: nn.Module, spliced: nn.Module, input_shapes, *, tol: float
                 base_out = base_twin(*[x.clone() for x in xs])
             except Exception as exc:  # the model itself refuses the check's batch: say what it was given
                 shapes = ", ".join("x".join(map(str, s)) for s in input_shapes)
-                hint = ("check --input-shape" if raised_in_torch(exc) else
+                frame = innermost_frame(exc)  # torch's own code (a layer refusing a shape), or the model's
+                hint = ("check --input-shape" if frame is not None and in_package(frame.filename, torch) else
                         "the check feeds seeded N(0, 1) values, so a model that needs other values cannot take it")
                 raise SpliceError(f"{type(base).__name__} fails on the identity check's batch of two {shapes} inputs "
                                   f"({type(exc).__name__}: {first_line(exc)}); {hint}") from exc

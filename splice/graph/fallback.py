@@ -39,7 +39,7 @@ from .leaves import LeafRule, class_path, is_torch_builtin, stepped_leaves
 from .recorded import UnsupportedOutput, recorded_entries
 from .rules import ShapeRules
 from .shapes import META, meta_module, run_for_real, set_mode, to_meta
-from .tracing import GraphWarning, reason
+from .tracing import GraphWarning, in_package, innermost_frame, reason
 
 __all__ = ["TraceFallbackWarning"]
 
@@ -154,16 +154,13 @@ def _user_line(exc: BaseException) -> str:
     """`` at FILE:LINE`` of the innermost frame of ``exc``'s traceback outside torch, splice and Python's own
     library (the model's line that needed real values), or ``""``."""
     import os
+    import sys
     import sysconfig
-    import traceback
 
-    here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # splice's own package
-    skipped = (os.path.dirname(os.path.abspath(torch.__file__)) + os.sep, here + os.sep)
     stdlib = os.path.abspath(sysconfig.get_paths()["stdlib"]) + os.sep
-    frames = [f for f in traceback.extract_tb(exc.__traceback__)
-              if not os.path.abspath(f.filename).startswith(skipped) and not (
-                  os.path.abspath(f.filename).startswith(stdlib) and "-packages" not in f.filename)]
-    return f" at {os.path.basename(frames[-1].filename)}:{frames[-1].lineno}" if frames else ""
+    frame = innermost_frame(exc, lambda path: in_package(path, torch) or in_package(path, sys.modules["splice"]) or (
+        path.startswith(stdlib) and "-packages" not in path))
+    return f" at {os.path.basename(frame.filename)}:{frame.lineno}" if frame is not None else ""
 
 
 def _failure(model, timeline: _Timeline, exc: BaseException, problem: str, todo: str, input_shape,

@@ -394,6 +394,23 @@ def reason(exc: BaseException) -> str:
     return f"{name}: {line[:-1] if line.endswith('.') and not line.endswith('..') else line}"
 
 
+def innermost_frame(exc: BaseException, skipping: Callable[[str], bool] = lambda path: False):
+    """The innermost frame of ``exc``'s traceback (a ``traceback.FrameSummary``) whose absolute file path
+    ``skipping`` does not pass over, or ``None``."""
+    import os
+    import traceback
+
+    frames = [f for f in traceback.extract_tb(exc.__traceback__) if not skipping(os.path.abspath(f.filename))]
+    return frames[-1] if frames else None
+
+
+def in_package(path: str, module: Any) -> bool:
+    """Whether the file ``path`` lies in the package of ``module`` (``torch``, ``splice``)."""
+    import os
+
+    return os.path.abspath(path).startswith(os.path.dirname(os.path.abspath(module.__file__)) + os.sep)
+
+
 def check_model(model: Any, what: str) -> None:
     if not isinstance(model, nn.Module):
         raise GraphError(f"{what} needs a torch.nn.Module, got {type(model).__name__}; pass the model object")
