@@ -203,6 +203,37 @@ def test_fit_ranges_undoes_a_reader_that_shrinks_and_blurs(size):
     assert est.perspective == 0.0 and est.observable["perspective"] is False
 
 
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("truth", [RangeEstimate(0.0, (1.0, 1.0), 0.2, 0.0), RangeEstimate(0.0, (1.0, 1.0), 0.0, 0.0),
+                                   RangeEstimate(2.0, (1.0, 1.0), 0.2, 0.0)])
+def test_a_parameter_the_site_does_not_move_is_estimated_at_zero(truth, seed):
+    # a noisy reader (about 1.2 degrees and 0.02 of scale even on unmoved images), deterministic per call as a
+    # trained probe is: a site only shifted, or not moved at all, read rotation 1.2 degrees and scale 0.98-1.02
+    # (the excess of the site's spread over the probe's noise, itself noise, turned into a width); a rotation
+    # of 2 degrees, under that noise, is still found
+    def read(matrix: torch.Tensor, gen: torch.Generator) -> torch.Tensor:
+        eye = torch.eye(3, dtype=torch.float64)
+        return eye + 0.7 * (matrix - eye) + 0.03 * torch.randn(matrix.shape, generator=gen, dtype=torch.float64) * \
+            torch.tensor([[1.0, 1.0, 1.0], [1.0, 1.0, 1.0], [0.0, 0.0, 0.0]], dtype=torch.float64)
+
+    def simulate(est: RangeEstimate) -> dict:
+        _, meta = random_distort(torch.zeros(1024, 1, 8, 8), est.to_range(), torch.Generator().manual_seed(5))
+        return site_statistics(read(meta["matrix"], torch.Generator().manual_seed(100 + seed)), size=(8, 8))
+
+    _, meta = random_distort(torch.zeros(2000, 1, 8, 8), truth.to_range(), torch.Generator().manual_seed(9 + seed))
+    est = fit_ranges(site_statistics(read(meta["matrix"], torch.Generator().manual_seed(seed)), size=(8, 8)),
+                     simulate, outer=RangeEstimate(90.0, (0.5, 2.0), 0.5, 0.3),
+                     fallback=RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0),
+                     observable={"rotation": True, "scale": True, "shift": True, "perspective": False})
+    if truth.rotation:
+        assert est.rotation == pytest.approx(truth.rotation, rel=0.25), est.to_dict()
+    else:
+        assert est.rotation == 0.0 and est.statistics["zeroed"]["angle_std"] == 1.0, est.to_dict()
+    assert est.scale == (1.0, 1.0) and est.shift == pytest.approx(truth.shift, abs=0.01), est.to_dict()
+    assert est.statistics["floor"]["angle_std"] > 0.5, est.to_dict()  # the reader's noise, measured
+    assert est.statistics["zeroed"]["shift_std"] == float(not truth.shift), est.to_dict()
+
+
 def _blurred_flat_reader(gen: torch.Generator, resampled: bool):
     """A reader like the 32x32 probe measured in splice.adapt.ranges' docstring: a zoom-in reads at a quarter
     of its size, a zoom-out at 0.8, and a resampled image reads 2 % smaller than the sharp original."""

@@ -66,6 +66,12 @@ all. So the centre is fitted in two stages:
 ``statistics["scale_centre"]`` records the test and the slope (``moved`` and
 ``observable`` as 0 or 1).
 
+**Still parameters.** Last, each parameter's statistic is simulated once more with that parameter still and
+the rest as estimated: the probe's noise floor. A site spread within :data:`CENTRE_Z` standard errors of its floor
+(a sample standard deviation's is about ``sd / sqrt(2 n)``) sets the parameter to 0: the excess of one noisy
+spread over another is itself noise, and the fixed point turns it into a width (about 1.2 degrees of rotation on a
+shift-only site, under a synthetic reader with that much noise).
+
 **Observability.** A parameter whose statistic hardly moves between no
 motion and the outer limit (ratio below :data:`OBSERVABLE_RATIO`) cannot be
 estimated from these images; it keeps the recipe's value and is reported as
@@ -95,7 +101,8 @@ PARAMETERS = ("rotation", "scale", "shift", "perspective")
 # 1.5 perspective).
 OBSERVABLE_RATIO = 3.0
 # The scale centre (module docstring): a site's mean reading within this many standard errors of the band of
-# "no scale" readings keeps the centre at 1 (common practice, no source: about a 95 % two-sided test);
+# "no scale" readings keeps the centre at 1, and a spread within this many of its floor sets its parameter to 0
+# (common practice, no source: about a 95 % two-sided test);
 CENTRE_Z = 2.0
 # the slope of the mean reading against the centre is measured at least this far on, or as far as the gap of
 # means when that is larger (common practice, no source: a step the mean reading resolves, far below the outer
@@ -289,6 +296,36 @@ def _secant_centre(est: RangeEstimate, site: dict, sim: dict, simulate, start: R
     return est, sim, record
 
 
+def _spread_error(site: dict, sim: dict, key: str) -> float:
+    """The standard error of the difference of two standard deviations (a sample's is about ``sd / sqrt(2 n)``)."""
+    def var(d: dict) -> float:
+        return d[key] ** 2 / (2.0 * max(float(d.get("images", 1.0)), 1.0))
+    return math.sqrt(var(site) + var(sim))
+
+
+def _zero_still(est: RangeEstimate, site: dict, simulate, pin, observable: dict[str, bool]):
+    """Still parameters (module docstring): a parameter whose site spread is within :data:`CENTRE_Z` standard
+    errors of its floor (its statistic with that parameter still and the rest as estimated) is set to 0. Returns ``(estimate, record)``; the record's ``floor``,
+    ``floor_standard_error`` and ``zeroed`` (0 or 1) map each statistic to a number.
+    """
+    record: dict[str, dict[str, float]] = {"floor": {}, "floor_standard_error": {}, "zeroed": {}}
+    out = RangeEstimate(est.rotation, est.scale, est.shift, est.perspective)
+    for p in PARAMETERS:
+        key = _STAT_OF[p]
+        if not observable.get(p, False):
+            continue
+        still = RangeEstimate(est.rotation, est.scale, est.shift, est.perspective)
+        setattr(still, p, (_centre(est),) * 2 if p == "scale" else 0.0)
+        still = pin(still)
+        floor = simulate(still)
+        se = _spread_error(site, floor, key)
+        zeroed = site[key] <= floor[key] + CENTRE_Z * se
+        record["floor"][key], record["floor_standard_error"][key], record["zeroed"][key] = floor[key], se, float(zeroed)
+        if zeroed:
+            setattr(out, p, getattr(still, p))
+    return out, record
+
+
 def fit_ranges(site: dict[str, float], simulate: Callable[[RangeEstimate], dict[str, float]], *,
                outer: RangeEstimate, fallback: RangeEstimate, observable: dict[str, bool],
                iterations: int = 6) -> RangeEstimate:
@@ -317,6 +354,10 @@ def fit_ranges(site: dict[str, float], simulate: Callable[[RangeEstimate], dict[
     if centre.get("moved"):
         est, sim, secant = _secant_centre(est, site, sim, simulate, start, pin, fallback, iterations)
         centre.update(secant)
+    zeroed, floors = _zero_still(est, site, simulate, pin, observable)
+    if any(floors["zeroed"].values()):
+        est, sim = zeroed, simulate(zeroed)
     est.observable = {p: bool(observable.get(p, False)) for p in PARAMETERS}
-    est.statistics = {"site": dict(site), "simulated": dict(sim)} | ({"scale_centre": centre} if centre else {})
+    est.statistics = {"site": dict(site), "simulated": dict(sim)} | floors | (
+        {"scale_centre": centre} if centre else {})
     return est
