@@ -113,3 +113,46 @@ def test_equal_principal_scales_leave_both_outlines_visible(tmp_path):
 
     assert pixels_of(OKABE_ITO["orange"]) > 200  # scale_2, on top
     assert pixels_of(OKABE_ITO["blue"]) > 200  # scale_1 shows between the dashes (it was hidden before)
+
+
+def test_scales_equal_up_to_float32_rounding_share_one_bin(tmp_path):
+    """Every image's two scales 0.8, apart only by float32 rounding (a few 1e-8): the two outlines drew in
+    neighbouring bins (the value sat on the middle bin edge), showing an anisotropy that is not there. Both
+    colours must span the same columns of the scales cell."""
+    import numpy as np
+    from PIL import Image
+
+    from splice.inspection.plots import HIST_CELL_W, draw_histograms
+    from splice.pictures import OKABE_ITO
+
+    scale_1 = torch.full((16,), 0.8, dtype=torch.float64)
+    desc = {"angle_deg": torch.zeros(16, dtype=torch.float64), "scale_1": scale_1, "scale_2": scale_1 * (1 - 3e-8),
+            "shift_x_px": torch.zeros(16, dtype=torch.float64), "shift_y_px": torch.zeros(16, dtype=torch.float64)}
+    path = draw_histograms(tmp_path / "hist.png", "input", "affine", desc)
+    with Image.open(path) as im:
+        cell = np.asarray(im.convert("RGB"))[:, HIST_CELL_W:2 * HIST_CELL_W].astype(int)
+
+    def columns_of(hex_colour: str) -> tuple[int, int]:
+        rgb = np.array([int(hex_colour[i:i + 2], 16) for i in (1, 3, 5)])
+        cols = np.nonzero((np.abs(cell - rgb).sum(axis=-1) < 40).sum(axis=0) > 20)[0]  # the tall outline edges
+        return int(cols.min()), int(cols.max())
+
+    (b0, b1), (o0, o1) = columns_of(OKABE_ITO["blue"]), columns_of(OKABE_ITO["orange"])
+    assert abs(b0 - o0) <= 3 and abs(b1 - o1) <= 3, ((b0, b1), (o0, o1))
+
+
+def test_an_isotropic_map_set_in_float32_reports_no_scale_axis():
+    """0.8 x a rotation of 0.5 rad, rounded to float32 as a warp head computes it: the two scales differ by about
+    2e-9 relative in float64, which set a meaningless axis (-59.3 degrees) to four figures; reference: the
+    singular values of the same matrix from numpy's SVD, equal to float32's precision."""
+    import numpy as np
+
+    from splice.inspection.decompose import describe_linear
+
+    c, s = math.cos(0.5), math.sin(0.5)
+    a = (0.8 * torch.tensor([[c, -s], [s, c]], dtype=torch.float32)).to(torch.float64)
+    sv = np.linalg.svd(a.numpy(), compute_uv=False)
+    assert 0 < (sv[0] - sv[1]) / sv[0] < 1e-6  # not exactly equal: the case of the defect
+    d = describe_linear(a.unsqueeze(0))
+    assert float(d["scale_axis_deg"][0]) == 0.0 and float(d["view_zoom_axis_deg"][0]) == 0.0
+    assert float(d["scale_1"][0]) == pytest.approx(0.8, rel=1e-6)

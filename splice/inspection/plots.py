@@ -28,9 +28,10 @@ def _bins(*series):
     if values.size == 0:
         return np.linspace(-1.0, 1.0, 11)
     lo, hi = float(values.min()), float(values.max())
-    if hi - lo < 1e-9 * (1.0 + abs(lo)):
-        pad = max(1e-3, 0.05 * abs(lo))
-        lo, hi = lo - pad, hi + pad
+    if hi - lo < 1e-6 * (1.0 + abs(lo)):  # one value, up to float32 rounding: in the middle of the middle bin
+        mid = 0.5 * (lo + hi)
+        pad = max(1e-3, 0.05 * abs(mid))
+        return np.linspace(mid - pad, mid + pad, 10)
     # Rice rule, 2 n^(1/3) bins (from memory), kept between 8 and 30
     return np.linspace(lo, hi, int(min(30, max(8, round(2.0 * values.size ** (1.0 / 3.0))))) + 1)
 
