@@ -243,3 +243,102 @@ def test_points_inside_a_reentrant_checkpoint_are_not_offered():
         plain = [p.name for p in splice.points(Blocks("nonreentrant"), (3, 16, 16), all=True)]
     assert names == ["input", "stem"]
     assert any(n.startswith("blocks") for n in plain)  # not seen there without gradients: the backward refuses
+
+
+GRAD_MODE = "the forward switches gradients or autocast in a block of its own"
+
+
+class Frozen(nn.Module):
+    """A frozen backbone (``how``: 'no_grad', 'inference_mode', 'set_grad_enabled' as a plain call and back,
+    'decorated' (a method under @torch.no_grad()), 'autocast' (bfloat16) or 'detach') and a trainable head."""
+
+    def __init__(self, how: str):
+        super().__init__()
+        self.how = how
+        self.backbone = nn.Sequential(nn.Conv2d(3, 8, 3, 2, 1), nn.ReLU(), nn.Conv2d(8, 8, 3, 2, 1), nn.ReLU())
+        self.head = nn.Sequential(nn.Conv2d(8, 8, 3, 1, 1), nn.ReLU())
+        self.fc = nn.Linear(8, 3)
+
+    @torch.no_grad()
+    def frozen_features(self, x):
+        return self.backbone(x)
+
+    def features(self, x):
+        if self.how == "no_grad":
+            with torch.no_grad():
+                return self.backbone(x)
+        if self.how == "inference_mode":
+            with torch.inference_mode():
+                f = self.backbone(x)
+            return f.clone()  # a normal tensor again (torch's advice for inference tensors)
+        if self.how == "set_grad_enabled":
+            before = torch.is_grad_enabled()
+            torch.set_grad_enabled(False)
+            f = self.backbone(x)
+            torch.set_grad_enabled(before)
+            return f
+        if self.how == "decorated":
+            return self.frozen_features(x)
+        if self.how == "autocast":
+            with torch.autocast("cpu", dtype=torch.bfloat16):
+                return self.backbone(x).float()
+        return self.backbone(x).detach()
+
+    def forward(self, x):
+        return self.fc(self.head(self.features(x)).mean((2, 3)))
+
+
+@pytest.mark.parametrize("how", ["no_grad", "inference_mode", "set_grad_enabled", "decorated", "autocast"])
+def test_a_grad_mode_or_autocast_block_in_the_forward_is_kept_by_hooks(how):
+    """fx ran such a block while tracing and kept its operations only: the spliced backbone got gradients it never
+    had (norm 0.116 on the reporter's model) and the autocast dtype was lost. Reference: torch's own autograd and
+    autocast on the base (which parameters get a gradient, and the outputs)."""
+    torch.manual_seed(0)
+    base = Frozen(how).eval()
+    with pytest.warns(TraceFallbackWarning, match=GRAD_MODE):
+        sp = splice.insert(base, at="head_1", warp="affine", input_shape=(3, 32, 32))
+    assert info_of(sp).mechanism == "hooks"
+    x = torch.randn(2, 3, 32, 32)
+    sp.train(), base.train()
+    out_b, out_s = base(x), sp(x)
+    torch.testing.assert_close(out_s, out_b, rtol=0, atol=0)
+    out_b.square().sum().backward()
+    out_s.square().sum().backward()
+    got_b = {n for n, p in base.named_parameters() if p.grad is not None}
+    got_s = {n for n, p in sp.named_parameters() if p.grad is not None and not n.startswith("splice_warps")}
+    assert got_s == got_b and any(n.startswith("backbone") for n in got_b) == (how == "autocast")
+    if how == "autocast":  # the block really computes in bfloat16: the same model without it answers otherwise
+        base.how = "detach"
+        assert not torch.equal(base(x), out_b)
+    assert all(p.grad is not None for n, p in sp.named_parameters() if n.startswith("splice_warps"))
+
+
+def test_grad_mode_blocks_outside_a_trace_and_after_it_run_as_torch_runs_them():
+    with backward_refused():
+        pass
+    with torch.no_grad():
+        assert not torch.is_grad_enabled()
+    with torch.enable_grad():
+        assert torch.is_grad_enabled()
+    assert torch.no_grad.__enter__.__module__.startswith("torch")  # torch's own, put back
+
+
+@pytest.mark.parametrize("how", ["no_grad", "detach"])
+def test_verify_fails_a_warp_before_a_cut_of_the_gradient(how):
+    """A warp at the input of a model whose backbone runs under no_grad (or is detached) can never train: verify
+    said WARN "the outputs do not depend on the input at all", the diagnosis of a zero-initialised head. The outputs
+    do move with the input (torch, the base run on two inputs), so it fails, naming the cut; a warp after the cut
+    passes."""
+    torch.manual_seed(0)
+    base = Frozen(how).eval()
+    with torch.no_grad():
+        assert not torch.equal(base(torch.randn(2, 3, 32, 32)), base(torch.randn(2, 3, 32, 32)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        before = splice.insert(base, at="input", warp="affine", input_shape=(3, 32, 32))
+        after = splice.insert(base, at="head_1", warp="affine", input_shape=(3, 32, 32))
+        bad, good = splice.verify(before), splice.verify(after)
+    row = bad["gradients"]
+    assert not row.passed and row.summary == "gradient cut before the outputs", row.detail
+    assert "cuts the gradient" in row.detail and row.numbers["input_grad"] == 0.0
+    assert good["gradients"].passed and not good["gradients"].warning

@@ -1,4 +1,4 @@
-"""Noticing, while fx traces a forward, code with a backward of its own.
+"""Noticing, while fx traces a forward, code with a backward of its own, and grad-mode or autocast blocks.
 
 fx traces through Python: a custom :class:`torch.autograd.Function` runs its
 ``forward`` on proxies and the graph keeps those operations, not the
@@ -10,7 +10,12 @@ the graph leaves out, so the traced graph keeps every activation the model
 meant to recompute. Both are reached through two public doors of
 :mod:`torch.autograd`: ``Function.apply`` and entering a
 :class:`torch.autograd.graph.saved_tensors_hooks` block (which also covers
-``save_on_cpu``). While a trace runs in this thread,
+``save_on_cpu``). A block that switches gradients or autocast
+(``torch.no_grad``, ``enable_grad``, ``set_grad_enabled``, ``inference_mode``,
+``autocast``) is run by the trace and left out of the graph alike: a backbone
+the model froze gets gradients, an autocast block computes in float32. Their
+doors are entering the block (and ``set_grad_enabled``'s constructor, which
+switches at once). While a trace runs in this thread,
 :func:`backward_refused` puts stand-ins at those doors that raise a
 :class:`~splice.errors.GraphError` saying so (and remember it, for traced code
 that catches the error); other threads go through torch's own, and both are
@@ -32,6 +37,12 @@ __all__: list[str] = []
 
 OWN_BACKWARD = ("the forward has code with a backward of its own (activation checkpointing, a custom "
                 "torch.autograd.Function, saved-tensor hooks), which a traced graph would drop")
+GRAD_MODE = ("the forward switches gradients or autocast in a block of its own (torch.no_grad, enable_grad, "
+             "set_grad_enabled, inference_mode, autocast), which a traced graph would drop")
+# the public doors of a grad-mode or autocast block: (class, method); no_grad enters through set_grad_enabled's
+# __init__ in some torch releases and on its own in others, so both are watched
+_MODE_DOORS = (("no_grad", "__enter__"), ("enable_grad", "__enter__"), ("set_grad_enabled", "__init__"),
+               ("set_grad_enabled", "__enter__"), ("inference_mode", "__enter__"), ("autocast", "__enter__"))
 
 _lock = threading.Lock()
 _tracing = threading.local()  # depth: this thread's traces in progress; seen: whether one met such code
@@ -39,12 +50,24 @@ _active = [0]  # traces in progress in every thread, and with them the stand-ins
 _originals: dict[str, Any] = {}
 
 
-def _meeting() -> bool:
-    """In a thread that traces: remember the meeting and say so."""
+def _meeting(reason: str = OWN_BACKWARD) -> bool:
+    """In a thread that traces: remember the meeting (the first one's ``reason``) and say so."""
     if getattr(_tracing, "depth", 0):
-        _tracing.seen = True
+        _tracing.seen = getattr(_tracing, "seen", None) or reason
         return True
     return False
+
+
+def _mode_door(cls: type, name: str) -> None:
+    original = vars(cls)[name]
+    _originals[f"{cls.__name__}.{name}"] = (cls, name, original)
+
+    def stand_in(self, *args, **kwargs):
+        if _meeting(GRAD_MODE):
+            raise GraphError(GRAD_MODE)
+        return original(self, *args, **kwargs)
+
+    setattr(cls, name, stand_in)
 
 
 def _install() -> None:
@@ -73,11 +96,16 @@ def _install() -> None:
 
     function.apply = classmethod(stand_in_apply)
     hooks.__enter__ = stand_in_enter
+    for cls_name, method in _MODE_DOORS:
+        _mode_door(getattr(torch, cls_name), method)
 
 
 def _restore() -> None:
     torch.autograd.Function.apply = _originals.pop("apply")
     torch.autograd.graph.saved_tensors_hooks.__enter__ = _originals.pop("__enter__")
+    for key in [k for k in _originals if "." in k]:
+        cls, name, original = _originals.pop(key)
+        setattr(cls, name, original)
 
 
 @contextlib.contextmanager
@@ -121,7 +149,7 @@ def backward_refused() -> Iterator[None]:
     with _installed():
         depth = getattr(_tracing, "depth", 0)
         if depth == 0:
-            _tracing.seen = False
+            _tracing.seen = None
         _tracing.depth = depth + 1
         try:
             yield
@@ -129,6 +157,7 @@ def backward_refused() -> Iterator[None]:
             _tracing.depth = depth
 
 
-def backward_seen() -> bool:
-    """Whether the last :func:`backward_refused` block of this thread met code with a backward of its own."""
-    return bool(getattr(_tracing, "seen", False))
+def backward_seen() -> str | None:
+    """What the last :func:`backward_refused` block of this thread met (:data:`OWN_BACKWARD` or
+    :data:`GRAD_MODE`, the first one), or ``None``."""
+    return getattr(_tracing, "seen", None)

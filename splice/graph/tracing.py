@@ -26,7 +26,7 @@ from torch import nn
 
 from ..copies import private_buffers, tree_copy
 from ..errors import GraphError, SpliceWarning, first_line
-from .backward import OWN_BACKWARD, backward_refused, backward_seen
+from .backward import backward_refused, backward_seen
 from .leaves import LeafRule, class_path, has_call_hooks, is_torch_builtin
 from .modes import describe_difference, modes_restored, original_class, set_training, spying, unspy_meta
 from .lifted import (adopt_lifted, buffer_states, keep_view_sources, module_state, plain_tensor_targets,
@@ -197,12 +197,12 @@ def _run_tracer(root: nn.Module, rule: LeafRule, n_inputs: int | None = None, wh
                 tracer = _Tracer(rule, leaf_buffers=False)
                 graph = tracer.trace(root, concrete_args=concrete)
     except Exception as exc:
-        error = GraphError(OWN_BACKWARD) if backward_seen() else exc  # the cause, not what code made of it
+        error = GraphError(backward_seen()) if backward_seen() else exc  # the cause, not what code made of it
         raise FxFailure(error, tracer.failed_in) from exc
     finally:
         updated = state_back(state)
     if backward_seen():  # the traced code caught the error and went on
-        raise FxFailure(GraphError(OWN_BACKWARD), tracer.failed_in)
+        raise FxFailure(GraphError(backward_seen()), tracer.failed_in)
     if changed is not None:
         changed.update(original_class(type(m)) for m in updated if m is not root)
     if whole and root in updated:

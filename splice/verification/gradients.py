@@ -21,13 +21,25 @@ from .report import CheckResult
 __all__: list[str] = []
 
 
-def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: float | None = None) -> CheckResult:
+CUT = ("no gradient reaches the input either, though the outputs depend on it: the forward cuts the gradient "
+       "(torch.no_grad, inference_mode, .detach(), an integer step) before the outputs, so a warp before the cut "
+       "cannot train; splice after it")
+
+
+def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: float | None = None,
+                  depends: bool | None = None) -> CheckResult:
+    """``depends``: whether the outputs moved when the input did (:func:`outputs_move`), asked only when no
+    gradient reaches the input: a zero-initialised head (a warning) or a forward that cuts the gradient (then each
+    warp is judged, and one that gets none fails)."""
     numbers: dict[str, Any] = {"warps": grads, "input_grad": input_grad}
     if error is not None:
         return CheckResult("gradients", False, numbers, f"the backward pass failed ({error})", "backward failed")
     if not warps:
         return CheckResult("gradients", True, numbers, "the model has no warps", "no warps")
-    if input_grad == 0.0:
+    cut = input_grad == 0.0 and bool(depends)
+    if cut:
+        numbers["outputs_depend_on_input"] = True
+    if input_grad == 0.0 and not cut:
         # nothing reaches the input either: the outputs do not depend on it (a zero-initialised head, say),
         # so no warp can get a gradient, however well it is spliced
         return CheckResult(
@@ -49,7 +61,9 @@ def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: 
                             "cut off from the loss")
     summary = ", ".join(f"{n} {g['final_bias']:.3g}" for n, g in grads.items())
     if problems:
-        return CheckResult("gradients", False, numbers, "; ".join(problems), f"|grad| final bias: {summary}")
+        text = "; ".join(problems) + (f"; {CUT}" if cut else "")
+        return CheckResult("gradients", False, numbers, text,
+                           "gradient cut before the outputs" if cut else f"|grad| final bias: {summary}")
     if frozen:
         text = (f"warp{'' if len(frozen) == 1 else 's'} {listed_names(frozen)} sample{'s' if len(frozen) == 1 else ''} "
                 "with 'nearest', which passes no "
@@ -87,6 +101,30 @@ def at_identity(spliced: nn.Module, x: tuple, seed: int, tuned_row: CheckResult)
                        f"at the identity, {again.detail}; at the tuned warps this probe gave none ("
                        f"{tuned_row.detail}), as a tuned head can on noise (a grid sent off the image, hidden units "
                        "silent): the warps are connected to the loss", again.summary)
+
+
+@torch.no_grad()
+def outputs_move(model: nn.Module, x: tuple, out) -> bool:
+    """Whether ``model`` (run on a twin with its own buffers) answers otherwise when its first input changes: the
+    images of the batch rolled by one (mirrored, for a batch of one), against ``out``, its outputs on ``x``."""
+    from ..copies import private_buffers
+
+    first = x[0].detach()
+    moved = first.roll(1, dims=0) if first.shape[0] > 1 else first.flip(-1)
+    if torch.equal(moved, first):
+        moved = first + 1.0
+    try:
+        with same_draws():
+            again = private_buffers(model)(moved, *[t.detach() for t in x[1:]])
+    except Exception:  # noqa: BLE001 - a model that cannot run it says nothing either way
+        return False
+    before, after = flatten_outputs(out), flatten_outputs(again)
+    for key, t in before.items():
+        u = after.get(key)
+        if (isinstance(u, torch.Tensor) and t.is_floating_point() and u.shape == t.shape
+                and not torch.allclose(t.detach().double(), u.double(), rtol=1e-5, atol=1e-6)):
+            return True
+    return False
 
 
 def gradient_norms(out, head_params: dict[str, dict[str, list]], seed: int,

@@ -25,7 +25,7 @@ from ..limits import check_fits, tensor_bytes
 from ..manifest import MANIFEST_NAME, SpliceInfo, edited_fields, info_of
 from ..store import base_part, open_folder
 from ..surgery import warps_of
-from .gradients import at_identity, gradient_norms, gradients_row, onnx_row, warp_head_params
+from .gradients import at_identity, gradient_norms, gradients_row, onnx_row, outputs_move, warp_head_params
 from .probe import (
     Laps,
     Snapshot,
@@ -273,7 +273,8 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
-            row = gradients_row(warps, grads, gerr, input_grad)
+            depends = outputs_move(spliced, fwd.x, fwd.out) if input_grad == 0.0 and gerr is None else None
+            row = gradients_row(warps, grads, gerr, input_grad, depends)
             if tuned and not row.passed and gerr is None:
                 row = at_identity(spliced, fwd.x, opts.seed, row)
             rows.append(row)
