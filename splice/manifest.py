@@ -67,6 +67,7 @@ from .errors import EditedManifestWarning, ManifestError, SpliceWarning
 from .schema import (FORMAT, MANIFEST_NAME, MECHANISMS, SCHEMA_VERSION, SCHEMA_VERSIONS, WEIGHTS_NAME,
                      record_problems, shape_ok, validate_manifest)
 from .sources import MODULE_SPEC, code_change
+from .sources.specs import spec_identity
 from .warps import WarpConfig
 
 __all__ = [
@@ -391,11 +392,13 @@ POINTS_KEY = "splice_points_sha256"
 #: held it when the weights were written
 FIELDS_KEY = "splice_fields_sha256"
 #: the fields of splice.json (dotted: inside ``source``) that change what the model computes or what its outputs
-#: mean: the builder's arguments, the inputs' shapes, the preprocessing, the class names, the tracing leaves, the
-#: warps (places, configs) and how they are attached. Provenance stays out (the source spec, its weights file and
-#: hashes, ``trained_on``, the tuning record, versions, dates): the provenance row reads those.
-MODEL_FIELDS = ("source.kwargs", "input_shape", "extra_inputs", "normalisation", "class_names", "leaves", "points",
-                "mechanism", "within", "sites", "loc_reads")
+#: mean: the architecture (the spec, a model file's folder left out: :func:`splice.sources.specs.spec_identity`)
+#: and the builder's arguments, the inputs' shapes, the preprocessing, the class names, the tracing leaves, the
+#: warps (places, configs) and how they are attached. Provenance stays out (the source weights file and hashes,
+#: ``trained_on``, the tuning record, versions, dates): the provenance row reads those. A field a file was written
+#: without (``source.spec`` before 2026-12-06) is not checked in it.
+MODEL_FIELDS = ("source.spec", "source.kwargs", "input_shape", "extra_inputs", "normalisation", "class_names",
+                "leaves", "points", "mechanism", "within", "sites", "loc_reads")
 
 
 def points_sha256(points) -> str:
@@ -413,7 +416,7 @@ def fields_sha256(manifest: Mapping) -> dict[str, str]:
         node: Any = manifest
         for part in name.split("."):
             node = node.get(part) if isinstance(node, Mapping) else None
-        out[name] = points_sha256(node)
+        out[name] = points_sha256(spec_identity(node) if name == "source.spec" else node)
     return out
 
 

@@ -217,3 +217,62 @@ def test_a_folder_written_before_the_fields_were_hashed_keeps_its_points_check(d
     with pytest.warns(splice.errors.EditedManifestWarning):
         splice.load(digits_folder)
     assert verify(digits_folder)["integrity"].summary == "points edited"
+
+
+def test_a_spec_edited_to_a_twin_architecture_fails_integrity_and_is_not_exported(tmp_path):
+    """timm's resnet18 and resnetblur18 have the same state dict (names and shapes) and compute different things
+    (blur pooling). A folder whose source.spec was edited from one to the other loaded silently, passed verify
+    (the provenance row rebuilt the edited spec too) and was exported. Reference: timm itself, the edited folder's
+    base computes exactly what timm's resnetblur18 does with those weights."""
+    import warnings
+
+    pytest.importorskip("timm")
+    import timm
+
+    import splice
+    from splice.errors import CheckFailed, EditedManifestWarning
+
+    folder = splice.save(splice.insert(splice.load_source("timm:resnet18", kwargs={"num_classes": 3},
+                                                          input_shape=(3, 32, 32), warn_random=False), at="input"),
+                         tmp_path / "sp")
+    _edit(folder, lambda d: d["source"].update(spec="timm:resnetblur18"))
+    with pytest.warns(EditedManifestWarning, match=r"splice\.json's source\.spec differ"):
+        base = splice.store.load_base(folder)
+    twin = timm.create_model("resnetblur18", pretrained=False, num_classes=3).eval()
+    twin.load_state_dict(base.state_dict())
+    x = torch.rand(2, 3, 32, 32)
+    with torch.no_grad():
+        assert torch.equal(base(x), twin(x))  # the edit is a real change of architecture
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", EditedManifestWarning)
+        report = splice.verify(folder)
+    assert report.failed == ["integrity"] and report["integrity"].numbers["edited_fields"] == ["source.spec"]
+    with pytest.raises(CheckFailed, match=r"source\.spec differ .*; nothing was exported"):
+        splice.export(folder, onnx=tmp_path / "edited.onnx")
+    assert not (tmp_path / "edited.onnx").exists()
+
+
+def test_a_model_file_moved_to_another_folder_is_no_edit_of_the_spec(tmp_path):
+    """A path/file.py:factory spec names its file by an absolute path; moving the file and pointing splice.json at
+    the new place changes no architecture (what the file holds is code_sha256's to check)."""
+    import shutil
+    import warnings
+
+    import splice
+
+    (tmp_path / "a").mkdir()
+    code = tmp_path / "a" / "bench_net.py"
+    code.write_text("from splice.models import tray_net\n\ndef make():\n    return tray_net()\n")
+    src = splice.load_source(f"{code}:make", input_shape=(1, 24, 24), warn_random=False, trust_code=True)
+    folder = splice.save(splice.insert(src, at="input"), tmp_path / "sp")
+    shutil.move(str(tmp_path / "a"), str(tmp_path / "b"))
+    _edit(folder, lambda d: d["source"].update(spec=f"{tmp_path / 'b' / 'bench_net.py'}:make"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        splice.load(folder, trust_code=True)
+        assert splice.verify(folder, trust_code=True).passed
+    _edit(folder, lambda d: d["source"].update(spec=f"{tmp_path / 'b' / 'bench_net.py'}:other"))
+    from splice.manifest import WEIGHTS_NAME, edited_fields
+    import json as _json
+
+    assert edited_fields(folder / WEIGHTS_NAME, _json.loads((folder / "splice.json").read_text())) == ["source.spec"]

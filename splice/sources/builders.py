@@ -25,7 +25,7 @@ from torch import nn
 
 from ..errors import SourceError, SpliceWarning, first_line, suggest
 from .huggingface import build_transformers
-from .specs import FILE_MODULE_PREFIX, split_spec
+from .specs import FILE_MODULE_PREFIX, is_file_head, split_spec
 from .timm import build_timm
 from .trust import check_spec
 
@@ -47,15 +47,11 @@ def _torchvision_builder(name: str):
     return tvm.get_model_builder(name)
 
 
-def _is_file_head(head: str) -> bool:
-    return head.endswith(".py") or os.sep in head or "/" in head
-
-
 def spec_file(spec: str) -> Path | None:
     """The Python file of a ``path/file.py:factory`` spec, when it is there; ``None`` for any other spec (a
     registry name such as ``torchvision:NAME`` names no file)."""
     head, sep, _ = spec.rpartition(":")
-    return Path(head) if sep and _is_file_head(head) and Path(head).is_file() else None
+    return Path(head) if sep and is_file_head(head) and Path(head).is_file() else None
 
 
 def absolute_spec(spec: str) -> str:
@@ -107,7 +103,7 @@ def code_change(spec: str, recorded: str | None) -> str | None:
 
 
 def _import_factory(head: str, attr: str, spec: str):
-    if _is_file_head(head):
+    if is_file_head(head):
         path = Path(head)
         if not path.is_file():
             raise SourceError(f"model file '{path}' does not exist (from spec {spec!r}); check the path")
@@ -273,7 +269,7 @@ def _build(spec: str, kwargs: Mapping | None, *, origin, trust_code: bool):
                             "factory": True}
     factory = _import_factory(head, attr, spec)
     try:
-        with _folder_importable(Path(head) if _is_file_head(head) else None):
+        with _folder_importable(Path(head) if is_file_head(head) else None):
             model = factory(**kwargs)
     except TypeError as exc:
         if kwargs:

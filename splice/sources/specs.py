@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import json
 import operator
+import os
 import re
 from collections.abc import Mapping, Sequence
 from typing import Any
@@ -27,7 +28,7 @@ from ..errors import SourceError
 
 __all__ = ["FILE_MODULE_PREFIX", "parse_input_shape", "parse_input_shapes", "format_shape", "parse_kwargs",
            "per_channel", "positive_int", "volumes_not_images", "four_numbers_first",
-           "parse_extra_shape"]
+           "parse_extra_shape", "is_file_head", "spec_identity"]
 
 #: the start of the module name a model file (spec ``path/to/file.py:factory``) is imported under; its classes
 #: are named to the user by their bare class name, which ``--leaf`` matches
@@ -207,6 +208,23 @@ def split_spec(spec: str) -> tuple[str, str]:
             "path/to/file.py:factory, or a folder written by 'splice insert'"
         )
     return head, tail
+
+
+def is_file_head(head: str) -> bool:
+    """Whether the part of a spec before its last ``:`` names a Python file (``path/to/file.py``)."""
+    return head.endswith(".py") or os.sep in head or "/" in head
+
+
+def spec_identity(spec: Any) -> Any:
+    """What of a spec names the architecture, for the hashes a folder's weights keep: the spec itself, or for a
+    ``path/to/file.py:factory`` spec the file's name and the factory (the folder may move, and what the file
+    holds is ``code_sha256``'s to check). Anything that is not a spec string comes back as it is."""
+    if not isinstance(spec, str):
+        return spec
+    head, sep, tail = spec.rpartition(":")
+    if sep and head and is_file_head(head):
+        return f"{os.path.basename(head.replace(os.sep, '/').rstrip('/'))}:{tail}"
+    return spec
 
 
 def positive_int(value: Any) -> int | None:
