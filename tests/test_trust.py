@@ -151,8 +151,10 @@ def test_a_run_json_naming_a_planted_folder_is_refused_on_resume(tmp_path, base_
 def test_the_opt_in_builds_the_py_factory(tmp_path, base_folder, capsys, monkeypatch):
     monkeypatch.delenv("SPLICE_TRUST_CODE", raising=False)
     planted = _plant(tmp_path, base_folder, "py")
-    assert main(["verify", str(planted["folder"]), "--trust-code"]) == 0, capsys.readouterr().err
-    assert "PASS" in capsys.readouterr().out.upper()
+    # built as asked; the planted spec is an edit of the architecture after saving, which integrity names
+    assert main(["verify", str(planted["folder"]), "--trust-code"]) == 1, capsys.readouterr().err
+    out = capsys.readouterr().out
+    assert "integrity" in out and "source.spec edited" in out, out
     assert _ran(planted)
 
 
@@ -185,6 +187,8 @@ def test_trusting_the_model_does_not_trust_the_one_it_is_compared_with(tmp_path,
     assert _ran(mine) and _ran(theirs)
 
 
+# a planted spec is also an edit of splice.json after saving, warned as such (test_the_opt_in_builds_the_py_factory)
+@pytest.mark.filterwarnings("ignore::splice.errors.EditedManifestWarning")
 def test_the_api_and_the_environment_opt_in(tmp_path, base_folder, monkeypatch):
     monkeypatch.delenv("SPLICE_TRUST_CODE", raising=False)
     planted = _plant(tmp_path, base_folder, "py")
@@ -272,6 +276,8 @@ def test_a_folder_naming_itself_is_refused_at_once(tmp_path, base_folder, capsys
     assert "names a folder" in _one_error_line(capsys)
 
 
+# a planted spec is also an edit of splice.json after saving, warned as such (test_the_opt_in_builds_the_py_factory)
+@pytest.mark.filterwarnings("ignore::splice.errors.EditedManifestWarning")
 def test_a_refused_against_model_names_the_python_opt_in_each_entry_point_takes(tmp_path, base_folder, monkeypatch):
     """The hint is followed as written: evaluate's against_options=ModelOptions(...), evaluate_keywords'
     against_trust_code= (the CLI's --against-trust-code is test_trusting_the_model_does_not_trust_...)."""
@@ -293,3 +299,38 @@ def test_a_refused_against_model_names_the_python_opt_in_each_entry_point_takes(
     theirs["sentinel"].unlink()
     evaluate_keywords(str(base_folder), **both, limit=8, against_trust_code=True)
     assert _ran(theirs)
+
+
+@pytest.mark.parametrize("trust", [False, True])
+def test_custom_code_asked_for_inside_a_sub_config_is_refused_before_transformers_can_prompt(tmp_path, capsys,
+                                                                                              monkeypatch, trust):
+    """auto_map was looked for at the top of config.json only: one inside backbone_config reached transformers'
+    AutoBackbone, which asked "Do you wish to run the custom code? [y/N]" on the terminal; a "y" (here on stdin)
+    imported the module the sub-config's _name_or_path pointed at, with no --trust-code. transformers asks whatever
+    splice passes, so such a config is refused either way, in one line, before anything is built."""
+    pytest.importorskip("transformers")
+    from transformers import DepthAnythingConfig
+
+    code, model = tmp_path / "code", tmp_path / "model"
+    code.mkdir(), model.mkdir()
+    sentinel = tmp_path / "RAN"
+    (code / "evil.py").write_text(f"open({str(sentinel)!r}, 'w').write('ran')\n")
+    config = DepthAnythingConfig().to_dict()
+    config["architectures"] = ["DepthAnythingForDepthEstimation"]
+    config["backbone_config"] = {"model_type": "vit", "hidden_size": 32, "num_hidden_layers": 1,
+                                 "num_attention_heads": 2, "intermediate_size": 32, "image_size": 28,
+                                 "patch_size": 14, "_name_or_path": str(code),
+                                 "auto_map": {"AutoBackbone": "evil.EvilBackbone"}}
+    (model / "config.json").write_text(json.dumps(config))
+    from safetensors.torch import save_file
+    import torch
+
+    save_file({"x": torch.zeros(1)}, str(model / "model.safetensors"))
+    import io
+
+    monkeypatch.setattr(sys, "stdin", io.StringIO("y\n"))
+    argv = ["points", str(model), "--input-shape", "3x28x28"] + (["--trust-code"] if trust else [])
+    assert main(argv) == 2
+    line = _one_error_line(capsys)
+    assert "backbone_config.auto_map asks for custom code inside a sub-config" in line, line
+    assert not sentinel.exists()

@@ -110,6 +110,8 @@ def code_request(config: Mapping) -> str | None:
     if "auto_map" in config:
         return "custom code (auto_map), which runs Python shipped with the model"
     for place, key, value, _ in _entries(config):
+        if key == "auto_map":
+            return f"custom code ({place}auto_map), which runs Python shipped with the model"
         kind = _IMPLEMENTATION_KEYS.get(key) if isinstance(key, str) else None
         if kind is None:
             continue
@@ -134,6 +136,11 @@ def _check_buildable(config: Mapping, where: str) -> None:
     arguments that load weights, or a ``backbone`` named without its ``backbone_config`` (transformers then looks
     the name up on the Hub)."""
     for place, key, value, parent in _entries(config):
+        if key == "auto_map" and place:
+            raise SourceError(f"{where}: the config's {place}auto_map asks for custom code inside a sub-config, which "
+                              "transformers would ask about on the terminal (or fetch from the Hub) while building, "
+                              "whatever --trust-code says; build the model in a file of your own and splice "
+                              "path/to/file.py:factory")
         if key in _MODEL_NAME_KEYS and isinstance(value, str) and ":" in value:
             raise SourceError(f"{where}: the config names {place}{key} {value!r}, a model timm would fetch from the "
                               "Hugging Face Hub or read from another folder; name a timm architecture "
