@@ -215,6 +215,24 @@ def test_a_factory_that_wraps_its_model_gives_the_module_it_wraps(tmp_path, wrap
         assert splice.verify(tmp_path / "spliced", trust_code=True).passed
 
 
+def test_a_model_pickled_from_a_scripts_main_gets_advice_that_can_work(tmp_path):
+    """A training script's torch.save(model) names its class on __main__, which is splice's own when splice loads
+    it: "put the folder on PYTHONPATH" cannot help. Reference: Python's pickle, the same file fails in a fresh
+    interpreter whose __main__ lacks the class."""
+    import subprocess
+
+    script = tmp_path / "train.py"
+    script.write_text("import torch, torch.nn as nn\nclass Net(nn.Sequential):\n    pass\n"
+                      f"torch.save(Net(nn.Conv2d(3, 4, 3)), {str(tmp_path / 'whole.pt')!r})\n")
+    subprocess.run([sys.executable, str(script)], check=True)
+    fresh = subprocess.run([sys.executable, "-c", f"import torch; torch.load({str(tmp_path / 'whole.pt')!r}, "
+                            "weights_only=False)"], capture_output=True, text=True)
+    assert fresh.returncode != 0 and "__main__" in fresh.stderr
+    with pytest.raises(WeightsError, match=r"pickled from a script run as __main__ \(class 'Net'\), which only that "
+                                           r"script can unpickle; save its state_dict there .* defines Net"):
+        load_source(str(tmp_path / "whole.pt"), trust_pickle=True, input_shape=(3, 8, 8))
+
+
 def test_a_pickled_module_whose_class_is_gone_says_so(tmp_path, monkeypatch):
     code = tmp_path / "code"
     code.mkdir()

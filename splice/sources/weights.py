@@ -96,6 +96,13 @@ def torch_load(path: Path, *, trust_pickle: bool):
             raise unsafe_checkpoint(path, exc) from None
         raise WeightsError(f"'{path}' is not a readable checkpoint ({exc}); it may be truncated or corrupt") from None
     except Exception as exc:  # any failure to parse the file means it is not a usable checkpoint
+        if trust_pickle and isinstance(exc, AttributeError) and "__main__" in str(exc):
+            found = re.search(r"attribute '(\w+)'", str(exc))
+            name = found.group(1) if found else "its class"
+            raise WeightsError(f"'{path}' holds a model pickled from a script run as __main__ (class {name!r}), which "
+                               "only that script can unpickle; save its state_dict there (torch.save(model."
+                               "state_dict(), FILE)) and splice path/to/file.py:FACTORY --weights FILE, with a file that "
+                               f"defines {name} without training at import") from None
         if trust_pickle and isinstance(exc, (ModuleNotFoundError, AttributeError)):
             # a whole pickled module names its class's module, which must import here as where it was saved
             raise WeightsError(f"'{path}' holds a pickled object whose class cannot be found ({first_line(exc)}); "
