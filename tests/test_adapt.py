@@ -228,10 +228,41 @@ def test_a_parameter_the_site_does_not_move_is_estimated_at_zero(truth, seed):
     if truth.rotation:
         assert est.rotation == pytest.approx(truth.rotation, rel=0.25), est.to_dict()
     else:
-        assert est.rotation == 0.0 and est.statistics["zeroed"]["angle_std"] == 1.0, est.to_dict()
+        assert est.rotation == 0.0 and est.statistics["zeroed"]["angle_rms"] == 1.0, est.to_dict()
     assert est.scale == (1.0, 1.0) and est.shift == pytest.approx(truth.shift, abs=0.01), est.to_dict()
-    assert est.statistics["floor"]["angle_std"] > 0.5, est.to_dict()  # the reader's noise, measured
-    assert est.statistics["zeroed"]["shift_std"] == float(not truth.shift), est.to_dict()
+    assert est.statistics["floor"]["angle_rms"] > 0.5, est.to_dict()  # the reader's noise, measured
+    assert est.statistics["zeroed"]["shift_rms"] == float(not truth.shift), est.to_dict()
+
+
+def test_a_constant_offset_gets_a_range_that_contains_it():
+    """A camera turned by a constant 30 degrees and shifted by 0.15 of the width: the spread about the mean is
+    almost nothing, and ranges symmetric about no motion were fitted to it (+-8.7 to +-26.5 degrees on the reporter's
+    sites, +-0.118 of shift for a true 0.15). Measured about no motion, the uniform ranges with the same root mean
+    square, 30 * sqrt(3) and 0.15 * sqrt(3 / 2) (the shift's two axes pooled, y at 0), contain the offsets; the mean
+    readings are kept (the reader's 0.7 pull towards no motion in them, as a probe's)."""
+    gen = torch.Generator().manual_seed(0)
+
+    def read(matrix: torch.Tensor) -> torch.Tensor:
+        eye = torch.eye(3, dtype=torch.float64)
+        return eye + 0.7 * (matrix - eye) + 0.01 * torch.randn(matrix.shape, generator=gen, dtype=torch.float64) * \
+            torch.tensor([[1.0, 1.0, 1.0], [1.0, 1.0, 1.0], [0.0, 0.0, 0.0]], dtype=torch.float64)
+
+    def simulate(est: RangeEstimate) -> dict:
+        _, meta = random_distort(torch.zeros(1024, 1, 8, 8), est.to_range(), torch.Generator().manual_seed(5))
+        return site_statistics(read(meta["matrix"]), size=(8, 8))
+
+    from splice.distort import affine_matrix
+
+    moved = affine_matrix(torch.full((500,), 30.0, dtype=torch.float64), 1.0, (0.15, 0.0), size=(8, 8))
+    moved = torch.cat([moved, torch.tensor([[[0.0, 0.0, 1.0]]], dtype=torch.float64).expand(500, 1, 3)], dim=1)
+    site = site_statistics(read(moved), size=(8, 8))
+    est = fit_ranges(site, simulate, outer=RangeEstimate(90.0, (0.5, 2.0), 0.5, 0.3),
+                     fallback=RangeEstimate(60.0, (0.8, 1.2), 0.25, 0.0),
+                     observable={"rotation": True, "scale": True, "shift": True, "perspective": False})
+    assert est.rotation == pytest.approx(30.0 * math.sqrt(3.0), rel=0.1) and est.rotation > 30.0, est.to_dict()
+    assert est.shift == pytest.approx(0.15 * math.sqrt(1.5), rel=0.1) and est.shift > 0.15, est.to_dict()
+    assert site["angle_mean"] == pytest.approx(0.7 * 30.0, rel=0.05) and site["angle_std"] < 2.0
+    assert site["shift_mean_x"] == pytest.approx(0.7 * 0.15, rel=0.05) and abs(site["shift_mean_y"]) < 0.01
 
 
 def _blurred_flat_reader(gen: torch.Generator, resampled: bool):

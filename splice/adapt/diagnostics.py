@@ -69,8 +69,10 @@ def _spread(model: nn.Module, warps: Mapping[str, nn.Module], images: Tensor, pr
             mats[name].append(w.matrix(w.predict(args[1] if len(args) > 1 else args[0])).double())
     for name, parts in mats.items():
         s = site_statistics(torch.cat(parts), size=tuple(warps[name].shape[1:]))
-        out[name] = {"rotation_std": round(s["angle_std"], 4), "scale_mean": round(s["scale_mean"], 4),
-                     "scale_std": round(s["scale_std"], 4), "shift_std": round(s["shift_std"], 4)}
+        out[name] = {"rotation_mean": round(s["angle_mean"], 4), "rotation_std": round(s["angle_std"], 4),
+                     "scale_mean": round(s["scale_mean"], 4), "scale_std": round(s["scale_std"], 4),
+                     "shift_mean": [round(s["shift_mean_x"], 4), round(s["shift_mean_y"], 4)],
+                     "shift_std": round(s["shift_std"], 4)}
     return out
 
 

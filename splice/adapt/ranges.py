@@ -22,10 +22,17 @@ What is read from each prediction ``S`` (normalised by ``S[2, 2]``):
   fit one residual direction per coordinate is left, the projection on
   ``v = (1, -1, -1, 1) / 2`` (corners ordered ``(-1,-1), (1,-1), (-1,1), (1,1)``).
 
-Site statistics: the standard deviation of ``angle``, the mean and standard
-deviation of ``scale``, the standard deviation of ``shift`` (both axes pooled)
-and the RMS of ``corner``. For a uniform draw on ``[-r, r]`` the standard
-deviation is ``r / sqrt(3)``, which gives a first guess of every range.
+Site statistics: the root mean square of ``angle`` (about no rotation), the
+mean and standard deviation of ``scale``, the root mean square of ``shift``
+(both axes pooled, about no shift) and the RMS of ``corner``. For a uniform
+draw on ``[-r, r]`` each is ``r / sqrt(3)``, which gives a first guess of every
+range. Ranges are symmetric about no motion, so the spread is measured about
+no motion too: a camera turned by a constant 30 degrees reads an RMS of 30 and
+gets a range of about +-52 degrees, which contains it (a standard deviation
+about the mean read it as almost no rotation). The means (``angle_mean``,
+``shift_mean_x``, ``shift_mean_y``; the standard deviations beside them) are
+kept for the record and the summary: they are the probe's raw readings, pulled
+towards no motion where it is unsure.
 
 That first guess is biased: the probe's own error widens the spread, and where
 it is unsure it regresses towards the middle of its training range, which
@@ -113,7 +120,7 @@ CENTRE_STEP = 0.05
 # on sites scaled 1.1-1.3 and 1.0-1.4, which it then found, and 1.3 on a site scaled 0.8-1.0)
 MIN_CENTRE_SLOPE = 0.1
 # which statistic answers for which parameter
-_STAT_OF = {"rotation": "angle_std", "scale": "scale_std", "shift": "shift_std", "perspective": "corner_rms"}
+_STAT_OF = {"rotation": "angle_rms", "scale": "scale_std", "shift": "shift_rms", "perspective": "corner_rms"}
 _ROOT3 = math.sqrt(3.0)
 
 
@@ -194,16 +201,21 @@ def site_statistics(matrices: Tensor, *, size: tuple[int, int]) -> dict[str, flo
     corner = _corner_residual(m)
     n = m.shape[0]
     std = (lambda t: float(t.std())) if n > 1 else (lambda t: 0.0)
-    return {"angle_std": std(d["angle_deg"]), "scale_mean": float(scale.mean()), "scale_std": std(scale),
-            "shift_std": std(shift), "corner_rms": float(corner.pow(2).sum(1).mean().sqrt()), "images": float(n)}
+    mean = (lambda t: float(t.mean())) if n > 0 else (lambda t: 0.0)
+    rms = (lambda t: float(t.pow(2).mean().sqrt())) if n > 0 else (lambda t: 0.0)
+    return {"angle_rms": rms(d["angle_deg"]), "angle_mean": mean(d["angle_deg"]), "angle_std": std(d["angle_deg"]),
+            "scale_mean": mean(scale), "scale_std": std(scale), "shift_rms": rms(shift), "shift_std": std(shift),
+            "shift_mean_x": mean(m[:, 0, 2]) / 2.0, "shift_mean_y": mean(m[:, 1, 2]) / 2.0,
+            "corner_rms": float(corner.pow(2).sum(1).mean().sqrt()) if n > 0 else 0.0, "images": float(n)}
 
 
 def first_guess(stats: dict[str, float], fallback: RangeEstimate) -> RangeEstimate:
-    """Uniform ranges with the statistics' spread: half-width ``sqrt(3)`` standard deviations."""
+    """Uniform ranges with the statistics' spread: half-width ``sqrt(3)`` root mean squares (standard deviations,
+    for the scale about its mean)."""
     half = _ROOT3 * stats["scale_std"]
-    return RangeEstimate(_ROOT3 * stats["angle_std"],
+    return RangeEstimate(_ROOT3 * stats["angle_rms"],
                          (max(1e-3, stats["scale_mean"] - half), stats["scale_mean"] + half),
-                         _ROOT3 * stats["shift_std"], fallback.perspective)
+                         _ROOT3 * stats["shift_rms"], fallback.perspective)
 
 
 def observability(simulate: Callable[[RangeEstimate], dict[str, float]], outer: RangeEstimate) -> dict[str, float]:
@@ -244,10 +256,10 @@ def _update(est: RangeEstimate, site: dict, sim: dict, start: RangeEstimate) -> 
         return value * site[key] / max(sim[key], 1e-12) if value > 0.0 else restart
 
     centre = _centre(est)
-    half = ratio(0.5 * (est.scale[1] - est.scale[0]), "scale_std", 0.5 * (start.scale[1] - start.scale[0]))
-    return RangeEstimate(ratio(est.rotation, "angle_std", start.rotation), (centre - half, centre + half),
-                         ratio(est.shift, "shift_std", start.shift),
-                         ratio(est.perspective, "corner_rms", start.perspective))
+    half = ratio(0.5 * (est.scale[1] - est.scale[0]), _STAT_OF["scale"], 0.5 * (start.scale[1] - start.scale[0]))
+    return RangeEstimate(ratio(est.rotation, _STAT_OF["rotation"], start.rotation), (centre - half, centre + half),
+                         ratio(est.shift, _STAT_OF["shift"], start.shift),
+                         ratio(est.perspective, _STAT_OF["perspective"], start.perspective))
 
 
 def _widths(est: RangeEstimate, site: dict, simulate, start: RangeEstimate, pin, iterations: int):

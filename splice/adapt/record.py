@@ -157,6 +157,12 @@ def _print_summary(run: AdaptRun, s: dict) -> None:
         run.bar.line(f"site ranges: rotation ±{r['rotation']:.1f}°, scale {r['scale'][0]:.3f}–{r['scale'][1]:.3f}, "
                      f"shift ±{r['shift']:.3f}, perspective {r['perspective']:.3f} "
                      f"(estimated: {', '.join(seen) or 'none'}; the rest as typed)")
+        site = r.get("statistics", {}).get("site", {})
+        if "angle_mean" in site:
+            run.bar.line(f"site images read on average as turned {site['angle_mean']:+.1f}° (+ = clockwise, as "
+                         f"--distort turns them) and shifted {site['shift_mean_x']:+.3f}, {site['shift_mean_y']:+.3f} "
+                         "of the image (right, down): the probe's raw readings, which it pulls towards no motion "
+                         "where unsure; the ranges above are symmetric and contain them")
         used = s["pretrain_ranges"]
         if used and used["scale"] != r["scale"]:
             run.bar.line(f"pre-training ranges: scale {used['scale'][0]:.3f}–{used['scale'][1]:.3f}, the site's "
@@ -167,5 +173,7 @@ def _print_summary(run: AdaptRun, s: dict) -> None:
                      f"{b['agreement']:.3f} → {a['agreement']:.3f}, class balance {b['class_balance']:.3f} → "
                      f"{a['class_balance']:.3f}")
     for name, sp in (a or {}).get("warp_spread", {}).items():
-        run.bar.line(f"warp {name} on site images: rotation std {sp['rotation_std']:.1f}°, scale "
+        mean = (f"rotation {sp['rotation_mean']:+.1f}° ± {sp['rotation_std']:.1f}°" if "rotation_mean" in sp
+                else f"rotation std {sp['rotation_std']:.1f}°")
+        run.bar.line(f"warp {name} on site images: {mean}, scale "
                      f"{sp['scale_mean']:.3f} ± {sp['scale_std']:.3f}, shift std {sp['shift_std']:.3f}")
