@@ -72,8 +72,15 @@ def test_reference_resolution_order(tmp_path):
     given = resolve_reference(folder, given="digits", trained_on="/elsewhere")
     assert (given.data, given.origin) == ("digits", "given")  # --reference wins over the record
     assert resolve_reference(folder, given="train").data == "train"
-    base = resolve_reference(folder, trained_on="/data/upright")
-    assert (base.data, base.origin) == ("/data/upright", "base")
+    (tmp_path / "upright").mkdir()
+    base = resolve_reference(folder, trained_on=str(tmp_path / "upright"))
+    assert (base.data, base.origin) == (str(tmp_path / "upright"), "base")
+    # a recorded folder that is gone: named, as the record's, whatever if_missing says (it said "image folder
+    # ... does not exist" of a path the user never typed)
+    for if_missing in ("stop", "skip"):
+        with pytest.raises(RecipeError, match=r"records as '/data/gone' \(source.trained_on\), and that folder is not "
+                                              r"there any more; pass --reference DATA"):
+            resolve_reference(folder, trained_on="/data/gone", if_missing=if_missing)
     assert resolve_reference(folder, trained_on=data_record(folder)).data == "train"  # trained on this very data
     assert resolve_reference(folder, if_missing="skip").skipped
     with pytest.raises(RecipeError, match=r"pass --reference DATA \(in Python, overrides=RecipeOverrides\("

@@ -12,7 +12,8 @@ stacked on a real one. :func:`resolve_reference` decides, in this order:
 2. the data set's built-in upright counterpart (``digits-moved`` -> ``digits``);
 3. the data the base was trained on, as its splice record says
    (``trained_on``, written by ``splice tune`` into every folder it saves and
-   carried over by ``splice insert``);
+   carried over by ``splice insert``); a recorded folder that is no longer on
+   disk stops the run with one line naming it (never a silent skip);
 4. the embedded ``digits``, which are upright themselves;
 5. otherwise none: with ``[pretrain] if_no_reference = "stop"`` (the default)
    tune stops with one line saying what to pass, with ``"skip"`` it trains
@@ -46,6 +47,13 @@ class Reference:
         return self.data is None
 
 
+def _missing_folder(recorded: str) -> bool:
+    """A recorded data folder (not a built-in data set's name) that is not on disk."""
+    from ..data import DATASETS
+
+    return recorded not in DATASETS and recorded != "train" and not Path(recorded).expanduser().is_dir()
+
+
 def data_record(data: str) -> str:
     """How a run records its data: a built-in data set by name, a folder by its absolute path."""
     from ..data import DATASETS
@@ -72,7 +80,15 @@ def resolve_reference(data: str, *, given: str | None = None, trained_on: str | 
     if upright is not None:
         return Reference(upright, "upright counterpart")
     if trained_on:
-        return Reference(trained_on if trained_on != data_record(data) else "train", "base")
+        if trained_on == data_record(data):
+            return Reference("train", "base")
+        if _missing_folder(trained_on):  # known but gone: said, whatever if_missing is, not silently skipped
+            raise RecipeError(
+                f"warp pre-training would read the images the base was trained on, which the model's folder records "
+                f"as '{trained_on}' (source.trained_on), and that folder is not there any more; pass --reference DATA "
+                "(images of the kind the base was trained on), or set [pretrain] reference = \"train\" to use the "
+                "training images")
+        return Reference(trained_on, "base")
     if data in _UPRIGHT_BUILTIN:
         return Reference(data, "embedded")
     if if_missing == "skip":
