@@ -59,6 +59,8 @@ from .imagefolder import FOLDER_LAYOUT, SPLITS, ImageFolderSet, open_folder
 __all__ = [
     "refuse_unreadable",
     "same_classes",
+    "shown_classes",
+    "first_class_difference",
     "DATASETS",
     "SPLITS",
     "DIGITS_SHAPE",
@@ -293,6 +295,24 @@ def same_classes(a: Sequence[str] | None, b: Sequence[str] | None) -> bool:
     model trained on a tree written on macOS, where names are decomposed, matches the same tree elsewhere)."""
     return [unicodedata.normalize("NFC", str(n)) for n in a or []] == [unicodedata.normalize("NFC", str(n))
                                                                           for n in b or []]
+
+
+def shown_classes(names: Sequence[str] | None, limit: int = 12) -> str:
+    """A class list for a message: the first ``limit`` names, and how many more (never cut silently)."""
+    names = [str(n) for n in names or []]
+    more = f", … {len(names) - limit} more" if len(names) > limit else ""
+    return "[" + ", ".join(repr(n) for n in names[:limit]) + more + "]"
+
+
+def first_class_difference(a: Sequence[str] | None, b: Sequence[str] | None) -> str:
+    """Where two class lists first part (after NFC, as :func:`same_classes` compares), in words: "class 9 is '9'
+    in one and 'nine' in the other", or how many each has when one list begins the other."""
+    na = [unicodedata.normalize("NFC", str(n)) for n in a or []]
+    nb = [unicodedata.normalize("NFC", str(n)) for n in b or []]
+    for i, (x, y) in enumerate(zip(na, nb)):
+        if x != y:
+            return f"class {i} is {x!r} in one and {y!r} in the other"
+    return f"{len(na)} classes against {len(nb)}"
 
 
 def normalise(x: Tensor, normalisation: dict | None) -> Tensor:

@@ -216,12 +216,13 @@ def _check_classes(logits, classes: list[str], who: str, source, data: str) -> N
             f"{', ...' if len(classes) > 12 else ''}); evaluate it on data with the same classes, or build "
             f"it for this data (e.g. --kwargs '{{\"num_classes\": {len(classes)}}}' and matching --weights)."
         )
-    from .data import same_classes
+    from .data import first_class_difference, same_classes, shown_classes
 
     names = getattr(source, "class_names", None)
     if names and not same_classes(names, classes):
         raise DataError(
-            f"{who} was trained on classes {names[:12]} but {data} has {classes[:12]} in that order; "
+            f"{who} was trained on classes {shown_classes(names)} but {data} has {shown_classes(classes)} in that "
+            f"order ({first_class_difference(names, classes)}); "
             "the labels would not line up. Use data with the same class folders."
         )
 

@@ -71,7 +71,8 @@ def test_a_root_statistic_updated_while_tracing_sends_the_model_to_hooks():
     # the tracer ran mul_(0.9) on the real buffer once and recorded only the add_: the spliced graph's statistic
     # drifted from the base's from the first call (0.4027 against 0.5423 after three), unseen by every check
     model = _Monitored().eval()
-    with pytest.warns(TraceFallbackWarning, match="changes its buffer .feature_mean."):
+    # the trace stops at the no_grad block now, before the update (a block it would drop), with the same outcome
+    with pytest.warns(TraceFallbackWarning, match="changes its buffer .feature_mean.|switches gradients or autocast"):
         spliced = splice.insert(model, at="input", input_shape=(3, 8, 8))
     assert spliced.splice_info.mechanism == "hooks"
     reference = _Monitored().eval()

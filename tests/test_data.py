@@ -405,3 +405,18 @@ def test_a_folder_named_like_an_embedded_set_is_named_not_read_silently(tmp_path
                                          r"\./digits-moved is not read"):
         site = open_images("digits-moved", (1, 48, 48))
     assert len(site) == 1078
+
+
+def test_class_lists_in_messages_are_never_cut_silently_and_name_the_first_difference():
+    """Messages showed the first six or eight names with no ellipsis: ten digit classes whose last folder was
+    renamed '9' -> 'nine' printed as two identical lists."""
+    from splice.data import first_class_difference, shown_classes
+
+    model = [str(i) for i in range(10)]
+    data = model[:9] + ["nine"]
+    assert first_class_difference(model, data) == "class 9 is '9' in one and 'nine' in the other"
+    assert first_class_difference(model, model[:9]) == "10 classes against 9"
+    assert shown_classes(model, limit=6) == "['0', '1', '2', '3', '4', '5', … 4 more]"
+    assert shown_classes(model[:3]) == "['0', '1', '2']" and shown_classes(None) == "[]"
+    # after Unicode NFC, as same_classes compares: a folder written on macOS (decomposed) is the same class
+    assert first_class_difference(["caf\u00e9", "x"], ["cafe\u0301", "y"]) == "class 1 is 'x' in one and 'y' in the other"

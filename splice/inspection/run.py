@@ -219,7 +219,7 @@ def _unlabelled(data, input_shape):
 
 def _score(sample: _Sample, logits: Tensor | None) -> None:
     """Predicted classes and accuracy, when the model returns one logit per class."""
-    from ..data import same_classes
+    from ..data import first_class_difference, same_classes, shown_classes
 
     classes = sample.classes
     if logits is None or (classes and logits.shape[1] != len(classes)):
@@ -232,8 +232,10 @@ def _score(sample: _Sample, logits: Tensor | None) -> None:
         sample.predicted = logits.argmax(dim=1)  # what the model says, with nothing to score it against
         return
     if sample.model_classes and classes and not same_classes(sample.model_classes, classes):
-        sample.accuracy_note = (f"no accuracy: the model was trained on classes {sample.model_classes[:12]} but the "
-                                f"data has {list(classes)[:12]}, so the labels would not line up")
+        sample.accuracy_note = (f"no accuracy: the model was trained on classes {shown_classes(sample.model_classes)} "
+                                f"but the data has {shown_classes(classes)} ("
+                                f"{first_class_difference(sample.model_classes, classes)}), so the labels would not "
+                                "line up")
         return
     if classes:  # the early returns above leave logits of one score per class
         sample.predicted = logits.argmax(dim=1)

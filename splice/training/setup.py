@@ -205,7 +205,8 @@ def refuse_train_mode_output(net: nn.Module, input_shape, rec: Recipe, device) -
 
 def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[str]]:
     """The train and val splits and their class names, checked against the model's outputs and classes."""
-    from ..data import ImageFolderSet, open_data, refuse_unreadable, same_classes
+    from ..data import (ImageFolderSet, first_class_difference, open_data, refuse_unreadable, same_classes,
+                        shown_classes)
 
     shape = tuple(src.input_shape)
     train = open_data(data, "train", input_shape=shape)
@@ -224,7 +225,8 @@ def open_splits(data: str, src, net: nn.Module, device) -> tuple[Any, Any, list[
         )
     if src.class_names and classes and not same_classes(src.class_names, classes):
         raise DataError(
-            f"the model was trained on classes {src.class_names[:6]} but data {data!r} has {classes[:6]}; "
+            f"the model was trained on classes {shown_classes(src.class_names)} but data {data!r} has "
+            f"{shown_classes(classes)} ({first_class_difference(src.class_names, classes)}); "
             "class folders must match the model's classes (same names, same order: the folders are read in sorted "
             "order, so name them to sort as the model's outputs do)"
         )

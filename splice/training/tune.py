@@ -50,7 +50,7 @@ from typing import Any
 
 import torch
 
-from ..data import same_classes
+from ..data import first_class_difference, same_classes, shown_classes
 from ..errors import DataError, RecipeError, SpliceError, TrainingDiverged, first_line
 from ..fileio import name_bytes
 from ..graph.shapes import input_dtype
@@ -323,9 +323,9 @@ def _refuse_other_classes(info: dict, classes, data) -> None:
     """A resumed run whose class folders were renamed or added would go on with each output meaning another class."""
     started = info.get("class_names")
     if not same_classes(started, classes or None):
-        raise DataError(f"the run started with classes {list(started or [])[:8]} but data {data!r} now has "
-                        f"{list(classes or [])[:8]}; restore the class folders as they were, or start a new run "
-                        "with another --out")
+        raise DataError(f"the run started with classes {shown_classes(started)} but data {data!r} now has "
+                        f"{shown_classes(classes)} ({first_class_difference(started, classes)}); restore the class "
+                        "folders as they were, or start a new run with another --out")
 
 
 def _image_list_sha256(*splits) -> str | None:
