@@ -72,3 +72,52 @@ def test_a_folder_of_unlabelled_images_is_inspected_without_an_accuracy(tmp_path
         own = model(load_images(files, DIGITS_SHAPE)).argmax(1).tolist()
     assert [int(r["predicted"]) for r in rows] == own
     assert (tmp_path / "report" / "sheet_input.png").is_file()
+
+
+@pytest.mark.parametrize("layout", ["days", "mixed"])
+def test_a_site_folder_with_subfolders_is_read_as_tune_reads_a_site(tmp_path, layout):
+    """A site's images in day1/ and day2/ were read as two classes (and the predictions dropped, 10 scores against 2
+    classes, under a 'test' split that is not there); images beside one subfolder were skipped without a word (10
+    of 30 read). Every image is read, without labels, as 'tune --site' reads the folder (splice.adapt's
+    open_images, the reference here)."""
+    import numpy as np
+    from PIL import Image
+
+    from splice.adapt.images import open_images
+
+    site = tmp_path / "site"
+    digits = open_data("digits-moved", "test").images[:9]
+    places = ["day1", "day1", "day1", "day2", "day2", "day2", "day2", "day2", "day2"] if layout == "days" else \
+        ["", "", "", "", "", "", "day2", "day2", "day2"]
+    for k, (img, sub) in enumerate(zip(digits, places)):
+        (site / sub).mkdir(parents=True, exist_ok=True)
+        Image.fromarray((img[0].numpy() * 255).round().astype(np.uint8)).save(site / sub / f"part{k}.png")
+    folder = _folder(tmp_path / "spliced", [str(d) for d in range(10)])
+    result = splice.inspect(folder, data=str(site), n=20, out=tmp_path / "report", pictures=False)
+    assert result["n_images"] == 9 == len(open_images(str(site), DIGITS_SHAPE))
+    assert result["split"] is None and result["accuracy"] is None
+    assert result["accuracy_note"].startswith("no accuracy: the images carry no labels")
+
+
+def test_class_folders_named_as_the_models_classes_stay_labelled(tmp_path):
+    import numpy as np
+    from PIL import Image
+
+    data = tmp_path / "labelled"
+    moved = open_data("digits-moved", "test")
+    for k in range(6):
+        label = int(moved.labels[k])
+        (data / str(label)).mkdir(parents=True, exist_ok=True)
+        Image.fromarray((moved.images[k][0].numpy() * 255).round().astype(np.uint8)).save(data / str(label) / f"{k}.png")
+    folder = _folder(tmp_path / "spliced", [str(d) for d in range(10)])
+    result = splice.inspect(folder, data=str(data), n=20, out=tmp_path / "report", pictures=False)
+    # folders of some of the model's classes (a labelled batch from a site): scored by name, not refused as a
+    # count of classes that differs from the outputs; reference: the model's own predictions on the same files
+    assert result["n_images"] == 6 and result["accuracy_note"] is None
+    from splice.imagefiles import load_images
+
+    files = sorted(data.rglob("*.png"))
+    truth = torch.tensor([int(f.parent.name) for f in files])
+    with torch.no_grad():
+        own = splice.load(folder).eval()(load_images([str(f) for f in files], DIGITS_SHAPE)).argmax(1)
+    assert result["accuracy"] == pytest.approx(float((own == truth).double().mean()), abs=1e-9)

@@ -186,31 +186,61 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
     from ..data import open_data
 
     input_shape = tuple(facts.input_shape)
-    ds = _unlabelled(data, input_shape)  # a folder of images and no subfolder (a site's), else a labelled split
+    ds = _unlabelled(data, input_shape, facts.class_names)  # a site's images, else a labelled split
     if ds is None:
         ds = open_data(data, split, input_shape=input_shape)
     unlabelled = ds.classes == []
     classes = list(getattr(ds, "classes", []) or []) or facts.class_names
     images, labels, indices = _sample_images(ds, n)
+    if facts.class_names and ds.classes:
+        classes, labels = _by_name(list(facts.class_names), classes, labels)
     sample = _Sample(images=images, labels=labels, indices=indices, classes=classes,
                      normalisation=facts.normalisation, input_shape=input_shape,
                      model_classes=list(facts.class_names) if facts.class_names else None, unlabelled=unlabelled,
                      files=[str(ds.samples[int(i)][0]) for i in indices] if hasattr(ds, "samples") else None)
     if unlabelled:
-        sample.accuracy_note = "no accuracy: the images carry no labels (a folder of images without class folders)"
+        sample.accuracy_note = ("no accuracy: the images carry no labels (a site's folder: images, not folders of the "
+                                "model's classes)")
     return sample
 
 
-def _unlabelled(data, input_shape):
-    """The images of the folder ``data`` as a split without labels (label -1), when it holds image files and no
-    visible subfolder (as a site's unlabelled images arrive); else ``None`` (a data set name, or an ImageFolder
-    tree, which :func:`splice.data.open_data` reads and checks)."""
+def _by_name(model_classes: list, classes: list, labels: Tensor) -> tuple[list, Tensor]:
+    """Labels of class folders that are some of the model's classes (a labelled batch from a site of a few classes),
+    renumbered by the model's own order of names; other folders as they are (scored only when the lists agree)."""
+    import unicodedata
+
+    index = {unicodedata.normalize("NFC", str(c)): i for i, c in enumerate(model_classes)}
+    names = [unicodedata.normalize("NFC", str(c)) for c in classes]
+    if not names or not all(n in index for n in names):
+        return classes, labels
+    mapping = torch.tensor([index[n] for n in names], dtype=torch.long)
+    return model_classes, mapping[labels]
+
+
+def _unlabelled(data, input_shape, model_classes=None):
+    """Every image under the folder ``data`` (as ``tune --site`` reads a site) as a split without labels (label
+    -1), unless it is an ImageFolder tree: split folders, or only subfolders, each one of ``model_classes`` (all
+    subfolders, when the model names no classes). Image files beside subfolders, or subfolders that are not the
+    model's classes (a site's ``day1/``, ``day2/``), make it a site's. ``None`` for a data set name or a tree,
+    which :func:`splice.data.open_data` reads and checks."""
+    import unicodedata
+
     from ..data import ImageFolderSet
-    from ..imagefiles import list_image_files
+    from ..imagefiles import image_suffixes, list_image_files
+    from ..imagefolder import split_folders
 
     root = Path(str(data))
-    if not root.is_dir() or any(d.is_dir() and not d.name.startswith(".") for d in root.iterdir()):
+    if not root.is_dir():
         return None
+    visible = [p for p in root.iterdir() if not p.name.startswith(".")]
+    dirs = [p for p in visible if p.is_dir()]
+    loose = any(p.is_file() and p.suffix.lower() in image_suffixes() for p in visible)
+    if dirs and not loose:
+        if split_folders(root):
+            return None
+        known = {unicodedata.normalize("NFC", str(c)) for c in model_classes or ()}
+        if not known or all(unicodedata.normalize("NFC", d.name) in known for d in dirs):
+            return None
     files = list_image_files(root)
     if not files:
         return None
