@@ -127,6 +127,22 @@ def _image_rows(base, identity_model, images, opts: _Options, tuned: bool) -> Ch
     return outputs_row("images", merge_compares(chunks), tuned, f"{images.shape[0]} image(s) from --images")
 
 
+def _unsaved_said(row: CheckResult, base: nn.Module, spliced: nn.Module) -> CheckResult:
+    """A failed outputs ``row`` that names the base's buffers kept out of the weights (non-persistent) whose values
+    differ between the two models: drawn when a model is built, they make every build another model."""
+    saved = set(base.state_dict())
+    theirs = dict(spliced.named_buffers())
+    differ = [n for n, t in base.named_buffers() if n not in saved and n in theirs
+              and theirs[n].shape == t.shape and not torch.equal(theirs[n], t)]
+    if not differ:
+        return row
+    return dataclasses.replace(row, detail=(
+        f"{row.detail}; the base's buffer{'s' if len(differ) > 1 else ''} {', '.join(repr(n) for n in differ[:4])}"
+        f"{', …' if len(differ) > 4 else ''}, kept out of the weights (persistent=False), differ between the two "
+        "models built here: drawn when a model is built, they make every build another model; register them with "
+        "persistent=True, or compute them without a random draw"))
+
+
 def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, tuned: bool, tuned_declared: bool,
                  distances: dict[str, float]) -> list[CheckResult]:
     """``outputs``, ``images`` (with images) and ``warps``, from a spliced forward pass that worked."""
@@ -135,6 +151,8 @@ def _output_rows(base, spliced, x, ref, out, probe, *, images, opts: _Options, t
     id_out = run_no_grad(identity_model, x, "spliced model at the identity") if tuned else out
     rows = [outputs_row("outputs", compare_outputs(ref, detached(id_out), tol=opts.tol), tuned,
                          f"seeded N(0,1) probe of {opts.batch}")]
+    if not rows[0].passed:
+        rows[0] = _unsaved_said(rows[0], base, spliced)
     if images is not None:
         rows.append(_image_rows(base, identity_model, images, opts, tuned))
     deviation = compare_outputs(detached(id_out), detached(out), tol=math.inf) if tuned else None
