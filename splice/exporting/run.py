@@ -15,7 +15,7 @@ from ..folders import check_file_target
 from ..manifest import MANIFEST_NAME, WEIGHTS_NAME, edited_fields, info_of
 from ..sources import code_change
 from ..store import load
-from .onnx import check_opset, export_onnx_bytes, site_names, with_metadata
+from .onnx import batch_bound, check_opset, export_onnx_bytes, site_names, with_metadata
 from .parity import model_dtype, onnx_parity
 from .pt2 import export_pt2_bytes, pt2_parity
 
@@ -58,7 +58,13 @@ def _one(model, fmt: str, shapes, *, dynamic_batch: bool, opset: int, exporter: 
         data = export_onnx_bytes(model, example, opset=opset, dynamic_batch=dynamic_batch, exporter=exporter,
                                  conversions=conversions)
         seconds = time.perf_counter() - start
-        return data, onnx_parity(model, data, batches, tol=tol, exporter=exporter, conversions=conversions), seconds
+        result = onnx_parity(model, data, batches, tol=tol, exporter=exporter, conversions=conversions)
+        if dynamic_batch and result["passed"] and batch_bound(model, example):  # checked at 1 and 3, not beyond
+            result = {**result, "passed": False, "branch_on_batch": True,
+                      "detail": f"{result['detail']}; the model takes a Python branch or number from the batch size "
+                                "(torch.export with a batch of any size stops there), which a graph for any batch "
+                                "fixes at the traced batch's"}
+        return data, result, seconds
     data = export_pt2_bytes(model, example, dynamic_batch=dynamic_batch)
     seconds = time.perf_counter() - start
     return data, pt2_parity(model, data, batches, tol=tol), seconds
@@ -92,7 +98,8 @@ def _checked(model, fmt: str, shapes, *, dynamic_batch: bool, **options) -> tupl
         why = ("the model's graph depends on its batch size" if sized else
                "the graph may hold the traced batch's sizes, or the probe is ill-conditioned")
         how = (f"failed ({result['detail']})" if data is None else
-               f"does not match the model at batch sizes 1 and 3 ({result['detail']}); {why}")
+               f"would fix the model's branch on its batch size ({result['detail']})" if result.get("branch_on_batch")
+               else f"does not match the model at batch sizes 1 and 3 ({result['detail']}); {why}")
         warnings.warn(f"the {fmt} export with a dynamic batch {how}, so a static batch of 1 is exported instead "
                       "(--static-batch says so explicitly)", SpliceWarning, stacklevel=3)
         return (*static, False)

@@ -73,13 +73,13 @@ def quiet_export(*, always: bool = False):
         yield
 
 
-def export_quietly(twin: nn.Module, args: tuple, kwargs: dict | None = None):
-    """``torch.export.export(twin, args, kwargs, strict=False)`` with nothing on the terminal (:func:`quiet_export`,
-    even under ``--debug``: splice tries it to learn about the model); raises what it raises. ``twin`` is splice's
-    own copy (the export runs its forward).
+def export_quietly(twin: nn.Module, args: tuple, kwargs: dict | None = None, dynamic_shapes=None):
+    """``torch.export.export(twin, args, kwargs, strict=False, dynamic_shapes=...)`` with nothing on the terminal
+    (:func:`quiet_export`, even under ``--debug``: splice tries it to learn about the model); raises what it raises.
+    ``twin`` is splice's own copy (the export runs its forward).
     """
     with quiet_export(always=True):
-        return torch.export.export(twin, args, kwargs or {}, strict=False)
+        return torch.export.export(twin, args, kwargs or {}, strict=False, dynamic_shapes=dynamic_shapes)
 
 _CONV_OPS = frozenset({"conv2d", "convolution", "_convolution", "conv_transpose2d", "cudnn_convolution"})
 
