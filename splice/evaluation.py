@@ -206,6 +206,7 @@ def _batches(ds, batch_size: int, n: int):
 
 
 def _check_classes(logits, classes: list[str], who: str, source, data: str) -> None:
+    from .data import first_class_difference, same_classes, shown_classes
     if not isinstance(logits, Tensor) or logits.dim() != 2:
         shape = tuple(logits.shape) if isinstance(logits, Tensor) else type(logits).__name__
         raise DataError(f"{who} returns {shape}, not (N, classes) logits; evaluate needs a classifier.")
@@ -216,8 +217,6 @@ def _check_classes(logits, classes: list[str], who: str, source, data: str) -> N
             f"{', ...' if len(classes) > 12 else ''}); evaluate it on data with the same classes, or build "
             f"it for this data (e.g. --kwargs '{{\"num_classes\": {len(classes)}}}' and matching --weights)."
         )
-    from .data import first_class_difference, same_classes, shown_classes
-
     names = getattr(source, "class_names", None)
     if names and not same_classes(names, classes):
         raise DataError(

@@ -332,5 +332,5 @@ def test_custom_code_asked_for_inside_a_sub_config_is_refused_before_transformer
     argv = ["points", str(model), "--input-shape", "3x28x28"] + (["--trust-code"] if trust else [])
     assert main(argv) == 2
     line = _one_error_line(capsys)
-    assert "backbone_config.auto_map asks for custom code inside a sub-config" in line, line
+    assert "backbone_config.auto_map asks for custom code in a sub-config" in line, line
     assert not sentinel.exists()

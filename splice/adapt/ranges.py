@@ -317,7 +317,8 @@ def _spread_error(site: dict, sim: dict, key: str) -> float:
 
 def _zero_still(est: RangeEstimate, site: dict, simulate, pin, observable: dict[str, bool]):
     """Still parameters (module docstring): a parameter whose site spread is within :data:`CENTRE_Z` standard
-    errors of its floor (its statistic with that parameter still and the rest as estimated) is set to 0. Returns ``(estimate, record)``; the record's ``floor``,
+    errors of its floor (its statistic with that parameter still and the rest as estimated) is set to 0.
+    Returns ``(estimate, record)``; the record's ``floor``,
     ``floor_standard_error`` and ``zeroed`` (0 or 1) map each statistic to a number.
     """
     record: dict[str, dict[str, float]] = {"floor": {}, "floor_standard_error": {}, "zeroed": {}}

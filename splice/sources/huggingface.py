@@ -12,13 +12,12 @@ configuration. The weights are read safely (safetensors, or
 The splice records ``transformers:ClassName`` with ``{"config": {...}}`` as its
 kwargs, so a spliced folder rebuilds without the source folder.
 
-A config with ``auto_map`` asks for code shipped in the folder. It is built
-only with ``trust_code=True`` (``--trust-code``), through transformers' own
-loader for local code; the spliced folder then records the code folder and
-needs it (and the opt-in) to rebuild. So is a config that names an attention
-or experts implementation other than torch's own (``flash_attention_2``, a
-Hub reference ``org/repo``): transformers may fetch those from the Hugging
-Face Hub as code. A quantized config (``quantization_config``) is refused.
+Built only with ``trust_code=True`` (``--trust-code``): a config with
+``auto_map`` (code shipped in the folder, loaded by transformers' own loader;
+the spliced folder then needs it and the opt-in to rebuild), or naming an
+attention or experts implementation other than torch's own (``flash_attention_2``,
+``org/repo``: code transformers may fetch from the Hub). Refused: ``auto_map``
+in a sub-config, a quantized config (``quantization_config``).
 
 Nothing is downloaded: ``use_pretrained_backbone`` is forced off, and hub
 kernels stay off when the weights are read.
@@ -107,16 +106,12 @@ def code_request(config: Mapping) -> str | None:
     """What in a config (the contents of ``config.json``) asks transformers to run code the file chose, in words
     (custom code in ``auto_map``, or an attention or experts implementation other than torch's own, at any depth,
     which the kernels package may fetch from the Hugging Face Hub); ``None`` when nothing does."""
-    if "auto_map" in config:
-        return "custom code (auto_map), which runs Python shipped with the model"
     for place, key, value, _ in _entries(config):
         if key == "auto_map":
             return f"custom code ({place}auto_map), which runs Python shipped with the model"
         kind = _IMPLEMENTATION_KEYS.get(key) if isinstance(key, str) else None
-        if kind is None:
-            continue
-        torchs = _TORCH_IMPLEMENTATIONS[kind]
-        for v in _leaves(value):
+        torchs = _TORCH_IMPLEMENTATIONS[kind] if kind is not None else ()
+        for v in _leaves(value) if kind is not None else ():
             if v is not None and not (isinstance(v, str) and v in torchs):
                 return (f"{place}{key} {v!r}, which transformers may fetch from the Hugging Face Hub as code "
                         f"(torch's own: {', '.join(sorted(torchs))})")
@@ -137,10 +132,9 @@ def _check_buildable(config: Mapping, where: str) -> None:
     the name up on the Hub)."""
     for place, key, value, parent in _entries(config):
         if key == "auto_map" and place:
-            raise SourceError(f"{where}: the config's {place}auto_map asks for custom code inside a sub-config, which "
-                              "transformers would ask about on the terminal (or fetch from the Hub) while building, "
-                              "whatever --trust-code says; build the model in a file of your own and splice "
-                              "path/to/file.py:factory")
+            raise SourceError(f"{where}: the config's {place}auto_map asks for custom code in a sub-config, which "
+                              "transformers asks about on the terminal while building, whatever --trust-code says; "
+                              "build the model in a file of your own and splice path/to/file.py:factory")
         if key in _MODEL_NAME_KEYS and isinstance(value, str) and ":" in value:
             raise SourceError(f"{where}: the config names {place}{key} {value!r}, a model timm would fetch from the "
                               "Hugging Face Hub or read from another folder; name a timm architecture "

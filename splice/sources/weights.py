@@ -101,8 +101,8 @@ def torch_load(path: Path, *, trust_pickle: bool):
             name = found.group(1) if found else "its class"
             raise WeightsError(f"'{path}' holds a model pickled from a script run as __main__ (class {name!r}), which "
                                "only that script can unpickle; save its state_dict there (torch.save(model."
-                               "state_dict(), FILE)) and splice path/to/file.py:FACTORY --weights FILE, with a file that "
-                               f"defines {name} without training at import") from None
+                               "state_dict(), FILE)) and splice path/to/file.py:FACTORY --weights FILE, with a file "
+                               f"that defines {name} without training at import") from None
         if trust_pickle and isinstance(exc, (ModuleNotFoundError, AttributeError)):
             # a whole pickled module names its class's module, which must import here as where it was saved
             raise WeightsError(f"'{path}' holds a pickled object whose class cannot be found ({first_line(exc)}); "

@@ -160,7 +160,8 @@ def load_model(req: Request, where: str):
     if not rec.uses_warps and warps:
         raise RecipeError(
             f"{where} ({rec.mode}) trains plain models, but {describe(model)} holds warps at "
-            f"{', '.join(warps)}; use 'joint', 'warp-only' or 'staged', or tune the model before splicing"
+            f"{', '.join(warps)}; use 'joint', 'warp-only' or 'staged' (with labels), 'label-free' (site images "
+            "without labels), or tune the model before splicing"
         )
     if not warps and info_of(net) is None and getattr(src, "spec", MODULE_SPEC) == MODULE_SPEC:
         raise SpliceError(

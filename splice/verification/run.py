@@ -291,16 +291,15 @@ def _run_checks(base: nn.Module, spliced: nn.Module, info: SpliceInfo, opts: _Op
         lap("provenance")
         if fwd.out is not None:
             grads, gerr, input_grad = gradient_norms(fwd.out, head_params, opts.seed, fwd.x)
-            depends = outputs_move(spliced, fwd.x, fwd.out) if input_grad == 0.0 and gerr is None else None
-            row = gradients_row(warps, grads, gerr, input_grad, depends)
+            row = gradients_row(warps, grads, gerr, input_grad,
+                                outputs_move(spliced, fwd.x, fwd.out) if input_grad == 0.0 and gerr is None else None)
             if tuned and not row.passed and gerr is None:
                 row = at_identity(spliced, fwd.x, opts.seed, row)
             rows.append(row)
             lap("gradients")
             fwd.out = None  # free the autograd graph before exporting
         else:
-            rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe",
-                                    "not run"))
+            rows.append(CheckResult("gradients", False, {}, "not run: the spliced model fails on the probe", "not run"))
         if opts.onnx:
             example = tuple(t[:1].detach() for t in fwd.x)
             # the model no probe ran (the export makes its own twin of it): a forward that caches tensors derived
