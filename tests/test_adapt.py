@@ -872,3 +872,16 @@ def test_a_resume_says_where_it_goes_on_and_a_finished_run_that_it_finished(tmp_
     said = capsys.readouterr()
     assert f"run {labelled} already finished its 1 epoch (step {done['steps']}); nothing to resume" in \
         said.out + said.err and "resuming" not in said.out + said.err
+
+
+def test_a_label_free_run_whose_recorded_reference_is_gone_says_which_and_what_to_pass(tmp_path):
+    """The base's training folder, recorded in the model's folder, was moved away: the refusal named "no reference
+    known" (or, before, a path the user never typed), and the advice to set reference = "train" cannot work for a
+    site without labels."""
+    from splice.adapt.setup import reference_for_site
+
+    with pytest.raises(RecipeError, match=r"label-free recipe needs upright reference images, and the images the base "
+                                          r"was trained on, which the model's folder records as '/data/gone' .* pass "
+                                          r"--reference REF") as refused:
+        reference_for_site(load_recipe("label-free"), str(tmp_path), None, trained_on="/data/gone")
+    assert '"train"' not in str(refused.value)

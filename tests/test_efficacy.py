@@ -75,12 +75,13 @@ def test_reference_resolution_order(tmp_path):
     (tmp_path / "upright").mkdir()
     base = resolve_reference(folder, trained_on=str(tmp_path / "upright"))
     assert (base.data, base.origin) == (str(tmp_path / "upright"), "base")
-    # a recorded folder that is gone: named, as the record's, whatever if_missing says (it said "image folder
-    # ... does not exist" of a path the user never typed)
-    for if_missing in ("stop", "skip"):
-        with pytest.raises(RecipeError, match=r"records as '/data/gone' \(source.trained_on\), and that folder is not "
-                                              r"there any more; pass --reference DATA"):
-            resolve_reference(folder, trained_on="/data/gone", if_missing=if_missing)
+    # a recorded folder that is gone: named as the record's (it said "image folder ... does not exist" of a path the
+    # user never typed); with "skip" the caller is handed it to say so (tune warns, label-free refuses)
+    with pytest.raises(RecipeError, match=r"records as '/data/gone' \(source.trained_on\), are not there any more; "
+                                          r"pass --reference DATA"):
+        resolve_reference(folder, trained_on="/data/gone")
+    skipped = resolve_reference(folder, trained_on="/data/gone", if_missing="skip")
+    assert skipped.skipped and (skipped.origin, skipped.missing) == ("missing", "/data/gone")
     assert resolve_reference(folder, trained_on=data_record(folder)).data == "train"  # trained on this very data
     assert resolve_reference(folder, if_missing="skip").skipped
     with pytest.raises(RecipeError, match=r"pass --reference DATA \(in Python, overrides=RecipeOverrides\("

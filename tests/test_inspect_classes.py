@@ -121,3 +121,29 @@ def test_class_folders_named_as_the_models_classes_stay_labelled(tmp_path):
     with torch.no_grad():
         own = splice.load(folder).eval()(load_images([str(f) for f in files], DIGITS_SHAPE)).argmax(1)
     assert result["accuracy"] == pytest.approx(float((own == truth).double().mean()), abs=1e-9)
+
+
+@pytest.mark.parametrize("odd", ["typo", "loose"])
+def test_a_class_tree_with_a_typo_or_a_loose_image_stays_labelled(tmp_path, odd):
+    """A class folder renamed ('nine' for '9') or a preview image beside the class folders: still the model's class
+    tree (splice eval reads it so), with the mismatch named, not a site's unlabelled images."""
+    import numpy as np
+    from PIL import Image
+
+    data = tmp_path / "tree"
+    test = open_data("digits", "test")
+    chosen = [int(i) for d in range(10) for i in (test.labels == d).nonzero().flatten()[:2]]  # two of each class
+    for k in chosen:
+        label = int(test.labels[k])
+        name = "nine" if odd == "typo" and label == 9 else str(label)
+        (data / name).mkdir(parents=True, exist_ok=True)
+        Image.fromarray((test.images[k][0].numpy() * 255).round().astype(np.uint8)).save(data / name / f"{k}.png")
+    if odd == "loose":
+        Image.fromarray((test.images[0][0].numpy() * 255).round().astype(np.uint8)).save(data / "preview.png")
+    folder = _folder(tmp_path / "spliced", [str(d) for d in range(10)])
+    result = splice.inspect(folder, data=str(data), n=40, out=tmp_path / "report", pictures=False)
+    assert result["n_images"] == 20
+    if odd == "typo":
+        assert result["accuracy"] is None and "is '9' in one and 'nine' in the other" in result["accuracy_note"]
+    else:
+        assert result["accuracy_note"] is None and result["accuracy"] is not None

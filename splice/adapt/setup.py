@@ -77,9 +77,13 @@ def reference_for_site(rec: Recipe, site: str, override: str | None, trained_on:
     """The reference images' spec, by the one rule of :func:`splice.training.reference.resolve_reference`
     (``--reference``, else ``[pretrain] reference``, else the site's upright counterpart, else what the base
     was trained on); the site's own images are never the reference: they are the moved ones."""
-    from ..training.reference import resolve_reference
+    from ..training.reference import gone_text, resolve_reference
 
     ref = resolve_reference(site, given=override or rec.pretrain.reference, trained_on=trained_on, if_missing="skip")
+    if ref.missing is not None:
+        raise RecipeError(f"the label-free recipe needs upright reference images, and {gone_text(ref.missing)}; "
+                          "pass --reference REF (in Python, overrides=RecipeOverrides(reference=REF)): an ImageFolder, "
+                          "a flat folder of images, or digits")
     if ref.data is None or ref.data == "train":
         raise RecipeError(
             f"the label-free recipe needs upright reference images (the kind the base was trained on) and none "

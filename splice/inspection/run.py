@@ -219,10 +219,11 @@ def _by_name(model_classes: list, classes: list, labels: Tensor) -> tuple[list, 
 
 def _unlabelled(data, input_shape, model_classes=None):
     """Every image under the folder ``data`` (as ``tune --site`` reads a site) as a split without labels (label
-    -1), unless it is an ImageFolder tree: split folders, or only subfolders, each one of ``model_classes`` (all
-    subfolders, when the model names no classes). Image files beside subfolders, or subfolders that are not the
-    model's classes (a site's ``day1/``, ``day2/``), make it a site's. ``None`` for a data set name or a tree,
-    which :func:`splice.data.open_data` reads and checks."""
+    -1), unless it is an ImageFolder tree: split folders, or subfolders of which one at least is named as one of
+    ``model_classes`` (a typo or an extra folder is then the tree's mismatch, which inspect names); when the model
+    names no classes, subfolders and no image file beside them. Subfolders none of which is a class of the model
+    (a site's ``day1/``, ``day2/``) make it a site's. ``None`` for a data set name or a tree, which
+    :func:`splice.data.open_data` reads and checks."""
     import unicodedata
 
     from ..data import ImageFolderSet
@@ -235,11 +236,11 @@ def _unlabelled(data, input_shape, model_classes=None):
     visible = [p for p in root.iterdir() if not p.name.startswith(".")]
     dirs = [p for p in visible if p.is_dir()]
     loose = any(p.is_file() and p.suffix.lower() in image_suffixes() for p in visible)
-    if dirs and not loose:
+    if dirs:
         if split_folders(root):
             return None
         known = {unicodedata.normalize("NFC", str(c)) for c in model_classes or ()}
-        if not known or all(unicodedata.normalize("NFC", d.name) in known for d in dirs):
+        if (not known and not loose) or any(unicodedata.normalize("NFC", d.name) in known for d in dirs):
             return None
     files = list_image_files(root)
     if not files:

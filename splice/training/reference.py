@@ -13,7 +13,8 @@ stacked on a real one. :func:`resolve_reference` decides, in this order:
 3. the data the base was trained on, as its splice record says
    (``trained_on``, written by ``splice tune`` into every folder it saves and
    carried over by ``splice insert``); a recorded folder that is no longer on
-   disk stops the run with one line naming it (never a silent skip);
+   disk stops the run with one line naming it, or with ``"skip"`` is warned of
+   and skipped (origin ``missing``);
 4. the embedded ``digits``, which are upright themselves;
 5. otherwise none: with ``[pretrain] if_no_reference = "stop"`` (the default)
    tune stops with one line saying what to pass, with ``"skip"`` it trains
@@ -28,7 +29,7 @@ from pathlib import Path
 
 from ..errors import RecipeError
 
-__all__ = ["Reference", "resolve_reference", "data_record"]
+__all__ = ["Reference", "resolve_reference", "data_record", "gone_text"]
 
 _UPRIGHT_BUILTIN = ("digits",)
 
@@ -37,14 +38,21 @@ _UPRIGHT_BUILTIN = ("digits",)
 class Reference:
     """The resolved reference: ``data`` (a data spec, ``"train"``, or ``None`` when pre-training is
     skipped) and ``origin``, how it was found (``given``, ``upright counterpart``, ``base``,
-    ``embedded``, ``skipped``)."""
+    ``embedded``, ``skipped``, ``missing``: the recorded folder ``missing`` is gone)."""
 
     data: str | None
     origin: str
+    missing: str | None = None  # origin "missing": the recorded folder that is gone
 
     @property
     def skipped(self) -> bool:
         return self.data is None
+
+
+def gone_text(recorded: str) -> str:
+    """The words for a recorded reference folder that is gone (one clause)."""
+    return (f"the images the base was trained on, which the model's folder records as '{recorded}' "
+            "(source.trained_on), are not there any more")
 
 
 def _missing_folder(recorded: str) -> bool:
@@ -82,12 +90,12 @@ def resolve_reference(data: str, *, given: str | None = None, trained_on: str | 
     if trained_on:
         if trained_on == data_record(data):
             return Reference("train", "base")
-        if _missing_folder(trained_on):  # known but gone: said, whatever if_missing is, not silently skipped
-            raise RecipeError(
-                f"warp pre-training would read the images the base was trained on, which the model's folder records "
-                f"as '{trained_on}' (source.trained_on), and that folder is not there any more; pass --reference DATA "
-                "(images of the kind the base was trained on), or set [pretrain] reference = \"train\" to use the "
-                "training images")
+        if _missing_folder(trained_on):  # known but gone: said by the caller, never skipped silently
+            if if_missing != "skip":
+                raise RecipeError(f"warp pre-training would read {gone_text(trained_on)}; pass --reference DATA "
+                                  "(images of the kind the base was trained on), or set [pretrain] reference = "
+                                  "\"train\" to use the training images")
+            return Reference(None, "missing", trained_on)
         return Reference(trained_on, "base")
     if data in _UPRIGHT_BUILTIN:
         return Reference(data, "embedded")

@@ -17,7 +17,7 @@ from ..compare import logits_or_refuse
 from ..copies import modes_kept, rng_kept, tree_copy
 from ..fileio import state_dict_sha256
 from ..graph.shapes import input_dtype
-from ..errors import DataError, RecipeError, SpliceError, SpliceWarning
+from ..errors import DataError, DataWarning, RecipeError, SpliceError, SpliceWarning
 from ..manifest import copy_model, info_of
 from ..options import ModelOptions, refuse_several_inputs, refuse_unfit_inputs
 from ..recipes import Recipe, load_recipe
@@ -29,7 +29,7 @@ from .checkpoint import CHECKPOINT_NAME, load_checkpoint
 from .normalisation import estimate_normalisation
 from .options import RecipeOverrides
 from .params import frozen_by_model
-from .reference import Reference, data_record, resolve_reference
+from .reference import Reference, data_record, gone_text, resolve_reference
 from .runfolder import (RECIPE_FILE, RUN_FILE, RUN_FORMAT, RUN_SCHEMA_VERSION, check_same, describe, read_run_info,
                         resumed_data)
 
@@ -249,8 +249,12 @@ def reference(req: Request, net: nn.Module, override: str | None) -> Reference |
     record = info_of(net)
     given = override or rec.pretrain.reference
     if_missing = rec.pretrain.if_no_reference if rec.pretrain.epochs > 0 else "skip"
-    return resolve_reference(req.data, given=given, trained_on=record.trained_on if record else None,
-                             if_missing=if_missing)
+    ref = resolve_reference(req.data, given=given, trained_on=record.trained_on if record else None,
+                            if_missing=if_missing)
+    if ref.missing is not None:
+        warnings.warn(f"{gone_text(ref.missing)}: the run goes on without a reference; pass --reference DATA to "
+                      "use other upright images", DataWarning, stacklevel=3)
+    return ref
 
 
 def reference_images(ref: Reference, train, input_shape, split: str = "train"):
