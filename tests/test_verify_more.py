@@ -673,3 +673,50 @@ def test_an_outputs_failure_names_a_buffer_drawn_at_build_and_kept_out_of_the_we
     report = splice.verify(folder, trust_code=True)
     row = report["outputs"]
     assert not row.passed and "buffer 'proj', kept out of the weights (persistent=False), differ" in row.detail
+
+
+class _Bucketed(torch.nn.Module):
+    """The input's brightness, rounded to a bucket, picks an embedding: the outputs move with the input, through an
+    integer step no gradient crosses."""
+
+    def __init__(self):
+        super().__init__()
+        self.emb = torch.nn.Embedding(9, 4)
+
+    def forward(self, x):
+        return self.emb((x.mean((1, 2, 3)) * 100).long().clamp(-4, 4) + 4)
+
+
+class _CountingZeroHead(torch.nn.Module):
+    """A zero-initialised head (the outputs ignore the input) plus a count of its calls, eval mode included."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv, self.fc = torch.nn.Conv2d(3, 4, 3, padding=1), torch.nn.Linear(4, 3)
+        torch.nn.init.zeros_(self.fc.weight), torch.nn.init.zeros_(self.fc.bias)
+        self.register_buffer("calls", torch.zeros(()))
+
+    def forward(self, x):
+        self.calls += 1
+        return self.fc(torch.relu(self.conv(x)).mean((2, 3))) + self.calls
+
+
+@pytest.mark.parametrize("batch", [1, 2])
+def test_a_cut_is_told_from_a_model_that_ignores_its_input_on_other_draws(batch):
+    """The cut test compared a mirrored or batch-rolled probe with the first forward: a model that ignores its input
+    but answers otherwise at each call (a call counter) failed as a "gradient cut", and a brightness
+    bucket, which a mirror or a reordered batch leaves alike, passed as "independent of the input". Fresh draws,
+    brighter and darker, against a second run of the same probe."""
+    import warnings
+
+    import splice
+
+    torch.manual_seed(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        bucket = splice.verify(splice.insert(_Bucketed().eval(), at="input", input_shape=(3, 16, 16)), batch=batch)
+        noisy = splice.verify(splice.insert(_CountingZeroHead().eval(), at="input", input_shape=(3, 16, 16)),
+                              batch=batch)
+    assert not bucket["gradients"].passed and bucket["gradients"].summary == "gradient cut before the outputs"
+    row = noisy["gradients"]
+    assert row.passed and row.warning and row.summary == "output independent of the input", row.detail

@@ -122,14 +122,7 @@ def judge_conversions(summary: dict, model: nn.Module, batches: Sequence[tuple],
                           "takes)"}
     example = min(batches, key=lambda b: b[0].shape[0])
     # torch.export stops at a check that raises: what comes after it goes unseen
-    dynamic = len({b[0].shape[0] for b in batches}) > 1  # a graph for any batch is checked at several
-    kind, why = (("unknown", "input checks that raise come first") if checks
-                 else value_branch(model, example, dynamic_batch=dynamic))
-    if kind == "batch":
-        return {**summary, "passed": False, "tracer_conversions": list(sites), "branch_on_batch": True,
-                "detail": f"{summary['detail']}; the model takes a Python branch or number from the batch size at "
-                          f"{where} ({why}), which a graph for any batch fixes at the probe's batch; export with "
-                          "--static-batch (Python: dynamic_batch=False) for one batch size, or compute it with tensors"}
+    kind, why = (("unknown", "input checks that raise come first") if checks else value_branch(model, example))
     outcomes = [(name, *_probe(run, batch, tol)) for name, batch, tol in value_regimes(example)]
     if kind == "values":
         fixed = (f"the model takes a Python branch or number from tensor values at {where} ({why}), which the ONNX "

@@ -161,11 +161,10 @@ def input_checks(sites) -> list[str]:
 _DATA_DEPENDENT = ("GuardOnDataDependentSymNode", "DataDependentOutputException", "DataDependentOutputError")
 
 
-def value_branch(model: nn.Module, example, dynamic_batch: bool = False) -> tuple[str, str]:
+def value_branch(model: nn.Module, example) -> tuple[str, str]:
     """Does ``model`` take a Python branch or number from tensor values? ``("values", why)``, ``("shapes", "")``
     (torch.export traced it on ``example`` with no such branch: what the TorchScript tracer fixed came from
-    shapes) or ``("unknown", why)`` (torch.export failed for another reason). With ``dynamic_batch`` (a graph that
-    takes any batch), ``("batch", why)`` when a branch or number comes from the batch size (:func:`batch_bound`).
+    shapes) or ``("unknown", why)`` (torch.export failed for another reason).
 
     torch.export runs the forward on fake tensors, which have shapes but no values, so a branch on values stops
     it with a data-dependent error; a number read from values (``.item()``, ``.tolist()``) traces through as
@@ -183,16 +182,16 @@ def value_branch(model: nn.Module, example, dynamic_batch: bool = False) -> tupl
     read = [n for n in program.graph.nodes if n.op == "call_function" and _reads_a_value(n)]
     if read:
         return "values", "a number read from tensor values (.item(), .tolist(), float(tensor))"
-    if dynamic_batch and batch_bound(twin, as_inputs(example)):
-        return "batch", "torch.export with a batch of any size stops there: the code depends on the batch size"
     return "shapes", ""
 
 
 def batch_bound(model: nn.Module, inputs: tuple) -> bool:
-    """Does the forward tie itself to the batch size (``if x.shape[0] > 4``)? torch.export with the batch as a
+    """May the forward tie itself to the batch size (``if x.shape[0] > 4``)? torch.export with the batch as a
     symbol (a batch of two: sizes 0 and 1 are specialised) refuses such code with a violated constraint on it; a
     graph exported for any batch would keep the branch the probe's batch took (the dynamo exporter's too: it
-    specialises where it must, silently). Runs on a twin in eval mode."""
+    specialises where it must, silently). Its solver also refuses some guards that hold for every batch
+    (``torch.cat([a, b]).chunk(2)``), so ``True`` asks for more batch sizes to be checked, not for a verdict.
+    Runs on a twin in eval mode."""
     twin = private_buffers(model).eval()
     twos = tuple(t.expand(2, *t.shape[1:]).clone() if t.shape[0] == 1 else t for t in inputs)
     batch = torch.export.Dim("batch", min=1, max=4096)

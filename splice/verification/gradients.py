@@ -44,8 +44,10 @@ def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: 
         # so no warp can get a gradient, however well it is spliced
         return CheckResult(
             "gradients", True, numbers,
-            "the model's outputs do not depend on its input at all (zero gradient with respect to the input, as "
-            "with a zero-initialised final layer), so the warps get none either; train or load the base first",
+            "the model's outputs do not depend on its input at all (zero gradient with respect to the input, and "
+            "the same outputs on other inputs, as with a zero-initialised final layer), so the warps get none "
+            "either; train or load the base first (a model that compares the samples of a batch answers a probe of "
+            "one alike: verify it with --batch 2)",
             "output independent of the input",
             warning="the outputs do not depend on the input: the warps cannot be checked for gradients")
     problems, frozen = [], []
@@ -105,24 +107,41 @@ def at_identity(spliced: nn.Module, x: tuple, seed: int, tuned_row: CheckResult)
 
 @torch.no_grad()
 def outputs_move(model: nn.Module, x: tuple, out) -> bool:
-    """Whether ``model`` (run on a twin with its own buffers) answers otherwise when its first input changes: the
-    images of the batch rolled by one (mirrored, for a batch of one), against ``out``, its outputs on ``x``."""
+    """Whether ``model`` (run on twins with their own buffers) answers otherwise on other inputs: its first input
+    drawn afresh (seeded; with the probe's mean and spread, brighter, darker: no symmetry of the model, a mirror or
+    the order of a batch, hides such a change). ``False`` when it cannot tell: a model that does not
+    answer ``x`` again as it did (``out``: a random draw of its own, a counter) moves whatever its input."""
     from ..copies import private_buffers
 
     first = x[0].detach()
-    moved = first.roll(1, dims=0) if first.shape[0] > 1 else first.flip(-1)
-    if torch.equal(moved, first):
-        moved = first + 1.0
-    try:
+    if not first.is_floating_point() or first.numel() < 2:
+        return False
+    gen = torch.Generator().manual_seed(1234)
+    mean, spread = float(first.double().mean()), float(first.double().std()) or 1.0
+    draw = torch.randn(first.shape, generator=gen, dtype=torch.float64)
+    # a fresh draw like the probe, one brighter and wider, one darker and narrower (a model may read only the mean
+    # or the spread, and a step of it may saturate on one side)
+    others = [(draw * spread + mean).to(first.dtype), (draw * 2 * spread + mean + spread).to(first.dtype),
+              (draw * spread / 2 + mean - spread).to(first.dtype)]
+    rest = [t.detach() for t in x[1:]]
+
+    def run(t: torch.Tensor) -> dict:
         with same_draws():
-            again = private_buffers(model)(moved, *[t.detach() for t in x[1:]])
+            return flatten_outputs(private_buffers(model)(t, *rest))
+    try:
+        again = run(first.clone())
+        if _differ(flatten_outputs(out), again):
+            return False
+        return any(_differ(again, run(t)) for t in others)
     except Exception:  # noqa: BLE001 - a model that cannot run it says nothing either way
         return False
-    before, after = flatten_outputs(out), flatten_outputs(again)
+
+
+def _differ(before: dict, after: dict) -> bool:
     for key, t in before.items():
         u = after.get(key)
-        if (isinstance(u, torch.Tensor) and t.is_floating_point() and u.shape == t.shape
-                and not torch.allclose(t.detach().double(), u.double(), rtol=1e-5, atol=1e-6)):
+        if (isinstance(u, torch.Tensor) and isinstance(t, torch.Tensor) and t.is_floating_point()
+                and u.shape == t.shape and not torch.allclose(t.detach().double(), u.double(), rtol=1e-5, atol=1e-6)):
             return True
     return False
 
