@@ -334,3 +334,12 @@ def test_custom_code_asked_for_inside_a_sub_config_is_refused_before_transformer
     line = _one_error_line(capsys)
     assert "backbone_config.auto_map asks for custom code in a sub-config" in line, line
     assert not sentinel.exists()
+
+
+def test_a_class_named_auto_map_is_a_label_not_custom_code():
+    """Only a table (module and class names) under auto_map asks for code; a class called "auto_map" in label2id is a
+    label (refused as custom code in a sub-config before)."""
+    from splice.sources.huggingface import code_request
+
+    assert code_request({"label2id": {"auto_map": 0, "ok": 1}, "id2label": {"0": "auto_map", "1": "ok"}}) is None
+    assert "backbone_config.auto_map" in code_request({"backbone_config": {"auto_map": {"AutoBackbone": "m.C"}}})

@@ -107,7 +107,7 @@ def code_request(config: Mapping) -> str | None:
     (custom code in ``auto_map``, or an attention or experts implementation other than torch's own, at any depth,
     which the kernels package may fetch from the Hugging Face Hub); ``None`` when nothing does."""
     for place, key, value, _ in _entries(config):
-        if key == "auto_map":
+        if key == "auto_map" and isinstance(value, (Mapping, list)):  # not a class named so in label2id
             return f"custom code ({place}auto_map), which runs Python shipped with the model"
         kind = _IMPLEMENTATION_KEYS.get(key) if isinstance(key, str) else None
         torchs = _TORCH_IMPLEMENTATIONS[kind] if kind is not None else ()
@@ -131,7 +131,7 @@ def _check_buildable(config: Mapping, where: str) -> None:
     arguments that load weights, or a ``backbone`` named without its ``backbone_config`` (transformers then looks
     the name up on the Hub)."""
     for place, key, value, parent in _entries(config):
-        if key == "auto_map" and place:
+        if key == "auto_map" and place and isinstance(value, (Mapping, list)):
             raise SourceError(f"{where}: the config's {place}auto_map asks for custom code in a sub-config, which "
                               "transformers asks about on the terminal while building, whatever --trust-code says; "
                               "build the model in a file of your own and splice path/to/file.py:factory")
