@@ -239,7 +239,9 @@ def test_within_splices_the_part_and_keeps_the_whole(tmp_path):
     report = verify(folder, onnx=True, trust_code=True)
     assert report.passed, [(r.check, r.detail) for r in report.checks if not r.passed]
     result = export(folder, onnx=tmp_path / "two.onnx", trust_code=True)["exports"][0]  # raises unless parity holds
-    assert result["batch_sizes"] == ([1, 3] if result["dynamic_batch"] else [1, 1])
+    # torch.export's solver meets a guard on the batch after cat-then-chunk that holds for every batch: the graph for
+    # any batch is kept, checked at 5 and 9 too
+    assert result["dynamic_batch"] and result["batch_sizes"] == [1, 3, 5, 9]
 
 
 def test_within_names_a_module_that_exists():
@@ -365,7 +367,7 @@ def test_an_output_independent_of_the_input_is_a_warning_not_a_failure(tmp_path)
     assert report.passed
     row = report["gradients"]
     assert row.passed and row.warning and row.numbers["input_grad"] == 0.0
-    assert "do not depend on its input at all" in row.detail
+    assert "outputs do not depend on its input (zero gradient" in row.detail
 
 
 def test_a_warp_cut_off_from_the_loss_fails(tmp_path):

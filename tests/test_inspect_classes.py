@@ -147,3 +147,31 @@ def test_a_class_tree_with_a_typo_or_a_loose_image_stays_labelled(tmp_path, odd)
         assert result["accuracy"] is None and "is '9' in one and 'nine' in the other" in result["accuracy_note"]
     else:
         assert result["accuracy_note"] is None and result["accuracy"] is not None
+
+
+@pytest.mark.parametrize("extra", ["empty", "images"])
+def test_an_extra_folder_beside_the_classes_is_passed_over_when_empty_and_named_when_not(tmp_path, extra):
+    """An unzipped tree with __MACOSX/ (hidden files only) beside the class folders lost its accuracy and predictions
+    ("the classes are 11"); an extra folder of images is named in the note."""
+    import numpy as np
+    from PIL import Image
+
+    data = tmp_path / "tree"
+    test = open_data("digits", "test")
+    for k in [int(i) for d in range(10) for i in (test.labels == d).nonzero().flatten()[:2]]:
+        (data / str(int(test.labels[k]))).mkdir(parents=True, exist_ok=True)
+        Image.fromarray((test.images[k][0].numpy() * 255).round().astype(np.uint8)).save(
+            data / str(int(test.labels[k])) / f"{k}.png")
+    (data / "__MACOSX").mkdir()
+    if extra == "empty":
+        (data / "__MACOSX" / "._0.png").write_bytes(b"\x00\x05\x16\x07")
+    else:
+        Image.fromarray((test.images[0][0].numpy() * 255).round().astype(np.uint8)).save(data / "__MACOSX" / "x.png")
+    folder = _folder(tmp_path / "spliced", [str(d) for d in range(10)])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the empty folder is also warned of as a class without images
+        result = splice.inspect(folder, data=str(data), n=40, out=tmp_path / "report", pictures=False)
+    if extra == "empty":
+        assert result["accuracy_note"] is None and result["accuracy"] is not None
+    else:
+        assert result["accuracy"] is None and "none of the model's classes: ['__MACOSX']" in result["accuracy_note"]

@@ -206,13 +206,16 @@ def _sample(facts, data: str, split: str, n: int) -> _Sample:
 
 def _by_name(model_classes: list, classes: list, labels: Tensor) -> tuple[list, Tensor]:
     """Labels of class folders that are some of the model's classes (a labelled batch from a site of a few classes),
-    renumbered by the model's own order of names; other folders as they are (scored only when the lists agree)."""
+    renumbered by the model's own order of names, when every folder with images in the sample is one of them (an
+    empty extra folder, such as ``__MACOSX/`` holding hidden files only, is passed over); else as they are."""
     import unicodedata
 
     index = {unicodedata.normalize("NFC", str(c)): i for i, c in enumerate(model_classes)}
     names = [unicodedata.normalize("NFC", str(c)) for c in classes]
-    if not names or not all(n in index for n in names):
+    used = {int(k) for k in labels.unique()} if labels.numel() else set()
+    if not names or not all(names[k] in index for k in used):  # a folder with images that is none of the classes
         return classes, labels
+    names = [n if n in index else next(iter(index)) for n in names]  # an empty extra folder (__MACOSX): no label
     mapping = torch.tensor([index[n] for n in names], dtype=torch.long)
     return model_classes, mapping[labels]
 
@@ -255,9 +258,11 @@ def _score(sample: _Sample, logits: Tensor | None) -> None:
     classes = sample.classes
     if logits is None or (classes and logits.shape[1] != len(classes)):
         shape = "no (N, classes) logits" if logits is None else f"{logits.shape[1]} scores per image"
+        extra = [c for c in classes or () if sample.model_classes and c not in sample.model_classes]
         sample.accuracy_note = sample.accuracy_note or (
             f"no accuracy or predictions: the model's output holds {shape}"
-            + (f", and the classes are {len(classes)}" if classes and logits is not None else ""))
+            + (f", and the classes are {len(classes)}" if classes and logits is not None else "")
+            + (f" (folders that are none of the model's classes: {shown_classes(extra)})" if extra else ""))
         return
     if sample.unlabelled:
         sample.predicted = logits.argmax(dim=1)  # what the model says, with nothing to score it against

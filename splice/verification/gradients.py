@@ -44,10 +44,10 @@ def gradients_row(warps, grads: dict[str, dict], error: str | None, input_grad: 
         # so no warp can get a gradient, however well it is spliced
         return CheckResult(
             "gradients", True, numbers,
-            "the model's outputs do not depend on its input at all (zero gradient with respect to the input, and "
-            "the same outputs on other inputs, as with a zero-initialised final layer), so the warps get none "
-            "either; train or load the base first (a model that compares the samples of a batch answers a probe of "
-            "one alike: verify it with --batch 2)",
+            "the model's outputs do not depend on its input (zero gradient with respect to the input, and the same "
+            "outputs on the other inputs verify drew, or no way to tell: a model that answers otherwise at every "
+            "call), as with a zero-initialised final layer, so the warps get none either; train or load the base "
+            "first (a model that compares the samples of a batch answers a probe of one alike: --batch 2)",
             "output independent of the input",
             warning="the outputs do not depend on the input: the warps cannot be checked for gradients")
     problems, frozen = [], []

@@ -138,7 +138,8 @@ def _unsaved_said(row: CheckResult, base: nn.Module, spliced: nn.Module) -> Chec
         return row
     return dataclasses.replace(row, detail=(
         f"{row.detail}; the base's buffer{'s' if len(differ) > 1 else ''} {', '.join(repr(n) for n in differ[:4])}"
-        f"{', …' if len(differ) > 4 else ''}, kept out of the weights (persistent=False), differ between the two "
+        f"{', …' if len(differ) > 4 else ''}, kept out of the weights (persistent=False), "
+        f"differ{'s' if len(differ) == 1 else ''} between the two "
         "models built here: drawn when a model is built, they make every build another model; register them with "
         "persistent=True, or compute them without a random draw"))
 
