@@ -30,7 +30,9 @@ def test_the_zoo_passes_the_whole_certificate(entry, workdir):
         assert result["mechanism"] == "hooks" and report.meta["points"] == result["spliced_at"]
     exported = result["export"]
     assert exported["max_rel"] <= exported["tolerance"]
-    assert exported["batch_sizes"] == ([1, 3] if exported["dynamic_batch"] else [1, 1])
+    # a graph for any batch is checked at 1 and 3, and at 5 and 9 too where torch.export meets a guard on the batch
+    # (RAFT's cat-then-chunk of its two images, which holds for every batch)
+    assert exported["batch_sizes"] in ([[1, 3], [1, 3, 5, 9]] if exported["dynamic_batch"] else [[1, 1]])
     # splice's warnings: which mechanism listed the points, and a batch-1 export when the graph needs one
     for category, message in result["warnings"]:
         if category == "TraceFallbackWarning":
