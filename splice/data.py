@@ -40,7 +40,6 @@ from __future__ import annotations
 
 import functools
 import os
-import unicodedata
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -54,7 +53,7 @@ from torch.utils.data import Dataset
 from . import distort
 from .errors import DataError, DataWarning, suggest
 from .imagefiles import IMAGE_SUFFIXES, check_input_shape, load_images, refuse_unreadable
-from .imagefolder import FOLDER_LAYOUT, SPLITS, ImageFolderSet, open_folder
+from .imagefolder import FOLDER_LAYOUT, SPLITS, ImageFolderSet, class_key, open_folder
 
 __all__ = [
     "refuse_unreadable",
@@ -293,8 +292,7 @@ def _open_digits(spec: str, split: str, shape: tuple[int, int, int], seed: int) 
 def same_classes(a: Sequence[str] | None, b: Sequence[str] | None) -> bool:
     """Two class lists name the same classes in the same order, compared after Unicode NFC normalisation (a
     model trained on a tree written on macOS, where names are decomposed, matches the same tree elsewhere)."""
-    return [unicodedata.normalize("NFC", str(n)) for n in a or []] == [unicodedata.normalize("NFC", str(n))
-                                                                          for n in b or []]
+    return [class_key(n) for n in a or []] == [class_key(n) for n in b or []]
 
 
 def shown_classes(names: Sequence[str] | None, limit: int = 12) -> str:
@@ -307,8 +305,7 @@ def shown_classes(names: Sequence[str] | None, limit: int = 12) -> str:
 def first_class_difference(a: Sequence[str] | None, b: Sequence[str] | None) -> str:
     """Where two class lists first part (after NFC, as :func:`same_classes` compares), in words: "class 9 is '9'
     in one and 'nine' in the other", or how many each has when one list begins the other."""
-    na = [unicodedata.normalize("NFC", str(n)) for n in a or []]
-    nb = [unicodedata.normalize("NFC", str(n)) for n in b or []]
+    na, nb = [class_key(n) for n in a or []], [class_key(n) for n in b or []]
     for i, (x, y) in enumerate(zip(na, nb)):
         if x != y:
             return f"class {i} is {x!r} in one and {y!r} in the other"

@@ -30,7 +30,7 @@ from .errors import DataError, DataWarning
 from .imagefiles import bad_headers, image_suffixes, list_image_files, read_image, refuse_unreadable
 from .limits import image_pixel_cap, max_image_pixels
 
-__all__ = ["SPLITS", "FOLDER_LAYOUT", "ImageFolderSet", "open_folder", "split_folders"]
+__all__ = ["SPLITS", "FOLDER_LAYOUT", "ImageFolderSet", "open_folder", "split_folders", "class_key"]
 
 SPLITS = ("train", "val", "test")
 FOLDER_LAYOUT = "DIR/train/<class>/*, DIR/val/<class>/*, optionally DIR/test/<class>/*"
@@ -104,6 +104,12 @@ def _visible_dirs(path: Path) -> list[Path]:
     return sorted((p for p in entries if p.is_dir()), key=lambda p: p.name)
 
 
+def class_key(name) -> str:
+    """The one form a class name is compared in: its text in Unicode NFC (a tree written on macOS, where names are
+    decomposed, names the same classes as the same tree elsewhere)."""
+    return unicodedata.normalize("NFC", str(name))
+
+
 def _form(name: str) -> str:
     for form in ("NFC", "NFD"):
         if unicodedata.is_normalized(form, name):
@@ -115,7 +121,7 @@ def _class_names(where: Path) -> dict[str, str]:
     """``{NFC name: folder name}`` of the class folders in ``where`` (a split folder, or a folder of classes)."""
     names: dict[str, str] = {}
     for d in _visible_dirs(where):
-        key = unicodedata.normalize("NFC", d.name)
+        key = class_key(d.name)
         if key in names:
             raise DataError(
                 f"{where} holds two class folders whose names differ only in Unicode normalisation: "

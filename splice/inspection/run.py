@@ -208,10 +208,10 @@ def _by_name(model_classes: list, classes: list, labels: Tensor) -> tuple[list, 
     """Labels of class folders that are some of the model's classes (a labelled batch from a site of a few classes),
     renumbered by the model's own order of names, when every folder with images in the sample is one of them (an
     empty extra folder, such as ``__MACOSX/`` holding hidden files only, is passed over); else as they are."""
-    import unicodedata
+    from ..imagefolder import class_key
 
-    index = {unicodedata.normalize("NFC", str(c)): i for i, c in enumerate(model_classes)}
-    names = [unicodedata.normalize("NFC", str(c)) for c in classes]
+    index = {class_key(c): i for i, c in enumerate(model_classes)}
+    names = [class_key(c) for c in classes]
     used = {int(k) for k in labels.unique()} if labels.numel() else set()
     if not names or not all(names[k] in index for k in used):  # a folder with images that is none of the classes
         return classes, labels
@@ -227,11 +227,9 @@ def _unlabelled(data, input_shape, model_classes=None):
     names no classes, subfolders and no image file beside them. Subfolders none of which is a class of the model
     (a site's ``day1/``, ``day2/``) make it a site's. ``None`` for a data set name or a tree, which
     :func:`splice.data.open_data` reads and checks."""
-    import unicodedata
-
     from ..data import ImageFolderSet
     from ..imagefiles import image_suffixes, list_image_files
-    from ..imagefolder import split_folders
+    from ..imagefolder import class_key, split_folders
 
     root = Path(str(data))
     if not root.is_dir():
@@ -242,8 +240,8 @@ def _unlabelled(data, input_shape, model_classes=None):
     if dirs:
         if split_folders(root):
             return None
-        known = {unicodedata.normalize("NFC", str(c)) for c in model_classes or ()}
-        if (not known and not loose) or any(unicodedata.normalize("NFC", d.name) in known for d in dirs):
+        known = {class_key(c) for c in model_classes or ()}
+        if (not known and not loose) or any(class_key(d.name) in known for d in dirs):
             return None
     files = list_image_files(root)
     if not files:
