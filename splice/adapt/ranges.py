@@ -271,10 +271,11 @@ def _widths(est: RangeEstimate, site: dict, simulate, start: RangeEstimate, pin,
     return est, sim
 
 
-def _standard_error(site: dict, sim: dict) -> float:
-    """The standard error of the difference of the two mean scale readings."""
+def _standard_error(site: dict, sim: dict, key: str = "scale_std", spread: bool = False) -> float:
+    """The standard error of the difference of two sample statistics, from the spread ``key`` of each: of two
+    means (the scale readings', ``sd / sqrt(n)`` each), or with ``spread`` of two spreads (``sd / sqrt(2 n)``)."""
     def var(d: dict) -> float:
-        return d["scale_std"] ** 2 / max(float(d.get("images", 1.0)), 1.0)
+        return d[key] ** 2 / ((2.0 if spread else 1.0) * max(float(d.get("images", 1.0)), 1.0))
     return math.sqrt(var(site) + var(sim))
 
 
@@ -308,13 +309,6 @@ def _secant_centre(est: RangeEstimate, site: dict, sim: dict, simulate, start: R
     return est, sim, record
 
 
-def _spread_error(site: dict, sim: dict, key: str) -> float:
-    """The standard error of the difference of two standard deviations (a sample's is about ``sd / sqrt(2 n)``)."""
-    def var(d: dict) -> float:
-        return d[key] ** 2 / (2.0 * max(float(d.get("images", 1.0)), 1.0))
-    return math.sqrt(var(site) + var(sim))
-
-
 def _zero_still(est: RangeEstimate, site: dict, simulate, pin, observable: dict[str, bool]):
     """Still parameters (module docstring): a parameter whose site spread is within :data:`CENTRE_Z` standard
     errors of its floor (its statistic with that parameter still and the rest as estimated) is set to 0.
@@ -331,7 +325,7 @@ def _zero_still(est: RangeEstimate, site: dict, simulate, pin, observable: dict[
         setattr(still, p, (_centre(est),) * 2 if p == "scale" else 0.0)
         still = pin(still)
         floor = simulate(still)
-        se = _spread_error(site, floor, key)
+        se = _standard_error(site, floor, key, spread=True)
         zeroed = site[key] <= floor[key] + CENTRE_Z * se
         record["floor"][key], record["floor_standard_error"][key], record["zeroed"][key] = floor[key], se, float(zeroed)
         if zeroed:
