@@ -29,13 +29,17 @@ def _probe_inputs(shapes, dtype, *, dynamic_batch: bool, seed: int) -> tuple[tup
     gen = torch.Generator().manual_seed(seed)
 
     def batch(n: int) -> tuple[torch.Tensor, ...]:
-        return tuple(torch.randn((n, *shape), generator=gen).to(dtype) for shape in shapes)
+        return _seeded_batch(shapes, dtype, n, gen)
 
     if dynamic_batch:
         example = batch(2)
         return example, [batch(1), batch(3)]
     x = batch(1)
     return x, [x, batch(1)]
+
+def _seeded_batch(shapes, dtype, n: int, gen: torch.Generator) -> tuple[torch.Tensor, ...]:
+    """A batch of ``n``, one N(0, 1) tensor per input (of the per-sample ``shapes``), drawn from ``gen``."""
+    return tuple(torch.randn((n, *shape), generator=gen).to(dtype) for shape in shapes)
 
 def _keep(path: str | os.PathLike, data: bytes) -> tuple[Path, str]:
     import hashlib
@@ -77,8 +81,7 @@ def _larger_batches(model, data: bytes, result: dict, shapes, *, exporter: str, 
     """``result`` of a graph for any batch, checked again at :data:`LARGER_BATCHES`: a miss fails it (a branch on
     the batch size, which the graph fixed at the traced batch's), matches are said."""
     gen = torch.Generator().manual_seed(seed + 7)
-    dtype = model_dtype(model)
-    larger = [tuple(torch.randn((n, *shape), generator=gen).to(dtype) for shape in shapes) for n in LARGER_BATCHES]
+    larger = [_seeded_batch(shapes, model_dtype(model), n, gen) for n in LARGER_BATCHES]
     found = onnx_parity(model, data, larger, tol=tol, exporter=exporter, perturb=False)
     sizes = ", ".join(str(n) for n in LARGER_BATCHES)
     if not found["passed"]:
