@@ -12,12 +12,10 @@ configuration. The weights are read safely (safetensors, or
 The splice records ``transformers:ClassName`` with ``{"config": {...}}`` as its
 kwargs, so a spliced folder rebuilds without the source folder.
 
-Built only with ``trust_code=True`` (``--trust-code``): a config with
-``auto_map`` (code shipped in the folder, loaded by transformers' own loader;
-the spliced folder then needs it and the opt-in to rebuild), or naming an
-attention or experts implementation other than torch's own (``flash_attention_2``,
-``org/repo``: code transformers may fetch from the Hub). Refused: ``auto_map``
-in a sub-config, a quantized config (``quantization_config``).
+Built only with ``trust_code=True`` (``--trust-code``): a config with ``auto_map`` (code shipped in the folder,
+loaded by transformers' own loader; the spliced folder then needs it and the opt-in to rebuild), or naming an
+attention or experts implementation other than torch's own (``flash_attention_2``, ``org/repo``: code transformers
+may fetch from the Hub). Refused: ``auto_map`` in a sub-config, a quantized config (``quantization_config``).
 
 Nothing is downloaded: ``use_pretrained_backbone`` is forced off, and hub
 kernels stay off when the weights are read.
@@ -110,8 +108,10 @@ def code_request(config: Mapping) -> str | None:
         if key == "auto_map" and isinstance(value, (Mapping, list)):  # not a class named so in label2id
             return f"custom code ({place}auto_map), which runs Python shipped with the model"
         kind = _IMPLEMENTATION_KEYS.get(key) if isinstance(key, str) else None
-        torchs = _TORCH_IMPLEMENTATIONS[kind] if kind is not None else ()
-        for v in _leaves(value) if kind is not None else ():
+        if kind is None:
+            continue
+        torchs = _TORCH_IMPLEMENTATIONS[kind]
+        for v in _leaves(value):
             if v is not None and not (isinstance(v, str) and v in torchs):
                 return (f"{place}{key} {v!r}, which transformers may fetch from the Hugging Face Hub as code "
                         f"(torch's own: {', '.join(sorted(torchs))})")
